@@ -1,0 +1,306 @@
+"""Discrete-time linear state-space models in innovation form.
+
+    x[k+1] = A x[k] + B u[k] + K e[k]
+    y[k]   = C x[k] + D u[k] + e[k],        e ~ white, covariance ``innovation_cov``
+
+Both fitted forms of the indirect route (ridge ARX, subspace identification) end up here, so prediction, control
+and network analysis downstream see one interface.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.linalg as sla
+
+from .exceptions import SessionError, UnstableModelError
+
+__all__ = ["StateSpaceModel", "kalman_gain"]
+
+
+def kalman_gain(A, C, Q, R, S=None):
+    """Steady-state one-step-predictor Kalman gain and prior error covariance.
+
+    Solves the filtering Riccati equation ``P = A P Aᵀ + Q − (A P Cᵀ + S)(C P Cᵀ + R)⁻¹(A P Cᵀ + S)ᵀ``
+    with :func:`scipy.linalg.solve_discrete_are` and returns ``K = (A P Cᵀ + S)(C P Cᵀ + R)⁻¹``.
+
+    Parameters
+    ----------
+    A : ndarray, shape (n, n)
+    C : ndarray, shape (p, n)
+    Q : ndarray, shape (n, n)
+        Process-noise covariance.
+    R : ndarray, shape (p, p)
+        Measurement-noise covariance (positive definite).
+    S : ndarray, shape (n, p), optional
+        Cross covariance of process and measurement noise; default zero.
+
+    Returns
+    -------
+    K : ndarray, shape (n, p)
+    P : ndarray, shape (n, n)
+        Prior (one-step-ahead) state error covariance.
+
+    References
+    ----------
+    Anderson B.D.O., Moore J.B. (1979), Optimal Filtering, ch. 4.
+
+    Examples
+    --------
+    >>> K, P = kalman_gain(np.eye(1), np.eye(1), np.eye(1), np.eye(1))
+    >>> round(float(P[0, 0]), 6)  # the golden ratio for a unit random walk
+    1.618034
+    """
+    A, C, Q, R = (np.atleast_2d(np.asarray(M, dtype=np.float64)) for M in (A, C, Q, R))
+    S = np.zeros((A.shape[0], C.shape[0])) if S is None else np.atleast_2d(np.asarray(S, dtype=np.float64))
+    P = sla.solve_discrete_are(A.T, C.T, Q, R, s=S)
+    P = 0.5 * (P + P.T)
+    K = np.linalg.solve((C @ P @ C.T + R).T, (A @ P @ C.T + S).T).T
+    return K, P
+
+
+def _mat(name, M, shape):
+    M = np.atleast_2d(np.asarray(M, dtype=np.float64))
+    if M.shape != shape:
+        raise SessionError(f"{name} must have shape {shape}; got {M.shape}.")
+    if not np.all(np.isfinite(M)):
+        raise SessionError(f"{name} holds NaN or infinite entries.")
+    M = M.copy()
+    M.setflags(write=False)
+    return M
+
+
+@dataclass(frozen=True)
+class StateSpaceModel:
+    """A linear time-invariant model in innovation form (see the module docstring).
+
+    Parameters
+    ----------
+    A : ndarray, shape (n_states, n_states)
+    B : ndarray, shape (n_states, n_inputs)
+    C : ndarray, shape (n_outputs, n_states)
+    D : ndarray, shape (n_outputs, n_inputs), optional
+        Default zero (no direct feed-through, usual for stimulation → recording).
+    K : ndarray, shape (n_states, n_outputs), optional
+        Steady-state Kalman (predictor) gain; default zero (output-error model).
+    innovation_cov : ndarray, shape (n_outputs, n_outputs), optional
+        Covariance of ``e``; default zero (unknown).
+    sample_rate_hz : float, default 1.0
+    past_steps : int, optional
+        Length of the past window :meth:`predict` expects; default ``max(n_states, 1)``.
+    input_names, output_names : tuple of str, optional
+
+    Notes
+    -----
+    Matrices are in the units of the data they were fitted on (often standardised units, see ``prep``).
+    """
+
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: np.ndarray = None
+    K: np.ndarray = None
+    innovation_cov: np.ndarray = None
+    sample_rate_hz: float = 1.0
+    past_steps: int = None
+    input_names: tuple = None
+    output_names: tuple = None
+    info: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        A = np.atleast_2d(np.asarray(self.A, dtype=np.float64))
+        n = A.shape[0]
+        if A.shape != (n, n):
+            raise SessionError(f"A must be square; got shape {A.shape}.")
+        B = np.asarray(self.B, dtype=np.float64).reshape(n, -1)
+        C = np.asarray(self.C, dtype=np.float64).reshape(-1, n)
+        m, p = B.shape[1], C.shape[0]
+        D = np.zeros((p, m)) if self.D is None else self.D
+        K = np.zeros((n, p)) if self.K is None else self.K
+        Re = np.zeros((p, p)) if self.innovation_cov is None else self.innovation_cov
+        s = object.__setattr__
+        for name, M, shape in (("A", A, (n, n)), ("B", B, (n, m)), ("C", C, (p, n)), ("D", D, (p, m)),
+                               ("K", K, (n, p)), ("innovation_cov", Re, (p, p))):
+            s(self, name, _mat(name, M, shape))
+        rate = float(self.sample_rate_hz)
+        if not np.isfinite(rate) or rate <= 0:
+            raise SessionError(f"sample_rate_hz must be positive and finite; got {self.sample_rate_hz}.")
+        s(self, "sample_rate_hz", rate)
+        past = max(n, 1) if self.past_steps is None else int(self.past_steps)
+        if past < 1:
+            raise SessionError(f"past_steps must be at least 1; got {past}.")
+        s(self, "past_steps", past)
+        s(self, "input_names", tuple(self.input_names) if self.input_names else tuple(f"u{i}" for i in range(m)))
+        s(self, "output_names", tuple(self.output_names) if self.output_names else tuple(f"y{i}" for i in range(p)))
+        s(self, "info", dict(self.info or {}))
+
+    # ------------------------------------------------------------------------------------------------ shape
+    @property
+    def n_states(self) -> int:
+        return int(self.A.shape[0])
+
+    @property
+    def n_inputs(self) -> int:
+        return int(self.B.shape[1])
+
+    @property
+    def n_outputs(self) -> int:
+        return int(self.C.shape[0])
+
+    # ------------------------------------------------------------------------------------------------ stability
+    @property
+    def poles(self) -> np.ndarray:
+        """Eigenvalues of A, sorted by decreasing modulus."""
+        ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
+        return ev[np.argsort(-np.abs(ev))]
+
+    @property
+    def spectral_radius(self) -> float:
+        return float(np.max(np.abs(self.poles))) if self.n_states else 0.0
+
+    @property
+    def stability_margin(self) -> float:
+        """``1 − spectral radius``: positive for a stable model, the distance of the slowest pole to the unit circle."""
+        return 1.0 - self.spectral_radius
+
+    @property
+    def is_stable(self) -> bool:
+        return self.spectral_radius < 1.0
+
+    def require_stable(self, purpose: str) -> None:
+        """Raise :class:`UnstableModelError` when the model is not stable (needed e.g. for Gramians)."""
+        if not self.is_stable:
+            raise UnstableModelError(
+                f"{purpose} needs a stable model, but the spectral radius is {self.spectral_radius:.4f} >= 1. "
+                "Refit with a different order or more regularisation, or use a finite horizon."
+            )
+
+    # ------------------------------------------------------------------------------------------------ simulation
+    def _check_u(self, u, name="u") -> np.ndarray:
+        u = np.asarray(u, dtype=np.float64)
+        if u.ndim == 1 and self.n_inputs == 1:
+            u = u[:, None]
+        if u.ndim != 2 or u.shape[1] != self.n_inputs:
+            raise SessionError(
+                f"{name} must have shape (n_samples, {self.n_inputs}) for this model's {self.n_inputs} input(s); "
+                f"got {u.shape}."
+            )
+        if not np.all(np.isfinite(u)):
+            raise SessionError(f"{name} holds NaN or infinite values.")
+        return u
+
+    def simulate(self, u, x0=None, return_states: bool = False):
+        """Noise-free response to the input ``u`` from state ``x0`` (default rest).
+
+        Parameters
+        ----------
+        u : ndarray, shape (n_samples, n_inputs)
+        x0 : ndarray, shape (n_states,), optional
+        return_states : bool, default False
+            Also return the states, shape (n_samples + 1, n_states) (the last row is the state after the input).
+
+        Returns
+        -------
+        y : ndarray, shape (n_samples, n_outputs)
+        x : ndarray, shape (n_samples + 1, n_states), only when ``return_states``
+        """
+        u = self._check_u(u)
+        x = np.zeros(self.n_states) if x0 is None else np.asarray(x0, dtype=np.float64).reshape(self.n_states)
+        X = np.empty((u.shape[0] + 1, self.n_states))
+        X[0] = x
+        A, B = self.A, self.B
+        for k in range(u.shape[0]):
+            X[k + 1] = A @ X[k] + B @ u[k]
+        y = X[:-1] @ self.C.T + u @ self.D.T
+        return (y, X) if return_states else y
+
+    def _innovation_terms(self, u_past, y_past):
+        """Free-response basis and driven part of the innovation predictor over a past window."""
+        T, n = u_past.shape[0], self.n_states
+        Ak = self.A - self.K @ self.C
+        Bk = self.B - self.K @ self.D
+        Phi = np.empty((T, self.n_outputs, n))  # C Ak^t: response of the predicted output to the initial state
+        M = np.eye(n)
+        x = np.zeros(n)
+        driven = np.empty((T, self.n_outputs))
+        for t in range(T):
+            Phi[t] = self.C @ M
+            driven[t] = self.C @ x + self.D @ u_past[t]
+            x = Ak @ x + Bk @ u_past[t] + self.K @ y_past[t]
+            M = Ak @ M
+        return Phi, driven, M, x
+
+    def estimate_state(self, u_past, y_past) -> np.ndarray:
+        """State at the sample just after a measured past window.
+
+        The state at the window's start is fitted by least squares to the innovations of the Kalman predictor
+        over the window (minimum-norm where it is not identifiable), then propagated through the predictor.
+        Exact for noise-free data from this model when the window is at least the observability index.
+
+        Parameters
+        ----------
+        u_past : ndarray, shape (n_past, n_inputs)
+        y_past : ndarray, shape (n_past, n_outputs)
+
+        Returns
+        -------
+        x : ndarray, shape (n_states,)
+        """
+        u_past = self._check_u(u_past, "u_past")
+        y_past = np.asarray(y_past, dtype=np.float64).reshape(u_past.shape[0], -1)
+        if y_past.shape[1] != self.n_outputs:
+            raise SessionError(f"y_past must have {self.n_outputs} columns; got {y_past.shape[1]}.")
+        if u_past.shape[0] == 0 or self.n_states == 0:
+            return np.zeros(self.n_states)
+        Phi, driven, M, x_driven = self._innovation_terms(u_past, y_past)
+        lhs = Phi.reshape(-1, self.n_states)
+        rhs = (y_past - driven).reshape(-1)
+        x0 = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
+        return M @ x0 + x_driven
+
+    def predict(self, u_past, y_past, u_future) -> np.ndarray:
+        """Predict outputs over ``u_future`` from a measured past window (the predictor protocol).
+
+        Parameters
+        ----------
+        u_past : ndarray, shape (n_past, n_inputs)
+        y_past : ndarray, shape (n_past, n_outputs)
+        u_future : ndarray, shape (n_future, n_inputs)
+
+        Returns
+        -------
+        y_future : ndarray, shape (n_future, n_outputs)
+        """
+        x = self.estimate_state(u_past, y_past)
+        return self.simulate(u_future, x0=x)
+
+    def impulse_response(self, n_steps: int) -> np.ndarray:
+        """Markov parameters ``h[0] = D, h[k] = C A^(k−1) B``, shape (n_steps, n_outputs, n_inputs)."""
+        n_steps = int(n_steps)
+        if n_steps < 1:
+            raise SessionError(f"n_steps must be at least 1; got {n_steps}.")
+        h = np.empty((n_steps, self.n_outputs, self.n_inputs))
+        h[0] = self.D
+        AkB = self.B.copy()
+        for k in range(1, n_steps):
+            h[k] = self.C @ AkB
+            AkB = self.A @ AkB
+        return h
+
+    def with_noise(self, Q, R, S=None) -> "StateSpaceModel":
+        """A copy whose Kalman gain and innovation covariance come from process/measurement covariances."""
+        K, P = kalman_gain(self.A, self.C, Q, R, S)
+        Re = self.C @ P @ self.C.T + np.atleast_2d(R)
+        return self.replace(K=K, innovation_cov=0.5 * (Re + Re.T))
+
+    def replace(self, **changes) -> "StateSpaceModel":
+        import dataclasses
+
+        return dataclasses.replace(self, **changes)
+
+    def __repr__(self) -> str:
+        return (
+            f"StateSpaceModel(n_states={self.n_states}, n_inputs={self.n_inputs}, n_outputs={self.n_outputs}, "
+            f"spectral_radius={self.spectral_radius:.4f}, sample_rate_hz={self.sample_rate_hz:g})"
+        )
