@@ -1,0 +1,65 @@
+"""Atomic file output: a reader never sees a half-written file, and a failure leaves nothing behind."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+from .exceptions import StimsteerError
+
+__all__ = ["atomic_path", "atomic_dir"]
+
+
+@contextlib.contextmanager
+def atomic_path(path, suffix: str | None = None):
+    """Yield a temporary path beside ``path``; on success it is renamed onto ``path``, on error removed.
+
+    Use for any single output file: ``with atomic_path(out) as tmp: write(tmp)``.
+    """
+    path = Path(path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise StimsteerError(f"cannot write {path}: the folder {parent} does not exist. Create it first.")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix or path.suffix or ".tmp", dir=parent)
+    os.close(fd)
+    try:
+        yield Path(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.remove(tmp)
+        raise
+
+
+@contextlib.contextmanager
+def atomic_dir(path, force: bool = False):
+    """Yield a temporary folder beside ``path``; on success it replaces ``path``, on error it is removed.
+
+    An existing non-empty ``path`` is refused unless ``force`` (then it is replaced whole, never mixed).
+    """
+    path = Path(path)
+    if path.exists() and not path.is_dir():
+        raise StimsteerError(f"output folder {path} exists and is a file; choose another --out.")
+    if path.is_dir() and any(path.iterdir()) and not force:
+        raise StimsteerError(
+            f"output folder {path} already holds files (another run?); choose a new --out or pass --force to "
+            "replace it."
+        )
+    parent = path.parent if str(path.parent) else Path(".")
+    parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", dir=parent))
+    try:
+        yield tmp
+        if path.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old.", dir=parent))
+            os.replace(path, old / "x")
+            os.replace(tmp, path)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, path)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
