@@ -1,0 +1,352 @@
+"""Block-Hankel, multi-trial (mosaic) Hankel and Page matrices that respect trials and masks.
+
+A window ``w`` of shape ``(T, c)`` is vectorised time-major, ``w.reshape(-1) = [w_0; w_1; ...; w_{T-1}]``, so the
+rows of a depth-``L`` block-Hankel matrix are grouped in time blocks: block ``t`` is rows ``[t*c, (t+1)*c)``.
+
+    H_L(w) = [ w_0      w_1    ...  w_{T-L}  ]
+             [ w_1      w_2    ...  w_{T-L+1}]
+             [ ...                            ]
+             [ w_{L-1}  w_L    ...  w_{T-1}  ]          shape (c*L, T-L+1)
+
+Every matrix here is built from strided views (:func:`numpy.lib.stride_tricks.sliding_window_view`): there is no
+Python loop over columns, only over segments. The multi-trial forms concatenate per-segment blocks, with segments
+from :meth:`Session.segments`, so no column spans a trial boundary or a masked sample.
+
+:func:`row_space_factor` compresses a long data matrix exactly: it returns a lower-triangular ``F`` with
+``H Hᵀ = F Fᵀ`` (``H = F Qᵀ`` with orthonormal ``Q``), computed segment by segment so the full matrix is never held.
+"""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+from .exceptions import SessionError
+
+__all__ = [
+    "block_hankel",
+    "page_matrix",
+    "mosaic_hankel",
+    "mosaic_page",
+    "hankel_column_count",
+    "session_hankel",
+    "session_page",
+    "row_space_factor",
+    "combine_factors",
+]
+
+
+def _as_signal(w, name: str = "w") -> np.ndarray:
+    arr = np.asarray(w, dtype=np.float64)
+    if arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2:
+        raise SessionError(
+            f"{name} must be a 2-D time-major array (n_samples, n_channels); got shape {arr.shape}. "
+            "Reshape it so that rows are samples."
+        )
+    return arr
+
+
+def _check_depth(depth) -> int:
+    if isinstance(depth, (bool, np.bool_)) or int(depth) != depth or int(depth) < 1:
+        raise SessionError(f"the Hankel depth must be a whole number of samples >= 1; got {depth!r}.")
+    return int(depth)
+
+
+def _check_finite(w: np.ndarray, name: str, offset: int = 0) -> None:
+    bad = ~np.isfinite(w)
+    if bad.any():
+        row = int(np.nonzero(bad.any(axis=1))[0][0]) + offset
+        raise SessionError(
+            f"{name} holds NaN or infinite values at sample {row}, inside a segment used for the Hankel matrix. "
+            "Mark those samples invalid (mask) so that no column uses them."
+        )
+
+
+def _hankel_view(w: np.ndarray, depth: int) -> np.ndarray:
+    """The (T-L+1, L, c) strided view whose row j is the window w[j:j+L]."""
+    return sliding_window_view(w, depth, axis=0).transpose(0, 2, 1)
+
+
+def block_hankel(w, depth: int) -> np.ndarray:
+    """Block-Hankel matrix of depth ``depth`` of one contiguous signal.
+
+    Parameters
+    ----------
+    w : array_like, shape (n_samples, n_channels)
+        A contiguous, finite signal (one segment). A 1-D array is one channel.
+    depth : int
+        Number of time blocks per column, ``L >= 1``.
+
+    Returns
+    -------
+    H : ndarray, shape (n_channels * depth, n_samples - depth + 1), float64
+        Column ``j`` is ``w[j:j+depth].reshape(-1)`` (time-major).
+
+    Raises
+    ------
+    SessionError
+        If ``w`` is not 2-D, holds non-finite values, or is shorter than ``depth``.
+
+    Examples
+    --------
+    >>> block_hankel(np.arange(4.0), 2)
+    array([[0., 1., 2.],
+           [1., 2., 3.]])
+    """
+    w = _as_signal(w)
+    depth = _check_depth(depth)
+    if w.shape[0] < depth:
+        raise SessionError(
+            f"a Hankel matrix of depth {depth} needs at least {depth} samples; got {w.shape[0]}. "
+            "Use a smaller depth (shorter past window or horizon) or a longer segment."
+        )
+    _check_finite(w, "the signal")
+    k = w.shape[0] - depth + 1
+    return np.ascontiguousarray(_hankel_view(w, depth).reshape(k, depth * w.shape[1]).T)
+
+
+def page_matrix(w, depth: int) -> np.ndarray:
+    """Page matrix of depth ``depth``: like :func:`block_hankel` but with non-overlapping columns.
+
+    Parameters
+    ----------
+    w : array_like, shape (n_samples, n_channels)
+    depth : int
+
+    Returns
+    -------
+    P : ndarray, shape (n_channels * depth, n_samples // depth)
+        Column ``j`` is ``w[j*depth:(j+1)*depth].reshape(-1)``; trailing samples that do not fill a column are
+        dropped.
+
+    Raises
+    ------
+    SessionError
+        As :func:`block_hankel`.
+
+    References
+    ----------
+    Damen A.A.H., Van den Hof P.M.J., Hajdasinski A.K. (1982), "Approximate realization based on an input-output
+    data set", Systems & Control Letters (the Page-matrix form of the data matrix).
+
+    Examples
+    --------
+    >>> page_matrix(np.arange(5.0), 2)
+    array([[0., 2.],
+           [1., 3.]])
+    """
+    w = _as_signal(w)
+    depth = _check_depth(depth)
+    if w.shape[0] < depth:
+        raise SessionError(
+            f"a Page matrix of depth {depth} needs at least {depth} samples; got {w.shape[0]}. "
+            "Use a smaller depth or a longer segment."
+        )
+    k = w.shape[0] // depth
+    used = w[: k * depth]
+    _check_finite(used, "the signal")
+    return np.ascontiguousarray(used.reshape(k, depth * w.shape[1]).T)
+
+
+def _check_segments(segments, n_samples: int) -> list[tuple[int, int]]:
+    if segments is None:
+        return [(0, n_samples)]
+    out = []
+    for seg in segments:
+        a, b = (int(v) for v in seg)
+        if not 0 <= a < b <= n_samples:
+            raise SessionError(
+                f"segment [{a}, {b}) is empty or outside the {n_samples} samples of the signal; segments must be "
+                "half-open ranges inside it (use Session.segments())."
+            )
+        out.append((a, b))
+    return out
+
+
+def hankel_column_count(segments: Sequence[tuple[int, int]], depth: int, *, page: bool = False) -> int:
+    """Number of columns of the mosaic Hankel (or Page) matrix of depth ``depth`` over ``segments``."""
+    depth = _check_depth(depth)
+    lengths = np.array([b - a for a, b in segments], dtype=np.int64)
+    if page:
+        return int((lengths // depth).sum())
+    return int(np.clip(lengths - depth + 1, 0, None).sum())
+
+
+def _mosaic(w, depth, segments, builder, kind):
+    w = _as_signal(w)
+    depth = _check_depth(depth)
+    segments = _check_segments(segments, w.shape[0])
+    used = [(a, b) for a, b in segments if b - a >= depth]
+    if not used:
+        longest = max(b - a for a, b in segments) if segments else 0
+        raise SessionError(
+            f"a {kind} matrix of depth {depth} needs a valid segment of at least {depth} samples; the longest "
+            f"is {longest}. Shorten the past window or horizon, or record longer trials with fewer gaps."
+        )
+    for a, b in used:
+        _check_finite(w[a:b], "the signal", offset=a)
+    return np.concatenate([builder(w[a:b], depth) for a, b in used], axis=1)
+
+
+def mosaic_hankel(w, depth: int, segments: Sequence[tuple[int, int]] | None = None) -> np.ndarray:
+    """Multi-trial (mosaic) Hankel matrix: per-segment block-Hankel matrices side by side.
+
+    Parameters
+    ----------
+    w : array_like, shape (n_samples, n_channels)
+        The whole recording; samples outside ``segments`` are never read (they may be NaN).
+    depth : int
+    segments : sequence of (int, int), optional
+        Half-open ranges ``[start, stop)`` of valid in-trial samples (e.g. ``Session.segments()``); segments
+        shorter than ``depth`` contribute no column. Default: the whole signal as one segment.
+
+    Returns
+    -------
+    H : ndarray, shape (n_channels * depth, n_columns)
+        ``n_columns = sum(max(len_i - depth + 1, 0))``.
+
+    Raises
+    ------
+    SessionError
+        If no segment is long enough, a segment is outside the signal, or a used sample is not finite.
+
+    References
+    ----------
+    van Waarde H.J., De Persis C., Camlibel M.K., Tesi P. (2020), "Willems' fundamental lemma for state-space
+    systems and its extension to multiple datasets", IEEE Control Systems Letters 4:602.
+
+    Examples
+    --------
+    >>> w = np.array([0.0, 1.0, 2.0, np.nan, 4.0, 5.0])
+    >>> mosaic_hankel(w, 2, [(0, 3), (4, 6)])
+    array([[0., 1., 4.],
+           [1., 2., 5.]])
+    """
+    return _mosaic(w, depth, segments, block_hankel, "Hankel")
+
+
+def mosaic_page(w, depth: int, segments: Sequence[tuple[int, int]] | None = None) -> np.ndarray:
+    """Multi-trial Page matrix: per-segment Page matrices side by side (see :func:`mosaic_hankel`)."""
+    return _mosaic(w, depth, segments, page_matrix, "Page")
+
+
+def _session_signal(session, which: str) -> np.ndarray:
+    if which == "u":
+        return np.asarray(session.u)
+    if which == "y":
+        return np.asarray(session.y)
+    if which == "uy":
+        return np.concatenate([session.u, session.y], axis=1)
+    raise SessionError(f"which must be 'u', 'y' or 'uy'; got {which!r}.")
+
+
+def session_hankel(session, depth: int, *, which: str = "u") -> np.ndarray:
+    """Mosaic Hankel matrix of a session's inputs (``"u"``), outputs (``"y"``) or both per sample (``"uy"``).
+
+    Columns come only from ``session.segments(depth)``: never across a trial boundary or a masked sample.
+    With ``"uy"`` each time block holds ``[u_t; y_t]`` (``n_inputs + n_outputs`` rows).
+    """
+    depth = _check_depth(depth)
+    return mosaic_hankel(_session_signal(session, which), depth, session.segments(1))
+
+
+def session_page(session, depth: int, *, which: str = "u") -> np.ndarray:
+    """Mosaic Page matrix of a session (see :func:`session_hankel`)."""
+    depth = _check_depth(depth)
+    return mosaic_page(_session_signal(session, which), depth, session.segments(1))
+
+
+def _r_factor(M: np.ndarray) -> np.ndarray:
+    """Upper-triangular R of the economic QR of ``M`` (k, c); shape (min(k, c), c)."""
+    return np.linalg.qr(M, mode="r")
+
+
+def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
+    """Combine row-space factors of column blocks into the factor of the blocks side by side.
+
+    If ``H_i H_iᵀ = F_i F_iᵀ`` then ``[H_1 H_2 ...]`` has the factor ``F`` with ``F Fᵀ = Σ F_i F_iᵀ``; it is
+    obtained from a QR of the stacked ``F_iᵀ`` (no normal equations, so no squared condition number).
+
+    Parameters
+    ----------
+    factors : sequence of ndarray, each shape (n_rows, r_i)
+    n_rows : int
+        Rows of the data matrix (used when ``factors`` is empty: the result then has 0 columns).
+
+    Returns
+    -------
+    F : ndarray, shape (n_rows, min(n_rows, Σ r_i)), lower triangular.
+    """
+    parts = [f.T for f in factors if f.shape[1]]
+    if not parts:
+        return np.zeros((n_rows, 0))
+    return np.ascontiguousarray(_r_factor(np.concatenate(parts, axis=0)).T)
+
+
+def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | None = None,
+                     *, max_columns: int = 4096) -> tuple[np.ndarray, int]:
+    """Exact compression of a (mosaic) data matrix to its row-space factor, without forming the whole matrix.
+
+    The data matrix stacks the depth-``depth`` mosaic Hankel matrices of the signals in ``blocks``,
+    ``H = [H_L(blocks[0]); H_L(blocks[1]); ...]``. The result ``F`` is lower triangular with ``H = F Qᵀ`` for some
+    ``Q`` with orthonormal columns (an LQ factorisation), so ``H Hᵀ = F Fᵀ`` and every quadratic function of
+    ``H g`` over ``g`` can be written in ``h = Qᵀ g`` with ``F`` in place of ``H``.
+
+    Parameters
+    ----------
+    blocks : sequence of array_like, each shape (n_samples, c_i)
+        Signals on a common sample grid (e.g. ``[u, y]``).
+    depth : int
+    segments : sequence of (int, int), optional
+        Valid segments (default: the whole grid); shorter ones are skipped.
+    max_columns : int, default 4096
+        Columns assembled at once; bounds the working memory to about ``max_columns * n_rows`` floats.
+
+    Returns
+    -------
+    F : ndarray, shape (n_rows, min(n_rows, n_columns)), with ``n_rows = depth * Σ c_i``.
+    n_columns : int
+        Columns of the (never formed) data matrix.
+
+    Raises
+    ------
+    SessionError
+        As :func:`mosaic_hankel`.
+
+    Notes
+    -----
+    Tall-skinny QR: each chunk of columns is reduced to its R factor, then the R factors are combined by one more
+    QR; the memory is ``O(n_rows²)`` plus one chunk, independent of the number of samples.
+
+    References
+    ----------
+    Golub G.H., Van Loan C.F. (2013), Matrix Computations, 4th ed., section 5.2 (QR factorisation).
+    """
+    sigs = [_as_signal(b, f"blocks[{i}]") for i, b in enumerate(blocks)]
+    n = sigs[0].shape[0]
+    if any(s.shape[0] != n for s in sigs):
+        raise SessionError(f"all signals must have the same number of samples; got {[s.shape[0] for s in sigs]}.")
+    depth = _check_depth(depth)
+    segments = _check_segments(segments, n)
+    n_rows = depth * sum(s.shape[1] for s in sigs)
+    step = max(int(max_columns), 1)
+    factors, total = [], 0
+    for a, b in segments:
+        for c0 in range(a, b - depth + 1, step):
+            c1 = min(c0 + step + depth - 1, b)
+            chunk = np.concatenate([block_hankel(s[c0:c1], depth).T for s in sigs], axis=1)
+            total += chunk.shape[0]
+            factors.append(_r_factor(chunk).T)
+            if len(factors) > 8:
+                factors = [combine_factors(factors, n_rows)]
+    if total == 0:
+        longest = max((b - a for a, b in segments), default=0)
+        raise SessionError(
+            f"a data matrix of depth {depth} needs a valid segment of at least {depth} samples; the longest is "
+            f"{longest}. Shorten the past window or horizon, or record longer trials with fewer gaps."
+        )
+    return combine_factors(factors, n_rows), total
