@@ -1,0 +1,658 @@
+"""Declared stimulation limits: amplitude, slew, energy budget, charge density per phase, output bounds.
+
+A :class:`StimLimits` holds what a user declares as safe for one set of stimulation inputs. Input limits are
+*hard*: no plan stimsteer returns exceeds them. Output bounds are *soft* (a controller keeps a predicted output
+below a level when it can, and reports by how much it could not).
+
+Limits are declared in code (``StimLimits(...)`` or :meth:`StimLimits.from_dict`) or in a small TOML file of our
+own layout read by :func:`load_limits`::
+
+    # every key is optional except the per-input amplitude bounds
+    [charge_density]              # the Shannon charge-density rule, turned into an amplitude bound
+    pulse_width_us = 90.0         # duration of one phase, µs (per-input values override it)
+    electrode_area_cm2 = 0.06     # geometric contact area, cm² (per-input values override it)
+    shannon_k = 1.75              # default 1.75, must stay below 1.85
+
+    [energy]
+    budget_ua2 = 2.0e5            # Σ u² over the whole planning horizon, all inputs, µA²
+
+    [inputs.site_a]               # one table per stimulation input; the name matches the model's input name
+    amplitude_min_ua = 0.0
+    amplitude_max_ua = 150.0
+    slew_max_ua = 25.0            # largest change from one sample to the next, µA
+    pulse_width_us = 60.0         # optional override of [charge_density]
+    electrode_area_cm2 = 0.02     # optional override of [charge_density]
+
+    [outputs.region_2]            # optional soft bounds on a recorded output, in that output's units
+    max = 1.5
+    min = -1.5
+
+Inputs keep the order of the file; :meth:`StimLimits.aligned` matches them to a model's input names.
+
+Charge density (Shannon 1992): with charge per phase ``Q = I · PW`` (µC) and charge density ``D = Q / A``
+(µC/cm²/phase), the rule ``log10(D) + log10(Q) <= k`` gives ``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence
+``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue damage at ``k >= 1.85``; declaring ``k`` at or above it is
+refused. The default ``k = 1.75`` is a margin below that threshold (common practice, no source).
+
+Decisions (documented, enforced by validation)
+    * Zero stimulation must lie inside every input's amplitude bounds: it is the safe fallback when a plan cannot
+      be solved. Limits that exclude zero raise :class:`LimitsError`.
+    * ``amplitude_min_ua <= amplitude_max_ua``; an input with both bounds 0 is switched off; at least one input
+      must be able to stimulate.
+    * Slew limits are positive (``inf`` means none for that input); the energy budget is positive and finite.
+    * Pulse width and electrode area come together (the rule needs both) and are positive and finite.
+    * Output bounds: ``min < max`` where both are given; ``±inf`` means no bound.
+
+References
+----------
+Shannon R.V. (1992), A model of safe levels for electrical stimulation, IEEE Trans. Biomed. Eng. 39(4):424–426.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..sysid.exceptions import LimitsError
+
+__all__ = [
+    "StimLimits",
+    "load_limits",
+    "shannon_k",
+    "max_charge_uc",
+    "max_amplitude_ua",
+    "DEFAULT_SHANNON_K",
+    "SHANNON_DAMAGE_K",
+]
+
+#: Default Shannon k: a margin below the damage threshold (common practice, no source).
+DEFAULT_SHANNON_K = 1.75
+#: Shannon (1992): tissue damage was seen at k >= 1.85.
+SHANNON_DAMAGE_K = 1.85
+
+_INPUT_KEYS = {"amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "pulse_width_us", "electrode_area_cm2"}
+_CHARGE_KEYS = {"pulse_width_us", "electrode_area_cm2", "shannon_k"}
+_TOP_KEYS = {"charge_density", "energy", "inputs", "outputs"}
+
+
+# ---------------------------------------------------------------------------------------------------- Shannon
+def _positive(name, value):
+    a = np.asarray(value, dtype=np.float64)
+    if not np.all(np.isfinite(a)) or np.any(a <= 0):
+        raise LimitsError(f"{name} must be positive and finite; got {value!r}.")
+    return a
+
+
+def shannon_k(charge_uc, area_cm2):
+    """Shannon's ``k = log10(D) + log10(Q)`` of a charge per phase on an electrode.
+
+    Parameters
+    ----------
+    charge_uc : float or ndarray
+        Charge per phase ``Q``, µC/phase.
+    area_cm2 : float or ndarray
+        Geometric electrode area ``A``, cm².
+
+    Returns
+    -------
+    float or ndarray
+        ``log10(Q / A) + log10(Q)``.
+
+    Raises
+    ------
+    LimitsError
+        If a charge or area is not positive and finite.
+
+    References
+    ----------
+    Shannon R.V. (1992), A model of safe levels for electrical stimulation, IEEE TBME 39(4):424–426.
+
+    Examples
+    --------
+    >>> round(float(shannon_k(1.8, 0.06)), 3)  # 30 µC/cm² on a 0.06 cm² contact
+    1.732
+    """
+    q = _positive("charge_uc", charge_uc)
+    a = _positive("area_cm2", area_cm2)
+    k = np.log10(q / a) + np.log10(q)
+    return float(k) if k.ndim == 0 else k
+
+
+def max_charge_uc(k, area_cm2):
+    """Largest charge per phase (µC) allowed by Shannon's rule ``log10(Q/A) + log10(Q) <= k``.
+
+    Notes
+    -----
+    ``2 log10(Q) − log10(A) <= k``  ⇔  ``Q <= sqrt(10**k · A)``.
+
+    Examples
+    --------
+    >>> round(float(max_charge_uc(1.85, 0.06)), 3)
+    2.061
+    """
+    k = np.asarray(k, dtype=np.float64)
+    if not np.all(np.isfinite(k)):
+        raise LimitsError(f"shannon_k must be finite; got {k!r}.")
+    a = _positive("area_cm2", area_cm2)
+    q = np.sqrt(10.0**k * a)
+    return float(q) if q.ndim == 0 else q
+
+
+def max_amplitude_ua(k, area_cm2, pulse_width_us):
+    """Largest current amplitude (µA) whose charge per phase ``Q = I · PW`` meets Shannon's rule.
+
+    Parameters
+    ----------
+    k : float
+        Shannon's k.
+    area_cm2 : float or ndarray
+        Electrode area, cm².
+    pulse_width_us : float or ndarray
+        Duration of one phase, µs.
+
+    Returns
+    -------
+    float or ndarray
+        ``sqrt(10**k · A) / PW`` converted to µA (1 µC / 1 µs = 10⁶ µA).
+
+    Examples
+    --------
+    >>> round(float(max_amplitude_ua(1.85, 0.06, 100.0)), 1)  # 2.061 µC in 100 µs
+    20609.9
+    """
+    pw = _positive("pulse_width_us", pulse_width_us)
+    i = max_charge_uc(k, area_cm2) / pw * 1e6
+    return float(i) if np.ndim(i) == 0 else i
+
+
+# ---------------------------------------------------------------------------------------------------- limits
+def _vec(name, value, m, *, allow_inf=False):
+    a = np.asarray(value, dtype=np.float64)
+    if a.ndim == 0:
+        a = np.full(m, float(a))
+    if a.shape != (m,):
+        raise LimitsError(f"{name} must be a number or one value per input ({m}); got shape {a.shape}.")
+    bad = np.isnan(a) if allow_inf else ~np.isfinite(a)
+    if bad.any():
+        kind = "NaN" if allow_inf else "NaN or infinite"
+        raise LimitsError(f"{name} holds {kind} values at inputs {np.flatnonzero(bad).tolist()}; give numbers.")
+    a = a.copy()
+    a.setflags(write=False)
+    return a
+
+
+@dataclass(frozen=True, kw_only=True)
+class StimLimits:
+    """Hard limits on stimulation inputs and soft bounds on outputs (see the module docstring for the rules).
+
+    Parameters
+    ----------
+    amplitude_min_ua, amplitude_max_ua : float or ndarray, shape (n_inputs,)
+        Per-input amplitude bounds, µA. Zero must lie inside them.
+    n_inputs : int, optional
+        Number of inputs; inferred from the bound arrays (needed only when every array argument is a scalar).
+    slew_max_ua : float or ndarray, shape (n_inputs,), optional
+        Largest change of an input between consecutive samples, µA; ``inf`` for no limit on an input.
+    energy_budget_ua2 : float, optional
+        Largest ``Σ_k Σ_i u_ik²`` over one planning horizon, µA².
+    pulse_width_us, electrode_area_cm2 : float or ndarray, shape (n_inputs,), optional
+        Phase duration (µs) and electrode area (cm²) for the Shannon charge-density bound; give both or neither.
+    shannon_k : float, default 1.75
+        Shannon's k for the charge bound; must be below 1.85.
+    output_min, output_max : ndarray, shape (n_outputs,), optional
+        Soft output bounds in the outputs' units; ``-inf`` / ``inf`` for none.
+    input_names : tuple of str, optional
+        Input names, to match a model's inputs (:meth:`aligned`).
+    output_names : tuple of str, optional
+        Names of the outputs the output bounds refer to.
+
+    Raises
+    ------
+    LimitsError
+        When limits are malformed, inconsistent or impossible; the message names the limit.
+
+    Examples
+    --------
+    >>> lim = StimLimits(amplitude_min_ua=[-50, 0], amplitude_max_ua=[50, 80], pulse_width_us=200.0,
+    ...                  electrode_area_cm2=2e-6)
+    >>> lo, hi = lim.input_bounds()
+    >>> bool(hi[1] < 80)  # the charge-density rule is tighter than the declared 80 µA
+    True
+    """
+
+    amplitude_min_ua: np.ndarray
+    amplitude_max_ua: np.ndarray
+    n_inputs: int = None
+    slew_max_ua: np.ndarray = None
+    energy_budget_ua2: float = None
+    pulse_width_us: np.ndarray = None
+    electrode_area_cm2: np.ndarray = None
+    shannon_k: float = DEFAULT_SHANNON_K
+    output_min: np.ndarray = None
+    output_max: np.ndarray = None
+    input_names: tuple = None
+    output_names: tuple = None
+
+    def __post_init__(self):
+        m = self._infer_n()
+        s = object.__setattr__
+        s(self, "n_inputs", m)
+        lo = _vec("amplitude_min_ua", self.amplitude_min_ua, m)
+        hi = _vec("amplitude_max_ua", self.amplitude_max_ua, m)
+        s(self, "amplitude_min_ua", lo)
+        s(self, "amplitude_max_ua", hi)
+        self._check_amplitudes(lo, hi)
+        if self.slew_max_ua is not None:
+            slew = _vec("slew_max_ua", self.slew_max_ua, m, allow_inf=True)
+            if np.any(slew <= 0):
+                raise LimitsError(
+                    f"slew_max_ua must be positive (inf for no limit); got {slew.tolist()} µA per step. A slew "
+                    "limit of 0 would freeze the input; narrow its amplitude bounds to 0 instead."
+                )
+            s(self, "slew_max_ua", slew)
+        if self.energy_budget_ua2 is not None:
+            e = float(self.energy_budget_ua2)
+            if not math.isfinite(e) or e <= 0:
+                raise LimitsError(
+                    f"energy_budget_ua2 must be positive and finite (Σ u² over a horizon, µA²); got {e}. With a "
+                    "budget of 0 no input could ever be nonzero; remove the budget or give a positive one."
+                )
+            s(self, "energy_budget_ua2", e)
+        self._set_charge(m)
+        self._set_outputs()
+        self._set_names(m)
+
+    # ------------------------------------------------------------------------------------------ validation
+    def _infer_n(self) -> int:
+        sizes = {int(np.size(a)) for a in (self.amplitude_min_ua, self.amplitude_max_ua, self.slew_max_ua,
+                                            self.pulse_width_us, self.electrode_area_cm2)
+                 if a is not None and np.ndim(a) > 0}
+        if self.input_names is not None:
+            sizes.add(len(tuple(self.input_names)))
+        if self.n_inputs is not None:
+            sizes.add(int(self.n_inputs))
+        if len(sizes) > 1:
+            raise LimitsError(f"the limits disagree on the number of inputs: got sizes {sorted(sizes)}. Give one "
+                              "value per input everywhere (or a single number for all inputs).")
+        if not sizes:
+            raise LimitsError("cannot tell the number of inputs: give n_inputs or per-input arrays of bounds.")
+        m = sizes.pop()
+        if m < 1:
+            raise LimitsError(f"limits need at least one input; got {m}.")
+        return m
+
+    def _check_amplitudes(self, lo, hi):
+        bad = np.flatnonzero(lo > hi)
+        if bad.size:
+            i = int(bad[0])
+            raise LimitsError(
+                f"amplitude_min_ua > amplitude_max_ua for input {self._label(i)}: {lo[i]:g} > {hi[i]:g} µA. "
+                "Swap or correct the bounds."
+            )
+        bad = np.flatnonzero((lo > 0) | (hi < 0))
+        if bad.size:
+            i = int(bad[0])
+            raise LimitsError(
+                f"zero stimulation must lie inside the amplitude bounds (it is the safe fallback), but input "
+                f"{self._label(i)} has [{lo[i]:g}, {hi[i]:g}] µA. Widen the bounds to include 0."
+            )
+        if np.all((lo == 0) & (hi == 0)):
+            raise LimitsError("every input has amplitude bounds [0, 0]: nothing can be stimulated. Give at least "
+                              "one input a nonzero range.")
+
+    def _label(self, i: int) -> str:
+        names = self.input_names
+        return f"{i} ({names[i]!r})" if names is not None and i < len(names) else str(i)
+
+    def _set_charge(self, m):
+        s = object.__setattr__
+        k = float(self.shannon_k)
+        if not math.isfinite(k):
+            raise LimitsError(f"shannon_k must be a finite number; got {self.shannon_k!r}.")
+        if k >= SHANNON_DAMAGE_K:
+            raise LimitsError(
+                f"shannon_k = {k:g} is at or above {SHANNON_DAMAGE_K}, where Shannon (1992) reports tissue damage. "
+                f"Declare a smaller k (the default is {DEFAULT_SHANNON_K})."
+            )
+        s(self, "shannon_k", k)
+        pw, area = self.pulse_width_us, self.electrode_area_cm2
+        if (pw is None) != (area is None):
+            given, missing = ("pulse_width_us", "electrode_area_cm2") if area is None else (
+                "electrode_area_cm2", "pulse_width_us")
+            raise LimitsError(f"the charge-density rule needs both pulse width and electrode area; got {given} "
+                              f"without {missing}. Give both, or neither to skip the rule.")
+        if pw is not None:
+            pw, area = _vec("pulse_width_us", pw, m), _vec("electrode_area_cm2", area, m)
+            for name, a in (("pulse_width_us", pw), ("electrode_area_cm2", area)):
+                if np.any(a <= 0):
+                    raise LimitsError(f"{name} must be positive; got {a.tolist()}.")
+            s(self, "pulse_width_us", pw)
+            s(self, "electrode_area_cm2", area)
+
+    def _set_outputs(self):
+        s = object.__setattr__
+        lo, hi = self.output_min, self.output_max
+        if lo is None and hi is None:
+            return
+        p = int(np.size(lo if lo is not None else hi))
+        lo = _vec("output_min", -np.inf if lo is None else lo, p, allow_inf=True)
+        hi = _vec("output_max", np.inf if hi is None else hi, p, allow_inf=True)
+        bad = np.flatnonzero(lo >= hi)
+        if bad.size:
+            i = int(bad[0])
+            raise LimitsError(f"output_min must be below output_max; output {i} has min {lo[i]:g} >= max "
+                              f"{hi[i]:g}. Correct or drop that output bound.")
+        if np.any(lo == np.inf) or np.any(hi == -np.inf):
+            raise LimitsError("output_min cannot be +inf and output_max cannot be -inf; use -inf / inf for none.")
+        s(self, "output_min", lo)
+        s(self, "output_max", hi)
+
+    def _set_names(self, m):
+        s = object.__setattr__
+        for attr, n in (("input_names", m), ("output_names", None if self.output_min is None else
+                                                              self.output_min.size)):
+            names = getattr(self, attr)
+            if names is None:
+                continue
+            names = tuple(str(x) for x in names)
+            if n is None:
+                raise LimitsError(f"{attr} given without output bounds; give output_min/output_max too.")
+            if len(names) != n or len(set(names)) != n:
+                raise LimitsError(f"{attr} must hold {n} unique names; got {list(names)}.")
+            s(self, attr, names)
+
+    # ------------------------------------------------------------------------------------------ derived
+    def charge_bound_ua(self):
+        """Largest amplitude per input allowed by the charge-density rule, µA, shape (n_inputs,); None without it."""
+        if self.pulse_width_us is None:
+            return None
+        return max_amplitude_ua(self.shannon_k, self.electrode_area_cm2, self.pulse_width_us)
+
+    def input_bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        """The tightest amplitude window per input: declared bounds ∩ ``[−I_charge, I_charge]``.
+
+        Returns
+        -------
+        lo, hi : ndarray, shape (n_inputs,)
+            µA; ``lo <= 0 <= hi`` always holds.
+        """
+        lo, hi = self.amplitude_min_ua.copy(), self.amplitude_max_ua.copy()
+        q = self.charge_bound_ua()
+        if q is not None:
+            lo, hi = np.maximum(lo, -q), np.minimum(hi, q)
+        return lo, hi
+
+    def bound_sources(self) -> tuple[tuple[str, ...], tuple[str, ...]]:
+        """Which rule sets each input's lower and upper bound: ``"amplitude"`` or ``"charge_density"``."""
+        q = self.charge_bound_ua()
+        if q is None:
+            return ("amplitude",) * self.n_inputs, ("amplitude",) * self.n_inputs
+        lo_src = tuple("charge_density" if -q[i] > self.amplitude_min_ua[i] else "amplitude"
+                       for i in range(self.n_inputs))
+        hi_src = tuple("charge_density" if q[i] < self.amplitude_max_ua[i] else "amplitude"
+                       for i in range(self.n_inputs))
+        return lo_src, hi_src
+
+    def safe_inputs(self, n_steps: int, last_input=None) -> np.ndarray:
+        """The documented safe fallback: go to zero stimulation as fast as the slew limit allows.
+
+        Each step moves every input towards 0 by at most its slew limit, inside its amplitude window. This
+        sequence has, at every step and for every input, the smallest magnitude any slew-respecting sequence can
+        reach, so it also has the least energy ``Σ u²``: when it breaks the energy budget, no plan can meet it.
+        When ``last_input`` lies outside the amplitude window the amplitude bound takes precedence over the slew
+        limit (the first sample is clipped into the window at once).
+
+        Parameters
+        ----------
+        n_steps : int
+            Number of samples.
+        last_input : ndarray, shape (n_inputs,), optional
+            The input applied just before, µA; default zero.
+
+        Returns
+        -------
+        ndarray, shape (n_steps, n_inputs)
+            µA.
+        """
+        lo, hi = self.input_bounds()
+        prev = np.zeros(self.n_inputs) if last_input is None else np.asarray(last_input, np.float64).copy()
+        slew = np.full(self.n_inputs, np.inf) if self.slew_max_ua is None else self.slew_max_ua
+        out = np.empty((int(n_steps), self.n_inputs))
+        for k in range(out.shape[0]):
+            a, b = np.maximum(lo, prev - slew), np.minimum(hi, prev + slew)
+            empty = a > b
+            a[empty], b[empty] = lo[empty], hi[empty]
+            prev = np.clip(0.0, a, b)
+            out[k] = prev
+        return out
+
+    def violations(self, inputs, last_input=None, *, rtol: float = 1e-9) -> dict:
+        """Count the samples of an input sequence that break a hard limit.
+
+        Parameters
+        ----------
+        inputs : ndarray, shape (n_steps, n_inputs)
+            µA.
+        last_input : ndarray, shape (n_inputs,), optional
+            The input applied before ``inputs[0]``, for the slew limit of the first sample; without it the first
+            sample's slew is not checked.
+        rtol : float, default 1e-9
+            Relative allowance for floating-point rounding in slew differences and the energy sum (amplitude
+            bounds are checked exactly).
+
+        Returns
+        -------
+        dict
+            ``{"amplitude": int, "slew": int, "energy_budget": int}`` (the energy count is 0 or 1: the budget
+            applies to the whole sequence).
+        """
+        u = np.asarray(inputs, dtype=np.float64).reshape(-1, self.n_inputs)
+        lo, hi = self.input_bounds()
+        out = {"amplitude": int(np.sum((u < lo) | (u > hi) | ~np.isfinite(u))), "slew": 0, "energy_budget": 0}
+        if self.slew_max_ua is not None:
+            seq = u if last_input is None else np.vstack([np.asarray(last_input, np.float64).reshape(1, -1), u])
+            s = self.slew_max_ua
+            out["slew"] = int(np.sum(np.abs(np.diff(seq, axis=0)) > s + rtol * np.maximum(1.0, s)))
+        if self.energy_budget_ua2 is not None:
+            out["energy_budget"] = int(np.sum(u**2) > self.energy_budget_ua2 * (1.0 + rtol))
+        return out
+
+    @property
+    def has_output_bounds(self) -> bool:
+        return self.output_min is not None and bool(
+            np.any(np.isfinite(self.output_min)) or np.any(np.isfinite(self.output_max)))
+
+    def aligned(self, input_names, output_names) -> "StimLimits":
+        """These limits ordered like a model's inputs, with output bounds spread over the model's outputs.
+
+        Parameters
+        ----------
+        input_names : sequence of str
+            The model's input names, in its order.
+        output_names : sequence of str
+            The model's output names, in its order.
+
+        Returns
+        -------
+        StimLimits
+            With ``n_inputs == len(input_names)`` and (when output bounds exist) arrays over all outputs, ``±inf``
+            for unbounded ones.
+
+        Raises
+        ------
+        LimitsError
+            If the names do not match (limits for an unknown input or output, or a model input without limits),
+            or if unnamed limits have the wrong size.
+        """
+        input_names, output_names = tuple(input_names), tuple(output_names)
+        changes = {}
+        if self.input_names is None:
+            if self.n_inputs != len(input_names):
+                raise LimitsError(f"the limits are for {self.n_inputs} inputs but the model has "
+                                  f"{len(input_names)} ({list(input_names)}). Declare one limit per model input.")
+        else:
+            missing = [n for n in input_names if n not in self.input_names]
+            extra = [n for n in self.input_names if n not in input_names]
+            if missing or extra:
+                raise LimitsError(f"the limits' inputs {list(self.input_names)} do not match the model's inputs "
+                                  f"{list(input_names)} (no limits for {missing}; unknown {extra}). Name one "
+                                  "[inputs.<name>] table per model input.")
+            idx = [self.input_names.index(n) for n in input_names]
+            for f in ("amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "pulse_width_us",
+                      "electrode_area_cm2"):
+                v = getattr(self, f)
+                changes[f] = None if v is None else v[idx]
+            changes["input_names"] = input_names
+        changes.update(self._aligned_outputs(output_names))
+        return dataclasses.replace(self, **changes)
+
+    def _aligned_outputs(self, output_names):
+        p = len(output_names)
+        if self.output_min is None:
+            return {}
+        if self.output_names is None:
+            if self.output_min.size != p:
+                raise LimitsError(f"the output bounds are for {self.output_min.size} outputs but the model has {p}."
+                                  " Give one bound per output or name the outputs.")
+            return {}
+        unknown = [n for n in self.output_names if n not in output_names]
+        if unknown:
+            raise LimitsError(f"output bounds name outputs {unknown} that the model does not have; its outputs are "
+                              f"{list(output_names)}.")
+        lo, hi = np.full(p, -np.inf), np.full(p, np.inf)
+        for j, n in enumerate(self.output_names):
+            lo[output_names.index(n)] = self.output_min[j]
+            hi[output_names.index(n)] = self.output_max[j]
+        return {"output_min": lo, "output_max": hi, "output_names": tuple(output_names)}
+
+    # ------------------------------------------------------------------------------------------ dict / TOML
+    @classmethod
+    def from_dict(cls, d) -> "StimLimits":
+        """Limits from a nested dict in the TOML layout of the module docstring."""
+        if not isinstance(d, dict):
+            raise LimitsError(f"limits must be a table (dict); got {type(d).__name__}.")
+        _unknown("the top level", d, _TOP_KEYS)
+        charge = _table(d, "charge_density")
+        _unknown("[charge_density]", charge, _CHARGE_KEYS)
+        energy = _table(d, "energy")
+        _unknown("[energy]", energy, {"budget_ua2"})
+        inputs = _table(d, "inputs")
+        if not inputs:
+            raise LimitsError("the limits declare no inputs; add one [inputs.<name>] table per stimulation input "
+                              "with amplitude_min_ua and amplitude_max_ua.")
+        cols = {k: [] for k in _INPUT_KEYS}
+        for name, spec in inputs.items():
+            if not isinstance(spec, dict):
+                raise LimitsError(f"[inputs.{name}] must be a table; got {spec!r}.")
+            _unknown(f"[inputs.{name}]", spec, _INPUT_KEYS)
+            for key in ("amplitude_min_ua", "amplitude_max_ua"):
+                if key not in spec:
+                    raise LimitsError(f"[inputs.{name}] has no {key}; every input needs both amplitude bounds (µA).")
+            for key in _INPUT_KEYS:
+                default = charge.get(key) if key in _CHARGE_KEYS else None
+                cols[key].append(_number(f"inputs.{name}.{key}", spec.get(key, default)))
+        slew = cols["slew_max_ua"]
+        slew = None if all(v is None for v in slew) else [np.inf if v is None else v for v in slew]
+        charge_cols = {}
+        for key in ("pulse_width_us", "electrode_area_cm2"):
+            vals = cols[key]
+            if any(v is None for v in vals) and any(v is not None for v in vals):
+                missing = [n for n, v in zip(inputs, vals) if v is None]
+                raise LimitsError(f"{key} is given for some inputs but not for {missing}; set it in "
+                                  "[charge_density] or for every input.")
+            charge_cols[key] = None if vals[0] is None else vals
+        out_names, out_lo, out_hi = _outputs(_table(d, "outputs"))
+        return cls(
+            amplitude_min_ua=cols["amplitude_min_ua"], amplitude_max_ua=cols["amplitude_max_ua"],
+            slew_max_ua=slew, energy_budget_ua2=_number("energy.budget_ua2", energy.get("budget_ua2")),
+            shannon_k=_number("charge_density.shannon_k", charge.get("shannon_k", DEFAULT_SHANNON_K)),
+            input_names=tuple(inputs), output_names=out_names, output_min=out_lo, output_max=out_hi,
+            **charge_cols,
+        )
+
+    def to_dict(self) -> dict:
+        """A JSON-ready dict of the limits (arrays as lists, ``inf`` as None), including the derived bounds."""
+        def lst(a):
+            return None if a is None else [None if not np.isfinite(v) else float(v) for v in np.asarray(a)]
+
+        lo, hi = self.input_bounds()
+        return {
+            "input_names": list(self.input_names) if self.input_names else None,
+            "amplitude_min_ua": lst(self.amplitude_min_ua), "amplitude_max_ua": lst(self.amplitude_max_ua),
+            "slew_max_ua": lst(self.slew_max_ua), "energy_budget_ua2": self.energy_budget_ua2,
+            "pulse_width_us": lst(self.pulse_width_us), "electrode_area_cm2": lst(self.electrode_area_cm2),
+            "shannon_k": self.shannon_k, "charge_bound_ua": lst(self.charge_bound_ua()),
+            "effective_min_ua": lst(lo), "effective_max_ua": lst(hi),
+            "output_names": list(self.output_names) if self.output_names else None,
+            "output_min": lst(self.output_min), "output_max": lst(self.output_max),
+        }
+
+
+def _table(d, key):
+    v = d.get(key, {})
+    if not isinstance(v, dict):
+        raise LimitsError(f"[{key}] must be a table; got {v!r}.")
+    return v
+
+
+def _unknown(where, d, allowed):
+    extra = sorted(set(d) - set(allowed))
+    if extra:
+        raise LimitsError(f"unknown keys {extra} in {where} of the limits; allowed: {sorted(allowed)}. Check the "
+                          "spelling (units are part of the key names).")
+
+
+def _number(where, v):
+    if v is None:
+        return None
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise LimitsError(f"{where} must be a number; got {v!r}.")
+    return float(v)
+
+
+def _outputs(outputs):
+    if not outputs:
+        return None, None, None
+    names, lo, hi = [], [], []
+    for name, spec in outputs.items():
+        if not isinstance(spec, dict):
+            raise LimitsError(f"[outputs.{name}] must be a table with min and/or max; got {spec!r}.")
+        _unknown(f"[outputs.{name}]", spec, {"min", "max"})
+        if not spec:
+            raise LimitsError(f"[outputs.{name}] is empty; give min and/or max, or remove the table.")
+        names.append(str(name))
+        lo.append(_number(f"outputs.{name}.min", spec.get("min", -np.inf)))
+        hi.append(_number(f"outputs.{name}.max", spec.get("max", np.inf)))
+    return tuple(names), lo, hi
+
+
+def load_limits(path) -> StimLimits:
+    """Read limits from a TOML file in our layout (see the module docstring).
+
+    Raises
+    ------
+    LimitsError
+        If the file is not valid TOML or the limits are malformed; the message names the file and the problem.
+    FileNotFoundError
+        If the file does not exist.
+    """
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+
+    path = Path(path)
+    text = path.read_bytes()
+    try:
+        d = tomllib.loads(text.decode("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise LimitsError(f"{path} is not a valid TOML limits file: {exc}. See the layout in "
+                          "`stimsteer.control.limits`.") from None
+    try:
+        return StimLimits.from_dict(d)
+    except LimitsError as exc:
+        raise LimitsError(f"{path}: {exc}") from None
