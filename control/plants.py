@@ -129,7 +129,7 @@ def _spectral_radius(A: np.ndarray) -> float:
 
 
 # ------------------------------------------------------------------------------------------------ network
-def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, self_weight: float = 0.0,
+def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, self_weight=0.0,
                    symmetric: bool = False, signed: bool = True, require_stable: bool = True) -> np.ndarray:
     """A sparse random coupling matrix made stable by the normalisation of Gu et al. (2015).
 
@@ -143,8 +143,9 @@ def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, se
         Source of the random edges and weights.
     scale : float, default 1.0
         Positive factor applied to the normalised coupling.
-    self_weight : float, default 0.0
-        Weight added on the diagonal (a leak or persistence of each node's own activity).
+    self_weight : float or ndarray (n_nodes,), default 0.0
+        Weight added on the diagonal: each node's persistence of its own activity (one value for all nodes, or
+        one per node for nodes with different time constants).
     symmetric : bool, default False
         Undirected network: edges and weights mirrored across the diagonal.
     signed : bool, default True
@@ -155,7 +156,7 @@ def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, se
     Returns
     -------
     A : ndarray, shape (n_nodes, n_nodes)
-        ``self_weight · I + scale · A_raw / (1 + σ_max(A_raw))``, dimensionless.
+        ``diag(self_weight) + scale · A_raw / (1 + σ_max(A_raw))``, dimensionless.
 
     Raises
     ------
@@ -167,8 +168,8 @@ def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, se
     Notes
     -----
     Since ``σ_max(A_raw / (1 + σ_max(A_raw))) = σ_max / (1 + σ_max) < 1``, the result satisfies
-    ``σ_max(A) ≤ |self_weight| + scale · σ_max / (1 + σ_max) < 1`` whenever ``|self_weight| + scale ≤ 1``; the
-    spectral radius is bounded by ``σ_max``, so such a network is stable.
+    ``σ_max(A) ≤ max|self_weight| + scale · σ_max / (1 + σ_max) < 1`` whenever ``max|self_weight| + scale ≤ 1``;
+    the spectral radius is bounded by ``σ_max``, so such a network is stable.
 
     References
     ----------
@@ -186,11 +187,15 @@ def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, se
     if not 0 < density <= 1:
         raise SessionError(f"density must be in (0, 1], the probability of each edge; got {density}.")
     scale = _positive("scale", scale)
-    self_weight = float(self_weight)
-    if not np.isfinite(self_weight):
-        raise SessionError(f"self_weight must be finite; got {self_weight}.")
-    rng = np.random.default_rng(seed)
     n = int(n_nodes)
+    diag = np.asarray(self_weight, dtype=np.float64)
+    if diag.ndim == 0:
+        diag = np.full(n, float(diag))
+    if diag.shape != (n,) or not np.all(np.isfinite(diag)):
+        raise SessionError(
+            f"self_weight must be a finite number or one finite value per node, shape ({n},); got {self_weight!r}."
+        )
+    rng = np.random.default_rng(seed)
     edges = rng.random((n, n)) < density
     weights = rng.standard_normal((n, n))
     if not signed:
@@ -201,12 +206,13 @@ def random_network(n_nodes: int, *, density: float, seed, scale: float = 1.0, se
         upper = np.triu(raw, 1)
         raw = upper + upper.T
     sigma = float(np.linalg.norm(raw, 2)) if n > 1 else 0.0
-    A = self_weight * np.eye(n) + scale * raw / (1.0 + sigma)
+    A = np.diag(diag) + scale * raw / (1.0 + sigma)
     rho = _spectral_radius(A)
     if require_stable and rho >= 1:
         raise UnstableModelError(
-            f"the scaled network has spectral radius {rho:.4f} >= 1 (scale={scale}, self_weight={self_weight}). "
-            "Keep |self_weight| + scale <= 1 for a guaranteed stable network, or pass require_stable=False."
+            f"the scaled network has spectral radius {rho:.4f} >= 1 (scale={scale}, largest self_weight "
+            f"{np.max(np.abs(diag)):g}). Keep max|self_weight| + scale <= 1 for a guaranteed stable network, or pass "
+            "require_stable=False."
         )
     return A
 

@@ -64,6 +64,10 @@ def test_scaled_network_with_self_weight_keeps_the_stability_bound(seed):
         A = random_network(15, density=0.3, seed=s, scale=0.4, self_weight=0.6)
         np.testing.assert_allclose(A, 0.6 * np.eye(15) + 0.4 * base, rtol=0, atol=1e-15)
         assert np.linalg.norm(A, 2) <= 0.6 + 0.4 * np.linalg.norm(base, 2) + 1e-12 < 1
+        r = np.linspace(-0.5, 0.7, 15)  # one persistence per node
+        A = random_network(15, density=0.3, seed=s, scale=0.3, self_weight=r)
+        np.testing.assert_allclose(A, np.diag(r) + 0.3 * base, rtol=0, atol=1e-15)
+        assert np.linalg.norm(A, 2) <= 0.7 + 0.3 * np.linalg.norm(base, 2) + 1e-12 < 1
 
 
 def test_network_density_matches_the_edge_probability(seed):
@@ -91,8 +95,10 @@ def test_network_bad_arguments_raise():
         random_network(5, density=1.5, seed=0)
     with pytest.raises(SessionError, match="scale must be positive"):
         random_network(5, density=0.5, seed=0, scale=-1.0)
-    with pytest.raises(SessionError, match="self_weight must be finite"):
+    with pytest.raises(SessionError, match="self_weight must be a finite number or one finite value per node"):
         random_network(5, density=0.5, seed=0, self_weight=np.inf)
+    with pytest.raises(SessionError, match=r"one finite value per node, shape \(5,\)"):
+        random_network(5, density=0.5, seed=0, self_weight=[0.1, 0.2])
     with pytest.raises(UnstableModelError, match="spectral radius"):
         random_network(5, density=0.5, seed=0, scale=0.5, self_weight=1.2)
     A = random_network(5, density=0.5, seed=0, scale=0.5, self_weight=1.2, require_stable=False)
