@@ -32,9 +32,9 @@ name          dtype        shape        content
                                         attribute ``columns = ["start_sample", "stop_sample"]``
 ============  ===========  ===========  ============================================================
 
-``inputs``, ``outputs`` and ``valid`` are chunked along time (about 64 Ki values per chunk, gzip level 4 with
-byte shuffle), so reading a window decompresses only the chunks it overlaps. A file without the units attributes,
-or with an empty unit, is refused (use ``"a.u."`` for arbitrary units).
+``inputs``, ``outputs`` and ``valid`` are chunked along time (about 16 Ki values, 128 KiB, per chunk; gzip
+level 4 with byte shuffle), so reading a window decompresses only the chunks it overlaps. A file without the
+units attributes, or with an empty unit, is refused (use ``"a.u."`` for arbitrary units).
 
 CSV and Parquet table layout (version 1)
 ----------------------------------------
@@ -107,7 +107,7 @@ _TABLE_LAYOUT = "stimsteer-table"
 
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 _PARQUET_MAGIC = b"PAR1"
-_CHUNK_VALUES = 65536
+_CHUNK_VALUES = 16384
 _COMPRESSION = {"compression": "gzip", "compression_opts": 4, "shuffle": True}
 _NWB_HINT = 'install the optional NWB support with: pip install "stimsteer[nwb]"'
 _SUFFIXES = {".h5": "hdf5", ".hdf5": "hdf5", ".csv": "csv", ".parquet": "parquet", ".nwb": "nwb"}
@@ -423,9 +423,11 @@ class SessionFile:
         if _attr_str(h.attrs.get("stimsteer_layout", "")) != LAYOUT_NAME:
             self._fail(f"expected the root attribute stimsteer_layout = '{LAYOUT_NAME}'; found "
                        f"{h.attrs.get('stimsteer_layout')!r}.")
-        version = h.attrs.get("stimsteer_layout_version")
-        if version is None or int(np.asarray(version).reshape(-1)[0]) > LAYOUT_VERSION:
-            self._fail(f"expected layout version <= {LAYOUT_VERSION}; found {version!r}. The file was written by "
+        version = _attr_str(h.attrs.get("stimsteer_layout_version", "none"))
+        if not version.isdigit():
+            self._fail(f"expected the root attribute stimsteer_layout_version to be a whole number; found {version}.")
+        if int(version) > LAYOUT_VERSION:
+            self._fail(f"expected layout version <= {LAYOUT_VERSION}; found {version}. The file was written by "
                        "a newer stimsteer: upgrade stimsteer to read it.")
         self._u = self._dataset("inputs", 2, "fiu")
         self._y = self._dataset("outputs", 2, "fiu")
@@ -628,14 +630,21 @@ def _channel_header(role: str, name: str, unit: str) -> str:
     return header
 
 
+def _start_time_s(metadata) -> float:
+    t0 = metadata.get("start_time_s", 0.0)
+    return float(t0) if isinstance(t0, (int, float)) and math.isfinite(t0) else 0.0
+
+
 def _table_columns(session: Session) -> dict:
-    t0 = session.metadata.get("start_time_s", 0.0)
-    t0 = float(t0) if isinstance(t0, (int, float)) and math.isfinite(t0) else 0.0
+    if session.n_outputs == 0:
+        raise FileFormatError("the table layout needs at least one output channel; this session has none. "
+                              "Save it as .h5.")
+    rate = session.sample_rate_hz
     label = np.full(session.n_samples, -1, dtype=np.int64)
     for i, (a, b) in enumerate(session.trials):
         label[a:b] = i
     cols = {
-        f"time [s] @ {_format_rate(session.sample_rate_hz)} Hz": t0 + np.arange(session.n_samples) / session.sample_rate_hz,
+        f"time [s] @ {_format_rate(rate)} Hz": _start_time_s(session.metadata) + np.arange(session.n_samples) / rate,
         "trial": label,
         "valid": session.mask.astype(np.int64),
     }
@@ -643,9 +652,6 @@ def _table_columns(session: Session) -> dict:
                                       ("out", session.y, session.output_names, session.output_units)):
         for j, (name, unit) in enumerate(zip(names, units)):
             cols[_channel_header(role, name, unit)] = np.asarray(data[:, j], dtype=np.float64)
-    if session.n_outputs == 0:
-        raise FileFormatError("the table layout needs at least one output channel; this session has none. "
-                              "Save it as .h5.")
     return cols
 
 
@@ -785,8 +791,8 @@ def _time_grid(t: np.ndarray, rate_text, path: Path, col: str) -> tuple[float, f
     if off.size:
         i = int(off[0])
         raise FileFormatError(
-            f"{path}: time stamps are not on a uniform grid at {rate:g} Hz: row {i} is at {t[i]!r} s, the grid "
-            f"puts it at {grid[i]!r} s. Every sample must be a row: mark missing samples invalid (valid = 0) "
+            f"{path}: time stamps are not on a uniform grid at {rate:g} Hz: row {i} is at {float(t[i])!r} s, the grid "
+            f"puts it at {float(grid[i])!r} s. Every sample must be a row: mark missing samples invalid (valid = 0) "
             "instead of dropping rows, or resample first."
         )
     return rate, float(t[0])
@@ -873,7 +879,7 @@ def _write_nwb(session: Session, tmp: Path) -> None:
         raise FileFormatError(f"channel names {bad} cannot be NWB series names ('/' is not allowed there); "
                               "rename them or save as .h5.")
     rate, meta = session.sample_rate_hz, session.metadata
-    t0 = float(meta.get("start_time_s", 0.0)) if isinstance(meta.get("start_time_s"), (int, float)) else 0.0
+    t0 = _start_time_s(meta)
     nwb = pynwb.NWBFile(
         session_description=str(meta.get("description", "stimsteer session")),
         identifier=session.content_hash(), session_start_time=datetime(1970, 1, 1, tzinfo=timezone.utc),
