@@ -71,6 +71,17 @@ def _mat(name, M, shape):
     return M
 
 
+def _oriented(name, M, n, axis):
+    """``B`` (states along axis 0) or ``C`` (states along axis 1) as a 2-D array; a 1-D vector is one channel."""
+    M = np.asarray(M, dtype=np.float64)
+    if M.ndim == 1:
+        M = M[:, None] if axis == 0 else M[None, :]
+    if M.ndim != 2 or M.shape[axis] != n:
+        want = f"({n}, n_inputs)" if axis == 0 else f"(n_outputs, {n})"
+        raise SessionError(f"{name} must have shape {want} for a model with {n} states; got {M.shape}.")
+    return M
+
+
 @dataclass(frozen=True)
 class StateSpaceModel:
     """A linear time-invariant model in innovation form (see the module docstring).
@@ -113,8 +124,8 @@ class StateSpaceModel:
         n = A.shape[0]
         if A.shape != (n, n):
             raise SessionError(f"A must be square; got shape {A.shape}.")
-        B = np.asarray(self.B, dtype=np.float64).reshape(n, -1)
-        C = np.asarray(self.C, dtype=np.float64).reshape(-1, n)
+        B = _oriented("B", self.B, n, axis=0)
+        C = _oriented("C", self.C, n, axis=1)
         m, p = B.shape[1], C.shape[0]
         D = np.zeros((p, m)) if self.D is None else self.D
         K = np.zeros((n, p)) if self.K is None else self.K
@@ -206,7 +217,11 @@ class StateSpaceModel:
         x : ndarray, shape (n_samples + 1, n_states), only when ``return_states``
         """
         u = self._check_u(u)
-        x = np.zeros(self.n_states) if x0 is None else np.asarray(x0, dtype=np.float64).reshape(self.n_states)
+        x = np.zeros(self.n_states) if x0 is None else np.asarray(x0, dtype=np.float64).reshape(-1)
+        if x.shape != (self.n_states,) or not np.all(np.isfinite(x)):
+            raise SessionError(
+                f"x0 must be a finite state vector of length {self.n_states}; got shape {np.shape(x0)}."
+            )
         X = np.empty((u.shape[0] + 1, self.n_states))
         X[0] = x
         A, B = self.A, self.B
@@ -248,9 +263,16 @@ class StateSpaceModel:
         x : ndarray, shape (n_states,)
         """
         u_past = self._check_u(u_past, "u_past")
-        y_past = np.asarray(y_past, dtype=np.float64).reshape(u_past.shape[0], -1)
-        if y_past.shape[1] != self.n_outputs:
-            raise SessionError(f"y_past must have {self.n_outputs} columns; got {y_past.shape[1]}.")
+        y_past = np.asarray(y_past, dtype=np.float64)
+        if y_past.ndim == 1 and self.n_outputs == 1:
+            y_past = y_past[:, None]
+        if y_past.shape != (u_past.shape[0], self.n_outputs):
+            raise SessionError(
+                f"y_past must have shape ({u_past.shape[0]}, {self.n_outputs}), one row per row of u_past and one "
+                f"column per output; got {y_past.shape}."
+            )
+        if not np.all(np.isfinite(y_past)):
+            raise SessionError("y_past holds NaN or infinite values; give a window of valid samples.")
         if u_past.shape[0] == 0 or self.n_states == 0:
             return np.zeros(self.n_states)
         Phi, driven, M, x_driven = self._innovation_terms(u_past, y_past)
