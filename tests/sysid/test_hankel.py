@@ -1,0 +1,131 @@
+"""Tests of stimsteer.sysid.hankel: block-Hankel, mosaic and Page matrices, and the streamed row-space factor.
+
+Expected matrices are built here with explicit loops over columns (the definition, common practice, no source) and
+compared with the strided constructions.
+"""
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid import Session, SessionError
+from stimsteer.sysid.hankel import (
+    block_hankel,
+    combine_factors,
+    hankel_column_count,
+    mosaic_hankel,
+    mosaic_page,
+    page_matrix,
+    row_space_factor,
+    session_hankel,
+    session_page,
+)
+
+
+def _naive_hankel(w, L):
+    return np.column_stack([w[j:j + L].reshape(-1) for j in range(w.shape[0] - L + 1)])
+
+
+def test_block_hankel_matches_the_definition_time_major(rng):
+    w = rng.standard_normal((23, 3))
+    H = block_hankel(w, 5)
+    assert H.shape == (15, 19) and H.dtype == np.float64
+    np.testing.assert_array_equal(H, _naive_hankel(w, 5))
+    # time block t holds channels of sample j + t: rows [t*c, (t+1)*c)
+    np.testing.assert_array_equal(H[2 * 3:3 * 3, 7], w[9])
+    assert H.flags.c_contiguous and H.flags.writeable
+
+
+def test_block_hankel_of_a_one_dimensional_signal_is_the_scalar_hankel():
+    H = block_hankel(np.arange(6.0), 3)
+    np.testing.assert_array_equal(H, [[0, 1, 2, 3], [1, 2, 3, 4], [2, 3, 4, 5]])
+
+
+def test_page_matrix_has_non_overlapping_columns_and_drops_the_tail():
+    w = np.arange(14.0).reshape(7, 2)
+    P = page_matrix(w, 3)
+    assert P.shape == (6, 2)
+    np.testing.assert_array_equal(P[:, 0], w[0:3].reshape(-1))
+    np.testing.assert_array_equal(P[:, 1], w[3:6].reshape(-1))
+
+
+def test_mosaic_concatenates_segments_and_skips_short_ones(rng):
+    w = rng.standard_normal((40, 2))
+    w[10] = np.nan  # a masked sample between two segments is never read
+    segs = [(0, 10), (11, 14), (14, 40)]
+    H = mosaic_hankel(w, 4, segs)
+    expect = np.hstack([_naive_hankel(w[0:10], 4), _naive_hankel(w[14:40], 4)])
+    np.testing.assert_array_equal(H, expect)
+    assert H.shape[1] == hankel_column_count(segs, 4) == 7 + 0 + 23
+    P = mosaic_page(w, 4, segs)
+    assert P.shape[1] == hankel_column_count(segs, 4, page=True) == 2 + 0 + 6
+
+
+def test_session_hankel_never_spans_a_trial_boundary_or_a_masked_sample(rng):
+    u = rng.standard_normal((60, 1))
+    y = rng.standard_normal((60, 2))
+    mask = np.ones(60, bool)
+    mask[25] = False
+    u[25] = np.nan
+    s = Session(u=u, y=y, sample_rate_hz=100.0, trials=[(0, 30), (30, 60)], mask=mask)
+    H = session_hankel(s, 5, which="uy")
+    # segments [0,25), [26,30), [30,60): 21 + 0 + 26 columns
+    assert H.shape == (15, 47)
+    w = np.hstack([u, y])
+    np.testing.assert_array_equal(H, np.hstack([_naive_hankel(w[0:25], 5), _naive_hankel(w[30:60], 5)]))
+    assert np.isfinite(H).all()
+    assert session_hankel(s, 5).shape == (5, 47)
+    assert session_hankel(s, 5, which="y").shape == (10, 47)
+    assert session_page(s, 5).shape == (5, 5 + 6)
+
+
+def test_row_space_factor_reproduces_the_gram_matrix_exactly(rng):
+    u = rng.standard_normal((500, 2))
+    y = rng.standard_normal((500, 3))
+    segs = [(0, 120), (130, 500)]
+    H = np.vstack([mosaic_hankel(u, 6, segs), mosaic_hankel(y, 6, segs)])
+    F, k = row_space_factor([u, y], 6, segs, max_columns=37)  # many chunks, several combine steps
+    assert k == H.shape[1] and F.shape == (30, 30)
+    np.testing.assert_allclose(F @ F.T, H @ H.T, rtol=0, atol=1e-12 * np.abs(H @ H.T).max())
+    np.testing.assert_allclose(np.linalg.svd(F, compute_uv=False), np.linalg.svd(H, compute_uv=False), rtol=1e-12)
+
+
+def test_row_space_factor_with_fewer_columns_than_rows(rng):
+    w = rng.standard_normal((8, 3))
+    H = block_hankel(w, 4)  # 12 rows, 5 columns
+    F, k = row_space_factor([w], 4)
+    assert F.shape == (12, 5) and k == 5
+    np.testing.assert_allclose(F @ F.T, H @ H.T, atol=1e-12)
+    assert combine_factors([], 7).shape == (7, 0)
+
+
+@pytest.mark.parametrize(
+    "call, match",
+    [
+        (lambda: block_hankel(np.zeros((3, 1)), 4), "needs at least 4 samples; got 3"),
+        (lambda: block_hankel(np.zeros((5, 1)), 0), "depth must be a whole number"),
+        (lambda: block_hankel(np.zeros((5, 1)), 2.5), "depth must be a whole number"),
+        (lambda: block_hankel(np.zeros((2, 2, 2)), 1), "must be a 2-D time-major array"),
+        (lambda: block_hankel(np.array([0.0, np.nan, 1.0]), 2), "NaN or infinite values at sample 1"),
+        (lambda: page_matrix(np.zeros((3, 1)), 4), "needs at least 4 samples"),
+        (lambda: mosaic_hankel(np.zeros((10, 1)), 4, [(0, 3), (5, 8)]), "the longest is 3"),
+        (lambda: mosaic_hankel(np.zeros((10, 1)), 2, [(5, 12)]), r"segment \[5, 12\) is empty or outside"),
+        (lambda: mosaic_hankel(np.r_[np.zeros(5), np.nan], 2, [(0, 6)]), "at sample 5"),
+        (lambda: row_space_factor([np.zeros((5, 1)), np.zeros((6, 1))], 2), "same number of samples"),
+        (lambda: row_space_factor([np.zeros((5, 1))], 6), "the longest is 5"),
+        (lambda: session_hankel(Session(u=np.zeros((5, 1)), y=np.zeros((5, 1)), sample_rate_hz=1.0), 2,
+                                which="x"), "which must be 'u', 'y' or 'uy'"),
+    ],
+)
+def test_bad_input_raises_a_clear_error(call, match):
+    with pytest.raises(SessionError, match=match):
+        call()
+
+
+def test_inputs_are_not_modified(rng):
+    w = rng.standard_normal((30, 2))
+    before = w.copy()
+    block_hankel(w, 4)
+    page_matrix(w, 4)
+    mosaic_hankel(w, 4, [(0, 12), (12, 30)])
+    row_space_factor([w], 4, [(0, 30)])
+    np.testing.assert_array_equal(w, before)
