@@ -1,0 +1,731 @@
+"""Ridge ARX: a multi-input multi-output autoregressive model with exogenous inputs, fitted by streaming normal
+equations and ridge strength chosen by cross-validation over whole trials.
+
+The model, for outputs ``y_k`` (p channels) and inputs ``u_k`` (m channels)::
+
+    y_k = c + sum_{i=1..na} A_i y_{k-i} + sum_{j=0..nb-1} B_j u_{k-d-j} + e_k
+
+with ``na = output_lags``, ``nb = input_lags``, ``d = delay_samples`` and ``c`` the intercept (``fit_intercept``).
+
+Why a structured Gram: every block of the regression Gram ``XᵀX`` is a sum of shifted products of the raw
+``Z = [y u]`` samples, ``sum_k Z_{k-a} Z_{k-b}ᵀ``. Blocks that share a lag difference ``b - a`` share one product
+``sum_t Z_t Z_{t-(b-a)}ᵀ`` and differ only by a few edge samples, so a chunk of ``n`` rows costs ``L + 1`` products
+of an ``(n × (p+m))`` matrix (``L`` = longest lag) instead of one product of the ``(n × d)`` design, which is never
+built. Chunks are read one at a time from a :class:`~stimsteer.sysid.session.Session` or a lazily opened session
+file, so memory does not grow with the length of the recording.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import ConditioningWarning, ExcitationError, SessionError, check_fitted
+from .statespace import StateSpaceModel
+
+__all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
+
+#: Condition number of the (standardised, regularised) normal equations above which a fit warns. At 1e10 about
+#: ten of float64's sixteen significant digits are lost in the solve (common practice, no source).
+CONDITION_WARN_LIMIT = 1e10
+
+_DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
+
+
+# ------------------------------------------------------------------------------------------------ sufficient stats
+class _Moments:
+    """Row count, sums and Gram of the full lagged vector ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` (float64)."""
+
+    def __init__(self, size: int):
+        self.n = 0
+        self.s = np.zeros(size)
+        self.W = np.zeros((size, size))
+
+    def add(self, n, s, W):
+        self.n += n
+        self.s += s
+        self.W += W
+
+    def minus(self, other: "_Moments") -> "_Moments":
+        out = _Moments(self.s.size)
+        out.n, out.s, out.W = self.n - other.n, self.s - other.s, self.W - other.W
+        return out
+
+
+def _lagged_moments(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sums and Gram of the lagged vectors of the rows held in a buffer, without building the lagged design.
+
+    Parameters
+    ----------
+    B : ndarray, shape (n_rows + L, c)
+        Samples ``Z`` of one valid segment piece: the ``L`` samples before the first row, then the rows.
+    n_lags : int
+        ``L``, the longest lag.
+
+    Returns
+    -------
+    s : ndarray, shape (c (L+1),)
+        ``sum_k w_k`` with ``w_k = [Z_k; ...; Z_{k-L}]`` over the ``n_rows`` rows.
+    W : ndarray, shape (c (L+1), c (L+1))
+        ``sum_k w_k w_kᵀ``; block (a, b) is ``sum_k Z_{k-a} Z_{k-b}ᵀ``.
+
+    Notes
+    -----
+    With buffer index ``t``, row ``k`` reads ``Z_{k-a} = B[L - a + (k - k0)]``. For ``b = a + δ``::
+
+        block(a, b) = sum_{t=δ}^{n+L-1} B_t B_{t-δ}ᵀ - sum_{t=δ}^{L-a-1} B_t B_{t-δ}ᵀ - sum_{t=L-a+n}^{n+L-1} B_t B_{t-δ}ᵀ
+
+    one large product per lag difference ``δ`` and two corrections of at most ``L`` samples each.
+    """
+    L = n_lags
+    n = B.shape[0] - L
+    c = B.shape[1]
+    W = np.empty(((L + 1) * c, (L + 1) * c))
+    total = B.sum(axis=0)
+    s = np.concatenate([total - B[: L - a].sum(axis=0) - B[L - a + n:].sum(axis=0) for a in range(L + 1)])
+    for delta in range(L + 1):
+        P = B.T @ B if delta == 0 else B[delta:].T @ B[: n + L - delta]
+        for a in range(L + 1 - delta):
+            b = a + delta
+            block = P - B[delta: L - a].T @ B[: L - a - delta]
+            block -= B[L - a + n:].T @ B[L - a + n - delta: n + L - delta]
+            W[a * c:(a + 1) * c, b * c:(b + 1) * c] = block
+            W[b * c:(b + 1) * c, a * c:(a + 1) * c] = block.T
+    return s, W
+
+
+# ------------------------------------------------------------------------------------------------ data access
+def _check_source(session):
+    needed = ("read", "segments", "n_inputs", "n_outputs", "trials", "sample_rate_hz")
+    missing = [a for a in needed if not hasattr(session, a)]
+    if missing:
+        raise SessionError(
+            f"expected a stimsteer Session or an opened session file (stimsteer.sysid.io.open_session_file); got "
+            f"{type(session).__name__}, which lacks {missing}. Load the recording with load_session first."
+        )
+
+
+def _pieces(session, n_lags: int, n_folds: int):
+    """Row ranges ``[k0, k1)`` inside valid segments, each with a fold id, and the folding scheme used.
+
+    Folds group whole trials (round-robin over the trials that have rows). With fewer than two such trials the
+    rows are cut into ``n_folds`` contiguous blocks instead.
+    """
+    segs = [(s + n_lags, e) for s, e in session.segments(min_length=n_lags + 1)]
+    starts = np.asarray(session.trials)[:, 0]
+    trial_of = [int(np.searchsorted(starts, a - n_lags, side="right") - 1) for a, _ in segs]
+    used = sorted(set(trial_of))
+    if len(used) >= 2:
+        k = min(n_folds, len(used))
+        fold_of_trial = {t: i % k for i, t in enumerate(used)}
+        return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
+    return _block_pieces(segs, n_folds), n_folds, "contiguous blocks (one trial)"
+
+
+def _block_pieces(segs, n_folds: int):
+    total = sum(b - a for a, b in segs)
+    edges = np.linspace(0, total, n_folds + 1).round().astype(np.int64)
+    out, offset = [], 0
+    for a, b in segs:
+        for f in range(n_folds):
+            lo = max(a, a + edges[f] - offset)
+            hi = min(b, a + edges[f + 1] - offset)
+            if hi > lo:
+                out.append((int(lo), int(hi), f))
+        offset += b - a
+    return out
+
+
+def _chunks(pieces, chunk_rows: int):
+    for a, b, f in pieces:
+        for k0 in range(a, b, chunk_rows):
+            yield k0, min(b, k0 + chunk_rows), f
+
+
+def _read_z(session, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
+    """Samples ``[start, stop)`` as ``Z = [y u]`` (float64, a fresh array) and the inputs alone (a view of Z)."""
+    u, y, _mask = session.read(start, stop)
+    Z = np.empty((stop - start, y.shape[1] + u.shape[1]))
+    Z[:, : y.shape[1]] = y
+    Z[:, y.shape[1]:] = u
+    return Z, Z[:, y.shape[1]:]
+
+
+# ------------------------------------------------------------------------------------------------ solving
+def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray], np.ndarray]:
+    """Solutions of ``(R + α I) β = r`` for each α, from one eigendecomposition of the symmetric ``R``.
+
+    Eigenvalues at or below ``d · eps · λ_max`` are treated as zero; for α = 0 their directions are dropped
+    (minimum-norm solution). Returns the solutions and the condition numbers ``(λ_max + α) / (λ_min + α)``.
+    """
+    lam, V = np.linalg.eigh(R)
+    lam = np.clip(lam, 0.0, None)
+    tiny = lam.max(initial=0.0) * R.shape[0] * np.finfo(float).eps
+    Vr = V.T @ r
+    betas, conds = [], []
+    for alpha in alphas:
+        den = lam + alpha
+        keep = den > tiny
+        inv = np.where(keep, 1.0 / np.where(keep, den, 1.0), 0.0)
+        betas.append(V @ (inv[:, None] * Vr))
+        lo = den.min() if den.size else 1.0
+        conds.append(np.inf if lo <= tiny else (lam.max(initial=0.0) + alpha) / lo)
+    return betas, np.asarray(conds)
+
+
+class _Problem:
+    """Index bookkeeping from the lagged-moment space to the regression (regressors x, targets y)."""
+
+    def __init__(self, p, m, na, nb, d, fit_intercept):
+        self.p, self.m, self.na, self.nb, self.d = p, m, na, nb, d
+        self.L = max(na, d + nb - 1)
+        self.c = p + m
+        self.fit_intercept = fit_intercept
+        c = self.c
+        self.y_idx = np.arange(p)
+        x = [lag * c + np.arange(p) for lag in range(1, na + 1)]
+        x += [(d + j) * c + p + np.arange(m) for j in range(nb)]
+        self.x_idx = np.concatenate(x) if x else np.zeros(0, dtype=np.int64)
+
+    @property
+    def size(self):
+        return self.c * (self.L + 1)
+
+    def centred(self, mom: _Moments, mean_from: _Moments | None = None):
+        """Regressor/target cross products about the mean of ``mean_from`` (default ``mom``), or raw."""
+        xi, yi = self.x_idx, self.y_idx
+        W, s, n = mom.W, mom.s, mom.n
+        ref = mom if mean_from is None else mean_from
+        mu = ref.s / ref.n if self.fit_intercept else np.zeros_like(ref.s)
+        # sum_k (w_k - mu)(w_k - mu)ᵀ = W - mu sᵀ - s muᵀ + n mu muᵀ
+        Wc = W - np.outer(mu, s) - np.outer(s, mu) + n * np.outer(mu, mu)
+        return Wc[np.ix_(xi, xi)], Wc[np.ix_(xi, yi)], Wc[np.ix_(yi, yi)], mu
+
+    def solve(self, mom: _Moments, alphas):
+        """Coefficients (d_x, p) for each α, regressor scale (d_x,), condition numbers, and the centring mean."""
+        Cxx, Cxy, _Cyy, mu = self.centred(mom)
+        n = mom.n
+        scale = np.sqrt(np.clip(np.diag(Cxx), 0.0, None) / n)
+        scale[scale == 0] = 1.0
+        R = Cxx / (n * np.outer(scale, scale))
+        r = Cxy / (n * scale[:, None])
+        betas, conds = _ridge_path(R, r, alphas)
+        return [b / scale[:, None] for b in betas], scale, conds, mu
+
+    def validation_error(self, beta, train: _Moments, test: _Moments) -> float:
+        """Mean over output channels of SSE / SST on ``test`` for coefficients fitted on ``train``.
+
+        SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``).
+        """
+        Qxx, Qxy, Qyy, _ = self.centred(test, mean_from=train)
+        sse = np.diag(Qyy) - 2.0 * np.einsum("ij,ij->j", beta, Qxy) + np.einsum("ij,ik,kj->j", beta, Qxx, beta)
+        sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
+        yi = self.y_idx
+        sst = np.diag(test.W)[yi] - test.s[yi] ** 2 / test.n
+        ok = sst > 0
+        return float(np.mean(sse[ok] / sst[ok])) if ok.any() else np.nan
+
+
+# ------------------------------------------------------------------------------------------------ state space
+def arx_to_state_space(
+    ar_coefs, input_coefs, delay_samples: int, *, sample_rate_hz: float = 1.0, innovation_cov=None,
+    input_names=None, output_names=None, info=None,
+) -> StateSpaceModel:
+    """The shift-register (observer-form) state-space realisation of an ARX model.
+
+    Parameters
+    ----------
+    ar_coefs : ndarray, shape (na, p, p)
+        ``A_1 ... A_na``; ``na`` may be 0.
+    input_coefs : ndarray, shape (nb, p, m)
+        ``B_0 ... B_{nb-1}`` acting on ``u_{k-d-j}``.
+    delay_samples : int
+        ``d``, the input delay in samples (0 gives direct feed-through ``D = B_0``).
+    sample_rate_hz : float, default 1.0
+    innovation_cov : ndarray, shape (p, p), optional
+        Covariance of the one-step residual ``e_k``.
+    input_names, output_names : tuple of str, optional
+    info : dict, optional
+
+    Returns
+    -------
+    StateSpaceModel
+        States ``x_k = [y_{k-1}; ...; y_{k-na}; u_{k-1}; ...; u_{k-nu}]`` with ``nu = d + nb - 1`` (or ``nb - 1``
+        input states when ``d = 0``), ``n_states = p·na + m·nu``, Kalman gain ``K = [I; 0]`` and ``past_steps =
+        max(na, nu, 1)``.
+
+    Notes
+    -----
+    ``y_k = C x_k + D u_k + e_k`` with ``C = [A_1 … A_na, B̃_1 … B̃_nu]``, ``B̃_l = B_{l-d}`` (zero outside the
+    input lags) and ``D = B_0`` if ``d = 0``. The predictor matrix ``A − K C`` is a pure shift, nilpotent of index
+    ``max(na, nu)``: the state after a past window of that length is exactly the stacked measured samples, so
+    ``predict`` from such a window reproduces the ARX recursion that feeds back its own predictions.
+
+    References
+    ----------
+    Ljung L. (1999), System Identification: Theory for the User, 2nd ed., section 4.3 (state-space forms of ARX).
+    """
+    Aa = np.asarray(ar_coefs, dtype=np.float64)
+    Bb = np.asarray(input_coefs, dtype=np.float64)
+    na, p = Aa.shape[0], Bb.shape[1]
+    nb, m = Bb.shape[0], Bb.shape[2]
+    d = int(delay_samples)
+    nu = d + nb - 1
+    C = np.zeros((p, p * na + m * nu))
+    for i in range(na):
+        C[:, i * p:(i + 1) * p] = Aa[i]
+    for j in range(nb):
+        lag = d + j
+        if lag >= 1:
+            C[:, p * na + (lag - 1) * m: p * na + lag * m] = Bb[j]
+    D = Bb[0] if d == 0 else np.zeros((p, m))
+    n = C.shape[1]
+    A = np.zeros((n, n))
+    B = np.zeros((n, m))
+    K = np.zeros((n, p))
+    if na:
+        A[:p] = C
+        B[:p] = D
+        K[:p] = np.eye(p)
+        A[p: p * na, : p * (na - 1)] = np.eye(p * (na - 1))
+    if nu:
+        off = p * na
+        B[off: off + m] = np.eye(m)
+        A[off + m: off + m * nu, off: off + m * (nu - 1)] = np.eye(m * (nu - 1))
+    return StateSpaceModel(
+        A=A, B=B, C=C, D=D, K=K, innovation_cov=innovation_cov, sample_rate_hz=sample_rate_hz,
+        past_steps=max(na, nu, 1), input_names=input_names, output_names=output_names, info=info or {},
+    )
+
+
+# ------------------------------------------------------------------------------------------------ estimator
+def _check_int(name, value, lowest):
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
+        raise SessionError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of samples.")
+    return int(value)
+
+
+def _check_alphas(alphas) -> np.ndarray:
+    a = np.atleast_1d(np.asarray(alphas, dtype=np.float64))
+    if a.ndim != 1 or a.size == 0:
+        raise SessionError(f"alphas must be a non-empty 1-D grid of ridge strengths; got shape {a.shape}.")
+    if not np.all(np.isfinite(a)) or np.any(a < 0):
+        raise SessionError(
+            f"alphas must be finite and >= 0 (0 = ordinary least squares); got {a.tolist()}. Remove negative values."
+        )
+    return np.unique(a)
+
+
+class RidgeArx:
+    """Multi-input multi-output ridge ARX fitted from a recorded session by streaming normal equations.
+
+    Parameters
+    ----------
+    output_lags : int, default 2
+        ``na``, number of past outputs ``y_{k-1} … y_{k-na}`` (0 gives a finite-impulse-response model).
+    input_lags : int, default 2
+        ``nb``, number of inputs ``u_{k-d} … u_{k-d-nb+1}``; at least 1.
+    delay_samples : int, default 1
+        ``d``, the input delay in samples; 0 allows direct feed-through from ``u_k`` to ``y_k``.
+    alphas : sequence of float, default ``10**-8 … 10**0`` (9 values)
+        Ridge strengths to compare by cross-validation; each >= 0 (see Notes for the scale).
+    n_folds : int, default 5
+        Cross-validation folds of whole trials (fewer if fewer trials have usable rows).
+    chunk_samples : int, default 65536
+        Regression rows read and accumulated per chunk; bounds the memory used by the streaming pass.
+    fit_intercept : bool, default True
+        Fit the constant ``c`` (regressors and targets are centred with the running means).
+
+    Attributes
+    ----------
+    coef_ : ndarray, shape (n_outputs, n_outputs·na + n_inputs·nb)
+        ``[A_1 … A_na, B_0 … B_{nb-1}]``; column order: outputs at lag 1, …, lag na, then inputs at lag d, ….
+    intercept_ : ndarray, shape (n_outputs,)
+    alpha_ : float
+        Ridge strength chosen by cross-validation (the largest alpha among equal best errors).
+    cv_table_ : pandas.DataFrame
+        One row per alpha: ``alpha``, ``mean_error``, ``std_error``, ``fold_0 … fold_{K-1}``; error = one-step
+        validation ``SSE / SST`` averaged over output channels (``1 − R²``).
+    scale_ : ndarray, shape (n_regressors,)
+        Regressor standard deviations (root mean squares without intercept) used to standardise the penalty.
+    condition_number_ : float
+        Of the standardised normal equations at ``alpha_``.
+    past_steps_ : int
+        ``max(na, d + nb − 1)``: the past window ``predict`` needs.
+    max_horizon_steps_ : None
+        Unlimited: predictions recurse on their own outputs.
+    model_ : StateSpaceModel
+        The shift-register realisation (:func:`arx_to_state_space`) of the linear part; it acts on outputs in
+        deviation from ``model_.info["output_offset"]`` (the resting output under zero input, see Notes).
+    n_inputs_, n_outputs_, n_rows_, n_folds_ : int
+    cv_scheme_ : str
+        ``"trials"`` or ``"contiguous blocks (one trial)"``.
+    input_names_, output_names_ : tuple of str
+    sample_rate_hz_ : float
+
+    Notes
+    -----
+    Solved, with standardised regressors ``x̃ = (x − x̄) / s`` (``x̄ = 0`` without intercept) over the ``n`` rows::
+
+        min_Θ  (1/n) Σ_k ||y_k − ȳ − Θ x̃_k||²  +  α ||Θ||_F²      ⇔    (R + α I) Θᵀ = r,
+        R = X̃ᵀX̃ / n (unit diagonal),  r = X̃ᵀ(Y − ȳ) / n,
+
+    i.e. scikit-learn's ``Ridge(alpha = α·n, fit_intercept=False)`` on ``x̃``; ``coef_ = Θ / s``. Rows exist only
+    for samples ``k`` whose whole lag window lies inside one valid segment (:meth:`Session.segments`): no row
+    crosses a trial boundary or touches a masked sample. Cross-validation forms each fold's training moments by
+    subtracting the fold's moments from the total, so it needs no second pass over the data.
+
+    With an intercept, the resting output is ``y_rest = (I − Σ A_i)⁻¹ c``; ``model_`` describes ``y − y_rest``
+    driven by ``u`` in absolute units (zero input = no stimulation).
+
+    References
+    ----------
+    Ljung L. (1999), System Identification: Theory for the User, 2nd ed., ch. 4 and 7 (ARX, least squares).
+    Hoerl A.E., Kennard R.W. (1970), Ridge regression: biased estimation for nonorthogonal problems,
+    Technometrics 12:55–67.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stimsteer.sysid import Session
+    >>> rng = np.random.default_rng(0)
+    >>> u = rng.standard_normal((400, 1)); y = np.zeros((400, 1))
+    >>> for k in range(1, 400): y[k] = 0.5 * y[k - 1] + 2.0 * u[k - 1]
+    >>> arx = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(Session(u=u, y=y, sample_rate_hz=100.0))
+    >>> np.round(arx.coef_, 8).tolist()
+    [[0.5, 2.0]]
+    """
+
+    storage_kind = "ridge_arx"
+    supports_streaming = True
+
+    def __init__(self, *, output_lags=2, input_lags=2, delay_samples=1, alphas=_DEFAULT_ALPHAS, n_folds=5,
+                 chunk_samples=65536, fit_intercept=True):
+        self.output_lags = output_lags
+        self.input_lags = input_lags
+        self.delay_samples = delay_samples
+        self.alphas = alphas
+        self.n_folds = n_folds
+        self.chunk_samples = chunk_samples
+        self.fit_intercept = fit_intercept
+
+    def get_params(self, deep: bool = True) -> dict:
+        """Constructor arguments, unchanged (scikit-learn convention)."""
+        return {k: getattr(self, k) for k in ("output_lags", "input_lags", "delay_samples", "alphas", "n_folds",
+                                              "chunk_samples", "fit_intercept")}
+
+    def set_params(self, **params) -> "RidgeArx":
+        for k, v in params.items():
+            if k not in self.get_params():
+                raise SessionError(f"RidgeArx has no parameter {k!r}; valid ones: {sorted(self.get_params())}.")
+            setattr(self, k, v)
+        return self
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if k != "alphas")
+        return f"RidgeArx({args}, alphas=<{np.size(self.alphas)} values>)"
+
+    # -------------------------------------------------------------------------------------------- fit
+    def _validated(self, session) -> _Problem:
+        _check_source(session)
+        na = _check_int("output_lags", self.output_lags, 0)
+        nb = _check_int("input_lags", self.input_lags, 1)
+        d = _check_int("delay_samples", self.delay_samples, 0)
+        _check_int("n_folds", self.n_folds, 2)
+        _check_int("chunk_samples", self.chunk_samples, 1)
+        _check_alphas(self.alphas)
+        prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept))
+        longest = max((e - s for s, e in session.segments(min_length=1)), default=0)
+        if longest <= prob.L:
+            raise SessionError(
+                f"ridge ARX with output_lags={na}, input_lags={nb}, delay_samples={d} needs valid runs of at "
+                f"least {prob.L + 1} samples inside a trial; the longest valid run has {longest}. Use fewer lags "
+                "or a shorter delay, or record longer trials with fewer masked samples."
+            )
+        return prob
+
+    def fit(self, session) -> "RidgeArx":
+        """Fit from a :class:`Session` or a lazily opened session file (one streaming pass).
+
+        Parameters
+        ----------
+        session : Session or SessionFile
+            Needs ``read(start, stop)``, ``segments(min_length)``, ``trials``, ``n_inputs``, ``n_outputs`` and
+            ``sample_rate_hz``; channel names are taken when present.
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        SessionError
+            Bad settings; lags longer than every valid run; more coefficients than usable rows.
+        ExcitationError
+            An input channel never varies over the usable samples.
+
+        Warns
+        -----
+        ConditioningWarning
+            When the normal equations at the chosen alpha have a condition number above ``CONDITION_WARN_LIMIT``.
+        """
+        prob = self._validated(session)
+        alphas = _check_alphas(self.alphas)
+        folds, k, scheme, shift = self._accumulate(session, prob)
+        total = _Moments(prob.size)
+        for f in folds:
+            total.add(f.n, f.s, f.W)
+        self._check_rows(prob, total.n)
+        table = self._cross_validate(prob, folds, total, alphas, k)
+        best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
+            if table["mean_error"].notna().any() else float(alphas[0])
+        self._finish(session, prob, total, best, table, k, scheme, shift)
+        return self
+
+    def _accumulate(self, session, prob: _Problem):
+        pieces, k, scheme = _pieces(session, prob.L, int(self.n_folds))
+        folds = [_Moments(prob.size) for _ in range(k)]
+        L = prob.L
+        lo = np.full(prob.m, np.inf)
+        hi = np.full(prob.m, -np.inf)
+        shift = None
+        for k0, k1, f in _chunks(pieces, int(self.chunk_samples)):
+            B, u = _read_z(session, k0 - L, k1)
+            lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
+            if shift is None:
+                # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.
+                shift = B.mean(axis=0) if prob.fit_intercept else np.zeros(prob.c)
+            B -= shift
+            s, W = _lagged_moments(B, L)
+            folds[f].add(k1 - k0, s, W)
+        self._check_inputs_vary(session, lo, hi)
+        return folds, k, scheme, np.tile(shift, L + 1)
+
+    def _check_inputs_vary(self, session, lo, hi):
+        names = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(len(lo))))
+        flat = np.flatnonzero(hi - lo <= 0)
+        if flat.size:
+            i = int(flat[0])
+            raise ExcitationError(
+                f"input channel {names[i]!r} never varies over the usable samples (always {lo[i]:g}); its effect "
+                "cannot be identified. Drop the channel, or record a session that stimulates it."
+            )
+
+    def _check_rows(self, prob: _Problem, n_rows: int):
+        n_par = prob.x_idx.size + int(prob.fit_intercept)
+        if n_rows < n_par:
+            raise SessionError(
+                f"ridge ARX has {n_par} coefficients per output (output_lags={prob.na}, input_lags={prob.nb}, "
+                f"{prob.p} outputs, {prob.m} inputs) but the session offers only {n_rows} usable rows. Use fewer "
+                "lags, or more (or longer) trials."
+            )
+
+    def _cross_validate(self, prob, folds, total, alphas, k) -> pd.DataFrame:
+        errors = np.full((alphas.size, k), np.nan)
+        for f, held in enumerate(folds):
+            train = total.minus(held)
+            if held.n == 0 or train.n <= prob.x_idx.size:
+                continue
+            betas, _scale, _conds, _mu = prob.solve(train, alphas)
+            errors[:, f] = [prob.validation_error(b, train, held) for b in betas]
+        table = pd.DataFrame({"alpha": alphas})
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
+            table["mean_error"] = np.nanmean(errors, axis=1)
+            table["std_error"] = np.nanstd(errors, axis=1)
+        for f in range(k):
+            table[f"fold_{f}"] = errors[:, f]
+        return table
+
+    def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
+        betas, scale, conds, mu = prob.solve(total, [alpha])
+        beta, cond = betas[0], float(conds[0])
+        if not cond <= CONDITION_WARN_LIMIT:
+            warnings.warn(
+                f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="
+                f"{alpha:g}, limit {CONDITION_WARN_LIMIT:.0e}); coefficients may be inaccurate. Use a larger alpha, "
+                "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=3)
+        mean = mu + shift
+        coef = beta.T
+        intercept = mean[prob.y_idx] - coef @ mean[prob.x_idx] if prob.fit_intercept else np.zeros(prob.p)
+        Cxx, Cxy, Cyy, _ = prob.centred(total)
+        resid = Cyy - coef @ Cxy - Cxy.T @ coef.T + coef @ Cxx @ coef.T
+        self._set_fitted(
+            prob, coef=coef, intercept=intercept, alpha=alpha, table=table, scale=scale, cond=cond,
+            n_rows=int(total.n), n_folds=k, scheme=scheme, innovation_cov=0.5 * (resid + resid.T) / total.n,
+            input_names=tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(prob.m))),
+            output_names=tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(prob.p))),
+            sample_rate_hz=float(session.sample_rate_hz),
+        )
+
+    def _set_fitted(self, prob, *, coef, intercept, alpha, table, scale, cond, n_rows, n_folds, scheme,
+                    innovation_cov, input_names, output_names, sample_rate_hz):
+        self.n_outputs_, self.n_inputs_ = prob.p, prob.m
+        self.coef_ = np.asarray(coef, dtype=np.float64)
+        self.intercept_ = np.asarray(intercept, dtype=np.float64)
+        self.alpha_ = float(alpha)
+        self.cv_table_ = table
+        self.scale_ = np.asarray(scale, dtype=np.float64)
+        self.condition_number_ = float(cond)
+        self.n_rows_, self.n_folds_, self.cv_scheme_ = int(n_rows), int(n_folds), str(scheme)
+        self.input_names_, self.output_names_ = tuple(input_names), tuple(output_names)
+        self.sample_rate_hz_ = float(sample_rate_hz)
+        self.innovation_cov_ = np.asarray(innovation_cov, dtype=np.float64)
+        self.past_steps_ = prob.L
+        self.max_horizon_steps_ = None
+        self.model_ = self._realise()
+
+    # -------------------------------------------------------------------------------------------- structure
+    @property
+    def ar_coefs_(self) -> np.ndarray:
+        """``A_1 … A_na``, shape (na, n_outputs, n_outputs)."""
+        check_fitted(self, "coef_")
+        p, na = self.n_outputs_, int(self.output_lags)
+        return self.coef_[:, : p * na].reshape(p, na, p).transpose(1, 0, 2)
+
+    @property
+    def input_coefs_(self) -> np.ndarray:
+        """``B_0 … B_{nb-1}``, shape (nb, n_outputs, n_inputs)."""
+        check_fitted(self, "coef_")
+        p, m, na, nb = self.n_outputs_, self.n_inputs_, int(self.output_lags), int(self.input_lags)
+        return self.coef_[:, p * na:].reshape(p, nb, m).transpose(1, 0, 2)
+
+    def _resting_output(self) -> tuple[np.ndarray, bool]:
+        """``(I − Σ A_i)⁻¹ c`` and whether it is well defined (False for an integrating model)."""
+        G = np.eye(self.n_outputs_) - self.ar_coefs_.sum(axis=0)
+        if np.linalg.cond(G) > 1e12:
+            return np.linalg.lstsq(G, self.intercept_, rcond=None)[0], False
+        return np.linalg.solve(G, self.intercept_), True
+
+    def _realise(self) -> StateSpaceModel:
+        y_rest, exact = self._resting_output()
+        info = {"source": "RidgeArx", "output_offset": y_rest, "output_offset_exact": bool(exact),
+                "alpha": self.alpha_}
+        return arx_to_state_space(
+            self.ar_coefs_, self.input_coefs_, int(self.delay_samples), sample_rate_hz=self.sample_rate_hz_,
+            innovation_cov=self.innovation_cov_, input_names=self.input_names_, output_names=self.output_names_,
+            info=info,
+        )
+
+    def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
+        """A past window at rest: zero input and the resting output, shapes (past_steps_, m) and (past_steps_, p)."""
+        check_fitted(self, "coef_")
+        y_rest, _ = self._resting_output()
+        L = self.past_steps_
+        return np.zeros((L, self.n_inputs_)), np.tile(y_rest, (L, 1))
+
+    # -------------------------------------------------------------------------------------------- predict
+    def _windows(self, u_past, y_past, u_future):
+        """Validated 3-D (batch, time, channel) copies of the last ``past_steps_`` samples and the future input."""
+        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
+        arrs = []
+        for name, a, ch in (("u_past", u_past, m), ("y_past", y_past, p), ("u_future", u_future, m)):
+            a = np.asarray(a, dtype=np.float64)
+            if a.ndim != 3 or a.shape[2] != ch:
+                raise SessionError(f"{name} must have shape (n_samples, {ch}) for this model; got {a.shape[1:]}.")
+            if not np.all(np.isfinite(a)):
+                raise SessionError(f"{name} holds NaN or infinite values; give a window of valid samples.")
+            arrs.append(a)
+        up, yp, uf = arrs
+        if up.shape[1] != yp.shape[1] or up.shape[1] < L:
+            raise SessionError(
+                f"the past window needs at least past_steps_={L} samples of inputs and outputs of equal length; "
+                f"got {up.shape[1]} input and {yp.shape[1]} output samples. Pass a longer past window."
+            )
+        return up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf
+
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """:meth:`predict` for a batch of windows at once.
+
+        Parameters
+        ----------
+        u_past : ndarray, shape (n_windows, n_past, n_inputs)
+        y_past : ndarray, shape (n_windows, n_past, n_outputs)
+        u_future : ndarray, shape (n_windows, n_future, n_inputs)
+
+        Returns
+        -------
+        y_future : ndarray, shape (n_windows, n_future, n_outputs)
+        """
+        check_fitted(self, "coef_")
+        up, yp, uf = self._windows(u_past, y_past, u_future)
+        na, nb, d, L = int(self.output_lags), int(self.input_lags), int(self.delay_samples), self.past_steps_
+        H = uf.shape[1]
+        U = np.concatenate([up, uf], axis=1)
+        Y = np.concatenate([yp, np.zeros((yp.shape[0], H, self.n_outputs_))], axis=1)
+        A, B = self.ar_coefs_, self.input_coefs_
+        # The input part does not depend on predictions: add it for every step at once.
+        drive = np.broadcast_to(self.intercept_, (yp.shape[0], H, self.n_outputs_)).copy()
+        for j in range(nb):
+            drive += U[:, L - d - j: L - d - j + H] @ B[j].T
+        for h in range(H):
+            k = L + h
+            acc = drive[:, h]
+            for i in range(na):
+                acc = acc + Y[:, k - 1 - i] @ A[i].T
+            Y[:, k] = acc
+        return Y[:, L:]
+
+    def predict(self, u_past, y_past, u_future) -> np.ndarray:
+        """Multi-step prediction over ``u_future`` from a measured past window, feeding back its own predictions.
+
+        Parameters
+        ----------
+        u_past : ndarray, shape (n_past, n_inputs)
+            ``n_past >= past_steps_``; only the last ``past_steps_`` samples are used.
+        y_past : ndarray, shape (n_past, n_outputs)
+        u_future : ndarray, shape (n_future, n_inputs)
+
+        Returns
+        -------
+        y_future : ndarray, shape (n_future, n_outputs)
+
+        Raises
+        ------
+        SessionError
+            Wrong shapes, non-finite values, or a past window shorter than ``past_steps_``.
+        """
+        check_fitted(self, "coef_")
+        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
+        up, yp, uf = (a[:, None] if a.ndim == 1 else a for a in (up, yp, uf))
+        if up.ndim != 2 or yp.ndim != 2 or uf.ndim != 2:
+            raise SessionError("u_past, y_past and u_future must be 2-D time-major arrays (n_samples, n_channels).")
+        return self.predict_many(up[None], yp[None], uf[None])[0]
+
+    # -------------------------------------------------------------------------------------------- storage
+    def to_state(self) -> dict:
+        """Everything needed to rebuild the fitted estimator (numpy arrays, numbers, strings, nested dicts)."""
+        check_fitted(self, "coef_")
+        params = self.get_params()
+        params["alphas"] = np.asarray(self.alphas, dtype=np.float64)
+        return {
+            "params": params,
+            "coef": self.coef_, "intercept": self.intercept_, "alpha": self.alpha_, "scale": self.scale_,
+            "condition_number": self.condition_number_, "n_rows": self.n_rows_, "n_folds": self.n_folds_,
+            "cv_scheme": self.cv_scheme_, "innovation_cov": self.innovation_cov_,
+            "n_inputs": self.n_inputs_, "n_outputs": self.n_outputs_,
+            "input_names": list(self.input_names_), "output_names": list(self.output_names_),
+            "sample_rate_hz": self.sample_rate_hz_,
+            "cv_table": {str(c): self.cv_table_[c].to_numpy() for c in self.cv_table_.columns},
+            "cv_columns": [str(c) for c in self.cv_table_.columns],
+        }
+
+    @classmethod
+    def from_state(cls, state: dict) -> "RidgeArx":
+        """Rebuild a fitted estimator from :meth:`to_state` output."""
+        params = dict(state["params"])
+        params["alphas"] = tuple(float(a) for a in np.atleast_1d(params["alphas"]))
+        est = cls(**params)
+        prob = _Problem(int(state["n_outputs"]), int(state["n_inputs"]), int(params["output_lags"]),
+                        int(params["input_lags"]), int(params["delay_samples"]), bool(params["fit_intercept"]))
+        table = pd.DataFrame({c: np.asarray(state["cv_table"][c]) for c in state["cv_columns"]})
+        est._set_fitted(
+            prob, coef=state["coef"], intercept=state["intercept"], alpha=state["alpha"], table=table,
+            scale=state["scale"], cond=state["condition_number"], n_rows=state["n_rows"],
+            n_folds=state["n_folds"], scheme=state["cv_scheme"], innovation_cov=state["innovation_cov"],
+            input_names=state["input_names"], output_names=state["output_names"],
+            sample_rate_hz=state["sample_rate_hz"],
+        )
+        return est
