@@ -1,0 +1,552 @@
+"""Prediction scores per channel and per step ahead, on held-out data, and residual tests.
+
+Normalisations (per output channel, over the scored samples of that channel and step):
+
+* ``RMSE  = sqrt(mean(e²))`` with ``e = y − ŷ``, in the channel's unit;
+* ``NRMSE = RMSE / std(y)`` — the population standard deviation (ddof = 0) of the measured values;
+* ``R²    = 1 − SSE / SST`` with ``SST = Σ (y − mean(y))²`` (about the mean of the measured values), so
+  ``R² = 1 − NRMSE²``;
+* ``VAF   = 100 · (1 − var(e) / var(y))`` in percent; it ignores a constant bias in ``e``, R² does not.
+
+Scores are pooled over all prediction windows of the scored session. Windows are built inside valid segments only
+(:meth:`Session.segments`): neither the past window nor the predicted span crosses a trial boundary or a masked
+sample.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .exceptions import SessionError
+
+__all__ = [
+    "r2",
+    "nrmse",
+    "vaf",
+    "Scores",
+    "kstep_scores",
+    "freerun_scores",
+    "LjungBox",
+    "ljung_box",
+    "CrossCorrelation",
+    "input_residual_xcorr",
+]
+
+_METRICS = ("r2", "nrmse", "vaf", "rmse")
+_BATCH_WINDOWS = 512
+
+
+# ------------------------------------------------------------------------------------------------ plain metrics
+def _pair(y_true, y_pred):
+    yt = np.asarray(y_true, dtype=np.float64)
+    yp = np.asarray(y_pred, dtype=np.float64)
+    yt = yt[:, None] if yt.ndim == 1 else yt
+    yp = yp[:, None] if yp.ndim == 1 else yp
+    if yt.shape != yp.shape or yt.ndim != 2 or yt.shape[0] < 2:
+        raise SessionError(
+            f"measured and predicted outputs must be 2-D time-major arrays of the same shape with at least 2 "
+            f"samples; got {yt.shape} and {yp.shape}."
+        )
+    if not (np.all(np.isfinite(yt)) and np.all(np.isfinite(yp))):
+        raise SessionError("measured or predicted outputs hold NaN or infinite values; score valid samples only.")
+    return yt, yp
+
+
+def _safe_ratio(num, den):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def r2(y_true, y_pred) -> np.ndarray:
+    """Coefficient of determination per channel, ``1 − SSE / SST`` about the mean of ``y_true``.
+
+    Parameters
+    ----------
+    y_true, y_pred : ndarray, shape (n_samples, n_channels)
+
+    Returns
+    -------
+    ndarray, shape (n_channels,)
+        NaN for a channel whose measured values do not vary.
+    """
+    yt, yp = _pair(y_true, y_pred)
+    sse = ((yt - yp) ** 2).sum(axis=0)
+    sst = ((yt - yt.mean(axis=0)) ** 2).sum(axis=0)
+    return 1.0 - _safe_ratio(sse, sst)
+
+
+def nrmse(y_true, y_pred) -> np.ndarray:
+    """Root-mean-square error divided by the (ddof = 0) standard deviation of ``y_true``, per channel."""
+    yt, yp = _pair(y_true, y_pred)
+    return _safe_ratio(np.sqrt(((yt - yp) ** 2).mean(axis=0)), yt.std(axis=0))
+
+
+def vaf(y_true, y_pred) -> np.ndarray:
+    """Variance accounted for, ``100 · (1 − var(y_true − y_pred) / var(y_true))`` in percent, per channel."""
+    yt, yp = _pair(y_true, y_pred)
+    return 100.0 * (1.0 - _safe_ratio((yt - yp).var(axis=0), yt.var(axis=0)))
+
+
+# ------------------------------------------------------------------------------------------------ accumulation
+class _Pooled:
+    """Streaming count, mean and centred sum of squares of ``y`` and ``e`` plus ``Σ e²`` (Chan et al. merge)."""
+
+    def __init__(self, shape):
+        self.n = np.zeros(shape)
+        self.my, self.My = np.zeros(shape), np.zeros(shape)
+        self.me, self.Me = np.zeros(shape), np.zeros(shape)
+        self.sse = np.zeros(shape)
+
+    def add(self, y, e):
+        """Add samples stacked on axis 0: ``y, e`` of shape (n_new, *shape)."""
+        nb = y.shape[0]
+        if nb == 0:
+            return
+        n = self.n + nb
+        for mean_attr, m2_attr, x in (("my", "My", y), ("me", "Me", e)):
+            mb = x.mean(axis=0)
+            Mb = ((x - mb) ** 2).sum(axis=0)
+            ma, Ma = getattr(self, mean_attr), getattr(self, m2_attr)
+            delta = mb - ma
+            setattr(self, mean_attr, ma + delta * nb / n)
+            setattr(self, m2_attr, Ma + Mb + delta ** 2 * self.n * nb / n)
+        self.sse += (e ** 2).sum(axis=0)
+        self.n = n
+
+    def table(self) -> dict:
+        rmse = np.sqrt(_safe_ratio(self.sse, self.n))
+        return {
+            "r2": 1.0 - _safe_ratio(self.sse, self.My),
+            "nrmse": _safe_ratio(rmse, np.sqrt(_safe_ratio(self.My, self.n))),
+            "vaf": 100.0 * (1.0 - _safe_ratio(self.Me, self.My)),
+            "rmse": rmse,
+            "n_samples": self.n.astype(np.int64),
+        }
+
+
+# ------------------------------------------------------------------------------------------------ Scores
+def _empty_kstep() -> pd.DataFrame:
+    return pd.DataFrame({"step": pd.Series(dtype=np.int64), "channel": pd.Series(dtype=object),
+                         **{k: pd.Series(dtype=float) for k in _METRICS}, "n_samples": pd.Series(dtype=np.int64)})
+
+
+def _empty_freerun() -> pd.DataFrame:
+    return _empty_kstep().drop(columns="step")
+
+
+@dataclass(frozen=True)
+class Scores:
+    """Held-out prediction scores.
+
+    Attributes
+    ----------
+    output_names : tuple of str
+    kstep : pandas.DataFrame
+        One row per (step ahead, channel): ``step`` (1 … horizon_steps), ``channel``, ``r2``, ``nrmse``, ``vaf``,
+        ``rmse``, ``n_samples``. Empty when no k-step scores were computed.
+    freerun : pandas.DataFrame
+        One row per channel with the same metric columns, for free-run prediction over whole segments. Empty when
+        not computed.
+    horizon_steps : int
+        0 when there are no k-step scores.
+    stride_steps : int
+        Spacing of consecutive k-step windows in samples.
+    n_windows : int
+        Number of k-step windows scored.
+    n_segments : int
+        Number of segments scored in free run.
+
+    Notes
+    -----
+    See the module docstring for the normalisations. Step ``h`` scores the prediction ``h`` samples after the end of
+    the past window (``h = 1`` is the one-step-ahead prediction).
+    """
+
+    output_names: tuple
+    kstep: pd.DataFrame = field(default_factory=_empty_kstep)
+    freerun: pd.DataFrame = field(default_factory=_empty_freerun)
+    horizon_steps: int = 0
+    stride_steps: int = 1
+    n_windows: int = 0
+    n_segments: int = 0
+
+    def metric(self, name: str) -> pd.DataFrame:
+        """One k-step metric as a table: index ``step``, one column per output channel."""
+        if name not in _METRICS:
+            raise SessionError(f"unknown metric {name!r}; choose one of {list(_METRICS)}.")
+        if self.kstep.empty:
+            return pd.DataFrame(columns=list(self.output_names), dtype=float)
+        wide = self.kstep.pivot(index="step", columns="channel", values=name)
+        return wide[list(self.output_names)]
+
+    def summary(self) -> pd.DataFrame:
+        """Mean over channels of each metric, per step ahead, plus a ``free run`` row (when scored)."""
+        rows = []
+        if not self.kstep.empty:
+            g = self.kstep.groupby("step")[list(_METRICS)].mean()
+            rows += [{"prediction": f"{int(h)}-step", **g.loc[h].to_dict()} for h in g.index]
+        if not self.freerun.empty:
+            rows.append({"prediction": "free run", **self.freerun[list(_METRICS)].mean().to_dict()})
+        return pd.DataFrame(rows, columns=["prediction", *_METRICS])
+
+    def error_band(self, n_steps: int) -> np.ndarray:
+        """Held-out RMSE per step and channel for a prediction of ``n_steps`` samples, shape (n_steps, p).
+
+        Steps up to ``horizon_steps`` use the k-step RMSE; later steps use the free-run RMSE when scored, else the
+        RMSE of the last scored step.
+        """
+        p = len(self.output_names)
+        band = np.full((int(n_steps), p), np.nan)
+        ks = self.metric("rmse").to_numpy() if not self.kstep.empty else np.zeros((0, p))
+        h = min(ks.shape[0], band.shape[0])
+        band[:h] = ks[:h]
+        if self.freerun.empty:
+            tail = ks[-1] if ks.shape[0] else np.full(p, np.nan)
+        else:
+            tail = self.freerun.set_index("channel").loc[list(self.output_names), "rmse"].to_numpy()
+        band[h:] = tail
+        return band
+
+    def merged(self, other: "Scores") -> "Scores":
+        """These scores with the non-empty tables of ``other`` (same channels) added."""
+        if tuple(other.output_names) != tuple(self.output_names):
+            raise SessionError("scores of different output channels cannot be merged.")
+        ks = other if not other.kstep.empty else self
+        fr = other if not other.freerun.empty else self
+        return Scores(self.output_names, ks.kstep, fr.freerun, ks.horizon_steps, ks.stride_steps, ks.n_windows,
+                      fr.n_segments)
+
+    def to_dict(self) -> dict:
+        """JSON-like form (lists, numbers, strings); :meth:`from_dict` inverts it."""
+        def cols(df):
+            return {c: [v.item() if hasattr(v, "item") else v for v in df[c].tolist()] for c in df.columns}
+
+        return {"output_names": list(self.output_names), "kstep": cols(self.kstep), "freerun": cols(self.freerun),
+                "horizon_steps": int(self.horizon_steps), "stride_steps": int(self.stride_steps),
+                "n_windows": int(self.n_windows), "n_segments": int(self.n_segments)}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Scores":
+        ks, fr = _empty_kstep(), _empty_freerun()
+        kstep = pd.DataFrame(d["kstep"]).astype(ks.dtypes.to_dict()) if d["kstep"].get("channel") else ks
+        freerun = pd.DataFrame(d["freerun"]).astype(fr.dtypes.to_dict()) if d["freerun"].get("channel") else fr
+        return cls(tuple(d["output_names"]), kstep, freerun, int(d["horizon_steps"]), int(d["stride_steps"]),
+                   int(d["n_windows"]), int(d["n_segments"]))
+
+    def to_text(self) -> str:
+        """A short plain-text table of :meth:`summary`."""
+        s = self.summary()
+        if s.empty:
+            return "(no scores)"
+        return s.to_string(index=False, float_format=lambda v: f"{v:.4g}")
+
+
+# ------------------------------------------------------------------------------------------------ held-out scoring
+def _window_lengths(predictor, horizon_steps):
+    past = getattr(predictor, "past_steps_", None)
+    if past is None:
+        past = getattr(predictor, "past_steps", None)
+    if past is None or not hasattr(predictor, "predict"):
+        raise SessionError(
+            f"expected a fitted predictor with predict(u_past, y_past, u_future) and past_steps_; got "
+            f"{type(predictor).__name__}. Fit it first."
+        )
+    limit = getattr(predictor, "max_horizon_steps_", None)
+    if horizon_steps is not None:
+        H = int(horizon_steps)
+        if H < 1 or H != horizon_steps:
+            raise SessionError(f"horizon_steps must be a whole number >= 1; got {horizon_steps!r}.")
+        if limit is not None and H > int(limit):
+            raise SessionError(
+                f"this predictor predicts at most {int(limit)} steps ahead; got horizon_steps={H}. Ask for "
+                f"{int(limit)} or fewer, or refit it with a longer horizon."
+            )
+        return int(past), H, limit
+    return int(past), None, limit
+
+
+def _predict_batch(predictor, up, yp, uf) -> np.ndarray:
+    """Predictions for stacked windows; uses ``predict_many`` when the predictor offers it."""
+    if hasattr(predictor, "predict_many"):
+        out = np.asarray(predictor.predict_many(up, yp, uf), dtype=np.float64)
+    else:
+        out = np.stack([np.asarray(predictor.predict(a, b, c), dtype=np.float64) for a, b, c in zip(up, yp, uf)])
+    expected = (uf.shape[0], uf.shape[1], yp.shape[2])
+    if out.shape != expected:
+        raise SessionError(f"the predictor returned shape {out.shape[1:]}; expected {expected[1:]} per window.")
+    return out
+
+
+def _output_names(session) -> tuple:
+    names = getattr(session, "output_names", None)
+    return tuple(names) if names else tuple(f"y{i}" for i in range(int(session.n_outputs)))
+
+
+def _long_table(names, tab, steps=None) -> pd.DataFrame:
+    p = len(names)
+    rows = {"channel": np.tile(np.asarray(names, dtype=object), 1 if steps is None else len(steps))}
+    if steps is not None:
+        rows = {"step": np.repeat(np.asarray(steps, dtype=np.int64), p), **rows}
+    for k in (*_METRICS, "n_samples"):
+        rows[k] = np.asarray(tab[k]).reshape(-1)
+    return pd.DataFrame(rows)
+
+
+def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 1) -> Scores:
+    """Scores of predictions 1 … ``horizon_steps`` samples ahead from every past window of a (held-out) session.
+
+    Parameters
+    ----------
+    predictor : fitted predictor
+        Anything with ``predict(u_past, y_past, u_future)`` and ``past_steps_`` (or a :class:`StateSpaceModel`).
+    session : Session or SessionFile
+        Scored data, normally the held-out trials only.
+    horizon_steps : int
+        Number of steps ahead, ``H >= 1`` (at most the predictor's ``max_horizon_steps_``).
+    stride_steps : int, default 1
+        Spacing of consecutive windows in samples (1 = every window).
+
+    Returns
+    -------
+    Scores
+        With the ``kstep`` table filled (step 1 … H, every channel).
+
+    Raises
+    ------
+    SessionError
+        Bad arguments, or no segment holds ``past_steps + H`` valid samples.
+
+    Notes
+    -----
+    A window starting at sample ``t`` of a valid segment ``[s, e)`` uses the past ``[t − P, t)`` and is scored on
+    ``[t, t + H)``, with ``s + P <= t <= e − H``: nothing crosses a trial boundary or a masked sample.
+    """
+    P, H, _ = _window_lengths(predictor, horizon_steps)
+    stride = int(stride_steps)
+    if stride < 1 or stride != stride_steps:
+        raise SessionError(f"stride_steps must be a whole number >= 1; got {stride_steps!r}.")
+    names = _output_names(session)
+    pooled, n_windows = _Pooled((H, len(names))), 0
+    for s, e in session.segments(min_length=P + H):
+        u, y, _mask = session.read(s, e)
+        starts = np.arange(P, e - s - H + 1, stride)
+        for i in range(0, starts.size, _BATCH_WINDOWS):
+            t0 = starts[i: i + _BATCH_WINDOWS, None]
+            past, fut = t0 + np.arange(-P, 0), t0 + np.arange(H)
+            yhat = _predict_batch(predictor, u[past], y[past], u[fut])
+            pooled.add(y[fut], y[fut] - yhat)
+            n_windows += t0.shape[0]
+    if n_windows == 0:
+        raise SessionError(
+            f"no valid segment of the session holds past_steps + horizon_steps = {P + H} samples, so nothing can be "
+            "scored. Use a shorter horizon, or score on longer trials."
+        )
+    table = _long_table(names, pooled.table(), steps=np.arange(1, H + 1))
+    return Scores(names, kstep=table, horizon_steps=H, stride_steps=stride, n_windows=n_windows)
+
+
+def _free_run(predictor, u, y, P, limit):
+    """Prediction of ``y[P:]`` from the measured ``[0, P)`` only; chained in blocks when the horizon is limited."""
+    T = u.shape[0]
+    step = T - P if limit is None else int(limit)
+    y_run = np.array(y[:P], dtype=np.float64)
+    out = []
+    for t in range(P, T, step):
+        stop = min(T, t + step)
+        yhat = _predict_batch(predictor, u[None, t - P: t], y_run[None, y_run.shape[0] - P:], u[None, t: stop])[0]
+        out.append(yhat)
+        y_run = np.concatenate([y_run, yhat])
+    return np.concatenate(out) if out else np.zeros((0, y.shape[1]))
+
+
+def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Scores:
+    """Scores of free-run prediction: from the first past window of each valid segment over the rest of it.
+
+    Parameters
+    ----------
+    predictor : fitted predictor
+    session : Session or SessionFile
+    max_steps : int, optional
+        Score at most this many samples after each past window (default: the whole segment).
+
+    Returns
+    -------
+    Scores
+        With the ``freerun`` table filled (one row per channel, pooled over segments).
+
+    Notes
+    -----
+    Only the first ``past_steps`` measured samples of a segment are given; afterwards the predictor feeds back its
+    own predictions. Predictors with a finite ``max_horizon_steps_`` are chained block by block, each block's past
+    outputs taken from the previous predictions.
+    """
+    P, _, limit = _window_lengths(predictor, None)
+    if max_steps is not None and (int(max_steps) < 1 or int(max_steps) != max_steps):
+        raise SessionError(f"max_steps must be a whole number >= 1 or None; got {max_steps!r}.")
+    names = _output_names(session)
+    pooled, n_seg = _Pooled((len(names),)), 0
+    for s, e in session.segments(min_length=P + 2):
+        stop = e if max_steps is None else min(e, s + P + int(max_steps))
+        u, y, _mask = session.read(s, stop)
+        yhat = _free_run(predictor, u, y, P, limit)
+        pooled.add(y[P:], y[P:] - yhat)
+        n_seg += 1
+    if n_seg == 0:
+        raise SessionError(
+            f"no valid segment of the session is longer than past_steps + 1 = {P + 1} samples; nothing can be "
+            "scored in free run. Score on longer trials."
+        )
+    return Scores(names, freerun=_long_table(names, pooled.table()), n_segments=n_seg)
+
+
+# ------------------------------------------------------------------------------------------------ residual tests
+def _residuals(e, name="residuals"):
+    e = np.asarray(e, dtype=np.float64)
+    e = e[:, None] if e.ndim == 1 else e
+    if e.ndim != 2 or not np.all(np.isfinite(e)):
+        raise SessionError(f"{name} must be a finite 2-D time-major array (n_samples, n_channels); got {e.shape}.")
+    return e
+
+
+@dataclass(frozen=True)
+class LjungBox:
+    """Ljung–Box portmanteau test of residual whiteness, per channel.
+
+    Attributes
+    ----------
+    statistic : ndarray, shape (n_channels,)
+        ``Q = n (n + 2) Σ_{k=1..h} ρ_k² / (n − k)``.
+    p_value : ndarray, shape (n_channels,)
+        ``P(χ²_dof > Q)``.
+    lags : int
+        ``h``.
+    dof : int
+        ``h − fitted_params``.
+    n_samples : int
+    """
+
+    statistic: np.ndarray
+    p_value: np.ndarray
+    lags: int
+    dof: int
+    n_samples: int
+
+    def rejects(self, level: float = 0.05) -> np.ndarray:
+        """True where whiteness is rejected at significance ``level``."""
+        return self.p_value < level
+
+
+def ljung_box(residuals, lags: int, *, fitted_params: int = 0) -> LjungBox:
+    """Test whether residuals are white (uncorrelated in time), channel by channel.
+
+    Parameters
+    ----------
+    residuals : ndarray, shape (n_samples, n_channels)
+    lags : int
+        Number of autocorrelation lags ``h`` pooled in the statistic, ``1 <= h < n_samples``.
+    fitted_params : int, default 0
+        Degrees of freedom removed from ``h`` (e.g. ARMA orders of a residual model).
+
+    Returns
+    -------
+    LjungBox
+
+    Raises
+    ------
+    SessionError
+        Non-finite residuals, ``h`` out of range, or no degree of freedom left.
+
+    Notes
+    -----
+    ``ρ_k = Σ_t ẽ_t ẽ_{t−k} / Σ_t ẽ_t²`` with ``ẽ = e − mean(e)``; under whiteness ``Q`` is approximately
+    χ²-distributed with ``dof`` degrees of freedom.
+
+    References
+    ----------
+    Ljung G.M., Box G.E.P. (1978), On a measure of lack of fit in time series models, Biometrika 65:297–303.
+    """
+    e = _residuals(residuals)
+    n, h = e.shape[0], int(lags)
+    if h != lags or not 1 <= h < n:
+        raise SessionError(f"lags must be a whole number in [1, {n - 1}] for {n} residual samples; got {lags!r}.")
+    dof = h - int(fitted_params)
+    if dof < 1:
+        raise SessionError(f"lags - fitted_params must be >= 1; got {h} - {fitted_params}. Use more lags.")
+    ec = e - e.mean(axis=0)
+    den = (ec ** 2).sum(axis=0)
+    rho = np.stack([(ec[k:] * ec[:-k]).sum(axis=0) for k in range(1, h + 1)]) / np.where(den > 0, den, 1.0)
+    q = n * (n + 2) * ((rho ** 2) / (n - np.arange(1, h + 1))[:, None]).sum(axis=0)
+    return LjungBox(statistic=q, p_value=stats.chi2.sf(q, dof), lags=h, dof=dof, n_samples=n)
+
+
+@dataclass(frozen=True)
+class CrossCorrelation:
+    """Sample cross-correlation of inputs with residuals and its 95% band under independence.
+
+    Attributes
+    ----------
+    lags : ndarray of int, shape (2 max_lag + 1,)
+        ``τ = −max_lag … max_lag``.
+    values : ndarray, shape (2 max_lag + 1, n_inputs, n_outputs)
+        ``values[l, i, j]`` correlates ``u_i[k]`` with ``e_j[k + τ_l]``; a significant value at ``τ > 0`` means
+        an input effect the model missed.
+    band : float
+        ``1.96 / sqrt(n_samples)``.
+    n_samples : int
+    """
+
+    lags: np.ndarray
+    values: np.ndarray
+    band: float
+    n_samples: int
+
+    @property
+    def outside(self) -> np.ndarray:
+        """True where ``|values| > band``."""
+        return np.abs(self.values) > self.band
+
+
+def input_residual_xcorr(u, e, max_lag: int) -> CrossCorrelation:
+    """Normalised cross-correlation between inputs and residuals for lags ``−max_lag … max_lag``.
+
+    Parameters
+    ----------
+    u : ndarray, shape (n_samples, n_inputs)
+    e : ndarray, shape (n_samples, n_outputs)
+        Residuals on the same samples.
+    max_lag : int
+        ``0 <= max_lag < n_samples``.
+
+    Returns
+    -------
+    CrossCorrelation
+
+    Notes
+    -----
+    ``r_ij(τ) = (1/N) Σ_k ũ_i[k] ẽ_j[k + τ] / (σ_ui σ_ej)`` over the overlapping samples, means removed. If
+    inputs and residuals are independent and one of them is white, ``r(τ)`` is approximately normal with standard
+    deviation ``1/√N``, hence the band ``±1.96/√N``.
+
+    References
+    ----------
+    Ljung L. (1999), System Identification: Theory for the User, 2nd ed., section 16.6 (residual analysis).
+    """
+    uu, ee = _residuals(u, "u"), _residuals(e, "e")
+    if uu.shape[0] != ee.shape[0]:
+        raise SessionError(f"u and e must have the same number of samples; got {uu.shape[0]} and {ee.shape[0]}.")
+    n, K = uu.shape[0], int(max_lag)
+    if K != max_lag or not 0 <= K < n:
+        raise SessionError(f"max_lag must be a whole number in [0, {n - 1}]; got {max_lag!r}.")
+    uc, ec = uu - uu.mean(axis=0), ee - ee.mean(axis=0)
+    su, se = uc.std(axis=0), ec.std(axis=0)
+    norm = n * np.outer(np.where(su > 0, su, np.nan), np.where(se > 0, se, np.nan))
+    vals = []
+    for tau in range(-K, K + 1):
+        prod = uc[: n - tau].T @ ec[tau:] if tau >= 0 else uc[-tau:].T @ ec[: n + tau]
+        vals.append(prod / norm)
+    return CrossCorrelation(np.arange(-K, K + 1), np.stack(vals), 1.96 / math.sqrt(n), n)
