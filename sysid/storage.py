@@ -1,0 +1,274 @@
+"""Save and load fitted predictors with their provenance, in stimsteer's own HDF5 model layout.
+
+Layout (version 1)::
+
+    /                       attributes: stimsteer_file = "model", layout_version = 1, kind = "<storage kind>",
+                                        created_utc = ISO-8601 time
+    /state/                 the predictor's ``to_state()`` dict: each nested dict is a group, each numeric or
+                            boolean numpy array a dataset, and the remaining plain values (numbers, strings, bools,
+                            None, lists of those) one JSON text dataset ``__values__`` per group
+    /provenance             JSON text: where the model came from (data hash, settings, split, scores, package
+                            versions, creation time)
+
+A storable class has a class attribute ``storage_kind``, a method ``to_state() -> dict`` and a classmethod
+``from_state(state)``; :data:`_KINDS` maps each kind to ``"module:Class"`` (imported only when needed).
+:class:`~stimsteer.sysid.statespace.StateSpaceModel` is stored through :func:`model_to_state` /
+:func:`model_from_state`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import importlib
+import json
+import platform
+from importlib import metadata as _metadata
+from pathlib import Path
+
+import numpy as np
+
+from ._files import atomic_path
+from .exceptions import FileFormatError, StimsteerError
+from .statespace import StateSpaceModel
+
+__all__ = ["save_predictor", "load_predictor", "model_to_state", "model_from_state", "LAYOUT_VERSION"]
+
+LAYOUT_VERSION = 1
+_MARK = "stimsteer_file"
+_MARK_VALUE = "model"
+
+# kind -> "module:Class"; one line per storable class.
+_KINDS = {
+    "state_space": "stimsteer.sysid.statespace:StateSpaceModel",
+    "ridge_arx": "stimsteer.sysid.arx:RidgeArx",
+    "subspace": "stimsteer.sysid.subspace:SubspaceId",
+    "lsq_predictor": "stimsteer.sysid.datadriven:LsqPredictor",
+    "hankel_predictor": "stimsteer.sysid.datadriven:HankelPredictor",
+}
+
+_VERSIONED = ("stimsteer", "numpy", "scipy", "scikit-learn", "pandas", "h5py")
+
+
+# ------------------------------------------------------------------------------------------------ state space
+def model_to_state(model: StateSpaceModel) -> dict:
+    """The storable state of a :class:`StateSpaceModel` (its matrices, rate, past window, names and info)."""
+    return {
+        "A": model.A, "B": model.B, "C": model.C, "D": model.D, "K": model.K,
+        "innovation_cov": model.innovation_cov, "sample_rate_hz": float(model.sample_rate_hz),
+        "past_steps": int(model.past_steps), "input_names": list(model.input_names),
+        "output_names": list(model.output_names), "info": dict(model.info),
+    }
+
+
+def model_from_state(state: dict) -> StateSpaceModel:
+    """Inverse of :func:`model_to_state`."""
+    return StateSpaceModel(
+        A=state["A"], B=state["B"], C=state["C"], D=state["D"], K=state["K"],
+        innovation_cov=state["innovation_cov"], sample_rate_hz=state["sample_rate_hz"],
+        past_steps=state["past_steps"], input_names=tuple(state["input_names"]),
+        output_names=tuple(state["output_names"]), info=dict(state.get("info", {})),
+    )
+
+
+# ------------------------------------------------------------------------------------------------ encoding
+def _plain(value, where):
+    """A JSON-ready copy of a plain value (numpy scalars and small object arrays converted)."""
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, (list, tuple)):
+        return [_plain(v, where) for v in value]
+    if isinstance(value, np.ndarray):  # string/object arrays only reach here
+        return [_plain(v, where) for v in value.tolist()]
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    raise StimsteerError(
+        f"cannot store {where} of type {type(value).__name__}; to_state() may hold numpy arrays, numbers, strings, "
+        "bools, None, lists of those and nested dicts."
+    )
+
+
+def _write_dict(group, d: dict, where: str):
+    plain = {}
+    for key, value in d.items():
+        key = str(key)
+        if "/" in key or key.startswith("__") or key in (".",):
+            raise StimsteerError(f"cannot store key {key!r} in {where}: keys may not contain '/' or start with '__'.")
+        if isinstance(value, dict):
+            _write_dict(group.create_group(key), value, f"{where}/{key}")
+        elif isinstance(value, np.ndarray) and value.dtype.kind in "biufc":
+            group.create_dataset(key, data=value)
+        else:
+            plain[key] = _plain(value, f"{where}/{key}")
+    group.create_dataset("__values__", data=json.dumps(plain, allow_nan=True))
+
+
+def _read_dict(group) -> dict:
+    import h5py
+
+    out = json.loads(_text(group["__values__"][()])) if "__values__" in group else {}
+    for key, item in group.items():
+        if key == "__values__":
+            continue
+        out[key] = _read_dict(item) if isinstance(item, h5py.Group) else np.asarray(item[()])
+    return out
+
+
+def _text(v) -> str:
+    return v.decode("utf-8") if isinstance(v, bytes) else str(v)
+
+
+# ------------------------------------------------------------------------------------------------ registry
+def _kind_of(predictor) -> str:
+    if isinstance(predictor, StateSpaceModel):
+        return "state_space"
+    kind = getattr(type(predictor), "storage_kind", None)
+    if kind not in _KINDS or not hasattr(predictor, "to_state"):
+        raise StimsteerError(
+            f"{type(predictor).__name__} is not a storable predictor (storage_kind={kind!r}); storable kinds: "
+            f"{sorted(_KINDS)}. Register it in stimsteer.sysid.storage._KINDS and give it to_state/from_state."
+        )
+    return kind
+
+
+def _class_for(kind: str, path):
+    target = _KINDS.get(kind)
+    if target is None:
+        raise FileFormatError(
+            f"{path} holds a model of unknown kind {kind!r}; this stimsteer knows {sorted(_KINDS)}. It was probably "
+            "written by a newer stimsteer: upgrade, or refit the model."
+        )
+    module, _, name = target.partition(":")
+    try:
+        return getattr(importlib.import_module(module), name)
+    except (ImportError, AttributeError) as exc:
+        raise FileFormatError(f"{path} holds a {kind!r} model, but its class {target} cannot be loaded: {exc}.") \
+            from None
+
+
+def _versions() -> dict:
+    out = {"python": platform.python_version()}
+    for dist in _VERSIONED:
+        try:
+            out[dist] = _metadata.version(dist)
+        except _metadata.PackageNotFoundError:
+            out[dist] = "not installed"
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ public API
+def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False) -> Path:
+    """Write a fitted predictor and its provenance to an HDF5 model file, atomically.
+
+    Parameters
+    ----------
+    predictor : fitted storable predictor or StateSpaceModel
+    path : str or Path
+        Output file (``.h5`` suggested).
+    provenance : dict
+        JSON-like record of where the model came from (data hash, settings, split, scores...). The package versions
+        and the creation time are added under ``"saved"``.
+    overwrite : bool, default False
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+        The written file.
+
+    Raises
+    ------
+    StimsteerError
+        Not a storable or not a fitted predictor; the file exists and ``overwrite`` is False; a value in the state
+        or the provenance cannot be stored.
+    """
+    import h5py
+
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise StimsteerError(f"model file {path} already exists; choose another path or pass --force / overwrite=True.")
+    kind = _kind_of(predictor)
+    state = model_to_state(predictor) if kind == "state_space" else predictor.to_state()
+    created = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    prov = dict(provenance or {})
+    prov["saved"] = {"created_utc": created, "versions": _versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
+    text = json.dumps(_plain_tree(prov, "provenance"), allow_nan=True)
+    with atomic_path(path, suffix=".h5") as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs[_MARK] = _MARK_VALUE
+            f.attrs["layout_version"] = LAYOUT_VERSION
+            f.attrs["kind"] = kind
+            f.attrs["created_utc"] = created
+            _write_dict(f.create_group("state"), state, "state")
+            f.create_dataset("provenance", data=text)
+    return path
+
+
+def _plain_tree(d, where):
+    if isinstance(d, dict):
+        return {str(k): _plain_tree(v, f"{where}/{k}") for k, v in d.items()}
+    if isinstance(d, np.ndarray) and d.dtype.kind in "biufc":
+        return d.tolist()
+    return _plain(d, where)
+
+
+def _open_model(path):
+    import h5py
+
+    path = Path(path)
+    if not path.is_file():
+        raise FileNotFoundError(2, "no such model file", str(path))
+    try:
+        f = h5py.File(path, "r")
+    except OSError:
+        raise FileFormatError(
+            f"{path} is not an HDF5 file, so not a stimsteer model; give the file written by `stimsteer fit`."
+        ) from None
+    mark = _text(f.attrs.get(_MARK, ""))
+    if mark != _MARK_VALUE:
+        f.close()
+        what = f"a stimsteer {mark} file" if mark else "an HDF5 file without stimsteer's model marker"
+        raise FileFormatError(f"{path} is {what}, not a stimsteer model; give the file written by `stimsteer fit`.")
+    version = int(f.attrs.get("layout_version", -1))
+    if version != LAYOUT_VERSION:
+        f.close()
+        raise FileFormatError(
+            f"{path} uses model layout version {version}; this stimsteer reads version {LAYOUT_VERSION}. Refit the "
+            "model with this version, or use the stimsteer version that wrote it."
+        )
+    return f
+
+
+def load_predictor(path):
+    """Read a predictor saved by :func:`save_predictor`.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    predictor : fitted predictor (or StateSpaceModel)
+    provenance : dict
+
+    Raises
+    ------
+    FileFormatError
+        Not an HDF5 file, not a stimsteer model file, another layout version, an unknown kind, or a damaged file.
+    FileNotFoundError
+        No such file.
+    """
+    with _open_model(path) as f:
+        kind = _text(f.attrs.get("kind", ""))
+        cls = _class_for(kind, path)
+        try:
+            state = _read_dict(f["state"])
+            provenance = json.loads(_text(f["provenance"][()]))
+        except (KeyError, ValueError) as exc:
+            raise FileFormatError(f"{path} is a damaged stimsteer model file ({exc}); refit the model.") from None
+    try:
+        predictor = model_from_state(state) if kind == "state_space" else cls.from_state(state)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise FileFormatError(
+            f"{path} holds a {kind!r} model whose stored state does not match this stimsteer ({exc!r}); refit it."
+        ) from None
+    return predictor, provenance
