@@ -61,7 +61,107 @@ def _run_demo(args):
     return 0
 
 
+# ---------------------------------------------------------------------------------------------------- fit
+def _fraction(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1; got {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a number strictly between 0 and 1; got {value:g}")
+    return value
+
+
+def _add_fit(sub):
+    p = sub.add_parser("fit", help="fit a predictor on training trials, score it on held-out trials, save it")
+    p.add_argument("session", help="session file (our HDF5 layout is read lazily; CSV/Parquet/NWB are loaded)")
+    p.add_argument("--route", required=True, choices=["indirect", "direct"], help="model (indirect) or data (direct)")
+    p.add_argument("--method", required=True, choices=["arx", "subspace", "lsq", "hankel"],
+                   help="indirect: arx, subspace; direct: lsq, hankel")
+    p.add_argument("--out", required=True, help="model file to write (HDF5)")
+    p.add_argument("--horizon", type=int, help="prediction horizon in samples (scored; direct methods fit it)")
+    p.add_argument("--past", type=int, help="past window in samples (arx: output and input lags)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
+    p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
+    p.add_argument("--force", action="store_true", help="replace an existing model file")
+    return p
+
+
+def _echo_warnings(command, caught):
+    for w in caught:
+        sys.stderr.write(f"stimsteer {command}: warning: {w.message}\n")
+
+
+def _run_fit(args):
+    import warnings
+    from pathlib import Path
+
+    from ..sysid.routes import fit_route, open_session_source
+    from ..sysid.storage import save_predictor
+
+    if Path(args.out).exists() and not args.force:
+        raise StimsteerError(f"model file {args.out} already exists; choose another --out or pass --force.")
+    settings = {} if args.past is None else {"past_steps": args.past}
+    with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
+        warnings.simplefilter("always")
+        result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
+                           test_fraction=args.test_fraction, horizon_steps=args.horizon)
+    _echo_warnings("fit", caught)
+    provenance = {**result.provenance, "session_file": str(args.session)}
+    save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
+    split = result.split
+    print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
+    print("selection (training trials only):")
+    print(result.selection_table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    print(f"held-out scores on trials {list(split.test)} (seed {split.seed}; means over output channels):")
+    print(result.heldout.to_text())
+    print(f"model written to {args.out}")
+    return 0
+
+
+# ---------------------------------------------------------------------------------------------------- predict
+def _trial_ref(text):
+    path, sep, index = str(text).rpartition(":")
+    if not sep or not path or not index.strip().lstrip("-").isdigit():
+        raise argparse.ArgumentTypeError(f"expected SESSION:INDEX, e.g. session.h5:3; got {text!r}")
+    return path, int(index)
+
+
+def _add_predict(sub):
+    p = sub.add_parser("predict", help="predict the response to a stimulation pattern with a fitted model")
+    p.add_argument("model", help="model file written by `stimsteer fit`")
+    p.add_argument("--pattern", required=True,
+                   help="CSV of inputs: 'time [s]' and one 'in:<name> [<unit>]' column per model input")
+    p.add_argument("--out", required=True, help="output folder for prediction.csv and prediction.png")
+    p.add_argument("--from-trial", type=_trial_ref, metavar="SESSION:INDEX",
+                   help="start from the end of this recorded trial (default: from rest)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    return p
+
+
+def _run_predict(args):
+    from ..sysid.io import load_session
+    from ..sysid.routes import load_pattern, predict_pattern, trial_end_window, write_prediction
+    from ..sysid.storage import load_predictor
+
+    predictor, provenance = load_predictor(args.model)
+    pattern = load_pattern(args.pattern)
+    past, start = None, "rest"
+    if args.from_trial is not None:
+        path, index = args.from_trial
+        past = trial_end_window(load_session(path), index, predictor, provenance)
+        start = f"the end of trial {index} of {path}"
+    prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
+    files = write_prediction(prediction, args.out, force=args.force)
+    print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
+    print(f"wrote {files['csv']} and {files['png']}")
+    print(CAUTION)
+    return 0
+
+
 _SUBCOMMANDS = {
+    "fit": (_add_fit, _run_fit),
+    "predict": (_add_predict, _run_predict),
     "inspect": (_add_inspect, _run_inspect),
     "demo": (_add_demo, _run_demo),
 }

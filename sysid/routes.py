@@ -12,6 +12,7 @@ writing the prediction with its held-out error band.
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import inspect
 from dataclasses import dataclass
@@ -30,6 +31,7 @@ __all__ = [
     "DEFAULT_HORIZON_STEPS",
     "FitResult",
     "fit_route",
+    "open_session_source",
     "Pattern",
     "PatternPrediction",
     "load_pattern",
@@ -152,6 +154,21 @@ def _subsets(source, split: TrialSplit, streaming: bool):
         return _TrialSubset(source, split.train), _TrialSubset(source, split.test)
     whole = source.to_session()
     return whole.select_trials(split.train), whole.select_trials(split.test)
+
+
+@contextlib.contextmanager
+def open_session_source(path):
+    """Yield the recording at ``path`` for fitting: lazily opened when it is our HDF5 layout, else loaded whole.
+
+    A lazily opened file lets streaming estimators (ridge ARX, subspace) fit recordings larger than memory.
+    """
+    from .io import detect_format, load_session, open_session_file
+
+    if detect_format(path) == "hdf5":
+        with open_session_file(path) as f:
+            yield f
+    else:
+        yield load_session(path)
 
 
 # ------------------------------------------------------------------------------------------------ fit_route

@@ -225,8 +225,9 @@ def _open_model(path):
         ) from None
     mark = _text(f.attrs.get(_MARK, ""))
     if mark != _MARK_VALUE:
+        session = _text(f.attrs.get("stimsteer_layout", "")) == "stimsteer-session"
         f.close()
-        what = f"a stimsteer {mark} file" if mark else "an HDF5 file without stimsteer's model marker"
+        what = "a stimsteer session file" if session else "an HDF5 file without stimsteer's model marker"
         raise FileFormatError(f"{path} is {what}, not a stimsteer model; give the file written by `stimsteer fit`.")
     version = int(f.attrs.get("layout_version", -1))
     if version != LAYOUT_VERSION:
