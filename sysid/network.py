@@ -543,6 +543,9 @@ class PatternState:
     unique : bool
         ``null_space_dim == 0``. When False, ``x`` is the smallest of many states with that pattern; a transition
         to it is one choice among many.
+    output_offset : ndarray, shape (n_outputs,)
+        Resting output subtracted from the pattern first (the model's ``info["output_offset"]``, e.g. of a ridge
+        ARX fit with intercept, whose model describes deviations from rest; zero otherwise).
     """
 
     pattern: np.ndarray
@@ -551,6 +554,7 @@ class PatternState:
     rank: int
     null_space_dim: int
     unique: bool
+    output_offset: np.ndarray
 
 
 def pattern_to_state(system, pattern) -> PatternState:
@@ -560,7 +564,9 @@ def pattern_to_state(system, pattern) -> PatternState:
     ----------
     system : StateSpaceModel or tuple of matrices
     pattern : array_like, shape (n_outputs,)
-        Output values at rest (no stimulation, so the feed-through ``D u`` is zero).
+        Recorded output values (output units) at a moment without stimulation, so the feed-through ``D u`` is zero.
+        A model that carries ``info["output_offset"]`` describes deviations from that resting output; the offset
+        is subtracted first.
 
     Returns
     -------
@@ -573,7 +579,7 @@ def pattern_to_state(system, pattern) -> PatternState:
 
     Notes
     -----
-    ``x = C⁺ pattern`` (:func:`numpy.linalg.lstsq`, singular values below ``max(p, n) * eps * sigma_max`` dropped);
+    ``x = C⁺ (pattern − offset)`` (:func:`numpy.linalg.lstsq`, singular values below ``max(p, n) * eps * sigma_max`` dropped);
     the solution is unique only when ``C`` has full column rank.
     """
     model = _as_model(system)
@@ -583,12 +589,23 @@ def pattern_to_state(system, pattern) -> PatternState:
             f"an activity pattern needs one finite value per recorded channel ({model.n_outputs}: "
             f"{', '.join(model.output_names)}); got shape {np.shape(pattern)}. Give the pattern in output units."
         )
+    offset = _output_offset(model)
     C = np.array(model.C)
-    x, _, rank, _ = np.linalg.lstsq(C, y, rcond=None)
-    residual = float(np.linalg.norm(C @ x - y))
+    x, _, rank, _ = np.linalg.lstsq(C, y - offset, rcond=None)
+    residual = float(np.linalg.norm(C @ x - (y - offset)))
     null = model.n_states - int(rank)
     return PatternState(pattern=_frozen(y), x=_frozen(x), residual=residual, rank=int(rank), null_space_dim=null,
-                        unique=null == 0)
+                        unique=null == 0, output_offset=_frozen(offset))
+
+
+def _output_offset(model: StateSpaceModel) -> np.ndarray:
+    off = model.info.get("output_offset")
+    if off is None:
+        return np.zeros(model.n_outputs)
+    off = np.asarray(off, dtype=np.float64).reshape(-1)
+    if off.shape != (model.n_outputs,) or not np.all(np.isfinite(off)):
+        return np.zeros(model.n_outputs)
+    return off
 
 
 # ---------------------------------------------------------------------------------------------------- energy

@@ -181,12 +181,12 @@ def multisine(period_samples: int, harmonics, *, seed=None, n_iter: int = 100) -
 
 
 # ---------------------------------------------------------------------------------------------------- bounds
-def _vector(name, v, m) -> np.ndarray:
+def _vector(name, v, m, allow_inf=False) -> np.ndarray:
     a = np.asarray(v, dtype=np.float64)
     a = np.full(m, float(a)) if a.ndim == 0 else a.reshape(-1)
     if a.shape != (m,):
         raise LimitsError(f"{name} must give one value per input ({m}); got shape {np.shape(v)}.")
-    if not np.all(np.isfinite(a)):
+    if np.any(np.isnan(a)) or (not allow_inf and not np.all(np.isfinite(a))):
         raise LimitsError(f"{name} must be finite for every input; got {a.tolist()}.")
     return a
 
@@ -196,14 +196,17 @@ def _bounds(lo, hi, slew, m):
     bad = np.flatnonzero(lo >= hi)
     if bad.size:
         j = int(bad[0])
+        off = " (the input is switched off)" if lo[j] == hi[j] else ""
         raise LimitsError(
-            f"input {j} has lower bound {lo[j]:g} >= upper bound {hi[j]:g}: no room to stimulate, so nothing can be "
-            "excited. Declare lo < hi for every input."
+            f"input {j} has lower bound {lo[j]:g} >= upper bound {hi[j]:g}{off}: no room to stimulate, so nothing "
+            "can be excited. Declare lo < hi for every input, or leave that input out of the schedule."
         )
     if slew is not None:
-        slew = _vector("slew (largest change per step)", slew, m)
+        slew = _vector("slew (largest change per step; inf for none)", slew, m, allow_inf=True)
         if np.any(slew <= 0):
             raise LimitsError(f"slew limits must be positive per input; got {slew.tolist()}.")
+        if np.all(np.isinf(slew)):
+            slew = None
     return lo, hi, slew
 
 
@@ -527,7 +530,9 @@ def _margins(lo, hi, slew):
     if slew is None:
         return None
     scale = np.maximum(np.abs(lo), np.abs(hi))
-    return slew - np.maximum(1e-9 * slew, 64 * np.finfo(float).eps * scale)
+    finite = np.isfinite(slew)
+    margin = np.maximum(1e-9 * np.where(finite, slew, 0.0), 64 * np.finfo(float).eps * scale)
+    return np.where(finite, slew - margin, np.inf)
 
 
 def _check_limits(u, lo, hi, slew, base, budget, window):
@@ -561,7 +566,7 @@ def design_schedule(*, n_inputs: int, order: int, lo, hi, slew=None, kind: str =
     lo, hi : float or array_like, shape (n_inputs,)
         Amplitude bounds per input (input units, µA for stimulation); ``lo < hi``.
     slew : float or array_like, shape (n_inputs,), optional
-        Largest change per sample; default none.
+        Largest change per sample; default none (``inf`` for no limit on one input).
     kind : {"pulses", "prbs", "multilevel", "multisine"}, default "prbs"
     sample_rate_hz : float, default 1000.0
         Rate of the model's sample grid.

@@ -291,3 +291,14 @@ def test_rank_sites_rejects_bad_set_sizes(rng):
 def test_rank_sites_refuses_too_many_sets():
     with pytest.raises(SessionError, match="too many"):
         rank_sites((np.eye(120) * 0.5,), np.zeros(120), horizon_steps=1, max_set_size=3)
+
+
+def test_pattern_to_state_subtracts_the_models_resting_output(rng):
+    base = _random_model(rng, n=3, p=3)
+    offset = np.array([1.0, -2.0, 0.5])
+    model = base.replace(info={"output_offset": offset})
+    x = rng.standard_normal(3)
+    ps = pattern_to_state(model, model.C @ x + offset)
+    np.testing.assert_allclose(ps.x, x, atol=1e-12)
+    np.testing.assert_array_equal(ps.output_offset, offset)
+    np.testing.assert_array_equal(pattern_to_state(base, [0.0, 0.0, 0.0]).output_offset, 0.0)

@@ -285,3 +285,15 @@ def test_bad_schedule_files_get_clear_errors(tmp_path, text, match):
     with pytest.raises(FileFormatError, match=match):
         load_schedule(path)
     assert path.read_bytes() == before
+
+
+def test_infinite_slew_means_no_limit_on_that_input(seed):
+    s = design_schedule(kind="prbs", lo=LO, hi=HI, slew=[np.inf, 25.0, np.inf], seed=seed, **SMALL)
+    _assert_within(s, LO, HI, [np.inf, 25.0, np.inf])
+    assert np.max(np.abs(np.diff(s.u[:, 0]))) == pytest.approx(80.0)  # full-range jumps where unlimited
+    assert design_schedule(kind="prbs", lo=LO, hi=HI, slew=np.inf, **SMALL).slew is None
+
+
+def test_a_switched_off_input_is_named_in_the_error():
+    with pytest.raises(LimitsError, match="input 1 .* switched off"):
+        design_schedule(kind="prbs", lo=[-1.0, 0.0, -1.0], hi=[1.0, 0.0, 1.0], **SMALL)
