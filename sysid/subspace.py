@@ -9,6 +9,7 @@ one Gram of the Hankel matrix however many orders are tried.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import warnings
 
@@ -18,6 +19,11 @@ from numpy.lib.stride_tricks import sliding_window_view
 
 from .exceptions import ExcitationError, SessionError, StimsteerWarning, check_fitted
 from .statespace import StateSpaceModel, kalman_gain
+
+try:  # installed with scikit-learn; limits BLAS threads for the many small matrix operations after the data pass
+    from threadpoolctl import threadpool_limits as _threadpool_limits
+except ImportError:  # pragma: no cover - scikit-learn always brings it
+    _threadpool_limits = None
 
 __all__ = ["SubspaceId"]
 
@@ -32,6 +38,7 @@ _NOISE_FREE = 1e-12
 # Singular values below this share of the largest are rounding noise: orders beyond them are not supported by data.
 _SV_RTOL = 1e-8
 _CHUNK_ENTRIES = 4_000_000
+_THREADED_WIDTH = 256
 
 
 # ----------------------------------------------------------------------------------------------------- layout
@@ -350,6 +357,12 @@ def _heldout_error(mats, S_check: np.ndarray, layout: _Layout) -> float:
     return float(np.mean(err / np.maximum(power, np.finfo(float).tiny)))
 
 
+def _single_blas_thread():
+    if _threadpool_limits is None:  # pragma: no cover
+        return contextlib.nullcontext()
+    return _threadpool_limits(limits=1, user_api="blas")
+
+
 # ----------------------------------------------------------------------------------------------------- estimator
 class SubspaceId:
     """Subspace identification of an innovation-form state-space model from a stimulation session.
@@ -518,7 +531,16 @@ class SubspaceId:
         """
         cfg = self._settings(session)
         L = cfg["layout"]
-        grams, scale, how = self._data(session, cfg)
+        # Small dense problems run far faster on one BLAS thread (threads only wait on each other at this size);
+        # the data pass keeps all threads when its Gram is wide enough to gain from them.
+        with _single_blas_thread() if L.nz < _THREADED_WIDTH else contextlib.nullcontext():
+            grams, scale, how = self._data(session, cfg)
+        with _single_blas_thread():
+            self._identify(session, cfg, grams, scale, how)
+        return self
+
+    def _identify(self, session, cfg, grams, scale, how) -> None:
+        L = cfg["layout"]
         S_all, S_fit, S_check = (self._scaled(G, N, scale) for G, N in grams)
         for S in (S_all, S_fit):
             self._check_excitation(S, L)
@@ -533,7 +555,6 @@ class SubspaceId:
         mats = _fit_order(proj_all, order, bool(self.feedthrough))
         self.order_gap_ = gap
         self._store(mats, scale, session, L, order, sv, table, how, grams[0][1])
-        return self
 
     def _data(self, session, cfg):
         L = cfg["layout"]
