@@ -672,9 +672,15 @@ class SaturatingRateNetworkPlant(_NetworkPlant):
         Returns
         -------
         StateSpaceModel
-            ``δx_{k+1} = A δx_k + B δu_k``, ``δy_k = C δx_k + D δu_k`` with ``A = (1 − leak) I + leak · diag(s) W``,
-            ``B = leak · diag(s) B_plant``, ``s = 1 − tanh²(W x* + B u0 + bias)``; ``info`` holds the operating
-            state ``x*``, input ``u0`` and output ``C x* + D u0``.
+            ``δx_{k+1} = A δx_k + B δu_k``, ``δy_k = C δx_k + D δu_k`` with
+            ``A = (1 − leak) I + leak · diag(s) W``, ``B = leak · diag(s) B_plant``,
+            ``s = 1 − tanh²(W x* + B u0 + bias)``; ``info`` holds the operating state ``x*``, input ``u0`` and output
+            ``C x* + D u0``.
+
+        Raises
+        ------
+        UnstableModelError
+            When the network does not settle under ``u0``.
         """
         u0 = np.zeros(self.n_inputs) if u0 is None else self._check_u_k(u0)
         x_star = self.rest_state(u0)

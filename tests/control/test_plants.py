@@ -137,8 +137,8 @@ def test_innovation_form_uses_the_plant_noise_covariances(rng):
     K, P = kalman_gain(plant.A, plant.C, np.diag(plant.process_noise_std ** 2),
                        np.diag(plant.measurement_noise_std ** 2))
     np.testing.assert_allclose(model.K, K, rtol=1e-12)
-    np.testing.assert_allclose(model.innovation_cov, plant.C @ P @ plant.C.T + np.diag(plant.measurement_noise_std ** 2),
-                               rtol=1e-10)
+    R = np.diag(plant.measurement_noise_std ** 2)
+    np.testing.assert_allclose(model.innovation_cov, plant.C @ P @ plant.C.T + R, rtol=1e-10)
     with pytest.raises(SessionError, match="innovation form needs a positive measurement noise"):
         plant.with_params(measurement_noise_std=0.0).to_state_space(innovation=True)
 
@@ -257,6 +257,12 @@ def test_rest_state_is_the_fixed_point(rng):
     np.testing.assert_allclose(x, np.tanh(plant.W @ x + plant.bias), atol=1e-12)
     np.testing.assert_array_equal(plant.state, x)
     np.testing.assert_allclose(plant.simulate(np.zeros((50, 2))), np.tile(plant.C @ x, (50, 1)), atol=1e-12)
+    u0 = np.array([0.3, -0.2])
+    x_u = plant.rest_state(u0)
+    np.testing.assert_allclose(x_u, np.tanh(plant.W @ x_u + plant.B @ u0 + plant.bias), atol=1e-12)
+    lin = plant.linearize(u0)
+    assert lin.info["operating_input"] == [0.3, -0.2]
+    np.testing.assert_allclose(lin.info["operating_output"], plant.C @ x_u + plant.D @ u0)
 
 
 def test_linearisation_matches_central_differences(rng):
