@@ -1,0 +1,92 @@
+"""Tests of stimsteer.sysid.quality: the session summary and its warnings."""
+
+import json
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid.exceptions import SessionError
+from stimsteer.sysid.quality import SessionSummary, describe_session
+from stimsteer.sysid.session import Session
+
+
+def _session(rng, n=1000):
+    """Invented: 2 stimulation sites, 3 outputs; output 'clip' is clipped at +1 mV, 'dead' is flat at 0."""
+    u = rng.standard_normal((n, 2))
+    y = rng.standard_normal((n, 3))
+    y[:, 1] = np.minimum(y[:, 1], 1.0)  # P(N(0,1) > 1) = 15.9 % of samples end at the maximum (normal table)
+    y[:, 2] = 0.0
+    mask = np.ones(n, dtype=bool)
+    mask[100:110] = False  # a 10-sample gap in trial 0
+    mask[700:705] = False  # a 5-sample gap in trial 1
+    mask[450:500] = False  # between trials: not a gap
+    return Session(u=u, y=y, sample_rate_hz=500.0, trials=[(0, 400), (500, 900), (900, 1000)], mask=mask,
+                   input_names=["site_a", "site_b"], input_units=["uA", "uA"],
+                   output_names=["lfp", "clip", "dead"], output_units=["mV", "mV", "mV"])
+
+
+def test_summary_counts_trials_gaps_and_bad_channels(rng):
+    s = _session(rng)
+    q = describe_session(s)
+    assert isinstance(q, SessionSummary)
+    assert (q.n_samples, q.sample_rate_hz, q.duration_s) == (1000, 500.0, 2.0)
+    assert q.input_units == ("uA", "uA") and q.output_names == ("lfp", "clip", "dead")
+    assert (q.n_trials, q.trial_samples_min, q.trial_samples_median, q.trial_samples_max) == (3, 100, 400.0, 400)
+    assert q.trial_seconds == (0.2, 0.8, 0.8)
+    assert q.n_samples_outside_trials == 100
+    assert q.masked_fraction == pytest.approx(15 / 900)
+    assert q.n_gaps == 2 and q.longest_gap_s == pytest.approx(10 / 500.0)
+    assert q.flat_channels == ("dead",)
+    names = [n for n, _ in q.saturated_channels]
+    assert names == ["clip"]
+    frac = dict(q.saturated_channels)["clip"]
+    assert 0.10 < frac < 0.22  # 15.9 % expected; binomial sd over 885 samples is 1.2 %
+    assert any("'dead' is flat" in w and "drop it" in w for w in q.warnings)
+    assert any("'clip' sits at its maximum (1 mV)" in w and "re-record" in w for w in q.warnings)
+    assert q.notes == []
+
+
+def test_continuous_and_stimulation_channels_are_not_flagged(rng):
+    n = 2000
+    u = np.zeros((n, 1))
+    u[::50] = 80.0  # a pulse train sits at its minimum most of the time: by design, not clipping
+    s = Session(u=u, y=rng.standard_normal((n, 2)), sample_rate_hz=1000.0, trials=[(0, 1000), (1000, 2000)])
+    q = describe_session(s)
+    assert q.warnings == () and q.flat_channels == () and q.saturated_channels == ()
+    assert q.n_gaps == 0 and q.longest_gap_s == 0.0
+    assert "No problems found." in q.to_text()
+
+
+def test_masked_fraction_single_trial_and_empty_warnings(rng):
+    mask = np.ones(100, dtype=bool)
+    mask[:30] = False
+    s = Session(u=rng.standard_normal((100, 1)), y=rng.standard_normal((100, 1)), sample_rate_hz=10.0, mask=mask)
+    q = describe_session(s)
+    assert any(w.startswith("30.0% of in-trial samples are masked") for w in q.warnings)
+    assert any(w.startswith("only 1 trial: no held-out split") for w in q.warnings)
+    q = describe_session(s.replace(mask=np.zeros(100, dtype=bool)))
+    assert q.warnings[0].startswith("no valid samples inside trials")
+
+
+def test_text_and_dict_forms(rng):
+    q = describe_session(_session(rng))
+    text = q.to_text()
+    assert "Session: 1000 samples at 500 Hz = 2.000 s" in text
+    assert "inputs (2): site_a [uA], site_b [uA]" in text
+    assert "trials: 3; length min 100 / median 400 / max 400 samples (0.200 / 0.800 / 0.800 s)" in text
+    assert "masked: 1.7% of in-trial samples; gaps: 2, longest 0.020 s" in text
+    assert "flat channels: dead" in text and "Warnings:" in text
+    d = q.to_dict()
+    assert json.loads(json.dumps(d)) == d
+    assert d["flat_channels"] == ["dead"] and d["trial_seconds_max"] == 0.8
+    q.notes.append("inputs excite order 12")  # room for later checks
+    assert "Notes:\n  - inputs excite order 12" in q.to_text()
+
+
+def test_describe_errors(rng):
+    with pytest.raises(SessionError, match=r"describe_session needs a Session; got str"):
+        describe_session("session.h5")
+    with pytest.raises(SessionError, match=r"saturation_fraction must be in \(0, 1\]; got 0"):
+        describe_session(_session(rng), saturation_fraction=0)
+    with pytest.raises(SessionError, match=r"masked_warning_fraction must be in \(0, 1\]; got 2"):
+        describe_session(_session(rng), masked_warning_fraction=2)
