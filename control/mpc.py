@@ -255,9 +255,9 @@ def _osqp_settings(tight: bool):
     import osqp
 
     old = str(getattr(osqp, "__version__", "1")).startswith("0.")
-    s = {"verbose": False, "eps_abs": 1e-9 if tight else 1e-6, "eps_rel": 1e-9 if tight else 1e-6,
+    s = {"verbose": False, "eps_abs": 1e-7 if tight else 1e-5, "eps_rel": 1e-7 if tight else 1e-5,
          "max_iter": 20000, "eps_prim_inf": 1e-7, "eps_dual_inf": 1e-7}
-    s.update({"polish": False, "warm_start": True} if old else {"polishing": True, "warm_starting": True})
+    s.update({"polish": True, "warm_start": True} if old else {"polishing": True, "warm_starting": True})
     return s
 
 
@@ -330,6 +330,9 @@ class _PredictiveController:
         penalty = float(self.output_penalty)
         if not np.isfinite(penalty) or penalty <= 0:
             raise SessionError(f"output_penalty must be positive and finite; got {self.output_penalty!r}.")
+        # The fast path's slack variable is t = ρ·s: with cost 1·t its multiplier is O(1) instead of O(ρ), which
+        # ADMM reaches in tens of iterations instead of thousands.
+        self._rho = penalty
         ymin, ymax = self.limits_.output_min, self.limits_.output_max
         if ymin is None:
             ymin, ymax = np.full(p, -np.inf), np.full(p, np.inf)
@@ -639,9 +642,9 @@ class _CondensedCore(_PredictiveController):
         sel = sp.hstack([sp.eye(Nm), sp.csr_matrix((Nm, nb))])
         rows = self._box_rows(sel)
         if self._idx_hi.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_hi]), -self._S_hi]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_hi]), -self._S_hi / self._rho]))
         if self._idx_lo.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._rho]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
         return _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
@@ -652,7 +655,7 @@ class _CondensedCore(_PredictiveController):
         if self._LpT is not None:
             q = q + 2.0 * self._LpT.T @ tw
         nb = self._idx_b.size
-        q = np.concatenate([q, np.full(nb, float(self.output_penalty))])
+        q = np.concatenate([q, np.ones(nb)])  # slack in units of ρ·s (see _setup_common)
         lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
         if self._slew_rows is not None:
             lim = self._slew_rows[1]
@@ -977,7 +980,11 @@ class DataPredictiveController(_CondensedCore):
         ``Kp_``, ``Kf_``.
     limits : StimLimits
     horizon_steps : int, optional
-        ``N``; default the predictor's horizon. At most the predictor's horizon (the first blocks are used).
+        ``N``; default the predictor's horizon. At most the predictor's horizon: the first blocks are used and,
+        as in the predictor's ``predict``, the later future inputs are held at zero.
+    past_slack_weight : float, optional
+        DeePC only: ``λ_y`` of the slack on past outputs; default the predictor's ``lambda_y_``; ``inf`` keeps the
+        past outputs as hard equalities (for noise-free data).
     output_weight, input_weight, output_penalty, solver, fast_path, solver_options
         As in :class:`ModelPredictiveController`.
 
@@ -996,17 +1003,19 @@ class DataPredictiveController(_CondensedCore):
         min_{g,u}  ‖Yf g − r‖²_Q + ‖u‖²_R + λ_y ‖Yp g − y_past‖² + λ_g R(g) + ρ Σ s
         s.t.       Up g = u_past,  Uf g = u,  input limits,  soft output bounds on Yf g
 
-    with ``R(g) = ‖M g‖²`` (projection), ``‖g‖²`` (l2) or ``‖g‖₁`` (l1). A predictor with ``lambda_y_`` of None
-    or inf keeps the past outputs as hard equalities (no slack). SPC (Favoreel et al. 1999) replaces the
+    with ``R(g) = ‖M g‖²`` (projection), ``‖g‖²`` (l2) or ``‖g‖₁`` (l1). With ``past_slack_weight=inf`` the
+    past outputs are hard equalities (no slack). SPC (Favoreel et al. 1999) replaces the
     prediction with ``Kp [u_past; y_past] + Kf u``.
     """
 
-    _param_names = ("predictor", "limits", "horizon_steps", "output_weight", "input_weight", "output_penalty",
-                    "solver", "fast_path", "solver_options")
+    _param_names = ("predictor", "limits", "horizon_steps", "output_weight", "input_weight", "past_slack_weight",
+                    "output_penalty", "solver", "fast_path", "solver_options")
 
     def __init__(self, *, predictor, limits, horizon_steps=None, output_weight=1.0, input_weight=1e-3,
-                 output_penalty=1e4, solver="CLARABEL", fast_path=True, solver_options=None):
+                 past_slack_weight=None, output_penalty=1e4, solver="CLARABEL", fast_path=True,
+                 solver_options=None):
         self.predictor = predictor
+        self.past_slack_weight = past_slack_weight
         self.limits = limits
         self.horizon_steps = horizon_steps
         self.output_weight = output_weight
@@ -1072,23 +1081,24 @@ class DataPredictiveController(_CondensedCore):
     def _build_deepc(self, pred, N, m, p):
         b = pred.blocks_
         self._Up, self._Yp = np.asarray(b.Up, np.float64), np.asarray(b.Yp, np.float64)
-        self._Uf = np.asarray(b.Uf, np.float64)[:m * N]
-        self._Yf = np.asarray(b.Yf, np.float64)[:p * N]
+        Uf = np.asarray(b.Uf, np.float64)
+        self._Uf, self._Yf = Uf[:m * N], np.asarray(b.Yf, np.float64)[:p * N]
+        # a plan shorter than the predictor's horizon sets the later future inputs to zero, as predict() does
+        self._E = np.vstack([self._Up, Uf[m * N:]])
         self._Gy = None
         r = self._Up.shape[1]
-        lam_y = getattr(pred, "lambda_y_", None)
-        self._lam_y = None if lam_y is None or not np.isfinite(lam_y) else float(lam_y)
+        self._lam_y = self._past_weight(pred)
         self._reg = str(pred.regularizer_)
         self._lam_g = float(pred.lambda_g_)
         M = getattr(pred, "reg_matrix_", None)
         self._M = None if self._reg == "l1" else (np.eye(r) if M is None else np.asarray(M, np.float64))
         g = self._g = cp.Variable(r, name="hankel_weights")
         u = self._u = cp.Variable(N * m, name="inputs_ua")
-        self._up = cp.Parameter(self._Up.shape[0], name="past_inputs")
+        self._up = cp.Parameter(self._E.shape[0], name="past_inputs_and_zero_tail")
         self._yp = cp.Parameter(self._Yp.shape[0], name="past_outputs")
         self._rw = cp.Parameter(p * N, name="weighted_target")
         cost = cp.sum_squares((self._Lz @ self._Yf) @ g - self._rw) + cp.sum_squares(self._Ru @ u)
-        cons = [self._Up @ g == self._up, self._Uf @ g == u]
+        cons = [self._E @ g == self._up, self._Uf @ g == u]
         if self._lam_y is None:
             cons.append(self._Yp @ g == self._yp)
         else:
@@ -1103,6 +1113,17 @@ class DataPredictiveController(_CondensedCore):
         quadratic = self._reg != "l1" or self._lam_g == 0
         self._fast = self._fast_deepc(N, m) if (self._energy is None and quadratic) else None
 
+    def _past_weight(self, pred):
+        w = pred.lambda_y_ if self.past_slack_weight is None else self.past_slack_weight
+        try:
+            w = float(w)
+        except (TypeError, ValueError):
+            w = np.nan
+        if np.isnan(w) or w <= 0:
+            raise SessionError(f"past_slack_weight must be > 0 (inf for hard past-output equality) or None for the "
+                               f"predictor's lambda_y_; got {self.past_slack_weight!r}.")
+        return None if np.isinf(w) else w
+
     def _fast_deepc(self, N, m):
         """OSQP over ``z = [g; s]`` with ``u = Uf g`` substituted."""
         r, nb = self._Up.shape[1], self._idx_b.size
@@ -1115,14 +1136,14 @@ class DataPredictiveController(_CondensedCore):
             H = H + self._lam_g * self._M.T @ self._M
         self._LY = LY
         P = sp.block_diag([sp.csc_matrix(2.0 * H), sp.csc_matrix((nb, nb))], format="csc")
-        rows = [sp.hstack([sp.csr_matrix(self._Up), sp.csr_matrix((self._Up.shape[0], nb))])]
+        rows = [sp.hstack([sp.csr_matrix(self._E), sp.csr_matrix((self._E.shape[0], nb))])]
         if self._lam_y is None:
             rows.append(sp.hstack([sp.csr_matrix(self._Yp), sp.csr_matrix((self._Yp.shape[0], nb))]))
         rows += self._box_rows(sp.hstack([sp.csr_matrix(self._Uf), sp.csr_matrix((N * m, nb))]))
         if self._idx_hi.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_hi]), -self._S_hi]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_hi]), -self._S_hi / self._rho]))
         if self._idx_lo.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo / self._rho]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, r)), sp.eye(nb)]))
         return _FastQP(P, sp.vstack(rows, format="csc"), r + nb)
@@ -1145,7 +1166,8 @@ class DataPredictiveController(_CondensedCore):
         if self.method_ == "spc":
             fy = self._Kp @ self._past_vector(u_past, y_past)
             return self._Lz @ (fy - r), None, fy
-        return u_past.reshape(-1), y_past.reshape(-1), self._Lz @ r
+        eq = np.concatenate([u_past.reshape(-1), np.zeros(self._E.shape[0] - self._Up.shape[0])])
+        return eq, y_past.reshape(-1), self._Lz @ r
 
     def _assign(self, offsets):
         if self.method_ == "spc":
@@ -1163,7 +1185,7 @@ class DataPredictiveController(_CondensedCore):
         q = -2.0 * self._LY.T @ rw
         if self._lam_y is not None:
             q = q - 2.0 * self._lam_y * self._Yp.T @ yp
-        q = np.concatenate([q, np.full(nb, float(self.output_penalty))])
+        q = np.concatenate([q, np.ones(nb)])  # slack in units of ρ·s (see _setup_common)
         lo, hi = [up], [up]
         if self._lam_y is None:
             lo.append(yp)
