@@ -13,6 +13,12 @@ from .exceptions import StimsteerError
 __all__ = ["atomic_path", "atomic_dir"]
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(path, suffix: str | None = None):
     """Yield a temporary path beside ``path``; on success it is renamed onto ``path``, on error removed.
@@ -25,6 +31,7 @@ def atomic_path(path, suffix: str | None = None):
         raise StimsteerError(f"cannot write {path}: the folder {parent} does not exist. Create it first.")
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix or path.suffix or ".tmp", dir=parent)
     os.close(fd)
+    os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; a saved file gets the usual permissions
     try:
         yield Path(tmp)
         os.replace(tmp, path)
@@ -51,6 +58,7 @@ def atomic_dir(path, force: bool = False):
     parent = path.parent if str(path.parent) else Path(".")
     parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", dir=parent))
+    os.chmod(tmp, 0o777 & ~_umask())
     try:
         yield tmp
         if path.exists():
