@@ -159,9 +159,48 @@ def _run_predict(args):
     return 0
 
 
+# ---------------------------------------------------------------------------------------------------- network
+def _add_network(sub):
+    p = sub.add_parser("network", help="network-control tables and figures of a fitted state-space model: "
+                       "controllability, site ranking, minimum-energy transitions")
+    p.add_argument("model", help="model file written by `stimsteer fit --route indirect`")
+    p.add_argument("--out", required=True, help="output folder for the CSV tables and PNG figures")
+    p.add_argument("--target", metavar="PATTERN",
+                   help="target activity pattern: one value per recorded channel, comma-separated (e.g. "
+                   "'0.5,0,1.2'), or a CSV file holding such a row (optionally under a header of channel names)")
+    p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (default: rest)")
+    p.add_argument("--horizon-steps", type=int, help="samples of the minimum-energy transition (default 2 x states)")
+    p.add_argument("--max-set-size", type=int, choices=[1, 2, 3], default=2,
+                   help="largest number of sites stimulated together in the ranking (default 2)")
+    p.add_argument("--normalise", action="store_true",
+                   help="analyse A / (1 + sigma_max(A)) for Gramian and site controllability (Gu et al. 2015); "
+                   "default: the fitted A as it is")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    return p
+
+
+def _run_network(args):
+    from ..sysid.storage import load_predictor
+    from .figures_network import read_pattern, state_space_of, write_network_outputs
+
+    if args.start is not None and args.target is None:
+        raise StimsteerError("--start needs --target: give the pattern to move to as well.")
+    predictor, _provenance = load_predictor(args.model)
+    model = state_space_of(predictor, args.model)
+    target = None if args.target is None else read_pattern(args.target, model.output_names)
+    start = None if args.start is None else read_pattern(args.start, model.output_names)
+    result = write_network_outputs(model, args.out, target=target, start=start, horizon_steps=args.horizon_steps,
+                                   max_set_size=args.max_set_size, normalise=args.normalise, force=args.force)
+    print("\n".join(result.lines))
+    print(f"wrote {len(result.files)} files to {args.out}: " + ", ".join(sorted(p.name for p in result.files.values())))
+    print(CAUTION)
+    return 0
+
+
 _SUBCOMMANDS = {
     "fit": (_add_fit, _run_fit),
     "predict": (_add_predict, _run_predict),
+    "network": (_add_network, _run_network),
     "inspect": (_add_inspect, _run_inspect),
     "demo": (_add_demo, _run_demo),
 }
