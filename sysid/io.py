@@ -160,6 +160,9 @@ def detect_format(path) -> str:
             return "parquet"
     if _looks_like_text(head):
         return "csv"
+    if b"\x00" not in head:
+        raise FileFormatError(f"{path} looks like text but is not UTF-8; expected a CSV table in UTF-8. Save it "
+                              "again with UTF-8 encoding.")
     raise FileFormatError(
         f"{path} is not a session file: expected an HDF5 file (our layout or NWB), a Parquet table or a CSV text "
         f"table; found {size} bytes of binary data starting with {head[:8]!r}."
@@ -190,7 +193,8 @@ def _looks_like_text(head: bytes) -> bool:
 def _hdf5_kind(path: Path) -> str:
     try:
         with h5py.File(path, "r") as h:
-            attrs = {k: _attr_str(h.attrs[k]) for k in h.attrs if k in ("stimsteer_layout", "neurodata_type")}
+            attrs = {k: _attr_str(h.attrs[k]) for k in h.attrs
+                     if k in ("stimsteer_layout", "neurodata_type", "stimsteer_file")}
             members, attr_names = sorted(h.keys()), sorted(h.attrs.keys())
     except OSError as exc:
         raise FileFormatError(f"{path} has an HDF5 signature but cannot be read as HDF5 ({exc}); it is damaged "
@@ -199,6 +203,11 @@ def _hdf5_kind(path: Path) -> str:
         return "hdf5"
     if attrs.get("neurodata_type") == "NWBFile":
         return "nwb"
+    if "stimsteer_file" in attrs:
+        raise FileFormatError(
+            f"{path} is a stimsteer '{attrs['stimsteer_file']}' file (a saved model or plant), not a session: "
+            f"expected the root attribute stimsteer_layout = '{LAYOUT_NAME}'. Give the session file instead."
+        )
     raise FileFormatError(
         f"{path} is an HDF5 file but not a session: expected the root attribute stimsteer_layout = "
         f"'{LAYOUT_NAME}' (our layout) or neurodata_type = 'NWBFile' (NWB); found root members {members} and "
@@ -956,9 +965,9 @@ def _read_nwb(path: Path) -> Session:
                 mask[a:b] = False
             meta = extra.get("metadata") if "metadata" in extra else {
                 "nwb_identifier": str(nwb.identifier), "nwb_session_description": str(nwb.session_description)}
-    except (OSError, KeyError, ValueError) as exc:
-        if isinstance(exc, StimsteerError):
-            raise
+    except StimsteerError:
+        raise
+    except Exception as exc:  # pynwb / hdmf raise many unrelated classes for files they cannot build
         raise FileFormatError(f"{path} cannot be read as an NWB file ({type(exc).__name__}: {exc}).") from None
     if t0 != 0.0:
         meta = {**meta, "start_time_s": t0}

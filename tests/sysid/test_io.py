@@ -281,15 +281,24 @@ def test_bad_hdf5_is_a_clear_error_and_left_untouched(tmp_path, rng, case):
     assert _sha(path) == before and os.listdir(tmp_path) == ["bad.h5"]
 
 
+def test_other_stimsteer_files_are_named_as_such(tmp_path):
+    path = tmp_path / "model.h5"
+    with h5py.File(path, "w") as h:
+        h.attrs["stimsteer_file"] = "model"  # the marker that storage.py and plants.py write
+    with pytest.raises(FileFormatError, match=r"is a stimsteer 'model' file \(a saved model or plant\), not a session"):
+        load_session(path)
+
+
 @pytest.mark.parametrize(
     "content, pattern",
     [
         (b"", r"is empty \(0 bytes\)"),
         (b"\x00\x01\x02\xffbinary junk" * 10, r"not a session file.*binary data"),
+        ("time [s],trial,out:y [\xb5V]\n0,0,1\n".encode("latin-1"), r"looks like text but is not UTF-8"),
         (b"\x89HDF\r\n\x1a\n" + b"\x00" * 100, r"cannot be read as HDF5.*damaged or truncated"),
         (b"PAR1" + b"\x00" * 50, r"does not end with the Parquet footer"),
     ],
-    ids=["empty", "binary", "truncated_hdf5", "truncated_parquet"],
+    ids=["empty", "binary", "latin1_text", "truncated_hdf5", "truncated_parquet"],
 )
 def test_unreadable_files_are_clear_errors_and_untouched(tmp_path, content, pattern):
     path = _write(tmp_path / "x.h5", content)
@@ -436,6 +445,16 @@ def test_foreign_nwb_series_are_split_converted_and_trials_mapped(tmp_path):
     assert np.array_equal(s.y, np.full((10, 2), 0.5))
     assert s.trials.tolist() == [[2, 5], [5, 10]]
     assert s.sample_rate_hz == 100.0 and s.metadata["nwb_identifier"] == "t1"
+
+
+def test_damaged_nwb_is_a_clear_error(tmp_path):
+    path = tmp_path / "fake.nwb"
+    with h5py.File(path, "w") as h:
+        h.attrs["neurodata_type"] = "NWBFile"  # marked as NWB but holds nothing of it
+    before = _sha(path)
+    with pytest.raises(FileFormatError, match=r"cannot be read as an NWB file \(TypeError: Missing NWB version"):
+        load_session(path)
+    assert _sha(path) == before
 
 
 def test_nwb_without_stimulus_or_with_mismatched_grids(tmp_path):
