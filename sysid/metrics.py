@@ -233,8 +233,10 @@ class Scores:
     @classmethod
     def from_dict(cls, d: dict) -> "Scores":
         ks, fr = _empty_kstep(), _empty_freerun()
-        kstep = pd.DataFrame(d["kstep"]).astype(ks.dtypes.to_dict()) if d["kstep"].get("channel") else ks
-        freerun = pd.DataFrame(d["freerun"]).astype(fr.dtypes.to_dict()) if d["freerun"].get("channel") else fr
+        kstep = pd.DataFrame(d["kstep"], columns=ks.columns).astype(ks.dtypes.to_dict()) \
+            if d["kstep"].get("channel") else ks
+        freerun = pd.DataFrame(d["freerun"], columns=fr.columns).astype(fr.dtypes.to_dict()) \
+            if d["freerun"].get("channel") else fr
         return cls(tuple(d["output_names"]), kstep, freerun, int(d["horizon_steps"]), int(d["stride_steps"]),
                    int(d["n_windows"]), int(d["n_segments"]))
 
@@ -294,7 +296,9 @@ def _long_table(names, tab, steps=None) -> pd.DataFrame:
         rows = {"step": np.repeat(np.asarray(steps, dtype=np.int64), p), **rows}
     for k in (*_METRICS, "n_samples"):
         rows[k] = np.asarray(tab[k]).reshape(-1)
-    return pd.DataFrame(rows)
+    frame = pd.DataFrame(rows)
+    frame["channel"] = frame["channel"].astype(object)  # one dtype whatever pandas infers for strings
+    return frame
 
 
 def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 1) -> Scores:
