@@ -404,7 +404,7 @@ class StimLimits:
         sequence has, at every step and for every input, the smallest magnitude any slew-respecting sequence can
         reach, so it also has the least energy ``Σ u²``: when it breaks the energy budget, no plan can meet it.
         When ``last_input`` lies outside the amplitude window the amplitude bound takes precedence over the slew
-        limit (the first sample is clipped into the window at once).
+        limit: the first sample is the nearest amplitude bound, and the ramp goes on from there.
 
         Parameters
         ----------
@@ -424,8 +424,8 @@ class StimLimits:
         out = np.empty((int(n_steps), self.n_inputs))
         for k in range(out.shape[0]):
             a, b = np.maximum(lo, prev - slew), np.minimum(hi, prev + slew)
-            empty = a > b
-            a[empty], b[empty] = lo[empty], hi[empty]
+            empty = a > b  # the slew window misses the amplitude window: take the nearest amplitude bound
+            a[empty] = b[empty] = np.clip(prev[empty], lo[empty], hi[empty])
             prev = np.clip(0.0, a, b)
             out[k] = prev
         return out
