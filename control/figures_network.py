@@ -310,6 +310,8 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     _check_stable(model, normalise)
     n = model.n_states
     T = max(2 * n, 1) if horizon_steps is None else horizon_steps
+    if isinstance(T, bool) or not isinstance(T, (int, np.integer)) or T < 1:
+        raise SessionError(f"horizon_steps must be a whole number of samples >= 1; got {horizon_steps!r}.")
     rep = controllability(model, normalise=normalise)
     sites = site_controllability(model, normalise=normalise)
     h = impulse_responses(model, max(20, 3 * n) if impulse_steps is None else impulse_steps)

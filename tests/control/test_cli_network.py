@@ -1,0 +1,144 @@
+"""The `stimsteer network` and `stimsteer schedule` commands, end to end through main()."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stimsteer.control.cli import CAUTION, main
+from stimsteer.sysid.network import rank_sites
+from stimsteer.sysid.session import Session
+from stimsteer.sysid.statespace import StateSpaceModel
+from stimsteer.sysid.storage import load_predictor, save_predictor
+
+
+def _model(rng, rho=0.85, n=5, m=3, p=4):
+    A = rng.standard_normal((n, n))
+    A *= rho / np.max(np.abs(np.linalg.eigvals(A)))
+    return StateSpaceModel(A=A, B=rng.standard_normal((n, m)), C=rng.standard_normal((p, n)), sample_rate_hz=50.0,
+                           input_names=("site_a", "site_b", "site_c"), output_names=("ch1", "ch2", "ch3", "ch4"))
+
+
+@pytest.fixture
+def model_file(tmp_path, rng):
+    path = tmp_path / "model.h5"
+    save_predictor(_model(rng), path, provenance={"origin": "test model (random stable network)"})
+    return path
+
+
+def _session(rng, n=600):
+    """A small noise-free recording of a random stable model (inputs white, 4 trials)."""
+    model = _model(rng, n=3, m=1, p=1).replace(input_names=("site_a",), output_names=("ch1",),
+                                                B=rng.standard_normal((3, 1)), C=rng.standard_normal((1, 3)))
+    u = rng.standard_normal((n, 1))
+    return Session(u=u, y=model.simulate(u), sample_rate_hz=50.0, trials=[(0, 150), (150, 300), (300, 450),
+                                                                            (450, 600)])
+
+
+# ------------------------------------------------------------------------------------------------ network
+def test_network_writes_tables_and_figures(model_file, tmp_path, capsys):
+    out = tmp_path / "net"
+    assert main(["network", str(model_file), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "Kalman rank 5 of 5" in printed and CAUTION in printed
+    for name in ("controllability.csv", "gramian_spectrum.csv", "gramian_spectrum.png", "site_controllability.csv",
+                 "impulse_responses.csv", "impulse_responses.png", "site_ranking.png"):
+        assert (out / name).stat().st_size > 0
+    table = pd.read_csv(out / "controllability.csv").set_index("quantity")["value"]
+    assert table["normalisation"] == "none" and table["gramian_horizon_steps"] == "infinite"
+    sites = pd.read_csv(out / "site_controllability.csv")
+    assert np.all(np.diff(sites["average_controllability"]) <= 0)
+    impulses = pd.read_csv(out / "impulse_responses.csv")
+    assert len(impulses) == 20 * 4 * 3  # default length max(20, 3 n) steps x channels x sites
+
+
+def test_network_with_a_target_ranks_sites_like_the_api(model_file, tmp_path, capsys):
+    out = tmp_path / "net"
+    code = main(["network", str(model_file), "--out", str(out), "--target", "1,0,0.5,-1", "--horizon-steps", "8"])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert "best site sets (energy)" in printed
+    ranking = pd.read_csv(out / "site_ranking.csv")
+    model, _ = load_predictor(model_file)
+    from stimsteer.sysid.network import pattern_to_state
+
+    expected = rank_sites(model, pattern_to_state(model, [1, 0, 0.5, -1]).x, horizon_steps=8)
+    assert ranking["sites"].tolist() == list(expected.names)
+    np.testing.assert_allclose(ranking["energy"], expected.energy, rtol=1e-8)
+    transition = pd.read_csv(out / "transition.csv")
+    assert transition.shape == (8, 2 + 3)
+
+
+def test_network_reads_a_target_file_with_channel_names(model_file, tmp_path):
+    target = tmp_path / "target.csv"
+    target.write_text("out:ch4 [mV],ch3,ch2,out:ch1 [mV]\n-1,0.5,0,1\n")
+    out_file, out_text = tmp_path / "a", tmp_path / "b"
+    assert main(["network", str(model_file), "--out", str(out_file), "--target", str(target)]) == 0
+    assert main(["network", str(model_file), "--out", str(out_text), "--target", "1,0,0.5,-1"]) == 0
+    pd.testing.assert_frame_equal(pd.read_csv(out_file / "site_ranking.csv"), pd.read_csv(out_text / "site_ranking.csv"))
+
+
+def test_network_accepts_a_fitted_indirect_predictor(tmp_path, rng, capsys):
+    from stimsteer.sysid.arx import RidgeArx
+
+    est = RidgeArx(output_lags=2, input_lags=2).fit(_session(rng))
+    path = tmp_path / "arx.h5"
+    save_predictor(est, path, provenance={"origin": "test"})
+    assert main(["network", str(path), "--out", str(tmp_path / "net"), "--target", "0.3"]) == 0
+    assert "Kalman rank" in capsys.readouterr().out
+
+
+def test_network_refuses_a_direct_route_predictor(tmp_path, rng, capsys):
+    from stimsteer.sysid.datadriven import LsqPredictor
+
+    est = LsqPredictor(past_steps=3, horizon_steps=4).fit(_session(rng))
+    path = tmp_path / "lsq.h5"
+    save_predictor(est, path, provenance={"origin": "test"})
+    assert main(["network", str(path), "--out", str(tmp_path / "net")]) == 2
+    err = capsys.readouterr().err
+    assert "direct-route data predictor" in err and "--route indirect" in err
+    assert not (tmp_path / "net").exists()
+
+
+def test_network_on_an_unstable_model_needs_normalise(tmp_path, rng, capsys):
+    path = tmp_path / "unstable.h5"
+    save_predictor(_model(rng, rho=1.3), path, provenance={"origin": "test"})
+    assert main(["network", str(path), "--out", str(tmp_path / "a")]) == 2
+    assert "spectral radius 1.3000 >= 1" in capsys.readouterr().err and not (tmp_path / "a").exists()
+    assert main(["network", str(path), "--out", str(tmp_path / "b"), "--normalise"]) == 0
+    table = pd.read_csv(tmp_path / "b" / "controllability.csv").set_index("quantity")["value"]
+    assert table["normalisation"].startswith("A / (1 + sigma_max(A))")
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--start", "1,2,3,4"], "--start needs --target"),
+    (["--target", "1,2"], "expected 4 finite values"),
+    (["--target", "1,x,3,4"], "expected numbers separated by commas"),
+    (["--target", "1,2,3,4", "--horizon-steps", "0"], "horizon_steps must be a whole number"),
+])
+def test_network_bad_arguments_exit_2_with_one_line(model_file, tmp_path, capsys, extra, match):
+    assert main(["network", str(model_file), "--out", str(tmp_path / "n"), *extra]) == 2
+    err = capsys.readouterr().err
+    assert match in err and err.count("\n") == 1
+    assert not (tmp_path / "n").exists()
+
+
+def test_network_target_file_with_wrong_names(model_file, tmp_path, capsys):
+    target = tmp_path / "t.csv"
+    target.write_text("a,b,c,d\n1,2,3,4\n")
+    assert main(["network", str(model_file), "--out", str(tmp_path / "n"), "--target", str(target)]) == 2
+    assert "must be the model's outputs" in capsys.readouterr().err
+
+
+def test_network_keeps_an_existing_folder_unless_forced(model_file, tmp_path, capsys):
+    out = tmp_path / "net"
+    out.mkdir()
+    (out / "keep.txt").write_text("x")
+    assert main(["network", str(model_file), "--out", str(out)]) == 2
+    assert "already holds files" in capsys.readouterr().err and (out / "keep.txt").exists()
+    assert main(["network", str(model_file), "--out", str(out), "--force"]) == 0
+    assert not (out / "keep.txt").exists()
+
+
+def test_network_missing_model_file(tmp_path, capsys):
+    assert main(["network", str(tmp_path / "nope.h5"), "--out", str(tmp_path / "n")]) == 2
+    assert "nope.h5" in capsys.readouterr().err
