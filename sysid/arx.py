@@ -563,7 +563,7 @@ class RidgeArx:
     def _set_fitted(self, prob, *, coef, intercept, alpha, table, scale, cond, n_rows, n_folds, scheme,
                     innovation_cov, input_names, output_names, sample_rate_hz):
         self.n_outputs_, self.n_inputs_ = prob.p, prob.m
-        self.coef_ = np.asarray(coef, dtype=np.float64)
+        self.coef_ = np.ascontiguousarray(coef, dtype=np.float64)
         self.intercept_ = np.asarray(intercept, dtype=np.float64)
         self.alpha_ = float(alpha)
         self.cv_table_ = table
