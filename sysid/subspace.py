@@ -134,6 +134,11 @@ def _psd_parts(M: np.ndarray):
     return V[:, keep], lam[keep]
 
 
+def _cond_text(lam: np.ndarray) -> str:
+    """Condition number of a symmetric PSD matrix from its ascending eigenvalues, as text ("inf" if singular)."""
+    return f"{lam[-1] / lam[0]:.2e}" if lam[0] > 0 and lam[-1] / lam[0] < 1e300 else "inf"
+
+
 def _pinv_psd(M: np.ndarray) -> np.ndarray:
     V, lam = _psd_parts(M)
     return (V / lam) @ V.T
@@ -253,7 +258,7 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
         raise ExcitationError(
             "the inputs do not excite the model enough to estimate B"
             + (" and D" if feedthrough else "")
-            + f" (normal equations of condition {lam[-1] / max(lam[0], np.finfo(float).tiny):.2e}). "
+            + f" (normal equations of condition {_cond_text(lam)}). "
             "Use a richer stimulation schedule (`stimsteer schedule`), or a lower order."
         )
     theta = np.linalg.solve(M, rhs)
@@ -604,15 +609,20 @@ class SubspaceId:
     @staticmethod
     def _supported(sv_all, sv_fit, cfg) -> int:
         """Largest candidate order whose singular values (all data and fitting part) rise above rounding noise."""
-        rank = min(int(np.sum(v > _SV_RTOL * v[0])) for v in (sv_all, sv_fit))
+        # relative to the largest value, and to 1 (unit-RMS channels): a static map leaves only rounding noise
+        rank = min(int(np.sum(v > _SV_RTOL * max(float(v[0]), 1.0))) for v in (sv_all, sv_fit))
+        if rank < 1:
+            raise ExcitationError(
+                "the data show no dynamics: the future outputs carry no information from the past beyond what the "
+                "future inputs explain (every singular value is at rounding level). A static input-output map "
+                "needs no state-space model; check that the outputs respond to the stimulation with some memory."
+            )
         if cfg["order"] is not None and cfg["order"] > rank:
             raise SessionError(
                 f"order {cfg['order']} is above the {rank} state(s) the data support: the singular values beyond "
                 f"{rank} are below {_SV_RTOL:g} of the largest (noise-free data of a smaller system, or inputs that "
-                "excite too few modes). Use order <= {rank} or order=None."
+                f"excite too few modes). Use order <= {rank} or order=None."
             )
-        if rank < 1:
-            raise ExcitationError("the data show no dynamics: every singular value is at rounding level.")
         return min(cfg["top"], rank)
 
     def _order_table(self, proj_fit, S_check, sv, cfg) -> pd.DataFrame:
@@ -636,7 +646,7 @@ class SubspaceId:
         if lam[0] <= _RTOL * lam[-1]:
             raise ExcitationError(
                 f"the inputs are not persistently exciting over future_steps={L.f} samples (the future-input "
-                f"covariance has condition {lam[-1] / max(lam[0], np.finfo(float).tiny):.2e}); an input that is "
+                f"covariance has condition {_cond_text(lam)}); an input that is "
                 "constant or too smooth cannot separate the dynamics. Use a richer stimulation schedule "
                 "(`stimsteer schedule`)."
             )
