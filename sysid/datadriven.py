@@ -39,7 +39,7 @@ import pandas as pd
 import scipy.linalg as sla
 
 from .excitation import check_excitation, rank_tolerance
-from .exceptions import SessionError, SolverError, check_fitted
+from .exceptions import ConditioningWarning, SessionError, SolverError, check_fitted
 from .hankel import block_hankel, combine_factors, row_space_factor
 
 __all__ = ["HankelBlocks", "LsqPredictor", "HankelPredictor", "REGULARIZERS"]
@@ -79,6 +79,12 @@ class HankelBlocks:
 
     @classmethod
     def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool):
+        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them)."""
+        if H.ndim != 2 or H.shape[0] != (m + p) * (past + horizon):
+            raise SessionError(
+                f"a data matrix for {m} input(s), {p} output(s), past {past} and horizon {horizon} needs "
+                f"{(m + p) * (past + horizon)} rows; got shape {H.shape}."
+            )
         cuts = np.cumsum([m * past, p * past, m * horizon])
         Up, Yp, Uf, Yf = (np.ascontiguousarray(b) for b in np.split(H, cuts, axis=0))
         return cls(Up, Yp, Uf, Yf, bool(compressed))
@@ -172,9 +178,15 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
         n_y += y.shape[0]
     for f in range(n_folds):
         folds[f].factor = combine_factors(parts[f], n_rows)
+    starts = np.asarray(session.trials)[:, 0]
+    trial_fold = np.full(starts.size, -1, dtype=np.int64)
+    if scheme == "trials":
+        for a, _b, f in pieces:
+            trial_fold[np.searchsorted(starts, a, side="right") - 1] = f
+    n_y = max(n_y, 1)
     std = np.sqrt(np.maximum(y_sq / n_y - (y_sum / n_y) ** 2, 0.0))
     std[std <= 1e-12 * max(std.max(), 1e-300)] = 1.0
-    return folds, scheme, std
+    return folds, scheme, std, tuple(int(f) for f in trial_fold)
 
 
 def _merge(folds, n_rows):
@@ -201,6 +213,8 @@ class _DirectPredictor:
 
     _param_names: tuple = ()
     _strength_param: str = ""
+    #: ``fit`` reads a lazily opened session file segment by segment (``read``/``segments``).
+    supports_streaming = True
 
     def get_params(self, deep: bool = True) -> dict:
         """Constructor arguments, unchanged (scikit-learn convention)."""
@@ -239,12 +253,12 @@ class _DirectPredictor:
         past, horizon = self._validate_common(session)
         order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
                                  stacklevel=4)
-        folds, scheme, std = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
+        folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
                                       self.seed, keep_full)
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
-                f"{past + horizon} samples fit in only one fold. Record more or longer trials, or give a single "
+                f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer trials, or give a single "
                 "strength."
             )
         m, p = int(session.n_inputs), int(session.n_outputs)
@@ -252,6 +266,7 @@ class _DirectPredictor:
         self.n_inputs_, self.n_outputs_ = m, p
         self.excitation_order_ = int(order)
         self.cv_scheme_ = scheme
+        self.cv_folds_ = trial_fold
         self.input_names_ = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(m)))
         self.output_names_ = tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(p)))
         self.sample_rate_hz_ = float(session.sample_rate_hz)
@@ -317,12 +332,13 @@ class _DirectPredictor:
         """Parameters and fitted values as plain arrays, numbers, strings and nested dicts (for storage)."""
         check_fitted(self, "past_steps_")
         params = {k: (np.asarray(v, dtype=np.float64) if k == self._strength_param else
-                      int(v) if isinstance(v, (bool, np.bool_)) else v)
+                      int(v) if isinstance(v, (bool, np.bool_, np.integer)) else v)
                   for k, v in self.get_params().items() if v is not None}
         fitted = {k: getattr(self, k) for k in self._fitted_scalars + self._fitted_arrays
                   if getattr(self, k) is not None}
         fitted["input_names_"] = "\n".join(self.input_names_)
         fitted["output_names_"] = "\n".join(self.output_names_)
+        fitted["cv_folds_"] = np.asarray(self.cv_folds_, dtype=np.int64)
         fitted["cv_table_"] = {c: self.cv_table_[c].to_numpy(dtype=np.float64) for c in self.cv_table_.columns}
         return {"params": params, "fitted": fitted}
 
@@ -342,6 +358,7 @@ class _DirectPredictor:
         for k in ("sample_rate_hz_", "data_scale_"):
             setattr(obj, k, float(fitted.pop(k)))
         obj.cv_scheme_ = str(fitted.pop("cv_scheme_"))
+        obj.cv_folds_ = tuple(int(f) for f in np.atleast_1d(fitted.pop("cv_folds_")))
         obj.input_names_ = tuple(str(fitted.pop("input_names_")).split("\n"))
         obj.output_names_ = tuple(str(fitted.pop("output_names_")).split("\n"))
         obj.cv_table_ = pd.DataFrame({k: np.asarray(v) for k, v in fitted.pop("cv_table_").items()})
@@ -389,6 +406,9 @@ class LsqPredictor(_DirectPredictor):
         scaled by its standard deviation), ``fold_i`` (summed errors per fold).
     past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
     cv_scheme_ : str
+        ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).
+    cv_folds_ : tuple of int
+        Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
     input_names_, output_names_ : tuple of str
     sample_rate_hz_ : float
 
@@ -522,7 +542,8 @@ def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray)
         [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
         [A                   0 ] [ν] = [u_p; u_f  ]
 
-    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.)
+    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
+    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
     """
     Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
     r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
@@ -533,10 +554,24 @@ def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray)
         K[np.arange(r), np.arange(r)] += lam_g
     else:
         K[:r, :r] += lam_g * M
-    K[:r, r:] = A.T
-    K[r:, :r] = A
-    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), B[:nu], B[nu + npst:]])
-    return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+    # symmetric scaling of the constraint rows (multipliers ν/β): same solution, balanced blocks
+    beta = np.abs(K[:r, :r]).max() / max(np.abs(A).max(), np.finfo(float).tiny)
+    K[:r, r:] = beta * A.T
+    K[r:, :r] = beta * A
+    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", sla.LinAlgWarning)
+        try:
+            return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+        except sla.LinAlgWarning:
+            pass
+    warnings.warn(ConditioningWarning(
+        f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
+        f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
+    ), stacklevel=3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sla.LinAlgWarning)
+        return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
 
 
 class HankelPredictor(_DirectPredictor):
@@ -586,6 +621,9 @@ class HankelPredictor(_DirectPredictor):
         As :class:`LsqPredictor`.
     past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
     cv_scheme_ : str
+        ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).
+    cv_folds_ : tuple of int
+        Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
     input_names_, output_names_ : tuple of str
     sample_rate_hz_ : float
 
@@ -705,7 +743,7 @@ class HankelPredictor(_DirectPredictor):
         out = []
         for rel in lambdas:
             with warnings.catch_warnings():
-                warnings.simplefilter("ignore", sla.LinAlgWarning)
+                warnings.simplefilter("ignore", ConditioningWarning)
                 try:
                     G = blocks.Yf @ _kkt_map(blocks, M, rel * scale, lam_y, np.eye(n_b))
                 except np.linalg.LinAlgError:
