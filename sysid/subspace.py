@@ -2,9 +2,10 @@
 
 The data of all trials are summarised by one Gram matrix of the multi-trial (mosaic) block-Hankel matrix of the
 joint signal ``[u y]``; Hankel columns are built only inside valid segments (:meth:`Session.segments`), so none
-straddles a trial boundary or touches a masked sample. Everything after that pass works on the Gram matrix (its
-Cholesky factor is the ``L`` of the LQ factorisation of the stacked ``[Uf; Up; Yp; Yf]``), so fitting costs about
-one Gram of the Hankel matrix however many orders are tried.
+straddles a trial boundary or touches a masked sample. The LQ factorisation ``[Uf; Up; Yp; Yf] = L Q`` of the
+stacked data has ``L Lᵀ`` equal to that Gram matrix, so every projection the LQ route forms is written here with
+Gram blocks (Schur complements) instead: after the one data pass nothing depends on the number of samples, and
+fitting costs about one Gram of the Hankel matrix however many orders are tried.
 """
 
 from __future__ import annotations
@@ -686,7 +687,7 @@ class SubspaceId:
                 f"the identified order-{order} model is unstable: spectral radius {model.spectral_radius:.4f} >= 1; "
                 "free-run simulations will grow without bound. Try another order or longer past/future windows, "
                 "and check whether the data were recorded in closed loop.",
-                StimsteerWarning, stacklevel=3,
+                StimsteerWarning, stacklevel=4,
             )
 
     # ------------------------------------------------------------------------------------------ predict
