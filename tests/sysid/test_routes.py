@@ -1,0 +1,238 @@
+"""fit_route: honest split and held-out scores; patterns: reading, checking against the model, predicting, writing."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stimsteer.sysid.arx import RidgeArx
+from stimsteer.sysid.exceptions import FileFormatError, SessionError, StimsteerError
+from stimsteer.sysid.metrics import kstep_scores
+from stimsteer.sysid.routes import (
+    METHODS,
+    _split,
+    _TrialSubset,
+    fit_route,
+    load_pattern,
+    predict_pattern,
+    trial_end_window,
+    write_prediction,
+)
+from stimsteer.sysid.session import Session
+from stimsteer.sysid.statespace import StateSpaceModel
+
+TRUE = StateSpaceModel(A=[[0.8, 0.3], [0.0, 0.5]], B=[[0.0, 0.5], [1.0, 0.0]], C=[[1.0, 0.5]])
+
+
+def make_session(rng, n_trials=6, length=200, noise=0.02):
+    n = n_trials * length
+    u = rng.standard_normal((n, 2))
+    y = np.concatenate([TRUE.simulate(u[i * length:(i + 1) * length]) for i in range(n_trials)])
+    y = y + noise * rng.standard_normal(y.shape)
+    return Session(u=u, y=y, sample_rate_hz=500.0, trials=[(i * length, (i + 1) * length) for i in range(n_trials)],
+                   input_names=["site_a", "site_b"], input_units=["uA", "uA"], output_names=["lfp"],
+                   output_units=["mV"])
+
+
+@pytest.fixture
+def sess(rng):
+    return make_session(rng)
+
+
+@pytest.fixture
+def fitted(sess):
+    return fit_route(sess, route="indirect", method="arx", settings={"past_steps": 3, "alphas": [1e-6, 1e-3]},
+                     seed=5, horizon_steps=4)
+
+
+# ------------------------------------------------------------------------------------------------ fit_route
+def test_split_is_seeded_and_fit_uses_training_trials_only(sess, fitted):
+    split = sess.split(test_fraction=0.25, seed=5)
+    assert fitted.split == split
+    alone = RidgeArx(output_lags=3, input_lags=3, alphas=[1e-6, 1e-3]).fit(sess.select_trials(split.train))
+    np.testing.assert_array_equal(fitted.predictor.coef_, alone.coef_)
+    held = kstep_scores(alone, sess.select_trials(split.test), horizon_steps=4)
+    pd.testing.assert_frame_equal(fitted.heldout.kstep, held.kstep)
+    assert not fitted.heldout.freerun.empty
+    assert fitted.selection_table is fitted.predictor.cv_table_
+
+
+def test_provenance_records_the_data_settings_and_split(sess, fitted):
+    prov = fitted.provenance
+    assert prov["session"]["content_hash"] == sess.content_hash()
+    assert prov["split"] == fitted.split.as_dict() and prov["seed"] == 5
+    assert prov["settings"]["output_lags"] == 3 and prov["settings"]["alphas"] == [1e-6, 1e-3]
+    assert (prov["route"], prov["method"], prov["horizon_steps"]) == ("indirect", "arx", 4)
+    assert prov["session"]["input_units"] == ["uA", "uA"] and prov["heldout"]["horizon_steps"] == 4
+
+
+def test_held_out_scores_are_good_for_the_true_structure(fitted):
+    # Small noise (std 0.02) and the right structure: held-out one-step R² must be high (by construction).
+    assert fitted.heldout.kstep.query("step == 1")["r2"].iloc[0] > 0.99
+
+
+def test_a_lazy_file_gives_the_same_fit(sess, tmp_path):
+    io = pytest.importorskip("stimsteer.sysid.io")
+    io.save_session(sess, tmp_path / "s.h5")
+    kw = {"route": "indirect", "method": "arx", "settings": {"past_steps": 2}, "seed": 1}
+    with io.open_session_file(tmp_path / "s.h5") as f:
+        lazy = fit_route(f, **kw)
+    eager = fit_route(sess, **kw)
+    assert lazy.split == eager.split
+    np.testing.assert_allclose(lazy.predictor.coef_, eager.predictor.coef_, rtol=1e-11, atol=1e-13)
+    pd.testing.assert_frame_equal(lazy.heldout.kstep, eager.heldout.kstep, rtol=1e-9)
+    assert lazy.provenance["session"]["content_hash"] == eager.provenance["session"]["content_hash"]
+
+
+@pytest.mark.parametrize("seed", [0, 1, 7, 123])
+@pytest.mark.parametrize("n_test", [None, 2])
+def test_split_of_a_file_equals_session_split(sess, seed, n_test):
+    class _NoSplit:
+        trials = sess.trials
+
+    assert _split(_NoSplit(), n_test, 0.25, seed) == sess.split(n_test, test_fraction=0.25, seed=seed)
+
+
+def test_trial_subset_keeps_only_its_trials(sess):
+    sub = _TrialSubset(sess, (1, 4))
+    assert sub.segments() == [(200, 400), (800, 1000)] and sub.n_trials == 2
+
+
+def test_subspace_route(sess):
+    pytest.importorskip("stimsteer.sysid.subspace")
+    res = fit_route(sess, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
+    assert "order" in res.selection_table.columns and res.predictor.order_ >= 1
+    assert res.heldout.horizon_steps == 10  # the default when neither caller nor predictor fixes one
+
+
+def test_direct_route_when_registered(sess):
+    if ("direct", "lsq") not in METHODS:
+        pytest.skip("the direct route is not registered yet")
+    res = fit_route(sess, route="direct", method="lsq", settings={"past_steps": 3}, horizon_steps=5)
+    assert res.predictor.max_horizon_steps_ == 5 and res.heldout.horizon_steps == 5
+
+
+def test_route_errors(sess):
+    with pytest.raises(SessionError, match="no method 'oracle' on route 'indirect'; available: .*--route indirect --method arx"):
+        fit_route(sess, route="indirect", method="oracle")
+    with pytest.raises(SessionError, match=r"unknown setting\(s\) \['lag'\] for RidgeArx"):
+        fit_route(sess, route="indirect", method="arx", settings={"lag": 2})
+    with pytest.raises(SessionError, match="needs at least 2 trials"):
+        fit_route(sess.select_trials([0]), route="indirect", method="arx")
+
+
+def test_explicit_lags_win_over_past_steps(sess):
+    res = fit_route(sess, route="indirect", method="arx", settings={"past_steps": 4, "input_lags": 1})
+    assert (res.predictor.output_lags, res.predictor.input_lags) == (4, 1)
+
+
+# ------------------------------------------------------------------------------------------------ patterns
+def write_pattern(path, header, rows):
+    path.write_text(",".join(header) + "\n" + "\n".join(",".join(str(v) for v in r) for r in rows) + "\n")
+    return path
+
+
+def good_pattern(tmp_path, n=40, rate=500.0):
+    rows = [(k / rate, 1.0 if 10 <= k < 20 else 0.0, 0.0) for k in range(n)]
+    return write_pattern(tmp_path / "p.csv", ["time [s]", "in:site_a [uA]", "in:site_b [uA]"], rows)
+
+
+def test_load_pattern(tmp_path):
+    pat = load_pattern(good_pattern(tmp_path))
+    assert pat.u.shape == (40, 2) and pat.sample_rate_hz == 500.0
+    assert pat.input_names == ("site_a", "site_b") and pat.input_units == ("uA", "uA")
+
+
+@pytest.mark.parametrize("header, rows, pattern", [
+    (["time [s]", "in:site_a [uA]", "out:lfp [mV]"], [(0, 1, 1), (0.002, 1, 1)], r"not recognised: \['out:lfp"),
+    (["t", "in:site_a [uA]"], [(0, 1), (1, 1)], "not a stimulation pattern table"),
+    (["time [s]", "in:site_a"], [(0, 1), (1, 1)], "not a stimulation pattern table"),
+    (["time [s]", "in:site_a [uA]"], [(0, 1), (0.002, "")], "row 1 of column 'in:site_a"),
+    (["time [s]", "in:site_a [uA]"], [(0, 1), (0.002, 1), (0.01, 1)], "not on a uniform grid"),
+    (["time [s]", "in:site_a [uA]"], [(0, 1)], "one row cannot give the sampling rate"),
+    (["time [s]", "in:site_a [uA]"], [], "header but no rows"),
+])
+def test_bad_pattern_files(tmp_path, header, rows, pattern):
+    with pytest.raises(FileFormatError, match=pattern):
+        load_pattern(write_pattern(tmp_path / "bad.csv", header, rows))
+
+
+def test_missing_pattern_file(tmp_path):
+    with pytest.raises(FileNotFoundError, match="no such pattern file"):
+        load_pattern(tmp_path / "none.csv")
+
+
+def test_predict_from_rest_and_from_a_trial(sess, fitted, tmp_path):
+    pat = load_pattern(good_pattern(tmp_path))
+    rest = predict_pattern(fitted.predictor, fitted.provenance, pat)
+    up, yp = fitted.predictor.rest_window()
+    np.testing.assert_allclose(rest.y, fitted.predictor.predict(up, yp, pat.u))
+    past = trial_end_window(sess, 2, fitted.predictor, fitted.provenance)
+    np.testing.assert_array_equal(past[1], sess.y[600 - 3:600])
+    from_trial = predict_pattern(fitted.predictor, fitted.provenance, pat, past=past, start="trial 2")
+    np.testing.assert_allclose(from_trial.y, fitted.predictor.predict(*past, pat.u))
+    band = fitted.heldout.error_band(40)
+    np.testing.assert_allclose(from_trial.band, band)
+    assert from_trial.output_units == ("mV",) and from_trial.start == "trial 2"
+
+
+def test_limited_horizon_predictors_are_chained(fitted, tmp_path):
+    class _Short:
+        past_steps_, max_horizon_steps_ = fitted.predictor.past_steps_, 7
+
+        def predict(self, u_past, y_past, u_future):
+            assert u_future.shape[0] <= 7
+            return fitted.predictor.predict(u_past, y_past, u_future)
+
+    pat = load_pattern(good_pattern(tmp_path))
+    long = predict_pattern(fitted.predictor, fitted.provenance, pat)
+    up, yp = fitted.predictor.rest_window()
+    short = predict_pattern(_Short(), fitted.provenance, pat, past=(up, yp))
+    np.testing.assert_allclose(short.y, long.y, rtol=1e-12, atol=1e-12)
+
+
+def test_pattern_must_match_the_model(fitted, tmp_path):
+    cases = [
+        (["time [s]", "in:site_a [uA]"], "has 1 input\\(s\\) \\['site_a'\\]; the model has 2"),
+        (["time [s]", "in:site_b [uA]", "in:site_a [uA]"], "expects \\['site_a', 'site_b'\\] in this order"),
+        (["time [s]", "in:site_a [mA]", "in:site_b [uA]"], "'site_a' is in 'mA' in the pattern, but the model was "
+                                                          "fitted in 'uA'"),
+    ]
+    for header, message in cases:
+        rows = [(k / 500.0, *([0.0] * (len(header) - 1))) for k in range(5)]
+        pat = load_pattern(write_pattern(tmp_path / "p.csv", header, rows))
+        with pytest.raises(SessionError, match=message):
+            predict_pattern(fitted.predictor, fitted.provenance, pat)
+    pat = load_pattern(good_pattern(tmp_path, rate=1000.0))
+    with pytest.raises(SessionError, match="sampled at 1000 Hz; the model runs at 500 Hz"):
+        predict_pattern(fitted.predictor, fitted.provenance, pat)
+    with pytest.raises(FileFormatError, match="provenance lacks the session description"):
+        predict_pattern(fitted.predictor, {}, pat)
+
+
+def test_trial_end_window_errors(sess, fitted):
+    with pytest.raises(SessionError, match="trial 9 does not exist; the session has trials 0 to 5"):
+        trial_end_window(sess, 9, fitted.predictor, fitted.provenance)
+    mask = np.array(sess.mask)
+    mask[599] = False
+    with pytest.raises(SessionError, match="last 3 samples of trial 2 include masked samples"):
+        trial_end_window(sess.replace(mask=mask), 2, fitted.predictor, fitted.provenance)
+    renamed = sess.replace(output_names=("spikes",))
+    with pytest.raises(SessionError, match="outputs \\['spikes'\\]"):
+        trial_end_window(renamed, 2, fitted.predictor, fitted.provenance)
+    short = Session(u=sess.u[:2], y=sess.y[:2], sample_rate_hz=500.0, input_names=sess.input_names,
+                    input_units=sess.input_units, output_names=sess.output_names, output_units=sess.output_units)
+    with pytest.raises(SessionError, match="trial 0 has 2 samples; the model needs a past window of 3"):
+        trial_end_window(short, 0, fitted.predictor, fitted.provenance)
+
+
+def test_write_prediction(fitted, tmp_path):
+    pred = predict_pattern(fitted.predictor, fitted.provenance, load_pattern(good_pattern(tmp_path)))
+    files = write_prediction(pred, tmp_path / "out")
+    table = pd.read_csv(files["csv"])
+    assert list(table.columns) == ["time [s] @ 500 Hz", "in:site_a [uA]", "in:site_b [uA]", "out:lfp [mV]",
+                                   "rmse:lfp [mV]"]
+    np.testing.assert_allclose(table["out:lfp [mV]"], pred.y[:, 0], rtol=1e-9)
+    assert files["png"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    with pytest.raises(StimsteerError, match="already holds files"):
+        write_prediction(pred, tmp_path / "out")
+    write_prediction(pred, tmp_path / "out", force=True)
