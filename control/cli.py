@@ -197,10 +197,62 @@ def _run_network(args):
     return 0
 
 
+# ---------------------------------------------------------------------------------------------------- schedule
+def _add_schedule(sub):
+    p = sub.add_parser("schedule", help="design an exciting stimulation schedule for the next session, inside the "
+                       "declared limits, and write it as a CSV")
+    p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
+    p.add_argument("--inputs", required=True, type=int, help="number of stimulation inputs (must match the limits)")
+    p.add_argument("--order", required=True, type=int,
+                   help="excitation order to guarantee: past window + horizon + expected number of states")
+    p.add_argument("--out", required=True, help="schedule file to write (CSV)")
+    p.add_argument("--kind", choices=["pulses", "prbs", "multilevel", "multisine"], default="prbs",
+                   help="signal family (default prbs)")
+    p.add_argument("--rate-hz", type=float, default=1000.0, help="sample rate of the schedule (default 1000)")
+    p.add_argument("--trials", type=int, help="number of trials (default: enough for the order, at least 4)")
+    p.add_argument("--trial-s", type=float, default=10.0, help="trial length in seconds (default 10)")
+    p.add_argument("--rest-s", type=float, default=2.0, help="rest before, between and after trials (default 2)")
+    p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
+    p.add_argument("--hold-steps", type=int, default=1, help="samples each value is held (prbs, multilevel)")
+    p.add_argument("--levels", type=int, default=5, help="number of levels (multilevel; default 5)")
+    p.add_argument("--pulse-rate-hz", type=float, help="mean pulse rate (pulses; default rate / 5)")
+    p.add_argument("--band-hz", type=float, help="highest excited frequency (multisine; default Nyquist)")
+    p.add_argument("--energy-window-steps", type=int,
+                   help="window of the limits' energy budget, samples (default --order, which also covers any "
+                   "shorter planning horizon)")
+    p.add_argument("--force", action="store_true", help="replace an existing schedule file")
+    return p
+
+
+def _run_schedule(args):
+    from ..sysid.exceptions import LimitsError
+    from ..sysid.schedule import design_schedule, save_schedule
+    from .limits import load_limits
+
+    limits = load_limits(args.limits)
+    if limits.n_inputs != args.inputs:
+        raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
+                          f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
+    lo, hi = limits.input_bounds()
+    schedule = design_schedule(
+        n_inputs=args.inputs, order=args.order, lo=lo, hi=hi, slew=limits.slew_max_ua, kind=args.kind,
+        sample_rate_hz=args.rate_hz, n_trials=args.trials, trial_s=args.trial_s, rest_s=args.rest_s,
+        seed=args.seed, input_names=limits.input_names, energy_budget=limits.energy_budget_ua2,
+        energy_window_steps=args.energy_window_steps, hold_steps=args.hold_steps, n_levels=args.levels,
+        pulse_rate_hz=args.pulse_rate_hz, band_hz=args.band_hz,
+    )
+    save_schedule(schedule, args.out, overwrite=args.force)
+    print(schedule.to_text())
+    print(f"schedule written to {args.out}")
+    print(CAUTION)
+    return 0
+
+
 _SUBCOMMANDS = {
     "fit": (_add_fit, _run_fit),
     "predict": (_add_predict, _run_predict),
     "network": (_add_network, _run_network),
+    "schedule": (_add_schedule, _run_schedule),
     "inspect": (_add_inspect, _run_inspect),
     "demo": (_add_demo, _run_demo),
 }

@@ -16,7 +16,8 @@ Kinds
     plus an exponential part), the rest level in between.
 ``"prbs"``
     Binary pseudo-random sequences: disjoint stretches of one maximum-length sequence
-    (:func:`scipy.signal.max_len_seq`) per input, each bit held ``hold_steps`` samples, on two levels.
+    (:func:`scipy.signal.max_len_seq`) per input, each bit held ``hold_steps`` samples, on two levels: the
+    amplitude bounds, narrowed symmetrically to ``slew`` apart when a jump between them would break the slew limit.
 ``"multilevel"``
     Pseudo-random multilevel sequences: a random walk over ``n_levels`` evenly spaced levels, each held
     ``hold_steps`` samples, moving only between levels the slew limit allows.
@@ -485,8 +486,14 @@ class Schedule:
             f"expected session length: {self.duration_s:g} s ({self.n_samples} samples)",
             f"excitation: order {ex.order} verified on the trials (rank {ex.rank} of {ex.n_rows}, "
             f"{ex.n_columns} Hankel columns, sigma_min/sigma_max = {ex.singular_value_ratio:.3g})",
-            f"amplitude range used: {float(self.u.min()):g} .. {float(self.u.max()):g} {self.input_units[0]}",
         ]
+        shown = min(self.n_inputs, 8)
+        for j in range(shown):
+            slew = "" if self.slew is None or not np.isfinite(self.slew[j]) else f", slew {self.slew[j]:g}/step"
+            lines.append(f"  {self.input_names[j]}: {float(self.u[:, j].min()):g} .. {float(self.u[:, j].max()):g} "
+                         f"{self.input_units[j]} used (bounds {self.lo[j]:g} .. {self.hi[j]:g}{slew})")
+        if shown < self.n_inputs:
+            lines.append(f"  ... and {self.n_inputs - shown} more input(s) (all in the file)")
         if self.energy_budget is not None:
             lines.append(f"energy budget {self.energy_budget:g} per {self.energy_window_steps} steps: deviations "
                          f"scaled by {self.energy_gain:.4g}")

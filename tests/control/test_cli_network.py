@@ -142,3 +142,90 @@ def test_network_keeps_an_existing_folder_unless_forced(model_file, tmp_path, ca
 def test_network_missing_model_file(tmp_path, capsys):
     assert main(["network", str(tmp_path / "nope.h5"), "--out", str(tmp_path / "n")]) == 2
     assert "nope.h5" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------------------------------------ schedule
+LIMITS = """
+[charge_density]
+pulse_width_us = 200.0
+electrode_area_cm2 = 0.000007
+
+[energy]
+budget_ua2 = 5.0e4
+
+[inputs.site_a]
+amplitude_min_ua = -60.0
+amplitude_max_ua = 60.0
+slew_max_ua = 30.0
+
+[inputs.site_b]
+amplitude_min_ua = 0.0
+amplitude_max_ua = 200.0
+"""
+
+
+@pytest.fixture
+def limits_file(tmp_path):
+    path = tmp_path / "limits.toml"
+    path.write_text(LIMITS)
+    return path
+
+
+@pytest.mark.parametrize("kind", ["pulses", "prbs", "multilevel", "multisine"])
+def test_schedule_command_writes_a_schedule_inside_the_limits(limits_file, tmp_path, capsys, kind):
+    from stimsteer.control.limits import load_limits
+    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+
+    out = tmp_path / "next.csv"
+    args = ["schedule", "--limits", str(limits_file), "--inputs", "2", "--order", "10", "--out", str(out),
+            "--kind", kind, "--rate-hz", "100", "--trial-s", "2", "--rest-s", "0.5", "--seed", "7"]
+    if kind == "multilevel":
+        args += ["--levels", "9"]
+    assert main(args) == 0
+    printed = capsys.readouterr().out
+    assert "expected session length" in printed and CAUTION in printed
+    u, trials, names, units, rate = load_schedule(out)
+    assert names == ("site_a", "site_b") and units == ("uA", "uA") and rate == 100.0
+    limits = load_limits(limits_file)
+    # the limits' own check (helper E's StimLimits.violations): amplitude (incl. the charge-density bound) and slew
+    v = limits.violations(u, last_input=np.zeros(2))
+    assert v["amplitude"] == 0 and v["slew"] == 0
+    lo, hi = limits.input_bounds()
+    # Shannon (1992) bound with k = 1.75, 200 us, 7e-6 cm2: sqrt(10**1.75 * 7e-6) uC / 200 us = 99.2 uA (derived)
+    assert hi[1] == pytest.approx(99.2, abs=0.1) and u[:, 1].max() <= hi[1]
+    c = np.concatenate([[0.0], np.cumsum(np.sum(u ** 2, axis=1))])
+    assert np.all(c[10:] - c[:-10] <= 5.0e4)  # energy budget on every window of --order steps
+    assert verify_excitation(u, trials, 10).exciting
+
+
+def test_schedule_command_refuses_a_mismatched_input_count(limits_file, tmp_path, capsys):
+    code = main(["schedule", "--limits", str(limits_file), "--inputs", "3", "--order", "5", "--out",
+                 str(tmp_path / "s.csv")])
+    assert code == 2
+    assert "declares limits for 2 input(s) but --inputs is 3" in capsys.readouterr().err
+    assert not (tmp_path / "s.csv").exists()
+
+
+def test_schedule_command_reports_an_unexciting_design(limits_file, tmp_path, capsys):
+    code = main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--order", "50", "--out",
+                 str(tmp_path / "s.csv"), "--rate-hz", "100", "--trial-s", "0.2"])
+    assert code == 2
+    assert "shorter than the excitation order 50" in capsys.readouterr().err
+
+
+def test_schedule_command_keeps_an_existing_file_unless_forced(limits_file, tmp_path, capsys):
+    out = tmp_path / "s.csv"
+    out.write_text("keep")
+    base = ["schedule", "--limits", str(limits_file), "--inputs", "2", "--order", "5", "--out", str(out),
+            "--rate-hz", "50", "--trial-s", "1", "--rest-s", "0.2"]
+    assert main(base) == 2
+    assert "already exists" in capsys.readouterr().err and out.read_text() == "keep"
+    assert main(base + ["--force"]) == 0 and out.read_text().startswith("time [s] @ 50 Hz")
+
+
+def test_schedule_command_bad_limits_file(tmp_path, capsys):
+    bad = tmp_path / "bad.toml"
+    bad.write_text("this is = = not toml")
+    assert main(["schedule", "--limits", str(bad), "--inputs", "1", "--order", "3", "--out",
+                 str(tmp_path / "s.csv")]) == 2
+    assert "not a valid TOML limits file" in capsys.readouterr().err
