@@ -40,6 +40,7 @@ _NOISE_FREE = 1e-12
 _SV_RTOL = 1e-8
 _CHUNK_ENTRIES = 4_000_000
 _THREADED_WIDTH = 256
+_TABLE_COLUMNS = ("order", "singular_value", "gap_ratio", "heldout_error", "stable", "selected")
 
 
 # ----------------------------------------------------------------------------------------------------- layout
@@ -743,10 +744,11 @@ class SubspaceId:
         est.order_ = int(state["order"])
         est.order_gap_ = int(state["order_gap"])
         est.singular_values_ = np.asarray(state["singular_values"], dtype=np.float64)
-        table = pd.DataFrame({k: np.asarray(v) for k, v in state["order_table"].items()})
+        cols = state["order_table"]  # a file layout may return the columns in another order
+        table = pd.DataFrame({k: np.asarray(cols[k]) for k in _TABLE_COLUMNS})
+        table["order"] = table["order"].astype(np.int64)
         for col in ("stable", "selected"):
-            if col in table:
-                table[col] = table[col].astype(bool)
+            table[col] = table[col].astype(bool)
         est.order_table_ = table
         est.process_cov_ = np.asarray(state["process_cov"], dtype=np.float64)
         est.measurement_cov_ = np.asarray(state["measurement_cov"], dtype=np.float64)

@@ -409,3 +409,15 @@ def test_fit_does_not_warn_on_clean_stable_data(rng):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         SubspaceId(past_steps=5, future_steps=5).fit(_session(rng, noise=0.05))
+
+
+def test_model_file_round_trip_through_storage(rng, tmp_path):
+    storage = pytest.importorskip("stimsteer.sysid.storage")
+    session = _session(rng, noise=0.05)
+    est = SubspaceId(past_steps=5, future_steps=5).fit(session)
+    path = storage.save_predictor(est, tmp_path / "model.h5", provenance={"data_hash": session.content_hash()})
+    back, provenance = storage.load_predictor(path)
+    assert isinstance(back, SubspaceId) and provenance["data_hash"] == session.content_hash()
+    up, yp, uf = session.u[:5], session.y[:5], session.u[5:30]
+    np.testing.assert_array_equal(back.predict(up, yp, uf), est.predict(up, yp, uf))
+    pd.testing.assert_frame_equal(back.order_table_, est.order_table_)
