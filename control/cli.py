@@ -203,8 +203,12 @@ def _add_schedule(sub):
                        "declared limits, and write it as a CSV")
     p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
     p.add_argument("--inputs", required=True, type=int, help="number of stimulation inputs (must match the limits)")
-    p.add_argument("--order", required=True, type=int,
-                   help="excitation order to guarantee: past window + horizon + expected number of states")
+    p.add_argument("--order", type=int,
+                   help="excitation order to guarantee: past window + horizon + expected number of states "
+                   "(or give --past-steps and --horizon-steps instead)")
+    p.add_argument("--past-steps", type=int, help="past window the next fits will use, samples")
+    p.add_argument("--horizon-steps", type=int, help="prediction / control horizon, samples")
+    p.add_argument("--states", type=int, help="expected number of states (default: the past window)")
     p.add_argument("--out", required=True, help="schedule file to write (CSV)")
     p.add_argument("--kind", choices=["pulses", "prbs", "multilevel", "multisine"], default="prbs",
                    help="signal family (default prbs)")
@@ -225,17 +229,26 @@ def _add_schedule(sub):
 
 
 def _run_schedule(args):
+    from ..sysid.excitation import required_order
     from ..sysid.exceptions import LimitsError
     from ..sysid.schedule import design_schedule, save_schedule
     from .limits import load_limits
 
+    order = args.order
+    if order is None:
+        if args.past_steps is None or args.horizon_steps is None:
+            raise StimsteerError("give --order K, or --past-steps and --horizon-steps (and optionally --states) so "
+                                 "the order past + horizon + states can be derived.")
+        order = required_order(args.past_steps, args.horizon_steps, args.states)
+        print(f"order {order} = past window {args.past_steps} + horizon {args.horizon_steps} + "
+              f"{'states ' + str(args.states) if args.states is not None else 'states (assumed = past window)'}")
     limits = load_limits(args.limits)
     if limits.n_inputs != args.inputs:
         raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
                           f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
     lo, hi = limits.input_bounds()
     schedule = design_schedule(
-        n_inputs=args.inputs, order=args.order, lo=lo, hi=hi, slew=limits.slew_max_ua, kind=args.kind,
+        n_inputs=args.inputs, order=order, lo=lo, hi=hi, slew=limits.slew_max_ua, kind=args.kind,
         sample_rate_hz=args.rate_hz, n_trials=args.trials, trial_s=args.trial_s, rest_s=args.rest_s,
         seed=args.seed, input_names=limits.input_names, energy_budget=limits.energy_budget_ua2,
         energy_window_steps=args.energy_window_steps, hold_steps=args.hold_steps, n_levels=args.levels,

@@ -229,3 +229,20 @@ def test_schedule_command_bad_limits_file(tmp_path, capsys):
     assert main(["schedule", "--limits", str(bad), "--inputs", "1", "--order", "3", "--out",
                  str(tmp_path / "s.csv")]) == 2
     assert "not a valid TOML limits file" in capsys.readouterr().err
+
+
+def test_schedule_order_from_past_window_horizon_and_states(limits_file, tmp_path, capsys):
+    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+
+    out = tmp_path / "s.csv"
+    assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--horizon-steps",
+                 "5", "--states", "4", "--out", str(out), "--rate-hz", "50", "--trial-s", "2", "--rest-s", "0"]) == 0
+    assert "order 12 = past window 3 + horizon 5 + states 4" in capsys.readouterr().out
+    u, trials, *_ = load_schedule(out)
+    assert verify_excitation(u, trials, 12).exciting
+
+
+def test_schedule_needs_an_order_or_a_window(limits_file, tmp_path, capsys):
+    assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--out",
+                 str(tmp_path / "s.csv")]) == 2
+    assert "give --order K, or --past-steps and --horizon-steps" in capsys.readouterr().err
