@@ -458,8 +458,10 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
         Length of the blanked window in seconds (> 0); it covers ``max(1, ceil(window_s · sample_rate_hz))``
         samples, starting at the onset sample itself.
     onset_threshold : float, default 0.0
-        In the inputs' units. An onset is a sample where an input is above the threshold while the sample before
-        it was not (a NaN counts as not above; a first sample above the threshold is an onset).
+        In the inputs' units. An onset is a sample where an input's magnitude ``|u|`` is above the threshold while
+        the sample before it was not: a site turning on, with either polarity (cathodic-first and anodic-first
+        pulses both make artifacts); a polarity switch while the site stays on is not an onset. A NaN counts as
+        off; a first sample above the threshold is an onset.
     inputs : str or sequence of str, optional
         Input channels that define onsets; default all.
 
@@ -483,7 +485,8 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
         raise SessionError(f"window_s must be a positive number of seconds; got {window_s}.")
     if not math.isfinite(onset_threshold):
         raise SessionError(f"onset_threshold must be finite; got {onset_threshold}.")
-    above = session.u[:, _onset_columns(session, inputs)] > onset_threshold
+    with np.errstate(invalid="ignore"):
+        above = np.abs(session.u[:, _onset_columns(session, inputs)]) > onset_threshold
     before = np.vstack([np.zeros((1, above.shape[1]), dtype=bool), above[:-1]])
     onsets = np.flatnonzero((above & ~before).any(axis=1))
     width = max(1, math.ceil(window_s * session.sample_rate_hz - 1e-9))

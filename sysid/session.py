@@ -83,7 +83,7 @@ def _names(kind: str, names, n: int, prefix: str) -> tuple[str, ...]:
     return names
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Session:
     """A recorded stimulation session.
 

@@ -306,3 +306,16 @@ def test_blanking_needs_inputs():
     s = Session(u=np.zeros((10, 0)), y=np.zeros((10, 1)), sample_rate_hz=FS)
     with pytest.raises(SessionError, match=r"needs at least one input channel"):
         blank_artifacts(s, window_s=0.1)
+
+
+def test_blanking_counts_negative_pulses_as_onsets_but_not_polarity_switches():
+    # A cathodic (negative) pulse makes an artifact like an anodic one (common practice, no source); a switch
+    # from +10 to -10 while the site stays on is not a new onset.
+    u = np.zeros((40, 1))
+    u[5:7] = -10.0  # negative pulse: onset at 5
+    u[20:22] = 10.0  # positive, then switches polarity without turning off: one onset at 20
+    u[22:24] = -10.0
+    s = Session(u=u, y=np.zeros((40, 1)), sample_rate_hz=100.0)
+    out = blank_artifacts(s, window_s=0.03)
+    assert np.flatnonzero(~out.mask).tolist() == [5, 6, 7, 20, 21, 22]
+    assert out.metadata["prep"][-1]["n_onsets"] == 2
