@@ -34,15 +34,24 @@ class _Parser(argparse.ArgumentParser):
 def _add_inspect(sub):
     p = sub.add_parser("inspect", help="summarise a session: channels, rate, trials, gaps, flat or saturated channels")
     p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
+    p.add_argument("--past", type=int, default=10, metavar="STEPS",
+                   help="past window of the direct route, in samples, for the excitation check (default 10)")
+    p.add_argument("--horizon", type=int, default=20, metavar="STEPS",
+                   help="prediction horizon of the direct route, in samples, for the excitation check (default 20)")
+    p.add_argument("--states", type=int, default=None, metavar="N",
+                   help="state dimension assumed by the excitation check (default: the past window)")
     return p
 
 
 def _run_inspect(args):
+    from ..sysid.excitation import excitation_report
     from ..sysid.io import load_session
     from ..sysid.quality import describe_session
 
     session = load_session(args.session)
     print(describe_session(session).to_text())
+    print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
+                            n_states=args.states).to_text())
     return 0
 
 

@@ -148,3 +148,17 @@ def test_report_rejects_a_session_without_valid_samples():
     s = Session(u=np.zeros((10, 1)), y=np.zeros((10, 1)), sample_rate_hz=1.0, mask=np.zeros(10, bool))
     with pytest.raises(SessionError, match="no valid in-trial samples"):
         excitation_report(s, past_steps=1, horizon_steps=1)
+
+
+def test_inspect_command_prints_the_excitation_report(rng, tmp_path, capsys):
+    from stimsteer.control.cli import main
+    from stimsteer.sysid.io import save_session
+
+    path = tmp_path / "pulses.h5"
+    save_session(_pulse_session(rng, period=7), path)
+    assert main(["inspect", str(path), "--past", "10", "--horizon", "20", "--states", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "order per trial: 7, 7" in out
+    assert "the input excites order 7 but the direct route needs 31 for this horizon" in out
+    assert main(["inspect", str(path), "--past", "0"]) == 2
+    assert "past_steps must be a whole number of samples >= 1; got 0" in capsys.readouterr().err
