@@ -11,6 +11,7 @@ fitting costs about one Gram of the Hankel matrix however many orders are tried.
 from __future__ import annotations
 
 import contextlib
+import functools
 import json
 import warnings
 
@@ -192,6 +193,18 @@ class _Projection:
         self.S = S
         self.layout = L
 
+    @functools.cached_property
+    def given_past(self):
+        """Covariances of ``Uf`` and of ``Yf`` with ``Uf`` conditioned on the past ``Wp`` (for ``B, D``)."""
+        S, L = self.S, self.layout
+        return _conditional(S, L.Uf, L.Uf, L.P), _conditional(S, L.Yf, L.Uf, L.P)
+
+    @functools.cached_property
+    def theta_next(self) -> np.ndarray:
+        """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
+        S, L = self.S, self.layout
+        return _conditional(S, L.Yf1, L.P1, L.Uf1) @ _pinv_psd(_conditional(S, L.P1, L.P1, L.Uf1))
+
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
         G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
@@ -248,7 +261,7 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     Q = np.linalg.qr(gamma)[0]
     P1 = Q @ Q.T
     S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
-    Sc_uu, Sc_yu = _conditional(S, L.Uf, L.Uf, L.P), _conditional(S, L.Yf, L.Uf, L.P)
+    Sc_uu, Sc_yu = proj.given_past
     target = S_yu + P1 @ (Sc_yu - S_yu)
     image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
     flat = Hs.reshape(Hs.shape[0], -1)
@@ -275,13 +288,12 @@ def _state_maps(proj: _Projection, gamma):
     ``x̂_t = Γ⁺ Θ Wp`` and ``x̂_{t+1} = Γ₋⁺ Θ₊ Wp₊`` (past one step longer, future one shorter, Γ₋ = Γ without its
     last block row): Van Overschee & De Moor 1996, sec. 4.3.
     """
-    L, S = proj.layout, proj.S
+    L = proj.layout
     n = gamma.shape[1]
     X0 = np.zeros((n, L.nz))
     X0[:, L.P] = np.linalg.pinv(gamma) @ proj.theta
-    theta1 = _conditional(S, L.Yf1, L.P1, L.Uf1) @ _pinv_psd(_conditional(S, L.P1, L.P1, L.Uf1))
     X1 = np.zeros((n, L.nz))
-    X1[:, L.P1] = np.linalg.pinv(gamma[:-L.p]) @ theta1
+    X1[:, L.P1] = np.linalg.pinv(gamma[:-L.p]) @ proj.theta_next
     return X0, X1
 
 
