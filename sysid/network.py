@@ -419,6 +419,12 @@ def controllability(system, *, horizon_steps: int | None = None, normalise: bool
     UnstableModelError
         For the infinite horizon on an unstable ``A``.
 
+    Notes
+    -----
+    The Kalman matrix holds powers of ``A`` up to ``n - 1`` and is badly scaled for many states (its columns shrink
+    or grow geometrically), so for large ``n`` its numerical rank can understate controllability; the Gramian's
+    smallest eigenvalue and condition number are then the more reliable figures.
+
     References
     ----------
     Kalman, Ho, Narendra (1963); Pasqualetti, Zampieri, Bullo (2014), Sec. III (trace of the Gramian).

@@ -246,3 +246,23 @@ def test_schedule_needs_an_order_or_a_window(limits_file, tmp_path, capsys):
     assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--out",
                  str(tmp_path / "s.csv")]) == 2
     assert "give --order K, or --past-steps and --horizon-steps" in capsys.readouterr().err
+
+
+def test_network_reports_an_unreachable_target(tmp_path, capsys):
+    # by construction: only node 0 is actuated in a diagonal network, so no site reaches a pattern on node 1
+    model = StateSpaceModel(A=np.diag([0.5, 0.3]), B=np.array([[1.0], [0.0]]), C=np.eye(2))
+    path = tmp_path / "m.h5"
+    save_predictor(model, path, provenance={"origin": "test"})
+    assert main(["network", str(path), "--out", str(tmp_path / "n"), "--target", "0,1"]) == 0
+    printed = capsys.readouterr().out
+    assert "NOT controllable" in printed and "NOT reachable" in printed and "none reaches the target" in printed
+    ranking = pd.read_csv(tmp_path / "n" / "site_ranking.csv")
+    assert np.isinf(ranking["energy"]).all() and (tmp_path / "n" / "site_ranking.png").exists()
+
+
+@pytest.mark.parametrize("text, match", [("", "is an empty file"), ("ch1,ch2,ch3,ch4\n", "header but no row")])
+def test_network_target_files_without_values(model_file, tmp_path, capsys, text, match):
+    target = tmp_path / "t.csv"
+    target.write_text(text)
+    assert main(["network", str(model_file), "--out", str(tmp_path / "n"), "--target", str(target)]) == 2
+    assert match in capsys.readouterr().err

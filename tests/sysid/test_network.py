@@ -302,3 +302,13 @@ def test_pattern_to_state_subtracts_the_models_resting_output(rng):
     np.testing.assert_allclose(ps.x, x, atol=1e-12)
     np.testing.assert_array_equal(ps.output_offset, offset)
     np.testing.assert_array_equal(pattern_to_state(base, [0.0, 0.0, 0.0]).output_offset, 0.0)
+
+
+def test_minimum_energy_needs_a_horizon(rng):
+    with pytest.raises(SessionError, match="horizon_steps is required"):
+        minimum_energy_transition(_random_model(rng), np.zeros(4), horizon_steps=None)
+
+
+def test_minimum_energy_rejects_a_bad_start_state(rng):
+    with pytest.raises(SessionError, match="x0 must be a finite vector of the model's 4 states"):
+        minimum_energy_transition(_random_model(rng), np.zeros(4), horizon_steps=3, x0=[np.nan, 0, 0, 0])

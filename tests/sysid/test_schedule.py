@@ -297,3 +297,42 @@ def test_infinite_slew_means_no_limit_on_that_input(seed):
 def test_a_switched_off_input_is_named_in_the_error():
     with pytest.raises(LimitsError, match="input 1 .* switched off"):
         design_schedule(kind="prbs", lo=[-1.0, 0.0, -1.0], hi=[1.0, 0.0, 1.0], **SMALL)
+
+
+def test_the_final_guard_refuses_any_limit_violation():
+    from stimsteer.sysid.exceptions import InfeasiblePlanError
+    from stimsteer.sysid.schedule import _check_limits
+
+    lo, hi, slew, base = np.array([-1.0]), np.array([1.0]), np.array([0.5]), np.array([0.0])
+    ok = np.array([[0.5], [0.0], [-0.5]])
+    _check_limits(ok, lo, hi, slew, base, 0.6, 2)
+    with pytest.raises(InfeasiblePlanError, match="left its amplitude bounds"):
+        _check_limits(np.array([[1.5]]), lo, hi, None, base, None, None)
+    with pytest.raises(InfeasiblePlanError, match="broke its slew limit"):
+        _check_limits(np.array([[0.6]]), lo, hi, slew, base, None, None)
+    with pytest.raises(InfeasiblePlanError, match="broke its energy budget"):
+        _check_limits(ok, lo, hi, slew, base, 0.2, 2)
+
+
+def test_non_numeric_durations_are_refused():
+    with pytest.raises(SessionError, match="trial_s must be a number"):
+        design_schedule(kind="prbs", lo=-1, hi=1, **{**SMALL, "trial_s": "long"})
+
+
+def test_a_name_that_cannot_be_a_column_header_is_refused(tmp_path):
+    s = design_schedule(kind="prbs", lo=-1, hi=1, input_names=["a[1]", "b", "c"], **SMALL)
+    with pytest.raises(FileFormatError, match="cannot be written as 'in:<name> \\[<unit>\\]'"):
+        save_schedule(s, tmp_path / "s.csv")
+    assert not (tmp_path / "s.csv").exists()
+
+
+@pytest.mark.parametrize("text, match", [
+    ("time [s] @ 10 Hz,trial,in:a [uA]\n0,0.5,1\n", "must hold whole numbers"),
+    ("time [s] @ 10 Hz,trial,in:a [uA]\n,0,1\n", "needs a finite time"),
+    ("time [s] @ -10 Hz,trial,in:a [uA]\n0,0,1\n", "must be positive"),
+])
+def test_more_bad_schedule_files(tmp_path, text, match):
+    path = tmp_path / "bad.csv"
+    path.write_text(text)
+    with pytest.raises(FileFormatError, match=match):
+        load_schedule(path)
