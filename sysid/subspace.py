@@ -442,7 +442,8 @@ class SubspaceId:
     Notes
     -----
     Data model ``x[k+1] = A x[k] + B u[k] + K e[k]``, ``y[k] = C x[k] + D u[k] + e[k]``. Channels are scaled to unit
-    RMS before the projections and the model is transformed back. ``A, C`` come from the shift invariance of Γ;
+    RMS before the projections and the model is transformed back. The model has no constant term: remove offsets
+    (e.g. the training mean, see ``prep``) before fitting. ``A, C`` come from the shift invariance of Γ;
     ``B, D`` by least squares on the data given ``A, C``; the noise covariances from the residuals of the estimated
     state sequences; ``K`` from the filter Riccati equation. An unstable estimate is kept and reported
     (``is_stable_``, a warning), never changed.
