@@ -32,7 +32,6 @@ from ..sysid.exceptions import FileFormatError, SessionError, UnstableModelError
 from ..sysid.network import (
     controllability,
     impulse_responses,
-    pattern_to_state,
     pattern_transition,
     rank_sites,
     site_controllability,

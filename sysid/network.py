@@ -585,8 +585,8 @@ def pattern_to_state(system, pattern) -> PatternState:
 
     Notes
     -----
-    ``x = C⁺ (pattern − offset)`` (:func:`numpy.linalg.lstsq`, singular values below ``max(p, n) * eps * sigma_max`` dropped);
-    the solution is unique only when ``C`` has full column rank.
+    ``x = C⁺ (pattern − offset)`` (:func:`numpy.linalg.lstsq`, singular values below
+    ``max(p, n) * eps * sigma_max`` dropped); the solution is unique only when ``C`` has full column rank.
     """
     model = _as_model(system)
     y = np.asarray(pattern, dtype=np.float64).reshape(-1)

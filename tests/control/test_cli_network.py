@@ -74,7 +74,8 @@ def test_network_reads_a_target_file_with_channel_names(model_file, tmp_path):
     out_file, out_text = tmp_path / "a", tmp_path / "b"
     assert main(["network", str(model_file), "--out", str(out_file), "--target", str(target)]) == 0
     assert main(["network", str(model_file), "--out", str(out_text), "--target", "1,0,0.5,-1"]) == 0
-    pd.testing.assert_frame_equal(pd.read_csv(out_file / "site_ranking.csv"), pd.read_csv(out_text / "site_ranking.csv"))
+    pd.testing.assert_frame_equal(pd.read_csv(out_file / "site_ranking.csv"),
+                                  pd.read_csv(out_text / "site_ranking.csv"))
 
 
 def test_network_accepts_a_fitted_indirect_predictor(tmp_path, rng, capsys):
