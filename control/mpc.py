@@ -44,6 +44,7 @@ from __future__ import annotations
 
 import contextlib
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import cvxpy as cp
@@ -59,6 +60,10 @@ from .limits import StimLimits
 __all__ = ["Plan", "ModelPredictiveController", "DataPredictiveController", "condensed_prediction"]
 
 _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
+# Clarabel's default tolerances (1e-8) leave plans ~1e-5 apart on flat objectives; tighter ones cost a few
+# iterations and make the plain path a reference for the fast one. solver_options override these.
+_CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10, "tol_ktratio": 1e-8,
+                              "reduced_tol_gap_abs": 1e-7, "reduced_tol_gap_rel": 1e-7, "reduced_tol_feas": 1e-7}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
 
@@ -98,7 +103,7 @@ class Plan:
         ``"optimal"``, ``"optimal_inaccurate"`` (accepted after verification), ``"infeasible"`` (the limits
         conflict, or the constraints have no solution) or ``"failed"`` (the solver gave no usable answer).
     message : str
-        Why a plan is not optimal (empty when it is).
+        Why a plan is not optimal, or how it was solved when the fast path had to hand over; empty otherwise.
     fallback : bool
         True when ``inputs`` are the safe fallback instead of an optimised plan.
     solve_time_s : float
@@ -280,6 +285,8 @@ class _FastQP:
 
         self.n_vars = n_vars
         self.solver = osqp.OSQP()
+        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
+        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
         P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
         A = sp.csc_matrix(A)
         self.solver.setup(P, np.zeros(n_vars), A, -np.inf * np.ones(A.shape[0]), np.inf * np.ones(A.shape[0]),
@@ -289,7 +296,7 @@ class _FastQP:
         self.solver.update(q=q, l=l, u=u)
         # OSQP 1.x writes "Polishing not needed ..." to sys.stdout even when not verbose
         with contextlib.redirect_stdout(_SILENT):
-            res = self.solver.solve()
+            res = self.solver.solve(**self._solve_kw)
         status = str(res.info.status).lower()
         if status == "solved":
             return res.x, "optimal", ""
@@ -330,9 +337,9 @@ class _PredictiveController:
         penalty = float(self.output_penalty)
         if not np.isfinite(penalty) or penalty <= 0:
             raise SessionError(f"output_penalty must be positive and finite; got {self.output_penalty!r}.")
-        # The fast path's slack variable is t = ρ·s: with cost 1·t its multiplier is O(1) instead of O(ρ), which
-        # ADMM reaches in tens of iterations instead of thousands.
-        self._rho = penalty
+        # The fast path's slack variable is t = κ·s with κ = sqrt(ρ) and cost (ρ/κ)·t: both the multiplier of
+        # t >= 0 and t itself stay moderate, which ADMM reaches in far fewer iterations than with s itself.
+        self._kappa = float(np.sqrt(penalty))
         ymin, ymax = self.limits_.output_min, self.limits_.output_max
         if ymin is None:
             ymin, ymax = np.full(p, -np.inf), np.full(p, np.inf)
@@ -458,7 +465,9 @@ class _PredictiveController:
             The input applied just before the plan (for the slew limit); default ``u_past[-1]``.
         use_fast_path : bool, optional
             Solve with the reusable OSQP problem (True) or the cvxpy problem (False); default the controller's
-            ``fast_path`` setting. The fast path is used only where it exists (see the module docstring).
+            ``fast_path`` setting. The fast path is used only where it exists (see the module docstring); when
+            OSQP fails (e.g. its iteration limit on a badly scaled penalty), the cvxpy problem is solved instead
+            and ``Plan.solver`` names both.
 
         Returns
         -------
@@ -482,14 +491,19 @@ class _PredictiveController:
         reason = self._guard(lb, ub, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
-        solver = "OSQP (reused)" if fast else f"{self._cvx_solver()} (cvxpy)"
+        solver = "OSQP (reused)" if fast else ""
         aux, u, status = None, None, "infeasible"
         if not reason:
             offsets = self._offsets(u_past, y_past, target)
             if fast:
                 u, aux, status, reason = self._solve_fast(offsets, lb, ub)
-            else:
+            if not fast or status == "failed":  # the fast path is an accelerator: on failure, solve it plainly
+                first = reason
                 u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
+                if fast:
+                    note = "solved with the cvxpy problem instead" if u is not None else reason
+                    reason = f"fast path: {first}; {note}"
+                solver = (f"{solver} -> " if fast else "") + f"{self._cvx_solver()} (cvxpy)"
             if u is not None:
                 u, why = self._project(u.reshape(lb.shape), lb, ub, last, fallback)
                 if u is None:
@@ -507,9 +521,12 @@ class _PredictiveController:
     def _solve_cvxpy(self, offsets, lb, ub):
         self._assign(offsets)
         self._lb.value, self._ub.value = lb.reshape(-1), ub.reshape(-1)
-        opts = dict(self.solver_options or {})
+        opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
+        opts.update(self.solver_options or {})
         try:
-            self.problem_.solve(solver=self._cvx_solver(), warm_start=True, **opts)
+            with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
+                warnings.simplefilter("ignore", UserWarning)
+                self.problem_.solve(solver=self._cvx_solver(), warm_start=True, **opts)
         except (cp.error.SolverError, ArithmeticError, ValueError) as exc:
             return None, None, "failed", f"{self._cvx_solver()} failed: {exc}"
         status = self.problem_.status
@@ -642,9 +659,9 @@ class _CondensedCore(_PredictiveController):
         sel = sp.hstack([sp.eye(Nm), sp.csr_matrix((Nm, nb))])
         rows = self._box_rows(sel)
         if self._idx_hi.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_hi]), -self._S_hi / self._rho]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_hi]), -self._S_hi / self._kappa]))
         if self._idx_lo.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._rho]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._kappa]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
         return _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
@@ -655,7 +672,7 @@ class _CondensedCore(_PredictiveController):
         if self._LpT is not None:
             q = q + 2.0 * self._LpT.T @ tw
         nb = self._idx_b.size
-        q = np.concatenate([q, np.ones(nb)])  # slack in units of ρ·s (see _setup_common)
+        q = np.concatenate([q, np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s (_setup_common)
         lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
         if self._slew_rows is not None:
             lim = self._slew_rows[1]
@@ -1141,9 +1158,9 @@ class DataPredictiveController(_CondensedCore):
             rows.append(sp.hstack([sp.csr_matrix(self._Yp), sp.csr_matrix((self._Yp.shape[0], nb))]))
         rows += self._box_rows(sp.hstack([sp.csr_matrix(self._Uf), sp.csr_matrix((N * m, nb))]))
         if self._idx_hi.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_hi]), -self._S_hi / self._rho]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_hi]), -self._S_hi / self._kappa]))
         if self._idx_lo.size:
-            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo / self._rho]))
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo / self._kappa]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, r)), sp.eye(nb)]))
         return _FastQP(P, sp.vstack(rows, format="csc"), r + nb)
@@ -1185,7 +1202,7 @@ class DataPredictiveController(_CondensedCore):
         q = -2.0 * self._LY.T @ rw
         if self._lam_y is not None:
             q = q - 2.0 * self._lam_y * self._Yp.T @ yp
-        q = np.concatenate([q, np.ones(nb)])  # slack in units of ρ·s (see _setup_common)
+        q = np.concatenate([q, np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s (_setup_common)
         lo, hi = [up], [up]
         if self._lam_y is None:
             lo.append(yp)

@@ -1,0 +1,463 @@
+"""Tests of stimsteer.control.mpc: build-once DPP problems, fast path = cvxpy path, hard limits, fallbacks."""
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from stimsteer.control.cli import CAUTION
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.mpc import (
+    DataPredictiveController,
+    ModelPredictiveController,
+    Plan,
+    condensed_prediction,
+)
+from stimsteer.sysid import Session, StateSpaceModel
+from stimsteer.sysid.exceptions import LimitsError, NotFittedError, SessionError
+
+
+def _model(rng, n=3, m=2, p=2, radius=0.85, D=False):
+    A = rng.normal(size=(n, n))
+    A *= radius / np.max(np.abs(np.linalg.eigvals(A)))
+    return StateSpaceModel(A=A, B=rng.normal(size=(n, m)), C=rng.normal(size=(p, n)),
+                           D=rng.normal(size=(p, m)) if D else None, past_steps=n)
+
+
+def _limits(**kw):
+    base = dict(amplitude_min_ua=[-1.0, 0.0], amplitude_max_ua=[1.0, 2.0], slew_max_ua=[0.4, 0.6])
+    base.update(kw)
+    return StimLimits(**base)
+
+
+def _past(rng, model, T=None, scale=0.3):
+    T = model.past_steps if T is None else T
+    u = rng.uniform(-scale, scale, size=(T, model.n_inputs))
+    u[:, 1] = np.abs(u[:, 1])
+    y = model.simulate(u, x0=rng.normal(size=model.n_states))
+    return u, y
+
+
+def _assert_inside(plan, lim):
+    lo, hi = lim.input_bounds()
+    assert np.all(plan.inputs >= lo) and np.all(plan.inputs <= hi)
+    assert lim.violations(plan.inputs, plan.last_input) == {"amplitude": 0, "slew": 0, "energy_budget": 0}
+
+
+# ------------------------------------------------------------------------------------------------ construction
+def test_problem_is_built_once_and_is_dpp(rng):
+    model = _model(rng)
+    for form in ("condensed", "sparse"):
+        ctrl = ModelPredictiveController(model=model, limits=_limits(output_max=[0.5, np.inf]), horizon_steps=5,
+                                         terminal_weight="riccati", formulation=form).fit()
+        assert ctrl.problem_.is_dpp()
+        problem = ctrl.problem_
+        u, y = _past(rng, model)
+        ctrl.plan(u, y, target=[0.3, -0.2])
+        ctrl.plan(u, y, target=[0.1, 0.2], use_fast_path=False)
+        assert ctrl.problem_ is problem
+
+
+def test_constructor_only_stores_and_get_params_round_trips(rng):
+    model, lim = _model(rng), _limits()
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=-3, target_kind="nonsense")
+    params = ctrl.get_params()
+    assert params["horizon_steps"] == -3 and params["model"] is model
+    clone = ModelPredictiveController(**params)
+    assert clone.get_params() == params
+    assert "ModelPredictiveController(" in repr(ctrl)
+    with pytest.raises(NotFittedError, match="call ModelPredictiveController.fit"):
+        ctrl.plan(np.zeros((3, 2)), np.zeros((3, 2)), target=[0, 0])
+
+
+def test_fitting_twice_gives_the_same_plan_and_inputs_are_untouched(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    u0, y0 = u.copy(), y.copy()
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4)
+    a = ctrl.fit().plan(u, y, target=[0.5, 0.5])
+    b = ctrl.fit().plan(u, y, target=[0.5, 0.5])
+    np.testing.assert_array_equal(a.inputs, b.inputs)
+    np.testing.assert_array_equal(u, u0)
+    np.testing.assert_array_equal(y, y0)
+
+
+@pytest.mark.parametrize(
+    "kw, match",
+    [
+        (dict(horizon_steps=0), "horizon_steps must be a positive integer"),
+        (dict(horizon_steps=2.5), "horizon_steps must be a positive integer"),
+        (dict(target_kind="outputs"), "target_kind must be"),
+        (dict(formulation="dense"), "formulation must be"),
+        (dict(terminal_weight="lqr"), "terminal_weight must be None, 'riccati'"),
+        (dict(output_weight=-1.0), "output_weight must be a non-negative"),
+        (dict(input_weight=np.array([[1.0, 2.0], [0.0, 1.0]])), "must be symmetric"),
+        (dict(input_weight=np.array([[1.0, 0.0], [0.0, -1.0]])), "positive semidefinite"),
+        (dict(output_penalty=0.0), "output_penalty must be positive"),
+        (dict(limits="limits.toml"), "limits must be a StimLimits"),
+        (dict(model="model.h5"), "model must be a StateSpaceModel"),
+    ],
+)
+def test_bad_settings_are_refused_at_fit(rng, kw, match):
+    args = dict(model=_model(rng), limits=_limits(), horizon_steps=3)
+    args.update(kw)
+    with pytest.raises(SessionError, match=match):
+        ModelPredictiveController(**args).fit()
+
+
+def test_limits_for_other_inputs_are_refused(rng):
+    lim = _limits(input_names=("a", "b"))
+    with pytest.raises(LimitsError, match="do not match the model's inputs"):
+        ModelPredictiveController(model=_model(rng), limits=lim, horizon_steps=3).fit()
+
+
+def test_session_with_other_channels_is_refused(rng):
+    s = Session(u=np.zeros((10, 1)), y=np.zeros((10, 2)), sample_rate_hz=1.0)
+    with pytest.raises(SessionError, match="the session has 1 inputs"):
+        ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3).fit(s)
+
+
+@pytest.mark.parametrize(
+    "u_shape, y_shape, target, last, match",
+    [
+        ((2, 2), (3, 2), [0, 0], None, "u_past needs at least 3 samples"),
+        ((3, 1), (3, 2), [0, 0], None, r"u_past must have shape \(n_past, 2\)"),
+        ((3, 2), (3, 2), [0, 0, 0], None, "one value per output"),
+        ((3, 2), (3, 2), np.zeros((2, 2)), None, "target trajectory must have shape"),
+        ((3, 2), (3, 2), [np.nan, 0], None, "NaN or infinite"),
+        ((3, 2), (3, 2), [0, 0], [1.0], "last_input must be 2 finite values"),
+    ],
+)
+def test_bad_plan_arguments_are_refused(rng, u_shape, y_shape, target, last, match):
+    ctrl = ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=4).fit()
+    with pytest.raises(SessionError, match=match):
+        ctrl.plan(np.zeros(u_shape), np.zeros(y_shape), target=target, last_input=last)
+
+
+def test_nan_in_the_past_window_is_refused(rng):
+    ctrl = ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=4).fit()
+    y = np.zeros((3, 2))
+    y[-1, 0] = np.nan
+    with pytest.raises(SessionError, match="y_past holds NaN"):
+        ctrl.plan(np.zeros((3, 2)), y, target=[0, 0])
+
+
+def test_state_target_shape_is_checked(rng):
+    ctrl = ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=4, target_kind="state").fit()
+    with pytest.raises(SessionError, match="a state target must be 3 finite values"):
+        ctrl.plan(np.zeros((3, 2)), np.zeros((3, 2)), target=[0.0, 1.0])
+
+
+# ------------------------------------------------------------------------------------------------ prediction
+def test_condensed_prediction_matches_simulation(rng):
+    model = _model(rng, n=4, m=2, p=3, D=True)
+    N = 6
+    Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
+    u, x0 = rng.normal(size=(N, 2)), rng.normal(size=4)
+    y, X = model.simulate(u, x0=x0, return_states=True)
+    np.testing.assert_allclose(Gy @ u.reshape(-1) + Phi_y @ x0, y.reshape(-1), atol=1e-12)
+    np.testing.assert_allclose(Gx @ u.reshape(-1) + Phi_x @ x0, X[1:].reshape(-1), atol=1e-12)
+
+
+def test_plan_predicts_what_the_model_simulates(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=6).fit()
+    plan = ctrl.plan(u, y, target=[1.0, -1.0])
+    np.testing.assert_allclose(plan.predicted_outputs, model.predict(u, y, plan.inputs), atol=1e-10)
+    assert isinstance(plan, Plan) and plan.caution == CAUTION and plan.ok
+    assert plan.inputs.shape == (6, 2) and plan.target.shape == (6, 2)
+    with pytest.raises(ValueError):
+        plan.inputs[0, 0] = 1.0  # read-only
+
+
+# ------------------------------------------------------------------------------------------------ fast = cvxpy
+def _compare_paths(ctrl, u, y, target, atol=1e-5):
+    a = ctrl.plan(u, y, target=target, use_fast_path=False)
+    b = ctrl.plan(u, y, target=target, use_fast_path=True)
+    assert a.ok and b.ok, (a.message, b.message)
+    assert "OSQP" in b.solver and "cvxpy" in a.solver
+    np.testing.assert_allclose(a.inputs, b.inputs, atol=atol)
+    assert a.cost_terms["total"] == pytest.approx(b.cost_terms["total"], rel=1e-6, abs=1e-9)
+    for key in ("amplitude_min", "amplitude_max", "slew"):
+        np.testing.assert_array_equal(a.active_limits[key], b.active_limits[key])
+    return a, b
+
+
+@pytest.mark.parametrize("form", ["condensed", "sparse"])
+def test_fast_path_gives_the_same_plan_as_cvxpy(rng, form):
+    model = _model(rng, n=4, m=2, p=3)
+    lim = _limits(output_max=[0.4, np.inf, 0.3], output_min=[-np.inf, -0.2, -np.inf])
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=8, input_weight=0.1,
+                                     terminal_weight="riccati", formulation=form).fit()
+    u, y = _past(rng, model, T=6)
+    target = rng.normal(size=(8, 3))
+    a, _ = _compare_paths(ctrl, u, y, target)
+    assert any(a.active_limits[k].any() for k in ("amplitude_min", "amplitude_max", "slew"))
+
+
+def test_fast_path_gives_the_same_plan_for_a_state_target(rng):
+    model = _model(rng)
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=6, target_kind="state",
+                                     state_weight=[1.0, 2.0, 0.5], terminal_weight="riccati").fit()
+    u, y = _past(rng, model)
+    _compare_paths(ctrl, u, y, np.array([1.0, -0.5, 2.0]))
+
+
+def test_sparse_and_condensed_formulations_agree(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    plans = [ModelPredictiveController(model=model, limits=_limits(energy_budget_ua2=1.5), horizon_steps=7,
+                                       formulation=f, input_weight=0.05).fit().plan(u, y, target=[2.0, 2.0])
+             for f in ("condensed", "sparse")]
+    assert all(p.ok for p in plans)
+    np.testing.assert_allclose(plans[0].inputs, plans[1].inputs, atol=1e-5)
+
+
+# ------------------------------------------------------------------------------------------------ limits
+def test_energy_budget_is_a_hard_cone_constraint(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    lim = _limits(energy_budget_ua2=0.5)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=6, input_weight=1e-4).fit()
+    assert ctrl._fast is None  # a cone: no OSQP fast path
+    plan = ctrl.plan(u, y, target=[5.0, 5.0])
+    assert plan.ok and "cvxpy" in plan.solver
+    assert np.sum(plan.inputs**2) <= 0.5 * (1 + 1e-9)
+    assert plan.active_limits["energy_budget"]
+    _assert_inside(plan, lim)
+
+
+def test_charge_density_bound_is_reported_as_its_own_limit():
+    model = StateSpaceModel(A=[[0.5]], B=[[1.0, 1.0]], C=[[1.0]], D=[[1.0, 1.0]], past_steps=1)
+    # areas 1 and 1e-8 cm², 1000 µs: I_max = sqrt(10**1.75 · A) / 1000 µs (Shannon 1992 solved for Q, Q = I·PW):
+    # about 7,500 µA (above the declared 1 µA) and 0.75 µA (below the declared 2 µA)
+    lim = _limits(pulse_width_us=1000.0, electrode_area_cm2=[1.0, 1e-8], slew_max_ua=None)
+    cap = lim.charge_bound_ua()[1]
+    assert cap == pytest.approx(np.sqrt(10**1.75 * 1e-8) / 1000.0 * 1e6)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=3, input_weight=1e-6).fit()
+    plan = ctrl.plan(np.zeros((1, 2)), np.zeros((1, 1)), target=[100.0])  # far above reach: both inputs at max
+    np.testing.assert_allclose(plan.inputs, [[1.0, cap]] * 3, rtol=1e-7)
+    assert plan.active_limits["charge_density"][:, 1].all() and not plan.active_limits["charge_density"][:, 0].any()
+    assert plan.active_limits["amplitude_max"][:, 0].all() and not plan.active_limits["amplitude_max"][:, 1].any()
+
+
+def test_soft_output_bound_reports_its_slack(rng):
+    model = StateSpaceModel(A=[[0.5]], B=[[1.0]], C=[[1.0]], past_steps=1)
+    lim = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=1, output_max=[-2.0])
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=3).fit()
+    # the past leaves the state at 0 and |u| <= 1 keeps y above -2 (y_1 >= -1, y_2 >= -1.5): the bound cannot hold
+    plan = ctrl.plan(np.zeros((1, 1)), np.zeros((1, 1)), target=[0.0])
+    assert plan.ok and plan.slack_total > 0
+    np.testing.assert_allclose(plan.output_slack[:, 0], np.maximum(plan.predicted_outputs[:, 0] + 2.0, 0))
+    # u_0 and u_1 act on y_1 and y_2 and are pushed to their lower bound; u_2 acts on no planned output
+    np.testing.assert_allclose(plan.inputs[:, 0], [-1.0, -1.0, 0.0], atol=1e-6)
+    assert plan.cost_terms["output_penalty"] == pytest.approx(1e4 * plan.slack_total)
+    assert any("output bound on y0" in line for line in plan.active_summary())
+
+
+def test_last_input_outside_bounds_is_reported_and_falls_back(rng):
+    model = _model(rng)
+    lim = _limits()
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=4).fit()
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[0.0, 0.0], last_input=[3.0, 0.0])
+    assert plan.status == "infeasible" and plan.fallback and not plan.ok
+    assert "slew window of input 'u0'" in plan.message and "safe fallback" in plan.message
+    np.testing.assert_allclose(plan.inputs[:, 0], [1.0, 0.6, 0.2, 0.0])
+    assert lim.violations(plan.inputs)["amplitude"] == 0
+
+
+def test_energy_conflict_is_reported_with_the_least_energy_sequence(rng):
+    model = _model(rng)
+    lim = _limits(energy_budget_ua2=0.1)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=4).fit()
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[0.0, 0.0], last_input=[1.0, 2.0])
+    assert plan.status == "infeasible" and "energy budget" in plan.message
+    np.testing.assert_allclose(plan.inputs, lim.safe_inputs(4, [1.0, 2.0]))
+
+
+def test_a_failing_solver_gives_the_fallback_with_the_reason(rng):
+    model = _model(rng)
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4, solver="SCS",
+                                     solver_options={"max_iters": 1}).fit()
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[3.0, 3.0], use_fast_path=False)
+    assert plan.fallback and plan.status in ("failed", "infeasible")
+    assert "SCS" in plan.message or "breaks a hard limit" in plan.message
+    _assert_inside(plan, _limits())
+
+
+def test_projection_clips_tolerance_level_excess_only(rng):
+    model = _model(rng)
+    lim = _limits()
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=3).fit()
+    lb, ub = ctrl._step_bounds(np.zeros(2))
+    safe = lim.safe_inputs(3, np.zeros(2))
+    near = np.array([[0.4 + 1e-7, 0.0], [0.8, 0.5], [1.0 + 1e-8, 0.5]])
+    u, why = ctrl._project(near, lb, ub, np.zeros(2), safe)
+    assert why == "" and lim.violations(u, np.zeros(2)) == {"amplitude": 0, "slew": 0, "energy_budget": 0}
+    u, why = ctrl._project(near + 0.1, lb, ub, np.zeros(2), safe)
+    assert u is None and "breaks a hard limit" in why
+
+
+# ------------------------------------------------------------------------------------------------ direct route
+class _Lsq:
+    """A fitted SPC predictor with the LsqPredictor attributes, built from a known model (exact Kp, Kf)."""
+
+    def __init__(self, model, past, horizon):
+        self.past_steps_, self.max_horizon_steps_ = past, horizon
+        self.n_inputs_, self.n_outputs_ = model.n_inputs, model.n_outputs
+        m, p = model.n_inputs, model.n_outputs
+        cols = []
+        for j in range((m + p) * past):  # the predictor is linear in the past: probe it column by column
+            b = np.zeros((m + p) * past)
+            b[j] = 1.0
+            cols.append(model.predict(b[:m * past].reshape(past, m), b[m * past:].reshape(past, p),
+                                      np.zeros((horizon, m))).reshape(-1))
+        self.Kp_ = np.array(cols).T
+        self.Kf_ = condensed_prediction(model, horizon)[0]
+
+
+def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
+    model = _model(rng)
+    lim = _limits(output_max=[0.5, np.inf])
+    spc = DataPredictiveController(predictor=_Lsq(model, 3, 6), limits=lim, input_weight=0.1).fit()
+    ind = ModelPredictiveController(model=model, limits=lim, horizon_steps=6, input_weight=0.1).fit()
+    assert spc.method_ == "spc" and spc.problem_.is_dpp() and spc.horizon_steps_ == 6
+    u, y = _past(rng, model)
+    for fast in (True, False):
+        a = spc.plan(u, y, target=[1.0, -1.0], use_fast_path=fast)
+        b = ind.plan(u, y, target=[1.0, -1.0], use_fast_path=fast)
+        np.testing.assert_allclose(a.inputs, b.inputs, atol=1e-5)
+        np.testing.assert_allclose(a.predicted_outputs, b.predicted_outputs, atol=1e-5)
+
+
+def test_direct_controller_refuses_other_objects_and_long_horizons(rng):
+    model = _model(rng)
+    with pytest.raises(SessionError, match="needs a HankelPredictor"):
+        DataPredictiveController(predictor=model.replace(), limits=_limits()).fit() if False else \
+            DataPredictiveController(predictor=type("P", (), {"past_steps_": 2})(), limits=_limits()).fit()
+    with pytest.raises(SessionError, match="exceeds the predictor's horizon of 6"):
+        DataPredictiveController(predictor=_Lsq(model, 3, 6), limits=_limits(), horizon_steps=7).fit()
+
+
+def test_direct_controller_needs_a_fitted_predictor_or_a_session():
+    from stimsteer.sysid.datadriven import LsqPredictor
+
+    with pytest.raises(NotFittedError, match="pass a session"):
+        DataPredictiveController(predictor=LsqPredictor(past_steps=2, horizon_steps=3), limits=_limits()).fit()
+
+
+def _noise_free_session(rng, model, T=300):
+    u = rng.uniform(-1, 1, size=(T, model.n_inputs))
+    return Session(u=u, y=model.simulate(u), sample_rate_hz=100.0, input_names=model.input_names,
+                   output_names=model.output_names)
+
+
+@pytest.fixture
+def deepc_setup(rng):
+    from stimsteer.sysid.datadriven import HankelPredictor
+
+    model = _model(rng)
+    session = _noise_free_session(rng, model)
+    pred = HankelPredictor(past_steps=3, horizon_steps=6, lambdas_g=(1e-6,))
+    return model, session, pred
+
+
+def test_deepc_fits_an_unfitted_predictor_on_a_copy(deepc_setup, rng):
+    model, session, pred = deepc_setup
+    ctrl = DataPredictiveController(predictor=pred, limits=_limits(), horizon_steps=4).fit(session)
+    assert getattr(pred, "blocks_", None) is None  # the caller's predictor is untouched
+    assert ctrl.method_ == "deepc" and ctrl.problem_.is_dpp()
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[0.5, 0.5])
+    assert plan.ok and plan.inputs.shape == (4, 2)
+    assert {"past_consistency", "regularizer"} <= set(plan.cost_terms)
+
+
+def test_deepc_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rng):
+    model, session, pred = deepc_setup
+    lim = _limits(output_max=[0.5, np.inf])
+    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=lim, input_weight=0.1).fit()
+    u, y = _past(rng, model)
+    # OSQP's polishing does not take on DeePC's equality-heavy QP, so the paths agree to ADMM tolerance
+    a, _ = _compare_paths(ctrl, u, y, np.array([1.0, 0.5]), atol=2e-4)
+    assert a.active_limits["output_bounds"].any()
+
+
+def test_deepc_fallback_predicts_with_the_predictor(deepc_setup, rng):
+    model, session, pred = deepc_setup
+    pred.fit(session)
+    ctrl = DataPredictiveController(predictor=pred, limits=_limits(), input_weight=0.1).fit()
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[1.0, 1.0], last_input=[5.0, 0.0])
+    assert plan.fallback
+    np.testing.assert_allclose(plan.predicted_outputs, pred.predict(u, y, plan.inputs))
+
+
+def test_bad_past_slack_weight_is_refused(deepc_setup):
+    model, session, pred = deepc_setup
+    with pytest.raises(SessionError, match="past_slack_weight must be > 0"):
+        DataPredictiveController(predictor=pred.fit(session), limits=_limits(), past_slack_weight=-1.0).fit()
+
+
+# ------------------------------------------------------------------------------------------------ property
+def _property_controllers(rng):
+    """A few small controllers (built once, re-solved per example), with and without each kind of limit."""
+    m1 = _model(rng, n=3, m=2, p=2)
+    m2 = _model(rng, n=2, m=3, p=1, D=True, radius=1.05)  # unstable: plans must still respect the limits
+    lim1 = _limits(output_max=[0.2, np.inf])
+    lim2 = StimLimits(amplitude_min_ua=[-2.0, -0.5, 0.0], amplitude_max_ua=[2.0, 0.5, 3.0],
+                      slew_max_ua=[0.3, np.inf, 0.7], energy_budget_ua2=4.0, pulse_width_us=200.0,
+                      electrode_area_cm2=[1.0, 1.0, 1e-7])
+    return [
+        (ModelPredictiveController(model=m1, limits=lim1, horizon_steps=4, input_weight=1e-3).fit(), lim1),
+        (ModelPredictiveController(model=m1, limits=lim1.aligned(m1.input_names, m1.output_names),
+                                   horizon_steps=3, terminal_weight="riccati", formulation="sparse").fit(), lim1),
+        (ModelPredictiveController(model=m2, limits=lim2, horizon_steps=4).fit(), lim2),
+        (DataPredictiveController(predictor=_Lsq(m1, 3, 4), limits=lim1, input_weight=1e-2).fit(), lim1),
+    ]
+
+
+@pytest.mark.slow
+def test_no_plan_sample_ever_exceeds_a_hard_limit(rng):
+    ctrls = _property_controllers(rng)
+    outcomes = {"ok": 0, "infeasible": 0, "failed": 0}
+
+    @settings(max_examples=1000, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(
+        which=st.integers(0, len(ctrls) - 1),
+        past_scale=st.floats(1e-3, 1e3),
+        target_scale=st.floats(0.0, 1e4),
+        frac=st.lists(st.floats(-1.5, 1.5), min_size=3, max_size=3),
+        fast=st.booleans(),
+        draw_seed=st.integers(0, 2**32 - 1),
+    )
+    def check(which, past_scale, target_scale, frac, fast, draw_seed):
+        ctrl, lim = ctrls[which]
+        g = np.random.default_rng(draw_seed)
+        m, p, T = ctrl.n_inputs_, ctrl.n_outputs_, ctrl.past_steps_
+        u = g.normal(scale=past_scale, size=(T, m))
+        y = g.normal(scale=past_scale, size=(T, p))
+        lo, hi = lim.input_bounds()
+        # |frac| > 1 puts the last applied input outside the amplitude window (the guarded infeasible case)
+        last = np.where(np.asarray(frac[:m]) >= 0, np.asarray(frac[:m]) * hi, -np.asarray(frac[:m]) * lo)
+        plan = ctrl.plan(u, y, target=g.normal(scale=target_scale + 1e-9, size=p), last_input=last,
+                         use_fast_path=fast)
+        assert np.all(plan.inputs >= lo) and np.all(plan.inputs <= hi)  # always, exactly
+        assert plan.caution == CAUTION
+        counts = lim.violations(plan.inputs, last)
+        inside = np.all((last >= lo) & (last <= hi))
+        if inside:
+            assert counts["slew"] == 0
+        energy_conflict = "energy budget" in plan.message
+        if inside and not energy_conflict:
+            assert counts["energy_budget"] == 0
+        if energy_conflict:  # the least-energy sequence already breaks the budget: nothing could meet it
+            assert np.sum(lim.safe_inputs(ctrl.horizon_steps_, last) ** 2) > lim.energy_budget_ua2
+        outcomes["ok" if plan.ok else plan.status if plan.status != "optimal" else "failed"] += 1
+
+    check()
+    assert outcomes["ok"] > 0 and outcomes["infeasible"] > 0
