@@ -172,6 +172,7 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     window, targets = _targets(controller, target, n_steps)
     warm = _warmup(controller, warmup_inputs)
     plant.reset(seed=seed, x0=x0)
+    controller.reset()  # the same seed gives the same numbers: no warm start carried over from another run
     U, Y = list(warm), [np.asarray(plant.step(u), np.float64).reshape(p) for u in warm]
     T = controller.past_steps_
     times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}

@@ -289,8 +289,13 @@ class _FastQP:
         self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
         P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
         A = sp.csc_matrix(A)
+        self.n_rows = A.shape[0]
         self.solver.setup(P, np.zeros(n_vars), A, -np.inf * np.ones(A.shape[0]), np.inf * np.ones(A.shape[0]),
                           **_osqp_settings(tight))
+
+    def reset(self):
+        """Forget the warm start (the next solve starts from zero, as after setup)."""
+        self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
 
     def solve(self, q, l, u):
         self.solver.update(q=q, l=l, u=u)
@@ -403,6 +408,16 @@ class _PredictiveController:
         if self._slew_rows is not None:
             blocks.append(self._slew_rows[0] @ u_sel)
         return blocks
+
+    def reset(self):
+        """Forget the fast path's warm start, so that a run repeated from the same state gives the same numbers.
+
+        Plans are optimal either way; warm starting only changes them within solver tolerance.
+        """
+        check_fitted(self, "problem_")
+        if self._fast is not None:
+            self._fast.reset()
+        return self
 
     # ------------------------------------------------------------------------------------ planning
     def _check_past(self, u_past, y_past):
@@ -526,7 +541,9 @@ class _PredictiveController:
         try:
             with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
                 warnings.simplefilter("ignore", UserWarning)
-                self.problem_.solve(solver=self._cvx_solver(), warm_start=True, **opts)
+                # the compiled problem is reused (DPP cache) either way; no solver warm start, so that the same
+                # data give the same plan whatever was solved before
+                self.problem_.solve(solver=self._cvx_solver(), warm_start=False, **opts)
         except (cp.error.SolverError, ArithmeticError, ValueError) as exc:
             return None, None, "failed", f"{self._cvx_solver()} failed: {exc}"
         status = self.problem_.status
