@@ -220,7 +220,7 @@ class _Problem:
         SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``).
         """
         Qxx, Qxy, Qyy, _ = self.centred(test, mean_from=train)
-        sse = np.diag(Qyy) - 2.0 * np.einsum("ij,ij->j", beta, Qxy) + np.einsum("ij,ik,kj->j", beta, Qxx, beta)
+        sse = np.diag(Qyy) - 2.0 * (beta * Qxy).sum(axis=0) + (beta * (Qxx @ beta)).sum(axis=0)
         sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
         yi = self.y_idx
         sst = np.diag(test.W)[yi] - test.s[yi] ** 2 / test.n

@@ -1,0 +1,220 @@
+"""Speed and memory of the indirect-route fits on a large session read from HDF5.
+
+Setup (not timed): an invented stimulation session (white inputs mixed into outputs through a first-order filter,
+plus noise) with ``--samples`` samples, ``--outputs`` outputs and ``--inputs`` inputs in ``--trials`` equal trials,
+written in stimsteer's HDF5 session layout to a temporary folder.
+
+Measured in the same run:
+
+1. ridge ARX (``--lags`` output and input lags, delay 1, the default alpha grid and 5-fold trial CV), fitted from
+   the lazily opened file, ÷ a bare ``X.T @ X`` + Cholesky on the materialised (T × d) design matrix held in memory
+   (the design is built beforehand, outside the timing). Target <= 1.0. Best of ``--repeat`` runs each.
+2. the ARX fit's peak extra memory ÷ the size of that design matrix. Target <= 0.10. Measured two ways:
+   tracemalloc in this process (every NumPy/Python allocation during the fit; HDF5's own C buffers are not seen),
+   and the peak resident set size of a fresh child process that only opens the file and fits, minus its resident
+   size just before the fit (everything the process holds, HDF5 included).
+3. subspace identification (``SubspaceId``, past = future = ``--lags``) from the same file ÷ one Gram matrix of its
+   block-Hankel matrix (``(m + p)(past + future)`` rows, one column per window) accumulated chunk by chunk from
+   the in-memory data. Target <= 2.
+
+Usage::
+
+    python benchmarks/bench_fit.py                 # 1,000,000 samples, 64 outputs, 8 inputs, 5 lags
+    python benchmarks/bench_fit.py --samples 100000 --repeat 1
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import scipy.linalg as sla
+import scipy.signal
+from numpy.lib.stride_tricks import sliding_window_view
+
+from stimsteer.sysid.arx import RidgeArx
+from stimsteer.sysid.io import open_session_file, save_session
+from stimsteer.sysid.session import Session
+
+
+# ------------------------------------------------------------------------------------------------ setup
+def make_session(n_samples: int, n_outputs: int, n_inputs: int, n_trials: int, seed: int) -> Session:
+    """Invented data: y = first-order low-pass of (u W + noise); trials of equal length."""
+    rng = np.random.default_rng(seed)
+    u = rng.standard_normal((n_samples, n_inputs))
+    drive = u @ rng.standard_normal((n_inputs, n_outputs)) / np.sqrt(n_inputs)
+    drive += 0.3 * rng.standard_normal((n_samples, n_outputs))
+    y = scipy.signal.lfilter([1.0], [1.0, -0.7], np.roll(drive, 1, axis=0), axis=0)
+    edges = np.linspace(0, n_samples, n_trials + 1).astype(np.int64)
+    return Session(u=u, y=y, sample_rate_hz=1000.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+def design_matrix(s: Session, lags: int) -> np.ndarray:
+    """The ARX regressors [y_{k-1} … y_{k-L}, u_{k-1} … u_{k-L}] of every row inside a trial, materialised."""
+    blocks = []
+    for a, b in s.trials:
+        y, u = s.y[a:b], s.u[a:b]
+        n = b - a - lags
+        blocks.append(np.hstack([y[lags - i: lags - i + n] for i in range(1, lags + 1)]
+                                + [u[lags - j: lags - j + n] for j in range(1, lags + 1)]))
+    return np.concatenate(blocks)
+
+
+# ------------------------------------------------------------------------------------------------ timed parts
+def best_of(repeat: int, fn) -> tuple[float, object]:
+    best, out = np.inf, None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - t0)
+    return best, out
+
+
+def fit_arx(path: Path, lags: int):
+    with open_session_file(path) as f:
+        return RidgeArx(output_lags=lags, input_lags=lags, delay_samples=1).fit(f)
+
+
+def gram_and_cholesky(X: np.ndarray):
+    G = X.T @ X
+    G[np.diag_indices_from(G)] += 1e-12 * np.trace(G) / G.shape[0]  # as ridge would; keeps Cholesky defined
+    return sla.cho_factor(G, lower=True, check_finite=False)
+
+
+def hankel_gram(s: Session, depth: int, chunk_cols: int = 4096) -> np.ndarray:
+    """Σ h hᵀ over the block-Hankel columns h = vec([u y]_{t..t+depth-1}) inside each trial (chunked)."""
+    c = s.n_inputs + s.n_outputs
+    G = np.zeros((c * depth, c * depth))
+    for a, b in s.trials:
+        z = np.hstack([s.u[a:b], s.y[a:b]])
+        for j0 in range(0, b - a - depth + 1, chunk_cols):
+            j1 = min(j0 + chunk_cols, b - a - depth + 1)
+            H = sliding_window_view(z[j0: j1 + depth - 1], depth, axis=0).transpose(0, 2, 1).reshape(j1 - j0, -1)
+            G += H.T @ H
+    return G
+
+
+# ------------------------------------------------------------------------------------------------ memory
+def tracemalloc_peak(path: Path, lags: int) -> int:
+    tracemalloc.start()
+    tracemalloc.reset_peak()
+    base = tracemalloc.get_traced_memory()[0]
+    fit_arx(path, lags)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    return peak - base
+
+
+def _status_bytes(field: str) -> int:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(field + ":"):
+                return int(line.split()[1]) * 1024  # the kernel reports kB
+    raise RuntimeError(f"/proc/self/status has no {field}")
+
+
+def child_fit(path: str, lags: int) -> None:
+    """Run in a fresh process: print the resident size before the fit and the high-water mark after it (bytes).
+
+    VmHWM belongs to this process image (``ru_maxrss`` would carry the parent's peak across ``exec``). The file is
+    opened and BLAS is warmed up first, so its per-thread buffers (a fixed cost) are in the reference reading.
+    """
+    a = np.ones((256, 256))
+    a @ a
+    with open_session_file(path) as f:
+        f.read(0, min(10, f.n_samples))
+        before = _status_bytes("VmRSS")
+        RidgeArx(output_lags=lags, input_lags=lags, delay_samples=1).fit(f)
+    print(before, _status_bytes("VmHWM"))
+
+
+def rss_peak_child(path: Path, lags: int) -> int:
+    out = subprocess.run([sys.executable, __file__, "--child-fit", str(path), "--lags", str(lags)],
+                         check=True, capture_output=True, text=True).stdout.split()
+    return int(out[1]) - int(out[0])
+
+
+# ------------------------------------------------------------------------------------------------ main
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--samples", type=int, default=1_000_000)
+    ap.add_argument("--outputs", type=int, default=64)
+    ap.add_argument("--inputs", type=int, default=8)
+    ap.add_argument("--trials", type=int, default=20)
+    ap.add_argument("--lags", type=int, default=5)
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--seed", type=int, default=20261201)
+    ap.add_argument("--skip-subspace", action="store_true")
+    ap.add_argument("--child-fit", metavar="PATH", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child_fit:
+        child_fit(args.child_fit, args.lags)
+        return 0
+    L = args.lags
+    print(f"bench_fit: {args.samples} samples, {args.outputs} outputs, {args.inputs} inputs, {args.trials} trials, "
+          f"{L} lags; {platform.machine()} {os.cpu_count()} CPU(s), numpy {np.__version__}")
+    with tempfile.TemporaryDirectory(prefix="stimsteer_bench_fit_") as tmp:
+        path = Path(tmp) / "session.h5"
+        session = make_session(args.samples, args.outputs, args.inputs, args.trials, args.seed)
+        t0 = time.perf_counter()
+        save_session(session, path)
+        print(f"  setup: wrote {path.stat().st_size / 1e6:.0f} MB of HDF5 in {time.perf_counter() - t0:.1f} s")
+        report_arx(session, path, L, args.repeat)
+        if not args.skip_subspace:
+            report_subspace(session, path, L, args.repeat)
+    return 0
+
+
+def report_arx(session, path, L, repeat):
+    t_fit, est = best_of(repeat, lambda: fit_arx(path, L))
+    X = design_matrix(session, L)
+    t_base, _ = best_of(repeat, lambda: gram_and_cholesky(X))
+    design_bytes = X.nbytes
+    del X
+    print(f"  ridge ARX fit from HDF5 ({est.coef_.shape[1]} regressors, {len(est.cv_table_)} alphas, "
+          f"{est.n_folds_} folds): {t_fit:.2f} s (best of {repeat})")
+    print(f"  baseline X.T @ X + Cholesky on the materialised {est.n_rows_} x {est.coef_.shape[1]} design: "
+          f"{t_base:.2f} s (best of {repeat})")
+    print(f"  RATIO fit time / baseline = {t_fit / t_base:.2f}   (target <= 1.0)")
+    traced = tracemalloc_peak(path, L)
+    rss = rss_peak_child(path, L)
+    mb = 1e6
+    print(f"  design matrix size: {design_bytes / mb:.0f} MB")
+    print(f"  peak extra memory, tracemalloc (NumPy/Python allocations): {traced / mb:.1f} MB -> "
+          f"RATIO {traced / design_bytes:.3f}   (target <= 0.10)")
+    print(f"  peak extra memory, resident set of a child process: {rss / mb:.1f} MB -> "
+          f"RATIO {rss / design_bytes:.3f}   (target <= 0.10)")
+
+
+# ================================================================================================ SUBSPACE RATIO
+# Subspace fit ÷ one Gram of its block-Hankel matrix (target <= 2). Uses stimsteer.sysid.subspace.SubspaceId.
+def report_subspace(session, path, L, repeat):
+    try:
+        from stimsteer.sysid.subspace import SubspaceId
+    except ImportError:
+        print("  subspace: stimsteer.sysid.subspace.SubspaceId is not available; ratio not measured")
+        return
+
+    def fit():
+        with open_session_file(path) as f:
+            return SubspaceId(past_steps=L, future_steps=L).fit(f)
+
+    t_fit, est = best_of(repeat, fit)
+    t_gram, G = best_of(repeat, lambda: hankel_gram(session, 2 * L))
+    print(f"  subspace fit from HDF5 (past = future = {L}, order {est.order_} chosen): {t_fit:.2f} s "
+          f"(best of {repeat})")
+    print(f"  baseline one Gram of the {G.shape[0]}-row block-Hankel matrix (chunked, in memory): {t_gram:.2f} s")
+    print(f"  RATIO subspace fit / Hankel Gram = {t_fit / t_gram:.2f}   (target <= 2)")
+# ============================================================================================ end SUBSPACE RATIO
+
+
+if __name__ == "__main__":
+    sys.exit(main())
