@@ -270,11 +270,44 @@ def _run_schedule(args):
     return 0
 
 
+# ---------------------------------------------------------------------------------------------------- plan
+def _add_plan(sub):
+    p = sub.add_parser("plan", help="plan stimulation towards a target under declared limits with a fitted model or "
+                       "predictor; writes the plan table, pattern, figure and summary")
+    p.add_argument("model", metavar="MODEL_OR_PREDICTOR", help="model file written by `stimsteer fit` (either route)")
+    p.add_argument("--target", required=True,
+                   help="CSV of target outputs over the horizon (one column per tracked output, named after it), or "
+                   "a constant 'name=value,name=value'; outputs not named are not tracked")
+    p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
+    p.add_argument("--out", required=True, help="output folder (must be new or empty, unless --force)")
+    p.add_argument("--horizon", type=int, dest="horizon_steps", metavar="N",
+                   help="planning horizon in samples (default: the target table's rows, else the predictor's horizon)")
+    p.add_argument("--from-trial", type=_trial_ref, metavar="SESSION:INDEX",
+                   help="plan from the end of this recorded trial (default: from rest)")
+    p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
+    p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    return p
+
+
+def _run_plan(args):
+    from .mpc import plan_to_folder
+
+    run = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
+                         horizon_steps=args.horizon_steps, from_trial=args.from_trial,
+                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force)
+    print("\n".join(run.lines))
+    print(f"wrote {', '.join(str(p) for p in run.files.values())}")
+    print(CAUTION)
+    return 0
+
+
 _SUBCOMMANDS = {
     "fit": (_add_fit, _run_fit),
     "predict": (_add_predict, _run_predict),
     "network": (_add_network, _run_network),
     "schedule": (_add_schedule, _run_schedule),
+    "plan": (_add_plan, _run_plan),
     "inspect": (_add_inspect, _run_inspect),
     "demo": (_add_demo, _run_demo),
 }

@@ -57,13 +57,22 @@ from ..sysid.statespace import StateSpaceModel
 from .cli import CAUTION
 from .limits import StimLimits
 
-__all__ = ["Plan", "ModelPredictiveController", "DataPredictiveController", "condensed_prediction"]
+__all__ = [
+    "Plan",
+    "ModelPredictiveController",
+    "DataPredictiveController",
+    "condensed_prediction",
+    "controller_for",
+    "parse_target",
+    "write_plan",
+    "PlanRun",
+    "plan_to_folder",
+]
 
 _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
 # Clarabel's default tolerances (1e-8) leave plans ~1e-5 apart on flat objectives; tighter ones cost a few
 # iterations and make the plain path a reference for the fast one. solver_options override these.
-_CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10, "tol_ktratio": 1e-8,
-                              "reduced_tol_gap_abs": 1e-7, "reduced_tol_gap_rel": 1e-7, "reduced_tol_feas": 1e-7}}
+_CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
 
@@ -109,6 +118,8 @@ class Plan:
     solve_time_s : float
         Wall time of the parameter update and solve, seconds.
     input_names, output_names : tuple of str
+    output_bounds : tuple of ndarray or None
+        ``(output_min, output_max)``, each (n_outputs,), ``±inf`` where unbounded; None without output bounds.
     caution : str
         :data:`stimsteer.control.cli.CAUTION`.
     """
@@ -129,6 +140,7 @@ class Plan:
     solve_time_s: float
     input_names: tuple
     output_names: tuple
+    output_bounds: tuple = None
     caution: str = CAUTION
 
     @property
@@ -594,6 +606,8 @@ class _PredictiveController:
             message=(f"{reason}; returning the safe fallback (towards zero stimulation within the slew limit)"
                      if is_fallback else reason), fallback=is_fallback, solve_time_s=float(elapsed),
             input_names=self.input_names_, output_names=self.output_names_,
+            output_bounds=None if self.limits_.output_min is None else (_ro(self.limits_.output_min),
+                                                                       _ro(self.limits_.output_max)),
         )
 
     def _active(self, u, y, last, lb, ub):
@@ -738,7 +752,9 @@ class ModelPredictiveController(_CondensedCore):
     Parameters
     ----------
     model : StateSpaceModel
-        In the physical input units of the limits (µA).
+        In the physical input units of the limits (µA). When ``model.info["output_offset"]`` is set (e.g. by
+        ``RidgeArx``), the model describes ``y − offset``; past outputs, targets, bounds and predictions are in
+        the outputs' own units all the same.
     limits : StimLimits
         Matched to the model's inputs by name when named (:meth:`StimLimits.aligned`).
     horizon_steps : int
@@ -855,6 +871,11 @@ class ModelPredictiveController(_CondensedCore):
         self._setup_common(model.input_names, model.output_names, N)
         self.n_states_ = n = model.n_states
         self.past_steps_ = model.past_steps
+        off = model.info.get("output_offset")
+        self._y_off = np.zeros(model.n_outputs) if off is None else np.asarray(off, np.float64).reshape(-1)
+        if self._y_off.shape != (model.n_outputs,) or not np.all(np.isfinite(self._y_off)):
+            raise SessionError(f"the model's info['output_offset'] must be {model.n_outputs} finite values; got "
+                               f"{off!r}.")
         Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
         self._Phi_y, self._Phi_x, self._Gx = Phi_y, Phi_x, Gx
         self._AN = np.linalg.matrix_power(model.A, N)
@@ -916,8 +937,10 @@ class ModelPredictiveController(_CondensedCore):
             self._xtw = cp.Parameter(n, name="weighted_terminal_state")
             cost = cost + cp.sum_squares(Lp @ X[N * n:] - self._xtw)
         Cb, Db = Cb.tocsr(), Db.tocsr()
+        off = np.tile(self._y_off, N)  # the model describes y − output_offset
         more, self._slack_var = self._common_constraints(
-            u, lambda idx: Cb[idx] @ X[:N * n] + Db[idx] @ u, self._ymax[self._idx_hi], self._ymin[self._idx_lo])
+            u, lambda idx: Cb[idx] @ X[:N * n] + Db[idx] @ u, (self._ymax - off)[self._idx_hi],
+            (self._ymin - off)[self._idx_lo])
         if self._slack_var is not None:
             cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
         self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
@@ -939,16 +962,27 @@ class ModelPredictiveController(_CondensedCore):
         return np.tile(target, (self.horizon_steps_, 1)) if target.ndim == 1 else target
 
     def _x_terminal(self, target):
-        return target if self.target_kind == "state" else self._Cpinv @ target[-1]
+        return target if self.target_kind == "state" else self._Cpinv @ (target[-1] - self._y_off)
+
+    def _free(self, u_past, y_past):
+        """State estimate and free output response (in the outputs' units, offset included)."""
+        x0 = self.model.estimate_state(u_past, y_past - self._y_off)
+        return x0, self._Phi_y @ x0 + np.tile(self._y_off, self.horizon_steps_)
+
+    def _tracked(self, x0, fy, target):
+        """Free response and target of the tracked signal (outputs, or states x_1..x_N)."""
+        if self.target_kind == "state":
+            return self._Phi_x @ x0, np.tile(target, self.horizon_steps_)
+        return fy, target.reshape(-1)
 
     def _offsets(self, u_past, y_past, target):
-        x0 = self.model.estimate_state(u_past, y_past)
-        fy = self._Phi_y @ x0
-        rz = np.tile(target, self.horizon_steps_) if self.target_kind == "state" else target.reshape(-1)
-        fz = self._Phi_x @ x0 if self.target_kind == "state" else fy
+        x0, fy = self._free(u_past, y_past)
+        fz, rz = self._tracked(x0, fy, target)
         ew = self._Lz @ (fz - rz)
-        tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - self._x_terminal(target))
-        self._sparse_values = (x0, self._Lz @ rz, None if self._Lp is None else self._Lp @ self._x_terminal(target))
+        xt = self._x_terminal(target)
+        tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - xt)
+        rz_model = rz if self.target_kind == "state" else rz - np.tile(self._y_off, self.horizon_steps_)
+        self._sparse_values = (x0, self._Lz @ rz_model, None if self._Lp is None else self._Lp @ xt)
         return ew, tw, fy
 
     def _assign(self, offsets):
@@ -960,13 +994,12 @@ class ModelPredictiveController(_CondensedCore):
             self._xtw.value = xtw
 
     def _predict_outputs(self, u, aux, u_past, y_past):
-        x0 = self.model.estimate_state(u_past, y_past)
-        return (self._Gy @ u.reshape(-1) + self._Phi_y @ x0).reshape(self.horizon_steps_, self.n_outputs_)
+        _, fy = self._free(u_past, y_past)
+        return (self._Gy @ u.reshape(-1) + fy).reshape(self.horizon_steps_, self.n_outputs_)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
-        x0 = self.model.estimate_state(u_past, y_past)
-        rz = np.tile(target, self.horizon_steps_) if self.target_kind == "state" else target.reshape(-1)
-        fz = self._Phi_x @ x0 if self.target_kind == "state" else self._Phi_y @ x0
+        x0, fy = self._free(u_past, y_past)
+        fz, rz = self._tracked(x0, fy, target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - self._x_terminal(target))
         return self._condensed_terms(u, self._Lz @ (fz - rz), tw)
 
@@ -1269,3 +1302,339 @@ class DataPredictiveController(_CondensedCore):
                 reg = np.sum(np.abs(g)) if self._reg == "l1" else np.sum((self._M @ g) ** 2)
                 terms["regularizer"] = self._lam_g * float(reg)
         return terms
+
+
+# ---------------------------------------------------------------------------------------------------- plan files
+def controller_for(predictor, limits, *, horizon_steps=None, output_weight=1.0, input_weight=1e-3, **settings):
+    """The right fitted controller for a fitted predictor of either route.
+
+    Parameters
+    ----------
+    predictor : StateSpaceModel, a fitted indirect estimator (with ``model_``), LsqPredictor or HankelPredictor
+    limits : StimLimits
+    horizon_steps : int, optional
+        Required for state-space models; default the predictor's horizon for direct predictors.
+    output_weight, input_weight
+        As in :class:`ModelPredictiveController`.
+    **settings
+        Further keyword settings of the controller class (documented there).
+
+    Returns
+    -------
+    ModelPredictiveController or DataPredictiveController
+        Fitted (its problem built).
+
+    Raises
+    ------
+    SessionError
+        For a state-space model without ``horizon_steps``, or an object that is no predictor.
+    """
+    model = predictor if isinstance(predictor, StateSpaceModel) else getattr(predictor, "model_", None)
+    if isinstance(model, StateSpaceModel):
+        past = getattr(predictor, "past_steps_", None)
+        if past is not None:
+            model = model.replace(past_steps=int(past))
+        if horizon_steps is None:
+            raise SessionError("a state-space model has no horizon of its own; give horizon_steps (--horizon).")
+        return ModelPredictiveController(model=model, limits=limits, horizon_steps=horizon_steps,
+                                         output_weight=output_weight, input_weight=input_weight, **settings).fit()
+    return DataPredictiveController(predictor=predictor, limits=limits, horizon_steps=horizon_steps,
+                                    output_weight=output_weight, input_weight=input_weight, **settings).fit()
+
+
+def _target_column(col, output_names):
+    """Output name of a target-table column (``<name>``, ``target:<name>`` or either with `` [unit]``)."""
+    name = str(col).strip()
+    if name.startswith("target:"):
+        name = name[len("target:"):]
+    name = name.split("[")[0].strip()
+    return name if name in output_names else None
+
+
+def parse_target(spec, output_names, horizon_steps=None):
+    """Read a target: a CSV table over the horizon, or a constant ``name=value,...``.
+
+    Parameters
+    ----------
+    spec : str or Path
+        Either a CSV file with one column per tracked output (header ``<name>``, ``target:<name>`` or either
+        followed by `` [unit]``; an optional ``step`` or ``time [s]`` column is ignored) and one row per horizon
+        step, or a text ``name=value,name=value`` for a constant target.
+    output_names : sequence of str
+        The predictor's outputs. Outputs not named in the target are not tracked.
+    horizon_steps : int, optional
+        Rows needed (a longer table is cut); default all rows of the table.
+
+    Returns
+    -------
+    target : ndarray, shape (n_steps, n_outputs)
+        Untracked outputs hold 0 (their weight is 0).
+    tracked : ndarray of bool, shape (n_outputs,)
+
+    Raises
+    ------
+    SessionError
+        Unknown output names, duplicate or non-numeric values, too few rows, nothing tracked.
+    FileNotFoundError
+        When ``spec`` names no existing file and is not a ``name=value`` list.
+    """
+    from pathlib import Path
+
+    output_names = tuple(output_names)
+    text = str(spec)
+    if _is_constant_target(text):
+        values = {}
+        for part in (s for s in text.split(",") if s.strip()):
+            name, sep, val = part.partition("=")
+            name = name.strip()
+            if not sep or name not in output_names:
+                raise SessionError(f"target part {part!r} must be <output>=<value> with an output of "
+                                   f"{list(output_names)}.")
+            if name in values:
+                raise SessionError(f"target names output {name!r} twice; give each output once.")
+            try:
+                values[name] = float(val)
+            except ValueError:
+                raise SessionError(f"target value {val!r} for {name!r} is not a number.") from None
+            if not np.isfinite(values[name]):
+                raise SessionError(f"target value for {name!r} must be finite; got {val!r}.")
+        if horizon_steps is None:
+            raise SessionError("a constant target has no length; give the horizon (--horizon).")
+        row = np.array([values.get(n, 0.0) for n in output_names])
+        return np.tile(row, (int(horizon_steps), 1)), np.array([n in values for n in output_names])
+    return _target_table(Path(text), output_names, horizon_steps)
+
+
+def _is_constant_target(spec) -> bool:
+    from pathlib import Path
+
+    return "=" in str(spec) and not Path(str(spec)).is_file()
+
+
+def _target_table(path, output_names, horizon_steps):
+    import pandas as pd
+
+    if not path.is_file():
+        raise FileNotFoundError(2, "no such target file", str(path))
+    try:
+        frame = pd.read_csv(path)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise SessionError(f"{path} is not a readable CSV table ({exc}).") from None
+    cols, ignored, unknown = {}, [], []
+    for col in frame.columns:
+        name = _target_column(col, output_names)
+        if name is not None:
+            if name in cols:
+                raise SessionError(f"{path} has two columns for output {name!r}.")
+            cols[name] = col
+        elif str(col).strip() == "step" or str(col).strip().startswith("time [s]"):
+            ignored.append(col)
+        else:
+            unknown.append(str(col))
+    if unknown or not cols:
+        raise SessionError(f"{path}: columns {unknown or list(frame.columns)} are no outputs of the predictor "
+                           f"{list(output_names)}; name target columns after outputs (optionally 'target:<name> "
+                           "[unit]'), plus an optional 'step' or 'time [s]' column.")
+    n = frame.shape[0] if horizon_steps is None else int(horizon_steps)
+    if frame.shape[0] < n or n < 1:
+        raise SessionError(f"{path} holds {frame.shape[0]} target rows; the horizon needs {n}.")
+    target = np.zeros((n, len(output_names)))
+    for j, name in enumerate(output_names):
+        if name in cols:
+            v = pd.to_numeric(frame[cols[name]].iloc[:n], errors="coerce").to_numpy(float)
+            if not np.all(np.isfinite(v)):
+                raise SessionError(f"{path}: column {cols[name]!r} holds empty or non-numeric cells in the first "
+                                   f"{n} rows.")
+            target[:, j] = v
+    return target, np.array([n in cols for n in output_names])
+
+
+def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
+               force=False) -> dict:
+    """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
+
+    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
+    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` step bounds),
+    ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict --pattern``),
+    ``plan.png`` and ``plan.json`` (status, cost terms, active limits, caution, and ``extra``).
+
+    Returns
+    -------
+    dict of str to Path
+        ``csv``, ``pattern``, ``png``, ``json``.
+    """
+    import json
+    from pathlib import Path
+
+    import pandas as pd
+
+    from ..sysid._files import atomic_dir
+
+    out_dir = Path(out_dir)
+    p = len(plan.output_names)
+    units = tuple(output_units) if output_units else ("a.u.",) * p
+    tracked = np.ones(p, bool) if tracked is None else np.asarray(tracked, bool)
+    rate = float(sample_rate_hz)
+    t = np.arange(plan.horizon_steps) / rate
+    time_col = f"time [s] @ {rate:.12g} Hz"
+    ins = {f"in:{n} [uA]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
+    table = {time_col: t, **ins}
+    table.update({f"out:{n} [{u}]": plan.predicted_outputs[:, j] for j, (n, u) in enumerate(zip(plan.output_names,
+                                                                                                   units))})
+    if plan.target_kind == "output":
+        table.update({f"target:{n} [{units[j]}]": plan.target[:, j] for j, n in enumerate(plan.output_names)
+                      if tracked[j]})
+    lb, ub = plan.step_bounds
+    table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
+    summary = {**plan.to_dict(), **(extra or {})}
+    with atomic_dir(out_dir, force=force) as tmp:
+        pd.DataFrame(table).to_csv(tmp / "plan.csv", index=False, float_format="%.10g")
+        pd.DataFrame({time_col: t, **ins}).to_csv(tmp / "plan_pattern.csv", index=False, float_format="%.10g")
+        _plot_plan(plan, t, units, tracked, tmp / "plan.png")
+        (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False, default=_json_default))
+    return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
+                                        ("json", "plan.json"))}
+
+
+def _json_default(v):
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, np.ndarray):
+        return v.tolist()
+    raise TypeError(f"not JSON-serialisable: {type(v).__name__}")
+
+
+_PLAN_LINES = 6
+
+
+def _plot_plan(plan, t, units, tracked, path):
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    p = len(plan.output_names)
+    bounded = plan.active_limits["output_bounds"]
+    order = [j for j in range(p) if tracked[j]] + [j for j in range(p) if not tracked[j] and bounded[:, j].any()]
+    order = order[:_PLAN_LINES] or [0]
+    fig, axes = plt.subplots(2, 1, figsize=(8.0, 6.0), sharex=True, constrained_layout=True)
+    ax = axes[0]
+    lb, ub = plan.step_bounds
+    for i, name in enumerate(plan.input_names):
+        line, = ax.step(t, plan.inputs[:, i], where="post", lw=1.8, label=name)
+        for bound in (lb[:, i], ub[:, i]):
+            ax.step(t, bound, where="post", lw=0.9, ls=":", color=line.get_color())
+    ax.set_ylabel("stimulation [µA]")
+    ax.set_title("planned inputs (dotted: hard limits per step)", loc="left", fontsize=10)
+    ax.legend(loc="upper right", fontsize=8, frameon=False, ncol=min(4, len(plan.input_names)))
+    ax = axes[1]
+    for j in order:
+        line, = ax.plot(t, plan.predicted_outputs[:, j], lw=1.6, label=f"{plan.output_names[j]} [{units[j]}]")
+        if plan.target_kind == "output" and tracked[j]:
+            ax.plot(t, plan.target[:, j], ls="--", lw=1.0, color=line.get_color())
+        if plan.output_bounds is not None:
+            for bound in (plan.output_bounds[0][j], plan.output_bounds[1][j]):
+                if np.isfinite(bound):
+                    ax.axhline(bound, ls=":", lw=0.9, color=line.get_color())
+    ax.set_xlabel("time from plan start [s]")
+    ax.set_ylabel("predicted output")
+    ax.set_title("predicted outputs (dashed: target; dotted: soft bound)", loc="left", fontsize=10)
+    ax.legend(loc="upper right", fontsize=8, frameon=False, ncol=2)
+    for a in axes:
+        a.spines[["top", "right"]].set_visible(False)
+        a.grid(alpha=0.25, lw=0.5)
+    fig.suptitle(f"stimsteer plan: {plan.status}" + (" (safe fallback)" if plan.fallback else ""), fontsize=11,
+                 x=0.01, ha="left")
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+@dataclass(frozen=True)
+class PlanRun:
+    """What :func:`plan_to_folder` did: the plan, the files written and readable summary lines."""
+
+    plan: Plan
+    files: dict
+    lines: tuple
+
+
+def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
+                   output_weight=1.0, input_weight=1e-3, force=False) -> PlanRun:
+    """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
+
+    Parameters
+    ----------
+    model_path : str or Path
+        A model file of ``stimsteer fit`` (:func:`stimsteer.sysid.storage.load_predictor`).
+    target : str
+        See :func:`parse_target`.
+    limits_path : str or Path
+        A limits file (:func:`stimsteer.control.limits.load_limits`), matched to the model's inputs by name.
+    out_dir : str or Path
+        New or empty folder (or ``force``).
+    horizon_steps : int, optional
+        Default: the target table's rows, else the predictor's horizon.
+    from_trial : (str, int), optional
+        ``(session path, trial index)``: plan from the end of that recorded trial; default from rest.
+    output_weight, input_weight : float
+        Scalar weights; outputs not named in the target get weight 0.
+    force : bool
+        Replace an existing output folder.
+
+    Returns
+    -------
+    PlanRun
+    """
+    from ..sysid.io import load_session
+    from ..sysid.routes import rest_window, trial_end_window
+    from ..sysid.storage import load_predictor
+    from .limits import load_limits
+
+    predictor, provenance = load_predictor(model_path)
+    limits = load_limits(limits_path)
+    names_in, names_out, units, rate = _channels(predictor, provenance)
+    N = horizon_steps
+    if N is None and _is_constant_target(target):  # a table gives its own length
+        N = getattr(predictor, "max_horizon_steps_", None)
+    tgt, tracked = parse_target(target, names_out, N)
+    N = tgt.shape[0]
+    weight = float(output_weight) * tracked.astype(float)
+    ctrl = controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
+    if from_trial is None:
+        u_past, y_past = rest_window(predictor, len(names_in), len(names_out))
+        start = "rest"
+    else:
+        path, index = from_trial
+        u_past, y_past = trial_end_window(load_session(path), index, predictor, provenance)
+        start = f"the end of trial {index} of {path}"
+    plan = ctrl.plan(u_past, y_past, target=tgt)
+    extra = {"model_file": str(model_path), "limits_file": str(limits_path), "start": start,
+             "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
+             "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
+             "method": getattr(ctrl, "method_", "model")}
+    files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
+                       force=force)
+    lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
+             f"{type(ctrl).__name__} ({extra['method']}): status {plan.status}, {plan.solver}, "
+             f"{1e3 * plan.solve_time_s:.1f} ms"]
+    if plan.message:
+        lines.append(f"note: {plan.message}")
+    lines.append("cost: " + ", ".join(f"{k} {v:.4g}" for k, v in plan.cost_terms.items()))
+    lines += [f"active: {s}" for s in plan.active_summary()] or ["active: no limit is binding"]
+    if plan.slack_total > 0:
+        lines.append(f"output bounds exceeded by up to {float(np.max(plan.output_slack)):.4g} (soft bounds)")
+    return PlanRun(plan=plan, files=files, lines=tuple(lines))
+
+
+def _channels(predictor, provenance):
+    """Input and output names, output units and the sample rate of a saved predictor."""
+    s = provenance.get("session", {}) if isinstance(provenance, dict) else {}
+    model = predictor if isinstance(predictor, StateSpaceModel) else getattr(predictor, "model_", None)
+    src = model if isinstance(model, StateSpaceModel) else None
+    names_in = tuple(s.get("input_names") or (src.input_names if src else predictor.input_names_))
+    names_out = tuple(s.get("output_names") or (src.output_names if src else predictor.output_names_))
+    units = tuple(s.get("output_units") or ("a.u.",) * len(names_out))
+    rate = float(s.get("sample_rate_hz") or (src.sample_rate_hz if src else
+                                             getattr(predictor, "sample_rate_hz_", 1.0)))
+    return names_in, names_out, units, rate

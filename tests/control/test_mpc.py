@@ -380,7 +380,7 @@ def test_deepc_fits_an_unfitted_predictor_on_a_copy(deepc_setup, rng):
 def test_deepc_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rng):
     model, session, pred = deepc_setup
     lim = _limits(output_max=[0.5, np.inf])
-    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=lim, input_weight=0.1).fit()
+    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=lim, input_weight=1.0).fit()
     u, y = _past(rng, model)
     # OSQP's polishing does not take on DeePC's equality-heavy QP, so the paths agree to ADMM tolerance
     a, _ = _compare_paths(ctrl, u, y, np.array([1.0, 0.5]), atol=2e-4)
