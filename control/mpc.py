@@ -1601,12 +1601,13 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     N = tgt.shape[0]
     weight = float(output_weight) * tracked.astype(float)
     ctrl = controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
+    window_of = predictor if hasattr(predictor, "past_steps_") else ctrl  # a bare model: the controller's window
     if from_trial is None:
-        u_past, y_past = rest_window(predictor, len(names_in), len(names_out))
+        u_past, y_past = rest_window(window_of, len(names_in), len(names_out))
         start = "rest"
     else:
         path, index = from_trial
-        u_past, y_past = trial_end_window(load_session(path), index, predictor, provenance)
+        u_past, y_past = trial_end_window(load_session(path), index, window_of, provenance)
         start = f"the end of trial {index} of {path}"
     plan = ctrl.plan(u_past, y_past, target=tgt)
     extra = {"model_file": str(model_path), "limits_file": str(limits_path), "start": start,
