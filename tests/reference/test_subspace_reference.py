@@ -2,10 +2,11 @@
 
 Sources: Van Overschee P., De Moor B. (1996), Subspace Identification for Linear Systems, Kluwer (noise-free data of
 a minimal system of order n give a weighted projection of rank exactly n, and the system is recovered up to a
-similarity transform, for the N4SID, MOESP and CVA weightings: their Theorems 2 and 12 and sec. 4.3 / 6.1);
-the whiteness of Kalman-predictor innovations (Kailath 1968, An innovations approach to least-squares estimation,
-IEEE TAC 13:646) checked with the large-sample band ±1.96/√N of a sample autocorrelation (Box & Jenkins 1976,
-Time Series Analysis, sec. 6.2, Bartlett's formula).
+similarity transform, for the N4SID, MOESP and CVA weightings: the deterministic and combined main theorems, chs. 2
+and 4; chapter numbers from memory); the whiteness of Kalman-predictor innovations (Kailath 1968, An innovations
+approach to least-squares estimation, IEEE TAC 13:646) checked with the large-sample band ±1.96/√N of a sample
+autocorrelation of white noise (Box & Jenkins 1976, Time Series Analysis: Forecasting and Control; Bartlett's
+formula).
 """
 
 import numpy as np
