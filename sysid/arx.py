@@ -17,6 +17,8 @@ file, so memory does not grow with the length of the recording.
 
 from __future__ import annotations
 
+import queue
+import threading
 import warnings
 
 import numpy as np
@@ -142,6 +144,52 @@ def _chunks(pieces, chunk_rows: int):
     for a, b, f in pieces:
         for k0 in range(a, b, chunk_rows):
             yield k0, min(b, k0 + chunk_rows), f
+
+
+_READ_AHEAD = 2  # chunks read ahead of the one being accumulated: bounds memory at about 3 chunks
+
+
+def _prefetched(items, load):
+    """Yield ``(item, load(item))`` in order, reading up to ``_READ_AHEAD`` items ahead in a background thread.
+
+    File reads (HDF5 decompression holds the GIL) then overlap with the Gram products (BLAS releases it). An error
+    in the reader is raised here; leaving the loop early stops the reader.
+    """
+    q: queue.Queue = queue.Queue(maxsize=_READ_AHEAD)
+    stop = threading.Event()
+
+    def put(entry):
+        while not stop.is_set():
+            try:
+                q.put(entry, timeout=0.05)
+                return
+            except queue.Full:
+                continue
+
+    def work():
+        try:
+            for item in items:
+                if stop.is_set():
+                    return
+                put(("item", (item, load(item))))
+        except BaseException as exc:  # handed to the consumer, which re-raises it
+            put(("error", exc))
+            return
+        put(("done", None))
+
+    reader = threading.Thread(target=work, name="stimsteer-arx-reader", daemon=True)
+    reader.start()
+    try:
+        while True:
+            kind, payload = q.get()
+            if kind == "done":
+                return
+            if kind == "error":
+                raise payload
+            yield payload
+    finally:
+        stop.set()
+        reader.join()
 
 
 def _read_z(session, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
@@ -491,8 +539,8 @@ class RidgeArx:
         lo = np.full(prob.m, np.inf)
         hi = np.full(prob.m, -np.inf)
         shift = None
-        for k0, k1, f in _chunks(pieces, int(self.chunk_samples)):
-            B, u = _read_z(session, k0 - L, k1)
+        chunks = _chunks(pieces, int(self.chunk_samples))
+        for (k0, k1, f), (B, u) in _prefetched(chunks, lambda c: _read_z(session, c[0] - L, c[1])):
             lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
             if shift is None:
                 # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.

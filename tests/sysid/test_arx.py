@@ -132,6 +132,19 @@ def test_streams_bounded_windows_from_a_lazy_source(rng):
     np.testing.assert_allclose(est.coef_, RidgeArx(alphas=[1e-4]).fit(s).coef_, rtol=1e-11, atol=1e-12)
 
 
+def test_a_read_error_in_the_streaming_pass_reaches_the_caller(rng):
+    from stimsteer.sysid.exceptions import FileFormatError
+
+    class _Broken(_CountingSource):
+        def read(self, start, stop):
+            if start > 300:
+                raise FileFormatError("damaged chunk at sample 300 (test)")
+            return super().read(start, stop)
+
+    with pytest.raises(FileFormatError, match="damaged chunk at sample 300"):
+        RidgeArx(chunk_samples=40).fit(_Broken(multi_trial_session(rng)))
+
+
 def test_fits_a_lazily_opened_session_file(rng, tmp_path):
     io = pytest.importorskip("stimsteer.sysid.io")
     s = multi_trial_session(rng, noise=0.1)
