@@ -484,6 +484,8 @@ class RidgeArx:
         _check_int("n_folds", self.n_folds, 2)
         _check_int("chunk_samples", self.chunk_samples, 1)
         _check_alphas(self.alphas)
+        if not isinstance(self.fit_intercept, (bool, np.bool_)):
+            raise SessionError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
         prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept))
         longest = max((e - s for s, e in session.segments(min_length=1)), default=0)
         if longest <= prob.L:

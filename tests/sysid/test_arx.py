@@ -326,6 +326,11 @@ def test_bad_integer_settings(rng, name, value, lowest):
         RidgeArx(**{name: value}).fit(multi_trial_session(rng, n_trials=2))
 
 
+def test_fit_intercept_must_be_boolean(rng):
+    with pytest.raises(SessionError, match="fit_intercept must be True or False; got 'yes'"):
+        RidgeArx(fit_intercept="yes").fit(multi_trial_session(rng, n_trials=2))
+
+
 def test_not_a_session():
     with pytest.raises(SessionError, match="expected a stimsteer Session or an opened session file"):
         RidgeArx().fit(np.zeros((10, 2)))
