@@ -241,11 +241,13 @@ def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores
 
 
 def _jsonable(value):
+    """Settings as JSON-like values (arrays and tuples become lists, numpy scalars Python numbers)."""
     if isinstance(value, dict):
         return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple, np.ndarray)):
-        return [_jsonable(v) for v in np.asarray(value, dtype=object).tolist()] if isinstance(value, np.ndarray) \
-            else [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        value = value.tolist()
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
     if isinstance(value, np.generic):
         return value.item()
     return value
