@@ -302,12 +302,61 @@ def _run_plan(args):
     return 0
 
 
+# ---------------------------------------------------------------------------------------------------- bench
+def _add_bench(sub):
+    p = sub.add_parser("bench", help="benchmark the indirect and direct routes on the same held-out trials "
+                       "(prediction, closed-loop control, data-length, noise and horizon sweeps) and write a report")
+    p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
+    p.add_argument("--out", required=True, help="output folder for the report (must be new or empty, unless --force)")
+    p.add_argument("--scheduler", metavar="ADDR",
+                   help="run the tasks on a Dask cluster, e.g. tcp://host:8786 (needs the dist extra); default: the "
+                   "local cores")
+    p.add_argument("--limits", metavar="LIMITS.toml",
+                   help="declared stimulation limits (TOML); default: the recorded input range of the training trials")
+    p.add_argument("--plant", metavar="PLANT.h5",
+                   help="ground-truth plant of a simulated session: closed loops run on it and the noise sweep "
+                   "re-records from it (default: a surrogate plant fitted on the held-out trials)")
+    p.add_argument("--seed", type=int, default=0, help="master seed of splits, subsets and plant noise (default 0)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="local worker processes (default: all available cores; 1 runs in this process)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder whole")
+    p.add_argument("--quick", action="store_true", help="a fast look: 2 splits, one point per sweep, short loops")
+    return p
+
+
+def _run_bench(args):
+    from pathlib import Path
+
+    from ..sysid.io import load_session
+    from .evaluation import BenchSettings, run_bench
+    from .limits import load_limits
+    from .plants import load_plant
+    from .report import REPORT_FILE, check_out_dir, summarize
+
+    if args.workers is not None and args.workers < 1:
+        raise StimsteerError(f"--workers must be at least 1; got {args.workers}.")
+    check_out_dir(args.out, force=args.force)
+    session = load_session(args.session)
+    plant = None if args.plant is None else load_plant(args.plant)
+    limits = None if args.limits is None else load_limits(args.limits)
+    settings = (BenchSettings.quick if args.quick else BenchSettings)(seed=args.seed)
+    source = {"session_file": str(args.session), "plant_file": args.plant, "limits_file": args.limits}
+    result = run_bench(session, settings, plant=plant, limits=limits, out_dir=args.out, force=args.force,
+                       scheduler=args.scheduler, n_workers=args.workers, progress=sys.stderr.isatty(),
+                       source=source)
+    print("\n".join(f"- {line}" for line in summarize(result)))
+    print(f"report written to {Path(args.out) / REPORT_FILE}")
+    print(CAUTION)
+    return 0
+
+
 _SUBCOMMANDS = {
     "fit": (_add_fit, _run_fit),
     "predict": (_add_predict, _run_predict),
     "network": (_add_network, _run_network),
     "schedule": (_add_schedule, _run_schedule),
     "plan": (_add_plan, _run_plan),
+    "bench": (_add_bench, _run_bench),
     "inspect": (_add_inspect, _run_inspect),
     "demo": (_add_demo, _run_demo),
 }
