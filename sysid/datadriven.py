@@ -170,6 +170,8 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
         u, y = np.asarray(u, dtype=np.float64), np.asarray(y, dtype=np.float64)
         F, k = row_space_factor([u, y], L)
         parts[f].append(F[order])
+        if len(parts[f]) > 8:  # keep the working memory independent of the number of segments
+            parts[f] = [combine_factors(parts[f], n_rows)]
         folds[f].n_columns += k
         if keep_full:
             folds[f].full.append(np.vstack([block_hankel(u, L), block_hankel(y, L)])[order])

@@ -279,11 +279,14 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
 
     Returns
     -------
-    F : ndarray, shape (n_rows, min(n_rows, Σ r_i)), lower triangular.
+    F : ndarray, shape (n_rows, min(n_rows, Σ r_i)); lower triangular when combined (a single factor is
+        returned as given).
     """
     parts = [f.T for f in factors if f.shape[1]]
     if not parts:
         return np.zeros((n_rows, 0))
+    if len(parts) == 1:
+        return np.ascontiguousarray(parts[0].T)
     return np.ascontiguousarray(_r_factor(np.concatenate(parts, axis=0)).T)
 
 
