@@ -265,6 +265,13 @@ class StimLimits:
         self._set_charge(m)
         self._set_outputs()
         self._set_names(m)
+        lo, hi = self.amplitude_min_ua.copy(), self.amplitude_max_ua.copy()
+        q = self.charge_bound_ua()
+        if q is not None:
+            lo, hi = np.maximum(lo, -q), np.minimum(hi, q)
+        for a in (lo, hi):
+            a.setflags(write=False)
+        s(self, "_bounds", (lo, hi))  # derived once (not a field): planning asks for it at every step
 
     # ------------------------------------------------------------------------------------------ validation
     def _infer_n(self) -> int:
@@ -380,11 +387,8 @@ class StimLimits:
         lo, hi : ndarray, shape (n_inputs,)
             µA; ``lo <= 0 <= hi`` always holds.
         """
-        lo, hi = self.amplitude_min_ua.copy(), self.amplitude_max_ua.copy()
-        q = self.charge_bound_ua()
-        if q is not None:
-            lo, hi = np.maximum(lo, -q), np.minimum(hi, q)
-        return lo, hi
+        lo, hi = self._bounds
+        return lo.copy(), hi.copy()
 
     def bound_sources(self) -> tuple[tuple[str, ...], tuple[str, ...]]:
         """Which rule sets each input's lower and upper bound: ``"amplitude"`` or ``"charge_density"``."""
@@ -419,16 +423,16 @@ class StimLimits:
             µA.
         """
         lo, hi = self.input_bounds()
-        prev = np.zeros(self.n_inputs) if last_input is None else np.asarray(last_input, np.float64).copy()
+        prev = np.zeros(self.n_inputs) if last_input is None else np.asarray(last_input, np.float64).reshape(-1)
         slew = np.full(self.n_inputs, np.inf) if self.slew_max_ua is None else self.slew_max_ua
-        out = np.empty((int(n_steps), self.n_inputs))
-        for k in range(out.shape[0]):
-            a, b = np.maximum(lo, prev - slew), np.minimum(hi, prev + slew)
-            empty = a > b  # the slew window misses the amplitude window: take the nearest amplitude bound
-            a[empty] = b[empty] = np.clip(prev[empty], lo[empty], hi[empty])
-            prev = np.clip(0.0, a, b)
-            out[k] = prev
-        return out
+        # the slew window misses the amplitude window: start from the nearest amplitude bound at once
+        empty = (prev - slew > hi) | (prev + slew < lo)
+        start = np.where(empty, np.clip(prev, lo, hi), prev)
+        steps = np.arange(int(n_steps))[:, None] + np.where(empty, 0, 1)[None, :]
+        with np.errstate(invalid="ignore"):
+            left = np.where(steps == 0, np.abs(start), np.abs(start) - steps * slew)
+        # each step moves |u| towards 0 by the slew limit; 0 lies in every amplitude window
+        return np.clip(np.sign(start) * np.maximum(left, 0.0), lo, hi)
 
     def violations(self, inputs, last_input=None, *, rtol: float = 1e-9) -> dict:
         """Count the samples of an input sequence that break a hard limit.
@@ -451,7 +455,7 @@ class StimLimits:
             applies to the whole sequence).
         """
         u = np.asarray(inputs, dtype=np.float64).reshape(-1, self.n_inputs)
-        lo, hi = self.input_bounds()
+        lo, hi = self._bounds
         out = {"amplitude": int(np.sum((u < lo) | (u > hi) | ~np.isfinite(u))), "slew": 0, "energy_budget": 0}
         if self.slew_max_ua is not None:
             seq = u if last_input is None else np.vstack([np.asarray(last_input, np.float64).reshape(1, -1), u])

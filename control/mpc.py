@@ -347,6 +347,9 @@ class _PredictiveController:
         self.horizon_steps_ = N
         m, p = self.n_inputs_, self.n_outputs_
         self._lo, self._hi = self.limits_.input_bounds()
+        lo_src, hi_src = self.limits_.bound_sources()
+        self._charge_sides = (np.array([s == "charge_density" for s in lo_src]),
+                              np.array([s == "charge_density" for s in hi_src]))
         self._slew = self.limits_.slew_max_ua
         self._energy = self.limits_.energy_budget_ua2
         self._scale = max(1.0, float(np.max(np.abs(np.concatenate([self._lo, self._hi])))))
@@ -513,8 +516,9 @@ class _PredictiveController:
         last = self._check_last(last_input, u_past)
         target = self._check_target(target)
         lb, ub = self._step_bounds(last)
-        fallback = self.limits_.safe_inputs(self.horizon_steps_, last)
         t0 = time.perf_counter()
+        # the safe fallback is needed up front only with an energy budget (guard, projection blend)
+        fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._energy is not None else None
         reason = self._guard(lb, ub, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
@@ -538,7 +542,7 @@ class _PredictiveController:
         elapsed = time.perf_counter() - t0
         is_fallback = u is None
         if is_fallback:
-            u, aux = fallback, None
+            u, aux = self.limits_.safe_inputs(self.horizon_steps_, last), None
         return self._package(u, aux, u_past, y_past, target, last, lb, ub, solver, status, reason, is_fallback,
                              elapsed)
 
@@ -575,14 +579,12 @@ class _PredictiveController:
             excess = max(excess, float(np.sum(u**2) - self._energy) / max(self._scale, 1.0))
         if not np.all(np.isfinite(u)) or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
-        u = u.copy()
-        prev = last
-        for k in range(u.shape[0]):
-            a, b = lb[k], ub[k]
-            if self._slew is not None and k > 0:
-                a, b = np.maximum(a, prev - self._slew), np.minimum(b, prev + self._slew)
-            u[k] = np.clip(u[k], a, b)
-            prev = u[k]
+        u = np.clip(u, lb, ub)
+        if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
+            prev = u[0]
+            for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
+                u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
+                prev = u[k]
         if self._energy is not None and np.sum(u**2) > self._energy:
             u = _blend_into_budget(u, fallback, self._energy)
         bad = {k: v for k, v in self.limits_.violations(u, last).items() if v}
@@ -612,11 +614,9 @@ class _PredictiveController:
 
     def _active(self, u, y, last, lb, ub):
         tol = 1e-6 * self._scale
-        lo_src, hi_src = self.limits_.bound_sources()
         at_lo = (u <= self._lo + tol) & (self._lo < 0)
         at_hi = (u >= self._hi - tol) & (self._hi > 0)
-        charge_lo = np.array([s == "charge_density" for s in lo_src])
-        charge_hi = np.array([s == "charge_density" for s in hi_src])
+        charge_lo, charge_hi = self._charge_sides
         act = {"amplitude_min": at_lo & ~charge_lo, "amplitude_max": at_hi & ~charge_hi,
                "charge_density": (at_lo & charge_lo) | (at_hi & charge_hi)}
         if self._slew is not None:
@@ -679,6 +679,7 @@ class _CondensedCore(_PredictiveController):
         if self._slack_var is not None:
             cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
         self.problem_ = cp.Problem(cp.Minimize(cost), cons)
+        self._fast_tpl = None
         self._fast = None if self._energy is not None else self._fast_condensed()
 
     def _fast_condensed(self):
@@ -697,31 +698,39 @@ class _CondensedCore(_PredictiveController):
             rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
         return _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
 
+    def _fast_vectors(self):
+        """Templates of q, l, u for the condensed fast path: the parts that never change are filled in once."""
+        Nm, nb = self._LG.shape[1], self._idx_b.size
+        q = np.concatenate([np.zeros(Nm), np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s
+        lo, hi = [np.zeros(Nm)], [np.zeros(Nm)]
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        n_hi, n_lo = self._idx_hi.size, self._idx_lo.size
+        lo += [np.full(n_hi, -np.inf), np.zeros(n_lo), np.zeros(nb)]
+        hi += [np.zeros(n_hi), np.full(n_lo, np.inf), np.full(nb, np.inf)]
+        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        s_hi = Nm + (0 if self._slew_rows is None else self._slew_rows[1].size)
+        self._fast_tpl = (q, lo, hi, s_hi, s_hi + n_hi, 2.0 * self._LG.T,
+                          None if self._LpT is None else 2.0 * self._LpT.T)
+
     def _solve_fast(self, offsets, lb, ub):
         ew, tw, fy = offsets
-        q = 2.0 * self._LG.T @ ew
-        if self._LpT is not None:
-            q = q + 2.0 * self._LpT.T @ tw
-        nb = self._idx_b.size
-        q = np.concatenate([q, np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s (_setup_common)
-        lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
-        if self._slew_rows is not None:
-            lim = self._slew_rows[1]
-            lo.append(-lim)
-            hi.append(lim)
-        if self._idx_hi.size:
-            lo.append(np.full(self._idx_hi.size, -np.inf))
-            hi.append(self._ymax[self._idx_hi] - fy[self._idx_hi])
-        if self._idx_lo.size:
-            lo.append(self._ymin[self._idx_lo] - fy[self._idx_lo])
-            hi.append(np.full(self._idx_lo.size, np.inf))
-        if nb:
-            lo.append(np.zeros(nb))
-            hi.append(np.full(nb, np.inf))
-        z, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        if getattr(self, "_fast_tpl", None) is None:
+            self._fast_vectors()
+        q, lo, hi, s_hi, s_lo, Mq, Mt = self._fast_tpl
+        Nm, n_hi, n_lo = self._LG.shape[1], self._idx_hi.size, self._idx_lo.size
+        q, lo, hi = q.copy(), lo.copy(), hi.copy()
+        q[:Nm] = Mq @ ew if Mt is None else Mq @ ew + Mt @ tw
+        lo[:Nm], hi[:Nm] = lb.reshape(-1), ub.reshape(-1)
+        if n_hi:
+            hi[s_hi:s_hi + n_hi] = self._ymax[self._idx_hi] - fy[self._idx_hi]
+        if n_lo:
+            lo[s_lo:s_lo + n_lo] = self._ymin[self._idx_lo] - fy[self._idx_lo]
+        z, status, reason = self._fast.solve(q, lo, hi)
         if z is None:
             return None, None, status, reason
-        return z[:self._LG.shape[1]], None, status, ""
+        return z[:Nm], None, status, ""
 
     def _assign(self, offsets):
         ew, tw, fy = offsets
@@ -876,6 +885,7 @@ class ModelPredictiveController(_CondensedCore):
         if self._y_off.shape != (model.n_outputs,) or not np.all(np.isfinite(self._y_off)):
             raise SessionError(f"the model's info['output_offset'] must be {model.n_outputs} finite values; got "
                                f"{off!r}.")
+        self._y_off_N = np.tile(self._y_off, N)
         Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
         self._Phi_y, self._Phi_x, self._Gx = Phi_y, Phi_x, Gx
         self._AN = np.linalg.matrix_power(model.A, N)
@@ -965,9 +975,17 @@ class ModelPredictiveController(_CondensedCore):
         return target if self.target_kind == "state" else self._Cpinv @ (target[-1] - self._y_off)
 
     def _free(self, u_past, y_past):
-        """State estimate and free output response (in the outputs' units, offset included)."""
+        """State estimate and free output response (in the outputs' units, offset included).
+
+        Cached for the arrays of the plan being made (offsets, prediction and cost terms all need it).
+        """
+        cached = getattr(self, "_free_cache", None)
+        if cached is not None and cached[0] is u_past and cached[1] is y_past:
+            return cached[2]
         x0 = self.model.estimate_state(u_past, y_past - self._y_off)
-        return x0, self._Phi_y @ x0 + np.tile(self._y_off, self.horizon_steps_)
+        out = (x0, self._Phi_y @ x0 + self._y_off_N)
+        self._free_cache = (u_past, y_past, out)
+        return out
 
     def _tracked(self, x0, fy, target):
         """Free response and target of the tracked signal (outputs, or states x_1..x_N)."""
@@ -981,7 +999,7 @@ class ModelPredictiveController(_CondensedCore):
         ew = self._Lz @ (fz - rz)
         xt = self._x_terminal(target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - xt)
-        rz_model = rz if self.target_kind == "state" else rz - np.tile(self._y_off, self.horizon_steps_)
+        rz_model = rz if self.target_kind == "state" else rz - self._y_off_N
         self._sparse_values = (x0, self._Lz @ rz_model, None if self._Lp is None else self._Lp @ xt)
         return ew, tw, fy
 
@@ -1178,7 +1196,12 @@ class DataPredictiveController(_CondensedCore):
             cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
         self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
         quadratic = self._reg != "l1" or self._lam_g == 0
-        self._fast = self._fast_deepc(N, m) if (self._energy is None and quadratic) else None
+        self._elim, self._fast = None, None
+        if self._energy is None and quadratic:
+            if self._idx_b.size == 0:
+                self._fast = self._fast_deepc_eliminated(N, m)
+            if self._fast is None:
+                self._fast = self._fast_deepc(N, m)
 
     def _past_weight(self, pred):
         w = pred.lambda_y_ if self.past_slack_weight is None else self.past_slack_weight
@@ -1191,16 +1214,75 @@ class DataPredictiveController(_CondensedCore):
                                f"predictor's lambda_y_; got {self.past_slack_weight!r}.")
         return None if np.isinf(w) else w
 
-    def _fast_deepc(self, N, m):
-        """OSQP over ``z = [g; s]`` with ``u = Uf g`` substituted."""
-        r, nb = self._Up.shape[1], self._idx_b.size
-        LY = self._Lz @ self._Yf
-        RU = self._Ru @ self._Uf
+    def _deepc_hessian(self):
+        LY, RU = self._Lz @ self._Yf, self._Ru @ self._Uf
         H = LY.T @ LY + RU.T @ RU
         if self._lam_y is not None:
             H = H + self._lam_y * self._Yp.T @ self._Yp
         if self._lam_g > 0:
             H = H + self._lam_g * self._M.T @ self._M
+        return 0.5 * (H + H.T), LY
+
+    def _fast_deepc_eliminated(self, N, m):
+        """OSQP over the inputs alone, with ``g`` minimised out in closed form (no output bounds).
+
+        For fixed ``u`` the DeePC cost is a quadratic in ``g`` under the equalities ``E g = [u_past; 0]``,
+        (``Yp g = y_past`` when hard) and ``Uf g = u``; its minimiser ``g*(u)`` is affine in ``u`` and the data
+        (null-space solution, computed once here), so the problem becomes an exactly equivalent QP in ``u`` of the
+        size of the indirect one. Returns None when the equalities are dependent or the reduced Hessian is not
+        positive definite (then the g-space fast path is used).
+        """
+        H, LY = self._deepc_hessian()
+        r, Nm = H.shape[0], N * m
+        hard = self._lam_y is None
+        fixed = np.vstack([self._E, self._Yp]) if hard else self._E
+        A = np.vstack([fixed, self._Uf])
+        # null-space method: g = A⁺b + Z w, w = (ZᵀHZ)⁻¹ Zᵀ(h − H A⁺ b); better conditioned than the KKT inverse
+        U_, sv, Vt = np.linalg.svd(A, full_matrices=True)
+        if sv.size == 0 or sv[-1] <= 1e-10 * sv[0] or sv.size < A.shape[0]:
+            return None  # dependent equalities (e.g. hard past outputs on exact data)
+        Z = Vt[A.shape[0]:].T
+        A_pinv = Vt[:A.shape[0]].T @ ((U_.T) / sv[:, None])
+        try:
+            c = sla.cho_factor(Z.T @ H @ Z)
+        except np.linalg.LinAlgError:
+            return None
+        S_Zt = sla.cho_solve(c, Z.T)
+        G_h = Z @ S_Zt
+        G_b = A_pinv - G_h @ (H @ A_pinv)
+        G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
+        Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
+        self._elim = {
+            "G_h": G_h, "G_f": G_f, "G_u": G_u, "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
+            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "LY": LY, "hard": hard,
+        }
+        P = 2.0 * G_u.T @ H @ G_u
+        rows = self._box_rows(sp.eye(Nm, format="csr"))
+        return _FastQP(sp.csc_matrix(0.5 * (P + P.T)), sp.vstack(rows, format="csc"), Nm)
+
+    def _solve_fast_eliminated(self, offsets, lb, ub):
+        eq, yp, rw = offsets
+        e = self._elim
+        bf = np.concatenate([eq, yp]) if e["hard"] else eq
+        q = e["Q_r"] @ rw + e["Q_f"] @ bf
+        h = e["LY"].T @ rw
+        if not e["hard"]:
+            q = q + e["Q_y"] @ yp
+            h = h + self._lam_y * self._Yp.T @ yp
+        lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        u, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        if u is None:
+            return None, None, status, reason
+        g = e["G_h"] @ h + e["G_f"] @ bf + e["G_u"] @ u
+        return u, g, status, ""
+
+    def _fast_deepc(self, N, m):
+        """OSQP over ``z = [g; s]`` with ``u = Uf g`` substituted."""
+        r, nb = self._Up.shape[1], self._idx_b.size
+        H, LY = self._deepc_hessian()
         self._LY = LY
         P = sp.block_diag([sp.csc_matrix(2.0 * H), sp.csc_matrix((nb, nb))], format="csc")
         rows = [sp.hstack([sp.csr_matrix(self._E), sp.csr_matrix((self._E.shape[0], nb))])]
@@ -1247,6 +1329,8 @@ class DataPredictiveController(_CondensedCore):
     def _solve_fast(self, offsets, lb, ub):
         if self.method_ == "spc":
             return super()._solve_fast(offsets, lb, ub)
+        if self._elim is not None:
+            return self._solve_fast_eliminated(offsets, lb, ub)
         up, yp, rw = offsets
         r, nb = self._Up.shape[1], self._idx_b.size
         q = -2.0 * self._LY.T @ rw

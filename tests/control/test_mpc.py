@@ -461,3 +461,18 @@ def test_no_plan_sample_ever_exceeds_a_hard_limit(rng):
 
     check()
     assert outcomes["ok"] > 0 and outcomes["infeasible"] > 0
+
+
+@pytest.mark.parametrize("past_weight", [None, np.inf])
+def test_deepc_eliminated_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rng, past_weight):
+    model, session, pred = deepc_setup
+    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=_limits(), input_weight=1.0,
+                                    past_slack_weight=past_weight, horizon_steps=5).fit()
+    # no output bounds and soft past outputs: g is minimised out in closed form; with hard past outputs on exact
+    # data the KKT matrix is singular (Yp is rank-deficient given Up) and the g-space fast path is used
+    assert (ctrl._elim is not None) == (past_weight is None)
+    u, y = _past(rng, model)
+    # Clarabel stops within its tolerance on DeePC's flat g-directions: the costs agree to 1e-9, inputs to 1e-4
+    a, b = _compare_paths(ctrl, u, y, np.array([1.0, 0.5]), atol=1e-4)
+    np.testing.assert_allclose(b.predicted_outputs, a.predicted_outputs, atol=1e-5)
+    assert b.cost_terms.keys() == a.cost_terms.keys()
