@@ -45,7 +45,7 @@ from __future__ import annotations
 import contextlib
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import cvxpy as cp
 import numpy as np

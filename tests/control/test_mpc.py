@@ -336,9 +336,9 @@ def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
 
 def test_direct_controller_refuses_other_objects_and_long_horizons(rng):
     model = _model(rng)
+    not_a_predictor = type("P", (), {"past_steps_": 2})()
     with pytest.raises(SessionError, match="needs a HankelPredictor"):
-        DataPredictiveController(predictor=model.replace(), limits=_limits()).fit() if False else \
-            DataPredictiveController(predictor=type("P", (), {"past_steps_": 2})(), limits=_limits()).fit()
+        DataPredictiveController(predictor=not_a_predictor, limits=_limits()).fit()
     with pytest.raises(SessionError, match="exceeds the predictor's horizon of 6"):
         DataPredictiveController(predictor=_Lsq(model, 3, 6), limits=_limits(), horizon_steps=7).fit()
 
@@ -476,3 +476,52 @@ def test_deepc_eliminated_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rn
     a, b = _compare_paths(ctrl, u, y, np.array([1.0, 0.5]), atol=1e-4)
     np.testing.assert_allclose(b.predicted_outputs, a.predicted_outputs, atol=1e-5)
     assert b.cost_terms.keys() == a.cost_terms.keys()
+
+
+def test_weights_must_be_finite_and_riccati_must_exist(rng):
+    with pytest.raises(SessionError, match="input_weight must be finite"):
+        ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3, input_weight=np.nan).fit()
+    # (A, B) not stabilisable: the unstable mode 2.0 is not driven by the input, so no Riccati solution exists
+    model = StateSpaceModel(A=np.diag([2.0, 0.5]), B=[[0.0, 0.0], [1.0, 1.0]], C=np.eye(2))
+    with pytest.raises(SessionError, match="no stabilising solution"):
+        ModelPredictiveController(model=model, limits=_limits(), horizon_steps=3, terminal_weight="riccati").fit()
+
+
+def test_output_offset_of_the_model_is_honoured(rng):
+    base = _model(rng)
+    off = np.array([5.0, -3.0])
+    model = base.replace(info={"output_offset": off})
+    u, y_dev = _past(rng, base)
+    y = y_dev + off  # the recording rests at the offset
+    lim = _limits(output_max=[5.2, np.inf])
+    plans = []
+    for form in ("condensed", "sparse"):
+        ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=5, formulation=form,
+                                         input_weight=0.1).fit()
+        plans += [ctrl.plan(u, y, target=off + [0.5, 0.2], use_fast_path=f) for f in (True, False)]
+    ref = ModelPredictiveController(model=base, limits=_limits(output_max=[0.2, np.inf]), horizon_steps=5,
+                                    input_weight=0.1).fit()
+    expected = ref.plan(u, y_dev, target=[0.5, 0.2])
+    for plan in plans:  # an active soft bound (penalty 1e4) loosens OSQP's relative tolerance: compare to 1e-4
+        np.testing.assert_allclose(plan.inputs, expected.inputs, atol=1e-4)
+        np.testing.assert_allclose(plan.predicted_outputs, expected.predicted_outputs + off, atol=1e-4)
+    with pytest.raises(SessionError, match="output_offset"):
+        ModelPredictiveController(model=base.replace(info={"output_offset": [1.0]}), limits=lim,
+                                  horizon_steps=3).fit()
+
+
+def test_controller_for_picks_the_route(rng):
+    from stimsteer.control.mpc import controller_for
+
+    model = _model(rng)
+    assert isinstance(controller_for(model, _limits(), horizon_steps=3), ModelPredictiveController)
+    assert controller_for(_Lsq(model, 3, 4), _limits()).method_ == "spc"
+    with pytest.raises(SessionError, match="give horizon_steps"):
+        controller_for(model, _limits())
+
+
+def test_reset_needs_a_fitted_controller(rng):
+    ctrl = ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3)
+    with pytest.raises(NotFittedError):
+        ctrl.reset()
+    assert ctrl.fit().reset() is ctrl
