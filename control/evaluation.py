@@ -1164,12 +1164,18 @@ def _session_record(session: Session) -> dict:
             "simulated_flag": bool(session.metadata.get("simulated", False))}
 
 
+def _plant_text(st: BenchSettings, plant) -> str:
+    if plant is not None:
+        return f"ground truth: {type(plant).__name__}"
+    lags = _surrogate_spec(st).settings["past_steps"]
+    return f"surrogate: ridge ARX with {lags} output and input lags, fitted on each split's held-out trials"
+
+
 def _provenance(session, st, splits, plant, limits, execution, started, wall_s, source, n_failed) -> dict:
     return _jsonable({
         "tool": "stimsteer bench", "session": _session_record(session), "settings": st.to_dict(), "seed": st.seed,
         "splits": [s.as_dict() for s in splits],
-        "plant": ("ground truth: " + type(plant).__name__) if plant is not None else
-                 f"surrogate: {_surrogate_spec(st).label} with {2 * max(int(m.settings.get('past_steps', st.past_steps)) for m in st.methods)} lags, fitted on each split's held-out trials",
+        "plant": _plant_text(st, plant),
         "limits_source": "declared" if limits is not None else "recorded input range of each split's training trials",
         "execution": execution, "versions": _versions(execution), "started_utc": started,
         "wall_time_s": wall_s, "n_failed_tasks": n_failed, "source": dict(source or {}),

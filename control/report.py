@@ -169,7 +169,8 @@ def _plant_line(result: BenchResult) -> str:
     if result.plant == "ground truth":
         return "Closed loops ran on the session's ground-truth plant (a simulated session)."
     q = result.surrogate
-    text = (f"Closed loops ran on a surrogate plant: {result.provenance['plant']}, a richer model class than "
+    what = str(result.provenance["plant"]).split(": ", 1)[-1]
+    text = (f"Closed loops ran on a surrogate plant: {what}, a richer model class than "
             "either route's, driven with its own innovation noise.")
     if not q.empty:
         m, lo, hi = t_interval(q["r2_freerun"])
@@ -212,8 +213,8 @@ def summarize(result: BenchResult) -> list[str]:
     if not result.failures.empty:
         lines.append(f"{len(result.failures)} task(s) failed and are left out of the figures (see tables/tasks.csv); "
                      f"first: {result.failures['error'].iloc[0]}")
-    lines.append(f"Intervals: 95 % Student-t intervals over the {st.n_splits} split(s), mean ± t(0.975, n−1)·s/√n; "
-                 "route differences are paired by split.")
+    lines.append(f"Intervals: 95 % Student-t intervals over the {st.n_splits} split(s), "
+                 "mean ± t(0.975, n−1)·s/√n; route differences are paired by split.")
     return [ln for ln in lines if ln]
 
 

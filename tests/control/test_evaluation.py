@@ -1,0 +1,349 @@
+"""Tests of the route benchmark (control/evaluation.py) on tiny simulated sessions.
+
+Sessions are a 3-node linear network with 2 inputs and 2 outputs (spectral radius 0.7, chosen for a fast, stable
+response), recorded in 6 trials of 80 samples; settings are small so that each run takes well under a second.
+"""
+
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import signal, stats
+
+from stimsteer.control.evaluation import (
+    MIN_TRAIN_TRIALS,
+    BenchSettings,
+    ControlSettings,
+    InnovationPlant,
+    MethodSpec,
+    recorded_limits,
+    run_bench,
+    t_interval,
+)
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.plants import LinearNetworkPlant, record_session
+from stimsteer.sysid import Session, StateSpaceModel
+from stimsteer.sysid.exceptions import SessionError, StimsteerError
+
+_TIMING = ("fit_s", "predict_s", "control_s", "total_s", "predict_ms_per_window", "solve_ms_median", "solve_ms_p95",
+           "solve_ms_max", "warnings")
+
+
+def _plant(seed, noise=True):
+    rng = np.random.default_rng(seed)
+    A = rng.standard_normal((3, 3))
+    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
+    return LinearNetworkPlant(A, rng.standard_normal((3, 2)), rng.standard_normal((2, 3)),
+                              process_noise_std=0.02 if noise else 0.0, measurement_noise_std=0.05 if noise else 0.0,
+                              sample_rate_hz=100.0, input_names=("site_a", "site_b"), output_names=("ch_1", "ch_2"),
+                              seed=seed)
+
+
+def _session(seed, n_trials=6, length=80, noise=True):
+    plant = _plant(seed, noise)
+    u = np.random.default_rng(seed + 1).uniform(-1.0, 1.0, (n_trials * length, 2))
+    trials = [(i * length, (i + 1) * length) for i in range(n_trials)]
+    return record_session(plant, u, trials=trials), plant
+
+
+def _settings(**changes):
+    base = dict(methods=(MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3, 1.0)}),
+                         MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)})),
+                past_steps=3, horizon_steps=5, n_splits=2, control=ControlSettings(n_steps=30), train_trials=(),
+                noise_scales=(), horizons=(), max_windows=100)
+    return BenchSettings(**{**base, **changes})
+
+
+def _numbers(result):
+    """Every result table without the wall-time columns (which legitimately differ between runs)."""
+    out = {}
+    for name in ("prediction", "control", "fits", "tasks"):
+        t = result.tables()[name]
+        out[name] = t.drop(columns=[c for c in _TIMING if c in t.columns]).reset_index(drop=True)
+    s = result.sweeps
+    out["sweeps"] = s[~s["metric"].isin(["fit_s", "predict_ms_per_window", "solve_ms_median"])].reset_index(drop=True)
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ settings
+def test_default_settings_compare_both_routes():
+    st = BenchSettings()
+    assert {m.route for m in st.methods} == {"indirect", "direct"}
+    assert st.n_splits >= 2 and st.control is not None
+    q = BenchSettings.quick(seed=3)
+    assert q.seed == 3 and q.n_splits == 2 and q.control.n_steps < st.control.n_steps
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"methods": (MethodSpec("indirect", "arx"),)}, "no method given for \\['direct'\\]"),
+    ({"methods": ()}, "non-empty tuple of MethodSpec"),
+    ({"methods": (MethodSpec("indirect", "arx"), MethodSpec("direct", "lsq"), MethodSpec("direct", "lsq"))},
+     "may appear once"),
+    ({"n_splits": 0}, "n_splits must be an integer >= 1"),
+    ({"past_steps": 2.5}, "past_steps must be an integer"),
+    ({"test_fraction": 1.0}, "strictly between 0 and 1"),
+    ({"control": "fast"}, "ControlSettings or None"),
+    ({"train_trials": (1,)}, f"integers >= {MIN_TRAIN_TRIALS}"),
+    ({"horizons": (0,)}, "horizons must hold integers >= 1"),
+    ({"noise_scales": (-1.0,)}, "noise_scales must be finite numbers >= 0"),
+    ({"seed": -1}, "seed must be an integer >= 0"),
+    ({"scheduler_timeout_s": 0}, "positive number of seconds"),
+])
+def test_bad_settings_are_refused(kwargs, match):
+    with pytest.raises(SessionError, match=match):
+        BenchSettings(**kwargs)
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"n_steps": 2}, "n_steps must be an integer >= 4"),
+    ({"pulse_fraction": (0.8, 0.2)}, "0 <= start < stop <= 1"),
+    ({"input_weight": -1.0}, "input_weight must be a finite number >= 0"),
+    ({"target_level_std": float("nan")}, "target_level_std must be a finite number"),
+])
+def test_bad_control_settings_are_refused(kwargs, match):
+    with pytest.raises(SessionError, match=match):
+        ControlSettings(**kwargs)
+
+
+def test_method_spec_checks_route_method_and_settings():
+    assert MethodSpec("direct", "hankel").label == "direct (hankel)"
+    with pytest.raises(SessionError, match="unknown route/method indirect/kalman"):
+        MethodSpec("indirect", "kalman")
+    with pytest.raises(SessionError, match="must be a mapping"):
+        MethodSpec("direct", "lsq", settings=[("alphas", 1.0)])
+
+
+# ------------------------------------------------------------------------------------------------ statistics
+def test_t_interval_matches_scipy(rng):
+    # Outside check: scipy.stats.t.interval gives the same Student-t interval (scipy documentation).
+    v = rng.normal(3.0, 2.0, 7)
+    mean, lo, hi = t_interval(v)
+    ref = stats.t.interval(0.95, v.size - 1, loc=v.mean(), scale=stats.sem(v))
+    assert mean == pytest.approx(v.mean()) and (lo, hi) == pytest.approx(ref)
+    m1, lo1, hi1 = t_interval([2.0, np.nan])
+    assert m1 == 2.0 and np.isnan(lo1) and np.isnan(hi1)
+    assert all(np.isnan(t_interval([])))
+
+
+# ------------------------------------------------------------------------------------------------ bad input
+def test_too_few_trials_say_how_many_are_needed(seed):
+    session, plant = _session(seed, n_trials=2)
+    with pytest.raises(SessionError, match="needs at least 3 trials; this session has 2"):
+        run_bench(session, _settings(), plant=plant, n_workers=1, progress=False)
+
+
+def test_trials_too_short_for_the_windows(seed):
+    session, plant = _session(seed, n_trials=4, length=8)
+    with pytest.raises(SessionError, match="horizon \\+ 1 = 9 samples inside a trial; the longest has 8"):
+        run_bench(session, _settings(), plant=plant, n_workers=1, progress=False)
+
+
+def test_plant_must_match_the_session(seed):
+    session, _ = _session(seed)
+    other = LinearNetworkPlant([[0.5]], [[1.0]], [[1.0]], sample_rate_hz=100.0)
+    with pytest.raises(SessionError, match="the plant has 1 inputs and 1 outputs; the session 2 and 2"):
+        run_bench(session, _settings(), plant=other, n_workers=1, progress=False)
+    slow = _plant(seed).with_params(sample_rate_hz=50.0)
+    with pytest.raises(SessionError, match="runs at 50 Hz but the session at 100 Hz"):
+        run_bench(session, _settings(), plant=slow, n_workers=1, progress=False)
+    with pytest.raises(SessionError, match="the plant lacks 'n_inputs'"):
+        run_bench(session, _settings(), plant=object(), n_workers=1, progress=False)
+
+
+def test_bad_arguments_are_refused(seed):
+    session, plant = _session(seed)
+    with pytest.raises(SessionError, match="settings must be a BenchSettings"):
+        run_bench(session, {"n_splits": 2}, progress=False)
+    with pytest.raises(SessionError, match="needs a stimsteer Session"):
+        run_bench(np.zeros((10, 2)), _settings(), progress=False)
+    with pytest.raises(SessionError, match="limits must be a StimLimits"):
+        run_bench(session, _settings(), limits={"amplitude_max_ua": 1.0}, progress=False)
+    with pytest.raises(SessionError, match="n_workers must be at least 1"):
+        run_bench(session, _settings(), plant=plant, n_workers=0, progress=False)
+
+
+def test_unknown_target_channel_fails_every_split_with_the_reason(seed):
+    session, plant = _session(seed)
+    st = _settings(control=ControlSettings(n_steps=30, target_channel="ch_9"))
+    with pytest.raises(StimsteerError, match="failed on every split.*target channel 'ch_9' is not an output"):
+        run_bench(session, st, plant=plant, n_workers=1, progress=False)
+
+
+def test_out_dir_holding_another_run_is_refused_before_any_work(seed, tmp_path):
+    session, plant = _session(seed)
+    (tmp_path / "old.txt").write_text("another run")
+    t0 = time.perf_counter()
+    with pytest.raises(StimsteerError, match="already holds another run"):
+        run_bench(session, _settings(), plant=plant, out_dir=tmp_path, n_workers=1, progress=False)
+    assert time.perf_counter() - t0 < 1.0
+    assert [p.name for p in tmp_path.iterdir()] == ["old.txt"]
+
+
+# ------------------------------------------------------------------------------------------------ splits and selection
+def test_splits_are_seeded_by_whole_trials_and_shared_by_the_routes(seed):
+    session, plant = _session(seed)
+    a = run_bench(session, _settings(seed=5, train_trials=(2,)), plant=plant, n_workers=1, progress=False)
+    b = run_bench(session, _settings(seed=5, train_trials=(2,)), plant=plant, n_workers=1, progress=False)
+    c = run_bench(session, _settings(seed=6, train_trials=(2,)), plant=plant, n_workers=1, progress=False)
+    assert a.splits == b.splits and a.splits != c.splits
+    for split in a.splits:
+        assert not set(split.train) & set(split.test) and len(split.test) == 2  # round(0.25 * 6)
+        assert sorted(split.train + split.test) == list(range(session.n_trials))
+    assert a.provenance["splits"] == [s.as_dict() for s in a.splits]
+    # both routes see the same training subset in every task pair
+    fits = a.fits.merge(a.tasks[["task", "n_train_trials"]], on=["task", "n_train_trials"])
+    assert set(fits.groupby(["split", "n_train_trials"])["label"].nunique()) == {2}
+
+
+def test_corrupting_held_out_outputs_leaves_every_fit_unchanged(seed, rng):
+    session, _ = _session(seed)
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3, 1.0)}),
+               MethodSpec("indirect", "subspace", {"past_steps": 3, "future_steps": 4}),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}),
+               MethodSpec("direct", "hankel", {"lambdas_g": (1e-4, 1e-2)}))
+    st = _settings(methods=methods, n_splits=1, train_trials=(3,))
+    clean = run_bench(session, st, n_workers=1, progress=False)
+    y = np.array(session.y)
+    for t in clean.splits[0].test:
+        a, b = session.trials[t]
+        y[a:b] = 100.0 * rng.standard_normal((b - a, session.n_outputs))
+    dirty = run_bench(session.replace(y=y), st, n_workers=1, progress=False)
+    assert dirty.splits == clean.splits
+    cols = ["task", "label", "n_train_trials", "selection", "fingerprint"]
+    assert clean.fits["selection"].str.len().min() > 0
+    pd.testing.assert_frame_equal(clean.fits[cols], dirty.fits[cols])
+    # ... while the held-out scores do see the corruption
+    assert not np.allclose(clean.prediction["rmse"], dirty.prediction["rmse"])
+
+
+# ------------------------------------------------------------------------------------------------ contents
+def test_result_tables_cover_prediction_control_sweeps_and_timings(seed):
+    session, plant = _session(seed)
+    st = _settings(train_trials=(2,), noise_scales=(0.5,), horizons=(3,))
+    r = run_bench(session, st, plant=plant, n_workers=1, progress=False)
+    assert r.plant == "ground truth" and r.failures.empty and r.surrogate.empty
+    p = r.prediction
+    base = p[(p["split"] == 0) & (p["label"] == "direct (lsq)") & (p["n_train_trials"] == 4)
+             & (p["noise_scale"] == 1.0) & (p["horizon_steps"] == 5)]
+    assert sorted(base.loc[base["mode"] == "kstep", "step"].unique()) == [1, 2, 3, 4, 5]
+    assert set(base["channel"]) == {"ch_1", "ch_2"} and (base["mode"] == "freerun").sum() == 2
+    assert set(r.sweeps["sweep"]) == {"base", "train_trials", "noise_scale", "horizon_steps"}
+    tr = r.sweeps[(r.sweeps["sweep"] == "train_trials") & (r.sweeps["metric"] == "r2_last")]
+    assert sorted(tr["value"].unique()) == [2.0, 4.0]
+    assert set(r.sweeps.loc[r.sweeps["sweep"] == "noise_scale", "value"]) == {0.5, 1.0}
+    # every sweep figure has n = n_splits and an interval around its mean
+    row = r.sweeps[(r.sweeps["sweep"] == "base") & (r.sweeps["metric"] == "tracking_rms")].iloc[0]
+    assert row["n"] == 2 and row["ci_low"] <= row["mean"] <= row["ci_high"]
+    assert len(r.control) == len(r.tasks) and (r.timings["fit_s"] > 0).all()
+    assert {"tracking_rms", "energy_ua2", "violations_amplitude", "use_slew", "solve_ms_median"} <= set(r.control)
+    assert {"sweep", "indirect", "direct", "better"} <= set(r.comparison)
+    assert set(r.traces["closed_loop"]["signal"]) == {"input", "output", "target"}
+    assert set(r.traces["prediction"]["label"]) == {"indirect (arx)", "direct (lsq)"}
+    prov = r.provenance
+    assert prov["session"]["content_hash"] == session.content_hash() and prov["seed"] == st.seed
+    assert prov["versions"]["numpy"] == np.__version__ and prov["settings"]["horizon_steps"] == 5
+
+
+def test_noise_sweep_rerecords_from_the_plant_with_scaled_noise(seed):
+    session, plant = _session(seed)
+    r = run_bench(session, _settings(noise_scales=(0.0, 3.0)), plant=plant, n_workers=1, progress=False)
+    rmse = r.tasks.groupby("noise_scale")["r2_last"].mean()
+    assert rmse[0.0] > rmse[1.0] > rmse[3.0]  # more noise, less predictable held-out outputs
+    quiet = r.tasks[r.tasks["noise_scale"] == 0.0]
+    assert (quiet["r2_last"] > 0.999).all()  # noise-free re-recording: both routes predict (nearly) exactly
+
+
+def test_recordings_use_a_surrogate_fitted_on_held_out_trials(seed):
+    session, _ = _session(seed)
+    r = run_bench(session, _settings(noise_scales=(2.0,)), n_workers=1, progress=False)
+    assert r.plant == "surrogate" and "noise_scale" not in set(r.sweeps["sweep"])
+    assert list(r.surrogate["split"]) == [0, 1]
+    assert (r.surrogate["r2_freerun"] > 0.5).all() and "held-out trials" in r.surrogate["surrogate"].iloc[0]
+    assert (r.control["plant"] == "surrogate").all() and "surrogate" in r.provenance["plant"]
+
+
+def test_declared_limits_are_never_exceeded_in_closed_loop(seed):
+    session, plant = _session(seed)
+    limits = StimLimits(amplitude_min_ua=[-0.2, 0.0], amplitude_max_ua=[0.2, 0.3], slew_max_ua=[0.05, 0.1],
+                        input_names=("site_a", "site_b"))
+    st = _settings(control=ControlSettings(n_steps=30, target_level_std=3.0))
+    r = run_bench(session, st, plant=plant, limits=limits, n_workers=1, progress=False)
+    c = r.control
+    assert (c[["violations_amplitude", "violations_slew", "violations_energy_budget"]].to_numpy() == 0).all()
+    assert (c["use_amplitude_max"] + c["use_amplitude_min"] + c["use_slew"] > 0).all()  # the limits bind
+    inputs = r.traces["closed_loop"]
+    inputs = inputs[inputs["signal"] == "input"]
+    for name, lo, hi in (("site_a", -0.2, 0.2), ("site_b", 0.0, 0.3)):
+        v = inputs.loc[inputs["channel"] == name, "value"]
+        assert v.min() >= lo and v.max() <= hi
+    assert r.limits["source"] == "declared"
+
+
+def test_failed_tasks_are_recorded_and_left_out(seed):
+    session, plant = _session(seed, length=40)
+    # ARX with 14 output and input lags has 14 * 2 + 14 * 2 + 1 = 57 coefficients per output; 2 training trials
+    # of 40 samples give 2 * (40 - 14) = 52 rows (too few), the 4 of a full split 104 (enough).
+    st = _settings(methods=(MethodSpec("indirect", "arx", {"past_steps": 14, "alphas": (1e-3,)}),
+                            MethodSpec("direct", "lsq", {"alphas": (1e-3,)})), train_trials=(2,), horizon_steps=3)
+    r = run_bench(session, st, plant=plant, n_workers=1, progress=False)
+    failed = r.failures
+    assert set(failed["label"]) == {"indirect (arx)"} and set(failed["n_train_trials"]) == {2}
+    assert failed["error"].str.contains("usable rows").all()
+    assert not r.prediction.merge(failed[["task"]], on="task").shape[0]
+
+
+def test_noise_sweep_needs_a_plant_that_can_rescale_its_noise(seed):
+    session, plant = _session(seed)
+    true = plant.to_state_space()
+    surrogate_like = InnovationPlant(true.replace(input_names=plant.input_names, output_names=plant.output_names),
+                                     noise=False)
+    r = run_bench(session, _settings(noise_scales=(2.0,)), plant=surrogate_like, n_workers=1, progress=False)
+    assert set(r.failures["noise_scale"]) == {2.0}
+    assert r.failures["error"].str.contains("with_params").all()
+
+
+def test_local_processes_give_the_sequential_numbers(seed):
+    session, plant = _session(seed)
+    st = _settings(train_trials=(2,), noise_scales=(2.0,))
+    one = run_bench(session, st, plant=plant, n_workers=1, progress=False)
+    two = run_bench(session, st, plant=plant, n_workers=2, progress=False)
+    assert one.provenance["execution"]["mode"] == "sequential"
+    assert two.provenance["execution"] == {"mode": "local processes", "n_workers": 2}
+    a, b = _numbers(one), _numbers(two)
+    for name in a:
+        pd.testing.assert_frame_equal(a[name], b[name], check_exact=True)
+
+
+# ------------------------------------------------------------------------------------------------ plants and limits
+def test_innovation_plant_without_noise_is_the_model_plus_offset(rng):
+    # Outside check: scipy.signal.dlsim simulates the same (A, B, C, D) from rest.
+    model = StateSpaceModel(A=[[0.5, 0.1], [0.0, 0.3]], B=[[1.0], [0.5]], C=[[1.0, -1.0]], D=[[0.2]],
+                            K=[[0.3], [0.1]], innovation_cov=[[4.0]])
+    plant = InnovationPlant(model, output_offset=[2.5], noise=False)
+    u = rng.standard_normal((50, 1))
+    _t, y_ref, _x = signal.dlsim((model.A, model.B, model.C, model.D, 1.0), u)
+    assert np.allclose(plant.simulate(u), y_ref + 2.5, atol=1e-12)
+    with pytest.raises(SessionError, match="output_offset must be 1 finite values"):
+        InnovationPlant(model, output_offset=[1.0, 2.0])
+    with pytest.raises(SessionError, match="x0 must be a finite state vector of shape \\(2,\\)"):
+        plant.reset(x0=[1.0])
+    with pytest.raises(SessionError, match="u_k must hold 1 finite values"):
+        plant.step([np.nan])
+
+
+def test_innovation_plant_draws_its_innovations_with_their_covariance():
+    model = StateSpaceModel(A=[[0.0]], B=[[0.0]], C=[[0.0]], innovation_cov=[[4.0]])
+    plant = InnovationPlant(model, seed=7)
+    y = plant.simulate(np.zeros((20000, 1)))
+    # sample variance of 20000 normal draws: standard error 4 * sqrt(2 / 20000) = 0.04; 5 standard errors allowed
+    assert abs(y.var() - 4.0) < 0.2
+    assert np.array_equal(plant.simulate(np.zeros((5, 1)), seed=3), plant.simulate(np.zeros((5, 1)), seed=3))
+
+
+def test_recorded_limits_span_the_recorded_inputs_and_zero():
+    u = np.array([[0.5, 1.0], [2.0, 3.0], [1.0, 4.0]])
+    s = Session(u=u, y=np.zeros((3, 1)), sample_rate_hz=10.0, input_names=("a", "b"))
+    lim = recorded_limits(s)
+    assert lim.amplitude_min_ua.tolist() == [0.0, 0.0] and lim.amplitude_max_ua.tolist() == [2.0, 4.0]
+    assert lim.input_names == ("a", "b")

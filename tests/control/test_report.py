@@ -1,0 +1,125 @@
+"""Tests of the benchmark report (control/report.py): files, self-containment, atomic output, generated summary."""
+
+import dataclasses
+import json
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stimsteer.control import report as report_module
+from stimsteer.control.cli import CAUTION
+from stimsteer.control.evaluation import BenchSettings, ControlSettings, MethodSpec, run_bench
+from stimsteer.control.plants import LinearNetworkPlant, record_session
+from stimsteer.control.report import RESULTS_FILE, check_out_dir, report_figures, summarize, write_report
+from stimsteer.sysid.exceptions import StimsteerError
+
+_PNG = b"\x89PNG\r\n\x1a\n"  # the PNG file signature (PNG specification, section 5.2)
+
+
+@pytest.fixture
+def result(seed):
+    rng = np.random.default_rng(seed)
+    A = rng.standard_normal((3, 3))
+    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
+    plant = LinearNetworkPlant(A, rng.standard_normal((3, 2)), rng.standard_normal((2, 3)), process_noise_std=0.02,
+                               measurement_noise_std=0.05, sample_rate_hz=100.0, output_names=("ch_1", "ch_2"),
+                               seed=seed)
+    session = record_session(plant, rng.uniform(-1, 1, (480, 2)), trials=[(i * 80, (i + 1) * 80) for i in range(6)],
+                             output_units="mV")
+    st = BenchSettings(methods=(MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}),
+                                MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)})),
+                       past_steps=3, horizon_steps=5, n_splits=2, control=ControlSettings(n_steps=30),
+                       train_trials=(2,), noise_scales=(2.0,), horizons=(3,), max_windows=100)
+    return run_bench(session, st, plant=plant, n_workers=1, progress=False)
+
+
+@pytest.mark.slow
+def test_report_folder_holds_page_tables_and_figures(result, tmp_path):
+    out = tmp_path / "run"
+    files = write_report(result, out)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert files["report"] == out / "report.html" and CAUTION in page
+    # self-contained: every image is embedded, nothing is fetched from elsewhere
+    assert page.count("src='data:image/png;base64,") == len([k for k in files if k.startswith("figure:")]) == 8
+    assert not re.search(r"(src|href)=['\"](https?:|file:|/)", page)
+    for name, table in result.tables().items():
+        path = out / "tables" / f"{name}.csv"
+        assert path.is_file()
+        if not table.empty:
+            back = pd.read_csv(path)
+            assert list(back.columns) == list(table.columns) and len(back) == len(table)
+    payload = json.loads((out / RESULTS_FILE).read_text(encoding="utf-8"))
+    assert payload["caution"] == CAUTION and payload["summary"] == summarize(result)
+    assert payload["provenance"]["session"]["content_hash"] == result.provenance["session"]["content_hash"]
+    assert len(payload["tables"]["control"]) == len(result.control)
+    for name in ("predictions", "accuracy_vs_steps", "closed_loop", "tracking_vs_energy", "training_data", "noise",
+                 "horizon", "compute_time"):
+        assert (out / "figures" / f"{name}.png").read_bytes().startswith(_PNG)
+
+
+def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result, tmp_path, monkeypatch):
+    monkeypatch.setattr(report_module, "report_figures", lambda _result: {"one": _PNG})  # figures are not tested here
+    out = tmp_path / "run"
+    write_report(result, out)
+    run_id = json.loads((out / RESULTS_FILE).read_text())["run_id"]
+    with pytest.raises(StimsteerError, match=f"already holds another run \\(benchmark run {run_id}\\)"):
+        write_report(result, out)
+    (out / "stray.txt").write_text("not ours")
+    write_report(result, out, force=True)
+    assert not (out / "stray.txt").exists() and (out / "report.html").is_file()
+    with pytest.raises(StimsteerError, match="exists and is a file"):
+        check_out_dir(out / "report.html")
+
+
+def test_a_failure_while_writing_leaves_nothing(result, tmp_path, monkeypatch):
+    def broken(_result):
+        raise RuntimeError("figure failed")
+
+    monkeypatch.setattr(report_module, "report_figures", broken)
+    with pytest.raises(RuntimeError, match="figure failed"):
+        write_report(result, tmp_path / "run")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_write_report_needs_a_bench_result(tmp_path):
+    with pytest.raises(StimsteerError, match="needs a BenchResult from run_bench; got dict"):
+        write_report({"prediction": None}, tmp_path / "run")
+
+
+def test_summary_is_generated_from_the_numbers(result):
+    lines = summarize(result)
+    text = "\n".join(lines)
+    r2 = result.sweeps[(result.sweeps["sweep"] == "base") & (result.sweeps["metric"] == "r2_last")]
+    for _, row in r2.iterrows():
+        assert f"{row['label']} {row['mean']:.3f} [{row['ci_low']:.3f}, {row['ci_high']:.3f}]" in text
+    assert "ground-truth plant" in text and "hard-limit violation" in text and "Student-t" in text
+    # change the numbers and the verdict follows them
+    comp = result.comparison.copy()
+    sel = (comp["sweep"] == "base") & (comp["metric"] == "r2_last")
+    comp.loc[sel, ["mean_difference", "ci_low", "ci_high", "better"]] = [0.25, 0.125, 0.375, "direct"]
+    sweeps = result.sweeps.copy()
+    sweeps.loc[(sweeps["sweep"] == "base") & (sweeps["metric"] == "r2_last"), "mean"] = 0.123456
+    changed = "\n".join(summarize(dataclasses.replace(result, comparison=comp, sweeps=sweeps)))
+    assert "the direct route is better (direct − indirect = 0.250 [0.125, 0.375])" in changed
+    assert "0.123 [" in changed
+    comp.loc[sel, ["ci_low", "better"]] = [-0.125, "neither"]
+    neither = "\n".join(summarize(dataclasses.replace(result, comparison=comp)))
+    assert "no clear winner (direct − indirect = 0.250 [-0.125, 0.375]; the interval contains zero)" in neither
+
+
+def test_figures_label_axes_with_units(result):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    figs = report_figures(result)
+    assert set(figs) >= {"predictions", "closed_loop", "compute_time"}
+    # the output unit of the session ("mV") reaches the axis labels of the trace figures
+    plt = report_module._pyplot()
+    fig = report_module._fig_predictions(result, plt, report_module._colours(result))
+    assert any("[mV]" in ax.get_ylabel() for ax in fig.axes)
+    assert all(ax.get_xlabel().endswith("[s]") for ax in fig.axes)
+    fig2 = report_module._fig_closed_loop(result, plt, report_module._colours(result))
+    assert {ax.get_ylabel() for ax in fig2.axes[1:]} == {"input [µA]"}
+    plt.close("all")
