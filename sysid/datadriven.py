@@ -724,7 +724,7 @@ class HankelPredictor(_DirectPredictor):
         self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.factor.shape[0])
         self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
         self.cv_table_ = table
-        self._l1_cache = None
+        self._l1_cache = self._map_cache = None
         return self
 
     def _blocks(self, data: _Fold, compress: bool):
@@ -791,10 +791,44 @@ class HankelPredictor(_DirectPredictor):
         NotFittedError, SessionError
         SolverError
             "l1": the convex solver did not reach an optimal solution.
+
+        Notes
+        -----
+        For "l2" and "projection" the prediction is linear in the window, ``vec(y_future) = G b``; ``G`` is
+        computed from one KKT solve with ``len(b)`` right-hand sides on the first call and kept, so later calls
+        cost one matrix-vector product. :meth:`solve_g` re-solves the problem for one window.
         """
         b, n_future = self._check_windows(u_past, y_past, u_future)
-        g = self._solve(b)
-        return (self.blocks_.Yf @ g).reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+        if self.regularizer_ == "l1":
+            y = self.blocks_.Yf @ self._solve(b)
+        else:
+            y = self._prediction_map() @ b
+        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+
+    def solve_g(self, u_past, y_past, u_future) -> np.ndarray:
+        """Solve the regularised problem for one window and return its minimiser.
+
+        Parameters
+        ----------
+        u_past, y_past, u_future
+            As :meth:`predict`.
+
+        Returns
+        -------
+        g : ndarray, shape (r,)
+            In the coordinates of ``blocks_`` (``h = Qᵀ g`` when compressed); ``blocks_.Yf @ g`` is the
+            predicted ``vec(y_future)`` over the full horizon.
+        """
+        b, _ = self._check_windows(u_past, y_past, u_future)
+        return self._solve(b)
+
+    def _prediction_map(self) -> np.ndarray:
+        if getattr(self, "_map_cache", None) is None:
+            M = None if self.regularizer_ == "l2" else self.reg_matrix_
+            n_b = self.blocks_.Up.shape[0] + self.blocks_.Yp.shape[0] + self.blocks_.Uf.shape[0]
+            self._map_cache = self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_,
+                                                         np.eye(n_b))
+        return self._map_cache
 
     def _solve(self, b: np.ndarray) -> np.ndarray:
         if self.regularizer_ == "l1":
@@ -831,7 +865,7 @@ class HankelPredictor(_DirectPredictor):
         r = obj.blocks_.Up.shape[1]
         obj.reg_matrix_ = (np.eye(r) if obj.regularizer_ == "l2" else
                            None if obj.regularizer_ == "l1" else np.asarray(fitted["reg_matrix_"], dtype=np.float64))
-        obj._l1_cache = None
+        obj._l1_cache = obj._map_cache = None
         return obj
 
 

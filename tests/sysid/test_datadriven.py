@@ -368,3 +368,16 @@ def test_hankel_blocks_split_a_matrix_in_row_order():
     np.testing.assert_array_equal(b.D[:, 0], np.arange(10.0))
     with pytest.raises(SessionError, match=r"needs 18 rows; got shape \(20, 3\)"):
         HankelBlocks.from_matrix(np.zeros((20, 3)), 1, 2, 2, 4, compressed=False)
+
+
+@pytest.mark.parametrize("compress", [True, False])
+def test_solve_g_satisfies_the_constraints_and_gives_the_prediction(compress, rng):
+    sys = _system(rng)
+    h = HankelPredictor(past_steps=3, horizon_steps=5, regularizer="l2", lambdas_g=[1e-2], lambda_y=10.0,
+                        compress=compress).fit(_session(rng, sys, noise=0.1))
+    up, yp, uf, _ = _fresh_window(rng, sys, 3, 5)
+    g = h.solve_g(up, yp, uf)
+    assert g.shape == (h.blocks_.Up.shape[1],)
+    np.testing.assert_allclose(h.blocks_.Up @ g, up.reshape(-1), atol=1e-9)
+    np.testing.assert_allclose(h.blocks_.Uf @ g, uf.reshape(-1), atol=1e-9)
+    np.testing.assert_allclose((h.blocks_.Yf @ g).reshape(5, 2), h.predict(up, yp, uf), atol=1e-9)
