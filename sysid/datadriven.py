@@ -435,7 +435,7 @@ class LsqPredictor(_DirectPredictor):
     >>> u = rng.standard_normal((300, 1)); y = np.zeros((300, 1))
     >>> for k in range(1, 300): y[k] = 0.5 * y[k - 1] + u[k - 1]
     >>> lsq = LsqPredictor(past_steps=2, horizon_steps=3, alphas=[1e-12]).fit(Session(u=u, y=y, sample_rate_hz=1.0))
-    >>> np.round(lsq.Kf_, 6).tolist()  # Markov parameters 0, 1, 0.5 on the block-Toeplitz pattern
+    >>> (np.round(lsq.Kf_, 6) + 0.0).tolist()  # Markov parameters 0, 1, 0.5 on the block-Toeplitz pattern
     [[0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.5, 1.0, 0.0]]
     """
 
@@ -651,6 +651,18 @@ class HankelPredictor(_DirectPredictor):
     European Control Conference.
     Dörfler F., Coulson J., Markovsky I. (2023), "Bridging direct and indirect data-driven control formulations via
     regularizations and relaxations", IEEE Transactions on Automatic Control 68:883.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stimsteer.sysid import Session
+    >>> rng = np.random.default_rng(0)
+    >>> u = rng.standard_normal((300, 1)); y = np.zeros((300, 1))
+    >>> for k in range(1, 300): y[k] = 0.5 * y[k - 1] + u[k - 1]
+    >>> hp = HankelPredictor(past_steps=1, horizon_steps=3, lambdas_g=[1e-6], n_states=1)
+    >>> hp = hp.fit(Session(u=u, y=y, sample_rate_hz=1.0))
+    >>> np.round(hp.predict([[1.0]], [[2.0]], [[0.0], [0.0], [0.0]]).ravel(), 6).tolist()  # 0.5·2 + 1, then halving
+    [2.0, 1.0, 0.5]
     """
 
     storage_kind = "hankel_predictor"
