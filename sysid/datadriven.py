@@ -231,7 +231,8 @@ class _DirectPredictor:
 
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if k != self._strength_param)
-        return f"{type(self).__name__}({args}, {self._strength_param}=<{np.size(getattr(self, self._strength_param))} values>)"
+        n = np.size(getattr(self, self._strength_param))
+        return f"{type(self).__name__}({args}, {self._strength_param}=<{n} values>)"
 
     def _validate_common(self, session):
         _check_source(session)
@@ -260,8 +261,8 @@ class _DirectPredictor:
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
-                f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer trials, or give a single "
-                "strength."
+                f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer "
+                "trials, or give a single strength."
             )
         m, p = int(session.n_inputs), int(session.n_outputs)
         self.past_steps_, self.max_horizon_steps_ = past, horizon
