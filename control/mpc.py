@@ -761,9 +761,7 @@ class ModelPredictiveController(_CondensedCore):
     Parameters
     ----------
     model : StateSpaceModel
-        In the physical input units of the limits (µA). When ``model.info["output_offset"]`` is set (e.g. by
-        ``RidgeArx``), the model describes ``y − offset``; past outputs, targets, bounds and predictions are in
-        the outputs' own units all the same.
+        In the physical input units of the limits (µA).
     limits : StimLimits
         Matched to the model's inputs by name when named (:meth:`StimLimits.aligned`).
     horizon_steps : int
@@ -778,6 +776,10 @@ class ModelPredictiveController(_CondensedCore):
         Terminal cost on ``x_N − x_T``: none, the solution ``P`` of the discrete algebraic Riccati equation of the
         stage cost (for the state kind ``P − Q``, since ``x_N`` is already in the stage cost), or a PSD matrix.
         ``x_T`` is the target state (state kind) or the minimum-norm state with ``C x = r_{N−1}`` (output kind).
+    output_offset : ndarray, shape (n_outputs,), optional
+        When the model describes ``y − output_offset`` (e.g. ``RidgeArx.model_.info["output_offset"]``, the
+        resting output), give it here: past outputs, targets, output bounds and predictions then stay in the
+        outputs' own units. Default none (the model describes ``y`` itself). :func:`controller_for` passes it.
     target_kind : {"output", "state"}, default "output"
     formulation : {"condensed", "sparse"}, default "condensed"
         The cvxpy problem with inputs only (``ŷ = G u + Φ x̂``) or with the states as variables and the dynamics
@@ -824,13 +826,14 @@ class ModelPredictiveController(_CondensedCore):
     """
 
     _param_names = ("model", "limits", "horizon_steps", "output_weight", "input_weight", "state_weight",
-                    "terminal_weight", "target_kind", "formulation", "output_penalty", "solver", "fast_path",
-                    "solver_options")
+                    "terminal_weight", "output_offset", "target_kind", "formulation", "output_penalty", "solver",
+                    "fast_path", "solver_options")
 
     def __init__(self, *, model, limits, horizon_steps, output_weight=1.0, input_weight=1e-3, state_weight=1.0,
-                 terminal_weight=None, target_kind="output", formulation="condensed", output_penalty=1e4,
-                 solver="CLARABEL", fast_path=True, solver_options=None):
+                 terminal_weight=None, output_offset=None, target_kind="output", formulation="condensed",
+                 output_penalty=1e4, solver="CLARABEL", fast_path=True, solver_options=None):
         self.model = model
+        self.output_offset = output_offset
         self.limits = limits
         self.horizon_steps = horizon_steps
         self.output_weight = output_weight
@@ -880,10 +883,10 @@ class ModelPredictiveController(_CondensedCore):
         self._setup_common(model.input_names, model.output_names, N)
         self.n_states_ = n = model.n_states
         self.past_steps_ = model.past_steps
-        off = model.info.get("output_offset")
+        off = self.output_offset
         self._y_off = np.zeros(model.n_outputs) if off is None else np.asarray(off, np.float64).reshape(-1)
         if self._y_off.shape != (model.n_outputs,) or not np.all(np.isfinite(self._y_off)):
-            raise SessionError(f"the model's info['output_offset'] must be {model.n_outputs} finite values; got "
+            raise SessionError(f"output_offset must be {model.n_outputs} finite values (one per output); got "
                                f"{off!r}.")
         self._y_off_N = np.tile(self._y_off, N)
         Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
@@ -1420,6 +1423,7 @@ def controller_for(predictor, limits, *, horizon_steps=None, output_weight=1.0, 
             model = model.replace(past_steps=int(past))
         if horizon_steps is None:
             raise SessionError("a state-space model has no horizon of its own; give horizon_steps (--horizon).")
+        settings.setdefault("output_offset", model.info.get("output_offset"))  # e.g. RidgeArx's resting output
         return ModelPredictiveController(model=model, limits=limits, horizon_steps=horizon_steps,
                                          output_weight=output_weight, input_weight=input_weight, **settings).fit()
     return DataPredictiveController(predictor=predictor, limits=limits, horizon_steps=horizon_steps,

@@ -492,12 +492,15 @@ def test_output_offset_of_the_model_is_honoured(rng):
     off = np.array([5.0, -3.0])
     model = base.replace(info={"output_offset": off})
     u, y_dev = _past(rng, base)
+    from stimsteer.control.mpc import controller_for
+
+    assert np.array_equal(controller_for(model, _limits(), horizon_steps=2).output_offset, off)
     y = y_dev + off  # the recording rests at the offset
     lim = _limits(output_max=[5.2, np.inf])
     plans = []
     for form in ("condensed", "sparse"):
         ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=5, formulation=form,
-                                         input_weight=0.1).fit()
+                                         input_weight=0.1, output_offset=off).fit()
         plans += [ctrl.plan(u, y, target=off + [0.5, 0.2], use_fast_path=f) for f in (True, False)]
     ref = ModelPredictiveController(model=base, limits=_limits(output_max=[0.2, np.inf]), horizon_steps=5,
                                     input_weight=0.1).fit()
@@ -505,9 +508,8 @@ def test_output_offset_of_the_model_is_honoured(rng):
     for plan in plans:  # an active soft bound (penalty 1e4) loosens OSQP's relative tolerance: compare to 1e-4
         np.testing.assert_allclose(plan.inputs, expected.inputs, atol=1e-4)
         np.testing.assert_allclose(plan.predicted_outputs, expected.predicted_outputs + off, atol=1e-4)
-    with pytest.raises(SessionError, match="output_offset"):
-        ModelPredictiveController(model=base.replace(info={"output_offset": [1.0]}), limits=lim,
-                                  horizon_steps=3).fit()
+    with pytest.raises(SessionError, match="output_offset must be 2 finite values"):
+        ModelPredictiveController(model=base, limits=lim, horizon_steps=3, output_offset=[1.0]).fit()
 
 
 def test_controller_for_picks_the_route(rng):
