@@ -644,7 +644,10 @@ class HankelPredictor(_DirectPredictor):
     For the ℓ2 and projection regularisers the prediction is linear in ``b``; held-out errors are computed from
     the folds' row-space factors as for :class:`LsqPredictor`. For ℓ1 each fold scores
     ``_L1_VALIDATION_WINDOWS`` evenly spread held-out windows. As ``λ_g → ∞`` the projection predictor tends to
-    the least-squares one with ``alpha → 0`` (Dörfler, Coulson, Markovsky 2023).
+    the least-squares one with ``alpha → 0`` (Dörfler, Coulson, Markovsky 2023). When ``[Up; Yp; Uf]`` has full
+    row rank (noisy data) the two coincide for every ``λ_g > 0``: ``g = D⁺ b`` meets the constraints with zero slack
+    and zero penalty. The strength then matters only inside a controller, where the tracking cost competes with
+    the penalty.
 
     References
     ----------
