@@ -895,16 +895,15 @@ def _connect(address: str, timeout: float):
     return client
 
 
-def _run_dask(ctx: _Context, tasks, address: str, timeout: float, bar) -> tuple[list, int]:
+def _run_dask(ctx: _Context, tasks, client, bar) -> tuple[list, int]:
     from distributed import as_completed
 
-    client = _connect(address, timeout)
     results = [None] * len(tasks)
     try:
         ctx_future = client.scatter(ctx, broadcast=True, hash=False)
         futures = [client.submit(_run_task, ctx_future, t, pure=False) for t in tasks]
         index = {f.key: t.index for f, t in zip(futures, tasks)}
-        for fut in as_completed(futures):
+        for fut in as_completed(futures, loop=client.loop):
             results[index[fut.key]] = fut.result()
             bar.update()
         n_workers = len(client.scheduler_info().get("workers", {}))
@@ -914,19 +913,19 @@ def _run_dask(ctx: _Context, tasks, address: str, timeout: float, bar) -> tuple[
 
 
 def _execute(ctx: _Context, tasks, scheduler, n_workers, progress) -> tuple[list, dict]:
-    bar = _progress_bar(len(tasks), progress)
-    try:
-        if scheduler:
-            results, used = _run_dask(ctx, tasks, scheduler, ctx.settings.scheduler_timeout_s, bar)
-            return results, {"mode": "dask", "scheduler": str(scheduler), "n_workers": used}
-        n = _available_cores() if n_workers is None else int(n_workers)
-        if n < 1:
-            raise SessionError(f"n_workers must be at least 1; got {n_workers!r}.")
-        n = min(n, len(tasks))
+    """Run every task; results come back in task order whatever the order of completion."""
+    if scheduler:
+        client = _connect(scheduler, ctx.settings.scheduler_timeout_s)
+        with _progress_bar(len(tasks), progress) as bar:
+            results, used = _run_dask(ctx, tasks, client, bar)
+        return results, {"mode": "dask", "scheduler": str(scheduler), "n_workers": used}
+    n = _available_cores() if n_workers is None else int(n_workers)
+    if n < 1:
+        raise SessionError(f"n_workers must be at least 1; got {n_workers!r}.")
+    n = min(n, len(tasks))
+    with _progress_bar(len(tasks), progress) as bar:
         results = _run_local(ctx, tasks, n, bar)
-        return results, {"mode": "sequential" if n <= 1 else "local processes", "n_workers": n}
-    finally:
-        bar.close()
+    return results, {"mode": "sequential" if n <= 1 else "local processes", "n_workers": n}
 
 
 # ------------------------------------------------------------------------------------------------ tables
@@ -1266,6 +1265,8 @@ def run_bench(session, settings: BenchSettings | None = None, *, plant=None, lim
     if limits is not None and not isinstance(limits, StimLimits):
         raise SessionError(f"limits must be a StimLimits (see stimsteer.control.limits.load_limits); got "
                            f"{type(limits).__name__}.")
+    if limits is not None:
+        limits.aligned(session.input_names, session.output_names)  # LimitsError now, not in every task
     n_train = _check_trials(session, st)
     splits = _splits(session, st)
     tasks = _tasks(st, splits, _grid(st, n_train, simulated=plant is not None))
