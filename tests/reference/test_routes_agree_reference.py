@@ -70,7 +70,8 @@ def test_closed_loops_of_both_routes_coincide_with_the_true_model(bench):
     tr = result.traces["closed_loop"]
 
     def signal(label, kind):
-        return tr[(tr["label"] == label) & (tr["signal"] == kind)].sort_values(["channel", "time_s"])["value"].to_numpy()
+        part = tr[(tr["label"] == label) & (tr["signal"] == kind)]
+        return part.sort_values(["channel", "time_s"])["value"].to_numpy()
 
     u_ind, u_dir = signal("indirect (arx)", "input"), signal("direct (lsq)", "input")
     u_scale = max(np.abs(u_ind).max(), 1e-12)
