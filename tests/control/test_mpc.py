@@ -408,7 +408,11 @@ def _property_controllers(rng):
     """A few small controllers (built once, re-solved per example), with and without each kind of limit."""
     m1 = _model(rng, n=3, m=2, p=2)
     m2 = _model(rng, n=2, m=3, p=1, D=True, radius=1.05)  # unstable: plans must still respect the limits
+    from stimsteer.sysid.datadriven import HankelPredictor
+
     lim1 = _limits(output_max=[0.2, np.inf])
+    lim3 = _limits()  # no output bounds: the DeePC fast path with g minimised out
+    deepc = HankelPredictor(past_steps=3, horizon_steps=4, lambdas_g=(1e-4,)).fit(_noise_free_session(rng, m1))
     lim2 = StimLimits(amplitude_min_ua=[-2.0, -0.5, 0.0], amplitude_max_ua=[2.0, 0.5, 3.0],
                       slew_max_ua=[0.3, np.inf, 0.7], energy_budget_ua2=4.0, pulse_width_us=200.0,
                       electrode_area_cm2=[1.0, 1.0, 1e-7])
@@ -418,6 +422,7 @@ def _property_controllers(rng):
                                    horizon_steps=3, terminal_weight="riccati", formulation="sparse").fit(), lim1),
         (ModelPredictiveController(model=m2, limits=lim2, horizon_steps=4).fit(), lim2),
         (DataPredictiveController(predictor=_Lsq(m1, 3, 4), limits=lim1, input_weight=1e-2).fit(), lim1),
+        (DataPredictiveController(predictor=deepc, limits=lim3, input_weight=1e-2).fit(), lim3),
     ]
 
 
