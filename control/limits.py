@@ -353,8 +353,6 @@ class StimLimits:
             i = int(bad[0])
             raise LimitsError(f"output_min must be below output_max; output {i} has min {lo[i]:g} >= max "
                               f"{hi[i]:g}. Correct or drop that output bound.")
-        if np.any(lo == np.inf) or np.any(hi == -np.inf):
-            raise LimitsError("output_min cannot be +inf and output_max cannot be -inf; use -inf / inf for none.")
         s(self, "output_min", lo)
         s(self, "output_max", hi)
 

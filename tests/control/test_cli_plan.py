@@ -138,3 +138,9 @@ def test_parse_target_refuses_duplicates_and_missing_files(tmp_path):
         parse_target("a=inf", ("a",), 2)
     with pytest.raises(FileNotFoundError):
         parse_target(tmp_path / "missing.csv", ("a",), 2)
+
+
+def test_parse_target_refuses_an_empty_table(tmp_path):
+    (tmp_path / "empty.csv").write_text("")
+    with pytest.raises(SessionError, match="not a readable CSV table"):
+        parse_target(tmp_path / "empty.csv", ("a",), 2)

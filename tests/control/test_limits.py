@@ -145,6 +145,13 @@ def test_bad_limits_are_refused_with_the_reason(kw, match):
         _lim(**kw)
 
 
+def test_zero_inputs_and_bad_areas_are_refused():
+    with pytest.raises(LimitsError, match="at least one input"):
+        StimLimits(amplitude_min_ua=0.0, amplitude_max_ua=1.0, n_inputs=0)
+    with pytest.raises(LimitsError, match="electrode_area_cm2 must be positive"):
+        _lim(pulse_width_us=100.0, electrode_area_cm2=[0.1, 0.0])
+
+
 def test_no_size_information_is_refused():
     with pytest.raises(LimitsError, match="cannot tell the number of inputs"):
         StimLimits(amplitude_min_ua=0.0, amplitude_max_ua=1.0)
@@ -183,6 +190,7 @@ def test_aligned_refuses_mismatched_names():
          "[inputs.b]\namplitude_min_ua = 0\namplitude_max_ua = 1\n", "given for some inputs but not"),
         ("colour = 3\n[inputs.a]\namplitude_min_ua = 0\namplitude_max_ua = 1\n", "unknown keys"),
         ("inputs = 3\n", r"\[inputs\] must be a table"),
+        ("[inputs.a]\namplitude_min_ua = 0\namplitude_max_ua = 1\n[outputs]\ny = 2\n", r"\[outputs.y\] must be a table"),
         ("[inputs]\na = 1\n", r"\[inputs.a\] must be a table"),
         ("this is = = not toml", "not a valid TOML"),
     ],
