@@ -57,7 +57,7 @@ from ..sysid.routes import METHODS
 from ..sysid.session import Session, TrialSplit
 from .limits import StimLimits
 from .loop import run_closed_loop
-from .mpc import DataPredictiveController, ModelPredictiveController
+from .mpc import controller_for
 
 __all__ = [
     "MethodSpec",
@@ -392,21 +392,6 @@ class InnovationPlant:
         return np.array([self.step(row) for row in u]).reshape(u.shape[0], self.n_outputs)
 
 
-class _OffsetPlant:
-    """A plant seen in deviation from a model's resting output (for models fitted with an intercept)."""
-
-    def __init__(self, plant, offset):
-        self._plant, self._offset = plant, np.asarray(offset, np.float64)
-        for a in ("n_inputs", "n_outputs", "sample_rate_hz", "input_names", "output_names"):
-            setattr(self, a, getattr(plant, a, None))
-
-    def reset(self, seed=None, x0=None):
-        self._plant.reset(seed=seed, x0=x0)
-
-    def step(self, u_k):
-        return np.asarray(self._plant.step(u_k), np.float64) - self._offset
-
-
 def _check_plant(plant, session) -> None:
     for attr in ("n_inputs", "n_outputs", "reset", "step"):
         if not hasattr(plant, attr):
@@ -646,7 +631,7 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     if task.keep_traces:
         out["prediction_trace"] = _prediction_trace(predictor, test, H, _trace_channels(ctx, train))
     if st.control is not None:
-        out.update(_control(ctx, task, spec, predictor, session))
+        out.update(_control(ctx, task, predictor, session))
     return out
 
 
@@ -729,17 +714,9 @@ def _prediction_trace(predictor, test: Session, H: int, channels) -> pd.DataFram
 
 
 # ------------------------------------------------------------------------------------------------ control
-def _controller(spec: MethodSpec, predictor, limits, horizon: int, weight, input_weight):
-    """The route's predictive controller and the output offset its model works in deviation from."""
-    if spec.route == "indirect":
-        model = getattr(predictor, "model_", predictor)
-        offset = np.asarray(model.info.get("output_offset", np.zeros(model.n_outputs)), np.float64)
-        ctrl = ModelPredictiveController(model=model, limits=limits, horizon_steps=horizon, output_weight=weight,
-                                         input_weight=input_weight)
-        return ctrl.fit(), offset
-    ctrl = DataPredictiveController(predictor=predictor, limits=limits, horizon_steps=horizon, output_weight=weight,
-                                    input_weight=input_weight)
-    return ctrl.fit(), np.zeros(int(predictor.n_outputs_))
+def _controller(predictor, limits, horizon: int, weight, input_weight):
+    """The route's predictive controller (:func:`stimsteer.control.mpc.controller_for`), in the outputs' units."""
+    return controller_for(predictor, limits, horizon_steps=horizon, output_weight=weight, input_weight=input_weight)
 
 
 def _surrogate_spec(st: BenchSettings) -> MethodSpec:
@@ -776,7 +753,7 @@ def _plant_for(ctx: _Context, task: _Task, session: Session):
     return copy.deepcopy(ctx.plant if scale == 1.0 else _scaled_plant(ctx.plant, scale)), None
 
 
-def _control(ctx: _Context, task: _Task, spec: MethodSpec, predictor, session: Session) -> dict:
+def _control(ctx: _Context, task: _Task, predictor, session: Session) -> dict:
     st, cs = ctx.settings, ctx.settings.control
     H = task.setting.horizon_steps
     full_train = session.select_trials(task.split.train)
@@ -786,16 +763,15 @@ def _control(ctx: _Context, task: _Task, spec: MethodSpec, predictor, session: S
     target = _target(cs, mean, std, c, H)
     weight = np.full(session.n_outputs, cs.other_output_weight)
     weight[c] = 1.0
-    controller, offset = _controller(spec, predictor, limits, H, weight, cs.input_weight)
+    controller = _controller(predictor, limits, H, weight, cs.input_weight)
     plant, quality = _plant_for(ctx, task, session)
-    seen = _OffsetPlant(plant, offset) if np.any(offset) else plant
     t0 = time.perf_counter()
-    loop = run_closed_loop(controller, seen, n_steps=cs.n_steps, target=target - offset, seed=task.loop_seed)
+    loop = run_closed_loop(controller, plant, n_steps=cs.n_steps, target=target, seed=task.loop_seed)
     control_s = time.perf_counter() - t0
     out = {"loop": _loop_row(loop, c, limits), "control_s": control_s, "surrogate": quality,
            "limits": limits.to_dict()}
     if task.keep_traces:
-        out["loop_trace"] = _loop_trace(loop, offset, c, session, limits)
+        out["loop_trace"] = _loop_trace(loop, c, session)
     return out
 
 
@@ -813,13 +789,13 @@ def _loop_row(loop, c: int, limits) -> dict:
     }
 
 
-def _loop_trace(loop, offset, c: int, session: Session, limits) -> pd.DataFrame:
+def _loop_trace(loop, c: int, session: Session) -> pd.DataFrame:
     n = loop.n_steps
     time_s = np.arange(n) / session.sample_rate_hz
     frames = [pd.DataFrame({"time_s": time_s, "signal": "output", "channel": session.output_names[c],
-                            "value": np.asarray(loop.outputs)[:, c] + offset[c]}),
+                            "value": np.asarray(loop.outputs)[:, c]}),
               pd.DataFrame({"time_s": time_s, "signal": "target", "channel": session.output_names[c],
-                            "value": np.asarray(loop.targets)[:, c] + offset[c]})]
+                            "value": np.asarray(loop.targets)[:, c]})]
     for i, name in enumerate(session.input_names):
         frames.append(pd.DataFrame({"time_s": time_s, "signal": "input", "channel": name,
                                     "value": np.asarray(loop.inputs)[:, i]}))
