@@ -47,7 +47,7 @@ __all__ = ["HankelBlocks", "LsqPredictor", "HankelPredictor", "REGULARIZERS"]
 REGULARIZERS = ("projection", "l2", "l1")
 
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
-_DEFAULT_LAMBDAS_G = tuple(float(a) for a in np.logspace(-6, 0, 7))
+_DEFAULT_LAMBDAS_G = tuple(float(a) for a in np.logspace(-4, 2, 7))
 #: Validation windows per fold for the ℓ1 regulariser (each costs one convex solve).
 _L1_VALIDATION_WINDOWS = 16
 
@@ -589,7 +589,7 @@ class HankelPredictor(_DirectPredictor):
     regularizer : {"projection", "l2", "l1"}, default "projection"
         ``R(g)``: ``||(I − Π) g||²`` with ``Π`` the projector onto the row space of ``[Up; Yp; Uf]``;
         ``||g||²``; or ``||g||_1`` (solved with cvxpy, on the uncompressed data).
-    lambdas_g : sequence of float, default ``10**-6 … 10**0`` (7 values)
+    lambdas_g : sequence of float, default ``10**-4 … 10**2`` (7 values)
         Candidate strengths of ``R(g)``, relative to the data (module docstring), each > 0.
     lambda_y : float, default 1e3
         Weight of the squared slack ``||Yp g − vec(y_past)||²``, > 0.
