@@ -5,7 +5,8 @@ from one plan to the next (the measured past through the predicted free response
 so the problem is DPP and a plan only assigns ``.value`` and re-solves. A second, faster path for closed loops
 sets up one OSQP problem from the same matrices and only updates its vectors; both paths give the same plan
 (tested). The fast path exists for quadratic programs (no energy budget, no L1 regulariser); otherwise plans
-use the cvxpy problem.
+use the cvxpy problem, and so does a plan whose OSQP solve fails. For DeePC without output bounds the fast path
+minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
 
 Problem solved over the horizon ``k = 0 … N−1`` (inputs ``u_k``, predicted outputs ``ŷ_k``)::
 
