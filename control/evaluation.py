@@ -128,7 +128,7 @@ class ControlSettings:
 
     Parameters
     ----------
-    n_steps : int, default 150
+    n_steps : int, default 100
         Closed-loop samples (after a resting warm-up of the controller's past window).
     target_channel : str or int, optional
         Output channel to steer (name or index); default the first output.
@@ -142,7 +142,7 @@ class ControlSettings:
         Weight of the input energy per µA² in the controllers' cost.
     """
 
-    n_steps: int = 150
+    n_steps: int = 100
     target_channel: object = None
     target_level_std: float = 1.0
     pulse_fraction: tuple = (0.25, 0.75)
@@ -194,9 +194,9 @@ class BenchSettings:
         Training-trial counts of the data-length sweep (a seeded subset of each split's training trials, nested:
         smaller subsets are prefixes of larger ones); counts >= the available training trials are dropped, the
         full training set is always included.
-    noise_scales : tuple of float, default (0.5, 2.0)
+    noise_scales : tuple of float, default (2.0,)
         Noise levels of the noise sweep relative to the plant's (simulated sessions only; 1 is the session itself).
-    horizons : tuple of int, default (10, 30)
+    horizons : tuple of int, default (10,)
         Horizons of the horizon sweep (besides ``horizon_steps``).
     max_windows : int, default 500
         At most this many k-step windows are scored per task (evenly strided over the held-out trials).
@@ -213,8 +213,8 @@ class BenchSettings:
     test_fraction: float = 0.25
     control: ControlSettings = field(default_factory=ControlSettings)
     train_trials: tuple = (3, 9)
-    noise_scales: tuple = (0.5, 2.0)
-    horizons: tuple = (10, 30)
+    noise_scales: tuple = (2.0,)
+    horizons: tuple = (10,)
     max_windows: int = 500
     seed: int = 0
     scheduler_timeout_s: float = DEFAULT_SCHEDULER_TIMEOUT_S
@@ -254,8 +254,8 @@ class BenchSettings:
 
     @classmethod
     def quick(cls, **changes) -> "BenchSettings":
-        """Small settings for a first look and for tests: 2 splits, one point per sweep, 100 control steps."""
-        base = dict(n_splits=2, horizon_steps=10, control=ControlSettings(n_steps=100), train_trials=(3,),
+        """Small settings for a first look and for tests: 2 splits, one point per sweep, 60 control steps."""
+        base = dict(n_splits=2, horizon_steps=10, control=ControlSettings(n_steps=60), train_trials=(3,),
                     noise_scales=(2.0,), horizons=(), max_windows=150)
         return cls(**{**base, **changes})
 
