@@ -17,6 +17,7 @@ file, so memory does not grow with the length of the recording.
 
 from __future__ import annotations
 
+import contextlib
 import queue
 import threading
 import warnings
@@ -190,6 +191,27 @@ def _prefetched(items, load):
     finally:
         stop.set()
         reader.join()
+
+
+@contextlib.contextmanager
+def _core_left_for_reading():
+    """Run BLAS on one thread fewer than usual while the reader thread decompresses the next chunk.
+
+    With as many BLAS threads as cores, the extra reader thread oversubscribes the CPU and multi-threaded BLAS
+    slows down many times over (seen on 2 cores). The limit is process-wide for the duration of the pass and is
+    restored afterwards; without threadpoolctl (a scikit-learn dependency) nothing is changed.
+    """
+    try:
+        from threadpoolctl import threadpool_info, threadpool_limits
+    except ImportError:  # pragma: no cover - scikit-learn installs it
+        yield
+        return
+    n = max((int(i.get("num_threads") or 1) for i in threadpool_info() if i.get("user_api") == "blas"), default=1)
+    if n <= 1:
+        yield
+        return
+    with threadpool_limits(limits=n - 1, user_api="blas"):
+        yield
 
 
 def _read_z(session, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
@@ -428,6 +450,10 @@ class RidgeArx:
     With an intercept, the resting output is ``y_rest = (I − Σ A_i)⁻¹ c``; ``model_`` describes ``y − y_rest``
     driven by ``u`` in absolute units (zero input = no stimulation).
 
+    The streaming pass reads up to two chunks ahead in a background thread and, meanwhile, runs BLAS with one
+    thread fewer than usual (process-wide, restored afterwards) so that reading and the Gram products share the
+    cores instead of oversubscribing them. Peak memory is about three chunks of ``chunk_samples × (p + m)`` values.
+
     References
     ----------
     Ljung L. (1999), System Identification: Theory for the User, 2nd ed., ch. 4 and 7 (ARX, least squares).
@@ -542,14 +568,15 @@ class RidgeArx:
         hi = np.full(prob.m, -np.inf)
         shift = None
         chunks = _chunks(pieces, int(self.chunk_samples))
-        for (k0, k1, f), (B, u) in _prefetched(chunks, lambda c: _read_z(session, c[0] - L, c[1])):
-            lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
-            if shift is None:
-                # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.
-                shift = B.mean(axis=0) if prob.fit_intercept else np.zeros(prob.c)
-            B -= shift
-            s, W = _lagged_moments(B, L)
-            folds[f].add(k1 - k0, s, W)
+        with _core_left_for_reading():
+            for (k0, k1, f), (B, u) in _prefetched(chunks, lambda c: _read_z(session, c[0] - L, c[1])):
+                lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
+                if shift is None:
+                    # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.
+                    shift = B.mean(axis=0) if prob.fit_intercept else np.zeros(prob.c)
+                B -= shift
+                s, W = _lagged_moments(B, L)
+                folds[f].add(k1 - k0, s, W)
         self._check_inputs_vary(session, lo, hi)
         return folds, k, scheme, np.tile(shift, L + 1)
 

@@ -145,6 +145,17 @@ def test_a_read_error_in_the_streaming_pass_reaches_the_caller(rng):
         RidgeArx(chunk_samples=40).fit(_Broken(multi_trial_session(rng)))
 
 
+def test_blas_thread_limit_is_restored_after_fit(rng):
+    threadpoolctl = pytest.importorskip("threadpoolctl")
+
+    def blas_threads():
+        return [i["num_threads"] for i in threadpoolctl.threadpool_info() if i["user_api"] == "blas"]
+
+    before = blas_threads()
+    RidgeArx(alphas=[1e-3]).fit(multi_trial_session(rng, n_trials=2))
+    assert blas_threads() == before
+
+
 def test_fits_a_lazily_opened_session_file(rng, tmp_path):
     io = pytest.importorskip("stimsteer.sysid.io")
     s = multi_trial_session(rng, noise=0.1)
