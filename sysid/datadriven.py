@@ -40,7 +40,7 @@ import scipy.linalg as sla
 
 from .excitation import check_excitation, rank_tolerance
 from .exceptions import ConditioningWarning, SessionError, SolverError, check_fitted
-from .hankel import block_hankel, combine_factors, row_space_factor
+from .hankel import _one_blas_thread, block_hankel, combine_factors, row_space_factor
 
 __all__ = ["HankelBlocks", "LsqPredictor", "HankelPredictor", "REGULARIZERS"]
 
@@ -255,7 +255,7 @@ class _DirectPredictor:
     def _gather(self, session, n_candidates, keep_full):
         past, horizon = self._validate_common(session)
         order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
-                                 stacklevel=4)
+                                 stacklevel=5)
         folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
                                       self.seed, keep_full)
         if n_candidates > 1 and len(folds) < 2:
@@ -454,6 +454,7 @@ class LsqPredictor(_DirectPredictor):
         self.n_splits = n_splits
         self.seed = seed
 
+    @_one_blas_thread
     def fit(self, session) -> "LsqPredictor":
         """Fit from a :class:`Session` or an opened session file.
 
@@ -571,7 +572,7 @@ def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray)
     warnings.warn(ConditioningWarning(
         f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
         f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
-    ), stacklevel=3)
+    ), stacklevel=5)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", sla.LinAlgWarning)
         return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
@@ -706,6 +707,7 @@ class HankelPredictor(_DirectPredictor):
             return rel * scale / np.sqrt(max(n_columns / n_rows, 1e-300))
         return rel * scale
 
+    @_one_blas_thread
     def fit(self, session) -> "HankelPredictor":
         """Fit from a :class:`Session` or an opened session file.
 
@@ -821,6 +823,7 @@ class HankelPredictor(_DirectPredictor):
             y = self._prediction_map() @ b
         return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
 
+    @_one_blas_thread
     def solve_g(self, u_past, y_past, u_future) -> np.ndarray:
         """Solve the regularised problem for one window and return its minimiser.
 
@@ -838,6 +841,7 @@ class HankelPredictor(_DirectPredictor):
         b, _ = self._check_windows(u_past, y_past, u_future)
         return self._solve(b)
 
+    @_one_blas_thread
     def _prediction_map(self) -> np.ndarray:
         if getattr(self, "_map_cache", None) is None:
             M = None if self.regularizer_ == "l2" else self.reg_matrix_

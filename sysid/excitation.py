@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .exceptions import ExcitationError, ExcitationWarning, SessionError
-from .hankel import hankel_column_count, row_space_factor
+from .hankel import _one_blas_thread, hankel_column_count, row_space_factor
 
 __all__ = [
     "DEFAULT_TOL_FACTOR",
@@ -261,6 +261,7 @@ def _message(collective, capped, required, window, past, horizon):
             f"predictions will be unreliable. {_SCHEDULE_HINT}")
 
 
+@_one_blas_thread
 def excitation_report(session, *, past_steps: int, horizon_steps: int, n_states: int | None = None,
                       tol_factor: float = DEFAULT_TOL_FACTOR) -> ExcitationReport:
     """Excitation of a session's inputs per trial and collectively, against what the direct route needs.
@@ -309,6 +310,7 @@ def excitation_report(session, *, past_steps: int, horizon_steps: int, n_states:
     )
 
 
+@_one_blas_thread
 def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: int | None = None,
                      tol_factor: float = DEFAULT_TOL_FACTOR, stacklevel: int = 2) -> int:
     """Check a training session for the direct route: error when undefined, warning when unreliable.
@@ -320,7 +322,7 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
     session, past_steps, horizon_steps, n_states, tol_factor
         As :func:`excitation_report`.
     stacklevel : int, default 2
-        Passed to :func:`warnings.warn`.
+        As in :func:`warnings.warn`, counted from this function (2 = its caller).
 
     Returns
     -------
@@ -359,6 +361,6 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
         )
     if order < required:
         warnings.warn(
-            ExcitationWarning(_message(order, False, required, window, past, horizon)), stacklevel=stacklevel
+            ExcitationWarning(_message(order, False, required, window, past, horizon)), stacklevel=stacklevel + 1
         )
     return order

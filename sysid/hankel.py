@@ -18,6 +18,8 @@ from :meth:`Session.segments`, so no column spans a trial boundary or a masked s
 
 from __future__ import annotations
 
+import contextlib
+import functools
 from typing import Sequence
 
 import numpy as np
@@ -36,6 +38,34 @@ __all__ = [
     "row_space_factor",
     "combine_factors",
 ]
+
+
+_BLAS_CONTROLLER = []
+
+
+def _single_blas_thread():
+    """Context that runs BLAS/LAPACK on one thread (process-wide, restored afterwards).
+
+    The factorisations here are of a few hundred rows; on a machine whose cores are busy, multi-threaded OpenBLAS
+    slows them down ten times or more (seen on the shared 2-core development machine), while one thread loses
+    little. Without threadpoolctl (a scikit-learn dependency) nothing is changed.
+    """
+    if not _BLAS_CONTROLLER:
+        try:
+            from threadpoolctl import ThreadpoolController
+        except ImportError:  # pragma: no cover - scikit-learn installs it
+            return contextlib.nullcontext()
+        _BLAS_CONTROLLER.append(ThreadpoolController())
+    return _BLAS_CONTROLLER[0].limit(limits=1, user_api="blas")
+
+
+def _one_blas_thread(func):
+    """Decorator: run ``func`` inside :func:`_single_blas_thread`."""
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        with _single_blas_thread():
+            return func(*args, **kwargs)
+    return wrapper
 
 
 def _as_signal(w, name: str = "w") -> np.ndarray:
