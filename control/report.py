@@ -39,10 +39,11 @@ _RECORDED = "#222222"
 _TARGET = "#7a7a7a"
 _LIMIT = "#a0256e"
 _INPUT_COLOURS = ["#3b7d3b", "#7a4fa3", "#b8860b", "#2a8f8f", "#8b3a3a", "#4f4f4f"]
+#: metric -> (what it is, number format, unit; None = the steered output's unit)
 _METRIC_TEXT = {
-    "r2_last": ("R²", "{:.3f}"), "r2_freerun": ("R²", "{:.3f}"), "r2_mean": ("R²", "{:.3f}"),
-    "tracking_rms": ("RMS tracking error", "{:.3g}"), "energy_ua2": ("input energy", "{:.3g} µA²"),
-    "fit_s": ("fit time", "{:.2g} s"), "solve_ms_median": ("solve time per step", "{:.2g} ms"),
+    "r2_last": ("R²", "{:.3f}", ""), "r2_freerun": ("R²", "{:.3f}", ""), "r2_mean": ("R²", "{:.3f}", ""),
+    "tracking_rms": ("RMS tracking error", "{:.3g}", None), "energy_ua2": ("input energy", "{:.3g}", "µA²"),
+    "fit_s": ("fit time", "{:.2g}", "s"), "solve_ms_median": ("solve time per step", "{:.2g}", "ms"),
 }
 
 
@@ -85,18 +86,23 @@ def _base(result: BenchResult, metric: str, label: str):
 _NONNEGATIVE = ("tracking_rms", "energy_ua2", "fit_s", "predict_ms_per_window", "solve_ms_median")
 
 
-def _fmt_interval(row, fmt: str) -> str:
-    """``mean [low, high]``; the low end of a quantity that cannot be negative is shown clipped at 0."""
+def _spec(result: BenchResult, metric: str) -> tuple[str, str, str]:
+    name, fmt, unit = _METRIC_TEXT.get(metric, (metric, "{:.4g}", ""))
+    return name, fmt, _steered_unit(result) if unit is None else unit
+
+
+def _fmt_interval(row, fmt: str, unit: str = "") -> str:
+    """``mean [low, high] unit``; the low end of a quantity that cannot be negative is shown clipped at 0."""
     if row is None or not np.isfinite(row["mean"]):
         return "n/a"
     text = fmt.format(row["mean"])
     if np.isfinite(row["ci_low"]):
         low = max(row["ci_low"], 0.0) if row.get("metric") in _NONNEGATIVE else row["ci_low"]
         text += f" [{fmt.format(low)}, {fmt.format(row['ci_high'])}]"
-    return text
+    return f"{text} {unit}" if unit else text
 
 
-def _verdict(result: BenchResult, metric: str, a: str, b: str, fmt: str, sweep="base", value=None) -> str:
+def _verdict(result: BenchResult, metric: str, a: str, b: str, sweep="base", value=None) -> str:
     c = result.comparison
     sel = (c["sweep"] == sweep) & (c["metric"] == metric) & (c["indirect"] == a) & (c["direct"] == b)
     if value is not None:
@@ -105,18 +111,20 @@ def _verdict(result: BenchResult, metric: str, a: str, b: str, fmt: str, sweep="
     if rows.empty:
         return ""
     r = rows.iloc[0]
+    _name, fmt, unit = _spec(result, metric)
     diff = f"{fmt.format(r['mean_difference'])} [{fmt.format(r['ci_low'])}, {fmt.format(r['ci_high'])}]"
+    diff += f" {unit}" if unit else ""
     if r["better"] == "neither":
         why = "too few splits for an interval" if not np.isfinite(r["ci_low"]) else "the interval contains zero"
         return f"no clear winner (direct − indirect = {diff}; {why})"
     return f"the {r['better']} route is better (direct − indirect = {diff})"
 
 
-def _pair_line(result, metric, a, b, what, fmt) -> str:
-    name = _METRIC_TEXT.get(metric, (metric, fmt))[0]
+def _pair_line(result, metric, a, b, what) -> str:
+    name, fmt, unit = _spec(result, metric)
     ra, rb = _base(result, metric, a), _base(result, metric, b)
-    return (f"{what}: {name} {a} {_fmt_interval(ra, fmt)}, {b} {_fmt_interval(rb, fmt)}; "
-            f"{_verdict(result, metric, a, b, fmt)}.")
+    return (f"{what}: {name} {a} {_fmt_interval(ra, fmt, unit)}, {b} {_fmt_interval(rb, fmt, unit)}; "
+            f"{_verdict(result, metric, a, b)}.")
 
 
 def _data_line(result: BenchResult) -> str:
@@ -128,6 +136,11 @@ def _data_line(result: BenchResult) -> str:
             f"{n_test} trial(s) that no route saw while fitting or choosing its settings.")
 
 
+def _steered_unit(result: BenchResult) -> str:
+    loop = result.traces.get("closed_loop", pd.DataFrame())
+    return _unit(result, loop["channel"].iloc[0]) if not loop.empty else "a.u."
+
+
 def _sweep_line(result, a, b, sweep, metric, what) -> str:
     s = result.sweeps
     part = s[(s["sweep"] == sweep) & (s["metric"] == metric)]
@@ -135,7 +148,7 @@ def _sweep_line(result, a, b, sweep, metric, what) -> str:
     if len(values) < 2:
         return ""
     lo, hi = values[0], values[-1]
-    fmt = _METRIC_TEXT[metric][1]
+    label, fmt, unit = _spec(result, metric)
     name = {"train_trials": "training trials", "noise_scale": "× the plant's noise",
             "horizon_steps": "steps of horizon"}[sweep]
     parts = []
@@ -144,9 +157,9 @@ def _sweep_line(result, a, b, sweep, metric, what) -> str:
         rb = part[(part["label"] == b) & np.isclose(part["value"], v)]
         if ra.empty or rb.empty:
             continue
-        parts.append(f"with {v:g} {name}: {a} {_fmt_interval(ra.iloc[0], fmt)} vs {b} "
-                     f"{_fmt_interval(rb.iloc[0], fmt)} — {_verdict(result, metric, a, b, fmt, sweep, v)}")
-    return f"{what} ({_METRIC_TEXT[metric][0]}): " + "; ".join(parts) + "." if parts else ""
+        parts.append(f"with {v:g} {name}: {a} {_fmt_interval(ra.iloc[0], fmt, unit)} vs {b} "
+                     f"{_fmt_interval(rb.iloc[0], fmt, unit)} — {_verdict(result, metric, a, b, sweep, v)}")
+    return f"{what} ({label}): " + "; ".join(parts) + "." if parts else ""
 
 
 def _safety_line(result: BenchResult) -> str:
@@ -194,20 +207,19 @@ def summarize(result: BenchResult) -> list[str]:
     lines = [_data_line(result)]
     for a in _labels(result, "indirect"):
         for b in _labels(result, "direct"):
-            lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead", "{:.3f}"))
-            lines.append(_pair_line(result, "r2_freerun", a, b, "Free-run prediction of whole held-out trials",
-                                    "{:.3f}"))
+            lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead"))
+            lines.append(_pair_line(result, "r2_freerun", a, b, "Free-run prediction of whole held-out trials"))
             if not result.control.empty:
-                lines.append(_pair_line(result, "tracking_rms", a, b, "Closed-loop control", "{:.3g}"))
-                lines.append(_pair_line(result, "energy_ua2", a, b, "Stimulation energy", "{:.3g}"))
+                lines.append(_pair_line(result, "tracking_rms", a, b, "Closed-loop control"))
+                lines.append(_pair_line(result, "energy_ua2", a, b, "Stimulation energy"))
             for sweep, metric, what in (("train_trials", "r2_last", "Amount of training data"),
                                         ("train_trials", "tracking_rms", "Control vs training data"),
                                         ("noise_scale", "r2_last", "Noise"),
                                         ("horizon_steps", "tracking_rms", "Horizon")):
                 lines.append(_sweep_line(result, a, b, sweep, metric, what))
-            lines.append(_pair_line(result, "fit_s", a, b, "Compute", "{:.2g} s"))
+            lines.append(_pair_line(result, "fit_s", a, b, "Compute"))
             if not result.control.empty:
-                lines.append(_pair_line(result, "solve_ms_median", a, b, "Compute per control step", "{:.2g} ms"))
+                lines.append(_pair_line(result, "solve_ms_median", a, b, "Compute per control step"))
     if not result.control.empty:
         lines += [_plant_line(result), _safety_line(result)]
     if not result.failures.empty:
@@ -364,22 +376,33 @@ def _fig_closed_loop(result, plt, colours):
                      ls="--" if label.startswith("direct") else "-")
     axes[0].set_ylabel(f"{ch} [{_unit(result, ch)}]")
     axes[0].legend(frameon=False, ncol=3, loc="upper right")
-    axes[0].set_title(f"Closed loop on the {result.plant} plant: steered output (first split)")
+    axes[0].set_title(f"Closed loop on the {result.plant.replace(' ', '-')} plant: steered output (first split)")
     lim = result.limits or {}
     names = list(lim.get("input_names") or [])
     for ax, label in zip(axes[1:], labels):
         inp = tr[(tr["signal"] == "input") & (tr["label"] == label)]
         for i, (name, g) in enumerate(inp.groupby("channel", sort=False)):
             ax.plot(g["time_s"], g["value"], lw=0.9, label=name, color=_INPUT_COLOURS[i % len(_INPUT_COLOURS)])
-        bounds = sorted({v for key in ("effective_min_ua", "effective_max_ua") for v in (lim.get(key) or [])
-                         if v is not None})
-        for v in bounds:
-            ax.axhline(v, color=_LIMIT, ls=":", lw=1.2)
+        _limit_lines(ax, lim)
         ax.set_ylabel("input [µA]")
         ax.set_title(f"{label}: stimulation (dotted: hard amplitude limits of the inputs)", fontsize=9)
         ax.legend(frameon=False, ncol=6, loc="upper right")
     axes[-1].set_xlabel("time in the closed loop [s]")
     return fig
+
+
+def _limit_lines(ax, lim: dict) -> None:
+    """Dotted lines at the hard amplitude limits, each labelled with the inputs it bounds."""
+    names = list(lim.get("input_names") or [])
+    at = {}
+    for key in ("effective_min_ua", "effective_max_ua"):
+        for name, v in zip(names, lim.get(key) or []):
+            if v is not None:
+                at.setdefault(float(v), []).append(name)
+    for v, who in sorted(at.items()):
+        ax.axhline(v, color=_LIMIT, ls=":", lw=1.2)
+        ax.annotate(", ".join(who), xy=(1.0, v), xycoords=("axes fraction", "data"), xytext=(3, 0),
+                    textcoords="offset points", va="center", ha="left", fontsize=7, color=_LIMIT)
 
 
 def _fig_tradeoff(result, plt, colours):
@@ -397,8 +420,7 @@ def _fig_tradeoff(result, plt, colours):
         xerr = None if not np.isfinite(xlo) else [[mx - xlo], [xhi - mx]]
         yerr = None if not np.isfinite(ylo) else [[my - ylo], [yhi - my]]
         ax.errorbar([mx], [my], xerr=xerr, yerr=yerr, fmt="o", color=colours[label], ms=7, capsize=3, label=label)
-    loop = result.traces.get("closed_loop", pd.DataFrame())
-    unit = _unit(result, loop["channel"].iloc[0]) if not loop.empty else "a.u."
+    unit = _steered_unit(result)
     ax.set_xlabel("stimulation energy Σu² over the run [µA²]")
     ax.set_ylabel(f"RMS tracking error [{unit}]")
     ax.set_title("Tracking error vs energy (dots: splits; marker: mean, 95 % interval)")
@@ -411,8 +433,7 @@ def _sweep_panels(result, plt, colours, sweep, xlabel, title, logx=False):
     part = s[s["sweep"] == sweep]
     if part.empty:
         return None
-    loop = result.traces.get("closed_loop", pd.DataFrame())
-    unit = _unit(result, loop["channel"].iloc[0]) if not loop.empty else "a.u."
+    unit = _steered_unit(result)
     ahead = result.settings.horizon_steps if sweep != "horizon_steps" else "N"
     metrics = [("r2_last", f"R² {ahead} steps ahead (held-out)"), ("tracking_rms", f"RMS tracking error [{unit}]")]
     metrics = [(m, t) for m, t in metrics if (part["metric"] == m).any()]
@@ -426,8 +447,12 @@ def _sweep_panels(result, plt, colours, sweep, xlabel, title, logx=False):
             ax.fill_between(g["value"], g["ci_low"], g["ci_high"], color=colours[label], alpha=0.18, lw=0)
         ax.set_xlabel(xlabel)
         ax.set_ylabel(ylabel)
-        if logx:
+        values = sorted(part["value"].unique())
+        if logx and min(values) > 0:
             ax.set_xscale("log", base=2)
+        ax.set_xticks(values)
+        ax.set_xticklabels([f"{v:g}" for v in values])
+        ax.minorticks_off()
     axes[0, 0].legend(frameon=False)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
