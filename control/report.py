@@ -546,12 +546,23 @@ pre{background:#f7f7f7;padding:.8em;overflow-x:auto;font-size:.8em}
 
 
 def _key_table(result: BenchResult) -> pd.DataFrame:
+    """The base-setting figures of every method, one row per metric with a readable name and unit."""
+    H, unit = result.settings.horizon_steps, _steered_unit(result)
+    names = {"r2_step1": "R², 1 step ahead", "r2_last": f"R², {H} steps ahead", "r2_mean": f"R², mean of steps 1–{H}",
+             "vaf_mean": f"VAF [%], mean of steps 1–{H}", "r2_freerun": "R², free run over whole trials",
+             "tracking_rms": f"closed loop: RMS tracking error [{unit}]",
+             "energy_ua2": "closed loop: stimulation energy Σu² [µA²]", "fit_s": "fit time [s]",
+             "predict_ms_per_window": "prediction time [ms per window]",
+             "solve_ms_median": "control solve time [ms per step, median]"}
     s = result.sweeps
-    base = s[s["sweep"] == "base"].copy()
+    base = s[(s["sweep"] == "base") & s["metric"].isin(list(names))].copy()
     base["value"] = [_fmt_interval(row, "{:.4g}") for _, row in base.iterrows()]
-    return base.pivot(index="metric", columns="label", values="value").reindex(
-        [m for m in ("r2_step1", "r2_last", "r2_mean", "vaf_mean", "r2_freerun", "tracking_rms", "energy_ua2",
-                     "fit_s", "predict_ms_per_window", "solve_ms_median") if m in set(base["metric"])])
+    table = base.pivot(index="metric", columns="label", values="value")
+    table = table.reindex(index=[m for m in names if m in table.index],
+                          columns=[m.label for m in result.settings.methods if m.label in table.columns])
+    table.index = [names[m] for m in table.index]
+    table.index.name, table.columns.name = None, None
+    return table
 
 
 def _html(result: BenchResult, figures: dict, lines: list, run_id: str) -> str:

@@ -23,6 +23,7 @@ from stimsteer.control.evaluation import (
 )
 from stimsteer.control.limits import StimLimits
 from stimsteer.control.plants import LinearNetworkPlant, record_session
+from stimsteer.control.report import summarize
 from stimsteer.sysid import Session, StateSpaceModel
 from stimsteer.sysid.exceptions import SessionError, StimsteerError
 
@@ -215,6 +216,10 @@ def test_corrupting_held_out_outputs_leaves_every_fit_unchanged(seed, rng):
     pd.testing.assert_frame_equal(clean.fits[cols], dirty.fits[cols])
     # ... while the held-out scores do see the corruption
     assert not np.allclose(clean.prediction["rmse"], dirty.prediction["rmse"])
+    # four methods give every indirect/direct pair a comparison, and the summary speaks of each pair
+    pairs = set(zip(clean.comparison["indirect"], clean.comparison["direct"]))
+    assert len(pairs) == 4
+    assert sum("indirect (subspace)" in line and "direct (hankel)" in line for line in summarize(clean)) >= 2
 
 
 # ------------------------------------------------------------------------------------------------ contents
@@ -243,6 +248,14 @@ def test_result_tables_cover_prediction_control_sweeps_and_timings(seed):
     prov = r.provenance
     assert prov["session"]["content_hash"] == session.content_hash() and prov["seed"] == st.seed
     assert prov["versions"]["numpy"] == np.__version__ and prov["settings"]["horizon_steps"] == 5
+
+
+def test_prediction_only_when_control_is_off(seed):
+    session, plant = _session(seed)
+    r = run_bench(session, _settings(control=None, train_trials=(2,)), plant=plant, n_workers=1, progress=False)
+    assert r.control.empty and r.traces["closed_loop"].empty and not r.prediction.empty
+    assert "tracking_rms" not in set(r.sweeps["metric"]) and "r2_last" in set(r.sweeps["metric"])
+    assert not any("Closed-loop" in line for line in summarize(r))
 
 
 def test_noise_sweep_rerecords_from_the_plant_with_scaled_noise(seed):
