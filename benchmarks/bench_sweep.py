@@ -77,8 +77,8 @@ def _demo_command(out: Path):
     """The command timed end to end: `stimsteer demo` once it runs the benchmark, else `stimsteer bench`."""
     probe = subprocess.run([sys.executable, "-m", "stimsteer.control.cli", "demo", "--help"], capture_output=True,
                            text=True)
-    wired = probe.returncode == 0 and (ROOT / "control" / "demo.py").is_file() and \
-        "evaluation" in (ROOT / "control" / "demo.py").read_text(encoding="utf-8")
+    demo = ROOT / "control" / "demo.py"
+    wired = probe.returncode == 0 and demo.is_file() and '"bench"' in demo.read_text(encoding="utf-8")
     if wired:
         return [sys.executable, "-m", "stimsteer.control.cli", "demo", "--out", str(out)], "stimsteer demo"
     cmd = [sys.executable, "-m", "stimsteer.control.cli", "bench", str(DEMO / "demo_session.h5"), "--plant",

@@ -548,8 +548,9 @@ pre{background:#f7f7f7;padding:.8em;overflow-x:auto;font-size:.8em}
 def _key_table(result: BenchResult) -> pd.DataFrame:
     """The base-setting figures of every method, one row per metric with a readable name and unit."""
     H, unit = result.settings.horizon_steps, _steered_unit(result)
-    names = {"r2_step1": "R², 1 step ahead", "r2_last": f"R², {H} steps ahead", "r2_mean": f"R², mean of steps 1–{H}",
-             "vaf_mean": f"VAF [%], mean of steps 1–{H}", "r2_freerun": "R², free run over whole trials",
+    names = {"r2_step1": "R², 1 step ahead", "r2_last": f"R², {H} steps ahead",
+             "r2_mean": f"R², mean of steps 1–{H}", "vaf_mean": f"VAF [%], mean of steps 1–{H}",
+             "r2_freerun": "R², free run over whole trials",
              "tracking_rms": f"closed loop: RMS tracking error [{unit}]",
              "energy_ua2": "closed loop: stimulation energy Σu² [µA²]", "fit_s": "fit time [s]",
              "predict_ms_per_window": "prediction time [ms per window]",
