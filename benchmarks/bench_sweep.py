@@ -6,8 +6,8 @@ Measured in one run:
   the speed-up of 2 workers over 1 (baseline: 1 worker, the same tasks in this process), target >= 1.7 on 2 cores;
   the two runs must give identical numbers (checked, not timed);
 * the wall time of ``stimsteer demo --out DIR`` end to end in a fresh process (target: under 2 minutes on 2
-  cores). While the demo command does not run the benchmark yet, ``stimsteer bench`` on the demo session with its
-  plant and limits is timed instead, and the script says so.
+  cores). If the demo command fails, ``stimsteer bench`` on the demo session with its plant and limits (the
+  demo's benchmark step) is timed instead, and the script says so.
 
 Run from the repository root::
 
@@ -73,17 +73,30 @@ def _timed(session, plant, limits, settings, n_workers):
     return time.perf_counter() - t0, _cpu_s() - c0, result
 
 
-def _demo_command(out: Path):
-    """The command timed end to end: `stimsteer demo` once it runs the benchmark, else `stimsteer bench`."""
-    probe = subprocess.run([sys.executable, "-m", "stimsteer.control.cli", "demo", "--help"], capture_output=True,
-                           text=True)
-    demo = ROOT / "control" / "demo.py"
-    wired = probe.returncode == 0 and demo.is_file() and '"bench"' in demo.read_text(encoding="utf-8")
-    if wired:
-        return [sys.executable, "-m", "stimsteer.control.cli", "demo", "--out", str(out)], "stimsteer demo"
-    cmd = [sys.executable, "-m", "stimsteer.control.cli", "bench", str(DEMO / "demo_session.h5"), "--plant",
-           str(DEMO / "demo_plant.h5"), "--limits", str(DEMO / "demo_limits.toml"), "--out", str(out)]
-    return cmd, "stimsteer bench on the demo session (the demo command does not run the benchmark yet)"
+def _bench_command(out: Path) -> list:
+    return [sys.executable, "-m", "stimsteer.control.cli", "bench", str(DEMO / "demo_session.h5"), "--plant",
+            str(DEMO / "demo_plant.h5"), "--limits", str(DEMO / "demo_limits.toml"), "--out", str(out)]
+
+
+def _time_command(cmd) -> tuple[float, subprocess.CompletedProcess]:
+    t0 = time.perf_counter()
+    done = subprocess.run(cmd, capture_output=True, text=True)
+    return time.perf_counter() - t0, done
+
+
+def _time_demo() -> None:
+    """Wall time of `stimsteer demo` in a fresh process; of `stimsteer bench` on the demo data if the demo fails."""
+    with tempfile.TemporaryDirectory() as tmp:
+        wall, done = _time_command([sys.executable, "-m", "stimsteer.control.cli", "demo", "--out", f"{tmp}/demo"])
+        if done.returncode == 0:
+            print(f"wall time of stimsteer demo, end to end in a fresh process: {wall:.1f} s   (target < 120 s)")
+            return
+        last = (done.stderr.strip().splitlines() or ["(no message)"])[-1]
+        print(f"stimsteer demo failed (exit {done.returncode}: {last}); timing its bench step alone instead")
+        wall, done = _time_command(_bench_command(Path(tmp) / "bench"))
+        status = "" if done.returncode == 0 else f" (FAILED, exit {done.returncode})"
+        print(f"wall time of stimsteer bench on the demo session (plant and limits), fresh process: {wall:.1f} s"
+              f"{status}   (the demo's target < 120 s)")
 
 
 def main(argv=None) -> int:
@@ -103,22 +116,14 @@ def main(argv=None) -> int:
           f"1-minute load average before the runs {load:.1f}")
     print(f"sweep: {n_tasks} tasks ({args.splits} splits x {n_tasks // (2 * args.splits)} sweep points x 2 routes), "
           f"{args.steps} closed-loop steps each, demo limits")
-    print(f"1 worker (baseline): {t1:.1f} s; 2 workers: {t2:.1f} s")
+    print(f"1 worker (baseline): {t1:.1f} s; 2 workers: {t2:.1f} s, running "
+          f"{r2.tasks['total_s'].sum() / t2:.2f} tasks at a time on average")
     print(f"speed-up of 2 workers over 1: {t1 / t2:.2f}   (target >= 1.7 on 2 cores)")
     print(f"CPU seconds of the tasks: {c1:.1f} (1 worker), {c2:.1f} (2 workers); cores kept busy: {c1 / t1:.2f} and "
           f"{c2 / t2:.2f} (a speed-up needs the second core to be free of other work)")
     print(f"identical numbers with 1 and 2 workers: {_same_numbers(r1, r2)}")
-    if args.no_demo:
-        return 0
-    with tempfile.TemporaryDirectory() as tmp:
-        cmd, what = _demo_command(Path(tmp) / "out")
-        t0 = time.perf_counter()
-        done = subprocess.run(cmd, capture_output=True, text=True)
-        wall = time.perf_counter() - t0
-    if done.returncode != 0:
-        print(f"{what} failed (exit {done.returncode}): {done.stderr.strip()}")
-        return 1
-    print(f"wall time of {what}, end to end in a fresh process: {wall:.1f} s   (target < 120 s on 2 cores)")
+    if not args.no_demo:
+        _time_demo()
     return 0
 
 
