@@ -690,7 +690,7 @@ def _trace_channels(ctx: _Context, train: Session) -> list:
 
 
 def _prediction_trace(predictor, test: Session, H: int, channels) -> pd.DataFrame:
-    """Recorded outputs of the first scorable held-out trial and their H-step predictions, restarted every H samples.
+    """Recorded outputs of the longest valid held-out run and their H-step predictions, restarted every H samples.
 
     Each block ``[t, t + H)`` is predicted from the measured window ``[t − P, t)`` only.
     """
