@@ -34,9 +34,9 @@ class _Parser(argparse.ArgumentParser):
 def _add_inspect(sub):
     p = sub.add_parser("inspect", help="summarise a session: channels, rate, trials, gaps, flat or saturated channels")
     p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
-    p.add_argument("--past", type=int, default=10, metavar="STEPS",
+    p.add_argument("--past-steps", dest="past", type=int, default=10, metavar="N",
                    help="past window of the direct route, in samples, for the excitation check (default 10)")
-    p.add_argument("--horizon", type=int, default=20, metavar="STEPS",
+    p.add_argument("--horizon-steps", dest="horizon", type=int, default=20, metavar="N",
                    help="prediction horizon of the direct route, in samples, for the excitation check (default 20)")
     p.add_argument("--states", type=int, default=None, metavar="N",
                    help="state dimension assumed by the excitation check (default: the past window)")
@@ -88,8 +88,10 @@ def _add_fit(sub):
     p.add_argument("--method", required=True, choices=["arx", "subspace", "lsq", "hankel"],
                    help="indirect: arx, subspace; direct: lsq, hankel")
     p.add_argument("--out", required=True, help="model file to write (HDF5)")
-    p.add_argument("--horizon", type=int, help="prediction horizon in samples (scored; direct methods fit it)")
-    p.add_argument("--past", type=int, help="past window in samples (arx: output and input lags)")
+    p.add_argument("--horizon-steps", dest="horizon", type=int, metavar="N",
+                   help="prediction horizon in samples (scored; direct methods fit it)")
+    p.add_argument("--past-steps", dest="past", type=int, metavar="N",
+                   help="past window in samples (arx: output and input lags)")
     p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
     p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
@@ -280,7 +282,7 @@ def _add_plan(sub):
                    "a constant 'name=value,name=value'; outputs not named are not tracked")
     p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
     p.add_argument("--out", required=True, help="output folder (must be new or empty, unless --force)")
-    p.add_argument("--horizon", type=int, dest="horizon_steps", metavar="N",
+    p.add_argument("--horizon-steps", type=int, dest="horizon_steps", metavar="N",
                    help="planning horizon in samples (default: the target table's rows, else the predictor's horizon)")
     p.add_argument("--from-trial", type=_trial_ref, metavar="SESSION:INDEX",
                    help="plan from the end of this recorded trial (default: from rest)")

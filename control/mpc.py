@@ -1488,7 +1488,7 @@ def parse_target(spec, output_names, horizon_steps=None):
             if not np.isfinite(values[name]):
                 raise SessionError(f"target value for {name!r} must be finite; got {val!r}.")
         if horizon_steps is None:
-            raise SessionError("a constant target has no length; give the horizon (--horizon).")
+            raise SessionError("a constant target has no length; give the horizon (--horizon-steps).")
         row = np.array([values.get(n, 0.0) for n in output_names])
         return np.tile(row, (int(horizon_steps), 1)), np.array([n in values for n in output_names])
     return _target_table(Path(text), output_names, horizon_steps)

@@ -29,7 +29,7 @@ def session_file(rng, tmp_path):
 def model_file(session_file, tmp_path):
     out = tmp_path / "arx.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "arx", "--out", str(out),
-                 "--past", "2", "--horizon", "5", "--seed", "3"]) == 0
+                 "--past-steps", "2", "--horizon-steps", "5", "--seed", "3"]) == 0
     return out
 
 
@@ -61,7 +61,7 @@ def test_fit_subspace(session_file, tmp_path, capsys):
     pytest.importorskip("stimsteer.sysid.subspace")
     out = tmp_path / "sub.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "subspace", "--out", str(out),
-                 "--past", "4"]) == 0
+                 "--past-steps", "4"]) == 0
     assert "singular_value" in capsys.readouterr().out
     assert load_predictor(out)[1]["method"] == "subspace"
 
@@ -101,7 +101,7 @@ def test_fit_wrong_route_method_pair_and_missing_file(session_file, tmp_path, ca
 
 def test_fit_lags_longer_than_trials(session_file, tmp_path, capsys):
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "arx", "--out",
-                 str(tmp_path / "m.h5"), "--past", "400"]) == 2
+                 str(tmp_path / "m.h5"), "--past-steps", "400"]) == 2
     one_error_line(capsys, "longest valid run has 150")
 
 

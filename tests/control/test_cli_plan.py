@@ -52,7 +52,7 @@ def files(tmp_path, rng):
 def test_plan_writes_table_pattern_figure_and_summary(files, capsys):
     d, model = files
     rc = main(["plan", str(d / "model.h5"), "--target", "lfp_0=1.5", "--limits", str(d / "limits.toml"),
-               "--out", str(d / "out"), "--horizon", "8"])
+               "--out", str(d / "out"), "--horizon-steps", "8"])
     out = capsys.readouterr().out
     assert rc == 0 and CAUTION in out and "status optimal" in out
     table = pd.read_csv(d / "out" / "plan.csv")
@@ -84,9 +84,9 @@ def test_plan_from_a_recorded_trial_with_a_target_table(files, capsys):
 @pytest.mark.parametrize(
     "target, extra, match",
     [
-        ("lfp_9=1", ["--horizon", "5"], "must be <output>=<value>"),
+        ("lfp_9=1", ["--horizon-steps", "5"], "must be <output>=<value>"),
         ("lfp_0=1", [], "give the horizon"),
-        ("lfp_0=big", ["--horizon", "5"], "is not a number"),
+        ("lfp_0=big", ["--horizon-steps", "5"], "is not a number"),
     ],
 )
 def test_plan_errors_are_one_line_with_exit_code_2(files, capsys, target, extra, match):
@@ -101,7 +101,7 @@ def test_plan_refuses_limits_for_other_inputs(files, capsys):
     d, _ = files
     (d / "other.toml").write_text("[inputs.site_x]\namplitude_min_ua = 0\namplitude_max_ua = 1\n")
     rc = main(["plan", str(d / "model.h5"), "--target", "lfp_0=1", "--limits", str(d / "other.toml"),
-               "--out", str(d / "out"), "--horizon", "4"])
+               "--out", str(d / "out"), "--horizon-steps", "4"])
     assert rc == 2 and "do not match the model's inputs" in capsys.readouterr().err
 
 

@@ -156,9 +156,9 @@ def test_inspect_command_prints_the_excitation_report(rng, tmp_path, capsys):
 
     path = tmp_path / "pulses.h5"
     save_session(_pulse_session(rng, period=7), path)
-    assert main(["inspect", str(path), "--past", "10", "--horizon", "20", "--states", "1"]) == 0
+    assert main(["inspect", str(path), "--past-steps", "10", "--horizon-steps", "20", "--states", "1"]) == 0
     out = capsys.readouterr().out
     assert "order per trial: 7, 7" in out
     assert "the input excites order 7 but the direct route needs 31 for this horizon" in out
-    assert main(["inspect", str(path), "--past", "0"]) == 2
+    assert main(["inspect", str(path), "--past-steps", "0"]) == 2
     assert "past_steps must be a whole number of samples >= 1; got 0" in capsys.readouterr().err
