@@ -83,6 +83,27 @@ def fit_arx(path: Path, lags: int):
         return RidgeArx(output_lags=lags, input_lags=lags, delay_samples=1).fit(f)
 
 
+def read_pass(path: Path, est) -> None:
+    """Only the reads of the fit: the same windows, decompressed and discarded."""
+    L, rows = est.past_steps_, int(est.chunk_samples)
+    with open_session_file(path) as f:
+        for a, b in f.segments(min_length=L + 1):
+            for k0 in range(a + L, b, rows):
+                f.read(k0 - L, min(b, k0 + rows))
+
+
+def uncompressed_copy(path: Path, out: Path) -> Path:
+    """The same session file with its datasets stored contiguously, without gzip (a diagnostic, same layout)."""
+    import h5py
+
+    with h5py.File(path, "r") as src, h5py.File(out, "w") as dst:
+        dst.attrs.update(src.attrs)
+        for name, ds in src.items():
+            new = dst.create_dataset(name, data=ds[()])
+            new.attrs.update(ds.attrs)
+    return out
+
+
 def gram_and_cholesky(X: np.ndarray):
     G = X.T @ X
     G[np.diag_indices_from(G)] += 1e-12 * np.trace(G) / G.shape[0]  # as ridge would; keeps Cholesky defined
@@ -160,7 +181,8 @@ def main(argv=None) -> int:
         return 0
     L = args.lags
     print(f"bench_fit: {args.samples} samples, {args.outputs} outputs, {args.inputs} inputs, {args.trials} trials, "
-          f"{L} lags; {platform.machine()} {os.cpu_count()} CPU(s), numpy {np.__version__}")
+          f"{L} lags; {platform.machine()} {os.cpu_count()} CPU(s), numpy {np.__version__}; load average "
+          f"{os.getloadavg()[0]:.2f}")
     with tempfile.TemporaryDirectory(prefix="stimsteer_bench_fit_") as tmp:
         path = Path(tmp) / "session.h5"
         session = make_session(args.samples, args.outputs, args.inputs, args.trials, args.seed)
@@ -170,11 +192,17 @@ def main(argv=None) -> int:
         report_arx(session, path, L, args.repeat)
         if not args.skip_subspace:
             report_subspace(session, path, L, args.repeat)
+    print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 
 
 def report_arx(session, path, L, repeat):
     t_fit, est = best_of(repeat, lambda: fit_arx(path, L))
+    t_read, _ = best_of(repeat, lambda: read_pass(path, est))
+    raw = uncompressed_copy(path, path.with_name("session_uncompressed.h5"))
+    t_raw, _ = best_of(repeat, lambda: fit_arx(raw, L))
+    raw.unlink()
+    t_mem, _ = best_of(repeat, lambda: RidgeArx(output_lags=L, input_lags=L, delay_samples=1).fit(session))
     X = design_matrix(session, L)
     t_base, _ = best_of(repeat, lambda: gram_and_cholesky(X))
     design_bytes = X.nbytes
@@ -184,6 +212,9 @@ def report_arx(session, path, L, repeat):
     print(f"  baseline X.T @ X + Cholesky on the materialised {est.n_rows_} x {est.coef_.shape[1]} design: "
           f"{t_base:.2f} s (best of {repeat})")
     print(f"  RATIO fit time / baseline = {t_fit / t_base:.2f}   (target <= 1.0)")
+    print(f"    diagnostics: reading the same windows alone {t_read:.2f} s ({t_read / t_base:.2f} x baseline); "
+          f"fit from an uncompressed copy {t_raw:.2f} s ({t_raw / t_base:.2f}); from memory {t_mem:.2f} s "
+          f"({t_mem / t_base:.2f})")
     traced = tracemalloc_peak(path, L)
     rss = rss_peak_child(path, L)
     mb = 1e6

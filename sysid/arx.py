@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 
 from .exceptions import ConditioningWarning, ExcitationError, SessionError, check_fitted
+from .session import Session
 from .statespace import StateSpaceModel
 
 __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
@@ -450,8 +451,8 @@ class RidgeArx:
     With an intercept, the resting output is ``y_rest = (I − Σ A_i)⁻¹ c``; ``model_`` describes ``y − y_rest``
     driven by ``u`` in absolute units (zero input = no stimulation).
 
-    The streaming pass reads up to two chunks ahead in a background thread and, meanwhile, runs BLAS with one
-    thread fewer than usual (process-wide, restored afterwards) so that reading and the Gram products share the
+    From a file-backed source the streaming pass reads up to two chunks ahead in a background thread and, meanwhile,
+    runs BLAS with one thread fewer than usual (process-wide, restored afterwards) so that reading and the Gram products share the
     cores instead of oversubscribing them. Peak memory is about three chunks of ``chunk_samples × (p + m)`` values.
 
     References
@@ -568,8 +569,15 @@ class RidgeArx:
         hi = np.full(prob.m, -np.inf)
         shift = None
         chunks = _chunks(pieces, int(self.chunk_samples))
-        with _core_left_for_reading():
-            for (k0, k1, f), (B, u) in _prefetched(chunks, lambda c: _read_z(session, c[0] - L, c[1])):
+
+        def load(chunk):
+            return _read_z(session, chunk[0] - L, chunk[1])
+
+        # In-memory reads are plain copies: only a file-backed source gains from reading ahead on its own core.
+        in_memory = isinstance(session, Session)
+        stream = ((c, load(c)) for c in chunks) if in_memory else _prefetched(chunks, load)
+        with contextlib.nullcontext() if in_memory else _core_left_for_reading():
+            for (k0, k1, f), (B, u) in stream:
                 lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
                 if shift is None:
                     # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.
