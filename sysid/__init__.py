@@ -1,38 +1,90 @@
 """stimsteer.sysid: from recorded stimulation sessions to predictors (the identification layer)."""
 
-from .exceptions import (
-    ConditioningWarning,
-    ExcitationError,
-    ExcitationWarning,
-    FileFormatError,
-    InfeasiblePlanError,
-    LimitsError,
-    NotFittedError,
-    SessionError,
-    SolverError,
-    StimsteerError,
-    StimsteerWarning,
-    UnstableModelError,
-)
-from .session import Session, TrialSplit, TrialWindow
+from .exceptions import StimsteerError, SessionError, FileFormatError, NotFittedError, UnstableModelError, ExcitationError, LimitsError, InfeasiblePlanError, SolverError, StimsteerWarning, ExcitationWarning, ConditioningWarning
+from .session import Session, TrialWindow, TrialSplit
+from .io import load_session, save_session, open_session_file, SessionFile
+from .prep import detrend, filter_session, resample_session, SessionScaler, blank_artifacts
+from .quality import describe_session, SessionSummary
+from .excitation import excitation_report, ExcitationReport, pe_order, required_order
+from .hankel import block_hankel, mosaic_hankel, page_matrix, mosaic_page, session_hankel, session_page
+from .arx import RidgeArx, arx_to_state_space
+from .subspace import SubspaceId
 from .statespace import StateSpaceModel, kalman_gain
+from .datadriven import LsqPredictor, HankelPredictor, HankelBlocks
+from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung_box, input_residual_xcorr
+from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
+from .schedule import design_schedule, Schedule, save_schedule, load_schedule
+from .storage import save_predictor, load_predictor
+from .routes import fit_route, FitResult, METHODS
 
 __all__ = [
     "ConditioningWarning",
     "ExcitationError",
+    "ExcitationReport",
     "ExcitationWarning",
     "FileFormatError",
+    "FitResult",
+    "HankelBlocks",
+    "HankelPredictor",
     "InfeasiblePlanError",
     "LimitsError",
+    "LsqPredictor",
+    "METHODS",
     "NotFittedError",
+    "RidgeArx",
+    "Schedule",
+    "Scores",
     "Session",
     "SessionError",
+    "SessionFile",
+    "SessionScaler",
+    "SessionSummary",
     "SolverError",
     "StateSpaceModel",
     "StimsteerError",
     "StimsteerWarning",
+    "SubspaceId",
     "TrialSplit",
     "TrialWindow",
     "UnstableModelError",
+    "arx_to_state_space",
+    "blank_artifacts",
+    "block_hankel",
+    "controllability",
+    "controllability_gramian",
+    "controlled_response",
+    "describe_session",
+    "design_schedule",
+    "detrend",
+    "excitation_report",
+    "filter_session",
+    "fit_route",
+    "freerun_scores",
+    "impulse_responses",
+    "input_residual_xcorr",
     "kalman_gain",
+    "kstep_scores",
+    "ljung_box",
+    "load_predictor",
+    "load_schedule",
+    "load_session",
+    "minimum_energy_transition",
+    "mosaic_hankel",
+    "mosaic_page",
+    "nrmse",
+    "open_session_file",
+    "page_matrix",
+    "pattern_transition",
+    "pe_order",
+    "r2",
+    "rank_sites",
+    "required_order",
+    "resample_session",
+    "save_predictor",
+    "save_schedule",
+    "save_session",
+    "session_hankel",
+    "session_page",
+    "site_controllability",
+    "vaf",
 ]
