@@ -1,0 +1,48 @@
+"""`stimsteer demo`: the whole job on the shipped session, end to end, as a new user runs it."""
+
+import json
+
+import pytest
+
+from stimsteer.control.cli import CAUTION, main
+from stimsteer.control.demo import demo_steps
+
+
+def test_demo_steps_cover_every_task_of_the_job():
+    names = [argv[0] for _, argv in demo_steps("s.h5", "p.h5", "l.toml", "out")]
+    assert names == ["inspect", "fit", "fit", "predict", "predict", "network", "plan", "plan", "schedule", "bench"]
+
+
+def test_demo_refuses_a_folder_that_holds_another_run(tmp_path, capsys):
+    (tmp_path / "old.txt").write_text("another run")
+    assert main(["demo", "--out", str(tmp_path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--force" in err[0]
+    assert (tmp_path / "old.txt").read_text() == "another run"
+
+
+@pytest.mark.slow
+def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(tmp_path, capsys):
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert f"open the report: {out / 'report' / 'report.html'}" in printed
+    assert printed.rstrip().endswith(CAUTION)
+    html = (out / "report" / "report.html").read_text(encoding="utf-8")
+    assert "research software, not a medical device" in html
+    for route in ("indirect", "direct"):
+        assert (out / f"predict_{route}" / "prediction.png").stat().st_size > 0
+        plan = json.loads((out / f"plan_{route}" / "plan.json").read_text())
+        assert plan["status"] == "optimal"
+        # the plan file itself must stay inside the hard window it prints beside every step
+        import pandas as pd
+
+        table = pd.read_csv(out / f"plan_{route}" / "plan.csv")
+        for col in [c for c in table.columns if c.startswith("in:")]:
+            name = col[3:].split(" [")[0]
+            low = table[[c for c in table.columns if c.startswith(f"lower:{name} ")][0]]
+            high = table[[c for c in table.columns if c.startswith(f"upper:{name} ")][0]]
+            assert (table[col] >= low - 1e-9).all() and (table[col] <= high + 1e-9).all()
+    assert (out / "network" / "site_ranking.png").is_file()
+    assert (out / "next_schedule.csv").is_file()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind
