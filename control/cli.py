@@ -10,6 +10,7 @@ Register a new pair in ``_SUBCOMMANDS``.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 from ..sysid.exceptions import StimsteerError
@@ -384,14 +385,21 @@ def main(argv=None) -> int:
     try:
         return int(run(args) or 0)
     except StimsteerError as exc:
-        sys.stderr.write(f"stimsteer {args.command}: error: {exc}\n")
-        return 2
-    except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
-        sys.stderr.write(f"stimsteer {args.command}: error: {exc.strerror or exc}: {exc.filename}\n")
-        return 2
+        return _fail(args.command, str(exc), 2)
+    except (FileNotFoundError, IsADirectoryError, NotADirectoryError, PermissionError) as exc:
+        return _fail(args.command, f"{exc.strerror or exc}: {exc.filename}", 2)
     except KeyboardInterrupt:
-        sys.stderr.write("stimsteer: interrupted; no partial output was kept.\n")
-        return 130
+        return _fail(args.command, "interrupted; no partial output was kept.", 130)
+    except Exception as exc:  # a bug, not bad input: still one line, with the way to see the traceback
+        if os.environ.get("STIMSTEER_DEBUG"):
+            raise
+        return _fail(args.command, f"internal error ({type(exc).__name__}: {exc}); please report it with the "
+                     "command you ran (set STIMSTEER_DEBUG=1 to see the traceback).", 1)
+
+
+def _fail(command: str, message: str, code: int) -> int:
+    sys.stderr.write(f"stimsteer {command}: error: {' '.join(message.split())}\n")
+    return code
 
 
 if __name__ == "__main__":  # pragma: no cover

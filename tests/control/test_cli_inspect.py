@@ -63,3 +63,19 @@ def test_missing_file_gives_one_line_and_exit_code_2(tmp_path, capsys):
     assert main(["inspect", str(tmp_path / "nope.h5")]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "nope.h5" in err and "Traceback" not in err
+
+
+def test_an_unexpected_failure_is_one_line_with_exit_1_and_debug_shows_the_traceback(monkeypatch, capsys):
+    # a bug (not bad input) must still not dump a traceback on a user (common practice, no source)
+    from stimsteer.control import cli
+
+    def broken(args):
+        raise ZeroDivisionError("boom\nsecond line")
+
+    monkeypatch.setitem(cli._SUBCOMMANDS, "inspect", (cli._add_inspect, broken))
+    assert cli.main(["inspect", "whatever.h5"]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "internal error (ZeroDivisionError: boom second line)" in err
+    monkeypatch.setenv("STIMSTEER_DEBUG", "1")
+    with pytest.raises(ZeroDivisionError):
+        cli.main(["inspect", "whatever.h5"])
