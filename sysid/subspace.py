@@ -478,7 +478,7 @@ class SubspaceId:
         self.feedthrough = feedthrough
         self.order_selection = order_selection
 
-    def get_params(self) -> dict:
+    def get_params(self, deep: bool = True) -> dict:
         return {k: getattr(self, k) for k in ("past_steps", "future_steps", "order", "max_order", "weighting",
                                               "feedthrough", "order_selection")}
 
