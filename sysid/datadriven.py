@@ -289,7 +289,7 @@ class _DirectPredictor:
             e = np.asarray(score_fold(train, val, weights))
             errors += e
             counts += val.n_columns
-            cols[f"fold_{i}"] = e
+            cols[f"fold_{i}"] = e / max(val.n_columns * weights.size, 1)  # same normalisation as the mean
         mean = errors / max(counts * weights.size, 1)
         mean = np.where(np.isfinite(mean), mean, np.inf)
         best = int(np.flatnonzero(mean <= mean.min() * (1 + 1e-12))[-1])
@@ -406,7 +406,7 @@ class LsqPredictor(_DirectPredictor):
     ridge_strength_, data_scale_ : float
     cv_table_ : pandas.DataFrame
         ``candidate``, ``validation_error`` (mean squared error per predicted value on held-out folds, each output
-        scaled by its standard deviation), ``fold_i`` (summed errors per fold).
+        scaled by its standard deviation, pooled over folds), ``fold_i`` (the same error on fold ``i`` alone).
     past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
     cv_scheme_ : str
         ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).

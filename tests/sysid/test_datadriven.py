@@ -230,14 +230,15 @@ def test_fold_errors_equal_explicit_held_out_predictions(rng):
         for i, a in enumerate(alphas):
             sub = LsqPredictor(past_steps=3, horizon_steps=4, alphas=[a]).fit(s.select_trials(train))
             # the strength is relative to the training data's scale, as inside the fold
-            err = 0.0
+            err, count = 0.0, 0
             for t in val:
                 lo, hi = s.trials[t]
                 Hu, Hy = block_hankel(s.u[lo:hi], 7), block_hankel(s.y[lo:hi], 7)
                 D = np.vstack([Hu[:6], Hy[:6], Hu[6:]])
                 E = Hy[6:] - np.hstack([sub.Kp_, sub.Kf_]) @ D
                 err += np.sum((w[:, None] * E) ** 2)
-            assert lsq.cv_table_[f"fold_{f}"].iloc[i] == pytest.approx(err, rel=1e-8)
+                count += E.size
+            assert lsq.cv_table_[f"fold_{f}"].iloc[i] == pytest.approx(err / count, rel=1e-8)
     best = lsq.cv_table_["validation_error"].idxmin()
     assert lsq.alpha_ == lsq.cv_table_["candidate"].iloc[best]
     assert lsq.ridge_strength_ == pytest.approx(lsq.alpha_ * lsq.data_scale_)
