@@ -240,11 +240,16 @@ class Scores:
         return cls(tuple(d["output_names"]), kstep, freerun, int(d["horizon_steps"]), int(d["stride_steps"]),
                    int(d["n_windows"]), int(d["n_segments"]))
 
-    def to_text(self) -> str:
-        """A short plain-text table of :meth:`summary`."""
+    def to_text(self, max_steps: int = 6) -> str:
+        """A short plain-text table of :meth:`summary`: at most ``max_steps`` k-step rows (first, last and evenly
+        spaced ones between; the full table is :meth:`summary`), then the free run."""
         s = self.summary()
         if s.empty:
             return "(no scores)"
+        kstep = np.flatnonzero(s.iloc[:, 0].astype(str).str.endswith("-step").to_numpy())
+        if kstep.size > max(int(max_steps), 2):
+            keep = set(kstep[np.unique(np.round(np.linspace(0, kstep.size - 1, int(max_steps))).astype(int))])
+            s = s.iloc[[i for i in range(len(s)) if i not in set(kstep) or i in keep]]
         return s.to_string(index=False, float_format=lambda v: f"{v:.4g}")
 
 
