@@ -18,15 +18,14 @@ file, so memory does not grow with the length of the recording.
 from __future__ import annotations
 
 import contextlib
-import queue
-import threading
 import warnings
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
 
 from .exceptions import ConditioningWarning, ExcitationError, SessionError, check_fitted
-from .session import Session
 from .statespace import StateSpaceModel
 
 __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
@@ -148,71 +147,55 @@ def _chunks(pieces, chunk_rows: int):
             yield k0, min(b, k0 + chunk_rows), f
 
 
-_READ_AHEAD = 2  # chunks read ahead of the one being accumulated: bounds memory at about 3 chunks
-
-
-def _prefetched(items, load):
-    """Yield ``(item, load(item))`` in order, reading up to ``_READ_AHEAD`` items ahead in a background thread.
-
-    File reads (HDF5 decompression holds the GIL) then overlap with the Gram products (BLAS releases it). An error
-    in the reader is raised here; leaving the loop early stops the reader.
-    """
-    q: queue.Queue = queue.Queue(maxsize=_READ_AHEAD)
-    stop = threading.Event()
-
-    def put(entry):
-        while not stop.is_set():
-            try:
-                q.put(entry, timeout=0.05)
-                return
-            except queue.Full:
-                continue
-
-    def work():
-        try:
-            for item in items:
-                if stop.is_set():
-                    return
-                put(("item", (item, load(item))))
-        except BaseException as exc:  # handed to the consumer, which re-raises it
-            put(("error", exc))
-            return
-        put(("done", None))
-
-    reader = threading.Thread(target=work, name="stimsteer-arx-reader", daemon=True)
-    reader.start()
-    try:
-        while True:
-            kind, payload = q.get()
-            if kind == "done":
-                return
-            if kind == "error":
-                raise payload
-            yield payload
-    finally:
-        stop.set()
-        reader.join()
-
-
 @contextlib.contextmanager
-def _core_left_for_reading():
-    """Run BLAS on one thread fewer than usual while the reader thread decompresses the next chunk.
+def _single_threaded_blas():
+    """Yield the number of worker threads to use, with BLAS limited to one thread meanwhile.
 
-    With as many BLAS threads as cores, the extra reader thread oversubscribes the CPU and multi-threaded BLAS
-    slows down many times over (seen on 2 cores). The limit is process-wide for the duration of the pass and is
-    restored afterwards; without threadpoolctl (a scikit-learn dependency) nothing is changed.
+    The Gram products of one chunk are small (``(p+m) × (p+m)`` outputs): several chunks computed at once, each with
+    single-threaded BLAS, use the cores better than one chunk at a time with multi-threaded BLAS, and do not
+    oversubscribe the CPU while the main thread reads (multi-threaded OpenBLAS slows down many times over when a
+    busy extra thread competes for its cores). The limit is process-wide for the duration of the pass and restored
+    afterwards; without threadpoolctl (a scikit-learn dependency) one worker is used and nothing is changed.
     """
     try:
         from threadpoolctl import threadpool_info, threadpool_limits
     except ImportError:  # pragma: no cover - scikit-learn installs it
-        yield
+        yield 1
         return
     n = max((int(i.get("num_threads") or 1) for i in threadpool_info() if i.get("user_api") == "blas"), default=1)
-    if n <= 1:
-        yield
-        return
-    with threadpool_limits(limits=n - 1, user_api="blas"):
-        yield
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield max(1, n)
+
+
+def _chunk_moments(B: np.ndarray, shift: np.ndarray, n_lags: int, n_outputs: int):
+    """Worker task: input range, shifted in place, then the lagged moments of one chunk."""
+    u = B[:, n_outputs:]
+    lo, hi = u.min(axis=0), u.max(axis=0)
+    B -= shift
+    s, W = _lagged_moments(B, n_lags)
+    return s, W, lo, hi
+
+
+def _parallel_pass(chunks, load, task, n_workers: int):
+    """Yield ``(chunk, task(load(chunk)))`` in chunk order; loads run here, tasks on ``n_workers`` threads.
+
+    Reading (HDF5 decompression holds the GIL) overlaps with the tasks (BLAS releases it). At most
+    ``n_workers + 1`` loaded chunks wait or run at a time, which bounds memory; results come back in order, so the
+    sums they feed are the same in every run.
+    """
+    pending: deque = deque()
+    pool = ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-arx")
+    try:
+        for chunk in chunks:
+            pending.append((chunk, pool.submit(task, load(chunk))))
+            if len(pending) > n_workers:
+                done, fut = pending.popleft()
+                yield done, fut.result()
+        while pending:
+            done, fut = pending.popleft()
+            yield done, fut.result()
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _read_z(session, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
@@ -404,7 +387,7 @@ class RidgeArx:
         Ridge strengths to compare by cross-validation; each >= 0 (see Notes for the scale).
     n_folds : int, default 5
         Cross-validation folds of whole trials (fewer if fewer trials have usable rows).
-    chunk_samples : int, default 65536
+    chunk_samples : int, default 16384
         Regression rows read and accumulated per chunk; bounds the memory used by the streaming pass.
     fit_intercept : bool, default True
         Fit the constant ``c`` (regressors and targets are centred with the running means).
@@ -451,9 +434,10 @@ class RidgeArx:
     With an intercept, the resting output is ``y_rest = (I − Σ A_i)⁻¹ c``; ``model_`` describes ``y − y_rest``
     driven by ``u`` in absolute units (zero input = no stimulation).
 
-    From a file-backed source the streaming pass reads up to two chunks ahead in a background thread and, meanwhile,
-    runs BLAS with one thread fewer than usual (process-wide, restored afterwards) so that reading and the Gram products share the
-    cores instead of oversubscribing them. Peak memory is about three chunks of ``chunk_samples × (p + m)`` values.
+    The streaming pass reads chunks in the calling thread while worker threads (as many as BLAS would use, each
+    with single-threaded BLAS, process-wide for the duration of the pass) accumulate the chunks already read; the
+    sums are taken in chunk order, so every run gives the same numbers. Peak memory is about ``workers + 2`` chunks
+    of ``chunk_samples × (p + m)`` values.
 
     References
     ----------
@@ -477,7 +461,7 @@ class RidgeArx:
     supports_streaming = True
 
     def __init__(self, *, output_lags=2, input_lags=2, delay_samples=1, alphas=_DEFAULT_ALPHAS, n_folds=5,
-                 chunk_samples=65536, fit_intercept=True):
+                 chunk_samples=16384, fit_intercept=True):
         self.output_lags = output_lags
         self.input_lags = input_lags
         self.delay_samples = delay_samples
@@ -564,27 +548,24 @@ class RidgeArx:
     def _accumulate(self, session, prob: _Problem):
         pieces, k, scheme = _pieces(session, prob.L, int(self.n_folds))
         folds = [_Moments(prob.size) for _ in range(k)]
-        L = prob.L
-        lo = np.full(prob.m, np.inf)
-        hi = np.full(prob.m, -np.inf)
-        shift = None
-        chunks = _chunks(pieces, int(self.chunk_samples))
+        L, p = prob.L, prob.p
+        lo, hi = np.full(prob.m, np.inf), np.full(prob.m, -np.inf)
+        first = pieces[0]
+        # A provisional offset (the first chunk's mean) keeps the later centring (W − n μ μᵀ) free of cancellation.
+        shift = _read_z(session, first[0] - L, min(first[1], first[0] + int(self.chunk_samples)))[0].mean(axis=0) \
+            if prob.fit_intercept else np.zeros(prob.c)
 
         def load(chunk):
-            return _read_z(session, chunk[0] - L, chunk[1])
+            return _read_z(session, chunk[0] - L, chunk[1])[0]
 
-        # In-memory reads are plain copies: only a file-backed source gains from reading ahead on its own core.
-        in_memory = isinstance(session, Session)
-        stream = ((c, load(c)) for c in chunks) if in_memory else _prefetched(chunks, load)
-        with contextlib.nullcontext() if in_memory else _core_left_for_reading():
-            for (k0, k1, f), (B, u) in stream:
-                lo, hi = np.minimum(lo, u.min(axis=0)), np.maximum(hi, u.max(axis=0))
-                if shift is None:
-                    # A provisional offset keeps the later centring (W − n μ μᵀ) free of cancellation.
-                    shift = B.mean(axis=0) if prob.fit_intercept else np.zeros(prob.c)
-                B -= shift
-                s, W = _lagged_moments(B, L)
+        def task(B):
+            return _chunk_moments(B, shift, L, p)
+
+        with _single_threaded_blas() as n_workers:
+            for (k0, k1, f), (s, W, c_lo, c_hi) in _parallel_pass(_chunks(pieces, int(self.chunk_samples)), load,
+                                                                    task, n_workers):
                 folds[f].add(k1 - k0, s, W)
+                lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
         self._check_inputs_vary(session, lo, hi)
         return folds, k, scheme, np.tile(shift, L + 1)
 

@@ -145,6 +145,27 @@ def test_a_read_error_in_the_streaming_pass_reaches_the_caller(rng):
         RidgeArx(chunk_samples=40).fit(_Broken(multi_trial_session(rng)))
 
 
+def test_parallel_pass_keeps_chunk_order_and_raises_task_errors():
+    import time
+
+    from stimsteer.sysid.arx import _parallel_pass
+
+    def slow_first(x):  # uneven task times: later chunks finish first
+        time.sleep(0.02 if x == 0 else 0.0)
+        return x * 10
+
+    out = list(_parallel_pass(range(6), lambda c: c, slow_first, n_workers=3))
+    assert out == [(c, 10 * c) for c in range(6)]
+
+    def fails_on_four(x):
+        if x == 4:
+            raise ExcitationError("chunk 4 failed (test)")
+        return x
+
+    with pytest.raises(ExcitationError, match="chunk 4 failed"):
+        list(_parallel_pass(range(8), lambda c: c, fails_on_four, n_workers=2))
+
+
 def test_blas_thread_limit_is_restored_after_fit(rng):
     threadpoolctl = pytest.importorskip("threadpoolctl")
 
