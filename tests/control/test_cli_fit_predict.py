@@ -9,7 +9,7 @@ from stimsteer.sysid.session import Session
 from stimsteer.sysid.statespace import StateSpaceModel
 from stimsteer.sysid.storage import load_predictor
 
-io = pytest.importorskip("stimsteer.sysid.io")
+from stimsteer.sysid import io as io
 
 TRUE = StateSpaceModel(A=[[0.85, 0.2], [0.0, 0.6]], B=[[0.0], [1.0]], C=[[1.0, 0.3]])
 
@@ -58,7 +58,6 @@ def test_fit_prints_selection_and_heldout_scores(capsys, model_file):  # capsys 
 
 
 def test_fit_subspace(session_file, tmp_path, capsys):
-    pytest.importorskip("stimsteer.sysid.subspace")
     out = tmp_path / "sub.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "subspace", "--out", str(out),
                  "--past-steps", "4"]) == 0

@@ -19,19 +19,11 @@ import pytest
 from stimsteer.sysid import Session
 from stimsteer.sysid.subspace import SubspaceId
 
-try:
-    from stimsteer.sysid.metrics import vaf
-except ImportError:  # pragma: no cover - depends on the state of the repository
-
-    def vaf(y_true, y_pred):
-        """Variance accounted for in percent, per channel: 100 (1 − var(y − ŷ) / var(y))."""
-        return 100.0 * (1.0 - np.var(y_true - y_pred, axis=0) / np.var(y_true, axis=0))
+from stimsteer.sysid.metrics import vaf
 
 
 # shared/ lies beside the repository (on a workstation and in CI alike)
-_CANDIDATES = [Path(__file__).resolve().parents[2].parent / "shared" / "data" / "daisy",
-               Path("/work/shared/data/daisy")]
-DAISY = next((p for p in _CANDIDATES if p.is_dir()), _CANDIDATES[0])
+DAISY = Path(__file__).resolve().parents[2].parent / "shared" / "data" / "daisy"
 WEIGHTINGS = ["n4sid", "moesp", "cva"]
 PAST = FUTURE = 10  # samples: several times the air heater's delay of a few samples (from memory)
 

@@ -50,7 +50,7 @@ def test_state_space_round_trip(tmp_path):
 
 
 def test_subspace_round_trip(rng, tmp_path):
-    sub = pytest.importorskip("stimsteer.sysid.subspace")
+    from stimsteer.sysid import subspace as sub
     s = session(rng, n_trials=4, length=300)
     est = sub.SubspaceId(past_steps=4, future_steps=4).fit(s)
     save_predictor(est, tmp_path / "sub.h5", provenance=PROV)
@@ -92,7 +92,7 @@ def test_foreign_hdf5(tmp_path):
 
 
 def test_session_file_is_not_a_model(rng, tmp_path):
-    io = pytest.importorskip("stimsteer.sysid.io")
+    from stimsteer.sysid import io as io
     io.save_session(session(rng, n_trials=2, length=20), tmp_path / "s.h5")
     with pytest.raises(FileFormatError, match="is a stimsteer session file, not a stimsteer model"):
         load_predictor(tmp_path / "s.h5")

@@ -206,7 +206,7 @@ def test_predictor_map_equals_state_space_predict(rng):
 
 
 def test_lazily_opened_session_file_gives_the_same_fit(rng, tmp_path):
-    io = pytest.importorskip("stimsteer.sysid.io")
+    from stimsteer.sysid import io as io
     session = _session(rng, noise=0.05)
     path = io.save_session(session, tmp_path / "s.h5")
     a = SubspaceId(past_steps=5, future_steps=5).fit(session)
@@ -414,7 +414,7 @@ def test_fit_does_not_warn_on_clean_stable_data(rng):
 
 
 def test_model_file_round_trip_through_storage(rng, tmp_path):
-    storage = pytest.importorskip("stimsteer.sysid.storage")
+    from stimsteer.sysid import storage as storage
     session = _session(rng, noise=0.05)
     est = SubspaceId(past_steps=5, future_steps=5).fit(session)
     path = storage.save_predictor(est, tmp_path / "model.h5", provenance={"data_hash": session.content_hash()})
