@@ -371,6 +371,8 @@ def _pattern_columns(columns, path):
             time_col, rate_text = col, t["rate"]
         elif ch is not None and ch["role"] == "in" and ch["name"] and ch["unit"].strip():
             inputs.append((col, ch["name"], ch["unit"].strip()))
+        elif col == "trial":  # a schedule's trial labels: the pattern is the whole schedule, rests included
+            continue
         else:
             other.append(col)
     if time_col is None or not inputs or other:
@@ -386,7 +388,8 @@ def load_pattern(path) -> Pattern:
 
     Layout: a ``time [s]`` column (optionally ``time [s] @ <rate> Hz``) on a uniform grid and one
     ``in:<name> [<unit>]`` column per stimulation input, every cell a finite number. Example header:
-    ``time [s] @ 1000 Hz,in:site_a [uA],in:site_b [uA]``.
+    ``time [s] @ 1000 Hz,in:site_a [uA],in:site_b [uA]``. A ``trial`` column (as in a schedule written by
+    ``stimsteer schedule``) is allowed and ignored, so a schedule can be predicted whole.
 
     Raises
     ------

@@ -233,3 +233,17 @@ def test_write_prediction(fitted, tmp_path):
     with pytest.raises(StimsteerError, match="already holds files"):
         write_prediction(pred, tmp_path / "out")
     write_prediction(pred, tmp_path / "out", force=True)
+
+
+def test_a_schedule_file_reads_as_a_pattern(tmp_path):
+    # `stimsteer schedule` writes a trial column; predicting the whole schedule must accept it
+    from stimsteer.sysid.routes import load_pattern
+    from stimsteer.sysid.schedule import design_schedule, save_schedule
+
+    sched = design_schedule(n_inputs=2, order=6, lo=[-1.0, -1.0], hi=[1.0, 1.0], sample_rate_hz=100.0,
+                            n_trials=2, trial_s=1.0, rest_s=0.2, seed=3)
+    path = tmp_path / "schedule.csv"
+    save_schedule(sched, path)
+    pattern = load_pattern(path)
+    assert pattern.sample_rate_hz == 100.0 and pattern.u.shape == sched.u.shape
+    np.testing.assert_array_equal(pattern.u, sched.u)
