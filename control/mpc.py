@@ -4,8 +4,10 @@ Each controller builds its cvxpy problem **once** (in :meth:`fit`) with Paramete
 from one plan to the next (the measured past through the predicted free response, the target, the step bounds),
 so the problem is DPP and a plan only assigns ``.value`` and re-solves. A second, faster path for closed loops
 sets up one OSQP problem from the same matrices and only updates its vectors; both paths give the same plan
-(tested). The fast path exists for quadratic programs (no energy budget, no L1 regulariser); otherwise plans
-use the cvxpy problem, and so does a plan whose OSQP solve fails. For DeePC without output bounds the fast path
+(tested). The fast path exists for quadratic programs (no L1 regulariser); otherwise plans use the cvxpy problem,
+and so does a plan whose OSQP solve fails. With an energy budget the fast QP leaves the budget out and its answer is
+kept only when it uses less than the budget (then it is the optimum of the budgeted convex problem as well); when
+the budget binds, the plan solves the cvxpy cone program. For DeePC without output bounds the fast path
 minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
 
 Problem solved over the horizon ``k = 0 … N−1`` (inputs ``u_k``, predicted outputs ``ŷ_k``)::
@@ -529,10 +531,13 @@ class _PredictiveController:
             offsets = self._offsets(u_past, y_past, target)
             if fast:
                 u, aux, status, reason = self._solve_fast(offsets, lb, ub)
-            if not fast or status == "failed":  # the fast path is an accelerator: on failure, solve it plainly
+                if u is not None and self._energy is not None and np.sum(u**2) > self._energy * (1 - 1e-9):
+                    # the budget binds: the budget-free QP's answer is not the optimum; solve the cone program
+                    u, aux, status, reason = None, None, "budget", "energy budget binding"
+            if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
                 first = reason
                 u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
-                if fast:
+                if fast and not first.startswith("energy budget"):
                     note = "solved with the cvxpy problem instead" if u is not None else reason
                     reason = f"fast path: {first}; {note}"
                 solver = (f"{solver} -> " if fast else "") + f"{self._cvx_solver()} (cvxpy)"
@@ -681,7 +686,9 @@ class _CondensedCore(_PredictiveController):
             cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
         self.problem_ = cp.Problem(cp.Minimize(cost), cons)
         self._fast_tpl = None
-        self._fast = None if self._energy is not None else self._fast_condensed()
+        # with an energy budget the fast QP leaves the budget out; plan() keeps its answer only where the budget
+        # is not binding (then it is also the optimum with the budget: the problem is convex)
+        self._fast = self._fast_condensed()
 
     def _fast_condensed(self):
         Nm, nb = self._LG.shape[1], self._idx_b.size
@@ -1201,7 +1208,7 @@ class DataPredictiveController(_CondensedCore):
         self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
         quadratic = self._reg != "l1" or self._lam_g == 0
         self._elim, self._fast = None, None
-        if self._energy is None and quadratic:
+        if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
             if self._idx_b.size == 0:
                 self._fast = self._fast_deepc_eliminated(N, m)
             if self._fast is None:

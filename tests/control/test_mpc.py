@@ -220,12 +220,25 @@ def test_energy_budget_is_a_hard_cone_constraint(rng):
     u, y = _past(rng, model)
     lim = _limits(energy_budget_ua2=0.5)
     ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=6, input_weight=1e-4).fit()
-    assert ctrl._fast is None  # a cone: no OSQP fast path
     plan = ctrl.plan(u, y, target=[5.0, 5.0])
-    assert plan.ok and "cvxpy" in plan.solver
+    # the budget binds, so the budget-free fast QP's answer is refused and the cone program is solved
+    assert plan.ok and plan.solver.endswith("(cvxpy)")
     assert np.sum(plan.inputs**2) <= 0.5 * (1 + 1e-9)
     assert plan.active_limits["energy_budget"]
     _assert_inside(plan, lim)
+
+
+def test_a_budget_that_does_not_bind_keeps_the_fast_answer_which_equals_the_cone_program(rng):
+    # a convex problem whose constraint is inactive at the optimum of the problem without it has that same optimum
+    # (Boyd & Vandenberghe 2004, Convex Optimization, sec. 5.5: complementary slackness with a zero multiplier)
+    model = _model(rng)
+    u, y = _past(rng, model)
+    lim = _limits(energy_budget_ua2=1e6)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=6, input_weight=0.1).fit()
+    # the cone program is solved by an interior-point method, the QP by OSQP: equal to their tolerances
+    plain, fast = _compare_paths(ctrl, u, y, np.array([0.2, -0.1]), atol=1e-4)
+    assert fast.solver == "OSQP (reused)" and not fast.active_limits["energy_budget"]
+    _assert_inside(fast, lim)
 
 
 def test_charge_density_bound_is_reported_as_its_own_limit():
