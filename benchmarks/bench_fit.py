@@ -174,6 +174,9 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--skip-subspace", action="store_true")
+    ap.add_argument("--compression", choices=["gzip", "lzf", "none"], default="lzf",
+                    help="chunk compression of the benchmark file (save_session's option; default lzf, the choice "
+                    "for long recordings that are fitted often); the other two are measured as diagnostics")
     ap.add_argument("--child-fit", metavar="PATH", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child_fit:
@@ -187,27 +190,33 @@ def main(argv=None) -> int:
         path = Path(tmp) / "session.h5"
         session = make_session(args.samples, args.outputs, args.inputs, args.trials, args.seed)
         t0 = time.perf_counter()
-        save_session(session, path)
-        print(f"  setup: wrote {path.stat().st_size / 1e6:.0f} MB of HDF5 in {time.perf_counter() - t0:.1f} s")
-        report_arx(session, path, L, args.repeat)
+        save_session(session, path, compression=args.compression)
+        print(f"  setup: wrote {path.stat().st_size / 1e6:.0f} MB of HDF5 ({args.compression}) in "
+              f"{time.perf_counter() - t0:.1f} s")
+        report_arx(session, path, L, args.repeat, args.compression)
         if not args.skip_subspace:
             report_subspace(session, path, L, args.repeat)
     print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 
 
-def report_arx(session, path, L, repeat):
+def report_arx(session, path, L, repeat, compression):
     t_fit, est = best_of(repeat, lambda: fit_arx(path, L))
     t_read, _ = best_of(repeat, lambda: read_pass(path, est))
     raw = uncompressed_copy(path, path.with_name("session_uncompressed.h5"))
     t_raw, _ = best_of(repeat, lambda: fit_arx(raw, L))
     raw.unlink()
+    others = {}
+    for other in [c for c in ("gzip", "lzf") if c != compression]:
+        alt = save_session(session, path.with_name(f"session_{other}.h5"), compression=other)
+        others[other], _ = best_of(repeat, lambda: fit_arx(alt, L))
+        alt.unlink()
     t_mem, _ = best_of(repeat, lambda: RidgeArx(output_lags=L, input_lags=L, delay_samples=1).fit(session))
     X = design_matrix(session, L)
     t_base, _ = best_of(repeat, lambda: gram_and_cholesky(X))
     design_bytes = X.nbytes
     del X
-    print(f"  ridge ARX fit from HDF5 ({est.coef_.shape[1]} regressors, {len(est.cv_table_)} alphas, "
+    print(f"  ridge ARX fit from HDF5, {compression} ({est.coef_.shape[1]} regressors, {len(est.cv_table_)} alphas, "
           f"{est.n_folds_} folds): {t_fit:.2f} s (best of {repeat})")
     print(f"  baseline X.T @ X + Cholesky on the materialised {est.n_rows_} x {est.coef_.shape[1]} design: "
           f"{t_base:.2f} s (best of {repeat})")
@@ -215,6 +224,9 @@ def report_arx(session, path, L, repeat):
     print(f"    diagnostics: reading the same windows alone {t_read:.2f} s ({t_read / t_base:.2f} x baseline); "
           f"fit from an uncompressed copy {t_raw:.2f} s ({t_raw / t_base:.2f}); from memory {t_mem:.2f} s "
           f"({t_mem / t_base:.2f})")
+    for other, t in others.items():
+        print(f"    diagnostics: fit from the same session saved with {other} compression {t:.2f} s "
+              f"({t / t_base:.2f})")
     traced = tracemalloc_peak(path, L)
     rss = rss_peak_child(path, L)
     mb = 1e6

@@ -32,7 +32,7 @@ name          dtype        shape        content
                                         attribute ``columns = ["start_sample", "stop_sample"]``
 ============  ===========  ===========  ============================================================
 
-``inputs``, ``outputs`` and ``valid`` are chunked along time (about 16 Ki values, 128 KiB, per chunk; gzip
+``inputs``, ``outputs`` and ``valid`` are chunked along time (about 16 Ki values, 128 KiB, per chunk; by default gzip
 level 4 with byte shuffle), so reading a window decompresses only the chunks it overlaps. A file without the
 units attributes, or with an empty unit, is refused (use ``"a.u."`` for arbitrary units).
 
@@ -108,7 +108,11 @@ _TABLE_LAYOUT = "stimsteer-table"
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 _PARQUET_MAGIC = b"PAR1"
 _CHUNK_VALUES = 16384
-_COMPRESSION = {"compression": "gzip", "compression_opts": 4, "shuffle": True}
+_COMPRESSION = {
+    "gzip": {"compression": "gzip", "compression_opts": 4, "shuffle": True},  # smallest files
+    "lzf": {"compression": "lzf", "shuffle": True},  # larger, but decompresses several times faster
+    "none": {},
+}
 _NWB_HINT = 'install the optional NWB support with: pip install "stimsteer[nwb]"'
 _SUFFIXES = {".h5": "hdf5", ".hdf5": "hdf5", ".csv": "csv", ".parquet": "parquet", ".nwb": "nwb"}
 
@@ -257,7 +261,7 @@ def load_session(path) -> Session:
     return _session_from_table(frame, path, metadata)
 
 
-def save_session(session: Session, path, *, overwrite: bool = False) -> Path:
+def save_session(session: Session, path, *, overwrite: bool = False, compression: str = "gzip") -> Path:
     """Write a session atomically; the layout follows the suffix.
 
     Parameters
@@ -267,6 +271,10 @@ def save_session(session: Session, path, *, overwrite: bool = False) -> Path:
         ``.h5`` / ``.hdf5`` (our HDF5 layout), ``.csv``, ``.parquet``, or ``.nwb`` (needs the ``nwb`` extra).
     overwrite : bool, default False
         Replace an existing file. Without it an existing file is an error and is left untouched.
+    compression : {"gzip", "lzf", "none"}, default "gzip"
+        Chunk compression of our HDF5 layout (ignored by the other layouts). ``"gzip"`` gives the smallest files;
+        ``"lzf"`` (built into h5py) decompresses several times faster, the better choice for a long recording that
+        is fitted often (see ``benchmarks/bench_fit.py``). Any reader reads all three.
 
     Returns
     -------
@@ -283,6 +291,8 @@ def save_session(session: Session, path, *, overwrite: bool = False) -> Path:
     """
     if not isinstance(session, Session):
         raise SessionError(f"save_session needs a Session; got {type(session).__name__}.")
+    if compression not in _COMPRESSION:
+        raise FileFormatError(f"compression must be one of {sorted(_COMPRESSION)}; got {compression!r}.")
     path = Path(path)
     kind = _SUFFIXES.get(path.suffix.lower())
     if kind is None:
@@ -296,7 +306,10 @@ def save_session(session: Session, path, *, overwrite: bool = False) -> Path:
         raise StimsteerError(f"{path} already exists; pass overwrite=True to replace it, or choose another name.")
     writer = {"hdf5": _write_hdf5, "csv": _write_csv, "parquet": _write_parquet, "nwb": _write_nwb}[kind]
     with atomic_path(path) as tmp:
-        writer(session, tmp)
+        if kind == "hdf5":
+            _write_hdf5(session, tmp, _COMPRESSION[compression])
+        else:
+            writer(session, tmp)
     return path
 
 
@@ -333,13 +346,13 @@ def _chunks(shape: tuple) -> tuple | None:
     return (rows,) + tuple(shape[1:])
 
 
-def _create(h, name: str, data: np.ndarray):
+def _create(h, name: str, data: np.ndarray, compression: dict):
     chunks = _chunks(data.shape)
-    extra = _COMPRESSION if chunks is not None else {}
+    extra = compression if chunks is not None else {}
     return h.create_dataset(name, data=data, chunks=chunks, **extra)
 
 
-def _write_hdf5(session: Session, tmp: Path) -> None:
+def _write_hdf5(session: Session, tmp: Path, compression: dict) -> None:
     meta = _metadata_json(session.metadata)
     strings = h5py.string_dtype()
     with h5py.File(tmp, "w") as h:
@@ -351,10 +364,10 @@ def _write_hdf5(session: Session, tmp: Path) -> None:
             ("inputs", session.u, session.input_names, session.input_units),
             ("outputs", session.y, session.output_names, session.output_units),
         ):
-            ds = _create(h, key, np.ascontiguousarray(data, dtype=np.float64))
+            ds = _create(h, key, np.ascontiguousarray(data, dtype=np.float64), compression)
             ds.attrs.create("channel_names", np.array(names, dtype=object), dtype=strings)
             ds.attrs.create("channel_units", np.array(units, dtype=object), dtype=strings)
-        _create(h, "valid", session.mask.astype(np.uint8))
+        _create(h, "valid", session.mask.astype(np.uint8), compression)
         tr = h.create_dataset("trials", data=np.asarray(session.trials, dtype=np.int64))
         tr.attrs.create("columns", np.array(["start_sample", "stop_sample"], dtype=object), dtype=strings)
 

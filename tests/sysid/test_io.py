@@ -336,7 +336,7 @@ def test_existing_file_is_kept_without_overwrite(tmp_path, rng):
 def test_failed_write_leaves_nothing_behind(tmp_path, rng, monkeypatch):
     import stimsteer.sysid.io as io
 
-    def half_write(session, tmp):
+    def half_write(session, tmp, compression):
         with h5py.File(tmp, "w") as h:
             h.create_dataset("inputs", data=session.u)
         raise OSError("disk full (simulated)")
@@ -354,7 +354,7 @@ def test_failed_overwrite_keeps_the_old_file(tmp_path, rng, monkeypatch):
     save_session(_session(rng), path)
     before = _sha(path)
 
-    def failing(session, tmp):
+    def failing(session, tmp, compression):
         raise OSError("simulated failure")
 
     monkeypatch.setattr(io, "_write_hdf5", failing)
@@ -541,3 +541,21 @@ def test_reading_a_window_touches_only_its_chunks(tmp_path, rng):
     assert np.array_equal(u, s.u[120_000:121_000]) and np.array_equal(y, s.y[120_000:121_000]) and mask.all()
     assert window_bytes < 0.1 * size  # measured ~3 % with 128 KiB chunks
     assert whole_bytes > 0.9 * size  # the counter does see reads of the whole file
+
+
+@pytest.mark.parametrize("compression", ["gzip", "lzf", "none"])
+def test_every_hdf5_compression_round_trips_exactly_and_reads_lazily(tmp_path, rng, compression):
+    s = _session(rng)
+    path = save_session(s, tmp_path / f"s_{compression}.h5", compression=compression)
+    back = load_session(path)
+    np.testing.assert_array_equal(back.u, s.u)
+    np.testing.assert_array_equal(back.y, s.y)
+    assert back.content_hash() == s.content_hash()
+    with h5py.File(path) as h:
+        assert h["outputs"].compression == {"gzip": "gzip", "lzf": "lzf", "none": None}[compression]
+
+
+def test_an_unknown_compression_is_refused_before_anything_is_written(tmp_path, rng):
+    with pytest.raises(FileFormatError, match="compression must be one of"):
+        save_session(_session(rng), tmp_path / "s.h5", compression="zstd")
+    assert os.listdir(tmp_path) == []
