@@ -110,7 +110,7 @@ _PARQUET_MAGIC = b"PAR1"
 _CHUNK_VALUES = 16384
 _COMPRESSION = {
     "gzip": {"compression": "gzip", "compression_opts": 4, "shuffle": True},  # smallest files
-    "lzf": {"compression": "lzf", "shuffle": True},  # larger, but decompresses several times faster
+    "lzf": {"compression": "lzf", "shuffle": True},  # larger, faster to write
     "none": {},
 }
 _NWB_HINT = 'install the optional NWB support with: pip install "stimsteer[nwb]"'
@@ -273,8 +273,8 @@ def save_session(session: Session, path, *, overwrite: bool = False, compression
         Replace an existing file. Without it an existing file is an error and is left untouched.
     compression : {"gzip", "lzf", "none"}, default "gzip"
         Chunk compression of our HDF5 layout (ignored by the other layouts). ``"gzip"`` gives the smallest files;
-        ``"lzf"`` (built into h5py) decompresses several times faster, the better choice for a long recording that
-        is fitted often (see ``benchmarks/bench_fit.py``). Any reader reads all three.
+        ``"lzf"`` (built into h5py) writes faster; ``"none"`` reads fastest (``benchmarks/bench_fit.py`` measures
+        a streaming fit from each). Any reader reads all three.
 
     Returns
     -------
