@@ -17,7 +17,8 @@ Kinds
 ``"prbs"``
     Binary pseudo-random sequences: disjoint stretches of one maximum-length sequence
     (:func:`scipy.signal.max_len_seq`) per input, each bit held ``hold_steps`` samples, on two levels: the
-    amplitude bounds, narrowed symmetrically to ``slew`` apart when a jump between them would break the slew limit.
+    amplitude bounds, narrowed symmetrically to ``slew · hold_steps`` apart when a jump between them could not be
+    made within one held bit; under a slew limit the switches are ramps at the limit (a trapezoidal sequence).
 ``"multilevel"``
     Pseudo-random multilevel sequences: a random walk over ``n_levels`` evenly spaced levels, each held
     ``hold_steps`` samples, moving only between levels the slew limit allows.
@@ -347,8 +348,8 @@ def _prbs(n_steps, lo, hi, slew, base, rng, *, hold_steps):
     bits = max_length_sequence(nbits, seed=rng, length=need).reshape(m, n_bits).T
     s = np.repeat(bits, hold_steps, axis=0)[:n_steps]
     mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
-    if slew is not None:
-        half = np.minimum(half, 0.5 * slew)
+    if slew is not None:  # a jump must be reachable within one held bit; the final slew pass makes the ramps
+        half = np.minimum(half, 0.5 * slew * hold_steps)
     return mid + half * s
 
 

@@ -336,3 +336,14 @@ def test_more_bad_schedule_files(tmp_path, text, match):
     path.write_text(text)
     with pytest.raises(FileFormatError, match=match):
         load_schedule(path)
+
+
+def test_prbs_with_held_bits_ramps_at_the_slew_limit_to_wider_levels():
+    # with bits held 4 samples and a slew of 10 per sample, a switch can span 40 (ramping 4 samples at the limit),
+    # so the levels are ±20 instead of the ±5 a single-sample switch allows (arithmetic of the declared limits)
+    from stimsteer.sysid.schedule import design_schedule
+
+    s = design_schedule(n_inputs=1, order=8, lo=[-50.0], hi=[50.0], slew=[10.0], kind="prbs", hold_steps=4,
+                        sample_rate_hz=100.0, n_trials=4, trial_s=2.0, rest_s=0.5, seed=5)
+    assert np.max(s.u) == pytest.approx(20.0) and np.min(s.u) == pytest.approx(-20.0)
+    assert np.max(np.abs(np.diff(np.vstack([[0.0], s.u]), axis=0))) <= 10.0
