@@ -205,6 +205,9 @@ def _run_network(args):
                                    max_set_size=args.max_set_size, normalise=args.normalise, force=args.force)
     print("\n".join(result.lines))
     print(f"wrote {len(result.files)} files to {args.out}: " + ", ".join(sorted(p.name for p in result.files.values())))
+    if target is not None:
+        print("note: the minimum-energy input is a figure of the model, not a stimulation plan: no declared limit "
+              "was applied to it. Design stimulation with `stimsteer plan --limits`.")
     print(CAUTION)
     return 0
 

@@ -57,6 +57,7 @@ def test_network_with_a_target_ranks_sites_like_the_api(model_file, tmp_path, ca
     assert code == 0
     printed = capsys.readouterr().out
     assert "best site sets (energy)" in printed
+    assert "not a stimulation plan: no declared limit was applied" in printed  # a figure, not a plan
     ranking = pd.read_csv(out / "site_ranking.csv")
     model, _ = load_predictor(model_file)
     from stimsteer.sysid.network import pattern_to_state
