@@ -198,7 +198,7 @@ class BenchSettings:
         Noise levels of the noise sweep relative to the plant's (simulated sessions only; 1 is the session itself).
     horizons : tuple of int, default (10,)
         Horizons of the horizon sweep (besides ``horizon_steps``).
-    max_windows : int, default 500
+    max_windows : int, default 5000
         At most this many k-step windows are scored per task (evenly strided over the held-out trials).
     seed : int, default 0
         Master seed of splits, subsets and closed-loop noise.
@@ -215,7 +215,7 @@ class BenchSettings:
     train_trials: tuple = (3, 9)
     noise_scales: tuple = (2.0,)
     horizons: tuple = (10,)
-    max_windows: int = 500
+    max_windows: int = 5000
     seed: int = 0
     scheduler_timeout_s: float = DEFAULT_SCHEDULER_TIMEOUT_S
 

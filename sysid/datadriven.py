@@ -326,6 +326,32 @@ class _DirectPredictor:
         b = np.concatenate([u_past[-past:].reshape(-1), y_past[-past:].reshape(-1), uf.reshape(-1)])
         return b, n_future
 
+    def _batch_windows(self, u_past, y_past, u_future):
+        """Stacked ``b`` vectors of a batch of windows, shape (n_windows, len(b)), and the common future length."""
+        check_fitted(self, "past_steps_")
+        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
+        for name, a, c in (("u_past", up, m), ("y_past", yp, p), ("u_future", uf, m)):
+            if a.ndim != 3 or a.shape[2] != c or a.shape[0] != up.shape[0]:
+                raise SessionError(f"{name} must have shape (n_windows, n_samples, {c}); got {a.shape}.")
+            if not np.all(np.isfinite(a)):
+                raise SessionError(f"{name} holds NaN or infinite values; give finite windows.")
+        if up.shape[1] != yp.shape[1] or up.shape[1] < past or not 1 <= uf.shape[1] <= N:
+            raise SessionError(
+                f"each window needs equal past lengths of at least past_steps_ = {past} and 1 to {N} future "
+                f"samples; got {up.shape[1]}, {yp.shape[1]} and {uf.shape[1]}."
+            )
+        W, n_future = up.shape[0], uf.shape[1]
+        full = np.zeros((W, N, m))
+        full[:, :n_future] = uf
+        b = np.concatenate([up[:, -past:].reshape(W, -1), yp[:, -past:].reshape(W, -1), full.reshape(W, -1)], axis=1)
+        return b, n_future
+
+    def _linear_many(self, G, u_past, y_past, u_future):
+        b, n_future = self._batch_windows(u_past, y_past, u_future)
+        y = b @ G.T
+        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future]
+
     # ---------------------------------------------------------------------------------------- storage
     _fitted_arrays: tuple = ()
     _fitted_scalars: tuple = ("past_steps_", "max_horizon_steps_", "n_inputs_", "n_outputs_", "excitation_order_",
@@ -515,6 +541,11 @@ class LsqPredictor(_DirectPredictor):
         n_p = self.Kp_.shape[1]
         y = self.Kp_ @ b[:n_p] + self.Kf_ @ b[n_p:]
         return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels); one matrix product."""
+        check_fitted(self, "Kp_")
+        return self._linear_many(np.hstack([self.Kp_, self.Kf_]), u_past, y_past, u_future)
 
     @classmethod
     def from_state(cls, state) -> "LsqPredictor":
@@ -822,6 +853,16 @@ class HankelPredictor(_DirectPredictor):
         else:
             y = self._prediction_map() @ b
         return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels).
+
+        One matrix product with the kept prediction map for "l2" and "projection"; one solve per window for "l1".
+        """
+        check_fitted(self, "blocks_")
+        if self.regularizer_ == "l1":
+            return np.stack([self.predict(a, b, c) for a, b, c in zip(u_past, y_past, u_future)])
+        return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
 
     @_one_blas_thread
     def solve_g(self, u_past, y_past, u_future) -> np.ndarray:

@@ -44,7 +44,7 @@ __all__ = [
 #: k-step horizon scored when neither the caller nor the predictor fixes one (samples).
 DEFAULT_HORIZON_STEPS = 10
 #: At most this many k-step windows are scored (evenly strided); the stride used is recorded.
-_MAX_WINDOWS = 2000
+_MAX_WINDOWS = 5000  # k-step windows scored per held-out session (evenly strided beyond that)
 
 
 class _Lazy:

@@ -297,6 +297,56 @@ class StateSpaceModel:
         x = self.estimate_state(u_past, y_past)
         return self.simulate(u_future, x0=x)
 
+    def prediction_maps(self, n_past: int, n_future: int) -> tuple[np.ndarray, np.ndarray]:
+        """The linear maps of :meth:`predict` for windows of fixed lengths.
+
+        ``vec(y_future) = P @ [vec(u_past); vec(y_past)] + F @ vec(u_future)`` (time-major stacking), exactly
+        what :meth:`predict` computes: the least-squares state estimate is linear in the window, so ``P`` is built
+        by applying it to the unit windows, and ``F`` is the block-Toeplitz matrix of Markov parameters.
+
+        Returns
+        -------
+        P : ndarray, shape (n_future * n_outputs, n_past * (n_inputs + n_outputs))
+        F : ndarray, shape (n_future * n_outputs, n_future * n_inputs)
+        """
+        n_past, n_future = int(n_past), int(n_future)
+        m, p, n = self.n_inputs, self.n_outputs, self.n_states
+        obs = np.empty((n_future, p, n))
+        M = np.eye(n)
+        for k in range(n_future):
+            obs[k] = self.C @ M
+            M = self.A @ M
+        obs = obs.reshape(-1, n)
+        basis = np.eye(n_past * (m + p))
+        X = np.column_stack([self.estimate_state(e[:n_past * m].reshape(n_past, m), e[n_past * m:].reshape(n_past, p))
+                             for e in basis]) if n else np.zeros((0, basis.shape[0]))
+        h = self.impulse_response(max(n_future, 1))
+        F = np.zeros((n_future * p, n_future * m))
+        for i in range(n_future):
+            for j in range(i + 1):
+                F[i * p:(i + 1) * p, j * m:(j + 1) * m] = h[i - j]
+        return obs @ X, F
+
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels), via
+        :meth:`prediction_maps` (one matrix product after building them)."""
+        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
+        W = up.shape[0]
+        if (up.ndim != 3 or yp.ndim != 3 or uf.ndim != 3 or up.shape[2] != self.n_inputs
+                or yp.shape[2] != self.n_outputs or uf.shape[2] != self.n_inputs or yp.shape[:2] != up.shape[:2]
+                or uf.shape[0] != W):
+            raise SessionError(
+                f"predict_many needs u_past (W, T, {self.n_inputs}), y_past (W, T, {self.n_outputs}) and u_future "
+                f"(W, H, {self.n_inputs}); got {up.shape}, {yp.shape} and {uf.shape}."
+            )
+        for name, a in (("u_past", up), ("y_past", yp), ("u_future", uf)):
+            if not np.all(np.isfinite(a)):
+                raise SessionError(f"{name} holds NaN or infinite values.")
+        P, F = self.prediction_maps(up.shape[1], uf.shape[1])
+        past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
+        y = past @ P.T + uf.reshape(W, -1) @ F.T
+        return y.reshape(W, uf.shape[1], self.n_outputs)
+
     def impulse_response(self, n_steps: int) -> np.ndarray:
         """Markov parameters ``h[0] = D, h[k] = C A^(k−1) B``, shape (n_steps, n_outputs, n_inputs)."""
         n_steps = int(n_steps)

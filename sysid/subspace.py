@@ -721,6 +721,11 @@ class SubspaceId:
         check_fitted(self, "model_")
         return self.model_.predict(u_past, y_past, u_future)
 
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels)."""
+        check_fitted(self, "model_")
+        return self.model_.predict_many(u_past, y_past, u_future)
+
     # ------------------------------------------------------------------------------------------ storage
     def to_state(self) -> dict:
         """The fitted estimator as a dict of arrays, numbers, strings and nested dicts (for ``storage``)."""

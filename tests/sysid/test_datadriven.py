@@ -382,3 +382,17 @@ def test_solve_g_satisfies_the_constraints_and_gives_the_prediction(compress, rn
     np.testing.assert_allclose(h.blocks_.Up @ g, up.reshape(-1), atol=1e-9)
     np.testing.assert_allclose(h.blocks_.Uf @ g, uf.reshape(-1), atol=1e-9)
     np.testing.assert_allclose((h.blocks_.Yf @ g).reshape(5, 2), h.predict(up, yp, uf), atol=1e-9)
+
+
+@pytest.mark.parametrize("kind", ["lsq", "l2", "projection"])
+def test_predict_many_equals_predict_window_by_window(rng, kind):
+    sys = _system(rng)
+    s = _session(rng, sys, n_trials=4, length=150, noise=0.1)
+    est = (LsqPredictor(past_steps=3, horizon_steps=5) if kind == "lsq"
+           else HankelPredictor(past_steps=3, horizon_steps=5, regularizer=kind)).fit(s)
+    up, yp, uf = (rng.normal(size=(6, 3, s.n_inputs)), rng.normal(size=(6, 3, s.n_outputs)),
+                  rng.normal(size=(6, 4, s.n_inputs)))
+    one = np.stack([est.predict(a, b, c) for a, b, c in zip(up, yp, uf)])
+    np.testing.assert_allclose(est.predict_many(up, yp, uf), one, rtol=1e-10, atol=1e-12)
+    with pytest.raises(SessionError, match="must have shape"):
+        est.predict_many(up[0], yp[0], uf[0])

@@ -198,3 +198,15 @@ def test_bad_call_arguments_raise_session_error(rng):
         md.estimate_state(np.zeros((5, 2)), np.full((5, 2), np.nan))
     with pytest.raises(SessionError, match=r"n_steps must be at least 1; got 0"):
         md.impulse_response(0)
+
+
+def test_predict_many_equals_predict_window_by_window(rng):
+    # the batched form is the same linear map (least-squares state estimate, then the model's response)
+    A = np.array([[0.8, 0.2, 0.0], [-0.1, 0.7, 0.1], [0.0, 0.0, 0.5]])
+    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(2, 3)), K=0.1 * rng.normal(size=(3, 2)))
+    up, yp, uf = rng.normal(size=(7, 5, 2)), rng.normal(size=(7, 5, 2)), rng.normal(size=(7, 4, 2))
+    many = model.predict_many(up, yp, uf)
+    one = np.stack([model.predict(a, b, c) for a, b, c in zip(up, yp, uf)])
+    np.testing.assert_allclose(many, one, rtol=1e-10, atol=1e-12)
+    with pytest.raises(SessionError, match="predict_many needs"):
+        model.predict_many(up[0], yp[0], uf[0])
