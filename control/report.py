@@ -120,6 +120,26 @@ def _verdict(result: BenchResult, metric: str, a: str, b: str, sweep="base", val
     return f"the {r['better']} route is better (direct − indirect = {diff})"
 
 
+def _winner(result: BenchResult, metric: str, a: str, b: str) -> str:
+    c = result.comparison
+    rows = c[(c["sweep"] == "base") & (c["metric"] == metric) & (c["indirect"] == a) & (c["direct"] == b)]
+    if rows.empty:
+        return ""
+    better = rows.iloc[0]["better"]
+    return "no clear winner" if better == "neither" else {"indirect": a, "direct": b}[better]
+
+
+def _glance_line(result: BenchResult, a: str, b: str) -> str:
+    """One line of winners, from the same paired comparisons as the detailed lines below it."""
+    H = result.settings.horizon_steps
+    items = [("r2_last", f"prediction {H} steps ahead"), ("r2_freerun", "free run")]
+    if not result.control.empty:
+        items += [("tracking_rms", "closed-loop tracking"), ("energy_ua2", "stimulation energy")]
+    items.append(("fit_s", "fit time"))
+    parts = [f"{what}: {w}" for metric, what in items if (w := _winner(result, metric, a, b))]
+    return f"At a glance ({a} vs {b}; better = the paired 95 % interval excludes zero): " + "; ".join(parts) + "."
+
+
 def _pair_line(result, metric, a, b, what) -> str:
     name, fmt, unit = _spec(result, metric)
     ra, rb = _base(result, metric, a), _base(result, metric, b)
@@ -204,22 +224,22 @@ def summarize(result: BenchResult) -> list[str]:
     st = result.settings
     H = st.horizon_steps
     ms = 1e3 * H / result.provenance["session"]["sample_rate_hz"]
-    lines = [_data_line(result)]
-    for a in _labels(result, "indirect"):
-        for b in _labels(result, "direct"):
-            lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead"))
-            lines.append(_pair_line(result, "r2_freerun", a, b, "Free-run prediction of whole held-out trials"))
-            if not result.control.empty:
-                lines.append(_pair_line(result, "tracking_rms", a, b, "Closed-loop control"))
-                lines.append(_pair_line(result, "energy_ua2", a, b, "Stimulation energy"))
-            for sweep, metric, what in (("train_trials", "r2_last", "Amount of training data"),
-                                        ("train_trials", "tracking_rms", "Control vs training data"),
-                                        ("noise_scale", "r2_last", "Noise"),
-                                        ("horizon_steps", "tracking_rms", "Horizon")):
-                lines.append(_sweep_line(result, a, b, sweep, metric, what))
-            lines.append(_pair_line(result, "fit_s", a, b, "Compute"))
-            if not result.control.empty:
-                lines.append(_pair_line(result, "solve_ms_median", a, b, "Compute per control step"))
+    pairs = [(a, b) for a in _labels(result, "indirect") for b in _labels(result, "direct")]
+    lines = [_glance_line(result, a, b) for a, b in pairs] + [_data_line(result)]
+    for a, b in pairs:
+        lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead"))
+        lines.append(_pair_line(result, "r2_freerun", a, b, "Free-run prediction of whole held-out trials"))
+        if not result.control.empty:
+            lines.append(_pair_line(result, "tracking_rms", a, b, "Closed-loop control"))
+            lines.append(_pair_line(result, "energy_ua2", a, b, "Stimulation energy"))
+        for sweep, metric, what in (("train_trials", "r2_last", "Amount of training data"),
+                                    ("train_trials", "tracking_rms", "Control vs training data"),
+                                    ("noise_scale", "r2_last", "Noise"),
+                                    ("horizon_steps", "tracking_rms", "Horizon")):
+            lines.append(_sweep_line(result, a, b, sweep, metric, what))
+        lines.append(_pair_line(result, "fit_s", a, b, "Compute"))
+        if not result.control.empty:
+            lines.append(_pair_line(result, "solve_ms_median", a, b, "Compute per control step"))
     if not result.control.empty:
         lines += [_plant_line(result), _safety_line(result)]
     if not result.failures.empty:

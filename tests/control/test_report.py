@@ -109,6 +109,20 @@ def test_summary_is_generated_from_the_numbers(result):
     assert "no clear winner (direct − indirect = 0.250 [-0.125, 0.375]; the interval contains zero)" in neither
 
 
+def test_the_summary_opens_with_the_winners_of_the_detailed_lines(result):
+    comp = result.comparison.copy()
+    base = comp["sweep"] == "base"
+    comp.loc[base & (comp["metric"] == "r2_last"), "better"] = "direct"
+    comp.loc[base & (comp["metric"] == "fit_s"), "better"] = "indirect"
+    comp.loc[base & (comp["metric"] == "r2_freerun"), "better"] = "neither"
+    first = summarize(dataclasses.replace(result, comparison=comp))[0]
+    a, b = (m.label for m in result.settings.methods[:2])
+    H = result.settings.horizon_steps
+    assert first.startswith("At a glance")
+    assert f"prediction {H} steps ahead: {b}" in first and f"fit time: {a}" in first
+    assert "free run: no clear winner" in first
+
+
 def test_figures_label_axes_with_units(result):
     import matplotlib
 
