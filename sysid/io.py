@@ -89,7 +89,7 @@ import numpy as np
 
 from ._files import atomic_path
 from .exceptions import FileFormatError, SessionError, StimsteerError, StimsteerWarning
-from .session import Session, _names
+from .session import Session, _names, _TrialLayout
 
 __all__ = [
     "LAYOUT_NAME",
@@ -398,7 +398,7 @@ def open_session_file(path) -> "SessionFile":
     return SessionFile(path)
 
 
-class SessionFile:
+class SessionFile(_TrialLayout):
     """A session in our HDF5 layout, opened read-only; arrays stay on disk until a window is read.
 
     Offers the same ``read``, ``segments``, ``content_hash`` and shape attributes as :class:`Session`, so
@@ -520,18 +520,6 @@ class SessionFile:
     @property
     def n_outputs(self) -> int:
         return int(self._y.shape[1])
-
-    @property
-    def n_trials(self) -> int:
-        return int(self.trials.shape[0])
-
-    @property
-    def trial_lengths(self) -> np.ndarray:
-        return self.trials[:, 1] - self.trials[:, 0]
-
-    @property
-    def duration_s(self) -> float:
-        return self.n_samples / self.sample_rate_hz
 
     # ------------------------------------------------------------------------------------------ reading
     def _open(self):

@@ -83,8 +83,26 @@ def _names(kind: str, names, n: int, prefix: str) -> tuple[str, ...]:
     return names
 
 
+class _TrialLayout:
+    """Trial counts and durations of anything with ``trials``, ``n_samples`` and ``sample_rate_hz``
+    (a :class:`Session` and a lazily opened session file alike)."""
+
+    @property
+    def n_trials(self) -> int:
+        return int(self.trials.shape[0])
+
+    @property
+    def trial_lengths(self) -> np.ndarray:
+        """Samples per trial, shape (n_trials,)."""
+        return self.trials[:, 1] - self.trials[:, 0]
+
+    @property
+    def duration_s(self) -> float:
+        return self.n_samples / self.sample_rate_hz
+
+
 @dataclass(frozen=True, eq=False)
-class Session:
+class Session(_TrialLayout):
     """A recorded stimulation session.
 
     Parameters
@@ -260,19 +278,6 @@ class Session:
     @property
     def n_outputs(self) -> int:
         return int(self.y.shape[1])
-
-    @property
-    def n_trials(self) -> int:
-        return int(self.trials.shape[0])
-
-    @property
-    def trial_lengths(self) -> np.ndarray:
-        """Samples per trial, shape (n_trials,)."""
-        return self.trials[:, 1] - self.trials[:, 0]
-
-    @property
-    def duration_s(self) -> float:
-        return self.n_samples / self.sample_rate_hz
 
     @property
     def masked_fraction(self) -> float:
