@@ -49,6 +49,7 @@ import scipy.signal as ssig
 from ._files import atomic_path
 from .exceptions import ExcitationError, FileFormatError, InfeasiblePlanError, LimitsError, SessionError
 from .excitation import DEFAULT_TOL_FACTOR, rank_tolerance
+from .session import _TrialLayout
 from .hankel import hankel_column_count, row_space_factor
 
 __all__ = [
@@ -408,7 +409,7 @@ def _multisine_trials(n_trials, P, lo, hi, slew, rng, *, rate, band_hz, order, n
 
 # ---------------------------------------------------------------------------------------------------- schedule
 @dataclass(frozen=True)
-class Schedule:
+class Schedule(_TrialLayout):
     """A designed stimulation schedule: inputs on the sample grid, trials and rests, bounds and excitation.
 
     Attributes
@@ -466,15 +467,6 @@ class Schedule:
     @property
     def n_inputs(self) -> int:
         return int(self.u.shape[1])
-
-    @property
-    def n_trials(self) -> int:
-        return int(self.trials.shape[0])
-
-    @property
-    def duration_s(self) -> float:
-        """Expected session length in seconds (trials and rests)."""
-        return self.n_samples / self.sample_rate_hz
 
     def to_text(self) -> str:
         """A few lines for the terminal."""
