@@ -46,6 +46,7 @@ Stellato B. et al. (2020), OSQP: an operator splitting solver for quadratic prog
 from __future__ import annotations
 
 import contextlib
+import textwrap
 import time
 import warnings
 from dataclasses import dataclass
@@ -1642,6 +1643,8 @@ def _plot_plan(plan, t, units, tracked, path):
         a.grid(alpha=0.25, lw=0.5)
     fig.suptitle(f"stimsteer plan: {plan.status}" + (" (safe fallback)" if plan.fallback else ""), fontsize=11,
                  x=0.01, ha="left")
+    # the figure travels alone (slides, lab notes), so it carries the caution itself
+    fig.supxlabel(textwrap.fill(plan.caution, 120), fontsize=7, color="#7a4a00", x=0.01, ha="left")
     fig.savefig(path, dpi=110)
     plt.close(fig)
 

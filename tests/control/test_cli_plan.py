@@ -144,3 +144,22 @@ def test_parse_target_refuses_an_empty_table(tmp_path):
     (tmp_path / "empty.csv").write_text("")
     with pytest.raises(SessionError, match="not a readable CSV table"):
         parse_target(tmp_path / "empty.csv", ("a",), 2)
+
+
+def test_the_plan_figure_carries_the_caution(files, capsys, monkeypatch):
+    # a figure travels without its folder, so the caution is drawn into it (project rule: every plan carries it)
+    import matplotlib.figure
+    import matplotlib.text
+
+    texts = []
+    original = matplotlib.figure.Figure.savefig
+
+    def capture(fig, *args, **kwargs):
+        texts.extend(" ".join(t.get_text().split()) for t in fig.findobj(matplotlib.text.Text))
+        return original(fig, *args, **kwargs)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", capture)
+    d, _model = files
+    assert main(["plan", str(d / "model.h5"), "--target", "lfp_0=1", "--limits", str(d / "limits.toml"),
+                 "--out", str(d / "out"), "--horizon-steps", "8"]) == 0
+    assert CAUTION in texts
