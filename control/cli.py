@@ -13,14 +13,11 @@ import argparse
 import os
 import sys
 
+from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
 
 __all__ = ["main", "build_parser", "CAUTION"]
 
-CAUTION = (
-    "Caution: stimsteer is research software, not a medical device. Stimulation of people follows the approved "
-    "protocol, local regulations and licensed clinical practice."
-)
 
 
 class _Parser(argparse.ArgumentParser):

@@ -58,7 +58,9 @@ column header                  content
 =============================  ======================================================================
 
 Channel names may not contain square brackets and the unit is required (``[a.u.]`` for arbitrary units); any
-other column is refused, so a misspelt header is caught. Masked values may be empty cells or ``nan``. The writer
+other column is refused, so a misspelt header is caught. Lines before the header that start with ``#`` are
+comments and are skipped (schedule files open with the caution there). Masked values may be empty cells or
+``nan``. The writer
 emits ``time [s] @ <rate> Hz``, the label ``-1`` outside trials, and ``valid`` as 1/0; numbers are written in
 the shortest form that reads back to the identical float64. Parquet files also store the layout name, version
 and the metadata JSON in the schema metadata keys ``stimsteer_layout``, ``stimsteer_layout_version`` and
@@ -692,10 +694,25 @@ def _write_parquet(session: Session, tmp: Path) -> None:
     pq.write_table(table, tmp)
 
 
+def comment_lines(path) -> int:
+    """Number of leading lines of a CSV table that start with ``#`` (comments before the header, e.g. the
+    caution that ``stimsteer schedule`` writes); readers pass it to ``pandas.read_csv(skiprows=...)``."""
+    n = 0
+    with open(path, encoding="utf-8-sig", errors="replace") as fh:
+        for line in fh:
+            if not line.startswith("#"):
+                break
+            n += 1
+    return n
+
+
 def _read_csv_frame(path: Path):
     import pandas as pd
 
+    skip = comment_lines(path)
     with open(path, newline="", encoding="utf-8-sig") as fh:
+        for _ in range(skip):
+            fh.readline()
         try:
             header = next(csv.reader(fh), [])
         except (csv.Error, UnicodeDecodeError) as exc:
@@ -704,7 +721,7 @@ def _read_csv_frame(path: Path):
     # pandas < 3 parses floats exactly only with the round-trip parser; pandas 3 does so by default.
     extra = {"float_precision": "round_trip"} if int(pd.__version__.split(".")[0]) < 3 else {}
     try:
-        return pd.read_csv(path, encoding="utf-8-sig", **extra)
+        return pd.read_csv(path, encoding="utf-8-sig", skiprows=skip, **extra)
     except (pd.errors.ParserError, ValueError) as exc:
         raise FileFormatError(f"{path} is not a readable CSV table: {exc}") from None
 

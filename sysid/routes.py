@@ -397,13 +397,13 @@ def load_pattern(path) -> Pattern:
         Other columns, missing units, non-numeric or empty cells, or a non-uniform time grid.
     FileNotFoundError
     """
-    from .io import _time_grid
+    from .io import _time_grid, comment_lines
 
     path = Path(path)
     if not path.is_file():
         raise FileNotFoundError(2, "no such pattern file", str(path))
     try:
-        frame = pd.read_csv(path)
+        frame = pd.read_csv(path, skiprows=comment_lines(path))
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise FileFormatError(f"{path} is not a readable CSV table ({exc}); expected {_PATTERN_LAYOUT}.") from None
     time_col, rate_text, inputs = _pattern_columns(frame.columns, path)

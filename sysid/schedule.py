@@ -49,6 +49,8 @@ import scipy.signal as ssig
 from ._files import atomic_path
 from .exceptions import ExcitationError, FileFormatError, InfeasiblePlanError, LimitsError, SessionError
 from .excitation import DEFAULT_TOL_FACTOR, rank_tolerance
+from .caution import CAUTION
+from .io import comment_lines
 from .session import _TrialLayout
 from .hankel import hankel_column_count, row_space_factor
 
@@ -740,7 +742,9 @@ def save_schedule(schedule: Schedule, path, *, overwrite: bool = False) -> Path:
                                   "(no square brackets or edge spaces); rename it.")
         cols[header] = np.asarray(schedule.u[:, j], dtype=np.float64)
     with atomic_path(path) as tmp:
-        pd.DataFrame(cols).to_csv(tmp, index=False)
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
+            fh.write(f"# {CAUTION}\n")  # a schedule is stimulation to deliver; every reader skips this comment
+            pd.DataFrame(cols).to_csv(fh, index=False)
     return path
 
 
@@ -823,7 +827,7 @@ def load_schedule(path):
     path = Path(path)
     try:
         extra = {"float_precision": "round_trip"} if int(pd.__version__.split(".")[0]) < 3 else {}
-        frame = pd.read_csv(path, encoding="utf-8-sig", **extra)
+        frame = pd.read_csv(path, encoding="utf-8-sig", skiprows=comment_lines(path), **extra)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, ValueError) as exc:
         raise FileFormatError(f"{path} is not a readable CSV schedule ({exc}); {_LAYOUT_HINT}.") from None
     spec = _parse_columns([str(c) for c in frame.columns], path)

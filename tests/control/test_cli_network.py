@@ -222,7 +222,9 @@ def test_schedule_command_keeps_an_existing_file_unless_forced(limits_file, tmp_
             "--rate-hz", "50", "--trial-s", "1", "--rest-s", "0.2"]
     assert main(base) == 2
     assert "already exists" in capsys.readouterr().err and out.read_text() == "keep"
-    assert main(base + ["--force"]) == 0 and out.read_text().startswith("time [s] @ 50 Hz")
+    assert main(base + ["--force"]) == 0
+    caution, header = out.read_text().splitlines()[:2]
+    assert caution == f"# {CAUTION}" and header.startswith("time [s] @ 50 Hz")  # a schedule carries the caution
 
 
 def test_schedule_command_bad_limits_file(tmp_path, capsys):

@@ -559,3 +559,16 @@ def test_an_unknown_compression_is_refused_before_anything_is_written(tmp_path, 
     with pytest.raises(FileFormatError, match="compression must be one of"):
         save_session(_session(rng), tmp_path / "s.h5", compression="zstd")
     assert os.listdir(tmp_path) == []
+
+
+def test_comment_lines_before_the_header_are_skipped(tmp_path, rng):
+    # the table layout allows '#' lines before the header (stimsteer writes its caution there in schedules)
+    s = _session(rng)
+    with pytest.warns(StimsteerWarning, match="carry no metadata"):
+        path = save_session(s, tmp_path / "s.csv")
+    text = path.read_text()
+    commented = tmp_path / "c.csv"
+    commented.write_text("# recorded in an invented test\n# second comment\n" + text)
+    back = load_session(commented)
+    np.testing.assert_array_equal(back.y, s.y)
+    assert back.content_hash() == s.content_hash()

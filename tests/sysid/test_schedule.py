@@ -347,3 +347,17 @@ def test_prbs_with_held_bits_ramps_at_the_slew_limit_to_wider_levels():
                         sample_rate_hz=100.0, n_trials=4, trial_s=2.0, rest_s=0.5, seed=5)
     assert np.max(s.u) == pytest.approx(20.0) and np.min(s.u) == pytest.approx(-20.0)
     assert np.max(np.abs(np.diff(np.vstack([[0.0], s.u]), axis=0))) <= 10.0
+
+
+def test_a_schedule_file_opens_with_the_caution_and_reads_back(tmp_path):
+    # a schedule is stimulation to deliver, so its file carries the project's caution (project rule)
+    from stimsteer.sysid.caution import CAUTION
+    from stimsteer.sysid.schedule import design_schedule, load_schedule, save_schedule
+
+    s = design_schedule(n_inputs=1, order=4, lo=[-1.0], hi=[1.0], sample_rate_hz=100.0, n_trials=2, trial_s=1.0,
+                        rest_s=0.2, seed=2)
+    path = save_schedule(s, tmp_path / "s.csv")
+    assert path.read_text().splitlines()[0] == f"# {CAUTION}"
+    u, trials, names, units, rate = load_schedule(path)
+    np.testing.assert_array_equal(u, s.u)
+    assert rate == 100.0
