@@ -39,6 +39,7 @@ import pandas as pd
 import scipy.linalg as sla
 
 from .excitation import check_excitation, rank_tolerance
+from ._windows import window_batch
 from .exceptions import ConditioningWarning, SessionError, SolverError, check_fitted
 from .hankel import _one_blas_thread, block_hankel, combine_factors, row_space_factor
 
@@ -329,18 +330,11 @@ class _DirectPredictor:
     def _batch_windows(self, u_past, y_past, u_future):
         """Stacked ``b`` vectors of a batch of windows, shape (n_windows, len(b)), and the common future length."""
         check_fitted(self, "past_steps_")
-        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
-        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
-        for name, a, c in (("u_past", up, m), ("y_past", yp, p), ("u_future", uf, m)):
-            if a.ndim != 3 or a.shape[2] != c or a.shape[0] != up.shape[0]:
-                raise SessionError(f"{name} must have shape (n_windows, n_samples, {c}); got {a.shape}.")
-            if not np.all(np.isfinite(a)):
-                raise SessionError(f"{name} holds NaN or infinite values; give finite windows.")
-        if up.shape[1] != yp.shape[1] or up.shape[1] < past or not 1 <= uf.shape[1] <= N:
-            raise SessionError(
-                f"each window needs equal past lengths of at least past_steps_ = {past} and 1 to {N} future "
-                f"samples; got {up.shape[1]}, {yp.shape[1]} and {uf.shape[1]}."
-            )
+        m, past, N = self.n_inputs_, self.past_steps_, self.max_horizon_steps_
+        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=m, n_outputs=self.n_outputs_, min_past=past)
+        if not 1 <= uf.shape[1] <= N:
+            raise SessionError(f"u_future must hold 1 to max_horizon_steps_ = {N} samples per window; got "
+                               f"{uf.shape[1]}. Refit with a longer horizon_steps or predict in pieces.")
         W, n_future = up.shape[0], uf.shape[1]
         full = np.zeros((W, N, m))
         full[:, :n_future] = uf

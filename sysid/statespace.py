@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
+from ._windows import window_batch
 from .exceptions import SessionError, UnstableModelError
 
 __all__ = ["StateSpaceModel", "kalman_gain"]
@@ -330,18 +331,8 @@ class StateSpaceModel:
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels), via
         :meth:`prediction_maps` (one matrix product after building them)."""
-        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
+        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=self.n_inputs, n_outputs=self.n_outputs)
         W = up.shape[0]
-        if (up.ndim != 3 or yp.ndim != 3 or uf.ndim != 3 or up.shape[2] != self.n_inputs
-                or yp.shape[2] != self.n_outputs or uf.shape[2] != self.n_inputs or yp.shape[:2] != up.shape[:2]
-                or uf.shape[0] != W):
-            raise SessionError(
-                f"predict_many needs u_past (W, T, {self.n_inputs}), y_past (W, T, {self.n_outputs}) and u_future "
-                f"(W, H, {self.n_inputs}); got {up.shape}, {yp.shape} and {uf.shape}."
-            )
-        for name, a in (("u_past", up), ("y_past", yp), ("u_future", uf)):
-            if not np.all(np.isfinite(a)):
-                raise SessionError(f"{name} holds NaN or infinite values.")
         P, F = self.prediction_maps(up.shape[1], uf.shape[1])
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
         y = past @ P.T + uf.reshape(W, -1) @ F.T
