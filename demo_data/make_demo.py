@@ -210,7 +210,8 @@ def write_demo(out_dir=HERE, *, seed: int = DEMO_SEED, kind: str = "linear") -> 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     session, plant = make_demo(seed, kind=kind)
-    session_path = save_session(session, out_dir / SESSION_FILE, overwrite=True)
+    session_path = save_session(session, out_dir / SESSION_FILE, overwrite=True,
+                                 compression="gzip")  # small to ship
     plant_path = save_plant(plant, out_dir / PLANT_FILE, overwrite=True)
     return Path(session_path), Path(plant_path)
 

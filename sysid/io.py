@@ -32,8 +32,11 @@ name          dtype        shape        content
                                         attribute ``columns = ["start_sample", "stop_sample"]``
 ============  ===========  ===========  ============================================================
 
-``inputs``, ``outputs`` and ``valid`` are chunked along time (about 16 Ki values, 128 KiB, per chunk; by default gzip
-level 4 with byte shuffle), so reading a window decompresses only the chunks it overlaps. A file without the
+By default ``inputs``, ``outputs`` and ``valid`` are stored contiguously and uncompressed, and
+:class:`SessionFile` reads a window of them through a memory map. With ``compression="gzip"`` or ``"lzf"`` they are
+chunked along time (about 16 Ki values, 128 KiB, per chunk, with byte shuffle), so reading a window decompresses
+only the chunks it overlaps. Recorded signals in float64 hardly compress (3–11 % smaller files in
+``benchmarks/bench_fit.py``) while decompression makes reading about ten times slower, hence the default. A file without the
 units attributes, or with an empty unit, is refused (use ``"a.u."`` for arbitrary units).
 
 CSV and Parquet table layout (version 1)
@@ -81,6 +84,7 @@ from __future__ import annotations
 import csv
 import json
 import math
+import mmap
 import re
 import warnings
 from datetime import datetime, timezone
@@ -91,7 +95,7 @@ import numpy as np
 
 from ._files import atomic_path
 from .exceptions import FileFormatError, SessionError, StimsteerError, StimsteerWarning
-from .session import Session, _names, _TrialLayout
+from .session import Session, _names, _TrialLayout, check_read_buffers
 
 __all__ = [
     "LAYOUT_NAME",
@@ -263,7 +267,7 @@ def load_session(path) -> Session:
     return _session_from_table(frame, path, metadata)
 
 
-def save_session(session: Session, path, *, overwrite: bool = False, compression: str = "gzip") -> Path:
+def save_session(session: Session, path, *, overwrite: bool = False, compression: str = "none") -> Path:
     """Write a session atomically; the layout follows the suffix.
 
     Parameters
@@ -273,10 +277,11 @@ def save_session(session: Session, path, *, overwrite: bool = False, compression
         ``.h5`` / ``.hdf5`` (our HDF5 layout), ``.csv``, ``.parquet``, or ``.nwb`` (needs the ``nwb`` extra).
     overwrite : bool, default False
         Replace an existing file. Without it an existing file is an error and is left untouched.
-    compression : {"gzip", "lzf", "none"}, default "gzip"
-        Chunk compression of our HDF5 layout (ignored by the other layouts). ``"gzip"`` gives the smallest files;
-        ``"lzf"`` (built into h5py) writes faster; ``"none"`` reads fastest (``benchmarks/bench_fit.py`` measures
-        a streaming fit from each). Any reader reads all three.
+    compression : {"none", "gzip", "lzf"}, default "none"
+        Compression of our HDF5 layout (ignored by the other layouts). ``"none"`` stores the signals contiguously
+        and reads fastest (through a memory map); ``"gzip"`` gives the smallest files (chunked, byte shuffle,
+        level 4); ``"lzf"`` (built into h5py) lies between. ``benchmarks/bench_fit.py`` measures a streaming fit
+        from each. Any reader reads all three.
 
     Returns
     -------
@@ -349,7 +354,9 @@ def _chunks(shape: tuple) -> tuple | None:
 
 
 def _create(h, name: str, data: np.ndarray, compression: dict):
-    chunks = _chunks(data.shape)
+    # Without compression the data are stored contiguously: any window is then one byte range, which SessionFile
+    # reads through a memory map (no HDF5 call, no interpreter lock held).
+    chunks = _chunks(data.shape) if compression else None
     extra = compression if chunks is not None else {}
     return h.create_dataset(name, data=data, chunks=chunks, **extra)
 
@@ -398,6 +405,39 @@ def open_session_file(path) -> "SessionFile":
             "load_session to read it whole, or convert it with save_session(..., 'name.h5')."
         )
     return SessionFile(path)
+
+
+class _MappedRows:
+    """Rows of a contiguous 2-D dataset, copied out of a read-only memory map of its byte range.
+
+    Each read copies the window (float64, a fresh array) and then unmaps the window's pages from this process
+    (``MADV_DONTNEED``; they stay in the operating system's file cache), so the resident memory of a long streaming
+    pass stays at one window instead of growing to the size of the file.
+    """
+
+    def __init__(self, path: Path, offset: int, dtype: np.dtype, shape: tuple):
+        start = offset // mmap.ALLOCATIONGRANULARITY * mmap.ALLOCATIONGRANULARITY
+        self._delta = offset - start
+        self._row_bytes = int(shape[1]) * dtype.itemsize
+        count = int(shape[0]) * int(shape[1])
+        with open(path, "rb") as fh:
+            self._mm = mmap.mmap(fh.fileno(), self._delta + count * dtype.itemsize, access=mmap.ACCESS_READ,
+                                 offset=start)
+        self._rows = np.frombuffer(self._mm, dtype=dtype, count=count, offset=self._delta).reshape(shape)
+
+    def read(self, start: int, stop: int, out: np.ndarray | None = None) -> np.ndarray:
+        if out is None:
+            out = np.array(self._rows[start:stop], dtype=np.float64)
+        else:
+            np.copyto(out, self._rows[start:stop])
+        if stop > start and hasattr(self._mm, "madvise") and hasattr(mmap, "MADV_DONTNEED"):
+            lo = (self._delta + start * self._row_bytes) // mmap.PAGESIZE * mmap.PAGESIZE
+            self._mm.madvise(mmap.MADV_DONTNEED, lo, self._delta + stop * self._row_bytes - lo)
+        return out
+
+    def close(self) -> None:
+        self._rows = None
+        self._mm.close()
 
 
 class SessionFile(_TrialLayout):
@@ -470,6 +510,31 @@ class SessionFile(_TrialLayout):
         self.trials = self._checked(Session._check_trials, self._dataset("trials", 2, "iu")[()], n)
         self.trials.setflags(write=False)
         self.metadata = self._metadata()
+        self._u_map, self._y_map = self._mapped(self._u), self._mapped(self._y)
+
+    def _mapped(self, ds) -> "_MappedRows | None":
+        """A memory-mapped reader of a contiguous, unfiltered, native-order dataset, or None (read through h5py).
+
+        Copying a window out of the map releases the interpreter lock (h5py holds it), so streaming fits overlap
+        their reads with their arithmetic. The map is checked against h5py's own reading of the first and last
+        rows; any doubt falls back to h5py.
+        """
+        try:
+            offset = ds.id.get_offset()
+        except (AttributeError, RuntimeError, ValueError):
+            offset = None
+        if offset is None or ds.chunks is not None or ds.compression is not None or not ds.dtype.isnative \
+                or ds.size == 0 or ds.ndim != 2:
+            return None
+        try:
+            mapped = _MappedRows(self.path, int(offset), ds.dtype, ds.shape)
+        except (OSError, ValueError):
+            return None
+        n = ds.shape[0]
+        if not all(np.array_equal(mapped.read(i, i + 1), ds[i:i + 1], equal_nan=True) for i in (0, n - 1)):
+            mapped.close()
+            return None
+        return mapped
 
     def _checked(self, check, *args):
         try:
@@ -529,8 +594,16 @@ class SessionFile(_TrialLayout):
             raise StimsteerError(f"session file {self.path} is closed; open it again with open_session_file.")
         return self._h5
 
-    def read(self, start: int, stop: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Samples ``[start, stop)`` as ``(u, y, mask)``, reading only the chunks that overlap the window.
+    def read(self, start: int, stop: int, *, out=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Samples ``[start, stop)`` as ``(u, y, mask)``, reading only the part of the file the window covers.
+
+        Parameters
+        ----------
+        start, stop : int
+        out : (ndarray, ndarray), optional
+            ``(u_out, y_out)``, float64 arrays of shapes ``(stop - start, n_inputs)`` and
+            ``(stop - start, n_outputs)`` (views, e.g. column blocks of one array, are fine) to read into instead
+            of fresh arrays; a streaming pass re-uses its buffers this way.
 
         Returns
         -------
@@ -541,7 +614,7 @@ class SessionFile(_TrialLayout):
         Raises
         ------
         SessionError
-            The window is outside the recording.
+            The window is outside the recording, or ``out`` does not fit it.
         FileFormatError
             The window holds a mask value other than 0/1 or a NaN / infinite value at a valid sample.
         """
@@ -549,15 +622,30 @@ class SessionFile(_TrialLayout):
         start, stop = int(start), int(stop)
         if not 0 <= start <= stop <= self.n_samples:
             raise SessionError(f"window [{start}, {stop}) is outside the recording of {self.n_samples} samples.")
-        u = np.asarray(self._u[start:stop], dtype=np.float64)
-        y = np.asarray(self._y[start:stop], dtype=np.float64)
+        if out is None:
+            u, y = self._window(self._u, self._u_map, start, stop), self._window(self._y, self._y_map, start, stop)
+        else:
+            u, y = check_read_buffers(out, stop - start, self.n_inputs, self.n_outputs)
+            for ds, mapped, dest in ((self._u, self._u_map, u), (self._y, self._y_map, y)):
+                if mapped is None:
+                    dest[...] = ds[start:stop]
+                else:
+                    mapped.read(start, stop, out=dest)
         mask = self._read_mask(start, stop)
         for name, a in (("inputs", u), ("outputs", y)):
+            if np.isfinite(a).all():
+                continue
             bad = ~np.isfinite(a) & mask[:, None]
             if bad.any():
                 self._fail(f"'/{name}' holds NaN or infinite values at valid samples (first at sample "
                            f"{start + int(np.nonzero(bad)[0][0])}); mark them invalid in '/valid'.")
         return u, y, mask
+
+    @staticmethod
+    def _window(ds, mapped, start: int, stop: int) -> np.ndarray:
+        if mapped is None:
+            return np.asarray(ds[start:stop], dtype=np.float64)
+        return mapped.read(start, stop)
 
     def _read_mask(self, start: int, stop: int) -> np.ndarray:
         raw = np.asarray(self._open()["valid"][start:stop])
@@ -609,6 +697,10 @@ class SessionFile(_TrialLayout):
 
     def close(self) -> None:
         """Close the file (idempotent)."""
+        for mapped in (getattr(self, "_u_map", None), getattr(self, "_y_map", None)):
+            if mapped is not None:
+                mapped.close()
+        self._u_map = self._y_map = None
         if self._h5.id.valid:
             self._h5.close()
 

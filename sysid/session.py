@@ -83,6 +83,20 @@ def _names(kind: str, names, n: int, prefix: str) -> tuple[str, ...]:
     return names
 
 
+def check_read_buffers(out, n: int, m: int, p: int) -> tuple[np.ndarray, np.ndarray]:
+    """The ``(u_out, y_out)`` buffers of a ``read(..., out=...)``, checked against the window's shapes (shared by
+    :class:`Session` and the lazily opened session file)."""
+    try:
+        u, y = out
+    except (TypeError, ValueError):
+        raise SessionError("out must be a pair (u_out, y_out) of float64 arrays.") from None
+    for name, a, shape in (("u_out", u, (n, m)), ("y_out", y, (n, p))):
+        if not isinstance(a, np.ndarray) or a.dtype != np.float64 or a.shape != shape or not a.flags.writeable:
+            raise SessionError(f"{name} must be a writeable float64 array of shape {shape}; got "
+                               f"{getattr(a, 'dtype', type(a).__name__)} {getattr(a, 'shape', '')}.")
+    return u, y
+
+
 class _TrialLayout:
     """Trial counts and durations of anything with ``trials``, ``n_samples`` and ``sample_rate_hz``
     (a :class:`Session` and a lazily opened session file alike)."""
@@ -312,12 +326,21 @@ class Session(_TrialLayout):
                     out.append((int(a + s), int(a + e)))
         return out
 
-    def read(self, start: int, stop: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Samples ``[start, stop)`` as ``(u, y, mask)``; the same call exists on a lazily opened session file."""
+    def read(self, start: int, stop: int, *, out=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Samples ``[start, stop)`` as ``(u, y, mask)``; the same call exists on a lazily opened session file.
+
+        Without ``out`` the arrays are read-only views. ``out = (u_out, y_out)`` copies the window into those
+        float64 arrays (shapes ``(stop - start, n_inputs)`` and ``(stop - start, n_outputs)``) and returns them.
+        """
         start, stop = int(start), int(stop)
         if not 0 <= start <= stop <= self.n_samples:
             raise SessionError(f"window [{start}, {stop}) is outside the recording of {self.n_samples} samples.")
-        return self.u[start:stop], self.y[start:stop], self.mask[start:stop]
+        if out is None:
+            return self.u[start:stop], self.y[start:stop], self.mask[start:stop]
+        u, y = check_read_buffers(out, stop - start, self.n_inputs, self.n_outputs)
+        np.copyto(u, self.u[start:stop])
+        np.copyto(y, self.y[start:stop])
+        return u, y, self.mask[start:stop]
 
     def select_trials(self, indices: Sequence[int]) -> "Session":
         """A new session holding only the given trials (in the given order), concatenated and re-indexed.

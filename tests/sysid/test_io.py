@@ -117,9 +117,13 @@ def test_hdf5_layout_is_as_documented(tmp_path, rng):
         assert json.loads(h.attrs["metadata_json"]) == s.metadata
         assert h["inputs"].shape == (600, 2) and h["outputs"].shape == (600, 3) and h["valid"].dtype == np.uint8
         assert list(h["outputs"].attrs["channel_units"]) == ["mV", "mV", "µV"]
-        # chunk rows = min(T, 16384 // width), gzip: as the module docstring documents
-        assert h["inputs"].chunks == (600, 2) and h["inputs"].compression == "gzip"
+        # by default contiguous and uncompressed, as the module docstring documents
+        assert h["inputs"].chunks is None and h["inputs"].compression is None
         assert h["trials"][()].tolist() == [[0, 200], [250, 420], [420, 600]]
+    save_session(s, tmp_path / "g.h5", compression="gzip")
+    with h5py.File(tmp_path / "g.h5", "r") as h:
+        # chunk rows = min(T, 16384 // width), gzip with shuffle: as the module docstring documents
+        assert h["inputs"].chunks == (600, 2) and h["inputs"].compression == "gzip" and h["inputs"].shuffle
 
 
 # ------------------------------------------------------------------------------------------------ hand-written tables
@@ -527,7 +531,7 @@ def test_reading_a_window_touches_only_its_chunks(tmp_path, rng):
     n = 200_000
     s = Session(u=rng.standard_normal((n, 2)), y=rng.standard_normal((n, 3)), sample_rate_hz=1000.0)
     path = tmp_path / "big.h5"
-    save_session(s, path)
+    save_session(s, path, compression="gzip")
     size = path.stat().st_size
     with h5py.File(path, "r") as h:
         assert h["outputs"].chunks == (16384 // 3, 3)  # many chunks along time
@@ -541,6 +545,66 @@ def test_reading_a_window_touches_only_its_chunks(tmp_path, rng):
     assert np.array_equal(u, s.u[120_000:121_000]) and np.array_equal(y, s.y[120_000:121_000]) and mask.all()
     assert window_bytes < 0.1 * size  # measured ~3 % with 128 KiB chunks
     assert whole_bytes > 0.9 * size  # the counter does see reads of the whole file
+
+
+def _rss_file_bytes():
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("RssFile:"):
+                return int(line.split()[1]) * 1024  # the kernel reports kB (Linux proc(5) manual page)
+    raise OSError("no RssFile line")
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="needs Linux /proc/self/status")
+def test_an_uncompressed_file_is_read_through_a_memory_map_that_holds_only_the_window(tmp_path, rng):
+    # 80 MB of outputs read window by window through the memory map: the file-backed pages resident in this process
+    # (RssFile, Linux proc(5) manual page) must stay small, not grow to the size of the file. Pages may be 2 MiB
+    # huge pages (seen on a tmpfs), so the bound is loose.
+    n = 200_000
+    s = Session(u=rng.standard_normal((n, 2)), y=rng.standard_normal((n, 50)), sample_rate_hz=1000.0)
+    path = save_session(s, tmp_path / "big.h5")
+    size = path.stat().st_size
+    with open_session_file(path) as f:
+        assert f._y_map is not None and f._u_map is not None
+        f.read(10, 20)  # the same code path once, so the counter below sees the windows' pages only
+        before = _rss_file_bytes()
+        peak = 0
+        for a in range(0, n, 10_000):
+            u, y, mask = f.read(a, a + 10_000)
+            peak = max(peak, _rss_file_bytes() - before)
+            np.testing.assert_array_equal(y, s.y[a:a + 10_000])
+            np.testing.assert_array_equal(u, s.u[a:a + 10_000])
+        assert y.flags.writeable and y.flags.owndata  # a fresh copy, not a view of the map
+    assert peak < 0.15 * size
+
+
+def test_hdf5_files_that_cannot_be_mapped_are_read_through_h5py(tmp_path, rng):
+    # Written by another program: chunked without compression, and big-endian. Both must read correctly.
+    s = _session(rng)
+    save_session(s, tmp_path / "s.h5")
+    for name, kw in (("chunked", {"chunks": (50, 3)}), ("big_endian", {"dtype": ">f8"})):
+        path = tmp_path / f"{name}.h5"
+        with h5py.File(tmp_path / "s.h5", "r") as src, h5py.File(path, "w") as dst:
+            dst.attrs.update(src.attrs)
+            for key in src:
+                data = src[key][()]
+                extra = kw if key == "outputs" else {}
+                ds = dst.create_dataset(key, data=data, **extra)
+                ds.attrs.update(src[key].attrs)
+        with open_session_file(path) as f:
+            assert f._y_map is None and f._u_map is not None
+            u, y, mask = f.read(10, 300)
+        np.testing.assert_array_equal(y, s.y[10:300])
+        np.testing.assert_array_equal(u, s.u[10:300])
+        np.testing.assert_array_equal(mask, s.mask[10:300])
+
+
+def test_a_closed_file_refuses_reads_even_with_a_memory_map(tmp_path, rng):
+    path = save_session(_session(rng), tmp_path / "s.h5")
+    f = open_session_file(path)
+    f.close()
+    with pytest.raises(StimsteerError, match="is closed"):
+        f.read(0, 10)
 
 
 @pytest.mark.parametrize("compression", ["gzip", "lzf", "none"])
@@ -572,3 +636,22 @@ def test_comment_lines_before_the_header_are_skipped(tmp_path, rng):
     back = load_session(commented)
     np.testing.assert_array_equal(back.y, s.y)
     assert back.content_hash() == s.content_hash()
+
+
+@pytest.mark.parametrize("compression", ["none", "gzip"])
+def test_read_into_buffers_equals_a_plain_read(tmp_path, rng, compression):
+    # Session.read and SessionFile.read (memory map or h5py) write the same window into column blocks of one array.
+    s = _session(rng)
+    path = save_session(s, tmp_path / f"s_{compression}.h5", compression=compression)
+    with open_session_file(path) as f:
+        for source in (s, f):
+            Z = np.full((150, s.n_outputs + s.n_inputs), np.nan)
+            u, y, mask = source.read(100, 250, out=(Z[:, s.n_outputs:], Z[:, : s.n_outputs]))
+            np.testing.assert_array_equal(Z[:, : s.n_outputs], s.y[100:250])
+            np.testing.assert_array_equal(Z[:, s.n_outputs:], s.u[100:250])
+            np.testing.assert_array_equal(mask, s.mask[100:250])
+            assert np.shares_memory(u, Z) and np.shares_memory(y, Z)
+            with pytest.raises(SessionError, match=r"y_out must be a writeable float64 array of shape \(150, 3\)"):
+                source.read(100, 250, out=(Z[:, s.n_outputs:], Z[:149, : s.n_outputs]))
+            with pytest.raises(SessionError, match="out must be a pair"):
+                source.read(100, 250, out=Z)
