@@ -11,13 +11,15 @@ Why a structured Gram: every block of the regression Gram ``XᵀX`` is a sum of 
 ``Z = [y u]`` samples, ``sum_k Z_{k-a} Z_{k-b}ᵀ``. Blocks that share a lag difference ``b - a`` share one product
 ``sum_t Z_t Z_{t-(b-a)}ᵀ`` and differ only by a few edge samples, so a chunk of ``n`` rows costs ``L + 1`` products
 of an ``(n × (p+m))`` matrix (``L`` = longest lag) instead of one product of the ``(n × d)`` design, which is never
-built. Chunks are read one at a time from a :class:`~stimsteer.sysid.session.Session` or a lazily opened session
-file, so memory does not grow with the length of the recording.
+built. The edge samples are settled once per piece of rows (at its first and last chunk), not per chunk. Chunks are
+read one at a time from a :class:`~stimsteer.sysid.session.Session` or a lazily opened session file into a few
+re-used buffers, so memory does not grow with the length of the recording.
 """
 
 from __future__ import annotations
 
 import contextlib
+import inspect
 import warnings
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
@@ -57,46 +59,87 @@ class _Moments:
         return out
 
 
-def _lagged_moments(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
-    """Sums and Gram of the lagged vectors of the rows held in a buffer, without building the lagged design.
+class _PieceSums:
+    """Running sums of one fold, in the compact form the stream produces (assembled into :class:`_Moments` once).
+
+    ``S`` and ``X[δ]`` sum ``Z_t`` and ``Z_t Z_{t-δ}ᵀ`` over the rows ``t`` of every chunk; ``E[a, δ]`` and ``e[a]``
+    sum the edge terms of every piece (see :func:`_edge_terms`).
+    """
+
+    def __init__(self, c: int, n_lags: int):
+        L = n_lags
+        self.n = 0
+        self.S = np.zeros(c)
+        self.X = np.zeros((L + 1, c, c))
+        self.E = np.zeros((L + 1, L + 1, c, c))
+        self.e = np.zeros((L + 1, c))
+
+    def moments(self) -> _Moments:
+        """Sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over all rows of the fold.
+
+        Block ``(a, b = a + δ)`` of the Gram is ``sum_k Z_{k-a} Z_{k-b}ᵀ = X[δ] + E[a, δ]``.
+        """
+        Lp1, c = self.X.shape[0], self.X.shape[1]
+        out = _Moments(Lp1 * c)
+        out.n = self.n
+        out.s = np.concatenate([self.S + self.e[a] for a in range(Lp1)])
+        W = out.W
+        for a in range(Lp1):
+            for delta in range(Lp1 - a):
+                b = a + delta
+                block = self.X[delta] + self.E[a, delta]
+                W[a * c:(a + 1) * c, b * c:(b + 1) * c] = block
+                W[b * c:(b + 1) * c, a * c:(a + 1) * c] = block.T
+        return out
+
+
+def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sums and lag products over the rows of one chunk, without building the lagged design.
 
     Parameters
     ----------
-    B : ndarray, shape (n_rows + L, c)
-        Samples ``Z`` of one valid segment piece: the ``L`` samples before the first row, then the rows.
+    B : ndarray, shape (L + n, c)
+        Samples ``Z``: the ``L`` samples before the chunk's first row, then its ``n`` rows.
     n_lags : int
         ``L``, the longest lag.
 
     Returns
     -------
-    s : ndarray, shape (c (L+1),)
-        ``sum_k w_k`` with ``w_k = [Z_k; ...; Z_{k-L}]`` over the ``n_rows`` rows.
-    W : ndarray, shape (c (L+1), c (L+1))
-        ``sum_k w_k w_kᵀ``; block (a, b) is ``sum_k Z_{k-a} Z_{k-b}ᵀ``.
-
-    Notes
-    -----
-    With buffer index ``t``, row ``k`` reads ``Z_{k-a} = B[L - a + (k - k0)]``. For ``b = a + δ``::
-
-        block(a, b) = sum_{t=δ}^{n+L-1} B_t B_{t-δ}ᵀ - sum_{t=δ}^{L-a-1} B_t B_{t-δ}ᵀ - sum_{t=L-a+n}^{n+L-1} B_t B_{t-δ}ᵀ
-
-    one large product per lag difference ``δ`` and two corrections of at most ``L`` samples each.
+    S : ndarray, shape (c,)
+        ``sum_t Z_t`` over the chunk's rows.
+    X : ndarray, shape (L + 1, c, c)
+        ``X[δ] = sum_t Z_t Z_{t-δ}ᵀ`` over the chunk's rows ``t`` (``Z_{t-δ}`` may lie in the lead-in): one
+        product of two ``(n × c)`` matrices per lag difference, the symmetric ``δ = 0`` one by a rank-k update.
     """
     L = n_lags
-    n = B.shape[0] - L
-    c = B.shape[1]
-    W = np.empty(((L + 1) * c, (L + 1) * c))
-    total = B.sum(axis=0)
-    s = np.concatenate([total - B[: L - a].sum(axis=0) - B[L - a + n:].sum(axis=0) for a in range(L + 1)])
+    n, c = B.shape[0] - L, B.shape[1]
+    rows = B[L:]
+    X = np.empty((L + 1, c, c))
     for delta in range(L + 1):
-        P = B.T @ B if delta == 0 else B[delta:].T @ B[: n + L - delta]
-        for a in range(L + 1 - delta):
-            b = a + delta
-            block = P - B[delta: L - a].T @ B[: L - a - delta]
-            block -= B[L - a + n:].T @ B[L - a + n - delta: n + L - delta]
-            W[a * c:(a + 1) * c, b * c:(b + 1) * c] = block
-            W[b * c:(b + 1) * c, a * c:(a + 1) * c] = block.T
-    return s, W
+        np.matmul(rows.T, B[L - delta: L - delta + n], out=X[delta])
+    return rows.sum(axis=0), X
+
+
+def _edge_terms(B: np.ndarray, n_lags: int, sign: float, at_start: bool, E: np.ndarray, e: np.ndarray) -> None:
+    """Add ``sign`` × the edge terms of a piece of rows ``[r0, r1)`` to ``E`` and ``e`` (in place).
+
+    Over the piece, ``sum_k Z_{k-a} Z_{k-a-δ}ᵀ`` is the chunk sum ``sum_{t=r0}^{r1-1} Z_t Z_{t-δ}ᵀ`` with its window
+    shifted back by ``a``: plus the ``a`` terms ``t = r0-a … r0-1`` (from the first chunk's lead-in, ``at_start``,
+    sign +1), minus the ``a`` terms ``t = r1-a … r1-1`` (from the last chunk's end, sign −1); likewise for the sums.
+    At most ``L`` samples each, accumulated one sample at a time over ``a``.
+    """
+    L = n_lags
+    end = L if at_start else B.shape[0]  # buffer index one past the last sample of the shifted-out window
+    c = B.shape[1]
+    acc = np.zeros((L + 1, c, c))
+    acc_s = np.zeros(c)
+    for a in range(1, L + 1):
+        t = end - a
+        acc_s += B[t]
+        e[a] += sign * acc_s
+        for delta in range(L + 1 - a):
+            acc[delta] += np.outer(B[t], B[t - delta])
+            E[a, delta] += sign * acc[delta]
 
 
 # ------------------------------------------------------------------------------------------------ data access
@@ -142,9 +185,11 @@ def _block_pieces(segs, n_folds: int):
 
 
 def _chunks(pieces, chunk_rows: int):
+    """``(k0, k1, fold, first, last)`` for consecutive row ranges of at most ``chunk_rows`` inside each piece."""
     for a, b, f in pieces:
         for k0 in range(a, b, chunk_rows):
-            yield k0, min(b, k0 + chunk_rows), f
+            k1 = min(b, k0 + chunk_rows)
+            yield k0, k1, f, k0 == a, k1 == b
 
 
 @contextlib.contextmanager
@@ -167,13 +212,18 @@ def _single_threaded_blas():
         yield max(1, n)
 
 
-def _chunk_moments(B: np.ndarray, shift: np.ndarray, n_lags: int, n_outputs: int):
-    """Worker task: input range, shifted in place, then the lagged moments of one chunk."""
-    u = B[:, n_outputs:]
-    lo, hi = u.min(axis=0), u.max(axis=0)
-    B -= shift
-    s, W = _lagged_moments(B, n_lags)
-    return s, W, lo, hi
+def _chunk_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
+    """Worker task: the chunk's sums and products, and the edge terms of its piece when it starts or ends one."""
+    S, X = _chunk_products(B, n_lags)
+    if not (first or last):
+        return S, X, None, None
+    c = B.shape[1]
+    E, e = np.zeros((n_lags + 1, n_lags + 1, c, c)), np.zeros((n_lags + 1, c))
+    if first:
+        _edge_terms(B, n_lags, +1.0, True, E, e)
+    if last:
+        _edge_terms(B, n_lags, -1.0, False, E, e)
+    return S, X, E, e
 
 
 def _parallel_pass(chunks, load, task, n_workers: int):
@@ -198,13 +248,70 @@ def _parallel_pass(chunks, load, task, n_workers: int):
         pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _read_z(session, start: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
-    """Samples ``[start, stop)`` as ``Z = [y u]`` (float64, a fresh array) and the inputs alone (a view of Z)."""
-    u, y, _mask = session.read(start, stop)
-    Z = np.empty((stop - start, y.shape[1] + u.shape[1]))
-    Z[:, : y.shape[1]] = y
-    Z[:, y.shape[1]:] = u
-    return Z, Z[:, y.shape[1]:]
+def _reads_into(session) -> bool:
+    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; other sources need only
+    ``read(start, stop)``)."""
+    try:
+        return "out" in inspect.signature(session.read).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+def _read_z(session, start: int, stop: int, shift: np.ndarray | None = None, buffer: np.ndarray | None = None):
+    """Samples ``[start, stop)`` as ``Z = [y u] − shift`` (float64) and the raw inputs' range ``(min, max)``.
+
+    ``Z`` is a fresh array, or the leading rows of ``buffer`` when given (re-using buffers spares the page faults of
+    fresh allocations); the shift is subtracted while copying.
+    """
+    p = session.n_outputs
+    Z = np.empty((stop - start, p + session.n_inputs)) if buffer is None else buffer[: stop - start]
+    if _reads_into(session):
+        u, _y, _mask = session.read(start, stop, out=(Z[:, p:], Z[:, :p]))
+    else:
+        u, y, _mask = session.read(start, stop)
+        Z[:, :p], Z[:, p:] = y, u
+    rng = (u.min(axis=0), u.max(axis=0)) if u.shape[0] else (np.full(u.shape[1], np.inf), np.full(u.shape[1], -np.inf))
+    if shift is not None:
+        Z -= shift
+    return Z, rng
+
+
+def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, shift: np.ndarray):
+    """One pass over the pieces: the compact sums of each fold (:class:`_PieceSums`) and the inputs' range.
+
+    Chunks are read here (in the calling thread) into a ring of re-used buffers and reduced on worker threads with
+    single-threaded BLAS; the sums are taken in chunk order, so every run gives the same numbers.
+    """
+    c = shift.size
+    folds = [_PieceSums(c, n_lags) for _ in range(n_folds)]
+    m = session.n_inputs
+    lo, hi = np.full(m, np.inf), np.full(m, -np.inf)
+    longest = max((min(b - a, chunk_rows) for a, b, _f in pieces), default=0) + n_lags
+    count = iter(range(1 << 62))
+
+    def load(chunk):
+        k0, k1, _f, first, last = chunk
+        return _read_z(session, k0 - n_lags, k1, shift, ring[next(count) % len(ring)]), first, last
+
+    def task(loaded):
+        (Z, rng), first, last = loaded
+        return _chunk_task(Z, n_lags, first, last), rng
+
+    with _single_threaded_blas() as n_workers:
+        # _parallel_pass holds at most n_workers chunks when it loads the next one, so n_workers + 1 buffers
+        # suffice; one more is a margin.
+        ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]
+        for (k0, k1, f, _first, _last), ((S, X, E, e), (c_lo, c_hi)) in _parallel_pass(
+                _chunks(pieces, chunk_rows), load, task, n_workers):
+            acc = folds[f]
+            acc.n += k1 - k0
+            acc.S += S
+            acc.X += X
+            if E is not None:
+                acc.E += E
+                acc.e += e
+            lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
+    return folds, lo, hi
 
 
 # ------------------------------------------------------------------------------------------------ solving
@@ -268,18 +375,22 @@ class _Problem:
         betas, conds = _ridge_path(R, r, alphas)
         return [b / scale[:, None] for b in betas], scale, conds, mu
 
-    def validation_error(self, beta, train: _Moments, test: _Moments) -> float:
-        """Mean over output channels of SSE / SST on ``test`` for coefficients fitted on ``train``.
+    def validation_errors(self, betas, train: _Moments, test: _Moments) -> list[float]:
+        """Mean over output channels of SSE / SST on ``test`` for each coefficient set fitted on ``train``.
 
-        SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``).
+        SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``). The test
+        moments are centred once for all coefficient sets.
         """
         Qxx, Qxy, Qyy, _ = self.centred(test, mean_from=train)
-        sse = np.diag(Qyy) - 2.0 * (beta * Qxy).sum(axis=0) + (beta * (Qxx @ beta)).sum(axis=0)
-        sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
         yi = self.y_idx
         sst = np.diag(test.W)[yi] - test.s[yi] ** 2 / test.n
         ok = sst > 0
-        return float(np.mean(sse[ok] / sst[ok])) if ok.any() else np.nan
+        out = []
+        for beta in betas:
+            sse = np.diag(Qyy) - 2.0 * (beta * Qxy).sum(axis=0) + (beta * (Qxx @ beta)).sum(axis=0)
+            sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
+            out.append(float(np.mean(sse[ok] / sst[ok])) if ok.any() else np.nan)
+        return out
 
 
 # ------------------------------------------------------------------------------------------------ state space
@@ -436,8 +547,9 @@ class RidgeArx:
 
     The streaming pass reads chunks in the calling thread while worker threads (as many as BLAS would use, each
     with single-threaded BLAS, process-wide for the duration of the pass) accumulate the chunks already read; the
-    sums are taken in chunk order, so every run gives the same numbers. Peak memory is about ``workers + 2`` chunks
-    of ``chunk_samples × (p + m)`` values.
+    sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
+    buffers of ``chunk_samples × (p + m)`` values, which bound the peak memory (sources whose ``read`` takes
+    ``out=``, as Session and SessionFile do, are read straight into them).
 
     References
     ----------
@@ -547,27 +659,14 @@ class RidgeArx:
 
     def _accumulate(self, session, prob: _Problem):
         pieces, k, scheme = _pieces(session, prob.L, int(self.n_folds))
-        folds = [_Moments(prob.size) for _ in range(k)]
-        L, p = prob.L, prob.p
-        lo, hi = np.full(prob.m, np.inf), np.full(prob.m, -np.inf)
+        L = prob.L
         first = pieces[0]
         # A provisional offset (the first chunk's mean) keeps the later centring (W − n μ μᵀ) free of cancellation.
         shift = _read_z(session, first[0] - L, min(first[1], first[0] + int(self.chunk_samples)))[0].mean(axis=0) \
             if prob.fit_intercept else np.zeros(prob.c)
-
-        def load(chunk):
-            return _read_z(session, chunk[0] - L, chunk[1])[0]
-
-        def task(B):
-            return _chunk_moments(B, shift, L, p)
-
-        with _single_threaded_blas() as n_workers:
-            for (k0, k1, f), (s, W, c_lo, c_hi) in _parallel_pass(_chunks(pieces, int(self.chunk_samples)), load,
-                                                                    task, n_workers):
-                folds[f].add(k1 - k0, s, W)
-                lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
+        sums, lo, hi = _stream_sums(session, pieces, k, L, int(self.chunk_samples), shift)
         self._check_inputs_vary(session, lo, hi)
-        return folds, k, scheme, np.tile(shift, L + 1)
+        return [f.moments() for f in sums], k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
         names = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(len(lo))))
@@ -595,7 +694,7 @@ class RidgeArx:
             if held.n == 0 or train.n <= prob.x_idx.size:
                 continue
             betas, _scale, _conds, _mu = prob.solve(train, alphas)
-            errors[:, f] = [prob.validation_error(b, train, held) for b in betas]
+            errors[:, f] = prob.validation_errors(betas, train, held)
         table = pd.DataFrame({"alpha": alphas})
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored

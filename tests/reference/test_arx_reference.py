@@ -16,7 +16,7 @@ import pytest
 import scipy.signal
 from sklearn.linear_model import Ridge
 
-from stimsteer.sysid.arx import RidgeArx, _chunks, _lagged_moments, _pieces, _Problem, _read_z
+from stimsteer.sysid.arx import RidgeArx, _pieces, _Problem, _stream_sums
 from stimsteer.sysid.metrics import ljung_box
 from stimsteer.sysid.session import Session
 
@@ -81,26 +81,33 @@ def test_ridge_equals_sklearn_on_standardised_rows(rng, alpha, fit_intercept):
         np.testing.assert_allclose(est.intercept_, Y.mean(0) - est.coef_ @ X.mean(0), rtol=0, atol=1e-10)
 
 
-def test_structured_gram_equals_materialised_gram(rng):
-    s = noisy_session(rng)
+@pytest.mark.parametrize("n_trials, chunk_rows", [(5, 61), (5, 1), (5, 10_000), (1, 7)])
+def test_structured_gram_equals_materialised_gram(rng, n_trials, chunk_rows):
+    # The streamed sums of every fold against the Gram of the materialised lagged rows (the definition of the
+    # normal equations). Chunks of 61, 1 and 10,000 rows put chunk edges inside pieces, at every row, and nowhere;
+    # one trial is folded into contiguous blocks, so pieces also start and end inside a segment.
+    s = noisy_session(rng, n_trials=n_trials, length=1500 // n_trials)
     prob = _Problem(2, 3, 3, 2, 2, False)
     L = prob.L
-    pieces, _k, _scheme = _pieces(s, L, 5)
-    W = np.zeros((prob.size, prob.size))
-    total = np.zeros(prob.size)
-    for k0, k1, _f in _chunks(pieces, 61):  # small chunks: many chunk edges inside segments
-        B, _u = _read_z(s, k0 - L, k1)
-        sums, Wc = _lagged_moments(B, L)
-        W += Wc
-        total += sums
-    rows = []
-    for a, b, _f in pieces:
-        for k in range(a, b):
-            rows.append(np.concatenate([np.concatenate([s.y[k - lag], s.u[k - lag]]) for lag in range(L + 1)]))
-    Z = np.array(rows)
-    G = Z.T @ Z
-    assert np.abs(W - G).max() <= 1e-12 * np.abs(G).max()
-    np.testing.assert_allclose(total, Z.sum(0), rtol=0, atol=1e-12 * np.abs(Z).sum())
+    pieces, k, _scheme = _pieces(s, L, 5)
+    shift = rng.standard_normal(prob.c)
+    folds, lo, hi = _stream_sums(s, pieces, k, L, chunk_rows, shift)
+    for f, acc in enumerate(folds):
+        mom = acc.moments()
+        rows = []
+        for a, b, fold in pieces:
+            if fold == f:
+                for t in range(a, b):
+                    rows.append(np.concatenate([np.concatenate([s.y[t - lag], s.u[t - lag]]) - shift
+                                                for lag in range(L + 1)]))
+        Z = np.array(rows)
+        G = Z.T @ Z
+        assert mom.n == Z.shape[0]
+        assert np.abs(mom.W - G).max() <= 1e-12 * np.abs(G).max()
+        np.testing.assert_allclose(mom.s, Z.sum(0), rtol=0, atol=1e-12 * np.abs(Z).sum())
+    valid = s.mask & np.isfinite(s.u).all(1)
+    np.testing.assert_array_equal(lo, s.u[valid].min(0))
+    np.testing.assert_array_equal(hi, s.u[valid].max(0))
 
 
 def test_state_space_realisation_equals_transfer_function(rng):
