@@ -229,7 +229,7 @@ def _chunk_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
 def _parallel_pass(chunks, load, task, n_workers: int):
     """Yield ``(chunk, task(load(chunk)))`` in chunk order; loads run here, tasks on ``n_workers`` threads.
 
-    Reading (HDF5 decompression holds the GIL) overlaps with the tasks (BLAS releases it). At most
+    Reading overlaps with the tasks (BLAS releases the GIL; an identity ``load`` moves the reading into the tasks). At most
     ``n_workers + 1`` loaded chunks wait or run at a time, which bounds memory; results come back in order, so the
     sums they feed are the same in every run.
     """
@@ -279,30 +279,36 @@ def _read_z(session, start: int, stop: int, shift: np.ndarray | None = None, buf
 def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, shift: np.ndarray):
     """One pass over the pieces: the compact sums of each fold (:class:`_PieceSums`) and the inputs' range.
 
-    Chunks are read here (in the calling thread) into a ring of re-used buffers and reduced on worker threads with
-    single-threaded BLAS; the sums are taken in chunk order, so every run gives the same numbers.
+    Chunks are read into a ring of re-used buffers and reduced on worker threads with single-threaded BLAS; the
+    sums are taken in chunk order, so every run gives the same numbers. Sources whose ``read`` takes ``out=``
+    (Session and SessionFile, whose reads are safe from any thread) are read by the workers themselves, which keeps
+    both cores busy without a third thread; other sources are read in the calling thread only.
     """
     c = shift.size
     folds = [_PieceSums(c, n_lags) for _ in range(n_folds)]
     m = session.n_inputs
     lo, hi = np.full(m, np.inf), np.full(m, -np.inf)
     longest = max((min(b - a, chunk_rows) for a, b, _f in pieces), default=0) + n_lags
-    count = iter(range(1 << 62))
+    in_workers = _reads_into(session)
 
-    def load(chunk):
-        k0, k1, _f, first, last = chunk
-        return _read_z(session, k0 - n_lags, k1, shift, ring[next(count) % len(ring)]), first, last
+    def load(item):
+        (k0, k1, _f, first, last), buffer = item
+        return _read_z(session, k0 - n_lags, k1, shift, buffer), first, last
 
     def task(loaded):
         (Z, rng), first, last = loaded
         return _chunk_task(Z, n_lags, first, last), rng
 
     with _single_threaded_blas() as n_workers:
-        # _parallel_pass holds at most n_workers chunks when it loads the next one, so n_workers + 1 buffers
-        # suffice; one more is a margin.
+        # _parallel_pass holds at most n_workers unconsumed chunks when it starts the next one, so n_workers + 1
+        # buffers suffice; one more is a margin. Buffers are assigned in chunk order, in this thread.
         ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]
-        for (k0, k1, f, _first, _last), ((S, X, E, e), (c_lo, c_hi)) in _parallel_pass(
-                _chunks(pieces, chunk_rows), load, task, n_workers):
+        items = ((chunk, ring[i % len(ring)]) for i, chunk in enumerate(_chunks(pieces, chunk_rows)))
+        if in_workers:
+            stream = _parallel_pass(items, lambda item: item, lambda item: task(load(item)), n_workers)
+        else:
+            stream = _parallel_pass(items, load, task, n_workers)
+        for ((k0, k1, f, _first, _last), _buffer), ((S, X, E, e), (c_lo, c_hi)) in stream:
             acc = folds[f]
             acc.n += k1 - k0
             acc.S += S
@@ -545,9 +551,9 @@ class RidgeArx:
     With an intercept, the resting output is ``y_rest = (I − Σ A_i)⁻¹ c``; ``model_`` describes ``y − y_rest``
     driven by ``u`` in absolute units (zero input = no stimulation).
 
-    The streaming pass reads chunks in the calling thread while worker threads (as many as BLAS would use, each
-    with single-threaded BLAS, process-wide for the duration of the pass) accumulate the chunks already read; the
-    sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
+    The streaming pass reads and reduces chunks on worker threads (as many as BLAS would use, each with
+    single-threaded BLAS, process-wide for the duration of the pass; a source other than Session or SessionFile is
+    read in the calling thread only); the sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
     buffers of ``chunk_samples × (p + m)`` values, which bound the peak memory (sources whose ``read`` takes
     ``out=``, as Session and SessionFile do, are read straight into them).
 
