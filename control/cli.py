@@ -194,12 +194,15 @@ def _run_network(args):
 
     if args.start is not None and args.target is None:
         raise StimsteerError("--start needs --target: give the pattern to move to as well.")
-    predictor, _provenance = load_predictor(args.model)
+    predictor, provenance = load_predictor(args.model)
     model = state_space_of(predictor, args.model)
     target = None if args.target is None else read_pattern(args.target, model.output_names)
     start = None if args.start is None else read_pattern(args.start, model.output_names)
+    recorded = provenance.get("session") if isinstance(provenance, dict) else None
+    units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
     result = write_network_outputs(model, args.out, target=target, start=start, horizon_steps=args.horizon_steps,
-                                   max_set_size=args.max_set_size, normalise=args.normalise, force=args.force)
+                                   max_set_size=args.max_set_size, normalise=args.normalise, force=args.force,
+                                   **units)
     print("\n".join(result.lines))
     print(f"wrote {len(result.files)} files to {args.out}: " + ", ".join(sorted(p.name for p in result.files.values())))
     if target is not None:

@@ -183,8 +183,13 @@ def _plot_spectrum(rep, path):
     plt.close(fig)
 
 
-def _plot_impulses(h, model, path):
+def _with_unit(name: str, unit: str | None) -> str:
+    return name if not unit else f"{name} [{unit}]"
+
+
+def _plot_impulses(h, model, path, units=None):
     p, m = h.shape[1], h.shape[2]
+    in_units, out_units = units if units is not None else ((None,) * m, (None,) * p)
     rp, rm = min(p, _MAX_GRID), min(m, _MAX_GRID)
     plt, fig = _figure(1.6 * rm + 1.2, 1.1 * rp + 1.0)
     t = np.arange(h.shape[0]) / model.sample_rate_hz
@@ -196,13 +201,14 @@ def _plot_impulses(h, model, path):
             ax.plot(t, h[:, i, j], color=_INK, lw=0.9)
             _plain_axes(ax)
             if i == 0:
-                ax.set_title(model.input_names[j], fontsize=7)
+                ax.set_title(_with_unit(model.input_names[j], in_units[j]), fontsize=7)
             if j == 0:
-                ax.set_ylabel(model.output_names[i], fontsize=7)
+                ax.set_ylabel(_with_unit(model.output_names[i], out_units[i]), fontsize=7)
             if i == rp - 1:
                 ax.set_xlabel("time [s]", fontsize=7)
     note = "" if (rp, rm) == (p, m) else f" (first {rp} of {p} channels, {rm} of {m} sites; all in the CSV)"
-    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){note}", fontsize=9)
+    per = "; response in channel unit per site unit" if units is not None else ""
+    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){per}{note}", fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -242,16 +248,31 @@ def _summary_table(rep, model):
     return pd.DataFrame(rows, columns=["quantity", "value"])
 
 
-def _impulse_table(h, model):
+def _impulse_table(h, model, units=None):
     import pandas as pd
 
     T, p, m = h.shape
     k, i, j = np.meshgrid(np.arange(T), np.arange(p), np.arange(m), indexing="ij")
-    return pd.DataFrame({
+    table = pd.DataFrame({
         "step": k.ravel(), "time [s]": k.ravel() / model.sample_rate_hz,
         "site": np.asarray(model.input_names)[j.ravel()], "channel": np.asarray(model.output_names)[i.ravel()],
         "response": h.ravel(),
     })
+    if units is not None:
+        per = np.array([[f"{units[1][a]}/{units[0][b]}" for b in range(m)] for a in range(p)], dtype=object)
+        table["response unit"] = per[i.ravel(), j.ravel()]
+    return table
+
+
+def _units(model, input_units, output_units):
+    """``(input_units, output_units)`` checked against the model's channels, or None when either is missing."""
+    if input_units is None or output_units is None:
+        return None
+    iu, ou = tuple(str(x) for x in input_units), tuple(str(x) for x in output_units)
+    if len(iu) != model.n_inputs or len(ou) != model.n_outputs:
+        raise SessionError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one per "
+                           f"channel of the model); got {len(iu)} and {len(ou)}.")
+    return iu, ou
 
 
 def _transition_table(tr, model):
@@ -276,7 +297,8 @@ def _check_stable(model, normalise):
 
 def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start=None,
                           horizon_steps: int | None = None, max_set_size: int = 2, normalise: bool = False,
-                          impulse_steps: int | None = None, force: bool = False) -> NetworkOutputs:
+                          impulse_steps: int | None = None, force: bool = False, input_units=None,
+                          output_units=None) -> NetworkOutputs:
     """Compute the network-control tables and figures of a model and write them to ``out_dir``.
 
     Parameters
@@ -296,6 +318,9 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     impulse_steps : int, optional
         Length of the impulse responses; default ``max(20, 3 * n_states)``.
     force : bool, default False
+    input_units, output_units : sequence of str, optional
+        Units of the sites and channels (the model file's provenance has them); with both, the impulse-response
+        figure labels its axes with them and its table gains a ``response unit`` column.
 
     Returns
     -------
@@ -307,6 +332,7 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
         For an unstable model without ``normalise``.
     """
     _check_stable(model, normalise)
+    units = _units(model, input_units, output_units)
     n = model.n_states
     T = max(2 * n, 1) if horizon_steps is None else horizon_steps
     if isinstance(T, bool) or not isinstance(T, (int, np.integer)) or T < 1:
@@ -328,8 +354,8 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
         _summary_table(rep, model).to_csv(tmp / "controllability.csv", index=False)
         _write_spectrum(rep, tmp)
         sites.to_frame().iloc[order].to_csv(tmp / "site_controllability.csv", index=False, float_format="%.10g")
-        _impulse_table(h, model).to_csv(tmp / "impulse_responses.csv", index=False, float_format="%.10g")
-        _plot_impulses(h, model, tmp / "impulse_responses.png")
+        _impulse_table(h, model, units).to_csv(tmp / "impulse_responses.csv", index=False, float_format="%.10g")
+        _plot_impulses(h, model, tmp / "impulse_responses.png", units)
         if target is None:
             _plot_ranking([sites.site_names[i] for i in order], sites.average[order],
                           f"Sites by average controllability (normalisation: {sites.normalisation})",

@@ -51,6 +51,25 @@ def test_network_writes_tables_and_figures(model_file, tmp_path, capsys):
     assert len(impulses) == 20 * 4 * 3  # default length max(20, 3 n) steps x channels x sites
 
 
+def test_network_labels_impulse_responses_with_the_recorded_units(tmp_path, rng, capsys):
+    path = tmp_path / "model.h5"
+    session = {"input_names": ["site_a", "site_b", "site_c"], "input_units": ["uA", "uA", "mW"],
+               "output_names": ["ch1", "ch2", "ch3", "ch4"], "output_units": ["mV", "mV", "uV", "mV"]}
+    save_predictor(_model(rng), path, provenance={"origin": "test model", "session": session})
+    out = tmp_path / "net"
+    assert main(["network", str(path), "--out", str(out)]) == 0
+    impulses = pd.read_csv(out / "impulse_responses.csv")
+    units = impulses.set_index(["channel", "site"])["response unit"]
+    assert units[("ch3", "site_c")].iloc[0] == "uV/mW" and units[("ch1", "site_a")].iloc[0] == "mV/uA"
+    assert set(impulses["response unit"]) == {f"{o}/{i}" for o in ("mV", "uV") for i in ("uA", "mW")}
+
+
+def test_network_without_recorded_units_leaves_the_unit_column_out(model_file, tmp_path, capsys):
+    out = tmp_path / "net"
+    assert main(["network", str(model_file), "--out", str(out)]) == 0
+    assert "response unit" not in pd.read_csv(out / "impulse_responses.csv").columns
+
+
 def test_network_with_a_target_ranks_sites_like_the_api(model_file, tmp_path, capsys):
     out = tmp_path / "net"
     code = main(["network", str(model_file), "--out", str(out), "--target", "1,0,0.5,-1", "--horizon-steps", "8"])
