@@ -206,9 +206,11 @@ def _plot_impulses(h, model, path, units=None):
                 ax.set_ylabel(_with_unit(model.output_names[i], out_units[i]), fontsize=7)
             if i == rp - 1:
                 ax.set_xlabel("time [s]", fontsize=7)
-    note = "" if (rp, rm) == (p, m) else f" (first {rp} of {p} channels, {rm} of {m} sites; all in the CSV)"
-    per = "; response in channel unit per site unit" if units is not None else ""
-    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){per}{note}", fontsize=9)
+    notes = ["response in channel unit per site unit"] if units is not None else []
+    if (rp, rm) != (p, m):
+        notes.append(f"first {rp} of {p} channels, {rm} of {m} sites; all in the CSV")
+    second = "\n" + "; ".join(notes) if notes else ""
+    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){second}", fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
