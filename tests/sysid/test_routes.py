@@ -97,6 +97,30 @@ def test_trial_subset_keeps_only_its_trials(sess):
     assert sub.segments() == [(200, 400), (800, 1000)] and sub.n_trials == 2
 
 
+def test_trial_subset_passes_read_buffers_on_only_when_its_source_takes_them(sess, tmp_path):
+    from stimsteer.sysid.arx import _reads_into
+    from stimsteer.sysid.io import open_session_file, save_session
+
+    class _Plain:  # a source with the minimal protocol: read(start, stop) only
+        def __init__(self, s):
+            self.trials, self._s = s.trials, s
+            for k in ("n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names", "output_names",
+                      "input_units", "output_units"):
+                setattr(self, k, getattr(s, k))
+
+        def read(self, start, stop):
+            return self._s.read(start, stop)
+
+    assert not _reads_into(_TrialSubset(_Plain(sess), (1, 4)))
+    with open_session_file(save_session(sess, tmp_path / "s.h5")) as f:
+        sub = _TrialSubset(f, (1, 4))
+        assert _reads_into(sub)
+        Z = np.empty((50, sess.n_outputs + sess.n_inputs))
+        sub.read(210, 260, out=(Z[:, sess.n_outputs:], Z[:, : sess.n_outputs]))
+        np.testing.assert_array_equal(Z[:, : sess.n_outputs], sess.y[210:260])
+        np.testing.assert_array_equal(Z[:, sess.n_outputs:], sess.u[210:260])
+
+
 def test_subspace_route(sess):
     res = fit_route(sess, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
     assert "order" in res.selection_table.columns and res.predictor.order_ >= 1
