@@ -15,6 +15,7 @@ from __future__ import annotations
 import contextlib
 import importlib
 import inspect
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -22,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from ._files import atomic_dir
-from .exceptions import FileFormatError, SessionError
+from .exceptions import FileFormatError, SessionError, StimsteerWarning
 from .metrics import Scores, _free_run, freerun_scores, kstep_scores
 from .session import TrialSplit
 
@@ -244,6 +245,45 @@ def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores
     return scores
 
 
+#: Share of an output's mean square held by its mean above which a model without a constant term is warned about
+#: (our own threshold: then a tenth of the channel's power is an offset the model can only mimic with its dynamics).
+OFFSET_WARN_FRACTION = 0.1
+
+
+def _offset_fractions(train, chunk_rows: int = 65536) -> tuple[np.ndarray, np.ndarray]:
+    """Per output channel: the mean over the training samples and ``mean² / mean square`` (one streaming pass)."""
+    p = int(train.n_outputs)
+    n, s1, s2 = 0, np.zeros(p), np.zeros(p)
+    for a, b in train.segments():
+        for k0 in range(a, b, chunk_rows):
+            _u, y, _mask = train.read(k0, min(b, k0 + chunk_rows))
+            n += y.shape[0]
+            s1 += y.sum(axis=0)
+            s2 += np.einsum("ij,ij->j", y, y)
+    mean = s1 / max(n, 1)
+    ms = s2 / max(n, 1)
+    return mean, np.divide(mean ** 2, ms, out=np.zeros(p), where=ms > 0)
+
+
+def _warn_offsets(predictor, train, method: str) -> float:
+    """Warn when the training outputs carry an offset that a predictor without a constant term cannot represent."""
+    if getattr(predictor, "fit_intercept", False):
+        return 0.0
+    mean, frac = _offset_fractions(train)
+    i = int(np.argmax(frac)) if frac.size else 0
+    if frac.size and frac[i] > OFFSET_WARN_FRACTION:
+        names = tuple(getattr(train, "output_names", ()) or (f"y{j}" for j in range(frac.size)))
+        units = tuple(getattr(train, "output_units", ()) or ("",) * frac.size)
+        warnings.warn(
+            f"the training outputs carry a constant offset that the {method} model, which has no constant term, "
+            f"cannot represent: channel {names[i]!r} has mean {mean[i]:.4g} {units[i]}, {100 * frac[i]:.0f} % of "
+            f"its mean square ({int(np.sum(frac > OFFSET_WARN_FRACTION))} of {frac.size} channels above "
+            f"{100 * OFFSET_WARN_FRACTION:.0f} %). Remove the offsets first (stimsteer.sysid.prep.detrend(session, "
+            "kind='constant'), then save the session), or use the arx method, which fits an intercept.",
+            StimsteerWarning, stacklevel=3)
+    return float(frac.max(initial=0.0))
+
+
 def _jsonable(value):
     """Settings as JSON-like values (arrays and tuples become lists, numpy scalars Python numbers)."""
     if isinstance(value, dict):
@@ -293,6 +333,13 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
     ------
     SessionError
         Unknown route/method or settings, fewer than two trials, or held-out trials too short to score.
+
+    Warns
+    -----
+    StimsteerWarning
+        When the predictor has no constant term (subspace, direct methods) and a training output's mean holds more
+        than :data:`OFFSET_WARN_FRACTION` of its mean square; the largest share is recorded in the provenance as
+        ``output_offset_fraction``.
     """
     factory = _factory(route, method)
     settings = dict(settings or {})
@@ -302,6 +349,7 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
     split = _split(session, n_test, test_fraction, seed)
     train, test = _subsets(session, split, factory.streaming)
     predictor = estimator.fit(train)
+    offset = _warn_offsets(predictor, train, method)
     limit = getattr(predictor, "max_horizon_steps_", None)
     horizon = int(horizon_steps) if horizon_steps is not None else int(limit or DEFAULT_HORIZON_STEPS)
     heldout = _heldout(predictor, test, horizon, int(max_windows), freerun_max_steps)
@@ -310,6 +358,7 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
         "settings": _jsonable(predictor.get_params()), "split": split.as_dict(), "seed": int(seed),
         "test_fraction": float(test_fraction), "session": _session_record(session),
         "horizon_steps": horizon, "stride_steps": int(heldout.stride_steps), "heldout": heldout.to_dict(),
+        "output_offset_fraction": offset,
     }
     return FitResult(predictor, str(route), str(method), split, _selection_table(predictor), heldout, provenance)
 

@@ -147,3 +147,17 @@ def test_predict_bad_inputs(model_file, session_file, tmp_path, capsys):
     assert exc.value.code == 2
     one_error_line(capsys, "expected SESSION:INDEX")
     assert not any((tmp_path / f"o{i}").exists() for i in range(1, 6))
+
+
+def test_fit_warns_in_one_line_about_an_output_offset_a_subspace_model_cannot_carry(rng, tmp_path, capsys):
+    n, length = 6, 150
+    u = rng.standard_normal((n * length, 1))
+    y = np.concatenate([TRUE.simulate(u[i * length:(i + 1) * length]) for i in range(n)]) + 40.0  # a baseline
+    s = Session(u=u, y=y, sample_rate_hz=200.0, trials=[(i * length, (i + 1) * length) for i in range(n)],
+                input_names=["site_a"], input_units=["uA"], output_names=["lfp"], output_units=["mV"])
+    path = io.save_session(s, tmp_path / "offset.h5")
+    assert main(["fit", str(path), "--route", "indirect", "--method", "subspace", "--out", str(tmp_path / "m.h5"),
+                 "--past-steps", "4"]) == 0
+    err = capsys.readouterr().err
+    lines = [line for line in err.splitlines() if "constant offset" in line]
+    assert len(lines) == 1 and lines[0].startswith("stimsteer fit: warning: ") and "'lfp'" in lines[0]

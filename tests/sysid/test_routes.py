@@ -121,6 +121,27 @@ def test_trial_subset_passes_read_buffers_on_only_when_its_source_takes_them(ses
         np.testing.assert_array_equal(Z[:, sess.n_outputs:], sess.u[210:260])
 
 
+def test_an_output_offset_is_warned_about_for_models_without_a_constant_term(sess, recwarn):
+    import warnings
+
+    from stimsteer.sysid.exceptions import StimsteerWarning
+    from stimsteer.sysid.routes import OFFSET_WARN_FRACTION, _offset_fractions
+
+    shifted = sess.replace(y=sess.y + 3.0 * sess.y.std())  # mean² / mean square = 9 / 10 (hand-derived)
+    mean, frac = _offset_fractions(shifted)
+    np.testing.assert_allclose(mean, shifted.y.mean(0), rtol=1e-12)
+    np.testing.assert_allclose(frac, shifted.y.mean(0) ** 2 / (shifted.y ** 2).mean(0), rtol=1e-12)
+    assert frac[0] > OFFSET_WARN_FRACTION
+    with pytest.warns(StimsteerWarning, match=r"channel 'lfp' has mean .* mV, \d+ % of its mean square"):
+        res = fit_route(shifted, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
+    assert res.provenance["output_offset_fraction"] > OFFSET_WARN_FRACTION
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", StimsteerWarning)  # ridge ARX fits an intercept: no warning
+        res = fit_route(shifted, route="indirect", method="arx", settings={"past_steps": 3, "alphas": [1e-3]})
+        assert res.provenance["output_offset_fraction"] == 0.0
+        fit_route(sess, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
+
+
 def test_subspace_route(sess):
     res = fit_route(sess, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
     assert "order" in res.selection_table.columns and res.predictor.order_ >= 1
