@@ -95,6 +95,7 @@ import numpy as np
 
 from ._files import atomic_path
 from .exceptions import FileFormatError, SessionError, StimsteerError, StimsteerWarning
+from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .session import Session, _names, _TrialLayout, check_read_buffers
 
 __all__ = [
@@ -122,8 +123,6 @@ _COMPRESSION = {
 _NWB_HINT = 'install the optional NWB support with: pip install "stimsteer[nwb]"'
 _SUFFIXES = {".h5": "hdf5", ".hdf5": "hdf5", ".csv": "csv", ".parquet": "parquet", ".nwb": "nwb"}
 
-_TIME_RE = re.compile(r"^\s*time\s*\[s\]\s*(?:@\s*(?P<rate>\S+)\s*Hz)?\s*$")
-_CHANNEL_RE = re.compile(r"^\s*(?P<role>in|out)\s*:\s*(?P<name>[^\[\]]*?)\s*\[(?P<unit>[^\[\]]*)\]\s*$")
 _ROLE_RE = re.compile(r"^\s*(in|out)\s*:")
 
 

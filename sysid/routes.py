@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from ._files import atomic_dir
+from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .exceptions import FileFormatError, SessionError, StimsteerWarning
 from .metrics import Scores, _free_run, freerun_scores, kstep_scores
 from .session import TrialSplit
@@ -415,8 +416,6 @@ _PATTERN_LAYOUT = "'time [s]' (optionally 'time [s] @ <rate> Hz') and one 'in:<n
 
 
 def _pattern_columns(columns, path):
-    from .io import _CHANNEL_RE, _TIME_RE
-
     time_col, rate_text, inputs, other = None, None, [], []
     for col in (str(c) for c in columns):
         t, ch = _TIME_RE.match(col), _CHANNEL_RE.match(col)

@@ -39,7 +39,6 @@ per sample. :func:`load_schedule` reads it back (a session table is accepted too
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -47,6 +46,7 @@ import numpy as np
 import scipy.signal as ssig
 
 from ._files import atomic_path
+from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .exceptions import ExcitationError, FileFormatError, InfeasiblePlanError, LimitsError, SessionError
 from .excitation import DEFAULT_TOL_FACTOR, rank_tolerance
 from .caution import CAUTION
@@ -698,8 +698,6 @@ def _require_exciting(u, trials, order, trial_n, rate, kind) -> ExcitationCheck:
 
 
 # ---------------------------------------------------------------------------------------------------- files
-_TIME_RE = re.compile(r"^\s*time\s*\[s\]\s*(?:@\s*(?P<rate>\S+)\s*Hz)?\s*$")
-_CHANNEL_RE = re.compile(r"^\s*(?P<role>in|out)\s*:\s*(?P<name>[^\[\]]*?)\s*\[(?P<unit>[^\[\]]*)\]\s*$")
 _LAYOUT_HINT = ("expected the columns 'time [s] @ <rate> Hz', 'trial' and one 'in:<name> [<unit>]' per input "
                 "(as written by `stimsteer schedule`)")
 
