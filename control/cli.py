@@ -43,13 +43,13 @@ def _add_inspect(sub):
 
 def _run_inspect(args):
     from ..sysid.excitation import excitation_report
-    from ..sysid.io import load_session
     from ..sysid.quality import describe_session
+    from ..sysid.routes import open_session_source
 
-    session = load_session(args.session)
-    print(describe_session(session).to_text())
-    print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
-                            n_states=args.states).to_text())
+    with open_session_source(args.session) as session:  # our HDF5 layout is read lazily, in one pass each
+        print(describe_session(session).to_text())
+        print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
+                                n_states=args.states).to_text())
     return 0
 
 

@@ -105,31 +105,69 @@ class SessionSummary:
         return "\n".join(lines)
 
 
-def _runs(flags: np.ndarray) -> np.ndarray:
-    """Lengths of the runs of True in a 1-D boolean array."""
-    m = np.concatenate(([False], flags, [False])).astype(np.int8)
+class _Extremes:
+    """Running minimum and maximum per channel, with how many samples equal each (merged chunk by chunk)."""
+
+    def __init__(self, n: int):
+        self.lo, self.hi = np.full(n, np.inf), np.full(n, -np.inf)
+        self.n_lo, self.n_hi = np.zeros(n, dtype=np.int64), np.zeros(n, dtype=np.int64)
+
+    def add(self, v: np.ndarray) -> None:
+        if not v.shape[0]:
+            return
+        lo, hi = v.min(axis=0), v.max(axis=0)
+        n_lo, n_hi = (v == lo).sum(axis=0), (v == hi).sum(axis=0)
+        self.n_lo = np.where(lo < self.lo, n_lo, self.n_lo + np.where(lo == self.lo, n_lo, 0))
+        self.n_hi = np.where(hi > self.hi, n_hi, self.n_hi + np.where(hi == self.hi, n_hi, 0))
+        self.lo, self.hi = np.minimum(self.lo, lo), np.maximum(self.hi, hi)
+
+
+def _masked_runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Starts and stops of the runs of masked (False) samples in a 1-D boolean array."""
+    m = np.concatenate(([False], ~mask, [False])).astype(np.int8)
     edges = np.flatnonzero(np.diff(m))
-    return edges[1::2] - edges[::2]
+    return edges[::2], edges[1::2]
 
 
-def _gaps(session: Session) -> tuple[int, int]:
-    lengths = [_runs(~w.mask) for w in session.iter_trials()]
-    lengths = np.concatenate(lengths) if lengths else np.zeros(0, dtype=np.int64)
-    return int(lengths.size), int(lengths.max()) if lengths.size else 0
+def _scan(session, chunk_rows: int):
+    """One pass over the trials: valid-sample counts, masked runs and the channels' extremes at valid samples."""
+    ext_u, ext_y = _Extremes(session.n_inputs), _Extremes(session.n_outputs)
+    n_inside = n_used = 0
+    gaps = []  # lengths of the masked runs inside trials
+
+    for a, b in np.asarray(session.trials):
+        run = 0  # a masked run reaching the end of the previous chunk of this trial
+        for k0 in range(int(a), int(b), chunk_rows):
+            u, y, mask = session.read(k0, min(int(b), k0 + chunk_rows))
+            n_inside += mask.size
+            n_used += int(mask.sum())
+            ext_u.add(np.asarray(u)[mask])
+            ext_y.add(np.asarray(y)[mask])
+            starts, stops = _masked_runs(mask)
+            lengths = [int(n) for n in stops - starts]
+            if run:
+                if starts.size and starts[0] == 0:
+                    lengths[0] += run  # the run goes on across the chunk edge
+                else:
+                    gaps.append(run)
+                run = 0
+            if lengths and stops[-1] == mask.size:
+                run = lengths.pop()
+            gaps.extend(lengths)
+        if run:
+            gaps.append(run)
+    return n_inside, n_used, len(gaps), max(gaps, default=0), ext_u, ext_y
 
 
-def _channel_problems(session: Session, used: np.ndarray, saturation_fraction: float):
+def _channel_problems(session, ext_u: _Extremes, ext_y: _Extremes, n_used: int, saturation_fraction: float):
     flat, saturated, warnings = [], [], []
-    n_used = int(used.sum())
-    sides = [("input", n, u, session.u[:, j]) for j, (n, u) in enumerate(zip(session.input_names,
-                                                                            session.input_units))]
-    sides += [("output", n, u, session.y[:, j]) for j, (n, u) in enumerate(zip(session.output_names,
-                                                                              session.output_units))]
-    for side, name, unit, x in sides:
+    sides = [("input", n, u, ext_u, j) for j, (n, u) in enumerate(zip(session.input_names, session.input_units))]
+    sides += [("output", n, u, ext_y, j) for j, (n, u) in enumerate(zip(session.output_names,
+                                                                       session.output_units))]
+    for side, name, unit, ext, j in sides:
         if n_used == 0:
             break
-        v = x[used]
-        lo, hi = float(v.min()), float(v.max())
+        lo, hi = float(ext.lo[j]), float(ext.hi[j])
         if lo == hi:
             flat.append(name)
             why = "it excites nothing" if side == "input" else "it cannot be predicted"
@@ -138,7 +176,7 @@ def _channel_problems(session: Session, used: np.ndarray, saturation_fraction: f
             continue
         if side != "output":
             continue  # stimulation inputs sit at their levels by design; clipping is a recording problem
-        counts = {"minimum": int((v == lo).sum()), "maximum": int((v == hi).sum())}
+        counts = {"minimum": int(ext.n_lo[j]), "maximum": int(ext.n_hi[j])}
         edge, count = max(counts.items(), key=lambda kv: kv[1])
         if count >= 2 and count >= saturation_fraction * n_used:
             saturated.append((name, count / n_used))
@@ -151,18 +189,21 @@ def _channel_problems(session: Session, used: np.ndarray, saturation_fraction: f
     return tuple(flat), tuple(saturated), warnings
 
 
-def describe_session(session: Session, *, saturation_fraction: float = 0.01,
-                     masked_warning_fraction: float = 0.2) -> SessionSummary:
+def describe_session(session, *, saturation_fraction: float = 0.01, masked_warning_fraction: float = 0.2,
+                     chunk_samples: int = 65536) -> SessionSummary:
     """Summarise a session and flag what needs attention before fitting.
 
     Parameters
     ----------
-    session : Session
+    session : Session or SessionFile
+        Read in one pass of windows of ``chunk_samples`` samples, so a lazily opened file larger than memory can
+        be described.
     saturation_fraction : float, default 0.01
         An output is flagged as saturated when at least this fraction of its valid in-trial samples (and at
         least 2) equal its minimum or its maximum; a continuous signal has a single sample at each extreme.
     masked_warning_fraction : float, default 0.2
         Warn when more than this fraction of in-trial samples is masked.
+    chunk_samples : int, default 65536
 
     Returns
     -------
@@ -171,35 +212,38 @@ def describe_session(session: Session, *, saturation_fraction: float = 0.01,
     Raises
     ------
     SessionError
-        ``session`` is not a Session, or a fraction is outside (0, 1].
+        ``session`` is neither a Session nor an opened session file, or a fraction is outside (0, 1].
     """
-    if not isinstance(session, Session):
-        raise SessionError(f"describe_session needs a Session; got {type(session).__name__}.")
+    needed = ("read", "trials", "n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names",
+              "output_names", "input_units", "output_units")
+    if not all(hasattr(session, a) for a in needed):
+        raise SessionError(f"describe_session needs a Session or an opened session file (open_session_file); got "
+                           f"{type(session).__name__}.")
     for name, f in (("saturation_fraction", saturation_fraction), ("masked_warning_fraction",
                                                                     masked_warning_fraction)):
         if not 0 < float(f) <= 1:
             raise SessionError(f"{name} must be in (0, 1]; got {f}.")
-    inside = session._in_trial()
-    used = session.mask & inside
-    n_gaps, longest = _gaps(session)
-    flat, saturated, warnings = _channel_problems(session, used, float(saturation_fraction))
-    lengths = session.trial_lengths
-    if not used.any():
+    n_inside, n_used, n_gaps, longest, ext_u, ext_y = _scan(session, int(chunk_samples))
+    masked_fraction = float((n_inside - n_used) / max(n_inside, 1))
+    flat, saturated, warnings = _channel_problems(session, ext_u, ext_y, n_used, float(saturation_fraction))
+    trials = np.asarray(session.trials)
+    lengths = trials[:, 1] - trials[:, 0]
+    if not n_used:
         warnings.insert(0, "no valid samples inside trials: nothing can be fitted; check the mask.")
-    elif session.masked_fraction > masked_warning_fraction:
+    elif masked_fraction > masked_warning_fraction:
         warnings.append(
-            f"{100 * session.masked_fraction:.1f}% of in-trial samples are masked: fits see fewer rows and shorter "
+            f"{100 * masked_fraction:.1f}% of in-trial samples are masked: fits see fewer rows and shorter "
             "segments; check the artifact window (blank_artifacts) and the missing data."
         )
-    if session.n_trials < 2:
+    if trials.shape[0] < 2:
         warnings.append("only 1 trial: no held-out split by trials is possible; record more trials or cut the "
                         "recording into trials.")
     return SessionSummary(
         n_samples=session.n_samples, sample_rate_hz=session.sample_rate_hz, duration_s=session.duration_s,
         input_names=session.input_names, input_units=session.input_units, output_names=session.output_names,
-        output_units=session.output_units, n_trials=session.n_trials, trial_samples_min=int(lengths.min()),
+        output_units=session.output_units, n_trials=int(trials.shape[0]), trial_samples_min=int(lengths.min()),
         trial_samples_median=float(np.median(lengths)), trial_samples_max=int(lengths.max()),
-        n_samples_outside_trials=int((~inside).sum()), masked_fraction=session.masked_fraction, n_gaps=n_gaps,
+        n_samples_outside_trials=int(session.n_samples - n_inside), masked_fraction=masked_fraction, n_gaps=n_gaps,
         longest_gap_s=longest / session.sample_rate_hz, flat_channels=flat, saturated_channels=saturated,
         warnings=tuple(warnings),
     )

@@ -84,9 +84,47 @@ def test_text_and_dict_forms(rng):
 
 
 def test_describe_errors(rng):
-    with pytest.raises(SessionError, match=r"describe_session needs a Session; got str"):
+    with pytest.raises(SessionError, match=r"describe_session needs a Session or an opened session file .*got str"):
         describe_session("session.h5")
     with pytest.raises(SessionError, match=r"saturation_fraction must be in \(0, 1\]; got 0"):
         describe_session(_session(rng), saturation_fraction=0)
     with pytest.raises(SessionError, match=r"masked_warning_fraction must be in \(0, 1\]; got 2"):
         describe_session(_session(rng), masked_warning_fraction=2)
+
+
+def _gap_lengths(mask, trials):
+    """Masked runs inside each trial, counted the obvious way (one sample at a time)."""
+    out = []
+    for a, b in trials:
+        run = 0
+        for v in mask[a:b]:
+            if not v:
+                run += 1
+            elif run:
+                out.append(run)
+                run = 0
+        if run:
+            out.append(run)
+    return out
+
+
+@pytest.mark.parametrize("chunk", [1, 7, 10, 64, 65536])
+def test_a_lazily_opened_file_is_described_like_the_session_whatever_the_chunks(rng, tmp_path, chunk):
+    from stimsteer.sysid.io import open_session_file, save_session
+
+    s = _session(rng)
+    mask = s.mask.copy()
+    mask[0:3] = False      # a gap at a trial's start
+    mask[395:400] = False  # and at its end
+    mask[760:790] = False  # longer than several chunks
+    y = s.y.copy()
+    y[~mask] = np.nan      # masked samples may hold NaN; they must not count
+    s = s.replace(mask=mask, y=y)
+    expected = _gap_lengths(mask, s.trials)
+    with open_session_file(save_session(s, tmp_path / "s.h5")) as f:
+        q = describe_session(f, chunk_samples=chunk)
+    ref = describe_session(s)
+    assert q.to_dict() == ref.to_dict()
+    assert q.n_gaps == len(expected) == 5 and q.longest_gap_s == pytest.approx(max(expected) / 500.0)
+    assert q.masked_fraction == pytest.approx((~mask[:400]).sum() / 900 + (~mask[500:1000]).sum() / 900)
+    assert q.flat_channels == ("dead",) and [n for n, _ in q.saturated_channels] == ["clip"]
