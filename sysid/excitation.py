@@ -20,13 +20,15 @@ and its extension to multiple datasets", IEEE Control Systems Letters 4:602.
 
 from __future__ import annotations
 
+import os
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
 from .exceptions import ExcitationError, ExcitationWarning, SessionError
-from .hankel import _one_blas_thread, hankel_column_count, row_space_factor
+from .hankel import _one_blas_thread, combine_factors, hankel_column_count, row_space_factor
 
 __all__ = [
     "DEFAULT_TOL_FACTOR",
@@ -261,6 +263,43 @@ def _message(collective, capped, required, window, past, horizon):
             f"predictions will be unreliable. {_SCHEDULE_HINT}")
 
 
+def _orders(u, segs, trial_of, n_trials: int, required: int, tol_factor: float) -> tuple[list[int], int]:
+    """Per-trial and collective excitation orders (each capped at ``required``), as :func:`pe_order` gives them.
+
+    The trials' row-space factors at the collective's largest feasible depth are computed once each, on worker
+    threads (QR releases the GIL), and combined into the collective factor: in the usual case, where that depth
+    has full rank, no factor is computed twice. Other cases fall back on :func:`pe_order`'s bisection.
+    """
+    m = u.shape[1]
+    mine = [[s for s, k in zip(segs, trial_of) if k == t] for t in range(n_trials)]
+    depth = _max_feasible_depth(segs, m, required)
+    if depth == 0:
+        return [pe_order(u, g, max_order=required, tol_factor=tol_factor) if g else 0 for g in mine], 0
+
+    def factor(g):
+        long_enough = [(a, b) for a, b in g if b - a >= depth]
+        return row_space_factor([u], depth, long_enough) if long_enough else (np.zeros((m * depth, 0)), 0)
+
+    with ThreadPoolExecutor(max_workers=max(1, min(n_trials, os.cpu_count() or 1))) as pool:
+        factors = list(pool.map(factor, mine))
+
+    def full(F, n_cols):
+        return numerical_rank(F, tol_factor=tol_factor, shape=(F.shape[0], n_cols)) == m * depth
+
+    F = combine_factors([f for f, _ in factors], m * depth)
+    n_cols = sum(c for _, c in factors)
+    collective = depth if full(F, n_cols) else pe_order(u, segs, max_order=required, tol_factor=tol_factor)
+    per_trial = []
+    for g, (F_t, c_t) in zip(mine, factors):
+        if not g:
+            per_trial.append(0)
+        elif _max_feasible_depth(g, m, required) == depth and full(F_t, c_t):
+            per_trial.append(depth)
+        else:
+            per_trial.append(pe_order(u, g, max_order=required, tol_factor=tol_factor))
+    return per_trial, collective
+
+
 @_one_blas_thread
 def excitation_report(session, *, past_steps: int, horizon_steps: int, n_states: int | None = None,
                       tol_factor: float = DEFAULT_TOL_FACTOR) -> ExcitationReport:
@@ -296,12 +335,8 @@ def excitation_report(session, *, past_steps: int, horizon_steps: int, n_states:
     past, horizon = _check_window(past_steps, horizon_steps)
     required = required_order(past, horizon, n_states)
     u, segs, trial_of = _segments_by_trial(session)
-    collective = pe_order(u, segs, max_order=required, tol_factor=tol_factor)
     n_trials = len(np.asarray(session.trials))
-    per_trial = []
-    for t in range(n_trials):
-        mine = [s for s, k in zip(segs, trial_of) if k == t]
-        per_trial.append(pe_order(u, mine, max_order=required, tol_factor=tol_factor) if mine else 0)
+    per_trial, collective = _orders(u, segs, trial_of, n_trials, required, tol_factor)
     return ExcitationReport(
         trial_orders=tuple(per_trial), collective_order=collective, required_order=required,
         window_steps=past + horizon, past_steps=past, horizon_steps=horizon, n_states=required - past - horizon,

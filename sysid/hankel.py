@@ -291,8 +291,24 @@ def session_page(session, depth: int, *, which: str = "u") -> np.ndarray:
 
 
 def _r_factor(M: np.ndarray) -> np.ndarray:
-    """Upper-triangular R of the economic QR of ``M`` (k, c); shape (min(k, c), c)."""
-    return np.linalg.qr(M, mode="r")
+    """Upper-triangular R of the economic QR of ``M`` (k, c); shape (min(k, c), c).
+
+    LAPACK's ``geqrf`` through SciPy, with its optimal workspace: the same R as ``numpy.linalg.qr(M, mode="r")``,
+    but SciPy releases the GIL during the factorisation (NumPy's does not), so factorisations on worker threads
+    run side by side.
+    """
+    from scipy.linalg import lapack
+
+    M = np.asarray(M, dtype=np.float64)
+    k, c = M.shape
+    if k == 0 or c == 0:
+        return np.zeros((min(k, c), c))
+    geqrf, = lapack.get_lapack_funcs(("geqrf",), (M,))
+    lwork = int(geqrf(M, lwork=-1)[2][0])
+    qr, _tau, _work, info = geqrf(M, lwork=max(lwork, 1))
+    if info != 0:  # pragma: no cover - only for invalid arguments
+        raise np.linalg.LinAlgError(f"LAPACK geqrf failed (info={info})")
+    return np.triu(qr[: min(k, c)])
 
 
 def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:

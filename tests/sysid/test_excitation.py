@@ -162,3 +162,30 @@ def test_inspect_command_prints_the_excitation_report(rng, tmp_path, capsys):
     assert "the input excites order 7 but the direct route needs 31 for this horizon" in out
     assert main(["inspect", str(path), "--past-steps", "0"]) == 2
     assert "past_steps must be a whole number of samples >= 1; got 0" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_report_orders_equal_pe_order_per_trial_and_collectively(seed):
+    # The report computes each trial's factor once and combines them for the collective order; the orders must be
+    # those of pe_order on each trial's segments and on all of them (the definition). Trials here: white noise;
+    # a period-4 pattern on 2 inputs (its columns span 4 dimensions, so depth 2 = 4 rows at most: order 2); white
+    # noise cut by masked gaps into short segments; the same constant on both inputs (rank 1 < 2 rows: order 0);
+    # and one trial masked except for a few samples.
+    rng = np.random.default_rng(seed)
+    length, m = 300, 2
+    u = rng.standard_normal((5 * length, m))
+    u[length:2 * length] = np.tile([[1.0, 0.0], [0.0, 0.0], [0.0, 1.0], [0.0, 0.0]], (length // 4, 1))
+    u[3 * length:4 * length] = 0.5
+    mask = np.ones(5 * length, dtype=bool)
+    mask[2 * length + 40:2 * length + 300:45] = False
+    mask[4 * length:5 * length - 6] = False
+    s = Session(u=u, y=rng.standard_normal((5 * length, 1)), sample_rate_hz=100.0, mask=mask,
+                trials=[(i * length, (i + 1) * length) for i in range(5)])
+    rep = excitation_report(s, past_steps=4, horizon_steps=8)
+    segs = s.segments()
+    trial_of = [a // length for a, _ in segs]
+    expected = [pe_order(u, [g for g, t in zip(segs, trial_of) if t == i], max_order=rep.required_order)
+                for i in range(5)]
+    assert list(rep.trial_orders) == expected
+    assert rep.collective_order == pe_order(u, segs, max_order=rep.required_order)
+    assert expected[1] == 2 and expected[3] == 0 and rep.collective_order >= max(expected)
