@@ -1011,8 +1011,10 @@ class ModelPredictiveController(_CondensedCore):
         ew = self._Lz @ (fz - rz)
         xt = self._x_terminal(target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - xt)
-        rz_model = rz if self.target_kind == "state" else rz - self._y_off_N
-        self._sparse_values = (x0, self._Lz @ rz_model, None if self._Lp is None else self._Lp @ xt)
+        if self.formulation == "sparse":  # the sparse cvxpy problem takes the state and the weighted target
+            rz_model = rz if self.target_kind == "state" else rz - self._y_off_N
+            self._sparse_values = (x0, self._Lz @ rz_model, None if self._Lp is None else self._Lp @ xt)
+        self._offsets_cache = (u_past, y_past, target, ew, tw)
         return ew, tw, fy
 
     def _assign(self, offsets):
@@ -1028,6 +1030,9 @@ class ModelPredictiveController(_CondensedCore):
         return (self._Gy @ u.reshape(-1) + fy).reshape(self.horizon_steps_, self.n_outputs_)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
+        cached = getattr(self, "_offsets_cache", None)
+        if cached is not None and cached[0] is u_past and cached[1] is y_past and cached[2] is target:
+            return self._condensed_terms(u, cached[3], cached[4])  # the weighted offsets of this plan's solve
         x0, fy = self._free(u_past, y_past)
         fz, rz = self._tracked(x0, fy, target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - self._x_terminal(target))
