@@ -661,8 +661,10 @@ class SessionFile(_TrialLayout):
             out.extend((int(a + s), int(a + e)) for s, e in zip(edges[::2], edges[1::2]) if e - s >= min_length)
         return out
 
-    def _blocks(self, ds):
-        rows = ds.chunks[0] if ds.chunks else max(1, ds.shape[0])
+    def _blocks(self, ds, rows: int = 65536):
+        """The dataset in blocks of whole chunks (chunked) or of ``rows`` rows (contiguous): memory stays bounded."""
+        if ds.chunks:
+            rows = ds.chunks[0] * max(1, rows // ds.chunks[0])
         for start in range(0, ds.shape[0], rows):
             yield np.asarray(ds[start:start + rows])
 

@@ -655,3 +655,19 @@ def test_read_into_buffers_equals_a_plain_read(tmp_path, rng, compression):
                 source.read(100, 250, out=(Z[:, s.n_outputs:], Z[:149, : s.n_outputs]))
             with pytest.raises(SessionError, match="out must be a pair"):
                 source.read(100, 250, out=Z)
+
+
+@pytest.mark.parametrize("compression", ["none", "gzip"])
+def test_content_hash_of_a_file_streams_in_bounded_memory(tmp_path, rng, compression):
+    import tracemalloc
+
+    n = 200_000
+    s = Session(u=rng.standard_normal((n, 2)), y=rng.standard_normal((n, 30)), sample_rate_hz=1000.0)
+    path = save_session(s, tmp_path / "big.h5", compression=compression)
+    with open_session_file(path) as f:
+        tracemalloc.start()
+        digest = f.content_hash()
+        peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+    assert digest == s.content_hash()
+    assert peak < 0.25 * s.y.nbytes  # blocks of 65,536 rows at most, not the 48 MB dataset at once
