@@ -675,7 +675,8 @@ class SessionFile(_TrialLayout):
         h = hashlib.sha256()
         for ds in (self._open()["inputs"], self._h5["outputs"]):
             for block in self._blocks(ds):
-                h.update(np.ascontiguousarray(block, dtype=np.float64).tobytes())
+                h.update(np.ascontiguousarray(block, dtype=np.float64).data)  # the bytes, without a copy
+                del block  # before the next one is read
             h.update(str(tuple(int(s) for s in ds.shape)).encode())
         for block in self._blocks(self._h5["valid"]):
             h.update(np.ascontiguousarray(block.astype(bool)).tobytes())
