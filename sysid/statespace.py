@@ -83,6 +83,11 @@ def _oriented(name, M, n, axis):
     return M
 
 
+#: Largest number of entries (float64) of the dense prediction maps ``predict_many`` builds; beyond it (long
+#: horizons) it predicts window by window. 4e6 entries are 32 MB.
+DENSE_MAP_LIMIT = 4_000_000
+
+
 @dataclass(frozen=True)
 class StateSpaceModel:
     """A linear time-invariant model in innovation form (see the module docstring).
@@ -329,11 +334,21 @@ class StateSpaceModel:
         return obs @ X, F
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels), via
-        :meth:`prediction_maps` (one matrix product after building them)."""
+        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels).
+
+        Short horizons go through :meth:`prediction_maps` (one matrix product after building them); when the maps
+        would exceed :data:`DENSE_MAP_LIMIT` entries (the future map grows with the square of the horizon, e.g. a
+        free run over a whole trial) each window is predicted by :meth:`predict` instead.
+        """
         up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=self.n_inputs, n_outputs=self.n_outputs)
-        W = up.shape[0]
-        P, F = self.prediction_maps(up.shape[1], uf.shape[1])
+        W, n_past, H = up.shape[0], up.shape[1], uf.shape[1]
+        m, p = self.n_inputs, self.n_outputs
+        if H * p * (H * m + n_past * (m + p)) > DENSE_MAP_LIMIT:
+            out = np.empty((W, H, p))
+            for w in range(W):
+                out[w] = self.predict(up[w], yp[w], uf[w])
+            return out
+        P, F = self.prediction_maps(n_past, H)
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
         y = past @ P.T + uf.reshape(W, -1) @ F.T
         return y.reshape(W, uf.shape[1], self.n_outputs)

@@ -210,3 +210,30 @@ def test_predict_many_equals_predict_window_by_window(rng):
     np.testing.assert_allclose(many, one, rtol=1e-10, atol=1e-12)
     with pytest.raises(SessionError, match="predict_many needs"):
         model.predict_many(up[0], yp[0], uf[0])
+
+
+def test_predict_many_over_a_long_horizon_predicts_window_by_window_without_dense_maps(rng):
+    # A free run over a whole trial: the dense future map would hold (H p) x (H m) = 96,000 x 24,000 values (18 GB);
+    # predict_many must give predict's answer without building it.
+    from stimsteer.sysid.statespace import DENSE_MAP_LIMIT
+
+    n, m, p, H = 6, 4, 16, 6000
+    A = rng.standard_normal((n, n))
+    A *= 0.9 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.standard_normal((n, m)), C=rng.standard_normal((p, n)), past_steps=8)
+    assert H * p * H * m > DENSE_MAP_LIMIT
+    up, yp, uf = rng.standard_normal((2, 8, m)), rng.standard_normal((2, 8, p)), rng.standard_normal((2, H, m))
+    out = model.predict_many(up, yp, uf)
+    for w in range(2):
+        np.testing.assert_allclose(out[w], model.predict(up[w], yp[w], uf[w]), rtol=0, atol=1e-12)
+
+
+def test_predict_many_is_the_same_on_both_sides_of_the_dense_map_limit(rng, monkeypatch):
+    import stimsteer.sysid.statespace as ss
+
+    A = np.array([[0.7, 0.2], [-0.1, 0.5]])
+    model = StateSpaceModel(A=A, B=rng.standard_normal((2, 2)), C=rng.standard_normal((3, 2)), past_steps=4)
+    up, yp, uf = rng.standard_normal((5, 4, 2)), rng.standard_normal((5, 4, 3)), rng.standard_normal((5, 30, 2))
+    dense = model.predict_many(up, yp, uf)
+    monkeypatch.setattr(ss, "DENSE_MAP_LIMIT", 0)
+    np.testing.assert_allclose(model.predict_many(up, yp, uf), dense, rtol=0, atol=1e-11)
