@@ -161,3 +161,23 @@ def test_fit_warns_in_one_line_about_an_output_offset_a_subspace_model_cannot_ca
     err = capsys.readouterr().err
     lines = [line for line in err.splitlines() if "constant offset" in line]
     assert len(lines) == 1 and lines[0].startswith("stimsteer fit: warning: ") and "'lfp'" in lines[0]
+
+
+@pytest.mark.parametrize("method", ["indirect arx", "indirect subspace", "direct lsq", "direct hankel"])
+def test_every_method_fits_and_scores_long_trials(rng, tmp_path, capsys, method):
+    # Trials of 40,000 samples: held-out free runs over whole trials must not build anything that grows with the
+    # square of the trial length (a dense free-run map here would hold 2.6e10 values, 205 GB).
+    route, name = method.split()
+    n, length = 4, 40_000
+    model = StateSpaceModel(A=[[0.85, 0.2, 0.0], [0.0, 0.6, 0.1], [0.0, 0.0, 0.3]], B=rng.standard_normal((3, 2)),
+                            C=rng.standard_normal((8, 3)))
+    u = rng.standard_normal((n * length, 2))
+    y = np.concatenate([model.simulate(u[i * length:(i + 1) * length]) for i in range(n)])
+    y += 0.05 * rng.standard_normal(y.shape)
+    s = Session(u=u, y=y, sample_rate_hz=1000.0, trials=[(i * length, (i + 1) * length) for i in range(n)])
+    path = io.save_session(s, tmp_path / "long.h5")
+    out = tmp_path / f"{name}.h5"
+    assert main(["fit", str(path), "--route", route, "--method", name, "--out", str(out), "--past-steps", "4",
+                 "--horizon-steps", "8"]) == 0
+    printed = capsys.readouterr().out
+    assert "free run" in printed and out.stat().st_size > 0
