@@ -149,8 +149,7 @@ def _add_predict(sub):
 
 
 def _run_predict(args):
-    from ..sysid.io import load_session
-    from ..sysid.routes import load_pattern, predict_pattern, trial_end_window, write_prediction
+    from ..sysid.routes import load_pattern, open_session_source, predict_pattern, trial_end_window, write_prediction
     from ..sysid.storage import load_predictor
 
     predictor, provenance = load_predictor(args.model)
@@ -158,7 +157,8 @@ def _run_predict(args):
     past, start = None, "rest"
     if args.from_trial is not None:
         path, index = args.from_trial
-        past = trial_end_window(load_session(path), index, predictor, provenance)
+        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+            past = trial_end_window(session, index, predictor, provenance)
         start = f"the end of trial {index} of {path}"
     prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
     files = write_prediction(prediction, args.out, force=args.force)
