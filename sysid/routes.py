@@ -268,7 +268,7 @@ def _offset_fractions(train, chunk_rows: int = 65536) -> tuple[np.ndarray, np.nd
 
 def _warn_offsets(predictor, train, method: str) -> float:
     """Warn when the training outputs carry an offset that a predictor without a constant term cannot represent."""
-    if getattr(predictor, "fit_intercept", False):
+    if getattr(predictor, "fit_intercept", False) or getattr(predictor, "centre_outputs", False) is True:
         return 0.0
     mean, frac = _offset_fractions(train)
     i = int(np.argmax(frac)) if frac.size else 0
@@ -279,8 +279,11 @@ def _warn_offsets(predictor, train, method: str) -> float:
             f"the training outputs carry a constant offset that the {method} model, which has no constant term, "
             f"cannot represent: channel {names[i]!r} has mean {mean[i]:.4g} {units[i]}, {100 * frac[i]:.0f} % of "
             f"its mean square ({int(np.sum(frac > OFFSET_WARN_FRACTION))} of {frac.size} channels above "
-            f"{100 * OFFSET_WARN_FRACTION:.0f} %). Remove the offsets first (stimsteer.sysid.prep.detrend(session, "
-            "kind='constant'), then save the session), or use the arx method, which fits an intercept.",
+            f"{100 * OFFSET_WARN_FRACTION:.0f} %). "
+            + ("Refit with --centre-outputs (centre_outputs=True), or use the arx method, which fits an intercept."
+               if method == "subspace" else
+               "Remove the offsets first (stimsteer.sysid.prep.detrend(session, kind='constant'), then save the "
+               "session), or use the arx method, which fits an intercept."),
             StimsteerWarning, stacklevel=3)
     return float(frac.max(initial=0.0))
 

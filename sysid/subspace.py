@@ -383,6 +383,38 @@ def _single_blas_thread():
 
 
 # ----------------------------------------------------------------------------------------------------- estimator
+def _output_mean(source, chunk_rows: int = 65536) -> np.ndarray:
+    """Mean of each output over the valid in-trial samples (one streaming pass)."""
+    p = int(source.n_outputs)
+    total, n = np.zeros(p), 0
+    for a, b in source.segments():
+        for k0 in range(a, b, chunk_rows):
+            _u, y, _mask = source.read(k0, min(b, k0 + chunk_rows))
+            total += np.asarray(y, dtype=np.float64).sum(axis=0)
+            n += y.shape[0]
+    if n == 0:
+        raise SessionError("the session has no valid in-trial samples; check its mask and trials.")
+    return total / n
+
+
+class _ShiftedOutputs:
+    """A view of a session (or lazily opened file) whose outputs have ``offset`` subtracted on every read."""
+
+    def __init__(self, source, offset: np.ndarray):
+        self._src, self._offset = source, offset
+        for attr in ("trials", "n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names",
+                     "output_names", "input_units", "output_units"):
+            if hasattr(source, attr):
+                setattr(self, attr, getattr(source, attr))
+
+    def segments(self, min_length: int = 1):
+        return self._src.segments(min_length)
+
+    def read(self, start: int, stop: int):
+        u, y, mask = self._src.read(start, stop)
+        return u, np.asarray(y, dtype=np.float64) - self._offset, mask
+
+
 class SubspaceId:
     """Subspace identification of an innovation-form state-space model from a stimulation session.
 
@@ -406,6 +438,11 @@ class SubspaceId:
         ``holdout_fraction`` (0.25): share of the training trials held out for the order check (with a single
         trial, the last share of each segment); ``tolerance`` (0.05): relative excess of held-out error over the
         best order that still confirms the singular-value-gap order; ``seed`` (0) of the held-out draw.
+    centre_outputs : bool, default False
+        Identify the model on the outputs minus their training mean (``output_offset_``), for recordings with a
+        baseline offset. ``predict`` then works in the recorded units (the offset is removed from the past and
+        added to the prediction), ``model_`` describes ``y − output_offset_`` and carries it as
+        ``model_.info["output_offset"]``, which the controllers and network figures read.
 
     Attributes
     ----------
@@ -430,6 +467,8 @@ class SubspaceId:
         Hankel columns used.
     heldout_ : str
         How the held-out part was chosen.
+    output_offset_ : ndarray, shape (n_outputs,)
+        The training mean removed with ``centre_outputs`` (zeros otherwise).
 
     Raises
     ------
@@ -443,7 +482,7 @@ class SubspaceId:
     -----
     Data model ``x[k+1] = A x[k] + B u[k] + K e[k]``, ``y[k] = C x[k] + D u[k] + e[k]``. Channels are scaled to unit
     RMS before the projections and the model is transformed back. The model has no constant term: remove offsets
-    (e.g. the training mean, see ``prep``) before fitting. ``A, C`` come from the shift invariance of Γ;
+    before fitting (``centre_outputs=True``, or ``prep.detrend``). ``A, C`` come from the shift invariance of Γ;
     ``B, D`` by least squares on the data given ``A, C``; the noise covariances from the residuals of the estimated
     state sequences; ``K`` from the filter Riccati equation. An unstable estimate is kept and reported
     (``is_stable_``, a warning), never changed.
@@ -469,7 +508,7 @@ class SubspaceId:
     storage_kind = "subspace"
 
     def __init__(self, *, past_steps=10, future_steps=10, order=None, max_order=None, weighting="n4sid",
-                 feedthrough=False, order_selection=None):
+                 feedthrough=False, order_selection=None, centre_outputs=False):
         self.past_steps = past_steps
         self.future_steps = future_steps
         self.order = order
@@ -477,10 +516,11 @@ class SubspaceId:
         self.weighting = weighting
         self.feedthrough = feedthrough
         self.order_selection = order_selection
+        self.centre_outputs = centre_outputs
 
     def get_params(self, deep: bool = True) -> dict:
         return {k: getattr(self, k) for k in ("past_steps", "future_steps", "order", "max_order", "weighting",
-                                              "feedthrough", "order_selection")}
+                                              "feedthrough", "order_selection", "centre_outputs")}
 
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
@@ -550,6 +590,11 @@ class SubspaceId:
         self
         """
         cfg = self._settings(session)
+        if not isinstance(self.centre_outputs, (bool, np.bool_)):
+            raise SessionError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
+        offset = _output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
+        if self.centre_outputs:
+            session = _ShiftedOutputs(session, offset)
         L = cfg["layout"]
         # Small dense problems run far faster on one BLAS thread (threads only wait on each other at this size);
         # the data pass keeps all threads when its Gram is wide enough to gain from them.
@@ -557,6 +602,9 @@ class SubspaceId:
             grams, scale, how = self._data(session, cfg)
         with _single_blas_thread():
             self._identify(session, cfg, grams, scale, how)
+        self.output_offset_ = offset
+        if self.centre_outputs:
+            self.model_ = self.model_.replace(info={**self.model_.info, "output_offset": offset.tolist()})
         return self
 
     def _identify(self, session, cfg, grams, scale, how) -> None:
@@ -719,12 +767,29 @@ class SubspaceId:
         y_future : ndarray, shape (n_future, n_outputs)
         """
         check_fitted(self, "model_")
-        return self.model_.predict(u_past, y_past, u_future)
+        off = self._offset()
+        if off is None:
+            return self.model_.predict(u_past, y_past, u_future)
+        return self.model_.predict(u_past, np.asarray(y_past, dtype=np.float64) - off, u_future) + off
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels)."""
         check_fitted(self, "model_")
-        return self.model_.predict_many(u_past, y_past, u_future)
+        off = self._offset()
+        if off is None:
+            return self.model_.predict_many(u_past, y_past, u_future)
+        return self.model_.predict_many(u_past, np.asarray(y_past, dtype=np.float64) - off, u_future) + off
+
+    def _offset(self):
+        off = getattr(self, "output_offset_", None)
+        return None if off is None or not np.any(off) else off
+
+    def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
+        """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
+        check_fitted(self, "model_")
+        L, md = self.past_steps_, self.model_
+        off = np.zeros(md.n_outputs) if self._offset() is None else self.output_offset_
+        return np.zeros((L, md.n_inputs)), np.tile(off, (L, 1))
 
     # ------------------------------------------------------------------------------------------ storage
     def to_state(self) -> dict:
@@ -733,8 +798,9 @@ class SubspaceId:
         md = self.model_
         params = {k: v for k, v in self.get_params().items() if v is not None}
         params["feedthrough"] = int(bool(params["feedthrough"]))
+        params["centre_outputs"] = int(bool(params["centre_outputs"]))
         return {
-            "params": params,
+            "params": params, "output_offset": np.asarray(self.output_offset_, dtype=np.float64),
             "model": {"A": md.A, "B": md.B, "C": md.C, "D": md.D, "K": md.K, "innovation_cov": md.innovation_cov,
                       "sample_rate_hz": md.sample_rate_hz, "past_steps": md.past_steps,
                       "input_names": json.dumps(list(md.input_names)),
@@ -751,6 +817,7 @@ class SubspaceId:
         """Rebuild a fitted estimator from :meth:`to_state`."""
         params = dict(state["params"])
         params["feedthrough"] = bool(params.get("feedthrough", False))
+        params["centre_outputs"] = bool(params.get("centre_outputs", False))
         est = cls(**params)
         md = state["model"]
         est.model_ = StateSpaceModel(
@@ -759,6 +826,7 @@ class SubspaceId:
             input_names=tuple(json.loads(md["input_names"])), output_names=tuple(json.loads(md["output_names"])),
             info=json.loads(md["info"]),
         )
+        est.output_offset_ = np.asarray(state.get("output_offset", np.zeros(est.model_.n_outputs)), dtype=np.float64)
         est.order_ = int(state["order"])
         est.order_gap_ = int(state["order_gap"])
         est.singular_values_ = np.asarray(state["singular_values"], dtype=np.float64)

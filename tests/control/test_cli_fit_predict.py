@@ -161,6 +161,20 @@ def test_fit_warns_in_one_line_about_an_output_offset_a_subspace_model_cannot_ca
     err = capsys.readouterr().err
     lines = [line for line in err.splitlines() if "constant offset" in line]
     assert len(lines) == 1 and lines[0].startswith("stimsteer fit: warning: ") and "'lfp'" in lines[0]
+    assert "--centre-outputs" in lines[0]
+    # the suggested refit: no warning, and the model predicts from rest at the baseline
+    centred = tmp_path / "centred.h5"
+    assert main(["fit", str(path), "--route", "indirect", "--method", "subspace", "--out", str(centred),
+                 "--past-steps", "4", "--centre-outputs"]) == 0
+    assert "constant offset" not in capsys.readouterr().err
+    pred_dir = tmp_path / "pred"
+    assert main(["predict", str(centred), "--pattern", str(pattern_file(tmp_path)), "--out", str(pred_dir)]) == 0
+    table = pd.read_csv(pred_dir / "prediction.csv", comment="#")
+    assert abs(table["out:lfp [mV]"].iloc[0] - 40.0) < 1.0  # from rest: the baseline (predicted 0 without centring)
+    # refused where it does not apply, in one line
+    assert main(["fit", str(path), "--route", "indirect", "--method", "arx", "--out", str(tmp_path / "a.h5"),
+                 "--centre-outputs"]) == 2
+    one_error_line(capsys, "--centre-outputs is for --route indirect --method subspace")
 
 
 @pytest.mark.parametrize("method", ["indirect arx", "indirect subspace", "direct lsq", "direct hankel"])

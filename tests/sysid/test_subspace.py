@@ -43,7 +43,7 @@ def _session(rng, n_trials=4, length=300, noise=0.0, mask=None):
 # ------------------------------------------------------------------------------------------------ contract
 def test_constructor_only_stores_its_arguments():
     params = {"past_steps": 7, "future_steps": 4, "order": 3, "max_order": 6, "weighting": "not-validated-yet",
-              "feedthrough": True, "order_selection": {"tolerance": 0.1}}
+              "feedthrough": True, "order_selection": {"tolerance": 0.1}, "centre_outputs": "not-validated-yet"}
     est = SubspaceId(**params)
     assert est.get_params() == params
     assert SubspaceId(**est.get_params()).get_params() == params  # clone-able
@@ -423,3 +423,64 @@ def test_model_file_round_trip_through_storage(rng, tmp_path):
     up, yp, uf = session.u[:5], session.y[:5], session.u[5:30]
     np.testing.assert_array_equal(back.predict(up, yp, uf), est.predict(up, yp, uf))
     pd.testing.assert_frame_equal(back.order_table_, est.order_table_)
+
+
+# ------------------------------------------------------------------------------------------------ output offsets
+def test_centre_outputs_identifies_a_system_recorded_on_a_baseline_and_predicts_in_recorded_units(rng, tmp_path):
+    from stimsteer.control.mpc import controller_for
+    from stimsteer.control.limits import StimLimits
+    from stimsteer.sysid.storage import load_predictor, save_predictor
+
+    clean = _session(rng, n_trials=6, length=400, noise=0.01)
+    baseline = np.array([40.0, -15.0])  # invented DC offsets, large against the signals (RMS about 1-2)
+    s = clean.replace(y=clean.y + baseline)
+    train, test = s.select_trials([0, 1, 2, 3, 4]), s.select_trials([5])
+    est = SubspaceId(past_steps=6, future_steps=6, centre_outputs=True).fit(train)
+    mean = train.y[train.mask].mean(axis=0)
+    np.testing.assert_allclose(est.output_offset_, mean, rtol=1e-12)
+    assert est.model_.info["output_offset"] == pytest.approx(list(mean), rel=1e-12)
+    # the model of the centred data: the same as fitting the centred session directly
+    ref = SubspaceId(past_steps=6, future_steps=6).fit(train.replace(y=train.y - mean))
+    np.testing.assert_allclose(est.model_.poles, ref.model_.poles, rtol=0, atol=1e-10)
+    u, y = test.u, test.y
+    pred = est.predict(u[:6], y[:6], u[6:])
+    np.testing.assert_allclose(pred, ref.predict(u[:6], y[:6] - mean, u[6:]) + mean, rtol=0, atol=1e-9)
+    resid = y[6:] - pred
+    assert np.mean(resid ** 2) < 0.01 * np.mean((clean.y - clean.y.mean(0)) ** 2)  # recovers the dynamics
+    many = est.predict_many(u[None, :6], y[None, :6], u[None, 6:])[0]
+    np.testing.assert_allclose(many, pred, rtol=0, atol=1e-9)
+    u_rest, y_rest = est.rest_window()
+    assert not u_rest.any() and np.allclose(y_rest, mean)
+    # stored and loaded, it predicts the same; a controller built from it works in the recorded units
+    path = save_predictor(est, tmp_path / "centred.h5", provenance={"origin": "test (invented baseline)"})
+    back, _ = load_predictor(path)
+    np.testing.assert_allclose(back.predict(u[:6], y[:6], u[6:]), pred, rtol=0, atol=1e-12)
+    ctrl = controller_for(back, StimLimits(amplitude_min_ua=-1, amplitude_max_ua=1, n_inputs=2), horizon_steps=5)
+    plan = ctrl.plan(u[:6], y[:6], target=mean)
+    assert plan.ok and np.all(np.abs(plan.predicted_outputs - mean) < 5.0)  # near the baseline, not near 0
+
+
+def test_from_rest_only_the_centred_model_predicts_the_baseline(rng):
+    # "From rest" (no stimulation before the pattern) the recording sits at its baseline. A model without a
+    # constant term predicts zero there; the centred one predicts the baseline plus the response.
+    clean = _session(rng, n_trials=6, length=400, noise=0.01)
+    baseline = np.array([40.0, -15.0])
+    train = clean.replace(y=clean.y + baseline).select_trials([0, 1, 2, 3, 4])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", StimsteerWarning)
+        plain = SubspaceId(past_steps=6, future_steps=6).fit(train)
+    centred = SubspaceId(past_steps=6, future_steps=6, centre_outputs=True).fit(train)
+    pattern = np.zeros((60, 2))
+    pattern[5] = [1.0, -0.5]  # one pulse
+    truth = _system().simulate(pattern) + baseline
+    err = {}
+    for name, est in (("plain", plain), ("centred", centred)):
+        u_rest, y_rest = est.rest_window()
+        err[name] = np.max(np.abs(est.predict(u_rest, y_rest, pattern) - truth))
+    assert err["centred"] < 0.5 and err["plain"] > 10.0
+    assert not np.any(plain.output_offset_) and "output_offset" not in plain.model_.info
+
+
+def test_centre_outputs_must_be_a_bool(rng):
+    with pytest.raises(SessionError, match="centre_outputs must be True or False"):
+        SubspaceId(past_steps=4, future_steps=4, centre_outputs="yes").fit(_session(rng))
