@@ -105,6 +105,23 @@ class SessionSummary:
         return "\n".join(lines)
 
 
+def output_moments(source, chunk_rows: int = 65536) -> tuple[int, np.ndarray, np.ndarray]:
+    """Valid in-trial sample count, and each output's mean and mean square over them (one streaming pass).
+
+    ``source`` is a Session or anything with ``segments()`` and ``read(start, stop)`` (a lazily opened file, a
+    trial subset).
+    """
+    p = int(source.n_outputs)
+    n, s1, s2 = 0, np.zeros(p), np.zeros(p)
+    for a, b in source.segments():
+        for k0 in range(a, b, chunk_rows):
+            y = np.asarray(source.read(k0, min(b, k0 + chunk_rows))[1], dtype=np.float64)
+            n += y.shape[0]
+            s1 += y.sum(axis=0)
+            s2 += np.einsum("ij,ij->j", y, y)
+    return n, s1 / max(n, 1), s2 / max(n, 1)
+
+
 class _Extremes:
     """Running minimum and maximum per channel, with how many samples equal each (merged chunk by chunk)."""
 

@@ -26,6 +26,7 @@ from ._files import atomic_dir
 from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .exceptions import FileFormatError, SessionError, StimsteerWarning
 from .metrics import Scores, _free_run, freerun_scores, kstep_scores
+from .quality import output_moments
 from .session import TrialSplit
 
 __all__ = [
@@ -251,19 +252,10 @@ def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores
 OFFSET_WARN_FRACTION = 0.1
 
 
-def _offset_fractions(train, chunk_rows: int = 65536) -> tuple[np.ndarray, np.ndarray]:
-    """Per output channel: the mean over the training samples and ``mean² / mean square`` (one streaming pass)."""
-    p = int(train.n_outputs)
-    n, s1, s2 = 0, np.zeros(p), np.zeros(p)
-    for a, b in train.segments():
-        for k0 in range(a, b, chunk_rows):
-            _u, y, _mask = train.read(k0, min(b, k0 + chunk_rows))
-            n += y.shape[0]
-            s1 += y.sum(axis=0)
-            s2 += np.einsum("ij,ij->j", y, y)
-    mean = s1 / max(n, 1)
-    ms = s2 / max(n, 1)
-    return mean, np.divide(mean ** 2, ms, out=np.zeros(p), where=ms > 0)
+def _offset_fractions(train) -> tuple[np.ndarray, np.ndarray]:
+    """Per output channel: the mean over the training samples and ``mean² / mean square``."""
+    _n, mean, ms = output_moments(train)
+    return mean, np.divide(mean ** 2, ms, out=np.zeros(mean.size), where=ms > 0)
 
 
 def _warn_offsets(predictor, train, method: str) -> float:

@@ -20,6 +20,7 @@ import pandas as pd
 from numpy.lib.stride_tricks import sliding_window_view
 
 from .exceptions import ExcitationError, SessionError, StimsteerWarning, check_fitted
+from .quality import output_moments
 from .statespace import StateSpaceModel, kalman_gain
 
 try:  # installed with scikit-learn; limits BLAS threads for the many small matrix operations after the data pass
@@ -383,18 +384,12 @@ def _single_blas_thread():
 
 
 # ----------------------------------------------------------------------------------------------------- estimator
-def _output_mean(source, chunk_rows: int = 65536) -> np.ndarray:
+def _output_mean(source) -> np.ndarray:
     """Mean of each output over the valid in-trial samples (one streaming pass)."""
-    p = int(source.n_outputs)
-    total, n = np.zeros(p), 0
-    for a, b in source.segments():
-        for k0 in range(a, b, chunk_rows):
-            _u, y, _mask = source.read(k0, min(b, k0 + chunk_rows))
-            total += np.asarray(y, dtype=np.float64).sum(axis=0)
-            n += y.shape[0]
+    n, mean, _ms = output_moments(source)
     if n == 0:
         raise SessionError("the session has no valid in-trial samples; check its mask and trials.")
-    return total / n
+    return mean
 
 
 class _ShiftedOutputs:
