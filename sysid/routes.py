@@ -92,6 +92,16 @@ class _Lazy:
             raise SessionError(
                 f"unknown setting(s) {unknown} for {cls.__name__}; allowed: {sorted(allowed)}. Check the spelling."
             )
+        required = [name for name, par in inspect.signature(cls.__init__).parameters.items()
+                    if name != "self" and par.default is inspect.Parameter.empty
+                    and par.kind in (par.KEYWORD_ONLY, par.POSITIONAL_OR_KEYWORD)]
+        missing = [name for name in required if name not in given]
+        if missing:
+            options = " and ".join(f"--{name.replace('_', '-')} N" for name in missing)
+            raise SessionError(
+                f"{cls.__name__} needs {', '.join(missing)} (on the command line: {options}); give "
+                f"{'them' if len(missing) > 1 else 'it'} in samples."
+            )
         return cls(**given)
 
     def __repr__(self):

@@ -195,3 +195,14 @@ def test_every_method_fits_and_scores_long_trials(rng, tmp_path, capsys, method)
                  "--horizon-steps", "8"]) == 0
     printed = capsys.readouterr().out
     assert "free run" in printed and out.stat().st_size > 0
+
+
+@pytest.mark.parametrize("method", ["lsq", "hankel"])
+def test_direct_fit_without_its_windows_names_the_missing_options(session_file, tmp_path, capsys, method):
+    out = tmp_path / "d.h5"
+    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out)]) == 2
+    one_error_line(capsys, "needs past_steps, horizon_steps", "--past-steps N and --horizon-steps N")
+    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out),
+                 "--past-steps", "3"]) == 2
+    one_error_line(capsys, "needs horizon_steps (on the command line: --horizon-steps N)")
+    assert not out.exists()
