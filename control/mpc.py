@@ -1461,7 +1461,8 @@ def parse_target(spec, output_names, horizon_steps=None):
     spec : str or Path
         Either a CSV file with one column per tracked output (header ``<name>``, ``target:<name>`` or either
         followed by `` [unit]``; an optional ``step`` or ``time [s]`` column is ignored) and one row per horizon
-        step, or a text ``name=value,name=value`` for a constant target.
+        step, or a text ``name=value,name=value`` for a constant target of some outputs, or ``v1,v2,...`` (one
+        value per output, in the predictor's order) for a constant target of all of them.
     output_names : sequence of str
         The predictor's outputs. Outputs not named in the target are not tracked.
     horizon_steps : int, optional
@@ -1504,7 +1505,29 @@ def parse_target(spec, output_names, horizon_steps=None):
             raise SessionError("a constant target has no length; give the horizon (--horizon-steps).")
         row = np.array([values.get(n, 0.0) for n in output_names])
         return np.tile(row, (int(horizon_steps), 1)), np.array([n in values for n in output_names])
+    values = _number_list(text)
+    if values is not None and not Path(text).is_file():
+        if len(values) != len(output_names):
+            raise SessionError(f"target {text!r} gives {len(values)} value(s); a constant target as a plain list needs "
+                               f"one per output ({len(output_names)}: {list(output_names)}), or use "
+                               "<output>=<value> pairs to track only some.")
+        if not np.all(np.isfinite(values)):
+            raise SessionError(f"target values must be finite; got {text!r}.")
+        if horizon_steps is None:
+            raise SessionError("a constant target has no length; give the horizon (--horizon-steps).")
+        return np.tile(values, (int(horizon_steps), 1)), np.ones(len(output_names), dtype=bool)
+    if not Path(text).is_file():
+        raise FileNotFoundError(2, "no such target file (nor name=value pairs, nor one number per output)", text)
     return _target_table(Path(text), output_names, horizon_steps)
+
+
+def _number_list(text: str):
+    """The numbers of a comma-separated list such as ``"0.5,0,1.2"``, or None when it is not one."""
+    parts = [p.strip() for p in text.split(",")]
+    try:
+        return np.array([float(p) for p in parts]) if parts and all(parts) else None
+    except ValueError:
+        return None
 
 
 def _is_constant_target(spec) -> bool:

@@ -163,3 +163,19 @@ def test_the_plan_figure_carries_the_caution(files, capsys, monkeypatch):
     assert main(["plan", str(d / "model.h5"), "--target", "lfp_0=1", "--limits", str(d / "limits.toml"),
                  "--out", str(d / "out"), "--horizon-steps", "8"]) == 0
     assert CAUTION in texts
+
+
+def test_parse_target_takes_one_number_per_output_like_network(tmp_path):
+    names = ("a", "b", "c")
+    tgt, tracked = parse_target("0.5, 0, -1.25", names, 2)
+    np.testing.assert_array_equal(tgt, [[0.5, 0.0, -1.25]] * 2)
+    assert tracked.all()
+    with pytest.raises(SessionError, match=r"gives 2 value\(s\); a constant target as a plain list needs one per "
+                                           r"output \(3"):
+        parse_target("1,2", names, 2)
+    with pytest.raises(SessionError, match="give the horizon"):
+        parse_target("1,2,3", names, None)
+    with pytest.raises(SessionError, match="must be finite"):
+        parse_target("1,nan,3", names, 2)
+    with pytest.raises(FileNotFoundError, match="nor one number per output"):
+        parse_target(tmp_path / "missing.csv", names, 2)
