@@ -148,7 +148,7 @@ def test_a_read_error_in_the_streaming_pass_reaches_the_caller(rng):
 def test_parallel_pass_keeps_chunk_order_and_raises_task_errors():
     import time
 
-    from stimsteer.sysid.arx import _parallel_pass
+    from stimsteer.sysid._lagged import _parallel_pass
 
     def slow_first(x):  # uneven task times: later chunks finish first
         time.sleep(0.02 if x == 0 else 0.0)

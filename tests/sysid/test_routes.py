@@ -98,7 +98,7 @@ def test_trial_subset_keeps_only_its_trials(sess):
 
 
 def test_trial_subset_passes_read_buffers_on_only_when_its_source_takes_them(sess, tmp_path):
-    from stimsteer.sysid.arx import _reads_into
+    from stimsteer.sysid._lagged import _reads_into
     from stimsteer.sysid.io import open_session_file, save_session
 
     class _Plain:  # a source with the minimal protocol: read(start, stop) only

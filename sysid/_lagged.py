@@ -1,0 +1,256 @@
+"""Sums and lag products of lagged sample vectors, streamed chunk by chunk from a session.
+
+For samples ``Z_t`` (rows of a ``(T × c)`` signal) and rows ``k`` of a piece, the Gram of the lagged vectors
+``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` has blocks ``sum_k Z_{k-a} Z_{k-b}ᵀ`` that depend on ``b - a`` up to a few
+edge samples: one product of two ``(n × c)`` matrices per lag difference per chunk, instead of one product of the
+``(n × c(L+1))`` lagged design. Ridge ARX (the regression Gram) and subspace identification (the block-Hankel Gram,
+whose columns are the same lagged vectors in reversed order) both use it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import inspect
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+
+# ------------------------------------------------------------------------------------------------ sufficient stats
+class _Moments:
+    """Row count, sums and Gram of the full lagged vector ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` (float64)."""
+
+    def __init__(self, size: int):
+        self.n = 0
+        self.s = np.zeros(size)
+        self.W = np.zeros((size, size))
+
+    def add(self, n, s, W):
+        self.n += n
+        self.s += s
+        self.W += W
+
+    def minus(self, other: "_Moments") -> "_Moments":
+        out = _Moments(self.s.size)
+        out.n, out.s, out.W = self.n - other.n, self.s - other.s, self.W - other.W
+        return out
+
+
+class _PieceSums:
+    """Running sums of one fold, in the compact form the stream produces (assembled into :class:`_Moments` once).
+
+    ``S`` and ``X[δ]`` sum ``Z_t`` and ``Z_t Z_{t-δ}ᵀ`` over the rows ``t`` of every chunk; ``E[a, δ]`` and ``e[a]``
+    sum the edge terms of every piece (see :func:`_edge_terms`).
+    """
+
+    def __init__(self, c: int, n_lags: int):
+        L = n_lags
+        self.n = 0
+        self.S = np.zeros(c)
+        self.X = np.zeros((L + 1, c, c))
+        self.E = np.zeros((L + 1, L + 1, c, c))
+        self.e = np.zeros((L + 1, c))
+
+    def moments(self) -> _Moments:
+        """Sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over all rows of the fold.
+
+        Block ``(a, b = a + δ)`` of the Gram is ``sum_k Z_{k-a} Z_{k-b}ᵀ = X[δ] + E[a, δ]``.
+        """
+        Lp1, c = self.X.shape[0], self.X.shape[1]
+        out = _Moments(Lp1 * c)
+        out.n = self.n
+        out.s = np.concatenate([self.S + self.e[a] for a in range(Lp1)])
+        W = out.W
+        for a in range(Lp1):
+            for delta in range(Lp1 - a):
+                b = a + delta
+                block = self.X[delta] + self.E[a, delta]
+                W[a * c:(a + 1) * c, b * c:(b + 1) * c] = block
+                W[b * c:(b + 1) * c, a * c:(a + 1) * c] = block.T
+        return out
+
+
+def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sums and lag products over the rows of one chunk, without building the lagged design.
+
+    Parameters
+    ----------
+    B : ndarray, shape (L + n, c)
+        Samples ``Z``: the ``L`` samples before the chunk's first row, then its ``n`` rows.
+    n_lags : int
+        ``L``, the longest lag.
+
+    Returns
+    -------
+    S : ndarray, shape (c,)
+        ``sum_t Z_t`` over the chunk's rows.
+    X : ndarray, shape (L + 1, c, c)
+        ``X[δ] = sum_t Z_t Z_{t-δ}ᵀ`` over the chunk's rows ``t`` (``Z_{t-δ}`` may lie in the lead-in): one
+        product of two ``(n × c)`` matrices per lag difference, the symmetric ``δ = 0`` one by a rank-k update.
+    """
+    L = n_lags
+    n, c = B.shape[0] - L, B.shape[1]
+    rows = B[L:]
+    X = np.empty((L + 1, c, c))
+    for delta in range(L + 1):
+        np.matmul(rows.T, B[L - delta: L - delta + n], out=X[delta])
+    return rows.sum(axis=0), X
+
+
+def _edge_terms(B: np.ndarray, n_lags: int, sign: float, at_start: bool, E: np.ndarray, e: np.ndarray) -> None:
+    """Add ``sign`` × the edge terms of a piece of rows ``[r0, r1)`` to ``E`` and ``e`` (in place).
+
+    Over the piece, ``sum_k Z_{k-a} Z_{k-a-δ}ᵀ`` is the chunk sum ``sum_{t=r0}^{r1-1} Z_t Z_{t-δ}ᵀ`` with its window
+    shifted back by ``a``: plus the ``a`` terms ``t = r0-a … r0-1`` (from the first chunk's lead-in, ``at_start``,
+    sign +1), minus the ``a`` terms ``t = r1-a … r1-1`` (from the last chunk's end, sign −1); likewise for the sums.
+    At most ``L`` samples each, accumulated one sample at a time over ``a``.
+    """
+    L = n_lags
+    end = L if at_start else B.shape[0]  # buffer index one past the last sample of the shifted-out window
+    c = B.shape[1]
+    acc = np.zeros((L + 1, c, c))
+    acc_s = np.zeros(c)
+    for a in range(1, L + 1):
+        t = end - a
+        acc_s += B[t]
+        e[a] += sign * acc_s
+        for delta in range(L + 1 - a):
+            acc[delta] += np.outer(B[t], B[t - delta])
+            E[a, delta] += sign * acc[delta]
+
+
+
+def _chunks(pieces, chunk_rows: int):
+    """``(k0, k1, fold, first, last)`` for consecutive row ranges of at most ``chunk_rows`` inside each piece."""
+    for a, b, f in pieces:
+        for k0 in range(a, b, chunk_rows):
+            k1 = min(b, k0 + chunk_rows)
+            yield k0, k1, f, k0 == a, k1 == b
+
+
+@contextlib.contextmanager
+def _single_threaded_blas():
+    """Yield the number of worker threads to use, with BLAS limited to one thread meanwhile.
+
+    The Gram products of one chunk are small (``(p+m) × (p+m)`` outputs): several chunks computed at once, each with
+    single-threaded BLAS, use the cores better than one chunk at a time with multi-threaded BLAS, and do not
+    oversubscribe the CPU while the main thread reads (multi-threaded OpenBLAS slows down many times over when a
+    busy extra thread competes for its cores). The limit is process-wide for the duration of the pass and restored
+    afterwards; without threadpoolctl (a scikit-learn dependency) one worker is used and nothing is changed.
+    """
+    try:
+        from threadpoolctl import threadpool_info, threadpool_limits
+    except ImportError:  # pragma: no cover - scikit-learn installs it
+        yield 1
+        return
+    n = max((int(i.get("num_threads") or 1) for i in threadpool_info() if i.get("user_api") == "blas"), default=1)
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield max(1, n)
+
+
+def _chunk_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
+    """Worker task: the chunk's sums and products, and the edge terms of its piece when it starts or ends one."""
+    S, X = _chunk_products(B, n_lags)
+    if not (first or last):
+        return S, X, None, None
+    c = B.shape[1]
+    E, e = np.zeros((n_lags + 1, n_lags + 1, c, c)), np.zeros((n_lags + 1, c))
+    if first:
+        _edge_terms(B, n_lags, +1.0, True, E, e)
+    if last:
+        _edge_terms(B, n_lags, -1.0, False, E, e)
+    return S, X, E, e
+
+
+def _parallel_pass(chunks, load, task, n_workers: int):
+    """Yield ``(chunk, task(load(chunk)))`` in chunk order; loads run here, tasks on ``n_workers`` threads.
+
+    Reading overlaps with the tasks (BLAS releases the GIL; an identity ``load`` moves the reading into the tasks). At most
+    ``n_workers + 1`` loaded chunks wait or run at a time, which bounds memory; results come back in order, so the
+    sums they feed are the same in every run.
+    """
+    pending: deque = deque()
+    pool = ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-arx")
+    try:
+        for chunk in chunks:
+            pending.append((chunk, pool.submit(task, load(chunk))))
+            if len(pending) > n_workers:
+                done, fut = pending.popleft()
+                yield done, fut.result()
+        while pending:
+            done, fut = pending.popleft()
+            yield done, fut.result()
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _reads_into(session) -> bool:
+    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; other sources need only
+    ``read(start, stop)``)."""
+    try:
+        return "out" in inspect.signature(session.read).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+def _read_z(session, start: int, stop: int, shift: np.ndarray | None = None, buffer: np.ndarray | None = None):
+    """Samples ``[start, stop)`` as ``Z = [y u] − shift`` (float64) and the raw inputs' range ``(min, max)``.
+
+    ``Z`` is a fresh array, or the leading rows of ``buffer`` when given (re-using buffers spares the page faults of
+    fresh allocations); the shift is subtracted while copying.
+    """
+    p = session.n_outputs
+    Z = np.empty((stop - start, p + session.n_inputs)) if buffer is None else buffer[: stop - start]
+    if _reads_into(session):
+        u, _y, _mask = session.read(start, stop, out=(Z[:, p:], Z[:, :p]))
+    else:
+        u, y, _mask = session.read(start, stop)
+        Z[:, :p], Z[:, p:] = y, u
+    rng = (u.min(axis=0), u.max(axis=0)) if u.shape[0] else (np.full(u.shape[1], np.inf), np.full(u.shape[1], -np.inf))
+    if shift is not None:
+        Z -= shift
+    return Z, rng
+
+
+def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, shift: np.ndarray):
+    """One pass over the pieces: the compact sums of each fold (:class:`_PieceSums`) and the inputs' range.
+
+    Chunks are read into a ring of re-used buffers and reduced on worker threads with single-threaded BLAS; the
+    sums are taken in chunk order, so every run gives the same numbers. Sources whose ``read`` takes ``out=``
+    (Session and SessionFile, whose reads are safe from any thread) are read by the workers themselves, which keeps
+    both cores busy without a third thread; other sources are read in the calling thread only.
+    """
+    c = shift.size
+    folds = [_PieceSums(c, n_lags) for _ in range(n_folds)]
+    m = session.n_inputs
+    lo, hi = np.full(m, np.inf), np.full(m, -np.inf)
+    longest = max((min(b - a, chunk_rows) for a, b, _f in pieces), default=0) + n_lags
+    in_workers = _reads_into(session)
+
+    def load(item):
+        (k0, k1, _f, first, last), buffer = item
+        return _read_z(session, k0 - n_lags, k1, shift, buffer), first, last
+
+    def task(loaded):
+        (Z, rng), first, last = loaded
+        return _chunk_task(Z, n_lags, first, last), rng
+
+    with _single_threaded_blas() as n_workers:
+        # _parallel_pass holds at most n_workers unconsumed chunks when it starts the next one, so n_workers + 1
+        # buffers suffice; one more is a margin. Buffers are assigned in chunk order, in this thread.
+        ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]
+        items = ((chunk, ring[i % len(ring)]) for i, chunk in enumerate(_chunks(pieces, chunk_rows)))
+        if in_workers:
+            stream = _parallel_pass(items, lambda item: item, lambda item: task(load(item)), n_workers)
+        else:
+            stream = _parallel_pass(items, load, task, n_workers)
+        for ((k0, k1, f, _first, _last), _buffer), ((S, X, E, e), (c_lo, c_hi)) in stream:
+            acc = folds[f]
+            acc.n += k1 - k0
+            acc.S += S
+            acc.X += X
+            if E is not None:
+                acc.E += E
+                acc.e += e
+            lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
+    return folds, lo, hi
