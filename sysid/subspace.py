@@ -17,9 +17,9 @@ import warnings
 
 import numpy as np
 import pandas as pd
-from numpy.lib.stride_tricks import sliding_window_view
 
 from .exceptions import ExcitationError, SessionError, StimsteerWarning, check_fitted
+from ._lagged import _stream_sums
 from .quality import output_moments
 from .statespace import StateSpaceModel, kalman_gain
 
@@ -40,12 +40,14 @@ _RTOL = 1e-10
 _NOISE_FREE = 1e-12
 # Singular values below this share of the largest are rounding noise: orders beyond them are not supported by data.
 _SV_RTOL = 1e-8
-_CHUNK_ENTRIES = 4_000_000
 _THREADED_WIDTH = 256
 _TABLE_COLUMNS = ("order", "singular_value", "gap_ratio", "heldout_error", "stable", "selected")
 
 
 # ----------------------------------------------------------------------------------------------------- layout
+_STREAM_ROWS = 16384  # rows per chunk of the Hankel Gram's data pass
+
+
 class _Layout:
     """Row indices of the blocks of one Hankel column ``vec([u y]_{t-i..t+f-1})`` (time-major, see CONTRACTS)."""
 
@@ -85,21 +87,23 @@ class _Layout:
 def _hankel_gram(source, segments, layout: _Layout):
     """Gram matrix ``Σ_t z_t z_tᵀ`` of the Hankel columns inside ``segments`` and the number of columns.
 
-    Columns are formed chunk by chunk from ``source.read`` with a strided window view, so memory stays bounded.
+    The column of window ``t`` holds the samples ``t … t + w − 1``: the lagged vector ``[Z_k; …; Z_{k−w+1}]`` of
+    ``k = t + w − 1`` in reversed time order and with the channels as ``[u y]`` instead of ``[y u]``. Its Gram is
+    therefore the lagged-sum stream's (:mod:`._lagged`: ``w`` products of ``(n × c)`` chunks per chunk instead of
+    one product of ``(n × w c)`` columns), permuted. Memory stays bounded by a few chunks.
     """
-    w, c = layout.width, layout.c
-    chunk = max(256, _CHUNK_ENTRIES // layout.nz)
-    G = np.zeros((layout.nz, layout.nz))
-    n_cols = 0
-    for a, b in segments:
-        for j0 in range(a, b - w + 1, chunk):
-            j1 = min(j0 + chunk, b - w + 1)
-            u, y, _ = source.read(j0, j1 + w - 1)
-            s = np.hstack([np.asarray(u, dtype=np.float64), np.asarray(y, dtype=np.float64)])
-            H = sliding_window_view(s, w, axis=0).transpose(0, 2, 1).reshape(j1 - j0, w * c)
-            G += H.T @ H
-            n_cols += j1 - j0
-    return 0.5 * (G + G.T), n_cols
+    w, c, p = layout.width, layout.c, layout.p
+    lag = w - 1
+    pieces = [(int(a) + lag, int(b), 0) for a, b in segments if b - a >= w]
+    if not pieces:
+        return np.zeros((layout.nz, layout.nz)), 0
+    (acc,), _lo, _hi = _stream_sums(source, pieces, 1, lag, _STREAM_ROWS, np.zeros(c))
+    W = acc.moments().W
+    # Hankel row (τ, channel in [u y] order) <- lagged row (lag w − 1 − τ, channel in [y u] order)
+    in_z = np.concatenate([np.arange(p, c), np.arange(p)])  # [u y] channel j sits at in_z[j] of [y u]
+    perm = np.array([(lag - tau) * c + in_z[j] for tau in range(w) for j in range(c)], dtype=np.intp)
+    G = W[np.ix_(perm, perm)]
+    return 0.5 * (G + G.T), int(acc.n)
 
 
 def _partition(session, width: int, fraction: float, seed: int):

@@ -133,7 +133,8 @@ def _explicit_gram(session, width):
     return G, n
 
 
-def test_gram_holds_only_columns_inside_trials_and_valid_runs(rng, monkeypatch):
+@pytest.mark.parametrize("rows", [1, 37, 16384])
+def test_gram_holds_only_columns_inside_trials_and_valid_runs(rng, monkeypatch, rows):
     mask = np.ones(1200, dtype=bool)
     mask[[50, 51, 400, 1100]] = False
     session = _session(rng, mask=mask)
@@ -141,7 +142,7 @@ def test_gram_holds_only_columns_inside_trials_and_valid_runs(rng, monkeypatch):
     u[~mask], y[~mask] = np.nan, np.nan  # masked samples may hold NaN; none may reach the sums
     session = session.replace(u=u, y=y)
     layout = ss._Layout(4, 3, 2, 2)
-    monkeypatch.setattr(ss, "_CHUNK_ENTRIES", 7 * layout.nz)  # force many chunks (chunk = 256 columns)
+    monkeypatch.setattr(ss, "_STREAM_ROWS", rows)  # chunk edges at every column, often, or never
     G, n = ss._hankel_gram(session, session.segments(min_length=7), layout)
     G_ref, n_ref = _explicit_gram(session, 7)
     assert n == n_ref
@@ -484,3 +485,4 @@ def test_from_rest_only_the_centred_model_predicts_the_baseline(rng):
 def test_centre_outputs_must_be_a_bool(rng):
     with pytest.raises(SessionError, match="centre_outputs must be True or False"):
         SubspaceId(past_steps=4, future_steps=4, centre_outputs="yes").fit(_session(rng))
+
