@@ -754,7 +754,7 @@ def _plant_for(ctx: _Context, task: _Task, session: Session):
 
 
 def _control(ctx: _Context, task: _Task, predictor, session: Session) -> dict:
-    st, cs = ctx.settings, ctx.settings.control
+    cs = ctx.settings.control
     H = task.setting.horizon_steps
     full_train = session.select_trials(task.split.train)
     limits = ctx.limits if ctx.limits is not None else recorded_limits(full_train)

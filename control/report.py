@@ -398,7 +398,6 @@ def _fig_closed_loop(result, plt, colours):
     axes[0].legend(frameon=False, ncol=3, loc="upper right")
     axes[0].set_title(f"Closed loop on the {result.plant.replace(' ', '-')} plant: steered output (first split)")
     lim = result.limits or {}
-    names = list(lim.get("input_names") or [])
     for ax, label in zip(axes[1:], labels):
         inp = tr[(tr["signal"] == "input") & (tr["label"] == label)]
         for i, (name, g) in enumerate(inp.groupby("channel", sort=False)):

@@ -11,7 +11,6 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from .exceptions import SessionError
-from .session import Session
 
 __all__ = ["SessionSummary", "describe_session"]
 
