@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import os
+from concurrent.futures import ThreadPoolExecutor
 from typing import Sequence
 
 import numpy as np
@@ -383,15 +385,31 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     segments = _check_segments(segments, n)
     n_rows = depth * sum(s.shape[1] for s in sigs)
     step = max(int(max_columns), 1)
-    factors, total = [], 0
-    for a, b in segments:
-        for c0 in range(a, b - depth + 1, step):
-            c1 = min(c0 + step + depth - 1, b)
+    spans = [(c0, min(c0 + step + depth - 1, b)) for a, b in segments for c0 in range(a, b - depth + 1, step)]
+
+    def reduce(group):
+        factors, count = [], 0
+        for c0, c1 in group:
             chunk = np.concatenate([block_hankel(s[c0:c1], depth).T for s in sigs], axis=1)
-            total += chunk.shape[0]
+            count += chunk.shape[0]
             factors.append(_r_factor(chunk).T)
             if len(factors) > 8:
                 factors = [combine_factors(factors, n_rows)]
+        return combine_factors(factors, n_rows), count
+
+    # Contiguous groups of chunks are reduced side by side (the QR releases the GIL) and their factors combined:
+    # the same factor up to rounding, as fast as the cores allow. The grouping depends only on the chunk count
+    # and the number of CPUs, so a run on the same machine gives the same numbers.
+    n_groups = max(1, min(os.cpu_count() or 1, len(spans) // 4))
+    edges = np.linspace(0, len(spans), n_groups + 1).round().astype(int)
+    groups = [spans[edges[g]:edges[g + 1]] for g in range(n_groups)]
+    if n_groups == 1:
+        parts = [reduce(groups[0])]
+    else:
+        with ThreadPoolExecutor(max_workers=n_groups, thread_name_prefix="stimsteer-qr") as pool:
+            parts = list(pool.map(reduce, groups))
+    total = sum(c for _, c in parts)
+    factors = [f for f, _ in parts]
     if total == 0:
         longest = max((b - a for a, b in segments), default=0)
         raise SessionError(

@@ -363,14 +363,12 @@ def _free_run(predictor, u, y, P, limit):
     """Prediction of ``y[P:]`` from the measured ``[0, P)`` only; chained in blocks when the horizon is limited."""
     T = u.shape[0]
     step = T - P if limit is None else int(limit)
-    y_run = np.array(y[:P], dtype=np.float64)
-    out = []
+    y_run = np.empty((T, y.shape[1]))  # the measured start, then the predictions, written in place
+    y_run[:P] = y[:P]
     for t in range(P, T, step):
         stop = min(T, t + step)
-        yhat = _predict_batch(predictor, u[None, t - P: t], y_run[None, y_run.shape[0] - P:], u[None, t: stop])[0]
-        out.append(yhat)
-        y_run = np.concatenate([y_run, yhat])
-    return np.concatenate(out) if out else np.zeros((0, y.shape[1]))
+        y_run[t:stop] = _predict_batch(predictor, u[None, t - P: t], y_run[None, t - P: t], u[None, t: stop])[0]
+    return y_run[P:]
 
 
 def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Scores:
