@@ -1713,8 +1713,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     -------
     PlanRun
     """
-    from ..sysid.io import load_session
-    from ..sysid.routes import rest_window, trial_end_window
+    from ..sysid.routes import open_session_source, rest_window, trial_end_window
     from ..sysid.storage import load_predictor
     from .limits import load_limits
 
@@ -1734,7 +1733,8 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         start = "rest"
     else:
         path, index = from_trial
-        u_past, y_past = trial_end_window(load_session(path), index, window_of, provenance)
+        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+            u_past, y_past = trial_end_window(session, index, window_of, provenance)
         start = f"the end of trial {index} of {path}"
     plan = ctrl.plan(u_past, y_past, target=tgt)
     extra = {"model_file": str(model_path), "limits_file": str(limits_path), "start": start,
@@ -1748,11 +1748,19 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
              f"{1e3 * plan.solve_time_s:.1f} ms"]
     if plan.message:
         lines.append(f"note: {plan.message}")
+    recorded = provenance.get("session", {}).get("input_units") if isinstance(provenance, dict) else None
+    other = sorted({str(u) for u in (recorded or ()) if str(u).strip() not in _MICROAMPERE})
+    if other:
+        lines.append(f"note: the model's inputs were recorded in {', '.join(other)}, while the limits file declares "
+                     "µA; the limits were applied to the recorded numbers as they are. Check that they match.")
     lines.append("cost: " + ", ".join(f"{k} {v:.4g}" for k, v in plan.cost_terms.items()))
     lines += [f"active: {s}" for s in plan.active_summary()] or ["active: no limit is binding"]
     if plan.slack_total > 0:
         lines.append(f"output bounds exceeded by up to {float(np.max(plan.output_slack)):.4g} (soft bounds)")
     return PlanRun(plan=plan, files=files, lines=tuple(lines))
+
+
+_MICROAMPERE = {"uA", "µA", "μA", "microampere", "microamperes"}  # spellings of the limits file's unit
 
 
 def _channels(predictor, provenance):

@@ -179,3 +179,18 @@ def test_parse_target_takes_one_number_per_output_like_network(tmp_path):
         parse_target("1,nan,3", names, 2)
     with pytest.raises(FileNotFoundError, match="nor one number per output"):
         parse_target(tmp_path / "missing.csv", names, 2)
+
+
+def test_plan_notes_inputs_recorded_in_another_unit_than_the_limits(files, capsys):
+    d, model = files
+    rc = main(["plan", str(d / "model.h5"), "--target", "lfp_0=1.5", "--limits", str(d / "limits.toml"),
+               "--out", str(d / "out_ua"), "--horizon-steps", "8"])
+    assert rc == 0 and "recorded in" not in capsys.readouterr().out  # µA inputs: nothing to say
+    prov = {"session": {"input_names": ["site_a", "site_b"], "input_units": ["mW", "uA"],
+                        "output_names": ["lfp_0", "lfp_1"], "output_units": ["uV", "uV"], "sample_rate_hz": 200.0}}
+    save_predictor(model, d / "opto.h5", provenance=prov)
+    rc = main(["plan", str(d / "opto.h5"), "--target", "lfp_0=1.5", "--limits", str(d / "limits.toml"),
+               "--out", str(d / "out_mw"), "--horizon-steps", "8"])
+    out = capsys.readouterr().out
+    assert rc == 0
+    assert "note: the model's inputs were recorded in mW, while the limits file declares µA" in out
