@@ -20,7 +20,7 @@ import pandas as pd
 
 from .exceptions import ExcitationError, SessionError, StimsteerWarning, check_fitted
 from ._lagged import _stream_sums
-from .quality import output_moments
+from ._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from .statespace import StateSpaceModel, kalman_gain
 
 try:  # installed with scikit-learn; limits BLAS threads for the many small matrix operations after the data pass
@@ -388,32 +388,6 @@ def _single_blas_thread():
 
 
 # ----------------------------------------------------------------------------------------------------- estimator
-def _output_mean(source) -> np.ndarray:
-    """Mean of each output over the valid in-trial samples (one streaming pass)."""
-    n, mean, _ms = output_moments(source)
-    if n == 0:
-        raise SessionError("the session has no valid in-trial samples; check its mask and trials.")
-    return mean
-
-
-class _ShiftedOutputs:
-    """A view of a session (or lazily opened file) whose outputs have ``offset`` subtracted on every read."""
-
-    def __init__(self, source, offset: np.ndarray):
-        self._src, self._offset = source, offset
-        for attr in ("trials", "n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names",
-                     "output_names", "input_units", "output_units"):
-            if hasattr(source, attr):
-                setattr(self, attr, getattr(source, attr))
-
-    def segments(self, min_length: int = 1):
-        return self._src.segments(min_length)
-
-    def read(self, start: int, stop: int):
-        u, y, mask = self._src.read(start, stop)
-        return u, np.asarray(y, dtype=np.float64) - self._offset, mask
-
-
 class SubspaceId:
     """Subspace identification of an innovation-form state-space model from a stimulation session.
 
