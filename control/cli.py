@@ -93,8 +93,8 @@ def _add_fit(sub):
     p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
     p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
     p.add_argument("--centre-outputs", action="store_true",
-                   help="subspace only: identify on the outputs minus their training mean (for a baseline offset); "
-                   "predictions and plans stay in the recorded units")
+                   help="subspace, lsq, hankel: fit on the outputs minus their training mean (for a baseline "
+                   "offset); predictions and plans stay in the recorded units (arx fits an intercept instead)")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
     return p
 
@@ -115,9 +115,9 @@ def _run_fit(args):
         raise StimsteerError(f"model file {args.out} already exists; choose another --out or pass --force.")
     settings = {} if args.past is None else {"past_steps": args.past}
     if args.centre_outputs:
-        if (args.route, args.method) != ("indirect", "subspace"):
-            raise StimsteerError("--centre-outputs is for --route indirect --method subspace; ridge ARX fits an "
-                                 "intercept of its own, and the direct methods keep the recorded outputs.")
+        if args.method == "arx":
+            raise StimsteerError("--centre-outputs is for the subspace, lsq and hankel methods; ridge ARX fits an "
+                                 "intercept of its own.")
         settings["centre_outputs"] = True
     with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
         warnings.simplefilter("always")

@@ -49,7 +49,7 @@ import contextlib
 import textwrap
 import time
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace as _replace
 
 import cvxpy as cp
 import numpy as np
@@ -1168,6 +1168,11 @@ class DataPredictiveController(_CondensedCore):
         names_in = tuple(getattr(pred, "input_names_", None) or [f"u{i}" for i in range(m)])
         names_out = tuple(getattr(pred, "output_names_", None) or [f"y{i}" for i in range(p)])
         self._setup_common(names_in, names_out, N)
+        raw = getattr(pred, "output_offset_", None)
+        off = np.zeros(p) if raw is None else np.asarray(raw, np.float64).reshape(-1)
+        self._y_off = off if off.shape == (p,) and np.any(off) else None
+        if self._y_off is not None:  # a centred predictor: plans are made in its coordinates (see plan)
+            self._ymin, self._ymax = self._ymin - np.tile(off, N), self._ymax - np.tile(off, N)
         self.past_steps_ = int(pred.past_steps_)
         Lq = _sqrt_weight("output_weight", self.output_weight, p)
         self._Lz = sla.block_diag(*[Lq] * N)
@@ -1178,6 +1183,20 @@ class DataPredictiveController(_CondensedCore):
         else:
             self._build_deepc(pred, N, m, p)
         return self
+
+    def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None) -> Plan:
+        """As :meth:`ModelPredictiveController.plan`; outputs, targets and bounds in the recorded units.
+
+        For a predictor built with ``centre_outputs`` the plan is made in its centred coordinates (past outputs and
+        target less its ``output_offset_``, output bounds shifted at fit) and reported back in recorded units.
+        """
+        off = getattr(self, "_y_off", None)
+        if off is None:
+            return super().plan(u_past, y_past, target=target, last_input=last_input, use_fast_path=use_fast_path)
+        u_c, y_c = self._check_past(u_past, y_past)
+        tgt = self._check_target(target)
+        plan = super().plan(u_c, y_c - off, target=tgt - off, last_input=last_input, use_fast_path=use_fast_path)
+        return _replace(plan, predicted_outputs=_ro(plan.predicted_outputs + off), target=_ro(plan.target + off))
 
     # ------------------------------------------------------------------------------------ DeePC
     def _build_deepc(self, pred, N, m, p):
@@ -1384,8 +1403,9 @@ class DataPredictiveController(_CondensedCore):
             y = self._Kp @ self._past_vector(u_past, y_past) + self._Gy @ u.reshape(-1)
         elif aux is not None:
             y = self._Yf @ aux
-        else:
-            return np.asarray(self.predictor_.predict(u_past, y_past, u), np.float64).reshape(N, p)
+        else:  # the predictor takes recorded units; the plan's y_past is centred when it has an offset
+            off = 0.0 if getattr(self, "_y_off", None) is None else self._y_off
+            return np.asarray(self.predictor_.predict(u_past, y_past + off, u), np.float64).reshape(N, p) - off
         return y.reshape(N, p)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):

@@ -38,6 +38,7 @@ import numpy as np
 import pandas as pd
 import scipy.linalg as sla
 
+from ._offsets import ShiftedOutputs, output_mean
 from .excitation import check_excitation, rank_tolerance
 from ._windows import window_batch
 from .exceptions import ConditioningWarning, SessionError, SolverError, check_fitted
@@ -255,6 +256,11 @@ class _DirectPredictor:
 
     def _gather(self, session, n_candidates, keep_full):
         past, horizon = self._validate_common(session)
+        if not isinstance(self.centre_outputs, (bool, np.bool_)):
+            raise SessionError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
+        self.output_offset_ = output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
+        if self.centre_outputs:
+            session = ShiftedOutputs(session, self.output_offset_)
         order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
                                  stacklevel=5)
         folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
@@ -324,7 +330,8 @@ class _DirectPredictor:
             )
         uf = np.zeros((N, m))
         uf[:n_future] = u_future
-        b = np.concatenate([u_past[-past:].reshape(-1), y_past[-past:].reshape(-1), uf.reshape(-1)])
+        y_rel = y_past[-past:] - self._offset()
+        b = np.concatenate([u_past[-past:].reshape(-1), y_rel.reshape(-1), uf.reshape(-1)])
         return b, n_future
 
     def _batch_windows(self, u_past, y_past, u_future):
@@ -338,13 +345,24 @@ class _DirectPredictor:
         W, n_future = up.shape[0], uf.shape[1]
         full = np.zeros((W, N, m))
         full[:, :n_future] = uf
-        b = np.concatenate([up[:, -past:].reshape(W, -1), yp[:, -past:].reshape(W, -1), full.reshape(W, -1)], axis=1)
+        y_rel = yp[:, -past:] - self._offset()
+        b = np.concatenate([up[:, -past:].reshape(W, -1), y_rel.reshape(W, -1), full.reshape(W, -1)], axis=1)
         return b, n_future
 
     def _linear_many(self, G, u_past, y_past, u_future):
         b, n_future = self._batch_windows(u_past, y_past, u_future)
         y = b @ G.T
-        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future]
+        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
+
+    def _offset(self) -> np.ndarray:
+        """The outputs' training mean removed before fitting (``centre_outputs``), zeros otherwise."""
+        off = getattr(self, "output_offset_", None)
+        return np.zeros(self.n_outputs_) if off is None else off
+
+    def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
+        """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
+        check_fitted(self, "past_steps_")
+        return np.zeros((self.past_steps_, self.n_inputs_)), np.tile(self._offset(), (self.past_steps_, 1))
 
     # ---------------------------------------------------------------------------------------- storage
     _fitted_arrays: tuple = ()
@@ -359,6 +377,7 @@ class _DirectPredictor:
                   for k, v in self.get_params().items() if v is not None}
         fitted = {k: getattr(self, k) for k in self._fitted_scalars + self._fitted_arrays
                   if getattr(self, k) is not None}
+        fitted["output_offset_"] = np.asarray(self._offset(), dtype=np.float64)
         fitted["input_names_"] = "\n".join(self.input_names_)
         fitted["output_names_"] = "\n".join(self.output_names_)
         fitted["cv_folds_"] = np.asarray(self.cv_folds_, dtype=np.int64)
@@ -373,6 +392,8 @@ class _DirectPredictor:
                 params[k] = int(params[k])
         if cls._strength_param in params:
             params[cls._strength_param] = tuple(float(v) for v in np.atleast_1d(params[cls._strength_param]))
+        if "centre_outputs" in params:
+            params["centre_outputs"] = bool(int(params["centre_outputs"]))
         obj = cls(**params)
         fitted = dict(state["fitted"])
         for k in ("past_steps_", "max_horizon_steps_", "n_inputs_", "n_outputs_", "excitation_order_",
@@ -385,6 +406,7 @@ class _DirectPredictor:
         obj.input_names_ = tuple(str(fitted.pop("input_names_")).split("\n"))
         obj.output_names_ = tuple(str(fitted.pop("output_names_")).split("\n"))
         obj.cv_table_ = pd.DataFrame({k: np.asarray(v) for k, v in fitted.pop("cv_table_").items()})
+        obj.output_offset_ = np.asarray(fitted.pop("output_offset_", np.zeros(obj.n_outputs_)), dtype=np.float64)
         return obj, fitted
 
 
@@ -414,6 +436,10 @@ class LsqPredictor(_DirectPredictor):
         Folds of whole trials used to choose the strength (fewer when fewer trials have windows).
     seed : int, default 0
         Seeds the assignment of trials to folds.
+    centre_outputs : bool, default False
+        Build the predictor from the outputs minus their training mean (``output_offset_``), for recordings with a
+        baseline offset; predictions take and give recorded units (the offset is removed from ``y_past`` and added
+        to the prediction), and the data controller plans in recorded units.
 
     Attributes
     ----------
@@ -434,6 +460,8 @@ class LsqPredictor(_DirectPredictor):
         Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
     input_names_, output_names_ : tuple of str
     sample_rate_hz_ : float
+    output_offset_ : ndarray, shape (n_outputs,)
+        The training mean removed with ``centre_outputs`` (zeros otherwise).
 
     Notes
     -----
@@ -461,18 +489,20 @@ class LsqPredictor(_DirectPredictor):
     """
 
     storage_kind = "lsq_predictor"
-    _param_names = ("past_steps", "horizon_steps", "alphas", "n_states", "n_splits", "seed")
+    _param_names = ("past_steps", "horizon_steps", "alphas", "n_states", "n_splits", "seed", "centre_outputs")
     _strength_param = "alphas"
     _fitted_arrays = ("Kp_", "Kf_")
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("alpha_", "ridge_strength_")
 
-    def __init__(self, *, past_steps, horizon_steps, alphas=_DEFAULT_ALPHAS, n_states=None, n_splits=3, seed=0):
+    def __init__(self, *, past_steps, horizon_steps, alphas=_DEFAULT_ALPHAS, n_states=None, n_splits=3, seed=0,
+                 centre_outputs=False):
         self.past_steps = past_steps
         self.horizon_steps = horizon_steps
         self.alphas = alphas
         self.n_states = n_states
         self.n_splits = n_splits
         self.seed = seed
+        self.centre_outputs = centre_outputs
 
     @_one_blas_thread
     def fit(self, session) -> "LsqPredictor":
@@ -534,7 +564,7 @@ class LsqPredictor(_DirectPredictor):
         b, n_future = self._check_windows(u_past, y_past, u_future)
         n_p = self.Kp_.shape[1]
         y = self.Kp_ @ b[:n_p] + self.Kf_ @ b[n_p:]
-        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future] + self._offset()
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels); one matrix product."""
@@ -631,6 +661,10 @@ class HankelPredictor(_DirectPredictor):
         Passed to ``cvxpy.Problem.solve`` for "l1"; default ``{"solver": "CLARABEL"}`` (an interior-point
         solver: the first-order default of cvxpy for QPs stops at its iteration limit on some of these problems).
         Not saved by :meth:`to_state`.
+    centre_outputs : bool, default False
+        Build the predictor from the outputs minus their training mean (``output_offset_``), for recordings with a
+        baseline offset; predictions take and give recorded units (the offset is removed from ``y_past`` and added
+        to the prediction), and the data controller plans in recorded units.
 
     Attributes
     ----------
@@ -655,6 +689,8 @@ class HankelPredictor(_DirectPredictor):
         Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
     input_names_, output_names_ : tuple of str
     sample_rate_hz_ : float
+    output_offset_ : ndarray, shape (n_outputs,)
+        The training mean removed with ``centre_outputs`` (zeros otherwise).
 
     Notes
     -----
@@ -697,14 +733,15 @@ class HankelPredictor(_DirectPredictor):
 
     storage_kind = "hankel_predictor"
     _param_names = ("past_steps", "horizon_steps", "regularizer", "lambdas_g", "lambda_y", "compress", "n_states",
-                    "n_splits", "seed", "solver_options")
+                    "n_splits", "seed", "solver_options", "centre_outputs")
     _strength_param = "lambdas_g"
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("regularizer_", "lambda_g_", "lambda_g_relative_",
                                                           "lambda_y_")
     _fitted_arrays = ("reg_matrix_",)
 
     def __init__(self, *, past_steps, horizon_steps, regularizer="projection", lambdas_g=_DEFAULT_LAMBDAS_G,
-                 lambda_y=1e3, compress=True, n_states=None, n_splits=3, seed=0, solver_options=None):
+                 lambda_y=1e3, compress=True, n_states=None, n_splits=3, seed=0, solver_options=None,
+                 centre_outputs=False):
         self.past_steps = past_steps
         self.horizon_steps = horizon_steps
         self.regularizer = regularizer
@@ -715,6 +752,7 @@ class HankelPredictor(_DirectPredictor):
         self.n_splits = n_splits
         self.seed = seed
         self.solver_options = solver_options
+        self.centre_outputs = centre_outputs
 
     # ---------------------------------------------------------------------------------------- fit
     def _validate_settings(self):
@@ -846,7 +884,7 @@ class HankelPredictor(_DirectPredictor):
             y = self.blocks_.Yf @ self._solve(b)
         else:
             y = self._prediction_map() @ b
-        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future]
+        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future] + self._offset()
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels).
@@ -871,7 +909,7 @@ class HankelPredictor(_DirectPredictor):
         -------
         g : ndarray, shape (r,)
             In the coordinates of ``blocks_`` (``h = Qᵀ g`` when compressed); ``blocks_.Yf @ g`` is the
-            predicted ``vec(y_future)`` over the full horizon.
+            predicted ``vec(y_future)`` over the full horizon, less ``output_offset_`` with ``centre_outputs``.
         """
         b, _ = self._check_windows(u_past, y_past, u_future)
         return self._solve(b)

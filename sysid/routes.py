@@ -282,10 +282,7 @@ def _warn_offsets(predictor, train, method: str) -> float:
             f"cannot represent: channel {names[i]!r} has mean {mean[i]:.4g} {units[i]}, {100 * frac[i]:.0f} % of "
             f"its mean square ({int(np.sum(frac > OFFSET_WARN_FRACTION))} of {frac.size} channels above "
             f"{100 * OFFSET_WARN_FRACTION:.0f} %). "
-            + ("Refit with --centre-outputs (centre_outputs=True), or use the arx method, which fits an intercept."
-               if method == "subspace" else
-               "Remove the offsets first (stimsteer.sysid.prep.detrend(session, kind='constant'), then save the "
-               "session), or use the arx method, which fits an intercept."),
+            + "Refit with --centre-outputs (centre_outputs=True), or use the arx method, which fits an intercept.",
             StimsteerWarning, stacklevel=3)
     return float(frac.max(initial=0.0))
 

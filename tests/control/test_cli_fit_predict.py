@@ -174,7 +174,16 @@ def test_fit_warns_in_one_line_about_an_output_offset_a_subspace_model_cannot_ca
     # refused where it does not apply, in one line
     assert main(["fit", str(path), "--route", "indirect", "--method", "arx", "--out", str(tmp_path / "a.h5"),
                  "--centre-outputs"]) == 2
-    one_error_line(capsys, "--centre-outputs is for --route indirect --method subspace")
+    one_error_line(capsys, "--centre-outputs is for the subspace, lsq and hankel methods")
+    # the direct methods take it too, and predict from rest at the baseline
+    direct = tmp_path / "lsq.h5"
+    assert main(["fit", str(path), "--route", "direct", "--method", "lsq", "--out", str(direct), "--past-steps", "4",
+                 "--horizon-steps", "6", "--centre-outputs"]) == 0
+    assert "constant offset" not in capsys.readouterr().err
+    assert main(["predict", str(direct), "--pattern", str(pattern_file(tmp_path, n=6)), "--out",
+                 str(tmp_path / "pred_lsq")]) == 0
+    table = pd.read_csv(tmp_path / "pred_lsq" / "prediction.csv", comment="#")
+    assert abs(table["out:lfp [mV]"].iloc[0] - 40.0) < 1.0
 
 
 @pytest.mark.parametrize("method", ["indirect arx", "indirect subspace", "direct lsq", "direct hankel"])

@@ -545,3 +545,44 @@ def test_reset_needs_a_fitted_controller(rng):
     with pytest.raises(NotFittedError):
         ctrl.reset()
     assert ctrl.fit().reset() is ctrl
+
+
+# ------------------------------------------------------------------------------------------------ output offsets
+@pytest.mark.parametrize("kind", ["lsq", "hankel"])
+@pytest.mark.parametrize("fast", [True, False])
+def test_a_centred_direct_predictor_plans_in_recorded_units(rng, kind, fast):
+    # The same data recorded on a baseline: a predictor built with centre_outputs must give the plan of the
+    # predictor built from the centred data (same inputs), with outputs, target and output bounds in recorded
+    # units. The reference is the centred session planned with the target and bounds shifted by hand.
+    from stimsteer.sysid.datadriven import HankelPredictor, LsqPredictor
+
+    model = _model(rng)
+    clean = _noise_free_session(rng, model)
+    base = np.array([25.0, -8.0])  # invented baseline offsets
+    shifted = clean.replace(y=clean.y + base)
+    make = (lambda **kw: LsqPredictor(past_steps=3, horizon_steps=6, alphas=(1e-8,), **kw)) if kind == "lsq" else \
+        (lambda **kw: HankelPredictor(past_steps=3, horizon_steps=6, lambdas_g=(1e-6,), **kw))
+    centred = make(centre_outputs=True).fit(shifted)
+    off = centred.output_offset_
+    np.testing.assert_allclose(off, shifted.y.mean(0), rtol=1e-12)
+    ref_pred = make().fit(clean.replace(y=shifted.y - off))
+    u, y0 = _past(rng, model)
+    y = y0 + base
+    np.testing.assert_allclose(centred.predict(u, y, u[:4]), ref_pred.predict(u, y - off, u[:4]) + off,
+                               rtol=0, atol=1e-9)
+    target = np.array([1.0, 0.5]) + base
+    ymax = np.array([0.6, np.inf])
+    ctrl = DataPredictiveController(predictor=centred, limits=_limits(output_max=ymax + base), input_weight=0.5,
+                                    horizon_steps=5).fit()
+    ref = DataPredictiveController(predictor=ref_pred, limits=_limits(output_max=ymax + base - off),
+                                   input_weight=0.5, horizon_steps=5).fit()
+    a = ctrl.plan(u, y, target=target, use_fast_path=fast)
+    b = ref.plan(u, y - off, target=target - off, use_fast_path=fast)
+    assert a.ok and b.ok
+    np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(a.predicted_outputs, b.predicted_outputs + off, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(a.target, np.tile(target, (5, 1)), rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(a.active_limits["output_bounds"], b.active_limits["output_bounds"])
+    assert a.active_limits["output_bounds"].any()  # the bound binds: its shift matters
+    u_rest, y_rest = centred.rest_window()
+    assert not u_rest.any() and np.allclose(y_rest, off)
