@@ -84,6 +84,9 @@ class _Lazy:
         for alias, names in self.aliases.items():
             if alias in given:
                 value = given.pop(alias)
+                if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+                    raise SessionError(f"{alias} must be a whole number of samples >= 1 (on the command line: "
+                                       f"--{alias.replace('_', '-')} N); got {value!r}.")
                 for n in names:
                     given.setdefault(n, value)
         allowed = set(self.parameters())

@@ -215,3 +215,9 @@ def test_direct_fit_without_its_windows_names_the_missing_options(session_file, 
                  "--past-steps", "3"]) == 2
     one_error_line(capsys, "needs horizon_steps (on the command line: --horizon-steps N)")
     assert not out.exists()
+
+
+def test_arx_with_a_zero_past_window_names_the_option(session_file, tmp_path, capsys):
+    assert main(["fit", str(session_file), "--route", "indirect", "--method", "arx", "--out", str(tmp_path / "a.h5"),
+                 "--past-steps", "0"]) == 2
+    one_error_line(capsys, "past_steps must be a whole number of samples >= 1", "--past-steps N", "got 0")
