@@ -38,6 +38,9 @@ class SessionSummary:
         Channels without any variation at the valid in-trial samples.
     saturated_channels : tuple of (str, float)
         Output channels with a large fraction of valid samples at their minimum or maximum, with that fraction.
+    offset_channels : tuple of (str, float, float)
+        Output channels whose mean holds more than :data:`OFFSET_WARN_FRACTION` of their mean square: name, mean
+        and that share (a baseline offset that models without a constant term cannot carry).
     warnings : tuple of str
         One line per problem, each saying what to do.
     notes : list of str
@@ -61,6 +64,7 @@ class SessionSummary:
     longest_gap_s: float
     flat_channels: tuple = ()
     saturated_channels: tuple = ()
+    offset_channels: tuple = ()
     warnings: tuple = ()
     notes: list = field(default_factory=list)
 
@@ -97,11 +101,19 @@ class SessionSummary:
             f"  flat channels: {', '.join(self.flat_channels) or 'none'}",
             "  saturated channels: "
             + (", ".join(f"{n} ({100 * f:.1f}% at an extreme)" for n, f in self.saturated_channels) or "none"),
+            "  output offsets: "
+            + (", ".join(f"{n} (mean {m:.4g} {self.output_units[self.output_names.index(n)]}, {100 * f:.0f}% of "
+                         "its mean square)" for n, m, f in self.offset_channels) or "none"),
         ]
         lines += ["Warnings:"] + [f"  - {w}" for w in self.warnings] if self.warnings else ["No problems found."]
         if self.notes:
             lines += ["Notes:"] + [f"  - {n}" for n in self.notes]
         return "\n".join(lines)
+
+
+#: Share of an output's mean square held by its mean above which it is reported as an offset (our own threshold:
+#: then a tenth of the channel's power is a constant that a model without a constant term cannot represent).
+OFFSET_WARN_FRACTION = 0.1
 
 
 def output_moments(source, chunk_rows: int = 65536) -> tuple[int, np.ndarray, np.ndarray]:
@@ -148,6 +160,7 @@ def _masked_runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def _scan(session, chunk_rows: int):
     """One pass over the trials: valid-sample counts, masked runs and the channels' extremes at valid samples."""
     ext_u, ext_y = _Extremes(session.n_inputs), _Extremes(session.n_outputs)
+    s1, s2 = np.zeros(session.n_outputs), np.zeros(session.n_outputs)
     n_inside = n_used = 0
     gaps = []  # lengths of the masked runs inside trials
 
@@ -158,7 +171,10 @@ def _scan(session, chunk_rows: int):
             n_inside += mask.size
             n_used += int(mask.sum())
             ext_u.add(np.asarray(u)[mask])
-            ext_y.add(np.asarray(y)[mask])
+            y_valid = np.asarray(y, dtype=np.float64)[mask]
+            ext_y.add(y_valid)
+            s1 += y_valid.sum(axis=0)
+            s2 += np.einsum("ij,ij->j", y_valid, y_valid)
             starts, stops = _masked_runs(mask)
             lengths = [int(n) for n in stops - starts]
             if run:
@@ -172,7 +188,9 @@ def _scan(session, chunk_rows: int):
             gaps.extend(lengths)
         if run:
             gaps.append(run)
-    return n_inside, n_used, len(gaps), max(gaps, default=0), ext_u, ext_y
+    mean, ms = s1 / max(n_used, 1), s2 / max(n_used, 1)
+    share = np.divide(mean ** 2, ms, out=np.zeros_like(ms), where=ms > 0)
+    return n_inside, n_used, len(gaps), max(gaps, default=0), ext_u, ext_y, (mean, share)
 
 
 def _channel_problems(session, ext_u: _Extremes, ext_y: _Extremes, n_used: int, saturation_fraction: float):
@@ -239,7 +257,7 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
                                                                     masked_warning_fraction)):
         if not 0 < float(f) <= 1:
             raise SessionError(f"{name} must be in (0, 1]; got {f}.")
-    n_inside, n_used, n_gaps, longest, ext_u, ext_y = _scan(session, int(chunk_samples))
+    n_inside, n_used, n_gaps, longest, ext_u, ext_y, (mean, share) = _scan(session, int(chunk_samples))
     masked_fraction = float((n_inside - n_used) / max(n_inside, 1))
     flat, saturated, warnings = _channel_problems(session, ext_u, ext_y, n_used, float(saturation_fraction))
     trials = np.asarray(session.trials)
@@ -251,6 +269,13 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
             f"{100 * masked_fraction:.1f}% of in-trial samples are masked: fits see fewer rows and shorter "
             "segments; check the artifact window (blank_artifacts) and the missing data."
         )
+    offsets = tuple((name, float(mean[j]), float(share[j])) for j, name in enumerate(session.output_names)
+                    if name not in flat and share[j] > OFFSET_WARN_FRACTION)
+    for name, m, f in offsets:
+        unit = session.output_units[list(session.output_names).index(name)]
+        warnings.append(f"output '{name}' sits on an offset (mean {m:.4g} {unit}, {100 * f:.0f}% of its mean square): "
+                        "fit subspace or direct models with --centre-outputs (centre_outputs=True); ridge ARX fits "
+                        "an intercept of its own.")
     if trials.shape[0] < 2:
         warnings.append("only 1 trial: no held-out split by trials is possible; record more trials or cut the "
                         "recording into trials.")
@@ -261,5 +286,6 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
         trial_samples_median=float(np.median(lengths)), trial_samples_max=int(lengths.max()),
         n_samples_outside_trials=int(session.n_samples - n_inside), masked_fraction=masked_fraction, n_gaps=n_gaps,
         longest_gap_s=longest / session.sample_rate_hz, flat_channels=flat, saturated_channels=saturated,
+        offset_channels=offsets,
         warnings=tuple(warnings),
     )

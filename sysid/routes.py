@@ -26,7 +26,7 @@ from ._files import atomic_dir
 from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .exceptions import FileFormatError, SessionError, StimsteerWarning
 from .metrics import Scores, _free_run, freerun_scores, kstep_scores
-from .quality import output_moments
+from .quality import OFFSET_WARN_FRACTION, output_moments
 from .session import TrialSplit
 
 __all__ = [
@@ -258,11 +258,6 @@ def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores
     if test.segments(min_length=past + 2):
         scores = scores.merged(freerun_scores(predictor, test, max_steps=freerun_max_steps))
     return scores
-
-
-#: Share of an output's mean square held by its mean above which a model without a constant term is warned about
-#: (our own threshold: then a tenth of the channel's power is an offset the model can only mimic with its dynamics).
-OFFSET_WARN_FRACTION = 0.1
 
 
 def _offset_fractions(train) -> tuple[np.ndarray, np.ndarray]:

@@ -128,3 +128,18 @@ def test_a_lazily_opened_file_is_described_like_the_session_whatever_the_chunks(
     assert q.n_gaps == len(expected) == 5 and q.longest_gap_s == pytest.approx(max(expected) / 500.0)
     assert q.masked_fraction == pytest.approx((~mask[:400]).sum() / 900 + (~mask[500:1000]).sum() / 900)
     assert q.flat_channels == ("dead",) and [n for n, _ in q.saturated_channels] == ["clip"]
+
+
+def test_an_output_on_a_baseline_offset_is_reported_with_what_to_do(rng):
+    n = 1000
+    y = rng.standard_normal((n, 2))
+    y[:, 1] += 3.0  # mean² / mean square = 9 / 10 (hand-derived, unit-variance noise)
+    s = Session(u=rng.standard_normal((n, 1)), y=y, sample_rate_hz=100.0, trials=[(0, 500), (500, 1000)],
+                output_names=["lfp", "eeg"], output_units=["mV", "uV"])
+    q = describe_session(s)
+    ((name, mean, share),) = q.offset_channels
+    assert name == "eeg" and mean == pytest.approx(y[:, 1].mean(), rel=1e-12)
+    assert share == pytest.approx(y[:, 1].mean() ** 2 / np.mean(y[:, 1] ** 2), rel=1e-12) and 0.85 < share < 0.95
+    assert any(w.startswith("output 'eeg' sits on an offset (mean") and "--centre-outputs" in w for w in q.warnings)
+    assert f"  output offsets: eeg (mean {mean:.4g} uV, {100 * share:.0f}% of its mean square)" in q.to_text()
+    assert "  output offsets: none" in describe_session(s.replace(y=y - y.mean(0))).to_text()
