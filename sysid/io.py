@@ -436,7 +436,10 @@ class _MappedRows:
 
     def close(self) -> None:
         self._rows = None
-        self._mm.close()
+        try:
+            self._mm.close()
+        except BufferError:  # a view still lives (e.g. in a traceback); the map goes with the last one
+            pass
 
 
 class SessionFile(_TrialLayout):

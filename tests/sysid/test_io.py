@@ -671,3 +671,12 @@ def test_content_hash_of_a_file_streams_in_bounded_memory(tmp_path, rng, compres
         tracemalloc.stop()
     assert digest == s.content_hash()
     assert peak < 0.5 * s.y.nbytes  # one block of 65,536 rows (16 MB) at a time, not the 48 MB dataset at once
+
+
+def test_closing_a_file_while_a_view_of_its_map_lives_does_not_fail(tmp_path, rng):
+    # A view of the map can outlive the read (e.g. inside a traceback); close() must still succeed, and the view
+    # stay valid until it goes.
+    s = _session(rng)
+    with open_session_file(save_session(s, tmp_path / "s.h5")) as f:
+        held = f._y_map._rows[10:20]
+    np.testing.assert_array_equal(held, s.y[10:20])
