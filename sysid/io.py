@@ -67,7 +67,7 @@ comments and are skipped (schedule files open with the caution there). Masked va
 emits ``time [s] @ <rate> Hz``, the label ``-1`` outside trials, and ``valid`` as 1/0; numbers are written in
 the shortest form that reads back to the identical float64. Parquet files also store the layout name, version
 and the metadata JSON in the schema metadata keys ``stimsteer_layout``, ``stimsteer_layout_version`` and
-``stimsteer_metadata``. CSV files carry no metadata: saving a session with metadata to CSV warns.
+``stimsteer_metadata``; CSV files store the metadata JSON on a first comment line, ``# stimsteer-metadata: {...}``.
 
 NWB files
 ---------
@@ -86,7 +86,6 @@ import json
 import math
 import mmap
 import re
-import warnings
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -94,7 +93,7 @@ import h5py
 import numpy as np
 
 from ._files import atomic_path
-from .exceptions import FileFormatError, SessionError, StimsteerError, StimsteerWarning
+from .exceptions import FileFormatError, SessionError, StimsteerError
 from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from .session import Session, _names, _TrialLayout, check_read_buffers
 
@@ -111,6 +110,7 @@ __all__ = [
 LAYOUT_NAME = "stimsteer-session"
 LAYOUT_VERSION = 1
 _TABLE_LAYOUT = "stimsteer-table"
+_CSV_METADATA = "# stimsteer-metadata: "  # a CSV table's comment line holding the session metadata (JSON)
 
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 _PARQUET_MAGIC = b"PAR1"
@@ -262,7 +262,7 @@ def load_session(path) -> Session:
     if kind == "parquet":
         frame, metadata = _read_parquet_frame(path)
     else:
-        frame, metadata = _read_csv_frame(path), {}
+        frame, metadata = _read_csv_frame(path)
     return _session_from_table(frame, path, metadata)
 
 
@@ -768,13 +768,10 @@ def _write_csv(session: Session, tmp: Path) -> None:
     import pandas as pd
 
     cols = _table_columns(session)
-    dropped = sorted(k for k in session.metadata if k != "start_time_s")
-    if dropped:
-        warnings.warn(
-            f"CSV tables carry no metadata; {len(dropped)} key(s) {dropped} were not written. Save as .parquet "
-            "or .h5 to keep them.", StimsteerWarning, stacklevel=3,
-        )
-    pd.DataFrame(cols).to_csv(tmp, index=False)
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        if session.metadata:
+            fh.write(f"{_CSV_METADATA}{_metadata_json(session.metadata)}\n")
+        pd.DataFrame(cols).to_csv(fh, index=False)
 
 
 def _write_parquet(session: Session, tmp: Path) -> None:
@@ -803,13 +800,29 @@ def comment_lines(path) -> int:
     return n
 
 
+def _csv_metadata(line: str, path: Path) -> dict:
+    text = line[len(_CSV_METADATA):].strip()
+    try:
+        meta = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise FileFormatError(f"{path}: the comment line '{_CSV_METADATA.strip()} ...' must hold one JSON object "
+                              f"({exc}); repair it or delete the line.") from None
+    if not isinstance(meta, dict):
+        raise FileFormatError(f"{path}: the comment line '{_CSV_METADATA.strip()} ...' must hold a JSON object; "
+                              f"found {type(meta).__name__}.")
+    return meta
+
+
 def _read_csv_frame(path: Path):
     import pandas as pd
 
     skip = comment_lines(path)
+    metadata = {}
     with open(path, newline="", encoding="utf-8-sig") as fh:
         for _ in range(skip):
-            fh.readline()
+            line = fh.readline()
+            if line.startswith(_CSV_METADATA):
+                metadata = _csv_metadata(line, path)
         try:
             header = next(csv.reader(fh), [])
         except (csv.Error, UnicodeDecodeError) as exc:
@@ -818,7 +831,7 @@ def _read_csv_frame(path: Path):
     # pandas < 3 parses floats exactly only with the round-trip parser; pandas 3 does so by default.
     extra = {"float_precision": "round_trip"} if int(pd.__version__.split(".")[0]) < 3 else {}
     try:
-        return pd.read_csv(path, encoding="utf-8-sig", skiprows=skip, **extra)
+        return pd.read_csv(path, encoding="utf-8-sig", skiprows=skip, **extra), metadata
     except (pd.errors.ParserError, ValueError) as exc:
         raise FileFormatError(f"{path} is not a readable CSV table: {exc}") from None
 

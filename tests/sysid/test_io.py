@@ -58,10 +58,10 @@ def test_round_trip_preserves_every_array_name_unit_and_trial(tmp_path, rng, suf
     s = _session(rng)
     path = tmp_path / f"session{suffix}"
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", StimsteerWarning)  # CSV drops metadata, tested below
+        warnings.simplefilter("error", StimsteerWarning)  # every layout keeps everything, without a warning
         save_session(s, path)
     back = load_session(path)
-    _same(s, back, metadata=suffix != ".csv")
+    _same(s, back)
     assert os.listdir(tmp_path) == [path.name]  # no temporary file left beside it
 
 
@@ -78,9 +78,29 @@ def test_round_trip_keeps_extreme_floats_exactly(tmp_path, rng):
         assert back.y.tobytes() == s.y.tobytes()
 
 
-def test_csv_warns_that_metadata_is_not_written(tmp_path, rng):
-    with pytest.warns(StimsteerWarning, match="CSV tables carry no metadata.*animal"):
-        save_session(_session(rng), tmp_path / "s.csv")
+def test_csv_keeps_the_metadata_on_a_comment_line(tmp_path, rng):
+    s = _session(rng)
+    assert "animal" in s.metadata
+    path = save_session(s, tmp_path / "s.csv")
+    first = path.read_text(encoding="utf-8").splitlines()[0]
+    assert first.startswith("# stimsteer-metadata: {")
+    back = load_session(path)
+    assert back.metadata == s.metadata and back.content_hash() == s.content_hash()
+    # pandas reads the table itself when told that '#' starts a comment (common practice, no source)
+    import pandas as pd
+
+    assert pd.read_csv(path, comment="#").shape[0] == s.n_samples
+
+
+@pytest.mark.parametrize("line, match", [("# stimsteer-metadata: {broken", "must hold one JSON object"),
+                                         ("# stimsteer-metadata: [1, 2]", "must hold a JSON object; found list")])
+def test_a_damaged_csv_metadata_line_is_refused(tmp_path, rng, line, match):
+    path = save_session(_session(rng), tmp_path / "s.csv")
+    lines = path.read_text(encoding="utf-8").splitlines()
+    bad = tmp_path / "bad.csv"
+    bad.write_text("\n".join([line] + lines[1:]) + "\n", encoding="utf-8")
+    with pytest.raises(FileFormatError, match=match):
+        load_session(bad)
 
 
 def test_start_time_survives_tables_and_nwb(tmp_path, rng):
@@ -97,14 +117,13 @@ def test_dispatch_is_by_content_not_suffix(tmp_path, rng):
     save_session(s, tmp_path / "a.h5")
     save_session(s, tmp_path / "b.parquet")
     save_session(s, tmp_path / "c.nwb")
-    with pytest.warns(StimsteerWarning):
-        save_session(s, tmp_path / "d.csv")
+    save_session(s, tmp_path / "d.csv")
     renamed = {"a.h5": "a.dat", "b.parquet": "b.h5", "c.nwb": "c.csv", "d.csv": "d.parquet"}
     expected = {"a.dat": "hdf5", "b.h5": "parquet", "c.csv": "nwb", "d.parquet": "csv"}
     for old, new in renamed.items():
         os.replace(tmp_path / old, tmp_path / new)
         assert detect_format(tmp_path / new) == expected[new]
-        _same(s, load_session(tmp_path / new), metadata=new != "d.parquet")
+        _same(s, load_session(tmp_path / new))
 
 
 def test_hdf5_layout_is_as_documented(tmp_path, rng):
@@ -510,8 +529,7 @@ def test_session_file_window_errors(tmp_path, rng):
 
 
 def test_open_session_file_refuses_other_layouts(tmp_path, rng):
-    with pytest.warns(StimsteerWarning):
-        save_session(_session(rng), tmp_path / "s.csv")
+    save_session(_session(rng), tmp_path / "s.csv")
     with pytest.raises(FileFormatError, match=r"is a CSV file; open_session_file reads only our HDF5 layout"):
         open_session_file(tmp_path / "s.csv")
 
@@ -628,8 +646,7 @@ def test_an_unknown_compression_is_refused_before_anything_is_written(tmp_path, 
 def test_comment_lines_before_the_header_are_skipped(tmp_path, rng):
     # the table layout allows '#' lines before the header (stimsteer writes its caution there in schedules)
     s = _session(rng)
-    with pytest.warns(StimsteerWarning, match="carry no metadata"):
-        path = save_session(s, tmp_path / "s.csv")
+    path = save_session(s, tmp_path / "s.csv")
     text = path.read_text()
     commented = tmp_path / "c.csv"
     commented.write_text("# recorded in an invented test\n# second comment\n" + text)
