@@ -427,14 +427,20 @@ def test_model_file_round_trip_through_storage(rng, tmp_path):
 
 
 # ------------------------------------------------------------------------------------------------ output offsets
+def _on_baseline(rng):
+    """Six noisy trials of the test system, and the same recording on invented DC offsets (large against the
+    signals, whose RMS is about 1-2)."""
+    clean = _session(rng, n_trials=6, length=400, noise=0.01)
+    baseline = np.array([40.0, -15.0])
+    return clean, baseline, clean.replace(y=clean.y + baseline)
+
+
 def test_centre_outputs_identifies_a_system_recorded_on_a_baseline_and_predicts_in_recorded_units(rng, tmp_path):
     from stimsteer.control.mpc import controller_for
     from stimsteer.control.limits import StimLimits
     from stimsteer.sysid.storage import load_predictor, save_predictor
 
-    clean = _session(rng, n_trials=6, length=400, noise=0.01)
-    baseline = np.array([40.0, -15.0])  # invented DC offsets, large against the signals (RMS about 1-2)
-    s = clean.replace(y=clean.y + baseline)
+    clean, baseline, s = _on_baseline(rng)
     train, test = s.select_trials([0, 1, 2, 3, 4]), s.select_trials([5])
     est = SubspaceId(past_steps=6, future_steps=6, centre_outputs=True).fit(train)
     mean = train.y[train.mask].mean(axis=0)
@@ -464,9 +470,8 @@ def test_centre_outputs_identifies_a_system_recorded_on_a_baseline_and_predicts_
 def test_from_rest_only_the_centred_model_predicts_the_baseline(rng):
     # "From rest" (no stimulation before the pattern) the recording sits at its baseline. A model without a
     # constant term predicts zero there; the centred one predicts the baseline plus the response.
-    clean = _session(rng, n_trials=6, length=400, noise=0.01)
-    baseline = np.array([40.0, -15.0])
-    train = clean.replace(y=clean.y + baseline).select_trials([0, 1, 2, 3, 4])
+    _clean, baseline, s = _on_baseline(rng)
+    train = s.select_trials([0, 1, 2, 3, 4])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", StimsteerWarning)
         plain = SubspaceId(past_steps=6, future_steps=6).fit(train)
