@@ -12,7 +12,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..sysid.exceptions import LimitsError, SessionError, check_fitted
+from ..sysid._base import check_fitted
+from ..sysid.exceptions import LimitsError, SessionError
 
 __all__ = ["LoopResult", "run_closed_loop"]
 

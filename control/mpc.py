@@ -56,7 +56,8 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 
-from ..sysid.exceptions import NotFittedError, SessionError, check_fitted
+from ..sysid._base import check_fitted
+from ..sysid.exceptions import NotFittedError, SessionError
 from ..sysid.statespace import StateSpaceModel
 from .cli import CAUTION
 from .limits import StimLimits

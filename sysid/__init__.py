@@ -1,6 +1,8 @@
 """stimsteer.sysid: from recorded stimulation sessions to predictors (the identification layer)."""
 
-from .exceptions import StimsteerError, SessionError, FileFormatError, NotFittedError, UnstableModelError, ExcitationError, LimitsError, InfeasiblePlanError, SolverError, StimsteerWarning, ExcitationWarning, ConditioningWarning
+from .exceptions import StimsteerError, SessionError, InvalidParameterError, FileFormatError, NotFittedError, UnstableModelError, ExcitationError, LimitsError, InfeasiblePlanError, SolverError, StimsteerWarning, ExcitationWarning, ConditioningWarning
+from ._base import BaseEstimator, BasePredictor, check_fitted
+from .protocols import Predictor, LinearPredictor, PredictionMaps, StateSpaceForm, DataBlocks, DataBlocksForm, Plant
 from .session import Session, TrialWindow, TrialSplit
 from .io import load_session, save_session, open_session_file, SessionFile
 from .prep import detrend, filter_session, resample_session, SessionScaler, blank_artifacts
@@ -18,6 +20,17 @@ from .storage import save_predictor, load_predictor
 from .routes import fit_route, FitResult, METHODS
 
 __all__ = [
+    "BaseEstimator",
+    "BasePredictor",
+    "DataBlocks",
+    "DataBlocksForm",
+    "InvalidParameterError",
+    "LinearPredictor",
+    "Plant",
+    "PredictionMaps",
+    "Predictor",
+    "StateSpaceForm",
+    "check_fitted",
     "ConditioningWarning",
     "ExcitationError",
     "ExcitationReport",

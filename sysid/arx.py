@@ -23,7 +23,8 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .exceptions import ConditioningWarning, ExcitationError, SessionError, check_fitted
+from ._base import check_fitted
+from .exceptions import ConditioningWarning, ExcitationError, SessionError
 from ._lagged import _Moments, _read_z, _stream_sums
 from .statespace import StateSpaceModel
 

@@ -41,7 +41,8 @@ import scipy.linalg as sla
 from ._offsets import ShiftedOutputs, output_mean
 from .excitation import check_excitation, rank_tolerance
 from ._windows import window_batch
-from .exceptions import ConditioningWarning, SessionError, SolverError, check_fitted
+from ._base import check_fitted
+from .exceptions import ConditioningWarning, SessionError, SolverError
 from .hankel import _one_blas_thread, block_hankel, combine_factors, row_space_factor
 
 __all__ = ["HankelBlocks", "LsqPredictor", "HankelPredictor", "REGULARIZERS"]

@@ -7,6 +7,7 @@ failures apart from programming errors. The same condition raises the same class
 __all__ = [
     "StimsteerError",
     "SessionError",
+    "InvalidParameterError",
     "FileFormatError",
     "NotFittedError",
     "UnstableModelError",
@@ -26,6 +27,10 @@ class StimsteerError(Exception):
 
 class SessionError(StimsteerError, ValueError):
     """A session, or an argument about one, is malformed (shapes, values, trials, names, units)."""
+
+
+class InvalidParameterError(StimsteerError, ValueError):
+    """A setting (a constructor argument, an option, a weight) has a value that cannot be used."""
 
 
 class FileFormatError(StimsteerError, ValueError):
@@ -66,10 +71,3 @@ class ExcitationWarning(StimsteerWarning):
 
 class ConditioningWarning(StimsteerWarning):
     """A linear system solved during fitting is ill-conditioned; estimates may be inaccurate."""
-
-
-def check_fitted(obj, attribute):
-    """Raise :class:`NotFittedError` unless ``obj`` has the fitted attribute ``attribute``."""
-    if getattr(obj, attribute, None) is None:
-        name = type(obj).__name__
-        raise NotFittedError(f"this {name} is not fitted yet; call {name}.fit(...) before using it.")

@@ -15,7 +15,8 @@ from fractions import Fraction
 import numpy as np
 from scipy import signal
 
-from .exceptions import SessionError, StimsteerWarning, check_fitted
+from ._base import check_fitted
+from .exceptions import SessionError, StimsteerWarning
 from .session import Session
 
 __all__ = ["detrend", "filter_session", "resample_session", "SessionScaler", "blank_artifacts"]

@@ -18,7 +18,8 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .exceptions import ExcitationError, SessionError, StimsteerWarning, check_fitted
+from ._base import check_fitted
+from .exceptions import ExcitationError, SessionError, StimsteerWarning
 from ._lagged import _stream_sums
 from ._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from .statespace import StateSpaceModel, kalman_gain

@@ -1,6 +1,8 @@
 """`stimsteer demo`: the whole job on the shipped session, end to end, as a new user runs it."""
 
 import json
+import sys
+from pathlib import Path
 
 import pytest
 
@@ -21,11 +23,34 @@ def test_demo_refuses_a_folder_that_holds_another_run(tmp_path, capsys):
     assert (tmp_path / "old.txt").read_text() == "another run"
 
 
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    """One demo run for the module's tests: (its folder, what it printed)."""
+    import contextlib
+    import io
+
+    out = tmp_path_factory.mktemp("demo") / "demo"
+    printed = io.StringIO()
+    with contextlib.redirect_stdout(printed):
+        assert main(["demo", "--out", str(out)]) == 0
+    return out, printed.getvalue()
+
+
 @pytest.mark.slow
-def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(tmp_path, capsys):
-    out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out)]) == 0
-    printed = capsys.readouterr().out
+def test_demo_numbers_are_those_of_the_stored_run(demo_run):
+    # Every seeded number of the demo (benchmark tables less timings, plans, predictions, network tables,
+    # schedule) equals the run stored before the layout of the code was changed (tests/golden.py).
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+    import golden
+
+    differences = golden.compare(golden.load_stored(), golden.snapshot(demo_run[0]), rtol=1e-9)
+    assert not differences, "\n".join(differences)
+
+
+@pytest.mark.slow
+def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(demo_run):
+    out, printed = demo_run
+    tmp_path = out.parent
     assert f"open the report: {out / 'report' / 'report.html'}" in printed
     assert printed.rstrip().endswith(CAUTION)
     html = (out / "report" / "report.html").read_text(encoding="utf-8")
