@@ -566,6 +566,11 @@ class RidgeArx:
             )
         return up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf
 
+    def state_space_model(self):
+        """The fitted state-space realisation with this estimator's past window (``model_``, offset in ``info``)."""
+        check_fitted(self, "model_")
+        return self.model_.replace(past_steps=int(self.past_steps_))
+
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows at once.
 

@@ -42,6 +42,7 @@ from ._offsets import ShiftedOutputs, output_mean
 from .excitation import check_excitation, rank_tolerance
 from ._windows import window_batch
 from ._base import check_fitted
+from .protocols import DataBlocks, PredictionMaps
 from .exceptions import ConditioningWarning, SessionError, SolverError
 from .hankel import _one_blas_thread, block_hankel, combine_factors, row_space_factor
 
@@ -220,6 +221,8 @@ class _DirectPredictor:
     _strength_param: str = ""
     #: ``fit`` reads a lazily opened session file segment by segment (``read``/``segments``).
     supports_streaming = True
+    #: The prediction is affine in the window (see :mod:`stimsteer.sysid.protocols`).
+    has_linear_maps = True
 
     def get_params(self, deep: bool = True) -> dict:
         """Constructor arguments, unchanged (scikit-learn convention)."""
@@ -354,6 +357,24 @@ class _DirectPredictor:
         b, n_future = self._batch_windows(u_past, y_past, u_future)
         y = b @ G.T
         return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
+
+    def _maps_from(self, G: np.ndarray, past_steps: int, horizon_steps: int):
+        """:class:`PredictionMaps` of ``vec(y) = G [u_past; y_past − off; u_future] + off`` over a window."""
+        check_fitted(self, "past_steps_")
+        m, p, T, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        past, horizon = int(past_steps), int(horizon_steps)
+        if past < T or not 1 <= horizon <= N:
+            raise SessionError(f"the {type(self).__name__} needs a past window of at least past_steps_ = {T} samples "
+                               f"and a horizon of 1 to {N} steps; got past {past_steps} and horizon {horizon_steps}.")
+        n_u, n_y = m * T, p * T
+        Gu, Gy, Gf = G[:p * horizon, :n_u], G[:p * horizon, n_u:n_u + n_y], G[:p * horizon, n_u + n_y:]
+        P = np.zeros((p * horizon, (m + p) * past))
+        P[:, m * (past - T):m * past] = Gu  # only the last T samples of the window count
+        P[:, m * past + p * (past - T):] = Gy
+        off = self._offset()
+        c = np.tile(off, horizon) - Gy @ np.tile(off, T)
+        return PredictionMaps(P=P, F=np.ascontiguousarray(Gf[:, :m * horizon]), c=c, past_steps=past,
+                              horizon_steps=horizon)
 
     def _offset(self) -> np.ndarray:
         """The outputs' training mean removed before fitting (``centre_outputs``), zeros otherwise."""
@@ -571,6 +592,15 @@ class LsqPredictor(_DirectPredictor):
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels); one matrix product."""
         check_fitted(self, "Kp_")
         return self._linear_many(np.hstack([self.Kp_, self.Kf_]), u_past, y_past, u_future)
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` over a past window of ``past_steps`` and ``horizon_steps`` inputs.
+
+        Samples of a longer past window before the last ``past_steps_`` get zero columns. See
+        :class:`stimsteer.sysid.protocols.PredictionMaps`.
+        """
+        check_fitted(self, "Kp_")
+        return self._maps_from(np.hstack([self.Kp_, self.Kf_]), past_steps, horizon_steps)
 
     @classmethod
     def from_state(cls, state) -> "LsqPredictor":
@@ -896,6 +926,28 @@ class HankelPredictor(_DirectPredictor):
         if self.regularizer_ == "l1":
             return np.stack([self.predict(a, b, c) for a, b, c in zip(u_past, y_past, u_future)])
         return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
+
+    @property
+    def has_linear_maps(self) -> bool:
+        """False for the ℓ1 regulariser (its prediction is not affine in the window), True otherwise."""
+        return getattr(self, "regularizer_", self.regularizer) != "l1"
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` ("l2" and "projection" only; see ``has_linear_maps``)."""
+        check_fitted(self, "blocks_")
+        if not self.has_linear_maps:
+            raise SessionError("the l1-regularised Hankel predictor is not affine in its window and has no "
+                               "prediction maps; use data_blocks() (the DeePC formulation) instead.")
+        return self._maps_from(self._prediction_map(), past_steps, horizon_steps)
+
+    def data_blocks(self) -> DataBlocks:
+        """The (compressed) Hankel blocks, regulariser and strengths, as the DeePC formulation uses them."""
+        check_fitted(self, "blocks_")
+        b = self.blocks_
+        M = getattr(self, "reg_matrix_", None)
+        return DataBlocks(Up=b.Up, Yp=b.Yp, Uf=b.Uf, Yf=b.Yf, regularizer=str(self.regularizer_),
+                          lambda_g=float(self.lambda_g_), lambda_y=float(self.lambda_y_),
+                          reg_matrix=None if M is None else np.asarray(M, np.float64), output_offset=self._offset())
 
     @_one_blas_thread
     def solve_g(self, u_past, y_past, u_future) -> np.ndarray:

@@ -366,6 +366,10 @@ class StateSpaceModel:
             AkB = self.A @ AkB
         return h
 
+    def state_space_model(self) -> "StateSpaceModel":
+        """This model (the :class:`~stimsteer.sysid.protocols.StateSpaceForm` capability)."""
+        return self
+
     def with_noise(self, Q, R, S=None) -> "StateSpaceModel":
         """A copy whose Kalman gain and innovation covariance come from process/measurement covariances."""
         K, P = kalman_gain(self.A, self.C, Q, R, S)

@@ -746,6 +746,11 @@ class SubspaceId:
             return self.model_.predict(u_past, y_past, u_future)
         return self.model_.predict(u_past, np.asarray(y_past, dtype=np.float64) - off, u_future) + off
 
+    def state_space_model(self):
+        """The fitted state-space realisation with this estimator's past window (``model_``, offset in ``info``)."""
+        check_fitted(self, "model_")
+        return self.model_.replace(past_steps=int(self.past_steps_))
+
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels)."""
         check_fitted(self, "model_")
