@@ -34,6 +34,7 @@ __all__ = [
     "DEFAULT_HORIZON_STEPS",
     "FitResult",
     "fit_route",
+    "make_estimator",
     "open_session_source",
     "Pattern",
     "PatternPrediction",
@@ -236,6 +237,30 @@ def _factory(route: str, method: str) -> _Lazy:
     return METHODS[key]
 
 
+def make_estimator(route: str, method: str, settings: dict | None = None, *, horizon_steps: int | None = None):
+    """An unfitted estimator of a registered method, built from its settings.
+
+    Parameters
+    ----------
+    route, method : str
+        A key of :data:`METHODS`.
+    settings : dict, optional
+        Constructor settings; ``past_steps`` is understood by every method.
+    horizon_steps : int, optional
+        Passed to estimators that take ``horizon_steps`` unless ``settings`` already gives it.
+
+    Raises
+    ------
+    SessionError
+        Unknown route/method or settings, or a required setting missing.
+    """
+    factory = _factory(route, method)
+    settings = dict(settings or {})
+    if horizon_steps is not None and "horizon_steps" in factory.parameters():
+        settings.setdefault("horizon_steps", int(horizon_steps))
+    return factory(settings)
+
+
 def _session_record(source) -> dict:
     return {
         "content_hash": source.content_hash(),
@@ -343,10 +368,7 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
         ``output_offset_fraction``.
     """
     factory = _factory(route, method)
-    settings = dict(settings or {})
-    if horizon_steps is not None and "horizon_steps" in factory.parameters():
-        settings.setdefault("horizon_steps", int(horizon_steps))
-    estimator = factory(settings)
+    estimator = make_estimator(route, method, settings, horizon_steps=horizon_steps)
     split = _split(session, n_test, test_fraction, seed)
     train, test = _subsets(session, split, factory.streaming)
     predictor = estimator.fit(train)
