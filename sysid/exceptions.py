@@ -9,6 +9,7 @@ __all__ = [
     "SessionError",
     "InvalidParameterError",
     "FileFormatError",
+    "OutputError",
     "NotFittedError",
     "UnstableModelError",
     "ExcitationError",
@@ -35,6 +36,10 @@ class InvalidParameterError(StimsteerError, ValueError):
 
 class FileFormatError(StimsteerError, ValueError):
     """A file cannot be read as what it was asked to be (not a session, a model from another layout, ...)."""
+
+
+class OutputError(StimsteerError, OSError):
+    """An output cannot be claimed or written: it exists, another run is writing it, or the file system refuses."""
 
 
 class NotFittedError(StimsteerError, RuntimeError):
