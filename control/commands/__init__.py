@@ -1,5 +1,5 @@
-"""One module per ``stimsteer`` subcommand: the file workflow (load, call the public API, write the outputs
-atomically). No argument parsing here (that is ``stimsteer.control.cli``) and no numerics (that is the API).
+"""One module per ``stimsteer`` subcommand: the file workflow (load, call the public API, write files atomically).
 
-* :mod:`.bench` — ``stimsteer bench``: claim the output folder, run the benchmark, write the report.
+Each module offers ``add_parser(subparsers)`` and ``run(args) -> int``; :mod:`stimsteer.control.cli` only parses
+the command line, calls a command and maps errors to exit codes.
 """

@@ -1,9 +1,5 @@
-"""Figures of stimsteer's results, drawn with matplotlib's object API only (no pyplot state, no backend switch, no
-global ``rcParams``), so importing or using stimsteer never changes a user's plotting set-up.
+"""Figures of stimsteer, drawn with matplotlib's object API only.
 
-* :mod:`.bench` — the figures of the benchmark report.
+Every function here builds a ``matplotlib.figure.Figure`` directly (no pyplot state, no backend switch, no global
+``rcParams``), so importing stimsteer never changes a user's plotting state; the command modules save them.
 """
-
-from .bench import report_figures
-
-__all__ = ["report_figures"]
