@@ -1,8 +1,8 @@
 """The benchmark report's content: the plain-language summary, the HTML page and the results JSON of a
 :class:`~stimsteer.control.evaluation.BenchResult`.
 
-Nothing here touches the file system: the ``stimsteer bench`` command (:func:`stimsteer.control.commands.bench.write_bench`)
-writes, atomically::
+Nothing here touches the file system: the ``stimsteer bench`` command
+(:func:`stimsteer.control.commands.bench.write_bench`) writes, atomically::
 
     DIR/report.html          summary, caution, figures (base64 PNG inside the page), key table, provenance
     DIR/results.json         summary, caution, provenance, limits and every table (records)

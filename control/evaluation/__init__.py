@@ -14,8 +14,8 @@ data and at what computational cost:
   (:func:`stimsteer.control.loop.run_closed_loop`) to a pulse target on one output channel. A simulated session
   comes with its ground-truth plant; a recording gets a *surrogate plant*: a ridge ARX with twice the longest past
   window of the routes (a richer model class than either route's), fitted on the held-out trials only, driven with
-  its own innovation noise (:class:`stimsteer.control.plants.InnovationPlant`). Its fit quality is scored on the training trials, which it
-  never saw.
+  its own innovation noise (:class:`stimsteer.control.plants.InnovationPlant`). Its fit quality is scored on the
+  training trials, which it never saw.
 * **Sweeps.** Number of training trials (the data-length question; Krishnan & Pasqualetti 2021), noise level
   (simulated sessions only: the schedule is re-recorded from the plant with scaled noise) and horizon.
 * **Statistics.** Every figure is a mean over the repeated splits with a 95 % Student-t interval
