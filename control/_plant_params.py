@@ -82,3 +82,26 @@ def _seed_int(seed) -> int:
 def _spectral_radius(A: np.ndarray) -> float:
     return float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
 
+
+def _network_matrices(name: str, M, B, C, D):
+    """Validate a square coupling ``M`` (n_nodes, n_nodes) named ``name``, and B, C, D against its n nodes."""
+    M = _matrix(name, M)
+    n = M.shape[0]
+    if M.shape != (n, n):
+        raise SessionError(f"{name} must be square (n_nodes, n_nodes); got shape {M.shape}.")
+    B, C, D = _input_output_matrices(n, B, C, D)
+    return M, B, C, D
+
+
+def _input_array(u, n_inputs: int, what: str = "u", min_samples: int = 0) -> np.ndarray:
+    """A time-major float64 input (n_samples, n_inputs), finite, with at least ``min_samples`` rows."""
+    u = np.asarray(u, dtype=np.float64)
+    if u.ndim == 1 and n_inputs == 1:
+        u = u[:, None]
+    if u.ndim != 2 or u.shape[1] != n_inputs or u.shape[0] < min_samples:
+        rows = f" and at least {min_samples} sample(s)" if min_samples else ""
+        raise SessionError(f"{what} must be time-major with shape (n_samples, {n_inputs}){rows} for this plant's "
+                           f"{n_inputs} input(s); got shape {u.shape}.")
+    if not np.all(np.isfinite(u)):
+        raise SessionError(f"{what} holds NaN or infinite values; give finite amplitudes (µA).")
+    return u

@@ -6,7 +6,8 @@ from __future__ import annotations
 import numpy as np
 
 from ..sysid import SessionError, StateSpaceModel, UnstableModelError, kalman_gain
-from ._plant_params import _input_output_matrices, _matrix, _names, _nonneg, _positive, _seed_int, _spectral_radius
+from ._plant_params import (_input_array, _matrix, _names, _network_matrices, _nonneg, _positive, _seed_int,
+                            _spectral_radius)
 
 __all__ = ["LinearNetworkPlant"]
 
@@ -223,17 +224,7 @@ class _NetworkPlant:
         return (y, X) if return_states else y
 
     def _check_input(self, u) -> np.ndarray:
-        u = np.asarray(u, dtype=np.float64)
-        if u.ndim == 1 and self.n_inputs == 1:
-            u = u[:, None]
-        if u.ndim != 2 or u.shape[1] != self.n_inputs:
-            raise SessionError(
-                f"u must be time-major with shape (n_samples, {self.n_inputs}) for this plant's {self.n_inputs} "
-                f"input(s); got shape {u.shape}."
-            )
-        if not np.all(np.isfinite(u)):
-            raise SessionError("u holds NaN or infinite values; give finite amplitudes (µA).")
-        return u
+        return _input_array(u, self.n_inputs)
 
     def __repr__(self) -> str:
         return (f"{type(self).__name__}(n_states={self.n_states}, n_inputs={self.n_inputs}, "
@@ -297,12 +288,8 @@ class LinearNetworkPlant(_NetworkPlant):
     def __init__(self, A, B, C, D=None, *, process_noise_std=0.0, measurement_noise_std=0.0, drift_amplitude=0.0,
                  drift_period_s=60.0, drift_step_std=0.0, artifact_gain=None, artifact_decay_s=0.005,
                  sample_rate_hz=1.0, input_names=None, output_names=None, seed=0, require_stable=True):
-        A = _matrix("A", A)
-        n = A.shape[0]
-        if A.shape != (n, n):
-            raise SessionError(f"A must be square (n_nodes, n_nodes); got shape {A.shape}.")
-        B, C, D = _input_output_matrices(n, B, C, D)
-        m, p = B.shape[1], C.shape[0]
+        A, B, C, D = _network_matrices("A", A, B, C, D)
+        n, m, p = A.shape[0], B.shape[1], C.shape[0]
         self.A, self.B, self.C, self.D = A, B, C, D
         self._init_recording(
             m=m, n=n, p=p, process_noise_std=process_noise_std, measurement_noise_std=measurement_noise_std,

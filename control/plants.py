@@ -43,7 +43,7 @@ import numpy as np
 
 from ..sysid import FileFormatError, Session, SessionError, StimsteerError
 from ..sysid._files import atomic_path
-from ._plant_params import _positive
+from ._plant_params import _input_array, _positive
 from .network_plant import LinearNetworkPlant
 from .random_networks import random_network
 from .saturating_plant import SaturatingRateNetworkPlant
@@ -171,7 +171,7 @@ def record_session(plant, u, *, trials=None, seed=None, x0=None, trial_start: st
     """
     if trial_start not in ("continue", "rest"):
         raise SessionError(f"trial_start must be 'continue' or 'rest'; got {trial_start!r}.")
-    u = _schedule(plant, u)
+    u = _input_array(u, plant.n_inputs, what="the schedule u", min_samples=1)
     resolution = None if output_resolution is None else _positive("output_resolution", output_resolution)
     probe = Session(u=u, y=np.zeros((u.shape[0], 1)), sample_rate_hz=plant.sample_rate_hz, trials=trials)
     starts = set(int(a) for a in probe.trials[:, 0]) if trial_start == "rest" else set()
@@ -195,20 +195,6 @@ def record_session(plant, u, *, trials=None, seed=None, x0=None, trial_start: st
                    input_names=plant.input_names, output_names=plant.output_names,
                    input_units=units(input_units, plant.n_inputs), output_units=units(output_units, plant.n_outputs),
                    metadata=meta)
-
-
-def _schedule(plant, u) -> np.ndarray:
-    u = np.asarray(u, dtype=np.float64)
-    if u.ndim == 1 and plant.n_inputs == 1:
-        u = u[:, None]
-    if u.ndim != 2 or u.shape[1] != plant.n_inputs or u.shape[0] == 0:
-        raise SessionError(
-            f"the schedule u must have shape (n_samples, {plant.n_inputs}) with at least one sample for this "
-            f"plant's {plant.n_inputs} input(s); got shape {u.shape}."
-        )
-    if not np.all(np.isfinite(u)):
-        raise SessionError("the schedule u holds NaN or infinite values; give finite amplitudes (µA).")
-    return u
 
 
 # ------------------------------------------------------------------------------------------------ files

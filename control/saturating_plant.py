@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..sysid import SessionError, StateSpaceModel, UnstableModelError
-from ._plant_params import _input_output_matrices, _matrix
+from ._plant_params import _network_matrices
 from .network_plant import _NetworkPlant
 
 __all__ = ["SaturatingRateNetworkPlant"]
@@ -57,12 +57,8 @@ class SaturatingRateNetworkPlant(_NetworkPlant):
                  drift_amplitude=0.0, drift_period_s=60.0, drift_step_std=0.0, artifact_gain=None,
                  artifact_decay_s=0.005, sample_rate_hz=1.0, input_names=None, output_names=None, seed=0,
                  require_stable=True):
-        W = _matrix("W", W)
-        n = W.shape[0]
-        if W.shape != (n, n):
-            raise SessionError(f"W must be square (n_nodes, n_nodes); got shape {W.shape}.")
-        B, C, D = _input_output_matrices(n, B, C, D)
-        m, p = B.shape[1], C.shape[0]
+        W, B, C, D = _network_matrices("W", W, B, C, D)
+        n, m, p = W.shape[0], B.shape[1], C.shape[0]
         leak = float(leak)
         if not 0 < leak <= 1:
             raise SessionError(f"leak must be in (0, 1], the fraction moved per sample; got {leak}.")

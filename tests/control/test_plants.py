@@ -453,7 +453,7 @@ def test_record_session_bad_arguments_raise(rng):
     u = np.zeros((100, 2))
     with pytest.raises(SessionError, match="trial_start must be 'continue' or 'rest'"):
         record_session(plant, u, trial_start="fresh")
-    with pytest.raises(SessionError, match=r"schedule u must have shape \(n_samples, 2\)"):
+    with pytest.raises(SessionError, match=r"schedule u must be time-major with shape \(n_samples, 2\)"):
         record_session(plant, np.zeros((100, 3)))
     with pytest.raises(SessionError, match="schedule u holds NaN"):
         record_session(plant, np.full((100, 2), np.nan))
