@@ -15,6 +15,7 @@ import numpy as np
 from ...sysid import Session, SessionError, TrialSplit, make_estimator
 from .settings import MIN_TRAIN_TRIALS, BenchSettings, MethodSpec
 
+
 @dataclass(frozen=True)
 class _Setting:
     """One point of the design: training trials (None = all of the split's), noise scale, horizon."""
