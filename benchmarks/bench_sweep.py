@@ -1,4 +1,4 @@
-"""Speed of the route benchmark (control/evaluation.py) on the shipped demo session.
+"""Speed of the route benchmark (control/evaluation/) on the shipped demo session.
 
 Measured in one run:
 

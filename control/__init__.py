@@ -5,7 +5,8 @@ from .mpc import Plan, ModelPredictiveController, DataPredictiveController, cont
 from .plants import LinearNetworkPlant, SaturatingRateNetworkPlant, random_network, record_session, save_plant, load_plant
 from .loop import LoopResult, run_closed_loop
 from .evaluation import BenchSettings, BenchResult, MethodSpec, ControlSettings, run_bench
-from .report import write_report, summarize
+from .report import summarize
+from .commands.bench import write_bench as write_report
 from .cli import CAUTION, main
 
 __all__ = [

@@ -339,27 +339,15 @@ def _add_bench(sub):
 
 
 def _run_bench(args):
-    from pathlib import Path
-
-    from ..sysid.io import load_session
-    from .evaluation import BenchSettings, run_bench
-    from .limits import load_limits
-    from .plants import load_plant
-    from .report import REPORT_FILE, check_out_dir, summarize
+    from .commands.bench import bench_files
 
     if args.workers is not None and args.workers < 1:
         raise StimsteerError(f"--workers must be at least 1; got {args.workers}.")
-    check_out_dir(args.out, force=args.force)
-    session = load_session(args.session)
-    plant = None if args.plant is None else load_plant(args.plant)
-    limits = None if args.limits is None else load_limits(args.limits)
-    settings = (BenchSettings.quick if args.quick else BenchSettings)(seed=args.seed)
-    source = {"session_file": str(args.session), "plant_file": args.plant, "limits_file": args.limits}
-    result = run_bench(session, settings, plant=plant, limits=limits, out_dir=args.out, force=args.force,
-                       scheduler=args.scheduler, n_workers=args.workers, progress=sys.stderr.isatty(),
-                       source=source)
-    print("\n".join(f"- {line}" for line in summarize(result)))
-    print(f"report written to {Path(args.out) / REPORT_FILE}")
+    run = bench_files(args.session, args.out, plant_path=args.plant, limits_path=args.limits, seed=args.seed,
+                      quick=args.quick, scheduler=args.scheduler, n_workers=args.workers, force=args.force,
+                      progress=sys.stderr.isatty())
+    print("\n".join(f"- {line}" for line in run.lines))
+    print(f"report written to {run.report}")
     print(CAUTION)
     return 0
 

@@ -1,12 +1,16 @@
-"""`stimsteer bench`: the command on small session files, and its refusals (exit code 2, one clear line)."""
+"""`stimsteer bench`: the command (control/cli.py) and its file workflow (control/commands/bench.py) on small
+session files, and their refusals (exit code 2, one clear line)."""
 
 import json
+import time
 
 import numpy as np
 import pytest
 
 from stimsteer.control.cli import CAUTION, main
+from stimsteer.control.commands.bench import bench_files
 from stimsteer.control.plants import LinearNetworkPlant, record_session, save_plant
+from stimsteer.sysid.exceptions import StimsteerError
 from stimsteer.sysid.io import save_session
 
 
@@ -56,6 +60,18 @@ def test_bench_refuses_an_output_folder_holding_another_run(tmp_path, seed, caps
     err = capsys.readouterr().err
     assert code == 2 and "already holds another run (benchmark run 0123abcd)" in err and "--force" in err
     assert [p.name for p in out.iterdir()] == ["results.json"]
+
+
+def test_the_output_folder_is_refused_before_any_work(tmp_path, seed):
+    session, plant = _files(tmp_path, seed)
+    out = tmp_path / "report"
+    out.mkdir()
+    (out / "old.txt").write_text("another run")
+    t0 = time.perf_counter()
+    with pytest.raises(StimsteerError, match="already holds another run"):
+        bench_files(session, out, plant_path=plant, n_workers=1)
+    assert time.perf_counter() - t0 < 1.0
+    assert [p.name for p in out.iterdir()] == ["old.txt"]
 
 
 @pytest.mark.parametrize("extra, message", [

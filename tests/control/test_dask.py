@@ -67,16 +67,15 @@ def test_local_cluster_gives_exactly_the_local_numbers(seed):
     assert local.splits == remote.splits
 
 
-def test_a_scheduler_that_does_not_answer_is_a_clear_error_within_the_timeout(seed, tmp_path):
+def test_a_scheduler_that_does_not_answer_is_a_clear_error_within_the_timeout(seed, tmp_path, monkeypatch):
     session, plant = _session(seed)
     address = f"tcp://127.0.0.1:{_free_port()}"
-    out = tmp_path / "report"
+    monkeypatch.chdir(tmp_path)
     t0 = time.perf_counter()
     with pytest.raises(StimsteerError, match=f"could not reach a Dask scheduler at '{address}' within 1 s"):
-        run_bench(session, _settings(scheduler_timeout_s=1.0), plant=plant, scheduler=address, out_dir=out,
-                  progress=False)
+        run_bench(session, _settings(scheduler_timeout_s=1.0), plant=plant, scheduler=address, progress=False)
     assert time.perf_counter() - t0 < 8.0  # 1 s wait plus connection set-up, far below an unbounded hang
-    assert not out.exists() and list(tmp_path.iterdir()) == []
+    assert list(tmp_path.iterdir()) == []
 
 
 def test_without_distributed_the_error_names_the_extra(seed, monkeypatch):
@@ -86,15 +85,16 @@ def test_without_distributed_the_error_names_the_extra(seed, monkeypatch):
         run_bench(session, _settings(), plant=plant, scheduler="tcp://127.0.0.1:1", progress=False)
 
 
-def test_a_scheduler_without_workers_is_a_clear_error_within_the_timeout(seed, tmp_path):
+def test_a_scheduler_without_workers_is_a_clear_error_within_the_timeout(seed, tmp_path, monkeypatch):
     session, plant = _session(seed)
+    monkeypatch.chdir(tmp_path)
     cluster = distributed.LocalCluster(n_workers=0, processes=False, protocol="tcp", host="127.0.0.1",
                                        dashboard_address=None)
     try:
         t0 = time.perf_counter()
         with pytest.raises(StimsteerError, match="answered but no worker joined within 1 s"):
             run_bench(session, _settings(scheduler_timeout_s=1.0), plant=plant, scheduler=cluster.scheduler_address,
-                      out_dir=tmp_path / "report", progress=False)
+                      progress=False)
         assert time.perf_counter() - t0 < 8.0
     finally:
         cluster.close()

@@ -1,31 +1,29 @@
-"""Tests of the route benchmark (control/evaluation.py) on tiny simulated sessions.
+"""Tests of the route benchmark (control/evaluation/) on tiny simulated sessions.
 
 Sessions are a 3-node linear network with 2 inputs and 2 outputs (spectral radius 0.7, chosen for a fast, stable
 response), recorded in 6 trials of 80 samples; settings are small so that each run takes well under a second.
 """
 
-import time
-
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import signal, stats
+from scipy import stats
 
 from stimsteer.control.evaluation import (
     MIN_TRAIN_TRIALS,
     BenchSettings,
     ControlSettings,
-    InnovationPlant,
     MethodSpec,
+    paired_verdict,
     recorded_limits,
     run_bench,
     t_interval,
 )
 from stimsteer.control.limits import StimLimits
-from stimsteer.control.plants import LinearNetworkPlant, record_session
+from stimsteer.control.plants import InnovationPlant, LinearNetworkPlant, record_session
 from stimsteer.control.report import summarize
-from stimsteer.sysid import Session, StateSpaceModel
-from stimsteer.sysid.exceptions import SessionError, StimsteerError
+from stimsteer.sysid import Session
+from stimsteer.sysid.exceptions import InvalidParameterError, SessionError, StimsteerError
 
 _TIMING = ("fit_s", "predict_s", "control_s", "total_s", "predict_ms_per_window", "solve_ms_median", "solve_ms_p95",
            "solve_ms_max", "warnings")
@@ -92,7 +90,7 @@ def test_default_settings_compare_both_routes():
     ({"scheduler_timeout_s": 0}, "positive number of seconds"),
 ])
 def test_bad_settings_are_refused(kwargs, match):
-    with pytest.raises(SessionError, match=match):
+    with pytest.raises(InvalidParameterError, match=match):
         BenchSettings(**kwargs)
 
 
@@ -103,16 +101,19 @@ def test_bad_settings_are_refused(kwargs, match):
     ({"target_level_std": float("nan")}, "target_level_std must be a finite number"),
 ])
 def test_bad_control_settings_are_refused(kwargs, match):
-    with pytest.raises(SessionError, match=match):
+    with pytest.raises(InvalidParameterError, match=match):
         ControlSettings(**kwargs)
 
 
 def test_method_spec_checks_route_method_and_settings():
     assert MethodSpec("direct", "hankel").label == "direct (hankel)"
-    with pytest.raises(SessionError, match="unknown route/method indirect/kalman"):
+    with pytest.raises(InvalidParameterError, match="unknown route/method indirect/kalman"):
         MethodSpec("indirect", "kalman")
-    with pytest.raises(SessionError, match="must be a mapping"):
+    with pytest.raises(InvalidParameterError, match="must be a mapping"):
         MethodSpec("direct", "lsq", settings=[("alphas", 1.0)])
+    # the benchmark sets every method's horizon (its horizon and the sweep's); a method's own would be overridden
+    with pytest.raises(InvalidParameterError, match="remove it and use BenchSettings\\(horizon_steps="):
+        MethodSpec("direct", "lsq", settings={"horizon_steps": 7})
 
 
 # ------------------------------------------------------------------------------------------------ statistics
@@ -125,6 +126,13 @@ def test_t_interval_matches_scipy(rng):
     m1, lo1, hi1 = t_interval([2.0, np.nan])
     assert m1 == 2.0 and np.isnan(lo1) and np.isnan(hi1)
     assert all(np.isnan(t_interval([])))
+
+
+def test_paired_verdict_names_a_route_only_when_the_interval_excludes_zero():
+    assert paired_verdict([0.1, 0.2, 0.15], higher_is_better=True)[3] == "direct"
+    assert paired_verdict([0.1, 0.2, 0.15], higher_is_better=False)[3] == "indirect"
+    assert paired_verdict([-0.1, 0.2, 0.05], higher_is_better=True)[3] == "neither"
+    assert paired_verdict([0.1], higher_is_better=True)[3] == "neither"  # no interval from one split
 
 
 # ------------------------------------------------------------------------------------------------ bad input
@@ -148,37 +156,37 @@ def test_plant_must_match_the_session(seed):
     slow = _plant(seed).with_params(sample_rate_hz=50.0)
     with pytest.raises(SessionError, match="runs at 50 Hz but the session at 100 Hz"):
         run_bench(session, _settings(), plant=slow, n_workers=1, progress=False)
-    with pytest.raises(SessionError, match="the plant lacks 'n_inputs'"):
+    with pytest.raises(InvalidParameterError, match="the plant lacks 'n_inputs'"):
         run_bench(session, _settings(), plant=object(), n_workers=1, progress=False)
 
 
 def test_bad_arguments_are_refused(seed):
     session, plant = _session(seed)
-    with pytest.raises(SessionError, match="settings must be a BenchSettings"):
+    with pytest.raises(InvalidParameterError, match="settings must be a BenchSettings"):
         run_bench(session, {"n_splits": 2}, progress=False)
     with pytest.raises(SessionError, match="needs a stimsteer Session"):
         run_bench(np.zeros((10, 2)), _settings(), progress=False)
-    with pytest.raises(SessionError, match="limits must be a StimLimits"):
+    with pytest.raises(InvalidParameterError, match="limits must be a StimLimits"):
         run_bench(session, _settings(), limits={"amplitude_max_ua": 1.0}, progress=False)
-    with pytest.raises(SessionError, match="n_workers must be at least 1"):
+    with pytest.raises(InvalidParameterError, match="n_workers must be at least 1"):
         run_bench(session, _settings(), plant=plant, n_workers=0, progress=False)
 
 
 def test_unknown_target_channel_fails_every_split_with_the_reason(seed):
     session, plant = _session(seed)
     st = _settings(control=ControlSettings(n_steps=30, target_channel="ch_9"))
-    with pytest.raises(StimsteerError, match="failed on every split.*target channel 'ch_9' is not an output"):
+    with pytest.raises(StimsteerError, match="failed on every split.*InvalidParameterError: target channel 'ch_9' is "
+                                             "not an output"):
         run_bench(session, st, plant=plant, n_workers=1, progress=False)
 
 
-def test_out_dir_holding_another_run_is_refused_before_any_work(seed, tmp_path):
+def test_run_bench_writes_nothing(seed, tmp_path, monkeypatch):
+    # the report is written by the bench command (stimsteer.control.commands.bench), never by the benchmark itself
     session, plant = _session(seed)
-    (tmp_path / "old.txt").write_text("another run")
-    t0 = time.perf_counter()
-    with pytest.raises(StimsteerError, match="already holds another run"):
-        run_bench(session, _settings(), plant=plant, out_dir=tmp_path, n_workers=1, progress=False)
-    assert time.perf_counter() - t0 < 1.0
-    assert [p.name for p in tmp_path.iterdir()] == ["old.txt"]
+    monkeypatch.chdir(tmp_path)
+    run_bench(session, _settings(n_splits=1, control=ControlSettings(n_steps=10)), plant=plant, n_workers=1,
+              progress=False)
+    assert list(tmp_path.iterdir()) == []
 
 
 # ------------------------------------------------------------------------------------------------ splits and selection
@@ -329,31 +337,6 @@ def test_local_processes_give_the_sequential_numbers(seed):
 
 
 # ------------------------------------------------------------------------------------------------ plants and limits
-def test_innovation_plant_without_noise_is_the_model_plus_offset(rng):
-    # Outside check: scipy.signal.dlsim simulates the same (A, B, C, D) from rest.
-    model = StateSpaceModel(A=[[0.5, 0.1], [0.0, 0.3]], B=[[1.0], [0.5]], C=[[1.0, -1.0]], D=[[0.2]],
-                            K=[[0.3], [0.1]], innovation_cov=[[4.0]])
-    plant = InnovationPlant(model, output_offset=[2.5], noise=False)
-    u = rng.standard_normal((50, 1))
-    _t, y_ref, _x = signal.dlsim((model.A, model.B, model.C, model.D, 1.0), u)
-    assert np.allclose(plant.simulate(u), y_ref + 2.5, atol=1e-12)
-    with pytest.raises(SessionError, match="output_offset must be 1 finite values"):
-        InnovationPlant(model, output_offset=[1.0, 2.0])
-    with pytest.raises(SessionError, match="x0 must be a finite state vector of shape \\(2,\\)"):
-        plant.reset(x0=[1.0])
-    with pytest.raises(SessionError, match="u_k must hold 1 finite values"):
-        plant.step([np.nan])
-
-
-def test_innovation_plant_draws_its_innovations_with_their_covariance():
-    model = StateSpaceModel(A=[[0.0]], B=[[0.0]], C=[[0.0]], innovation_cov=[[4.0]])
-    plant = InnovationPlant(model, seed=7)
-    y = plant.simulate(np.zeros((20000, 1)))
-    # sample variance of 20000 normal draws: standard error 4 * sqrt(2 / 20000) = 0.04; 5 standard errors allowed
-    assert abs(y.var() - 4.0) < 0.2
-    assert np.array_equal(plant.simulate(np.zeros((5, 1)), seed=3), plant.simulate(np.zeros((5, 1)), seed=3))
-
-
 def test_recorded_limits_span_the_recorded_inputs_and_zero():
     u = np.array([[0.5, 1.0], [2.0, 3.0], [1.0, 4.0]])
     s = Session(u=u, y=np.zeros((3, 1)), sample_rate_hz=10.0, input_names=("a", "b"))

@@ -6,6 +6,7 @@ import pytest
 from scipy import signal, stats
 
 from stimsteer.control.plants import (
+    InnovationPlant,
     LinearNetworkPlant,
     SaturatingRateNetworkPlant,
     load_plant,
@@ -14,6 +15,7 @@ from stimsteer.control.plants import (
     save_plant,
 )
 from stimsteer.sysid.exceptions import FileFormatError, SessionError, StimsteerError, UnstableModelError
+from stimsteer.sysid import Plant, StateSpaceModel
 from stimsteer.sysid.statespace import kalman_gain
 
 
@@ -451,7 +453,7 @@ def test_record_session_bad_arguments_raise(rng):
     u = np.zeros((100, 2))
     with pytest.raises(SessionError, match="trial_start must be 'continue' or 'rest'"):
         record_session(plant, u, trial_start="fresh")
-    with pytest.raises(SessionError, match=r"schedule u must have shape \(n_samples, 2\)"):
+    with pytest.raises(SessionError, match=r"schedule u must be time-major with shape \(n_samples, 2\)"):
         record_session(plant, np.zeros((100, 3)))
     with pytest.raises(SessionError, match="schedule u holds NaN"):
         record_session(plant, np.full((100, 2), np.nan))
@@ -538,3 +540,41 @@ def test_load_plant_rejects_other_files(rng, tmp_path):
         f.attrs["gain"] = 2.0
     with pytest.raises(FileFormatError, match="does not take"):
         load_plant(path)
+
+
+# ------------------------------------------------------------------------------------------------ innovation plant
+def test_innovation_plant_without_noise_is_the_model_plus_offset(rng):
+    # Outside check: scipy.signal.dlsim simulates the same (A, B, C, D) from rest.
+    model = StateSpaceModel(A=[[0.5, 0.1], [0.0, 0.3]], B=[[1.0], [0.5]], C=[[1.0, -1.0]], D=[[0.2]],
+                            K=[[0.3], [0.1]], innovation_cov=[[4.0]])
+    plant = InnovationPlant(model, output_offset=[2.5], noise=False)
+    u = rng.standard_normal((50, 1))
+    _t, y_ref, _x = signal.dlsim((model.A, model.B, model.C, model.D, 1.0), u)
+    assert np.allclose(plant.simulate(u), y_ref + 2.5, atol=1e-12)
+    with pytest.raises(SessionError, match="output_offset must be 1 finite values"):
+        InnovationPlant(model, output_offset=[1.0, 2.0])
+    with pytest.raises(SessionError, match="x0 must be a finite state vector of shape \\(2,\\)"):
+        plant.reset(x0=[1.0])
+    with pytest.raises(SessionError, match="u_k must hold 1 finite values"):
+        plant.step([np.nan])
+
+
+def test_innovation_plant_draws_its_innovations_with_their_covariance():
+    model = StateSpaceModel(A=[[0.0]], B=[[0.0]], C=[[0.0]], innovation_cov=[[4.0]])
+    plant = InnovationPlant(model, seed=7)
+    y = plant.simulate(np.zeros((20000, 1)))
+    # sample variance of 20000 normal draws: standard error 4 * sqrt(2 / 20000) = 0.04; 5 standard errors allowed
+    assert abs(y.var() - 4.0) < 0.2
+    assert np.array_equal(plant.simulate(np.zeros((5, 1)), seed=3), plant.simulate(np.zeros((5, 1)), seed=3))
+
+
+def test_every_plant_has_the_plant_interface_of_the_contract(rng):
+    # stimsteer.sysid.protocols.Plant: reset(seed, x0) and step(u_k) -> y_k, plus the sizes the closed loop reads
+    model = StateSpaceModel(A=[[0.5]], B=[[1.0]], C=[[1.0]], innovation_cov=[[1.0]])
+    W = random_network(4, density=0.5, seed=1)
+    plants = [LinearNetworkPlant([[0.5]], [[1.0]], [[1.0]]), InnovationPlant(model),
+              SaturatingRateNetworkPlant(W, rng.standard_normal((4, 1)), rng.standard_normal((1, 4)))]
+    for plant in plants:
+        assert isinstance(plant, Plant)
+        plant.reset(seed=3)
+        assert np.shape(plant.step(np.zeros(plant.n_inputs))) == (plant.n_outputs,)

@@ -1,4 +1,6 @@
-"""Tests of the benchmark report (control/report.py): files, self-containment, atomic output, generated summary."""
+"""Tests of the benchmark report: its content (control/report.py), its figures (control/figures/bench.py) and the
+folder the bench command writes (control/commands/bench.py): files, self-containment, atomic output, generated
+summary."""
 
 import dataclasses
 import json
@@ -8,18 +10,28 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stimsteer.control import report as report_module
 from stimsteer.control.cli import CAUTION
+from stimsteer.control.commands.bench import check_out_dir, write_bench
 from stimsteer.control.evaluation import BenchSettings, ControlSettings, MethodSpec, run_bench
+from stimsteer.control.figures import bench as figures_module
+from stimsteer.control.figures.bench import fig_closed_loop, fig_predictions, method_colours, report_figures
 from stimsteer.control.plants import LinearNetworkPlant, record_session
-from stimsteer.control.report import RESULTS_FILE, check_out_dir, report_figures, summarize, write_report
+from stimsteer.control.report import RESULTS_FILE, summarize
 from stimsteer.sysid.exceptions import StimsteerError
 
 _PNG = b"\x89PNG\r\n\x1a\n"  # the PNG file signature (PNG specification, section 5.2)
 
 
-@pytest.fixture
-def result(seed):
+@pytest.fixture(scope="module")
+def bench_seed():
+    """The suite's seed (tests/conftest.py), for the module-scoped benchmark run below."""
+    return 20261201
+
+
+@pytest.fixture(scope="module")
+def result(bench_seed):
+    """One benchmark run shared by the module's tests (the tests only read it)."""
+    seed = bench_seed
     rng = np.random.default_rng(seed)
     A = rng.standard_normal((3, 3))
     A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
@@ -38,7 +50,7 @@ def result(seed):
 @pytest.mark.slow
 def test_report_folder_holds_page_tables_and_figures(result, tmp_path):
     out = tmp_path / "run"
-    files = write_report(result, out)
+    files = write_bench(result, out)
     page = (out / "report.html").read_text(encoding="utf-8")
     assert files["report"] == out / "report.html" and CAUTION in page
     # self-contained: every image is embedded, nothing is fetched from elsewhere
@@ -60,14 +72,14 @@ def test_report_folder_holds_page_tables_and_figures(result, tmp_path):
 
 
 def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result, tmp_path, monkeypatch):
-    monkeypatch.setattr(report_module, "report_figures", lambda _result: {"one": _PNG})  # figures are not tested here
+    monkeypatch.setattr(figures_module, "report_figures", lambda _result: {"one": _PNG})  # figures are not tested here
     out = tmp_path / "run"
-    write_report(result, out)
+    write_bench(result, out)
     run_id = json.loads((out / RESULTS_FILE).read_text())["run_id"]
     with pytest.raises(StimsteerError, match=f"already holds another run \\(benchmark run {run_id}\\)"):
-        write_report(result, out)
+        write_bench(result, out)
     (out / "stray.txt").write_text("not ours")
-    write_report(result, out, force=True)
+    write_bench(result, out, force=True)
     assert not (out / "stray.txt").exists() and (out / "report.html").is_file()
     with pytest.raises(StimsteerError, match="exists and is a file"):
         check_out_dir(out / "report.html")
@@ -77,15 +89,15 @@ def test_a_failure_while_writing_leaves_nothing(result, tmp_path, monkeypatch):
     def broken(_result):
         raise RuntimeError("figure failed")
 
-    monkeypatch.setattr(report_module, "report_figures", broken)
+    monkeypatch.setattr(figures_module, "report_figures", broken)
     with pytest.raises(RuntimeError, match="figure failed"):
-        write_report(result, tmp_path / "run")
+        write_bench(result, tmp_path / "run")
     assert list(tmp_path.iterdir()) == []
 
 
-def test_write_report_needs_a_bench_result(tmp_path):
+def test_write_bench_needs_a_bench_result(tmp_path):
     with pytest.raises(StimsteerError, match="needs a BenchResult from run_bench; got dict"):
-        write_report({"prediction": None}, tmp_path / "run")
+        write_bench({"prediction": None}, tmp_path / "run")
 
 
 def test_summary_is_generated_from_the_numbers(result):
@@ -123,17 +135,31 @@ def test_the_summary_opens_with_the_winners_of_the_detailed_lines(result):
     assert "free run: no clear winner" in first
 
 
+@pytest.mark.slow
 def test_figures_label_axes_with_units(result):
-    import matplotlib
-
-    matplotlib.use("Agg")
     figs = report_figures(result)
     assert set(figs) >= {"predictions", "closed_loop", "compute_time"}
     # the output unit of the session ("mV") reaches the axis labels of the trace figures
-    plt = report_module._pyplot()
-    fig = report_module._fig_predictions(result, plt, report_module._colours(result))
+    fig = fig_predictions(result, method_colours(result))
     assert any("[mV]" in ax.get_ylabel() for ax in fig.axes)
     assert all(ax.get_xlabel().endswith("[s]") for ax in fig.axes)
-    fig2 = report_module._fig_closed_loop(result, plt, report_module._colours(result))
+    fig2 = fig_closed_loop(result, method_colours(result))
     assert {ax.get_ylabel() for ax in fig2.axes[1:]} == {"input [µA]"}
-    plt.close("all")
+
+
+def test_figures_draw_direct_routes_dashed_from_the_route_column(result):
+    # the line style follows the traces' route column, not the text of a label
+    renamed = {"indirect (arx)": "model A", "direct (lsq)": "model B"}
+    traces = {k: v.assign(label=v["label"].map(renamed)) for k, v in result.traces.items()}
+    fig = fig_closed_loop(dataclasses.replace(result, traces=traces), {"model A": "#000000", "model B": "#111111"})
+    styles = {line.get_label(): line.get_linestyle() for line in fig.axes[0].get_lines()}
+    assert styles["model A"] == "-" and styles["model B"] == "--"
+
+
+@pytest.mark.slow
+def test_drawing_the_figures_leaves_the_plotting_state_alone(result):
+    import matplotlib
+
+    before, backend = dict(matplotlib.rcParams), matplotlib.get_backend()
+    report_figures(result)
+    assert dict(matplotlib.rcParams) == before and matplotlib.get_backend() == backend

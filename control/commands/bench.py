@@ -1,0 +1,162 @@
+"""``stimsteer bench``: the file workflow of the route benchmark.
+
+:func:`bench_files` claims the output folder before any work (a folder holding another run is refused at once),
+loads the session, the plant and the limits, runs :func:`~stimsteer.control.evaluation.run_bench` (which writes
+nothing) and writes the report with :func:`write_bench`, atomically: a reader never sees a half-written folder and
+a failure leaves nothing behind::
+
+    DIR/report.html          summary, caution, figures (base64 PNG inside the page), key table, provenance
+    DIR/results.json         summary, caution, provenance, limits and every table (records)
+    DIR/tables/<name>.csv    every table of :meth:`BenchResult.tables`
+    DIR/figures/<name>.png   the figures of the page, as files
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+from ...sysid import StimsteerError, load_session
+from ...sysid._files import atomic_dir
+from ..evaluation import BenchResult, BenchSettings, run_bench
+from ..figures import bench as bench_figures
+from ..limits import load_limits
+from ..plants import load_plant
+from ..report import REPORT_FILE, RESULTS_FILE, bench_run_id, report_html, results_json, summarize
+
+__all__ = ["BenchRun", "bench_files", "check_out_dir", "write_bench"]
+
+
+@dataclass(frozen=True)
+class BenchRun:
+    """What :func:`bench_files` did: the result, its summary lines and the files written.
+
+    Attributes
+    ----------
+    result : BenchResult
+    lines : list of str
+        The report's summary (:func:`stimsteer.control.report.summarize`).
+    files : dict of str to Path
+        As returned by :func:`write_bench`.
+    """
+
+    result: BenchResult
+    lines: list
+    files: dict
+
+    @property
+    def report(self) -> Path:
+        """The HTML page."""
+        return self.files["report"]
+
+
+def check_out_dir(out_dir, *, force: bool = False) -> Path:
+    """Refuse an output folder that exists and holds files (another run), unless ``force``.
+
+    Raises
+    ------
+    StimsteerError
+        The path is a file, or a non-empty folder without ``force`` (the message names the run found there).
+    """
+    path = Path(out_dir)
+    if path.exists() and not path.is_dir():
+        raise StimsteerError(f"output folder {path} exists and is a file; choose another --out.")
+    if path.is_dir() and any(path.iterdir()) and not force:
+        run = ""
+        marker = path / RESULTS_FILE
+        if marker.is_file():
+            try:
+                run = f" (benchmark run {json.loads(marker.read_text())['run_id']})"
+            except (ValueError, KeyError, OSError):
+                run = ""
+        raise StimsteerError(f"output folder {path} already holds another run{run}; choose a new --out or pass "
+                             "--force to replace it whole (runs are never mixed).")
+    return path
+
+
+def write_bench(result: BenchResult, out_dir, *, force: bool = False) -> dict:
+    """Write the report folder atomically: HTML page, results JSON, CSV tables, PNG figures.
+
+    Parameters
+    ----------
+    result : BenchResult
+    out_dir : str or Path
+        Must be new or empty, unless ``force`` (then it is replaced whole: runs are never mixed).
+    force : bool, default False
+
+    Returns
+    -------
+    dict of str to Path
+        ``report``, ``results``, and one entry per table (``table:<name>``) and figure (``figure:<name>``).
+
+    Raises
+    ------
+    StimsteerError
+        ``result`` is not a BenchResult; ``out_dir`` is a file, or holds another run and ``force`` is False.
+    """
+    if not isinstance(result, BenchResult):
+        raise StimsteerError(f"write_bench needs a BenchResult from run_bench; got {type(result).__name__}.")
+    final = check_out_dir(out_dir, force=force)
+    lines = summarize(result)
+    figures = bench_figures.report_figures(result)
+    run_id = bench_run_id(result)
+    files = {}
+    with atomic_dir(final, force=force) as tmp:
+        (tmp / "tables").mkdir()
+        (tmp / "figures").mkdir()
+        for name, table in result.tables().items():
+            table.to_csv(tmp / "tables" / f"{name}.csv", index=False)
+            files[f"table:{name}"] = final / "tables" / f"{name}.csv"
+        for name, png in figures.items():
+            (tmp / "figures" / f"{name}.png").write_bytes(png)
+            files[f"figure:{name}"] = final / "figures" / f"{name}.png"
+        (tmp / RESULTS_FILE).write_text(results_json(result, lines, run_id), encoding="utf-8")
+        (tmp / REPORT_FILE).write_text(report_html(result, figures, lines, run_id), encoding="utf-8")
+    files["report"], files["results"] = final / REPORT_FILE, final / RESULTS_FILE
+    return files
+
+
+def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, seed: int = 0, quick: bool = False,
+                scheduler: str | None = None, n_workers: int | None = None, force: bool = False,
+                progress: bool = False) -> BenchRun:
+    """Benchmark the routes on a session file and write the report folder (what ``stimsteer bench`` does).
+
+    Parameters
+    ----------
+    session_path : str or Path
+        Session file (our HDF5 layout, CSV/Parquet table, or NWB).
+    out_dir : str or Path
+        Report folder; claimed before any work (new or empty, or ``force``).
+    plant_path, limits_path : str or Path, optional
+        Ground-truth plant file of a simulated session; declared limits (TOML).
+    seed : int, default 0
+        Master seed of splits, subsets and plant noise.
+    quick : bool, default False
+        :meth:`BenchSettings.quick` instead of the default settings.
+    scheduler, n_workers, progress
+        As :func:`~stimsteer.control.evaluation.run_bench`.
+    force : bool, default False
+        Replace an existing ``out_dir`` whole.
+
+    Returns
+    -------
+    BenchRun
+
+    Raises
+    ------
+    StimsteerError
+        As :func:`check_out_dir`, the loaders and :func:`~stimsteer.control.evaluation.run_bench`; nothing is
+        written then.
+    """
+    check_out_dir(out_dir, force=force)
+    session = load_session(session_path)
+    plant = None if plant_path is None else load_plant(plant_path)
+    limits = None if limits_path is None else load_limits(limits_path)
+    settings = (BenchSettings.quick if quick else BenchSettings)(seed=seed)
+    source = {"session_file": str(session_path), "plant_file": None if plant_path is None else str(plant_path),
+              "limits_file": None if limits_path is None else str(limits_path)}
+    result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
+                       progress=progress, source=source)
+    files = write_bench(result, out_dir, force=force)
+    return BenchRun(result=result, lines=summarize(result), files=files)

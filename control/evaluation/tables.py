@@ -1,0 +1,148 @@
+"""The benchmark's tables: task results assembled into tidy tables, summarised over splits, routes compared in pairs.
+
+Every sweep (``base``, ``train_trials``, ``noise_scale``, ``horizon_steps``) is summarised by the mean and the 95 %
+Student-t interval over splits (:func:`~.stats.t_interval`); route differences ``direct − indirect`` are paired by
+split (:func:`~.stats.paired_verdict`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import pandas as pd
+
+from .settings import BenchSettings
+from .stats import paired_verdict, t_interval
+from .tasks import _Task
+
+__all__ = ["METRICS"]
+
+#: Task-level figures summarised over splits: name -> True when higher is better.
+METRICS = {
+    "r2_mean": True, "r2_step1": True, "r2_last": True, "vaf_mean": True, "r2_freerun": True,
+    "tracking_rms": False, "energy_ua2": False, "fit_s": False, "predict_ms_per_window": False,
+    "solve_ms_median": False,
+}
+_KEYS = ["task", "split", "label", "route", "method", "n_train_trials", "noise_scale", "horizon_steps"]
+
+
+def _keys(st: BenchSettings, task: _Task) -> dict:
+    spec = st.methods[task.method_index]
+    return {"task": task.index, "split": task.split_index, "label": spec.label, "route": spec.route,
+            "method": spec.method, "n_train_trials": len(task.train), "noise_scale": task.setting.noise_scale,
+            "horizon_steps": task.setting.horizon_steps}
+
+
+def _task_row(st: BenchSettings, task: _Task, res: dict) -> dict:
+    row = {**_keys(st, task), "status": "failed" if "error" in res else "ok", "error": res.get("error", ""),
+           "full_train": task.setting.n_train is None, "warnings": " | ".join(res.get("warnings", [])),
+           "total_s": res["total_s"]}
+    if "error" in res:
+        return row
+    ks, fr = res["kstep"], res["freerun"]
+    H = task.setting.horizon_steps
+    row.update(selection=res["selection"], fingerprint=res["fingerprint"], fit_s=res["fit_s"],
+               predict_s=res["predict_s"], n_windows=res["n_windows"],
+               predict_ms_per_window=1e3 * res["predict_s"] / max(res["n_windows"], 1),
+               r2_mean=float(ks["r2"].mean()), r2_step1=float(ks.loc[ks["step"] == 1, "r2"].mean()),
+               r2_last=float(ks.loc[ks["step"] == H, "r2"].mean()), vaf_mean=float(ks["vaf"].mean()),
+               r2_freerun=float(fr["r2"].mean()), vaf_freerun=float(fr["vaf"].mean()))
+    if "loop" in res:
+        row.update(res["loop"], control_s=res["control_s"])
+    return row
+
+
+def _prediction_rows(keys: dict, res: dict) -> pd.DataFrame:
+    ks = res["kstep"].assign(mode="kstep")
+    fr = res["freerun"].assign(mode="freerun", step=0)
+    frame = pd.concat([ks, fr[ks.columns]], ignore_index=True)
+    return frame.assign(**keys)[[*_KEYS, "mode", "step", "channel", "r2", "vaf", "nrmse", "rmse", "n_samples"]]
+
+
+def _assemble(st: BenchSettings, tasks, results) -> dict:
+    rows, pred, traces_p, traces_l, surrogate = [], [], [], [], {}
+    limits = None
+    for task, res in zip(tasks, results):
+        keys = _keys(st, task)
+        rows.append(_task_row(st, task, res))
+        if "error" in res:
+            continue
+        pred.append(_prediction_rows(keys, res))
+        if res.get("prediction_trace") is not None and not res["prediction_trace"].empty:
+            traces_p.append(res["prediction_trace"].assign(label=keys["label"], route=keys["route"]))
+        if res.get("loop_trace") is not None:
+            traces_l.append(res["loop_trace"].assign(label=keys["label"], route=keys["route"]))
+            limits = res["limits"]
+        if res.get("surrogate") is not None:
+            surrogate.setdefault(task.split_index, {"split": task.split_index, **res["surrogate"]})
+    task_table = pd.DataFrame(rows)
+    return {"tasks": task_table, "prediction": _concat(pred), "traces_prediction": _concat(traces_p),
+            "traces_loop": _concat(traces_l), "surrogate": pd.DataFrame(list(surrogate.values())),
+            "limits": limits}
+
+
+def _concat(frames) -> pd.DataFrame:
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+
+
+def _columns(table: pd.DataFrame, names) -> pd.DataFrame:
+    return table[[c for c in names if c in table.columns]].copy()
+
+
+def _sweep_members(tasks: pd.DataFrame, st: BenchSettings) -> dict:
+    """Rows of the task table belonging to each sweep (the base point belongs to every sweep)."""
+    ok = tasks[tasks["status"] == "ok"]
+    full, quiet, h0 = ok["full_train"], ok["noise_scale"] == 1.0, ok["horizon_steps"] == st.horizon_steps
+    members = {"base": (ok[full & quiet & h0], None),
+               "train_trials": (ok[quiet & h0], "n_train_trials"),
+               "noise_scale": (ok[full & h0], "noise_scale"),
+               "horizon_steps": (ok[full & quiet], "horizon_steps")}
+    return {k: v for k, v in members.items() if k == "base" or v[0][v[1]].nunique() > 1}
+
+
+def _sweeps(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
+    rows = []
+    for sweep, (sub, col) in _sweep_members(tasks, st).items():
+        groups = sub.groupby(["label", "route", "method"] + ([col] if col else []), sort=True)
+        for key, g in groups:
+            for metric in METRICS:
+                if metric not in g.columns:
+                    continue
+                mean, lo, hi = t_interval(g[metric])
+                rows.append({"sweep": sweep, "value": float(key[3]) if col else math.nan, "label": key[0],
+                             "route": key[1], "method": key[2], "metric": metric, "n": int(g[metric].notna().sum()),
+                             "mean": mean, "ci_low": lo, "ci_high": hi})
+    return pd.DataFrame(rows, columns=["sweep", "value", "label", "route", "method", "metric", "n", "mean",
+                                       "ci_low", "ci_high"])
+
+
+def _comparison(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
+    """Paired (same split, same setting) differences direct − indirect for every pair of methods."""
+    ind = [m.label for m in st.methods if m.route == "indirect"]
+    dirs = [m.label for m in st.methods if m.route == "direct"]
+    rows = []
+    for sweep, (sub, col) in _sweep_members(tasks, st).items():
+        values = sorted(sub[col].unique()) if col else [None]
+        for value in values:
+            part = sub if col is None else sub[sub[col] == value]
+            for a in ind:
+                for b in dirs:
+                    rows += _paired(part, a, b, sweep, value)
+    return pd.DataFrame(rows, columns=["sweep", "value", "indirect", "direct", "metric", "n", "mean_difference",
+                                       "ci_low", "ci_high", "better"])
+
+
+def _paired(part, a, b, sweep, value) -> list:
+    rows = []
+    for metric, higher in METRICS.items():
+        if metric not in part.columns:
+            continue
+        wide = part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+        if a not in wide or b not in wide:
+            continue
+        d = (wide[b] - wide[a]).dropna()
+        mean, lo, hi, better = paired_verdict(d, higher)
+        rows.append({"sweep": sweep, "value": math.nan if value is None else float(value), "indirect": a,
+                     "direct": b, "metric": metric, "n": int(d.size), "mean_difference": mean, "ci_low": lo,
+                     "ci_high": hi, "better": better})
+    return rows

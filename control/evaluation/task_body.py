@@ -1,0 +1,146 @@
+"""One task of the benchmark: fit one method on one split at one setting, score it on the held-out trials, and
+steer the plant with it.
+
+A task runs with single-threaded BLAS, so its numbers do not depend on where it ran; a toolkit error is returned as
+the task's result (recorded, not raised), so one failed fit never stops the run.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import time
+import warnings
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+
+from ...sysid import Session, StimsteerError, freerun_scores, kstep_scores
+from ...sysid._records import window_stride
+from .closed_loop import _channel_index, _control, _output_stats, _rerecord
+from .tasks import _cached, _Context, _fit, _Task
+
+
+def _run_task(ctx: _Context, task: _Task) -> dict:
+    """Run one task with single-threaded BLAS; toolkit errors are returned (recorded), not raised."""
+    from threadpoolctl import threadpool_limits
+
+    t0 = time.perf_counter()
+    with threadpool_limits(limits=1), warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            out = _task_body(ctx, task)
+        except StimsteerError as exc:
+            out = {"error": f"{type(exc).__name__}: {exc}"}
+    out["warnings"] = sorted({str(w.message) for w in caught})
+    out["task"] = task.index
+    out["total_s"] = time.perf_counter() - t0
+    return out
+
+
+def _session_at(ctx: _Context, scale: float) -> Session:
+    if scale == 1.0:
+        return ctx.session
+    return _cached((ctx.token, "session", scale), lambda: _rerecord(ctx.session, ctx.plant, scale))
+
+
+def _task_body(ctx: _Context, task: _Task) -> dict:
+    st = ctx.settings
+    spec, setting = st.methods[task.method_index], task.setting
+    session = _session_at(ctx, setting.noise_scale)
+    train, test = session.select_trials(task.train), session.select_trials(task.split.test)
+    t0 = time.perf_counter()
+    predictor = _fit(spec, train, st.past_steps, setting.horizon_steps)
+    fit_s = time.perf_counter() - t0
+    past, H = int(predictor.past_steps_), setting.horizon_steps
+    t0 = time.perf_counter()
+    kstep = kstep_scores(predictor, test, horizon_steps=H, stride_steps=window_stride(test, past, H, st.max_windows))
+    freerun = freerun_scores(predictor, test)
+    predict_s = time.perf_counter() - t0
+    out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
+           "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
+    if task.keep_traces:
+        out["prediction_trace"] = _prediction_trace(predictor, test, H, _trace_channels(ctx, train))
+    if st.control is not None:
+        out.update(_control(ctx, task, predictor, session))
+    return out
+
+
+def _selection(predictor) -> str:
+    """What the estimator chose on its training trials, as ``name=value`` pairs."""
+    names = (("alpha_", "alpha"), ("order_", "order"), ("lambda_g_relative_", "lambda_g"), ("regularizer_", "reg"))
+    parts = []
+    for attr, short in names:
+        v = getattr(predictor, attr, None)
+        if v is not None:
+            parts.append(f"{short}={v:.3g}" if isinstance(v, float) else f"{short}={v}")
+    return ", ".join(parts)
+
+
+def _fingerprint(obj) -> str:
+    """SHA-256 over every fitted attribute (numbers, arrays, tables, nested models): equal iff the fit is equal."""
+    h = hashlib.sha256()
+    _feed(h, {k: v for k, v in vars(obj).items() if k.endswith("_") and not k.startswith("_")}, 0)
+    return h.hexdigest()[:16]
+
+
+def _feed(h, v, depth) -> None:
+    if depth > 4:
+        return
+    if isinstance(v, np.ndarray):
+        h.update(str(v.dtype).encode() + str(v.shape).encode())
+        h.update(np.ascontiguousarray(v).tobytes() if v.dtype != object else repr(v.tolist()).encode())
+    elif isinstance(v, pd.DataFrame):
+        h.update(repr(list(v.columns)).encode())
+        for c in v.columns:
+            _feed(h, np.asarray(v[c]), depth + 1)
+    elif isinstance(v, Mapping):
+        for k in sorted(v, key=str):
+            h.update(str(k).encode())
+            _feed(h, v[k], depth + 1)
+    elif isinstance(v, (list, tuple)):
+        for x in v:
+            _feed(h, x, depth + 1)
+    elif dataclasses.is_dataclass(v) and not isinstance(v, type):
+        _feed(h, {f.name: getattr(v, f.name) for f in dataclasses.fields(v)}, depth + 1)
+    elif isinstance(v, (bool, int, float, str, np.generic)) or v is None:
+        h.update(repr(v.item() if isinstance(v, np.generic) else v).encode())
+    else:
+        h.update(type(v).__name__.encode())
+
+
+def _trace_channels(ctx: _Context, train: Session) -> list:
+    st = ctx.settings
+    c = _channel_index(ctx.session, None if st.control is None else st.control.target_channel)
+    if train.n_outputs == 1:
+        return [c]
+    _mean, std = _output_stats(train)
+    std = std.copy()
+    std[c] = -np.inf
+    return [c, int(np.argmax(std))]
+
+
+def _prediction_trace(predictor, test: Session, H: int, channels) -> pd.DataFrame:
+    """Recorded outputs of the longest valid held-out run and their H-step predictions, restarted every H samples.
+
+    Each block ``[t, t + H)`` is predicted from the measured window ``[t − P, t)`` only.
+    """
+    past = int(predictor.past_steps_)
+    segs = test.segments(min_length=past + H)
+    if not segs:
+        return pd.DataFrame()
+    s, e = max(segs, key=lambda ab: ab[1] - ab[0])
+    u, y, _mask = test.read(s, e)
+    pred = np.full_like(y, np.nan)
+    for t in range(past, y.shape[0], H):
+        h = min(H, y.shape[0] - t)
+        pred[t:t + h] = predictor.predict(u[t - past:t], y[t - past:t], u[t:t + h])
+    time_s = np.arange(y.shape[0]) / test.sample_rate_hz
+    names = list(test.output_names)
+    rows = [pd.DataFrame({"time_s": time_s, "channel": names[c], "recorded": y[:, c], "predicted": pred[:, c]})
+            for c in channels]
+    src = test.metadata.get("source_trials")
+    trial = int(src[int(np.searchsorted(test.trials[:, 0], s, side="right") - 1)]) if src else -1
+    return pd.concat(rows, ignore_index=True).assign(trial=trial)
+

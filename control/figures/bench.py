@@ -1,0 +1,337 @@
+"""The benchmark report's figures, drawn from a :class:`~stimsteer.control.evaluation.BenchResult`.
+
+matplotlib's object API only: every figure is a :class:`matplotlib.figure.Figure` of its own, and its style (font
+sizes, grid, spines) is passed to each axes and artist, so drawing a report never changes a user's pyplot state,
+backend or ``rcParams``.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from ..evaluation import BenchResult, t_interval
+
+__all__ = ["report_figures", "method_colours", "fig_predictions", "fig_accuracy", "fig_closed_loop", "fig_tradeoff",
+           "fig_sweep", "fig_compute"]
+
+_ROUTE_SHADES = {"indirect": ["#1d5f99", "#5b9bd5", "#0b3a63"], "direct": ["#c4561b", "#e8a33d", "#8a3510"]}
+_RECORDED = "#222222"
+_TARGET = "#7a7a7a"
+_LIMIT = "#a0256e"
+_INPUT_COLOURS = ["#3b7d3b", "#7a4fa3", "#b8860b", "#2a8f8f", "#8b3a3a", "#4f4f4f"]
+_DPI = 110
+# font sizes (points) of tick labels and axis labels, titles, legends
+_TEXT, _TITLE, _LEGEND = 9, 10, 8
+_GRID = {"color": "#e4e4e4", "linewidth": 0.6}
+
+
+# ------------------------------------------------------------------------------------------------ style
+def _figure(nrows: int, ncols: int, figsize, **kwargs):
+    """A new figure and its axes grid (always 2-D), each axes styled (light grid, no top and right spines)."""
+    fig = Figure(figsize=figsize, dpi=_DPI)
+    axes = fig.subplots(nrows, ncols, squeeze=False, **kwargs)
+    for ax in axes.flat:
+        ax.spines[["top", "right"]].set_visible(False)
+        ax.grid(True, **_GRID)
+        ax.tick_params(labelsize=_TEXT)
+    return fig, axes
+
+
+def _labels(ax, xlabel=None, ylabel=None, title=None, title_size=_TITLE) -> None:
+    if xlabel is not None:
+        ax.set_xlabel(xlabel, fontsize=_TEXT)
+    if ylabel is not None:
+        ax.set_ylabel(ylabel, fontsize=_TEXT)
+    if title is not None:
+        ax.set_title(title, fontsize=title_size)
+
+
+def _line_style(route: str) -> str:
+    """Direct-route curves dashed, indirect-route curves solid."""
+    return "--" if route == "direct" else "-"
+
+
+def method_colours(result: BenchResult) -> dict:
+    """Colour of each compared method, by label: blues for the indirect route, oranges for the direct one."""
+    out, used = {}, {"indirect": 0, "direct": 0}
+    for m in result.settings.methods:
+        shades = _ROUTE_SHADES[m.route]
+        out[m.label] = shades[used[m.route] % len(shades)]
+        used[m.route] += 1
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ predictions
+def _busiest_window(part: pd.DataFrame, seconds: float) -> tuple[float, float]:
+    """The ``seconds``-long stretch of a trace with the largest recorded variance (the most informative part)."""
+    t, y = part["time_s"].to_numpy(), part["recorded"].to_numpy()
+    if t[-1] - t[0] <= seconds:
+        return float(t[0]), float(t[-1])
+    n = max(2, int(np.searchsorted(t, t[0] + seconds)))
+    energy = np.convolve((y - y.mean()) ** 2, np.ones(n), mode="valid")
+    i = int(np.argmax(energy))
+    return float(t[i]), float(t[min(i + n - 1, t.size - 1)])
+
+
+def fig_predictions(result: BenchResult, colours: dict):
+    """Recorded outputs of a held-out trial and every method's H-step predictions (None without a trace)."""
+    tr = result.traces.get("prediction", pd.DataFrame())
+    if tr.empty:
+        return None
+    channels = list(dict.fromkeys(tr["channel"]))
+    fig, axes = _figure(len(channels), 1, (8.0, 2.4 * len(channels)))
+    H = result.settings.horizon_steps
+    for ax, ch in zip(axes[:, 0], channels):
+        part = tr[tr["channel"] == ch]
+        first = part[part["label"] == part["label"].iloc[0]]
+        t0, t1 = _busiest_window(first, 1.0)
+        keep = lambda g: g[(g["time_s"] >= t0) & (g["time_s"] <= t1)]  # noqa: E731
+        rec = keep(first)
+        ax.plot(rec["time_s"], rec["recorded"], color=_RECORDED, lw=1.3, label="recorded")
+        for label, g in part.groupby("label", sort=False):
+            g = keep(g)
+            ax.plot(g["time_s"], g["predicted"], color=colours[label], lw=1.1, alpha=0.95,
+                    ls=_line_style(g["route"].iloc[0]), label=label)
+        _labels(ax, "time in the held-out trial [s]", f"{ch} [{result.output_unit(ch)}]")
+    axes[0, 0].legend(loc="upper right", ncol=3, frameon=False, fontsize=_LEGEND)
+    trial = int(tr["trial"].iloc[0]) if "trial" in tr else -1
+    _labels(axes[0, 0], title=f"Held-out trial {trial} (its most active second): recorded vs {H}-step predictions\n"
+                              f"each block of {H} samples predicted from the measured samples just before it")
+    fig.tight_layout()
+    return fig
+
+
+def _by_split_step(result):
+    p = result.prediction
+    st = result.settings
+    base = p[(p["n_train_trials"] == p.groupby("split")["n_train_trials"].transform("max")) &
+             (p["noise_scale"] == 1.0) & (p["horizon_steps"] == st.horizon_steps)]
+    return base.groupby(["label", "mode", "split", "step"], as_index=False)["r2"].mean()
+
+
+def _band(ax, wide: pd.DataFrame, colour, label):
+    """Mean over the rows (splits) of each column with its t-interval as a shaded band."""
+    steps = list(wide.columns)
+    ci = np.array([t_interval(wide[s]) for s in steps])
+    ax.plot(steps, ci[:, 0], color=colour, lw=1.6, label=label)
+    if np.all(np.isfinite(ci[:, 1])):
+        ax.fill_between(steps, ci[:, 1], ci[:, 2], color=colour, alpha=0.18, lw=0)
+
+
+def _point(ax, x, values, colour):
+    m, lo, hi = t_interval(values)
+    if np.isfinite(m):
+        err = None if not np.isfinite(lo) else [[m - lo], [hi - m]]
+        ax.errorbar([x], [m], yerr=err, fmt="D", color=colour, ms=5, capsize=3)
+
+
+def _paired_bands(axd, g, result, colours, H) -> None:
+    """Paired differences in R² (direct − indirect) per step ahead, and of the free run, on ``axd``."""
+    for a in result.labels("indirect"):
+        for b in result.labels("direct"):
+            wa = g[(g["label"] == a)].pivot_table(index="split", columns=["mode", "step"], values="r2")
+            wb = g[(g["label"] == b)].pivot_table(index="split", columns=["mode", "step"], values="r2")
+            d = (wb - wa).dropna()
+            if d.empty or "kstep" not in d.columns.get_level_values(0):
+                continue
+            _band(axd, d["kstep"], colours[b], f"{b} − {a}")
+            if "freerun" in d.columns.get_level_values(0):
+                _point(axd, H + 2.5, d["freerun"].iloc[:, 0], colours[b])
+
+
+def fig_accuracy(result: BenchResult, colours: dict):
+    """R² against steps ahead with intervals, and the paired differences between the routes."""
+    g = _by_split_step(result)
+    if g.empty:
+        return None
+    rate = result.provenance["session"]["sample_rate_hz"]
+    H = result.settings.horizon_steps
+    fig, axes = _figure(2, 1, (7.0, 5.4), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    ax, axd = axes[0, 0], axes[1, 0]
+    for label in colours:
+        ks = g[(g["label"] == label) & (g["mode"] == "kstep")]
+        if ks.empty:
+            continue
+        _band(ax, ks.pivot(index="split", columns="step", values="r2"), colours[label], label)
+        _point(ax, H + 2.5, g[(g["label"] == label) & (g["mode"] == "freerun")]["r2"], colours[label])
+    _paired_bands(axd, g, result, colours, H)
+    axd.axhline(0.0, color="#555555", lw=0.8)
+    ticks = [t for t in range(1, H + 1) if t in (1, H) or t % max(1, H // 5) == 0]
+    axd.set_xticks(ticks + [H + 2.5])
+    axd.set_xticklabels([str(t) for t in ticks] + ["free\nrun"])
+    axd.set_xlim(0.5, H + 4)
+    _labels(axd, f"steps ahead (1 step = {1e3 / rate:.3g} ms)", "paired difference\nin R² (direct − indirect)")
+    _labels(ax, ylabel="R² on held-out trials\n(mean over channels)",
+            title="Prediction accuracy vs steps ahead (mean and 95 % interval over splits)")
+    ax.legend(frameon=False, loc="lower left", fontsize=_LEGEND)
+    axd.legend(frameon=False, loc="lower left", fontsize=_LEGEND)
+    fig.tight_layout()
+    return fig
+
+
+# ------------------------------------------------------------------------------------------------ closed loop
+def _limit_lines(ax, lim: dict) -> None:
+    """Dotted lines at the hard amplitude limits, each labelled with the inputs it bounds."""
+    names = list(lim.get("input_names") or [])
+    at = {}
+    for key in ("effective_min_ua", "effective_max_ua"):
+        for name, v in zip(names, lim.get(key) or []):
+            if v is not None:
+                at.setdefault(float(v), []).append(name)
+    for v, who in sorted(at.items()):
+        ax.axhline(v, color=_LIMIT, ls=":", lw=1.2)
+        ax.annotate(", ".join(who), xy=(1.0, v), xycoords=("axes fraction", "data"), xytext=(3, 0),
+                    textcoords="offset points", va="center", ha="left", fontsize=7, color=_LIMIT)
+
+
+def fig_closed_loop(result: BenchResult, colours: dict):
+    """The steered output with its target, and each method's stimulation with the hard amplitude limits."""
+    tr = result.traces.get("closed_loop", pd.DataFrame())
+    if tr.empty:
+        return None
+    labels = list(dict.fromkeys(tr["label"]))
+    fig, grid = _figure(1 + len(labels), 1, (8.0, 2.2 * (1 + len(labels))), sharex=True)
+    axes = grid[:, 0]
+    out = tr[tr["signal"] == "output"]
+    ch = out["channel"].iloc[0]
+    tgt = tr[(tr["signal"] == "target") & (tr["label"] == labels[0])]
+    axes[0].plot(tgt["time_s"], tgt["value"], color=_TARGET, lw=1.4, ls="--", label="target")
+    for label in labels:
+        o = out[out["label"] == label]
+        axes[0].plot(o["time_s"], o["value"], color=colours[label], lw=1.0, label=label,
+                     ls=_line_style(o["route"].iloc[0]))
+    axes[0].legend(frameon=False, ncol=3, loc="upper right", fontsize=_LEGEND)
+    _labels(axes[0], ylabel=f"{ch} [{result.output_unit(ch)}]",
+            title=f"Closed loop on the {result.plant.replace(' ', '-')} plant: steered output (first split)")
+    lim = result.limits or {}
+    for ax, label in zip(axes[1:], labels):
+        inp = tr[(tr["signal"] == "input") & (tr["label"] == label)]
+        for i, (name, g) in enumerate(inp.groupby("channel", sort=False)):
+            ax.plot(g["time_s"], g["value"], lw=0.9, label=name, color=_INPUT_COLOURS[i % len(_INPUT_COLOURS)])
+        _limit_lines(ax, lim)
+        _labels(ax, ylabel="input [µA]", title=f"{label}: stimulation (dotted: hard amplitude limits of the inputs)",
+                title_size=9)
+        ax.legend(frameon=False, ncol=6, loc="upper right", fontsize=_LEGEND)
+    _labels(axes[-1], xlabel="time in the closed loop [s]")
+    return fig
+
+
+def fig_tradeoff(result: BenchResult, colours: dict):
+    """Each closed loop's tracking error against its stimulation energy, with the means and intervals."""
+    c = result.control
+    if c.empty:
+        return None
+    st = result.settings
+    base = c[(c["n_train_trials"] == c.groupby("split")["n_train_trials"].transform("max"))
+             & (c["noise_scale"] == 1.0) & (c["horizon_steps"] == st.horizon_steps)]
+    fig, axes = _figure(1, 1, (5.8, 4.0))
+    ax = axes[0, 0]
+    for label, g in base.groupby("label"):
+        ax.scatter(g["energy_ua2"], g["tracking_rms"], color=colours[label], alpha=0.45, s=22, lw=0)
+        mx, xlo, xhi = t_interval(g["energy_ua2"])
+        my, ylo, yhi = t_interval(g["tracking_rms"])
+        xerr = None if not np.isfinite(xlo) else [[mx - xlo], [xhi - mx]]
+        yerr = None if not np.isfinite(ylo) else [[my - ylo], [yhi - my]]
+        ax.errorbar([mx], [my], xerr=xerr, yerr=yerr, fmt="o", color=colours[label], ms=7, capsize=3, label=label)
+    _labels(ax, "stimulation energy Σu² over the run [µA²]", f"RMS tracking error [{result.steered_unit}]",
+            "Tracking error vs energy (dots: splits; marker: mean, 95 % interval)")
+    ax.legend(frameon=False, fontsize=_LEGEND)
+    return fig
+
+
+# ------------------------------------------------------------------------------------------------ sweeps and compute
+def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title: str, logx: bool = False):
+    """Accuracy at the horizon and tracking error against the values of one sweep (None without that sweep)."""
+    s = result.sweeps
+    part = s[s["sweep"] == sweep]
+    if part.empty:
+        return None
+    ahead = result.settings.horizon_steps if sweep != "horizon_steps" else "N"
+    metrics = [("r2_last", f"R² {ahead} steps ahead (held-out)"),
+               ("tracking_rms", f"RMS tracking error [{result.steered_unit}]")]
+    metrics = [(m, t) for m, t in metrics if (part["metric"] == m).any()]
+    fig, axes = _figure(1, len(metrics), (4.2 * len(metrics), 3.3))
+    values = sorted(part["value"].unique())
+    for ax, (metric, ylabel) in zip(axes[0], metrics):
+        for label in colours:
+            g = part[(part["metric"] == metric) & (part["label"] == label)].sort_values("value")
+            if g.empty:
+                continue
+            ax.plot(g["value"], g["mean"], "-o", color=colours[label], ms=4, lw=1.5, label=label)
+            ax.fill_between(g["value"], g["ci_low"], g["ci_high"], color=colours[label], alpha=0.18, lw=0)
+        _labels(ax, xlabel, ylabel)
+        if logx and min(values) > 0:
+            ax.set_xscale("log", base=2)
+        ax.set_xticks(values)
+        ax.set_xticklabels([f"{v:g}" for v in values])
+        ax.minorticks_off()
+    axes[0, 0].legend(frameon=False, fontsize=_LEGEND)
+    fig.suptitle(title, fontsize=_TITLE)
+    fig.tight_layout()
+    return fig
+
+
+def fig_compute(result: BenchResult, colours: dict):
+    """Wall time of fitting, of one prediction window and of one control solve, per method."""
+    s = result.sweeps
+    base = s[s["sweep"] == "base"]
+    panels = [("fit_s", "fit [s]"), ("predict_ms_per_window", "prediction [ms per window]"),
+              ("solve_ms_median", "control solve [ms per step]")]
+    panels = [p for p in panels if (base["metric"] == p[0]).any()]
+    fig, axes = _figure(1, len(panels), (3.0 * len(panels), 2.6))
+    labels = list(colours)[::-1]
+    for ax, (metric, xlabel) in zip(axes[0], panels):
+        for i, label in enumerate(labels):
+            g = base[(base["metric"] == metric) & (base["label"] == label)]
+            if g.empty:
+                continue
+            r = g.iloc[0]
+            err = None if not np.isfinite(r["ci_low"]) else [[r["mean"] - max(r["ci_low"], 0)],
+                                                              [r["ci_high"] - r["mean"]]]
+            ax.barh([i], [r["mean"]], xerr=err, color=colours[label], height=0.6, capsize=3)
+        ax.set_yticks(range(len(labels)))
+        ax.set_yticklabels(labels if ax is axes[0, 0] else [""] * len(labels))
+        _labels(ax, xlabel)
+        ax.set_axisbelow(True)
+        ax.grid(axis="y", visible=False)
+    fig.suptitle("Compute time (mean and 95 % interval over splits; single-threaded tasks)", fontsize=_TITLE)
+    fig.tight_layout()
+    return fig
+
+
+def report_figures(result: BenchResult) -> dict:
+    """The report's figures as PNG bytes, by file stem (only those the result has data for).
+
+    Returns
+    -------
+    dict of str to bytes
+        ``predictions``, ``accuracy_vs_steps``, ``closed_loop``, ``tracking_vs_energy``, ``training_data``,
+        ``noise``, ``horizon``, ``compute_time``, each present when the result holds its data.
+    """
+    colours = method_colours(result)
+    makers = {
+        "predictions": lambda: fig_predictions(result, colours),
+        "accuracy_vs_steps": lambda: fig_accuracy(result, colours),
+        "closed_loop": lambda: fig_closed_loop(result, colours),
+        "tracking_vs_energy": lambda: fig_tradeoff(result, colours),
+        "training_data": lambda: fig_sweep(result, colours, "train_trials", "training trials",
+                                           "Accuracy and control vs amount of training data"),
+        "noise": lambda: fig_sweep(result, colours, "noise_scale", "noise level (× the plant's)",
+                                   "Accuracy and control vs noise (re-recorded from the plant)", logx=True),
+        "horizon": lambda: fig_sweep(result, colours, "horizon_steps", "horizon N [steps]",
+                                     "Accuracy at the horizon and control vs horizon"),
+        "compute_time": lambda: fig_compute(result, colours),
+    }
+    out = {}
+    for name, make in makers.items():
+        fig = make()
+        if fig is None:
+            continue
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", bbox_inches="tight")
+        out[name] = buf.getvalue()
+    return out
