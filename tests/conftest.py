@@ -2,7 +2,7 @@ import numpy as np
 import pytest
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def seed():
     """The one seed tests use, so every random number in the suite is reproducible."""
     return 20261201
