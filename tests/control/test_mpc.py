@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from sklearn.base import clone
 
 from stimsteer.control.cli import CAUTION
 from stimsteer.control.limits import StimLimits
@@ -12,9 +13,10 @@ from stimsteer.control.mpc import (
     ModelPredictiveController,
     Plan,
     condensed_prediction,
+    controller_for,
 )
-from stimsteer.sysid import Session, StateSpaceModel
-from stimsteer.sysid.exceptions import LimitsError, NotFittedError, SessionError
+from stimsteer.sysid import PredictionMaps, Session, StateSpaceModel
+from stimsteer.sysid.exceptions import InvalidParameterError, LimitsError, NotFittedError, SessionError
 
 
 def _model(rng, n=3, m=2, p=2, radius=0.85, D=False):
@@ -95,13 +97,13 @@ def test_fitting_twice_gives_the_same_plan_and_inputs_are_untouched(rng):
         (dict(input_weight=np.array([[1.0, 0.0], [0.0, -1.0]])), "positive semidefinite"),
         (dict(output_penalty=0.0), "output_penalty must be positive"),
         (dict(limits="limits.toml"), "limits must be a StimLimits"),
-        (dict(model="model.h5"), "model must be a StateSpaceModel"),
+        (dict(model="model.h5"), "model must have a state-space form"),
     ],
 )
 def test_bad_settings_are_refused_at_fit(rng, kw, match):
     args = dict(model=_model(rng), limits=_limits(), horizon_steps=3)
     args.update(kw)
-    with pytest.raises(SessionError, match=match):
+    with pytest.raises(InvalidParameterError, match=match):
         ModelPredictiveController(**args).fit()
 
 
@@ -317,11 +319,16 @@ def test_projection_clips_tolerance_level_excess_only(rng):
 
 # ------------------------------------------------------------------------------------------------ direct route
 class _Lsq:
-    """A fitted SPC predictor with the LsqPredictor attributes, built from a known model (exact Kp, Kf)."""
+    """A fitted linear predictor (the LinearPredictor protocol, nothing else) built from a known model: its maps
+    are the model's exact multi-step maps (the subspace predictive control of a noise-free system)."""
+
+    has_linear_maps = True
 
     def __init__(self, model, past, horizon):
         self.past_steps_, self.max_horizon_steps_ = past, horizon
         self.n_inputs_, self.n_outputs_ = model.n_inputs, model.n_outputs
+        self.input_names_, self.output_names_ = model.input_names, model.output_names
+        self._model = model
         m, p = model.n_inputs, model.n_outputs
         cols = []
         for j in range((m + p) * past):  # the predictor is linear in the past: probe it column by column
@@ -329,8 +336,23 @@ class _Lsq:
             b[j] = 1.0
             cols.append(model.predict(b[:m * past].reshape(past, m), b[m * past:].reshape(past, p),
                                       np.zeros((horizon, m))).reshape(-1))
-        self.Kp_ = np.array(cols).T
-        self.Kf_ = condensed_prediction(model, horizon)[0]
+        self._Kp = np.array(cols).T
+        self._Kf = condensed_prediction(model, horizon)[0]
+
+    def prediction_maps(self, past_steps, horizon_steps):
+        assert past_steps == self.past_steps_
+        m, p, N = self.n_inputs_, self.n_outputs_, horizon_steps
+        return PredictionMaps(P=self._Kp[:p * N], F=self._Kf[:p * N, :m * N], c=np.zeros(p * N),
+                              past_steps=past_steps, horizon_steps=N)
+
+    def predict(self, u_past, y_past, u_future):
+        return self.prediction_maps(self.past_steps_, len(u_future)).apply(u_past, y_past, u_future)
+
+    def predict_many(self, u_past, y_past, u_future):
+        return np.stack([self.predict(a, b, c) for a, b, c in zip(u_past, y_past, u_future)])
+
+    def rest_window(self):
+        return np.zeros((self.past_steps_, self.n_inputs_)), np.zeros((self.past_steps_, self.n_outputs_))
 
 
 def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
@@ -350,9 +372,9 @@ def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
 def test_direct_controller_refuses_other_objects_and_long_horizons(rng):
     model = _model(rng)
     not_a_predictor = type("P", (), {"past_steps_": 2})()
-    with pytest.raises(SessionError, match="needs a HankelPredictor"):
+    with pytest.raises(InvalidParameterError, match=r"needs a predictor with data_blocks\(\) .* which has no predict"):
         DataPredictiveController(predictor=not_a_predictor, limits=_limits()).fit()
-    with pytest.raises(SessionError, match="exceeds the predictor's horizon of 6"):
+    with pytest.raises(InvalidParameterError, match="exceeds the predictor's horizon of 6"):
         DataPredictiveController(predictor=_Lsq(model, 3, 6), limits=_limits(), horizon_steps=7).fit()
 
 
@@ -412,7 +434,7 @@ def test_deepc_fallback_predicts_with_the_predictor(deepc_setup, rng):
 
 def test_bad_past_slack_weight_is_refused(deepc_setup):
     model, session, pred = deepc_setup
-    with pytest.raises(SessionError, match="past_slack_weight must be > 0"):
+    with pytest.raises(InvalidParameterError, match="past_slack_weight must be > 0"):
         DataPredictiveController(predictor=pred.fit(session), limits=_limits(), past_slack_weight=-1.0).fit()
 
 
@@ -497,11 +519,11 @@ def test_deepc_eliminated_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rn
 
 
 def test_weights_must_be_finite_and_riccati_must_exist(rng):
-    with pytest.raises(SessionError, match="input_weight must be finite"):
+    with pytest.raises(InvalidParameterError, match="input_weight must be finite"):
         ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3, input_weight=np.nan).fit()
     # (A, B) not stabilisable: the unstable mode 2.0 is not driven by the input, so no Riccati solution exists
     model = StateSpaceModel(A=np.diag([2.0, 0.5]), B=[[0.0, 0.0], [1.0, 1.0]], C=np.eye(2))
-    with pytest.raises(SessionError, match="no stabilising solution"):
+    with pytest.raises(InvalidParameterError, match="no stabilising solution"):
         ModelPredictiveController(model=model, limits=_limits(), horizon_steps=3, terminal_weight="riccati").fit()
 
 
@@ -510,8 +532,6 @@ def test_output_offset_of_the_model_is_honoured(rng):
     off = np.array([5.0, -3.0])
     model = base.replace(info={"output_offset": off})
     u, y_dev = _past(rng, base)
-    from stimsteer.control.mpc import controller_for
-
     assert np.array_equal(controller_for(model, _limits(), horizon_steps=2).output_offset, off)
     y = y_dev + off  # the recording rests at the offset
     lim = _limits(output_max=[5.2, np.inf])
@@ -526,17 +546,15 @@ def test_output_offset_of_the_model_is_honoured(rng):
     for plan in plans:  # an active soft bound (penalty 1e4) loosens OSQP's relative tolerance: compare to 1e-4
         np.testing.assert_allclose(plan.inputs, expected.inputs, atol=1e-4)
         np.testing.assert_allclose(plan.predicted_outputs, expected.predicted_outputs + off, atol=1e-4)
-    with pytest.raises(SessionError, match="output_offset must be 2 finite values"):
+    with pytest.raises(InvalidParameterError, match="output_offset must be 2 finite values"):
         ModelPredictiveController(model=base, limits=lim, horizon_steps=3, output_offset=[1.0]).fit()
 
 
 def test_controller_for_picks_the_route(rng):
-    from stimsteer.control.mpc import controller_for
-
     model = _model(rng)
     assert isinstance(controller_for(model, _limits(), horizon_steps=3), ModelPredictiveController)
     assert controller_for(_Lsq(model, 3, 4), _limits()).method_ == "spc"
-    with pytest.raises(SessionError, match="give horizon_steps"):
+    with pytest.raises(InvalidParameterError, match="give horizon_steps"):
         controller_for(model, _limits())
 
 
