@@ -48,7 +48,7 @@ class ModelPredictiveController(_CondensedCore):
         stage cost (for the state kind ``P − Q``, since ``x_N`` is already in the stage cost), or a PSD matrix.
         ``x_T`` is the target state (state kind) or the minimum-norm state with ``C x = r_{N−1}`` (output kind).
     output_offset : ndarray, shape (n_outputs,), optional
-        When the model describes ``y − output_offset`` (e.g. ``RidgeArx.model_.info["output_offset"]``, the
+        When the model describes ``y − output_offset`` (e.g. ``info["output_offset"]`` of a ridge ARX model, the
         resting output), give it here: past outputs, targets, output bounds and predictions then stay in the
         outputs' own units. Default none (the model describes ``y`` itself). :func:`controller_for` passes it.
     target_kind : {"output", "state"}, default "output"

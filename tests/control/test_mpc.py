@@ -1,5 +1,7 @@
 """Tests of stimsteer.control.mpc: build-once DPP problems, fast path = cvxpy path, hard limits, fallbacks."""
 
+import re
+
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -604,3 +606,155 @@ def test_a_centred_direct_predictor_plans_in_recorded_units(rng, kind, fast):
     assert a.active_limits["output_bounds"].any()  # the bound binds: its shift matters
     u_rest, y_rest = centred.rest_window()
     assert not u_rest.any() and np.allclose(y_rest, off)
+
+
+# ------------------------------------------------------------------------------------------------ the contract
+@pytest.mark.parametrize("kind", ["condensed", "sparse", "deepc", "deepc_l1", "linear_maps"])
+def test_every_formulation_builds_a_dpp_problem(rng, kind):
+    # DPP (cvxpy's disciplined parametrised programming) is what lets a plan only assign Parameter values
+    from stimsteer.sysid import HankelPredictor, LsqPredictor
+
+    model = _model(rng)
+    lim = _limits(output_max=[0.5, np.inf], energy_budget_ua2=50.0)
+    if kind in ("condensed", "sparse"):
+        ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=4, formulation=kind,
+                                         terminal_weight="riccati").fit()
+    else:
+        session = _noise_free_session(rng, model)
+        pred = (LsqPredictor(past_steps=3, horizon_steps=4) if kind == "linear_maps" else
+                HankelPredictor(past_steps=3, horizon_steps=4, lambdas_g=(1e-3,),
+                                regularizer="l1" if kind == "deepc_l1" else "projection"))
+        ctrl = DataPredictiveController(predictor=pred, limits=lim).fit(session)
+        assert ctrl.method_ == ("spc" if kind == "linear_maps" else "deepc")
+    assert ctrl.problem_.is_dpp()
+    u, y = _past(rng, model)
+    assert ctrl.plan(u, y, target=[0.3, -0.2]).ok
+
+
+class _OnlyLinearMaps:
+    """A predictor that offers the LinearPredictor protocol and nothing else, by wrapping a fitted LsqPredictor:
+    no data blocks, no state-space form, none of the least-squares predictor's own attributes."""
+
+    has_linear_maps = True
+
+    def __init__(self, inner):
+        self._inner = inner
+        self.past_steps_, self.max_horizon_steps_ = inner.past_steps_, inner.max_horizon_steps_
+        self.n_inputs_, self.n_outputs_ = inner.n_inputs_, inner.n_outputs_
+        self.input_names_, self.output_names_ = inner.input_names_, inner.output_names_
+
+    def prediction_maps(self, past_steps, horizon_steps):
+        return self._inner.prediction_maps(past_steps, horizon_steps)
+
+    def predict(self, u_past, y_past, u_future):
+        return self._inner.predict(u_past, y_past, u_future)
+
+    def predict_many(self, u_past, y_past, u_future):
+        return self._inner.predict_many(u_past, y_past, u_future)
+
+    def rest_window(self):
+        return self._inner.rest_window()
+
+
+@pytest.mark.parametrize("centre", [False, True])
+def test_a_predictor_with_only_linear_maps_gets_the_controller_of_the_least_squares_predictor(rng, centre):
+    from stimsteer.sysid import LsqPredictor
+
+    model = _model(rng)
+    session = _noise_free_session(rng, model)
+    if centre:  # the maps' constant c then carries the offset
+        session = session.replace(y=session.y + [25.0, -8.0])
+    lsq = LsqPredictor(past_steps=3, horizon_steps=6, alphas=(1e-8,), centre_outputs=centre).fit(session)
+    toy = _OnlyLinearMaps(lsq)
+    lim = _limits(output_max=[0.6 + (25.0 if centre else 0.0), np.inf])
+    a = controller_for(lsq, lim, horizon_steps=5, input_weight=0.5)
+    b = controller_for(toy, lim, horizon_steps=5, input_weight=0.5)
+    assert type(b) is DataPredictiveController and b.method_ == a.method_ == "spc" and b.problem_.is_dpp()
+    u, y = _past(rng, model)
+    y = y + ([25.0, -8.0] if centre else 0.0)
+    for fast in (True, False):
+        pa = a.plan(u, y, target=np.array([1.0, 0.5]) + (y[-1] if centre else 0.0), use_fast_path=fast)
+        pb = b.plan(u, y, target=np.array([1.0, 0.5]) + (y[-1] if centre else 0.0), use_fast_path=fast)
+        assert pa.ok and pb.ok
+        np.testing.assert_allclose(pb.inputs, pa.inputs, rtol=0, atol=1e-9)
+        np.testing.assert_allclose(pb.predicted_outputs, pa.predicted_outputs, rtol=0, atol=1e-9)
+        assert pb.cost_terms == pytest.approx(pa.cost_terms, rel=1e-9, abs=1e-12)
+
+
+def test_an_object_without_any_capability_is_refused_with_what_it_lacks(rng):
+    class Forecaster:  # predicts, but declares no linear maps, no blocks, no state-space form
+        has_linear_maps = False
+
+        def predict(self, u_past, y_past, u_future):
+            return np.zeros((len(u_future), 2))
+
+    for obj, missing in ((Forecaster(), "which has no predict_many(), rest_window(), prediction_maps()"),
+                         (object(), "which has no predict(), predict_many()")):
+        with pytest.raises(InvalidParameterError, match=r"controller_for needs a predictor with state_space_model\(\)"
+                           r".*" + re.escape(missing)):
+            controller_for(obj, _limits(), horizon_steps=3)
+        with pytest.raises(InvalidParameterError, match=re.escape(missing)):
+            DataPredictiveController(predictor=obj, limits=_limits()).fit()
+    lsq_like = _Lsq(_model(rng), 3, 4)
+    lsq_like.has_linear_maps = False  # an affine-looking object that says it is not
+    with pytest.raises(InvalidParameterError, match="whose has_linear_maps is False"):
+        controller_for(lsq_like, _limits())
+
+
+@pytest.mark.parametrize("kind", ["model", "data"])
+def test_clone_rebuilds_an_unfitted_controller_that_plans_the_same(rng, kind, deepc_setup):
+    model, session, pred = deepc_setup
+    if kind == "model":
+        ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4, input_weight=0.1,
+                                         terminal_weight="riccati")
+    else:  # clone copies the (unfitted) predictor too, as scikit-learn does for nested estimators
+        ctrl = DataPredictiveController(predictor=pred, limits=_limits(), horizon_steps=4, input_weight=0.1)
+    twin = clone(ctrl)
+    assert type(twin) is type(ctrl) and twin is not ctrl
+    assert twin.get_params(deep=False).keys() == ctrl.get_params(deep=False).keys()
+    assert twin.horizon_steps == 4 and twin.input_weight == 0.1
+    u, y = _past(rng, model)
+    with pytest.raises(NotFittedError, match=f"call {type(ctrl).__name__}.fit"):
+        twin.plan(u, y, target=[0.5, 0.5])
+    a = ctrl.fit(session).plan(u, y, target=[0.5, 0.5])
+    b = twin.fit(session).plan(u, y, target=[0.5, 0.5])
+    np.testing.assert_allclose(b.inputs, a.inputs, rtol=0, atol=1e-12)
+
+
+def test_set_params_after_fit_asks_for_a_new_fit(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4).fit()
+    assert ctrl.set_params(horizon_steps=6) is ctrl and ctrl.get_params()["horizon_steps"] == 6
+    with pytest.raises(NotFittedError, match=r"horizon_steps of this ModelPredictiveController changed after it was "
+                                             r"fitted.*call ModelPredictiveController.fit\(...\) again"):
+        ctrl.plan(u, y, target=[0.5, 0.5])
+    with pytest.raises(NotFittedError, match="fit"):
+        ctrl.reset()
+    assert ctrl.fit().plan(u, y, target=[0.5, 0.5]).inputs.shape == (6, 2)
+    with pytest.raises(InvalidParameterError, match="has no setting 'horizon'"):
+        ctrl.set_params(horizon=3)
+
+
+def test_any_state_space_form_is_a_model(rng):
+    # a fitted estimator with state_space_model() plans as its realisation does
+    from stimsteer.sysid import RidgeArx
+
+    model = _model(rng)
+    est = RidgeArx(output_lags=3, input_lags=3, alphas=(1e-8,)).fit(_noise_free_session(rng, model))
+    a = ModelPredictiveController(model=est, limits=_limits(), horizon_steps=5).fit()
+    b = ModelPredictiveController(model=est.state_space_model(), limits=_limits(), horizon_steps=5).fit()
+    assert a.model is est and a.model_.n_states == b.model_.n_states and a.past_steps_ == est.past_steps_
+    u, y = _past(rng, model, T=a.past_steps_)
+    np.testing.assert_array_equal(a.plan(u, y, target=[0.4, 0.1]).inputs, b.plan(u, y, target=[0.4, 0.1]).inputs)
+
+
+def test_the_plan_folder_workflow_lives_in_the_command_layer():
+    # the numerics do not import the file workflow; its old import path still resolves to it
+    import stimsteer.control.mpc as mpc
+    from stimsteer.control.commands import plan as command
+
+    assert mpc.plan_to_folder is command.plan_to_folder and mpc.write_plan is command.write_plan
+    assert mpc.PlanRun is command.PlanRun
+    with pytest.raises(AttributeError, match="no attribute 'plot_plan'"):
+        mpc.plot_plan  # noqa: B018
