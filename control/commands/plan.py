@@ -19,6 +19,7 @@ from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable
 from ..figures.plan import plan_figure
 from ..limits import load_limits
+# the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target

@@ -413,4 +413,3 @@ def _blend_into_budget(u, safe, budget):
     alpha = (-b + np.sqrt(max(b * b - 4 * a * c, 0.0))) / (2 * a)
     alpha = float(np.clip(alpha, 0.0, 1.0))
     return alpha * u + (1.0 - alpha) * safe
-

@@ -166,4 +166,3 @@ class _CondensedCore(_PredictiveController):
         if self._LpT is not None:
             terms["terminal"] = float(np.sum((self._LpT @ v + tw) ** 2))
         return terms
-

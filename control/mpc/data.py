@@ -390,7 +390,6 @@ class DataPredictiveController(_CondensedCore):
         return terms
 
 
-
 def _formulation(predictor) -> str:
     """``"deepc"`` for a predictor with data blocks, ``"spc"`` for one with linear prediction maps."""
     if isinstance(predictor, DataBlocksForm):

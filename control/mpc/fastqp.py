@@ -19,6 +19,7 @@ __all__: list = []
 
 
 def _osqp_settings(tight: bool):
+    """OSQP settings (tight: 1e-7 tolerances, for plans that must match the cvxpy path) for OSQP 0.6 and 1.x."""
     import osqp
 
     old = str(getattr(osqp, "__version__", "1")).startswith("0.")
@@ -29,6 +30,8 @@ def _osqp_settings(tight: bool):
 
 
 class _Silent:
+    """A stream that swallows what is written to it (OSQP 1.x prints while polishing, even when not verbose)."""
+
     def write(self, text):
         return len(text)
 
@@ -71,4 +74,3 @@ class _FastQP:
             return res.x, "optimal_inaccurate", ""
         kind = "infeasible" if "infeasible" in status else "failed"
         return None, kind, f"OSQP returned '{res.info.status}'"
-

@@ -141,4 +141,3 @@ def _target_table(path, output_names, horizon_steps):
                                    f"{n} rows.")
             target[:, j] = v
     return target, np.array([n in cols for n in output_names])
-
