@@ -116,6 +116,9 @@ class DataPredictiveController(_CondensedCore):
         self.problem_ = None
         self.predictor_, self.method_, self.target_kind_ = pred, method, "output"
         max_h = pred.max_horizon_steps_
+        if self.horizon_steps is None and max_h is None:
+            raise InvalidParameterError(f"the {type(pred).__name__} predicts over any horizon, so it gives the "
+                                        "controller none; give horizon_steps.")
         N = _horizon(max_h if self.horizon_steps is None else self.horizon_steps, max_h)
         m, p = int(pred.n_inputs_), int(pred.n_outputs_)
         self._setup_common(tuple(pred.input_names_), tuple(pred.output_names_), N)

@@ -181,6 +181,7 @@ class ModelPredictiveController(_CondensedCore):
         return self.model.state_space_model()
 
     def _check_choices(self):
+        """Refuse a target kind or formulation that does not exist."""
         if self.target_kind not in ("output", "state"):
             raise InvalidParameterError(f"target_kind must be 'output' or 'state'; got {self.target_kind!r}.")
         if self.formulation not in ("condensed", "sparse"):

@@ -758,3 +758,12 @@ def test_the_plan_folder_workflow_lives_in_the_command_layer():
     assert mpc.PlanRun is command.PlanRun
     with pytest.raises(AttributeError, match="no attribute 'plot_plan'"):
         mpc.plot_plan  # noqa: B018
+
+
+def test_a_predictor_without_a_horizon_needs_one_from_the_controller(rng):
+    model = _model(rng)
+    anyhorizon = _Lsq(model, 3, 6)
+    anyhorizon.max_horizon_steps_ = None  # the protocol's "any horizon"
+    with pytest.raises(InvalidParameterError, match="predicts over any horizon.*give horizon_steps"):
+        DataPredictiveController(predictor=anyhorizon, limits=_limits()).fit()
+    assert DataPredictiveController(predictor=anyhorizon, limits=_limits(), horizon_steps=4).fit().horizon_steps_ == 4
