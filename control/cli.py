@@ -305,7 +305,7 @@ def _add_plan(sub):
 
 
 def _run_plan(args):
-    from .mpc import plan_to_folder
+    from .commands.plan import plan_to_folder
 
     run = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
                          horizon_steps=args.horizon_steps, from_trial=args.from_trial,

@@ -12,8 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..sysid._base import check_fitted
-from ..sysid.exceptions import LimitsError, SessionError
+from ..sysid import LimitsError, SessionError, check_fitted
 
 __all__ = ["LoopResult", "run_closed_loop"]
 
@@ -90,8 +89,8 @@ def _targets(controller, target, n_steps):
     """A function ``k -> target window`` for the plan at step k, and the per-step output targets."""
     N, p = controller.horizon_steps_, controller.n_outputs_
     t = np.asarray(target, dtype=np.float64)
-    if getattr(controller, "target_kind", "output") == "state":
-        model = controller.model
+    if controller.target_kind_ == "state":  # only a state-space controller plans towards a state
+        model = controller.model_
         if t.shape != (model.n_states,):
             raise SessionError(f"a state target must have shape ({model.n_states},); got {t.shape}.")
         return (lambda k: t), np.tile(model.C @ t, (n_steps, 1))

@@ -125,3 +125,25 @@ def test_bad_loop_arguments_are_refused(rng):
     state = ModelPredictiveController(model=model, limits=LIM, horizon_steps=4, target_kind="state").fit()
     with pytest.raises(SessionError, match=r"a state target must have shape \(3,\)"):
         run_closed_loop(state, plant, n_steps=2, target=np.zeros(2))
+
+
+def test_a_data_controller_runs_the_loop_and_set_params_asks_for_a_new_fit(rng):
+    # the loop reads only what every controller declares (target_kind_, past_steps_, limits_, ...): here the
+    # linear-map controller of a least-squares predictor fitted on noise-free data of the plant
+    from stimsteer.control.mpc import controller_for
+    from stimsteer.sysid import LsqPredictor, Session
+
+    model = _model(rng)
+    u = rng.uniform(-1, 1, size=(400, 2))
+    session = Session(u=u, y=model.simulate(u), sample_rate_hz=1.0)
+    pred = LsqPredictor(past_steps=3, horizon_steps=8, alphas=(1e-8,)).fit(session)
+    ctrl = controller_for(pred, LIM, input_weight=1e-6)
+    assert ctrl.target_kind_ == "output" and ctrl.method_ == "spc"
+    target = _reachable_target(model, np.array([0.5, -0.4]))
+    res = run_closed_loop(ctrl, _ModelPlant(model), n_steps=40, target=target)
+    assert res.violations == {"amplitude": 0, "slew": 0, "energy_budget": 0, "output_bounds": 0}
+    np.testing.assert_allclose(res.outputs[-3:], np.tile(target, (3, 1)), atol=1e-2)
+    ctrl.set_params(input_weight=1e-3)
+    with pytest.raises(NotFittedError, match="input_weight of this DataPredictiveController changed after it was "
+                                             "fitted"):
+        run_closed_loop(ctrl, _ModelPlant(model), n_steps=2, target=target)

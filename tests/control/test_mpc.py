@@ -1,9 +1,12 @@
 """Tests of stimsteer.control.mpc: build-once DPP problems, fast path = cvxpy path, hard limits, fallbacks."""
 
+import re
+
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from sklearn.base import clone
 
 from stimsteer.control.cli import CAUTION
 from stimsteer.control.limits import StimLimits
@@ -12,9 +15,10 @@ from stimsteer.control.mpc import (
     ModelPredictiveController,
     Plan,
     condensed_prediction,
+    controller_for,
 )
-from stimsteer.sysid import Session, StateSpaceModel
-from stimsteer.sysid.exceptions import LimitsError, NotFittedError, SessionError
+from stimsteer.sysid import PredictionMaps, Session, StateSpaceModel
+from stimsteer.sysid.exceptions import InvalidParameterError, LimitsError, NotFittedError, SessionError
 
 
 def _model(rng, n=3, m=2, p=2, radius=0.85, D=False):
@@ -95,13 +99,13 @@ def test_fitting_twice_gives_the_same_plan_and_inputs_are_untouched(rng):
         (dict(input_weight=np.array([[1.0, 0.0], [0.0, -1.0]])), "positive semidefinite"),
         (dict(output_penalty=0.0), "output_penalty must be positive"),
         (dict(limits="limits.toml"), "limits must be a StimLimits"),
-        (dict(model="model.h5"), "model must be a StateSpaceModel"),
+        (dict(model="model.h5"), "model must have a state-space form"),
     ],
 )
 def test_bad_settings_are_refused_at_fit(rng, kw, match):
     args = dict(model=_model(rng), limits=_limits(), horizon_steps=3)
     args.update(kw)
-    with pytest.raises(SessionError, match=match):
+    with pytest.raises(InvalidParameterError, match=match):
         ModelPredictiveController(**args).fit()
 
 
@@ -317,11 +321,16 @@ def test_projection_clips_tolerance_level_excess_only(rng):
 
 # ------------------------------------------------------------------------------------------------ direct route
 class _Lsq:
-    """A fitted SPC predictor with the LsqPredictor attributes, built from a known model (exact Kp, Kf)."""
+    """A fitted linear predictor (the LinearPredictor protocol, nothing else) built from a known model: its maps
+    are the model's exact multi-step maps (the subspace predictive control of a noise-free system)."""
+
+    has_linear_maps = True
 
     def __init__(self, model, past, horizon):
         self.past_steps_, self.max_horizon_steps_ = past, horizon
         self.n_inputs_, self.n_outputs_ = model.n_inputs, model.n_outputs
+        self.input_names_, self.output_names_ = model.input_names, model.output_names
+        self._model = model
         m, p = model.n_inputs, model.n_outputs
         cols = []
         for j in range((m + p) * past):  # the predictor is linear in the past: probe it column by column
@@ -329,8 +338,23 @@ class _Lsq:
             b[j] = 1.0
             cols.append(model.predict(b[:m * past].reshape(past, m), b[m * past:].reshape(past, p),
                                       np.zeros((horizon, m))).reshape(-1))
-        self.Kp_ = np.array(cols).T
-        self.Kf_ = condensed_prediction(model, horizon)[0]
+        self._Kp = np.array(cols).T
+        self._Kf = condensed_prediction(model, horizon)[0]
+
+    def prediction_maps(self, past_steps, horizon_steps):
+        assert past_steps == self.past_steps_
+        m, p, N = self.n_inputs_, self.n_outputs_, horizon_steps
+        return PredictionMaps(P=self._Kp[:p * N], F=self._Kf[:p * N, :m * N], c=np.zeros(p * N),
+                              past_steps=past_steps, horizon_steps=N)
+
+    def predict(self, u_past, y_past, u_future):
+        return self.prediction_maps(self.past_steps_, len(u_future)).apply(u_past, y_past, u_future)
+
+    def predict_many(self, u_past, y_past, u_future):
+        return np.stack([self.predict(a, b, c) for a, b, c in zip(u_past, y_past, u_future)])
+
+    def rest_window(self):
+        return np.zeros((self.past_steps_, self.n_inputs_)), np.zeros((self.past_steps_, self.n_outputs_))
 
 
 def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
@@ -350,9 +374,9 @@ def test_spc_controller_equals_the_indirect_one_with_the_same_predictor(rng):
 def test_direct_controller_refuses_other_objects_and_long_horizons(rng):
     model = _model(rng)
     not_a_predictor = type("P", (), {"past_steps_": 2})()
-    with pytest.raises(SessionError, match="needs a HankelPredictor"):
+    with pytest.raises(InvalidParameterError, match=r"needs a predictor with data_blocks\(\) .* which has no predict"):
         DataPredictiveController(predictor=not_a_predictor, limits=_limits()).fit()
-    with pytest.raises(SessionError, match="exceeds the predictor's horizon of 6"):
+    with pytest.raises(InvalidParameterError, match="exceeds the predictor's horizon of 6"):
         DataPredictiveController(predictor=_Lsq(model, 3, 6), limits=_limits(), horizon_steps=7).fit()
 
 
@@ -412,7 +436,7 @@ def test_deepc_fallback_predicts_with_the_predictor(deepc_setup, rng):
 
 def test_bad_past_slack_weight_is_refused(deepc_setup):
     model, session, pred = deepc_setup
-    with pytest.raises(SessionError, match="past_slack_weight must be > 0"):
+    with pytest.raises(InvalidParameterError, match="past_slack_weight must be > 0"):
         DataPredictiveController(predictor=pred.fit(session), limits=_limits(), past_slack_weight=-1.0).fit()
 
 
@@ -497,11 +521,11 @@ def test_deepc_eliminated_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rn
 
 
 def test_weights_must_be_finite_and_riccati_must_exist(rng):
-    with pytest.raises(SessionError, match="input_weight must be finite"):
+    with pytest.raises(InvalidParameterError, match="input_weight must be finite"):
         ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3, input_weight=np.nan).fit()
     # (A, B) not stabilisable: the unstable mode 2.0 is not driven by the input, so no Riccati solution exists
     model = StateSpaceModel(A=np.diag([2.0, 0.5]), B=[[0.0, 0.0], [1.0, 1.0]], C=np.eye(2))
-    with pytest.raises(SessionError, match="no stabilising solution"):
+    with pytest.raises(InvalidParameterError, match="no stabilising solution"):
         ModelPredictiveController(model=model, limits=_limits(), horizon_steps=3, terminal_weight="riccati").fit()
 
 
@@ -510,8 +534,6 @@ def test_output_offset_of_the_model_is_honoured(rng):
     off = np.array([5.0, -3.0])
     model = base.replace(info={"output_offset": off})
     u, y_dev = _past(rng, base)
-    from stimsteer.control.mpc import controller_for
-
     assert np.array_equal(controller_for(model, _limits(), horizon_steps=2).output_offset, off)
     y = y_dev + off  # the recording rests at the offset
     lim = _limits(output_max=[5.2, np.inf])
@@ -526,17 +548,15 @@ def test_output_offset_of_the_model_is_honoured(rng):
     for plan in plans:  # an active soft bound (penalty 1e4) loosens OSQP's relative tolerance: compare to 1e-4
         np.testing.assert_allclose(plan.inputs, expected.inputs, atol=1e-4)
         np.testing.assert_allclose(plan.predicted_outputs, expected.predicted_outputs + off, atol=1e-4)
-    with pytest.raises(SessionError, match="output_offset must be 2 finite values"):
+    with pytest.raises(InvalidParameterError, match="output_offset must be 2 finite values"):
         ModelPredictiveController(model=base, limits=lim, horizon_steps=3, output_offset=[1.0]).fit()
 
 
 def test_controller_for_picks_the_route(rng):
-    from stimsteer.control.mpc import controller_for
-
     model = _model(rng)
     assert isinstance(controller_for(model, _limits(), horizon_steps=3), ModelPredictiveController)
     assert controller_for(_Lsq(model, 3, 4), _limits()).method_ == "spc"
-    with pytest.raises(SessionError, match="give horizon_steps"):
+    with pytest.raises(InvalidParameterError, match="give horizon_steps"):
         controller_for(model, _limits())
 
 
@@ -586,3 +606,164 @@ def test_a_centred_direct_predictor_plans_in_recorded_units(rng, kind, fast):
     assert a.active_limits["output_bounds"].any()  # the bound binds: its shift matters
     u_rest, y_rest = centred.rest_window()
     assert not u_rest.any() and np.allclose(y_rest, off)
+
+
+# ------------------------------------------------------------------------------------------------ the contract
+@pytest.mark.parametrize("kind", ["condensed", "sparse", "deepc", "deepc_l1", "linear_maps"])
+def test_every_formulation_builds_a_dpp_problem(rng, kind):
+    # DPP (cvxpy's disciplined parametrised programming) is what lets a plan only assign Parameter values
+    from stimsteer.sysid import HankelPredictor, LsqPredictor
+
+    model = _model(rng)
+    lim = _limits(output_max=[0.5, np.inf], energy_budget_ua2=50.0)
+    if kind in ("condensed", "sparse"):
+        ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=4, formulation=kind,
+                                         terminal_weight="riccati").fit()
+    else:
+        session = _noise_free_session(rng, model)
+        pred = (LsqPredictor(past_steps=3, horizon_steps=4) if kind == "linear_maps" else
+                HankelPredictor(past_steps=3, horizon_steps=4, lambdas_g=(1e-3,),
+                                regularizer="l1" if kind == "deepc_l1" else "projection"))
+        ctrl = DataPredictiveController(predictor=pred, limits=lim).fit(session)
+        assert ctrl.method_ == ("spc" if kind == "linear_maps" else "deepc")
+    assert ctrl.problem_.is_dpp()
+    u, y = _past(rng, model)
+    assert ctrl.plan(u, y, target=[0.3, -0.2]).ok
+
+
+class _OnlyLinearMaps:
+    """A predictor that offers the LinearPredictor protocol and nothing else, by wrapping a fitted LsqPredictor:
+    no data blocks, no state-space form, none of the least-squares predictor's own attributes."""
+
+    has_linear_maps = True
+
+    def __init__(self, inner):
+        self._inner = inner
+        self.past_steps_, self.max_horizon_steps_ = inner.past_steps_, inner.max_horizon_steps_
+        self.n_inputs_, self.n_outputs_ = inner.n_inputs_, inner.n_outputs_
+        self.input_names_, self.output_names_ = inner.input_names_, inner.output_names_
+
+    def prediction_maps(self, past_steps, horizon_steps):
+        return self._inner.prediction_maps(past_steps, horizon_steps)
+
+    def predict(self, u_past, y_past, u_future):
+        return self._inner.predict(u_past, y_past, u_future)
+
+    def predict_many(self, u_past, y_past, u_future):
+        return self._inner.predict_many(u_past, y_past, u_future)
+
+    def rest_window(self):
+        return self._inner.rest_window()
+
+
+@pytest.mark.parametrize("centre", [False, True])
+def test_a_predictor_with_only_linear_maps_gets_the_controller_of_the_least_squares_predictor(rng, centre):
+    from stimsteer.sysid import LsqPredictor
+
+    model = _model(rng)
+    session = _noise_free_session(rng, model)
+    if centre:  # the maps' constant c then carries the offset
+        session = session.replace(y=session.y + [25.0, -8.0])
+    lsq = LsqPredictor(past_steps=3, horizon_steps=6, alphas=(1e-8,), centre_outputs=centre).fit(session)
+    toy = _OnlyLinearMaps(lsq)
+    lim = _limits(output_max=[0.6 + (25.0 if centre else 0.0), np.inf])
+    a = controller_for(lsq, lim, horizon_steps=5, input_weight=0.5)
+    b = controller_for(toy, lim, horizon_steps=5, input_weight=0.5)
+    assert type(b) is DataPredictiveController and b.method_ == a.method_ == "spc" and b.problem_.is_dpp()
+    u, y = _past(rng, model)
+    y = y + ([25.0, -8.0] if centre else 0.0)
+    for fast in (True, False):
+        pa = a.plan(u, y, target=np.array([1.0, 0.5]) + (y[-1] if centre else 0.0), use_fast_path=fast)
+        pb = b.plan(u, y, target=np.array([1.0, 0.5]) + (y[-1] if centre else 0.0), use_fast_path=fast)
+        assert pa.ok and pb.ok
+        np.testing.assert_allclose(pb.inputs, pa.inputs, rtol=0, atol=1e-9)
+        np.testing.assert_allclose(pb.predicted_outputs, pa.predicted_outputs, rtol=0, atol=1e-9)
+        assert pb.cost_terms == pytest.approx(pa.cost_terms, rel=1e-9, abs=1e-12)
+
+
+def test_an_object_without_any_capability_is_refused_with_what_it_lacks(rng):
+    class Forecaster:  # predicts, but declares no linear maps, no blocks, no state-space form
+        has_linear_maps = False
+
+        def predict(self, u_past, y_past, u_future):
+            return np.zeros((len(u_future), 2))
+
+    for obj, missing in ((Forecaster(), "which has no predict_many(), rest_window(), prediction_maps()"),
+                         (object(), "which has no predict(), predict_many()")):
+        with pytest.raises(InvalidParameterError, match=r"controller_for needs a predictor with state_space_model\(\)"
+                           r".*" + re.escape(missing)):
+            controller_for(obj, _limits(), horizon_steps=3)
+        with pytest.raises(InvalidParameterError, match=re.escape(missing)):
+            DataPredictiveController(predictor=obj, limits=_limits()).fit()
+    lsq_like = _Lsq(_model(rng), 3, 4)
+    lsq_like.has_linear_maps = False  # an affine-looking object that says it is not
+    with pytest.raises(InvalidParameterError, match="whose has_linear_maps is False"):
+        controller_for(lsq_like, _limits())
+
+
+@pytest.mark.parametrize("kind", ["model", "data"])
+def test_clone_rebuilds_an_unfitted_controller_that_plans_the_same(rng, kind, deepc_setup):
+    model, session, pred = deepc_setup
+    if kind == "model":
+        ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4, input_weight=0.1,
+                                         terminal_weight="riccati")
+    else:  # clone copies the (unfitted) predictor too, as scikit-learn does for nested estimators
+        ctrl = DataPredictiveController(predictor=pred, limits=_limits(), horizon_steps=4, input_weight=0.1)
+    twin = clone(ctrl)
+    assert type(twin) is type(ctrl) and twin is not ctrl
+    assert twin.get_params(deep=False).keys() == ctrl.get_params(deep=False).keys()
+    assert twin.horizon_steps == 4 and twin.input_weight == 0.1
+    u, y = _past(rng, model)
+    with pytest.raises(NotFittedError, match=f"call {type(ctrl).__name__}.fit"):
+        twin.plan(u, y, target=[0.5, 0.5])
+    a = ctrl.fit(session).plan(u, y, target=[0.5, 0.5])
+    b = twin.fit(session).plan(u, y, target=[0.5, 0.5])
+    np.testing.assert_allclose(b.inputs, a.inputs, rtol=0, atol=1e-12)
+
+
+def test_set_params_after_fit_asks_for_a_new_fit(rng):
+    model = _model(rng)
+    u, y = _past(rng, model)
+    ctrl = ModelPredictiveController(model=model, limits=_limits(), horizon_steps=4).fit()
+    assert ctrl.set_params(horizon_steps=6) is ctrl and ctrl.get_params()["horizon_steps"] == 6
+    with pytest.raises(NotFittedError, match=r"horizon_steps of this ModelPredictiveController changed after it was "
+                                             r"fitted.*call ModelPredictiveController.fit\(...\) again"):
+        ctrl.plan(u, y, target=[0.5, 0.5])
+    with pytest.raises(NotFittedError, match="fit"):
+        ctrl.reset()
+    assert ctrl.fit().plan(u, y, target=[0.5, 0.5]).inputs.shape == (6, 2)
+    with pytest.raises(InvalidParameterError, match="has no setting 'horizon'"):
+        ctrl.set_params(horizon=3)
+
+
+def test_any_state_space_form_is_a_model(rng):
+    # a fitted estimator with state_space_model() plans as its realisation does
+    from stimsteer.sysid import RidgeArx
+
+    model = _model(rng)
+    est = RidgeArx(output_lags=3, input_lags=3, alphas=(1e-8,)).fit(_noise_free_session(rng, model))
+    a = ModelPredictiveController(model=est, limits=_limits(), horizon_steps=5).fit()
+    b = ModelPredictiveController(model=est.state_space_model(), limits=_limits(), horizon_steps=5).fit()
+    assert a.model is est and a.model_.n_states == b.model_.n_states and a.past_steps_ == est.past_steps_
+    u, y = _past(rng, model, T=a.past_steps_)
+    np.testing.assert_array_equal(a.plan(u, y, target=[0.4, 0.1]).inputs, b.plan(u, y, target=[0.4, 0.1]).inputs)
+
+
+def test_the_plan_folder_workflow_lives_in_the_command_layer():
+    # the numerics do not import the file workflow; its old import path still resolves to it
+    import stimsteer.control.mpc as mpc
+    from stimsteer.control.commands import plan as command
+
+    assert mpc.plan_to_folder is command.plan_to_folder and mpc.write_plan is command.write_plan
+    assert mpc.PlanRun is command.PlanRun
+    with pytest.raises(AttributeError, match="no attribute 'plot_plan'"):
+        mpc.plot_plan  # noqa: B018
+
+
+def test_a_predictor_without_a_horizon_needs_one_from_the_controller(rng):
+    model = _model(rng)
+    anyhorizon = _Lsq(model, 3, 6)
+    anyhorizon.max_horizon_steps_ = None  # the protocol's "any horizon"
+    with pytest.raises(InvalidParameterError, match="predicts over any horizon.*give horizon_steps"):
+        DataPredictiveController(predictor=anyhorizon, limits=_limits()).fit()
+    assert DataPredictiveController(predictor=anyhorizon, limits=_limits(), horizon_steps=4).fit().horizon_steps_ == 4

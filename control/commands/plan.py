@@ -1,0 +1,168 @@
+"""The file workflow of ``stimsteer plan``: load a saved predictor and a limits file, plan, write the plan folder.
+
+Numerics live in :mod:`stimsteer.control.mpc`; this module only loads, calls the public API and writes files
+(atomically: a failed run leaves nothing behind). The figure comes from :mod:`stimsteer.control.figures.plan`.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ...sysid import (StateSpaceForm, load_predictor, open_session_source, rest_window,
+                      trial_end_window)
+from ...sysid._files import atomic_dir
+from ...sysid._records import jsonable
+from ..figures.plan import plan_figure
+from ..limits import load_limits
+# the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
+from ..mpc.dispatch import controller_for
+from ..mpc.plan import Plan
+from ..mpc.target import _is_constant_target, parse_target
+
+__all__ = ["PlanRun", "plan_to_folder", "write_plan"]
+
+_MICROAMPERE = {"uA", "µA", "μA", "microampere", "microamperes"}  # spellings of the limits file's unit
+
+
+@dataclass(frozen=True)
+class PlanRun:
+    """What :func:`plan_to_folder` did: the plan, the files written and readable summary lines."""
+
+    plan: Plan
+    files: dict
+    lines: tuple
+
+
+def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
+                   output_weight=1.0, input_weight=1e-3, force=False) -> PlanRun:
+    """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
+
+    Parameters
+    ----------
+    model_path : str or Path
+        A model file of ``stimsteer fit`` (:func:`stimsteer.sysid.storage.load_predictor`).
+    target : str
+        See :func:`stimsteer.control.mpc.parse_target`.
+    limits_path : str or Path
+        A limits file (:func:`stimsteer.control.limits.load_limits`), matched to the model's inputs by name.
+    out_dir : str or Path
+        New or empty folder (or ``force``).
+    horizon_steps : int, optional
+        Default: the target table's rows, else the predictor's horizon.
+    from_trial : (str, int), optional
+        ``(session path, trial index)``: plan from the end of that recorded trial; default from rest.
+    output_weight, input_weight : float
+        Scalar weights; outputs not named in the target get weight 0.
+    force : bool
+        Replace an existing output folder.
+
+    Returns
+    -------
+    PlanRun
+    """
+    predictor, provenance = load_predictor(model_path)
+    limits = load_limits(limits_path)
+    names_in, names_out, units, rate = _channels(predictor, provenance)
+    N = horizon_steps
+    if N is None and _is_constant_target(target):  # a table gives its own length
+        N = getattr(predictor, "max_horizon_steps_", None)
+    tgt, tracked = parse_target(target, names_out, N)
+    N = tgt.shape[0]
+    weight = float(output_weight) * tracked.astype(float)
+    ctrl = controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
+    window_of = predictor if hasattr(predictor, "past_steps_") else ctrl  # a bare model: the controller's window
+    if from_trial is None:
+        u_past, y_past = rest_window(window_of, len(names_in), len(names_out))
+        start = "rest"
+    else:
+        path, index = from_trial
+        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+            u_past, y_past = trial_end_window(session, index, window_of, provenance)
+        start = f"the end of trial {index} of {path}"
+    plan = ctrl.plan(u_past, y_past, target=tgt)
+    extra = {"model_file": str(model_path), "limits_file": str(limits_path), "start": start,
+             "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
+             "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
+             "method": getattr(ctrl, "method_", "model")}
+    files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
+                       force=force)
+    lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
+             f"{type(ctrl).__name__} ({extra['method']}): status {plan.status}, {plan.solver}, "
+             f"{1e3 * plan.solve_time_s:.1f} ms"]
+    return PlanRun(plan=plan, files=files, lines=tuple(lines + _notes(plan, provenance)))
+
+
+def _notes(plan, provenance) -> list:
+    """The summary lines after the first: solver notes, unit caution, cost terms, binding limits, slack."""
+    lines = []
+    if plan.message:
+        lines.append(f"note: {plan.message}")
+    recorded = provenance.get("session", {}).get("input_units") if isinstance(provenance, dict) else None
+    other = sorted({str(u) for u in (recorded or ()) if str(u).strip() not in _MICROAMPERE})
+    if other:
+        lines.append(f"note: the model's inputs were recorded in {', '.join(other)}, while the limits file declares "
+                     "µA; the limits were applied to the recorded numbers as they are. Check that they match.")
+    lines.append("cost: " + ", ".join(f"{k} {v:.4g}" for k, v in plan.cost_terms.items()))
+    lines += [f"active: {s}" for s in plan.active_summary()] or ["active: no limit is binding"]
+    if plan.slack_total > 0:
+        lines.append(f"output bounds exceeded by up to {float(np.max(plan.output_slack)):.4g} (soft bounds)")
+    return lines
+
+
+def _channels(predictor, provenance):
+    """Input and output names, output units and the sample rate of a saved predictor."""
+    s = provenance.get("session", {}) if isinstance(provenance, dict) else {}
+    src = predictor.state_space_model() if isinstance(predictor, StateSpaceForm) else None
+    names_in = tuple(s.get("input_names") or (src.input_names if src else predictor.input_names_))
+    names_out = tuple(s.get("output_names") or (src.output_names if src else predictor.output_names_))
+    units = tuple(s.get("output_units") or ("a.u.",) * len(names_out))
+    rate = float(s.get("sample_rate_hz") or (src.sample_rate_hz if src else
+                                             getattr(predictor, "sample_rate_hz_", 1.0)))
+    return names_in, names_out, units, rate
+
+
+def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
+               force=False) -> dict:
+    """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
+
+    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
+    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` step bounds),
+    ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict --pattern``),
+    ``plan.png`` and ``plan.json`` (status, cost terms, active limits, caution, and ``extra``; JSON-safe values
+    by :func:`stimsteer.sysid._records.jsonable`).
+
+    Returns
+    -------
+    dict of str to Path
+        ``csv``, ``pattern``, ``png``, ``json``.
+    """
+    out_dir = Path(out_dir)
+    p = len(plan.output_names)
+    units = tuple(output_units) if output_units else ("a.u.",) * p
+    tracked = np.ones(p, bool) if tracked is None else np.asarray(tracked, bool)
+    rate = float(sample_rate_hz)
+    t = np.arange(plan.horizon_steps) / rate
+    time_col = f"time [s] @ {rate:.12g} Hz"
+    ins = {f"in:{n} [uA]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
+    table = {time_col: t, **ins}
+    table.update({f"out:{n} [{u}]": plan.predicted_outputs[:, j] for j, (n, u) in enumerate(zip(plan.output_names,
+                                                                                                   units))})
+    if plan.target_kind == "output":
+        table.update({f"target:{n} [{units[j]}]": plan.target[:, j] for j, n in enumerate(plan.output_names)
+                      if tracked[j]})
+    lb, ub = plan.step_bounds
+    table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
+    summary = jsonable({**plan.to_dict(), **(extra or {})})
+    with atomic_dir(out_dir, force=force) as tmp:
+        pd.DataFrame(table).to_csv(tmp / "plan.csv", index=False, float_format="%.10g")
+        pd.DataFrame({time_col: t, **ins}).to_csv(tmp / "plan_pattern.csv", index=False, float_format="%.10g")
+        plan_figure(plan, t, units, tracked).savefig(tmp / "plan.png", dpi=110)
+        (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
+    return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
+                                        ("json", "plan.json"))}

@@ -1,0 +1,415 @@
+"""The machinery every predictive controller shares: settings checks, limits, step bounds, guard, solve, projection
+and packaging of the :class:`~stimsteer.control.mpc.Plan`.
+
+A controller subclass supplies the prediction (``_offsets``, ``_assign``, ``_solve_fast``, ``_aux_value``,
+``_predict_outputs``, ``_cost_terms``, ``_check_target``, ``_target_rows``); :meth:`_PredictiveController.plan`
+does the rest, the same way for every formulation.
+
+Safety. Every returned input sequence respects the hard limits. Before a solve the step bounds are checked (the slew
+window of the first step against the amplitude window, and the energy of the safe sequence); after a solve the
+answer is verified, clipped onto the exact bounds when it exceeds them by solver tolerance only, and re-checked.
+A plan that cannot be solved carries the safe fallback of :meth:`StimLimits.safe_inputs`.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+
+import cvxpy as cp
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+
+from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
+from ..limits import StimLimits
+from .plan import Plan, _ro
+
+__all__: list = []
+
+_ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
+# Clarabel's default tolerances (1e-8) leave plans ~1e-5 apart on flat objectives; tighter ones cost a few
+# iterations and make the plain path a reference for the fast one. solver_options override these.
+_CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
+# An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
+_ACCEPT_RTOL = 1e-5
+
+
+# ---------------------------------------------------------------------------------------------------- settings
+def _sqrt_weight(name, w, dim):
+    """A factor ``L`` with ``LᵀL = W`` for a scalar, per-channel vector or PSD matrix weight."""
+    W = np.asarray(w, dtype=np.float64)
+    if W.ndim == 0:
+        W = np.full(dim, float(W))
+    if not np.all(np.isfinite(W)):
+        raise InvalidParameterError(f"{name} must be finite; got {w!r}.")
+    if W.ndim == 1:
+        if W.shape != (dim,) or np.any(W < 0):
+            raise InvalidParameterError(f"{name} must be a non-negative number, {dim} non-negative values or a "
+                                        f"({dim}, {dim}) PSD matrix; got {W.tolist() if W.size < 20 else W.shape}.")
+        return np.diag(np.sqrt(W))
+    if W.shape != (dim, dim) or not np.allclose(W, W.T, atol=1e-12 * max(1.0, np.abs(W).max())):
+        raise InvalidParameterError(f"{name} as a matrix must be symmetric with shape ({dim}, {dim}); got "
+                                    f"{W.shape}.")
+    ev, V = np.linalg.eigh(0.5 * (W + W.T))
+    if ev.min() < -1e-10 * max(1.0, ev.max()):
+        raise InvalidParameterError(f"{name} must be positive semidefinite; its smallest eigenvalue is "
+                                    f"{ev.min():.3g}.")
+    return np.sqrt(np.clip(ev, 0, None))[:, None] * V.T
+
+
+def _clip_psd(W):
+    """The nearest positive semidefinite matrix to symmetric ``W`` (negative eigenvalues set to zero)."""
+    ev, V = np.linalg.eigh(0.5 * (W + W.T))
+    return (V * np.clip(ev, 0, None)) @ V.T
+
+
+def _horizon(h, max_h):
+    """``h`` as a positive number of steps, at most ``max_h`` (the predictor's horizon) when that is set."""
+    try:
+        N = int(h)
+    except (TypeError, ValueError):
+        raise InvalidParameterError(f"horizon_steps must be a positive integer; got {h!r}.") from None
+    if N != h or N < 1:
+        raise InvalidParameterError(f"horizon_steps must be a positive integer; got {h!r}.")
+    if max_h is not None and N > max_h:
+        raise InvalidParameterError(f"horizon_steps = {N} exceeds the predictor's horizon of {max_h} steps; plan over "
+                                    f"at most {max_h} steps or refit the predictor with a longer horizon.")
+    return N
+
+
+def _output_target(t, N, p):
+    """An output target as (N, p) rows: a constant (p,) repeated, or the first N rows of a trajectory."""
+    if t.ndim == 1:
+        if t.shape != (p,):
+            raise SessionError(f"a constant target must have one value per output ({p}); got shape {t.shape}.")
+        t = np.tile(t, (N, 1))
+    if t.ndim != 2 or t.shape[1] != p or t.shape[0] < N:
+        raise SessionError(f"a target trajectory must have shape (>= {N}, {p}) (horizon, outputs); got {t.shape}.")
+    t = t[:N]
+    if not np.all(np.isfinite(t)):
+        raise SessionError("the target holds NaN or infinite values; give a finite target for every output.")
+    return t
+
+
+# ---------------------------------------------------------------------------------------------------- base
+class _PredictiveController(BaseEstimator):
+    """Shared machinery: limits, step bounds, guards, solve, projection, plan packaging.
+
+    Settings come from the subclass's constructor (``get_params``/``set_params`` from its signature, see
+    :class:`~stimsteer.sysid.BaseEstimator`); ``fit`` sets ``problem_`` last, and every fitted attribute ends in ``_``.
+    """
+
+    # ------------------------------------------------------------------------------------ construction
+    def _setup_common(self, input_names, output_names, N):
+        if not isinstance(self.limits, StimLimits):
+            raise InvalidParameterError(f"limits must be a StimLimits (see stimsteer.control.limits); got "
+                                        f"{type(self.limits).__name__}.")
+        self.limits_ = self.limits.aligned(input_names, output_names)
+        self.input_names_, self.output_names_ = tuple(input_names), tuple(output_names)
+        self.n_inputs_, self.n_outputs_ = len(input_names), len(output_names)
+        self.horizon_steps_ = N
+        m, p = self.n_inputs_, self.n_outputs_
+        self._lo, self._hi = self.limits_.input_bounds()
+        lo_src, hi_src = self.limits_.bound_sources()
+        self._charge_sides = (np.array([s == "charge_density" for s in lo_src]),
+                              np.array([s == "charge_density" for s in hi_src]))
+        self._slew = self.limits_.slew_max_ua
+        self._energy = self.limits_.energy_budget_ua2
+        self._scale = max(1.0, float(np.max(np.abs(np.concatenate([self._lo, self._hi])))))
+        self._Ru = sla.block_diag(*[_sqrt_weight("input_weight", self.input_weight, m)] * N)
+        try:
+            penalty = float(self.output_penalty)
+        except (TypeError, ValueError):
+            penalty = np.nan
+        if not np.isfinite(penalty) or penalty <= 0:
+            raise InvalidParameterError(f"output_penalty must be positive and finite; got "
+                                        f"{self.output_penalty!r}.")
+        # The fast path's slack variable is t = κ·s with κ = sqrt(ρ) and cost (ρ/κ)·t: both the multiplier of
+        # t >= 0 and t itself stay moderate, which ADMM reaches in far fewer iterations than with s itself.
+        self._kappa = float(np.sqrt(penalty))
+        ymin, ymax = self.limits_.output_min, self.limits_.output_max
+        if ymin is None:
+            ymin, ymax = np.full(p, -np.inf), np.full(p, np.inf)
+        self._ymin, self._ymax = np.tile(ymin, N), np.tile(ymax, N)
+        self._idx_hi = np.flatnonzero(np.isfinite(self._ymax))
+        self._idx_lo = np.flatnonzero(np.isfinite(self._ymin))
+        self._idx_b = np.union1d(self._idx_hi, self._idx_lo)
+        nb = self._idx_b.size
+        pos = {int(i): j for j, i in enumerate(self._idx_b)}
+        self._S_hi = sp.csr_matrix((np.ones(self._idx_hi.size), ([*range(self._idx_hi.size)],
+                                    [pos[int(i)] for i in self._idx_hi])), shape=(self._idx_hi.size, nb))
+        self._S_lo = sp.csr_matrix((np.ones(self._idx_lo.size), ([*range(self._idx_lo.size)],
+                                    [pos[int(i)] for i in self._idx_lo])), shape=(self._idx_lo.size, nb))
+        self._slew_rows = self._slew_matrix(N, m)
+
+    def _slew_matrix(self, N, m):
+        """Rows ``u_{k,i} − u_{k−1,i}`` (k >= 1) for the inputs with a finite slew limit, and their limits."""
+        if self._slew is None or N < 2:
+            return None
+        rows, cols, vals, lim = [], [], [], []
+        r = 0
+        for k in range(1, N):
+            for i in range(m):
+                if np.isfinite(self._slew[i]):
+                    rows += [r, r]
+                    cols += [k * m + i, (k - 1) * m + i]
+                    vals += [1.0, -1.0]
+                    lim.append(self._slew[i])
+                    r += 1
+        if r == 0:
+            return None
+        return sp.csr_matrix((vals, (rows, cols)), shape=(r, N * m)), np.array(lim)
+
+    def _common_constraints(self, u, y_expr, yhi, ylo):
+        """Hard input limits and soft output bounds in cvxpy; returns (constraints, slack variable or None).
+
+        ``y_expr(idx)`` is the predicted-output expression at the stacked indices ``idx``; ``yhi``/``ylo`` the
+        right-hand sides of the upper and lower output rows (Parameters or constants).
+        """
+        N, m = self.horizon_steps_, self.n_inputs_
+        self._lb = cp.Parameter(N * m, name="step_lower_ua")
+        self._ub = cp.Parameter(N * m, name="step_upper_ua")
+        cons = [u >= self._lb, u <= self._ub]
+        if self._slew_rows is not None:
+            Dm, lim = self._slew_rows
+            cons += [Dm @ u <= lim, Dm @ u >= -lim]
+        if self._energy is not None:
+            cons.append(cp.norm(u, 2) <= np.sqrt(self._energy))
+        slack = None
+        if self._idx_b.size:
+            slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
+            if self._idx_hi.size:
+                cons.append(y_expr(self._idx_hi) - self._S_hi @ slack <= yhi)
+            if self._idx_lo.size:
+                cons.append(y_expr(self._idx_lo) + self._S_lo @ slack >= ylo)
+        return cons, slack
+
+    def _box_rows(self, u_sel):
+        """OSQP rows for the hard input limits given the linear map ``u = u_sel @ z``."""
+        blocks = [u_sel]
+        if self._slew_rows is not None:
+            blocks.append(self._slew_rows[0] @ u_sel)
+        return blocks
+
+    def reset(self):
+        """Forget the fast path's warm start, so that a run repeated from the same state gives the same numbers.
+
+        Plans are optimal either way; warm starting only changes them within solver tolerance.
+        """
+        check_fitted(self, "problem_")
+        if self._fast is not None:
+            self._fast.reset()
+        return self
+
+    # ------------------------------------------------------------------------------------ planning
+    def _check_past(self, u_past, y_past):
+        m, p, T = self.n_inputs_, self.n_outputs_, self.past_steps_
+        u_past = np.asarray(u_past, dtype=np.float64)
+        y_past = np.asarray(y_past, dtype=np.float64)
+        for name, a, c in (("u_past", u_past, m), ("y_past", y_past, p)):
+            if a.ndim != 2 or a.shape[1] != c:
+                raise SessionError(f"{name} must have shape (n_past, {c}); got {a.shape}.")
+            if a.shape[0] < T:
+                raise SessionError(f"{name} needs at least {T} samples (the controller's past window); got "
+                                   f"{a.shape[0]}. Record or simulate a longer past before planning.")
+            if not np.all(np.isfinite(a[-T:])):
+                raise SessionError(f"{name} holds NaN or infinite values in its last {T} samples; plan from a "
+                                   "clean stretch of data.")
+        return u_past[-T:], y_past[-T:]
+
+    def _check_last(self, last_input, u_past):
+        if last_input is None:
+            return u_past[-1].copy()
+        last = np.asarray(last_input, dtype=np.float64).reshape(-1)
+        if last.shape != (self.n_inputs_,) or not np.all(np.isfinite(last)):
+            raise SessionError(f"last_input must be {self.n_inputs_} finite values (µA); got {last_input!r}.")
+        return last
+
+    def _step_bounds(self, last):
+        N = self.horizon_steps_
+        lb, ub = np.tile(self._lo, (N, 1)), np.tile(self._hi, (N, 1))
+        if self._slew is not None:
+            lb[0] = np.maximum(lb[0], last - self._slew)
+            ub[0] = np.minimum(ub[0], last + self._slew)
+        return lb, ub
+
+    def _guard(self, lb, ub, last, fallback):
+        """Reason why no input sequence can meet the limits from ``last``, or '' when one can."""
+        bad = np.flatnonzero(lb[0] > ub[0])
+        if bad.size:
+            i = int(bad[0])
+            return (f"the slew window of input {self.input_names_[i]!r} around the last applied input "
+                    f"{last[i]:g} µA does not meet its amplitude window [{self._lo[i]:g}, {self._hi[i]:g}] µA; "
+                    "the amplitude bound takes precedence and the slew limit is broken at step 0")
+        if self._energy is not None and np.sum(fallback**2) > self._energy:
+            return (f"even the least-energy sequence allowed by the slew limit uses {np.sum(fallback**2):.4g} µA² "
+                    f"> the energy budget {self._energy:g} µA²; raise the budget or the slew limit")
+        return ""
+
+    def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None) -> Plan:
+        """Plan the stimulation over the horizon from the measured past.
+
+        Parameters
+        ----------
+        u_past : ndarray, shape (n_past, n_inputs)
+            Applied inputs, µA, ending just before the plan; the last ``past_steps_`` samples are used.
+        y_past : ndarray, shape (n_past, n_outputs)
+            Measured outputs at the same samples.
+        target : ndarray
+            Output kind: shape (horizon_steps, n_outputs) (a trajectory; longer ones are cut) or (n_outputs,)
+            (constant). State kind: shape (n_states,).
+        last_input : ndarray, shape (n_inputs,), optional
+            The input applied just before the plan (for the slew limit); default ``u_past[-1]``.
+        use_fast_path : bool, optional
+            Solve with the reusable OSQP problem (True) or the cvxpy problem (False); default the controller's
+            ``fast_path`` setting. The fast path is used only where it exists (see :mod:`stimsteer.control.mpc`); when
+            OSQP fails (e.g. its iteration limit on a badly scaled penalty), the cvxpy problem is solved instead
+            and ``Plan.solver`` names both.
+
+        Returns
+        -------
+        Plan
+            Never raises for an infeasible or failed solve: the plan reports it and carries the safe fallback.
+
+        Raises
+        ------
+        NotFittedError
+            Before :meth:`fit`.
+        SessionError
+            On malformed past windows, target or last input.
+        """
+        check_fitted(self, "problem_")
+        u_past, y_past = self._check_past(u_past, y_past)
+        last = self._check_last(last_input, u_past)
+        target = self._check_target(target)
+        lb, ub = self._step_bounds(last)
+        t0 = time.perf_counter()
+        # the safe fallback is needed up front only with an energy budget (guard, projection blend)
+        fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._energy is not None else None
+        reason = self._guard(lb, ub, last, fallback)
+        fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
+        fast = fast and self._fast is not None
+        solver = "OSQP (reused)" if fast else ""
+        aux, u, status = None, None, "infeasible"
+        if not reason:
+            offsets = self._offsets(u_past, y_past, target)
+            if fast:
+                u, aux, status, reason = self._solve_fast(offsets, lb, ub)
+                if u is not None and self._energy is not None and np.sum(u**2) > self._energy * (1 - 1e-9):
+                    # the budget binds: the budget-free QP's answer is not the optimum; solve the cone program
+                    u, aux, status, reason = None, None, "budget", "energy budget binding"
+            if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
+                first = reason
+                u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
+                if fast and not first.startswith("energy budget"):
+                    note = "solved with the cvxpy problem instead" if u is not None else reason
+                    reason = f"fast path: {first}; {note}"
+                solver = (f"{solver} -> " if fast else "") + f"{self._cvx_solver()} (cvxpy)"
+            if u is not None:
+                u, why = self._project(u.reshape(lb.shape), lb, ub, last, fallback)
+                if u is None:
+                    status, reason = "failed", why
+        elapsed = time.perf_counter() - t0
+        is_fallback = u is None
+        if is_fallback:
+            u, aux = self.limits_.safe_inputs(self.horizon_steps_, last), None
+        return self._package(u, aux, u_past, y_past, target, last, lb, ub, solver, status, reason, is_fallback,
+                             elapsed)
+
+    def _cvx_solver(self):
+        return str(self.solver).upper()
+
+    def _solve_cvxpy(self, offsets, lb, ub):
+        self._assign(offsets)
+        self._lb.value, self._ub.value = lb.reshape(-1), ub.reshape(-1)
+        opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
+        opts.update(self.solver_options or {})
+        try:
+            with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
+                warnings.simplefilter("ignore", UserWarning)
+                # the compiled problem is reused (DPP cache) either way; no solver warm start, so that the same
+                # data give the same plan whatever was solved before
+                self.problem_.solve(solver=self._cvx_solver(), warm_start=False, **opts)
+        except (cp.error.SolverError, ArithmeticError, ValueError) as exc:
+            return None, None, "failed", f"{self._cvx_solver()} failed: {exc}"
+        status = self.problem_.status
+        if status not in _ACCEPT or self._u.value is None:
+            kind = "infeasible" if status in (cp.INFEASIBLE, cp.INFEASIBLE_INACCURATE) else "failed"
+            return None, None, kind, f"{self._cvx_solver()} returned status '{status}'"
+        return np.array(self._u.value), self._aux_value(), _ACCEPT[status], ""
+
+    def _project(self, u, lb, ub, last, fallback):
+        """Verify a solver answer against the hard limits; clip tolerance-level excess onto the exact bounds."""
+        tol = _ACCEPT_RTOL * self._scale
+        excess = max(float(np.max(lb - u)), float(np.max(u - ub)), 0.0)
+        if self._slew is not None:
+            d = np.abs(np.diff(np.vstack([last, u]), axis=0)) - self._slew
+            excess = max(excess, float(np.max(d[:, np.isfinite(self._slew)], initial=0.0)))
+        if self._energy is not None:
+            excess = max(excess, float(np.sum(u**2) - self._energy) / max(self._scale, 1.0))
+        if not np.all(np.isfinite(u)) or excess > tol:
+            return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
+        u = np.clip(u, lb, ub)
+        if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
+            prev = u[0]
+            for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
+                u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
+                prev = u[k]
+        if self._energy is not None and np.sum(u**2) > self._energy:
+            u = _blend_into_budget(u, fallback, self._energy)
+        bad = {k: v for k, v in self.limits_.violations(u, last).items() if v}
+        if bad:  # cannot happen after the clip above; never return such a plan
+            return None, f"internal check failed after projection: {bad}"
+        return u, ""
+
+    def _package(self, u, aux, u_past, y_past, target, last, lb, ub, solver, status, reason, is_fallback, elapsed):
+        y = self._predict_outputs(u, aux, u_past, y_past)
+        slack = np.maximum(0.0, np.maximum(y.reshape(-1) - self._ymax, self._ymin - y.reshape(-1)))
+        terms = self._cost_terms(u, aux, y, u_past, y_past, target)
+        terms["output_penalty"] = float(self.output_penalty) * float(np.sum(slack))
+        terms["total"] = float(sum(terms.values()))
+        if status in _ACCEPT.values() and is_fallback:
+            status = "failed"
+        return Plan(
+            inputs=_ro(u), predicted_outputs=_ro(y), target=_ro(self._target_rows(target)),
+            target_kind=self.target_kind_, cost_terms=terms,
+            active_limits=self._active(u, y, last, lb, ub), output_slack=_ro(slack.reshape(y.shape)),
+            step_bounds=(_ro(lb), _ro(ub)), last_input=_ro(last), solver=solver, status=status,
+            message=(f"{reason}; returning the safe fallback (towards zero stimulation within the slew limit)"
+                     if is_fallback else reason), fallback=is_fallback, solve_time_s=float(elapsed),
+            input_names=self.input_names_, output_names=self.output_names_,
+            output_bounds=None if self.limits_.output_min is None else (_ro(self.limits_.output_min),
+                                                                       _ro(self.limits_.output_max)),
+        )
+
+    def _active(self, u, y, last, lb, ub):
+        tol = 1e-6 * self._scale
+        at_lo = (u <= self._lo + tol) & (self._lo < 0)
+        at_hi = (u >= self._hi - tol) & (self._hi > 0)
+        charge_lo, charge_hi = self._charge_sides
+        act = {"amplitude_min": at_lo & ~charge_lo, "amplitude_max": at_hi & ~charge_hi,
+               "charge_density": (at_lo & charge_lo) | (at_hi & charge_hi)}
+        if self._slew is not None:
+            d = np.abs(np.diff(np.vstack([last, u]), axis=0))
+            act["slew"] = np.isfinite(self._slew) & (d >= self._slew - tol)
+        else:
+            act["slew"] = np.zeros_like(u, dtype=bool)
+        act["energy_budget"] = bool(self._energy is not None and np.sum(u**2) >= self._energy * (1 - 1e-6))
+        yv = y.reshape(-1)
+        ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
+        act["output_bounds"] = ((yv >= self._ymax - ytol) | (yv <= self._ymin + ytol)).reshape(y.shape)
+        return act
+
+
+def _blend_into_budget(u, safe, budget):
+    """``α u + (1 − α) safe`` with the largest α in [0, 1] inside the energy budget (both meet box and slew)."""
+    target = budget * (1.0 - 1e-10)
+    d = (u - safe).reshape(-1)
+    r = safe.reshape(-1)
+    a, b, c = d @ d, 2.0 * r @ d, r @ r - target
+    if a <= 0:
+        return safe.copy()
+    alpha = (-b + np.sqrt(max(b * b - 4 * a * c, 0.0))) / (2 * a)
+    alpha = float(np.clip(alpha, 0.0, 1.0))
+    return alpha * u + (1.0 - alpha) * safe

@@ -1,0 +1,168 @@
+"""The condensed formulation: prediction maps in, QP data out.
+
+Every controller whose prediction is affine in the future inputs, ``ŷ = Gy u + f(past)``, tracks a signal
+``z = Gz u + fz(past)`` and builds the same problem from those maps::
+
+    minimise  ‖Lz (Gz u + fz − r)‖² + ‖Ru u‖² [+ ‖Lp (T u + t)‖²] + ρ Σ s   (hard input limits, soft output bounds)
+
+The state-space maps ``Gy, Phi_y, Gx, Phi_x`` of a model come from :func:`condensed_prediction`; a linear
+predictor's maps ``P, F, c`` (:meth:`~stimsteer.sysid.LinearPredictor.prediction_maps`) give ``Gy = F`` and
+``f = P past + c``. :class:`_CondensedCore` turns them into the cvxpy problem (built once, DPP) and the reusable
+OSQP problem of the fast path.
+"""
+
+from __future__ import annotations
+
+import cvxpy as cp
+import numpy as np
+import scipy.sparse as sp
+
+from ._core import _PredictiveController
+from .fastqp import _FastQP
+
+__all__ = ["condensed_prediction"]
+
+
+def condensed_prediction(model, horizon_steps: int):
+    """Stacked prediction matrices of a state-space model over a horizon.
+
+    Parameters
+    ----------
+    model : StateSpaceModel
+        Its matrices ``A``, ``B``, ``C``, ``D`` are used.
+    horizon_steps : int
+        ``N``.
+
+    Returns
+    -------
+    Gy : ndarray, shape (N·p, N·m)
+        ``vec(ŷ_0..ŷ_{N−1}) = Gy vec(u) + Phi_y x_0`` (time-major stacking).
+    Phi_y : ndarray, shape (N·p, n)
+    Gx : ndarray, shape (N·n, N·m)
+        ``vec(x_1..x_N) = Gx vec(u) + Phi_x x_0``.
+    Phi_x : ndarray, shape (N·n, n)
+
+    Notes
+    -----
+    Blocks: ``Gy[k, j] = C A^(k−1−j) B`` for ``j < k`` and ``D`` for ``j = k``; ``Gx[k, j] = A^(k−j) B`` for
+    ``j <= k``; ``Phi_y[k] = C A^k``; ``Phi_x[k] = A^(k+1)``.
+    """
+    A, B, C, D = model.A, model.B, model.C, model.D
+    n, m, p, N = model.n_states, model.n_inputs, model.n_outputs, int(horizon_steps)
+    AB = [B]
+    for _ in range(1, N):
+        AB.append(A @ AB[-1])
+    Gx = np.zeros((N * n, N * m))
+    Gy = np.zeros((N * p, N * m))
+    Phi_x = np.empty((N * n, n))
+    Phi_y = np.empty((N * p, n))
+    Ak = np.eye(n)
+    for k in range(N):
+        Phi_y[k * p:(k + 1) * p] = C @ Ak
+        Ak = A @ Ak
+        Phi_x[k * n:(k + 1) * n] = Ak
+        Gy[k * p:(k + 1) * p, k * m:(k + 1) * m] = D
+        for j in range(k + 1):
+            Gx[k * n:(k + 1) * n, j * m:(j + 1) * m] = AB[k - j]
+            if j < k:
+                Gy[k * p:(k + 1) * p, j * m:(j + 1) * m] = C @ AB[k - 1 - j]
+    return Gy, Phi_y, Gx, Phi_x
+
+
+# ---------------------------------------------------------------------------------------------------- condensed core
+class _CondensedCore(_PredictiveController):
+    """Controllers whose prediction is ``ŷ = Gy u + f(past)`` and tracked signal ``z = Gz u + fz(past)``."""
+
+    def _build_condensed(self, Gy, Gz, Lz, T=None, Lp=None):
+        """cvxpy problem and fast QP for ``min ‖Lz(Gz u + ez)‖² + ‖Ru u‖² + ‖Lp(T u + t)‖² + ρ Σ s``."""
+        N, m = self.horizon_steps_, self.n_inputs_
+        self._Gy, self._LG = Gy, Lz @ Gz
+        self._LpT = None if T is None else Lp @ T
+        self._u = u = cp.Variable(N * m, name="inputs_ua")
+        self._ew = cp.Parameter(self._LG.shape[0], name="tracking_offset")
+        cost = cp.sum_squares(self._LG @ u + self._ew) + cp.sum_squares(self._Ru @ u)
+        if self._LpT is not None:
+            self._tw = cp.Parameter(self._LpT.shape[0], name="terminal_offset")
+            cost = cost + cp.sum_squares(self._LpT @ u + self._tw)
+        self._yhi_param = cp.Parameter(self._idx_hi.size, name="output_upper_offset") if self._idx_hi.size else None
+        self._ylo_param = cp.Parameter(self._idx_lo.size, name="output_lower_offset") if self._idx_lo.size else None
+        cons, self._slack_var = self._common_constraints(u, lambda idx: Gy[idx] @ u, self._yhi_param,
+                                                         self._ylo_param)
+        if self._slack_var is not None:
+            cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
+        self.problem_ = cp.Problem(cp.Minimize(cost), cons)
+        self._fast_tpl = None
+        # with an energy budget the fast QP leaves the budget out; plan() keeps its answer only where the budget
+        # is not binding (then it is also the optimum with the budget: the problem is convex)
+        self._fast = self._fast_condensed()
+
+    def _fast_condensed(self):
+        Nm, nb = self._LG.shape[1], self._idx_b.size
+        H = self._LG.T @ self._LG + self._Ru.T @ self._Ru
+        if self._LpT is not None:
+            H = H + self._LpT.T @ self._LpT
+        P = sp.block_diag([sp.csc_matrix(2.0 * H), sp.csc_matrix((nb, nb))], format="csc")
+        sel = sp.hstack([sp.eye(Nm), sp.csr_matrix((Nm, nb))])
+        rows = self._box_rows(sel)
+        if self._idx_hi.size:
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_hi]), -self._S_hi / self._kappa]))
+        if self._idx_lo.size:
+            rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._kappa]))
+        if nb:
+            rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
+        return _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
+
+    def _fast_vectors(self):
+        """Templates of q, l, u for the condensed fast path: the parts that never change are filled in once."""
+        Nm, nb = self._LG.shape[1], self._idx_b.size
+        q = np.concatenate([np.zeros(Nm), np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s
+        lo, hi = [np.zeros(Nm)], [np.zeros(Nm)]
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        n_hi, n_lo = self._idx_hi.size, self._idx_lo.size
+        lo += [np.full(n_hi, -np.inf), np.zeros(n_lo), np.zeros(nb)]
+        hi += [np.zeros(n_hi), np.full(n_lo, np.inf), np.full(nb, np.inf)]
+        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        s_hi = Nm + (0 if self._slew_rows is None else self._slew_rows[1].size)
+        self._fast_tpl = (q, lo, hi, s_hi, s_hi + n_hi, 2.0 * self._LG.T,
+                          None if self._LpT is None else 2.0 * self._LpT.T)
+
+    def _solve_fast(self, offsets, lb, ub):
+        ew, tw, fy = offsets
+        if self._fast_tpl is None:
+            self._fast_vectors()
+        q, lo, hi, s_hi, s_lo, Mq, Mt = self._fast_tpl
+        Nm, n_hi, n_lo = self._LG.shape[1], self._idx_hi.size, self._idx_lo.size
+        q, lo, hi = q.copy(), lo.copy(), hi.copy()
+        q[:Nm] = Mq @ ew if Mt is None else Mq @ ew + Mt @ tw
+        lo[:Nm], hi[:Nm] = lb.reshape(-1), ub.reshape(-1)
+        if n_hi:
+            hi[s_hi:s_hi + n_hi] = self._ymax[self._idx_hi] - fy[self._idx_hi]
+        if n_lo:
+            lo[s_lo:s_lo + n_lo] = self._ymin[self._idx_lo] - fy[self._idx_lo]
+        z, status, reason = self._fast.solve(q, lo, hi)
+        if z is None:
+            return None, None, status, reason
+        return z[:Nm], None, status, ""
+
+    def _assign(self, offsets):
+        ew, tw, fy = offsets
+        self._ew.value = ew
+        if self._LpT is not None:
+            self._tw.value = tw
+        if self._yhi_param is not None:
+            self._yhi_param.value = self._ymax[self._idx_hi] - fy[self._idx_hi]
+        if self._ylo_param is not None:
+            self._ylo_param.value = self._ymin[self._idx_lo] - fy[self._idx_lo]
+
+    def _aux_value(self):
+        return None
+
+    def _condensed_terms(self, u, ew, tw):
+        v = u.reshape(-1)
+        terms = {"tracking": float(np.sum((self._LG @ v + ew) ** 2)),
+                 "input_energy": float(np.sum((self._Ru @ v) ** 2))}
+        if self._LpT is not None:
+            terms["terminal"] = float(np.sum((self._LpT @ v + tw) ** 2))
+        return terms

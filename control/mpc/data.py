@@ -1,0 +1,418 @@
+"""The data predictive controller: planning straight from a data predictor of the direct route.
+
+Two formulations, chosen from what the predictor declares (:mod:`stimsteer.sysid.protocols`), never from its class:
+
+* DeePC (the :class:`~stimsteer.sysid.DataBlocksForm` capability, ``data_blocks()``): ``ŷ = Yf g`` with
+  ``Up g = u_past``, ``Uf g = u`` and the route terms ``λ_y ‖Yp g − y_past‖² + λ_g R(g)`` (the slack on past
+  outputs and the predictor's regulariser and strengths), on the predictor's (compressed) blocks.
+* linear maps (a :class:`~stimsteer.sysid.LinearPredictor` with ``has_linear_maps``): ``ŷ = P past + F u + c`` from
+  ``prediction_maps(past_steps_, N)``, the condensed problem of :mod:`~stimsteer.control.mpc.condensed`; for the
+  least-squares predictor this is subspace predictive control (SPC).
+
+References
+----------
+Coulson J., Lygeros J., Dörfler F. (2019), Data-Enabled Predictive Control: In the Shallows of the DeePC, ECC.
+Favoreel W., De Moor B., Van Overschee P. (1999), SPC: Subspace Predictive Control, IFAC World Congress.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace as _replace
+
+import cvxpy as cp
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+from sklearn.base import clone
+
+from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, NotFittedError, check_fitted
+from ...sysid.protocols import past_vector
+from ._core import _horizon, _output_target, _sqrt_weight
+from .condensed import _CondensedCore
+from .fastqp import _FastQP
+from .plan import Plan, _ro
+
+__all__ = ["DataPredictiveController"]
+
+
+class DataPredictiveController(_CondensedCore):
+    """Predictive control of stimulation straight from data (the direct route): DeePC or linear maps (SPC).
+
+    Parameters
+    ----------
+    predictor : DataBlocksForm or LinearPredictor
+        Fitted (or fitted here, on a copy, on the session given to :meth:`fit`). A predictor with
+        ``data_blocks()`` (the Hankel predictor) gives DeePC on its (compressed) blocks with its regulariser and
+        strengths; otherwise a predictor with linear prediction maps (``prediction_maps()``, ``has_linear_maps``;
+        the least-squares predictor) gives the condensed problem on ``y = P past + F u + c`` (SPC).
+    limits : StimLimits
+    horizon_steps : int, optional
+        ``N``; default the predictor's horizon. At most the predictor's horizon: the first blocks are used and,
+        as in the predictor's ``predict``, the later future inputs are held at zero.
+    past_slack_weight : float, optional
+        DeePC only: ``λ_y`` of the slack on past outputs; default the predictor's ``lambda_y``; ``inf`` keeps the
+        past outputs as hard equalities (for noise-free data).
+    output_weight, input_weight, output_penalty, solver, fast_path, solver_options
+        As in :class:`ModelPredictiveController`.
+
+    Attributes
+    ----------
+    problem_ : cvxpy.Problem
+    predictor_ : the fitted predictor used
+    method_ : str
+        ``"deepc"`` or ``"spc"`` (the linear-map formulation).
+    target_kind_ : str
+        Always ``"output"``.
+    limits_, past_steps_, horizon_steps_, n_inputs_, n_outputs_, input_names_, output_names_
+
+    Notes
+    -----
+    DeePC (Coulson, Lygeros, Dörfler 2019) with the predictor's strengths::
+
+        min_{g,u}  ‖Yf g − r‖²_Q + ‖u‖²_R + λ_y ‖Yp g − y_past‖² + λ_g R(g) + ρ Σ s
+        s.t.       Up g = u_past,  Uf g = u,  input limits,  soft output bounds on Yf g
+
+    with ``R(g) = ‖M g‖²`` (projection), ``‖g‖²`` (l2) or ``‖g‖₁`` (l1). With ``past_slack_weight=inf`` the
+    past outputs are hard equalities (no slack). The linear-map formulation (SPC, Favoreel et al. 1999) replaces
+    the prediction with ``P [u_past; y_past] + F u + c``.
+    """
+
+    def __init__(self, *, predictor, limits, horizon_steps=None, output_weight=1.0, input_weight=1e-3,
+                 past_slack_weight=None, output_penalty=1e4, solver="CLARABEL", fast_path=True,
+                 solver_options=None):
+        self.predictor = predictor
+        self.past_slack_weight = past_slack_weight
+        self.limits = limits
+        self.horizon_steps = horizon_steps
+        self.output_weight = output_weight
+        self.input_weight = input_weight
+        self.output_penalty = output_penalty
+        self.solver = solver
+        self.fast_path = fast_path
+        self.solver_options = solver_options
+
+    def fit(self, session=None):
+        """Fit the predictor when needed (on a copy) and build the control problem once.
+
+        Parameters
+        ----------
+        session : Session, optional
+            Used only when ``predictor`` is not fitted yet: ``sklearn.base.clone(predictor)`` is fitted on the
+            session (the given object is not modified).
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        NotFittedError
+            If the predictor is not fitted and no session is given.
+        InvalidParameterError
+            If the predictor has neither data blocks nor linear prediction maps, or on bad settings.
+        """
+        method = _formulation(self.predictor)
+        pred = self._fitted_predictor(session)
+        self.problem_ = None
+        self.predictor_, self.method_, self.target_kind_ = pred, method, "output"
+        max_h = pred.max_horizon_steps_
+        if self.horizon_steps is None and max_h is None:
+            raise InvalidParameterError(f"the {type(pred).__name__} predicts over any horizon, so it gives the "
+                                        "controller none; give horizon_steps.")
+        N = _horizon(max_h if self.horizon_steps is None else self.horizon_steps, max_h)
+        m, p = int(pred.n_inputs_), int(pred.n_outputs_)
+        self._setup_common(tuple(pred.input_names_), tuple(pred.output_names_), N)
+        self.past_steps_ = int(pred.past_steps_)
+        Lq = _sqrt_weight("output_weight", self.output_weight, p)
+        self._Lz = sla.block_diag(*[Lq] * N)
+        self._y_off = None
+        if method == "spc":
+            maps = pred.prediction_maps(self.past_steps_, N)
+            self._P, self._c = np.asarray(maps.P, np.float64), np.asarray(maps.c, np.float64)
+            F = np.asarray(maps.F, np.float64)
+            self._build_condensed(F, F, self._Lz)
+        else:
+            self._build_deepc(pred.data_blocks(), N, m, p)
+        return self
+
+    def _fitted_predictor(self, session):
+        """The predictor if it is fitted, else a clone of it fitted on ``session``."""
+        pred = self.predictor
+        try:
+            check_fitted(pred, "past_steps_")
+        except NotFittedError:
+            if session is None:
+                raise NotFittedError(f"the {type(pred).__name__} is not fitted (or its settings changed after it was);"
+                                     " fit it first or pass a session to DataPredictiveController.fit(session)."
+                                     ) from None
+            return clone(pred).fit(session)
+        return pred
+
+    def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None) -> Plan:
+        """As :meth:`ModelPredictiveController.plan`; outputs, targets and bounds in the recorded units.
+
+        For DeePC on blocks built with ``centre_outputs`` the plan is made in the blocks' centred coordinates (past
+        outputs and target less their output offset, output bounds shifted at fit) and reported back in recorded
+        units. Linear maps carry their offset in ``c`` and plan in recorded units directly.
+        """
+        check_fitted(self, "problem_")
+        off = self._y_off
+        if off is None:
+            return super().plan(u_past, y_past, target=target, last_input=last_input, use_fast_path=use_fast_path)
+        u_c, y_c = self._check_past(u_past, y_past)
+        tgt = self._check_target(target)
+        plan = super().plan(u_c, y_c - off, target=tgt - off, last_input=last_input, use_fast_path=use_fast_path)
+        return _replace(plan, predicted_outputs=_ro(plan.predicted_outputs + off), target=_ro(plan.target + off))
+
+    # ------------------------------------------------------------------------------------ DeePC
+    def _build_deepc(self, b, N, m, p):
+        off = np.asarray(b.output_offset, np.float64).reshape(-1)
+        if off.shape == (p,) and np.any(off):  # centred blocks: plans are made in their coordinates (see plan)
+            self._y_off = off
+            self._ymin, self._ymax = self._ymin - np.tile(off, N), self._ymax - np.tile(off, N)
+        self._Up, self._Yp = np.asarray(b.Up, np.float64), np.asarray(b.Yp, np.float64)
+        Uf = np.asarray(b.Uf, np.float64)
+        self._Uf, self._Yf = Uf[:m * N], np.asarray(b.Yf, np.float64)[:p * N]
+        # a plan shorter than the predictor's horizon sets the later future inputs to zero, as predict() does
+        self._E = np.vstack([self._Up, Uf[m * N:]])
+        self._Gy = None
+        r = self._Up.shape[1]
+        self._lam_y = self._past_weight(b.lambda_y)
+        self._reg = str(b.regularizer)
+        self._lam_g = float(b.lambda_g)
+        M = b.reg_matrix
+        self._M = None if self._reg == "l1" else (np.eye(r) if M is None else np.asarray(M, np.float64))
+        g = self._g = cp.Variable(r, name="hankel_weights")
+        u = self._u = cp.Variable(N * m, name="inputs_ua")
+        self._up = cp.Parameter(self._E.shape[0], name="past_inputs_and_zero_tail")
+        self._yp = cp.Parameter(self._Yp.shape[0], name="past_outputs")
+        self._rw = cp.Parameter(p * N, name="weighted_target")
+        cost = cp.sum_squares((self._Lz @ self._Yf) @ g - self._rw) + cp.sum_squares(self._Ru @ u)
+        cons = [self._E @ g == self._up, self._Uf @ g == u]
+        if self._lam_y is None:
+            cons.append(self._Yp @ g == self._yp)
+        else:
+            cost = cost + self._lam_y * cp.sum_squares(self._Yp @ g - self._yp)
+        if self._lam_g > 0:
+            cost = cost + self._lam_g * (cp.norm1(g) if self._reg == "l1" else cp.sum_squares(self._M @ g))
+        more, self._slack_var = self._common_constraints(u, lambda idx: self._Yf[idx] @ g,
+                                                         self._ymax[self._idx_hi], self._ymin[self._idx_lo])
+        if self._slack_var is not None:
+            cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
+        self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
+        quadratic = self._reg != "l1" or self._lam_g == 0
+        self._elim, self._fast = None, None
+        if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
+            if self._idx_b.size == 0:
+                self._fast = self._fast_deepc_eliminated(N, m)
+            if self._fast is None:
+                self._fast = self._fast_deepc(N, m)
+
+    def _past_weight(self, lambda_y):
+        """``λ_y`` of the past-output slack (None for hard equality): the setting, else the predictor's."""
+        w = lambda_y if self.past_slack_weight is None else self.past_slack_weight
+        try:
+            w = float(w)
+        except (TypeError, ValueError):
+            w = np.nan
+        if np.isnan(w) or w <= 0:
+            raise InvalidParameterError(f"past_slack_weight must be > 0 (inf for hard past-output equality) or None "
+                                        f"for the predictor's lambda_y; got {self.past_slack_weight!r}.")
+        return None if np.isinf(w) else w
+
+    def _deepc_hessian(self):
+        LY, RU = self._Lz @ self._Yf, self._Ru @ self._Uf
+        H = LY.T @ LY + RU.T @ RU
+        if self._lam_y is not None:
+            H = H + self._lam_y * self._Yp.T @ self._Yp
+        if self._lam_g > 0:
+            H = H + self._lam_g * self._M.T @ self._M
+        return 0.5 * (H + H.T), LY
+
+    def _fast_deepc_eliminated(self, N, m):
+        """OSQP over the inputs alone, with ``g`` minimised out in closed form (no output bounds).
+
+        For fixed ``u`` the DeePC cost is a quadratic in ``g`` under the equalities ``E g = [u_past; 0]``,
+        (``Yp g = y_past`` when hard) and ``Uf g = u``; its minimiser ``g*(u)`` is affine in ``u`` and the data
+        (null-space solution, computed once here), so the problem becomes an exactly equivalent QP in ``u`` of the
+        size of the indirect one. Returns None when the equalities are dependent or the reduced Hessian is not
+        positive definite (then the g-space fast path is used).
+        """
+        H, LY = self._deepc_hessian()
+        r, Nm = H.shape[0], N * m
+        hard = self._lam_y is None
+        fixed = np.vstack([self._E, self._Yp]) if hard else self._E
+        A = np.vstack([fixed, self._Uf])
+        # null-space method: g = A⁺b + Z w, w = (ZᵀHZ)⁻¹ Zᵀ(h − H A⁺ b); better conditioned than the KKT inverse
+        U_, sv, Vt = np.linalg.svd(A, full_matrices=True)
+        if sv.size == 0 or sv[-1] <= 1e-10 * sv[0] or sv.size < A.shape[0]:
+            return None  # dependent equalities (e.g. hard past outputs on exact data)
+        Z = Vt[A.shape[0]:].T
+        A_pinv = Vt[:A.shape[0]].T @ ((U_.T) / sv[:, None])
+        try:
+            c = sla.cho_factor(Z.T @ H @ Z)
+        except np.linalg.LinAlgError:
+            return None
+        S_Zt = sla.cho_solve(c, Z.T)
+        G_h = Z @ S_Zt
+        G_b = A_pinv - G_h @ (H @ A_pinv)
+        G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
+        Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
+        self._elim = {
+            "G_h": G_h, "G_f": G_f, "G_u": G_u, "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
+            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "LY": LY, "hard": hard,
+        }
+        P = 2.0 * G_u.T @ H @ G_u
+        rows = self._box_rows(sp.eye(Nm, format="csr"))
+        return _FastQP(sp.csc_matrix(0.5 * (P + P.T)), sp.vstack(rows, format="csc"), Nm)
+
+    def _solve_fast_eliminated(self, offsets, lb, ub):
+        eq, yp, rw = offsets
+        e = self._elim
+        bf = np.concatenate([eq, yp]) if e["hard"] else eq
+        q = e["Q_r"] @ rw + e["Q_f"] @ bf
+        h = e["LY"].T @ rw
+        if not e["hard"]:
+            q = q + e["Q_y"] @ yp
+            h = h + self._lam_y * self._Yp.T @ yp
+        lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        u, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        if u is None:
+            return None, None, status, reason
+        g = e["G_h"] @ h + e["G_f"] @ bf + e["G_u"] @ u
+        return u, g, status, ""
+
+    def _fast_deepc(self, N, m):
+        """OSQP over ``z = [g; s]`` with ``u = Uf g`` substituted."""
+        r, nb = self._Up.shape[1], self._idx_b.size
+        H, LY = self._deepc_hessian()
+        self._LY = LY
+        P = sp.block_diag([sp.csc_matrix(2.0 * H), sp.csc_matrix((nb, nb))], format="csc")
+        rows = [sp.hstack([sp.csr_matrix(self._E), sp.csr_matrix((self._E.shape[0], nb))])]
+        if self._lam_y is None:
+            rows.append(sp.hstack([sp.csr_matrix(self._Yp), sp.csr_matrix((self._Yp.shape[0], nb))]))
+        rows += self._box_rows(sp.hstack([sp.csr_matrix(self._Uf), sp.csr_matrix((N * m, nb))]))
+        if self._idx_hi.size:
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_hi]), -self._S_hi / self._kappa]))
+        if self._idx_lo.size:
+            rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo / self._kappa]))
+        if nb:
+            rows.append(sp.hstack([sp.csr_matrix((nb, r)), sp.eye(nb)]))
+        return _FastQP(P, sp.vstack(rows, format="csc"), r + nb)
+
+    # ------------------------------------------------------------------------------------ per plan
+    def _check_target(self, target):
+        return _output_target(np.asarray(target, dtype=np.float64), self.horizon_steps_, self.n_outputs_)
+
+    def _target_rows(self, target):
+        return target
+
+    def _free(self, u_past, y_past):
+        """Free response ``P past + c`` of the linear maps (the outputs with zero future inputs)."""
+        return self._P @ past_vector(u_past, y_past) + self._c
+
+    def _offsets(self, u_past, y_past, target):
+        r = target.reshape(-1)
+        if self.method_ == "spc":
+            fy = self._free(u_past, y_past)
+            return self._Lz @ (fy - r), None, fy
+        eq = np.concatenate([u_past.reshape(-1), np.zeros(self._E.shape[0] - self._Up.shape[0])])
+        return eq, y_past.reshape(-1), self._Lz @ r
+
+    def _assign(self, offsets):
+        if self.method_ == "spc":
+            return super()._assign(offsets)
+        self._up.value, self._yp.value, self._rw.value = offsets
+
+    def _aux_value(self):
+        return None if self.method_ == "spc" else np.array(self._g.value)
+
+    def _solve_fast(self, offsets, lb, ub):
+        if self.method_ == "spc":
+            return super()._solve_fast(offsets, lb, ub)
+        if self._elim is not None:
+            return self._solve_fast_eliminated(offsets, lb, ub)
+        up, yp, rw = offsets
+        r, nb = self._Up.shape[1], self._idx_b.size
+        q = -2.0 * self._LY.T @ rw
+        if self._lam_y is not None:
+            q = q - 2.0 * self._lam_y * self._Yp.T @ yp
+        q = np.concatenate([q, np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s (_setup_common)
+        lo, hi = [up], [up]
+        if self._lam_y is None:
+            lo.append(yp)
+            hi.append(yp)
+        lo.append(lb.reshape(-1))
+        hi.append(ub.reshape(-1))
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        if self._idx_hi.size:
+            lo.append(np.full(self._idx_hi.size, -np.inf))
+            hi.append(self._ymax[self._idx_hi])
+        if self._idx_lo.size:
+            lo.append(self._ymin[self._idx_lo])
+            hi.append(np.full(self._idx_lo.size, np.inf))
+        if nb:
+            lo.append(np.zeros(nb))
+            hi.append(np.full(nb, np.inf))
+        z, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        if z is None:
+            return None, None, status, reason
+        g = z[:r]
+        return self._Uf @ g, g, status, ""
+
+    def _predict_outputs(self, u, aux, u_past, y_past):
+        N, p = self.horizon_steps_, self.n_outputs_
+        if self.method_ == "spc":
+            y = self._free(u_past, y_past) + self._Gy @ u.reshape(-1)
+        elif aux is not None:
+            y = self._Yf @ aux
+        else:  # the predictor takes recorded units; the plan's y_past is centred when it has an offset
+            off = 0.0 if self._y_off is None else self._y_off
+            return np.asarray(self.predictor_.predict(u_past, y_past + off, u), np.float64).reshape(N, p) - off
+        return y.reshape(N, p)
+
+    def _cost_terms(self, u, aux, y, u_past, y_past, target):
+        r = target.reshape(-1)
+        if self.method_ == "spc":
+            fy = self._free(u_past, y_past)
+            return self._condensed_terms(u, self._Lz @ (fy - r), None)
+        terms = {"tracking": float(np.sum((self._Lz @ (y.reshape(-1) - r)) ** 2)),
+                 "input_energy": float(np.sum((self._Ru @ u.reshape(-1)) ** 2))}
+        if aux is not None:
+            g = aux
+            if self._lam_y is not None:
+                terms["past_consistency"] = self._lam_y * float(np.sum((self._Yp @ g - y_past.reshape(-1)) ** 2))
+            if self._lam_g > 0:
+                reg = np.sum(np.abs(g)) if self._reg == "l1" else np.sum((self._M @ g) ** 2)
+                terms["regularizer"] = self._lam_g * float(reg)
+        return terms
+
+
+def _formulation(predictor) -> str:
+    """``"deepc"`` for a predictor with data blocks, ``"spc"`` for one with linear prediction maps."""
+    if isinstance(predictor, DataBlocksForm):
+        return "deepc"
+    if isinstance(predictor, LinearPredictor) and predictor.has_linear_maps:
+        return "spc"
+    raise InvalidParameterError(
+        f"the data predictive controller needs a predictor with data_blocks() (DeePC) or with linear prediction maps "
+        f"(prediction_maps() and has_linear_maps True); got a {type(predictor).__name__}, {_lacks(predictor)}. "
+        "Give a fitted LsqPredictor or HankelPredictor, or a predictor implementing the LinearPredictor protocol "
+        "(stimsteer.sysid.protocols)."
+    )
+
+
+def _lacks(obj) -> str:
+    """What ``obj`` lacks of the linear-predictor protocol, in words (for error messages)."""
+    members = ("predict", "predict_many", "rest_window", "prediction_maps")
+    missing = [f"{name}()" for name in members if not callable(getattr(obj, name, None))]
+    if missing:
+        return "which has no " + ", ".join(missing)
+    if not hasattr(obj, "has_linear_maps"):
+        return "which declares no has_linear_maps"
+    return "whose has_linear_maps is False and which has no data_blocks()"

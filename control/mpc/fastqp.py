@@ -1,0 +1,76 @@
+"""The fast path of every controller: one OSQP problem set up once, whose vectors alone change from plan to plan.
+
+``min ½ zᵀPz + qᵀz  s.t.  l <= A z <= u`` with ``P`` and ``A`` fixed at fit; a plan updates ``q``, ``l``, ``u``
+and re-solves (warm started). The settings are tight (1e-7) so that the fast path agrees with the cvxpy problem.
+
+References
+----------
+Stellato B. et al. (2020), OSQP: an operator splitting solver for quadratic programs, Math. Prog. Comp.
+"""
+
+from __future__ import annotations
+
+import contextlib
+
+import numpy as np
+import scipy.sparse as sp
+
+__all__: list = []
+
+
+def _osqp_settings(tight: bool):
+    """OSQP settings (tight: 1e-7 tolerances, for plans that must match the cvxpy path) for OSQP 0.6 and 1.x."""
+    import osqp
+
+    old = str(getattr(osqp, "__version__", "1")).startswith("0.")
+    s = {"verbose": False, "eps_abs": 1e-7 if tight else 1e-5, "eps_rel": 1e-7 if tight else 1e-5,
+         "max_iter": 20000, "eps_prim_inf": 1e-7, "eps_dual_inf": 1e-7}
+    s.update({"polish": True, "warm_start": True} if old else {"polishing": True, "warm_starting": True})
+    return s
+
+
+class _Silent:
+    """A stream that swallows what is written to it (OSQP 1.x prints while polishing, even when not verbose)."""
+
+    def write(self, text):
+        return len(text)
+
+    def flush(self):
+        pass
+
+
+_SILENT = _Silent()
+
+
+class _FastQP:
+    """One OSQP problem ``min ½zᵀPz + qᵀz s.t. l <= Az <= u``, set up once; each solve only updates q, l, u."""
+
+    def __init__(self, P, A, n_vars, tight=True):
+        import osqp
+
+        self.n_vars = n_vars
+        self.solver = osqp.OSQP()
+        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
+        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
+        P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
+        A = sp.csc_matrix(A)
+        self.n_rows = A.shape[0]
+        self.solver.setup(P, np.zeros(n_vars), A, -np.inf * np.ones(A.shape[0]), np.inf * np.ones(A.shape[0]),
+                          **_osqp_settings(tight))
+
+    def reset(self):
+        """Forget the warm start (the next solve starts from zero, as after setup)."""
+        self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
+
+    def solve(self, q, l, u):
+        self.solver.update(q=q, l=l, u=u)
+        # OSQP 1.x writes "Polishing not needed ..." to sys.stdout even when not verbose
+        with contextlib.redirect_stdout(_SILENT):
+            res = self.solver.solve(**self._solve_kw)
+        status = str(res.info.status).lower()
+        if status == "solved":
+            return res.x, "optimal", ""
+        if status == "solved inaccurate":
+            return res.x, "optimal_inaccurate", ""
+        kind = "infeasible" if "infeasible" in status else "failed"
+        return None, kind, f"OSQP returned '{res.info.status}'"

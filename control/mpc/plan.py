@@ -1,0 +1,147 @@
+"""The result of one plan: :class:`Plan`, a frozen record of the inputs, the prediction and what limited them.
+
+A plan never leaves the controller as bare arrays: its inputs come with the predicted outputs, the target, the cost
+terms, the binding limits, the step bounds, the solver's status and the caution, so a reader (or a closed loop) can
+judge it without the controller that made it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ...sysid.caution import CAUTION
+
+__all__ = ["Plan"]
+
+
+@dataclass(frozen=True)
+class Plan:
+    """A stimulation plan over a horizon, with everything needed to judge it.
+
+    Attributes
+    ----------
+    inputs : ndarray, shape (horizon_steps, n_inputs)
+        Stimulation amplitudes, µA, in the limits' physical units. Always inside the hard limits (see ``status``
+        for the one documented exception).
+    predicted_outputs : ndarray, shape (horizon_steps, n_outputs)
+        The controller's prediction of the outputs under ``inputs``.
+    target : ndarray, shape (horizon_steps, n_outputs) or (horizon_steps, n_states)
+        The tracked target (outputs, or the target state repeated, see ``target_kind``).
+    target_kind : str
+        ``"output"`` or ``"state"``.
+    cost_terms : dict of str to float
+        ``tracking``, ``input_energy``, ``output_penalty`` and, where they apply, ``terminal``,
+        ``past_consistency``, ``regularizer``; ``total`` is their sum. Evaluated at the returned inputs.
+    active_limits : dict
+        ``amplitude_min``, ``amplitude_max``, ``charge_density``, ``slew`` → bool arrays (horizon_steps, n_inputs),
+        True where that hard limit is binding; ``energy_budget`` → bool; ``output_bounds`` → bool array
+        (horizon_steps, n_outputs), True where a predicted output is at or beyond its soft bound.
+    output_slack : ndarray, shape (horizon_steps, n_outputs)
+        How far each predicted output exceeds its soft bound (0 inside or unbounded), in the output's units.
+    step_bounds : tuple of ndarray
+        ``(lower, upper)``, each (horizon_steps, n_inputs): the amplitude window per step (the first step also
+        within the slew window of ``last_input``), µA.
+    last_input : ndarray, shape (n_inputs,)
+        The input applied before the plan, µA.
+    solver : str
+    status : str
+        ``"optimal"``, ``"optimal_inaccurate"`` (accepted after verification), ``"infeasible"`` (the limits
+        conflict, or the constraints have no solution) or ``"failed"`` (the solver gave no usable answer).
+    message : str
+        Why a plan is not optimal, or how it was solved when the fast path had to hand over; empty otherwise.
+    fallback : bool
+        True when ``inputs`` are the safe fallback instead of an optimised plan.
+    solve_time_s : float
+        Wall time of the parameter update and solve, seconds.
+    input_names, output_names : tuple of str
+    output_bounds : tuple of ndarray or None
+        ``(output_min, output_max)``, each (n_outputs,), ``±inf`` where unbounded; None without output bounds.
+    caution : str
+        :data:`stimsteer.control.CAUTION` (the text of :mod:`stimsteer.sysid.caution`).
+    """
+
+    inputs: np.ndarray
+    predicted_outputs: np.ndarray
+    target: np.ndarray
+    target_kind: str
+    cost_terms: dict
+    active_limits: dict
+    output_slack: np.ndarray
+    step_bounds: tuple
+    last_input: np.ndarray
+    solver: str
+    status: str
+    message: str
+    fallback: bool
+    solve_time_s: float
+    input_names: tuple
+    output_names: tuple
+    output_bounds: tuple = None
+    caution: str = CAUTION
+
+    @property
+    def ok(self) -> bool:
+        """True for an optimised plan (not a fallback)."""
+        return self.status in ("optimal", "optimal_inaccurate") and not self.fallback
+
+    @property
+    def horizon_steps(self) -> int:
+        return int(self.inputs.shape[0])
+
+    @property
+    def slack_total(self) -> float:
+        return float(np.sum(self.output_slack))
+
+    def active_summary(self) -> list[str]:
+        """Readable lines naming the binding limits (input or output, and the steps)."""
+        lines = []
+        for key in ("amplitude_min", "amplitude_max", "charge_density", "slew"):
+            act = self.active_limits[key]
+            for i, name in enumerate(self.input_names):
+                steps = np.flatnonzero(act[:, i])
+                if steps.size:
+                    lines.append(f"{key} on {name} at steps {_ranges(steps)}")
+        if self.active_limits["energy_budget"]:
+            lines.append("energy_budget over the horizon")
+        act = self.active_limits["output_bounds"]
+        for j, name in enumerate(self.output_names):
+            steps = np.flatnonzero(act[:, j])
+            if steps.size:
+                lines.append(f"output bound on {name} at steps {_ranges(steps)}")
+        return lines
+
+    def to_dict(self) -> dict:
+        """A JSON-ready summary (no arrays of the plan itself: those go to the plan table)."""
+        return {
+            "status": self.status, "message": self.message, "fallback": bool(self.fallback),
+            "solver": self.solver, "solve_time_s": float(self.solve_time_s),
+            "horizon_steps": self.horizon_steps, "target_kind": self.target_kind,
+            "cost_terms": {k: float(v) for k, v in self.cost_terms.items()},
+            "active_limits": self.active_summary(),
+            "active_counts": {k: int(np.sum(v)) for k, v in self.active_limits.items()},
+            "output_slack_total": self.slack_total, "output_slack_max": float(np.max(self.output_slack, initial=0)),
+            "input_energy_ua2": float(np.sum(self.inputs**2)),
+            "input_names": list(self.input_names), "output_names": list(self.output_names),
+            "caution": self.caution,
+        }
+
+
+def _ranges(steps) -> str:
+    """'0-3, 7' for [0, 1, 2, 3, 7]."""
+    parts, start = [], int(steps[0])
+    prev = start
+    for s in list(map(int, steps[1:])) + [None]:
+        if s is None or s != prev + 1:
+            parts.append(f"{start}" if start == prev else f"{start}-{prev}")
+            start = s
+        prev = s if s is not None else prev
+    return ", ".join(parts)
+
+
+def _ro(a):
+    """A read-only float64 copy (plans are frozen, and so are their arrays)."""
+    a = np.array(a, dtype=np.float64, copy=True)
+    a.setflags(write=False)
+    return a
