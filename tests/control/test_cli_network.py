@@ -195,7 +195,8 @@ def limits_file(tmp_path):
 @pytest.mark.parametrize("kind", ["pulses", "prbs", "multilevel", "multisine"])
 def test_schedule_command_writes_a_schedule_inside_the_limits(limits_file, tmp_path, capsys, kind):
     from stimsteer.control.limits import load_limits
-    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+    from stimsteer.control.schedule import load_schedule
+    from stimsteer.sysid import verify_excitation
 
     out = tmp_path / "next.csv"
     args = ["schedule", "--limits", str(limits_file), "--inputs", "2", "--order", "10", "--out", str(out),
@@ -255,7 +256,8 @@ def test_schedule_command_bad_limits_file(tmp_path, capsys):
 
 
 def test_schedule_order_from_past_window_horizon_and_states(limits_file, tmp_path, capsys):
-    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+    from stimsteer.control.schedule import load_schedule
+    from stimsteer.sysid import verify_excitation
 
     out = tmp_path / "s.csv"
     assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--horizon-steps",
