@@ -1,8 +1,5 @@
-"""stimsteer.control.commands: one module per ``stimsteer`` subcommand.
+"""One module per ``stimsteer`` subcommand: the file workflow (load, call the public API, write files atomically).
 
-Each module holds the file workflow of its subcommand (load, call the public API, write CSV/JSON/PNG atomically,
-print) and exposes ``add_parser(subparsers) -> None`` and ``run(args) -> int``; :mod:`stimsteer.control.cli` only
-parses, calls ``run`` and maps errors to exit codes.
+Each module offers ``add_parser(subparsers)`` and ``run(args) -> int``; :mod:`stimsteer.control.cli` only parses
+the command line, calls a command and maps errors to exit codes.
 """
-
-__all__: list[str] = []
