@@ -29,10 +29,10 @@ own layout read by :func:`load_limits`::
 
 Inputs keep the order of the file; :meth:`StimLimits.aligned` matches them to a model's input names.
 
-Charge density (Shannon 1992, the helpers in :mod:`stimsteer.control.shannon`): with charge per phase ``Q = I · PW`` (µC) and charge density ``D = Q / A``
-(µC/cm²/phase), the rule ``log10(D) + log10(Q) <= k`` gives ``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence
-``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue damage at ``k >= 1.85``; declaring ``k`` at or above it is
-refused. The default ``k = 1.75`` is a margin below that threshold (common practice, no source).
+Charge density (Shannon 1992; the helpers live in :mod:`stimsteer.control.shannon`): with charge per phase
+``Q = I · PW`` (µC) and charge density ``D = Q / A`` (µC/cm²/phase), the rule ``log10(D) + log10(Q) <= k`` gives
+``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence ``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue
+damage at ``k >= 1.85``; declaring ``k`` at or above it is refused. The default ``k = 1.75`` is a margin below that threshold (common practice, no source).
 
 Decisions (documented, enforced by validation)
     * Zero stimulation must lie inside every input's amplitude bounds: it is the safe fallback when a plan cannot

@@ -123,7 +123,8 @@ def _numbers(cells, where) -> np.ndarray:
     try:
         return np.array([float(c) for c in cells], dtype=np.float64)
     except ValueError:
-        raise InvalidParameterError(f"{where}: expected numbers separated by commas; got {','.join(cells)!r}.") from None
+        raise InvalidParameterError(f"{where}: expected numbers separated by commas; got "
+                                    f"{','.join(cells)!r}.") from None
 
 
 def _channel_name(header: str) -> str:
@@ -216,8 +217,8 @@ def _units(model, input_units, output_units):
         return None
     iu, ou = tuple(str(x) for x in input_units), tuple(str(x) for x in output_units)
     if len(iu) != model.n_inputs or len(ou) != model.n_outputs:
-        raise InvalidParameterError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one per "
-                           f"channel of the model); got {len(iu)} and {len(ou)}.")
+        raise InvalidParameterError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one "
+                                    f"per channel of the model); got {len(iu)} and {len(ou)}.")
     return iu, ou
 
 
