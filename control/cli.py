@@ -167,6 +167,7 @@ _SUBCOMMANDS = {
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``stimsteer`` argument parser with every subcommand of ``_SUBCOMMANDS``."""
     parser = _Parser(
         prog="stimsteer",
         description="Check stimulation sessions, fit predictors of the stimulated response, design stimulation "
@@ -180,6 +181,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    """Run ``stimsteer`` with ``argv`` (default: the process arguments) and return its exit code.
+
+    0 on success; 2 for a toolkit error or a missing file (one line on stderr); 1 for anything else, a bug (one
+    line, or the traceback with ``STIMSTEER_DEBUG=1``); 130 when interrupted.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     _add, run = _SUBCOMMANDS[args.command]
