@@ -275,6 +275,8 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     ------
     UnstableModelError
         For an unstable model without ``normalise``.
+    InvalidParameterError
+        For a horizon that is not a whole number >= 1, or unit lists that do not match the model's channels.
     """
     _check_stable(model, normalise)
     units = _units(model, input_units, output_units)
