@@ -1,13 +1,16 @@
 """stimsteer.control: from predictors to stimulation plans, closed loops, benchmarks and reports."""
 
+from ..sysid.caution import CAUTION
 from .limits import StimLimits, load_limits, shannon_k, max_charge_uc, max_amplitude_ua
+from .schedule import SCHEDULE_KINDS, Schedule, design_schedule, save_schedule, load_schedule
 from .mpc import Plan, ModelPredictiveController, DataPredictiveController, controller_for
 from .plants import LinearNetworkPlant, SaturatingRateNetworkPlant, random_network, record_session, save_plant, load_plant
 from .loop import LoopResult, run_closed_loop
 from .evaluation import BenchSettings, BenchResult, MethodSpec, ControlSettings, run_bench
+from .plants import InnovationPlant
 from .report import summarize
-from .commands.bench import write_bench as write_report
-from .cli import CAUTION, main
+from .commands.bench import write_bench, write_bench as write_report
+from .cli import main
 
 __all__ = [
     "BenchResult",
@@ -15,16 +18,21 @@ __all__ = [
     "CAUTION",
     "ControlSettings",
     "DataPredictiveController",
+    "InnovationPlant",
     "LinearNetworkPlant",
     "LoopResult",
     "MethodSpec",
     "ModelPredictiveController",
     "Plan",
+    "SCHEDULE_KINDS",
     "SaturatingRateNetworkPlant",
+    "Schedule",
     "StimLimits",
     "controller_for",
+    "design_schedule",
     "load_limits",
     "load_plant",
+    "load_schedule",
     "main",
     "max_amplitude_ua",
     "max_charge_uc",
@@ -33,7 +41,9 @@ __all__ = [
     "run_bench",
     "run_closed_loop",
     "save_plant",
+    "save_schedule",
     "shannon_k",
     "summarize",
+    "write_bench",
     "write_report",
 ]

@@ -3,6 +3,9 @@
 Each step is one ``stimsteer`` subcommand, run exactly as a user would type it on their own data, and the demo
 prints that command line before its output, so the demo doubles as a worked example of the command line. All
 outputs go into one folder, written atomically: if any step fails, nothing of the run is left behind.
+
+The steps are run by a step runner given by the caller (the command line passes its own ``main``), so this module
+does not depend on the command line that runs it.
 """
 
 from __future__ import annotations
@@ -14,8 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
+from ..demo_data import demo_file
+from ..sysid import StimsteerError, load_session
 from ..sysid._files import atomic_dir
-from ..sysid.exceptions import StimsteerError
+from ..sysid.caution import CAUTION
 
 __all__ = ["run_demo", "demo_steps", "DEMO_PATTERN_FILE"]
 
@@ -73,18 +78,25 @@ def demo_steps(session: str, plant: str, limits: str, out: str) -> list[tuple[st
     return steps
 
 
-def run_demo(out, *, force: bool = False, echo=print) -> Path:
+def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
     """Run every demo step into the folder ``out`` and return the path of the HTML report.
+
+    Parameters
+    ----------
+    out : str or Path
+        Output folder, new or empty (replaced whole with ``force``).
+    run_step : callable
+        ``run_step(argv) -> int``: runs one ``stimsteer`` subcommand and returns its exit code
+        (:func:`stimsteer.control.cli.main`).
+    force : bool, default False
+    echo : callable, default print
+        Receives the demo's text, step by step.
 
     Raises
     ------
     StimsteerError
         ``out`` holds another run (without ``force``), or a step failed (its message is passed on).
     """
-    from ..demo_data import demo_file
-    from ..sysid.io import load_session
-    from .cli import CAUTION, main
-
     session, plant, limits = (str(demo_file(n)) for n in ("demo_session.h5", "demo_plant.h5", "demo_limits.toml"))
     out = Path(out)
     demo = load_session(session)
@@ -98,7 +110,7 @@ def run_demo(out, *, force: bool = False, echo=print) -> Path:
             echo(f"\n== {title}\n$ stimsteer {' '.join(shown_argv)}")
             text = io.StringIO()
             with redirect_stdout(text):
-                code = main(argv)
+                code = run_step(argv)
             echo(text.getvalue().replace(str(tmp), str(out)).rstrip())
             if code != 0:
                 raise StimsteerError(f"the demo step `stimsteer {argv[0]}` failed (exit code {code}); see above.")

@@ -29,10 +29,10 @@ own layout read by :func:`load_limits`::
 
 Inputs keep the order of the file; :meth:`StimLimits.aligned` matches them to a model's input names.
 
-Charge density (Shannon 1992): with charge per phase ``Q = I · PW`` (µC) and charge density ``D = Q / A``
-(µC/cm²/phase), the rule ``log10(D) + log10(Q) <= k`` gives ``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence
-``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue damage at ``k >= 1.85``; declaring ``k`` at or above it is
-refused. The default ``k = 1.75`` is a margin below that threshold (common practice, no source).
+Charge density (Shannon 1992; the helpers live in :mod:`stimsteer.control.shannon`): with charge per phase
+``Q = I · PW`` (µC) and charge density ``D = Q / A`` (µC/cm²/phase), the rule ``log10(D) + log10(Q) <= k`` gives
+``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence ``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue
+damage at ``k >= 1.85``; declaring ``k`` at or above it is refused. The default ``k = 1.75`` is a margin below that threshold (common practice, no source).
 
 Decisions (documented, enforced by validation)
     * Zero stimulation must lie inside every input's amplitude bounds: it is the safe fallback when a plan cannot
@@ -53,11 +53,12 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 
-from ..sysid.exceptions import LimitsError
+from ..sysid.exceptions import InvalidParameterError, LimitsError
+from ._limits_layout import limits_fields, read_limits_table
+from .shannon import DEFAULT_SHANNON_K, SHANNON_DAMAGE_K, max_amplitude_ua, max_charge_uc, shannon_k
 
 __all__ = [
     "StimLimits",
@@ -68,105 +69,6 @@ __all__ = [
     "DEFAULT_SHANNON_K",
     "SHANNON_DAMAGE_K",
 ]
-
-#: Default Shannon k: a margin below the damage threshold (common practice, no source).
-DEFAULT_SHANNON_K = 1.75
-#: Shannon (1992): tissue damage was seen at k >= 1.85.
-SHANNON_DAMAGE_K = 1.85
-
-_INPUT_KEYS = {"amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "pulse_width_us", "electrode_area_cm2"}
-_CHARGE_KEYS = {"pulse_width_us", "electrode_area_cm2", "shannon_k"}
-_TOP_KEYS = {"charge_density", "energy", "inputs", "outputs"}
-
-
-# ---------------------------------------------------------------------------------------------------- Shannon
-def _positive(name, value):
-    a = np.asarray(value, dtype=np.float64)
-    if not np.all(np.isfinite(a)) or np.any(a <= 0):
-        raise LimitsError(f"{name} must be positive and finite; got {value!r}.")
-    return a
-
-
-def shannon_k(charge_uc, area_cm2):
-    """Shannon's ``k = log10(D) + log10(Q)`` of a charge per phase on an electrode.
-
-    Parameters
-    ----------
-    charge_uc : float or ndarray
-        Charge per phase ``Q``, µC/phase.
-    area_cm2 : float or ndarray
-        Geometric electrode area ``A``, cm².
-
-    Returns
-    -------
-    float or ndarray
-        ``log10(Q / A) + log10(Q)``.
-
-    Raises
-    ------
-    LimitsError
-        If a charge or area is not positive and finite.
-
-    References
-    ----------
-    Shannon R.V. (1992), A model of safe levels for electrical stimulation, IEEE TBME 39(4):424–426.
-
-    Examples
-    --------
-    >>> round(float(shannon_k(1.8, 0.06)), 3)  # 30 µC/cm² on a 0.06 cm² contact
-    1.732
-    """
-    q = _positive("charge_uc", charge_uc)
-    a = _positive("area_cm2", area_cm2)
-    k = np.log10(q / a) + np.log10(q)
-    return float(k) if k.ndim == 0 else k
-
-
-def max_charge_uc(k, area_cm2):
-    """Largest charge per phase (µC) allowed by Shannon's rule ``log10(Q/A) + log10(Q) <= k``.
-
-    Notes
-    -----
-    ``2 log10(Q) − log10(A) <= k``  ⇔  ``Q <= sqrt(10**k · A)``.
-
-    Examples
-    --------
-    >>> round(float(max_charge_uc(1.85, 0.06)), 3)
-    2.061
-    """
-    k = np.asarray(k, dtype=np.float64)
-    if not np.all(np.isfinite(k)):
-        raise LimitsError(f"shannon_k must be finite; got {k!r}.")
-    a = _positive("area_cm2", area_cm2)
-    q = np.sqrt(10.0**k * a)
-    return float(q) if q.ndim == 0 else q
-
-
-def max_amplitude_ua(k, area_cm2, pulse_width_us):
-    """Largest current amplitude (µA) whose charge per phase ``Q = I · PW`` meets Shannon's rule.
-
-    Parameters
-    ----------
-    k : float
-        Shannon's k.
-    area_cm2 : float or ndarray
-        Electrode area, cm².
-    pulse_width_us : float or ndarray
-        Duration of one phase, µs.
-
-    Returns
-    -------
-    float or ndarray
-        ``sqrt(10**k · A) / PW`` converted to µA (1 µC / 1 µs = 10⁶ µA).
-
-    Examples
-    --------
-    >>> round(float(max_amplitude_ua(1.85, 0.06, 100.0)), 1)  # 2.061 µC in 100 µs
-    20609.9
-    """
-    pw = _positive("pulse_width_us", pulse_width_us)
-    i = max_charge_uc(k, area_cm2) / pw * 1e6
-    return float(i) if np.ndim(i) == 0 else i
 
 
 # ---------------------------------------------------------------------------------------------------- limits
@@ -432,7 +334,8 @@ class StimLimits:
         # each step moves |u| towards 0 by the slew limit; 0 lies in every amplitude window
         return np.clip(np.sign(start) * np.maximum(left, 0.0), lo, hi)
 
-    def violations(self, inputs, last_input=None, *, rtol: float = 1e-9) -> dict:
+    def violations(self, inputs, last_input=None, *, rtol: float = 1e-9,
+                   energy_window_steps: int | None = None) -> dict:
         """Count the samples of an input sequence that break a hard limit.
 
         Parameters
@@ -444,13 +347,17 @@ class StimLimits:
             sample's slew is not checked.
         rtol : float, default 1e-9
             Relative allowance for floating-point rounding in slew differences and the energy sum (amplitude
-            bounds are checked exactly).
+            bounds are checked exactly); 0 checks every limit exactly.
+        energy_window_steps : int, optional
+            Apply the energy budget to every window of this many consecutive samples (a schedule longer than a
+            planning horizon) instead of to the whole sequence; a window longer than the sequence is the whole
+            sequence.
 
         Returns
         -------
         dict
-            ``{"amplitude": int, "slew": int, "energy_budget": int}`` (the energy count is 0 or 1: the budget
-            applies to the whole sequence).
+            ``{"amplitude": int, "slew": int, "energy_budget": int}``. The energy count is 0 or 1 without a window
+            (the budget applies to the whole sequence), else the number of windows over the budget.
         """
         u = np.asarray(inputs, dtype=np.float64).reshape(-1, self.n_inputs)
         lo, hi = self._bounds
@@ -458,10 +365,24 @@ class StimLimits:
         if self.slew_max_ua is not None:
             seq = u if last_input is None else np.vstack([np.asarray(last_input, np.float64).reshape(1, -1), u])
             s = self.slew_max_ua
-            out["slew"] = int(np.sum(np.abs(np.diff(seq, axis=0)) > s + rtol * np.maximum(1.0, s)))
+            allowed = np.where(np.isfinite(s), s + rtol * np.maximum(1.0, np.where(np.isfinite(s), s, 1.0)), np.inf)
+            out["slew"] = int(np.sum(np.abs(np.diff(seq, axis=0)) > allowed))
         if self.energy_budget_ua2 is not None:
-            out["energy_budget"] = int(np.sum(u**2) > self.energy_budget_ua2 * (1.0 + rtol))
+            out["energy_budget"] = self._energy_violations(u, rtol, energy_window_steps)
         return out
+
+    def _energy_violations(self, u, rtol, window) -> int:
+        budget = self.energy_budget_ua2 * (1.0 + rtol)
+        if window is None:
+            return int(np.sum(u**2) > budget)
+        if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or window < 1:
+            raise InvalidParameterError(f"energy_window_steps must be a whole number of samples >= 1; got {window!r}. "
+                                        "Give the window length in samples, or None for the whole sequence.")
+        if u.shape[0] == 0:
+            return 0
+        c = np.concatenate([[0.0], np.cumsum(np.sum(u**2, axis=1))])
+        w = min(int(window), u.shape[0])
+        return int(np.sum(c[w:] - c[:-w] > budget))
 
     @property
     def has_output_bounds(self) -> bool:
@@ -535,46 +456,7 @@ class StimLimits:
     @classmethod
     def from_dict(cls, d) -> "StimLimits":
         """Limits from a nested dict in the TOML layout of the module docstring."""
-        if not isinstance(d, dict):
-            raise LimitsError(f"limits must be a table (dict); got {type(d).__name__}.")
-        _unknown("the top level", d, _TOP_KEYS)
-        charge = _table(d, "charge_density")
-        _unknown("[charge_density]", charge, _CHARGE_KEYS)
-        energy = _table(d, "energy")
-        _unknown("[energy]", energy, {"budget_ua2"})
-        inputs = _table(d, "inputs")
-        if not inputs:
-            raise LimitsError("the limits declare no inputs; add one [inputs.<name>] table per stimulation input "
-                              "with amplitude_min_ua and amplitude_max_ua.")
-        cols = {k: [] for k in _INPUT_KEYS}
-        for name, spec in inputs.items():
-            if not isinstance(spec, dict):
-                raise LimitsError(f"[inputs.{name}] must be a table; got {spec!r}.")
-            _unknown(f"[inputs.{name}]", spec, _INPUT_KEYS)
-            for key in ("amplitude_min_ua", "amplitude_max_ua"):
-                if key not in spec:
-                    raise LimitsError(f"[inputs.{name}] has no {key}; every input needs both amplitude bounds (µA).")
-            for key in _INPUT_KEYS:
-                default = charge.get(key) if key in _CHARGE_KEYS else None
-                cols[key].append(_number(f"inputs.{name}.{key}", spec.get(key, default)))
-        slew = cols["slew_max_ua"]
-        slew = None if all(v is None for v in slew) else [np.inf if v is None else v for v in slew]
-        charge_cols = {}
-        for key in ("pulse_width_us", "electrode_area_cm2"):
-            vals = cols[key]
-            if any(v is None for v in vals) and any(v is not None for v in vals):
-                missing = [n for n, v in zip(inputs, vals) if v is None]
-                raise LimitsError(f"{key} is given for some inputs but not for {missing}; set it in "
-                                  "[charge_density] or for every input.")
-            charge_cols[key] = None if vals[0] is None else vals
-        out_names, out_lo, out_hi = _outputs(_table(d, "outputs"))
-        return cls(
-            amplitude_min_ua=cols["amplitude_min_ua"], amplitude_max_ua=cols["amplitude_max_ua"],
-            slew_max_ua=slew, energy_budget_ua2=_number("energy.budget_ua2", energy.get("budget_ua2")),
-            shannon_k=_number("charge_density.shannon_k", charge.get("shannon_k", DEFAULT_SHANNON_K)),
-            input_names=tuple(inputs), output_names=out_names, output_min=out_lo, output_max=out_hi,
-            **charge_cols,
-        )
+        return cls(**limits_fields(d))
 
     def to_dict(self) -> dict:
         """A JSON-ready dict of the limits (arrays as lists, ``inf`` as None), including the derived bounds."""
@@ -594,44 +476,6 @@ class StimLimits:
         }
 
 
-def _table(d, key):
-    v = d.get(key, {})
-    if not isinstance(v, dict):
-        raise LimitsError(f"[{key}] must be a table; got {v!r}.")
-    return v
-
-
-def _unknown(where, d, allowed):
-    extra = sorted(set(d) - set(allowed))
-    if extra:
-        raise LimitsError(f"unknown keys {extra} in {where} of the limits; allowed: {sorted(allowed)}. Check the "
-                          "spelling (units are part of the key names).")
-
-
-def _number(where, v):
-    if v is None:
-        return None
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
-        raise LimitsError(f"{where} must be a number; got {v!r}.")
-    return float(v)
-
-
-def _outputs(outputs):
-    if not outputs:
-        return None, None, None
-    names, lo, hi = [], [], []
-    for name, spec in outputs.items():
-        if not isinstance(spec, dict):
-            raise LimitsError(f"[outputs.{name}] must be a table with min and/or max; got {spec!r}.")
-        _unknown(f"[outputs.{name}]", spec, {"min", "max"})
-        if not spec:
-            raise LimitsError(f"[outputs.{name}] is empty; give min and/or max, or remove the table.")
-        names.append(str(name))
-        lo.append(_number(f"outputs.{name}.min", spec.get("min", -np.inf)))
-        hi.append(_number(f"outputs.{name}.max", spec.get("max", np.inf)))
-    return tuple(names), lo, hi
-
-
 def load_limits(path) -> StimLimits:
     """Read limits from a TOML file in our layout (see the module docstring).
 
@@ -642,19 +486,8 @@ def load_limits(path) -> StimLimits:
     FileNotFoundError
         If the file does not exist.
     """
+    table = read_limits_table(path)
     try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
-
-    path = Path(path)
-    text = path.read_bytes()
-    try:
-        d = tomllib.loads(text.decode("utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise LimitsError(f"{path} is not a valid TOML limits file: {exc}. See the layout in "
-                          "`stimsteer.control.limits`.") from None
-    try:
-        return StimLimits.from_dict(d)
+        return StimLimits.from_dict(table)
     except LimitsError as exc:
         raise LimitsError(f"{path}: {exc}") from None

@@ -15,7 +15,7 @@ from .statespace import StateSpaceModel, kalman_gain
 from .datadriven import LsqPredictor, HankelPredictor, HankelBlocks
 from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung_box, input_residual_xcorr
 from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
-from .schedule import design_schedule, Schedule, save_schedule, load_schedule
+from .signals import ExcitationCheck, verify_excitation, max_length_sequence, multisine, crest_factor
 from .storage import save_predictor, load_predictor
 from .routes import fit_route, make_estimator, FitResult, METHODS, open_session_source, Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
 
@@ -32,6 +32,7 @@ __all__ = [
     "StateSpaceForm",
     "check_fitted",
     "ConditioningWarning",
+    "ExcitationCheck",
     "ExcitationError",
     "ExcitationReport",
     "ExcitationWarning",
@@ -53,7 +54,6 @@ __all__ = [
     "trial_end_window",
     "NotFittedError",
     "RidgeArx",
-    "Schedule",
     "Scores",
     "Session",
     "SessionError",
@@ -72,10 +72,10 @@ __all__ = [
     "blank_artifacts",
     "block_hankel",
     "controllability",
+    "crest_factor",
     "controllability_gramian",
     "controlled_response",
     "describe_session",
-    "design_schedule",
     "detrend",
     "excitation_report",
     "filter_session",
@@ -87,11 +87,12 @@ __all__ = [
     "kstep_scores",
     "ljung_box",
     "load_predictor",
-    "load_schedule",
+    "max_length_sequence",
     "load_session",
     "minimum_energy_transition",
     "mosaic_hankel",
     "mosaic_page",
+    "multisine",
     "nrmse",
     "open_session_file",
     "page_matrix",
@@ -102,10 +103,10 @@ __all__ = [
     "required_order",
     "resample_session",
     "save_predictor",
-    "save_schedule",
     "save_session",
     "session_hankel",
     "session_page",
     "site_controllability",
     "vaf",
+    "verify_excitation",
 ]

@@ -68,11 +68,12 @@ def test_missing_file_gives_one_line_and_exit_code_2(tmp_path, capsys):
 def test_an_unexpected_failure_is_one_line_with_exit_1_and_debug_shows_the_traceback(monkeypatch, capsys):
     # a bug (not bad input) must still not dump a traceback on a user (common practice, no source)
     from stimsteer.control import cli
+    from stimsteer.control.commands import inspect as inspect_command
 
     def broken(args):
         raise ZeroDivisionError("boom\nsecond line")
 
-    monkeypatch.setitem(cli._SUBCOMMANDS, "inspect", (cli._add_inspect, broken))
+    monkeypatch.setitem(cli._SUBCOMMANDS, "inspect", (inspect_command.add_parser, broken))
     assert cli.main(["inspect", "whatever.h5"]) == 1
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "internal error (ZeroDivisionError: boom second line)" in err

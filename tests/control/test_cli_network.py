@@ -195,7 +195,8 @@ def limits_file(tmp_path):
 @pytest.mark.parametrize("kind", ["pulses", "prbs", "multilevel", "multisine"])
 def test_schedule_command_writes_a_schedule_inside_the_limits(limits_file, tmp_path, capsys, kind):
     from stimsteer.control.limits import load_limits
-    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+    from stimsteer.control.schedule import load_schedule
+    from stimsteer.sysid import verify_excitation
 
     out = tmp_path / "next.csv"
     args = ["schedule", "--limits", str(limits_file), "--inputs", "2", "--order", "10", "--out", str(out),
@@ -255,7 +256,8 @@ def test_schedule_command_bad_limits_file(tmp_path, capsys):
 
 
 def test_schedule_order_from_past_window_horizon_and_states(limits_file, tmp_path, capsys):
-    from stimsteer.sysid.schedule import load_schedule, verify_excitation
+    from stimsteer.control.schedule import load_schedule
+    from stimsteer.sysid import verify_excitation
 
     out = tmp_path / "s.csv"
     assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--horizon-steps",
@@ -289,3 +291,31 @@ def test_network_target_files_without_values(model_file, tmp_path, capsys, text,
     target.write_text(text)
     assert main(["network", str(model_file), "--out", str(tmp_path / "n"), "--target", str(target)]) == 2
     assert match in capsys.readouterr().err
+
+
+def test_state_space_of_dispatches_on_the_contract(rng):
+    from stimsteer.control.commands.network import state_space_of
+    from stimsteer.sysid.exceptions import InvalidParameterError
+
+    model = _model(rng)
+    assert state_space_of(model) is model  # a StateSpaceModel is its own state-space form
+    with pytest.raises(InvalidParameterError, match="network figures need a state-space model"):
+        state_space_of(object(), "m.h5")
+
+
+def test_network_figures_leave_the_plotting_state_alone(model_file, tmp_path):
+    # importing stimsteer and drawing the network figures must not load pyplot or switch the backend
+    import subprocess
+    import sys
+
+    script = (
+        "import sys, matplotlib\n"
+        "backend = lambda: dict.__getitem__(matplotlib.rcParams, 'backend')  # read without resolving it\n"
+        "before = backend()\n"
+        "from stimsteer.control.cli import main\n"
+        f"assert main(['network', {str(model_file)!r}, '--out', {str(tmp_path / 'net')!r}]) == 0\n"
+        "assert 'matplotlib.pyplot' not in sys.modules, 'pyplot was imported'\n"
+        "assert backend() == before, 'the backend was switched'\n"
+    )
+    run = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert run.returncode == 0, run.stderr

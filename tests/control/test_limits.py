@@ -119,6 +119,21 @@ def test_violations_count_each_limit():
     assert lim.violations(u, last_input=[0.0, 0.0]) == {"amplitude": 1, "slew": 3, "energy_budget": 1}
 
 
+def test_violations_with_an_energy_window_count_every_window_over_the_budget():
+    # by construction: squared sums 9, 9, 1, 0 per sample; windows of 2 sum to 18, 10, 1 against a budget of 10
+    lim = _lim(slew_max_ua=[np.inf, 5.0], energy_budget_ua2=10.0)
+    u = np.array([[3.0, 0.0], [3.0, 0.0], [1.0, 0.0], [0.0, 0.0]])
+    assert lim.violations(u, energy_window_steps=2, rtol=0.0)["energy_budget"] == 1
+    assert lim.violations(u, energy_window_steps=3, rtol=0.0)["energy_budget"] == 1  # 19 and 10: one over
+    assert lim.violations(u, energy_window_steps=10, rtol=0.0)["energy_budget"] == 1  # whole sequence, 19
+    assert lim.violations(u, energy_window_steps=1, rtol=0.0)["energy_budget"] == 0
+    assert lim.violations(u, last_input=[10.0, 0.0], rtol=0.0)["slew"] == 0  # inf: no slew limit on input 0
+    from stimsteer.sysid.exceptions import InvalidParameterError
+
+    with pytest.raises(InvalidParameterError, match="energy_window_steps must be a whole number"):
+        lim.violations(u, energy_window_steps=0)
+
+
 @pytest.mark.parametrize(
     "kw, match",
     [

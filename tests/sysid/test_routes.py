@@ -283,10 +283,10 @@ def test_write_prediction(fitted, tmp_path):
 def test_a_schedule_file_reads_as_a_pattern(tmp_path):
     # `stimsteer schedule` writes a trial column; predicting the whole schedule must accept it
     from stimsteer.sysid.routes import load_pattern
-    from stimsteer.sysid.schedule import design_schedule, save_schedule
+    from stimsteer.control import StimLimits, design_schedule, save_schedule
 
-    sched = design_schedule(n_inputs=2, order=6, lo=[-1.0, -1.0], hi=[1.0, 1.0], sample_rate_hz=100.0,
-                            n_trials=2, trial_s=1.0, rest_s=0.2, seed=3)
+    limits = StimLimits(amplitude_min_ua=[-1.0, -1.0], amplitude_max_ua=[1.0, 1.0])
+    sched = design_schedule(limits, order=6, sample_rate_hz=100.0, n_trials=2, trial_s=1.0, rest_s=0.2, seed=3)
     path = tmp_path / "schedule.csv"
     save_schedule(sched, path)
     pattern = load_pattern(path)

@@ -1,26 +1,24 @@
-"""Behaviour of stimsteer.sysid.schedule: exciting schedules inside declared bounds, and their CSV files."""
+"""Behaviour of stimsteer.control.schedule: exciting schedules inside declared limits, and their CSV files."""
 
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from stimsteer.sysid.exceptions import ExcitationError, FileFormatError, LimitsError, SessionError
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.schedule import SCHEDULE_KINDS, design_schedule, load_schedule, save_schedule
 from stimsteer.sysid.excitation import pe_order
-from stimsteer.sysid.schedule import (
-    SCHEDULE_KINDS,
-    crest_factor,
-    design_schedule,
-    load_schedule,
-    max_length_sequence,
-    multisine,
-    save_schedule,
-    verify_excitation,
-)
+from stimsteer.sysid.exceptions import (ExcitationError, FileFormatError, InfeasiblePlanError, InvalidParameterError,
+                                        LimitsError)
 
 # Small designs keep the suite fast: 3 inputs, order 12, 200 Hz, 1 s trials (values chosen for this test file).
-SMALL = dict(n_inputs=3, order=12, sample_rate_hz=200.0, trial_s=1.0, rest_s=0.25)
+SMALL = dict(order=12, sample_rate_hz=200.0, trial_s=1.0, rest_s=0.25)
 LO, HI, SLEW = np.array([-40.0, 0.0, -10.0]), np.array([40.0, 80.0, 10.0]), np.array([30.0, 25.0, 8.0])
+
+
+def _lim(lo, hi, slew=None, budget=None, names=None, n_inputs=3):
+    return StimLimits(amplitude_min_ua=lo, amplitude_max_ua=hi, slew_max_ua=slew, energy_budget_ua2=budget,
+                      input_names=names, n_inputs=n_inputs)
 
 
 def _assert_within(s, lo, hi, slew=None, budget=None, window=None):
@@ -34,78 +32,10 @@ def _assert_within(s, lo, hi, slew=None, budget=None, window=None):
         assert np.all(c[window:] - c[:-window] <= budget)
 
 
-# ------------------------------------------------------------------------------------------------ signals
-def test_max_length_sequence_has_the_two_valued_periodic_autocorrelation():
-    # Golomb S.W. (1967), Shift Register Sequences: an m-sequence of period N on ±1 has periodic
-    # autocorrelation 1 at lag 0 and -1/N at every other lag.
-    for nbits in (5, 8):
-        s = max_length_sequence(nbits)
-        N = 2 ** nbits - 1
-        assert s.size == N and set(np.unique(s)) == {-1.0, 1.0}
-        r = np.array([np.dot(s, np.roll(s, k)) / N for k in range(N)])
-        assert r[0] == 1.0
-        np.testing.assert_allclose(r[1:], -1.0 / N, rtol=0, atol=1e-15)
-
-
-def test_max_length_sequence_seed_gives_a_cyclic_shift(seed):
-    s, t = max_length_sequence(6), max_length_sequence(6, seed=seed)
-    assert any(np.array_equal(np.roll(s, k), t) for k in range(s.size))
-    with pytest.raises(SessionError, match="nbits must be between 2 and 32"):
-        max_length_sequence(1)
-
-
-def test_crest_factor_of_a_sinusoid_is_root_two():
-    # peak / rms of a sinusoid = sqrt(2) (common practice, no source)
-    x = np.sin(2 * np.pi * np.arange(400) / 40)
-    assert crest_factor(x) == pytest.approx(np.sqrt(2), rel=1e-12)
-    np.testing.assert_allclose(crest_factor(np.column_stack([x, 3 * x])), np.sqrt(2), rtol=1e-12)
-
-
-def test_multisine_has_a_flat_spectrum_on_its_harmonics_only(seed):
-    P, k = 256, np.arange(3, 70, 2)
-    x = multisine(P, k, seed=seed)
-    assert np.max(np.abs(x)) == pytest.approx(1.0) and abs(x.mean()) < 1e-12
-    X = np.abs(np.fft.rfft(x))
-    np.testing.assert_allclose(X[k], X[k[0]], rtol=1e-9)
-    others = np.setdiff1d(np.arange(X.size), k)
-    assert np.max(X[others]) < 1e-9 * X[k[0]]
-
-
-def test_multisine_crest_factor_is_reduced_from_random_phases(seed):
-    P, k = 512, np.arange(1, 65)
-    start = crest_factor(multisine(P, k, seed=seed, n_iter=1))  # one iteration = the random-phase start
-    reduced = crest_factor(multisine(P, k, seed=seed, n_iter=100))
-    # the clipping algorithm brings flat multisines to about 1.4-1.7 (Van der Ouderaa et al. 1988, from memory);
-    # 2.0 leaves a margin
-    assert reduced < start and reduced < 2.0
-
-
-def test_multisine_rejects_bad_harmonics():
-    with pytest.raises(SessionError, match="1 <= k < P/2"):
-        multisine(16, [0, 3])
-    with pytest.raises(SessionError, match="1 <= k < P/2"):
-        multisine(16, [8])
-
-
-# ------------------------------------------------------------------------------------------------ excitation
-def test_periodic_pulse_train_is_not_exciting_beyond_its_period():
-    # A periodic signal of period P has Hankel rank <= P (task brief of the direct-route issue; Willems et al. 2005)
-    u = np.tile([1.0, 0.0, 0.0, 0.0], 100)[:, None]
-    assert verify_excitation(u, [(0, 400)], 4).exciting
-    check = verify_excitation(u, [(0, 400)], 5)
-    assert not check.exciting and check.rank == 4 and check.singular_value_ratio == 0.0
-
-
-def test_verify_excitation_of_trials_shorter_than_the_order():
-    check = verify_excitation(np.ones((20, 1)), [(0, 5), (10, 15)], 6)
-    assert not check.exciting and check.n_columns == 0
-
-
 # ------------------------------------------------------------------------------------------------ design
 @pytest.mark.parametrize("kind", SCHEDULE_KINDS)
 def test_every_kind_stays_inside_its_bounds_and_is_exciting(kind, seed):
-    s = design_schedule(kind=kind, lo=LO, hi=HI, slew=SLEW if kind != "multilevel" else 2 * SLEW, seed=seed,
-                        **SMALL)
+    s = design_schedule(_lim(LO, HI, SLEW if kind != "multilevel" else 2 * SLEW), kind=kind, seed=seed, **SMALL)
     _assert_within(s, LO, HI, SLEW if kind != "multilevel" else 2 * SLEW)
     assert s.excitation.exciting and s.excitation.order == 12 and s.excitation.n_rows == 36
     # outside check of our check: helper D's pe_order on the trials agrees
@@ -116,15 +46,15 @@ def test_every_kind_stays_inside_its_bounds_and_is_exciting(kind, seed):
 
 
 def test_same_seed_same_schedule_other_seed_other_schedule(seed):
-    a = design_schedule(kind="multilevel", lo=-1, hi=1, seed=seed, **SMALL)
-    b = design_schedule(kind="multilevel", lo=-1, hi=1, seed=seed, **SMALL)
-    c = design_schedule(kind="multilevel", lo=-1, hi=1, seed=seed + 1, **SMALL)
+    a = design_schedule(_lim(-1, 1), kind="multilevel", seed=seed, **SMALL)
+    b = design_schedule(_lim(-1, 1), kind="multilevel", seed=seed, **SMALL)
+    c = design_schedule(_lim(-1, 1), kind="multilevel", seed=seed + 1, **SMALL)
     np.testing.assert_array_equal(a.u, b.u)
     assert not np.array_equal(a.u, c.u)
 
 
 def test_layout_of_trials_and_rests_and_session_length():
-    s = design_schedule(kind="prbs", lo=-1, hi=1, n_trials=5, **SMALL)
+    s = design_schedule(_lim(-1, 1), kind="prbs", n_trials=5, **SMALL)
     assert s.n_trials == 5
     np.testing.assert_array_equal(s.trials[:, 1] - s.trials[:, 0], 200)
     np.testing.assert_array_equal(s.trials[1:, 0] - s.trials[:-1, 1], 50)
@@ -138,77 +68,82 @@ def test_layout_of_trials_and_rests_and_session_length():
 
 
 def test_automatic_trial_count_gives_a_column_margin():
-    s = design_schedule(kind="prbs", lo=-1, hi=1, **{**SMALL, "trial_s": 0.2})
+    s = design_schedule(_lim(-1, 1), kind="prbs", **{**SMALL, "trial_s": 0.2})
     assert s.n_trials >= 4
     assert s.excitation.n_columns >= 2 * s.excitation.n_rows
 
 
-def test_rest_level_is_the_bound_nearest_zero():
-    s = design_schedule(kind="pulses", lo=[5.0, -20.0, -3.0], hi=[20.0, -2.0, 3.0], **SMALL)
-    np.testing.assert_array_equal(s.rest_level, [5.0, -2.0, 0.0])
+def test_the_rest_level_is_zero_stimulation():
+    # StimLimits keep zero inside every amplitude window, so rests (and the start) are zero stimulation
+    s = design_schedule(_lim([0.0, -20.0, -3.0], [20.0, 0.0, 3.0]), kind="pulses", **SMALL)
+    np.testing.assert_array_equal(s.rest_level, [0.0, 0.0, 0.0])
     np.testing.assert_array_equal(s.u[0], s.rest_level)
 
 
 def test_energy_budget_holds_on_every_window(seed):
-    s = design_schedule(kind="prbs", lo=-50, hi=50, energy_budget=20000.0, seed=seed, **SMALL)
+    s = design_schedule(_lim(-50, 50, budget=20000.0), kind="prbs", seed=seed, **SMALL)
     assert s.energy_gain < 1.0 and s.energy_window_steps == 12
     _assert_within(s, -50, 50, budget=20000.0, window=12)
     assert s.excitation.exciting
 
 
-def test_energy_budget_below_the_rest_level_is_refused():
-    with pytest.raises(LimitsError, match="rest level alone uses"):
-        design_schedule(kind="prbs", lo=10, hi=50, energy_budget=100.0, **SMALL)
+def test_an_energy_window_other_than_the_order(seed):
+    s = design_schedule(_lim(-50, 50, budget=20000.0), kind="prbs", seed=seed, energy_window_steps=30, **SMALL)
+    assert s.energy_window_steps == 30
+    _assert_within(s, -50, 50, budget=20000.0, window=30)
+    with pytest.raises(InvalidParameterError, match="energy_window_steps must be a whole number >= 1"):
+        design_schedule(_lim(-50, 50, budget=20000.0), kind="prbs", energy_window_steps=0, **SMALL)
 
 
 @pytest.mark.parametrize("kw, match", [
-    (dict(lo=1.0, hi=1.0), "lower bound 1 >= upper bound 1"),
-    (dict(lo=[0, 0], hi=1.0), r"one value per input \(3\)"),
-    (dict(lo=-1.0, hi=np.inf), "must be finite"),
-    (dict(lo=-1.0, hi=1.0, slew=0.0), "slew limits must be positive"),
+    (dict(lo=1.0, hi=1.0), "zero stimulation must lie inside"),
+    (dict(lo=[0, 0], hi=1.0), "disagree on the number of inputs"),
+    (dict(lo=-1.0, hi=np.inf), "NaN or infinite"),
+    (dict(lo=-1.0, hi=1.0, slew=0.0), "slew_max_ua must be positive"),
+    (dict(lo=-1.0, hi=1.0, names=["a", "a", "b"]), "unique names"),
 ])
 def test_bad_bounds_are_refused(kw, match):
+    # the bounds of a schedule are a StimLimits, which refuses them before any design
     with pytest.raises(LimitsError, match=match):
-        design_schedule(kind="prbs", **kw, **SMALL)
+        design_schedule(_lim(**kw), kind="prbs", **SMALL)
 
 
 def test_multilevel_with_a_slew_smaller_than_the_level_spacing_is_refused():
     with pytest.raises(LimitsError, match="smaller than the level spacing"):
-        design_schedule(kind="multilevel", lo=-10, hi=10, slew=1.0, **SMALL)
+        design_schedule(_lim(-10, 10, slew=1.0), kind="multilevel", **SMALL)
 
 
 def test_too_short_trials_are_refused():
     with pytest.raises(ExcitationError, match="shorter than the excitation order 12"):
-        design_schedule(kind="prbs", lo=-1, hi=1, **{**SMALL, "trial_s": 0.05})
+        design_schedule(_lim(-1, 1), kind="prbs", **{**SMALL, "trial_s": 0.05})
 
 
 def test_too_few_columns_are_refused():
     with pytest.raises(ExcitationError, match="excites rank .* of the 36 rows"):
-        design_schedule(kind="prbs", lo=-1, hi=1, n_trials=1, **{**SMALL, "trial_s": 0.1})
+        design_schedule(_lim(-1, 1), kind="prbs", n_trials=1, **{**SMALL, "trial_s": 0.1})
 
 
 def test_multisine_band_too_narrow_is_refused():
     with pytest.raises(ExcitationError, match="harmonics per input"):
-        design_schedule(kind="multisine", lo=-1, hi=1, band_hz=5.0, **SMALL)
+        design_schedule(_lim(-1, 1), kind="multisine", band_hz=5.0, **SMALL)
 
 
 def test_pulse_rate_too_high_is_refused():
-    with pytest.raises(SessionError, match="pulse_rate_hz 150 is too high"):
-        design_schedule(kind="pulses", lo=-1, hi=1, pulse_rate_hz=150.0, **SMALL)
+    with pytest.raises(InvalidParameterError, match="pulse_rate_hz 150 is too high"):
+        design_schedule(_lim(-1, 1), kind="pulses", pulse_rate_hz=150.0, **SMALL)
 
 
 @pytest.mark.parametrize("kw, match", [
     (dict(kind="chirp"), "kind must be one of"),
-    (dict(n_inputs=0), "n_inputs must be a whole number >= 1"),
+    (dict(limits={"lo": -1.0, "hi": 1.0}), "limits must be a StimLimits"),
     (dict(order=2.5), "order must be a whole number >= 1"),
     (dict(sample_rate_hz=-5.0), "sample_rate_hz must be positive"),
     (dict(rest_s=-1.0), "rest_s must be >= 0"),
-    (dict(input_names=["a", "a", "b"]), "names unique"),
     (dict(kind="multilevel", n_levels=1), "n_levels must be a whole number >= 2"),
 ])
 def test_bad_arguments_are_refused(kw, match):
-    args = {**SMALL, "kind": "prbs", "lo": -1.0, "hi": 1.0, **kw}
-    with pytest.raises(SessionError, match=match):
+    args = {**SMALL, "kind": "prbs", "limits": _lim(-1.0, 1.0), **kw}
+    with pytest.raises(InvalidParameterError, match=match):
         design_schedule(**args)
 
 
@@ -217,21 +152,22 @@ def test_bad_arguments_are_refused(kw, match):
     kind=st.sampled_from(SCHEDULE_KINDS),
     m=st.integers(1, 3),
     order=st.integers(1, 8),
-    lo=st.floats(-100, 50, allow_nan=False),
+    below=st.floats(0.0, 1.0, allow_nan=False),
     width=st.floats(0.5, 150, allow_nan=False),
     slew_frac=st.one_of(st.none(), st.floats(0.05, 2.0)),
     budget=st.one_of(st.none(), st.floats(1.0, 1e6)),
     seed=st.integers(0, 2 ** 31),
 )
-def test_schedules_never_exceed_the_declared_limits(kind, m, order, lo, width, slew_frac, budget, seed):
+def test_schedules_never_exceed_the_declared_limits(kind, m, order, below, width, slew_frac, budget, seed):
     # property test (task brief): every schedule that is produced respects amplitude, slew and energy limits;
-    # impossible requests raise a toolkit error instead
-    lo_v = np.full(m, lo)
+    # impossible requests raise a toolkit error instead. The window holds zero (`below` of it under zero), as
+    # every StimLimits window does.
+    lo_v = np.full(m, -below * width)
     hi_v = lo_v + width
     slew = None if slew_frac is None else np.full(m, slew_frac * width)
     try:
-        s = design_schedule(n_inputs=m, order=order, lo=lo_v, hi=hi_v, slew=slew, kind=kind, sample_rate_hz=100.0,
-                            trial_s=0.5, rest_s=0.1, energy_budget=budget, seed=seed, n_iter=5)
+        s = design_schedule(_lim(lo_v, hi_v, slew, budget, n_inputs=m), order=order, kind=kind,
+                            sample_rate_hz=100.0, trial_s=0.5, rest_s=0.1, seed=seed, n_iter=5)
     except (LimitsError, ExcitationError):
         return
     _assert_within(s, lo_v, hi_v, slew, budget, s.energy_window_steps)
@@ -240,8 +176,7 @@ def test_schedules_never_exceed_the_declared_limits(kind, m, order, lo, width, s
 
 # ------------------------------------------------------------------------------------------------ files
 def test_schedule_file_round_trips_exactly(tmp_path, seed):
-    s = design_schedule(kind="multisine", lo=LO, hi=HI, slew=SLEW, seed=seed, input_names=["site_a", "site_b", "c"],
-                        **SMALL)
+    s = design_schedule(_lim(LO, HI, SLEW, names=["site_a", "site_b", "c"]), kind="multisine", seed=seed, **SMALL)
     path = save_schedule(s, tmp_path / "next.csv")
     u, trials, names, units, rate = load_schedule(path)
     np.testing.assert_array_equal(u, s.u)
@@ -288,39 +223,38 @@ def test_bad_schedule_files_get_clear_errors(tmp_path, text, match):
 
 
 def test_infinite_slew_means_no_limit_on_that_input(seed):
-    s = design_schedule(kind="prbs", lo=LO, hi=HI, slew=[np.inf, 25.0, np.inf], seed=seed, **SMALL)
+    s = design_schedule(_lim(LO, HI, [np.inf, 25.0, np.inf]), kind="prbs", seed=seed, **SMALL)
     _assert_within(s, LO, HI, [np.inf, 25.0, np.inf])
     assert np.max(np.abs(np.diff(s.u[:, 0]))) == pytest.approx(80.0)  # full-range jumps where unlimited
-    assert design_schedule(kind="prbs", lo=LO, hi=HI, slew=np.inf, **SMALL).slew is None
+    assert design_schedule(_lim(LO, HI, np.inf), kind="prbs", **SMALL).slew is None
 
 
 def test_a_switched_off_input_is_named_in_the_error():
     with pytest.raises(LimitsError, match="input 1 .* switched off"):
-        design_schedule(kind="prbs", lo=[-1.0, 0.0, -1.0], hi=[1.0, 0.0, 1.0], **SMALL)
+        design_schedule(_lim([-1.0, 0.0, -1.0], [1.0, 0.0, 1.0]), kind="prbs", **SMALL)
 
 
 def test_the_final_guard_refuses_any_limit_violation():
-    from stimsteer.sysid.exceptions import InfeasiblePlanError
-    from stimsteer.sysid.schedule import _check_limits
+    from stimsteer.control.schedule import _check_limits
 
-    lo, hi, slew, base = np.array([-1.0]), np.array([1.0]), np.array([0.5]), np.array([0.0])
+    base = np.array([0.0])
     ok = np.array([[0.5], [0.0], [-0.5]])
-    _check_limits(ok, lo, hi, slew, base, 0.6, 2)
+    _check_limits(ok, _lim(-1.0, 1.0, 0.5, 0.6, n_inputs=1), base, 2)
     with pytest.raises(InfeasiblePlanError, match="left its amplitude bounds"):
-        _check_limits(np.array([[1.5]]), lo, hi, None, base, None, None)
+        _check_limits(np.array([[1.5]]), _lim(-1.0, 1.0, n_inputs=1), base, None)
     with pytest.raises(InfeasiblePlanError, match="broke its slew limit"):
-        _check_limits(np.array([[0.6]]), lo, hi, slew, base, None, None)
+        _check_limits(np.array([[0.6]]), _lim(-1.0, 1.0, 0.5, n_inputs=1), base, None)
     with pytest.raises(InfeasiblePlanError, match="broke its energy budget"):
-        _check_limits(ok, lo, hi, slew, base, 0.2, 2)
+        _check_limits(ok, _lim(-1.0, 1.0, 0.5, 0.2, n_inputs=1), base, 2)
 
 
 def test_non_numeric_durations_are_refused():
-    with pytest.raises(SessionError, match="trial_s must be a number"):
-        design_schedule(kind="prbs", lo=-1, hi=1, **{**SMALL, "trial_s": "long"})
+    with pytest.raises(InvalidParameterError, match="trial_s must be a number"):
+        design_schedule(_lim(-1, 1), kind="prbs", **{**SMALL, "trial_s": "long"})
 
 
 def test_a_name_that_cannot_be_a_column_header_is_refused(tmp_path):
-    s = design_schedule(kind="prbs", lo=-1, hi=1, input_names=["a[1]", "b", "c"], **SMALL)
+    s = design_schedule(_lim(-1, 1, names=["a[1]", "b", "c"]), kind="prbs", **SMALL)
     with pytest.raises(FileFormatError, match="cannot be written as 'in:<name> \\[<unit>\\]'"):
         save_schedule(s, tmp_path / "s.csv")
     assert not (tmp_path / "s.csv").exists()
@@ -341,9 +275,7 @@ def test_more_bad_schedule_files(tmp_path, text, match):
 def test_prbs_with_held_bits_ramps_at_the_slew_limit_to_wider_levels():
     # with bits held 4 samples and a slew of 10 per sample, a switch can span 40 (ramping 4 samples at the limit),
     # so the levels are ±20 instead of the ±5 a single-sample switch allows (arithmetic of the declared limits)
-    from stimsteer.sysid.schedule import design_schedule
-
-    s = design_schedule(n_inputs=1, order=8, lo=[-50.0], hi=[50.0], slew=[10.0], kind="prbs", hold_steps=4,
+    s = design_schedule(_lim([-50.0], [50.0], [10.0], n_inputs=1), order=8, kind="prbs", hold_steps=4,
                         sample_rate_hz=100.0, n_trials=4, trial_s=2.0, rest_s=0.5, seed=5)
     assert np.max(s.u) == pytest.approx(20.0) and np.min(s.u) == pytest.approx(-20.0)
     assert np.max(np.abs(np.diff(np.vstack([[0.0], s.u]), axis=0))) <= 10.0
@@ -352,9 +284,7 @@ def test_prbs_with_held_bits_ramps_at_the_slew_limit_to_wider_levels():
 def test_a_schedule_file_opens_with_the_caution_and_reads_back(tmp_path):
     # a schedule is stimulation to deliver, so its file carries the project's caution (project rule)
     from stimsteer.sysid.caution import CAUTION
-    from stimsteer.sysid.schedule import design_schedule, load_schedule, save_schedule
-
-    s = design_schedule(n_inputs=1, order=4, lo=[-1.0], hi=[1.0], sample_rate_hz=100.0, n_trials=2, trial_s=1.0,
+    s = design_schedule(_lim([-1.0], [1.0], n_inputs=1), order=4, sample_rate_hz=100.0, n_trials=2, trial_s=1.0,
                         rest_s=0.2, seed=2)
     path = save_schedule(s, tmp_path / "s.csv")
     assert path.read_text().splitlines()[0] == f"# {CAUTION}"

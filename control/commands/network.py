@@ -1,7 +1,7 @@
-"""Network-control tables and figures of a fitted state-space model (the ``stimsteer network`` command).
+"""``stimsteer network``: network-control tables and figures of a fitted state-space model, in one folder.
 
-:func:`write_network_outputs` computes everything with :mod:`stimsteer.sysid.network` and writes one folder,
-atomically:
+:func:`write_network_outputs` computes everything with :mod:`stimsteer.sysid.network`, draws the figures of
+:mod:`stimsteer.control.figures.network` and writes one folder, atomically:
 
 =============================  =====================================================================================
 file                           content
@@ -15,8 +15,6 @@ file                           content
                                without one: the sites ranked by average controllability
 ``transition.csv``             with a target: the minimum-energy input over the horizon using every site
 =============================  =====================================================================================
-
-Figures use matplotlib's Agg backend and the plain style below (no top/right frame, light horizontal grid).
 """
 
 from __future__ import annotations
@@ -24,25 +22,23 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
+import pandas as pd
 
-from ..sysid._files import atomic_dir
-from ..sysid.exceptions import FileFormatError, SessionError, UnstableModelError
-from ..sysid.network import (
-    controllability,
-    impulse_responses,
-    pattern_transition,
-    rank_sites,
-    site_controllability,
-)
-from ..sysid.statespace import StateSpaceModel
+from ...sysid import (InvalidParameterError, StateSpaceForm, UnstableModelError, controllability,
+                      impulse_responses, load_predictor, pattern_transition, rank_sites, site_controllability)
+from ...sysid._files import atomic_dir
+from ...sysid.caution import CAUTION
 
-__all__ = ["NetworkOutputs", "read_pattern", "state_space_of", "write_network_outputs"]
+if TYPE_CHECKING:
+    from ...sysid import StateSpaceModel
 
-_INK, _ACCENT, _MUTED, _WARN = "#24434f", "#c7792f", "#8a9aa3", "#a23b3b"
-_MAX_GRID = 8       # impulse-response grid: at most this many channels x sites are drawn (all are in the CSV)
-_MAX_BARS = 20      # ranking figure: the best this many sets
+__all__ = ["add_parser", "run", "NetworkOutputs", "read_pattern", "state_space_of", "write_network_outputs"]
+
+
+_DPI = 110
 
 
 @dataclass(frozen=True)
@@ -61,21 +57,62 @@ class NetworkOutputs:
     lines: tuple
 
 
+def add_parser(subparsers) -> None:
+    """Declare ``stimsteer network`` and its options."""
+    p = subparsers.add_parser("network", help="network-control tables and figures of a fitted state-space model: "
+                              "controllability, site ranking, minimum-energy transitions")
+    p.add_argument("model", help="model file written by `stimsteer fit --route indirect`")
+    p.add_argument("--out", required=True, help="output folder for the CSV tables and PNG figures")
+    p.add_argument("--target", metavar="PATTERN",
+                   help="target activity pattern: one value per recorded channel, comma-separated (e.g. "
+                   "'0.5,0,1.2'), or a CSV file holding such a row (optionally under a header of channel names)")
+    p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (default: rest)")
+    p.add_argument("--horizon-steps", type=int, help="samples of the minimum-energy transition (default 2 x states)")
+    p.add_argument("--max-set-size", type=int, choices=[1, 2, 3], default=2,
+                   help="largest number of sites stimulated together in the ranking (default 2)")
+    p.add_argument("--normalise", action="store_true",
+                   help="analyse A / (1 + sigma_max(A)) for Gramian and site controllability (Gu et al. 2015); "
+                   "default: the fitted A as it is")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+
+
+def run(args) -> int:
+    """Load the model, write the tables and figures, print the summary; 0 on success."""
+    if args.start is not None and args.target is None:
+        raise InvalidParameterError("--start needs --target: give the pattern to move to as well.")
+    predictor, provenance = load_predictor(args.model)
+    model = state_space_of(predictor, args.model)
+    target = None if args.target is None else read_pattern(args.target, model.output_names)
+    start = None if args.start is None else read_pattern(args.start, model.output_names)
+    recorded = provenance.get("session") if isinstance(provenance, dict) else None
+    units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
+    result = write_network_outputs(model, args.out, target=target, start=start, horizon_steps=args.horizon_steps,
+                                   max_set_size=args.max_set_size, normalise=args.normalise, force=args.force,
+                                   **units)
+    print("\n".join(result.lines))
+    print(f"wrote {len(result.files)} files to {args.out}: " + ", ".join(sorted(p.name for p in result.files.values())))
+    if target is not None:
+        print("note: the minimum-energy input is a figure of the model, not a stimulation plan: no declared limit "
+              "was applied to it. Design stimulation with `stimsteer plan --limits`.")
+    print(CAUTION)
+    return 0
+
+
 # ---------------------------------------------------------------------------------------------------- inputs
-def state_space_of(predictor, source: str = "the model file") -> StateSpaceModel:
+def state_space_of(predictor, source: str = "the model file"):
     """The state-space model behind a loaded predictor (indirect route), or a clear error for the direct route.
+
+    Dispatches on the contract: a predictor with the :class:`~stimsteer.sysid.protocols.StateSpaceForm`
+    capability (``state_space_model()``) gives its model.
 
     Raises
     ------
-    FileFormatError
+    InvalidParameterError
         When the predictor has no state-space model (a direct-route data predictor).
     """
-    if isinstance(predictor, StateSpaceModel):
-        return predictor
-    model = getattr(predictor, "model_", None)
-    if isinstance(model, StateSpaceModel):
-        return model
-    raise FileFormatError(
+    if isinstance(predictor, StateSpaceForm):
+        return predictor.state_space_model()
+    raise InvalidParameterError(
         f"{source} holds a {type(predictor).__name__}, a direct-route data predictor without a state-space model; "
         "network figures need a state-space model. Fit one with `stimsteer fit SESSION --route indirect --method "
         "subspace` (or arx) and pass that file."
@@ -86,7 +123,8 @@ def _numbers(cells, where) -> np.ndarray:
     try:
         return np.array([float(c) for c in cells], dtype=np.float64)
     except ValueError:
-        raise SessionError(f"{where}: expected numbers separated by commas; got {','.join(cells)!r}.") from None
+        raise InvalidParameterError(f"{where}: expected numbers separated by commas; got "
+                                    f"{','.join(cells)!r}.") from None
 
 
 def _channel_name(header: str) -> str:
@@ -114,7 +152,7 @@ def read_pattern(text: str, output_names) -> np.ndarray:
 
     Raises
     ------
-    SessionError
+    InvalidParameterError
         Wrong count, non-numbers, or header names that do not match the model's outputs.
     """
     names = list(output_names)
@@ -123,122 +161,31 @@ def read_pattern(text: str, output_names) -> np.ndarray:
         lines = [ln.strip() for ln in Path(text).read_text(encoding="utf-8-sig").splitlines()]
         rows = [[c.strip() for c in ln.split(",")] for ln in lines if ln and not ln.startswith("#")]
         if not rows:
-            raise SessionError(f"{where} is an empty file; write one row of {len(names)} values.")
+            raise InvalidParameterError(f"{where} is an empty file; write one row of {len(names)} values.")
         header = None
         try:
             [float(c) for c in rows[0]]
         except ValueError:
             header, rows = [_channel_name(c) for c in rows[0]], rows[1:]
         if not rows:
-            raise SessionError(f"{where} has a header but no row of values.")
+            raise InvalidParameterError(f"{where} has a header but no row of values.")
         values = _numbers(rows[0], where)
         if header is not None:
             if sorted(header) != sorted(names) or len(header) != len(values):
-                raise SessionError(f"{where}: the header names {header} must be the model's outputs {names}.")
+                raise InvalidParameterError(f"{where}: the header names {header} must be the model's outputs {names}.")
             values = values[[header.index(n) for n in names]]
     else:
         values = _numbers([c.strip() for c in text.split(",") if c.strip()], where)
     if values.shape != (len(names),) or not np.all(np.isfinite(values)):
-        raise SessionError(
+        raise InvalidParameterError(
             f"{where}: expected {len(names)} finite values, one per recorded channel ({', '.join(names)}); got "
             f"{values.size}."
         )
     return values
 
 
-# ---------------------------------------------------------------------------------------------------- figures
-def _plain_axes(ax):
-    ax.spines[["top", "right"]].set_visible(False)
-    ax.grid(axis="y", color="0.92", lw=0.6)
-    ax.tick_params(labelsize=7)
-
-
-def _figure(w, h):
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt, plt.figure(figsize=(w, h))
-
-
-def _plot_spectrum(rep, path):
-    plt, fig = _figure(6.0, 3.4)
-    ax = fig.add_subplot()
-    eig = np.asarray(rep.gramian_eigenvalues)
-    k = np.arange(1, eig.size + 1)
-    positive = eig > 0
-    ax.semilogy(k[positive], eig[positive], "o-", color=_INK, ms=3.5, lw=1.0)
-    if (~positive).any():
-        ax.text(0.98, 0.95, f"{int((~positive).sum())} zero eigenvalue(s)", transform=ax.transAxes, ha="right",
-                va="top", fontsize=7, color=_WARN)
-    horizon = "infinite horizon" if rep.horizon_steps is None else f"horizon {rep.horizon_steps} steps"
-    ax.set_xlabel("eigenvalue index", fontsize=8)
-    ax.set_ylabel("Gramian eigenvalue", fontsize=8)
-    ax.set_title(f"Controllability Gramian spectrum ({horizon}; condition {rep.condition_number:.3g};\n"
-                 f"normalisation: {rep.normalisation})", fontsize=9)
-    _plain_axes(ax)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
-def _with_unit(name: str, unit: str | None) -> str:
-    return name if not unit else f"{name} [{unit}]"
-
-
-def _plot_impulses(h, model, path, units=None):
-    p, m = h.shape[1], h.shape[2]
-    in_units, out_units = units if units is not None else ((None,) * m, (None,) * p)
-    rp, rm = min(p, _MAX_GRID), min(m, _MAX_GRID)
-    plt, fig = _figure(1.6 * rm + 1.2, 1.1 * rp + 1.0)
-    t = np.arange(h.shape[0]) / model.sample_rate_hz
-    axes = fig.subplots(rp, rm, sharex=True, squeeze=False)
-    for i in range(rp):
-        for j in range(rm):
-            ax = axes[i, j]
-            ax.axhline(0.0, color=_MUTED, lw=0.5)
-            ax.plot(t, h[:, i, j], color=_INK, lw=0.9)
-            _plain_axes(ax)
-            if i == 0:
-                ax.set_title(_with_unit(model.input_names[j], in_units[j]), fontsize=7)
-            if j == 0:
-                ax.set_ylabel(_with_unit(model.output_names[i], out_units[i]), fontsize=7)
-            if i == rp - 1:
-                ax.set_xlabel("time [s]", fontsize=7)
-    notes = ["response in channel unit per site unit"] if units is not None else []
-    if (rp, rm) != (p, m):
-        notes.append(f"first {rp} of {p} channels, {rm} of {m} sites; all in the CSV")
-    second = "\n" + "; ".join(notes) if notes else ""
-    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){second}", fontsize=9)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
-def _plot_ranking(labels, values, title, xlabel, path, log=True):
-    n = min(len(labels), _MAX_BARS)
-    plt, fig = _figure(6.0, 0.28 * n + 1.3)
-    ax = fig.add_subplot()
-    ypos = np.arange(n)[::-1]
-    ax.barh(ypos, values[:n], color=_ACCENT, height=0.65)
-    ax.set_yticks(ypos, labels[:n], fontsize=7)
-    if log and np.all(np.asarray(values[:n]) > 0):
-        ax.set_xscale("log")
-    ax.set_xlabel(xlabel, fontsize=8)
-    ax.set_title(title, fontsize=9)
-    ax.spines[["top", "right"]].set_visible(False)
-    ax.grid(axis="x", color="0.92", lw=0.6)
-    ax.tick_params(labelsize=7)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-
-
 # ---------------------------------------------------------------------------------------------------- tables
 def _summary_table(rep, model):
-    import pandas as pd
-
     rows = [
         ("n_states", model.n_states), ("n_sites", model.n_inputs), ("n_channels", model.n_outputs),
         ("spectral_radius", model.spectral_radius), ("kalman_rank", rep.rank), ("kalman_rank_tolerance", rep.rank_tol),
@@ -251,8 +198,6 @@ def _summary_table(rep, model):
 
 
 def _impulse_table(h, model, units=None):
-    import pandas as pd
-
     T, p, m = h.shape
     k, i, j = np.meshgrid(np.arange(T), np.arange(p), np.arange(m), indexing="ij")
     table = pd.DataFrame({
@@ -272,14 +217,12 @@ def _units(model, input_units, output_units):
         return None
     iu, ou = tuple(str(x) for x in input_units), tuple(str(x) for x in output_units)
     if len(iu) != model.n_inputs or len(ou) != model.n_outputs:
-        raise SessionError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one per "
-                           f"channel of the model); got {len(iu)} and {len(ou)}.")
+        raise InvalidParameterError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one "
+                                    f"per channel of the model); got {len(iu)} and {len(ou)}.")
     return iu, ou
 
 
 def _transition_table(tr, model):
-    import pandas as pd
-
     T = tr.u.shape[0]
     cols = {"step": np.arange(T), "time [s]": np.arange(T) / model.sample_rate_hz}
     for j, name in enumerate(model.input_names):
@@ -287,7 +230,7 @@ def _transition_table(tr, model):
     return pd.DataFrame(cols)
 
 
-# ---------------------------------------------------------------------------------------------------- main
+# ---------------------------------------------------------------------------------------------------- outputs
 def _check_stable(model, normalise):
     if not normalise and not model.is_stable:
         raise UnstableModelError(
@@ -332,13 +275,15 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     ------
     UnstableModelError
         For an unstable model without ``normalise``.
+    InvalidParameterError
+        For a horizon that is not a whole number >= 1, or unit lists that do not match the model's channels.
     """
     _check_stable(model, normalise)
     units = _units(model, input_units, output_units)
     n = model.n_states
     T = max(2 * n, 1) if horizon_steps is None else horizon_steps
     if isinstance(T, bool) or not isinstance(T, (int, np.integer)) or T < 1:
-        raise SessionError(f"horizon_steps must be a whole number of samples >= 1; got {horizon_steps!r}.")
+        raise InvalidParameterError(f"horizon_steps must be a whole number of samples >= 1; got {horizon_steps!r}.")
     rep = controllability(model, normalise=normalise)
     sites = site_controllability(model, normalise=normalise)
     h = impulse_responses(model, max(20, 3 * n) if impulse_steps is None else impulse_steps)
@@ -352,18 +297,21 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     ]
     order = np.argsort(-sites.average, kind="stable")
     out = Path(out_dir)
+    from ..figures import network as figures  # matplotlib is loaded only when a figure is drawn
+
     with atomic_dir(out, force=force) as tmp:
         _summary_table(rep, model).to_csv(tmp / "controllability.csv", index=False)
-        _write_spectrum(rep, tmp)
+        _write_spectrum(rep, tmp, figures)
         sites.to_frame().iloc[order].to_csv(tmp / "site_controllability.csv", index=False, float_format="%.10g")
         _impulse_table(h, model, units).to_csv(tmp / "impulse_responses.csv", index=False, float_format="%.10g")
-        _plot_impulses(h, model, tmp / "impulse_responses.png", units)
+        figures.impulse_response_figure(h, model, units).savefig(tmp / "impulse_responses.png", dpi=_DPI)
         if target is None:
-            _plot_ranking([sites.site_names[i] for i in order], sites.average[order],
-                          f"Sites by average controllability (normalisation: {sites.normalisation})",
-                          "average controllability (trace of the site's Gramian)", tmp / "site_ranking.png")
+            figures.ranking_figure([sites.site_names[i] for i in order], sites.average[order],
+                                   f"Sites by average controllability (normalisation: {sites.normalisation})",
+                                   "average controllability (trace of the site's Gramian)",
+                                   ).savefig(tmp / "site_ranking.png", dpi=_DPI)
         else:
-            lines += _write_target(model, tmp, target, start, T, max_set_size)
+            lines += _write_target(model, tmp, target, start, T, max_set_size, figures)
     names = ["controllability.csv", "gramian_spectrum.csv", "gramian_spectrum.png", "site_controllability.csv",
              "impulse_responses.csv", "impulse_responses.png", "site_ranking.png"]
     if target is not None:
@@ -372,16 +320,14 @@ def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start
     return NetworkOutputs(files=files, lines=tuple(lines))
 
 
-def _write_spectrum(rep, tmp):
-    import pandas as pd
-
+def _write_spectrum(rep, tmp, figures):
     eig = np.asarray(rep.gramian_eigenvalues)
     pd.DataFrame({"index": np.arange(1, eig.size + 1), "eigenvalue": eig}).to_csv(
         tmp / "gramian_spectrum.csv", index=False, float_format="%.10g")
-    _plot_spectrum(rep, tmp / "gramian_spectrum.png")
+    figures.gramian_spectrum_figure(rep).savefig(tmp / "gramian_spectrum.png", dpi=_DPI)
 
 
-def _write_target(model, tmp, target, start, T, max_set_size):
+def _write_target(model, tmp, target, start, T, max_set_size, figures):
     pt = pattern_transition(model, target, horizon_steps=T, y_start=start)
     ranking = rank_sites(model, pt.target.x, horizon_steps=T, x0=pt.transition.x0, max_set_size=max_set_size)
     ranking.to_frame().to_csv(tmp / "site_ranking.csv", index=False, float_format="%.10g")
@@ -391,11 +337,13 @@ def _write_target(model, tmp, target, start, T, max_set_size):
     if ranking.n_unreachable:
         title += f"\n{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot reach it (not shown)"
     if ok.any():
-        _plot_ranking([nm for nm, g in zip(ranking.names, ok) if g], ranking.energy[ok], title,
-                      "minimum input energy (sum of u², input units² x samples)", tmp / "site_ranking.png")
+        fig = figures.ranking_figure([nm for nm, g in zip(ranking.names, ok) if g], ranking.energy[ok], title,
+                                     "minimum input energy (sum of u², input units² x samples)")
     else:
-        _plot_ranking(list(ranking.names), ranking.residual, title + "\nno set reaches it: distance left shown",
-                      "distance to the target state left by the closest input", tmp / "site_ranking.png")
+        fig = figures.ranking_figure(list(ranking.names), ranking.residual,
+                                     title + "\nno set reaches it: distance left shown",
+                                     "distance to the target state left by the closest input")
+    fig.savefig(tmp / "site_ranking.png", dpi=_DPI)
     lines = []
     for label, ps in (("target", pt.target), ("start", pt.start)):
         if ps is not None and not ps.unique:

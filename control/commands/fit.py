@@ -1,0 +1,75 @@
+"""``stimsteer fit``: fit a predictor on training trials, score it on held-out trials, save it with its provenance."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+from ...sysid import InvalidParameterError, fit_route, open_session_source, save_predictor
+
+__all__ = ["add_parser", "run"]
+
+
+def _fraction(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1; got {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a number strictly between 0 and 1; got {value:g}")
+    return value
+
+
+def add_parser(subparsers) -> None:
+    """Declare ``stimsteer fit`` and its options."""
+    p = subparsers.add_parser("fit", help="fit a predictor on training trials, score it on held-out trials, save it")
+    p.add_argument("session", help="session file (our HDF5 layout is read lazily; CSV/Parquet/NWB are loaded)")
+    p.add_argument("--route", required=True, choices=["indirect", "direct"], help="model (indirect) or data (direct)")
+    p.add_argument("--method", required=True, choices=["arx", "subspace", "lsq", "hankel"],
+                   help="indirect: arx, subspace; direct: lsq, hankel")
+    p.add_argument("--out", required=True, help="model file to write (HDF5)")
+    p.add_argument("--horizon-steps", dest="horizon", type=int, metavar="N",
+                   help="prediction horizon in samples (scored; direct methods fit it)")
+    p.add_argument("--past-steps", dest="past", type=int, metavar="N",
+                   help="past window in samples (arx: output and input lags)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
+    p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
+    p.add_argument("--centre-outputs", action="store_true",
+                   help="subspace, lsq, hankel: fit on the outputs minus their training mean (for a baseline "
+                   "offset); predictions and plans stay in the recorded units (arx fits an intercept instead)")
+    p.add_argument("--force", action="store_true", help="replace an existing model file")
+
+
+def _settings(args) -> dict:
+    settings = {} if args.past is None else {"past_steps": args.past}
+    if args.centre_outputs:
+        if args.method == "arx":
+            raise InvalidParameterError("--centre-outputs is for the subspace, lsq and hankel methods; ridge ARX fits "
+                                        "an intercept of its own.")
+        settings["centre_outputs"] = True
+    return settings
+
+
+def run(args) -> int:
+    """Fit, save the model file, print the selection and held-out scores; 0 on success."""
+    if Path(args.out).exists() and not args.force:
+        raise InvalidParameterError(f"model file {args.out} already exists; choose another --out or pass --force.")
+    settings = _settings(args)
+    with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
+        warnings.simplefilter("always")
+        result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
+                           test_fraction=args.test_fraction, horizon_steps=args.horizon)
+    for w in caught:
+        sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
+    provenance = {**result.provenance, "session_file": str(args.session)}
+    save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
+    split = result.split
+    print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
+    print("selection (training trials only):")
+    print(result.selection_table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    print(f"held-out scores on trials {list(split.test)} (seed {split.seed}; means over output channels):")
+    print(result.heldout.to_text())
+    print(f"model written to {args.out}")
+    return 0

@@ -1,0 +1,71 @@
+"""``stimsteer schedule``: an exciting stimulation schedule for the next session, inside the declared limits, as a
+CSV file that opens with the caution."""
+
+from __future__ import annotations
+
+from ...sysid import InvalidParameterError, LimitsError, required_order
+from ...sysid.caution import CAUTION
+from ..limits import load_limits
+from ..schedule import SCHEDULE_KINDS, design_schedule, save_schedule
+
+__all__ = ["add_parser", "run"]
+
+
+def add_parser(subparsers) -> None:
+    """Declare ``stimsteer schedule`` and its options."""
+    p = subparsers.add_parser("schedule", help="design an exciting stimulation schedule for the next session, inside "
+                              "the declared limits, and write it as a CSV")
+    p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
+    p.add_argument("--inputs", required=True, type=int, help="number of stimulation inputs (must match the limits)")
+    p.add_argument("--order", type=int,
+                   help="excitation order to guarantee: past window + horizon + expected number of states "
+                   "(or give --past-steps and --horizon-steps instead)")
+    p.add_argument("--past-steps", type=int, help="past window the next fits will use, samples")
+    p.add_argument("--horizon-steps", type=int, help="prediction / control horizon, samples")
+    p.add_argument("--states", type=int, help="expected number of states (default: the past window)")
+    p.add_argument("--out", required=True, help="schedule file to write (CSV)")
+    p.add_argument("--kind", choices=list(SCHEDULE_KINDS), default="prbs", help="signal family (default prbs)")
+    p.add_argument("--rate-hz", type=float, default=1000.0, help="sample rate of the schedule (default 1000)")
+    p.add_argument("--trials", type=int, help="number of trials (default: enough for the order, at least 4)")
+    p.add_argument("--trial-s", type=float, default=10.0, help="trial length in seconds (default 10)")
+    p.add_argument("--rest-s", type=float, default=2.0, help="rest before, between and after trials (default 2)")
+    p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
+    p.add_argument("--hold-steps", type=int, default=1, help="samples each value is held (prbs, multilevel)")
+    p.add_argument("--levels", type=int, default=5, help="number of levels (multilevel; default 5)")
+    p.add_argument("--pulse-rate-hz", type=float, help="mean pulse rate (pulses; default rate / 5)")
+    p.add_argument("--band-hz", type=float, help="highest excited frequency (multisine; default Nyquist)")
+    p.add_argument("--energy-window-steps", type=int,
+                   help="window of the limits' energy budget, samples (default --order, which also covers any "
+                   "shorter planning horizon)")
+    p.add_argument("--force", action="store_true", help="replace an existing schedule file")
+
+
+def _order(args) -> int:
+    if args.order is not None:
+        return args.order
+    if args.past_steps is None or args.horizon_steps is None:
+        raise InvalidParameterError("give --order K, or --past-steps and --horizon-steps (and optionally --states) so "
+                                    "the order past + horizon + states can be derived.")
+    order = required_order(args.past_steps, args.horizon_steps, args.states)
+    states = f"states {args.states}" if args.states is not None else "states (assumed = past window)"
+    print(f"order {order} = past window {args.past_steps} + horizon {args.horizon_steps} + {states}")
+    return order
+
+
+def run(args) -> int:
+    """Design the schedule, write it, print its summary; 0 on success."""
+    order = _order(args)
+    limits = load_limits(args.limits)
+    if limits.n_inputs != args.inputs:
+        raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
+                          f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
+    schedule = design_schedule(
+        limits, order=order, kind=args.kind, sample_rate_hz=args.rate_hz, n_trials=args.trials,
+        trial_s=args.trial_s, rest_s=args.rest_s, seed=args.seed, energy_window_steps=args.energy_window_steps,
+        hold_steps=args.hold_steps, n_levels=args.levels, pulse_rate_hz=args.pulse_rate_hz, band_hz=args.band_hz,
+    )
+    save_schedule(schedule, args.out, overwrite=args.force)
+    print(schedule.to_text())
+    print(f"schedule written to {args.out}")
+    print(CAUTION)
+    return 0
