@@ -16,7 +16,7 @@ import sys
 
 from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
-from .commands import demo as _demo, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
+from .commands import bench as _bench, demo as _demo, plan as _plan, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
 
 __all__ = ["main", "build_parser", "CAUTION"]
 
@@ -35,20 +35,13 @@ def _run_demo(args):
 
 
 # ---------------------------------------------------------------------------------------------------- predict
-def _trial_ref(text):
-    path, sep, index = str(text).rpartition(":")
-    if not sep or not path or not index.strip().lstrip("-").isdigit():
-        raise argparse.ArgumentTypeError(f"expected SESSION:INDEX, e.g. session.h5:3; got {text!r}")
-    return path, int(index)
-
-
 def _add_predict(sub):
     p = sub.add_parser("predict", help="predict the response to a stimulation pattern with a fitted model")
     p.add_argument("model", help="model file written by `stimsteer fit`")
     p.add_argument("--pattern", required=True,
                    help="CSV of inputs: 'time [s]' and one 'in:<name> [<unit>]' column per model input")
     p.add_argument("--out", required=True, help="output folder for prediction.csv and prediction.png")
-    p.add_argument("--from-trial", type=_trial_ref, metavar="SESSION:INDEX",
+    p.add_argument("--from-trial", type=_plan.trial_ref, metavar="SESSION:INDEX",
                    help="start from the end of this recorded trial (default: from rest)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     return p
@@ -75,80 +68,14 @@ def _run_predict(args):
 
 
 # ---------------------------------------------------------------------------------------------------- plan
-def _add_plan(sub):
-    p = sub.add_parser("plan", help="plan stimulation towards a target under declared limits with a fitted model or "
-                       "predictor; writes the plan table, pattern, figure and summary")
-    p.add_argument("model", metavar="MODEL_OR_PREDICTOR", help="model file written by `stimsteer fit` (either route)")
-    p.add_argument("--target", required=True,
-                   help="CSV of target outputs over the horizon (one column per tracked output, named after it), or "
-                   "a constant 'name=value,name=value'; outputs not named are not tracked")
-    p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
-    p.add_argument("--out", required=True, help="output folder (must be new or empty, unless --force)")
-    p.add_argument("--horizon-steps", type=int, dest="horizon_steps", metavar="N",
-                   help="planning horizon in samples (default: the target table's rows, else the predictor's horizon)")
-    p.add_argument("--from-trial", type=_trial_ref, metavar="SESSION:INDEX",
-                   help="plan from the end of this recorded trial (default: from rest)")
-    p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
-    p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
-    p.add_argument("--force", action="store_true", help="replace an existing output folder")
-    return p
-
-
-def _run_plan(args):
-    from .commands.plan import plan_to_folder
-
-    run = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
-                         horizon_steps=args.horizon_steps, from_trial=args.from_trial,
-                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force)
-    print("\n".join(run.lines))
-    print(f"wrote {', '.join(str(p) for p in run.files.values())}")
-    print(CAUTION)
-    return 0
-
-
 # ---------------------------------------------------------------------------------------------------- bench
-def _add_bench(sub):
-    p = sub.add_parser("bench", help="benchmark the indirect and direct routes on the same held-out trials "
-                       "(prediction, closed-loop control, data-length, noise and horizon sweeps) and write a report")
-    p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
-    p.add_argument("--out", required=True, help="output folder for the report (must be new or empty, unless --force)")
-    p.add_argument("--scheduler", metavar="ADDR",
-                   help="run the tasks on a Dask cluster, e.g. tcp://host:8786 (needs the dist extra); default: the "
-                   "local cores")
-    p.add_argument("--limits", metavar="LIMITS.toml",
-                   help="declared stimulation limits (TOML); default: the recorded input range of the training trials")
-    p.add_argument("--plant", metavar="PLANT.h5",
-                   help="ground-truth plant of a simulated session: closed loops run on it and the noise sweep "
-                   "re-records from it (default: a surrogate plant fitted on the held-out trials)")
-    p.add_argument("--seed", type=int, default=0, help="master seed of splits, subsets and plant noise (default 0)")
-    p.add_argument("--workers", type=int, metavar="N",
-                   help="local worker processes (default: all available cores; 1 runs in this process)")
-    p.add_argument("--force", action="store_true", help="replace an existing output folder whole")
-    p.add_argument("--quick", action="store_true", help="a fast look: 2 splits, one point per sweep, short loops")
-    return p
-
-
-def _run_bench(args):
-    from .commands.bench import bench_files
-
-    if args.workers is not None and args.workers < 1:
-        raise StimsteerError(f"--workers must be at least 1; got {args.workers}.")
-    run = bench_files(args.session, args.out, plant_path=args.plant, limits_path=args.limits, seed=args.seed,
-                      quick=args.quick, scheduler=args.scheduler, n_workers=args.workers, force=args.force,
-                      progress=sys.stderr.isatty())
-    print("\n".join(f"- {line}" for line in run.lines))
-    print(f"report written to {run.report}")
-    print(CAUTION)
-    return 0
-
-
 _SUBCOMMANDS = {
     "fit": (_fit.add_parser, _fit.run),
     "predict": (_add_predict, _run_predict),
     "network": (_network.add_parser, _network.run),
     "schedule": (_schedule.add_parser, _schedule.run),
-    "plan": (_add_plan, _run_plan),
-    "bench": (_add_bench, _run_bench),
+    "plan": (_plan.add_parser, _plan.run),
+    "bench": (_bench.add_parser, _bench.run),
     "inspect": (_inspect.add_parser, _inspect.run),
     "demo": (_demo.add_parser, _run_demo),
 }

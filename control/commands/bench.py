@@ -14,18 +14,20 @@ a failure leaves nothing behind::
 from __future__ import annotations
 
 import json
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 
 from ...sysid import StimsteerError, load_session
 from ...sysid._files import atomic_dir
+from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
 from ..figures import bench as bench_figures
 from ..limits import load_limits
 from ..plants import load_plant
 from ..report import REPORT_FILE, RESULTS_FILE, bench_run_id, report_html, results_json, summarize
 
-__all__ = ["BenchRun", "bench_files", "check_out_dir", "write_bench"]
+__all__ = ["BenchRun", "add_parser", "bench_files", "check_out_dir", "run", "write_bench"]
 
 
 @dataclass(frozen=True)
@@ -160,3 +162,38 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
                        progress=progress, source=source)
     files = write_bench(result, out_dir, force=force)
     return BenchRun(result=result, lines=summarize(result), files=files)
+
+
+# ---------------------------------------------------------------------------------------------------- command line
+def add_parser(sub) -> None:
+    """Declare ``stimsteer bench`` and its options."""
+    p = sub.add_parser("bench", help="benchmark the indirect and direct routes on the same held-out trials "
+                       "(prediction, closed-loop control, data-length, noise and horizon sweeps) and write a report")
+    p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
+    p.add_argument("--out", required=True, help="output folder for the report (must be new or empty, unless --force)")
+    p.add_argument("--scheduler", metavar="ADDR",
+                   help="run the tasks on a Dask cluster, e.g. tcp://host:8786 (needs the dist extra); default: the "
+                   "local cores")
+    p.add_argument("--limits", metavar="LIMITS.toml",
+                   help="declared stimulation limits (TOML); default: the recorded input range of the training trials")
+    p.add_argument("--plant", metavar="PLANT.h5",
+                   help="ground-truth plant of a simulated session: closed loops run on it and the noise sweep "
+                   "re-records from it (default: a surrogate plant fitted on the held-out trials)")
+    p.add_argument("--seed", type=int, default=0, help="master seed of splits, subsets and plant noise (default 0)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="local worker processes (default: all available cores; 1 runs in this process)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder whole")
+    p.add_argument("--quick", action="store_true", help="a fast look: 2 splits, one point per sweep, short loops")
+
+
+def run(args) -> int:
+    """Run ``stimsteer bench`` from parsed arguments."""
+    if args.workers is not None and args.workers < 1:
+        raise StimsteerError(f"--workers must be at least 1; got {args.workers}.")
+    done = bench_files(args.session, args.out, plant_path=args.plant, limits_path=args.limits, seed=args.seed,
+                      quick=args.quick, scheduler=args.scheduler, n_workers=args.workers, force=args.force,
+                      progress=sys.stderr.isatty())
+    print("\n".join(f"- {line}" for line in done.lines))
+    print(f"report written to {done.report}")
+    print(CAUTION)
+    return 0

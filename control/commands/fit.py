@@ -7,7 +7,7 @@ import sys
 import warnings
 from pathlib import Path
 
-from ...sysid import InvalidParameterError, fit_route, open_session_source, save_predictor
+from ...sysid import METHODS, InvalidParameterError, fit_route, open_session_source, save_predictor
 
 __all__ = ["add_parser", "run"]
 
@@ -27,8 +27,11 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser("fit", help="fit a predictor on training trials, score it on held-out trials, save it")
     p.add_argument("session", help="session file (our HDF5 layout is read lazily; CSV/Parquet/NWB are loaded)")
     p.add_argument("--route", required=True, choices=["indirect", "direct"], help="model (indirect) or data (direct)")
-    p.add_argument("--method", required=True, choices=["arx", "subspace", "lsq", "hankel"],
-                   help="indirect: arx, subspace; direct: lsq, hankel")
+    by_route = {}
+    for route, method in METHODS:  # the registry decides: a registered method is a choice at once
+        by_route.setdefault(route, []).append(method)
+    p.add_argument("--method", required=True, choices=sorted({m for _, m in METHODS}),
+                   help="; ".join(f"{r}: {', '.join(ms)}" for r, ms in sorted(by_route.items())))
     p.add_argument("--out", required=True, help="model file to write (HDF5)")
     p.add_argument("--horizon-steps", dest="horizon", type=int, metavar="N",
                    help="prediction horizon in samples (scored; direct methods fit it)")

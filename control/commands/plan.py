@@ -7,6 +7,7 @@ Numerics live in :mod:`stimsteer.control.mpc`; this module only loads, calls the
 from __future__ import annotations
 
 import json
+import argparse
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -17,6 +18,7 @@ from ...sysid import (StateSpaceForm, load_predictor, open_session_source, rest_
                       trial_end_window)
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable
+from ...sysid.caution import CAUTION
 from ..figures.plan import plan_figure
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
@@ -24,7 +26,7 @@ from ..mpc.dispatch import controller_for
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
 
-__all__ = ["PlanRun", "plan_to_folder", "write_plan"]
+__all__ = ["PlanRun", "add_parser", "plan_to_folder", "run", "trial_ref", "write_plan"]
 
 _MICROAMPERE = {"uA", "µA", "μA", "microampere", "microamperes"}  # spellings of the limits file's unit
 
@@ -166,3 +168,42 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
         (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
     return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
                                         ("json", "plan.json"))}
+
+
+# ---------------------------------------------------------------------------------------------------- command line
+def trial_ref(text):
+    """``SESSION:INDEX`` of ``--from-trial``, as (path, index)."""
+    path, sep, index = str(text).rpartition(":")
+    if not sep or not path or not index.strip().lstrip("-").isdigit():
+        raise argparse.ArgumentTypeError(f"expected SESSION:INDEX, e.g. session.h5:3; got {text!r}")
+    return path, int(index)
+
+
+def add_parser(sub) -> None:
+    """Declare ``stimsteer plan`` and its options."""
+    p = sub.add_parser("plan", help="plan stimulation towards a target under declared limits with a fitted model or "
+                       "predictor; writes the plan table, pattern, figure and summary")
+    p.add_argument("model", metavar="MODEL_OR_PREDICTOR", help="model file written by `stimsteer fit` (either route)")
+    p.add_argument("--target", required=True,
+                   help="CSV of target outputs over the horizon (one column per tracked output, named after it), or "
+                   "a constant 'name=value,name=value'; outputs not named are not tracked")
+    p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
+    p.add_argument("--out", required=True, help="output folder (must be new or empty, unless --force)")
+    p.add_argument("--horizon-steps", type=int, dest="horizon_steps", metavar="N",
+                   help="planning horizon in samples (default: the target table's rows, else the predictor's horizon)")
+    p.add_argument("--from-trial", type=trial_ref, metavar="SESSION:INDEX",
+                   help="plan from the end of this recorded trial (default: from rest)")
+    p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
+    p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+
+
+def run(args) -> int:
+    """Run ``stimsteer plan`` from parsed arguments."""
+    done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
+                         horizon_steps=args.horizon_steps, from_trial=args.from_trial,
+                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force)
+    print("\n".join(done.lines))
+    print(f"wrote {', '.join(str(p) for p in done.files.values())}")
+    print(CAUTION)
+    return 0
