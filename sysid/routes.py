@@ -3,7 +3,7 @@
 :func:`fit_route` is what ``stimsteer fit`` runs. Everything the estimator selects (ridge strength, order,
 regularisation) is chosen inside the training trials; the held-out trials are touched only once, for the scores.
 :data:`METHODS` maps ``(route, method)`` to a factory ``settings -> unfitted estimator``; registering a method is
-one line (``METHODS[("direct", "lsq")] = _Lazy("stimsteer.sysid.datadriven:LsqPredictor")``).
+one line (``METHODS[("direct", "lsq")] = _Lazy("stimsteer.sysid.datadriven.lsq:LsqPredictor")``).
 
 The second half of the module predicts the response to a new stimulation pattern (``stimsteer predict``): reading a
 pattern table, checking it against the model, predicting from rest or from the end of a recorded trial, and
@@ -115,8 +115,8 @@ class _Lazy:
 METHODS = {
     ("indirect", "arx"): _Lazy("stimsteer.sysid.arx:RidgeArx", {"past_steps": ("output_lags", "input_lags")}),
     ("indirect", "subspace"): _Lazy("stimsteer.sysid.subspace:SubspaceId", streaming=True),
-    ("direct", "lsq"): _Lazy("stimsteer.sysid.datadriven:LsqPredictor", streaming=True),
-    ("direct", "hankel"): _Lazy("stimsteer.sysid.datadriven:HankelPredictor", streaming=True),
+    ("direct", "lsq"): _Lazy("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
+    ("direct", "hankel"): _Lazy("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
 }
 
 

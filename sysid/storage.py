@@ -42,8 +42,8 @@ _KINDS = {
     "state_space": "stimsteer.sysid.statespace:StateSpaceModel",
     "ridge_arx": "stimsteer.sysid.arx:RidgeArx",
     "subspace": "stimsteer.sysid.subspace:SubspaceId",
-    "lsq_predictor": "stimsteer.sysid.datadriven:LsqPredictor",
-    "hankel_predictor": "stimsteer.sysid.datadriven:HankelPredictor",
+    "lsq_predictor": "stimsteer.sysid.datadriven.lsq:LsqPredictor",
+    "hankel_predictor": "stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor",
 }
 
 _VERSIONED = ("stimsteer", "numpy", "scipy", "scikit-learn", "pandas", "h5py")
