@@ -114,7 +114,7 @@ class _Lazy:
 
 METHODS = {
     ("indirect", "arx"): _Lazy("stimsteer.sysid.arx:RidgeArx", {"past_steps": ("output_lags", "input_lags")}),
-    ("indirect", "subspace"): _Lazy("stimsteer.sysid.subspace:SubspaceId", streaming=True),
+    ("indirect", "subspace"): _Lazy("stimsteer.sysid.subspace.estimator:SubspaceId", streaming=True),
     ("direct", "lsq"): _Lazy("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
     ("direct", "hankel"): _Lazy("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
 }

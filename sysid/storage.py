@@ -41,7 +41,7 @@ _MARK_VALUE = "model"
 _KINDS = {
     "state_space": "stimsteer.sysid.statespace:StateSpaceModel",
     "ridge_arx": "stimsteer.sysid.arx:RidgeArx",
-    "subspace": "stimsteer.sysid.subspace:SubspaceId",
+    "subspace": "stimsteer.sysid.subspace.estimator:SubspaceId",
     "lsq_predictor": "stimsteer.sysid.datadriven.lsq:LsqPredictor",
     "hankel_predictor": "stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor",
 }

@@ -1,385 +1,39 @@
-"""Subspace identification of a state-space model from block-Hankel data (N4SID, MOESP and CVA weightings).
-
-The data of all trials are summarised by one Gram matrix of the multi-trial (mosaic) block-Hankel matrix of the
-joint signal ``[u y]``; Hankel columns are built only inside valid segments (:meth:`Session.segments`), so none
-straddles a trial boundary or touches a masked sample. The LQ factorisation ``[Uf; Up; Yp; Yf] = L Q`` of the
-stacked data has ``L Lᵀ`` equal to that Gram matrix, so every projection the LQ route forms is written here with
-Gram blocks (Schur complements) instead: after the one data pass nothing depends on the number of samples, and
-fitting costs about one Gram of the Hankel matrix however many orders are tried.
+"""The subspace identification estimator (:class:`SubspaceId`): one data pass, then order selection and estimation on
+Gram blocks (see :mod:`stimsteer.sysid.subspace`).
 """
 
 from __future__ import annotations
 
 import contextlib
-import functools
 import json
 import warnings
 
 import numpy as np
 import pandas as pd
 
-from ._base import check_fitted
-from .exceptions import ExcitationError, SessionError, StimsteerWarning
-from ._lagged import _stream_sums
-from ._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
-from .statespace import StateSpaceModel, kalman_gain
+from .._base import check_fitted
+from ..exceptions import ExcitationError, SessionError, StimsteerWarning
+from .._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
+from ..statespace import StateSpaceModel
+from .gram import _Layout, _hankel_gram, _partition
+from .heldout import _heldout_error
+from .projection import _Projection, _RTOL, _cond_text, _fit_order
+
+__all__ = ["SubspaceId"]
+
 
 try:  # installed with scikit-learn; limits BLAS threads for the many small matrix operations after the data pass
     from threadpoolctl import threadpool_limits as _threadpool_limits
 except ImportError:  # pragma: no cover - scikit-learn always brings it
     _threadpool_limits = None
 
-__all__ = ["SubspaceId"]
-
 _WEIGHTINGS = ("n4sid", "moesp", "cva")
 _SELECTION_DEFAULTS = {"holdout_fraction": 0.25, "tolerance": 0.05, "seed": 0}
 _DEFAULT_ORDER_CAP = 10
-# Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
-# several conditional covariances exactly singular; their rounding-level eigenvalues (~1e-15) must not be inverted.
-_RTOL = 1e-10
-# Below this (relative to the unit output power of the scaled data) the residual covariances count as zero.
-_NOISE_FREE = 1e-12
 # Singular values below this share of the largest are rounding noise: orders beyond them are not supported by data.
 _SV_RTOL = 1e-8
 _THREADED_WIDTH = 256
 _TABLE_COLUMNS = ("order", "singular_value", "gap_ratio", "heldout_error", "stable", "selected")
-
-
-# ----------------------------------------------------------------------------------------------------- layout
-_STREAM_ROWS = 16384  # rows per chunk of the Hankel Gram's data pass
-
-
-class _Layout:
-    """Row indices of the blocks of one Hankel column ``vec([u y]_{t-i..t+f-1})`` (time-major, see CONTRACTS)."""
-
-    def __init__(self, past: int, future: int, m: int, p: int):
-        self.i, self.f, self.m, self.p = past, future, m, p
-        self.c = m + p
-        self.width = past + future
-        self.nz = self.width * self.c
-        self.Up = self._idx(0, past, 0, m)
-        self.Yp = self._idx(0, past, m, self.c)
-        self.Uf = self._idx(past, self.width, 0, m)
-        self.Yf = self._idx(past, self.width, m, self.c)
-        self.P = np.concatenate([self.Up, self.Yp])
-        # one step later: the past grows by the first future block, the future loses it
-        self.P1 = np.concatenate([self._idx(0, past + 1, 0, m), self._idx(0, past + 1, m, self.c)])
-        self.Uf1 = self._idx(past + 1, self.width, 0, m)
-        self.Yf1 = self._idx(past + 1, self.width, m, self.c)
-        self.u0 = self._idx(past, past + 1, 0, m)
-        self.y0 = self._idx(past, past + 1, m, self.c)
-
-    def _idx(self, t0, t1, ch0, ch1):
-        return np.array([t * self.c + ch for t in range(t0, t1) for ch in range(ch0, ch1)], dtype=np.intp)
-
-    def select(self, rows) -> np.ndarray:
-        """The selection matrix ``E`` with ``E @ z = z[rows]``, shape (len(rows), nz)."""
-        E = np.zeros((len(rows), self.nz))
-        E[np.arange(len(rows)), rows] = 1.0
-        return E
-
-    @property
-    def max_order(self) -> int:
-        # shift invariance needs p (f − 1) >= n; a state read from i past outputs needs p i >= n
-        return min(self.p * (self.f - 1), self.p * self.i)
-
-
-# ----------------------------------------------------------------------------------------------------- data pass
-def _hankel_gram(source, segments, layout: _Layout):
-    """Gram matrix ``Σ_t z_t z_tᵀ`` of the Hankel columns inside ``segments`` and the number of columns.
-
-    The column of window ``t`` holds the samples ``t … t + w − 1``: the lagged vector ``[Z_k; …; Z_{k−w+1}]`` of
-    ``k = t + w − 1`` in reversed time order and with the channels as ``[u y]`` instead of ``[y u]``. Its Gram is
-    therefore the lagged-sum stream's (:mod:`._lagged`: ``w`` products of ``(n × c)`` chunks per chunk instead of
-    one product of ``(n × w c)`` columns), permuted. Memory stays bounded by a few chunks.
-    """
-    w, c, p = layout.width, layout.c, layout.p
-    lag = w - 1
-    pieces = [(int(a) + lag, int(b), 0) for a, b in segments if b - a >= w]
-    if not pieces:
-        return np.zeros((layout.nz, layout.nz)), 0
-    (acc,), _lo, _hi = _stream_sums(source, pieces, 1, lag, _STREAM_ROWS, np.zeros(c))
-    W = acc.moments().W
-    # Hankel row (τ, channel in [u y] order) <- lagged row (lag w − 1 − τ, channel in [y u] order)
-    in_z = np.concatenate([np.arange(p, c), np.arange(p)])  # [u y] channel j sits at in_z[j] of [y u]
-    perm = np.array([(lag - tau) * c + in_z[j] for tau in range(w) for j in range(c)], dtype=np.intp)
-    G = W[np.ix_(perm, perm)]
-    return 0.5 * (G + G.T), int(acc.n)
-
-
-def _partition(session, width: int, fraction: float, seed: int):
-    """Split the usable segments into fitting and held-out checking parts.
-
-    With two or more trials holding usable segments, whole trials are held out (seeded). With one such trial the
-    last ``fraction`` of each segment is held out as one contiguous stretch; no column crosses the cut.
-    """
-    segs = session.segments(min_length=width)
-    trials = np.asarray(session.trials)
-    owner = [int(np.searchsorted(trials[:, 0], a, side="right") - 1) for a, _ in segs]
-    usable = sorted(set(owner))
-    if len(usable) >= 2:
-        n_check = min(len(usable) - 1, max(1, int(round(fraction * len(usable)))))
-        rng = np.random.default_rng(seed)
-        check_trials = {usable[k] for k in rng.permutation(len(usable))[:n_check]}
-        fit = [s for s, o in zip(segs, owner) if o not in check_trials]
-        check = [s for s, o in zip(segs, owner) if o in check_trials]
-        return fit, check, f"held-out trials {sorted(check_trials)}"
-    fit, check = [], []
-    for a, b in segs:
-        cut = b - int(round(fraction * (b - a)))
-        if cut - a >= width and b - cut >= width:
-            fit.append((a, cut))
-            check.append((cut, b))
-        else:
-            fit.append((a, b))
-    return fit, check, f"held-out last {fraction:g} of each segment (single trial)"
-
-
-# ----------------------------------------------------------------------------------------------------- linear algebra
-def _psd_parts(M: np.ndarray):
-    """Eigenvectors and eigenvalues of a symmetric PSD matrix above the relative cut-off ``_RTOL``."""
-    lam, V = np.linalg.eigh(0.5 * (M + M.T))
-    keep = lam > _RTOL * max(float(lam[-1]), np.finfo(float).tiny)
-    return V[:, keep], lam[keep]
-
-
-def _cond_text(lam: np.ndarray) -> str:
-    """Condition number of a symmetric PSD matrix from its ascending eigenvalues, as text ("inf" if singular)."""
-    return f"{lam[-1] / lam[0]:.2e}" if lam[0] > 0 and lam[-1] / lam[0] < 1e300 else "inf"
-
-
-def _pinv_psd(M: np.ndarray) -> np.ndarray:
-    V, lam = _psd_parts(M)
-    return (V / lam) @ V.T
-
-
-def _conditional(S: np.ndarray, a, b, given) -> np.ndarray:
-    """``S_ab − S_a,g S_gg⁺ S_g,b``: the covariance of the parts of ``a`` and ``b`` not explained by ``given``."""
-    Sgg_inv = _pinv_psd(S[np.ix_(given, given)])
-    return S[np.ix_(a, b)] - S[np.ix_(a, given)] @ Sgg_inv @ S[np.ix_(given, b)]
-
-
-class _Projection:
-    """Oblique projection, weighting and SVD of one (scaled) Hankel covariance; shared by every candidate order.
-
-    Notes
-    -----
-    With ``Σ_{·|U}`` the covariances conditioned on the future inputs ``Uf`` and ``Wp = [Up; Yp]`` the past, the
-    oblique projection of ``Yf`` along ``Uf`` onto ``Wp`` is ``O = Θ Wp`` with ``Θ = Σ_{YfWp|U} Σ_{WpWp|U}⁺``
-    (Van Overschee & De Moor 1996, Theorem 2). The weighted matrix whose SVD gives the observability matrix is
-
-    - N4SID: ``O`` itself (W1 = I, W2 = I), i.e. ``Θ Σ_{WpWp}^{1/2}``;
-    - MOESP: ``O Π_{Uf⊥}`` (W2 = Π_{Uf⊥}), i.e. ``Σ_{YfWp|U} Σ_{WpWp|U}^{−1/2}`` (the ``L32`` of the LQ);
-    - CVA:   ``Σ_{YfYf|U}^{−1/2} O Π_{Uf⊥}``; its singular values are canonical correlations.
-
-    ``Γ = W1⁻¹ U₁ S₁^{1/2}`` for the leading ``n`` singular triplets.
-    """
-
-    def __init__(self, S: np.ndarray, layout: _Layout, weighting: str):
-        L = layout
-        Sc_pp = _conditional(S, L.P, L.P, L.Uf)
-        Sc_yp = _conditional(S, L.Yf, L.P, L.Uf)
-        V, lam = _psd_parts(Sc_pp)
-        self.theta = Sc_yp @ ((V / lam) @ V.T)
-        w_inv = None
-        if weighting == "n4sid":
-            E, xi = _psd_parts(S[np.ix_(L.P, L.P)])
-            mat = self.theta @ (E * np.sqrt(xi))
-        else:
-            mat = Sc_yp @ (V / np.sqrt(lam))
-            if weighting == "cva":
-                H, om = _psd_parts(_conditional(S, L.Yf, L.Yf, L.Uf))
-                mat = ((H / np.sqrt(om)) @ H.T) @ mat
-                w_inv = (H * np.sqrt(om)) @ H.T
-        U, sv, _ = np.linalg.svd(mat, full_matrices=False)
-        k = len(L.Yf)
-        self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
-        self.U = U
-        self.w_inv = w_inv
-        self.S = S
-        self.layout = L
-
-    @functools.cached_property
-    def given_past(self):
-        """Covariances of ``Uf`` and of ``Yf`` with ``Uf`` conditioned on the past ``Wp`` (for ``B, D``)."""
-        S, L = self.S, self.layout
-        return _conditional(S, L.Uf, L.Uf, L.P), _conditional(S, L.Yf, L.Uf, L.P)
-
-    @functools.cached_property
-    def theta_next(self) -> np.ndarray:
-        """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
-        S, L = self.S, self.layout
-        return _conditional(S, L.Yf1, L.P1, L.Uf1) @ _pinv_psd(_conditional(S, L.P1, L.P1, L.Uf1))
-
-    def gamma(self, n: int) -> np.ndarray:
-        """Extended observability matrix for order ``n``, shape (p f, n)."""
-        G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
-        return G if self.w_inv is None else self.w_inv @ G
-
-
-# ----------------------------------------------------------------------------------------------------- estimation
-def _a_c(gamma: np.ndarray, p: int):
-    """``C`` = first block row of Γ; ``A`` from the shift invariance ``Γ_up A = Γ_down`` by least squares."""
-    C = gamma[:p].copy()
-    A = np.linalg.lstsq(gamma[:-p], gamma[p:], rcond=None)[0]
-    return A, C
-
-
-def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
-    """Basis ``H_k`` of the block-Toeplitz matrix of Markov parameters, linear in ``θ = [vec(B); vec(D)]``.
-
-    Shape (n_theta, p f, m f); ``vec`` is column-major, so ``B = θ[:n m].reshape(n, m, order="F")``.
-    """
-    n, m, p, f = A.shape[0], layout.m, layout.p, layout.f
-    CA = [C]
-    for _ in range(f - 2):
-        CA.append(CA[-1] @ A)
-    n_theta = n * m + (p * m if feedthrough else 0)
-    Hs = np.zeros((n_theta, p * f, m * f))
-    for l in range(m):
-        for j in range(n):
-            k = l * n + j
-            for r in range(1, f):
-                for s in range(r):
-                    Hs[k, r * p:(r + 1) * p, s * m + l] = CA[r - s - 1][:, j]
-    if feedthrough:
-        for l in range(m):
-            for a in range(p):
-                k = n * m + l * p + a
-                for r in range(f):
-                    Hs[k, r * p + a, r * m + l] = 1.0
-    return Hs
-
-
-def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
-    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
-
-    Notes
-    -----
-    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
-    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
-    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
-    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
-    """
-    L, S = proj.layout, proj.S
-    n, m, p = A.shape[0], L.m, L.p
-    Hs = _toeplitz_basis(A, C, L, feedthrough)
-    Q = np.linalg.qr(gamma)[0]
-    P1 = Q @ Q.T
-    S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
-    Sc_uu, Sc_yu = proj.given_past
-    target = S_yu + P1 @ (Sc_yu - S_yu)
-    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
-    flat = Hs.reshape(Hs.shape[0], -1)
-    M = flat @ image.reshape(Hs.shape[0], -1).T
-    M = 0.5 * (M + M.T)
-    rhs = flat @ target.reshape(-1)
-    lam = np.linalg.eigvalsh(M)
-    if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
-        raise ExcitationError(
-            "the inputs do not excite the model enough to estimate B"
-            + (" and D" if feedthrough else "")
-            + f" (normal equations of condition {_cond_text(lam)}). "
-            "Use a richer stimulation schedule (`stimsteer schedule`), or a lower order."
-        )
-    theta = np.linalg.solve(M, rhs)
-    B = theta[:n * m].reshape(n, m, order="F")
-    D = theta[n * m:].reshape(p, m, order="F") if feedthrough else np.zeros((p, m))
-    return B, D
-
-
-def _state_maps(proj: _Projection, gamma):
-    """Linear maps from a Hankel column ``z`` to the estimated states at its first and second future sample.
-
-    ``x̂_t = Γ⁺ Θ Wp`` and ``x̂_{t+1} = Γ₋⁺ Θ₊ Wp₊`` (past one step longer, future one shorter, Γ₋ = Γ without its
-    last block row): Van Overschee & De Moor 1996, sec. 4.3.
-    """
-    L = proj.layout
-    n = gamma.shape[1]
-    X0 = np.zeros((n, L.nz))
-    X0[:, L.P] = np.linalg.pinv(gamma) @ proj.theta
-    X1 = np.zeros((n, L.nz))
-    X1[:, L.P1] = np.linalg.pinv(gamma[:-L.p]) @ proj.theta_next
-    return X0, X1
-
-
-def _noise(proj: _Projection, gamma, A, B, C, D):
-    """Process, measurement and cross covariances of the state-equation and output-equation residuals."""
-    L, S = proj.layout, proj.S
-    X0, X1 = _state_maps(proj, gamma)
-    Eu, Ey = L.select(L.u0), L.select(L.y0)
-    Wmap = X1 - A @ X0 - B @ Eu
-    Vmap = Ey - C @ X0 - D @ Eu
-    Q, R, Sx = Wmap @ S @ Wmap.T, Vmap @ S @ Vmap.T, Wmap @ S @ Vmap.T
-    return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
-
-
-def _innovation_form(A, C, Q, R, Sx):
-    """Steady-state Kalman gain and innovation covariance; ``K = 0`` for (numerically) noise-free data."""
-    joint = np.block([[Q, Sx], [Sx.T, R]])
-    if np.max(np.abs(np.linalg.eigvalsh(joint))) <= _NOISE_FREE:
-        return np.zeros((A.shape[0], C.shape[0])), R, "noise-free residuals: K = 0"
-    Rr = R + _NOISE_FREE * np.eye(R.shape[0])
-    try:
-        K, P = kalman_gain(A, C, Q, Rr, Sx)
-    except (np.linalg.LinAlgError, ValueError) as exc:
-        warnings.warn(
-            f"the steady-state Kalman gain could not be computed ({exc}); the model keeps K = 0 (output-error "
-            "form), so k-step predictions ignore the measured past beyond the initial state.",
-            StimsteerWarning, stacklevel=4,
-        )
-        return np.zeros((A.shape[0], C.shape[0])), R, "Riccati equation failed: K = 0"
-    Re = C @ P @ C.T + R
-    return K, 0.5 * (Re + Re.T), "steady-state Kalman gain (DARE)"
-
-
-def _fit_order(proj: _Projection, n: int, feedthrough: bool):
-    """All scaled-coordinate matrices of the order-``n`` model of one projection."""
-    gamma = proj.gamma(n)
-    A, C = _a_c(gamma, proj.layout.p)
-    B, D = _b_d(proj, gamma, A, C, feedthrough)
-    Q, R, Sx = _noise(proj, gamma, A, B, C, D)
-    K, Re, how = _innovation_form(A, C, Q, R, Sx)
-    return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
-
-
-# ----------------------------------------------------------------------------------------------------- held-out check
-def _predictor_map(mats, layout: _Layout) -> np.ndarray:
-    """The k-step predictor of :meth:`StateSpaceModel.predict` as one linear map ``vec(ŷ_future) = P z``.
-
-    Mirrors ``estimate_state`` (least-squares initial state of the innovation predictor over the past window,
-    propagated) followed by ``simulate`` over the future inputs. Shape (p f, nz).
-    """
-    A, B, C, D, K = (mats[k] for k in "ABCDK")
-    L = layout
-    n, m, p = A.shape[0], L.m, L.p
-    Ak, Bk = A - K @ C, B - K @ D
-    Xd = np.zeros((n, L.nz))
-    Mk = np.eye(n)
-    Phi, rhs = [], []
-    for t in range(L.i):
-        Eu, Ey = L.select(L.Up[t * m:(t + 1) * m]), L.select(L.Yp[t * p:(t + 1) * p])
-        Phi.append(C @ Mk)
-        rhs.append(Ey - C @ Xd - D @ Eu)
-        Xd = Ak @ Xd + Bk @ Eu + K @ Ey
-        Mk = Ak @ Mk
-    lhs = np.vstack(Phi)
-    x0 = np.linalg.pinv(lhs, rcond=np.finfo(float).eps * max(lhs.shape)) @ np.vstack(rhs)
-    X = Mk @ x0 + Xd
-    out = []
-    for r in range(L.f):
-        Eu = L.select(L.Uf[r * m:(r + 1) * m])
-        out.append(C @ X + D @ Eu)
-        X = A @ X + B @ Eu
-    return np.vstack(out)
-
-
-def _heldout_error(mats, S_check: np.ndarray, layout: _Layout) -> float:
-    """Mean over future steps and output channels of the k-step squared error ÷ the mean square output."""
-    E = layout.select(layout.Yf) - _predictor_map(mats, layout)
-    err = np.maximum(np.sum((E @ S_check) * E, axis=1), 0.0)
-    power = np.diag(S_check)[layout.Yf]
-    return float(np.mean(err / np.maximum(power, np.finfo(float).tiny)))
 
 
 def _single_blas_thread():
