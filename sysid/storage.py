@@ -21,13 +21,12 @@ from __future__ import annotations
 import datetime as _dt
 import importlib
 import json
-import platform
-from importlib import metadata as _metadata
 from pathlib import Path
 
 import numpy as np
 
 from ._files import atomic_path
+from ._records import versions
 from .exceptions import FileFormatError, StimsteerError
 from .statespace import StateSpaceModel
 
@@ -46,7 +45,6 @@ _KINDS = {
     "hankel_predictor": "stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor",
 }
 
-_VERSIONED = ("stimsteer", "numpy", "scipy", "scikit-learn", "pandas", "h5py")
 
 
 # ------------------------------------------------------------------------------------------------ state space
@@ -144,17 +142,6 @@ def _class_for(kind: str, path):
         raise FileFormatError(f"{path} holds a {kind!r} model, but its class {target} cannot be loaded: {exc}.") \
             from None
 
-
-def _versions() -> dict:
-    out = {"python": platform.python_version()}
-    for dist in _VERSIONED:
-        try:
-            out[dist] = _metadata.version(dist)
-        except _metadata.PackageNotFoundError:
-            out[dist] = "not installed"
-    return out
-
-
 # ------------------------------------------------------------------------------------------------ public API
 def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False) -> Path:
     """Write a fitted predictor and its provenance to an HDF5 model file, atomically.
@@ -190,7 +177,7 @@ def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False
     state = model_to_state(predictor) if kind == "state_space" else predictor.to_state()
     created = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     prov = dict(provenance or {})
-    prov["saved"] = {"created_utc": created, "versions": _versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
+    prov["saved"] = {"created_utc": created, "versions": versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
     text = json.dumps(_plain_tree(prov, "provenance"), allow_nan=True)
     with atomic_path(path, suffix=".h5") as tmp:
         with h5py.File(tmp, "w") as f:
