@@ -104,7 +104,7 @@ def load_pattern(path) -> Pattern:
         Other columns, missing units, non-numeric or empty cells, or a non-uniform time grid.
     FileNotFoundError
     """
-    from .io import _time_grid, comment_lines
+    from .io.tables import _time_grid, comment_lines
 
     path = Path(path)
     if not path.is_file():
