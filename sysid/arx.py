@@ -23,9 +23,10 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from ._base import check_fitted
+from ._base import BasePredictor, check_fitted
 from .exceptions import ConditioningWarning, ExcitationError, SessionError
 from ._lagged import _Moments, _read_z, _stream_sums
+from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
 from .arx_statespace import arx_to_state_space
@@ -39,7 +40,7 @@ CONDITION_WARN_LIMIT = 1e10
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
 
 
-class RidgeArx:
+class RidgeArx(BasePredictor):
     """Multi-input multi-output ridge ARX fitted from a recorded session by streaming normal equations.
 
     Parameters
@@ -83,7 +84,9 @@ class RidgeArx:
     n_inputs_, n_outputs_, n_rows_, n_folds_ : int
     cv_scheme_ : str
         ``"trials"`` or ``"contiguous blocks (one trial)"``.
-    input_names_, output_names_ : tuple of str
+    output_lags_, input_lags_, delay_samples_ : int
+        The lag structure the fitted coefficients have (the settings at ``fit``).
+    input_names_, output_names_, input_units_, output_units_ : tuple of str
     sample_rate_hz_ : float
 
     Notes
@@ -137,22 +140,6 @@ class RidgeArx:
         self.n_folds = n_folds
         self.chunk_samples = chunk_samples
         self.fit_intercept = fit_intercept
-
-    def get_params(self, deep: bool = True) -> dict:
-        """Constructor arguments, unchanged (scikit-learn convention)."""
-        return {k: getattr(self, k) for k in ("output_lags", "input_lags", "delay_samples", "alphas", "n_folds",
-                                              "chunk_samples", "fit_intercept")}
-
-    def set_params(self, **params) -> "RidgeArx":
-        for k, v in params.items():
-            if k not in self.get_params():
-                raise SessionError(f"RidgeArx has no parameter {k!r}; valid ones: {sorted(self.get_params())}.")
-            setattr(self, k, v)
-        return self
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if k != "alphas")
-        return f"RidgeArx({args}, alphas=<{np.size(self.alphas)} values>)"
 
     # -------------------------------------------------------------------------------------------- fit
     def _validated(self, session) -> _Problem:
@@ -278,12 +265,15 @@ class RidgeArx:
             n_rows=int(total.n), n_folds=k, scheme=scheme, innovation_cov=0.5 * (resid + resid.T) / total.n,
             input_names=tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(prob.m))),
             output_names=tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(prob.p))),
+            input_units=tuple(getattr(session, "input_units", None) or ("",) * prob.m),
+            output_units=tuple(getattr(session, "output_units", None) or ("",) * prob.p),
             sample_rate_hz=float(session.sample_rate_hz),
         )
 
     def _set_fitted(self, prob, *, coef, intercept, alpha, table, scale, cond, n_rows, n_folds, scheme,
-                    innovation_cov, input_names, output_names, sample_rate_hz):
+                    innovation_cov, input_names, output_names, input_units, output_units, sample_rate_hz):
         self.n_outputs_, self.n_inputs_ = prob.p, prob.m
+        self.output_lags_, self.input_lags_, self.delay_samples_ = int(prob.na), int(prob.nb), int(prob.d)
         self.coef_ = np.ascontiguousarray(coef, dtype=np.float64)
         self.intercept_ = np.asarray(intercept, dtype=np.float64)
         self.alpha_ = float(alpha)
@@ -292,6 +282,7 @@ class RidgeArx:
         self.condition_number_ = float(cond)
         self.n_rows_, self.n_folds_, self.cv_scheme_ = int(n_rows), int(n_folds), str(scheme)
         self.input_names_, self.output_names_ = tuple(input_names), tuple(output_names)
+        self.input_units_, self.output_units_ = tuple(input_units), tuple(output_units)
         self.sample_rate_hz_ = float(sample_rate_hz)
         self.innovation_cov_ = np.asarray(innovation_cov, dtype=np.float64)
         self.past_steps_ = prob.L
@@ -303,14 +294,14 @@ class RidgeArx:
     def ar_coefs_(self) -> np.ndarray:
         """``A_1 … A_na``, shape (na, n_outputs, n_outputs)."""
         check_fitted(self, "coef_")
-        p, na = self.n_outputs_, int(self.output_lags)
+        p, na = self.n_outputs_, self.output_lags_
         return self.coef_[:, : p * na].reshape(p, na, p).transpose(1, 0, 2)
 
     @property
     def input_coefs_(self) -> np.ndarray:
         """``B_0 … B_{nb-1}``, shape (nb, n_outputs, n_inputs)."""
         check_fitted(self, "coef_")
-        p, m, na, nb = self.n_outputs_, self.n_inputs_, int(self.output_lags), int(self.input_lags)
+        p, m, na, nb = self.n_outputs_, self.n_inputs_, self.output_lags_, self.input_lags_
         return self.coef_[:, p * na:].reshape(p, nb, m).transpose(1, 0, 2)
 
     def _resting_output(self) -> tuple[np.ndarray, bool]:
@@ -325,10 +316,10 @@ class RidgeArx:
         info = {"source": "RidgeArx", "output_offset": y_rest, "output_offset_exact": bool(exact),
                 "alpha": self.alpha_}
         return arx_to_state_space(
-            self.ar_coefs_, self.input_coefs_, int(self.delay_samples), sample_rate_hz=self.sample_rate_hz_,
+            self.ar_coefs_, self.input_coefs_, self.delay_samples_, sample_rate_hz=self.sample_rate_hz_,
             innovation_cov=self.innovation_cov_, input_names=self.input_names_, output_names=self.output_names_,
             info=info,
-        )
+        ).replace(input_units=self.input_units_, output_units=self.output_units_)
 
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the resting output, shapes (past_steps_, m) and (past_steps_, p)."""
@@ -338,52 +329,20 @@ class RidgeArx:
         return np.zeros((L, self.n_inputs_)), np.tile(y_rest, (L, 1))
 
     # -------------------------------------------------------------------------------------------- predict
-    def _windows(self, u_past, y_past, u_future):
-        """Validated 3-D (batch, time, channel) copies of the last ``past_steps_`` samples and the future input."""
-        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
-        arrs = []
-        for name, a, ch in (("u_past", u_past, m), ("y_past", y_past, p), ("u_future", u_future, m)):
-            a = np.asarray(a, dtype=np.float64)
-            if a.ndim != 3 or a.shape[2] != ch:
-                raise SessionError(f"{name} must have shape (n_samples, {ch}) for this model; got {a.shape[1:]}.")
-            if not np.all(np.isfinite(a)):
-                raise SessionError(f"{name} holds NaN or infinite values; give a window of valid samples.")
-            arrs.append(a)
-        up, yp, uf = arrs
-        if up.shape[1] != yp.shape[1] or up.shape[1] < L:
-            raise SessionError(
-                f"the past window needs at least past_steps_={L} samples of inputs and outputs of equal length; "
-                f"got {up.shape[1]} input and {yp.shape[1]} output samples. Pass a longer past window."
-            )
-        return up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf
-
     def state_space_model(self):
         """The fitted state-space realisation with this estimator's past window (``model_``, offset in ``info``)."""
         check_fitted(self, "model_")
         return self.model_.replace(past_steps=int(self.past_steps_))
 
-    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows at once.
-
-        Parameters
-        ----------
-        u_past : ndarray, shape (n_windows, n_past, n_inputs)
-        y_past : ndarray, shape (n_windows, n_past, n_outputs)
-        u_future : ndarray, shape (n_windows, n_future, n_inputs)
-
-        Returns
-        -------
-        y_future : ndarray, shape (n_windows, n_future, n_outputs)
-        """
-        check_fitted(self, "coef_")
-        up, yp, uf = self._windows(u_past, y_past, u_future)
-        na, nb, d, L = int(self.output_lags), int(self.input_lags), int(self.delay_samples), self.past_steps_
+    def _recursion(self, up, yp, uf, intercept) -> np.ndarray:
+        """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions."""
+        na, nb, d, L = self.output_lags_, self.input_lags_, self.delay_samples_, self.past_steps_
         H = uf.shape[1]
         U = np.concatenate([up, uf], axis=1)
         Y = np.concatenate([yp, np.zeros((yp.shape[0], H, self.n_outputs_))], axis=1)
         A, B = self.ar_coefs_, self.input_coefs_
         # The input part does not depend on predictions: add it for every step at once.
-        drive = np.broadcast_to(self.intercept_, (yp.shape[0], H, self.n_outputs_)).copy()
+        drive = np.broadcast_to(intercept, (yp.shape[0], H, self.n_outputs_)).copy()
         for j in range(nb):
             drive += U[:, L - d - j: L - d - j + H] @ B[j].T
         for h in range(H):
@@ -394,31 +353,56 @@ class RidgeArx:
             Y[:, k] = acc
         return Y[:, L:]
 
-    def predict(self, u_past, y_past, u_future) -> np.ndarray:
-        """Multi-step prediction over ``u_future`` from a measured past window, feeding back its own predictions.
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Multi-step predictions of a batch of windows, feeding back their own predictions.
 
         Parameters
         ----------
-        u_past : ndarray, shape (n_past, n_inputs)
+        u_past : ndarray, shape (n_windows, n_past, n_inputs)
             ``n_past >= past_steps_``; only the last ``past_steps_`` samples are used.
-        y_past : ndarray, shape (n_past, n_outputs)
-        u_future : ndarray, shape (n_future, n_inputs)
+        y_past : ndarray, shape (n_windows, n_past, n_outputs)
+        u_future : ndarray, shape (n_windows, n_future, n_inputs)
 
         Returns
         -------
-        y_future : ndarray, shape (n_future, n_outputs)
+        y_future : ndarray, shape (n_windows, n_future, n_outputs)
 
         Raises
         ------
+        NotFittedError
+            Not fitted, or a setting changed since ``fit``.
         SessionError
             Wrong shapes, non-finite values, or a past window shorter than ``past_steps_``.
         """
         check_fitted(self, "coef_")
-        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
-        up, yp, uf = (a[:, None] if a.ndim == 1 else a for a in (up, yp, uf))
-        if up.ndim != 2 or yp.ndim != 2 or uf.ndim != 2:
-            raise SessionError("u_past, y_past and u_future must be 2-D time-major arrays (n_samples, n_channels).")
-        return self.predict_many(up[None], yp[None], uf[None])[0]
+        up, yp, uf = self._check_batch(u_past, y_past, u_future)
+        L = self.past_steps_
+        return self._recursion(up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf, self.intercept_)
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` over a past window of ``past_steps`` and ``horizon_steps`` inputs.
+
+        The recursion is linear in the window plus the intercept's response, so ``P`` and ``F`` are its
+        responses to unit windows without the intercept and ``c`` its response to the intercept alone. Samples of
+        the past window before the last ``past_steps_`` get zero columns.
+        """
+        check_fitted(self, "coef_")
+        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
+        T, N = int(past_steps), int(horizon_steps)
+        if T < L or N < 1:
+            raise SessionError(f"the RidgeArx needs a past window of at least past_steps_ = {L} samples and a "
+                               f"horizon of at least 1 step; got past {past_steps} and horizon {horizon_steps}.")
+        zero = np.zeros(p)
+        E = np.eye(L * (m + p))
+        P_last = self._recursion(E[:, :L * m].reshape(-1, L, m), E[:, L * m:].reshape(-1, L, p),
+                                 np.zeros((E.shape[0], N, m)), zero).reshape(E.shape[0], N * p).T
+        P = np.zeros((N * p, T * (m + p)))
+        P[:, m * (T - L):m * T] = P_last[:, :L * m]
+        P[:, m * T + p * (T - L):] = P_last[:, L * m:]
+        Ef = np.eye(N * m).reshape(N * m, N, m)
+        F = self._recursion(np.zeros((N * m, L, m)), np.zeros((N * m, L, p)), Ef, zero).reshape(N * m, N * p).T
+        c = self._recursion(np.zeros((1, L, m)), np.zeros((1, L, p)), np.zeros((1, N, m)), self.intercept_)
+        return PredictionMaps(P=P, F=np.ascontiguousarray(F), c=c.reshape(-1), past_steps=T, horizon_steps=N)
 
     # -------------------------------------------------------------------------------------------- storage
     def to_state(self) -> dict:
@@ -433,6 +417,7 @@ class RidgeArx:
             "cv_scheme": self.cv_scheme_, "innovation_cov": self.innovation_cov_,
             "n_inputs": self.n_inputs_, "n_outputs": self.n_outputs_,
             "input_names": list(self.input_names_), "output_names": list(self.output_names_),
+            "input_units": list(self.input_units_), "output_units": list(self.output_units_),
             "sample_rate_hz": self.sample_rate_hz_,
             "cv_table": {str(c): self.cv_table_[c].to_numpy() for c in self.cv_table_.columns},
             "cv_columns": [str(c) for c in self.cv_table_.columns],
@@ -452,6 +437,9 @@ class RidgeArx:
             scale=state["scale"], cond=state["condition_number"], n_rows=state["n_rows"],
             n_folds=state["n_folds"], scheme=state["cv_scheme"], innovation_cov=state["innovation_cov"],
             input_names=state["input_names"], output_names=state["output_names"],
+            input_units=state.get("input_units", ("",) * int(state["n_inputs"])),
+            output_units=state.get("output_units", ("",) * int(state["n_outputs"])),
             sample_rate_hz=state["sample_rate_hz"],
         )
+        est._mark_fitted()
         return est
