@@ -254,7 +254,7 @@ class RidgeArx(BasePredictor):
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="
                 f"{alpha:g}, limit {CONDITION_WARN_LIMIT:.0e}); coefficients may be inaccurate. Use a larger alpha, "
-                "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=3)
+                "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=4)
         mean = mu + shift
         coef = beta.T
         intercept = mean[prob.y_idx] - coef @ mean[prob.x_idx] if prob.fit_intercept else np.zeros(prob.p)

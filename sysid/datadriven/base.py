@@ -190,7 +190,7 @@ class _DirectPredictor:
         if self.centre_outputs:
             session = ShiftedOutputs(session, self.output_offset_)
         order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
-                                 stacklevel=5)
+                                 stacklevel=6)
         folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
                                       self.seed, keep_full)
         if n_candidates > 1 and len(folds) < 2:

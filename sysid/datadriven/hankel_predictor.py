@@ -108,7 +108,7 @@ def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray)
     warnings.warn(ConditioningWarning(
         f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
         f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
-    ), stacklevel=5)
+    ), stacklevel=6)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", sla.LinAlgWarning)
         return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]

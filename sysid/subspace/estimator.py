@@ -11,8 +11,9 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .._base import check_fitted
-from ..exceptions import ExcitationError, SessionError, StimsteerWarning
+from .._base import BasePredictor, check_fitted
+from ..exceptions import ExcitationError, InvalidParameterError, SessionError, StimsteerWarning
+from ..protocols import PredictionMaps
 from .._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from ..statespace import StateSpaceModel
 from .gram import _Layout, _hankel_gram, _partition
@@ -43,7 +44,7 @@ def _single_blas_thread():
 
 
 # ----------------------------------------------------------------------------------------------------- estimator
-class SubspaceId:
+class SubspaceId(BasePredictor):
     """Subspace identification of an innovation-form state-space model from a stimulation session.
 
     Parameters
@@ -97,6 +98,9 @@ class SubspaceId:
         How the held-out part was chosen.
     output_offset_ : ndarray, shape (n_outputs,)
         The training mean removed with ``centre_outputs`` (zeros otherwise).
+    n_inputs_, n_outputs_ : int
+    input_names_, output_names_, input_units_, output_units_ : tuple of str
+        The channels of the training session.
 
     Raises
     ------
@@ -146,28 +150,20 @@ class SubspaceId:
         self.order_selection = order_selection
         self.centre_outputs = centre_outputs
 
-    def get_params(self, deep: bool = True) -> dict:
-        return {k: getattr(self, k) for k in ("past_steps", "future_steps", "order", "max_order", "weighting",
-                                              "feedthrough", "order_selection", "centre_outputs")}
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
-        return f"SubspaceId({args})"
-
     # ------------------------------------------------------------------------------------------ validation
     @staticmethod
     def _int(name, value, low):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-            raise SessionError(f"{name} must be an integer >= {low}; got {value!r}. Pass e.g. {name}={max(low, 10)}.")
+            raise InvalidParameterError(f"{name} must be an integer >= {low}; got {value!r}. Pass e.g. {name}={max(low, 10)}.")
         return int(value)
 
     def _settings(self, session) -> dict:
         i = self._int("past_steps", self.past_steps, 1)
         f = self._int("future_steps", self.future_steps, 2)
         if self.weighting not in _WEIGHTINGS:
-            raise SessionError(f"weighting must be one of {list(_WEIGHTINGS)}; got {self.weighting!r}.")
+            raise InvalidParameterError(f"weighting must be one of {list(_WEIGHTINGS)}; got {self.weighting!r}.")
         if not isinstance(self.feedthrough, (bool, np.bool_)):
-            raise SessionError(f"feedthrough must be True or False; got {self.feedthrough!r}.")
+            raise InvalidParameterError(f"feedthrough must be True or False; got {self.feedthrough!r}.")
         m, p = int(session.n_inputs), int(session.n_outputs)
         if m < 1:
             raise SessionError("subspace identification needs at least one input channel; the session has none.")
@@ -175,13 +171,13 @@ class SubspaceId:
         cap = layout.max_order
         order = None if self.order is None else self._int("order", self.order, 1)
         if order is not None and order > cap:
-            raise SessionError(
+            raise InvalidParameterError(
                 f"order {order} is above the largest possible order {cap} = min(p (f - 1), p i) for p={p} outputs, "
                 f"past_steps={i}, future_steps={f}. Lower the order or lengthen past_steps/future_steps."
             )
         top = min(_DEFAULT_ORDER_CAP, cap) if self.max_order is None else self._int("max_order", self.max_order, 1)
         if top > cap:
-            raise SessionError(
+            raise InvalidParameterError(
                 f"max_order {top} is above the largest possible order {cap} = min(p (f - 1), p i); lower it or "
                 "lengthen past_steps/future_steps."
             )
@@ -192,16 +188,16 @@ class SubspaceId:
         sel = dict(_SELECTION_DEFAULTS)
         given = self.order_selection or {}
         if not isinstance(given, dict):
-            raise SessionError(f"order_selection must be a dict or None; got {type(given).__name__}.")
+            raise InvalidParameterError(f"order_selection must be a dict or None; got {type(given).__name__}.")
         unknown = sorted(set(given) - set(sel))
         if unknown:
-            raise SessionError(f"order_selection has unknown keys {unknown}; allowed: {sorted(sel)}.")
+            raise InvalidParameterError(f"order_selection has unknown keys {unknown}; allowed: {sorted(sel)}.")
         sel.update(given)
         frac, tol = sel["holdout_fraction"], sel["tolerance"]
         if not (isinstance(frac, (int, float)) and 0 < frac < 1):
-            raise SessionError(f"order_selection['holdout_fraction'] must be in (0, 1); got {frac!r}.")
+            raise InvalidParameterError(f"order_selection['holdout_fraction'] must be in (0, 1); got {frac!r}.")
         if not (isinstance(tol, (int, float)) and tol >= 0):
-            raise SessionError(f"order_selection['tolerance'] must be a number >= 0; got {tol!r}.")
+            raise InvalidParameterError(f"order_selection['tolerance'] must be a number >= 0; got {tol!r}.")
         return {"fraction": float(frac), "tolerance": float(tol), "seed": self._int("seed", sel["seed"], 0)}
 
     # ------------------------------------------------------------------------------------------ fit
@@ -219,7 +215,7 @@ class SubspaceId:
         """
         cfg = self._settings(session)
         if not isinstance(self.centre_outputs, (bool, np.bool_)):
-            raise SessionError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
+            raise InvalidParameterError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
         offset = _output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
         if self.centre_outputs:
             session = _ShiftedOutputs(session, offset)
@@ -359,6 +355,7 @@ class SubspaceId:
             sample_rate_hz=float(session.sample_rate_hz), past_steps=L.i,
             input_names=tuple(session.input_names), output_names=tuple(session.output_names),
             info={"method": "subspace", "weighting": self.weighting, "order": int(order), "gain": mats["gain"]},
+            input_units=getattr(session, "input_units", None), output_units=getattr(session, "output_units", None),
         )
         self.model_ = model
         self.order_ = int(order)
@@ -368,6 +365,7 @@ class SubspaceId:
         self.measurement_cov_ = np.outer(sy, sy) * mats["R"]
         self.cross_cov_ = mats["S"] * sy
         self.is_stable_ = bool(model.is_stable)
+        self._set_channels(model)
         self.past_steps_ = L.i
         self.max_horizon_steps_ = None
         self.n_columns_ = int(n_columns)
@@ -377,28 +375,14 @@ class SubspaceId:
                 f"the identified order-{order} model is unstable: spectral radius {model.spectral_radius:.4f} >= 1; "
                 "free-run simulations will grow without bound. Try another order or longer past/future windows, "
                 "and check whether the data were recorded in closed loop.",
-                StimsteerWarning, stacklevel=4,
+                StimsteerWarning, stacklevel=5,
             )
 
     # ------------------------------------------------------------------------------------------ predict
-    def predict(self, u_past, y_past, u_future) -> np.ndarray:
-        """Predict outputs over ``u_future`` from a measured past window (delegates to ``model_.predict``).
-
-        Parameters
-        ----------
-        u_past : ndarray, shape (past_steps, n_inputs)
-        y_past : ndarray, shape (past_steps, n_outputs)
-        u_future : ndarray, shape (n_future, n_inputs)
-
-        Returns
-        -------
-        y_future : ndarray, shape (n_future, n_outputs)
-        """
-        check_fitted(self, "model_")
-        off = self._offset()
-        if off is None:
-            return self.model_.predict(u_past, y_past, u_future)
-        return self.model_.predict(u_past, np.asarray(y_past, dtype=np.float64) - off, u_future) + off
+    def _set_channels(self, model) -> None:
+        self.n_inputs_, self.n_outputs_ = model.n_inputs, model.n_outputs
+        self.input_names_, self.output_names_ = model.input_names, model.output_names
+        self.input_units_, self.output_units_ = model.input_units, model.output_units
 
     def state_space_model(self):
         """The fitted state-space realisation with this estimator's past window (``model_``, offset in ``info``)."""
@@ -406,23 +390,34 @@ class SubspaceId:
         return self.model_.replace(past_steps=int(self.past_steps_))
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels)."""
-        check_fitted(self, "model_")
-        off = self._offset()
-        if off is None:
-            return self.model_.predict_many(u_past, y_past, u_future)
-        return self.model_.predict_many(u_past, np.asarray(y_past, dtype=np.float64) - off, u_future) + off
+        """Predictions of a batch of windows, shapes (n_windows, n_samples, channels), from ``model_``.
 
-    def _offset(self):
-        off = getattr(self, "output_offset_", None)
-        return None if off is None or not np.any(off) else off
+        The whole past window (at least ``past_steps_`` samples) estimates the state; the output offset
+        (``centre_outputs``) is removed from the past outputs and added to the predictions.
+        """
+        check_fitted(self, "model_")
+        up, yp, uf = self._check_batch(u_past, y_past, u_future)
+        off = self._offset()
+        return self.model_.predict_many(up, yp - off, uf) + off
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict`: ``model_``'s maps with the output offset in ``c``."""
+        check_fitted(self, "model_")
+        T, N = int(past_steps), int(horizon_steps)
+        if T < self.past_steps_ or N < 1:
+            raise SessionError(f"the SubspaceId needs a past window of at least past_steps_ = {self.past_steps_} "
+                               f"samples and a horizon of at least 1 step; got past {past_steps} and horizon "
+                               f"{horizon_steps}.")
+        maps = self.model_.prediction_maps(T, N)
+        off = self._offset()
+        c = np.tile(off, N) - maps.P[:, T * self.n_inputs_:] @ np.tile(off, T)
+        return PredictionMaps(P=maps.P, F=maps.F, c=c, past_steps=T, horizon_steps=N)
 
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
         check_fitted(self, "model_")
-        L, md = self.past_steps_, self.model_
-        off = np.zeros(md.n_outputs) if self._offset() is None else self.output_offset_
-        return np.zeros((L, md.n_inputs)), np.tile(off, (L, 1))
+        L = self.past_steps_
+        return np.zeros((L, self.n_inputs_)), np.tile(self._offset(), (L, 1))
 
     # ------------------------------------------------------------------------------------------ storage
     def to_state(self) -> dict:
@@ -437,7 +432,9 @@ class SubspaceId:
             "model": {"A": md.A, "B": md.B, "C": md.C, "D": md.D, "K": md.K, "innovation_cov": md.innovation_cov,
                       "sample_rate_hz": md.sample_rate_hz, "past_steps": md.past_steps,
                       "input_names": json.dumps(list(md.input_names)),
-                      "output_names": json.dumps(list(md.output_names)), "info": json.dumps(md.info)},
+                      "output_names": json.dumps(list(md.output_names)), "info": json.dumps(md.info),
+                      "input_units": json.dumps(list(md.input_units)),
+                      "output_units": json.dumps(list(md.output_units))},
             "order": self.order_, "order_gap": self.order_gap_, "singular_values": self.singular_values_,
             "order_table": {c: self.order_table_[c].to_numpy() for c in self.order_table_.columns},
             "process_cov": self.process_cov_, "measurement_cov": self.measurement_cov_,
@@ -458,7 +455,10 @@ class SubspaceId:
             sample_rate_hz=float(md["sample_rate_hz"]), past_steps=int(md["past_steps"]),
             input_names=tuple(json.loads(md["input_names"])), output_names=tuple(json.loads(md["output_names"])),
             info=json.loads(md["info"]),
+            input_units=json.loads(md["input_units"]) if "input_units" in md else None,
+            output_units=json.loads(md["output_units"]) if "output_units" in md else None,
         )
+        est._set_channels(est.model_)
         est.output_offset_ = np.asarray(state.get("output_offset", np.zeros(est.model_.n_outputs)), dtype=np.float64)
         est.order_ = int(state["order"])
         est.order_gap_ = int(state["order_gap"])
@@ -477,4 +477,5 @@ class SubspaceId:
         est.max_horizon_steps_ = None
         est.n_columns_ = int(state["n_columns"])
         est.heldout_ = str(state["heldout"])
+        est._mark_fitted()
         return est

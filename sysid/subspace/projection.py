@@ -212,7 +212,7 @@ def _innovation_form(A, C, Q, R, Sx):
         warnings.warn(
             f"the steady-state Kalman gain could not be computed ({exc}); the model keeps K = 0 (output-error "
             "form), so k-step predictions ignore the measured past beyond the initial state.",
-            StimsteerWarning, stacklevel=4,
+            StimsteerWarning, stacklevel=5,
         )
         return np.zeros((A.shape[0], C.shape[0])), R, "Riccati equation failed: K = 0"
     Re = C @ P @ C.T + R
