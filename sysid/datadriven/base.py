@@ -11,26 +11,25 @@ import pandas as pd
 
 from .._offsets import ShiftedOutputs, output_mean
 from ..excitation import check_excitation
-from .._windows import window_batch
-from .._base import check_fitted
+from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
-from ..exceptions import SessionError
+from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
 
 
 # ------------------------------------------------------------------------------------------------ validation
 def _check_int(name, value, lowest):
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
-        raise SessionError(f"{name} must be an integer >= {lowest}; got {value!r}.")
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}.")
     return int(value)
 
 
 def _check_strengths(name, values) -> np.ndarray:
     a = np.atleast_1d(np.asarray(values, dtype=np.float64))
     if a.ndim != 1 or a.size == 0:
-        raise SessionError(f"{name} must be a non-empty 1-D grid of strengths; got shape {a.shape}.")
+        raise InvalidParameterError(f"{name} must be a non-empty 1-D grid of strengths; got shape {a.shape}.")
     if not np.all(np.isfinite(a)) or np.any(a <= 0):
-        raise SessionError(
+        raise InvalidParameterError(
             f"{name} must be finite and > 0; got {a.tolist()}. Regularisation strengths are relative to the "
             "data scale; remove zero or negative values (try 1e-6 ... 1)."
         )
@@ -138,31 +137,14 @@ def _validation_error(G: np.ndarray, F_val: np.ndarray, weights: np.ndarray) -> 
 
 
 # ------------------------------------------------------------------------------------------------ base class
-class _DirectPredictor:
-    """Shared validation, data pass, selection, prediction checks and state for the direct predictors."""
+class _DirectPredictor(BasePredictor):
+    """Shared validation, data pass, selection, prediction and state for the direct predictors."""
 
-    _param_names: tuple = ()
     _strength_param: str = ""
     #: ``fit`` reads a lazily opened session file segment by segment (``read``/``segments``).
     supports_streaming = True
     #: The prediction is affine in the window (see :mod:`stimsteer.sysid.protocols`).
     has_linear_maps = True
-
-    def get_params(self, deep: bool = True) -> dict:
-        """Constructor arguments, unchanged (scikit-learn convention)."""
-        return {k: getattr(self, k) for k in self._param_names}
-
-    def set_params(self, **params):
-        for k, v in params.items():
-            if k not in self._param_names:
-                raise SessionError(f"{type(self).__name__} has no parameter {k!r}; valid: {list(self._param_names)}.")
-            setattr(self, k, v)
-        return self
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if k != self._strength_param)
-        n = np.size(getattr(self, self._strength_param))
-        return f"{type(self).__name__}({args}, {self._strength_param}=<{n} values>)"
 
     def _validate_common(self, session):
         _check_source(session)
@@ -185,7 +167,7 @@ class _DirectPredictor:
     def _gather(self, session, n_candidates, keep_full):
         past, horizon = self._validate_common(session)
         if not isinstance(self.centre_outputs, (bool, np.bool_)):
-            raise SessionError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
+            raise InvalidParameterError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
         self.output_offset_ = output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
         if self.centre_outputs:
             session = ShiftedOutputs(session, self.output_offset_)
@@ -207,6 +189,8 @@ class _DirectPredictor:
         self.cv_folds_ = trial_fold
         self.input_names_ = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(m)))
         self.output_names_ = tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(p)))
+        self.input_units_ = tuple(getattr(session, "input_units", None) or ("",) * m)
+        self.output_units_ = tuple(getattr(session, "output_units", None) or ("",) * p)
         self.sample_rate_hz_ = float(session.sample_rate_hz)
         return folds, np.tile(1.0 / std, horizon)
 
@@ -232,44 +216,10 @@ class _DirectPredictor:
         return float(candidates[best]), table
 
     # ---------------------------------------------------------------------------------------- prediction
-    def _check_windows(self, u_past, y_past, u_future):
-        check_fitted(self, "past_steps_")
-        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
-        arrays = []
-        for name, a, c in (("u_past", u_past, m), ("y_past", y_past, p), ("u_future", u_future, m)):
-            a = np.asarray(a, dtype=np.float64)
-            a = a[:, None] if a.ndim == 1 and c == 1 else a
-            if a.ndim != 2 or a.shape[1] != c:
-                raise SessionError(f"{name} must have shape (n_samples, {c}); got {a.shape}.")
-            if not np.all(np.isfinite(a)):
-                raise SessionError(f"{name} holds NaN or infinite values; give a finite window.")
-            arrays.append(a)
-        u_past, y_past, u_future = arrays
-        if u_past.shape[0] != y_past.shape[0] or u_past.shape[0] < past:
-            raise SessionError(
-                f"u_past and y_past must hold the same number of samples, at least past_steps_ = {past}; got "
-                f"{u_past.shape[0]} and {y_past.shape[0]}. Pass the last {past} samples before the prediction."
-            )
-        n_future = u_future.shape[0]
-        if not 1 <= n_future <= N:
-            raise SessionError(
-                f"u_future must hold 1 to max_horizon_steps_ = {N} samples; got {n_future}. Refit with a longer "
-                "horizon_steps or predict in pieces."
-            )
-        uf = np.zeros((N, m))
-        uf[:n_future] = u_future
-        y_rel = y_past[-past:] - self._offset()
-        b = np.concatenate([u_past[-past:].reshape(-1), y_rel.reshape(-1), uf.reshape(-1)])
-        return b, n_future
-
     def _batch_windows(self, u_past, y_past, u_future):
         """Stacked ``b`` vectors of a batch of windows, shape (n_windows, len(b)), and the common future length."""
-        check_fitted(self, "past_steps_")
         m, past, N = self.n_inputs_, self.past_steps_, self.max_horizon_steps_
-        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=m, n_outputs=self.n_outputs_, min_past=past)
-        if not 1 <= uf.shape[1] <= N:
-            raise SessionError(f"u_future must hold 1 to max_horizon_steps_ = {N} samples per window; got "
-                               f"{uf.shape[1]}. Refit with a longer horizon_steps or predict in pieces.")
+        up, yp, uf = self._check_batch(u_past, y_past, u_future)
         W, n_future = up.shape[0], uf.shape[1]
         full = np.zeros((W, N, m))
         full[:, :n_future] = uf
@@ -300,11 +250,6 @@ class _DirectPredictor:
         return PredictionMaps(P=P, F=np.ascontiguousarray(Gf[:, :m * horizon]), c=c, past_steps=past,
                               horizon_steps=horizon)
 
-    def _offset(self) -> np.ndarray:
-        """The outputs' training mean removed before fitting (``centre_outputs``), zeros otherwise."""
-        off = getattr(self, "output_offset_", None)
-        return np.zeros(self.n_outputs_) if off is None else off
-
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
         check_fitted(self, "past_steps_")
@@ -326,6 +271,8 @@ class _DirectPredictor:
         fitted["output_offset_"] = np.asarray(self._offset(), dtype=np.float64)
         fitted["input_names_"] = "\n".join(self.input_names_)
         fitted["output_names_"] = "\n".join(self.output_names_)
+        fitted["input_units_"] = "\n".join(self.input_units_)
+        fitted["output_units_"] = "\n".join(self.output_units_)
         fitted["cv_folds_"] = np.asarray(self.cv_folds_, dtype=np.int64)
         fitted["cv_table_"] = {c: self.cv_table_[c].to_numpy(dtype=np.float64) for c in self.cv_table_.columns}
         return {"params": params, "fitted": fitted}
@@ -351,6 +298,10 @@ class _DirectPredictor:
         obj.cv_folds_ = tuple(int(f) for f in np.atleast_1d(fitted.pop("cv_folds_")))
         obj.input_names_ = tuple(str(fitted.pop("input_names_")).split("\n"))
         obj.output_names_ = tuple(str(fitted.pop("output_names_")).split("\n"))
+        for k, n in (("input_units_", obj.n_inputs_), ("output_units_", obj.n_outputs_)):
+            units = tuple(str(fitted.pop(k)).split("\n")) if k in fitted else ("",) * n
+            setattr(obj, k, units if len(units) == n else ("",) * n)  # files written before units were stored
         obj.cv_table_ = pd.DataFrame({k: np.asarray(v) for k, v in fitted.pop("cv_table_").items()})
         obj.output_offset_ = np.asarray(fitted.pop("output_offset_", np.zeros(obj.n_outputs_)), dtype=np.float64)
+        obj._mark_fitted()
         return obj, fitted

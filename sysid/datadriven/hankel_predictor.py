@@ -12,7 +12,7 @@ import scipy.linalg as sla
 from ..excitation import rank_tolerance
 from .._base import check_fitted
 from ..protocols import DataBlocks, PredictionMaps
-from ..exceptions import ConditioningWarning, SessionError, SolverError
+from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
 
@@ -213,8 +213,6 @@ class HankelPredictor(_DirectPredictor):
     """
 
     storage_kind = "hankel_predictor"
-    _param_names = ("past_steps", "horizon_steps", "regularizer", "lambdas_g", "lambda_y", "compress", "n_states",
-                    "n_splits", "seed", "solver_options", "centre_outputs")
     _strength_param = "lambdas_g"
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("regularizer_", "lambda_g_", "lambda_g_relative_",
                                                           "lambda_y_")
@@ -238,12 +236,13 @@ class HankelPredictor(_DirectPredictor):
     # ---------------------------------------------------------------------------------------- fit
     def _validate_settings(self):
         if self.regularizer not in REGULARIZERS:
-            raise SessionError(f"regularizer must be one of {list(REGULARIZERS)}; got {self.regularizer!r}.")
+            raise InvalidParameterError(f"regularizer must be one of {list(REGULARIZERS)}; got {self.regularizer!r}.")
         lam_y = float(self.lambda_y) if np.isscalar(self.lambda_y) else np.nan
         if not np.isfinite(lam_y) or lam_y <= 0:
-            raise SessionError(f"lambda_y must be a finite number > 0; got {self.lambda_y!r}. Try 1e3.")
+            raise InvalidParameterError(f"lambda_y must be a finite number > 0; got {self.lambda_y!r}. Try 1e3.")
         if self.solver_options is not None and not isinstance(self.solver_options, dict):
-            raise SessionError(f"solver_options must be a dict or None; got {type(self.solver_options).__name__}.")
+            raise InvalidParameterError(f"solver_options must be a dict or None; got "
+                                        f"{type(self.solver_options).__name__}.")
         return _check_strengths("lambdas_g", self.lambdas_g), lam_y
 
     def _abs_strength(self, rel: float, scale: float, n_columns: int, n_rows: int) -> float:
@@ -334,19 +333,11 @@ class HankelPredictor(_DirectPredictor):
         return out
 
     # ---------------------------------------------------------------------------------------- predict
-    def predict(self, u_past, y_past, u_future) -> np.ndarray:
-        """Predict the outputs over ``u_future`` from the last ``past_steps_`` samples of the past window.
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Predictions of a batch of windows, shapes (n_windows, n_samples, channels).
 
-        Parameters
-        ----------
-        u_past : ndarray, shape (n_past >= past_steps_, n_inputs)
-        y_past : ndarray, shape (n_past, n_outputs)
-        u_future : ndarray, shape (n_future <= max_horizon_steps_, n_inputs)
-            A shorter horizon uses the first blocks, with the later future inputs set to zero.
-
-        Returns
-        -------
-        y_future : ndarray, shape (n_future, n_outputs)
+        Each window's last ``past_steps_`` samples and at most ``max_horizon_steps_`` future inputs are used (a
+        shorter horizon uses the first blocks, with the later future inputs set to zero).
 
         Raises
         ------
@@ -357,25 +348,17 @@ class HankelPredictor(_DirectPredictor):
         Notes
         -----
         For "l2" and "projection" the prediction is linear in the window, ``vec(y_future) = G b``; ``G`` is
-        computed from one KKT solve with ``len(b)`` right-hand sides on the first call and kept, so later calls
-        cost one matrix-vector product. :meth:`solve_g` re-solves the problem for one window.
-        """
-        b, n_future = self._check_windows(u_past, y_past, u_future)
-        if self.regularizer_ == "l1":
-            y = self.blocks_.Yf @ self._solve(b)
-        else:
-            y = self._prediction_map() @ b
-        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future] + self._offset()
-
-    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels).
-
-        One matrix product with the kept prediction map for "l2" and "projection"; one solve per window for "l1".
+        computed from one KKT solve with ``len(b)`` right-hand sides on the first call and kept, so a batch costs
+        one matrix product. "l1" solves one convex problem per window. :meth:`solve_g` re-solves the problem for
+        one window.
         """
         check_fitted(self, "blocks_")
-        if self.regularizer_ == "l1":
-            return np.stack([self.predict(a, b, c) for a, b, c in zip(u_past, y_past, u_future)])
-        return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
+        if self.regularizer_ != "l1":
+            return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
+        b, n_future = self._batch_windows(u_past, y_past, u_future)
+        y = np.stack([self.blocks_.Yf @ self._solve(row) for row in b]) if b.shape[0] else \
+            np.zeros((0, self.blocks_.Yf.shape[0]))
+        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
 
     @property
     def has_linear_maps(self) -> bool:
@@ -414,8 +397,8 @@ class HankelPredictor(_DirectPredictor):
             In the coordinates of ``blocks_`` (``h = Qᵀ g`` when compressed); ``blocks_.Yf @ g`` is the
             predicted ``vec(y_future)`` over the full horizon, less ``output_offset_`` with ``centre_outputs``.
         """
-        b, _ = self._check_windows(u_past, y_past, u_future)
-        return self._solve(b)
+        b, _ = self._batch_windows(*self._window(u_past, y_past, u_future))
+        return self._solve(b[0])
 
     @_one_blas_thread
     def _prediction_map(self) -> np.ndarray:

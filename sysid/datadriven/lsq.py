@@ -96,7 +96,6 @@ class LsqPredictor(_DirectPredictor):
     """
 
     storage_kind = "lsq_predictor"
-    _param_names = ("past_steps", "horizon_steps", "alphas", "n_states", "n_splits", "seed", "centre_outputs")
     _strength_param = "alphas"
     _fitted_arrays = ("Kp_", "Kf_")
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("alpha_", "ridge_strength_")
@@ -151,30 +150,16 @@ class LsqPredictor(_DirectPredictor):
         self.cv_table_ = table
         return self
 
-    def predict(self, u_past, y_past, u_future) -> np.ndarray:
-        """Predict the outputs over ``u_future`` from the last ``past_steps_`` samples of the past window.
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Predictions of a batch of windows, shapes (n_windows, n_samples, channels); one matrix product.
 
-        Parameters
-        ----------
-        u_past : ndarray, shape (n_past >= past_steps_, n_inputs)
-        y_past : ndarray, shape (n_past, n_outputs)
-        u_future : ndarray, shape (n_future <= max_horizon_steps_, n_inputs)
-
-        Returns
-        -------
-        y_future : ndarray, shape (n_future, n_outputs)
+        Each window's last ``past_steps_`` samples and at most ``max_horizon_steps_`` future inputs are used
+        (a shorter horizon uses the first blocks, with the later future inputs set to zero).
 
         Raises
         ------
         NotFittedError, SessionError
         """
-        b, n_future = self._check_windows(u_past, y_past, u_future)
-        n_p = self.Kp_.shape[1]
-        y = self.Kp_ @ b[:n_p] + self.Kf_ @ b[n_p:]
-        return y.reshape(self.max_horizon_steps_, self.n_outputs_)[:n_future] + self._offset()
-
-    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels); one matrix product."""
         check_fitted(self, "Kp_")
         return self._linear_many(np.hstack([self.Kp_, self.Kf_]), u_past, y_past, u_future)
 

@@ -10,7 +10,7 @@ import warnings
 import numpy as np
 
 from ..exceptions import ExcitationError, StimsteerWarning
-from ..statespace import kalman_gain
+from ..statespace import kalman_gain, markov_toeplitz
 from .gram import _Layout
 
 
@@ -124,16 +124,16 @@ def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
     Hs = np.zeros((n_theta, p * f, m * f))
     for l in range(m):
         for j in range(n):
-            k = l * n + j
+            h = np.zeros((f, p, m))  # Markov parameters of B = e_j e_lᵀ (D = 0): h[r] = C A^(r-1) B
             for r in range(1, f):
-                for s in range(r):
-                    Hs[k, r * p:(r + 1) * p, s * m + l] = CA[r - s - 1][:, j]
+                h[r][:, l] = CA[r - 1][:, j]
+            Hs[l * n + j] = markov_toeplitz(h)
     if feedthrough:
         for l in range(m):
             for a in range(p):
-                k = n * m + l * p + a
-                for r in range(f):
-                    Hs[k, r * p + a, r * m + l] = 1.0
+                h = np.zeros((f, p, m))  # D = e_a e_lᵀ (B = 0): only h[0]
+                h[0][a, l] = 1.0
+                Hs[n * m + l * p + a] = markov_toeplitz(h)
     return Hs
 
 
