@@ -55,6 +55,7 @@ def model_to_state(model: StateSpaceModel) -> dict:
         "innovation_cov": model.innovation_cov, "sample_rate_hz": float(model.sample_rate_hz),
         "past_steps": int(model.past_steps), "input_names": list(model.input_names),
         "output_names": list(model.output_names), "info": dict(model.info),
+        "input_units": list(model.input_units), "output_units": list(model.output_units),
     }
 
 
@@ -65,7 +66,29 @@ def model_from_state(state: dict) -> StateSpaceModel:
         innovation_cov=state["innovation_cov"], sample_rate_hz=state["sample_rate_hz"],
         past_steps=state["past_steps"], input_names=tuple(state["input_names"]),
         output_names=tuple(state["output_names"]), info=dict(state.get("info", {})),
+        input_units=state.get("input_units"), output_units=state.get("output_units"),
     )
+
+
+def _with_session_units(predictor, provenance: dict):
+    """A predictor read from a file written before units were stored: units from the provenance's session record.
+
+    Channels whose units are all empty take the session's units when the record has one per channel; otherwise
+    they stay empty strings (unknown).
+    """
+    session = (provenance or {}).get("session") or {}
+    changes = {}
+    for side in ("input_units", "output_units"):
+        have, recorded = tuple(getattr(predictor, side + "_", ())), session.get(side)
+        if not any(have) and isinstance(recorded, list) and len(recorded) == len(have) and any(recorded):
+            changes[side] = tuple(str(u) for u in recorded)
+    if not changes:
+        return predictor
+    if isinstance(predictor, StateSpaceModel):
+        return predictor.replace(**changes)
+    for side, units in changes.items():
+        setattr(predictor, side + "_", units)
+    return predictor
 
 
 # ------------------------------------------------------------------------------------------------ encoding
@@ -259,4 +282,4 @@ def load_predictor(path):
         raise FileFormatError(
             f"{path} holds a {kind!r} model whose stored state does not match this stimsteer ({exc!r}); refit it."
         ) from None
-    return predictor, provenance
+    return _with_session_units(predictor, provenance), provenance
