@@ -24,7 +24,7 @@ import numpy as np
 import pandas as pd
 
 from ._base import BasePredictor, check_fitted
-from .exceptions import ConditioningWarning, ExcitationError, SessionError
+from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterError, SessionError
 from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
@@ -151,7 +151,7 @@ class RidgeArx(BasePredictor):
         _check_int("chunk_samples", self.chunk_samples, 1)
         _check_alphas(self.alphas)
         if not isinstance(self.fit_intercept, (bool, np.bool_)):
-            raise SessionError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
+            raise InvalidParameterError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
         prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept))
         longest = max((e - s for s, e in session.segments(min_length=1)), default=0)
         if longest <= prob.L:

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .exceptions import SessionError
+from .exceptions import InvalidParameterError, SessionError
 from ._lagged import _Moments
 
 
@@ -134,16 +134,16 @@ class _Problem:
 # ------------------------------------------------------------------------------------------------ estimator
 def _check_int(name, value, lowest):
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
-        raise SessionError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of samples.")
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of samples.")
     return int(value)
 
 
 def _check_alphas(alphas) -> np.ndarray:
     a = np.atleast_1d(np.asarray(alphas, dtype=np.float64))
     if a.ndim != 1 or a.size == 0:
-        raise SessionError(f"alphas must be a non-empty 1-D grid of ridge strengths; got shape {a.shape}.")
+        raise InvalidParameterError(f"alphas must be a non-empty 1-D grid of ridge strengths; got shape {a.shape}.")
     if not np.all(np.isfinite(a)) or np.any(a < 0):
-        raise SessionError(
+        raise InvalidParameterError(
             f"alphas must be finite and >= 0 (0 = ordinary least squares); got {a.tolist()}. Remove negative values."
         )
     return np.unique(a)

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .exceptions import SessionError, StimsteerWarning
+from .exceptions import InvalidParameterError, StimsteerWarning
 from .metrics import Scores, freerun_scores, kstep_scores
 from .quality import OFFSET_WARN_FRACTION, output_moments
 from .session import TrialSplit
@@ -73,14 +73,14 @@ class _Lazy:
             if alias in given:
                 value = given.pop(alias)
                 if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-                    raise SessionError(f"{alias} must be a whole number of samples >= 1 (on the command line: "
-                                       f"--{alias.replace('_', '-')} N); got {value!r}.")
+                    raise InvalidParameterError(f"{alias} must be a whole number of samples >= 1 (on the command line: "
+                                                f"--{alias.replace('_', '-')} N); got {value!r}.")
                 for n in names:
                     given.setdefault(n, value)
         allowed = set(self.parameters())
         unknown = sorted(set(given) - allowed)
         if unknown:
-            raise SessionError(
+            raise InvalidParameterError(
                 f"unknown setting(s) {unknown} for {cls.__name__}; allowed: {sorted(allowed)}. Check the spelling."
             )
         required = [name for name, par in inspect.signature(cls.__init__).parameters.items()
@@ -89,7 +89,7 @@ class _Lazy:
         missing = [name for name in required if name not in given]
         if missing:
             options = " and ".join(f"--{name.replace('_', '-')} N" for name in missing)
-            raise SessionError(
+            raise InvalidParameterError(
                 f"{cls.__name__} needs {', '.join(missing)} (on the command line: {options}); give "
                 f"{'them' if len(missing) > 1 else 'it'} in samples."
             )
@@ -148,7 +148,7 @@ def _factory(route: str, method: str) -> _Lazy:
     key = (str(route), str(method))
     if key not in METHODS:
         known = ", ".join(f"--route {r} --method {m}" for r, m in sorted(METHODS))
-        raise SessionError(f"no method {method!r} on route {route!r}; available: {known}.")
+        raise InvalidParameterError(f"no method {method!r} on route {route!r}; available: {known}.")
     return METHODS[key]
 
 
@@ -166,7 +166,7 @@ def make_estimator(route: str, method: str, settings: dict | None = None, *, hor
 
     Raises
     ------
-    SessionError
+    InvalidParameterError
         Unknown route/method or settings, or a required setting missing.
     """
     factory = _factory(route, method)
@@ -241,8 +241,10 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
 
     Raises
     ------
+    InvalidParameterError
+        Unknown route/method or settings, or a required setting missing.
     SessionError
-        Unknown route/method or settings, fewer than two trials, or held-out trials too short to score.
+        Fewer than two trials, or held-out trials too short to score.
 
     Warns
     -----

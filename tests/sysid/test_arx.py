@@ -381,7 +381,7 @@ def test_input_that_never_varies_is_named(rng):
 @pytest.mark.parametrize("alphas, pattern", [([-1.0, 1.0], r"finite and >= 0.*-1\.0"), ([], "non-empty"),
                                              ([np.nan], "finite and >= 0")])
 def test_bad_alphas(rng, alphas, pattern):
-    with pytest.raises(SessionError, match=pattern):
+    with pytest.raises(InvalidParameterError, match=pattern):
         RidgeArx(alphas=alphas).fit(multi_trial_session(rng, n_trials=2))
 
 
@@ -389,12 +389,12 @@ def test_bad_alphas(rng, alphas, pattern):
                                                  ("delay_samples", 1.5, 0), ("n_folds", 1, 2),
                                                  ("chunk_samples", 0, 1), ("output_lags", True, 0)])
 def test_bad_integer_settings(rng, name, value, lowest):
-    with pytest.raises(SessionError, match=f"{name} must be an integer >= {lowest}"):
+    with pytest.raises(InvalidParameterError, match=f"{name} must be an integer >= {lowest}"):
         RidgeArx(**{name: value}).fit(multi_trial_session(rng, n_trials=2))
 
 
 def test_fit_intercept_must_be_boolean(rng):
-    with pytest.raises(SessionError, match="fit_intercept must be True or False; got 'yes'"):
+    with pytest.raises(InvalidParameterError, match="fit_intercept must be True or False; got 'yes'"):
         RidgeArx(fit_intercept="yes").fit(multi_trial_session(rng, n_trials=2))
 
 

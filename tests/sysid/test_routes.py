@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from stimsteer.sysid.arx import RidgeArx
-from stimsteer.sysid.exceptions import FileFormatError, SessionError
+from stimsteer.sysid.exceptions import FileFormatError, InvalidParameterError, SessionError
 from stimsteer.sysid.metrics import kstep_scores
 from stimsteer.sysid.routes import (
     METHODS,
@@ -152,9 +152,10 @@ def test_direct_route_when_registered(sess):
 
 
 def test_route_errors(sess):
-    with pytest.raises(SessionError, match="no method 'oracle' on route 'indirect'; available: .*--route indirect --method arx"):
+    with pytest.raises(InvalidParameterError,
+                       match="no method 'oracle' on route 'indirect'; available: .*--route indirect --method arx"):
         fit_route(sess, route="indirect", method="oracle")
-    with pytest.raises(SessionError, match=r"unknown setting\(s\) \['lag'\] for RidgeArx"):
+    with pytest.raises(InvalidParameterError, match=r"unknown setting\(s\) \['lag'\] for RidgeArx"):
         fit_route(sess, route="indirect", method="arx", settings={"lag": 2})
     with pytest.raises(SessionError, match="needs at least 2 trials"):
         fit_route(sess.select_trials([0]), route="indirect", method="arx")
