@@ -11,7 +11,7 @@ from .excitation import excitation_report, ExcitationReport, pe_order, required_
 from .hankel import block_hankel, mosaic_hankel, page_matrix, mosaic_page, session_hankel, session_page
 from .arx import RidgeArx, arx_to_state_space
 from .subspace import SubspaceId
-from .statespace import StateSpaceModel, kalman_gain
+from .statespace import StateSpaceModel, kalman_gain, markov_toeplitz
 from .datadriven import LsqPredictor, HankelPredictor, HankelBlocks
 from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung_box, input_residual_xcorr
 from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
@@ -84,6 +84,7 @@ __all__ = [
     "impulse_responses",
     "input_residual_xcorr",
     "kalman_gain",
+    "markov_toeplitz",
     "kstep_scores",
     "ljung_box",
     "load_predictor",

@@ -9,6 +9,7 @@ import inspect
 
 import numpy as np
 
+from ._views import SourceView
 from .exceptions import SessionError
 from .session import TrialSplit
 
@@ -16,17 +17,14 @@ __all__ = ["open_session_source"]
 
 
 # ------------------------------------------------------------------------------------------------ trial subsets
-class _TrialSubset:
+class _TrialSubset(SourceView):
     """A lazy view of some trials of a session file: same sample grid, only those trials' segments."""
 
     def __init__(self, source, indices):
-        self._src = source
+        super().__init__(source)
         if "out" not in inspect.signature(source.read).parameters:
             self.read = source.read  # the source's own signature, so readers see that it takes no buffers
         self.trials = np.asarray(source.trials)[list(indices)]
-        for attr in ("n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names", "output_names",
-                     "input_units", "output_units"):
-            setattr(self, attr, getattr(source, attr))
 
     @property
     def n_trials(self) -> int:
