@@ -177,8 +177,10 @@ class RidgeArx(BasePredictor):
 
         Raises
         ------
+        InvalidParameterError
+            Bad settings (lags, alphas, fit_intercept).
         SessionError
-            Bad settings; lags longer than every valid run; more coefficients than usable rows.
+            Lags longer than every valid run; more coefficients than usable rows.
         ExcitationError
             An input channel never varies over the usable samples.
 

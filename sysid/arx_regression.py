@@ -134,7 +134,8 @@ class _Problem:
 # ------------------------------------------------------------------------------------------------ estimator
 def _check_int(name, value, lowest):
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
-        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of samples.")
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of "
+                                    "samples.")
     return int(value)
 
 

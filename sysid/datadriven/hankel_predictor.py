@@ -260,8 +260,10 @@ class HankelPredictor(_DirectPredictor):
 
         Raises
         ------
+        InvalidParameterError
+            Bad settings (strengths <= 0, unknown regulariser, non-integer windows).
         SessionError
-            Bad settings (strengths <= 0, unknown regulariser); past window + horizon longer than every trial.
+            Past window + horizon longer than every trial.
         ExcitationError
             The input Hankel matrix of depth ``past_steps + horizon_steps`` is rank-deficient beyond tolerance.
         SolverError

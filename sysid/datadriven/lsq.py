@@ -120,8 +120,10 @@ class LsqPredictor(_DirectPredictor):
 
         Raises
         ------
+        InvalidParameterError
+            Bad settings (strengths <= 0, non-integer windows).
         SessionError
-            Bad settings (strengths <= 0, non-integer windows); past window + horizon longer than every trial.
+            Past window + horizon longer than every trial.
         ExcitationError
             The input Hankel matrix of depth ``past_steps + horizon_steps`` is rank-deficient beyond tolerance.
 
