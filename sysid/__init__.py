@@ -17,7 +17,9 @@ from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung
 from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
 from .schedule import design_schedule, Schedule, save_schedule, load_schedule
 from .storage import save_predictor, load_predictor
-from .routes import fit_route, make_estimator, FitResult, METHODS, open_session_source, Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
+from .routes import fit_route, make_estimator, FitResult, METHODS
+from .trial_sources import open_session_source
+from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
 
 __all__ = [
     "BaseEstimator",
