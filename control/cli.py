@@ -48,7 +48,8 @@ def _add_predict(sub):
 
 
 def _run_predict(args):
-    from ..sysid.routes import load_pattern, open_session_source, predict_pattern, trial_end_window, write_prediction
+    from ..sysid.routes import load_pattern, open_session_source, predict_pattern, trial_end_window
+    from .commands.predict import write_prediction
     from ..sysid.storage import load_predictor
 
     predictor, provenance = load_predictor(args.model)

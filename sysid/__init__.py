@@ -11,13 +11,15 @@ from .excitation import excitation_report, ExcitationReport, pe_order, required_
 from .hankel import block_hankel, mosaic_hankel, page_matrix, mosaic_page, session_hankel, session_page
 from .arx import RidgeArx, arx_to_state_space
 from .subspace import SubspaceId
-from .statespace import StateSpaceModel, kalman_gain
+from .statespace import StateSpaceModel, kalman_gain, markov_toeplitz
 from .datadriven import LsqPredictor, HankelPredictor, HankelBlocks
 from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung_box, input_residual_xcorr
 from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
 from .signals import ExcitationCheck, verify_excitation, max_length_sequence, multisine, crest_factor
 from .storage import save_predictor, load_predictor
-from .routes import fit_route, make_estimator, FitResult, METHODS, open_session_source, Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
+from .routes import fit_route, make_estimator, FitResult, METHODS
+from .trial_sources import open_session_source
+from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
 
 __all__ = [
     "BaseEstimator",
@@ -84,6 +86,7 @@ __all__ = [
     "impulse_responses",
     "input_residual_xcorr",
     "kalman_gain",
+    "markov_toeplitz",
     "kstep_scores",
     "ljung_box",
     "load_predictor",

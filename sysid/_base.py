@@ -22,6 +22,7 @@ import inspect
 
 import numpy as np
 
+from ._windows import window_batch
 from .exceptions import InvalidParameterError, NotFittedError, SessionError
 
 __all__ = ["BaseEstimator", "BasePredictor", "check_fitted"]
@@ -65,7 +66,15 @@ class BaseEstimator:
         if fit is not None and not getattr(fit, "_records_settings", False):
             @functools.wraps(fit)
             def fit_and_record(self, *args, **kw):
-                result = fit(self, *args, **kw)
+                # During fit the object's own fitted-state helpers may run (check_fitted included): the settings
+                # changed before this fit are the ones it fits with. A failed fit keeps the object refused.
+                stale = getattr(self, "_changed_since_fit", ())
+                self._changed_since_fit = ()
+                try:
+                    result = fit(self, *args, **kw)
+                except BaseException:
+                    self._changed_since_fit = stale
+                    raise
                 self._mark_fitted()
                 return result
 
@@ -190,6 +199,21 @@ class BasePredictor(BaseEstimator):
                 raise SessionError(f"{name} must have shape (n_samples, {c}); got {a.shape}.")
             arrays.append(a[None])
         return tuple(arrays)
+
+    def _check_batch(self, u_past, y_past, u_future):
+        """The one check of a batch of windows, shapes (n_windows, n_samples, channels), as float64 copies.
+
+        Refuses an unfitted predictor, wrong shapes, NaN or inf, a past shorter than ``past_steps_`` and, where
+        ``max_horizon_steps_`` is set, a future longer than it (or empty).
+        """
+        check_fitted(self, "past_steps_")
+        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=int(self.n_inputs_),
+                                  n_outputs=int(self.n_outputs_), min_past=int(self.past_steps_))
+        N = self.max_horizon_steps_
+        if N is not None and not 1 <= uf.shape[1] <= int(N):
+            raise SessionError(f"u_future must hold 1 to max_horizon_steps_ = {N} samples per window; got "
+                               f"{uf.shape[1]}. Refit with a longer horizon_steps or predict in pieces.")
+        return up, yp, uf
 
     def predict(self, u_past, y_past, u_future) -> np.ndarray:
         """Predicted outputs over ``u_future``, shape (n_future, n_outputs), from one past window.

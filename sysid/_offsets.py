@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._views import SourceView
 from .exceptions import SessionError
 from .quality import output_moments
 
@@ -21,18 +22,12 @@ def output_mean(source) -> np.ndarray:
     return mean
 
 
-class ShiftedOutputs:
+class ShiftedOutputs(SourceView):
     """A view of a session (or lazily opened file) whose outputs have ``offset`` subtracted on every read."""
 
     def __init__(self, source, offset: np.ndarray):
-        self._src, self._offset = source, offset
-        for attr in ("trials", "n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names",
-                     "output_names", "input_units", "output_units"):
-            if hasattr(source, attr):
-                setattr(self, attr, getattr(source, attr))
-
-    def segments(self, min_length: int = 1):
-        return self._src.segments(min_length)
+        super().__init__(source)
+        self._offset = offset
 
     def read(self, start: int, stop: int):
         u, y, mask = self._src.read(start, stop)

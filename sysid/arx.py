@@ -23,232 +23,24 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from ._base import check_fitted
-from .exceptions import ConditioningWarning, ExcitationError, SessionError
+from ._base import BasePredictor, check_fitted
+from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterError, SessionError
 from ._lagged import _Moments, _read_z, _stream_sums
+from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
+from .arx_statespace import arx_to_state_space
 
 __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
+
 
 #: Condition number of the (standardised, regularised) normal equations above which a fit warns. At 1e10 about
 #: ten of float64's sixteen significant digits are lost in the solve (common practice, no source).
 CONDITION_WARN_LIMIT = 1e10
-
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
 
 
-# ------------------------------------------------------------------------------------------------ data access
-def _check_source(session):
-    needed = ("read", "segments", "n_inputs", "n_outputs", "trials", "sample_rate_hz")
-    missing = [a for a in needed if not hasattr(session, a)]
-    if missing:
-        raise SessionError(
-            f"expected a stimsteer Session or an opened session file (stimsteer.sysid.io.open_session_file); got "
-            f"{type(session).__name__}, which lacks {missing}. Load the recording with load_session first."
-        )
-
-
-def _pieces(session, n_lags: int, n_folds: int):
-    """Row ranges ``[k0, k1)`` inside valid segments, each with a fold id, and the folding scheme used.
-
-    Folds group whole trials (round-robin over the trials that have rows). With fewer than two such trials the
-    rows are cut into ``n_folds`` contiguous blocks instead.
-    """
-    segs = [(s + n_lags, e) for s, e in session.segments(min_length=n_lags + 1)]
-    starts = np.asarray(session.trials)[:, 0]
-    trial_of = [int(np.searchsorted(starts, a - n_lags, side="right") - 1) for a, _ in segs]
-    used = sorted(set(trial_of))
-    if len(used) >= 2:
-        k = min(n_folds, len(used))
-        fold_of_trial = {t: i % k for i, t in enumerate(used)}
-        return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
-    return _block_pieces(segs, n_folds), n_folds, "contiguous blocks (one trial)"
-
-
-def _block_pieces(segs, n_folds: int):
-    total = sum(b - a for a, b in segs)
-    edges = np.linspace(0, total, n_folds + 1).round().astype(np.int64)
-    out, offset = [], 0
-    for a, b in segs:
-        for f in range(n_folds):
-            lo = max(a, a + edges[f] - offset)
-            hi = min(b, a + edges[f + 1] - offset)
-            if hi > lo:
-                out.append((int(lo), int(hi), f))
-        offset += b - a
-    return out
-
-
-# ------------------------------------------------------------------------------------------------ solving
-def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray], np.ndarray]:
-    """Solutions of ``(R + α I) β = r`` for each α, from one eigendecomposition of the symmetric ``R``.
-
-    Eigenvalues at or below ``d · eps · λ_max`` are treated as zero; for α = 0 their directions are dropped
-    (minimum-norm solution). Returns the solutions and the condition numbers ``(λ_max + α) / (λ_min + α)``.
-    """
-    lam, V = np.linalg.eigh(R)
-    lam = np.clip(lam, 0.0, None)
-    tiny = lam.max(initial=0.0) * R.shape[0] * np.finfo(float).eps
-    Vr = V.T @ r
-    betas, conds = [], []
-    for alpha in alphas:
-        den = lam + alpha
-        keep = den > tiny
-        inv = np.where(keep, 1.0 / np.where(keep, den, 1.0), 0.0)
-        betas.append(V @ (inv[:, None] * Vr))
-        lo = den.min() if den.size else 1.0
-        conds.append(np.inf if lo <= tiny else (lam.max(initial=0.0) + alpha) / lo)
-    return betas, np.asarray(conds)
-
-
-class _Problem:
-    """Index bookkeeping from the lagged-moment space to the regression (regressors x, targets y)."""
-
-    def __init__(self, p, m, na, nb, d, fit_intercept):
-        self.p, self.m, self.na, self.nb, self.d = p, m, na, nb, d
-        self.L = max(na, d + nb - 1)
-        self.c = p + m
-        self.fit_intercept = fit_intercept
-        c = self.c
-        self.y_idx = np.arange(p)
-        x = [lag * c + np.arange(p) for lag in range(1, na + 1)]
-        x += [(d + j) * c + p + np.arange(m) for j in range(nb)]
-        self.x_idx = np.concatenate(x) if x else np.zeros(0, dtype=np.int64)
-
-    @property
-    def size(self):
-        return self.c * (self.L + 1)
-
-    def centred(self, mom: _Moments, mean_from: _Moments | None = None):
-        """Regressor/target cross products about the mean of ``mean_from`` (default ``mom``), or raw."""
-        xi, yi = self.x_idx, self.y_idx
-        W, s, n = mom.W, mom.s, mom.n
-        ref = mom if mean_from is None else mean_from
-        mu = ref.s / ref.n if self.fit_intercept else np.zeros_like(ref.s)
-        # sum_k (w_k - mu)(w_k - mu)ᵀ = W - mu sᵀ - s muᵀ + n mu muᵀ
-        Wc = W - np.outer(mu, s) - np.outer(s, mu) + n * np.outer(mu, mu)
-        return Wc[np.ix_(xi, xi)], Wc[np.ix_(xi, yi)], Wc[np.ix_(yi, yi)], mu
-
-    def solve(self, mom: _Moments, alphas):
-        """Coefficients (d_x, p) for each α, regressor scale (d_x,), condition numbers, and the centring mean."""
-        Cxx, Cxy, _Cyy, mu = self.centred(mom)
-        n = mom.n
-        scale = np.sqrt(np.clip(np.diag(Cxx), 0.0, None) / n)
-        scale[scale == 0] = 1.0
-        R = Cxx / (n * np.outer(scale, scale))
-        r = Cxy / (n * scale[:, None])
-        betas, conds = _ridge_path(R, r, alphas)
-        return [b / scale[:, None] for b in betas], scale, conds, mu
-
-    def validation_errors(self, betas, train: _Moments, test: _Moments) -> list[float]:
-        """Mean over output channels of SSE / SST on ``test`` for each coefficient set fitted on ``train``.
-
-        SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``). The test
-        moments are centred once for all coefficient sets.
-        """
-        Qxx, Qxy, Qyy, _ = self.centred(test, mean_from=train)
-        yi = self.y_idx
-        sst = np.diag(test.W)[yi] - test.s[yi] ** 2 / test.n
-        ok = sst > 0
-        out = []
-        for beta in betas:
-            sse = np.diag(Qyy) - 2.0 * (beta * Qxy).sum(axis=0) + (beta * (Qxx @ beta)).sum(axis=0)
-            sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
-            out.append(float(np.mean(sse[ok] / sst[ok])) if ok.any() else np.nan)
-        return out
-
-
-# ------------------------------------------------------------------------------------------------ state space
-def arx_to_state_space(
-    ar_coefs, input_coefs, delay_samples: int, *, sample_rate_hz: float = 1.0, innovation_cov=None,
-    input_names=None, output_names=None, info=None,
-) -> StateSpaceModel:
-    """The shift-register (observer-form) state-space realisation of an ARX model.
-
-    Parameters
-    ----------
-    ar_coefs : ndarray, shape (na, p, p)
-        ``A_1 ... A_na``; ``na`` may be 0.
-    input_coefs : ndarray, shape (nb, p, m)
-        ``B_0 ... B_{nb-1}`` acting on ``u_{k-d-j}``.
-    delay_samples : int
-        ``d``, the input delay in samples (0 gives direct feed-through ``D = B_0``).
-    sample_rate_hz : float, default 1.0
-    innovation_cov : ndarray, shape (p, p), optional
-        Covariance of the one-step residual ``e_k``.
-    input_names, output_names : tuple of str, optional
-    info : dict, optional
-
-    Returns
-    -------
-    StateSpaceModel
-        States ``x_k = [y_{k-1}; ...; y_{k-na}; u_{k-1}; ...; u_{k-nu}]`` with ``nu = d + nb - 1`` (or ``nb - 1``
-        input states when ``d = 0``), ``n_states = p·na + m·nu``, Kalman gain ``K = [I; 0]`` and ``past_steps =
-        max(na, nu, 1)``.
-
-    Notes
-    -----
-    ``y_k = C x_k + D u_k + e_k`` with ``C = [A_1 … A_na, B̃_1 … B̃_nu]``, ``B̃_l = B_{l-d}`` (zero outside the
-    input lags) and ``D = B_0`` if ``d = 0``. The predictor matrix ``A − K C`` is a pure shift, nilpotent of index
-    ``max(na, nu)``: the state after a past window of that length is exactly the stacked measured samples, so
-    ``predict`` from such a window reproduces the ARX recursion that feeds back its own predictions.
-
-    References
-    ----------
-    Ljung L. (1999), System Identification: Theory for the User, 2nd ed., section 4.3 (state-space forms of ARX).
-    """
-    Aa = np.asarray(ar_coefs, dtype=np.float64)
-    Bb = np.asarray(input_coefs, dtype=np.float64)
-    na, p = Aa.shape[0], Bb.shape[1]
-    nb, m = Bb.shape[0], Bb.shape[2]
-    d = int(delay_samples)
-    nu = d + nb - 1
-    C = np.zeros((p, p * na + m * nu))
-    for i in range(na):
-        C[:, i * p:(i + 1) * p] = Aa[i]
-    for j in range(nb):
-        lag = d + j
-        if lag >= 1:
-            C[:, p * na + (lag - 1) * m: p * na + lag * m] = Bb[j]
-    D = Bb[0] if d == 0 else np.zeros((p, m))
-    n = C.shape[1]
-    A = np.zeros((n, n))
-    B = np.zeros((n, m))
-    K = np.zeros((n, p))
-    if na:
-        A[:p] = C
-        B[:p] = D
-        K[:p] = np.eye(p)
-        A[p: p * na, : p * (na - 1)] = np.eye(p * (na - 1))
-    if nu:
-        off = p * na
-        B[off: off + m] = np.eye(m)
-        A[off + m: off + m * nu, off: off + m * (nu - 1)] = np.eye(m * (nu - 1))
-    return StateSpaceModel(
-        A=A, B=B, C=C, D=D, K=K, innovation_cov=innovation_cov, sample_rate_hz=sample_rate_hz,
-        past_steps=max(na, nu, 1), input_names=input_names, output_names=output_names, info=info or {},
-    )
-
-
-# ------------------------------------------------------------------------------------------------ estimator
-def _check_int(name, value, lowest):
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
-        raise SessionError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of samples.")
-    return int(value)
-
-
-def _check_alphas(alphas) -> np.ndarray:
-    a = np.atleast_1d(np.asarray(alphas, dtype=np.float64))
-    if a.ndim != 1 or a.size == 0:
-        raise SessionError(f"alphas must be a non-empty 1-D grid of ridge strengths; got shape {a.shape}.")
-    if not np.all(np.isfinite(a)) or np.any(a < 0):
-        raise SessionError(
-            f"alphas must be finite and >= 0 (0 = ordinary least squares); got {a.tolist()}. Remove negative values."
-        )
-    return np.unique(a)
-
-
-class RidgeArx:
+class RidgeArx(BasePredictor):
     """Multi-input multi-output ridge ARX fitted from a recorded session by streaming normal equations.
 
     Parameters
@@ -292,7 +84,9 @@ class RidgeArx:
     n_inputs_, n_outputs_, n_rows_, n_folds_ : int
     cv_scheme_ : str
         ``"trials"`` or ``"contiguous blocks (one trial)"``.
-    input_names_, output_names_ : tuple of str
+    output_lags_, input_lags_, delay_samples_ : int
+        The lag structure the fitted coefficients have (the settings at ``fit``).
+    input_names_, output_names_, input_units_, output_units_ : tuple of str
     sample_rate_hz_ : float
 
     Notes
@@ -347,22 +141,6 @@ class RidgeArx:
         self.chunk_samples = chunk_samples
         self.fit_intercept = fit_intercept
 
-    def get_params(self, deep: bool = True) -> dict:
-        """Constructor arguments, unchanged (scikit-learn convention)."""
-        return {k: getattr(self, k) for k in ("output_lags", "input_lags", "delay_samples", "alphas", "n_folds",
-                                              "chunk_samples", "fit_intercept")}
-
-    def set_params(self, **params) -> "RidgeArx":
-        for k, v in params.items():
-            if k not in self.get_params():
-                raise SessionError(f"RidgeArx has no parameter {k!r}; valid ones: {sorted(self.get_params())}.")
-            setattr(self, k, v)
-        return self
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if k != "alphas")
-        return f"RidgeArx({args}, alphas=<{np.size(self.alphas)} values>)"
-
     # -------------------------------------------------------------------------------------------- fit
     def _validated(self, session) -> _Problem:
         _check_source(session)
@@ -373,7 +151,7 @@ class RidgeArx:
         _check_int("chunk_samples", self.chunk_samples, 1)
         _check_alphas(self.alphas)
         if not isinstance(self.fit_intercept, (bool, np.bool_)):
-            raise SessionError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
+            raise InvalidParameterError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
         prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept))
         longest = max((e - s for s, e in session.segments(min_length=1)), default=0)
         if longest <= prob.L:
@@ -399,8 +177,10 @@ class RidgeArx:
 
         Raises
         ------
+        InvalidParameterError
+            Bad settings (lags, alphas, fit_intercept).
         SessionError
-            Bad settings; lags longer than every valid run; more coefficients than usable rows.
+            Lags longer than every valid run; more coefficients than usable rows.
         ExcitationError
             An input channel never varies over the usable samples.
 
@@ -476,7 +256,7 @@ class RidgeArx:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="
                 f"{alpha:g}, limit {CONDITION_WARN_LIMIT:.0e}); coefficients may be inaccurate. Use a larger alpha, "
-                "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=3)
+                "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=4)
         mean = mu + shift
         coef = beta.T
         intercept = mean[prob.y_idx] - coef @ mean[prob.x_idx] if prob.fit_intercept else np.zeros(prob.p)
@@ -487,12 +267,15 @@ class RidgeArx:
             n_rows=int(total.n), n_folds=k, scheme=scheme, innovation_cov=0.5 * (resid + resid.T) / total.n,
             input_names=tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(prob.m))),
             output_names=tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(prob.p))),
+            input_units=tuple(getattr(session, "input_units", None) or ("",) * prob.m),
+            output_units=tuple(getattr(session, "output_units", None) or ("",) * prob.p),
             sample_rate_hz=float(session.sample_rate_hz),
         )
 
     def _set_fitted(self, prob, *, coef, intercept, alpha, table, scale, cond, n_rows, n_folds, scheme,
-                    innovation_cov, input_names, output_names, sample_rate_hz):
+                    innovation_cov, input_names, output_names, input_units, output_units, sample_rate_hz):
         self.n_outputs_, self.n_inputs_ = prob.p, prob.m
+        self.output_lags_, self.input_lags_, self.delay_samples_ = int(prob.na), int(prob.nb), int(prob.d)
         self.coef_ = np.ascontiguousarray(coef, dtype=np.float64)
         self.intercept_ = np.asarray(intercept, dtype=np.float64)
         self.alpha_ = float(alpha)
@@ -501,6 +284,7 @@ class RidgeArx:
         self.condition_number_ = float(cond)
         self.n_rows_, self.n_folds_, self.cv_scheme_ = int(n_rows), int(n_folds), str(scheme)
         self.input_names_, self.output_names_ = tuple(input_names), tuple(output_names)
+        self.input_units_, self.output_units_ = tuple(input_units), tuple(output_units)
         self.sample_rate_hz_ = float(sample_rate_hz)
         self.innovation_cov_ = np.asarray(innovation_cov, dtype=np.float64)
         self.past_steps_ = prob.L
@@ -512,14 +296,14 @@ class RidgeArx:
     def ar_coefs_(self) -> np.ndarray:
         """``A_1 … A_na``, shape (na, n_outputs, n_outputs)."""
         check_fitted(self, "coef_")
-        p, na = self.n_outputs_, int(self.output_lags)
+        p, na = self.n_outputs_, self.output_lags_
         return self.coef_[:, : p * na].reshape(p, na, p).transpose(1, 0, 2)
 
     @property
     def input_coefs_(self) -> np.ndarray:
         """``B_0 … B_{nb-1}``, shape (nb, n_outputs, n_inputs)."""
         check_fitted(self, "coef_")
-        p, m, na, nb = self.n_outputs_, self.n_inputs_, int(self.output_lags), int(self.input_lags)
+        p, m, na, nb = self.n_outputs_, self.n_inputs_, self.output_lags_, self.input_lags_
         return self.coef_[:, p * na:].reshape(p, nb, m).transpose(1, 0, 2)
 
     def _resting_output(self) -> tuple[np.ndarray, bool]:
@@ -534,10 +318,10 @@ class RidgeArx:
         info = {"source": "RidgeArx", "output_offset": y_rest, "output_offset_exact": bool(exact),
                 "alpha": self.alpha_}
         return arx_to_state_space(
-            self.ar_coefs_, self.input_coefs_, int(self.delay_samples), sample_rate_hz=self.sample_rate_hz_,
+            self.ar_coefs_, self.input_coefs_, self.delay_samples_, sample_rate_hz=self.sample_rate_hz_,
             innovation_cov=self.innovation_cov_, input_names=self.input_names_, output_names=self.output_names_,
             info=info,
-        )
+        ).replace(input_units=self.input_units_, output_units=self.output_units_)
 
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the resting output, shapes (past_steps_, m) and (past_steps_, p)."""
@@ -547,52 +331,20 @@ class RidgeArx:
         return np.zeros((L, self.n_inputs_)), np.tile(y_rest, (L, 1))
 
     # -------------------------------------------------------------------------------------------- predict
-    def _windows(self, u_past, y_past, u_future):
-        """Validated 3-D (batch, time, channel) copies of the last ``past_steps_`` samples and the future input."""
-        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
-        arrs = []
-        for name, a, ch in (("u_past", u_past, m), ("y_past", y_past, p), ("u_future", u_future, m)):
-            a = np.asarray(a, dtype=np.float64)
-            if a.ndim != 3 or a.shape[2] != ch:
-                raise SessionError(f"{name} must have shape (n_samples, {ch}) for this model; got {a.shape[1:]}.")
-            if not np.all(np.isfinite(a)):
-                raise SessionError(f"{name} holds NaN or infinite values; give a window of valid samples.")
-            arrs.append(a)
-        up, yp, uf = arrs
-        if up.shape[1] != yp.shape[1] or up.shape[1] < L:
-            raise SessionError(
-                f"the past window needs at least past_steps_={L} samples of inputs and outputs of equal length; "
-                f"got {up.shape[1]} input and {yp.shape[1]} output samples. Pass a longer past window."
-            )
-        return up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf
-
     def state_space_model(self):
         """The fitted state-space realisation with this estimator's past window (``model_``, offset in ``info``)."""
         check_fitted(self, "model_")
         return self.model_.replace(past_steps=int(self.past_steps_))
 
-    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
-        """:meth:`predict` for a batch of windows at once.
-
-        Parameters
-        ----------
-        u_past : ndarray, shape (n_windows, n_past, n_inputs)
-        y_past : ndarray, shape (n_windows, n_past, n_outputs)
-        u_future : ndarray, shape (n_windows, n_future, n_inputs)
-
-        Returns
-        -------
-        y_future : ndarray, shape (n_windows, n_future, n_outputs)
-        """
-        check_fitted(self, "coef_")
-        up, yp, uf = self._windows(u_past, y_past, u_future)
-        na, nb, d, L = int(self.output_lags), int(self.input_lags), int(self.delay_samples), self.past_steps_
+    def _recursion(self, up, yp, uf, intercept) -> np.ndarray:
+        """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions."""
+        na, nb, d, L = self.output_lags_, self.input_lags_, self.delay_samples_, self.past_steps_
         H = uf.shape[1]
         U = np.concatenate([up, uf], axis=1)
         Y = np.concatenate([yp, np.zeros((yp.shape[0], H, self.n_outputs_))], axis=1)
         A, B = self.ar_coefs_, self.input_coefs_
         # The input part does not depend on predictions: add it for every step at once.
-        drive = np.broadcast_to(self.intercept_, (yp.shape[0], H, self.n_outputs_)).copy()
+        drive = np.broadcast_to(intercept, (yp.shape[0], H, self.n_outputs_)).copy()
         for j in range(nb):
             drive += U[:, L - d - j: L - d - j + H] @ B[j].T
         for h in range(H):
@@ -603,31 +355,56 @@ class RidgeArx:
             Y[:, k] = acc
         return Y[:, L:]
 
-    def predict(self, u_past, y_past, u_future) -> np.ndarray:
-        """Multi-step prediction over ``u_future`` from a measured past window, feeding back its own predictions.
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Multi-step predictions of a batch of windows, feeding back their own predictions.
 
         Parameters
         ----------
-        u_past : ndarray, shape (n_past, n_inputs)
+        u_past : ndarray, shape (n_windows, n_past, n_inputs)
             ``n_past >= past_steps_``; only the last ``past_steps_`` samples are used.
-        y_past : ndarray, shape (n_past, n_outputs)
-        u_future : ndarray, shape (n_future, n_inputs)
+        y_past : ndarray, shape (n_windows, n_past, n_outputs)
+        u_future : ndarray, shape (n_windows, n_future, n_inputs)
 
         Returns
         -------
-        y_future : ndarray, shape (n_future, n_outputs)
+        y_future : ndarray, shape (n_windows, n_future, n_outputs)
 
         Raises
         ------
+        NotFittedError
+            Not fitted, or a setting changed since ``fit``.
         SessionError
             Wrong shapes, non-finite values, or a past window shorter than ``past_steps_``.
         """
         check_fitted(self, "coef_")
-        up, yp, uf = (np.asarray(a, dtype=np.float64) for a in (u_past, y_past, u_future))
-        up, yp, uf = (a[:, None] if a.ndim == 1 else a for a in (up, yp, uf))
-        if up.ndim != 2 or yp.ndim != 2 or uf.ndim != 2:
-            raise SessionError("u_past, y_past and u_future must be 2-D time-major arrays (n_samples, n_channels).")
-        return self.predict_many(up[None], yp[None], uf[None])[0]
+        up, yp, uf = self._check_batch(u_past, y_past, u_future)
+        L = self.past_steps_
+        return self._recursion(up[:, up.shape[1] - L:], yp[:, yp.shape[1] - L:], uf, self.intercept_)
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` over a past window of ``past_steps`` and ``horizon_steps`` inputs.
+
+        The recursion is linear in the window plus the intercept's response, so ``P`` and ``F`` are its
+        responses to unit windows without the intercept and ``c`` its response to the intercept alone. Samples of
+        the past window before the last ``past_steps_`` get zero columns.
+        """
+        check_fitted(self, "coef_")
+        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
+        T, N = int(past_steps), int(horizon_steps)
+        if T < L or N < 1:
+            raise SessionError(f"the RidgeArx needs a past window of at least past_steps_ = {L} samples and a "
+                               f"horizon of at least 1 step; got past {past_steps} and horizon {horizon_steps}.")
+        zero = np.zeros(p)
+        E = np.eye(L * (m + p))
+        P_last = self._recursion(E[:, :L * m].reshape(-1, L, m), E[:, L * m:].reshape(-1, L, p),
+                                 np.zeros((E.shape[0], N, m)), zero).reshape(E.shape[0], N * p).T
+        P = np.zeros((N * p, T * (m + p)))
+        P[:, m * (T - L):m * T] = P_last[:, :L * m]
+        P[:, m * T + p * (T - L):] = P_last[:, L * m:]
+        Ef = np.eye(N * m).reshape(N * m, N, m)
+        F = self._recursion(np.zeros((N * m, L, m)), np.zeros((N * m, L, p)), Ef, zero).reshape(N * m, N * p).T
+        c = self._recursion(np.zeros((1, L, m)), np.zeros((1, L, p)), np.zeros((1, N, m)), self.intercept_)
+        return PredictionMaps(P=P, F=np.ascontiguousarray(F), c=c.reshape(-1), past_steps=T, horizon_steps=N)
 
     # -------------------------------------------------------------------------------------------- storage
     def to_state(self) -> dict:
@@ -642,6 +419,7 @@ class RidgeArx:
             "cv_scheme": self.cv_scheme_, "innovation_cov": self.innovation_cov_,
             "n_inputs": self.n_inputs_, "n_outputs": self.n_outputs_,
             "input_names": list(self.input_names_), "output_names": list(self.output_names_),
+            "input_units": list(self.input_units_), "output_units": list(self.output_units_),
             "sample_rate_hz": self.sample_rate_hz_,
             "cv_table": {str(c): self.cv_table_[c].to_numpy() for c in self.cv_table_.columns},
             "cv_columns": [str(c) for c in self.cv_table_.columns],
@@ -661,6 +439,9 @@ class RidgeArx:
             scale=state["scale"], cond=state["condition_number"], n_rows=state["n_rows"],
             n_folds=state["n_folds"], scheme=state["cv_scheme"], innovation_cov=state["innovation_cov"],
             input_names=state["input_names"], output_names=state["output_names"],
+            input_units=state.get("input_units", ("",) * int(state["n_inputs"])),
+            output_units=state.get("output_units", ("",) * int(state["n_outputs"])),
             sample_rate_hz=state["sample_rate_hz"],
         )
+        est._mark_fitted()
         return est

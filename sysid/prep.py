@@ -15,7 +15,7 @@ from fractions import Fraction
 import numpy as np
 from scipy import signal
 
-from ._base import check_fitted
+from ._base import BaseEstimator, check_fitted
 from .exceptions import SessionError, StimsteerWarning
 from .session import Session
 
@@ -283,7 +283,7 @@ def resample_session(session: Session, *, target_rate_hz: float, max_denominator
 
 
 # ==================================================================================================== scaler
-class SessionScaler:
+class SessionScaler(BaseEstimator):
     """Per-channel standardisation fitted on a session's valid in-trial samples, with an exact inverse.
 
     Parameters
@@ -326,12 +326,6 @@ class SessionScaler:
         self.with_mean = with_mean
         self.with_scale = with_scale
 
-    def get_params(self) -> dict:
-        return {"with_mean": self.with_mean, "with_scale": self.with_scale}
-
-    def __repr__(self) -> str:
-        return f"SessionScaler(with_mean={self.with_mean!r}, with_scale={self.with_scale!r})"
-
     def fit(self, session: Session) -> "SessionScaler":
         """Estimate ``mean_`` and ``scale_`` from the valid samples inside trials; returns ``self``."""
         _check_session(session, "SessionScaler.fit")
@@ -349,7 +343,7 @@ class SessionScaler:
             warnings.warn(
                 f"channel(s) {list(self.constant_channels_)} have zero variance at the valid samples; their scale "
                 "is set to 1 (they are only centred). A constant channel carries no information: consider "
-                "dropping it.", StimsteerWarning, stacklevel=2,
+                "dropping it.", StimsteerWarning, stacklevel=3,
             )
         self.mean_, self.scale_ = mean, scale
         self.n_inputs_, self.n_outputs_ = session.n_inputs, session.n_outputs

@@ -16,8 +16,43 @@ import scipy.linalg as sla
 
 from ._windows import window_batch
 from .exceptions import SessionError, UnstableModelError
+from .protocols import PredictionMaps
 
-__all__ = ["StateSpaceModel", "kalman_gain"]
+__all__ = ["StateSpaceModel", "kalman_gain", "markov_toeplitz"]
+
+
+def markov_toeplitz(h, horizon_steps: int | None = None) -> np.ndarray:
+    """The lower block-Toeplitz matrix of Markov parameters: the map from future inputs to future outputs.
+
+    ``T[i·p:(i+1)·p, j·m:(j+1)·m] = h[i − j]`` for ``j <= i`` and zero above the block diagonal, so that
+    ``vec(y) = T @ vec(u)`` (time-major stacking) is the response from rest to the inputs ``u``.
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_steps, p, m)
+        Markov parameters ``h[0] = D``, ``h[k] = C A^(k−1) B`` (:meth:`StateSpaceModel.impulse_response`).
+    horizon_steps : int, optional
+        Number of block rows and columns ``N``; default ``n_steps``. Needs ``N <= n_steps``.
+
+    Returns
+    -------
+    T : ndarray, shape (N·p, N·m)
+
+    Examples
+    --------
+    >>> markov_toeplitz(np.array([[[1.0]], [[2.0]], [[3.0]]])).tolist()
+    [[1.0, 0.0, 0.0], [2.0, 1.0, 0.0], [3.0, 2.0, 1.0]]
+    """
+    h = np.asarray(h, dtype=np.float64)
+    N = h.shape[0] if horizon_steps is None else int(horizon_steps)
+    if h.ndim != 3 or not 0 <= N <= h.shape[0]:
+        raise SessionError(f"markov_toeplitz needs Markov parameters of shape (n_steps >= {N}, p, m); got {h.shape}.")
+    p, m = h.shape[1], h.shape[2]
+    T = np.zeros((N * p, N * m))
+    for i in range(N):
+        for j in range(i + 1):
+            T[i * p:(i + 1) * p, j * m:(j + 1) * m] = h[i - j]
+    return T
 
 
 def kalman_gain(A, C, Q, R, S=None):
@@ -107,9 +142,17 @@ class StateSpaceModel:
     past_steps : int, optional
         Length of the past window :meth:`predict` expects; default ``max(n_states, 1)``.
     input_names, output_names : tuple of str, optional
+    info : dict, optional
+        Where the model came from (e.g. the output offset of a ridge ARX fit).
+    input_units, output_units : tuple of str, optional
+        Units of the channels (default empty strings: unknown).
 
     Notes
     -----
+    A state-space model is a predictor with no ``fit`` (the ``Predictor``, ``LinearPredictor`` and
+    ``StateSpaceForm`` contracts of :mod:`stimsteer.sysid.protocols`): its fitted-attribute names
+    (``past_steps_``, ``n_inputs_``, ``input_units_`` ...) read its fields.
+
     Matrices are in the units of the data they were fitted on (often standardised units, see ``prep``).
     """
 
@@ -124,6 +167,11 @@ class StateSpaceModel:
     input_names: tuple = None
     output_names: tuple = None
     info: dict = field(default_factory=dict)
+    input_units: tuple = None
+    output_units: tuple = None
+
+    #: Affine in its window: :meth:`prediction_maps` gives the maps (see :mod:`stimsteer.sysid.protocols`).
+    has_linear_maps = True
 
     def __post_init__(self):
         A = np.atleast_2d(np.asarray(self.A, dtype=np.float64))
@@ -151,6 +199,11 @@ class StateSpaceModel:
         s(self, "input_names", tuple(self.input_names) if self.input_names else tuple(f"u{i}" for i in range(m)))
         s(self, "output_names", tuple(self.output_names) if self.output_names else tuple(f"y{i}" for i in range(p)))
         s(self, "info", dict(self.info or {}))
+        for name, k in (("input_units", m), ("output_units", p)):
+            units = ("",) * k if getattr(self, name) is None else tuple(str(x) for x in getattr(self, name))
+            if len(units) != k:
+                raise SessionError(f"{name} must give one unit per channel ({k}); got {len(units)}: {list(units)}.")
+            s(self, name, units)
 
     # ------------------------------------------------------------------------------------------------ shape
     @property
@@ -164,6 +217,21 @@ class StateSpaceModel:
     @property
     def n_outputs(self) -> int:
         return int(self.C.shape[0])
+
+    # ------------------------------------------------------------------------------------------------ predictor
+    # The Predictor contract's fitted-attribute names, read from the fields (a given model needs no fit).
+    past_steps_ = property(lambda self: self.past_steps, doc="Past samples :meth:`predict` uses (``past_steps``).")
+    max_horizon_steps_ = property(lambda self: None, doc="None: any horizon.")
+    n_inputs_ = property(lambda self: self.n_inputs)
+    n_outputs_ = property(lambda self: self.n_outputs)
+    input_names_ = property(lambda self: self.input_names)
+    output_names_ = property(lambda self: self.output_names)
+    input_units_ = property(lambda self: self.input_units)
+    output_units_ = property(lambda self: self.output_units)
+
+    def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
+        """A past window at rest (zero inputs and outputs: the model describes deviations from rest)."""
+        return np.zeros((self.past_steps, self.n_inputs)), np.zeros((self.past_steps, self.n_outputs))
 
     # ------------------------------------------------------------------------------------------------ stability
     @property
@@ -303,19 +371,20 @@ class StateSpaceModel:
         x = self.estimate_state(u_past, y_past)
         return self.simulate(u_future, x0=x)
 
-    def prediction_maps(self, n_past: int, n_future: int) -> tuple[np.ndarray, np.ndarray]:
-        """The linear maps of :meth:`predict` for windows of fixed lengths.
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine maps of :meth:`predict` for windows of fixed lengths (the ``LinearPredictor`` contract).
 
-        ``vec(y_future) = P @ [vec(u_past); vec(y_past)] + F @ vec(u_future)`` (time-major stacking), exactly
-        what :meth:`predict` computes: the least-squares state estimate is linear in the window, so ``P`` is built
-        by applying it to the unit windows, and ``F`` is the block-Toeplitz matrix of Markov parameters.
+        ``vec(y_future) = P @ [vec(u_past); vec(y_past)] + F @ vec(u_future)`` (time-major stacking, ``c = 0``:
+        the model describes deviations), exactly what :meth:`predict` computes: the least-squares state estimate
+        is linear in the window, so ``P`` is built by applying it to the unit windows, and ``F`` is the
+        block-Toeplitz matrix of Markov parameters (:func:`markov_toeplitz`).
 
         Returns
         -------
-        P : ndarray, shape (n_future * n_outputs, n_past * (n_inputs + n_outputs))
-        F : ndarray, shape (n_future * n_outputs, n_future * n_inputs)
+        PredictionMaps
+            ``P`` (horizon_steps·p, past_steps·(m + p)), ``F`` (horizon_steps·p, horizon_steps·m), ``c`` zeros.
         """
-        n_past, n_future = int(n_past), int(n_future)
+        n_past, n_future = int(past_steps), int(horizon_steps)
         m, p, n = self.n_inputs, self.n_outputs, self.n_states
         obs = np.empty((n_future, p, n))
         M = np.eye(n)
@@ -326,12 +395,8 @@ class StateSpaceModel:
         basis = np.eye(n_past * (m + p))
         X = np.column_stack([self.estimate_state(e[:n_past * m].reshape(n_past, m), e[n_past * m:].reshape(n_past, p))
                              for e in basis]) if n else np.zeros((0, basis.shape[0]))
-        h = self.impulse_response(max(n_future, 1))
-        F = np.zeros((n_future * p, n_future * m))
-        for i in range(n_future):
-            for j in range(i + 1):
-                F[i * p:(i + 1) * p, j * m:(j + 1) * m] = h[i - j]
-        return obs @ X, F
+        F = markov_toeplitz(self.impulse_response(max(n_future, 1)), n_future)
+        return PredictionMaps(P=obs @ X, F=F, c=np.zeros(n_future * p), past_steps=n_past, horizon_steps=n_future)
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """:meth:`predict` for a batch of windows, shapes (n_windows, n_samples, channels).
@@ -348,9 +413,9 @@ class StateSpaceModel:
             for w in range(W):
                 out[w] = self.predict(up[w], yp[w], uf[w])
             return out
-        P, F = self.prediction_maps(n_past, H)
+        maps = self.prediction_maps(n_past, H)
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
-        y = past @ P.T + uf.reshape(W, -1) @ F.T
+        y = past @ maps.P.T + uf.reshape(W, -1) @ maps.F.T
         return y.reshape(W, uf.shape[1], self.n_outputs)
 
     def impulse_response(self, n_steps: int) -> np.ndarray:

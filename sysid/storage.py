@@ -21,13 +21,12 @@ from __future__ import annotations
 import datetime as _dt
 import importlib
 import json
-import platform
-from importlib import metadata as _metadata
 from pathlib import Path
 
 import numpy as np
 
 from ._files import atomic_path
+from ._records import versions
 from .exceptions import FileFormatError, StimsteerError
 from .statespace import StateSpaceModel
 
@@ -41,12 +40,11 @@ _MARK_VALUE = "model"
 _KINDS = {
     "state_space": "stimsteer.sysid.statespace:StateSpaceModel",
     "ridge_arx": "stimsteer.sysid.arx:RidgeArx",
-    "subspace": "stimsteer.sysid.subspace:SubspaceId",
-    "lsq_predictor": "stimsteer.sysid.datadriven:LsqPredictor",
-    "hankel_predictor": "stimsteer.sysid.datadriven:HankelPredictor",
+    "subspace": "stimsteer.sysid.subspace.estimator:SubspaceId",
+    "lsq_predictor": "stimsteer.sysid.datadriven.lsq:LsqPredictor",
+    "hankel_predictor": "stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor",
 }
 
-_VERSIONED = ("stimsteer", "numpy", "scipy", "scikit-learn", "pandas", "h5py")
 
 
 # ------------------------------------------------------------------------------------------------ state space
@@ -57,6 +55,7 @@ def model_to_state(model: StateSpaceModel) -> dict:
         "innovation_cov": model.innovation_cov, "sample_rate_hz": float(model.sample_rate_hz),
         "past_steps": int(model.past_steps), "input_names": list(model.input_names),
         "output_names": list(model.output_names), "info": dict(model.info),
+        "input_units": list(model.input_units), "output_units": list(model.output_units),
     }
 
 
@@ -67,7 +66,29 @@ def model_from_state(state: dict) -> StateSpaceModel:
         innovation_cov=state["innovation_cov"], sample_rate_hz=state["sample_rate_hz"],
         past_steps=state["past_steps"], input_names=tuple(state["input_names"]),
         output_names=tuple(state["output_names"]), info=dict(state.get("info", {})),
+        input_units=state.get("input_units"), output_units=state.get("output_units"),
     )
+
+
+def _with_session_units(predictor, provenance: dict):
+    """A predictor read from a file written before units were stored: units from the provenance's session record.
+
+    Channels whose units are all empty take the session's units when the record has one per channel; otherwise
+    they stay empty strings (unknown).
+    """
+    session = (provenance or {}).get("session") or {}
+    changes = {}
+    for side in ("input_units", "output_units"):
+        have, recorded = tuple(getattr(predictor, side + "_", ())), session.get(side)
+        if not any(have) and isinstance(recorded, list) and len(recorded) == len(have) and any(recorded):
+            changes[side] = tuple(str(u) for u in recorded)
+    if not changes:
+        return predictor
+    if isinstance(predictor, StateSpaceModel):
+        return predictor.replace(**changes)
+    for side, units in changes.items():
+        setattr(predictor, side + "_", units)
+    return predictor
 
 
 # ------------------------------------------------------------------------------------------------ encoding
@@ -144,17 +165,6 @@ def _class_for(kind: str, path):
         raise FileFormatError(f"{path} holds a {kind!r} model, but its class {target} cannot be loaded: {exc}.") \
             from None
 
-
-def _versions() -> dict:
-    out = {"python": platform.python_version()}
-    for dist in _VERSIONED:
-        try:
-            out[dist] = _metadata.version(dist)
-        except _metadata.PackageNotFoundError:
-            out[dist] = "not installed"
-    return out
-
-
 # ------------------------------------------------------------------------------------------------ public API
 def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False) -> Path:
     """Write a fitted predictor and its provenance to an HDF5 model file, atomically.
@@ -190,7 +200,7 @@ def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False
     state = model_to_state(predictor) if kind == "state_space" else predictor.to_state()
     created = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     prov = dict(provenance or {})
-    prov["saved"] = {"created_utc": created, "versions": _versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
+    prov["saved"] = {"created_utc": created, "versions": versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
     text = json.dumps(_plain_tree(prov, "provenance"), allow_nan=True)
     with atomic_path(path, suffix=".h5") as tmp:
         with h5py.File(tmp, "w") as f:
@@ -272,4 +282,4 @@ def load_predictor(path):
         raise FileFormatError(
             f"{path} holds a {kind!r} model whose stored state does not match this stimsteer ({exc!r}); refit it."
         ) from None
-    return predictor, provenance
+    return _with_session_units(predictor, provenance), provenance

@@ -17,7 +17,8 @@ import scipy.signal
 from sklearn.linear_model import Ridge
 
 from stimsteer.sysid._lagged import _stream_sums
-from stimsteer.sysid.arx import RidgeArx, _pieces, _Problem
+from stimsteer.sysid.arx import RidgeArx
+from stimsteer.sysid.arx_regression import _pieces, _Problem
 from stimsteer.sysid.metrics import ljung_box
 from stimsteer.sysid.session import Session
 

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 
 from stimsteer.sysid.arx import RidgeArx, arx_to_state_space
-from stimsteer.sysid.exceptions import ConditioningWarning, ExcitationError, NotFittedError, SessionError
+from stimsteer.sysid.exceptions import (ConditioningWarning, ExcitationError, InvalidParameterError, NotFittedError,
+                                       SessionError)
 from stimsteer.sysid.session import Session
 
 # A stable 2-output, 2-input ARX (na = 2, nb = 2, d = 1), invented for these tests; stability checked below.
@@ -251,13 +252,47 @@ def test_predict_equals_recursion_with_own_predictions(rng):
     np.testing.assert_allclose(est.predict(u_past, y_past, u_fut), y[10:], rtol=1e-12, atol=1e-12)
 
 
-def test_predict_many_equals_predict_per_window(rng):
+def _reference_prediction(est, u_past, y_past, u_future):
+    """The ARX difference equation written out for one window, independent of the estimator's own code."""
+    A, B, c = est.ar_coefs_, est.input_coefs_, est.intercept_
+    d, n_past = est.delay_samples_, u_past.shape[0]
+    u = np.concatenate([u_past, u_future])
+    y = np.concatenate([y_past, np.zeros((u_future.shape[0], y_past.shape[1]))])
+    for k in range(n_past, u.shape[0]):
+        y[k] = c + sum(A[i] @ y[k - 1 - i] for i in range(A.shape[0])) \
+            + sum(B[j] @ u[k - d - j] for j in range(B.shape[0]))
+    return y[n_past:]
+
+
+def test_predict_many_equals_the_written_out_recursion(rng):
     est = RidgeArx(output_lags=3, input_lags=2, delay_samples=2, alphas=[1e-3]).fit(
         multi_trial_session(rng, noise=0.2))
     up, yp, uf = rng.standard_normal((5, 4, 2)), rng.standard_normal((5, 4, 2)), rng.standard_normal((5, 6, 2))
     many = est.predict_many(up, yp, uf)
     for w in range(5):
-        np.testing.assert_allclose(many[w], est.predict(up[w], yp[w], uf[w]), rtol=1e-13, atol=1e-13)
+        expected = _reference_prediction(est, up[w], yp[w], uf[w])
+        np.testing.assert_allclose(many[w], expected, rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(est.predict(up[w], yp[w], uf[w]), expected, rtol=1e-12, atol=1e-12)
+
+
+def test_prediction_maps_reproduce_predict(rng):
+    est = RidgeArx(output_lags=3, input_lags=2, delay_samples=2, alphas=[1e-3]).fit(
+        multi_trial_session(rng, noise=0.2, c=np.array([0.5, -1.0])))
+    maps = est.prediction_maps(6, 5)
+    assert maps.P.shape == (10, 24) and maps.F.shape == (10, 10) and maps.c.shape == (10,)
+    up, yp, uf = rng.standard_normal((6, 2)), rng.standard_normal((6, 2)), rng.standard_normal((5, 2))
+    np.testing.assert_allclose(maps.apply(up, yp, uf), est.predict(up, yp, uf), rtol=1e-12, atol=1e-12)
+
+
+def test_changing_a_setting_after_fit_requires_a_new_fit(rng):
+    est = RidgeArx(output_lags=3, input_lags=2, alphas=[1e-3]).fit(multi_trial_session(rng))
+    window = np.zeros((4, 2)), np.zeros((4, 2)), np.zeros((3, 2))
+    est.set_params(output_lags=2)
+    with pytest.raises(NotFittedError, match=r"settings output_lags of this RidgeArx changed after it was fitted.*"
+                                             r"fit\(\.\.\.\) again"):
+        est.predict(*window)
+    assert est.fit(multi_trial_session(rng)).predict(*window).shape == (3, 2)
+    assert est.output_lags_ == 2 and est.coef_.shape == (2, 8)
 
 
 def test_direct_feedthrough_and_fir(rng):
@@ -346,7 +381,7 @@ def test_input_that_never_varies_is_named(rng):
 @pytest.mark.parametrize("alphas, pattern", [([-1.0, 1.0], r"finite and >= 0.*-1\.0"), ([], "non-empty"),
                                              ([np.nan], "finite and >= 0")])
 def test_bad_alphas(rng, alphas, pattern):
-    with pytest.raises(SessionError, match=pattern):
+    with pytest.raises(InvalidParameterError, match=pattern):
         RidgeArx(alphas=alphas).fit(multi_trial_session(rng, n_trials=2))
 
 
@@ -354,12 +389,12 @@ def test_bad_alphas(rng, alphas, pattern):
                                                  ("delay_samples", 1.5, 0), ("n_folds", 1, 2),
                                                  ("chunk_samples", 0, 1), ("output_lags", True, 0)])
 def test_bad_integer_settings(rng, name, value, lowest):
-    with pytest.raises(SessionError, match=f"{name} must be an integer >= {lowest}"):
+    with pytest.raises(InvalidParameterError, match=f"{name} must be an integer >= {lowest}"):
         RidgeArx(**{name: value}).fit(multi_trial_session(rng, n_trials=2))
 
 
 def test_fit_intercept_must_be_boolean(rng):
-    with pytest.raises(SessionError, match="fit_intercept must be True or False; got 'yes'"):
+    with pytest.raises(InvalidParameterError, match="fit_intercept must be True or False; got 'yes'"):
         RidgeArx(fit_intercept="yes").fit(multi_trial_session(rng, n_trials=2))
 
 
@@ -376,11 +411,11 @@ def test_predict_bad_windows(rng):
         est.predict(np.zeros((2, 2)), np.zeros((2, 2)), np.zeros((3, 3)))
     with pytest.raises(SessionError, match="NaN or infinite"):
         est.predict(np.zeros((2, 2)), np.full((2, 2), np.nan), np.zeros((3, 2)))
-    with pytest.raises(SessionError, match="2-D time-major"):
+    with pytest.raises(SessionError, match=r"u_past must have shape \(n_samples, 2\)"):
         est.predict(np.zeros((2, 2, 1)), np.zeros((2, 2)), np.zeros((3, 2)))
 
 
 def test_set_params_rejects_unknown():
-    with pytest.raises(SessionError, match="no parameter 'lags'"):
+    with pytest.raises(InvalidParameterError, match="no setting 'lags'"):
         RidgeArx().set_params(lags=3)
     assert RidgeArx().set_params(output_lags=4).output_lags == 4

@@ -15,6 +15,7 @@ from stimsteer.sysid import (
     ConditioningWarning,
     ExcitationError,
     ExcitationWarning,
+    InvalidParameterError,
     NotFittedError,
     Session,
     SessionError,
@@ -320,14 +321,19 @@ def test_fit_warns_when_the_input_excites_less_than_window_plus_states():
         (lambda: LsqPredictor(past_steps=3, horizon_steps=2.0), "horizon_steps must be an integer >= 1"),
         (lambda: LsqPredictor(past_steps=3, horizon_steps=4, n_splits=1), "n_splits must be an integer >= 2"),
         (lambda: LsqPredictor(past_steps=3, horizon_steps=4, n_states=-1), "n_states must be an integer >= 0"),
-        (lambda: LsqPredictor(past_steps=60, horizon_steps=50),
-         r"\(60 \+ 50 = 110 samples\) is longer than every valid segment of every trial \(the longest is 100\)"),
     ],
 )
 def test_bad_settings_raise_clear_errors(make, match, rng):
     sys = _system(rng)
-    with pytest.raises(SessionError, match=match):
+    with pytest.raises(InvalidParameterError, match=match):
         make().fit(_session(rng, sys, n_trials=2, length=100, noise=0.1))
+
+
+def test_windows_longer_than_every_trial_are_a_session_error(rng):
+    sys = _system(rng)
+    with pytest.raises(SessionError, match=r"\(60 \+ 50 = 110 samples\) is longer than every valid segment of every "
+                                          r"trial \(the longest is 100\)"):
+        LsqPredictor(past_steps=60, horizon_steps=50).fit(_session(rng, sys, n_trials=2, length=100, noise=0.1))
 
 
 def test_fit_rejects_something_that_is_not_a_session():
@@ -347,9 +353,11 @@ def test_selection_without_held_out_data_is_refused(rng):
 @pytest.mark.parametrize(
     "args, match",
     [
-        ((np.zeros((2, 2)), np.zeros((2, 2)), np.zeros((4, 2))), "at least past_steps_ = 3; got 2 and 2"),
-        ((np.zeros((3, 2)), np.zeros((4, 2)), np.zeros((4, 2))), "same number of samples"),
-        ((np.zeros((3, 2)), np.zeros((3, 2)), np.zeros((5, 2))), "1 to max_horizon_steps_ = 4 samples; got 5"),
+        ((np.zeros((2, 2)), np.zeros((2, 2)), np.zeros((4, 2))),
+         "at least past_steps_=3 samples of inputs and outputs of equal length; got 2 input and 2 output samples"),
+        ((np.zeros((3, 2)), np.zeros((4, 2)), np.zeros((4, 2))), "of equal length; got 3 input and 4 output samples"),
+        ((np.zeros((3, 2)), np.zeros((3, 2)), np.zeros((5, 2))),
+         "1 to max_horizon_steps_ = 4 samples per window; got 5"),
         ((np.zeros((3, 2)), np.zeros((3, 2)), np.zeros((0, 2))), "got 0"),
         ((np.zeros((3, 1)), np.zeros((3, 2)), np.zeros((4, 2))), r"u_past must have shape \(n_samples, 2\)"),
         ((np.zeros((3, 2)), np.full((3, 2), np.nan), np.zeros((4, 2))), "y_past holds NaN"),
@@ -396,3 +404,26 @@ def test_predict_many_equals_predict_window_by_window(rng, kind):
     np.testing.assert_allclose(est.predict_many(up, yp, uf), one, rtol=1e-10, atol=1e-12)
     with pytest.raises(SessionError, match="must have shape"):
         est.predict_many(up[0], yp[0], uf[0])
+
+
+@pytest.mark.parametrize("make", [
+    lambda: LsqPredictor(past_steps=3, horizon_steps=4, alphas=[1e-3], centre_outputs=True),
+    lambda: HankelPredictor(past_steps=3, horizon_steps=4, regularizer="l2", lambdas_g=[1e-2], centre_outputs=True),
+    lambda: HankelPredictor(past_steps=3, horizon_steps=4, regularizer="projection", lambdas_g=[1e-2]),
+])
+def test_prediction_maps_reproduce_predict(make, rng):
+    sys = _system(rng)
+    session = _session(rng, sys, noise=0.1)
+    est = make().fit(session.replace(y=session.y + 2.0))
+    maps = est.prediction_maps(5, 3)  # a longer past than past_steps_ and a shorter horizon than the fitted one
+    up, yp, uf = rng.standard_normal((5, 2)), rng.standard_normal((5, 2)) + 2.0, rng.standard_normal((3, 2))
+    np.testing.assert_allclose(maps.apply(up, yp, uf), est.predict(up, yp, uf), rtol=1e-12, atol=1e-12)
+
+
+def test_the_l1_predictor_declares_that_it_has_no_linear_maps(rng):
+    sys = _system(rng)
+    est = HankelPredictor(past_steps=3, horizon_steps=4, regularizer="l1", lambdas_g=[1e-2]).fit(
+        _session(rng, sys, noise=0.1))
+    assert est.has_linear_maps is False
+    with pytest.raises(SessionError, match="not affine in its window"):
+        est.prediction_maps(3, 4)

@@ -357,7 +357,7 @@ def test_existing_file_is_kept_without_overwrite(tmp_path, rng):
 
 
 def test_failed_write_leaves_nothing_behind(tmp_path, rng, monkeypatch):
-    import stimsteer.sysid.io as io
+    import stimsteer.sysid.io.dispatch as io
 
     def half_write(session, tmp, compression):
         with h5py.File(tmp, "w") as h:
@@ -371,7 +371,7 @@ def test_failed_write_leaves_nothing_behind(tmp_path, rng, monkeypatch):
 
 
 def test_failed_overwrite_keeps_the_old_file(tmp_path, rng, monkeypatch):
-    import stimsteer.sysid.io as io
+    import stimsteer.sysid.io.dispatch as io
 
     path = tmp_path / "s.h5"
     save_session(_session(rng), path)

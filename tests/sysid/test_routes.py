@@ -1,23 +1,21 @@
-"""fit_route: honest split and held-out scores; patterns: reading, checking against the model, predicting, writing."""
+"""fit_route: honest split and held-out scores; patterns: reading, checking against the model, predicting."""
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from stimsteer.sysid.arx import RidgeArx
-from stimsteer.sysid.exceptions import FileFormatError, SessionError, StimsteerError
+from stimsteer.sysid.exceptions import FileFormatError, InvalidParameterError, SessionError
 from stimsteer.sysid.metrics import kstep_scores
 from stimsteer.sysid.routes import (
     METHODS,
-    _split,
-    _TrialSubset,
     fit_route,
     load_pattern,
     predict_pattern,
     trial_end_window,
-    write_prediction,
 )
 from stimsteer.sysid.session import Session
+from stimsteer.sysid.trial_sources import _split, _TrialSubset
 from stimsteer.sysid.statespace import StateSpaceModel
 
 TRUE = StateSpaceModel(A=[[0.8, 0.3], [0.0, 0.5]], B=[[0.0, 0.5], [1.0, 0.0]], C=[[1.0, 0.5]])
@@ -154,9 +152,10 @@ def test_direct_route_when_registered(sess):
 
 
 def test_route_errors(sess):
-    with pytest.raises(SessionError, match="no method 'oracle' on route 'indirect'; available: .*--route indirect --method arx"):
+    with pytest.raises(InvalidParameterError,
+                       match="no method 'oracle' on route 'indirect'; available: .*--route indirect --method arx"):
         fit_route(sess, route="indirect", method="oracle")
-    with pytest.raises(SessionError, match=r"unknown setting\(s\) \['lag'\] for RidgeArx"):
+    with pytest.raises(InvalidParameterError, match=r"unknown setting\(s\) \['lag'\] for RidgeArx"):
         fit_route(sess, route="indirect", method="arx", settings={"lag": 2})
     with pytest.raises(SessionError, match="needs at least 2 trials"):
         fit_route(sess.select_trials([0]), route="indirect", method="arx")
@@ -265,20 +264,6 @@ def test_trial_end_window_errors(sess, fitted):
                     input_units=sess.input_units, output_names=sess.output_names, output_units=sess.output_units)
     with pytest.raises(SessionError, match="trial 0 has 2 samples; the model needs a past window of 3"):
         trial_end_window(short, 0, fitted.predictor, fitted.provenance)
-
-
-def test_write_prediction(fitted, tmp_path):
-    pred = predict_pattern(fitted.predictor, fitted.provenance, load_pattern(good_pattern(tmp_path)))
-    files = write_prediction(pred, tmp_path / "out")
-    table = pd.read_csv(files["csv"])
-    assert list(table.columns) == ["time [s] @ 500 Hz", "in:site_a [uA]", "in:site_b [uA]", "out:lfp [mV]",
-                                   "rmse:lfp [mV]"]
-    np.testing.assert_allclose(table["out:lfp [mV]"], pred.y[:, 0], rtol=1e-9)
-    assert files["png"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    with pytest.raises(StimsteerError, match="already holds files"):
-        write_prediction(pred, tmp_path / "out")
-    write_prediction(pred, tmp_path / "out", force=True)
-
 
 def test_a_schedule_file_reads_as_a_pattern(tmp_path):
     # `stimsteer schedule` writes a trial column; predicting the whole schedule must accept it

@@ -237,3 +237,26 @@ def test_predict_many_is_the_same_on_both_sides_of_the_dense_map_limit(rng, monk
     dense = model.predict_many(up, yp, uf)
     monkeypatch.setattr(ss, "DENSE_MAP_LIMIT", 0)
     np.testing.assert_allclose(model.predict_many(up, yp, uf), dense, rtol=0, atol=1e-11)
+
+
+def test_prediction_maps_reproduce_predict_and_the_model_is_a_predictor(rng):
+    from stimsteer.sysid.protocols import LinearPredictor, StateSpaceForm
+
+    model = StateSpaceModel(A=[[0.8, 0.3], [0.0, 0.5]], B=[[0.0, 0.5], [1.0, 0.0]], C=[[1.0, 0.5]],
+                            K=[[0.3], [0.1]], input_units=["uA", "uA"], output_units=["mV"])
+    assert isinstance(model, LinearPredictor) and isinstance(model, StateSpaceForm)
+    assert (model.past_steps_, model.max_horizon_steps_, model.n_inputs_, model.n_outputs_) == (2, None, 2, 1)
+    assert model.input_units_ == ("uA", "uA") and model.output_units_ == ("mV",)
+    maps = model.prediction_maps(4, 6)
+    assert maps.P.shape == (6, 12) and maps.F.shape == (6, 12) and not np.any(maps.c)
+    up, yp, uf = rng.standard_normal((4, 2)), rng.standard_normal((4, 1)), rng.standard_normal((6, 2))
+    np.testing.assert_allclose(maps.apply(up, yp, uf), model.predict(up, yp, uf), rtol=1e-12, atol=1e-12)
+
+
+def test_markov_toeplitz_is_the_response_from_rest(rng):
+    from stimsteer.sysid.statespace import markov_toeplitz
+
+    model = StateSpaceModel(A=[[0.8, 0.3], [0.0, 0.5]], B=[[0.0, 0.5], [1.0, 0.0]], C=[[1.0, 0.5]], D=[[0.1, 0.0]])
+    u = rng.standard_normal((7, 2))
+    T = markov_toeplitz(model.impulse_response(9), 7)
+    np.testing.assert_allclose((T @ u.reshape(-1)).reshape(7, 1), model.simulate(u), rtol=1e-12, atol=1e-12)

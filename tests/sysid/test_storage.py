@@ -164,3 +164,34 @@ def test_provenance_is_plain_json(rng, tmp_path):
     with h5py.File(p, "r") as f:
         text = f["provenance"][()]
     assert json.loads(text)["route"] == "indirect"
+
+
+def _drop_stored_units(path):
+    """Make a model file look as written before units were stored (its state holds no units)."""
+    with h5py.File(path, "r+") as f:
+        values = json.loads(f["state/__values__"][()])
+        del values["input_units"], values["output_units"]
+        del f["state/__values__"]
+        f["state"].create_dataset("__values__", data=json.dumps(values))
+
+
+def test_units_are_stored_and_an_older_file_takes_them_from_its_provenance(rng, tmp_path):
+    s = session(rng).replace(input_units=("uA", "uA"), output_units=("mV", "mV"))
+    est = RidgeArx(output_lags=2, input_lags=2, alphas=[1e-3]).fit(s)
+    assert est.input_units_ == ("uA", "uA") and est.output_units_ == ("mV", "mV")
+    back, _ = load_predictor(save_predictor(est, tmp_path / "new.h5", provenance=PROV))
+    assert back.input_units_ == ("uA", "uA") and back.output_units_ == ("mV", "mV")
+    record = {**PROV, "session": {"input_units": ["uA", "uA"], "output_units": ["mV", "mV"]}}
+    for name, prov, expected in (("old.h5", record, ("uA", "mV")), ("bare.h5", PROV, ("", ""))):
+        path = save_predictor(est, tmp_path / name, provenance=prov)
+        _drop_stored_units(path)
+        back, _ = load_predictor(path)
+        assert back.input_units_ == (expected[0],) * 2 and back.output_units_ == (expected[1],) * 2
+
+
+def test_a_loaded_model_refuses_settings_changed_after_loading(rng, tmp_path):
+    est = RidgeArx(output_lags=2, input_lags=2, alphas=[1e-3]).fit(session(rng))
+    back, _ = load_predictor(save_predictor(est, tmp_path / "m.h5", provenance=PROV))
+    back.set_params(output_lags=1)
+    with pytest.raises(NotFittedError, match="fit\\(\\.\\.\\.\\) again"):
+        back.predict(np.zeros((2, 2)), np.zeros((2, 2)), np.zeros((3, 2)))

@@ -1,0 +1,150 @@
+"""The regression behind ridge ARX: rows inside valid segments, folds of whole trials, the index bookkeeping from
+lagged moments to regressors and targets, and the ridge path from one eigendecomposition.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .exceptions import InvalidParameterError, SessionError
+from ._lagged import _Moments
+
+
+# ------------------------------------------------------------------------------------------------ data access
+def _check_source(session):
+    needed = ("read", "segments", "n_inputs", "n_outputs", "trials", "sample_rate_hz")
+    missing = [a for a in needed if not hasattr(session, a)]
+    if missing:
+        raise SessionError(
+            f"expected a stimsteer Session or an opened session file (stimsteer.sysid.io.open_session_file); got "
+            f"{type(session).__name__}, which lacks {missing}. Load the recording with load_session first."
+        )
+
+
+def _pieces(session, n_lags: int, n_folds: int):
+    """Row ranges ``[k0, k1)`` inside valid segments, each with a fold id, and the folding scheme used.
+
+    Folds group whole trials (round-robin over the trials that have rows). With fewer than two such trials the
+    rows are cut into ``n_folds`` contiguous blocks instead.
+    """
+    segs = [(s + n_lags, e) for s, e in session.segments(min_length=n_lags + 1)]
+    starts = np.asarray(session.trials)[:, 0]
+    trial_of = [int(np.searchsorted(starts, a - n_lags, side="right") - 1) for a, _ in segs]
+    used = sorted(set(trial_of))
+    if len(used) >= 2:
+        k = min(n_folds, len(used))
+        fold_of_trial = {t: i % k for i, t in enumerate(used)}
+        return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
+    return _block_pieces(segs, n_folds), n_folds, "contiguous blocks (one trial)"
+
+
+def _block_pieces(segs, n_folds: int):
+    total = sum(b - a for a, b in segs)
+    edges = np.linspace(0, total, n_folds + 1).round().astype(np.int64)
+    out, offset = [], 0
+    for a, b in segs:
+        for f in range(n_folds):
+            lo = max(a, a + edges[f] - offset)
+            hi = min(b, a + edges[f + 1] - offset)
+            if hi > lo:
+                out.append((int(lo), int(hi), f))
+        offset += b - a
+    return out
+
+
+# ------------------------------------------------------------------------------------------------ solving
+def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray], np.ndarray]:
+    """Solutions of ``(R + α I) β = r`` for each α, from one eigendecomposition of the symmetric ``R``.
+
+    Eigenvalues at or below ``d · eps · λ_max`` are treated as zero; for α = 0 their directions are dropped
+    (minimum-norm solution). Returns the solutions and the condition numbers ``(λ_max + α) / (λ_min + α)``.
+    """
+    lam, V = np.linalg.eigh(R)
+    lam = np.clip(lam, 0.0, None)
+    tiny = lam.max(initial=0.0) * R.shape[0] * np.finfo(float).eps
+    Vr = V.T @ r
+    betas, conds = [], []
+    for alpha in alphas:
+        den = lam + alpha
+        keep = den > tiny
+        inv = np.where(keep, 1.0 / np.where(keep, den, 1.0), 0.0)
+        betas.append(V @ (inv[:, None] * Vr))
+        lo = den.min() if den.size else 1.0
+        conds.append(np.inf if lo <= tiny else (lam.max(initial=0.0) + alpha) / lo)
+    return betas, np.asarray(conds)
+
+
+class _Problem:
+    """Index bookkeeping from the lagged-moment space to the regression (regressors x, targets y)."""
+
+    def __init__(self, p, m, na, nb, d, fit_intercept):
+        self.p, self.m, self.na, self.nb, self.d = p, m, na, nb, d
+        self.L = max(na, d + nb - 1)
+        self.c = p + m
+        self.fit_intercept = fit_intercept
+        c = self.c
+        self.y_idx = np.arange(p)
+        x = [lag * c + np.arange(p) for lag in range(1, na + 1)]
+        x += [(d + j) * c + p + np.arange(m) for j in range(nb)]
+        self.x_idx = np.concatenate(x) if x else np.zeros(0, dtype=np.int64)
+
+    @property
+    def size(self):
+        return self.c * (self.L + 1)
+
+    def centred(self, mom: _Moments, mean_from: _Moments | None = None):
+        """Regressor/target cross products about the mean of ``mean_from`` (default ``mom``), or raw."""
+        xi, yi = self.x_idx, self.y_idx
+        W, s, n = mom.W, mom.s, mom.n
+        ref = mom if mean_from is None else mean_from
+        mu = ref.s / ref.n if self.fit_intercept else np.zeros_like(ref.s)
+        # sum_k (w_k - mu)(w_k - mu)ᵀ = W - mu sᵀ - s muᵀ + n mu muᵀ
+        Wc = W - np.outer(mu, s) - np.outer(s, mu) + n * np.outer(mu, mu)
+        return Wc[np.ix_(xi, xi)], Wc[np.ix_(xi, yi)], Wc[np.ix_(yi, yi)], mu
+
+    def solve(self, mom: _Moments, alphas):
+        """Coefficients (d_x, p) for each α, regressor scale (d_x,), condition numbers, and the centring mean."""
+        Cxx, Cxy, _Cyy, mu = self.centred(mom)
+        n = mom.n
+        scale = np.sqrt(np.clip(np.diag(Cxx), 0.0, None) / n)
+        scale[scale == 0] = 1.0
+        R = Cxx / (n * np.outer(scale, scale))
+        r = Cxy / (n * scale[:, None])
+        betas, conds = _ridge_path(R, r, alphas)
+        return [b / scale[:, None] for b in betas], scale, conds, mu
+
+    def validation_errors(self, betas, train: _Moments, test: _Moments) -> list[float]:
+        """Mean over output channels of SSE / SST on ``test`` for each coefficient set fitted on ``train``.
+
+        SSE uses the training centring; SST is about the test rows' own mean (one-step-ahead ``1 − R²``). The test
+        moments are centred once for all coefficient sets.
+        """
+        Qxx, Qxy, Qyy, _ = self.centred(test, mean_from=train)
+        yi = self.y_idx
+        sst = np.diag(test.W)[yi] - test.s[yi] ** 2 / test.n
+        ok = sst > 0
+        out = []
+        for beta in betas:
+            sse = np.diag(Qyy) - 2.0 * (beta * Qxy).sum(axis=0) + (beta * (Qxx @ beta)).sum(axis=0)
+            sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
+            out.append(float(np.mean(sse[ok] / sst[ok])) if ok.any() else np.nan)
+        return out
+
+
+# ------------------------------------------------------------------------------------------------ estimator
+def _check_int(name, value, lowest):
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}. Pass a whole number of "
+                                    "samples.")
+    return int(value)
+
+
+def _check_alphas(alphas) -> np.ndarray:
+    a = np.atleast_1d(np.asarray(alphas, dtype=np.float64))
+    if a.ndim != 1 or a.size == 0:
+        raise InvalidParameterError(f"alphas must be a non-empty 1-D grid of ridge strengths; got shape {a.shape}.")
+    if not np.all(np.isfinite(a)) or np.any(a < 0):
+        raise InvalidParameterError(
+            f"alphas must be finite and >= 0 (0 = ordinary least squares); got {a.tolist()}. Remove negative values."
+        )
+    return np.unique(a)

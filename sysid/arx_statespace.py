@@ -1,0 +1,82 @@
+"""The shift-register (observer-form) state-space realisation of an ARX model (:func:`arx_to_state_space`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .statespace import StateSpaceModel
+
+__all__ = ["arx_to_state_space"]
+
+
+# ------------------------------------------------------------------------------------------------ state space
+def arx_to_state_space(
+    ar_coefs, input_coefs, delay_samples: int, *, sample_rate_hz: float = 1.0, innovation_cov=None,
+    input_names=None, output_names=None, info=None,
+) -> StateSpaceModel:
+    """The shift-register (observer-form) state-space realisation of an ARX model.
+
+    Parameters
+    ----------
+    ar_coefs : ndarray, shape (na, p, p)
+        ``A_1 ... A_na``; ``na`` may be 0.
+    input_coefs : ndarray, shape (nb, p, m)
+        ``B_0 ... B_{nb-1}`` acting on ``u_{k-d-j}``.
+    delay_samples : int
+        ``d``, the input delay in samples (0 gives direct feed-through ``D = B_0``).
+    sample_rate_hz : float, default 1.0
+    innovation_cov : ndarray, shape (p, p), optional
+        Covariance of the one-step residual ``e_k``.
+    input_names, output_names : tuple of str, optional
+    info : dict, optional
+
+    Returns
+    -------
+    StateSpaceModel
+        States ``x_k = [y_{k-1}; ...; y_{k-na}; u_{k-1}; ...; u_{k-nu}]`` with ``nu = d + nb - 1`` (or ``nb - 1``
+        input states when ``d = 0``), ``n_states = p·na + m·nu``, Kalman gain ``K = [I; 0]`` and ``past_steps =
+        max(na, nu, 1)``.
+
+    Notes
+    -----
+    ``y_k = C x_k + D u_k + e_k`` with ``C = [A_1 … A_na, B̃_1 … B̃_nu]``, ``B̃_l = B_{l-d}`` (zero outside the
+    input lags) and ``D = B_0`` if ``d = 0``. The predictor matrix ``A − K C`` is a pure shift, nilpotent of index
+    ``max(na, nu)``: the state after a past window of that length is exactly the stacked measured samples, so
+    ``predict`` from such a window reproduces the ARX recursion that feeds back its own predictions.
+
+    References
+    ----------
+    Ljung L. (1999), System Identification: Theory for the User, 2nd ed., section 4.3 (state-space forms of ARX).
+    """
+    Aa = np.asarray(ar_coefs, dtype=np.float64)
+    Bb = np.asarray(input_coefs, dtype=np.float64)
+    na, p = Aa.shape[0], Bb.shape[1]
+    nb, m = Bb.shape[0], Bb.shape[2]
+    d = int(delay_samples)
+    nu = d + nb - 1
+    C = np.zeros((p, p * na + m * nu))
+    for i in range(na):
+        C[:, i * p:(i + 1) * p] = Aa[i]
+    for j in range(nb):
+        lag = d + j
+        if lag >= 1:
+            C[:, p * na + (lag - 1) * m: p * na + lag * m] = Bb[j]
+    D = Bb[0] if d == 0 else np.zeros((p, m))
+    n = C.shape[1]
+    A = np.zeros((n, n))
+    B = np.zeros((n, m))
+    K = np.zeros((n, p))
+    if na:
+        A[:p] = C
+        B[:p] = D
+        K[:p] = np.eye(p)
+        A[p: p * na, : p * (na - 1)] = np.eye(p * (na - 1))
+    if nu:
+        off = p * na
+        B[off: off + m] = np.eye(m)
+        A[off + m: off + m * nu, off: off + m * (nu - 1)] = np.eye(m * (nu - 1))
+    return StateSpaceModel(
+        A=A, B=B, C=C, D=D, K=K, innovation_cov=innovation_cov, sample_rate_hz=sample_rate_hz,
+        past_steps=max(na, nu, 1), input_names=input_names, output_names=output_names, info=info or {},
+    )

@@ -1,0 +1,307 @@
+"""What the direct-route predictors share: settings checks, the streamed data pass over folds of whole trials,
+the data scale of the strengths, and their common base class.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .._offsets import ShiftedOutputs, output_mean
+from ..excitation import check_excitation
+from .._base import BasePredictor, check_fitted
+from ..protocols import PredictionMaps
+from ..exceptions import InvalidParameterError, SessionError
+from ..hankel import block_hankel, combine_factors, row_space_factor
+
+
+# ------------------------------------------------------------------------------------------------ validation
+def _check_int(name, value, lowest):
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest}; got {value!r}.")
+    return int(value)
+
+
+def _check_strengths(name, values) -> np.ndarray:
+    a = np.atleast_1d(np.asarray(values, dtype=np.float64))
+    if a.ndim != 1 or a.size == 0:
+        raise InvalidParameterError(f"{name} must be a non-empty 1-D grid of strengths; got shape {a.shape}.")
+    if not np.all(np.isfinite(a)) or np.any(a <= 0):
+        raise InvalidParameterError(
+            f"{name} must be finite and > 0; got {a.tolist()}. Regularisation strengths are relative to the "
+            "data scale; remove zero or negative values (try 1e-6 ... 1)."
+        )
+    return np.unique(a)
+
+
+def _check_source(session):
+    needed = ("read", "segments", "n_inputs", "n_outputs", "trials", "sample_rate_hz")
+    missing = [a for a in needed if not hasattr(session, a)]
+    if missing:
+        raise SessionError(
+            f"expected a stimsteer Session or an opened session file; got {type(session).__name__}, which lacks "
+            f"{missing}. Load the recording with stimsteer.sysid.io.load_session first."
+        )
+
+
+def _row_order(m: int, p: int, past: int, horizon: int) -> np.ndarray:
+    """Permutation from the rows of [H_L(u); H_L(y)] to [Up; Yp; Uf; Yf] (time-major blocks)."""
+    L = past + horizon
+    return np.concatenate([np.arange(m * past), m * L + np.arange(p * past),
+                           np.arange(m * past, m * L), m * L + np.arange(p * past, p * L)])
+
+
+# ------------------------------------------------------------------------------------------------ data pass
+@dataclass
+class _Fold:
+    factor: np.ndarray
+    n_columns: int
+    full: list
+
+
+def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
+    """Fold id per (piece of) segment: whole trials, seeded; contiguous blocks when one trial has windows."""
+    starts = np.asarray(session.trials)[:, 0]
+    trial_of = [int(np.searchsorted(starts, a, side="right") - 1) for a, _ in segs]
+    used = sorted(set(trial_of))
+    if len(used) >= 2:
+        k = min(n_splits, len(used))
+        perm = np.random.default_rng(seed).permutation(len(used))
+        fold_of_trial = {used[j]: int(i % k) for i, j in enumerate(perm)}
+        return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
+    pieces = []
+    for a, b in segs:
+        edges = np.linspace(a, b, n_splits + 1).round().astype(np.int64)
+        pieces += [(int(lo), int(hi), f) for f, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])) if hi - lo >= L]
+    k = len({f for *_, f in pieces})
+    return pieces, k, "contiguous blocks (one trial)"
+
+
+def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
+    """One pass over the valid segments: per-fold row-space factors (and raw Hankel blocks when asked)."""
+    m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
+    order = _row_order(m, p, past, horizon)
+    segs = session.segments(L)
+    if n_folds_wanted > 1:
+        pieces, n_folds, scheme = _fold_of_segments(session, segs, n_folds_wanted, seed, L)
+    else:
+        pieces, n_folds, scheme = [(a, b, 0) for a, b in segs], 1, "none"
+    n_rows = (m + p) * L
+    parts = [[] for _ in range(n_folds)]
+    folds = [_Fold(np.zeros((n_rows, 0)), 0, []) for _ in range(n_folds)]
+    y_sum, y_sq, n_y = np.zeros(p), np.zeros(p), 0
+    for a, b, f in pieces:
+        u, y, _ = session.read(a, b)
+        u, y = np.asarray(u, dtype=np.float64), np.asarray(y, dtype=np.float64)
+        F, k = row_space_factor([u, y], L)
+        parts[f].append(F[order])
+        if len(parts[f]) > 8:  # keep the working memory independent of the number of segments
+            parts[f] = [combine_factors(parts[f], n_rows)]
+        folds[f].n_columns += k
+        if keep_full:
+            folds[f].full.append(np.vstack([block_hankel(u, L), block_hankel(y, L)])[order])
+        y_sum += y.sum(axis=0)
+        y_sq += (y * y).sum(axis=0)
+        n_y += y.shape[0]
+    for f in range(n_folds):
+        folds[f].factor = combine_factors(parts[f], n_rows)
+    starts = np.asarray(session.trials)[:, 0]
+    trial_fold = np.full(starts.size, -1, dtype=np.int64)
+    if scheme == "trials":
+        for a, _b, f in pieces:
+            trial_fold[np.searchsorted(starts, a, side="right") - 1] = f
+    n_y = max(n_y, 1)
+    std = np.sqrt(np.maximum(y_sq / n_y - (y_sum / n_y) ** 2, 0.0))
+    std[std <= 1e-12 * max(std.max(), 1e-300)] = 1.0
+    return folds, scheme, std, tuple(int(f) for f in trial_fold)
+
+
+def _merge(folds, n_rows):
+    factor = combine_factors([f.factor for f in folds], n_rows)
+    full = [blk for f in folds for blk in f.full]
+    return _Fold(factor, sum(f.n_columns for f in folds), full)
+
+
+def _data_scale(F: np.ndarray) -> float:
+    """``||H||_F² / n_rows`` (equal for ``H`` and its factor)."""
+    return float(np.sum(F * F) / F.shape[0])
+
+
+def _validation_error(G: np.ndarray, F_val: np.ndarray, weights: np.ndarray) -> float:
+    """``Σ_columns ||W (Yf_col − G D_col)||²`` over a held-out fold, from its row-space factor alone."""
+    n_b = G.shape[1]
+    E = F_val[n_b:] - G @ F_val[:n_b]
+    return float(np.sum((weights[:, None] * E) ** 2))
+
+
+# ------------------------------------------------------------------------------------------------ base class
+class _DirectPredictor(BasePredictor):
+    """Shared validation, data pass, selection, prediction and state for the direct predictors."""
+
+    _strength_param: str = ""
+    #: ``fit`` reads a lazily opened session file segment by segment (``read``/``segments``).
+    supports_streaming = True
+    #: The prediction is affine in the window (see :mod:`stimsteer.sysid.protocols`).
+    has_linear_maps = True
+
+    def _validate_common(self, session):
+        _check_source(session)
+        past = _check_int("past_steps", self.past_steps, 1)
+        horizon = _check_int("horizon_steps", self.horizon_steps, 1)
+        if self.n_states is not None:
+            _check_int("n_states", self.n_states, 0)
+        _check_int("n_splits", self.n_splits, 2)
+        _check_int("seed", self.seed, 0)
+        L = past + horizon
+        longest = max((b - a for a, b in session.segments(1)), default=0)
+        if longest < L:
+            raise SessionError(
+                f"the past window + horizon ({past} + {horizon} = {L} samples) is longer than every valid segment "
+                f"of every trial (the longest is {longest}). Shorten past_steps or horizon_steps, or record longer "
+                "trials with fewer gaps."
+            )
+        return past, horizon
+
+    def _gather(self, session, n_candidates, keep_full):
+        past, horizon = self._validate_common(session)
+        if not isinstance(self.centre_outputs, (bool, np.bool_)):
+            raise InvalidParameterError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
+        self.output_offset_ = output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
+        if self.centre_outputs:
+            session = ShiftedOutputs(session, self.output_offset_)
+        order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
+                                 stacklevel=6)
+        folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
+                                      self.seed, keep_full)
+        if n_candidates > 1 and len(folds) < 2:
+            raise SessionError(
+                f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
+                f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer "
+                "trials, or give a single strength."
+            )
+        m, p = int(session.n_inputs), int(session.n_outputs)
+        self.past_steps_, self.max_horizon_steps_ = past, horizon
+        self.n_inputs_, self.n_outputs_ = m, p
+        self.excitation_order_ = int(order)
+        self.cv_scheme_ = scheme
+        self.cv_folds_ = trial_fold
+        self.input_names_ = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(m)))
+        self.output_names_ = tuple(getattr(session, "output_names", None) or (f"y{i}" for i in range(p)))
+        self.input_units_ = tuple(getattr(session, "input_units", None) or ("",) * m)
+        self.output_units_ = tuple(getattr(session, "output_units", None) or ("",) * p)
+        self.sample_rate_hz_ = float(session.sample_rate_hz)
+        return folds, np.tile(1.0 / std, horizon)
+
+    def _select(self, folds, candidates, weights, score_fold):
+        """Validation error per candidate summed over folds; ``score_fold(train, val) -> errors``."""
+        n_rows = folds[0].factor.shape[0]
+        if len(candidates) == 1:
+            return float(candidates[0]), pd.DataFrame({"candidate": candidates, "validation_error": [np.nan]})
+        errors, counts = np.zeros(len(candidates)), 0
+        cols = {}
+        for i, val in enumerate(folds):
+            train = _merge([f for j, f in enumerate(folds) if j != i], n_rows)
+            if val.n_columns == 0 or train.n_columns == 0:
+                continue
+            e = np.asarray(score_fold(train, val, weights))
+            errors += e
+            counts += val.n_columns
+            cols[f"fold_{i}"] = e / max(val.n_columns * weights.size, 1)  # same normalisation as the mean
+        mean = errors / max(counts * weights.size, 1)
+        mean = np.where(np.isfinite(mean), mean, np.inf)
+        best = int(np.flatnonzero(mean <= mean.min() * (1 + 1e-12))[-1])
+        table = pd.DataFrame({"candidate": candidates, "validation_error": mean, **cols})
+        return float(candidates[best]), table
+
+    # ---------------------------------------------------------------------------------------- prediction
+    def _batch_windows(self, u_past, y_past, u_future):
+        """Stacked ``b`` vectors of a batch of windows, shape (n_windows, len(b)), and the common future length."""
+        m, past, N = self.n_inputs_, self.past_steps_, self.max_horizon_steps_
+        up, yp, uf = self._check_batch(u_past, y_past, u_future)
+        W, n_future = up.shape[0], uf.shape[1]
+        full = np.zeros((W, N, m))
+        full[:, :n_future] = uf
+        y_rel = yp[:, -past:] - self._offset()
+        b = np.concatenate([up[:, -past:].reshape(W, -1), y_rel.reshape(W, -1), full.reshape(W, -1)], axis=1)
+        return b, n_future
+
+    def _linear_many(self, G, u_past, y_past, u_future):
+        b, n_future = self._batch_windows(u_past, y_past, u_future)
+        y = b @ G.T
+        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
+
+    def _maps_from(self, G: np.ndarray, past_steps: int, horizon_steps: int):
+        """:class:`PredictionMaps` of ``vec(y) = G [u_past; y_past − off; u_future] + off`` over a window."""
+        check_fitted(self, "past_steps_")
+        m, p, T, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        past, horizon = int(past_steps), int(horizon_steps)
+        if past < T or not 1 <= horizon <= N:
+            raise SessionError(f"the {type(self).__name__} needs a past window of at least past_steps_ = {T} samples "
+                               f"and a horizon of 1 to {N} steps; got past {past_steps} and horizon {horizon_steps}.")
+        n_u, n_y = m * T, p * T
+        Gu, Gy, Gf = G[:p * horizon, :n_u], G[:p * horizon, n_u:n_u + n_y], G[:p * horizon, n_u + n_y:]
+        P = np.zeros((p * horizon, (m + p) * past))
+        P[:, m * (past - T):m * past] = Gu  # only the last T samples of the window count
+        P[:, m * past + p * (past - T):] = Gy
+        off = self._offset()
+        c = np.tile(off, horizon) - Gy @ np.tile(off, T)
+        return PredictionMaps(P=P, F=np.ascontiguousarray(Gf[:, :m * horizon]), c=c, past_steps=past,
+                              horizon_steps=horizon)
+
+    def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
+        """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
+        check_fitted(self, "past_steps_")
+        return np.zeros((self.past_steps_, self.n_inputs_)), np.tile(self._offset(), (self.past_steps_, 1))
+
+    # ---------------------------------------------------------------------------------------- storage
+    _fitted_arrays: tuple = ()
+    _fitted_scalars: tuple = ("past_steps_", "max_horizon_steps_", "n_inputs_", "n_outputs_", "excitation_order_",
+                              "cv_scheme_", "sample_rate_hz_", "n_columns_", "data_scale_")
+
+    def to_state(self) -> dict:
+        """Parameters and fitted values as plain arrays, numbers, strings and nested dicts (for storage)."""
+        check_fitted(self, "past_steps_")
+        params = {k: (np.asarray(v, dtype=np.float64) if k == self._strength_param else
+                      int(v) if isinstance(v, (bool, np.bool_, np.integer)) else v)
+                  for k, v in self.get_params().items() if v is not None}
+        fitted = {k: getattr(self, k) for k in self._fitted_scalars + self._fitted_arrays
+                  if getattr(self, k) is not None}
+        fitted["output_offset_"] = np.asarray(self._offset(), dtype=np.float64)
+        fitted["input_names_"] = "\n".join(self.input_names_)
+        fitted["output_names_"] = "\n".join(self.output_names_)
+        fitted["input_units_"] = "\n".join(self.input_units_)
+        fitted["output_units_"] = "\n".join(self.output_units_)
+        fitted["cv_folds_"] = np.asarray(self.cv_folds_, dtype=np.int64)
+        fitted["cv_table_"] = {c: self.cv_table_[c].to_numpy(dtype=np.float64) for c in self.cv_table_.columns}
+        return {"params": params, "fitted": fitted}
+
+    @classmethod
+    def _from_state_common(cls, state):
+        params = dict(state["params"])
+        for k in ("past_steps", "horizon_steps", "n_states", "n_splits", "seed"):
+            if k in params:
+                params[k] = int(params[k])
+        if cls._strength_param in params:
+            params[cls._strength_param] = tuple(float(v) for v in np.atleast_1d(params[cls._strength_param]))
+        if "centre_outputs" in params:
+            params["centre_outputs"] = bool(int(params["centre_outputs"]))
+        obj = cls(**params)
+        fitted = dict(state["fitted"])
+        for k in ("past_steps_", "max_horizon_steps_", "n_inputs_", "n_outputs_", "excitation_order_",
+                  "n_columns_"):
+            setattr(obj, k, int(fitted.pop(k)))
+        for k in ("sample_rate_hz_", "data_scale_"):
+            setattr(obj, k, float(fitted.pop(k)))
+        obj.cv_scheme_ = str(fitted.pop("cv_scheme_"))
+        obj.cv_folds_ = tuple(int(f) for f in np.atleast_1d(fitted.pop("cv_folds_")))
+        obj.input_names_ = tuple(str(fitted.pop("input_names_")).split("\n"))
+        obj.output_names_ = tuple(str(fitted.pop("output_names_")).split("\n"))
+        for k, n in (("input_units_", obj.n_inputs_), ("output_units_", obj.n_outputs_)):
+            units = tuple(str(fitted.pop(k)).split("\n")) if k in fitted else ("",) * n
+            setattr(obj, k, units if len(units) == n else ("",) * n)  # files written before units were stored
+        obj.cv_table_ = pd.DataFrame({k: np.asarray(v) for k, v in fitted.pop("cv_table_").items()})
+        obj.output_offset_ = np.asarray(fitted.pop("output_offset_", np.zeros(obj.n_outputs_)), dtype=np.float64)
+        obj._mark_fitted()
+        return obj, fitted

@@ -1,0 +1,483 @@
+"""The regularised (DeePC-style) Hankel predictor (:class:`HankelPredictor`) and its Hankel blocks.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg as sla
+
+from ..excitation import rank_tolerance
+from .._base import check_fitted
+from ..protocols import DataBlocks, PredictionMaps
+from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
+from ..hankel import _one_blas_thread
+from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
+
+__all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
+
+
+REGULARIZERS = ("projection", "l2", "l1")
+_DEFAULT_LAMBDAS_G = tuple(float(a) for a in np.logspace(-4, 2, 7))
+#: Validation windows per fold for the ℓ1 regulariser (each costs one convex solve).
+_L1_VALIDATION_WINDOWS = 16
+
+
+@dataclass(frozen=True)
+class HankelBlocks:
+    """The four row blocks of a (possibly compressed) data matrix; ``r`` columns each.
+
+    Attributes
+    ----------
+    Up : ndarray, shape (n_inputs·past_steps, r)
+    Yp : ndarray, shape (n_outputs·past_steps, r)
+    Uf : ndarray, shape (n_inputs·horizon_steps, r)
+    Yf : ndarray, shape (n_outputs·horizon_steps, r)
+    compressed : bool
+        True when the blocks are the row-space factor (``r ≤ n_rows``), False for the raw Hankel columns.
+    """
+
+    Up: np.ndarray
+    Yp: np.ndarray
+    Uf: np.ndarray
+    Yf: np.ndarray
+    compressed: bool
+
+    @property
+    def D(self) -> np.ndarray:
+        """``[Up; Yp; Uf]``, shape ((m+p)·past + m·horizon, r)."""
+        return np.vstack([self.Up, self.Yp, self.Uf])
+
+    @classmethod
+    def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool):
+        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them)."""
+        if H.ndim != 2 or H.shape[0] != (m + p) * (past + horizon):
+            raise SessionError(
+                f"a data matrix for {m} input(s), {p} output(s), past {past} and horizon {horizon} needs "
+                f"{(m + p) * (past + horizon)} rows; got shape {H.shape}."
+            )
+        cuts = np.cumsum([m * past, p * past, m * horizon])
+        Up, Yp, Uf, Yf = (np.ascontiguousarray(b) for b in np.split(H, cuts, axis=0))
+        return cls(Up, Yp, Uf, Yf, bool(compressed))
+
+
+# ------------------------------------------------------------------------------------------------ Hankel
+def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
+    """``I − Π`` with ``Π`` the orthogonal projector onto the row space of ``D`` (numerical rank, see excitation)."""
+    _, sv, Vt = np.linalg.svd(D, full_matrices=False)
+    tol = rank_tolerance(sv, (D.shape[0], n_columns))
+    V = Vt[sv > tol].T
+    M = -(V @ V.T)
+    M[np.diag_indices_from(M)] += 1.0
+    return M
+
+
+def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray) -> np.ndarray:
+    """Minimisers ``g`` (one column per column of ``B = [u_past; y_past; u_future]``) of the ℓ2 / projection problem.
+
+    KKT system of ``min λ_y ||Yp g − y_p||² + λ_g gᵀ M g  s.t.  [Up; Uf] g = [u_p; u_f]``::
+
+        [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
+        [A                   0 ] [ν] = [u_p; u_f  ]
+
+    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
+    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
+    """
+    Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
+    r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
+    A = np.vstack([Up, Uf])
+    K = np.zeros((r + A.shape[0], r + A.shape[0]))
+    K[:r, :r] = lam_y * (Yp.T @ Yp)
+    if M is None:
+        K[np.arange(r), np.arange(r)] += lam_g
+    else:
+        K[:r, :r] += lam_g * M
+    # symmetric scaling of the constraint rows (multipliers ν/β): same solution, balanced blocks
+    beta = np.abs(K[:r, :r]).max() / max(np.abs(A).max(), np.finfo(float).tiny)
+    K[:r, r:] = beta * A.T
+    K[r:, :r] = beta * A
+    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", sla.LinAlgWarning)
+        try:
+            return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+        except sla.LinAlgWarning:
+            pass
+    warnings.warn(ConditioningWarning(
+        f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
+        f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
+    ), stacklevel=6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sla.LinAlgWarning)
+        return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+
+
+class HankelPredictor(_DirectPredictor):
+    """Regularised Hankel-matrix (DeePC-style) predictor with a slack on the past outputs.
+
+    Parameters
+    ----------
+    past_steps : int
+        ``Tini``, samples of past inputs and outputs the prediction conditions on.
+    horizon_steps : int
+        ``N``, samples predicted.
+    regularizer : {"projection", "l2", "l1"}, default "projection"
+        ``R(g)``: ``||(I − Π) g||²`` with ``Π`` the projector onto the row space of ``[Up; Yp; Uf]``;
+        ``||g||²``; or ``||g||_1`` (solved with cvxpy, on the uncompressed data).
+    lambdas_g : sequence of float, default ``10**-4 … 10**2`` (7 values)
+        Candidate strengths of ``R(g)``, relative to the data (module docstring), each > 0.
+    lambda_y : float, default 1e3
+        Weight of the squared slack ``||Yp g − vec(y_past)||²``, > 0.
+    compress : bool, default True
+        Replace the data matrix by its row-space factor (exact for "projection" and "l2"; ignored for "l1").
+    n_states : int, optional
+        State dimension, used only for the excitation check (default: ``past_steps``).
+    n_splits : int, default 3
+        Folds of whole trials used to choose the strength.
+    seed : int, default 0
+        Seeds the assignment of trials to folds.
+    solver_options : dict, optional
+        Passed to ``cvxpy.Problem.solve`` for "l1"; default ``{"solver": "CLARABEL"}`` (an interior-point
+        solver: the first-order default of cvxpy for QPs stops at its iteration limit on some of these problems).
+        Not saved by :meth:`to_state`.
+    centre_outputs : bool, default False
+        Build the predictor from the outputs minus their training mean (``output_offset_``), for recordings with a
+        baseline offset; predictions take and give recorded units (the offset is removed from ``y_past`` and added
+        to the prediction), and the data controller plans in recorded units.
+
+    Attributes
+    ----------
+    blocks_ : HankelBlocks
+        ``Up, Yp, Uf, Yf`` with ``r`` columns: ``r ≤ n_rows`` when compressed, else ``n_columns_``.
+    reg_matrix_ : ndarray, shape (r, r), or None
+        ``M`` with ``R(g) = ||M g||²``: ``I − Π`` (in compressed coordinates when compressed) for "projection",
+        the identity for "l2", None for "l1".
+    regularizer_ : str
+    lambda_g_ : float
+        Absolute weight of ``R(g)`` in the problem solved (``lambda_g_relative_ · data_scale_``, see Notes).
+    lambda_g_relative_ : float
+        Chosen candidate from ``lambdas_g``.
+    lambda_y_ : float
+    data_scale_ : float
+    cv_table_ : pandas.DataFrame
+        As :class:`LsqPredictor`.
+    past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
+    cv_scheme_ : str
+        ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).
+    cv_folds_ : tuple of int
+        Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
+    input_names_, output_names_ : tuple of str
+    sample_rate_hz_ : float
+    output_offset_ : ndarray, shape (n_outputs,)
+        The training mean removed with ``centre_outputs`` (zeros otherwise).
+
+    Notes
+    -----
+    :meth:`predict` solves
+
+        min_g  λ_y ||Yp g − vec(y_past)||² + λ_g R(g)   s.t.  Up g = vec(u_past),  Uf g = vec(u_future)
+
+    and returns ``Yf g``; ℓ2 and projection in closed form (KKT system), ℓ1 with cvxpy. Compressed, the blocks are
+    the row-space factor ``F`` of ``H = F Qᵀ`` and ``I − Π`` becomes ``I − P`` with ``P`` the projector onto the
+    row space of ``F``'s first rows, since ``Π = Q P Qᵀ``; the minimiser is ``g = Q h`` and the prediction is the
+    same. For ℓ1, ``λ_g_ = lambda_g_relative_ · data_scale_ / sqrt(n_columns_ / n_rows)``.
+
+    For the ℓ2 and projection regularisers the prediction is linear in ``b``; held-out errors are computed from
+    the folds' row-space factors as for :class:`LsqPredictor`. For ℓ1 each fold scores
+    ``_L1_VALIDATION_WINDOWS`` evenly spread held-out windows. As ``λ_g → ∞`` the projection predictor tends to
+    the least-squares one with ``alpha → 0`` (Dörfler, Coulson, Markovsky 2023). When ``[Up; Yp; Uf]`` has full
+    row rank (noisy data) the two coincide for every ``λ_g > 0``: ``g = D⁺ b`` meets the constraints with zero slack
+    and zero penalty. The strength then matters only inside a controller, where the tracking cost competes with
+    the penalty.
+
+    References
+    ----------
+    Coulson J., Lygeros J., Dörfler F. (2019), "Data-enabled predictive control: in the shallows of the DeePC",
+    European Control Conference.
+    Dörfler F., Coulson J., Markovsky I. (2023), "Bridging direct and indirect data-driven control formulations via
+    regularizations and relaxations", IEEE Transactions on Automatic Control 68:883.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stimsteer.sysid import Session
+    >>> rng = np.random.default_rng(0)
+    >>> u = rng.standard_normal((300, 1)); y = np.zeros((300, 1))
+    >>> for k in range(1, 300): y[k] = 0.5 * y[k - 1] + u[k - 1]
+    >>> hp = HankelPredictor(past_steps=1, horizon_steps=3, lambdas_g=[1e-6], n_states=1)
+    >>> hp = hp.fit(Session(u=u, y=y, sample_rate_hz=1.0))
+    >>> np.round(hp.predict([[1.0]], [[2.0]], [[0.0], [0.0], [0.0]]).ravel(), 6).tolist()  # 0.5·2 + 1, then halving
+    [2.0, 1.0, 0.5]
+    """
+
+    storage_kind = "hankel_predictor"
+    _strength_param = "lambdas_g"
+    _fitted_scalars = _DirectPredictor._fitted_scalars + ("regularizer_", "lambda_g_", "lambda_g_relative_",
+                                                          "lambda_y_")
+    _fitted_arrays = ("reg_matrix_",)
+
+    def __init__(self, *, past_steps, horizon_steps, regularizer="projection", lambdas_g=_DEFAULT_LAMBDAS_G,
+                 lambda_y=1e3, compress=True, n_states=None, n_splits=3, seed=0, solver_options=None,
+                 centre_outputs=False):
+        self.past_steps = past_steps
+        self.horizon_steps = horizon_steps
+        self.regularizer = regularizer
+        self.lambdas_g = lambdas_g
+        self.lambda_y = lambda_y
+        self.compress = compress
+        self.n_states = n_states
+        self.n_splits = n_splits
+        self.seed = seed
+        self.solver_options = solver_options
+        self.centre_outputs = centre_outputs
+
+    # ---------------------------------------------------------------------------------------- fit
+    def _validate_settings(self):
+        if self.regularizer not in REGULARIZERS:
+            raise InvalidParameterError(f"regularizer must be one of {list(REGULARIZERS)}; got {self.regularizer!r}.")
+        lam_y = float(self.lambda_y) if np.isscalar(self.lambda_y) else np.nan
+        if not np.isfinite(lam_y) or lam_y <= 0:
+            raise InvalidParameterError(f"lambda_y must be a finite number > 0; got {self.lambda_y!r}. Try 1e3.")
+        if self.solver_options is not None and not isinstance(self.solver_options, dict):
+            raise InvalidParameterError(f"solver_options must be a dict or None; got "
+                                        f"{type(self.solver_options).__name__}.")
+        return _check_strengths("lambdas_g", self.lambdas_g), lam_y
+
+    def _abs_strength(self, rel: float, scale: float, n_columns: int, n_rows: int) -> float:
+        if self.regularizer == "l1":
+            return rel * scale / np.sqrt(max(n_columns / n_rows, 1e-300))
+        return rel * scale
+
+    @_one_blas_thread
+    def fit(self, session) -> "HankelPredictor":
+        """Fit from a :class:`Session` or an opened session file.
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        InvalidParameterError
+            Bad settings (strengths <= 0, unknown regulariser, non-integer windows).
+        SessionError
+            Past window + horizon longer than every trial.
+        ExcitationError
+            The input Hankel matrix of depth ``past_steps + horizon_steps`` is rank-deficient beyond tolerance.
+        SolverError
+            "l1": the convex solver did not reach an optimal solution.
+
+        Warns
+        -----
+        ExcitationWarning
+            The input excites less than ``past_steps + horizon_steps + n_states``.
+        """
+        lambdas, lam_y = self._validate_settings()
+        l1 = self.regularizer == "l1"
+        compress = bool(self.compress) and not l1
+        folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
+        score = self._score_l1 if l1 else self._score_quadratic
+        rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
+        total = _merge(folds, folds[0].factor.shape[0])
+        self.regularizer_, self.lambda_y_, self.lambda_g_relative_ = self.regularizer, lam_y, rel
+        self.data_scale_ = _data_scale(total.factor)
+        self.n_columns_ = total.n_columns
+        self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.factor.shape[0])
+        self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
+        self.cv_table_ = table
+        self._l1_cache = self._map_cache = None
+        return self
+
+    def _blocks(self, data: _Fold, compress: bool):
+        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        H = data.factor if compress else np.concatenate(data.full, axis=1)
+        blocks = HankelBlocks.from_matrix(H, m, p, past, N, compress)
+        if self.regularizer == "projection":
+            return blocks, _projection_complement(blocks.D, data.n_columns)
+        if self.regularizer == "l2":
+            return blocks, np.eye(H.shape[1])
+        return blocks, None
+
+    def _score_quadratic(self, train, val, weights, lambdas, lam_y):
+        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        blocks = HankelBlocks.from_matrix(train.factor, m, p, past, N, True)
+        M = _projection_complement(blocks.D, train.n_columns) if self.regularizer == "projection" else None
+        scale, n_b = _data_scale(train.factor), blocks.D.shape[0]
+        out = []
+        for rel in lambdas:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", ConditioningWarning)
+                try:
+                    G = blocks.Yf @ _kkt_map(blocks, M, rel * scale, lam_y, np.eye(n_b))
+                except np.linalg.LinAlgError:
+                    out.append(np.inf)
+                    continue
+            out.append(_validation_error(G, val.factor, weights))
+        return out
+
+    def _score_l1(self, train, val, weights, lambdas, lam_y):
+        m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        H = np.concatenate(train.full, axis=1)
+        blocks = HankelBlocks.from_matrix(H, m, p, past, N, False)
+        V = np.concatenate(val.full, axis=1)
+        pick = np.unique(np.linspace(0, V.shape[1] - 1, min(_L1_VALIDATION_WINDOWS, V.shape[1])).round().astype(int))
+        scale = _data_scale(train.factor)
+        solver = _L1Solver(blocks, lam_y, self.solver_options)
+        n_b = blocks.D.shape[0]
+        out = []
+        for rel in lambdas:
+            lam = self._abs_strength(rel, scale, train.n_columns, H.shape[0])
+            err = sum(float(np.sum((weights * (V[n_b:, j] - blocks.Yf @ solver.solve(V[:n_b, j], lam))) ** 2))
+                      for j in pick)
+            out.append(err * val.n_columns / pick.size)
+        return out
+
+    # ---------------------------------------------------------------------------------------- predict
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Predictions of a batch of windows, shapes (n_windows, n_samples, channels).
+
+        Each window's last ``past_steps_`` samples and at most ``max_horizon_steps_`` future inputs are used (a
+        shorter horizon uses the first blocks, with the later future inputs set to zero).
+
+        Raises
+        ------
+        NotFittedError, SessionError
+        SolverError
+            "l1": the convex solver did not reach an optimal solution.
+
+        Notes
+        -----
+        For "l2" and "projection" the prediction is linear in the window, ``vec(y_future) = G b``; ``G`` is
+        computed from one KKT solve with ``len(b)`` right-hand sides on the first call and kept, so a batch costs
+        one matrix product. "l1" solves one convex problem per window. :meth:`solve_g` re-solves the problem for
+        one window.
+        """
+        check_fitted(self, "blocks_")
+        if self.regularizer_ != "l1":
+            return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
+        b, n_future = self._batch_windows(u_past, y_past, u_future)
+        y = np.stack([self.blocks_.Yf @ self._solve(row) for row in b]) if b.shape[0] else \
+            np.zeros((0, self.blocks_.Yf.shape[0]))
+        return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
+
+    @property
+    def has_linear_maps(self) -> bool:
+        """False for the ℓ1 regulariser (its prediction is not affine in the window), True otherwise."""
+        return getattr(self, "regularizer_", self.regularizer) != "l1"
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` ("l2" and "projection" only; see ``has_linear_maps``)."""
+        check_fitted(self, "blocks_")
+        if not self.has_linear_maps:
+            raise SessionError("the l1-regularised Hankel predictor is not affine in its window and has no "
+                               "prediction maps; use data_blocks() (the DeePC formulation) instead.")
+        return self._maps_from(self._prediction_map(), past_steps, horizon_steps)
+
+    def data_blocks(self) -> DataBlocks:
+        """The (compressed) Hankel blocks, regulariser and strengths, as the DeePC formulation uses them."""
+        check_fitted(self, "blocks_")
+        b = self.blocks_
+        M = getattr(self, "reg_matrix_", None)
+        return DataBlocks(Up=b.Up, Yp=b.Yp, Uf=b.Uf, Yf=b.Yf, regularizer=str(self.regularizer_),
+                          lambda_g=float(self.lambda_g_), lambda_y=float(self.lambda_y_),
+                          reg_matrix=None if M is None else np.asarray(M, np.float64), output_offset=self._offset())
+
+    @_one_blas_thread
+    def solve_g(self, u_past, y_past, u_future) -> np.ndarray:
+        """Solve the regularised problem for one window and return its minimiser.
+
+        Parameters
+        ----------
+        u_past, y_past, u_future
+            As :meth:`predict`.
+
+        Returns
+        -------
+        g : ndarray, shape (r,)
+            In the coordinates of ``blocks_`` (``h = Qᵀ g`` when compressed); ``blocks_.Yf @ g`` is the
+            predicted ``vec(y_future)`` over the full horizon, less ``output_offset_`` with ``centre_outputs``.
+        """
+        b, _ = self._batch_windows(*self._window(u_past, y_past, u_future))
+        return self._solve(b[0])
+
+    @_one_blas_thread
+    def _prediction_map(self) -> np.ndarray:
+        if getattr(self, "_map_cache", None) is None:
+            M = None if self.regularizer_ == "l2" else self.reg_matrix_
+            n_b = self.blocks_.Up.shape[0] + self.blocks_.Yp.shape[0] + self.blocks_.Uf.shape[0]
+            self._map_cache = self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_,
+                                                         np.eye(n_b))
+        return self._map_cache
+
+    def _solve(self, b: np.ndarray) -> np.ndarray:
+        if self.regularizer_ == "l1":
+            if getattr(self, "_l1_cache", None) is None:
+                self._l1_cache = _L1Solver(self.blocks_, self.lambda_y_, self.solver_options)
+            return self._l1_cache.solve(b, self.lambda_g_)
+        M = None if self.regularizer_ == "l2" else self.reg_matrix_
+        return _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_, b[:, None])[:, 0]
+
+    # ---------------------------------------------------------------------------------------- storage
+    def to_state(self) -> dict:
+        state = super().to_state()
+        state["params"].pop("solver_options", None)
+        b = self.blocks_
+        state["fitted"]["blocks_"] = {"Up": b.Up, "Yp": b.Yp, "Uf": b.Uf, "Yf": b.Yf,
+                                      "compressed": int(b.compressed)}
+        if self.regularizer_ == "l2":
+            state["fitted"].pop("reg_matrix_", None)
+        return state
+
+    @classmethod
+    def from_state(cls, state) -> "HankelPredictor":
+        """Rebuild a fitted predictor from :meth:`to_state`'s dict."""
+        obj, fitted = cls._from_state_common(state)
+        obj.compress = bool(int(obj.compress))
+        obj.lambda_y = float(obj.lambda_y)
+        obj.regularizer = str(obj.regularizer)
+        bl = fitted["blocks_"]
+        obj.blocks_ = HankelBlocks(*(np.asarray(bl[k], dtype=np.float64) for k in ("Up", "Yp", "Uf", "Yf")),
+                                   compressed=bool(int(bl["compressed"])))
+        obj.regularizer_ = str(fitted["regularizer_"])
+        for k in ("lambda_g_", "lambda_g_relative_", "lambda_y_"):
+            setattr(obj, k, float(fitted[k]))
+        r = obj.blocks_.Up.shape[1]
+        obj.reg_matrix_ = (np.eye(r) if obj.regularizer_ == "l2" else
+                           None if obj.regularizer_ == "l1" else np.asarray(fitted["reg_matrix_"], dtype=np.float64))
+        obj._l1_cache = obj._map_cache = None
+        return obj
+
+
+class _L1Solver:
+    """The ℓ1 problem built once in cvxpy with Parameters (DPP); each solve only assigns values."""
+
+    def __init__(self, blocks: HankelBlocks, lam_y: float, solver_options):
+        import cvxpy as cp
+
+        self._cp = cp
+        Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
+        self.g = cp.Variable(Up.shape[1])
+        self.up, self.yp, self.uf = (cp.Parameter(B.shape[0]) for B in (Up, Yp, Uf))
+        self.lam = cp.Parameter(nonneg=True)
+        cost = lam_y * cp.sum_squares(Yp @ self.g - self.yp) + self.lam * cp.norm1(self.g)
+        self.problem = cp.Problem(cp.Minimize(cost), [Up @ self.g == self.up, Uf @ self.g == self.uf])
+        self.sizes = (Up.shape[0], Yp.shape[0])
+        self.options = {"solver": "CLARABEL", **(solver_options or {})}
+
+    def solve(self, b: np.ndarray, lam: float) -> np.ndarray:
+        nu, ny = self.sizes
+        self.up.value, self.yp.value, self.uf.value = b[:nu], b[nu:nu + ny], b[nu + ny:]
+        self.lam.value = float(lam)
+        try:
+            self.problem.solve(**self.options)
+        except self._cp.error.SolverError as exc:
+            raise SolverError(f"the l1 Hankel problem could not be solved ({exc}); try solver_options="
+                              "{'solver': 'CLARABEL'} or the 'projection' regularizer.") from None
+        if self.problem.status not in ("optimal", "optimal_inaccurate") or self.g.value is None:
+            raise SolverError(
+                f"the l1 Hankel problem ended with status {self.problem.status!r}; expected 'optimal'. Try another "
+                "solver via solver_options or the 'projection' regularizer."
+            )
+        return np.asarray(self.g.value, dtype=np.float64)

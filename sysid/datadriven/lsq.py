@@ -1,0 +1,185 @@
+"""Subspace predictive control's least-squares predictor fitted from Hankel matrices (:class:`LsqPredictor`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+
+from .._base import check_fitted
+from ..protocols import PredictionMaps
+from ..hankel import _one_blas_thread
+from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
+
+__all__ = ["LsqPredictor"]
+
+
+_DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
+
+
+# ------------------------------------------------------------------------------------------------ LSQ
+def _lsq_map(F: np.ndarray, n_b: int, strength: float) -> np.ndarray:
+    """``Θ = argmin ||F2 − Θ F1||_F² + strength ||Θ||_F²`` with ``F = [F1; F2]`` (stacked least squares)."""
+    F1, F2 = F[:n_b], F[n_b:]
+    A = np.vstack([F1.T, np.sqrt(strength) * np.eye(n_b)])
+    B = np.vstack([F2.T, np.zeros((n_b, F2.shape[0]))])
+    return sla.lstsq(A, B, lapack_driver="gelsd", check_finite=False)[0].T
+
+
+class LsqPredictor(_DirectPredictor):
+    """Least-squares multi-step predictor from a past window and future inputs (subspace predictive control).
+
+    Parameters
+    ----------
+    past_steps : int
+        ``Tini``, samples of past inputs and outputs the prediction conditions on (at least the system's lag).
+    horizon_steps : int
+        ``N``, samples predicted.
+    alphas : sequence of float, default ``10**-8 … 10**0`` (9 values)
+        Candidate ridge strengths, relative to the data (module docstring), each > 0.
+    n_states : int, optional
+        State dimension, used only for the excitation check (default: ``past_steps``).
+    n_splits : int, default 3
+        Folds of whole trials used to choose the strength (fewer when fewer trials have windows).
+    seed : int, default 0
+        Seeds the assignment of trials to folds.
+    centre_outputs : bool, default False
+        Build the predictor from the outputs minus their training mean (``output_offset_``), for recordings with a
+        baseline offset; predictions take and give recorded units (the offset is removed from ``y_past`` and added
+        to the prediction), and the data controller plans in recorded units.
+
+    Attributes
+    ----------
+    Kp_ : ndarray, shape (n_outputs·N, (n_inputs + n_outputs)·Tini)
+        Acts on ``[vec(u_past); vec(y_past)]``.
+    Kf_ : ndarray, shape (n_outputs·N, n_inputs·N)
+        Acts on ``vec(u_future)``; on noise-free data the block-Toeplitz matrix of Markov parameters.
+    alpha_ : float
+        Chosen candidate from ``alphas``; ``ridge_strength_ = alpha_ · data_scale_`` is the absolute strength.
+    ridge_strength_, data_scale_ : float
+    cv_table_ : pandas.DataFrame
+        ``candidate``, ``validation_error`` (mean squared error per predicted value on held-out folds, each output
+        scaled by its standard deviation, pooled over folds), ``fold_i`` (the same error on fold ``i`` alone).
+    past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
+    cv_scheme_ : str
+        ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).
+    cv_folds_ : tuple of int
+        Fold of each trial of the training session (-1: no windows, or folds not made of whole trials).
+    input_names_, output_names_ : tuple of str
+    sample_rate_hz_ : float
+    output_offset_ : ndarray, shape (n_outputs,)
+        The training mean removed with ``centre_outputs`` (zeros otherwise).
+
+    Notes
+    -----
+    ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows, computed from the
+    streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
+    ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is likewise
+    ``||F2,val − Θ F1,val||_F²``. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
+    beyond it do not change the first outputs, as ``Kf_`` is block lower triangular up to the fit error).
+
+    References
+    ----------
+    Favoreel W., De Moor B., Gevers M. (1999), "SPC: Subspace predictive control", Proc. 14th IFAC World Congress.
+    Hoerl A.E., Kennard R.W. (1970), Ridge regression, Technometrics 12:55.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stimsteer.sysid import Session
+    >>> rng = np.random.default_rng(0)
+    >>> u = rng.standard_normal((300, 1)); y = np.zeros((300, 1))
+    >>> for k in range(1, 300): y[k] = 0.5 * y[k - 1] + u[k - 1]
+    >>> lsq = LsqPredictor(past_steps=2, horizon_steps=3, alphas=[1e-12]).fit(Session(u=u, y=y, sample_rate_hz=1.0))
+    >>> (np.round(lsq.Kf_, 6) + 0.0).tolist()  # Markov parameters 0, 1, 0.5 on the block-Toeplitz pattern
+    [[0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.5, 1.0, 0.0]]
+    """
+
+    storage_kind = "lsq_predictor"
+    _strength_param = "alphas"
+    _fitted_arrays = ("Kp_", "Kf_")
+    _fitted_scalars = _DirectPredictor._fitted_scalars + ("alpha_", "ridge_strength_")
+
+    def __init__(self, *, past_steps, horizon_steps, alphas=_DEFAULT_ALPHAS, n_states=None, n_splits=3, seed=0,
+                 centre_outputs=False):
+        self.past_steps = past_steps
+        self.horizon_steps = horizon_steps
+        self.alphas = alphas
+        self.n_states = n_states
+        self.n_splits = n_splits
+        self.seed = seed
+        self.centre_outputs = centre_outputs
+
+    @_one_blas_thread
+    def fit(self, session) -> "LsqPredictor":
+        """Fit from a :class:`Session` or an opened session file.
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        InvalidParameterError
+            Bad settings (strengths <= 0, non-integer windows).
+        SessionError
+            Past window + horizon longer than every trial.
+        ExcitationError
+            The input Hankel matrix of depth ``past_steps + horizon_steps`` is rank-deficient beyond tolerance.
+
+        Warns
+        -----
+        ExcitationWarning
+            The input excites less than ``past_steps + horizon_steps + n_states``.
+        """
+        alphas = _check_strengths("alphas", self.alphas)
+        folds, weights = self._gather(session, alphas.size, keep_full=False)
+        m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
+        n_b = (m + p) * past + m * self.max_horizon_steps_
+
+        def score(train, val, w):
+            s = _data_scale(train.factor)
+            return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
+
+        alpha, table = self._select(folds, alphas, weights, score)
+        total = _merge(folds, folds[0].factor.shape[0])
+        scale = _data_scale(total.factor)
+        theta = _lsq_map(total.factor, n_b, alpha * scale)
+        self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
+        self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])
+        self.alpha_, self.data_scale_, self.ridge_strength_ = alpha, scale, alpha * scale
+        self.n_columns_ = total.n_columns
+        self.cv_table_ = table
+        return self
+
+    def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
+        """Predictions of a batch of windows, shapes (n_windows, n_samples, channels); one matrix product.
+
+        Each window's last ``past_steps_`` samples and at most ``max_horizon_steps_`` future inputs are used
+        (a shorter horizon uses the first blocks, with the later future inputs set to zero).
+
+        Raises
+        ------
+        NotFittedError, SessionError
+        """
+        check_fitted(self, "Kp_")
+        return self._linear_many(np.hstack([self.Kp_, self.Kf_]), u_past, y_past, u_future)
+
+    def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
+        """The affine map of :meth:`predict` over a past window of ``past_steps`` and ``horizon_steps`` inputs.
+
+        Samples of a longer past window before the last ``past_steps_`` get zero columns. See
+        :class:`stimsteer.sysid.protocols.PredictionMaps`.
+        """
+        check_fitted(self, "Kp_")
+        return self._maps_from(np.hstack([self.Kp_, self.Kf_]), past_steps, horizon_steps)
+
+    @classmethod
+    def from_state(cls, state) -> "LsqPredictor":
+        """Rebuild a fitted predictor from :meth:`to_state`'s dict."""
+        obj, fitted = cls._from_state_common(state)
+        obj.Kp_ = np.asarray(fitted["Kp_"], dtype=np.float64)
+        obj.Kf_ = np.asarray(fitted["Kf_"], dtype=np.float64)
+        obj.alpha_ = float(fitted["alpha_"])
+        obj.ridge_strength_ = float(fitted["ridge_strength_"])
+        return obj

@@ -1,0 +1,300 @@
+"""Controllability of a network: reachability matrices, Gramians, the Kalman rank test and per-site figures.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg as sla
+
+from ..exceptions import SessionError, UnstableModelError
+from .systems import _as_model, _check_horizon, _dynamics, _frozen
+
+__all__ = ["reachability_matrix", "controllability_gramian", "controllability", "site_controllability",
+           "ControllabilityReport", "SiteControllability"]
+
+
+# ---------------------------------------------------------------------------------------------------- Gramians
+def reachability_matrix(system, horizon_steps: int) -> np.ndarray:
+    """The map from an input sequence over ``T`` steps to the state it adds at step ``T``.
+
+    Parameters
+    ----------
+    system : StateSpaceModel or tuple of matrices
+    horizon_steps : int
+        ``T >= 1``.
+
+    Returns
+    -------
+    R : ndarray, shape (n_states, T * n_inputs)
+        ``R = [A^(T-1) B, ..., A B, B]`` so that ``x[T] = A^T x[0] + R vec(u)`` with ``vec(u) = u.reshape(-1)``
+        time-major (``u[0]`` first). ``R Rᵀ`` is the finite-horizon Gramian ``W_T``; for ``T = n_states``, ``R``
+        is the Kalman controllability matrix with its blocks in reverse order.
+    """
+    model = _as_model(system)
+    return _reach(model.A, model.B, _check_horizon(horizon_steps, allow_none=False))
+
+
+def _reach(A, B, T) -> np.ndarray:
+    n, m = B.shape
+    R = np.empty((n, T * m))
+    M = B.copy()
+    for k in range(T - 1, -1, -1):
+        R[:, k * m:(k + 1) * m] = M
+        M = A @ M
+    return R
+
+
+def _gramian(A, B, T) -> np.ndarray:
+    if T is None:
+        W = sla.solve_discrete_lyapunov(A, B @ B.T)
+    else:
+        W = np.zeros((A.shape[0], A.shape[0]))
+        M = B.copy()
+        for _ in range(T):
+            W += M @ M.T
+            M = A @ M
+    return 0.5 * (W + W.T)
+
+
+def _require_stable(A, purpose: str) -> None:
+    rho = float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
+    if rho >= 1.0:
+        raise UnstableModelError(
+            f"{purpose} needs a stable model, but the spectral radius is {rho:.4f} >= 1. Give a finite "
+            "horizon_steps, pass normalise=True (A / (1 + sigma_max(A))), or refit a stable model."
+        )
+
+
+def controllability_gramian(system, horizon_steps: int | None = None, *, normalise: bool = False) -> np.ndarray:
+    """Controllability Gramian over a finite horizon, or over the infinite horizon.
+
+    Parameters
+    ----------
+    system : StateSpaceModel or tuple of matrices
+    horizon_steps : int, optional
+        ``T``: sum the first ``T`` terms. Default (None): the infinite horizon.
+    normalise : bool, default False
+        Use ``A / (1 + sigma_max(A))`` instead of ``A`` (see :func:`normalised_network`).
+
+    Returns
+    -------
+    W : ndarray, shape (n_states, n_states)
+        Symmetric positive semi-definite, in (input units)² · (state units / input units)².
+
+    Raises
+    ------
+    UnstableModelError
+        For the infinite horizon when ``A`` (after the optional normalisation) has spectral radius >= 1.
+
+    Notes
+    -----
+    ``W_T = sum_{k<T} A^k B Bᵀ (A^k)ᵀ``; ``W_inf`` solves ``W = A W Aᵀ + B Bᵀ``
+    (:func:`scipy.linalg.solve_discrete_lyapunov`), and ``W_T → W_inf`` as ``T → ∞`` for a stable ``A``.
+    """
+    model = _as_model(system)
+    A, _ = _dynamics(model, normalise)
+    T = _check_horizon(horizon_steps, allow_none=True)
+    if T is None:
+        _require_stable(A, "the infinite-horizon Gramian")
+    return _gramian(A, np.array(model.B), T)
+
+
+@dataclass(frozen=True)
+class ControllabilityReport:
+    """Controllability of a linear model.
+
+    Attributes
+    ----------
+    n_states : int
+    rank : int
+        Numerical rank of the Kalman matrix ``[B, AB, ..., A^(n-1) B]``.
+    rank_tol : float
+        Singular values above this count towards ``rank``.
+    kalman_singular_values : ndarray, shape (n_states,)
+        Singular values of the Kalman matrix, descending (padded with zeros when it has fewer columns than rows).
+    is_controllable : bool
+        ``rank == n_states``.
+    horizon_steps : int or None
+        Horizon of the Gramian; None for the infinite horizon.
+    gramian : ndarray, shape (n_states, n_states)
+    gramian_eigenvalues : ndarray, shape (n_states,)
+        Descending.
+    condition_number : float
+        ``λ_max / λ_min`` of the Gramian; ``inf`` when it is singular to rounding.
+    average_controllability : float
+        ``trace(W)``: the mean output energy of the states driven by white unit inputs on every site.
+    normalisation : str
+        The scaling applied to ``A`` for the Gramian: ``"none"`` or ``"A / (1 + sigma_max(A)), sigma_max = ..."``.
+        The Kalman rank always uses ``A`` itself (scaling does not change it).
+    """
+
+    n_states: int
+    rank: int
+    rank_tol: float
+    kalman_singular_values: np.ndarray
+    is_controllable: bool
+    horizon_steps: int | None
+    gramian: np.ndarray
+    gramian_eigenvalues: np.ndarray
+    condition_number: float
+    average_controllability: float
+    normalisation: str
+
+
+def _kalman_rank(A, B, rank_tol):
+    n = A.shape[0]
+    K = _reach(A, B, max(n, 1))
+    sv = np.linalg.svd(K, compute_uv=False) if K.size else np.zeros(0)
+    sv = np.concatenate([sv, np.zeros(max(n - sv.size, 0))])[:n]
+    if rank_tol is None:
+        rank_tol = max(K.shape) * np.finfo(float).eps * (sv[0] if sv.size else 0.0)
+    rank_tol = float(rank_tol)
+    if not np.isfinite(rank_tol) or rank_tol < 0:
+        raise SessionError(f"rank_tol must be a finite number >= 0; got {rank_tol}.")
+    return int(np.sum(sv > rank_tol)), rank_tol, sv
+
+
+def _condition(eig) -> float:
+    if eig.size == 0:
+        return 1.0
+    top = eig[0]
+    if top <= 0 or eig[-1] <= eig.size * np.finfo(float).eps * top:
+        return float("inf")
+    return float(top / eig[-1])
+
+
+def controllability(system, *, horizon_steps: int | None = None, normalise: bool = False,
+                    rank_tol: float | None = None) -> ControllabilityReport:
+    """Kalman rank, Gramian, its spectrum and condition, and the average controllability of a model.
+
+    Parameters
+    ----------
+    system : StateSpaceModel or tuple of matrices
+    horizon_steps : int, optional
+        Gramian horizon; default the infinite horizon (needs a stable ``A``).
+    normalise : bool, default False
+        Scale ``A`` to ``A / (1 + sigma_max(A))`` for the Gramian (off by default for fitted models, whose ``A``
+        already has the dynamics of the data; common for structural networks, Gu et al. 2015).
+    rank_tol : float, optional
+        Absolute tolerance on the Kalman matrix's singular values. Default
+        ``max(n_states, n_states * n_inputs) * eps * sigma_max`` (the rule of :func:`numpy.linalg.matrix_rank`).
+
+    Returns
+    -------
+    ControllabilityReport
+
+    Raises
+    ------
+    UnstableModelError
+        For the infinite horizon on an unstable ``A``.
+
+    Notes
+    -----
+    The Kalman matrix holds powers of ``A`` up to ``n - 1`` and is badly scaled for many states (its columns shrink
+    or grow geometrically), so for large ``n`` its numerical rank can understate controllability; the Gramian's
+    smallest eigenvalue and condition number are then the more reliable figures.
+
+    References
+    ----------
+    Kalman, Ho, Narendra (1963); Pasqualetti, Zampieri, Bullo (2014), Sec. III (trace of the Gramian).
+    """
+    model = _as_model(system)
+    rank, tol, sv = _kalman_rank(np.array(model.A), np.array(model.B), rank_tol)
+    A, norm = _dynamics(model, normalise)
+    T = _check_horizon(horizon_steps, allow_none=True)
+    if T is None:
+        _require_stable(A, "the infinite-horizon Gramian")
+    W = _gramian(A, np.array(model.B), T)
+    eig = np.sort(np.linalg.eigvalsh(W))[::-1] if W.size else np.zeros(0)
+    eig = np.clip(eig, 0.0, None)
+    n = model.n_states
+    return ControllabilityReport(
+        n_states=n, rank=rank, rank_tol=tol, kalman_singular_values=_frozen(sv), is_controllable=rank == n,
+        horizon_steps=T, gramian=_frozen(W), gramian_eigenvalues=_frozen(eig), condition_number=_condition(eig),
+        average_controllability=float(np.trace(W)), normalisation=norm,
+    )
+
+
+# ---------------------------------------------------------------------------------------------------- per site
+@dataclass(frozen=True)
+class SiteControllability:
+    """Average and modal controllability of each stimulation site (each column of ``B``).
+
+    Attributes
+    ----------
+    site_names : tuple of str
+    average : ndarray, shape (n_sites,)
+        ``trace(W_j)`` with ``W_j`` the Gramian of site ``j`` alone (``b_j`` the ``j``-th column of ``B``).
+    modal : ndarray, shape (n_sites,)
+        ``phi_j = sum_i (1 - |lambda_i|²) |w_iᴴ b_j|²`` over the eigenvalues ``lambda_i`` of ``A`` with unit-norm
+        left eigenvectors ``w_i``.
+    horizon_steps : int or None
+        Horizon of the average controllability; None for the infinite horizon.
+    normalisation : str
+        Scaling applied to ``A`` (see :class:`ControllabilityReport`).
+    """
+
+    site_names: tuple
+    average: np.ndarray
+    modal: np.ndarray
+    horizon_steps: int | None
+    normalisation: str
+
+    def to_frame(self):
+        """A table (pandas DataFrame) with one row per site."""
+        import pandas as pd
+
+        return pd.DataFrame({"site": list(self.site_names), "average_controllability": self.average,
+                             "modal_controllability": self.modal})
+
+
+def site_controllability(system, *, horizon_steps: int | None = None,
+                         normalise: bool = False) -> SiteControllability:
+    """Average and modal controllability of every stimulation site.
+
+    For an explicit network matrix (``system=(A,)`` so that ``B = I``) the sites are the nodes, which gives the
+    per-node values of Gu et al. (2015).
+
+    Parameters
+    ----------
+    system : StateSpaceModel or tuple of matrices
+    horizon_steps : int, optional
+        Horizon of the average controllability; default infinite (needs a stable ``A``).
+    normalise : bool, default False
+        Use ``A / (1 + sigma_max(A))``; the result records which scaling was used.
+
+    Returns
+    -------
+    SiteControllability
+
+    Raises
+    ------
+    UnstableModelError
+        When ``A`` (after the optional normalisation) is not stable and the infinite horizon is asked for, or
+        always for modal controllability (its weights ``1 - |lambda|²`` assume decaying modes).
+
+    Notes
+    -----
+    Average controllability of site ``j``: ``trace(W_j) = b_jᵀ P b_j`` with ``P = sum_k (A^k)ᵀ A^k``
+    (``P`` solves ``P = Aᵀ P A + I``). For a symmetric ``A`` and ``b_j = e_j`` this is ``[(I - A²)⁻¹]_jj``.
+    Modal controllability generalises Pasqualetti et al. (2014) / Gu et al. (2015), where ``A`` is symmetric and
+    ``w_i = v_i``; then ``phi_j = 1 - sum_k A_jk²``. Both scale with ``||b_j||²``.
+    """
+    model = _as_model(system)
+    A, norm = _dynamics(model, normalise)
+    T = _check_horizon(horizon_steps, allow_none=True)
+    _require_stable(A, "modal controllability (and the infinite-horizon average controllability)")
+    B = np.array(model.B)
+    n = A.shape[0]
+    if T is None:
+        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
+    else:
+        P = _gramian(A.T, np.eye(n), T)
+    average = np.einsum("ij,ik,kj->j", B, P, B)
+    lam, W = sla.eig(A, left=True, right=False)
+    W = W / np.linalg.norm(W, axis=0, keepdims=True)
+    modal = ((1.0 - np.abs(lam) ** 2)[:, None] * np.abs(W.conj().T @ B) ** 2).sum(axis=0)
+    return SiteControllability(site_names=tuple(model.input_names), average=_frozen(average), modal=_frozen(modal),
+                               horizon_steps=T, normalisation=norm)

@@ -1,0 +1,158 @@
+"""Networks as linear models: building one from matrices, reading any system argument, normalising ``A``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..exceptions import SessionError
+from ..statespace import StateSpaceModel
+
+__all__ = ["network_model", "normalised_network", "NORMALISATION_NONE", "NORMALISATION_SIGMA"]
+
+
+NORMALISATION_NONE = "none"
+NORMALISATION_SIGMA = "A / (1 + sigma_max(A))"
+
+
+def _frozen(a, dtype=np.float64) -> np.ndarray:
+    a = np.array(a, dtype=dtype, copy=True)
+    a.setflags(write=False)
+    return a
+
+
+# ---------------------------------------------------------------------------------------------------- systems
+def network_model(A, B=None, C=None, D=None, *, sample_rate_hz: float = 1.0) -> StateSpaceModel:
+    """A noise-free :class:`StateSpaceModel` from explicit network matrices.
+
+    Parameters
+    ----------
+    A : array_like, shape (n_nodes, n_nodes)
+        Network (coupling) matrix, one step of the dynamics.
+    B : array_like, shape (n_nodes, n_sites), optional
+        Input matrix; default the identity (every node is a stimulation site, named ``node0, node1, ...``).
+    C : array_like, shape (n_channels, n_nodes), optional
+        Read-out matrix; default the identity (every node is recorded).
+    D : array_like, shape (n_channels, n_sites), optional
+        Feed-through; default zero.
+    sample_rate_hz : float, default 1.0
+
+    Returns
+    -------
+    StateSpaceModel
+
+    Raises
+    ------
+    SessionError
+        When a matrix has the wrong shape or holds NaN / inf.
+    """
+    A = np.atleast_2d(np.asarray(A, dtype=np.float64))
+    if A.ndim != 2 or A.shape[0] != A.shape[1]:
+        raise SessionError(f"the network matrix A must be square (n_nodes, n_nodes); got shape {A.shape}.")
+    n = A.shape[0]
+    nodes = tuple(f"node{i}" for i in range(n))
+    B = np.eye(n) if B is None else B
+    C = np.eye(n) if C is None else C
+    B_arr = np.asarray(B, dtype=np.float64)
+    C_arr = np.asarray(C, dtype=np.float64)
+    if B_arr.ndim == 1:
+        B_arr = B_arr[:, None]
+    if B_arr.ndim != 2 or B_arr.shape[0] != n:
+        raise SessionError(f"B must have shape ({n}, n_sites) for a {n}-node network; got {B_arr.shape}.")
+    if C_arr.ndim == 1:
+        C_arr = C_arr[None, :]
+    if C_arr.ndim != 2 or C_arr.shape[1] != n:
+        raise SessionError(f"C must have shape (n_channels, {n}) for a {n}-node network; got {C_arr.shape}.")
+    in_names = nodes if B_arr.shape == (n, n) and np.array_equal(B_arr, np.eye(n)) else None
+    out_names = nodes if C_arr.shape == (n, n) and np.array_equal(C_arr, np.eye(n)) else None
+    return StateSpaceModel(A=A, B=B_arr, C=C_arr, D=D, sample_rate_hz=sample_rate_hz,
+                           input_names=in_names, output_names=out_names)
+
+
+def _as_model(system) -> StateSpaceModel:
+    if isinstance(system, StateSpaceModel):
+        return system
+    if isinstance(system, (tuple, list)) and 1 <= len(system) <= 4:
+        return network_model(*system)
+    raise SessionError(
+        f"system must be a StateSpaceModel or a tuple (A,), (A, B), (A, B, C) or (A, B, C, D); got "
+        f"{type(system).__name__}. Build one with network_model(A, B, C)."
+    )
+
+
+def normalised_network(A) -> tuple[np.ndarray, float]:
+    """The network matrix scaled as ``A / (1 + sigma_max(A))`` and the ``sigma_max`` used.
+
+    Notes
+    -----
+    Dividing by one plus the largest singular value makes every singular value, hence the spectral radius, smaller
+    than one, so infinite-horizon Gramians exist (Gu et al. 2015, Methods; the common choice in network neuroscience).
+
+    Examples
+    --------
+    >>> An, s = normalised_network(np.diag([3.0, 1.0]))
+    >>> float(An[0, 0]), s
+    (0.75, 3.0)
+    """
+    A = np.atleast_2d(np.asarray(A, dtype=np.float64))
+    smax = float(np.linalg.norm(A, 2)) if A.size else 0.0
+    return A / (1.0 + smax), smax
+
+
+def _dynamics(model: StateSpaceModel, normalise: bool) -> tuple[np.ndarray, str]:
+    if not normalise:
+        return np.array(model.A), NORMALISATION_NONE
+    An, smax = normalised_network(model.A)
+    return An, f"{NORMALISATION_SIGMA}, sigma_max = {smax:.6g}"
+
+
+def _check_horizon(horizon_steps, allow_none: bool) -> int | None:
+    if horizon_steps is None:
+        if allow_none:
+            return None
+        raise SessionError("horizon_steps is required (a whole number of samples >= 1).")
+    if isinstance(horizon_steps, bool) or int(horizon_steps) != horizon_steps or int(horizon_steps) < 1:
+        raise SessionError(
+            f"horizon_steps must be a whole number of samples >= 1; got {horizon_steps!r}. Give the number of "
+            "model steps (seconds x sample_rate_hz)."
+        )
+    return int(horizon_steps)
+
+
+def _output_offset(model: StateSpaceModel) -> np.ndarray:
+    off = model.info.get("output_offset")
+    if off is None:
+        return np.zeros(model.n_outputs)
+    off = np.asarray(off, dtype=np.float64).reshape(-1)
+    if off.shape != (model.n_outputs,) or not np.all(np.isfinite(off)):
+        return np.zeros(model.n_outputs)
+    return off
+
+
+def _site_indices(model: StateSpaceModel, sites) -> tuple[int, ...]:
+    if sites is None:
+        return tuple(range(model.n_inputs))
+    names = list(model.input_names)
+    out = []
+    for s in ([sites] if isinstance(sites, (str, int, np.integer)) else list(sites)):
+        if isinstance(s, str):
+            if s not in names:
+                raise SessionError(f"unknown stimulation site {s!r}; the model's sites are {names}.")
+            out.append(names.index(s))
+        elif isinstance(s, (int, np.integer)) and not isinstance(s, bool) and 0 <= int(s) < model.n_inputs:
+            out.append(int(s))
+        else:
+            raise SessionError(
+                f"sites must be names or indices 0..{model.n_inputs - 1} of the model's sites {names}; got {s!r}."
+            )
+    if not out or len(set(out)) != len(out):
+        raise SessionError(f"sites must name at least one site, each once; got {list(sites)!r}.")
+    return tuple(out)
+
+
+def _state(model, name, x) -> np.ndarray:
+    n = model.n_states
+    x = np.zeros(n) if x is None else np.asarray(x, dtype=np.float64).reshape(-1)
+    if x.shape != (n,) or not np.all(np.isfinite(x)):
+        raise SessionError(f"{name} must be a finite vector of the model's {n} states; got shape {x.shape}.")
+    return x

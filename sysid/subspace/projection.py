@@ -1,0 +1,229 @@
+"""The linear algebra of subspace identification on Gram blocks: conditional covariances, the weighted projection,
+and the estimates of ``A, C``, ``B, D``, the noise covariances and the innovation form for one order.
+"""
+
+from __future__ import annotations
+
+import functools
+import warnings
+
+import numpy as np
+
+from ..exceptions import ExcitationError, StimsteerWarning
+from ..statespace import kalman_gain, markov_toeplitz
+from .gram import _Layout
+
+
+# Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
+# several conditional covariances exactly singular; their rounding-level eigenvalues (~1e-15) must not be inverted.
+_RTOL = 1e-10
+# Below this (relative to the unit output power of the scaled data) the residual covariances count as zero.
+_NOISE_FREE = 1e-12
+
+
+# ----------------------------------------------------------------------------------------------------- linear algebra
+def _psd_parts(M: np.ndarray):
+    """Eigenvectors and eigenvalues of a symmetric PSD matrix above the relative cut-off ``_RTOL``."""
+    lam, V = np.linalg.eigh(0.5 * (M + M.T))
+    keep = lam > _RTOL * max(float(lam[-1]), np.finfo(float).tiny)
+    return V[:, keep], lam[keep]
+
+
+def _cond_text(lam: np.ndarray) -> str:
+    """Condition number of a symmetric PSD matrix from its ascending eigenvalues, as text ("inf" if singular)."""
+    return f"{lam[-1] / lam[0]:.2e}" if lam[0] > 0 and lam[-1] / lam[0] < 1e300 else "inf"
+
+
+def _pinv_psd(M: np.ndarray) -> np.ndarray:
+    V, lam = _psd_parts(M)
+    return (V / lam) @ V.T
+
+
+def _conditional(S: np.ndarray, a, b, given) -> np.ndarray:
+    """``S_ab − S_a,g S_gg⁺ S_g,b``: the covariance of the parts of ``a`` and ``b`` not explained by ``given``."""
+    Sgg_inv = _pinv_psd(S[np.ix_(given, given)])
+    return S[np.ix_(a, b)] - S[np.ix_(a, given)] @ Sgg_inv @ S[np.ix_(given, b)]
+
+
+class _Projection:
+    """Oblique projection, weighting and SVD of one (scaled) Hankel covariance; shared by every candidate order.
+
+    Notes
+    -----
+    With ``Σ_{·|U}`` the covariances conditioned on the future inputs ``Uf`` and ``Wp = [Up; Yp]`` the past, the
+    oblique projection of ``Yf`` along ``Uf`` onto ``Wp`` is ``O = Θ Wp`` with ``Θ = Σ_{YfWp|U} Σ_{WpWp|U}⁺``
+    (Van Overschee & De Moor 1996, Theorem 2). The weighted matrix whose SVD gives the observability matrix is
+
+    - N4SID: ``O`` itself (W1 = I, W2 = I), i.e. ``Θ Σ_{WpWp}^{1/2}``;
+    - MOESP: ``O Π_{Uf⊥}`` (W2 = Π_{Uf⊥}), i.e. ``Σ_{YfWp|U} Σ_{WpWp|U}^{−1/2}`` (the ``L32`` of the LQ);
+    - CVA:   ``Σ_{YfYf|U}^{−1/2} O Π_{Uf⊥}``; its singular values are canonical correlations.
+
+    ``Γ = W1⁻¹ U₁ S₁^{1/2}`` for the leading ``n`` singular triplets.
+    """
+
+    def __init__(self, S: np.ndarray, layout: _Layout, weighting: str):
+        L = layout
+        Sc_pp = _conditional(S, L.P, L.P, L.Uf)
+        Sc_yp = _conditional(S, L.Yf, L.P, L.Uf)
+        V, lam = _psd_parts(Sc_pp)
+        self.theta = Sc_yp @ ((V / lam) @ V.T)
+        w_inv = None
+        if weighting == "n4sid":
+            E, xi = _psd_parts(S[np.ix_(L.P, L.P)])
+            mat = self.theta @ (E * np.sqrt(xi))
+        else:
+            mat = Sc_yp @ (V / np.sqrt(lam))
+            if weighting == "cva":
+                H, om = _psd_parts(_conditional(S, L.Yf, L.Yf, L.Uf))
+                mat = ((H / np.sqrt(om)) @ H.T) @ mat
+                w_inv = (H * np.sqrt(om)) @ H.T
+        U, sv, _ = np.linalg.svd(mat, full_matrices=False)
+        k = len(L.Yf)
+        self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
+        self.U = U
+        self.w_inv = w_inv
+        self.S = S
+        self.layout = L
+
+    @functools.cached_property
+    def given_past(self):
+        """Covariances of ``Uf`` and of ``Yf`` with ``Uf`` conditioned on the past ``Wp`` (for ``B, D``)."""
+        S, L = self.S, self.layout
+        return _conditional(S, L.Uf, L.Uf, L.P), _conditional(S, L.Yf, L.Uf, L.P)
+
+    @functools.cached_property
+    def theta_next(self) -> np.ndarray:
+        """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
+        S, L = self.S, self.layout
+        return _conditional(S, L.Yf1, L.P1, L.Uf1) @ _pinv_psd(_conditional(S, L.P1, L.P1, L.Uf1))
+
+    def gamma(self, n: int) -> np.ndarray:
+        """Extended observability matrix for order ``n``, shape (p f, n)."""
+        G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
+        return G if self.w_inv is None else self.w_inv @ G
+
+
+# ----------------------------------------------------------------------------------------------------- estimation
+def _a_c(gamma: np.ndarray, p: int):
+    """``C`` = first block row of Γ; ``A`` from the shift invariance ``Γ_up A = Γ_down`` by least squares."""
+    C = gamma[:p].copy()
+    A = np.linalg.lstsq(gamma[:-p], gamma[p:], rcond=None)[0]
+    return A, C
+
+
+def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
+    """Basis ``H_k`` of the block-Toeplitz matrix of Markov parameters, linear in ``θ = [vec(B); vec(D)]``.
+
+    Shape (n_theta, p f, m f); ``vec`` is column-major, so ``B = θ[:n m].reshape(n, m, order="F")``.
+    """
+    n, m, p, f = A.shape[0], layout.m, layout.p, layout.f
+    CA = [C]
+    for _ in range(f - 2):
+        CA.append(CA[-1] @ A)
+    n_theta = n * m + (p * m if feedthrough else 0)
+    Hs = np.zeros((n_theta, p * f, m * f))
+    for l in range(m):
+        for j in range(n):
+            h = np.zeros((f, p, m))  # Markov parameters of B = e_j e_lᵀ (D = 0): h[r] = C A^(r-1) B
+            for r in range(1, f):
+                h[r][:, l] = CA[r - 1][:, j]
+            Hs[l * n + j] = markov_toeplitz(h)
+    if feedthrough:
+        for l in range(m):
+            for a in range(p):
+                h = np.zeros((f, p, m))  # D = e_a e_lᵀ (B = 0): only h[0]
+                h[0][a, l] = 1.0
+                Hs[n * m + l * p + a] = markov_toeplitz(h)
+    return Hs
+
+
+def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
+    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
+
+    Notes
+    -----
+    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
+    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
+    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
+    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
+    """
+    L, S = proj.layout, proj.S
+    n, m, p = A.shape[0], L.m, L.p
+    Hs = _toeplitz_basis(A, C, L, feedthrough)
+    Q = np.linalg.qr(gamma)[0]
+    P1 = Q @ Q.T
+    S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
+    Sc_uu, Sc_yu = proj.given_past
+    target = S_yu + P1 @ (Sc_yu - S_yu)
+    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
+    flat = Hs.reshape(Hs.shape[0], -1)
+    M = flat @ image.reshape(Hs.shape[0], -1).T
+    M = 0.5 * (M + M.T)
+    rhs = flat @ target.reshape(-1)
+    lam = np.linalg.eigvalsh(M)
+    if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
+        raise ExcitationError(
+            "the inputs do not excite the model enough to estimate B"
+            + (" and D" if feedthrough else "")
+            + f" (normal equations of condition {_cond_text(lam)}). "
+            "Use a richer stimulation schedule (`stimsteer schedule`), or a lower order."
+        )
+    theta = np.linalg.solve(M, rhs)
+    B = theta[:n * m].reshape(n, m, order="F")
+    D = theta[n * m:].reshape(p, m, order="F") if feedthrough else np.zeros((p, m))
+    return B, D
+
+
+def _state_maps(proj: _Projection, gamma):
+    """Linear maps from a Hankel column ``z`` to the estimated states at its first and second future sample.
+
+    ``x̂_t = Γ⁺ Θ Wp`` and ``x̂_{t+1} = Γ₋⁺ Θ₊ Wp₊`` (past one step longer, future one shorter, Γ₋ = Γ without its
+    last block row): Van Overschee & De Moor 1996, sec. 4.3.
+    """
+    L = proj.layout
+    n = gamma.shape[1]
+    X0 = np.zeros((n, L.nz))
+    X0[:, L.P] = np.linalg.pinv(gamma) @ proj.theta
+    X1 = np.zeros((n, L.nz))
+    X1[:, L.P1] = np.linalg.pinv(gamma[:-L.p]) @ proj.theta_next
+    return X0, X1
+
+
+def _noise(proj: _Projection, gamma, A, B, C, D):
+    """Process, measurement and cross covariances of the state-equation and output-equation residuals."""
+    L, S = proj.layout, proj.S
+    X0, X1 = _state_maps(proj, gamma)
+    Eu, Ey = L.select(L.u0), L.select(L.y0)
+    Wmap = X1 - A @ X0 - B @ Eu
+    Vmap = Ey - C @ X0 - D @ Eu
+    Q, R, Sx = Wmap @ S @ Wmap.T, Vmap @ S @ Vmap.T, Wmap @ S @ Vmap.T
+    return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
+
+
+def _innovation_form(A, C, Q, R, Sx):
+    """Steady-state Kalman gain and innovation covariance; ``K = 0`` for (numerically) noise-free data."""
+    joint = np.block([[Q, Sx], [Sx.T, R]])
+    if np.max(np.abs(np.linalg.eigvalsh(joint))) <= _NOISE_FREE:
+        return np.zeros((A.shape[0], C.shape[0])), R, "noise-free residuals: K = 0"
+    Rr = R + _NOISE_FREE * np.eye(R.shape[0])
+    try:
+        K, P = kalman_gain(A, C, Q, Rr, Sx)
+    except (np.linalg.LinAlgError, ValueError) as exc:
+        warnings.warn(
+            f"the steady-state Kalman gain could not be computed ({exc}); the model keeps K = 0 (output-error "
+            "form), so k-step predictions ignore the measured past beyond the initial state.",
+            StimsteerWarning, stacklevel=5,
+        )
+        return np.zeros((A.shape[0], C.shape[0])), R, "Riccati equation failed: K = 0"
+    Re = C @ P @ C.T + R
+    return K, 0.5 * (Re + Re.T), "steady-state Kalman gain (DARE)"
+
+
+def _fit_order(proj: _Projection, n: int, feedthrough: bool):
+    """All scaled-coordinate matrices of the order-``n`` model of one projection."""
+    gamma = proj.gamma(n)
+    A, C = _a_c(gamma, proj.layout.p)
+    B, D = _b_d(proj, gamma, A, C, feedthrough)
+    Q, R, Sx = _noise(proj, gamma, A, B, C, D)
+    K, Re, how = _innovation_form(A, C, Q, R, Sx)
+    return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
