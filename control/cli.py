@@ -16,7 +16,7 @@ import sys
 
 from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
-from .commands import bench as _bench, demo as _demo, plan as _plan, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
+from .commands import bench as _bench, demo as _demo, plan as _plan, predict as _predict, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
 
 __all__ = ["main", "build_parser", "CAUTION"]
 
@@ -34,45 +34,9 @@ def _run_demo(args):
     return _demo.run(args, run_step=main)
 
 
-# ---------------------------------------------------------------------------------------------------- predict
-def _add_predict(sub):
-    p = sub.add_parser("predict", help="predict the response to a stimulation pattern with a fitted model")
-    p.add_argument("model", help="model file written by `stimsteer fit`")
-    p.add_argument("--pattern", required=True,
-                   help="CSV of inputs: 'time [s]' and one 'in:<name> [<unit>]' column per model input")
-    p.add_argument("--out", required=True, help="output folder for prediction.csv and prediction.png")
-    p.add_argument("--from-trial", type=_plan.trial_ref, metavar="SESSION:INDEX",
-                   help="start from the end of this recorded trial (default: from rest)")
-    p.add_argument("--force", action="store_true", help="replace an existing output folder")
-    return p
-
-
-def _run_predict(args):
-    from ..sysid.routes import load_pattern, open_session_source, predict_pattern, trial_end_window
-    from .commands.predict import write_prediction
-    from ..sysid.storage import load_predictor
-
-    predictor, provenance = load_predictor(args.model)
-    pattern = load_pattern(args.pattern)
-    past, start = None, "rest"
-    if args.from_trial is not None:
-        path, index = args.from_trial
-        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
-            past = trial_end_window(session, index, predictor, provenance)
-        start = f"the end of trial {index} of {path}"
-    prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
-    files = write_prediction(prediction, args.out, force=args.force)
-    print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
-    print(f"wrote {files['csv']} and {files['png']}")
-    print(CAUTION)
-    return 0
-
-
-# ---------------------------------------------------------------------------------------------------- plan
-# ---------------------------------------------------------------------------------------------------- bench
 _SUBCOMMANDS = {
     "fit": (_fit.add_parser, _fit.run),
-    "predict": (_add_predict, _run_predict),
+    "predict": (_predict.add_parser, _predict.run),
     "network": (_network.add_parser, _network.run),
     "schedule": (_schedule.add_parser, _schedule.run),
     "plan": (_plan.add_parser, _plan.run),

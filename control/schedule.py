@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..sysid import (ExcitationCheck, ExcitationError, InfeasiblePlanError, InvalidParameterError, LimitsError,
-                     verify_excitation)
+                     TrialLayout, verify_excitation)
 from ._schedule_kinds import SCHEDULE_KINDS, design_kind, positive, whole
 from .limits import StimLimits
 from .schedule_files import load_schedule, save_schedule
@@ -92,7 +92,7 @@ def _energy_gain(u, base, budget, window) -> float:
 
 
 @dataclass(frozen=True)
-class Schedule:
+class Schedule(TrialLayout):
     """A designed stimulation schedule: inputs on the sample grid, trials and rests, bounds and excitation.
 
     Attributes
@@ -151,19 +151,6 @@ class Schedule:
     @property
     def n_inputs(self) -> int:
         return int(self.u.shape[1])
-
-    @property
-    def n_trials(self) -> int:
-        return int(self.trials.shape[0])
-
-    @property
-    def trial_lengths(self) -> np.ndarray:
-        """Samples per trial, shape (n_trials,)."""
-        return self.trials[:, 1] - self.trials[:, 0]
-
-    @property
-    def duration_s(self) -> float:
-        return self.n_samples / self.sample_rate_hz
 
     def to_text(self) -> str:
         """A few lines for the terminal."""

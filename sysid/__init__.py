@@ -3,7 +3,7 @@
 from .exceptions import StimsteerError, SessionError, InvalidParameterError, FileFormatError, NotFittedError, UnstableModelError, ExcitationError, LimitsError, InfeasiblePlanError, SolverError, StimsteerWarning, ExcitationWarning, ConditioningWarning
 from ._base import BaseEstimator, BasePredictor, check_fitted
 from .protocols import Predictor, LinearPredictor, PredictionMaps, StateSpaceForm, DataBlocks, DataBlocksForm, Plant
-from .session import Session, TrialWindow, TrialSplit
+from .session import Session, TrialLayout, TrialWindow, TrialSplit
 from .io import load_session, save_session, open_session_file, SessionFile
 from .prep import detrend, filter_session, resample_session, SessionScaler, blank_artifacts
 from .quality import describe_session, SessionSummary
@@ -17,6 +17,7 @@ from .metrics import r2, nrmse, vaf, Scores, kstep_scores, freerun_scores, ljung
 from .network import impulse_responses, controlled_response, controllability, controllability_gramian, site_controllability, minimum_energy_transition, pattern_transition, rank_sites
 from .signals import ExcitationCheck, verify_excitation, max_length_sequence, multisine, crest_factor
 from .storage import save_predictor, load_predictor
+from .registry import MethodEntry
 from .routes import fit_route, make_estimator, FitResult, METHODS
 from .trial_sources import open_session_source
 from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
@@ -46,6 +47,7 @@ __all__ = [
     "LimitsError",
     "LsqPredictor",
     "METHODS",
+    "MethodEntry",
     "Pattern",
     "PatternPrediction",
     "load_pattern",
@@ -67,6 +69,7 @@ __all__ = [
     "StimsteerError",
     "StimsteerWarning",
     "SubspaceId",
+    "TrialLayout",
     "TrialSplit",
     "TrialWindow",
     "UnstableModelError",

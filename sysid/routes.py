@@ -3,7 +3,8 @@
 :func:`fit_route` is what ``stimsteer fit`` runs. Everything the estimator selects (ridge strength, order,
 regularisation) is chosen inside the training trials; the held-out trials are touched only once, for the scores.
 :data:`METHODS` maps ``(route, method)`` to a factory ``settings -> unfitted estimator``; registering a method is
-one line (``METHODS[("direct", "lsq")] = _Lazy("stimsteer.sysid.datadriven.lsq:LsqPredictor")``).
+one line (``METHODS[("direct", "mine")] = MethodEntry("my_package.my_module:MyPredictor")``, see
+:mod:`stimsteer.sysid.registry`).
 
 Predicting the response to a new stimulation pattern lives in :mod:`stimsteer.sysid.patterns` (re-exported here);
 writing it to files in ``stimsteer.control.commands.predict``.
@@ -11,8 +12,6 @@ writing it to files in ``stimsteer.control.commands.predict``.
 
 from __future__ import annotations
 
-import importlib
-import inspect
 import warnings
 from dataclasses import dataclass
 
@@ -20,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .exceptions import InvalidParameterError, StimsteerWarning
+from .registry import METHODS, MethodEntry
 from .metrics import Scores, freerun_scores, kstep_scores
 from .quality import OFFSET_WARN_FRACTION, output_moments
 from .session import TrialSplit
@@ -28,7 +28,7 @@ from .patterns import Pattern, PatternPrediction, load_pattern, rest_window, tri
 from ._records import jsonable, session_record, window_stride
 from .trial_sources import _split, _subsets
 
-__all__ = ["METHODS", "DEFAULT_HORIZON_STEPS", "FitResult", "fit_route", "make_estimator", "open_session_source",
+__all__ = ["METHODS", "MethodEntry", "DEFAULT_HORIZON_STEPS", "FitResult", "fit_route", "make_estimator", "open_session_source",
            "Pattern", "PatternPrediction", "load_pattern", "rest_window", "trial_end_window", "predict_pattern"]
 
 
@@ -38,73 +38,6 @@ DEFAULT_HORIZON_STEPS = 10
 _MAX_WINDOWS = 5000  # k-step windows scored per held-out session (evenly strided beyond that)
 
 
-class _Lazy:
-    """Factory for ``"module:Class"``: imports on first use and builds ``Class(**settings)``.
-
-    ``aliases`` map route-level setting names to the class's own, e.g. ``{"past_steps": ("output_lags",
-    "input_lags")}`` for ridge ARX; an explicit class setting wins over an alias. ``streaming`` says the class's
-    ``fit`` takes a lazily opened session file (also read from a ``supports_streaming`` class attribute).
-    """
-
-    def __init__(self, target: str, aliases: dict | None = None, *, streaming: bool = False):
-        self.target = target
-        self.aliases = dict(aliases or {})
-        self._streaming = bool(streaming)
-
-    @property
-    def streaming(self) -> bool:
-        """Whether the estimator's ``fit`` reads a lazily opened session file chunk by chunk."""
-        return self._streaming or bool(getattr(self.cls(), "supports_streaming", False))
-
-    def cls(self):
-        module, _, name = self.target.partition(":")
-        return getattr(importlib.import_module(module), name)
-
-    def parameters(self) -> tuple:
-        """Keyword names the estimator's constructor accepts, plus the aliases."""
-        sig = inspect.signature(self.cls().__init__)
-        own = [p for p in sig.parameters if p != "self"]
-        return tuple(own) + tuple(a for a in self.aliases if a not in own)
-
-    def __call__(self, settings: dict | None):
-        cls = self.cls()
-        given = dict(settings or {})
-        for alias, names in self.aliases.items():
-            if alias in given:
-                value = given.pop(alias)
-                if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-                    raise InvalidParameterError(f"{alias} must be a whole number of samples >= 1 (on the command line: "
-                                                f"--{alias.replace('_', '-')} N); got {value!r}.")
-                for n in names:
-                    given.setdefault(n, value)
-        allowed = set(self.parameters())
-        unknown = sorted(set(given) - allowed)
-        if unknown:
-            raise InvalidParameterError(
-                f"unknown setting(s) {unknown} for {cls.__name__}; allowed: {sorted(allowed)}. Check the spelling."
-            )
-        required = [name for name, par in inspect.signature(cls.__init__).parameters.items()
-                    if name != "self" and par.default is inspect.Parameter.empty
-                    and par.kind in (par.KEYWORD_ONLY, par.POSITIONAL_OR_KEYWORD)]
-        missing = [name for name in required if name not in given]
-        if missing:
-            options = " and ".join(f"--{name.replace('_', '-')} N" for name in missing)
-            raise InvalidParameterError(
-                f"{cls.__name__} needs {', '.join(missing)} (on the command line: {options}); give "
-                f"{'them' if len(missing) > 1 else 'it'} in samples."
-            )
-        return cls(**given)
-
-    def __repr__(self):
-        return f"_Lazy({self.target!r})"
-
-
-METHODS = {
-    ("indirect", "arx"): _Lazy("stimsteer.sysid.arx:RidgeArx", {"past_steps": ("output_lags", "input_lags")}),
-    ("indirect", "subspace"): _Lazy("stimsteer.sysid.subspace.estimator:SubspaceId", streaming=True),
-    ("direct", "lsq"): _Lazy("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
-    ("direct", "hankel"): _Lazy("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
-}
 
 
 # ------------------------------------------------------------------------------------------------ fit_route
@@ -144,7 +77,7 @@ def _selection_table(predictor) -> pd.DataFrame:
     return pd.DataFrame()
 
 
-def _factory(route: str, method: str) -> _Lazy:
+def _factory(route: str, method: str) -> MethodEntry:
     key = (str(route), str(method))
     if key not in METHODS:
         known = ", ".join(f"--route {r} --method {m}" for r, m in sorted(METHODS))
@@ -152,7 +85,8 @@ def _factory(route: str, method: str) -> _Lazy:
     return METHODS[key]
 
 
-def make_estimator(route: str, method: str, settings: dict | None = None, *, horizon_steps: int | None = None):
+def make_estimator(route: str, method: str, settings: dict | None = None, *, horizon_steps: int | None = None,
+                   past_steps: int | None = None):
     """An unfitted estimator of a registered method, built from its settings.
 
     Parameters
@@ -160,9 +94,11 @@ def make_estimator(route: str, method: str, settings: dict | None = None, *, hor
     route, method : str
         A key of :data:`METHODS`.
     settings : dict, optional
-        Constructor settings; ``past_steps`` is understood by every method.
-    horizon_steps : int, optional
-        Passed to estimators that take ``horizon_steps`` unless ``settings`` already gives it.
+        Constructor settings, given by the user: every one must be a setting of the method (or an alias, e.g.
+        ``past_steps`` for ridge ARX's lags).
+    horizon_steps, past_steps : int, optional
+        Defaults of a caller (the benchmark, ``fit``'s scoring horizon), passed only to a method that takes them
+        and only where ``settings`` does not give them.
 
     Raises
     ------
@@ -171,8 +107,9 @@ def make_estimator(route: str, method: str, settings: dict | None = None, *, hor
     """
     factory = _factory(route, method)
     settings = dict(settings or {})
-    if horizon_steps is not None and "horizon_steps" in factory.parameters():
-        settings.setdefault("horizon_steps", int(horizon_steps))
+    for name, value in (("horizon_steps", horizon_steps), ("past_steps", past_steps)):
+        if value is not None and name in factory.parameters():
+            settings.setdefault(name, int(value))
     return factory(settings)
 def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores:
     past = int(getattr(predictor, "past_steps_"))

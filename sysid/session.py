@@ -97,9 +97,9 @@ def check_read_buffers(out, n: int, m: int, p: int) -> tuple[np.ndarray, np.ndar
     return u, y
 
 
-class _TrialLayout:
+class TrialLayout:
     """Trial counts and durations of anything with ``trials``, ``n_samples`` and ``sample_rate_hz``
-    (a :class:`Session` and a lazily opened session file alike)."""
+    (a :class:`Session`, a lazily opened session file and a stimulation schedule alike)."""
 
     @property
     def n_trials(self) -> int:
@@ -116,7 +116,7 @@ class _TrialLayout:
 
 
 @dataclass(frozen=True, eq=False)
-class Session(_TrialLayout):
+class Session(TrialLayout):
     """A recorded stimulation session.
 
     Parameters

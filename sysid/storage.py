@@ -28,6 +28,7 @@ import numpy as np
 from ._files import atomic_path
 from ._records import versions
 from .exceptions import FileFormatError, StimsteerError
+from .registry import METHODS
 from .statespace import StateSpaceModel
 
 __all__ = ["save_predictor", "load_predictor", "model_to_state", "model_from_state", "LAYOUT_VERSION"]
@@ -139,14 +140,30 @@ def _text(v) -> str:
 
 
 # ------------------------------------------------------------------------------------------------ registry
+def _registered() -> dict:
+    """storage kind -> class of every method in the registry that can be stored (to_state/from_state)."""
+    found = {}
+    for entry in METHODS.values():
+        try:
+            cls = entry.cls()
+        except (ImportError, AttributeError):
+            continue
+        kind = getattr(cls, "storage_kind", None)
+        if kind and hasattr(cls, "to_state") and hasattr(cls, "from_state"):
+            found.setdefault(kind, cls)
+    return found
+
+
 def _kind_of(predictor) -> str:
     if isinstance(predictor, StateSpaceModel):
         return "state_space"
     kind = getattr(type(predictor), "storage_kind", None)
-    if kind not in _KINDS or not hasattr(predictor, "to_state"):
+    known = kind in _KINDS or _registered().get(kind) is type(predictor)
+    if not known or not hasattr(predictor, "to_state"):
         raise StimsteerError(
             f"{type(predictor).__name__} is not a storable predictor (storage_kind={kind!r}); storable kinds: "
-            f"{sorted(_KINDS)}. Register it in stimsteer.sysid.storage._KINDS and give it to_state/from_state."
+            f"{sorted(set(_KINDS) | set(_registered()))}. Register its method in stimsteer.sysid.registry.METHODS "
+            "and give the class a storage_kind, to_state() and from_state()."
         )
     return kind
 
@@ -154,9 +171,13 @@ def _kind_of(predictor) -> str:
 def _class_for(kind: str, path):
     target = _KINDS.get(kind)
     if target is None:
+        cls = _registered().get(kind)
+        if cls is not None:
+            return cls
         raise FileFormatError(
-            f"{path} holds a model of unknown kind {kind!r}; this stimsteer knows {sorted(_KINDS)}. It was probably "
-            "written by a newer stimsteer: upgrade, or refit the model."
+            f"{path} holds a model of unknown kind {kind!r}; this stimsteer knows "
+            f"{sorted(set(_KINDS) | set(_registered()))}. It was probably written by a newer stimsteer or with a "
+            "method registered by other code: upgrade, register that method, or refit the model."
         )
     module, _, name = target.partition(":")
     try:
@@ -164,6 +185,7 @@ def _class_for(kind: str, path):
     except (ImportError, AttributeError) as exc:
         raise FileFormatError(f"{path} holds a {kind!r} model, but its class {target} cannot be loaded: {exc}.") \
             from None
+
 
 # ------------------------------------------------------------------------------------------------ public API
 def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False) -> Path:

@@ -113,7 +113,6 @@ def test_the_identification_layer_never_imports_the_control_layer():
     assert not bad, "sysid imports control: " + "; ".join(bad)
 
 
-@pytest.mark.xfail(reason="removed when the layout change of the architecture issue is merged", strict=False)
 def test_there_is_no_import_cycle():
     cycles = _cycles(_graph())
     assert not cycles, "import cycles: " + " | ".join(" <-> ".join(c) for c in cycles)
@@ -136,7 +135,6 @@ def _function_lengths(path: Path):
             yield node.name, node.lineno, node.end_lineno - node.lineno + 1 - doc
 
 
-@pytest.mark.xfail(reason="removed when the layout change of the architecture issue is merged", strict=False)
 @pytest.mark.parametrize("folder", sorted(PACKAGES))
 def test_modules_and_functions_stay_small(folder):
     big_modules, big_functions = [], []

@@ -13,10 +13,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ...sysid import load_pattern, load_predictor, open_session_source, predict_pattern, trial_end_window
 from ...sysid._files import atomic_dir
+from ...sysid.caution import CAUTION
 from ..figures.predict import prediction_figure
+from .plan import trial_ref
 
-__all__ = ["prediction_table", "write_prediction"]
+__all__ = ["add_parser", "prediction_table", "run", "write_prediction"]
 
 
 def prediction_table(pred) -> pd.DataFrame:
@@ -57,3 +60,34 @@ def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
         prediction_table(pred).to_csv(tmp / "prediction.csv", index=False, float_format="%.10g")
         prediction_figure(pred).savefig(tmp / "prediction.png", dpi=110)
     return {"csv": out / "prediction.csv", "png": out / "prediction.png"}
+
+
+# ---------------------------------------------------------------------------------------------------- command line
+def add_parser(sub) -> None:
+    """Declare ``stimsteer predict`` and its options."""
+    p = sub.add_parser("predict", help="predict the response to a stimulation pattern with a fitted model")
+    p.add_argument("model", help="model file written by `stimsteer fit`")
+    p.add_argument("--pattern", required=True,
+                   help="CSV of inputs: 'time [s]' and one 'in:<name> [<unit>]' column per model input")
+    p.add_argument("--out", required=True, help="output folder for prediction.csv and prediction.png")
+    p.add_argument("--from-trial", type=trial_ref, metavar="SESSION:INDEX",
+                   help="start from the end of this recorded trial (default: from rest)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+
+
+def run(args) -> int:
+    """Run ``stimsteer predict`` from parsed arguments."""
+    predictor, provenance = load_predictor(args.model)
+    pattern = load_pattern(args.pattern)
+    past, start = None, "rest"
+    if args.from_trial is not None:
+        path, index = args.from_trial
+        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+            past = trial_end_window(session, index, predictor, provenance)
+        start = f"the end of trial {index} of {path}"
+    prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
+    files = write_prediction(prediction, args.out, force=args.force)
+    print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
+    print(f"wrote {files['csv']} and {files['png']}")
+    print(CAUTION)
+    return 0

@@ -123,5 +123,4 @@ def _tasks(st: BenchSettings, splits, grid) -> list:
 
 def _fit(spec: MethodSpec, train: Session, past: int, horizon: int):
     """``spec``'s estimator fitted on ``train``: ``past_steps`` by default, the benchmark's ``horizon_steps``."""
-    return make_estimator(spec.route, spec.method, {"past_steps": past, **spec.settings},
-                          horizon_steps=horizon).fit(train)
+    return make_estimator(spec.route, spec.method, spec.settings, past_steps=past, horizon_steps=horizon).fit(train)

@@ -17,6 +17,7 @@ import cvxpy as cp
 import numpy as np
 import scipy.sparse as sp
 
+from ...sysid import markov_toeplitz
 from ._core import _PredictiveController
 from .fastqp import _FastQP
 
@@ -48,12 +49,13 @@ def condensed_prediction(model, horizon_steps: int):
     ``j <= k``; ``Phi_y[k] = C A^k``; ``Phi_x[k] = A^(k+1)``.
     """
     A, B, C, D = model.A, model.B, model.C, model.D
-    n, m, p, N = model.n_states, model.n_inputs, model.n_outputs, int(horizon_steps)
+    n, p, N = model.n_states, model.n_outputs, int(horizon_steps)
     AB = [B]
     for _ in range(1, N):
         AB.append(A @ AB[-1])
-    Gx = np.zeros((N * n, N * m))
-    Gy = np.zeros((N * p, N * m))
+    # Gx and Gy are the block-Toeplitz maps of the state and output Markov parameters (the one builder of sysid)
+    Gx = markov_toeplitz(np.stack(AB))
+    Gy = markov_toeplitz(np.stack([D] + [C @ AB[k] for k in range(N - 1)]))
     Phi_x = np.empty((N * n, n))
     Phi_y = np.empty((N * p, n))
     Ak = np.eye(n)
@@ -61,11 +63,6 @@ def condensed_prediction(model, horizon_steps: int):
         Phi_y[k * p:(k + 1) * p] = C @ Ak
         Ak = A @ Ak
         Phi_x[k * n:(k + 1) * n] = Ak
-        Gy[k * p:(k + 1) * p, k * m:(k + 1) * m] = D
-        for j in range(k + 1):
-            Gx[k * n:(k + 1) * n, j * m:(j + 1) * m] = AB[k - j]
-            if j < k:
-                Gy[k * p:(k + 1) * p, j * m:(j + 1) * m] = C @ AB[k - 1 - j]
     return Gy, Phi_y, Gx, Phi_x
 
 

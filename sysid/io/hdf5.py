@@ -43,7 +43,7 @@ import h5py
 import numpy as np
 
 from ..exceptions import FileFormatError, SessionError, StimsteerError
-from ..session import Session, _names, _TrialLayout, check_read_buffers
+from ..session import Session, _names, TrialLayout, check_read_buffers
 from ._common import LAYOUT_NAME, LAYOUT_VERSION, _as_session, _attr_str, _metadata_json
 from .detect import detect_format
 
@@ -157,7 +157,7 @@ class _MappedRows:
             pass
 
 
-class SessionFile(_TrialLayout):
+class SessionFile(TrialLayout):
     """A session in our HDF5 layout, opened read-only; arrays stay on disk until a window is read.
 
     Offers the same ``read``, ``segments``, ``content_hash`` and shape attributes as :class:`Session`, so
