@@ -1,4 +1,4 @@
-"""The layout rules of DESIGN.md, read from the sources with ``ast``: one-way layers, no cycles, small modules.
+"""The layout rules of DEVELOPERS.md, read from the sources with ``ast``: one-way layers, no cycles, small modules.
 
 * ``control`` imports ``sysid``, never the reverse.
 * No import cycle among the modules of the two packages (imports inside functions count; ``TYPE_CHECKING`` blocks

@@ -1,4 +1,4 @@
-"""One contract over every public estimator, predictor, scaler and controller (DESIGN.md; sysid/protocols.py).
+"""One contract over every public estimator, predictor, scaler and controller (DEVELOPERS.md; sysid/protocols.py).
 
 The habits are scikit-learn's (scikit-learn developer guide, "Developing scikit-learn estimators"; Buitinck et al.
 2013, "API design for machine learning software"): the constructor only stores, ``get_params``/``set_params`` come

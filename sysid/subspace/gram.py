@@ -14,7 +14,7 @@ _STREAM_ROWS = 16384  # rows per chunk of the Hankel Gram's data pass
 
 
 class _Layout:
-    """Row indices of the blocks of one Hankel column ``vec([u y]_{t-i..t+f-1})`` (time-major, see CONTRACTS)."""
+    """Row indices of the blocks of one Hankel column ``vec([u y]_{t-i..t+f-1})`` (time-major, as every stacked window in stimsteer)."""
 
     def __init__(self, past: int, future: int, m: int, p: int):
         self.i, self.f, self.m, self.p = past, future, m, p

@@ -209,7 +209,7 @@ def test_schedule_command_writes_a_schedule_inside_the_limits(limits_file, tmp_p
     u, trials, names, units, rate = load_schedule(out)
     assert names == ("site_a", "site_b") and units == ("uA", "uA") and rate == 100.0
     limits = load_limits(limits_file)
-    # the limits' own check (helper E's StimLimits.violations): amplitude (incl. the charge-density bound) and slew
+    # the limits' own check (StimLimits.violations): amplitude (incl. the charge-density bound) and slew
     v = limits.violations(u, last_input=np.zeros(2))
     assert v["amplitude"] == 0 and v["slew"] == 0
     lo, hi = limits.input_bounds()

@@ -38,7 +38,7 @@ def test_every_kind_stays_inside_its_bounds_and_is_exciting(kind, seed):
     s = design_schedule(_lim(LO, HI, SLEW if kind != "multilevel" else 2 * SLEW), kind=kind, seed=seed, **SMALL)
     _assert_within(s, LO, HI, SLEW if kind != "multilevel" else 2 * SLEW)
     assert s.excitation.exciting and s.excitation.order == 12 and s.excitation.n_rows == 36
-    # outside check of our check: helper D's pe_order on the trials agrees
+    # a second check by other code: the excitation module's pe_order on the trials agrees
     assert pe_order(s.u, [tuple(t) for t in s.trials], max_order=12) == 12
     assert s.kind == kind and s.u.shape == (s.n_samples, 3)
     with pytest.raises(ValueError):

@@ -15,10 +15,7 @@ import pytest
 from stimsteer.sysid import Session, StateSpaceModel
 from stimsteer.sysid.subspace import SubspaceId
 
-try:  # helper-written residual test; the autocorrelation band below is checked either way
-    from stimsteer.sysid.metrics import ljung_box
-except ImportError:  # pragma: no cover - depends on the state of the repository
-    ljung_box = None
+from stimsteer.sysid.metrics import ljung_box
 
 WEIGHTINGS = ["n4sid", "moesp", "cva"]
 
@@ -183,7 +180,6 @@ def test_output_error_model_fails_the_whiteness_check(noisy_fit):
     assert np.sum(np.abs(r) > 1.96 / np.sqrt(len(e))) > 2
 
 
-@pytest.mark.skipif(ljung_box is None, reason="stimsteer.sysid.metrics.ljung_box not available")
 @pytest.mark.parametrize("weighting", WEIGHTINGS)
 def test_noisy_data_innovations_pass_ljung_box(weighting, noisy_fit):
     # Ljung & Box 1978, Biometrika 65:297: whiteness not rejected at the 1% level over 20 lags

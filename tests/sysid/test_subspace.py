@@ -143,7 +143,7 @@ def _explicit_gram(session, width):
     for a, b in session.trials:
         for t in range(a, b - width + 1):
             if session.mask[t:t + width].all():
-                z = s[t:t + width].reshape(-1)  # time-major vec (CONTRACTS: stacked windows)
+                z = s[t:t + width].reshape(-1)  # time-major vec, as every stacked window
                 G = G + np.outer(z, z)
                 n += 1
     return G, n
