@@ -61,7 +61,7 @@ def _bare_osqp(ctrl):
     Nm = ctrl._LG.shape[1]
     H = ctrl._LG.T @ ctrl._LG + ctrl._Ru.T @ ctrl._Ru
     solver = osqp.OSQP()
-    from stimsteer.control.mpc import _SILENT, _osqp_settings
+    from stimsteer.control.mpc.fastqp import _SILENT, _osqp_settings
 
     solver.setup(sp.triu(sp.csc_matrix(2 * H), format="csc"), np.zeros(Nm), sp.eye(Nm, format="csc"),
                  np.tile(ctrl._lo, HORIZON), np.tile(ctrl._hi, HORIZON), **_osqp_settings(True))
