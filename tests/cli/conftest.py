@@ -68,8 +68,10 @@ def run_cli(*argv, cwd=None, timeout=120) -> Run:
 
 def start_cli(*argv, cwd=None, **popen) -> subprocess.Popen:
     """Start `stimsteer ARGV...` without waiting (for races and signals)."""
+    popen.setdefault("stdout", subprocess.PIPE)  # pass files instead when children may outlive the command:
+    popen.setdefault("stderr", subprocess.PIPE)  # a pipe they hold open would block communicate()
     return subprocess.Popen(stimsteer_command() + [str(a) for a in argv], cwd=cwd, env=cli_env(), text=True,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, **popen)
+                            **popen)
 
 
 def tree_hash(*paths) -> dict:
