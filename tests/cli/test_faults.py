@@ -145,6 +145,22 @@ def test_a_full_disk_is_one_line_naming_the_path_and_leaves_nothing(shipped, ful
     assert tree_hash(shipped["dir"]) == before
 
 
+@pytest.mark.parametrize("size", ["400k", "2m"])
+@pytest.mark.xfail(reason="issue 12: `demo` on a small disk prints two lines, exit 2: the inner step's 'stimsteer fit "
+                   "(400k; predict at 2m): error: internal error (OSError: [Errno 28] ...); please report it' then "
+                   "'stimsteer demo: error: the demo step ... failed (exit code 1); see above.' (the issue also saw a "
+                   "segfault, exit 139, on a nearly full disk: not reproduced here)", strict=True)
+def test_demo_on_a_small_disk_is_one_line_and_leaves_nothing(tmp_path, size):
+    disk = tmp_path / "small"
+    _mount_tmpfs(disk, size=size)
+    try:
+        run = run_cli("demo", "--out", disk / "demo", cwd=tmp_path, timeout=300)
+        _assert_refused_by_the_disk(run, disk, disk / "demo", "No space left on device")
+        assert os.listdir(disk) == []
+    finally:
+        _umount(disk)
+
+
 @pytest.mark.parametrize("command", _disk_params("ro"))
 def test_a_read_only_disk_is_one_line_naming_the_path_and_leaves_nothing(shipped, read_only_disk, tmp_path, command):
     build, name = _WRITERS[command]
@@ -430,9 +446,10 @@ def _window_energy(u, N):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: the budget binds each plan, not what is applied: 104 of 120 such loops "
-                   "(both routes) exceed it on 2,529 of 3,008 windows, worst 3.39x, while the loops report 0 "
-                   "energy violations", strict=True)
+@pytest.mark.xfail(reason="issue 12: the budget binds each plan, not what is applied: 88 of these 100 loops exceed "
+                   "it on 2,132 of 2,509 windows (model MPC: 44/50 loops, 1,078/1,266 windows, worst 2.70x; SPC on "
+                   "LsqPredictor: 44/50, 1,054/1,243, worst 3.39x) while every loop reports 0 energy violations",
+                   strict=True)
 def test_no_window_of_applied_inputs_exceeds_the_energy_budget_in_100_random_loops():
     over, n_windows = [], 0
     for i in range(100):
