@@ -81,9 +81,10 @@ def _huge_session(d, name="huge.h5"):
 
     s, _plant = small_session(seed=5)
     rng = np.random.default_rng(5)
-    huge = Session(u=s.u * 10.0 ** rng.uniform(200, 300, s.u.shape[1]), y=s.y * 10.0 ** rng.uniform(200, 300, s.y.shape[1]),
-                   sample_rate_hz=s.sample_rate_hz, trials=s.trials, input_names=s.input_names,
-                   output_names=s.output_names, input_units=s.input_units, output_units=s.output_units)
+    u_scale, y_scale = 10.0 ** rng.uniform(200, 300, s.u.shape[1]), 10.0 ** rng.uniform(200, 300, s.y.shape[1])
+    huge = Session(u=s.u * u_scale, y=s.y * y_scale, sample_rate_hz=s.sample_rate_hz, trials=s.trials,
+                   input_names=s.input_names, output_names=s.output_names, input_units=s.input_units,
+                   output_units=s.output_units)
     return save_session(huge, d / name)
 
 

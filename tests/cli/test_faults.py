@@ -215,6 +215,12 @@ def test_three_concurrent_plans_on_one_folder_one_writes_the_others_are_refused(
     assert (out / "plan.json").is_file() and leftovers(out) == []
 
 
+def _wait_for(condition, seconds: float):
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline and not condition():
+        time.sleep(0.05)
+
+
 def _slow_session(shipped, tmp_path):
     """The demo session four times over: long enough that a fit computes for several seconds."""
     from stimsteer.sysid import Session, load_session, save_session
@@ -239,7 +245,9 @@ def test_a_second_fit_on_the_same_model_file_is_refused_at_once(shipped, tmp_pat
             "--out", out]  # ~10 s alone, ~8 s of it computing
     first = start_cli(*argv, cwd=tmp_path)
     try:
-        time.sleep(2.5)  # the first is past its start-up and computing
+        # the first is past its start-up: it has claimed its output (a hidden `.same.h5.*` beside it), or 4 s passed
+        _wait_for(lambda: leftovers(out) or first.poll() is not None, 4.0)
+        time.sleep(0.5)
         second = run_cli(*argv, cwd=tmp_path, timeout=300)
         first_not_done = not out.exists()  # refused while the first was computing, not because it had finished
         first_code = first.wait(timeout=300)
@@ -265,7 +273,7 @@ def test_a_second_bench_on_the_same_folder_is_refused_before_computing(shipped, 
     out = tmp_path / "report"
     first = start_cli(*_bench_argv(shipped, out, "--workers", 2), cwd=tmp_path)
     try:
-        time.sleep(4.0)
+        _wait_for(lambda: _descendants(first.pid) or first.poll() is not None, 60.0)  # its workers compute
         assert first.poll() is None, "the first bench ended too soon for this test"
         second = run_cli(*_bench_argv(shipped, out, "--workers", 1, "--quick"), cwd=tmp_path, timeout=300)
         first_not_done = not out.exists()  # refused while the first was computing, not because it had finished
