@@ -5,7 +5,8 @@ With a budget ``E`` over windows of ``W`` samples, a plan ``u_0 … u_{N−1}`` 
 slew limit the plan cannot stop at once after its last step, so the windows that end during the ramp to zero after
 it (the safe fallback of :meth:`~stimsteer.control.limits.StimLimits.safe_inputs`, ``|u_{N−1+t}| = max(|u_{N−1}| −
 t·slew, 0)``) count too, for ``t = 1 … W−1`` (later windows hold only ramp steps, each smaller than ``u_{N−1}``, and
-are dominated).
+are dominated). They bind only when the window is longer than the horizon: for ``W <= N`` the slew limit already
+keeps them below the windows inside the plan.
 
 Recursive feasibility (why the closed loop never runs out of budget). If a plan meets these windows and its first
 step is applied, the rest of it followed by the first ramp step meets every window of the next plan: the windows it
