@@ -273,9 +273,11 @@ class _PredictiveController(BaseEstimator):
         Parameters
         ----------
         u_past : ndarray, shape (n_past, n_inputs)
-            Applied inputs, µA, ending just before the plan; the last ``past_steps_`` samples are used.
-        y_past : ndarray, shape (n_past, n_outputs)
-            Measured outputs at the same samples.
+            Applied inputs, µA, ending just before the plan; the last ``past_steps_`` samples are used for the
+            prediction and the last ``energy_window_steps_ − 1`` for the energy budget's windows (samples before a
+            shorter past count as rest: pass what was applied).
+        y_past : ndarray, shape (n_past_y, n_outputs)
+            Measured outputs ending at the same sample (at least ``past_steps_`` of them).
         target : ndarray
             Output kind: shape (horizon_steps, n_outputs) (a trajectory; longer ones are cut) or (n_outputs,)
             (constant). State kind: shape (n_states,).
