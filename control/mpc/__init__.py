@@ -7,8 +7,8 @@ OSQP problem from the same matrices and only updates its vectors (:mod:`~stimste
 give the same plan (tested). The fast path exists for quadratic programs (no L1 regulariser); otherwise plans use
 the cvxpy problem, and so does a plan whose OSQP solve fails. With an energy budget the fast QP leaves the budget out
 and its answer is kept only when every budget window holds with room to spare (then it is the optimum of the
-budgeted convex problem as well); when a window binds, the plan solves the cvxpy cone program. For DeePC without output bounds the fast
-path minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
+budgeted convex problem as well); when a window binds, the plan solves the cvxpy cone program. For DeePC without
+output bounds the fast path minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
 
 Problem solved over the horizon ``k = 0 … N−1`` (inputs ``u_k``, predicted outputs ``ŷ_k``)::
 
