@@ -203,3 +203,15 @@ def test_no_window_of_applied_inputs_exceeds_the_budget_in_random_closed_loops()
         n_loops += 1
         bound += windows.max() >= 0.99 * lim.energy_budget_ua2
     assert n_loops >= 100 and bound >= 80  # the budgets bind in most loops
+
+
+def test_a_schedule_keeps_the_budget_on_the_window_the_limits_declare():
+    from stimsteer.control.schedule import design_schedule
+
+    lim = StimLimits(amplitude_min_ua=-50, amplitude_max_ua=50, n_inputs=2, energy_budget_ua2=20000.0,
+                     energy_window_steps=40)
+    s = design_schedule(lim, order=12, kind="prbs", sample_rate_hz=100.0, n_trials=3, trial_s=2.0, rest_s=0.5,
+                        seed=0)
+    assert s.energy_window_steps == 40
+    u = np.asarray(s.u)
+    assert window_energies(u, 40).max() <= 20000.0 * (1 + 1e-9)
