@@ -43,7 +43,7 @@ class LoopResult:
         ``Σ u²`` of the applied inputs, µA².
     limit_use : dict of str to float
         Fraction of samples at which each hard limit was binding on the applied input (``energy_budget``:
-        fraction of plans whose horizon used the whole budget).
+        fraction of plans in which a budget window is full).
     violations : dict of str to int
         ``amplitude`` and ``slew``: applied samples beyond a hard limit (0 unless the limits conflict, see
         :mod:`stimsteer.control.mpc`); ``energy_budget``: windows of ``energy_window_steps`` applied samples (one
