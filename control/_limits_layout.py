@@ -13,7 +13,7 @@ import numpy as np
 from ..sysid.exceptions import LimitsError
 from .shannon import DEFAULT_SHANNON_K
 
-__all__ = ["read_limits_table", "limits_fields"]
+__all__ = ["read_limits_table", "limits_fields", "vec_field"]
 
 _INPUT_KEYS = {"amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "pulse_width_us", "electrode_area_cm2"}
 _CHARGE_KEYS = {"pulse_width_us", "electrode_area_cm2", "shannon_k"}
@@ -59,7 +59,7 @@ def limits_fields(d) -> dict:
     charge = _table(d, "charge_density")
     _unknown("[charge_density]", charge, _CHARGE_KEYS)
     energy = _table(d, "energy")
-    _unknown("[energy]", energy, {"budget_ua2"})
+    _unknown("[energy]", energy, {"budget_ua2", "window_steps"})
     inputs = _table(d, "inputs")
     if not inputs:
         raise LimitsError("the limits declare no inputs; add one [inputs.<name>] table per stimulation input "
@@ -89,6 +89,7 @@ def limits_fields(d) -> dict:
     return dict(
         amplitude_min_ua=cols["amplitude_min_ua"], amplitude_max_ua=cols["amplitude_max_ua"],
         slew_max_ua=slew, energy_budget_ua2=_number("energy.budget_ua2", energy.get("budget_ua2")),
+        energy_window_steps=_window(energy.get("window_steps")),
         shannon_k=_number("charge_density.shannon_k", charge.get("shannon_k", DEFAULT_SHANNON_K)),
         input_names=tuple(inputs), output_names=out_names, output_min=out_lo, output_max=out_hi,
         **charge_cols,
@@ -131,3 +132,27 @@ def _outputs(outputs):
         lo.append(_number(f"outputs.{name}.min", spec.get("min", -np.inf)))
         hi.append(_number(f"outputs.{name}.max", spec.get("max", np.inf)))
     return tuple(names), lo, hi
+
+
+def _window(v):
+    if v is None:
+        return None
+    if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+        raise LimitsError(f"energy.window_steps must be a whole number of samples >= 1; got {v!r}.")
+    return v
+
+
+def vec_field(name, value, m, *, allow_inf=False):
+    """``value`` (a number, or one per input) as a read-only (m,) float array; NaN (and inf unless allowed) refused."""
+    a = np.asarray(value, dtype=np.float64)
+    if a.ndim == 0:
+        a = np.full(m, float(a))
+    if a.shape != (m,):
+        raise LimitsError(f"{name} must be a number or one value per input ({m}); got shape {a.shape}.")
+    bad = np.isnan(a) if allow_inf else ~np.isfinite(a)
+    if bad.any():
+        kind = "NaN" if allow_inf else "NaN or infinite"
+        raise LimitsError(f"{name} holds {kind} values at inputs {np.flatnonzero(bad).tolist()}; give numbers.")
+    a = a.copy()
+    a.setflags(write=False)
+    return a

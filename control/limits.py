@@ -14,7 +14,8 @@ own layout read by :func:`load_limits`::
     shannon_k = 1.75              # default 1.75, must stay below 1.85
 
     [energy]
-    budget_ua2 = 2.0e5            # Σ u² over the whole planning horizon, all inputs, µA²
+    budget_ua2 = 2.0e5            # Σ u² over every window of window_steps samples, all inputs, µA²
+    window_steps = 20             # optional; default the planning horizon
 
     [inputs.site_a]               # one table per stimulation input; the name matches the model's input name
     amplitude_min_ua = 0.0
@@ -40,6 +41,10 @@ Decisions (documented, enforced by validation)
     * ``amplitude_min_ua <= amplitude_max_ua``; an input with both bounds 0 is switched off; at least one input
       must be able to stimulate.
     * Slew limits are positive (``inf`` means none for that input); the energy budget is positive and finite.
+    * The energy budget holds over every window of ``energy_window_steps`` samples (default: the planning
+      horizon) of the stimulation a closed loop *applies*, not only over each plan: every plan is constrained by
+      what was applied in the window so far (:mod:`stimsteer.control.mpc`). Zero stimulation keeps every later
+      window within the budget, so the constraint can always be met from a state the loop reached by obeying it.
     * Pulse width and electrode area come together (the rule needs both) and are positive and finite.
     * Output bounds: ``min < max`` where both are given; ``±inf`` means no bound.
 
@@ -57,7 +62,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..sysid.exceptions import InvalidParameterError, LimitsError
-from ._limits_layout import limits_fields, read_limits_table
+from ._energy_windows import check_window
+from ._limits_layout import limits_fields, read_limits_table, vec_field as _vec
 from .shannon import DEFAULT_SHANNON_K, SHANNON_DAMAGE_K, max_amplitude_ua, max_charge_uc, shannon_k
 
 __all__ = [
@@ -72,21 +78,6 @@ __all__ = [
 
 
 # ---------------------------------------------------------------------------------------------------- limits
-def _vec(name, value, m, *, allow_inf=False):
-    a = np.asarray(value, dtype=np.float64)
-    if a.ndim == 0:
-        a = np.full(m, float(a))
-    if a.shape != (m,):
-        raise LimitsError(f"{name} must be a number or one value per input ({m}); got shape {a.shape}.")
-    bad = np.isnan(a) if allow_inf else ~np.isfinite(a)
-    if bad.any():
-        kind = "NaN" if allow_inf else "NaN or infinite"
-        raise LimitsError(f"{name} holds {kind} values at inputs {np.flatnonzero(bad).tolist()}; give numbers.")
-    a = a.copy()
-    a.setflags(write=False)
-    return a
-
-
 @dataclass(frozen=True, kw_only=True)
 class StimLimits:
     """Hard limits on stimulation inputs and soft bounds on outputs (see the module docstring for the rules).
@@ -100,7 +91,10 @@ class StimLimits:
     slew_max_ua : float or ndarray, shape (n_inputs,), optional
         Largest change of an input between consecutive samples, µA; ``inf`` for no limit on an input.
     energy_budget_ua2 : float, optional
-        Largest ``Σ_k Σ_i u_ik²`` over one planning horizon, µA².
+        Largest ``Σ_k Σ_i u_ik²`` over every window of ``energy_window_steps`` consecutive samples of stimulation
+        (planned, and applied in a closed loop), µA².
+    energy_window_steps : int, optional
+        The budget's window, samples; default the planning horizon of the controller that uses the limits.
     pulse_width_us, electrode_area_cm2 : float or ndarray, shape (n_inputs,), optional
         Phase duration (µs) and electrode area (cm²) for the Shannon charge-density bound; give both or neither.
     shannon_k : float, default 1.75
@@ -131,6 +125,7 @@ class StimLimits:
     n_inputs: int = None
     slew_max_ua: np.ndarray = None
     energy_budget_ua2: float = None
+    energy_window_steps: int = None
     pulse_width_us: np.ndarray = None
     electrode_area_cm2: np.ndarray = None
     shannon_k: float = DEFAULT_SHANNON_K
@@ -164,6 +159,11 @@ class StimLimits:
                     "budget of 0 no input could ever be nonzero; remove the budget or give a positive one."
                 )
             s(self, "energy_budget_ua2", e)
+        if self.energy_window_steps is not None:
+            try:
+                s(self, "energy_window_steps", check_window(self.energy_window_steps))
+            except InvalidParameterError as exc:
+                raise LimitsError(str(exc)) from None
         self._set_charge(m)
         self._set_outputs()
         self._set_names(m)
@@ -375,13 +375,10 @@ class StimLimits:
         budget = self.energy_budget_ua2 * (1.0 + rtol)
         if window is None:
             return int(np.sum(u**2) > budget)
-        if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or window < 1:
-            raise InvalidParameterError(f"energy_window_steps must be a whole number of samples >= 1; got {window!r}. "
-                                        "Give the window length in samples, or None for the whole sequence.")
         if u.shape[0] == 0:
             return 0
         c = np.concatenate([[0.0], np.cumsum(np.sum(u**2, axis=1))])
-        w = min(int(window), u.shape[0])
+        w = min(check_window(window), u.shape[0])
         return int(np.sum(c[w:] - c[:-w] > budget))
 
     @property
@@ -468,6 +465,7 @@ class StimLimits:
             "input_names": list(self.input_names) if self.input_names else None,
             "amplitude_min_ua": lst(self.amplitude_min_ua), "amplitude_max_ua": lst(self.amplitude_max_ua),
             "slew_max_ua": lst(self.slew_max_ua), "energy_budget_ua2": self.energy_budget_ua2,
+            "energy_window_steps": self.energy_window_steps,
             "pulse_width_us": lst(self.pulse_width_us), "electrode_area_cm2": lst(self.electrode_area_cm2),
             "shannon_k": self.shannon_k, "charge_bound_ua": lst(self.charge_bound_ua()),
             "effective_min_ua": lst(lo), "effective_max_ua": lst(hi),

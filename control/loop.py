@@ -4,6 +4,10 @@ At every sample the controller plans over its horizon from the last measured win
 applied to the plant, the plant returns the measured output, and the window moves on. Anything with the plant
 interface (``n_inputs``, ``n_outputs``, ``reset(seed, x0)``, ``step(u_k) -> y_k``; see ``control/plants.py``) can
 be controlled: a simulated network, or a surrogate model fitted on held-out data.
+
+Energy budgets hold over rolling windows of the *applied* inputs: every plan gets the applied past that its
+budget windows reach back into (the warm-up included), and the result counts the windows of applied inputs over the
+budget (:func:`stimsteer.control._energy_windows.window_energies`), not the plans.
 """
 
 from __future__ import annotations
@@ -13,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..sysid import LimitsError, SessionError, check_fitted
+from ._energy_windows import over_budget
 
 __all__ = ["LoopResult", "run_closed_loop"]
 
@@ -38,11 +43,16 @@ class LoopResult:
         ``Σ u²`` of the applied inputs, µA².
     limit_use : dict of str to float
         Fraction of samples at which each hard limit was binding on the applied input (``energy_budget``:
-        fraction of plans whose horizon used the whole budget).
+        fraction of plans in which a budget window is full).
     violations : dict of str to int
         ``amplitude`` and ``slew``: applied samples beyond a hard limit (0 unless the limits conflict, see
-        :mod:`stimsteer.control.mpc`); ``energy_budget``: plans over budget; ``output_bounds``: measured samples
-        beyond a soft output bound (allowed, reported).
+        :mod:`stimsteer.control.mpc`); ``energy_budget``: windows of ``energy_window_steps`` applied samples (one
+        ending at each loop step, the warm-up before counting) whose energy exceeds the budget;
+        ``output_bounds``: measured samples beyond a soft output bound (allowed, reported).
+    energy_window_steps : int or None
+        The energy budget's window, samples (None without a budget).
+    energy_window_max_ratio : float
+        The largest energy of such a window divided by the budget (0 without a budget).
     solve_time_s : ndarray, shape (n_steps,)
         Wall time of each plan's solve, seconds.
     statuses : tuple of str
@@ -69,6 +79,8 @@ class LoopResult:
     warmup_inputs: np.ndarray
     warmup_outputs: np.ndarray
     seed: object = None
+    energy_window_steps: int = None
+    energy_window_max_ratio: float = 0.0
 
     @property
     def n_steps(self) -> int:
@@ -80,6 +92,8 @@ class LoopResult:
             "n_steps": self.n_steps, "rms_tracking_error": [float(v) for v in self.rms_tracking_error],
             "energy_ua2": float(self.energy_ua2), "limit_use": {k: float(v) for k, v in self.limit_use.items()},
             "violations": {k: int(v) for k, v in self.violations.items()}, "n_fallback": int(self.n_fallback),
+            "energy_window_steps": self.energy_window_steps,
+            "energy_window_max_ratio": float(self.energy_window_max_ratio),
             "solve_time_s_median": float(np.median(self.solve_time_s)),
             "solve_time_s_max": float(np.max(self.solve_time_s)), "seed": self.seed,
         }
@@ -175,10 +189,12 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     controller.reset()  # the same seed gives the same numbers: no warm start carried over from another run
     U, Y = list(warm), [np.asarray(plant.step(u), np.float64).reshape(p) for u in warm]
     T = controller.past_steps_
+    # the inputs a plan sees reach back as far as its energy budget's window (the outputs as far as its predictor's)
+    T_u = max(T, (controller.energy_window_steps_ or 1) - 1)
     times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}
-    n_fallback = plan_over_budget = 0
+    n_fallback = 0
     for k in range(n_steps):
-        plan = controller.plan(np.asarray(U[-T:]), np.asarray(Y[-T:]), target=window(k), last_input=U[-1],
+        plan = controller.plan(np.asarray(U[-T_u:]), np.asarray(Y[-T:]), target=window(k), last_input=U[-1],
                                use_fast_path=use_fast_path)
         u = np.array(plan.inputs[0])
         U.append(u)
@@ -188,17 +204,18 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
         for key in _LIMIT_KEYS:
             a = plan.active_limits[key]
             use[key] += int(a if key == "energy_budget" else np.any(a[0]))
-        plan_over_budget += controller.limits_.violations(plan.inputs, plan.last_input)["energy_budget"]
     return _result(controller, warm, np.asarray(U[len(warm):]), np.asarray(Y), targets, times, statuses, use,
-                   n_fallback, plan_over_budget, seed)
+                   n_fallback, seed)
 
 
-def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, plan_over_budget, seed):
+def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, seed):
     n_w, n = warm.shape[0], u.shape[0]
     y = Y[n_w:]
     err = y - targets
     counts = controller.limits_.violations(u, warm[-1])
     lim = controller.limits_
+    W = controller.energy_window_steps_
+    over, ratio = (0, 0.0) if W is None else over_budget(u, lim.energy_budget_ua2, W, history=warm)
     out_bounds = 0
     if lim.output_min is not None:
         out_bounds = int(np.sum((y > lim.output_max) | (y < lim.output_min)))
@@ -207,10 +224,10 @@ def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, p
         inputs=ro(u), outputs=ro(y), targets=ro(targets), tracking_error=ro(err),
         rms_tracking_error=ro(np.sqrt(np.mean(err**2, axis=0))), energy_ua2=float(np.sum(u**2)),
         limit_use={k: v / n for k, v in use.items()},
-        violations={"amplitude": counts["amplitude"], "slew": counts["slew"], "energy_budget": int(plan_over_budget),
+        violations={"amplitude": counts["amplitude"], "slew": counts["slew"], "energy_budget": over,
                     "output_bounds": out_bounds},
         solve_time_s=ro(times), statuses=tuple(statuses), n_fallback=int(n_fallback), warmup_inputs=ro(warm),
-        warmup_outputs=ro(Y[:n_w]), seed=seed,
+        warmup_outputs=ro(Y[:n_w]), seed=seed, energy_window_steps=W, energy_window_max_ratio=ratio,
     )
 
 

@@ -262,7 +262,8 @@ def _settings(limits, order, kind, sample_rate_hz, n_trials, trial_s, rest_s, ho
            "n_trials": None if n_trials is None else whole("n_trials", n_trials, 1),
            "hold": whole("hold_steps", hold_steps, 1), "window": None}
     if limits.energy_budget_ua2 is not None:
-        out["window"] = order if energy_window_steps is None else whole("energy_window_steps", energy_window_steps, 1)
+        out["window"] = ((limits.energy_window_steps or order) if energy_window_steps is None
+                         else whole("energy_window_steps", energy_window_steps, 1))
     return out
 
 
@@ -292,9 +293,9 @@ def design_schedule(limits: StimLimits, *, order: int, kind: str = "prbs", sampl
     seed : int, optional
         Seed of every random choice; same seed, same schedule.
     energy_window_steps : int, optional
-        The limits' energy budget holds on every window of this many consecutive samples. Default ``order`` (a
-        window at least as long as a planning horizon, so the budget also holds on every horizon that fits
-        inside it).
+        The limits' energy budget holds on every window of this many consecutive samples. Default the window the
+        limits declare (``StimLimits.energy_window_steps``), else ``order`` (a window at least as long as a
+        planning horizon, so the budget also holds on every horizon that fits inside it).
     hold_steps : int, default 1
         Samples each value is held (``prbs``, ``multilevel``).
     n_levels : int, default 5

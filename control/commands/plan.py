@@ -2,12 +2,20 @@
 
 Numerics live in :mod:`stimsteer.control.mpc`; this module only loads, calls the public API and writes files
 (atomically: a failed run leaves nothing behind). The figure comes from :mod:`stimsteer.control.figures.plan`.
+
+Exit codes (:data:`EXIT_CODES`, printed by ``stimsteer plan --help``): 0 an optimal plan was written; 3 the plan is
+not optimal (infeasible, or the solver failed) and the safe fallback was written, its files say so on their first
+line and in ``plan.json``; 2 bad input (one line on stderr, nothing written); 1 an internal error.
 """
 
 from __future__ import annotations
 
-import json
 import argparse
+import hashlib
+import json
+import os
+import sys
+import textwrap
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -17,7 +25,7 @@ import pandas as pd
 from ...sysid import (StateSpaceForm, load_predictor, open_session_source, rest_window,
                       trial_end_window)
 from ...sysid._files import atomic_dir
-from ...sysid._records import jsonable
+from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
 from ..figures.plan import plan_figure
 from ..limits import load_limits
@@ -26,7 +34,18 @@ from ..mpc.dispatch import controller_for
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
 
-__all__ = ["PlanRun", "add_parser", "plan_to_folder", "run", "trial_ref", "write_plan"]
+__all__ = ["EXIT_CODES", "PlanRun", "add_parser", "plan_to_folder", "run", "trial_ref", "write_plan"]
+
+#: What ``stimsteer plan`` returns, for scripts (also in the README and ``stimsteer plan --help``).
+EXIT_CODES = {
+    0: "an optimal plan was written",
+    3: "no optimal plan: the limits cannot be met (infeasible) or the solver failed; the safe fallback was written "
+       "and its files say so (first line '# status: ...' of plan.csv and plan_pattern.csv, 'status' in plan.json)",
+    2: "bad input (a file, a setting, the limits): one line on stderr, nothing written",
+    1: "internal error (a bug): one line on stderr; please report it",
+}
+#: The exit code of a plan that is written but not optimal.
+EXIT_NOT_OPTIMAL = 3
 
 _MICROAMPERE = {"uA", "µA", "μA", "microampere", "microamperes"}  # spellings of the limits file's unit
 
@@ -85,9 +104,10 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         path, index = from_trial
         with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
+            u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
         start = f"the end of trial {index} of {path}"
     plan = ctrl.plan(u_past, y_past, target=tgt)
-    extra = {"model_file": str(model_path), "limits_file": str(limits_path), "start": start,
+    extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
              "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model")}
@@ -99,11 +119,37 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     return PlanRun(plan=plan, files=files, lines=tuple(lines + _notes(plan, provenance)))
 
 
+def _applied_before(session, index, u_past, window):
+    """The inputs applied before the end of a trial, as far back as the energy budget's window reaches (its last
+    ``window − 1`` samples, across trial boundaries: they were delivered), or ``u_past`` when that is longer."""
+    if window is None or window - 1 <= len(u_past):
+        return u_past
+    stop = int(np.asarray(session.trials)[index, 1])
+    u, _, _ = session.read(max(0, stop - (window - 1)), stop)
+    return np.array(u, dtype=np.float64)
+
+
+def _model_record(model_path, provenance, out_dir) -> dict:
+    """What identifies the model a plan was made with: its file (relative to the plan folder when they share a
+    parent folder, so the record survives moving both, e.g. the demo's output), the file's SHA-256, the hash of the
+    session it was fitted on (from its provenance) and the package versions of this run."""
+    model, out = Path(model_path).resolve(), Path(out_dir).resolve()
+    shown = os.path.relpath(model, out) if out.parent in model.parents else str(model)
+    digest = hashlib.sha256()
+    with open(model, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    session = provenance.get("session", {}) if isinstance(provenance, dict) else {}
+    return {"model_file": shown, "model_sha256": digest.hexdigest(),
+            "session_content_hash": session.get("content_hash"), "versions": versions()}
+
+
 def _notes(plan, provenance) -> list:
     """The summary lines after the first: solver notes, unit caution, cost terms, binding limits, slack."""
     lines = []
     if plan.message:
         lines.append(f"note: {plan.message}")
+    lines += [f"broken limit: {b}" for b in plan.broken_limits]
     recorded = provenance.get("session", {}).get("input_units") if isinstance(provenance, dict) else None
     other = sorted({str(u) for u in (recorded or ()) if str(u).strip() not in _MICROAMPERE})
     if other:
@@ -133,10 +179,11 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
 
     Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
-    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` step bounds),
-    ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict --pattern``),
-    ``plan.png`` and ``plan.json`` (status, cost terms, active limits, caution, and ``extra``; JSON-safe values
-    by :func:`stimsteer.sysid._records.jsonable`).
+    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` the window each
+    step's input obeys), ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict
+    --pattern``), ``plan.png`` and ``plan.json`` (status, cost terms, active and broken limits, caution, and
+    ``extra``; JSON-safe values by :func:`stimsteer.sysid._records.jsonable`). Both tables open with the plan's
+    status on comment lines (``# status: ...``; readers skip them, e.g. ``pandas.read_csv(..., comment="#")``).
 
     Returns
     -------
@@ -161,13 +208,26 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
     table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
     summary = jsonable({**plan.to_dict(), **(extra or {})})
+    head = _status_lines(plan)
     with atomic_dir(out_dir, force=force) as tmp:
-        pd.DataFrame(table).to_csv(tmp / "plan.csv", index=False, float_format="%.10g")
-        pd.DataFrame({time_col: t, **ins}).to_csv(tmp / "plan_pattern.csv", index=False, float_format="%.10g")
+        for name, frame in (("plan.csv", table), ("plan_pattern.csv", {time_col: t, **ins})):
+            with open(tmp / name, "w", encoding="utf-8", newline="") as fh:
+                fh.write(head)
+                pd.DataFrame(frame).to_csv(fh, index=False, float_format="%.10g", lineterminator="\n")
         plan_figure(plan, t, units, tracked).savefig(tmp / "plan.png", dpi=110)
         (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
     return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
                                         ("json", "plan.json"))}
+
+
+def _status_lines(plan: Plan) -> str:
+    """The comment lines that open both plan tables: the status first, then what a reader must know about it."""
+    kind = "optimised plan" if plan.ok else "SAFE FALLBACK, not an optimised plan"
+    lines = [f"# status: {plan.status} ({kind})"]
+    if plan.message:
+        lines.append(f"# note: {' '.join(plan.message.split())}")
+    lines += [f"# broken limit: {b}" for b in plan.broken_limits]
+    return "\n".join(lines) + "\n"
 
 
 # ---------------------------------------------------------------------------------------------------- command line
@@ -182,7 +242,11 @@ def trial_ref(text):
 def add_parser(sub) -> None:
     """Declare ``stimsteer plan`` and its options."""
     p = sub.add_parser("plan", help="plan stimulation towards a target under declared limits with a fitted model or "
-                       "predictor; writes the plan table, pattern, figure and summary")
+                       "predictor; writes the plan table, pattern, figure and summary",
+                       epilog="exit codes:\n" + "\n".join(textwrap.fill(text, 100, initial_indent=f"  {code}  ",
+                                                                       subsequent_indent="     ")
+                                                         for code, text in EXIT_CODES.items()),
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("model", metavar="MODEL_OR_PREDICTOR", help="model file written by `stimsteer fit` (either route)")
     p.add_argument("--target", required=True,
                    help="CSV of target outputs over the horizon (one column per tracked output, named after it), or "
@@ -206,4 +270,8 @@ def run(args) -> int:
     print("\n".join(done.lines))
     print(f"wrote {', '.join(str(p) for p in done.files.values())}")
     print(CAUTION)
-    return 0
+    if done.plan.ok:
+        return 0
+    sys.stderr.write(f"stimsteer plan: the plan is {done.plan.status}: the safe fallback was written (its files say "
+                     f"so); exit code {EXIT_NOT_OPTIMAL}\n")
+    return EXIT_NOT_OPTIMAL

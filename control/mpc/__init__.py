@@ -6,16 +6,18 @@ problem is DPP and a plan only assigns ``.value`` and re-solves. A second, faste
 OSQP problem from the same matrices and only updates its vectors (:mod:`~stimsteer.control.mpc.fastqp`); both paths
 give the same plan (tested). The fast path exists for quadratic programs (no L1 regulariser); otherwise plans use
 the cvxpy problem, and so does a plan whose OSQP solve fails. With an energy budget the fast QP leaves the budget out
-and its answer is kept only when it uses less than the budget (then it is the optimum of the budgeted convex problem
-as well); when the budget binds, the plan solves the cvxpy cone program. For DeePC without output bounds the fast
-path minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
+and its answer is kept only when every budget window holds with room to spare (then it is the optimum of the
+budgeted convex problem as well); when a window binds, the plan solves the cvxpy cone program. For DeePC without
+output bounds the fast path minimises the Hankel weights out in closed form once, so its QP is in the inputs alone.
 
 Problem solved over the horizon ``k = 0 … N−1`` (inputs ``u_k``, predicted outputs ``ŷ_k``)::
 
     minimise    Σ_k ‖ŷ_k − r_k‖²_Q  +  Σ_k ‖u_k‖²_R  [+ ‖x_N − x_T‖²_P]  [+ route terms]  +  ρ Σ s
     subject to  lo_i <= u_ik <= hi_i                     (amplitude ∩ charge-density bound, hard)
                 |u_ik − u_i,k−1| <= slew_i, u_−1 = last applied input                     (hard)
-                ‖vec(u)‖₂ <= sqrt(E)                    (energy budget, second-order cone, hard)
+                Σ_{k=j−W+1..j} ‖u_k‖² <= E  for every window ending at a plan step j, the inputs
+                applied before the plan counted, and (with a slew limit) the windows ending during
+                the ramp to zero after it        (energy budget over rolling windows, hard; _budget)
                 y_min − s <= ŷ <= y_max + s,  s >= 0      (output bounds, soft; exact L1 penalty ρ)
 
 The modules, one job each:
@@ -38,7 +40,12 @@ re-checked. A plan that cannot be solved (limits conflict, solver failure, infea
 the safe fallback of :meth:`StimLimits.safe_inputs`: towards zero stimulation as fast as the slew limit allows,
 inside the amplitude window. The only case where that fallback itself breaks a limit is when no input sequence
 can meet the limits at all (the last applied input lies outside the amplitude window, or even the fallback's
-least-energy sequence exceeds the energy budget); the plan then says so (status ``"infeasible"``).
+least-energy sequence breaks an energy window, counting the inputs applied before the plan); the plan then says so
+(status ``"infeasible"``, ``Plan.broken_limits``). The energy windows reach back into ``u_past`` (pass the applied
+inputs as far back as ``energy_window_steps_ − 1`` samples; earlier ones count as rest), so that in a closed loop
+the budget holds over every window of *applied* stimulation; this is recursively feasible
+(:mod:`~stimsteer.control.mpc._budget`). The cvxpy costs are divided by a per-plan scale (a Parameter) so that far
+targets do not make the cone solver call a feasible problem infeasible.
 
 The file workflow of ``stimsteer plan`` (:func:`plan_to_folder`, :func:`write_plan`, :class:`PlanRun`) lives in
 :mod:`stimsteer.control.commands.plan`; those names are still importable from here, loaded on first use.

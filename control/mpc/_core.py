@@ -6,9 +6,15 @@ A controller subclass supplies the prediction (``_offsets``, ``_assign``, ``_sol
 does the rest, the same way for every formulation.
 
 Safety. Every returned input sequence respects the hard limits. Before a solve the step bounds are checked (the slew
-window of the first step against the amplitude window, and the energy of the safe sequence); after a solve the
+window of the first step against the amplitude window, and the energy of the safe sequence in every budget window
+that ends inside the plan, counting the applied past; see :mod:`~stimsteer.control.mpc._budget`); after a solve the
 answer is verified, clipped onto the exact bounds when it exceeds them by solver tolerance only, and re-checked.
 A plan that cannot be solved carries the safe fallback of :meth:`StimLimits.safe_inputs`.
+
+Scaling. Targets far from what the inputs can reach (1e6 against ±30 µA) make the cost's linear term huge next to
+its curvature, and an interior-point solver may then call a feasible problem infeasible. The cvxpy problems divide
+their cost by ``σ`` (a Parameter, so they stay DPP) chosen per plan so that the cost's slope over the input box is
+of order one; the minimiser is the same.
 """
 
 from __future__ import annotations
@@ -23,6 +29,7 @@ import scipy.sparse as sp
 
 from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
 from ..limits import StimLimits
+from ._budget import _RollingBudget
 from .plan import Plan, _ro
 
 __all__: list = []
@@ -116,6 +123,10 @@ class _PredictiveController(BaseEstimator):
                               np.array([s == "charge_density" for s in hi_src]))
         self._slew = self.limits_.slew_max_ua
         self._energy = self.limits_.energy_budget_ua2
+        self.energy_window_steps_ = None if self._energy is None else (self.limits_.energy_window_steps or N)
+        self._budget = None if self._energy is None else _RollingBudget(self._energy, self.energy_window_steps_, N,
+                                                                           self._slew)
+        self._hist = None
         self._scale = max(1.0, float(np.max(np.abs(np.concatenate([self._lo, self._hi])))))
         self._Ru = sla.block_diag(*[_sqrt_weight("input_weight", self.input_weight, m)] * N)
         try:
@@ -174,8 +185,8 @@ class _PredictiveController(BaseEstimator):
         if self._slew_rows is not None:
             Dm, lim = self._slew_rows
             cons += [Dm @ u <= lim, Dm @ u >= -lim]
-        if self._energy is not None:
-            cons.append(cp.norm(u, 2) <= np.sqrt(self._energy))
+        if self._budget is not None:
+            cons += self._budget.constraints(u, m)
         slack = None
         if self._idx_b.size:
             slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
@@ -227,24 +238,33 @@ class _PredictiveController(BaseEstimator):
         return last
 
     def _step_bounds(self, last):
+        """The window each step obeys, and the inputs whose slew window at step 0 misses the amplitude window.
+
+        There the amplitude window takes precedence (it is the one the plan obeys, and the one written), and the
+        slew limit is broken at step 0.
+        """
         N = self.horizon_steps_
         lb, ub = np.tile(self._lo, (N, 1)), np.tile(self._hi, (N, 1))
+        broken = np.zeros(self.n_inputs_, bool)
         if self._slew is not None:
-            lb[0] = np.maximum(lb[0], last - self._slew)
-            ub[0] = np.minimum(ub[0], last + self._slew)
-        return lb, ub
+            lo0, hi0 = np.maximum(lb[0], last - self._slew), np.minimum(ub[0], last + self._slew)
+            broken = lo0 > hi0
+            lb[0], ub[0] = np.where(broken, lb[0], lo0), np.where(broken, ub[0], hi0)
+        return lb, ub, broken
 
-    def _guard(self, lb, ub, last, fallback):
+    def _guard(self, broken, last, fallback):
         """Reason why no input sequence can meet the limits from ``last``, or '' when one can."""
-        bad = np.flatnonzero(lb[0] > ub[0])
+        bad = np.flatnonzero(broken)
         if bad.size:
             i = int(bad[0])
             return (f"the slew window of input {self.input_names_[i]!r} around the last applied input "
                     f"{last[i]:g} µA does not meet its amplitude window [{self._lo[i]:g}, {self._hi[i]:g}] µA; "
                     "the amplitude bound takes precedence and the slew limit is broken at step 0")
-        if self._energy is not None and np.sum(fallback**2) > self._energy:
-            return (f"even the least-energy sequence allowed by the slew limit uses {np.sum(fallback**2):.4g} µA² "
-                    f"> the energy budget {self._energy:g} µA²; raise the budget or the slew limit")
+        if self._budget is not None and self._budget.excess(fallback, self._hist) > 1e-9 * self._energy:
+            worst = self._budget.excess(fallback, self._hist) + self._energy
+            return (f"even the least-energy sequence allowed by the slew limit puts {worst:.4g} µA² in a window of "
+                    f"{self.energy_window_steps_} samples (counting the inputs applied before the plan) > the energy "
+                    f"budget {self._energy:g} µA²; raise the budget or the slew limit")
         return ""
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None) -> Plan:
@@ -253,9 +273,11 @@ class _PredictiveController(BaseEstimator):
         Parameters
         ----------
         u_past : ndarray, shape (n_past, n_inputs)
-            Applied inputs, µA, ending just before the plan; the last ``past_steps_`` samples are used.
-        y_past : ndarray, shape (n_past, n_outputs)
-            Measured outputs at the same samples.
+            Applied inputs, µA, ending just before the plan; the last ``past_steps_`` samples are used for the
+            prediction and the last ``energy_window_steps_ − 1`` for the energy budget's windows (samples before a
+            shorter past count as rest: pass what was applied).
+        y_past : ndarray, shape (n_past_y, n_outputs)
+            Measured outputs ending at the same sample (at least ``past_steps_`` of them).
         target : ndarray
             Output kind: shape (horizon_steps, n_outputs) (a trajectory; longer ones are cut) or (n_outputs,)
             (constant). State kind: shape (n_states,).
@@ -280,32 +302,22 @@ class _PredictiveController(BaseEstimator):
             On malformed past windows, target or last input.
         """
         check_fitted(self, "problem_")
+        u_all = u_past
         u_past, y_past = self._check_past(u_past, y_past)
+        # the energy windows reach back into the applied past, which may be longer than the prediction's window
+        self._hist = None if self._budget is None else self._budget.history(np.asarray(u_all, np.float64))
         last = self._check_last(last_input, u_past)
         target = self._check_target(target)
-        lb, ub = self._step_bounds(last)
+        lb, ub, broken = self._step_bounds(last)
         t0 = time.perf_counter()
         # the safe fallback is needed up front only with an energy budget (guard, projection blend)
         fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._energy is not None else None
-        reason = self._guard(lb, ub, last, fallback)
+        reason = self._guard(broken, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
-        solver = "OSQP (reused)" if fast else ""
-        aux, u, status = None, None, "infeasible"
+        solver, aux, u, status = "OSQP (reused)" if fast else "", None, None, "infeasible"
         if not reason:
-            offsets = self._offsets(u_past, y_past, target)
-            if fast:
-                u, aux, status, reason = self._solve_fast(offsets, lb, ub)
-                if u is not None and self._energy is not None and np.sum(u**2) > self._energy * (1 - 1e-9):
-                    # the budget binds: the budget-free QP's answer is not the optimum; solve the cone program
-                    u, aux, status, reason = None, None, "budget", "energy budget binding"
-            if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
-                first = reason
-                u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
-                if fast and not first.startswith("energy budget"):
-                    note = "solved with the cvxpy problem instead" if u is not None else reason
-                    reason = f"fast path: {first}; {note}"
-                solver = (f"{solver} -> " if fast else "") + f"{self._cvx_solver()} (cvxpy)"
+            u, aux, status, reason, solver = self._solve(self._offsets(u_past, y_past, target), lb, ub, fast, solver)
             if u is not None:
                 u, why = self._project(u.reshape(lb.shape), lb, ub, last, fallback)
                 if u is None:
@@ -314,15 +326,37 @@ class _PredictiveController(BaseEstimator):
         is_fallback = u is None
         if is_fallback:
             u, aux = self.limits_.safe_inputs(self.horizon_steps_, last), None
-        return self._package(u, aux, u_past, y_past, target, last, lb, ub, solver, status, reason, is_fallback,
-                             elapsed)
+        return self._package(u, aux, u_past, y_past, target, last, (lb, ub, broken), solver, status, reason,
+                             is_fallback, elapsed)
+
+    def _solve(self, offsets, lb, ub, fast, solver):
+        """The fast path (when asked), handing over to the cvxpy problem when it fails or the budget binds."""
+        u = aux = None
+        status = reason = ""
+        if fast:
+            u, aux, status, reason = self._solve_fast(offsets, lb, ub)
+            if u is not None and self._budget is not None and \
+                    self._budget.excess(u, self._hist) > -1e-9 * self._energy:
+                # a budget window binds (or breaks): the budget-free QP's answer is not the optimum
+                u, aux, status, reason = None, None, "budget", "energy budget binding"
+        if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
+            first = reason
+            u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
+            if fast and not first.startswith("energy budget"):
+                note = "solved with the cvxpy problem instead" if u is not None else reason
+                reason = f"fast path: {first}; {note}"
+            solver = (f"{solver} -> " if fast else "") + f"{self._cvx_solver()} (cvxpy)"
+        return u, aux, status, reason, solver
 
     def _cvx_solver(self):
         return str(self.solver).upper()
 
     def _solve_cvxpy(self, offsets, lb, ub):
+        self._set_cost_scale(offsets)
         self._assign(offsets)
         self._lb.value, self._ub.value = lb.reshape(-1), ub.reshape(-1)
+        if self._budget is not None:
+            self._budget.assign(self._hist)
         opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
         opts.update(self.solver_options or {})
         try:
@@ -346,8 +380,8 @@ class _PredictiveController(BaseEstimator):
         if self._slew is not None:
             d = np.abs(np.diff(np.vstack([last, u]), axis=0)) - self._slew
             excess = max(excess, float(np.max(d[:, np.isfinite(self._slew)], initial=0.0)))
-        if self._energy is not None:
-            excess = max(excess, float(np.sum(u**2) - self._energy) / max(self._scale, 1.0))
+        if self._budget is not None:
+            excess = max(excess, self._budget.excess(u, self._hist) / max(self._scale, 1.0))
         if not np.all(np.isfinite(u)) or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
         u = np.clip(u, lb, ub)
@@ -356,14 +390,18 @@ class _PredictiveController(BaseEstimator):
             for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
                 u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
                 prev = u[k]
-        if self._energy is not None and np.sum(u**2) > self._energy:
-            u = _blend_into_budget(u, fallback, self._energy)
-        bad = {k: v for k, v in self.limits_.violations(u, last).items() if v}
+        if self._budget is not None:
+            u = self._budget.blend(u, fallback, self._hist)
+            if self._budget.excess(u, self._hist) > 1e-9 * self._energy:
+                return None, "internal check failed after projection: an energy budget window is over budget"
+        bad = {k: v for k, v in self.limits_.violations(u, last, energy_window_steps=self.energy_window_steps_
+                                                          ).items() if v}
         if bad:  # cannot happen after the clip above; never return such a plan
             return None, f"internal check failed after projection: {bad}"
         return u, ""
 
-    def _package(self, u, aux, u_past, y_past, target, last, lb, ub, solver, status, reason, is_fallback, elapsed):
+    def _package(self, u, aux, u_past, y_past, target, last, bounds, solver, status, reason, is_fallback, elapsed):
+        lb, ub, broken = bounds
         y = self._predict_outputs(u, aux, u_past, y_past)
         slack = np.maximum(0.0, np.maximum(y.reshape(-1) - self._ymax, self._ymin - y.reshape(-1)))
         terms = self._cost_terms(u, aux, y, u_past, y_past, target)
@@ -381,7 +419,20 @@ class _PredictiveController(BaseEstimator):
             input_names=self.input_names_, output_names=self.output_names_,
             output_bounds=None if self.limits_.output_min is None else (_ro(self.limits_.output_min),
                                                                        _ro(self.limits_.output_max)),
+            energy_window_steps=self.energy_window_steps_,
+            energy_window_max_ua2=None if self._budget is None else float(np.max(self._budget.energies(u, self._hist))),
+            broken_limits=self._broken(u, last, broken),
         )
+
+    def _broken(self, u, last, broken):
+        """Readable lines naming each hard limit the returned inputs break (only when no sequence can meet them)."""
+        lines = [f"slew on {self.input_names_[i]} at step 0: the last input {last[i]:g} µA lies more than "
+                 f"{self._slew[i]:g} µA outside the amplitude window [{self._lo[i]:g}, {self._hi[i]:g}] µA"
+                 for i in np.flatnonzero(broken)]
+        if self._budget is not None and self._budget.excess(u, self._hist) > 1e-9 * self._energy:
+            lines.append(f"energy_budget: a window of {self.energy_window_steps_} samples holds "
+                         f"{self._budget.excess(u, self._hist) + self._energy:.4g} µA² > {self._energy:g} µA²")
+        return tuple(lines)
 
     def _active(self, u, y, last, lb, ub):
         tol = 1e-6 * self._scale
@@ -395,21 +446,9 @@ class _PredictiveController(BaseEstimator):
             act["slew"] = np.isfinite(self._slew) & (d >= self._slew - tol)
         else:
             act["slew"] = np.zeros_like(u, dtype=bool)
-        act["energy_budget"] = bool(self._energy is not None and np.sum(u**2) >= self._energy * (1 - 1e-6))
+        act["energy_budget"] = bool(self._budget is not None and
+                                    self._budget.excess(u, self._hist) >= -1e-6 * self._energy)
         yv = y.reshape(-1)
         ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
         act["output_bounds"] = ((yv >= self._ymax - ytol) | (yv <= self._ymin + ytol)).reshape(y.shape)
         return act
-
-
-def _blend_into_budget(u, safe, budget):
-    """``α u + (1 − α) safe`` with the largest α in [0, 1] inside the energy budget (both meet box and slew)."""
-    target = budget * (1.0 - 1e-10)
-    d = (u - safe).reshape(-1)
-    r = safe.reshape(-1)
-    a, b, c = d @ d, 2.0 * r @ d, r @ r - target
-    if a <= 0:
-        return safe.copy()
-    alpha = (-b + np.sqrt(max(b * b - 4 * a * c, 0.0))) / (2 * a)
-    alpha = float(np.clip(alpha, 0.0, 1.0))
-    return alpha * u + (1.0 - alpha) * safe

@@ -23,6 +23,10 @@ from .fastqp import _FastQP
 
 __all__ = ["condensed_prediction"]
 
+# Costs that change by less than this over the input box are solved as they are (σ = 1): only badly scaled
+# problems (targets far beyond reach) are rescaled, well-scaled ones keep the solver's own accuracy.
+_COST_SCALE_FREE = 1e3
+
 
 def condensed_prediction(model, horizon_steps: int):
     """Stacked prediction matrices of a state-space model over a horizon.
@@ -77,16 +81,17 @@ class _CondensedCore(_PredictiveController):
         self._LpT = None if T is None else Lp @ T
         self._u = u = cp.Variable(N * m, name="inputs_ua")
         self._ew = cp.Parameter(self._LG.shape[0], name="tracking_offset")
-        cost = cp.sum_squares(self._LG @ u + self._ew) + cp.sum_squares(self._Ru @ u)
+        sw = self._cost_scale_parameters()
+        cost = cp.sum_squares(sw * (self._LG @ u) + self._ew) + cp.sum_squares(sw * (self._Ru @ u))
         if self._LpT is not None:
             self._tw = cp.Parameter(self._LpT.shape[0], name="terminal_offset")
-            cost = cost + cp.sum_squares(self._LpT @ u + self._tw)
+            cost = cost + cp.sum_squares(sw * (self._LpT @ u) + self._tw)
         self._yhi_param = cp.Parameter(self._idx_hi.size, name="output_upper_offset") if self._idx_hi.size else None
         self._ylo_param = cp.Parameter(self._idx_lo.size, name="output_lower_offset") if self._idx_lo.size else None
         cons, self._slack_var = self._common_constraints(u, lambda idx: Gy[idx] @ u, self._yhi_param,
                                                          self._ylo_param)
         if self._slack_var is not None:
-            cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
+            cost = cost + self._sw2 * (float(self.output_penalty) * cp.sum(self._slack_var))
         self.problem_ = cp.Problem(cp.Minimize(cost), cons)
         self._fast_tpl = None
         # with an energy budget the fast QP leaves the budget out; plan() keeps its answer only where the budget
@@ -143,11 +148,31 @@ class _CondensedCore(_PredictiveController):
             return None, None, status, reason
         return z[:Nm], None, status, ""
 
+    def _cost_scale_parameters(self):
+        """``√(1/σ)`` and ``1/σ`` as Parameters: the cost is divided by σ (set per plan by :meth:`_set_cost_scale`)."""
+        self._sw = cp.Parameter(nonneg=True, name="cost_scale_sqrt", value=1.0)
+        self._sw2 = cp.Parameter(nonneg=True, name="cost_scale", value=1.0)
+        self._cost_sw = 1.0
+        return self._sw
+
+    def _cost_magnitude(self, offsets):
+        """How much the cost can change over the input box: its slope at zero inputs times the bound scale."""
+        ew, tw, _ = offsets
+        g = self._LG.T @ ew
+        g = g if self._LpT is None else g + self._LpT.T @ tw
+        return 2.0 * self._scale * float(np.linalg.norm(g))
+
+    def _set_cost_scale(self, offsets):
+        """σ = the cost's magnitude beyond :data:`_COST_SCALE_FREE` (at least 1); the minimiser stays the same."""
+        sigma = max(1.0, self._cost_magnitude(offsets) / _COST_SCALE_FREE)
+        self._cost_sw = 1.0 / np.sqrt(sigma)
+        self._sw.value, self._sw2.value = self._cost_sw, 1.0 / sigma
+
     def _assign(self, offsets):
         ew, tw, fy = offsets
-        self._ew.value = ew
+        self._ew.value = self._cost_sw * ew
         if self._LpT is not None:
-            self._tw.value = tw
+            self._tw.value = self._cost_sw * tw
         if self._yhi_param is not None:
             self._yhi_param.value = self._ymax[self._idx_hi] - fy[self._idx_hi]
         if self._ylo_param is not None:

@@ -159,9 +159,10 @@ class DataPredictiveController(_CondensedCore):
         off = self._y_off
         if off is None:
             return super().plan(u_past, y_past, target=target, last_input=last_input, use_fast_path=use_fast_path)
-        u_c, y_c = self._check_past(u_past, y_past)
+        _, y_c = self._check_past(u_past, y_past)
         tgt = self._check_target(target)
-        plan = super().plan(u_c, y_c - off, target=tgt - off, last_input=last_input, use_fast_path=use_fast_path)
+        # the whole applied past goes on: the energy budget's windows may reach further back than the prediction
+        plan = super().plan(u_past, y_c - off, target=tgt - off, last_input=last_input, use_fast_path=use_fast_path)
         return _replace(plan, predicted_outputs=_ro(plan.predicted_outputs + off), target=_ro(plan.target + off))
 
     # ------------------------------------------------------------------------------------ DeePC
@@ -187,18 +188,22 @@ class DataPredictiveController(_CondensedCore):
         self._up = cp.Parameter(self._E.shape[0], name="past_inputs_and_zero_tail")
         self._yp = cp.Parameter(self._Yp.shape[0], name="past_outputs")
         self._rw = cp.Parameter(p * N, name="weighted_target")
-        cost = cp.sum_squares((self._Lz @ self._Yf) @ g - self._rw) + cp.sum_squares(self._Ru @ u)
+        # the cost is divided by σ (see _core): the weighted target and the past-output slack's data are scaled
+        sw = self._cost_scale_parameters()
+        self._yp_cost = cp.Parameter(self._Yp.shape[0], name="past_outputs_scaled")
+        cost = cp.sum_squares(sw * ((self._Lz @ self._Yf) @ g) - self._rw) + cp.sum_squares(sw * (self._Ru @ u))
         cons = [self._E @ g == self._up, self._Uf @ g == u]
         if self._lam_y is None:
             cons.append(self._Yp @ g == self._yp)
         else:
-            cost = cost + self._lam_y * cp.sum_squares(self._Yp @ g - self._yp)
+            cost = cost + self._lam_y * cp.sum_squares(sw * (self._Yp @ g) - self._yp_cost)
         if self._lam_g > 0:
-            cost = cost + self._lam_g * (cp.norm1(g) if self._reg == "l1" else cp.sum_squares(self._M @ g))
+            cost = cost + self._lam_g * (self._sw2 * cp.norm1(g) if self._reg == "l1"
+                                         else cp.sum_squares(sw * (self._M @ g)))
         more, self._slack_var = self._common_constraints(u, lambda idx: self._Yf[idx] @ g,
                                                          self._ymax[self._idx_hi], self._ymin[self._idx_lo])
         if self._slack_var is not None:
-            cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
+            cost = cost + self._sw2 * (float(self.output_penalty) * cp.sum(self._slack_var))
         self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
         quadratic = self._reg != "l1" or self._lam_g == 0
         self._elim, self._fast = None, None
@@ -325,7 +330,16 @@ class DataPredictiveController(_CondensedCore):
     def _assign(self, offsets):
         if self.method_ == "spc":
             return super()._assign(offsets)
-        self._up.value, self._yp.value, self._rw.value = offsets
+        up, yp, rw = offsets
+        self._up.value, self._yp.value, self._rw.value = up, yp, self._cost_sw * rw
+        self._yp_cost.value = self._cost_sw * yp
+
+    def _cost_magnitude(self, offsets):
+        """DeePC: the cost at ``g = 0`` (tracking and past-output terms), an upper bound on what a plan can gain."""
+        if self.method_ == "spc":
+            return super()._cost_magnitude(offsets)
+        _, yp, rw = offsets
+        return float(rw @ rw) + (0.0 if self._lam_y is None else self._lam_y * float(yp @ yp))
 
     def _aux_value(self):
         return None if self.method_ == "spc" else np.array(self._g.value)

@@ -235,18 +235,19 @@ class ModelPredictiveController(_CondensedCore):
         Db = sp.kron(sp.eye(N), sp.csr_matrix(model.D))
         y = Cb @ X[:N * n] + Db @ u
         z = X[n:] if self.target_kind == "state" else y
-        cost = cp.sum_squares(self._Lz @ z - self._rw) + cp.sum_squares(self._Ru @ u)
+        sw = self._cost_scale_parameters()  # the weighted targets are scaled when assigned
+        cost = cp.sum_squares(sw * (self._Lz @ z) - self._rw) + cp.sum_squares(sw * (self._Ru @ u))
         cons = [X[:n] == self._x0, X[n:] == IA @ X[:N * n] + IB @ u]
         if Lp is not None:
             self._xtw = cp.Parameter(n, name="weighted_terminal_state")
-            cost = cost + cp.sum_squares(Lp @ X[N * n:] - self._xtw)
+            cost = cost + cp.sum_squares(sw * (Lp @ X[N * n:]) - self._xtw)
         Cb, Db = Cb.tocsr(), Db.tocsr()
         off = np.tile(self._y_off, N)  # the model describes y − output_offset
         more, self._slack_var = self._common_constraints(
             u, lambda idx: Cb[idx] @ X[:N * n] + Db[idx] @ u, (self._ymax - off)[self._idx_hi],
             (self._ymin - off)[self._idx_lo])
         if self._slack_var is not None:
-            cost = cost + float(self.output_penalty) * cp.sum(self._slack_var)
+            cost = cost + self._sw2 * (float(self.output_penalty) * cp.sum(self._slack_var))
         self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
 
     # ------------------------------------------------------------------------------------ per plan
@@ -300,9 +301,9 @@ class ModelPredictiveController(_CondensedCore):
         if self.formulation == "condensed":
             return super()._assign(offsets)
         x0, rw, xtw = self._sparse_values
-        self._x0.value, self._rw.value = x0, rw
+        self._x0.value, self._rw.value = x0, self._cost_sw * rw
         if xtw is not None:
-            self._xtw.value = xtw
+            self._xtw.value = self._cost_sw * xtw
 
     def _predict_outputs(self, u, aux, u_past, y_past):
         _, fy = self._free(u_past, y_past)

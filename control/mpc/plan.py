@@ -23,8 +23,8 @@ class Plan:
     Attributes
     ----------
     inputs : ndarray, shape (horizon_steps, n_inputs)
-        Stimulation amplitudes, µA, in the limits' physical units. Always inside the hard limits (see ``status``
-        for the one documented exception).
+        Stimulation amplitudes, µA, in the limits' physical units. Always inside the hard limits, except when no
+        sequence can meet them (status ``"infeasible"``; ``broken_limits`` names what the fallback breaks).
     predicted_outputs : ndarray, shape (horizon_steps, n_outputs)
         The controller's prediction of the outputs under ``inputs``.
     target : ndarray, shape (horizon_steps, n_outputs) or (horizon_steps, n_states)
@@ -41,14 +41,16 @@ class Plan:
     output_slack : ndarray, shape (horizon_steps, n_outputs)
         How far each predicted output exceeds its soft bound (0 inside or unbounded), in the output's units.
     step_bounds : tuple of ndarray
-        ``(lower, upper)``, each (horizon_steps, n_inputs): the amplitude window per step (the first step also
-        within the slew window of ``last_input``), µA.
+        ``(lower, upper)``, each (horizon_steps, n_inputs): the window each step's input obeys, µA: the amplitude
+        window, for the first step intersected with the slew window of ``last_input`` (when the two do not meet,
+        the amplitude window alone, and ``broken_limits`` says the slew limit is broken at step 0).
     last_input : ndarray, shape (n_inputs,)
         The input applied before the plan, µA.
     solver : str
     status : str
-        ``"optimal"``, ``"optimal_inaccurate"`` (accepted after verification), ``"infeasible"`` (the limits
-        conflict, or the constraints have no solution) or ``"failed"`` (the solver gave no usable answer).
+        ``"optimal"``, ``"optimal_inaccurate"`` (accepted after verification), ``"infeasible"`` (no input
+        sequence meets the hard limits from ``last_input`` and the applied past) or ``"failed"`` (the solver gave
+        no usable answer; the safe fallback is returned).
     message : str
         Why a plan is not optimal, or how it was solved when the fast path had to hand over; empty otherwise.
     fallback : bool
@@ -58,6 +60,13 @@ class Plan:
     input_names, output_names : tuple of str
     output_bounds : tuple of ndarray or None
         ``(output_min, output_max)``, each (n_outputs,), ``±inf`` where unbounded; None without output bounds.
+    energy_window_steps : int or None
+        The energy budget's window, samples (None without a budget).
+    energy_window_max_ua2 : float or None
+        The largest energy of a budget window that ends inside the plan (or in its ramp to zero after it, with a
+        slew limit), counting the inputs applied before the plan, µA².
+    broken_limits : tuple of str
+        The hard limits ``inputs`` break, in words; empty unless the plan is infeasible.
     caution : str
         :data:`stimsteer.control.CAUTION` (the text of :mod:`stimsteer.sysid.caution`).
     """
@@ -79,6 +88,9 @@ class Plan:
     input_names: tuple
     output_names: tuple
     output_bounds: tuple = None
+    energy_window_steps: int = None
+    energy_window_max_ua2: float = None
+    broken_limits: tuple = ()
     caution: str = CAUTION
 
     @property
@@ -104,7 +116,7 @@ class Plan:
                 if steps.size:
                     lines.append(f"{key} on {name} at steps {_ranges(steps)}")
         if self.active_limits["energy_budget"]:
-            lines.append("energy_budget over the horizon")
+            lines.append(f"energy_budget over a window of {self.energy_window_steps} samples")
         act = self.active_limits["output_bounds"]
         for j, name in enumerate(self.output_names):
             steps = np.flatnonzero(act[:, j])
@@ -123,6 +135,8 @@ class Plan:
             "active_counts": {k: int(np.sum(v)) for k, v in self.active_limits.items()},
             "output_slack_total": self.slack_total, "output_slack_max": float(np.max(self.output_slack, initial=0)),
             "input_energy_ua2": float(np.sum(self.inputs**2)),
+            "energy_window_steps": self.energy_window_steps, "energy_window_max_ua2": self.energy_window_max_ua2,
+            "broken_limits": list(self.broken_limits),
             "input_names": list(self.input_names), "output_names": list(self.output_names),
             "caution": self.caution,
         }

@@ -1,6 +1,8 @@
 """Tests of the `stimsteer plan` command (files, printed caution, error lines) and its helpers."""
 
+import hashlib
 import json
+import os
 
 import numpy as np
 import pandas as pd
@@ -12,6 +14,8 @@ from stimsteer.sysid import Session, StateSpaceModel
 from stimsteer.sysid.exceptions import SessionError
 from stimsteer.sysid.io import save_session
 from stimsteer.sysid.storage import save_predictor
+from stimsteer.sysid import load_pattern
+from stimsteer.sysid._records import versions
 
 LIMITS = """
 [energy]
@@ -55,7 +59,8 @@ def test_plan_writes_table_pattern_figure_and_summary(files, capsys):
                "--out", str(d / "out"), "--horizon-steps", "8"])
     out = capsys.readouterr().out
     assert rc == 0 and CAUTION in out and "status optimal" in out
-    table = pd.read_csv(d / "out" / "plan.csv")
+    assert (d / "out" / "plan.csv").read_text().startswith("# status: optimal (optimised plan)\n")
+    table = pd.read_csv(d / "out" / "plan.csv", comment="#")
     assert table.shape[0] == 8
     assert list(table.columns[:3]) == ["time [s] @ 200 Hz", "in:site_a [uA]", "in:site_b [uA]"]
     assert "target:lfp_0 [uV]" in table.columns and "target:lfp_1 [uV]" not in table.columns
@@ -65,7 +70,7 @@ def test_plan_writes_table_pattern_figure_and_summary(files, capsys):
     assert summary["caution"] == CAUTION and summary["status"] == "optimal"
     assert summary["tracked_outputs"] == ["lfp_0"] and "energy_budget" in summary["active_counts"]
     assert (d / "out" / "plan.png").stat().st_size > 1000
-    pattern = pd.read_csv(d / "out" / "plan_pattern.csv")
+    pattern = pd.read_csv(d / "out" / "plan_pattern.csv", comment="#")
     assert list(pattern.columns) == ["time [s] @ 200 Hz", "in:site_a [uA]", "in:site_b [uA]"]
 
 
@@ -194,3 +199,83 @@ def test_plan_notes_inputs_recorded_in_another_unit_than_the_limits(files, capsy
     out = capsys.readouterr().out
     assert rc == 0
     assert "note: the model's inputs were recorded in mW, while the limits file declares µA" in out
+
+
+# ------------------------------------------------------------------------------------------------ status, exit codes
+def _session_ending_at(d, model, last_rows, name="hot.h5"):
+    """A session of two trials whose second trial ends with the given input rows (site_a, site_b)."""
+    u = np.full((40, 2), 0.5)
+    u[40 - len(last_rows):] = last_rows
+    session = Session(u=u, y=model.simulate(u), sample_rate_hz=200.0, trials=[(0, 20), (20, 40)],
+                      input_names=model.input_names, output_names=model.output_names,
+                      input_units=("uA", "uA"), output_units=("uV", "uV"))
+    save_session(session, d / name)
+    return d / name
+
+
+def _run_plan(d, session, out):
+    return main(["plan", str(d / "model.h5"), "--target", "lfp_0=1.5", "--limits", str(d / "limits.toml"),
+                 "--out", str(d / out), "--horizon-steps", "8", "--from-trial", f"{session}:1"])
+
+
+def test_a_plan_whose_slew_window_misses_the_amplitude_window_exits_3_and_writes_the_obeyed_window(files, capsys):
+    # issue 12: this plan exited 0, and plan.csv wrote step 0 with lower 4 > upper 2 beside an input outside it
+    d, model = files
+    session = _session_ending_at(d, model, [[1.0, 5.0]])  # site_b ends at 5 µA; its window is ±2, slew 1
+    assert _run_plan(d, session, "out") == 3
+    captured = capsys.readouterr()
+    assert "broken limit: slew on site_b at step 0" in captured.out
+    assert captured.err.count("\n") == 1 and "exit code 3" in captured.err
+    for name in ("plan.csv", "plan_pattern.csv"):
+        assert (d / "out" / name).read_text().startswith("# status: infeasible (SAFE FALLBACK")
+    table = pd.read_csv(d / "out" / "plan.csv", comment="#")
+    for site in ("site_a", "site_b"):
+        low, high, u = (table[f"{k}:{site} [uA]"] for k in ("lower", "upper", "in"))
+        assert (low <= high).all() and (u >= low).all() and (u <= high).all()
+    assert table["lower:site_b [uA]"][0] == -2.0 and table["upper:site_b [uA]"][0] == 2.0
+    summary = json.loads((d / "out" / "plan.json").read_text())
+    assert summary["status"] == "infeasible" and summary["fallback"] is True
+    assert summary["broken_limits"][0].startswith("slew on site_b at step 0")
+    pattern = load_pattern(d / "out" / "plan_pattern.csv")  # `predict --pattern` still reads it
+    np.testing.assert_allclose(pattern.u, table[["in:site_a [uA]", "in:site_b [uA]"]].to_numpy())
+
+
+def test_a_plan_after_a_costly_trial_end_is_held_to_the_energy_left_in_the_window(files, capsys):
+    # the budget (50 µA² per 8 samples) counts the inputs applied at the end of the trial, further back than the
+    # model's past window of 3 samples
+    d, model = files
+    session = _session_ending_at(d, model, [[3.0, 1.0]] * 4 + [[0.0, 0.0]] * 3)  # 40 µA² in the last 7 samples
+    assert _run_plan(d, session, "ok") == 0
+    table = pd.read_csv(d / "ok" / "plan.csv", comment="#")
+    u = table[["in:site_a [uA]", "in:site_b [uA]"]].to_numpy()
+    assert np.sum(u[0] ** 2) <= 10.0 + 1e-6  # the window ending at step 0 holds the 40 µA² already applied
+    session = _session_ending_at(d, model, [[3.0, 2.0]] * 7, "hotter.h5")  # 91 µA²: even the ramp to zero cannot fit
+    assert _run_plan(d, session, "bad") == 3
+    summary = json.loads((d / "bad" / "plan.json").read_text())
+    assert summary["status"] == "infeasible" and "energy budget" in summary["message"]
+    assert any(b.startswith("energy_budget") for b in summary["broken_limits"])
+
+
+def test_exit_codes_are_documented_in_the_help(capsys):
+    with pytest.raises(SystemExit):
+        main(["plan", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "exit codes:" in text
+    for code in ("0 an optimal plan", "3 no optimal plan", "2 bad input", "1 internal error"):
+        assert code in text
+
+
+def test_plan_json_records_the_model_hash_session_hash_and_versions(files, capsys):
+    d, model = files
+    prov = {"session": {"input_names": ["site_a", "site_b"], "input_units": ["uA", "uA"], "content_hash": "abc123",
+                        "output_names": ["lfp_0", "lfp_1"], "output_units": ["uV", "uV"], "sample_rate_hz": 200.0}}
+    (d / "models").mkdir()
+    save_predictor(model, d / "models" / "m.h5", provenance=prov)
+    assert main(["plan", str(d / "models" / "m.h5"), "--target", "lfp_0=1", "--limits", str(d / "limits.toml"),
+                 "--out", str(d / "plan"), "--horizon-steps", "4"]) == 0
+    summary = json.loads((d / "plan" / "plan.json").read_text())
+    assert summary["model_sha256"] == hashlib.sha256((d / "models" / "m.h5").read_bytes()).hexdigest()
+    assert summary["session_content_hash"] == "abc123"
+    assert summary["versions"]["numpy"] == versions()["numpy"]
+    # relative to the plan folder: the record survives moving the folder tree (the demo builds it in a temporary one)
+    assert summary["model_file"] == os.path.join("..", "models", "m.h5")

@@ -62,7 +62,7 @@ def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(demo_r
         # the plan file itself must stay inside the hard window it prints beside every step
         import pandas as pd
 
-        table = pd.read_csv(out / f"plan_{route}" / "plan.csv")
+        table = pd.read_csv(out / f"plan_{route}" / "plan.csv", comment="#")
         for col in [c for c in table.columns if c.startswith("in:")]:
             name = col[3:].split(" [")[0]
             low = table[[c for c in table.columns if c.startswith(f"lower:{name} ")][0]]

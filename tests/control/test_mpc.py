@@ -8,6 +8,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sklearn.base import clone
 
+from stimsteer.control._energy_windows import window_energies
 from stimsteer.control.cli import CAUTION
 from stimsteer.control.limits import StimLimits
 from stimsteer.control.mpc import (
@@ -310,7 +311,8 @@ def test_projection_clips_tolerance_level_excess_only(rng):
     model = _model(rng)
     lim = _limits()
     ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=3).fit()
-    lb, ub = ctrl._step_bounds(np.zeros(2))
+    lb, ub, _ = ctrl._step_bounds(np.zeros(2))
+    ctrl._hist = None if ctrl._budget is None else ctrl._budget.history(np.zeros((1, 2)))  # planned from rest
     safe = lim.safe_inputs(3, np.zeros(2))
     near = np.array([[0.4 + 1e-7, 0.0], [0.8, 0.5], [1.0 + 1e-8, 0.5]])
     u, why = ctrl._project(near, lb, ub, np.zeros(2), safe)
@@ -495,10 +497,14 @@ def test_no_plan_sample_ever_exceeds_a_hard_limit(rng):
         if inside:
             assert counts["slew"] == 0
         energy_conflict = "energy budget" in plan.message
-        if inside and not energy_conflict:
+        W = ctrl.energy_window_steps_
+        if inside and not energy_conflict and W is not None:
             assert counts["energy_budget"] == 0
-        if energy_conflict:  # the least-energy sequence already breaks the budget: nothing could meet it
-            assert np.sum(lim.safe_inputs(ctrl.horizon_steps_, last) ** 2) > lim.energy_budget_ua2
+            # every budget window ending in the plan, the random past counted as applied (rolling windows)
+            assert np.all(window_energies(plan.inputs, W, history=u) <= lim.energy_budget_ua2 * (1 + 1e-9))
+        if energy_conflict:  # the least-energy sequence (and its ramp to zero) already breaks a window
+            safe = lim.safe_inputs(ctrl.horizon_steps_ + W - 1, last)
+            assert np.max(window_energies(safe, W, history=u)) > lim.energy_budget_ua2
         outcomes["ok" if plan.ok else plan.status if plan.status != "optimal" else "failed"] += 1
 
     check()

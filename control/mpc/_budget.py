@@ -1,0 +1,116 @@
+"""The energy budget of a plan over rolling windows that start in the applied past: :class:`_RollingBudget`.
+
+With a budget ``E`` over windows of ``W`` samples, a plan ``u_0 … u_{N−1}`` made after the applied inputs
+``u_{−W+1} … u_{−1}`` must keep ``Σ_{k=j−W+1..j} ‖u_k‖² <= E`` for every window ending at a plan step ``j``. With a
+slew limit the plan cannot stop at once after its last step, so the windows that end during the ramp to zero after
+it (the safe fallback of :meth:`~stimsteer.control.limits.StimLimits.safe_inputs`, ``|u_{N−1+t}| = max(|u_{N−1}| −
+t·slew, 0)``) count too, for ``t = 1 … W−1`` (later windows hold only ramp steps, each smaller than ``u_{N−1}``, and
+are dominated). They bind only when the window is longer than the horizon: for ``W <= N`` the slew limit already
+keeps them below the windows inside the plan.
+
+Recursive feasibility (why the closed loop never runs out of budget). If a plan meets these windows and its first
+step is applied, the rest of it followed by the first ramp step meets every window of the next plan: the windows it
+adds are the ramp windows of the previous plan. So a loop that starts inside the budget stays inside it, whatever
+the plant does. The safe fallback is, at every step and for every input, the smallest magnitude any sequence
+within the amplitude and slew limits can reach, so it has the least energy in every window at once: when it breaks
+a window, no plan can meet it, and the plan says so (status ``"infeasible"``).
+
+In the cvxpy problem the windows are linear in per-step energies ``e_k >= ‖u_k‖²`` and ramp energies
+``r_t >= Σ_i max(|u_{N−1,i}| − t·slew_i, 0)²`` (convex), with the budget left by the applied past as a Parameter:
+the problem stays DPP.
+"""
+
+from __future__ import annotations
+
+import cvxpy as cp
+import numpy as np
+
+from ...sysid import SessionError
+from .._energy_windows import check_window
+
+__all__: list = []
+
+
+class _RollingBudget:
+    """Window matrices and checks of an energy budget over rolling windows, for a plan of ``N`` steps."""
+
+    def __init__(self, budget: float, window: int, horizon_steps: int, slew):
+        self.budget, self.window, self.N = float(budget), check_window(window), int(horizon_steps)
+        W, N = self.window, self.N
+        self.fin = np.zeros(0, bool) if slew is None else np.isfinite(slew)
+        self.slew = None if slew is None else np.asarray(slew, np.float64)
+        n_tail = W - 1 if self.fin.any() else 0
+        # the sequence [history (W−1) | plan (N) | ramp (n_tail)]; one row per window ending in the plan or ramp
+        n_seq = W - 1 + N + n_tail
+        rows = np.zeros((N + n_tail, n_seq))
+        for r, end in enumerate(range(W - 1, n_seq)):
+            rows[r, end - W + 1:end + 1] = 1.0
+        self.Mh, self.Mp, self.Mr = rows[:, :W - 1], rows[:, W - 1:W - 1 + N], rows[:, W - 1 + N:]
+        self.n_tail = n_tail
+
+    # ------------------------------------------------------------------------------------ numbers
+    def history(self, u_past) -> np.ndarray:
+        """Per-step energies of the last ``W − 1`` applied samples (rest before a shorter past), shape (W − 1,)."""
+        h = np.asarray(u_past, np.float64)[max(0, len(u_past) - (self.window - 1)):]
+        if not np.all(np.isfinite(h)):
+            raise SessionError(f"u_past holds NaN or infinite values in its last {self.window - 1} samples, which "
+                               "count in the energy budget's window; plan from a clean stretch of data.")
+        e = np.sum(h**2, axis=1) if h.size else np.zeros(0)
+        return np.concatenate([np.zeros(self.window - 1 - e.size), e])
+
+    def ramp_energies(self, last) -> np.ndarray:
+        """``r_t`` of the ramp to zero after a plan ending at ``last``, t = 1 … n_tail."""
+        if not self.n_tail:
+            return np.zeros(0)
+        t = np.arange(1, self.n_tail + 1)[:, None]
+        a = np.abs(np.asarray(last, np.float64)[self.fin])[None, :]
+        return np.sum(np.maximum(a - t * self.slew[self.fin][None, :], 0.0) ** 2, axis=1)
+
+    def energies(self, u, hist) -> np.ndarray:
+        """Energy of every constrained window for the plan ``u`` (N, m) after the past energies ``hist``."""
+        u = np.asarray(u, np.float64).reshape(self.N, -1)
+        return self.Mh @ hist + self.Mp @ np.sum(u**2, axis=1) + self.Mr @ self.ramp_energies(u[-1])
+
+    def excess(self, u, hist) -> float:
+        """How far the largest window exceeds the budget, µA² (negative: inside)."""
+        return float(np.max(self.energies(u, hist)) - self.budget)
+
+    def blend(self, u, safe, hist):
+        """``α u + (1 − α) safe`` with the largest α in [0, 1] inside every window (``safe`` must be inside).
+
+        Every window energy is convex in α, so the α inside the budget form an interval from 0: bisection.
+        """
+        cap = self.budget * (1.0 - 1e-10)
+        if np.max(self.energies(u, hist)) <= cap:
+            return u
+        lo, hi = 0.0, 1.0
+        for _ in range(60):
+            mid = 0.5 * (lo + hi)
+            if np.max(self.energies(mid * u + (1.0 - mid) * safe, hist)) <= cap:
+                lo = mid
+            else:
+                hi = mid
+        return lo * u + (1.0 - lo) * safe
+
+    # ------------------------------------------------------------------------------------ cvxpy
+    def constraints(self, u, m: int) -> list:
+        """The window constraints on the stacked inputs ``u`` (N·m,); sets ``self.left``, the budget Parameter."""
+        N = self.N
+        self.left = cp.Parameter(self.Mp.shape[0], name="energy_budget_left_ua2")
+        e = cp.Variable(N, nonneg=True, name="step_energy_ua2")
+        U = cp.reshape(u, (N, m), order="C")
+        cons = [cp.sum(cp.square(U), axis=1) <= e]
+        lhs = self.Mp @ e
+        if self.n_tail:
+            r = cp.Variable(self.n_tail, nonneg=True, name="ramp_energy_ua2")
+            a = cp.abs(U[N - 1, :])
+            idx = np.flatnonzero(self.fin)
+            cons += [cp.sum(cp.square(cp.pos(a[idx] - t * self.slew[idx]))) <= r[t - 1]
+                     for t in range(1, self.n_tail + 1)]
+            lhs = lhs + self.Mr @ r
+        cons.append(lhs <= self.left)
+        return cons
+
+    def assign(self, hist) -> None:
+        """The budget left in each window by the applied past."""
+        self.left.value = self.budget - self.Mh @ hist
