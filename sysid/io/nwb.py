@@ -80,8 +80,10 @@ def _nwb_series(group, kind: str, order, path: Path) -> list[dict]:
     series = [ts for ts in group.values() if isinstance(ts, pynwb.TimeSeries)]
     if not series:
         where = "/stimulus/presentation" if kind == "stimulus" else "/acquisition"
-        raise FileFormatError(f"{path} is an NWB file without {kind} TimeSeries in {where}; stimsteer needs the "
-                              "stimulation inputs in the stimulus group and the recorded outputs in acquisition.")
+        raise FileFormatError(f"{path} is an NWB file without {kind} TimeSeries in {where}; stimsteer reads the "
+                              "stimulation inputs from the stimulus group and the recorded outputs from acquisition. "
+                              "For series elsewhere (processing modules) or at other rates, name them in a "
+                              "description and build the session with `stimsteer convert`.")
     if order is not None and sorted(order) == sorted(ts.name for ts in series):
         series.sort(key=lambda ts: order.index(ts.name))
     out = []
