@@ -26,6 +26,8 @@ __all__ = ["read_bids", "find_bids_root", "STIM_SITE", "STIM_CURRENT"]
 _HINT = 'install the optional BIDS support with: pip install "stimsteer[bids]"'
 STIM_SITE = "electrical_stimulation_site"
 STIM_CURRENT = "electrical_stimulation_current"
+# the files mne-bids opens as raw data (a BrainVision recording is its .vhdr header, not the .eeg/.vmrk beside it)
+_DATA_EXTENSIONS = (".vhdr", ".edf", ".bdf", ".set", ".fif", ".nwb", ".mefd")
 _ENTITIES = ("subject", "session", "task", "run", "acquisition")
 
 
@@ -64,10 +66,10 @@ def read_bids(root, *, subject: str, task: str, session: str | None = None, run=
     mne_bids = _import_mne_bids(root)
     bp = mne_bids.BIDSPath(root=root, subject=subject, session=session, task=task, run=run,
                            acquisition=acquisition, datatype=datatype)
-    matches = [p for p in bp.match() if p.suffix == datatype and p.extension != ".json"]
+    matches = [p for p in bp.match() if p.suffix == datatype and p.extension in _DATA_EXTENSIONS]
     if not matches:
         have = sorted({p.basename for p in mne_bids.BIDSPath(root=root, datatype=datatype).match()
-                       if p.suffix == datatype})
+                       if p.suffix == datatype and p.extension in _DATA_EXTENSIONS})
         raise FileFormatError(f"the BIDS dataset {root} has no {datatype} recording for subject={subject!r}, "
                               f"session={session!r}, task={task!r}, run={run!r}; it has {have or 'none'}.")
     try:

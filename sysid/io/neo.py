@@ -35,7 +35,8 @@ def _import_neo(what: str):
 
 def _seconds(q, pq, what: str) -> np.ndarray:
     try:
-        return np.asarray(q.rescale(pq.s).magnitude, dtype=np.float64)
+        # atleast_1d: a MATLAB round trip squeezes one-element arrays to scalars
+        return np.atleast_1d(np.asarray(q.rescale(pq.s).magnitude, dtype=np.float64))
     except ValueError as exc:
         raise SessionError(f"{what} cannot be converted to seconds ({exc}).") from None
 
@@ -45,7 +46,7 @@ def _signal_channels(sig, pq) -> list[Channel]:
         rate = float(sig.sampling_rate.rescale(pq.Hz).magnitude)
     except ValueError as exc:
         raise SessionError(f"the sampling rate of signal '{sig.name}' cannot be converted to Hz ({exc}).") from None
-    t0 = float(_seconds(sig.t_start, pq, f"the start time of signal '{sig.name}'"))
+    t0 = float(_seconds(sig.t_start, pq, f"the start time of signal '{sig.name}'")[0])
     data = np.asarray(sig.magnitude, dtype=np.float64).reshape(sig.shape[0], -1)
     unit = sig.units.dimensionality.string
     names = sig.array_annotations.get("channel_names") if sig.array_annotations else None
@@ -84,12 +85,12 @@ def recording_from_neo(block, *, segment: int = 0, source: str = "neo.Block") ->
         raise SessionError(f"the Neo segment repeats channel names {dupes}; name its signals apart.")
     events = []
     for ev in seg.events:
-        for t, lab in zip(_seconds(ev.times, pq, f"event '{ev.name}'"), ev.labels):
+        for t, lab in zip(_seconds(ev.times, pq, f"event '{ev.name}'"), np.atleast_1d(ev.labels)):
             events.append({"time_s": float(t), "label": str(lab) or str(ev.name), "duration_s": 0.0})
     for ep in seg.epochs:
         times = _seconds(ep.times, pq, f"epoch '{ep.name}'")
         durs = _seconds(ep.durations, pq, f"epoch '{ep.name}'")
-        for t, d, lab in zip(times, durs, ep.labels):
+        for t, d, lab in zip(times, durs, np.atleast_1d(ep.labels)):
             events.append({"time_s": float(t), "label": str(lab) or str(ep.name), "duration_s": float(d)})
     spikes = {str(st.name or f"unit_{i}"): _seconds(st.times, pq, f"spike train '{st.name}'")
               for i, st in enumerate(seg.spiketrains)}
