@@ -2,7 +2,8 @@
 
 Every function reads the stimulation onsets from the session's inputs (:func:`stimulation_onsets`: a site turning
 on, ``|u|`` rising above a threshold, either polarity) and changes the **outputs only**: the inputs are never
-touched. Blanking (marking samples invalid) lives in :func:`stimsteer.sysid.prep.blank_artifacts`.
+touched. :func:`blank_artifacts` (also exported by :mod:`stimsteer.sysid.prep`) marks samples invalid instead; the
+mask is per sample, so it hides the inputs of the blanked samples too, and warns when that leaves an input unseen.
 
 Detection
 ---------
@@ -30,14 +31,15 @@ the last sample before the onset and the first sample after the window (inside t
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
 
-from .exceptions import SessionError
+from .exceptions import SessionError, StimsteerWarning
 from .session import Session
 
-__all__ = ["stimulation_onsets", "ArtifactReport", "detect_artifacts", "subtract_template",
+__all__ = ["blank_artifacts", "stimulation_onsets", "ArtifactReport", "detect_artifacts", "subtract_template",
            "interpolate_artifacts", "ARTIFACT_RATIO_THRESHOLD"]
 
 #: Post-onset over pre-onset output power above which a channel is flagged (our own choice: a 50 % rise of the
@@ -129,15 +131,15 @@ class ArtifactReport:
     locked_power: np.ndarray
 
     def warnings(self) -> list[str]:
-        """One warning per flagged channel, with its figures and the fix."""
-        out = []
-        for name in self.flagged:
-            j = self.channels.index(name)
-            out.append(f"{name}: output power in the {1e3 * self.window_samples / self.sample_rate_hz:.1f} ms after "
-                       f"stimulation onsets is {self.ratio[j]:.2f}x the pre-onset level ({self.n_onsets} onsets): "
-                       "a stimulation artifact; remove it (stimsteer convert with [artifacts], or "
-                       "subtract_template / interpolate_artifacts / blank_artifacts) before fitting.")
-        return out
+        """One warning naming the flagged channels with their ratios, and the fix (empty when none is flagged)."""
+        if not self.flagged:
+            return []
+        ratios = ", ".join(f"{n} {self.ratio[self.channels.index(n)]:.1f}x" for n in self.flagged)
+        ms = 1e3 * self.window_samples / self.sample_rate_hz
+        return [f"stimulation artifacts in {len(self.flagged)} of {len(self.channels)} output channel(s): the output "
+                f"power in the {ms:.1f} ms after {self.n_onsets} stimulation onsets exceeds the pre-onset level "
+                f"({ratios}; flagged above {self.ratio_threshold:g}x). Remove them before fitting: stimsteer convert "
+                "with an [artifacts] table, or subtract_template / interpolate_artifacts / blank_artifacts."]
 
     def to_text(self) -> str:
         head = (f"artifacts (output power in {self.window_samples} sample(s) from {self.n_onsets} stimulation "
@@ -298,3 +300,92 @@ def interpolate_artifacts(session: Session, *, window_s: float, threshold: float
     step = {"step": "interpolate_artifacts", "window_s": float(window_s), "window_samples": width,
             "threshold": float(threshold), "inputs": [session.input_names[c] for c in cols], "n_onsets": done}
     return session.replace(y=y, metadata=_record(session, step))
+
+
+# ==================================================================================================== artifacts
+def _onset_columns(session: Session, inputs) -> list[int]:
+    if session.n_inputs == 0:
+        raise SessionError("blank_artifacts needs at least one input channel to find stimulation onsets.")
+    if inputs is None:
+        return list(range(session.n_inputs))
+    names = [inputs] if isinstance(inputs, str) else list(inputs)
+    unknown = [n for n in names if n not in session.input_names]
+    if unknown or not names:
+        raise SessionError(f"inputs {unknown or names} are not input channels of this session; choose among "
+                           f"{list(session.input_names)}.")
+    return [session.input_names.index(n) for n in names]
+
+
+def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float = 0.0, inputs=None) -> Session:
+    """Mark invalid a window of ``window_s`` seconds starting at every stimulation onset.
+
+    Parameters
+    ----------
+    session : Session
+    window_s : float
+        Length of the blanked window in seconds (> 0); it covers ``max(1, ceil(window_s · sample_rate_hz))``
+        samples, starting at the onset sample itself.
+    onset_threshold : float, default 0.0
+        In the inputs' units. An onset is a sample where an input's magnitude ``|u|`` is above the threshold while
+        the sample before it was not: a site turning on, with either polarity (cathodic-first and anodic-first
+        pulses both make artifacts); a polarity switch while the site stays on is not an onset. A NaN counts as
+        off; a first sample above the threshold is an onset.
+    inputs : str or sequence of str, optional
+        Input channels that define onsets; default all.
+
+    Returns
+    -------
+    Session
+        With the blanked samples marked invalid (inputs and outputs untouched); ``metadata["prep"]`` records the
+        number of onsets and of newly masked samples.
+
+    Warns
+    -----
+    StimsteerWarning
+        When every stimulating sample of an input is blanked: the mask is per sample, so regression rows that see a
+        blanked output are dropped together with the inputs of those samples; with one sample per pulse nothing of
+        that input is left. Use :func:`stimsteer.sysid.artifacts.subtract_template` or
+        :func:`~stimsteer.sysid.artifacts.interpolate_artifacts`, which change the outputs only.
+
+    Raises
+    ------
+    SessionError
+        A non-positive window, a non-finite threshold, unknown input names, or a session without inputs.
+    """
+    _check_session(session, "blank_artifacts")
+    try:
+        window_s, onset_threshold = float(window_s), float(onset_threshold)
+    except (TypeError, ValueError):
+        raise SessionError("window_s and onset_threshold must be numbers.") from None
+    if not math.isfinite(window_s) or window_s <= 0:
+        raise SessionError(f"window_s must be a positive number of seconds; got {window_s}.")
+    if not math.isfinite(onset_threshold):
+        raise SessionError(f"onset_threshold must be finite; got {onset_threshold}.")
+    with np.errstate(invalid="ignore"):
+        above = np.abs(session.u[:, _onset_columns(session, inputs)]) > onset_threshold
+    before = np.vstack([np.zeros((1, above.shape[1]), dtype=bool), above[:-1]])
+    onsets = np.flatnonzero((above & ~before).any(axis=1))
+    width = max(1, math.ceil(window_s * session.sample_rate_hz - 1e-9))
+    hits = np.zeros(session.n_samples + 1, dtype=np.int64)
+    np.add.at(hits, onsets, 1)
+    np.add.at(hits, np.minimum(onsets + width, session.n_samples), -1)
+    mask = session.mask & (np.cumsum(hits[:-1]) == 0)
+    step = {"step": "blank_artifacts", "window_s": window_s, "onset_threshold": onset_threshold,
+            "n_onsets": int(onsets.size), "n_blanked": int((session.mask & ~mask).sum())}
+    _warn_if_inputs_lost(session, mask)
+    return session.replace(mask=mask, metadata=_record(session, step))
+
+
+def _warn_if_inputs_lost(session: Session, mask: np.ndarray) -> None:
+    # The session's mask is per sample, so blanking hides the inputs of the blanked samples too; when every
+    # stimulating sample of a site is blanked (one sample per pulse), nothing is left to identify its effect.
+    inside = session._in_trial()
+    lost = [name for j, name in enumerate(session.input_names)
+            if np.any(session.u[session.mask & inside, j] != 0) and not np.any(session.u[mask & inside, j] != 0)]
+    if lost:
+        warnings.warn(
+            f"blanking masked every stimulating sample of input(s) {lost}: the mask is per sample, so those inputs "
+            "are never seen and their effect cannot be identified (a fit reports that the input never varies). "
+            "Change the outputs only instead: stimsteer.sysid.artifacts.subtract_template or interpolate_artifacts "
+            "(or [artifacts] method = \"template\" / \"interpolate\" in a description).",
+            StimsteerWarning, stacklevel=3)
