@@ -58,6 +58,7 @@ ANTI_ALIASING = {
     "mean": "mean of the source samples inside each model sample period [t_k, t_k + 1/rate)",
     "none": "nearest earlier source sample, no anti-aliasing filter",
 }
+_SAME_RATE = "same rate: the source samples as they are (nearest earlier sample for a fractional offset)"
 
 
 # ==================================================================================================== trials
@@ -314,7 +315,8 @@ class ClockAlignment:
     def to_dict(self) -> dict:
         return {"channel": self.channel, "source_rate_hz": self.source_rate_hz,
                 "target_rate_hz": self.target_rate_hz, "offset_s": self.offset_s,
-                "anti_aliasing": self.anti_aliasing, "method": ANTI_ALIASING[self.anti_aliasing],
+                "anti_aliasing": self.anti_aliasing,
+                "method": _SAME_RATE if self.source_rate_hz == self.target_rate_hz else ANTI_ALIASING[self.anti_aliasing],
                 "n_samples_outside_source": self.n_outside, "overlap_s": list(self.overlap_s)}
 
 
@@ -350,7 +352,9 @@ def align_channel(data, *, source_rate_hz: float, source_start_s: float, target_
     covered = (tk >= s0 - 1e-9) & (tk < s1 - 1e-9)
     values = np.full(n_target, np.nan)
     values[covered] = _resampled(x, fs, ft, tk[covered] - s0, anti_aliasing)
-    align = ClockAlignment(name, fs, ft, float(offset_s), anti_aliasing, int((~covered).sum()), (lo, hi))
+    # at equal rates no filter runs, whatever was asked: record what was done
+    align = ClockAlignment(name, fs, ft, float(offset_s), "none" if fs == ft else anti_aliasing,
+                           int((~covered).sum()), (lo, hi))
     return values, covered, align
 
 

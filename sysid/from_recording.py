@@ -1,7 +1,7 @@
 """A session from a lab's recording and a description: the Python side of ``stimsteer convert``.
 
 :func:`read_recording` opens any source recognised by content (EDF/BDF, BrainVision, FIF, Neo MATLAB, NWB, a BIDS
-dataset) or by the Neo IO the description names; :func:`build_session` turns a
+dataset, or one of our own session files, whose trials are kept) or by the Neo IO the description names; :func:`build_session` turns a
 :class:`~stimsteer.sysid.io._recording.Recording` into a :class:`~stimsteer.sysid.session.Session` following a
 :class:`~stimsteer.sysid.description.Description`. :func:`session_from_mne` and :func:`session_from_neo` do both for
 objects already in memory. The steps, in order: channels onto the model grid (clock alignment with the stated
@@ -26,7 +26,7 @@ from .io._recording import Recording
 from .prep import blank_artifacts
 from .session import Session
 
-__all__ = ["read_recording", "build_session", "session_from_mne", "session_from_neo"]
+__all__ = ["read_recording", "build_session", "session_from_mne", "session_from_neo", "recording_from_session"]
 
 
 def read_recording(path, description: Description) -> Recording:
@@ -42,6 +42,10 @@ def read_recording(path, description: Description) -> Recording:
     if rec_opts.get("neo_io"):
         from .io.neo import read_neo_file
         return read_neo_file(path, io=str(rec_opts["neo_io"]), segment=int(rec_opts.get("segment", 0)))
+    kind = _session_kind(path)
+    if kind is not None:
+        from .io import load_session
+        return recording_from_session(load_session(path), source=str(path))
     kind = detect_recording(path)
     if kind in ("edf", "bdf", "brainvision", "fif"):
         from .io.mne import read_mne_file
@@ -59,6 +63,36 @@ def read_recording(path, description: Description) -> Recording:
                                     "[recording] bids = {subject = ..., task = ...} (and session, run, acquisition "
                                     "when the dataset has them).")
     return read_bids(path, **{k: (str(v) if v is not None else None) for k, v in entities.items()})
+
+
+def _session_kind(path) -> str | None:
+    from .io.detect import detect_format
+    from .exceptions import FileFormatError
+
+    try:
+        kind = detect_format(path)
+    except (FileFormatError, OSError):
+        return None
+    return kind if kind in ("hdf5", "csv", "parquet") else None
+
+
+def recording_from_session(session: Session, *, source: str = "session") -> Recording:
+    """A session file seen as a recording (so a description can re-select channels, remove artifacts, add
+    biomarkers): every input and output is a channel on the session's grid, masked runs are bad intervals, and the
+    trials are kept (used when the description has no ``[trials]``)."""
+    from .io._recording import Channel
+
+    rate, t0 = session.sample_rate_hz, float(session.metadata.get("start_time_s", 0.0))
+    chans = [Channel(n, np.array(session.u[:, j]), unit, rate, t0, "input")
+             for j, (n, unit) in enumerate(zip(session.input_names, session.input_units))]
+    chans += [Channel(n, np.array(session.y[:, j]), unit, rate, t0, "output")
+              for j, (n, unit) in enumerate(zip(session.output_names, session.output_units))]
+    flags = np.concatenate(([0], (~session.mask).astype(np.int8), [0]))
+    edges = np.flatnonzero(np.diff(flags))
+    bad = [(t0 + a / rate, t0 + b / rate) for a, b in zip(edges[::2], edges[1::2])]
+    meta = {"format": "stimsteer-session", "source": source, "session_trials": session.trials.tolist(),
+            "session_metadata": dict(session.metadata)}
+    return Recording(channels=tuple(chans), bad_intervals=bad, metadata=meta)
 
 
 # ==================================================================================================== the grid
@@ -235,7 +269,10 @@ def _trial_times(session: Session, rec: Recording, spec: dict, grid) -> np.ndarr
 
 def _apply_trials(session: Session, rec: Recording, spec: dict, grid) -> Session:
     if not spec:
-        return session
+        kept = rec.metadata.get("session_trials")
+        same_grid = kept is not None and session.metadata.get("start_time_s", 0.0) == rec.channels[0].start_time_s \
+            and session.sample_rate_hz == rec.channels[0].sample_rate_hz
+        return session.replace(trials=kept) if same_grid else session
     rate, t0, n = grid
     if "before_s" not in spec or "after_s" not in spec:
         raise InvalidParameterError("[trials] needs before_s and after_s, the window around each event in seconds.")

@@ -70,3 +70,24 @@ def test_a_session_without_stimulation_onsets_says_so(tmp_path, capsys):
     path = save_session(s, tmp_path / "s.h5")
     assert main(["inspect", str(path)]) == 0
     assert "artifacts: no stimulation onset" in capsys.readouterr().out
+
+
+@pytest.mark.filterwarnings("ignore:blanking masked every stimulating sample")
+@pytest.mark.parametrize("method", ["template", "interpolate", "blank"])
+def test_convert_applies_each_artifact_method_to_a_session_file(tmp_path, capsys, method):
+    desc = tmp_path / "d.toml"
+    desc.write_text('[channels]\ninputs = ["stim_a", "stim_b", "stim_c"]\n'
+                    'outputs = ["rec_01", "rec_02", "rec_03", "rec_04", "rec_05", "rec_06", "rec_07", "rec_08"]\n'
+                    f'[artifacts]\nmethod = "{method}"\nwindow_s = 0.012\n')
+    out = tmp_path / "clean.h5"
+    assert main(["convert", str(DEMO), "--description", str(desc), "--out", str(out)]) == 0
+    before, after = load_session(DEMO), load_session(out)
+    assert np.array_equal(after.u, before.u) and np.array_equal(after.trials, before.trials)  # inputs untouched
+    if method == "blank":
+        assert np.array_equal(after.y, before.y) and (~after.mask).sum() > 0
+    else:
+        assert after.mask.all() and not np.array_equal(after.y, before.y)
+    capsys.readouterr()
+    assert main(["inspect", str(out)]) == 0
+    if method == "template":
+        assert "No problems found." in capsys.readouterr().out
