@@ -155,23 +155,40 @@ class ArtifactReport:
                 "ratio_threshold": self.ratio_threshold}
 
 
-def _usable_onsets(session: Session, cols, threshold: float, pre: int, width: int) -> np.ndarray:
-    k = np.flatnonzero(stimulation_onsets(session.u[:, cols], threshold=threshold).any(axis=1))
-    owner = _trial_of(session)
-    k = k[(k - pre - 1 >= 0) & (k + width <= session.n_samples)]
-    ok = [(owner[i - pre - 1] >= 0) and owner[i - pre - 1] == owner[i + width - 1]
-          and session.mask[i - pre - 1:i + width].all() for i in k]
-    return k[np.asarray(ok, dtype=bool)] if k.size else k
+def _locked_sums(source, cols, threshold: float, pre: int, width: int, chunk_rows: int = 262144):
+    """Sum over usable onsets of the squared first differences at each lag, and the onset count.
+
+    Reads the source one trial at a time (in chunks that overlap by the windows), so a lazily opened file is never
+    loaded whole. An onset is usable when its windows and the sample before them are valid and inside its trial.
+    """
+    span = pre + 1 + width
+    total, count = np.zeros((pre + width, int(source.n_outputs))), 0
+    lags = np.arange(-pre, width)
+    for a, b in np.asarray(source.trials, dtype=np.int64):
+        for c0 in range(int(a), int(b), chunk_rows):
+            lo, hi = max(int(a), c0 - span), min(int(b), c0 + chunk_rows + span)
+            u, y, mask = source.read(lo, hi)
+            on = np.flatnonzero(stimulation_onsets(np.asarray(u)[:, cols], threshold=threshold).any(axis=1))
+            k = on[(on - pre - 1 >= 0) & (on + width <= hi - lo) & (lo + on >= c0) & (lo + on < c0 + chunk_rows)]
+            bad = np.concatenate(([0], np.cumsum(~np.asarray(mask, dtype=bool))))
+            k = k[bad[k + width] - bad[k - pre - 1] == 0]
+            if k.size:
+                y = np.asarray(y, dtype=np.float64)
+                seg = y[k[:, None] + lags[None, :]] - y[k[:, None] + lags[None, :] - 1]
+                total += (seg ** 2).sum(axis=0)
+                count += int(k.size)
+    return total, count
 
 
-def detect_artifacts(session: Session, *, window_s: float | None = None, pre_s: float | None = None,
+def detect_artifacts(session, *, window_s: float | None = None, pre_s: float | None = None,
                      threshold: float = 0.0, inputs=None,
                      ratio_threshold: float = ARTIFACT_RATIO_THRESHOLD) -> ArtifactReport | None:
     """Output power locked to stimulation onsets against the pre-onset level, per channel.
 
     Parameters
     ----------
-    session : Session
+    session : Session or an opened session file
+        Anything with ``read(start, stop)``, ``trials``, names and units (read one trial at a time).
     window_s : float, optional
         Window from each onset, seconds. Default one sample or 2 ms, whichever is longer.
     pre_s : float, optional
@@ -187,25 +204,25 @@ def detect_artifacts(session: Session, *, window_s: float | None = None, pre_s: 
     ArtifactReport or None
         None when the session has no inputs or no usable onset.
     """
-    _check_session(session, "detect_artifacts")
+    if not all(hasattr(session, x) for x in ("read", "trials", "n_inputs", "output_names", "sample_rate_hz")):
+        raise SessionError(f"detect_artifacts needs a Session or an opened session file; got "
+                           f"{type(session).__name__}.")
     if session.n_inputs == 0:
         return None
     cols = _columns(session, inputs)
     width = _width(session, window_s if window_s is not None else max(0.002, 1.0 / session.sample_rate_hz))
     pre = _width(session, pre_s) if pre_s is not None else 5 * width
-    k = _usable_onsets(session, cols, threshold, pre, width)
-    if k.size == 0:
+    total, count = _locked_sums(session, cols, threshold, pre, width)
+    if count == 0:
         return None
-    lags = np.arange(-pre, width)
     # first differences y(k+τ) − y(k+τ−1): stationary for ongoing activity, so pre and post agree without
     # stimulation (a pre-onset mean as baseline would bias the ratio by (n+1)/(n−1) even for white noise)
-    seg = session.y[k[:, None] + lags[None, :]] - session.y[k[:, None] + lags[None, :] - 1]
-    locked = (seg ** 2).mean(axis=0)
+    locked = total / count
     pre_p, post_p = locked[:pre].mean(axis=0), locked[pre:].mean(axis=0)
     ratio = post_p / np.maximum(pre_p, np.finfo(float).tiny)
     flagged = tuple(n for n, r in zip(session.output_names, ratio) if r > ratio_threshold)
-    return ArtifactReport(session.output_names, session.output_units, pre_p, post_p, ratio, flagged, int(k.size),
-                          width, pre, session.sample_rate_hz, float(ratio_threshold), locked)
+    return ArtifactReport(tuple(session.output_names), tuple(session.output_units), pre_p, post_p, ratio, flagged,
+                          count, width, pre, session.sample_rate_hz, float(ratio_threshold), locked)
 
 
 # ==================================================================================================== removal

@@ -63,11 +63,8 @@ def _check_args(args) -> None:
 
 
 def _report(session, args):
-    if session.n_inputs == 0:
-        return None
-    from ...sysid.session import Session
-    full = session if isinstance(session, Session) else session.to_session()
-    return detect_artifacts(full, window_s=args.artifact_window_s, ratio_threshold=args.artifact_ratio)
+    # read one trial at a time: a lazily opened file is never loaded whole
+    return detect_artifacts(session, window_s=args.artifact_window_s, ratio_threshold=args.artifact_ratio)
 
 
 def run(args) -> int:

@@ -112,3 +112,17 @@ def test_the_demo_artifacts_are_reported(tmp_path):
 def test_artifact_errors(sessions, call, pattern):
     with pytest.raises(SessionError, match=pattern):
         call(sessions[0][0])
+
+
+def test_detection_reads_a_lazy_file_in_chunks_with_the_same_numbers():
+    from stimsteer.demo_data import make_demo
+    from stimsteer.sysid.artifacts import _locked_sums
+    from stimsteer.sysid.io import open_session_file
+
+    path = Path(make_demo.__file__).parent / make_demo.SESSION_FILE
+    whole = detect_artifacts(load_session(path))
+    with open_session_file(path) as f:
+        lazy = detect_artifacts(f)
+        small, n_small = _locked_sums(f, [0, 1, 2], 0.0, whole.pre_samples, whole.window_samples, chunk_rows=97)
+    assert np.array_equal(lazy.ratio, whole.ratio) and lazy.n_onsets == whole.n_onsets
+    assert n_small == whole.n_onsets and np.allclose(small / n_small, whole.locked_power, rtol=1e-12)
