@@ -109,3 +109,33 @@ def test_load_session_applies_channel_conversion_in_acquisition(tmp_path):
         io.write(nwb)
     s = load_session(path)
     assert np.array_equal(s.y, counts * 0.5 * GAINS[None, :])
+
+
+def test_an_nwb_session_opens_lazily_with_the_same_numbers(tmp_path):
+    import h5py
+
+    from stimsteer.sysid import Session, save_session
+    from stimsteer.sysid.arx import RidgeArx
+    from stimsteer.sysid.io.nwb_lazy import open_nwb_session
+    from stimsteer.sysid.trial_sources import open_session_source
+
+    rng = np.random.default_rng(11)
+    u = rng.standard_normal((3000, 2))
+    y = np.cumsum(rng.standard_normal((3000, 1)), axis=0) * 0.1 + 0.3 * np.roll(u[:, :1], 1, axis=0)
+    mask = np.ones(3000, dtype=bool)
+    mask[1200:1210] = False
+    s = Session(u=u, y=y, sample_rate_hz=500.0, trials=[(0, 1500), (1500, 3000)], mask=mask,
+                input_names=["a", "b"], output_names=["lfp"], input_units=["uA", "uA"], output_units=["uV"])
+    path = save_session(s, tmp_path / "s.nwb")
+    loaded = load_session(path)
+    with open_nwb_session(path) as f:
+        assert isinstance(f._y[0]["ts"].data, h5py.Dataset)  # kept in the file, read by window
+        u_w, y_w, m_w = f.read(1195, 1215)
+        assert np.array_equal(u_w, loaded.u[1195:1215]) and np.array_equal(m_w, loaded.mask[1195:1215])
+        assert f.segments() == loaded.segments() and f.content_hash() == loaded.content_hash()
+        assert np.array_equal(f.to_session().y, loaded.y)
+        lazy_fit = RidgeArx(output_lags=2, input_lags=2).fit(f)
+    whole_fit = RidgeArx(output_lags=2, input_lags=2).fit(loaded)
+    assert np.allclose(lazy_fit.input_coefs_, whole_fit.input_coefs_, rtol=1e-10, atol=1e-12)
+    with open_session_source(path) as src:
+        assert type(src).__name__ == "NwbSessionFile"
