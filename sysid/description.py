@@ -149,6 +149,9 @@ def parse_description(data: dict, *, source: str = "description", folder=".") ->
     tables = {k: _check_table(k, v, source) for k, v in data.items() if k != "biomarkers"}
     chans = tables["channels"]
     chans["outputs"] = _names(f"{source}: [channels] outputs", chans.get("outputs"))
+    if not chans["outputs"]:
+        raise InvalidParameterError(f"{source}: [channels] outputs must be a list of channel names; got an empty "
+                                    "list. Name at least one recorded output.")
     chans["inputs"] = _names(f"{source}: [channels] inputs", chans.get("inputs", []))
     if not chans["inputs"] and not tables.get("pulses"):
         raise InvalidParameterError(f"{source}: no model inputs: name input channels in [channels] inputs or give "
