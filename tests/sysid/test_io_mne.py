@@ -159,3 +159,23 @@ def test_bad_mne_input_errors(raw):
     with pytest.raises(SessionError, match=r"picks \['ZZZ'\] match no channel"):
         from stimsteer.sysid.io.mne import recording_from_mne
         recording_from_mne(raw, picks=["ZZZ"])
+
+
+def test_a_pulse_table_file_on_its_own_clock_becomes_the_inputs_and_opens_trials(raw, files, tmp_path, capsys):
+    # the stimulator's clock runs 0.25 s behind the recording's: t_model = t_pulse + 0.25
+    train = 0.75 + np.arange(10) / 130.0
+    rows = [f"{t:.6f},A,{30 + i}" for i, t in enumerate(train)] + [f"{t + 2.0:.6f},B,20" for t in train]
+    (tmp_path / "pulses.csv").write_text("time_s,site,amplitude\n" + "\n".join(rows) + "\n")
+    desc = tmp_path / "d.toml"
+    desc.write_text('[channels]\noutputs = ["LFP1"]\n[pulses]\nfile = "pulses.csv"\nsites = ["A", "B"]\n'
+                    'unit = "uA"\nclock_offset_s = 0.25\n'
+                    '[trials]\npulse_trains_gap_s = 0.5\nbefore_s = 0.1\nafter_s = 0.5\n')
+    out = tmp_path / "s.h5"
+    assert main(["convert", str(files["edf"]), "--description", str(desc), "--out", str(out)]) == 0
+    s = load_session(out)
+    assert s.input_names == ("A", "B") and s.input_units == ("uA", "uA")
+    k = np.floor((train + 0.25) * FS + 1e-9).astype(int)
+    assert np.flatnonzero(s.u[:, 0]).tolist() == k.tolist() and s.u[k, 0].tolist() == list(range(30, 40))
+    assert np.flatnonzero(s.u[:, 1]).tolist() == (k + 2000).tolist()
+    assert s.trials.tolist() == [[900, 1500], [2900, 3500]]  # the first pulse of each train, at 1.0 and 3.0 s
+    assert s.metadata["pulse_mapping"]["offset_s"] == 0.25 and s.metadata["pulse_mapping"]["n_pulses"] == 20

@@ -50,6 +50,7 @@ def nwb_file(tmp_path_factory):
     return path, counts, stim, pulse_starts
 
 
+@pytest.mark.filterwarnings("ignore:The linked table for DynamicTableRegion")
 def test_processing_lfp_with_channel_conversion_electrode_labels_and_intervals(nwb_file):
     path, counts, stim, _ = nwb_file
     rec = read_nwb_recording(path)
