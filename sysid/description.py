@@ -11,6 +11,7 @@ Layout (every table optional except ``[channels]``; every key listed here, no ot
     [channels]
     inputs = ["STIM1"]          # recorded stimulation channels (model inputs), in order
     outputs = ["LFP1", "LFP2"]  # recorded channels that are model outputs, in order
+    output_types = ["seeg"]     # and/or every channel of these kinds (MNE channel types, NWB series places)
     output_unit = "uV"          # convert every output to this unit (by the quantities library)
     input_unit = "uA"           # the same for recorded input channels
 
@@ -75,7 +76,7 @@ __all__ = ["Description", "load_description", "parse_description"]
 
 _KEYS = {
     "recording": {"neo_io", "segment", "bids"},
-    "channels": {"inputs", "outputs", "output_unit", "input_unit"},
+    "channels": {"inputs", "outputs", "output_types", "output_unit", "input_unit"},
     "pulses": {"file", "from_recording", "sites", "unit", "clock_offset_s"},
     "grid": {"sample_rate_hz", "output_anti_aliasing", "input_anti_aliasing", "clock_offset_s"},
     "trials": {"events", "trigger", "threshold", "min_interval_s", "pulse_trains_gap_s", "before_s", "after_s",
@@ -148,10 +149,11 @@ def parse_description(data: dict, *, source: str = "description", folder=".") ->
         raise InvalidParameterError(f"{source}: [channels] is missing; name the outputs (and inputs) there.")
     tables = {k: _check_table(k, v, source) for k, v in data.items() if k != "biomarkers"}
     chans = tables["channels"]
-    chans["outputs"] = _names(f"{source}: [channels] outputs", chans.get("outputs"))
-    if not chans["outputs"]:
+    chans["output_types"] = _names(f"{source}: [channels] output_types", chans.get("output_types", []))
+    chans["outputs"] = _names(f"{source}: [channels] outputs", chans.get("outputs", []))
+    if not chans["outputs"] and not chans["output_types"]:
         raise InvalidParameterError(f"{source}: [channels] outputs must be a list of channel names; got an empty "
-                                    "list. Name at least one recorded output.")
+                                    "list. Name at least one recorded output (or give output_types).")
     chans["inputs"] = _names(f"{source}: [channels] inputs", chans.get("inputs", []))
     if not chans["inputs"] and not tables.get("pulses"):
         raise InvalidParameterError(f"{source}: no model inputs: name input channels in [channels] inputs or give "

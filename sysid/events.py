@@ -316,7 +316,8 @@ class ClockAlignment:
         return {"channel": self.channel, "source_rate_hz": self.source_rate_hz,
                 "target_rate_hz": self.target_rate_hz, "offset_s": self.offset_s,
                 "anti_aliasing": self.anti_aliasing,
-                "method": _SAME_RATE if self.source_rate_hz == self.target_rate_hz else ANTI_ALIASING[self.anti_aliasing],
+                "method": (_SAME_RATE if self.source_rate_hz == self.target_rate_hz
+                           else ANTI_ALIASING[self.anti_aliasing]),
                 "n_samples_outside_source": self.n_outside, "overlap_s": list(self.overlap_s)}
 
 

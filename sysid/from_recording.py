@@ -1,9 +1,9 @@
 """A session from a lab's recording and a description: the Python side of ``stimsteer convert``.
 
 :func:`read_recording` opens any source recognised by content (EDF/BDF, BrainVision, FIF, Neo MATLAB, NWB, a BIDS
-dataset, or one of our own session files, whose trials are kept) or by the Neo IO the description names; :func:`build_session` turns a
-:class:`~stimsteer.sysid.io._recording.Recording` into a :class:`~stimsteer.sysid.session.Session` following a
-:class:`~stimsteer.sysid.description.Description`. :func:`session_from_mne` and :func:`session_from_neo` do both for
+dataset, or one of our own session files, whose trials are kept) or by the Neo IO the description names;
+:func:`build_session` turns a :class:`~stimsteer.sysid.io._recording.Recording` into a
+:class:`~stimsteer.sysid.session.Session` following a :class:`~stimsteer.sysid.description.Description`. :func:`session_from_mne` and :func:`session_from_neo` do both for
 objects already in memory. The steps, in order: channels onto the model grid (clock alignment with the stated
 anti-aliasing), pulse tables onto the grid (:data:`stimsteer.sysid.events.PULSE_MAPPING`), bad intervals and
 uncovered samples masked, line noise, artifacts, biomarkers, trials. The metadata records each.
@@ -283,6 +283,21 @@ def _apply_trials(session: Session, rec: Recording, spec: dict, grid) -> Session
                            metadata={**session.metadata, "trials_from_events": windows.to_dict()})
 
 
+def _resolved(rec: Recording, desc: Description) -> Description:
+    """The description with ``output_types`` expanded into output names (recording order, inputs excluded)."""
+    import dataclasses
+
+    types = desc.channels.get("output_types") or []
+    if not types:
+        return desc
+    taken = set(desc.channels["outputs"]) | set(desc.channels["inputs"])
+    extra = [c.name for c in rec.channels if c.kind in types and c.name not in taken]
+    if not extra and not desc.channels["outputs"]:
+        raise SessionError(f"no channel of the types {types} in the recording; it has the types "
+                           f"{sorted({c.kind for c in rec.channels})}. Fix [channels] output_types.")
+    return dataclasses.replace(desc, channels={**desc.channels, "outputs": list(desc.channels["outputs"]) + extra})
+
+
 def build_session(recording: Recording, description: Description, *, source: str = "") -> Session:
     """A session from a recording, following a description (see the module docstring).
 
@@ -294,6 +309,7 @@ def build_session(recording: Recording, description: Description, *, source: str
     InvalidParameterError
         A description value of the wrong kind.
     """
+    description = _resolved(recording, description)
     session, ctx = _base_session(recording, description, source)
     ln = description.line_noise
     if ln:

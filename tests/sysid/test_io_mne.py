@@ -140,7 +140,8 @@ def test_convert_command_writes_a_session_and_leaves_the_source_alone(files, tmp
     ('[channels]\ninputs = ["STIM"]\noutputs = ["LFP1"]\n[grid]\nclock_offset_s = {STIM = 100.0}\n',
      r"clocks of 'STIM' and the model grid do not overlap"),
     ('[channels]\noutputs = ["LFP1"]\n', r"no model inputs"),
-    ('[channels]\ninputs = ["STIM"]\noutputs = ["LFP1"]\ncolour = 1\n', r"unknown key\(s\) \['colour'\] in \[channels\]"),
+    ('[channels]\ninputs = ["STIM"]\noutputs = ["LFP1"]\ncolour = 1\n',
+     r"unknown key\(s\) \['colour'\] in \[channels\]"),
 ])
 def test_bad_descriptions_are_one_line_exit_2_and_nothing_written(files, tmp_path, capsys, toml, pattern):
     desc = tmp_path / "d.toml"
@@ -179,3 +180,11 @@ def test_a_pulse_table_file_on_its_own_clock_becomes_the_inputs_and_opens_trials
     assert np.flatnonzero(s.u[:, 1]).tolist() == (k + 2000).tolist()
     assert s.trials.tolist() == [[900, 1500], [2900, 3500]]  # the first pulse of each train, at 1.0 and 3.0 s
     assert s.metadata["pulse_mapping"]["offset_s"] == 0.25 and s.metadata["pulse_mapping"]["n_pulses"] == 20
+
+
+def test_outputs_picked_by_channel_type(raw):
+    s = session_from_mne(raw, {"channels": {"inputs": ["STIM"], "output_types": ["seeg"]}})
+    assert s.output_names == ("LFP1", "LFP2")
+    with pytest.raises(SessionError, match=r"no channel of the types \['ecog'\] in the recording; it has the "
+                                           r"types \['misc', 'seeg'\]"):
+        session_from_mne(raw, {"channels": {"inputs": ["STIM"], "output_types": ["ecog"]}})
