@@ -4,9 +4,10 @@
 dataset, or one of our own session files, whose trials are kept) or by the Neo IO the description names;
 :func:`build_session` turns a :class:`~stimsteer.sysid.io._recording.Recording` into a
 :class:`~stimsteer.sysid.session.Session` following a :class:`~stimsteer.sysid.description.Description`.
-:func:`session_from_mne` and :func:`session_from_neo` do both for objects already in memory. The steps, in order: channels onto the model grid (clock alignment with the stated
-anti-aliasing), pulse tables onto the grid (:data:`stimsteer.sysid.events.PULSE_MAPPING`), bad intervals and
-uncovered samples masked, line noise, artifacts, biomarkers, trials. The metadata records each.
+:func:`session_from_mne` and :func:`session_from_neo` do both for objects already in memory. The steps, in order:
+channels onto the model grid (clock alignment with the stated anti-aliasing), pulse tables onto the grid
+(:data:`stimsteer.sysid.events.PULSE_MAPPING`), bad intervals and uncovered samples masked, line noise, artifacts,
+biomarkers, trials. The metadata records each.
 """
 
 from __future__ import annotations
