@@ -18,6 +18,7 @@ from scipy import signal
 from ._base import BaseEstimator, check_fitted
 from .exceptions import SessionError, StimsteerWarning
 from .session import Session
+from .artifacts import blank_artifacts  # blanking lives with the other artifact tools; re-exported here
 
 __all__ = ["detrend", "filter_session", "resample_session", "SessionScaler", "blank_artifacts"]
 
@@ -427,68 +428,3 @@ class SessionScaler(BaseEstimator):
         """Scaled outputs (e.g. a prediction), shape (..., n_outputs), back to physical units."""
         mean, scale = self._part("outputs")
         return self._array(y, "outputs") * scale + mean
-
-
-# ==================================================================================================== artifacts
-def _onset_columns(session: Session, inputs) -> list[int]:
-    if session.n_inputs == 0:
-        raise SessionError("blank_artifacts needs at least one input channel to find stimulation onsets.")
-    if inputs is None:
-        return list(range(session.n_inputs))
-    names = [inputs] if isinstance(inputs, str) else list(inputs)
-    unknown = [n for n in names if n not in session.input_names]
-    if unknown or not names:
-        raise SessionError(f"inputs {unknown or names} are not input channels of this session; choose among "
-                           f"{list(session.input_names)}.")
-    return [session.input_names.index(n) for n in names]
-
-
-def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float = 0.0, inputs=None) -> Session:
-    """Mark invalid a window of ``window_s`` seconds starting at every stimulation onset.
-
-    Parameters
-    ----------
-    session : Session
-    window_s : float
-        Length of the blanked window in seconds (> 0); it covers ``max(1, ceil(window_s · sample_rate_hz))``
-        samples, starting at the onset sample itself.
-    onset_threshold : float, default 0.0
-        In the inputs' units. An onset is a sample where an input's magnitude ``|u|`` is above the threshold while
-        the sample before it was not: a site turning on, with either polarity (cathodic-first and anodic-first
-        pulses both make artifacts); a polarity switch while the site stays on is not an onset. A NaN counts as
-        off; a first sample above the threshold is an onset.
-    inputs : str or sequence of str, optional
-        Input channels that define onsets; default all.
-
-    Returns
-    -------
-    Session
-        With the blanked samples marked invalid (values untouched); ``metadata["prep"]`` records the number of
-        onsets and of newly masked samples.
-
-    Raises
-    ------
-    SessionError
-        A non-positive window, a non-finite threshold, unknown input names, or a session without inputs.
-    """
-    _check_session(session, "blank_artifacts")
-    try:
-        window_s, onset_threshold = float(window_s), float(onset_threshold)
-    except (TypeError, ValueError):
-        raise SessionError("window_s and onset_threshold must be numbers.") from None
-    if not math.isfinite(window_s) or window_s <= 0:
-        raise SessionError(f"window_s must be a positive number of seconds; got {window_s}.")
-    if not math.isfinite(onset_threshold):
-        raise SessionError(f"onset_threshold must be finite; got {onset_threshold}.")
-    with np.errstate(invalid="ignore"):
-        above = np.abs(session.u[:, _onset_columns(session, inputs)]) > onset_threshold
-    before = np.vstack([np.zeros((1, above.shape[1]), dtype=bool), above[:-1]])
-    onsets = np.flatnonzero((above & ~before).any(axis=1))
-    width = max(1, math.ceil(window_s * session.sample_rate_hz - 1e-9))
-    hits = np.zeros(session.n_samples + 1, dtype=np.int64)
-    np.add.at(hits, onsets, 1)
-    np.add.at(hits, np.minimum(onsets + width, session.n_samples), -1)
-    mask = session.mask & (np.cumsum(hits[:-1]) == 0)
-    step = {"step": "blank_artifacts", "window_s": window_s, "onset_threshold": onset_threshold,
-            "n_onsets": int(onsets.size), "n_blanked": int((session.mask & ~mask).sum())}
-    return session.replace(mask=mask, metadata=_record(session, step))

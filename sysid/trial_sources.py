@@ -72,14 +72,19 @@ def _subsets(source, split: TrialSplit, streaming: bool):
 
 @contextlib.contextmanager
 def open_session_source(path):
-    """Yield the recording at ``path`` for fitting: lazily opened when it is our HDF5 layout, else loaded whole.
+    """Yield the recording at ``path`` for fitting: lazily opened when it is our HDF5 layout or NWB, else loaded whole.
 
     A lazily opened file lets streaming estimators (ridge ARX, subspace) fit recordings larger than memory.
     """
     from .io import detect_format, load_session, open_session_file
 
-    if detect_format(path) == "hdf5":
+    kind = detect_format(path)
+    if kind == "hdf5":
         with open_session_file(path) as f:
+            yield f
+    elif kind == "nwb":  # read window by window too (stimsteer.sysid.io.nwb_lazy)
+        from .io.nwb_lazy import open_nwb_session
+        with open_nwb_session(path) as f:
             yield f
     else:
         yield load_session(path)

@@ -1,17 +1,25 @@
-"""``stimsteer inspect``: summarise a session (channels, rate, trials, gaps, flat or saturated channels) and its
-excitation."""
+"""``stimsteer inspect``: summarise a session (channels, rate, trials, gaps, flat or saturated channels), its
+excitation, stimulation artifacts in its outputs (:func:`stimsteer.sysid.artifacts.detect_artifacts`), and how its
+channels were aligned onto the model grid when it was built from a recording (``stimsteer convert``)."""
 
 from __future__ import annotations
 
-from ...sysid import excitation_report, describe_session, open_session_source
+import dataclasses
+from pathlib import Path
 
-__all__ = ["add_parser", "run"]
+from ...sysid import excitation_report, describe_session, open_session_source
+from ...sysid._claims import claim_output
+from ...sysid._files import atomic_path
+from ...sysid.artifacts import ARTIFACT_RATIO_THRESHOLD, detect_artifacts
+from ...sysid.exceptions import InvalidParameterError
+
+__all__ = ["add_parser", "run", "alignment_text"]
 
 
 def add_parser(subparsers) -> None:
     """Declare ``stimsteer inspect`` and its options."""
     p = subparsers.add_parser("inspect", help="summarise a session: channels, rate, trials, gaps, flat or saturated "
-                              "channels")
+                              "channels, stimulation artifacts, clock alignment")
     p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
     p.add_argument("--past-steps", dest="past", type=int, default=10, metavar="N",
                    help="past window of the direct route, in samples, for the excitation check (default 10)")
@@ -19,12 +27,69 @@ def add_parser(subparsers) -> None:
                    help="prediction horizon of the direct route, in samples, for the excitation check (default 20)")
     p.add_argument("--states", type=int, default=None, metavar="N",
                    help="state dimension assumed by the excitation check (default: the past window)")
+    p.add_argument("--artifact-window-s", type=float, default=None, metavar="S",
+                   help="window after each stimulation onset for the artifact check, seconds (default one sample "
+                   "or 2 ms, whichever is longer)")
+    p.add_argument("--artifact-ratio", type=float, default=ARTIFACT_RATIO_THRESHOLD, metavar="R",
+                   help="flag a channel whose post-onset power exceeds R times its pre-onset level "
+                   f"(default {ARTIFACT_RATIO_THRESHOLD:g})")
+    p.add_argument("--artifact-figure", default=None, metavar="PNG",
+                   help="write the onset-locked power of every output channel to this PNG")
+    p.add_argument("--force", action="store_true", help="replace an existing --artifact-figure file")
+
+
+def alignment_text(metadata) -> list[str]:
+    """Lines on how a session's channels were put on the model grid (empty for sessions not built by convert)."""
+    lines = []
+    for a in metadata.get("clock_alignment", []) or []:
+        lines.append(f"  {a['channel']}: {a['source_rate_hz']:g} Hz -> {a['target_rate_hz']:g} Hz, clock offset "
+                     f"{a['offset_s']:g} s, {a['method']}; {a['n_samples_outside_source']} model sample(s) outside "
+                     "its span (masked)")
+    if "pulse_mapping" in metadata:
+        m = metadata["pulse_mapping"]
+        lines.append(f"  pulses -> inputs: {m.get('name')} ({m.get('rule')}); {m.get('n_pulses')} pulse(s) placed, "
+                     f"{m.get('n_pulses_off_grid')} off the grid")
+    return (["clock alignment (model grid):"] + lines) if lines else []
+
+
+def _check_args(args) -> None:
+    if args.artifact_window_s is not None and not args.artifact_window_s > 0:
+        raise InvalidParameterError(f"--artifact-window-s must be a positive number of seconds; got "
+                                    f"{args.artifact_window_s}.")
+    if not args.artifact_ratio > 0:
+        raise InvalidParameterError(f"--artifact-ratio must be positive; got {args.artifact_ratio}.")
+    if args.artifact_figure is not None and Path(args.artifact_figure).suffix.lower() != ".png":
+        raise InvalidParameterError(f"--artifact-figure must name a .png file; got {args.artifact_figure}.")
+
+
+def _report(session, args):
+    # read one trial at a time: a lazily opened file is never loaded whole
+    return detect_artifacts(session, window_s=args.artifact_window_s, ratio_threshold=args.artifact_ratio)
 
 
 def run(args) -> int:
-    """Print the session summary and the excitation report; 0 on success."""
+    """Print the session summary (with artifact warnings), the excitation report, the artifact table and the clock
+    alignment; write the artifact figure when asked; 0 on success."""
+    _check_args(args)
+    fig_path = Path(args.artifact_figure) if args.artifact_figure else None
     with open_session_source(args.session) as session:  # our HDF5 layout is read lazily, in one pass each
-        print(describe_session(session).to_text())
+        summary = describe_session(session)
+        artifacts = _report(session, args)
+        if artifacts is not None and artifacts.flagged:
+            summary = dataclasses.replace(summary, warnings=tuple(summary.warnings) + tuple(artifacts.warnings()))
+        print(summary.to_text())
         print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
                                 n_states=args.states).to_text())
+        print(artifacts.to_text() if artifacts is not None else
+              "artifacts: no stimulation onset with a clean window before and after it; nothing to check.")
+        for line in alignment_text(session.metadata):
+            print(line)
+    if fig_path is not None:
+        if artifacts is None:
+            raise InvalidParameterError("--artifact-figure: the session has no stimulation onset to lock to; "
+                                        "nothing was written.")
+        from ..figures.artifacts import artifact_figure
+        with claim_output(fig_path, force=args.force), atomic_path(fig_path) as tmp:
+            artifact_figure(artifacts).savefig(tmp, dpi=110, format="png")
+        print(f"wrote {fig_path}")
     return 0

@@ -8,18 +8,27 @@ atomically (a failure leaves no file behind; an existing file is kept unless ``o
 requested window.
 
 One module per source: :mod:`~stimsteer.sysid.io.hdf5` (our HDF5 layout, with :class:`SessionFile`),
-:mod:`~stimsteer.sysid.io.tables` (CSV and Parquet tables), :mod:`~stimsteer.sysid.io.nwb` (NWB files); their
+:mod:`~stimsteer.sysid.io.tables` (CSV and Parquet tables), :mod:`~stimsteer.sysid.io.nwb` (NWB files, and every
+series of one as a recording) with :mod:`~stimsteer.sysid.io.nwb_lazy` (an NWB session read window by window); their
 docstrings describe each layout. :mod:`~stimsteer.sysid.io.detect` recognises a file's layout from its content and
 :mod:`~stimsteer.sysid.io.dispatch` picks the reader or writer.
+
+Recordings in the field's formats are read through the field's libraries into a
+:class:`~stimsteer.sysid.io._recording.Recording` (channels on their own clocks, events, bad intervals, spike
+times, pulses): :mod:`~stimsteer.sysid.io.mne` (MNE-Python: EDF/BDF, BrainVision, FIF, ``Raw`` objects),
+:mod:`~stimsteer.sysid.io.neo` (Neo blocks and IOs), :mod:`~stimsteer.sysid.io.bids` (iEEG-BIDS through mne-bids).
+:func:`detect_recording` names such a source from its content; :mod:`stimsteer.sysid.from_recording` turns a
+recording and a description (:mod:`stimsteer.sysid.description`) into a session (``stimsteer convert``).
 """
 
 from __future__ import annotations
 
 from ._common import LAYOUT_NAME, LAYOUT_VERSION
-from .detect import detect_format
+from .detect import detect_format, detect_recording
 from .dispatch import load_session, save_session
 from .hdf5 import SessionFile, open_session_file
 from .tables import comment_lines
 
-__all__ = ["LAYOUT_NAME", "LAYOUT_VERSION", "SessionFile", "comment_lines", "detect_format", "load_session",
+__all__ = ["LAYOUT_NAME", "LAYOUT_VERSION", "SessionFile", "comment_lines", "detect_format", "detect_recording",
+           "load_session",
            "open_session_file", "save_session"]

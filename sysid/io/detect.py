@@ -11,7 +11,11 @@ import h5py
 from ..exceptions import FileFormatError
 from ._common import LAYOUT_NAME, _attr_str
 
-__all__ = ["detect_format"]
+__all__ = ["detect_format", "detect_recording", "RECORDING_KINDS"]
+
+#: Recordings recognised by content that become sessions through a description (``stimsteer convert``).
+RECORDING_KINDS = {"edf": "EDF", "bdf": "BDF", "brainvision": "BrainVision", "fif": "FIF (MNE)",
+                   "neo-matlab": "Neo MATLAB", "bids": "BIDS dataset"}
 
 
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -41,6 +45,13 @@ def detect_format(path) -> str:
     path = Path(path)
     if path.is_dir():
         raise FileFormatError(f"{path} is a folder; expected a session file (.h5, .nwb, .parquet or .csv).")
+    kind = _recording_kind(path)
+    if kind is not None:
+        raise FileFormatError(
+            f"{path} is a {RECORDING_KINDS[kind]} recording, not a session: say which channels are inputs and "
+            f"outputs in a description file and build the session with `stimsteer convert {path} --description "
+            "FILE --out SESSION.h5`."
+        )
     size = path.stat().st_size
     if size == 0:
         raise FileFormatError(
@@ -113,4 +124,68 @@ def _hdf5_kind(path: Path) -> str:
         f"{path} is an HDF5 file but not a session: expected the root attribute stimsteer_layout = "
         f"'{LAYOUT_NAME}' (our layout) or neurodata_type = 'NWBFile' (NWB); found root members {members} and "
         f"root attributes {attr_names}. Convert the recording with stimsteer.sysid.io.save_session."
+    )
+
+
+# ==================================================================================================== recordings
+_MAGIC = (
+    (b"\xffBIOSEMI", "bdf"),  # BDF header (BioSemi)
+    (b"Brain Vision Data Exchange Header File", "brainvision"),  # BrainVision .vhdr first line
+    (b"\x00\x00\x00\x64\x00\x00\x00\x1f", "fif"),  # FIF: first tag FIFF_FILE_ID (100) of type id-struct (31)
+    (b"MATLAB 5.0 MAT-file", "neo-matlab"),  # MATLAB 5 header (NeoMatlabIO writes these)
+)
+
+
+def _recording_kind(path: Path) -> str | None:
+    if path.is_dir():
+        return "bids" if (path / "dataset_description.json").is_file() else None
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(256)
+    except OSError:
+        return None
+    for magic, kind in _MAGIC:
+        if head.startswith(magic) or (kind == "brainvision" and head.lstrip(b"\xef\xbb\xbf").startswith(magic)):
+            return kind
+    # EDF: version "0" padded to 8 bytes, header length (bytes 184-192) a multiple of 256 (EDF spec, Kemp 1992)
+    if head[:8] == b"0       " and len(head) >= 192:
+        try:
+            return "edf" if int(head[184:192].decode("ascii").strip()) % 256 == 0 else None
+        except ValueError:
+            return None
+    return None
+
+
+def detect_recording(path) -> str:
+    """Name a recording's layout from its content, for ``stimsteer convert``.
+
+    Returns
+    -------
+    str
+        One of :data:`RECORDING_KINDS` (``"edf"``, ``"bdf"``, ``"brainvision"``, ``"fif"``, ``"neo-matlab"``,
+        ``"bids"``) or ``"nwb"``.
+
+    Raises
+    ------
+    FileNotFoundError
+        The path does not exist.
+    FileFormatError
+        Neither a recording we read through a library nor an NWB file; the message says what was found.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise FileNotFoundError(2, "No such file or directory", str(path))
+    kind = _recording_kind(path)
+    if kind is not None:
+        return kind
+    if path.is_dir():
+        raise FileFormatError(f"{path} is a folder without dataset_description.json; give a BIDS dataset's root or "
+                              "a recording file.")
+    with open(path, "rb") as fh:
+        if _has_hdf5_signature(fh, path.stat().st_size) and _hdf5_kind(path) == "nwb":
+            return "nwb"
+    raise FileFormatError(
+        f"{path} is not a recording stimsteer reads through a library: expected EDF/BDF, BrainVision (.vhdr), FIF, "
+        "a Neo MATLAB file, an NWB file or a BIDS dataset folder. Name a Neo IO in the description "
+        "([recording] neo_io) for other acquisition formats."
     )

@@ -80,20 +80,30 @@ def _nwb_series(group, kind: str, order, path: Path) -> list[dict]:
     series = [ts for ts in group.values() if isinstance(ts, pynwb.TimeSeries)]
     if not series:
         where = "/stimulus/presentation" if kind == "stimulus" else "/acquisition"
-        raise FileFormatError(f"{path} is an NWB file without {kind} TimeSeries in {where}; stimsteer needs the "
-                              "stimulation inputs in the stimulus group and the recorded outputs in acquisition.")
+        raise FileFormatError(f"{path} is an NWB file without {kind} TimeSeries in {where}; stimsteer reads the "
+                              "stimulation inputs from the stimulus group and the recorded outputs from acquisition. "
+                              "For series elsewhere (processing modules) or at other rates, name them in a "
+                              "description and build the session with `stimsteer convert`.")
     if order is not None and sorted(order) == sorted(ts.name for ts in series):
         series.sort(key=lambda ts: order.index(ts.name))
     out = []
     for ts in series:
-        data = np.asarray(ts.data[()], dtype=np.float64)
-        if (ts.conversion, getattr(ts, "offset", 0.0) or 0.0) != (1.0, 0.0):
-            data = data * ts.conversion + (getattr(ts, "offset", 0.0) or 0.0)
-        data = data.reshape(data.shape[0], -1)
+        data = _converted(ts)
         names = [ts.name] if data.shape[1] == 1 else [f"{ts.name}_{j}" for j in range(data.shape[1])]
         out.append({"name": ts.name, "data": data, "names": names, "unit": str(ts.unit),
                     "timing": _nwb_timing(ts, data.shape[0], path)})
     return out
+
+
+def _converted(ts) -> np.ndarray:
+    """The series' values in its unit: ``data · conversion · channel_conversion + offset`` (NWB 2 schema,
+    TimeSeries.data and ElectricalSeries.channel_conversion), time-major 2-D."""
+    data = np.asarray(ts.data[()], dtype=np.float64)
+    data = data.reshape(data.shape[0], -1) * float(ts.conversion)
+    per_channel = getattr(ts, "channel_conversion", None)
+    if per_channel is not None:
+        data = data * np.asarray(per_channel[()], dtype=np.float64).reshape(1, -1)
+    return data + float(getattr(ts, "offset", 0.0) or 0.0)
 
 
 def _nwb_timing(ts, n: int, path: Path) -> tuple[float, float]:
@@ -165,6 +175,135 @@ def _nwb_common_grid(series: list[dict], path: Path) -> tuple[float, float, int]
             raise FileFormatError(
                 f"{path}: every series must share one sample grid; '{series[0]['name']}' has {n} samples at "
                 f"{rate:g} Hz from {t0:g} s but '{s['name']}' has {k} samples at {r:g} Hz from {t:g} s. "
-                "Resample them to a common grid first."
+                "Build the session with `stimsteer convert` and a description, which aligns them onto one grid."
             )
     return rate, t0, n
+
+
+# ==================================================================================================== recording
+def _electrode_labels(ts) -> tuple[list | None, list | None]:
+    region = getattr(ts, "electrodes", None)
+    if region is None:
+        return None, None
+    table = region.table
+    rows = np.asarray(region.data[()], dtype=np.int64).reshape(-1)
+    cols = set(table.colnames)
+    ids = np.asarray(table.id[()])[rows]
+    labels = ([str(table["label"][int(r)]) for r in rows] if "label" in cols else [f"e{int(i)}" for i in ids])
+    locations = [str(table["location"][int(r)]) for r in rows] if "location" in cols else None
+    return labels, locations
+
+
+def _series_channels(ts, kind: str, path: Path) -> tuple[list, dict]:
+    from ._recording import Channel
+
+    data = _converted(ts)
+    rate, t0 = _nwb_timing(ts, data.shape[0], path)
+    labels, locations = _electrode_labels(ts)
+    if labels is None or len(labels) != data.shape[1]:
+        labels = [ts.name] if data.shape[1] == 1 else [f"{ts.name}_{j}" for j in range(data.shape[1])]
+    unit = {"volts": "V", "amperes": "A"}.get(str(ts.unit), str(ts.unit))
+    chans = [Channel(name=n, data=data[:, j].copy(), unit=unit, sample_rate_hz=rate, start_time_s=t0, kind=kind)
+             for j, n in enumerate(labels)]
+    info = {"series": ts.name, "kind": kind, "channels": labels, "conversion": float(ts.conversion),
+            "offset": float(getattr(ts, "offset", 0.0) or 0.0),
+            "channel_conversion": (np.asarray(ts.channel_conversion[()]).tolist()
+                                   if getattr(ts, "channel_conversion", None) is not None else None)}
+    if locations is not None:
+        info["locations"] = locations
+    return chans, info
+
+
+def _all_series(nwb):
+    import pynwb
+
+    for ts in nwb.stimulus.values():
+        if isinstance(ts, pynwb.TimeSeries):
+            yield ts, "stimulus"
+    for obj in nwb.acquisition.values():
+        yield from _unpack(obj, "acquisition")
+    for name, module in nwb.processing.items():
+        for obj in module.data_interfaces.values():
+            yield from _unpack(obj, f"processing/{name}")
+
+
+def _unpack(obj, kind: str):
+    import pynwb
+
+    if isinstance(obj, pynwb.TimeSeries):
+        yield obj, kind
+    elif hasattr(obj, "electrical_series"):  # LFP / FilteredEphys containers
+        for ts in obj.electrical_series.values():
+            yield ts, kind
+
+
+def _interval_events(nwb) -> tuple[list, list]:
+    events, bad = [], []
+    tables = [("trials", nwb.trials), ("epochs", nwb.epochs)]
+    tables += [(name, t) for name, t in (nwb.intervals or {}).items() if name not in ("trials", "epochs",
+                                                                                       "invalid_times")]
+    for name, table in tables:
+        if table is None or len(table) == 0:
+            continue
+        frame = table.to_dataframe()
+        for _, row in frame.iterrows():
+            tags = row.get("tags") if "tags" in frame.columns else None
+            label = str(tags[0]) if tags is not None and len(tags) else name
+            events.append({"time_s": float(row["start_time"]), "label": label,
+                           "duration_s": float(row["stop_time"] - row["start_time"]), "table": name})
+    if nwb.invalid_times is not None and len(nwb.invalid_times):
+        frame = nwb.invalid_times.to_dataframe()
+        bad = [(float(a), float(b)) for a, b in zip(frame["start_time"], frame["stop_time"])]
+    return sorted(events, key=lambda e: e["time_s"]), bad
+
+
+def read_nwb_recording(path) -> "Recording":
+    """Every series of an NWB file as a :class:`~stimsteer.sysid.io._recording.Recording`.
+
+    Series come from ``/stimulus/presentation``, ``/acquisition`` and every ``processing`` module (LFP and other
+    ElectricalSeries containers included), each on its own rate and start time, with
+    ``data · conversion · channel_conversion + offset`` applied; ElectricalSeries channels are named by the
+    electrodes table's ``label`` column (else ``e<id>``) and their locations are kept in the metadata. The
+    trials, epochs and other interval tables give events (label: the first tag, else the table's name), and
+    ``invalid_times`` gives bad intervals.
+
+    Raises
+    ------
+    FileFormatError
+        pynwb missing, or the file unreadable.
+
+    Notes
+    -----
+    A channel name used by two series (the same electrode in the raw series and in a processed LFP) becomes
+    ``<series>.<name>`` in both.
+    """
+    from ._recording import Recording
+
+    path = Path(path)
+    pynwb = _import_pynwb(path, "read")
+    try:
+        with pynwb.NWBHDF5IO(str(path), "r") as io:
+            nwb = io.read()
+            chans, infos = [], []
+            for ts, kind in _all_series(nwb):
+                c, info = _series_channels(ts, kind, path)
+                chans += [(ts.name, ch) for ch in c]
+                infos.append(info)
+            events, bad = _interval_events(nwb)
+            ident = str(nwb.identifier)
+    except StimsteerError:
+        raise
+    except Exception as exc:  # pynwb / hdmf raise many unrelated classes for files they cannot build
+        raise FileFormatError(f"{path} cannot be read as an NWB file ({type(exc).__name__}: {exc}).") from None
+    chans = _distinct_names(chans)
+    meta = {"format": "nwb", "file": path.name, "nwb_identifier": ident, "series": infos,
+            "pynwb_version": pynwb.__version__}
+    return Recording(channels=tuple(chans), events=events, bad_intervals=bad, metadata=meta)
+
+
+def _distinct_names(pairs) -> list:
+    import dataclasses
+
+    names = [c.name for _, c in pairs]
+    return [dataclasses.replace(c, name=f"{series}.{c.name}") if names.count(c.name) > 1 else c
+            for series, c in pairs]

@@ -263,6 +263,7 @@ def test_scaler_errors(rng):
 
 
 # ================================================================================================ blanking
+@pytest.mark.filterwarnings("ignore:blanking masked every stimulating sample")
 def test_blanking_masks_a_window_after_every_onset():
     n = 40
     u = np.zeros((n, 2))
@@ -282,6 +283,7 @@ def test_blanking_masks_a_window_after_every_onset():
     assert step["n_onsets"] == 4 and step["n_blanked"] == len(blanked)
 
 
+@pytest.mark.filterwarnings("ignore:blanking masked every stimulating sample")
 def test_blanking_threshold_first_sample_and_channel_choice():
     u = np.array([[0.6, 0.0], [0.6, 0.0], [0.2, 0.0], [0.9, 0.9], [0.9, 0.0], [0.0, 0.0]])
     s = Session(u=u, y=np.zeros((6, 1)), sample_rate_hz=1.0, input_names=["a", "b"])
@@ -319,3 +321,37 @@ def test_blanking_counts_negative_pulses_as_onsets_but_not_polarity_switches():
     out = blank_artifacts(s, window_s=0.03)
     assert np.flatnonzero(~out.mask).tolist() == [5, 6, 7, 20, 21, 22]
     assert out.metadata["prep"][-1]["n_onsets"] == 2
+
+
+# ======================================================================== blanking: what it hides, outputs-only
+def _pulse_train_session(seed=1):
+    # 130 Hz trains at 1 kHz, one sample per pulse: the case where blanking 2 ms hides every pulse
+    rng = np.random.default_rng(seed)
+    n = 20000
+    u = np.zeros((n, 1))
+    k = (np.arange(0, n / FS, 1 / 130.0) * FS).astype(int)
+    u[k, 0] = rng.uniform(20, 60, k.size)
+    y = np.zeros((n, 1))
+    for i in range(1, n):
+        y[i, 0] = 0.8 * y[i - 1, 0] + 0.05 * u[i - 1, 0]  # the response, one sample late
+    y += 0.01 * rng.standard_normal((n, 1)) + 0.05 * u  # plus an artifact on the pulse sample itself
+    return Session(u=u, y=y, sample_rate_hz=FS, trials=[(0, n // 2), (n // 2, n)])
+
+
+def test_blanking_every_pulse_sample_warns_and_the_outputs_only_route_still_fits():
+    from stimsteer.sysid.arx import RidgeArx
+    from stimsteer.sysid.artifacts import subtract_template
+    from stimsteer.sysid.exceptions import ExcitationError, StimsteerWarning
+
+    s = _pulse_train_session()
+    with pytest.warns(StimsteerWarning, match=r"masked every stimulating sample of input\(s\) \['u0'\]"):
+        b = blank_artifacts(s, window_s=0.002)
+    assert np.array_equal(b.u, s.u) and np.array_equal(b.y, s.y)  # values untouched, only the mask changes
+    with pytest.raises(ExcitationError, match=r"never varies"):  # the measured failure, kept visible
+        RidgeArx(output_lags=1, input_lags=1).fit(b)
+    t = subtract_template(s, window_s=0.001)  # outputs only: the inputs stay valid and visible
+    assert np.array_equal(t.u, s.u) and t.mask.all()
+    m = RidgeArx(output_lags=1, input_lags=1).fit(t)
+    # the simulated system y_k = 0.8 y_(k-1) + 0.05 u_(k-1): recovered within 5 % after the artifact is removed
+    assert m.ar_coefs_.ravel()[0] == pytest.approx(0.8, rel=0.05)
+    assert m.input_coefs_.ravel()[0] == pytest.approx(0.05, rel=0.1)

@@ -1,0 +1,95 @@
+"""A recording as a lab's library hands it over, before it becomes a session: channels on their own clocks and
+rates, events, bad intervals and spike times.
+
+The readers of :mod:`~stimsteer.sysid.io.mne`, :mod:`~stimsteer.sysid.io.neo`, :mod:`~stimsteer.sysid.io.nwb`
+and :mod:`~stimsteer.sysid.io.bids` each return a :class:`Recording`; :func:`stimsteer.sysid.description.build_session`
+turns one into a :class:`~stimsteer.sysid.session.Session` following a description (which channels are inputs and
+outputs, which events open trials, the model grid, the artifact handling and the biomarkers).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..exceptions import SessionError
+
+__all__ = ["Channel", "Recording"]
+
+
+@dataclass(frozen=True)
+class Channel:
+    """One recorded channel on its own clock.
+
+    Attributes
+    ----------
+    name : str
+    data : ndarray, shape (n_samples,)
+        Values in ``unit`` (conversions of the file already applied), float64.
+    unit : str
+    sample_rate_hz : float
+    start_time_s : float
+        Time of the first sample on the channel's clock, in seconds.
+    kind : str
+        What the library says the channel is (``"seeg"``, ``"stim"``, ``"ElectricalSeries"``, ...).
+    clock : str
+        Name of the clock its times are on (``"recording"`` unless a reader knows better).
+    """
+
+    name: str
+    data: np.ndarray
+    unit: str
+    sample_rate_hz: float
+    start_time_s: float = 0.0
+    kind: str = ""
+    clock: str = "recording"
+
+    @property
+    def stop_time_s(self) -> float:
+        """Time just after the last sample (the channel covers ``[start_time_s, stop_time_s)``)."""
+        return self.start_time_s + self.data.shape[0] / self.sample_rate_hz
+
+
+@dataclass(frozen=True)
+class Recording:
+    """Channels, events, bad intervals and spike times read from one source.
+
+    Attributes
+    ----------
+    channels : tuple of Channel
+    events : list of dict
+        Each with ``time_s``, ``label`` and ``duration_s``; readers may add more keys (a BIDS ``events.tsv``
+        row keeps its columns).
+    bad_intervals : list of (float, float)
+        ``[start_s, stop_s)`` intervals the source marks bad (MNE ``BAD_*`` annotations, NWB ``invalid_times``).
+    spike_times : dict of str to ndarray
+        Spike times in seconds per unit name.
+    pulses : list of dict
+        Stimulation pulses found in the source (``time_s``, ``site``, ``amplitude``, ``unit``), if any.
+    metadata : dict
+        What the reader knows about the source (format, file, library version).
+    """
+
+    channels: tuple
+    events: list = field(default_factory=list)
+    bad_intervals: list = field(default_factory=list)
+    spike_times: dict = field(default_factory=dict)
+    pulses: list = field(default_factory=list)
+    metadata: dict = field(default_factory=dict)
+
+    @property
+    def channel_names(self) -> list[str]:
+        return [c.name for c in self.channels]
+
+    def channel(self, name: str) -> Channel:
+        """The channel called ``name``; a :class:`SessionError` listing the channels the recording has otherwise."""
+        for c in self.channels:
+            if c.name == name:
+                return c
+        raise SessionError(f"the recording has no channel '{name}'; it has {self.channel_names}. Fix the channel "
+                           "name in the description.")
+
+    def event_labels(self) -> list[str]:
+        """The distinct event labels, sorted."""
+        return sorted({str(e["label"]) for e in self.events})
