@@ -1,0 +1,148 @@
+"""The last check before a stimulation input leaves: :class:`InputGate`.
+
+Every input that a live loop or the streaming bridge delivers passes through a gate at the moment it leaves. The
+gate checks the hard limits of a :class:`~stimsteer.control.limits.StimLimits` against what was *actually
+delivered* before, not against what a plan assumed:
+
+* amplitude: ``lo_i <= u_i <= hi_i`` (declared bounds ∩ the charge-density bound), exactly;
+* slew: ``|u_i − u_i,prev| <= slew_i`` from the last delivered input, exactly;
+* energy: ``Σ u²`` over the rolling window of the last ``energy_window_steps`` delivered inputs (this one
+  included) ``<= energy_budget_ua2``, exactly.
+
+An input that misses a bound by rounding only (at most ``1e-9`` relative, the tolerance the controllers verify
+their plans with) is put exactly on the bound; any other input that breaks a limit, or holds NaN, is replaced by
+the safe fallback of :meth:`StimLimits.safe_inputs` (towards zero as fast as the slew limit allows). The fallback
+has the least magnitude of every slew-respecting input, hence the least energy, so when it still breaks the energy
+window no input could meet it: the gate delivers it, and counts it in ``n_unavoidable`` (the limits conflict).
+
+Decisions
+    * The energy budget is declared "over one planning horizon" (:mod:`stimsteer.control.limits`); for delivered
+      inputs the horizon becomes a rolling window of as many samples (the runner passes the controller's horizon).
+    * The gate never raises on a bad input: a live loop must always have something safe to deliver.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..sysid import InvalidParameterError, LimitsError
+
+__all__ = ["InputGate"]
+
+_ROUNDING = 1e-9  # relative; the same allowance as StimLimits.violations and the controllers' verification
+
+
+class InputGate:
+    """Checks each delivered input against the hard limits and keeps the record the checks need.
+
+    Parameters
+    ----------
+    limits : StimLimits
+    energy_window_steps : int, optional
+        Rolling window of the energy budget, samples; required when the limits have a budget.
+    last_input : ndarray, shape (n_inputs,), optional
+        The input delivered before the first one through this gate, µA; default zero (rest).
+
+    Attributes
+    ----------
+    last_input : ndarray, shape (n_inputs,)
+        The last delivered input, µA.
+    n_admitted, n_replaced, n_unavoidable : int
+        Inputs delivered as given (or put on a bound by rounding only), replaced by the safe fallback, and safe
+        fallbacks that still broke the energy window because no input could meet it.
+    """
+
+    def __init__(self, limits, *, energy_window_steps=None, last_input=None):
+        m = limits.n_inputs
+        self.limits = limits
+        self._lo, self._hi = limits.input_bounds()
+        self._slew = None if limits.slew_max_ua is None else np.asarray(limits.slew_max_ua, np.float64)
+        self._budget = limits.energy_budget_ua2
+        if self._budget is not None:
+            w = energy_window_steps
+            if isinstance(w, bool) or not isinstance(w, (int, np.integer)) or w < 1:
+                raise InvalidParameterError(
+                    f"the limits have an energy budget, so the gate needs energy_window_steps (a whole number of "
+                    f"samples >= 1, usually the controller's horizon); got {w!r}.")
+            self._sq = np.zeros(int(w) - 1)  # squared norms of the previous w − 1 delivered inputs (ring)
+        self._pos = 0
+        last = np.zeros(m) if last_input is None else np.asarray(last_input, np.float64).reshape(-1)
+        if last.shape != (m,) or not np.all(np.isfinite(last)):
+            raise InvalidParameterError(f"last_input must hold {m} finite values (µA); got {last_input!r}.")
+        if limits.violations(last)["amplitude"]:
+            raise LimitsError(f"the input delivered before the gate, {last.tolist()} µA, lies outside the amplitude "
+                              f"window [{self._lo.tolist()}, {self._hi.tolist()}] µA; start from rest (zeros).")
+        self.last_input = last.copy()
+        self.n_admitted = self.n_replaced = self.n_unavoidable = 0
+
+    def safe_input(self) -> np.ndarray:
+        """The safe fallback's next sample from the last delivered input, µA."""
+        return self.limits.safe_inputs(1, self.last_input)[0]
+
+    def admit(self, u) -> tuple[np.ndarray, str]:
+        """Deliver ``u`` if it meets every hard limit, else the safe fallback; record what was delivered.
+
+        Parameters
+        ----------
+        u : ndarray, shape (n_inputs,)
+            The candidate input, µA.
+
+        Returns
+        -------
+        delivered : ndarray, shape (n_inputs,)
+            The input that leaves, µA (a new array).
+        reason : str
+            ``""`` when ``u`` was delivered, else the limit it broke (``"not_finite"``, ``"amplitude"``, ``"slew"``,
+            ``"energy_budget"``).
+        """
+        cand = np.array(u, dtype=np.float64).reshape(-1)
+        reason = self._check(cand) if cand.shape == self.last_input.shape else "amplitude"
+        if reason:
+            cand = self.safe_input()
+            self.n_replaced += 1
+            if self._check(cand) == "energy_budget":
+                self.n_unavoidable += 1
+        else:
+            self.n_admitted += 1
+        self._commit(cand)
+        return cand, reason
+
+    def _check(self, u) -> str:
+        """The first hard limit ``u`` breaks ('' for none); puts rounding-level excess exactly on the bound."""
+        if not np.all(np.isfinite(u)):
+            return "not_finite"
+        if not _onto(u, self._lo, self._hi):
+            return "amplitude"
+        if self._slew is not None and not _onto(u, self.last_input - self._slew, self.last_input + self._slew):
+            return "slew"
+        if not (np.all(u >= self._lo) and np.all(u <= self._hi)):  # the slew window moved it off the amplitude one
+            return "amplitude"
+        if self._budget is not None and float(np.sum(self._sq)) + float(u @ u) > self._budget:
+            return "energy_budget"
+        return ""
+
+    def _commit(self, u):
+        self.last_input = u
+        if self._budget is not None and self._sq.size:
+            self._sq[self._pos] = float(u @ u)
+            self._pos = (self._pos + 1) % self._sq.size
+
+    @property
+    def window_energy_ua2(self) -> float:
+        """``Σ u²`` of the last ``energy_window_steps − 1`` delivered inputs, µA² (0 without a budget)."""
+        return 0.0 if self._budget is None else float(np.sum(self._sq))
+
+
+def _onto(u, lo, hi) -> bool:
+    """True when ``lo <= u <= hi`` after putting rounding-level excess exactly on the bound (in place)."""
+    below, above = u < lo, u > hi
+    if not (below.any() or above.any()):
+        return True
+    for mask, bound in ((below, lo), (above, hi)):
+        for i in np.flatnonzero(mask):
+            if abs(u[i] - bound[i]) > _ROUNDING * max(1.0, abs(bound[i])) or not math.isfinite(bound[i]):
+                return False
+            u[i] = bound[i]
+    return True
