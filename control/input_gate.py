@@ -11,9 +11,13 @@ delivered* before, not against what a plan assumed:
 
 An input that misses a bound by rounding only (at most ``1e-9`` relative, the tolerance the controllers verify
 their plans with) is put exactly on the bound; any other input that breaks a limit, or holds NaN, is replaced by
-the safe fallback of :meth:`StimLimits.safe_inputs` (towards zero as fast as the slew limit allows). The fallback
-has the least magnitude of every slew-respecting input, hence the least energy, so when it still breaks the energy
-window no input could meet it: the gate delivers it, and counts it in ``n_unavoidable`` (the limits conflict).
+the safe fallback of :meth:`StimLimits.safe_inputs` (towards zero as fast as the slew limit allows).
+
+Under a slew limit an input can fit its own energy window and still leave the ramp down too slow for the windows
+after it. So the gate admits an input only when it *and the fastest ramp to zero after it* keep every window
+within the budget; then the safe fallback (the first step of that ramp) always fits in turn, and a run that starts
+at rest never has to break the budget. ``n_unavoidable`` counts fallbacks that broke it anyway (only possible when
+the gate is started from a state that is not at rest and was not checked, which the constructor refuses).
 
 Decisions
     * The energy budget is declared "over one planning horizon" (:mod:`stimsteer.control.limits`); for delivered
@@ -75,6 +79,10 @@ class InputGate:
             raise LimitsError(f"the input delivered before the gate, {last.tolist()} µA, lies outside the amplitude "
                               f"window [{self._lo.tolist()}, {self._hi.tolist()}] µA; start from rest (zeros).")
         self.last_input = last.copy()
+        if self._budget is not None and not self._viable(last):
+            raise LimitsError(f"from the input delivered before the gate, {last.tolist()} µA, even the fastest ramp "
+                              f"to zero breaks the energy budget {self._budget:g} µA² over {energy_window_steps} "
+                              "samples; start from rest (zeros) or declare consistent limits.")
         self.n_admitted = self.n_replaced = self.n_unavoidable = 0
 
     def safe_input(self) -> np.ndarray:
@@ -119,9 +127,29 @@ class InputGate:
             return "slew"
         if not (np.all(u >= self._lo) and np.all(u <= self._hi)):  # the slew window moved it off the amplitude one
             return "amplitude"
-        if self._budget is not None and float(np.sum(self._sq)) + float(u @ u) > self._budget:
+        if self._budget is not None and not self._viable(u):
             return "energy_budget"
         return ""
+
+    def _viable(self, u) -> bool:
+        """True when ``u`` and then the fastest ramp to zero keep every energy window within the budget.
+
+        Checking ``u``'s own window is not enough under a slew limit: an input can fit its window yet leave the
+        ramp down too slow for the next ones. Admitting only inputs whose ramp fits means the safe fallback (the
+        first step of that ramp) always fits in turn, so a run that starts at rest never has to break the budget.
+        """
+        hist = np.roll(self._sq, -self._pos)  # oldest first
+        e_u = float(u @ u)
+        if self._slew is None or not hist.size:
+            return float(np.sum(hist)) + e_u <= self._budget
+        steps = np.arange(1, hist.size + 1)[:, None]
+        ramp = np.maximum(np.abs(u)[None, :] - steps * self._slew[None, :], 0.0)
+        e_ramp = np.sum(ramp * ramp, axis=1)
+        if float(np.sum(hist)) + e_u + float(np.sum(e_ramp)) <= self._budget:  # bounds every window at once
+            return True
+        c = np.concatenate([[0.0], np.cumsum(np.concatenate([hist, [e_u], e_ramp]))])
+        w = hist.size + 1
+        return bool(np.all(c[w:] - c[:-w] <= self._budget))  # every window that holds u or its ramp
 
     def _commit(self, u):
         self.last_input = u

@@ -308,3 +308,20 @@ def test_inputs_are_not_modified(system):
     np.testing.assert_array_equal(t, target)
     assert np.all(warm == 0)
     assert isinstance(Session, type)
+
+
+def test_the_gate_never_corners_itself_under_slew_and_energy_limits():
+    """Greedy admission can leave the ramp down too slow for the next windows (seen on LSL runs: a window of
+    4.01 µA² for a budget of 4); the gate looks ahead along the ramp, so even adversarial requests never force it."""
+    lim = StimLimits(amplitude_min_ua=LO, amplitude_max_ua=HI, n_inputs=M, slew_max_ua=0.3, energy_budget_ua2=4.0)
+    rng = np.random.default_rng(0)
+    gate = InputGate(lim, energy_window_steps=6)
+    sent = []
+    for _ in range(3000):
+        ask = gate.last_input + rng.uniform(-0.3, 0.3, size=M) * rng.choice([1.0, 1.0, 0.2])
+        sent.append(gate.admit(np.clip(ask, LO, HI))[0])
+    u = np.asarray(sent)
+    e = np.sum(u**2, axis=1)
+    assert gate.n_unavoidable == 0 and gate.n_replaced > 0
+    assert all(e[max(0, k - 5):k + 1].sum() <= 4.0 for k in range(len(e)))
+    assert lim.violations(u, np.zeros(M), energy_window_steps=6) == {"amplitude": 0, "slew": 0, "energy_budget": 0}
