@@ -63,6 +63,8 @@ class InputGate:
         self.limits = limits
         self._lo, self._hi = limits.input_bounds()
         self._slew = None if limits.slew_max_ua is None else np.asarray(limits.slew_max_ua, np.float64)
+        self._lo_l, self._hi_l = self._lo.tolist(), self._hi.tolist()
+        self._slew_l = None if self._slew is None else self._slew.tolist()
         self._budget = limits.energy_budget_ua2
         if self._budget is not None:
             w = energy_window_steps
@@ -118,15 +120,23 @@ class InputGate:
         return cand, reason
 
     def _check(self, u) -> str:
-        """The first hard limit ``u`` breaks ('' for none); puts rounding-level excess exactly on the bound."""
-        if not np.all(np.isfinite(u)):
+        """The first hard limit ``u`` breaks ('' for none); puts rounding-level excess exactly on the bound.
+
+        Plain Python floats: for a handful of inputs this is several times faster than numpy calls, and a live
+        loop at 10 kHz has 100 µs for everything.
+        """
+        x = u.tolist()
+        if not all(map(math.isfinite, x)):
             return "not_finite"
-        if not _onto(u, self._lo, self._hi):
+        if not _onto(x, self._lo_l, self._hi_l):
             return "amplitude"
-        if self._slew is not None and not _onto(u, self.last_input - self._slew, self.last_input + self._slew):
-            return "slew"
-        if not (np.all(u >= self._lo) and np.all(u <= self._hi)):  # the slew window moved it off the amplitude one
-            return "amplitude"
+        if self._slew_l is not None:
+            last = self.last_input.tolist()
+            if not _onto(x, [a - s for a, s in zip(last, self._slew_l)], [a + s for a, s in zip(last, self._slew_l)]):
+                return "slew"
+            if not all(lo <= v <= hi for v, lo, hi in zip(x, self._lo_l, self._hi_l)):
+                return "amplitude"  # the slew window moved it off the amplitude one
+        u[:] = x
         if self._budget is not None and not self._viable(u):
             return "energy_budget"
         return ""
@@ -163,14 +173,13 @@ class InputGate:
         return 0.0 if self._budget is None else float(np.sum(self._sq))
 
 
-def _onto(u, lo, hi) -> bool:
-    """True when ``lo <= u <= hi`` after putting rounding-level excess exactly on the bound (in place)."""
-    below, above = u < lo, u > hi
-    if not (below.any() or above.any()):
-        return True
-    for mask, bound in ((below, lo), (above, hi)):
-        for i in np.flatnonzero(mask):
-            if abs(u[i] - bound[i]) > _ROUNDING * max(1.0, abs(bound[i])) or not math.isfinite(bound[i]):
-                return False
-            u[i] = bound[i]
+def _onto(x, lo, hi) -> bool:
+    """True when ``lo <= x <= hi`` after putting rounding-level excess exactly on the bound (``x``: a list)."""
+    for i, (v, a, b) in enumerate(zip(x, lo, hi)):
+        if a <= v <= b:
+            continue
+        bound = a if v < a else b
+        if not math.isfinite(bound) or abs(v - bound) > _ROUNDING * max(1.0, abs(bound)):
+            return False
+        x[i] = bound
     return True

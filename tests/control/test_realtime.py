@@ -192,10 +192,14 @@ def test_a_wall_paced_run_marks_missed_ticks_after_a_long_step(system):
             return super().plan(u_past, y_past, **kw)
 
     run = run_live(Sleepy(_controller(model)), _plant(model, rate=100.0), n_steps=30, target=target, pace="wall")
-    assert run.events[8].startswith("overrun")  # held, or replaced by the gate when holding breaks the energy window
-    assert run.summary["counts"]["missed"] >= 4
+    # a busy machine can add late steps of its own, so count rather than point at step 8
+    assert run.summary["counts"]["overrun"] >= 1 and run.summary["counts"]["missed"] >= 4
     assert np.isfinite(run.jitter_s[1:]).all()
-    assert _independent_check(np.asarray(run.session.u)) == (0, 0, 0)
+    u = np.asarray(run.session.u)
+    for k, e in enumerate(run.events):  # every late step held the last input (unless holding broke the budget)
+        if e in ("overrun", "missed"):
+            np.testing.assert_array_equal(u[PAST + k], u[PAST + k - 1])
+    assert _independent_check(u) == (0, 0, 0)
 
 
 class _StallingPlant:
