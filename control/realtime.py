@@ -81,16 +81,34 @@ class LiveRun:
 
 
 class _Loop:
-    """The mutable state of one run: windows, gate, clock, markers."""
+    """The mutable state of one run: delivered inputs and received outputs (preallocated), gate, clock, markers."""
 
-    def __init__(self, controller, plant, gate, period, policy, pace, clock):
+    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity):
         self.c, self.plant, self.gate, self.T = controller, plant, gate, period
         self.policy, self.pace, self.clock = policy, pace, clock
-        self.U, self.Y, self.events, self.markers = [], [], [], {}
-        self.latency, self.ticks = [], []
+        # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
+        self._u = np.zeros((capacity, controller.n_inputs_))
+        self._y = np.full((capacity, controller.n_outputs_), np.nan)
+        self.n, self.missing_run, self.last_gap = 0, 0, -(10**9)
+        self.events, self.markers, self.latency, self.ticks = [], {}, [], []
+
+    @property
+    def U(self):
+        return self._u[:self.n]
+
+    @property
+    def Y(self):
+        return self._y[:self.n]
+
+    def window(self):
+        """The past window ``(u, y)`` as views, or None when a sample in it is missing."""
+        T, n = self.c.past_steps_, self.n
+        if n - self.last_gap <= T:
+            return None
+        return self._u[n - T:n], self._y[n - T:n]
 
     def mark(self, kind):
-        self.markers.setdefault(kind, []).append(len(self.U))
+        self.markers.setdefault(kind, []).append(self.n)
 
     def deliver(self, u, kind=None):
         """Gate ``u``, send it, receive the next sample; returns the gate's reason ('' when ``u`` left as given)."""
@@ -99,14 +117,23 @@ class _Loop:
         sent, why = self.gate.admit(u)
         if why:
             self.mark(f"gate_{why}")
-        self.U.append(sent)
+        i = self.n
+        self._u[i] = sent
+        self.n = i + 1
         try:
             y = np.asarray(self.plant.step(sent), np.float64).reshape(-1)
         except StimsteerError:
-            self.Y.append(np.full(self.c.n_outputs_, np.nan))
+            self._gap(i)
             raise
-        self.Y.append(y if y.shape == (self.c.n_outputs_,) else np.full(self.c.n_outputs_, np.nan))
+        if y.shape == (self.c.n_outputs_,) and np.isfinite(y).all():
+            self._y[i] = y
+            self.missing_run = 0
+        else:
+            self._gap(i)
         return why
+
+    def _gap(self, i):
+        self.last_gap, self.missing_run = i, self.missing_run + 1
 
     def wait_tick(self, tick):
         if self.pace != "wall":
@@ -177,7 +204,8 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     warm = _warmup(controller, warmup_inputs)
     window = controller.horizon_steps_
     gate = InputGate(controller.limits_, energy_window_steps=window)
-    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock)
+    capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
+    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
     best = _calibrate(controller, warm, target, gate, int(calibration_steps), use_fast_path, clock)
     if period < best["min"]:
         raise InvalidParameterError(
@@ -199,15 +227,12 @@ def _run(loop, warm, n_steps, target, max_stall_s, use_fast_path):
     try:
         for u in warm:
             loop.deliver(u)
-        n_warm = len(loop.U)
         stall_limit = max(1, int(np.ceil(max_stall_s / loop.T)))
         t0 = loop.clock() + loop.T
         for k in range(int(n_steps)):
             _step(loop, t0 + k * loop.T, target, use_fast_path)
-            missing = 0
-            while missing < len(loop.Y) - n_warm and not np.all(np.isfinite(loop.Y[-1 - missing])):
-                missing += 1
-            if missing >= stall_limit:
+            if loop.missing_run >= stall_limit:
+                missing = loop.missing_run
                 stop = (f"no sample arrived for {missing} samples ({missing * loop.T:.3g} s >= max_stall_s "
                         f"{max_stall_s:g} s); the source stalled")
                 break
@@ -229,12 +254,12 @@ def _step(loop, tick, target, use_fast_path):
     if loop.pace == "wall" and start - tick > T:  # this tick passed while the previous step ran: not planned
         loop.latency.append(np.nan)
         return _after(loop, loop.deliver(_policy_input(loop), "missed"), "missed")
-    Up, Yp = np.asarray(loop.U[-c.past_steps_:]), np.asarray(loop.Y[-c.past_steps_:])
-    if not np.all(np.isfinite(Yp)):
+    window = loop.window()
+    if window is None:
         loop.latency.append(loop.clock() - base)
         return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data"), "no_data")
     try:
-        plan = c.plan(Up, Yp, target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
+        plan = c.plan(window[0], window[1], target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
         u, kind = (plan.inputs[0], "planned") if not plan.fallback else (None, "failed")
     except Exception:  # noqa: BLE001 -- a live loop must deliver something safe whatever went wrong in a plan
         u, kind = None, "failed"
@@ -255,15 +280,19 @@ def _policy_input(loop):
     return loop.gate.last_input.copy() if loop.policy == "hold" else loop.gate.safe_input()
 
 
+def _ramp_steps(limits):
+    """Most samples the safe fallback needs from anywhere in the amplitude window to zero."""
+    lo, hi = limits.input_bounds()
+    slew = np.inf if limits.slew_max_ua is None else limits.slew_max_ua
+    reach = np.maximum(np.abs(lo), np.abs(hi))
+    return int(np.max(np.where(np.isfinite(slew), np.ceil(reach / slew), 1))) + 1
+
+
 def _wind_down(loop):
     """Deliver the safe fallback until the input is zero (bounded by the slew limit's ramp length)."""
-    lim = loop.c.limits_
-    last = loop.gate.last_input
-    if not np.any(last):
+    if not np.any(loop.gate.last_input):
         return
-    slew = np.inf if lim.slew_max_ua is None else lim.slew_max_ua
-    n = int(np.max(np.where(np.isfinite(slew), np.ceil(np.abs(last) / slew), 1))) + 1
-    for _ in range(n):
+    for _ in range(_ramp_steps(loop.c.limits_)):
         if not np.any(loop.gate.last_input):
             return
         try:
