@@ -190,7 +190,10 @@ def _live_section(args, model, plant, limits, target, ind):
     from stimsteer.control.realtime import run_live
     from stimsteer.sysid import InvalidParameterError
 
-    print("\nlive runner (stimsteer live), wall-clock pace, box limits, overrun policy hold")
+    import os
+
+    print(f"\nlive runner (stimsteer live), wall-clock pace, box limits, overrun policy hold; load average "
+          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores at the start")
 
     def fresh(rate):
         return LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
@@ -206,6 +209,11 @@ def _live_section(args, model, plant, limits, target, ind):
         _live_report(f"indirect controller at {rate:g} Hz (period = 2 x its median step)", run)
     law = _ExplicitLaw(ind, model, target)
     print(f"explicit law: the linear map of the past window matches estimate_state to {law.map_error:.1e}")
+    n = int(10_000 * seconds)
+    t0 = time.perf_counter()
+    run_live(law, fresh(10_000.0), n_steps=n, target=target, pace="none", calibration_steps=1)
+    print(f"whole step of the runner, unpaced (decision + gate + simulated plant + record): "
+          f"{1e6 * (time.perf_counter() - t0) / n:.1f} µs on average over {n} steps")
     run = run_live(law, fresh(10_000.0), n_steps=int(10_000 * seconds), target=target, pace="wall")
     _live_report("runner at 10 kHz with the explicit law", run)
     lat = run.summary["latency_s"]["p99"]
