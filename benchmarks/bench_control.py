@@ -211,7 +211,7 @@ def _live_section(args, model, plant, limits, target, ind):
     print(f"explicit law: the linear map of the past window matches estimate_state to {law.map_error:.1e}")
     n = int(10_000 * seconds)
     t0 = time.perf_counter()
-    run_live(law, fresh(10_000.0), n_steps=n, target=target, pace="none", calibration_steps=1)
+    run_live(law, fresh(10_000.0), n_steps=n, target=target, pace="none")
     print(f"whole step of the runner, unpaced (decision + gate + simulated plant + record): "
           f"{1e6 * (time.perf_counter() - t0) / n:.1f} µs on average over {n} steps")
     run = run_live(law, fresh(10_000.0), n_steps=int(10_000 * seconds), target=target, pace="wall")
