@@ -218,3 +218,44 @@ def test_a_bridge_that_was_not_opened_says_so(system):
     _, ctrl, _ = system
     with pytest.raises(Exception, match="not open"):
         _bridge(ctrl, "closed").step(np.zeros(M))
+
+
+_EXCHANGE = """
+import numpy as np
+from stimsteer.control.stream import LslBridge, SimulatedLslPlant, configure_lsl
+configure_lsl()
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.plants import LinearNetworkPlant
+plant = LinearNetworkPlant(np.eye(2) * 0.5, np.eye(2), np.eye(2), sample_rate_hz=50.0)
+lim = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=2)
+names = ("TAG-rec", "TAG-cmd")
+with SimulatedLslPlant(plant, output_stream=names[0], command_stream=names[1], output_names=plant.output_names):
+    with LslBridge(inlet_name=names[0], outlet_name=names[1], input_names=plant.input_names,
+                   output_names=plant.output_names, sample_rate_hz=50.0, limits=lim) as bridge:
+        bridge.reset()
+        for k in range(20):
+            bridge.step(np.full(2, 0.1 * (k % 3)))
+print("exchanged")
+"""
+
+
+@pytest.mark.slow  # a fresh interpreter under strace (about 10 s)
+def test_no_lsl_packet_is_addressed_outside_the_loopback_range(tmp_path):
+    """Every address the bridge and the simulated plant connect or send to is in 127.0.0.0/8, and none is IPv6
+    (system-call trace of a whole exchange; the loopback range is RFC 1122, section 3.2.1.3)."""
+    import re
+    import shutil
+
+    if shutil.which("strace") is None:
+        pytest.skip("strace is not installed: the system-call check of the addresses cannot run here")
+    trace = tmp_path / "trace.txt"
+    cmd = ["strace", "-f", "-qq", "-e", "trace=connect,sendto,sendmsg,sendmmsg", "-o", str(trace), sys.executable,
+           "-c", _EXCHANGE.replace("TAG", f"trace-{_TAG}")]
+    out = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    if "exchanged" not in out.stdout and "ptrace" in out.stderr:
+        pytest.skip(f"strace cannot trace here: {out.stderr.strip()[:200]}")
+    assert "exchanged" in out.stdout, out.stderr[-2000:]
+    text = trace.read_text()
+    v4 = re.findall(r'inet_addr\("([0-9.]+)"\)', text)
+    assert v4 and all(a.startswith("127.") for a in v4), sorted(set(v4))
+    assert "AF_INET6" not in text
