@@ -1,0 +1,63 @@
+"""The record of a live run (:mod:`stimsteer.control.realtime`): its timing figures and the session it becomes."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..sysid import Session
+from ..sysid.caution import CAUTION
+
+__all__ = ["record_run", "timing_summary"]
+
+
+def _quantiles(a):
+    a = np.asarray(a, np.float64)
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        return {"p50": None, "p99": None, "max": None}
+    return {"p50": float(np.percentile(a, 50)), "p99": float(np.percentile(a, 99)), "max": float(a.max())}
+
+
+def timing_summary(loop, period, calibration, stop) -> dict:
+    """JSON-ready figures of a run: latency and jitter quantiles (seconds), marker counts, the gate's counts."""
+    ticks = np.asarray(loop.ticks, np.float64)
+    jitter = np.abs(np.diff(ticks) - period) if loop.pace != "none" and ticks.size > 1 else []
+    kinds = [e.split("+")[0] for e in loop.events]
+    counts = {k: kinds.count(k) for k in ("planned", "overrun", "missed", "failed", "no_data")}
+    delivered = np.asarray(loop.U)
+    lim = loop.c.limits_
+    # an independent re-check of everything delivered, with the limits' own rule (not the gate's code)
+    recheck = lim.violations(delivered, np.zeros(lim.n_inputs),
+                             energy_window_steps=loop.c.horizon_steps_) if delivered.size else {}
+    return {
+        "sample_period_s": period, "sample_rate_hz": 1.0 / period, "pace": loop.pace,
+        "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
+        "latency_s": _quantiles(loop.latency), "jitter_s": _quantiles(jitter),
+        "calibration_s": dict(calibration), "counts": counts,
+        "gate": {"admitted": loop.gate.n_admitted, "replaced": loop.gate.n_replaced,
+                 "unavoidable": loop.gate.n_unavoidable},
+        "unchecked_inputs": len(loop.U) - loop.gate.n_admitted - loop.gate.n_replaced,
+        "delivered_violations": {k: int(v) for k, v in recheck.items()},
+        "energy_window_steps": int(loop.c.horizon_steps_),
+    }
+
+
+def record_run(loop, n_warm, n_steps, period, summary, output_units) -> Session:
+    """The whole run as a session: delivered inputs, received outputs (missing ones masked), markers in metadata."""
+    u = np.asarray(loop.U, np.float64)
+    y = np.asarray(loop.Y, np.float64).reshape(u.shape[0], loop.c.n_outputs_)
+    valid = np.all(np.isfinite(y), axis=1)
+    y = np.where(valid[:, None], y, np.nan)
+    n_run = len(loop.events)
+    trials = [(n_warm, n_warm + n_run)] if n_run else None
+    p = loop.c.n_outputs_
+    units = (output_units,) * p if isinstance(output_units, str) else tuple(output_units)
+    meta = {
+        "recorded_under_feedback": True, "live_run": summary, "caution": CAUTION,
+        "markers": {k: [int(i) for i in v] for k, v in sorted(loop.markers.items())},
+        "warmup_samples": int(n_warm), "controlled_samples": int(n_run), "requested_samples": int(n_steps),
+        "wind_down_samples": int(u.shape[0] - n_warm - n_run),
+    }
+    return Session(u=u, y=y, sample_rate_hz=1.0 / period, trials=trials, mask=valid,
+                   input_names=tuple(loop.c.input_names_), output_names=tuple(loop.c.output_names_),
+                   input_units=("uA",) * loop.c.n_inputs_, output_units=units, metadata=meta)

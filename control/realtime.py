@@ -1,0 +1,375 @@
+"""Live closed loops with deadlines: :func:`run_live`, a loop runner that treats the sample period as a budget.
+
+At every sample the runner plans from the last measured window with any controller of
+:mod:`stimsteer.control.mpc` (through its public ``plan``), and delivers the plan's first input to a plant (a
+simulated plant, or the streaming bridge of :mod:`stimsteer.control.stream`; anything with ``reset`` and
+``step``). Unlike :func:`stimsteer.control.loop.run_closed_loop` (a simulation study), it keeps time:
+
+* **Budget.** The sample period is the budget of each step, counted from the sample's tick (``pace="wall"``: the
+  runner's own schedule ``t0 + k·T``; ``pace="source"``: the moment the plant's ``step`` returned the sample, for
+  sources that block until data arrive; ``pace="none"``: simulation as fast as possible, the budget applies to the
+  compute time alone). A step whose decision is ready after the budget is an *overrun*; a wall tick that has
+  already passed when the runner reaches it is *missed* (not planned at all).
+* **Overrun policy**, declared: ``"hold"`` delivers the last delivered input again, ``"fallback"`` the next sample
+  of the safe fallback (:meth:`StimLimits.safe_inputs`). A late plan is never delivered. A plan that failed (a
+  fallback plan, or a controller that raised) and a window with missing data (a stalled source) deliver the safe
+  fallback whatever the policy: without a valid plan or data, holding a stimulation is not known to be safe.
+* **Gate.** Every input that leaves passes :class:`~stimsteer.control.input_gate.InputGate` at that moment:
+  amplitude, slew from the last *delivered* input, and the energy budget over the rolling window of delivered
+  inputs (the controller's horizon); an input that breaks one is replaced by the safe fallback.
+* **Refusal.** Before the first input, the runner times ``calibration_steps`` plans on the warm-up window (nothing
+  is delivered) and refuses to start when the sample period is shorter than the best of them, with the figures.
+* **Wind-down.** However the run ends (its length, a stalled source, a stream error, an interrupt), the runner
+  delivers the safe fallback until the input is zero, so a stimulator is never left holding a command.
+* **Record.** The whole run is a :class:`~stimsteer.sysid.Session`: inputs actually delivered, outputs received
+  (a missing sample is masked), one trial over the controlled samples, and in its metadata the markers (sample
+  indices of overruns, missed ticks, fallbacks, gate replacements, missing data, wind-down) and the timing
+  figures, so the run can be checked and refitted (it is marked ``recorded_under_feedback``).
+
+Latency is the time from the tick to the decision (plan + gate), seconds; jitter is ``|tick interval − T|``
+(``pace`` "wall" or "source"). Reported as p50/p99/max with the counts of each marker.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..sysid import InvalidParameterError, LimitsError, Session, SessionError, StimsteerError, check_fitted
+from ..sysid.caution import CAUTION
+from ._live_record import record_run, timing_summary
+from .input_gate import InputGate
+
+__all__ = ["LiveRun", "run_live", "OVERRUN_POLICIES", "PACES"]
+
+OVERRUN_POLICIES = ("hold", "fallback")
+PACES = ("wall", "source", "none")
+_SPIN_S = 0.0005  # sleep until this close to a wall tick, then spin: sleep alone wakes up to ~0.1 ms late
+
+
+@dataclass(frozen=True)
+class LiveRun:
+    """What a live run delivered and how well it kept time.
+
+    Attributes
+    ----------
+    session : Session
+        The recorded run (warm-up, controlled samples, wind-down); markers and timing in ``session.metadata``.
+    latency_s : ndarray, shape (n_steps,)
+        Tick to decision of each controlled sample, seconds (NaN for a missed tick).
+    jitter_s : ndarray, shape (n_steps,)
+        ``|tick interval − sample period|``, seconds (NaN with ``pace="none"``, and for the first tick).
+    events : tuple of str
+        Per controlled sample: ``"planned"``, ``"overrun"``, ``"missed"``, ``"failed"`` (a fallback plan or a
+        controller error), ``"no_data"``; a gate replacement adds ``"+gate:<limit>"``.
+    stop_reason : str
+        ``""`` when the run reached its length, else why it stopped early.
+    summary : dict
+        JSON-ready figures (see :func:`stimsteer.control._live_record.timing_summary`).
+    caution : str
+    """
+
+    session: Session
+    latency_s: np.ndarray
+    jitter_s: np.ndarray
+    events: tuple
+    stop_reason: str
+    summary: dict
+    caution: str = CAUTION
+
+
+class _Loop:
+    """The mutable state of one run: delivered inputs and received outputs (preallocated), gate, clock, markers."""
+
+    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity):
+        self.c, self.plant, self.gate, self.T = controller, plant, gate, period
+        self.policy, self.pace, self.clock = policy, pace, clock
+        # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
+        self._u = np.zeros((capacity, controller.n_inputs_))
+        self._y = np.full((capacity, controller.n_outputs_), np.nan)
+        self.n, self.missing_run, self.last_gap = 0, 0, -(10**9)
+        self.events, self.markers, self.latency, self.ticks = [], {}, [], []
+
+    @property
+    def U(self):
+        return self._u[:self.n]
+
+    @property
+    def Y(self):
+        return self._y[:self.n]
+
+    def window(self):
+        """The past window ``(u, y)`` as views, or None when a sample in it is missing."""
+        T, n = self.c.past_steps_, self.n
+        if n - self.last_gap <= T:
+            return None
+        return self._u[n - T:n], self._y[n - T:n]
+
+    def mark(self, kind):
+        self.markers.setdefault(kind, []).append(self.n)
+
+    def deliver(self, u, kind=None):
+        """Gate ``u``, send it, receive the next sample; returns the gate's reason ('' when ``u`` left as given)."""
+        if kind:
+            self.mark(kind)
+        sent, why = self.gate.admit(u)
+        if why:
+            self.mark(f"gate_{why}")
+        i = self.n
+        self._u[i] = sent
+        self.n = i + 1
+        try:
+            y = np.asarray(self.plant.step(sent), np.float64).reshape(-1)
+        except StimsteerError:
+            self._gap(i)
+            raise
+        if y.shape == (self.c.n_outputs_,) and np.isfinite(y).all():
+            self._y[i] = y
+            self.missing_run = 0
+        else:
+            self._gap(i)
+        return why
+
+    def _gap(self, i):
+        self.last_gap, self.missing_run = i, self.missing_run + 1
+
+    def wait_tick(self, tick):
+        if self.pace != "wall":
+            return self.clock()
+        while True:
+            now = self.clock()
+            left = tick - now
+            if left <= 0:
+                return now
+            if left > _SPIN_S:
+                time.sleep(left - _SPIN_S)
+
+
+def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
+             seed=None, x0=None, warmup_inputs=None, calibration_steps=20, max_stall_s=1.0, use_fast_path=None,
+             output_units="a.u.", clock=time.perf_counter) -> LiveRun:
+    """Run a fitted controller against a plant in real time, with deadlines, and record the run as a session.
+
+    Parameters
+    ----------
+    controller : a fitted controller of :mod:`stimsteer.control.mpc`
+        Used through ``plan(u_past, y_past, target=, last_input=, use_fast_path=)``, ``reset()`` and its fitted
+        ``limits_``, ``past_steps_``, ``horizon_steps_``, ``n_inputs_``, ``n_outputs_``, ``input_names_``,
+        ``output_names_``.
+    plant : Plant
+        ``reset(seed, x0)``, ``step(u_k) -> y_k`` and ``sample_rate_hz`` (a row of NaN: no sample arrived).
+    n_steps : int
+        Controlled samples (after the warm-up).
+    target : ndarray
+        As for ``controller.plan``: a constant (n_outputs,) or state target, kept for the whole run.
+    overrun_policy : {"hold", "fallback"}, default "hold"
+        What an overrun or a missed tick delivers (see the module docstring).
+    pace : {"wall", "source", "none"}, default "wall"
+        Where ticks come from (see the module docstring).
+    sample_rate_hz : float, optional
+        The loop's rate; default the plant's. A rate different from the plant's is refused.
+    seed, x0
+        Passed to ``plant.reset``.
+    warmup_inputs : ndarray, shape (>= past_steps_, n_inputs), optional
+        Delivered before the loop (through the gate) to fill the past window; default zeros.
+    calibration_steps : int, default 20
+        Plans timed before the start (nothing delivered); the best of them must fit in the sample period.
+    max_stall_s : float, default 1.0
+        Stop when no sample has arrived for this long (consecutive missing samples × period).
+    use_fast_path : bool, optional
+        Passed to every plan.
+    output_units : str or sequence of str, default "a.u."
+        Units of the recorded outputs in the session.
+    clock : callable, default time.perf_counter
+        Monotonic seconds.
+
+    Returns
+    -------
+    LiveRun
+
+    Raises
+    ------
+    InvalidParameterError
+        Bad settings; a sample period shorter than the best measured step (the message gives the figures).
+    SessionError
+        A plant whose channels or rate differ from the controller's; a bad warm-up.
+    LimitsError
+        Warm-up inputs outside the limits.
+    """
+    check_fitted(controller, "problem_")
+    period = _check_settings(controller, plant, n_steps, overrun_policy, pace, sample_rate_hz, calibration_steps,
+                             max_stall_s)
+    warm = _warmup(controller, warmup_inputs)
+    window = controller.horizon_steps_
+    gate = InputGate(controller.limits_, energy_window_steps=window)
+    capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
+    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
+    best = _calibrate(controller, warm, target, gate, int(calibration_steps), use_fast_path, clock)
+    if period < best["min"]:
+        raise InvalidParameterError(
+            f"the sample period {_us(period)} ({1 / period:g} Hz) is shorter than the best measured step "
+            f"{_us(best['min'])} (median {_us(best['median'])}, max {_us(best['max'])} over {best['n']} timed plans "
+            f"on the warm-up window); lower the rate below {1 / best['min']:.4g} Hz (below {1 / best['median']:.4g} "
+            "Hz for most steps to meet their deadline), or use a cheaper controller (shorter horizon, fewer inputs).")
+    plant.reset(seed=seed, x0=x0)
+    stop = _run(loop, warm, n_steps, target, max_stall_s, use_fast_path)
+    summary = timing_summary(loop, period, best, stop)
+    session = record_run(loop, warm.shape[0], n_steps, period, summary, output_units)
+    return LiveRun(session=session, latency_s=_ro(loop.latency), jitter_s=_jitter(loop.ticks, period, pace),
+                   events=tuple(loop.events), stop_reason=stop, summary=summary)
+
+
+def _run(loop, warm, n_steps, target, max_stall_s, use_fast_path):
+    """Warm up, run the controlled samples, wind down; the stop reason ('' for a complete run)."""
+    stop = ""
+    try:
+        for u in warm:
+            loop.deliver(u)
+        stall_limit = max(1, int(np.ceil(max_stall_s / loop.T)))
+        t0 = loop.clock() + loop.T
+        for k in range(int(n_steps)):
+            _step(loop, t0 + k * loop.T, target, use_fast_path)
+            if loop.missing_run >= stall_limit:
+                missing = loop.missing_run
+                stop = (f"no sample arrived for {missing} samples ({missing * loop.T:.3g} s >= max_stall_s "
+                        f"{max_stall_s:g} s); the source stalled")
+                break
+    except StimsteerError as exc:  # a stream fault (e.g. a clock jump): stop, then wind down safely
+        stop = str(exc)
+    except KeyboardInterrupt:
+        stop = "interrupted"
+    finally:
+        _wind_down(loop)
+    return stop
+
+
+def _step(loop, tick, target, use_fast_path):
+    """One controlled sample: wait for its tick, plan within the budget or apply the policy, deliver."""
+    c, T = loop.c, loop.T
+    start = loop.wait_tick(tick)
+    base = tick if loop.pace == "wall" else start
+    loop.ticks.append(start)
+    if loop.pace == "wall" and start - tick > T:  # this tick passed while the previous step ran: not planned
+        loop.latency.append(np.nan)
+        return _after(loop, loop.deliver(_policy_input(loop), "missed"), "missed")
+    window = loop.window()
+    if window is None:
+        loop.latency.append(loop.clock() - base)
+        return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data"), "no_data")
+    try:
+        plan = c.plan(window[0], window[1], target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
+        u, kind = (plan.inputs[0], "planned") if not plan.fallback else (None, "failed")
+    except Exception:  # noqa: BLE001 -- a live loop must deliver something safe whatever went wrong in a plan
+        u, kind = None, "failed"
+    done = loop.clock()
+    loop.latency.append(done - base)
+    if kind == "planned" and done - base > T:
+        u, kind = _policy_input(loop), "overrun"  # a late plan is never delivered
+    elif kind == "failed":
+        u = loop.gate.safe_input()
+    return _after(loop, loop.deliver(u, None if kind == "planned" else kind), kind)
+
+
+def _after(loop, why, kind):
+    loop.events.append(kind + (f"+gate:{why}" if why else ""))
+
+
+def _policy_input(loop):
+    return loop.gate.last_input.copy() if loop.policy == "hold" else loop.gate.safe_input()
+
+
+def _ramp_steps(limits):
+    """Most samples the safe fallback needs from anywhere in the amplitude window to zero."""
+    lo, hi = limits.input_bounds()
+    slew = np.inf if limits.slew_max_ua is None else limits.slew_max_ua
+    reach = np.maximum(np.abs(lo), np.abs(hi))
+    return int(np.max(np.where(np.isfinite(slew), np.ceil(reach / slew), 1))) + 1
+
+
+def _wind_down(loop):
+    """Deliver the safe fallback until the input is zero (bounded by the slew limit's ramp length)."""
+    if not np.any(loop.gate.last_input):
+        return
+    for _ in range(_ramp_steps(loop.c.limits_)):
+        if not np.any(loop.gate.last_input):
+            return
+        try:
+            loop.deliver(loop.gate.safe_input(), "wind_down")
+        except StimsteerError:  # the source is gone: the command still leaves, the next one too
+            continue
+
+
+def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
+    T = controller.past_steps_
+    times = np.empty(n)
+    for i in range(n):
+        t0 = clock()
+        plan = controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
+                               use_fast_path=use_fast_path)
+        InputGate(controller.limits_, energy_window_steps=controller.horizon_steps_).admit(plan.inputs[0])
+        times[i] = clock() - t0
+    controller.reset()  # no warm start carried from the timing plans into the run
+    return {"n": n, "min": float(times.min()), "median": float(np.median(times)), "max": float(times.max())}
+
+
+def _zeros_like_outputs(controller, T):
+    return np.zeros((T, controller.n_outputs_))
+
+
+def _check_settings(controller, plant, n_steps, policy, pace, rate, calibration_steps, max_stall_s):
+    if policy not in OVERRUN_POLICIES:
+        raise InvalidParameterError(f"overrun_policy must be one of {list(OVERRUN_POLICIES)}; got {policy!r}.")
+    if pace not in PACES:
+        raise InvalidParameterError(f"pace must be one of {list(PACES)}; got {pace!r}.")
+    for name, v in (("n_steps", n_steps), ("calibration_steps", calibration_steps)):
+        if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 1:
+            raise InvalidParameterError(f"{name} must be a whole number >= 1; got {v!r}.")
+    if not (isinstance(max_stall_s, (int, float)) and np.isfinite(max_stall_s) and max_stall_s > 0):
+        raise InvalidParameterError(f"max_stall_s must be a positive number of seconds; got {max_stall_s!r}.")
+    m, p = controller.n_inputs_, controller.n_outputs_
+    if (int(plant.n_inputs), int(plant.n_outputs)) != (m, p):
+        raise SessionError(f"the plant has {plant.n_inputs} inputs and {plant.n_outputs} outputs but the controller "
+                           f"{m} and {p}; run the loop on a plant with the channels the controller was built for.")
+    plant_rate = float(plant.sample_rate_hz)
+    rate = plant_rate if rate is None else float(rate)
+    if not (np.isfinite(rate) and rate > 0):
+        raise InvalidParameterError(f"sample_rate_hz must be a positive number of Hz; got {rate!r}.")
+    if abs(rate - plant_rate) > 1e-9 * plant_rate:
+        raise SessionError(f"the loop rate {rate:g} Hz differs from the plant's {plant_rate:g} Hz; run the loop at "
+                           "the rate the plant (or stream) samples at.")
+    return 1.0 / rate
+
+
+def _warmup(controller, warmup_inputs):
+    m, T = controller.n_inputs_, controller.past_steps_
+    if warmup_inputs is None:
+        return np.zeros((T, m))
+    w = np.asarray(warmup_inputs, dtype=np.float64)
+    if w.ndim != 2 or w.shape[1] != m or w.shape[0] < T:
+        raise SessionError(f"warmup_inputs must have shape (>= {T}, {m}) (the controller's past window); got "
+                           f"{w.shape}.")
+    bad = controller.limits_.violations(w, np.zeros(m), energy_window_steps=controller.horizon_steps_)
+    if any(bad.values()) or not np.all(np.isfinite(w)):
+        raise LimitsError(f"the warm-up inputs break the hard limits ({bad}) counted from rest; warm up inside "
+                          "the declared limits.")
+    return w
+
+
+def _jitter(ticks, period, pace):
+    t = np.asarray(ticks, np.float64)
+    j = np.full(t.shape, np.nan)
+    if pace != "none" and t.size > 1:
+        j[1:] = np.abs(np.diff(t) - period)
+    return _ro(j)
+
+
+def _us(seconds):
+    return f"{seconds * 1e6:.0f} µs"
+
+
+def _ro(a):
+    a = np.array(a, dtype=np.float64, copy=True)
+    a.setflags(write=False)
+    return a

@@ -1,0 +1,121 @@
+"""`stimsteer live` as a user runs it: a simulated plant in wall-clock time and behind LSL streams on this machine,
+the run folder it writes, and its bad-input lines (exit 2, one line, no traceback)."""
+
+from __future__ import annotations
+
+import json
+import os
+
+import numpy as np
+import pytest
+
+from stimsteer.control.stream import configure_lsl
+
+configure_lsl()  # before anything imports pylsl: LSL stays on this machine
+
+from stimsteer.control.cli import CAUTION, main  # noqa: E402
+from stimsteer.control.plants import LinearNetworkPlant, save_plant  # noqa: E402
+from stimsteer.sysid import StateSpaceModel  # noqa: E402
+from stimsteer.sysid.io import load_session  # noqa: E402
+from stimsteer.sysid.storage import save_predictor  # noqa: E402
+
+RATE = 50.0
+LIMITS = """
+[energy]
+budget_ua2 = 8.0
+
+[inputs.site_b]
+amplitude_min_ua = -1.0
+amplitude_max_ua = 1.0
+slew_max_ua = 0.4
+
+[inputs.site_a]
+amplitude_min_ua = -1.0
+amplitude_max_ua = 1.5
+slew_max_ua = 0.4
+"""
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("live")
+    rng = np.random.default_rng(4)
+    A = rng.normal(size=(4, 4))
+    A *= 0.8 / np.max(np.abs(np.linalg.eigvals(A)))
+    B, C = rng.normal(size=(4, 2)), rng.normal(size=(3, 4))
+    names_in, names_out = ("site_a", "site_b"), ("lfp_0", "lfp_1", "lfp_2")
+    model = StateSpaceModel(A=A, B=B, C=C, sample_rate_hz=RATE, input_names=names_in, output_names=names_out,
+                            past_steps=3)
+    prov = {"session": {"input_names": list(names_in), "input_units": ["uA", "uA"], "output_names": list(names_out),
+                        "output_units": ["uV"] * 3, "sample_rate_hz": RATE}}
+    save_predictor(model, d / "model.h5", provenance=prov)
+    plant = LinearNetworkPlant(A, B, C, measurement_noise_std=0.01, sample_rate_hz=RATE, input_names=names_in,
+                               output_names=names_out)
+    save_plant(plant, d / "plant.h5")
+    (d / "limits.toml").write_text(LIMITS)
+    return d
+
+
+def _args(d, out, *extra):
+    return [
+        "live", str(d / "model.h5"), "--limits", str(d / "limits.toml"), "--target", "lfp_0=2,lfp_2=-1",
+        "--horizon-steps", "6", "--duration-s", "0.6", "--out", str(d / out), *extra,
+    ]
+
+
+@pytest.mark.parametrize("via_lsl", [False, True])
+def test_live_runs_for_the_declared_time_and_writes_a_refittable_session(files, capsys, via_lsl):
+    out = f"run_{via_lsl}"
+    code = main(_args(files, out, "--plant", str(files / "plant.h5"), *(["--via-lsl"] if via_lsl else [])))
+    printed = capsys.readouterr().out
+    assert code == 0, printed
+    assert "step latency p50" in printed and "unchecked inputs 0" in printed and CAUTION in printed
+    s = load_session(files / out / "run.h5")
+    summary = json.loads((files / out / "run.json").read_text())
+    assert summary["n_steps_run"] == 30 and summary["pace"] == ("source" if via_lsl else "wall")
+    assert summary["delivered_violations"] == {"amplitude": 0, "slew": 0, "energy_budget": 0}
+    assert s.sample_rate_hz == RATE and s.input_names == ("site_a", "site_b") and s.output_units == ("uV",) * 3
+    assert s.metadata["recorded_under_feedback"] is True and np.all(s.u[-1] == 0)
+
+
+@pytest.mark.parametrize("extra, match", [
+    ([], "give either --plant PLANT.h5"),
+    (["--inlet", "stimsteer-absent-{pid}", "--resolve-timeout-s", "0.3"],
+     "no LSL stream named 'stimsteer-absent-.*' .* within 0.3 s"),
+    (["--plant", "PLANT", "--inlet", "x"], "not both or neither"),
+    (["--plant", "PLANT", "--duration-s", "-1"], "--duration-s must be a positive"),
+])
+def test_live_bad_input_is_one_line_with_exit_code_2(files, capsys, extra, match):
+    import re
+
+    extra = [e.replace("PLANT", str(files / "plant.h5")).replace("{pid}", str(os.getpid())) for e in extra]
+    code = main(_args(files, "bad", *extra))
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and re.search(match, err), err
+    assert not (files / "bad").exists() or not any((files / "bad").iterdir())
+
+
+def test_live_refuses_a_plant_at_another_rate(files, capsys, tmp_path):
+    other = LinearNetworkPlant(np.eye(4) * 0.5, np.ones((4, 2)), np.ones((3, 4)), sample_rate_hz=RATE * 2,
+                               input_names=("site_a", "site_b"), output_names=("lfp_0", "lfp_1", "lfp_2"))
+    save_plant(other, tmp_path / "fast.h5")
+    code = main(_args(files, "rate", "--plant", str(tmp_path / "fast.h5")))
+    assert code == 2 and "samples at 100 Hz but the model at 50 Hz" in capsys.readouterr().err
+
+
+def test_live_refuses_a_rate_faster_than_its_best_step(files, capsys, tmp_path):
+    """A 1 MHz plant: no plan takes under 1 µs, so the run must not start, and says why with the figures."""
+    fast = LinearNetworkPlant(np.eye(4) * 0.5, np.ones((4, 2)), np.ones((3, 4)), sample_rate_hz=1e6,
+                              input_names=("site_a", "site_b"), output_names=("lfp_0", "lfp_1", "lfp_2"))
+    save_plant(fast, tmp_path / "fast.h5")
+    model = StateSpaceModel(A=np.eye(4) * 0.5, B=np.ones((4, 2)), C=np.ones((3, 4)), sample_rate_hz=1e6,
+                            input_names=("site_a", "site_b"), output_names=("lfp_0", "lfp_1", "lfp_2"), past_steps=3)
+    prov = {"session": {"input_names": ["site_a", "site_b"], "output_names": ["lfp_0", "lfp_1", "lfp_2"],
+                        "output_units": ["uV"] * 3, "sample_rate_hz": 1e6}}
+    save_predictor(model, tmp_path / "m.h5", provenance=prov)
+    args = _args(files, "refused", "--plant", str(tmp_path / "fast.h5"))
+    args[1] = str(tmp_path / "m.h5")
+    code = main(args)
+    err = capsys.readouterr().err
+    assert code == 2 and "the sample period 1 µs (1e+06 Hz) is shorter than the best measured step" in err
+    assert "median" in err and not (files / "refused").exists()
