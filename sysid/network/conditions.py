@@ -17,7 +17,7 @@ import numpy as np
 
 from ..exceptions import InvalidParameterError, SessionError
 from ..session import Session
-from .controllability import site_controllability
+from .controllability import _require_stable, average_controllability_values
 from .outputs import site_output_controllability
 
 __all__ = ["trial_conditions", "condition_figures", "ConditionFigures", "CONDITIONS_KEY"]
@@ -68,7 +68,10 @@ def _resampled(session, idx) -> Session:
 def _figures(model, gramian_steps) -> dict:
     out = {"h2_squared": np.asarray(site_output_controllability(model, horizon_steps=gramian_steps).h2_squared)}
     if isinstance(model.info.get("network_map"), dict):
-        out["average_controllability"] = np.asarray(site_controllability(model, horizon_steps=gramian_steps).average)
+        A = np.asarray(model.A)
+        if gramian_steps is None:
+            _require_stable(A, "the average controllability of a condition's model")
+        out["average_controllability"] = average_controllability_values(A, np.asarray(model.B), gramian_steps)
     return out
 
 

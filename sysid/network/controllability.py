@@ -289,15 +289,23 @@ def site_controllability(system, *, horizon_steps: int | None = None,
     T = _check_horizon(horizon_steps, allow_none=True)
     _require_stable(A, "modal controllability (and the infinite-horizon average controllability)")
     B = np.array(model.B)
-    n = A.shape[0]
-    if T is None:
-        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
-    else:
-        P = _gramian(A.T, np.eye(n), T)
-    average = np.einsum("ij,ik,kj->j", B, P, B)
+    average = average_controllability_values(A, B, T)
     modal = modal_controllability_values(A, B)
     return SiteControllability(site_names=tuple(model.input_names), average=_frozen(average), modal=_frozen(modal),
                                horizon_steps=T, normalisation=norm)
+
+
+def average_controllability_values(A, B, horizon_steps=None) -> np.ndarray:
+    """``trace(W_j) = b_jᵀ P b_j`` of every column of ``B``, ``P = Aᵀ P A + I`` (or its ``T``-term sum).
+
+    ``A`` must be stable for the infinite horizon (checked by the callers).
+    """
+    n = A.shape[0]
+    if horizon_steps is None:
+        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
+    else:
+        P = _gramian(A.T, np.eye(n), horizon_steps)
+    return np.einsum("ij,ik,kj->j", B, P, B)
 
 
 # ---------------------------------------------------------------------------------------------------- modal
