@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from ...sysid import InvalidParameterError, UnstableModelError, controllability, impulse_responses
+from ...sysid import (ConditioningWarning, InvalidParameterError, UnstableModelError, controllability,
+                      impulse_responses)
 from ...sysid._files import atomic_dir
 from ...sysid.network import (output_controllability, output_gramian, output_transition, rank_sites_by_output,
                               site_controllability, site_output_controllability)
@@ -98,8 +100,12 @@ def _check_horizons(model, horizon_steps, gramian_steps):
     return int(T)
 
 
-def _state_table(model, gramian_steps):
-    sc = site_controllability(model, horizon_steps=gramian_steps)
+def _state_table(model, gramian_steps, lines):
+    """Average and modal controllability per site; a conditioning warning goes to the summary ``lines``."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ConditioningWarning)
+        sc = site_controllability(model, horizon_steps=gramian_steps)
+    lines += [f"warning: {w.message}" for w in caught if issubclass(w.category, ConditioningWarning)]
     label = MAP_NODES if is_network_map(model) else STATE_WARNING
     return pd.DataFrame({"site": list(sc.site_names), "average_controllability": sc.average,
                          "modal_controllability": sc.modal, "coordinates": label})
@@ -158,10 +164,10 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     kal = controllability(model, horizon_steps=gramian_steps)
     out_rep = output_controllability(model, horizon_steps=gramian_steps)
     sites = site_output_controllability(model, horizon_steps=gramian_steps)
-    state = _state_table(model, gramian_steps) if (state_figures or is_network_map(model)) else None
+    lines = _summary_lines(model, kal, out_rep)
+    state = _state_table(model, gramian_steps, lines) if (state_figures or is_network_map(model)) else None
     pairs = _pair_table(model, gramian_steps, max_set_size)
     h = impulse_responses(model, max(20, 3 * n) if impulse_steps is None else impulse_steps)
-    lines = _summary_lines(model, kal, out_rep)
     order = np.argsort(-sites.h2_squared, kind="stable")
     out = Path(out_dir)
     from ..figures import network as figures  # matplotlib is loaded only when a figure is drawn
