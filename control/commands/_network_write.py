@@ -50,8 +50,7 @@ def _summary_table(model, kal, out, horizon):
     m = model.info.get("network_map") or {}
     rows = [
         ("n_states", model.n_states), ("n_sites", model.n_inputs), ("n_channels", model.n_outputs),
-        ("spectral_radius", model.spectral_radius), ("kalman_rank", kal.rank),
-        ("kalman_rank_tolerance", kal.rank_tol), ("controllable", kal.is_controllable),
+        ("spectral_radius", model.spectral_radius), ("kalman_rank", kal.rank), ("controllable", kal.is_controllable),
         ("output_rank", out.output_rank), ("output_rank_tolerance", out.rank_tol),
         ("output_controllable", out.is_output_controllable),
         ("gramian_horizon_steps", "infinite" if horizon is None else horizon),
@@ -210,7 +209,7 @@ def _summary_lines(model, kal, out_rep):
     return [
         f"model: {n} states, {model.n_inputs} sites, {model.n_outputs} channels, spectral radius "
         f"{model.spectral_radius:.4f} ({where}; normalisation: {norm})",
-        f"Kalman rank {kal.rank} of {n} (tolerance {kal.rank_tol:.3g}): "
+        f"Kalman rank {kal.rank} of {n}: "
         + ("controllable" if kal.is_controllable else "NOT controllable from these sites"),
         f"output rank {out_rep.output_rank} of {out_rep.n_channels}: "
         + ("every pattern of the recorded channels is reachable" if out_rep.is_output_controllable

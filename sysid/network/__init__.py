@@ -33,6 +33,8 @@ from .controllability import (
 from .patterns import pattern_to_state, PatternState
 from .energy import minimum_energy_transition, pattern_transition, EnergyTransition, PatternTransition
 from .ranking import rank_sites, SiteRanking
+from .maps import NetworkMap, read_network_map, map_model
+from .conditions import condition_figures, trial_conditions, ConditionFigures
 from .outputs import (
     output_gramian, output_controllability, site_output_controllability, output_transition, rank_sites_by_output,
     OutputControllability, SiteOutputControllability, OutputTransition, OutputSiteRanking
@@ -44,6 +46,7 @@ __all__ = ["network_model", "normalised_network", "impulse_responses", "controll
            "ControllabilityReport", "SiteControllability", "PatternState", "EnergyTransition", "PatternTransition",
            "SiteRanking", "NORMALISATION_NONE", "NORMALISATION_SIGMA", "output_gramian", "output_controllability",
            "site_output_controllability", "output_transition", "rank_sites_by_output", "OutputControllability",
-           "SiteOutputControllability", "OutputTransition", "OutputSiteRanking"]
+           "SiteOutputControllability", "OutputTransition", "OutputSiteRanking", "NetworkMap", "read_network_map",
+           "map_model", "condition_figures", "trial_conditions", "ConditionFigures"]
 
 

@@ -12,7 +12,7 @@ import pytest
 
 from stimsteer.sysid import StateSpaceModel
 from stimsteer.sysid.network import (
-    impulse_responses, output_controllability, output_transition, rank_sites_by_output, reachability_matrix,
+    impulse_responses, output_controllability, output_gramian, output_transition, rank_sites_by_output, reachability_matrix,
     site_output_controllability,
 )
 
@@ -39,7 +39,7 @@ def _default_figures(model, target, start):
         "gramian": rep.gramian, "eig": rep.gramian_eigenvalues, "rank": rep.output_rank, "h2": rep.h2_squared,
         "site_h2": sites.h2_squared, "site_rank": sites.output_rank, "energy": tr.energy, "u": tr.u,
         "reached": tr.y_reached, "ranking_energy": rk.energy, "ranking_names": rk.names,
-        "impulse": impulse_responses(model, 20),
+        "impulse": impulse_responses(model, 20), "pair_gramian": output_gramian(model, sites=["a", "c"]),
     }
 
 
@@ -111,3 +111,39 @@ def test_site_h2_is_the_sum_of_squared_markov_parameters(rng):
     h = impulse_responses(model, 400)[1:]
     np.testing.assert_allclose(site_output_controllability(model).h2_squared, np.sum(h ** 2, axis=(0, 1)),
                                rtol=1e-10)
+
+
+def test_every_default_table_of_the_command_is_unchanged_by_a_change_of_state_basis(rng, tmp_path):
+    # The same source (Kailath 1980, Sec. 2.1): run `stimsteer network` as a user would on a fitted model and on the
+    # same model in other coordinates; every number of every default table must agree to 1e-9.
+    import pandas as pd
+
+    from stimsteer.control.cli import main
+    from stimsteer.sysid import save_predictor
+
+    model = _fitted_like(rng)
+    T = rng.standard_normal((10, 10)) * rng.uniform(0.1, 10.0, size=10)
+    outs = []
+    for i, m in enumerate((model, _transformed(model, T))):
+        save_predictor(m, tmp_path / f"m{i}.h5", provenance={"origin": "test"})
+        outs.append(tmp_path / f"n{i}")
+        target = ",".join(f"{v:.6f}" for v in rng.standard_normal(8)) if i == 0 else target
+        assert main(["network", str(tmp_path / f"m{i}.h5"), "--target", target, "--free", "ch3",
+                     "--out", str(outs[-1])]) == 0
+    csvs = sorted(p.name for p in outs[0].glob("*.csv"))
+    assert csvs == sorted(p.name for p in outs[1].glob("*.csv")) and len(csvs) == 7
+    for name in csvs:
+        a, b = pd.read_csv(outs[0] / name), pd.read_csv(outs[1] / name)
+        assert list(a.columns) == list(b.columns), name
+        for col in a.columns:
+            x, y = a[col], b[col]
+            xn, yn = pd.to_numeric(x, errors="coerce"), pd.to_numeric(y, errors="coerce")
+            if xn.notna().all():
+                scale = max(1.0, float(np.max(np.abs(xn[np.isfinite(xn)])))) if np.isfinite(xn).any() else 1.0
+                np.testing.assert_allclose(yn, xn, rtol=1e-9, atol=1e-9 * scale, err_msg=f"{name}:{col}")
+            else:  # mixed cells (the summary table): numbers to 1e-9, words exactly
+                for u, v in zip(x, y):
+                    if pd.notna(pd.to_numeric(u, errors="coerce")):
+                        assert float(v) == pytest.approx(float(u), rel=1e-9, abs=1e-12), f"{name}:{col}: {u} {v}"
+                    else:
+                        assert u == v, f"{name}:{col}"
