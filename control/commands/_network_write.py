@@ -13,7 +13,8 @@ from ...sysid import (ConditioningWarning, InvalidParameterError, UnstableModelE
                       impulse_responses)
 from ...sysid._files import atomic_dir
 from ...sysid.network import (output_controllability, output_gramian, output_transition, rank_sites_by_output,
-                              site_controllability, site_output_controllability)
+                              site_output_controllability)
+from ...sysid.network.controllability import average_controllability_values, modal_controllability_values
 from ...sysid.network.outputs import site_sets
 
 __all__ = ["NetworkOutputs", "write_network_outputs", "is_network_map"]
@@ -100,22 +101,34 @@ def _check_horizons(model, horizon_steps, gramian_steps):
 
 
 def _state_table(model, gramian_steps, lines):
-    """Average and modal controllability per site; a conditioning warning goes to the summary ``lines``."""
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ConditioningWarning)
-        sc = site_controllability(model, horizon_steps=gramian_steps)
-    lines += [f"warning: {w.message}" for w in caught if issubclass(w.category, ConditioningWarning)]
+    """Average and modal controllability per site; warnings (non-normal, defective, unstable) go to ``lines``."""
+    A, B = np.asarray(model.A), np.asarray(model.B)
+    average = average_controllability_values(A, B, gramian_steps)
+    modal = np.full(model.n_inputs, np.nan)
+    if not model.is_stable:
+        lines.append("warning: modal controllability needs a stable A (its weights 1 - |lambda|² assume decaying "
+                     "modes); left empty.")
+    else:
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", ConditioningWarning)
+                modal = modal_controllability_values(A, B)
+            lines += [f"warning: {w.message}" for w in caught if issubclass(w.category, ConditioningWarning)]
+        except InvalidParameterError as exc:
+            lines.append(f"warning: {exc} Modal controllability is left empty.")
     label = MAP_NODES if is_network_map(model) else STATE_WARNING
-    return pd.DataFrame({"site": list(sc.site_names), "average_controllability": sc.average,
-                         "modal_controllability": sc.modal, "coordinates": label})
+    return pd.DataFrame({"site": list(model.input_names), "average_controllability": average,
+                         "modal_controllability": modal, "coordinates": label})
 
 
 def _pair_table(model, gramian_steps, max_set_size):
     """Site sets by their output Gramian: H2² and the worst-case energy ``1 / λ_min(C W_S Cᵀ)`` (``inf``: some
     pattern of the recorded channels is out of the set's reach), best worst case first."""
+    # W_S is the sum of the single-site Gramians: one Lyapunov solve per site, then sums
+    single = [output_gramian(model, gramian_steps, sites=[j]) for j in range(model.n_inputs)]
     rows = []
     for c in site_sets(model.n_inputs, max_set_size):
-        G = output_gramian(model, gramian_steps, sites=list(c))
+        G = sum(single[j] for j in c)
         eig = np.clip(np.linalg.eigvalsh(G), 0.0, None)
         full = eig.size and eig[0] > eig.size * np.finfo(float).eps * max(eig[-1], np.finfo(float).tiny)
         rows.append(("+".join(model.input_names[j] for j in c), len(c), float(np.trace(G)),

@@ -139,3 +139,16 @@ def test_conditions_with_a_wrong_count_are_refused(map_file, tmp_path, rng, caps
                  "--conditions", "a,b,a", "--out", str(tmp_path / "n")]) == 2
     assert "one condition label per trial (8); got 3" in capsys.readouterr().err
     assert not (tmp_path / "n").exists()
+
+
+def test_a_directed_chain_map_is_defective_and_keeps_its_other_figures(tmp_path, capsys):
+    # A directed chain a -> b -> c with equal self-weights is one Jordan block (defective; from memory, any
+    # textbook on the Jordan form): modal controllability is undefined, so its column is empty with a warning line,
+    # and every other figure is written.
+    path = tmp_path / "chain.csv"
+    path.write_text(",a,b,c\na,0.5,0,0\nb,0.3,0.5,0\nc,0,0.3,0.5\n")
+    assert main(["network", "--map", str(path), "--stimulated", "a", "--out", str(tmp_path / "n")]) == 0
+    printed = capsys.readouterr().out
+    assert "warning: A is defective" in printed and "Modal controllability is left empty" in printed
+    state = pd.read_csv(tmp_path / "n" / "state_controllability.csv")
+    assert state["modal_controllability"].isna().all() and state["average_controllability"].gt(0).all()
