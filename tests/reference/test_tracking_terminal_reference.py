@@ -91,3 +91,27 @@ def test_steady_state_needs_the_riccati_terminal_cost(rng):
     ctrl = ModelPredictiveController(model=model, limits=limits, horizon_steps=4).fit()
     with pytest.raises(InvalidParameterError, match="riccati"):
         ctrl.steady_state([1.0, 0.0, 0.0])
+
+
+@pytest.mark.parametrize("horizon", [1, 4, 12])
+def test_state_target_first_move_equals_the_lqr_tracking_law(rng, horizon):
+    # Rawlings, Mayne, Diehl (2017), ch. 1: state tracking with Q on x - x_t, the DARE gain, and the steady target
+    # minimising |x_s - x_t|²_Q + |u_s|²_R over the equilibria (solved here by least squares in u_s).
+    model = _model(rng)
+    A, B = np.asarray(model.A), np.asarray(model.B)
+    limits = StimLimits(amplitude_min_ua=-1e6, amplitude_max_ua=1e6, n_inputs=2)
+    ctrl = ModelPredictiveController(model=model, limits=limits, horizon_steps=horizon, terminal_weight="riccati",
+                                     target_kind="state", input_weight=0.05, fast_path=False,
+                                     solver_options={"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12,
+                                                     "tol_feas": 1e-12}).fit()
+    xt = rng.standard_normal(4)
+    past = max(ctrl.past_steps_, 1)
+    u_past, y_past = rng.standard_normal((past, 2)), rng.standard_normal((past, 3))
+    plan = ctrl.plan(u_past, y_past, target=xt)
+    x0 = model.estimate_state(u_past, y_past)
+    P = sla.solve_discrete_are(A, B, np.eye(4), 0.05 * np.eye(2))
+    K = np.linalg.solve(0.05 * np.eye(2) + B.T @ P @ B, B.T @ P @ A)
+    G = np.linalg.solve(np.eye(4) - A, B)
+    us = np.linalg.solve(G.T @ G + 0.05 * np.eye(2), G.T @ xt)
+    xs = G @ us
+    np.testing.assert_allclose(plan.inputs[0], us - K @ (x0 - xs), rtol=1e-6, atol=1e-6)
