@@ -132,6 +132,15 @@ def _check_sources(args):
             "as fitted: rescaling it would change its time constants; for an unstable model use --gramian-steps N.")
     if args.session is None and (args.conditions is not None or args.mixing is not None):
         raise InvalidParameterError("--conditions and --mixing need --session (and --map).")
+    if args.session is not None:
+        fixed = [f for f, v in (("--recorded", args.recorded), ("--normalisation", args.normalisation),
+                                ("--normalise", args.normalise or None), ("--node-names", None),
+                                ("--time continuous", args.time == "continuous" or None)) if v is not None]
+        if fixed:
+            raise InvalidParameterError(
+                f"{fixed[0]} does not apply with --session: the fitted model is discrete in the session's samples, "
+                "its channels are the session's outputs (--mixing says how they mix the nodes), and it is never "
+                "rescaled. Leave it out.")
 
 
 def run(args) -> int:

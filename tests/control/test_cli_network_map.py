@@ -152,3 +152,15 @@ def test_a_directed_chain_map_is_defective_and_keeps_its_other_figures(tmp_path,
     assert "warning: A is defective" in printed and "Modal controllability is left empty" in printed
     state = pd.read_csv(tmp_path / "n" / "state_controllability.csv")
     assert state["modal_controllability"].isna().all() and state["average_controllability"].gt(0).all()
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--recorded", "v1"], "--recorded does not apply with --session"),
+    (["--time", "continuous"], "--time continuous does not apply with --session"),
+    (["--normalisation", "sigma"], "--normalisation does not apply with --session"),
+])
+def test_map_conventions_that_a_session_fit_cannot_use_are_refused(map_file, tmp_path, rng, capsys, extra, match):
+    session = _session_file(tmp_path, rng, conditions=False)
+    assert main(["network", "--map", str(map_file), "--stimulated", "v1,amy", "--session", str(session), *extra,
+                 "--out", str(tmp_path / "n")]) == 2
+    assert match in capsys.readouterr().err and not (tmp_path / "n").exists()
