@@ -9,7 +9,7 @@ from ...sysid import InvalidParameterError, load_session
 from ...sysid.mapfit import MapConstrainedFit, compare_with_unconstrained
 from ...sysid.network.conditions import CONDITIONS_KEY, condition_figures
 
-__all__ = ["session_outputs", "read_mixing"]
+__all__ = ["session_outputs", "read_mixing", "model_condition_tables"]
 
 
 def read_mixing(path, net, output_names) -> np.ndarray:
@@ -54,3 +54,26 @@ def session_outputs(net, args):
         tables["conditions.csv"] = condition_figures(session, refit, labels=labels, n_boot=args.bootstrap,
                                                      seed=args.seed, gramian_steps=args.gramian_steps).table
     return fit.model_, tables
+
+
+def model_condition_tables(predictor, args) -> dict:
+    """``conditions.csv`` for a fitted model: the same method, with the same settings, refitted per condition.
+
+    The predictor must be an estimator (``get_params`` and ``fit``: it is cloned with scikit-learn's ``clone``) with
+    the state-space form; a bare state-space model has no method to refit.
+    """
+    from sklearn.base import clone
+
+    if not (callable(getattr(type(predictor), "fit", None)) and callable(getattr(type(predictor), "get_params", None))):
+        raise InvalidParameterError(
+            f"per-condition figures refit the model's method on each condition's trials, but the model file holds a "
+            f"{type(predictor).__name__} without a fitting method; save the fitted estimator (stimsteer fit).")
+    session = load_session(args.session)
+    labels = None if args.conditions is None else [c.strip() for c in args.conditions.split(",")]
+
+    def refit(s):
+        return clone(predictor).fit(s).state_space_model()
+
+    table = condition_figures(session, refit, labels=labels, n_boot=args.bootstrap, seed=args.seed,
+                              gramian_steps=args.gramian_steps).table
+    return {"conditions.csv": table}

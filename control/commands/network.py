@@ -12,8 +12,9 @@ Two sources:
   With ``--session``, the map's support constrains a model fitted to the session (:mod:`stimsteer.sysid.mapfit`),
   and its figures, fitted weights and held-out scores against an unconstrained fit are written.
 
-With ``--conditions`` (or trials labelled in the session's metadata ``trial_conditions``) and ``--session``, the
-figures per condition, their differences and bootstrap intervals over trials are written too.
+With ``--session`` and trials labelled by condition (``--conditions`` or the session's metadata
+``trial_conditions``), the figures per condition, their differences and bootstrap intervals over trials are written
+too: for a map from map-constrained fits, for a model file by refitting its method (same settings) per condition.
 
 =============================  =====================================================================================
 file                           content
@@ -46,7 +47,7 @@ from ...sysid._claims import claim_output
 from ...sysid.caution import CAUTION
 from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
 from ._network_write import NetworkOutputs, write_network_outputs
-from ._network_session import session_outputs
+from ._network_session import model_condition_tables, session_outputs
 
 __all__ = ["add_parser", "run", "NetworkOutputs", "read_pattern", "state_space_of", "write_network_outputs"]
 
@@ -85,8 +86,9 @@ def add_parser(subparsers) -> None:
     g.add_argument("--normalisation-constant", type=float, default=1.0, metavar="C", help="c above (default 1)")
     g.add_argument("--time-step", type=float, default=1.0, help="continuous maps: map time units per model step")
     g.add_argument("--rate-hz", type=float, default=1.0, help="maps: model steps per second (default 1)")
-    s = p.add_argument_group("stimulation data (with --map)")
-    s.add_argument("--session", metavar="FILE", help="session to fit the map-constrained model to")
+    s = p.add_argument_group("stimulation data")
+    s.add_argument("--session", metavar="FILE", help="with --map: session to fit the map-constrained model to; with "
+                   "a model file: session whose trials are refitted per condition (--conditions)")
     s.add_argument("--mixing", metavar="FILE", help="CSV: how the recorded channels mix the nodes (rows: channels, "
                    "header: node names); default each channel is the node of the same name")
     s.add_argument("--shrink", type=float, default=0.0, help="ridge weight pulling fitted weights toward the map's")
@@ -125,13 +127,14 @@ def _check_sources(args):
         raise InvalidParameterError("--start needs --target: give the pattern to move to as well.")
     map_only = [f for f, v in (("--stimulated", args.stimulated), ("--recorded", args.recorded),
                                ("--node-names", args.node_names), ("--normalisation", args.normalisation),
-                               ("--session", args.session)) if v is not None]
+                               ("--mixing", args.mixing),
+                               ("--time continuous", "x" if args.time == "continuous" else None)) if v is not None]
     if args.map is None and (map_only or args.normalise):
         raise InvalidParameterError(
             f"{(map_only or ['--normalise'])[0]} applies to a network map (--map) only. A fitted model is analysed "
             "as fitted: rescaling it would change its time constants; for an unstable model use --gramian-steps N.")
     if args.session is None and (args.conditions is not None or args.mixing is not None):
-        raise InvalidParameterError("--conditions and --mixing need --session (and --map).")
+        raise InvalidParameterError("--conditions and --mixing need --session.")
     if args.session is not None:
         fixed = [f for f, v in (("--recorded", args.recorded), ("--normalisation", args.normalisation),
                                 ("--normalise", args.normalise or None), ("--node-names", None),
@@ -155,7 +158,8 @@ def run(args) -> int:
                 model, extra = session_outputs(net, args)
         else:
             predictor, provenance = load_predictor(args.model)
-            model, extra = state_space_of(predictor, args.model), None
+            model = state_space_of(predictor, args.model)
+            extra = None if args.session is None else model_condition_tables(predictor, args)
             recorded = provenance.get("session") if isinstance(provenance, dict) else None
             units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
         target = None if args.target is None else read_pattern(args.target, model.output_names)

@@ -330,3 +330,33 @@ def test_network_figures_leave_the_plotting_state_alone(model_file, tmp_path):
     )
     run = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
     assert run.returncode == 0, run.stderr
+
+
+def test_a_fitted_model_is_refitted_per_condition_with_bootstrap_intervals(tmp_path, rng, capsys):
+    from stimsteer.sysid import save_session
+    from stimsteer.sysid.arx import RidgeArx
+
+    session = _session(rng, n=1200).replace(trials=[(150 * i, 150 * i + 150) for i in range(8)],
+                                            metadata={"trial_conditions": ["on", "off"] * 4})
+    save_session(session, tmp_path / "s.h5")
+    est = RidgeArx(output_lags=2, input_lags=2).fit(session)
+    save_predictor(est, tmp_path / "arx.h5", provenance={"origin": "test"})
+    out = tmp_path / "net"
+    assert main(["network", str(tmp_path / "arx.h5"), "--session", str(tmp_path / "s.h5"), "--bootstrap", "12",
+                 "--out", str(out)]) == 0
+    cond = pd.read_csv(out / "conditions.csv")
+    assert set(cond["condition"]) == {"on", "off", "off - on"} and set(cond["figure"]) == {"h2_squared"}
+    # one linear system made both conditions (by construction): the difference is small and its interval holds 0
+    diff = cond[cond["condition"] == "off - on"].iloc[0]
+    assert diff["ci_low"] <= 0 <= diff["ci_high"] and abs(diff["estimate"]) < 0.05 * cond["estimate"].abs().max()
+    on = cond[cond["condition"] == "on"].iloc[0]
+    assert on["ci_low"] <= on["estimate"] <= on["ci_high"] and on["n_trials"] == 4
+
+
+def test_a_bare_state_space_model_cannot_be_refitted_per_condition(model_file, tmp_path, rng, capsys):
+    from stimsteer.sysid import save_session
+
+    session = _session(rng).replace(metadata={"trial_conditions": ["a", "b"] * 2})
+    save_session(session, tmp_path / "s.h5")
+    assert main(["network", str(model_file), "--session", str(tmp_path / "s.h5"), "--out", str(tmp_path / "n")]) == 2
+    assert "without a fitting method" in capsys.readouterr().err and not (tmp_path / "n").exists()
