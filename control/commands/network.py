@@ -1,94 +1,174 @@
-"""``stimsteer network``: network-control tables and figures of a fitted state-space model, in one folder.
+"""``stimsteer network``: network-control tables and figures of a fitted model or of a network map, in one folder.
 
-:func:`write_network_outputs` computes everything with :mod:`stimsteer.sysid.network`, draws the figures of
-:mod:`stimsteer.control.figures.network` and writes one folder, atomically:
+Two sources:
+
+- a model file (``stimsteer fit --route indirect``): its states are arbitrary coordinates, so the default figures are
+  those seen through the recorded channels (output Gramians, squared H2 norms, output controllability, the least
+  energy that produces an output pattern), which another equally good fit would give too. ``--state-figures`` adds
+  average and modal controllability of ``A``, labelled coordinate-dependent. A fitted model is never rescaled.
+- a network map (``--map``: a CSV with node names, or ``.npy``), with ``--stimulated`` nodes, optional
+  ``--recorded`` nodes and a time convention (``--time``, ``--normalisation``; see
+  :mod:`stimsteer.sysid.network.maps`): its states are the nodes, so the per-node state figures are written too.
+  With ``--session``, the map's support constrains a model fitted to the session (:mod:`stimsteer.sysid.mapfit`),
+  and its figures, fitted weights and held-out scores against an unconstrained fit are written.
+
+With ``--session`` and trials labelled by condition (``--conditions`` or the session's metadata
+``trial_conditions``), the figures per condition, their differences and bootstrap intervals over trials are written
+too: for a map from map-constrained fits, for a model file by refitting its method (same settings) per condition.
 
 =============================  =====================================================================================
 file                           content
 =============================  =====================================================================================
-``controllability.csv``        one row per figure: Kalman rank and its tolerance, Gramian horizon, condition,
-                               average controllability, the normalisation used, spectral radius
-``gramian_spectrum.csv/.png``  eigenvalues of the controllability Gramian, largest first (log scale)
-``site_controllability.csv``   average and modal controllability per stimulation site, best average first
-``impulse_responses.csv/.png`` impulse response of every recorded channel to every site (long table; grid figure)
-``site_ranking.csv/.png``      with a target: single sites and site sets ranked by the minimum energy they need;
-                               without one: the sites ranked by average controllability
-``transition.csv``             with a target: the minimum-energy input over the horizon using every site
+``controllability.csv``        Kalman rank, output rank, Gramian horizon, output Gramian condition, squared H2 norm
+                               of all sites, the coordinates the figures refer to, time convention, normalisation
+``gramian_spectrum.csv/.png``  eigenvalues of the output Gramian ``C W Cᵀ``, largest first
+``site_controllability.csv``   per site: squared H2 norm to the recorded channels, output rank; best first
+``site_sets.csv``              sites and site sets by squared H2 norm and worst-case unit-pattern energy
+``state_controllability.csv``  maps (or ``--state-figures``): average and modal controllability per site
+``impulse_responses.csv/.png`` impulse response of every recorded channel to every site
+``site_ranking.csv/.png``      with a target: site sets by the least energy that produces the pattern; without one:
+                               sites by squared H2 norm (figure only)
+``transition.csv``             with a target: the least-energy input over the horizon using every site
+``map_fit_edges.csv``          ``--session`` with a map: map weight and fitted weight of every connection
+``map_fit_scores.csv``         ``--session`` with a map: held-out scores, map-constrained vs unconstrained
+``conditions.csv``             ``--conditions``: per-condition figures, differences, bootstrap intervals
 =============================  =====================================================================================
 """
 
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
-from ...sysid import (InvalidParameterError, StateSpaceForm, UnstableModelError, controllability,
-                      impulse_responses, load_predictor, pattern_transition, rank_sites, site_controllability)
-from ...sysid._files import atomic_dir
+from ...sysid import InvalidParameterError, StateSpaceForm, load_predictor
+from ...sysid._claims import claim_output
 from ...sysid.caution import CAUTION
-
-if TYPE_CHECKING:
-    from ...sysid import StateSpaceModel
+from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
+from ._network_write import NetworkOutputs, write_network_outputs
+from ._network_session import model_condition_tables, session_outputs
 
 __all__ = ["add_parser", "run", "NetworkOutputs", "read_pattern", "state_space_of", "write_network_outputs"]
 
 
-_DPI = 110
-
-
-@dataclass(frozen=True)
-class NetworkOutputs:
-    """What :func:`write_network_outputs` wrote and found.
-
-    Attributes
-    ----------
-    files : dict
-        File role -> final path.
-    lines : tuple of str
-        A short summary for the terminal.
-    """
-
-    files: dict
-    lines: tuple
-
-
 def add_parser(subparsers) -> None:
     """Declare ``stimsteer network`` and its options."""
-    p = subparsers.add_parser("network", help="network-control tables and figures of a fitted state-space model: "
-                              "controllability, site ranking, minimum-energy transitions")
-    p.add_argument("model", help="model file written by `stimsteer fit --route indirect`")
+    p = subparsers.add_parser("network", help="network-control tables and figures of a fitted state-space model or "
+                              "of a network map: controllability, site ranking, minimum-energy transitions")
+    p.add_argument("model", nargs="?", help="model file written by `stimsteer fit --route indirect` (or use --map)")
     p.add_argument("--out", required=True, help="output folder for the CSV tables and PNG figures")
     p.add_argument("--target", metavar="PATTERN",
                    help="target activity pattern: one value per recorded channel, comma-separated (e.g. "
                    "'0.5,0,1.2'), or a CSV file holding such a row (optionally under a header of channel names)")
     p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (default: rest)")
+    p.add_argument("--free", metavar="CHANNELS", help="comma-separated channels left free at the end of the "
+                   "transition (their target values are ignored)")
     p.add_argument("--horizon-steps", type=int, help="samples of the minimum-energy transition (default 2 x states)")
+    p.add_argument("--gramian-steps", type=int, help="finite Gramian horizon in samples (default: infinite, which "
+                   "needs a stable model)")
     p.add_argument("--max-set-size", type=int, choices=[1, 2, 3], default=2,
-                   help="largest number of sites stimulated together in the ranking (default 2)")
-    p.add_argument("--normalise", action="store_true",
-                   help="analyse A / (1 + sigma_max(A)) for Gramian and site controllability (Gu et al. 2015); "
-                   "default: the fitted A as it is")
+                   help="largest number of sites stimulated together in the rankings (default 2)")
+    p.add_argument("--state-figures", action="store_true", help="fitted model: also write average and modal "
+                   "controllability of A (coordinate-dependent: they change with the arbitrary state basis)")
+    p.add_argument("--normalise", action="store_true", help="network maps: same as --normalisation sigma "
+                   "(a fitted model is never rescaled)")
+    g = p.add_argument_group("network map")
+    g.add_argument("--map", metavar="FILE", help="adjacency matrix: CSV with a header of node names, or .npy; "
+                   "entry (i, j) is the connection from node j to node i")
+    g.add_argument("--node-names", metavar="NAMES", help=".npy maps: comma-separated node names")
+    g.add_argument("--stimulated", metavar="NODES", help="comma-separated stimulated nodes (one site each)")
+    g.add_argument("--recorded", metavar="NODES", help="comma-separated recorded nodes (default: every node)")
+    g.add_argument("--time", choices=TIME_CONVENTIONS, default="discrete", help="time convention of the map")
+    g.add_argument("--normalisation", choices=NORMALISATIONS, default=None,
+                   help="none (default), sigma: A/(c+sigma_max), eigenvalue: A/(c+lambda_max); continuous maps "
+                   "subtract I (Gu et al. 2015; Karrer et al. 2020)")
+    g.add_argument("--normalisation-constant", type=float, default=1.0, metavar="C", help="c above (default 1)")
+    g.add_argument("--time-step", type=float, default=1.0, help="continuous maps: map time units per model step")
+    g.add_argument("--rate-hz", type=float, default=1.0, help="maps: model steps per second (default 1)")
+    s = p.add_argument_group("stimulation data")
+    s.add_argument("--session", metavar="FILE", help="with --map: session to fit the map-constrained model to; with "
+                   "a model file: session whose trials are refitted per condition (--conditions)")
+    s.add_argument("--mixing", metavar="FILE", help="CSV: how the recorded channels mix the nodes (rows: channels, "
+                   "header: node names); default each channel is the node of the same name")
+    s.add_argument("--shrink", type=float, default=0.0, help="ridge weight pulling fitted weights toward the map's")
+    s.add_argument("--conditions", metavar="LABELS", help="comma-separated condition label of every trial (default: "
+                   "the session's metadata 'trial_conditions')")
+    s.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples over trials (default 200)")
+    s.add_argument("--seed", type=int, default=0, help="seed of the held-out split and the bootstrap")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
 
-def run(args) -> int:
-    """Load the model, write the tables and figures, print the summary; 0 on success."""
+def _names(text):
+    return None if text is None else [c.strip() for c in text.split(",") if c.strip()]
+
+
+def _map_source(args):
+    """The model of ``--map`` (maps are normalised only when asked)."""
+    if args.stimulated is None:
+        raise InvalidParameterError("--map needs --stimulated NODES: the nodes that receive stimulation.")
+    norm = args.normalisation or ("sigma" if args.normalise else "none")
+    if args.normalise and args.normalisation not in (None, "sigma"):
+        raise InvalidParameterError("--normalise means --normalisation sigma; give one of the two.")
+    net = read_network_map(args.map, _names(args.node_names))
+    if args.session is not None:
+        net.indices(_names(args.stimulated), "stimulated nodes")
+        return net, None
+    model = map_model(net, stimulated=_names(args.stimulated), recorded=_names(args.recorded), time=args.time,
+                      normalisation=norm, c=args.normalisation_constant, time_step=args.time_step,
+                      sample_rate_hz=args.rate_hz)
+    return net, model
+
+
+def _check_sources(args):
+    if (args.model is None) == (args.map is None):
+        raise InvalidParameterError("give either a model file or --map FILE (a network map), not both or neither.")
     if args.start is not None and args.target is None:
         raise InvalidParameterError("--start needs --target: give the pattern to move to as well.")
-    predictor, provenance = load_predictor(args.model)
-    model = state_space_of(predictor, args.model)
-    target = None if args.target is None else read_pattern(args.target, model.output_names)
-    start = None if args.start is None else read_pattern(args.start, model.output_names)
-    recorded = provenance.get("session") if isinstance(provenance, dict) else None
-    units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
-    result = write_network_outputs(model, args.out, target=target, start=start, horizon_steps=args.horizon_steps,
-                                   max_set_size=args.max_set_size, normalise=args.normalise, force=args.force,
-                                   **units)
+    map_only = [f for f, v in (("--stimulated", args.stimulated), ("--recorded", args.recorded),
+                               ("--node-names", args.node_names), ("--normalisation", args.normalisation),
+                               ("--mixing", args.mixing),
+                               ("--time continuous", "x" if args.time == "continuous" else None)) if v is not None]
+    if args.map is None and (map_only or args.normalise):
+        raise InvalidParameterError(
+            f"{(map_only or ['--normalise'])[0]} applies to a network map (--map) only. A fitted model is analysed "
+            "as fitted: rescaling it would change its time constants; for an unstable model use --gramian-steps N.")
+    if args.session is None and (args.conditions is not None or args.mixing is not None):
+        raise InvalidParameterError("--conditions and --mixing need --session.")
+    if args.session is not None:
+        fixed = [f for f, v in (("--recorded", args.recorded), ("--normalisation", args.normalisation),
+                                ("--normalise", args.normalise or None), ("--node-names", None),
+                                ("--time continuous", args.time == "continuous" or None)) if v is not None]
+        if fixed:
+            raise InvalidParameterError(
+                f"{fixed[0]} does not apply with --session: the fitted model is discrete in the session's samples, "
+                "its channels are the session's outputs (--mixing says how they mix the nodes), and it is never "
+                "rescaled. Leave it out.")
+
+
+def run(args) -> int:
+    """Load the model or map, write the tables and figures, print the summary; 0 on success."""
+    _check_sources(args)
+    with claim_output(args.out, force=args.force):
+        units = {}
+        if args.map is not None:
+            net, model = _map_source(args)
+            extra = None
+            if args.session is not None:  # the map gives the support; the session gives the weights
+                model, extra = session_outputs(net, args)
+        else:
+            predictor, provenance = load_predictor(args.model)
+            model = state_space_of(predictor, args.model)
+            extra = None if args.session is None else model_condition_tables(predictor, args)
+            recorded = provenance.get("session") if isinstance(provenance, dict) else None
+            units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
+        target = None if args.target is None else read_pattern(args.target, model.output_names)
+        start = None if args.start is None else read_pattern(args.start, model.output_names)
+        free = _names(args.free)
+        result = write_network_outputs(model, args.out, target=target, start=start, free_channels=free,
+                                       horizon_steps=args.horizon_steps, gramian_steps=args.gramian_steps,
+                                       max_set_size=args.max_set_size, state_figures=args.state_figures,
+                                       force=args.force, extra_tables=extra, **units)
     print("\n".join(result.lines))
     print(f"wrote {len(result.files)} files to {args.out}: " + ", ".join(sorted(p.name for p in result.files.values())))
     if target is not None:
@@ -176,192 +256,17 @@ def read_pattern(text: str, output_names) -> np.ndarray:
             values = values[[header.index(n) for n in names]]
     else:
         values = _numbers([c.strip() for c in text.split(",") if c.strip()], where)
-    if values.shape != (len(names),) or not np.all(np.isfinite(values)):
+    if values.shape != (len(names),):
         raise InvalidParameterError(
             f"{where}: expected {len(names)} finite values, one per recorded channel ({', '.join(names)}); got "
             f"{values.size}."
         )
+    bad = [f"{names[i]} = {values[i]}" for i in np.flatnonzero(~np.isfinite(values))]
+    if bad:
+        raise InvalidParameterError(
+            f"{where}: every value must be finite, but {', '.join(bad)}; give a number for each channel (use --free "
+            "CHANNELS to leave a channel unconstrained)."
+        )
     return values
 
 
-# ---------------------------------------------------------------------------------------------------- tables
-def _summary_table(rep, model):
-    rows = [
-        ("n_states", model.n_states), ("n_sites", model.n_inputs), ("n_channels", model.n_outputs),
-        ("spectral_radius", model.spectral_radius), ("kalman_rank", rep.rank), ("kalman_rank_tolerance", rep.rank_tol),
-        ("controllable", rep.is_controllable),
-        ("gramian_horizon_steps", "infinite" if rep.horizon_steps is None else rep.horizon_steps),
-        ("gramian_condition_number", rep.condition_number),
-        ("average_controllability", rep.average_controllability), ("normalisation", rep.normalisation),
-    ]
-    return pd.DataFrame(rows, columns=["quantity", "value"])
-
-
-def _impulse_table(h, model, units=None):
-    T, p, m = h.shape
-    k, i, j = np.meshgrid(np.arange(T), np.arange(p), np.arange(m), indexing="ij")
-    table = pd.DataFrame({
-        "step": k.ravel(), "time [s]": k.ravel() / model.sample_rate_hz,
-        "site": np.asarray(model.input_names)[j.ravel()], "channel": np.asarray(model.output_names)[i.ravel()],
-        "response": h.ravel(),
-    })
-    if units is not None:
-        per = np.array([[f"{units[1][a]}/{units[0][b]}" for b in range(m)] for a in range(p)], dtype=object)
-        table["response unit"] = per[i.ravel(), j.ravel()]
-    return table
-
-
-def _units(model, input_units, output_units):
-    """``(input_units, output_units)`` checked against the model's channels, or None when either is missing."""
-    if input_units is None or output_units is None:
-        return None
-    iu, ou = tuple(str(x) for x in input_units), tuple(str(x) for x in output_units)
-    if len(iu) != model.n_inputs or len(ou) != model.n_outputs:
-        raise InvalidParameterError(f"expected {model.n_inputs} input units and {model.n_outputs} output units (one "
-                                    f"per channel of the model); got {len(iu)} and {len(ou)}.")
-    return iu, ou
-
-
-def _transition_table(tr, model):
-    T = tr.u.shape[0]
-    cols = {"step": np.arange(T), "time [s]": np.arange(T) / model.sample_rate_hz}
-    for j, name in enumerate(model.input_names):
-        cols[name] = tr.u[:, j]
-    return pd.DataFrame(cols)
-
-
-# ---------------------------------------------------------------------------------------------------- outputs
-def _check_stable(model, normalise):
-    if not normalise and not model.is_stable:
-        raise UnstableModelError(
-            f"the model is unstable (spectral radius {model.spectral_radius:.4f} >= 1), so its Gramian and modal "
-            "controllability do not exist. Pass --normalise to analyse A / (1 + sigma_max(A)), or refit a stable "
-            "model."
-        )
-
-
-def write_network_outputs(model: StateSpaceModel, out_dir, *, target=None, start=None,
-                          horizon_steps: int | None = None, max_set_size: int = 2, normalise: bool = False,
-                          impulse_steps: int | None = None, force: bool = False, input_units=None,
-                          output_units=None) -> NetworkOutputs:
-    """Compute the network-control tables and figures of a model and write them to ``out_dir``.
-
-    Parameters
-    ----------
-    model : StateSpaceModel
-    out_dir : str or Path
-        New or empty folder (replaced whole with ``force``).
-    target, start : ndarray, shape (n_outputs,), optional
-        Activity patterns (recorded output units); with ``target`` the site ranking and the minimum-energy input
-        are written. ``start`` defaults to rest.
-    horizon_steps : int, optional
-        Horizon of the minimum-energy transitions; default ``2 * n_states``.
-    max_set_size : {1, 2, 3}, default 2
-    normalise : bool, default False
-        Analyse ``A / (1 + sigma_max(A))`` for the Gramian and per-site controllability (the transition and the
-        ranking always use the model itself).
-    impulse_steps : int, optional
-        Length of the impulse responses; default ``max(20, 3 * n_states)``.
-    force : bool, default False
-    input_units, output_units : sequence of str, optional
-        Units of the sites and channels (the model file's provenance has them); with both, the impulse-response
-        figure labels its axes with them and its table gains a ``response unit`` column.
-
-    Returns
-    -------
-    NetworkOutputs
-
-    Raises
-    ------
-    UnstableModelError
-        For an unstable model without ``normalise``.
-    InvalidParameterError
-        For a horizon that is not a whole number >= 1, or unit lists that do not match the model's channels.
-    """
-    _check_stable(model, normalise)
-    units = _units(model, input_units, output_units)
-    n = model.n_states
-    T = max(2 * n, 1) if horizon_steps is None else horizon_steps
-    if isinstance(T, bool) or not isinstance(T, (int, np.integer)) or T < 1:
-        raise InvalidParameterError(f"horizon_steps must be a whole number of samples >= 1; got {horizon_steps!r}.")
-    rep = controllability(model, normalise=normalise)
-    sites = site_controllability(model, normalise=normalise)
-    h = impulse_responses(model, max(20, 3 * n) if impulse_steps is None else impulse_steps)
-    lines = [
-        f"model: {n} states, {model.n_inputs} sites, {model.n_outputs} channels, spectral radius "
-        f"{model.spectral_radius:.4f}",
-        f"Kalman rank {rep.rank} of {n} (tolerance {rep.rank_tol:.3g}): "
-        + ("controllable" if rep.is_controllable else "NOT controllable from these sites"),
-        f"Gramian (infinite horizon, normalisation: {rep.normalisation}): condition {rep.condition_number:.3g}, "
-        f"average controllability {rep.average_controllability:.4g}",
-    ]
-    order = np.argsort(-sites.average, kind="stable")
-    out = Path(out_dir)
-    from ..figures import network as figures  # matplotlib is loaded only when a figure is drawn
-
-    with atomic_dir(out, force=force) as tmp:
-        _summary_table(rep, model).to_csv(tmp / "controllability.csv", index=False)
-        _write_spectrum(rep, tmp, figures)
-        sites.to_frame().iloc[order].to_csv(tmp / "site_controllability.csv", index=False, float_format="%.10g")
-        _impulse_table(h, model, units).to_csv(tmp / "impulse_responses.csv", index=False, float_format="%.10g")
-        figures.impulse_response_figure(h, model, units).savefig(tmp / "impulse_responses.png", dpi=_DPI)
-        if target is None:
-            figures.ranking_figure([sites.site_names[i] for i in order], sites.average[order],
-                                   f"Sites by average controllability (normalisation: {sites.normalisation})",
-                                   "average controllability (trace of the site's Gramian)",
-                                   ).savefig(tmp / "site_ranking.png", dpi=_DPI)
-        else:
-            lines += _write_target(model, tmp, target, start, T, max_set_size, figures)
-    names = ["controllability.csv", "gramian_spectrum.csv", "gramian_spectrum.png", "site_controllability.csv",
-             "impulse_responses.csv", "impulse_responses.png", "site_ranking.png"]
-    if target is not None:
-        names += ["site_ranking.csv", "transition.csv"]
-    files = {name: out / name for name in names}
-    return NetworkOutputs(files=files, lines=tuple(lines))
-
-
-def _write_spectrum(rep, tmp, figures):
-    eig = np.asarray(rep.gramian_eigenvalues)
-    pd.DataFrame({"index": np.arange(1, eig.size + 1), "eigenvalue": eig}).to_csv(
-        tmp / "gramian_spectrum.csv", index=False, float_format="%.10g")
-    figures.gramian_spectrum_figure(rep).savefig(tmp / "gramian_spectrum.png", dpi=_DPI)
-
-
-def _write_target(model, tmp, target, start, T, max_set_size, figures):
-    pt = pattern_transition(model, target, horizon_steps=T, y_start=start)
-    ranking = rank_sites(model, pt.target.x, horizon_steps=T, x0=pt.transition.x0, max_set_size=max_set_size)
-    ranking.to_frame().to_csv(tmp / "site_ranking.csv", index=False, float_format="%.10g")
-    _transition_table(pt.transition, model).to_csv(tmp / "transition.csv", index=False, float_format="%.10g")
-    ok = ranking.reachable
-    title = f"Minimum energy to reach the target in {T} steps ({T / model.sample_rate_hz:g} s)"
-    if ranking.n_unreachable:
-        title += f"\n{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot reach it (not shown)"
-    if ok.any():
-        fig = figures.ranking_figure([nm for nm, g in zip(ranking.names, ok) if g], ranking.energy[ok], title,
-                                     "minimum input energy (sum of u², input units² x samples)")
-    else:
-        fig = figures.ranking_figure(list(ranking.names), ranking.residual,
-                                     title + "\nno set reaches it: distance left shown",
-                                     "distance to the target state left by the closest input")
-    fig.savefig(tmp / "site_ranking.png", dpi=_DPI)
-    lines = []
-    for label, ps in (("target", pt.target), ("start", pt.start)):
-        if ps is not None and not ps.unique:
-            lines.append(f"note: the {label} pattern fixes the state only up to a {ps.null_space_dim}-dimensional "
-                         "null space of C; the smallest such state is used.")
-        if ps is not None and ps.residual > 1e-8 * max(1.0, float(np.linalg.norm(ps.pattern))):
-            lines.append(f"note: no state gives the {label} pattern exactly (least-squares residual "
-                         f"{ps.residual:.3g}); its closest pattern is used.")
-    tr = pt.transition
-    if tr.reachable:
-        lines.append(f"all sites: target reached in {T} steps with energy {tr.energy:.4g} "
-                     f"(residual {tr.residual:.2g})")
-    else:
-        lines.append(f"all sites: the target is NOT reachable in {T} steps (distance left {tr.residual:.3g}); "
-                     "a longer --horizon-steps or other sites may help")
-    best = [f"{nm} ({e:.4g})" for nm, e, g in zip(ranking.names[:5], ranking.energy[:5], ranking.reachable[:5]) if g]
-    lines.append("best site sets (energy): " + (", ".join(best) if best else "none reaches the target"))
-    if ranking.n_unreachable:
-        lines.append(f"{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot reach the target "
-                     "(energy inf in site_ranking.csv)")
-    return lines

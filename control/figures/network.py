@@ -28,28 +28,32 @@ def _with_unit(name: str, unit: str | None) -> str:
     return name if not unit else f"{name} [{unit}]"
 
 
-def gramian_spectrum_figure(rep) -> Figure:
-    """Eigenvalues of the controllability Gramian, largest first, on a log scale.
+def gramian_spectrum_figure(eigenvalues, horizon_steps, condition_number: float, what: str) -> Figure:
+    """Eigenvalues of a Gramian, largest first, on a log scale.
 
     Parameters
     ----------
-    rep : ControllabilityReport
-        From :func:`stimsteer.sysid.network.controllability`.
+    eigenvalues : ndarray, shape (k,)
+        Descending.
+    horizon_steps : int or None
+        None for the infinite horizon.
+    condition_number : float
+    what : str
+        Which Gramian (e.g. ``"output Gramian C W Cᵀ"``), for the title.
     """
     fig = Figure(figsize=(6.0, 3.4))
     ax = fig.add_subplot()
-    eig = np.asarray(rep.gramian_eigenvalues)
+    eig = np.asarray(eigenvalues)
     k = np.arange(1, eig.size + 1)
     positive = eig > 0
     ax.semilogy(k[positive], eig[positive], "o-", color=_INK, ms=3.5, lw=1.0)
     if (~positive).any():
         ax.text(0.98, 0.95, f"{int((~positive).sum())} zero eigenvalue(s)", transform=ax.transAxes, ha="right",
                 va="top", fontsize=7, color=_WARN)
-    horizon = "infinite horizon" if rep.horizon_steps is None else f"horizon {rep.horizon_steps} steps"
+    horizon = "infinite horizon" if horizon_steps is None else f"horizon {horizon_steps} steps"
     ax.set_xlabel("eigenvalue index", fontsize=8)
-    ax.set_ylabel("Gramian eigenvalue", fontsize=8)
-    ax.set_title(f"Controllability Gramian spectrum ({horizon}; condition {rep.condition_number:.3g};\n"
-                 f"normalisation: {rep.normalisation})", fontsize=9)
+    ax.set_ylabel("eigenvalue (output units² per input unit² per sample)", fontsize=8)
+    ax.set_title(f"Spectrum of the {what} ({horizon}; condition {condition_number:.3g})", fontsize=9)
     _plain_axes(ax)
     fig.tight_layout()
     return fig

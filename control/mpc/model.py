@@ -20,8 +20,9 @@ import scipy.sparse as sp
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._core import _clip_psd, _horizon, _output_target, _sqrt_weight
 from .condensed import _CondensedCore, condensed_prediction
+from .steady import SteadyState, _SteadyTarget
 
-__all__ = ["ModelPredictiveController"]
+__all__ = ["ModelPredictiveController", "SteadyState"]
 
 
 class ModelPredictiveController(_CondensedCore):
@@ -46,7 +47,9 @@ class ModelPredictiveController(_CondensedCore):
     terminal_weight : None, "riccati" or ndarray (n, n), default None
         Terminal cost on ``x_N − x_T``: none, the solution ``P`` of the discrete algebraic Riccati equation of the
         stage cost (for the state kind ``P − Q``, since ``x_N`` is already in the stage cost), or a PSD matrix.
-        ``x_T`` is the target state (state kind) or the minimum-norm state with ``C x = r_{N−1}`` (output kind).
+        With ``"riccati"``, ``x_T`` comes from the steady state ``(x_s, u_s)`` of the model for the target (see
+        :meth:`steady_state`), so that the plan equals the LQR tracking law; with a matrix, ``x_T`` is the target
+        state (state kind) or the minimum-norm state with ``C x = r_{N−1}`` (output kind).
     output_offset : ndarray, shape (n_outputs,), optional
         When the model describes ``y − output_offset`` (e.g. ``info["output_offset"]`` of a ridge ARX model, the
         resting output), give it here: past outputs, targets, output bounds and predictions then stay in the
@@ -81,11 +84,21 @@ class ModelPredictiveController(_CondensedCore):
     input_names_, output_names_ : tuple of str
     riccati_ : ndarray (n, n) or None
         The Riccati solution when ``terminal_weight="riccati"``.
+    lqr_gain_ : ndarray (m, n) or None
+        ``K`` of the LQR law above when ``terminal_weight="riccati"``.
 
     Notes
     -----
-    With ``terminal_weight="riccati"`` and no binding limit, the first planned move equals the LQR law
-    ``u_0 = −(R + BᵀPB)⁻¹ BᵀPA x̂`` for any horizon (dynamic programming; Rawlings, Mayne, Diehl 2017, ch. 1).
+    With ``terminal_weight="riccati"``, a constant target and no binding limit, the first planned move equals the
+    LQR tracking law ``u_0 = u_s − K (x̂ − x_s)``, ``K = (R + BᵀPB)⁻¹ (BᵀPA + Sᵀ)``, for any horizon. ``(x_s, u_s)``
+    is the steady-state target of the stage cost: it minimises ``|C x + D u − r|²_Q + |u|²_R`` over the equilibria
+    ``x = A x + B u`` (Rawlings, Mayne, Diehl 2017, Sec. 1.5, with input set-point zero, since the stage cost
+    penalises the input itself). With its multiplier ``μ`` (``∇ℓ(x_s, u_s) = [I − A, −B]ᵀ μ``) the stage costs of
+    any trajectory sum to ``N ℓ_s + μᵀ(Δx_0 − Δx_N) + Σ q(Δx_k, Δu_k)``, with ``q`` the quadratic part in the
+    deviations from ``(x_s, u_s)``; the terminal cost ``Δx_Nᵀ P Δx_N + μᵀ Δx_N``, a quadratic centred at
+    ``x_T = x_s − P⁻¹μ / 2``, then makes the finite-horizon problem the infinite-horizon LQR problem in the
+    deviations (dynamic programming). When no equilibrium gives the target exactly, ``(x_s, u_s)`` is the closest
+    compromise and :meth:`steady_state` says so (``exact`` False).
 
     Examples
     --------
@@ -146,7 +159,7 @@ class ModelPredictiveController(_CondensedCore):
                                f"model {model.n_inputs} and {model.n_outputs}.")
         N = _horizon(self.horizon_steps, None)
         self._check_choices()
-        self.problem_ = None
+        self.problem_ = self._steady = self.lqr_gain_ = None
         self.model_, self.target_kind_ = model, self.target_kind
         self._setup_common(model.input_names, model.output_names, N)
         self.n_states_ = n = model.n_states
@@ -218,9 +231,34 @@ class ModelPredictiveController(_CondensedCore):
                                             "positive definite input_weight, or terminal_weight=None.") from None
             P = 0.5 * (P + P.T)
             # the state cost already holds x_N, so the tail beyond it is P − Q (PSD up to rounding)
-            W = P - Qx if self.target_kind == "state" else P
-            return P, _sqrt_weight("terminal_weight", _clip_psd(W), n)
+            W = _clip_psd(P - Qx if self.target_kind == "state" else P)
+            self._steady = _SteadyTarget(model, Q, R, self.target_kind, W)
+            self.lqr_gain_ = np.linalg.solve(Rr + model.B.T @ P @ model.B, model.B.T @ P @ model.A + S.T)
+            return P, _sqrt_weight("terminal_weight", W, n)
         return None, _sqrt_weight("terminal_weight", tw, n)
+
+    def steady_state(self, target):
+        """The steady-state target ``(x_s, u_s)`` the Riccati terminal cost is centred on.
+
+        Parameters
+        ----------
+        target : array_like
+            As for :meth:`plan`: ``(p,)`` or ``(N, p)`` outputs (the last row is held), or ``(n,)`` for the state
+            kind.
+
+        Returns
+        -------
+        SteadyState
+
+        Raises
+        ------
+        InvalidParameterError
+            When the controller has no Riccati terminal cost (``terminal_weight != "riccati"``).
+        """
+        if getattr(self, "_steady", None) is None:
+            raise InvalidParameterError("steady_state needs terminal_weight='riccati' (fit the controller first).")
+        t = self._check_target(target)
+        return self._steady.solve(t if self.target_kind == "state" else self._target_rows(t)[-1] - self._y_off)
 
     def _build_sparse(self, Lq, Lp):
         """Replace the cvxpy problem by the sparse one (states as variables); the fast path stays condensed."""
@@ -264,6 +302,9 @@ class ModelPredictiveController(_CondensedCore):
         return np.tile(target, (self.horizon_steps_, 1)) if target.ndim == 1 else target
 
     def _x_terminal(self, target):
+        if getattr(self, "_steady", None) is not None:
+            r = target if self.target_kind == "state" else self._target_rows(target)[-1] - self._y_off
+            return self._steady.centre(r)
         return target if self.target_kind == "state" else self._Cpinv @ (target[-1] - self._y_off)
 
     def _free(self, u_past, y_past):

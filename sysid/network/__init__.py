@@ -6,6 +6,10 @@ rows of ``C``:
 
     x[k+1] = A x[k] + B u[k],        y[k] = C x[k] + D u[k].
 
+A fitted model's states are arbitrary coordinates: quote the figures of :mod:`.outputs` (output Gramians, squared
+H2 norms, output controllability, output-pattern energies), which do not depend on them. Average and modal
+controllability of ``A`` are state-coordinate figures, meaningful for a network map whose states are its nodes.
+
 Everything here is noise-free and deterministic. Every function takes ``system``: a ``StateSpaceModel`` or a tuple
 ``(A,)``, ``(A, B)``, ``(A, B, C)`` or ``(A, B, C, D)`` (missing ``B`` / ``C`` default to the identity: one input
 site and one recorded channel per node, the setting of the network-control literature).
@@ -29,11 +33,20 @@ from .controllability import (
 from .patterns import pattern_to_state, PatternState
 from .energy import minimum_energy_transition, pattern_transition, EnergyTransition, PatternTransition
 from .ranking import rank_sites, SiteRanking
+from .maps import NetworkMap, read_network_map, map_model
+from .conditions import condition_figures, trial_conditions, ConditionFigures
+from .outputs import (
+    output_gramian, output_controllability, site_output_controllability, output_transition, rank_sites_by_output,
+    OutputControllability, SiteOutputControllability, OutputTransition, OutputSiteRanking
+)
 
 __all__ = ["network_model", "normalised_network", "impulse_responses", "controlled_response", "reachability_matrix",
            "controllability_gramian", "controllability", "site_controllability", "pattern_to_state",
            "minimum_energy_transition", "pattern_transition", "rank_sites", "ControlledResponse",
            "ControllabilityReport", "SiteControllability", "PatternState", "EnergyTransition", "PatternTransition",
-           "SiteRanking", "NORMALISATION_NONE", "NORMALISATION_SIGMA"]
+           "SiteRanking", "NORMALISATION_NONE", "NORMALISATION_SIGMA", "output_gramian", "output_controllability",
+           "site_output_controllability", "output_transition", "rank_sites_by_output", "OutputControllability",
+           "SiteOutputControllability", "OutputTransition", "OutputSiteRanking", "NetworkMap", "read_network_map",
+           "map_model", "condition_figures", "trial_conditions", "ConditionFigures"]
 
 

@@ -3,16 +3,17 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
 
-from ..exceptions import SessionError, UnstableModelError
+from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, UnstableModelError
 from .systems import _as_model, _check_horizon, _dynamics, _frozen
 
 __all__ = ["reachability_matrix", "controllability_gramian", "controllability", "site_controllability",
-           "ControllabilityReport", "SiteControllability"]
+           "modal_controllability_values", "ControllabilityReport", "SiteControllability"]
 
 
 # ---------------------------------------------------------------------------------------------------- Gramians
@@ -280,21 +281,98 @@ def site_controllability(system, *, horizon_steps: int | None = None,
     Average controllability of site ``j``: ``trace(W_j) = b_jᵀ P b_j`` with ``P = sum_k (A^k)ᵀ A^k``
     (``P`` solves ``P = Aᵀ P A + I``). For a symmetric ``A`` and ``b_j = e_j`` this is ``[(I - A²)⁻¹]_jj``.
     Modal controllability generalises Pasqualetti et al. (2014) / Gu et al. (2015), where ``A`` is symmetric and
-    ``w_i = v_i``; then ``phi_j = 1 - sum_k A_jk²``. Both scale with ``||b_j||²``.
+    ``w_i = v_i``; then ``phi_j = 1 - sum_k A_jk²``. Both scale with ``||b_j||²``. See
+    :func:`modal_controllability_values` for repeated eigenvalues, non-normal and defective ``A``.
     """
     model = _as_model(system)
     A, norm = _dynamics(model, normalise)
     T = _check_horizon(horizon_steps, allow_none=True)
     _require_stable(A, "modal controllability (and the infinite-horizon average controllability)")
     B = np.array(model.B)
-    n = A.shape[0]
-    if T is None:
-        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
-    else:
-        P = _gramian(A.T, np.eye(n), T)
-    average = np.einsum("ij,ik,kj->j", B, P, B)
-    lam, W = sla.eig(A, left=True, right=False)
-    W = W / np.linalg.norm(W, axis=0, keepdims=True)
-    modal = ((1.0 - np.abs(lam) ** 2)[:, None] * np.abs(W.conj().T @ B) ** 2).sum(axis=0)
+    average = average_controllability_values(A, B, T)
+    modal = modal_controllability_values(A, B)
     return SiteControllability(site_names=tuple(model.input_names), average=_frozen(average), modal=_frozen(modal),
                                horizon_steps=T, normalisation=norm)
+
+
+def average_controllability_values(A, B, horizon_steps=None) -> np.ndarray:
+    """``trace(W_j) = b_jᵀ P b_j`` of every column of ``B``, ``P = Aᵀ P A + I`` (or its ``T``-term sum).
+
+    ``A`` must be stable for the infinite horizon (checked by the callers).
+    """
+    n = A.shape[0]
+    if horizon_steps is None:
+        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
+    else:
+        P = _gramian(A.T, np.eye(n), horizon_steps)
+    return np.einsum("ij,ik,kj->j", B, P, B)
+
+
+# ---------------------------------------------------------------------------------------------------- modal
+#: Eigenvector condition number above which a non-normal ``A`` is treated as defective (no eigenbasis to rounding).
+DEFECTIVE_CONDITION = 1e10
+#: Eigenvector condition number above which the warning for a non-normal ``A`` calls the figure fragile.
+LARGE_CONDITION = 1e3
+
+
+def modal_controllability_values(A, B) -> np.ndarray:
+    """Modal controllability ``phi_j = sum_i (1 - |lambda_i|²) |w_iᴴ b_j|²`` of every column of ``B``.
+
+    Parameters
+    ----------
+    A : ndarray, shape (n, n)
+        Stable network matrix (spectral radius < 1).
+    B : ndarray, shape (n, m)
+
+    Returns
+    -------
+    ndarray, shape (m,)
+
+    Raises
+    ------
+    InvalidParameterError
+        When ``A`` is defective (no basis of eigenvectors: the eigenvector matrix has condition number above
+        :data:`DEFECTIVE_CONDITION`), where modal controllability is not defined.
+
+    Warns
+    -----
+    ConditioningWarning
+        For a non-normal ``A``: the figure then depends on how the left eigenvectors are scaled (unit norm here,
+        the definition of Pasqualetti et al. 2014) and, inside a repeated eigenvalue, on the basis chosen; the
+        warning gives the eigenvector condition number.
+
+    Notes
+    -----
+    For a normal ``A`` (``A Aᴴ = Aᴴ A``; symmetric ``A`` in particular) the complex Schur form ``A = Z T Zᴴ`` has a
+    diagonal ``T`` and a unitary ``Z``: its columns are an orthonormal eigenbasis, also inside repeated eigenvalues,
+    and then ``sum_i (1 - |lambda_i|²) |z_iᴴ b|² = bᵀ (I - A Aᴴ) b``, the closed form (for ``b = e_j``:
+    ``1 - sum_k A_jk²``; Pasqualetti, Zampieri, Bullo 2014; Gu et al. 2015). Eigenvectors computed one by one
+    (``scipy.linalg.eig``) are not orthogonal inside a repeated eigenspace, which made the figure wrong there.
+    For a non-normal, diagonalisable ``A`` the left eigenvectors ``w_i`` (rows of ``V⁻¹``, scaled to unit norm)
+    are used.
+    """
+    A = np.asarray(A, dtype=np.float64)
+    B = np.asarray(B, dtype=np.float64)
+    n = A.shape[0]
+    if n == 0:
+        return np.zeros(B.shape[1])
+    scale = max(float(np.linalg.norm(A, 2)), np.finfo(float).tiny)
+    if np.linalg.norm(A @ A.T - A.T @ A, 2) <= 1e3 * n * np.finfo(float).eps * scale ** 2:
+        T, Z = sla.schur(A.astype(complex), output="complex")
+        lam, W = np.diag(T), Z
+    else:
+        lam, V = sla.eig(A)
+        cond = float(np.linalg.cond(V))
+        if not np.isfinite(cond) or cond > DEFECTIVE_CONDITION:
+            raise InvalidParameterError(
+                f"A is defective (its eigenvectors do not form a basis; eigenvector condition number {cond:.3g}), so "
+                "modal controllability is not defined. Use the average controllability or the output Gramian figures."
+            )
+        W = np.linalg.inv(V).conj().T
+        W = W / np.linalg.norm(W, axis=0, keepdims=True)
+        fragile = " (large: the figure is sensitive to rounding and to the scaling of the eigenvectors)" \
+            if cond > LARGE_CONDITION else ""
+        warnings.warn(
+            f"A is not normal, so modal controllability uses unit-norm left eigenvectors and depends on that "
+            f"convention; eigenvector condition number {cond:.3g}{fragile}.", ConditioningWarning, stacklevel=3)
+    return ((1.0 - np.abs(lam) ** 2)[:, None] * np.abs(W.conj().T @ B) ** 2).sum(axis=0)

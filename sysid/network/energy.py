@@ -171,11 +171,13 @@ class PatternTransition:
 
 def pattern_transition(system, y_target, *, horizon_steps: int, y_start=None, sites=None,
                        reach_rtol: float = 1e-8) -> PatternTransition:
-    """The least-energy input moving one recorded activity pattern to another.
+    """The least-energy input moving the state of one activity pattern to the state of another.
 
     Each pattern becomes a state through :func:`pattern_to_state` (check ``PatternState.unique``: when ``C`` has a
     null space the pattern fixes the state only up to it, and the minimum-norm state is used), then
-    :func:`minimum_energy_transition` links the two states.
+    :func:`minimum_energy_transition` links the two states. With fewer channels than states the minimum-norm state
+    depends on the state coordinates and its energy can be far above the least energy that produces the pattern
+    (thousands of times on the demo); for a fitted model use :func:`~stimsteer.sysid.network.output_transition`.
 
     Parameters
     ----------

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from stimsteer.control.cli import CAUTION, main
-from stimsteer.sysid.network import rank_sites
+from stimsteer.sysid.network import rank_sites_by_output
 from stimsteer.sysid.session import Session
 from stimsteer.sysid.statespace import StateSpaceModel
 from stimsteer.sysid.storage import load_predictor, save_predictor
@@ -45,8 +45,13 @@ def test_network_writes_tables_and_figures(model_file, tmp_path, capsys):
         assert (out / name).stat().st_size > 0
     table = pd.read_csv(out / "controllability.csv").set_index("quantity")["value"]
     assert table["normalisation"] == "none" and table["gramian_horizon_steps"] == "infinite"
+    assert "independent of the state coordinates" in table["coordinates"]
+    assert table["output_rank"] == "4" and table["output_controllable"] == "True"
     sites = pd.read_csv(out / "site_controllability.csv")
-    assert np.all(np.diff(sites["average_controllability"]) <= 0)
+    assert np.all(np.diff(sites["h2_squared_to_channels"]) <= 0)
+    # a fitted model's states are arbitrary: no state-coordinate figure by default
+    assert "average_controllability" not in sites.columns and not (out / "state_controllability.csv").exists()
+    assert len(pd.read_csv(out / "site_sets.csv")) == 3 + 3  # singles and pairs of 3 sites
     impulses = pd.read_csv(out / "impulse_responses.csv")
     assert len(impulses) == 20 * 4 * 3  # default length max(20, 3 n) steps x channels x sites
 
@@ -79,9 +84,7 @@ def test_network_with_a_target_ranks_sites_like_the_api(model_file, tmp_path, ca
     assert "not a stimulation plan: no declared limit was applied" in printed  # a figure, not a plan
     ranking = pd.read_csv(out / "site_ranking.csv")
     model, _ = load_predictor(model_file)
-    from stimsteer.sysid.network import pattern_to_state
-
-    expected = rank_sites(model, pattern_to_state(model, [1, 0, 0.5, -1]).x, horizon_steps=8)
+    expected = rank_sites_by_output(model, [1, 0, 0.5, -1], horizon_steps=8)
     assert ranking["sites"].tolist() == list(expected.names)
     np.testing.assert_allclose(ranking["energy"], expected.energy, rtol=1e-8)
     transition = pd.read_csv(out / "transition.csv")
@@ -120,14 +123,18 @@ def test_network_refuses_a_direct_route_predictor(tmp_path, rng, capsys):
     assert not (tmp_path / "net").exists()
 
 
-def test_network_on_an_unstable_model_needs_normalise(tmp_path, rng, capsys):
+def test_network_on_an_unstable_fitted_model_needs_a_finite_gramian_horizon_never_a_rescaling(tmp_path, rng, capsys):
     path = tmp_path / "unstable.h5"
     save_predictor(_model(rng, rho=1.3), path, provenance={"origin": "test"})
     assert main(["network", str(path), "--out", str(tmp_path / "a")]) == 2
-    assert "spectral radius 1.3000 >= 1" in capsys.readouterr().err and not (tmp_path / "a").exists()
-    assert main(["network", str(path), "--out", str(tmp_path / "b"), "--normalise"]) == 0
-    table = pd.read_csv(tmp_path / "b" / "controllability.csv").set_index("quantity")["value"]
-    assert table["normalisation"].startswith("A / (1 + sigma_max(A))")
+    err = capsys.readouterr().err
+    assert "spectral radius 1.3000 >= 1" in err and "--gramian-steps" in err and not (tmp_path / "a").exists()
+    # the issue: --normalise divided a fitted A by 1 + sigma_max, changing every time constant; now refused
+    assert main(["network", str(path), "--out", str(tmp_path / "b"), "--normalise"]) == 2
+    assert "applies to a network map (--map) only" in capsys.readouterr().err and not (tmp_path / "b").exists()
+    assert main(["network", str(path), "--out", str(tmp_path / "c"), "--gramian-steps", "10"]) == 0
+    table = pd.read_csv(tmp_path / "c" / "controllability.csv").set_index("quantity")["value"]
+    assert table["normalisation"] == "none" and table["gramian_horizon_steps"] == "10"
 
 
 @pytest.mark.parametrize("extra, match", [
@@ -135,6 +142,10 @@ def test_network_on_an_unstable_model_needs_normalise(tmp_path, rng, capsys):
     (["--target", "1,2"], "expected 4 finite values"),
     (["--target", "1,x,3,4"], "expected numbers separated by commas"),
     (["--target", "1,2,3,4", "--horizon-steps", "0"], "horizon_steps must be a whole number"),
+    (["--target", "1,nan,0,2"], "every value must be finite, but ch2 = nan"),  # issue 12: name the entry
+    (["--target", "1,0,0,2", "--free", "ch9"], "unknown free channel 'ch9'"),
+    (["--stimulated", "a"], "--stimulated applies to a network map (--map) only"),
+    (["--state-figures", "--gramian-steps", "0"], "gramian_steps must be a whole number"),
 ])
 def test_network_bad_arguments_exit_2_with_one_line(model_file, tmp_path, capsys, extra, match):
     assert main(["network", str(model_file), "--out", str(tmp_path / "n"), *extra]) == 2
@@ -155,7 +166,7 @@ def test_network_keeps_an_existing_folder_unless_forced(model_file, tmp_path, ca
     out.mkdir()
     (out / "keep.txt").write_text("x")
     assert main(["network", str(model_file), "--out", str(out)]) == 2
-    assert "already holds files" in capsys.readouterr().err and (out / "keep.txt").exists()
+    assert "already exists" in capsys.readouterr().err and (out / "keep.txt").exists()  # claimed before computing
     assert main(["network", str(model_file), "--out", str(out), "--force"]) == 0
     assert not (out / "keep.txt").exists()
 
@@ -319,3 +330,33 @@ def test_network_figures_leave_the_plotting_state_alone(model_file, tmp_path):
     )
     run = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
     assert run.returncode == 0, run.stderr
+
+
+def test_a_fitted_model_is_refitted_per_condition_with_bootstrap_intervals(tmp_path, rng, capsys):
+    from stimsteer.sysid import save_session
+    from stimsteer.sysid.arx import RidgeArx
+
+    session = _session(rng, n=1200).replace(trials=[(150 * i, 150 * i + 150) for i in range(8)],
+                                            metadata={"trial_conditions": ["on", "off"] * 4})
+    save_session(session, tmp_path / "s.h5")
+    est = RidgeArx(output_lags=2, input_lags=2).fit(session)
+    save_predictor(est, tmp_path / "arx.h5", provenance={"origin": "test"})
+    out = tmp_path / "net"
+    assert main(["network", str(tmp_path / "arx.h5"), "--session", str(tmp_path / "s.h5"), "--bootstrap", "12",
+                 "--out", str(out)]) == 0
+    cond = pd.read_csv(out / "conditions.csv")
+    assert set(cond["condition"]) == {"on", "off", "off - on"} and set(cond["figure"]) == {"h2_squared"}
+    # one linear system made both conditions (by construction): the difference is small and its interval holds 0
+    diff = cond[cond["condition"] == "off - on"].iloc[0]
+    assert diff["ci_low"] <= 0 <= diff["ci_high"] and abs(diff["estimate"]) < 0.05 * cond["estimate"].abs().max()
+    on = cond[cond["condition"] == "on"].iloc[0]
+    assert on["ci_low"] <= on["estimate"] <= on["ci_high"] and on["n_trials"] == 4
+
+
+def test_a_bare_state_space_model_cannot_be_refitted_per_condition(model_file, tmp_path, rng, capsys):
+    from stimsteer.sysid import save_session
+
+    session = _session(rng).replace(metadata={"trial_conditions": ["a", "b"] * 2})
+    save_session(session, tmp_path / "s.h5")
+    assert main(["network", str(model_file), "--session", str(tmp_path / "s.h5"), "--out", str(tmp_path / "n")]) == 2
+    assert "without a fitting method" in capsys.readouterr().err and not (tmp_path / "n").exists()

@@ -131,3 +131,58 @@ def test_every_other_input_reaching_the_target_costs_at_least_as_much(rng):
         u = tr.u.reshape(-1) + z
         np.testing.assert_allclose(R @ u, xt, atol=1e-10)
         assert u @ u >= tr.energy * (1 - 1e-12)
+
+
+# ------------------------------------------------------------------------------------------------ repeated eigenvalues
+def _ring(n):
+    A = np.zeros((n, n))
+    for i in range(n):
+        A[i, (i + 1) % n] = A[(i + 1) % n, i] = 1.0
+    return A
+
+
+@pytest.mark.parametrize("graph, n", [("ring", 8), ("complete", 6), ("ring", 12), ("complete", 9)])
+def test_modal_controllability_is_equal_on_every_node_of_a_vertex_transitive_graph(graph, n):
+    # Pasqualetti, Zampieri, Bullo (2014), IEEE TCNS 1:40 and Gu et al. (2015), Nat. Commun. 6:8414, Methods:
+    # for symmetric A with orthonormal eigenvectors, phi_i = 1 - sum_k A_ik². On a ring or a complete graph every
+    # node is equivalent, so every value is that closed form (both graphs have repeated eigenvalues, which the
+    # one-by-one eigenvectors of scipy.linalg.eig got wrong: 0.75-0.83 on the 8-ring, 0.69-0.94 on K6).
+    A = _ring(n) if graph == "ring" else np.ones((n, n)) - np.eye(n)
+    An = A / (1.0 + np.linalg.norm(A, 2))
+    closed = 1.0 - np.sum(An ** 2, axis=1)
+    modal = site_controllability((An,)).modal
+    np.testing.assert_allclose(modal, closed, rtol=0, atol=1e-12)
+    assert np.ptp(closed) == 0.0
+    if (graph, n) == ("ring", 8):
+        assert modal[0] == pytest.approx(7.0 / 9.0, abs=1e-12)  # 1 - 2 (1/3)², sigma_max of the ring = 2
+
+
+def test_modal_controllability_of_a_random_symmetric_graph_with_a_repeated_eigenvalue(rng):
+    # Orthonormal eigenvectors of a symmetric matrix built with a three-fold eigenvalue (closed form as above).
+    Q, _ = np.linalg.qr(rng.standard_normal((7, 7)))
+    lam = np.array([0.5, 0.5, 0.5, -0.2, 0.1, 0.1, 0.7])
+    A = Q @ np.diag(lam) @ Q.T
+    A = 0.5 * (A + A.T)
+    modal = site_controllability((A,)).modal
+    np.testing.assert_allclose(modal, 1.0 - np.sum(A ** 2, axis=1), atol=1e-12)
+    assert np.all(modal <= 1.0)
+
+
+def test_modal_controllability_of_a_non_normal_network_warns_with_the_condition_number():
+    from stimsteer.sysid import ConditioningWarning
+
+    A = np.array([[0.5, 0.4], [0.0, 0.3]])
+    with pytest.warns(ConditioningWarning, match="not normal.*condition number"):
+        modal = site_controllability((A,)).modal
+    # Unit-norm left eigenvectors (Pasqualetti et al. 2014): worked by hand from w1 ∝ (1, 2), w2 = (0, 1).
+    lam_w = [(0.5, np.array([1.0, 2.0]) / np.sqrt(5.0)), (0.3, np.array([0.0, 1.0]))]
+    expect = [sum((1 - lam ** 2) * (w @ np.eye(2)[:, j]) ** 2 for lam, w in lam_w) for j in range(2)]
+    np.testing.assert_allclose(modal, expect, atol=1e-12)
+
+
+def test_modal_controllability_refuses_a_defective_network():
+    from stimsteer.sysid import InvalidParameterError
+
+    A = np.array([[0.5, 1.0], [0.0, 0.5]])  # a Jordan block: one eigenvector for a double eigenvalue
+    with pytest.raises(InvalidParameterError, match="defective"):
+        site_controllability((A,))
