@@ -16,6 +16,7 @@ import sys
 
 from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
+from .commands import study as _study
 from .commands import bench as _bench, demo as _demo, plan as _plan, predict as _predict, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
 
 __all__ = ["main", "build_parser", "CAUTION"]
@@ -43,6 +44,7 @@ _SUBCOMMANDS = {
     "bench": (_bench.add_parser, _bench.run),
     "inspect": (_inspect.add_parser, _inspect.run),
     "demo": (_demo.add_parser, _run_demo),
+    "study": (_study.add_parser, _study.run),
 }
 
 

@@ -40,7 +40,7 @@ import pandas as pd
 from ...sysid import SessionError, StimsteerWarning, load_session, open_session_file
 from ...sysid.io import detect_format
 
-__all__ = ["StudyTable", "describe_study", "STUDY_FILE"]
+__all__ = ["StudyTable", "describe_study", "study_file_settings", "STUDY_FILE"]
 
 #: The study file looked for in a study folder.
 STUDY_FILE = "study.toml"
@@ -123,16 +123,28 @@ def describe_study(path, *, min_trials: int = 4, channels=None) -> StudyTable:
                       excluded=excluded, name=str(name), source=str(path), settings=dict(settings))
 
 
-def _read_study_file(path: Path) -> tuple:
+def study_file_settings(path) -> dict:
+    """The ``[settings]`` table of a study file (or of ``path/study.toml``); empty for a plain folder."""
+    path = Path(path)
+    if path.is_dir() and (path / STUDY_FILE).is_file():
+        path = path / STUDY_FILE
+    return dict(_load_toml(path).get("settings", {})) if path.is_file() else {}
+
+
+def _load_toml(path: Path) -> dict:
     try:
         import tomllib
     except ModuleNotFoundError:  # pragma: no cover - Python 3.10
         import tomli as tomllib
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        return tomllib.loads(path.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise SessionError(f"study file {path} is not valid TOML ({exc}); see `stimsteer study --help` for the "
                            "layout.") from None
+
+
+def _read_study_file(path: Path) -> tuple:
+    data = _load_toml(path)
     listed = data.get("sessions")
     if not isinstance(listed, list) or not listed:
         raise SessionError(f"study file {path} names no sessions; add one [[sessions]] table per session with "
