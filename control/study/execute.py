@@ -180,7 +180,7 @@ def _run_dask(st, todo, address, keep, bar) -> int:
                                  retries=st.max_retries) for t in todo]
         index = {f.key: t.key for f, t in zip(futures, todo)}
         try:
-            for fut in as_completed(futures):
+            for fut in as_completed(futures, loop=client.loop):
                 keep(index[fut.key], fut.result())
                 bar.update()
         except Exception as exc:  # KilledWorker and the like: the cache keeps what finished
