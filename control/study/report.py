@@ -41,7 +41,8 @@ def summary_lines(result) -> list:
         lines.append(
             f"{r.description}: pooled difference of held-out R² {_f(r.estimate)} [95 % {_f(r.ci_low)}, "
             f"{_f(r.ci_high)}] over {r.n_subjects} subjects; between-subject spread tau {_f(r.tau, '.2g')} "
-            f"(I² {_f(100 * r.i2 if isinstance(r.i2, float) else math.nan, '.0f')} %); margin ±{_f(r.margin, '.2g')}: "
+            f"(I² {_f(100 * r.i2 if isinstance(r.i2, float) else math.nan, '.0f')} %); "
+            f"margin ±{_f(r.margin, '.2g')}: "
             f"{r.verdict} ({_MEANING.get(r.verdict, '')}).")
         if r.left_out:
             lines.append(f"  left out of this comparison: {r.left_out} (no within-subject variance).")

@@ -120,7 +120,8 @@ class StudySettings:
         if self.channels is not None:
             chans = tuple(str(c) for c in self.channels)
             if not chans or len(set(chans)) != len(chans):
-                raise InvalidParameterError(f"channels must be a non-empty list of distinct names; got {self.channels!r}.")
+                raise InvalidParameterError(f"channels must be a non-empty list of distinct names; got "
+                                            f"{self.channels!r}.")
             object.__setattr__(self, "channels", chans)
         for name in ("margin_abs", "margin_rel", "scheduler_timeout_s"):
             v = float(getattr(self, name))

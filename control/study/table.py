@@ -256,7 +256,8 @@ def _check_duplicates(table: pd.DataFrame) -> None:
                            "listed twice would count twice in every pooled figure; remove the copies.")
     dup = table[table.duplicated(["subject", "session"], keep=False)]
     if not dup.empty:
-        raise SessionError(f"session names repeat within a subject: {sorted(set(dup['subject'] + '/' + dup['session']))}; "
+        names = sorted(set(dup["subject"] + "/" + dup["session"]))
+        raise SessionError(f"session names repeat within a subject: {names}; "
                            "give every session of a subject its own name.")
 
 

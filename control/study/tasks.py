@@ -88,13 +88,13 @@ _LAST: dict = {}
 
 def _load(ref: SessionRef, channels) -> Session:
     """The session of ``ref`` (the last one read is kept, so successive tasks on one session read it once)."""
-    if _LAST.get("hash") != ref.content_hash:
+    if _LAST.get("key") != (ref.content_hash, channels):
         _LAST.clear()  # before reading the next one: at most one session held
         s = load_session(ref.file)
         if s.content_hash() != ref.content_hash:
             raise SessionError(f"session file {ref.file} changed since the study table was made (its content hash "
                                "differs); describe the study again.")
-        _LAST.update(hash=ref.content_hash, session=_subset(s, channels))
+        _LAST.update(key=(ref.content_hash, channels), session=_subset(s, channels))
     return _LAST["session"]
 
 
@@ -141,7 +141,8 @@ def _concat(parts) -> Session:
     first = parts[0]
     for p in parts[1:]:
         if (p.input_names, p.output_names) != (first.input_names, first.output_names):
-            raise SessionError(f"pooled sessions record different channels ({list(first.input_names + first.output_names)}"
+            raise SessionError(f"pooled sessions record different channels "
+                               f"({list(first.input_names + first.output_names)}"
                                f" and {list(p.input_names + p.output_names)}); give a common channel subset.")
     stops = np.cumsum([p.n_samples for p in parts])
     trials = np.concatenate([p.trials + (stop - p.n_samples) for p, stop in zip(parts, stops)])

@@ -116,10 +116,11 @@ def test_a_dask_cluster_gives_the_numbers_of_a_local_run(study, first):
 def test_a_worker_killed_mid_study_is_replaced_and_no_row_is_lost_or_doubled(study, first, tmp_path, monkeypatch):
     marker = tmp_path / "killed"
     original = study_execute.run_task
+    victim = sorted(t.key for t in study_tasks(describe_study(study), SETTINGS)[0])[4]
 
     def dies_once(st, task):
-        # the fifth task kills its worker process the first time (the pool's workers are forked from here)
-        if task.key == sorted(t.key for t in study_tasks(describe_study(study), st)[0])[4]:
+        # this task kills its worker process the first time (the pool's workers are forked from here)
+        if task.key == victim:
             try:
                 fd = os.open(marker, os.O_CREAT | os.O_EXCL)
                 os.close(fd)

@@ -131,3 +131,23 @@ def test_the_study_generator_is_seeded_and_subjects_differ(tmp_path):
     sa, sb = load_session(a[0]), load_session(b[0])
     assert np.array_equal(sa.y, sb.y)
     assert not np.allclose(load_session(a[0]).y, load_session(a[2]).y)
+
+
+def test_an_unreachable_scheduler_is_one_clear_error(study):
+    pytest.importorskip("distributed")
+    from stimsteer.control.study import run_study
+    from stimsteer.sysid import StimsteerError
+
+    with pytest.raises(StimsteerError, match=r"could not use a Dask scheduler at 'tcp://127.0.0.1:9'.*run locally"):
+        run_study(study, StudySettings.quick(scheduler_timeout_s=1.0, analyses=("sessions",)),
+                  scheduler="tcp://127.0.0.1:9")
+
+
+def test_an_unreadable_cache_entry_counts_as_missing(tmp_path):
+    from stimsteer.control.study import TaskCache
+
+    cache = TaskCache(tmp_path / "c")
+    cache.put("k1", {"r2_mean": 0.5})
+    cache.put("k2", {"error": "SessionError: x"})  # failed tasks are tried again, never cached
+    (tmp_path / "c" / "k3.json").write_text("{half")
+    assert cache.get("k1") == {"r2_mean": 0.5} and cache.get("k2") is None and cache.get("k3") is None
