@@ -85,15 +85,16 @@ def sites_figure(sites: pd.DataFrame, cohort: pd.DataFrame) -> Figure:
     per = sites[sites["label"] == label]
     order = cohort[cohort["label"] == label].sort_values("cohort_rank")["site"].tolist()
     wide = per.pivot(index="subject", columns="site", values="rank").reindex(columns=order)
-    fig = Figure(figsize=(1.6 + 0.7 * len(order), 1.6 + 0.25 * len(wide)), dpi=_DPI)
+    fig = Figure(figsize=(max(5.0, 2.4 + 0.7 * len(order)), 1.8 + 0.25 * len(wide)), dpi=_DPI)
     ax = _axes(fig, 1, 1, 1)
     im = ax.imshow(wide.to_numpy(dtype=float), cmap="viridis_r", aspect="auto")
     ax.set_xticks(range(len(order)), order, fontsize=_TEXT)
     ax.set_yticks(range(len(wide)), wide.index, fontsize=_TEXT)
     ax.set_xlabel("stimulation site (cohort order)", fontsize=_TEXT)
     w = float(cohort.loc[cohort["label"] == label, "kendall_w"].iloc[0])
-    ax.set_title(f"Site rank per subject ({label}); Kendall's W = {w:.2f}", fontsize=_TITLE)
-    fig.colorbar(im, ax=ax).set_label("rank (1 = most output energy), count", fontsize=_TEXT)
+    ax.set_title(f"Site rank per subject ({label})\nagreement across subjects: Kendall's W = {w:.2f}",
+                 fontsize=_TITLE)
+    fig.colorbar(im, ax=ax).set_label("rank (1 = most output energy)", fontsize=_TEXT)
     return fig
 
 
