@@ -7,7 +7,7 @@ Measured in one run (targets printed, never asserted):
 * peak traced memory (tracemalloc) of the heaviest task of each analysis against the fit of the largest session
   alone (load it, fit both methods on all its trials), target <= 2;
 * a rerun after one new session was added, from the cache: tasks computed (printed with the tasks that the new
-  session's data touches: its own, and the leave-one-subject-out tasks whose pool it joins);
+  session's data touches: its own, and the pooled tasks whose bottom-k draw now takes one of its trials);
 * a Dask worker killed (SIGKILL) mid-study: the study completes; rows and numbers identical to the undisturbed run.
 
 Run from the repository root::
@@ -125,7 +125,7 @@ def rerun(root, st, cache, tmp: Path) -> None:
     pooled = sum(t.test.content_hash != new and new in {r.content_hash for r in t.train} for t in tasks)
     result = run_study(table, st, cache=cache, n_workers=2)
     print(f"rerun with one new session: {result.n_computed} of {len(tasks)} tasks computed; the new session's own "
-          f"tasks {own}, tasks whose training pool it joins {pooled} (expected {own + pooled})")
+          f"tasks {own}, pooled tasks whose draw now takes one of its trials {pooled} (expected {own + pooled})")
 
 
 def st_trials(root) -> int:

@@ -7,7 +7,7 @@ import pandas as pd
 from ...sysid import SessionError
 from .settings import StudySettings
 from .table import StudyTable
-from .tasks import SessionRef, StudyTask, task_key
+from .tasks import SessionRef, StudyTask, draw_trials, task_key
 
 __all__ = ["study_tasks"]
 
@@ -40,9 +40,10 @@ def study_tasks(table: StudyTable, st: StudySettings) -> tuple[list, list]:
                 sources["days"] = tuple(subject_refs[:k])
             if "subjects" in st.analyses and len(by_subject) > 1:
                 sources["subjects"] = tuple(r for s, rr in by_subject.items() if s != subject for r in rr)
-            for kind, train in sources.items():
-                tasks += [_task(kind, ref, train, m, i, st) for m in range(len(st.methods))
-                          for i in range(st.n_splits)]
+            for kind, pool in sources.items():
+                for i in range(st.n_splits):
+                    train, trials = ((), ()) if kind == "sessions" else draw_trials(ref, pool, i, st)
+                    tasks += [_task(kind, ref, train, trials, m, i, st) for m in range(len(st.methods))]
     if "days" in st.analyses and all(len(r) < 2 for r in by_subject.values()):
         notes.append("across days: no subject has two sessions; nothing to transfer.")
     if "subjects" in st.analyses and len(by_subject) < 2:
@@ -50,10 +51,10 @@ def study_tasks(table: StudyTable, st: StudySettings) -> tuple[list, list]:
     return tasks, notes
 
 
-def _task(kind, ref, train, method_index, split, st) -> StudyTask:
+def _task(kind, ref, train, trials, method_index, split, st) -> StudyTask:
     return StudyTask(kind=kind, subject=ref.subject, session=ref.session, method_index=method_index, split=split,
-                     test=ref, train=tuple(train) if kind != "sessions" else (),
-                     key=task_key(kind, ref, train if kind != "sessions" else (), method_index, split, st))
+                     test=ref, train=train, train_trials=trials,
+                     key=task_key(kind, ref, train, trials, method_index, split, st))
 
 
 def _check_same_channels(sessions: pd.DataFrame) -> None:

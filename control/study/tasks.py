@@ -9,8 +9,12 @@ only the trials it needs), so a task holds at most one session plus its training
 * ``subjects``: leave one subject out: fit on the other subjects' sessions (their training trials), score on the
   same held-out trials of this subject's session.
 
-Transfer fits draw, seeded, as many training trials as the within-session fit of the scored session had, so a
-difference between analyses measures transfer, not the amount of training data. Each session's split is seeded by
+Transfer fits draw as many training trials as the within-session fit of the scored session had, so a difference
+between analyses measures transfer, not the amount of training data. The draw is a bottom-k sample: every candidate
+trial (a training trial of a pooled session) gets a priority hashed from the scored session, the split and the
+candidate's own session hash and index, and the ``k`` lowest are taken. A task's key covers exactly the trials it
+drew, so adding a session to the study changes only the tasks that score it and the few pooled tasks whose draw
+now picks one of its trials; every other cached result stays valid. Each session's split is seeded by
 the study seed, the split number and the session's content hash: the same session gets the same split in every
 analysis, run and scheduler. Session-level output offsets are removed explicitly (``offsets="remove"``): every
 session is centred on its own training trials' mean output, scored trials never inform it.
@@ -60,13 +64,39 @@ class StudyTask:
     test: SessionRef
     train: tuple
     key: str
+    train_trials: tuple = ()
 
 
-def task_key(kind, test: SessionRef, train, method_index, split, st: StudySettings) -> str:
-    """SHA-256 over what the task's numbers depend on: the data (hashes), the method, the split, the settings."""
-    text = json.dumps([CACHE_VERSION, kind, test.content_hash, sorted(r.content_hash for r in train),
-                       st.methods[method_index].to_dict(), int(split), st.task_dict()], sort_keys=True, default=str)
+def task_key(kind, test: SessionRef, train, train_trials, method_index, split, st: StudySettings) -> str:
+    """SHA-256 over what the task's numbers depend on: the data (hashes and trials drawn), the method, the split,
+    the settings."""
+    drawn = [[r.content_hash, list(t)] for r, t in zip(train, train_trials)]
+    text = json.dumps([CACHE_VERSION, kind, test.content_hash, drawn, st.methods[method_index].to_dict(), int(split),
+                       st.task_dict()], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+def draw_trials(test: SessionRef, candidates, split: int, st: StudySettings) -> tuple[tuple, tuple]:
+    """The bottom-k draw of training trials for a transfer task (module docstring).
+
+    Returns
+    -------
+    refs : tuple of SessionRef
+        The pooled sessions that contribute at least one trial, in the order given.
+    trials : tuple of tuple of int
+        Their drawn trial indices, sorted.
+    """
+    k = len(session_split(test, split, st).train)
+    scored = []
+    for ref in candidates:
+        for t in session_split(ref, split, st).train:
+            text = f"{st.seed}|{split}|{test.content_hash}|{ref.content_hash}|{t}".encode()
+            scored.append((hashlib.blake2b(text, digest_size=8).digest(), ref.content_hash, t))
+    chosen: dict = {}
+    for _p, h, t in sorted(scored)[:k]:
+        chosen.setdefault(h, []).append(int(t))
+    refs = tuple(r for r in candidates if r.content_hash in chosen)
+    return refs, tuple(tuple(sorted(chosen[r.content_hash])) for r in refs)
 
 
 def _seed(*parts) -> int:
@@ -121,19 +151,14 @@ def _centred(s: Session, train_trials, st: StudySettings) -> Session:
     return s.replace(y=s.y - mean)
 
 
-def _pool(refs, n_pick: int, task_seed: int, st: StudySettings, split: int) -> Session:
-    """``n_pick`` training trials drawn (seeded) from the training trials of ``refs``, read one session at a time."""
-    cands = [(k, t) for k, r in enumerate(refs) for t in session_split(r, split, st).train]
-    if not cands:
-        raise SessionError("no training trials to pool for this task.")
-    pick = np.random.default_rng(task_seed).choice(len(cands), size=min(n_pick, len(cands)), replace=False)
-    chosen: dict = {}
-    for i in sorted(int(i) for i in pick):
-        chosen.setdefault(cands[i][0], []).append(cands[i][1])
+def _pool(task: StudyTask, st: StudySettings) -> Session:
+    """The drawn training trials of a transfer task, read one session at a time, each centred on its own offset."""
+    if not task.train:
+        raise SessionError(f"no training trials to pool for {task.kind} task {task.subject}/{task.session}.")
     parts = []
-    for k in sorted(chosen):
-        s = _load(refs[k], st.channels)
-        parts.append(_centred(s, session_split(refs[k], split, st).train, st).select_trials(chosen[k]))
+    for ref, trials in zip(task.train, task.train_trials):
+        s = _load(ref, st.channels)
+        parts.append(_centred(s, session_split(ref, task.split, st).train, st).select_trials(list(trials)))
     return _concat(parts)
 
 
@@ -172,7 +197,7 @@ def _body(st: StudySettings, task: StudyTask) -> dict:
     if task.kind == "sessions":
         train = _centred(_load(task.test, st.channels), split.train, st).select_trials(split.train)
     else:
-        train = _pool(task.train, len(split.train), _seed(st.seed, 13, int(task.key[:12], 16)), st, task.split)
+        train = _pool(task, st)
     t0 = time.perf_counter()
     predictor = make_estimator(spec.route, spec.method, spec.settings, past_steps=st.past_steps,
                                horizon_steps=st.horizon_steps).fit(train)

@@ -98,6 +98,9 @@ def test_a_new_session_recomputes_only_the_tasks_whose_data_it_changes(study, fi
     assert set(grown.tasks.loc[~grown.tasks["cached"], "key"]) == touched
     # what the new session does not touch (within-session fits, days of the other subjects) came from the cache
     assert grown.tasks.loc[grown.tasks["analysis"] == "sessions", "cached"].sum() == 6 * 2 * SETTINGS.n_splits
+    # pooled tasks of other subjects whose bottom-k draw does not take the new session's trials stay cached
+    others = grown.tasks[(grown.tasks["analysis"] == "subjects") & (grown.tasks["subject"] != "s01")]
+    assert others["cached"].any()
 
 
 def test_local_processes_give_the_numbers_of_a_sequential_run(study, first):
