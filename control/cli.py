@@ -18,6 +18,7 @@ from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
 from .commands import convert as _convert
 from .commands import live as _live
+from .commands import study as _study
 from .commands import bench as _bench, demo as _demo, plan as _plan, predict as _predict, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
 
 __all__ = ["main", "build_parser", "CAUTION"]
@@ -47,6 +48,7 @@ _SUBCOMMANDS = {
     "convert": (_convert.add_parser, _convert.run),
     "demo": (_demo.add_parser, _run_demo),
     "live": (_live.add_parser, _live.run),
+    "study": (_study.add_parser, _study.run),
 }
 
 

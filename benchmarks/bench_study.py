@@ -1,0 +1,165 @@
+"""Speed, memory, resumption and fault tolerance of a study (control/study/), on an invented cohort made here.
+
+Measured in one run (targets printed, never asserted):
+
+* the study on a Dask LocalCluster (127.0.0.1) with 1 worker and with 2 (one thread each); speed-up of 2 over 1
+  (baseline: the 1-worker cluster, same tasks), target >= 1.8; the two must give identical numbers (checked);
+* peak traced memory (tracemalloc) of the heaviest task of each analysis against the fit of the largest session
+  alone (load it, fit both methods on all its trials), target <= 2;
+* a rerun after one new session was added, from the cache: tasks computed (printed with the tasks that the new
+  session's data touches: its own, and the pooled tasks whose bottom-k draw now takes one of its trials);
+* a Dask worker killed (SIGKILL) mid-study: the study completes; rows and numbers identical to the undisturbed run.
+
+Run from the repository root::
+
+    .venv/bin/python benchmarks/bench_study.py [--subjects 40] [--sessions 3] [--analyses sessions,days,subjects,sites]
+        [--stages memory,speed,killed,rerun]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import signal
+import tempfile
+import threading
+import time
+import tracemalloc
+from pathlib import Path
+
+import pandas as pd
+
+from stimsteer.control.study import StudySettings, describe_study, run_study, run_task, study_tasks
+from stimsteer.demo_data.make_study import StudyScenario, make_study
+from stimsteer.sysid import load_session, make_estimator
+
+NUMBERS = ["analysis", "subject", "session", "label", "split", "status", "r2_mean", "r2_step1", "r2_last",
+           "nrmse_mean", "n_train_trials"]
+
+
+def _numbers(result) -> pd.DataFrame:
+    return result.tasks[NUMBERS].sort_values(NUMBERS[:5], ignore_index=True)
+
+
+def _cluster(n: int):
+    from distributed import LocalCluster
+
+    return LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                        dashboard_address=None, silence_logs=50)
+
+
+def _timed(root, st, n_workers: int, cache=None):
+    with _cluster(n_workers) as cluster:
+        t0 = time.perf_counter()
+        result = run_study(root, st, scheduler=cluster.scheduler_address, cache=cache)
+        return result, time.perf_counter() - t0
+
+
+def _traced(fn) -> int:
+    tracemalloc.start()
+    fn()
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    return peak
+
+
+def memory(root, st) -> None:
+    table = describe_study(root)
+    big = table.sessions.sort_values("n_samples").iloc[-1]
+
+    def fit_largest():
+        s = load_session(big.file)
+        for m in st.methods:
+            make_estimator(m.route, m.method, m.settings, past_steps=st.past_steps,
+                           horizon_steps=st.horizon_steps).fit(s)
+    baseline = _traced(fit_largest)
+    tasks, _ = study_tasks(table, st)
+    print(f"memory: fit of the largest session ({big.subject}/{big.session}, {big.n_samples} samples) "
+          f"{baseline / 1e6:.2f} MB traced (baseline)")
+    for kind in ("sessions", "days", "subjects"):
+        sample = [t for t in tasks if t.kind == kind][:4]
+        if sample:
+            peak = max(_traced(lambda t=t: run_task(st, t)) for t in sample)
+            print(f"  {kind:9s} task peak {peak / 1e6:.2f} MB  ratio {peak / baseline:.2f}  (target <= 2)")
+
+
+def speed(root, st):
+    one, t1 = _timed(root, st, 1)
+    two, t2 = _timed(root, st, 2)
+    same = _numbers(one).equals(_numbers(two))
+    print(f"speed: {len(one.tasks)} tasks; 1 worker {t1:.1f} s, 2 workers {t2:.1f} s; speed-up {t1 / t2:.2f} "
+          f"(target >= 1.8); identical numbers: {same}")
+    return two
+
+
+def killed(root, st, reference, cache) -> None:
+    from distributed import Client
+
+    with _cluster(2) as cluster:
+        client = Client(cluster.scheduler_address, set_as_default=False)
+        pids = list(client.run(os.getpid).values())
+        client.close()
+        box = {}
+        thread = threading.Thread(target=lambda: box.update(r=run_study(root, st, scheduler=cluster.scheduler_address,
+                                                                       cache=cache)))
+        thread.start()
+        n_tasks = len(reference.tasks)
+        while len(list(Path(cache).glob("*.json"))) < n_tasks // 3 and thread.is_alive():
+            time.sleep(0.05)
+        os.kill(pids[0], signal.SIGKILL)
+        thread.join()
+    r = box["r"]
+    same = _numbers(r).equals(_numbers(reference))
+    print(f"killed worker (pid {pids[0]}) after a third of the tasks: rows {len(r.tasks)} (undisturbed "
+          f"{n_tasks}), duplicated {int(r.tasks.duplicated(NUMBERS[:5]).sum())}, identical numbers: {same}")
+
+
+def rerun(root, st, cache, tmp: Path) -> None:
+    extra = StudyScenario(n_subjects=1, n_sessions=4, n_trials=st_trials(root))
+    make_study(tmp / "extra", extra)
+    shutil.copy(tmp / "extra" / "s01" / "day4.h5", Path(root) / "s01" / "day4.h5")
+    table = describe_study(root)
+    new = table.sessions.set_index(["subject", "session"]).loc[("s01", "day4"), "content_hash"]
+    tasks, _ = study_tasks(table, st)
+    own = sum(t.test.content_hash == new for t in tasks)
+    pooled = sum(t.test.content_hash != new and new in {r.content_hash for r in t.train} for t in tasks)
+    result = run_study(table, st, cache=cache, n_workers=2)
+    print(f"rerun with one new session: {result.n_computed} of {len(tasks)} tasks computed; the new session's own "
+          f"tasks {own}, pooled tasks whose draw now takes one of its trials {pooled} (expected {own + pooled})")
+
+
+def st_trials(root) -> int:
+    return int(describe_study(root).sessions["n_trials"].max())
+
+
+def main() -> None:
+    p = argparse.ArgumentParser()
+    p.add_argument("--subjects", type=int, default=40)
+    p.add_argument("--sessions", type=int, default=3)
+    p.add_argument("--trials", type=int, default=6)
+    p.add_argument("--analyses", default="sessions,days,subjects,sites")
+    p.add_argument("--stages", default="memory,speed,killed,rerun", help="which measurements to run")
+    a = p.parse_args()
+    stages = set(a.stages.split(","))
+    st = StudySettings.quick(analyses=tuple(a.analyses.split(",")))
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        root = tmp / "study"
+        make_study(root, StudyScenario(n_subjects=a.subjects, n_sessions=a.sessions, n_trials=a.trials))
+        print(f"study: {a.subjects} subjects x {a.sessions} sessions x {a.trials} trials; analyses {st.analyses}; "
+              f"{os.cpu_count()} cores")
+        if "memory" in stages:
+            memory(root, st)
+        if "speed" in stages:
+            reference = speed(root, st)
+        else:  # the undisturbed reference for the killed-worker run, without timing it
+            reference = run_study(root, st, n_workers=2)
+        if "killed" in stages:
+            killed(root, st, reference, tmp / "cache")
+        if "rerun" in stages:
+            rerun(root, st, tmp / "cache", tmp)
+
+
+if __name__ == "__main__":
+    main()

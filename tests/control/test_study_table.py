@@ -1,0 +1,153 @@
+"""The study description: folder and study file to a study table, and the bad inputs the issue names."""
+
+import shutil
+import warnings
+
+import numpy as np
+import pytest
+
+from stimsteer.control.cli import main
+from stimsteer.control.study import StudySettings, describe_study
+from stimsteer.demo_data.make_study import StudyScenario, make_study
+from stimsteer.sysid import InvalidParameterError, SessionError, StimsteerWarning, load_session, save_session
+
+SMALL = StudyScenario(n_subjects=2, n_sessions=2, n_trials=5, trial_samples=60)
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    root = tmp_path_factory.mktemp("study")
+    make_study(root, SMALL)
+    return root
+
+
+def _copy(study, tmp_path):
+    dst = tmp_path / "copy"
+    shutil.copytree(study, dst)
+    return dst
+
+
+def test_a_folder_becomes_one_row_per_session_with_the_hash_of_its_data(study):
+    table = describe_study(study)
+    s = table.sessions
+    assert list(s["subject"]) == ["s01", "s01", "s02", "s02"]
+    assert list(s["session"]) == ["day1", "day2", "day1", "day2"] and list(s["order"]) == [1, 2, 1, 2]
+    for r in s.itertuples():
+        assert r.content_hash == load_session(r.file).content_hash()  # the lazily streamed hash is the data's
+    assert table.excluded.empty and table.subjects == ["s01", "s02"]
+
+
+def test_a_study_file_names_sessions_groups_conditions_and_settings(study, tmp_path):
+    (tmp_path / "study.toml").write_text(f"""
+[study]
+name = "invented"
+[settings]
+past_steps = 4
+methods = ["indirect/arx", "direct/lsq"]
+[groups]
+s01 = "sham"
+[[sessions]]
+file = "{study}/s01/day2.h5"
+subject = "s01"
+session = "thursday"
+condition = "rest"
+[[sessions]]
+file = "{study}/s01/day1.h5"
+subject = "s01"
+session = "monday"
+order = 0
+""")
+    table = describe_study(tmp_path)
+    assert table.name == "invented" and table.settings["past_steps"] == 4
+    assert list(table.sessions["session"]) == ["monday", "thursday"]  # the given order wins over the listing
+    assert list(table.sessions["group"]) == ["sham", "sham"]
+    assert table.sessions.set_index("session").loc["thursday", "condition"] == "rest"
+
+
+def test_sessions_of_a_subject_with_different_channels_are_named_and_a_common_subset_accepted(study, tmp_path):
+    root = _copy(study, tmp_path)
+    s = load_session(root / "s01" / "day2.h5")
+    (root / "s01" / "day2.h5").unlink()
+    save_session(s.replace(y=s.y[:, :2], output_names=s.output_names[:2], output_units=s.output_units[:2]),
+                 root / "s01" / "day2.h5")
+    with pytest.raises(SessionError, match=r"subject s01 record different channels.*'ch3'.*common subset"):
+        describe_study(root)
+    table = describe_study(root, channels=["site1", "site2", "site3", "ch1", "ch2"])
+    assert len(table) == 4
+    with pytest.raises(SessionError, match=r"lacks the channels \['ch3'\]"):
+        describe_study(root, channels=["site1", "ch3"])
+
+
+def test_duplicate_sessions_are_refused_naming_both(study, tmp_path):
+    root = _copy(study, tmp_path)
+    shutil.copy(root / "s01" / "day1.h5", root / "s02" / "day3.h5")
+    with pytest.raises(SessionError, match=r"identical data.*s01/day1.*s02/day3"):
+        describe_study(root)
+
+
+def test_a_session_with_too_few_trials_is_excluded_by_name_never_silently(study, tmp_path):
+    root = _copy(study, tmp_path)
+    s = load_session(root / "s02" / "day2.h5")
+    (root / "s02" / "day2.h5").unlink()
+    save_session(s.select_trials([0, 1]), root / "s02" / "day2.h5")
+    with pytest.warns(StimsteerWarning, match=r"excluded for too few trials.*s02/day2"):
+        table = describe_study(root, min_trials=4)
+    assert list(table.excluded["session"]) == ["day2"] and "2 trials" in table.excluded["reason"].iloc[0]
+    assert len(table) == 3
+
+
+def test_a_bids_folder_without_stimulation_information_is_refused(tmp_path):
+    (tmp_path / "dataset_description.json").write_text('{"Name": "x", "BIDSVersion": "1.8.0"}')
+    (tmp_path / "sub-01" / "ses-1" / "ieeg").mkdir(parents=True)
+    with pytest.raises(SessionError, match="no stimulation information"):
+        describe_study(tmp_path)
+
+
+def test_the_cli_reports_a_bad_study_in_one_line_with_exit_code_2(tmp_path, capsys):
+    (tmp_path / "empty").mkdir()
+    code = main(["study", str(tmp_path / "empty"), "--out", str(tmp_path / "out"), "--no-progress"])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "holds no session files" in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_study_file_settings_with_an_unknown_key_are_refused(study, tmp_path):
+    (tmp_path / "study.toml").write_text(f'[settings]\nhorizon = 3\n[[sessions]]\nfile = "{study}/s01/day1.h5"\n'
+                                         'subject = "s01"\nsession = "a"\n')
+    code = main(["study", str(tmp_path), "--out", str(tmp_path / "out"), "--no-progress"])
+    assert code == 2
+
+
+@pytest.mark.parametrize("change, match", [(dict(offsets="maybe"), "offsets"), (dict(methods=["arx"]), "route/method"),
+                                           (dict(analyses=("sessions", "weeks")), "unknown analyses"),
+                                           (dict(n_splits=0), "n_splits")])
+def test_bad_study_settings_name_the_setting(change, match):
+    with pytest.raises(InvalidParameterError, match=match):
+        StudySettings(**change)
+
+
+def test_the_study_generator_is_seeded_and_subjects_differ(tmp_path):
+    a, b = make_study(tmp_path / "a", SMALL), make_study(tmp_path / "b", SMALL)
+    sa, sb = load_session(a[0]), load_session(b[0])
+    assert np.array_equal(sa.y, sb.y)
+    assert not np.allclose(load_session(a[0]).y, load_session(a[2]).y)
+
+
+def test_an_unreachable_scheduler_is_one_clear_error(study):
+    pytest.importorskip("distributed")
+    from stimsteer.control.study import run_study
+    from stimsteer.sysid import StimsteerError
+
+    with pytest.raises(StimsteerError, match=r"could not use a Dask scheduler at 'tcp://127.0.0.1:9'.*run locally"):
+        run_study(study, StudySettings.quick(scheduler_timeout_s=1.0, analyses=("sessions",)),
+                  scheduler="tcp://127.0.0.1:9")
+
+
+def test_an_unreadable_cache_entry_counts_as_missing(tmp_path):
+    from stimsteer.control.study import TaskCache
+
+    cache = TaskCache(tmp_path / "c")
+    cache.put("k1", {"r2_mean": 0.5})
+    cache.put("k2", {"error": "SessionError: x"})  # failed tasks are tried again, never cached
+    (tmp_path / "c" / "k3.json").write_text("{half")
+    assert cache.get("k1") == {"r2_mean": 0.5} and cache.get("k2") is None and cache.get("k3") is None
