@@ -20,6 +20,7 @@ import pandas as pd
 
 from .exceptions import InvalidParameterError
 from ._lagged import _Moments
+from .hankel import _single_blas_thread
 from .arx_regression import _Problem
 
 __all__ = ["AUTO", "DEFAULT_LAG_GRID", "DEFAULT_DELAY_GRID", "structure_candidates", "structure_table",
@@ -140,12 +141,18 @@ def select_structure(est, session, candidates, alphas):
     for f in folds:
         total.add(f.n, f.s, f.W)
     rows = []
-    for na, nb, d in candidates:
-        prob = _Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags)
-        n_coef = prob.x_idx.size + int(prob.fit_intercept)
-        table = est._cross_validate(prob, folds, total, alphas, k) if total.n >= n_coef else \
-            pd.DataFrame({"alpha": alphas, "mean_error": np.nan, "std_error": np.nan})
-        rows.append((na, nb, d, n_coef, table))
+    with _single_blas_thread():  # many small eigendecompositions: threads only wait on each other at this size
+        for na, nb, d in candidates:
+            rows.append(_scored(est, probe, n_lags, (na, nb, d), folds, total, alphas, k))
     structures = structure_table(rows)
     top = structures.loc[structures["selected"]].iloc[0]
     return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
+
+
+def _scored(est, probe, n_lags, structure, folds, total, alphas, k):
+    na, nb, d = structure
+    prob = _Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags)
+    n_coef = prob.x_idx.size + int(prob.fit_intercept)
+    table = est._cross_validate(prob, folds, total, alphas, k) if total.n >= n_coef else \
+        pd.DataFrame({"alpha": alphas, "mean_error": np.nan, "std_error": np.nan})
+    return na, nb, d, n_coef, table

@@ -58,6 +58,9 @@ class FitResult:
         k-step and free-run scores on the held-out trials.
     provenance : dict
         JSON-like record: session hash and description, settings, split, seed, horizon, stride, scores.
+    selection_notes : tuple of str
+        The estimator's remarks on its selection (``selection_notes_``: a grid edge that won, an order cap that
+        binds, an unstable order kept), printed by ``stimsteer fit``.
     """
 
     predictor: object
@@ -67,10 +70,11 @@ class FitResult:
     selection_table: pd.DataFrame
     heldout: Scores
     provenance: dict
+    selection_notes: tuple = ()
 
 
 def _selection_table(predictor) -> pd.DataFrame:
-    for attr in ("cv_table_", "order_table_", "selection_table_"):
+    for attr in ("structure_table_", "cv_table_", "order_table_", "selection_table_"):
         table = getattr(predictor, attr, None)
         if isinstance(table, pd.DataFrame):
             return table
@@ -208,4 +212,7 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
         "horizon_steps": horizon, "stride_steps": int(heldout.stride_steps), "heldout": heldout.to_dict(),
         "output_offset_fraction": offset,
     }
-    return FitResult(predictor, str(route), str(method), split, _selection_table(predictor), heldout, provenance)
+    notes = tuple(str(n) for n in getattr(predictor, "selection_notes_", ()) or ())
+    provenance["selection_notes"] = list(notes)
+    return FitResult(predictor, str(route), str(method), split, _selection_table(predictor), heldout, provenance,
+                     notes)
