@@ -250,6 +250,20 @@ class _DirectPredictor(BasePredictor):
         return PredictionMaps(P=P, F=np.ascontiguousarray(Gf[:, :m * horizon]), c=c, past_steps=past,
                               horizon_steps=horizon)
 
+    @property
+    def chain_spectral_radius_(self) -> float | None:
+        """Spectral radius of the zero-input map from one chained block's past window to the next.
+
+        Predictions longer than ``max_horizon_steps_`` chain blocks; they stay bounded only when it is below 1
+        (:func:`stimsteer.sysid.chaining.chain_radius`). None for a predictor without linear maps (ℓ1).
+        """
+        check_fitted(self, "past_steps_")
+        if getattr(self, "_chain_radius", None) is None:
+            from ..chaining import chain_radius
+
+            self._chain_radius = chain_radius(self)
+        return self._chain_radius
+
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
         check_fitted(self, "past_steps_")
