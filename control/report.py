@@ -79,6 +79,9 @@ def _verdict(result: BenchResult, metric: str, a: str, b: str, sweep="base", val
     _name, fmt, unit = _spec(result, metric)
     diff = f"{fmt.format(r['mean_difference'])} [{fmt.format(r['ci_low'])}, {fmt.format(r['ci_high'])}]"
     diff += f" {unit}" if unit else ""
+    if r["better"] == "equivalent":
+        return (f"equivalent (direct − indirect = {diff}; below the practical margin: |ΔR²| 1e-3, "
+                "0.1 VAF point, or 1 % of the value)")
     if r["better"] == "neither":
         why = "too few splits for an interval" if not np.isfinite(r["ci_low"]) else "the interval contains zero"
         return f"no clear winner (direct − indirect = {diff}; {why})"
@@ -91,7 +94,7 @@ def _winner(result: BenchResult, metric: str, a: str, b: str) -> str:
     if rows.empty:
         return ""
     better = rows.iloc[0]["better"]
-    return "no clear winner" if better == "neither" else {"indirect": a, "direct": b}[better]
+    return {"neither": "no clear winner", "equivalent": "equivalent", "indirect": a, "direct": b}[better]
 
 
 def _glance_line(result: BenchResult, a: str, b: str) -> str:
@@ -102,7 +105,8 @@ def _glance_line(result: BenchResult, a: str, b: str) -> str:
         items += [("tracking_rms", "closed-loop tracking"), ("energy_ua2", "stimulation energy")]
     items.append(("fit_s", "fit time"))
     parts = [f"{what}: {w}" for metric, what in items if (w := _winner(result, metric, a, b))]
-    return f"At a glance ({a} vs {b}; better = the paired 95 % interval excludes zero): " + "; ".join(parts) + "."
+    return (f"At a glance ({a} vs {b}; better = the paired 95 % interval excludes zero and the difference exceeds "
+            "the practical margin, |ΔR²| 1e-3 or else 1 % of the value): " + "; ".join(parts) + ".")
 
 
 def _pair_line(result, metric, a, b, what) -> str:

@@ -19,7 +19,7 @@ import pandas as pd
 from ...sysid import Session, StimsteerError, freerun_scores, kstep_scores
 from ...sysid._records import window_stride
 from .closed_loop import _channel_index, _control, _output_stats, _rerecord
-from .tasks import _cached, _Context, _fit, _Task
+from .tasks import _cached, _Context, _fit, _seed, _Task
 
 
 def _run_task(ctx: _Context, task: _Task) -> dict:
@@ -60,11 +60,44 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     predict_s = time.perf_counter() - t0
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
            "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
+    if _is_base(st, setting) and sum(m.route == spec.route for m in st.methods) > 1:
+        out["inner_r2"] = _inner_score(spec, train, st, H, task.split_index)
     if task.keep_traces:
         out["prediction_trace"] = _prediction_trace(predictor, test, H, _trace_channels(ctx, train))
     if st.control is not None:
         out.update(_control(ctx, task, predictor, session))
     return out
+
+
+def _is_base(st, setting) -> bool:
+    return setting.n_train is None and setting.noise_scale == 1.0 and setting.horizon_steps == st.horizon_steps
+
+
+#: Share of a split's training trials held out to choose each route's best method (nested inside the training).
+_INNER_FRACTION = 0.25
+
+
+def _inner_score(spec, train: Session, st, H: int, split_index: int) -> float:
+    """Mean k-step R² of ``spec`` fitted on part of the training trials and scored on the rest (NaN if impossible).
+
+    The inner split depends on the split only, so every method of a route is judged on the same trials; the
+    held-out trials of the split are never touched.
+    """
+    n = train.n_trials
+    n_val = max(1, int(round(_INNER_FRACTION * n)))
+    if n - n_val < 2:
+        return float("nan")
+    perm = np.random.default_rng(_seed(st.seed, 4, split_index)).permutation(n)
+    val, fit_on = sorted(int(i) for i in perm[:n_val]), sorted(int(i) for i in perm[n_val:])
+    try:
+        predictor = _fit(spec, train.select_trials(fit_on), st.past_steps, H)
+        inner = train.select_trials(val)
+        past = int(predictor.past_steps_)
+        ks = kstep_scores(predictor, inner, horizon_steps=H,
+                          stride_steps=window_stride(inner, past, H, st.max_windows))
+    except StimsteerError:
+        return float("nan")
+    return float(ks.kstep["r2"].mean())
 
 
 def _selection(predictor) -> str:
