@@ -95,7 +95,7 @@ class RidgeArx(BasePredictor):
     output_lags_, input_lags_, delay_samples_ : int
         The lag structure the fitted coefficients have (the settings at ``fit``, or the chosen ones).
     structure_table_ : pandas.DataFrame
-        One row per candidate structure, best first: ``output_lags``, ``input_lags``, ``delay_samples``,
+        One row per candidate structure, the selected one first, then the others best first: ``output_lags``, ``input_lags``, ``delay_samples``,
         ``n_coefficients``, ``alpha`` (its best strength), ``mean_error``, ``std_error``, ``selected``. All
         candidates are scored on the rows of the longest structure, so their errors compare like for like; the
         chosen structure is then refitted on all its own rows. One row when nothing is "auto".

@@ -73,7 +73,8 @@ def structure_candidates(est) -> tuple[list, dict]:
 
 
 def structure_table(rows: list) -> pd.DataFrame:
-    """One row per structure: its best strength's mean and spread of the validation error, sorted best first.
+    """One row per structure: its best strength's mean and spread of the validation error; the selected one first,
+    then the others best first.
 
     ``rows`` holds ``(na, nb, d, n_coef, cv_table)`` with ``cv_table`` as :meth:`RidgeArx._cross_validate` makes.
     """
@@ -95,7 +96,8 @@ def structure_table(rows: list) -> pd.DataFrame:
     near = frame["mean_error"].to_numpy() <= best + max(STRUCTURE_TOLERANCE * best, STRUCTURE_FLOOR)
     pick = int(np.flatnonzero(near)[np.argmin(frame["n_coefficients"].to_numpy()[near])]) if np.isfinite(best) else 0
     frame["selected"] = np.arange(len(frame)) == pick
-    return frame
+    # the selected structure first, then the others best first
+    return pd.concat([frame.iloc[[pick]], frame.drop(index=pick)], ignore_index=True)
 
 
 def edge_notes(chosen: dict, grids: dict, alpha: float, alphas: np.ndarray) -> tuple:

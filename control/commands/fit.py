@@ -78,7 +78,8 @@ def _selection_text(result) -> str:
         shown = table.iloc[sorted(keep)]
     lines = [shown.to_string(index=False, float_format=lambda v: f"{v:.4g}")]
     if len(shown) < len(table):
-        lines.append(f"({len(shown)} of {len(table)} candidates shown, best first; all are in the model file)")
+        lines.append(f"({len(shown)} of {len(table)} candidates shown, the selected one first; all are in the model "
+                     "file)")
     lines += [f"note: {n}" for n in result.selection_notes]
     return "\n".join(lines)
 
