@@ -153,7 +153,7 @@ def _method_row(name, make, s, route, method, settings, tmp):
     loaded, _prov = load_predictor(path)
     again = float(freerun_scores(loaded, s.select_trials(res.split.test)).freerun["vaf"].mean())
     peak, notes = _long_pattern_peak(make, res, s)
-    return res, vaf, again - vaf, peak, fit_s, bool(notes)
+    return res, vaf, again - vaf, peak, fit_s, any("unstable" in n for n in notes)
 
 
 def main() -> None:
@@ -170,7 +170,7 @@ def main() -> None:
                     ref, order = _reference(s, list(res.split.train), list(res.split.test),
                                             int(res.predictor.past_steps_))
                 sel = _selection(res.predictor)
-                flag = " (warned)" if cautioned else ""
+                flag = " (predict warned: unstable chain)" if cautioned else ""
                 print(f"{name:<20}{method:<10}{vaf:8.2f}{ref:8.2f}{vaf - ref:8.2f}{peak:8.2f}{diff:10.1e}"
                       f"{fit_s:7.2f}  {sel}{flag}")
             print(f"{'':<20}reference ARX orders (na, nb, delay) = {order}")
@@ -180,7 +180,7 @@ def _selection(p) -> str:
     if hasattr(p, "structure_table_"):
         return f"na={p.output_lags_} nb={p.input_lags_} d={p.delay_samples_} alpha={p.alpha_:.0e}"
     if hasattr(p, "order_"):
-        return f"order={p.order_}" + (" (unstable)" if not p.is_stable_ else "")
+        return f"order={p.order_} D={'fit' if p.feedthrough_ else '0'}" + (" (unstable)" if not p.is_stable_ else "")
     if hasattr(p, "lambda_g_relative_"):
         return f"lambda_g={p.lambda_g_relative_:.0e} chain rho={p.chain_spectral_radius_:.3f}"
     return f"alpha={p.alpha_:.0e} chain rho={p.chain_spectral_radius_:.3f}"

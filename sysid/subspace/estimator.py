@@ -19,7 +19,7 @@ from ..statespace import StateSpaceModel
 from .gram import _Layout, _hankel_gram, _partition
 from .heldout import _heldout_error
 from .projection import _Projection, _RTOL, _cond_text, _fit_order
-from .selection import choose_stable, grow_cap
+from .selection import choose_stable, order_tables
 
 __all__ = ["SubspaceId"]
 
@@ -63,9 +63,10 @@ class SubspaceId(BasePredictor):
         error is lowest at it, and a cap that still binds is reported in ``selection_notes_``.
     weighting : {"n4sid", "moesp", "cva"}, default "n4sid"
         Row/column weighting of the oblique projection before the SVD.
-    feedthrough : bool, default False
-        Estimate a direct term ``D``; default fixes ``D = 0`` (stimulation does not reach the recording in the
-        same sample).
+    feedthrough : bool or "auto", default "auto"
+        Estimate a direct term ``D`` (True) or fix ``D = 0`` (False: stimulation does not reach the recording in
+        the same sample); "auto" estimates it only when that lowers the best held-out error by more than the
+        order-selection tolerance (``feedthrough_`` says which).
     order_selection : dict or None, default None
         ``holdout_fraction`` (0.25): share of the training trials held out for the order check (with a single
         trial, the last share of each segment); ``tolerance`` (0.05): relative excess of held-out error over the
@@ -147,7 +148,7 @@ class SubspaceId(BasePredictor):
     storage_kind = "subspace"
 
     def __init__(self, *, past_steps=10, future_steps=10, order=None, max_order=None, weighting="n4sid",
-                 feedthrough=False, order_selection=None, centre_outputs=False):
+                 feedthrough="auto", order_selection=None, centre_outputs=False):
         self.past_steps = past_steps
         self.future_steps = future_steps
         self.order = order
@@ -169,8 +170,8 @@ class SubspaceId(BasePredictor):
         f = self._int("future_steps", self.future_steps, 2)
         if self.weighting not in _WEIGHTINGS:
             raise InvalidParameterError(f"weighting must be one of {list(_WEIGHTINGS)}; got {self.weighting!r}.")
-        if not isinstance(self.feedthrough, (bool, np.bool_)):
-            raise InvalidParameterError(f"feedthrough must be True or False; got {self.feedthrough!r}.")
+        if not (isinstance(self.feedthrough, (bool, np.bool_)) or self.feedthrough == "auto"):
+            raise InvalidParameterError(f"feedthrough must be True, False or 'auto'; got {self.feedthrough!r}.")
         m, p = int(session.n_inputs), int(session.n_outputs)
         if m < 1:
             raise SessionError("subspace identification needs at least one input channel; the session has none.")
@@ -248,13 +249,12 @@ class SubspaceId(BasePredictor):
         sv = proj_all.singular_values
         notes = []
         cfg["top"] = self._supported(sv, proj_fit.singular_values, cfg)
-        table = self._order_table(proj_fit, S_check, sv, cfg, 1)
-        table = grow_cap(self, table, proj_fit, S_check, sv, cfg, notes)
+        table = order_tables(self, proj_fit, S_check, sv, cfg, notes)
         gap = int(table["order"].iloc[int(np.argmax(table["gap_ratio"].to_numpy()))])
         if cfg["order"] is not None:
-            order, mats = cfg["order"], _fit_order(proj_all, cfg["order"], bool(self.feedthrough))
+            order, mats = cfg["order"], _fit_order(proj_all, cfg["order"], self.feedthrough_)
         else:
-            order, mats = choose_stable(table, gap, cfg["tolerance"], proj_all, bool(self.feedthrough), notes)
+            order, mats = choose_stable(table, gap, cfg["tolerance"], proj_all, self.feedthrough_, notes)
         table["selected"] = table["order"] == order
         self.order_gap_ = gap
         self.selection_notes_ = tuple(notes)
@@ -330,7 +330,7 @@ class SubspaceId(BasePredictor):
         rows = []
         floor = np.finfo(float).eps * max(float(sv[0]), np.finfo(float).tiny)
         for n in range(start, cfg["top"] + 1):
-            mats = _fit_order(proj_fit, n, bool(self.feedthrough))
+            mats = _fit_order(proj_fit, n, self.feedthrough_)
             rows.append({
                 "order": n,
                 "singular_value": float(sv[n - 1]),
@@ -429,7 +429,8 @@ class SubspaceId(BasePredictor):
         check_fitted(self, "model_")
         md = self.model_
         params = {k: v for k, v in self.get_params().items() if v is not None}
-        params["feedthrough"] = int(bool(params["feedthrough"]))
+        if not isinstance(params["feedthrough"], str):
+            params["feedthrough"] = int(bool(params["feedthrough"]))
         params["centre_outputs"] = int(bool(params["centre_outputs"]))
         return {
             "params": params, "output_offset": np.asarray(self.output_offset_, dtype=np.float64),
@@ -440,6 +441,7 @@ class SubspaceId(BasePredictor):
                       "input_units": json.dumps(list(md.input_units)),
                       "output_units": json.dumps(list(md.output_units))},
             "selection_notes": "\n".join(getattr(self, "selection_notes_", ())),
+            "feedthrough": int(self.feedthrough_),
             "order": self.order_, "order_gap": self.order_gap_, "singular_values": self.singular_values_,
             "order_table": {c: self.order_table_[c].to_numpy() for c in self.order_table_.columns},
             "process_cov": self.process_cov_, "measurement_cov": self.measurement_cov_,
@@ -451,7 +453,8 @@ class SubspaceId(BasePredictor):
     def from_state(cls, state: dict) -> "SubspaceId":
         """Rebuild a fitted estimator from :meth:`to_state`."""
         params = dict(state["params"])
-        params["feedthrough"] = bool(params.get("feedthrough", False))
+        ft = params.get("feedthrough", False)
+        params["feedthrough"] = ft if isinstance(ft, str) else bool(ft)
         params["centre_outputs"] = bool(params.get("centre_outputs", False))
         est = cls(**params)
         md = state["model"]
@@ -474,6 +477,7 @@ class SubspaceId(BasePredictor):
         for col in ("stable", "selected"):
             table[col] = table[col].astype(bool)
         est.order_table_ = table
+        est.feedthrough_ = bool(int(state.get("feedthrough", bool(np.any(est.model_.D != 0)))))
         est.selection_notes_ = tuple(n for n in str(state.get("selection_notes", "")).split("\n") if n)
         est.process_cov_ = np.asarray(state["process_cov"], dtype=np.float64)
         est.measurement_cov_ = np.asarray(state["measurement_cov"], dtype=np.float64)

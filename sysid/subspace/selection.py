@@ -16,7 +16,7 @@ import pandas as pd
 
 from .projection import _fit_order
 
-__all__ = ["choose_stable", "grow_cap"]
+__all__ = ["choose_stable", "grow_cap", "order_tables"]
 
 
 def grow_cap(est, table, proj_fit, S_check, sv, cfg, notes):
@@ -62,3 +62,23 @@ def choose_stable(table: pd.DataFrame, gap: int, tolerance: float, proj_all, fee
                  f"{[int(o) for o in orders[ok]]}); the unstable order {n} was kept. Its free-run predictions "
                  "grow without bound; try longer past/future windows or check for closed-loop recording.")
     return n, fits[n]
+
+
+def order_tables(est, proj_fit, S_check, sv, cfg, notes):
+    """The order table, with or without a direct term (both for ``feedthrough="auto"``); sets ``feedthrough_``.
+
+    With "auto", the direct term is kept only when it lowers the best held-out error by more than the tolerance
+    (a simpler model wins a near tie, as for the order).
+    """
+    found = {}
+    for ft in (False, True) if isinstance(est.feedthrough, str) else (bool(est.feedthrough),):
+        est.feedthrough_ = ft
+        c, n = dict(cfg), []
+        found[ft] = (grow_cap(est, est._order_table(proj_fit, S_check, sv, c, 1), proj_fit, S_check, sv, c, n), c, n)
+    best = {ft: float(t["heldout_error"].min()) for ft, (t, _c, _n) in found.items()}
+    # the absolute floor keeps exact data (errors at rounding level either way) without a direct term
+    est.feedthrough_ = bool(True in best and best[True] < best.get(False, np.inf) * (1.0 - cfg["tolerance"]) - 1e-12)
+    table, c, n = found[est.feedthrough_]
+    cfg.update(c)
+    notes.extend(n)
+    return table

@@ -378,7 +378,7 @@ def test_state_round_trip_restores_an_equivalent_predictor(rng):
         ({"past_steps": True}, r"past_steps must be an integer >= 1; got True"),
         ({"future_steps": 1}, r"future_steps must be an integer >= 2; got 1"),
         ({"weighting": "pca"}, r"weighting must be one of \['n4sid', 'moesp', 'cva'\]; got 'pca'"),
-        ({"feedthrough": "no"}, r"feedthrough must be True or False; got 'no'"),
+        ({"feedthrough": "no"}, r"feedthrough must be True, False or 'auto'; got 'no'"),
         ({"order": 0}, r"order must be an integer >= 1; got 0"),
         ({"order": 9}, r"order 9 is above the largest possible order 8 = min\(p \(f - 1\), p i\)"),
         ({"max_order": 9}, r"max_order 9 is above the largest possible order 8"),
@@ -554,3 +554,18 @@ def test_centre_outputs_must_be_a_bool(rng):
     with pytest.raises(InvalidParameterError, match="centre_outputs must be True or False"):
         SubspaceId(past_steps=4, future_steps=4, centre_outputs="yes").fit(_session(rng))
 
+
+
+def test_feedthrough_auto_estimates_a_direct_term_only_when_held_out_error_needs_it(rng):
+    # y_k = 0.6 y_{k-1} + 0.8 u_k + ... has a direct term; the demo-like system without one keeps D = 0
+    u = rng.standard_normal((1200, 1))
+    y = np.zeros_like(u)
+    for i in range(6):
+        for k in range(i * 200 + 1, (i + 1) * 200):
+            y[k] = 0.6 * y[k - 1] + 0.8 * u[k] + 0.3 * u[k - 1]
+    s = Session(u=u, y=y + 0.01 * rng.standard_normal(y.shape), sample_rate_hz=100.0,
+                trials=[(i * 200, (i + 1) * 200) for i in range(6)])
+    est = SubspaceId(past_steps=5, future_steps=5).fit(s)
+    assert est.feedthrough_ is True and abs(est.model_.D[0, 0] - 0.8) < 0.02
+    plain = SubspaceId(past_steps=5, future_steps=5).fit(_session(rng, noise=0.05))
+    assert plain.feedthrough_ is False and np.all(plain.model_.D == 0)
