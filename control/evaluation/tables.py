@@ -64,7 +64,8 @@ def _with_best(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
 
     The best method of a split is the one with the highest ``inner_r2`` (mean k-step R² of a fit on part of the
     split's training trials, scored on the rest; nested, the held-out trials untouched); its rows at every setting
-    of that split are repeated under :func:`best_label`, with ``chosen`` naming the method.
+    of that split are repeated under :func:`best_label`, with ``chosen`` naming the method. Only that method's
+    tasks run the closed loop, so the closed-loop figures of a route are those of its best method.
     """
     if "inner_r2" not in tasks.columns:
         return tasks

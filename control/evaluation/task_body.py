@@ -60,13 +60,36 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     predict_s = time.perf_counter() - t0
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
            "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
-    if _is_base(st, setting) and sum(m.route == spec.route for m in st.methods) > 1:
-        out["inner_r2"] = _inner_score(spec, train, st, H, task.split_index)
+    choice = _route_choice(ctx, task)
+    if choice is not None and spec.label in choice:
+        out["inner_r2"] = choice[spec.label]
     if task.keep_traces:
         out["prediction_trace"] = _prediction_trace(predictor, test, H, _trace_channels(ctx, train))
-    if st.control is not None:
+    # closed loop with each route's representative only: every method is fitted and scored, the route is steered
+    # by its best method on the training trials (which keeps the benchmark's cost that of one method per route)
+    if st.control is not None and (choice is None or choice.get(spec.route, spec.label) == spec.label):
         out.update(_control(ctx, task, predictor, session))
     return out
+
+
+def _route_choice(ctx: _Context, task: _Task):
+    """Inner scores of every method of the split (by label) and each route's best label (by route); None when no
+    route has several methods. Computed once per split and process (deterministic, training trials only)."""
+    st = ctx.settings
+    if all(sum(m.route == r for m in st.methods) < 2 for r in ("indirect", "direct")):
+        return None
+
+    def make():
+        train = ctx.session.select_trials(task.split.train)
+        scores = {m.label: _inner_score(m, train, st, st.horizon_steps, task.split_index) for m in st.methods}
+        best = {}
+        for m in st.methods:
+            top = best.get(m.route)
+            if top is None or (np.nan_to_num(scores[m.label], nan=-np.inf) > np.nan_to_num(scores[top], nan=-np.inf)):
+                best[m.route] = m.label
+        return {**scores, **best}
+
+    return _cached((ctx.token, "route choice", task.split_index), make)
 
 
 def _is_base(st, setting) -> bool:
