@@ -51,7 +51,7 @@ def test_split_is_seeded_and_fit_uses_training_trials_only(sess, fitted):
     held = kstep_scores(alone, sess.select_trials(split.test), horizon_steps=4)
     pd.testing.assert_frame_equal(fitted.heldout.kstep, held.kstep)
     assert not fitted.heldout.freerun.empty
-    assert fitted.selection_table is fitted.predictor.cv_table_
+    assert fitted.selection_table is fitted.predictor.structure_table_  # lags fixed: the delay is chosen
 
 
 def test_provenance_records_the_data_settings_and_split(sess, fitted):
