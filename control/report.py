@@ -26,6 +26,7 @@ import pandas as pd
 
 from ..sysid.caution import CAUTION
 from .evaluation import BenchResult, t_interval
+from .evaluation.tables import best_label
 
 __all__ = ["summarize", "report_html", "results_json", "bench_run_id", "REPORT_FILE", "RESULTS_FILE"]
 
@@ -189,6 +190,9 @@ def summarize(result: BenchResult) -> list[str]:
     H = st.horizon_steps
     ms = 1e3 * H / result.provenance["session"]["sample_rate_hz"]
     pairs = [(a, b) for a in result.labels("indirect") for b in result.labels("direct")]
+    best = (best_label("indirect"), best_label("direct"))
+    if not result.comparison.empty and best[0] in set(result.comparison["indirect"]):
+        pairs = [best] + pairs  # each route by its best method on the training trials, first
     lines = [_glance_line(result, a, b) for a, b in pairs] + [_data_line(result)]
     for a, b in pairs:
         lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead"))
