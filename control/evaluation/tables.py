@@ -158,19 +158,21 @@ def _comparison(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
         values = sorted(sub[col].unique()) if col else [None]
         for value in values:
             part = sub if col is None else sub[sub[col] == value]
+            wides = {metric: part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+                     for metric in METRICS if metric in part.columns}  # once per part, not per pair
             for a in ind:
                 for b in dirs:
-                    rows += _paired(part, a, b, sweep, value)
+                    rows += _paired(wides, a, b, sweep, value)
     return pd.DataFrame(rows, columns=["sweep", "value", "indirect", "direct", "metric", "n", "mean_difference",
                                        "ci_low", "ci_high", "better"])
 
 
-def _paired(part, a, b, sweep, value) -> list:
+def _paired(wides, a, b, sweep, value) -> list:
     rows = []
     for metric, higher in METRICS.items():
-        if metric not in part.columns:
+        if metric not in wides:
             continue
-        wide = part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+        wide = wides[metric]
         if a not in wide or b not in wide:
             continue
         d = (wide[b] - wide[a]).dropna()
