@@ -34,10 +34,11 @@ def _keys(st: BenchSettings, task: _Task) -> dict:
 
 
 def _task_row(st: BenchSettings, task: _Task, res: dict) -> dict:
-    row = {**_keys(st, task), "status": "failed" if "error" in res else "ok", "error": res.get("error", ""),
+    status = "failed" if "error" in res else "skipped" if "skipped" in res else "ok"
+    row = {**_keys(st, task), "status": status, "error": res.get("error", res.get("skipped", "")),
            "full_train": task.setting.n_train is None, "warnings": " | ".join(res.get("warnings", [])),
            "total_s": res["total_s"]}
-    if "error" in res:
+    if status != "ok":
         return row
     ks, fr = res["kstep"], res["freerun"]
     H = task.setting.horizon_steps
@@ -93,7 +94,7 @@ def _assemble(st: BenchSettings, tasks, results) -> dict:
     for task, res in zip(tasks, results):
         keys = _keys(st, task)
         rows.append(_task_row(st, task, res))
-        if "error" in res:
+        if "error" in res or "skipped" in res:
             continue
         pred.append(_prediction_rows(keys, res))
         if res.get("prediction_trace") is not None and not res["prediction_trace"].empty:

@@ -48,6 +48,10 @@ def _session_at(ctx: _Context, scale: float) -> Session:
 def _task_body(ctx: _Context, task: _Task) -> dict:
     st = ctx.settings
     spec, setting = st.methods[task.method_index], task.setting
+    choice = _route_choice(ctx, task)
+    if choice is not None and not _is_base(st, setting) and choice.get(spec.route, spec.label) != spec.label:
+        # the sweeps compare the routes by their representatives; every method is fitted and scored at the base
+        return {"skipped": f"not {spec.route}'s best method on the training trials of split {task.split_index}"}
     session = _session_at(ctx, setting.noise_scale)
     train, test = session.select_trials(task.train), session.select_trials(task.split.test)
     t0 = time.perf_counter()
@@ -60,7 +64,6 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     predict_s = time.perf_counter() - t0
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
            "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
-    choice = _route_choice(ctx, task)
     if choice is not None and spec.label in choice:
         out["inner_r2"] = choice[spec.label]
     if task.keep_traces:

@@ -384,3 +384,19 @@ def test_recorded_limits_span_the_recorded_inputs_and_zero():
     lim = recorded_limits(s)
     assert lim.amplitude_min_ua.tolist() == [0.0, 0.0] and lim.amplitude_max_ua.tolist() == [2.0, 4.0]
     assert lim.input_names == ("a", "b")
+
+
+def test_sweeps_run_only_each_routes_best_method_and_the_base_point_runs_every_method(seed):
+    session, plant = _session(seed)
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}), MethodSpec("indirect", "subspace"),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}), MethodSpec("direct", "hankel"))
+    r = run_bench(session, _settings(methods=methods, control=None, train_trials=(2,)), plant=plant, n_workers=1,
+                  progress=False)
+    t = r.tasks
+    assert (t.loc[t["full_train"], "status"] == "ok").all()  # every method fitted and scored at the base point
+    sweep = t[~t["full_train"]]
+    assert set(sweep["status"]) == {"ok", "skipped"} and r.failures.empty
+    for split, g in sweep.groupby("split"):
+        base = t[t["full_train"] & (t["split"] == split)]
+        chosen = {base.loc[b["inner_r2"].idxmax(), "label"] for _, b in base.groupby("route")}
+        assert set(g.loc[g["status"] == "ok", "label"]) == chosen
