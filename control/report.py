@@ -26,6 +26,7 @@ import pandas as pd
 
 from ..sysid.caution import CAUTION
 from .evaluation import BenchResult, t_interval
+from .evaluation.tables import best_label
 
 __all__ = ["summarize", "report_html", "results_json", "bench_run_id", "REPORT_FILE", "RESULTS_FILE"]
 
@@ -79,6 +80,9 @@ def _verdict(result: BenchResult, metric: str, a: str, b: str, sweep="base", val
     _name, fmt, unit = _spec(result, metric)
     diff = f"{fmt.format(r['mean_difference'])} [{fmt.format(r['ci_low'])}, {fmt.format(r['ci_high'])}]"
     diff += f" {unit}" if unit else ""
+    if r["better"] == "equivalent":
+        return (f"equivalent (direct − indirect = {diff}; below the practical margin: |ΔR²| 1e-3, "
+                "0.1 VAF point, or 1 % of the value)")
     if r["better"] == "neither":
         why = "too few splits for an interval" if not np.isfinite(r["ci_low"]) else "the interval contains zero"
         return f"no clear winner (direct − indirect = {diff}; {why})"
@@ -91,7 +95,7 @@ def _winner(result: BenchResult, metric: str, a: str, b: str) -> str:
     if rows.empty:
         return ""
     better = rows.iloc[0]["better"]
-    return "no clear winner" if better == "neither" else {"indirect": a, "direct": b}[better]
+    return {"neither": "no clear winner", "equivalent": "equivalent", "indirect": a, "direct": b}[better]
 
 
 def _glance_line(result: BenchResult, a: str, b: str) -> str:
@@ -102,7 +106,8 @@ def _glance_line(result: BenchResult, a: str, b: str) -> str:
         items += [("tracking_rms", "closed-loop tracking"), ("energy_ua2", "stimulation energy")]
     items.append(("fit_s", "fit time"))
     parts = [f"{what}: {w}" for metric, what in items if (w := _winner(result, metric, a, b))]
-    return f"At a glance ({a} vs {b}; better = the paired 95 % interval excludes zero): " + "; ".join(parts) + "."
+    return (f"At a glance ({a} vs {b}; better = the paired 95 % interval excludes zero and the difference exceeds "
+            "the practical margin, |ΔR²| 1e-3 or else 1 % of the value): " + "; ".join(parts) + ".")
 
 
 def _pair_line(result, metric, a, b, what) -> str:
@@ -185,6 +190,9 @@ def summarize(result: BenchResult) -> list[str]:
     H = st.horizon_steps
     ms = 1e3 * H / result.provenance["session"]["sample_rate_hz"]
     pairs = [(a, b) for a in result.labels("indirect") for b in result.labels("direct")]
+    best = (best_label("indirect"), best_label("direct"))
+    if not result.comparison.empty and best[0] in set(result.comparison["indirect"]):
+        pairs = [best] + pairs  # each route by its best method on the training trials, first
     lines = [_glance_line(result, a, b) for a, b in pairs] + [_data_line(result)]
     for a, b in pairs:
         lines.append(_pair_line(result, "r2_last", a, b, f"Prediction {H} steps ({ms:.0f} ms) ahead"))

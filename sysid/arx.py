@@ -30,6 +30,8 @@ from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
 from .arx_statespace import arx_to_state_space
+from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
+    structure_candidates, structure_table
 
 __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
 
@@ -45,12 +47,18 @@ class RidgeArx(BasePredictor):
 
     Parameters
     ----------
-    output_lags : int, default 2
-        ``na``, number of past outputs ``y_{k-1} … y_{k-na}`` (0 gives a finite-impulse-response model).
-    input_lags : int, default 2
-        ``nb``, number of inputs ``u_{k-d} … u_{k-d-nb+1}``; at least 1.
-    delay_samples : int, default 1
-        ``d``, the input delay in samples; 0 allows direct feed-through from ``u_k`` to ``y_k``.
+    output_lags : int or "auto", default "auto"
+        ``na``, number of past outputs ``y_{k-1} … y_{k-na}`` (0 gives a finite-impulse-response model); "auto"
+        chooses it from ``lag_grid`` by cross-validation (see :mod:`stimsteer.sysid.arx_structure`).
+    input_lags : int or "auto", default "auto"
+        ``nb``, number of inputs ``u_{k-d} … u_{k-d-nb+1}``; at least 1; "auto" chooses it from ``lag_grid``.
+    delay_samples : int or "auto", default "auto"
+        ``d``, the input delay in samples; 0 allows direct feed-through from ``u_k`` to ``y_k``; "auto" chooses
+        it from ``delay_grid``.
+    lag_grid : sequence of int, default (1, 2, 3, 4, 6, 8)
+        Candidate lag counts for the lags set to "auto".
+    delay_grid : sequence of int, default (0, 1, 2, 3)
+        Candidate delays when ``delay_samples="auto"``.
     alphas : sequence of float, default ``10**-8 … 10**0`` (9 values)
         Ridge strengths to compare by cross-validation; each >= 0 (see Notes for the scale).
     n_folds : int, default 5
@@ -85,7 +93,14 @@ class RidgeArx(BasePredictor):
     cv_scheme_ : str
         ``"trials"`` or ``"contiguous blocks (one trial)"``.
     output_lags_, input_lags_, delay_samples_ : int
-        The lag structure the fitted coefficients have (the settings at ``fit``).
+        The lag structure the fitted coefficients have (the settings at ``fit``, or the chosen ones).
+    structure_table_ : pandas.DataFrame
+        One row per candidate structure, the selected one first, then the others best first: ``output_lags``, ``input_lags``, ``delay_samples``,
+        ``n_coefficients``, ``alpha`` (its best strength), ``mean_error``, ``std_error``, ``selected``. All
+        candidates are scored on the rows of the longest structure, so their errors compare like for like; the
+        chosen structure is then refitted on all its own rows. One row when nothing is "auto".
+    selection_notes_ : tuple of str
+        Chosen values on an edge of their grid, with the advice to widen it.
     input_names_, output_names_, input_units_, output_units_ : tuple of str
     sample_rate_hz_ : float
 
@@ -123,7 +138,7 @@ class RidgeArx(BasePredictor):
     >>> rng = np.random.default_rng(0)
     >>> u = rng.standard_normal((400, 1)); y = np.zeros((400, 1))
     >>> for k in range(1, 400): y[k] = 0.5 * y[k - 1] + 2.0 * u[k - 1]
-    >>> arx = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(Session(u=u, y=y, sample_rate_hz=100.0))
+    >>> arx = RidgeArx(output_lags=1, input_lags=1, delay_samples=1, alphas=[0.0]).fit(Session(u=u, y=y, sample_rate_hz=100.0))
     >>> np.round(arx.coef_, 8).tolist()
     [[0.5, 2.0]]
     """
@@ -131,28 +146,29 @@ class RidgeArx(BasePredictor):
     storage_kind = "ridge_arx"
     supports_streaming = True
 
-    def __init__(self, *, output_lags=2, input_lags=2, delay_samples=1, alphas=_DEFAULT_ALPHAS, n_folds=5,
-                 chunk_samples=16384, fit_intercept=True):
+    def __init__(self, *, output_lags=AUTO, input_lags=AUTO, delay_samples=AUTO, lag_grid=DEFAULT_LAG_GRID,
+                 delay_grid=DEFAULT_DELAY_GRID, alphas=_DEFAULT_ALPHAS, n_folds=5, chunk_samples=16384,
+                 fit_intercept=True):
         self.output_lags = output_lags
         self.input_lags = input_lags
         self.delay_samples = delay_samples
+        self.lag_grid = lag_grid
+        self.delay_grid = delay_grid
         self.alphas = alphas
         self.n_folds = n_folds
         self.chunk_samples = chunk_samples
         self.fit_intercept = fit_intercept
 
     # -------------------------------------------------------------------------------------------- fit
-    def _validated(self, session) -> _Problem:
+    def _validated(self, session, structure, n_lags=None) -> _Problem:
         _check_source(session)
-        na = _check_int("output_lags", self.output_lags, 0)
-        nb = _check_int("input_lags", self.input_lags, 1)
-        d = _check_int("delay_samples", self.delay_samples, 0)
+        na, nb, d = structure
         _check_int("n_folds", self.n_folds, 2)
         _check_int("chunk_samples", self.chunk_samples, 1)
         _check_alphas(self.alphas)
         if not isinstance(self.fit_intercept, (bool, np.bool_)):
             raise InvalidParameterError(f"fit_intercept must be True or False; got {self.fit_intercept!r}.")
-        prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept))
+        prob = _Problem(int(session.n_outputs), int(session.n_inputs), na, nb, d, bool(self.fit_intercept), n_lags)
         longest = max((e - s for s, e in session.segments(min_length=1)), default=0)
         if longest <= prob.L:
             raise SessionError(
@@ -189,8 +205,10 @@ class RidgeArx(BasePredictor):
         ConditioningWarning
             When the normal equations at the chosen alpha have a condition number above ``CONDITION_WARN_LIMIT``.
         """
-        prob = self._validated(session)
+        candidates, grids = structure_candidates(self)
         alphas = _check_alphas(self.alphas)
+        structure, structures = select_structure(self, session, candidates, alphas)
+        prob = self._validated(session, structure)
         folds, k, scheme, shift = self._accumulate(session, prob)
         total = _Moments(prob.size)
         for f in folds:
@@ -200,6 +218,11 @@ class RidgeArx(BasePredictor):
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
             if table["mean_error"].notna().any() else float(alphas[0])
         self._finish(session, prob, total, best, table, k, scheme, shift)
+        if structures is None:
+            structures = structure_table([(*structure, prob.x_idx.size, table)])
+        self.structure_table_ = structures
+        self.selection_notes_ = edge_notes(dict(zip(("output_lags", "input_lags", "delay_samples"), structure)),
+                                           grids, self.alpha_, alphas)
         return self
 
     def _accumulate(self, session, prob: _Problem):
@@ -412,6 +435,8 @@ class RidgeArx(BasePredictor):
         check_fitted(self, "coef_")
         params = self.get_params()
         params["alphas"] = np.asarray(self.alphas, dtype=np.float64)
+        params["lag_grid"] = np.asarray(self.lag_grid, dtype=np.int64)
+        params["delay_grid"] = np.asarray(self.delay_grid, dtype=np.int64)
         return {
             "params": params,
             "coef": self.coef_, "intercept": self.intercept_, "alpha": self.alpha_, "scale": self.scale_,
@@ -423,6 +448,10 @@ class RidgeArx(BasePredictor):
             "sample_rate_hz": self.sample_rate_hz_,
             "cv_table": {str(c): self.cv_table_[c].to_numpy() for c in self.cv_table_.columns},
             "cv_columns": [str(c) for c in self.cv_table_.columns],
+            "structure": np.asarray([self.output_lags_, self.input_lags_, self.delay_samples_], dtype=np.int64),
+            "structure_table": {str(c): self.structure_table_[c].to_numpy() for c in self.structure_table_.columns},
+            "structure_columns": [str(c) for c in self.structure_table_.columns],
+            "selection_notes": "\n".join(self.selection_notes_),
         }
 
     @classmethod
@@ -430,9 +459,15 @@ class RidgeArx(BasePredictor):
         """Rebuild a fitted estimator from :meth:`to_state` output."""
         params = dict(state["params"])
         params["alphas"] = tuple(float(a) for a in np.atleast_1d(params["alphas"]))
+        for k in ("lag_grid", "delay_grid"):
+            if k in params:
+                params[k] = tuple(int(v) for v in np.atleast_1d(params[k]))
+        for k in ("output_lags", "input_lags", "delay_samples"):
+            params[k] = params[k] if isinstance(params[k], str) else int(params[k])
         est = cls(**params)
-        prob = _Problem(int(state["n_outputs"]), int(state["n_inputs"]), int(params["output_lags"]),
-                        int(params["input_lags"]), int(params["delay_samples"]), bool(params["fit_intercept"]))
+        na, nb, d = (int(v) for v in np.atleast_1d(state.get("structure", [params[k] for k in (
+            "output_lags", "input_lags", "delay_samples")])))
+        prob = _Problem(int(state["n_outputs"]), int(state["n_inputs"]), na, nb, d, bool(params["fit_intercept"]))
         table = pd.DataFrame({c: np.asarray(state["cv_table"][c]) for c in state["cv_columns"]})
         est._set_fitted(
             prob, coef=state["coef"], intercept=state["intercept"], alpha=state["alpha"], table=table,
@@ -443,5 +478,12 @@ class RidgeArx(BasePredictor):
             output_units=state.get("output_units", ("",) * int(state["n_outputs"])),
             sample_rate_hz=state["sample_rate_hz"],
         )
+        if "structure_table" in state:
+            st = state["structure_table"]
+            est.structure_table_ = pd.DataFrame({c: np.asarray(st[c]) for c in state["structure_columns"]})
+        else:
+            est.structure_table_ = structure_table([(na, nb, d, prob.x_idx.size + int(prob.fit_intercept), table)])
+        notes = str(state.get("selection_notes", ""))
+        est.selection_notes_ = tuple(n for n in notes.split("\n") if n)
         est._mark_fitted()
         return est

@@ -77,9 +77,11 @@ def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray],
 class _Problem:
     """Index bookkeeping from the lagged-moment space to the regression (regressors x, targets y)."""
 
-    def __init__(self, p, m, na, nb, d, fit_intercept):
+    def __init__(self, p, m, na, nb, d, fit_intercept, n_lags=None):
         self.p, self.m, self.na, self.nb, self.d = p, m, na, nb, d
-        self.L = max(na, d + nb - 1)
+        # n_lags > the structure's own longest lag: regressors indexed inside a longer lagged vector (the moments
+        # of structure selection, shared by every candidate)
+        self.L = max(na, d + nb - 1) if n_lags is None else int(n_lags)
         self.c = p + m
         self.fit_intercept = fit_intercept
         c = self.c

@@ -11,6 +11,11 @@ Normalisations (per output channel, over the scored samples of that channel and 
 Scores are pooled over all prediction windows of the scored session. Windows are built inside valid segments only
 (:meth:`Session.segments`): neither the past window nor the predicted span crosses a trial boundary or a masked
 sample.
+
+One scoring definition, used by ``stimsteer fit`` (its printed held-out scores), ``stimsteer predict
+--score-trial`` and ``stimsteer bench``: k-step windows start at every ``stride``-th sample ``t`` of a valid
+segment with ``s + P <= t <= e − H``; the free run of a segment ``[s, e)`` is given its first ``P = past_steps_``
+measured samples and predicts ``[s + P, e)`` from the inputs alone (chained blocks for a finite horizon).
 """
 
 from __future__ import annotations
@@ -150,6 +155,9 @@ class Scores:
         Number of k-step windows scored.
     n_segments : int
         Number of segments scored in free run.
+    freerun_steps : int
+        Longest free run scored (samples predicted after the past window of one segment); 0 when unknown (scores
+        written before it was recorded).
 
     Notes
     -----
@@ -164,6 +172,7 @@ class Scores:
     stride_steps: int = 1
     n_windows: int = 0
     n_segments: int = 0
+    freerun_steps: int = 0
 
     def metric(self, name: str) -> pd.DataFrame:
         """One k-step metric as a table: index ``step``, one column per output channel."""
@@ -188,7 +197,8 @@ class Scores:
         """Held-out RMSE per step and channel for a prediction of ``n_steps`` samples, shape (n_steps, p).
 
         Steps up to ``horizon_steps`` use the k-step RMSE; later steps use the free-run RMSE when scored, else the
-        RMSE of the last scored step.
+        RMSE of the last scored step. Steps beyond the longest scored free run (``freerun_steps``, when known) are
+        NaN: no held-out prediction was that long, so there is no evidence of the error there.
         """
         p = len(self.output_names)
         band = np.full((int(n_steps), p), np.nan)
@@ -200,7 +210,15 @@ class Scores:
         else:
             tail = self.freerun.set_index("channel").loc[list(self.output_names), "rmse"].to_numpy()
         band[h:] = tail
+        if self.freerun_steps and not self.freerun.empty:
+            band[max(int(self.freerun_steps), h):] = np.nan
         return band
+
+    def covered_steps(self) -> int | None:
+        """Number of steps ahead the held-out band covers (None: unknown, or without limit for old scores)."""
+        if self.freerun.empty:
+            return int(self.horizon_steps)
+        return int(self.freerun_steps) or None
 
     def merged(self, other: "Scores") -> "Scores":
         """These scores with the non-empty tables of ``other`` (same channels) added."""
@@ -209,7 +227,7 @@ class Scores:
         ks = other if not other.kstep.empty else self
         fr = other if not other.freerun.empty else self
         return Scores(self.output_names, ks.kstep, fr.freerun, ks.horizon_steps, ks.stride_steps, ks.n_windows,
-                      fr.n_segments)
+                      fr.n_segments, fr.freerun_steps)
 
     def to_dict(self) -> dict:
         """JSON-like form (lists, numbers, strings); :meth:`from_dict` inverts it."""
@@ -218,7 +236,8 @@ class Scores:
 
         return {"output_names": list(self.output_names), "kstep": cols(self.kstep), "freerun": cols(self.freerun),
                 "horizon_steps": int(self.horizon_steps), "stride_steps": int(self.stride_steps),
-                "n_windows": int(self.n_windows), "n_segments": int(self.n_segments)}
+                "n_windows": int(self.n_windows), "n_segments": int(self.n_segments),
+                "freerun_steps": int(self.freerun_steps)}
 
     @classmethod
     def from_dict(cls, d: dict) -> "Scores":
@@ -228,7 +247,7 @@ class Scores:
         freerun = pd.DataFrame(d["freerun"], columns=fr.columns).astype(fr.dtypes.to_dict()) \
             if d["freerun"].get("channel") else fr
         return cls(tuple(d["output_names"]), kstep, freerun, int(d["horizon_steps"]), int(d["stride_steps"]),
-                   int(d["n_windows"]), int(d["n_segments"]))
+                   int(d["n_windows"]), int(d["n_segments"]), int(d.get("freerun_steps", 0)))
 
     def to_text(self, max_steps: int = 6) -> str:
         """A short plain-text table of :meth:`summary`: at most ``max_steps`` k-step rows (first, last and evenly
@@ -386,16 +405,17 @@ def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Score
     if max_steps is not None and (int(max_steps) < 1 or int(max_steps) != max_steps):
         raise SessionError(f"max_steps must be a whole number >= 1 or None; got {max_steps!r}.")
     names = _output_names(session)
-    pooled, n_seg = _Pooled((len(names),)), 0
+    pooled, n_seg, longest = _Pooled((len(names),)), 0, 0
     for s, e in session.segments(min_length=P + 2):
         stop = e if max_steps is None else min(e, s + P + int(max_steps))
         u, y, _mask = session.read(s, stop)
         yhat = _free_run(predictor, u, y, P, limit)
         pooled.add(y[P:], y[P:] - yhat)
         n_seg += 1
+        longest = max(longest, stop - s - P)
     if n_seg == 0:
         raise SessionError(
             f"no valid segment of the session is longer than past_steps + 1 = {P + 1} samples; nothing can be "
             "scored in free run. Score on longer trials."
         )
-    return Scores(names, freerun=_long_table(names, pooled.table()), n_segments=n_seg)
+    return Scores(names, freerun=_long_table(names, pooled.table()), n_segments=n_seg, freerun_steps=longest)

@@ -13,10 +13,14 @@ import numpy as np
 import pandas as pd
 
 from ._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
-from .exceptions import FileFormatError, SessionError
-from .metrics import Scores, _free_run
+import warnings
 
-__all__ = ["Pattern", "PatternPrediction", "load_pattern", "rest_window", "trial_end_window", "predict_pattern"]
+from .chaining import chain_radius, growth_text
+from .exceptions import FileFormatError, SessionError, StimsteerWarning
+from .metrics import Scores, _free_run, freerun_scores
+
+__all__ = ["Pattern", "PatternPrediction", "load_pattern", "rest_window", "trial_end_window", "predict_pattern",
+           "score_trial"]
 
 
 # ------------------------------------------------------------------------------------------------ patterns
@@ -54,6 +58,9 @@ class PatternPrediction:
     input_names, input_units, output_names, output_units : tuple of str
     start : str
         ``"rest"`` or where the past window came from.
+    notes : tuple of str
+        Cautions about this prediction: an unstable chained recursion (with its spectral radius and the growth it
+        allows over the pattern) and a pattern longer than any held-out free run (the band is NaN beyond it).
     """
 
     time_s: np.ndarray
@@ -65,6 +72,7 @@ class PatternPrediction:
     output_names: tuple
     output_units: tuple
     start: str
+    notes: tuple = ()
 
 
 _PATTERN_LAYOUT = "'time [s]' (optionally 'time [s] @ <rate> Hz') and one 'in:<name> [<unit>]' column per input"
@@ -219,6 +227,51 @@ def predict_pattern(predictor, provenance: dict, pattern: Pattern, *, past=None,
     y_known = np.asarray(y_past, dtype=np.float64)[-P:] if P else np.zeros((0, len(model["output_names"])))
     # Predictors with a finite horizon are chained, feeding back their own predictions (as in free-run scoring).
     y = _free_run(predictor, u_all, y_known, P, getattr(predictor, "max_horizon_steps_", None))
-    band = Scores.from_dict(provenance["heldout"]).error_band(T)
+    scores = Scores.from_dict(provenance["heldout"])
+    band = scores.error_band(T)
+    notes = _long_pattern_notes(predictor, scores, T)
+    for n in notes:
+        warnings.warn(n, StimsteerWarning, stacklevel=2)
     return PatternPrediction(pattern.time_s, pattern.u, y, band, pattern.input_names, pattern.input_units,
-                             model["output_names"], model["output_units"], str(start))
+                             model["output_names"], model["output_units"], str(start), tuple(notes))
+
+
+def _long_pattern_notes(predictor, scores: Scores, n_steps: int) -> list:
+    """Cautions for a prediction of ``n_steps`` samples: unstable recursion, band shorter than the pattern."""
+    notes = []
+    limit = getattr(predictor, "max_horizon_steps_", None)
+    if limit is None or n_steps > int(limit):
+        radius = chain_radius(predictor)
+        if radius is not None and radius >= 1.0:
+            how = "chaining this predictor's blocks" if limit is not None else "this model's free run"
+            notes.append(f"{how} is unstable ({growth_text(radius, n_steps, limit)}); the prediction of this "
+                         f"{n_steps}-sample pattern may diverge. Predict patterns of at most {limit or 'a few'} "
+                         "samples from a measured past, or refit (another method, a longer past window, or a larger "
+                         "regularisation).")
+    covered = scores.covered_steps()
+    if covered is not None and n_steps > covered:
+        notes.append(f"the held-out error band covers {covered} samples (the longest held-out free run); this "
+                     f"pattern has {n_steps}, and the band is left empty (NaN) beyond sample {covered}.")
+    return notes
+
+
+def score_trial(predictor, session, trial_index: int) -> Scores:
+    """Free-run scores of one recorded trial by the rule ``fit`` and ``bench`` use for held-out trials.
+
+    The predictor is given the first ``past_steps_`` measured samples of each valid segment of the trial and
+    predicts the rest of the segment from its inputs alone (:func:`~stimsteer.sysid.metrics.freerun_scores`), so on
+    a held-out trial this reproduces the free-run score ``fit`` printed for it.
+
+    Raises
+    ------
+    SessionError
+        The trial does not exist or has no segment longer than the past window.
+    """
+    trials = np.asarray(session.trials)
+    i = int(trial_index)
+    if not 0 <= i < trials.shape[0]:
+        raise SessionError(f"trial {i} does not exist; the session has trials 0 to {trials.shape[0] - 1}.")
+    from .trial_sources import _TrialSubset
+
+    one = session.select_trials([i]) if hasattr(session, "select_trials") else _TrialSubset(session, [i])
+    return freerun_scores(predictor, one)

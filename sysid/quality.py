@@ -12,7 +12,8 @@ import numpy as np
 
 from .exceptions import SessionError
 
-__all__ = ["SessionSummary", "describe_session"]
+__all__ = ["SessionSummary", "describe_session", "baseline_moments", "check_representable", "MAGNITUDE_LIMIT",
+           "OFFSET_WARN_FRACTION"]
 
 
 @dataclass(frozen=True)
@@ -115,6 +116,104 @@ class SessionSummary:
 #: then a tenth of the channel's power is a constant that a model without a constant term cannot represent).
 OFFSET_WARN_FRACTION = 0.1
 
+#: Largest magnitude accepted in a session. Every route sums products of lagged samples (Gram matrices, Hankel
+#: factors, KKT systems of squared blocks); at 1e100 a square is 1e200 and sums over 1e100 of them stay below
+#: float64's 1.8e308 with room for the products of squared blocks, while values near 1e154 already overflow
+#: (our own bound from float64's range; IEEE 754-2008). Rescale (e.g. to other units) beyond it.
+MAGNITUDE_LIMIT = 1e100
+
+#: Fewest pre-stimulation baseline samples (zero input before a trial's first stimulation) needed to judge
+#: whether an output's offset is a resting level (our own threshold).
+BASELINE_MIN_SAMPLES = 10
+
+
+class _Baseline:
+    """Sums of the outputs over pre-stimulation samples: valid samples of a trial before its first non-zero input.
+
+    Why only those: after the first stimulation a one-signed input moves the mean of the outputs, and that part
+    of the mean is the response, which a model reproduces from the inputs; removing it (centring) would make the
+    model fit a shifted response. Only a resting level seen before any stimulation is an offset to remove.
+    """
+
+    def __init__(self, p: int):
+        self.n, self.s1, self.s2 = 0, np.zeros(p), np.zeros(p)
+        self.stimulated = False  # in the current trial
+
+    def new_trial(self):
+        self.stimulated = False
+
+    def add(self, u, y, mask):
+        if self.stimulated or not u.shape[0]:
+            return
+        moving = np.flatnonzero(np.any(np.asarray(u) != 0, axis=1))
+        stop = int(moving[0]) if moving.size else u.shape[0]
+        self.stimulated = bool(moving.size)
+        yv = np.asarray(y[:stop], dtype=np.float64)[np.asarray(mask[:stop], dtype=bool)]
+        self.n += yv.shape[0]
+        with np.errstate(over="ignore", invalid="ignore"):  # huge values are refused after the scan
+            self.s1 += yv.sum(axis=0)
+            self.s2 += np.einsum("ij,ij->j", yv, yv)
+
+    def shares(self):
+        """Baseline count, mean, and mean² / mean square per output (zeros below BASELINE_MIN_SAMPLES)."""
+        if self.n < BASELINE_MIN_SAMPLES:
+            return self.n, np.zeros_like(self.s1), np.zeros_like(self.s1)
+        mean, ms = self.s1 / self.n, self.s2 / self.n
+        with np.errstate(over="ignore", invalid="ignore"):
+            return self.n, mean, np.divide(mean ** 2, ms, out=np.zeros_like(ms), where=ms > 0)
+
+
+def baseline_moments(source, chunk_rows: int = 65536) -> tuple[int, np.ndarray, np.ndarray]:
+    """Pre-stimulation baseline of each output: sample count, mean, and ``mean² / mean square``.
+
+    The baseline is the valid samples of each trial before its first sample with a non-zero input. With fewer than
+    :data:`BASELINE_MIN_SAMPLES` such samples the mean and share are zeros (no baseline to judge by).
+    """
+    acc = _Baseline(int(source.n_outputs))
+    for a, b in np.asarray(source.trials):
+        acc.new_trial()
+        for k0 in range(int(a), int(b), chunk_rows):
+            if acc.stimulated:
+                break
+            u, y, mask = source.read(k0, min(int(b), k0 + chunk_rows))
+            acc.add(np.asarray(u), y, mask)
+    return acc.shares()
+
+
+def _magnitude_error(what: str, value: float, names, units, where) -> SessionError:
+    j = int(where)
+    return SessionError(
+        f"{what} '{names[j]}' reaches {value:.3g} {units[j]}, beyond the largest magnitude stimsteer can fit "
+        f"({MAGNITUDE_LIMIT:.0e}): sums of squared samples would overflow float64. Rescale the channel (e.g. express "
+        "it in larger units, or divide it by a constant) before inspecting or fitting."
+    )
+
+
+def check_representable(source, chunk_rows: int = 65536) -> None:
+    """Refuse a session whose valid samples exceed :data:`MAGNITUDE_LIMIT` in magnitude (one streaming pass).
+
+    Raises
+    ------
+    SessionError
+        Naming the channel, the largest magnitude found and how to rescale.
+    """
+    m, p = int(source.n_inputs), int(source.n_outputs)
+    top_u, top_y = np.zeros(m), np.zeros(p)
+    for a, b in source.segments():
+        for k0 in range(a, b, chunk_rows):
+            u, y, _mask = source.read(k0, min(b, k0 + chunk_rows))
+            top_u = np.maximum(top_u, np.abs(np.asarray(u)).max(axis=0, initial=0.0))
+            top_y = np.maximum(top_y, np.abs(np.asarray(y)).max(axis=0, initial=0.0))
+    _raise_if_huge(source, top_u, top_y)
+
+
+def _raise_if_huge(source, top_u, top_y) -> None:
+    for what, top, names, units in (("input", top_u, source.input_names, source.input_units),
+                                    ("output", top_y, source.output_names, source.output_units)):
+        if top.size and not np.max(top) <= MAGNITUDE_LIMIT:
+            j = int(np.argmax(top))
+            raise _magnitude_error(what, float(top[j]), names, units, j)
+
 
 def output_moments(source, chunk_rows: int = 65536) -> tuple[int, np.ndarray, np.ndarray]:
     """Valid in-trial sample count, and each output's mean and mean square over them (one streaming pass).
@@ -160,12 +259,14 @@ def _masked_runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def _scan(session, chunk_rows: int):
     """One pass over the trials: valid-sample counts, masked runs and the channels' extremes at valid samples."""
     ext_u, ext_y = _Extremes(session.n_inputs), _Extremes(session.n_outputs)
+    base = _Baseline(session.n_outputs)
     s1, s2 = np.zeros(session.n_outputs), np.zeros(session.n_outputs)
     n_inside = n_used = 0
     gaps = []  # lengths of the masked runs inside trials
 
     for a, b in np.asarray(session.trials):
         run = 0  # a masked run reaching the end of the previous chunk of this trial
+        base.new_trial()
         for k0 in range(int(a), int(b), chunk_rows):
             u, y, mask = session.read(k0, min(int(b), k0 + chunk_rows))
             n_inside += mask.size
@@ -173,8 +274,10 @@ def _scan(session, chunk_rows: int):
             ext_u.add(np.asarray(u)[mask])
             y_valid = np.asarray(y, dtype=np.float64)[mask]
             ext_y.add(y_valid)
-            s1 += y_valid.sum(axis=0)
-            s2 += np.einsum("ij,ij->j", y_valid, y_valid)
+            base.add(np.asarray(u), y, mask)
+            with np.errstate(over="ignore", invalid="ignore"):  # huge values are refused after the scan
+                s1 += y_valid.sum(axis=0)
+                s2 += np.einsum("ij,ij->j", y_valid, y_valid)
             starts, stops = _masked_runs(mask)
             lengths = [int(n) for n in stops - starts]
             if run:
@@ -189,8 +292,9 @@ def _scan(session, chunk_rows: int):
         if run:
             gaps.append(run)
     mean, ms = s1 / max(n_used, 1), s2 / max(n_used, 1)
-    share = np.divide(mean ** 2, ms, out=np.zeros_like(ms), where=ms > 0)
-    return n_inside, n_used, len(gaps), max(gaps, default=0), ext_u, ext_y, (mean, share)
+    with np.errstate(over="ignore", invalid="ignore"):  # huge values are refused after the scan
+        share = np.divide(mean ** 2, ms, out=np.zeros_like(ms), where=ms > 0)
+    return n_inside, n_used, len(gaps), max(gaps, default=0), ext_u, ext_y, (mean, share, base.shares())
 
 
 def _channel_problems(session, ext_u: _Extremes, ext_y: _Extremes, n_used: int, saturation_fraction: float):
@@ -257,7 +361,10 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
                                                                     masked_warning_fraction)):
         if not 0 < float(f) <= 1:
             raise SessionError(f"{name} must be in (0, 1]; got {f}.")
-    n_inside, n_used, n_gaps, longest, ext_u, ext_y, (mean, share) = _scan(session, int(chunk_samples))
+    n_inside, n_used, n_gaps, longest, ext_u, ext_y, (mean, share, base) = _scan(session, int(chunk_samples))
+    if n_used:
+        _raise_if_huge(session, np.maximum(np.abs(ext_u.lo), np.abs(ext_u.hi)),
+                       np.maximum(np.abs(ext_y.lo), np.abs(ext_y.hi)))
     masked_fraction = float((n_inside - n_used) / max(n_inside, 1))
     flat, saturated, warnings = _channel_problems(session, ext_u, ext_y, n_used, float(saturation_fraction))
     trials = np.asarray(session.trials)
@@ -271,11 +378,11 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
         )
     offsets = tuple((name, float(mean[j]), float(share[j])) for j, name in enumerate(session.output_names)
                     if name not in flat and share[j] > OFFSET_WARN_FRACTION)
+    notes = []
     for name, m, f in offsets:
-        unit = session.output_units[list(session.output_names).index(name)]
-        warnings.append(f"output '{name}' sits on an offset (mean {m:.4g} {unit}, {100 * f:.0f}% of its mean square): "
-                        "fit subspace or direct models with --centre-outputs (centre_outputs=True); ridge ARX fits "
-                        "an intercept of its own.")
+        j = list(session.output_names).index(name)
+        warnings_or_notes, text = _offset_advice(name, m, f, session.output_units[j], base, j)
+        (warnings if warnings_or_notes else notes).append(text)
     if trials.shape[0] < 2:
         warnings.append("only 1 trial: no held-out split by trials is possible; record more trials or cut the "
                         "recording into trials.")
@@ -287,5 +394,20 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
         n_samples_outside_trials=int(session.n_samples - n_inside), masked_fraction=masked_fraction, n_gaps=n_gaps,
         longest_gap_s=longest / session.sample_rate_hz, flat_channels=flat, saturated_channels=saturated,
         offset_channels=offsets,
-        warnings=tuple(warnings),
+        warnings=tuple(warnings), notes=notes,
     )
+
+
+def _offset_advice(name, mean, share, unit, base, j) -> tuple[bool, str]:
+    """(is a warning, text): centring is advised only when the pre-stimulation baseline carries the offset."""
+    n_base, base_mean, base_share = base
+    if base_share[j] > OFFSET_WARN_FRACTION:
+        return True, (f"output '{name}' rests on an offset before any stimulation (baseline mean {base_mean[j]:.4g} "
+                      f"{unit} over {n_base} pre-stimulation samples; overall mean {mean:.4g} {unit}, {100 * share:.0f}"
+                      "% of its mean square): fit subspace or direct models with --centre-outputs "
+                      "(centre_outputs=True); ridge ARX fits an intercept of its own.")
+    why = (f"its pre-stimulation baseline ({n_base} samples) rests near zero" if n_base >= BASELINE_MIN_SAMPLES
+           else "no pre-stimulation baseline (zero-input samples before the first stimulation) shows a resting level")
+    return False, (f"output '{name}' has mean {mean:.4g} {unit} ({100 * share:.0f}% of its mean square), but {why}: "
+                   "the mean comes with the stimulation, which the models reproduce from the inputs; centring is "
+                   "not advised.")

@@ -21,7 +21,7 @@ import pandas as pd
 from .exceptions import InvalidParameterError, StimsteerWarning
 from .registry import METHODS, MethodEntry
 from .metrics import Scores, freerun_scores, kstep_scores
-from .quality import OFFSET_WARN_FRACTION, output_moments
+from .quality import OFFSET_WARN_FRACTION, baseline_moments, check_representable
 from .session import TrialSplit
 from .trial_sources import open_session_source
 from .patterns import Pattern, PatternPrediction, load_pattern, rest_window, trial_end_window, predict_pattern
@@ -58,6 +58,9 @@ class FitResult:
         k-step and free-run scores on the held-out trials.
     provenance : dict
         JSON-like record: session hash and description, settings, split, seed, horizon, stride, scores.
+    selection_notes : tuple of str
+        The estimator's remarks on its selection (``selection_notes_``: a grid edge that won, an order cap that
+        binds, an unstable order kept), printed by ``stimsteer fit``.
     """
 
     predictor: object
@@ -67,10 +70,11 @@ class FitResult:
     selection_table: pd.DataFrame
     heldout: Scores
     provenance: dict
+    selection_notes: tuple = ()
 
 
 def _selection_table(predictor) -> pd.DataFrame:
-    for attr in ("cv_table_", "order_table_", "selection_table_"):
+    for attr in ("structure_table_", "cv_table_", "order_table_", "selection_table_"):
         table = getattr(predictor, attr, None)
         if isinstance(table, pd.DataFrame):
             return table
@@ -120,25 +124,25 @@ def _heldout(predictor, test, horizon, max_windows, freerun_max_steps) -> Scores
     return scores
 
 
-def _offset_fractions(train) -> tuple[np.ndarray, np.ndarray]:
-    """Per output channel: the mean over the training samples and ``mean² / mean square``."""
-    _n, mean, ms = output_moments(train)
-    return mean, np.divide(mean ** 2, ms, out=np.zeros(mean.size), where=ms > 0)
-
-
 def _warn_offsets(predictor, train, method: str) -> float:
-    """Warn when the training outputs carry an offset that a predictor without a constant term cannot represent."""
+    """Warn when the training outputs rest on an offset that a predictor without a constant term cannot represent.
+
+    The offset is judged on the pre-stimulation baseline only (:func:`~stimsteer.sysid.quality.baseline_moments`):
+    a mean that comes with one-signed stimulation is response, reproduced from the inputs, and centring it away
+    would make the model fit a shifted response.
+    """
     if getattr(predictor, "fit_intercept", False) or getattr(predictor, "centre_outputs", False) is True:
         return 0.0
-    mean, frac = _offset_fractions(train)
+    n_base, mean, frac = baseline_moments(train)
     i = int(np.argmax(frac)) if frac.size else 0
     if frac.size and frac[i] > OFFSET_WARN_FRACTION:
         names = tuple(getattr(train, "output_names", ()) or (f"y{j}" for j in range(frac.size)))
         units = tuple(getattr(train, "output_units", ()) or ("",) * frac.size)
         warnings.warn(
-            f"the training outputs carry a constant offset that the {method} model, which has no constant term, "
-            f"cannot represent: channel {names[i]!r} has mean {mean[i]:.4g} {units[i]}, {100 * frac[i]:.0f} % of "
-            f"its mean square ({int(np.sum(frac > OFFSET_WARN_FRACTION))} of {frac.size} channels above "
+            f"the training outputs rest on a constant offset before stimulation that the {method} model, which has "
+            f"no constant term, cannot represent: channel {names[i]!r} has a pre-stimulation baseline of "
+            f"{mean[i]:.4g} {units[i]} ({n_base} samples), {100 * frac[i]:.0f} % of its baseline mean square "
+            f"({int(np.sum(frac > OFFSET_WARN_FRACTION))} of {frac.size} channels above "
             f"{100 * OFFSET_WARN_FRACTION:.0f} %). "
             + "Refit with --centre-outputs (centre_outputs=True), or use the arx method, which fits an intercept.",
             StimsteerWarning, stacklevel=3)
@@ -181,17 +185,19 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
     InvalidParameterError
         Unknown route/method or settings, or a required setting missing.
     SessionError
-        Fewer than two trials, or held-out trials too short to score.
+        Fewer than two trials, held-out trials too short to score, or a sample beyond
+        :data:`~stimsteer.sysid.quality.MAGNITUDE_LIMIT` in magnitude (rescale the channel).
 
     Warns
     -----
     StimsteerWarning
-        When the predictor has no constant term (subspace, direct methods) and a training output's mean holds more
-        than :data:`OFFSET_WARN_FRACTION` of its mean square; the largest share is recorded in the provenance as
-        ``output_offset_fraction``.
+        When the predictor has no constant term (subspace, direct methods) and a training output's
+        pre-stimulation baseline mean holds more than :data:`OFFSET_WARN_FRACTION` of its baseline mean square; the
+        largest share is recorded in the provenance as ``output_offset_fraction``.
     """
     factory = _factory(route, method)
     estimator = make_estimator(route, method, settings, horizon_steps=horizon_steps)
+    check_representable(session)
     split = _split(session, n_test, test_fraction, seed)
     train, test = _subsets(session, split, factory.streaming)
     predictor = estimator.fit(train)
@@ -206,4 +212,7 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
         "horizon_steps": horizon, "stride_steps": int(heldout.stride_steps), "heldout": heldout.to_dict(),
         "output_offset_fraction": offset,
     }
-    return FitResult(predictor, str(route), str(method), split, _selection_table(predictor), heldout, provenance)
+    notes = tuple(str(n) for n in getattr(predictor, "selection_notes_", ()) or ())
+    provenance["selection_notes"] = list(notes)
+    return FitResult(predictor, str(route), str(method), split, _selection_table(predictor), heldout, provenance,
+                     notes)

@@ -36,7 +36,10 @@ def add_parser(subparsers) -> None:
     p.add_argument("--horizon-steps", dest="horizon", type=int, metavar="N",
                    help="prediction horizon in samples (scored; direct methods fit it)")
     p.add_argument("--past-steps", dest="past", type=int, metavar="N",
-                   help="past window in samples (arx: output and input lags)")
+                   help="past window in samples (arx: output and input lags; default: chosen by cross-validation)")
+    p.add_argument("--delay-steps", dest="delay", type=int, metavar="N",
+                   help="arx: input delay in samples, 0 = direct feed-through (default: chosen from 0 to 3 by "
+                   "cross-validation)")
     p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
     p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
     p.add_argument("--centre-outputs", action="store_true",
@@ -47,12 +50,38 @@ def add_parser(subparsers) -> None:
 
 def _settings(args) -> dict:
     settings = {} if args.past is None else {"past_steps": args.past}
+    if getattr(args, "delay", None) is not None:
+        if args.method != "arx":
+            raise InvalidParameterError("--delay-steps is for the arx method; the other methods take the delay from "
+                                        "their past window.")
+        settings["delay_samples"] = args.delay
     if args.centre_outputs:
         if args.method == "arx":
             raise InvalidParameterError("--centre-outputs is for the subspace, lsq and hankel methods; ridge ARX fits "
                                         "an intercept of its own.")
         settings["centre_outputs"] = True
     return settings
+
+
+#: Rows of a long selection table printed by ``fit`` (the best ones and the selected one; the model file has all).
+_SHOWN_ROWS = 10
+
+
+def _selection_text(result) -> str:
+    """The selection table (its best rows when long, the selected row always) and the selection notes."""
+    table = result.selection_table
+    shown = table
+    if len(table) > _SHOWN_ROWS:
+        keep = set(range(_SHOWN_ROWS))
+        if "selected" in table.columns:
+            keep |= set(int(i) for i in table.index[table["selected"].astype(bool)])
+        shown = table.iloc[sorted(keep)]
+    lines = [shown.to_string(index=False, float_format=lambda v: f"{v:.4g}")]
+    if len(shown) < len(table):
+        lines.append(f"({len(shown)} of {len(table)} candidates shown, the selected one first; all are in the model "
+                     "file)")
+    lines += [f"note: {n}" for n in result.selection_notes]
+    return "\n".join(lines)
 
 
 def run(args) -> int:
@@ -71,7 +100,7 @@ def run(args) -> int:
     split = result.split
     print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
     print("selection (training trials only):")
-    print(result.selection_table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    print(_selection_text(result))
     print(f"held-out scores on trials {list(split.test)} (seed {split.seed}; means over output channels):")
     print(result.heldout.to_text())
     print(f"model written to {args.out}")

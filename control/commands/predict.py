@@ -13,7 +13,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ...sysid import load_pattern, load_predictor, open_session_source, predict_pattern, trial_end_window
+from ...sysid import InvalidParameterError, load_pattern, load_predictor, open_session_source, predict_pattern, \
+    trial_end_window
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..figures.predict import prediction_figure
@@ -67,17 +68,41 @@ def add_parser(sub) -> None:
     """Declare ``stimsteer predict`` and its options."""
     p = sub.add_parser("predict", help="predict the response to a stimulation pattern with a fitted model")
     p.add_argument("model", help="model file written by `stimsteer fit`")
-    p.add_argument("--pattern", required=True,
+    p.add_argument("--pattern",
                    help="CSV of inputs: 'time [s]' and one 'in:<name> [<unit>]' column per model input")
-    p.add_argument("--out", required=True, help="output folder for prediction.csv and prediction.png")
+    p.add_argument("--score-trial", type=trial_ref, metavar="SESSION:INDEX",
+                   help="instead of a pattern: predict this recorded trial from its first past-window samples, as "
+                   "`fit` scores held-out trials, and print its free-run scores")
+    p.add_argument("--out", help="output folder for prediction.csv and prediction.png (with --pattern)")
     p.add_argument("--from-trial", type=trial_ref, metavar="SESSION:INDEX",
                    help="start from the end of this recorded trial (default: from rest)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
 
+def _score_trial(args, predictor, provenance) -> int:
+    from ...sysid.patterns import _check_channels, _model_channels, score_trial
+
+    path, index = args.score_trial
+    with open_session_source(path) as session:
+        model = _model_channels(provenance)
+        _check_channels("the session", session.input_names, session.input_units, session.sample_rate_hz, model)
+        scores = score_trial(predictor, session, index)
+    print(f"free-run scores of trial {index} of {path} (the first {int(predictor.past_steps_)} samples of each valid "
+          "segment given, the rest predicted from the inputs; the rule `fit` uses for held-out trials):")
+    print(scores.to_text())
+    return 0
+
+
 def run(args) -> int:
     """Run ``stimsteer predict`` from parsed arguments."""
     predictor, provenance = load_predictor(args.model)
+    if (args.pattern is None) == (getattr(args, "score_trial", None) is None):
+        raise InvalidParameterError("give either --pattern FILE (predict a stimulation pattern) or --score-trial "
+                                    "SESSION:INDEX (score a recorded trial), not both or neither.")
+    if args.score_trial is not None:
+        return _score_trial(args, predictor, provenance)
+    if args.out is None:
+        raise InvalidParameterError("--pattern needs --out FOLDER for prediction.csv and prediction.png.")
     pattern = load_pattern(args.pattern)
     past, start = None, "rest"
     if args.from_trial is not None:
@@ -88,6 +113,8 @@ def run(args) -> int:
     prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
     files = write_prediction(prediction, args.out, force=args.force)
     print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
+    for note in prediction.notes:
+        print(f"caution: {note}")
     print(f"wrote {files['csv']} and {files['png']}")
     print(CAUTION)
     return 0

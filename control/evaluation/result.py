@@ -236,6 +236,8 @@ def run_bench(session, settings: BenchSettings | None = None, *, plant=None, lim
 def _control_table(ok: pd.DataFrame, st: BenchSettings, plant) -> pd.DataFrame:
     if st.control is None:
         return pd.DataFrame()
+    if "tracking_rms" in ok.columns:  # only each route's representative runs the closed loop (task_body)
+        ok = ok[ok["tracking_rms"].notna()]
     cols = [*_KEYS, "tracking_rms", "tracking_rms_all", "energy_ua2"] + \
         [c for c in ok.columns if c.startswith(("use_", "violations_"))] + \
         ["n_fallback", "solve_ms_median", "solve_ms_p95", "solve_ms_max"]

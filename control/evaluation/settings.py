@@ -128,7 +128,9 @@ class ControlSettings:
 
 
 def _default_methods():
-    return (MethodSpec("indirect", "subspace"), MethodSpec("direct", "lsq"))
+    # every registered method of each route (ridge ARX and subspace; least squares and Hankel): a route is then
+    # represented by its best method on the training trials (tables._with_best), not by one chosen in advance
+    return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1])))
 
 
 @dataclass(frozen=True)
@@ -137,8 +139,9 @@ class BenchSettings:
 
     Parameters
     ----------
-    methods : tuple of MethodSpec, default subspace identification (indirect) and least-squares SPC (direct)
-        At least one method per route.
+    methods : tuple of MethodSpec, default every registered method of each route
+        At least one method per route. With several methods on a route, each split also represents the route by
+        its best method on the training trials (nested: a fit on part of them, scored on the rest).
     past_steps : int, default 10
         Past window of every method that takes one (ARX: both lag counts), samples.
     horizon_steps : int, default 20

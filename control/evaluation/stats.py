@@ -2,7 +2,10 @@
 
 Every figure of the benchmark is a mean over its seeded splits with a 95 % Student-t interval
 ``mean ± t_{0.975, n−1} · s / √n``; route differences are paired by split, and a route is called better only when
-the interval of the paired difference excludes zero.
+the interval of the paired difference excludes zero **and** the mean difference is at least a practical margin:
+below :data:`ABSOLUTE_MARGIN` for R² (0.1 point for VAF in percent), or below :data:`RELATIVE_MARGIN` of the
+reference value for every other metric (times, tracking error, energy), the routes are reported as ``"equivalent"`` (issue 13: a difference
+of R² 3e-15 was called a win because its interval excluded zero).
 """
 
 from __future__ import annotations
@@ -12,7 +15,26 @@ import math
 import numpy as np
 from scipy import stats
 
-__all__ = ["t_interval", "paired_verdict"]
+__all__ = ["t_interval", "paired_verdict", "ABSOLUTE_MARGIN", "RELATIVE_MARGIN", "practical_margin"]
+
+#: Differences of a fraction (R²) smaller than this are of no practical consequence (our own margin: a thousandth
+#: of the output variance; in VAF percent it is 0.1 point).
+ABSOLUTE_MARGIN = 1e-3
+#: ... nor are differences smaller than this share of the reference value (any metric, e.g. seconds, µA²).
+RELATIVE_MARGIN = 0.01
+
+
+def practical_margin(metric: str, reference: float) -> float:
+    """The margin below which a mean difference of ``metric`` is reported as equivalent.
+
+    :data:`ABSOLUTE_MARGIN` for R² (names starting ``r2``), 100 × it for VAF in percent (``vaf``), and
+    :data:`RELATIVE_MARGIN` of ``|reference|`` for every other metric.
+    """
+    if metric.startswith("r2"):
+        return ABSOLUTE_MARGIN
+    if metric.startswith("vaf"):
+        return 100 * ABSOLUTE_MARGIN
+    return RELATIVE_MARGIN * abs(float(reference)) if np.isfinite(reference) else 0.0
 
 
 def t_interval(values, level: float = 0.95) -> tuple[float, float, float]:
@@ -47,7 +69,7 @@ def t_interval(values, level: float = 0.95) -> tuple[float, float, float]:
     return mean, mean - half, mean + half
 
 
-def paired_verdict(differences, higher_is_better: bool) -> tuple[float, float, float, str]:
+def paired_verdict(differences, higher_is_better: bool, margin: float = 0.0) -> tuple[float, float, float, str]:
     """The t-interval of paired differences ``direct − indirect`` and which route it favours.
 
     Parameters
@@ -56,21 +78,28 @@ def paired_verdict(differences, higher_is_better: bool) -> tuple[float, float, f
         Direct minus indirect, one value per split (NaNs dropped).
     higher_is_better : bool
         Whether a larger value of the metric is better.
+    margin : float, default 0
+        Practical margin (:func:`practical_margin`): a mean difference smaller in magnitude is ``"equivalent"``.
 
     Returns
     -------
     mean, low, high : float
         As :func:`t_interval`.
-    better : {"direct", "indirect", "neither"}
-        ``neither`` when the interval contains zero or cannot be formed (fewer than two splits).
+    better : {"direct", "indirect", "equivalent", "neither"}
+        ``equivalent`` when ``|mean| < margin``; else ``neither`` when the interval contains zero or cannot be
+        formed (fewer than two splits).
 
     Examples
     --------
     >>> paired_verdict([0.1, 0.2, 0.15], higher_is_better=True)[3]
     'direct'
+    >>> paired_verdict([3e-15, 3.1e-15, 2.9e-15], higher_is_better=True, margin=1e-3)[3]
+    'equivalent'
     """
     mean, lo, hi = t_interval(differences)
-    if not (np.isfinite(lo) and np.isfinite(hi)) or lo <= 0 <= hi:
+    if np.isfinite(mean) and abs(mean) < float(margin):
+        better = "equivalent"
+    elif not (np.isfinite(lo) and np.isfinite(hi)) or lo <= 0 <= hi:
         better = "neither"
     else:
         better = "direct" if (mean > 0) == higher_is_better else "indirect"

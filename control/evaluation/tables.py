@@ -12,7 +12,7 @@ import math
 import pandas as pd
 
 from .settings import BenchSettings
-from .stats import paired_verdict, t_interval
+from .stats import paired_verdict, practical_margin, t_interval
 from .tasks import _Task
 
 __all__ = ["METRICS"]
@@ -34,10 +34,11 @@ def _keys(st: BenchSettings, task: _Task) -> dict:
 
 
 def _task_row(st: BenchSettings, task: _Task, res: dict) -> dict:
-    row = {**_keys(st, task), "status": "failed" if "error" in res else "ok", "error": res.get("error", ""),
+    status = "failed" if "error" in res else "skipped" if "skipped" in res else "ok"
+    row = {**_keys(st, task), "status": status, "error": res.get("error", res.get("skipped", "")),
            "full_train": task.setting.n_train is None, "warnings": " | ".join(res.get("warnings", [])),
            "total_s": res["total_s"]}
-    if "error" in res:
+    if status != "ok":
         return row
     ks, fr = res["kstep"], res["freerun"]
     H = task.setting.horizon_steps
@@ -47,9 +48,37 @@ def _task_row(st: BenchSettings, task: _Task, res: dict) -> dict:
                r2_mean=float(ks["r2"].mean()), r2_step1=float(ks.loc[ks["step"] == 1, "r2"].mean()),
                r2_last=float(ks.loc[ks["step"] == H, "r2"].mean()), vaf_mean=float(ks["vaf"].mean()),
                r2_freerun=float(fr["r2"].mean()), vaf_freerun=float(fr["vaf"].mean()))
+    if "inner_r2" in res:
+        row["inner_r2"] = res["inner_r2"]
     if "loop" in res:
         row.update(res["loop"], control_s=res["control_s"])
     return row
+
+
+def best_label(route: str) -> str:
+    """The label of a route represented by its best method on the training trials."""
+    return f"{route} (best on training)"
+
+
+def _with_best(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
+    """The task rows plus, for each route with several methods, the rows of its best method per split.
+
+    The best method of a split is the one with the highest ``inner_r2`` (mean k-step R² of a fit on part of the
+    split's training trials, scored on the rest; nested, the held-out trials untouched); its rows at every setting
+    of that split are repeated under :func:`best_label`, with ``chosen`` naming the method. Only that method's
+    tasks run the closed loop, so the closed-loop figures of a route are those of its best method.
+    """
+    if "inner_r2" not in tasks.columns:
+        return tasks
+    ok = tasks[(tasks["status"] == "ok") & tasks["inner_r2"].notna()]
+    extra = []
+    for (split, route), g in ok.groupby(["split", "route"]):
+        if g["label"].nunique() < 2 or not g["inner_r2"].notna().any():
+            continue
+        chosen = g.loc[g["inner_r2"].idxmax(), "label"]
+        rows = tasks[(tasks["split"] == split) & (tasks["label"] == chosen) & (tasks["status"] == "ok")]
+        extra.append(rows.assign(label=best_label(route), method="best", chosen=chosen))
+    return pd.concat([tasks, *extra], ignore_index=True) if extra else tasks
 
 
 def _prediction_rows(keys: dict, res: dict) -> pd.DataFrame:
@@ -65,7 +94,7 @@ def _assemble(st: BenchSettings, tasks, results) -> dict:
     for task, res in zip(tasks, results):
         keys = _keys(st, task)
         rows.append(_task_row(st, task, res))
-        if "error" in res:
+        if "error" in res or "skipped" in res:
             continue
         pred.append(_prediction_rows(keys, res))
         if res.get("prediction_trace") is not None and not res["prediction_trace"].empty:
@@ -101,6 +130,7 @@ def _sweep_members(tasks: pd.DataFrame, st: BenchSettings) -> dict:
 
 
 def _sweeps(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
+    tasks = _with_best(tasks, st)
     rows = []
     for sweep, (sub, col) in _sweep_members(tasks, st).items():
         groups = sub.groupby(["label", "route", "method"] + ([col] if col else []), sort=True)
@@ -117,31 +147,38 @@ def _sweeps(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
 
 
 def _comparison(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
-    """Paired (same split, same setting) differences direct − indirect for every pair of methods."""
+    """Paired (same split, same setting) differences direct − indirect for every pair of methods, and for the
+    routes represented by their best method on the training trials (when a route has several)."""
+    tasks = _with_best(tasks, st)
     ind = [m.label for m in st.methods if m.route == "indirect"]
     dirs = [m.label for m in st.methods if m.route == "direct"]
+    if set(tasks["label"]) >= {best_label("indirect"), best_label("direct")}:
+        ind, dirs = ind + [best_label("indirect")], dirs + [best_label("direct")]
     rows = []
     for sweep, (sub, col) in _sweep_members(tasks, st).items():
         values = sorted(sub[col].unique()) if col else [None]
         for value in values:
             part = sub if col is None else sub[sub[col] == value]
+            wides = {metric: part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+                     for metric in METRICS if metric in part.columns}  # once per part, not per pair
             for a in ind:
                 for b in dirs:
-                    rows += _paired(part, a, b, sweep, value)
+                    rows += _paired(wides, a, b, sweep, value)
     return pd.DataFrame(rows, columns=["sweep", "value", "indirect", "direct", "metric", "n", "mean_difference",
                                        "ci_low", "ci_high", "better"])
 
 
-def _paired(part, a, b, sweep, value) -> list:
+def _paired(wides, a, b, sweep, value) -> list:
     rows = []
     for metric, higher in METRICS.items():
-        if metric not in part.columns:
+        if metric not in wides:
             continue
-        wide = part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+        wide = wides[metric]
         if a not in wide or b not in wide:
             continue
         d = (wide[b] - wide[a]).dropna()
-        mean, lo, hi, better = paired_verdict(d, higher)
+        margin = practical_margin(metric, float(wide[a].mean()))
+        mean, lo, hi, better = paired_verdict(d, higher, margin)
         rows.append({"sweep": sweep, "value": math.nan if value is None else float(value), "indirect": a,
                      "direct": b, "metric": metric, "n": int(d.size), "mean_difference": mean, "ci_low": lo,
                      "ci_high": hi, "better": better})

@@ -19,7 +19,7 @@ import pandas as pd
 from ...sysid import Session, StimsteerError, freerun_scores, kstep_scores
 from ...sysid._records import window_stride
 from .closed_loop import _channel_index, _control, _output_stats, _rerecord
-from .tasks import _cached, _Context, _fit, _Task
+from .tasks import _cached, _Context, _fit, _seed, _Task
 
 
 def _run_task(ctx: _Context, task: _Task) -> dict:
@@ -48,6 +48,10 @@ def _session_at(ctx: _Context, scale: float) -> Session:
 def _task_body(ctx: _Context, task: _Task) -> dict:
     st = ctx.settings
     spec, setting = st.methods[task.method_index], task.setting
+    choice = _route_choice(ctx, task)
+    if choice is not None and not _is_base(st, setting) and choice.get(spec.route, spec.label) != spec.label:
+        # the sweeps compare the routes by their representatives; every method is fitted and scored at the base
+        return {"skipped": f"not {spec.route}'s best method on the training trials of split {task.split_index}"}
     session = _session_at(ctx, setting.noise_scale)
     train, test = session.select_trials(task.train), session.select_trials(task.split.test)
     t0 = time.perf_counter()
@@ -60,11 +64,69 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     predict_s = time.perf_counter() - t0
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
            "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
+    if choice is not None and spec.label in choice:
+        out["inner_r2"] = choice[spec.label]
     if task.keep_traces:
         out["prediction_trace"] = _prediction_trace(predictor, test, H, _trace_channels(ctx, train))
-    if st.control is not None:
+    # closed loop with each route's representative only: every method is fitted and scored, the route is steered
+    # by its best method on the training trials (which keeps the benchmark's cost that of one method per route)
+    if st.control is not None and (choice is None or choice.get(spec.route, spec.label) == spec.label):
         out.update(_control(ctx, task, predictor, session))
     return out
+
+
+def _route_choice(ctx: _Context, task: _Task):
+    """Inner scores of every method of the split (by label) and each route's best label (by route); None when no
+    route has several methods. Computed once per split and process (deterministic, training trials only)."""
+    st = ctx.settings
+    if all(sum(m.route == r for m in st.methods) < 2 for r in ("indirect", "direct")):
+        return None
+
+    def make():
+        train = ctx.session.select_trials(task.split.train)
+        scores = {m.label: _inner_score(m, train, st, st.horizon_steps, task.split_index) for m in st.methods}
+        best = {}
+        for m in st.methods:
+            top = best.get(m.route)
+            if top is None or (np.nan_to_num(scores[m.label], nan=-np.inf) > np.nan_to_num(scores[top], nan=-np.inf)):
+                best[m.route] = m.label
+        return {**scores, **best}
+
+    return _cached((ctx.token, "route choice", task.split_index), make)
+
+
+def _is_base(st, setting) -> bool:
+    return setting.n_train is None and setting.noise_scale == 1.0 and setting.horizon_steps == st.horizon_steps
+
+
+#: Share of a split's training trials held out to choose each route's best method (nested inside the training).
+_INNER_FRACTION = 0.25
+#: At most this many k-step windows score a method on the inner held-out trials (evenly strided): a ranking of a
+#: few methods needs far fewer windows than the reported figures.
+_INNER_WINDOWS = 500
+
+
+def _inner_score(spec, train: Session, st, H: int, split_index: int) -> float:
+    """Mean k-step R² of ``spec`` fitted on part of the training trials and scored on the rest (NaN if impossible).
+
+    The inner split depends on the split only, so every method of a route is judged on the same trials; the
+    held-out trials of the split are never touched.
+    """
+    n = train.n_trials
+    n_val = max(1, int(round(_INNER_FRACTION * n)))
+    if n - n_val < 2:
+        return float("nan")
+    perm = np.random.default_rng(_seed(st.seed, 4, split_index)).permutation(n)
+    val, fit_on = sorted(int(i) for i in perm[:n_val]), sorted(int(i) for i in perm[n_val:])
+    try:
+        predictor = _fit(spec, train.select_trials(fit_on), st.past_steps, H)
+        inner = train.select_trials(val)
+        past = int(predictor.past_steps_)
+        ks = kstep_scores(predictor, inner, horizon_steps=H,
+                          stride_steps=window_stride(inner, past, H, min(st.max_windows, _INNER_WINDOWS)))
+    except StimsteerError:
+        return float("nan")
+    return float(ks.kstep["r2"].mean())
 
 
 def _selection(predictor) -> str:

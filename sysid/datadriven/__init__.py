@@ -20,8 +20,9 @@ and ``||g||²`` or ``||(I − Π) g||²``, both minimised with ``g ⊥ range(Q)`
 streamed segment by segment (:func:`~stimsteer.sysid.hankel.row_space_factor`): memory does not grow with the
 number of samples.
 
-Strengths are relative to the data, so one grid fits sessions of any length and units: with
-``s = ||H||_F² / n_rows`` (the mean squared singular value per row of ``H``), the absolute ridge strength is
+Strengths are relative to the data, so one grid fits sessions of any length and units: every input and output
+channel is first divided by its root mean square (``channel_scale_``), so predictions do not depend on units
+(µV or mV give the same predictions up to the factor), and with ``s = ||H||_F² / n_rows`` of these rows (the mean squared singular value per row of ``H``), the absolute ridge strength is
 ``alpha · s`` and the absolute ``λ_g`` is ``lambda_g · s`` (``lambda_g · s / sqrt(K / n_rows)`` for ℓ1, which
 makes ``λ_g ||g||_1`` of the size of ``λ_g ||g||²`` for a dense ``g``). Strengths are chosen on held-out trials
 inside the training session (folds of whole trials, seeded).

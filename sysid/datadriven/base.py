@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from .._offsets import ShiftedOutputs, output_mean
+from .._views import SourceView
 from ..excitation import check_excitation
 from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
@@ -51,6 +52,34 @@ def _row_order(m: int, p: int, past: int, horizon: int) -> np.ndarray:
     L = past + horizon
     return np.concatenate([np.arange(m * past), m * L + np.arange(p * past),
                            np.arange(m * past, m * L), m * L + np.arange(p * past, p * L)])
+
+
+# ------------------------------------------------------------------------------------------------ channel scales
+def _channel_rms(source, chunk_rows: int = 65536) -> np.ndarray:
+    """Root mean square of every input then output channel over the valid in-trial samples (ones where zero)."""
+    m, p = int(source.n_inputs), int(source.n_outputs)
+    n, s2 = 0, np.zeros(m + p)
+    for a, b in source.segments():
+        for k0 in range(a, b, chunk_rows):
+            u, y, _mask = source.read(k0, min(b, k0 + chunk_rows))
+            z = np.hstack([np.asarray(u, dtype=np.float64), np.asarray(y, dtype=np.float64)])
+            n += z.shape[0]
+            s2 += np.einsum("ij,ij->j", z, z)
+    rms = np.sqrt(s2 / max(n, 1))
+    rms[~(rms > 0) | ~np.isfinite(rms)] = 1.0
+    return rms
+
+
+class _ScaledChannels(SourceView):
+    """A view whose inputs and outputs are divided, channel by channel, by ``scale = [s_u; s_y]`` on every read."""
+
+    def __init__(self, source, scale: np.ndarray):
+        super().__init__(source)
+        self._su, self._sy = scale[:int(source.n_inputs)], scale[int(source.n_inputs):]
+
+    def read(self, start: int, stop: int):
+        u, y, mask = self._src.read(start, stop)
+        return np.asarray(u, dtype=np.float64) / self._su, np.asarray(y, dtype=np.float64) / self._sy, mask
 
 
 # ------------------------------------------------------------------------------------------------ data pass
@@ -173,8 +202,11 @@ class _DirectPredictor(BasePredictor):
             session = ShiftedOutputs(session, self.output_offset_)
         order = check_excitation(session, past_steps=past, horizon_steps=horizon, n_states=self.n_states,
                                  stacklevel=6)
-        folds, scheme, std, trial_fold = _collect(session, past, horizon, self.n_splits if n_candidates > 1 else 1,
-                                      self.seed, keep_full)
+        # Per-channel scaling to unit root mean square makes every strength, the slack weight and the fit itself
+        # independent of the channels' units (issue 13: µV and mV gave predictions 25 % apart at a fixed alpha).
+        self.channel_scale_ = _channel_rms(session)
+        folds, scheme, std, trial_fold = _collect(_ScaledChannels(session, self.channel_scale_), past, horizon,
+                                                  self.n_splits if n_candidates > 1 else 1, self.seed, keep_full)
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
@@ -227,6 +259,19 @@ class _DirectPredictor(BasePredictor):
         b = np.concatenate([up[:, -past:].reshape(W, -1), y_rel.reshape(W, -1), full.reshape(W, -1)], axis=1)
         return b, n_future
 
+    def _row_scales(self):
+        """Scales of the entries of ``b`` (inputs past, outputs past, inputs future) and of ``vec(y_future)``."""
+        sc = getattr(self, "channel_scale_", None)
+        m, p, T, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
+        sc = np.ones(m + p) if sc is None else np.asarray(sc, dtype=np.float64)
+        su, sy = sc[:m], sc[m:]
+        return np.concatenate([np.tile(su, T), np.tile(sy, T), np.tile(su, N)]), np.tile(sy, N)
+
+    def _unscaled(self, G_scaled: np.ndarray) -> np.ndarray:
+        """A map on scaled rows (``b / s_b -> y / s_y``) as a map in the channels' units."""
+        s_b, s_y = self._row_scales()
+        return (s_y[:, None] * G_scaled) / s_b[None, :]
+
     def _linear_many(self, G, u_past, y_past, u_future):
         b, n_future = self._batch_windows(u_past, y_past, u_future)
         y = b @ G.T
@@ -250,13 +295,27 @@ class _DirectPredictor(BasePredictor):
         return PredictionMaps(P=P, F=np.ascontiguousarray(Gf[:, :m * horizon]), c=c, past_steps=past,
                               horizon_steps=horizon)
 
+    @property
+    def chain_spectral_radius_(self) -> float | None:
+        """Spectral radius of the zero-input map from one chained block's past window to the next.
+
+        Predictions longer than ``max_horizon_steps_`` chain blocks; they stay bounded only when it is below 1
+        (:func:`stimsteer.sysid.chaining.chain_radius`). None for a predictor without linear maps (ℓ1).
+        """
+        check_fitted(self, "past_steps_")
+        if getattr(self, "_chain_radius", None) is None:
+            from ..chaining import chain_radius
+
+            self._chain_radius = chain_radius(self)
+        return self._chain_radius
+
     def rest_window(self) -> tuple[np.ndarray, np.ndarray]:
         """A past window at rest: zero input and the output offset, shapes (past_steps_, m) and (past_steps_, p)."""
         check_fitted(self, "past_steps_")
         return np.zeros((self.past_steps_, self.n_inputs_)), np.tile(self._offset(), (self.past_steps_, 1))
 
     # ---------------------------------------------------------------------------------------- storage
-    _fitted_arrays: tuple = ()
+    _fitted_arrays: tuple = ("channel_scale_",)
     _fitted_scalars: tuple = ("past_steps_", "max_horizon_steps_", "n_inputs_", "n_outputs_", "excitation_order_",
                               "cv_scheme_", "sample_rate_hz_", "n_columns_", "data_scale_")
 
@@ -303,5 +362,8 @@ class _DirectPredictor(BasePredictor):
             setattr(obj, k, units if len(units) == n else ("",) * n)  # files written before units were stored
         obj.cv_table_ = pd.DataFrame({k: np.asarray(v) for k, v in fitted.pop("cv_table_").items()})
         obj.output_offset_ = np.asarray(fitted.pop("output_offset_", np.zeros(obj.n_outputs_)), dtype=np.float64)
+        # files written before per-channel scaling: unit scales (their maps are already in the channels' units)
+        obj.channel_scale_ = np.asarray(fitted.pop("channel_scale_", np.ones(obj.n_inputs_ + obj.n_outputs_)),
+                                        dtype=np.float64)
         obj._mark_fitted()
         return obj, fitted

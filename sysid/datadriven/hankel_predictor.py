@@ -14,6 +14,8 @@ from .._base import check_fitted
 from ..protocols import DataBlocks, PredictionMaps
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
 from ..hankel import _one_blas_thread
+from .consistency import choose_consistent, plan_gaps
+from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
@@ -129,7 +131,8 @@ class HankelPredictor(_DirectPredictor):
     lambdas_g : sequence of float, default ``10**-4 … 10**2`` (7 values)
         Candidate strengths of ``R(g)``, relative to the data (module docstring), each > 0.
     lambda_y : float, default 1e3
-        Weight of the squared slack ``||Yp g − vec(y_past)||²``, > 0.
+        Weight of the squared slack ``||Yp g − vec(y_past)||²``, > 0, relative to the data: the slack is taken on
+        the unit-RMS channels the predictor is fitted on (``channel_scale_``).
     compress : bool, default True
         Replace the data matrix by its row-space factor (exact for "projection" and "l2"; ignored for "l1").
     n_states : int, optional
@@ -158,11 +161,16 @@ class HankelPredictor(_DirectPredictor):
     lambda_g_ : float
         Absolute weight of ``R(g)`` in the problem solved (``lambda_g_relative_ · data_scale_``, see Notes).
     lambda_g_relative_ : float
-        Chosen candidate from ``lambdas_g``.
+        Chosen candidate from ``lambdas_g``: the lowest held-out error; candidates tied with it (relative 1e-6,
+        as on full-row-rank data, where every strength predicts alike) are ranked by the plan gap, the smallest
+        winning (:mod:`stimsteer.sysid.datadriven.consistency`).
+    channel_scale_ : ndarray, shape (n_inputs + n_outputs,)
+        Root mean square of each input then output channel; the blocks hold the rows of the channels divided by
+        it, so predictions do not depend on the channels' units.
     lambda_y_ : float
     data_scale_ : float
     cv_table_ : pandas.DataFrame
-        As :class:`LsqPredictor`.
+        As :class:`LsqPredictor`, plus ``plan_gap`` (ℓ2 and projection, several candidates).
     past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, n_columns_, excitation_order_ : int
     cv_scheme_ : str
         ``"trials"`` (folds of whole trials), ``"contiguous blocks (one trial)"`` or ``"none"`` (one candidate).
@@ -187,10 +195,8 @@ class HankelPredictor(_DirectPredictor):
     For the ℓ2 and projection regularisers the prediction is linear in ``b``; held-out errors are computed from
     the folds' row-space factors as for :class:`LsqPredictor`. For ℓ1 each fold scores
     ``_L1_VALIDATION_WINDOWS`` evenly spread held-out windows. As ``λ_g → ∞`` the projection predictor tends to
-    the least-squares one with ``alpha → 0`` (Dörfler, Coulson, Markovsky 2023). When ``[Up; Yp; Uf]`` has full
-    row rank (noisy data) the two coincide for every ``λ_g > 0``: ``g = D⁺ b`` meets the constraints with zero slack
-    and zero penalty. The strength then matters only inside a controller, where the tracking cost competes with
-    the penalty.
+    the least-squares one with ``alpha → 0`` (Dörfler, Coulson, Markovsky 2023); on full-row-rank data every
+    ``λ_g`` predicts alike and the strength matters only inside a controller (the rule above).
 
     References
     ----------
@@ -216,7 +222,7 @@ class HankelPredictor(_DirectPredictor):
     _strength_param = "lambdas_g"
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("regularizer_", "lambda_g_", "lambda_g_relative_",
                                                           "lambda_y_")
-    _fitted_arrays = ("reg_matrix_",)
+    _fitted_arrays = _DirectPredictor._fitted_arrays + ("reg_matrix_",)
 
     def __init__(self, *, past_steps, horizon_steps, regularizer="projection", lambdas_g=_DEFAULT_LAMBDAS_G,
                  lambda_y=1e3, compress=True, n_states=None, n_splits=3, seed=0, solver_options=None,
@@ -281,11 +287,15 @@ class HankelPredictor(_DirectPredictor):
         score = self._score_l1 if l1 else self._score_quadratic
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].factor.shape[0])
-        self.regularizer_, self.lambda_y_, self.lambda_g_relative_ = self.regularizer, lam_y, rel
         self.data_scale_ = _data_scale(total.factor)
+        self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
+        if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
+            M = None if self.regularizer == "l2" else self.reg_matrix_
+            table["plan_gap"] = plan_gaps(self.blocks_, M, lambdas * self.data_scale_, lam_y)
+            rel = float(lambdas[choose_consistent(table, table["plan_gap"].to_numpy())])
+        self.regularizer_, self.lambda_y_, self.lambda_g_relative_ = self.regularizer, lam_y, rel
         self.n_columns_ = total.n_columns
         self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.factor.shape[0])
-        self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
         self.cv_table_ = table
         self._l1_cache = self._map_cache = None
         return self
@@ -358,7 +368,8 @@ class HankelPredictor(_DirectPredictor):
         if self.regularizer_ != "l1":
             return self._linear_many(self._prediction_map(), u_past, y_past, u_future)
         b, n_future = self._batch_windows(u_past, y_past, u_future)
-        y = np.stack([self.blocks_.Yf @ self._solve(row) for row in b]) if b.shape[0] else \
+        s_b, s_y = self._row_scales()
+        y = np.stack([s_y * (self.blocks_.Yf @ self._solve(row / s_b)) for row in b]) if b.shape[0] else \
             np.zeros((0, self.blocks_.Yf.shape[0]))
         return y.reshape(b.shape[0], self.max_horizon_steps_, self.n_outputs_)[:, :n_future] + self._offset()
 
@@ -376,12 +387,24 @@ class HankelPredictor(_DirectPredictor):
         return self._maps_from(self._prediction_map(), past_steps, horizon_steps)
 
     def data_blocks(self) -> DataBlocks:
-        """The (compressed) Hankel blocks, regulariser and strengths, as the DeePC formulation uses them."""
+        """The (compressed) Hankel blocks in the channels' units, regulariser and strengths, for DeePC.
+
+        The blocks are fitted on unit-RMS channels; here their rows are multiplied back by the channel scales (the
+        row space, hence the projection regulariser, is unchanged). The slack weight becomes
+        ``lambda_y_ / mean(s_y²)``, which reproduces the fitted problem exactly for one output or outputs of equal
+        scale (the DeePC formulation has one slack weight for all outputs).
+        """
         check_fitted(self, "blocks_")
         b = self.blocks_
         M = getattr(self, "reg_matrix_", None)
-        return DataBlocks(Up=b.Up, Yp=b.Yp, Uf=b.Uf, Yf=b.Yf, regularizer=str(self.regularizer_),
-                          lambda_g=float(self.lambda_g_), lambda_y=float(self.lambda_y_),
+        m, p = self.n_inputs_, self.n_outputs_
+        sc = np.asarray(getattr(self, "channel_scale_", np.ones(m + p)), dtype=np.float64)
+        su, sy = sc[:m], sc[m:]
+        T, N = self.past_steps_, self.max_horizon_steps_
+        return DataBlocks(Up=np.tile(su, T)[:, None] * b.Up, Yp=np.tile(sy, T)[:, None] * b.Yp,
+                          Uf=np.tile(su, N)[:, None] * b.Uf, Yf=np.tile(sy, N)[:, None] * b.Yf,
+                          regularizer=str(self.regularizer_),
+                          lambda_g=float(self.lambda_g_), lambda_y=float(self.lambda_y_) / float(np.mean(sy ** 2)),
                           reg_matrix=None if M is None else np.asarray(M, np.float64), output_offset=self._offset())
 
     @_one_blas_thread
@@ -400,15 +423,15 @@ class HankelPredictor(_DirectPredictor):
             predicted ``vec(y_future)`` over the full horizon, less ``output_offset_`` with ``centre_outputs``.
         """
         b, _ = self._batch_windows(*self._window(u_past, y_past, u_future))
-        return self._solve(b[0])
+        return self._solve(b[0] / self._row_scales()[0])
 
     @_one_blas_thread
     def _prediction_map(self) -> np.ndarray:
         if getattr(self, "_map_cache", None) is None:
             M = None if self.regularizer_ == "l2" else self.reg_matrix_
             n_b = self.blocks_.Up.shape[0] + self.blocks_.Yp.shape[0] + self.blocks_.Uf.shape[0]
-            self._map_cache = self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_,
-                                                         np.eye(n_b))
+            self._map_cache = self._unscaled(self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_,
+                                                                        self.lambda_y_, np.eye(n_b)))
         return self._map_cache
 
     def _solve(self, b: np.ndarray) -> np.ndarray:
@@ -448,36 +471,3 @@ class HankelPredictor(_DirectPredictor):
                            None if obj.regularizer_ == "l1" else np.asarray(fitted["reg_matrix_"], dtype=np.float64))
         obj._l1_cache = obj._map_cache = None
         return obj
-
-
-class _L1Solver:
-    """The ℓ1 problem built once in cvxpy with Parameters (DPP); each solve only assigns values."""
-
-    def __init__(self, blocks: HankelBlocks, lam_y: float, solver_options):
-        import cvxpy as cp
-
-        self._cp = cp
-        Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
-        self.g = cp.Variable(Up.shape[1])
-        self.up, self.yp, self.uf = (cp.Parameter(B.shape[0]) for B in (Up, Yp, Uf))
-        self.lam = cp.Parameter(nonneg=True)
-        cost = lam_y * cp.sum_squares(Yp @ self.g - self.yp) + self.lam * cp.norm1(self.g)
-        self.problem = cp.Problem(cp.Minimize(cost), [Up @ self.g == self.up, Uf @ self.g == self.uf])
-        self.sizes = (Up.shape[0], Yp.shape[0])
-        self.options = {"solver": "CLARABEL", **(solver_options or {})}
-
-    def solve(self, b: np.ndarray, lam: float) -> np.ndarray:
-        nu, ny = self.sizes
-        self.up.value, self.yp.value, self.uf.value = b[:nu], b[nu:nu + ny], b[nu + ny:]
-        self.lam.value = float(lam)
-        try:
-            self.problem.solve(**self.options)
-        except self._cp.error.SolverError as exc:
-            raise SolverError(f"the l1 Hankel problem could not be solved ({exc}); try solver_options="
-                              "{'solver': 'CLARABEL'} or the 'projection' regularizer.") from None
-        if self.problem.status not in ("optimal", "optimal_inaccurate") or self.g.value is None:
-            raise SolverError(
-                f"the l1 Hankel problem ended with status {self.problem.status!r}; expected 'optimal'. Try another "
-                "solver via solver_options or the 'projection' regularizer."
-            )
-        return np.asarray(self.g.value, dtype=np.float64)

@@ -57,6 +57,9 @@ class LsqPredictor(_DirectPredictor):
     alpha_ : float
         Chosen candidate from ``alphas``; ``ridge_strength_ = alpha_ · data_scale_`` is the absolute strength.
     ridge_strength_, data_scale_ : float
+    channel_scale_ : ndarray, shape (n_inputs + n_outputs,)
+        Root mean square of each input then output channel: the fit is made on the channels divided by it (so the
+        predictor does not depend on units); ``Kp_`` and ``Kf_`` are given back in the channels' units.
     cv_table_ : pandas.DataFrame
         ``candidate``, ``validation_error`` (mean squared error per predicted value on held-out folds, each output
         scaled by its standard deviation, pooled over folds), ``fold_i`` (the same error on fold ``i`` alone).
@@ -97,7 +100,7 @@ class LsqPredictor(_DirectPredictor):
 
     storage_kind = "lsq_predictor"
     _strength_param = "alphas"
-    _fitted_arrays = ("Kp_", "Kf_")
+    _fitted_arrays = _DirectPredictor._fitted_arrays + ("Kp_", "Kf_")
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("alpha_", "ridge_strength_")
 
     def __init__(self, *, past_steps, horizon_steps, alphas=_DEFAULT_ALPHAS, n_states=None, n_splits=3, seed=0,
@@ -144,7 +147,7 @@ class LsqPredictor(_DirectPredictor):
         alpha, table = self._select(folds, alphas, weights, score)
         total = _merge(folds, folds[0].factor.shape[0])
         scale = _data_scale(total.factor)
-        theta = _lsq_map(total.factor, n_b, alpha * scale)
+        theta = self._unscaled(_lsq_map(total.factor, n_b, alpha * scale))  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])
         self.alpha_, self.data_scale_, self.ridge_strength_ = alpha, scale, alpha * scale

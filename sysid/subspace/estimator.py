@@ -19,6 +19,7 @@ from ..statespace import StateSpaceModel
 from .gram import _Layout, _hankel_gram, _partition
 from .heldout import _heldout_error
 from .projection import _Projection, _RTOL, _cond_text, _fit_order
+from .selection import choose_stable, order_tables
 
 __all__ = ["SubspaceId"]
 
@@ -57,16 +58,21 @@ class SubspaceId(BasePredictor):
     order : int or None, default None
         Number of states; None chooses it (see ``order_selection``).
     max_order : int or None, default None
-        Largest order tried; default ``min(10, max possible)``, the max possible being ``min(p (f − 1), p i)``.
+        Largest order tried; default ``min(10, max possible)``, the max possible being ``min(p (f − 1), p i)``
+        and the states the data support; by default the cap doubles (up to the max possible) while the held-out
+        error is lowest at it, and a cap that still binds is reported in ``selection_notes_``.
     weighting : {"n4sid", "moesp", "cva"}, default "n4sid"
         Row/column weighting of the oblique projection before the SVD.
-    feedthrough : bool, default False
-        Estimate a direct term ``D``; default fixes ``D = 0`` (stimulation does not reach the recording in the
-        same sample).
+    feedthrough : bool or "auto", default "auto"
+        Estimate a direct term ``D`` (True) or fix ``D = 0`` (False: stimulation does not reach the recording in
+        the same sample); "auto" estimates it only when that lowers the best held-out error by more than the
+        order-selection tolerance (``feedthrough_`` says which).
     order_selection : dict or None, default None
         ``holdout_fraction`` (0.25): share of the training trials held out for the order check (with a single
         trial, the last share of each segment); ``tolerance`` (0.05): relative excess of held-out error over the
-        best order that still confirms the singular-value-gap order; ``seed`` (0) of the held-out draw.
+        best order that still makes an order acceptable (the gap order is preferred among acceptable orders, then
+        the smaller ones, and the first stable one is chosen; see :mod:`stimsteer.sysid.subspace.selection`);
+        ``seed`` (0) of the held-out draw.
     centre_outputs : bool, default False
         Identify the model on the outputs minus their training mean (``output_offset_``), for recordings with a
         baseline offset. ``predict`` then works in the recorded units (the offset is removed from the past and
@@ -85,7 +91,9 @@ class SubspaceId(BasePredictor):
     order_table_ : pandas.DataFrame
         One row per candidate order: ``order``, ``singular_value``, ``gap_ratio``, ``heldout_error`` (mean
         k-step squared error over steps 1..f ÷ mean square output, on the held-out part, model fitted on the
-        rest), ``stable``, ``selected``.
+        rest), ``stable`` (of the model fitted on the rest), ``selected``.
+    selection_notes_ : tuple of str
+        A stable order chosen over an unstable preferred one, an unstable order kept, or an order cap that binds.
     process_cov_, measurement_cov_, cross_cov_ : ndarray
         Residual covariances ``Q`` (n, n), ``R`` (p, p), ``S`` (n, p) in the session's units.
     is_stable_ : bool
@@ -140,7 +148,7 @@ class SubspaceId(BasePredictor):
     storage_kind = "subspace"
 
     def __init__(self, *, past_steps=10, future_steps=10, order=None, max_order=None, weighting="n4sid",
-                 feedthrough=False, order_selection=None, centre_outputs=False):
+                 feedthrough="auto", order_selection=None, centre_outputs=False):
         self.past_steps = past_steps
         self.future_steps = future_steps
         self.order = order
@@ -162,8 +170,8 @@ class SubspaceId(BasePredictor):
         f = self._int("future_steps", self.future_steps, 2)
         if self.weighting not in _WEIGHTINGS:
             raise InvalidParameterError(f"weighting must be one of {list(_WEIGHTINGS)}; got {self.weighting!r}.")
-        if not isinstance(self.feedthrough, (bool, np.bool_)):
-            raise InvalidParameterError(f"feedthrough must be True or False; got {self.feedthrough!r}.")
+        if not (isinstance(self.feedthrough, (bool, np.bool_)) or self.feedthrough == "auto"):
+            raise InvalidParameterError(f"feedthrough must be True, False or 'auto'; got {self.feedthrough!r}.")
         m, p = int(session.n_inputs), int(session.n_outputs)
         if m < 1:
             raise SessionError("subspace identification needs at least one input channel; the session has none.")
@@ -239,13 +247,17 @@ class SubspaceId(BasePredictor):
         proj_all = _Projection(S_all, L, self.weighting)
         proj_fit = _Projection(S_fit, L, self.weighting)
         sv = proj_all.singular_values
+        notes = []
         cfg["top"] = self._supported(sv, proj_fit.singular_values, cfg)
-        table = self._order_table(proj_fit, S_check, sv, cfg)
+        table = order_tables(self, proj_fit, S_check, sv, cfg, notes)
         gap = int(table["order"].iloc[int(np.argmax(table["gap_ratio"].to_numpy()))])
-        order = cfg["order"] if cfg["order"] is not None else self._choose(table, gap, cfg["tolerance"])
+        if cfg["order"] is not None:
+            order, mats = cfg["order"], _fit_order(proj_all, cfg["order"], self.feedthrough_)
+        else:
+            order, mats = choose_stable(table, gap, cfg["tolerance"], proj_all, self.feedthrough_, notes)
         table["selected"] = table["order"] == order
-        mats = _fit_order(proj_all, order, bool(self.feedthrough))
         self.order_gap_ = gap
+        self.selection_notes_ = tuple(notes)
         self._store(mats, scale, session, L, order, sv, table, how, grams[0][1])
 
     def _data(self, session, cfg):
@@ -310,14 +322,15 @@ class SubspaceId(BasePredictor):
                 f"{rank} are below {_SV_RTOL:g} of the largest (noise-free data of a smaller system, or inputs that "
                 f"excite too few modes). Use order <= {rank} or order=None."
             )
+        cfg["supported"] = rank
         return min(cfg["top"], rank)
 
-    def _order_table(self, proj_fit, S_check, sv, cfg) -> pd.DataFrame:
+    def _order_table(self, proj_fit, S_check, sv, cfg, start) -> pd.DataFrame:
         L = cfg["layout"]
         rows = []
         floor = np.finfo(float).eps * max(float(sv[0]), np.finfo(float).tiny)
-        for n in range(1, cfg["top"] + 1):
-            mats = _fit_order(proj_fit, n, bool(self.feedthrough))
+        for n in range(start, cfg["top"] + 1):
+            mats = _fit_order(proj_fit, n, self.feedthrough_)
             rows.append({
                 "order": n,
                 "singular_value": float(sv[n - 1]),
@@ -337,15 +350,6 @@ class SubspaceId(BasePredictor):
                 "constant or too smooth cannot separate the dynamics. Use a richer stimulation schedule "
                 "(`stimsteer schedule`)."
             )
-
-    @staticmethod
-    def _choose(table: pd.DataFrame, gap: int, tolerance: float) -> int:
-        """The gap order if its held-out error is within ``tolerance`` of the best, else the smallest order that is."""
-        err = table["heldout_error"].to_numpy()
-        ok = err <= err.min() * (1.0 + tolerance) + 1e-12
-        if ok[gap - 1]:
-            return gap
-        return int(table["order"].iloc[int(np.argmax(ok))])
 
     def _store(self, mats, scale, session, L, order, sv, table, how, n_columns) -> None:
         su, sy = scale[:L.m], scale[L.m:]
@@ -425,7 +429,8 @@ class SubspaceId(BasePredictor):
         check_fitted(self, "model_")
         md = self.model_
         params = {k: v for k, v in self.get_params().items() if v is not None}
-        params["feedthrough"] = int(bool(params["feedthrough"]))
+        if not isinstance(params["feedthrough"], str):
+            params["feedthrough"] = int(bool(params["feedthrough"]))
         params["centre_outputs"] = int(bool(params["centre_outputs"]))
         return {
             "params": params, "output_offset": np.asarray(self.output_offset_, dtype=np.float64),
@@ -435,6 +440,8 @@ class SubspaceId(BasePredictor):
                       "output_names": json.dumps(list(md.output_names)), "info": json.dumps(md.info),
                       "input_units": json.dumps(list(md.input_units)),
                       "output_units": json.dumps(list(md.output_units))},
+            "selection_notes": "\n".join(getattr(self, "selection_notes_", ())),
+            "feedthrough": int(self.feedthrough_),
             "order": self.order_, "order_gap": self.order_gap_, "singular_values": self.singular_values_,
             "order_table": {c: self.order_table_[c].to_numpy() for c in self.order_table_.columns},
             "process_cov": self.process_cov_, "measurement_cov": self.measurement_cov_,
@@ -446,7 +453,8 @@ class SubspaceId(BasePredictor):
     def from_state(cls, state: dict) -> "SubspaceId":
         """Rebuild a fitted estimator from :meth:`to_state`."""
         params = dict(state["params"])
-        params["feedthrough"] = bool(params.get("feedthrough", False))
+        ft = params.get("feedthrough", False)
+        params["feedthrough"] = ft if isinstance(ft, str) else bool(ft)
         params["centre_outputs"] = bool(params.get("centre_outputs", False))
         est = cls(**params)
         md = state["model"]
@@ -469,6 +477,8 @@ class SubspaceId(BasePredictor):
         for col in ("stable", "selected"):
             table[col] = table[col].astype(bool)
         est.order_table_ = table
+        est.feedthrough_ = bool(int(state.get("feedthrough", bool(np.any(est.model_.D != 0)))))
+        est.selection_notes_ = tuple(n for n in str(state.get("selection_notes", "")).split("\n") if n)
         est.process_cov_ = np.asarray(state["process_cov"], dtype=np.float64)
         est.measurement_cov_ = np.asarray(state["measurement_cov"], dtype=np.float64)
         est.cross_cov_ = np.asarray(state["cross_cov"], dtype=np.float64)

@@ -152,6 +152,8 @@ def test_predict_bad_inputs(model_file, session_file, tmp_path, capsys):
 def test_fit_warns_in_one_line_about_an_output_offset_a_subspace_model_cannot_carry(rng, tmp_path, capsys):
     n, length = 6, 150
     u = rng.standard_normal((n * length, 1))
+    for i in range(n):
+        u[i * length:i * length + 20] = 0.0  # a pre-stimulation baseline shows the resting level
     y = np.concatenate([TRUE.simulate(u[i * length:(i + 1) * length]) for i in range(n)]) + 40.0  # a baseline
     s = Session(u=u, y=y, sample_rate_hz=200.0, trials=[(i * length, (i + 1) * length) for i in range(n)],
                 input_names=["site_a"], input_units=["uA"], output_names=["lfp"], output_units=["mV"])

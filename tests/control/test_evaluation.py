@@ -135,6 +135,45 @@ def test_paired_verdict_names_a_route_only_when_the_interval_excludes_zero():
     assert paired_verdict([0.1], higher_is_better=True)[3] == "neither"  # no interval from one split
 
 
+def test_a_difference_below_the_practical_margin_is_equivalent_not_a_win():
+    # issue 13: "indirect better" on a difference of R² 3e-15 because the interval excluded zero
+    from stimsteer.control.evaluation.stats import practical_margin
+
+    d = [-3e-15, -3.1e-15, -2.9e-15]
+    assert paired_verdict(d, higher_is_better=True)[3] == "indirect"  # without a margin: the old verdict
+    assert paired_verdict(d, True, practical_margin("r2_last", 0.93))[3] == "equivalent"
+    assert practical_margin("r2_last", 0.5) == 1e-3 and practical_margin("vaf_mean", 93.0) == pytest.approx(0.1)
+    assert practical_margin("tracking_rms", 2.0) == pytest.approx(0.02)  # 1 % of the reference value
+    assert paired_verdict([0.1, 0.2, 0.15], True, practical_margin("r2_last", 0.8))[3] == "direct"
+
+
+def test_every_method_is_fitted_and_each_route_is_represented_by_its_best_on_training(seed):
+    session, plant = _session(seed)
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}), MethodSpec("indirect", "subspace"),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}), MethodSpec("direct", "hankel"))
+    r = run_bench(session, _settings(methods=methods, control=None), plant=plant, n_workers=1, progress=False)
+    assert set(r.tasks["label"]) == {m.label for m in methods} and r.failures.empty
+    base = r.tasks[r.tasks["full_train"]]
+    assert base["inner_r2"].notna().all()
+    comp = r.comparison
+    best = comp[(comp["indirect"] == "indirect (best on training)") & (comp["direct"] == "direct (best on training)")]
+    assert not best.empty and set(best["better"]) <= {"direct", "indirect", "equivalent", "neither"}
+    # the best method of each split is the one with the highest inner (training-only) score; its held-out score
+    # is what represents the route
+    sw = r.sweeps[(r.sweeps["sweep"] == "base") & (r.sweeps["metric"] == "r2_last")].set_index("label")["mean"]
+    for route in ("indirect", "direct"):
+        picks = []
+        for split, g in base[base["route"] == route].groupby("split"):
+            picks.append(g.loc[g["inner_r2"].idxmax(), "r2_last"])
+        assert sw[f"{route} (best on training)"] == pytest.approx(np.mean(picks), rel=1e-12)
+
+
+def test_the_default_benchmark_fits_every_registered_method():
+    from stimsteer.sysid import METHODS
+
+    assert {(m.route, m.method) for m in BenchSettings().methods} == set(METHODS)
+
+
 # ------------------------------------------------------------------------------------------------ bad input
 def test_too_few_trials_say_how_many_are_needed(seed):
     session, plant = _session(seed, n_trials=2)
@@ -224,9 +263,11 @@ def test_corrupting_held_out_outputs_leaves_every_fit_unchanged(seed, rng):
     pd.testing.assert_frame_equal(clean.fits[cols], dirty.fits[cols])
     # ... while the held-out scores do see the corruption
     assert not np.allclose(clean.prediction["rmse"], dirty.prediction["rmse"])
-    # four methods give every indirect/direct pair a comparison, and the summary speaks of each pair
+    # the nested choice of each route's best method reads training trials only
+    np.testing.assert_array_equal(clean.tasks["inner_r2"].to_numpy(), dirty.tasks["inner_r2"].to_numpy())
+    # four methods give every indirect/direct pair a comparison, plus the routes' best methods: 3 x 3 pairs
     pairs = set(zip(clean.comparison["indirect"], clean.comparison["direct"]))
-    assert len(pairs) == 4
+    assert len(pairs) == 9
     assert sum("indirect (subspace)" in line and "direct (hankel)" in line for line in summarize(clean)) >= 2
 
 
@@ -343,3 +384,19 @@ def test_recorded_limits_span_the_recorded_inputs_and_zero():
     lim = recorded_limits(s)
     assert lim.amplitude_min_ua.tolist() == [0.0, 0.0] and lim.amplitude_max_ua.tolist() == [2.0, 4.0]
     assert lim.input_names == ("a", "b")
+
+
+def test_sweeps_run_only_each_routes_best_method_and_the_base_point_runs_every_method(seed):
+    session, plant = _session(seed)
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}), MethodSpec("indirect", "subspace"),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}), MethodSpec("direct", "hankel"))
+    r = run_bench(session, _settings(methods=methods, control=None, train_trials=(2,)), plant=plant, n_workers=1,
+                  progress=False)
+    t = r.tasks
+    assert (t.loc[t["full_train"], "status"] == "ok").all()  # every method fitted and scored at the base point
+    sweep = t[~t["full_train"]]
+    assert set(sweep["status"]) == {"ok", "skipped"} and r.failures.empty
+    for split, g in sweep.groupby("split"):
+        base = t[t["full_train"] & (t["split"] == split)]
+        chosen = {base.loc[b["inner_r2"].idxmax(), "label"] for _, b in base.groupby("route")}
+        assert set(g.loc[g["status"] == "ok", "label"]) == chosen

@@ -163,3 +163,26 @@ def test_drawing_the_figures_leaves_the_plotting_state_alone(result):
     before, backend = dict(matplotlib.rcParams), matplotlib.get_backend()
     report_figures(result)
     assert dict(matplotlib.rcParams) == before and matplotlib.get_backend() == backend
+
+
+def test_the_summary_leads_with_each_route_by_its_best_method_on_training(seed):
+    # issue 13: the route benchmark compared one method per route; now each route is also represented by its best
+    from stimsteer.control.evaluation import BenchSettings, ControlSettings, MethodSpec, run_bench
+    from stimsteer.control.plants import LinearNetworkPlant, record_session
+
+    rng = np.random.default_rng(seed)
+    A = rng.standard_normal((3, 3))
+    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
+    plant = LinearNetworkPlant(A, rng.standard_normal((3, 2)), rng.standard_normal((2, 3)), measurement_noise_std=0.05,
+                               sample_rate_hz=100.0, seed=seed)
+    u = rng.uniform(-1.0, 1.0, (480, 2))
+    session = record_session(plant, u, trials=[(i * 80, (i + 1) * 80) for i in range(6)])
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}), MethodSpec("indirect", "subspace"),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}), MethodSpec("direct", "hankel"))
+    st = BenchSettings(methods=methods, past_steps=3, horizon_steps=5, n_splits=2, control=ControlSettings(n_steps=30),
+                       train_trials=(), noise_scales=(), horizons=(), max_windows=100)
+    r = run_bench(session, st, plant=plant, n_workers=1, progress=False)
+    lines = summarize(r)
+    assert lines[0].startswith("At a glance (indirect (best on training) vs direct (best on training);")
+    # only each route's representative steers the plant: one closed loop per route and split
+    assert len(r.control) == 2 * 2 and set(r.control["route"]) == {"indirect", "direct"}

@@ -71,7 +71,7 @@ def test_ridge_equals_sklearn_on_standardised_rows(rng, alpha, fit_intercept):
     s = noisy_session(rng)
     X, Y = regression_rows(s, 2, 2, 1)
     n = X.shape[0]
-    est = RidgeArx(output_lags=2, input_lags=2, alphas=[alpha], fit_intercept=fit_intercept).fit(s)
+    est = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, alphas=[alpha], fit_intercept=fit_intercept).fit(s)
     Xc = X - X.mean(0) if fit_intercept else X
     Yc = Y - Y.mean(0) if fit_intercept else Y
     scale = np.sqrt((Xc ** 2).mean(0))  # std with centring, RMS without (the documented standardisation)

@@ -129,7 +129,8 @@ def test_streams_bounded_windows_from_a_lazy_source(rng):
     s = multi_trial_session(rng, noise=0.1)
     src = _CountingSource(s)
     est = RidgeArx(alphas=[1e-4], chunk_samples=32).fit(src)
-    assert max(b - a for a, b in src.windows) <= 32 + est.past_steps_
+    # the structure selection reads windows of its longest candidate: 8 input lags after a delay of 3 = 10 samples
+    assert max(b - a for a, b in src.windows) <= 32 + max(est.past_steps_, 10)
     np.testing.assert_allclose(est.coef_, RidgeArx(alphas=[1e-4]).fit(s).coef_, rtol=1e-11, atol=1e-12)
 
 
@@ -333,8 +334,9 @@ def test_state_round_trip_predicts_identically(rng):
 # ------------------------------------------------------------------------------------------------ contract
 def test_estimator_contract(rng):
     s = multi_trial_session(rng, noise=0.1)
-    params = {"output_lags": 3, "input_lags": 1, "delay_samples": 2, "alphas": (1e-3,), "n_folds": 3,
-              "chunk_samples": 64, "fit_intercept": False}
+    params = {"output_lags": 3, "input_lags": 1, "delay_samples": 2, "lag_grid": (1, 2, 3, 4, 6, 8),
+              "delay_grid": (0, 1, 2, 3), "alphas": (1e-3,), "n_folds": 3, "chunk_samples": 64,
+              "fit_intercept": False}
     est = RidgeArx(**params)
     assert est.get_params() == params and not hasattr(est, "coef_")
     assert RidgeArx(**est.get_params()).get_params() == params  # clone
@@ -419,3 +421,61 @@ def test_set_params_rejects_unknown():
     with pytest.raises(InvalidParameterError, match="no setting 'lags'"):
         RidgeArx().set_params(lags=3)
     assert RidgeArx().set_params(output_lags=4).output_lags == 4
+
+
+def _feedthrough_session(rng, n_trials=6, length=200):
+    # y_k = 0.6 y_{k-1} − 0.2 y_{k-2} + 0.8 u_k + 0.3 u_{k-1}: a direct term D = 0.8 (construction)
+    u = rng.standard_normal((n_trials * length, 1))
+    y = np.zeros_like(u)
+    for i in range(n_trials):
+        a = i * length
+        for k in range(a + 2, a + length):
+            y[k] = 0.6 * y[k - 1] - 0.2 * y[k - 2] + 0.8 * u[k] + 0.3 * u[k - 1]
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=[(i * length, (i + 1) * length) for i in range(n_trials)])
+
+
+def test_automatic_structure_recovers_delay_zero_and_the_direct_term_exactly(rng):
+    # issue 13: lags stayed at the defaults and delay 1 (the CLI could not choose 0); exact data: D to 1e-8
+    s = _feedthrough_session(rng)
+    est = RidgeArx(alphas=[0.0]).fit(s)
+    assert (est.output_lags_, est.input_lags_, est.delay_samples_) == (2, 2, 0)
+    np.testing.assert_allclose(est.input_coefs_[0], [[0.8]], rtol=0, atol=1e-8)
+    np.testing.assert_allclose(est.coef_, [[0.6, -0.2, 0.8, 0.3]], rtol=0, atol=1e-8)
+    np.testing.assert_allclose(est.state_space_model().D, [[0.8]], rtol=0, atol=1e-8)
+    table = est.structure_table_
+    assert table["selected"].sum() == 1 and len(table) == 6 * 6 * 4
+    assert table.loc[table["selected"], ["output_lags", "input_lags", "delay_samples"]].values.tolist() == [[2, 2, 0]]
+
+
+def test_subspace_with_feedthrough_recovers_the_direct_term_exactly(rng):
+    from stimsteer.sysid.subspace import SubspaceId
+
+    s = _feedthrough_session(rng)
+    est = SubspaceId(past_steps=5, future_steps=5, feedthrough=True).fit(s)
+    np.testing.assert_allclose(est.model_.D, [[0.8]], rtol=0, atol=1e-8)
+
+
+def test_a_grid_edge_that_wins_is_reported_with_the_advice_to_widen_it(rng):
+    s = _feedthrough_session(rng)
+    est = RidgeArx(lag_grid=(1,), delay_grid=(1, 2), alphas=[1e-3, 1e-2]).fit(s)  # too short and too late
+    notes = " ".join(est.selection_notes_)
+    assert "delay_samples = 1 is the smallest value of its grid [1, 2]: widen the grid downwards" in notes
+    assert "alpha = 0.001 is the smallest ridge strength of the grid" in notes
+    big = RidgeArx(output_lags=2, input_lags=2, delay_samples=0, alphas=[1e2, 1e3]).fit(s)
+    assert any("alpha = 100 is the smallest" in n or "add larger alphas" in n for n in big.selection_notes_)
+
+
+def test_fit_cli_chooses_delay_zero_and_prints_the_table(rng, tmp_path, capsys):
+    from stimsteer.control.cli import main
+    from stimsteer.sysid import io
+
+    path = io.save_session(_feedthrough_session(rng), tmp_path / "s.h5")
+    assert main(["fit", str(path), "--route", "indirect", "--method", "arx", "--out", str(tmp_path / "m.h5")]) == 0
+    out = capsys.readouterr().out
+    assert "output_lags  input_lags  delay_samples" in out and "(10 of 144 candidates shown" in out
+    assert main(["fit", str(path), "--route", "indirect", "--method", "arx", "--delay-steps", "0", "--past-steps",
+                 "2", "--out", str(tmp_path / "m2.h5")]) == 0
+    from stimsteer.sysid.storage import load_predictor
+
+    model, _ = load_predictor(tmp_path / "m2.h5")
+    assert model.delay_samples_ == 0 and model.output_lags_ == 2

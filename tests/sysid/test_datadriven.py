@@ -172,10 +172,10 @@ def test_full_blocks_are_the_raw_hankel_rows_and_the_regulariser_is_a_projector(
                         compress=False).fit(s)
     Hu = np.hstack([block_hankel(s.u[a:b], 5) for a, b in s.trials])
     Hy = np.hstack([block_hankel(s.y[a:b], 5) for a, b in s.trials])
-    np.testing.assert_array_equal(h.blocks_.Up, Hu[:4])
-    np.testing.assert_array_equal(h.blocks_.Uf, Hu[4:])
-    np.testing.assert_array_equal(h.blocks_.Yp, Hy[:4])
-    np.testing.assert_array_equal(h.blocks_.Yf, Hy[4:])
+    db = h.data_blocks()  # in the channels' units (blocks_ hold the rows of unit-RMS channels)
+    for got, want in ((db.Up, Hu[:4]), (db.Uf, Hu[4:]), (db.Yp, Hy[:4]), (db.Yf, Hy[4:])):
+        np.testing.assert_allclose(got, want, rtol=1e-13, atol=1e-13)
+    np.testing.assert_allclose(h.blocks_.Yf * np.tile(h.channel_scale_[s.n_inputs:], 3)[:, None], Hy[4:], rtol=1e-13)
     M = h.reg_matrix_
     np.testing.assert_allclose(M @ M, M, atol=1e-12)
     np.testing.assert_allclose(M @ h.blocks_.D.T, 0, atol=1e-10)  # I − Π annihilates the row space of D
@@ -226,20 +226,24 @@ def test_fold_errors_equal_explicit_held_out_predictions(rng):
     assert lsq.cv_scheme_ == "trials" and sorted(set(folds)) == [0, 1, 2]
     std = s.y.std(axis=0)
     w = np.tile(1.0 / std, 4)
+    su, sy = lsq.channel_scale_[:s.n_inputs], lsq.channel_scale_[s.n_inputs:]
+
+    def blocks(trials):  # Hankel rows of the unit-RMS channels the predictor is fitted on
+        Hu = np.hstack([block_hankel(s.u[lo:hi] / su, 7) for lo, hi in s.trials[trials]])
+        Hy = np.hstack([block_hankel(s.y[lo:hi] / sy, 7) for lo, hi in s.trials[trials]])
+        return np.vstack([Hu[:6], Hy[:6], Hu[6:]]), Hy[6:]
+
     for f in range(3):
         val, train = np.flatnonzero(folds == f), np.flatnonzero(folds != f)
+        D, Yf = blocks(train)
+        scale = (np.sum(D ** 2) + np.sum(Yf ** 2)) / (D.shape[0] + Yf.shape[0])  # relative strengths (docstring)
+        Dv, Yv = blocks(val)
         for i, a in enumerate(alphas):
-            sub = LsqPredictor(past_steps=3, horizon_steps=4, alphas=[a]).fit(s.select_trials(train))
-            # the strength is relative to the training data's scale, as inside the fold
-            err, count = 0.0, 0
-            for t in val:
-                lo, hi = s.trials[t]
-                Hu, Hy = block_hankel(s.u[lo:hi], 7), block_hankel(s.y[lo:hi], 7)
-                D = np.vstack([Hu[:6], Hy[:6], Hu[6:]])
-                E = Hy[6:] - np.hstack([sub.Kp_, sub.Kf_]) @ D
-                err += np.sum((w[:, None] * E) ** 2)
-                count += E.size
-            assert lsq.cv_table_[f"fold_{f}"].iloc[i] == pytest.approx(err / count, rel=1e-8)
+            # ridge in closed form (Hoerl & Kennard 1970): Θ = Yf Dᵀ (D Dᵀ + α s I)⁻¹
+            theta = np.linalg.solve(D @ D.T + a * scale * np.eye(D.shape[0]), D @ Yf.T).T
+            E = (Yv - theta @ Dv) * np.tile(sy, 4)[:, None]  # back in the channels' units
+            err = np.sum((w[:, None] * E) ** 2)
+            assert lsq.cv_table_[f"fold_{f}"].iloc[i] == pytest.approx(err / E.size, rel=1e-8)
     best = lsq.cv_table_["validation_error"].idxmin()
     assert lsq.alpha_ == lsq.cv_table_["candidate"].iloc[best]
     assert lsq.ridge_strength_ == pytest.approx(lsq.alpha_ * lsq.data_scale_)
@@ -387,9 +391,10 @@ def test_solve_g_satisfies_the_constraints_and_gives_the_prediction(compress, rn
     up, yp, uf, _ = _fresh_window(rng, sys, 3, 5)
     g = h.solve_g(up, yp, uf)
     assert g.shape == (h.blocks_.Up.shape[1],)
-    np.testing.assert_allclose(h.blocks_.Up @ g, up.reshape(-1), atol=1e-9)
-    np.testing.assert_allclose(h.blocks_.Uf @ g, uf.reshape(-1), atol=1e-9)
-    np.testing.assert_allclose((h.blocks_.Yf @ g).reshape(5, 2), h.predict(up, yp, uf), atol=1e-9)
+    db = h.data_blocks()  # the blocks in the channels' units
+    np.testing.assert_allclose(db.Up @ g, up.reshape(-1), atol=1e-9)
+    np.testing.assert_allclose(db.Uf @ g, uf.reshape(-1), atol=1e-9)
+    np.testing.assert_allclose((db.Yf @ g).reshape(5, 2), h.predict(up, yp, uf), atol=1e-9)
 
 
 @pytest.mark.parametrize("kind", ["lsq", "l2", "projection"])

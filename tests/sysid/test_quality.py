@@ -1,6 +1,7 @@
 """Tests of stimsteer.sysid.quality: the session summary and its warnings."""
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -134,12 +135,56 @@ def test_an_output_on_a_baseline_offset_is_reported_with_what_to_do(rng):
     n = 1000
     y = rng.standard_normal((n, 2))
     y[:, 1] += 3.0  # mean² / mean square = 9 / 10 (hand-derived, unit-variance noise)
-    s = Session(u=rng.standard_normal((n, 1)), y=y, sample_rate_hz=100.0, trials=[(0, 500), (500, 1000)],
+    u = rng.standard_normal((n, 1))
+    u[:100] = 0.0
+    u[500:600] = 0.0  # a pre-stimulation baseline of 100 samples in each trial carries the offset
+    s = Session(u=u, y=y, sample_rate_hz=100.0, trials=[(0, 500), (500, 1000)],
                 output_names=["lfp", "eeg"], output_units=["mV", "uV"])
     q = describe_session(s)
     ((name, mean, share),) = q.offset_channels
     assert name == "eeg" and mean == pytest.approx(y[:, 1].mean(), rel=1e-12)
     assert share == pytest.approx(y[:, 1].mean() ** 2 / np.mean(y[:, 1] ** 2), rel=1e-12) and 0.85 < share < 0.95
-    assert any(w.startswith("output 'eeg' sits on an offset (mean") and "--centre-outputs" in w for w in q.warnings)
+    base = np.concatenate([y[:100, 1], y[500:600, 1]]).mean()
+    assert any(w.startswith(f"output 'eeg' rests on an offset before any stimulation (baseline mean {base:.4g} uV "
+                            "over 200 pre-stimulation samples") and "--centre-outputs" in w for w in q.warnings)
     assert f"  output offsets: eeg (mean {mean:.4g} uV, {100 * share:.0f}% of its mean square)" in q.to_text()
     assert "  output offsets: none" in describe_session(s.replace(y=y - y.mean(0))).to_text()
+
+
+def test_an_offset_that_comes_with_one_signed_stimulation_is_not_advised_to_be_centred(rng):
+    # A first-order system at rest at zero driven by positive pulses: its mean is response, not offset.
+    n = 2000
+    u = np.where(rng.random((n, 1)) < 0.5, 2.0, 0.0)
+    u[:50] = u[1000:1050] = 0.0  # a quiet pre-stimulation baseline at rest (zero output)
+    y = np.zeros((n, 1))
+    for k in range(1, n):
+        y[k] = 0.8 * y[k - 1] + u[k - 1] + 0.01 * rng.standard_normal()
+    y[:50] = y[1000:1050] = 0.01 * rng.standard_normal((50, 1))
+    s = Session(u=u, y=y, sample_rate_hz=100.0, trials=[(0, 1000), (1000, 2000)])
+    q = describe_session(s)
+    assert [c[0] for c in q.offset_channels] == ["y0"]
+    assert not any("--centre-outputs" in w for w in q.warnings)
+    assert any("the mean comes with the stimulation" in n_ and "centring is not advised" in n_ for n_ in q.notes)
+    no_base = describe_session(s.replace(u=np.where(u == 0, 2.0, u)))
+    assert any("no pre-stimulation baseline" in n_ for n_ in no_base.notes)
+
+
+@pytest.mark.parametrize("value", [1e200, 1e300, -1e150])
+def test_values_beyond_the_representable_range_are_refused_with_the_figure(rng, value):
+    # float64 holds up to 1.8e308, so squares of 1e155 and more overflow (IEEE 754-2008); issue 12 measured an
+    # internal LinAlgError in fit and "No problems found" from inspect at 1e200-1e300.
+    from stimsteer.sysid import fit_route
+    from stimsteer.sysid.quality import check_representable
+
+    y = rng.standard_normal((400, 1))
+    y[10] = value
+    s = Session(u=rng.standard_normal((400, 1)), y=y, sample_rate_hz=100.0, trials=[(0, 200), (200, 400)],
+                output_units=["uV"])
+    text = re.escape(f"output 'y0' reaches {abs(value):.3g} uV, beyond the largest magnitude")
+    with pytest.raises(SessionError, match=text + ".*Rescale the channel"):
+        describe_session(s)
+    with pytest.raises(SessionError, match=text):
+        check_representable(s)
+    with pytest.raises(SessionError, match=text):
+        fit_route(s, route="indirect", method="arx")
+    check_representable(s.replace(y=y / abs(value) * 1e12))  # 1e12 is fine

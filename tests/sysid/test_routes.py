@@ -51,7 +51,7 @@ def test_split_is_seeded_and_fit_uses_training_trials_only(sess, fitted):
     held = kstep_scores(alone, sess.select_trials(split.test), horizon_steps=4)
     pd.testing.assert_frame_equal(fitted.heldout.kstep, held.kstep)
     assert not fitted.heldout.freerun.empty
-    assert fitted.selection_table is fitted.predictor.cv_table_
+    assert fitted.selection_table is fitted.predictor.structure_table_  # lags fixed: the delay is chosen
 
 
 def test_provenance_records_the_data_settings_and_split(sess, fitted):
@@ -123,14 +123,21 @@ def test_an_output_offset_is_warned_about_for_models_without_a_constant_term(ses
     import warnings
 
     from stimsteer.sysid.exceptions import StimsteerWarning
-    from stimsteer.sysid.routes import OFFSET_WARN_FRACTION, _offset_fractions
+    from stimsteer.sysid.routes import OFFSET_WARN_FRACTION
+    from stimsteer.sysid.quality import baseline_moments
 
-    shifted = sess.replace(y=sess.y + 3.0 * sess.y.std())  # mean² / mean square = 9 / 10 (hand-derived)
-    mean, frac = _offset_fractions(shifted)
-    np.testing.assert_allclose(mean, shifted.y.mean(0), rtol=1e-12)
-    np.testing.assert_allclose(frac, shifted.y.mean(0) ** 2 / (shifted.y ** 2).mean(0), rtol=1e-12)
+    u = sess.u.copy()
+    for a, _b in sess.trials:
+        u[a:a + 20] = 0.0  # a pre-stimulation baseline at the start of every trial
+    shifted = sess.replace(u=u, y=sess.y + 3.0 * sess.y.std())  # baseline mean² / mean square about 9 / 10
+    n_base, mean, frac = baseline_moments(shifted)
+    base = np.concatenate([shifted.y[a:a + 20] for a, _b in shifted.trials])
+    assert n_base == base.shape[0]
+    np.testing.assert_allclose(mean, base.mean(0), rtol=1e-12)
+    np.testing.assert_allclose(frac, base.mean(0) ** 2 / (base ** 2).mean(0), rtol=1e-12)
     assert frac[0] > OFFSET_WARN_FRACTION
-    with pytest.warns(StimsteerWarning, match=r"channel 'lfp' has mean .* mV, \d+ % of its mean square"):
+    with pytest.warns(StimsteerWarning, match=r"channel 'lfp' has a pre-stimulation baseline of .* mV \(\d+ samples\), "
+                      r"\d+ % of its baseline mean square"):
         res = fit_route(shifted, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
     assert res.provenance["output_offset_fraction"] > OFFSET_WARN_FRACTION
     with warnings.catch_warnings():
@@ -138,6 +145,12 @@ def test_an_output_offset_is_warned_about_for_models_without_a_constant_term(ses
         res = fit_route(shifted, route="indirect", method="arx", settings={"past_steps": 3, "alphas": [1e-3]})
         assert res.provenance["output_offset_fraction"] == 0.0
         fit_route(sess, route="indirect", method="subspace", settings={"past_steps": 4, "future_steps": 4})
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        # the same offset without a baseline (stimulated from the first sample): the mean is response, no advice
+        fit_route(sess.replace(y=sess.y + 3.0 * sess.y.std()), route="indirect", method="subspace",
+                  settings={"past_steps": 4, "future_steps": 4})
+    assert not [w for w in caught if "offset" in str(w.message)]
 
 
 def test_subspace_route(sess):

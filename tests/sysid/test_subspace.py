@@ -250,11 +250,55 @@ def test_held_out_error_overrides_a_misleading_singular_value_gap(rng):
     np.testing.assert_allclose(np.sort(est.model_.poles.real), [-0.5, 0.95], atol=0.05)
 
 
-def test_choose_confirms_the_gap_order_within_tolerance_else_takes_the_smallest_good_order():
+def _choose(table, gap, tolerance, radius, monkeypatch):
+    """choose_stable with models whose spectral radius per order is given (no projection needed)."""
+    from stimsteer.sysid.subspace import selection
+
+    monkeypatch.setattr(selection, "_fit_order", lambda proj, n, ft: {"A": np.eye(n) * radius[n]})
+    notes = []
+    n, _mats = selection.choose_stable(table, gap, tolerance, None, False, notes)
+    return n, notes
+
+
+def test_choose_confirms_the_gap_order_within_tolerance_else_takes_the_smallest_good_order(monkeypatch):
     table = pd.DataFrame({"order": [1, 2, 3, 4], "heldout_error": [0.5, 0.104, 0.100, 0.101]})
-    assert SubspaceId._choose(table, gap=2, tolerance=0.05) == 2  # 0.104 <= 1.05 * 0.100
-    assert SubspaceId._choose(table, gap=2, tolerance=0.01) == 3  # now 2 is not good enough; 3 is the smallest
-    assert SubspaceId._choose(table, gap=1, tolerance=0.05) == 2
+    stable = {n: 0.9 for n in range(1, 5)}
+    assert _choose(table, 2, 0.05, stable, monkeypatch) == (2, [])  # 0.104 <= 1.05 * 0.100
+    assert _choose(table, 2, 0.01, stable, monkeypatch)[0] == 3  # now 2 is not good enough; 3 is the smallest
+    assert _choose(table, 1, 0.05, stable, monkeypatch)[0] == 2
+
+
+def test_an_unstable_order_is_chosen_only_when_no_stable_order_is_within_tolerance(monkeypatch):
+    # issue 13: an unstable order (radius 1.005) was chosen where another order was stable and as accurate
+    table = pd.DataFrame({"order": [1, 2, 3, 4], "heldout_error": [0.5, 0.104, 0.100, 0.101]})
+    n, notes = _choose(table, 3, 0.05, {1: 0.5, 2: 0.95, 3: 1.005, 4: 0.97}, monkeypatch)
+    assert n == 2 and "order 3 (preferred by the singular-value gap and held-out error) is unstable; order 2" in notes[0]
+    n, notes = _choose(table, 3, 0.05, {1: 0.5, 2: 1.2, 3: 1.005, 4: 1.01}, monkeypatch)
+    assert n == 3 and notes[0].startswith("no stable order has a held-out error within 5 % of the best (orders "
+                                          "[2, 3, 4]); the unstable order 3 was kept")
+
+
+def test_the_default_order_cap_grows_while_the_heldout_error_is_lowest_at_it(rng):
+    # A 12-state system (six lightly damped modes) seen through 3 outputs: the default cap of 10 binds.
+    n, m, p = 12, 2, 3
+    poles = 0.93 * np.exp(1j * np.linspace(0.2, 2.8, n // 2))
+    A = np.zeros((n, n))
+    for k, z in enumerate(poles):
+        A[2 * k:2 * k + 2, 2 * k:2 * k + 2] = [[z.real, -z.imag], [z.imag, z.real]]
+    B, C = rng.standard_normal((n, m)), rng.standard_normal((p, n))
+    T = 6000
+    u = rng.standard_normal((T, m))
+    x, y = np.zeros(n), np.zeros((T, p))
+    for k in range(T):
+        y[k] = C @ x
+        x = A @ x + B @ u[k]
+    s = Session(u=u, y=y + 1e-4 * rng.standard_normal(y.shape), sample_rate_hz=100.0,
+                trials=[(i, i + 1000) for i in range(0, T, 1000)])
+    est = SubspaceId(past_steps=8, future_steps=8).fit(s)
+    assert est.order_table_["order"].max() > 10 and est.order_ >= 11
+    capped = SubspaceId(past_steps=8, future_steps=8, max_order=6).fit(s)
+    assert capped.order_table_["order"].max() == 6
+    assert any("held-out error is lowest at the order cap 6 (max_order=6)" in n_ for n_ in capped.selection_notes_)
 
 
 def test_explicit_order_is_used_and_marked_in_the_table(rng):
@@ -334,7 +378,7 @@ def test_state_round_trip_restores_an_equivalent_predictor(rng):
         ({"past_steps": True}, r"past_steps must be an integer >= 1; got True"),
         ({"future_steps": 1}, r"future_steps must be an integer >= 2; got 1"),
         ({"weighting": "pca"}, r"weighting must be one of \['n4sid', 'moesp', 'cva'\]; got 'pca'"),
-        ({"feedthrough": "no"}, r"feedthrough must be True or False; got 'no'"),
+        ({"feedthrough": "no"}, r"feedthrough must be True, False or 'auto'; got 'no'"),
         ({"order": 0}, r"order must be an integer >= 1; got 0"),
         ({"order": 9}, r"order 9 is above the largest possible order 8 = min\(p \(f - 1\), p i\)"),
         ({"max_order": 9}, r"max_order 9 is above the largest possible order 8"),
@@ -510,3 +554,18 @@ def test_centre_outputs_must_be_a_bool(rng):
     with pytest.raises(InvalidParameterError, match="centre_outputs must be True or False"):
         SubspaceId(past_steps=4, future_steps=4, centre_outputs="yes").fit(_session(rng))
 
+
+
+def test_feedthrough_auto_estimates_a_direct_term_only_when_held_out_error_needs_it(rng):
+    # y_k = 0.6 y_{k-1} + 0.8 u_k + ... has a direct term; the demo-like system without one keeps D = 0
+    u = rng.standard_normal((1200, 1))
+    y = np.zeros_like(u)
+    for i in range(6):
+        for k in range(i * 200 + 1, (i + 1) * 200):
+            y[k] = 0.6 * y[k - 1] + 0.8 * u[k] + 0.3 * u[k - 1]
+    s = Session(u=u, y=y + 0.01 * rng.standard_normal(y.shape), sample_rate_hz=100.0,
+                trials=[(i * 200, (i + 1) * 200) for i in range(6)])
+    est = SubspaceId(past_steps=5, future_steps=5).fit(s)
+    assert est.feedthrough_ is True and abs(est.model_.D[0, 0] - 0.8) < 0.02
+    plain = SubspaceId(past_steps=5, future_steps=5).fit(_session(rng, noise=0.05))
+    assert plain.feedthrough_ is False and np.all(plain.model_.D == 0)

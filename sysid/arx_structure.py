@@ -1,0 +1,160 @@
+"""Structure selection for ridge ARX: output lags, input lags and delay chosen with the ridge strength by
+cross-validation over whole trials, from one streaming pass.
+
+Every candidate structure ``(na, nb, d)`` is scored on the same rows: those whose longest window of the grid,
+``L_max = max(na_max, d_max + nb_max − 1)`` samples, lies inside one valid segment. Its regressors are a subset of
+the lagged vector ``[Z_k; …; Z_{k−L_max}]`` whose moments one pass accumulates, so every structure and every ridge
+strength is scored from those moments alone (as :mod:`stimsteer.sysid.arx` does for the strengths). The score is
+the one-step validation error ``SSE / SST`` on held-out trials averaged over output channels (``1 − R²``). Among
+the structures whose mean error is within :data:`STRUCTURE_TOLERANCE` (relative) or :data:`STRUCTURE_FLOOR`
+(absolute) of the lowest, the one with the fewest coefficients wins (then the lower error),
+so exact data, where every structure that contains the true one scores at rounding level, give the true structure.
+Order selection by cross-validation on data not used for the fit follows Ljung (1999), System Identification,
+2nd ed., ch. 16.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import InvalidParameterError
+from ._lagged import _Moments
+from .hankel import _single_blas_thread
+from .arx_regression import _Problem
+
+__all__ = ["AUTO", "DEFAULT_LAG_GRID", "DEFAULT_DELAY_GRID", "structure_candidates", "structure_table",
+           "edge_notes", "select_structure"]
+
+#: The setting that asks for a lag or delay to be chosen from its grid.
+AUTO = "auto"
+#: Candidate output and input lag counts (samples): the stated grid of ``fit``'s automatic structure.
+DEFAULT_LAG_GRID = (1, 2, 3, 4, 6, 8)
+#: Candidate input delays (samples); 0 allows direct feed-through.
+DEFAULT_DELAY_GRID = (0, 1, 2, 3)
+#: Structures whose validation error is within this share of the lowest count as equally good (our own margin:
+#: a 1 % difference of 1 − R² is below what separates structures on held-out trials of typical length).
+STRUCTURE_TOLERANCE = 0.01
+#: ... or within this absolute error (rounding level of exact data, where the best errors are ~1e-15).
+STRUCTURE_FLOOR = 1e-9
+
+
+def _grid(name, values, lowest) -> tuple:
+    try:
+        arr = np.atleast_1d(np.asarray(values))
+    except (TypeError, ValueError):
+        arr = np.asarray([None])
+    ok = arr.ndim == 1 and arr.size > 0 and all(
+        isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_)) and v >= lowest for v in arr.tolist())
+    if not ok:
+        raise InvalidParameterError(f"{name} must be a non-empty list of whole numbers >= {lowest}; got {values!r}.")
+    return tuple(sorted({int(v) for v in arr.tolist()}))
+
+
+def _one(name, value, grid, lowest) -> tuple:
+    if isinstance(value, str) and value == AUTO:
+        return grid
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < lowest:
+        raise InvalidParameterError(f"{name} must be an integer >= {lowest} or 'auto' (chosen by cross-validation "
+                                    f"from its grid); got {value!r}.")
+    return (int(value),)
+
+
+def structure_candidates(est) -> tuple[list, dict]:
+    """The ``(na, nb, d)`` candidates of a RidgeArx's settings, and the grid of each (for edge reports)."""
+    lags = _grid("lag_grid", est.lag_grid, 1)
+    delays = _grid("delay_grid", est.delay_grid, 0)
+    grids = {"output_lags": _one("output_lags", est.output_lags, lags, 0),
+             "input_lags": _one("input_lags", est.input_lags, lags, 1),
+             "delay_samples": _one("delay_samples", est.delay_samples, delays, 0)}
+    cands = [(na, nb, d) for na in grids["output_lags"] for nb in grids["input_lags"]
+             for d in grids["delay_samples"]]
+    return cands, grids
+
+
+def structure_table(rows: list) -> pd.DataFrame:
+    """One row per structure: its best strength's mean and spread of the validation error; the selected one first,
+    then the others best first.
+
+    ``rows`` holds ``(na, nb, d, n_coef, cv_table)`` with ``cv_table`` as :meth:`RidgeArx._cross_validate` makes.
+    """
+    out = []
+    for na, nb, d, n_coef, table in rows:
+        err = table["mean_error"].to_numpy()
+        if not np.isfinite(err).any():
+            out.append((na, nb, d, n_coef, float(table["alpha"].iloc[0]), np.inf, np.nan))
+            continue
+        best = np.flatnonzero(err <= np.nanmin(err) * (1 + 1e-12) + 1e-300)
+        i = int(best[np.argmax(table["alpha"].to_numpy()[best])])  # ties: the largest strength
+        out.append((na, nb, d, n_coef, float(table["alpha"].iloc[i]), float(err[i]),
+                    float(table["std_error"].iloc[i])))
+    frame = pd.DataFrame(out, columns=["output_lags", "input_lags", "delay_samples", "n_coefficients", "alpha",
+                                       "mean_error", "std_error"])
+    frame = frame.sort_values(["mean_error", "n_coefficients", "alpha"], ascending=[True, True, False],
+                              kind="stable").reset_index(drop=True)
+    best = frame["mean_error"].iloc[0]
+    near = frame["mean_error"].to_numpy() <= best + max(STRUCTURE_TOLERANCE * best, STRUCTURE_FLOOR)
+    pick = int(np.flatnonzero(near)[np.argmin(frame["n_coefficients"].to_numpy()[near])]) if np.isfinite(best) else 0
+    frame["selected"] = np.arange(len(frame)) == pick
+    # the selected structure first, then the others best first
+    return pd.concat([frame.iloc[[pick]], frame.drop(index=pick)], ignore_index=True)
+
+
+def edge_notes(chosen: dict, grids: dict, alpha: float, alphas: np.ndarray) -> tuple:
+    """One sentence per chosen value that sits on an edge of a grid that could be widened."""
+    notes = []
+    for name, value in chosen.items():
+        grid = grids[name]
+        if len(grid) < 2:
+            continue  # a value the user fixed is not a grid edge
+        if value == grid[-1]:
+            notes.append(f"{name} = {value} is the largest value of its grid {list(grid)}: a larger value might fit "
+                         f"better; widen the grid (lag_grid / delay_grid) to check.")
+        elif value == grid[0] and value > (1 if name == "input_lags" else 0):
+            notes.append(f"{name} = {value} is the smallest value of its grid {list(grid)}: widen the grid "
+                         "downwards to check.")
+    a = float(alpha)
+    if alphas.size >= 2 and a == alphas[-1]:
+        notes.append(f"alpha = {a:g} is the largest ridge strength of the grid ({alphas[0]:g} … {alphas[-1]:g}): "
+                     "stronger shrinkage might predict better; add larger alphas.")
+    elif alphas.size >= 2 and a == alphas[0] and a > 0:
+        notes.append(f"alpha = {a:g} is the smallest ridge strength of the grid ({alphas[0]:g} … {alphas[-1]:g}): "
+                     "the data need (almost) no shrinkage; add smaller alphas (or 0, least squares) to check.")
+    return tuple(notes)
+
+
+
+def _longest(c) -> int:
+    na, nb, d = c
+    return max(na, d + nb - 1)
+
+
+def select_structure(est, session, candidates, alphas):
+    """The best ``(na, nb, d)`` of a RidgeArx by trial-wise cross-validation, and the table of every candidate.
+
+    Returns ``(structure, table)``; ``table`` is None when there is one candidate (nothing to choose).
+    """
+    if len(candidates) == 1:
+        return candidates[0], None
+    n_lags = max(_longest(c) for c in candidates)
+    probe = est._validated(session, max(candidates, key=_longest), n_lags)
+    folds, k, _scheme, _shift = est._accumulate(session, probe)
+    total = _Moments(probe.size)
+    for f in folds:
+        total.add(f.n, f.s, f.W)
+    rows = []
+    with _single_blas_thread():  # many small eigendecompositions: threads only wait on each other at this size
+        for na, nb, d in candidates:
+            rows.append(_scored(est, probe, n_lags, (na, nb, d), folds, total, alphas, k))
+    structures = structure_table(rows)
+    top = structures.loc[structures["selected"]].iloc[0]
+    return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
+
+
+def _scored(est, probe, n_lags, structure, folds, total, alphas, k):
+    na, nb, d = structure
+    prob = _Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags)
+    n_coef = prob.x_idx.size + int(prob.fit_intercept)
+    table = est._cross_validate(prob, folds, total, alphas, k) if total.n >= n_coef else \
+        pd.DataFrame({"alpha": alphas, "mean_error": np.nan, "std_error": np.nan})
+    return na, nb, d, n_coef, table

@@ -1,0 +1,61 @@
+"""Choosing the Hankel predictor's regularisation strength when held-out prediction cannot: plan/predictor
+consistency.
+
+When ``D = [Up; Yp; Uf]`` has full row rank (noisy data), every strength ``λ_g > 0`` of the ℓ2 and projection
+regularisers gives the same prediction (``g = D⁺ b`` meets the constraints with zero slack and zero penalty;
+Dörfler, Coulson, Markovsky 2023), so held-out errors tie to rounding (issue 13 measured a spread of 1e-15). Inside
+a controller, however, the plan chooses ``g`` together with the inputs: along directions ``δ`` that keep the inputs
+(``Up δ = 0``, ``Uf δ = 0``) it can move the predicted outputs ``Yf δ`` at the price of the slack and the penalty
+only, ``λ_y ||Yp δ||² + λ_g R(δ)``. The **plan gap**
+
+    γ(λ_g) = max_δ ||Yf δ||² / (λ_y ||Yp δ||² + λ_g ||M δ||²)     over δ with [Up; Uf] δ = 0,
+
+(a generalised eigenvalue) is how much squared output a plan can claim per unit of that price: the larger, the
+further the plan's predicted outputs can drift from the predictor's own prediction of the same inputs (issue 13
+measured 0.69 at a small strength). The rule of :class:`~stimsteer.sysid.datadriven.HankelPredictor`: the lowest
+held-out error wins; candidates within :data:`TIE_TOLERANCE` (relative) of it are ranked by the plan gap, the
+smallest winning. It is computed on the unit-RMS channels the predictor is fitted on.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+
+__all__ = ["TIE_TOLERANCE", "plan_gaps", "choose_consistent"]
+
+#: Held-out errors within this relative distance of the best count as a tie (rounding of the fold solves is
+#: ~1e-15; real differences between strengths on held-out trials are many orders larger). Our own threshold.
+TIE_TOLERANCE = 1e-6
+
+
+def plan_gaps(blocks, M, lambdas_abs, lam_y: float) -> np.ndarray:
+    """``γ(λ_g)`` for each absolute strength (``M`` None: the identity, the ℓ2 regulariser)."""
+    A = np.vstack([blocks.Up, blocks.Uf])
+    N = sla.null_space(A)
+    if N.shape[1] == 0:
+        return np.zeros(len(lambdas_abs))
+    YfN, YpN = blocks.Yf @ N, blocks.Yp @ N
+    S = YfN.T @ YfN
+    base = lam_y * (YpN.T @ YpN)
+    R = N.T @ N if M is None else N.T @ (M @ N)
+    out = []
+    for lam in lambdas_abs:
+        H = base + lam * R
+        H = 0.5 * (H + H.T)
+        try:
+            top = sla.eigh(0.5 * (S + S.T), H, eigvals_only=True, subset_by_index=[S.shape[0] - 1] * 2)
+            out.append(float(top[0]))
+        except (np.linalg.LinAlgError, ValueError):
+            out.append(np.inf)
+    return np.asarray(out)
+
+
+def choose_consistent(table, gaps: np.ndarray) -> int:
+    """Index of the chosen candidate: lowest held-out error, ties (TIE_TOLERANCE) broken by the smallest gap."""
+    err = table["validation_error"].to_numpy(dtype=np.float64)
+    if not np.isfinite(err).any():
+        return int(np.argmin(gaps))
+    best = np.nanmin(err)
+    tied = np.flatnonzero(err <= best * (1.0 + TIE_TOLERANCE) + 1e-300)
+    return int(tied[np.argmin(gaps[tied])])
