@@ -22,6 +22,7 @@ from ...sysid import StimsteerError, load_session
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
+from ..evaluation.execute import check_scheduler_address
 from ..figures import bench as bench_figures
 from ..limits import load_limits
 from ..plants import load_plant
@@ -153,6 +154,8 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
         As :func:`check_out_dir`, the loaders and :func:`~stimsteer.control.evaluation.run_bench`; nothing is
         written then.
     """
+    if scheduler:
+        check_scheduler_address(scheduler)
     check_out_dir(out_dir, force=force)
     with claimed(out_dir, force=force, command="bench"):  # a second run on this folder is refused at once
         session = load_session(session_path)
