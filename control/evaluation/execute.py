@@ -150,19 +150,19 @@ def _reachable(address: str, timeout: float) -> None:
         socket.create_connection((host.strip("[]"), int(port)), timeout=timeout).close()
     except OSError as exc:
         raise StimsteerError(
-            f"could not reach a Dask scheduler at {address!r} ({exc.strerror or exc}). Check the address and that "
-            "the scheduler is running, or run locally without --scheduler."
+            f"could not reach a Dask scheduler at {address!r} within {timeout:g} s ({exc.strerror or exc}). Check "
+            "the address (e.g. tcp://host:8786) and that the scheduler is running, or run locally without --scheduler."
         ) from None
 
 
 def _connect(address: str, timeout: float):
-    address = check_scheduler_address(address)
-    _reachable(address, timeout)
     try:
         from distributed import Client
     except ImportError:
         raise StimsteerError("running on a Dask cluster (--scheduler) needs Dask's distributed package; install "
                              "the extra: pip install 'stimsteer[dist]'. Or run locally without --scheduler.") from None
+    address = check_scheduler_address(address)
+    _reachable(address, timeout)
     try:
         client = Client(str(address), timeout=f"{timeout}s", set_as_default=False)
     except (OSError, TimeoutError, ValueError, TypeError) as exc:
