@@ -71,3 +71,12 @@ def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(demo_r
     assert (out / "network" / "site_ranking.png").is_file()
     assert (out / "next_schedule.csv").is_file()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind
+
+
+@pytest.mark.slow
+def test_the_demos_plans_name_model_files_that_exist_in_its_folder(demo_run):
+    # the steps write into a temporary folder renamed to --out at the end; plan.json named that deleted folder
+    out, _ = demo_run
+    for route, model in (("indirect", "indirect_subspace.h5"), ("direct", "direct_hankel.h5")):
+        plan = json.loads((out / f"plan_{route}" / "plan.json").read_text())
+        assert plan["model_file"] == str(out / "models" / model) and Path(plan["model_file"]).is_file()
