@@ -24,6 +24,7 @@ from ..demo_data import demo_file
 from ..sysid import StimsteerError, load_session
 from ..sysid._files import atomic_dir
 from ..sysid.caution import CAUTION
+from .commands._common import Interrupted
 
 __all__ = ["run_demo", "demo_steps", "DEMO_PATTERN_FILE"]
 
@@ -154,6 +155,8 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
             with redirect_stdout(text), redirect_stderr(_Renamed(sys.stderr, str(tmp), str(out))):
                 code = run_step(argv)
             echo(text.getvalue().replace(str(tmp), str(out)).rstrip())
+            if code in (130, 143):  # the step was interrupted (Ctrl-C, SIGTERM): so is the demo
+                raise Interrupted(code - 128)
             if code != 0:
                 raise StimsteerError(f"the demo step `stimsteer {argv[0]}` failed (exit code {code}); see above.")
         _record_final_paths(tmp, out)
