@@ -37,10 +37,13 @@ def _follow_parent(parent_pid: int) -> None:
     """
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    if not _death_signal(signal.SIGTERM):
-        threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True).start()
-    if os.getppid() != parent_pid:  # the parent died before the death signal was set up
-        os._exit(1)
+    # the death signal follows the process that forked us: only when that is the run itself (the "fork" start
+    # method; a "forkserver" or "spawn" worker has another parent and is watched instead)
+    if os.getppid() == parent_pid and _death_signal(signal.SIGTERM):
+        if os.getppid() != parent_pid:  # the run died before the death signal was set up
+            os._exit(1)
+        return
+    threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True).start()
 
 
 def _death_signal(signum: int) -> bool:
@@ -56,9 +59,19 @@ def _death_signal(signum: int) -> bool:
 
 
 def _watch_parent(parent_pid: int, every_s: float = 1.0) -> None:
-    while os.getppid() == parent_pid:
+    while _running(parent_pid):
         time.sleep(every_s)
     os._exit(1)
+
+
+def _running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    return True
 
 
 def _stop_workers(pool) -> None:
