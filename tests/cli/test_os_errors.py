@@ -176,17 +176,3 @@ def test_a_temporary_name_is_reported_as_the_output_the_user_asked_for(tmp_path)
     assert _claims.os_error_text(other, out, verb="use") == ("cannot use /data/session.h5: Permission denied "
                                                                "(EACCES); check the file's permissions.")
 
-
-@pytest.mark.slow
-def test_a_real_open_file_limit_is_one_line_with_the_fix(tmp_path):
-    import resource
-
-    out = tmp_path / "report"
-    code = "import sys; from stimsteer.control.cli import main; sys.exit(main())"
-    done = subprocess.run([sys.executable, "-c", code, "bench", SESSION, "--quick", "--workers", "2", "--out", str(out)],
-                          capture_output=True, text=True, timeout=600,
-                          preexec_fn=lambda: resource.setrlimit(resource.RLIMIT_NOFILE, (14, 14)))
-    assert done.returncode == 2, done.stderr[-2000:]
-    (line,) = done.stderr.strip().splitlines()
-    assert "Too many open files (EMFILE)" in line and "ulimit -n" in line
-    assert list(tmp_path.iterdir()) == []
