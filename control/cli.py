@@ -13,13 +13,16 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+from pathlib import Path
 
+from ..sysid._claims import _errno_known, _is_temporary_of, os_error_text
 from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
 from .commands import convert as _convert
 from .commands import live as _live
 from .commands import study as _study
 from .commands import bench as _bench, demo as _demo, plan as _plan, predict as _predict, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
+from .commands._common import claiming, interruptible
 
 __all__ = ["main", "build_parser", "CAUTION"]
 
@@ -40,9 +43,10 @@ def _run_demo(args):
 _SUBCOMMANDS = {
     "fit": (_fit.add_parser, _fit.run),
     "predict": (_predict.add_parser, _predict.run),
-    "network": (_network.add_parser, _network.run),
+    # plan and network do not claim their --out themselves yet: claimed here, before they load or compute anything
+    "network": (_network.add_parser, claiming(_network.run, "network")),
     "schedule": (_schedule.add_parser, _schedule.run),
-    "plan": (_plan.add_parser, _plan.run),
+    "plan": (_plan.add_parser, claiming(_plan.run, "plan")),
     "bench": (_bench.add_parser, _bench.run),
     "inspect": (_inspect.add_parser, _inspect.run),
     "convert": (_convert.add_parser, _convert.run),
@@ -69,25 +73,38 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     """Run ``stimsteer`` with ``argv`` (default: the process arguments) and return its exit code.
 
-    0 on success; 2 for a toolkit error or a missing file (one line on stderr); 1 for anything else, a bug (one
-    line, or the traceback with ``STIMSTEER_DEBUG=1``); 130 when interrupted.
+    0 on success; 2 for a toolkit error, a missing file or a refusal of the operating system (no space, read-only,
+    quota, too many open files: one line naming the path and the reason); 1 for anything else, a bug (one line, or
+    the traceback with ``STIMSTEER_DEBUG=1``); 130 when interrupted (Ctrl-C, SIGINT) and 143 when terminated
+    (SIGTERM), with no partial output kept.
     """
     parser = build_parser()
     args = parser.parse_args(argv)
     _add, run = _SUBCOMMANDS[args.command]
     try:
-        return int(run(args) or 0)
+        with interruptible():
+            return int(run(args) or 0)
     except StimsteerError as exc:
         return _fail(args.command, str(exc), 2)
-    except (FileNotFoundError, IsADirectoryError, NotADirectoryError, PermissionError) as exc:
+    except (FileNotFoundError, IsADirectoryError, NotADirectoryError) as exc:
         return _fail(args.command, f"{exc.strerror or exc}: {exc.filename}", 2)
-    except KeyboardInterrupt:
-        return _fail(args.command, "interrupted; no partial output was kept.", 130)
+    except KeyboardInterrupt as exc:
+        return _fail(args.command, "interrupted; no partial output was kept.", getattr(exc, "code", 130))
     except Exception as exc:  # a bug, not bad input: still one line, with the way to see the traceback
+        if _errno_known(exc):  # the system refused (full disk, read-only, quota, open files): say so plainly
+            return _fail(args.command, _os_error_line(exc, args), 2)
         if os.environ.get("STIMSTEER_DEBUG"):
             raise
         return _fail(args.command, f"internal error ({type(exc).__name__}: {exc}); please report it with the "
                      "command you ran (set STIMSTEER_DEBUG=1 to see the traceback).", 1)
+
+
+def _os_error_line(exc: OSError, args) -> str:
+    """The system's refusal in one line: the output path (not our temporary name) when writing it, else the file."""
+    out = getattr(args, "out", None)
+    name = Path(str(exc.filename)) if exc.filename else None
+    writing = out is not None and (name is None or _is_temporary_of(name, Path(out)))
+    return os_error_text(exc, out if writing else None, verb="write" if writing else "use")
 
 
 def _fail(command: str, message: str, code: int) -> int:

@@ -11,8 +11,11 @@ does not depend on the command line that runs it.
 from __future__ import annotations
 
 import io
+import json
+import os
+import sys
 import time
-from contextlib import redirect_stdout
+from contextlib import redirect_stderr, redirect_stdout
 from pathlib import Path
 
 import numpy as np
@@ -21,6 +24,7 @@ from ..demo_data import demo_file
 from ..sysid import StimsteerError, load_session
 from ..sysid._files import atomic_dir
 from ..sysid.caution import CAUTION
+from .commands._common import Interrupted
 
 __all__ = ["run_demo", "demo_steps", "DEMO_PATTERN_FILE"]
 
@@ -78,6 +82,45 @@ def demo_steps(session: str, plant: str, limits: str, out: str) -> list[tuple[st
     return steps
 
 
+class _Renamed:
+    """A text stream that shows the final output folder where a step names the temporary one (errors, warnings)."""
+
+    def __init__(self, stream, tmp: str, out: str):
+        self._stream, self._tmp, self._out = stream, tmp, out
+
+    def write(self, text: str) -> int:
+        return self._stream.write(text.replace(self._tmp, self._out))
+
+    def flush(self) -> None:
+        self._stream.flush()
+
+    def isatty(self) -> bool:  # a progress bar stays a progress bar
+        return self._stream.isatty()
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _final_paths(value, tmp: str, out: str):
+    if isinstance(value, dict):
+        return {k: _final_paths(v, tmp, out) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_final_paths(v, tmp, out) for v in value]
+    if isinstance(value, str) and (value == tmp or value.startswith(tmp + os.sep)):
+        return out + value[len(tmp):]
+    return value
+
+
+def _record_final_paths(tmp: Path, out: Path) -> None:
+    """Make the JSON records name the files where they will stay (``out/models/...``), not the temporary folder
+    the steps wrote into (it is renamed to ``out`` when the demo ends)."""
+    for path in sorted(tmp.rglob("*.json")):
+        record = json.loads(path.read_text(encoding="utf-8"))
+        fixed = _final_paths(record, str(tmp), str(out))
+        if fixed != record:  # written as the plan command writes it
+            path.write_text(json.dumps(fixed, indent=2, allow_nan=False), encoding="utf-8")
+
+
 def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
     """Run every demo step into the folder ``out`` and return the path of the HTML report.
 
@@ -109,11 +152,14 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
         for (title, argv), (_, shown_argv) in steps:
             echo(f"\n== {title}\n$ stimsteer {' '.join(shown_argv)}")
             text = io.StringIO()
-            with redirect_stdout(text):
+            with redirect_stdout(text), redirect_stderr(_Renamed(sys.stderr, str(tmp), str(out))):
                 code = run_step(argv)
             echo(text.getvalue().replace(str(tmp), str(out)).rstrip())
+            if code in (130, 143):  # the step was interrupted (Ctrl-C, SIGTERM): so is the demo
+                raise Interrupted(code - 128)
             if code != 0:
                 raise StimsteerError(f"the demo step `stimsteer {argv[0]}` failed (exit code {code}); see above.")
+        _record_final_paths(tmp, out)
     report = out / "report" / "report.html"
     echo(f"\ndemo finished in {time.perf_counter() - started:.0f} s; outputs in {out}")
     echo(f"open the report: {report}")

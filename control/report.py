@@ -27,6 +27,7 @@ import pandas as pd
 from ..sysid.caution import CAUTION
 from .evaluation import BenchResult, t_interval
 from .evaluation.tables import best_label
+from .figures._glyphs import caption_note, undrawable
 
 __all__ = ["summarize", "report_html", "results_json", "bench_run_id", "REPORT_FILE", "RESULTS_FILE"]
 
@@ -293,10 +294,13 @@ def report_html(result: BenchResult, figures: dict, lines: list, run_id: str) ->
     parts.append("</ul><h2>Key figures (base setting; mean [95 % interval] over splits)</h2>")
     parts.append(_key_table(result).to_html(escape=True, border=0))
     parts.append("<h2>Figures</h2>")
+    session = result.provenance.get("session", {}) if isinstance(result.provenance, dict) else {}
+    lost = undrawable([*session.get("input_names", ()), *session.get("output_names", ())])
+    note = f" {caption_note(lost)}" if lost else ""  # names no installed font can draw: said, not warned
     for name, png in figures.items():
         data = base64.b64encode(png).decode("ascii")
         parts.append(f"<figure><img alt='{esc(name)}' src='data:image/png;base64,{data}'>"
-                     f"<figcaption>{esc(_CAPTIONS.get(name, ''))}</figcaption></figure>")
+                     f"<figcaption>{esc(_CAPTIONS.get(name, '') + note)}</figcaption></figure>")
     if not result.surrogate.empty:
         parts.append("<h2>Surrogate plant</h2>" + result.surrogate.to_html(index=False, border=0, escape=True))
     if not result.failures.empty:

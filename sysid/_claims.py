@@ -45,16 +45,41 @@ def _errno_of(exc: OSError) -> int | None:
     return None
 
 
-def os_error_text(exc: OSError, path=None) -> str:
-    """One line naming the path, the system's reason and what to do, for an :class:`OSError`."""
+def os_error_text(exc: OSError, path=None, *, verb: str = "write") -> str:
+    """One line naming the path, the system's reason and what to do, for an :class:`OSError`.
+
+    ``path`` is named when the error carries no file name, or when that name is one of the temporary files
+    ``.<name>.*`` written beside ``path`` (a user knows the output they asked for, not our temporary names).
+    ``verb`` says what was being done (``write``, ``read``).
+    """
     code = _errno_of(exc)
     where = exc.filename or path or "a file"
+    if path is not None and exc.filename and _is_temporary_of(Path(str(exc.filename)), Path(path)):
+        where = path
     if code is None:
-        return f"cannot write {where}: {exc}"
+        return f"cannot {verb} {where}: {exc}"
     reason = os.strerror(code)
     name = errno.errorcode.get(code, str(code))
     hint = _HINTS.get(code, "check the path and the file system")
-    return f"cannot write {where}: {reason} ({name}); {hint}."
+    if verb != "write" and code in (errno.EACCES, errno.EPERM):
+        hint = "check the file's permissions"
+    return f"cannot {verb} {where}: {reason} ({name}); {hint}."
+
+
+def _errno_known(exc: BaseException) -> bool:
+    """Whether ``exc`` is an OSError that carries a system error number (also folded into an h5py message)."""
+    return isinstance(exc, OSError) and _errno_of(exc) is not None
+
+
+def _is_temporary_of(name: Path, path: Path) -> bool:
+    """``name`` is ``path`` itself, inside it, or one of the temporary files ``.<name>.*`` beside it (or inside)."""
+    try:
+        name, path = name.absolute(), path.absolute()
+    except OSError:
+        return False
+    if name == path or path in name.parents:
+        return True
+    return any(p.name.startswith(f".{path.name}.") and p.parent == path.parent for p in (name, *name.parents))
 
 
 def _start_time(pid: int) -> str:
@@ -99,8 +124,20 @@ def _remove_leftovers(path: Path) -> list[str]:
 
 def _take(lock: Path) -> None:
     fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-    with os.fdopen(fd, "w") as fh:
-        fh.write(f"{os.getpid()} {_start_time(os.getpid())}")
+    try:
+        with os.fdopen(fd, "w") as fh:
+            fh.write(f"{os.getpid()} {_start_time(os.getpid())}")
+    except BaseException:  # a full disk can refuse the few bytes after creating the name: leave no empty claim
+        with contextlib.suppress(OSError):
+            lock.unlink()
+        raise
+
+
+def _mtime(lock: Path) -> float:
+    try:
+        return lock.stat().st_mtime
+    except FileNotFoundError:  # released between our two looks: it is free now
+        return 0.0
 
 
 def _acquire(path: Path, lock: Path, notes: list) -> None:
@@ -113,7 +150,7 @@ def _acquire(path: Path, lock: Path, notes: list) -> None:
             if pid > 0 and _alive(pid, started):
                 raise OutputError(f"{path} is being written by another run (process {pid}); wait for it to end or "
                                   "choose another --out.") from None
-            if pid < 0 and time.time() - lock.stat().st_mtime < 2.0:
+            if pid < 0 and time.time() - _mtime(lock) < 2.0:
                 time.sleep(0.1)  # a claim being written this instant: read it again
                 continue
             with contextlib.suppress(FileNotFoundError):
@@ -155,9 +192,12 @@ def claim_output(path, *, force: bool = False, notes: list | None = None):
     except OSError as exc:
         if isinstance(exc, OutputError):
             raise
-        raise OutputError(os_error_text(exc, lock)) from None
+        raise OutputError(os_error_text(exc, path)) from None
     try:
-        if not force and path.exists() and not (path.is_dir() and not any(path.iterdir())):
+        if not force and path.is_dir() and any(path.iterdir()):
+            raise OutputError(f"output folder {path} already holds files (another run's output?); choose a new --out "
+                              "or pass --force to replace it whole.")
+        if not force and path.exists() and not path.is_dir():
             raise OutputError(f"{path} already exists (another run's output?); choose a new --out or pass --force "
                               "to replace it.")
         yield path

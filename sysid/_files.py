@@ -10,7 +10,7 @@ from pathlib import Path
 
 from .exceptions import StimsteerError
 
-__all__ = ["atomic_path", "atomic_dir"]
+__all__ = ["atomic_path", "atomic_dir", "write_bytes", "hdf5_bytes"]
 
 
 def _umask() -> int:
@@ -71,3 +71,25 @@ def atomic_dir(path, force: bool = False):
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def write_bytes(path, data, suffix: str | None = None) -> Path:
+    """Write ``data`` (bytes or a buffer) to ``path`` atomically; a full disk raises a plain :class:`OSError`."""
+    with atomic_path(path, suffix=suffix) as tmp:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+    return Path(path)
+
+
+@contextlib.contextmanager
+def hdf5_bytes():
+    """Yield an in-memory file for ``h5py.File(buf, "w")``; afterwards ``buf.getbuffer()`` holds the whole file.
+
+    HDF5 files are built in memory and written with :func:`write_bytes`: the HDF5 library, writing to a disk that
+    fills up, reports the failure again on every object it closes and can crash the interpreter while cleaning up
+    (a segmentation fault after dozens of tracebacks); a plain write of finished bytes fails once, cleanly.
+    """
+    import io
+
+    buf = io.BytesIO()
+    yield buf

@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._files import atomic_path
+from ._files import hdf5_bytes, write_bytes
 from ._records import versions
 from .exceptions import FileFormatError, StimsteerError
 from .registry import METHODS
@@ -224,14 +224,15 @@ def save_predictor(predictor, path, *, provenance: dict, overwrite: bool = False
     prov = dict(provenance or {})
     prov["saved"] = {"created_utc": created, "versions": versions(), "layout_version": LAYOUT_VERSION, "kind": kind}
     text = json.dumps(_plain_tree(prov, "provenance"), allow_nan=True)
-    with atomic_path(path, suffix=".h5") as tmp:
-        with h5py.File(tmp, "w") as f:
+    with hdf5_bytes() as buf:  # built in memory, then written whole (see stimsteer.sysid._files.hdf5_bytes)
+        with h5py.File(buf, "w") as f:
             f.attrs[_MARK] = _MARK_VALUE
             f.attrs["layout_version"] = LAYOUT_VERSION
             f.attrs["kind"] = kind
             f.attrs["created_utc"] = created
             _write_dict(f.create_group("state"), state, "state")
             f.create_dataset("provenance", data=text)
+        write_bytes(path, buf.getbuffer(), suffix=".h5")
     return path
 
 

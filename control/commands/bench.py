@@ -22,10 +22,12 @@ from ...sysid import StimsteerError, load_session
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
+from ..evaluation.execute import check_scheduler_address
 from ..figures import bench as bench_figures
 from ..limits import load_limits
 from ..plants import load_plant
 from ..report import REPORT_FILE, RESULTS_FILE, bench_run_id, report_html, results_json, summarize
+from ._common import claimed
 
 __all__ = ["BenchRun", "add_parser", "bench_files", "check_out_dir", "run", "write_bench"]
 
@@ -129,7 +131,8 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
     session_path : str or Path
         Session file (our HDF5 layout, CSV/Parquet table, or NWB).
     out_dir : str or Path
-        Report folder; claimed before any work (new or empty, or ``force``).
+        Report folder; claimed before any work (new or empty, or ``force``): a second run on it is refused at once,
+        and what a killed run left beside it is removed (:func:`stimsteer.sysid._claims.claim_output`).
     plant_path, limits_path : str or Path, optional
         Ground-truth plant file of a simulated session; declared limits (TOML).
     seed : int, default 0
@@ -151,16 +154,19 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
         As :func:`check_out_dir`, the loaders and :func:`~stimsteer.control.evaluation.run_bench`; nothing is
         written then.
     """
+    if scheduler:
+        check_scheduler_address(scheduler)
     check_out_dir(out_dir, force=force)
-    session = load_session(session_path)
-    plant = None if plant_path is None else load_plant(plant_path)
-    limits = None if limits_path is None else load_limits(limits_path)
-    settings = (BenchSettings.quick if quick else BenchSettings)(seed=seed)
-    source = {"session_file": str(session_path), "plant_file": None if plant_path is None else str(plant_path),
-              "limits_file": None if limits_path is None else str(limits_path)}
-    result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
-                       progress=progress, source=source)
-    files = write_bench(result, out_dir, force=force)
+    with claimed(out_dir, force=force, command="bench"):  # a second run on this folder is refused at once
+        session = load_session(session_path)
+        plant = None if plant_path is None else load_plant(plant_path)
+        limits = None if limits_path is None else load_limits(limits_path)
+        settings = (BenchSettings.quick if quick else BenchSettings)(seed=seed)
+        source = {"session_file": str(session_path), "plant_file": None if plant_path is None else str(plant_path),
+                  "limits_file": None if limits_path is None else str(limits_path)}
+        result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
+                           progress=progress, source=source)
+        files = write_bench(result, out_dir, force=force)
     return BenchRun(result=result, lines=summarize(result), files=files)
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from ..demo import run_demo
+from ._common import claimed
 
 __all__ = ["add_parser", "run"]
 
@@ -17,5 +18,6 @@ def add_parser(subparsers) -> None:
 
 def run(args, *, run_step) -> int:
     """Run the demo into ``args.out``; ``run_step(argv) -> int`` runs each step (the command line's ``main``)."""
-    run_demo(args.out, run_step=run_step, force=args.force, echo=print)
+    with claimed(args.out, force=args.force, command="demo"):
+        run_demo(args.out, run_step=run_step, force=args.force, echo=print)
     return 0

@@ -5,9 +5,9 @@ from __future__ import annotations
 import argparse
 import sys
 import warnings
-from pathlib import Path
 
 from ...sysid import METHODS, InvalidParameterError, fit_route, open_session_source, save_predictor
+from ._common import claimed
 
 __all__ = ["add_parser", "run"]
 
@@ -85,18 +85,12 @@ def _selection_text(result) -> str:
 
 
 def run(args) -> int:
-    """Fit, save the model file, print the selection and held-out scores; 0 on success."""
-    if Path(args.out).exists() and not args.force:
-        raise InvalidParameterError(f"model file {args.out} already exists; choose another --out or pass --force.")
+    """Claim the model file, fit, save it, print the selection and held-out scores; 0 on success."""
     settings = _settings(args)
-    with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
-        warnings.simplefilter("always")
-        result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
-                           test_fraction=args.test_fraction, horizon_steps=args.horizon)
-    for w in caught:
-        sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
-    provenance = {**result.provenance, "session_file": str(args.session)}
-    save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
+    with claimed(args.out, force=args.force, command="fit"):
+        result = _fit(args, settings)
+        provenance = {**result.provenance, "session_file": str(args.session)}
+        save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
     split = result.split
     print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
     print("selection (training trials only):")
@@ -105,3 +99,14 @@ def run(args) -> int:
     print(result.heldout.to_text())
     print(f"model written to {args.out}")
     return 0
+
+
+def _fit(args, settings):
+    """``fit_route`` on the session file; its warnings become one stderr line each."""
+    with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
+        warnings.simplefilter("always")
+        result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
+                           test_fraction=args.test_fraction, horizon_steps=args.horizon)
+    for w in caught:
+        sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
+    return result

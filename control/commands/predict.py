@@ -18,6 +18,7 @@ from ...sysid import InvalidParameterError, load_pattern, load_predictor, open_s
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..figures.predict import prediction_figure
+from ._common import claimed
 from .plan import trial_ref
 
 __all__ = ["add_parser", "prediction_table", "run", "write_prediction"]
@@ -95,23 +96,24 @@ def _score_trial(args, predictor, provenance) -> int:
 
 def run(args) -> int:
     """Run ``stimsteer predict`` from parsed arguments."""
-    predictor, provenance = load_predictor(args.model)
     if (args.pattern is None) == (getattr(args, "score_trial", None) is None):
         raise InvalidParameterError("give either --pattern FILE (predict a stimulation pattern) or --score-trial "
                                     "SESSION:INDEX (score a recorded trial), not both or neither.")
     if args.score_trial is not None:
-        return _score_trial(args, predictor, provenance)
+        return _score_trial(args, *load_predictor(args.model))
     if args.out is None:
         raise InvalidParameterError("--pattern needs --out FOLDER for prediction.csv and prediction.png.")
-    pattern = load_pattern(args.pattern)
-    past, start = None, "rest"
-    if args.from_trial is not None:
-        path, index = args.from_trial
-        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
-            past = trial_end_window(session, index, predictor, provenance)
-        start = f"the end of trial {index} of {path}"
-    prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
-    files = write_prediction(prediction, args.out, force=args.force)
+    with claimed(args.out, force=args.force, command="predict"):
+        predictor, provenance = load_predictor(args.model)
+        pattern = load_pattern(args.pattern)
+        past, start = None, "rest"
+        if args.from_trial is not None:
+            path, index = args.from_trial
+            with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+                past = trial_end_window(session, index, predictor, provenance)
+            start = f"the end of trial {index} of {path}"
+        prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
+        files = write_prediction(prediction, args.out, force=args.force)
     print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
     for note in prediction.notes:
         print(f"caution: {note}")

@@ -3,10 +3,13 @@ CSV file that opens with the caution."""
 
 from __future__ import annotations
 
-from ...sysid import InvalidParameterError, LimitsError, required_order
+import re
+
+from ...sysid import InvalidParameterError, LimitsError, StimsteerError, required_order
 from ...sysid.caution import CAUTION
 from ..limits import load_limits
 from ..schedule import SCHEDULE_KINDS, design_schedule, save_schedule
+from ._common import claimed
 
 __all__ = ["add_parser", "run"]
 
@@ -52,19 +55,40 @@ def _order(args) -> int:
     return order
 
 
+# the API's parameter names in its messages, and the flags a user of this command types instead
+_FLAGS = {"sample_rate_hz": "--rate-hz", "n_levels": "--levels", "n_trials": "--trials", "trial_s": "--trial-s",
+          "rest_s": "--rest-s", "hold_steps": "--hold-steps", "pulse_rate_hz": "--pulse-rate-hz",
+          "band_hz": "--band-hz", "energy_window_steps": "--energy-window-steps", "min_interval_steps": None}
+_NAMES = re.compile(r"(?<![\w-])(" + "|".join(_FLAGS) + r")(?![\w-])")
+
+
+def _design(args, limits, order):
+    """``design_schedule`` with the command's settings; its messages name the flags, not the API's parameters."""
+    try:
+        return design_schedule(
+            limits, order=order, kind=args.kind, sample_rate_hz=args.rate_hz, n_trials=args.trials,
+            trial_s=args.trial_s, rest_s=args.rest_s, seed=args.seed, energy_window_steps=args.energy_window_steps,
+            hold_steps=args.hold_steps, n_levels=args.levels, pulse_rate_hz=args.pulse_rate_hz,
+            band_hz=args.band_hz,
+        )
+    except StimsteerError as exc:
+        text = _NAMES.sub(lambda m: _FLAGS[m.group(1)] or "the minimum inter-pulse interval", str(exc))
+        text = re.sub(r"^order must be", "--order must be", text)
+        if text == str(exc):
+            raise
+        raise type(exc)(text) from None
+
+
 def run(args) -> int:
     """Design the schedule, write it, print its summary; 0 on success."""
-    order = _order(args)
-    limits = load_limits(args.limits)
-    if limits.n_inputs != args.inputs:
-        raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
-                          f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
-    schedule = design_schedule(
-        limits, order=order, kind=args.kind, sample_rate_hz=args.rate_hz, n_trials=args.trials,
-        trial_s=args.trial_s, rest_s=args.rest_s, seed=args.seed, energy_window_steps=args.energy_window_steps,
-        hold_steps=args.hold_steps, n_levels=args.levels, pulse_rate_hz=args.pulse_rate_hz, band_hz=args.band_hz,
-    )
-    save_schedule(schedule, args.out, overwrite=args.force)
+    with claimed(args.out, force=args.force, command="schedule"):
+        order = _order(args)
+        limits = load_limits(args.limits)
+        if limits.n_inputs != args.inputs:
+            raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
+                              f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
+        schedule = _design(args, limits, order)
+        save_schedule(schedule, args.out, overwrite=args.force)
     print(schedule.to_text())
     print(f"schedule written to {args.out}")
     print(CAUTION)

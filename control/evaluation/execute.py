@@ -6,8 +6,13 @@ numbers do not depend on where a task ran; only the timing columns do.
 
 from __future__ import annotations
 
+import contextlib
 import os
+import signal
+import socket
 import sys
+import threading
+import time
 
 from ...sysid import InvalidParameterError, StimsteerError
 from .task_body import _run_task
@@ -16,8 +21,66 @@ from .tasks import _Context, _Task
 _INSTALLED: dict = {}
 
 
-def _install(ctx: _Context) -> None:
+def _install(ctx: _Context, parent_pid: int | None = None) -> None:
     _INSTALLED["ctx"] = ctx
+    if parent_pid is not None:
+        _follow_parent(parent_pid)
+
+
+def _follow_parent(parent_pid: int) -> None:
+    """Make a pool worker end with the run that started it, however that run ends.
+
+    Workers are forked, so they inherit the parent's signal handlers: SIGTERM gets its default action back (end at
+    once; the parent's handler would unwind a task and print its traceback), and SIGINT is ignored (Ctrl-C reaches
+    the whole process group; the parent stops the workers). When the parent dies without stopping them (kill -9),
+    Linux sends them SIGTERM (``prctl(PR_SET_PDEATHSIG)``); elsewhere a watchdog thread checks the parent's id.
+    """
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # the death signal follows the process that forked us: only when that is the run itself (the "fork" start
+    # method; a "forkserver" or "spawn" worker has another parent and is watched instead)
+    if os.getppid() == parent_pid and _death_signal(signal.SIGTERM):
+        if os.getppid() != parent_pid:  # the run died before the death signal was set up
+            os._exit(1)
+        return
+    threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True).start()
+
+
+def _death_signal(signum: int) -> bool:
+    """``prctl(PR_SET_PDEATHSIG, signum)`` on Linux (1 is PR_SET_PDEATHSIG in <linux/prctl.h>); False elsewhere."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        import ctypes
+
+        return ctypes.CDLL(None, use_errno=True).prctl(1, int(signum), 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
+
+
+def _watch_parent(parent_pid: int, every_s: float = 1.0) -> None:
+    while _running(parent_pid):
+        time.sleep(every_s)
+    os._exit(1)
+
+
+def _running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    return True
+
+
+def _stop_workers(pool) -> None:
+    """End a process pool's workers now (an interruption): running tasks are abandoned, not awaited."""
+    # ProcessPoolExecutor has no public way to end running workers; its ``_processes`` maps pid -> Process.
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        with contextlib.suppress(Exception):
+            proc.terminate()
+    pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _run_installed(task: _Task) -> dict:
@@ -47,16 +110,62 @@ def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> list:
         return results
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx,)) as pool:
-        futures = {pool.submit(_run_installed, t): t.index for t in tasks}
+    with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx, os.getpid())) as pool:
         try:
+            futures = {pool.submit(_run_installed, t): t.index for t in tasks}
             for fut in as_completed(futures):
                 results[futures[fut]] = fut.result()
                 bar.update()
-        except BaseException:
-            pool.shutdown(wait=False, cancel_futures=True)
+        except BaseException:  # Ctrl-C, SIGTERM, a failure: no worker outlives the run
+            _stop_workers(pool)
             raise
     return results
+
+
+_SCHEMES = ("tcp", "tls", "ws", "wss", "ucx", "inproc")
+
+
+def check_scheduler_address(address) -> str:
+    """Check a Dask scheduler address (``tcp://host:8786``, ``host:8786``) without contacting it; return it.
+
+    Raises
+    ------
+    InvalidParameterError
+        An address that cannot be parsed (unknown protocol, no host, a port that is not a number in 1-65535).
+    """
+    text = str(address).strip()
+    scheme, sep, rest = text.rpartition("://")
+    scheme = scheme if sep else "tcp"
+    host, colon, port = rest.rpartition(":")
+    problem = None
+    if scheme not in _SCHEMES:
+        problem = f"unknown protocol {scheme!r} (expected one of {', '.join(_SCHEMES)})"
+    elif scheme != "inproc" and (not colon or not host):
+        problem = "expected a host and a port"
+    elif any(c.isspace() for c in host):
+        problem = f"the host {host!r} contains spaces"
+    elif scheme != "inproc" and not (port.isdigit() and 0 < int(port) < 65536):
+        problem = f"the port {port!r} is not a number between 1 and 65535"
+    if problem:
+        raise InvalidParameterError(f"--scheduler {text!r} is not a scheduler address: {problem}. Give it as "
+                                    "tcp://HOST:PORT (e.g. tcp://127.0.0.1:8786), or run locally without --scheduler.")
+    return text if sep else f"tcp://{text}"
+
+
+def _reachable(address: str, timeout: float) -> None:
+    """Open and close a TCP connection to a tcp:// scheduler first: a refused or unknown host fails here, at once,
+    instead of inside Dask's client, whose clean-up after a failed start waits another 20 s."""
+    scheme, _, rest = address.rpartition("://")
+    if scheme != "tcp":
+        return
+    host, _, port = rest.rpartition(":")
+    try:
+        socket.create_connection((host.strip("[]"), int(port)), timeout=timeout).close()
+    except OSError as exc:
+        raise StimsteerError(
+            f"could not reach a Dask scheduler at {address!r} within {timeout:g} s ({exc.strerror or exc}). Check "
+            "the address (e.g. tcp://host:8786) and that the scheduler is running, or run locally without --scheduler."
+        ) from None
 
 
 def _connect(address: str, timeout: float):
@@ -65,6 +174,8 @@ def _connect(address: str, timeout: float):
     except ImportError:
         raise StimsteerError("running on a Dask cluster (--scheduler) needs Dask's distributed package; install "
                              "the extra: pip install 'stimsteer[dist]'. Or run locally without --scheduler.") from None
+    address = check_scheduler_address(address)
+    _reachable(address, timeout)
     try:
         client = Client(str(address), timeout=f"{timeout}s", set_as_default=False)
     except (OSError, TimeoutError, ValueError, TypeError) as exc:

@@ -18,7 +18,7 @@ from ...sysid import InvalidParameterError, Session, SessionError, StimsteerErro
 from ...sysid._records import jsonable, session_record, versions
 from ..limits import StimLimits
 from .closed_loop import _check_plant, _surrogate_spec
-from .execute import _execute
+from .execute import _execute, check_scheduler_address
 from .settings import BenchSettings
 from .tables import _KEYS, _assemble, _columns, _comparison, _sweeps
 from .tasks import _check_trials, _Context, _grid, _splits, _tasks
@@ -215,6 +215,8 @@ def run_bench(session, settings: BenchSettings | None = None, *, plant=None, lim
     st = BenchSettings() if settings is None else settings
     if not isinstance(st, BenchSettings):
         raise InvalidParameterError(f"settings must be a BenchSettings; got {type(st).__name__}.")
+    if scheduler:  # a typo in the address is refused before any work
+        check_scheduler_address(scheduler)
     session = _as_session(session)
     if plant is not None:
         _check_plant(plant, session)

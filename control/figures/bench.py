@@ -13,6 +13,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
+from ._glyphs import GlyphSafeFigure
+
 from ..evaluation import BenchResult, t_interval
 
 __all__ = ["report_figures", "method_colours", "fig_predictions", "fig_accuracy", "fig_closed_loop", "fig_tradeoff",
@@ -32,7 +34,7 @@ _GRID = {"color": "#e4e4e4", "linewidth": 0.6}
 # ------------------------------------------------------------------------------------------------ style
 def _figure(nrows: int, ncols: int, figsize, **kwargs):
     """A new figure and its axes grid (always 2-D), each axes styled (light grid, no top and right spines)."""
-    fig = Figure(figsize=figsize, dpi=_DPI)
+    fig = GlyphSafeFigure(figsize=figsize, dpi=_DPI)
     axes = fig.subplots(nrows, ncols, squeeze=False, **kwargs)
     for ax in axes.flat:
         ax.spines[["top", "right"]].set_visible(False)

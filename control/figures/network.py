@@ -9,6 +9,8 @@ from __future__ import annotations
 import numpy as np
 from matplotlib.figure import Figure
 
+from ._glyphs import GlyphSafeFigure
+
 __all__ = ["gramian_spectrum_figure", "impulse_response_figure", "ranking_figure", "MAX_GRID", "MAX_BARS"]
 
 _INK, _ACCENT, _MUTED, _WARN = "#24434f", "#c7792f", "#8a9aa3", "#a23b3b"
@@ -41,7 +43,7 @@ def gramian_spectrum_figure(eigenvalues, horizon_steps, condition_number: float,
     what : str
         Which Gramian (e.g. ``"output Gramian C W Cᵀ"``), for the title.
     """
-    fig = Figure(figsize=(6.0, 3.4))
+    fig = GlyphSafeFigure(figsize=(6.0, 3.4))
     ax = fig.add_subplot()
     eig = np.asarray(eigenvalues)
     k = np.arange(1, eig.size + 1)
@@ -74,7 +76,7 @@ def impulse_response_figure(h, model, units=None) -> Figure:
     p, m = h.shape[1], h.shape[2]
     in_units, out_units = units if units is not None else ((None,) * m, (None,) * p)
     rp, rm = min(p, MAX_GRID), min(m, MAX_GRID)
-    fig = Figure(figsize=(1.6 * rm + 1.2, 1.1 * rp + 1.0))
+    fig = GlyphSafeFigure(figsize=(1.6 * rm + 1.2, 1.1 * rp + 1.0))
     t = np.arange(h.shape[0]) / model.sample_rate_hz
     axes = fig.subplots(rp, rm, sharex=True, squeeze=False)
     for i in range(rp):
@@ -101,7 +103,7 @@ def impulse_response_figure(h, model, units=None) -> Figure:
 def ranking_figure(labels, values, title: str, xlabel: str, log: bool = True) -> Figure:
     """Horizontal bars of the first :data:`MAX_BARS` entries, best at the top (log scale when all are positive)."""
     n = min(len(labels), MAX_BARS)
-    fig = Figure(figsize=(6.0, 0.28 * n + 1.3))
+    fig = GlyphSafeFigure(figsize=(6.0, 0.28 * n + 1.3))
     ax = fig.add_subplot()
     ypos = np.arange(n)[::-1]
     ax.barh(ypos, values[:n], color=_ACCENT, height=0.65)

@@ -11,6 +11,8 @@ import textwrap
 import numpy as np
 from matplotlib.figure import Figure
 
+from ._glyphs import GlyphSafeFigure
+
 __all__ = ["plan_figure"]
 
 # at most this many output lines in the lower panel (tracked outputs first, then bounded ones)
@@ -35,7 +37,7 @@ def plan_figure(plan, time_s, output_units, tracked) -> Figure:
     matplotlib.figure.Figure
         Two panels (inputs in µA, predicted outputs), title with the plan's status, caution at the bottom.
     """
-    fig = Figure(figsize=(8.0, 6.0), layout="constrained")
+    fig = GlyphSafeFigure(figsize=(8.0, 6.0), layout="constrained")
     axes = fig.subplots(2, 1, sharex=True)
     _inputs_panel(axes[0], plan, time_s)
     _outputs_panel(axes[1], plan, time_s, output_units, tracked)

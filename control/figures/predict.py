@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from matplotlib.figure import Figure
 
+from ._glyphs import GlyphSafeFigure
+
 __all__ = ["prediction_figure", "MAX_PANELS"]
 
 #: Outputs drawn at most (one panel each); all of them are in the CSV table.
@@ -24,7 +26,7 @@ def prediction_figure(pred) -> Figure:
         Not attached to pyplot; save it with ``fig.savefig(path)``.
     """
     shown = min(len(pred.output_names), MAX_PANELS)
-    fig = Figure(figsize=(8.0, 1.5 + 1.4 * (shown + 1)), layout="constrained")
+    fig = GlyphSafeFigure(figsize=(8.0, 1.5 + 1.4 * (shown + 1)), layout="constrained")
     axes = fig.subplots(shown + 1, 1, sharex=True, gridspec_kw={"height_ratios": [0.8] + [1.0] * shown})
     t = pred.time_s
     ax = axes[0]

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .._files import atomic_path
+from .._files import atomic_path, hdf5_bytes, write_bytes
 from ..exceptions import FileFormatError, SessionError, StimsteerError
 from ..session import Session
 from .detect import detect_format
@@ -99,9 +99,11 @@ def save_session(session: Session, path, *, overwrite: bool = False, compression
     if path.exists() and not overwrite:
         raise StimsteerError(f"{path} already exists; pass overwrite=True to replace it, or choose another name.")
     writer = {"hdf5": _write_hdf5, "csv": _write_csv, "parquet": _write_parquet, "nwb": _write_nwb}[kind]
+    if kind == "hdf5":  # built in memory and written whole: a full disk then fails once, cleanly (see _files)
+        with hdf5_bytes() as buf:
+            _write_hdf5(session, buf, _COMPRESSION[compression])
+            write_bytes(path, buf.getbuffer())
+        return path
     with atomic_path(path) as tmp:
-        if kind == "hdf5":
-            _write_hdf5(session, tmp, _COMPRESSION[compression])
-        else:
-            writer(session, tmp)
+        writer(session, tmp)
     return path

@@ -71,3 +71,28 @@ def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(demo_r
     assert (out / "network" / "site_ranking.png").is_file()
     assert (out / "next_schedule.csv").is_file()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind
+
+
+@pytest.mark.slow
+def test_the_demos_plans_name_model_files_that_exist_in_its_folder(demo_run):
+    # the steps write into a temporary folder renamed to --out at the end; plan.json named that deleted folder
+    out, _ = demo_run
+    for route, model in (("indirect", "indirect_subspace.h5"), ("direct", "direct_hankel.h5")):
+        plan = json.loads((out / f"plan_{route}" / "plan.json").read_text())
+        assert plan["model_file"] == str(out / "models" / model) and Path(plan["model_file"]).is_file()
+
+
+def test_an_interrupted_step_interrupts_the_demo_with_its_code_and_leaves_nothing(tmp_path):
+    from stimsteer.control.commands._common import Interrupted
+    from stimsteer.control.demo import run_demo
+
+    steps = []
+
+    def step(argv):
+        steps.append(argv[0])
+        return 143 if argv[0] == "fit" else 0  # SIGTERM reached the fit step
+
+    with pytest.raises(Interrupted) as caught:
+        run_demo(tmp_path / "demo", run_step=step, echo=lambda text: None)
+    assert caught.value.code == 143 and steps == ["inspect", "fit"]
+    assert list(tmp_path.iterdir()) == []

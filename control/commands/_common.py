@@ -1,0 +1,99 @@
+"""What the writing subcommands share: claiming the output before any computing.
+
+Every subcommand that writes (``fit``, ``predict``, ``network``, ``plan``, ``schedule``, ``bench``, ``demo``) runs
+its whole body inside :func:`claimed`, so a second run on the same output is refused at once, with one line, before
+anything is loaded or computed (:func:`stimsteer.sysid._claims.claim_output`). The claim is re-entrant within one
+process: the command line may claim around a command that claims for itself, and the output is claimed once.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import functools
+import os
+import sys
+from pathlib import Path
+
+from ...sysid._claims import claim_output
+
+__all__ = ["claimed", "claiming"]
+
+_HELD: set = set()  # absolute paths this process holds a claim on
+
+
+@contextlib.contextmanager
+def claimed(path, *, force: bool = False, command: str = ""):
+    """Claim ``path`` (file or folder) for this run; yields it as a :class:`~pathlib.Path`.
+
+    Parameters
+    ----------
+    path : str or Path
+        The ``--out`` of the command.
+    force : bool, default False
+        ``--force``: an existing output may be replaced (whole, at the end).
+    command : str, optional
+        The subcommand's name, for the note printed when a killed run's leftovers were removed.
+
+    Raises
+    ------
+    OutputError
+        Another live run writes ``path``; ``path`` exists (without ``force``); its folder cannot be written.
+    """
+    key = os.path.abspath(path)
+    if key in _HELD:
+        yield Path(path)
+        return
+    notes: list = []
+    with claim_output(path, force=force, notes=notes) as claimed_path:
+        for note in notes:
+            sys.stderr.write(f"stimsteer{' ' + command if command else ''}: note: {note}\n")
+        _HELD.add(key)
+        try:
+            yield claimed_path
+        finally:
+            _HELD.discard(key)
+
+
+def claiming(run, command: str):
+    """``run(args)`` of a subcommand, with ``args.out`` claimed (and ``args.force`` honoured) around it.
+
+    One line wires a command whose module does not claim for itself:
+    ``"plan": (plan.add_parser, claiming(plan.run, "plan"))``.
+    """
+
+    @functools.wraps(run)
+    def wrapped(args):
+        with claimed(args.out, force=bool(getattr(args, "force", False)), command=command):
+            return run(args)
+
+    return wrapped
+
+
+class Interrupted(KeyboardInterrupt):
+    """A run stopped by a signal (SIGTERM here; SIGINT is Python's own KeyboardInterrupt); ``code`` is 128 + signal."""
+
+    def __init__(self, signum: int):
+        super().__init__(f"signal {signum}")
+        self.code = 128 + int(signum)
+
+
+def _raise_interrupted(signum, _frame):
+    raise Interrupted(signum)
+
+
+@contextlib.contextmanager
+def interruptible():
+    """Turn SIGTERM into :class:`Interrupted` while the block runs, so it unwinds like Ctrl-C: workers stopped,
+    temporary files removed, the claim released. Only the main thread can take signals; elsewhere, nothing changes.
+    """
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _raise_interrupted)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)

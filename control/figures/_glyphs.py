@@ -1,0 +1,99 @@
+"""Channel names in any script, drawn without glyph warnings.
+
+Recorded channels may carry names in scripts the default font (DejaVu Sans) does not cover, e.g. Chinese or Japanese
+contact names. Matplotlib then draws empty boxes and prints one warning per missing glyph. A :class:`GlyphSafeFigure`
+instead, when it is saved, looks for an installed font that has the missing characters and draws those texts with it
+(matplotlib's font fallback list, per text, no global ``rcParams``); when no installed font has them, the glyph
+warnings are silenced and a caption under the figure says which characters could not be drawn and how to get them.
+"""
+
+from __future__ import annotations
+
+import functools
+import warnings
+
+from matplotlib import font_manager
+from matplotlib.figure import Figure
+from matplotlib.text import Text
+
+__all__ = ["GlyphSafeFigure", "caption_note", "undrawable"]
+
+_GLYPH_WARNING = r"Glyph \d+ .*missing from"
+
+
+@functools.lru_cache(maxsize=None)
+def _charmap(path: str) -> frozenset:
+    from matplotlib.ft2font import FT2Font
+
+    try:
+        return frozenset(FT2Font(path).get_charmap())
+    except (OSError, RuntimeError, ValueError):
+        return frozenset()
+
+
+def _skipped(ch: str) -> bool:
+    return ch.isspace() or not ch.isprintable()
+
+
+@functools.lru_cache(maxsize=None)
+def _font_with(chars: frozenset) -> str | None:
+    """The family name of an installed font that has every character of ``chars``; None if there is none."""
+    codes = {ord(c) for c in chars}
+    for entry in sorted(font_manager.fontManager.ttflist, key=lambda e: e.name):
+        # "Last Resort" fonts map every character to a placeholder box: having the code is not having the glyph
+        if not entry.name.startswith("Last Resort") and codes <= _charmap(entry.fname):
+            return entry.name
+    return None
+
+
+def _missing(text: Text) -> set:
+    try:
+        have = _charmap(font_manager.findfont(text.get_fontproperties(), fallback_to_default=True))
+    except (ValueError, RuntimeError):
+        return set()
+    return {c for c in text.get_text() if not _skipped(c) and ord(c) not in have}
+
+
+def undrawable(names) -> list:
+    """The characters of ``names`` that no installed font has (sorted); empty when every name can be drawn."""
+    default = _charmap(font_manager.findfont(font_manager.FontProperties()))
+    chars = {c for n in names for c in str(n) if not _skipped(c) and ord(c) not in default}
+    return sorted(c for c in chars if _font_with(frozenset([c])) is None)
+
+
+def caption_note(chars) -> str:
+    """The sentence that says which characters could not be drawn (as code points: they cannot be drawn)."""
+    shown = ", ".join(f"U+{ord(c):04X}" for c in list(chars)[:6]) + (", ..." if len(chars) > 6 else "")
+    return (f"Some names use characters no installed font has ({shown}); they are drawn as boxes. The CSV and "
+            "JSON files keep the names; install a font that has them (e.g. Noto Sans CJK) to see them here.")
+
+
+class GlyphSafeFigure(Figure):
+    """A :class:`matplotlib.figure.Figure` whose texts use an installed font that has their characters, if any;
+    otherwise it says so in a caption under the figure instead of printing glyph warnings (see the module notes)."""
+
+    def _fit_fonts(self) -> list:
+        """Give each text with missing characters a fallback font; the characters no font has."""
+        lost: set = set()
+        for text in self.findobj(Text):
+            missing = _missing(text)
+            if not missing:
+                continue
+            family = _font_with(frozenset(missing))
+            if family is None:
+                lost |= missing
+            else:
+                text.set_fontfamily([*text.get_fontfamily(), family])
+        return sorted(lost)
+
+    def savefig(self, fname, *args, **kwargs):
+        """:meth:`matplotlib.figure.Figure.savefig`, with the fonts fitted to the names first (see the class)."""
+        lost = self._fit_fonts()
+        if lost and getattr(self, "_stimsteer_note", None) is None:
+            self._stimsteer_note = self.text(0.01, 0.0, caption_note(lost), fontsize=7, color="#555555",
+                                             ha="left", va="top", wrap=True)
+        if lost:
+            kwargs.setdefault("bbox_inches", "tight")  # the caption sits under the figure: grow to hold it
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=_GLYPH_WARNING, category=UserWarning)
+            return super().savefig(fname, *args, **kwargs)
