@@ -44,7 +44,7 @@ _SUBCOMMANDS = {
     "fit": (_fit.add_parser, _fit.run),
     "predict": (_predict.add_parser, _predict.run),
     # plan and network do not claim their --out themselves yet: claimed here, before they load or compute anything
-    "network": (_network.add_parser, claiming(_network.run, "network")),
+    "network": (_network.add_parser, _network.run),
     "schedule": (_schedule.add_parser, _schedule.run),
     "plan": (_plan.add_parser, claiming(_plan.run, "plan")),
     "bench": (_bench.add_parser, _bench.run),

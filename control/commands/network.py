@@ -43,7 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from ...sysid import InvalidParameterError, StateSpaceForm, load_predictor
-from ...sysid._claims import claim_output
+from ._common import claimed
 from ...sysid.caution import CAUTION
 from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
 from ._network_write import NetworkOutputs, write_network_outputs
@@ -149,7 +149,7 @@ def _check_sources(args):
 def run(args) -> int:
     """Load the model or map, write the tables and figures, print the summary; 0 on success."""
     _check_sources(args)
-    with claim_output(args.out, force=args.force):
+    with claimed(args.out, force=args.force, command="network"):
         units = {}
         if args.map is not None:
             net, model = _map_source(args)

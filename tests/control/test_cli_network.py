@@ -166,7 +166,7 @@ def test_network_keeps_an_existing_folder_unless_forced(model_file, tmp_path, ca
     out.mkdir()
     (out / "keep.txt").write_text("x")
     assert main(["network", str(model_file), "--out", str(out)]) == 2
-    assert "already exists" in capsys.readouterr().err and (out / "keep.txt").exists()  # claimed before computing
+    assert "already holds files" in capsys.readouterr().err and (out / "keep.txt").exists()  # claimed before computing
     assert main(["network", str(model_file), "--out", str(out), "--force"]) == 0
     assert not (out / "keep.txt").exists()
 
