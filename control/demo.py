@@ -38,6 +38,14 @@ _PLAN_TARGET = "rec_01=15,rec_04=-10"
 _NETWORK_TARGET = "15,0,0,-10,0,0,0,0"  # one value per recorded contact, µV
 
 
+
+class DemoStepFailed(StimsteerError):
+    """A step of the demo failed; it has already said why in its own one line on stderr."""
+
+    def __init__(self, step: str, code: int):
+        super().__init__(f"the demo step `stimsteer {step}` failed (exit code {code}).")
+        self.step, self.code = step, int(code)
+
 def _write_pattern(path: Path, sample_rate_hz: float, input_names, input_units) -> None:
     """A 1-second test pattern: a 40 µA pulse every 100 ms on the first site, a 2-sample 25 µA burst on the
     second half-way through, nothing on the others (the pattern layout of ``stimsteer predict``)."""
@@ -158,7 +166,7 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
             if code in (130, 143):  # the step was interrupted (Ctrl-C, SIGTERM): so is the demo
                 raise Interrupted(code - 128)
             if code != 0:
-                raise StimsteerError(f"the demo step `stimsteer {argv[0]}` failed (exit code {code}); see above.")
+                raise DemoStepFailed(argv[0], code)
         _record_final_paths(tmp, out)
     report = out / "report" / "report.html"
     echo(f"\ndemo finished in {time.perf_counter() - started:.0f} s; outputs in {out}")

@@ -8,6 +8,7 @@ process: the command line may claim around a command that claims for itself, and
 
 from __future__ import annotations
 
+import argparse
 import contextlib
 import functools
 import os
@@ -97,3 +98,22 @@ def interruptible():
         yield
     finally:
         signal.signal(signal.SIGTERM, previous)
+
+
+def whole_number(minimum: int):
+    """An argparse type: a whole number >= ``minimum``; argparse names the option in its one-line refusal.
+
+    Checking here, not in the API, makes the message name the flag (``--past-steps``) rather than the setting it
+    feeds (``past_steps``).
+    """
+    def parse(text):
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number >= {minimum}; got {text!r}") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"expected a whole number >= {minimum}; got {value}")
+        return value
+
+    parse.__name__ = f"whole number >= {minimum}"
+    return parse

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..demo import run_demo
+from ..demo import DemoStepFailed, run_demo
 from ._common import claimed
 
 __all__ = ["add_parser", "run"]
@@ -19,5 +19,8 @@ def add_parser(subparsers) -> None:
 def run(args, *, run_step) -> int:
     """Run the demo into ``args.out``; ``run_step(argv) -> int`` runs each step (the command line's ``main``)."""
     with claimed(args.out, force=args.force, command="demo"):
-        run_demo(args.out, run_step=run_step, force=args.force, echo=print)
+        try:
+            run_demo(args.out, run_step=run_step, force=args.force, echo=print)
+        except DemoStepFailed as failed:  # the step printed its own one line; a second would only repeat it
+            return failed.code
     return 0

@@ -6,8 +6,8 @@ import argparse
 import sys
 import warnings
 
-from ...sysid import METHODS, InvalidParameterError, fit_route, open_session_source, save_predictor
-from ._common import claimed
+from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, open_session_source, save_predictor
+from ._common import claimed, whole_number
 
 __all__ = ["add_parser", "run"]
 
@@ -33,14 +33,14 @@ def add_parser(subparsers) -> None:
     p.add_argument("--method", required=True, choices=sorted({m for _, m in METHODS}),
                    help="; ".join(f"{r}: {', '.join(ms)}" for r, ms in sorted(by_route.items())))
     p.add_argument("--out", required=True, help="model file to write (HDF5)")
-    p.add_argument("--horizon-steps", dest="horizon", type=int, metavar="N",
+    p.add_argument("--horizon-steps", dest="horizon", type=whole_number(1), metavar="N",
                    help="prediction horizon in samples (scored; direct methods fit it)")
-    p.add_argument("--past-steps", dest="past", type=int, metavar="N",
+    p.add_argument("--past-steps", dest="past", type=whole_number(1), metavar="N",
                    help="past window in samples (arx: output and input lags; default: chosen by cross-validation)")
-    p.add_argument("--delay-steps", dest="delay", type=int, metavar="N",
+    p.add_argument("--delay-steps", dest="delay", type=whole_number(0), metavar="N",
                    help="arx: input delay in samples, 0 = direct feed-through (default: chosen from 0 to 3 by "
                    "cross-validation)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the held-out trial split (default 0)")
+    p.add_argument("--seed", type=whole_number(0), default=0, help="seed of the held-out trial split (default 0)")
     p.add_argument("--test-fraction", type=_fraction, default=0.25, help="share of trials held out (default 0.25)")
     p.add_argument("--centre-outputs", action="store_true",
                    help="subspace, lsq, hankel: fit on the outputs minus their training mean (for a baseline "
@@ -105,8 +105,16 @@ def _fit(args, settings):
     """``fit_route`` on the session file; its warnings become one stderr line each."""
     with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
         warnings.simplefilter("always")
-        result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
-                           test_fraction=args.test_fraction, horizon_steps=args.horizon)
+        try:
+            result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
+                               test_fraction=args.test_fraction, horizon_steps=args.horizon)
+        except (InvalidParameterError, SessionError) as exc:
+            # the estimator names its own settings; say which option set them
+            given = [f"--{name} {value}" for name, value in (("past-steps", args.past), ("horizon-steps",
+                     args.horizon)) if value is not None]
+            if not given:
+                raise
+            raise type(exc)(f"{exc} (the window came from {' and '.join(given)})") from None
     for w in caught:
         sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
     return result

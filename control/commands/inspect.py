@@ -12,6 +12,7 @@ from ...sysid._claims import claim_output
 from ...sysid._files import atomic_path
 from ...sysid.artifacts import ARTIFACT_RATIO_THRESHOLD, detect_artifacts
 from ...sysid.exceptions import InvalidParameterError
+from ._common import whole_number
 
 __all__ = ["add_parser", "run", "alignment_text"]
 
@@ -21,11 +22,11 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser("inspect", help="summarise a session: channels, rate, trials, gaps, flat or saturated "
                               "channels, stimulation artifacts, clock alignment")
     p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
-    p.add_argument("--past-steps", dest="past", type=int, default=10, metavar="N",
+    p.add_argument("--past-steps", dest="past", type=whole_number(1), default=10, metavar="N",
                    help="past window of the direct route, in samples, for the excitation check (default 10)")
-    p.add_argument("--horizon-steps", dest="horizon", type=int, default=20, metavar="N",
+    p.add_argument("--horizon-steps", dest="horizon", type=whole_number(1), default=20, metavar="N",
                    help="prediction horizon of the direct route, in samples, for the excitation check (default 20)")
-    p.add_argument("--states", type=int, default=None, metavar="N",
+    p.add_argument("--states", type=whole_number(0), default=None, metavar="N",
                    help="state dimension assumed by the excitation check (default: the past window)")
     p.add_argument("--artifact-window-s", type=float, default=None, metavar="S",
                    help="window after each stimulation onset for the artifact check, seconds (default one sample "

@@ -43,7 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from ...sysid import InvalidParameterError, StateSpaceForm, load_predictor
-from ._common import claimed
+from ._common import claimed, whole_number
 from ...sysid.caution import CAUTION
 from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
 from ._network_write import NetworkOutputs, write_network_outputs
@@ -64,7 +64,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (default: rest)")
     p.add_argument("--free", metavar="CHANNELS", help="comma-separated channels left free at the end of the "
                    "transition (their target values are ignored)")
-    p.add_argument("--horizon-steps", type=int, help="samples of the minimum-energy transition (default 2 x states)")
+    p.add_argument("--horizon-steps", type=whole_number(1), help="samples of the minimum-energy transition (default 2 x states)")
     p.add_argument("--gramian-steps", type=int, help="finite Gramian horizon in samples (default: infinite, which "
                    "needs a stable model)")
     p.add_argument("--max-set-size", type=int, choices=[1, 2, 3], default=2,
@@ -95,7 +95,7 @@ def add_parser(subparsers) -> None:
     s.add_argument("--conditions", metavar="LABELS", help="comma-separated condition label of every trial (default: "
                    "the session's metadata 'trial_conditions')")
     s.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples over trials (default 200)")
-    s.add_argument("--seed", type=int, default=0, help="seed of the held-out split and the bootstrap")
+    s.add_argument("--seed", type=whole_number(0), default=0, help="seed of the held-out split and the bootstrap")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
 

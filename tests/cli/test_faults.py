@@ -4,8 +4,7 @@ energy budget over rolling windows of what a closed loop actually applies.
 Commands run as a user runs them (a child process each). The disk tests mount a tiny tmpfs (root only; skipped with
 the reason otherwise); the in-process variant monkeypatches the final rename so it runs anywhere.
 
-Cases that fail on today's code carry ``xfail(strict=True)`` with the measured defect: a fix shows up as an XPASS,
-and the marker must then come off.
+Every case failed when it was written (issue 12 measured each defect); all pass now, and none is marked.
 """
 
 from __future__ import annotations
@@ -108,24 +107,9 @@ _WRITERS = {
                 "pred"),
 }
 
-# Measured on today's code (the report of issue 12): every full or read-only disk is an "internal error", exit 1.
-_FULL = ("exit 1, 'internal error (OSError: [Errno 28] No space left on device); please report it' -- the path is "
-         "not named")
-_RO = "exit 1, 'internal error (OSError: [Errno 30] Read-only file system: <folder>/.{name}.<random>)'"
-_DISK_XFAIL = {
-    ("full", "fit"): "exit 1, 'internal error (OSError: [Errno 28] Unable to synchronously create file (file write "
-                     "failed: time = ..., filename = '<folder>/.m.h5.<random>.h5', file descriptor = 3, errno = 28, "
-                     "error message = 'No space left on device', buf = 0x..., total write size = 96, ...)'",
-    **{("full", c): _FULL for c in ("plan", "schedule", "network", "predict")},
-    **{("ro", c): _RO.format(name=n) for c, n in (("fit", "m.h5"), ("plan", "plan"), ("schedule", "s.csv"),
-                                                   ("predict", "pred"))},
-}
-
-
+# When these tests were written (issue 12), every full or read-only disk gave "internal error", exit 1.
 def _disk_params(kind):
-    return [pytest.param(cmd, id=cmd, marks=[pytest.mark.xfail(reason=f"issue 12: {_DISK_XFAIL[kind, cmd]}",
-                                                               strict=True)] if (kind, cmd) in _DISK_XFAIL else [])
-            for cmd in _WRITERS]
+    return [pytest.param(cmd, id=cmd) for cmd in _WRITERS]
 
 
 def _assert_refused_by_the_disk(run, disk, out, reason):
@@ -146,10 +130,6 @@ def test_a_full_disk_is_one_line_naming_the_path_and_leaves_nothing(shipped, ful
 
 
 @pytest.mark.parametrize("size", ["400k", "2m"])
-@pytest.mark.xfail(reason="issue 12: `demo` on a small disk prints two lines, exit 2: the inner step's 'stimsteer fit "
-                   "(400k; predict at 2m): error: internal error (OSError: [Errno 28] ...); please report it' then "
-                   "'stimsteer demo: error: the demo step ... failed (exit code 1); see above.' (the issue also saw a "
-                   "segfault, exit 139, on a nearly full disk: not reproduced here)", strict=True)
 def test_demo_on_a_small_disk_is_one_line_and_leaves_nothing(tmp_path, size):
     disk = tmp_path / "small"
     _mount_tmpfs(disk, size=size)
@@ -173,9 +153,7 @@ _RENAME_CASES = [(c, errno.ENOSPC) for c in _WRITERS] + [("plan", e) for e in (e
 
 
 @pytest.mark.parametrize("command, code", [
-    pytest.param(c, e, id=f"{c}-{errno.errorcode[e]}",
-                 marks=pytest.mark.xfail(reason=f"issue 12: {errno.errorcode[e]} from the final rename of `{c}`'s "
-                                         "output is 'internal error (OSError: ...)', exit 1", strict=True))
+    pytest.param(c, e, id=f"{c}-{errno.errorcode[e]}")
     for c, e in _RENAME_CASES])
 def test_an_os_error_at_the_final_rename_is_one_line_in_process(shipped, tmp_path, monkeypatch, capsys, command,
                                                                 code):
@@ -198,8 +176,6 @@ def test_an_os_error_at_the_final_rename_is_one_line_in_process(shipped, tmp_pat
 
 
 # ---------------------------------------------------------------------------------------------------- races
-@pytest.mark.xfail(reason="issue 12: three concurrent `plan --out SAME` all exit 0 (codes [0, 0, 0]) and each "
-                   "prints 'wrote ...'; one folder survives", strict=True)
 def test_three_concurrent_plans_on_one_folder_one_writes_the_others_are_refused(shipped, tmp_path):
     out = tmp_path / "plan"
     argv = ["plan", shipped["arx"], "--target", "rec_01=20", "--limits", shipped["limits"], "--horizon-steps", 10,
@@ -235,10 +211,6 @@ def _slow_session(shipped, tmp_path):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: a second `fit --out same.h5` computes in full and is refused only when it "
-                   "saves, after the first has ended (9.5 s; 'model file ... already exists; choose another path or "
-                   "pass --force / overwrite=True.'); started at the same instant, once in five both exit 0 and one "
-                   "model replaces the other", strict=True)
 def test_a_second_fit_on_the_same_model_file_is_refused_at_once(shipped, tmp_path):
     session, out = _slow_session(shipped, tmp_path), tmp_path / "same.h5"
     argv = ["fit", session, "--route", "direct", "--method", "lsq", "--past-steps", 20, "--horizon-steps", 60,
@@ -266,9 +238,6 @@ def _bench_argv(shipped, out, *extra):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: a second `bench --out SAME` computes everything and is refused only at the "
-                   "end, after the first has ended (16.1 s: 'output folder ... already holds files (another run?)')",
-                   strict=True)
 def test_a_second_bench_on_the_same_folder_is_refused_before_computing(shipped, tmp_path):
     out = tmp_path / "report"
     first = start_cli(*_bench_argv(shipped, out, "--workers", 2), cwd=tmp_path)
@@ -360,8 +329,6 @@ def _wait_for_no_survivors(pids, pgid, seconds=10.0):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: after kill -9 of `bench`, both pool workers are alive 10 s later "
-                   "(orphaned; they run on until killed)", strict=True)
 def test_kill_9_of_bench_leaves_no_worker_alive(shipped, tmp_path):
     out = tmp_path / "report"
     proc, workers = _start_bench_with_workers(shipped, out, tmp_path)
@@ -375,8 +342,6 @@ def test_kill_9_of_bench_leaves_no_worker_alive(shipped, tmp_path):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: after SIGTERM of `bench` (exit -15, no leftovers) both pool workers are "
-                   "alive 10 s later (orphaned: in one run still alive 8.5 min later)", strict=True)
 def test_sigterm_of_bench_stops_its_workers_and_removes_its_temporary_folder(shipped, tmp_path):
     out = tmp_path / "report"
     proc, workers = _start_bench_with_workers(shipped, out, tmp_path)
@@ -400,8 +365,6 @@ def _dead_pid() -> int:
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12: a stale temporary folder (and claim) of a killed `bench` is neither removed "
-                   "nor named by a later run on the same --out (which exits 0)", strict=True)
 def test_the_next_run_removes_or_names_what_a_killed_run_left(shipped, tmp_path):
     out = tmp_path / "report"
     stale = tmp_path / ".report.k1ll3d"
