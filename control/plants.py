@@ -42,7 +42,7 @@ import h5py
 import numpy as np
 
 from ..sysid import FileFormatError, Session, SessionError, StimsteerError
-from ..sysid._files import atomic_path
+from ..sysid._files import hdf5_bytes, write_bytes
 from ._plant_params import _input_array, _positive
 from .network_plant import LinearNetworkPlant
 from .random_networks import random_network
@@ -230,8 +230,8 @@ def save_plant(plant, path, *, overwrite: bool = False) -> Path:
     if path.exists() and not overwrite:
         raise StimsteerError(f"{path} already exists; pass overwrite=True to replace it or choose another path.")
     params = plant.get_params()
-    with atomic_path(path) as tmp:
-        with h5py.File(tmp, "w", track_order=True) as f:
+    with hdf5_bytes() as buf:  # built in memory, then written whole (see stimsteer.sysid._files.hdf5_bytes)
+        with h5py.File(buf, "w", track_order=True) as f:
             f.attrs["stimsteer_file"] = _FILE_TAG
             f.attrs["format_version"] = PLANT_FILE_VERSION
             f.attrs["plant_type"] = plant.plant_type
@@ -245,6 +245,7 @@ def save_plant(plant, path, *, overwrite: bool = False) -> Path:
                     f.create_dataset(name, data=value, track_times=False)
                 else:
                     f.attrs[name] = value
+        write_bytes(path, buf.getbuffer(), suffix=".h5")
     return path
 
 
