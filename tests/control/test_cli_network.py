@@ -141,7 +141,6 @@ def test_network_on_an_unstable_fitted_model_needs_a_finite_gramian_horizon_neve
     (["--start", "1,2,3,4"], "--start needs --target"),
     (["--target", "1,2"], "expected 4 finite values"),
     (["--target", "1,x,3,4"], "expected numbers separated by commas"),
-    (["--target", "1,2,3,4", "--horizon-steps", "0"], "horizon_steps must be a whole number"),
     (["--target", "1,nan,0,2"], "every value must be finite, but ch2 = nan"),  # issue 12: name the entry
     (["--target", "1,0,0,2", "--free", "ch9"], "unknown free channel 'ch9'"),
     (["--stimulated", "a"], "--stimulated applies to a network map (--map) only"),
@@ -151,6 +150,15 @@ def test_network_bad_arguments_exit_2_with_one_line(model_file, tmp_path, capsys
     assert main(["network", str(model_file), "--out", str(tmp_path / "n"), *extra]) == 2
     err = capsys.readouterr().err
     assert match in err and err.count("\n") == 1
+    assert not (tmp_path / "n").exists()
+
+
+def test_a_zero_horizon_is_refused_naming_the_flag(model_file, tmp_path, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["network", str(model_file), "--out", str(tmp_path / "n"), "--target", "1,2,3,4", "--horizon-steps", "0"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err
+    assert "argument --horizon-steps: expected a whole number >= 1; got 0" in err and err.count("\n") == 1
     assert not (tmp_path / "n").exists()
 
 
