@@ -160,8 +160,11 @@ def test_inspect_command_prints_the_excitation_report(rng, tmp_path, capsys):
     out = capsys.readouterr().out
     assert "order per trial: 7, 7" in out
     assert "the input excites order 7 but the direct route needs 31 for this horizon" in out
-    assert main(["inspect", str(path), "--past-steps", "0"]) == 2
-    assert "past_steps must be a whole number of samples >= 1; got 0" in capsys.readouterr().err
+    capsys.readouterr()
+    with pytest.raises(SystemExit) as exc:  # the command line refuses the window itself, naming the flag
+        main(["inspect", str(path), "--past-steps", "0"])
+    assert exc.value.code == 2
+    assert "argument --past-steps: expected a whole number >= 1; got 0" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
