@@ -78,7 +78,14 @@ class Interrupted(KeyboardInterrupt):
         self.code = 128 + int(signum)
 
 
+_OWNER = {"pid": None}
+
+
 def _raise_interrupted(signum, _frame):
+    # A worker forked while the handler was installed inherits it; a signal there (the parent stopping its pool)
+    # must end that process quietly, not print a traceback into the user's terminal.
+    if _OWNER["pid"] is not None and os.getpid() != _OWNER["pid"]:
+        os._exit(128 + int(signum))
     raise Interrupted(signum)
 
 
@@ -93,6 +100,7 @@ def interruptible():
     if threading.current_thread() is not threading.main_thread():
         yield
         return
+    _OWNER["pid"] = os.getpid()
     previous = signal.signal(signal.SIGTERM, _raise_interrupted)
     try:
         yield

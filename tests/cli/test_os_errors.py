@@ -177,3 +177,30 @@ def test_a_temporary_name_is_reported_as_the_output_the_user_asked_for(tmp_path)
     assert _claims.os_error_text(other, out, verb="use") == ("cannot use /data/session.h5: Permission denied "
                                                                "(EACCES); check the file's permissions.")
 
+
+
+def _limit_open_files(n: int):
+    def apply():
+        import resource
+
+        resource.setrlimit(resource.RLIMIT_NOFILE, (n, n))
+    return apply
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("limit", [14, 15])
+def test_bench_under_a_real_open_file_limit_refuses_at_once_and_never_hangs(limit, tmp_path):
+    """A real ``ulimit -n`` (not a patched call): with 14 descriptors a two-worker pool used to fail inside its
+    management thread and then wait forever (measured at limits 14 and 15: the error line, then no exit in 200 s); now the run is refused
+    before any worker starts, in one line that names the limit and the two ways out."""
+    out = tmp_path / "bench"
+    env = {k: v for k, v in os.environ.items() if k != "STIMSTEER_DEBUG"}
+    script = str(__import__("pathlib").Path(sys.executable).with_name("stimsteer"))  # the command a user runs
+    proc = subprocess.run([script, "bench", SESSION, "--out", str(out), "--quick", "--workers", "2"],
+                          cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120,
+                          preexec_fn=_limit_open_files(limit))
+    lines = proc.stderr.strip().splitlines()
+    assert proc.returncode == 2, proc.stderr
+    assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert "file descriptors" in lines[0] and f"limit is {limit}" in lines[0] and "--workers 1" in lines[0]
+    assert not out.exists() and not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
