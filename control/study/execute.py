@@ -135,6 +135,9 @@ def _run_local(st, todo, n: int, keep, bar) -> int:
     from concurrent.futures import ProcessPoolExecutor, as_completed
     from concurrent.futures.process import BrokenProcessPool
 
+    from ..evaluation.execute import check_descriptors
+
+    check_descriptors(n)  # a pool the open-file limit cannot hold is refused, never left waiting
     pending, retries = list(todo), 0
     while pending:
         done = set()
