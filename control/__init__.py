@@ -10,7 +10,17 @@ from .evaluation import BenchSettings, BenchResult, MethodSpec, ControlSettings,
 from .plants import InnovationPlant
 from .report import summarize
 from .commands.bench import write_bench, write_bench as write_report
-from .cli import main
+
+
+def __getattr__(name):
+    # ``main`` is loaded on first use, not at import: ``python -m stimsteer.control.cli`` would otherwise find the
+    # module already imported by its own package and warn that it may behave unpredictably.
+    if name == "main":
+        from .cli import main
+
+        return main
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 __all__ = [
     "BenchResult",

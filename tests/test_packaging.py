@@ -26,3 +26,15 @@ def test_every_source_package_is_listed_for_installation():
             found.add(".".join([top, *rel]))
     assert found - listed == set(), f"add to pyproject.toml [tool.setuptools] packages: {sorted(found - listed)}"
     assert listed - found == set(), f"listed but not in the tree: {sorted(listed - found)}"
+
+
+def test_the_command_runs_as_a_module_without_a_warning():
+    """``python -m stimsteer.control.cli`` is the documented fallback when the script is not on PATH; it used to
+    warn (RuntimeWarning: found in sys.modules ... unpredictable behaviour) because the package imported it first."""
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-W", "error", "-m", "stimsteer.control.cli", "--help"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0 and "usage: stimsteer" in proc.stdout, proc.stderr
+    assert "Warning" not in proc.stderr, proc.stderr
