@@ -4,6 +4,7 @@ The property tests decode model inputs into pulses and check every pulse and eve
 charge directly (numpy, continuous-time windows), independently of the compiled bounds they test.
 """
 
+import dataclasses
 import math
 
 import numpy as np
@@ -166,6 +167,7 @@ def _loop_case(seed):
     if seed % 7 == 0:  # a budget a single pulse just fits: the loop can barely stimulate
         table["charge_rate_max_uc_per_s"] = 1.01 * 0.018 / table["window_s"]
     c = compile_limits(PhysicalLimits.from_dict(table), m)
+    c = dataclasses.replace(c, stim_limits=dataclasses.replace(c.stim_limits, input_names=None))  # plant: "u0"
     plant = LinearNetworkPlant(A, g.normal(size=(n, 1)) * 0.05, g.normal(size=(p, n)),
                                measurement_noise_std=0.01, seed=int(g.integers(1 << 30)))
     target = g.choice([-1.0, 1.0], size=p) * g.uniform(5.0, 50.0, size=p)
