@@ -194,5 +194,5 @@ def test_closed_loops_never_deliver_a_window_over_the_charge_budget_on_either_ro
         pulses = decode_plan(loop.inputs, m)
         worst = np.max(window_charges_uc(pulses, table["window_s"]), initial=0.0)
         assert worst <= table["window_s"] * table["charge_rate_max_uc_per_s"] * (1 + 1e-9), seed
-        assert pulses["amplitude_ua"].max(initial=0) <= c.amplitude_max[0] * (1 + 1e-9)
+        assert np.max(pulses["amplitude_ua"].to_numpy(), initial=0.0) <= c.amplitude_max[0] * (1 + 1e-9)
         assert loop.violations["amplitude"] == 0 and loop.violations["energy_budget"] == 0
