@@ -103,3 +103,18 @@ def test_bad_pulse_tables_are_refused_naming_the_pulse(rows, match):
     m = InputMapping(_desc(), 250.0)
     with pytest.raises(SessionError, match=match):
         encode_pulse_table(rows, m, n_samples=100)
+
+
+def test_events_encode_by_the_description_and_the_session_record_carries_the_mapping():
+    from stimsteer.sysid import Session
+    from stimsteer.sysid._records import session_record
+    from stimsteer.sysid.events import encode_pulses
+
+    d = _desc(unit="mA")
+    rows = [{"time_s": 0.02, "site": "a", "amplitude": 0.1}, {"time_s": 0.06, "site": "o", "amplitude": 2.0}]
+    u, rec = encode_pulses(rows, ["o", "a"], sample_rate_hz=250.0, n_samples=50, stimulation=d)
+    assert u[5].tolist() == pytest.approx([0.0, 0.1]) and u[15].tolist() == pytest.approx([2.0, 0.0])
+    assert rec["model_units"] == ["mW/mm^2", "mA"] and rec["name"] == "amplitude"
+    s = Session(u=u, y=np.zeros((50, 1)), sample_rate_hz=250.0, input_names=["o", "a"], output_names=["y"],
+                input_units=rec["model_units"], metadata={"stimulation": rec})
+    assert session_record(s)["stimulation"]["description"]["sites"]["a"]["amplitude_unit"] == "mA"
