@@ -14,6 +14,7 @@ import pytest
 
 from stimsteer.sysid import Session
 from stimsteer.sysid.io.dispatch import save_session
+from stimsteer.sysid.stimulation import InputMapping, load_stimulation
 
 from .conftest import run_cli, tree_hash
 
@@ -52,9 +53,13 @@ def models(tmp_path_factory):
         y[k] = x + 0.01 * g.normal(size=2)
         x = A @ x + B @ u[k]
     out = {}
-    for unit, scale in (("mA", 1.0), ("uA", 1000.0)):
+    (d / "stim.toml").write_text(_STIM.format(unit="mA", area="0.06 cm^2", extra=""))
+    recorded = InputMapping(load_stimulation(d / "stim.toml"), 250.0).record()
+    for unit, scale in (("mA", 1.0), ("uA", 1000.0), ("rec", 1.0)):
         s = Session(u=u * scale, y=y, sample_rate_hz=250.0, input_names=["a"], output_names=["r1", "r2"],
-                    input_units=[unit], output_units=["uV", "uV"], trials=[[0, 500], [500, 1000], [1000, 1500]])
+                    input_units=["mA" if unit == "rec" else unit], output_units=["uV", "uV"],
+                    trials=[[0, 500], [500, 1000], [1000, 1500]],
+                    metadata={"stimulation": recorded} if unit == "rec" else None)
         save_session(s, d / f"s_{unit}.h5")
         r = run_cli("fit", d / f"s_{unit}.h5", "--route", "indirect", "--method", "arx", "--out",
                     d / f"m_{unit}.h5", "--past-steps", "4", "--horizon-steps", "20")
@@ -134,3 +139,15 @@ def test_the_nwb_pulse_table_reads_back_as_time_intervals(models, tmp_path):
         assert np.allclose(pulses["start_time"], csv["onset_s"]) and np.allclose(pulses["amplitude_ua"],
                                                                                  csv["amplitude_ua"])
         assert "checks" in json.loads(f.notes)
+
+
+def test_plan_takes_the_description_recorded_in_the_model(models, tmp_path):
+    _, lim = _files(tmp_path)
+    r = run_cli("plan", models["rec"], "--target", "r1=50", "--limits", lim, "--out", tmp_path / "out",
+                "--horizon-steps", "30")
+    assert r.code == 0, r
+    assert "checks all passed" in r.out and (tmp_path / "out" / "plan_pulses.csv").is_file()
+    # physical limits and a model without a recorded description: refused, naming the fix
+    r = run_cli("plan", models["mA"], "--target", "r1=50", "--limits", lim, "--out", tmp_path / "out2",
+                "--horizon-steps", "30")
+    assert r.code == 2 and "--stimulation FILE" in r.err and not (tmp_path / "out2").exists(), r
