@@ -31,10 +31,12 @@ contact (the declared material limit; planning is refused without one). The mode
 The charge-rate budget ``R`` over windows of ``window_s`` seconds is a charge ``Q_w = R · window_s`` per window.
 A window of ``window_s`` seconds meets at most ``W = ceil(window_s · rate) + 1`` sample periods, each delivering
 at most ``c_i · u_i`` µC per site (``c_i`` = pulses per sample · PW / gain). By Cauchy–Schwarz
-``Σ c_i u_ik <= c_max · sqrt(W · m) · ‖u‖₂``, so the energy budget ``Σ u² <= (Q_w / c_max)² / (W · m)`` over every
+``Σ_k Σ_i c_i u_ik <= sqrt(W · Σ_i c_i²) · ‖u‖₂``, so the energy budget ``Σ u² <= Q_w² / (W · Σ_i c_i²)`` over every
 window of ``W`` samples (the rolling budget every controller and closed loop already enforces from the applied
 inputs, :mod:`stimsteer.control.mpc._budget`) keeps the delivered charge of every window within ``Q_w``. It is exact
-for a constant train on one site and conservative otherwise.
+for a constant train on one site whose ``c_i`` is the only one, and conservative otherwise (the more so the more
+the sites' ``c_i`` differ, and when the frequency is below the sample rate, since ``c_i`` counts a pulse in every
+sample; optical inputs, if any, count in the window sum too).
 
 Refused (:class:`~stimsteer.sysid.exceptions.LimitsError`, one line): a site's frequency outside its declared range,
 a contact below macro size without an injection limit, a contact without an area, a unit a site cannot take
@@ -295,6 +297,5 @@ def _window_budget(physical, mapping, amp, hi):
                           f"at its amplitude bound ({pulse[i]:.4g} uC per phase); raise the budget or lower the "
                           "amplitude limit.")
     window = int(math.ceil(physical.window_s * rate - 1e-9)) + 1
-    m = int(np.count_nonzero(hi > 0))
-    budget = (q_w / float(np.max(c))) ** 2 / (window * m)
+    budget = q_w**2 / (window * float(np.sum(c[hi > 0] ** 2)))
     return budget, window, q_w
