@@ -157,21 +157,25 @@ def test_any_input_inside_the_compiled_limits_delivers_only_safe_pulses(seed):
 
 
 def _loop_case(seed):
+    """A random stable network driven through one site (positive gains, a far positive target, so the loop wants
+    to stimulate), a train at the sample rate or half of it, and a charge-rate budget well below the full train."""
     g = np.random.default_rng(seed)
     n, p = int(g.integers(2, 4)), int(g.integers(1, 3))
-    A = random_network(n, density=0.6, seed=g, scale=float(g.uniform(0.5, 0.9)), self_weight=0.3)
-    m = _mapping(rate=250.0, area=str(g.choice(["0.06 cm^2", "2e-5 cm^2"])), freq="125 Hz", unit="uA")
+    A = random_network(n, density=0.6, seed=g, scale=float(g.uniform(0.5, 0.9)), self_weight=0.3, signed=False)
+    freq = "250 Hz" if seed % 2 else "125 Hz"
+    m = _mapping(rate=250.0, area=str(g.choice(["0.06 cm^2", "2e-5 cm^2"])), freq=freq, unit="uA")
     site = {"amplitude_max_ua": float(g.uniform(50, 400)), "injection_limit_uc_per_cm2": 200.0}
-    table = {"window_s": float(g.uniform(0.05, 0.5)), "charge_rate_max_uc_per_s": float(g.uniform(0.5, 5.0)),
+    bound = compile_limits(PhysicalLimits.from_dict({"sites": {"a": site}}), m).amplitude_max[0]
+    full = bound * 90e-6 * m.sites[0].frequency_hz  # µC/s of the full train at the bound
+    table = {"window_s": float(g.uniform(0.05, 0.5)), "charge_rate_max_uc_per_s": float(g.uniform(0.2, 0.8)) * full,
              "sites": {"a": site}}
     if seed % 7 == 0:  # a budget a single pulse at the amplitude bound just fits: the loop can barely stimulate
-        one = compile_limits(PhysicalLimits.from_dict({"sites": table["sites"]}), m).amplitude_max[0] * 90e-6
-        table["charge_rate_max_uc_per_s"] = 1.01 * one / table["window_s"]
+        table["charge_rate_max_uc_per_s"] = 1.01 * bound * 90e-6 / table["window_s"]
     c = compile_limits(PhysicalLimits.from_dict(table), m)
     c = dataclasses.replace(c, stim_limits=dataclasses.replace(c.stim_limits, input_names=None))  # plant: "u0"
-    plant = LinearNetworkPlant(A, g.normal(size=(n, 1)) * 0.05, g.normal(size=(p, n)),
+    plant = LinearNetworkPlant(A, np.abs(g.normal(size=(n, 1))) * 0.05, np.abs(g.normal(size=(p, n))),
                                measurement_noise_std=0.01, seed=int(g.integers(1 << 30)))
-    target = g.choice([-1.0, 1.0], size=p) * g.uniform(5.0, 50.0, size=p)
+    target = g.uniform(20.0, 100.0, size=p)
     return g, m, c, table, plant, target
 
 
@@ -179,6 +183,7 @@ def _loop_case(seed):
 def test_closed_loops_never_deliver_a_window_over_the_charge_budget_on_either_route():
     # >= 100 closed loops of 200 steps, model and data routes: pulses decoded from the applied inputs, every
     # continuous-time window checked against the declared charge-rate budget
+    binding = 0
     for seed in range(100):
         g, m, c, table, plant, target = _loop_case(seed)
         if seed % 2 == 0:
@@ -197,3 +202,46 @@ def test_closed_loops_never_deliver_a_window_over_the_charge_budget_on_either_ro
         assert worst <= table["window_s"] * table["charge_rate_max_uc_per_s"] * (1 + 1e-9), seed
         assert np.max(pulses["amplitude_ua"].to_numpy(), initial=0.0) <= c.amplitude_max[0] * (1 + 1e-9)
         assert loop.violations["amplitude"] == 0 and loop.violations["energy_budget"] == 0
+        binding += worst >= 0.6 * table["window_s"] * table["charge_rate_max_uc_per_s"]
+    assert binding >= 25  # the budget binds (closest for trains at the sample rate: the bound is conservative)
+
+
+def test_an_applied_past_over_the_charge_budget_is_reported_infeasible_and_nothing_is_delivered(tmp_path):
+    from stimsteer.control._plan_physical import PhysicalPlan
+
+    m = _mapping(rate=250.0, freq="250 Hz")
+    c = compile_limits(PhysicalLimits.from_dict(
+        {"window_s": 0.2, "charge_rate_max_uc_per_s": 2.0, "sites": {"a": {"amplitude_max_ua": 200.0}}}), m)
+    lim = dataclasses.replace(c.stim_limits, input_names=None)
+    model = StateSpaceModel(A=[[0.9]], B=[[1.0]], C=[[1.0]], past_steps=1)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=10).fit()
+    past = np.full((60, 1), 200.0)  # a window of full-amplitude pulses: 51 x 0.018 µC >> 0.4 µC
+    plan = ctrl.plan(past, np.zeros((60, 1)), target=np.full((10, 1), 50.0))
+    assert plan.status == "infeasible" and not plan.ok  # reported, never relaxed
+    pp = PhysicalPlan(mapping=m, compiled=c, u_past=past)
+    rec = pp.write(tmp_path, plan, {"model_file": None, "model_sha256": None, "session_content_hash": None,
+                                    "versions": {}})
+    assert rec["status"].startswith("not delivered") and not pp.delivered
+    import pandas as pd
+
+    assert len(pd.read_csv(tmp_path / "plan_pulses.csv", comment="#")) == 0  # zero stimulation: no pulse
+    window = next(r for r in rec["planned_checks"] if r["rule"] == "charge_rate_window")
+    assert not window["passed"] and window["value"] > window["limit"]  # the applied past already broke it
+
+
+def test_optical_sites_are_bounded_by_irradiance_and_refuse_currents_and_hot_duty():
+    # irradiance = power / illuminated area (definition): the bound is on mW/mm², converted from W/cm² keys too
+    m = _mapping(optical=True)
+    lim = PhysicalLimits.from_dict({"sites": {"a": {"amplitude_max_ua": 100.0},
+                                              "o": {"irradiance_max_w_per_cm2": 0.5}}})
+    c = compile_limits(lim, m)
+    assert c.amplitude_max[1] == pytest.approx(5.0) and c.binding_rule[1] == "irradiance"
+    _, checks = safety_checks(np.column_stack([np.zeros(20), np.full(20, 5.0)]), m, c)
+    assert checks_pass(checks) and any(r["rule"] == "irradiance" for r in checks)
+    with pytest.raises(LimitsError, match=r"is optical: it cannot take a current"):
+        compile_limits(PhysicalLimits.from_dict({"sites": {"a": {"amplitude_max_ua": 100.0},
+                                                           "o": {"amplitude_max_ua": 5.0}}}), m)
+    with pytest.raises(LimitsError, match=r"duty cycle 0.1 exceeds"):  # 5 ms x 20 Hz = 10 % light-on
+        compile_limits(PhysicalLimits.from_dict({"sites": {"a": {"amplitude_max_ua": 100.0},
+                                                           "o": {"irradiance_max_mw_per_mm2": 5.0,
+                                                                 "duty_cycle_max_fraction": 0.05}}}), m)
