@@ -123,8 +123,12 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
              "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model")}
+    if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
+        extra["limits_input_units"] = list(physical.mapping.model_units())
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
-                       force=force, physical=physical)
+                       force=force, physical=physical,
+                       input_units=(physical.mapping.model_units() if physical is not None else
+                                    _input_units(predictor, provenance) or None))
     lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
              f"{type(ctrl).__name__} ({extra['method']}): status {plan.status}, {plan.solver}, "
              f"{1e3 * plan.solve_time_s:.1f} ms"]
@@ -197,11 +201,12 @@ def _channels(predictor, provenance):
 
 
 def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
-               force=False, physical=None) -> dict:
+               force=False, physical=None, input_units=None) -> dict:
     """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
 
-    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
-    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` the window each
+    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [<input unit>]`` (``input_units``, default uA),
+    ``out:<name> [<unit>]`` predicted, ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [<input
+    unit>]`` / ``upper:<name> [<input unit>]`` the window each
     step's input obeys), ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict
     --pattern``), ``plan.png`` and ``plan.json`` (status, cost terms, active and broken limits, caution, and
     ``extra``; JSON-safe values by :func:`stimsteer.sysid._records.jsonable`). Both tables open with the plan's
@@ -219,7 +224,9 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     rate = float(sample_rate_hz)
     t = np.arange(plan.horizon_steps) / rate
     time_col = f"time [s] @ {rate:.12g} Hz"
-    ins = {f"in:{n} [uA]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
+    # the inputs' own unit (the model's, e.g. mA or uC/s under a stimulation mapping), so `predict` reads it back
+    iu = [str(x) for x in (input_units or ("uA",) * len(plan.input_names))]
+    ins = {f"in:{n} [{iu[i]}]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
     table = {time_col: t, **ins}
     table.update({f"out:{n} [{u}]": plan.predicted_outputs[:, j] for j, (n, u) in enumerate(zip(plan.output_names,
                                                                                                    units))})
@@ -227,8 +234,8 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
         table.update({f"target:{n} [{units[j]}]": plan.target[:, j] for j, n in enumerate(plan.output_names)
                       if tracked[j]})
     lb, ub = plan.step_bounds
-    table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
-    table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"lower:{n} [{iu[i]}]": lb[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"upper:{n} [{iu[i]}]": ub[:, i] for i, n in enumerate(plan.input_names)})
     summary = jsonable({**plan.to_dict(), **(extra or {})})
     head = _status_lines(plan)
     with atomic_dir(out_dir, force=force) as tmp:

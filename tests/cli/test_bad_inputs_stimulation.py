@@ -123,6 +123,11 @@ def test_plan_writes_the_pulse_files_with_checks_and_the_same_pulses_from_ma_and
         assert rec["all_checks_passed"] and rec["session_content_hash"] and rec["versions"]["stimsteer"]
         tables[unit] = pd.read_csv(out / "plan_pulses.csv", comment="#")
         assert tables[unit]["charge_per_phase_uc"].max() <= 0.015 * (1 + 1e-9)
+    # the pattern is headed in the model's unit (it was always [uA]), so `predict` takes it back (issue 16)
+    assert "in:a [mA]" in (tmp_path / "mA" / "out" / "plan_pattern.csv").read_text()
+    r = run_cli("predict", models["mA"], "--pattern", tmp_path / "mA" / "out" / "plan_pattern.csv", "--out",
+                tmp_path / "pred")
+    assert r.code == 0, r
     a, b = tables["mA"], tables["uA"]
     assert len(a) == len(b) > 0
     assert np.allclose(a["amplitude_ua"], b["amplitude_ua"], rtol=1e-4, atol=1e-3)
