@@ -55,6 +55,10 @@ def limits_fields(d) -> dict:
     """
     if not isinstance(d, dict):
         raise LimitsError(f"limits must be a table (dict); got {type(d).__name__}.")
+    if "physical" in d:
+        raise LimitsError("these limits are in physical terms ([physical]); they need the stimulation description "
+                          "of the inputs: use them with `stimsteer plan --stimulation FILE` (see "
+                          "stimsteer.control.physical_limits).")
     _unknown("the top level", d, _TOP_KEYS)
     charge = _table(d, "charge_density")
     _unknown("[charge_density]", charge, _CHARGE_KEYS)

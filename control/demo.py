@@ -82,6 +82,11 @@ def demo_steps(session: str, plant: str, limits: str, out: str) -> list[tuple[st
         steps.append((f"plan stimulation under the declared limits ({route} route)",
                       ["plan", model, "--target", _PLAN_TARGET, "--limits", limits,
                        "--horizon-steps", str(_HORIZON_STEPS), "--out", str(o / f"plan_{route}")]))
+    steps.append(("plan pulse trains a stimulator can take: limits in physical terms (indirect route)",
+                  ["plan", models["indirect"], "--target", _PLAN_TARGET, "--limits",
+                   str(demo_file("demo_physical_limits.toml")), "--stimulation",
+                   str(demo_file("demo_stimulation.toml")), "--horizon-steps", str(_HORIZON_STEPS),
+                   "--out", str(o / "plan_pulses")]))
     steps.append(("a schedule for the next session",
                   ["schedule", "--limits", limits, "--inputs", "3", *window, "--states", "12", "--rate-hz", "250",
                    "--trials", "24", "--trial-s", "3", "--rest-s", "0.5", "--out", str(o / "next_schedule.csv")]))

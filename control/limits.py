@@ -48,6 +48,15 @@ Decisions (documented, enforced by validation)
     * Pulse width and electrode area come together (the rule needs both) and are positive and finite.
     * Output bounds: ``min < max`` where both are given; ``±inf`` means no bound.
 
+Limits in physical terms
+    A limits file may instead hold a ``[physical]`` section (amplitude in mA or µA, charge per phase, the Shannon
+    rule for macro contacts only and a declared material charge-injection limit for smaller ones, frequency range,
+    duty cycle, train length, an average charge rate over a rolling window in seconds, optical irradiance and
+    duty), each rule with its source: :mod:`stimsteer.control.physical_limits` compiles it, with the stimulation
+    description of the sites, into the :class:`StimLimits` of the model inputs (``stimsteer plan --stimulation``).
+    The per-sample layout above remains for models whose inputs have no stimulation description; its charge-density
+    rule assumes each sample is one biphasic pulse of the declared width (a train at the sample rate).
+
 References
 ----------
 Shannon R.V. (1992), A model of safe levels for electrical stimulation, IEEE Trans. Biomed. Eng. 39(4):424–426.

@@ -4,7 +4,8 @@ With charge per phase ``Q = I · PW`` (µC) and charge density ``D = Q / A`` (µ
 ``log10(D) + log10(Q) <= k`` gives ``Q <= sqrt(k_lin · A)`` with ``k_lin = 10**k``, hence
 ``|I| <= sqrt(10**k · A) / PW``. Shannon reports tissue damage at ``k >= 1.85``; :class:`StimLimits
 <stimsteer.control.limits.StimLimits>` refuses a declared ``k`` at or above it. The default ``k = 1.75`` is a margin
-below that threshold (common practice, no source).
+below that threshold (common practice, no source). Shannon's data come from macroelectrodes; for smaller contacts
+:mod:`stimsteer.control.physical_limits` requires a declared material charge-injection limit instead.
 
 References
 ----------

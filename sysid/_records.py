@@ -62,6 +62,8 @@ def session_record(source) -> dict:
         "input_names": list(source.input_names), "input_units": list(source.input_units),
         "output_names": list(source.output_names), "output_units": list(source.output_units),
         "simulated_flag": bool(meta.get("simulated", False)),
+        # the declared stimulation mapping (stimsteer.sysid.stimulation), so a model says what its inputs mean
+        **({"stimulation": meta["stimulation"]} if isinstance(meta.get("stimulation"), dict) else {}),
     }
 
 

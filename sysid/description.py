@@ -77,7 +77,7 @@ __all__ = ["Description", "load_description", "parse_description"]
 _KEYS = {
     "recording": {"neo_io", "segment", "bids"},
     "channels": {"inputs", "outputs", "output_types", "output_unit", "input_unit"},
-    "pulses": {"file", "from_recording", "sites", "unit", "clock_offset_s"},
+    "pulses": {"file", "from_recording", "sites", "unit", "clock_offset_s", "stimulation"},
     "grid": {"sample_rate_hz", "output_anti_aliasing", "input_anti_aliasing", "clock_offset_s"},
     "trials": {"events", "trigger", "threshold", "min_interval_s", "pulse_trains_gap_s", "before_s", "after_s",
                "overlap"},

@@ -11,11 +11,15 @@ come from annotations or event tables (:func:`select_events`, matching labels), 
 
 Pulse tables
 ------------
-This module carries a simple declared mapping of pulse events to model inputs, :data:`PULSE_MAPPING`, until the
-stimulation description (pulse trains, widths, frequencies and their own mappings) extends it: each pulse puts
-its amplitude, in the table's unit, on the model sample that holds its onset; several pulses of one site in one
-sample keep the largest magnitude; samples without a pulse are 0. The mapping is recorded in the session metadata
-(``metadata["pulse_mapping"]``) so a fitted model can say what its inputs mean.
+With a stimulation description (``encode_pulses(..., stimulation=...)``) pulses go onto the grid by its declared
+mapping (:mod:`stimsteer.sysid.stimulation`: non-negative amplitudes or charge rates of pulse trains at fixed width
+and frequency, polarity a category, every pulse checked for overlap and charge balance, units through pint), and
+the mapping with the description is recorded in ``metadata["pulse_mapping"]`` (and ``metadata["stimulation"]`` by
+the caller). Without one, the older onset mapping :data:`PULSE_MAPPING` is kept for tables that carry no widths or
+frequencies: each pulse puts its amplitude, in the table's unit, on the model sample that holds its onset; several
+pulses of one site in one sample keep the largest magnitude; samples without a pulse are 0. It cannot say what a
+sample means physically (no width, no frequency, a sign for polarity): plans made on such inputs cannot be checked
+in physical terms, so declare a description for new recordings.
 
 Two clocks
 ----------
@@ -48,7 +52,8 @@ PULSE_MAPPING = {
     "rule": "each pulse puts its amplitude on the model sample holding its onset (t0 + k / rate <= t < t0 + "
             "(k + 1) / rate); several pulses of one site in one sample keep the largest magnitude; other samples "
             "are 0",
-    "source": "stimsteer.sysid.events (interim mapping until the stimulation description extends it)",
+    "source": "stimsteer.sysid.events (onset mapping of tables without a stimulation description; see "
+              "stimsteer.sysid.stimulation for the declared mappings in physical terms)",
 }
 
 #: The anti-aliasing choices of :func:`align_channel`, each with the sentence recorded in provenance.
@@ -249,8 +254,8 @@ def pulse_train_onsets(times_s, *, gap_s: float) -> np.ndarray:
 
 
 def encode_pulses(pulses, sites, *, sample_rate_hz: float, n_samples: int, start_time_s: float = 0.0,
-                  offset_s: float = 0.0) -> tuple[np.ndarray, dict]:
-    """Pulse events onto the model grid by :data:`PULSE_MAPPING` (one column per site).
+                  offset_s: float = 0.0, stimulation=None) -> tuple[np.ndarray, dict]:
+    """Pulse events onto the model grid by :data:`PULSE_MAPPING`, or by a description's mapping (one column per site).
 
     Parameters
     ----------
@@ -262,6 +267,9 @@ def encode_pulses(pulses, sites, *, sample_rate_hz: float, n_samples: int, start
         The model grid.
     offset_s : float, default 0.0
         Stimulation clock to model clock: ``t_model = time_s + offset_s``.
+    stimulation : StimulationDescription, optional
+        Encode by its declared mapping (:func:`stimsteer.sysid.stimulation.encode_pulse_table`); its sites must be
+        ``sites``, in order.
 
     Returns
     -------
@@ -275,6 +283,8 @@ def encode_pulses(pulses, sites, *, sample_rate_hz: float, n_samples: int, start
         A pulse of an undeclared site, a non-finite time or amplitude, or no pulse on the grid at all.
     """
     sites = list(sites)
+    if stimulation is not None:
+        return _encode_described(pulses, sites, stimulation, sample_rate_hz, n_samples, start_time_s, offset_s)
     u = np.zeros((int(n_samples), len(sites)))
     unknown = sorted({str(p["site"]) for p in pulses} - set(sites))
     if unknown:
@@ -297,6 +307,20 @@ def encode_pulses(pulses, sites, *, sample_rate_hz: float, n_samples: int, start
     record = {**PULSE_MAPPING, "n_pulses": int(on.sum()), "n_pulses_off_grid": int((~on).sum()),
               "offset_s": float(offset_s)}
     return u, record
+
+
+def _encode_described(pulses, sites, stimulation, rate, n_samples, start_time_s, offset_s):
+    from .stimulation import InputMapping, StimulationDescription, encode_pulse_table
+
+    if list(stimulation.names) != sites:
+        missing = [s for s in sites if s not in stimulation.names]
+        if missing or len(sites) != len(stimulation.names):
+            raise SessionError(f"the stimulation description declares sites {list(stimulation.names)}, the inputs "
+                               f"are {sites}; describe each input site once.")
+        stimulation = StimulationDescription(sites=tuple(stimulation.site(s) for s in sites),
+                                             mapping=stimulation.mapping)
+    return encode_pulse_table(pulses, InputMapping(stimulation, rate), n_samples=n_samples,
+                              start_time_s=start_time_s, offset_s=offset_s)
 
 
 # ==================================================================================================== clocks

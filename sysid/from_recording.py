@@ -149,12 +149,25 @@ def _pulses(rec: Recording, desc: Description, grid) -> tuple[list, list, list, 
     if not p:
         return [], [], [], None
     rows = _pulse_rows(rec, desc)
-    sites = [str(s) for s in p.get("sites", sorted({str(r["site"]) for r in rows}))]
+    described = _stimulation(desc)  # [pulses] stimulation = "<description.toml>": the declared mapping
+    sites = [str(s) for s in p.get("sites", described.names if described else sorted({str(r["site"]) for r in rows}))]
     rate, t0, n = grid
     u, record = encode_pulses(rows, sites, sample_rate_hz=rate, n_samples=n, start_time_s=t0,
-                              offset_s=float(p.get("clock_offset_s", 0.0)))
+                              offset_s=float(p.get("clock_offset_s", 0.0)), stimulation=described)
+    if described is not None:
+        return [u[:, j] for j in range(len(sites))], sites, list(record["model_units"]), record
     unit = str(p.get("unit", rows[0].get("unit", "a.u.") if rows else "a.u."))
     return [u[:, j] for j in range(len(sites))], sites, [unit] * len(sites), {**record, "unit": unit}
+
+
+def _stimulation(desc: Description):
+    """The stimulation description named by ``[pulses] stimulation`` (relative to the description file), or None."""
+    name = desc.pulses.get("stimulation")
+    if name is None:
+        return None
+    from .stimulation import load_stimulation
+
+    return load_stimulation(desc.folder / str(name))
 
 
 def _pulse_rows(rec: Recording, desc: Description) -> list[dict]:
@@ -194,6 +207,8 @@ def _base_session(rec: Recording, desc: Description, source: str) -> tuple[Sessi
             "clock_alignment": u_align + y_align, "start_time_s": t0, "n_bad_intervals": len(rec.bad_intervals)}
     if mapping is not None:
         meta["pulse_mapping"] = mapping
+        if "description" in mapping:
+            meta["stimulation"] = mapping
     session = Session(u=u_arr, y=y_arr, sample_rate_hz=rate, mask=mask,
                       input_names=list(desc.channels["inputs"]) + sites, output_names=list(desc.channels["outputs"]),
                       input_units=u_units + p_units, output_units=y_units, metadata=meta)

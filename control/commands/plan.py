@@ -28,6 +28,7 @@ from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
 from ..figures.plan import plan_figure
+from .._plan_physical import plan_limits
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
@@ -60,7 +61,7 @@ class PlanRun:
 
 
 def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
-                   output_weight=1.0, input_weight=1e-3, force=False) -> PlanRun:
+                   output_weight=1.0, input_weight=1e-3, force=False, stimulation=None) -> PlanRun:
     """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
 
     Parameters
@@ -81,14 +82,23 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         Scalar weights; outputs not named in the target get weight 0.
     force : bool
         Replace an existing output folder.
+    stimulation : str or Path, optional
+        The stimulation description of the model's inputs (:mod:`stimsteer.sysid.stimulation`); needed when the
+        limits are physical (``[physical]``) and the model records none. Then the pulse files are written too
+        (:mod:`stimsteer.control.pulse_plan`) and ``input_weight`` is per physical unit² (µA², or (mW/mm²)²).
 
     Returns
     -------
     PlanRun
     """
     predictor, provenance = load_predictor(model_path)
-    limits = load_limits(limits_path)
     names_in, names_out, units, rate = _channels(predictor, provenance)
+    limits, physical = plan_limits(limits_path, stimulation, provenance, rate=rate, names_in=names_in,
+                                   names_out=names_out, model_units=_input_units(predictor, provenance))
+    if physical is None:
+        limits = load_limits(limits_path)
+    else:
+        input_weight = physical.input_weight(input_weight)
     N = horizon_steps
     if N is None and _is_constant_target(target):  # a table gives its own length
         N = getattr(predictor, "max_horizon_steps_", None)
@@ -106,17 +116,33 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
             u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
         start = f"the end of trial {index} of {path}"
+    if physical is not None:
+        physical.u_past = np.asarray(u_past, np.float64)
     plan = ctrl.plan(u_past, y_past, target=tgt)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
              "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model")}
+    if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
+        extra["limits_input_units"] = list(physical.mapping.model_units())
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
-                       force=force)
+                       force=force, physical=physical,
+                       input_units=(physical.mapping.model_units() if physical is not None else
+                                    _input_units(predictor, provenance) or None))
     lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
              f"{type(ctrl).__name__} ({extra['method']}): status {plan.status}, {plan.solver}, "
              f"{1e3 * plan.solve_time_s:.1f} ms"]
-    return PlanRun(plan=plan, files=files, lines=tuple(lines + _notes(plan, provenance)))
+    if physical is not None:
+        lines.append(f"pulses: {physical.record['status']}; checks "
+                     f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
+    notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
+    return PlanRun(plan=plan, files=files, lines=tuple(lines + notes))
+
+
+def _input_units(predictor, provenance):
+    """The model's input units as recorded (empty when unknown)."""
+    s = provenance.get("session", {}) if isinstance(provenance, dict) else {}
+    return tuple(s.get("input_units") or getattr(predictor, "input_units_", None) or ())
 
 
 def _applied_before(session, index, u_past, window):
@@ -175,11 +201,12 @@ def _channels(predictor, provenance):
 
 
 def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
-               force=False) -> dict:
+               force=False, physical=None, input_units=None) -> dict:
     """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
 
-    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
-    ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [uA]`` / ``upper:<name> [uA]`` the window each
+    Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [<input unit>]`` (``input_units``, default uA),
+    ``out:<name> [<unit>]`` predicted, ``target:<name> [<unit>]`` for tracked outputs, ``lower:<name> [<input
+    unit>]`` / ``upper:<name> [<input unit>]`` the window each
     step's input obeys), ``plan_pattern.csv`` (the inputs alone, in the pattern layout of ``stimsteer predict
     --pattern``), ``plan.png`` and ``plan.json`` (status, cost terms, active and broken limits, caution, and
     ``extra``; JSON-safe values by :func:`stimsteer.sysid._records.jsonable`). Both tables open with the plan's
@@ -197,7 +224,9 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     rate = float(sample_rate_hz)
     t = np.arange(plan.horizon_steps) / rate
     time_col = f"time [s] @ {rate:.12g} Hz"
-    ins = {f"in:{n} [uA]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
+    # the inputs' own unit (the model's, e.g. mA or uC/s under a stimulation mapping), so `predict` reads it back
+    iu = [str(x) for x in (input_units or ("uA",) * len(plan.input_names))]
+    ins = {f"in:{n} [{iu[i]}]": plan.inputs[:, i] for i, n in enumerate(plan.input_names)}
     table = {time_col: t, **ins}
     table.update({f"out:{n} [{u}]": plan.predicted_outputs[:, j] for j, (n, u) in enumerate(zip(plan.output_names,
                                                                                                    units))})
@@ -205,8 +234,8 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
         table.update({f"target:{n} [{units[j]}]": plan.target[:, j] for j, n in enumerate(plan.output_names)
                       if tracked[j]})
     lb, ub = plan.step_bounds
-    table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
-    table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"lower:{n} [{iu[i]}]": lb[:, i] for i, n in enumerate(plan.input_names)})
+    table.update({f"upper:{n} [{iu[i]}]": ub[:, i] for i, n in enumerate(plan.input_names)})
     summary = jsonable({**plan.to_dict(), **(extra or {})})
     head = _status_lines(plan)
     with atomic_dir(out_dir, force=force) as tmp:
@@ -215,9 +244,15 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
                 fh.write(head)
                 pd.DataFrame(frame).to_csv(fh, index=False, float_format="%.10g", lineterminator="\n")
         plan_figure(plan, t, units, tracked).savefig(tmp / "plan.png", dpi=110)
+        pulse_files = {}
+        if physical is not None:  # the pulse files and their checks (stimsteer.control.pulse_plan)
+            base = {k: (extra or {}).get(k) for k in ("model_file", "model_sha256", "session_content_hash",
+                                                      "versions")}
+            summary["pulse_plan"] = jsonable(physical.write(tmp, plan, base))
+            pulse_files = {f.split(".")[0] + "_" + f.split(".")[1]: out_dir / f for f in physical.record["files"]}
         (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
-    return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
-                                        ("json", "plan.json"))}
+    return {**{k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"),
+                                           ("png", "plan.png"), ("json", "plan.json"))}, **pulse_files}
 
 
 def _status_lines(plan: Plan) -> str:
@@ -260,17 +295,26 @@ def add_parser(sub) -> None:
     p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
     p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--stimulation", metavar="FILE", help="stimulation description of the model's inputs (TOML, see "
+                   "stimsteer.sysid.stimulation); with physical limits, plan also writes the parameter table and "
+                   "the pulse list (CSV, NWB) with every safety check")
+
+
+def _delivered(done) -> bool:
+    """The pulse list holds the plan (no check failed)."""
+    return not json.loads(Path(done.files["json"]).read_text())["pulse_plan"]["status"].startswith("not delivered")
 
 
 def run(args) -> int:
     """Run ``stimsteer plan`` from parsed arguments."""
     done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
                          horizon_steps=args.horizon_steps, from_trial=args.from_trial,
-                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force)
+                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force,
+                         stimulation=args.stimulation)
     print("\n".join(done.lines))
     print(f"wrote {', '.join(str(p) for p in done.files.values())}")
     print(CAUTION)
-    if done.plan.ok:
+    if done.plan.ok and done.files.get("plan_pulses_csv") is None or done.plan.ok and _delivered(done):
         return 0
     sys.stderr.write(f"stimsteer plan: the plan is {done.plan.status}: the safe fallback was written (its files say "
                      f"so); exit code {EXIT_NOT_OPTIMAL}\n")

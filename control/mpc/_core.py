@@ -381,7 +381,8 @@ class _PredictiveController(BaseEstimator):
             d = np.abs(np.diff(np.vstack([last, u]), axis=0)) - self._slew
             excess = max(excess, float(np.max(d[:, np.isfinite(self._slew)], initial=0.0)))
         if self._budget is not None:
-            excess = max(excess, self._budget.excess(u, self._hist) / max(self._scale, 1.0))
+            # relative to the budget (a sum over the window), in the amplitude scale of the tolerance
+            excess = max(excess, self._budget.excess(u, self._hist) / self._energy * self._scale)
         if not np.all(np.isfinite(u)) or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
         u = np.clip(u, lb, ub)

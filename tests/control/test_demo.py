@@ -12,7 +12,8 @@ from stimsteer.control.demo import demo_steps
 
 def test_demo_steps_cover_every_task_of_the_job():
     names = [argv[0] for _, argv in demo_steps("s.h5", "p.h5", "l.toml", "out")]
-    assert names == ["inspect", "fit", "fit", "predict", "predict", "network", "plan", "plan", "schedule", "bench"]
+    assert names == ["inspect", "fit", "fit", "predict", "predict", "network", "plan", "plan", "plan", "schedule",
+                     "bench"]
 
 
 def test_demo_refuses_a_folder_that_holds_another_run(tmp_path, capsys):
@@ -68,6 +69,12 @@ def test_demo_runs_end_to_end_and_every_plan_respects_the_declared_limits(demo_r
             low = table[[c for c in table.columns if c.startswith(f"lower:{name} ")][0]]
             high = table[[c for c in table.columns if c.startswith(f"upper:{name} ")][0]]
             assert (table[col] >= low - 1e-9).all() and (table[col] <= high + 1e-9).all()
+    # the plan in physical terms: pulse files with every check passed, amplitudes within the declared limits
+    pulses = json.loads((out / "plan_pulses" / "plan.json").read_text())["pulse_plan"]
+    assert pulses["all_checks_passed"] and pulses["status"] == "optimal"
+    table = pd.read_csv(out / "plan_pulses" / "plan_pulses.csv", comment="#")
+    assert len(table) and (table["amplitude_ua"] <= 50.0 + 1e-9).all()
+    assert (out / "plan_pulses" / "plan_pulses.nwb").is_file()
     assert (out / "network" / "site_ranking.png").is_file()
     assert (out / "next_schedule.csv").is_file()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary folder left behind

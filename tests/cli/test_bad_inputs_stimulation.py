@@ -1,0 +1,158 @@
+"""Bad stimulation inputs to `stimsteer plan` with physical limits, run as real commands.
+
+Each case: exit code 2, one line on stderr naming the problem, no traceback, nothing written, inputs unchanged.
+Plus the good case: the pulse files are written with every check, and a session in mA plans the same pulses as the
+same session in µA.
+"""
+
+import json
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stimsteer.sysid import Session
+from stimsteer.sysid.io.dispatch import save_session
+from stimsteer.sysid.stimulation import InputMapping, load_stimulation
+
+from .conftest import run_cli, tree_hash
+
+pytestmark = pytest.mark.slow  # each case runs the command (fit and plan) as a user does
+
+_STIM = """
+[mapping]
+kind = "amplitude"
+[sites.a]
+kind = "electrical"
+phase_width = "90 us"
+frequency = "125 Hz"
+amplitude_unit = "{unit}"
+contact_area = "{area}"
+contacts = ["c1"]
+{extra}
+"""
+_LIMITS = """
+[physical]
+{top}
+[physical.sites.a]
+amplitude_max_ua = 200.0
+{site}
+"""
+
+
+@pytest.fixture(scope="module")
+def models(tmp_path_factory):
+    """ARX models of one simulated session recorded in mA and in µA."""
+    d = tmp_path_factory.mktemp("stim_models")
+    g = np.random.default_rng(3)
+    T, u = 1500, np.abs(g.normal(size=(1500, 1))) * 0.05
+    x, y = np.zeros(2), np.zeros((T, 2))
+    A, B = np.array([[0.8, 0.1], [0.0, 0.7]]), np.array([[10.0], [4.0]])
+    for k in range(T):
+        y[k] = x + 0.01 * g.normal(size=2)
+        x = A @ x + B @ u[k]
+    out = {}
+    (d / "stim.toml").write_text(_STIM.format(unit="mA", area="0.06 cm^2", extra=""))
+    recorded = InputMapping(load_stimulation(d / "stim.toml"), 250.0).record()
+    for unit, scale in (("mA", 1.0), ("uA", 1000.0), ("rec", 1.0)):
+        s = Session(u=u * scale, y=y, sample_rate_hz=250.0, input_names=["a"], output_names=["r1", "r2"],
+                    input_units=["mA" if unit == "rec" else unit], output_units=["uV", "uV"],
+                    trials=[[0, 500], [500, 1000], [1000, 1500]],
+                    metadata={"stimulation": recorded} if unit == "rec" else None)
+        save_session(s, d / f"s_{unit}.h5")
+        r = run_cli("fit", d / f"s_{unit}.h5", "--route", "indirect", "--method", "arx", "--out",
+                    d / f"m_{unit}.h5", "--past-steps", "4", "--horizon-steps", "20")
+        assert r.code == 0, r
+        out[unit] = d / f"m_{unit}.h5"
+    return out
+
+
+def _files(tmp_path, unit="mA", area="0.06 cm^2", extra="", top="", site=""):
+    stim, lim = tmp_path / "stim.toml", tmp_path / "limits.toml"
+    stim.write_text(_STIM.format(unit=unit, area=area, extra=extra))
+    lim.write_text(_LIMITS.format(top=top, site=site))
+    return stim, lim
+
+
+def _plan(model, stim, lim, out):
+    return run_cli("plan", model, "--target", "r1=50", "--limits", lim, "--stimulation", stim, "--out", out,
+                   "--horizon-steps", "30")
+
+
+CASES = {
+    "charge-imbalanced waveform": (dict(extra='waveform = "asymmetric"\nsecond_phase_width = "360 us"\n'
+                                              "second_phase_amplitude_ratio = 0.5"), r"not charge-balanced"),
+    "mW/mm^2 on an electrical site": (dict(site="irradiance_max_mw_per_mm2 = 5.0"),
+                                      r"cannot take irradiance_max_mw_per_mm2"),
+    "mW/mm^2 as an electrical amplitude unit": (dict(unit="mW/mm^2"), r"is not a current"),
+    "micro contact without injection limit": (dict(area="2e-5 cm^2"), r"injection_limit_uc_per_cm2"),
+    "frequency outside the declared range": (dict(site="frequency_max_hz = 100.0"), r"outside the declared range"),
+    "window budget smaller than one pulse": (dict(top="window_s = 0.1\ncharge_rate_max_uc_per_s = 0.01"),
+                                             r"smaller than one pulse"),
+    "pulses that overlap their successor": (dict(extra='interphase_gap = "8000 us"'), r"overlap their successor"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_bad_stimulation_input_is_one_line_exit_2_and_nothing_written(models, tmp_path, case):
+    kwargs, match = CASES[case]
+    stim, lim = _files(tmp_path, **kwargs)
+    before = tree_hash(stim, lim, models["mA"])
+    r = _plan(models["mA"], stim, lim, tmp_path / "out")
+    assert r.code == 2, r
+    assert len(r.err.strip().splitlines()) == 1 and "Traceback" not in r.err, r
+    assert re.search(match, r.err), r
+    assert not (tmp_path / "out").exists() and tree_hash(stim, lim, models["mA"]) == before
+
+
+def test_plan_writes_the_pulse_files_with_checks_and_the_same_pulses_from_ma_and_ua(models, tmp_path):
+    tables = {}
+    for unit in ("mA", "uA"):
+        (tmp_path / unit).mkdir()
+        stim, lim = _files(tmp_path / unit, unit=unit, site="charge_per_phase_max_uc = 0.015")
+        r = _plan(models[unit], stim, lim, tmp_path / unit / "out")
+        assert r.code == 0, r
+        out = tmp_path / unit / "out"
+        for name in ("plan_parameters.csv", "plan_pulses.csv", "plan_pulses.nwb"):
+            assert (out / name).is_file()
+        head = (out / "plan_pulses.csv").read_text().splitlines()
+        assert head[0] == "# status: optimal" and any(h.startswith("# model_sha256: ") for h in head)
+        assert any("check: charge_per_phase site=a" in h and "passed" in h for h in head)
+        rec = json.loads((out / "plan.json").read_text())["pulse_plan"]
+        assert rec["all_checks_passed"] and rec["session_content_hash"] and rec["versions"]["stimsteer"]
+        tables[unit] = pd.read_csv(out / "plan_pulses.csv", comment="#")
+        assert tables[unit]["charge_per_phase_uc"].max() <= 0.015 * (1 + 1e-9)
+    # the pattern is headed in the model's unit (it was always [uA]), so `predict` takes it back (issue 16)
+    assert "in:a [mA]" in (tmp_path / "mA" / "out" / "plan_pattern.csv").read_text()
+    r = run_cli("predict", models["mA"], "--pattern", tmp_path / "mA" / "out" / "plan_pattern.csv", "--out",
+                tmp_path / "pred")
+    assert r.code == 0, r
+    a, b = tables["mA"], tables["uA"]
+    assert len(a) == len(b) > 0
+    assert np.allclose(a["amplitude_ua"], b["amplitude_ua"], rtol=1e-4, atol=1e-3)
+
+
+def test_the_nwb_pulse_table_reads_back_as_time_intervals(models, tmp_path):
+    pynwb = pytest.importorskip("pynwb")
+    stim, lim = _files(tmp_path)
+    assert _plan(models["mA"], stim, lim, tmp_path / "out").code == 0
+    with pynwb.NWBHDF5IO(str(tmp_path / "out" / "plan_pulses.nwb"), "r") as io:
+        f = io.read()
+        pulses = f.intervals["planned_pulses"].to_dataframe()
+        csv = pd.read_csv(tmp_path / "out" / "plan_pulses.csv", comment="#")
+        assert np.allclose(pulses["start_time"], csv["onset_s"]) and np.allclose(pulses["amplitude_ua"],
+                                                                                 csv["amplitude_ua"])
+        assert "checks" in json.loads(f.notes)
+
+
+def test_plan_takes_the_description_recorded_in_the_model(models, tmp_path):
+    _, lim = _files(tmp_path)
+    r = run_cli("plan", models["rec"], "--target", "r1=50", "--limits", lim, "--out", tmp_path / "out",
+                "--horizon-steps", "30")
+    assert r.code == 0, r
+    assert "checks all passed" in r.out and (tmp_path / "out" / "plan_pulses.csv").is_file()
+    # physical limits and a model without a recorded description: refused, naming the fix
+    r = run_cli("plan", models["mA"], "--target", "r1=50", "--limits", lim, "--out", tmp_path / "out2",
+                "--horizon-steps", "30")
+    assert r.code == 2 and "--stimulation FILE" in r.err and not (tmp_path / "out2").exists(), r
