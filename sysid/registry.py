@@ -89,4 +89,5 @@ METHODS = {
     ("indirect", "subspace"): MethodEntry("stimsteer.sysid.subspace.estimator:SubspaceId", streaming=True),
     ("direct", "lsq"): MethodEntry("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
     ("direct", "hankel"): MethodEntry("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
+    ("indirect", "lifted"): MethodEntry("stimsteer.sysid.lifted:LiftedPredictor"),
 }
