@@ -90,4 +90,5 @@ METHODS = {
     ("direct", "lsq"): MethodEntry("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
     ("direct", "hankel"): MethodEntry("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
     ("indirect", "lifted"): MethodEntry("stimsteer.sysid.lifted:LiftedPredictor"),
+    ("indirect", "hammerstein"): MethodEntry("stimsteer.sysid.hammerstein:HammersteinArx"),
 }
