@@ -91,4 +91,5 @@ METHODS = {
     ("direct", "hankel"): MethodEntry("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
     ("indirect", "lifted"): MethodEntry("stimsteer.sysid.lifted:LiftedPredictor"),
     ("indirect", "hammerstein"): MethodEntry("stimsteer.sysid.hammerstein:HammersteinArx"),
+    ("indirect", "bootstrap"): MethodEntry("stimsteer.sysid.ensemble:BootstrapEnsemble"),
 }
