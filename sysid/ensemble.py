@@ -104,6 +104,8 @@ class BootstrapEnsemble(BasePredictor):
         A registered method (any route): ``arx``, ``subspace``, ``lsq``, ``hankel``, ``lifted``, ``hammerstein``...
     method_settings : dict, optional
         Settings of every member (as for ``fit_route``'s ``settings``).
+    past_steps : int, optional
+        The members' past window (their ``past_steps`` setting, unless ``method_settings`` gives one).
     n_members : int, default 20
     residual_horizon_steps : int, default 50
         Longest horizon at which out-of-bag errors are collected, samples.
@@ -130,9 +132,11 @@ class BootstrapEnsemble(BasePredictor):
 
     storage_kind = "bootstrap_ensemble"
 
-    def __init__(self, *, method="arx", method_settings=None, n_members=20, residual_horizon_steps=50, seed=0):
+    def __init__(self, *, method="arx", method_settings=None, past_steps=None, n_members=20,
+                 residual_horizon_steps=50, seed=0):
         self.method = method
         self.method_settings = method_settings
+        self.past_steps = past_steps
         self.n_members = n_members
         self.residual_horizon_steps = residual_horizon_steps
         self.seed = seed
@@ -155,8 +159,11 @@ class BootstrapEnsemble(BasePredictor):
                                f"intervals); the session has {session.n_trials}. Record more trials or split long "
                                "ones.")
         members, draws, errors = [], bootstrap_draws(session.n_trials, B, int(self.seed)), []
+        settings = dict(self.method_settings or {})
+        if self.past_steps is not None:
+            settings.setdefault("past_steps", self.past_steps)
         for draw in draws:
-            est = make_estimator(*route, dict(self.method_settings or {}))
+            est = make_estimator(*route, settings)
             members.append(est.fit(resample_trials(session, draw)))
             oob = np.setdiff1d(np.arange(session.n_trials), draw)
             if oob.size:
@@ -254,6 +261,7 @@ class BootstrapEnsemble(BasePredictor):
         check_fitted(self, "members_")
         params = self.get_params()
         params["method_settings"] = {k: v for k, v in dict(self.method_settings or {}).items()}
+        params["past_steps"] = -1 if self.past_steps is None else int(self.past_steps)
         return {"params": params, "route": list(self.route_), "errors": self.errors_,
                 "draws": np.stack(self.draws_), "members": {f"m{i}": m.to_state() for i, m in
                                                            enumerate(self.members_)}}
@@ -262,6 +270,9 @@ class BootstrapEnsemble(BasePredictor):
     def from_state(cls, state: dict) -> "BootstrapEnsemble":
         """Rebuild a fitted ensemble from :meth:`to_state` output."""
         params = dict(state["params"])
+        params["past_steps"] = None if int(params.get("past_steps", -1)) < 0 else int(params["past_steps"])
+        params["method_settings"] = {k: tuple(v) if isinstance(v, list) else v
+                                     for k, v in dict(params.get("method_settings") or {}).items()}
         obj = cls(**params)
         obj.route_ = tuple(state["route"])
         member_cls = METHODS[obj.route_].cls()

@@ -62,9 +62,11 @@ def controller_for(predictor, limits, *, horizon_steps=None, output_weight=1.0, 
                                                output_weight=output_weight, input_weight=input_weight,
                                                **settings).fit()
     if isinstance(predictor, RecruitmentForm):  # Hammerstein: plan in the transformed input, decode amplitudes
-        from .recruitment import RecruitmentController
-        return RecruitmentController(predictor=predictor, limits=limits, horizon_steps=horizon_steps,
-                                     output_weight=output_weight, input_weight=input_weight, settings=settings).fit()
+        from .recruitment import RecruitmentController, recruited_limits
+        inner = controller_for(predictor.linear_part(), recruited_limits(predictor, limits),
+                               horizon_steps=horizon_steps, output_weight=output_weight, input_weight=input_weight,
+                               **settings)
+        return RecruitmentController(predictor=predictor, limits=limits, inner=inner).fit()
     raise InvalidParameterError(
         f"controller_for needs a predictor with state_space_model() (a state-space form), data_blocks() (Hankel "
         f"blocks) or prediction_maps() with has_linear_maps True (linear maps); got a {type(predictor).__name__}, "

@@ -19,7 +19,36 @@ from ...sysid import InvalidParameterError
 from ..limits import StimLimits
 from .plan import _ro
 
-__all__ = ["RecruitmentController"]
+__all__ = ["RecruitmentController", "recruited_limits"]
+
+
+def recruited_limits(predictor, limits) -> StimLimits:
+    """The limits of the recruited inputs ``v = f(u)``: the amplitude window mapped through the monotone ``f``.
+
+    Raises
+    ------
+    InvalidParameterError
+        For a non-monotone recruitment, or limits with a slew limit or an energy budget.
+    """
+    rec = predictor.recruitment()
+    bad = [n for n, ok in zip(rec.input_names, rec.monotone) if not ok]
+    if bad:
+        raise InvalidParameterError(
+            f"the recruitment of site(s) {bad} is not monotone, so no plan is made through it (an amplitude "
+            "window has no convex image). Refit with more data or fewer knots, or use a linear route.")
+    if not isinstance(limits, StimLimits):
+        raise InvalidParameterError(f"limits must be a StimLimits; got {type(limits).__name__}.")
+    lim = limits.aligned(tuple(predictor.input_names_), tuple(predictor.output_names_))
+    if lim.energy_budget_ua2 is not None or (lim.slew_max_ua is not None and np.any(np.isfinite(lim.slew_max_ua))):
+        raise InvalidParameterError(
+            "a recruitment (Hammerstein) plan keeps amplitude and charge-density bounds exactly, but not a slew "
+            "limit or an energy budget (they do not map through a nonlinear recruitment); remove them from the "
+            "limits file or plan with a linear route.")
+    lo, hi = lim.input_bounds()
+    vlo, vhi = rec.forward(lo[None])[0], rec.forward(hi[None])[0]
+    return StimLimits(amplitude_min_ua=np.minimum(vlo, 0.0), amplitude_max_ua=np.maximum(vhi, 0.0),
+                      output_min=lim.output_min, output_max=lim.output_max, input_names=lim.input_names,
+                      output_names=lim.output_names)
 
 
 class RecruitmentController:
@@ -30,16 +59,14 @@ class RecruitmentController:
     predictor : RecruitmentForm
         Fitted, with a monotone recruitment.
     limits : StimLimits
-        Amplitude (and charge-density) bounds and output bounds; no slew limit or energy budget.
-    horizon_steps : int
-    output_weight, input_weight : float or ndarray
-        As in :class:`ModelPredictiveController` (the input weight acts on the recruited inputs).
-    settings : dict, optional
-        Further settings of the linear part's controller.
+        The declared limits: amplitude (and charge-density) bounds and output bounds; no slew limit or energy
+        budget.
+    inner : fitted controller
+        The linear part's controller, built on :func:`recruited_limits` (what
+        :func:`~stimsteer.control.mpc.controller_for` does).
 
     Attributes
     ----------
-    inner_ : the linear part's controller (in recruited units)
     limits_ : StimLimits
         The declared limits.
     method_ : str
@@ -47,53 +74,19 @@ class RecruitmentController:
     past_steps_, horizon_steps_, n_inputs_, n_outputs_, input_names_, output_names_, energy_window_steps_
     """
 
-    def __init__(self, *, predictor, limits, horizon_steps=None, output_weight=1.0, input_weight=1e-3,
-                 settings=None):
+    def __init__(self, *, predictor, limits, inner):
         self.predictor = predictor
         self.limits = limits
-        self.horizon_steps = horizon_steps
-        self.output_weight = output_weight
-        self.input_weight = input_weight
-        self.settings = settings
+        self.inner = inner
 
     def fit(self):
-        """Check the map and the limits, map the amplitude window through ``f``, build the inner controller.
-
-        Raises
-        ------
-        InvalidParameterError
-            For a non-monotone recruitment, or limits with a slew limit or an energy budget.
-        """
-        from .dispatch import controller_for
-
-        rec = self.predictor.recruitment()
-        bad = [n for n, ok in zip(rec.input_names, rec.monotone) if not ok]
-        if bad:
-            raise InvalidParameterError(
-                f"the recruitment of site(s) {bad} is not monotone, so no plan is made through it (an amplitude "
-                "window has no convex image). Refit with more data or fewer knots, or use a linear route.")
-        lim = self.limits.aligned(tuple(self.predictor.input_names_), tuple(self.predictor.output_names_)) \
-            if isinstance(self.limits, StimLimits) else self.limits
-        if not isinstance(lim, StimLimits):
-            raise InvalidParameterError(f"limits must be a StimLimits; got {type(lim).__name__}.")
-        if lim.energy_budget_ua2 is not None or (lim.slew_max_ua is not None
-                                                 and np.any(np.isfinite(lim.slew_max_ua))):
-            raise InvalidParameterError(
-                "a recruitment (Hammerstein) plan keeps amplitude and charge-density bounds exactly, but not a slew "
-                "limit or an energy budget (they do not map through a nonlinear recruitment); remove them from the "
-                "limits file or plan with a linear route.")
-        lo, hi = lim.input_bounds()
-        vlo, vhi = rec.forward(lo[None])[0], rec.forward(hi[None])[0]
-        inner_limits = StimLimits(amplitude_min_ua=np.minimum(vlo, 0.0), amplitude_max_ua=np.maximum(vhi, 0.0),
-                                  output_min=lim.output_min, output_max=lim.output_max,
-                                  input_names=lim.input_names, output_names=lim.output_names)
-        self.inner_ = controller_for(self.predictor.linear_part(), inner_limits, horizon_steps=self.horizon_steps,
-                                     output_weight=self.output_weight, input_weight=self.input_weight,
-                                     **dict(self.settings or {}))
-        self.limits_, self._rec, self.method_ = lim, rec, "recruitment"
-        for name in ("past_steps_", "horizon_steps_", "n_inputs_", "n_outputs_", "input_names_", "output_names_",
+        """Check the map and the limits again and take the inner controller's shape."""
+        recruited_limits(self.predictor, self.limits)
+        self.limits_ = self.limits.aligned(tuple(self.predictor.input_names_), tuple(self.predictor.output_names_))
+        self._rec, self.method_ = self.predictor.recruitment(), "recruitment"
+        for name in ("horizon_steps_", "n_inputs_", "n_outputs_", "input_names_", "output_names_",
                      "energy_window_steps_", "target_kind_"):
-            setattr(self, name, getattr(self.inner_, name, None))
+            setattr(self, name, getattr(self.inner, name, None))
         self.past_steps_ = int(self.predictor.past_steps_)
         return self
 
@@ -106,7 +99,7 @@ class RecruitmentController:
         rec = self._rec
         v_past = rec.forward(np.asarray(u_past, np.float64))
         v_last = None if last_input is None else rec.forward(np.asarray(last_input, np.float64)[None])[0]
-        plan = self.inner_.plan(v_past, y_past, target=target, last_input=v_last, use_fast_path=use_fast_path)
+        plan = self.inner.plan(v_past, y_past, target=target, last_input=v_last, use_fast_path=use_fast_path)
         N = plan.inputs.shape[0]
         lo, hi = self.limits_.input_bounds()
         u = np.clip(rec.inverse(plan.inputs), lo, hi)  # decoding round-off only: f maps the window onto itself
