@@ -21,7 +21,7 @@ from .registry import MethodEntry
 from .routes import fit_route, make_estimator, FitResult, METHODS
 from .trial_sources import open_session_source
 from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
-from .protocols import InputAffineForm, RecruitmentForm
+from .protocols import InputAffineForm, IntervalForm, RecruitmentForm
 from .lifted import LiftedPredictor
 from .hammerstein import HammersteinArx, Recruitment
 from .ensemble import BootstrapEnsemble, interval_coverage, resample_trials
@@ -29,7 +29,7 @@ from .recursive import RecursiveRidgeArx
 from .conditions import ConditionFits, condition_change_table, fit_per_condition, sliding_window_fits, step_gains
 
 __all__ = [
-    "InputAffineForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",
+    "InputAffineForm", "IntervalForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",
     "interval_coverage", "resample_trials", "RecursiveRidgeArx", "ConditionFits", "condition_change_table",
     "fit_per_condition", "sliding_window_fits", "step_gains",
     "BaseEstimator",

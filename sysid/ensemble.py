@@ -116,6 +116,8 @@ class BootstrapEnsemble(BasePredictor):
     members_ : list of fitted predictors
     draws_ : list of ndarray
         The trial indices each member was fitted on.
+    selection_table_ : pandas.DataFrame
+        Per member: distinct trials drawn and trials out of bag.
     errors_ : ndarray, shape (n_errors, residual_horizon_steps, p)
         Pooled out-of-bag errors (NaN where a window ended early).
     route_, has_linear_maps, past_steps_, max_horizon_steps_, n_inputs_, n_outputs_, input_names_,
@@ -172,6 +174,7 @@ class BootstrapEnsemble(BasePredictor):
         if not errors:
             raise SessionError("no bootstrap member left a trial out of bag to measure its errors; use more trials.")
         self.members_, self.draws_, self.route_ = members, draws, route
+        self.selection_table_ = _member_table(draws, session.n_trials)
         self.errors_ = np.concatenate(errors)
         self._describe(members[0])
         self.selection_notes_ = (f"{B} members of {route[0]}/{route[1]} on bootstrap resamples of "
@@ -281,9 +284,18 @@ class BootstrapEnsemble(BasePredictor):
         obj.draws_ = [np.asarray(d) for d in np.atleast_2d(state["draws"])]
         obj.errors_ = np.asarray(state["errors"], float)
         obj._describe(obj.members_[0])
+        obj.selection_table_ = _member_table(obj.draws_, int(obj.draws_[0].size))
         obj.selection_notes_ = ()
         obj._mark_fitted()
         return obj
+
+
+def _member_table(draws, n_trials):
+    """One row per member: the distinct trials it drew and those left out of bag."""
+    import pandas as pd
+
+    return pd.DataFrame([{"member": i, "distinct_trials": int(np.unique(d).size),
+                          "out_of_bag_trials": int(n_trials - np.unique(d).size)} for i, d in enumerate(draws)])
 
 
 def interval_coverage(ensemble, session, *, horizon_steps: int, level: float = 0.95, max_windows: int = 300):

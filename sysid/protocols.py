@@ -31,7 +31,7 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 __all__ = ["Predictor", "LinearPredictor", "PredictionMaps", "StateSpaceForm", "DataBlocks", "DataBlocksForm",
-           "Plant", "past_vector", "InputAffineForm", "RecruitmentForm"]
+           "Plant", "past_vector", "InputAffineForm", "RecruitmentForm", "IntervalForm"]
 
 
 def past_vector(u_past, y_past) -> np.ndarray:
@@ -160,6 +160,13 @@ class RecruitmentForm(Protocol):
     def recruitment(self): ...
 
     def linear_part(self): ...
+
+
+@runtime_checkable
+class IntervalForm(Protocol):
+    """A predictor that gives prediction intervals: ``predict_interval(...) -> (mean, lower, upper)``."""
+
+    def predict_interval(self, u_past, y_past, u_future, *, level=0.95): ...
 
 
 @runtime_checkable
