@@ -133,6 +133,8 @@ class BootstrapEnsemble(BasePredictor):
     """
 
     storage_kind = "bootstrap_ensemble"
+    #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
+    in_default_bench = False
 
     def __init__(self, *, method="arx", method_settings=None, past_steps=None, n_members=20,
                  residual_horizon_steps=50, seed=0):

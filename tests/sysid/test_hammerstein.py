@@ -102,3 +102,14 @@ def test_a_saved_hammerstein_model_predicts_the_same(fitted, tmp_path):
     up, yp, uf = session.u[:3], session.y[:3], session.u[3:30]
     np.testing.assert_array_equal(back.predict(up, yp, uf), est.predict(up, yp, uf))
     assert back.monotone_ and list(back.selection_table_.columns) == ["site", "amplitude", "fitted", "used"]
+
+
+@pytest.mark.slow
+def test_the_recruitment_route_takes_part_in_the_benchmark_when_named():
+    from stimsteer.control import BenchSettings, MethodSpec, run_bench
+
+    session = _session(SATURATING, noise=0.01)
+    settings = BenchSettings.quick(methods=(MethodSpec("indirect", "hammerstein"), MethodSpec("direct", "lsq")),
+                                   past_steps=2, horizon_steps=5, train_trials=(), noise_scales=(), control=None)
+    fits = run_bench(session, settings, n_workers=1, progress=False).tables()["fits"]
+    assert set(fits["method"]) == {"hammerstein", "lsq"} and (fits["status"] == "ok").all()
