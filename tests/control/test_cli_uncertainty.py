@@ -47,3 +47,33 @@ def test_conditions_without_labels_fail_with_one_line(files, tmp_path, capsys):
                  "--conditions", "--out", str(tmp_path / "m.h5")])
     err = capsys.readouterr().err
     assert code == 2 and "no condition labels" in err and "Traceback" not in err
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("mode", ["worst", "average"])
+def test_plan_robust_over_the_ensemble_keeps_the_limits(files, mode, capsys):
+    d = files
+    model = d / "m.h5"
+    if not model.exists():
+        assert main(["fit", str(d / "s.h5"), "--route", "indirect", "--method", "arx", "--past-steps", "2",
+                     "--bootstrap", "6", "--out", str(model)]) == 0
+    limits = d / "limits.toml"
+    limits.write_text("[inputs.site]\namplitude_min_ua = -1.0\namplitude_max_ua = 1.2\nslew_max_ua = 0.5\n")
+    out = d / f"plan_{mode}"
+    assert main(["plan", str(model), "--target", "y0=2.0", "--limits", str(limits), "--horizon-steps", "10",
+                 "--robust", mode, "--out", str(out)]) == 0
+    plan = pd.read_csv(out / "plan.csv", comment="#")
+    u = plan["in:site [uA]"].to_numpy()
+    assert np.all(u <= 1.2 + 1e-9) and np.all(u >= -1.0 - 1e-9) and np.all(np.abs(np.diff(np.r_[0.0, u])) <= 0.5 + 1e-9)
+    assert f"robust-{mode}" in capsys.readouterr().out
+
+
+def test_plan_robust_refuses_a_single_model(files, tmp_path, capsys):
+    d = files
+    assert main(["fit", str(d / "s.h5"), "--route", "indirect", "--method", "arx", "--past-steps", "2",
+                 "--out", str(tmp_path / "one.h5")]) == 0
+    (tmp_path / "limits.toml").write_text("[inputs.site]\namplitude_min_ua = -1.0\namplitude_max_ua = 1.0\n")
+    capsys.readouterr()
+    code = main(["plan", str(tmp_path / "one.h5"), "--target", "y0=1.0", "--limits", str(tmp_path / "limits.toml"),
+                 "--horizon-steps", "5", "--robust", "worst", "--out", str(tmp_path / "p")])
+    assert code == 2 and "--bootstrap N" in capsys.readouterr().err
