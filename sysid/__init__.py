@@ -26,11 +26,12 @@ from .lifted import LiftedPredictor
 from .hammerstein import HammersteinArx, Recruitment
 from .ensemble import BootstrapEnsemble, interval_coverage, resample_trials
 from .recursive import RecursiveRidgeArx
+from .switched import ModelSequence
 from .conditions import ConditionFits, condition_change_table, fit_per_condition, sliding_window_fits, step_gains
 
 __all__ = [
     "InputAffineForm", "IntervalForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",
-    "interval_coverage", "resample_trials", "RecursiveRidgeArx", "ConditionFits", "condition_change_table",
+    "interval_coverage", "resample_trials", "RecursiveRidgeArx", "ModelSequence", "ConditionFits", "condition_change_table",
     "fit_per_condition", "sliding_window_fits", "step_gains",
     "BaseEstimator",
     "BasePredictor",
