@@ -146,6 +146,8 @@ class HammersteinArx(BasePredictor):
     storage_kind = "hammerstein_arx"
     #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
     in_default_bench = False
+    #: The lifted state / the linear part carries a constant, so an output offset needs no centring.
+    fit_intercept = True
     has_linear_maps = False
 
     def __init__(self, *, past_steps=2, n_knots=7, alpha=1e-6, monotone_tolerance=0.1):

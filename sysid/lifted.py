@@ -185,6 +185,8 @@ class LiftedPredictor(BasePredictor):
     storage_kind = "lifted_predictor"
     #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
     in_default_bench = False
+    #: The lifted state / the linear part carries a constant, so an output offset needs no centring.
+    fit_intercept = True
     has_linear_maps = False
 
     def __init__(self, *, past_steps=2, dictionary="rff", n_features=None, feature_grid=(0, 25, 50, 100),
