@@ -21,8 +21,18 @@ from .registry import MethodEntry
 from .routes import fit_route, make_estimator, FitResult, METHODS
 from .trial_sources import open_session_source
 from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
+from .protocols import InputAffineForm, IntervalForm, RecruitmentForm
+from .lifted import LiftedPredictor
+from .hammerstein import HammersteinArx, Recruitment
+from .ensemble import BootstrapEnsemble, interval_coverage, resample_trials
+from .recursive import RecursiveRidgeArx
+from .switched import ModelSequence
+from .conditions import ConditionFits, condition_change_table, fit_per_condition, sliding_window_fits, step_gains
 
 __all__ = [
+    "InputAffineForm", "IntervalForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",
+    "interval_coverage", "resample_trials", "RecursiveRidgeArx", "ModelSequence", "ConditionFits", "condition_change_table",
+    "fit_per_condition", "sliding_window_fits", "step_gains",
     "BaseEstimator",
     "BasePredictor",
     "DataBlocks",

@@ -31,7 +31,7 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 __all__ = ["Predictor", "LinearPredictor", "PredictionMaps", "StateSpaceForm", "DataBlocks", "DataBlocksForm",
-           "Plant", "past_vector"]
+           "Plant", "past_vector", "InputAffineForm", "RecruitmentForm", "IntervalForm"]
 
 
 def past_vector(u_past, y_past) -> np.ndarray:
@@ -136,6 +136,37 @@ class DataBlocksForm(Protocol):
     """A data predictor whose Hankel blocks a DeePC controller can use directly."""
 
     def data_blocks(self) -> DataBlocks: ...
+
+
+@runtime_checkable
+class InputAffineForm(Protocol):
+    """A predictor affine in its future inputs with a map that does not depend on the past (the lifted route).
+
+    ``vec(y_future) = vec(predict(u_past, y_past, 0)) + input_map(N) @ vec(u_future)``: the condensed convex
+    problem plans with the free response computed from the measured past (Korda & Mezić 2018).
+    """
+
+    def input_map(self, horizon_steps: int) -> np.ndarray: ...
+
+
+@runtime_checkable
+class RecruitmentForm(Protocol):
+    """A static monotone input nonlinearity before linear dynamics (Hammerstein): ``y = L(f(u))``.
+
+    ``recruitment()`` gives the per-site map with ``forward``/``inverse`` and whether it is monotone;
+    ``linear_part()`` the fitted linear predictor in the transformed inputs ``v = f(u)``.
+    """
+
+    def recruitment(self): ...
+
+    def linear_part(self): ...
+
+
+@runtime_checkable
+class IntervalForm(Protocol):
+    """A predictor that gives prediction intervals: ``predict_interval(...) -> (mean, lower, upper)``."""
+
+    def predict_interval(self, u_past, y_past, u_future, *, level=0.95): ...
 
 
 @runtime_checkable

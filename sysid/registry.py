@@ -89,4 +89,9 @@ METHODS = {
     ("indirect", "subspace"): MethodEntry("stimsteer.sysid.subspace.estimator:SubspaceId", streaming=True),
     ("direct", "lsq"): MethodEntry("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
     ("direct", "hankel"): MethodEntry("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
+    ("indirect", "lifted"): MethodEntry("stimsteer.sysid.lifted:LiftedPredictor"),
+    ("indirect", "hammerstein"): MethodEntry("stimsteer.sysid.hammerstein:HammersteinArx"),
+    ("indirect", "recursive"): MethodEntry("stimsteer.sysid.recursive:RecursiveRidgeArx",
+                                           {"past_steps": ("output_lags", "input_lags")}),
+    ("indirect", "bootstrap"): MethodEntry("stimsteer.sysid.ensemble:BootstrapEnsemble"),
 }

@@ -45,6 +45,12 @@ def add_parser(subparsers) -> None:
     p.add_argument("--centre-outputs", action="store_true",
                    help="subspace, lsq, hankel: fit on the outputs minus their training mean (for a baseline "
                    "offset); predictions and plans stay in the recorded units (arx fits an intercept instead)")
+    p.add_argument("--bootstrap", type=whole_number(2), metavar="N",
+                   help="fit N members of the method on bootstrap resamples of the training trials (an ensemble "
+                   "with prediction intervals); prints the held-out coverage of its 95 %% intervals")
+    p.add_argument("--conditions", action="store_true",
+                   help="also report how the model changes across conditions (trial labels in the session's "
+                   "metadata 'trial_conditions'): step gains per condition with 95 %% bootstrap intervals")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
 
 
@@ -88,7 +94,7 @@ def run(args) -> int:
     """Claim the model file, fit, save it, print the selection and held-out scores; 0 on success."""
     settings = _settings(args)
     with claimed(args.out, force=args.force, command="fit"):
-        result = _fit(args, settings)
+        result, extra_lines = _fit(args, settings)
         provenance = {**result.provenance, "session_file": str(args.session)}
         save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
     split = result.split
@@ -97,6 +103,8 @@ def run(args) -> int:
     print(_selection_text(result))
     print(f"held-out scores on trials {list(split.test)} (seed {split.seed}; means over output channels):")
     print(result.heldout.to_text())
+    for line in extra_lines:
+        print(line)
     print(f"model written to {args.out}")
     return 0
 
@@ -106,8 +114,10 @@ def _fit(args, settings):
     with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
         warnings.simplefilter("always")
         try:
-            result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
+            route, method, settings = _bootstrapped(args, settings)
+            result = fit_route(session, route=route, method=method, settings=settings, seed=args.seed,
                                test_fraction=args.test_fraction, horizon_steps=args.horizon)
+            lines = _uncertainty_lines(args, result, session)
         except (InvalidParameterError, SessionError) as exc:
             # the estimator names its own settings; say which option set them
             given = [f"--{name} {value}" for name, value in (("past-steps", args.past), ("horizon-steps",
@@ -117,4 +127,38 @@ def _fit(args, settings):
             raise type(exc)(f"{exc} (the window came from {' and '.join(given)})") from None
     for w in caught:
         sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
-    return result
+    return result, lines
+
+
+def _bootstrapped(args, settings):
+    """With ``--bootstrap N``: the ensemble method wrapping the chosen one; else the method as given."""
+    n = getattr(args, "bootstrap", None)
+    if n is None:
+        return args.route, args.method, settings
+    return "indirect", "bootstrap", {"method": args.method, "method_settings": settings, "n_members": int(n)}
+
+
+def _uncertainty_lines(args, result, session) -> list:
+    """The ensemble's held-out interval coverage and, with ``--conditions``, the change across conditions."""
+    from ...sysid import IntervalForm, condition_change_table, interval_coverage
+    from ...sysid.trial_sources import _subsets
+
+    lines = []
+    pred = result.predictor
+    if isinstance(pred, IntervalForm):
+        _, test = _subsets(session, result.split, False)
+        H = int(result.provenance["horizon_steps"])
+        cov = interval_coverage(pred, test, horizon_steps=H, level=0.95)
+        lines.append(f"95 % prediction intervals ({len(pred.members_)} bootstrap members) on held-out trials, 1-{H} "
+                     "steps ahead: coverage per output " + ", ".join(
+                         f"{n} {100 * c:.1f} %" for n, c in zip(pred.output_names_, cov)) + " (aim: 95 %)")
+    if getattr(args, "conditions", False):
+        whole = session if hasattr(session, "select_trials") else session.to_session()
+        settings = dict(result.provenance.get("settings") or {})
+        inner = settings.get("method_settings") if isinstance(pred, IntervalForm) else None
+        table = condition_change_table(whole, method=args.method, method_settings=inner, seed=args.seed,
+                                       n_members=int(getattr(args, "bootstrap", None) or 20))
+        lines.append("model change across conditions (step gain after 50 samples, 95 % bootstrap interval over each "
+                     "condition's trials):")
+        lines.append(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    return lines

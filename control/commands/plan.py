@@ -61,7 +61,7 @@ class PlanRun:
 
 
 def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
-                   output_weight=1.0, input_weight=1e-3, force=False, stimulation=None) -> PlanRun:
+                   output_weight=1.0, input_weight=1e-3, force=False, stimulation=None, robust=None) -> PlanRun:
     """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
 
     Parameters
@@ -86,6 +86,9 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         The stimulation description of the model's inputs (:mod:`stimsteer.sysid.stimulation`); needed when the
         limits are physical (``[physical]``) and the model records none. Then the pulse files are written too
         (:mod:`stimsteer.control.pulse_plan`) and ``input_weight`` is per physical unit² (µA², or (mW/mm²)²).
+    robust : {"worst", "average"}, optional
+        For a bootstrap ensemble (``fit --bootstrap N``): plan robust over its members
+        (:class:`~stimsteer.control.mpc.robust.RobustPlanner`); default the ensemble's mean prediction.
 
     Returns
     -------
@@ -105,7 +108,8 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     tgt, tracked = parse_target(target, names_out, N)
     N = tgt.shape[0]
     weight = float(output_weight) * tracked.astype(float)
-    ctrl = controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
+    ctrl = _robust_planner(predictor, limits, N, weight, input_weight, robust) if robust is not None else \
+        controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
     window_of = predictor if hasattr(predictor, "past_steps_") else ctrl  # a bare model: the controller's window
     if from_trial is None:
         u_past, y_past = rest_window(window_of, len(names_in), len(names_out))
@@ -143,6 +147,19 @@ def _input_units(predictor, provenance):
     """The model's input units as recorded (empty when unknown)."""
     s = provenance.get("session", {}) if isinstance(provenance, dict) else {}
     return tuple(s.get("input_units") or getattr(predictor, "input_units_", None) or ())
+
+
+def _robust_planner(predictor, limits, N, weight, input_weight, mode):
+    """The planner robust over an ensemble's members (``--robust``); refuses a model that is not an ensemble."""
+    from ...sysid import IntervalForm, InvalidParameterError
+    from ..mpc.robust import RobustPlanner
+
+    if not isinstance(predictor, IntervalForm):
+        raise InvalidParameterError(f"--robust {mode} plans over the members of a bootstrap ensemble; this model is a "
+                                    f"single {type(predictor).__name__}. Fit it with `stimsteer fit ... --bootstrap "
+                                    "N` first.")
+    return RobustPlanner(ensemble=predictor, limits=limits, horizon_steps=N, mode=mode, output_weight=weight,
+                         input_weight=input_weight).fit()
 
 
 def _applied_before(session, index, u_past, window):
@@ -294,6 +311,9 @@ def add_parser(sub) -> None:
                    help="plan from the end of this recorded trial (default: from rest)")
     p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
     p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
+    p.add_argument("--robust", choices=["worst", "average"],
+                   help="with a model fitted with --bootstrap N: plan robust over its members, minimising the worst "
+                   "member's cost or their average (default: plan with the members' mean)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--stimulation", metavar="FILE", help="stimulation description of the model's inputs (TOML, see "
                    "stimsteer.sysid.stimulation); with physical limits, plan also writes the parameter table and "
@@ -310,7 +330,7 @@ def run(args) -> int:
     done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
                          horizon_steps=args.horizon_steps, from_trial=args.from_trial,
                          output_weight=args.output_weight, input_weight=args.input_weight, force=args.force,
-                         stimulation=args.stimulation)
+                         stimulation=args.stimulation, robust=getattr(args, "robust", None))
     print("\n".join(done.lines))
     print(f"wrote {', '.join(str(p) for p in done.files.values())}")
     print(CAUTION)

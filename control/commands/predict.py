@@ -15,6 +15,7 @@ import pandas as pd
 
 from ...sysid import InvalidParameterError, load_pattern, load_predictor, open_session_source, predict_pattern, \
     trial_end_window
+from ...sysid import IntervalForm, rest_window
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..figures.predict import prediction_figure
@@ -24,11 +25,12 @@ from .plan import trial_ref
 __all__ = ["add_parser", "prediction_table", "run", "write_prediction"]
 
 
-def prediction_table(pred) -> pd.DataFrame:
+def prediction_table(pred, intervals=None) -> pd.DataFrame:
     """Time, inputs, predicted outputs and the held-out RMSE per output, in the session table's column syntax.
 
     Columns: ``time [s] @ <rate> Hz``, ``in:<name> [<unit>]``, ``out:<name> [<unit>]`` and
-    ``rmse:<name> [<unit>]`` (the band's half-width).
+    ``rmse:<name> [<unit>]`` (the band's half-width); with ``intervals = (lower, upper)`` (each (n_samples,
+    n_outputs), an ensemble's 95 % prediction interval) also ``lo95:<name> [<unit>]`` and ``hi95:<name> [<unit>]``.
     """
     rate = 1.0 / np.median(np.diff(pred.time_s)) if pred.time_s.size > 1 else float("nan")
     cols = {f"time [s] @ {rate:.12g} Hz" if np.isfinite(rate) else "time [s]": pred.time_s}
@@ -38,10 +40,13 @@ def prediction_table(pred) -> pd.DataFrame:
         cols[f"out:{n} [{unit}]"] = pred.y[:, j]
     for j, (n, unit) in enumerate(zip(pred.output_names, pred.output_units)):
         cols[f"rmse:{n} [{unit}]"] = pred.band[:, j]
+    for tag, bound in zip(("lo95", "hi95"), intervals or ()):
+        for j, (n, unit) in enumerate(zip(pred.output_names, pred.output_units)):
+            cols[f"{tag}:{n} [{unit}]"] = bound[:, j]
     return pd.DataFrame(cols)
 
 
-def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
+def write_prediction(pred, out_dir, *, force: bool = False, intervals=None) -> dict:
     """Write ``prediction.csv`` (:func:`prediction_table`) and ``prediction.png`` into ``out_dir``, atomically.
 
     Parameters
@@ -51,6 +56,8 @@ def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
         The folder to create.
     force : bool, default False
         Replace an existing folder.
+    intervals : (ndarray, ndarray), optional
+        Lower and upper 95 % prediction interval, each (n_samples, n_outputs) (see :func:`prediction_table`).
 
     Returns
     -------
@@ -59,7 +66,7 @@ def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
     """
     out = Path(out_dir)
     with atomic_dir(out, force=force) as tmp:
-        prediction_table(pred).to_csv(tmp / "prediction.csv", index=False, float_format="%.10g")
+        prediction_table(pred, intervals).to_csv(tmp / "prediction.csv", index=False, float_format="%.10g")
         prediction_figure(pred).savefig(tmp / "prediction.png", dpi=110)
     return {"csv": out / "prediction.csv", "png": out / "prediction.png"}
 
@@ -94,6 +101,15 @@ def _score_trial(args, predictor, provenance) -> int:
     return 0
 
 
+def _intervals(predictor, past, pattern):
+    """An ensemble's 95 % prediction interval over the pattern from the same past window, else None."""
+    if not isinstance(predictor, IntervalForm):
+        return None
+    u_past, y_past = past if past is not None else rest_window(predictor, predictor.n_inputs_, predictor.n_outputs_)
+    _, lo, hi = predictor.predict_interval(u_past, y_past, pattern.u, level=0.95)
+    return lo, hi
+
+
 def run(args) -> int:
     """Run ``stimsteer predict`` from parsed arguments."""
     if (args.pattern is None) == (getattr(args, "score_trial", None) is None):
@@ -113,10 +129,13 @@ def run(args) -> int:
                 past = trial_end_window(session, index, predictor, provenance)
             start = f"the end of trial {index} of {path}"
         prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
-        files = write_prediction(prediction, args.out, force=args.force)
+        intervals = _intervals(predictor, past, pattern)
+        files = write_prediction(prediction, args.out, force=args.force, intervals=intervals)
     print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
     for note in prediction.notes:
         print(f"caution: {note}")
+    if intervals is not None:
+        print("with 95 % prediction intervals of the bootstrap ensemble (columns lo95:, hi95:)")
     print(f"wrote {files['csv']} and {files['png']}")
     print(CAUTION)
     return 0

@@ -130,7 +130,10 @@ class ControlSettings:
 def _default_methods():
     # every registered method of each route (ridge ARX and subspace; least squares and Hankel): a route is then
     # represented by its best method on the training trials (tables._with_best), not by one chosen in advance
-    return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1])))
+    # methods whose class sets ``in_default_bench = False`` (the nonlinear, recursive and ensemble methods, slower
+    # and opt-in) take part when named: BenchSettings(methods=(..., MethodSpec("indirect", "hammerstein")))
+    return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1]))
+                 if getattr(METHODS[(r, m)].cls(), "in_default_bench", True))
 
 
 @dataclass(frozen=True)

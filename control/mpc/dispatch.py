@@ -8,6 +8,7 @@ concrete class of the predictor is never looked at, so a new route that implemen
 from __future__ import annotations
 
 from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, StateSpaceForm
+from ...sysid.protocols import InputAffineForm, RecruitmentForm
 from .data import DataPredictiveController, _lacks
 from .model import ModelPredictiveController
 
@@ -55,6 +56,17 @@ def controller_for(predictor, limits, *, horizon_steps=None, output_weight=1.0, 
                                                  and predictor.has_linear_maps):
         return DataPredictiveController(predictor=predictor, limits=limits, horizon_steps=horizon_steps,
                                         output_weight=output_weight, input_weight=input_weight, **settings).fit()
+    if isinstance(predictor, InputAffineForm):  # the lifted route: F fixed, free response from the past
+        from .lifted import InputAffinePredictiveController
+        return InputAffinePredictiveController(predictor=predictor, limits=limits, horizon_steps=horizon_steps,
+                                               output_weight=output_weight, input_weight=input_weight,
+                                               **settings).fit()
+    if isinstance(predictor, RecruitmentForm):  # Hammerstein: plan in the transformed input, decode amplitudes
+        from .recruitment import RecruitmentController, recruited_limits
+        inner = controller_for(predictor.linear_part(), recruited_limits(predictor, limits),
+                               horizon_steps=horizon_steps, output_weight=output_weight, input_weight=input_weight,
+                               **settings)
+        return RecruitmentController(predictor=predictor, limits=limits, inner=inner).fit()
     raise InvalidParameterError(
         f"controller_for needs a predictor with state_space_model() (a state-space form), data_blocks() (Hankel "
         f"blocks) or prediction_maps() with has_linear_maps True (linear maps); got a {type(predictor).__name__}, "

@@ -1,0 +1,176 @@
+"""Models per condition and over sliding windows of trials, and how they change, with bootstrap intervals.
+
+Trials carry a condition label (brain state, drug, task...): given explicitly or read from the session's metadata
+``"trial_conditions"`` (one label per trial). :func:`fit_per_condition` fits one model of any registered method on
+the trials of each condition; :func:`sliding_window_fits` fits one on each window of consecutive trials (a model
+sequence over the session). :func:`condition_change_table` says how the model changes across conditions: the step
+gain of each input-output pair (the response after ``horizon_steps`` samples to a unit step from rest) with its
+bootstrap interval over the condition's trials (:mod:`stimsteer.sysid.ensemble`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .ensemble import BootstrapEnsemble, _route_of
+from .exceptions import InvalidParameterError, SessionError
+
+__all__ = ["ConditionFits", "trial_conditions", "fit_per_condition", "sliding_window_fits", "step_gains",
+           "condition_change_table", "METADATA_KEY"]
+
+#: Session metadata key holding one condition label per trial.
+METADATA_KEY = "trial_conditions"
+
+
+def trial_conditions(session, conditions=None) -> tuple:
+    """One condition label per trial: ``conditions`` if given, else the session's ``metadata["trial_conditions"]``.
+
+    Raises
+    ------
+    SessionError
+        No labels, or not one per trial.
+    """
+    labels = session.metadata.get(METADATA_KEY) if conditions is None else conditions
+    if labels is None:
+        raise SessionError(f"the session has no condition labels; give one label per trial (conditions=...) or "
+                           f"store them in its metadata under {METADATA_KEY!r}.")
+    labels = tuple(str(c) for c in labels)
+    if len(labels) != session.n_trials:
+        raise SessionError(f"condition labels must be one per trial: the session has {session.n_trials} trials and "
+                           f"{len(labels)} labels were given.")
+    return labels
+
+
+def _groups(labels, min_trials: int) -> dict:
+    groups = {}
+    for i, c in enumerate(labels):
+        groups.setdefault(c, []).append(i)
+    few = {c: len(t) for c, t in groups.items() if len(t) < min_trials}
+    if few:
+        listed = ", ".join(f"{c!r} has {n}" for c, n in few.items())
+        raise SessionError(f"too few trials per condition: {listed}; each condition needs at least {min_trials} "
+                           "trials to fit (and to resample for its interval). Record more trials of it or merge "
+                           "conditions.")
+    return groups
+
+
+@dataclass(frozen=True)
+class ConditionFits:
+    """Models fitted per condition.
+
+    Attributes
+    ----------
+    models : dict of str to fitted predictor
+    trials : dict of str to tuple of int
+        The trial indices (of the given session) each model was fitted on.
+    route, method : str
+    """
+
+    models: dict
+    trials: dict
+    route: str
+    method: str
+
+    def model_for(self, condition: str):
+        """The model of one condition (for prediction or a plan under that condition)."""
+        if condition not in self.models:
+            raise InvalidParameterError(f"no model for condition {condition!r}; fitted: {sorted(self.models)}.")
+        return self.models[condition]
+
+
+def fit_per_condition(session, *, method="arx", method_settings=None, conditions=None, min_trials=2):
+    """One model of a registered method per condition, each fitted on that condition's trials only.
+
+    Parameters
+    ----------
+    session : Session
+    method : str, default "arx"
+        Any registered method (route found from the registry).
+    method_settings : dict, optional
+    conditions : sequence of str, optional
+        One label per trial (default: the session's metadata ``"trial_conditions"``).
+    min_trials : int, default 2
+
+    Returns
+    -------
+    ConditionFits
+
+    Raises
+    ------
+    SessionError
+        Missing labels, or a condition with fewer than ``min_trials`` trials (named, with the number needed).
+    """
+    from .routes import make_estimator
+
+    route = _route_of(str(method))
+    groups = _groups(trial_conditions(session, conditions), int(min_trials))
+    models = {c: make_estimator(*route, dict(method_settings or {})).fit(session.select_trials(t))
+              for c, t in groups.items()}
+    return ConditionFits(models, {c: tuple(t) for c, t in groups.items()}, *route)
+
+
+def sliding_window_fits(session, *, method="arx", method_settings=None, window_trials=4, step_trials=1) -> list:
+    """Models fitted on windows of consecutive trials: ``[(trial indices, predictor), ...]`` in session order.
+
+    Raises
+    ------
+    InvalidParameterError
+        A window or step below 1, or a window longer than the session.
+    """
+    from .routes import make_estimator
+
+    W, S = int(window_trials), int(step_trials)
+    if W < 1 or S < 1 or W > session.n_trials:
+        raise InvalidParameterError(f"window_trials must be in [1, {session.n_trials}] and step_trials >= 1; got "
+                                    f"{window_trials!r} and {step_trials!r}.")
+    route = _route_of(str(method))
+    out = []
+    for start in range(0, session.n_trials - W + 1, S):
+        idx = tuple(range(start, start + W))
+        out.append((idx, make_estimator(*route, dict(method_settings or {})).fit(session.select_trials(idx))))
+    return out
+
+
+def step_gains(predictor, horizon_steps: int = 50) -> np.ndarray:
+    """Response after ``horizon_steps`` samples to a unit step on each input from rest, shape (p, m).
+
+    The free response from rest is subtracted, so a constant offset does not count as gain.
+    """
+    u_rest, y_rest = predictor.rest_window()
+    m, H = int(predictor.n_inputs_), int(horizon_steps)
+    base = predictor.predict(u_rest, y_rest, np.zeros((H, m)))[-1]
+    gains = np.empty((int(predictor.n_outputs_), m))
+    for j in range(m):
+        step = np.zeros((H, m))
+        step[:, j] = 1.0
+        gains[:, j] = predictor.predict(u_rest, y_rest, step)[-1] - base
+    return gains
+
+
+def condition_change_table(session, *, method="arx", method_settings=None, conditions=None, n_members=20,
+                           seed=0, horizon_steps=50, level=0.95) -> pd.DataFrame:
+    """Step gains per condition with bootstrap intervals over each condition's trials.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``condition``, ``n_trials``, ``output``, ``input``, ``step_gain`` (the condition's model fitted on
+        all its trials), ``low``, ``high`` (the ``level`` percentile interval over the bootstrap members).
+    """
+    fits = fit_per_condition(session, method=method, method_settings=method_settings, conditions=conditions)
+    q = [(1.0 - float(level)) / 2.0, (1.0 + float(level)) / 2.0]
+    rows = []
+    for k, (c, model) in enumerate(fits.models.items()):
+        ens = BootstrapEnsemble(method=method, method_settings=method_settings, n_members=n_members,
+                                seed=int(seed) + k).fit(session.select_trials(fits.trials[c]))
+        members = np.stack([step_gains(mb, horizon_steps) for mb in ens.members_])
+        point = step_gains(model, horizon_steps)
+        lo, hi = np.quantile(members, q, axis=0)
+        for i, out in enumerate(model.output_names_):
+            for j, inp in enumerate(model.input_names_):
+                rows.append({"condition": c, "n_trials": len(fits.trials[c]), "output": out, "input": inp,
+                             "step_gain": point[i, j], "low": lo[i, j], "high": hi[i, j]})
+    return pd.DataFrame(rows)

@@ -1,0 +1,61 @@
+"""Recursive ridge ARX with a forgetting factor against the batch solutions it must equal.
+
+Outside check (Ljung L. 1999, "System Identification: Theory for the User", 2nd ed., ch. 11, eqs. 11.13-11.15 and
+the weighted criterion they minimise): recursive least squares started at ``P0 = I/α`` with forgetting ``λ = 1``
+equals the batch ridge solution ``(αI + XᵀX)⁻¹XᵀY``; with ``λ < 1`` it equals the exponentially weighted ridge
+solution ``(λ^N αI + Σ λ^{N−t} φφᵀ)⁻¹ Σ λ^{N−t} φ yᵀ``. The batch side is scikit-learn's Ridge (no intercept
+fitted; the constant regressor is a column, penalised like the others) and a direct numpy solve.
+"""
+
+import numpy as np
+import pytest
+from sklearn.linear_model import Ridge
+
+from stimsteer.control import LinearNetworkPlant, random_network, record_session
+from stimsteer.sysid import InvalidParameterError
+from stimsteer.sysid.recursive import RecursiveRidgeArx, arx_rows
+
+
+@pytest.fixture(scope="module")
+def session():
+    rng = np.random.default_rng(21)
+    plant = LinearNetworkPlant(random_network(3, density=0.6, seed=21), B=rng.normal(size=(3, 2)) * 0.3,
+                               C=np.eye(2, 3), measurement_noise_std=0.05, sample_rate_hz=100.0)
+    return record_session(plant, rng.normal(size=(900, 2)), trials=[(k * 150, (k + 1) * 150) for k in range(6)],
+                          seed=21)
+
+
+def _rows(session, na, nb):
+    parts = [arx_rows(*session.read(a, b)[:2], na, nb) for a, b in session.segments(min_length=max(na, nb - 1) + 1)]
+    return np.vstack([x for x, _ in parts]), np.vstack([y for _, y in parts])
+
+
+def test_forgetting_one_equals_the_batch_ridge_solution(session):
+    est = RecursiveRidgeArx(output_lags=2, input_lags=3, alpha=0.5, forgetting=1.0).fit(session)
+    X, Y = _rows(session, 2, 3)
+    ref = Ridge(alpha=0.5, fit_intercept=False, solver="cholesky").fit(X, Y).coef_.T
+    np.testing.assert_allclose(est.coef_, ref, rtol=0, atol=1e-10)
+
+
+def test_forgetting_below_one_equals_the_weighted_ridge_solution(session):
+    lam, alpha = 0.99, 0.5
+    est = RecursiveRidgeArx(output_lags=1, input_lags=1, alpha=alpha, forgetting=lam).fit(session)
+    X, Y = _rows(session, 1, 1)
+    N = len(X)
+    w = lam ** (N - 1 - np.arange(N))
+    ref = np.linalg.solve(lam ** N * alpha * np.eye(X.shape[1]) + (X * w[:, None]).T @ X, (X * w[:, None]).T @ Y)
+    np.testing.assert_allclose(est.coef_, ref, rtol=1e-8, atol=1e-10)
+
+
+def test_the_model_sequence_holds_one_model_per_trial_ending_with_the_final_one(session):
+    est = RecursiveRidgeArx(output_lags=2, input_lags=2).fit(session)
+    assert est.coef_path_.shape[0] == session.n_trials and list(est.path_trials_) == list(range(session.n_trials))
+    np.testing.assert_array_equal(est.coef_path_[-1], est.coef_)
+    up, yp, uf = session.u[:3], session.y[:3], session.u[3:12]
+    np.testing.assert_allclose(est.prediction_maps(3, 9).apply(up, yp, uf), est.predict(up, yp, uf), atol=1e-10)
+
+
+@pytest.mark.parametrize("value", [0.0, -0.5, 1.01, float("nan")])
+def test_a_forgetting_factor_outside_zero_one_is_refused(session, value):
+    with pytest.raises(InvalidParameterError, match=r"forgetting must be in \(0, 1\]"):
+        RecursiveRidgeArx(forgetting=value).fit(session)

@@ -1,0 +1,89 @@
+"""Bootstrap ensembles: prediction intervals that cover, the mean's linear maps, files, robust plans, bad input."""
+
+import warnings
+
+import numpy as np
+import pytest
+
+from stimsteer.control import LinearNetworkPlant, StimLimits, record_session
+from stimsteer.control.mpc.robust import RobustPlanner
+from stimsteer.sysid import InvalidParameterError, SessionError, load_predictor, save_predictor
+from stimsteer.sysid.ensemble import BootstrapEnsemble, interval_coverage
+
+ARX = {"output_lags": 2, "input_lags": 2, "delay_samples": 0, "alphas": (1e-3,)}
+
+
+@pytest.fixture(scope="module")
+def split():
+    plant = LinearNetworkPlant(np.array([[0.9, 0.2], [-0.15, 0.75]]), np.array([[1.0], [0.5]]),
+                               np.array([[1.0, 0.0]]), sample_rate_hz=100.0, process_noise_std=0.05,
+                               measurement_noise_std=0.1)
+    u = np.random.default_rng(1).normal(size=(14 * 200, 1))
+    s = record_session(plant, u, trials=[(k * 200, (k + 1) * 200) for k in range(14)], seed=1)
+    return s.select_trials(range(10)), s.select_trials(range(10, 14))
+
+
+@pytest.fixture(scope="module")
+def ensemble(split):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return BootstrapEnsemble(method="arx", method_settings=ARX, n_members=8, seed=2).fit(split[0])
+
+
+def test_95_percent_intervals_cover_about_95_percent_of_held_out_samples(ensemble, split):
+    coverage = interval_coverage(ensemble, split[1], horizon_steps=15, level=0.95)
+    assert 0.88 <= coverage[0] <= 0.99
+    narrow = interval_coverage(ensemble, split[1], horizon_steps=15, level=0.5)
+    assert narrow[0] < coverage[0] - 0.2  # the level is honoured, not a fixed band
+
+
+def test_the_mean_prediction_has_the_mean_of_the_members_maps(ensemble, split):
+    test = split[1]
+    up, yp, uf = test.u[:4], test.y[:4], test.u[4:14]
+    assert ensemble.has_linear_maps
+    np.testing.assert_allclose(ensemble.prediction_maps(4, 10).apply(up, yp, uf), ensemble.predict(up, yp, uf),
+                               atol=1e-10)
+    mean, lo, hi = ensemble.predict_interval(up, yp, uf)
+    assert np.all(lo <= mean) and np.all(mean <= hi)
+
+
+def test_a_saved_ensemble_gives_the_same_intervals(ensemble, split, tmp_path):
+    save_predictor(ensemble, tmp_path / "ens.h5", provenance={})
+    back, _ = load_predictor(tmp_path / "ens.h5")
+    test = split[1]
+    args = test.u[:4], test.y[:4], test.u[4:14]
+    for a, b in zip(back.predict_interval(*args), ensemble.predict_interval(*args)):
+        np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.parametrize("mode", ["worst", "average"])
+def test_robust_plans_keep_the_hard_limits_and_rank_their_own_cost_first(ensemble, mode):
+    lim = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.5, slew_max_ua=0.4, n_inputs=1)
+    planner = RobustPlanner(ensemble=ensemble, limits=lim, horizon_steps=10, mode=mode).fit()
+    assert planner.problem_.is_dpp()
+    up, yp = ensemble.rest_window()
+    plans = {m: RobustPlanner(ensemble=ensemble, limits=lim, horizon_steps=10, mode=m).fit()
+             .plan(up, yp, target=np.array([2.0]), last_input=np.zeros(1)) for m in ("worst", "average")}
+    plan = plans[mode]
+    assert plan.ok and not any(lim.violations(plan.inputs, np.zeros(1)).values())
+    other = plans["average" if mode == "worst" else "worst"]
+    key = "worst_member_tracking" if mode == "worst" else "mean_member_tracking"
+    # each plan is optimal for its own criterion (input effort is small next to tracking here)
+    assert plan.cost_terms[key] <= other.cost_terms[key] + 1e-3 * abs(other.cost_terms[key])
+
+
+def test_robust_plans_refuse_what_they_cannot_keep(ensemble):
+    lim = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, energy_budget_ua2=4.0, n_inputs=1)
+    with pytest.raises(InvalidParameterError, match="energy budget or output bounds"):
+        RobustPlanner(ensemble=ensemble, limits=lim, horizon_steps=5).fit()
+    ok = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=1)
+    with pytest.raises(InvalidParameterError, match="worst case or average"):
+        RobustPlanner(ensemble=ensemble, limits=ok, horizon_steps=5, mode="best").fit()
+
+
+def test_the_bootstrap_needs_two_trials_and_a_known_method(split):
+    one = split[0].select_trials([0])
+    with pytest.raises(SessionError, match="at least 2 trials"):
+        BootstrapEnsemble(method="arx", method_settings=ARX, n_members=3).fit(one)
+    with pytest.raises(InvalidParameterError, match="registered method"):
+        BootstrapEnsemble(method="nope").fit(split[0])
