@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ...sysid import (StateSpaceForm, load_predictor, open_session_source, rest_window,
+from ...sysid import (StateSpaceForm, StimsteerError, load_predictor, open_session_source, rest_window,
                       trial_end_window)
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable, versions
@@ -31,6 +31,7 @@ from ..figures.plan import plan_figure
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
+from ..mpc.output_ranges import FLAG_FRACTION, check_flag_fraction, output_ranges, recorded_output_range
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
 
@@ -60,7 +61,7 @@ class PlanRun:
 
 
 def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
-                   output_weight=1.0, input_weight=1e-3, force=False) -> PlanRun:
+                   output_weight=1.0, input_weight=1e-3, force=False, flag_fraction=FLAG_FRACTION) -> PlanRun:
     """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
 
     Parameters
@@ -81,11 +82,15 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         Scalar weights; outputs not named in the target get weight 0.
     force : bool
         Replace an existing output folder.
+    flag_fraction : float, default :data:`stimsteer.control.mpc.output_ranges.FLAG_FRACTION`
+        An untargeted output whose predicted move exceeds this fraction of its recorded range is flagged (console,
+        figure and ``plan.json``'s ``output_ranges``).
 
     Returns
     -------
     PlanRun
     """
+    check_flag_fraction(flag_fraction)
     predictor, provenance = load_predictor(model_path)
     limits = load_limits(limits_path)
     names_in, names_out, units, rate = _channels(predictor, provenance)
@@ -107,16 +112,49 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
             u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
         start = f"the end of trial {index} of {path}"
     plan = ctrl.plan(u_past, y_past, target=tgt)
+    recorded, recorded_from = _recorded_range(model_path, provenance, from_trial)
+    ranges = output_ranges(plan, np.asarray(y_past)[-1], units=units, targeted=tracked, recorded=recorded,
+                           recorded_from=recorded_from, flag_fraction=flag_fraction)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
              "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
-             "method": getattr(ctrl, "method_", "model")}
+             "method": getattr(ctrl, "method_", "model"), "what": _what(provenance, ctrl)}
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
-                       force=force)
+                       force=force, ranges=ranges)
     lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
              f"{type(ctrl).__name__} ({extra['method']}): status {plan.status}, {plan.solver}, "
              f"{1e3 * plan.solve_time_s:.1f} ms"]
-    return PlanRun(plan=plan, files=files, lines=tuple(lines + _notes(plan, provenance)))
+    return PlanRun(plan=plan, files=files, lines=tuple(lines + _notes(plan, provenance) + ranges.lines()))
+
+
+def _what(provenance, ctrl) -> str:
+    """The route, method and controller of a plan, for its title: "direct route, hankel (HankelPredictor),
+    DataPredictiveController"."""
+    prov = provenance if isinstance(provenance, dict) else {}
+    route, method, estimator = (prov.get(k) for k in ("route", "method", "estimator"))
+    fitted = f"{route} route, {method} ({estimator})" if route and method else "a saved model"
+    return f"{fitted} with {type(ctrl).__name__}"
+
+
+def _recorded_range(model_path, provenance, from_trial):
+    """The outputs' recorded range from the session the model was fitted on (its file as the model records it,
+    else beside the model file), else from the ``--from-trial`` session; ``(None, why)`` when neither is readable."""
+    given = provenance.get("session_file") if isinstance(provenance, dict) else None
+    candidates = []
+    if given:
+        candidates += [Path(given), Path(model_path).parent / Path(given).name]
+    if from_trial is not None:
+        candidates.append(Path(from_trial[0]))
+    for path in candidates:
+        if path.is_file():
+            try:
+                with open_session_source(path) as session:
+                    return recorded_output_range(session), f"the session {path}"
+            except (StimsteerError, OSError):
+                continue
+    why = f"nowhere: the fitted session {given} is not readable here" if given else \
+        "nowhere: the model file names no session"
+    return None, why + "; untargeted outputs are not flagged (give --from-trial SESSION:INDEX to read one)"
 
 
 def _applied_before(session, index, u_past, window):
@@ -175,7 +213,7 @@ def _channels(predictor, provenance):
 
 
 def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
-               force=False) -> dict:
+               force=False, ranges=None) -> dict:
     """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
 
     Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [uA]``, ``out:<name> [<unit>]`` predicted,
@@ -208,13 +246,16 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     table.update({f"lower:{n} [uA]": lb[:, i] for i, n in enumerate(plan.input_names)})
     table.update({f"upper:{n} [uA]": ub[:, i] for i, n in enumerate(plan.input_names)})
     summary = jsonable({**plan.to_dict(), **(extra or {})})
+    if ranges is not None:  # every output's predicted range and the flag on untargeted ones (issue 18)
+        summary["output_ranges"] = jsonable(ranges.to_dict())
     head = _status_lines(plan)
     with atomic_dir(out_dir, force=force) as tmp:
         for name, frame in (("plan.csv", table), ("plan_pattern.csv", {time_col: t, **ins})):
             with open(tmp / name, "w", encoding="utf-8", newline="") as fh:
                 fh.write(head)
                 pd.DataFrame(frame).to_csv(fh, index=False, float_format="%.10g", lineterminator="\n")
-        plan_figure(plan, t, units, tracked).savefig(tmp / "plan.png", dpi=110)
+        plan_figure(plan, t, units, tracked, ranges=ranges, what=(extra or {}).get("what", "")).savefig(
+            tmp / "plan.png", dpi=110)
         (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
     return {k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"), ("png", "plan.png"),
                                         ("json", "plan.json"))}
@@ -260,13 +301,17 @@ def add_parser(sub) -> None:
     p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
     p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--flag-fraction", type=float, default=FLAG_FRACTION, dest="flag_fraction", metavar="F",
+                   help="flag an untargeted output whose predicted move exceeds this fraction of its recorded range "
+                   f"(default {FLAG_FRACTION})")
 
 
 def run(args) -> int:
     """Run ``stimsteer plan`` from parsed arguments."""
     done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
                          horizon_steps=args.horizon_steps, from_trial=args.from_trial,
-                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force)
+                         output_weight=args.output_weight, input_weight=args.input_weight, force=args.force,
+                         flag_fraction=args.flag_fraction)
     print("\n".join(done.lines))
     print(f"wrote {', '.join(str(p) for p in done.files.values())}")
     print(CAUTION)
