@@ -248,6 +248,8 @@ def summarize(result: BenchResult) -> list[str]:
     lines = [f"Recommendation: {recommendation(result)}"]
     if result.plant == "surrogate" and not result.control.empty:
         lines.append(_standin_line(result))
+    elif not result.control.empty:
+        lines.append("Closed loops ran on the session's ground-truth plant (a simulated session).")
     p = result.provenance["session"]
     n_test = len(result.splits[0].test)
     lines.append(f"Data: {p['n_trials']} trials at {p['sample_rate_hz']:g} Hz, {len(p['input_names'])} input(s), "
