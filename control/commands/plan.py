@@ -27,6 +27,7 @@ from ...sysid import (StateSpaceForm, StimsteerError, load_predictor, open_sessi
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
+from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
@@ -128,12 +129,9 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
 
 
 def _what(provenance, ctrl) -> str:
-    """The route, method and controller of a plan, for its title: "direct route, hankel (HankelPredictor),
+    """The route, method and controller of a plan, for its title: "direct route, hankel (HankelPredictor) with
     DataPredictiveController"."""
-    prov = provenance if isinstance(provenance, dict) else {}
-    route, method, estimator = (prov.get(k) for k in ("route", "method", "estimator"))
-    fitted = f"{route} route, {method} ({estimator})" if route and method else "a saved model"
-    return f"{fitted} with {type(ctrl).__name__}"
+    return f"{fitted_what(provenance)} with {type(ctrl).__name__}"
 
 
 def _recorded_range(model_path, provenance, from_trial):

@@ -17,6 +17,7 @@ from ...sysid import InvalidParameterError, load_pattern, load_predictor, open_s
     trial_end_window
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
+from ..figures._titles import fitted_what
 from ..figures.predict import prediction_figure
 from ._common import claimed
 from .plan import trial_ref
@@ -41,7 +42,7 @@ def prediction_table(pred) -> pd.DataFrame:
     return pd.DataFrame(cols)
 
 
-def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
+def write_prediction(pred, out_dir, *, force: bool = False, what: str = "") -> dict:
     """Write ``prediction.csv`` (:func:`prediction_table`) and ``prediction.png`` into ``out_dir``, atomically.
 
     Parameters
@@ -51,6 +52,8 @@ def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
         The folder to create.
     force : bool, default False
         Replace an existing folder.
+    what : str, optional
+        The model and route, for the figure's title (:func:`stimsteer.control.figures._titles.fitted_what`).
 
     Returns
     -------
@@ -60,7 +63,7 @@ def write_prediction(pred, out_dir, *, force: bool = False) -> dict:
     out = Path(out_dir)
     with atomic_dir(out, force=force) as tmp:
         prediction_table(pred).to_csv(tmp / "prediction.csv", index=False, float_format="%.10g")
-        prediction_figure(pred).savefig(tmp / "prediction.png", dpi=110)
+        prediction_figure(pred, what=what).savefig(tmp / "prediction.png", dpi=110)
     return {"csv": out / "prediction.csv", "png": out / "prediction.png"}
 
 
@@ -113,7 +116,7 @@ def run(args) -> int:
                 past = trial_end_window(session, index, predictor, provenance)
             start = f"the end of trial {index} of {path}"
         prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
-        files = write_prediction(prediction, args.out, force=args.force)
+        files = write_prediction(prediction, args.out, force=args.force, what=fitted_what(provenance))
     print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
     for note in prediction.notes:
         print(f"caution: {note}")
