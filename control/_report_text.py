@@ -121,9 +121,11 @@ def difference_table(result: BenchResult) -> pd.DataFrame:
         verdict = "withheld: stand-in plant below the quality needed" if withheld else \
             reading_verdict(pair["better"], n) if pair is not None else "not paired"
         diff = "" if pair is None else fmt_interval(pair["mean_difference"], pair["ci_low"], pair["ci_high"], fmt)
+        shown = (lambda r: fmt_interval(r["mean"], r["ci_low"], r["ci_high"], fmt)) if not withheld else \
+            (lambda r: "withheld")
+        diff = "withheld" if withheld else diff
         rows.append({"question": question, "measure": f"{measure} [{unit}]" if unit else measure,
-                     "indirect": fmt_interval(ra["mean"], ra["ci_low"], ra["ci_high"], fmt),
-                     "direct": fmt_interval(rb["mean"], rb["ci_low"], rb["ci_high"], fmt),
+                     "indirect": shown(ra), "direct": shown(rb),
                      "direct − indirect": diff, "practical margin": _margin_text(metric, ra["mean"]),
                      "splits": n, "verdict": verdict})
         keys.append((metric, "withheld" if withheld else (pair["better"] if pair is not None else ""), n))
@@ -164,15 +166,21 @@ def recommendation(result: BenchResult) -> str:
         figures = "; ".join(p for p in parts if p)
         return (f"No route can be recommended yet: {n} split(s) are too few to tell (this report needs at least "
                 f"{MIN_SPLITS_TO_TELL}); on these splits {figures}. Rerun the benchmark with at least "
-                f"{MIN_SPLITS_TO_TELL} splits before choosing." + (f" The closed-loop comparison is withheld: "
-                                                                    f"{withheld}." if withheld else ""))
+                f"{MIN_SPLITS_TO_TELL} splits before choosing." + (f" {_withheld_short(result)}" if withheld else ""))
     parts = [_use_phrase(result, "r2_last", f"prediction {H} steps ahead", a, b)]
     if control and not withheld:
         parts.append(_use_phrase(result, "tracking_rms", "closed-loop control", a, b))
     text = "Use " + "; and ".join(p for p in parts if p) + "."
     if withheld:
-        text += f" No recommendation for control: {withheld}."
+        text += f" {_withheld_short(result)}"
     return text
+
+
+def _withheld_short(result: BenchResult) -> str:
+    r2 = result.standin_r2()
+    quality = f"its own free-run R² {r2:.2f} is below {STANDIN_MIN_R2:g}" if np.isfinite(r2) else \
+        "its own quality could not be scored"
+    return f"No recommendation for control: the closed loops ran on a stand-in plant and {quality}."
 
 
 def _figures_only(result, metric, a, b, what) -> str:

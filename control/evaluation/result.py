@@ -138,6 +138,9 @@ class BenchResult:
         r2 = self.standin_r2()
         if r2 >= STANDIN_MIN_R2:
             return ""
+        if not r2 == r2:  # NaN: the stand-in's own quality could not be scored
+            return ("the closed loops ran on a stand-in plant whose own quality on the trials it never saw could not "
+                    "be scored, so its tracking says nothing certain about the recording")
         return (f"the closed loops ran on a stand-in plant fitted to the recording, whose own free-run R² on the "
                 f"trials it never saw is {r2:.2f}, below {STANDIN_MIN_R2:g}: a controller's tracking on it says too "
                 "little about the recording to compare the routes")

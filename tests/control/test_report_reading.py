@@ -154,17 +154,18 @@ def test_a_poor_stand_in_plant_is_stated_first_and_the_control_comparison_withhe
                                provenance={**result.provenance, "plant": "surrogate: ridge ARX"})
     assert "0.29" in poor.control_withheld and f"below {STANDIN_MIN_R2:g}" in poor.control_withheld
     rec = recommendation(poor)
-    assert "withheld" in rec and "RMS tracking error" not in rec
+    assert "No recommendation for control" in rec and "0.29 is below 0.5" in rec and "RMS tracking error" not in rec
     diff = difference_table(poor)
     control = diff["question"].str.startswith(("closed-loop", "stimulation energy"))
     assert control.any() and diff.loc[control, "verdict"].str.startswith("withheld").all()
+    assert (diff.loc[control, ["indirect", "direct", "direct − indirect"]] == "withheld").all().all()
     assert not {"closed_loop", "tracking_vs_energy"} & set(fb.report_figures(poor))
     write_bench(poor, tmp_path / "run")
     text = (tmp_path / "run" / "report.html").read_text(encoding="utf-8")
     assert text.index("class='standin'") < text.index("class='recommendation'")
     assert "a richer model class" not in text
     good = dataclasses.replace(poor, surrogate=pd.DataFrame({"split": [0, 1], "r2_freerun": [0.8, 0.9]}))
-    assert good.control_withheld == "" and "withheld" not in recommendation(good)
+    assert good.control_withheld == "" and "No recommendation for control" not in recommendation(good)
 
 
 # ------------------------------------------------------------------------------------------------ the figures
