@@ -120,7 +120,8 @@ def difference_table(result: BenchResult) -> pd.DataFrame:
         n = int(pair["n"]) if pair is not None else int(ra["n"])
         verdict = "withheld: stand-in plant below the quality needed" if withheld else \
             reading_verdict(pair["better"], n) if pair is not None else "not paired"
-        diff = "" if pair is None else fmt_interval(pair["mean_difference"], pair["ci_low"], pair["ci_high"], fmt)
+        dfmt = "{:.2g}" if metric.startswith("r2") else fmt  # small R² differences keep their digits, not -0.000
+        diff = "" if pair is None else fmt_interval(pair["mean_difference"], pair["ci_low"], pair["ci_high"], dfmt)
         shown = (lambda r: fmt_interval(r["mean"], r["ci_low"], r["ci_high"], fmt)) if not withheld else \
             (lambda r: "withheld")
         diff = "withheld" if withheld else diff
@@ -143,7 +144,8 @@ def _use_phrase(result, metric, use, a, b) -> str:
     unit = result.steered_unit if metric == "tracking_rms" else ""
     name = "R²" if metric.startswith("r2") else "RMS tracking error"
     figures = f"{name} {fmt.format(ra['mean'])} indirect vs {fmt.format(rb['mean'])} direct{' ' + unit if unit else ''}"
-    diff = fmt_interval(pair["mean_difference"], pair["ci_low"], pair["ci_high"], fmt, unit)
+    diff = fmt_interval(pair["mean_difference"], pair["ci_low"], pair["ci_high"],
+                        "{:.2g}" if metric.startswith("r2") else fmt, unit)
     if pair["better"] in ("direct", "indirect"):
         who = route_name(result, b if pair["better"] == "direct" else a)
         return f"the {who} route for {use} ({figures}; difference {diff})"

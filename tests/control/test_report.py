@@ -122,13 +122,13 @@ def test_summary_is_generated_from_the_numbers(result):
     sweeps = five.sweeps.copy()
     sweeps.loc[(sweeps["sweep"] == "base") & (sweeps["metric"] == "r2_last"), "mean"] = 0.123456
     changed = summarize(dataclasses.replace(five, comparison=comp, sweeps=sweeps))
-    assert "direct − indirect 0.250 [0.125, 0.375]: direct route better" in "\n".join(changed)
+    assert "direct − indirect 0.25 [0.12, 0.38]: direct route better" in "\n".join(changed)
     H = result.settings.horizon_steps
     assert changed[0].startswith(f"Recommendation: Use the direct (lsq) route for prediction {H} steps ahead (R² ")
     assert "0.123 [" in "\n".join(changed)
     comp.loc[sel, ["ci_low", "better"]] = [-0.125, "neither"]
     neither = summarize(dataclasses.replace(five, comparison=comp))
-    assert "0.250 [-0.125, 0.375]: no difference shown (the interval contains 0)" in "\n".join(neither)
+    assert "0.25 [-0.12, 0.38]: no difference shown (the interval contains 0)" in "\n".join(neither)
     assert "either route for prediction" in neither[0]
 
 
