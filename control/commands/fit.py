@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import warnings
 
 from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, open_session_source, save_predictor
+from ...sysid._files import atomic_path
 from ._common import claimed, whole_number
 
 __all__ = ["add_parser", "run"]
@@ -52,6 +54,9 @@ def add_parser(subparsers) -> None:
                    help="also report how the model changes across conditions (trial labels in the session's "
                    "metadata 'trial_conditions'): step gains per condition with 95 %% bootstrap intervals")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
+    p.add_argument("--order-figure", dest="order_figure", metavar="PNG",
+                   help="also write the order choice as a figure: held-out error against order beside the singular "
+                   "values (methods that choose an order, e.g. subspace)")
 
 
 def _settings(args) -> dict:
@@ -93,10 +98,16 @@ def _selection_text(result) -> str:
 def run(args) -> int:
     """Claim the model file, fit, save it, print the selection and held-out scores; 0 on success."""
     settings = _settings(args)
-    with claimed(args.out, force=args.force, command="fit"):
+    figure_path = getattr(args, "order_figure", None)
+    with claimed(args.out, force=args.force, command="fit"), \
+            _maybe_claimed(figure_path, args.force):
         result, extra_lines = _fit(args, settings)
+        figure = _order_figure(result) if figure_path else None  # refused before anything is written
         provenance = {**result.provenance, "session_file": str(args.session)}
         save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
+        if figure is not None:
+            with atomic_path(figure_path) as tmp:
+                figure.savefig(tmp, dpi=110, format="png")
     split = result.split
     print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
     print("selection (training trials only):")
@@ -107,6 +118,19 @@ def run(args) -> int:
         print(line)
     print(f"model written to {args.out}")
     return 0
+
+
+def _maybe_claimed(path, force):
+    """Claim the order figure's file too when one is asked for."""
+    return claimed(path, force=force, command="fit") if path else contextlib.nullcontext()
+
+
+def _order_figure(result):
+    """The order choice of the fit as a figure (:func:`stimsteer.control.figures.fit.order_choice_figure`)."""
+    from ..figures._titles import fitted_what
+    from ..figures.fit import order_choice_figure
+
+    return order_choice_figure(result.selection_table, what=fitted_what(result.provenance))
 
 
 def _fit(args, settings):

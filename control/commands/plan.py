@@ -22,16 +22,18 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ...sysid import (StateSpaceForm, load_predictor, open_session_source, rest_window,
+from ...sysid import (StateSpaceForm, StimsteerError, load_predictor, open_session_source, rest_window,
                       trial_end_window)
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
+from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
 from .._plan_physical import plan_limits
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
+from ..mpc.output_ranges import FLAG_FRACTION, check_flag_fraction, output_ranges, recorded_output_range
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
 
@@ -61,7 +63,8 @@ class PlanRun:
 
 
 def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=None, from_trial=None,
-                   output_weight=1.0, input_weight=1e-3, force=False, stimulation=None, robust=None) -> PlanRun:
+                   output_weight=1.0, input_weight=1e-3, force=False, stimulation=None, robust=None,
+                   flag_fraction=FLAG_FRACTION) -> PlanRun:
     """Load a saved predictor and a limits file, plan towards a target, and write the plan folder.
 
     Parameters
@@ -89,11 +92,15 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     robust : {"worst", "average"}, optional
         For a bootstrap ensemble (``fit --bootstrap N``): plan robust over its members
         (:class:`~stimsteer.control.mpc.robust.RobustPlanner`); default the ensemble's mean prediction.
+    flag_fraction : float, default :data:`stimsteer.control.mpc.output_ranges.FLAG_FRACTION`
+        An untargeted output whose predicted move exceeds this fraction of its recorded range is flagged (console,
+        figure and ``plan.json``'s ``output_ranges``).
 
     Returns
     -------
     PlanRun
     """
+    check_flag_fraction(flag_fraction)
     predictor, provenance = load_predictor(model_path)
     names_in, names_out, units, rate = _channels(predictor, provenance)
     limits, physical = plan_limits(limits_path, stimulation, provenance, rate=rate, names_in=names_in,
@@ -123,14 +130,17 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     if physical is not None:
         physical.u_past = np.asarray(u_past, np.float64)
     plan = ctrl.plan(u_past, y_past, target=tgt)
+    recorded, recorded_from = _recorded_range(model_path, provenance, from_trial)
+    ranges = output_ranges(plan, np.asarray(y_past)[-1], units=units, targeted=tracked, recorded=recorded,
+                           recorded_from=recorded_from, flag_fraction=flag_fraction)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
              "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
-             "method": getattr(ctrl, "method_", "model")}
+             "method": getattr(ctrl, "method_", "model"), "what": _what(provenance, ctrl)}
     if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
         extra["limits_input_units"] = list(physical.mapping.model_units())
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
-                       force=force, physical=physical,
+                       force=force, physical=physical, ranges=ranges,
                        input_units=(physical.mapping.model_units() if physical is not None else
                                     _input_units(predictor, provenance) or None))
     lines = [f"planned {N} steps ({N / rate:.4g} s) of {len(names_in)} input(s) from {start} with "
@@ -140,7 +150,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         lines.append(f"pulses: {physical.record['status']}; checks "
                      f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
-    return PlanRun(plan=plan, files=files, lines=tuple(lines + notes))
+    return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
 
 
 def _input_units(predictor, provenance):
@@ -160,6 +170,33 @@ def _robust_planner(predictor, limits, N, weight, input_weight, mode):
                                     "N` first.")
     return RobustPlanner(ensemble=predictor, limits=limits, horizon_steps=N, mode=mode, output_weight=weight,
                          input_weight=input_weight).fit()
+
+
+def _what(provenance, ctrl) -> str:
+    """The route, method and controller of a plan, for its title: "direct route, hankel (HankelPredictor) with
+    DataPredictiveController"."""
+    return f"{fitted_what(provenance)} with {type(ctrl).__name__}"
+
+
+def _recorded_range(model_path, provenance, from_trial):
+    """The outputs' recorded range from the session the model was fitted on (its file as the model records it,
+    else beside the model file), else from the ``--from-trial`` session; ``(None, why)`` when neither is readable."""
+    given = provenance.get("session_file") if isinstance(provenance, dict) else None
+    candidates = []
+    if given:
+        candidates += [Path(given), Path(model_path).parent / Path(given).name]
+    if from_trial is not None:
+        candidates.append(Path(from_trial[0]))
+    for path in candidates:
+        if path.is_file():
+            try:
+                with open_session_source(path) as session:
+                    return recorded_output_range(session), f"the session {path}"
+            except (StimsteerError, OSError):
+                continue
+    why = f"nowhere: the fitted session {given} is not readable here" if given else \
+        "nowhere: the model file names no session"
+    return None, why + "; untargeted outputs are not flagged (give --from-trial SESSION:INDEX to read one)"
 
 
 def _applied_before(session, index, u_past, window):
@@ -218,7 +255,7 @@ def _channels(predictor, provenance):
 
 
 def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracked=None, extra=None,
-               force=False, physical=None, input_units=None) -> dict:
+               force=False, physical=None, input_units=None, ranges=None) -> dict:
     """Write a plan to a folder: table, stimulation pattern, figure and summary, atomically.
 
     Files: ``plan.csv`` (``time [s] @ <rate> Hz``, ``in:<name> [<input unit>]`` (``input_units``, default uA),
@@ -254,13 +291,16 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
     table.update({f"lower:{n} [{iu[i]}]": lb[:, i] for i, n in enumerate(plan.input_names)})
     table.update({f"upper:{n} [{iu[i]}]": ub[:, i] for i, n in enumerate(plan.input_names)})
     summary = jsonable({**plan.to_dict(), **(extra or {})})
+    if ranges is not None:  # every output's predicted range and the flag on untargeted ones (issue 18)
+        summary["output_ranges"] = jsonable(ranges.to_dict())
     head = _status_lines(plan)
     with atomic_dir(out_dir, force=force) as tmp:
         for name, frame in (("plan.csv", table), ("plan_pattern.csv", {time_col: t, **ins})):
             with open(tmp / name, "w", encoding="utf-8", newline="") as fh:
                 fh.write(head)
                 pd.DataFrame(frame).to_csv(fh, index=False, float_format="%.10g", lineterminator="\n")
-        plan_figure(plan, t, units, tracked).savefig(tmp / "plan.png", dpi=110)
+        plan_figure(plan, t, units, tracked, ranges=ranges, what=(extra or {}).get("what", "")).savefig(
+            tmp / "plan.png", dpi=110)
         pulse_files = {}
         if physical is not None:  # the pulse files and their checks (stimsteer.control.pulse_plan)
             base = {k: (extra or {}).get(k) for k in ("model_file", "model_sha256", "session_content_hash",
@@ -318,6 +358,9 @@ def add_parser(sub) -> None:
     p.add_argument("--stimulation", metavar="FILE", help="stimulation description of the model's inputs (TOML, see "
                    "stimsteer.sysid.stimulation); with physical limits, plan also writes the parameter table and "
                    "the pulse list (CSV, NWB) with every safety check")
+    p.add_argument("--flag-fraction", type=float, default=FLAG_FRACTION, dest="flag_fraction", metavar="F",
+                   help="flag an untargeted output whose predicted move exceeds this fraction of its recorded range "
+                   f"(default {FLAG_FRACTION})")
 
 
 def _delivered(done) -> bool:
@@ -330,7 +373,8 @@ def run(args) -> int:
     done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
                          horizon_steps=args.horizon_steps, from_trial=args.from_trial,
                          output_weight=args.output_weight, input_weight=args.input_weight, force=args.force,
-                         stimulation=args.stimulation, robust=getattr(args, "robust", None))
+                         stimulation=args.stimulation, robust=getattr(args, "robust", None),
+                         flag_fraction=args.flag_fraction)
     print("\n".join(done.lines))
     print(f"wrote {', '.join(str(p) for p in done.files.values())}")
     print(CAUTION)

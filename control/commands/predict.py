@@ -18,6 +18,7 @@ from ...sysid import InvalidParameterError, load_pattern, load_predictor, open_s
 from ...sysid import IntervalForm, rest_window
 from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
+from ..figures._titles import fitted_what
 from ..figures.predict import prediction_figure
 from ._common import claimed
 from .plan import trial_ref
@@ -46,7 +47,7 @@ def prediction_table(pred, intervals=None) -> pd.DataFrame:
     return pd.DataFrame(cols)
 
 
-def write_prediction(pred, out_dir, *, force: bool = False, intervals=None) -> dict:
+def write_prediction(pred, out_dir, *, force: bool = False, intervals=None, what: str = "") -> dict:
     """Write ``prediction.csv`` (:func:`prediction_table`) and ``prediction.png`` into ``out_dir``, atomically.
 
     Parameters
@@ -58,6 +59,8 @@ def write_prediction(pred, out_dir, *, force: bool = False, intervals=None) -> d
         Replace an existing folder.
     intervals : (ndarray, ndarray), optional
         Lower and upper 95 % prediction interval, each (n_samples, n_outputs) (see :func:`prediction_table`).
+    what : str, optional
+        The model and route, for the figure's title (:func:`stimsteer.control.figures._titles.fitted_what`).
 
     Returns
     -------
@@ -67,7 +70,7 @@ def write_prediction(pred, out_dir, *, force: bool = False, intervals=None) -> d
     out = Path(out_dir)
     with atomic_dir(out, force=force) as tmp:
         prediction_table(pred, intervals).to_csv(tmp / "prediction.csv", index=False, float_format="%.10g")
-        prediction_figure(pred).savefig(tmp / "prediction.png", dpi=110)
+        prediction_figure(pred, what=what).savefig(tmp / "prediction.png", dpi=110)
     return {"csv": out / "prediction.csv", "png": out / "prediction.png"}
 
 
@@ -130,7 +133,8 @@ def run(args) -> int:
             start = f"the end of trial {index} of {path}"
         prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)
         intervals = _intervals(predictor, past, pattern)
-        files = write_prediction(prediction, args.out, force=args.force, intervals=intervals)
+        files = write_prediction(prediction, args.out, force=args.force, intervals=intervals,
+                                 what=fitted_what(provenance))
     print(f"predicted {len(prediction.output_names)} output(s) over {pattern.u.shape[0]} samples from {start}")
     for note in prediction.notes:
         print(f"caution: {note}")

@@ -8,7 +8,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Mapping
 
@@ -19,11 +19,17 @@ from ...sysid._records import jsonable, session_record, versions
 from ..limits import StimLimits
 from .closed_loop import _check_plant, _surrogate_spec
 from .execute import _execute, check_scheduler_address
+from .references import reference_table
 from .settings import BenchSettings
 from .tables import _KEYS, _assemble, _columns, _comparison, _sweeps
 from .tasks import _check_trials, _Context, _grid, _splits, _tasks
 
-__all__ = ["BenchResult", "run_bench"]
+__all__ = ["BenchResult", "run_bench", "STANDIN_MIN_R2"]
+
+#: A closed loop on a stand-in (surrogate) plant is compared only when the stand-in's own free-run R² on the trials
+#: it never saw reaches this: below it, the stand-in misses too much of the recording for a controller's tracking on
+#: it to say anything about the recording (issue 18: a stand-in of R² 0.29 still named winners). Our own threshold.
+STANDIN_MIN_R2 = 0.5
 
 #: Packages a benchmark's provenance records besides the core ones; Dask's when the tasks ran on a cluster.
 _BENCH_PACKAGES = ("tqdm", "threadpoolctl")
@@ -72,6 +78,10 @@ class BenchResult:
         ``"ground truth"`` or ``"surrogate"``.
     provenance : dict
         Session hash and description, settings, seed, splits, execution, package versions, time.
+    references : pandas.DataFrame
+        Simulated sessions with their plant only (else empty): per split, the ceiling (the true model's
+        predictions and controller) and the floors (a mean predictor; no stimulation) at the base setting
+        (:mod:`~stimsteer.control.evaluation.references`).
     """
 
     settings: BenchSettings
@@ -88,13 +98,14 @@ class BenchResult:
     limits: Mapping
     plant: str
     provenance: Mapping
+    references: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     def tables(self) -> dict:
         """The result tables by name (what the report writes as CSV and JSON)."""
         return {"prediction": self.prediction, "control": self.control, "sweeps": self.sweeps,
                 "comparison": self.comparison, "timings": self.timings, "fits": self.fits, "tasks": self.tasks,
                 "surrogate": self.surrogate, "traces_prediction": self.traces.get("prediction", pd.DataFrame()),
-                "traces_closed_loop": self.traces.get("closed_loop", pd.DataFrame())}
+                "traces_closed_loop": self.traces.get("closed_loop", pd.DataFrame()), "references": self.references}
 
     @property
     def failures(self) -> pd.DataFrame:
@@ -112,6 +123,27 @@ class BenchResult:
         """The unit of a recorded output channel (``"a.u."`` when the session did not give one)."""
         s = self.provenance["session"]
         return dict(zip(s["output_names"], s["output_units"])).get(channel, "a.u.")
+
+    def standin_r2(self) -> float:
+        """The stand-in plant's mean free-run R² on the trials it never saw (NaN with a ground-truth plant)."""
+        if self.surrogate.empty or "r2_freerun" not in self.surrogate:
+            return float("nan")
+        return float(self.surrogate["r2_freerun"].mean())
+
+    @property
+    def control_withheld(self) -> str:
+        """Why the closed-loop comparison is withheld (a stand-in below :data:`STANDIN_MIN_R2`), or ``""``."""
+        if self.control.empty or self.plant != "surrogate":
+            return ""
+        r2 = self.standin_r2()
+        if r2 >= STANDIN_MIN_R2:
+            return ""
+        if not r2 == r2:  # NaN: the stand-in's own quality could not be scored
+            return ("the closed loops ran on a stand-in plant whose own quality on the trials it never saw could not "
+                    "be scored, so its tracking says nothing certain about the recording")
+        return (f"the closed loops ran on a stand-in plant fitted to the recording, whose own free-run R² on the "
+                f"trials it never saw is {r2:.2f}, below {STANDIN_MIN_R2:g}: a controller's tracking on it says too "
+                "little about the recording to compare the routes")
 
     @property
     def steered_unit(self) -> str:
@@ -232,7 +264,18 @@ def run_bench(session, settings: BenchSettings | None = None, *, plant=None, lim
     started, t0 = datetime.now(timezone.utc).isoformat(timespec="seconds"), time.perf_counter()
     results, execution = _execute(ctx, tasks, scheduler, n_workers, progress)
     return _result(st, session, plant, limits, splits, tasks, results, execution, started,
-                   time.perf_counter() - t0, source)
+                   time.perf_counter() - t0, source, lambda: _references(ctx, tasks))
+
+
+def _references(ctx, tasks) -> pd.DataFrame:
+    """Floor and ceiling of a simulated session (:func:`~.references.reference_table`); empty when they cannot be
+    computed (the routes' results stand without them)."""
+    if ctx.plant is None:
+        return pd.DataFrame()
+    try:
+        return reference_table(ctx, tasks)
+    except StimsteerError:
+        return pd.DataFrame()
 
 
 def _control_table(ok: pd.DataFrame, st: BenchSettings, plant) -> pd.DataFrame:
@@ -249,10 +292,12 @@ def _control_table(ok: pd.DataFrame, st: BenchSettings, plant) -> pd.DataFrame:
     return control
 
 
-def _result(st, session, plant, limits, splits, tasks, results, execution, started, wall_s, source) -> BenchResult:
+def _result(st, session, plant, limits, splits, tasks, results, execution, started, wall_s, source,
+            refs) -> BenchResult:
     parts = _assemble(st, tasks, results)
     table = parts["tasks"]
     _check_base(st, table)
+    refs = refs()  # after the check: a setting every route failed on is reported as such, not by the references
     ok = table[table["status"] == "ok"]
     lim = dict(parts["limits"] or {})
     lim["source"] = "declared" if limits is not None else "recorded input range (training trials)"
@@ -267,4 +312,5 @@ def _result(st, session, plant, limits, splits, tasks, results, execution, start
         plant="ground truth" if plant is not None else "surrogate",
         provenance=_provenance(session, st, splits, plant, limits, execution, started, wall_s, source,
                                int((table["status"] == "failed").sum())),
+        references=refs,
     )

@@ -23,8 +23,7 @@ __all__ = ["report_figures", "method_colours", "fig_predictions", "fig_accuracy"
 _ROUTE_SHADES = {"indirect": ["#1d5f99", "#5b9bd5", "#0b3a63"], "direct": ["#c4561b", "#e8a33d", "#8a3510"]}
 _RECORDED = "#222222"
 _TARGET = "#7a7a7a"
-_LIMIT = "#a0256e"
-_INPUT_COLOURS = ["#3b7d3b", "#7a4fa3", "#b8860b", "#2a8f8f", "#8b3a3a", "#4f4f4f"]
+_ALLOWED = "#dfeadb"
 _DPI = 110
 # font sizes (points) of tick labels and axis labels, titles, legends
 _TEXT, _TITLE, _LEGEND = 9, 10, 8
@@ -50,6 +49,22 @@ def _labels(ax, xlabel=None, ylabel=None, title=None, title_size=_TITLE) -> None
         ax.set_ylabel(ylabel, fontsize=_TEXT)
     if title is not None:
         ax.set_title(title, fontsize=title_size)
+
+
+def _legend_outside(ax, **kwargs) -> None:
+    """The legend to the right of the axes, never over the data (the report saves with a tight bounding box)."""
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=_LEGEND, borderaxespad=0.0,
+              **kwargs)
+
+
+def _who(result: BenchResult) -> str:
+    """The compared methods by route, for titles: "indirect (arx, subspace) vs direct (hankel, lsq)"."""
+    parts = []
+    for route in ("indirect", "direct"):
+        methods = [m.method for m in result.settings.methods if m.route == route]
+        if methods:
+            parts.append(f"{route} ({', '.join(methods)})")
+    return " vs ".join(parts)
 
 
 def _line_style(route: str) -> str:
@@ -99,10 +114,11 @@ def fig_predictions(result: BenchResult, colours: dict):
             ax.plot(g["time_s"], g["predicted"], color=colours[label], lw=1.1, alpha=0.95,
                     ls=_line_style(g["route"].iloc[0]), label=label)
         _labels(ax, "time in the held-out trial [s]", f"{ch} [{result.output_unit(ch)}]")
-    axes[0, 0].legend(loc="upper right", ncol=3, frameon=False, fontsize=_LEGEND)
+    _legend_outside(axes[0, 0])
     trial = int(tr["trial"].iloc[0]) if "trial" in tr else -1
-    _labels(axes[0, 0], title=f"Held-out trial {trial} (its most active second): recorded vs {H}-step predictions\n"
-                              f"each block of {H} samples predicted from the measured samples just before it")
+    _labels(axes[0, 0], title=f"Held-out trial {trial} (its most active second): recorded vs {H}-step predictions of "
+                              f"{_who(result)}\neach block of {H} samples predicted from the measured samples just "
+                              "before it")
     fig.tight_layout()
     return fig
 
@@ -166,58 +182,75 @@ def fig_accuracy(result: BenchResult, colours: dict):
     axd.set_xticks(ticks + [H + 2.5])
     axd.set_xticklabels([str(t) for t in ticks] + ["free\nrun"])
     axd.set_xlim(0.5, H + 4)
-    _labels(axd, f"steps ahead (1 step = {1e3 / rate:.3g} ms)", "paired difference\nin R² (direct − indirect)")
-    _labels(ax, ylabel="R² on held-out trials\n(mean over channels)",
-            title="Prediction accuracy vs steps ahead (mean and 95 % interval over splits)")
-    ax.legend(frameon=False, loc="lower left", fontsize=_LEGEND)
-    axd.legend(frameon=False, loc="lower left", fontsize=_LEGEND)
+    _labels(axd, f"steps ahead [steps of {1e3 / rate:.3g} ms]", "paired difference in R²\n(direct − indirect; no unit)")
+    _ceiling_marks(ax, result, H)
+    _labels(ax, ylabel="R² on held-out trials\n(mean over channels; no unit)",
+            title=f"Prediction accuracy vs steps ahead: {_who(result)}\n(mean and 95 % interval over splits)")
+    _legend_outside(ax)
+    if axd.get_legend_handles_labels()[0]:
+        _legend_outside(axd)
     fig.tight_layout()
     return fig
 
 
+def _ceiling_marks(ax, result: BenchResult, H: int) -> None:
+    """The true model's R² at the horizon and in free run (simulated sessions with their plant), as grey bars."""
+    refs = getattr(result, "references", None)
+    if refs is None or refs.empty:
+        return
+    ceiling = refs[refs["reference"] == "ceiling: true model"]
+    for x, metric in ((H, "r2_last"), (H + 2.5, "r2_freerun")):
+        m = float(ceiling[metric].mean()) if not ceiling.empty else float("nan")
+        if np.isfinite(m):
+            ax.plot([x - 0.6, x + 0.6], [m, m], color=_TARGET, lw=2.4, solid_capstyle="butt",
+                    label="ceiling: true model" if metric == "r2_last" else None)
+
+
 # ------------------------------------------------------------------------------------------------ closed loop
-def _limit_lines(ax, lim: dict) -> None:
-    """Dotted lines at the hard amplitude limits, each labelled with the inputs it bounds."""
+def _allowed_band(ax, lim: dict, name: str, t) -> None:
+    """The hard amplitude window of one input, shaded over the loop's time."""
     names = list(lim.get("input_names") or [])
-    at = {}
-    for key in ("effective_min_ua", "effective_max_ua"):
-        for name, v in zip(names, lim.get(key) or []):
-            if v is not None:
-                at.setdefault(float(v), []).append(name)
-    for v, who in sorted(at.items()):
-        ax.axhline(v, color=_LIMIT, ls=":", lw=1.2)
-        ax.annotate(", ".join(who), xy=(1.0, v), xycoords=("axes fraction", "data"), xytext=(3, 0),
-                    textcoords="offset points", va="center", ha="left", fontsize=7, color=_LIMIT)
+    if name not in names:
+        return
+    i = names.index(name)
+    lo, hi = (lim.get(k) or [None] * len(names) for k in ("effective_min_ua", "effective_max_ua"))
+    if lo[i] is not None and hi[i] is not None:
+        ax.fill_between([t[0], t[-1]], [lo[i]] * 2, [hi[i]] * 2, color=_ALLOWED, lw=0, zorder=0)
 
 
 def fig_closed_loop(result: BenchResult, colours: dict):
-    """The steered output with its target, and each method's stimulation with the hard amplitude limits."""
+    """The steered output with its target, and one strip per input with both routes' stimulation inside the
+    allowed region (shaded)."""
     tr = result.traces.get("closed_loop", pd.DataFrame())
     if tr.empty:
         return None
     labels = list(dict.fromkeys(tr["label"]))
-    fig, grid = _figure(1 + len(labels), 1, (8.0, 2.2 * (1 + len(labels))), sharex=True)
+    inputs = list(dict.fromkeys(tr.loc[tr["signal"] == "input", "channel"]))
+    fig, grid = _figure(1 + len(inputs), 1, (8.6, 2.4 + 1.5 * len(inputs)), sharex=True,
+                        gridspec_kw={"height_ratios": [1.7] + [1.0] * len(inputs)})
     axes = grid[:, 0]
     out = tr[tr["signal"] == "output"]
     ch = out["channel"].iloc[0]
     tgt = tr[(tr["signal"] == "target") & (tr["label"] == labels[0])]
-    axes[0].plot(tgt["time_s"], tgt["value"], color=_TARGET, lw=1.4, ls="--", label="target")
+    axes[0].plot(tgt["time_s"], tgt["value"], color=_TARGET, lw=2.2, alpha=0.6, label="target")
     for label in labels:
         o = out[out["label"] == label]
-        axes[0].plot(o["time_s"], o["value"], color=colours[label], lw=1.0, label=label,
+        axes[0].plot(o["time_s"], o["value"], color=colours[label], lw=1.1, label=label,
                      ls=_line_style(o["route"].iloc[0]))
-    axes[0].legend(frameon=False, ncol=3, loc="upper right", fontsize=_LEGEND)
+    _legend_outside(axes[0])
     _labels(axes[0], ylabel=f"{ch} [{result.output_unit(ch)}]",
-            title=f"Closed loop on the {result.plant.replace(' ', '-')} plant: steered output (first split)")
+            title=f"Closed loop on the {result.plant} plant: {ch} steered by {' and '.join(labels)} (first split)")
     lim = result.limits or {}
-    for ax, label in zip(axes[1:], labels):
-        inp = tr[(tr["signal"] == "input") & (tr["label"] == label)]
-        for i, (name, g) in enumerate(inp.groupby("channel", sort=False)):
-            ax.plot(g["time_s"], g["value"], lw=0.9, label=name, color=_INPUT_COLOURS[i % len(_INPUT_COLOURS)])
-        _limit_lines(ax, lim)
-        _labels(ax, ylabel="input [µA]", title=f"{label}: stimulation (dotted: hard amplitude limits of the inputs)",
-                title_size=9)
-        ax.legend(frameon=False, ncol=6, loc="upper right", fontsize=_LEGEND)
+    for ax, name in zip(axes[1:], inputs):
+        part = tr[(tr["signal"] == "input") & (tr["channel"] == name)]
+        _allowed_band(ax, lim, name, part["time_s"].to_numpy())
+        for label in labels:
+            g = part[part["label"] == label]
+            ax.step(g["time_s"], g["value"], where="post", lw=1.0, color=colours[label], label=label,
+                    ls=_line_style(g["route"].iloc[0]))
+        _labels(ax, ylabel=f"{name} [µA]")
+    axes[1].set_title("stimulation of each input inside its allowed region (shaded: the hard amplitude limits)",
+                      fontsize=9)
     _labels(axes[-1], xlabel="time in the closed loop [s]")
     return fig
 
@@ -239,23 +272,40 @@ def fig_tradeoff(result: BenchResult, colours: dict):
         xerr = None if not np.isfinite(xlo) else [[mx - xlo], [xhi - mx]]
         yerr = None if not np.isfinite(ylo) else [[my - ylo], [yhi - my]]
         ax.errorbar([mx], [my], xerr=xerr, yerr=yerr, fmt="o", color=colours[label], ms=7, capsize=3, label=label)
+    _reference_points(ax, result)
     _labels(ax, "stimulation energy Σu² over the run [µA²]", f"RMS tracking error [{result.steered_unit}]",
-            "Tracking error vs energy (dots: splits; marker: mean, 95 % interval)")
-    ax.legend(frameon=False, fontsize=_LEGEND)
+            f"Tracking error vs energy: {_who(result)}\n(dots: splits; marker: mean, 95 % interval)")
+    _legend_outside(ax)
     return fig
 
 
+def _reference_points(ax, result: BenchResult) -> None:
+    """The floor (no stimulation) and the ceiling (the true model's controller), grey, labelled beside them."""
+    refs = getattr(result, "references", None)
+    if refs is None or refs.empty:
+        return
+    for name, marker in (("floor: no stimulation", "v"), ("ceiling: true model", "^")):
+        g = refs[(refs["reference"] == name) & refs["tracking_rms"].notna()]
+        if g.empty:
+            continue
+        x, y = float(g["energy_ua2"].mean()), float(g["tracking_rms"].mean())
+        ax.plot([x], [y], marker, color=_TARGET, ms=8, label=name)
+        ax.annotate(name, (x, y), xytext=(6, 0), textcoords="offset points", va="center", fontsize=7,
+                    color=_TARGET)
+
+
 # ------------------------------------------------------------------------------------------------ sweeps and compute
-def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title: str, logx: bool = False):
+def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title: str):
     """Accuracy at the horizon and tracking error against the values of one sweep (None without that sweep)."""
     s = result.sweeps
     part = s[s["sweep"] == sweep]
     if part.empty:
         return None
     ahead = result.settings.horizon_steps if sweep != "horizon_steps" else "N"
-    metrics = [("r2_last", f"R² {ahead} steps ahead (held-out)"),
+    metrics = [("r2_last", f"R² {ahead} steps ahead (held-out; no unit)"),
                ("tracking_rms", f"RMS tracking error [{result.steered_unit}]")]
-    metrics = [(m, t) for m, t in metrics if (part["metric"] == m).any()]
+    metrics = [(m, t) for m, t in metrics if (part["metric"] == m).any()
+               and not (m == "tracking_rms" and result.control_withheld)]
     fig, axes = _figure(1, len(metrics), (4.2 * len(metrics), 3.3))
     values = sorted(part["value"].unique())
     for ax, (metric, ylabel) in zip(axes[0], metrics):
@@ -266,13 +316,11 @@ def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title
             ax.plot(g["value"], g["mean"], "-o", color=colours[label], ms=4, lw=1.5, label=label)
             ax.fill_between(g["value"], g["ci_low"], g["ci_high"], color=colours[label], alpha=0.18, lw=0)
         _labels(ax, xlabel, ylabel)
-        if logx and min(values) > 0:
-            ax.set_xscale("log", base=2)
         ax.set_xticks(values)
         ax.set_xticklabels([f"{v:g}" for v in values])
         ax.minorticks_off()
-    axes[0, 0].legend(frameon=False, fontsize=_LEGEND)
-    fig.suptitle(title, fontsize=_TITLE)
+    _legend_outside(axes[0, -1])
+    fig.suptitle(f"{title}: {_who(result)}", fontsize=_TITLE)
     fig.tight_layout()
     return fig
 
@@ -292,7 +340,7 @@ def fig_compute(result: BenchResult, colours: dict):
             if g.empty:
                 continue
             r = g.iloc[0]
-            err = None if not np.isfinite(r["ci_low"]) else [[r["mean"] - max(r["ci_low"], 0)],
+            err = None if not np.isfinite(r["ci_low"]) else [[r["mean"] - r["ci_low"]],
                                                               [r["ci_high"] - r["mean"]]]
             ax.barh([i], [r["mean"]], xerr=err, color=colours[label], height=0.6, capsize=3)
         ax.set_yticks(range(len(labels)))
@@ -300,7 +348,8 @@ def fig_compute(result: BenchResult, colours: dict):
         _labels(ax, xlabel)
         ax.set_axisbelow(True)
         ax.grid(axis="y", visible=False)
-    fig.suptitle("Compute time (mean and 95 % interval over splits; single-threaded tasks)", fontsize=_TITLE)
+    fig.suptitle(f"Compute time of {_who(result)}\n(mean and 95 % interval over splits, as computed; "
+                 "single-threaded tasks)", fontsize=_TITLE)
     fig.tight_layout()
     return fig
 
@@ -320,14 +369,17 @@ def report_figures(result: BenchResult) -> dict:
         "accuracy_vs_steps": lambda: fig_accuracy(result, colours),
         "closed_loop": lambda: fig_closed_loop(result, colours),
         "tracking_vs_energy": lambda: fig_tradeoff(result, colours),
-        "training_data": lambda: fig_sweep(result, colours, "train_trials", "training trials",
+        "training_data": lambda: fig_sweep(result, colours, "train_trials", "training trials [count]",
                                            "Accuracy and control vs amount of training data"),
-        "noise": lambda: fig_sweep(result, colours, "noise_scale", "noise level (× the plant's)",
-                                   "Accuracy and control vs noise (re-recorded from the plant)", logx=True),
+        "noise": lambda: fig_sweep(result, colours, "noise_scale", "noise level [× the plant's]",
+                                   "Accuracy and control vs noise (re-recorded from the plant)"),
         "horizon": lambda: fig_sweep(result, colours, "horizon_steps", "horizon N [steps]",
                                      "Accuracy at the horizon and control vs horizon"),
         "compute_time": lambda: fig_compute(result, colours),
     }
+    if result.control_withheld:  # a stand-in too poor to compare controllers on: no closed-loop figure either
+        makers.pop("closed_loop")
+        makers.pop("tracking_vs_energy")
     out = {}
     for name, make in makers.items():
         fig = make()

@@ -11,13 +11,19 @@ from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
 
-__all__ = ["gramian_spectrum_figure", "impulse_response_figure", "ranking_figure", "MAX_GRID", "MAX_BARS"]
+__all__ = ["gramian_spectrum_figure", "impulse_response_figure", "ranking_figure", "MAX_GRID", "MAX_BARS",
+           "MAX_MAP_CHANNELS", "MAX_MAP_SITES"]
 
 _INK, _ACCENT, _MUTED, _WARN = "#24434f", "#c7792f", "#8a9aa3", "#a23b3b"
-#: Impulse-response grid: at most this many channels x sites are drawn (all are in the table).
+#: Impulse-response grid (older figures): at most this many channels x sites (kept for callers of the constant).
 MAX_GRID = 8
+#: Response maps: at most this many channels (rows of each image) and sites (images) are drawn (all are in the CSV).
+MAX_MAP_CHANNELS = 64
+MAX_MAP_SITES = 12
 #: Ranking figure: the best this many sets.
 MAX_BARS = 20
+#: Ranking figure: a log axis only when the shown values span more than this ratio.
+LOG_SPAN = 100.0
 
 
 def _plain_axes(ax) -> None:
@@ -62,46 +68,84 @@ def gramian_spectrum_figure(eigenvalues, horizon_steps, condition_number: float,
 
 
 def impulse_response_figure(h, model, units=None) -> Figure:
-    """A grid of impulse responses: site (columns) to recorded channel (rows), at most :data:`MAX_GRID` each way.
+    """Response maps: for each stimulation site, the response of every recorded channel over time as one image.
+
+    Instead of a grid of one small panel per (site, channel) pair, which grows with the product of the two and
+    gives every panel its own scale, each site gets one channel × time image on a shared, symmetric colour scale
+    with one colour bar in the response's unit (channel unit per site unit, e.g. µV per µA), so sites and channels
+    are compared at a glance, and many channels stay readable.
 
     Parameters
     ----------
     h : ndarray, shape (n_steps, n_outputs, n_inputs)
-        From :func:`stimsteer.sysid.network.impulse_responses`.
+        From :func:`stimsteer.sysid.network.impulse_responses`: the response to a unit impulse on each site.
     model : StateSpaceModel
-        For the channel names and the sample rate.
+        For the channel names, the sample rate, the number of states.
     units : (input_units, output_units), optional
-        Tuples of unit strings; with them the axes name the units.
+        Tuples of unit strings; with them the colour bar names the response's unit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
+    h = np.asarray(h, dtype=np.float64)
     p, m = h.shape[1], h.shape[2]
-    in_units, out_units = units if units is not None else ((None,) * m, (None,) * p)
-    rp, rm = min(p, MAX_GRID), min(m, MAX_GRID)
-    fig = GlyphSafeFigure(figsize=(1.6 * rm + 1.2, 1.1 * rp + 1.0))
-    t = np.arange(h.shape[0]) / model.sample_rate_hz
-    axes = fig.subplots(rp, rm, sharex=True, squeeze=False)
-    for i in range(rp):
-        for j in range(rm):
-            ax = axes[i, j]
-            ax.axhline(0.0, color=_MUTED, lw=0.5)
-            ax.plot(t, h[:, i, j], color=_INK, lw=0.9)
-            _plain_axes(ax)
-            if i == 0:
-                ax.set_title(_with_unit(model.input_names[j], in_units[j]), fontsize=7)
-            if j == 0:
-                ax.set_ylabel(_with_unit(model.output_names[i], out_units[i]), fontsize=7)
-            if i == rp - 1:
-                ax.set_xlabel("time [s]", fontsize=7)
-    notes = ["response in channel unit per site unit"] if units is not None else []
-    if (rp, rm) != (p, m):
-        notes.append(f"first {rp} of {p} channels, {rm} of {m} sites; all in the CSV")
-    second = "\n" + "; ".join(notes) if notes else ""
-    fig.suptitle(f"Impulse responses: site (columns) to recorded channel (rows){second}", fontsize=9)
-    fig.tight_layout()
+    shown_p, shown_m = min(p, MAX_MAP_CHANNELS), min(m, MAX_MAP_SITES)
+    cols = min(shown_m, 3)
+    rows = -(-shown_m // cols)
+    fig = GlyphSafeFigure(figsize=(3.3 * cols + 1.4, (0.22 * shown_p + 1.2) * rows + 1.0), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(rows, cols, sharex=True, sharey=True, squeeze=False)).ravel()
+    t = np.arange(h.shape[0] + 1) / model.sample_rate_hz  # cell edges: sample k covers [k, k+1) / rate
+    scale = float(np.percentile(np.abs(h[:, :shown_p, :shown_m]), 99.5)) or 1.0
+    image = None
+    for j, ax in enumerate(axes):
+        if j >= shown_m:
+            ax.set_visible(False)
+            continue
+        image = ax.pcolormesh(t, np.arange(shown_p + 1), h[:, :shown_p, j].T, cmap="RdBu_r", vmin=-scale, vmax=scale,
+                              shading="flat", rasterized=True)
+        ax.set_title(f"stimulating {_with_unit(model.input_names[j], units[0][j] if units else None)}", fontsize=8)
+        ax.set_yticks(np.arange(shown_p) + 0.5, [model.output_names[i] for i in range(shown_p)], fontsize=6)
+        ax.invert_yaxis()
+        ax.tick_params(labelsize=7)
+        if j % cols == 0:
+            ax.set_ylabel("recorded channel", fontsize=8)
+        if j >= shown_m - cols:
+            ax.set_xlabel("time after the impulse [s]", fontsize=8)
+    bar = fig.colorbar(image, ax=axes[:shown_m].tolist(), shrink=0.9, extend="both")
+    bar.set_label(f"response [{_response_unit(units)}]", fontsize=8)
+    bar.ax.tick_params(labelsize=7)
+    notes = [f"first {shown_p} of {p} channels, {shown_m} of {m} sites; all in the CSV"] if (shown_p, shown_m) != (p, m) \
+        else []
+    notes.append(f"colour clipped at ±{scale:.3g} (99.5th percentile of |response|)")
+    fig.suptitle(f"Response maps of the fitted {model.n_states}-state model: each site's unit impulse, every "
+                 f"channel over time\n{'; '.join(notes)}", fontsize=9)
     return fig
 
 
-def ranking_figure(labels, values, title: str, xlabel: str, log: bool = True) -> Figure:
-    """Horizontal bars of the first :data:`MAX_BARS` entries, best at the top (log scale when all are positive)."""
+def _response_unit(units) -> str:
+    """``µV per µA`` when every channel shares one unit and every site another, else the generic wording."""
+    if units is None:
+        return "channel unit per site unit"
+    ins, outs = {str(u) for u in units[0]}, {str(u) for u in units[1]}
+    if len(ins) == 1 and len(outs) == 1:
+        return f"{_pretty(next(iter(outs)))} per {_pretty(next(iter(ins)))}"
+    return "channel unit per site unit"
+
+
+def _pretty(unit: str) -> str:
+    return {"uV": "µV", "uA": "µA", "mV": "mV"}.get(unit, unit)
+
+
+def ranking_figure(labels, values, title: str, xlabel: str, log: bool | None = None) -> Figure:
+    """Horizontal bars of the first :data:`MAX_BARS` entries, best at the top.
+
+    The axis is plain (linear) while the shown values are comparable; a log axis only when ``log`` is True, or by
+    default when they span more than :data:`LOG_SPAN` (bars of comparable values on a log axis mislead the eye).
+    """
+    shown = np.asarray(values[:min(len(labels), MAX_BARS)], dtype=float)
+    if log is None:
+        log = bool(shown.size and np.all(shown > 0) and shown.max() / shown.min() > LOG_SPAN)
     n = min(len(labels), MAX_BARS)
     fig = GlyphSafeFigure(figsize=(6.0, 0.28 * n + 1.3))
     ax = fig.add_subplot()

@@ -12,13 +12,15 @@ __all__ = ["prediction_figure", "MAX_PANELS"]
 MAX_PANELS = 8
 
 
-def prediction_figure(pred) -> Figure:
+def prediction_figure(pred, what: str = "") -> Figure:
     """The inputs and the predicted outputs of a :class:`~stimsteer.sysid.PatternPrediction`, with the band.
 
     Parameters
     ----------
     pred : PatternPrediction
         Times in seconds; each output panel shows the prediction ± its held-out RMSE in the output's unit.
+    what : str, optional
+        The model and route that predicted, for the title (e.g. ``"indirect route, subspace (SubspaceId)"``).
 
     Returns
     -------
@@ -32,8 +34,10 @@ def prediction_figure(pred) -> Figure:
     ax = axes[0]
     for j, (n, unit) in enumerate(zip(pred.input_names, pred.input_units)):
         ax.step(t, pred.u[:, j], where="post", lw=1.0, label=f"{n} [{unit}]")
-    ax.set_ylabel("input")
-    ax.legend(loc="upper right", fontsize=7, frameon=False, ncol=min(4, len(pred.input_names)))
+    in_units = sorted({str(u) for u in pred.input_units})
+    ax.set_ylabel(f"stimulation\n[{in_units[0] if len(in_units) == 1 else 'each input unit'}]", fontsize=8)
+    # beside the axes, not over the pattern
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7, frameon=False, borderaxespad=0.0)
     for j in range(shown):
         ax = axes[j + 1]
         y, b = pred.y[:, j], pred.band[:, j]
@@ -41,12 +45,13 @@ def prediction_figure(pred) -> Figure:
         ax.plot(t, y, color="#08519c", lw=1.2, label="predicted")
         ax.set_ylabel(f"{pred.output_names[j]}\n[{pred.output_units[j]}]", fontsize=8)
         if j == 0:
-            ax.legend(loc="upper right", fontsize=7, frameon=False, ncol=2)
+            ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7, frameon=False, borderaxespad=0.0)
     for ax in axes:
         ax.spines[["top", "right"]].set_visible(False)
         ax.grid(axis="y", color="0.9", lw=0.6)
     axes[-1].set_xlabel("time [s]")
     note = f" (first {shown} of {len(pred.output_names)} outputs; all in the CSV)" if shown < len(pred.output_names) \
         else ""
-    fig.suptitle(f"Predicted response from {pred.start}{note}", fontsize=10)
+    by = f" by {what}" if what else ""
+    fig.suptitle(f"Predicted response{by} from {pred.start}{note}", fontsize=10)
     return fig

@@ -269,7 +269,9 @@ def test_corrupting_held_out_outputs_leaves_every_fit_unchanged(seed, rng):
     # four methods give every indirect/direct pair a comparison, plus the routes' best methods: 3 x 3 pairs
     pairs = set(zip(clean.comparison["indirect"], clean.comparison["direct"]))
     assert len(pairs) == 9
-    assert sum("indirect (subspace)" in line and "direct (hankel)" in line for line in summarize(clean)) >= 2
+    # the summary's recommendation names the method each route chose on its training trials
+    first = summarize(clean)[0]
+    assert any(m in first for m in ("(arx on", "(subspace on")) and any(m in first for m in ("(lsq on", "(hankel on"))
 
 
 # ------------------------------------------------------------------------------------------------ contents

@@ -100,6 +100,13 @@ def test_write_bench_needs_a_bench_result(tmp_path):
         write_bench({"prediction": None}, tmp_path / "run")
 
 
+def _with_splits(result, n):
+    """The result as if it had ``n`` splits (the verdicts read the split count; the numbers are kept)."""
+    comp = result.comparison.copy()
+    comp["n"] = n
+    return dataclasses.replace(result, comparison=comp, settings=dataclasses.replace(result.settings, n_splits=n))
+
+
 def test_summary_is_generated_from_the_numbers(result):
     lines = summarize(result)
     text = "\n".join(lines)
@@ -107,32 +114,50 @@ def test_summary_is_generated_from_the_numbers(result):
     for _, row in r2.iterrows():
         assert f"{row['label']} {row['mean']:.3f} [{row['ci_low']:.3f}, {row['ci_high']:.3f}]" in text
     assert "ground-truth plant" in text and "hard-limit violation" in text and "Student-t" in text
-    # change the numbers and the verdict follows them
-    comp = result.comparison.copy()
+    # change the numbers and the verdict follows them (with enough splits to tell)
+    five = _with_splits(result, 5)
+    comp = five.comparison.copy()
     sel = (comp["sweep"] == "base") & (comp["metric"] == "r2_last")
     comp.loc[sel, ["mean_difference", "ci_low", "ci_high", "better"]] = [0.25, 0.125, 0.375, "direct"]
-    sweeps = result.sweeps.copy()
+    sweeps = five.sweeps.copy()
     sweeps.loc[(sweeps["sweep"] == "base") & (sweeps["metric"] == "r2_last"), "mean"] = 0.123456
-    changed = "\n".join(summarize(dataclasses.replace(result, comparison=comp, sweeps=sweeps)))
-    assert "the direct route is better (direct − indirect = 0.250 [0.125, 0.375])" in changed
-    assert "0.123 [" in changed
-    comp.loc[sel, ["ci_low", "better"]] = [-0.125, "neither"]
-    neither = "\n".join(summarize(dataclasses.replace(result, comparison=comp)))
-    assert "no clear winner (direct − indirect = 0.250 [-0.125, 0.375]; the interval contains zero)" in neither
-
-
-def test_the_summary_opens_with_the_winners_of_the_detailed_lines(result):
-    comp = result.comparison.copy()
-    base = comp["sweep"] == "base"
-    comp.loc[base & (comp["metric"] == "r2_last"), "better"] = "direct"
-    comp.loc[base & (comp["metric"] == "fit_s"), "better"] = "indirect"
-    comp.loc[base & (comp["metric"] == "r2_freerun"), "better"] = "neither"
-    first = summarize(dataclasses.replace(result, comparison=comp))[0]
-    a, b = (m.label for m in result.settings.methods[:2])
+    changed = summarize(dataclasses.replace(five, comparison=comp, sweeps=sweeps))
+    assert "direct − indirect 0.25 [0.12, 0.38]: direct route better" in "\n".join(changed)
     H = result.settings.horizon_steps
-    assert first.startswith("At a glance")
-    assert f"prediction {H} steps ahead: {b}" in first and f"fit time: {a}" in first
-    assert "free run: no clear winner" in first
+    assert changed[0].startswith(f"Recommendation: Use the direct (lsq) route for prediction {H} steps ahead (R² ")
+    assert "0.123 [" in "\n".join(changed)
+    comp.loc[sel, ["ci_low", "better"]] = [-0.125, "neither"]
+    neither = summarize(dataclasses.replace(five, comparison=comp))
+    assert "0.25 [-0.12, 0.38]: no difference shown (the interval contains 0)" in "\n".join(neither)
+    assert "either route for prediction" in neither[0]
+
+
+def test_below_the_stated_number_of_splits_nothing_is_called_better(result):
+    # issue 18: a ΔR² of 0.009 on 3 splits was called "better"; below MIN_SPLITS_TO_TELL the report says so
+    from stimsteer.control.evaluation.stats import MIN_SPLITS_TO_TELL
+
+    three = _with_splits(result, 3)
+    comp = three.comparison.copy()
+    comp.loc[(comp["sweep"] == "base") & (comp["metric"] == "r2_last"),
+             ["mean_difference", "ci_low", "ci_high", "better"]] = [0.009, 0.002, 0.016, "direct"]
+    lines = summarize(dataclasses.replace(three, comparison=comp))
+    assert MIN_SPLITS_TO_TELL == 5
+    assert lines[0].startswith("Recommendation: No route can be recommended yet: 3 split(s) are too few to tell")
+    assert "0.009 [0.002, 0.016]: too few splits to tell" in "\n".join(lines)
+    assert not any("route better" in ln for ln in lines)
+
+
+def test_intervals_are_shown_as_computed_not_clipped(result):
+    # issue 18: "[0, 0.086]" hid that the splits disagreed about the sign
+    from stimsteer.control._report_text import fmt_interval
+    from stimsteer.control.report import _key_table
+
+    assert fmt_interval(0.83, -3.5, 5.2, "{:.2g}", "s") == "0.83 [-3.5, 5.2] s"
+    sweeps = result.sweeps.copy()
+    sel = (sweeps["sweep"] == "base") & (sweeps["metric"] == "fit_s")
+    sweeps.loc[sel, ["mean", "ci_low", "ci_high"]] = [0.5, -0.25, 1.25]
+    table = _key_table(dataclasses.replace(result, sweeps=sweeps))
+    assert (table.loc["fit time [s]"] == "0.5 [-0.25, 1.25]").all()
 
 
 @pytest.mark.slow
@@ -144,7 +169,7 @@ def test_figures_label_axes_with_units(result):
     assert any("[mV]" in ax.get_ylabel() for ax in fig.axes)
     assert all(ax.get_xlabel().endswith("[s]") for ax in fig.axes)
     fig2 = fig_closed_loop(result, method_colours(result))
-    assert {ax.get_ylabel() for ax in fig2.axes[1:]} == {"input [µA]"}
+    assert [ax.get_ylabel() for ax in fig2.axes[1:]] == [f"{n} [µA]" for n in ("u0", "u1")]
 
 
 def test_figures_draw_direct_routes_dashed_from_the_route_column(result):
@@ -183,6 +208,6 @@ def test_the_summary_leads_with_each_route_by_its_best_method_on_training(seed):
                        train_trials=(), noise_scales=(), horizons=(), max_windows=100)
     r = run_bench(session, st, plant=plant, n_workers=1, progress=False)
     lines = summarize(r)
-    assert lines[0].startswith("At a glance (indirect (best on training) vs direct (best on training);")
+    assert lines[0].startswith("Recommendation: ") and " of 2 splits" in lines[0]
     # only each route's representative steers the plant: one closed loop per route and split
     assert len(r.control) == 2 * 2 and set(r.control["route"]) == {"indirect", "direct"}
