@@ -8,6 +8,7 @@ import warnings
 
 from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, open_session_source, save_predictor
 from ._common import claimed, whole_number
+from .convert import add_blank_option, blank_outputs
 
 __all__ = ["add_parser", "run"]
 
@@ -46,6 +47,7 @@ def add_parser(subparsers) -> None:
                    help="subspace, lsq, hankel: fit on the outputs minus their training mean (for a baseline "
                    "offset); predictions and plans stay in the recorded units (arx fits an intercept instead)")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
+    add_blank_option(p)
 
 
 def _settings(args) -> dict:
@@ -105,6 +107,9 @@ def _fit(args, settings):
     """``fit_route`` on the session file; its warnings become one stderr line each."""
     with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
         warnings.simplefilter("always")
+        session, blanked = blank_outputs(session, args.blank_ms)
+        if blanked:
+            print(blanked)
         try:
             result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,
                                test_fraction=args.test_fraction, horizon_steps=args.horizon)
