@@ -21,6 +21,7 @@ from .registry import MethodEntry
 from .routes import fit_route, make_estimator, FitResult, METHODS
 from .trial_sources import open_session_source
 from .patterns import Pattern, PatternPrediction, load_pattern, predict_pattern, rest_window, trial_end_window
+from . import from_recording  # noqa: F401  (adds Session.from_mne and Session.from_neo)
 
 __all__ = [
     "BaseEstimator",

@@ -418,20 +418,6 @@ class Session(TrialLayout):
         """The training and held-out sessions of a :class:`TrialSplit`."""
         return self.select_trials(split.train), self.select_trials(split.test)
 
-    @classmethod
-    def from_mne(cls, raw, description) -> "Session":
-        """A session from an MNE ``Raw`` object and a description (a dict of its tables, or a parsed one): see
-        :func:`stimsteer.sysid.from_recording.session_from_mne`."""
-        from .from_recording import session_from_mne
-        return session_from_mne(raw, description)
-
-    @classmethod
-    def from_neo(cls, block, description, *, segment: int = 0) -> "Session":
-        """A session from a Neo ``Block`` (or ``Segment``) and a description: see
-        :func:`stimsteer.sysid.from_recording.session_from_neo`."""
-        from .from_recording import session_from_neo
-        return session_from_neo(block, description, segment=segment)
-
     def replace(self, **changes) -> "Session":
         """A validated copy with some fields replaced (``dataclasses.replace``)."""
         return dataclasses.replace(self, **changes)

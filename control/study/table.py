@@ -22,8 +22,8 @@ Three ways to describe a study:
 
 * **A BIDS dataset** (a folder with ``dataset_description.json``): each recording with an ``events.tsv`` is
   converted, following a description file (``stimsteer study --description``), into a session file of our HDF5
-  layout beside the output (:func:`stimsteer.sysid.io.bids_recordings`; reused on a rerun), subject and session
-  from the BIDS entities, the task as the condition.
+  layout beside the output (:mod:`stimsteer.control.study.bids`; reused on a rerun), subject and session from the
+  BIDS entities, the task as the condition.
 
 The table holds, per session: subject, session, order, condition, group, file, content hash (SHA-256 of the data,
 :meth:`Session.content_hash`), trials, channels and rate. Files are opened one at a time and closed (our HDF5
@@ -118,9 +118,6 @@ def describe_study(path, *, min_trials: int = 4, channels=None, description=None
     if path.is_file():
         name, settings, entries = _read_study_file(path)
     elif (path / "dataset_description.json").is_file():
-        if isinstance(description, (str, Path)):
-            from ...sysid.description import load_description
-            description = load_description(description)
         name, settings, entries = path.name, {}, _bids_entries(path, description, convert_dir)
     else:
         name, settings, entries = path.name, {}, _folder_entries(path)
@@ -200,9 +197,9 @@ def _folder_entries(root: Path) -> list:
 
 
 def _bids_entries(root: Path, description, convert_dir) -> list:
-    """The recordings of a BIDS dataset, converted by :func:`stimsteer.sysid.io.bids_recordings` into
+    """The recordings of a BIDS dataset, converted by :func:`.bids.convert_bids_dataset` into
     ``convert_dir`` following ``description`` (both required for a BIDS study)."""
-    from ...sysid.io import bids_recordings
+    from .bids import convert_bids_dataset
 
     events = list(root.glob("sub-*/**/*_events.tsv"))
     if not events:
@@ -213,7 +210,7 @@ def _bids_entries(root: Path, description, convert_dir) -> list:
         raise SessionError(f"{root} is a BIDS dataset: a study of it needs a description of how its recordings "
                            "become sessions (outputs, pulses, trials): give --description TOML (see `stimsteer "
                            "convert`).")
-    rows = bids_recordings(root, description=description, out_dir=convert_dir)
+    rows = convert_bids_dataset(root, description=description, out_dir=convert_dir)
     return [{"file": Path(r["file"]), "subject": str(r["subject"]), "session": str(r["session"]),
              "order": k + 1, "condition": r.get("condition"), "group": ""} for k, r in enumerate(rows)]
 

@@ -28,8 +28,7 @@ from .detect import detect_format, detect_recording
 from .dispatch import load_session, save_session
 from .hdf5 import SessionFile, open_session_file
 from .tables import comment_lines
-from .bids import bids_recordings
 
-__all__ = ["LAYOUT_NAME", "LAYOUT_VERSION", "SessionFile", "bids_recordings", "comment_lines", "detect_format", "detect_recording",
+__all__ = ["LAYOUT_NAME", "LAYOUT_VERSION", "SessionFile", "comment_lines", "detect_format", "detect_recording",
            "load_session",
            "open_session_file", "save_session"]

@@ -113,46 +113,34 @@ def _declared_unit(sidecar: Path, column: str) -> str | None:
 
 
 # ------------------------------------------------------------------------------------------------ a dataset as a study
-def bids_recordings(root, *, description, out_dir, datatype: str = "ieeg") -> list[dict]:
-    """Every recording of a BIDS dataset converted to a session file of our HDF5 layout, for a study.
-
-    Each ``datatype`` recording that has an ``events.tsv`` beside it is read with :func:`read_bids` and built with
-    ``description`` (its ``[recording] bids`` entities are set to the recording's own), then written to
-    ``out_dir`` (never into the dataset). A file converted earlier from the same source (same size and
-    modification time) with the same description is reused, so a rerun converts only new recordings.
+def bids_recordings(root, *, datatype: str = "ieeg") -> list[dict]:
+    """The recordings of a BIDS dataset that carry stimulation information (an ``events.tsv`` beside them).
 
     Parameters
     ----------
     root : str or Path
         The dataset's root (holding ``dataset_description.json``).
-    description : Description or dict
-        How a recording becomes a session (:mod:`stimsteer.sysid.description`): outputs, pulses, trials.
-    out_dir : str or Path
-        Folder for the converted session files (created when missing).
     datatype : str, default "ieeg"
 
     Returns
     -------
     list of dict
-        One per recording, in BIDS order: ``file`` (the session file), ``subject``, ``session`` (the BIDS session,
-        or the task/run when the dataset has no sessions), ``condition`` (the task), ``source`` (the raw file).
+        One per recording, in BIDS order: ``entities`` (subject, session, task, run, acquisition: those set, for
+        :func:`read_bids`), ``subject``, ``session`` (the BIDS session, or task and run when the dataset has no
+        sessions), ``condition`` (the task), ``source`` (the raw data file, a Path), ``name`` (its BIDS base name).
 
     Raises
     ------
     SessionError
-        No recording with an ``events.tsv`` (no stimulation information), or a recording the description does
-        not fit (the message names the file).
+        No recording with an ``events.tsv``: the dataset holds no stimulation information.
     FileFormatError
         mne-bids missing or ``root`` not a BIDS root.
     """
-    from ..description import Description, parse_description
-
     root = Path(root)
     if find_bids_root(root) != root.resolve():
         raise FileFormatError(f"{root} is not the root of a BIDS dataset (no dataset_description.json there); give "
                               "the dataset's top folder.")
     mne_bids = _import_mne_bids(root)
-    desc = description if isinstance(description, Description) else parse_description(description)
     found = [p for p in mne_bids.BIDSPath(root=root, datatype=datatype).match()
              if p.suffix == datatype and p.extension in _DATA_EXTENSIONS
              and p.copy().update(suffix="events", extension=".tsv").fpath.is_file()]
@@ -160,42 +148,12 @@ def bids_recordings(root, *, description, out_dir, datatype: str = "ieeg") -> li
         raise SessionError(f"the BIDS dataset {root} has no {datatype} recording with an events.tsv, so no "
                            "stimulation information; add the stimulation events (onset and the "
                            f"{STIM_SITE}/{STIM_CURRENT} columns) to each recording's events.tsv.")
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    return [_converted(bp, root, desc, out_dir) for bp in found]
-
-
-def _converted(bp, root: Path, desc, out_dir: Path) -> dict:
-    """One recording as a session file in ``out_dir`` (reused when converted before from the same source)."""
-    import hashlib
-
-    from ..description import parse_description
-    from ..from_recording import build_session
-    from .dispatch import save_session
-    from .hdf5 import open_session_file
-
-    ent = {"subject": bp.subject, "session": bp.session, "task": bp.task, "run": bp.run,
-           "acquisition": bp.acquisition}
-    tables = {**desc.as_dict(), "recording": {"bids": {k: v for k, v in ent.items() if v is not None}}}
-    stat = bp.fpath.stat()
-    stamp = hashlib.sha256(repr((str(bp.fpath.resolve()), stat.st_size, stat.st_mtime_ns,
-                                 sorted(tables.items(), key=str))).encode()).hexdigest()
-    target = out_dir / f"{bp.basename}.h5"
-    row = {"file": target, "subject": str(bp.subject),
-           "session": str(bp.session or "-".join(str(x) for x in (bp.task, bp.run) if x)),
-           "condition": str(bp.task or ""), "source": str(bp.fpath)}
-    if target.is_file():
-        try:
-            with open_session_file(target) as f:
-                if f.metadata.get("bids_conversion") == stamp:
-                    return row
-        except (OSError, FileFormatError):
-            pass  # unreadable or foreign: converted again below
-    one = parse_description(tables, folder=desc.folder)
-    rec = read_bids(root, datatype=bp.datatype, **{k: v for k, v in ent.items() if v is not None})
-    try:
-        session = build_session(rec, one, source=str(bp.fpath))
-    except SessionError as exc:
-        raise SessionError(f"{bp.fpath.name}: {exc}") from None
-    save_session(session.replace(metadata={**session.metadata, "bids_conversion": stamp}), target, overwrite=True)
-    return row
+    out = []
+    for bp in found:
+        ent = {k: v for k, v in zip(_ENTITIES, (bp.subject, bp.session, bp.task, bp.run, bp.acquisition))
+               if v is not None}
+        out.append({"entities": ent, "subject": str(bp.subject),
+                    "session": str(bp.session or "-".join(str(x) for x in (bp.task, bp.run) if x)),
+                    "condition": str(bp.task or ""), "source": bp.fpath, "name": bp.basename,
+                    "datatype": datatype})
+    return out

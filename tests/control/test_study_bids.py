@@ -13,7 +13,8 @@ mne_bids = pytest.importorskip("mne_bids")
 from stimsteer.control.cli import main
 from stimsteer.control.study import describe_study
 from stimsteer.sysid.exceptions import SessionError
-from stimsteer.sysid.io import bids_recordings, load_session
+from stimsteer.control.study.bids import convert_bids_dataset
+from stimsteer.sysid.io import load_session
 
 pytestmark = pytest.mark.slow
 
@@ -61,14 +62,14 @@ def dataset(tmp_path_factory):
 
 def test_bids_recordings_become_session_files_and_are_reused(dataset, tmp_path):
     root, inputs = dataset
-    rows = bids_recordings(root, description=DESC, out_dir=tmp_path / "conv")
+    rows = convert_bids_dataset(root, description=DESC, out_dir=tmp_path / "conv")
     assert [(r["subject"], r["session"], r["condition"]) for r in rows] == [
         ("01", "1", "stim"), ("01", "2", "stim"), ("02", "1", "stim"), ("02", "2", "stim")]
     s = load_session(rows[0]["file"])
     assert s.input_names == ("LA1-LA2",) and s.n_trials == 6
     assert np.allclose(s.u[:, 0], inputs[("01", "1")], rtol=1e-12)  # the pulse currents of events.tsv, in A
     stamp = [r["file"].stat().st_mtime_ns for r in rows]
-    again = bids_recordings(root, description=DESC, out_dir=tmp_path / "conv")  # nothing converted again
+    again = convert_bids_dataset(root, description=DESC, out_dir=tmp_path / "conv")  # nothing converted again
     assert [r["file"].stat().st_mtime_ns for r in again] == stamp
     assert sorted(p.name for p in root.rglob("*.h5")) == []  # nothing written into the dataset
 

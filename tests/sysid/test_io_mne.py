@@ -14,6 +14,7 @@ from stimsteer.control.cli import main
 from stimsteer.sysid import load_session
 from stimsteer.sysid.description import parse_description
 from stimsteer.sysid.exceptions import FileFormatError, SessionError
+from stimsteer.sysid import Session
 from stimsteer.sysid.from_recording import build_session, read_recording, session_from_mne
 from stimsteer.sysid.io.detect import detect_recording
 from stimsteer.sysid.io.mne import read_mne_file
@@ -112,6 +113,8 @@ def test_the_python_api_on_a_raw_object_equals_the_file_route(raw, files):
     a = session_from_mne(raw, desc)
     b = build_session(read_recording(files["fif"], desc), desc)
     assert np.allclose(a.y, b.y, rtol=1e-6, atol=1e-6) and a.trials.tolist() == b.trials.tolist()
+    c = Session.from_mne(raw, DESC)  # the classmethod is the same call
+    assert np.array_equal(c.y, a.y) and np.array_equal(c.u, a.u) and c.trials.tolist() == a.trials.tolist()
 
 
 def test_convert_command_writes_a_session_and_leaves_the_source_alone(files, tmp_path, capsys):
