@@ -2,8 +2,9 @@
 
 Every function reads the stimulation onsets from the session's inputs (:func:`stimulation_onsets`: a site turning
 on, ``|u|`` rising above a threshold, either polarity) and changes the **outputs only**: the inputs are never
-touched. :func:`blank_artifacts` (also exported by :mod:`stimsteer.sysid.prep`) marks samples invalid instead; the
-mask is per sample, so it hides the inputs of the blanked samples too, and warns when that leaves an input unseen.
+touched. :func:`blank_artifacts` (also exported by :mod:`stimsteer.sysid.prep`) hides the outputs instead
+(``Session.output_mask``): fits leave out the rows and columns that would predict a blanked output and scores skip
+blanked outputs, while the inputs of those samples stay valid, so a pulse one sample long is still seen.
 
 Detection
 ---------
@@ -36,6 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .exceptions import SessionError
+from .output_mask import output_valid
 from .session import Session
 
 __all__ = ["blank_artifacts", "stimulation_onsets", "ArtifactReport", "detect_artifacts", "subtract_template",
@@ -170,7 +172,8 @@ def _locked_sums(source, cols, threshold: float, pre: int, width: int, chunk_row
             u, y, mask = source.read(lo, hi)
             on = np.flatnonzero(stimulation_onsets(np.asarray(u)[:, cols], threshold=threshold).any(axis=1))
             k = on[(on - pre - 1 >= 0) & (on + width <= hi - lo) & (lo + on >= c0) & (lo + on < c0 + chunk_rows)]
-            bad = np.concatenate(([0], np.cumsum(~np.asarray(mask, dtype=bool))))
+            # a blanked output is no measurement: onsets whose windows hold one are not used
+            bad = np.concatenate(([0], np.cumsum(~(np.asarray(mask, dtype=bool) & output_valid(source, lo, hi)))))
             k = k[bad[k + width] - bad[k - pre - 1] == 0]
             if k.size:
                 y = np.asarray(y, dtype=np.float64)

@@ -57,3 +57,21 @@ def test_convert_blanks_outputs_and_the_file_keeps_them(tmp_path, capsys):
     assert "blanked outputs: 120 sample(s)" in capsys.readouterr().out  # 40 onsets x 3 samples
     s = load_session(out)
     assert (~s.output_mask).sum() == 120 and s.mask.all() and s.u[::100, 0].tolist() == [1.0] * 40
+
+
+def test_the_blanked_demo_is_no_longer_flagged_and_inspect_says_what_is_hidden(tmp_path, capsys):
+    from stimsteer.demo_data import make_demo
+
+    demo = Path(make_demo.__file__).parent / make_demo.SESSION_FILE
+    desc = tmp_path / "d.toml"
+    desc.write_text('[channels]\ninputs = ["stim_a", "stim_b", "stim_c"]\n'
+                    'outputs = ["rec_01", "rec_02", "rec_03", "rec_04", "rec_05", "rec_06", "rec_07", "rec_08"]\n')
+    out = tmp_path / "b.h5"
+    assert main(["inspect", str(demo)]) == 0
+    assert "<- artifact" in capsys.readouterr().out  # before: the demo's artifacts, 4.2-10.7x
+    assert main(["convert", str(demo), "--description", str(desc), "--out", str(out), "--blank-outputs-ms", "8"]) == 0
+    assert "after 781 stimulation onset(s); inputs kept" in capsys.readouterr().out  # 8 ms at 250 Hz: 2 samples
+    assert main(["inspect", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "blanked outputs: 1518 in-trial sample(s) (8.4 %)" in text and "<- artifact" not in text
+    assert "stimulation artifacts in" not in text
