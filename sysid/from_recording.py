@@ -50,7 +50,8 @@ def read_recording(path, description: Description) -> Recording:
     kind = detect_recording(path)
     if kind in ("edf", "bdf", "brainvision", "fif"):
         from .io.mne import read_mne_file
-        return read_mne_file(path, kind)
+        return read_mne_file(path, kind, names=_named_channels(description),
+                             types=description.channels.get("output_types"))
     if kind == "neo-matlab":
         from .io.neo import read_neo_file
         return read_neo_file(path, io="NeoMatlabIO", segment=int(rec_opts.get("segment", 0)))
@@ -64,6 +65,19 @@ def read_recording(path, description: Description) -> Recording:
                                     "[recording] bids = {subject = ..., task = ...} (and session, run, acquisition "
                                     "when the dataset has them).")
     return read_bids(path, **{k: (str(v) if v is not None else None) for k, v in entities.items()})
+
+
+def _named_channels(desc: Description) -> list[str]:
+    """The channels a description reads by name (inputs, outputs, a trigger); empty when it names no input or no
+    output (then every channel is read)."""
+    ch = desc.channels
+    inputs, outputs = list(ch.get("inputs") or []), list(ch.get("outputs") or [])
+    if not inputs and not desc.pulses:
+        return []
+    if not outputs and not ch.get("output_types"):
+        return []
+    trigger = [str(desc.trials["trigger"])] if "trigger" in (desc.trials or {}) else []
+    return inputs + outputs + trigger
 
 
 def _session_kind(path) -> str | None:
