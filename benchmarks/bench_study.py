@@ -84,12 +84,46 @@ def memory(root, st) -> None:
             print(f"  {kind:9s} task peak {peak / 1e6:.2f} MB  ratio {peak / baseline:.2f}  (target <= 2)")
 
 
+def _spin(n: int) -> float:
+    """A fixed amount of pure-CPU work (no memory traffic to speak of); returns its own wall time."""
+    t0 = time.perf_counter()
+    x = 0.0
+    for i in range(n):
+        x += (i % 7) * 0.5
+    return time.perf_counter() - t0
+
+
+def machine_ceiling(n: int = 6_000_000) -> float:
+    """What 2 processes gain over 1 on this machine right now: the same CPU-bound work twice, one after the other in
+    one process, then side by side in two (the ceiling any 2-worker speed-up can reach under the current load)."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(max_workers=2) as pool:
+        list(pool.map(_spin, [1000, 1000]))  # start both processes before timing
+        t0 = time.perf_counter()
+        list(pool.map(_spin, [n]))
+        list(pool.map(_spin, [n]))
+        serial = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        list(pool.map(_spin, [n, n]))
+        parallel = time.perf_counter() - t0
+    return serial / parallel
+
+
+def _load() -> str:
+    return "/".join(f"{v:.1f}" for v in os.getloadavg())
+
+
 def speed(root, st):
+    ceiling_before, load_before = machine_ceiling(), _load()
     one, t1 = _timed(root, st, 1)
     two, t2 = _timed(root, st, 2)
+    ceiling_after, load_after = machine_ceiling(), _load()
     same = _numbers(one).equals(_numbers(two))
     print(f"speed: {len(one.tasks)} tasks; 1 worker {t1:.1f} s, 2 workers {t2:.1f} s; speed-up {t1 / t2:.2f} "
           f"(target >= 1.8); identical numbers: {same}")
+    print(f"  machine: load average (1/5/15 min) {load_before} before, {load_after} after; the same pure-CPU work "
+          f"in 2 processes vs 1: {ceiling_before:.2f}x before, {ceiling_after:.2f}x after (the ceiling now)")
     return two
 
 

@@ -28,6 +28,7 @@ from .ensemble import BootstrapEnsemble, interval_coverage, resample_trials
 from .recursive import RecursiveRidgeArx
 from .switched import ModelSequence
 from .conditions import ConditionFits, condition_change_table, fit_per_condition, sliding_window_fits, step_gains
+from . import from_recording  # noqa: F401  (adds Session.from_mne and Session.from_neo)
 
 __all__ = [
     "InputAffineForm", "IntervalForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",

@@ -6,7 +6,7 @@ __all__ = ["SourceView"]
 
 #: What a view takes over from its source unchanged (the sample grid and the channels).
 _SHARED = ("trials", "n_samples", "n_inputs", "n_outputs", "sample_rate_hz", "input_names", "output_names",
-           "input_units", "output_units")
+           "input_units", "output_units", "output_mask")
 
 
 class SourceView:

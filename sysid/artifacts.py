@@ -2,8 +2,9 @@
 
 Every function reads the stimulation onsets from the session's inputs (:func:`stimulation_onsets`: a site turning
 on, ``|u|`` rising above a threshold, either polarity) and changes the **outputs only**: the inputs are never
-touched. :func:`blank_artifacts` (also exported by :mod:`stimsteer.sysid.prep`) marks samples invalid instead; the
-mask is per sample, so it hides the inputs of the blanked samples too, and warns when that leaves an input unseen.
+touched. :func:`blank_artifacts` (also exported by :mod:`stimsteer.sysid.prep`) hides the outputs instead
+(``Session.output_mask``): fits leave out the rows and columns that would predict a blanked output and scores skip
+blanked outputs, while the inputs of those samples stay valid, so a pulse one sample long is still seen.
 
 Detection
 ---------
@@ -31,12 +32,12 @@ the last sample before the onset and the first sample after the window (inside t
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
 
-from .exceptions import SessionError, StimsteerWarning
+from .exceptions import SessionError
+from .output_mask import output_valid
 from .session import Session
 
 __all__ = ["blank_artifacts", "stimulation_onsets", "ArtifactReport", "detect_artifacts", "subtract_template",
@@ -171,7 +172,8 @@ def _locked_sums(source, cols, threshold: float, pre: int, width: int, chunk_row
             u, y, mask = source.read(lo, hi)
             on = np.flatnonzero(stimulation_onsets(np.asarray(u)[:, cols], threshold=threshold).any(axis=1))
             k = on[(on - pre - 1 >= 0) & (on + width <= hi - lo) & (lo + on >= c0) & (lo + on < c0 + chunk_rows)]
-            bad = np.concatenate(([0], np.cumsum(~np.asarray(mask, dtype=bool))))
+            # a blanked output is no measurement: onsets whose windows hold one are not used
+            bad = np.concatenate(([0], np.cumsum(~(np.asarray(mask, dtype=bool) & output_valid(source, lo, hi)))))
             k = k[bad[k + width] - bad[k - pre - 1] == 0]
             if k.size:
                 y = np.asarray(y, dtype=np.float64)
@@ -335,7 +337,13 @@ def _onset_columns(session: Session, inputs) -> list[int]:
 
 
 def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float = 0.0, inputs=None) -> Session:
-    """Mark invalid a window of ``window_s`` seconds starting at every stimulation onset.
+    """Blank the recorded outputs in a window of ``window_s`` seconds starting at every stimulation onset.
+
+    Only the outputs are blanked (``Session.output_mask``); the inputs of those samples stay valid, so a pulse
+    that lasts one sample still enters every regression row and Hankel column that sees it as an input. Fits drop
+    the rows and columns whose predicted outputs are blanked, and scores skip blanked outputs. The blanked outputs
+    are replaced by a straight line across each blanked run (held at a trial's edge), which is what a past-output
+    regressor sees there; those values are never fitted nor scored as targets.
 
     Parameters
     ----------
@@ -354,16 +362,8 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
     Returns
     -------
     Session
-        With the blanked samples marked invalid (inputs and outputs untouched); ``metadata["prep"]`` records the
-        number of onsets and of newly masked samples.
-
-    Warns
-    -----
-    StimsteerWarning
-        When every stimulating sample of an input is blanked: the mask is per sample, so regression rows that see a
-        blanked output are dropped together with the inputs of those samples; with one sample per pulse nothing of
-        that input is left. Use :func:`stimsteer.sysid.artifacts.subtract_template` or
-        :func:`~stimsteer.sysid.artifacts.interpolate_artifacts`, which change the outputs only.
+        With the blanked outputs marked in ``output_mask`` and filled as above (inputs, mask and trials
+        untouched); ``metadata["prep"]`` records the number of onsets and of newly blanked samples.
 
     Raises
     ------
@@ -387,23 +387,26 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
     hits = np.zeros(session.n_samples + 1, dtype=np.int64)
     np.add.at(hits, onsets, 1)
     np.add.at(hits, np.minimum(onsets + width, session.n_samples), -1)
-    mask = session.mask & (np.cumsum(hits[:-1]) == 0)
+    output_mask = session.output_mask & (np.cumsum(hits[:-1]) == 0)
     step = {"step": "blank_artifacts", "window_s": window_s, "onset_threshold": onset_threshold,
-            "n_onsets": int(onsets.size), "n_blanked": int((session.mask & ~mask).sum())}
-    _warn_if_inputs_lost(session, mask)
-    return session.replace(mask=mask, metadata=_record(session, step))
+            "window_samples": width, "n_onsets": int(onsets.size),
+            "n_blanked": int((session.mask & session.output_mask & ~output_mask).sum()), "blanks": "outputs only"}
+    y = _bridge_blanked(session, output_mask)
+    return session.replace(y=y, output_mask=output_mask, metadata=_record(session, step))
 
 
-def _warn_if_inputs_lost(session: Session, mask: np.ndarray) -> None:
-    # The session's mask is per sample, so blanking hides the inputs of the blanked samples too; when every
-    # stimulating sample of a site is blanked (one sample per pulse), nothing is left to identify its effect.
-    inside = session._in_trial()
-    lost = [name for j, name in enumerate(session.input_names)
-            if np.any(session.u[session.mask & inside, j] != 0) and not np.any(session.u[mask & inside, j] != 0)]
-    if lost:
-        warnings.warn(
-            f"blanking masked every stimulating sample of input(s) {lost}: the mask is per sample, so those inputs "
-            "are never seen and their effect cannot be identified (a fit reports that the input never varies). "
-            "Change the outputs only instead: stimsteer.sysid.artifacts.subtract_template or interpolate_artifacts "
-            "(or [artifacts] method = \"template\" / \"interpolate\" in a description).",
-            StimsteerWarning, stacklevel=3)
+def _bridge_blanked(session: Session, output_mask: np.ndarray) -> np.ndarray:
+    """Outputs with each blanked run replaced by the straight line between its valid neighbours in the same trial
+    (held at a trial's edge); samples masked as a whole are left as they are (they may be NaN)."""
+    y = np.array(session.y)
+    for a, b in session.trials:
+        idx = np.arange(a, b)
+        good = session.mask[a:b] & output_mask[a:b]
+        fill = session.mask[a:b] & ~output_mask[a:b]
+        if not fill.any() or not good.any():
+            continue
+        for j in range(y.shape[1]):
+            y[idx[fill], j] = np.interp(idx[fill], idx[good], y[idx[good], j])
+    return y
+
+

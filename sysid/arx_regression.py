@@ -8,6 +8,7 @@ import numpy as np
 
 from .exceptions import InvalidParameterError, SessionError
 from ._lagged import _Moments
+from .output_mask import output_valid_segments
 
 
 # ------------------------------------------------------------------------------------------------ data access
@@ -27,7 +28,9 @@ def _pieces(session, n_lags: int, n_folds: int):
     Folds group whole trials (round-robin over the trials that have rows). With fewer than two such trials the
     rows are cut into ``n_folds`` contiguous blocks instead.
     """
-    segs = [(s + n_lags, e) for s, e in session.segments(min_length=n_lags + 1)]
+    # the output-mask hook: rows whose target output is blanked (Session.output_mask) are left out
+    segs = [(s + n_lags, e) for s, e in output_valid_segments(
+        session, session.segments(min_length=n_lags + 1), n_lags + 1, n_lags)]
     starts = np.asarray(session.trials)[:, 0]
     trial_of = [int(np.searchsorted(starts, a - n_lags, side="right") - 1) for a, _ in segs]
     used = sorted(set(trial_of))

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import artifacts as _art
+from .artifacts import interpolate_artifacts, subtract_template
 from .biomarkers import add_band_power_outputs, binned_spike_rate, remove_line_noise
 from .description import Description, parse_description
 from .events import (align_channel, encode_pulses, pulse_train_onsets, select_events, trials_from_events,
@@ -50,7 +50,8 @@ def read_recording(path, description: Description) -> Recording:
     kind = detect_recording(path)
     if kind in ("edf", "bdf", "brainvision", "fif"):
         from .io.mne import read_mne_file
-        return read_mne_file(path, kind)
+        return read_mne_file(path, kind, names=_named_channels(description),
+                             types=description.channels.get("output_types"))
     if kind == "neo-matlab":
         from .io.neo import read_neo_file
         return read_neo_file(path, io="NeoMatlabIO", segment=int(rec_opts.get("segment", 0)))
@@ -64,6 +65,19 @@ def read_recording(path, description: Description) -> Recording:
                                     "[recording] bids = {subject = ..., task = ...} (and session, run, acquisition "
                                     "when the dataset has them).")
     return read_bids(path, **{k: (str(v) if v is not None else None) for k, v in entities.items()})
+
+
+def _named_channels(desc: Description) -> list[str]:
+    """The channels a description reads by name (inputs, outputs, a trigger); empty when it names no input or no
+    output (then every channel is read)."""
+    ch = desc.channels
+    inputs, outputs = list(ch.get("inputs") or []), list(ch.get("outputs") or [])
+    if not inputs and not desc.pulses:
+        return []
+    if not outputs and not ch.get("output_types"):
+        return []
+    trigger = [str(desc.trials["trigger"])] if "trigger" in (desc.trials or {}) else []
+    return inputs + outputs + trigger
 
 
 def _session_kind(path) -> str | None:
@@ -223,9 +237,9 @@ def _apply_artifacts(session: Session, spec: dict) -> Session:
     if kw["window_s"] is None:
         raise InvalidParameterError("[artifacts] needs window_s, the artifact's length in seconds.")
     if method == "template":
-        return _art.subtract_template(session, scale=str(spec.get("scale", "amplitude")), **kw)
+        return subtract_template(session, scale=str(spec.get("scale", "amplitude")), **kw)
     if method == "interpolate":
-        return _art.interpolate_artifacts(session, **kw)
+        return interpolate_artifacts(session, **kw)
     if method == "blank":
         return blank_artifacts(session, window_s=kw["window_s"], onset_threshold=kw["threshold"])
     raise InvalidParameterError(f"[artifacts] method must be 'blank', 'template' or 'interpolate'; got {method!r}.")
@@ -348,3 +362,21 @@ def session_from_neo(block, description, *, segment: int = 0) -> Session:
     from .io.neo import recording_from_neo
     desc = description if isinstance(description, Description) else parse_description(description)
     return build_session(recording_from_neo(block, segment=segment), desc, source="neo.Block")
+
+
+# Session.from_mne / Session.from_neo: attached here (this module is imported with the package) because the
+# session module cannot import this one back without an import cycle.
+def _from_mne(cls, raw, description) -> Session:
+    """A session from an MNE ``Raw`` object and a description (a dict of its tables, or a parsed one): see
+    :func:`stimsteer.sysid.from_recording.session_from_mne`."""
+    return session_from_mne(raw, description)
+
+
+def _from_neo(cls, block, description, *, segment: int = 0) -> Session:
+    """A session from a Neo ``Block`` (or ``Segment``) and a description: see
+    :func:`stimsteer.sysid.from_recording.session_from_neo`."""
+    return session_from_neo(block, description, segment=segment)
+
+
+Session.from_mne = classmethod(_from_mne)
+Session.from_neo = classmethod(_from_neo)

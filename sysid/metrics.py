@@ -10,7 +10,7 @@ Normalisations (per output channel, over the scored samples of that channel and 
 
 Scores are pooled over all prediction windows of the scored session. Windows are built inside valid segments only
 (:meth:`Session.segments`): neither the past window nor the predicted span crosses a trial boundary or a masked
-sample.
+sample. Outputs blanked by ``Session.output_mask`` (stimulation artifacts) are predicted but not scored.
 
 One scoring definition, used by ``stimsteer fit`` (its printed held-out scores), ``stimsteer predict
 --score-trial`` and ``stimsteer bench``: k-step windows start at every ``stride``-th sample ``t`` of a valid
@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 
 from .exceptions import SessionError
+from .output_mask import output_valid
 from .residual_tests import CrossCorrelation, LjungBox, input_residual_xcorr, ljung_box
 
 __all__ = ["r2", "nrmse", "vaf", "Scores", "kstep_scores", "freerun_scores", "LjungBox", "ljung_box",
@@ -97,8 +98,12 @@ class _Pooled:
         self.me, self.Me = np.zeros(shape), np.zeros(shape)
         self.sse = np.zeros(shape)
 
-    def add(self, y, e):
-        """Add samples stacked on axis 0: ``y, e`` of shape (n_new, *shape)."""
+    def add(self, y, e, valid=None):
+        """Add samples stacked on axis 0: ``y, e`` of shape (n_new, *shape); ``valid`` (bool, broadcastable to
+        them) keeps only the samples whose outputs are not blanked."""
+        if valid is not None and not np.all(valid):
+            self._add_weighted(y, e, np.broadcast_to(valid, y.shape))
+            return
         nb = y.shape[0]
         if nb == 0:
             return
@@ -111,6 +116,23 @@ class _Pooled:
             setattr(self, mean_attr, ma + delta * nb / n)
             setattr(self, m2_attr, Ma + Mb + delta ** 2 * self.n * nb / n)
         self.sse += (e ** 2).sum(axis=0)
+        self.n = n
+
+    def _add_weighted(self, y, e, valid):
+        # the same merge with per-entry counts: blanked samples count nowhere (their values are bridged, not measured)
+        w = valid.astype(np.float64)
+        nb = w.sum(axis=0)
+        n = self.n + nb
+        frac = np.where(n > 0, _safe_ratio(nb, n), 0.0)
+        for mean_attr, m2_attr, x in (("my", "My", y), ("me", "Me", e)):
+            x = np.where(valid, x, 0.0)
+            mb = np.where(nb > 0, _safe_ratio(x.sum(axis=0), nb), 0.0)
+            Mb = (w * (x - mb) ** 2).sum(axis=0)
+            ma, Ma = getattr(self, mean_attr), getattr(self, m2_attr)
+            delta = mb - ma
+            setattr(self, mean_attr, ma + delta * frac)
+            setattr(self, m2_attr, Ma + Mb + delta ** 2 * self.n * frac)
+        self.sse += (np.where(valid, e, 0.0) ** 2).sum(axis=0)
         self.n = n
 
     def table(self) -> dict:
@@ -352,12 +374,13 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
     pooled, n_windows = _Pooled((H, len(names))), 0
     for s, e in session.segments(min_length=P + H):
         u, y, _mask = session.read(s, e)
+        scored = output_valid(session, s, e)  # blanked outputs are not scored (Session.output_mask)
         starts = np.arange(P, e - s - H + 1, stride)
         for i in range(0, starts.size, _BATCH_WINDOWS):
             t0 = starts[i: i + _BATCH_WINDOWS, None]
             past, fut = t0 + np.arange(-P, 0), t0 + np.arange(H)
             yhat = _predict_batch(predictor, u[past], y[past], u[fut])
-            pooled.add(y[fut], y[fut] - yhat)
+            pooled.add(y[fut], y[fut] - yhat, scored[fut][..., None])
             n_windows += t0.shape[0]
     if n_windows == 0:
         raise SessionError(
@@ -410,7 +433,7 @@ def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Score
         stop = e if max_steps is None else min(e, s + P + int(max_steps))
         u, y, _mask = session.read(s, stop)
         yhat = _free_run(predictor, u, y, P, limit)
-        pooled.add(y[P:], y[P:] - yhat)
+        pooled.add(y[P:], y[P:] - yhat, output_valid(session, s + P, stop)[:, None])
         n_seg += 1
         longest = max(longest, stop - s - P)
     if n_seg == 0:

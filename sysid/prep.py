@@ -265,6 +265,7 @@ def resample_session(session: Session, *, target_rate_hz: float, max_denominator
     u = np.full((n_new, session.n_inputs), np.nan)
     y = np.full((n_new, session.n_outputs), np.nan)
     mask = np.zeros(n_new, dtype=bool)
+    output_mask = np.ones(n_new, dtype=bool)  # blanked outputs stay blanked wherever the filter reaches them
     trials = []
     for w in session.iter_trials():
         a2, b2 = -(-w.start * up // down), -(-w.stop * up // down)
@@ -276,10 +277,12 @@ def resample_session(session: Session, *, target_rate_hz: float, max_denominator
                 out[a2:b2] = signal.resample_poly(_fill_masked(x, w.mask), up, down, axis=0,
                                                   padtype="line")[: b2 - a2]
         mask[a2:b2] = _resampled_mask(w.mask, b2 - a2, up, down)
+        output_mask[a2:b2] = _resampled_mask(session.output_mask[w.start:w.stop], b2 - a2, up, down)
         trials.append((a2, b2))
     step = {"step": "resample", "from_hz": session.sample_rate_hz, "to_hz": session.sample_rate_hz * up / down,
             "up": int(up), "down": int(down)}
-    return session.replace(u=u, y=y, mask=mask, trials=trials, sample_rate_hz=session.sample_rate_hz * up / down,
+    return session.replace(u=u, y=y, mask=mask, output_mask=output_mask, trials=trials,
+                           sample_rate_hz=session.sample_rate_hz * up / down,
                            metadata=_record(session, step))
 
 

@@ -1,4 +1,4 @@
-"""The recorded stimulation session: inputs, outputs, trials, names, units and a validity mask.
+"""The recorded stimulation session: inputs, outputs, trials, names, units, a validity mask and an output mask.
 
 A :class:`Session` is the one container every other part of stimsteer reads. It is a frozen dataclass whose arrays
 are read-only copies, validated once at construction; every method that changes something returns a new session.
@@ -137,6 +137,13 @@ class Session(TrialLayout):
     mask : array_like of bool, shape (n_samples,), optional
         True where a sample is valid; False marks missing samples and blanked artifacts. Default all True.
         Values at masked samples are ignored (they may be NaN).
+    output_mask : array_like of bool, shape (n_samples,), optional
+        True where the recorded outputs may be scored and fitted as targets; False marks outputs hidden by a
+        stimulation artifact (:func:`stimsteer.sysid.artifacts.blank_artifacts`). Unlike ``mask`` it leaves the
+        inputs of those samples valid: a regression row or Hankel column whose *predicted* outputs are blanked
+        does not enter a fit, and blanked outputs are not scored, but rows that only see the inputs (or past
+        outputs) of a blanked sample are kept. Outputs there must be finite (blanking fills them by a straight line
+        across the window). Default all True.
     metadata : mapping, optional
         Free JSON-like metadata (strings, numbers, lists, dicts).
 
@@ -163,6 +170,7 @@ class Session(TrialLayout):
     output_units: tuple = None
     mask: np.ndarray = None
     metadata: Mapping = field(default_factory=dict)
+    output_mask: np.ndarray = None
 
     def __post_init__(self):
         u = _as_2d_float("u (inputs)", self.u)
@@ -177,6 +185,7 @@ class Session(TrialLayout):
             raise SessionError("the session holds no samples; give at least one sample of inputs and outputs.")
         rate = self._check_rate(self.sample_rate_hz)
         mask = self._check_mask(self.mask, n)
+        output_mask = self._check_mask(self.output_mask, n, "output_mask")
         trials = self._check_trials(self.trials, n)
         self._check_finite(u, y, mask)
         names = {
@@ -198,6 +207,7 @@ class Session(TrialLayout):
         set_(self, "y", _readonly(y))
         set_(self, "sample_rate_hz", rate)
         set_(self, "mask", _readonly(mask))
+        set_(self, "output_mask", _readonly(output_mask))
         set_(self, "trials", _readonly(trials))
         for k, v in {**names, **units}.items():
             set_(self, k, v)
@@ -215,17 +225,17 @@ class Session(TrialLayout):
         return rate
 
     @staticmethod
-    def _check_mask(mask, n: int) -> np.ndarray:
+    def _check_mask(mask, n: int, name: str = "mask") -> np.ndarray:
         if mask is None:
             return np.ones(n, dtype=bool)
         m = np.asarray(mask)
         if m.dtype != bool:
             if not np.isin(m, (0, 1)).all():
-                raise SessionError("mask must be boolean (True = valid sample); got values other than 0/1.")
+                raise SessionError(f"{name} must be boolean (True = valid sample); got values other than 0/1.")
             m = m.astype(bool)
         m = m.reshape(-1) if m.ndim == 2 and 1 in m.shape else m
         if m.shape != (n,):
-            raise SessionError(f"mask must have shape ({n},), one flag per sample; got {m.shape}.")
+            raise SessionError(f"{name} must have shape ({n},), one flag per sample; got {m.shape}.")
         return m
 
     @staticmethod
@@ -299,6 +309,12 @@ class Session(TrialLayout):
         inside = self._in_trial()
         return float((~self.mask & inside).sum() / max(inside.sum(), 1))
 
+    @property
+    def blanked_output_fraction(self) -> float:
+        """Fraction of valid in-trial samples whose outputs are blanked (``output_mask`` False)."""
+        valid = self._in_trial() & self.mask
+        return float((valid & ~self.output_mask).sum() / max(valid.sum(), 1))
+
     def _in_trial(self) -> np.ndarray:
         inside = np.zeros(self.n_samples, dtype=bool)
         for a, b in self.trials:
@@ -359,12 +375,13 @@ class Session(TrialLayout):
         u = np.concatenate([self.u[a:b] for a, b in parts])
         y = np.concatenate([self.y[a:b] for a, b in parts])
         mask = np.concatenate([self.mask[a:b] for a, b in parts])
+        output_mask = np.concatenate([self.output_mask[a:b] for a, b in parts])
         stops = np.cumsum([b - a for a, b in parts])
         trials = np.column_stack([np.concatenate(([0], stops[:-1])), stops])
         src = self.metadata.get("source_trials")
         origin = [int(src[i]) for i in idx] if src is not None and len(src) == self.n_trials else idx
         return dataclasses.replace(
-            self, u=u, y=y, mask=mask, trials=trials, metadata={**self.metadata, "source_trials": origin}
+            self, u=u, y=y, mask=mask, output_mask=output_mask, trials=trials, metadata={**self.metadata, "source_trials": origin}
         )
 
     def split(self, n_test: int | None = None, *, test_fraction: float = 0.25, seed: int = 0) -> TrialSplit:
@@ -414,6 +431,9 @@ class Session(TrialLayout):
             h.update(str(a.shape).encode())
         h.update(repr((self.sample_rate_hz, self.input_names, self.output_names,
                        self.input_units, self.output_units)).encode())
+        if not self.output_mask.all():  # sessions without blanked outputs keep the hashes they always had
+            h.update(b"output_mask")
+            h.update(np.ascontiguousarray(self.output_mask).tobytes())
         return h.hexdigest()
 
     def __repr__(self) -> str:
@@ -421,3 +441,4 @@ class Session(TrialLayout):
             f"Session(n_samples={self.n_samples}, n_inputs={self.n_inputs}, n_outputs={self.n_outputs}, "
             f"n_trials={self.n_trials}, sample_rate_hz={self.sample_rate_hz:g})"
         )
+

@@ -16,7 +16,35 @@ from ...sysid.from_recording import build_session, read_recording
 from ...sysid.io import save_session
 from ...sysid.quality import describe_session
 
-__all__ = ["add_parser", "run"]
+__all__ = ["add_parser", "run", "add_blank_option", "blank_outputs"]
+
+
+def add_blank_option(p) -> None:
+    """Declare ``--blank-outputs-ms`` (shared by ``convert`` and ``fit``)."""
+    p.add_argument("--blank-outputs-ms", dest="blank_ms", type=float, default=None, metavar="MS",
+                   help="hide the recorded outputs for MS milliseconds from every stimulation onset (the "
+                   "inputs stay valid; fits and scores skip the hidden outputs)")
+
+
+def blank_outputs(session, blank_ms):
+    """The session with its outputs blanked after every onset (``--blank-outputs-ms``), and a line saying what was
+    done (None when the option was not given). A lazily opened file is loaded first (blanking needs the inputs
+    of the whole recording to find the onsets)."""
+    if blank_ms is None:
+        return session, None
+    import math
+
+    from ...sysid.artifacts import blank_artifacts
+    from ...sysid.exceptions import InvalidParameterError
+
+    if not (math.isfinite(blank_ms) and blank_ms > 0):
+        raise InvalidParameterError(f"--blank-outputs-ms must be a positive number of milliseconds; got {blank_ms}.")
+    whole = session if hasattr(session, "replace") else session.to_session()
+    out = blank_artifacts(whole, window_s=blank_ms / 1000.0)
+    step = out.metadata["prep"][-1]
+    return out, (f"blanked outputs: {step['n_blanked']} sample(s) ({100 * out.blanked_output_fraction:.1f} % of the "
+                 f"valid in-trial outputs) in {step['window_samples']}-sample windows after {step['n_onsets']} "
+                 "stimulation onset(s); inputs kept")
 
 
 def add_parser(subparsers) -> None:
@@ -29,6 +57,7 @@ def add_parser(subparsers) -> None:
                    "(see stimsteer.sysid.description)")
     p.add_argument("--out", required=True, help="session file to write (.h5, .csv, .parquet or .nwb)")
     p.add_argument("--force", action="store_true", help="replace an existing output file")
+    add_blank_option(p)
 
 
 def run(args) -> int:
@@ -44,6 +73,7 @@ def run(args) -> int:
     with claim_output(out, force=args.force):
         recording = read_recording(args.recording, description)
         session = build_session(recording, description, source=str(args.recording))
+        session, blanked = blank_outputs(session, args.blank_ms)
         save_session(session, out, overwrite=args.force)
     print(describe_session(session).to_text())
     meta = session.metadata
@@ -55,5 +85,7 @@ def run(args) -> int:
         t = meta["trials_from_events"]
         print(f"trials: {t['n_trials']} from {t['n_events']} events; {len(t['out_of_range_s'])} window(s) outside "
               f"the recording dropped; {len(t['overlapping_s'])} overlapping pair(s) ({t['overlap']})")
+    if blanked:
+        print(blanked)
     print(f"wrote {out}")
     return 0

@@ -10,6 +10,7 @@ import warnings
 from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, open_session_source, save_predictor
 from ...sysid._files import atomic_path
 from ._common import claimed, whole_number
+from .convert import add_blank_option, blank_outputs
 
 __all__ = ["add_parser", "run"]
 
@@ -57,6 +58,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--order-figure", dest="order_figure", metavar="PNG",
                    help="also write the order choice as a figure: held-out error against order beside the singular "
                    "values (methods that choose an order, e.g. subspace)")
+    add_blank_option(p)
 
 
 def _settings(args) -> dict:
@@ -137,6 +139,9 @@ def _fit(args, settings):
     """``fit_route`` on the session file; its warnings become one stderr line each."""
     with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
         warnings.simplefilter("always")
+        session, blanked = blank_outputs(session, args.blank_ms)
+        if blanked:
+            print(blanked)
         try:
             route, method, settings = _bootstrapped(args, settings)
             result = fit_route(session, route=route, method=method, settings=settings, seed=args.seed,

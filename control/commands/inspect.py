@@ -14,7 +14,7 @@ from ...sysid.artifacts import ARTIFACT_RATIO_THRESHOLD, detect_artifacts
 from ...sysid.exceptions import InvalidParameterError
 from ._common import whole_number
 
-__all__ = ["add_parser", "run", "alignment_text"]
+__all__ = ["add_parser", "run", "alignment_text", "blanked_text"]
 
 
 def add_parser(subparsers) -> None:
@@ -63,6 +63,17 @@ def _check_args(args) -> None:
         raise InvalidParameterError(f"--artifact-figure must name a .png file; got {args.artifact_figure}.")
 
 
+def blanked_text(session) -> str | None:
+    """A line on the outputs hidden by blanking (``Session.output_mask``), or None when none is."""
+    om = getattr(session, "output_mask", None)  # a lazily opened file without blanking has none
+    if om is None or bool(om.all()):
+        return None
+    inside = sum(int(b - a) for a, b in session.trials)
+    hidden = sum(int((~om[a:b]).sum()) for a, b in session.trials)
+    return (f"blanked outputs: {hidden} in-trial sample(s) ({100 * hidden / max(inside, 1):.1f} %); their inputs "
+            "stay valid, fits and scores skip the blanked outputs")
+
+
 def _report(session, args):
     # read one trial at a time: a lazily opened file is never loaded whole
     return detect_artifacts(session, window_s=args.artifact_window_s, ratio_threshold=args.artifact_ratio)
@@ -79,10 +90,13 @@ def run(args) -> int:
         if artifacts is not None and artifacts.flagged:
             summary = dataclasses.replace(summary, warnings=tuple(summary.warnings) + tuple(artifacts.warnings()))
         print(summary.to_text())
+        if blanked_text(session):
+            print(blanked_text(session))
         print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
                                 n_states=args.states).to_text())
         print(artifacts.to_text() if artifacts is not None else
-              "artifacts: no stimulation onset with a clean window before and after it; nothing to check.")
+              "artifacts: no stimulation onset with a clean (unblanked, valid) window before and after it; nothing "
+              "to check.")
         for line in alignment_text(session.metadata):
             print(line)
     if fig_path is not None:

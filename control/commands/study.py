@@ -60,6 +60,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--offsets", choices=OFFSETS, help="session-level output offsets: remove (default) or none")
     p.add_argument("--max-retries", type=int, help="resubmissions of tasks whose worker died (default 2)")
     p.add_argument("--quick", action="store_true", help="small settings for a first look")
+    p.add_argument("--description", metavar="TOML", help="for a BIDS dataset: how each recording becomes a session "
+                   "(outputs, pulses, trials; as for `stimsteer convert`); converted files go to OUT.sessions")
     p.add_argument("--no-progress", action="store_true")
 
 
@@ -119,7 +121,8 @@ def study_files(args) -> tuple[StudyResult, dict]:
     out = Path(args.out)
     with claim_output(out, force=args.force):
         st = study_settings(study_file_settings(args.study), args)
-        table = describe_study(args.study, channels=st.channels, min_trials=st.min_trials)
+        table = describe_study(args.study, channels=st.channels, min_trials=st.min_trials,
+                               description=args.description, convert_dir=out.parent / f"{out.name}.sessions")
         cache = None if args.no_cache else (args.cache or out.parent / f"{out.name}.tasks")
         result = run_study(table, st, cache=cache, scheduler=args.scheduler, n_workers=args.workers,
                            progress=not args.no_progress)

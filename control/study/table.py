@@ -20,8 +20,10 @@ Three ways to describe a study:
       session = "monday"
       condition = "rest"           # optional
 
-* **A BIDS dataset** (a folder with ``dataset_description.json``): read only through a BIDS reader of
-  :mod:`stimsteer.sysid.io` when this installation has one.
+* **A BIDS dataset** (a folder with ``dataset_description.json``): each recording with an ``events.tsv`` is
+  converted, following a description file (``stimsteer study --description``), into a session file of our HDF5
+  layout beside the output (:mod:`stimsteer.control.study.bids`; reused on a rerun), subject and session from the
+  BIDS entities, the task as the condition.
 
 The table holds, per session: subject, session, order, condition, group, file, content hash (SHA-256 of the data,
 :meth:`Session.content_hash`), trials, channels and rate. Files are opened one at a time and closed (our HDF5
@@ -81,7 +83,7 @@ class StudyTable:
         return len(self.sessions)
 
 
-def describe_study(path, *, min_trials: int = 4, channels=None) -> StudyTable:
+def describe_study(path, *, min_trials: int = 4, channels=None, description=None, convert_dir=None) -> StudyTable:
     """Build the study table of a folder, a study file or a BIDS dataset (see the module docstring).
 
     Parameters
@@ -91,6 +93,10 @@ def describe_study(path, *, min_trials: int = 4, channels=None) -> StudyTable:
         Sessions with fewer trials are excluded by name (a warning and the ``excluded`` table say so).
     channels : sequence of str, optional
         Explicit common subset of channels; then sessions may record more channels than these.
+    description : Description, dict or path of a TOML file, optional
+        For a BIDS dataset (required there): how each recording becomes a session (:mod:`stimsteer.sysid.description`).
+    convert_dir : str or Path, optional
+        For a BIDS dataset (required there): where its converted session files go (reused on a rerun).
 
     Returns
     -------
@@ -112,7 +118,7 @@ def describe_study(path, *, min_trials: int = 4, channels=None) -> StudyTable:
     if path.is_file():
         name, settings, entries = _read_study_file(path)
     elif (path / "dataset_description.json").is_file():
-        name, settings, entries = path.name, {}, _bids_entries(path)
+        name, settings, entries = path.name, {}, _bids_entries(path, description, convert_dir)
     else:
         name, settings, entries = path.name, {}, _folder_entries(path)
     rows = [_session_row(e) for e in entries]
@@ -190,22 +196,23 @@ def _folder_entries(root: Path) -> list:
     return entries
 
 
-def _bids_entries(root: Path) -> list:
-    """The recordings of a BIDS dataset, through the BIDS reader of :mod:`stimsteer.sysid.io` when there is one."""
-    from ...sysid import io as sysid_io
+def _bids_entries(root: Path, description, convert_dir) -> list:
+    """The recordings of a BIDS dataset, converted by :func:`.bids.convert_bids_dataset` into
+    ``convert_dir`` following ``description`` (both required for a BIDS study)."""
+    from .bids import convert_bids_dataset
 
     events = list(root.glob("sub-*/**/*_events.tsv"))
     if not events:
         raise SessionError(f"BIDS dataset {root} has no stimulation information: no *_events.tsv file under its "
                            "sub-*/ folders. Add the stimulation events (onset, duration and the stimulation "
                            "columns) or describe the study with a study file of already converted sessions.")
-    reader = getattr(sysid_io, "bids_recordings", None)
-    if reader is None:
-        raise SessionError(f"{root} is a BIDS dataset, but this installation has no BIDS reader in "
-                           "stimsteer.sysid.io; convert each recording with `stimsteer` to our HDF5 layout and "
-                           f"list them in a {STUDY_FILE}.")
+    if description is None or convert_dir is None:
+        raise SessionError(f"{root} is a BIDS dataset: a study of it needs a description of how its recordings "
+                           "become sessions (outputs, pulses, trials): give --description TOML (see `stimsteer "
+                           "convert`).")
+    rows = convert_bids_dataset(root, description=description, out_dir=convert_dir)
     return [{"file": Path(r["file"]), "subject": str(r["subject"]), "session": str(r["session"]),
-             "order": k + 1, "condition": r.get("condition"), "group": ""} for k, r in enumerate(reader(root))]
+             "order": k + 1, "condition": r.get("condition"), "group": ""} for k, r in enumerate(rows)]
 
 
 def _session_row(entry: dict) -> dict:

@@ -172,7 +172,8 @@ def _concat(parts) -> Session:
     stops = np.cumsum([p.n_samples for p in parts])
     trials = np.concatenate([p.trials + (stop - p.n_samples) for p, stop in zip(parts, stops)])
     return first.replace(u=np.concatenate([p.u for p in parts]), y=np.concatenate([p.y for p in parts]),
-                         mask=np.concatenate([p.mask for p in parts]), trials=trials, metadata={})
+                         mask=np.concatenate([p.mask for p in parts]),
+                         output_mask=np.concatenate([p.output_mask for p in parts]), trials=trials, metadata={})
 
 
 def run_task(st: StudySettings, task: StudyTask) -> dict:

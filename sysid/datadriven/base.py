@@ -16,6 +16,7 @@ from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
+from ..output_mask import output_valid_segments
 
 
 # ------------------------------------------------------------------------------------------------ validation
@@ -112,7 +113,7 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
     """One pass over the valid segments: per-fold row-space factors (and raw Hankel blocks when asked)."""
     m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
     order = _row_order(m, p, past, horizon)
-    segs = session.segments(L)
+    segs = output_valid_segments(session, session.segments(L), L, past)  # columns predicting blanked outputs out
     if n_folds_wanted > 1:
         pieces, n_folds, scheme = _fold_of_segments(session, segs, n_folds_wanted, seed, L)
     else:

@@ -21,7 +21,7 @@ from ..exceptions import FileFormatError, SessionError
 from ._recording import Recording
 from .mne import recording_from_mne
 
-__all__ = ["read_bids", "find_bids_root", "STIM_SITE", "STIM_CURRENT"]
+__all__ = ["read_bids", "find_bids_root", "bids_recordings", "STIM_SITE", "STIM_CURRENT"]
 
 _HINT = 'install the optional BIDS support with: pip install "stimsteer[bids]"'
 STIM_SITE = "electrical_stimulation_site"
@@ -110,3 +110,50 @@ def _declared_unit(sidecar: Path, column: str) -> str | None:
         return None
     entry = desc.get(column) if isinstance(desc, dict) else None
     return str(entry["Units"]) if isinstance(entry, dict) and "Units" in entry else None
+
+
+# ------------------------------------------------------------------------------------------------ a dataset as a study
+def bids_recordings(root, *, datatype: str = "ieeg") -> list[dict]:
+    """The recordings of a BIDS dataset that carry stimulation information (an ``events.tsv`` beside them).
+
+    Parameters
+    ----------
+    root : str or Path
+        The dataset's root (holding ``dataset_description.json``).
+    datatype : str, default "ieeg"
+
+    Returns
+    -------
+    list of dict
+        One per recording, in BIDS order: ``entities`` (subject, session, task, run, acquisition: those set, for
+        :func:`read_bids`), ``subject``, ``session`` (the BIDS session, or task and run when the dataset has no
+        sessions), ``condition`` (the task), ``source`` (the raw data file, a Path), ``name`` (its BIDS base name).
+
+    Raises
+    ------
+    SessionError
+        No recording with an ``events.tsv``: the dataset holds no stimulation information.
+    FileFormatError
+        mne-bids missing or ``root`` not a BIDS root.
+    """
+    root = Path(root)
+    if find_bids_root(root) != root.resolve():
+        raise FileFormatError(f"{root} is not the root of a BIDS dataset (no dataset_description.json there); give "
+                              "the dataset's top folder.")
+    mne_bids = _import_mne_bids(root)
+    found = [p for p in mne_bids.BIDSPath(root=root, datatype=datatype).match()
+             if p.suffix == datatype and p.extension in _DATA_EXTENSIONS
+             and p.copy().update(suffix="events", extension=".tsv").fpath.is_file()]
+    if not found:
+        raise SessionError(f"the BIDS dataset {root} has no {datatype} recording with an events.tsv, so no "
+                           "stimulation information; add the stimulation events (onset and the "
+                           f"{STIM_SITE}/{STIM_CURRENT} columns) to each recording's events.tsv.")
+    out = []
+    for bp in found:
+        ent = {k: v for k, v in zip(_ENTITIES, (bp.subject, bp.session, bp.task, bp.run, bp.acquisition))
+               if v is not None}
+        out.append({"entities": ent, "subject": str(bp.subject),
+                    "session": str(bp.session or "-".join(str(x) for x in (bp.task, bp.run) if x)),
+                    "condition": str(bp.task or ""), "source": bp.fpath, "name": bp.basename,
+                    "datatype": datatype})
+    return out

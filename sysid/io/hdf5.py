@@ -25,6 +25,10 @@ name          dtype        shape        content
                                         attribute ``columns = ["start_sample", "stop_sample"]``
 ============  ===========  ===========  ============================================================
 
+Optional: ``outputs_valid`` uint8 (T,), 1 = the outputs of the sample may be fitted and scored, 0 = blanked (a
+stimulation artifact; the inputs of the sample stay valid). Written only when some output is blanked; a file
+without it has every output valid, so files of earlier versions read unchanged.
+
 By default ``inputs``, ``outputs`` and ``valid`` are stored contiguously and uncompressed, and
 :class:`SessionFile` reads a window of them through a memory map. With ``compression="gzip"`` or ``"lzf"`` they are
 chunked along time (about 16 Ki values, 128 KiB, per chunk, with byte shuffle), so reading a window decompresses
@@ -91,6 +95,8 @@ def _write_hdf5(session: Session, tmp: Path, compression: dict) -> None:
             ds.attrs.create("channel_names", np.array(names, dtype=object), dtype=strings)
             ds.attrs.create("channel_units", np.array(units, dtype=object), dtype=strings)
         _create(h, "valid", session.mask.astype(np.uint8), compression)
+        if not session.output_mask.all():
+            _create(h, "outputs_valid", session.output_mask.astype(np.uint8), compression)
         tr = h.create_dataset("trials", data=np.asarray(session.trials, dtype=np.int64))
         tr.attrs.create("columns", np.array(["start_sample", "stop_sample"], dtype=object), dtype=strings)
 
@@ -227,6 +233,7 @@ class SessionFile(TrialLayout):
         self.trials = self._checked(Session._check_trials, self._dataset("trials", 2, "iu")[()], n)
         self.trials.setflags(write=False)
         self.metadata = self._metadata()
+        self.output_mask = self._output_mask(n)
         self._u_map, self._y_map = self._mapped(self._u), self._mapped(self._y)
 
     def _mapped(self, ds) -> "_MappedRows | None":
@@ -370,6 +377,18 @@ class SessionFile(TrialLayout):
             self._fail("expected '/valid' to hold only 0 and 1; found other values.")
         return raw.astype(bool)
 
+    def _output_mask(self, n: int) -> "np.ndarray | None":
+        """The optional ``/outputs_valid`` as bool (one byte per sample, read whole: small beside the data), or
+        None when the file blanks no output."""
+        if "outputs_valid" not in self._h5:
+            return None
+        raw = np.asarray(self._dataset("outputs_valid", 1, "biu")[()])
+        if raw.shape != (n,) or (raw.dtype != bool and not np.isin(raw, (0, 1)).all()):
+            self._fail(f"expected '/outputs_valid' to hold {n} values 0 or 1; found shape {raw.shape}.")
+        out = raw.astype(bool)
+        out.setflags(write=False)
+        return out
+
     def segments(self, min_length: int = 1) -> list[tuple[int, int]]:
         """Maximal runs of valid samples inside trials, ``[start, stop)``; reads the mask one trial at a time."""
         out = []
@@ -403,6 +422,9 @@ class SessionFile(TrialLayout):
         h.update(str(tuple(int(s) for s in self.trials.shape)).encode())
         h.update(repr((self.sample_rate_hz, self.input_names, self.output_names,
                        self.input_units, self.output_units)).encode())
+        if self.output_mask is not None and not self.output_mask.all():
+            h.update(b"output_mask")
+            h.update(np.ascontiguousarray(self.output_mask).tobytes())
         return h.hexdigest()
 
     def to_session(self) -> Session:
@@ -412,7 +434,7 @@ class SessionFile(TrialLayout):
             self.path, u=np.asarray(self._u[()], dtype=np.float64), y=np.asarray(self._y[()], dtype=np.float64),
             sample_rate_hz=self.sample_rate_hz, trials=self.trials, mask=self._read_mask(0, self.n_samples),
             input_names=self.input_names, output_names=self.output_names, input_units=self.input_units,
-            output_units=self.output_units, metadata=self.metadata,
+            output_units=self.output_units, metadata=self.metadata, output_mask=self.output_mask,
         )
 
     def close(self) -> None:

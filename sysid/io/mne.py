@@ -112,8 +112,18 @@ def _annotations(raw) -> tuple[list, list]:
     return events, bad
 
 
-def read_mne_file(path, kind: str) -> Recording:
+def read_mne_file(path, kind: str, *, names=None, types=None) -> Recording:
     """Open a file MNE reads (``kind`` from content detection) as a :class:`Recording`.
+
+    Parameters
+    ----------
+    path : str or Path
+    kind : str
+        One of :data:`MNE_KINDS`.
+    names, types : sequence of str, optional
+        Read only these channels and the channels of these MNE types (what a description uses): a recording of
+        many channels is then never loaded whole. When a named channel is not in the file, every channel is read,
+        so that the error raised later lists them all.
 
     Raises
     ------
@@ -130,6 +140,18 @@ def read_mne_file(path, kind: str) -> Recording:
         raw = readers[kind](str(path), preload=False, verbose="error")
     except Exception as exc:  # MNE raises many unrelated classes for files it cannot parse
         raise FileFormatError(f"{path} cannot be read as {kind} by MNE ({type(exc).__name__}: {exc}).") from None
-    rec = recording_from_mne(raw, source=str(path))
+    rec = recording_from_mne(raw, picks=_picks(raw, names, types), source=str(path))
     return Recording(rec.channels, rec.events, rec.bad_intervals, rec.spike_times, rec.pulses,
                      {**rec.metadata, "format": f"mne-{kind}", "file": path.name})
+
+
+def _picks(raw, names, types) -> list | None:
+    """The channels to read (file order), or None for all: a description that names no channel, or names one the
+    file lacks."""
+    names, types = list(names or []), set(types or [])
+    if not names or not set(names) <= set(raw.ch_names):
+        return None
+    kinds = raw.get_channel_types()
+    if types and not types & set(kinds):
+        return None  # the error raised later lists every type the file has
+    return [n for n, k in zip(raw.ch_names, kinds) if n in names or k in types]

@@ -78,6 +78,9 @@ def _table_columns(session: Session) -> dict:
     if session.n_outputs == 0:
         raise FileFormatError("the table layout needs at least one output channel; this session has none. "
                               "Save it as .h5.")
+    if not session.output_mask.all():  # a table has one validity column; blanked outputs would be lost silently
+        raise FileFormatError(f"the table layout cannot keep blanked outputs ({int((~session.output_mask).sum())} "
+                              "samples blanked by blank_artifacts); save the session as .h5, which keeps them.")
     rate = session.sample_rate_hz
     label = np.full(session.n_samples, -1, dtype=np.int64)
     for i, (a, b) in enumerate(session.trials):

@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 
 from .._lagged import _stream_sums
+from ..output_mask import output_valid_segments
 
 
 # ----------------------------------------------------------------------------------------------------- layout
@@ -59,7 +60,8 @@ def _hankel_gram(source, segments, layout: _Layout):
     """
     w, c, p = layout.width, layout.c, layout.p
     lag = w - 1
-    pieces = [(int(a) + lag, int(b), 0) for a, b in segments if b - a >= w]
+    # the output-mask hook: columns whose future (predicted) outputs are blanked are left out
+    pieces = [(int(a) + lag, int(b), 0) for a, b in output_valid_segments(source, segments, w, layout.i)]
     if not pieces:
         return np.zeros((layout.nz, layout.nz)), 0
     (acc,), _lo, _hi = _stream_sums(source, pieces, 1, lag, _STREAM_ROWS, np.zeros(c))

@@ -14,6 +14,7 @@ from stimsteer.control.cli import main
 from stimsteer.sysid import load_session
 from stimsteer.sysid.description import parse_description
 from stimsteer.sysid.exceptions import FileFormatError, SessionError
+from stimsteer.sysid import Session
 from stimsteer.sysid.from_recording import build_session, read_recording, session_from_mne
 from stimsteer.sysid.io.detect import detect_recording
 from stimsteer.sysid.io.mne import read_mne_file
@@ -112,6 +113,8 @@ def test_the_python_api_on_a_raw_object_equals_the_file_route(raw, files):
     a = session_from_mne(raw, desc)
     b = build_session(read_recording(files["fif"], desc), desc)
     assert np.allclose(a.y, b.y, rtol=1e-6, atol=1e-6) and a.trials.tolist() == b.trials.tolist()
+    c = Session.from_mne(raw, DESC)  # the classmethod is the same call
+    assert np.array_equal(c.y, a.y) and np.array_equal(c.u, a.u) and c.trials.tolist() == a.trials.tolist()
 
 
 def test_convert_command_writes_a_session_and_leaves_the_source_alone(files, tmp_path, capsys):
@@ -188,3 +191,21 @@ def test_outputs_picked_by_channel_type(raw):
     with pytest.raises(SessionError, match=r"no channel of the types \['ecog'\] in the recording; it has the "
                                            r"types \['misc', 'seeg'\]"):
         session_from_mne(raw, {"channels": {"inputs": ["STIM"], "output_types": ["ecog"]}})
+
+
+def test_a_file_is_read_only_for_the_channels_the_description_uses(files):
+    # read_recording passes the description's channels to MNE, so unused channels are never loaded
+    # (benchmarks/bench_recordings.py measures the memory); a name the file lacks reads every channel, so the
+    # error can list them all
+    desc = parse_description({"channels": {"inputs": ["STIM"], "outputs": ["LFP1"]}})
+    rec = read_recording(files["fif"], desc)
+    assert rec.channel_names == ["LFP1", "STIM"] or rec.channel_names == ["STIM", "LFP1"]
+    full = read_recording(files["fif"], parse_description({"channels": {"inputs": ["STIM"], "outputs": ["LFP9"]}}))
+    assert set(full.channel_names) > {"STIM", "LFP1", "LFP2"}
+    with pytest.raises(SessionError, match=r"no channel 'LFP9'; it has \[.*'LFP2'"):
+        build_session(full, parse_description({"channels": {"inputs": ["STIM"], "outputs": ["LFP9"]}}))
+    from stimsteer.sysid.io.mne import read_mne_file
+
+    every = build_session(read_mne_file(files["fif"], "fif"), desc)  # every channel read: the same session
+    s = build_session(rec, desc)
+    assert np.array_equal(s.y, every.y) and np.array_equal(s.u, every.u)

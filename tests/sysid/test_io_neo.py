@@ -11,6 +11,7 @@ from neo.io import NeoMatlabIO
 
 from stimsteer.sysid.description import parse_description
 from stimsteer.sysid.exceptions import SessionError
+from stimsteer.sysid import Session
 from stimsteer.sysid.from_recording import build_session, read_recording, session_from_neo
 from stimsteer.sysid.io.detect import detect_recording
 from stimsteer.sysid.io.neo import recording_from_neo
@@ -68,6 +69,8 @@ def test_a_session_from_a_block_aligns_rates_converts_units_and_bins_spikes(bloc
             "trials": {"events": ["go"], "before_s": 0.1, "after_s": 0.2}}
     s = session_from_neo(b, desc)
     assert s.sample_rate_hz == LFP_HZ and s.output_units == ("uV", "uV", "Hz")
+    same = Session.from_neo(b, desc)  # the classmethod is the same call
+    assert np.array_equal(same.y, s.y) and np.array_equal(same.u, s.u)
     assert np.allclose(s.y[:, 0], lfp[:, 0] * 1000.0)
     # the 1 ms block of 50 µA at 10 kHz is 2 model samples of 50 µA at 2 kHz (mean over each model period)
     assert np.flatnonzero(s.u[:, 0]).tolist() == [1000, 1001] and np.allclose(s.u[1000:1002, 0], 50.0)
