@@ -5,12 +5,14 @@ time (``ms`` or ``s``) is turned into samples at the session's (or model's) rate
 explicit suffix ``samples`` (a bare number is refused: at 1 kHz "10" is 10 ms, at 100 Hz 100 ms, and a reader of a
 command line cannot tell which was meant).
 
-When no window is given, :func:`default_windows` derives both from the recording: the past window covers the
-outputs' memory twice, measured as their autocorrelation time (the last lag where the magnitude of the
-autocorrelation of each output, linearly detrended within every valid segment, is still at least 1/e: an oscillating
-output keeps its memory past its first zero; the median over output channels), and the horizon is twice the past
-window (our choice, no source). Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`) because the cost of the fits
-grows with the square of the window; the cap, when it applies, is stated in the text every command prints.
+When no window is given, :func:`default_windows` derives both from the recording's memory: a quick ridge ARX
+(:data:`QUICK_LAGS` output and input lags, least squares on at most 20,000 rows inside valid segments) is fitted and
+its impulse response from every input to every output is followed until its envelope stays below
+:data:`IMPULSE_FRACTION` of its peak; the past window and the horizon both cover that time (the impulse length of a
+quick ARX, the rule the newcomer issue proposed; no other source). A session without inputs falls back on the
+outputs' autocorrelation time. Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`) because the cost
+of the fits grows with the square of the window; the cap, when it applies, is stated in the line every command
+prints.
 """
 
 from __future__ import annotations
@@ -32,6 +34,8 @@ PAST_CAP_STEPS = 50
 HORIZON_CAP_STEPS = 100
 #: Shortest automatic window, in samples.
 MIN_STEPS = 2
+#: Lags of the quick ARX whose impulse response measures the recording's memory.
+QUICK_LAGS = 10
 #: At most this many samples of each output are read to measure the autocorrelation time (evenly over segments).
 _MAX_SAMPLES = 200_000
 
@@ -120,8 +124,10 @@ class WindowDefaults:
     ----------
     past_steps, horizon_steps : int
     sample_rate_hz : float
-    autocorrelation_s : float or None
-        The outputs' autocorrelation time (median over channels); None when no channel varies.
+    memory_s : float or None
+        The recording's memory in seconds (see ``source``); None when no output varies.
+    source : str
+        ``"quick ARX impulse response"`` or ``"output autocorrelation"`` (a session without inputs).
     capped : tuple of str
         ``"past"`` and/or ``"horizon"`` when the cap shortened them.
     """
@@ -129,24 +135,34 @@ class WindowDefaults:
     past_steps: int
     horizon_steps: int
     sample_rate_hz: float
-    autocorrelation_s: float | None
+    memory_s: float | None
+    source: str = "quick ARX impulse response"
     capped: tuple = ()
 
-    def text(self) -> str:
-        """One line saying what the defaults are, in samples and milliseconds, and where they come from."""
+    def text(self, past_steps: int | None = None, horizon_steps: int | None = None) -> str:
+        """One line saying what the windows are, in samples and milliseconds, and where the defaults come from;
+        ``past_steps``/``horizon_steps`` are windows that were given instead (then said so)."""
         r = self.sample_rate_hz
         ms = lambda n: f"{1e3 * n / r:.4g} ms"  # noqa: E731
-        if self.autocorrelation_s is None:
+        shown = {"past": (self.past_steps if past_steps is None else past_steps, past_steps is not None),
+                 "horizon": (self.horizon_steps if horizon_steps is None else horizon_steps,
+                             horizon_steps is not None)}
+        parts = ", ".join(f"{k} {n} samples ({ms(n)}{', as given' if given else ''})" for k, (n, given) in
+                          shown.items())
+        if self.memory_s is None:
             origin = "no output varies, so the shortest windows were taken"
+        elif self.source == "output autocorrelation":
+            origin = (f"without inputs, the outputs' autocorrelation time, {1e3 * self.memory_s:.4g} ms (median over "
+                      "channels, last lag where |autocorrelation| >= 1/e), twice for the past window and four times "
+                      "for the horizon")
         else:
-            origin = (f"the outputs' autocorrelation time is {1e3 * self.autocorrelation_s:.4g} ms (median over "
-                      "channels, last lag where |autocorrelation| >= 1/e); past = twice that, horizon = twice the past")
+            origin = (f"the impulse response of a quick ARX ({QUICK_LAGS} lags) stays above "
+                      f"{IMPULSE_FRACTION:.0%} of its peak for {1e3 * self.memory_s:.4g} ms; both windows cover that")
         caps = ""
         if self.capped:
             caps = (f"; capped at {PAST_CAP_STEPS} (past) and {HORIZON_CAP_STEPS} (horizon) samples, which shortened "
                     f"the {' and the '.join(self.capped)} (give --past/--horizon for longer windows)")
-        return (f"windows (default, from the data): past {self.past_steps} samples ({ms(self.past_steps)}), horizon "
-                f"{self.horizon_steps} samples ({ms(self.horizon_steps)}) at {r:g} Hz: {origin}{caps}.")
+        return f"windows (default, from the data): {parts} at {r:g} Hz: {origin}{caps}."
 
 
 def _acf_segments(session, max_lag: int) -> np.ndarray | None:
@@ -180,8 +196,55 @@ def _acf_segments(session, max_lag: int) -> np.ndarray | None:
     return acc[:, live] / zero[live]
 
 
+#: The quick ARX's impulse response has settled when its envelope stays below this fraction of its peak.
+IMPULSE_FRACTION = 0.1
+#: Rows of the quick ARX's regression, at most (evenly over segments).
+_MAX_ROWS = 20_000
+
+
+def _quick_arx_memory(session, lags: int) -> int | None:
+    """Samples until the impulse response of a quick ridge ARX (``lags`` output and input lags) stays below
+    :data:`IMPULSE_FRACTION` of its peak, over every input-output pair; None when it cannot be fitted."""
+    m, p = int(session.n_inputs), int(session.n_outputs)
+    segs = list(session.segments(min_length=lags + 2))
+    if m == 0 or not segs:
+        return None
+    rows = sum(b - a - lags for a, b in segs)
+    take = max(1, math.ceil(rows / _MAX_ROWS))
+    X, Y = [], []
+    for a, b in segs[::take]:
+        u, y, _ = session.read(a, b)
+        u, y = np.asarray(u, float), np.asarray(y, float)
+        y = y - y.mean(axis=0)  # an offset per segment, not dynamics
+        n = y.shape[0] - lags
+        X.append(np.hstack([y[lags - i:lags - i + n] for i in range(1, lags + 1)]
+                           + [u[lags - i:lags - i + n] for i in range(1, lags + 1)]))
+        Y.append(y[lags:])
+    X, Y = np.vstack(X), np.vstack(Y)
+    if X.shape[0] < X.shape[1]:
+        return None
+    G = X.T @ X
+    G[np.diag_indices_from(G)] += 1e-6 * np.trace(G) / G.shape[0]  # a light ridge: lags are collinear
+    try:
+        theta = np.linalg.solve(G, X.T @ Y)
+    except np.linalg.LinAlgError:
+        return None
+    Ay, Bu = theta[:p * lags].T.reshape(p, lags, p), theta[p * lags:].T.reshape(p, lags, m)
+    T = 4 * HORIZON_CAP_STEPS
+    h = np.zeros((T, p, m))
+    for k in range(1, T):  # impulse at step 0 on every input: y[k] = sum_i A_i y[k-i] + B_k u[0]
+        acc = Bu[:, k - 1, :].copy() if k <= lags else np.zeros((p, m))
+        for i in range(1, min(k, lags) + 1):
+            acc += Ay[:, i - 1, :] @ h[k - i]
+        h[k] = acc
+    env = np.abs(h).max(axis=(1, 2))
+    if not np.all(np.isfinite(env)) or env.max() <= 0:
+        return None
+    return int(np.flatnonzero(env >= IMPULSE_FRACTION * env.max())[-1])
+
+
 def default_windows(session) -> WindowDefaults:
-    """Past window and horizon for ``session`` from its outputs' autocorrelation time, capped (see module text).
+    """Past window and horizon for ``session`` from its memory, capped (see the module text).
 
     Parameters
     ----------
@@ -193,17 +256,22 @@ def default_windows(session) -> WindowDefaults:
     WindowDefaults
     """
     rate = float(session.sample_rate_hz)
-    acf = _acf_segments(session, 2 * HORIZON_CAP_STEPS)
-    if acf is None:
-        return WindowDefaults(MIN_STEPS, 2 * MIN_STEPS, rate, None)
-    above = np.abs(acf) >= math.exp(-1.0)  # the envelope: an oscillating output keeps its memory past a zero
-    lags = acf.shape[0] - 1 - np.argmax(above[::-1], axis=0)
-    tau = float(np.median(lags))
-    past = max(MIN_STEPS, int(math.ceil(2.0 * tau)))
-    horizon = 2 * past
+    memory = _quick_arx_memory(session, QUICK_LAGS)
+    if memory is not None:
+        past = horizon = max(MIN_STEPS, memory)
+        tau, source = memory / rate, "quick ARX impulse response"
+    else:
+        acf = _acf_segments(session, 2 * HORIZON_CAP_STEPS)
+        if acf is None:
+            return WindowDefaults(MIN_STEPS, MIN_STEPS, rate, None, "output autocorrelation")
+        above = np.abs(acf) >= math.exp(-1.0)  # the envelope: an oscillating output keeps its memory past a zero
+        lags = acf.shape[0] - 1 - np.argmax(above[::-1], axis=0)
+        steps = float(np.median(lags))
+        past = max(MIN_STEPS, int(math.ceil(2.0 * steps)))
+        horizon, tau, source = 2 * past, steps / rate, "output autocorrelation"
     capped = tuple(name for name, n, cap in (("past", past, PAST_CAP_STEPS), ("horizon", horizon, HORIZON_CAP_STEPS))
                    if n > cap)
-    return WindowDefaults(min(past, PAST_CAP_STEPS), min(horizon, HORIZON_CAP_STEPS), rate, tau / rate, capped)
+    return WindowDefaults(min(past, PAST_CAP_STEPS), min(horizon, HORIZON_CAP_STEPS), rate, tau, source, capped)
 
 
 def resolve_windows(session, past=None, horizon=None, *, names=("--past", "--horizon")):
@@ -229,7 +297,7 @@ def resolve_windows(session, past=None, horizon=None, *, names=("--past", "--hor
     note = None
     if p is None or h is None:
         d = default_windows(session)
-        note = d.text()
+        note = d.text(p, h)
         p = d.past_steps if p is None else p
         h = d.horizon_steps if h is None else h
     return p, h, note

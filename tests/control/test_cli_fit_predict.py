@@ -215,7 +215,7 @@ def test_direct_fit_without_its_windows_takes_them_from_the_data_and_says_so(ses
     out = tmp_path / "d.h5"
     assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out)]) == 0
     printed = capsys.readouterr().out
-    assert "windows (default, from the data): past" in printed and "autocorrelation time" in printed
+    assert "windows (default, from the data): past" in printed and "impulse response of a quick ARX" in printed
     assert out.exists()
     out2 = tmp_path / "d2.h5"
     assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out2),
