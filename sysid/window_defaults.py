@@ -10,8 +10,8 @@ When no window is given, :func:`default_windows` derives both from the recording
 its impulse response from every input to every output is followed until its envelope stays below
 :data:`IMPULSE_FRACTION` of its peak; the past window and the horizon both cover that time (the impulse length of a
 quick ARX, the rule the newcomer issue proposed; no other source). A session without inputs falls back on the
-outputs' autocorrelation time. Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`) because the cost
-of the fits grows with the square of the window; the cap, when it applies, is stated in the line every command
+outputs' autocorrelation time. Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`, and :data:`ROWS_CAP` for
+``(past + horizon) x channels``) because the cost of the fits grows with the square of the window; the cap, when it applies, is stated in the line every command
 prints.
 """
 
@@ -26,12 +26,15 @@ import numpy as np
 from .exceptions import InvalidParameterError
 
 __all__ = ["WindowLength", "WindowDefaults", "parse_window", "samples_window", "default_windows", "resolve_windows",
-           "PAST_CAP_STEPS", "HORIZON_CAP_STEPS", "MIN_STEPS"]
+           "PAST_CAP_STEPS", "HORIZON_CAP_STEPS", "ROWS_CAP", "MIN_STEPS"]
 
 #: Longest automatic past window, in samples (fits grow with its square; give ``--past`` for a longer one).
 PAST_CAP_STEPS = 50
 #: Longest automatic horizon, in samples.
 HORIZON_CAP_STEPS = 100
+#: Largest automatic ``(past + horizon) x (inputs + outputs)``: the rows of the direct route's Hankel matrix, whose
+#: fit grows with their square (a session of 20 channels gets at most 60 samples of past plus horizon).
+ROWS_CAP = 1200
 #: Shortest automatic window, in samples.
 MIN_STEPS = 2
 #: Lags of the quick ARX whose impulse response measures the recording's memory.
@@ -160,8 +163,9 @@ class WindowDefaults:
                       f"{IMPULSE_FRACTION:.0%} of its peak for {1e3 * self.memory_s:.4g} ms; both windows cover that")
         caps = ""
         if self.capped:
-            caps = (f"; capped at {PAST_CAP_STEPS} (past) and {HORIZON_CAP_STEPS} (horizon) samples, which shortened "
-                    f"the {' and the '.join(self.capped)} (give --past/--horizon for longer windows)")
+            caps = (f"; capped at {PAST_CAP_STEPS} (past) and {HORIZON_CAP_STEPS} (horizon) samples and at "
+                    f"{ROWS_CAP} for (past + horizon) x channels, which shortened the {' and the '.join(self.capped)}"
+                    " (fits grow with the square of the window; give --past/--horizon for longer windows)")
         return f"windows (default, from the data): {parts} at {r:g} Hz: {origin}{caps}."
 
 
@@ -271,7 +275,13 @@ def default_windows(session) -> WindowDefaults:
         horizon, tau, source = 2 * past, steps / rate, "output autocorrelation"
     capped = tuple(name for name, n, cap in (("past", past, PAST_CAP_STEPS), ("horizon", horizon, HORIZON_CAP_STEPS))
                    if n > cap)
-    return WindowDefaults(min(past, PAST_CAP_STEPS), min(horizon, HORIZON_CAP_STEPS), rate, tau, source, capped)
+    past, horizon = min(past, PAST_CAP_STEPS), min(horizon, HORIZON_CAP_STEPS)
+    channels = int(session.n_inputs) + int(session.n_outputs)
+    if (past + horizon) * channels > ROWS_CAP:  # many channels: keep the direct route's Hankel matrix tractable
+        scale = ROWS_CAP / ((past + horizon) * channels)
+        past, horizon = max(MIN_STEPS, int(past * scale)), max(MIN_STEPS, int(horizon * scale))
+        capped = ("past", "horizon")
+    return WindowDefaults(past, horizon, rate, tau, source, capped)
 
 
 def resolve_windows(session, past=None, horizon=None, *, names=("--past", "--horizon")):

@@ -239,7 +239,8 @@ def _summary_lines(model, kal, out_rep, minimal=None):
         rec = minimal.info["minimal_realisation"]
         lines.append(
             f"minimal realisation: {minimal.n_states} of {n} states (balanced truncation of the Hankel singular values "
-            f"below {rec['rtol']:g} of the largest; the removed states are ones no site reaches or no channel sees, "
+            f"below {rec['rtol']:g} of the largest; the removed states are ones no site reaches or no channel sees, to "
+            f"within that tolerance, "
             f"and change the impulse responses by at most {rec['impulse_error_bound']:.2g})")
         lines.append(f"Kalman rank {kal.rank} of {minimal.n_states}, on the minimal realisation: "
                      + ("controllable" if kal.is_controllable else "NOT controllable from these sites"))

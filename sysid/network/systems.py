@@ -160,8 +160,10 @@ def _state(model, name, x) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------------------------- minimal realisation
-#: Hankel singular values below this fraction of the largest are removed by :func:`minimal_realisation`.
-MINIMAL_RTOL = 1e-9
+#: Hankel singular values below this fraction of the largest are removed by :func:`minimal_realisation`. They are
+#: products of Gramian square roots, so a zero one comes out near the square root of the rounding error of the
+#: Gramians (about 1e-8 of the largest on a badly scaled basis): the tolerance sits above that.
+MINIMAL_RTOL = 1e-6
 
 
 def _sqrt_psd(W) -> np.ndarray:

@@ -293,7 +293,7 @@ def test_schedule_order_from_past_window_horizon_and_states(limits_file, tmp_pat
 def test_schedule_needs_an_order_or_a_window(limits_file, tmp_path, capsys):
     assert main(["schedule", "--limits", str(limits_file), "--inputs", "2", "--past-steps", "3", "--out",
                  str(tmp_path / "s.csv")]) == 2
-    assert "give --order K, or --past-steps and --horizon-steps" in capsys.readouterr().err
+    assert "give --order K, or --past and --horizon (e.g. 40ms or 10samples" in capsys.readouterr().err
 
 
 def test_network_reports_an_unreachable_target(tmp_path, capsys):
