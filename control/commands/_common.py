@@ -213,3 +213,23 @@ def open_selected(path, args):
             return
         whole = source if hasattr(source, "select") else source.to_session()
         yield whole.select(**chosen)
+
+
+@contextlib.contextmanager
+def open_for_model(path, provenance):
+    """The session at ``path`` with the channels of a model fitted on a selection of them (``fit --drop ...``):
+    when the model's inputs and outputs (from its provenance) are a strict subset of the session's, the session is
+    loaded whole and those channels are selected; otherwise it is opened as it is (the usual checks then apply)."""
+    from ...sysid import open_session_source
+
+    record = provenance.get("session", {}) if isinstance(provenance, dict) else {}
+    ins, outs = record.get("input_names"), record.get("output_names")
+    with open_session_source(path) as source:
+        same = ins is None or outs is None or (tuple(source.input_names) == tuple(ins)
+                                               and tuple(source.output_names) == tuple(outs))
+        subset = not same and set(ins) <= set(source.input_names) and set(outs) <= set(source.output_names)
+        if not subset:
+            yield source
+            return
+        whole = source if hasattr(source, "select") else source.to_session()
+        yield whole.select(inputs=list(ins), outputs=list(outs))

@@ -33,7 +33,7 @@ from ..limits import load_limits
 from ..mpc.dispatch import controller_for
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
-from ._common import add_window_options
+from ._common import add_window_options, open_for_model
 
 __all__ = ["EXIT_CODES", "PlanRun", "add_parser", "plan_to_folder", "run", "trial_ref", "write_plan"]
 
@@ -105,7 +105,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         start = "rest"
     else:
         path, index = from_trial
-        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+        with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
             u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
         start = f"the end of trial {index} of {path}"

@@ -266,3 +266,13 @@ def test_schedule_shows_progress_on_a_terminal(tmp_path, capsys, monkeypatch):
     assert main(["schedule", "--limits", str(limits), "--order", "10", "--rate-hz", "100", "--trials", "4",
                  "--trial-s", "1", "--rest-s", "0.2", "--out", str(tmp_path / "s.csv")]) == 0
     assert "stimsteer schedule (prbs, order 10)" in capsys.readouterr().err
+
+
+def test_a_model_fitted_without_a_dead_channel_predicts_from_a_trial_of_the_whole_session(files, tmp_path, capsys):
+    # the session still holds the dropped channel: predict takes the model's channels from it
+    model = tmp_path / "m.h5"
+    assert main(["fit", files["h5"], "--route", "indirect", "--method", "arx", "--out", str(model),
+                 "--past", "5samples", "--horizon", "5samples", "--outputs", "ch_0[0-4]", "--drop", "site_c"]) == 0
+    capsys.readouterr()
+    assert main(["predict", str(model), "--score-trial", f"{files['h5']}:2"]) == 0
+    assert "free-run scores of trial 2" in capsys.readouterr().out
