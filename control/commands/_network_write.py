@@ -53,9 +53,6 @@ def _summary_table(model, kal, out, horizon, minimal=None, impulse_steps=None):
     m = model.info.get("network_map") or {}
     rows = [
         ("n_states", model.n_states), ("n_sites", model.n_inputs), ("n_channels", model.n_outputs),
-        ("minimal_states", model.n_states if minimal is None else minimal.n_states),
-        ("kalman_rank_computed_on", "the map's nodes" if minimal is None else "the minimal realisation"),
-        ("impulse_response_steps", impulse_steps),
         ("spectral_radius", model.spectral_radius), ("kalman_rank", kal.rank), ("controllable", kal.is_controllable),
         ("output_rank", out.output_rank), ("output_rank_tolerance", out.rank_tol),
         ("output_controllable", out.is_output_controllable),
@@ -63,6 +60,9 @@ def _summary_table(model, kal, out, horizon, minimal=None, impulse_steps=None):
         ("output_gramian_condition_number", out.condition_number), ("h2_squared_all_sites", out.h2_squared),
         ("coordinates", MAP_NODES if is_network_map(model) else COORDINATE_FREE),
         ("time", m.get("time", "discrete (fitted model)")), ("normalisation", m.get("normalisation", "none")),
+        ("minimal_states", model.n_states if minimal is None else minimal.n_states),
+        ("kalman_rank_computed_on", "the map's nodes" if minimal is None else "the minimal realisation"),
+        ("impulse_response_steps", impulse_steps),
     ]
     return pd.DataFrame(rows, columns=["quantity", "value"])
 
