@@ -43,7 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from ...sysid import InvalidParameterError, StateSpaceForm, load_predictor
-from ._common import add_window_options, claimed, whole_number, window_steps
+from ._common import add_channel_options, add_window_options, claimed, selection, whole_number, window_steps
 from ...sysid.caution import CAUTION
 from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
 from ._network_write import NetworkOutputs, write_network_outputs
@@ -92,6 +92,7 @@ def add_parser(subparsers) -> None:
     s = p.add_argument_group("stimulation data")
     s.add_argument("--session", metavar="FILE", help="with --map: session to fit the map-constrained model to; with "
                    "a model file: session whose trials are refitted per condition (--conditions)")
+    add_channel_options(s)
     s.add_argument("--mixing", metavar="FILE", help="CSV: how the recorded channels mix the nodes (rows: channels, "
                    "header: node names); default each channel is the node of the same name")
     s.add_argument("--shrink", type=float, default=0.0, help="ridge weight pulling fitted weights toward the map's")
@@ -138,6 +139,9 @@ def _check_sources(args):
             "as fitted: rescaling it would change its time constants; for an unstable model use --gramian-steps N.")
     if args.session is None and (args.conditions is not None or args.mixing is not None):
         raise InvalidParameterError("--conditions and --mixing need --session.")
+    if args.session is None and selection(args):
+        raise InvalidParameterError("--inputs, --outputs and --drop choose channels of --session; a model file "
+                                    "keeps the channels it was fitted on (choose them with `stimsteer fit --drop`).")
     if args.session is not None:
         fixed = [f for f, v in (("--recorded", args.recorded), ("--normalisation", args.normalisation),
                                 ("--normalise", args.normalise or None), ("--node-names", None),

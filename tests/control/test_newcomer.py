@@ -276,3 +276,10 @@ def test_a_model_fitted_without_a_dead_channel_predicts_from_a_trial_of_the_whol
     capsys.readouterr()
     assert main(["predict", str(model), "--score-trial", f"{files['h5']}:2"]) == 0
     assert "free-run scores of trial 2" in capsys.readouterr().out
+
+
+def test_network_channel_options_need_a_session(tmp_path, capsys):
+    path = tmp_path / "m.h5"
+    save_predictor(_slow_model(), path, provenance={})
+    assert main(["network", str(path), "--out", str(tmp_path / "n"), "--drop", "c1"]) == 2
+    assert "--inputs, --outputs and --drop choose channels of --session" in capsys.readouterr().err
