@@ -189,8 +189,9 @@ class Schedule(TrialLayout):
         hold = self.settings.get("hold_steps")
         if self.slew is not None and hold is not None and self.kind == "prbs":
             how = "chosen so a full swing fits" if self.settings.get("hold_chosen") == "automatic" else "as given"
-            lines.append(f"cost of the slew limit: each bit held {hold} sample(s) ({1e3 * hold / self.sample_rate_hz:.4g}"
-                         f" ms, {how}); switches are ramps at the limit")
+            ms = 1e3 * hold / self.sample_rate_hz
+            lines.append(f"cost of the slew limit: each bit held {hold} sample(s) ({ms:.4g} ms, {how}); switches are "
+                         "ramps at the limit")
         if self.energy_budget is not None:
             if self.energy_gain < 1.0:
                 lines.append(f"warning: cost of the energy budget ({self.energy_budget:g} µA² per "

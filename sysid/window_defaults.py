@@ -10,9 +10,9 @@ When no window is given, :func:`default_windows` derives both from the recording
 its impulse response from every input to every output is followed until its envelope stays below
 :data:`IMPULSE_FRACTION` of its peak; the past window and the horizon both cover that time (the impulse length of a
 quick ARX, the rule the newcomer issue proposed; no other source). A session without inputs falls back on the
-outputs' autocorrelation time. Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`, and :data:`ROWS_CAP` for
-``(past + horizon) x channels``) because the cost of the fits grows with the square of the window; the cap, when it applies, is stated in the line every command
-prints.
+outputs' autocorrelation time. Both are capped (:data:`PAST_CAP_STEPS`, :data:`HORIZON_CAP_STEPS`, and
+:data:`ROWS_CAP` for ``(past + horizon) x channels``) because the cost of the fits grows with the square of the
+window; the cap, when it applies, is stated in the line every command prints.
 """
 
 from __future__ import annotations
@@ -186,6 +186,8 @@ def _acf_segments(session, max_lag: int) -> np.ndarray | None:
         t = np.arange(y.shape[0], dtype=np.float64)
         coef = np.polynomial.polynomial.polyfit(t, y, 1)  # slow drift would stretch the autocorrelation
         r = y - (coef[0] + np.outer(t, coef[1]))
+        peak = np.max(np.abs(r), axis=0)
+        r = r / np.where(peak > 0, peak, 1.0)  # no overflow; the autocorrelation does not depend on the scale
         L = min(max_lag, r.shape[0] - 1)
         n = 1 << int(np.ceil(np.log2(2 * r.shape[0])))
         f = np.fft.rfft(r, n=n, axis=0)
@@ -194,6 +196,8 @@ def _acf_segments(session, max_lag: int) -> np.ndarray | None:
         part[:L + 1] = c
         acc = part if acc is None else acc + part
     zero = acc[0]
+    if not np.all(np.isfinite(acc)):
+        return None
     live = zero > 1e-12 * max(float(np.max(zero)), 1e-300)
     if not live.any():
         return None
@@ -215,10 +219,18 @@ def _quick_arx_memory(session, lags: int) -> int | None:
         return None
     rows = sum(b - a - lags for a, b in segs)
     take = max(1, math.ceil(rows / _MAX_ROWS))
-    X, Y = [], []
+    blocks = []
     for a, b in segs[::take]:
         u, y, _ = session.read(a, b)
-        u, y = np.asarray(u, float), np.asarray(y, float)
+        blocks.append((np.array(u, float), np.array(y, float)))
+    # each channel divided by its largest magnitude: the impulse length does not depend on units, and sums of
+    # squares of huge values (refused later, by name, by the magnitude check) must not overflow here
+    su = np.max([np.max(np.abs(u), axis=0) for u, _ in blocks], axis=0)
+    sy = np.max([np.max(np.abs(y), axis=0) for _, y in blocks], axis=0)
+    su, sy = np.where(su > 0, su, 1.0), np.where(sy > 0, sy, 1.0)
+    X, Y = [], []
+    for u, y in blocks:
+        u, y = u / su, y / sy
         y = y - y.mean(axis=0)  # an offset per segment, not dynamics
         n = y.shape[0] - lags
         X.append(np.hstack([y[lags - i:lags - i + n] for i in range(1, lags + 1)]
@@ -260,6 +272,11 @@ def default_windows(session) -> WindowDefaults:
     WindowDefaults
     """
     rate = float(session.sample_rate_hz)
+    with np.errstate(all="ignore"):  # a recording beyond float64's comfort is refused by name elsewhere
+        return _default_windows(session, rate)
+
+
+def _default_windows(session, rate) -> WindowDefaults:
     memory = _quick_arx_memory(session, QUICK_LAGS)
     if memory is not None:
         past = horizon = max(MIN_STEPS, memory)

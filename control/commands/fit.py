@@ -113,7 +113,8 @@ def _fit(args, settings):
             note = (note or "") + " (arx: its lags, the past window, are chosen by cross-validation instead.)"
         if note:
             print(note)
-        if past is not None and (args.past is not None or "past_steps" in _factory(args.route, args.method).parameters()):
+        takes_past = "past_steps" in _factory(args.route, args.method).parameters()
+        if past is not None and (args.past is not None or takes_past):
             settings = {**settings, "past_steps": past}  # a default only to a method that takes a past window
         try:
             result = fit_route(session, route=args.route, method=args.method, settings=settings, seed=args.seed,

@@ -283,3 +283,9 @@ def test_network_channel_options_need_a_session(tmp_path, capsys):
     save_predictor(_slow_model(), path, provenance={})
     assert main(["network", str(path), "--out", str(tmp_path / "n"), "--drop", "c1"]) == 2
     assert "--inputs, --outputs and --drop choose channels of --session" in capsys.readouterr().err
+
+
+def test_default_windows_do_not_depend_on_the_units_and_survive_huge_values():
+    s = _newcomer_session(n_trials=3, trial_s=0.3)
+    a, b = default_windows(s), default_windows(s.replace(u=s.u * 1e150, y=s.y * 1e250))
+    assert (a.past_steps, a.horizon_steps) == (b.past_steps, b.horizon_steps)
