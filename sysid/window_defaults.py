@@ -58,11 +58,14 @@ class WindowLength:
     unit : {"s", "samples"}
     text : str
         The original spelling, for messages.
+    option : str
+        The command-line flag it came from, when it did.
     """
 
     value: float
     unit: str
     text: str
+    option: str = ""  # the flag it came from, for messages ("--past-steps" keeps its older spelling)
 
     def steps(self, sample_rate_hz: float, *, option: str = "the window") -> int:
         """The window in whole samples at ``sample_rate_hz`` (a time is rounded to the nearest sample).
@@ -114,9 +117,9 @@ def parse_window(text, *, option: str = "the window") -> WindowLength:
     return WindowLength(seconds, "s", raw)
 
 
-def samples_window(n: int) -> WindowLength:
-    """A window of ``n`` samples (the older ``--past-steps N`` spelling)."""
-    return WindowLength(float(int(n)), "samples", f"{int(n)}samples")
+def samples_window(n: int, option: str = "") -> WindowLength:
+    """A window of ``n`` samples (the older ``--past-steps N`` spelling, named by ``option``)."""
+    return WindowLength(float(int(n)), "samples", str(int(n)) if option else f"{int(n)}samples", option)
 
 
 @dataclass(frozen=True)

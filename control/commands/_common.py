@@ -137,14 +137,14 @@ def window_length(option: str):
     return parse
 
 
-def _samples_length(minimum: int):
+def _samples_length(minimum: int, option: str):
     """The older ``--past-steps N`` spelling: a whole number of samples, as a window length."""
     from ...sysid.window_defaults import samples_window
 
     whole = whole_number(minimum)
 
     def parse(text):
-        return samples_window(whole(text))
+        return samples_window(whole(text), option)
 
     parse.__name__ = f"whole number >= {minimum}"
     return parse
@@ -165,7 +165,7 @@ def add_window_options(p, *, past: str | None = "past window", horizon: str | No
         group = p.add_mutually_exclusive_group()
         group.add_argument(f"--{name}", dest=name, type=window_length(f"--{name}"), metavar="LENGTH",
                            help=f"{what}: a time (100ms, 0.1s) or a number of samples (40samples); {default}")
-        group.add_argument(f"--{name}-steps", dest=name, type=_samples_length(1), metavar="N",
+        group.add_argument(f"--{name}-steps", dest=name, type=_samples_length(1, f"--{name}-steps"), metavar="N",
                            help=f"the same in samples (older spelling of --{name} Nsamples)")
 
 

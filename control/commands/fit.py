@@ -121,7 +121,8 @@ def _fit(args, settings):
                                test_fraction=args.test_fraction, horizon_steps=horizon)
         except (InvalidParameterError, SessionError) as exc:
             # the estimator names its own settings; say which option set them
-            given = [f"--{name} {value}" for name, value in (("past", args.past), ("horizon", args.horizon))
+            given = [f"{value.option or '--' + name} {value}" for name, value in (("past", args.past),
+                                                                                   ("horizon", args.horizon))
                      if value is not None]
             why = " and ".join(given) if given else "the defaults from the data"
             raise type(exc)(f"{exc} (the window came from {why}: past {past} and horizon {horizon} samples)") \
