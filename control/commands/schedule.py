@@ -99,9 +99,9 @@ def run(args) -> int:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", StimsteerWarning)
             schedule = _design(args, limits, order)
-        for w in caught:
-            sys.stderr.write(f"stimsteer schedule: warning: {w.message}\n")
         save_schedule(schedule, args.out, overwrite=args.force)
+    for w in caught:  # after the file is written: a refused output stays one line
+        sys.stderr.write(f"stimsteer schedule: warning: {w.message}\n")
     print(schedule.to_text())
     print(f"schedule written to {args.out}")
     print(CAUTION)
