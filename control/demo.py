@@ -91,7 +91,7 @@ def demo_steps(session: str, plant: str, limits: str, out: str) -> list[tuple[st
                   ["schedule", "--limits", limits, "--inputs", "3", *window, "--states", "12", "--rate-hz", "250",
                    "--trials", "24", "--trial-s", "3", "--rest-s", "0.5", "--out", str(o / "next_schedule.csv")]))
     steps.append(("benchmark both routes on held-out trials, closed loop on the ground-truth plant",
-                  ["bench", session, "--plant", plant, "--limits", limits, "--out", str(o / "report")]))
+                  ["bench", session, "--plant", plant, "--limits", limits, *window, "--out", str(o / "report")]))
     return steps
 
 

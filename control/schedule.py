@@ -38,12 +38,15 @@ excitation check come from the identification layer (:mod:`stimsteer.sysid.signa
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from ..sysid import (ExcitationCheck, ExcitationError, InfeasiblePlanError, InvalidParameterError, LimitsError,
                      TrialLayout, verify_excitation)
+from ..sysid._progress import progress
+from ..sysid.exceptions import StimsteerWarning
 from ._schedule_kinds import SCHEDULE_KINDS, design_kind, positive, whole
 from .limits import StimLimits
 from .schedule_files import load_schedule, save_schedule
@@ -167,14 +170,37 @@ class Schedule(TrialLayout):
         shown = min(self.n_inputs, 8)
         for j in range(shown):
             slew = "" if self.slew is None or not np.isfinite(self.slew[j]) else f", slew {self.slew[j]:g}/step"
-            lines.append(f"  {self.input_names[j]}: {float(self.u[:, j].min()):g} .. {float(self.u[:, j].max()):g} "
-                         f"{self.input_units[j]} used (bounds {self.lo[j]:g} .. {self.hi[j]:g}{slew})")
+            lo, hi = float(self.u[:, j].min()), float(self.u[:, j].max())
+            share = 100 * (hi - lo) / (self.hi[j] - self.lo[j])
+            lines.append(f"  {self.input_names[j]}: {lo:g} .. {hi:g} {self.input_units[j]} used, {share:.0f} % of the "
+                         f"window (bounds {self.lo[j]:g} .. {self.hi[j]:g}{slew})")
         if shown < self.n_inputs:
             lines.append(f"  ... and {self.n_inputs - shown} more input(s) (all in the file)")
+        return "\n".join(lines + self.limit_costs())
+
+    def limit_costs(self) -> list[str]:
+        """One line per limit that shaped the schedule: what it cost, in figures."""
+        lines = []
+        dlo, dhi = self.settings.get("declared_min_ua"), self.settings.get("declared_max_ua")
+        if dlo is not None:
+            for j in np.flatnonzero((np.asarray(dlo) < self.lo) | (np.asarray(dhi) > self.hi)):
+                lines.append(f"cost of the charge-density rule: {self.input_names[j]} limited to {self.lo[j]:g} .. "
+                             f"{self.hi[j]:g} µA of the declared {dlo[j]:g} .. {dhi[j]:g}")
+        hold = self.settings.get("hold_steps")
+        if self.slew is not None and hold is not None and self.kind == "prbs":
+            how = "chosen so a full swing fits" if self.settings.get("hold_chosen") == "automatic" else "as given"
+            ms = 1e3 * hold / self.sample_rate_hz
+            lines.append(f"cost of the slew limit: each bit held {hold} sample(s) ({ms:.4g} ms, {how}); switches are "
+                         "ramps at the limit")
         if self.energy_budget is not None:
-            lines.append(f"energy budget {self.energy_budget:g} per {self.energy_window_steps} steps: deviations "
-                         f"scaled by {self.energy_gain:.4g}")
-        return "\n".join(lines)
+            if self.energy_gain < 1.0:
+                lines.append(f"warning: cost of the energy budget ({self.energy_budget:g} µA² per "
+                             f"{self.energy_window_steps} samples): every deviation from rest scaled by "
+                             f"{self.energy_gain:.4g} ({100 * self.energy_gain:.0f} % of the amplitude window used)")
+            else:
+                lines.append(f"energy budget {self.energy_budget:g} µA² per {self.energy_window_steps} samples: met "
+                             "without scaling")
+        return lines
 
 
 def _layout(rate, trial_s, rest_s, order, n_inputs, n_trials):
@@ -260,7 +286,7 @@ def _settings(limits, order, kind, sample_rate_hz, n_trials, trial_s, rest_s, ho
     out = {"order": order, "rate": positive("sample_rate_hz", sample_rate_hz),
            "trial_s": positive("trial_s", trial_s), "rest_s": positive("rest_s", rest_s, allow_zero=True),
            "n_trials": None if n_trials is None else whole("n_trials", n_trials, 1),
-           "hold": whole("hold_steps", hold_steps, 1), "window": None}
+           "hold": None if hold_steps is None else whole("hold_steps", hold_steps, 1), "window": None}
     if limits.energy_budget_ua2 is not None:
         out["window"] = ((limits.energy_window_steps or order) if energy_window_steps is None
                          else whole("energy_window_steps", energy_window_steps, 1))
@@ -269,7 +295,7 @@ def _settings(limits, order, kind, sample_rate_hz, n_trials, trial_s, rest_s, ho
 
 def design_schedule(limits: StimLimits, *, order: int, kind: str = "prbs", sample_rate_hz: float = 1000.0,
                     n_trials: int | None = None, trial_s: float = 10.0, rest_s: float = 2.0,
-                    seed: int | None = 0, energy_window_steps: int | None = None, hold_steps: int = 1,
+                    seed: int | None = 0, energy_window_steps: int | None = None, hold_steps: int | None = None,
                     n_levels: int = 5, pulse_rate_hz: float | None = None, min_interval_steps: int = 2,
                     band_hz: float | None = None, n_iter: int = 100) -> Schedule:
     """Design an exciting stimulation schedule inside declared limits (see the module docstring for the kinds).
@@ -296,8 +322,10 @@ def design_schedule(limits: StimLimits, *, order: int, kind: str = "prbs", sampl
         The limits' energy budget holds on every window of this many consecutive samples. Default the window the
         limits declare (``StimLimits.energy_window_steps``), else ``order`` (a window at least as long as a
         planning horizon, so the budget also holds on every horizon that fits inside it).
-    hold_steps : int, default 1
-        Samples each value is held (``prbs``, ``multilevel``).
+    hold_steps : int, optional
+        Samples each value is held (``prbs``, ``multilevel``). Default 1, except ``prbs`` under a slew limit: the
+        fewest samples in which a swing across the whole amplitude window fits (so the schedule uses the window as
+        declared instead of two levels narrowed to ``slew`` apart).
     n_levels : int, default 5
         Levels of ``multilevel``.
     pulse_rate_hz : float, optional
@@ -347,19 +375,54 @@ def design_schedule(limits: StimLimits, *, order: int, kind: str = "prbs", sampl
     names = tuple(f"u{j}" for j in range(m)) if limits.input_names is None else tuple(limits.input_names)
     trials, n_samples, trial_n = _layout(rate, cfg["trial_s"], cfg["rest_s"], order, m, cfg["n_trials"])
     rng = np.random.default_rng(seed)
-    inside, settings = design_kind(kind, trials.shape[0], trial_n, lo, hi, slew, base, rng, rate=rate,
-                                   hold=cfg["hold"], n_levels=n_levels, pulse_rate_hz=pulse_rate_hz,
-                                   min_interval_steps=min_interval_steps, band_hz=band_hz, order=order,
-                                   n_iter=n_iter)
-    u, gain = _assemble(inside, trials, n_samples, lo, hi, slew, base, limits.energy_budget_ua2, window)
-    _check_limits(u, limits, base, window)
-    check = _require_exciting(u, trials, order, trial_n, rate, kind)
+    hold = _auto_hold(kind, lo, hi, slew) if cfg["hold"] is None else cfg["hold"]
+    with progress(3, f"schedule ({kind}, order {order})") as bar:
+        inside, settings = design_kind(kind, trials.shape[0], trial_n, lo, hi, slew, base, rng, rate=rate,
+                                       hold=hold, n_levels=n_levels, pulse_rate_hz=pulse_rate_hz,
+                                       min_interval_steps=min_interval_steps, band_hz=band_hz, order=order,
+                                       n_iter=n_iter)
+        bar.update()
+        u, gain = _assemble(inside, trials, n_samples, lo, hi, slew, base, limits.energy_budget_ua2, window)
+        _check_limits(u, limits, base, window)
+        bar.update()
+        check = _require_exciting(u, trials, order, trial_n, rate, kind)
+        bar.update()
+    settings = {**settings, "hold_chosen": "given" if cfg["hold"] is not None else "automatic",
+                "declared_min_ua": [float(v) for v in np.broadcast_to(limits.amplitude_min_ua, (m,))],
+                "declared_max_ua": [float(v) for v in np.broadcast_to(limits.amplitude_max_ua, (m,))]}
+    if gain < 1.0:
+        warnings.warn(StimsteerWarning(_budget_warning(limits.energy_budget_ua2, window, gain, lo, hi, rate)),
+                      stacklevel=2)
     u.setflags(write=False)
     trials.setflags(write=False)
     return Schedule(u=u, trials=trials, sample_rate_hz=rate, input_names=names, input_units=("uA",) * m,
                     kind=kind, order=order, excitation=check, lo=lo, hi=hi, slew=slew, rest_level=base,
                     energy_budget=limits.energy_budget_ua2, energy_window_steps=window, energy_gain=gain,
                     seed=None if seed is None else int(seed), settings=settings)
+
+
+def _auto_hold(kind, lo, hi, slew) -> int:
+    """The default hold: 1, or for ``prbs`` under a slew limit the fewest samples in which a swing from the lower to
+    the upper bound fits at the slew limit (every input), so both levels stay at the declared bounds."""
+    if kind != "prbs" or slew is None:
+        return 1
+    finite = np.isfinite(slew) & (slew > 0)
+    if not finite.any():
+        return 1
+    return max(1, int(np.ceil(np.max((hi - lo)[finite] / slew[finite]) * (1 - 1e-12))))
+
+
+def _budget_warning(budget, window, gain, lo, hi, rate) -> str:
+    """What the energy budget costs the schedule, with the alternative (sparse pulses at the full window)."""
+    peak = np.maximum(np.abs(lo), np.abs(hi))
+    per_window = int(budget // float(np.sum(peak ** 2)))  # full-amplitude pulses on every input that fit a window
+    alt = (f"--kind pulses with --pulse-rate-hz {per_window * rate / window:.3g} or less keeps full-amplitude pulses "
+           "within the budget" if per_window >= 1 else "no full-amplitude pulse fits the budget either")
+    return (f"the energy budget ({budget:g} µA² per {window} samples, {window / rate:.4g} s) scales every deviation "
+            f"from rest by {gain:.3g}: the schedule uses {100 * gain:.0f} % of the declared amplitude window "
+            f"(e.g. ±{gain * float(peak[0]):.3g} of ±{float(peak[0]):.3g} µA on the first input). Alternatives: "
+            f"{alt}; or declare a budget for this exploration session in the limits file (it was set for "
+            "planning), or give a longer --energy-window-steps if the budget speaks of a longer window.")
 
 
 def _assemble(inside, trials, n_samples, lo, hi, slew, base, budget, window):

@@ -187,11 +187,11 @@ class Session(TrialLayout):
         mask = self._check_mask(self.mask, n)
         output_mask = self._check_mask(self.output_mask, n, "output_mask")
         trials = self._check_trials(self.trials, n)
-        self._check_finite(u, y, mask)
         names = {
             "input_names": _names("input_names", self.input_names, u.shape[1], "u"),
             "output_names": _names("output_names", self.output_names, y.shape[1], "y"),
         }
+        self._check_finite(u, y, mask, names, rate)
         all_names = names["input_names"] + names["output_names"]
         dupes = sorted({s for s in all_names if all_names.count(s) > 1})
         if dupes:
@@ -269,14 +269,18 @@ class Session(TrialLayout):
         return t
 
     @staticmethod
-    def _check_finite(u: np.ndarray, y: np.ndarray, mask: np.ndarray) -> None:
-        for name, a in (("inputs (u)", u), ("outputs (y)", y)):
+    def _check_finite(u: np.ndarray, y: np.ndarray, mask: np.ndarray, names: dict, rate: float) -> None:
+        for kind, a, chans in (("input", u, names["input_names"]), ("output", y, names["output_names"])):
             bad = ~np.isfinite(a) & mask[:, None]
             if bad.any():
                 rows, cols = np.nonzero(bad)
+                per = np.bincount(cols, minlength=a.shape[1])
+                which = ", ".join(f"{chans[j]} ({per[j]})" for j in np.flatnonzero(per))
                 raise SessionError(
-                    f"{name} hold {bad.sum()} NaN or infinite values at valid samples (first at sample {rows[0]}, "
-                    f"channel {cols[0]}). Mark those samples invalid in the mask or repair them."
+                    f"{bad.sum()} NaN or infinite {kind} value(s) at valid samples, in {which}; the first in "
+                    f"{kind} {chans[cols[0]]!r} at t = {rows[0] / rate:.6g} s (sample {rows[0]}). Mark those samples "
+                    "invalid (mask=False; in a table, valid = 0, or leave the cell empty: an empty cell is read as a "
+                    "masked sample) or repair the values."
                 )
 
     @staticmethod
@@ -383,6 +387,39 @@ class Session(TrialLayout):
         return dataclasses.replace(
             self, u=u, y=y, mask=mask, output_mask=output_mask, trials=trials, metadata={**self.metadata, "source_trials": origin}
         )
+
+    def select(self, *, inputs=None, outputs=None, drop=None) -> "Session":
+        """A new session with only some channels, chosen by name or glob pattern (``"lfp_*"``, ``"site_?"``).
+
+        Parameters
+        ----------
+        inputs, outputs : str or sequence of str, optional
+            Channels to keep (a string may list several, comma-separated); default all.
+        drop : str or sequence of str, optional
+            Channels to leave out, inputs or outputs (e.g. a dead channel).
+
+        Raises
+        ------
+        SessionError
+            A name or pattern matches no channel (the message lists the known ones), or no output is left.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> s = Session(u=np.zeros((4, 2)), y=np.ones((4, 3)), sample_rate_hz=100.0, input_names=["a", "b"],
+        ...             output_names=["lfp_1", "lfp_2", "emg"])
+        >>> s.select(outputs="lfp_*", drop="lfp_2").output_names
+        ('lfp_1',)
+        """
+        from .channel_select import selected_indices
+
+        ins, outs = selected_indices(self.input_names, self.output_names, inputs=inputs, outputs=outputs, drop=drop)
+        kept = {"inputs": [self.input_names[i] for i in ins], "outputs": [self.output_names[j] for j in outs]}
+        return dataclasses.replace(
+            self, u=self.u[:, ins], y=self.y[:, outs], input_names=tuple(kept["inputs"]),
+            output_names=tuple(kept["outputs"]), input_units=tuple(self.input_units[i] for i in ins),
+            output_units=tuple(self.output_units[j] for j in outs),
+            metadata={**self.metadata, "selected_channels": kept})
 
     def split(self, n_test: int | None = None, *, test_fraction: float = 0.25, seed: int = 0) -> TrialSplit:
         """Split whole trials into training and held-out sets, at random with ``seed``.

@@ -12,6 +12,14 @@ from ...sysid.network.conditions import CONDITIONS_KEY, condition_figures
 __all__ = ["session_outputs", "read_mixing", "model_condition_tables"]
 
 
+def _selected(session, args):
+    """The session with the command's ``--inputs``/``--outputs``/``--drop`` applied."""
+    from ._common import selection
+
+    chosen = selection(args)
+    return session.select(**chosen) if chosen else session
+
+
 def read_mixing(path, net, output_names) -> np.ndarray:
     """The mixing matrix from a CSV: a header ``channel,<node>,...`` then one row per recorded channel."""
     table = pd.read_csv(path)
@@ -38,7 +46,7 @@ def _edges(net, fit):
 
 def session_outputs(net, args):
     """The map-constrained model fitted to ``args.session`` and the extra tables (edges, scores, conditions)."""
-    session = load_session(args.session)
+    session = _selected(load_session(args.session), args)
     stimulated = [c.strip() for c in args.stimulated.split(",") if c.strip()]
     mixing = None if args.mixing is None else read_mixing(args.mixing, net, session.output_names)
     fit, scores = compare_with_unconstrained(session, net, stimulated, mixing=mixing, shrink=args.shrink,
@@ -68,7 +76,7 @@ def model_condition_tables(predictor, args) -> dict:
         raise InvalidParameterError(
             f"per-condition figures refit the model's method on each condition's trials, but the model file holds a "
             f"{type(predictor).__name__} without a fitting method; save the fitted estimator (stimsteer fit).")
-    session = load_session(args.session)
+    session = _selected(load_session(args.session), args)
     labels = None if args.conditions is None else [c.strip() for c in args.conditions.split(",")]
 
     def refit(s):

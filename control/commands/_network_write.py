@@ -16,6 +16,8 @@ from ...sysid.network import (output_controllability, output_gramian, output_tra
                               site_output_controllability)
 from ...sysid.network.controllability import average_controllability_values, modal_controllability_values
 from ...sysid.network.outputs import site_sets
+from ...sysid.network.responses import SETTLE_FRACTION, mode_times
+from ...sysid.network.systems import minimal_realisation
 
 __all__ = ["NetworkOutputs", "write_network_outputs", "is_network_map"]
 
@@ -47,7 +49,7 @@ def is_network_map(model) -> bool:
     return isinstance(model.info.get("network_map"), dict)
 
 
-def _summary_table(model, kal, out, horizon):
+def _summary_table(model, kal, out, horizon, minimal=None, impulse_steps=None):
     m = model.info.get("network_map") or {}
     rows = [
         ("n_states", model.n_states), ("n_sites", model.n_inputs), ("n_channels", model.n_outputs),
@@ -58,6 +60,9 @@ def _summary_table(model, kal, out, horizon):
         ("output_gramian_condition_number", out.condition_number), ("h2_squared_all_sites", out.h2_squared),
         ("coordinates", MAP_NODES if is_network_map(model) else COORDINATE_FREE),
         ("time", m.get("time", "discrete (fitted model)")), ("normalisation", m.get("normalisation", "none")),
+        ("minimal_states", model.n_states if minimal is None else minimal.n_states),
+        ("kalman_rank_computed_on", "the map's nodes" if minimal is None else "the minimal realisation"),
+        ("impulse_response_steps", impulse_steps),
     ]
     return pd.DataFrame(rows, columns=["quantity", "value"])
 
@@ -154,7 +159,7 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     free_channels : sequence of str, optional
         Channels left free at the end of the transition.
     horizon_steps : int, optional
-        Transition horizon; default ``2 * n_states``.
+        Transition horizon; default twice the states of the minimal realisation (of the map's nodes).
     gramian_steps : int, optional
         Finite Gramian horizon; default infinite (needs a stable model).
     max_set_size : {1, 2, 3}, default 2
@@ -170,16 +175,20 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     -------
     NetworkOutputs
     """
-    T = _check_horizons(model, horizon_steps, gramian_steps)
+    _check_horizons(model, horizon_steps, gramian_steps)
     units = _units(model, input_units, output_units)
-    n = model.n_states
-    kal = controllability(model, horizon_steps=gramian_steps)
+    # a fitted model's states are a construction (ARX: one per lag): the Kalman test runs on its minimal realisation
+    minimal = None if is_network_map(model) else minimal_realisation(model, horizon_steps=gramian_steps)[0]
+    T = _check_horizons(model if minimal is None else minimal, horizon_steps, gramian_steps)
+    kal = controllability(model if minimal is None else minimal, horizon_steps=gramian_steps)
     out_rep = output_controllability(model, horizon_steps=gramian_steps)
     sites = site_output_controllability(model, horizon_steps=gramian_steps)
-    lines = _summary_lines(model, kal, out_rep)
+    modes = mode_times(model if minimal is None else minimal)
+    steps = modes.settle_steps if impulse_steps is None else int(impulse_steps)
+    lines = _summary_lines(model, kal, out_rep, minimal) + _mode_lines(modes, steps, impulse_steps is None)
     state = _state_table(model, gramian_steps, lines) if (state_figures or is_network_map(model)) else None
     pairs = _pair_table(model, gramian_steps, max_set_size)
-    h = impulse_responses(model, max(20, 3 * n) if impulse_steps is None else impulse_steps)
+    h = impulse_responses(model, steps)
     order = np.argsort(-sites.h2_squared, kind="stable")
     out = Path(out_dir)
     from ..figures import network as figures  # matplotlib is loaded only when a figure is drawn
@@ -187,7 +196,8 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     names = ["controllability.csv", "gramian_spectrum.csv", "gramian_spectrum.png", "site_controllability.csv",
              "site_sets.csv", "impulse_responses.csv", "impulse_responses.png", "site_ranking.png"]
     with atomic_dir(out, force=force) as tmp:
-        _summary_table(model, kal, out_rep, gramian_steps).to_csv(tmp / "controllability.csv", index=False)
+        _summary_table(model, kal, out_rep, gramian_steps, minimal, steps).to_csv(tmp / "controllability.csv",
+                                                                                  index=False)
         eig = np.asarray(out_rep.gramian_eigenvalues)
         pd.DataFrame({"index": np.arange(1, eig.size + 1), "eigenvalue": eig}).to_csv(
             tmp / "gramian_spectrum.csv", index=False, float_format="%.10g")
@@ -206,7 +216,8 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
                                    "squared H2 norm (output units² per input unit² per sample)",
                                    ).savefig(tmp / "site_ranking.png", dpi=_DPI)
         else:
-            lines += _write_target(model, tmp, target, start, free_channels, T, max_set_size, figures)
+            lines += _write_target(model, tmp, target, start, free_channels, T, max_set_size, figures,
+                                   _energy_unit(units))
             names += ["site_ranking.csv", "transition.csv"]
         for name, table in (extra_tables or {}).items():
             table.to_csv(tmp / name, index=False, float_format="%.10g")
@@ -214,22 +225,58 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     return NetworkOutputs(files={name: out / name for name in names}, lines=tuple(lines))
 
 
-def _summary_lines(model, kal, out_rep):
+def _summary_lines(model, kal, out_rep, minimal=None):
     n = model.n_states
     where = MAP_NODES if is_network_map(model) else COORDINATE_FREE
     norm = (model.info.get("network_map") or {}).get("normalisation", "none")
     horizon = "infinite horizon" if out_rep.horizon_steps is None else f"{out_rep.horizon_steps} steps"
-    return [
-        f"model: {n} states, {model.n_inputs} sites, {model.n_outputs} channels, spectral radius "
-        f"{model.spectral_radius:.4f} ({where}; normalisation: {norm})",
-        f"Kalman rank {kal.rank} of {n}: "
-        + ("controllable" if kal.is_controllable else "NOT controllable from these sites"),
+    lines = [f"model: {n} states, {model.n_inputs} sites, {model.n_outputs} channels, spectral radius "
+             f"{model.spectral_radius:.4f} ({where}; normalisation: {norm})"]
+    if minimal is None:
+        lines.append(f"Kalman rank {kal.rank} of {n} (the map's nodes): "
+                     + ("controllable" if kal.is_controllable else "NOT controllable from these sites"))
+    else:
+        rec = minimal.info["minimal_realisation"]
+        lines.append(
+            f"minimal realisation: {minimal.n_states} of {n} states (balanced truncation of the Hankel singular values "
+            f"below {rec['rtol']:g} of the largest; the removed states are ones no site reaches or no channel sees, to "
+            f"within that tolerance, "
+            f"and change the impulse responses by at most {rec['impulse_error_bound']:.2g})")
+        lines.append(f"Kalman rank {kal.rank} of {minimal.n_states}, on the minimal realisation: "
+                     + ("controllable" if kal.is_controllable else "NOT controllable from these sites"))
+    lines += [
         f"output rank {out_rep.output_rank} of {out_rep.n_channels}: "
-        + ("every pattern of the recorded channels is reachable" if out_rep.is_output_controllable
-           else "NOT every pattern of the recorded channels is reachable"),
+        + ("every pattern of the recorded channels can be produced (given enough steps)"
+           if out_rep.is_output_controllable else "NOT every pattern of the recorded channels can be produced"),
         f"output Gramian ({horizon}): condition {out_rep.condition_number:.3g}, squared H2 norm of all sites "
         f"{out_rep.h2_squared:.4g}",
     ]
+    return lines
+
+
+def _mode_lines(modes, steps, automatic):
+    """The impulse-response length and why, then the slow or unstable modes with their time constants."""
+    rate = modes.sample_rate_hz
+    shown = f"impulse responses: {steps} samples ({steps / rate:.4g} s)"
+    if not automatic:
+        line = shown + " as asked"
+    elif modes.capped and modes.magnitudes.size and modes.magnitudes[0] >= 1.0:
+        line = shown + ": the model has an unstable mode and never settles (3 x states shown, at least 20)"
+    elif modes.capped:
+        slowest = float(modes.time_constants_s[0])
+        line = (shown + f": capped at {steps} samples; the slowest mode (time constant {slowest:.4g} s) needs "
+                f"{np.log(1 / SETTLE_FRACTION) * slowest:.4g} s to decay to {SETTLE_FRACTION:.0%}")
+    else:
+        line = shown + f", until the slowest mode has decayed to {SETTLE_FRACTION:.0%}"
+    return [line] + modes.slow_lines()
+
+
+def _energy_unit(units) -> str:
+    """The unit of a minimum energy (sum of squared inputs over samples)."""
+    if units is None:
+        return "input units² x samples"
+    kinds = sorted(set(units[0]))
+    return f"{kinds[0]}² x samples" if len(kinds) == 1 else "input units² x samples"
 
 
 def _transition_table(tr, model):
@@ -240,7 +287,7 @@ def _transition_table(tr, model):
     return pd.DataFrame(cols)
 
 
-def _write_target(model, tmp, target, start, free, T, max_set_size, figures):
+def _write_target(model, tmp, target, start, free, T, max_set_size, figures, unit="input units² x samples"):
     tr = output_transition(model, target, horizon_steps=T, y_start=start, free_channels=free)
     ranking = rank_sites_by_output(model, target, horizon_steps=T, y_start=start, free_channels=free,
                                    max_set_size=max_set_size)
@@ -252,7 +299,7 @@ def _write_target(model, tmp, target, start, free, T, max_set_size, figures):
         title += f"\n{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot produce it (not shown)"
     if ok.any():
         fig = figures.ranking_figure([nm for nm, g in zip(ranking.names, ok) if g], ranking.energy[ok], title,
-                                     "minimum input energy (sum of u², input units² x samples)")
+                                     f"minimum input energy (sum of u², {unit})")
     else:
         fig = figures.ranking_figure(list(ranking.names), ranking.residual,
                                      title + "\nno set produces it: distance left shown",
@@ -261,15 +308,19 @@ def _write_target(model, tmp, target, start, free, T, max_set_size, figures):
     lines = []
     if free:
         lines.append(f"free channels (not held to the target): {', '.join(free)}")
+    # one statement of reachability: the least-energy transition over every site decides it, in T steps
+    secs = f"{T} steps ({T / model.sample_rate_hz:.4g} s)"
     if tr.reachable:
-        lines.append(f"all sites: target pattern reached in {T} steps with energy {tr.energy:.4g} "
-                     f"(residual {tr.residual:.2g})")
+        lines.append(f"target: REACHABLE with every site in {secs}, least energy {tr.energy:.4g} {unit} "
+                     f"({tr.energy / model.sample_rate_hz:.4g} {unit.replace('samples', 's')}); distance left "
+                     f"{tr.residual:.2g}")
     else:
-        lines.append(f"all sites: the target pattern is NOT reachable in {T} steps (distance left {tr.residual:.3g});"
-                     " a longer --horizon-steps or other sites may help")
+        lines.append(f"target: NOT reachable with every site in {secs}: the closest input leaves a distance of "
+                     f"{tr.residual:.3g} (output units); a longer --horizon or other sites may help")
     best = [f"{nm} ({e:.4g})" for nm, e, g in zip(ranking.names[:5], ranking.energy[:5], ranking.reachable[:5]) if g]
-    lines.append("best site sets (energy): " + (", ".join(best) if best else "none reaches the target"))
+    lines.append(f"best site sets (least energy, {unit}): " + (", ".join(best) if best else
+                                                                "none reaches the target"))
     if ranking.n_unreachable:
-        lines.append(f"{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot reach the target "
+        lines.append(f"{ranking.n_unreachable} of {len(ranking.sets)} site sets cannot reach the target in {secs} "
                      "(energy inf in site_ranking.csv)")
     return lines

@@ -20,6 +20,7 @@ from pathlib import Path
 
 from ...sysid import StimsteerError, load_session
 from ...sysid._files import atomic_dir
+from ...sysid._progress import progress_wanted
 from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
 from ..evaluation.execute import check_scheduler_address
@@ -27,9 +28,10 @@ from ..figures import bench as bench_figures
 from ..limits import load_limits
 from ..plants import load_plant
 from ..report import REPORT_FILE, RESULTS_FILE, bench_run_id, report_html, results_json, summarize
-from ._common import claimed
+from ...sysid.window_defaults import resolve_windows
+from ._common import add_channel_options, add_window_options, claimed, selection
 
-__all__ = ["BenchRun", "add_parser", "bench_files", "check_out_dir", "run", "write_bench"]
+__all__ = ["BenchRun", "add_parser", "bench_files", "check_out_dir", "method_specs", "run", "write_bench"]
 
 
 @dataclass(frozen=True)
@@ -43,11 +45,14 @@ class BenchRun:
         The report's summary (:func:`stimsteer.control.report.summarize`).
     files : dict of str to Path
         As returned by :func:`write_bench`.
+    notes : tuple of str
+        How the windows were chosen when they came from the data.
     """
 
     result: BenchResult
     lines: list
     files: dict
+    notes: tuple = ()
 
     @property
     def report(self) -> Path:
@@ -123,7 +128,7 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False) -> dict:
 
 def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, seed: int = 0, quick: bool = False,
                 scheduler: str | None = None, n_workers: int | None = None, force: bool = False,
-                progress: bool = False) -> BenchRun:
+                progress: bool = False, past=None, horizon=None, methods=None, channels=None) -> BenchRun:
     """Benchmark the routes on a session file and write the report folder (what ``stimsteer bench`` does).
 
     Parameters
@@ -141,6 +146,13 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
         :meth:`BenchSettings.quick` instead of the default settings.
     scheduler, n_workers, progress
         As :func:`~stimsteer.control.evaluation.run_bench`.
+    past, horizon : str, WindowLength or int, optional
+        Past window and horizon of every method (``"100ms"``, ``"40samples"``, or samples); default from the data
+        (:func:`stimsteer.sysid.window_defaults.default_windows`), the same rule every command uses.
+    methods : sequence of str, optional
+        Methods compared, ``"arx"`` or ``"indirect/arx"``; at least one per route (default every registered one).
+    channels : dict, optional
+        :meth:`Session.select` arguments (``inputs``, ``outputs``, ``drop``).
     force : bool, default False
         Replace an existing ``out_dir`` whole.
 
@@ -159,15 +171,48 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
     check_out_dir(out_dir, force=force)
     with claimed(out_dir, force=force, command="bench"):  # a second run on this folder is refused at once
         session = load_session(session_path)
+        session = session.select(**channels) if channels else session
         plant = None if plant_path is None else load_plant(plant_path)
         limits = None if limits_path is None else load_limits(limits_path)
-        settings = (BenchSettings.quick if quick else BenchSettings)(seed=seed)
+        past_steps, horizon_steps, note = resolve_windows(session, past, horizon)
+        chosen = {} if methods is None else {"methods": method_specs(methods)}
+        settings = (BenchSettings.quick if quick else BenchSettings)(seed=seed, past_steps=past_steps,
+                                                                     horizon_steps=horizon_steps, **chosen)
         source = {"session_file": str(session_path), "plant_file": None if plant_path is None else str(plant_path),
                   "limits_file": None if limits_path is None else str(limits_path)}
         result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
                            progress=progress, source=source)
         files = write_bench(result, out_dir, force=force)
-    return BenchRun(result=result, lines=summarize(result), files=files)
+    return BenchRun(result=result, lines=summarize(result), files=files, notes=(note,) if note else ())
+
+
+def method_specs(names) -> tuple:
+    """``MethodSpec`` of each name (``"arx"``, or ``"indirect/arx"`` when a name is registered on both routes).
+
+    Raises
+    ------
+    StimsteerError
+        An unknown or ambiguous name (the message lists the registered ones), or a route left without a method.
+    """
+    from ...sysid import METHODS, InvalidParameterError
+    from ..evaluation import MethodSpec
+
+    known = sorted(f"{r}/{m}" for r, m in METHODS)
+    specs = []
+    for name in (names.split(",") if isinstance(names, str) else names):
+        name = str(name).strip()
+        route, _, method = name.rpartition("/")
+        hits = [(r, m) for r, m in METHODS if m == method and (not route or r == route)]
+        if len(hits) != 1:
+            why = "is registered on both routes; write route/method" if hits else "is not a registered method"
+            raise InvalidParameterError(f"--methods: {name!r} {why}; the methods are {', '.join(known)}.")
+        specs.append(MethodSpec(*hits[0]))
+    missing = sorted({r for r, _ in METHODS} - {s.route for s in specs})
+    if missing:
+        raise InvalidParameterError(f"--methods must name at least one method of each route; none of the "
+                                    f"{' and '.join(missing)} route (its methods: "
+                                    f"{', '.join(k for k in known if k.split('/')[0] in missing)}).")
+    return tuple(specs)
 
 
 # ---------------------------------------------------------------------------------------------------- command line
@@ -190,6 +235,10 @@ def add_parser(sub) -> None:
                    help="local worker processes (default: all available cores; 1 runs in this process)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder whole")
     p.add_argument("--quick", action="store_true", help="a fast look: 2 splits, one point per sweep, short loops")
+    p.add_argument("--methods", metavar="NAMES", help="methods compared, comma-separated, at least one per route "
+                   "(e.g. 'arx,hankel' or 'indirect/subspace,direct/lsq'; default every registered method)")
+    add_window_options(p, past="past window of every method", horizon="prediction and control horizon")
+    add_channel_options(p)
 
 
 def run(args) -> int:
@@ -198,7 +247,10 @@ def run(args) -> int:
         raise StimsteerError(f"--workers must be at least 1; got {args.workers}.")
     done = bench_files(args.session, args.out, plant_path=args.plant, limits_path=args.limits, seed=args.seed,
                       quick=args.quick, scheduler=args.scheduler, n_workers=args.workers, force=args.force,
-                      progress=sys.stderr.isatty())
+                      progress=progress_wanted(), past=args.past, horizon=args.horizon, methods=args.methods,
+                      channels=selection(args))
+    for note in done.notes:
+        print(note)
     print("\n".join(f"- {line}" for line in done.lines))
     print(f"report written to {done.report}")
     print(CAUTION)

@@ -7,9 +7,11 @@ import contextlib
 import sys
 import warnings
 
-from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, open_session_source, save_predictor
+from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, save_predictor
 from ...sysid._files import atomic_path
-from ._common import claimed, whole_number
+from ...sysid.routes import _factory
+from ...sysid.window_defaults import resolve_windows
+from ._common import add_channel_options, add_window_options, claimed, open_selected, whole_number
 from .convert import add_blank_option, blank_outputs
 
 __all__ = ["add_parser", "run"]
@@ -36,10 +38,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--method", required=True, choices=sorted({m for _, m in METHODS}),
                    help="; ".join(f"{r}: {', '.join(ms)}" for r, ms in sorted(by_route.items())))
     p.add_argument("--out", required=True, help="model file to write (HDF5)")
-    p.add_argument("--horizon-steps", dest="horizon", type=whole_number(1), metavar="N",
-                   help="prediction horizon in samples (scored; direct methods fit it)")
-    p.add_argument("--past-steps", dest="past", type=whole_number(1), metavar="N",
-                   help="past window in samples (arx: output and input lags; default: chosen by cross-validation)")
+    add_window_options(p, past="past window (arx: output and input lags, chosen by cross-validation when not "
+                       "given)", horizon="prediction horizon (scored; direct methods fit it)")
+    add_channel_options(p)
     p.add_argument("--delay-steps", dest="delay", type=whole_number(0), metavar="N",
                    help="arx: input delay in samples, 0 = direct feed-through (default: chosen from 0 to 3 by "
                    "cross-validation)")
@@ -62,7 +63,7 @@ def add_parser(subparsers) -> None:
 
 
 def _settings(args) -> dict:
-    settings = {} if args.past is None else {"past_steps": args.past}
+    settings = {}
     if getattr(args, "delay", None) is not None:
         if args.method != "arx":
             raise InvalidParameterError("--delay-steps is for the arx method; the other methods take the delay from "
@@ -136,24 +137,35 @@ def _order_figure(result):
 
 
 def _fit(args, settings):
-    """``fit_route`` on the session file; its warnings become one stderr line each."""
-    with warnings.catch_warnings(record=True) as caught, open_session_source(args.session) as session:
+    """``fit_route`` on the session file (its channel selection applied, its windows resolved at its rate); its
+    warnings become one stderr line each."""
+    with warnings.catch_warnings(record=True) as caught, open_selected(args.session, args) as session:
         warnings.simplefilter("always")
         session, blanked = blank_outputs(session, args.blank_ms)
         if blanked:
             print(blanked)
+        past, horizon, note = resolve_windows(session, args.past, args.horizon)
+        if args.method == "arx" and args.past is None:
+            past = None  # ridge ARX chooses its lags by cross-validation
+            note = (note or "") + " (arx: its lags, the past window, are chosen by cross-validation instead.)"
+        if note:
+            print(note)
+        takes_past = "past_steps" in _factory(args.route, args.method).parameters()
+        if past is not None and (args.past is not None or takes_past):
+            settings = {**settings, "past_steps": past}  # a default only to a method that takes a past window
         try:
             route, method, settings = _bootstrapped(args, settings)
             result = fit_route(session, route=route, method=method, settings=settings, seed=args.seed,
-                               test_fraction=args.test_fraction, horizon_steps=args.horizon)
+                               test_fraction=args.test_fraction, horizon_steps=horizon)
             lines = _uncertainty_lines(args, result, session)
         except (InvalidParameterError, SessionError) as exc:
             # the estimator names its own settings; say which option set them
-            given = [f"--{name} {value}" for name, value in (("past-steps", args.past), ("horizon-steps",
-                     args.horizon)) if value is not None]
-            if not given:
-                raise
-            raise type(exc)(f"{exc} (the window came from {' and '.join(given)})") from None
+            given = [f"{value.option or '--' + name} {value}" for name, value in (("past", args.past),
+                                                                                   ("horizon", args.horizon))
+                     if value is not None]
+            why = " and ".join(given) if given else "the defaults from the data"
+            raise type(exc)(f"{exc} (the window came from {why}: past {past} and horizon {horizon} samples)") \
+                from None
     for w in caught:
         sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
     return result, lines

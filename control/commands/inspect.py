@@ -7,14 +7,15 @@ from __future__ import annotations
 import dataclasses
 from pathlib import Path
 
-from ...sysid import excitation_report, describe_session, open_session_source
+from ...sysid import excitation_report, describe_session
+from ...sysid.window_defaults import resolve_windows
 from ...sysid._claims import claim_output
 from ...sysid._files import atomic_path
 from ...sysid.artifacts import ARTIFACT_RATIO_THRESHOLD, detect_artifacts
 from ...sysid.exceptions import InvalidParameterError
-from ._common import whole_number
+from ._common import add_channel_options, add_window_options, open_selected, whole_number
 
-__all__ = ["add_parser", "run", "alignment_text", "blanked_text"]
+__all__ = ["add_parser", "run", "alignment_text", "blanked_text", "gap_lines"]
 
 
 def add_parser(subparsers) -> None:
@@ -22,10 +23,9 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser("inspect", help="summarise a session: channels, rate, trials, gaps, flat or saturated "
                               "channels, stimulation artifacts, clock alignment")
     p.add_argument("session", help="session file (our HDF5 layout, CSV/Parquet table, or NWB)")
-    p.add_argument("--past-steps", dest="past", type=whole_number(1), default=10, metavar="N",
-                   help="past window of the direct route, in samples, for the excitation check (default 10)")
-    p.add_argument("--horizon-steps", dest="horizon", type=whole_number(1), default=20, metavar="N",
-                   help="prediction horizon of the direct route, in samples, for the excitation check (default 20)")
+    add_window_options(p, past="past window of the direct route, for the excitation check",
+                       horizon="prediction horizon of the direct route, for the excitation check")
+    add_channel_options(p)
     p.add_argument("--states", type=whole_number(0), default=None, metavar="N",
                    help="state dimension assumed by the excitation check (default: the past window)")
     p.add_argument("--artifact-window-s", type=float, default=None, metavar="S",
@@ -51,6 +51,13 @@ def alignment_text(metadata) -> list[str]:
         lines.append(f"  pulses -> inputs: {m.get('name')} ({m.get('rule')}); {m.get('n_pulses')} pulse(s) placed, "
                      f"{m.get('n_pulses_off_grid')} off the grid")
     return (["clock alignment (model grid):"] + lines) if lines else []
+
+
+def gap_lines(metadata) -> list[str]:
+    """Lines on the rows a table reader masked because a cell was empty (channel, samples, first time)."""
+    cells = metadata.get("masked_empty_cells") or []
+    return [f"gap: {c['samples']} sample(s) of {c['channel']} are empty cells, first at t = {c['first_s']:.6g} s; "
+            "those rows are masked (excluded from fits and scores)" for c in cells]
 
 
 def _check_args(args) -> None:
@@ -84,7 +91,8 @@ def run(args) -> int:
     alignment; write the artifact figure when asked; 0 on success."""
     _check_args(args)
     fig_path = Path(args.artifact_figure) if args.artifact_figure else None
-    with open_session_source(args.session) as session:  # our HDF5 layout is read lazily, in one pass each
+    with open_selected(args.session, args) as session:  # our HDF5 layout is read lazily, in one pass each
+        past, horizon, window_note = resolve_windows(session, args.past, args.horizon)
         summary = describe_session(session)
         artifacts = _report(session, args)
         if artifacts is not None and artifacts.flagged:
@@ -92,8 +100,11 @@ def run(args) -> int:
         print(summary.to_text())
         if blanked_text(session):
             print(blanked_text(session))
-        print(excitation_report(session, past_steps=args.past, horizon_steps=args.horizon,
-                                n_states=args.states).to_text())
+        for line in gap_lines(session.metadata):
+            print(line)
+        if window_note:
+            print(window_note)
+        print(excitation_report(session, past_steps=past, horizon_steps=horizon, n_states=args.states).to_text())
         print(artifacts.to_text() if artifacts is not None else
               "artifacts: no stimulation onset with a clean (unblanked, valid) window before and after it; nothing "
               "to check.")

@@ -26,6 +26,7 @@ from ..mpc.target import parse_target
 from ..plants import load_plant
 from ..realtime import OVERRUN_POLICIES, run_live
 from .plan import _channels
+from ._common import add_window_options, window_steps
 
 __all__ = ["add_parser", "run"]
 
@@ -46,8 +47,8 @@ def add_parser(sub) -> None:
     p.add_argument("--inlet", help="name of the LSL stream of recorded channels (a live run on hardware)")
     p.add_argument("--outlet", default="stimsteer-commands", help="name of the LSL command stream to create "
                    "(default stimsteer-commands)")
-    p.add_argument("--horizon-steps", type=int, metavar="N", help="control horizon, samples (default: the "
-                   "predictor's horizon; required for a state-space model)")
+    add_window_options(p, past=None, horizon="control horizon", default="default: the predictor's horizon; "
+                       "required for a state-space model")
     p.add_argument("--overrun", choices=list(OVERRUN_POLICIES), default="hold", help="what a late step delivers: "
                    "the last delivered input (hold, default) or the safe fallback towards zero")
     p.add_argument("--resolve-timeout-s", type=float, default=5.0, help="bounded wait for the streams (default 5)")
@@ -61,7 +62,7 @@ def add_parser(sub) -> None:
 def _controller(args):
     predictor, provenance = load_predictor(args.model)
     names_in, names_out, units, rate = _channels(predictor, provenance)
-    N = args.horizon_steps or getattr(predictor, "max_horizon_steps_", None)
+    N = window_steps(args.horizon, rate, "--horizon") or getattr(predictor, "max_horizon_steps_", None)
     target, tracked = parse_target(args.target, names_out, N)
     ctrl = controller_for(predictor, load_limits(args.limits), horizon_steps=target.shape[0],
                           output_weight=tracked.astype(float), input_weight=args.input_weight)
@@ -115,7 +116,7 @@ def _lines(run, out) -> list:
         cal = s["calibration_s"]
         lines.append(f"note: {late} of {s['n_steps_run']} steps missed their deadline of {us(s['sample_period_s'])} "
                      f"(timed plans: median {us(cal['median'])}); the loop held or fell back instead of controlling. "
-                     "Use a cheaper controller (shorter --horizon-steps) or a model at a lower rate.")
+                     "Use a cheaper controller (shorter --horizon) or a model at a lower rate.")
     if "stream" in s:
         lines.append(f"stream: {s['stream']['dropped']} samples dropped by the source or the inlet buffer, "
                      f"{s['stream']['missing']} not arrived in time")

@@ -43,13 +43,13 @@ from pathlib import Path
 import numpy as np
 
 from ...sysid import InvalidParameterError, StateSpaceForm, load_predictor
-from ._common import claimed, whole_number
+from ._common import add_channel_options, add_window_options, claimed, selection, whole_number, window_steps
 from ...sysid.caution import CAUTION
 from ...sysid.network.maps import NORMALISATIONS, TIME_CONVENTIONS, map_model, read_network_map
 from ._network_write import NetworkOutputs, write_network_outputs
 from ._network_session import model_condition_tables, session_outputs
 
-__all__ = ["add_parser", "run", "NetworkOutputs", "read_pattern", "state_space_of", "write_network_outputs"]
+__all__ = ["add_parser", "run", "NetworkOutputs", "read_pattern", "read_target", "state_space_of", "write_network_outputs"]
 
 
 def add_parser(subparsers) -> None:
@@ -59,12 +59,15 @@ def add_parser(subparsers) -> None:
     p.add_argument("model", nargs="?", help="model file written by `stimsteer fit --route indirect` (or use --map)")
     p.add_argument("--out", required=True, help="output folder for the CSV tables and PNG figures")
     p.add_argument("--target", metavar="PATTERN",
-                   help="target activity pattern: one value per recorded channel, comma-separated (e.g. "
-                   "'0.5,0,1.2'), or a CSV file holding such a row (optionally under a header of channel names)")
-    p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (default: rest)")
+                   help="target activity pattern: 'name=value,name=value' as in `plan` (channels not named are left "
+                   "free), one value per recorded channel in model order ('0.5,0,1.2'), or a CSV file holding such a "
+                   "row (optionally under a header of channel names)")
+    p.add_argument("--start", metavar="PATTERN", help="start pattern, same forms as --target (channels not named "
+                   "start at rest; default: rest)")
     p.add_argument("--free", metavar="CHANNELS", help="comma-separated channels left free at the end of the "
                    "transition (their target values are ignored)")
-    p.add_argument("--horizon-steps", type=whole_number(1), help="samples of the minimum-energy transition (default 2 x states)")
+    add_window_options(p, past=None, horizon="length of the minimum-energy transition",
+                       default="default: 2 x the model's states")
     p.add_argument("--gramian-steps", type=int, help="finite Gramian horizon in samples (default: infinite, which "
                    "needs a stable model)")
     p.add_argument("--max-set-size", type=int, choices=[1, 2, 3], default=2,
@@ -89,6 +92,7 @@ def add_parser(subparsers) -> None:
     s = p.add_argument_group("stimulation data")
     s.add_argument("--session", metavar="FILE", help="with --map: session to fit the map-constrained model to; with "
                    "a model file: session whose trials are refitted per condition (--conditions)")
+    add_channel_options(s)
     s.add_argument("--mixing", metavar="FILE", help="CSV: how the recorded channels mix the nodes (rows: channels, "
                    "header: node names); default each channel is the node of the same name")
     s.add_argument("--shrink", type=float, default=0.0, help="ridge weight pulling fitted weights toward the map's")
@@ -135,6 +139,9 @@ def _check_sources(args):
             "as fitted: rescaling it would change its time constants; for an unstable model use --gramian-steps N.")
     if args.session is None and (args.conditions is not None or args.mixing is not None):
         raise InvalidParameterError("--conditions and --mixing need --session.")
+    if args.session is None and selection(args):
+        raise InvalidParameterError("--inputs, --outputs and --drop choose channels of --session; a model file "
+                                    "keeps the channels it was fitted on (choose them with `stimsteer fit --drop`).")
     if args.session is not None:
         fixed = [f for f, v in (("--recorded", args.recorded), ("--normalisation", args.normalisation),
                                 ("--normalise", args.normalise or None), ("--node-names", None),
@@ -162,11 +169,14 @@ def run(args) -> int:
             extra = None if args.session is None else model_condition_tables(predictor, args)
             recorded = provenance.get("session") if isinstance(provenance, dict) else None
             units = {k: recorded.get(k) for k in ("input_units", "output_units")} if isinstance(recorded, dict) else {}
-        target = None if args.target is None else read_pattern(args.target, model.output_names)
-        start = None if args.start is None else read_pattern(args.start, model.output_names)
+        target, unnamed = (None, []) if args.target is None else read_target(args.target, model.output_names)
+        start = None if args.start is None else read_target(args.start, model.output_names)[0]
         free = _names(args.free)
+        if unnamed:  # as in plan: the channels a name=value target leaves out are not held to anything
+            free = list(dict.fromkeys((free or []) + unnamed))
         result = write_network_outputs(model, args.out, target=target, start=start, free_channels=free,
-                                       horizon_steps=args.horizon_steps, gramian_steps=args.gramian_steps,
+                                       horizon_steps=window_steps(args.horizon, model.sample_rate_hz, "--horizon"),
+                                       gramian_steps=args.gramian_steps,
                                        max_set_size=args.max_set_size, state_figures=args.state_figures,
                                        force=args.force, extra_tables=extra, **units)
     print("\n".join(result.lines))
@@ -211,6 +221,30 @@ def _channel_name(header: str) -> str:
     h = header.strip()
     h = h[4:] if h.startswith("out:") else h
     return h.split("[", 1)[0].strip()
+
+
+def read_target(text: str, output_names):
+    """A pattern of ``--target``/``--start``: ``name=value,...`` (as ``plan`` takes it) or any form of
+    :func:`read_pattern`; returns ``(values, unnamed channels)``, the unnamed ones at 0."""
+    if "=" not in str(text) or os.path.isfile(text):
+        return read_pattern(text, output_names), []
+    names = list(output_names)
+    values = np.zeros(len(names))
+    given = {}
+    for cell in (c.strip() for c in str(text).split(",") if c.strip()):
+        name, sep, number = cell.partition("=")
+        name = name.strip()
+        if not sep or name not in names:
+            raise InvalidParameterError(f"pattern {text!r}: {name!r} is not a recorded channel of the model; its "
+                                        f"channels are {', '.join(names)} (write name=value,name=value).")
+        if name in given:
+            raise InvalidParameterError(f"pattern {text!r}: {name} is given twice.")
+        value = _numbers([number.strip()], f"pattern {text!r}, channel {name}")[0]
+        if not np.isfinite(value):
+            raise InvalidParameterError(f"pattern {text!r}: {name} = {value} must be finite.")
+        given[name] = value
+        values[names.index(name)] = value
+    return values, [n for n in names if n not in given]
 
 
 def read_pattern(text: str, output_names) -> np.ndarray:

@@ -36,6 +36,7 @@ from ..mpc.dispatch import controller_for
 from ..mpc.output_ranges import FLAG_FRACTION, check_flag_fraction, output_ranges, recorded_output_range
 from ..mpc.plan import Plan
 from ..mpc.target import _is_constant_target, parse_target
+from ._common import add_window_options, open_for_model
 
 __all__ = ["EXIT_CODES", "PlanRun", "add_parser", "plan_to_folder", "run", "trial_ref", "write_plan"]
 
@@ -77,8 +78,9 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         A limits file (:func:`stimsteer.control.limits.load_limits`), matched to the model's inputs by name.
     out_dir : str or Path
         New or empty folder (or ``force``).
-    horizon_steps : int, optional
-        Default: the target table's rows, else the predictor's horizon.
+    horizon_steps : int or WindowLength, optional
+        Default: the target table's rows, else the predictor's horizon, else the horizon ``fit`` scored the model
+        at (its provenance).
     from_trial : (str, int), optional
         ``(session path, trial index)``: plan from the end of that recorded trial; default from rest.
     output_weight, input_weight : float
@@ -109,9 +111,10 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         limits = load_limits(limits_path)
     else:
         input_weight = physical.input_weight(input_weight)
-    N = horizon_steps
+    N = horizon_steps.steps(rate, option="--horizon") if hasattr(horizon_steps, "steps") else horizon_steps
     if N is None and _is_constant_target(target):  # a table gives its own length
-        N = getattr(predictor, "max_horizon_steps_", None)
+        N = getattr(predictor, "max_horizon_steps_", None) or (provenance.get("horizon_steps") if
+                                                               isinstance(provenance, dict) else None)
     tgt, tracked = parse_target(target, names_out, N)
     N = tgt.shape[0]
     weight = float(output_weight) * tracked.astype(float)
@@ -123,7 +126,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         start = "rest"
     else:
         path, index = from_trial
-        with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+        with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
             u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
         start = f"the end of trial {index} of {path}"
@@ -345,8 +348,8 @@ def add_parser(sub) -> None:
                    "a constant 'name=value,name=value'; outputs not named are not tracked")
     p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
     p.add_argument("--out", required=True, help="output folder (must be new or empty, unless --force)")
-    p.add_argument("--horizon-steps", type=int, dest="horizon_steps", metavar="N",
-                   help="planning horizon in samples (default: the target table's rows, else the predictor's horizon)")
+    add_window_options(p, past=None, horizon="planning horizon", default="default: the target table's rows, "
+                       "else the predictor's horizon, else the horizon the model was scored at by `fit`")
     p.add_argument("--from-trial", type=trial_ref, metavar="SESSION:INDEX",
                    help="plan from the end of this recorded trial (default: from rest)")
     p.add_argument("--output-weight", type=float, default=1.0, help="weight of output tracking (default 1)")
@@ -371,7 +374,7 @@ def _delivered(done) -> bool:
 def run(args) -> int:
     """Run ``stimsteer plan`` from parsed arguments."""
     done = plan_to_folder(args.model, target=args.target, limits_path=args.limits, out_dir=args.out,
-                         horizon_steps=args.horizon_steps, from_trial=args.from_trial,
+                         horizon_steps=args.horizon, from_trial=args.from_trial,
                          output_weight=args.output_weight, input_weight=args.input_weight, force=args.force,
                          stimulation=args.stimulation, robust=getattr(args, "robust", None),
                          flag_fraction=args.flag_fraction)

@@ -20,7 +20,7 @@ from ...sysid._files import atomic_dir
 from ...sysid.caution import CAUTION
 from ..figures._titles import fitted_what
 from ..figures.predict import prediction_figure
-from ._common import claimed
+from ._common import claimed, open_for_model
 from .plan import trial_ref
 
 __all__ = ["add_parser", "prediction_table", "run", "write_prediction"]
@@ -94,7 +94,7 @@ def _score_trial(args, predictor, provenance) -> int:
     from ...sysid.patterns import _check_channels, _model_channels, score_trial
 
     path, index = args.score_trial
-    with open_session_source(path) as session:
+    with open_for_model(path, provenance) as session:
         model = _model_channels(provenance)
         _check_channels("the session", session.input_names, session.input_units, session.sample_rate_hz, model)
         scores = score_trial(predictor, session, index)
@@ -128,7 +128,7 @@ def run(args) -> int:
         past, start = None, "rest"
         if args.from_trial is not None:
             path, index = args.from_trial
-            with open_session_source(path) as session:  # our HDF5 layout: only the trial's last window is read
+            with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
                 past = trial_end_window(session, index, predictor, provenance)
             start = f"the end of trial {index} of {path}"
         prediction = predict_pattern(predictor, provenance, pattern, past=past, start=start)

@@ -4,12 +4,15 @@ CSV file that opens with the caution."""
 from __future__ import annotations
 
 import re
+import sys
+import warnings
 
 from ...sysid import InvalidParameterError, LimitsError, StimsteerError, required_order
+from ...sysid.exceptions import StimsteerWarning
 from ...sysid.caution import CAUTION
 from ..limits import load_limits
 from ..schedule import SCHEDULE_KINDS, design_schedule, save_schedule
-from ._common import claimed
+from ._common import add_window_options, claimed, window_steps
 
 __all__ = ["add_parser", "run"]
 
@@ -19,12 +22,13 @@ def add_parser(subparsers) -> None:
     p = subparsers.add_parser("schedule", help="design an exciting stimulation schedule for the next session, inside "
                               "the declared limits, and write it as a CSV")
     p.add_argument("--limits", required=True, help="limits file (TOML, see stimsteer.control.limits)")
-    p.add_argument("--inputs", required=True, type=int, help="number of stimulation inputs (must match the limits)")
+    p.add_argument("--inputs", type=int, help="number of stimulation inputs, a check against the limits file "
+                   "(default: the inputs the limits file declares)")
     p.add_argument("--order", type=int,
                    help="excitation order to guarantee: past window + horizon + expected number of states "
-                   "(or give --past-steps and --horizon-steps instead)")
-    p.add_argument("--past-steps", type=int, help="past window the next fits will use, samples")
-    p.add_argument("--horizon-steps", type=int, help="prediction / control horizon, samples")
+                   "(or give --past and --horizon instead)")
+    add_window_options(p, past="past window the next fits will use", horizon="prediction / control horizon",
+                       default="at --rate-hz; give both, or --order")
     p.add_argument("--states", type=int, help="expected number of states (default: the past window)")
     p.add_argument("--out", required=True, help="schedule file to write (CSV)")
     p.add_argument("--kind", choices=list(SCHEDULE_KINDS), default="prbs", help="signal family (default prbs)")
@@ -33,7 +37,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--trial-s", type=float, default=10.0, help="trial length in seconds (default 10)")
     p.add_argument("--rest-s", type=float, default=2.0, help="rest before, between and after trials (default 2)")
     p.add_argument("--seed", type=int, default=0, help="seed of every random choice (default 0)")
-    p.add_argument("--hold-steps", type=int, default=1, help="samples each value is held (prbs, multilevel)")
+    p.add_argument("--hold-steps", type=int, help="samples each value is held (prbs, multilevel; default 1, or for "
+                   "prbs under a slew limit the fewest samples a full swing needs, so the declared window is used)")
     p.add_argument("--levels", type=int, default=5, help="number of levels (multilevel; default 5)")
     p.add_argument("--pulse-rate-hz", type=float, help="mean pulse rate (pulses; default rate / 5)")
     p.add_argument("--band-hz", type=float, help="highest excited frequency (multisine; default Nyquist)")
@@ -46,12 +51,16 @@ def add_parser(subparsers) -> None:
 def _order(args) -> int:
     if args.order is not None:
         return args.order
-    if args.past_steps is None or args.horizon_steps is None:
-        raise InvalidParameterError("give --order K, or --past-steps and --horizon-steps (and optionally --states) so "
-                                    "the order past + horizon + states can be derived.")
-    order = required_order(args.past_steps, args.horizon_steps, args.states)
+    if args.past is None or args.horizon is None:
+        raise InvalidParameterError("give --order K, or --past and --horizon (e.g. 40ms or 10samples; optionally "
+                                    "--states) so the order past + horizon + states can be derived.")
+    if not (args.rate_hz > 0):
+        raise InvalidParameterError(f"--rate-hz must be a positive number of samples per second; got {args.rate_hz}.")
+    past = window_steps(args.past, args.rate_hz, "--past")
+    horizon = window_steps(args.horizon, args.rate_hz, "--horizon")
+    order = required_order(past, horizon, args.states)
     states = f"states {args.states}" if args.states is not None else "states (assumed = past window)"
-    print(f"order {order} = past window {args.past_steps} + horizon {args.horizon_steps} + {states}")
+    print(f"order {order} = past window {past} + horizon {horizon} + {states} (samples at {args.rate_hz:g} Hz)")
     return order
 
 
@@ -84,11 +93,15 @@ def run(args) -> int:
     with claimed(args.out, force=args.force, command="schedule"):
         order = _order(args)
         limits = load_limits(args.limits)
-        if limits.n_inputs != args.inputs:
+        if args.inputs is not None and limits.n_inputs != args.inputs:
             raise LimitsError(f"{args.limits} declares limits for {limits.n_inputs} input(s) but --inputs is "
                               f"{args.inputs}; declare one [inputs.<name>] table per input or fix --inputs.")
-        schedule = _design(args, limits, order)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", StimsteerWarning)
+            schedule = _design(args, limits, order)
         save_schedule(schedule, args.out, overwrite=args.force)
+    for w in caught:  # after the file is written: a refused output stays one line
+        sys.stderr.write(f"stimsteer schedule: warning: {w.message}\n")
     print(schedule.to_text())
     print(f"schedule written to {args.out}")
     print(CAUTION)

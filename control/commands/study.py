@@ -24,6 +24,7 @@ from ...sysid._claims import claim_output
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable
 from ...sysid.caution import CAUTION
+from ._common import add_window_options
 from ..figures.study import study_figures
 from ..study import ANALYSES, OFFSETS, StudyResult, StudySettings, describe_study, run_study
 from ..study.table import study_file_settings
@@ -31,7 +32,7 @@ from ..study.report import session_page, session_page_name, study_html, summary_
 
 __all__ = ["add_parser", "run", "study_files", "write_study", "study_settings"]
 
-_CLI_FIELDS = {"past_steps": "past_steps", "horizon_steps": "horizon_steps", "splits": "n_splits", "seed": "seed",
+_CLI_FIELDS = {"past": "past_steps", "horizon": "horizon_steps", "splits": "n_splits", "seed": "seed",
                "min_trials": "min_trials", "offsets": "offsets", "max_retries": "max_retries"}
 
 
@@ -52,8 +53,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--methods", help="comma-separated route/method, e.g. indirect/subspace,direct/lsq")
     p.add_argument("--channels", help="comma-separated common subset of channel names (inputs and outputs)")
     p.add_argument("--analyses", help=f"comma-separated subset of {','.join(ANALYSES)}")
-    p.add_argument("--past-steps", type=int)
-    p.add_argument("--horizon-steps", type=int)
+    add_window_options(p, past="past window of every method", horizon="prediction horizon",
+                       default="a study may mix rates, so give samples, e.g. 40samples; default: the study's")
     p.add_argument("--splits", type=int, help="seeded trial splits per session")
     p.add_argument("--seed", type=int)
     p.add_argument("--min-trials", type=int, help="sessions with fewer trials are excluded by name")
@@ -69,6 +70,16 @@ def _split(text):
     return None if text is None else tuple(s.strip() for s in str(text).split(",") if s.strip())
 
 
+def _study_window(opt, value):
+    """A window option in samples (a study may mix rates, so a time would mean different samples per session)."""
+    if not hasattr(value, "unit"):
+        return value
+    if value.unit != "samples":
+        raise InvalidParameterError(f"--{opt} {value}: a study may mix sample rates, so give its windows in samples "
+                                    f"(e.g. --{opt} 40samples).")
+    return int(value.value)
+
+
 def study_settings(file_settings: dict, args) -> StudySettings:
     """Defaults, then the study file's ``[settings]``, then the command-line options given."""
     known = {f.name for f in dataclasses.fields(StudySettings)}
@@ -78,7 +89,7 @@ def study_settings(file_settings: dict, args) -> StudySettings:
     values = dict(file_settings)
     for opt, name in _CLI_FIELDS.items():
         if getattr(args, opt, None) is not None:
-            values[name] = getattr(args, opt)
+            values[name] = _study_window(opt, getattr(args, opt))
     for opt in ("methods", "channels", "analyses"):
         if getattr(args, opt, None) is not None:
             values[opt] = _split(getattr(args, opt))

@@ -23,8 +23,9 @@ column header                  content
 
 Channel names may not contain square brackets and the unit is required (``[a.u.]`` for arbitrary units); any
 other column is refused, so a misspelt header is caught. Lines before the header that start with ``#`` are
-comments and are skipped (schedule files open with the caution there). Masked values may be empty cells or
-``nan``. The writer
+comments and are skipped (schedule files open with the caution there). An empty cell (or ``nan``) in a channel
+column marks its row as a masked sample, with or without a ``valid`` column (the rows so masked are counted per
+channel in the metadata key ``masked_empty_cells``). The writer
 emits ``time [s] @ <rate> Hz``, the label ``-1`` outside trials, and ``valid`` as 1/0; numbers are written in
 the shortest form that reads back to the identical float64. Parquet files also store the layout name, version
 and the metadata JSON in the schema metadata keys ``stimsteer_layout``, ``stimsteer_layout_version`` and
@@ -305,6 +306,25 @@ def _valid_column(frame, col: str | None, path: Path) -> np.ndarray | None:
     return text.map(truth).to_numpy(dtype=bool)
 
 
+def _mask_empty_cells(valid, values: np.ndarray, names, rate: float, meta: dict) -> np.ndarray | None:
+    """The mask with every row holding an empty (NaN) cell marked invalid, with or without a ``valid`` column.
+
+    The rows masked this way are counted per channel in ``meta["masked_empty_cells"]`` (channel, samples, first
+    time in seconds), so ``inspect`` can say where the gaps are.
+    """
+    empty = np.isnan(values)
+    if valid is not None:
+        empty &= np.asarray(valid, bool)[:, None]  # cells of rows already invalid are not news
+    rows = empty.any(axis=1)
+    if not rows.any():
+        return valid
+    meta["masked_empty_cells"] = [
+        {"channel": names[j], "samples": int(empty[:, j].sum()), "first_s": float(np.argmax(empty[:, j]) / rate)}
+        for j in np.flatnonzero(empty.any(axis=0))]
+    base = np.ones(values.shape[0], bool) if valid is None else np.asarray(valid, bool)
+    return base & ~rows
+
+
 def _session_from_table(frame, path: Path, metadata: dict) -> Session:
     spec = _parse_header(list(frame.columns), path)
     if len(frame) == 0:
@@ -317,8 +337,10 @@ def _session_from_table(frame, path: Path, metadata: dict) -> Session:
     meta = dict(metadata)
     if t0 != 0.0:
         meta["start_time_s"] = t0
+    names = [f"{role}:{n}" for role, chans in (("in", spec["in"]), ("out", spec["out"])) for _, n, _ in chans]
+    mask = _mask_empty_cells(_valid_column(frame, spec["valid"], path), np.column_stack([u, y]), names, rate, meta)
     return _as_session(
-        path, u=u, y=y, sample_rate_hz=rate, trials=trials, mask=_valid_column(frame, spec["valid"], path),
+        path, u=u, y=y, sample_rate_hz=rate, trials=trials, mask=mask,
         input_names=[n for _, n, _ in spec["in"]], input_units=[x for _, _, x in spec["in"]],
         output_names=[n for _, n, _ in spec["out"]], output_units=[x for _, _, x in spec["out"]], metadata=meta,
     )

@@ -209,14 +209,20 @@ def test_every_method_fits_and_scores_long_trials(rng, tmp_path, capsys, method)
 
 
 @pytest.mark.parametrize("method", ["lsq", "hankel"])
-def test_direct_fit_without_its_windows_names_the_missing_options(session_file, tmp_path, capsys, method):
+def test_direct_fit_without_its_windows_takes_them_from_the_data_and_says_so(session_file, tmp_path, capsys,
+                                                                              method):
+    # issue 18: a direct fit no longer needs the windows typed; they come from the data and the line says so
     out = tmp_path / "d.h5"
-    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out)]) == 2
-    one_error_line(capsys, "needs past_steps, horizon_steps", "--past-steps N and --horizon-steps N")
-    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out),
-                 "--past-steps", "3"]) == 2
-    one_error_line(capsys, "needs horizon_steps (on the command line: --horizon-steps N)")
-    assert not out.exists()
+    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "windows (default, from the data): past" in printed and "impulse response of a quick ARX" in printed
+    assert out.exists()
+    out2 = tmp_path / "d2.h5"
+    assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out2),
+                 "--past-steps", "3"]) == 0
+    assert "windows (default, from the data)" in capsys.readouterr().out  # the horizon still came from the data
+    from stimsteer.sysid import load_predictor
+    assert load_predictor(out2)[0].past_steps_ == 3
 
 
 def test_arx_with_a_zero_past_window_names_the_option(session_file, tmp_path, capsys):

@@ -10,9 +10,7 @@ read-only copies in ../shared/data/daisy beside the repository (two columns: inp
   with a stabilising feedback loop in place.
 """
 
-import os
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -22,22 +20,17 @@ from stimsteer.sysid.subspace import SubspaceId
 
 from stimsteer.sysid.metrics import vaf
 
+from .open_data import data_folder, require
 
-# shared/ lies beside the repository (on a workstation and in CI alike)
-DAISY = Path(__file__).resolve().parents[2].parent / "shared" / "data" / "daisy"
+
+# shared/ lies beside the repository (on a workstation and in CI alike), or where STIMSTEER_OPEN_DATA says
+DAISY = data_folder() / "daisy"
 WEIGHTINGS = ["n4sid", "moesp", "cva"]
 PAST = FUTURE = 10  # samples: several times the air heater's delay of a few samples (from memory)
 
 
 def _load(name, sample_rate_hz):
-    path = DAISY / name
-    if not path.exists():
-        where = (f"open data file {name} not found: expected at {path} (the shared data folder ../shared/data/daisy "
-                 "beside the repository)")
-        if os.environ.get("CI"):
-            # CI always has shared/ beside the clone: a missing file there is a broken set-up, not a reason to skip
-            pytest.fail(f"{where}; CI is set, so this check must run.")
-        pytest.skip(where)
+    path = require(DAISY / name)  # skips naming the folder, or fails when CI is set
     data = np.loadtxt(path)
     u, y = data[:, :1], data[:, 1:2]
     # the mean is taken from the first 500 samples only: nothing of the validation half reaches the fit
@@ -104,3 +97,13 @@ def test_missing_data_fail_when_ci_is_set_and_skip_naming_the_folder_otherwise(m
     monkeypatch.delenv("CI")
     with pytest.raises(pytest.skip.Exception, match="expected at .*daisy/dryer.dat"):
         _load("dryer.dat", sample_rate_hz=12.5)
+
+
+def test_the_data_folder_can_be_given_by_the_environment(monkeypatch, tmp_path):
+    # issue 18: a fresh clone elsewhere points the tests at a copy of the data
+    monkeypatch.setenv("STIMSTEER_OPEN_DATA", str(tmp_path))
+    assert data_folder() == tmp_path
+    monkeypatch.delenv("CI", raising=False)
+    with pytest.raises(pytest.skip.Exception, match=rf"open data file x.dat not found: expected at {tmp_path}/x.dat.*"
+                                                   "STIMSTEER_OPEN_DATA"):
+        require(tmp_path / "x.dat")

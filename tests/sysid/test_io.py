@@ -193,7 +193,9 @@ BAD_TABLES = {
     "no_trial_rows": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,-1,1\n", r"no row belongs to a trial"),
     "bad_valid": ("time [s] @ 10 Hz,trial,out:y [mV],valid\n0,0,1,maybe\n", r"'valid' column must hold 1/0"),
     "text_value": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,abc\n", r"must be numeric; row 0 holds 'abc'"),
-    "nan_valid": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,\n", r"does not hold a valid session.*NaN"),
+    # an empty cell is a masked sample (issue 18); an infinite value at a valid sample is still refused, naming the
+    # channel and the time
+    "inf_valid": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,inf\n", r"in output 'y' at t = 0.1 s"),
     "header_only": ("time [s] @ 10 Hz,trial,out:y [mV]\n", r"holds a header but no rows"),
     "zero_rate": ("time [s] @ 0 Hz,trial,out:y [mV]\n0,0,1\n", r"sampling rate must be positive"),
 }

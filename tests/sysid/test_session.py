@@ -48,9 +48,11 @@ def test_nan_or_inf_outside_the_mask_is_refused(rng, where, value):
     (u if where == "u" else y)[7, 0] = value
     mask = np.ones(20, dtype=bool)
     mask[3] = False
-    name = "inputs" if where == "u" else "outputs"
-    with pytest.raises(SessionError, match=rf"{name} \({where}\) hold 1 NaN or infinite values at valid samples "
-                                           r"\(first at sample 7, channel 0\)\. Mark those samples invalid"):
+    name = "input" if where == "u" else "output"
+    # the message names the channel and the time in seconds, and how to fix it (issue 18)
+    with pytest.raises(SessionError, match=rf"1 NaN or infinite {name} value\(s\) at valid samples, in {where}0 "
+                                           rf"\(1\); the first in {name} '{where}0' at t = 0.7 s \(sample 7\)\. "
+                                           r"Mark those samples invalid \(mask=False; in a table, valid = 0"):
         Session(u=u, y=y, sample_rate_hz=10.0, mask=mask)
 
 
