@@ -254,3 +254,125 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
                 acc.e += e
             lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
     return folds, lo, hi
+
+
+# ------------------------------------------------------------------------------------------------ Gram from windows
+class _LagSums:
+    """Lag products of a set of pieces, kept compact: the Gram of their lagged vectors is assembled on demand.
+
+    ``n``, ``S``, ``X[δ]`` as in :class:`_PieceSums`; instead of the edge terms (one Gram-sized array per fold),
+    the ``L`` samples before each piece's first row (``starts``, sign +1) and its last ``L`` samples (``ends``, sign
+    −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from these sums
+    alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram.
+    """
+
+    def __init__(self, c: int, n_lags: int):
+        self.n = 0
+        self.S = np.zeros(c)
+        self.X = np.zeros((n_lags + 1, c, c))
+        self.windows: list = []  # (sign, samples (L, c))
+
+    def plus(self, other: "_LagSums", sign: float = 1.0) -> "_LagSums":
+        """``self + sign · other`` (a difference of folds is a sum with the other's windows sign-flipped)."""
+        out = _LagSums(self.S.size, self.X.shape[0] - 1)
+        out.n = self.n + int(sign) * other.n
+        out.S = self.S + sign * other.S
+        out.X = self.X + sign * other.X
+        out.windows = self.windows + [(sign * s, w) for s, w in other.windows]
+        return out
+
+
+def _edge_correction(windows, n_lags: int, c: int) -> list:
+    """``C[δ][a - 1] = Σ_windows sign Σ_{j=1}^{a} W[L-j] W[L-j-δ]ᵀ``, the edge term of Gram block ``(a, a + δ)``.
+
+    A window ``W`` holds the ``L`` samples ending at a piece edge; the sum over ``j`` is a cumulative sum, and the
+    sum over windows one batched product per ``δ``: ``O(L² c² × windows)`` work, not ``O(L³ c²)``.
+    """
+    L = n_lags
+    if not windows or L == 0:
+        return [np.zeros((L - d, c, c)) for d in range(L + 1)]
+    R = np.stack([w[::-1] for _s, w in windows])  # R[:, j - 1] = W[L - j]
+    signs = np.array([s for s, _w in windows])
+    Rs = R * signs[:, None, None]
+    out = []
+    for d in range(L + 1):
+        if d == L:
+            out.append(np.zeros((0, c, c)))
+            continue
+        # Q[j] = Σ_w sign R_w[j] R_w[j + d]ᵀ, j = 0 … L - d - 1, as a batch of (c × w)(w × c) products
+        Q = np.matmul(Rs[:, : L - d].transpose(1, 2, 0), R[:, d:].transpose(1, 0, 2))
+        out.append(np.cumsum(Q, axis=0))
+    return out
+
+
+def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None) -> np.ndarray:
+    """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
+
+    Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
+    ``X[δ]``; the lower blocks are the transposes. The same matrix as ``_PieceSums.moments().W``. With ``index``
+    (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
+    a permuted Gram made without a second Gram-sized copy.
+    """
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    if index is None:
+        index = np.arange(Lp1 * c).reshape(Lp1, c)
+    corr = _edge_correction(sums.windows, Lp1 - 1, c)
+    W = np.empty((Lp1 * c, Lp1 * c))
+    for d in range(Lp1):
+        a = np.arange(Lp1 - d)
+        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
+        blocks[1:] += corr[d]
+        corr[d] = None  # free as we go
+        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
+        W[rows, cols] = blocks
+        if d:
+            W[cols.transpose(0, 2, 1), rows.transpose(0, 2, 1)] = blocks.transpose(0, 2, 1)
+    return W
+
+
+def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
+    """Worker task: the chunk's sums and products, and the edge windows of its piece when it starts or ends one."""
+    S, X = _chunk_products(B, n_lags)
+    start = B[:n_lags].copy() if first else None
+    end = B[B.shape[0] - n_lags:].copy() if last else None
+    return S, X, start, end
+
+
+def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None):
+    """One pass over the pieces (rows ``[k0, k1)`` with fold ``f``): the :class:`_LagSums` of each fold.
+
+    ``Z = [y u]`` unshifted; chunks are reduced on worker threads with single-threaded BLAS and summed in chunk
+    order (the same numbers in every run). ``on_chunk(rows)`` is called after each chunk (progress).
+    """
+    c = int(session.n_outputs) + int(session.n_inputs)
+    folds = [_LagSums(c, n_lags) for _ in range(n_folds)]
+    longest = max((min(b - a, chunk_rows) for a, b, _f in pieces), default=0) + n_lags
+    in_workers = _reads_into(session)
+
+    def load(item):
+        (k0, k1, _f, first, last), buffer = item
+        return _read_z(session, k0 - n_lags, k1, None, buffer)[0], first, last
+
+    def task(loaded):
+        Z, first, last = loaded
+        return _window_task(Z, n_lags, first, last)
+
+    with _single_threaded_blas() as n_workers:
+        ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]
+        items = ((chunk, ring[i % len(ring)]) for i, chunk in enumerate(_chunks(pieces, chunk_rows)))
+        if in_workers:
+            stream = _parallel_pass(items, lambda item: item, lambda item: task(load(item)), n_workers)
+        else:
+            stream = _parallel_pass(items, load, task, n_workers)
+        for ((k0, k1, f, _first, _last), _buffer), (S, X, start, end) in stream:
+            acc = folds[f]
+            acc.n += k1 - k0
+            acc.S += S
+            acc.X += X
+            if start is not None:
+                acc.windows.append((1.0, start))
+            if end is not None:
+                acc.windows.append((-1.0, end))
+            if on_chunk is not None:
+                on_chunk(k1 - k0)
+    return folds

@@ -10,6 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
+from .gram import ridge_grid_errors, ridge_map
 
 __all__ = ["LsqPredictor"]
 
@@ -140,14 +141,25 @@ class LsqPredictor(_DirectPredictor):
         m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
         n_b = (m + p) * past + m * self.max_horizon_steps_
 
+        gram_route = self.factor_route_ == "gram"
+
         def score(train, val, w):
+            if gram_route:  # one eigendecomposition per fold for the whole grid
+                return ridge_grid_errors(train, val, n_b, alphas, w)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
         alpha, table = self._select(folds, alphas, weights, score)
-        total = _merge(folds, folds[0].factor.shape[0])
-        scale = _data_scale(total.factor)
-        theta = self._unscaled(_lsq_map(total.factor, n_b, alpha * scale))  # fitted on unit-RMS channels
+        total = _merge(folds, folds[0].n_rows)
+        if gram_route:
+            G = total.gram
+            scale = float(np.trace(G)) / G.shape[0]
+            theta = ridge_map(G, n_b, alpha * scale)
+            del G
+        else:
+            scale = _data_scale(total.factor)
+            theta = _lsq_map(total.factor, n_b, alpha * scale)
+        theta = self._unscaled(theta)  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])
         self.alpha_, self.data_scale_, self.ridge_strength_ = alpha, scale, alpha * scale
