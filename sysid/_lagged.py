@@ -245,7 +245,11 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
 
     ``Z = [y u] − shift`` (a shift near the mean keeps the sums accurate); see :func:`_stream_lag_sums`.
     """
-    return _stream_lag_sums(session, pieces, n_folds, n_lags, chunk_rows, shift=shift, with_range=True)
+    from ._progress import progress
+
+    with progress(sum(b - a for a, b, _f in pieces), "lag products", unit="sample") as bar:
+        return _stream_lag_sums(session, pieces, n_folds, n_lags, chunk_rows, bar.update, shift=shift,
+                                with_range=True)
 
 
 def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None, *,

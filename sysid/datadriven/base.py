@@ -16,6 +16,7 @@ from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
+from .._progress import progress
 from .gram import GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, total_fold
 
 
@@ -280,12 +281,11 @@ class _DirectPredictor(BasePredictor):
         errors, counts = np.zeros(len(candidates)), 0
         cols = {}
         total = _merge(folds, folds[0].n_rows) if isinstance(folds[0], _GramFold) else None
-        for i, val in enumerate(folds):
-            train = _training(folds, i, total)
-            if val.n_columns == 0 or train.n_columns == 0:
+        with progress(len(folds), f"cross-validation of {type(self).__name__}", unit="fold") as bar:
+            scores = [self._score_one(folds, i, total, weights, score_fold, bar) for i in range(len(folds))]
+        for i, (val, e) in enumerate(zip(folds, scores)):
+            if e is None:
                 continue
-            e = np.asarray(score_fold(train, val, weights))
-            val.release()
             errors += e
             counts += val.n_columns
             cols[f"fold_{i}"] = e / max(val.n_columns * weights.size, 1)  # same normalisation as the mean
@@ -294,6 +294,18 @@ class _DirectPredictor(BasePredictor):
         best = int(np.flatnonzero(mean <= mean.min() * (1 + 1e-12))[-1])
         table = pd.DataFrame({"candidate": candidates, "validation_error": mean, **cols})
         return float(candidates[best]), table
+
+    @staticmethod
+    def _score_one(folds, i, total, weights, score_fold, bar):
+        """Held-out errors of fold ``i`` (None when it or its training data has no window)."""
+        val = folds[i]
+        train = _training(folds, i, total)
+        bar.update()
+        if val.n_columns == 0 or train.n_columns == 0:
+            return None
+        e = np.asarray(score_fold(train, val, weights))
+        val.release()
+        return e
 
     # ---------------------------------------------------------------------------------------- prediction
     def _batch_windows(self, u_past, y_past, u_future):
