@@ -11,8 +11,8 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    (``past_steps = past``, ``future_steps = horizon``), the least-squares (SPC) predictor and the regularised
    Hankel predictor, each with its default settings and grids, at past 10 / horizon 20 and past 100 / horizon 50;
 2. the reference: one lagged Gram of the raw data with the same lag count (``past + horizon`` lags; ``past`` for
-   ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, with both cores' BLAS
-   and with one thread, the faster counting): the products any exact Gram of the lagged data must compute;
+   ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, one BLAS thread): the
+   products any exact Gram of the lagged data must compute;
 3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50).
 
 A case that exceeds ``--timeout`` seconds is killed and printed as such (on a loaded machine, say so).
@@ -83,7 +83,7 @@ def child_gram(path: str, n_lags: int) -> dict:
     """Bare lag products of the raw data: ``Z[δ:]ᵀ Z[:T-δ]`` for δ = 0 … n_lags - 1, over the whole recording.
 
     One product of two ``(T × c)`` matrices per lag (the cost of any exact lagged Gram, without its per-trial edge
-    terms), timed with the default BLAS threads and with one thread; the faster counts (best of two runs each).
+    terms), on one BLAS thread, best of two runs.
     """
     import numpy as np
     from threadpoolctl import threadpool_limits
@@ -102,9 +102,10 @@ def child_gram(path: str, n_lags: int) -> dict:
             np.matmul(Z[d:].T, Z[: T - d], out=X[d])
         return time.perf_counter() - t0
 
-    best = min(products() for _ in range(2))
+    # One BLAS thread: on a busy machine multi-threaded OpenBLAS stalls on these small products (a 2-thread
+    # reference was killed after 400 s at 150 lags under load 11); on an idle one it gains little at c = 23.
     with threadpool_limits(limits=1, user_api="blas"):
-        best = min([best] + [products() for _ in range(2)])
+        best = min(products() for _ in range(2))
     return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
 
 
