@@ -180,6 +180,12 @@ class HankelPredictor(_DirectPredictor):
     sample_rate_hz_ : float
     output_offset_ : ndarray, shape (n_outputs,)
         The training mean removed with ``centre_outputs`` (zeros otherwise).
+    factor_route_ : str
+        ``"gram"``: the data came from streamed lag products as per-fold Grams of the Hankel matrix (factor: their
+        Cholesky factor); ``"qr"``: from QR factors of the data, taken when the Gram is too ill-conditioned
+        (estimated condition number above ``datadriven.gram.GRAM_CONDITION_LIMIT``) or raw columns are needed (ℓ1).
+    gram_condition_ : float
+        Estimated 1-norm condition number of the whole Gram ``H Hᵀ`` (NaN when the QR route was chosen without it).
 
     Notes
     -----

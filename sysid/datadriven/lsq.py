@@ -73,13 +73,22 @@ class LsqPredictor(_DirectPredictor):
     sample_rate_hz_ : float
     output_offset_ : ndarray, shape (n_outputs,)
         The training mean removed with ``centre_outputs`` (zeros otherwise).
+    factor_route_ : str
+        ``"gram"``: the data came from streamed lag products as per-fold Grams of the Hankel matrix (factor: their
+        Cholesky factor); ``"qr"``: from QR factors of the data, taken when the Gram is too ill-conditioned
+        (estimated condition number above ``datadriven.gram.GRAM_CONDITION_LIMIT``) or raw columns are needed (ℓ1).
+    gram_condition_ : float
+        Estimated 1-norm condition number of the whole Gram ``H Hᵀ`` (NaN when the QR route was chosen without it).
 
     Notes
     -----
-    ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows, computed from the
-    streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
-    ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is likewise
-    ``||F2,val − Θ F1,val||_F²``. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
+    ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows. On the Gram route
+    (``factor_route_ == "gram"``) it is ``G21 (G11 + alpha·s I)⁻¹`` from the Gram ``G`` of ``[D; Yf]``, made from
+    streamed lag products of the raw samples (:mod:`stimsteer.sysid.datadriven.gram`), and every strength of a fold
+    is scored from one eigendecomposition of the training ``G11``. Where the Gram is ill-conditioned (QR route) it
+    is computed from the streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
+    ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is
+    ``||F2,val − Θ F1,val||_F²`` either way. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
     beyond it do not change the first outputs, as ``Kf_`` is block lower triangular up to the fit error).
 
     References
