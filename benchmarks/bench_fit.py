@@ -181,9 +181,9 @@ def main(argv=None) -> int:
         save_session(session, path, compression=args.compression)
         print(f"  setup: wrote {path.stat().st_size / 1e6:.0f} MB of HDF5 (compression {args.compression}) in "
               f"{time.perf_counter() - t0:.1f} s")
-        report_arx(session, path, L, args.repeat, args.compression)
-        if not args.skip_subspace:
-            report_subspace(session, path, L, args.repeat)
+        t_arx = report_arx(session, path, L, args.repeat, args.compression)
+        t_sub = None if args.skip_subspace else report_subspace(session, path, L, args.repeat)
+        report_fair(session, L, args.repeat, t_arx, t_sub)
     print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 
@@ -220,6 +220,7 @@ def report_arx(session, path, L, repeat, compression):
           f"RATIO {traced / design_bytes:.3f}   (target <= 0.10)")
     print(f"  peak extra memory, resident set of a child process: {rss / mb:.1f} MB -> "
           f"RATIO {rss / design_bytes:.3f}   (target <= 0.10)")
+    return t_fit
 
 
 # ================================================================================================ SUBSPACE RATIO
@@ -241,6 +242,47 @@ def report_subspace(session, path, L, repeat):
           f"(best of {repeat})")
     print(f"  baseline one Gram of the {G.shape[0]}-row block-Hankel matrix (chunked, in memory): {t_gram:.2f} s")
     print(f"  RATIO subspace fit / Hankel Gram = {t_fit / t_gram:.2f}   (target <= 2)")
+    return t_fit
+
+
+# ================================================================================================ FAIR BASELINES
+# Each fit ÷ the best plain implementation of the same method: bare lag products in numpy (one pass, both cores).
+def bare_lag_products(s: Session, n_lags: int) -> np.ndarray:
+    """``X[δ] = Σ_trials Z[δ:]ᵀ Z[:n−δ]`` for δ = 0 … n_lags − 1, ``Z = [y u]`` per trial (default BLAS threads).
+
+    The products every exact Gram of the lagged data needs (the edge terms are a few samples per trial and the
+    solve is of the Gram's size, both left out: this is a lower bound of the method's cost).
+    """
+    c = s.n_inputs + s.n_outputs
+    X = np.zeros((n_lags, c, c))
+    for a, b in s.trials:
+        z = np.hstack([s.y[a:b], s.u[a:b]])
+        n = z.shape[0]
+        for d in range(n_lags):
+            X[d] += z[d:].T @ z[: n - d]
+    return X
+
+
+def dgemm_peak(repeat: int, n: int = 3000) -> float:
+    """Measured dgemm rate of this machine, flop/s (default BLAS threads, best of ``repeat``)."""
+    a = np.random.default_rng(0).standard_normal((n, n))
+    t, _ = best_of(repeat, lambda: a @ a)
+    return 2.0 * n ** 3 / t
+
+
+def report_fair(session, L, repeat, t_arx, t_sub):
+    c, T = session.n_inputs + session.n_outputs, session.u.shape[0]
+    peak = dgemm_peak(repeat)
+    print(f"  fair baselines: measured dgemm peak {peak / 1e9:.1f} GF/s (3000 x 3000, default BLAS threads)")
+    for name, t_fit, lags, target in (("ridge ARX", t_arx, L + 1, 1.05), ("subspace", t_sub, 2 * L, 1.2)):
+        if t_fit is None:
+            continue
+        t_bare, _ = best_of(repeat, lambda: bare_lag_products(session, lags))
+        flops = 2.0 * T * c * c * lags
+        print(f"  {name}: bare lag products ({lags} lags, {flops:.2e} flops) {t_bare:.2f} s; fit {t_fit:.2f} s; "
+              f"RATIO fit / bare = {t_fit / t_bare:.2f} (target <= {target}); fraction of dgemm peak: fit "
+              f"{flops / t_fit / peak:.2f}, bare {flops / t_bare / peak:.2f}")
+# ============================================================================================ end FAIR BASELINES
 # ============================================================================================ end SUBSPACE RATIO
 
 

@@ -36,40 +36,6 @@ class _Moments:
         return out
 
 
-class _PieceSums:
-    """Running sums of one fold, in the compact form the stream produces (assembled into :class:`_Moments` once).
-
-    ``S`` and ``X[δ]`` sum ``Z_t`` and ``Z_t Z_{t-δ}ᵀ`` over the rows ``t`` of every chunk; ``E[a, δ]`` and ``e[a]``
-    sum the edge terms of every piece (see :func:`_edge_terms`).
-    """
-
-    def __init__(self, c: int, n_lags: int):
-        L = n_lags
-        self.n = 0
-        self.S = np.zeros(c)
-        self.X = np.zeros((L + 1, c, c))
-        self.E = np.zeros((L + 1, L + 1, c, c))
-        self.e = np.zeros((L + 1, c))
-
-    def moments(self) -> _Moments:
-        """Sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over all rows of the fold.
-
-        Block ``(a, b = a + δ)`` of the Gram is ``sum_k Z_{k-a} Z_{k-b}ᵀ = X[δ] + E[a, δ]``.
-        """
-        Lp1, c = self.X.shape[0], self.X.shape[1]
-        out = _Moments(Lp1 * c)
-        out.n = self.n
-        out.s = np.concatenate([self.S + self.e[a] for a in range(Lp1)])
-        W = out.W
-        for a in range(Lp1):
-            for delta in range(Lp1 - a):
-                b = a + delta
-                block = self.X[delta] + self.E[a, delta]
-                W[a * c:(a + 1) * c, b * c:(b + 1) * c] = block
-                W[b * c:(b + 1) * c, a * c:(a + 1) * c] = block.T
-        return out
-
-
 def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
     """Sums and lag products over the rows of one chunk, without building the lagged design.
 
@@ -95,29 +61,6 @@ def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]
     for delta in range(L + 1):
         np.matmul(rows.T, B[L - delta: L - delta + n], out=X[delta])
     return rows.sum(axis=0), X
-
-
-def _edge_terms(B: np.ndarray, n_lags: int, sign: float, at_start: bool, E: np.ndarray, e: np.ndarray) -> None:
-    """Add ``sign`` × the edge terms of a piece of rows ``[r0, r1)`` to ``E`` and ``e`` (in place).
-
-    Over the piece, ``sum_k Z_{k-a} Z_{k-a-δ}ᵀ`` is the chunk sum ``sum_{t=r0}^{r1-1} Z_t Z_{t-δ}ᵀ`` with its window
-    shifted back by ``a``: plus the ``a`` terms ``t = r0-a … r0-1`` (from the first chunk's lead-in, ``at_start``,
-    sign +1), minus the ``a`` terms ``t = r1-a … r1-1`` (from the last chunk's end, sign −1); likewise for the sums.
-    At most ``L`` samples each, accumulated one sample at a time over ``a``.
-    """
-    L = n_lags
-    end = L if at_start else B.shape[0]  # buffer index one past the last sample of the shifted-out window
-    c = B.shape[1]
-    acc = np.zeros((L + 1, c, c))
-    acc_s = np.zeros(c)
-    for a in range(1, L + 1):
-        t = end - a
-        acc_s += B[t]
-        e[a] += sign * acc_s
-        for delta in range(L + 1 - a):
-            acc[delta] += np.outer(B[t], B[t - delta])
-            E[a, delta] += sign * acc[delta]
-
 
 
 def _chunks(pieces, chunk_rows: int):
@@ -146,20 +89,6 @@ def _single_threaded_blas():
     n = max((int(i.get("num_threads") or 1) for i in threadpool_info() if i.get("user_api") == "blas"), default=1)
     with threadpool_limits(limits=1, user_api="blas"):
         yield max(1, n)
-
-
-def _chunk_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
-    """Worker task: the chunk's sums and products, and the edge terms of its piece when it starts or ends one."""
-    S, X = _chunk_products(B, n_lags)
-    if not (first or last):
-        return S, X, None, None
-    c = B.shape[1]
-    E, e = np.zeros((n_lags + 1, n_lags + 1, c, c)), np.zeros((n_lags + 1, c))
-    if first:
-        _edge_terms(B, n_lags, +1.0, True, E, e)
-    if last:
-        _edge_terms(B, n_lags, -1.0, False, E, e)
-    return S, X, E, e
 
 
 def _parallel_pass(chunks, load, task, n_workers: int):
@@ -212,28 +141,143 @@ def _read_z(session, start: int, stop: int, shift: np.ndarray | None = None, buf
     return Z, rng
 
 
-def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, shift: np.ndarray):
-    """One pass over the pieces: the compact sums of each fold (:class:`_PieceSums`) and the inputs' range.
+# ------------------------------------------------------------------------------------------------ Gram from windows
+class _LagSums:
+    """Lag products of a set of pieces, kept compact: the Gram of their lagged vectors is assembled on demand.
 
-    Chunks are read into a ring of re-used buffers and reduced on worker threads with single-threaded BLAS; the
-    sums are taken in chunk order, so every run gives the same numbers. Sources whose ``read`` takes ``out=``
-    (Session and SessionFile, whose reads are safe from any thread) are read by the workers themselves, which keeps
-    both cores busy without a third thread; other sources are read in the calling thread only.
+    ``S`` and ``X[δ]`` sum ``Z_t`` and ``Z_t Z_{t-δ}ᵀ`` over the ``n`` rows ``t`` of every chunk (one product of two
+    ``(n × c)`` matrices per lag difference, :func:`_chunk_products`). Block ``(a, a + δ)`` of the Gram of the
+    lagged vectors over the pieces' rows ``[r0, r1)`` is the same sum with its window shifted back by ``a``: plus
+    the ``a`` terms before ``r0``, minus the ``a`` terms before ``r1`` (the edge terms). Instead of the edge terms
+    (one Gram-sized array per fold),
+    the ``L`` samples before each piece's first row (``starts``, sign +1) and its last ``L`` samples (``ends``, sign
+    −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from these sums
+    alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram.
     """
-    c = shift.size
-    folds = [_PieceSums(c, n_lags) for _ in range(n_folds)]
-    m = session.n_inputs
+
+    def __init__(self, c: int, n_lags: int):
+        self.n = 0
+        self.S = np.zeros(c)
+        self.X = np.zeros((n_lags + 1, c, c))
+        self.windows: list = []  # (sign, samples (L, c))
+
+    def plus(self, other: "_LagSums", sign: float = 1.0) -> "_LagSums":
+        """``self + sign · other`` (a difference of folds is a sum with the other's windows sign-flipped)."""
+        out = _LagSums(self.S.size, self.X.shape[0] - 1)
+        out.n = self.n + int(sign) * other.n
+        out.S = self.S + sign * other.S
+        out.X = self.X + sign * other.X
+        out.windows = self.windows + [(sign * s, w) for s, w in other.windows]
+        return out
+
+    def moments(self) -> _Moments:
+        """Row count, sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over the rows."""
+        Lp1, c = self.X.shape[0], self.X.shape[1]
+        out = _Moments(Lp1 * c)
+        out.n = self.n
+        # sum_k Z_{k-a} = S + Σ_windows sign Σ_{j=1}^{a} W[L-j]
+        e = np.zeros((Lp1, c))
+        for sign, w in self.windows:
+            e[1:] += sign * np.cumsum(w[::-1], axis=0)
+        out.s = (self.S[None, :] + e).reshape(-1)
+        out.W = _lagged_gram(self)
+        return out
+
+
+def _edge_correction(windows, n_lags: int, c: int) -> list:
+    """``C[δ][a - 1] = Σ_windows sign Σ_{j=1}^{a} W[L-j] W[L-j-δ]ᵀ``, the edge term of Gram block ``(a, a + δ)``.
+
+    A window ``W`` holds the ``L`` samples ending at a piece edge; the sum over ``j`` is a cumulative sum, and the
+    sum over windows one batched product per ``δ``: ``O(L² c² × windows)`` work, not ``O(L³ c²)``.
+    """
+    L = n_lags
+    if not windows or L == 0:
+        return [np.zeros((L - d, c, c)) for d in range(L + 1)]
+    R = np.stack([w[::-1] for _s, w in windows])  # R[:, j - 1] = W[L - j]
+    signs = np.array([s for s, _w in windows])
+    Rs = R * signs[:, None, None]
+    out = []
+    for d in range(L + 1):
+        if d == L:
+            out.append(np.zeros((0, c, c)))
+            continue
+        # Q[j] = Σ_w sign R_w[j] R_w[j + d]ᵀ, j = 0 … L - d - 1, as a batch of (c × w)(w × c) products
+        Q = np.matmul(Rs[:, : L - d].transpose(1, 2, 0), R[:, d:].transpose(1, 0, 2))
+        out.append(np.cumsum(Q, axis=0))
+    return out
+
+
+def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None) -> np.ndarray:
+    """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
+
+    Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
+    ``X[δ]``; the lower blocks are the transposes. The sum of ``w_k w_kᵀ`` over the rows. With ``index``
+    (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
+    a permuted Gram made without a second Gram-sized copy.
+    """
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    if index is None:
+        index = np.arange(Lp1 * c).reshape(Lp1, c)
+    corr = _edge_correction(sums.windows, Lp1 - 1, c)
+    W = np.empty((Lp1 * c, Lp1 * c))
+    for d in range(Lp1):
+        a = np.arange(Lp1 - d)
+        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
+        blocks[1:] += corr[d]
+        corr[d] = None  # free as we go
+        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
+        W[rows, cols] = blocks
+        if d:
+            W[cols.transpose(0, 2, 1), rows.transpose(0, 2, 1)] = blocks.transpose(0, 2, 1)
+    return W
+
+
+def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
+    """Worker task: the chunk's sums and products, and the edge windows of its piece when it starts or ends one."""
+    S, X = _chunk_products(B, n_lags)
+    start = B[:n_lags].copy() if first else None
+    end = B[B.shape[0] - n_lags:].copy() if last else None
+    return S, X, start, end
+
+
+def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, shift: np.ndarray):
+    """One pass over the pieces: the compact sums of each fold (:class:`_LagSums`) and the raw inputs' range.
+
+    ``Z = [y u] − shift`` (a shift near the mean keeps the sums accurate); see :func:`_stream_lag_sums`.
+    """
+    from ._progress import progress
+
+    with progress(sum(b - a for a, b, _f in pieces), "lag products", unit="sample") as bar:
+        return _stream_lag_sums(session, pieces, n_folds, n_lags, chunk_rows, bar.update, shift=shift,
+                                with_range=True)
+
+
+def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None, *,
+                     shift=None, with_range: bool = False):
+    """One pass over the pieces (rows ``[k0, k1)`` with fold ``f``): the :class:`_LagSums` of each fold.
+
+    ``Z = [y u] − shift`` (unshifted by default). Chunks are read into a ring of re-used buffers and reduced on
+    worker threads with single-threaded BLAS; the sums are taken in chunk order, so every run gives the same
+    numbers. Sources whose ``read`` takes ``out=`` (Session and SessionFile, whose reads are safe from any thread)
+    are read by the workers themselves, which keeps both cores busy without a third thread; other sources are read
+    in the calling thread only. ``on_chunk(rows)`` is called after each chunk (progress). With ``with_range``,
+    returns ``(folds, lo, hi)`` with the raw inputs' range.
+    """
+    c = int(session.n_outputs) + int(session.n_inputs)
+    m = int(session.n_inputs)
     lo, hi = np.full(m, np.inf), np.full(m, -np.inf)
+    folds = [_LagSums(c, n_lags) for _ in range(n_folds)]
     longest = max((min(b - a, chunk_rows) for a, b, _f in pieces), default=0) + n_lags
     in_workers = _reads_into(session)
 
     def load(item):
         (k0, k1, _f, first, last), buffer = item
-        return _read_z(session, k0 - n_lags, k1, shift, buffer), first, last
+        Z, rng = _read_z(session, k0 - n_lags, k1, shift, buffer)
+        return Z, rng, first, last
 
     def task(loaded):
-        (Z, rng), first, last = loaded
-        return _chunk_task(Z, n_lags, first, last), rng
+        Z, rng, first, last = loaded
+        return _window_task(Z, n_lags, first, last), rng
 
     with _single_threaded_blas() as n_workers:
         # _parallel_pass holds at most n_workers unconsumed chunks when it starts the next one, so n_workers + 1
@@ -244,13 +288,16 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
             stream = _parallel_pass(items, lambda item: item, lambda item: task(load(item)), n_workers)
         else:
             stream = _parallel_pass(items, load, task, n_workers)
-        for ((k0, k1, f, _first, _last), _buffer), ((S, X, E, e), (c_lo, c_hi)) in stream:
+        for ((k0, k1, f, _first, _last), _buffer), ((S, X, start, end), (c_lo, c_hi)) in stream:
+            lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
             acc = folds[f]
             acc.n += k1 - k0
             acc.S += S
             acc.X += X
-            if E is not None:
-                acc.E += E
-                acc.e += e
-            lo, hi = np.minimum(lo, c_lo), np.maximum(hi, c_hi)
-    return folds, lo, hi
+            if start is not None:
+                acc.windows.append((1.0, start))
+            if end is not None:
+                acc.windows.append((-1.0, end))
+            if on_chunk is not None:
+                on_chunk(k1 - k0)
+    return (folds, lo, hi) if with_range else folds

@@ -62,7 +62,10 @@ def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray],
     Eigenvalues at or below ``d · eps · λ_max`` are treated as zero; for α = 0 their directions are dropped
     (minimum-norm solution). Returns the solutions and the condition numbers ``(λ_max + α) / (λ_min + α)``.
     """
-    lam, V = np.linalg.eigh(R)
+    from .hankel import _single_blas_thread
+
+    with _single_blas_thread():  # multi-threaded OpenBLAS stalls on a busy machine (bench_windows: 2-5x slower)
+        lam, V = np.linalg.eigh(R)
     lam = np.clip(lam, 0.0, None)
     tiny = lam.max(initial=0.0) * R.shape[0] * np.finfo(float).eps
     Vr = V.T @ r

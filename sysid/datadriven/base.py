@@ -17,6 +17,8 @@ from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
 from ..output_mask import output_valid_segments
+from .._progress import progress
+from .gram import GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, total_fold
 
 
 # ------------------------------------------------------------------------------------------------ validation
@@ -90,6 +92,13 @@ class _Fold:
     n_columns: int
     full: list
 
+    @property
+    def n_rows(self) -> int:
+        return int(self.factor.shape[0])
+
+    def release(self) -> None:
+        """Nothing to drop (the QR route's factor is the fold's data)."""
+
 
 def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
     """Fold id per (piece of) segment: whole trials, seeded; contiguous blocks when one trial has windows."""
@@ -109,15 +118,50 @@ def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
     return pieces, k, "contiguous blocks (one trial)"
 
 
-def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
-    """One pass over the valid segments: per-fold row-space factors (and raw Hankel blocks when asked)."""
-    m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
-    order = _row_order(m, p, past, horizon)
+def _pieces(session, L, n_folds_wanted, seed, past):
+    """``(a, b, fold)`` sample ranges of the valid segments, the number of folds and the scheme."""
     segs = output_valid_segments(session, session.segments(L), L, past)  # columns predicting blanked outputs out
     if n_folds_wanted > 1:
-        pieces, n_folds, scheme = _fold_of_segments(session, segs, n_folds_wanted, seed, L)
-    else:
-        pieces, n_folds, scheme = [(a, b, 0) for a, b in segs], 1, "none"
+        return _fold_of_segments(session, segs, n_folds_wanted, seed, L)
+    return [(a, b, 0) for a, b in segs], 1, "none"
+
+
+def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="auto"):
+    """One pass over the valid segments: per-fold data (Gram route where it is accurate, else QR), the scheme,
+    the outputs' standard deviations, the fold of each trial and ``(route, condition)``.
+
+    ``route``: "auto" (the Gram route unless raw columns are needed or the Gram is too ill-conditioned), "qr"
+    (always the QR route: :func:`_collect_qr`) or "gram" (the Gram route whatever the conditioning; tests).
+    """
+    m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
+    if keep_full or route == "qr":
+        return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", float("nan")),)
+    pieces, n_folds, scheme = _pieces(session, L, n_folds_wanted, seed, past)
+    folds, y_sum, y_sq, n_y = collect_gram(session, pieces, n_folds, m, p, past, horizon)
+    cond = gram_condition_of(total_fold(folds)) if folds else float("nan")
+    if route == "auto" and not cond <= GRAM_CONDITION_LIMIT:
+        return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", cond),)
+    std, trial_fold = _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y)
+    return folds, scheme, std, trial_fold, ("gram", cond)
+
+
+def _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y):
+    starts = np.asarray(session.trials)[:, 0]
+    trial_fold = np.full(starts.size, -1, dtype=np.int64)
+    if scheme == "trials":
+        for a, _b, f in pieces:
+            trial_fold[np.searchsorted(starts, a, side="right") - 1] = f
+    n_y = max(n_y, 1)
+    std = np.sqrt(np.maximum(y_sq / n_y - (y_sum / n_y) ** 2, 0.0))
+    std[std <= 1e-12 * max(std.max(), 1e-300)] = 1.0
+    return std, tuple(int(f) for f in trial_fold)
+
+
+def _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full):
+    """One pass over the valid segments: per-fold row-space factors by QR (and raw Hankel blocks when asked)."""
+    m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
+    order = _row_order(m, p, past, horizon)
+    pieces, n_folds, scheme = _pieces(session, L, n_folds_wanted, seed, past)
     n_rows = (m + p) * L
     parts = [[] for _ in range(n_folds)]
     folds = [_Fold(np.zeros((n_rows, 0)), 0, []) for _ in range(n_folds)]
@@ -137,18 +181,13 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full):
         n_y += y.shape[0]
     for f in range(n_folds):
         folds[f].factor = combine_factors(parts[f], n_rows)
-    starts = np.asarray(session.trials)[:, 0]
-    trial_fold = np.full(starts.size, -1, dtype=np.int64)
-    if scheme == "trials":
-        for a, _b, f in pieces:
-            trial_fold[np.searchsorted(starts, a, side="right") - 1] = f
-    n_y = max(n_y, 1)
-    std = np.sqrt(np.maximum(y_sq / n_y - (y_sum / n_y) ** 2, 0.0))
-    std[std <= 1e-12 * max(std.max(), 1e-300)] = 1.0
-    return folds, scheme, std, tuple(int(f) for f in trial_fold)
+    std, trial_fold = _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y)
+    return folds, scheme, std, trial_fold
 
 
 def _merge(folds, n_rows):
+    if isinstance(folds[0], _GramFold):
+        return total_fold(folds)
     factor = combine_factors([f.factor for f in folds], n_rows)
     full = [blk for f in folds for blk in f.full]
     return _Fold(factor, sum(f.n_columns for f in folds), full)
@@ -157,6 +196,13 @@ def _merge(folds, n_rows):
 def _data_scale(F: np.ndarray) -> float:
     """``||H||_F² / n_rows`` (equal for ``H`` and its factor)."""
     return float(np.sum(F * F) / F.shape[0])
+
+
+def _training(folds, i, total):
+    """The training data of fold ``i``: the total minus the fold (Gram route), or the other folds combined (QR)."""
+    if total is not None:
+        return total.plus(folds[i], -1.0)
+    return _merge([f for j, f in enumerate(folds) if j != i], folds[0].n_rows)
 
 
 def _validation_error(G: np.ndarray, F_val: np.ndarray, weights: np.ndarray) -> float:
@@ -206,8 +252,10 @@ class _DirectPredictor(BasePredictor):
         # Per-channel scaling to unit root mean square makes every strength, the slack weight and the fit itself
         # independent of the channels' units (issue 13: µV and mV gave predictions 25 % apart at a fixed alpha).
         self.channel_scale_ = _channel_rms(session)
-        folds, scheme, std, trial_fold = _collect(_ScaledChannels(session, self.channel_scale_), past, horizon,
-                                                  self.n_splits if n_candidates > 1 else 1, self.seed, keep_full)
+        folds, scheme, std, trial_fold, (route, cond) = _collect(
+            _ScaledChannels(session, self.channel_scale_), past, horizon, self.n_splits if n_candidates > 1 else 1,
+            self.seed, keep_full, getattr(self, "_route", "auto"))
+        self.factor_route_, self.gram_condition_ = route, cond
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
@@ -229,16 +277,16 @@ class _DirectPredictor(BasePredictor):
 
     def _select(self, folds, candidates, weights, score_fold):
         """Validation error per candidate summed over folds; ``score_fold(train, val) -> errors``."""
-        n_rows = folds[0].factor.shape[0]
         if len(candidates) == 1:
             return float(candidates[0]), pd.DataFrame({"candidate": candidates, "validation_error": [np.nan]})
         errors, counts = np.zeros(len(candidates)), 0
         cols = {}
-        for i, val in enumerate(folds):
-            train = _merge([f for j, f in enumerate(folds) if j != i], n_rows)
-            if val.n_columns == 0 or train.n_columns == 0:
+        total = _merge(folds, folds[0].n_rows) if isinstance(folds[0], _GramFold) else None
+        with progress(len(folds), f"cross-validation of {type(self).__name__}", unit="fold") as bar:
+            scores = [self._score_one(folds, i, total, weights, score_fold, bar) for i in range(len(folds))]
+        for i, (val, e) in enumerate(zip(folds, scores)):
+            if e is None:
                 continue
-            e = np.asarray(score_fold(train, val, weights))
             errors += e
             counts += val.n_columns
             cols[f"fold_{i}"] = e / max(val.n_columns * weights.size, 1)  # same normalisation as the mean
@@ -247,6 +295,18 @@ class _DirectPredictor(BasePredictor):
         best = int(np.flatnonzero(mean <= mean.min() * (1 + 1e-12))[-1])
         table = pd.DataFrame({"candidate": candidates, "validation_error": mean, **cols})
         return float(candidates[best]), table
+
+    @staticmethod
+    def _score_one(folds, i, total, weights, score_fold, bar):
+        """Held-out errors of fold ``i`` (None when it or its training data has no window)."""
+        val = folds[i]
+        train = _training(folds, i, total)
+        bar.update()
+        if val.n_columns == 0 or train.n_columns == 0:
+            return None
+        e = np.asarray(score_fold(train, val, weights))
+        val.release()
+        return e
 
     # ---------------------------------------------------------------------------------------- prediction
     def _batch_windows(self, u_past, y_past, u_future):

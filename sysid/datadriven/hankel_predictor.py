@@ -180,6 +180,12 @@ class HankelPredictor(_DirectPredictor):
     sample_rate_hz_ : float
     output_offset_ : ndarray, shape (n_outputs,)
         The training mean removed with ``centre_outputs`` (zeros otherwise).
+    factor_route_ : str
+        ``"gram"``: the data came from streamed lag products as per-fold Grams of the Hankel matrix (factor: their
+        Cholesky factor); ``"qr"``: from QR factors of the data, taken when the Gram is too ill-conditioned
+        (estimated condition number above ``datadriven.gram.GRAM_CONDITION_LIMIT``) or raw columns are needed (ℓ1).
+    gram_condition_ : float
+        Estimated 1-norm condition number of the whole Gram ``H Hᵀ`` (NaN when the QR route was chosen without it).
 
     Notes
     -----
@@ -286,7 +292,7 @@ class HankelPredictor(_DirectPredictor):
         folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
         score = self._score_l1 if l1 else self._score_quadratic
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
-        total = _merge(folds, folds[0].factor.shape[0])
+        total = _merge(folds, folds[0].n_rows)
         self.data_scale_ = _data_scale(total.factor)
         self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
         if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
@@ -295,7 +301,7 @@ class HankelPredictor(_DirectPredictor):
             rel = float(lambdas[choose_consistent(table, table["plan_gap"].to_numpy())])
         self.regularizer_, self.lambda_y_, self.lambda_g_relative_ = self.regularizer, lam_y, rel
         self.n_columns_ = total.n_columns
-        self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.factor.shape[0])
+        self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.n_rows)
         self.cv_table_ = table
         self._l1_cache = self._map_cache = None
         return self

@@ -10,6 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
+from .gram import ridge_grid_errors, ridge_map
 
 __all__ = ["LsqPredictor"]
 
@@ -72,13 +73,22 @@ class LsqPredictor(_DirectPredictor):
     sample_rate_hz_ : float
     output_offset_ : ndarray, shape (n_outputs,)
         The training mean removed with ``centre_outputs`` (zeros otherwise).
+    factor_route_ : str
+        ``"gram"``: the data came from streamed lag products as per-fold Grams of the Hankel matrix (factor: their
+        Cholesky factor); ``"qr"``: from QR factors of the data, taken when the Gram is too ill-conditioned
+        (estimated condition number above ``datadriven.gram.GRAM_CONDITION_LIMIT``) or raw columns are needed (ℓ1).
+    gram_condition_ : float
+        Estimated 1-norm condition number of the whole Gram ``H Hᵀ`` (NaN when the QR route was chosen without it).
 
     Notes
     -----
-    ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows, computed from the
-    streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
-    ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is likewise
-    ``||F2,val − Θ F1,val||_F²``. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
+    ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows. On the Gram route
+    (``factor_route_ == "gram"``) it is ``G21 (G11 + alpha·s I)⁻¹`` from the Gram ``G`` of ``[D; Yf]``, made from
+    streamed lag products of the raw samples (:mod:`stimsteer.sysid.datadriven.gram`), and every strength of a fold
+    is scored from one eigendecomposition of the training ``G11``. Where the Gram is ill-conditioned (QR route) it
+    is computed from the streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
+    ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is
+    ``||F2,val − Θ F1,val||_F²`` either way. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
     beyond it do not change the first outputs, as ``Kf_`` is block lower triangular up to the fit error).
 
     References
@@ -140,14 +150,25 @@ class LsqPredictor(_DirectPredictor):
         m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
         n_b = (m + p) * past + m * self.max_horizon_steps_
 
+        gram_route = self.factor_route_ == "gram"
+
         def score(train, val, w):
+            if gram_route:  # one eigendecomposition per fold for the whole grid
+                return ridge_grid_errors(train, val, n_b, alphas, w)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
         alpha, table = self._select(folds, alphas, weights, score)
-        total = _merge(folds, folds[0].factor.shape[0])
-        scale = _data_scale(total.factor)
-        theta = self._unscaled(_lsq_map(total.factor, n_b, alpha * scale))  # fitted on unit-RMS channels
+        total = _merge(folds, folds[0].n_rows)
+        if gram_route:
+            G = total.gram
+            scale = float(np.trace(G)) / G.shape[0]
+            theta = ridge_map(G, n_b, alpha * scale)
+            del G
+        else:
+            scale = _data_scale(total.factor)
+            theta = _lsq_map(total.factor, n_b, alpha * scale)
+        theta = self._unscaled(theta)  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])
         self.alpha_, self.data_scale_, self.ridge_strength_ = alpha, scale, alpha * scale

@@ -1,0 +1,178 @@
+"""Fits at realistic windows: the four methods on a 1 kHz session, against one lagged Gram of the raw data.
+
+Setup (not timed): the demo's simulated network (``demo_data/make_demo.py``, seeded) recorded at 1 kHz with 3
+stimulation sites, 20 contacts and 25 trials of 2.5 s (63,000 samples with the rests), written once to a
+temporary HDF5 file.
+
+Measured in the same run, each case in a fresh child process (so peak memory is that case's alone):
+
+1. the fit time and the peak resident memory (``VmHWM`` of ``/proc/self/status``, and its rise over the resident
+   size just before the fit) of ridge ARX (``output_lags = input_lags = past``), subspace identification
+   (``past_steps = past``, ``future_steps = horizon``), the least-squares (SPC) predictor and the regularised
+   Hankel predictor, each with its default settings and grids, at past 10 / horizon 20 and past 100 / horizon 50;
+2. the reference: one lagged Gram of the raw data with the same lag count (``past + horizon`` lags; ``past`` for
+   ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, one BLAS thread): the
+   products any exact Gram of the lagged data must compute;
+3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50).
+
+A case that exceeds ``--timeout`` seconds is killed and printed as such (on a loaded machine, say so).
+
+Usage::
+
+    python benchmarks/bench_windows.py                       # both windows, every method
+    python benchmarks/bench_windows.py --windows 10:20 --methods lsq hankel --timeout 300
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+METHODS = {"arx": ("indirect", "arx", "ridge ARX"), "subspace": ("indirect", "subspace", "subspace"),
+           "lsq": ("direct", "lsq", "least-squares (SPC) predictor"),
+           "hankel": ("direct", "hankel", "regularised Hankel predictor")}
+
+
+# ------------------------------------------------------------------------------------------------ setup
+def make_session(seed: int):
+    """The demo network at 1 kHz: 3 sites, 20 contacts, 25 trials of 2.5 s (seeded)."""
+    from stimsteer.demo_data.make_demo import Scenario, make_demo
+
+    sc = Scenario(sample_rate_hz=1000.0, n_contacts=20, n_sites=3, n_trials=25, trial_s=2.5, rest_s=0.0)
+    session, _plant = make_demo(seed, scenario=sc)
+    return session
+
+
+def _status(key: str) -> float:
+    """A ``/proc/self/status`` field in MB (0 where /proc is missing)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith(key + ":"):
+                return float(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return 0.0
+
+
+# ------------------------------------------------------------------------------------------------ child cases
+def child_fit(path: str, method: str, past: int, horizon: int) -> dict:
+    """Load the session, fit one method, report seconds and memory (run in a fresh process)."""
+    from stimsteer.sysid import load_session, make_estimator
+
+    session = load_session(path)
+    route, name, _label = METHODS[method]
+    settings = {"future_steps": horizon} if method == "subspace" else {}
+    est = make_estimator(route, name, settings, past_steps=past, horizon_steps=horizon)
+    rss0 = _status("VmRSS")
+    t0 = time.perf_counter()
+    est.fit(session)
+    seconds = time.perf_counter() - t0
+    return {"seconds": seconds, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+
+
+def child_gram(path: str, n_lags: int) -> dict:
+    """Bare lag products of the raw data: ``Z[δ:]ᵀ Z[:T-δ]`` for δ = 0 … n_lags - 1, over the whole recording.
+
+    One product of two ``(T × c)`` matrices per lag (the cost of any exact lagged Gram, without its per-trial edge
+    terms), on one BLAS thread, best of two runs.
+    """
+    import numpy as np
+    from threadpoolctl import threadpool_limits
+
+    from stimsteer.sysid import load_session
+
+    session = load_session(path)
+    Z = np.ascontiguousarray(np.hstack([session.u, session.y]))
+    T, c = Z.shape
+    X = np.zeros((n_lags, c, c))
+    rss0 = _status("VmRSS")
+
+    def products():
+        t0 = time.perf_counter()
+        for d in range(n_lags):
+            np.matmul(Z[d:].T, Z[: T - d], out=X[d])
+        return time.perf_counter() - t0
+
+    # One BLAS thread: on a busy machine multi-threaded OpenBLAS stalls on these small products (a 2-thread
+    # reference was killed after 400 s at 150 lags under load 11); on an idle one it gains little at c = 23.
+    with threadpool_limits(limits=1, user_api="blas"):
+        best = min(products() for _ in range(2))
+    return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+
+
+def run_child(args: list, timeout: float) -> dict:
+    """One case in a fresh interpreter; ``{"killed": True}`` past the timeout."""
+    cmd = [sys.executable, str(Path(__file__).resolve()), "--child", *map(str, args)]
+    try:
+        out = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=False,
+                             env={**os.environ, "STIMSTEER_PROGRESS": "0"})
+    except subprocess.TimeoutExpired:
+        return {"killed": True}
+    if out.returncode != 0:
+        return {"error": (out.stderr.strip().splitlines() or ["?"])[-1]}
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+# ------------------------------------------------------------------------------------------------ report
+def _fmt(r: dict, ref: dict | None = None) -> str:
+    if r.get("killed"):
+        return "killed (timeout)"
+    if "error" in r:
+        return "error: " + r["error"][:60]
+    text = f"{r['seconds']:.2f} s, {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
+    if ref and "seconds" in ref:
+        text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
+    return text
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--windows", nargs="+", default=["10:20", "100:50"], help="past:horizon pairs")
+    ap.add_argument("--methods", nargs="+", default=list(METHODS), choices=list(METHODS))
+    ap.add_argument("--timeout", type=float, default=600.0, help="seconds per case before it is killed")
+    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        kind, path, *rest = args.child
+        out = child_gram(path, int(rest[0])) if kind == "gram" else child_fit(path, kind, int(rest[0]), int(rest[1]))
+        print(json.dumps(out))
+        return 0
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {load:.1f} at the start")
+    from stimsteer.sysid.io import save_session
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = str(Path(tmp) / "session.h5")
+        session = make_session(args.seed)
+        save_session(session, path)
+        print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, {session.n_outputs} outputs, "
+              f"{len(session.trials)} trials; timeout {args.timeout:.0f} s per case")
+        print("| method | past / horizon | fit | Gram reference |")
+        print("| --- | --- | --- | --- |")
+        for window in args.windows:
+            past, horizon = (int(v) for v in window.split(":"))
+            refs = {}
+            for method in args.methods:
+                lags = past if method == "arx" else past + horizon
+                if lags not in refs:
+                    refs[lags] = run_child(["gram", path, lags], args.timeout)
+                r = run_child([method, path, past, horizon], args.timeout)
+                print(f"| {METHODS[method][2]} | {past} / {horizon} | {_fmt(r, refs[lags])} | "
+                      f"{lags} lags: {_fmt(refs[lags])} |", flush=True)
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"# load average {load:.1f} at the end")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,193 @@
+"""The Gram route of the direct predictors: per-fold Grams of the Hankel data matrix from streamed lag products.
+
+The data matrix ``H = [Up; Yp; Uf; Yf]`` of depth ``L = past + horizon`` has one column per window; its Gram
+``H Hᵀ`` is a permutation of the Gram of the lagged vectors ``[Z_k; Z_{k-1}; ...; Z_{k-L+1}]`` (``Z = [y u]``),
+which :mod:`stimsteer.sysid._lagged` assembles from ``L`` lag products of the raw ``T × (m + p)`` samples plus
+per-piece edge terms. A fold keeps only those compact sums (:class:`_GramFold`); the training data of a fold is the
+total minus the fold (a difference of sums); the row-space factor, when a method needs one, is the Cholesky factor
+of the Gram (``H Hᵀ = F Fᵀ``), not a QR of the data.
+
+Numerical care: forming ``H Hᵀ`` squares the condition number of ``H``, so where the Gram is ill-conditioned the
+Gram route would lose digits the QR route keeps. :func:`gram_condition` estimates ``κ₁(H Hᵀ)`` from the Cholesky
+factor (LAPACK ``pocon``); above :data:`GRAM_CONDITION_LIMIT` (or when the Gram is not positive definite) the
+predictors take the QR route instead and record why (``factor_route_``, ``gram_condition_``).
+
+References
+----------
+Golub G.H., Van Loan C.F. (2013), Matrix Computations, 4th ed., sections 4.2 (Cholesky), 5.3 (normal equations vs
+QR: the error of the normal equations grows with ``κ(A)²``) and 3.5.4 (condition estimation).
+Higham N.J. (2002), Accuracy and Stability of Numerical Algorithms, 2nd ed., chapter 15 (condition estimators).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+
+from .._lagged import _lagged_gram, _stream_lag_sums
+from .._progress import progress
+
+#: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
+#: ``eps · κ(H Hᵀ)`` against ``eps · κ(H)`` for QR: at 1e7 the Gram route is within ~1e-9 of the QR route's
+#: predictions on the unit-RMS channels the fits use (common practice, no source: a margin below 1/√eps · 1e-1).
+GRAM_CONDITION_LIMIT = 1e7
+
+
+def hankel_permutation(m: int, p: int, past: int, horizon: int) -> np.ndarray:
+    """``perm`` with ``(H Hᵀ) = W[perm][:, perm]``: rows of ``[Up; Yp; Uf; Yf]`` as rows of the lagged Gram ``W``.
+
+    Lagged block ``a`` holds sample ``k − a`` = time ``τ = L − 1 − a`` of the window, channels ``[y; u]``.
+    """
+    L, c = past + horizon, m + p
+    rows = []
+    for lo, hi, off, n in ((0, past, p, m), (0, past, 0, p), (past, L, p, m), (past, L, 0, p)):
+        for tau in range(lo, hi):
+            rows.append((L - 1 - tau) * c + off + np.arange(n))
+    return np.concatenate(rows)
+
+
+class _GramFold:
+    """A fold of the Gram route: compact lag sums; its Gram and factor are made when asked for.
+
+    Attributes
+    ----------
+    sums : _LagSums
+    n_columns : int
+        Windows (columns of ``H``) of the fold.
+    full : list
+        Always empty (the Gram route never keeps raw Hankel columns).
+    """
+
+    full: list = []
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.perm.size)
+
+    def __init__(self, sums, perm: np.ndarray, n_columns: int):
+        self.sums, self.perm, self.n_columns = sums, perm, int(n_columns)
+        self._factor = None
+
+    def plus(self, other: "_GramFold", sign: float = 1.0) -> "_GramFold":
+        """The fold ``self + sign · other`` (training data = total minus the held-out fold)."""
+        return _GramFold(self.sums.plus(other.sums, sign), self.perm, self.n_columns + int(sign) * other.n_columns)
+
+    @property
+    def gram(self) -> np.ndarray:
+        """``H Hᵀ`` in the row order ``[Up; Yp; Uf; Yf]``."""
+        index = np.empty_like(self.perm)
+        index[self.perm] = np.arange(self.perm.size)
+        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1))
+
+    @property
+    def factor(self) -> np.ndarray:
+        """A factor ``F`` with ``F Fᵀ = H Hᵀ``: the lower Cholesky factor (a symmetric square root where the Gram
+        of a small fold is only semi-definite)."""
+        if self._factor is None:
+            G = self.gram
+            try:
+                self._factor = sla.cholesky(G, lower=True, check_finite=False)
+            except np.linalg.LinAlgError:
+                d, V = np.linalg.eigh(G)
+                self._factor = V * np.sqrt(np.clip(d, 0.0, None))
+        return self._factor
+
+    def release(self) -> None:
+        """Drop the cached factor (it is as large as the Gram)."""
+        self._factor = None
+
+
+def gram_condition(F: np.ndarray, G: np.ndarray) -> float:
+    """Estimated 1-norm condition number of ``G = F Fᵀ`` from its Cholesky factor ``F`` (LAPACK ``pocon``)."""
+    pocon, = sla.get_lapack_funcs(("pocon",), (F,))
+    rcond, info = pocon(F, float(np.abs(G).sum(axis=0).max()), uplo="L")
+    return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
+
+
+def gram_condition_of(fold: "_GramFold") -> float:
+    """Estimated ``κ₁`` of the fold's Gram (inf when it is not positive definite)."""
+    G = fold.gram
+    try:
+        F = sla.cholesky(G, lower=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        return float("inf")
+    return gram_condition(F, G)
+
+
+def collect_gram(source, pieces, n_folds: int, m: int, p: int, past: int, horizon: int):
+    """One streamed pass: the :class:`_GramFold` of each fold and the outputs' sums over the pieces' samples.
+
+    ``pieces`` are ``(a, b, fold)`` sample ranges (each at least ``past + horizon`` long); the windows of a piece
+    are the lagged rows ``[a + L − 1, b)``.
+
+    Returns
+    -------
+    folds : list of _GramFold
+    y_sum, y_sq : ndarray, shape (p,)
+        Sums of the outputs and of their squares over every sample of the pieces.
+    n_y : int
+    """
+    L = past + horizon
+    rows = [(a + L - 1, b, f) for a, b, f in pieces]
+    total = sum(b - a for a, b, _f in rows)
+    with progress(total, "Gram of the data", unit="sample") as bar:
+        sums = _stream_lag_sums(source, rows, n_folds, L - 1, on_chunk=bar.update)
+    perm = hankel_permutation(m, p, past, horizon)
+    folds = [_GramFold(s, perm, s.n) for s in sums]
+    y_sum, y_sq, n_y = np.zeros(p), np.zeros(p), 0
+    for s in sums:
+        y_sum += s.S[:p]
+        y_sq += np.diagonal(s.X[0])[:p]
+        n_y += s.n
+        for sign, w in s.windows:
+            if sign > 0:  # the L samples before a piece's first window end are the piece's first samples
+                y_sum += w[:, :p].sum(axis=0)
+                y_sq += (w[:, :p] ** 2).sum(axis=0)
+                n_y += w.shape[0]
+    return folds, y_sum, y_sq, n_y
+
+
+def total_fold(folds) -> "_GramFold":
+    """The sum of the folds."""
+    out = folds[0]
+    for f in folds[1:]:
+        out = out.plus(f)
+    return out
+
+
+def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weights) -> np.ndarray:
+    """Weighted held-out squared errors of ``Θ(s) = G21 (G11 + s I)⁻¹`` for every ``s``, one ``eigh`` in all.
+
+    ``s = alpha · tr(G) / n_rows`` (the data scale of the training Gram ``G``) for each ``alpha``.
+
+    With ``G11 = V diag(d) Vᵀ`` (training) and ``A = G21 V``, ``Θ(s) = A diag(1/(d+s)) Vᵀ``; the held-out error
+    ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` (validation Grams, ``Ω`` = diag(weights)) is then a sum of ``O(n²)``
+    terms per strength over matrices computed once.
+    """
+    Gt = train.gram
+    scale = float(np.trace(Gt)) / Gt.shape[0]
+    d, V = sla.eigh(Gt[:n_b, :n_b], overwrite_a=True, check_finite=False)
+    A = weights[:, None] * (Gt[n_b:, :n_b] @ V)  # Ω G21 V
+    del Gt  # memory: at most two Gram-sized arrays besides V at any time
+    Gv = val.gram
+    B = (V.T @ Gv[:n_b, n_b:]) * weights[None, :]  # Vᵀ G12 Ω
+    c0 = float(np.sum(weights ** 2 * np.diagonal(Gv)[n_b:]))
+    M = V.T @ Gv[:n_b, :n_b]
+    del Gv
+    M = M @ V
+    quad = A.T @ A
+    quad *= M  # (AᵀA) ∘ (Vᵀ G11 V)
+    del M
+    cross = np.einsum("ij,ji->i", B, A)  # diag(Vᵀ G12 Ω Ω G21 V)
+    out = []
+    for alpha in alphas:
+        w = 1.0 / (d + alpha * scale)
+        out.append(c0 - 2.0 * float(cross @ w) + float(w @ quad @ w))
+    return np.asarray(out)
+
+
+def ridge_map(G: np.ndarray, n_b: int, strength: float) -> np.ndarray:
+    """``Θ = G21 (G11 + s I)⁻¹`` by a Cholesky solve (the normal equations of the stacked least squares)."""
+    K = G[:n_b, :n_b].copy()
+    K[np.diag_indices_from(K)] += strength
+    return sla.cho_solve(sla.cho_factor(K, lower=True, check_finite=False), G[:n_b, n_b:], check_finite=False).T

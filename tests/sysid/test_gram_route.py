@@ -1,0 +1,175 @@
+"""The Gram route: lagged Grams from streamed lag products, the direct predictors fitted from them, the QR fallback
+on ill-conditioned data, and the ridge grid from one eigendecomposition per fold."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg as sla
+
+from stimsteer.sysid import Session
+from stimsteer.sysid._lagged import _lagged_gram, _stream_lag_sums, _stream_sums
+from stimsteer.sysid.datadriven import gram as gr
+from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+from stimsteer.sysid.datadriven.lsq import LsqPredictor
+
+
+def _system(T=4000, noise=0.1, seed=0, n_trials=4):
+    """A stable 3-state, 2-input, 3-output system in trials; measurement noise ``noise``."""
+    rng = np.random.default_rng(seed)
+    u = rng.standard_normal((T, 2))
+    A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
+    x, y = np.zeros(3), np.zeros((T, 3))
+    for k in range(T):
+        y[k] = x + noise * rng.standard_normal(3)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, n_trials + 1).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.fixture(scope="module")
+def noisy():
+    return _system()
+
+
+def _lagged_design(Z, pieces, L):
+    """Rows ``w_k = [Z_k; ...; Z_{k-L}]`` of the pieces' rows, materialised (the definition)."""
+    return np.array([np.concatenate([Z[k - i] for i in range(L + 1)]) for a, b in pieces for k in range(a, b)])
+
+
+# ------------------------------------------------------------------------------------------------ lagged Gram
+def test_lagged_gram_is_the_gram_of_the_materialised_lagged_design(noisy):
+    # definition of a Gram matrix (common practice, no source): Σ_k w_k w_kᵀ over the materialised rows
+    L, Z = 6, np.hstack([noisy.y, noisy.u])
+    pieces = [(0 + L, 1000, 0), (1000 + L, 2000, 1), (2000 + L, 3000, 0), (3000 + L, 4000, 1)]
+    folds = _stream_lag_sums(noisy, pieces, 2, L, chunk_rows=300)  # several chunks per piece
+    X0 = _lagged_design(Z, [p[:2] for p in pieces if p[2] == 0], L)
+    X1 = _lagged_design(Z, [p[:2] for p in pieces if p[2] == 1], L)
+    for got, X in ((_lagged_gram(folds[0]), X0), (_lagged_gram(folds[1]), X1)):
+        np.testing.assert_allclose(got, X.T @ X, rtol=1e-12, atol=1e-9 * np.abs(X.T @ X).max())
+    # a fold's Gram as a difference of sums: (fold 0 + fold 1) − fold 1 = fold 0
+    diff = folds[0].plus(folds[1]).plus(folds[1], -1.0)
+    np.testing.assert_allclose(_lagged_gram(diff), X0.T @ X0, rtol=1e-10, atol=1e-9 * np.abs(X0.T @ X0).max())
+    # the moments ARX uses: sums and Gram of the shifted vectors
+    shift = Z.mean(axis=0)
+    (mom,), lo, hi = _stream_sums(noisy, pieces[:1], 1, L, 250, shift)
+    Xs = _lagged_design(Z - shift, [pieces[0][:2]], L)
+    m = mom.moments()
+    np.testing.assert_allclose(m.s, Xs.sum(axis=0), atol=1e-9)
+    np.testing.assert_allclose(m.W, Xs.T @ Xs, rtol=1e-12, atol=1e-9 * np.abs(Xs.T @ Xs).max())
+    np.testing.assert_array_equal(lo, noisy.u[:1000].min(axis=0))
+
+
+def test_hankel_gram_is_that_of_the_hankel_matrix(noisy):
+    # the data matrix [Up; Yp; Uf; Yf] written out with numpy slicing (Favoreel et al. 1999, "SPC: Subspace
+    # predictive control", its definition of the past/future block-Hankel matrices)
+    m, p, past, horizon = 2, 3, 3, 4
+    L = past + horizon
+    pieces = [(0, 1000, 0), (1000, 2000, 1), (2000, 3000, 0)]
+    folds, y_sum, y_sq, n_y = gr.collect_gram(noisy, pieces, 2, m, p, past, horizon)
+
+    def cols(a, b):
+        u, y = noisy.u[a:b], noisy.y[a:b]
+        win = lambda s, lo, hi: np.stack([s[j + lo: j + hi].reshape(-1) for j in range(b - a - L + 1)], axis=1)
+        return np.vstack([win(u, 0, past), win(y, 0, past), win(u, past, L), win(y, past, L)])
+
+    H = np.hstack([cols(a, b) for a, b, f in pieces if f == 0])
+    assert folds[0].n_columns == H.shape[1]
+    np.testing.assert_allclose(folds[0].gram, H @ H.T, rtol=1e-12, atol=1e-10 * np.abs(H @ H.T).max())
+    F = folds[0].factor
+    np.testing.assert_allclose(F @ F.T, H @ H.T, atol=1e-10 * np.abs(H @ H.T).max())
+    used = np.concatenate([noisy.y[a:b] for a, b, _f in pieces])
+    np.testing.assert_allclose(y_sum, used.sum(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(y_sq, (used ** 2).sum(axis=0), rtol=1e-12)
+    assert n_y == used.shape[0]
+
+
+def test_condition_estimate_is_that_of_the_gram():
+    # LAPACK pocon estimates the 1-norm condition number within a small factor (Higham 2002, Accuracy and
+    # Stability of Numerical Algorithms, ch. 15); numpy.linalg.cond(·, 1) is the exact value
+    rng = np.random.default_rng(3)
+    Q = np.linalg.qr(rng.standard_normal((40, 40)))[0]
+    G = (Q * np.logspace(0, 9, 40)) @ Q.T
+    G = (G + G.T) / 2
+    est, exact = gr.gram_condition(sla.cholesky(G, lower=True), G), np.linalg.cond(G, 1)
+    assert exact / 10 <= est <= exact * 1.01
+
+
+# ------------------------------------------------------------------------------------------------ ridge grid
+def test_ridge_grid_errors_equal_direct_solves_and_scikit_learn(noisy):
+    m, p, past, horizon = 2, 3, 4, 6
+    pieces = [(0, 1000, 0), (1000, 2000, 1), (2000, 3000, 2), (3000, 4000, 0)]
+    folds, *_ = gr.collect_gram(noisy, pieces, 3, m, p, past, horizon)
+    total = gr.total_fold(folds)
+    train, val = total.plus(folds[1], -1.0), folds[1]
+    n_b = (m + p) * past + m * horizon
+    alphas = np.logspace(-8, 0, 9)
+    w = np.linspace(0.5, 2.0, p * horizon)
+    got = gr.ridge_grid_errors(train, val, n_b, alphas, w)
+    Gt, Gv = train.gram, val.gram
+    scale = np.trace(Gt) / Gt.shape[0]
+    for a, e in zip(alphas, got):
+        # direct solve of (G11 + s I) Θᵀ = G12 and the held-out error from the validation Gram
+        theta = np.linalg.solve(Gt[:n_b, :n_b] + a * scale * np.eye(n_b), Gt[:n_b, n_b:]).T
+        R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
+        assert e == pytest.approx(float(np.sum(w[:, None] * w[None, :] * R * np.eye(R.shape[0]))), rel=1e-10)
+    # scikit-learn's Ridge on the materialised data (outside reference): the same ridge map
+    from sklearn.linear_model import Ridge
+
+    F = train.factor  # H Hᵀ = F Fᵀ, so F's columns are data columns of an equivalent problem
+    s = 1e-3 * scale
+    ref = Ridge(alpha=s, fit_intercept=False, solver="cholesky").fit(F[:n_b].T, F[n_b:].T).coef_
+    np.testing.assert_allclose(gr.ridge_map(Gt, n_b, s), ref, rtol=1e-8, atol=1e-10 * np.abs(ref).max())
+
+
+# ------------------------------------------------------------------------------------------------ predictors
+def _fit(cls, session, route, **kw):
+    est = cls(**kw)
+    est._route = route  # test hook: "qr" forces the QR route, "gram" the Gram route, "auto" is the default
+    return est.fit(session)
+
+
+def _windows(P, N, seed=5):
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal((6, P, 2)), rng.standard_normal((6, P, 3)), rng.standard_normal((6, N, 2))
+
+
+@pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
+def test_gram_route_predicts_as_the_qr_route_on_well_conditioned_data(noisy, cls):
+    P, N = 5, 8
+    qr, gram = _fit(cls, noisy, "qr", past_steps=P, horizon_steps=N), _fit(cls, noisy, "auto", past_steps=P,
+                                                                          horizon_steps=N)
+    assert gram.factor_route_ == "gram" and qr.factor_route_ == "qr"
+    assert 1.0 < gram.gram_condition_ < gr.GRAM_CONDITION_LIMIT
+    a, b = qr.predict_many(*_windows(P, N)), gram.predict_many(*_windows(P, N))
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
+    np.testing.assert_allclose(gram.cv_table_["validation_error"], qr.cv_table_["validation_error"], rtol=1e-8)
+
+
+@pytest.fixture(scope="module")
+def ill():
+    """Nearly noise-free outputs: the Hankel Gram of past 4 + horizon 8 is nearly singular (rank ≈ inputs·L +
+    states), so the normal equations would lose about twice the digits of a QR."""
+    return _system(noise=1e-7, seed=2)
+
+
+@pytest.mark.filterwarnings("ignore:the Hankel predictor's KKT system")
+@pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
+def test_ill_conditioned_data_fall_back_to_the_qr_route(ill, cls):
+    P, N = 4, 8
+    auto, qr = _fit(cls, ill, "auto", past_steps=P, horizon_steps=N), _fit(cls, ill, "qr", past_steps=P,
+                                                                         horizon_steps=N)
+    assert auto.factor_route_ == "qr"
+    assert auto.gram_condition_ > gr.GRAM_CONDITION_LIMIT  # recorded: why the Gram route was not taken
+    np.testing.assert_array_equal(auto.predict_many(*_windows(P, N)), qr.predict_many(*_windows(P, N)))
+
+
+def test_forced_gram_route_on_ill_conditioned_data_loses_accuracy_the_qr_route_keeps(ill):
+    # The reason for the fallback (Golub & Van Loan 2013, Matrix Computations, section 5.3.8: the normal equations'
+    # error grows with κ(A)², QR's with κ(A)): with the smallest strength the Gram route's fit is measurably worse.
+    P, N = 4, 8
+    kw = dict(past_steps=P, horizon_steps=N, alphas=[1e-12])
+    qr, gram = _fit(LsqPredictor, ill, "qr", **kw), _fit(LsqPredictor, ill, "gram", **kw)
+    assert gram.factor_route_ == "gram" and gram.gram_condition_ > 1e12
+    a, b = qr.predict_many(*_windows(P, N)), gram.predict_many(*_windows(P, N))
+    assert np.abs(a - b).max() > 1e-8 * np.abs(a).max()
