@@ -54,6 +54,7 @@ def resample_trials(session, indices):
         session, u=np.concatenate([session.u[a:b] for a, b in parts]),
         y=np.concatenate([session.y[a:b] for a, b in parts]),
         mask=np.concatenate([session.mask[a:b] for a, b in parts]),
+        output_mask=np.concatenate([session.output_mask[a:b] for a, b in parts]),  # blanked outputs stay blanked
         trials=np.column_stack([np.concatenate(([0], stops[:-1])), stops]),
         metadata={**session.metadata, "bootstrap_trials": idx})
 

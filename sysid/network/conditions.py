@@ -59,6 +59,7 @@ def _resampled(session, idx) -> Session:
     return Session(u=np.concatenate([session.u[a:b] for a, b in parts]),
                    y=np.concatenate([session.y[a:b] for a, b in parts]),
                    mask=np.concatenate([session.mask[a:b] for a, b in parts]),
+                   output_mask=np.concatenate([session.output_mask[a:b] for a, b in parts]),
                    trials=np.column_stack([np.concatenate(([0], stops[:-1])), stops]),
                    sample_rate_hz=session.sample_rate_hz, input_names=session.input_names,
                    output_names=session.output_names, input_units=session.input_units,

@@ -144,3 +144,19 @@ def test_output_mask_is_validated():
         Session(u=np.zeros((10, 1)), y=np.zeros((10, 1)), sample_rate_hz=FS, output_mask=np.ones(9, dtype=bool))
     with pytest.raises(SessionError, match=r"output_mask must be boolean"):
         Session(u=np.zeros((10, 1)), y=np.zeros((10, 1)), sample_rate_hz=FS, output_mask=np.full(10, 2))
+
+
+def test_trial_resamples_keep_the_blanked_outputs_of_each_drawn_trial():
+    """Bootstrap draws (repeats allowed) and per-condition resamples carry each drawn trial's output mask; they used
+    to raise a shape error on any blanked session (found when the two features met)."""
+    from stimsteer.sysid.ensemble import resample_trials
+    from stimsteer.sysid.network.conditions import _resampled
+
+    om = np.ones(30, dtype=bool)
+    om[[3, 14, 15, 27]] = False
+    s = Session(u=np.arange(30.0)[:, None], y=np.zeros((30, 1)), sample_rate_hz=FS, output_mask=om,
+                trials=[(0, 10), (10, 20), (20, 30)])
+    for draw in (resample_trials(s, [1, 1, 0]), _resampled(s, [1, 1, 0])):
+        np.testing.assert_array_equal(draw.output_mask, np.concatenate([om[10:20], om[10:20], om[0:10]]))
+        np.testing.assert_array_equal(draw.u[:, 0], np.concatenate([np.arange(10, 20), np.arange(10, 20),
+                                                                     np.arange(10)]))
