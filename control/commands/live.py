@@ -54,6 +54,9 @@ def add_parser(sub) -> None:
     p.add_argument("--max-stall-s", type=float, default=1.0, help="stop when no sample arrived for this long "
                    "(default 1)")
     p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
+    p.add_argument("--offset-free", choices=["off", "constant", "ramp"], default="off", help="estimate an output "
+                   "disturbance from the prediction errors and track without offset: constant offsets (constant) or "
+                   "slow linear drift (ramp); default off")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated plant's noise (default 0)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
@@ -133,7 +136,8 @@ def run(args) -> int:
         with contextlib.ExitStack() as stack:
             plant, pace = _source(args, ctrl, rate, stack)
             result = run_live(ctrl, plant, n_steps=n_steps, target=target, pace=pace, seed=args.seed,
-                              overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units)
+                              overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units,
+                              offset_free=None if args.offset_free == "off" else args.offset_free)
             if pace == "source":  # the bridge's own counts of the stream
                 result.summary["stream"] = {"dropped": plant.n_dropped, "missing": plant.n_missing}
         summary = jsonable({**result.summary, "model_file": str(args.model), "limits_file": str(args.limits),
