@@ -130,7 +130,9 @@ class ControlSettings:
 def _default_methods():
     # every registered method of each route (ridge ARX and subspace; least squares and Hankel): a route is then
     # represented by its best method on the training trials (tables._with_best), not by one chosen in advance
-    return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1])))
+    # (a method for data recorded under feedback says so with ``bench_default = False``: the bench's data are not)
+    return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1]))
+                 if getattr(METHODS[(r, m)].cls(), "bench_default", True))
 
 
 @dataclass(frozen=True)
