@@ -85,7 +85,7 @@ class _Runs:
                 piece = np.vstack([self.tail, piece])
             runs.append(piece)
         # the next samples continue the last run only when z ended on a valid sample
-        self.tail = runs[-1][runs[-1].shape[0] - self.keep:].copy() if ok[-1] else None
+        self.tail = runs[-1][max(0, runs[-1].shape[0] - self.keep):].copy() if ok[-1] else None
         return runs
 
 
@@ -376,6 +376,20 @@ class OnlineLsqPredictor:
         theta = (s_y[:, None] * theta) / s_b[None, :]
         self._solved = (theta[:, :(m + p) * T], theta[:, (m + p) * T:], rms)
         return self._solved
+
+    def hankel_factor(self):
+        """The compressed Hankel matrix: ``F`` with ``F Fᵀ = H Hᵀ``, rows ``[u_past; y_past; u_future; y_future]``.
+
+        In the channels' units (what ``HankelPredictor.data_blocks()`` stacks, up to a rotation of the columns:
+        DeePC with the l2 or projection regulariser does not see the rotation).
+
+        Returns
+        -------
+        ndarray, shape ((n_inputs + n_outputs)(past_steps + horizon_steps), r)
+        """
+        if self._R is None:
+            raise NotFittedError("the online predictor has no Hankel windows yet; update it with samples first.")
+        return self._R.T.copy()
 
     @property
     def Kp_(self):

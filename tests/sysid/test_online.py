@@ -60,7 +60,7 @@ def _feed(online, u, y, edges, cuts):
 def test_online_ridge_arx_equals_the_batch_refit(recording, intercept):
     u, y, edges, session = recording
     batch = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, alphas=(1e-3,), fit_intercept=intercept).fit(session)
-    online = _feed(OnlineRidgeArx.from_fitted(batch), u, y, edges, cuts=(1, 2, 77, 78))
+    online = _feed(OnlineRidgeArx.from_fitted(batch), u, y, edges, cuts=(1, 2, 77, 78, 79))
     assert online.n_rows_ == batch.n_rows_
     assert _rel(online.coef_, batch.coef_) < 1e-9
     if intercept:
@@ -94,7 +94,7 @@ def test_online_ridge_arx_recovers_a_noise_free_system_and_realises_it():
 def test_online_lsq_predictor_equals_the_batch_refit(recording):
     u, y, edges, session = recording
     batch = LsqPredictor(past_steps=3, horizon_steps=5, alphas=(1e-4,)).fit(session)
-    online = _feed(OnlineLsqPredictor.from_fitted(batch), u, y, edges, cuts=(1, 50, 51))
+    online = _feed(OnlineLsqPredictor.from_fitted(batch), u, y, edges, cuts=(1, 3, 50, 51, 52))  # runs < window
     assert online.n_columns_ == batch.n_columns_
     np.testing.assert_allclose(online.channel_scale_, batch.channel_scale_, rtol=1e-12)
     assert _rel(np.hstack([online.Kp_, online.Kf_]), np.hstack([batch.Kp_, batch.Kf_])) < 1e-9
@@ -109,6 +109,17 @@ def test_online_lsq_predictor_after_each_trial_and_with_a_tiny_strength(recordin
                        trials=np.column_stack([edges[:t], edges[1:t + 1]]))
         batch = LsqPredictor(past_steps=2, horizon_steps=4, alphas=(1e-10,)).fit(part)
         assert _rel(np.hstack([online.Kp_, online.Kf_]), np.hstack([batch.Kp_, batch.Kf_])) < 1e-9
+
+
+def test_the_block_qr_factor_equals_the_hankel_predictors_compressed_blocks(recording):
+    from stimsteer.sysid.datadriven import HankelPredictor
+
+    u, y, edges, session = recording
+    batch = HankelPredictor(past_steps=3, horizon_steps=4, lambdas_g=(1e-3,)).fit(session)
+    b = batch.data_blocks()
+    D = np.vstack([b.Up, b.Yp, b.Uf, b.Yf])
+    F = _feed(OnlineLsqPredictor(past_steps=3, horizon_steps=4, alpha=1e-3), u, y, edges, cuts=(5,)).hankel_factor()
+    assert _rel(F @ F.T, D @ D.T) < 1e-9  # the same compressed Hankel matrix, up to a rotation of its columns
 
 
 def test_scheduled_refit_refits_on_all_trials_on_its_schedule(recording):
