@@ -32,3 +32,39 @@ def test_live_offset_free_refuses_an_unknown_model(files, capsys):  # noqa: F811
         main(_args(files, "bad_offset", "--plant", str(files / "plant.h5"), "--offset-free", "cubic"))
     err = capsys.readouterr().err
     assert exit_.value.code == 2 and "--offset-free" in err and len(err.strip().splitlines()) == 1
+
+
+BOX = """
+[inputs.site_b]
+amplitude_min_ua = -1.0
+amplitude_max_ua = 1.0
+slew_max_ua = 0.4
+
+[inputs.site_a]
+amplitude_min_ua = -1.0
+amplitude_max_ua = 1.5
+slew_max_ua = 0.4
+"""
+
+
+def test_live_fast_step_runs_and_delivers_only_safe_inputs(files, capsys):  # noqa: F811
+    pytest.importorskip("daqp")
+    (files / "box.toml").write_text(BOX)
+    args = _args(files, "run_fast", "--plant", str(files / "plant.h5"), "--fast-step")
+    args[args.index("--limits") + 1] = str(files / "box.toml")
+    code = main(args)
+    printed = capsys.readouterr().out
+    assert code == 0, printed
+    summary = json.loads((files / "run_fast" / "run.json").read_text())
+    assert summary["unchecked_inputs"] == 0 and not any(summary["delivered_violations"].values())
+
+
+def test_live_fast_step_refuses_what_it_cannot_reproduce(files, capsys):  # noqa: F811
+    pytest.importorskip("daqp")
+    code = main(_args(files, "bad_fast", "--plant", str(files / "plant.h5"), "--fast-step"))  # energy budget
+    err = capsys.readouterr().err
+    assert code == 2 and "energy budget" in err and len(err.strip().splitlines()) == 1
+    code = main(_args(files, "bad_fast2", "--plant", str(files / "plant.h5"), "--fast-step", "--offset-free",
+                      "constant"))
+    err = capsys.readouterr().err
+    assert code == 2 and "--offset-free needs the full plan" in err
