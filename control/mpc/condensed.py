@@ -207,12 +207,13 @@ class _LinearStateMap:
     """The state estimate of a model as the linear map of the past window it is (read off once, then one product).
 
     ``StateSpaceModel.estimate_state`` solves a least-squares problem on every call, and its answer is linear in
-    the window ``[vec(u_past); vec(y_past)]`` (a pseudo-inverse applied to it); after ``calls_before`` plans the map
-    is read column by column from that function (``T (m + p)`` calls) and applied as one matrix product, so single
-    plans pay nothing and loops stop paying the solve. Windows of another length use the function itself.
+    the window ``[vec(u_past); vec(y_past)]`` (a pseudo-inverse applied to it); at the first plan the map is read
+    column by column from that function (``T (m + p)`` calls) and then applied as one matrix product, so loops stop
+    paying the solve. Every plan of a controller uses the map (the same window gives the same plan whatever was
+    planned before). Windows of another length use the function itself.
     """
 
-    def __init__(self, model, past_steps, calls_before=2):
+    def __init__(self, model, past_steps, calls_before=0):
         self._model, self._T, self._left = model, int(past_steps), int(calls_before)
         self._E = None
 
