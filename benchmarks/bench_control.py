@@ -4,11 +4,16 @@ Setup (not timed): a stable 12-state network with 4 stimulation inputs and 16 re
 box amplitude limits only (a QP). Timed, in the same run:
 
 1. ratio A — closed-loop step of stimsteer's indirect controller (``ModelPredictiveController.plan`` on its
+   fast path -- the dense warm-started active-set QP when ``daqp`` is installed (the ``realtime`` extra), else the
    reusable OSQP problem: state estimate, bound guards, solve, verification, plan packaging) ÷ the bare OSQP solve
    of the same condensed QP (set up once, only ``q``, ``l``, ``u`` updated per step); for reference also the
    controller's plain cvxpy path (compiled once, re-solved with CLARABEL) ÷ bare OSQP. Target: ratio A <= 2.
 2. ratio B — the direct controller's step ÷ the indirect one's, on the same horizon, with predictors fitted on
    5,000 samples: SPC (``LsqPredictor``) and DeePC (``HankelPredictor``, compressed blocks). Target: <= 3.
+3. the fast step (``FastStep``, issue 20) against a floor, bare OSQP, and at horizon 80 (see the section below).
+4. the live runner at 1 kHz and 10 kHz for ``--live-seconds`` each, with the machine's load printed beside.
+
+BLAS runs on one thread (threadpoolctl): on a loaded 2-core machine a second BLAS thread only waits.
 
 Run from the repository root:  .venv/bin/python benchmarks/bench_control.py [--steps 200]
 """
@@ -124,57 +129,103 @@ def main(argv=None):
         t = np.median(_loop(step, plant, model, target, args.steps))
         print(f"ratio B ({name} step {1e6 * t:.0f} µs / indirect step {1e6 * t_fast:.0f} µs): {t / t_fast:.2f}   "
               "(target <= 3)")
-    _live_section(args, model, plant, limits, target, ind)
+    step = _fast_section(args, model, plant, limits, target, ind)
+    _live_section(args, model, plant, limits, target, step, ind)
 
 
-# ------------------------------------------------------------------------------ live loop at 10 kHz (issue 20)
-# Section 3 -- the live runner (stimsteer.control.realtime.run_live) at 10 kHz on the same system for 10 s, in
+# ------------------------------------------------------------------------------ fast step (issue 20, item 5)
+# Section 3 -- the step of the fast path on the benchmark system with a target that makes amplitude bounds bind on a
+# good share of steps: FastStep.plan (precomputed linear estimator and QP terms, warm dense active-set solve, the
+# answer verified against the limits) against a floor written here (the same precomputed product and the warm
+# daqp solve, nothing else), the bare OSQP solve of the same condensed QP, and the controller's full plan() (which now
+# also solves with the dense path). Targets: FastStep <= 2 x the floor, <= 0.1 x bare OSQP, the same first input as
+# the cvxpy path to 1e-6, horizon 80 <= 4 x horizon 20.
+def _windows(model, plant, limits, target, ctrl, steps):
+    """Past windows of a closed loop run with the controller's own plan (the inputs every timed step sees)."""
+    plant.reset(seed=5)
+    U = [np.zeros(N_INPUTS)] * PAST
+    Y = [plant.step(u) for u in U]
+    out, binding = [], 0
+    for _ in range(steps):
+        u, y = np.asarray(U[-PAST:]), np.asarray(Y[-PAST:])
+        plan = ctrl.plan(u, y, target=target)
+        out.append((u, y, U[-1]))
+        binding += int(np.any(plan.active_limits["amplitude_max"][0] | plan.active_limits["amplitude_min"][0]))
+        U.append(plan.inputs[0])
+        Y.append(plant.step(plan.inputs[0]))
+    return out, binding / steps
+
+
+def _floor(step):
+    """The least a step can do: the precomputed product for q and the warm daqp solve (daqp.Model, no checks)."""
+    import daqp
+
+    qp, model = step._qp, daqp.Model()
+    model.setup(qp._H, np.zeros(qp.n_vars), np.zeros((0, qp.n_vars)), step._row_hi, step._row_lo)
+
+    def run(u, y, target):
+        w = np.concatenate([u.reshape(-1), y.reshape(-1)])
+        model.update(f=step._Qw @ w + step._target_term(target))
+        return model.solve()[0][:N_INPUTS]
+    return run
+
+
+def _timed(fn, windows, repeats=3):
+    best = None
+    for _ in range(repeats):
+        t = np.empty(len(windows))
+        for i, (u, y, last) in enumerate(windows):
+            t0 = time.perf_counter()
+            fn(u, y, last)
+            t[i] = time.perf_counter() - t0
+        best = t if best is None or np.median(t) < np.median(best) else best
+    return best
+
+
+def _fast_section(args, model, plant, limits, target, ind):
+    from stimsteer.control.mpc.fast_step import FastStep
+
+    gain = model.C @ np.linalg.solve(np.eye(N_STATES) - model.A, model.B)  # steady-state gain
+    far = gain @ np.array([3.0, -3.0, 3.0, -3.0])  # needs inputs of ±3 µA, beyond the ±1 µA box: bounds bind
+    windows, share = _windows(model, plant, limits, far, ind, args.steps)
+    step = FastStep(ind)
+    floor = _floor(step)
+    bare = _bare_osqp(ind)
+    Phi, Lz = ind._Phi_y, ind._Lz
+
+    def bare_step(u, y, last):
+        return bare(Lz @ (Phi @ model.estimate_state(u, y) - np.tile(far, HORIZON)))[:N_INPUTS]
+    t_floor = _timed(lambda u, y, last: floor(u, y, far), windows)
+    t_step = _timed(lambda u, y, last: step.plan(u, y, target=far, last_input=last), windows)
+    t_bare = _timed(bare_step, windows, repeats=1)
+    t_plan = _timed(lambda u, y, last: ind.plan(u, y, target=far, last_input=last), windows, repeats=1)
+    diff = max(float(np.max(np.abs(step.plan(u, y, target=far, last_input=last).inputs[0]
+                                   - ind.plan(u, y, target=far, last_input=last, use_fast_path=False).inputs[0])))
+               for u, y, last in windows[::10])
+    diff_osqp = max(float(np.max(np.abs(step.plan(u, y, target=far, last_input=last).inputs[0]
+                                        - bare_step(u, y, last)))) for u, y, last in windows[::10])
+    ind80 = ModelPredictiveController(model=model, limits=limits, horizon_steps=80, input_weight=1e-2).fit()
+    step80 = FastStep(ind80)
+    t_80 = _timed(lambda u, y, last: step80.plan(u, y, target=far, last_input=last), windows)
+    med = lambda t: 1e6 * float(np.median(t))  # noqa: E731
+    p99 = lambda t: 1e6 * float(np.percentile(t, 99))  # noqa: E731
+    print(f"\nfast step, target beyond reach (an amplitude bound binds at the first step of {100 * share:.0f} % of "
+          f"the steps); medians (p99): floor {med(t_floor):.1f} ({p99(t_floor):.1f}) µs, FastStep {med(t_step):.1f} "
+          f"({p99(t_step):.1f}) µs, plan() with the dense path {med(t_plan):.0f} ({p99(t_plan):.0f}) µs, bare OSQP "
+          f"{med(t_bare):.0f} ({p99(t_bare):.0f}) µs; FastStep horizon 80: {med(t_80):.1f} ({p99(t_80):.1f}) µs")
+    print(f"ratio (FastStep / floor): {np.median(t_step) / np.median(t_floor):.2f}   (target <= 2)")
+    print(f"ratio (FastStep / bare OSQP): {np.median(t_step) / np.median(t_bare):.3f}   (target <= 0.1)")
+    print(f"ratio (FastStep horizon 80 / horizon 20): {np.median(t_80) / np.median(t_step):.2f}   (target <= 4)")
+    print(f"largest |Δu| of the first input, FastStep vs the cvxpy path (CLARABEL), {len(windows[::10])} windows: "
+          f"{diff:.1e} µA, vs bare OSQP (tolerances 1e-7, polished): {diff_osqp:.1e} µA   (target <= 1e-6)")
+    return step
+
+
+# ------------------------------------------------------------------------------ live loops at 1 and 10 kHz (issue 20)
+# Section 4 -- the live runner (stimsteer.control.realtime.run_live) on the same system for --live-seconds in
 # wall-clock time: p50/p99 step latency (tick to decision, plan + gate), jitter, overruns, missed ticks, unchecked
-# inputs (target: p99 < 100 µs and zero unchecked inputs). With the indirect controller's plan() the runner refuses
-# 10 kHz (its best step is longer than 100 µs: the dense solver and precomputed estimator of the issue's item 5
-# are not built yet), so the section prints the refusal with its figures, runs that controller at the fastest rate
-# whose period is twice its median step, and then runs the runner at 10 kHz with a saturated explicit law (the
-# unconstrained optimum of the same condensed problem, a precomputed linear map of the past window, clipped to the
-# box) -- a stand-in with the mpc controllers' public interface, to show what the runner itself costs.
-class _ExplicitLaw:
-    """The first input of the unconstrained condensed optimum, as a linear map of the past window, clipped."""
-
-    def __init__(self, ctrl, model, target):
-        self._c = ctrl
-        T, m, p = PAST, N_INPUTS, N_OUTPUTS
-        E = np.empty((N_STATES, T * (m + p)))  # estimate_state is linear in the window: read its matrix column-wise
-        for j in range(E.shape[1]):
-            w = np.zeros(T * (m + p))
-            w[j] = 1.0
-            E[:, j] = model.estimate_state(w[:T * m].reshape(T, m), w[T * m:].reshape(T, p))
-        H = ctrl._LG.T @ ctrl._LG + ctrl._Ru.T @ ctrl._Ru
-        S = -np.linalg.solve(H, ctrl._LG.T)[:m] @ ctrl._Lz
-        self._K = S @ ctrl._Phi_y @ E
-        self._k = -S @ np.tile(target, HORIZON)
-        self._lo, self._hi = ctrl.limits_.input_bounds()
-        rng = np.random.default_rng(0)
-        u, y = rng.normal(size=(T, m)), rng.normal(size=(T, p))
-        self.map_error = float(np.max(np.abs(E @ np.concatenate([u.ravel(), y.ravel()]) - model.estimate_state(u, y))))
-
-    def __getattr__(self, name):
-        return getattr(self._c, name)
-
-    def reset(self):
-        return self._c.reset()
-
-    def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
-        w = np.concatenate([u_past[-PAST:].ravel(), y_past[-PAST:].ravel()])
-        return _FirstInput(np.clip(self._K @ w + self._k, self._lo, self._hi)[None, :])
-
-
-class _FirstInput:
-    __slots__ = ("inputs",)
-    fallback = False
-
-    def __init__(self, inputs):
-        self.inputs = inputs
-
-
+# inputs (target: p99 < 100 µs at 10 kHz and zero unchecked inputs, on an idle 2-core machine), with FastStep, and
+# with the controller's full plan() at 1 kHz (or the refusal the runner gives, with its figures).
 def _live_report(name, run):
     s = run.summary
     lat, jit, c = s["latency_s"], s["jitter_s"], s["counts"]
@@ -186,11 +237,11 @@ def _live_report(name, run):
           f"{sum(s['delivered_violations'].values())}")
 
 
-def _live_section(args, model, plant, limits, target, ind):
+def _live_section(args, model, plant, limits, target, step, ind):
+    import os
+
     from stimsteer.control.realtime import run_live
     from stimsteer.sysid import InvalidParameterError
-
-    import os
 
     print(f"\nlive runner (stimsteer live), wall-clock pace, box limits, overrun policy hold; load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores at the start")
@@ -199,27 +250,21 @@ def _live_section(args, model, plant, limits, target, ind):
         return LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                   sample_rate_hz=rate)
     seconds = args.live_seconds
-    try:
-        run_live(ind, fresh(10_000.0), n_steps=int(10_000 * seconds), target=target, pace="wall")
-    except InvalidParameterError as exc:
-        print(f"10 kHz with the indirect controller's plan(): refused -- {exc}")
-        median = float(str(exc).split("(median ")[1].split(" µs")[0]) * 1e-6
-        rate = float(np.floor(1.0 / (2.0 * median)))
-        run = run_live(ind, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall")
-        _live_report(f"indirect controller at {rate:g} Hz (period = 2 x its median step)", run)
-    law = _ExplicitLaw(ind, model, target)
-    print(f"explicit law: the linear map of the past window matches estimate_state to {law.map_error:.1e}")
-    n = int(10_000 * seconds)
-    t0 = time.perf_counter()
-    run_live(law, fresh(10_000.0), n_steps=n, target=target, pace="none")
-    print(f"whole step of the runner, unpaced (decision + gate + simulated plant + record): "
-          f"{1e6 * (time.perf_counter() - t0) / n:.1f} µs on average over {n} steps")
-    run = run_live(law, fresh(10_000.0), n_steps=int(10_000 * seconds), target=target, pace="wall")
-    _live_report("runner at 10 kHz with the explicit law", run)
-    lat = run.summary["latency_s"]["p99"]
-    print(f"ratio (runner p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   "
-          "(target < 1; an idle 2-core machine)")
+    for name, ctrl, rate in (("plan()", ind, 1_000.0), ("FastStep", step, 1_000.0), ("FastStep", step, 10_000.0)):
+        try:
+            run = run_live(ctrl, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall")
+        except InvalidParameterError as exc:
+            print(f"{name} at {rate:g} Hz: refused -- {exc}")
+            continue
+        _live_report(f"{name} at {rate:g} Hz", run)
+        if rate == 10_000.0:
+            lat = run.summary["latency_s"]["p99"]
+            print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   (target < 1; "
+                  "an idle 2-core machine)")
 
 
 if __name__ == "__main__":
-    main()
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        main()

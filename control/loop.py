@@ -16,10 +16,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..sysid import LimitsError, SessionError, check_fitted
+from ..sysid import InvalidParameterError, LimitsError, SessionError, check_fitted
 from ._energy_windows import over_budget
 
-__all__ = ["LoopResult", "run_closed_loop"]
+__all__ = ["LoopResult", "run_closed_loop", "offset_free_wrapper"]
 
 _LIMIT_KEYS = ("amplitude_min", "amplitude_max", "charge_density", "slew", "energy_budget")
 
@@ -63,6 +63,8 @@ class LoopResult:
     warmup_outputs : ndarray, shape (n_warmup, n_outputs)
     seed : int or None
         The plant's seed.
+    disturbance_estimate : ndarray, shape (n_steps, n_outputs) or None
+        With offset-free tracking: the output disturbance estimated at each step (else None).
     """
 
     inputs: np.ndarray
@@ -81,6 +83,7 @@ class LoopResult:
     seed: object = None
     energy_window_steps: int = None
     energy_window_max_ratio: float = 0.0
+    disturbance_estimate: np.ndarray = None
 
     @property
     def n_steps(self) -> int:
@@ -138,7 +141,7 @@ def _warmup(controller, warmup_inputs):
 
 
 def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, warmup_inputs=None,
-                    use_fast_path=None) -> LoopResult:
+                    use_fast_path=None, offset_free=None) -> LoopResult:
     """Run a fitted controller against a plant with a receding horizon.
 
     Parameters
@@ -161,6 +164,10 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
         inside the amplitude window.
     use_fast_path : bool, optional
         Passed to every ``controller.plan``.
+    offset_free : {None, "constant", "ramp"}, optional
+        Track offset-free: the controller is wrapped in an
+        :class:`~stimsteer.control.mpc.offset_free.OffsetFreeController` with this disturbance model (a controller
+        already wrapped may be passed as ``controller`` instead).
 
     Returns
     -------
@@ -176,6 +183,7 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
         Warm-up inputs outside the limits.
     """
     check_fitted(controller, "problem_")
+    controller = offset_free_wrapper(controller, offset_free)
     n_steps = int(n_steps)
     if n_steps < 1:
         raise SessionError(f"n_steps must be at least 1; got {n_steps}.")
@@ -193,6 +201,7 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     T_u = max(T, (controller.energy_window_steps_ or 1) - 1)
     times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}
     n_fallback = 0
+    dist = np.full((n_steps, p), np.nan) if hasattr(controller, "disturbance_") else None
     for k in range(n_steps):
         plan = controller.plan(np.asarray(U[-T_u:]), np.asarray(Y[-T:]), target=window(k), last_input=U[-1],
                                use_fast_path=use_fast_path)
@@ -201,14 +210,28 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
         Y.append(np.asarray(plant.step(u), np.float64).reshape(p))
         times[k], n_fallback = plan.solve_time_s, n_fallback + int(plan.fallback)
         statuses.append(plan.status)
+        if dist is not None:
+            dist[k] = controller.disturbance_
         for key in _LIMIT_KEYS:
             a = plan.active_limits[key]
             use[key] += int(a if key == "energy_budget" else np.any(a[0]))
     return _result(controller, warm, np.asarray(U[len(warm):]), np.asarray(Y), targets, times, statuses, use,
-                   n_fallback, seed)
+                   n_fallback, seed, dist)
 
 
-def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, seed):
+def offset_free_wrapper(controller, offset_free):
+    """``controller`` itself (``offset_free`` None) or wrapped for offset-free tracking with that disturbance model."""
+    if offset_free is None or offset_free is False:
+        return controller
+    from .mpc.offset_free import DISTURBANCE_MODELS, OffsetFreeController
+
+    if offset_free not in DISTURBANCE_MODELS:
+        raise InvalidParameterError(f"offset_free must be None or one of {list(DISTURBANCE_MODELS)}; got "
+                                    f"{offset_free!r}.")
+    return OffsetFreeController(controller, disturbance_model=offset_free)
+
+
+def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, seed, dist=None):
     n_w, n = warm.shape[0], u.shape[0]
     y = Y[n_w:]
     err = y - targets
@@ -228,6 +251,7 @@ def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, s
                     "output_bounds": out_bounds},
         solve_time_s=ro(times), statuses=tuple(statuses), n_fallback=int(n_fallback), warmup_inputs=ro(warm),
         warmup_outputs=ro(Y[:n_w]), seed=seed, energy_window_steps=W, energy_window_max_ratio=ratio,
+        disturbance_estimate=None if dist is None else ro(dist),
     )
 
 

@@ -41,6 +41,7 @@ from ..sysid import InvalidParameterError, LimitsError, Session, SessionError, S
 from ..sysid.caution import CAUTION
 from ._live_record import record_run, timing_summary
 from .input_gate import InputGate
+from .loop import offset_free_wrapper
 
 __all__ = ["LiveRun", "run_live", "OVERRUN_POLICIES", "PACES"]
 
@@ -149,7 +150,7 @@ class _Loop:
 
 def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
              seed=None, x0=None, warmup_inputs=None, calibration_steps=20, max_stall_s=1.0, use_fast_path=None,
-             output_units="a.u.", clock=time.perf_counter) -> LiveRun:
+             output_units="a.u.", clock=time.perf_counter, offset_free=None) -> LiveRun:
     """Run a fitted controller against a plant in real time, with deadlines, and record the run as a session.
 
     Parameters
@@ -184,6 +185,10 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         Units of the recorded outputs in the session.
     clock : callable, default time.perf_counter
         Monotonic seconds.
+    offset_free : {None, "constant", "ramp"}, optional
+        Plan offset-free with this output-disturbance model
+        (:class:`~stimsteer.control.mpc.offset_free.OffsetFreeController`); the estimate is updated only from
+        samples whose delivered input is the one planned (a held, replaced or fallback input teaches it nothing).
 
     Returns
     -------
@@ -199,6 +204,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         Warm-up inputs outside the limits.
     """
     check_fitted(controller, "problem_")
+    controller = offset_free_wrapper(controller, offset_free)
     period = _check_settings(controller, plant, n_steps, overrun_policy, pace, sample_rate_hz, calibration_steps,
                              max_stall_s)
     warm = _warmup(controller, warmup_inputs)
@@ -216,6 +222,9 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     plant.reset(seed=seed, x0=x0)
     stop = _run(loop, warm, n_steps, target, max_stall_s, use_fast_path)
     summary = timing_summary(loop, period, best, stop)
+    if offset_free:
+        summary["offset_free"] = {"disturbance_model": offset_free,
+                                  "disturbance_estimate": [float(v) for v in controller.disturbance_]}
     session = record_run(loop, warm.shape[0], n_steps, period, summary, output_units)
     return LiveRun(session=session, latency_s=_ro(loop.latency), jitter_s=_jitter(loop.ticks, period, pace),
                    events=tuple(loop.events), stop_reason=stop, summary=summary)

@@ -87,6 +87,7 @@ class MethodEntry:
 METHODS = {
     ("indirect", "arx"): MethodEntry("stimsteer.sysid.arx:RidgeArx", {"past_steps": ("output_lags", "input_lags")}),
     ("indirect", "subspace"): MethodEntry("stimsteer.sysid.subspace.estimator:SubspaceId", streaming=True),
+    ("indirect", "pbsid"): MethodEntry("stimsteer.sysid.subspace.closed_loop:ClosedLoopSubspaceId", streaming=True),
     ("direct", "lsq"): MethodEntry("stimsteer.sysid.datadriven.lsq:LsqPredictor", streaming=True),
     ("direct", "hankel"): MethodEntry("stimsteer.sysid.datadriven.hankel_predictor:HankelPredictor", streaming=True),
     ("indirect", "lifted"): MethodEntry("stimsteer.sysid.lifted:LiftedPredictor"),

@@ -195,6 +195,9 @@ def fit_route(session, *, route: str, method: str, settings: dict | None = None,
         pre-stimulation baseline mean holds more than :data:`OFFSET_WARN_FRACTION` of its baseline mean square; the
         largest share is recorded in the provenance as ``output_offset_fraction``.
     """
+    from .subspace.closed_loop import method_for_session  # data recorded under feedback: the closed-loop method
+
+    method = method_for_session(session, route, method, settings)
     factory = _factory(route, method)
     estimator = make_estimator(route, method, settings, horizon_steps=horizon_steps)
     check_representable(session)

@@ -15,7 +15,9 @@ import json
 import os
 from pathlib import Path
 
-from ...sysid import SessionError, load_predictor, save_session
+import numpy as np
+
+from ...sysid import InvalidParameterError, SessionError, load_predictor, save_session
 from ...sysid._claims import claim_output
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable
@@ -55,6 +57,12 @@ def add_parser(sub) -> None:
     p.add_argument("--max-stall-s", type=float, default=1.0, help="stop when no sample arrived for this long "
                    "(default 1)")
     p.add_argument("--input-weight", type=float, default=1e-3, help="weight of input energy per uA^2 (default 1e-3)")
+    p.add_argument("--offset-free", choices=["off", "constant", "ramp"], default="off", help="estimate an output "
+                   "disturbance from the prediction errors and track without offset: constant offsets (constant) or "
+                   "slow linear drift (ramp); default off")
+    p.add_argument("--fast-step", action="store_true", help="decide each input with the precomputed fast step "
+                   "(state-space models with amplitude and slew limits only; needs the realtime extra, daqp) "
+                   "instead of the full plan: for sample rates in the kHz")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated plant's noise (default 0)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
@@ -66,6 +74,16 @@ def _controller(args):
     target, tracked = parse_target(args.target, names_out, N)
     ctrl = controller_for(predictor, load_limits(args.limits), horizon_steps=target.shape[0],
                           output_weight=tracked.astype(float), input_weight=args.input_weight)
+    if getattr(args, "fast_step", False):
+        if args.offset_free != "off":
+            raise InvalidParameterError("--offset-free needs the full plan's predictions; drop --fast-step (or "
+                                        "--offset-free).")
+        from ..mpc.fast_step import FastStep
+
+        if not np.allclose(target, target[0]):
+            raise InvalidParameterError("--fast-step follows a constant target; give name=value pairs, not a table "
+                                        "that changes over the horizon.")
+        return FastStep(ctrl), target[0], units, rate
     return ctrl, target, units, rate
 
 
@@ -134,7 +152,8 @@ def run(args) -> int:
         with contextlib.ExitStack() as stack:
             plant, pace = _source(args, ctrl, rate, stack)
             result = run_live(ctrl, plant, n_steps=n_steps, target=target, pace=pace, seed=args.seed,
-                              overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units)
+                              overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units,
+                              offset_free=None if args.offset_free == "off" else args.offset_free)
             if pace == "source":  # the bridge's own counts of the stream
                 result.summary["stream"] = {"dropped": plant.n_dropped, "missing": plant.n_missing}
         summary = jsonable({**result.summary, "model_file": str(args.model), "limits_file": str(args.limits),

@@ -130,8 +130,9 @@ class ControlSettings:
 def _default_methods():
     # every registered method of each route (ridge ARX and subspace; least squares and Hankel): a route is then
     # represented by its best method on the training trials (tables._with_best), not by one chosen in advance
-    # methods whose class sets ``in_default_bench = False`` (the nonlinear, recursive and ensemble methods, slower
-    # and opt-in) take part when named: BenchSettings(methods=(..., MethodSpec("indirect", "hammerstein")))
+    # methods whose class sets ``in_default_bench = False`` (the nonlinear, recursive and ensemble methods, slower;
+    # closed-loop identification, for data recorded under feedback, which the bench's designed inputs are not) take
+    # part when named: BenchSettings(methods=(..., MethodSpec("indirect", "hammerstein"))) or bench --methods
     return tuple(MethodSpec(r, m) for r, m in sorted(METHODS, key=lambda k: (k[0] != "indirect", k[1]))
                  if getattr(METHODS[(r, m)].cls(), "in_default_bench", True))
 

@@ -315,7 +315,7 @@ class _PredictiveController(BaseEstimator):
         reason = self._guard(broken, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
-        solver, aux, u, status = "OSQP (reused)" if fast else "", None, None, "infeasible"
+        solver, aux, u, status = getattr(self._fast, "label", "OSQP (reused)") if fast else "", None, None, "infeasible"
         if not reason:
             u, aux, status, reason, solver = self._solve(self._offsets(u_past, y_past, target), lb, ub, fast, solver)
             if u is not None:

@@ -19,7 +19,7 @@ import scipy.sparse as sp
 
 from ...sysid import markov_toeplitz
 from ._core import _PredictiveController
-from .fastqp import _FastQP
+from .fastqp import _DenseQP, _FastQP, dense_solver_available
 
 __all__ = ["condensed_prediction"]
 
@@ -112,7 +112,20 @@ class _CondensedCore(_PredictiveController):
             rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._kappa]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
-        return _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
+        dense = self._dense_qp(H, rows, Nm, nb)
+        return dense if dense is not None else _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
+
+    def _dense_qp(self, H, rows, Nm, nb):
+        """The dense warm-started active-set QP when it applies: no output bounds (no slack), ``H`` positive
+        definite, and the solver installed (the ``realtime`` extra); else None (OSQP, the general fast path)."""
+        if nb or not dense_solver_available():
+            return None
+        H2 = 2.0 * 0.5 * (H + H.T)
+        ev = np.linalg.eigvalsh(H2)
+        if not ev[0] > 1e-10 * max(ev[-1], 1e-300):  # a flat direction (no input weight): OSQP copes, DAQP may not
+            return None
+        A = sp.vstack(rows[1:], format="csr").toarray() if len(rows) > 1 else None
+        return _DenseQP(H2, A, Nm)
 
     def _fast_vectors(self):
         """Templates of q, l, u for the condensed fast path: the parts that never change are filled in once."""
@@ -188,3 +201,42 @@ class _CondensedCore(_PredictiveController):
         if self._LpT is not None:
             terms["terminal"] = float(np.sum((self._LpT @ v + tw) ** 2))
         return terms
+
+
+class _LinearStateMap:
+    """The state estimate of a model as the linear map of the past window it is (read off once, then one product).
+
+    ``StateSpaceModel.estimate_state`` solves a least-squares problem on every call, and its answer is linear in
+    the window ``[vec(u_past); vec(y_past)]`` (a pseudo-inverse applied to it); at the first plan the map is read
+    column by column from that function (``T (m + p)`` calls) and then applied as one matrix product, so loops stop
+    paying the solve. Every plan of a controller uses the map (the same window gives the same plan whatever was
+    planned before). Windows of another length use the function itself.
+    """
+
+    def __init__(self, model, past_steps, calls_before=0):
+        self._model, self._T, self._left = model, int(past_steps), int(calls_before)
+        self._E = None
+
+    def _build(self):
+        m, p, T = self._model.n_inputs, self._model.n_outputs, self._T
+        E = np.empty((self._model.n_states, T * (m + p)))
+        w = np.zeros(T * (m + p))
+        for j in range(E.shape[1]):
+            w[j] = 1.0
+            E[:, j] = self._model.estimate_state(w[:T * m].reshape(T, m), w[T * m:].reshape(T, p))
+            w[j] = 0.0
+        return E
+
+    def __call__(self, u_past, y_past):
+        if u_past.shape[0] != self._T:
+            return self._model.estimate_state(u_past, y_past)
+        if self._E is None:
+            if self._left > 0:
+                self._left -= 1
+                return self._model.estimate_state(u_past, y_past)
+            self._E = self._build()
+        T, m = self._T, u_past.shape[1]
+        w = np.empty(self._E.shape[1])
+        w[:T * m] = u_past.reshape(-1)
+        w[T * m:] = y_past.reshape(-1)
+        return self._E @ w

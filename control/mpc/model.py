@@ -19,7 +19,7 @@ import scipy.sparse as sp
 
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._core import _clip_psd, _horizon, _output_target, _sqrt_weight
-from .condensed import _CondensedCore, condensed_prediction
+from .condensed import _CondensedCore, _LinearStateMap, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
 
 __all__ = ["ModelPredictiveController", "SteadyState"]
@@ -167,6 +167,7 @@ class ModelPredictiveController(_CondensedCore):
         self._y_off = self._offset_values(model.n_outputs)
         self._y_off_N = np.tile(self._y_off, N)
         self._free_cache = self._offsets_cache = None
+        self._state_map = _LinearStateMap(model, model.past_steps)  # the estimate as a precomputed linear map
         Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
         self._Phi_y, self._Phi_x, self._Gx = Phi_y, Phi_x, Gx
         self._AN = np.linalg.matrix_power(model.A, N)
@@ -315,7 +316,7 @@ class ModelPredictiveController(_CondensedCore):
         cached = self._free_cache
         if cached is not None and cached[0] is u_past and cached[1] is y_past:
             return cached[2]
-        x0 = self.model_.estimate_state(u_past, y_past - self._y_off)
+        x0 = self._state_map(u_past, y_past - self._y_off)
         out = (x0, self._Phi_y @ x0 + self._y_off_N)
         self._free_cache = (u_past, y_past, out)
         return out

@@ -11,5 +11,6 @@ fitting costs about one Gram of the Hankel matrix however many orders are tried.
 from __future__ import annotations
 
 from .estimator import SubspaceId
+from .closed_loop import ClosedLoopSubspaceId
 
-__all__ = ["SubspaceId"]
+__all__ = ["SubspaceId", "ClosedLoopSubspaceId"]

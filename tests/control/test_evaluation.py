@@ -173,6 +173,7 @@ def test_the_default_benchmark_fits_every_registered_method():
 
     opt_in = {k for k, e in METHODS.items() if not getattr(e.cls(), "in_default_bench", True)}
     assert {(m.route, m.method) for m in BenchSettings().methods} == set(METHODS) - opt_in
+    assert ("indirect", "pbsid") in opt_in  # closed-loop identification is for data recorded under feedback
 
 
 # ------------------------------------------------------------------------------------------------ bad input

@@ -1,0 +1,173 @@
+"""The first input of a plan in tens of microseconds, for live loops: :class:`FastStep`.
+
+A fitted :class:`~stimsteer.control.mpc.ModelPredictiveController` (condensed, output target, box and slew limits)
+solves the same quadratic program at every sample; only its linear term and the first step's slew window change.
+:class:`FastStep` precomputes everything else once:
+
+* the state estimate as a linear map of the past window (``StateSpaceModel.estimate_state`` is linear in it), so
+  the QP's linear term is one matrix product ``q = Q_w w + q_r`` of the window ``w = [vec(u_past); vec(y_past)]``
+  (``q_r`` for the target, recomputed only when the target changes);
+* the dense QP, solved by a dual active-set method warm started from the last active set (``daqp``; the
+  ``realtime`` extra).
+
+It returns only what a loop delivers (the first input, whether it is a fallback, the status), none of the
+:class:`Plan`'s packaging. The answer is verified against the hard limits before it is returned (amplitude and the
+slew window from ``last_input``; rounding-level excess is put on the bound, more is a failed step that returns the
+safe fallback), and a live runner's gate checks it again when it leaves. Energy budgets and output bounds need the
+full plan: they are refused here (use ``plan`` of the controller).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ...sysid import InvalidParameterError, SessionError, check_fitted
+from .condensed import _LinearStateMap
+from .fastqp import _DenseQP, dense_solver_available
+
+__all__ = ["FastStep", "StepResult"]
+
+_ACCEPT_RTOL = 1e-7
+
+
+class StepResult:
+    """What a fast step decides: ``inputs`` (1, n_inputs), ``fallback``, ``status`` (``"optimal"`` or the reason)."""
+
+    __slots__ = ("inputs", "fallback", "status")
+
+    def __init__(self, inputs, fallback, status):
+        self.inputs, self.fallback, self.status = inputs, fallback, status
+
+
+class FastStep:
+    """A fitted model predictive controller reduced to its first input, for live loops (see the module docstring).
+
+    Parameters
+    ----------
+    controller : ModelPredictiveController
+        Fitted, ``formulation="condensed"``, ``target_kind="output"``, no terminal weight; limits with amplitude
+        (and charge-density) bounds and slew limits only.
+
+    Attributes
+    ----------
+    controller_ : the controller; its fitted attributes (``limits_``, ``past_steps_``, ...) are this object's too.
+
+    Raises
+    ------
+    InvalidParameterError
+        A controller this path cannot reproduce (the message says what), or ``daqp`` not installed.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stimsteer.sysid import StateSpaceModel
+    >>> from stimsteer.control.limits import StimLimits
+    >>> from stimsteer.control.mpc import ModelPredictiveController
+    >>> ctrl = ModelPredictiveController(model=StateSpaceModel(A=[[0.9]], B=[[1.0]], C=[[1.0]]), horizon_steps=5,
+    ...     limits=StimLimits(amplitude_min_ua=-1, amplitude_max_ua=1, n_inputs=1)).fit()
+    >>> step = FastStep(ctrl)
+    >>> u = step.plan(np.zeros((1, 1)), np.zeros((1, 1)), target=[3.0]).inputs[0]
+    >>> bool(np.allclose(u, ctrl.plan(np.zeros((1, 1)), np.zeros((1, 1)), target=[3.0]).inputs[0]))
+    True
+    """
+
+    def __init__(self, controller):
+        check_fitted(controller, "problem_")
+        why = _unsupported(controller)
+        if why:
+            raise InvalidParameterError(f"the fast step cannot reproduce this controller: {why}; use its plan().")
+        self.controller_ = c = controller
+        model, T = c.model_, int(c.past_steps_)
+        m, p, N = int(c.n_inputs_), int(c.n_outputs_), int(c.horizon_steps_)
+        E = _state_map(model, T)
+        off = np.asarray(c._y_off, np.float64)
+        M = 2.0 * c._LG.T @ c._Lz  # q = M (fy − r)
+        self._Qw = M @ c._Phi_y @ E
+        self._q0 = M @ (np.tile(off, N) - c._Phi_y @ E @ np.concatenate([np.zeros(T * m), np.tile(off, T)]))
+        self._M = M
+        H = c._LG.T @ c._LG + c._Ru.T @ c._Ru
+        slew = c._slew_rows
+        self._qp = _DenseQP(2.0 * 0.5 * (H + H.T), None if slew is None else slew[0].toarray(), N * m)
+        self._lo, self._hi = np.tile(c._lo, N), np.tile(c._hi, N)
+        self._row_lo = np.concatenate([self._lo, [] if slew is None else -slew[1]])
+        self._row_hi = np.concatenate([self._hi, [] if slew is None else slew[1]])
+        self._slew = None if c._slew is None else np.asarray(c._slew, np.float64)
+        self._T, self._m, self._p, self._N = T, m, p, N
+        self._tol = _ACCEPT_RTOL * max(1.0, float(np.max(np.abs(np.concatenate([c._lo, c._hi])))))
+        self._target, self._qr = None, None
+        self._w, self._q = np.empty(T * (m + p)), np.empty(N * m)
+        big = 1e30  # the dense solver's "no bound"
+        self._row_lo, self._row_hi = np.clip(self._row_lo, -big, big), np.clip(self._row_hi, -big, big)
+        self._lo_buf, self._hi_buf = self._row_lo.copy(), self._row_hi.copy()
+
+    def __getattr__(self, name):
+        # the fitted attributes of the controller are this object's too (a live runner reads them)
+        if name.endswith("_") and not name.startswith("_") and "controller_" in self.__dict__:
+            return getattr(self.__dict__["controller_"], name)
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+    def reset(self):
+        """Forget the warm start."""
+        self._qp.reset()
+        return self
+
+    def _target_term(self, target):
+        t = np.asarray(target, np.float64)
+        if self._target is None or t.shape != self._target.shape or not np.array_equal(t, self._target):
+            if t.shape != (self._p,) or not np.all(np.isfinite(t)):
+                raise SessionError(f"the fast step takes a constant output target of {self._p} finite values; got "
+                                   f"shape {t.shape}.")
+            self._target, self._qr = t.copy(), self._q0 - self._M @ np.tile(t, self._N)
+        return self._qr
+
+    def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
+        """The first input from the last ``past_steps_`` samples of the windows (``use_fast_path`` is ignored).
+
+        Returns
+        -------
+        StepResult
+        """
+        T, m = self._T, self._m
+        w, q, lo, hi = self._w, self._q, self._lo_buf, self._hi_buf
+        w[:T * m] = u_past[-T:].reshape(-1)
+        w[T * m:] = y_past[-T:].reshape(-1)
+        last = u_past[-1] if last_input is None else np.asarray(last_input, np.float64)
+        np.dot(self._Qw, w, out=q)
+        q += self._target_term(target)
+        if self._slew is not None:  # only the first step's window moves: around the last delivered input
+            np.maximum(self._row_lo[:m], last - self._slew, out=lo[:m])
+            np.minimum(self._row_hi[:m], last + self._slew, out=hi[:m])
+            if (lo[:m] > hi[:m]).any():
+                return self._fallback(last, "no input meets the limits from the last one")
+        if not np.isfinite(q).all():
+            return self._fallback(last, "the window holds NaN or infinite values")
+        x, status, reason = self._qp.solve_finite(q, lo, hi)
+        if x is None:
+            return self._fallback(last, reason)
+        u0 = x[:m]
+        tol = self._tol
+        if not ((u0 >= lo[:m] - tol).all() and (u0 <= hi[:m] + tol).all()):  # NaN fails both
+            return self._fallback(last, "the solver's answer breaks a hard limit")
+        return StepResult(np.clip(u0, lo[:m], hi[:m])[None, :], False, status)
+
+    def _fallback(self, last, why):
+        return StepResult(self.controller_.limits_.safe_inputs(1, last), True, why)
+
+
+def _unsupported(c) -> str:
+    """Why a controller is out of reach of the fast step ('' when it is not)."""
+    checks = (
+        (not hasattr(c, "model_"), "it is not a model predictive controller (the direct route plans with plan())"),
+        (getattr(c, "formulation", "") != "condensed", "its formulation is not condensed"),
+        (getattr(c, "target_kind_", "") != "output", "it plans towards a state"),
+        (getattr(c, "_LpT", None) is not None, "it has a terminal weight"),
+        (getattr(c, "_energy", None) is not None, "its limits have an energy budget"),
+        (getattr(c, "_idx_b", np.zeros(0)).size > 0, "its limits have output bounds"),
+        (not dense_solver_available(), "the dense solver daqp is not installed (pip install 'stimsteer[realtime]')"),
+    )
+    return "; ".join(why for bad, why in checks if bad)
+
+
+def _state_map(model, T):
+    """``E`` with ``estimate_state(u, y) = E [vec u; vec y]`` for windows of ``T`` samples (it is linear)."""
+    return _LinearStateMap(model, T)._build()

@@ -1,0 +1,109 @@
+"""The dense warm-started QP path and the fast step (stimsteer.control.mpc.fastqp._DenseQP, fast_step.FastStep).
+
+Outside checks: the plans equal the cvxpy problem solved by CLARABEL (an interior-point solver, a different
+algorithm) to 1e-6 on windows where amplitude and slew limits bind; the state estimate's precomputed map equals
+``StateSpaceModel.estimate_state`` (it is a least-squares solution, linear in the data: common practice, no
+source); every delivered input respects the hard limits counted from the definitions.
+"""
+
+import numpy as np
+import pytest
+
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.mpc import DataPredictiveController, ModelPredictiveController
+from stimsteer.control.mpc.condensed import _LinearStateMap
+from stimsteer.control.mpc.fast_step import FastStep
+from stimsteer.control.plants import LinearNetworkPlant
+from stimsteer.control.realtime import run_live
+from stimsteer.sysid import StateSpaceModel
+from stimsteer.sysid.exceptions import InvalidParameterError, SessionError
+
+pytest.importorskip("daqp")
+
+LIM = StimLimits(amplitude_min_ua=[-1.0, -0.5], amplitude_max_ua=[1.0, 0.8], slew_max_ua=[0.3, 0.2])
+
+
+@pytest.fixture(scope="module")
+def setup():
+    rng = np.random.default_rng(5)
+    n, m, p = 5, 2, 3
+    A = rng.normal(size=(n, n))
+    A *= 0.9 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.normal(size=(n, m)), C=rng.normal(size=(p, n)), past_steps=3)
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=10, input_weight=1e-2,
+                                     output_offset=[1.0, 2.0, 3.0]).fit()
+    return model, ctrl, rng.normal(size=p) * 5
+
+
+def _plant(model):
+    return LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, sample_rate_hz=100.0)
+
+
+def test_fast_step_equals_the_cvxpy_plan_where_limits_bind(setup):
+    model, ctrl, target = setup
+    step = FastStep(ctrl)
+    rng = np.random.default_rng(0)
+    bound = 0
+    last = np.zeros(2)
+    for _ in range(30):
+        u = rng.uniform(-0.5, 0.5, size=(3, 2))
+        y = rng.normal(size=(3, 3))
+        ref = ctrl.plan(u, y, target=target, last_input=last, use_fast_path=False)
+        got = step.plan(u, y, target=target, last_input=last)
+        assert ref.ok and not got.fallback
+        np.testing.assert_allclose(got.inputs[0], ref.inputs[0], atol=1e-6)
+        bound += int(np.any(ref.active_limits["slew"][0]) or np.any(ref.active_limits["amplitude_max"][0])
+                     or np.any(ref.active_limits["amplitude_min"][0]))
+        last = ref.inputs[0]
+    assert bound >= 10  # a good share of the steps have a binding limit
+
+
+def test_the_dense_fast_path_of_plan_equals_cvxpy_and_names_its_solver(setup):
+    model, ctrl, target = setup
+    u, y = np.zeros((3, 2)), np.ones((3, 3))
+    a = ctrl.plan(u, y, target=target, use_fast_path=True)
+    b = ctrl.plan(u, y, target=target, use_fast_path=False)
+    assert a.solver == "DAQP (dense, warm)" and "cvxpy" in b.solver
+    np.testing.assert_allclose(a.inputs, b.inputs, atol=1e-6)
+
+
+def test_the_state_map_equals_estimate_state(setup):
+    model, _, _ = setup
+    rng = np.random.default_rng(1)
+    sm = _LinearStateMap(model, 3, calls_before=0)
+    for _ in range(3):
+        u, y = rng.normal(size=(3, 2)), rng.normal(size=(3, 3))
+        np.testing.assert_allclose(sm(u, y), model.estimate_state(u, y), atol=1e-10)
+
+
+def test_a_live_run_with_the_fast_step_delivers_only_safe_inputs(setup):
+    model, ctrl, target = setup
+    run = run_live(FastStep(ctrl), _plant(model), n_steps=200, target=target, pace="none", seed=3)
+    s = run.summary
+    assert s["unchecked_inputs"] == 0 and not any(s["delivered_violations"].values())
+    u = run.session.u
+    d = np.abs(np.diff(np.vstack([np.zeros(2), u]), axis=0))
+    assert np.all(d <= np.array([0.3, 0.2]) + 1e-12)  # slew, from the definitions
+    assert np.all(u <= np.array([1.0, 0.8]) + 1e-12) and np.all(u >= np.array([-1.0, -0.5]) - 1e-12)
+
+
+def test_a_failed_solve_gives_the_safe_fallback(setup, monkeypatch):
+    model, ctrl, target = setup
+    step = FastStep(ctrl)
+    monkeypatch.setattr(step._qp, "solve_finite", lambda q, lo, hi: (None, "failed", "injected failure"))
+    res = step.plan(np.zeros((3, 2)), np.zeros((3, 3)), target=target, last_input=np.array([0.9, 0.6]))
+    assert res.fallback and res.status == "injected failure"
+    np.testing.assert_allclose(res.inputs[0], [0.6, 0.4])  # towards zero at the slew limit
+
+
+def test_controllers_the_fast_step_cannot_reproduce_are_refused(setup):
+    model, ctrl, target = setup
+    budget = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=2, energy_budget_ua2=5.0)
+    with pytest.raises(InvalidParameterError, match="energy budget"):
+        FastStep(ModelPredictiveController(model=model, limits=budget, horizon_steps=5).fit())
+    with pytest.raises(InvalidParameterError, match="state"):
+        FastStep(ModelPredictiveController(model=model, limits=LIM, horizon_steps=5, target_kind="state").fit())
+    with pytest.raises(InvalidParameterError, match="terminal weight"):
+        FastStep(ModelPredictiveController(model=model, limits=LIM, horizon_steps=5, terminal_weight="riccati").fit())
+    with pytest.raises(SessionError, match="constant output target"):
+        FastStep(ctrl).plan(np.zeros((3, 2)), np.zeros((3, 3)), target=np.zeros((10, 3)))
