@@ -41,11 +41,12 @@ def window_charges_uc(pulses: pd.DataFrame, window_s: float) -> np.ndarray:
     return c[end] - c[np.arange(t.size)]
 
 
-def _row(rule, site, limit, value, unit, *, smaller_is_safe=True):
+def _row(rule, site, limit, value, unit, *, smaller_is_safe=True, name=None):
+    # ``name`` tells apart two checks of one rule (the two ends of the frequency range); the source is the rule's
     margin = (limit - value) if smaller_is_safe else (value - limit)
     ok = bool(margin >= -1e-9 * max(abs(limit), 1e-12))
     frac = None if not limit or not math.isfinite(limit) else margin / abs(limit)
-    return {"rule": rule, "site": site, "limit": limit, "value": value, "unit": unit, "margin": margin,
+    return {"rule": name or rule, "site": site, "limit": limit, "value": value, "unit": unit, "margin": margin,
             "margin_fraction": frac, "passed": ok, "source": RULE_SOURCES[rule]}
 
 
@@ -105,9 +106,10 @@ def safety_checks(u, mapping, compiled, *, u_past=None) -> tuple[pd.DataFrame, l
     checks = []
     for j, site in enumerate(mapping.sites):
         lim = physical.sites[site.name]
-        checks.append(_row("frequency", site.name, lim.frequency_max_hz, site.frequency_hz, "Hz"))
+        checks.append(_row("frequency", site.name, lim.frequency_max_hz, site.frequency_hz, "Hz",
+                           name="frequency_max"))
         checks.append(_row("frequency", site.name, lim.frequency_min_hz, site.frequency_hz, "Hz",
-                           smaller_is_safe=False))
+                           smaller_is_safe=False, name="frequency_min"))
         duty = site.train.duty * (site.pulse_duty if site.kind == "optical" else 1.0)
         checks.append(_row("duty_cycle", site.name, lim.duty_cycle_max_fraction, duty, "fraction"))
         sp = pulses[pulses["site"] == site.name]

@@ -62,6 +62,17 @@ def test_charge_per_phase_and_density_on_a_common_macro_contact():
     assert checks_pass(checks)
 
 
+def test_the_two_ends_of_the_frequency_range_are_named_apart():
+    """A plan file listed both frequency checks as "frequency" (one with limit 300, one with limit 2) and a reader
+    could not tell the floor from the ceiling."""
+    m = _mapping()
+    _, checks = safety_checks(np.full((10, 1), 1.0), m, compile_limits(_limits(amplitude_max_ua=100.0), m))
+    ends = {r["rule"]: r for r in checks if r["rule"].startswith("frequency")}
+    assert set(ends) == {"frequency_max", "frequency_min"}
+    assert ends["frequency_max"]["limit"] >= ends["frequency_min"]["limit"]
+    assert ends["frequency_max"]["source"] == ends["frequency_min"]["source"]
+
+
 def test_micro_contacts_use_the_declared_injection_limit_not_shannon():
     # platinum: ~50-150 µC/cm² (from memory; Cogan 2008 reviews such values); 100 µC/cm² on 2000 µm² at 100 µs:
     # Q = 100 · 2e-5 = 0.002 µC, I = 20 µA
