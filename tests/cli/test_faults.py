@@ -213,8 +213,11 @@ def _slow_session(shipped, tmp_path):
 @pytest.mark.slow
 def test_a_second_fit_on_the_same_model_file_is_refused_at_once(shipped, tmp_path):
     session, out = _slow_session(shipped, tmp_path), tmp_path / "same.h5"
-    argv = ["fit", session, "--route", "direct", "--method", "lsq", "--past-steps", 20, "--horizon-steps", 60,
-            "--out", out]  # ~10 s alone, ~8 s of it computing
+    # the regularised Hankel predictor: ~8 s alone on a quiet machine, most of it computing (the least-squares
+    # predictor used here before became fast enough, 3 s, with the Gram route that the second run could start
+    # after it had finished)
+    argv = ["fit", session, "--route", "direct", "--method", "hankel", "--past-steps", 30, "--horizon-steps", 60,
+            "--out", out]
     first = start_cli(*argv, cwd=tmp_path)
     try:
         # the first is past its start-up: it has claimed its output (a hidden `.same.h5.*` beside it), or 4 s passed
