@@ -19,11 +19,13 @@ In the cvxpy problem the windows are linear in per-step energies ``e_k >= ‖u_k
 ``r_t >= Σ_i max(|u_{N−1,i}| − t·slew_i, 0)²`` (convex), with the budget left by the applied past as a Parameter:
 the problem stays DPP.
 
-Units. These rows are written in inputs divided by a scale ``s`` (the controller's largest amplitude bound), and
-energies divided by ``s²``: cvxpy writes ``‖x‖² <= e`` as a second-order cone with a constant 1 beside ``e``, and
+Units. These rows are written in inputs divided by a scale ``s = sqrt(E / W)`` (the amplitude whose energy in
+every step of a window fills the budget; :meth:`_RollingBudget.unit_scale`), and energies divided by ``s²``: cvxpy writes ``‖x‖² <= e`` as a second-order cone with a constant 1 beside ``e``, and
 the solver's tolerances are absolute, so rows in raw units make a different cone problem for the same session in
 mA and in µA (in µA the energies are 10⁶ times larger, and the solver stopped 0.0065 µA past an amplitude bound).
-In units of ``s`` the cone problem is the same in any unit; the checks (:meth:`excess`, :meth:`blend`) stay in the
+In units of ``s`` the cone problem is the same in any unit, and the per-step energies are of order one
+(the largest amplitude bound as ``s`` left them ~1e-3 for tight budgets, and the solver then broke the budget by
+2e-4 of it); the checks (:meth:`excess`, :meth:`blend`) stay in the
 raw units and exact.
 """
 
@@ -100,6 +102,10 @@ class _RollingBudget:
         return lo * u + (1.0 - lo) * safe
 
     # ------------------------------------------------------------------------------------ cvxpy
+    def unit_scale(self) -> float:
+        """The input scale of the cone rows: the amplitude whose energy in every step of a window fills the budget."""
+        return float(np.sqrt(self.budget / self.window)) if self.budget > 0 else 1.0
+
     def constraints(self, u, m: int, scale: float = 1.0) -> list:
         """The window constraints on the stacked inputs ``u`` (N·m,) in units of ``scale`` (energies in units of
         ``scale²``, see the module notes); sets ``self.left``, the budget Parameter."""

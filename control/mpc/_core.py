@@ -17,7 +17,8 @@ their cost by ``σ`` (a Parameter, so they stay DPP) chosen per plan so that the
 of order one; the minimiser is the same.
 
 Units. The solver's tolerances are absolute, so the cvxpy problem's hard input rows (amplitude, slew, energy budget)
-are written in units of the largest amplitude bound: the same session in mA and in µA then gives the same cone
+are written in units of the largest amplitude bound (the energy budget's rows in their own unit, see
+:mod:`~stimsteer.control.mpc._budget`): the same session in mA and in µA then gives the same cone
 problem up to the cost's own scaling, and the solver stops equally close to a bound in physical terms. The answer
 is checked and projected in the controller's units, exactly as before.
 """
@@ -196,7 +197,7 @@ class _PredictiveController(BaseEstimator):
             Dm, lim = self._slew_rows
             cons += [Dm @ u / rs <= lim / rs, Dm @ u / rs >= -lim / rs]
         if self._budget is not None:
-            cons += self._budget.constraints(u, m, rs)
+            cons += self._budget.constraints(u, m, self._budget.unit_scale())
         slack = None
         if self._idx_b.size:
             slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
