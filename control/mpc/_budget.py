@@ -20,13 +20,13 @@ In the cvxpy problem the windows are linear in per-step energies ``e_k >= ‖u_k
 the problem stays DPP.
 
 Units. These rows are written in inputs divided by a scale ``s = sqrt(E / W)`` (the amplitude whose energy in
-every step of a window fills the budget; :meth:`_RollingBudget.unit_scale`), and energies divided by ``s²``: cvxpy writes ``‖x‖² <= e`` as a second-order cone with a constant 1 beside ``e``, and
-the solver's tolerances are absolute, so rows in raw units make a different cone problem for the same session in
-mA and in µA (in µA the energies are 10⁶ times larger, and the solver stopped 0.0065 µA past an amplitude bound).
-In units of ``s`` the cone problem is the same in any unit, and the per-step energies are of order one
-(the largest amplitude bound as ``s`` left them ~1e-3 for tight budgets, and the solver then broke the budget by
-2e-4 of it); the checks (:meth:`excess`, :meth:`blend`) stay in the
-raw units and exact.
+every step of a window fills the budget; :meth:`_RollingBudget.unit_scale`), and energies divided by ``s²``.
+cvxpy writes ``‖x‖² <= e`` as a second-order cone with a constant 1 beside ``e``, and the solver's tolerances are
+absolute, so rows in raw units make a different cone problem for the same session in mA and in µA (in µA the
+energies are 10⁶ times larger, and the solver stopped 0.0065 µA past an amplitude bound). In units of ``s`` the
+cone problem is the same in any unit and the per-step energies are of order one (the largest amplitude bound as
+``s`` left them ~1e-3 for tight budgets, and the solver then broke the budget by 2e-4 of it). The checks
+(:meth:`excess`, :meth:`blend`) stay in the raw units and exact.
 """
 
 from __future__ import annotations
