@@ -18,6 +18,15 @@ a window, no plan can meet it, and the plan says so (status ``"infeasible"``).
 In the cvxpy problem the windows are linear in per-step energies ``e_k >= ‖u_k‖²`` and ramp energies
 ``r_t >= Σ_i max(|u_{N−1,i}| − t·slew_i, 0)²`` (convex), with the budget left by the applied past as a Parameter:
 the problem stays DPP.
+
+Units. These rows are written in inputs divided by a scale ``s = sqrt(E / W)`` (the amplitude whose energy in
+every step of a window fills the budget; :meth:`_RollingBudget.unit_scale`), and energies divided by ``s²``.
+cvxpy writes ``‖x‖² <= e`` as a second-order cone with a constant 1 beside ``e``, and the solver's tolerances are
+absolute, so rows in raw units make a different cone problem for the same session in mA and in µA (in µA the
+energies are 10⁶ times larger, and the solver stopped 0.0065 µA past an amplitude bound). In units of ``s`` the
+cone problem is the same in any unit and the per-step energies are of order one (the largest amplitude bound as
+``s`` left them ~1e-3 for tight budgets, and the solver then broke the budget by 2e-4 of it). The checks
+(:meth:`excess`, :meth:`blend`) stay in the raw units and exact.
 """
 
 from __future__ import annotations
@@ -93,24 +102,30 @@ class _RollingBudget:
         return lo * u + (1.0 - lo) * safe
 
     # ------------------------------------------------------------------------------------ cvxpy
-    def constraints(self, u, m: int) -> list:
-        """The window constraints on the stacked inputs ``u`` (N·m,); sets ``self.left``, the budget Parameter."""
-        N = self.N
-        self.left = cp.Parameter(self.Mp.shape[0], name="energy_budget_left_ua2")
-        e = cp.Variable(N, nonneg=True, name="step_energy_ua2")
-        U = cp.reshape(u, (N, m), order="C")
+    def unit_scale(self) -> float:
+        """The input scale of the cone rows: the amplitude whose energy in every step of a window fills the budget."""
+        return float(np.sqrt(self.budget / self.window)) if self.budget > 0 else 1.0
+
+    def constraints(self, u, m: int, scale: float = 1.0) -> list:
+        """The window constraints on the stacked inputs ``u`` (N·m,) in units of ``scale`` (energies in units of
+        ``scale²``, see the module notes); sets ``self.left``, the budget Parameter."""
+        N, s = self.N, float(scale)
+        self.row_scale = s
+        self.left = cp.Parameter(self.Mp.shape[0], name="energy_budget_left_scaled")
+        e = cp.Variable(N, nonneg=True, name="step_energy_scaled")
+        U = cp.reshape(u, (N, m), order="C") / s
         cons = [cp.sum(cp.square(U), axis=1) <= e]
         lhs = self.Mp @ e
         if self.n_tail:
-            r = cp.Variable(self.n_tail, nonneg=True, name="ramp_energy_ua2")
+            r = cp.Variable(self.n_tail, nonneg=True, name="ramp_energy_scaled")
             a = cp.abs(U[N - 1, :])
             idx = np.flatnonzero(self.fin)
-            cons += [cp.sum(cp.square(cp.pos(a[idx] - t * self.slew[idx]))) <= r[t - 1]
+            cons += [cp.sum(cp.square(cp.pos(a[idx] - t * self.slew[idx] / s))) <= r[t - 1]
                      for t in range(1, self.n_tail + 1)]
             lhs = lhs + self.Mr @ r
         cons.append(lhs <= self.left)
         return cons
 
     def assign(self, hist) -> None:
-        """The budget left in each window by the applied past."""
-        self.left.value = self.budget - self.Mh @ hist
+        """The budget left in each window by the applied past (in units of the rows' ``scale²``)."""
+        self.left.value = (self.budget - self.Mh @ hist) / getattr(self, "row_scale", 1.0) ** 2

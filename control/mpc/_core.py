@@ -15,6 +15,12 @@ Scaling. Targets far from what the inputs can reach (1e6 against ±30 µA) make 
 its curvature, and an interior-point solver may then call a feasible problem infeasible. The cvxpy problems divide
 their cost by ``σ`` (a Parameter, so they stay DPP) chosen per plan so that the cost's slope over the input box is
 of order one; the minimiser is the same.
+
+Units. The solver's tolerances are absolute, so the cvxpy problem's hard input rows (amplitude, slew, energy budget)
+are written in units of the largest amplitude bound (the energy budget's rows in their own unit, see
+:mod:`~stimsteer.control.mpc._budget`): the same session in mA and in µA then gives the same cone
+problem up to the cost's own scaling, and the solver stops equally close to a bound in physical terms. The answer
+is checked and projected in the controller's units, exactly as before.
 """
 
 from __future__ import annotations
@@ -128,6 +134,10 @@ class _PredictiveController(BaseEstimator):
                                                                            self._slew)
         self._hist = None
         self._scale = max(1.0, float(np.max(np.abs(np.concatenate([self._lo, self._hi])))))
+        # the cone problem's input rows are written in units of the largest amplitude bound (see "Units")
+        bounds = np.abs(np.concatenate([self._lo, self._hi]))
+        bounds = bounds[np.isfinite(bounds) & (bounds > 0)]
+        self._row_scale = float(np.max(bounds)) if bounds.size else 1.0
         self._Ru = sla.block_diag(*[_sqrt_weight("input_weight", self.input_weight, m)] * N)
         try:
             penalty = float(self.output_penalty)
@@ -179,14 +189,15 @@ class _PredictiveController(BaseEstimator):
         right-hand sides of the upper and lower output rows (Parameters or constants).
         """
         N, m = self.horizon_steps_, self.n_inputs_
-        self._lb = cp.Parameter(N * m, name="step_lower_ua")
-        self._ub = cp.Parameter(N * m, name="step_upper_ua")
-        cons = [u >= self._lb, u <= self._ub]
+        rs = self._row_scale
+        self._lb = cp.Parameter(N * m, name="step_lower_scaled")
+        self._ub = cp.Parameter(N * m, name="step_upper_scaled")
+        cons = [u / rs >= self._lb, u / rs <= self._ub]
         if self._slew_rows is not None:
             Dm, lim = self._slew_rows
-            cons += [Dm @ u <= lim, Dm @ u >= -lim]
+            cons += [Dm @ u / rs <= lim / rs, Dm @ u / rs >= -lim / rs]
         if self._budget is not None:
-            cons += self._budget.constraints(u, m)
+            cons += self._budget.constraints(u, m, self._budget.unit_scale())
         slack = None
         if self._idx_b.size:
             slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
@@ -354,7 +365,7 @@ class _PredictiveController(BaseEstimator):
     def _solve_cvxpy(self, offsets, lb, ub):
         self._set_cost_scale(offsets)
         self._assign(offsets)
-        self._lb.value, self._ub.value = lb.reshape(-1), ub.reshape(-1)
+        self._lb.value, self._ub.value = lb.reshape(-1) / self._row_scale, ub.reshape(-1) / self._row_scale
         if self._budget is not None:
             self._budget.assign(self._hist)
         opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))

@@ -156,3 +156,31 @@ def test_plan_takes_the_description_recorded_in_the_model(models, tmp_path):
     r = run_cli("plan", models["mA"], "--target", "r1=50", "--limits", lim, "--out", tmp_path / "out2",
                 "--horizon-steps", "30")
     assert r.code == 2 and "--stimulation FILE" in r.err and not (tmp_path / "out2").exists(), r
+
+
+@pytest.mark.parametrize("window", [("0.5", "2.0"), ("0.3", "2.1")])
+def test_a_binding_charge_rate_window_plans_the_same_pulses_from_ma_and_ua(models, tmp_path, window):
+    """The unit round trip of issue 16 with the charge-rate window binding: both plans optimal, exit 0, and the same
+    pulse list in µA to 1e-3 µA (1/200 000 of the 200 µA bound). Before the cone rows were scaled by the amplitude
+    bound (control/mpc/_core.py, _budget.py), the µA plans came back "optimal_inaccurate" up to 0.085 µA (window
+    0.5 s) and 0.012 µA (0.3 s) away from the mA plans, and other windows failed (safe fallback, exit 3) with an
+    amplitude 0.0065 µA past its bound. Common practice (the same physical problem gives the same plan), no source."""
+    window_s, rate = window
+    tables = {}
+    for unit in ("mA", "uA"):
+        (tmp_path / unit).mkdir()
+        stim, lim = _files(tmp_path / unit, unit=unit, top=f"window_s = {window_s}\ncharge_rate_max_uc_per_s = {rate}")
+        out = tmp_path / unit / "out"
+        r = _plan(models[unit], stim, lim, out)
+        assert r.code == 0, r
+        rec = json.loads((out / "plan.json").read_text())
+        assert rec["status"] == "optimal" and not rec["fallback"], rec["message"]
+        assert rec["active_counts"]["energy_budget"] == 1  # the window binds
+        assert rec["energy_window_max_ua2"] <= rec["limits"]["energy_budget_ua2"] * (1 + 1e-12)
+        assert rec["pulse_plan"]["all_checks_passed"]
+        tables[unit] = pd.read_csv(out / "plan_pulses.csv", comment="#")
+    a, b = tables["mA"], tables["uA"]
+    assert len(a) == len(b) > 0
+    assert np.allclose(a["onset_s"], b["onset_s"], rtol=0, atol=1e-12)
+    assert np.max(np.abs(a["amplitude_ua"] - b["amplitude_ua"])) <= 1e-3
+    assert np.max(a["amplitude_ua"]) <= 200.0 and np.max(b["amplitude_ua"]) <= 200.0
