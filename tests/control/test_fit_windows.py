@@ -52,6 +52,7 @@ def _table(out):
     return rows
 
 
+@pytest.mark.slow
 def test_window_gains_follow_a_gain_that_doubles_halfway(session_file, tmp_path, capsys):
     # Outside check: the true step gain is known by construction, B (1 - A^50) / (1 - A) before the change and
     # twice that after (geometric sum of the impulse response; common practice, no source).
@@ -108,7 +109,7 @@ def test_forgetting_reaches_the_recursive_model(session_file, tmp_path, capsys):
     out = tmp_path / "r.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "recursive", "--forgetting", "0.97",
                  "--out", str(out)]) == 0
-    pred = load_predictor(out)
+    pred, _ = load_predictor(out)
     assert pred.forgetting == pytest.approx(0.97)
     # forgetting ~0.97 remembers ~33 samples: the model ends on the doubled gain of the last trials (by construction)
     assert step_gains(pred)[0, 0] == pytest.approx(2 * B * (1 - A ** 50) / (1 - A), rel=0.15)
@@ -118,7 +119,7 @@ def test_dictionary_settings_reach_the_lifted_model(session_file, tmp_path, caps
     out = tmp_path / "l.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "lifted", "--past-steps", "1",
                  "--dictionary", "rbf", "--dictionary-size", "10", "--out", str(out)]) == 0
-    pred = load_predictor(out)
+    pred, _ = load_predictor(out)
     assert pred.dictionary == "rbf" and pred.n_features_ == 10
 
 
