@@ -86,7 +86,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--dictionary-size", dest="dictionary_size", type=whole_number(0), metavar="N",
                    help="lifted: number of features (default: chosen by cross-validation from 0, 25, 50, 100)")
     p.add_argument("--knots", type=whole_number(3), metavar="N",
-                   help="hammerstein: knots of each site's monotone recruitment spline (default 7)")
+                   help="hammerstein: knots of each site's piecewise-linear recruitment map (default 7)")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
     p.add_argument("--order-figure", dest="order_figure", metavar="PNG",
                    help="also write the order choice as a figure: held-out error against order beside the singular "
