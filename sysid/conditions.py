@@ -19,7 +19,7 @@ from .ensemble import BootstrapEnsemble, _route_of
 from .exceptions import InvalidParameterError, SessionError
 
 __all__ = ["ConditionFits", "trial_conditions", "fit_per_condition", "sliding_window_fits", "step_gains",
-           "condition_change_table", "METADATA_KEY"]
+           "condition_change_table", "window_change_table", "METADATA_KEY"]
 
 #: Session metadata key holding one condition label per trial.
 METADATA_KEY = "trial_conditions"
@@ -161,16 +161,67 @@ def condition_change_table(session, *, method="arx", method_settings=None, condi
         all its trials), ``low``, ``high`` (the ``level`` percentile interval over the bootstrap members).
     """
     fits = fit_per_condition(session, method=method, method_settings=method_settings, conditions=conditions)
-    q = [(1.0 - float(level)) / 2.0, (1.0 + float(level)) / 2.0]
     rows = []
     for k, (c, model) in enumerate(fits.models.items()):
-        ens = BootstrapEnsemble(method=method, method_settings=method_settings, n_members=n_members,
-                                seed=int(seed) + k).fit(session.select_trials(fits.trials[c]))
-        members = np.stack([step_gains(mb, horizon_steps) for mb in ens.members_])
-        point = step_gains(model, horizon_steps)
-        lo, hi = np.quantile(members, q, axis=0)
-        for i, out in enumerate(model.output_names_):
-            for j, inp in enumerate(model.input_names_):
-                rows.append({"condition": c, "n_trials": len(fits.trials[c]), "output": out, "input": inp,
-                             "step_gain": point[i, j], "low": lo[i, j], "high": hi[i, j]})
+        sub = session.select_trials(fits.trials[c])
+        rows += _gain_rows({"condition": c, "n_trials": len(fits.trials[c])}, model, sub, method, method_settings,
+                           n_members, int(seed) + k, horizon_steps, level)
+    return pd.DataFrame(rows)
+
+
+def _gain_rows(head, model, session, method, method_settings, n_members, seed, horizon_steps, level) -> list:
+    """Rows ``head + output, input, step_gain, low, high``: the model's step gains and their bootstrap interval over
+    the trials of ``session`` (the ones the model was fitted on)."""
+    q = [(1.0 - float(level)) / 2.0, (1.0 + float(level)) / 2.0]
+    ens = BootstrapEnsemble(method=method, method_settings=method_settings, n_members=n_members,
+                            seed=seed).fit(session)
+    members = np.stack([step_gains(mb, horizon_steps) for mb in ens.members_])
+    point = step_gains(model, horizon_steps)
+    lo, hi = np.quantile(members, q, axis=0)
+    return [{**head, "output": out, "input": inp, "step_gain": point[i, j], "low": lo[i, j], "high": hi[i, j]}
+            for i, out in enumerate(model.output_names_) for j, inp in enumerate(model.input_names_)]
+
+
+def window_change_table(session, *, method="arx", method_settings=None, window_trials=4, step_trials=None,
+                        trials=None, n_members=20, seed=0, horizon_steps=50, level=0.95) -> pd.DataFrame:
+    """Step gains per sliding window of consecutive trials, with bootstrap intervals over each window's trials.
+
+    Parameters
+    ----------
+    session : Session
+    method : str, default "arx"
+    method_settings : dict, optional
+    window_trials : int, default 4
+        Trials per window; at least 2 (a window's interval resamples its trials).
+    step_trials : int, optional
+        Trials between the starts of two windows (default ``window_trials``: windows that do not overlap).
+    trials : sequence of int, optional
+        The trials to window over, in this order (default all; ``fit`` passes its training trials).
+    n_members, seed, horizon_steps, level
+        As in :func:`condition_change_table`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``window`` (0, 1, ...), ``trials`` (first-last trial index of the session), ``n_trials``, ``output``,
+        ``input``, ``step_gain`` (the window's model), ``low``, ``high``.
+
+    Raises
+    ------
+    InvalidParameterError
+        A window below 2 trials or longer than the trials given, or a step below 1.
+    """
+    idx = tuple(range(session.n_trials)) if trials is None else tuple(int(t) for t in trials)
+    W = int(window_trials)
+    S = W if step_trials is None else int(step_trials)
+    if W < 2 or W > len(idx) or S < 1:
+        raise InvalidParameterError(f"a window needs 2 to {len(idx)} trials (the trials it slides over) and a step of "
+                                    f"at least 1 trial; got {window_trials!r} trials and a step of {S!r}.")
+    sub = session.select_trials(idx)
+    fits = sliding_window_fits(sub, method=method, method_settings=method_settings, window_trials=W, step_trials=S)
+    rows = []
+    for k, (local, model) in enumerate(fits):
+        head = {"window": k, "trials": f"{idx[local[0]]}-{idx[local[-1]]}", "n_trials": len(local)}
+        rows += _gain_rows(head, model, sub.select_trials(local), method, method_settings, n_members,
+                           int(seed) + k, horizon_steps, level)
     return pd.DataFrame(rows)

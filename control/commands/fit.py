@@ -27,6 +27,22 @@ def _fraction(text):
     return value
 
 
+def _forgetting(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number in (0, 1]; got {text!r}") from None
+    if not 0.0 < value <= 1.0:
+        raise argparse.ArgumentTypeError(f"expected a number in (0, 1] (1 = no forgetting; 0.99 remembers about 100 "
+                                         f"samples); got {value:g}")
+    return value
+
+
+#: Method settings from the command line: option (argparse dest), the method that takes it, the setting it feeds.
+_METHOD_OPTIONS = (("forgetting", "recursive", "forgetting"), ("dictionary", "lifted", "dictionary"),
+                   ("dictionary_size", "lifted", "n_features"), ("knots", "hammerstein", "n_knots"))
+
+
 def add_parser(subparsers) -> None:
     """Declare ``stimsteer fit`` and its options."""
     p = subparsers.add_parser("fit", help="fit a predictor on training trials, score it on held-out trials, save it")
@@ -55,6 +71,22 @@ def add_parser(subparsers) -> None:
     p.add_argument("--conditions", action="store_true",
                    help="also report how the model changes across conditions (trial labels in the session's "
                    "metadata 'trial_conditions'): step gains per condition with 95 %% bootstrap intervals")
+    p.add_argument("--trial-windows", dest="trial_windows", type=whole_number(2), metavar="K",
+                   help="also report how the model changes over the session: one model per window of K consecutive "
+                   "training trials, its step gains with 95 %% bootstrap intervals over the window's trials")
+    p.add_argument("--window-step", dest="window_step", type=whole_number(1), metavar="S",
+                   help="with --trial-windows: trials between the starts of two windows (default K: windows that do "
+                   "not overlap)")
+    p.add_argument("--forgetting", type=_forgetting, metavar="F",
+                   help="recursive: forgetting factor in (0, 1] (default 1, no forgetting; 0.99 remembers about 100 "
+                   "samples)")
+    p.add_argument("--dictionary", choices=["rff", "rbf", "poly2"],
+                   help="lifted: features of the past window: random Fourier (rff, default), radial (rbf) or every "
+                   "product of two entries (poly2)")
+    p.add_argument("--dictionary-size", dest="dictionary_size", type=whole_number(0), metavar="N",
+                   help="lifted: number of features (default: chosen by cross-validation from 0, 25, 50, 100)")
+    p.add_argument("--knots", type=whole_number(3), metavar="N",
+                   help="hammerstein: knots of each site's piecewise-linear recruitment map (default 7)")
     p.add_argument("--force", action="store_true", help="replace an existing model file")
     p.add_argument("--order-figure", dest="order_figure", metavar="PNG",
                    help="also write the order choice as a figure: held-out error against order beside the singular "
@@ -74,6 +106,16 @@ def _settings(args) -> dict:
             raise InvalidParameterError("--centre-outputs is for the subspace, lsq and hankel methods; ridge ARX fits "
                                         "an intercept of its own.")
         settings["centre_outputs"] = True
+    for dest, method, name in _METHOD_OPTIONS:
+        value = getattr(args, dest, None)
+        if value is None:
+            continue
+        if args.method != method:
+            raise InvalidParameterError(f"--{dest.replace('_', '-')} is for the {method} method; drop it or use "
+                                        f"--method {method}.")
+        settings[name] = value
+    if getattr(args, "window_step", None) is not None and getattr(args, "trial_windows", None) is None:
+        raise InvalidParameterError("--window-step needs --trial-windows K (the trials per window).")
     return settings
 
 
@@ -153,11 +195,13 @@ def _fit(args, settings):
         takes_past = "past_steps" in _factory(args.route, args.method).parameters()
         if past is not None and (args.past is not None or takes_past):
             settings = {**settings, "past_steps": past}  # a default only to a method that takes a past window
+        _check_windows(args, session)  # refused before the fit
+        plain = settings
         try:
             route, method, settings = _bootstrapped(args, settings)
             result = fit_route(session, route=route, method=method, settings=settings, seed=args.seed,
                                test_fraction=args.test_fraction, horizon_steps=horizon)
-            lines = _uncertainty_lines(args, result, session)
+            lines = _uncertainty_lines(args, result, session, plain) + _window_lines(args, result, session, plain)
         except (InvalidParameterError, SessionError) as exc:
             # the estimator names its own settings; say which option set them
             given = [f"{value.option or '--' + name} {value}" for name, value in (("past", args.past),
@@ -179,7 +223,7 @@ def _bootstrapped(args, settings):
     return "indirect", "bootstrap", {"method": args.method, "method_settings": settings, "n_members": int(n)}
 
 
-def _uncertainty_lines(args, result, session) -> list:
+def _uncertainty_lines(args, result, session, given=None) -> list:
     """The ensemble's held-out interval coverage and, with ``--conditions``, the change across conditions."""
     from ...sysid import IntervalForm, condition_change_table, interval_coverage
     from ...sysid.trial_sources import _subsets
@@ -196,10 +240,41 @@ def _uncertainty_lines(args, result, session) -> list:
     if getattr(args, "conditions", False):
         whole = session if hasattr(session, "select_trials") else session.to_session()
         settings = dict(result.provenance.get("settings") or {})
-        inner = settings.get("method_settings") if isinstance(pred, IntervalForm) else None
+        inner = settings.get("method_settings") if isinstance(pred, IntervalForm) else given  # the options given
         table = condition_change_table(whole, method=args.method, method_settings=inner, seed=args.seed,
                                        n_members=int(getattr(args, "bootstrap", None) or 20))
         lines.append("model change across conditions (step gain after 50 samples, 95 % bootstrap interval over each "
                      "condition's trials):")
         lines.append(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
     return lines
+
+
+def _check_windows(args, session) -> None:
+    """``--trial-windows K`` must leave at least one window in the training trials of the split."""
+    from ...sysid.trial_sources import _split
+
+    K = getattr(args, "trial_windows", None)
+    if K is None:
+        return
+    n_train = len(_split(session, None, args.test_fraction, args.seed).train)
+    if K > n_train:
+        raise InvalidParameterError(f"--trial-windows {K} is more than the {n_train} training trials (of "
+                                    f"{session.n_trials}, with --test-fraction {args.test_fraction:g}); give 2 to "
+                                    f"{n_train} trials per window.")
+
+
+def _window_lines(args, result, session, settings) -> list:
+    """With ``--trial-windows K``: the step gains per window of training trials with their bootstrap intervals."""
+    from ...sysid.conditions import window_change_table
+
+    K = getattr(args, "trial_windows", None)
+    if K is None:
+        return []
+    whole = session if hasattr(session, "select_trials") else session.to_session()
+    table = window_change_table(whole, method=args.method, method_settings=settings, window_trials=K,
+                                step_trials=args.window_step, trials=result.split.train, seed=args.seed,
+                                n_members=int(getattr(args, "bootstrap", None) or 20))
+    step = args.window_step or K
+    return [f"model change over the session ({K} consecutive training trials per window, windows {step} trial(s) "
+            "apart; step gain after 50 samples, 95 % bootstrap interval over each window's trials):",
+            table.to_string(index=False, float_format=lambda v: f"{v:.4g}")]
