@@ -383,8 +383,9 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
         longest = max(b - a for a, b in segs)
         raise SessionError(
             f"the past window + horizon ({past} + {horizon} = {window} samples) is longer than every valid "
-            f"segment of every trial (the longest is {longest}). Shorten past_steps or horizon_steps, or record "
-            "longer trials with fewer gaps."
+            f"segment of every trial (the longest is {longest}). Shorten the past window or "
+            "the horizon (--past/--horizon; past_steps/horizon_steps in the API), or record longer trials with "
+            "fewer gaps."
         )
     order = pe_order(u, segs, max_order=required, tol_factor=tol_factor)
     if order < window:

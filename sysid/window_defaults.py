@@ -169,7 +169,11 @@ class WindowDefaults:
             caps = (f"; capped at {PAST_CAP_STEPS} (past) and {HORIZON_CAP_STEPS} (horizon) samples and at "
                     f"{ROWS_CAP} for (past + horizon) x channels, which shortened the {' and the '.join(self.capped)}"
                     " (fits grow with the square of the window; give --past/--horizon for longer windows)")
-        return f"windows (default, from the data): {parts} at {r:g} Hz: {origin}{caps}."
+        given = [k for k, (_, g) in shown.items() if g]
+        head = ("default, from the data" if not given else
+                "as given" if len(given) == 2 else
+                f"{given[0]} as given, {'horizon' if given[0] == 'past' else 'past'} from the data")
+        return f"windows ({head}): {parts} at {r:g} Hz: {origin}{caps}."
 
 
 def _acf_segments(session, max_lag: int) -> np.ndarray | None:

@@ -97,11 +97,12 @@ def run(args) -> int:
         artifacts = _report(session, args)
         if artifacts is not None and artifacts.flagged:
             summary = dataclasses.replace(summary, warnings=tuple(summary.warnings) + tuple(artifacts.warnings()))
+        gaps = tuple(gap_lines(session.metadata))  # masked rows are a note under the verdict, not a problem
+        if gaps:
+            summary = dataclasses.replace(summary, notes=tuple(summary.notes) + gaps)
         print(summary.to_text())
         if blanked_text(session):
             print(blanked_text(session))
-        for line in gap_lines(session.metadata):
-            print(line)
         if window_note:
             print(window_note)
         print(excitation_report(session, past_steps=past, horizon_steps=horizon, n_states=args.states).to_text())

@@ -235,8 +235,9 @@ class _DirectPredictor(BasePredictor):
         if longest < L:
             raise SessionError(
                 f"the past window + horizon ({past} + {horizon} = {L} samples) is longer than every valid segment "
-                f"of every trial (the longest is {longest}). Shorten past_steps or horizon_steps, or record longer "
-                "trials with fewer gaps."
+                f"of every trial (the longest is {longest}). Shorten the past window or "
+                "the horizon (--past/--horizon; past_steps/horizon_steps in the API), or record longer trials "
+                "with fewer gaps."
             )
         return past, horizon
 

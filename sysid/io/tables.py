@@ -213,6 +213,9 @@ def _parse_header(columns, path: Path) -> dict:
                 raise FileFormatError(f"{path}: column {col!r} needs a channel name and a unit, as in "
                                       "'out:lfp_1 [mV]' (use [a.u.] for arbitrary units).")
             out[ch["role"]].append((col, ch["name"], ch["unit"].strip()))
+        elif col.strip().lower() in ("time", "time_s", "time (s)"):
+            raise FileFormatError(f"{path}: column {col!r} looks like the time column but has no unit; write it as "
+                                  "'time [s]' (optionally 'time [s] @ <rate> Hz').")
         elif _ROLE_RE.match(col):
             raise FileFormatError(f"{path}: column {col!r} has no unit; units are required in this layout. "
                                   f"Write it as '{col.strip()} [<unit>]' (use [a.u.] for arbitrary units).")

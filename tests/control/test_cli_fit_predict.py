@@ -220,7 +220,8 @@ def test_direct_fit_without_its_windows_takes_them_from_the_data_and_says_so(ses
     out2 = tmp_path / "d2.h5"
     assert main(["fit", str(session_file), "--route", "direct", "--method", method, "--out", str(out2),
                  "--past-steps", "3"]) == 0
-    assert "windows (default, from the data)" in capsys.readouterr().out  # the horizon still came from the data
+    # the horizon still came from the data, and the line says which window was given (it used to say "default")
+    assert "windows (past as given, horizon from the data)" in capsys.readouterr().out
     from stimsteer.sysid import load_predictor
     assert load_predictor(out2)[0].past_steps_ == 3
 

@@ -181,6 +181,32 @@ def test_empty_cells_without_a_valid_column_are_masked_and_inspect_says_where(fi
     assert main(["inspect", files["csv"], "--past", "20ms", "--horizon", "20ms"]) == 0
     printed = capsys.readouterr().out
     assert "gap: 50 sample(s) of out:ch_03 are empty cells, first at t = 1.2 s" in printed
+    # a masked gap is a note under the verdict; it used to be printed below "No problems found."
+    lines = printed.splitlines()
+    gap_at = next(i for i, ln in enumerate(lines) if "gap: 50 sample(s)" in ln)
+    assert lines[gap_at].startswith("  - gap:") and "Notes:" in lines[:gap_at]
+
+
+def test_a_time_column_without_its_unit_is_named_with_the_spelling_to_use(tmp_path, capsys):
+    # found trying it as a newcomer: 'time' without [s] gave "missing ['time']; not recognised ['time']"
+    path = tmp_path / "t.csv"
+    pd.DataFrame({"time": np.arange(40) / 100.0, "trial": 0, "in:s [uA]": 1.0,
+                  "out:c [uV]": np.arange(40.0)}).to_csv(path, index=False)
+    assert main(["inspect", str(path)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "'time' looks like the time column but has no unit" in err
+    assert "write it as 'time [s]'" in err and "not recognised" not in err
+
+
+def test_the_window_line_says_which_window_was_given(files, capsys):
+    # found trying it as a newcomer: "windows (default, from the data)" headed a line whose past was given
+    assert main(["inspect", files["h5"], "--drop", DEAD, "--past", "20ms"]) == 0
+    assert "windows (past as given, horizon from the data): past 20 samples (20 ms, as given)" in \
+        capsys.readouterr().out
+    assert main(["inspect", files["h5"], "--drop", DEAD, "--horizon", "10ms"]) == 0
+    assert "windows (horizon as given, past from the data)" in capsys.readouterr().out
+    assert main(["inspect", files["h5"], "--drop", DEAD, "--past", "20ms", "--horizon", "10ms"]) == 0
+    assert "windows (" not in capsys.readouterr().out  # nothing came from the data: no line
 
 
 def test_a_nan_at_a_valid_sample_names_the_channel_and_the_time():
