@@ -64,7 +64,6 @@ from .model import ModelPredictiveController
 from .data import DataPredictiveController
 from .dispatch import controller_for
 from .target import parse_target
-from .fastqp import _SILENT, _osqp_settings  # noqa: F401  (benchmarks/bench_control.py imports them from here)
 
 __all__ = [
     "Plan",
