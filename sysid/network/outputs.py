@@ -32,6 +32,7 @@ import numpy as np
 from ..exceptions import SessionError
 from .controllability import _gramian, _reach, _require_stable
 from .energy import _check_rtol, _solve_energy
+from .ranking import RankedSets
 from .systems import _as_model, _check_horizon, _frozen, _output_offset, _site_indices
 
 __all__ = ["output_gramian", "output_controllability", "site_output_controllability", "output_transition",
@@ -335,7 +336,7 @@ def output_transition(system, y_target, *, horizon_steps: int, y_start=None, sit
 
 
 @dataclass(frozen=True)
-class OutputSiteRanking:
+class OutputSiteRanking(RankedSets):
     """Single sites and site sets ranked by the least energy that gives an output pattern (coordinate-free).
 
     Attributes
@@ -349,26 +350,6 @@ class OutputSiteRanking:
     reachable : ndarray of bool
     horizon_steps : int
     """
-
-    sets: tuple
-    names: tuple
-    size: np.ndarray
-    energy: np.ndarray
-    residual: np.ndarray
-    reachable: np.ndarray
-    horizon_steps: int
-
-    @property
-    def n_unreachable(self) -> int:
-        return int(np.sum(~self.reachable))
-
-    def to_frame(self):
-        """A table, one row per site set, best first."""
-        import pandas as pd
-
-        return pd.DataFrame({"rank": np.arange(1, len(self.sets) + 1), "sites": list(self.names),
-                             "n_sites": self.size, "energy": self.energy, "reachable": self.reachable,
-                             "residual": self.residual})
 
 
 def site_sets(n_sites: int, max_set_size: int) -> list:

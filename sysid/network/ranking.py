@@ -22,7 +22,32 @@ _MAX_SETS = 200_000
 
 # ---------------------------------------------------------------------------------------------------- ranking
 @dataclass(frozen=True)
-class SiteRanking:
+class RankedSets:
+    """What every ranking of site sets shares: its fields, the count of unreachable sets and the table, best first."""
+
+    sets: tuple
+    names: tuple
+    size: np.ndarray
+    energy: np.ndarray
+    residual: np.ndarray
+    reachable: np.ndarray
+    horizon_steps: int
+
+    @property
+    def n_unreachable(self) -> int:
+        return int(np.sum(~self.reachable))
+
+    def to_frame(self):
+        """A table (pandas DataFrame), one row per site set, best first."""
+        import pandas as pd
+
+        return pd.DataFrame({"rank": np.arange(1, len(self.sets) + 1), "sites": list(self.names),
+                             "n_sites": self.size, "energy": self.energy, "reachable": self.reachable,
+                             "residual": self.residual})
+
+
+@dataclass(frozen=True)
+class SiteRanking(RankedSets):
     """Single sites and small site sets ranked by the minimum energy they need to reach a target.
 
     Rows are sorted by energy (ascending; unreachable sets last with ``energy = inf``), then by set size.
@@ -43,27 +68,8 @@ class SiteRanking:
     x0, x_target : ndarray, shape (n_states,)
     """
 
-    sets: tuple
-    names: tuple
-    size: np.ndarray
-    energy: np.ndarray
-    residual: np.ndarray
-    reachable: np.ndarray
-    horizon_steps: int
     x0: np.ndarray
     x_target: np.ndarray
-
-    @property
-    def n_unreachable(self) -> int:
-        return int(np.sum(~self.reachable))
-
-    def to_frame(self):
-        """A table (pandas DataFrame), one row per site set, best first."""
-        import pandas as pd
-
-        return pd.DataFrame({"rank": np.arange(1, len(self.sets) + 1), "sites": list(self.names),
-                             "n_sites": self.size, "energy": self.energy, "reachable": self.reachable,
-                             "residual": self.residual})
 
 
 def rank_sites(system, x_target, *, horizon_steps: int, x0=None, max_set_size: int = 2,
