@@ -33,6 +33,7 @@ import numpy as np
 from ...sysid import (Session, SessionError, StateSpaceForm, StimsteerError, TrialSplit, impulse_responses,
                       kstep_scores, load_session, make_estimator)
 from ...sysid._records import window_stride
+from .loop import session_loop
 from .settings import StudySettings
 
 __all__ = ["SessionRef", "StudyTask", "run_task", "CACHE_VERSION"]
@@ -71,8 +72,11 @@ def task_key(kind, test: SessionRef, train, train_trials, method_index, split, s
     """SHA-256 over what the task's numbers depend on: the data (hashes and trials drawn), the method, the split,
     the settings."""
     drawn = [[r.content_hash, list(t)] for r, t in zip(train, train_trials)]
+    settings = st.task_dict()
+    if kind != "sessions":
+        settings.pop("control")  # only the per-session analysis steers a plant
     text = json.dumps([CACHE_VERSION, kind, test.content_hash, drawn, st.methods[method_index].to_dict(), int(split),
-                       st.task_dict()], sort_keys=True, default=str)
+                       settings], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
@@ -205,7 +209,8 @@ def _body(st: StudySettings, task: StudyTask) -> dict:
     fit_s = time.perf_counter() - t0
     n_train = train.n_trials
     del train  # before the held-out trials are read: one session's worth at a time
-    test = _centred(_load(task.test, st.channels), split.train, st).select_trials(split.test)
+    session = _centred(_load(task.test, st.channels), split.train, st)
+    test = session.select_trials(split.test)
     H = st.horizon_steps
     ks = kstep_scores(predictor, test, horizon_steps=H,
                       stride_steps=window_stride(test, int(predictor.past_steps_), H, st.max_windows)).kstep
@@ -215,6 +220,9 @@ def _body(st: StudySettings, task: StudyTask) -> dict:
            "sites": list(test.input_names), "site_energy": None}
     if task.kind == "sessions" and isinstance(predictor, StateSpaceForm):
         out["site_energy"] = _site_energy(predictor, st)
+    if task.kind == "sessions" and st.control is not None:
+        seed = _seed(st.seed, 13, task.split, int(task.test.content_hash[:12], 16))
+        out.update(session_loop(st, task, predictor, session, split, seed))
     return out
 
 
