@@ -120,16 +120,20 @@ def session_split(ref: SessionRef, split: int, st: StudySettings) -> TrialSplit:
 _LAST: dict = {}
 
 
-def _load(ref: SessionRef, channels) -> Session:
-    """The session of ``ref`` (the last one read is kept, so successive tasks on one session read it once)."""
-    if _LAST.get("key") != (ref.content_hash, channels):
-        _LAST.clear()  # before reading the next one: at most one session held
+def _load(ref: SessionRef, channels, slot: str = "scored") -> Session:
+    """The session of ``ref``. The last session read in each slot (``scored``: the session a task scores; ``pool``:
+    a session it pools trials from) is kept, so the tasks of one batch (:mod:`~.execute`) read and hash their
+    scored session once, however many sessions their pooled fits read in between."""
+    key = (ref.content_hash, channels)
+    held = _LAST.get(slot)
+    if held is None or held[0] != key:
+        _LAST.pop(slot, None)  # before reading the next one: one session per slot
         s = load_session(ref.file)
         if s.content_hash() != ref.content_hash:
             raise SessionError(f"session file {ref.file} changed since the study table was made (its content hash "
                                "differs); describe the study again.")
-        _LAST.update(key=(ref.content_hash, channels), session=_subset(s, channels))
-    return _LAST["session"]
+        _LAST[slot] = (key, _subset(s, channels))
+    return _LAST[slot][1]
 
 
 def _subset(s: Session, channels) -> Session:
@@ -155,15 +159,26 @@ def _centred(s: Session, train_trials, st: StudySettings) -> Session:
     return s.replace(y=s.y - mean)
 
 
+_POOLED: dict = {}
+
+
 def _pool(task: StudyTask, st: StudySettings) -> Session:
-    """The drawn training trials of a transfer task, read one session at a time, each centred on its own offset."""
+    """The drawn training trials of a transfer task, read one session at a time, each centred on its own offset.
+
+    The last pool is kept: the methods of one split draw the same trials, so a batch pools them once.
+    """
     if not task.train:
         raise SessionError(f"no training trials to pool for {task.kind} task {task.subject}/{task.session}.")
-    parts = []
-    for ref, trials in zip(task.train, task.train_trials):
-        s = _load(ref, st.channels)
-        parts.append(_centred(s, session_split(ref, task.split, st).train, st).select_trials(list(trials)))
-    return _concat(parts)
+    key = (task.split, tuple((r.content_hash, t) for r, t in zip(task.train, task.train_trials)), st.channels,
+           st.offsets, st.seed, st.test_fraction)
+    if _POOLED.get("key") != key:
+        _POOLED.clear()
+        parts = []
+        for ref, trials in zip(task.train, task.train_trials):
+            s = _load(ref, st.channels, slot="pool")
+            parts.append(_centred(s, session_split(ref, task.split, st).train, st).select_trials(list(trials)))
+        _POOLED.update(key=key, session=_concat(parts))
+    return _POOLED["session"]
 
 
 def _concat(parts) -> Session:
@@ -180,12 +195,23 @@ def _concat(parts) -> Session:
                          output_mask=np.concatenate([p.output_mask for p in parts]), trials=trials, metadata={})
 
 
+_THREADS: dict = {}
+
+
+def _one_thread():
+    """Single-threaded BLAS/OpenMP for the duration of a ``with``: the libraries are found once per process (a
+    fresh ``threadpool_limits`` scans the loaded libraries each time, ~40 ms under load, as long as a small task)."""
+    if "controller" not in _THREADS:
+        from threadpoolctl import ThreadpoolController
+
+        _THREADS["controller"] = ThreadpoolController()
+    return _THREADS["controller"].limit(limits=1)
+
+
 def run_task(st: StudySettings, task: StudyTask) -> dict:
     """Run one task with single-threaded BLAS; a toolkit error is returned as the task's result, not raised."""
-    from threadpoolctl import threadpool_limits
-
     t0 = time.perf_counter()
-    with threadpool_limits(limits=1), warnings.catch_warnings(record=True) as caught:
+    with _one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             out = _body(st, task)
