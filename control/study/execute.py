@@ -107,7 +107,8 @@ def execute_tasks(st: StudySettings, tasks, *, cache: TaskCache | None = None, s
     -------
     results : dict of str to dict
     execution : dict
-        ``mode``, ``n_workers``, ``n_tasks``, ``n_cached``, ``n_computed``, ``n_retries``.
+        ``mode``, ``n_workers``, ``n_tasks``, ``n_cached``, ``n_computed``, ``n_retries``, ``n_batches`` (sent to
+        workers: one per analysis and scored session with tasks to compute).
     """
     results, missing = {}, {}
     for t in tasks:
@@ -134,7 +135,8 @@ def execute_tasks(st: StudySettings, tasks, *, cache: TaskCache | None = None, s
             n = max(1, min(n, len(todo)))
             retries = _run_local(st, todo, n, keep, bar)
             info = {"mode": "sequential" if n == 1 else "local processes", "n_workers": n}
-    info.update(n_tasks=len({t.key for t in tasks}), n_cached=n_cached, n_computed=len(todo), n_retries=retries)
+    info.update(n_tasks=len({t.key for t in tasks}), n_cached=n_cached, n_computed=len(todo), n_retries=retries,
+                n_batches=len(batches(todo)))
     return results, info
 
 

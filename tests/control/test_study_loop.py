@@ -141,3 +141,12 @@ def test_the_page_and_tables_show_the_closed_loop(study, tmp_path, capsys):
     assert tasks["tracking_rms"].notna().all()
     assert any((out / "figures").glob("forest_loop_tracking_*.png"))
     assert any((out / "figures").glob("forest_loop_energy_*.png"))
+
+
+def test_the_command_scores_prediction_only_when_asked(study, tmp_path, capsys):
+    out = tmp_path / "plain"
+    assert main(["study", str(study), "--out", str(out), "--quick", "--past-steps", "4", "--horizon-steps", "4",
+                 "--workers", "1", "--no-progress", "--analyses", "sessions", "--no-cache", "--no-control"]) == 0
+    assert "closed-loop" not in capsys.readouterr().out
+    assert "<h2>Closed loop</h2>" not in (out / "study.html").read_text()
+    assert pd.read_parquet(out / "tables" / "tasks.parquet")["tracking_rms"].isna().all()
