@@ -3,7 +3,9 @@
 Measured in one run (targets printed, never asserted):
 
 * the study on a Dask LocalCluster (127.0.0.1) with 1 worker and with 2 (one thread each); speed-up of 2 over 1
-  (baseline: the 1-worker cluster, same tasks), target >= 1.8; the two must give identical numbers (checked);
+  (baseline: the 1-worker cluster, same tasks), target >= 1.8; the two must give identical numbers (checked).
+  Printed beside it: the machine's own 2-vs-1 ceiling, a pure-CPU job run on the same cluster before and after each
+  study run (what any 2-worker speed-up can reach under the load of that moment), and the load average;
 * peak traced memory (tracemalloc) of the heaviest task of each analysis against the fit of the largest session
   alone (load it, fit both methods on all its trials), target <= 2;
 * a rerun after one new session was added, from the cache: tasks computed (printed with the tasks that the new
@@ -13,7 +15,8 @@ Measured in one run (targets printed, never asserted):
 Run from the repository root::
 
     .venv/bin/python benchmarks/bench_study.py [--subjects 40] [--sessions 3] [--analyses sessions,days,subjects,sites]
-        [--stages memory,speed,killed,rerun]
+        [--stages memory,speed,killed,rerun] [--splits N]
+    .venv/bin/python benchmarks/bench_study.py --speed-only     # the speed-up alone, a few minutes when quiet
 """
 
 from __future__ import annotations
@@ -35,7 +38,7 @@ from stimsteer.demo_data.make_study import StudyScenario, make_study
 from stimsteer.sysid import load_session, make_estimator
 
 NUMBERS = ["analysis", "subject", "session", "label", "split", "status", "r2_mean", "r2_step1", "r2_last",
-           "nrmse_mean", "n_train_trials"]
+           "nrmse_mean", "n_train_trials", "tracking_rms", "energy_ua2", "violations"]
 
 
 def _numbers(result) -> pd.DataFrame:
@@ -93,37 +96,64 @@ def _spin(n: int) -> float:
     return time.perf_counter() - t0
 
 
-def machine_ceiling(n: int = 6_000_000) -> float:
-    """What 2 processes gain over 1 on this machine right now: the same CPU-bound work twice, one after the other in
-    one process, then side by side in two (the ceiling any 2-worker speed-up can reach under the current load)."""
-    from concurrent.futures import ProcessPoolExecutor
+def _spin_size(seconds: float) -> int:
+    """Iterations of :func:`_spin` that take about ``seconds`` here, now."""
+    n = 200_000
+    return max(1000, int(n * seconds / max(_spin(n), 1e-6)))
 
-    with ProcessPoolExecutor(max_workers=2) as pool:
-        list(pool.map(_spin, [1000, 1000]))  # start both processes before timing
+
+def _warm() -> None:
+    """Import what a study task uses, so that neither run times a worker's one-off start-up."""
+    import stimsteer.control.study  # noqa: F401 (the study, the benchmark's closed loop, the controllers, sysid)
+
+
+def cpu_job(address: str, n_tasks: int, size: int) -> float:
+    """Wall time of ``n_tasks`` equal pure-CPU tasks submitted to the cluster at ``address``: the same path as the
+    study's batches (client, scheduler, worker processes), with nothing to read and no memory to speak of."""
+    from distributed import Client
+
+    client = Client(address, set_as_default=False)
+    try:
+        client.run(_warm)  # every worker warm
+        client.gather(client.map(_spin, [1000] * 4, pure=False))
         t0 = time.perf_counter()
-        list(pool.map(_spin, [n]))
-        list(pool.map(_spin, [n]))
-        serial = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        list(pool.map(_spin, [n, n]))
-        parallel = time.perf_counter() - t0
-    return serial / parallel
+        client.gather(client.map(_spin, [size] * n_tasks, pure=False))
+        return time.perf_counter() - t0
+    finally:
+        client.close()
 
 
 def _load() -> str:
     return "/".join(f"{v:.1f}" for v in os.getloadavg())
 
 
-def speed(root, st):
-    ceiling_before, load_before = machine_ceiling(), _load()
-    one, t1 = _timed(root, st, 1)
-    two, t2 = _timed(root, st, 2)
-    ceiling_after, load_after = machine_ceiling(), _load()
+def speed(root, st, cpu_tasks: int = 16, cpu_task_s: float = 0.25):
+    """The study on 1 worker and on 2, each between two runs of a pure-CPU job on the same cluster (the machine's
+    own 2-vs-1 ceiling under the load of that moment, measured the same way). Workers have imported the toolkit
+    before either is timed (a one-off start-up per worker, not part of a study's throughput)."""
+    size, loads, runs, cpu = _spin_size(cpu_task_s), [_load()], {}, {}
+    t_start = time.perf_counter()
+    for n in (1, 2):
+        with _cluster(n) as cluster:
+            before = cpu_job(cluster.scheduler_address, cpu_tasks, size)
+            t0 = time.perf_counter()
+            runs[n] = run_study(root, st, scheduler=cluster.scheduler_address)
+            runs[n] = (runs[n], time.perf_counter() - t0)
+            cpu[n] = before + cpu_job(cluster.scheduler_address, cpu_tasks, size)
+        loads.append(_load())
+    (one, t1), (two, t2) = runs[1], runs[2]
     same = _numbers(one).equals(_numbers(two))
-    print(f"speed: {len(one.tasks)} tasks; 1 worker {t1:.1f} s, 2 workers {t2:.1f} s; speed-up {t1 / t2:.2f} "
-          f"(target >= 1.8); identical numbers: {same}")
-    print(f"  machine: load average (1/5/15 min) {load_before} before, {load_after} after; the same pure-CPU work "
-          f"in 2 processes vs 1: {ceiling_before:.2f}x before, {ceiling_after:.2f}x after (the ceiling now)")
+    ratio, ceiling = t1 / t2, cpu[1] / cpu[2]
+    ex = two.provenance["execution"]
+    print(f"speed: {len(one.tasks)} tasks in {ex['n_batches']} batches; 1 worker {t1:.1f} s, 2 workers {t2:.1f} s")
+    print("  | measured on the same Dask LocalCluster | 2 workers vs 1 |")
+    print("  | --- | --- |")
+    print(f"  | the study | {ratio:.2f}x (target >= 1.8) |")
+    print(f"  | pure-CPU job ({cpu_tasks} tasks of ~{cpu_task_s:g} s, before and after each study run) | "
+          f"{ceiling:.2f}x (the machine's ceiling now) |")
+    print(f"  | the study / the ceiling | {ratio / ceiling:.2f} |")
+    print(f"  load average (1/5/15 min): {loads[0]} at the start, {loads[1]} after 1 worker, {loads[2]} after 2; "
+          f"identical numbers with 1 and 2 workers: {same}; section wall time {time.perf_counter() - t_start:.0f} s")
     return two
 
 
@@ -172,27 +202,38 @@ def main() -> None:
     p.add_argument("--subjects", type=int, default=40)
     p.add_argument("--sessions", type=int, default=3)
     p.add_argument("--trials", type=int, default=6)
+    p.add_argument("--splits", type=int, default=None, help="seeded splits per session (default: the quick 2)")
     p.add_argument("--analyses", default="sessions,days,subjects,sites")
     p.add_argument("--stages", default="memory,speed,killed,rerun", help="which measurements to run")
+    p.add_argument("--speed-only", action="store_true",
+                   help="only the 2-vs-1 speed-up, on 40 x 3 sessions, per-session analysis with its closed loops, "
+                        "one split (a few minutes on a quiet 2-core machine)")
     a = p.parse_args()
+    if a.speed_only:
+        a.stages, a.analyses, a.splits = "speed", "sessions", a.splits or 1
     stages = set(a.stages.split(","))
     st = StudySettings.quick(analyses=tuple(a.analyses.split(",")))
+    if a.splits is not None:
+        st = st.replace(n_splits=a.splits)
+    t_start = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         root = tmp / "study"
         make_study(root, StudyScenario(n_subjects=a.subjects, n_sessions=a.sessions, n_trials=a.trials))
         print(f"study: {a.subjects} subjects x {a.sessions} sessions x {a.trials} trials; analyses {st.analyses}; "
-              f"{os.cpu_count()} cores")
+              f"{st.n_splits} split(s); closed loop {'on' if st.control is not None else 'off'}; "
+              f"{os.cpu_count()} cores; load average {_load()}")
         if "memory" in stages:
             memory(root, st)
         if "speed" in stages:
             reference = speed(root, st)
-        else:  # the undisturbed reference for the killed-worker run, without timing it
+        elif stages & {"killed", "rerun"}:  # the undisturbed reference for the killed-worker run, without timing it
             reference = run_study(root, st, n_workers=2)
         if "killed" in stages:
             killed(root, st, reference, tmp / "cache")
         if "rerun" in stages:
             rerun(root, st, tmp / "cache", tmp)
+    print(f"total wall time {time.perf_counter() - t_start:.0f} s")
 
 
 if __name__ == "__main__":

@@ -61,6 +61,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("--offsets", choices=OFFSETS, help="session-level output offsets: remove (default) or none")
     p.add_argument("--max-retries", type=int, help="resubmissions of tasks whose worker died (default 2)")
     p.add_argument("--quick", action="store_true", help="small settings for a first look")
+    p.add_argument("--no-control", action="store_true", help="score prediction only: no closed loop per session "
+                   "(by default each per-session fit steers a surrogate plant of its session, as `bench` does)")
     p.add_argument("--description", metavar="TOML", help="for a BIDS dataset: how each recording becomes a session "
                    "(outputs, pulses, trials; as for `stimsteer convert`); converted files go to OUT.sessions")
     p.add_argument("--no-progress", action="store_true")
@@ -93,6 +95,8 @@ def study_settings(file_settings: dict, args) -> StudySettings:
     for opt in ("methods", "channels", "analyses"):
         if getattr(args, opt, None) is not None:
             values[opt] = _split(getattr(args, opt))
+    if getattr(args, "no_control", False):
+        values["control"] = None
     for name in ("methods", "channels", "analyses"):
         if name in values and isinstance(values[name], list):
             values[name] = tuple(values[name])

@@ -24,7 +24,7 @@ from ..plants import InnovationPlant, record_session
 from .settings import BenchSettings, ControlSettings, MethodSpec, _is_int
 from .tasks import _cached, _Context, _fit, _Task
 
-__all__ = ["recorded_limits"]
+__all__ = ["recorded_limits", "steer", "fit_surrogate", "surrogate_spec"]
 
 _NOISE_KEYS = ("process_noise_std", "measurement_noise_std", "drift_amplitude", "drift_step_std")
 
@@ -112,27 +112,44 @@ def _controller(predictor, limits, horizon: int, weight, input_weight):
 
 
 def _surrogate_spec(st: BenchSettings) -> MethodSpec:
-    longest = max(int(m.settings.get("past_steps", st.past_steps)) for m in st.methods)
+    return surrogate_spec(st.methods, st.past_steps)
+
+
+def surrogate_spec(methods, past_steps: int) -> MethodSpec:
+    """The surrogate plant's method: ridge ARX with twice the longest past window of ``methods``."""
+    longest = max(int(m.settings.get("past_steps", past_steps)) for m in methods)
     return MethodSpec("indirect", "arx", {"past_steps": 2 * longest})
+
+
+def fit_surrogate(test: Session, train: Session, spec: MethodSpec, past_steps: int, horizon_steps: int,
+                  max_windows: int):
+    """A surrogate plant fitted on the held-out trials ``test``, and its quality scored on ``train`` (unseen by it).
+
+    Returns
+    -------
+    plant : InnovationPlant
+        Driven by the ARX's own innovation noise (seed 0).
+    quality : dict
+        What the surrogate is and how well it predicts the training trials (k-step and free-run R²).
+    """
+    est = _fit(spec, test, past_steps, horizon_steps)
+    model = est.state_space_model()  # the ARX realisation, its resting output in info
+    H = horizon_steps
+    ks = kstep_scores(est, train, horizon_steps=H, stride_steps=window_stride(train, est.past_steps_, H, max_windows))
+    fr = freerun_scores(est, train)
+    quality = {"surrogate": f"ridge ARX, {est.output_lags} output and input lags, fitted on held-out trials",
+               "alpha": est.alpha_, "r2_kstep_mean": float(ks.kstep["r2"].mean()),
+               "r2_last": float(ks.kstep.loc[ks.kstep["step"] == H, "r2"].mean()),
+               "r2_freerun": float(fr.freerun["r2"].mean()), "scored_on": "training trials (unseen by it)"}
+    return InnovationPlant(model, output_offset=model.info.get("output_offset"), seed=0), quality
 
 
 def _surrogate(ctx: _Context, task: _Task, session: Session):
     """Ridge ARX of twice the routes' longest past window fitted on the held-out trials, and its quality."""
     def make():
         st = ctx.settings
-        test, train = session.select_trials(task.split.test), session.select_trials(task.split.train)
-        est = _fit(_surrogate_spec(st), test, st.past_steps, st.horizon_steps)
-        model = est.state_space_model()  # the ARX realisation, its resting output in info
-        H = st.horizon_steps
-        ks = kstep_scores(est, train, horizon_steps=H,
-                          stride_steps=window_stride(train, est.past_steps_, H, st.max_windows))
-        fr = freerun_scores(est, train)
-        quality = {"surrogate": f"ridge ARX, {est.output_lags} output and input lags, fitted on held-out trials",
-                   "alpha": est.alpha_, "r2_kstep_mean": float(ks.kstep["r2"].mean()),
-                   "r2_last": float(ks.kstep.loc[ks.kstep["step"] == H, "r2"].mean()),
-                   "r2_freerun": float(fr.freerun["r2"].mean()), "scored_on": "training trials (unseen by it)"}
-        plant = InnovationPlant(model, output_offset=model.info.get("output_offset"), seed=0)
-        return plant, quality
+        return fit_surrogate(session.select_trials(task.split.test), session.select_trials(task.split.train),
+                             _surrogate_spec(st), st.past_steps, st.horizon_steps, st.max_windows)
 
     return _cached((ctx.token, "surrogate", task.split_index), make)
 
@@ -146,23 +163,40 @@ def _plant_for(ctx: _Context, task: _Task, session: Session):
 
 
 def _control(ctx: _Context, task: _Task, predictor, session: Session) -> dict:
-    cs = ctx.settings.control
-    H = task.setting.horizon_steps
-    full_train = session.select_trials(task.split.train)
-    limits = ctx.limits if ctx.limits is not None else recorded_limits(full_train)
+    plant, quality = _plant_for(ctx, task, session)
+    return steer(predictor, session, task.split.train, plant, quality, control=ctx.settings.control,
+                 horizon_steps=task.setting.horizon_steps, limits=ctx.limits, loop_seed=task.loop_seed,
+                 keep_traces=task.keep_traces)
+
+
+def steer(predictor, session: Session, train_trials, plant, quality, *, control: ControlSettings,
+          horizon_steps: int, limits=None, loop_seed: int = 0, keep_traces: bool = False) -> dict:
+    """The closed-loop task of one fitted route: track a pulse on the plant, under the limits.
+
+    The target and, without declared ``limits``, the amplitude limits (:func:`recorded_limits`) come from the
+    session's training trials ``train_trials``. ``plant`` is used as given (pass a copy to keep the original).
+
+    Returns
+    -------
+    dict
+        ``loop`` (:func:`_loop_row`: tracking error, energy, limit use, violations, fallbacks, solve times),
+        ``control_s``, ``surrogate`` (``quality``, as given), ``limits``, and ``loop_trace`` with ``keep_traces``.
+    """
+    cs, H = control, int(horizon_steps)
+    full_train = session.select_trials(train_trials)
+    limits = limits if limits is not None else recorded_limits(full_train)
     mean, std = _output_stats(full_train)
     c = _channel_index(session, cs.target_channel)
     target = _target(cs, mean, std, c, H)
     weight = np.full(session.n_outputs, cs.other_output_weight)
     weight[c] = 1.0
     controller = _controller(predictor, limits, H, weight, cs.input_weight)
-    plant, quality = _plant_for(ctx, task, session)
     t0 = time.perf_counter()
-    loop = run_closed_loop(controller, plant, n_steps=cs.n_steps, target=target, seed=task.loop_seed)
+    loop = run_closed_loop(controller, plant, n_steps=cs.n_steps, target=target, seed=loop_seed)
     control_s = time.perf_counter() - t0
     out = {"loop": _loop_row(loop, c, limits), "control_s": control_s, "surrogate": quality,
            "limits": limits.to_dict()}
-    if task.keep_traces:
+    if keep_traces:
         out["loop_trace"] = _loop_trace(loop, c, session)
     return out
 

@@ -27,7 +27,8 @@ def _axes(fig, *args):
 
 
 def forest_figure(effects: pd.DataFrame, verdict: pd.Series) -> Figure:
-    """Per-subject differences of held-out R² with 95 % intervals, the pooled estimate (diamond) and the margin.
+    """Per-subject differences (of held-out R², or relative closed-loop figures) with 95 % intervals, the pooled
+    estimate (diamond) and the margin.
 
     Parameters
     ----------
@@ -52,7 +53,9 @@ def forest_figure(effects: pd.DataFrame, verdict: pd.Series) -> Figure:
         ax.fill([lo, est, hi, est], [0.5, 0.85, 0.5, 0.15], color=_POOLED,
                 label=f"pooled (DerSimonian–Laird): {est:+.3g} [{lo:+.3g}, {hi:+.3g}]")
     ax.set_yticks([0.5, *y], ["pooled", *g["subject"]], fontsize=_TEXT)
-    ax.set_xlabel(f"difference of held-out k-step R² ({verdict['description']}), dimensionless", fontsize=_TEXT)
+    what = ("relative difference" if str(verdict["comparison"]).startswith("loop")
+            else "difference of held-out k-step R²")
+    ax.set_xlabel(f"{what} ({verdict['description']}), dimensionless", fontsize=_TEXT)
     tau = float(verdict.get("tau", np.nan))
     ax.set_title(f"{verdict['description']}: {verdict['verdict']} (between-subject spread tau = {tau:.2g})",
                  fontsize=_TITLE)

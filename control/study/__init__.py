@@ -6,14 +6,16 @@ direct route win for most subjects or only for some; which stimulation site is b
 * **Description** (:mod:`~.table`): a folder of session files (one subfolder per subject), a study file of our own
   (``study.toml``: sessions, subjects, groups, settings) or a BIDS dataset, turned into a study table (subject,
   session, condition, file, content hash). Sessions are read lazily, on the worker that uses them.
-* **Analyses** (:mod:`~.tasks`, :mod:`~.grid`): per-session fits of every method with held-out scores; across days
+* **Analyses** (:mod:`~.tasks`, :mod:`~.grid`): per-session fits of every method with held-out scores and the
+  single-session benchmark's closed loop on a surrogate plant of the session (:mod:`~.loop`); across days
   (fit on a subject's earlier sessions, score on the later one, session offsets removed explicitly); across
   subjects (leave one subject out: the pooled model against the subject's own); site ranking per subject and its
   agreement across the cohort.
 * **Pooled verdicts** (:mod:`~.pooling`, :mod:`~.analysis`): per-subject differences combined by DerSimonian &
   Laird's random-effects model, with the between-subject spread stated, judged against the practical margin.
-* **Execution** (:mod:`~.execute`): one task per (analysis, subject, session, method, split); local processes or a
-  Dask cluster, the same numbers either way; completed tasks cached by content hash; dead workers retried.
+* **Execution** (:mod:`~.execute`): one task per (analysis, subject, session, method, split), sent in batches of
+  one (analysis, session); local processes or a Dask cluster, the same numbers either way; completed tasks cached
+  by content hash; dead workers retried.
 * **Report** (:mod:`~.report`): one page with the verdicts, forest plots, transfer across days and the cohort's
   site ranking, linked per-session pages, and every table as CSV and Parquet.
 

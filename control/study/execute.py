@@ -1,5 +1,9 @@
 """Where a study's tasks run, and the cache that makes a rerun compute only what is missing.
 
+* **Batches**: the tasks are sent to workers in batches, one per (analysis, scored session), each in (split,
+  method) order: a batch reads its scored session once and pools each split's training trials once, and costs one
+  round trip to the scheduler instead of one per task. Each task in a batch runs exactly as it would alone
+  (:func:`~.tasks.run_task`) and is cached under its own key as its batch returns.
 * **Local processes** by default (``n_workers`` of them; 1 runs in this process), or a **Dask cluster** given by
   its scheduler address. Every task runs with single-threaded BLAS and results are kept by task key, so the numbers
   do not depend on where or in which order tasks ran.
@@ -8,7 +12,7 @@
   arrives; a rerun after a failure, or after a session was added, runs only the tasks whose key has no file.
 * **A worker that dies** (killed, out of memory) breaks the local pool: the results already in are kept, a new
   pool runs the tasks still missing, up to ``max_retries`` times. On Dask the scheduler reschedules the dead
-  worker's tasks itself, and ``retries`` resubmits a failed one. Results are stored by key, so a task that ran
+  worker's batches itself, and ``retries`` resubmits a failed one. Results are stored by key, so a task that ran
   twice is kept once and a task that never finished is run again: no duplicated or lost rows.
 """
 
@@ -24,7 +28,7 @@ from ...sysid._files import atomic_path
 from .settings import StudySettings
 from .tasks import run_task
 
-__all__ = ["TaskCache", "execute_tasks"]
+__all__ = ["TaskCache", "execute_tasks", "batches", "run_batch"]
 
 
 class TaskCache:
@@ -70,8 +74,23 @@ def _install(st: StudySettings) -> None:
     _SETTINGS["st"] = st
 
 
-def _run_installed(task):
-    return task.key, run_task(_SETTINGS["st"], task)
+def batches(tasks) -> list:
+    """The tasks grouped into batches (module docstring): one per (analysis, scored session), in (split, method)
+    order."""
+    groups: dict = {}
+    for t in tasks:
+        groups.setdefault((t.kind, t.test.content_hash), []).append(t)
+    return [sorted(g, key=lambda t: (t.split, t.method_index)) for g in groups.values()]
+
+
+def run_batch(st: StudySettings, batch) -> list:
+    """Run the tasks of a batch one after the other: ``[(key, result), ...]``, each result what :func:`run_task`
+    gives for that task alone."""
+    return [(t.key, run_task(st, t)) for t in batch]
+
+
+def _run_installed(batch):
+    return run_batch(_SETTINGS["st"], batch)
 
 
 def _bar(total: int, enabled: bool):
@@ -88,7 +107,8 @@ def execute_tasks(st: StudySettings, tasks, *, cache: TaskCache | None = None, s
     -------
     results : dict of str to dict
     execution : dict
-        ``mode``, ``n_workers``, ``n_tasks``, ``n_cached``, ``n_computed``, ``n_retries``.
+        ``mode``, ``n_workers``, ``n_tasks``, ``n_cached``, ``n_computed``, ``n_retries``, ``n_batches`` (sent to
+        workers: one per analysis and scored session with tasks to compute).
     """
     results, missing = {}, {}
     for t in tasks:
@@ -115,7 +135,8 @@ def execute_tasks(st: StudySettings, tasks, *, cache: TaskCache | None = None, s
             n = max(1, min(n, len(todo)))
             retries = _run_local(st, todo, n, keep, bar)
             info = {"mode": "sequential" if n == 1 else "local processes", "n_workers": n}
-    info.update(n_tasks=len({t.key for t in tasks}), n_cached=n_cached, n_computed=len(todo), n_retries=retries)
+    info.update(n_tasks=len({t.key for t in tasks}), n_cached=n_cached, n_computed=len(todo), n_retries=retries,
+                n_batches=len(batches(todo)))
     return results, info
 
 
@@ -128,9 +149,10 @@ def _cores() -> int:
 
 def _run_local(st, todo, n: int, keep, bar) -> int:
     if n == 1:
-        for t in todo:
-            keep(t.key, run_task(st, t))
-            bar.update()
+        for batch in batches(todo):
+            for key, res in run_batch(st, batch):
+                keep(key, res)
+                bar.update()
         return 0
     from concurrent.futures import ProcessPoolExecutor, as_completed
     from concurrent.futures.process import BrokenProcessPool
@@ -143,11 +165,11 @@ def _run_local(st, todo, n: int, keep, bar) -> int:
         done = set()
         try:
             with ProcessPoolExecutor(max_workers=n, initializer=_install, initargs=(st,)) as pool:
-                for fut in as_completed([pool.submit(_run_installed, t) for t in pending]):
-                    key, res = fut.result()
-                    keep(key, res)
-                    done.add(key)
-                    bar.update()
+                for fut in as_completed([pool.submit(_run_installed, b) for b in batches(pending)]):
+                    for key, res in fut.result():
+                        keep(key, res)
+                        done.add(key)
+                        bar.update()
         except BrokenProcessPool:
             retries += 1
             if retries > st.max_retries:
@@ -179,13 +201,13 @@ def _run_dask(st, todo, address, keep, bar) -> int:
 
     client = _connect(address, st.scheduler_timeout_s)
     try:
-        futures = [client.submit(run_task, st, t, key=f"stimsteer-study-{t.key}", pure=False,
-                                 retries=st.max_retries) for t in todo]
-        index = {f.key: t.key for f, t in zip(futures, todo)}
+        futures = [client.submit(run_batch, st, b, key=f"stimsteer-study-{b[0].key}", pure=False,
+                                 retries=st.max_retries) for b in batches(todo)]
         try:
             for fut in as_completed(futures, loop=client.loop):
-                keep(index[fut.key], fut.result())
-                bar.update()
+                for key, res in fut.result():
+                    keep(key, res)
+                    bar.update()
         except Exception as exc:  # KilledWorker and the like: the cache keeps what finished
             if isinstance(exc, StimsteerError):
                 raise

@@ -26,7 +26,14 @@ _MEANING = {
     "small": "the interval excludes zero but not the practical margin: a difference too small to matter",
     "undecided": "the interval reaches beyond the margin and contains zero: more subjects needed",
     "too few subjects": "fewer than two subjects could be pooled",
+    "indirect tracks better": "steering with the direct route leaves a larger tracking error, beyond the margin",
+    "direct tracks better": "steering with the direct route leaves a smaller tracking error, beyond the margin",
+    "direct uses more energy": "the direct route's loops use more input energy, beyond the margin",
+    "indirect uses more energy": "the direct route's loops use less input energy, beyond the margin",
 }
+_LOOP_TEXT = ("Closed loop, per session (the single-session benchmark's task: each fit tracks a pulse on a surrogate "
+              "plant fitted on the session's held-out trials, inside the input range recorded on its training "
+              "trials)")
 
 
 def _f(v, fmt="+.3g") -> str:
@@ -38,8 +45,9 @@ def summary_lines(result) -> list:
     lines = [f"Study {result.table.name}: {len(result.table.sessions)} sessions of {len(result.table.subjects)} "
              f"subjects; {len(result.tasks)} tasks ({result.provenance['execution']['n_cached']} from the cache)."]
     for r in result.verdicts.itertuples():
+        what = "pooled relative difference" if r.comparison.startswith("loop") else "pooled difference of held-out R²"
         lines.append(
-            f"{r.description}: pooled difference of held-out R² {_f(r.estimate)} [95 % {_f(r.ci_low)}, "
+            f"{r.description}: {what} {_f(r.estimate)} [95 % {_f(r.ci_low)}, "
             f"{_f(r.ci_high)}] over {r.n_subjects} subjects; between-subject spread tau {_f(r.tau, '.2g')} "
             f"(I² {_f(100 * r.i2 if isinstance(r.i2, float) else math.nan, '.0f')} %); "
             f"margin ±{_f(r.margin, '.2g')}: "
@@ -52,6 +60,7 @@ def summary_lines(result) -> list:
         lines.append(f"Cohort site ranking ({first['label'].iloc[0]}): "
                      + ", ".join(f"{s} (mean rank {m:.2f})" for s, m in zip(first["site"], first["mean_rank"]))
                      + f"; agreement across subjects, Kendall's W = {first['kendall_w'].iloc[0]:.2f}.")
+    lines += _loop_lines(result)
     lines += list(result.notes)
     for r in result.table.excluded.itertuples():
         lines.append(f"Excluded: {r.subject}/{r.session} ({r.reason}).")
@@ -59,6 +68,18 @@ def summary_lines(result) -> list:
     if len(failed):
         lines.append(f"{len(failed)} task(s) failed; see the tasks table (first: {failed['error'].iloc[0]}).")
     return lines
+
+
+def _loop_lines(result) -> list:
+    loops = result.closed_loop
+    if loops is None or loops.empty:
+        return []
+    parts = []
+    for label, g in loops.groupby("label", sort=True):
+        parts.append(f"{label}: tracking error {g['tracking_rms'].mean():.3g}, energy {g['energy_ua2'].mean():.4g} "
+                     f"(mean over subjects), {int(g['violations'].sum())} limit violations and "
+                     f"{int(g['n_fallback'].sum())} fallbacks in {int(g['n_loops'].sum())} loops")
+    return [f"{_LOOP_TEXT}: " + "; ".join(parts) + "."]
 
 
 def session_page_name(subject: str, session: str) -> str:
@@ -94,6 +115,10 @@ def study_html(result, figures: dict, lines: list) -> str:
     parts.append("<h2>Cohort site ranking</h2>")
     if "sites" in figures:
         parts += [_img(figures["sites"], "sites"), _table(result.cohort_sites)]
+    if result.closed_loop is not None and not result.closed_loop.empty:
+        parts += [f"<h2>Closed loop</h2><p>{esc(_LOOP_TEXT)}. Tracking error and energy are means over each "
+                  "subject's sessions and splits, in the outputs' and inputs' units; violations and fallbacks are "
+                  "counts.</p>", _table(result.closed_loop)]
     sessions = result.table.sessions[["subject", "session", "order", "condition", "group", "content_hash"]].copy()
     sessions["page"] = [f"<a href='sessions/{session_page_name(a, b)}'>{esc(a)}/{esc(b)}</a>"
                         for a, b in zip(sessions["subject"], sessions["session"])]
@@ -114,7 +139,7 @@ def session_page(result, subject: str, session: str) -> str:
     esc = html.escape
     rows = result.tasks[(result.tasks["subject"] == subject) & (result.tasks["session"] == session)]
     cols = ["analysis", "label", "split", "status", "r2_mean", "r2_step1", "r2_last", "nrmse_mean",
-            "n_train_trials", "n_test_trials", "fit_s", "error"]
+            "n_train_trials", "n_test_trials", "tracking_rms", "energy_ua2", "violations", "fit_s", "error"]
     meta = result.table.sessions[(result.table.sessions["subject"] == subject)
                                  & (result.table.sessions["session"] == session)]
     return "\n".join([
@@ -123,5 +148,6 @@ def session_page(result, subject: str, session: str) -> str:
         f"<h1>Session {esc(subject)}/{esc(session)}</h1><p class='caution'>{esc(CAUTION)}</p>",
         _table(meta.T.reset_index().rename(columns={"index": "field"})),
         "<h2>Held-out scores</h2><p>sessions: fitted on this session's training trials; days: fitted on the "
-        "subject's earlier sessions; subjects: fitted on the other subjects. Same held-out trials in each.</p>",
+        "subject's earlier sessions; subjects: fitted on the other subjects. Same held-out trials in each. "
+        "Closed loop (sessions only): tracking error, energy and limit violations on the surrogate plant.</p>",
         _table(rows[[c for c in cols if c in rows.columns]]), "</body></html>"])

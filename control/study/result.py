@@ -13,7 +13,7 @@ import pandas as pd
 
 from ...sysid import InvalidParameterError, StimsteerError
 from ...sysid._records import jsonable, versions
-from .analysis import effects_table, site_tables, task_table, transfer_table, verdicts_table
+from .analysis import effects_table, loop_table, site_tables, task_table, transfer_table, verdicts_table
 from .execute import TaskCache, execute_tasks
 from .grid import study_tasks
 from .settings import StudySettings
@@ -34,10 +34,11 @@ class StudyResult:
     tasks : pandas.DataFrame
         One row per task: ``analysis`` (``sessions``, ``days``, ``subjects``), subject, session, order, method,
         split, ``status``, held-out ``r2_mean`` (k-step R² over steps 1…H and channels), ``r2_step1``, ``r2_last``,
-        ``nrmse_mean``, ``n_train_trials``, ``fit_s``, ``cached``.
+        ``nrmse_mean``, ``n_train_trials``, ``fit_s``, ``cached``; per-session tasks that steered add the closed
+        loop's ``tracking_rms``, ``energy_ua2``, ``violations``, ``n_fallback``, ``surrogate_r2`` (:mod:`~.loop`).
     effects : pandas.DataFrame
-        Per comparison and subject: the mean paired difference of R² and its variance (see
-        :mod:`stimsteer.control.study.analysis`).
+        Per comparison and subject: the mean paired difference (of R²; relative, for the closed loop) and its
+        variance (see :mod:`stimsteer.control.study.analysis`).
     verdicts : pandas.DataFrame
         Per comparison: the DerSimonian–Laird pooled difference, its 95 % interval, tau, I², the margin, the verdict.
     transfer : pandas.DataFrame
@@ -46,6 +47,9 @@ class StudyResult:
         Per subject and site (indirect methods with a state-space form): impulse-response energy and rank.
     cohort_sites : pandas.DataFrame
         Per site: mean rank across subjects, its spread, the cohort rank and Kendall's W of the agreement.
+    closed_loop : pandas.DataFrame
+        Per method and subject: the per-session closed loops' mean tracking error and energy, the loops run, the
+        limit violations and fallbacks (:func:`~.analysis.loop_table`); empty when the study did not steer.
     notes : tuple of str
         What could not be run, and why.
     provenance : dict
@@ -61,13 +65,15 @@ class StudyResult:
     cohort_sites: pd.DataFrame
     notes: tuple
     provenance: dict
+    closed_loop: pd.DataFrame = None
 
     def tables(self) -> dict:
         """Every table by name (``sessions``, ``excluded``, ``tasks``, ``effects``, ``verdicts``, ``transfer``,
-        ``sites``, ``cohort_sites``)."""
+        ``sites``, ``cohort_sites``, ``closed_loop``)."""
         return {"sessions": self.table.sessions, "excluded": self.table.excluded, "tasks": self.tasks,
                 "effects": self.effects, "verdicts": self.verdicts, "transfer": self.transfer, "sites": self.sites,
-                "cohort_sites": self.cohort_sites}
+                "cohort_sites": self.cohort_sites,
+                "closed_loop": pd.DataFrame() if self.closed_loop is None else self.closed_loop}
 
     @property
     def n_computed(self) -> int:
@@ -127,6 +133,7 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
     return StudyResult(
         settings=st, table=table, tasks=frame, effects=effects, verdicts=verdicts_table(effects, st),
         transfer=transfer_table(frame), sites=sites, cohort_sites=cohort, notes=tuple(notes),
+        closed_loop=loop_table(frame),
         provenance=jsonable({"tool": "stimsteer study", "study": table.name, "source": table.source,
                              "settings": st.to_dict(), "execution": execution, "started_utc": started,
                              "wall_time_s": time.perf_counter() - t0, "versions": versions(extra=("dask",)),

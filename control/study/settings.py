@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from ...sysid import InvalidParameterError
 from ...sysid._records import jsonable
-from ..evaluation import MethodSpec
+from ..evaluation import ControlSettings, MethodSpec
 
 __all__ = ["StudySettings", "ANALYSES", "OFFSETS", "parse_method"]
 
@@ -75,6 +75,11 @@ class StudySettings:
     max_retries : int, default 2
         Times a task whose worker died is submitted again before the study fails.
     scheduler_timeout_s : float, default 10
+    control : ControlSettings, mapping or None, default ControlSettings()
+        The closed-loop part of the per-session analysis (the single-session benchmark's closed-loop task): each
+        per-session fit tracks a pulse on a surrogate plant of its session (a ridge ARX fitted on the held-out
+        trials), inside the amplitude range recorded on the training trials; None (or ``false`` in a study file)
+        scores prediction only. A mapping gives :class:`~stimsteer.control.evaluation.ControlSettings` fields.
 
     Raises
     ------
@@ -97,8 +102,10 @@ class StudySettings:
     seed: int = 0
     max_retries: int = 2
     scheduler_timeout_s: float = 10.0
+    control: ControlSettings = field(default_factory=ControlSettings)
 
     def __post_init__(self):
+        object.__setattr__(self, "control", _control(self.control))
         methods = tuple(parse_method(m) for m in (self.methods or ()))
         if not methods or len({m.label for m in methods}) != len(methods):
             raise InvalidParameterError(f"StudySettings.methods must name each route/method once; got {methods!r}.")
@@ -130,8 +137,8 @@ class StudySettings:
 
     @classmethod
     def quick(cls, **changes) -> "StudySettings":
-        """Small settings for a first look and for tests: 2 splits, past 6, horizon 5, 300 windows."""
-        base = dict(n_splits=2, past_steps=6, horizon_steps=5, max_windows=300)
+        """Small settings for a first look and for tests: 2 splits, past 6, horizon 5, 300 windows, 60 loop steps."""
+        base = dict(n_splits=2, past_steps=6, horizon_steps=5, max_windows=300, control=ControlSettings(n_steps=60))
         return cls(**{**base, **changes})
 
     def replace(self, **changes) -> "StudySettings":
@@ -152,4 +159,22 @@ class StudySettings:
     def to_dict(self) -> dict:
         d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
         d["methods"] = [m.to_dict() for m in self.methods]
+        d["control"] = None if self.control is None else self.control.to_dict()
         return jsonable(d)
+
+
+def _control(value):
+    if value is None or value is False:
+        return None
+    if isinstance(value, ControlSettings):
+        return value
+    if value is True:
+        return ControlSettings()
+    if isinstance(value, dict):
+        try:
+            return ControlSettings(**value)
+        except TypeError as exc:
+            raise InvalidParameterError(f"StudySettings.control: {exc}; give fields of ControlSettings (n_steps, "
+                                        "target_channel, target_level_std, pulse_fraction, ...).") from None
+    raise InvalidParameterError(f"StudySettings.control must be a ControlSettings, a mapping of its fields, or "
+                                f"None/false to score prediction only; got {value!r}.")

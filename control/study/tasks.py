@@ -33,6 +33,7 @@ import numpy as np
 from ...sysid import (Session, SessionError, StateSpaceForm, StimsteerError, TrialSplit, impulse_responses,
                       kstep_scores, load_session, make_estimator)
 from ...sysid._records import window_stride
+from .loop import session_loop
 from .settings import StudySettings
 
 __all__ = ["SessionRef", "StudyTask", "run_task", "CACHE_VERSION"]
@@ -71,8 +72,11 @@ def task_key(kind, test: SessionRef, train, train_trials, method_index, split, s
     """SHA-256 over what the task's numbers depend on: the data (hashes and trials drawn), the method, the split,
     the settings."""
     drawn = [[r.content_hash, list(t)] for r, t in zip(train, train_trials)]
+    settings = st.task_dict()
+    if kind != "sessions":
+        settings.pop("control")  # only the per-session analysis steers a plant
     text = json.dumps([CACHE_VERSION, kind, test.content_hash, drawn, st.methods[method_index].to_dict(), int(split),
-                       st.task_dict()], sort_keys=True, default=str)
+                       settings], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
@@ -116,16 +120,20 @@ def session_split(ref: SessionRef, split: int, st: StudySettings) -> TrialSplit:
 _LAST: dict = {}
 
 
-def _load(ref: SessionRef, channels) -> Session:
-    """The session of ``ref`` (the last one read is kept, so successive tasks on one session read it once)."""
-    if _LAST.get("key") != (ref.content_hash, channels):
-        _LAST.clear()  # before reading the next one: at most one session held
+def _load(ref: SessionRef, channels, slot: str = "scored") -> Session:
+    """The session of ``ref``. The last session read in each slot (``scored``: the session a task scores; ``pool``:
+    a session it pools trials from) is kept, so the tasks of one batch (:mod:`~.execute`) read and hash their
+    scored session once, however many sessions their pooled fits read in between."""
+    key = (ref.content_hash, channels)
+    held = _LAST.get(slot)
+    if held is None or held[0] != key:
+        _LAST.pop(slot, None)  # before reading the next one: one session per slot
         s = load_session(ref.file)
         if s.content_hash() != ref.content_hash:
             raise SessionError(f"session file {ref.file} changed since the study table was made (its content hash "
                                "differs); describe the study again.")
-        _LAST.update(key=(ref.content_hash, channels), session=_subset(s, channels))
-    return _LAST["session"]
+        _LAST[slot] = (key, _subset(s, channels))
+    return _LAST[slot][1]
 
 
 def _subset(s: Session, channels) -> Session:
@@ -151,15 +159,26 @@ def _centred(s: Session, train_trials, st: StudySettings) -> Session:
     return s.replace(y=s.y - mean)
 
 
+_POOLED: dict = {}
+
+
 def _pool(task: StudyTask, st: StudySettings) -> Session:
-    """The drawn training trials of a transfer task, read one session at a time, each centred on its own offset."""
+    """The drawn training trials of a transfer task, read one session at a time, each centred on its own offset.
+
+    The last pool is kept: the methods of one split draw the same trials, so a batch pools them once.
+    """
     if not task.train:
         raise SessionError(f"no training trials to pool for {task.kind} task {task.subject}/{task.session}.")
-    parts = []
-    for ref, trials in zip(task.train, task.train_trials):
-        s = _load(ref, st.channels)
-        parts.append(_centred(s, session_split(ref, task.split, st).train, st).select_trials(list(trials)))
-    return _concat(parts)
+    key = (task.split, tuple((r.content_hash, t) for r, t in zip(task.train, task.train_trials)), st.channels,
+           st.offsets, st.seed, st.test_fraction)
+    if _POOLED.get("key") != key:
+        _POOLED.clear()
+        parts = []
+        for ref, trials in zip(task.train, task.train_trials):
+            s = _load(ref, st.channels, slot="pool")
+            parts.append(_centred(s, session_split(ref, task.split, st).train, st).select_trials(list(trials)))
+        _POOLED.update(key=key, session=_concat(parts))
+    return _POOLED["session"]
 
 
 def _concat(parts) -> Session:
@@ -176,12 +195,23 @@ def _concat(parts) -> Session:
                          output_mask=np.concatenate([p.output_mask for p in parts]), trials=trials, metadata={})
 
 
+_THREADS: dict = {}
+
+
+def _one_thread():
+    """Single-threaded BLAS/OpenMP for the duration of a ``with``: the libraries are found once per process (a
+    fresh ``threadpool_limits`` scans the loaded libraries each time, ~40 ms under load, as long as a small task)."""
+    if "controller" not in _THREADS:
+        from threadpoolctl import ThreadpoolController
+
+        _THREADS["controller"] = ThreadpoolController()
+    return _THREADS["controller"].limit(limits=1)
+
+
 def run_task(st: StudySettings, task: StudyTask) -> dict:
     """Run one task with single-threaded BLAS; a toolkit error is returned as the task's result, not raised."""
-    from threadpoolctl import threadpool_limits
-
     t0 = time.perf_counter()
-    with threadpool_limits(limits=1), warnings.catch_warnings(record=True) as caught:
+    with _one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             out = _body(st, task)
@@ -205,7 +235,8 @@ def _body(st: StudySettings, task: StudyTask) -> dict:
     fit_s = time.perf_counter() - t0
     n_train = train.n_trials
     del train  # before the held-out trials are read: one session's worth at a time
-    test = _centred(_load(task.test, st.channels), split.train, st).select_trials(split.test)
+    session = _centred(_load(task.test, st.channels), split.train, st)
+    test = session.select_trials(split.test)
     H = st.horizon_steps
     ks = kstep_scores(predictor, test, horizon_steps=H,
                       stride_steps=window_stride(test, int(predictor.past_steps_), H, st.max_windows)).kstep
@@ -215,6 +246,9 @@ def _body(st: StudySettings, task: StudyTask) -> dict:
            "sites": list(test.input_names), "site_energy": None}
     if task.kind == "sessions" and isinstance(predictor, StateSpaceForm):
         out["site_energy"] = _site_energy(predictor, st)
+    if task.kind == "sessions" and st.control is not None:
+        seed = _seed(st.seed, 13, task.split, int(task.test.content_hash[:12], 16))
+        out.update(session_loop(st, task, predictor, session, split, seed))
     return out
 
 

@@ -17,7 +17,8 @@ pytestmark = pytest.mark.slow
 
 SCENARIO = StudyScenario(n_subjects=3, n_sessions=2, n_trials=6, trial_samples=80)
 SETTINGS = StudySettings.quick(past_steps=4, horizon_steps=4, max_windows=150)
-NUMBERS = ["r2_mean", "r2_step1", "r2_last", "nrmse_mean", "n_train_trials", "n_test_trials"]
+NUMBERS = ["r2_mean", "r2_step1", "r2_last", "nrmse_mean", "n_train_trials", "n_test_trials", "tracking_rms",
+           "energy_ua2", "violations"]
 
 
 def _numbers(result) -> pd.DataFrame:
@@ -61,7 +62,7 @@ def test_transfer_fits_see_as_many_training_trials_as_the_within_session_fit(fir
 def test_verdicts_pool_per_subject_effects_with_the_between_subject_spread(first):
     result = first[0]
     v = result.verdicts.set_index("comparison")
-    assert set(v.index) == {"route", "days", "subjects"}
+    assert set(v.index) == {"route", "days", "subjects", "loop_tracking", "loop_energy"}
     assert (v["n_subjects"] == 3).all() and v["tau"].notna().all() and (v["ci_low"] <= v["ci_high"]).all()
     e = result.effects[result.effects["comparison"] == "route"]
     wide = result.tasks[result.tasks["analysis"] == "sessions"].pivot_table(

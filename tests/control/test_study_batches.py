@@ -1,0 +1,79 @@
+"""A study's tasks travel in batches (one per analysis and scored session): fewer reads, the same numbers."""
+
+import pandas as pd
+import pytest
+
+from stimsteer.control.study import StudySettings, describe_study, run_study, study_tasks
+from stimsteer.control.study import execute as study_execute
+from stimsteer.control.study import tasks as study_tasks_module
+from stimsteer.demo_data.make_study import StudyScenario, make_study
+
+pytestmark = pytest.mark.slow
+
+SETTINGS = StudySettings.quick(past_steps=4, horizon_steps=4, max_windows=100, analyses=("sessions", "subjects"),
+                               control=None)
+COLS = ["analysis", "subject", "session", "label", "split", "status", "r2_mean", "r2_last", "n_train_trials"]
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    root = tmp_path_factory.mktemp("batch_study")
+    make_study(root, StudyScenario(n_subjects=3, n_sessions=2, n_trials=6, trial_samples=60))
+    return root
+
+
+def test_batches_group_the_tasks_of_one_analysis_and_scored_session(study):
+    tasks, _ = study_tasks(describe_study(study), SETTINGS)
+    batches = study_execute.batches(tasks)
+    assert len(batches) == 2 * 6  # two analyses x six sessions
+    assert sorted(t.key for b in batches for t in b) == sorted(t.key for t in tasks)
+    for b in batches:
+        assert len({(t.kind, t.test.content_hash) for t in b}) == 1 and len(b) == 2 * SETTINGS.n_splits
+        assert [(t.split, t.method_index) for t in b] == sorted((t.split, t.method_index) for t in b)
+
+
+@pytest.fixture(scope="module")
+def local(study):
+    """A sequential run (in this process), with every session file read counted."""
+    reads, original = [], study_tasks_module.load_session
+    study_tasks_module.load_session = lambda f: reads.append(f) or original(f)
+    try:
+        study_tasks_module._LAST.clear()
+        study_tasks_module._POOLED.clear()
+        result = run_study(study, SETTINGS, n_workers=1)
+    finally:
+        study_tasks_module.load_session = original
+    return result, reads
+
+
+def test_a_batch_reads_its_scored_session_once_and_each_pool_once(study, local):
+    result, reads = local
+    tasks, _ = study_tasks(describe_study(study), SETTINGS)
+    # per batch: its scored session, and the pooled sessions of each split (the methods of a split share its draw);
+    # task by task it was the pooled sessions and the scored one again for every task
+    bound = sum(1 + sum(len(t.train) for t in b if t.method_index == 0) for b in study_execute.batches(tasks))
+    per_task = sum(len(t.train) + 1 for t in tasks)
+    assert len(reads) <= bound < per_task
+    assert result.provenance["execution"]["n_batches"] == 12
+
+
+def test_batched_results_equal_tasks_run_alone_in_any_order(study):
+    tasks, _ = study_tasks(describe_study(study), SETTINGS)
+    some = [t for b in study_execute.batches(tasks)[5:7] for t in b]  # a per-session and a pooled batch
+    alone = {t.key: study_tasks_module.run_task(SETTINGS, t) for t in reversed(some)}
+    batched = {k: r for b in study_execute.batches(some) for k, r in study_execute.run_batch(SETTINGS, b)}
+    timing = {"total_s", "fit_s", "control_s"}
+    assert alone.keys() == batched.keys() and len(alone) == 2 * 2 * SETTINGS.n_splits
+    for k in alone:
+        assert {a: v for a, v in alone[k].items() if a not in timing} == \
+               {a: v for a, v in batched[k].items() if a not in timing}
+
+
+def test_a_dask_cluster_runs_batches_with_the_numbers_of_a_local_run(study, local):
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                  dashboard_address=None) as cluster:
+        on_dask = run_study(study, SETTINGS, scheduler=cluster.scheduler_address)
+    assert on_dask.provenance["execution"]["n_batches"] == 12
+    pd.testing.assert_frame_equal(on_dask.tasks[COLS].sort_values(COLS[:5], ignore_index=True),
+                                  local[0].tasks[COLS].sort_values(COLS[:5], ignore_index=True))
