@@ -1,12 +1,14 @@
 """The first input of a plan in tens of microseconds, for live loops: :class:`FastStep`.
 
 A fitted :class:`~stimsteer.control.mpc.ModelPredictiveController` (condensed, output target, box and slew limits)
-solves the same quadratic program at every sample; only its linear term and the first step's slew window change.
-:class:`FastStep` precomputes everything else once:
+or :class:`~stimsteer.control.mpc.DataPredictiveController` (the direct route: linear maps, or DeePC with its
+weights ``g`` minimised out) solves the same quadratic program over the inputs at every sample; only its linear term
+and the first step's slew window change. :class:`FastStep` precomputes everything else once:
 
-* the state estimate as a linear map of the past window (``StateSpaceModel.estimate_state`` is linear in it), so
-  the QP's linear term is one matrix product ``q = Q_w w + q_r`` of the window ``w = [vec(u_past); vec(y_past)]``
-  (``q_r`` for the target, recomputed only when the target changes);
+* the QP's linear term as one matrix product ``q = Q_w w + q_r`` of the window ``w = [vec(u_past); vec(y_past)]``
+  (``q_r`` for the target, recomputed only when the target changes): through the state estimate's linear map of
+  the window (``StateSpaceModel.estimate_state`` is linear in it), the predictor's map ``P`` (linear maps), or the
+  closed-form minimiser ``g*(u)`` of DeePC, affine in the past window and the target;
 * the dense QP, solved by a dual active-set method warm started from the last active set (``daqp``; the
   ``realtime`` extra).
 
@@ -44,9 +46,10 @@ class FastStep:
 
     Parameters
     ----------
-    controller : ModelPredictiveController
-        Fitted, ``formulation="condensed"``, ``target_kind="output"``, no terminal weight; limits with amplitude
-        (and charge-density) bounds and slew limits only.
+    controller : ModelPredictiveController or DataPredictiveController
+        Fitted; a model controller with ``formulation="condensed"``, ``target_kind="output"``, no terminal weight;
+        a data controller on linear maps, or DeePC with a quadratic regulariser whose equalities are independent;
+        limits with amplitude (and charge-density) bounds and slew limits only.
 
     Attributes
     ----------
@@ -77,15 +80,9 @@ class FastStep:
         if why:
             raise InvalidParameterError(f"the fast step cannot reproduce this controller: {why}; use its plan().")
         self.controller_ = c = controller
-        model, T = c.model_, int(c.past_steps_)
+        T = int(c.past_steps_)
         m, p, N = int(c.n_inputs_), int(c.n_outputs_), int(c.horizon_steps_)
-        E = _state_map(model, T)
-        off = np.asarray(c._y_off, np.float64)
-        M = 2.0 * c._LG.T @ c._Lz  # q = M (fy − r)
-        self._Qw = M @ c._Phi_y @ E
-        self._q0 = M @ (np.tile(off, N) - c._Phi_y @ E @ np.concatenate([np.zeros(T * m), np.tile(off, T)]))
-        self._M = M
-        H = c._LG.T @ c._LG + c._Ru.T @ c._Ru
+        self._Qw, self._Qr, self._q0, H = _linear_step(c, T, m, p, N)
         slew = c._slew_rows
         self._qp = _DenseQP(2.0 * 0.5 * (H + H.T), None if slew is None else slew[0].toarray(), N * m)
         self._lo, self._hi = np.tile(c._lo, N), np.tile(c._hi, N)
@@ -117,7 +114,7 @@ class FastStep:
             if t.shape != (self._p,) or not np.all(np.isfinite(t)):
                 raise SessionError(f"the fast step takes a constant output target of {self._p} finite values; got "
                                    f"shape {t.shape}.")
-            self._target, self._qr = t.copy(), self._q0 - self._M @ np.tile(t, self._N)
+            self._target, self._qr = t.copy(), self._q0 + self._Qr @ np.tile(t, self._N)
         return self._qr
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
@@ -156,16 +153,48 @@ class FastStep:
 
 def _unsupported(c) -> str:
     """Why a controller is out of reach of the fast step ('' when it is not)."""
+    mpc = hasattr(c, "model_")
+    method = getattr(c, "method_", None)
     checks = (
-        (not hasattr(c, "model_"), "it is not a model predictive controller (the direct route plans with plan())"),
-        (getattr(c, "formulation", "") != "condensed", "its formulation is not condensed"),
+        (not mpc and method not in ("spc", "deepc"), "it is neither a model nor a data predictive controller"),
+        (mpc and getattr(c, "formulation", "") != "condensed", "its formulation is not condensed"),
         (getattr(c, "target_kind_", "") != "output", "it plans towards a state"),
         (getattr(c, "_LpT", None) is not None, "it has a terminal weight"),
         (getattr(c, "_energy", None) is not None, "its limits have an energy budget"),
         (getattr(c, "_idx_b", np.zeros(0)).size > 0, "its limits have output bounds"),
+        (method == "deepc" and getattr(c, "_elim", None) is None,
+         "its DeePC problem does not reduce to the inputs (an l1 regulariser, or dependent equalities)"),
         (not dense_solver_available(), "the dense solver daqp is not installed (pip install 'stimsteer[realtime]')"),
     )
     return "; ".join(why for bad, why in checks if bad)
+
+
+def _linear_step(c, T, m, p, N):
+    """``(Qw, Qr, q0, H)``: the QP ``min uᵀHu + qᵀu`` over the inputs of the plan, ``q = Qw w + Qr vec(r) + q0``
+    for the window ``w = [vec(u_past); vec(y_past)]`` of ``T`` samples and the target ``r`` (``N`` rows)."""
+    if getattr(c, "method_", None) == "deepc":
+        return _deepc_step(c, T, m, p, N)
+    M = 2.0 * c._LG.T @ c._Lz  # q = M (fy − r), fy the free response
+    H = c._LG.T @ c._LG + c._Ru.T @ c._Ru
+    if hasattr(c, "model_"):  # fy = Phi_y x̂ + offset, x̂ = E (w − offset of the past outputs)
+        E = _state_map(c.model_, T)
+        off = np.asarray(c._y_off, np.float64)
+        w_off = np.concatenate([np.zeros(T * m), np.tile(off, T)])
+        return M @ c._Phi_y @ E, -M, M @ (np.tile(off, N) - c._Phi_y @ E @ w_off), H
+    return M @ c._P, -M, M @ c._c, H  # linear maps (SPC): fy = P w + c
+
+
+def _deepc_step(c, T, m, p, N):
+    """DeePC with ``g`` minimised out (``DataPredictiveController._fast_deepc_eliminated``): ``q`` is linear in
+    ``[u_past; 0]``, the past outputs and the weighted target, all in the blocks' (centred) coordinates."""
+    e = c._elim
+    n_eq = c._E.shape[0]
+    Qu = e["Q_f"][:, :T * m]
+    Qy = e["Q_f"][:, n_eq:n_eq + T * p] if e["hard"] else e["Q_y"]
+    Qr = e["Q_r"] @ c._Lz
+    off = np.zeros(p) if c._y_off is None else np.asarray(c._y_off, np.float64)
+    q0 = -(Qy @ np.tile(off, T)) - Qr @ np.tile(off, N)
+    return np.hstack([Qu, Qy]), Qr, q0, 0.5 * e["P"]
 
 
 def _state_map(model, T):

@@ -107,3 +107,79 @@ def test_controllers_the_fast_step_cannot_reproduce_are_refused(setup):
         FastStep(ModelPredictiveController(model=model, limits=LIM, horizon_steps=5, terminal_weight="riccati").fit())
     with pytest.raises(SessionError, match="constant output target"):
         FastStep(ctrl).plan(np.zeros((3, 2)), np.zeros((3, 3)), target=np.zeros((10, 3)))
+
+
+# ------------------------------------------------------------------------------------------------ the direct route
+def _direct_controller(kind, centre=False, slack=None):
+    from stimsteer.sysid import HankelPredictor, LsqPredictor, Session
+
+    rng = np.random.default_rng(11)
+    n, m, p = 4, 2, 3
+    A = rng.normal(size=(n, n))
+    A *= 0.85 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.normal(size=(n, m)), C=rng.normal(size=(p, n)))
+    u = rng.uniform(-1, 1, size=(400, m))
+    y = model.simulate(u) + 0.01 * rng.normal(size=(400, p)) + (np.array([4.0, -2.0, 1.0]) if centre else 0.0)
+    session = Session(u=u, y=y, sample_rate_hz=100.0)
+    pred = (LsqPredictor(past_steps=4, horizon_steps=8, alphas=(1e-6,), centre_outputs=centre) if kind == "spc" else
+            HankelPredictor(past_steps=4, horizon_steps=8, lambdas_g=(1e-3,), centre_outputs=centre))
+    # tight interior-point tolerances: the reference must be closer to the optimum than the 1e-6 compared
+    tight = {"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12, "tol_feas": 1e-12}
+    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=LIM, horizon_steps=6, input_weight=1e-2,
+                                    past_slack_weight=slack, solver_options=tight).fit()
+    assert ctrl.method_ == kind
+    return ctrl, y
+
+
+@pytest.mark.parametrize("kind,centre,slack", [("spc", False, None), ("spc", True, None), ("deepc", False, None),
+                                               ("deepc", True, None), ("deepc", False, np.inf)])
+def test_the_direct_fast_step_equals_the_cvxpy_plan_where_limits_bind(kind, centre, slack):
+    # outside check: the cvxpy problem solved by CLARABEL (interior point), a different algorithm
+    ctrl, y_data = _direct_controller(kind, centre, slack)
+    if kind == "deepc" and slack is not None and ctrl._elim is None:
+        pytest.skip("hard past outputs on these data give dependent equalities")
+    step = FastStep(ctrl)
+    rng = np.random.default_rng(2)
+    base = y_data.mean(0)
+    target = base + np.array([3.0, -2.0, 1.5])
+    bound, last = 0, np.zeros(2)
+    for i in range(25):
+        u = rng.uniform(-0.5, 0.5, size=(5, 2))
+        y = base + rng.normal(size=(5, 3))
+        tgt = target if i % 2 else base - np.array([1.0, 0.5, 2.0])
+        ref = ctrl.plan(u, y, target=tgt, last_input=last, use_fast_path=False)
+        got = step.plan(u, y, target=tgt, last_input=last)
+        assert ref.ok and not got.fallback
+        np.testing.assert_allclose(got.inputs[0], ref.inputs[0], atol=1e-6)
+        bound += int(np.any(ref.active_limits["slew"][0]) or np.any(ref.active_limits["amplitude_max"][0])
+                     or np.any(ref.active_limits["amplitude_min"][0]))
+        last = ref.inputs[0]
+    assert bound >= 8  # a good share of the steps have a binding limit
+
+
+def test_direct_controllers_the_fast_step_cannot_reproduce_are_refused():
+    from stimsteer.sysid import HankelPredictor, Session
+
+    rng = np.random.default_rng(3)
+    u = rng.uniform(-1, 1, size=(200, 2))
+    y = np.column_stack([np.convolve(u[:, 0], [0.5, 0.3], "same"), u[:, 1] * 0.2, u.sum(1)])
+    pred = HankelPredictor(past_steps=3, horizon_steps=5, lambdas_g=(1e-3,), regularizer="l1")
+    ctrl = DataPredictiveController(predictor=pred.fit(Session(u=u, y=y, sample_rate_hz=100.0)), limits=LIM).fit()
+    with pytest.raises(InvalidParameterError, match="does not reduce to the inputs"):
+        FastStep(ctrl)
+    bounded = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=2, output_max=[1.0, np.inf, np.inf])
+    ctrl, _ = _direct_controller("spc")
+    with pytest.raises(InvalidParameterError, match="output bounds"):
+        FastStep(DataPredictiveController(predictor=ctrl.predictor_, limits=bounded).fit())
+
+
+def test_a_live_run_with_the_direct_fast_step_delivers_only_safe_inputs():
+    ctrl, _ = _direct_controller("deepc")
+    plant_model = StateSpaceModel(A=[[0.8]], B=[[0.5, 0.2]], C=[[1.0], [0.5], [-0.3]])
+    plant = LinearNetworkPlant(plant_model.A, plant_model.B, plant_model.C, measurement_noise_std=0.05,
+                               sample_rate_hz=100.0)
+    run = run_live(FastStep(ctrl), plant, n_steps=100, target=np.array([1.0, 0.5, -0.3]), pace="none", seed=3)
+    s = run.summary
+    assert s["unchecked_inputs"] == 0 and not any(s["delivered_violations"].values())
+    d = np.abs(np.diff(np.vstack([np.zeros(2), run.session.u]), axis=0))
+    assert np.all(d <= np.array([0.3, 0.2]) + 1e-12)  # slew, from the definitions
