@@ -183,3 +183,78 @@ def test_a_live_run_with_the_direct_fast_step_delivers_only_safe_inputs():
     assert s["unchecked_inputs"] == 0 and not any(s["delivered_violations"].values())
     d = np.abs(np.diff(np.vstack([np.zeros(2), run.session.u]), axis=0))
     assert np.all(d <= np.array([0.3, 0.2]) + 1e-12)  # slew, from the definitions
+
+
+# ------------------------------------------------------------------------------------------------ the box solver
+def _random_qp(rng, n):
+    G = rng.normal(size=(2 * n, n))
+    return G.T @ G / n + 1e-2 * np.eye(n)
+
+
+@pytest.mark.parametrize("n,scale", [(12, 0.3), (12, 30.0), (60, 3.0), (200, 50.0)])
+def test_the_box_solver_meets_the_kkt_conditions_and_equals_daqp(n, scale):
+    # outside check: the KKT conditions of a bound-constrained convex QP, counted from their definition (common
+    # practice, no source), and the dual active-set solver daqp (Arnström et al. 2022), a different algorithm
+    from stimsteer.control.mpc.fastqp import _BoxQP, _DenseQP
+
+    rng = np.random.default_rng(n)
+    H = _random_qp(rng, n)
+    lo, hi = -np.ones(n), np.full(n, 0.5)
+    lo[::7] = -1e30  # some variables without a lower bound
+    box, ref = _BoxQP(H, n), _DenseQP(H, None, n)
+    q = rng.normal(size=n) * scale
+    n_active = []
+    for _ in range(15):  # a drifting linear term, as in a loop: the warm start carries over
+        q = q + rng.normal(size=n) * scale * 0.2
+        z, status, _ = box.solve_finite(q, lo, hi)
+        zr, _, _ = ref.solve_finite(q, lo, hi)
+        assert status == "optimal"
+        g = H @ z + q
+        at_lo, at_hi = np.isclose(z, lo, atol=1e-12), np.isclose(z, hi, atol=1e-12)
+        free = ~(at_lo | at_hi)
+        assert np.all(z >= lo) and np.all(z <= hi)
+        assert np.all(np.abs(g[free]) <= 1e-8 * max(1.0, np.abs(q).max()))
+        assert np.all(g[at_lo] >= -1e-8) and np.all(g[at_hi] <= 1e-8)
+        np.testing.assert_allclose(z, zr, atol=1e-8)
+        n_active.append(int((~free).sum()))
+    assert box.n_fallback_ == 0
+    if scale >= 30:
+        assert max(n_active) > n // 2  # both of the solver's branches are exercised across the cases
+    if scale <= 0.3:
+        assert min(n_active) < n // 2
+
+
+def test_the_box_solver_falls_back_to_daqp_when_it_does_not_settle():
+    from stimsteer.control.mpc.fastqp import _BoxQP, _DenseQP
+
+    rng = np.random.default_rng(4)
+    H = _random_qp(rng, 30)
+    box = _BoxQP(H, 30)
+    box.max_iter = 0
+    q, lo, hi = rng.normal(size=30) * 20, -np.ones(30), np.ones(30)
+    z, status, _ = box.solve_finite(q, lo, hi)
+    assert box.n_fallback_ == 1 and status == "optimal"
+    np.testing.assert_allclose(z, _DenseQP(H, None, 30).solve_finite(q, lo, hi)[0], atol=1e-12)
+
+
+def test_a_long_bounds_only_fast_step_uses_the_box_solver_and_equals_the_cvxpy_plan(setup):
+    from stimsteer.control.mpc.fastqp import _BoxQP
+
+    model, _, target = setup
+    box = StimLimits(amplitude_min_ua=[-1.0, -0.5], amplitude_max_ua=[1.0, 0.8])
+    ctrl = ModelPredictiveController(model=model, limits=box, horizon_steps=90, input_weight=1e-2,
+                                     solver_options={"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12, "tol_feas": 1e-12},
+                                     output_offset=[1.0, 2.0, 3.0]).fit()
+    step = FastStep(ctrl)
+    assert isinstance(step._qp, _BoxQP)
+    rng = np.random.default_rng(6)
+    bound = 0
+    for i in range(8):
+        u, y = rng.uniform(-0.5, 0.5, size=(3, 2)), rng.normal(size=(3, 3))
+        tgt = target * (3.0 if i % 2 else 0.2)
+        ref = ctrl.plan(u, y, target=tgt, use_fast_path=False)
+        got = step.plan(u, y, target=tgt)
+        assert ref.ok and not got.fallback
+        np.testing.assert_allclose(got.inputs[0], ref.inputs[0], atol=1e-6)
+        bound += int(np.any(ref.active_limits["amplitude_max"][0]) or np.any(ref.active_limits["amplitude_min"][0]))
+    assert bound >= 3 and step._qp.n_fallback_ == 0
