@@ -92,8 +92,7 @@ class FastStep:
         slew = c._slew_rows
         H2 = 2.0 * 0.5 * (H + H.T)
         # bounds only and a long plan: the primal-dual box solver (see _BOX_MIN_VARS)
-        self._qp = (_BoxQP(H2, N * m) if slew is None and N * m >= _BOX_MIN_VARS else
-                    _DenseQP(H2, None if slew is None else slew[0].toarray(), N * m))
+        self._qp = _solver(H2, slew, N * m)
         self._lo, self._hi = np.tile(c._lo, N), np.tile(c._hi, N)
         self._row_lo = np.concatenate([self._lo, [] if slew is None else -slew[1]])
         self._row_hi = np.concatenate([self._hi, [] if slew is None else slew[1]])
@@ -204,6 +203,16 @@ def _deepc_step(c, T, m, p, N):
     off = np.zeros(p) if c._y_off is None else np.asarray(c._y_off, np.float64)
     q0 = -(Qy @ np.tile(off, T)) - Qr @ np.tile(off, N)
     return np.hstack([Qu, Qy]), Qr, q0, 0.5 * e["P"]
+
+
+def _solver(H2, slew, n):
+    """The box solver for long bounds-only plans (its Cholesky factor exists: ``H`` positive definite), else daqp."""
+    if slew is None and n >= _BOX_MIN_VARS:
+        try:
+            return _BoxQP(H2, n)
+        except np.linalg.LinAlgError:
+            pass
+    return _DenseQP(H2, None if slew is None else slew[0].toarray(), n)
 
 
 def _state_map(model, T):

@@ -258,3 +258,13 @@ def test_a_long_bounds_only_fast_step_uses_the_box_solver_and_equals_the_cvxpy_p
         np.testing.assert_allclose(got.inputs[0], ref.inputs[0], atol=1e-6)
         bound += int(np.any(ref.active_limits["amplitude_max"][0]) or np.any(ref.active_limits["amplitude_min"][0]))
     assert bound >= 3 and step._qp.n_fallback_ == 0
+
+
+def test_a_long_plan_without_input_weight_keeps_the_dense_dual_solver(setup):
+    # no input weight and no direct feedthrough: the last inputs move no output, so H is singular (no Cholesky)
+    from stimsteer.control.mpc.fastqp import _DenseQP
+
+    model, _, _ = setup
+    box = StimLimits(amplitude_min_ua=[-1.0, -0.5], amplitude_max_ua=[1.0, 0.8])
+    ctrl = ModelPredictiveController(model=model, limits=box, horizon_steps=90, input_weight=0.0).fit()
+    assert isinstance(FastStep(ctrl)._qp, _DenseQP)
