@@ -77,3 +77,14 @@ def test_the_dense_answer_is_refused_when_it_touches_the_bound(model, monkeypatc
     plan = ctrl.plan(np.zeros((3, 2)), np.zeros((3, 3)), target=[5.0, 0.0, 0.0])
     assert plan.ok and len(calls) == 1
     assert np.all(plan.predicted_outputs[:, 0] <= 0.5 + 1e-3)  # soft, with a large penalty: (nearly) held
+
+
+def test_with_an_energy_budget_the_soft_bounds_stay_with_osqp(model):
+    # the budget's binding test is a threshold on the fast answer: answers equal to rounding must not take
+    # different paths, so the OSQP problem with the slack is kept as it was
+    from stimsteer.control.mpc.fastqp import _FastQP
+
+    lim = StimLimits(amplitude_min_ua=[-2.0, -2.0], amplitude_max_ua=[2.0, 2.0], slew_max_ua=[0.5, 0.5],
+                     output_max=[0.5, np.inf, np.inf], energy_budget_ua2=10.0)
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=8, input_weight=1e-2).fit()
+    assert type(ctrl._fast) is _FastQP
