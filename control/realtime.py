@@ -86,7 +86,7 @@ class _Loop:
 
     def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity):
         self.c, self.plant, self.gate, self.T = controller, plant, gate, period
-        self.policy, self.pace, self.clock = policy, pace, clock
+        self.policy, self.pace, self.clock, self.sleep = policy, pace, clock, time.sleep
         # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
         self._u = np.zeros((capacity, controller.n_inputs_))
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
@@ -145,12 +145,12 @@ class _Loop:
             if left <= 0:
                 return now
             if left > _SPIN_S:
-                time.sleep(left - _SPIN_S)
+                self.sleep(left - _SPIN_S)
 
 
 def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
              seed=None, x0=None, warmup_inputs=None, calibration_steps=20, max_stall_s=1.0, use_fast_path=None,
-             output_units="a.u.", clock=time.perf_counter, offset_free=None) -> LiveRun:
+             output_units="a.u.", clock=time.perf_counter, offset_free=None, sleep=time.sleep) -> LiveRun:
     """Run a fitted controller against a plant in real time, with deadlines, and record the run as a session.
 
     Parameters
@@ -185,6 +185,8 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         Units of the recorded outputs in the session.
     clock : callable, default time.perf_counter
         Monotonic seconds.
+    sleep : callable, default time.sleep
+        Waits for the given seconds (``pace="wall"``); with ``clock``, a simulated time for tests and replays.
     offset_free : {None, "constant", "ramp"}, optional
         Plan offset-free with this output-disturbance model
         (:class:`~stimsteer.control.mpc.offset_free.OffsetFreeController`); the estimate is updated only from
@@ -212,6 +214,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     gate = InputGate(controller.limits_, energy_window_steps=window)
     capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
     loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
+    loop.sleep = sleep
     best = _calibrate(controller, warm, target, gate, int(calibration_steps), use_fast_path, clock)
     if period < best["min"]:
         raise InvalidParameterError(

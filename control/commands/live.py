@@ -61,8 +61,8 @@ def add_parser(sub) -> None:
                    "disturbance from the prediction errors and track without offset: constant offsets (constant) or "
                    "slow linear drift (ramp); default off")
     p.add_argument("--fast-step", action="store_true", help="decide each input with the precomputed fast step "
-                   "(state-space models with amplitude and slew limits only; needs the realtime extra, daqp) "
-                   "instead of the full plan: for sample rates in the kHz")
+                   "(state-space models or direct predictors; amplitude and slew limits only; needs the realtime "
+                   "extra, daqp) instead of the full plan: for sample rates in the kHz")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated plant's noise (default 0)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 

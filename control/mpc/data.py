@@ -268,6 +268,7 @@ class DataPredictiveController(_CondensedCore):
             "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "LY": LY, "hard": hard,
         }
         P = 2.0 * G_u.T @ H @ G_u
+        self._elim["P"] = 0.5 * (P + P.T)
         rows = self._box_rows(sp.eye(Nm, format="csr"))
         return _FastQP(sp.csc_matrix(0.5 * (P + P.T)), sp.vstack(rows, format="csc"), Nm)
 

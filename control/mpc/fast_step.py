@@ -1,14 +1,18 @@
 """The first input of a plan in tens of microseconds, for live loops: :class:`FastStep`.
 
 A fitted :class:`~stimsteer.control.mpc.ModelPredictiveController` (condensed, output target, box and slew limits)
-solves the same quadratic program at every sample; only its linear term and the first step's slew window change.
-:class:`FastStep` precomputes everything else once:
+or :class:`~stimsteer.control.mpc.DataPredictiveController` (the direct route: linear maps, or DeePC with its
+weights ``g`` minimised out) solves the same quadratic program over the inputs at every sample; only its linear term
+and the first step's slew window change. :class:`FastStep` precomputes everything else once:
 
-* the state estimate as a linear map of the past window (``StateSpaceModel.estimate_state`` is linear in it), so
-  the QP's linear term is one matrix product ``q = Q_w w + q_r`` of the window ``w = [vec(u_past); vec(y_past)]``
-  (``q_r`` for the target, recomputed only when the target changes);
+* the QP's linear term as one matrix product ``q = Q_w w + q_r`` of the window ``w = [vec(u_past); vec(y_past)]``
+  (``q_r`` for the target, recomputed only when the target changes): through the state estimate's linear map of
+  the window (``StateSpaceModel.estimate_state`` is linear in it), the predictor's map ``P`` (linear maps), or the
+  closed-form minimiser ``g*(u)`` of DeePC, affine in the past window and the target;
 * the dense QP, solved by a dual active-set method warm started from the last active set (``daqp``; the
-  ``realtime`` extra).
+  ``realtime`` extra), or, for long plans with amplitude bounds only, by a primal-dual active-set method on the
+  bounds (warm started too; ``daqp`` if it does not settle), whose step stays ``O(n²)`` however many bounds are
+  active.
 
 It returns only what a loop delivers (the first input, whether it is a fallback, the status), none of the
 :class:`Plan`'s packaging. The answer is verified against the hard limits before it is returned (amplitude and the
@@ -23,11 +27,15 @@ import numpy as np
 
 from ...sysid import InvalidParameterError, SessionError, check_fitted
 from .condensed import _LinearStateMap
-from .fastqp import _DenseQP, dense_solver_available
+from .fastqp import _BoxQP, _DenseQP, dense_solver_available
 
 __all__ = ["FastStep", "StepResult"]
 
 _ACCEPT_RTOL = 1e-7
+# From this many planned inputs on, a bounds-only QP goes to the primal-dual box solver: daqp's warm step grows with
+# the active bounds it keeps (benchmark system, most bounds active: 5 µs at 80 inputs, 67 µs at 320), the box
+# solver's is one O(n²) product plus ~20 µs of fixed cost (32 µs at 80, 50 µs at 320; bench_control.py).
+_BOX_MIN_VARS = 160
 
 
 class StepResult:
@@ -44,9 +52,10 @@ class FastStep:
 
     Parameters
     ----------
-    controller : ModelPredictiveController
-        Fitted, ``formulation="condensed"``, ``target_kind="output"``, no terminal weight; limits with amplitude
-        (and charge-density) bounds and slew limits only.
+    controller : ModelPredictiveController or DataPredictiveController
+        Fitted; a model controller with ``formulation="condensed"``, ``target_kind="output"``, no terminal weight;
+        a data controller on linear maps, or DeePC with a quadratic regulariser whose equalities are independent;
+        limits with amplitude (and charge-density) bounds and slew limits only.
 
     Attributes
     ----------
@@ -77,17 +86,13 @@ class FastStep:
         if why:
             raise InvalidParameterError(f"the fast step cannot reproduce this controller: {why}; use its plan().")
         self.controller_ = c = controller
-        model, T = c.model_, int(c.past_steps_)
+        T = int(c.past_steps_)
         m, p, N = int(c.n_inputs_), int(c.n_outputs_), int(c.horizon_steps_)
-        E = _state_map(model, T)
-        off = np.asarray(c._y_off, np.float64)
-        M = 2.0 * c._LG.T @ c._Lz  # q = M (fy − r)
-        self._Qw = M @ c._Phi_y @ E
-        self._q0 = M @ (np.tile(off, N) - c._Phi_y @ E @ np.concatenate([np.zeros(T * m), np.tile(off, T)]))
-        self._M = M
-        H = c._LG.T @ c._LG + c._Ru.T @ c._Ru
+        self._Qw, self._Qr, self._q0, H = _linear_step(c, T, m, p, N)
         slew = c._slew_rows
-        self._qp = _DenseQP(2.0 * 0.5 * (H + H.T), None if slew is None else slew[0].toarray(), N * m)
+        H2 = 2.0 * 0.5 * (H + H.T)
+        # bounds only and a long plan: the primal-dual box solver (see _BOX_MIN_VARS)
+        self._qp = _solver(H2, slew, N * m)
         self._lo, self._hi = np.tile(c._lo, N), np.tile(c._hi, N)
         self._row_lo = np.concatenate([self._lo, [] if slew is None else -slew[1]])
         self._row_hi = np.concatenate([self._hi, [] if slew is None else slew[1]])
@@ -117,7 +122,7 @@ class FastStep:
             if t.shape != (self._p,) or not np.all(np.isfinite(t)):
                 raise SessionError(f"the fast step takes a constant output target of {self._p} finite values; got "
                                    f"shape {t.shape}.")
-            self._target, self._qr = t.copy(), self._q0 - self._M @ np.tile(t, self._N)
+            self._target, self._qr = t.copy(), self._q0 + self._Qr @ np.tile(t, self._N)
         return self._qr
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
@@ -156,16 +161,58 @@ class FastStep:
 
 def _unsupported(c) -> str:
     """Why a controller is out of reach of the fast step ('' when it is not)."""
+    mpc = hasattr(c, "model_")
+    method = getattr(c, "method_", None)
     checks = (
-        (not hasattr(c, "model_"), "it is not a model predictive controller (the direct route plans with plan())"),
-        (getattr(c, "formulation", "") != "condensed", "its formulation is not condensed"),
+        (not mpc and method not in ("spc", "deepc"), "it is neither a model nor a data predictive controller"),
+        (mpc and getattr(c, "formulation", "") != "condensed", "its formulation is not condensed"),
         (getattr(c, "target_kind_", "") != "output", "it plans towards a state"),
         (getattr(c, "_LpT", None) is not None, "it has a terminal weight"),
         (getattr(c, "_energy", None) is not None, "its limits have an energy budget"),
         (getattr(c, "_idx_b", np.zeros(0)).size > 0, "its limits have output bounds"),
+        (method == "deepc" and getattr(c, "_elim", None) is None,
+         "its DeePC problem does not reduce to the inputs (an l1 regulariser, or dependent equalities)"),
         (not dense_solver_available(), "the dense solver daqp is not installed (pip install 'stimsteer[realtime]')"),
     )
     return "; ".join(why for bad, why in checks if bad)
+
+
+def _linear_step(c, T, m, p, N):
+    """``(Qw, Qr, q0, H)``: the QP ``min uᵀHu + qᵀu`` over the inputs of the plan, ``q = Qw w + Qr vec(r) + q0``
+    for the window ``w = [vec(u_past); vec(y_past)]`` of ``T`` samples and the target ``r`` (``N`` rows)."""
+    if getattr(c, "method_", None) == "deepc":
+        return _deepc_step(c, T, m, p, N)
+    M = 2.0 * c._LG.T @ c._Lz  # q = M (fy − r), fy the free response
+    H = c._LG.T @ c._LG + c._Ru.T @ c._Ru
+    if hasattr(c, "model_"):  # fy = Phi_y x̂ + offset, x̂ = E (w − offset of the past outputs)
+        E = _state_map(c.model_, T)
+        off = np.asarray(c._y_off, np.float64)
+        w_off = np.concatenate([np.zeros(T * m), np.tile(off, T)])
+        return M @ c._Phi_y @ E, -M, M @ (np.tile(off, N) - c._Phi_y @ E @ w_off), H
+    return M @ c._P, -M, M @ c._c, H  # linear maps (SPC): fy = P w + c
+
+
+def _deepc_step(c, T, m, p, N):
+    """DeePC with ``g`` minimised out (``DataPredictiveController._fast_deepc_eliminated``): ``q`` is linear in
+    ``[u_past; 0]``, the past outputs and the weighted target, all in the blocks' (centred) coordinates."""
+    e = c._elim
+    n_eq = c._E.shape[0]
+    Qu = e["Q_f"][:, :T * m]
+    Qy = e["Q_f"][:, n_eq:n_eq + T * p] if e["hard"] else e["Q_y"]
+    Qr = e["Q_r"] @ c._Lz
+    off = np.zeros(p) if c._y_off is None else np.asarray(c._y_off, np.float64)
+    q0 = -(Qy @ np.tile(off, T)) - Qr @ np.tile(off, N)
+    return np.hstack([Qu, Qy]), Qr, q0, 0.5 * e["P"]
+
+
+def _solver(H2, slew, n):
+    """The box solver for long bounds-only plans (its Cholesky factor exists: ``H`` positive definite), else daqp."""
+    if slew is None and n >= _BOX_MIN_VARS:
+        try:
+            return _BoxQP(H2, n)
+        except np.linalg.LinAlgError:
+            pass
+    return _DenseQP(H2, None if slew is None else slew[0].toarray(), n)
 
 
 def _state_map(model, T):

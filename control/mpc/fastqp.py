@@ -140,3 +140,98 @@ class _DenseQP:
         self._model = None  # start the next solve afresh
         kind = "infeasible" if flag == -1 else "failed"
         return None, kind, f"DAQP returned exit flag {flag}"
+
+
+class _BoxQP:
+    """``min ½zᵀHz + qᵀz s.t. l <= z <= u`` (bounds only) by a primal-dual active-set method, warm started.
+
+    Each iteration solves the problem with the bounds of the current active set held as equalities: on the few
+    free variables (``H_FF`` factorised) when most bounds are active, else through the precomputed ``H⁻¹`` and the
+    Schur complement ``(H⁻¹)_AA`` of the active ones. The sets are then updated from the primal violations and the
+    signs of the multipliers (Hintermüller, Ito & Kunisch 2002, "The primal-dual active set strategy as a semismooth
+    Newton method", SIAM J. Optim. 13:865–888). It stops when the KKT conditions hold (rounding level: the answer is
+    exact, like an active-set solver's) and falls back to the dense dual active-set solver when they do not within
+    :attr:`max_iter` iterations. A warm start from the last active set makes a loop's step one or two iterations
+    costing ``O(n²)`` at most, where a dual active-set solver pays ``O(n²)`` per active bound it keeps.
+    """
+
+    label = "box active set (dense, warm)"
+    max_iter = 25
+
+    def __init__(self, H, n_vars):
+        import scipy.linalg as sla
+
+        self.n_vars = n_vars
+        self._H = np.ascontiguousarray(H, dtype=np.float64)
+        self._Hinv = sla.cho_solve(sla.cho_factor(self._H), np.eye(n_vars))
+        self._posv = sla.get_lapack_funcs("posv", (self._H,))
+        self._fallback = _DenseQP(self._H, None, n_vars)
+        self._state = np.zeros(n_vars, np.int8)  # -1 at the lower bound, +1 at the upper, 0 free
+        self.n_iter_, self.n_fallback_ = 0, 0
+
+    def reset(self):
+        """Forget the warm start (the next solve starts with every variable free)."""
+        self._state[:] = 0
+        self._fallback.reset()
+
+    def solve(self, q, l, u):
+        lo = np.clip(np.asarray(l, np.float64), -_BIG, _BIG)
+        hi = np.clip(np.asarray(u, np.float64), -_BIG, _BIG)
+        return self.solve_finite(np.asarray(q, np.float64), lo, hi)
+
+    def _equality_solve(self, q, lo, hi, s):
+        """``z`` and the gradient ``g = Hz + q`` with the active bounds held (``g`` is zero on the free ones)."""
+        free = s == 0
+        z = np.where(s > 0, hi, lo)
+        z[free] = 0.0
+        n_free = int(np.count_nonzero(free))
+        if 2 * n_free <= self.n_vars:
+            g = self._H @ z
+            g += q
+            if n_free:
+                F = np.flatnonzero(free)
+                HF = self._H[:, F]
+                _, c, info = self._posv(HF[F], -g[F])
+                if info:
+                    raise np.linalg.LinAlgError("singular free block")
+                z[F] = c
+                g += HF @ c
+                g[F] = 0.0
+            return z, g
+        hq = self._Hinv @ q
+        if n_free == self.n_vars:
+            return -hq, np.zeros(self.n_vars)
+        A = np.flatnonzero(~free)
+        HA = self._Hinv[:, A]
+        _, nu, info = self._posv(HA[A], -(z[A] + hq[A]))
+        if info:
+            raise np.linalg.LinAlgError("singular active block")
+        zA = z[A]
+        z = -hq
+        z -= HA @ nu
+        z[A] = zA
+        g = np.zeros(self.n_vars)
+        g[A] = -nu
+        return z, g
+
+    def solve_finite(self, q, lo, hi):
+        """:meth:`solve` for float64 vectors whose bounds are finite already."""
+        s = self._state
+        s[((s < 0) & (lo <= -_BIG)) | ((s > 0) & (hi >= _BIG))] = 0  # no bound to hold there
+        tol = 1e-12 * max(1.0, float(np.abs(q).max()))
+        for it in range(self.max_iter):
+            try:
+                z, g = self._equality_solve(q, lo, hi, s)
+            except np.linalg.LinAlgError:
+                break
+            new = (z > hi).view(np.int8) - (z < lo).view(np.int8)  # free ones that break a bound
+            keep = s * g <= tol  # active ones whose multiplier has its sign (g >= 0 at lower, <= 0 at upper)
+            keep &= s != 0
+            new[keep] = s[keep]
+            if (new == s).all():
+                self.n_iter_ = it + 1
+                return z, "optimal", ""
+            s[:] = new
+        self.n_fallback_ += 1
+        s[:] = 0
+        return self._fallback.solve_finite(q, lo, hi)

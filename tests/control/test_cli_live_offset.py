@@ -68,3 +68,31 @@ def test_live_fast_step_refuses_what_it_cannot_reproduce(files, capsys):  # noqa
                       "constant"))
     err = capsys.readouterr().err
     assert code == 2 and "--offset-free needs the full plan" in err
+
+
+@pytest.mark.parametrize("method", ["lsq", "hankel"])
+def test_live_fast_step_accepts_a_direct_model(files, capsys, method):  # noqa: F811
+    pytest.importorskip("daqp")
+    import numpy as np
+
+    from stimsteer.control.plants import load_plant, record_session
+    from stimsteer.sysid import HankelPredictor, LsqPredictor
+    from stimsteer.sysid.storage import save_predictor
+
+    u = np.random.default_rng(8).uniform(-1, 1, size=(400, 2))
+    session = record_session(load_plant(files / "plant.h5"), u, seed=1)
+    pred = (LsqPredictor(past_steps=3, horizon_steps=6, alphas=(1e-6,)) if method == "lsq" else
+            HankelPredictor(past_steps=3, horizon_steps=6, lambdas_g=(1e-3,))).fit(session)
+    prov = {"session": {"input_names": ["site_a", "site_b"], "input_units": ["uA", "uA"],
+                        "output_names": ["lfp_0", "lfp_1", "lfp_2"], "output_units": ["uV"] * 3,
+                        "sample_rate_hz": 50.0}}
+    save_predictor(pred, files / f"direct_{method}.h5", provenance=prov)
+    (files / "box.toml").write_text(BOX)
+    args = _args(files, f"run_fast_{method}", "--plant", str(files / "plant.h5"), "--fast-step")
+    args[1] = str(files / f"direct_{method}.h5")
+    args[args.index("--limits") + 1] = str(files / "box.toml")
+    code = main(args)
+    printed = capsys.readouterr()
+    assert code == 0, printed.out + printed.err
+    summary = json.loads((files / f"run_fast_{method}" / "run.json").read_text())
+    assert summary["unchecked_inputs"] == 0 and not any(summary["delivered_violations"].values())

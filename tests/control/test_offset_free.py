@@ -144,13 +144,39 @@ def test_reset_forgets_the_estimates(system):
     np.testing.assert_allclose(a.inputs, b.inputs, atol=1e-7)
 
 
+class _PlanClock:
+    """Seconds that move by 0.1 ms per plan and not otherwise."""
+
+    def __init__(self):
+        self.t = 0.0
+
+    def __call__(self):
+        return self.t
+
+
+class _Timed:
+    """A controller whose plans take 0.1 ms of ``clock``'s time."""
+
+    def __init__(self, inner, clock):
+        self._c, self._clock = inner, clock
+
+    def __getattr__(self, name):
+        return getattr(self._c, name)
+
+    def plan(self, *args, **kw):
+        self._clock.t += 1e-4
+        return self._c.plan(*args, **kw)
+
+
 def test_live_runner_tracks_offset_free_and_records_it(system):
     from stimsteer.control.realtime import run_live
 
     model, r, _ = system
     ctrl = dict(_controllers(system))["model"]
+    clock = _PlanClock()  # time moves only with the plans (0.1 ms each): no deadline passes, whatever the load
+    ctrl = _Timed(ctrl, clock)
     run = run_live(ctrl, _DisturbedPlant(model, lambda k: DIST), n_steps=200, target=r, pace="none",
-                   offset_free="constant", calibration_steps=2)
+                   offset_free="constant", calibration_steps=2, clock=clock)
     s = run.session
     start = s.metadata["warmup_samples"]
     y = s.y[start:start + 200]
@@ -159,3 +185,4 @@ def test_live_runner_tracks_offset_free_and_records_it(system):
     np.testing.assert_allclose(run.summary["offset_free"]["disturbance_estimate"], DIST, atol=1e-6)
     assert run.summary["unchecked_inputs"] == 0
     assert not any(run.summary["delivered_violations"].values())
+    assert run.summary["counts"]["overrun"] == 0 and run.summary["counts"]["planned"] == 200

@@ -182,23 +182,33 @@ def test_a_plan_that_breaks_the_limits_is_stopped_by_the_gate(system):
     assert run.session.metadata["markers"]["gate_amplitude"][0] == PAST + 3
 
 
+class _VirtualTime(_FakeClock):
+    """Simulated seconds for a wall-paced run: each reading takes 1 µs, sleeping moves the time on at once."""
+
+    def __call__(self):
+        self.t += 1e-6
+        return self.t
+
+    def sleep(self, seconds):
+        self.t += seconds
+
+
 def test_a_wall_paced_run_marks_missed_ticks_after_a_long_step(system):
+    # simulated time (deterministic whatever the machine's load): plans take 0.1 ms, the plan of step 8 takes 60 ms
     model, target = system
-
-    class Sleepy(_Faulty):
-        def plan(self, u_past, y_past, **kw):
-            if self.calls == 8:
-                time.sleep(0.06)  # six periods of 10 ms
-            return super().plan(u_past, y_past, **kw)
-
-    run = run_live(Sleepy(_controller(model)), _plant(model, rate=100.0), n_steps=30, target=target, pace="wall")
-    # a busy machine can add late steps of its own, so count rather than point at step 8
-    assert run.summary["counts"]["overrun"] >= 1 and run.summary["counts"]["missed"] >= 4
-    assert np.isfinite(run.jitter_s[1:]).all()
+    vt = _VirtualTime()
+    c = _Faulty(_controller(model), clock=vt, late={8}, late_s=0.06)
+    run = run_live(c, _plant(model, rate=100.0), n_steps=30, target=target, pace="wall", clock=vt, sleep=vt.sleep)
+    # step 8 ends 60 ms after its tick: it overran, and the ticks of steps 9-13 passed while it ran (10 ms each)
+    assert run.events[8] == "overrun" and run.events[9:14] == ("missed",) * 5
+    assert set(run.events[:8] + run.events[14:]) == {"planned"}
+    assert run.summary["counts"]["overrun"] == 1 and run.summary["counts"]["missed"] == 5
+    assert [i - PAST for i in run.session.metadata["markers"]["missed"]] == [9, 10, 11, 12, 13]
+    assert np.isfinite(run.jitter_s[1:]).all() and np.isnan(run.latency_s[9:14]).all()
     u = np.asarray(run.session.u)
-    for k, e in enumerate(run.events):  # every late step held the last input (unless holding broke the budget)
-        if e in ("overrun", "missed"):
-            np.testing.assert_array_equal(u[PAST + k], u[PAST + k - 1])
+    for k in range(8, 14):  # the overrun and the missed ticks held the last input (policy "hold")
+        np.testing.assert_array_equal(u[PAST + k], u[PAST + 7])
+    assert not np.array_equal(u[PAST + 14], u[PAST + 7])  # planning resumes
     assert _independent_check(u) == (0, 0, 0)
 
 
@@ -308,7 +318,7 @@ def test_inputs_are_not_modified(system):
     model, target = system
     t = target.copy()
     warm = np.zeros((PAST, M))
-    run_live(_controller(model), _plant(model), n_steps=5, target=t, pace="none", warmup_inputs=warm)
+    _live(_controller(model), _plant(model), n_steps=5, target=t, pace="none", warmup_inputs=warm)
     np.testing.assert_array_equal(t, target)
     assert np.all(warm == 0)
     assert isinstance(Session, type)
