@@ -65,16 +65,17 @@ class Scenario:
     burst_min_ua: float = 5.0  # bursts: amplitude uniform in [burst_min_ua, the site's largest]
     burst_pulses: tuple = (1, 3)  # pulses per burst
     burst_gap_s: tuple = (0.04, 0.24)  # silence between bursts
-    keyed_level_fraction: tuple = (0.25, 0.75)  # keyed trains: a level of 25-75 % of the site's largest amplitude
-    keyed_hold_pulses: tuple = (1, 6)  # ... switched on or off (at random) every 1-6 pulses
+    modulated_low_fraction: tuple = (0.1, 0.4)  # modulated trains: a low level, 10-40 % of the site's largest ...
+    modulated_high_fraction: tuple = (0.6, 1.0)  # ... and a high level, 60-100 %, ...
+    modulated_hold_pulses: tuple = (1, 6)  # ... one of the two chosen at random every 1-6 pulses
     segment_s: tuple = (0.4, 1.2)
-    keyed_share: float = 0.4  # probability that a stimulation segment is a keyed train instead of bursts
+    modulated_share: float = 0.4  # probability that a stimulation segment is a modulated train instead of bursts
     process_noise_std: float = 0.02  # node units
     measurement_noise_std_uv: float = 3.0
     drift_amplitude_uv: float = 2.0
     drift_period_s: float = 40.0
     drift_step_std_uv: float = 0.005
-    artifact_gain_uv_per_ua: float = 1.0
+    artifact_gain_uv_per_ua: float = 1.5
     artifact_decay_s: float = 0.008
     output_resolution_uv: float = 0.05
     saturating_leak: float = 0.5
@@ -167,28 +168,29 @@ def _bursts(rng, n: int, top: float, sc: Scenario, f: float) -> np.ndarray:
     return a
 
 
-def _keyed(rng, n: int, top: float, sc: Scenario) -> np.ndarray:
-    """A continuous train keyed on and off at random: a level, or no pulse, held for a random number of pulses."""
-    level, a, k = rng.uniform(*sc.keyed_level_fraction) * top, np.zeros(n), 0
+def _modulated(rng, n: int, top: float, sc: Scenario) -> np.ndarray:
+    """A train on throughout: its amplitude switched at random between a low and a high level every few pulses."""
+    low, high = (rng.uniform(*sc.modulated_low_fraction) * top, rng.uniform(*sc.modulated_high_fraction) * top)
+    a, k = np.empty(n), 0
     while k < n:
-        hold = int(rng.integers(sc.keyed_hold_pulses[0], sc.keyed_hold_pulses[1] + 1))
-        a[k:k + hold] = level * float(rng.integers(0, 2))
+        hold = int(rng.integers(sc.modulated_hold_pulses[0], sc.modulated_hold_pulses[1] + 1))
+        a[k:k + hold] = high if rng.integers(0, 2) else low
         k += hold
     return a
 
 
 def _trial_pulses(rng, sc: Scenario, mapping: InputMapping, t0: float) -> list:
-    """The pulses of one trial starting at ``t0`` s: a baseline, then segments of bursts or keyed trains."""
+    """The pulses of one trial starting at ``t0`` s: a baseline, then segments of bursts or modulated trains."""
     slots = [np.zeros(int(round(sc.trial_s * s.frequency_hz))) for s in mapping.sites]
     t = sc.baseline_s
     while t < sc.trial_s - 1e-9:
         stop = min(t + rng.uniform(*sc.segment_s), sc.trial_s)
-        keyed = rng.random() < sc.keyed_share
+        modulated = rng.random() < sc.modulated_share
         for j, site in enumerate(mapping.sites):
             f = site.frequency_hz
             a, b = int(math.ceil(t * f - 1e-9)), int(math.ceil(stop * f - 1e-9))
             top = sc.amplitude_max_ua[j]
-            slots[j][a:b] = _keyed(rng, b - a, top, sc) if keyed else _bursts(rng, b - a, top, sc, f)
+            slots[j][a:b] = _modulated(rng, b - a, top, sc) if modulated else _bursts(rng, b - a, top, sc, f)
         t = stop
     rows = []
     for j, site in enumerate(mapping.sites):
@@ -204,7 +206,8 @@ def build_pulses(seed: int = DEMO_SEED, *, scenario: Scenario = SCENARIO) -> tup
 
     Rest, trial, rest, trial, ...: each trial opens with an unstimulated baseline, then runs segments of random
     length. Per segment every site either fires *bursts* (1-3 pulses of one random amplitude, random silences) or a
-    *keyed train* (a random level switched on and off every few pulses). The amplitude is a magnitude on the
+    *modulated train* (on throughout, its amplitude switched at random between a low and a high level every few
+    pulses). The amplitude is a magnitude on the
     stimulator's resolution; polarity is the site's leading phase. Pulse onsets are on the stimulator's clock,
     which is the recording's (t = 0 at sample 0).
 
