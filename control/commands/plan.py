@@ -31,6 +31,7 @@ from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
 from ..figures.pulse_plan import pulse_plan_figure_of
 from .._plan_physical import plan_limits
+from .._pulse_text import pulse_plan_lines
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
@@ -153,6 +154,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     if physical is not None:
         lines.append(f"pulses: {physical.record['status']}; checks "
                      f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
+        lines += pulse_plan_lines(physical, plan)  # per site: pulses, amplitudes, charge, the tightest check
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
     return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
 

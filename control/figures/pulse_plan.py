@@ -20,73 +20,13 @@ import textwrap
 import numpy as np
 from matplotlib.figure import Figure
 
-from ...sysid.stimulation import decode_plan
+from .._pulse_text import _fmt, _unit, check_usage, delivered
 from ._glyphs import GlyphSafeFigure
 
 __all__ = ["pulse_plan_figure", "pulse_plan_figure_of", "check_usage"]
 
 _INK, _SOFT, _WARN, _FAIL, _LIMIT = "#24434f", "#9fb8c2", "#d9902a", "#b2302b", "#6b6b6b"
 _ZONE = "#eef2ea"
-_RULE_NAMES = {"amplitude": "amplitude (both phases)", "charge_per_phase": "charge per phase",
-               "shannon": "charge density, Shannon", "charge_injection": "charge density, material",
-               "frequency": "frequency", "duty_cycle": "duty cycle", "train_length": "train length",
-               "irradiance": "irradiance", "charge_rate_window": "charge in every window"}
-
-
-def _unit(text: str) -> str:
-    """Units as a reader writes them: µ for the ``u`` prefix, ² for ``^2``."""
-    out = []
-    for word in str(text).split(" "):
-        if len(word) > 1 and word[0] == "u" and word[1] in "ACsVm":
-            word = "µ" + word[1:]
-        out.append(word.replace("^2", "²"))
-    return " ".join(out)
-
-
-def _fmt(v: float) -> str:
-    return f"{v:.3g}" if abs(v) >= 1e-3 or v == 0 else f"{v:.2e}"
-
-
-def check_usage(check: dict, site=None) -> dict | None:
-    """One check as the share of its limit the plan uses, in a linear physical quantity (None: not drawn).
-
-    Returns ``{"label", "used", "text", "passed"}``; ``used`` is value / limit (1 = at the limit). The Shannon
-    check (a log rule, ``k = log10(D) + log10(Q)``) is shown as the charge density reached over the density the rule
-    allows at that charge: with ``Q_max = sqrt(10**k · A)``, ``D / D_max = Q / Q_max``. Checks without a finite
-    limit and the charge-balance check (rounding only) are not drawn.
-
-    Examples
-    --------
-    >>> u = check_usage({"rule": "amplitude", "site": "s", "limit": 50.0, "value": 40.0, "unit": "uA",
-    ...                  "margin": 10.0, "passed": True})
-    >>> round(u["used"], 2), u["text"]
-    (0.8, '40 of 50 µA, margin 10 (20 %)')
-    """
-    rule, limit, value = check["rule"], check["limit"], check["value"]
-    if rule == "charge_balance" or limit is None or not math.isfinite(limit) or limit <= 0:
-        return None
-    if (rule == "duty_cycle" and limit >= 1.0) or (rule == "frequency_min" and check["passed"]):
-        return None  # a duty of 1 allows anything; the lowest frequency is drawn only when it fails
-    if rule == "shannon":
-        if site is None:
-            return None
-        area = site.contact_area_cm2
-        q = 0.0 if not math.isfinite(value) else math.sqrt(10.0 ** value * area)  # Q² / A = 10**k
-        q_max = math.sqrt(10.0 ** limit * area)
-        used = q / q_max
-        text = (f"{_fmt(q / area)} of {_fmt(q_max / area)} µC/cm² (k {_fmt(value) if q else '-inf'} ≤ "
-                f"{_fmt(limit)}), margin {100 * (1 - used):.0f} %")
-        return {"label": _RULE_NAMES[rule], "used": used, "text": text, "passed": bool(check["passed"])}
-    if rule == "frequency_min":
-        used, label = limit / value if value else math.inf, "frequency (lowest allowed)"
-    else:
-        used, label = value / limit, _RULE_NAMES.get(rule.replace("_max", ""), rule)
-    unit = check["unit"].split(" per ")[0] if rule == "charge_rate_window" else check["unit"]
-    margin = check["margin"]
-    text = f"{_fmt(value)} of {_fmt(limit)} {_unit(unit)}, margin {_fmt(margin)} ({100 * margin / abs(limit):.0f} %)"
-    return {"label": label, "used": used, "text": text, "passed": bool(check["passed"])}
-
-
 def pulse_plan_figure(pulses, mapping, compiled, checks, *, status: str, horizon_s: float, what: str = "",
                       window_pulses=None, caution: str = "") -> Figure:
     """Draw the pulses of a plan per site in physical units, and the margin of every safety check.
@@ -262,13 +202,8 @@ def _margin_chart(ax, rows) -> None:
 def pulse_plan_figure_of(physical, plan, *, what: str = "") -> Figure:
     """:func:`pulse_plan_figure` of a written physical plan (``control._plan_physical.PhysicalPlan``): the pulses it
     delivers (none when a check failed), its checks and status, the inputs applied before it in the window."""
-    u = np.asarray(plan.inputs, np.float64)
-    if not physical.delivered:
-        u = np.zeros_like(u)
-    rate = physical.mapping.sample_rate_hz
-    past = np.zeros((0, u.shape[1])) if physical.u_past is None else np.asarray(physical.u_past, np.float64)
-    everything = decode_plan(np.vstack([past, u]), physical.mapping, start_time_s=-past.shape[0] / rate)
-    return pulse_plan_figure(decode_plan(u, physical.mapping), physical.mapping, physical.compiled,
-                             physical.record["checks"], status=str(physical.record["status"]),
-                             horizon_s=u.shape[0] / rate, what=what, window_pulses=everything,
+    u, pulses, everything = delivered(physical, plan)
+    return pulse_plan_figure(pulses, physical.mapping, physical.compiled, physical.record["checks"],
+                             status=str(physical.record["status"]), horizon_s=u.shape[0] /
+                             physical.mapping.sample_rate_hz, what=what, window_pulses=everything,
                              caution=getattr(plan, "caution", ""))

@@ -90,3 +90,32 @@ def test_a_failed_check_is_red_and_says_failed(tmp_path):
     assert "FAILED" in _texts(fig) and not pp.delivered
     bars = [p for ax in fig.axes for p in ax.patches if p.get_facecolor()[:3] == (0xb2 / 255, 0x30 / 255, 0x2b / 255)]
     assert bars  # the failed check's bar is red
+
+
+@pytest.mark.parametrize("unit, per", [("uA", 1.0), ("mA", 1000.0)])
+def test_the_console_names_each_sites_pulses_in_its_unit_and_its_tightest_check(tmp_path, unit, per):
+    # Before: `plan --stimulation` printed only "pulses: optimal; checks all passed".
+    from stimsteer.control._pulse_text import pulse_plan_lines
+    from stimsteer.sysid.stimulation import decode_plan
+
+    pp, plan = _plan(_mapping(unit), 100.0, 30.0)
+    pp.write(tmp_path, plan, dict(_BASE))
+    lines = pulse_plan_lines(pp, plan)
+    pulses = decode_plan(plan.inputs, pp.mapping)
+    a = pulses["amplitude_ua"] / per  # in the site's own unit
+    shown = "µA" if unit == "uA" else "mA"
+    assert lines[0].startswith(f"  a: {len(pulses)} pulse(s) at 250 Hz, {a.min():.3g} .. {a.max():.3g} {shown}, "
+                               "cathodic-first symmetric biphasic, 100 µs leading phase")
+    # Q = I · PW (common practice, no source): the largest charge per phase is the largest amplitude x 100 µs
+    assert f"up to {pulses['amplitude_ua'].max() * 100e-6:.3g} µC per phase" in lines[0]
+    assert "closest to its limit: " in lines[0] and lines[-1].startswith("  all sites: closest to its limit: charge")
+
+
+def test_the_console_says_which_check_failed(tmp_path):
+    from stimsteer.control._pulse_text import pulse_plan_lines
+
+    pp, plan = _plan(_mapping(), 100.0, 30.0, past=np.full((60, 1), 100.0))
+    pp.write(tmp_path, plan, dict(_BASE))
+    lines = pulse_plan_lines(pp, plan)
+    assert lines[0] == "  a: no pulse; closest to its limit: " + lines[0].split("closest to its limit: ")[1]
+    assert lines[-1].startswith("  all sites: FAILED charge in every window")
