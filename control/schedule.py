@@ -418,9 +418,13 @@ def _budget_warning(budget, window, gain, lo, hi, rate) -> str:
     per_window = int(budget // float(np.sum(peak ** 2)))  # full-amplitude pulses on every input that fit a window
     alt = (f"--kind pulses with --pulse-rate-hz {per_window * rate / window:.3g} or less keeps full-amplitude pulses "
            "within the budget" if per_window >= 1 else "no full-amplitude pulse fits the budget either")
+    lo0, hi0 = float(lo[0]), float(hi[0])
+    rest = min(max(0.0, lo0), hi0)  # deviations are measured from rest, inside the window
+    used = (f"±{gain * hi0:.3g} of ±{hi0:.3g}" if lo0 == -hi0 else
+            f"{rest + gain * (lo0 - rest):.3g} .. {rest + gain * (hi0 - rest):.3g} of {lo0:.3g} .. {hi0:.3g}")
     return (f"the energy budget ({budget:g} µA² per {window} samples, {window / rate:.4g} s) scales every deviation "
             f"from rest by {gain:.3g}: the schedule uses {100 * gain:.0f} % of the declared amplitude window "
-            f"(e.g. ±{gain * float(peak[0]):.3g} of ±{float(peak[0]):.3g} µA on the first input). Alternatives: "
+            f"(e.g. {used} µA on the first input). Alternatives: "
             f"{alt}; or declare a budget for this exploration session in the limits file (it was set for "
             "planning), or give a longer --energy-window-steps if the budget speaks of a longer window.")
 

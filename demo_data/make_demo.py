@@ -11,11 +11,13 @@ in ``demo_data/README.md``; no real recording is involved.
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from stimsteer.control.plants import (
     LinearNetworkPlant,
@@ -26,13 +28,17 @@ from stimsteer.control.plants import (
 )
 from stimsteer.sysid.exceptions import StimsteerError
 from stimsteer.sysid.io import save_session
+from stimsteer.sysid.stimulation import (PULSE_TABLE_COLUMNS, InputMapping, encode_pulse_table, load_stimulation,
+                                         pulse_table_record)
 
-__all__ = ["DEMO_SEED", "Scenario", "SCENARIO", "build_plant", "build_schedule", "make_demo", "write_demo", "main"]
+__all__ = ["DEMO_SEED", "Scenario", "SCENARIO", "build_plant", "build_pulses", "build_schedule", "demo_mapping",
+           "make_demo", "write_demo", "main"]
 
 DEMO_SEED = 20240917
 HERE = Path(__file__).resolve().parent
 SESSION_FILE = "demo_session.h5"
 PLANT_FILE = "demo_plant.h5"
+STIMULATION_FILE = "demo_stimulation.toml"
 
 
 @dataclass(frozen=True)
@@ -53,13 +59,17 @@ class Scenario:
     coupling_scale: float = 0.06  # max pole radius + coupling_scale < 1 keeps sigma_max(A) < 1
     drive_per_ua: float = 0.01  # node units per µA
     contact_gain_uv: float = 12.0  # µV per node unit
-    max_pulse_ua: float = 40.0
-    prbs_level_ua: tuple = (10.0, 30.0)
-    pulse_gap_s: tuple = (0.04, 0.24)
-    pulse_width_samples: tuple = (1, 3)
-    prbs_hold_samples: tuple = (1, 6)
+    # the delivered trains (their fixed width, waveform and frequency are in demo_stimulation.toml)
+    amplitude_max_ua: tuple = (40.0, 40.0, 30.0)  # largest pulse amplitude per site (stim_c's material allows 33.3)
+    amplitude_step_ua: float = 0.1  # the stimulator's amplitude resolution
+    burst_min_ua: float = 5.0  # bursts: amplitude uniform in [burst_min_ua, the site's largest]
+    burst_pulses: tuple = (1, 3)  # pulses per burst
+    burst_gap_s: tuple = (0.04, 0.24)  # silence between bursts
+    modulated_low_fraction: tuple = (0.1, 0.4)  # modulated trains: a low level, 10-40 % of the site's largest ...
+    modulated_high_fraction: tuple = (0.6, 1.0)  # ... and a high level, 60-100 %, ...
+    modulated_hold_pulses: tuple = (1, 6)  # ... one of the two chosen at random every 1-6 pulses
     segment_s: tuple = (0.4, 1.2)
-    prbs_share: float = 0.4  # probability that a stimulation segment is pseudo-random binary instead of pulses
+    modulated_share: float = 0.4  # probability that a stimulation segment is a modulated train instead of bursts
     process_noise_std: float = 0.02  # node units
     measurement_noise_std_uv: float = 3.0
     drift_amplitude_uv: float = 2.0
@@ -132,60 +142,111 @@ def _rhythms(rng, sc: Scenario) -> np.ndarray:
     return A
 
 
-def _pulses(rng, n: int, sc: Scenario) -> np.ndarray:
-    fs, u = sc.sample_rate_hz, np.zeros(n)
-    gap = (int(round(sc.pulse_gap_s[0] * fs)), int(round(sc.pulse_gap_s[1] * fs)))
+def demo_mapping(scenario: Scenario = SCENARIO) -> InputMapping:
+    """The declared mapping of the demo's sites (``demo_stimulation.toml``) on the scenario's grid."""
+    mapping = InputMapping(load_stimulation(HERE / STIMULATION_FILE), scenario.sample_rate_hz)
+    sites, _ = _names(scenario)
+    if tuple(mapping.description.names) != sites:
+        raise StimsteerError(f"{STIMULATION_FILE} must describe the sites {list(sites)} in that order; it describes "
+                             f"{list(mapping.description.names)}.")
+    return mapping
+
+
+def _quantised(a: np.ndarray, step: float) -> np.ndarray:
+    """Amplitudes on the stimulator's resolution (rounded again so they print as short decimals)."""
+    return np.round(np.round(a / step) * step, 6)
+
+
+def _bursts(rng, n: int, top: float, sc: Scenario, f: float) -> np.ndarray:
+    """Short bursts of pulses of one random amplitude each, separated by random silences (pulse slots at ``f``)."""
+    a, gap = np.zeros(n), (int(round(sc.burst_gap_s[0] * f)), int(round(sc.burst_gap_s[1] * f)))
     k = int(rng.integers(0, gap[1]))
     while k < n:
-        width = int(rng.integers(sc.pulse_width_samples[0], sc.pulse_width_samples[1] + 1))
-        u[k:k + width] = rng.uniform(-sc.max_pulse_ua, sc.max_pulse_ua)
-        k += width + int(rng.integers(gap[0], gap[1] + 1))
-    return u
+        count = int(rng.integers(sc.burst_pulses[0], sc.burst_pulses[1] + 1))
+        a[k:k + count] = rng.uniform(sc.burst_min_ua, top)
+        k += count + int(rng.integers(gap[0], gap[1] + 1))
+    return a
 
 
-def _prbs(rng, n: int, sc: Scenario) -> np.ndarray:
-    level, u, k = rng.uniform(*sc.prbs_level_ua), np.empty(n), 0
+def _modulated(rng, n: int, top: float, sc: Scenario) -> np.ndarray:
+    """A train on throughout: its amplitude switched at random between a low and a high level every few pulses."""
+    low, high = (rng.uniform(*sc.modulated_low_fraction) * top, rng.uniform(*sc.modulated_high_fraction) * top)
+    a, k = np.empty(n), 0
     while k < n:
-        hold = int(rng.integers(sc.prbs_hold_samples[0], sc.prbs_hold_samples[1] + 1))
-        u[k:k + hold] = level * rng.choice((-1.0, 1.0))
+        hold = int(rng.integers(sc.modulated_hold_pulses[0], sc.modulated_hold_pulses[1] + 1))
+        a[k:k + hold] = high if rng.integers(0, 2) else low
         k += hold
-    return u
+    return a
 
 
-def _trial_input(rng, sc: Scenario) -> np.ndarray:
+def _trial_pulses(rng, sc: Scenario, mapping: InputMapping, t0: float) -> list:
+    """The pulses of one trial starting at ``t0`` s: a baseline, then segments of bursts or modulated trains."""
+    slots = [np.zeros(int(round(sc.trial_s * s.frequency_hz))) for s in mapping.sites]
+    t = sc.baseline_s
+    while t < sc.trial_s - 1e-9:
+        stop = min(t + rng.uniform(*sc.segment_s), sc.trial_s)
+        modulated = rng.random() < sc.modulated_share
+        for j, site in enumerate(mapping.sites):
+            f = site.frequency_hz
+            a, b = int(math.ceil(t * f - 1e-9)), int(math.ceil(stop * f - 1e-9))
+            top = sc.amplitude_max_ua[j]
+            slots[j][a:b] = _modulated(rng, b - a, top, sc) if modulated else _bursts(rng, b - a, top, sc, f)
+        t = stop
+    rows = []
+    for j, site in enumerate(mapping.sites):
+        amp = _quantised(slots[j], sc.amplitude_step_ua)
+        for k in np.flatnonzero(amp > 0):
+            rows.append((t0 + k / site.frequency_hz, site.name, float(amp[k]), site.phase_width_us,
+                         float(amp[k]) * site.second_phase_ratio, site.leading_phase))
+    return rows
+
+
+def build_pulses(seed: int = DEMO_SEED, *, scenario: Scenario = SCENARIO) -> tuple[pd.DataFrame, np.ndarray, int]:
+    """What the simulated stimulator delivered: one row per charge-balanced biphasic pulse.
+
+    Rest, trial, rest, trial, ...: each trial opens with an unstimulated baseline, then runs segments of random
+    length. Per segment every site either fires *bursts* (1-3 pulses of one random amplitude, random silences) or a
+    *modulated train* (on throughout, its amplitude switched at random between a low and a high level every few
+    pulses). The amplitude is a magnitude on the
+    stimulator's resolution; polarity is the site's leading phase. Pulse onsets are on the stimulator's clock,
+    which is the recording's (t = 0 at sample 0).
+
+    Returns
+    -------
+    pulses : pandas.DataFrame
+        Columns :data:`PULSE_TABLE_COLUMNS` (``amplitude`` and ``second_phase_amplitude`` in µA).
+    trials : ndarray, shape (n_trials, 2)
+        Half-open sample ranges of the trials.
+    n_samples : int
+        Length of the recording in samples.
+    """
+    sc, mapping = scenario, demo_mapping(scenario)
+    rng = np.random.default_rng(_streams(seed)["schedule"])
     fs = sc.sample_rate_hz
-    n, k = int(round(sc.trial_s * fs)), int(round(sc.baseline_s * fs))
-    u = np.zeros((n, sc.n_sites))
-    while k < n:
-        length = min(int(round(rng.uniform(*sc.segment_s) * fs)), n - k)
-        make = _prbs if rng.random() < sc.prbs_share else _pulses
-        for j in range(sc.n_sites):
-            u[k:k + length, j] = make(rng, length, sc)
-        k += length
-    return u
+    rest, n_trial = int(round(sc.rest_s * fs)), int(round(sc.trial_s * fs))
+    rows, trials, k = [], [], 0
+    for _ in range(sc.n_trials):
+        trials.append((k + rest, k + rest + n_trial))
+        rows += _trial_pulses(rng, sc, mapping, (k + rest) / fs)
+        k += rest + n_trial
+    frame = pd.DataFrame(rows, columns=list(PULSE_TABLE_COLUMNS))
+    frame = frame.sort_values(["time_s", "site"], kind="stable").reset_index(drop=True)
+    return frame, np.array(trials, dtype=np.int64), k
 
 
 def build_schedule(seed: int = DEMO_SEED, *, scenario: Scenario = SCENARIO) -> tuple[np.ndarray, np.ndarray]:
-    """The stimulation schedule (µA) and the trials ``[start, stop)``: rest, trial, rest, trial, ...
-
-    Each trial opens with an unstimulated baseline, then runs segments of random length that are either pulses
-    (random amplitude within ±``max_pulse_ua``, random width and interval per site) or pseudo-random binary
-    sequences (a random level per site, random sign every few samples).
-    """
-    sc = scenario
-    rng = np.random.default_rng(_streams(seed)["schedule"])
-    rest = np.zeros((int(round(sc.rest_s * sc.sample_rate_hz)), sc.n_sites))
-    parts, trials, t = [], [], 0
-    for _ in range(sc.n_trials):
-        trial = _trial_input(rng, sc)
-        parts += [rest, trial]
-        trials.append((t + rest.shape[0], t + rest.shape[0] + trial.shape[0]))
-        t += rest.shape[0] + trial.shape[0]
-    return np.concatenate(parts), np.array(trials, dtype=np.int64)
+    """The model inputs (µA) and the trials ``[start, stop)``: the pulses of :func:`build_pulses` encoded onto the
+    grid by the declared mapping of ``demo_stimulation.toml`` (each pulse's amplitude on the samples it holds)."""
+    pulses, trials, n = build_pulses(seed, scenario=scenario)
+    u, _ = encode_pulse_table(pulses, demo_mapping(scenario), n_samples=n)
+    return u, trials
 
 
 def make_demo(seed: int = DEMO_SEED, *, kind: str = "linear", scenario: Scenario = SCENARIO):
     """The demo session and its ground-truth plant, built in memory (nothing written).
+
+    The session's inputs are the recorded pulses (``metadata["pulses"]``) encoded by the declared mapping
+    (``metadata["stimulation"]``); the plant is driven by those inputs.
 
     Returns
     -------
@@ -193,9 +254,15 @@ def make_demo(seed: int = DEMO_SEED, *, kind: str = "linear", scenario: Scenario
     plant : LinearNetworkPlant or SaturatingRateNetworkPlant
     """
     plant = build_plant(seed, kind=kind, scenario=scenario)
-    u, trials = build_schedule(seed, scenario=scenario)
+    pulses, trials, n = build_pulses(seed, scenario=scenario)
+    u, mapping = encode_pulse_table(pulses, demo_mapping(scenario), n_samples=n)
+    mapping = {**mapping, "description_file": STIMULATION_FILE,
+               "encoded_from": "metadata['pulses'], the simulated stimulator's pulse table"}
     meta = {"scenario": "invented simulated network (stimsteer demo)", "generator": "demo_data/make_demo.py",
-            "demo_seed": int(seed), "plant_kind": kind, "settings": _jsonable(asdict(scenario))}
+            "demo_seed": int(seed), "plant_kind": kind, "settings": _jsonable(asdict(scenario)),
+            "pulses": pulse_table_record(pulses, units={"time_s": "s", "amplitude": "uA",
+                                                        "phase_width_us": "us", "second_phase_amplitude": "uA"}),
+            "pulse_mapping": mapping, "stimulation": mapping}
     session = record_session(plant, u, trials=trials, trial_start="continue",
                              output_resolution=scenario.output_resolution_uv, metadata=meta)
     return session, plant

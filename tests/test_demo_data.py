@@ -76,7 +76,9 @@ def test_session_matches_the_readme(shipped, md):
         outside[a:b] = False
         np.testing.assert_array_equal(session.u[a:a + 50], 0.0)  # 0.2 s unstimulated baseline
     np.testing.assert_array_equal(session.u[outside], 0.0)  # rests carry no stimulation
-    assert np.abs(session.u).max() <= 40.0
+    # amplitudes are magnitudes (polarity is the site's leading phase): 0 .. 40, 40, 30 µA on a 0.1 µA resolution
+    assert session.u.min() == 0.0 and np.all(session.u.max(axis=0) <= [40.0, 40.0, 30.0])
+    np.testing.assert_allclose(session.u * 10, np.round(session.u * 10), atol=1e-9)
     np.testing.assert_allclose(session.y / 0.05, np.round(session.y / 0.05), atol=1e-6)  # 0.05 µV quantisation
 
 
@@ -105,7 +107,7 @@ def test_plant_matches_the_readme(shipped):
     for a, b in session.trials:
         inside[a:b] = True
     std = plant.to_state_space().simulate(session.u)[inside].std(axis=0)
-    assert round(float(std.min())) == 11 and round(float(std.max())) == 49  # "11–49 µV per contact"
+    assert round(float(std.min())) == 17 and round(float(std.max())) == 43  # "17–43 µV per contact"
     np.testing.assert_array_equal(plant.measurement_noise_std, 3.0)
 
 
@@ -147,3 +149,104 @@ def test_command_line_writes_elsewhere(md, tmp_path, capsys):
     with pytest.raises(SystemExit) as exit_info:
         md.main(["--plant", "spiking"])
     assert exit_info.value.code == 2
+
+
+# ---------------------------------------------------------------------------------------------------- pulse trains
+def _stimulation():
+    from stimsteer.sysid.stimulation import InputMapping, load_stimulation
+
+    return InputMapping(load_stimulation(DEMO / "demo_stimulation.toml"), 250.0)
+
+
+def test_the_model_input_is_the_recorded_pulse_table_encoded_by_the_declared_mapping(shipped):
+    # Before: the session held signed per-sample amplitudes (±40 µA pulses, ±10–30 µA PRBS) and no pulse events.
+    from stimsteer.sysid.stimulation import encode_pulse_table, pulse_table_from_record
+
+    session, _ = shipped
+    pulses = pulse_table_from_record(session.metadata["pulses"])
+    assert session.metadata["pulses"]["units"]["amplitude"] == "uA" and len(pulses) > 10_000
+    assert (pulses["amplitude"] > 0).all() and set(pulses["leading_phase"]) == {"cathodic"}
+    again, record = encode_pulse_table(pulses, _stimulation(), n_samples=session.n_samples)
+    np.testing.assert_array_equal(again, session.u)  # the session's inputs are exactly this encoding
+    recorded = session.metadata["stimulation"]
+    assert recorded["name"] == "amplitude" and recorded["description_file"] == "demo_stimulation.toml"
+    assert recorded["description"] == _stimulation().description.to_dict()
+    assert recorded["n_pulses"] == record["n_pulses"] == len(pulses) and recorded["n_pulses_off_grid"] == 0
+    assert session.metadata["pulse_mapping"] == recorded  # what `inspect` reports
+
+
+def test_a_plan_decoded_from_the_demo_inputs_gives_back_the_recorded_pulses(shipped):
+    # one pulse per sample at 250 Hz: decoding the model inputs returns the delivered pulses, time and amplitude
+    from stimsteer.sysid.stimulation import decode_plan, pulse_table_from_record
+
+    session, _ = shipped
+    pulses = pulse_table_from_record(session.metadata["pulses"])
+    decoded = decode_plan(session.u, _stimulation())
+    assert len(decoded) == len(pulses)
+    np.testing.assert_allclose(decoded["onset_s"], pulses["time_s"], atol=1e-12)
+    assert decoded["site"].tolist() == pulses["site"].tolist()
+    np.testing.assert_allclose(decoded["amplitude_ua"], pulses["amplitude"], rtol=1e-15)
+    np.testing.assert_allclose(decoded["second_phase_amplitude_ua"], pulses["second_phase_amplitude"], rtol=1e-12)
+    # charge balance per pulse: Q1 = I · PW1 equals Q2 = I2 · PW2 (stim_c: a quarter of the amplitude, 4 x as long)
+    pw2 = decoded["second_phase_width_us"]
+    np.testing.assert_allclose(decoded["amplitude_ua"] * decoded["phase_width_us"],
+                               decoded["second_phase_amplitude_ua"] * pw2, rtol=1e-12)
+
+
+def test_the_recording_stays_inside_the_demo_physical_limits(shipped):
+    # the simulated stimulator delivered nothing a plan under the same declared limits could not deliver
+    from stimsteer.control._plan_physical import plan_limits
+    from stimsteer.control.pulse_plan import safety_checks
+
+    session, _ = shipped
+    lim, physical = plan_limits(DEMO / "demo_physical_limits.toml", DEMO / "demo_stimulation.toml", {},
+                                rate=250.0, names_in=list(session.input_names), names_out=list(session.output_names),
+                                model_units=list(session.input_units))
+    _, checks = safety_checks(session.u, physical.mapping, physical.compiled)
+    failed = [(c["rule"], c["site"], c["value"], c["limit"]) for c in checks if not c["passed"]]
+    assert failed == []
+    assert {c["rule"] for c in checks} >= {"amplitude", "charge_per_phase", "shannon", "charge_injection",
+                                           "charge_rate_window"}
+    # stim_c's bound is its material limit: Q = I · PW <= 100 µC/cm² x 2e-5 cm², so I <= 0.002 µC / 60 µs
+    # (Q = I·PW, D = Q/A: common practice, no source)
+    np.testing.assert_allclose(lim.amplitude_max_ua, [50.0, 50.0, 100.0 * 2e-5 / 60e-6], rtol=1e-12)
+
+
+def test_the_per_sample_limits_file_is_the_physical_one_compiled(shipped):
+    # demo_limits.toml (per sample, for models without a description) may not allow more than the physical file
+    from stimsteer.control._plan_physical import plan_limits
+    from stimsteer.control.limits import load_limits
+
+    session, _ = shipped
+    compiled, _ = plan_limits(DEMO / "demo_physical_limits.toml", DEMO / "demo_stimulation.toml", {}, rate=250.0,
+                              names_in=list(session.input_names), names_out=list(session.output_names),
+                              model_units=list(session.input_units))
+    per_sample = load_limits(DEMO / "demo_limits.toml").aligned(session.input_names, session.output_names)
+    lo, hi = per_sample.input_bounds()
+    np.testing.assert_array_equal(lo, 0.0)  # no negative amplitude: polarity is not a sign
+    assert np.all(hi <= compiled.amplitude_max_ua) and np.all(hi >= compiled.amplitude_max_ua - 0.01)
+
+
+def test_the_pulse_figures_of_the_readme(shipped):
+    # every pulse figure stated in demo_data/README.md, measured on the shipped session
+    from stimsteer.sysid.stimulation import pulse_table_from_record
+
+    session, _ = shipped
+    pulses = pulse_table_from_record(session.metadata["pulses"])
+    assert len(pulses) == 20_018
+    assert pulses.groupby("site").size().to_dict() == {"stim_a": 6720, "stim_b": 6646, "stim_c": 6652}
+    assert pulses.groupby("site")["amplitude"].max().round(1).tolist() == [40.0, 39.7, 29.9]
+    # the lowest: bursts from 5 µA, modulated trains from 10 % of the site's largest (4 µA; 3 µA on stim_c)
+    assert (pulses.groupby("site")["amplitude"].min() >= [4.0, 4.0, 3.0]).all()
+    inside = np.zeros(session.n_samples, dtype=bool)
+    for a, b in session.trials:
+        inside[a:b] = True
+    on = (session.u[inside] > 0).mean(axis=0)
+    assert np.round(100 * on).tolist() == [37.0, 37.0, 37.0]  # "37 % of the in-trial samples"
+    u = session.u
+    onset = ((u > 0) & (np.vstack([np.zeros((1, 3)), u[:-1]]) == 0)).any(axis=1)
+    assert int(onset.sum()) == 845
+    # charge per phase Q = I · PW per pulse (common practice, no source), summed over every 0.2 s (50-sample) window
+    q = (u * [100e-6, 100e-6, 60e-6]).sum(axis=1)
+    window = np.convolve(q, np.ones(50))[:q.size]
+    assert round(float(window.max()), 3) == 0.350 and round(float(window.max()) / 0.2, 2) == 1.75

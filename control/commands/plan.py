@@ -29,7 +29,9 @@ from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
 from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
+from ..figures.pulse_plan import pulse_plan_figure_of
 from .._plan_physical import plan_limits
+from .._pulse_text import pulse_plan_lines
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
@@ -152,6 +154,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     if physical is not None:
         lines.append(f"pulses: {physical.record['status']}; checks "
                      f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
+        lines += pulse_plan_lines(physical, plan)  # per site: pulses, amplitudes, charge, the tightest check
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
     return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
 
@@ -310,6 +313,10 @@ def write_plan(plan: Plan, out_dir, *, sample_rate_hz, output_units=None, tracke
                                                       "versions")}
             summary["pulse_plan"] = jsonable(physical.write(tmp, plan, base))
             pulse_files = {f.split(".")[0] + "_" + f.split(".")[1]: out_dir / f for f in physical.record["files"]}
+            # the pulses in physical units and the margin of every check (stimsteer.control.figures.pulse_plan)
+            pulse_plan_figure_of(physical, plan, what=(extra or {}).get("what", "")).savefig(
+                tmp / "plan_pulses.png", dpi=110)
+            pulse_files["plan_pulses_png"] = out_dir / "plan_pulses.png"
         (tmp / "plan.json").write_text(json.dumps(summary, indent=2, allow_nan=False))
     return {**{k: out_dir / f for k, f in (("csv", "plan.csv"), ("pattern", "plan_pattern.csv"),
                                            ("png", "plan.png"), ("json", "plan.json"))}, **pulse_files}

@@ -165,6 +165,14 @@ def encode_pulse_table(table, mapping: InputMapping, *, n_samples: int, start_ti
     return mapping.to_model(amp_grid), record
 
 
+def _delivered(u, mapping: InputMapping, zero_tol: float) -> np.ndarray:
+    """Physical amplitudes of model inputs, with values at or below ``zero_tol`` of the largest set to 0 (no pulse):
+    the pulse list and the parameter table agree on which samples deliver."""
+    amp = mapping.to_physical(np.maximum(u, 0.0))
+    amp[amp <= zero_tol * max(float(np.max(amp, initial=0.0)), 1e-300)] = 0.0
+    return amp
+
+
 def _onsets(site, rate, n_samples, start_time_s):
     """Pulse onset times of a site's train over ``n_samples`` and the sample each falls in."""
     n_pulses = int(math.ceil(n_samples * site.frequency_hz / rate - 1e-9))
@@ -190,14 +198,13 @@ def decode_plan(u, mapping: InputMapping, *, start_time_s: float = 0.0, zero_tol
         One row per pulse, columns :data:`PULSE_COLUMNS`, sorted by onset then site.
     """
     u = np.asarray(u, np.float64).reshape(-1, len(mapping.sites))
-    amp = mapping.to_physical(np.maximum(u, 0.0))
-    tiny = zero_tol * max(float(np.max(amp, initial=0.0)), 1e-300)
+    amp = _delivered(u, mapping, zero_tol)
     rows = []
     for j, site in enumerate(mapping.sites):
         t, k = _onsets(site, mapping.sample_rate_hz, u.shape[0], start_time_s)
         for tn, kn in zip(t, k):
             a = float(amp[kn, j])
-            if a > tiny:
+            if a > 0:
                 rows.append(_pulse_row(site, tn, a))
     frame = pd.DataFrame(rows, columns=list(PULSE_COLUMNS))
     return frame.sort_values(["onset_s", "site"], kind="stable").reset_index(drop=True)
@@ -216,15 +223,17 @@ def _pulse_row(site, onset, a) -> dict:
             "return": "+".join(site.return_contacts)}
 
 
-def parameter_segments(u, mapping: InputMapping, *, start_time_s: float = 0.0) -> pd.DataFrame:
+def parameter_segments(u, mapping: InputMapping, *, start_time_s: float = 0.0, zero_tol: float = 1e-9) -> pd.DataFrame:
     """The per-site parameter table over time: one row per run of equal amplitude (``on`` or ``off``).
+
+    Values at or below ``zero_tol`` of the largest are off, as in :func:`decode_plan` (no pulse there).
 
     Columns: ``start_s``, ``stop_s``, ``site``, ``state`` (on/off), ``amplitude`` in the physical unit (µA; mW/mm²
     for optical) under ``amplitude_ua`` or ``irradiance_mw_per_mm2``, ``phase_width_us`` (µs; optical: the pulse
     width in µs), ``frequency_hz``, ``leading_phase``, ``waveform``, ``contacts``, ``return``.
     """
     u = np.asarray(u, np.float64).reshape(-1, len(mapping.sites))
-    amp = mapping.to_physical(np.maximum(u, 0.0))
+    amp = _delivered(u, mapping, zero_tol)
     rate, rows = mapping.sample_rate_hz, []
     for j, site in enumerate(mapping.sites):
         a = amp[:, j]

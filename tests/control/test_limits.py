@@ -96,7 +96,10 @@ def test_example_limits_file_in_demo_data_loads():
     with open_session_file(root / "demo_session.h5") as f:
         names_in, names_out = f.input_names, f.output_names
     aligned = lim.aligned(names_in, names_out)  # raises unless the names match the demo's channels
-    assert aligned.n_inputs == 3 and lim.bound_sources()[1][2] == "charge_density"
+    # non-negative amplitudes (polarity is a category of the site), bounded by amplitude alone: the microcontact's
+    # material limit is compiled into its amplitude bound (tests/test_demo_data.py), not a Shannon bound
+    assert aligned.n_inputs == 3 and lim.bound_sources() == (("amplitude",) * 3, ("amplitude",) * 3)
+    np.testing.assert_array_equal(aligned.input_bounds()[0], 0.0)
 
 
 def test_safe_inputs_ramp_to_zero_within_slew():

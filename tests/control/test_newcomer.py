@@ -285,6 +285,18 @@ def test_a_budget_that_shrinks_the_schedule_is_a_warning_with_figures_and_the_al
     assert "--kind pulses with --pulse-rate-hz" in captured.err and "45 % of the amplitude window" in captured.out
 
 
+def test_the_budget_warning_of_a_non_negative_window_names_its_range_not_plus_minus(tmp_path, capsys):
+    # Seen in the demo (non-negative amplitudes, issue 16): "±16.4 of ±50 µA" for a 0 .. 50 µA window
+    limits = tmp_path / "limits.toml"
+    limits.write_text("[energy]\nbudget_ua2 = 20000.0\n[inputs.a]\namplitude_min_ua = 0.0\namplitude_max_ua = 50.0\n")
+    assert main(["schedule", "--limits", str(limits), "--order", "40", "--rate-hz", "250", "--trials", "4",
+                 "--trial-s", "2", "--rest-s", "0.2", "--out", str(tmp_path / "s.csv")]) == 0
+    err = capsys.readouterr().err
+    gain = float(err.split("scales every deviation from rest by ")[1].split(":")[0])
+    # deviations from rest (0 µA) are scaled: the window 0 .. 50 becomes 0 .. 50 x gain
+    assert f"(e.g. 0 .. {50 * gain:.3g} of 0 .. 50 µA on the first input)" in err and "±" not in err
+
+
 def test_schedule_shows_progress_on_a_terminal(tmp_path, capsys, monkeypatch):
     monkeypatch.setenv("STIMSTEER_PROGRESS", "1")
     limits = tmp_path / "limits.toml"

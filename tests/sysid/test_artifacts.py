@@ -96,7 +96,10 @@ def test_the_demo_artifacts_are_reported(tmp_path):
         art[k], prev = plant.artifact_gain @ state, u[k]
     session = load_session(Path(make_demo.__file__).parent / make_demo.SESSION_FILE)
     share = (art ** 2).mean(axis=0) / (session.y ** 2).mean(axis=0)
-    assert share.max() > 0.15  # a large share of the recorded power on the worst channel
+    # the pulse-train demo (issue 16; 845 onsets): on every channel the artifacts carry more than twice the power of
+    # the recorder's own noise, and over a tenth of the recorded power on the worst channel (0.106, rec_02)
+    assert np.all((art ** 2).mean(axis=0) > 2 * np.asarray(plant.measurement_noise_std) ** 2)
+    assert share.max() > 0.1
     report = detect_artifacts(session)
     assert set(report.flagged) == set(session.output_names)
     worst = session.output_names[int(np.argmax(share))]

@@ -82,6 +82,23 @@ def test_pulses_onto_the_grid_and_back_are_the_same_when_a_pulse_falls_in_every_
     assert set(seg["state"]) == {"on", "off"} and (seg["stop_s"] > seg["start_s"]).all()
 
 
+def test_the_parameter_table_and_the_pulse_list_agree_on_which_samples_deliver():
+    # Seen in the demo's plan_pulses: a solver's 5.6e-14 µA was "on" in plan_parameters.csv with no pulse in
+    # plan_pulses.csv (the pulse list drops values at or below 1e-9 of the largest, the table did not).
+    m = InputMapping(_desc(unit="uA"), 250.0)  # one pulse per sample
+    u = np.zeros((10, 2))
+    u[:, 0] = [5.6e-14, 0.0, 20.0, 20.0, 7.9e-15, 0.0, 30.0, 0.0, 0.0, 3.8]
+    pulses = decode_plan(u, m)
+    seg = parameter_segments(u, m)
+    a = seg[seg["site"] == "a"]
+    on = a[a["state"] == "on"]
+    onsets = pulses[pulses["site"] == "a"]["onset_s"].to_numpy()
+    # every "on" segment holds pulses, and every pulse lies in an "on" segment
+    assert all(((onsets >= r.start_s - 1e-12) & (onsets < r.stop_s - 1e-12)).any() for r in on.itertuples())
+    assert all(((on["start_s"] <= t + 1e-12) & (t < on["stop_s"] - 1e-12)).any() for t in onsets)
+    assert on["amplitude_ua"].tolist() == [20.0, 30.0, 3.8] and len(onsets) == 4
+
+
 def test_irradiance_is_power_over_illuminated_area():
     # definition: irradiance = power / area; 0.4 mW on 0.04 mm² = 10 mW/mm²
     m = InputMapping(_desc(), 250.0)
