@@ -198,7 +198,7 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     U, Y = list(warm), [np.asarray(plant.step(u), np.float64).reshape(p) for u in warm]
     T = controller.past_steps_
     # the inputs a plan sees reach back as far as its energy budget's window (the outputs as far as its predictor's)
-    T_u = max(T, (controller.energy_window_steps_ or 1) - 1)
+    T_u = max(T, (controller.energy_window_steps_ or 1) - 1, getattr(controller, "history_steps_", 0))
     times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}
     n_fallback = 0
     dist = np.full((n_steps, p), np.nan) if hasattr(controller, "disturbance_") else None

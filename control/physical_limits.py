@@ -49,9 +49,10 @@ budget is then exact for a constant train), more samples than pulses for a train
 may hold an onset; the plan does not know the phase, so such trains reach about ``f / rate`` of the budget).
 
 Duty cycle and train length are constraints of every plan too (:class:`~stimsteer.control.sequence_limits.TrainLimits`):
-no run of on samples (model input > 0) longer than ``train_length_max_s``, and at most ``duty_cycle_max_fraction`` of
-the samples of every ``duty_window_s`` window on (for an optical site, the light-on fraction: on samples × pulse
-width × frequency). Planned by an on/off mask from the applied history (see that module); a history that already
+no run of on samples longer than ``train_length_max_s``, and at most ``duty_cycle_max_fraction`` of the samples of
+every ``duty_window_s`` window on (for an optical site, the light-on fraction: on samples × pulse width ×
+frequency). A sample is on while the train is: from a nonzero model input for one pulse period (``ceil(rate / f)``
+samples), so a train below the sample rate cannot pass for several short ones. Planned by an on/off mask from the applied history (see that module); a history that already
 breaks a duty window is reported as infeasible, never relaxed.
 
 Refused (:class:`~stimsteer.sysid.exceptions.LimitsError`, one line): a site's frequency outside its declared range,
@@ -330,7 +331,8 @@ def _site_bound(site, lim: SiteLimits, physical: PhysicalLimits) -> tuple[float,
 def _check_train(site, lim, where):
     train = site.train
     duty = train.duty * (site.pulse_duty if site.kind == "optical" else 1.0)
-    if duty > lim.duty_cycle_max_fraction * (1 + 1e-12):
+    # a declared train cycle runs whatever the plan does; without one the plan's own on/off is constrained instead
+    if train.on_s is not None and duty > lim.duty_cycle_max_fraction * (1 + 1e-12):
         raise LimitsError(f"{where}: duty cycle {duty:.4g} exceeds the declared {lim.duty_cycle_max_fraction:g}; "
                           "lengthen train_off or shorten the pulses.")
     if train.on_s is not None and train.on_s > lim.train_length_max_s:
@@ -452,4 +454,5 @@ def _train_limits(physical, mapping):
         windows.append(w)
     if all(v is None for v in runs + duty):
         return None
-    return TrainLimits(tuple(runs), tuple(duty), tuple(windows))
+    hold = tuple(max(1, int(math.ceil(round(rate / s.frequency_hz, 9)))) for s in mapping.sites)
+    return TrainLimits(tuple(runs), tuple(duty), tuple(windows), hold)

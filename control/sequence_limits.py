@@ -150,8 +150,7 @@ class WindowBudget:
 
 @dataclass(frozen=True)
 class TrainLimits:
-    """Per-input train length and duty limits in samples (module notes); ``run_max_steps`` None or ``duty_max_steps``
-    None: not declared for that input.
+    """Per-input train length and duty limits in samples (module notes); None: not declared for that input.
 
     Parameters
     ----------
@@ -161,17 +160,26 @@ class TrainLimits:
         Most on samples per duty window, per input.
     duty_window_steps : tuple of (int or None)
         The duty window per input, samples.
+    hold_steps : tuple of int, optional
+        Samples a nonzero input keeps its train on (default 1): a train below the sample rate delivers a pulse
+        only at some samples, and is on for one pulse period ``1 / f`` after each, so a sample counts as on when
+        any of the last ``hold_steps = ceil(rate / f)`` samples is nonzero (the mapping's hold,
+        :mod:`stimsteer.sysid.stimulation.mapping`). Then a run of on samples spans every pulse of a train (a gap
+        of a whole pulse period breaks it) and the on samples of a window cover each pulse's period.
     """
 
     run_max_steps: tuple
     duty_max_steps: tuple
     duty_window_steps: tuple
+    hold_steps: tuple = None
 
     def __post_init__(self):
         n = len(self.run_max_steps)
-        if not (len(self.duty_max_steps) == len(self.duty_window_steps) == n):
-            raise LimitsError("train limits need one entry per input in run_max_steps, duty_max_steps and "
-                              "duty_window_steps.")
+        hold = (1,) * n if self.hold_steps is None else tuple(int(g) for g in self.hold_steps)
+        if not (len(self.duty_max_steps) == len(self.duty_window_steps) == len(hold) == n) or min(hold) < 1:
+            raise LimitsError("train limits need one entry per input in run_max_steps, duty_max_steps, "
+                              "duty_window_steps and hold_steps (>= 1).")
+        object.__setattr__(self, "hold_steps", hold)
         for r, d, w in zip(self.run_max_steps, self.duty_max_steps, self.duty_window_steps):
             if r is not None and (int(r) != r or r < 1):
                 raise LimitsError(f"train_length_max is shorter than one sample ({r!r} samples); a train needs at "
@@ -185,11 +193,16 @@ class TrainLimits:
 
     def taken(self, idx) -> "TrainLimits":
         return TrainLimits(*(tuple(v[i] for i in idx) for v in (self.run_max_steps, self.duty_max_steps,
-                                                                  self.duty_window_steps)))
+                                                                  self.duty_window_steps, self.hold_steps)))
 
     def to_dict(self) -> dict:
         return {"train_length_max_steps": list(self.run_max_steps), "duty_on_max_steps": list(self.duty_max_steps),
-                "duty_window_steps": list(self.duty_window_steps)}
+                "duty_window_steps": list(self.duty_window_steps), "hold_steps": list(self.hold_steps)}
+
+    def keep(self) -> int:
+        """Applied samples that can still matter for the windows and runs of a plan (an upper bound)."""
+        return max([1] + [int(w) + g for w, g in zip(self.duty_window_steps, self.hold_steps) if w is not None] +
+                   [int(r) + g + 1 for r, g in zip(self.run_max_steps, self.hold_steps) if r is not None])
 
 
 def _on(u) -> np.ndarray:
@@ -202,43 +215,66 @@ def _history_on(history, n_inputs, keep) -> np.ndarray:
     return h[max(0, h.shape[0] - keep):]
 
 
+def _held(flags, g: int) -> np.ndarray:
+    """On samples of a column of nonzero flags: on when any of the last ``g`` samples is nonzero."""
+    f = np.asarray(flags, np.int64)
+    if g <= 1:
+        return f.astype(bool)
+    c = np.concatenate([np.zeros(g, np.int64), np.cumsum(f)])
+    return (c[g:] - c[:-g]) > 0
+
+
+def _counts(on, r, d, w, start):
+    """Samples from ``start`` on that end a run longer than ``r``, and duty windows ending there over ``d``."""
+    runs = duty = 0
+    if r is not None:
+        idx = np.arange(on.size)
+        run = idx - np.maximum.accumulate(np.where(on, -1, idx))  # samples since the last off one
+        runs = int(np.sum(run[start:] > r))
+    if d is not None:
+        c = np.concatenate([np.zeros(w, np.int64), np.cumsum(on.astype(np.int64))])
+        duty = int(np.sum((c[w:] - c[:-w])[start:] > d))
+    return runs, duty
+
+
 def on_mask(train: TrainLimits, history, n_steps: int) -> np.ndarray:
-    """Which plan steps may be on, per input (module notes), shape (n_steps, n_inputs), from the applied history."""
-    m = train.n_inputs
-    keep = max([1] + [int(w) for w in train.duty_window_steps if w is not None] +
-               [int(r) + 1 for r in train.run_max_steps if r is not None])
-    h = _history_on(history, m, keep)
-    mask = np.ones((int(n_steps), m), bool)
+    """Which plan steps may be on, per input (module notes), shape (n_steps, n_inputs), from the applied history.
+
+    Step ``k`` may be on when, with every earlier allowed step on too, no run and no duty window ending at
+    ``k … k + hold − 1`` (the samples its train keeps on) breaks a limit.
+    """
+    m, n = train.n_inputs, int(n_steps)
+    h = _history_on(history, m, train.keep())
+    mask = np.zeros((n, m), bool)
     for i in range(m):
-        r, d, w = train.run_max_steps[i], train.duty_max_steps[i], train.duty_window_steps[i]
-        seq = list(h[:, i])
-        for k in range(int(n_steps)):
-            ok = True
-            if r is not None:
-                run = 0
-                for v in reversed(seq):
-                    if not v:
-                        break
-                    run += 1
-                ok = run + 1 <= r
-            if ok and d is not None:
-                ok = sum(seq[max(0, len(seq) - (w - 1)):] if w > 1 else []) + 1 <= d
-            mask[k, i] = ok
-            seq.append(ok)
+        r, d, w, g = (train.run_max_steps[i], train.duty_max_steps[i], train.duty_window_steps[i],
+                      train.hold_steps[i])
+        seq = np.concatenate([h[:, i], np.zeros(n + g, bool)])
+        for k in range(n):
+            at = h.shape[0] + k
+            seq[at] = True
+            on = _held(seq[:at + g], g)
+            if sum(_counts(on, r, d, w, at)) == 0:
+                mask[k, i] = True
+            else:
+                seq[at] = False
     return mask
 
 
 def history_breaks(train: TrainLimits, history, n_steps: int) -> str:
-    """Why even zero stimulation breaks a duty window ending in the plan ('' when it does not)."""
+    """Why even zero stimulation breaks a train limit in the plan ('' when it does not): the applied history's
+    train still on at the start of the plan, or its on samples in a duty window that ends in the plan."""
     m = train.n_inputs
+    h = _history_on(history, m, train.keep())
     for i in range(m):
-        d, w = train.duty_max_steps[i], train.duty_window_steps[i]
-        if d is None:
-            continue
-        h = _history_on(history, m, w - 1)[:, i]
-        if int(h.sum()) > d:  # the window ending at plan step 0 holds the whole kept history
-            return (f"input {i}: the applied history holds {int(h.sum())} on samples in its last {w - 1} samples, more "
-                    f"than the duty limit of {d} per {w}-sample window, whatever the plan does")
+        r, d, w, g = (train.run_max_steps[i], train.duty_max_steps[i], train.duty_window_steps[i],
+                      train.hold_steps[i])
+        on = _held(np.concatenate([h[:, i], np.zeros(int(n_steps) + g, bool)]), g)
+        runs, duty = _counts(on, r, d, w, h.shape[0])
+        if runs or duty:
+            what = "train" if runs else "duty window"
+            return (f"input {i}: the stimulation applied before the plan already breaks its {what} limit in the "
+                    "plan's first samples, whatever the plan does (train on for one pulse period after each pulse)")
     return ""
 
 
@@ -259,20 +295,11 @@ def count_violations(limits, u, history=None) -> dict:
     t = limits.train_limits
     if t is not None:
         h = _history_on(history, limits.n_inputs, 1 << 30)
-        seq = np.vstack([h, _on(u)]).astype(np.int64)
-        start = h.shape[0]
+        seq = np.vstack([h, _on(u)])
         runs = duty = 0
         for i in range(limits.n_inputs):
-            r, d, w = t.run_max_steps[i], t.duty_max_steps[i], t.duty_window_steps[i]
-            col = seq[:, i]
-            if r is not None:
-                run = np.zeros(col.size, np.int64)
-                for k in range(col.size):
-                    run[k] = (run[k - 1] + 1 if k else 1) if col[k] else 0
-                runs += int(np.sum(run[start:] > r))
-            if d is not None:
-                c = np.concatenate([np.zeros(w, np.int64), np.cumsum(col)])
-                win = c[w:] - c[:-w]
-                duty += int(np.sum(win[start:] > d))
+            a, b = _counts(_held(seq[:, i], t.hold_steps[i]), t.run_max_steps[i], t.duty_max_steps[i],
+                           t.duty_window_steps[i], h.shape[0])
+            runs, duty = runs + a, duty + b
         out["train_length"], out["duty_cycle"] = runs, duty
     return out

@@ -128,7 +128,8 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         path, index = from_trial
         with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
-            u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
+            u_past = _applied_before(session, index, u_past, max(ctrl.energy_window_steps_ or 0,
+                                                                  getattr(ctrl, "history_steps_", 0) + 1) or None)
         start = f"the end of trial {index} of {path}"
     if physical is not None:
         physical.u_past = np.asarray(u_past, np.float64)

@@ -138,6 +138,9 @@ class _PredictiveController(BaseEstimator):
             _RollingBudget(b.budget, b.window_steps, N, self._slew, linear=b.linear, quadratic=b.quadratic,
                            name=b.name, unit=b.unit) for b in self.limits_.window_budgets]
         self._train = self.limits_.train_limits
+        # applied inputs a plan must see: every budget window and train limit reaches this far back
+        self.history_steps_ = max([b.window - 1 for b in self._budgets] +
+                                  [0 if self._train is None else self._train.keep()])
         self._hist, self._whists, self._u_all = None, [], None
         # the cone problem's input rows are written in units of the largest amplitude bound (see "Units"); the
         # acceptance tolerance of a solver's answer is relative to it too, so it means the same in any unit
