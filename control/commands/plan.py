@@ -29,7 +29,7 @@ from ...sysid._records import jsonable, versions
 from ...sysid.caution import CAUTION
 from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
-from .._plan_physical import plan_limits
+from .._plan_physical import limits_record, plan_limits, signed_input_notes
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
 from ..mpc.dispatch import controller_for
@@ -139,10 +139,14 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
                            recorded_from=recorded_from, flag_fraction=flag_fraction)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
-             "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
+             "limits": ctrl.limits_.to_dict() if physical is None else limits_record(
+                 ctrl.limits_, physical.mapping.model_units()), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model"), "what": _what(provenance, ctrl)}
     if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
         extra["limits_input_units"] = list(physical.mapping.model_units())
+    signed = signed_input_notes(plan, physical)  # a negative input without a description: said, not refused
+    if signed:
+        extra["notes"] = signed
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
                        force=force, physical=physical, ranges=ranges,
                        input_units=(physical.mapping.model_units() if physical is not None else
@@ -154,6 +158,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         lines.append(f"pulses: {physical.record['status']}; checks "
                      f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
+    notes += signed
     return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
 
 

@@ -130,8 +130,8 @@ def _random_case(seed, *, optical=None):
     rate = float(g.choice([100.0, 250.0, 1000.0]))
     freq = float(g.choice([rate, rate / 2, rate / 3, 2 * rate, g.uniform(5.0, 1.5 * rate)]))
     pw = float(g.uniform(20.0, 200.0))
-    if pw * 2e-6 * freq >= 0.9:
-        freq = 0.4 / (pw * 2e-6)
+    if pw * 3e-6 * freq >= 0.9:  # an asymmetric pulse lasts 3 PW
+        freq = 0.3 / (pw * 3e-6)
     area = float(10 ** g.uniform(-5.5, -0.5))
     e = {"kind": "electrical", "phase_width": f"{pw} us", "frequency": f"{freq} Hz",
          "amplitude_unit": str(g.choice(["uA", "mA"])), "contact_area": f"{area} cm^2"}
