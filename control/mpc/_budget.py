@@ -142,7 +142,7 @@ class _RollingBudget:
         """The window constraints on the stacked inputs ``u`` (N·m,) in units of ``scale`` (energies in units of
         ``scale²``, see the module notes); sets ``self.left``, the budget Parameter."""
         if self.weighted:
-            return self._weighted_constraints(u, m)
+            return self._weighted_constraints(u, m, scale)
         N, s = self.N, float(scale)
         self.row_scale = s
         self.left = cp.Parameter(self.Mp.shape[0], name="energy_budget_left_scaled")
@@ -160,15 +160,16 @@ class _RollingBudget:
         cons.append(lhs <= self.left)
         return cons
 
-    def _weighted_constraints(self, u, m: int) -> list:
-        """The rows of a weighted load, in units of ``E / W`` per step (module notes)."""
-        N, norm = self.N, self.window / self.budget
+    def _weighted_constraints(self, u, m: int, scale: float) -> list:
+        """The rows of a weighted load, in units of ``E / W`` per step, on the inputs in units of ``scale`` (the
+        controller's amplitude scale: the epigraph of ``|u|`` is then of order one in any unit; module notes)."""
+        N, norm, s = self.N, self.window / self.budget, float(scale)
         self.row_scale = float(np.sqrt(1.0 / norm))
         self.left = cp.Parameter(self.Mp.shape[0], name=f"{self.name}_left_scaled")
         e = cp.Variable(N, nonneg=True, name=f"{self.name}_step_load_scaled")
-        U = cp.reshape(u, (N, m), order="C")
-        a = np.zeros(m) if self.a is None else self.a * norm
-        b = np.zeros(m) if self.b is None else self.b * norm
+        U = cp.reshape(u, (N, m), order="C") / s
+        a = np.zeros(m) if self.a is None else self.a * norm * s
+        b = np.zeros(m) if self.b is None else self.b * norm * s**2
 
         def load(x, idx):  # x: a (rows, len(idx)) expression of magnitudes or signed inputs
             terms = []
@@ -185,7 +186,7 @@ class _RollingBudget:
             r = cp.Variable(self.n_tail, nonneg=True, name=f"{self.name}_ramp_load_scaled")
             idx = np.flatnonzero(self.fin)
             mag = cp.abs(U[N - 1, :])
-            cons += [load(cp.reshape(cp.pos(mag[idx] - t * self.slew[idx]), (1, idx.size), order="C"), idx)
+            cons += [load(cp.reshape(cp.pos(mag[idx] - t * self.slew[idx] / s), (1, idx.size), order="C"), idx)
                      <= r[t - 1] for t in range(1, self.n_tail + 1)]
             lhs = lhs + self.Mr @ r
         cons.append(lhs <= self.left)

@@ -47,6 +47,8 @@ _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
 _CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
+# Under window budgets or train limits, |u| at most this fraction of its bound is solver residue: delivered as 0.
+_ZERO_RTOL = 1e-6
 
 
 # ---------------------------------------------------------------------------------------------------- settings
@@ -207,7 +209,7 @@ class _PredictiveController(BaseEstimator):
             Dm, lim = self._slew_rows
             cons += [Dm @ u / rs <= lim / rs, Dm @ u / rs >= -lim / rs]
         for b in self._budgets:
-            cons += b.constraints(u, m, b.unit_scale())
+            cons += b.constraints(u, m, self._row_scale if b.weighted else b.unit_scale())
         slack = None
         if self._idx_b.size:
             slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
@@ -416,6 +418,10 @@ class _PredictiveController(BaseEstimator):
         if not np.all(np.isfinite(u)) or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
         u = np.clip(u, lb, ub)
+        if self.limits_.has_sequence_limits and self._slew is None:
+            # solver residue near zero stimulation (interior points never reach 0) would count as a train on and
+            # as a pulse; below 1e-6 of an input's bound it is delivered as zero, which lowers every load
+            u = np.where(np.abs(u) <= _ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi)), 0.0, u)
         if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
             prev = u[0]
             for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
