@@ -169,18 +169,21 @@ _UNIT_KEYS = ("amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "charge_bou
               "effective_max_ua")
 
 
-def limits_record(limits, units) -> dict:
+def limits_record(limits, physical) -> dict:
     """``limits.to_dict()`` with every per-input key in the inputs' real unit (module docstring).
 
     Parameters
     ----------
     limits : StimLimits
         Limits on the model inputs (compiled from physical terms).
-    units : sequence of str
-        The model unit of each input, in the limits' input order.
+    physical : PhysicalPlan or None
+        Its mapping gives the model unit of each input, in the limits' input order; None: the per-sample layout,
+        whose keys are in µA as declared.
     """
     d = limits.to_dict()
-    units = [str(u) for u in units]
+    if physical is None:
+        return d
+    units = [str(u) for u in physical.mapping.model_units()]
     if d.get("energy_budget_ua2") is None:
         d.pop("energy_budget_ua2", None)
     if len(set(units)) == 1:

@@ -139,8 +139,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
                            recorded_from=recorded_from, flag_fraction=flag_fraction)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
-             "limits": ctrl.limits_.to_dict() if physical is None else limits_record(
-                 ctrl.limits_, physical.mapping.model_units()), "controller": type(ctrl).__name__,
+             "limits": limits_record(ctrl.limits_, physical), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model"), "what": _what(provenance, ctrl)}
     if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
         extra["limits_input_units"] = list(physical.mapping.model_units())

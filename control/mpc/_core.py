@@ -47,8 +47,7 @@ _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
 _CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
-# Under window budgets or train limits, |u| at most this fraction of its bound is solver residue: delivered as 0.
-_ZERO_RTOL = 1e-6
+_ZERO_RTOL = 1e-6  # under window budgets or train limits, |u| at most this fraction of its bound is residue: 0
 
 
 # ---------------------------------------------------------------------------------------------------- settings
@@ -136,9 +135,9 @@ class _PredictiveController(BaseEstimator):
         self._budget = None if self._energy is None else _RollingBudget(self._energy, self.energy_window_steps_, N,
                                                                            self._slew)
         # every budget over rolling windows: the per-sample layout's Σ u², then those in physical units
-        self._budgets = ([] if self._budget is None else [self._budget]) + [
-            _RollingBudget(b.budget, b.window_steps, N, self._slew, linear=b.linear, quadratic=b.quadratic,
-                           name=b.name, unit=b.unit) for b in self.limits_.window_budgets]
+        self._budgets = ([] if self._budget is None else [self._budget]) + [_RollingBudget(
+            b.budget, b.window_steps, N, self._slew, linear=b.linear, quadratic=b.quadratic, name=b.name, unit=b.unit)
+            for b in self.limits_.window_budgets]
         self._train = self.limits_.train_limits
         # applied inputs a plan must see: every budget window and train limit reaches this far back
         self.history_steps_ = max([b.window - 1 for b in self._budgets] +
@@ -462,8 +461,7 @@ class _PredictiveController(BaseEstimator):
         )
 
     @property
-    def _hists(self) -> list:
-        """The applied past's load per window step, one array per budget of ``_budgets`` (in its order)."""
+    def _hists(self) -> list:  # the applied past's load per window step, one array per budget of ``_budgets``
         return ([self._hist] if self._budget is not None else []) + list(self._whists)
 
     def _budget_excess(self, u) -> float:
