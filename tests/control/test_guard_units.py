@@ -36,3 +36,17 @@ def test_the_slew_allowance_of_violations_is_relative_to_the_limit():
         verdicts.append(lim.violations(np.array([[0.0], [s * (1 + 5e-10)]]), rtol=1e-9)["slew"])
         verdicts.append(lim.violations(np.array([[0.0], [s * (1 + 5e-9)]]), rtol=1e-9)["slew"])
     assert verdicts == [0, 1, 0, 1]
+
+
+def test_a_signed_plan_without_a_description_says_so_and_a_physical_one_does_not():
+    """Decision of issue 16 (control/_plan_physical.py): signed per-sample plans are planned, with a note."""
+    from types import SimpleNamespace
+
+    from stimsteer.control._plan_physical import signed_input_notes
+
+    plan = SimpleNamespace(inputs=np.array([[1.0, -2.5], [0.5, 3.0]]), input_names=("a", "b"))
+    notes = signed_input_notes(plan, None)
+    assert len(notes) == 1 and "b down to -2.5" in notes[0] and "opposite polarity" in notes[0]
+    assert "a down" not in notes[0]
+    assert signed_input_notes(SimpleNamespace(inputs=np.abs(plan.inputs), input_names=("a", "b")), None) == []
+    assert signed_input_notes(plan, object()) == []  # physical limits: inputs are non-negative by construction
