@@ -387,3 +387,23 @@ def test_train_limits_with_a_slew_limit_are_refused():
         StimLimits(amplitude_min_ua=[0.0], amplitude_max_ua=[10.0], slew_max_ua=[1.0],
                    train_limits=TrainLimits((3,), (None,), (None,)))
     assert math.isfinite(1.0)
+
+
+def test_what_cannot_keep_sequence_limits_refuses_them():
+    """The live gate and the precomputed fast step check only per-sample limits: with window budgets or train limits
+    they must refuse, not deliver unchecked inputs."""
+    from stimsteer.control.input_gate import InputGate
+    from stimsteer.control.mpc.fast_step import _unsupported
+    from stimsteer.sysid.exceptions import InvalidParameterError
+
+    m = _mapping(250.0, {"a": {"kind": "electrical", "phase_width": "90 us", "frequency": "250 Hz",
+                               "contact_area": "0.06 cm^2"}})
+    c = compile_limits(PhysicalLimits.from_dict({"window_s": 0.2, "charge_rate_max_uc_per_s": 2.0,
+                                                 "sites": {"a": {"amplitude_max_ua": 200.0}}}), m)
+    lim = dataclasses.replace(c.stim_limits, input_names=None)
+    assert lim.has_sequence_limits
+    with pytest.raises(InvalidParameterError, match=r"window budgets or train limits"):
+        InputGate(lim)
+    ctrl = ModelPredictiveController(model=StateSpaceModel(A=[[0.9]], B=[[1.0]], C=[[1.0]], past_steps=1),
+                                     limits=lim, horizon_steps=4).fit()
+    assert "window budgets or train limits" in _unsupported(ctrl)
