@@ -7,6 +7,19 @@ taken per physical unit² (so a session in mA and the same in µA give the same 
 planning the pulse files are written with every check (:mod:`stimsteer.control.pulse_plan`). A plan whose pulse
 list fails a check (a train longer than declared, say) is not delivered: its pulse files hold zero stimulation and
 say why, and the plan exits as not optimal.
+
+``plan.json`` records the compiled limits with keys in the model inputs' real unit (:func:`limits_record`):
+``amplitude_max_ma`` for a model in mA, ``amplitude_max_uc_per_s`` under the charge-rate mapping, a table per input
+when the inputs differ in unit. (Until this session they were written as ``amplitude_max_ua`` whatever the unit;
+nothing in stimsteer reads them back, so there is no old layout to keep reading: the keys are for people.)
+
+Signed inputs (decision). A model fitted without a stimulation description keeps the per-sample layout, where a
+negative input is the opposite polarity and the limits bound ``|u|`` on both sides (Shannon's rule included). The
+plan is not refused, because nothing in it is unsafe by the declared limits: what is doubtful is the model, a
+linear one predicting ``y(−u) = −y(u)``, a mirrored response to a reversed pulse, which neural responses rarely
+obey. So a plan that goes negative says so (:func:`signed_input_notes`, a note on the console and in ``plan.json``)
+and points to the remedy: a stimulation description with limits in ``[physical]``, where the model input is a
+non-negative amplitude and polarity a category of the site. Physical limits without a description are refused.
 """
 
 from __future__ import annotations
@@ -144,3 +157,60 @@ def _check_units(mapping, names_in, model_units):
             raise LimitsError(f"input {name!r}: the model's inputs are in {have}, the declared mapping gives "
                               f"{want}; fit on a session encoded with this description, or fix amplitude_unit.")
 
+
+
+def _unit_tag(unit: str) -> str:
+    """A key suffix for a unit: ``mA`` → ``ma``, ``uC/s`` → ``uc_per_s``, ``mW/mm^2`` → ``mw_per_mm2``."""
+    t = str(unit).replace("µ", "u").replace("μ", "u").replace("^", "").replace("**", "").replace(" ", "")
+    return t.lower().replace("/", "_per_")
+
+
+_UNIT_KEYS = ("amplitude_min_ua", "amplitude_max_ua", "slew_max_ua", "charge_bound_ua", "effective_min_ua",
+              "effective_max_ua")
+
+
+def limits_record(limits, physical) -> dict:
+    """``limits.to_dict()`` with every per-input key in the inputs' real unit (module docstring).
+
+    Parameters
+    ----------
+    limits : StimLimits
+        Limits on the model inputs (compiled from physical terms).
+    physical : PhysicalPlan or None
+        Its mapping gives the model unit of each input, in the limits' input order; None: the per-sample layout,
+        whose keys are in µA as declared.
+    """
+    d = limits.to_dict()
+    if physical is None:
+        return d
+    units = [str(u) for u in physical.mapping.model_units()]
+    if d.get("energy_budget_ua2") is None:
+        d.pop("energy_budget_ua2", None)
+    if len(set(units)) == 1:
+        tag = _unit_tag(units[0])
+        out = {(k[:-3] + "_" + tag if k in _UNIT_KEYS else k): v for k, v in d.items()}
+        if "energy_budget_ua2" in out:
+            out[f"energy_budget_{tag}2"] = out.pop("energy_budget_ua2")
+        return out
+    names = d.get("input_names") or [str(i) for i in range(len(units))]
+    out = {k: v for k, v in d.items() if k not in _UNIT_KEYS}
+    out["inputs"] = {n: {k[:-3] + "_" + _unit_tag(u): (None if d[k] is None else d[k][i]) for k in _UNIT_KEYS}
+                     for i, (n, u) in enumerate(zip(names, units))}
+    if "energy_budget_ua2" in out:
+        out["energy_budget_model_units2"] = out.pop("energy_budget_ua2")  # a sum over inputs of different units
+    return out
+
+
+def signed_input_notes(plan, physical) -> list:
+    """The note of a plan that drives an input negative without a stimulation description (module docstring)."""
+    if physical is not None:
+        return []
+    u = np.asarray(plan.inputs, np.float64)
+    neg = [(n, float(u[:, i].min())) for i, n in enumerate(plan.input_names) if u[:, i].min() < 0]
+    if not neg:
+        return []
+    which = ", ".join(f"{n} down to {v:.4g}" for n, v in neg)
+    return [f"note: the plan drives {which}: without a stimulation description a negative input is the opposite "
+            "polarity, and the linear model assumes a reversed pulse evokes the mirrored response (y(-u) = -y(u)), "
+            "which neural responses rarely do. Describe the stimulation (--stimulation, limits in [physical]) to plan "
+            "non-negative pulse trains with polarity as a category of the site."]

@@ -66,6 +66,10 @@ class InputGate:
         self._lo_l, self._hi_l = self._lo.tolist(), self._hi.tolist()
         self._slew_l = None if self._slew is None else self._slew.tolist()
         self._budget = limits.energy_budget_ua2
+        if limits.has_sequence_limits:
+            raise InvalidParameterError("these limits declare window budgets or train limits in physical terms, which "
+                                        "the live gate does not check yet; plan with them (stimsteer plan), or run "
+                                        "the live loop under the per-sample limits layout.")
         if self._budget is not None:
             w = energy_window_steps
             if isinstance(w, bool) or not isinstance(w, (int, np.integer)) or w < 1:

@@ -73,6 +73,8 @@ import numpy as np
 from ..sysid.exceptions import InvalidParameterError, LimitsError
 from ._energy_windows import check_window
 from ._limits_layout import limits_fields, read_limits_table, vec_field as _vec
+from .sequence_limits import TrainLimits, check_sequence_limits as _check_sequence_limits, count_violations, \
+    legacy_energy_violations, safe_sequence
 from .shannon import DEFAULT_SHANNON_K, SHANNON_DAMAGE_K, max_amplitude_ua, max_charge_uc, shannon_k
 
 __all__ = [
@@ -142,6 +144,8 @@ class StimLimits:
     output_max: np.ndarray = None
     input_names: tuple = None
     output_names: tuple = None
+    window_budgets: tuple = ()
+    train_limits: TrainLimits = None
 
     def __post_init__(self):
         m = self._infer_n()
@@ -174,6 +178,7 @@ class StimLimits:
             except InvalidParameterError as exc:
                 raise LimitsError(str(exc)) from None
         self._set_charge(m)
+        _check_sequence_limits(self, m)
         self._set_outputs()
         self._set_names(m)
         lo, hi = self.amplitude_min_ua.copy(), self.amplitude_max_ua.copy()
@@ -332,19 +337,10 @@ class StimLimits:
             µA.
         """
         lo, hi = self.input_bounds()
-        prev = np.zeros(self.n_inputs) if last_input is None else np.asarray(last_input, np.float64).reshape(-1)
-        slew = np.full(self.n_inputs, np.inf) if self.slew_max_ua is None else self.slew_max_ua
-        # the slew window misses the amplitude window: start from the nearest amplitude bound at once
-        empty = (prev - slew > hi) | (prev + slew < lo)
-        start = np.where(empty, np.clip(prev, lo, hi), prev)
-        steps = np.arange(int(n_steps))[:, None] + np.where(empty, 0, 1)[None, :]
-        with np.errstate(invalid="ignore"):
-            left = np.where(steps == 0, np.abs(start), np.abs(start) - steps * slew)
-        # each step moves |u| towards 0 by the slew limit; 0 lies in every amplitude window
-        return np.clip(np.sign(start) * np.maximum(left, 0.0), lo, hi)
+        return safe_sequence(lo, hi, self.slew_max_ua, n_steps, last_input)
 
     def violations(self, inputs, last_input=None, *, rtol: float = 1e-9,
-                   energy_window_steps: int | None = None) -> dict:
+                   energy_window_steps: int | None = None, history=None) -> dict:
         """Count the samples of an input sequence that break a hard limit.
 
         Parameters
@@ -361,12 +357,15 @@ class StimLimits:
             Apply the energy budget to every window of this many consecutive samples (a schedule longer than a
             planning horizon) instead of to the whole sequence; a window longer than the sequence is the whole
             sequence.
+        history : ndarray, shape (n_before, n_inputs), optional
+            Inputs applied before ``inputs``: they count in the windows and runs of the sequence limits.
 
         Returns
         -------
         dict
             ``{"amplitude": int, "slew": int, "energy_budget": int}``. The energy count is 0 or 1 without a window
-            (the budget applies to the whole sequence), else the number of windows over the budget.
+            (the budget applies to the whole sequence), else the number of windows over the budget. Limits with
+            sequence limits add their counts (:func:`~stimsteer.control.sequence_limits.count_violations`).
         """
         u = np.asarray(inputs, dtype=np.float64).reshape(-1, self.n_inputs)
         lo, hi = self._bounds
@@ -374,21 +373,12 @@ class StimLimits:
         if self.slew_max_ua is not None:
             seq = u if last_input is None else np.vstack([np.asarray(last_input, np.float64).reshape(1, -1), u])
             s = self.slew_max_ua
-            allowed = np.where(np.isfinite(s), s + rtol * np.maximum(1.0, np.where(np.isfinite(s), s, 1.0)), np.inf)
+            # relative to the limit itself, so the allowance means the same in any unit
+            allowed = np.where(np.isfinite(s), s * (1.0 + rtol), np.inf)
             out["slew"] = int(np.sum(np.abs(np.diff(seq, axis=0)) > allowed))
         if self.energy_budget_ua2 is not None:
-            out["energy_budget"] = self._energy_violations(u, rtol, energy_window_steps)
-        return out
-
-    def _energy_violations(self, u, rtol, window) -> int:
-        budget = self.energy_budget_ua2 * (1.0 + rtol)
-        if window is None:
-            return int(np.sum(u**2) > budget)
-        if u.shape[0] == 0:
-            return 0
-        c = np.concatenate([[0.0], np.cumsum(np.sum(u**2, axis=1))])
-        w = min(check_window(window), u.shape[0])
-        return int(np.sum(c[w:] - c[:-w] > budget))
+            out["energy_budget"] = legacy_energy_violations(u, self.energy_budget_ua2, rtol, energy_window_steps)
+        return {**out, **count_violations(self, u, history)}
 
     @property
     def has_output_bounds(self) -> bool:
@@ -435,6 +425,8 @@ class StimLimits:
                       "electrode_area_cm2"):
                 v = getattr(self, f)
                 changes[f] = None if v is None else v[idx]
+            changes["window_budgets"] = tuple(b.taken(idx) for b in self.window_budgets)
+            changes["train_limits"] = None if self.train_limits is None else self.train_limits.taken(idx)
             changes["input_names"] = input_names
         changes.update(self._aligned_outputs(output_names))
         return dataclasses.replace(self, **changes)
@@ -480,7 +472,15 @@ class StimLimits:
             "effective_min_ua": lst(lo), "effective_max_ua": lst(hi),
             "output_names": list(self.output_names) if self.output_names else None,
             "output_min": lst(self.output_min), "output_max": lst(self.output_max),
+            **({"window_budgets": [b.to_dict() for b in self.window_budgets]} if self.window_budgets else {}),
+            **({"train_limits": self.train_limits.to_dict()} if self.train_limits is not None else {}),
         }
+
+    @property
+    def has_sequence_limits(self) -> bool:
+        """True when limits speak of the delivered sequence beyond one plan's Σ u² budget (window budgets in
+        physical units, train length, duty cycle): a planner that cannot keep them must refuse these limits."""
+        return bool(self.window_budgets) or self.train_limits is not None
 
 
 def load_limits(path) -> StimLimits:

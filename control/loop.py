@@ -198,7 +198,7 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     U, Y = list(warm), [np.asarray(plant.step(u), np.float64).reshape(p) for u in warm]
     T = controller.past_steps_
     # the inputs a plan sees reach back as far as its energy budget's window (the outputs as far as its predictor's)
-    T_u = max(T, (controller.energy_window_steps_ or 1) - 1)
+    T_u = max(T, (controller.energy_window_steps_ or 1) - 1, getattr(controller, "history_steps_", 0))
     times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}
     n_fallback = 0
     dist = np.full((n_steps, p), np.nan) if hasattr(controller, "disturbance_") else None
@@ -235,7 +235,7 @@ def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, s
     n_w, n = warm.shape[0], u.shape[0]
     y = Y[n_w:]
     err = y - targets
-    counts = controller.limits_.violations(u, warm[-1])
+    counts = controller.limits_.violations(u, warm[-1], history=warm)
     lim = controller.limits_
     W = controller.energy_window_steps_
     over, ratio = (0, 0.0) if W is None else over_budget(u, lim.energy_budget_ua2, W, history=warm)
@@ -247,8 +247,9 @@ def _result(controller, warm, u, Y, targets, times, statuses, use, n_fallback, s
         inputs=ro(u), outputs=ro(y), targets=ro(targets), tracking_error=ro(err),
         rms_tracking_error=ro(np.sqrt(np.mean(err**2, axis=0))), energy_ua2=float(np.sum(u**2)),
         limit_use={k: v / n for k, v in use.items()},
-        violations={"amplitude": counts["amplitude"], "slew": counts["slew"], "energy_budget": over,
-                    "output_bounds": out_bounds},
+        violations={"amplitude": counts["amplitude"], "slew": counts["slew"],
+                    "energy_budget": over + counts.get("window_budget", 0), "output_bounds": out_bounds,
+                    **{k: counts[k] for k in ("train_length", "duty_cycle") if k in counts}},
         solve_time_s=ro(times), statuses=tuple(statuses), n_fallback=int(n_fallback), warmup_inputs=ro(warm),
         warmup_outputs=ro(Y[:n_w]), seed=seed, energy_window_steps=W, energy_window_max_ratio=ratio,
         disturbance_estimate=None if dist is None else ro(dist),

@@ -13,15 +13,16 @@ from __future__ import annotations
 
 import json
 import math
+from dataclasses import replace
 from datetime import datetime, timezone
 
 import numpy as np
 import pandas as pd
 
 from ..sysid.stimulation import decode_plan, parameter_segments
-from .physical_limits import RULE_SOURCES
+from .physical_limits import RULE_SOURCES, pulse_energy_uj
 
-__all__ = ["safety_checks", "window_charges_uc", "write_pulse_plan", "checks_pass"]
+__all__ = ["safety_checks", "window_charges_uc", "window_energies_uj", "write_pulse_plan", "checks_pass"]
 
 
 def window_charges_uc(pulses: pd.DataFrame, window_s: float) -> np.ndarray:
@@ -33,9 +34,27 @@ def window_charges_uc(pulses: pd.DataFrame, window_s: float) -> np.ndarray:
     el = pulses[pulses["kind"] == "electrical"] if len(pulses) else pulses
     if not len(el):
         return np.zeros(0)
-    order = np.argsort(el["onset_s"].to_numpy(np.float64), kind="stable")
-    t = el["onset_s"].to_numpy(np.float64)[order]
-    q = el["charge_per_phase_uc"].to_numpy(np.float64)[order]
+    return window_sums(el["onset_s"].to_numpy(np.float64), el["charge_per_phase_uc"].to_numpy(np.float64), window_s)
+
+
+def window_energies_uj(pulses: pd.DataFrame, window_s: float, mapping, physical) -> np.ndarray:
+    """Energy delivered in the window ``[t_i, t_i + window_s)`` starting at each pulse, µJ
+    (:func:`~stimsteer.control.physical_limits.pulse_energy_uj` of every pulse)."""
+    if not len(pulses):
+        return np.zeros(0)
+    e = np.zeros(len(pulses))
+    for site in mapping.sites:
+        rows = (pulses["site"] == site.name).to_numpy()
+        col = "irradiance_mw_per_mm2" if site.kind == "optical" else "amplitude_ua"
+        r = None if site.kind == "optical" else physical.sites[site.name].impedance_ohm
+        e[rows] = pulse_energy_uj(site, pulses.loc[rows, col].to_numpy(np.float64), r)
+    return window_sums(pulses["onset_s"].to_numpy(np.float64), e, window_s)
+
+
+def window_sums(onsets, values, window_s: float) -> np.ndarray:
+    """``Σ values`` over the pulses with onsets in ``[t_i, t_i + window_s)``, for each pulse ``i`` in onset order."""
+    order = np.argsort(onsets, kind="stable")
+    t, q = onsets[order], values[order]
     c = np.concatenate([[0.0], np.cumsum(q)])
     end = np.searchsorted(t, t + window_s - 1e-12, side="left")
     return c[end] - c[np.arange(t.size)]
@@ -69,16 +88,27 @@ def _electrical_rows(site, lim, sp, physical, rate, u_col) -> list:
         # rounding only: the decoded pulses are balanced by construction; a residual above 1e-9 is a defect
         rows.append(_row("charge_balance", site.name, 1e-9, float(resid.max()),
                          "residual charge / phase charge, per pulse"))
-    run = _longest_run(u_col) / rate
-    rows.append(_row("train_length", site.name, lim.train_length_max_s, run, "s"))
     return rows
 
 
-def _longest_run(col) -> int:
-    on = np.concatenate([[0], (np.asarray(col) > 0).astype(int), [0]])
-    d = np.diff(on)
-    starts, stops = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
-    return int(np.max(stops - starts)) if starts.size else 0
+def _train_rows(site, lim, col, n_past, rate) -> list:
+    """The plan's longest train and largest on-fraction over duty windows, counting the applied past before it."""
+    g = max(1, int(math.ceil(round(rate / site.frequency_hz, 9))))  # the train stays on one pulse period
+    c = np.concatenate([np.zeros(g, np.int64), np.cumsum(np.asarray(col) > 0)])
+    on = (c[g:] - c[:-g]) > 0
+    idx = np.arange(on.size)
+    run = idx - np.maximum.accumulate(np.where(on, -1, idx))  # samples since the last off one
+    rows = [_row("train_length", site.name, lim.train_length_max_s,
+                 float(np.max(run[n_past:], initial=0)) / rate, "s")]
+    span = lim.duty_window_s
+    if span is not None and lim.duty_cycle_max_fraction < 1:
+        w = max(1, int(round(span * rate)))
+        c = np.concatenate([np.zeros(w, np.int64), np.cumsum(on)])
+        most = float(np.max((c[w:] - c[:-w])[n_past:], initial=0)) / w
+        light = site.pulse_duty if site.kind == "optical" else 1.0
+        rows.append(_row("duty_cycle_window", site.name, lim.duty_cycle_max_fraction, most * light,
+                         f"on-fraction per {span:g} s window"))
+    return rows
 
 
 def safety_checks(u, mapping, compiled, *, u_past=None) -> tuple[pd.DataFrame, list]:
@@ -103,6 +133,8 @@ def safety_checks(u, mapping, compiled, *, u_past=None) -> tuple[pd.DataFrame, l
     u = np.asarray(u, np.float64)
     pulses = decode_plan(u, mapping)
     physical, rate = compiled.physical, mapping.sample_rate_hz
+    seq = u if u_past is None or not len(u_past) else np.vstack([np.asarray(u_past, np.float64), u])
+    n_past = len(seq) - len(u)
     checks = []
     for j, site in enumerate(mapping.sites):
         lim = physical.sites[site.name]
@@ -110,20 +142,27 @@ def safety_checks(u, mapping, compiled, *, u_past=None) -> tuple[pd.DataFrame, l
                            name="frequency_max"))
         checks.append(_row("frequency", site.name, lim.frequency_min_hz, site.frequency_hz, "Hz",
                            smaller_is_safe=False, name="frequency_min"))
-        duty = site.train.duty * (site.pulse_duty if site.kind == "optical" else 1.0)
-        checks.append(_row("duty_cycle", site.name, lim.duty_cycle_max_fraction, duty, "fraction"))
+        if site.train.on_s is not None:  # the declared train cycle (the plan's own on/off: duty_cycle_window)
+            duty = site.train.duty * (site.pulse_duty if site.kind == "optical" else 1.0)
+            checks.append(_row("duty_cycle", site.name, lim.duty_cycle_max_fraction, duty, "fraction"))
+        checks += _train_rows(site, replace(lim, duty_window_s=lim.duty_window_s or physical.window_s),
+                              seq[:, j], n_past, rate)
         sp = pulses[pulses["site"] == site.name]
         if site.kind == "optical":
             top = float(sp["irradiance_mw_per_mm2"].max()) if len(sp) else 0.0
             checks.append(_row("irradiance", site.name, lim.irradiance_max_mw_per_mm2, top, "mW/mm^2"))
         else:
             checks += _electrical_rows(site, lim, sp, physical, rate, u[:, j])
+    if compiled.window_charge_uc is not None or compiled.window_energy_uj is not None:
+        every = decode_plan(seq, mapping, start_time_s=-n_past / rate)
     if compiled.window_charge_uc is not None:
-        seq = u if u_past is None or not len(u_past) else np.vstack([np.asarray(u_past, np.float64), u])
-        every = decode_plan(seq, mapping, start_time_s=-(len(seq) - len(u)) / rate)
         worst = float(np.max(window_charges_uc(every, physical.window_s), initial=0.0))
         checks.append(_row("charge_rate_window", "all", compiled.window_charge_uc, worst,
                            f"uC per {physical.window_s:g} s window"))
+    if compiled.window_energy_uj is not None:
+        worst = float(np.max(window_energies_uj(every, physical.window_s, mapping, physical), initial=0.0))
+        checks.append(_row("energy_window", "all", compiled.window_energy_uj, worst,
+                           f"uJ per {physical.window_s:g} s window"))
     return pulses, checks
 
 

@@ -30,7 +30,7 @@ from ...sysid.caution import CAUTION
 from ..figures._titles import fitted_what
 from ..figures.plan import plan_figure
 from ..figures.pulse_plan import pulse_plan_figure_of
-from .._plan_physical import plan_limits
+from .._plan_physical import limits_record, plan_limits, signed_input_notes
 from .._pulse_text import pulse_plan_lines
 from ..limits import load_limits
 # the mpc submodules, not the package: stimsteer.control.mpc forwards the old names of this workflow to here
@@ -130,7 +130,8 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
         path, index = from_trial
         with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
             u_past, y_past = trial_end_window(session, index, window_of, provenance)
-            u_past = _applied_before(session, index, u_past, ctrl.energy_window_steps_)
+            u_past = _applied_before(session, index, u_past, max(ctrl.energy_window_steps_ or 0,
+                                                                  getattr(ctrl, "history_steps_", 0) + 1) or None)
         start = f"the end of trial {index} of {path}"
     if physical is not None:
         physical.u_past = np.asarray(u_past, np.float64)
@@ -140,10 +141,13 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
                            recorded_from=recorded_from, flag_fraction=flag_fraction)
     extra = {**_model_record(model_path, provenance, out_dir), "limits_file": str(limits_path), "start": start,
              "tracked_outputs": [n for n, t in zip(names_out, tracked) if t], "sample_rate_hz": rate,
-             "limits": ctrl.limits_.to_dict(), "controller": type(ctrl).__name__,
+             "limits": limits_record(ctrl.limits_, physical), "controller": type(ctrl).__name__,
              "method": getattr(ctrl, "method_", "model"), "what": _what(provenance, ctrl)}
     if physical is not None:  # the compiled limits are bounds on the model inputs, in the mapping's units
         extra["limits_input_units"] = list(physical.mapping.model_units())
+    signed = signed_input_notes(plan, physical)  # a negative input without a description: said, not refused
+    if signed:
+        extra["notes"] = signed
     files = write_plan(plan, out_dir, sample_rate_hz=rate, output_units=units, tracked=tracked, extra=extra,
                        force=force, physical=physical, ranges=ranges,
                        input_units=(physical.mapping.model_units() if physical is not None else
@@ -156,6 +160,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
                      f"{'all passed' if physical.record['all_checks_passed'] else 'FAILED'}")
         lines += pulse_plan_lines(physical, plan)  # per site: pulses, amplitudes, charge, the tightest check
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
+    notes += signed
     return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
 
 

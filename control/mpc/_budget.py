@@ -27,6 +27,13 @@ energies are 10⁶ times larger, and the solver stopped 0.0065 µA past an ampli
 cone problem is the same in any unit and the per-step energies are of order one (the largest amplitude bound as
 ``s`` left them ~1e-3 for tight budgets, and the solver then broke the budget by 2e-4 of it). The checks
 (:meth:`excess`, :meth:`blend`) stay in the raw units and exact.
+
+Weighted loads. A budget in physical units (:class:`~stimsteer.control.sequence_limits.WindowBudget`) replaces
+``‖u_k‖²`` by the load ``ℓ_k = Σ_i (a_i |u_ik| + b_i u_ik²)``: the charge per phase is linear in the amplitude, so its
+window rows are linear and exact (no Cauchy–Schwarz step), the Joule energy quadratic. Every argument above holds for
+any load that grows with ``|u|`` (the ramp windows, the least-load fallback, recursive feasibility). Its rows are
+written as ``ℓ_k · W / E`` (the load that fills the budget when every step of a window carries it is 1): the same
+in any unit of ``u``, since ``a`` and ``b`` carry the unit.
 """
 
 from __future__ import annotations
@@ -43,8 +50,14 @@ __all__: list = []
 class _RollingBudget:
     """Window matrices and checks of an energy budget over rolling windows, for a plan of ``N`` steps."""
 
-    def __init__(self, budget: float, window: int, horizon_steps: int, slew):
+    def __init__(self, budget: float, window: int, horizon_steps: int, slew, *, linear=None, quadratic=None,
+                 name: str = "energy_budget", unit: str = "uA^2"):
         self.budget, self.window, self.N = float(budget), check_window(window), int(horizon_steps)
+        # None, None: the per-sample layout's Σ u² (its cone rows unchanged); else the weighted load ℓ_k
+        self.weighted = linear is not None or quadratic is not None
+        self.a = None if linear is None else np.asarray(linear, np.float64)
+        self.b = None if quadratic is None else np.asarray(quadratic, np.float64)
+        self.name, self.unit = name, unit
         W, N = self.window, self.N
         self.fin = np.zeros(0, bool) if slew is None else np.isfinite(slew)
         self.slew = None if slew is None else np.asarray(slew, np.float64)
@@ -64,8 +77,18 @@ class _RollingBudget:
         if not np.all(np.isfinite(h)):
             raise SessionError(f"u_past holds NaN or infinite values in its last {self.window - 1} samples, which "
                                "count in the energy budget's window; plan from a clean stretch of data.")
-        e = np.sum(h**2, axis=1) if h.size else np.zeros(0)
+        e = self.loads(h) if h.size else np.zeros(0)
         return np.concatenate([np.zeros(self.window - 1 - e.size), e])
+
+    def loads(self, u) -> np.ndarray:
+        """The load of each row of ``u`` (n, m): ``Σ u²``, or ``Σ a|u| + b u²`` for a weighted budget."""
+        u = np.asarray(u, np.float64)
+        if not self.weighted:
+            return np.sum(u**2, axis=1)
+        m = u.shape[1]
+        a = np.zeros(m) if self.a is None else self.a
+        b = np.zeros(m) if self.b is None else self.b
+        return np.abs(u) @ a + (u**2) @ b
 
     def ramp_energies(self, last) -> np.ndarray:
         """``r_t`` of the ramp to zero after a plan ending at ``last``, t = 1 … n_tail."""
@@ -73,16 +96,25 @@ class _RollingBudget:
             return np.zeros(0)
         t = np.arange(1, self.n_tail + 1)[:, None]
         a = np.abs(np.asarray(last, np.float64)[self.fin])[None, :]
-        return np.sum(np.maximum(a - t * self.slew[self.fin][None, :], 0.0) ** 2, axis=1)
+        r = np.maximum(a - t * self.slew[self.fin][None, :], 0.0)
+        if not self.weighted:
+            return np.sum(r**2, axis=1)
+        full = np.zeros((r.shape[0], self.fin.size))
+        full[:, self.fin] = r
+        return np.array([float(self.loads(row[None, :])[0]) for row in full])
 
     def energies(self, u, hist) -> np.ndarray:
         """Energy of every constrained window for the plan ``u`` (N, m) after the past energies ``hist``."""
         u = np.asarray(u, np.float64).reshape(self.N, -1)
-        return self.Mh @ hist + self.Mp @ np.sum(u**2, axis=1) + self.Mr @ self.ramp_energies(u[-1])
+        return self.Mh @ hist + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
 
     def excess(self, u, hist) -> float:
-        """How far the largest window exceeds the budget, µA² (negative: inside)."""
+        """How far the largest window exceeds the budget, in its unit (negative: inside)."""
         return float(np.max(self.energies(u, hist)) - self.budget)
+
+    def relative_excess(self, u, hist) -> float:
+        """:meth:`excess` as a fraction of the budget."""
+        return self.excess(u, hist) / self.budget
 
     def blend(self, u, safe, hist):
         """``α u + (1 − α) safe`` with the largest α in [0, 1] inside every window (``safe`` must be inside).
@@ -109,6 +141,8 @@ class _RollingBudget:
     def constraints(self, u, m: int, scale: float = 1.0) -> list:
         """The window constraints on the stacked inputs ``u`` (N·m,) in units of ``scale`` (energies in units of
         ``scale²``, see the module notes); sets ``self.left``, the budget Parameter."""
+        if self.weighted:
+            return self._weighted_constraints(u, m, scale)
         N, s = self.N, float(scale)
         self.row_scale = s
         self.left = cp.Parameter(self.Mp.shape[0], name="energy_budget_left_scaled")
@@ -126,6 +160,58 @@ class _RollingBudget:
         cons.append(lhs <= self.left)
         return cons
 
+    def _weighted_constraints(self, u, m: int, scale: float) -> list:
+        """The rows of a weighted load, in units of ``E / W`` per step, on the inputs in units of ``scale`` (the
+        controller's amplitude scale: the epigraph of ``|u|`` is then of order one in any unit; module notes)."""
+        N, norm, s = self.N, self.window / self.budget, float(scale)
+        self.row_scale = float(np.sqrt(1.0 / norm))
+        self.left = cp.Parameter(self.Mp.shape[0], name=f"{self.name}_left_scaled")
+        e = cp.Variable(N, nonneg=True, name=f"{self.name}_step_load_scaled")
+        U = cp.reshape(u, (N, m), order="C") / s
+        a = np.zeros(m) if self.a is None else self.a * norm * s
+        b = np.zeros(m) if self.b is None else self.b * norm * s**2
+
+        def load(x, idx):  # x: a (rows, len(idx)) expression of magnitudes or signed inputs
+            terms = []
+            if np.any(b[idx] > 0):
+                terms.append(cp.sum(cp.square(cp.multiply(x, np.sqrt(b[idx])[None, :])), axis=1))
+            if np.any(a[idx] > 0):
+                terms.append(cp.abs(x) @ a[idx])
+            return sum(terms[1:], terms[0]) if terms else 0
+
+        everything = np.arange(m)
+        cons = [load(U, everything) <= e]
+        lhs = self.Mp @ e
+        if self.n_tail:
+            r = cp.Variable(self.n_tail, nonneg=True, name=f"{self.name}_ramp_load_scaled")
+            idx = np.flatnonzero(self.fin)
+            mag = cp.abs(U[N - 1, :])
+            cons += [load(cp.reshape(cp.pos(mag[idx] - t * self.slew[idx] / s), (1, idx.size), order="C"), idx)
+                     <= r[t - 1] for t in range(1, self.n_tail + 1)]
+            lhs = lhs + self.Mr @ r
+        cons.append(lhs <= self.left)
+        return cons
+
     def assign(self, hist) -> None:
         """The budget left in each window by the applied past (in units of the rows' ``scale²``)."""
         self.left.value = (self.budget - self.Mh @ hist) / getattr(self, "row_scale", 1.0) ** 2
+
+
+def blend_all(budgets, hists, u, safe):
+    """``α u + (1 − α) safe`` with the largest α in [0, 1] inside every window of every budget (``safe`` inside).
+
+    Every window load is convex in α, so the α inside all budgets form an interval from 0: bisection.
+    """
+    def inside(x):
+        return all(np.max(b.energies(x, h)) <= b.budget * (1.0 - 1e-10) for b, h in zip(budgets, hists))
+
+    if inside(u):
+        return u
+    lo, hi = 0.0, 1.0
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        if inside(mid * u + (1.0 - mid) * safe):
+            lo = mid
+        else:
+            hi = mid
+    return lo * u + (1.0 - lo) * safe

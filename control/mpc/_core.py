@@ -35,7 +35,8 @@ import scipy.sparse as sp
 
 from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
 from ..limits import StimLimits
-from ._budget import _RollingBudget
+from ..sequence_limits import history_breaks, on_mask
+from ._budget import _RollingBudget, blend_all
 from .plan import Plan, _ro
 
 __all__: list = []
@@ -46,6 +47,7 @@ _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
 _CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
+_ZERO_RTOL = 1e-6  # under window budgets or train limits, |u| at most this fraction of its bound is residue: 0
 
 
 # ---------------------------------------------------------------------------------------------------- settings
@@ -132,12 +134,21 @@ class _PredictiveController(BaseEstimator):
         self.energy_window_steps_ = None if self._energy is None else (self.limits_.energy_window_steps or N)
         self._budget = None if self._energy is None else _RollingBudget(self._energy, self.energy_window_steps_, N,
                                                                            self._slew)
-        self._hist = None
-        self._scale = max(1.0, float(np.max(np.abs(np.concatenate([self._lo, self._hi])))))
-        # the cone problem's input rows are written in units of the largest amplitude bound (see "Units")
+        # every budget over rolling windows: the per-sample layout's Σ u², then those in physical units
+        self._budgets = ([] if self._budget is None else [self._budget]) + [_RollingBudget(
+            b.budget, b.window_steps, N, self._slew, linear=b.linear, quadratic=b.quadratic, name=b.name, unit=b.unit)
+            for b in self.limits_.window_budgets]
+        self._train = self.limits_.train_limits
+        # applied inputs a plan must see: every budget window and train limit reaches this far back
+        self.history_steps_ = max([b.window - 1 for b in self._budgets] +
+                                  [0 if self._train is None else self._train.keep()])
+        self._hist, self._whists, self._u_all = None, [], None
+        # the cone problem's input rows are written in units of the largest amplitude bound (see "Units"); the
+        # acceptance tolerance of a solver's answer is relative to it too, so it means the same in any unit
         bounds = np.abs(np.concatenate([self._lo, self._hi]))
         bounds = bounds[np.isfinite(bounds) & (bounds > 0)]
         self._row_scale = float(np.max(bounds)) if bounds.size else 1.0
+        self._scale = self._row_scale
         self._Ru = sla.block_diag(*[_sqrt_weight("input_weight", self.input_weight, m)] * N)
         try:
             penalty = float(self.output_penalty)
@@ -196,8 +207,8 @@ class _PredictiveController(BaseEstimator):
         if self._slew_rows is not None:
             Dm, lim = self._slew_rows
             cons += [Dm @ u / rs <= lim / rs, Dm @ u / rs >= -lim / rs]
-        if self._budget is not None:
-            cons += self._budget.constraints(u, m, self._budget.unit_scale())
+        for b in self._budgets:
+            cons += b.constraints(u, m, self._row_scale if b.weighted else b.unit_scale())
         slack = None
         if self._idx_b.size:
             slack = cp.Variable(self._idx_b.size, nonneg=True, name="output_slack")
@@ -276,7 +287,12 @@ class _PredictiveController(BaseEstimator):
             return (f"even the least-energy sequence allowed by the slew limit puts {worst:.4g} µA² in a window of "
                     f"{self.energy_window_steps_} samples (counting the inputs applied before the plan) > the energy "
                     f"budget {self._energy:g} µA²; raise the budget or the slew limit")
-        return ""
+        for b, h in zip(self._budgets, self._hists):
+            if b.weighted and b.relative_excess(fallback, h) > 1e-9:
+                return (f"{b.name}: the inputs applied before the plan already put {b.excess(fallback, h) + b.budget:.4g} "
+                        f"{b.unit} in a window of {b.window} samples > the budget {b.budget:.4g} {b.unit}, even with "
+                        "the least stimulation from now on; the plan cannot meet it")
+        return history_breaks(self._train, self._u_all, self.horizon_steps_) if self._train is not None else ""
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None) -> Plan:
         """Plan the stimulation over the horizon from the measured past.
@@ -317,12 +333,17 @@ class _PredictiveController(BaseEstimator):
         u_past, y_past = self._check_past(u_past, y_past)
         # the energy windows reach back into the applied past, which may be longer than the prediction's window
         self._hist = None if self._budget is None else self._budget.history(np.asarray(u_all, np.float64))
+        self._whists = [b.history(np.asarray(u_all, np.float64)) for b in self._budgets if b.weighted]
+        self._u_all = np.asarray(u_all, np.float64)
         last = self._check_last(last_input, u_past)
         target = self._check_target(target)
         lb, ub, broken = self._step_bounds(last)
+        if self._train is not None:  # the on/off mask of the train limits, from the applied history
+            mask = on_mask(self._train, self._u_all, self.horizon_steps_)
+            lb, ub = np.where(mask, lb, 0.0), np.where(mask, ub, 0.0)
         t0 = time.perf_counter()
         # the safe fallback is needed up front only with an energy budget (guard, projection blend)
-        fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._energy is not None else None
+        fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._budgets else None
         reason = self._guard(broken, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
@@ -346,8 +367,7 @@ class _PredictiveController(BaseEstimator):
         status = reason = ""
         if fast:
             u, aux, status, reason = self._solve_fast(offsets, lb, ub)
-            if u is not None and self._budget is not None and \
-                    self._budget.excess(u, self._hist) > -1e-9 * self._energy:
+            if u is not None and self._budget_excess(u) > -1e-9:
                 # a budget window binds (or breaks): the budget-free QP's answer is not the optimum
                 u, aux, status, reason = None, None, "budget", "energy budget binding"
         if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
@@ -366,8 +386,8 @@ class _PredictiveController(BaseEstimator):
         self._set_cost_scale(offsets)
         self._assign(offsets)
         self._lb.value, self._ub.value = lb.reshape(-1) / self._row_scale, ub.reshape(-1) / self._row_scale
-        if self._budget is not None:
-            self._budget.assign(self._hist)
+        for b, h in zip(self._budgets, self._hists):
+            b.assign(h)
         opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
         opts.update(self.solver_options or {})
         try:
@@ -391,23 +411,27 @@ class _PredictiveController(BaseEstimator):
         if self._slew is not None:
             d = np.abs(np.diff(np.vstack([last, u]), axis=0)) - self._slew
             excess = max(excess, float(np.max(d[:, np.isfinite(self._slew)], initial=0.0)))
-        if self._budget is not None:
+        if self._budgets:
             # relative to the budget (a sum over the window), in the amplitude scale of the tolerance
-            excess = max(excess, self._budget.excess(u, self._hist) / self._energy * self._scale)
+            excess = max(excess, self._budget_excess(u) * self._scale)
         if not np.all(np.isfinite(u)) or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
         u = np.clip(u, lb, ub)
+        if self.limits_.has_sequence_limits and self._slew is None:
+            # solver residue near zero stimulation (interior points never reach 0) would count as a train on and
+            # as a pulse; below 1e-6 of an input's bound it is delivered as zero, which lowers every load
+            u = np.where(np.abs(u) <= _ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi)), 0.0, u)
         if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
             prev = u[0]
             for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
                 u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
                 prev = u[k]
-        if self._budget is not None:
-            u = self._budget.blend(u, fallback, self._hist)
-            if self._budget.excess(u, self._hist) > 1e-9 * self._energy:
+        if self._budgets:
+            u = blend_all(self._budgets, self._hists, u, fallback)
+            if self._budget_excess(u) > 1e-9:
                 return None, "internal check failed after projection: an energy budget window is over budget"
-        bad = {k: v for k, v in self.limits_.violations(u, last, energy_window_steps=self.energy_window_steps_
-                                                          ).items() if v}
+        bad = {k: v for k, v in self.limits_.violations(u, last, energy_window_steps=self.energy_window_steps_,
+                                                          history=self._u_all).items() if v}
         if bad:  # cannot happen after the clip above; never return such a plan
             return None, f"internal check failed after projection: {bad}"
         return u, ""
@@ -436,6 +460,14 @@ class _PredictiveController(BaseEstimator):
             broken_limits=self._broken(u, last, broken),
         )
 
+    @property
+    def _hists(self) -> list:  # the applied past's load per window step, one array per budget of ``_budgets``
+        return ([self._hist] if self._budget is not None else []) + list(self._whists)
+
+    def _budget_excess(self, u) -> float:
+        """The largest window load over its budget, as a fraction of the budget, over every budget (-inf: none)."""
+        return max((b.relative_excess(u, h) for b, h in zip(self._budgets, self._hists)), default=-np.inf)
+
     def _broken(self, u, last, broken):
         """Readable lines naming each hard limit the returned inputs break (only when no sequence can meet them)."""
         lines = [f"slew on {self.input_names_[i]} at step 0: the last input {last[i]:g} µA lies more than "
@@ -444,6 +476,9 @@ class _PredictiveController(BaseEstimator):
         if self._budget is not None and self._budget.excess(u, self._hist) > 1e-9 * self._energy:
             lines.append(f"energy_budget: a window of {self.energy_window_steps_} samples holds "
                          f"{self._budget.excess(u, self._hist) + self._energy:.4g} µA² > {self._energy:g} µA²")
+        lines += [f"{b.name}: a window of {b.window} samples holds {b.excess(u, h) + b.budget:.4g} {b.unit} > "
+                  f"{b.budget:.4g} {b.unit}" for b, h in zip(self._budgets, self._hists)
+                  if b.weighted and b.relative_excess(u, h) > 1e-9]
         return tuple(lines)
 
     def _active(self, u, y, last, lb, ub):
@@ -458,8 +493,7 @@ class _PredictiveController(BaseEstimator):
             act["slew"] = np.isfinite(self._slew) & (d >= self._slew - tol)
         else:
             act["slew"] = np.zeros_like(u, dtype=bool)
-        act["energy_budget"] = bool(self._budget is not None and
-                                    self._budget.excess(u, self._hist) >= -1e-6 * self._energy)
+        act["energy_budget"] = bool(self._budgets and self._budget_excess(u) >= -1e-6)
         yv = y.reshape(-1)
         ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
         act["output_bounds"] = ((yv >= self._ymax - ytol) | (yv <= self._ymin + ytol)).reshape(y.shape)

@@ -169,6 +169,7 @@ def _unsupported(c) -> str:
         (getattr(c, "target_kind_", "") != "output", "it plans towards a state"),
         (getattr(c, "_LpT", None) is not None, "it has a terminal weight"),
         (getattr(c, "_energy", None) is not None, "its limits have an energy budget"),
+        (c.limits_.has_sequence_limits, "its limits have window budgets or train limits in physical terms"),
         (getattr(c, "_idx_b", np.zeros(0)).size > 0, "its limits have output bounds"),
         (method == "deepc" and getattr(c, "_elim", None) is None,
          "its DeePC problem does not reduce to the inputs (an l1 regulariser, or dependent equalities)"),

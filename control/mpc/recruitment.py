@@ -39,7 +39,7 @@ def recruited_limits(predictor, limits) -> StimLimits:
     if not isinstance(limits, StimLimits):
         raise InvalidParameterError(f"limits must be a StimLimits; got {type(limits).__name__}.")
     lim = limits.aligned(tuple(predictor.input_names_), tuple(predictor.output_names_))
-    if lim.energy_budget_ua2 is not None or (lim.slew_max_ua is not None and np.any(np.isfinite(lim.slew_max_ua))):
+    if lim.energy_budget_ua2 is not None or lim.has_sequence_limits or (lim.slew_max_ua is not None and np.any(np.isfinite(lim.slew_max_ua))):
         raise InvalidParameterError(
             "a recruitment (Hammerstein) plan keeps amplitude and charge-density bounds exactly, but not a slew "
             "limit or an energy budget (they do not map through a nonlinear recruitment); remove them from the "

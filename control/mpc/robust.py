@@ -78,7 +78,7 @@ class RobustPlanner:
             raise InvalidParameterError(f"limits must be a StimLimits; got {type(self.limits).__name__}.")
         ens = self.ensemble
         lim = self.limits.aligned(tuple(ens.input_names_), tuple(ens.output_names_))
-        if lim.energy_budget_ua2 is not None or lim.has_output_bounds:
+        if lim.energy_budget_ua2 is not None or lim.has_output_bounds or lim.has_sequence_limits:
             raise InvalidParameterError("a plan robust over the ensemble keeps amplitude, charge-density and slew "
                                         "limits; these limits also declare an energy budget or output bounds. Plan "
                                         "with the ensemble's mean (controller_for) for them, or remove them.")
