@@ -122,17 +122,7 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     weight = float(output_weight) * tracked.astype(float)
     ctrl = _robust_planner(predictor, limits, N, weight, input_weight, robust) if robust is not None else \
         controller_for(predictor, limits, horizon_steps=N, output_weight=weight, input_weight=input_weight)
-    window_of = predictor if hasattr(predictor, "past_steps_") else ctrl  # a bare model: the controller's window
-    if from_trial is None:
-        u_past, y_past = rest_window(window_of, len(names_in), len(names_out))
-        start = "rest"
-    else:
-        path, index = from_trial
-        with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
-            u_past, y_past = trial_end_window(session, index, window_of, provenance)
-            u_past = _applied_before(session, index, u_past, max(ctrl.energy_window_steps_ or 0,
-                                                                  getattr(ctrl, "history_steps_", 0) + 1) or None)
-        start = f"the end of trial {index} of {path}"
+    u_past, y_past, start = _start_window(predictor, ctrl, len(names_in), len(names_out), from_trial, provenance)
     if physical is not None:
         physical.u_past = np.asarray(u_past, np.float64)
     plan = ctrl.plan(u_past, y_past, target=tgt)
@@ -162,6 +152,21 @@ def plan_to_folder(model_path, *, target, limits_path, out_dir, horizon_steps=No
     notes = _notes(plan, provenance if physical is None else {})  # physical limits: units converted by pint
     notes += signed
     return PlanRun(plan=plan, files=files, lines=tuple(lines + notes + ranges.lines()))
+
+
+def _start_window(predictor, ctrl, n_in, n_out, from_trial, provenance):
+    """The past window a plan starts from (rest, or the end of a recorded trial with the inputs applied before it
+    that the controller's windows reach back to) and its description."""
+    window_of = predictor if hasattr(predictor, "past_steps_") else ctrl  # a bare model: the controller's window
+    if from_trial is None:
+        u_past, y_past = rest_window(window_of, n_in, n_out)
+        return u_past, y_past, "rest"
+    path, index = from_trial
+    with open_for_model(path, provenance) as session:  # our HDF5 layout: only the trial's last window is read
+        u_past, y_past = trial_end_window(session, index, window_of, provenance)
+        u_past = _applied_before(session, index, u_past, max(ctrl.energy_window_steps_ or 0,
+                                                              getattr(ctrl, "history_steps_", 0) + 1) or None)
+    return u_past, y_past, f"the end of trial {index} of {path}"
 
 
 def _input_units(predictor, provenance):
