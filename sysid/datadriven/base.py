@@ -110,12 +110,28 @@ def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
         perm = np.random.default_rng(seed).permutation(len(used))
         fold_of_trial = {used[j]: int(i % k) for i, j in enumerate(perm)}
         return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
-    pieces = []
-    for a, b in segs:
-        edges = np.linspace(a, b, n_splits + 1).round().astype(np.int64)
-        pieces += [(int(lo), int(hi), f) for f, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])) if hi - lo >= L]
-    k = len({f for *_, f in pieces})
+    pieces = _time_blocks(segs, n_splits, L)
+    present = {f: i for i, f in enumerate(sorted({f for *_, f in pieces}))}  # fold ids 0 .. k-1, none empty
+    pieces, k = [(a, b, present[f]) for a, b, f in pieces], len(present)
     return pieces, k, "contiguous blocks (one trial)"
+
+
+def _time_blocks(segs, n_splits: int, L: int) -> list:
+    """``(a, b, fold)``: one trial's valid pieces, in time order, cut into ``n_splits`` contiguous blocks of (nearly)
+    equal column counts. A piece inside one block stays whole (blanking cuts a trial into many short pieces: cutting
+    each of them into ``n_splits`` would leave none ``L`` long); a piece that crosses a block edge is cut there in
+    samples, so no sample of it serves two folds (parts shorter than ``L`` are dropped, as before)."""
+    counts = [b - a - L + 1 for a, b in segs]
+    edges = np.linspace(0, sum(counts), n_splits + 1).round().astype(np.int64)
+    pieces, first = [], 0
+    for (a, b), n in zip(segs, counts):
+        for f in range(n_splits):
+            lo = a if edges[f] <= first else a + int(edges[f]) - first  # edge inside the piece: cut at its column
+            hi = b if edges[f + 1] >= first + n else a + int(edges[f + 1]) - first
+            if hi - lo >= L:
+                pieces.append((int(lo), int(hi), f))
+        first += n
+    return pieces
 
 
 def _pieces(session, L, n_folds_wanted, seed, past):

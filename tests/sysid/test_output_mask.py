@@ -160,3 +160,27 @@ def test_trial_resamples_keep_the_blanked_outputs_of_each_drawn_trial():
         np.testing.assert_array_equal(draw.output_mask, np.concatenate([om[10:20], om[10:20], om[0:10]]))
         np.testing.assert_array_equal(draw.u[:, 0], np.concatenate([np.arange(10, 20), np.arange(10, 20),
                                                                      np.arange(10)]))
+
+
+def test_one_blanked_trial_is_folded_by_time_over_its_short_pieces():
+    # Before: the direct route cut each valid piece of a single trial into n_splits blocks; blanking every 7.7
+    # samples leaves pieces of a few columns, so every block was shorter than one column and the fit raised
+    # "... fit in 0 fold(s)". Now the trial's columns, in time order, are cut into n_splits contiguous blocks.
+    from stimsteer.sysid.datadriven import LsqPredictor
+    from stimsteer.sysid.datadriven.base import _fold_of_segments
+
+    b = blank_artifacts(_pulses(n=8000, n_trials=1), window_s=0.002)
+    L, past = 6, 4
+    segs = output_valid_segments(b, b.segments(L), L, past)
+    assert max(e - a for a, e in segs) < 3 * L  # the case: no piece survives a cut into 3 blocks of >= L samples
+    pieces, k, scheme = _fold_of_segments(b, segs, 3, 0, L)
+    assert k == 3 and scheme == "contiguous blocks (one trial)"
+    cols = lambda ranges: [t for a, e, *_ in ranges for t in range(a, e - L + 1)]  # noqa: E731 (column starts)
+    assert set(cols(pieces)) <= set(cols(segs)) and len(cols(pieces)) == len(set(cols(pieces)))  # none twice
+    assert len(cols(pieces)) >= len(cols(segs)) - 2 * (L - 1)  # at most L - 1 columns lost at each of 2 cuts
+    folds = [f for a, e, f in sorted(pieces)]
+    assert folds == sorted(folds)  # contiguous in time: fold 0, then 1, then 2
+    sizes = [len(cols([p for p in pieces if p[2] == f])) for f in range(3)]
+    assert max(sizes) - min(sizes) <= L
+    m = LsqPredictor(past_steps=past, horizon_steps=L - past).fit(b)
+    assert m.cv_scheme_ == "contiguous blocks (one trial)" and m.n_columns_ == len(cols(pieces))
