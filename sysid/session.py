@@ -55,6 +55,8 @@ class TrialSplit:
 
 
 def _readonly(a: np.ndarray) -> np.ndarray:
+    if not a.flags.writeable and a.flags.owndata:
+        return a  # already frozen by its maker (another session, or a reader that fills its arrays in place): shared
     a = np.array(a, copy=True)
     a.setflags(write=False)
     return a
