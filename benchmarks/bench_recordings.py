@@ -4,8 +4,9 @@ Measured in one run, each case in its own child process (peak resident set, ``ru
 the size of the data it is about (float64):
 
 * **convert** of a FIF file of many channels (written by MNE itself) whose description uses a few: the
-  description's channels only are read (``read_mne_file(..., names=, types=)``), against reading every channel (the
-  behaviour before, still used when the description names no channel);
+  description's channels only are picked (``read_mne_file(..., names=, types=)``), against a recording of every
+  channel (used when the description names no channel); since the streamed reading both read only the windows of
+  the channels used, so the two now agree;
 * **convert, streamed** of long EDF recordings (written by MNE's exporter) at two lengths: the session's arrays
   are filled window by window from the file, so the peak beyond the session and its in-memory HDF5 image should
   not grow with the length (before this change it was about 4.2× the session: the channels read whole, then
@@ -182,7 +183,7 @@ def main() -> None:
         all_mb, used_mb = a.channels * n * 8 / 1e6, 5 * n * 8 / 1e6
         print(f"convert: FIF of {a.channels} channels x {n} samples ({all_mb:.0f} MB as float64); the description "
               f"uses 5 channels ({used_mb:.0f} MB)")
-        for label, every in (("every channel read (before)", True), ("described channels only (after)", False)):
+        for label, every in (("every channel in the recording", True), ("described channels only", False)):
             rss, wall = peak(convert, str(fif), str(tmp / "s.h5"), every)
             print(f"  {label:34s} peak {(rss - base) / 1e6:7.0f} MB = {(rss - base) / 1e6 / used_mb:5.1f}x the "
                   f"used data; {wall:.1f} s")

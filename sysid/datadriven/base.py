@@ -16,7 +16,7 @@ from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
-from ..output_mask import output_valid_segments
+from ..output_mask import blanking_note, output_valid_segments
 from .._progress import progress
 from .gram import GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, total_fold
 
@@ -132,6 +132,16 @@ def _time_blocks(segs, n_splits: int, L: int) -> list:
                 pieces.append((int(lo), int(hi), f))
         first += n
     return pieces
+
+
+def _check_columns(session, past: int, horizon: int) -> None:
+    """Refuse a session none of whose windows may be fitted (every one predicts a blanked output): the fit would
+    otherwise be made on no data at all."""
+    L = past + horizon
+    segs = session.segments(L)
+    if segs and not output_valid_segments(session, segs, L, past):
+        raise SessionError(f"no window of past_steps + horizon_steps = {L} samples can be fitted: each predicts a "
+                           "blanked output." + blanking_note(session, segs, L, past))
 
 
 def _pieces(session, L, n_folds_wanted, seed, past):
@@ -268,6 +278,7 @@ class _DirectPredictor(BasePredictor):
         # Per-channel scaling to unit root mean square makes every strength, the slack weight and the fit itself
         # independent of the channels' units (issue 13: µV and mV gave predictions 25 % apart at a fixed alpha).
         self.channel_scale_ = _channel_rms(session)
+        _check_columns(session, past, horizon)
         folds, scheme, std, trial_fold, (route, cond) = _collect(
             _ScaledChannels(session, self.channel_scale_), past, horizon, self.n_splits if n_candidates > 1 else 1,
             self.seed, keep_full, getattr(self, "_route", "auto"))
@@ -276,7 +287,8 @@ class _DirectPredictor(BasePredictor):
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
                 f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer "
-                "trials, or give a single strength."
+                "trials, or give a single strength." + blanking_note(session, session.segments(past + horizon),
+                                                                     past + horizon, past)
             )
         m, p = int(session.n_inputs), int(session.n_outputs)
         self.past_steps_, self.max_horizon_steps_ = past, horizon

@@ -213,3 +213,23 @@ def test_resampling_blanks_only_the_outputs_the_blank_really_moves():
     kept = half.output_mask
     assert np.max(np.abs(half.y[kept, 0] - ref.y[kept, 0])) < 1e-3
     assert half.metadata["prep"][-1]["blanked_outputs"].startswith("interpolated across each blank")
+
+
+@pytest.mark.parametrize("make", ["subspace", "lsq_one_strength", "lsq_selection", "hankel_one_strength"])
+def test_routes_that_lose_every_window_to_blanking_say_so_and_what_to_do(make):
+    # 130 Hz pulses at 1 kHz, 2 ms blanked after each: every window predicting 10 outputs holds a blanked one.
+    # Before: subspace said "0 Hankel columns ... record longer trials" (no word of blanking), the selection
+    # "fit in 0 fold(s)", and a direct predictor with one strength fitted silently on no column at all
+    # (n_columns_ == 0). Now each names the blanking, the counts (known by construction: every window) and the fixes.
+    from stimsteer.sysid.datadriven import HankelPredictor, LsqPredictor
+    from stimsteer.sysid.subspace import SubspaceId
+
+    b = blank_artifacts(_pulses(n=6000, n_trials=2), window_s=0.002)
+    est = {"subspace": lambda: SubspaceId(past_steps=10, future_steps=10, order=2),
+           "lsq_one_strength": lambda: LsqPredictor(past_steps=10, horizon_steps=10, alphas=[1e-3]),
+           "lsq_selection": lambda: LsqPredictor(past_steps=10, horizon_steps=10),
+           "hankel_one_strength": lambda: HankelPredictor(past_steps=10, horizon_steps=10, lambdas_g=[1e-3])}[make]()
+    n = sum(e - a - 19 for a, e in b.trials)
+    with pytest.raises(SessionError, match=rf"Output blanking removed {n} of the {n} windows of 20 samples.*"
+                                           r"--blank-outputs-ms.*template.*--method arx"):
+        est.fit(b)
