@@ -117,17 +117,18 @@ def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
 
 
 def _time_blocks(segs, n_splits: int, L: int) -> list:
-    """``(a, b, fold)``: one trial's valid pieces, in time order, cut into ``n_splits`` contiguous blocks of (nearly)
-    equal column counts. A piece inside one block stays whole (blanking cuts a trial into many short pieces: cutting
-    each of them into ``n_splits`` would leave none ``L`` long); a piece that crosses a block edge is cut there in
-    samples, so no sample of it serves two folds (parts shorter than ``L`` are dropped, as before)."""
-    counts = [b - a - L + 1 for a, b in segs]
-    edges = np.linspace(0, sum(counts), n_splits + 1).round().astype(np.int64)
+    """``(a, b, fold)``: one trial's valid pieces, laid end to end in time order, cut into ``n_splits`` contiguous
+    blocks of (nearly) equal numbers of samples. A piece inside one block stays whole (blanking cuts a trial into
+    many short pieces: cutting each of them into ``n_splits`` would leave none ``L`` long); a piece that crosses a
+    block edge is cut there, so no sample of it serves two folds, and parts shorter than ``L`` are dropped. One
+    piece is cut exactly as before (``linspace(a, b)`` rounded)."""
+    a0 = int(segs[0][0])
+    edges = np.linspace(a0, a0 + sum(b - a for a, b in segs), n_splits + 1).round().astype(np.int64) - a0
     pieces, first = [], 0
-    for (a, b), n in zip(segs, counts):
+    for a, b in segs:
+        n = b - a
         for f in range(n_splits):
-            lo = a if edges[f] <= first else a + int(edges[f]) - first  # edge inside the piece: cut at its column
-            hi = b if edges[f + 1] >= first + n else a + int(edges[f + 1]) - first
+            lo, hi = a + max(0, int(edges[f]) - first), a + min(n, int(edges[f + 1]) - first)
             if hi - lo >= L:
                 pieces.append((int(lo), int(hi), f))
         first += n

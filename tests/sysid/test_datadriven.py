@@ -348,9 +348,9 @@ def test_fit_rejects_something_that_is_not_a_session():
 def test_selection_without_held_out_data_is_refused(rng):
     sys = _system(rng, n=2, m=1, p=1)
     s = _session(rng, sys, n_trials=1, length=14, noise=0.1)
-    # one trial of 14 samples (8 windows of 2 + 5 = 7 samples, enough for one input) cut in three blocks at its
-    # columns 3 and 5: samples [0, 3) and [3, 5) hold no window, so only one fold is left
-    with pytest.raises(SessionError, match=r"fit in 1 fold\(s\), fewer than two"):
+    # one trial of 14 samples (8 windows of 2 + 5 = 7 samples, enough for one input) cut in three blocks of
+    # at most 5 samples: no block holds a window
+    with pytest.raises(SessionError, match=r"fit in 0 fold\(s\), fewer than two"):
         LsqPredictor(past_steps=2, horizon_steps=5, alphas=[1e-3, 1e-1], n_states=0, n_splits=3).fit(s)
 
 

@@ -160,7 +160,7 @@ def test_trial_resamples_keep_the_blanked_outputs_of_each_drawn_trial():
 def test_one_blanked_trial_is_folded_by_time_over_its_short_pieces():
     # Before: the direct route cut each valid piece of a single trial into n_splits blocks; blanking every 7.7
     # samples leaves pieces of a few columns, so every block was shorter than one column and the fit raised
-    # "... fit in 0 fold(s)". Now the trial's columns, in time order, are cut into n_splits contiguous blocks.
+    # "... fit in 0 fold(s)". Now the trial's pieces, end to end in time order, are cut into n_splits blocks.
     from stimsteer.sysid.datadriven import LsqPredictor
     from stimsteer.sysid.datadriven.base import _fold_of_segments
 
@@ -176,7 +176,7 @@ def test_one_blanked_trial_is_folded_by_time_over_its_short_pieces():
     folds = [f for a, e, f in sorted(pieces)]
     assert folds == sorted(folds)  # contiguous in time: fold 0, then 1, then 2
     sizes = [len(cols([p for p in pieces if p[2] == f])) for f in range(3)]
-    assert max(sizes) - min(sizes) <= L
+    assert max(sizes) - min(sizes) <= 0.02 * sum(sizes)  # blocks of nearly equal length
     m = LsqPredictor(past_steps=past, horizon_steps=L - past).fit(b)
     assert m.cv_scheme_ == "contiguous blocks (one trial)" and m.n_columns_ == len(cols(pieces))
 
