@@ -93,21 +93,26 @@ def _session_kind(path) -> str | None:
 
 def recording_from_session(session: Session, *, source: str = "session") -> Recording:
     """A session file seen as a recording (so a description can re-select channels, remove artifacts, add
-    biomarkers): every input and output is a channel on the session's grid, masked runs are bad intervals, and the
-    trials are kept (used when the description has no ``[trials]``)."""
+    biomarkers): every input and output is a channel on the session's grid (a read-only view of its column, not a
+    copy), masked runs are bad intervals, blanked outputs stay blanked, and the trials are kept (used when the
+    description has no ``[trials]``)."""
     from .io._recording import Channel
 
     rate, t0 = session.sample_rate_hz, float(session.metadata.get("start_time_s", 0.0))
-    chans = [Channel(n, np.array(session.u[:, j]), unit, rate, t0, "input")
+    chans = [Channel(n, session.u[:, j], unit, rate, t0, "input")
              for j, (n, unit) in enumerate(zip(session.input_names, session.input_units))]
-    chans += [Channel(n, np.array(session.y[:, j]), unit, rate, t0, "output")
+    chans += [Channel(n, session.y[:, j], unit, rate, t0, "output")
               for j, (n, unit) in enumerate(zip(session.output_names, session.output_units))]
-    flags = np.concatenate(([0], (~session.mask).astype(np.int8), [0]))
-    edges = np.flatnonzero(np.diff(flags))
-    bad = [(t0 + a / rate, t0 + b / rate) for a, b in zip(edges[::2], edges[1::2])]
     meta = {"format": "stimsteer-session", "source": source, "session_trials": session.trials.tolist(),
             "session_metadata": dict(session.metadata)}
-    return Recording(channels=tuple(chans), bad_intervals=bad, metadata=meta)
+    return Recording(channels=tuple(chans), bad_intervals=_runs_s(~session.mask, t0, rate), metadata=meta,
+                     blanked_outputs=_runs_s(~session.output_mask, t0, rate))
+
+
+def _runs_s(flags: np.ndarray, t0: float, rate: float) -> list:
+    """The runs of True in ``flags`` as ``[start_s, stop_s)`` intervals."""
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], flags.astype(np.int8), [0]))))
+    return [(t0 + a / rate, t0 + b / rate) for a, b in zip(edges[::2], edges[1::2])]
 
 
 # ==================================================================================================== the grid
@@ -228,17 +233,18 @@ def _base_session(rec: Recording, desc: Description, source: str) -> tuple[Sessi
     del pu
     u_arr.setflags(write=False)  # handed to the session without a copy (Session keeps frozen arrays as they are)
     y_arr.setflags(write=False)
-    mask = y_cov & u_cov
-    for a, b in rec.bad_intervals:
-        lo, hi = max(0, math.ceil((a - t0) * rate - 1e-6)), min(n, math.ceil((b - t0) * rate - 1e-6))
-        mask[lo:hi] = False
+    mask, shown = y_cov & u_cov, np.ones(n, dtype=bool)
+    for flags, intervals in ((mask, rec.bad_intervals), (shown, rec.blanked_outputs)):
+        for a, b in intervals:
+            lo, hi = max(0, math.ceil((a - t0) * rate - 1e-6)), min(n, math.ceil((b - t0) * rate - 1e-6))
+            flags[lo:hi] = False
     meta = {"source": {**rec.metadata, "path": source}, "description": desc.as_dict(),
             "clock_alignment": u_align + y_align, "start_time_s": t0, "n_bad_intervals": len(rec.bad_intervals)}
     if mapping is not None:
         meta["pulse_mapping"] = mapping
         if "description" in mapping:
             meta["stimulation"] = mapping
-    session = Session(u=u_arr, y=y_arr, sample_rate_hz=rate, mask=mask,
+    session = Session(u=u_arr, y=y_arr, sample_rate_hz=rate, mask=mask, output_mask=shown,
                       input_names=list(desc.channels["inputs"]) + sites, output_names=list(desc.channels["outputs"]),
                       input_units=u_units + p_units, output_units=y_units, metadata=meta)
     return session, {"grid": grid}

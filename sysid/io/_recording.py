@@ -103,6 +103,9 @@ class Recording:
         Spike times in seconds per unit name.
     pulses : list of dict
         Stimulation pulses found in the source (``time_s``, ``site``, ``amplitude``, ``unit``), if any.
+    blanked_outputs : list of (float, float)
+        ``[start_s, stop_s)`` intervals whose outputs are hidden while the inputs stay valid (the output mask of
+        one of our session files).
     metadata : dict
         What the reader knows about the source (format, file, library version).
     """
@@ -113,6 +116,7 @@ class Recording:
     spike_times: dict = field(default_factory=dict)
     pulses: list = field(default_factory=list)
     metadata: dict = field(default_factory=dict)
+    blanked_outputs: list = field(default_factory=list)
 
     @property
     def channel_names(self) -> list[str]:

@@ -233,3 +233,19 @@ def test_routes_that_lose_every_window_to_blanking_say_so_and_what_to_do(make):
     with pytest.raises(SessionError, match=rf"Output blanking removed {n} of the {n} windows of 20 samples.*"
                                            r"--blank-outputs-ms.*template.*--method arx"):
         est.fit(b)
+
+
+def test_a_blanked_session_file_read_through_a_description_stays_blanked(tmp_path):
+    # Before: a session file given to convert with a description became a recording whose outputs were all valid,
+    # so the blanked outputs (straight lines across each blank) came back as fitting targets. Known by
+    # construction: the rebuilt session has the file's output mask, outputs and trials.
+    from stimsteer.sysid.description import parse_description
+    from stimsteer.sysid.from_recording import build_session, read_recording
+
+    b = blank_artifacts(_pulses(n=4000, n_trials=2), window_s=0.002)
+    save_session(b, tmp_path / "b.h5")
+    desc = parse_description({"channels": {"inputs": ["u0"], "outputs": ["y0"]}})
+    s = build_session(read_recording(tmp_path / "b.h5", desc), desc)
+    assert not b.output_mask.all()
+    assert np.array_equal(s.output_mask, b.output_mask) and np.array_equal(s.y, b.y) and np.array_equal(s.u, b.u)
+    assert np.array_equal(s.trials, b.trials) and s.mask.all()
