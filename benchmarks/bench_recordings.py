@@ -4,14 +4,20 @@ Measured in one run, each case in its own child process (peak resident set, ``ru
 the size of the data it is about (float64):
 
 * **convert** of a FIF file of many channels (written by MNE itself) whose description uses a few: the
-  description's channels only are read (``read_mne_file(..., names=, types=)``), against reading every channel (the
-  behaviour before, still used when the description names no channel);
+  description's channels only are picked (``read_mne_file(..., names=, types=)``), against a recording of every
+  channel (used when the description names no channel); since the streamed reading both read only the windows of
+  the channels used, so the two now agree;
+* **convert, streamed** of long EDF recordings (written by MNE's exporter) at two lengths: the session's arrays
+  are filled window by window from the file, so the peak beyond the session and its in-memory HDF5 image should
+  not grow with the length (before this change it was about 4.2× the session: the channels read whole, then
+  copied three times);
 * **inspect** of a session file in our HDF5 layout: read lazily, window by window (``open_session_source``),
   against loading the whole session first and running the same checks on it.
 
 Run from the repository root::
 
     .venv/bin/python benchmarks/bench_recordings.py [--seconds 300] [--channels 64] [--samples 1000000]
+        [--edf-seconds 600 2400]
 """
 
 from __future__ import annotations
@@ -86,6 +92,42 @@ def convert(path: str, out: str, every_channel: bool) -> None:
     save_session(build_session(rec, desc, source=path), out, overwrite=True)
 
 
+def write_edf(path: Path, seconds: float) -> int:
+    import mne
+
+    n = int(seconds * 1000)
+    data = np.random.default_rng(0).standard_normal((6, n)) * 1e-4
+    data[0] = 0.0
+    data[0, ::250] = 1e-3
+    raw = mne.io.RawArray(data, mne.create_info(["STIM"] + [f"LFP{i}" for i in range(1, 6)], 1000.0,
+                                                ["misc"] + ["seeg"] * 5), verbose="error")
+    mne.export.export_raw(path, raw, verbose="error", overwrite=True)
+    return n
+
+
+def convert_cli(path: str, out: str) -> None:
+    import contextlib
+    import io
+
+    from stimsteer.control.cli import main
+
+    desc = Path(out).with_suffix(".toml")
+    desc.write_text('[channels]\ninputs = ["STIM"]\noutputs = ["LFP1", "LFP2", "LFP3"]\n')
+    with contextlib.redirect_stdout(io.StringIO()):
+        assert main(["convert", path, "--description", str(desc), "--out", out, "--force"]) == 0
+
+
+def streamed(tmp: Path, lengths) -> None:
+    print("convert (streamed): EDF, 6 channels at 1 kHz, the description uses 4 (session = 4 float64 columns)")
+    for seconds in lengths:
+        edf = tmp / f"long_{int(seconds)}.edf"
+        n = write_edf(edf, seconds)
+        mb = n * 4 * 8 / 1e6
+        rss, wall = peak(convert_cli, str(edf), str(tmp / "e.h5"))
+        print(f"  {seconds:6.0f} s  session {mb:6.1f} MB  peak {rss / 1e6:7.1f} MB = {rss / 1e6 / mb:4.2f}x; beyond "
+              f"session + its file image {rss / 1e6 - 2 * mb:6.1f} MB; {wall:.1f} s")
+
+
 # ------------------------------------------------------------------------------------------------ inspect
 def write_h5(path: Path, n: int, p: int) -> None:
     from stimsteer.sysid import Session, save_session
@@ -126,17 +168,22 @@ def main() -> None:
     ap.add_argument("--channels", type=int, default=64)
     ap.add_argument("--samples", type=int, default=1_000_000)
     ap.add_argument("--outputs", type=int, default=16)
+    ap.add_argument("--edf-seconds", type=float, nargs="+", default=[600.0, 2400.0])
     a = ap.parse_args()
     base = 0
-    print("peak resident set above the interpreter with stimsteer, MNE and h5py imported (VmHWM - VmRSS)")
+    import os
+
+    print("peak resident set above the interpreter with stimsteer, MNE and h5py imported (VmHWM - VmRSS); "
+          f"load average {os.getloadavg()[0]:.1f}")
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
+        streamed(tmp, a.edf_seconds)
         fif = tmp / "big_raw.fif"
         n = write_fif(fif, a.seconds, a.channels)
         all_mb, used_mb = a.channels * n * 8 / 1e6, 5 * n * 8 / 1e6
         print(f"convert: FIF of {a.channels} channels x {n} samples ({all_mb:.0f} MB as float64); the description "
               f"uses 5 channels ({used_mb:.0f} MB)")
-        for label, every in (("every channel read (before)", True), ("described channels only (after)", False)):
+        for label, every in (("every channel in the recording", True), ("described channels only", False)):
             rss, wall = peak(convert, str(fif), str(tmp / "s.h5"), every)
             print(f"  {label:34s} peak {(rss - base) / 1e6:7.0f} MB = {(rss - base) / 1e6 / used_mb:5.1f}x the "
                   f"used data; {wall:.1f} s")

@@ -286,6 +286,7 @@ def subtract_template(session: Session, *, window_s: float, threshold: float = 0
     step = {"step": "subtract_template", "window_s": float(window_s), "window_samples": width, "scale": scale,
             "threshold": float(threshold), "inputs": [session.input_names[c] for c in cols],
             "n_onsets": int(k.size), "templates": templates.transpose(1, 0, 2).tolist()}
+    y.setflags(write=False)  # a new array: the session takes it without a copy
     return session.replace(y=y, metadata=_record(session, step))
 
 
@@ -319,6 +320,7 @@ def interpolate_artifacts(session: Session, *, window_s: float, threshold: float
         done += 1
     step = {"step": "interpolate_artifacts", "window_s": float(window_s), "window_samples": width,
             "threshold": float(threshold), "inputs": [session.input_names[c] for c in cols], "n_onsets": done}
+    y.setflags(write=False)  # a new array: the session takes it without a copy
     return session.replace(y=y, metadata=_record(session, step))
 
 
@@ -379,34 +381,76 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
         raise SessionError(f"window_s must be a positive number of seconds; got {window_s}.")
     if not math.isfinite(onset_threshold):
         raise SessionError(f"onset_threshold must be finite; got {onset_threshold}.")
-    with np.errstate(invalid="ignore"):
-        above = np.abs(session.u[:, _onset_columns(session, inputs)]) > onset_threshold
-    before = np.vstack([np.zeros((1, above.shape[1]), dtype=bool), above[:-1]])
-    onsets = np.flatnonzero((above & ~before).any(axis=1))
+    onsets = _onsets(session.u, _onset_columns(session, inputs), onset_threshold)
     width = max(1, math.ceil(window_s * session.sample_rate_hz - 1e-9))
-    hits = np.zeros(session.n_samples + 1, dtype=np.int64)
-    np.add.at(hits, onsets, 1)
-    np.add.at(hits, np.minimum(onsets + width, session.n_samples), -1)
-    output_mask = session.output_mask & (np.cumsum(hits[:-1]) == 0)
+    output_mask = np.array(session.output_mask)
+    for a, b in _merged_runs(onsets, width, session.n_samples):
+        output_mask[a:b] = False
     step = {"step": "blank_artifacts", "window_s": window_s, "onset_threshold": onset_threshold,
             "window_samples": width, "n_onsets": int(onsets.size),
             "n_blanked": int((session.mask & session.output_mask & ~output_mask).sum()), "blanks": "outputs only"}
     y = _bridge_blanked(session, output_mask)
+    y.setflags(write=False)  # a new array: the session takes it without a copy
     return session.replace(y=y, output_mask=output_mask, metadata=_record(session, step))
+
+
+_CHUNK = 1 << 16  # samples per window of the blanking steps (their temporaries stay this size)
+
+
+def _onsets(u: np.ndarray, cols, threshold: float) -> np.ndarray:
+    """Samples where one of the inputs ``cols`` rises above ``threshold`` in magnitude (a first sample above it
+    counts; NaN counts as off), found in windows of :data:`_CHUNK` samples."""
+    found, prev = [], np.zeros(len(cols), dtype=bool)
+    for c0 in range(0, u.shape[0], _CHUNK):
+        with np.errstate(invalid="ignore"):
+            above = np.abs(u[c0:c0 + _CHUNK][:, cols]) > threshold
+        before = np.vstack([prev[None, :], above[:-1]])
+        found.append(np.flatnonzero((above & ~before).any(axis=1)) + c0)
+        prev = above[-1]
+    return np.concatenate(found) if found else np.zeros(0, dtype=np.int64)
+
+
+def _merged_runs(onsets: np.ndarray, width: int, n: int) -> list:
+    """The union of ``[onset, onset + width)`` (clipped to ``n``) as sorted disjoint runs."""
+    runs: list = []
+    for k in onsets.tolist():
+        if runs and k <= runs[-1][1]:
+            runs[-1][1] = max(runs[-1][1], min(n, k + width))
+        else:
+            runs.append([k, min(n, k + width)])
+    return runs
+
+
+def _good_edge(good: np.ndarray, start: int, stop: int, last: bool) -> int | None:
+    """The last (or first) index of ``good`` in ``[start, stop)``, searched in windows; None when there is none."""
+    blocks = range(stop, start, -_CHUNK) if last else range(start, stop, _CHUNK)
+    for s in blocks:
+        lo, hi = (max(start, s - _CHUNK), s) if last else (s, min(stop, s + _CHUNK))
+        nz = np.flatnonzero(good[lo:hi])
+        if nz.size:
+            return lo + int(nz[-1] if last else nz[0])
+    return None
 
 
 def _bridge_blanked(session: Session, output_mask: np.ndarray) -> np.ndarray:
     """Outputs with each blanked run replaced by the straight line between its valid neighbours in the same trial
-    (held at a trial's edge); samples masked as a whole are left as they are (they may be NaN)."""
+    (held at a trial's edge); samples masked as a whole are left as they are (they may be NaN).
+
+    Done in windows of :data:`_CHUNK` samples, each widened to the nearest valid output on either side within the
+    trial: the same line as across the whole trial at once, with temporaries of a window's size."""
     y = np.array(session.y)
+    good_all, fill_all = session.mask & output_mask, session.mask & ~output_mask
     for a, b in session.trials:
-        idx = np.arange(a, b)
-        good = session.mask[a:b] & output_mask[a:b]
-        fill = session.mask[a:b] & ~output_mask[a:b]
-        if not fill.any() or not good.any():
-            continue
-        for j in range(y.shape[1]):
-            y[idx[fill], j] = np.interp(idx[fill], idx[good], y[idx[good], j])
+        for c0 in range(a, b, _CHUNK):
+            c1 = min(b, c0 + _CHUNK)
+            f = np.flatnonzero(fill_all[c0:c1]) + c0
+            if f.size == 0:
+                continue
+            left, right = _good_edge(good_all, a, c0, True), _good_edge(good_all, c1, b, False)
+            lo, hi = (c0 if left is None else left), (c1 if right is None else right + 1)
+            g = np.flatnonzero(good_all[lo:hi]) + lo
+            if g.size == 0:
+                continue
+            for j in range(y.shape[1]):
+                y[f, j] = np.interp(f, g, y[g, j])
     return y
-
-

@@ -90,6 +90,32 @@ def _apply(sos, x: np.ndarray, phase: str) -> np.ndarray:
     return signal.sosfilt(sos, x, axis=0) if phase == "causal" else signal.sosfiltfilt(sos, x, axis=0)
 
 
+_CHUNK = 1 << 16  # samples per window of a causal pass (its filter state is carried from window to window)
+
+
+def _filter_into(stages, x: np.ndarray, out: np.ndarray, phase: str, cols=None) -> None:
+    """``out[:] = stage_k(... stage_1(x[:, cols]))`` for one segment, from rest (``cols`` None: every column). ``stages`` are ``(sos, then)`` pairs:
+    filter by ``sos``, then apply ``then`` (a function, or None). Causal passes run in windows of :data:`_CHUNK`
+    samples carrying each filter's state (the same numbers as one pass over the segment); zero-phase passes need
+    the whole segment, so they run one channel at a time."""
+    if phase == "causal":
+        cols = list(range(x.shape[1])) if cols is None else list(cols)
+        zi = [np.zeros((sos.shape[0], 2, len(cols))) for sos, _ in stages]
+        for c0 in range(0, x.shape[0], _CHUNK):
+            w = np.asarray(x[c0:c0 + _CHUNK][:, cols], dtype=np.float64)
+            for k, (sos, then) in enumerate(stages):
+                w, zi[k] = signal.sosfilt(sos, w, axis=0, zi=zi[k])
+                w = then(w) if then is not None else w
+            out[c0:c0 + _CHUNK] = w
+        return
+    for i, j in enumerate(range(x.shape[1]) if cols is None else cols):
+        w = np.asarray(x[:, j], dtype=np.float64)
+        for sos, then in stages:
+            w = signal.sosfiltfilt(sos, w)
+            w = then(w) if then is not None else w
+        out[:, i] = w
+
+
 def band_power_envelope(x, *, sample_rate_hz: float, band_hz, phase: str, order: int = 4,
                         smoothing_hz: float | None = None) -> np.ndarray:
     """Band-power envelope of each column (see the module docstring).
@@ -158,7 +184,8 @@ def remove_line_noise(session: Session, *, line_hz: float, phase: str, harmonics
     for a, b in session.segments():
         if phase == "zero-phase" and b - a <= 3 * (2 * sos.shape[0] + 1):
             continue  # too short to pad for a forward-backward pass; left as recorded (recorded below)
-        y[a:b] = _apply(sos, y[a:b], phase)
+        _filter_into([(sos, None)], y[a:b], y[a:b], phase)
+    y.setflags(write=False)  # a new array: the session takes it without a copy
     step = {"step": "remove_line_noise", "line_hz": float(line_hz), "frequencies_hz": freqs,
             "quality": float(quality), "phase": phase, "phase_means": PHASES[phase]}
     meta = {**session.metadata, "prep": list(session.metadata.get("prep", [])) + [step]}
@@ -198,18 +225,22 @@ def add_band_power_outputs(session: Session, *, channels, band_hz, phase: str, n
     lo, hi = recipe["band_hz"]
     names = list(names) if names is not None else [f"{c}_power_{lo:g}-{hi:g}Hz" for c in chans]
     cols = [session.output_names.index(c) for c in chans]
-    env = np.zeros((session.n_samples, len(cols)))
+    keep = [j for j in range(session.n_outputs) if keep_source or j not in cols]
+    y = np.zeros((session.n_samples, len(keep) + len(cols)))  # the new outputs, filled in place
+    for i, j in enumerate(keep):
+        y[:, i] = session.y[:, j]
+    env = y[:, len(keep):]
     for a, b in session.segments():
         if phase == "zero-phase" and b - a <= 3 * (2 * band_sos.shape[0] + 1):
             continue
-        env[a:b] = _apply(smooth_sos, _apply(band_sos, session.y[a:b][:, cols], phase) ** 2, phase)
+        _filter_into([(band_sos, np.square), (smooth_sos, None)], session.y[a:b], env[a:b], phase, cols)
+    y.setflags(write=False)
     derived = dict(session.metadata.get("derived_outputs", {}))
     for c, j, n in zip(chans, cols, names):
         derived[n] = {**recipe, "source": c, "phase": phase, "phase_means": PHASES[phase],
                       "unit": f"{session.output_units[j]}^2"}
-    keep = [j for j in range(session.n_outputs) if keep_source or j not in cols]
     return session.replace(
-        y=np.column_stack([session.y[:, keep], env]),
+        y=y,
         output_names=tuple(session.output_names[j] for j in keep) + tuple(names),
         output_units=tuple(session.output_units[j] for j in keep) + tuple(derived[n]["unit"] for n in names),
         metadata={**session.metadata, "derived_outputs": derived})

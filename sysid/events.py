@@ -345,15 +345,31 @@ class ClockAlignment:
                 "n_samples_outside_source": self.n_outside, "overlap_s": list(self.overlap_s)}
 
 
+#: Model samples aligned per window by :func:`align_channel` (the source is read one window, plus the filter's
+#: reach, at a time: a long recording is never loaded whole).
+ALIGN_WINDOW_SAMPLES = 1 << 16
+
+
 def align_channel(data, *, source_rate_hz: float, source_start_s: float, target_rate_hz: float,
                   target_start_s: float, n_target: int, offset_s: float = 0.0, anti_aliasing: str = "fir",
-                  name: str = "channel") -> tuple[np.ndarray, np.ndarray, ClockAlignment]:
+                  name: str = "channel", out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, ClockAlignment]:
     """A series from its own clock and rate onto the model grid (see the module docstring).
+
+    ``data`` is an array or a lazily read channel (anything with ``shape`` and ``read(start, stop)``, such as
+    :class:`~stimsteer.sysid.io._recording.LazySamples`). The grid is filled :data:`ALIGN_WINDOW_SAMPLES` samples
+    at a time from the source samples that window needs (with the anti-aliasing filter's reach on either side, the
+    source window starting on a multiple of the resampling ratio's denominator), so the result equals the
+    whole-series computation (to rounding) while the memory used beyond ``out`` stays bounded.
+
+    Parameters
+    ----------
+    out : ndarray, shape (n_target,), optional
+        Where to write the values (a column of the session being built); a new array otherwise.
 
     Returns
     -------
     values : ndarray, shape (n_target,)
-        NaN where the model grid lies outside the source's span.
+        NaN where the model grid lies outside the source's span (``out`` when given).
     covered : ndarray of bool, shape (n_target,)
     alignment : ClockAlignment
 
@@ -364,23 +380,55 @@ def align_channel(data, *, source_rate_hz: float, source_start_s: float, target_
     """
     if anti_aliasing not in ANTI_ALIASING:
         raise SessionError(f"anti_aliasing must be one of {sorted(ANTI_ALIASING)}; got {anti_aliasing!r}.")
-    x = np.asarray(data, dtype=np.float64).reshape(-1)
+    n_src = int(data.shape[0]) if hasattr(data, "read") else int(np.asarray(data).reshape(-1).size)
     fs, ft = float(source_rate_hz), float(target_rate_hz)
     s0 = float(source_start_s) + float(offset_s)  # source start on the model clock
-    s1, t1 = s0 + x.size / fs, target_start_s + n_target / ft
+    s1, t1 = s0 + n_src / fs, target_start_s + n_target / ft
     lo, hi = max(s0, target_start_s), min(s1, t1)
     if hi <= lo:
         raise SessionError(f"the clocks of '{name}' and the model grid do not overlap: '{name}' spans "
                            f"[{s0:g}, {s1:g}) s on the model clock (offset {offset_s:g} s), the grid "
                            f"[{target_start_s:g}, {t1:g}) s. Check the clock offset.")
-    tk = target_start_s + np.arange(n_target) / ft
-    covered = (tk >= s0 - 1e-9) & (tk < s1 - 1e-9)
-    values = np.full(n_target, np.nan)
-    values[covered] = _resampled(x, fs, ft, tk[covered] - s0, anti_aliasing)
+    values = np.full(n_target, np.nan) if out is None else out
+    values[:] = np.nan
+    covered = np.zeros(n_target, dtype=bool)
+    margin, step = _reach(fs, ft, anti_aliasing)
+    for g0 in range(0, n_target, ALIGN_WINDOW_SAMPLES):
+        g1 = min(n_target, g0 + ALIGN_WINDOW_SAMPLES)
+        tk = target_start_s + np.arange(g0, g1) / ft
+        cov = (tk >= s0 - 1e-9) & (tk < s1 - 1e-9)
+        covered[g0:g1] = cov
+        if not cov.any():
+            continue
+        rel = tk[cov] - s0
+        i0 = max(0, math.floor(rel[0] * fs) - margin)
+        i0 -= i0 % step
+        i1 = min(n_src, math.ceil(rel[-1] * fs) + margin + 1)
+        values[g0:g1][cov] = _resampled(_source_window(data, i0, i1), fs, ft, rel - i0 / fs, anti_aliasing)
     # at equal rates no filter runs, whatever was asked: record what was done
     align = ClockAlignment(name, fs, ft, float(offset_s), "none" if fs == ft else anti_aliasing,
                            int((~covered).sum()), (lo, hi))
     return values, covered, align
+
+
+def _source_window(data, start: int, stop: int) -> np.ndarray:
+    if hasattr(data, "read"):
+        return np.asarray(data.read(start, stop), dtype=np.float64).reshape(-1)
+    return np.asarray(np.asarray(data).reshape(-1)[start:stop], dtype=np.float64)
+
+
+def _reach(fs: float, ft: float, how: str) -> tuple[int, int]:
+    """Source samples needed beyond a window's first and last model sample, and the step the source window's start
+    must fall on (the FIR route's output samples line up with the whole series' only from a multiple of ``down``)."""
+    if how == "none" or fs == ft:
+        return 2, 1
+    if how == "mean":
+        return int(math.ceil(fs / ft)) + 2, 1
+    ratio = Fraction(ft / fs).limit_denominator(1000)
+    up, down = ratio.numerator, ratio.denominator
+    # resample_poly's filter has 10·max(up, down) taps each side at the upsampled rate; linear interpolation onto
+    # the grid needs one more output sample (down / up source samples) on either side
+    return int(math.ceil((10 * max(up, down) + 2 * down) / up)) + 2, down
 
 
 def _resampled(x, fs: float, ft: float, rel_t: np.ndarray, how: str) -> np.ndarray:

@@ -93,21 +93,26 @@ def _session_kind(path) -> str | None:
 
 def recording_from_session(session: Session, *, source: str = "session") -> Recording:
     """A session file seen as a recording (so a description can re-select channels, remove artifacts, add
-    biomarkers): every input and output is a channel on the session's grid, masked runs are bad intervals, and the
-    trials are kept (used when the description has no ``[trials]``)."""
+    biomarkers): every input and output is a channel on the session's grid (a read-only view of its column, not a
+    copy), masked runs are bad intervals, blanked outputs stay blanked, and the trials are kept (used when the
+    description has no ``[trials]``)."""
     from .io._recording import Channel
 
     rate, t0 = session.sample_rate_hz, float(session.metadata.get("start_time_s", 0.0))
-    chans = [Channel(n, np.array(session.u[:, j]), unit, rate, t0, "input")
+    chans = [Channel(n, session.u[:, j], unit, rate, t0, "input")
              for j, (n, unit) in enumerate(zip(session.input_names, session.input_units))]
-    chans += [Channel(n, np.array(session.y[:, j]), unit, rate, t0, "output")
+    chans += [Channel(n, session.y[:, j], unit, rate, t0, "output")
               for j, (n, unit) in enumerate(zip(session.output_names, session.output_units))]
-    flags = np.concatenate(([0], (~session.mask).astype(np.int8), [0]))
-    edges = np.flatnonzero(np.diff(flags))
-    bad = [(t0 + a / rate, t0 + b / rate) for a, b in zip(edges[::2], edges[1::2])]
     meta = {"format": "stimsteer-session", "source": source, "session_trials": session.trials.tolist(),
             "session_metadata": dict(session.metadata)}
-    return Recording(channels=tuple(chans), bad_intervals=bad, metadata=meta)
+    return Recording(channels=tuple(chans), bad_intervals=_runs_s(~session.mask, t0, rate), metadata=meta,
+                     blanked_outputs=_runs_s(~session.output_mask, t0, rate))
+
+
+def _runs_s(flags: np.ndarray, t0: float, rate: float) -> list:
+    """The runs of True in ``flags`` as ``[start_s, stop_s)`` intervals."""
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], flags.astype(np.int8), [0]))))
+    return [(t0 + a / rate, t0 + b / rate) for a, b in zip(edges[::2], edges[1::2])]
 
 
 # ==================================================================================================== the grid
@@ -140,22 +145,29 @@ def _unit_factor(src: str, dst: str | None, name: str) -> tuple[float, str]:
                            "the unit in the description or the file.") from None
 
 
-def _on_grid(rec: Recording, names, grid, desc: Description, side: str):
+def _on_grid(rec: Recording, names, grid, desc: Description, side: str, out: np.ndarray):
+    """The named channels onto the grid, into the columns of ``out`` (window by window: see
+    :func:`~stimsteer.sysid.events.align_channel`); samples outside a channel's span become 0 and uncovered."""
     rate, t0, n = grid
     how = desc.grid.get(f"{side}_anti_aliasing", "fir" if side == "output" else "mean")
     offsets = desc.grid.get("clock_offset_s", {})
-    cols, units, covered, aligned = [], [], np.ones(n, dtype=bool), []
-    for name in names:
+    units, covered, aligned = [], np.ones(n, dtype=bool), []
+    for j, name in enumerate(names):
         ch = rec.channel(name)
-        values, cov, align = align_channel(ch.data, source_rate_hz=ch.sample_rate_hz, source_start_s=ch.start_time_s,
-                                           target_rate_hz=rate, target_start_s=t0, n_target=n,
-                                           offset_s=float(offsets.get(name, 0.0)), anti_aliasing=how, name=name)
+        col = out[:, j]
+        _v, cov, align = align_channel(ch.data, source_rate_hz=ch.sample_rate_hz, source_start_s=ch.start_time_s,
+                                       target_rate_hz=rate, target_start_s=t0, n_target=n,
+                                       offset_s=float(offsets.get(name, 0.0)), anti_aliasing=how, name=name,
+                                       out=col)
         factor, unit = _unit_factor(ch.unit, desc.channels.get(f"{side}_unit"), name)
-        cols.append(values * factor)
+        if factor != 1.0:
+            col *= factor
+        # samples outside a channel's span are NaN after alignment; they are masked, and 0 keeps filters finite
+        col[~cov] = 0.0
         units.append(unit)
         covered &= cov
         aligned.append(align.to_dict())
-    return cols, units, covered, aligned
+    return units, covered, aligned
 
 
 def _pulses(rec: Recording, desc: Description, grid) -> tuple[list, list, list, dict | None]:
@@ -207,23 +219,32 @@ def _pulse_rows(rec: Recording, desc: Description) -> list[dict]:
 def _base_session(rec: Recording, desc: Description, source: str) -> tuple[Session, dict]:
     grid = _grid(rec, desc)
     rate, t0, n = grid
-    y, y_units, y_cov, y_align = _on_grid(rec, desc.channels["outputs"], grid, desc, "output")
-    u, u_units, u_cov, u_align = _on_grid(rec, desc.channels["inputs"], grid, desc, "input")
+    outputs, inputs = list(desc.channels["outputs"]), list(desc.channels["inputs"])
+    # the session's arrays are allocated once and filled in place: the recording is read window by window
+    y_arr = np.empty((n, len(outputs)))
+    y_units, y_cov, y_align = _on_grid(rec, outputs, grid, desc, "output", y_arr)
+    for name in inputs:
+        rec.channel(name)  # a missing input is reported before the pulse table is read, as before
     pu, sites, p_units, mapping = _pulses(rec, desc, grid)
-    mask = y_cov & u_cov
-    for a, b in rec.bad_intervals:
-        lo, hi = max(0, math.ceil((a - t0) * rate - 1e-6)), min(n, math.ceil((b - t0) * rate - 1e-6))
-        mask[lo:hi] = False
-    # samples outside a channel's span are NaN after alignment; they are masked, and 0 keeps later filters finite
-    y_arr = np.nan_to_num(np.column_stack(y), nan=0.0)
-    u_arr = np.nan_to_num(np.column_stack(u + pu), nan=0.0) if (u or pu) else np.zeros((n, 0))
+    u_arr = np.empty((n, len(inputs) + len(pu)))
+    u_units, u_cov, u_align = _on_grid(rec, inputs, grid, desc, "input", u_arr)
+    for j, col in enumerate(pu):
+        u_arr[:, len(inputs) + j] = col
+    del pu
+    u_arr.setflags(write=False)  # handed to the session without a copy (Session keeps frozen arrays as they are)
+    y_arr.setflags(write=False)
+    mask, shown = y_cov & u_cov, np.ones(n, dtype=bool)
+    for flags, intervals in ((mask, rec.bad_intervals), (shown, rec.blanked_outputs)):
+        for a, b in intervals:
+            lo, hi = max(0, math.ceil((a - t0) * rate - 1e-6)), min(n, math.ceil((b - t0) * rate - 1e-6))
+            flags[lo:hi] = False
     meta = {"source": {**rec.metadata, "path": source}, "description": desc.as_dict(),
             "clock_alignment": u_align + y_align, "start_time_s": t0, "n_bad_intervals": len(rec.bad_intervals)}
     if mapping is not None:
         meta["pulse_mapping"] = mapping
         if "description" in mapping:
             meta["stimulation"] = mapping
-    session = Session(u=u_arr, y=y_arr, sample_rate_hz=rate, mask=mask,
+    session = Session(u=u_arr, y=y_arr, sample_rate_hz=rate, mask=mask, output_mask=shown,
                       input_names=list(desc.channels["inputs"]) + sites, output_names=list(desc.channels["outputs"]),
                       input_units=u_units + p_units, output_units=y_units, metadata=meta)
     return session, {"grid": grid}

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["output_valid", "output_valid_segments"]
+__all__ = ["output_valid", "output_valid_segments", "blanking_note"]
 
 
 def output_valid(source, start: int, stop: int) -> np.ndarray:
@@ -62,3 +62,23 @@ def output_valid_segments(source, segments, width: int, first_target: int) -> li
         edges = np.flatnonzero(np.diff(np.concatenate(([0], ok.astype(np.int8), [0]))))
         out.extend((a + int(s), a + int(e) - 1 + width) for s, e in zip(edges[::2], edges[1::2]))
     return out
+
+
+def blanking_note(source, segments, width: int, first_target: int) -> str:
+    """The sentence an error about too few windows adds when output blanking removed windows ('' otherwise).
+
+    It counts the windows of ``width`` samples in ``segments`` and those :func:`output_valid_segments` keeps, and
+    says what to do: blanking removes every window with a blanked output among its predicted samples (its last
+    ``width - first_target``), so pulses closer together than that leave none.
+    """
+    width, first_target = int(width), int(first_target)
+    if getattr(source, "output_mask", None) is None or bool(np.all(source.output_mask)):
+        return ""
+    total = sum(max(0, int(b) - int(a) - width + 1) for a, b in segments)
+    kept = sum(int(b) - int(a) - width + 1 for a, b in output_valid_segments(source, segments, width, first_target))
+    return (f" Output blanking removed {total - kept} of the {total} windows of {width} samples (a window is dropped "
+            f"when one of its {width - first_target} predicted outputs is blanked, so blanks closer together than "
+            "that leave none). Blank a shorter time (--blank-outputs-ms), remove the artifact instead "
+            "([artifacts] method = \"template\" or \"interpolate\"), predict fewer samples per window (a shorter "
+            "future or horizon), or use the ARX route (--method arx), which drops only the rows whose own output is "
+            "blanked.")

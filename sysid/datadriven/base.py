@@ -16,7 +16,7 @@ from .._base import BasePredictor, check_fitted
 from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
-from ..output_mask import output_valid_segments
+from ..output_mask import blanking_note, output_valid_segments
 from .._progress import progress
 from .gram import GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, total_fold
 
@@ -110,12 +110,39 @@ def _fold_of_segments(session, segs, n_splits: int, seed: int, L: int):
         perm = np.random.default_rng(seed).permutation(len(used))
         fold_of_trial = {used[j]: int(i % k) for i, j in enumerate(perm)}
         return [(a, b, fold_of_trial[t]) for (a, b), t in zip(segs, trial_of)], k, "trials"
-    pieces = []
-    for a, b in segs:
-        edges = np.linspace(a, b, n_splits + 1).round().astype(np.int64)
-        pieces += [(int(lo), int(hi), f) for f, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])) if hi - lo >= L]
-    k = len({f for *_, f in pieces})
+    pieces = _time_blocks(segs, n_splits, L)
+    present = {f: i for i, f in enumerate(sorted({f for *_, f in pieces}))}  # fold ids 0 .. k-1, none empty
+    pieces, k = [(a, b, present[f]) for a, b, f in pieces], len(present)
     return pieces, k, "contiguous blocks (one trial)"
+
+
+def _time_blocks(segs, n_splits: int, L: int) -> list:
+    """``(a, b, fold)``: one trial's valid pieces, laid end to end in time order, cut into ``n_splits`` contiguous
+    blocks of (nearly) equal numbers of samples. A piece inside one block stays whole (blanking cuts a trial into
+    many short pieces: cutting each of them into ``n_splits`` would leave none ``L`` long); a piece that crosses a
+    block edge is cut there, so no sample of it serves two folds, and parts shorter than ``L`` are dropped. One
+    piece is cut exactly as before (``linspace(a, b)`` rounded)."""
+    a0 = int(segs[0][0])
+    edges = np.linspace(a0, a0 + sum(b - a for a, b in segs), n_splits + 1).round().astype(np.int64) - a0
+    pieces, first = [], 0
+    for a, b in segs:
+        n = b - a
+        for f in range(n_splits):
+            lo, hi = a + max(0, int(edges[f]) - first), a + min(n, int(edges[f + 1]) - first)
+            if hi - lo >= L:
+                pieces.append((int(lo), int(hi), f))
+        first += n
+    return pieces
+
+
+def _check_columns(session, past: int, horizon: int) -> None:
+    """Refuse a session none of whose windows may be fitted (every one predicts a blanked output): the fit would
+    otherwise be made on no data at all."""
+    L = past + horizon
+    segs = session.segments(L)
+    if segs and not output_valid_segments(session, segs, L, past):
+        raise SessionError(f"no window of past_steps + horizon_steps = {L} samples can be fitted: each predicts a "
+                           "blanked output." + blanking_note(session, segs, L, past))
 
 
 def _pieces(session, L, n_folds_wanted, seed, past):
@@ -253,6 +280,7 @@ class _DirectPredictor(BasePredictor):
         # Per-channel scaling to unit root mean square makes every strength, the slack weight and the fit itself
         # independent of the channels' units (issue 13: µV and mV gave predictions 25 % apart at a fixed alpha).
         self.channel_scale_ = _channel_rms(session)
+        _check_columns(session, past, horizon)
         folds, scheme, std, trial_fold, (route, cond) = _collect(
             _ScaledChannels(session, self.channel_scale_), past, horizon, self.n_splits if n_candidates > 1 else 1,
             self.seed, keep_full, getattr(self, "_route", "auto"))
@@ -261,7 +289,8 @@ class _DirectPredictor(BasePredictor):
             raise SessionError(
                 f"choosing among {n_candidates} strengths needs held-out data, but the session's windows of "
                 f"{past + horizon} samples fit in {len(folds)} fold(s), fewer than two. Record more or longer "
-                "trials, or give a single strength."
+                "trials, or give a single strength." + blanking_note(session, session.segments(past + horizon),
+                                                                     past + horizon, past)
             )
         m, p = int(session.n_inputs), int(session.n_outputs)
         self.past_steps_, self.max_horizon_steps_ = past, horizon

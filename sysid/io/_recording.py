@@ -15,7 +15,42 @@ import numpy as np
 
 from ..exceptions import SessionError
 
-__all__ = ["Channel", "Recording"]
+__all__ = ["Channel", "Recording", "LazySamples"]
+
+
+class LazySamples:
+    """One channel's samples, read from the source window by window (``convert`` never loads a long channel whole).
+
+    ``read(start, stop)`` returns samples ``[start, stop)`` as float64 in the channel's unit; ``shape`` is
+    ``(n_samples,)``. ``numpy.asarray`` (and arithmetic with arrays) reads the whole channel, for the few places
+    that need it whole (a trigger channel's crossings).
+    """
+
+    dtype = np.dtype(np.float64)
+    ndim = 1
+
+    def __init__(self, n_samples: int, read):
+        self.shape = (int(n_samples),)
+        self._read = read
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        start, stop = max(0, int(start)), min(self.shape[0], int(stop))
+        if stop <= start:
+            return np.zeros(0)
+        return np.asarray(self._read(start, stop), dtype=np.float64).reshape(-1)
+
+    def __array__(self, dtype=None, copy=None):
+        whole = self.read(0, self.shape[0])
+        return whole if dtype is None else whole.astype(dtype)
+
+    def __getitem__(self, key):
+        if isinstance(key, slice) and key.step in (None, 1):
+            start, stop, _ = key.indices(self.shape[0])
+            return self.read(start, stop)
+        return np.asarray(self)[key]
 
 
 @dataclass(frozen=True)
@@ -25,8 +60,9 @@ class Channel:
     Attributes
     ----------
     name : str
-    data : ndarray, shape (n_samples,)
-        Values in ``unit`` (conversions of the file already applied), float64.
+    data : ndarray or LazySamples, shape (n_samples,)
+        Values in ``unit`` (conversions of the file already applied), float64; a reader of a file may hand over a
+        :class:`LazySamples` that reads windows on demand.
     unit : str
     sample_rate_hz : float
     start_time_s : float
@@ -67,6 +103,9 @@ class Recording:
         Spike times in seconds per unit name.
     pulses : list of dict
         Stimulation pulses found in the source (``time_s``, ``site``, ``amplitude``, ``unit``), if any.
+    blanked_outputs : list of (float, float)
+        ``[start_s, stop_s)`` intervals whose outputs are hidden while the inputs stay valid (the output mask of
+        one of our session files).
     metadata : dict
         What the reader knows about the source (format, file, library version).
     """
@@ -77,6 +116,7 @@ class Recording:
     spike_times: dict = field(default_factory=dict)
     pulses: list = field(default_factory=list)
     metadata: dict = field(default_factory=dict)
+    blanked_outputs: list = field(default_factory=list)
 
     @property
     def channel_names(self) -> list[str]:

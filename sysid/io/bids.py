@@ -76,7 +76,7 @@ def read_bids(root, *, subject: str, task: str, session: str | None = None, run=
         raw = mne_bids.read_raw_bids(matches[0], verbose="error")
     except Exception as exc:  # mne-bids raises many unrelated classes for datasets it cannot read
         raise FileFormatError(f"{matches[0].fpath} cannot be read by mne-bids ({type(exc).__name__}: {exc}).") from None
-    rec = recording_from_mne(raw, source=str(matches[0].fpath))
+    rec = recording_from_mne(raw, source=str(matches[0].fpath), lazy=True)  # windows read when the session is built
     pulses = _stimulation_pulses(matches[0].copy().update(suffix="events", extension=".tsv").fpath)
     meta = {**rec.metadata, "format": "bids", "bids_root": str(root), "file": matches[0].basename,
             "entities": {k: v for k, v in zip(_ENTITIES, (subject, session, task, run, acquisition)) if v}}

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..exceptions import FileFormatError, SessionError
-from ._recording import Channel, Recording
+from ._recording import Channel, LazySamples, Recording
 
 __all__ = ["recording_from_mne", "read_mne_file", "MNE_KINDS"]
 
@@ -53,7 +53,7 @@ def _channel_unit(ch: dict, names: dict) -> str:
     return unit if mul == 0 else f"1e{mul} {unit}"
 
 
-def recording_from_mne(raw, *, picks=None, source: str = "mne.io.Raw") -> Recording:
+def recording_from_mne(raw, *, picks=None, source: str = "mne.io.Raw", lazy: bool = False) -> Recording:
     """A :class:`Recording` from an MNE ``Raw`` object.
 
     Parameters
@@ -63,6 +63,10 @@ def recording_from_mne(raw, *, picks=None, source: str = "mne.io.Raw") -> Record
         Channel names or MNE channel types to keep (``mne``'s ``picks``); default all channels.
     source : str
         What the recording came from (kept in its metadata).
+    lazy : bool, default False
+        Hand the channels over as :class:`~stimsteer.sysid.io._recording.LazySamples` that read windows from
+        ``raw`` on demand (``raw.get_data(picks, start, stop)``), instead of reading them whole now (a file opened
+        without preloading is then never loaded whole).
 
     Returns
     -------
@@ -86,15 +90,24 @@ def recording_from_mne(raw, *, picks=None, source: str = "mne.io.Raw") -> Record
         raw = raw.copy().pick(wanted)
     names = _unit_names(mne)
     rate = float(raw.info["sfreq"])
-    data = raw.get_data()  # SI units, as MNE hands them over
     kinds = raw.get_channel_types()
-    chans = tuple(Channel(name=n, data=np.asarray(data[i], dtype=np.float64), unit=_channel_unit(ch, names),
-                          sample_rate_hz=rate, start_time_s=0.0, kind=kinds[i])
+    if lazy:
+        data = [LazySamples(raw.n_times, _window_of(raw, i)) for i in range(len(raw.ch_names))]
+    else:
+        data = list(raw.get_data())  # SI units, as MNE hands them over
+    chans = tuple(Channel(name=n, data=data[i] if lazy else np.asarray(data[i], dtype=np.float64),
+                          unit=_channel_unit(ch, names), sample_rate_hz=rate, start_time_s=0.0, kind=kinds[i])
                   for i, (n, ch) in enumerate(zip(raw.ch_names, raw.info["chs"])))
     events, bad = _annotations(raw)
     meta = {"format": "mne", "source": source, "mne_version": mne.__version__,
             "first_sample": int(raw.first_samp)}
     return Recording(channels=chans, events=events, bad_intervals=bad, metadata=meta)
+
+
+def _window_of(raw, i: int):
+    def read(start: int, stop: int) -> np.ndarray:
+        return raw.get_data(picks=[i], start=start, stop=stop)[0]  # SI units, as MNE hands them over
+    return read
 
 
 def _annotations(raw) -> tuple[list, list]:
@@ -125,6 +138,12 @@ def read_mne_file(path, kind: str, *, names=None, types=None) -> Recording:
         many channels is then never loaded whole. When a named channel is not in the file, every channel is read,
         so that the error raised later lists them all.
 
+    Returns
+    -------
+    Recording
+        Its channels are :class:`~stimsteer.sysid.io._recording.LazySamples`: windows are read from the file when
+        a session is built (:func:`~stimsteer.sysid.events.align_channel`), never the whole channel at once.
+
     Raises
     ------
     FileFormatError
@@ -140,7 +159,7 @@ def read_mne_file(path, kind: str, *, names=None, types=None) -> Recording:
         raw = readers[kind](str(path), preload=False, verbose="error")
     except Exception as exc:  # MNE raises many unrelated classes for files it cannot parse
         raise FileFormatError(f"{path} cannot be read as {kind} by MNE ({type(exc).__name__}: {exc}).") from None
-    rec = recording_from_mne(raw, picks=_picks(raw, names, types), source=str(path))
+    rec = recording_from_mne(raw, picks=_picks(raw, names, types), source=str(path), lazy=True)
     return Recording(rec.channels, rec.events, rec.bad_intervals, rec.spike_times, rec.pulses,
                      {**rec.metadata, "format": f"mne-{kind}", "file": path.name})
 

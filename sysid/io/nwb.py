@@ -197,13 +197,16 @@ def _electrode_labels(ts) -> tuple[list | None, list | None]:
 def _series_channels(ts, kind: str, path: Path) -> tuple[list, dict]:
     from ._recording import Channel
 
-    data = _converted(ts)
-    rate, t0 = _nwb_timing(ts, data.shape[0], path)
+    columns = _lazy_columns(ts, path)
+    if columns is None:  # data held in memory (not an HDF5 dataset of the file): converted whole
+        data = _converted(ts)
+        columns = [data[:, j].copy() for j in range(data.shape[1])]
+    rate, t0 = _nwb_timing(ts, columns[0].shape[0], path)
     labels, locations = _electrode_labels(ts)
-    if labels is None or len(labels) != data.shape[1]:
-        labels = [ts.name] if data.shape[1] == 1 else [f"{ts.name}_{j}" for j in range(data.shape[1])]
+    if labels is None or len(labels) != len(columns):
+        labels = [ts.name] if len(columns) == 1 else [f"{ts.name}_{j}" for j in range(len(columns))]
     unit = {"volts": "V", "amperes": "A"}.get(str(ts.unit), str(ts.unit))
-    chans = [Channel(name=n, data=data[:, j].copy(), unit=unit, sample_rate_hz=rate, start_time_s=t0, kind=kind)
+    chans = [Channel(name=n, data=columns[j], unit=unit, sample_rate_hz=rate, start_time_s=t0, kind=kind)
              for j, n in enumerate(labels)]
     info = {"series": ts.name, "kind": kind, "channels": labels, "conversion": float(ts.conversion),
             "offset": float(getattr(ts, "offset", 0.0) or 0.0),
@@ -212,6 +215,33 @@ def _series_channels(ts, kind: str, path: Path) -> tuple[list, dict]:
     if locations is not None:
         info["locations"] = locations
     return chans, info
+
+
+def _lazy_columns(ts, path: Path) -> list | None:
+    """The series' channels as :class:`~stimsteer.sysid.io._recording.LazySamples` reading windows of its HDF5
+    dataset (the file reopened per window, after pynwb has closed it), converted as :func:`_converted` does; None
+    when the data are not a dataset of ``path``."""
+    import h5py
+
+    from ._recording import LazySamples
+
+    ds = ts.data
+    if not isinstance(ds, h5py.Dataset) or ds.ndim not in (1, 2) or ds.shape[0] == 0:
+        return None
+    where, n, width = ds.name, int(ds.shape[0]), 1 if ds.ndim == 1 else int(ds.shape[1])
+    conversion, offset = float(ts.conversion), float(getattr(ts, "offset", 0.0) or 0.0)
+    per = getattr(ts, "channel_conversion", None)
+    per = np.asarray(per[()], dtype=np.float64).reshape(-1) if per is not None else None
+
+    def column(j: int):
+        def read(start: int, stop: int) -> np.ndarray:
+            with h5py.File(path, "r") as f:
+                x = np.asarray(f[where][start:stop], dtype=np.float64).reshape(stop - start, -1)[:, j]
+            x = x * conversion  # the order of _converted, so the values agree to the last bit
+            return (x * per[j] if per is not None else x) + offset
+        return read
+
+    return [LazySamples(n, column(j)) for j in range(width)]
 
 
 def _all_series(nwb):

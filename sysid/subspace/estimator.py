@@ -17,6 +17,7 @@ from ..protocols import PredictionMaps
 from .._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from ..statespace import StateSpaceModel
 from .gram import _Layout, _hankel_gram, _partition
+from ..output_mask import blanking_note
 from .heldout import _heldout_error
 from .projection import _Projection, _RTOL, _cond_text, _fit_order
 from .selection import choose_stable, order_tables
@@ -277,7 +278,7 @@ class SubspaceId(BasePredictor):
                 raise SessionError(
                     f"{label} gives {n_cols} Hankel columns for {L.nz} rows ((m + p)(past_steps + future_steps)); "
                     "at least as many columns as rows are needed (many more for noisy data). Record longer trials "
-                    "or use shorter past/future windows."
+                    "or use shorter past/future windows." + blanking_note(session, segs, L.width, L.i)
                 )
         if n_check == 0:
             raise SessionError(

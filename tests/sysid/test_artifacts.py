@@ -129,3 +129,36 @@ def test_detection_reads_a_lazy_file_in_chunks_with_the_same_numbers():
         small, n_small = _locked_sums(f, [0, 1, 2], 0.0, whole.pre_samples, whole.window_samples, chunk_rows=97)
     assert np.array_equal(lazy.ratio, whole.ratio) and lazy.n_onsets == whole.n_onsets
     assert n_small == whole.n_onsets and np.allclose(small / n_small, whole.locked_power, rtol=1e-12)
+
+
+def test_blanking_in_windows_equals_the_straight_line_over_each_whole_trial(monkeypatch):
+    # Reference: the definition, applied over each whole trial at once (numpy.interp through the trial's valid,
+    # unblanked outputs at its blanked ones; masked samples untouched). Blanking now runs in windows of _CHUNK
+    # samples (bounded temporaries for convert); with 37-sample windows it must give the same outputs and mask.
+    import stimsteer.sysid.artifacts as art
+
+    rng = np.random.default_rng(3)
+    n = 2000
+    u = np.zeros((n, 2))
+    u[rng.choice(n, 60, replace=False), 0] = 1.0
+    u[rng.choice(n, 30, replace=False), 1] = -2.0
+    u[500:700, 0] = 1.0  # a long train: one onset, a window longer than a chunk when wide
+    y = rng.standard_normal((n, 3))
+    mask = np.ones(n, dtype=bool)
+    mask[900:960] = False
+    y[900:960] = np.nan
+    s = Session(u=u, y=y, sample_rate_hz=1000.0, mask=mask, trials=[(0, 800), (800, 1500), (1500, n)])
+    whole = art.blank_artifacts(s, window_s=0.045)
+    monkeypatch.setattr(art, "_CHUNK", 37)
+    windowed = art.blank_artifacts(s, window_s=0.045)
+    ref = np.array(y)
+    for a, b in s.trials:
+        idx = np.arange(a, b)
+        good, fill = mask[a:b] & whole.output_mask[a:b], mask[a:b] & ~whole.output_mask[a:b]
+        for j in range(3):
+            ref[idx[fill], j] = np.interp(idx[fill], idx[good], y[idx[good], j])
+    assert np.array_equal(windowed.output_mask, whole.output_mask)
+    assert not whole.output_mask.all() and whole.output_mask[:500].sum() < 500
+    assert np.allclose(windowed.y, ref, equal_nan=True, rtol=0, atol=1e-12)
+    assert np.allclose(whole.y, ref, equal_nan=True, rtol=0, atol=1e-12)
+    assert windowed.metadata["prep"][-1]["n_onsets"] == whole.metadata["prep"][-1]["n_onsets"]

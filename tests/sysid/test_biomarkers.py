@@ -73,3 +73,31 @@ def test_line_noise_is_removed_and_the_signal_kept(phase):
     step = out.metadata["prep"][-1]
     assert step["frequencies_hz"] == [50.0, 100.0, 150.0] and step["phase"] == phase
     assert np.array_equal(out.u, s.u)
+
+
+@pytest.mark.parametrize("phase", ["causal", "zero-phase"])
+def test_filters_in_windows_equal_one_pass_over_each_segment(monkeypatch, phase):
+    # Reference: scipy.signal.sosfilt / sosfiltfilt over each whole valid segment at once (the module docstring's
+    # definitions). The causal passes now run in windows carrying the filter state, the zero-phase ones a channel
+    # at a time; on 999-sample windows they must give the same envelopes and notched outputs.
+    import stimsteer.sysid.biomarkers as bio
+    from scipy import signal as sig
+
+    rng = np.random.default_rng(5)
+    n, fs = 6000, 1000.0
+    y = rng.standard_normal((n, 3))
+    mask = np.ones(n, dtype=bool)
+    mask[2500:2600] = False
+    s = Session(u=np.zeros((n, 1)), y=y, sample_rate_hz=fs, mask=mask, trials=[(0, 4000), (4000, n)],
+                output_names=["a", "b", "c"])
+    monkeypatch.setattr(bio, "_CHUNK", 999)
+    env = bio.add_band_power_outputs(s, channels=["c", "a"], band_hz=[13.0, 30.0], phase=phase)
+    notched = bio.remove_line_noise(s, line_hz=50.0, phase=phase)
+    band, smooth, _ = bio.envelope_filters(fs, [13.0, 30.0])
+    notch, _ = bio._notch_sos(fs, 50.0, 3, 30.0)
+    run = sig.sosfilt if phase == "causal" else sig.sosfiltfilt
+    for a, b in s.segments():
+        ref = run(smooth, run(band, y[a:b][:, [2, 0]], axis=0) ** 2, axis=0)
+        assert np.allclose(env.y[a:b, 3:], ref, rtol=1e-10, atol=1e-14)
+        assert np.allclose(notched.y[a:b], run(notch, y[a:b], axis=0), rtol=1e-10, atol=1e-14)
+    assert np.array_equal(env.y[:, :3], y) and env.output_names[3:] == ("c_power_13-30Hz", "a_power_13-30Hz")

@@ -114,3 +114,29 @@ def test_two_clocks_with_an_offset_partial_overlap_and_no_overlap():
     with pytest.raises(SessionError, match=r"anti_aliasing must be one of"):
         align_channel(x, source_rate_hz=100.0, source_start_s=0.0, target_rate_hz=100.0, target_start_s=0.0,
                       n_target=50, anti_aliasing="cubic")
+
+
+@pytest.mark.parametrize("fs, ft, how, offset_s", [
+    (1000.0, 1000.0, "fir", 0.0123), (30000.0, 1000.0, "fir", 0.0), (30000.0, 1000.0, "mean", 0.0),
+    (1000.0, 250.0, "fir", -0.5), (1000.0, 300.0, "fir", 0.3), (1000.0, 2000.0, "fir", 0.0),
+    (3000.0, 1000.0, "none", 0.1)])
+def test_aligning_in_windows_equals_aligning_the_whole_series(monkeypatch, fs, ft, how, offset_s):
+    # convert streams: the grid is filled window by window from the source samples each window needs. The
+    # reference is the same alignment in one window (the whole series at once); they agree to rounding, on
+    # windows of 997 model samples (prime, so no window edge lines up with the resampling ratio).
+    import stimsteer.sysid.events as ev
+    from stimsteer.sysid.io._recording import LazySamples
+
+    x = np.random.default_rng(0).standard_normal(30011)
+    kw = dict(source_rate_hz=fs, source_start_s=0.0, target_rate_hz=ft, target_start_s=0.2,
+              n_target=int(30011 * ft / fs), offset_s=offset_s, anti_aliasing=how)
+    monkeypatch.setattr(ev, "ALIGN_WINDOW_SAMPLES", 1 << 30)
+    whole, cov_whole, _ = ev.align_channel(x, **kw)
+    monkeypatch.setattr(ev, "ALIGN_WINDOW_SAMPLES", 997)
+    reads = []
+    lazy = LazySamples(x.size, lambda a, b: (reads.append(b - a), x[a:b])[1])
+    out = np.empty(kw["n_target"])
+    windowed, cov, _ = ev.align_channel(lazy, **kw, out=out)
+    assert windowed is out and np.array_equal(cov, cov_whole) and np.isnan(windowed[~cov]).all()
+    assert np.allclose(windowed[cov], whole[cov_whole], rtol=0, atol=1e-10)
+    assert max(reads) < 997 * fs / ft + 400  # never the whole series: one window and the filter's reach

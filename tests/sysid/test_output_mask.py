@@ -130,11 +130,6 @@ def test_the_output_mask_survives_files_subsets_and_resampling(tmp_path, pulses)
         assert f.output_mask is None and f.content_hash() == s.content_hash()
     sub = b.select_trials([1, 3])
     assert np.array_equal(sub.output_mask, np.concatenate([b.output_mask[a:e] for a, e in b.trials[[1, 3]]]))
-    one = np.zeros((400, 1))
-    one[200] = 1.0  # one onset: the resampled outputs are blanked where the filter reaches it, and only there
-    half = resample_session(blank_artifacts(Session(u=one, y=np.zeros((400, 1)), sample_rate_hz=FS),
-                                            window_s=0.002), target_rate_hz=500.0)
-    assert np.flatnonzero(~half.output_mask).tolist() == list(range(90, 111))  # new j sits at 2j; filter reach 20
     with pytest.raises(Exception, match=r"cannot keep blanked outputs"):
         save_session(b, tmp_path / "b.csv")
 
@@ -160,3 +155,97 @@ def test_trial_resamples_keep_the_blanked_outputs_of_each_drawn_trial():
         np.testing.assert_array_equal(draw.output_mask, np.concatenate([om[10:20], om[10:20], om[0:10]]))
         np.testing.assert_array_equal(draw.u[:, 0], np.concatenate([np.arange(10, 20), np.arange(10, 20),
                                                                      np.arange(10)]))
+
+
+def test_one_blanked_trial_is_folded_by_time_over_its_short_pieces():
+    # Before: the direct route cut each valid piece of a single trial into n_splits blocks; blanking every 7.7
+    # samples leaves pieces of a few columns, so every block was shorter than one column and the fit raised
+    # "... fit in 0 fold(s)". Now the trial's pieces, end to end in time order, are cut into n_splits blocks.
+    from stimsteer.sysid.datadriven import LsqPredictor
+    from stimsteer.sysid.datadriven.base import _fold_of_segments
+
+    b = blank_artifacts(_pulses(n=8000, n_trials=1), window_s=0.002)
+    L, past = 6, 4
+    segs = output_valid_segments(b, b.segments(L), L, past)
+    assert max(e - a for a, e in segs) < 3 * L  # the case: no piece survives a cut into 3 blocks of >= L samples
+    pieces, k, scheme = _fold_of_segments(b, segs, 3, 0, L)
+    assert k == 3 and scheme == "contiguous blocks (one trial)"
+    cols = lambda ranges: [t for a, e, *_ in ranges for t in range(a, e - L + 1)]  # noqa: E731 (column starts)
+    assert set(cols(pieces)) <= set(cols(segs)) and len(cols(pieces)) == len(set(cols(pieces)))  # none twice
+    assert len(cols(pieces)) >= len(cols(segs)) - 2 * (L - 1)  # at most L - 1 columns lost at each of 2 cuts
+    folds = [f for a, e, f in sorted(pieces)]
+    assert folds == sorted(folds)  # contiguous in time: fold 0, then 1, then 2
+    sizes = [len(cols([p for p in pieces if p[2] == f])) for f in range(3)]
+    assert max(sizes) - min(sizes) <= 0.02 * sum(sizes)  # blocks of nearly equal length
+    m = LsqPredictor(past_steps=past, horizon_steps=L - past).fit(b)
+    assert m.cv_scheme_ == "contiguous blocks (one trial)" and m.n_columns_ == len(cols(pieces))
+
+
+def test_resampling_blanks_only_the_outputs_the_blank_really_moves():
+    # Before: every new sample the anti-aliasing filter reached (20 source samples either side at 1 kHz -> 500 Hz)
+    # was blanked: samples 90..110 for a blank at source samples 200-201. Now the blank is interpolated before
+    # filtering and a new sample is blanked only where the blank holds > 1 % of the filter's absolute weight.
+    # Reference, written out here: scipy.signal.resample_poly's default filter (firwin of 2·10·max(up, down) + 1
+    # taps, cut-off 1/max(up, down), Kaiser beta 5; SciPy documentation), new sample j at source position 2j.
+    from scipy.signal import firwin
+
+    from stimsteer.sysid.prep import BLANK_INFLUENCE_TOLERANCE
+
+    n, blanked = 400, {200, 201}
+    t = np.arange(n) / FS
+    clean = np.sin(2 * np.pi * 7.0 * t)[:, None]
+    y = clean.copy()
+    y[sorted(blanked), 0] += [80.0, -40.0]  # the artifact, under the blank
+    one = np.zeros((n, 1))
+    one[200] = 1.0
+    b = blank_artifacts(Session(u=one, y=y, sample_rate_hz=FS), window_s=0.002)
+    assert set(np.flatnonzero(~b.output_mask)) == blanked
+    half = resample_session(b, target_rate_hz=500.0)
+    h = np.abs(firwin(41, 0.5, window=("kaiser", 5.0)))
+    share = np.array([sum(h[20 + k - 2 * j] for k in blanked if abs(k - 2 * j) <= 20)
+                      / sum(h[20 + k - 2 * j] for k in range(n) if abs(k - 2 * j) <= 20) for j in range(n // 2)])
+    expected = np.flatnonzero(share > BLANK_INFLUENCE_TOLERANCE).tolist()
+    assert np.flatnonzero(~half.output_mask).tolist() == expected
+    assert len(expected) < 21 and expected[0] > 90  # fewer than the filter's whole reach
+    # the artifact does not leak into the kept samples: they equal the artifact-free signal's resampling to 1e-3
+    # (the blank's straight line departs from the sine by < 0.05; 1 % of the filter weight on it moves < 1e-3)
+    ref = resample_session(Session(u=one, y=clean, sample_rate_hz=FS), target_rate_hz=500.0)
+    kept = half.output_mask
+    assert np.max(np.abs(half.y[kept, 0] - ref.y[kept, 0])) < 1e-3
+    assert half.metadata["prep"][-1]["blanked_outputs"].startswith("interpolated across each blank")
+
+
+@pytest.mark.parametrize("make", ["subspace", "lsq_one_strength", "lsq_selection", "hankel_one_strength"])
+def test_routes_that_lose_every_window_to_blanking_say_so_and_what_to_do(make):
+    # 130 Hz pulses at 1 kHz, 2 ms blanked after each: every window predicting 10 outputs holds a blanked one.
+    # Before: subspace said "0 Hankel columns ... record longer trials" (no word of blanking), the selection
+    # "fit in 0 fold(s)", and a direct predictor with one strength fitted silently on no column at all
+    # (n_columns_ == 0). Now each names the blanking, the counts (known by construction: every window) and the fixes.
+    from stimsteer.sysid.datadriven import HankelPredictor, LsqPredictor
+    from stimsteer.sysid.subspace import SubspaceId
+
+    b = blank_artifacts(_pulses(n=6000, n_trials=2), window_s=0.002)
+    est = {"subspace": lambda: SubspaceId(past_steps=10, future_steps=10, order=2),
+           "lsq_one_strength": lambda: LsqPredictor(past_steps=10, horizon_steps=10, alphas=[1e-3]),
+           "lsq_selection": lambda: LsqPredictor(past_steps=10, horizon_steps=10),
+           "hankel_one_strength": lambda: HankelPredictor(past_steps=10, horizon_steps=10, lambdas_g=[1e-3])}[make]()
+    n = sum(e - a - 19 for a, e in b.trials)
+    with pytest.raises(SessionError, match=rf"Output blanking removed {n} of the {n} windows of 20 samples.*"
+                                           r"--blank-outputs-ms.*template.*--method arx"):
+        est.fit(b)
+
+
+def test_a_blanked_session_file_read_through_a_description_stays_blanked(tmp_path):
+    # Before: a session file given to convert with a description became a recording whose outputs were all valid,
+    # so the blanked outputs (straight lines across each blank) came back as fitting targets. Known by
+    # construction: the rebuilt session has the file's output mask, outputs and trials.
+    from stimsteer.sysid.description import parse_description
+    from stimsteer.sysid.from_recording import build_session, read_recording
+
+    b = blank_artifacts(_pulses(n=4000, n_trials=2), window_s=0.002)
+    save_session(b, tmp_path / "b.h5")
+    desc = parse_description({"channels": {"inputs": ["u0"], "outputs": ["y0"]}})
+    s = build_session(read_recording(tmp_path / "b.h5", desc), desc)
+    assert not b.output_mask.all()
+    assert np.array_equal(s.output_mask, b.output_mask) and np.array_equal(s.y, b.y) and np.array_equal(s.u, b.u)
+    assert np.array_equal(s.trials, b.trials) and s.mask.all()
