@@ -73,7 +73,6 @@ def gain_steps(args, session, predictors):
 def condition_report(args, result, session, settings):
     """Per-condition models on the training trials, their step gains and held-out scores; (lines, writer)."""
     from ...sysid import condition_change_table, condition_heldout_scores, fit_per_condition
-
     from ...sysid.conditions import trial_conditions
 
     split = result.split
@@ -87,6 +86,9 @@ def condition_report(args, result, session, settings):
     names = _file_names(list(fits.models))
     scores.insert(1, "model_file", [names[c] for c in scores["condition"]])
     scores["train_trials"] = [" ".join(str(t) for t in fits.trials[c]) for c in scores["condition"]]
+    # each model file's own scores (``predict`` draws its error band from them): its condition's held-out trials
+    held = {c: [t for t in split.test if labels[t] == c] for c in fits.models}
+    own = {c: _scores(m, session, held[c] or fits.trials[c], result.provenance) for c, m in fits.models.items()}
     lines = [f"model change across conditions (one model per condition fitted on its training trials, "
              f"{len(split.train)} of {session.n_trials}; {how}; 95 % bootstrap interval over each condition's "
              "training trials):", gains.to_string(index=False, float_format=lambda v: f"{v:.4g}"),
@@ -98,12 +100,11 @@ def condition_report(args, result, session, settings):
     def write(folder, force, provenance):
         with atomic_dir(folder, force=force) as tmp:
             for c, model in fits.models.items():
-                held = [t for t in split.test if labels[t] == c]
                 prov = {**provenance, "route": fits.route, "method": fits.method,
                         "estimator": type(model).__name__, "settings": _jsonable(model), "condition": c,
-                        "condition_trials": list(fits.trials[c]), "heldout_trials": held or list(fits.trials[c]),
-                        "heldout": _scores(model, session, held or fits.trials[c], provenance).to_dict()}
-                if not held:
+                        "condition_trials": list(fits.trials[c]), "heldout_trials": held[c] or list(fits.trials[c]),
+                        "heldout": own[c].to_dict()}
+                if not held[c]:
                     prov["heldout_note"] = f"no trial of condition {c!r} was held out: scored on its training trials"
                 save_predictor(model, tmp / names[c], provenance=prov)
             scores.to_csv(tmp / "conditions.csv", index=False, float_format=_FLOAT)
