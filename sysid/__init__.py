@@ -28,12 +28,14 @@ from .ensemble import BootstrapEnsemble, interval_coverage, resample_trials
 from .recursive import RecursiveRidgeArx
 from .switched import ModelSequence
 from .conditions import ConditionFits, condition_change_table, fit_per_condition, sliding_window_fits, step_gains
+from .conditions import condition_heldout_scores, gain_steps_from_data, window_change_table
 from . import from_recording  # noqa: F401  (adds Session.from_mne and Session.from_neo)
 
 __all__ = [
     "InputAffineForm", "IntervalForm", "RecruitmentForm", "LiftedPredictor", "HammersteinArx", "Recruitment", "BootstrapEnsemble",
     "interval_coverage", "resample_trials", "RecursiveRidgeArx", "ModelSequence", "ConditionFits", "condition_change_table",
     "fit_per_condition", "sliding_window_fits", "step_gains",
+    "window_change_table", "condition_heldout_scores", "gain_steps_from_data",
     "BaseEstimator",
     "BasePredictor",
     "DataBlocks",

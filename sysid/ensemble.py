@@ -134,7 +134,8 @@ class BootstrapEnsemble(BasePredictor):
     """
 
     storage_kind = "bootstrap_ensemble"
-    #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
+    #: Not in the benchmark's default method set (opt in with a MethodSpec): 3.6x the quick bench's time for an
+    #: ensemble of a method already in the set (measured in benchmarks/README.md, bench_accuracy.py bench-set).
     in_default_bench = False
 
     def __init__(self, *, method="arx", method_settings=None, past_steps=None, n_members=20,

@@ -144,7 +144,8 @@ class HammersteinArx(BasePredictor):
     """
 
     storage_kind = "hammerstein_arx"
-    #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
+    #: Not in the benchmark's default method set (opt in with a MethodSpec): its plans refuse the slew limits and
+    #: energy budgets the bench's closed loops obey (measured in benchmarks/README.md, bench_accuracy.py bench-set).
     in_default_bench = False
     #: The lifted state / the linear part carries a constant, so an output offset needs no centring.
     fit_intercept = True

@@ -183,7 +183,8 @@ class LiftedPredictor(BasePredictor):
     """
 
     storage_kind = "lifted_predictor"
-    #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
+    #: Not in the benchmark's default method set (opt in with a MethodSpec): 2.4x the quick bench's time, and it would
+    #: take over the indirect route's closed loops (measured in benchmarks/README.md, bench_accuracy.py bench-set).
     in_default_bench = False
     #: The lifted state / the linear part carries a constant, so an output offset needs no centring.
     fit_intercept = True

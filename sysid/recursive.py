@@ -99,7 +99,8 @@ class RecursiveRidgeArx(BasePredictor):
     """
 
     storage_kind = "recursive_ridge_arx"
-    #: Not in the benchmark's default method set (opt in with a MethodSpec): slower, and new to the route set.
+    #: Not in the benchmark's default method set (opt in with a MethodSpec): with forgetting 1 it is the batch ridge
+    #: ARX solution, a second copy of arx (measured in benchmarks/README.md, bench_accuracy.py bench-set).
     in_default_bench = False
 
     def __init__(self, *, output_lags=2, input_lags=2, alpha=1e-3, forgetting=1.0, fit_intercept=True):

@@ -11,7 +11,8 @@ from ...sysid import METHODS, InvalidParameterError, SessionError, fit_route, sa
 from ...sysid._files import atomic_path
 from ...sysid.routes import _factory
 from ...sysid.window_defaults import resolve_windows
-from ._common import add_channel_options, add_window_options, claimed, open_selected, whole_number
+from . import _fit_changes as changes
+from ._common import add_channel_options, add_window_options, claimed, open_selected, whole_number, window_length
 from .convert import add_blank_option, blank_outputs
 
 __all__ = ["add_parser", "run"]
@@ -69,11 +70,18 @@ def add_parser(subparsers) -> None:
                    help="fit N members of the method on bootstrap resamples of the training trials (an ensemble "
                    "with prediction intervals); prints the held-out coverage of its 95 %% intervals")
     p.add_argument("--conditions", action="store_true",
-                   help="also report how the model changes across conditions (trial labels in the session's "
-                   "metadata 'trial_conditions'): step gains per condition with 95 %% bootstrap intervals")
+                   help="also fit one model per condition on its training trials (labels in the session's metadata "
+                   "'trial_conditions'), score each against the pooled model on the held-out trials, and report "
+                   "step gains per condition with 95 %% bootstrap intervals; writes the folder MODEL_conditions/ "
+                   "beside --out (condition_<label>.h5 model files, conditions.csv, step_gains.csv)")
     p.add_argument("--trial-windows", dest="trial_windows", type=whole_number(2), metavar="K",
                    help="also report how the model changes over the session: one model per window of K consecutive "
-                   "training trials, its step gains with 95 %% bootstrap intervals over the window's trials")
+                   "training trials, its step gains with 95 %% bootstrap intervals over the window's trials; "
+                   "writes MODEL_trial_windows.csv beside --out")
+    p.add_argument("--gain-after", dest="gain_after", type=window_length("--gain-after"), metavar="LENGTH",
+                   help="with --conditions or --trial-windows: read the step gains this long after the step, a time "
+                   "(500ms, 0.5s) or a number of samples (50samples); default from the data: 3 x the recording's "
+                   "memory, at most the shortest trial")
     p.add_argument("--window-step", dest="window_step", type=whole_number(1), metavar="S",
                    help="with --trial-windows: trials between the starts of two windows (default K: windows that do "
                    "not overlap)")
@@ -116,6 +124,7 @@ def _settings(args) -> dict:
         settings[name] = value
     if getattr(args, "window_step", None) is not None and getattr(args, "trial_windows", None) is None:
         raise InvalidParameterError("--window-step needs --trial-windows K (the trials per window).")
+    changes.refuse_gain_after(args)
     return settings
 
 
@@ -144,15 +153,18 @@ def run(args) -> int:
     """Claim the model file, fit, save it, print the selection and held-out scores; 0 on success."""
     settings = _settings(args)
     figure_path = getattr(args, "order_figure", None)
+    paths = changes.change_paths(args)
     with claimed(args.out, force=args.force, command="fit"), \
-            _maybe_claimed(figure_path, args.force):
-        result, extra_lines = _fit(args, settings)
+            _maybe_claimed(figure_path, args.force), _maybe_claimed(paths.get("conditions"), args.force), \
+            _maybe_claimed(paths.get("trial_windows"), args.force):
+        result, extra_lines, writers = _fit(args, settings)
         figure = _order_figure(result) if figure_path else None  # refused before anything is written
         provenance = {**result.provenance, "session_file": str(args.session)}
         save_predictor(result.predictor, args.out, provenance=provenance, overwrite=args.force)
         if figure is not None:
             with atomic_path(figure_path) as tmp:
                 figure.savefig(tmp, dpi=110, format="png")
+        extra_lines += [write(paths[key], args.force, provenance) for key, write in writers.items()]
     split = result.split
     print(f"{args.route} / {args.method}: {type(result.predictor).__name__} fitted on trials {list(split.train)}")
     print("selection (training trials only):")
@@ -196,12 +208,14 @@ def _fit(args, settings):
         if past is not None and (args.past is not None or takes_past):
             settings = {**settings, "past_steps": past}  # a default only to a method that takes a past window
         _check_windows(args, session)  # refused before the fit
+        changes.check_conditions(args, session, _split_of(args, session).train)
         plain = settings
         try:
             route, method, settings = _bootstrapped(args, settings)
             result = fit_route(session, route=route, method=method, settings=settings, seed=args.seed,
                                test_fraction=args.test_fraction, horizon_steps=horizon)
-            lines = _uncertainty_lines(args, result, session, plain) + _window_lines(args, result, session, plain)
+            lines, writers = _change_lines(args, result, session, plain)
+            lines = _uncertainty_lines(args, result, session) + lines
         except (InvalidParameterError, SessionError) as exc:
             # the estimator names its own settings; say which option set them
             given = [f"{value.option or '--' + name} {value}" for name, value in (("past", args.past),
@@ -212,7 +226,7 @@ def _fit(args, settings):
                 from None
     for w in caught:
         sys.stderr.write(f"stimsteer fit: warning: {w.message}\n")
-    return result, lines
+    return result, lines, writers
 
 
 def _bootstrapped(args, settings):
@@ -223,9 +237,9 @@ def _bootstrapped(args, settings):
     return "indirect", "bootstrap", {"method": args.method, "method_settings": settings, "n_members": int(n)}
 
 
-def _uncertainty_lines(args, result, session, given=None) -> list:
-    """The ensemble's held-out interval coverage and, with ``--conditions``, the change across conditions."""
-    from ...sysid import IntervalForm, condition_change_table, interval_coverage
+def _uncertainty_lines(args, result, session) -> list:
+    """The ensemble's held-out interval coverage."""
+    from ...sysid import IntervalForm, interval_coverage
     from ...sysid.trial_sources import _subsets
 
     lines = []
@@ -237,44 +251,37 @@ def _uncertainty_lines(args, result, session, given=None) -> list:
         lines.append(f"95 % prediction intervals ({len(pred.members_)} bootstrap members) on held-out trials, 1-{H} "
                      "steps ahead: coverage per output " + ", ".join(
                          f"{n} {100 * c:.1f} %" for n, c in zip(pred.output_names_, cov)) + " (aim: 95 %)")
-    if getattr(args, "conditions", False):
-        whole = session if hasattr(session, "select_trials") else session.to_session()
-        settings = dict(result.provenance.get("settings") or {})
-        inner = settings.get("method_settings") if isinstance(pred, IntervalForm) else given  # the options given
-        table = condition_change_table(whole, method=args.method, method_settings=inner, seed=args.seed,
-                                       n_members=int(getattr(args, "bootstrap", None) or 20))
-        lines.append("model change across conditions (step gain after 50 samples, 95 % bootstrap interval over each "
-                     "condition's trials):")
-        lines.append(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
     return lines
+
+
+def _split_of(args, session):
+    """The trial split ``fit_route`` will make (same seed and fraction), for checks before the fit."""
+    from ...sysid.trial_sources import _split
+
+    return _split(session, None, args.test_fraction, args.seed)
 
 
 def _check_windows(args, session) -> None:
     """``--trial-windows K`` must leave at least one window in the training trials of the split."""
-    from ...sysid.trial_sources import _split
-
     K = getattr(args, "trial_windows", None)
     if K is None:
         return
-    n_train = len(_split(session, None, args.test_fraction, args.seed).train)
+    n_train = len(_split_of(args, session).train)
     if K > n_train:
         raise InvalidParameterError(f"--trial-windows {K} is more than the {n_train} training trials (of "
                                     f"{session.n_trials}, with --test-fraction {args.test_fraction:g}); give 2 to "
                                     f"{n_train} trials per window.")
 
 
-def _window_lines(args, result, session, settings) -> list:
-    """With ``--trial-windows K``: the step gains per window of training trials with their bootstrap intervals."""
-    from ...sysid.conditions import window_change_table
-
-    K = getattr(args, "trial_windows", None)
-    if K is None:
-        return []
+def _change_lines(args, result, session, given):
+    """With ``--conditions`` / ``--trial-windows K``: the lines to print and the writers of their files
+    (:mod:`._fit_changes`), on the training trials of the split; ``given`` are the method settings as given."""
     whole = session if hasattr(session, "select_trials") else session.to_session()
-    table = window_change_table(whole, method=args.method, method_settings=settings, window_trials=K,
-                                step_trials=args.window_step, trials=result.split.train, seed=args.seed,
-                                n_members=int(getattr(args, "bootstrap", None) or 20))
-    step = args.window_step or K
-    return [f"model change over the session ({K} consecutive training trials per window, windows {step} trial(s) "
-            "apart; step gain after 50 samples, 95 % bootstrap interval over each window's trials):",
-            table.to_string(index=False, float_format=lambda v: f"{v:.4g}")]
+    lines, writers = [], {}
+    if getattr(args, "conditions", False):
+        more, writers["conditions"] = changes.condition_report(args, result, whole, given)
+        lines += more
+    if getattr(args, "trial_windows", None) is not None:
+        more, writers["trial_windows"] = changes.window_report(args, result, whole, given)
+        lines += more
+    return lines, writers

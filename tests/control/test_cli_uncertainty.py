@@ -68,6 +68,27 @@ def test_plan_robust_over_the_ensemble_keeps_the_limits(files, mode, capsys):
     assert f"robust-{mode}" in capsys.readouterr().out
 
 
+@pytest.mark.slow
+def test_plan_robust_keeps_an_energy_budget_and_output_bounds_from_the_limits_file(files, tmp_path, capsys):
+    # before issue 19's follow-up, `plan --robust` refused limits that declare an energy budget or output bounds
+    d = files
+    model = d / "m.h5"
+    if not model.exists():
+        assert main(["fit", str(d / "s.h5"), "--route", "indirect", "--method", "arx", "--past-steps", "2",
+                     "--bootstrap", "6", "--out", str(model)]) == 0
+    limits = tmp_path / "limits.toml"
+    limits.write_text("[energy]\nbudget_ua2 = 2.0\nwindow_steps = 4\n[inputs.site]\namplitude_min_ua = -1.0\n"
+                      "amplitude_max_ua = 1.2\nslew_max_ua = 0.5\n[outputs.y0]\nmax = 3.0\n")
+    assert main(["plan", str(model), "--target", "y0=5.0", "--limits", str(limits), "--horizon-steps", "12",
+                 "--robust", "worst", "--out", str(tmp_path / "p")]) == 0
+    out = capsys.readouterr().out
+    u = pd.read_csv(tmp_path / "p" / "plan.csv", comment="#")["in:site [uA]"].to_numpy()
+    windows = np.convolve(np.r_[np.zeros(3), u] ** 2, np.ones(4), mode="valid")  # every 4-sample window, from rest
+    assert windows.max() <= 2.0 * (1 + 1e-9) and windows.max() >= 0.99 * 2.0
+    assert "energy_budget over a window of 4 samples" in out and "robust-worst" in out
+    assert "output bound on y0" in out and "output bounds exceeded" not in out  # kept for every member
+
+
 def test_plan_robust_refuses_a_single_model(files, tmp_path, capsys):
     d = files
     assert main(["fit", str(d / "s.h5"), "--route", "indirect", "--method", "arx", "--past-steps", "2",

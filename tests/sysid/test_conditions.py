@@ -63,3 +63,46 @@ def test_too_few_trials_per_condition_are_refused_saying_how_many_are_needed():
         trial_conditions(s, ["A", "B"])
     with pytest.raises(SessionError, match="no condition labels"):
         trial_conditions(s.replace(metadata={}))
+
+
+def _delayed_first_order(trial_length, n=2000, seed=0):
+    rng = np.random.default_rng(seed)
+    u = rng.normal(size=(n, 1))
+    y = np.zeros((n, 1))
+    for t in range(1, n):
+        y[t] = 0.8 * y[t - 1] + 0.5 * u[t - 1]
+    return Session(u=u, y=y, sample_rate_hz=100.0,
+                   trials=[(k * trial_length, (k + 1) * trial_length) for k in range(n // trial_length)])
+
+
+class _Limited:
+    max_horizon_steps_ = 10
+
+
+def test_the_gain_horizon_from_the_data_is_three_memories_at_most_a_trial_and_a_models_horizon():
+    from stimsteer.sysid import gain_steps_from_data
+
+    # impulse response 0.5·0.8^(k−1) for k >= 1 (by construction): above 10 % of its peak up to k = 11, since
+    # 0.8^10 = 0.107 and 0.8^11 = 0.086 (the memory rule of stimsteer.sysid.window_defaults), so 3 x 11 samples
+    steps, why = gain_steps_from_data(_delayed_first_order(200))
+    assert steps == 33 and "memory of 11 samples" in why
+    steps, why = gain_steps_from_data(_delayed_first_order(25))
+    assert steps == 25 and why.endswith("cut to the shortest trial")
+    steps, why = gain_steps_from_data(_delayed_first_order(200), [_Limited()])
+    assert steps == 10 and why.endswith("cut to the longest horizon the model predicts")
+
+
+def test_held_out_scores_compare_each_condition_model_with_a_pooled_one(session):
+    from stimsteer.sysid import condition_heldout_scores
+    from stimsteer.sysid.routes import make_estimator
+
+    train, test = [0, 1, 2, 3, 4, 5], [6, 7]
+    fits = fit_per_condition(session, method="arx", method_settings=ARX, trials=train)
+    assert fits.trials == {"A": (0, 2, 4), "B": (1, 3, 5)}
+    pooled = make_estimator("indirect", "arx", ARX).fit(session.select_trials(train))
+    table = condition_heldout_scores(fits, session, pooled=pooled, trials=test)
+    assert list(table["n_test"]) == [1, 1] and list(table["n_train"]) == [3, 3]
+    assert (table["vaf_condition_model"] > 99.0).all()
+    assert (table["vaf_condition_model"] > table["vaf_pooled_model"] + 5.0).all()
+    with pytest.raises(InvalidParameterError, match="were used to fit"):
+        condition_heldout_scores(fits, session, pooled=pooled, trials=[5, 6])

@@ -73,10 +73,12 @@ def test_robust_plans_keep_the_hard_limits_and_rank_their_own_cost_first(ensembl
 
 
 def test_robust_plans_refuse_what_they_cannot_keep(ensemble):
-    lim = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, energy_budget_ua2=4.0, n_inputs=1)
-    with pytest.raises(InvalidParameterError, match="energy budget or output bounds"):
-        RobustPlanner(ensemble=ensemble, limits=lim, horizon_steps=5).fit()
+    # energy budgets and output bounds are kept since issue 19's follow-up (tests/control/test_robust_limits.py)
     ok = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=1)
+    with pytest.raises(InvalidParameterError, match="horizon_steps must be a positive integer"):
+        RobustPlanner(ensemble=ensemble, limits=ok, horizon_steps=0).fit()
+    with pytest.raises(InvalidParameterError, match="limits must be a StimLimits"):
+        RobustPlanner(ensemble=ensemble, limits={"amplitude_max_ua": 1.0}, horizon_steps=5).fit()
     with pytest.raises(InvalidParameterError, match="worst case or average"):
         RobustPlanner(ensemble=ensemble, limits=ok, horizon_steps=5, mode="best").fit()
 
