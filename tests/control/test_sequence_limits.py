@@ -405,3 +405,44 @@ def test_what_cannot_keep_sequence_limits_refuses_them():
     ctrl = ModelPredictiveController(model=StateSpaceModel(A=[[0.9]], B=[[1.0]], C=[[1.0]], past_steps=1),
                                      limits=lim, horizon_steps=4).fit()
     assert "window budgets or train limits" in _unsupported(ctrl)
+
+
+@pytest.mark.parametrize("mode", ["worst", "average"])
+def test_a_robust_loop_over_an_ensemble_keeps_charge_windows_and_trains(mode):
+    # merge of issues 16 and 19: the robust planner now shares the controllers' limit machinery, so the linear
+    # charge-window budget and the train-length mask hold in its loops too; checked on the decoded pulses by the
+    # independent checker above
+    import warnings
+
+    from stimsteer.control.mpc.robust import RobustPlanner
+    from stimsteer.sysid.ensemble import BootstrapEnsemble
+
+    plant = LinearNetworkPlant(np.array([[0.9, 0.2], [-0.15, 0.75]]), np.array([[1.0], [0.5]]),
+                               np.array([[1.0, 0.0]]), sample_rate_hz=250.0, process_noise_std=0.05,
+                               measurement_noise_std=0.1)
+    u = np.random.default_rng(1).uniform(0.0, 100.0, size=(8 * 200, 1))
+    s = record_session(plant, u, trials=[(k * 200, (k + 1) * 200) for k in range(8)], seed=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ens = BootstrapEnsemble(method="arx", method_settings={"output_lags": 2, "input_lags": 2,
+                                                               "delay_samples": 0, "alphas": (1e-3,)},
+                                n_members=5, seed=2).fit(s)
+    m = _mapping(250.0, {"u0": {"kind": "electrical", "phase_width": "90 us", "frequency": "250 Hz",
+                                "contact_area": "0.06 cm^2"}})
+    table = {"window_s": 0.2, "charge_rate_max_uc_per_s": 0.7 * 100.0 * 90e-6 * 250.0,
+             "sites": {"u0": {"amplitude_max_ua": 100.0, "train_length_max_s": 0.04}}}
+
+    def loop_under(tab):
+        lim = dataclasses.replace(compile_limits(PhysicalLimits.from_dict(tab), m).stim_limits, input_names=None)
+        assert lim.has_sequence_limits
+        planner = RobustPlanner(ensemble=ens, limits=lim, horizon_steps=6, mode=mode).fit()
+        return run_closed_loop(planner, plant, n_steps=120, target=np.array([1e4]), seed=4)
+
+    loop = loop_under(table)
+    assert breaks(loop.inputs, m, table) == []
+    assert not any(loop.violations.values()), loop.violations
+    q = loop.inputs[:, 0] * 90e-6  # charge per phase (µC); the window holds 50 samples
+    assert max(q[max(0, j - 49):j + 1].sum() for j in range(q.size)) >= 0.99 * 0.2 * table["charge_rate_max_uc_per_s"]
+    # the train limit binds as well: the same loop without it runs trains longer than 0.04 s
+    free = loop_under({**table, "sites": {"u0": {"amplitude_max_ua": 100.0}}})
+    assert breaks(free.inputs, m, table) == ["train length u0"]
