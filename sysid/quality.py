@@ -378,11 +378,18 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
         )
     offsets = tuple((name, float(mean[j]), float(share[j])) for j, name in enumerate(session.output_names)
                     if name not in flat and share[j] > OFFSET_WARN_FRACTION)
-    notes = []
+    quiet = {}  # offsets that come with the stimulation, one note per reason
     for name, m, f in offsets:
         j = list(session.output_names).index(name)
-        warnings_or_notes, text = _offset_advice(name, m, f, session.output_units[j], base, j)
-        (warnings if warnings_or_notes else notes).append(text)
+        is_warning, text = _offset_advice(name, m, f, session.output_units[j], base, j)
+        if is_warning:
+            warnings.append(text)
+        else:
+            quiet.setdefault(text, []).append(f"'{name}' (mean {m:.4g} {session.output_units[j]}, {100 * f:.0f}% of "
+                                              "its mean square)")
+    notes = [(f"output {outs[0]} has a mean" if len(outs) == 1 else f"outputs {', '.join(outs)} have means")
+             + f", but {why}: the mean comes with the stimulation, which the models reproduce from the inputs; "
+             "centring is not advised." for why, outs in quiet.items()]
     if trials.shape[0] < 2:
         warnings.append("only 1 trial: no held-out split by trials is possible; record more trials or cut the "
                         "recording into trials.")
@@ -399,15 +406,14 @@ def describe_session(session, *, saturation_fraction: float = 0.01, masked_warni
 
 
 def _offset_advice(name, mean, share, unit, base, j) -> tuple[bool, str]:
-    """(is a warning, text): centring is advised only when the pre-stimulation baseline carries the offset."""
+    """(True, the warning) when the pre-stimulation baseline carries the offset (then centring is advised), else
+    (False, why the offset comes with the stimulation)."""
     n_base, base_mean, base_share = base
     if base_share[j] > OFFSET_WARN_FRACTION:
         return True, (f"output '{name}' rests on an offset before any stimulation (baseline mean {base_mean[j]:.4g} "
                       f"{unit} over {n_base} pre-stimulation samples; overall mean {mean:.4g} {unit}, {100 * share:.0f}"
                       "% of its mean square): fit subspace or direct models with --centre-outputs "
                       "(centre_outputs=True); ridge ARX fits an intercept of its own.")
-    why = (f"its pre-stimulation baseline ({n_base} samples) rests near zero" if n_base >= BASELINE_MIN_SAMPLES
+    why = (f"the pre-stimulation baseline ({n_base} samples) rests near zero" if n_base >= BASELINE_MIN_SAMPLES
            else "no pre-stimulation baseline (zero-input samples before the first stimulation) shows a resting level")
-    return False, (f"output '{name}' has mean {mean:.4g} {unit} ({100 * share:.0f}% of its mean square), but {why}: "
-                   "the mean comes with the stimulation, which the models reproduce from the inputs; centring is "
-                   "not advised.")
+    return False, why

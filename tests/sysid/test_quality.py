@@ -188,3 +188,20 @@ def test_values_beyond_the_representable_range_are_refused_with_the_figure(rng, 
     with pytest.raises(SessionError, match=text):
         fit_route(s, route="indirect", method="arx")
     check_representable(s.replace(y=y / abs(value) * 1e12))  # 1e12 is fine
+
+
+def test_offsets_that_come_with_the_stimulation_are_one_note_naming_every_output():
+    # found on the one-signed pulse-train demo: six outputs gave six identical notes "centring is not advised"
+    rng = np.random.default_rng(5)
+    n = 2000
+    u = np.where(rng.random((n, 1)) < 0.5, 2.0, 0.0)
+    u[:50] = u[1000:1050] = 0.0
+    y = np.zeros((n, 3))
+    for k in range(1, n):
+        y[k] = 0.8 * y[k - 1] + np.array([1.0, -2.0, 0.5]) * u[k - 1, 0] + 0.01 * rng.standard_normal(3)
+    y[:50] = y[1000:1050] = 0.01 * rng.standard_normal((50, 3))
+    q = describe_session(Session(u=u, y=y, sample_rate_hz=100.0, trials=[(0, 1000), (1000, 2000)]))
+    assert [c[0] for c in q.offset_channels] == ["y0", "y1", "y2"]
+    offset_notes = [n_ for n_ in q.notes if "centring is not advised" in n_]
+    assert len(offset_notes) == 1 and all(f"'y{j}' (mean" in offset_notes[0] for j in range(3))
+    assert offset_notes[0].startswith("outputs 'y0'")
