@@ -27,7 +27,8 @@ _TIMING_METRICS = {"fit_s", "solve_ms", "solve_ms_median", "predict_ms_per_windo
 _TABLE_FILES = ("plan_indirect/plan.csv", "plan_direct/plan.csv", "predict_indirect/prediction.csv",
                 "predict_direct/prediction.csv", "network/controllability.csv", "network/gramian_spectrum.csv",
                 "network/impulse_responses.csv", "network/site_controllability.csv", "network/site_ranking.csv",
-                "network/transition.csv", "network/site_sets.csv")
+                "network/transition.csv", "network/site_sets.csv", "plan_pulses/plan_parameters.csv",
+                "plan_pulses/plan_pulses.csv")
 
 
 def _keep(table: list[dict], name: str) -> list[dict]:
