@@ -27,7 +27,9 @@ def _one_line(capsys):
 @pytest.mark.parametrize("extra, flag, api", [
     (["--rate-hz", "-5"], "--rate-hz must be positive", "sample_rate_hz"),
     (["--kind", "multilevel", "--levels", "1"], "--levels must be a whole number >= 2", "n_levels"),
-    (["--kind", "multilevel", "--levels", "2", "--rate-hz", "250"], "(--levels >= 8)", "n_levels"),
+    # the demo's amplitude window is 0..50 µA with a slew of 15 per step: spacing 50 / (levels - 1) <= 15 needs
+    # levels >= 1 + 50 / 15, i.e. 5 (it was 8 for the signed -50..50 window of the old demo)
+    (["--kind", "multilevel", "--levels", "2", "--rate-hz", "250"], "(--levels >= 5)", "n_levels"),
     (["--trial-s", "0"], "--trial-s must be positive", "trial_s"),
     (["--kind", "pulses", "--pulse-rate-hz", "900"], "give --pulse-rate-hz <= 500", "pulse_rate_hz"),
 ])
