@@ -28,6 +28,7 @@ from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterEr
 from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
+from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
@@ -256,21 +257,8 @@ class RidgeArx(BasePredictor):
             )
 
     def _cross_validate(self, prob, folds, total, alphas, k) -> pd.DataFrame:
-        errors = np.full((alphas.size, k), np.nan)
-        for f, held in enumerate(folds):
-            train = total.minus(held)
-            if held.n == 0 or train.n <= prob.x_idx.size:
-                continue
-            betas, _scale, _conds, _mu = prob.solve(train, alphas)
-            errors[:, f] = prob.validation_errors(betas, train, held)
-        table = pd.DataFrame({"alpha": alphas})
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
-            table["mean_error"] = np.nanmean(errors, axis=1)
-            table["std_error"] = np.nanstd(errors, axis=1)
-        for f in range(k):
-            table[f"fold_{f}"] = errors[:, f]
-        return table
+        return cv_table(cv_errors([prob], folds, total, alphas)[0], alphas, k)
+
 
     def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
         betas, scale, conds, mu = prob.solve(total, [alpha])
