@@ -31,50 +31,54 @@ from .arx_regression import _Problem, _ridge_path, _rounding_level
 __all__ = ["cv_errors", "cv_table"]
 
 
-class _Shared:
-    """One fold's standardised normal equations over the union of the candidates' regressors, and its core factors."""
+def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float):
+    """``L`` with ``L Lᵀ = R_core + α I`` and ``L⁻¹ r_core`` (None when the factor does not exist)."""
+    if Rc.shape[0] == 0:
+        return Rc, rc
+    K = Rc.copy()
+    K[np.diag_indices_from(K)] += alpha
+    try:
+        L = sla.cholesky(K, lower=True, overwrite_a=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        return None
+    return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
 
-    def __init__(self, R, r, core, alphas):
-        self.R, self.r, self.core = R, r, core
-        Rc = R[np.ix_(core, core)]
-        self.ok = core.size == 0 or min(alphas) > _rounding_level(Rc)
-        self.factors = []  # (L, L⁻¹ r_core) per alpha
-        if not self.ok:
-            return
-        try:
-            for alpha in alphas:
-                K = Rc.copy()
-                K[np.diag_indices_from(K)] += alpha
-                L = sla.cholesky(K, lower=True, overwrite_a=True, check_finite=False) if core.size else K
-                z = sla.solve_triangular(L, r[core], lower=True, check_finite=False) if core.size else r[core]
-                self.factors.append((L, z))
-        except np.linalg.LinAlgError:
-            self.ok = False
 
-    def betas(self, extra: np.ndarray, alphas) -> list[np.ndarray] | None:
-        """Standardised coefficients on ``[core, extra]`` for each strength (None: use the eigen route)."""
-        if not self.ok:
-            return None
-        R, r, core = self.R, self.r, self.core
-        Bce, Ree, re = R[np.ix_(core, extra)], R[np.ix_(extra, extra)], r[extra]
-        out = []
-        try:
-            for alpha, (L, z) in zip(alphas, self.factors):
-                if core.size:
-                    X = sla.solve_triangular(L, Bce, lower=True, check_finite=False)  # L⁻¹ R_core,e
-                    S = Ree - X.T @ X
-                    rhs = re - X.T @ z
-                else:
-                    X, S, rhs = Bce, Ree.copy(), re
-                S[np.diag_indices_from(S)] += alpha
-                be = sla.cho_solve(sla.cho_factor(S, lower=True, check_finite=False), rhs, check_finite=False) \
-                    if extra.size else np.zeros((0, r.shape[1]))
-                bc = sla.solve_triangular(L, z - X @ be, lower=True, trans="T", check_finite=False) \
-                    if core.size else np.zeros((0, r.shape[1]))
-                out.append(np.vstack([bc, be]))
-        except np.linalg.LinAlgError:
-            return None
-        return out
+def _extended(R, r, core, extra, alpha, factor) -> np.ndarray | None:
+    """Standardised coefficients on ``[core, extra]`` at one strength from the core's factor (block Cholesky)."""
+    L, z = factor
+    Bce, re = R[np.ix_(core, extra)], r[extra]
+    S = R[np.ix_(extra, extra)]
+    if core.size:
+        X = sla.solve_triangular(L, Bce, lower=True, check_finite=False)  # L⁻¹ R_core,e
+        S = S - X.T @ X
+        rhs = re - X.T @ z
+    else:
+        X, S, rhs = Bce, S.copy(), re
+    S[np.diag_indices_from(S)] += alpha
+    try:
+        be = sla.cho_solve(sla.cho_factor(S, lower=True, check_finite=False), rhs, check_finite=False) \
+            if extra.size else np.zeros((0, r.shape[1]))
+    except np.linalg.LinAlgError:
+        return None
+    bc = sla.solve_triangular(L, z - X @ be, lower=True, trans="T", check_finite=False) if core.size else \
+        np.zeros((0, r.shape[1]))
+    return np.vstack([bc, be])
+
+
+def _fold_betas(R, r, core, extras, live, alphas) -> dict:
+    """Standardised coefficients ``{structure: [β per strength] or None}`` of one fold: one core factor at a time."""
+    out = {i: [] for i in live}
+    Rc, rc = R[np.ix_(core, core)], r[core]
+    usable = core.size == 0 or min(alphas) > _rounding_level(Rc)
+    for alpha in alphas:
+        factor = _core_factor(Rc, rc, alpha) if usable else None
+        for i in live:
+            if out[i] is None:
+                continue
+            beta = None if factor is None else _extended(R, r, core, extras[i], alpha, factor)
+            out[i] = None if beta is None else out[i] + [beta]
+    return out
 
 
 def _union_problem(probs: list[_Problem]):
@@ -122,10 +126,10 @@ def _cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
         Qxx, Qxy, Qyy, _ = uprob.centred(held, mean_from=train)
         yi = uprob.y_idx
         sst = np.diag(held.W)[yi] - held.s[yi] ** 2 / held.n
-        shared = _Shared(R, r, core, alphas)
+        found = _fold_betas(R, r, core, extras, live, alphas)
         for i in live:
             idx = np.concatenate([core, extras[i]])
-            betas = shared.betas(extras[i], alphas)
+            betas = found[i]
             if betas is None:  # no Cholesky factor: the eigen route, in this structure alone
                 betas = _ridge_path(R[np.ix_(idx, idx)], r[idx], alphas, route="eigh")[0]
             errors[i][:, f] = _errors(betas, scale[idx], Qxx[np.ix_(idx, idx)], Qxy[idx], np.diag(Qyy), sst)

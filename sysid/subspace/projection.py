@@ -12,6 +12,7 @@ import numpy as np
 from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain, markov_toeplitz
 from .gram import _Layout
+from .markov import normal_equations, pattern_blocks
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -149,17 +150,14 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """
     L, S = proj.layout, proj.S
     n, m, p = A.shape[0], L.m, L.p
-    Hs = _toeplitz_basis(A, C, L, feedthrough)
     Q = np.linalg.qr(gamma)[0]
-    P1 = Q @ Q.T
     S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
     Sc_uu, Sc_yu = proj.given_past
-    target = S_yu + P1 @ (Sc_yu - S_yu)
-    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
-    flat = Hs.reshape(Hs.shape[0], -1)
-    M = flat @ image.reshape(Hs.shape[0], -1).T
+    target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
+    # the sums over the dense basis of _toeplitz_basis, taken over its block-Toeplitz structure (markov.py)
+    M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
+                              feedthrough)
     M = 0.5 * (M + M.T)
-    rhs = flat @ target.reshape(-1)
     lam = np.linalg.eigvalsh(M)
     if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
         raise ExcitationError(
