@@ -31,14 +31,14 @@ from .arx_regression import _Problem, _ridge_path, _rounding_level
 __all__ = ["cv_errors", "cv_table"]
 
 
-def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float):
-    """``L`` with ``L Lᵀ = R_core + α I`` and ``L⁻¹ r_core`` (None when the factor does not exist)."""
+def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarray):
+    """``L`` with ``L Lᵀ = R_core + α I`` (in ``buffer``) and ``L⁻¹ r_core``; None when the factor does not exist."""
     if Rc.shape[0] == 0:
         return Rc, rc
-    K = Rc.copy()
-    K[np.diag_indices_from(K)] += alpha
+    np.copyto(buffer, Rc)
+    buffer[np.diag_indices_from(buffer)] += alpha
     try:
-        L = sla.cholesky(K, lower=True, overwrite_a=True, check_finite=False)
+        L = sla.cholesky(buffer, lower=True, overwrite_a=True, check_finite=False)
     except np.linalg.LinAlgError:
         return None
     return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
@@ -71,8 +71,9 @@ def _fold_betas(R, r, core, extras, live, alphas) -> dict:
     out = {i: [] for i in live}
     Rc, rc = R[np.ix_(core, core)], r[core]
     usable = core.size == 0 or min(alphas) > _rounding_level(Rc)
+    buffer = np.empty_like(Rc, order="F")  # re-used: a fresh core-sized array per strength costs page faults
     for alpha in alphas:
-        factor = _core_factor(Rc, rc, alpha) if usable else None
+        factor = _core_factor(Rc, rc, alpha, buffer) if usable else None
         for i in live:
             if out[i] is None:
                 continue

@@ -76,3 +76,53 @@ def test_heldout_error_through_parts_equals_the_dense_error_map():
     S = proj.S
     dense = np.mean(np.maximum(np.sum((E @ S) * E, axis=1), 0.0) / np.diag(S)[L.Yf])
     assert heldout._heldout_error(mats, S, L) == pytest.approx(dense, rel=1e-11)
+
+
+def _fit_with_route(monkeypatch, session, chol_from, **kw):
+    from stimsteer.sysid.subspace import SubspaceId
+
+    monkeypatch.setattr(projection, "_CHOLESKY_FROM", chol_from)
+    return SubspaceId(**kw).fit(session)
+
+
+def _trial_session(noise, seed=1, T=6000):
+    from stimsteer.sysid import Session
+
+    rng = np.random.default_rng(seed)
+    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
+    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
+    u = rng.standard_normal((T, 2))
+    x, y = np.zeros(3), np.zeros((T, 4))
+    for k in range(T):
+        y[k] = C @ x + noise * rng.standard_normal(4)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, 7).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
+def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(monkeypatch, weighting):
+    session = _trial_session(noise=0.3)
+    kw = dict(past_steps=6, future_steps=5, weighting=weighting)
+    eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
+    chol = _fit_with_route(monkeypatch, session, 0, **kw)
+    assert chol.order_ == eig.order_
+    rng = np.random.default_rng(2)
+    args = (rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2)))
+    a, b = eig.predict_many(*args), chol.predict_many(*args)
+    np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-8 * np.abs(a).max())
+
+
+def test_singular_covariances_take_the_eigen_route(monkeypatch):
+    # noise-free data of a 3-state system: the past covariance given the future inputs is singular, so no
+    # Cholesky factor passes the condition check and the eigen route (with its cut-off) is used: same model
+    session = _trial_session(noise=0.0)
+    kw = dict(past_steps=6, future_steps=5)
+    eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
+    chol = _fit_with_route(monkeypatch, session, 0, **kw)
+    inv = projection._PsdInverse(np.diag([1.0, 1.0, 0.0]))
+    assert inv.L is None  # a singular covariance is never factored by Cholesky
+    assert chol.order_ == eig.order_ == 3
+    rng = np.random.default_rng(2)
+    args = (rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2)))
+    np.testing.assert_allclose(chol.predict_many(*args), eig.predict_many(*args), rtol=1e-7, atol=1e-9)
