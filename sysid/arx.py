@@ -25,7 +25,7 @@ import pandas as pd
 
 from ._base import BasePredictor, check_fitted
 from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterError, SessionError
-from ._lagged import _Moments, _read_z, _stream_sums
+from ._lagged import _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
@@ -210,10 +210,7 @@ class RidgeArx(BasePredictor):
         alphas = _check_alphas(self.alphas)
         structure, structures = select_structure(self, session, candidates, alphas)
         prob = self._validated(session, structure)
-        folds, k, scheme, shift = self._accumulate(session, prob)
-        total = _Moments(prob.size)
-        for f in folds:
-            total.add(f.n, f.s, f.W)
+        folds, total, k, scheme, shift = self._accumulate(session, prob)
         self._check_rows(prob, total.n)
         table = self._cross_validate(prob, folds, total, alphas, k)
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
@@ -235,7 +232,11 @@ class RidgeArx(BasePredictor):
             if prob.fit_intercept else np.zeros(prob.c)
         sums, lo, hi = _stream_sums(session, pieces, k, L, int(self.chunk_samples), shift)
         self._check_inputs_vary(session, lo, hi)
-        return [f.moments() for f in sums], k, scheme, np.tile(shift, L + 1)
+        # folds keep their compact lag sums (a Gram each only while it is used); the total is assembled once
+        total = sums[0]
+        for f in sums[1:]:
+            total = total.plus(f)
+        return [f.lazy_moments() for f in sums], total.moments(), k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
         names = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(len(lo))))

@@ -19,7 +19,6 @@ import numpy as np
 import pandas as pd
 
 from .exceptions import InvalidParameterError
-from ._lagged import _Moments
 from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem
 
@@ -138,10 +137,7 @@ def select_structure(est, session, candidates, alphas):
         return candidates[0], None
     n_lags = max(_longest(c) for c in candidates)
     probe = est._validated(session, max(candidates, key=_longest), n_lags)
-    folds, k, _scheme, _shift = est._accumulate(session, probe)
-    total = _Moments(probe.size)
-    for f in folds:
-        total.add(f.n, f.s, f.W)
+    folds, total, k, _scheme, _shift = est._accumulate(session, probe)
     probs = [_Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags) for na, nb, d in candidates]
     n_coef = [q.x_idx.size + int(q.fit_intercept) for q in probs]
     scored = [i for i, q in enumerate(probs) if total.n >= n_coef[i]]

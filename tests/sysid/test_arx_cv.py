@@ -42,15 +42,11 @@ def _eigen_reference(prob, folds, total, alphas):
 
 
 def _moments(est, session, candidates):
-    from stimsteer.sysid._lagged import _Moments
     from stimsteer.sysid.arx_structure import _longest
 
     n_lags = max(_longest(c) for c in candidates)
     probe = est._validated(session, max(candidates, key=_longest), n_lags)
-    folds, _k, _scheme, _shift = est._accumulate(session, probe)
-    total = _Moments(probe.size)
-    for f in folds:
-        total.add(f.n, f.s, f.W)
+    folds, total, _k, _scheme, _shift = est._accumulate(session, probe)
     probs = [_Problem(probe.p, probe.m, *c, probe.fit_intercept, n_lags) for c in candidates]
     return probs, folds, total
 
