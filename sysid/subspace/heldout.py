@@ -76,15 +76,17 @@ def _heldout_error(mats, S_check: np.ndarray, layout: _Layout) -> float:
     """
     L = layout
     Obs, T = _future_maps(mats, L.f)
-    X = _initial_state_map(mats, L)
-    S_y, S_u = S_check[L.Yf], S_check[L.Uf]
-    XS = X @ S_check  # (n, nz)
-    TS_u = T @ S_u  # (p f, nz)
-    ObsXS = Obs @ XS
+    X = _initial_state_map(mats, L)[:, L.P]  # the state estimate reads the past only
+    S_yu = S_check[np.ix_(L.Yf, L.Uf)]
+    XS_p = X @ S_check[np.ix_(L.P, L.P)]
+    XS_f = X @ S_check[np.ix_(L.P, np.concatenate([L.Yf, L.Uf]))]  # (n, p f + m f)
+    ObsXS = Obs @ XS_f
+    ny = len(L.Yf)
     # diag(E S Eᵀ) with E = E_Yf − T E_Uf − Obs X, term by term
-    err = (np.diagonal(S_y[:, L.Yf]) + np.sum(TS_u[:, L.Uf] * T, axis=1) + np.sum((Obs @ (XS @ X.T)) * Obs, axis=1)
-           - 2.0 * np.sum(TS_u[:, L.Yf] * np.eye(len(L.Yf)), axis=1) - 2.0 * np.diagonal(ObsXS[:, L.Yf])
-           + 2.0 * np.sum(ObsXS[:, L.Uf] * T, axis=1))
+    err = (np.diagonal(S_check)[L.Yf] + np.sum((T @ S_check[np.ix_(L.Uf, L.Uf)]) * T, axis=1)
+           + np.sum((Obs @ (XS_p @ X.T)) * Obs, axis=1)
+           - 2.0 * np.sum(T * S_yu, axis=1) - 2.0 * np.diagonal(ObsXS[:, :ny])
+           + 2.0 * np.sum(ObsXS[:, ny:] * T, axis=1))
     err = np.maximum(err, 0.0)
     power = np.diag(S_check)[L.Yf]
     return float(np.mean(err / np.maximum(power, np.finfo(float).tiny)))
