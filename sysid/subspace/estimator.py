@@ -241,7 +241,7 @@ class SubspaceId(BasePredictor):
 
     def _identify(self, session, cfg, grams, scale, how) -> None:
         L = cfg["layout"]
-        S_all, S_fit, S_check = (self._scaled(G, N, scale) for G, N in grams)
+        S_all, S_fit, S_check = [self._scaled(G, N, scale) for G, N in grams]
         for S in (S_all, S_fit):
             self._check_excitation(S, L)
         proj_all = _Projection(S_all, L, self.weighting)
@@ -302,8 +302,12 @@ class SubspaceId(BasePredictor):
 
     @staticmethod
     def _scaled(G, N, scale) -> np.ndarray:
+        """``G / N`` with every channel scaled to unit RMS, in place (the Grams are not used unscaled again)."""
         s = np.tile(scale, G.shape[0] // scale.size)
-        return G / N / np.outer(s, s)
+        G /= N
+        G /= s[:, None]
+        G /= s[None, :]
+        return G
 
     @staticmethod
     def _supported(sv_all, sv_fit, cfg) -> int:

@@ -146,11 +146,6 @@ class _Projection:
         return (_conditional(S, L.Uf, L.Uf, L.P, self._past), _conditional(S, L.Yf, L.Uf, L.P, self._past))
 
     @functools.cached_property
-    def S_next_past(self) -> np.ndarray:
-        """``S`` on the rows and columns of the past one block longer (``P1``)."""
-        return self.S[np.ix_(self.layout.P1, self.layout.P1)]
-
-    @functools.cached_property
     def theta_next(self) -> np.ndarray:
         """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
         S, L = self.S, self.layout
@@ -251,11 +246,12 @@ def _noise(proj: _Projection, gamma, A, B, C, D):
     L, S = proj.layout, proj.S
     X0, X1 = _state_maps(proj, gamma)
     Eu, Ey = L.select(L.u0), L.select(L.y0)
-    # every map lives on the columns of the past one block longer (P1 holds u0 and y0): S restricted to them
-    cols = L.P1
-    Wmap = (X1 - A @ X0 - B @ Eu)[:, cols]
-    Vmap = (Ey - C @ X0 - D @ Eu)[:, cols]
-    WS, VS = Wmap @ proj.S_next_past, Vmap @ proj.S_next_past
+    # every map lives on the columns of the past one block longer (P1 holds u0 and y0), the leading k rows and
+    # columns of the time-major Hankel layout: S restricted to them is a view
+    k = (L.i + 1) * L.c
+    Wmap = (X1 - A @ X0 - B @ Eu)[:, :k]
+    Vmap = (Ey - C @ X0 - D @ Eu)[:, :k]
+    WS, VS = Wmap @ S[:k, :k], Vmap @ S[:k, :k]
     Q, R, Sx = WS @ Wmap.T, VS @ Vmap.T, WS @ Vmap.T
     return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
 
