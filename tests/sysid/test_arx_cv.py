@@ -101,3 +101,23 @@ def test_select_structure_scores_every_candidate_on_the_shared_rows():
     structure, table = select_structure(est, session, candidates, np.logspace(-8, 0, 9))
     assert structure == (1, 1, 2)  # the simulated system: one output lag, one input at delay 2
     assert len(table) == len(candidates) and table["mean_error"].notna().all()
+
+
+def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(monkeypatch):
+    from stimsteer.sysid import arx_regression
+
+    session = _session(seed=4)
+    kw = dict(output_lags="auto", input_lags="auto", delay_samples="auto", lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    fast = RidgeArx(**kw).fit(session)
+    # every factorisation refused: the eigen route of before, in the CV and in the final fit
+    monkeypatch.setattr(arx_cv, "_core_factor", lambda *a, **k: None)
+    monkeypatch.setattr(arx_regression, "chol_ridge_path", lambda *a, **k: None)
+    slow = RidgeArx(**kw).fit(session)
+    assert (fast.output_lags_, fast.input_lags_, fast.delay_samples_, fast.alpha_) == \
+        (slow.output_lags_, slow.input_lags_, slow.delay_samples_, slow.alpha_)
+    np.testing.assert_allclose(fast.cv_table_.to_numpy(), slow.cv_table_.to_numpy(), rtol=1e-9)
+    assert fast.condition_number_ == pytest.approx(slow.condition_number_, rel=1e-9)
+    rng = np.random.default_rng(1)
+    args = (rng.standard_normal((3, 5, 2)), rng.standard_normal((3, 5, 3)), rng.standard_normal((3, 7, 2)))
+    a, b = slow.predict_many(*args), fast.predict_many(*args)
+    np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-10 * np.abs(a).max())
