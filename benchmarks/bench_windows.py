@@ -174,27 +174,31 @@ def window_table(path: str, windows, methods, timeout: float) -> None:
 
 
 def growth_table(path: str, pasts, methods, timeout: float, horizon: int = 50) -> None:
-    """Fit time at each past window (horizon fixed) and the slope of log time against log past."""
+    """Fit time at each past window (horizon fixed) and the slope of log time against log past.
+
+    Each fit's ratio is to the Gram with its own lag count (``past`` for ridge ARX, ``past + horizon`` otherwise).
+    """
     print(f"| past (horizon {horizon}) | " + " | ".join(f"{METHODS[m][2]}: fit, x Gram" for m in methods)
-          + " | Gram (past + horizon lags) | load |")
-    print("|" + " --- |" * (len(methods) + 3))
+          + " | Gram, past lags | Gram, past + horizon lags | load |")
+    print("|" + " --- |" * (len(methods) + 4))
     times = {m: [] for m in methods + ["gram"]}
     for past in pasts:
-        ref = run_child(["gram", path, past + horizon], timeout)
-        times["gram"].append(ref.get("seconds", float("nan")))
+        refs = {lags: run_child(["gram", path, lags], timeout) for lags in (past, past + horizon)}
+        times["gram"].append(refs[past + horizon].get("seconds", float("nan")))
         cells = []
         for method in methods:
+            ref = refs[past if method == "arx" else past + horizon]
             r = run_child([method, path, past, horizon], timeout)
             times[method].append(r.get("seconds", float("nan")))
             cells.append("killed" if r.get("killed") else (r.get("error", "?")[:40] if "error" in r else
                          f"{r['seconds']:.2f} s, {r['seconds'] / ref.get('seconds', float('nan')):.1f}x"))
-        gram = f"{ref['seconds']:.3f} s" if "seconds" in ref else "?"
-        print(f"| {past} | " + " | ".join(cells) + f" | {gram} | {_load():.1f} |", flush=True)
+        grams = " | ".join(f"{refs[k]['seconds']:.3f} s" if "seconds" in refs[k] else "?" for k in refs)
+        print(f"| {past} | " + " | ".join(cells) + f" | {grams} | {_load():.1f} |", flush=True)
     for name in methods + ["gram"]:
         t = times[name]
         steps = ", ".join(f"{a}->{b}: {_slope([a, b], t[i:i + 2]):.2f}" for i, (a, b) in
                           enumerate(zip(pasts[:-1], pasts[1:])))
-        label = METHODS[name][2] if name in METHODS else "Gram reference"
+        label = METHODS[name][2] if name in METHODS else "Gram reference (past + horizon lags)"
         print(f"# slope of log time vs log past, {label}: {_slope(pasts, t):.2f} overall ({steps})")
 
 

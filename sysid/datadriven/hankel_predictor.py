@@ -76,19 +76,10 @@ def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
     return M
 
 
-def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray) -> np.ndarray:
-    """Minimisers ``g`` (one column per column of ``B = [u_past; y_past; u_future]``) of the ℓ2 / projection problem.
-
-    KKT system of ``min λ_y ||Yp g − y_p||² + λ_g gᵀ M g  s.t.  [Up; Uf] g = [u_p; u_f]``::
-
-        [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
-        [A                   0 ] [ν] = [u_p; u_f  ]
-
-    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
-    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
-    """
+def _kkt_system(blocks: HankelBlocks, M, lam_g: float, lam_y: float):
+    """The symmetric KKT matrix of :func:`_kkt_map` and its constraint scaling ``β``."""
     Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
-    r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
+    r = Up.shape[1]
     A = np.vstack([Up, Uf])
     K = np.zeros((r + A.shape[0], r + A.shape[0]))
     K[:r, :r] = lam_y * (Yp.T @ Yp)
@@ -100,20 +91,57 @@ def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray)
     beta = np.abs(K[:r, :r]).max() / max(np.abs(A).max(), np.finfo(float).tiny)
     K[:r, r:] = beta * A.T
     K[r:, :r] = beta * A
-    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
+    return K, beta
+
+
+def _solve_kkt(K, rhs, lam_g: float, lam_y: float) -> np.ndarray:
+    """``K⁻¹ rhs``; an ill-conditioned system (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning`
+    and solved anyway."""
     with warnings.catch_warnings():
         warnings.simplefilter("error", sla.LinAlgWarning)
         try:
-            return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+            return sla.solve(K, rhs, assume_a="sym", check_finite=False)
         except sla.LinAlgWarning:
             pass
     warnings.warn(ConditioningWarning(
         f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
         f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
-    ), stacklevel=6)
+    ), stacklevel=7)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", sla.LinAlgWarning)
-        return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
+        return sla.solve(K, rhs, assume_a="sym", check_finite=False)
+
+
+def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray) -> np.ndarray:
+    """Minimisers ``g`` (one column per column of ``B = [u_past; y_past; u_future]``) of the ℓ2 / projection problem.
+
+    KKT system of ``min λ_y ||Yp g − y_p||² + λ_g gᵀ M g  s.t.  [Up; Uf] g = [u_p; u_f]``::
+
+        [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
+        [A                   0 ] [ν] = [u_p; u_f  ]
+
+    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
+    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
+    """
+    Up, Yp = blocks.Up, blocks.Yp
+    r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
+    K, beta = _kkt_system(blocks, M, lam_g, lam_y)
+    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
+    return _solve_kkt(K, rhs, lam_g, lam_y)[:r]
+
+
+def _kkt_predictor(blocks: HankelBlocks, M, lam_g: float, lam_y: float) -> np.ndarray:
+    """``Yf g(B)`` as one matrix over ``B = [u_past; y_past; u_future]``: ``Yf @ _kkt_map(..., I)``.
+
+    With ``K`` symmetric, ``Yf [I 0] K⁻¹ R = Xᵀ R`` for ``X = K⁻¹ [Yfᵀ; 0]``: one solve with ``p N`` right-hand
+    sides (the predicted outputs) instead of one per column of ``B`` (``(m + p) Tini + m N``), and ``R`` (the
+    right-hand side of a unit ``B``) is applied in closed form.
+    """
+    Up, Yp, Uf, Yf = blocks.Up, blocks.Yp, blocks.Uf, blocks.Yf
+    r, nu = Up.shape[1], Up.shape[0]
+    K, beta = _kkt_system(blocks, M, lam_g, lam_y)
+    X = _solve_kkt(K, np.vstack([Yf.T, np.zeros((K.shape[0] - r, Yf.shape[0]))]), lam_g, lam_y)
+    return np.hstack([beta * X[r:r + nu].T, lam_y * (X[:r].T @ Yp.T), beta * X[r + nu:].T])
 
 
 class HankelPredictor(_DirectPredictor):
@@ -320,13 +348,13 @@ class HankelPredictor(_DirectPredictor):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         blocks = HankelBlocks.from_matrix(train.factor, m, p, past, N, True)
         M = _projection_complement(blocks.D, train.n_columns) if self.regularizer == "projection" else None
-        scale, n_b = _data_scale(train.factor), blocks.D.shape[0]
+        scale = _data_scale(train.factor)
         out = []
         for rel in lambdas:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", ConditioningWarning)
                 try:
-                    G = blocks.Yf @ _kkt_map(blocks, M, rel * scale, lam_y, np.eye(n_b))
+                    G = _kkt_predictor(blocks, M, rel * scale, lam_y)
                 except np.linalg.LinAlgError:
                     out.append(np.inf)
                     continue
@@ -435,9 +463,7 @@ class HankelPredictor(_DirectPredictor):
     def _prediction_map(self) -> np.ndarray:
         if getattr(self, "_map_cache", None) is None:
             M = None if self.regularizer_ == "l2" else self.reg_matrix_
-            n_b = self.blocks_.Up.shape[0] + self.blocks_.Yp.shape[0] + self.blocks_.Uf.shape[0]
-            self._map_cache = self._unscaled(self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_,
-                                                                        self.lambda_y_, np.eye(n_b)))
+            self._map_cache = self._unscaled(_kkt_predictor(self.blocks_, M, self.lambda_g_, self.lambda_y_))
         return self._map_cache
 
     def _solve(self, b: np.ndarray) -> np.ndarray:
