@@ -40,7 +40,7 @@ def shifted_gram(h: np.ndarray) -> np.ndarray:
     f, _p, nc = h.shape
     G = np.empty((f, f, nc, nc))
     for delta in range(f):
-        cs = np.cumsum(np.einsum("tpa,tpb->tab", h[delta:], h[: f - delta]), axis=0)
+        cs = np.cumsum(np.matmul(h[delta:].transpose(0, 2, 1), h[: f - delta]), axis=0)
         sp = np.arange(delta, f)
         block = cs[f - 1 - sp]
         G[sp - delta, sp] = block
@@ -51,8 +51,9 @@ def shifted_gram(h: np.ndarray) -> np.ndarray:
 def projected_patterns(Q: np.ndarray, h: np.ndarray) -> np.ndarray:
     """``Φ[s] = Qᵀ Hc_s``, shape (f, q, nc): ``Σ_t Q_{s+t}ᵀ h[t]`` (``Q_r`` = block row ``r`` of ``Q``)."""
     f, p, nc = h.shape
-    Qb = Q.reshape(f, p, Q.shape[1])
-    return np.stack([np.einsum("tpq,tpc->qc", Qb[s:], h[: f - s]) for s in range(f)])
+    q = Q.shape[1]
+    # block rows s.. of Q against the first f − s blocks of h: one matrix product per shift
+    return np.stack([Q[s * p:].T @ h[: f - s].reshape(-1, nc) for s in range(f)]).reshape(f, q, nc)
 
 
 def _contract(G: np.ndarray, S4: np.ndarray) -> np.ndarray:
@@ -66,7 +67,9 @@ def normal_equations(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool
     f, p, nc = h.shape
     S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
     Phi = projected_patterns(Q, h)
-    G2 = np.einsum("sqa,tqb->stab", Phi, Phi)
+    q = Phi.shape[1]
+    Pm = Phi.transpose(1, 0, 2).reshape(q, f * nc)
+    G2 = (Pm.T @ Pm).reshape(f, nc, f, nc).transpose(0, 2, 1, 3)  # G2[s, t] = Φ[s]ᵀ Φ[t]
     M = _contract(shifted_gram(h), S4) + _contract(G2, D4)
     T4 = target.reshape(f, p, f, m)  # [r, a, s, l]
     rhs = np.zeros((nc, m))
