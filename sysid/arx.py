@@ -25,7 +25,7 @@ import pandas as pd
 
 from ._base import BasePredictor, check_fitted
 from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterError, SessionError
-from ._lagged import _read_z, _stream_sums
+from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
@@ -41,6 +41,8 @@ __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
 #: ten of float64's sixteen significant digits are lost in the solve (common practice, no source).
 CONDITION_WARN_LIMIT = 1e10
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
+#: Lagged Grams up to this size are summed fold by fold (as before the compact folds; cheap at this size).
+_SMALL_GRAM = 1024
 
 
 class RidgeArx(BasePredictor):
@@ -232,11 +234,19 @@ class RidgeArx(BasePredictor):
             if prob.fit_intercept else np.zeros(prob.c)
         sums, lo, hi = _stream_sums(session, pieces, k, L, int(self.chunk_samples), shift)
         self._check_inputs_vary(session, lo, hi)
-        # folds keep their compact lag sums (a Gram each only while it is used); the total is assembled once
-        total = sums[0]
-        for f in sums[1:]:
-            total = total.plus(f)
-        return [f.lazy_moments() for f in sums], total.moments(), k, scheme, np.tile(shift, L + 1)
+        # folds keep their compact lag sums (a Gram each only while it is used); the total is assembled once from
+        # the summed lag sums, or (small Grams) as the sum of the folds' Grams, bit for bit the moments of before
+        folds = [f.lazy_moments() for f in sums]
+        if prob.size <= _SMALL_GRAM:
+            total = _Moments(prob.size)
+            for f in folds:
+                total.add(f.n, f.s, f.W)
+        else:
+            total = sums[0]
+            for f in sums[1:]:
+                total = total.plus(f)
+            total = total.moments()
+        return folds, total, k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
         names = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(len(lo))))

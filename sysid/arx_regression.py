@@ -57,6 +57,11 @@ def _block_pieces(segs, n_folds: int):
 
 
 # ------------------------------------------------------------------------------------------------ solving
+#: From this many regressors on, the final ridge solve takes the Cholesky route (below it the eigendecomposition is
+#: cheap, and its results are those of before, bit for bit).
+_CHOLESKY_FROM = 512
+
+
 def _rounding_level(R: np.ndarray) -> float:
     """An upper bound of the eigen route's cut-off ``λ_max · d · eps`` (``λ_max <= tr R`` for a PSD ``R``)."""
     return float(max(np.trace(R), 0.0)) * R.shape[0] * np.finfo(float).eps
@@ -84,7 +89,8 @@ def chol_ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> list[np.ndarray] | 
 def _ridge_path(R: np.ndarray, r: np.ndarray, alphas, route: str = "auto") -> tuple[list[np.ndarray], np.ndarray]:
     """Solutions of ``(R + α I) β = r`` for each α, and the condition numbers ``(λ_max + α) / (λ_min + α)``.
 
-    By a Cholesky factorisation per α with the eigenvalues alone (``route="auto"``, much cheaper than the
+    By a Cholesky factorisation per α with the eigenvalues alone (``route="auto"``, from ``_CHOLESKY_FROM``
+    regressors on; much cheaper than the
     eigenvectors: the tridiagonal reduction's back-transformation and the eigenvector solver are skipped), or from
     one eigendecomposition of the symmetric ``R`` (``route="eigh"``, taken as well when a strength is at the
     rounding level of ``R`` or a factor does not exist). Eigenvalues at or below ``d · eps · λ_max`` are treated
@@ -93,7 +99,7 @@ def _ridge_path(R: np.ndarray, r: np.ndarray, alphas, route: str = "auto") -> tu
     from .hankel import _single_blas_thread
 
     with _single_blas_thread():  # multi-threaded OpenBLAS stalls on a busy machine (bench_windows: 2-5x slower)
-        betas = chol_ridge_path(R, r, alphas) if route == "auto" else None
+        betas = chol_ridge_path(R, r, alphas) if route == "auto" and R.shape[0] >= _CHOLESKY_FROM else None
         if betas is None:
             lam, V = np.linalg.eigh(R)
         else:

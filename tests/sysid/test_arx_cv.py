@@ -67,8 +67,8 @@ def test_shared_core_errors_equal_the_eigen_route_for_every_structure(alphas):
 
 def test_structure_search_and_cv_need_no_eigenvectors(monkeypatch):
     # The old route made one eigendecomposition (with eigenvectors) per structure and fold, and per fold again for
-    # the chosen structure: 28 structures x 5 folds + 5 + 1 here. Now: none (Cholesky factors; eigenvalues only for
-    # the condition number of the final fit).
+    # the chosen structure: 28 structures x 5 folds + 5 + 1 here. Now: Cholesky factors for every structure and
+    # fold; one eigendecomposition at most, of the final fit (below 512 regressors, as before).
     calls = []
     real = np.linalg.eigh
     monkeypatch.setattr(np.linalg, "eigh", lambda *a, **k: calls.append(a[0].shape) or real(*a, **k))
@@ -76,7 +76,7 @@ def test_structure_search_and_cv_need_no_eigenvectors(monkeypatch):
     est = RidgeArx(output_lags="auto", input_lags=(2), delay_samples="auto", lag_grid=(1, 2, 3, 4, 6, 8, 10),
                    delay_grid=(0, 1, 2, 3)).fit(session)
     assert est.delay_samples_ == 2 and est.output_lags_ >= 1
-    assert calls == []
+    assert len(calls) <= 1
 
 
 def test_singular_gram_falls_back_to_the_eigen_route_with_the_same_choice():
@@ -108,6 +108,7 @@ def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(mon
 
     session = _session(seed=4)
     kw = dict(output_lags="auto", input_lags="auto", delay_samples="auto", lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)  # the final solve by Cholesky even at this size
     fast = RidgeArx(**kw).fit(session)
     # every factorisation refused: the eigen route of before, in the CV and in the final fit
     monkeypatch.setattr(arx_cv, "_core_factor", lambda *a, **k: None)
