@@ -305,8 +305,8 @@ class SubspaceId(BasePredictor):
         """``G / N`` with every channel scaled to unit RMS, in place (the Grams are not used unscaled again)."""
         s = np.tile(scale, G.shape[0] // scale.size)
         G /= N
-        G /= s[:, None]
-        G /= s[None, :]
+        for a in range(0, G.shape[0], 512):  # ÷ (s_i s_j), as G / N / outer(s, s), a band of rows at a time
+            G[a:a + 512] /= np.outer(s[a:a + 512], s)
         return G
 
     @staticmethod
