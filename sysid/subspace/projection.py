@@ -69,12 +69,13 @@ class _PsdInverse:
                 pass
         if self.L is None:
             self.V, self.lam = _psd_parts(M)
+            self.pinv = (self.V / self.lam) @ self.V.T
 
-    def solve(self, B: np.ndarray) -> np.ndarray:
-        """``M⁺ B``."""
+    def times(self, X: np.ndarray) -> np.ndarray:
+        """``X M⁺`` (on the eigen route the product with the explicit pseudo-inverse, as before)."""
         if self.L is not None:
-            return sla.cho_solve((self.L, True), B, check_finite=False)
-        return (self.V / self.lam) @ (self.V.T @ B)
+            return sla.cho_solve((self.L, True), X.T, check_finite=False).T
+        return X @ self.pinv
 
     def root(self) -> np.ndarray:
         """A factor ``F`` with ``F Fᵀ = M`` (on the retained eigen-directions)."""
@@ -90,7 +91,7 @@ class _PsdInverse:
 def _conditional(S: np.ndarray, a, b, given, inverse: _PsdInverse | None = None) -> np.ndarray:
     """``S_ab − S_a,g S_gg⁺ S_g,b``: the covariance of the parts of ``a`` and ``b`` not explained by ``given``."""
     inv = _PsdInverse(S[np.ix_(given, given)]) if inverse is None else inverse
-    return S[np.ix_(a, b)] - S[np.ix_(a, given)] @ inv.solve(S[np.ix_(given, b)])
+    return S[np.ix_(a, b)] - inv.times(S[np.ix_(a, given)]) @ S[np.ix_(given, b)]
 
 
 class _Projection:
@@ -117,7 +118,7 @@ class _Projection:
         Sc_yp = _conditional(S, L.Yf, L.P, L.Uf)
         inv_pp = _PsdInverse(Sc_pp)
         del Sc_pp
-        self.theta = inv_pp.solve(Sc_yp.T).T
+        self.theta = inv_pp.times(Sc_yp)
         w_inv = None
         if weighting == "n4sid":
             mat = self.theta @ self._past.root()
@@ -150,7 +151,7 @@ class _Projection:
         """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
         S, L = self.S, self.layout
         inv = _PsdInverse(_conditional(S, L.P1, L.P1, L.Uf1))
-        return inv.solve(_conditional(S, L.P1, L.Yf1, L.Uf1)).T
+        return inv.times(_conditional(S, L.Yf1, L.P1, L.Uf1))
 
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
@@ -192,6 +193,20 @@ def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
     return Hs
 
 
+#: Largest dense Toeplitz basis (doubles) :func:`_b_d` builds; beyond it the structured sums of markov.py are used.
+_DENSE_BASIS_MAX = 2_000_000
+
+
+def _dense_normal_equations(A, C, L: _Layout, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu):
+    """``M`` and ``rhs`` of the ``B, D`` least squares from one dense basis matrix per unknown."""
+    Hs = _toeplitz_basis(A, C, L, feedthrough)
+    P1 = Q @ Q.T
+    target = S_yu + P1 @ (Sc_yu - S_yu)
+    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
+    flat = Hs.reshape(Hs.shape[0], -1)
+    return flat @ image.reshape(Hs.shape[0], -1).T, flat @ target.reshape(-1)
+
+
 def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
 
@@ -207,10 +222,12 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     Q = np.linalg.qr(gamma)[0]
     S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
     Sc_uu, Sc_yu = proj.given_past
-    target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
-    # the sums over the dense basis of _toeplitz_basis, taken over its block-Toeplitz structure (markov.py)
-    M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
-                              feedthrough)
+    if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
+        M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
+    else:  # the same sums taken over the block-Toeplitz structure (markov.py)
+        target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
+        M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
+                                  feedthrough)
     M = 0.5 * (M + M.T)
     lam = np.linalg.eigvalsh(M)
     if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
@@ -248,11 +265,11 @@ def _noise(proj: _Projection, gamma, A, B, C, D):
     Eu, Ey = L.select(L.u0), L.select(L.y0)
     # every map lives on the columns of the past one block longer (P1 holds u0 and y0), the leading k rows and
     # columns of the time-major Hankel layout: S restricted to them is a view
-    k = (L.i + 1) * L.c
+    k = (L.i + 1) * L.c if L.nz >= _CHOLESKY_FROM else L.nz  # (small: the whole of S, as before)
     Wmap = (X1 - A @ X0 - B @ Eu)[:, :k]
     Vmap = (Ey - C @ X0 - D @ Eu)[:, :k]
-    WS, VS = Wmap @ S[:k, :k], Vmap @ S[:k, :k]
-    Q, R, Sx = WS @ Wmap.T, VS @ Vmap.T, WS @ Vmap.T
+    Sk = S[:k, :k]
+    Q, R, Sx = Wmap @ Sk @ Wmap.T, Vmap @ Sk @ Vmap.T, Wmap @ Sk @ Vmap.T
     return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
 
 
