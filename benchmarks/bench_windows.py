@@ -13,7 +13,15 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
 2. the reference: one lagged Gram of the raw data with the same lag count (``past + horizon`` lags; ``past`` for
    ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, one BLAS thread): the
    products any exact Gram of the lagged data must compute;
-3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50).
+3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50);
+4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
+   horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 2 sites, same trials), and the slope
+   of log time against log past window between neighbouring windows and over all of them (least squares), beside
+   the same slope of the Gram reference. A slope near 2 is set by the Gram's (rows)² size; one near 3 by the
+   factorisations of Gram-sized matrices (Cholesky, eigendecomposition), which no exact fit of every coefficient
+   avoids.
+
+Every row carries the 1-minute load average when it was printed (timings on a busy machine are slower and noisier).
 
 A case that exceeds ``--timeout`` seconds is killed and printed as such (on a loaded machine, say so).
 
@@ -21,6 +29,7 @@ Usage::
 
     python benchmarks/bench_windows.py                       # both windows, every method
     python benchmarks/bench_windows.py --windows 10:20 --methods lsq hankel --timeout 300
+    python benchmarks/bench_windows.py --windows --growth      # the cost growth only
 """
 
 from __future__ import annotations
@@ -43,11 +52,12 @@ METHODS = {"arx": ("indirect", "arx", "ridge ARX"), "subspace": ("indirect", "su
 
 
 # ------------------------------------------------------------------------------------------------ setup
-def make_session(seed: int):
+def make_session(seed: int, n_contacts: int = 20, n_sites: int = 3):
     """The demo network at 1 kHz: 3 sites, 20 contacts, 25 trials of 2.5 s (seeded)."""
     from stimsteer.demo_data.make_demo import Scenario, make_demo
 
-    sc = Scenario(sample_rate_hz=1000.0, n_contacts=20, n_sites=3, n_trials=25, trial_s=2.5, rest_s=0.0)
+    sc = Scenario(sample_rate_hz=1000.0, n_contacts=n_contacts, n_sites=n_sites, n_trials=25, trial_s=2.5,
+                  rest_s=0.0)
     session, _plant = make_demo(seed, scenario=sc)
     return session
 
@@ -134,12 +144,74 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
     return text
 
 
+def _load() -> float:
+    return os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+
+
+def _slope(pasts, seconds) -> float:
+    """Least-squares slope of log(time) against log(past window) over the finite points (NaN with fewer than 2)."""
+    import numpy as np
+
+    x, y = np.log(np.asarray(pasts, float)), np.asarray(seconds, float)
+    ok = np.isfinite(y) & (y > 0)
+    return float(np.polyfit(x[ok], np.log(y[ok]), 1)[0]) if ok.sum() >= 2 else float("nan")
+
+
+def window_table(path: str, windows, methods, timeout: float) -> None:
+    """Fit time, memory and Gram ratio of each method at each ``past:horizon`` window."""
+    print("| method | past / horizon | fit | Gram reference | load |")
+    print("| --- | --- | --- | --- | --- |")
+    for window in windows:
+        past, horizon = (int(v) for v in window.split(":"))
+        refs = {}
+        for method in methods:
+            lags = past if method == "arx" else past + horizon
+            if lags not in refs:
+                refs[lags] = run_child(["gram", path, lags], timeout)
+            r = run_child([method, path, past, horizon], timeout)
+            print(f"| {METHODS[method][2]} | {past} / {horizon} | {_fmt(r, refs[lags])} | "
+                  f"{lags} lags: {_fmt(refs[lags])} | {_load():.1f} |", flush=True)
+
+
+def growth_table(path: str, pasts, methods, timeout: float, horizon: int = 50) -> None:
+    """Fit time at each past window (horizon fixed) and the slope of log time against log past.
+
+    Each fit's ratio is to the Gram with its own lag count (``past`` for ridge ARX, ``past + horizon`` otherwise).
+    """
+    print(f"| past (horizon {horizon}) | " + " | ".join(f"{METHODS[m][2]}: fit, x Gram" for m in methods)
+          + " | Gram, past lags | Gram, past + horizon lags | load |")
+    print("|" + " --- |" * (len(methods) + 4))
+    times = {m: [] for m in methods + ["gram"]}
+    for past in pasts:
+        refs = {lags: run_child(["gram", path, lags], timeout) for lags in (past, past + horizon)}
+        times["gram"].append(refs[past + horizon].get("seconds", float("nan")))
+        cells = []
+        for method in methods:
+            ref = refs[past if method == "arx" else past + horizon]
+            r = run_child([method, path, past, horizon], timeout)
+            times[method].append(r.get("seconds", float("nan")))
+            cells.append("killed" if r.get("killed") else (r.get("error", "?")[:40] if "error" in r else
+                         f"{r['seconds']:.2f} s, {r['seconds'] / ref.get('seconds', float('nan')):.1f}x"))
+        grams = " | ".join(f"{refs[k]['seconds']:.3f} s" if "seconds" in refs[k] else "?" for k in refs)
+        print(f"| {past} | " + " | ".join(cells) + f" | {grams} | {_load():.1f} |", flush=True)
+    for name in methods + ["gram"]:
+        t = times[name]
+        steps = ", ".join(f"{a}->{b}: {_slope([a, b], t[i:i + 2]):.2f}" for i, (a, b) in
+                          enumerate(zip(pasts[:-1], pasts[1:])))
+        label = METHODS[name][2] if name in METHODS else "Gram reference (past + horizon lags)"
+        print(f"# slope of log time vs log past, {label}: {_slope(pasts, t):.2f} overall ({steps})")
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--windows", nargs="+", default=["10:20", "100:50"], help="past:horizon pairs")
+    ap.add_argument("--windows", nargs="*", default=["10:20", "100:50"], help="past:horizon pairs (none: skip)")
     ap.add_argument("--methods", nargs="+", default=list(METHODS), choices=list(METHODS))
     ap.add_argument("--timeout", type=float, default=600.0, help="seconds per case before it is killed")
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--growth", action="store_true", help="also print the cost growth over past windows")
+    ap.add_argument("--growth-methods", nargs="+", default=["arx", "subspace"], choices=list(METHODS))
+    ap.add_argument("--growth-past", nargs="+", type=int, default=[25, 50, 100, 200])
+    ap.add_argument("--growth-contacts", type=int, default=8, help="recorded channels of the growth session")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
@@ -147,30 +219,25 @@ def main(argv=None) -> int:
         out = child_gram(path, int(rest[0])) if kind == "gram" else child_fit(path, kind, int(rest[0]), int(rest[1]))
         print(json.dumps(out))
         return 0
-    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
-    print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {load:.1f} at the start")
+    print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {_load():.1f} at the start")
     from stimsteer.sysid.io import save_session
 
     with tempfile.TemporaryDirectory() as tmp:
-        path = str(Path(tmp) / "session.h5")
-        session = make_session(args.seed)
-        save_session(session, path)
-        print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, {session.n_outputs} outputs, "
-              f"{len(session.trials)} trials; timeout {args.timeout:.0f} s per case")
-        print("| method | past / horizon | fit | Gram reference |")
-        print("| --- | --- | --- | --- |")
-        for window in args.windows:
-            past, horizon = (int(v) for v in window.split(":"))
-            refs = {}
-            for method in args.methods:
-                lags = past if method == "arx" else past + horizon
-                if lags not in refs:
-                    refs[lags] = run_child(["gram", path, lags], args.timeout)
-                r = run_child([method, path, past, horizon], args.timeout)
-                print(f"| {METHODS[method][2]} | {past} / {horizon} | {_fmt(r, refs[lags])} | "
-                      f"{lags} lags: {_fmt(refs[lags])} |", flush=True)
-    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
-    print(f"# load average {load:.1f} at the end")
+        if args.windows:
+            path = str(Path(tmp) / "session.h5")
+            session = make_session(args.seed)
+            save_session(session, path)
+            print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, "
+                  f"{session.n_outputs} outputs, {len(session.trials)} trials; timeout {args.timeout:.0f} s per case")
+            window_table(path, args.windows, args.methods, args.timeout)
+        if args.growth:
+            path = str(Path(tmp) / "growth.h5")
+            session = make_session(args.seed, n_contacts=args.growth_contacts, n_sites=2)
+            save_session(session, path)
+            print(f"# growth session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, "
+                  f"{session.n_outputs} outputs; timeout {args.timeout:.0f} s per case")
+            growth_table(path, args.growth_past, args.growth_methods, args.timeout)
+    print(f"# load average {_load():.1f} at the end")
     return 0
 
 

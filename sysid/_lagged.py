@@ -170,18 +170,40 @@ class _LagSums:
         out.windows = self.windows + [(sign * s, w) for s, w in other.windows]
         return out
 
-    def moments(self) -> _Moments:
-        """Row count, sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over the rows."""
+    def lagged_sums(self) -> np.ndarray:
+        """``sum_k w_k`` of the full lagged vector over the rows."""
         Lp1, c = self.X.shape[0], self.X.shape[1]
-        out = _Moments(Lp1 * c)
-        out.n = self.n
         # sum_k Z_{k-a} = S + Σ_windows sign Σ_{j=1}^{a} W[L-j]
         e = np.zeros((Lp1, c))
         for sign, w in self.windows:
             e[1:] += sign * np.cumsum(w[::-1], axis=0)
-        out.s = (self.S[None, :] + e).reshape(-1)
+        return (self.S[None, :] + e).reshape(-1)
+
+    def moments(self) -> _Moments:
+        """Row count, sums and Gram of the full lagged vector ``w_k = [Z_k; ...; Z_{k-L}]`` over the rows."""
+        out = _Moments(self.X.shape[0] * self.X.shape[1])
+        out.n = self.n
+        out.s = self.lagged_sums()
         out.W = _lagged_gram(self)
         return out
+
+    def lazy_moments(self) -> "_LazyMoments":
+        """The moments with the Gram assembled each time it is asked for (memory: the compact sums only)."""
+        return _LazyMoments(self)
+
+
+class _LazyMoments:
+    """Row count and sums of a fold's lagged vectors; its Gram ``W`` assembled from the compact sums on each access
+    (a fold held this way costs ``(L + 1) c²`` numbers instead of ``((L + 1) c)²``)."""
+
+    def __init__(self, sums: _LagSums):
+        self.sums = sums
+        self.n = sums.n
+        self.s = sums.lagged_sums()
+
+    @property
+    def W(self) -> np.ndarray:
+        return _lagged_gram(self.sums)
 
 
 def _edge_correction(windows, n_lags: int, c: int) -> list:

@@ -28,6 +28,7 @@ from .exceptions import ConditioningWarning, ExcitationError, InvalidParameterEr
 from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
+from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
@@ -40,6 +41,8 @@ __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
 #: ten of float64's sixteen significant digits are lost in the solve (common practice, no source).
 CONDITION_WARN_LIMIT = 1e10
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
+#: Lagged Grams up to this size are summed fold by fold (as before the compact folds; cheap at this size).
+_SMALL_GRAM = 1024
 
 
 class RidgeArx(BasePredictor):
@@ -209,10 +212,7 @@ class RidgeArx(BasePredictor):
         alphas = _check_alphas(self.alphas)
         structure, structures = select_structure(self, session, candidates, alphas)
         prob = self._validated(session, structure)
-        folds, k, scheme, shift = self._accumulate(session, prob)
-        total = _Moments(prob.size)
-        for f in folds:
-            total.add(f.n, f.s, f.W)
+        folds, total, k, scheme, shift = self._accumulate(session, prob)
         self._check_rows(prob, total.n)
         table = self._cross_validate(prob, folds, total, alphas, k)
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
@@ -234,7 +234,19 @@ class RidgeArx(BasePredictor):
             if prob.fit_intercept else np.zeros(prob.c)
         sums, lo, hi = _stream_sums(session, pieces, k, L, int(self.chunk_samples), shift)
         self._check_inputs_vary(session, lo, hi)
-        return [f.moments() for f in sums], k, scheme, np.tile(shift, L + 1)
+        # folds keep their compact lag sums (a Gram each only while it is used); the total is assembled once from
+        # the summed lag sums, or (small Grams) as the sum of the folds' Grams, bit for bit the moments of before
+        folds = [f.lazy_moments() for f in sums]
+        if prob.size <= _SMALL_GRAM:
+            total = _Moments(prob.size)
+            for f in folds:
+                total.add(f.n, f.s, f.W)
+        else:
+            total = sums[0]
+            for f in sums[1:]:
+                total = total.plus(f)
+            total = total.moments()
+        return folds, total, k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
         names = tuple(getattr(session, "input_names", None) or (f"u{i}" for i in range(len(lo))))
@@ -256,21 +268,8 @@ class RidgeArx(BasePredictor):
             )
 
     def _cross_validate(self, prob, folds, total, alphas, k) -> pd.DataFrame:
-        errors = np.full((alphas.size, k), np.nan)
-        for f, held in enumerate(folds):
-            train = total.minus(held)
-            if held.n == 0 or train.n <= prob.x_idx.size:
-                continue
-            betas, _scale, _conds, _mu = prob.solve(train, alphas)
-            errors[:, f] = prob.validation_errors(betas, train, held)
-        table = pd.DataFrame({"alpha": alphas})
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
-            table["mean_error"] = np.nanmean(errors, axis=1)
-            table["std_error"] = np.nanstd(errors, axis=1)
-        for f in range(k):
-            table[f"fold_{f}"] = errors[:, f]
-        return table
+        return cv_table(cv_errors([prob], folds, total, alphas)[0], alphas, k)
+
 
     def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
         betas, scale, conds, mu = prob.solve(total, [alpha])

@@ -5,6 +5,7 @@ lagged moments to regressors and targets, and the ridge path from one eigendecom
 from __future__ import annotations
 
 import numpy as np
+import scipy.linalg as sla
 
 from .exceptions import InvalidParameterError, SessionError
 from ._lagged import _Moments
@@ -56,28 +57,66 @@ def _block_pieces(segs, n_folds: int):
 
 
 # ------------------------------------------------------------------------------------------------ solving
-def _ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> tuple[list[np.ndarray], np.ndarray]:
-    """Solutions of ``(R + α I) β = r`` for each α, from one eigendecomposition of the symmetric ``R``.
+#: From this many regressors on, the final ridge solve takes the Cholesky route (below it the eigendecomposition is
+#: cheap, and its results are those of before, bit for bit).
+_CHOLESKY_FROM = 512
 
-    Eigenvalues at or below ``d · eps · λ_max`` are treated as zero; for α = 0 their directions are dropped
-    (minimum-norm solution). Returns the solutions and the condition numbers ``(λ_max + α) / (λ_min + α)``.
+
+def _rounding_level(R: np.ndarray) -> float:
+    """An upper bound of the eigen route's cut-off ``λ_max · d · eps`` (``λ_max <= tr R`` for a PSD ``R``)."""
+    return float(max(np.trace(R), 0.0)) * R.shape[0] * np.finfo(float).eps
+
+
+def chol_ridge_path(R: np.ndarray, r: np.ndarray, alphas) -> list[np.ndarray] | None:
+    """``(R + α I)⁻¹ r`` for each α by one Cholesky factorisation per α; None where a factor does not exist or a
+    strength is at the rounding level of ``R`` (use the eigen route then)."""
+    if R.shape[0] == 0:
+        return [np.zeros((0, r.shape[1])) for _ in alphas]
+    if min(alphas) <= _rounding_level(R):
+        return None
+    out = []
+    try:
+        for alpha in alphas:
+            K = R.copy()
+            K[np.diag_indices_from(K)] += alpha
+            out.append(sla.cho_solve(sla.cho_factor(K, lower=True, overwrite_a=True, check_finite=False), r,
+                                     check_finite=False))
+    except np.linalg.LinAlgError:
+        return None
+    return out
+
+
+def _ridge_path(R: np.ndarray, r: np.ndarray, alphas, route: str = "auto") -> tuple[list[np.ndarray], np.ndarray]:
+    """Solutions of ``(R + α I) β = r`` for each α, and the condition numbers ``(λ_max + α) / (λ_min + α)``.
+
+    By a Cholesky factorisation per α with the eigenvalues alone (``route="auto"``, from ``_CHOLESKY_FROM``
+    regressors on; much cheaper than the
+    eigenvectors: the tridiagonal reduction's back-transformation and the eigenvector solver are skipped), or from
+    one eigendecomposition of the symmetric ``R`` (``route="eigh"``, taken as well when a strength is at the
+    rounding level of ``R`` or a factor does not exist). Eigenvalues at or below ``d · eps · λ_max`` are treated
+    as zero; for α = 0 their directions are dropped (minimum-norm solution).
     """
     from .hankel import _single_blas_thread
 
     with _single_blas_thread():  # multi-threaded OpenBLAS stalls on a busy machine (bench_windows: 2-5x slower)
-        lam, V = np.linalg.eigh(R)
+        betas = chol_ridge_path(R, r, alphas) if route == "auto" and R.shape[0] >= _CHOLESKY_FROM else None
+        if betas is None:
+            lam, V = np.linalg.eigh(R)
+        else:
+            lam, V = np.linalg.eigvalsh(R), None
     lam = np.clip(lam, 0.0, None)
     tiny = lam.max(initial=0.0) * R.shape[0] * np.finfo(float).eps
-    Vr = V.T @ r
-    betas, conds = [], []
+    Vr = V.T @ r if V is not None else None
+    out, conds = [], []
     for alpha in alphas:
         den = lam + alpha
         keep = den > tiny
-        inv = np.where(keep, 1.0 / np.where(keep, den, 1.0), 0.0)
-        betas.append(V @ (inv[:, None] * Vr))
+        if V is not None:
+            inv = np.where(keep, 1.0 / np.where(keep, den, 1.0), 0.0)
+            out.append(V @ (inv[:, None] * Vr))
         lo = den.min() if den.size else 1.0
         conds.append(np.inf if lo <= tiny else (lam.max(initial=0.0) + alpha) / lo)
-    return betas, np.asarray(conds)
+    return (betas if V is None else out), np.asarray(conds)
 
 
 class _Problem:

@@ -19,8 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .exceptions import InvalidParameterError
-from ._lagged import _Moments
-from .hankel import _single_blas_thread
+from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem
 
 __all__ = ["AUTO", "DEFAULT_LAG_GRID", "DEFAULT_DELAY_GRID", "structure_candidates", "structure_table",
@@ -138,23 +137,16 @@ def select_structure(est, session, candidates, alphas):
         return candidates[0], None
     n_lags = max(_longest(c) for c in candidates)
     probe = est._validated(session, max(candidates, key=_longest), n_lags)
-    folds, k, _scheme, _shift = est._accumulate(session, probe)
-    total = _Moments(probe.size)
-    for f in folds:
-        total.add(f.n, f.s, f.W)
-    rows = []
-    with _single_blas_thread():  # many small eigendecompositions: threads only wait on each other at this size
-        for na, nb, d in candidates:
-            rows.append(_scored(est, probe, n_lags, (na, nb, d), folds, total, alphas, k))
+    folds, total, k, _scheme, _shift = est._accumulate(session, probe)
+    probs = [_Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags) for na, nb, d in candidates]
+    n_coef = [q.x_idx.size + int(q.fit_intercept) for q in probs]
+    scored = [i for i, q in enumerate(probs) if total.n >= n_coef[i]]
+    errors = cv_errors([probs[i] for i in scored], folds, total, alphas) if scored else []
+    found = dict(zip(scored, errors))
+    empty = np.full((alphas.size, k), np.nan)
+    rows = [(*c, n_coef[i], cv_table(found.get(i, empty), alphas, k)) for i, (c, q) in
+            enumerate(zip(candidates, probs))]
     structures = structure_table(rows)
     top = structures.loc[structures["selected"]].iloc[0]
     return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
 
-
-def _scored(est, probe, n_lags, structure, folds, total, alphas, k):
-    na, nb, d = structure
-    prob = _Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags)
-    n_coef = prob.x_idx.size + int(prob.fit_intercept)
-    table = est._cross_validate(prob, folds, total, alphas, k) if total.n >= n_coef else \
-        pd.DataFrame({"alpha": alphas, "mean_error": np.nan, "std_error": np.nan})
-    return na, nb, d, n_coef, table

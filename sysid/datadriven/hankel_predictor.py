@@ -17,6 +17,7 @@ from ..hankel import _one_blas_thread
 from .consistency import choose_consistent, plan_gaps
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
+from .kkt import _kkt_map, _kkt_predictor
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
@@ -74,46 +75,6 @@ def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
     M = -(V @ V.T)
     M[np.diag_indices_from(M)] += 1.0
     return M
-
-
-def _kkt_map(blocks: HankelBlocks, M, lam_g: float, lam_y: float, B: np.ndarray) -> np.ndarray:
-    """Minimisers ``g`` (one column per column of ``B = [u_past; y_past; u_future]``) of the ℓ2 / projection problem.
-
-    KKT system of ``min λ_y ||Yp g − y_p||² + λ_g gᵀ M g  s.t.  [Up; Uf] g = [u_p; u_f]``::
-
-        [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
-        [A                   0 ] [ν] = [u_p; u_f  ]
-
-    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
-    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
-    """
-    Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
-    r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
-    A = np.vstack([Up, Uf])
-    K = np.zeros((r + A.shape[0], r + A.shape[0]))
-    K[:r, :r] = lam_y * (Yp.T @ Yp)
-    if M is None:
-        K[np.arange(r), np.arange(r)] += lam_g
-    else:
-        K[:r, :r] += lam_g * M
-    # symmetric scaling of the constraint rows (multipliers ν/β): same solution, balanced blocks
-    beta = np.abs(K[:r, :r]).max() / max(np.abs(A).max(), np.finfo(float).tiny)
-    K[:r, r:] = beta * A.T
-    K[r:, :r] = beta * A
-    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", sla.LinAlgWarning)
-        try:
-            return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
-        except sla.LinAlgWarning:
-            pass
-    warnings.warn(ConditioningWarning(
-        f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
-        f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
-    ), stacklevel=6)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", sla.LinAlgWarning)
-        return sla.solve(K, rhs, assume_a="sym", check_finite=False)[:r]
 
 
 class HankelPredictor(_DirectPredictor):
@@ -320,13 +281,13 @@ class HankelPredictor(_DirectPredictor):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         blocks = HankelBlocks.from_matrix(train.factor, m, p, past, N, True)
         M = _projection_complement(blocks.D, train.n_columns) if self.regularizer == "projection" else None
-        scale, n_b = _data_scale(train.factor), blocks.D.shape[0]
+        scale = _data_scale(train.factor)
         out = []
         for rel in lambdas:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", ConditioningWarning)
                 try:
-                    G = blocks.Yf @ _kkt_map(blocks, M, rel * scale, lam_y, np.eye(n_b))
+                    G = _kkt_predictor(blocks, M, rel * scale, lam_y)
                 except np.linalg.LinAlgError:
                     out.append(np.inf)
                     continue
@@ -435,9 +396,7 @@ class HankelPredictor(_DirectPredictor):
     def _prediction_map(self) -> np.ndarray:
         if getattr(self, "_map_cache", None) is None:
             M = None if self.regularizer_ == "l2" else self.reg_matrix_
-            n_b = self.blocks_.Up.shape[0] + self.blocks_.Yp.shape[0] + self.blocks_.Uf.shape[0]
-            self._map_cache = self._unscaled(self.blocks_.Yf @ _kkt_map(self.blocks_, M, self.lambda_g_,
-                                                                        self.lambda_y_, np.eye(n_b)))
+            self._map_cache = self._unscaled(_kkt_predictor(self.blocks_, M, self.lambda_g_, self.lambda_y_))
         return self._map_cache
 
     def _solve(self, b: np.ndarray) -> np.ndarray:

@@ -242,7 +242,7 @@ class SubspaceId(BasePredictor):
 
     def _identify(self, session, cfg, grams, scale, how) -> None:
         L = cfg["layout"]
-        S_all, S_fit, S_check = (self._scaled(G, N, scale) for G, N in grams)
+        S_all, S_fit, S_check = [self._scaled(G, N, scale) for G, N in grams]
         for S in (S_all, S_fit):
             self._check_excitation(S, L)
         proj_all = _Projection(S_all, L, self.weighting)
@@ -303,8 +303,12 @@ class SubspaceId(BasePredictor):
 
     @staticmethod
     def _scaled(G, N, scale) -> np.ndarray:
+        """``G / N`` with every channel scaled to unit RMS, in place (the Grams are not used unscaled again)."""
         s = np.tile(scale, G.shape[0] // scale.size)
-        return G / N / np.outer(s, s)
+        G /= N
+        for a in range(0, G.shape[0], 512):  # ÷ (s_i s_j), as G / N / outer(s, s), a band of rows at a time
+            G[a:a + 512] /= np.outer(s[a:a + 512], s)
+        return G
 
     @staticmethod
     def _supported(sv_all, sv_fit, cfg) -> int:

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._lagged import _stream_sums
+from .._lagged import _lagged_gram, _stream_sums
 from ..output_mask import output_valid_segments
 
 
@@ -65,12 +65,23 @@ def _hankel_gram(source, segments, layout: _Layout):
     if not pieces:
         return np.zeros((layout.nz, layout.nz)), 0
     (acc,), _lo, _hi = _stream_sums(source, pieces, 1, lag, _STREAM_ROWS, np.zeros(c))
-    W = acc.moments().W
     # Hankel row (τ, channel in [u y] order) <- lagged row (lag w − 1 − τ, channel in [y u] order)
     in_z = np.concatenate([np.arange(p, c), np.arange(p)])  # [u y] channel j sits at in_z[j] of [y u]
     perm = np.array([(lag - tau) * c + in_z[j] for tau in range(w) for j in range(c)], dtype=np.intp)
-    G = W[np.ix_(perm, perm)]
-    return 0.5 * (G + G.T), int(acc.n)
+    index = np.empty_like(perm)
+    index[perm] = np.arange(perm.size)
+    G = _lagged_gram(acc, index.reshape(w, c))  # assembled in the Hankel order: no second Gram-sized copy
+    _symmetrise(G)
+    return G, int(acc.n)
+
+
+def _symmetrise(G: np.ndarray, block: int = 512) -> None:
+    """``G ← (G + Gᵀ) / 2`` in place, a band of rows at a time (no Gram-sized temporary)."""
+    for a in range(0, G.shape[0], block):
+        b = min(G.shape[0], a + block)
+        M = 0.5 * (G[a:b, a:] + G[a:, a:b].T)
+        G[a:b, a:] = M
+        G[a:, a:b] = M.T
 
 
 def _partition(session, width: int, fraction: float, seed: int):

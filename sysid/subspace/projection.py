@@ -8,10 +8,12 @@ import functools
 import warnings
 
 import numpy as np
+import scipy.linalg as sla
 
 from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain, markov_toeplitz
 from .gram import _Layout
+from .markov import normal_equations, pattern_blocks
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -39,10 +41,57 @@ def _pinv_psd(M: np.ndarray) -> np.ndarray:
     return (V / lam) @ V.T
 
 
-def _conditional(S: np.ndarray, a, b, given) -> np.ndarray:
+#: From this many rows on, a well-conditioned covariance is factored by Cholesky instead of an eigendecomposition
+#: (about 20x cheaper at 2,000 rows); smaller ones keep the eigen route (bit-for-bit the results of before).
+_CHOLESKY_FROM = 512
+#: Largest estimated 1-norm condition number for the Cholesky route: below it every eigenvalue is far above the
+#: eigen route's cut-off ``_RTOL`` (κ₂ <= κ₁), so both give the same inverse up to rounding (common practice, no
+#: source: two decades of margin for the estimate).
+_CHOLESKY_CONDITION = 1e8
+
+
+class _PsdInverse:
+    """``M⁺`` of a symmetric PSD covariance, by Cholesky where it is large and well-conditioned, else by the
+    eigendecomposition with the relative cut-off ``_RTOL`` (Golub & Van Loan 2013, Matrix Computations, 4th ed.,
+    sec. 4.2 and 3.5.4: a Cholesky solve is backward stable; ``pocon`` estimates the condition number)."""
+
+    def __init__(self, M: np.ndarray):
+        M = 0.5 * (M + M.T)
+        self.L = None
+        if M.shape[0] >= _CHOLESKY_FROM:
+            try:
+                L = sla.cholesky(M, lower=True, check_finite=False)
+                pocon, = sla.get_lapack_funcs(("pocon",), (L,))
+                rcond, info = pocon(L, float(np.abs(M).sum(axis=0).max()), uplo="L")
+                if info == 0 and rcond > 1.0 / _CHOLESKY_CONDITION:
+                    self.L = L
+            except np.linalg.LinAlgError:
+                pass
+        if self.L is None:
+            self.V, self.lam = _psd_parts(M)
+            self.pinv = (self.V / self.lam) @ self.V.T
+
+    def times(self, X: np.ndarray) -> np.ndarray:
+        """``X M⁺`` (on the eigen route the product with the explicit pseudo-inverse, as before)."""
+        if self.L is not None:
+            return sla.cho_solve((self.L, True), X.T, check_finite=False).T
+        return X @ self.pinv
+
+    def root(self) -> np.ndarray:
+        """A factor ``F`` with ``F Fᵀ = M`` (on the retained eigen-directions)."""
+        return self.L if self.L is not None else self.V * np.sqrt(self.lam)
+
+    def times_inverse_root(self, X: np.ndarray) -> np.ndarray:
+        """``X F⁻ᵀ`` for the factor ``F`` of :meth:`root` (``(X F⁻ᵀ)(X F⁻ᵀ)ᵀ = X M⁺ Xᵀ``)."""
+        if self.L is not None:
+            return sla.solve_triangular(self.L, X.T, lower=True, check_finite=False).T
+        return X @ (self.V / np.sqrt(self.lam))
+
+
+def _conditional(S: np.ndarray, a, b, given, inverse: _PsdInverse | None = None) -> np.ndarray:
     """``S_ab − S_a,g S_gg⁺ S_g,b``: the covariance of the parts of ``a`` and ``b`` not explained by ``given``."""
-    Sgg_inv = _pinv_psd(S[np.ix_(given, given)])
-    return S[np.ix_(a, b)] - S[np.ix_(a, given)] @ Sgg_inv @ S[np.ix_(given, b)]
+    inv = _PsdInverse(S[np.ix_(given, given)]) if inverse is None else inverse
+    return S[np.ix_(a, b)] - inv.times(S[np.ix_(a, given)]) @ S[np.ix_(given, b)]
 
 
 class _Projection:
@@ -63,16 +112,18 @@ class _Projection:
 
     def __init__(self, S: np.ndarray, layout: _Layout, weighting: str):
         L = layout
+        self.S = S
+        self.layout = L
         Sc_pp = _conditional(S, L.P, L.P, L.Uf)
         Sc_yp = _conditional(S, L.Yf, L.P, L.Uf)
-        V, lam = _psd_parts(Sc_pp)
-        self.theta = Sc_yp @ ((V / lam) @ V.T)
+        inv_pp = _PsdInverse(Sc_pp)
+        del Sc_pp
+        self.theta = inv_pp.times(Sc_yp)
         w_inv = None
         if weighting == "n4sid":
-            E, xi = _psd_parts(S[np.ix_(L.P, L.P)])
-            mat = self.theta @ (E * np.sqrt(xi))
+            mat = self.theta @ self._past.root()
         else:
-            mat = Sc_yp @ (V / np.sqrt(lam))
+            mat = inv_pp.times_inverse_root(Sc_yp)
             if weighting == "cva":
                 H, om = _psd_parts(_conditional(S, L.Yf, L.Yf, L.Uf))
                 mat = ((H / np.sqrt(om)) @ H.T) @ mat
@@ -82,20 +133,25 @@ class _Projection:
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U
         self.w_inv = w_inv
-        self.S = S
-        self.layout = L
+
+    @functools.cached_property
+    def _past(self) -> _PsdInverse:
+        """The inverse of the past's covariance ``S_{Wp Wp}`` (shared by the weighting and ``given_past``)."""
+        P = self.layout.P
+        return _PsdInverse(self.S[np.ix_(P, P)])
 
     @functools.cached_property
     def given_past(self):
         """Covariances of ``Uf`` and of ``Yf`` with ``Uf`` conditioned on the past ``Wp`` (for ``B, D``)."""
         S, L = self.S, self.layout
-        return _conditional(S, L.Uf, L.Uf, L.P), _conditional(S, L.Yf, L.Uf, L.P)
+        return (_conditional(S, L.Uf, L.Uf, L.P, self._past), _conditional(S, L.Yf, L.Uf, L.P, self._past))
 
     @functools.cached_property
     def theta_next(self) -> np.ndarray:
         """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
         S, L = self.S, self.layout
-        return _conditional(S, L.Yf1, L.P1, L.Uf1) @ _pinv_psd(_conditional(S, L.P1, L.P1, L.Uf1))
+        inv = _PsdInverse(_conditional(S, L.P1, L.P1, L.Uf1))
+        return inv.times(_conditional(S, L.Yf1, L.P1, L.Uf1))
 
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
@@ -137,6 +193,20 @@ def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
     return Hs
 
 
+#: Largest dense Toeplitz basis (doubles) :func:`_b_d` builds; beyond it the structured sums of markov.py are used.
+_DENSE_BASIS_MAX = 2_000_000
+
+
+def _dense_normal_equations(A, C, L: _Layout, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu):
+    """``M`` and ``rhs`` of the ``B, D`` least squares from one dense basis matrix per unknown."""
+    Hs = _toeplitz_basis(A, C, L, feedthrough)
+    P1 = Q @ Q.T
+    target = S_yu + P1 @ (Sc_yu - S_yu)
+    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
+    flat = Hs.reshape(Hs.shape[0], -1)
+    return flat @ image.reshape(Hs.shape[0], -1).T, flat @ target.reshape(-1)
+
+
 def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
 
@@ -149,17 +219,16 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """
     L, S = proj.layout, proj.S
     n, m, p = A.shape[0], L.m, L.p
-    Hs = _toeplitz_basis(A, C, L, feedthrough)
     Q = np.linalg.qr(gamma)[0]
-    P1 = Q @ Q.T
     S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
     Sc_uu, Sc_yu = proj.given_past
-    target = S_yu + P1 @ (Sc_yu - S_yu)
-    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
-    flat = Hs.reshape(Hs.shape[0], -1)
-    M = flat @ image.reshape(Hs.shape[0], -1).T
+    if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
+        M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
+    else:  # the same sums taken over the block-Toeplitz structure (markov.py)
+        target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
+        M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
+                                  feedthrough)
     M = 0.5 * (M + M.T)
-    rhs = flat @ target.reshape(-1)
     lam = np.linalg.eigvalsh(M)
     if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
         raise ExcitationError(
@@ -194,9 +263,13 @@ def _noise(proj: _Projection, gamma, A, B, C, D):
     L, S = proj.layout, proj.S
     X0, X1 = _state_maps(proj, gamma)
     Eu, Ey = L.select(L.u0), L.select(L.y0)
-    Wmap = X1 - A @ X0 - B @ Eu
-    Vmap = Ey - C @ X0 - D @ Eu
-    Q, R, Sx = Wmap @ S @ Wmap.T, Vmap @ S @ Vmap.T, Wmap @ S @ Vmap.T
+    # every map lives on the columns of the past one block longer (P1 holds u0 and y0), the leading k rows and
+    # columns of the time-major Hankel layout: S restricted to them is a view
+    k = (L.i + 1) * L.c if L.nz >= _CHOLESKY_FROM else L.nz  # (small: the whole of S, as before)
+    Wmap = (X1 - A @ X0 - B @ Eu)[:, :k]
+    Vmap = (Ey - C @ X0 - D @ Eu)[:, :k]
+    Sk = S[:k, :k]
+    Q, R, Sx = Wmap @ Sk @ Wmap.T, Vmap @ Sk @ Vmap.T, Wmap @ Sk @ Vmap.T
     return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
 
 

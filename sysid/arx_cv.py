@@ -1,0 +1,195 @@
+"""Cross-validation of ridge ARX over several lag structures and a grid of strengths, from one set of moments.
+
+Every candidate structure's regressors are a subset of one lagged vector (:mod:`stimsteer.sysid.arx_structure`),
+and its standardised normal equations ``(R_s + α I) β = r_s`` are the sub-block of one standardised Gram ``R`` over
+the union of the candidates' regressors: centring and scaling are per regressor, the same in every structure. The
+regressors common to all candidates (the *core*) are factored once per fold and strength,
+
+    R_core + α I = L Lᵀ   (Cholesky),
+
+and each structure adds its few other regressors ``e`` by a block Cholesky step (``L⁻¹ R_core,e``, a Cholesky of the
+``|e| × |e|`` Schur complement): ``O(|core|² |e|)`` per structure instead of a factorisation of its own. With one
+candidate the core is the whole structure.
+
+Numerical care: a Cholesky solve is backward stable like the eigendecomposition it replaces (errors
+``~ κ(R + α I) · eps`` in both; Golub & Van Loan 2013, Matrix Computations, 4th ed., sec. 4.2). Where the factor
+does not exist in floating point (a strength at or below the rounding level of ``R``, where the eigen route drops
+the null directions, or a semi-definite Schur complement) the structure falls back to the eigendecomposition route
+of :func:`stimsteer.sysid.arx_regression._ridge_path` for that fold.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import scipy.linalg as sla
+
+from .arx_regression import _Problem, _ridge_path, _rounding_level
+
+__all__ = ["cv_errors", "cv_table"]
+
+
+def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarray):
+    """``L`` with ``L Lᵀ = R_core + α I`` (in ``buffer``) and ``L⁻¹ r_core``; None when the factor does not exist."""
+    if Rc.shape[0] == 0:
+        return Rc, rc
+    np.copyto(buffer, Rc)
+    buffer[np.diag_indices_from(buffer)] += alpha
+    try:
+        L = sla.cholesky(buffer, lower=True, overwrite_a=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        return None
+    return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
+
+
+def _strength_betas(R, r, n_core: int, extras, live, alpha, factor) -> dict:
+    """Standardised coefficients on ``[core, extras[i]]`` of each live structure at one strength, from the core's
+    factor by a block Cholesky step (None for a structure whose Schur complement has no factor)."""
+    L, z = factor
+    union_e = np.unique(np.concatenate([extras[i] for i in live])) if live else np.zeros(0, dtype=np.intp)
+    Xall = sla.solve_triangular(L, R[:n_core, union_e], lower=True, check_finite=False) if n_core else \
+        np.zeros((0, union_e.size))  # L⁻¹ R_core,e for every extra regressor at once
+    out, back = {}, []
+    for i in live:
+        e = extras[i]
+        X = Xall[:, np.searchsorted(union_e, e)]
+        S = R[np.ix_(e, e)] - X.T @ X
+        S[np.diag_indices_from(S)] += alpha
+        try:
+            be = sla.cho_solve(sla.cho_factor(S, lower=True, check_finite=False), r[e] - X.T @ z,
+                               check_finite=False) if e.size else np.zeros((0, r.shape[1]))
+        except np.linalg.LinAlgError:
+            out[i] = None
+            continue
+        out[i] = be
+        back.append((i, z - X @ be))
+    if back and n_core:  # the back substitutions of every structure in one triangular solve
+        bc = sla.solve_triangular(L, np.hstack([v for _i, v in back]), lower=True, trans="T", check_finite=False)
+        for j, (i, _v) in enumerate(back):
+            out[i] = np.vstack([bc[:, j * r.shape[1]:(j + 1) * r.shape[1]], out[i]])
+    return out
+
+
+def _fold_betas(R, r, n_core: int, extras, live, alphas) -> dict:
+    """Standardised coefficients ``{structure: [β per strength] or None}`` of one fold (the core leads ``R``):
+    one core factor at a time."""
+    out = {i: [] for i in live}
+    Rc, rc = R[:n_core, :n_core], r[:n_core]
+    usable = n_core == 0 or min(alphas) > _rounding_level(Rc)
+    buffer = np.empty(Rc.shape, order="F")  # re-used: a fresh core-sized array per strength costs page faults
+    for alpha in alphas:
+        factor = _core_factor(Rc, rc, alpha, buffer) if usable else None
+        todo = [i for i in live if out[i] is not None]
+        found = _strength_betas(R, r, n_core, extras, todo, alpha, factor) if factor is not None else {}
+        for i in todo:
+            out[i] = None if found.get(i) is None else out[i] + [found[i]]
+    return out
+
+
+def _union_layout(probs: list[_Problem]):
+    """The union of the candidates' regressors with the shared core first, the core's size, and each candidate's
+    extra regressors as positions in that order."""
+    union = np.unique(np.concatenate([q.x_idx for q in probs]))
+    shared = union
+    for q in probs:
+        shared = np.intersect1d(shared, q.x_idx)
+    order = np.concatenate([shared, np.setdiff1d(union, shared)])
+    where = {int(v): j for j, v in enumerate(order)}
+    extras = [np.sort(np.array([where[int(v)] for v in np.setdiff1d(q.x_idx, shared)], dtype=np.intp))
+              for q in probs]
+    return order, shared.size, extras
+
+
+def _centred_block(W, s, n, mu, xi, yi):
+    """``(Σ (w − μ)(w − μ)ᵀ)`` on rows ``xi`` and columns ``[xi, yi]``: ``W − μ (s − n μ)ᵀ − s μᵀ``, formed in place
+    (two rank-one updates, no Gram-sized temporaries)."""
+    cols = np.concatenate([xi, yi])
+    C = W[np.ix_(xi, cols)]
+    ger, = sla.get_blas_funcs(("ger",), (C,))
+    # C is C-ordered: its transpose is Fortran-ordered, updated in place by ger with the factors swapped
+    ger(-1.0, s[cols] - n * mu[cols], mu[xi], a=C.T, overwrite_a=True)
+    ger(-1.0, mu[cols], s[xi], a=C.T, overwrite_a=True)
+    return C
+
+
+def cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
+    from .hankel import _single_blas_thread
+
+    with _single_blas_thread():  # factorisations of this size gain nothing from threads on a busy machine
+        return _cv_errors(probs, folds, total, alphas)
+
+
+def _cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
+    """Validation errors ``(n_alphas, n_folds)`` of each candidate (NaN where a fold cannot be scored).
+
+    Each fold: training moments = total − fold; the error is the mean over outputs of SSE / SST on the held-out
+    rows (:meth:`_Problem.validation_errors`), for every strength, from one set of centred moments of the union.
+    A fold's Gram is asked for once (folds may assemble it on demand from compact sums).
+    """
+    k = len(folds)
+    errors = [np.full((len(alphas), k), np.nan) for _ in probs]
+    xi, n_core, extras = _union_layout(probs)
+    yi, nx = probs[0].y_idx, xi.size
+    fit_intercept = probs[0].fit_intercept
+    for f, held in enumerate(folds):
+        n_tr = total.n - held.n
+        live = [i for i, q in enumerate(probs) if held.n and n_tr > q.x_idx.size]
+        if not live:
+            continue
+        W_h = held.W
+        s_tr = total.s - held.s
+        mu = s_tr / n_tr if fit_intercept else np.zeros_like(s_tr)
+        W_tr = total.W - W_h
+        R = _centred_block(W_tr, s_tr, n_tr, mu, xi, yi)
+        del W_tr
+        Q = _centred_block(W_h, held.s, held.n, mu, xi, yi)
+        w_yy, s_y, m_y = np.diag(W_h)[yi], held.s[yi], mu[yi]
+        sst = w_yy - s_y ** 2 / held.n
+        qyy = w_yy - 2.0 * m_y * s_y + held.n * m_y ** 2
+        del W_h
+        scale = np.sqrt(np.clip(np.diag(R)[:nx], 0.0, None) / n_tr)
+        scale[scale == 0] = 1.0
+        R /= n_tr * scale[:, None]
+        R[:, :nx] /= scale[None, :]
+        R, r = R[:, :nx], R[:, nx:]  # standardised R (views) and r
+        found = _fold_betas(R, r, n_core, extras, live, alphas)
+        for i in live:
+            idx = np.concatenate([np.arange(n_core), extras[i]])
+            betas = found[i]
+            if betas is None:  # no Cholesky factor: the eigen route, in this structure alone
+                betas = _ridge_path(R[np.ix_(idx, idx)], r[idx], alphas, route="eigh")[0]
+            errors[i][:, f] = _errors(betas, scale, idx, Q, qyy, sst)
+    return errors
+
+
+def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:
+    """Mean over outputs of SSE / SST for each coefficient set (all strengths in one product).
+
+    ``Q`` holds the held-out centred moments ``[Qxx Qxy]`` over the union; the coefficients on ``idx`` are placed in
+    union-length columns, so no structure-sized copy of ``Qxx`` is made.
+    """
+    ok = sst > 0
+    if not ok.any():
+        return np.full(len(betas), np.nan)
+    nx = scale.size
+    a, p = len(betas), betas[0].shape[1]
+    B = np.zeros((nx, a, p))
+    B[idx] = np.stack([b / scale[idx, None] for b in betas], axis=1)
+    QB = (Q[:, :nx] @ B.reshape(nx, a * p)).reshape(nx, a, p)
+    sse = qyy[None, :] - 2.0 * np.einsum("xap,xp->ap", B, Q[:, nx:]) + np.einsum("xap,xap->ap", B, QB)
+    sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
+    return np.mean(sse[:, ok] / sst[ok], axis=1)
+
+
+def cv_table(errors: np.ndarray, alphas: np.ndarray, k: int) -> pd.DataFrame:
+    """The cross-validation table of one structure from its ``(n_alphas, k)`` validation errors."""
+    table = pd.DataFrame({"alpha": alphas})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
+        table["mean_error"] = np.nanmean(errors, axis=1)
+        table["std_error"] = np.nanstd(errors, axis=1)
+    for f in range(k):
+        table[f"fold_{f}"] = errors[:, f]
+    return table

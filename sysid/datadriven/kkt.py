@@ -1,0 +1,81 @@
+"""The KKT solves of the regularised Hankel predictor's ℓ2 / projection problem (split from
+:mod:`stimsteer.sysid.datadriven.hankel_predictor`)."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import scipy.linalg as sla
+
+from ..exceptions import ConditioningWarning
+
+__all__ = ["_kkt_map", "_kkt_predictor"]
+
+
+def _kkt_system(blocks, M, lam_g: float, lam_y: float):
+    """The symmetric KKT matrix of :func:`_kkt_map` and its constraint scaling ``β``."""
+    Up, Yp, Uf = blocks.Up, blocks.Yp, blocks.Uf
+    r = Up.shape[1]
+    A = np.vstack([Up, Uf])
+    K = np.zeros((r + A.shape[0], r + A.shape[0]))
+    K[:r, :r] = lam_y * (Yp.T @ Yp)
+    if M is None:
+        K[np.arange(r), np.arange(r)] += lam_g
+    else:
+        K[:r, :r] += lam_g * M
+    # symmetric scaling of the constraint rows (multipliers ν/β): same solution, balanced blocks
+    beta = np.abs(K[:r, :r]).max() / max(np.abs(A).max(), np.finfo(float).tiny)
+    K[:r, r:] = beta * A.T
+    K[r:, :r] = beta * A
+    return K, beta
+
+
+def _solve_kkt(K, rhs, lam_g: float, lam_y: float) -> np.ndarray:
+    """``K⁻¹ rhs``; an ill-conditioned system (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning`
+    and solved anyway."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", sla.LinAlgWarning)
+        try:
+            return sla.solve(K, rhs, assume_a="sym", check_finite=False)
+        except sla.LinAlgWarning:
+            pass
+    warnings.warn(ConditioningWarning(
+        f"the Hankel predictor's KKT system ({K.shape[0]} unknowns) is ill-conditioned at lambda_g = {lam_g:.3g}, "
+        f"lambda_y = {lam_y:.3g}; the prediction may be inaccurate. Use larger lambdas_g or noisier (richer) data."
+    ), stacklevel=7)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sla.LinAlgWarning)
+        return sla.solve(K, rhs, assume_a="sym", check_finite=False)
+
+
+def _kkt_map(blocks, M, lam_g: float, lam_y: float, B: np.ndarray) -> np.ndarray:
+    """Minimisers ``g`` (one column per column of ``B = [u_past; y_past; u_future]``) of the ℓ2 / projection problem.
+
+    KKT system of ``min λ_y ||Yp g − y_p||² + λ_g gᵀ M g  s.t.  [Up; Uf] g = [u_p; u_f]``::
+
+        [λ_y YpᵀYp + λ_g M   Aᵀ] [g]   [λ_y Ypᵀ y_p]
+        [A                   0 ] [ν] = [u_p; u_f  ]
+
+    (``M`` is an orthogonal projector, so ``MᵀM = M``; ``M = None`` is the identity.) An ill-conditioned system
+    (scipy's LinAlgWarning) is reported as :class:`ConditioningWarning` and solved anyway.
+    """
+    Up, Yp = blocks.Up, blocks.Yp
+    r, nu, npst = Up.shape[1], Up.shape[0], Yp.shape[0]
+    K, beta = _kkt_system(blocks, M, lam_g, lam_y)
+    rhs = np.vstack([lam_y * (Yp.T @ B[nu:nu + npst]), beta * B[:nu], beta * B[nu + npst:]])
+    return _solve_kkt(K, rhs, lam_g, lam_y)[:r]
+
+
+def _kkt_predictor(blocks, M, lam_g: float, lam_y: float) -> np.ndarray:
+    """``Yf g(B)`` as one matrix over ``B = [u_past; y_past; u_future]``: ``Yf @ _kkt_map(..., I)``.
+
+    With ``K`` symmetric, ``Yf [I 0] K⁻¹ R = Xᵀ R`` for ``X = K⁻¹ [Yfᵀ; 0]``: one solve with ``p N`` right-hand
+    sides (the predicted outputs) instead of one per column of ``B`` (``(m + p) Tini + m N``), and ``R`` (the
+    right-hand side of a unit ``B``) is applied in closed form.
+    """
+    Up, Yp, Uf, Yf = blocks.Up, blocks.Yp, blocks.Uf, blocks.Yf
+    r, nu = Up.shape[1], Up.shape[0]
+    K, beta = _kkt_system(blocks, M, lam_g, lam_y)
+    X = _solve_kkt(K, np.vstack([Yf.T, np.zeros((K.shape[0] - r, Yf.shape[0]))]), lam_g, lam_y)
+    return np.hstack([beta * X[r:r + nu].T, lam_y * (X[:r].T @ Yp.T), beta * X[r + nu:].T])

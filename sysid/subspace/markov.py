@@ -1,0 +1,88 @@
+"""The normal equations of ``B`` and ``D`` given ``A`` and ``C``, from the block-Toeplitz structure of the Markov
+parameters instead of one dense ``(p f × m f)`` basis matrix per unknown.
+
+The unknowns ``θ = [vec(B); vec(D)]`` enter the block-Toeplitz matrix ``H(θ)`` of Markov parameters linearly, one
+input channel ``l`` and one *column pattern* ``c`` at a time: ``H`` for ``B = e_j e_lᵀ`` has, in input column
+``(s, l)``, the vector ``h_j`` shifted down by ``s`` blocks (``h_j`` = column ``j`` of ``[0; C; CA; …; CA^{f−2}]``);
+for ``D = e_a e_lᵀ`` the unit vector of output ``a`` shifted likewise. So every inner product the normal
+equations need,
+
+    M[(c,l),(c',l')] = Σ_{s,s'} (Hc_sᵀ Hc'_s') S_uu[(s',l'),(s,l)] + Σ_{s,s'} (Qᵀ Hc_s)ᵀ (Qᵀ Hc'_s') ΔS_uu[(s',l'),(s,l)],
+
+is a contraction of small Grams of shifted pattern vectors (cumulative sums over the shift) with the input
+covariances: ``O(f² (n + p)² (p + m²))`` work and memory, instead of ``O(n_θ p f (m f)²)`` work and
+``O(n_θ p f m f)`` memory for the dense basis (about 100 MB per order at ``f = 50``, 20 outputs, 3 inputs).
+``P₁ = Q Qᵀ`` is the projector on range(Γ). The equations are the same as those of
+:func:`stimsteer.sysid.subspace.projection._b_d`'s Notes; only the order of the sums differs.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def pattern_blocks(A: np.ndarray, C: np.ndarray, f: int, feedthrough: bool) -> np.ndarray:
+    """``h[t]``, shape (f, p, n (+ p)): block ``t`` of each column pattern (``B`` patterns, then ``D`` ones)."""
+    n, p = A.shape[0], C.shape[0]
+    h = np.zeros((f, p, n + (p if feedthrough else 0)))
+    O = C.copy()
+    for t in range(1, f):
+        h[t, :, :n] = O
+        O = O @ A
+    if feedthrough:
+        h[0, :, n:] = np.eye(p)
+    return h
+
+
+def shifted_gram(h: np.ndarray) -> np.ndarray:
+    """``G[s, s'] = Hc_sᵀ Hc_s'`` for the patterns ``h`` shifted down by ``s`` and ``s'`` blocks (truncated at
+    ``f`` blocks), shape (f, f, nc, nc): for ``s' = s + δ`` it is ``Σ_{t < f − s'} h[t + δ]ᵀ h[t]``, a cumulative sum."""
+    f, _p, nc = h.shape
+    G = np.empty((f, f, nc, nc))
+    for delta in range(f):
+        cs = np.cumsum(np.matmul(h[delta:].transpose(0, 2, 1), h[: f - delta]), axis=0)
+        sp = np.arange(delta, f)
+        block = cs[f - 1 - sp]
+        G[sp - delta, sp] = block
+        G[sp, sp - delta] = block.transpose(0, 2, 1)
+    return G
+
+
+def projected_patterns(Q: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """``Φ[s] = Qᵀ Hc_s``, shape (f, q, nc): ``Σ_t Q_{s+t}ᵀ h[t]`` (``Q_r`` = block row ``r`` of ``Q``)."""
+    f, p, nc = h.shape
+    q = Q.shape[1]
+    # block rows s.. of Q against the first f − s blocks of h: one matrix product per shift
+    return np.stack([Q[s * p:].T @ h[: f - s].reshape(-1, nc) for s in range(f)]).reshape(f, q, nc)
+
+
+def _contract(G: np.ndarray, S4: np.ndarray) -> np.ndarray:
+    """``Σ_{s,s'} G[s,s'][c,c'] S[(s',l'),(s,l)]`` as an array indexed ``(c, l, c', l')``."""
+    out = np.tensordot(G, S4, axes=([0, 1], [2, 0]))  # (c, c', l', l)
+    return out.transpose(0, 3, 1, 2)
+
+
+def normal_equations(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
+    """``M`` and ``rhs`` of the ``θ = [vec(B); vec(D)]`` least squares (column-major ``vec``, as the dense form)."""
+    f, p, nc = h.shape
+    S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
+    Phi = projected_patterns(Q, h)
+    q = Phi.shape[1]
+    Pm = Phi.transpose(1, 0, 2).reshape(q, f * nc)
+    G2 = (Pm.T @ Pm).reshape(f, nc, f, nc).transpose(0, 2, 1, 3)  # G2[s, t] = Φ[s]ᵀ Φ[t]
+    M = _contract(shifted_gram(h), S4) + _contract(G2, D4)
+    T4 = target.reshape(f, p, f, m)  # [r, a, s, l]
+    rhs = np.zeros((nc, m))
+    s_all = np.arange(f)
+    for t in range(f):
+        s = s_all[: f - t]
+        rhs += h[t].T @ T4[s + t, :, s, :].sum(axis=0)
+    # (c, l) -> θ index: B(j, l) at l n + j, D(a, l) at n m + l p + a
+    c, l = np.meshgrid(np.arange(nc), np.arange(m), indexing="ij")
+    order = np.where(c < n, l * n + c, n * m + l * p + (c - n)).reshape(-1)
+    n_theta = nc * m
+    M_theta = np.empty((n_theta, n_theta))
+    M_theta[np.ix_(order, order)] = M.reshape(n_theta, n_theta)
+    rhs_theta = np.empty(n_theta)
+    rhs_theta[order] = rhs.reshape(-1)
+    return M_theta, rhs_theta

@@ -1,0 +1,128 @@
+"""Subspace identification at long windows: the B, D normal equations from the block-Toeplitz structure equal the
+dense-basis ones, in bounded memory; the held-out error through the predictor's parts equals the dense map."""
+
+from __future__ import annotations
+
+import tracemalloc
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid.subspace import gram, heldout, markov, projection
+
+
+def _dense_normal_equations(proj, gamma, A, C, feedthrough):
+    """The normal equations as built before (one dense (p f × m f) basis matrix per unknown)."""
+    L, S = proj.layout, proj.S
+    Hs = projection._toeplitz_basis(A, C, L, feedthrough)
+    Q = np.linalg.qr(gamma)[0]
+    P1 = Q @ Q.T
+    S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
+    Sc_uu, Sc_yu = proj.given_past
+    target = S_yu + P1 @ (Sc_yu - S_yu)
+    image = Hs @ S_uu + P1 @ (Hs @ (Sc_uu - S_uu))
+    flat = Hs.reshape(Hs.shape[0], -1)
+    return flat @ image.reshape(Hs.shape[0], -1).T, flat @ target.reshape(-1), Q, target
+
+
+def _projection(past, future, m, p, T=3000, seed=0):
+    rng = np.random.default_rng(seed)
+    L = gram._Layout(past, future, m, p)
+    z = rng.standard_normal((T, L.nz))
+    return projection._Projection(z.T @ z / T, L, "n4sid"), rng
+
+
+@pytest.mark.parametrize("feedthrough", [False, True])
+def test_structured_normal_equations_equal_the_dense_basis(feedthrough):
+    proj, rng = _projection(4, 6, 2, 3)
+    n = 4
+    A = 0.3 * rng.standard_normal((n, n))
+    C = rng.standard_normal((3, n))
+    gamma = proj.gamma(n)
+    M_ref, rhs_ref, Q, target = _dense_normal_equations(proj, gamma, A, C, feedthrough)
+    S = proj.S
+    L = proj.layout
+    S_uu = S[np.ix_(L.Uf, L.Uf)]
+    M, rhs = markov.normal_equations(markov.pattern_blocks(A, C, L.f, feedthrough), Q, S_uu,
+                                     proj.given_past[0] - S_uu, target, n, L.m, feedthrough)
+    np.testing.assert_allclose(M, M_ref, rtol=1e-11, atol=1e-11 * np.abs(M_ref).max())
+    np.testing.assert_allclose(rhs, rhs_ref, rtol=1e-11, atol=1e-11 * np.abs(rhs_ref).max())
+
+
+def test_b_d_at_a_long_future_window_stays_small_in_memory():
+    # f = 50 future blocks, 20 outputs, 3 inputs, order 10 with a direct term: the dense basis alone was
+    # (3·10 + 20·3) x 1000 x 150 doubles = 108 MB, and three such arrays were live at once (over 300 MB).
+    proj, rng = _projection(2, 50, 3, 20, T=4000)
+    n = 10
+    gamma = proj.gamma(n)
+    A, C = projection._a_c(gamma, 20)
+    _ = proj.given_past  # cached covariances, not part of the B, D step
+    tracemalloc.start()
+    try:
+        projection._b_d(proj, gamma, A, C, feedthrough=True)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 80e6, f"{peak / 1e6:.0f} MB"  # the structured sums: ~40 MB here, growing as f² (n + p)²
+
+
+def test_heldout_error_through_parts_equals_the_dense_error_map():
+    proj, rng = _projection(5, 4, 2, 3)
+    L = proj.layout
+    n = 3
+    mats = {"A": 0.5 * np.eye(n) + 0.1 * rng.standard_normal((n, n)), "B": rng.standard_normal((n, 2)),
+            "C": rng.standard_normal((3, n)), "D": rng.standard_normal((3, 2)), "K": 0.2 * rng.standard_normal((n, 3))}
+    E = L.select(L.Yf) - heldout._predictor_map(mats, L)
+    S = proj.S
+    dense = np.mean(np.maximum(np.sum((E @ S) * E, axis=1), 0.0) / np.diag(S)[L.Yf])
+    assert heldout._heldout_error(mats, S, L) == pytest.approx(dense, rel=1e-11)
+
+
+def _fit_with_route(monkeypatch, session, chol_from, **kw):
+    from stimsteer.sysid.subspace import SubspaceId
+
+    monkeypatch.setattr(projection, "_CHOLESKY_FROM", chol_from)
+    return SubspaceId(**kw).fit(session)
+
+
+def _trial_session(noise, seed=1, T=6000):
+    from stimsteer.sysid import Session
+
+    rng = np.random.default_rng(seed)
+    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
+    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
+    u = rng.standard_normal((T, 2))
+    x, y = np.zeros(3), np.zeros((T, 4))
+    for k in range(T):
+        y[k] = C @ x + noise * rng.standard_normal(4)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, 7).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
+def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(monkeypatch, weighting):
+    session = _trial_session(noise=0.3)
+    kw = dict(past_steps=6, future_steps=5, weighting=weighting)
+    eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
+    chol = _fit_with_route(monkeypatch, session, 0, **kw)
+    assert chol.order_ == eig.order_
+    rng = np.random.default_rng(2)
+    args = (rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2)))
+    a, b = eig.predict_many(*args), chol.predict_many(*args)
+    np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-8 * np.abs(a).max())
+
+
+def test_singular_covariances_take_the_eigen_route(monkeypatch):
+    # noise-free data of a 3-state system: the past covariance given the future inputs is singular, so no
+    # Cholesky factor passes the condition check and the eigen route (with its cut-off) is used: same model
+    session = _trial_session(noise=0.0)
+    kw = dict(past_steps=6, future_steps=5)
+    eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
+    chol = _fit_with_route(monkeypatch, session, 0, **kw)
+    inv = projection._PsdInverse(np.diag([1.0, 1.0, 0.0]))
+    assert inv.L is None  # a singular covariance is never factored by Cholesky
+    assert chol.order_ == eig.order_ == 3
+    rng = np.random.default_rng(2)
+    args = (rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2)))
+    np.testing.assert_allclose(chol.predict_many(*args), eig.predict_many(*args), rtol=1e-7, atol=1e-9)
