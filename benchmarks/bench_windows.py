@@ -86,7 +86,10 @@ def child_fit(path: str, method: str, past: int, horizon: int) -> dict:
     t0 = time.perf_counter()
     est.fit(session)
     seconds = time.perf_counter() - t0
-    return {"seconds": seconds, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+    out = {"seconds": seconds, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+    if getattr(est, "factor_route_", None):  # the direct predictors: which factor route, and the Gram's condition
+        out["route"] = f"{est.factor_route_} route, Gram condition {est.gram_condition_:.3g}"
+    return out
 
 
 def child_gram(path: str, n_lags: int) -> dict:
@@ -141,6 +144,8 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
     text = f"{r['seconds']:.2f} s, {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
     if ref and "seconds" in ref:
         text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
+    if "route" in r:
+        text += f" ({r['route']})"
     return text
 
 
