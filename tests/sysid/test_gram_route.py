@@ -146,6 +146,35 @@ def test_gram_route_predicts_as_the_qr_route_on_well_conditioned_data(noisy, cls
     np.testing.assert_allclose(gram.cv_table_["validation_error"], qr.cv_table_["validation_error"], rtol=1e-8)
 
 
+def _one_signed(mean, T=4000, noise=0.1, seed=0):
+    """The system of :func:`_system` driven by one-signed inputs (``mean`` + |N(0, 1)|), as pulse amplitudes are."""
+    rng = np.random.default_rng(seed)
+    u = mean + np.abs(rng.standard_normal((T, 2)))
+    A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
+    x, y = np.zeros(3), np.zeros((T, 3))
+    for k in range(T):
+        y[k] = x + noise * rng.standard_normal(3)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, 5).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.mark.parametrize("mean", [5.0, 10.0])  # estimated conditions 2.6e7 and 9.1e7
+@pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
+def test_one_signed_inputs_keep_the_gram_route_with_the_qr_routes_predictions(cls, mean):
+    # issue 14, found at the merge with the pulse-train demo: one-signed inputs raise the Gram's condition above the
+    # old limit (1e7), and long-window fits fell to the QR route (24.7 s instead of ~1 s). Between 1e7 and 1e8 the
+    # bound eps·κ (Golub & Van Loan 2013, section 5.3.8) stays near 1e-8, and the predictions agree far closer.
+    s, P, N = _one_signed(mean), 5, 8
+    auto, qr = _fit(cls, s, "auto", past_steps=P, horizon_steps=N), _fit(cls, s, "qr", past_steps=P, horizon_steps=N)
+    assert auto.factor_route_ == "gram" and 1e7 < auto.gram_condition_ < gr.GRAM_CONDITION_LIMIT
+    rng = np.random.default_rng(5)
+    windows = (mean + np.abs(rng.standard_normal((6, P, 2))), rng.standard_normal((6, P, 3)),
+               mean + np.abs(rng.standard_normal((6, N, 2))))
+    a, b = qr.predict_many(*windows), auto.predict_many(*windows)
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
+
+
 @pytest.fixture(scope="module")
 def ill():
     """Nearly noise-free outputs: the Hankel Gram of past 4 + horizon 8 is nearly singular (rank ≈ inputs·L +
