@@ -50,6 +50,17 @@ def _strength(name, v):
     return a
 
 
+class _SessionUpdates:
+    """``update_session``: every valid segment of a session's trials taken in as a new run, through ``update``."""
+
+    def update_session(self, session):
+        """Take in every valid segment of a session's trials (each a new run)."""
+        for a, b in session.segments():
+            u, y, _ = session.read(a, b)
+            self.update(u, y, new_trial=True)
+        return self
+
+
 class _Runs:
     """The samples of the current run (the last ``keep`` of them) and the channel counts; shared bookkeeping."""
 
@@ -89,7 +100,7 @@ class _Runs:
         return runs
 
 
-class OnlineRidgeArx:
+class OnlineRidgeArx(_SessionUpdates):
     """Ridge ARX of a fixed structure, updated with every new sample; equal to a batch refit on the same data.
 
     Parameters
@@ -184,13 +195,6 @@ class OnlineRidgeArx:
                 self._accumulate(*rows)
         return self
 
-    def update_session(self, session):
-        """Take in every valid segment of a session's trials (each a new run)."""
-        for a, b in session.segments():
-            u, y, _ = session.read(a, b)
-            self.update(u, y, new_trial=True)
-        return self
-
     def _accumulate(self, X, Y):
         if self._sums is None:
             x0 = X[0].copy() if self.fit_intercept else np.zeros(X.shape[1])
@@ -257,7 +261,7 @@ class OnlineRidgeArx:
         return model.replace(past_steps=max(self.past_steps_, 1))
 
 
-class OnlineLsqPredictor:
+class OnlineLsqPredictor(_SessionUpdates):
     """The least-squares Hankel predictor (SPC maps), updated by block QR as windows arrive; equal to a batch refit.
 
     Parameters
@@ -335,13 +339,6 @@ class OnlineLsqPredictor:
                 self._R = sla.qr(blocks, mode="r", overwrite_a=True, check_finite=False)[0][:W.shape[1]]
                 self.n_columns_ += W.shape[0]
                 self._solved = None
-        return self
-
-    def update_session(self, session):
-        """Take in every valid segment of a session's trials (each a new run)."""
-        for a, b in session.segments():
-            u, y, _ = session.read(a, b)
-            self.update(u, y, new_trial=True)
         return self
 
     def _windows(self, z):

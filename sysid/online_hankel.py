@@ -19,13 +19,13 @@ import numpy as np
 from .datadriven.base import _data_scale
 from .datadriven.hankel_predictor import HankelBlocks, _kkt_map, _projection_complement
 from .exceptions import InvalidParameterError, NotFittedError, SessionError
-from .online import OnlineLsqPredictor, _strength
+from .online import OnlineLsqPredictor, _SessionUpdates, _strength
 from .protocols import DataBlocks
 
 __all__ = ["OnlineHankelPredictor"]
 
 
-class OnlineHankelPredictor:
+class OnlineHankelPredictor(_SessionUpdates):
     """DeePC's data (the compressed Hankel matrix) updated by block QR as trials arrive.
 
     Parameters
@@ -96,13 +96,6 @@ class OnlineHankelPredictor:
         self.input_units_, self.output_units_ = ("uA",) * m, ("",) * p
         self.n_columns_ = self._factor.n_columns_
         self._blocks = None
-        return self
-
-    def update_session(self, session):
-        """Take in every valid segment of a session's trials (each a new run)."""
-        for a, b in session.segments():
-            u, y, _ = session.read(a, b)
-            self.update(u, y, new_trial=True)
         return self
 
     def _scaled(self):
