@@ -26,6 +26,8 @@ from stimsteer.sysid import StateSpaceModel
 from stimsteer.sysid.exceptions import LimitsError
 from stimsteer.sysid.stimulation import InputMapping, StimulationDescription, decode_plan
 
+# Shannon (1992), A model of safe levels for electrical stimulation, IEEE Trans. Biomed. Eng. 39:424: the limit
+# k = log10(D) + log10(Q) <= 1.75 that clinical practice applies (common practice, no source for the 1.75 choice)
 SHANNON_K = 1.75
 
 

@@ -1,5 +1,8 @@
 """The Hankel predictor's prediction map from one KKT solve per output row (the transposed system) equals the map
-from one solve per window coordinate."""
+from one solve per window coordinate.
+
+The reference is the per-coordinate solve this replaces (an internal equivalence, not an outside source); that
+solving Kᵀ X = Bᵀ gives the rows of B K⁻¹ is linear algebra (common practice, no source)."""
 
 from __future__ import annotations
 

@@ -1,5 +1,8 @@
 """Subspace identification at long windows: the B, D normal equations from the block-Toeplitz structure equal the
-dense-basis ones, in bounded memory; the held-out error through the predictor's parts equals the dense map."""
+dense-basis ones, in bounded memory; the held-out error through the predictor's parts equals the dense map.
+
+The reference is the dense-basis computation this replaces (an internal equivalence, not an outside source); the
+block-Toeplitz map of Markov parameters is the standard one (Ho & Kalman 1966)."""
 
 from __future__ import annotations
 
