@@ -45,8 +45,9 @@ def trial_conditions(session, conditions=None) -> tuple:
     labels = session.metadata.get(METADATA_KEY) if conditions is None else conditions
     if labels is None:
         raise SessionError(f"the session has no condition labels; give one label per trial (conditions=... in "
-                           f"Python), or store them in the session's metadata under {METADATA_KEY!r} and save it "
-                           "as HDF5 (stimsteer.sysid.io.save_session) for the command line.")
+                           "Python), or, for the command line, add a 'condition' column to the session table (the "
+                           "trial's label on each of its rows) or store them in the session's metadata under "
+                           f"{METADATA_KEY!r}.")
     labels = tuple(str(c) for c in labels)
     if len(labels) != session.n_trials:
         raise SessionError(f"condition labels must be one per trial: the session has {session.n_trials} trials and "

@@ -370,7 +370,8 @@ class Session(TrialLayout):
     def select_trials(self, indices: Sequence[int]) -> "Session":
         """A new session holding only the given trials (in the given order), concatenated and re-indexed.
 
-        The metadata records the original trial indices under ``"source_trials"``.
+        The metadata records the original trial indices under ``"source_trials"``; condition labels
+        (``"trial_conditions"``, one per trial) follow their trials.
         """
         idx = [int(i) for i in np.atleast_1d(np.asarray(indices, dtype=np.int64))]
         if not idx:
@@ -389,9 +390,11 @@ class Session(TrialLayout):
         trials = np.column_stack([np.concatenate(([0], stops[:-1])), stops])
         src = self.metadata.get("source_trials")
         origin = [int(src[i]) for i in idx] if src is not None and len(src) == self.n_trials else idx
-        return dataclasses.replace(
-            self, u=u, y=y, mask=mask, output_mask=output_mask, trials=trials, metadata={**self.metadata, "source_trials": origin}
-        )
+        metadata = {**self.metadata, "source_trials": origin}
+        labels = self.metadata.get("trial_conditions")  # one condition label per trial: kept with its trial
+        if labels is not None and len(labels) == self.n_trials:
+            metadata["trial_conditions"] = [labels[i] for i in idx]
+        return dataclasses.replace(self, u=u, y=y, mask=mask, output_mask=output_mask, trials=trials, metadata=metadata)
 
     def select(self, *, inputs=None, outputs=None, drop=None) -> "Session":
         """A new session with only some channels, chosen by name or glob pattern (``"lfp_*"``, ``"site_?"``).

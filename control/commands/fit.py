@@ -70,8 +70,8 @@ def add_parser(subparsers) -> None:
                    help="fit N members of the method on bootstrap resamples of the training trials (an ensemble "
                    "with prediction intervals); prints the held-out coverage of its 95 %% intervals")
     p.add_argument("--conditions", action="store_true",
-                   help="also fit one model per condition on its training trials (labels in the session's metadata "
-                   "'trial_conditions'), score each against the pooled model on the held-out trials, and report "
+                   help="also fit one model per condition on its training trials (labels from the session table's "
+                   "'condition' column or its metadata 'trial_conditions'), score each against the pooled model on the held-out trials, and report "
                    "step gains per condition with 95 %% bootstrap intervals; writes the folder MODEL_conditions/ "
                    "beside --out (condition_<label>.h5 model files, conditions.csv, step_gains.csv)")
     p.add_argument("--trial-windows", dest="trial_windows", type=whole_number(2), metavar="K",

@@ -97,7 +97,7 @@ def add_parser(subparsers) -> None:
                    "header: node names); default each channel is the node of the same name")
     s.add_argument("--shrink", type=float, default=0.0, help="ridge weight pulling fitted weights toward the map's")
     s.add_argument("--conditions", metavar="LABELS", help="comma-separated condition label of every trial (default: "
-                   "the session's metadata 'trial_conditions')")
+                   "the session table's 'condition' column or its metadata 'trial_conditions')")
     s.add_argument("--bootstrap", type=int, default=200, help="bootstrap resamples over trials (default 200)")
     s.add_argument("--seed", type=whole_number(0), default=0, help="seed of the held-out split and the bootstrap")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")

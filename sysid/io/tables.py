@@ -17,6 +17,10 @@ column header                  content
                                or a negative label marks a row outside every trial (allowed, e.g. the
                                gaps between trials).
 ``valid``                      optional; 1/0 or true/false, 1 = valid sample. Default: all valid.
+``condition``                  optional; a text label of the trial's condition (``"off"``, ``"130Hz"``),
+                               the same on every row of a trial (empty outside trials). It becomes the
+                               metadata key ``trial_conditions``, one label per trial, which
+                               ``fit --conditions`` and ``network --conditions`` read.
 ``in:<name> [<unit>]``         one column per stimulation input, e.g. ``in:site_a [uA]``
 ``out:<name> [<unit>]``        one column per recorded output, e.g. ``out:lfp_1 [mV]``; at least one
 =============================  ======================================================================
@@ -51,6 +55,7 @@ from ._common import LAYOUT_VERSION, _as_session, _metadata_json
 _TABLE_LAYOUT = "stimsteer-table"
 _CSV_METADATA = "# stimsteer-metadata: "  # a CSV table's comment line holding the session metadata (JSON)
 _ROLE_RE = re.compile(r"^\s*(in|out)\s*:")
+_CONDITIONS_KEY = "trial_conditions"  # the metadata key of one condition label per trial (sysid.conditions)
 
 
 # ==================================================================================================== tables
@@ -91,6 +96,11 @@ def _table_columns(session: Session) -> dict:
         "trial": label,
         "valid": session.mask.astype(np.int64),
     }
+    conditions = session.metadata.get(_CONDITIONS_KEY)
+    if conditions is not None and len(conditions) == session.n_trials:
+        cols["condition"] = np.full(session.n_samples, "", dtype=object)
+        for c, (a, b) in zip(conditions, session.trials):
+            cols["condition"][a:b] = str(c)
     for role, data, names, units in (("in", session.u, session.input_names, session.input_units),
                                       ("out", session.y, session.output_names, session.output_units)):
         for j, (name, unit) in enumerate(zip(names, units)):
@@ -191,7 +201,8 @@ def _read_parquet_frame(path: Path):
     return table.to_pandas(), meta
 
 
-_TABLE_EXPECTED = ("'time [s]' (optionally 'time [s] @ <rate> Hz'), 'trial', optional 'valid', and channel "
+_TABLE_EXPECTED = ("'time [s]' (optionally 'time [s] @ <rate> Hz'), 'trial', optional 'valid' and 'condition', "
+                   "and channel "
                    "columns 'in:<name> [<unit>]' / 'out:<name> [<unit>]'")
 
 
@@ -200,13 +211,13 @@ def _parse_header(columns, path: Path) -> dict:
     dupes = sorted({c for c in columns if columns.count(c) > 1})
     if dupes:
         raise FileFormatError(f"{path}: column headers must be unique; found duplicates {dupes}.")
-    out = {"time": None, "rate": None, "trial": None, "valid": None, "in": [], "out": []}
+    out = {"time": None, "rate": None, "trial": None, "valid": None, "condition": None, "in": [], "out": []}
     unknown = []
     for col in columns:
         t, ch = _TIME_RE.match(col), _CHANNEL_RE.match(col)
         if t is not None:
             out["time"], out["rate"] = col, t["rate"]
-        elif col.strip() in ("trial", "valid"):
+        elif col.strip() in ("trial", "valid", "condition"):
             out[col.strip()] = col
         elif ch is not None:
             if not ch["name"] or not ch["unit"].strip():
@@ -328,6 +339,33 @@ def _mask_empty_cells(valid, values: np.ndarray, names, rate: float, meta: dict)
     return base & ~rows
 
 
+def _label_text(value) -> str:
+    """A condition cell as text: empty for a missing cell, ``2`` (not ``2.0``) for a whole number read as float."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value).strip()
+
+
+def _conditions_from_column(column, trials: np.ndarray, stored, path: Path) -> list[str]:
+    """One condition label per trial from the ``condition`` column: the one label on every row of the trial."""
+    text = np.array([_label_text(v) for v in column.to_numpy(dtype=object)], dtype=object)
+    labels = []
+    for i, (a, b) in enumerate(trials):
+        found = sorted(set(text[a:b]) - {""})
+        if len(found) != 1 or (text[a:b] == "").any():
+            what = f"labels {found}" if len(found) > 1 else "empty cells" if found else "no label"
+            raise FileFormatError(f"{path}: the 'condition' column must hold one label on every row of a trial; "
+                                  f"trial {i} (rows {int(a)}-{int(b) - 1}) has {what}. Give each row of the trial "
+                                  "its trial's condition.")
+        labels.append(found[0])
+    if stored is not None and [str(c) for c in stored] != labels:
+        raise FileFormatError(f"{path}: the 'condition' column ({labels}) disagrees with the metadata's "
+                              f"{_CONDITIONS_KEY!r} ({list(stored)}); keep one of the two.")
+    return labels
+
+
 def _session_from_table(frame, path: Path, metadata: dict) -> Session:
     spec = _parse_header(list(frame.columns), path)
     if len(frame) == 0:
@@ -340,6 +378,9 @@ def _session_from_table(frame, path: Path, metadata: dict) -> Session:
     meta = dict(metadata)
     if t0 != 0.0:
         meta["start_time_s"] = t0
+    if spec["condition"] is not None:
+        meta[_CONDITIONS_KEY] = _conditions_from_column(frame[spec["condition"]], trials, meta.get(_CONDITIONS_KEY),
+                                                        path)
     names = [f"{role}:{n}" for role, chans in (("in", spec["in"]), ("out", spec["out"])) for _, n, _ in chans]
     mask = _mask_empty_cells(_valid_column(frame, spec["valid"], path), np.column_stack([u, y]), names, rate, meta)
     return _as_session(

@@ -27,7 +27,7 @@ CONDITIONS_KEY = "trial_conditions"
 
 
 def trial_conditions(session, labels=None) -> tuple:
-    """One condition label per trial: ``labels`` if given, else ``session.metadata["trial_conditions"]``.
+    """One condition label per trial (:func:`stimsteer.sysid.conditions.trial_conditions`), at least two of each.
 
     Raises
     ------
@@ -35,14 +35,9 @@ def trial_conditions(session, labels=None) -> tuple:
         When no labels exist, their count differs from the number of trials, or a condition has fewer than 2
         trials (no bootstrap interval).
     """
-    if labels is None:
-        labels = session.metadata.get(CONDITIONS_KEY)
-    if labels is None:
-        raise SessionError(f"the session's trials carry no condition labels (metadata {CONDITIONS_KEY!r}); give one "
-                           "label per trial (--conditions a,b,a,...).")
-    labels = tuple(str(x) for x in labels)
-    if len(labels) != session.n_trials:
-        raise SessionError(f"expected one condition label per trial ({session.n_trials}); got {len(labels)}.")
+    from ..conditions import trial_conditions as _labels_per_trial
+
+    labels = _labels_per_trial(session, labels)
     for c in dict.fromkeys(labels):
         if labels.count(c) < 2:
             raise SessionError(f"condition {c!r} has {labels.count(c)} trial; each condition needs at least 2 trials "

@@ -128,3 +128,19 @@ def test_a_condition_with_too_few_training_trials_is_refused_before_the_fit(tmp_
     assert code == 2 and "'B/x' has 1; each condition needs at least 2 trials" in err
     assert "Counted in the 9 training trials" in err and len(err.strip().splitlines()) == 1
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.h5"]
+
+
+def test_a_hand_written_table_with_a_condition_column_is_fitted_per_condition(tmp_path, capsys):
+    # a lab's own CSV, no stimsteer metadata line: the 'condition' column alone labels the trials
+    labels = ["A" if k % 2 == 0 else "B/x" for k in range(N_TRIALS)]
+    s = _session(labels)
+    rows = np.arange(s.n_samples)
+    pd.DataFrame({"time [s] @ 100 Hz": rows / 100.0, "trial": rows // LEN,
+                  "condition": [labels[k] for k in rows // LEN], "in:site [uA]": s.u[:, 0],
+                  "out:y0 [a.u.]": s.y[:, 0]}).to_csv(tmp_path / "s.csv", index=False)
+    assert main(["fit", str(tmp_path / "s.csv"), "--route", "indirect", "--method", "arx", "--past", "2samples",
+                 "--out", str(tmp_path / "m.h5"), "--conditions", "--bootstrap", "4"]) == 0
+    assert "one model per condition fitted on its training trials, 9 of 12" in capsys.readouterr().out
+    table = pd.read_csv(tmp_path / "m_conditions" / "conditions.csv")
+    assert sorted(table["condition"]) == ["A", "B/x"]
+    assert (table["vaf_condition_model"] > table["vaf_pooled_model"] + 5.0).all()

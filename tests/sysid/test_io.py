@@ -165,6 +165,29 @@ def test_hand_written_csv_with_rows_between_trials_and_inferred_rate(tmp_path):
     assert s.metadata == {"start_time_s": 1.0}
 
 
+def test_a_condition_column_labels_each_trial(tmp_path):
+    # rows outside trials may leave the condition empty; whole numbers stay whole ("2", not "2.0")
+    text = ("time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n0.1,0,off,2\n0.2,-1,,3\n0.3,1,130Hz,4\n"
+            "0.4,2,2,5\n")
+    s = load_session(_write(tmp_path / "c.csv", text))
+    assert s.metadata["trial_conditions"] == ["off", "130Hz", "2"]
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".parquet"])
+def test_condition_labels_round_trip_through_tables_and_follow_selected_trials(tmp_path, rng, suffix):
+    s = _session(rng, metadata={"trial_conditions": ["off", "on", "off"]})
+    back = load_session(save_session(s, tmp_path / f"s{suffix}"))
+    assert back.metadata["trial_conditions"] == ["off", "on", "off"]
+    assert back.select_trials([2, 1]).metadata["trial_conditions"] == ["off", "on"]
+
+
+def test_a_condition_column_that_disagrees_with_the_stored_metadata_is_refused(tmp_path):
+    text = ('# stimsteer-metadata: {"trial_conditions": ["on"]}\n'
+            "time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n")
+    with pytest.raises(FileFormatError, match=r"disagrees with the metadata's 'trial_conditions'"):
+        load_session(_write(tmp_path / "c.csv", text))
+
+
 def test_csv_without_valid_column_is_all_valid(tmp_path):
     path = tmp_path / "t.csv"
     path.write_text("time [s] @ 10 Hz,trial,out:y [a.u.]\n0,0,1\n0.1,0,2\n0.2,-1,3\n")
@@ -198,6 +221,10 @@ BAD_TABLES = {
     "inf_valid": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,inf\n", r"in output 'y' at t = 0.1 s"),
     "header_only": ("time [s] @ 10 Hz,trial,out:y [mV]\n", r"holds a header but no rows"),
     "zero_rate": ("time [s] @ 0 Hz,trial,out:y [mV]\n0,0,1\n", r"sampling rate must be positive"),
+    "two_conditions_in_a_trial": ("time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n0.1,0,on,1\n",
+                                  r"trial 0 \(rows 0-1\) has labels \['off', 'on'\]"),
+    "unlabelled_trial_row": ("time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n0.1,0,,1\n",
+                             r"trial 0 \(rows 0-1\) has empty cells"),
 }
 
 
