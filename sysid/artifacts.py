@@ -54,9 +54,10 @@ def _check_session(session, where: str) -> None:
         raise SessionError(f"{where} needs a Session; got {type(session).__name__}. Load one with load_session.")
 
 
-def _columns(session: Session, inputs) -> list[int]:
+def _columns(session: Session, inputs, what: str = "artifact handling") -> list[int]:
+    """The input columns whose onsets count (default all), by name."""
     if session.n_inputs == 0:
-        raise SessionError("artifact handling needs at least one input channel to find stimulation onsets.")
+        raise SessionError(f"{what} needs at least one input channel to find stimulation onsets.")
     if inputs is None:
         return list(range(session.n_inputs))
     names = [inputs] if isinstance(inputs, str) else list(inputs)
@@ -325,19 +326,6 @@ def interpolate_artifacts(session: Session, *, window_s: float, threshold: float
 
 
 # ==================================================================================================== artifacts
-def _onset_columns(session: Session, inputs) -> list[int]:
-    if session.n_inputs == 0:
-        raise SessionError("blank_artifacts needs at least one input channel to find stimulation onsets.")
-    if inputs is None:
-        return list(range(session.n_inputs))
-    names = [inputs] if isinstance(inputs, str) else list(inputs)
-    unknown = [n for n in names if n not in session.input_names]
-    if unknown or not names:
-        raise SessionError(f"inputs {unknown or names} are not input channels of this session; choose among "
-                           f"{list(session.input_names)}.")
-    return [session.input_names.index(n) for n in names]
-
-
 def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float = 0.0, inputs=None) -> Session:
     """Blank the recorded outputs in a window of ``window_s`` seconds starting at every stimulation onset.
 
@@ -381,7 +369,7 @@ def blank_artifacts(session: Session, *, window_s: float, onset_threshold: float
         raise SessionError(f"window_s must be a positive number of seconds; got {window_s}.")
     if not math.isfinite(onset_threshold):
         raise SessionError(f"onset_threshold must be finite; got {onset_threshold}.")
-    onsets = _onsets(session.u, _onset_columns(session, inputs), onset_threshold)
+    onsets = _onsets(session.u, _columns(session, inputs, "blank_artifacts"), onset_threshold)
     width = max(1, math.ceil(window_s * session.sample_rate_hz - 1e-9))
     output_mask = np.array(session.output_mask)
     for a, b in _merged_runs(onsets, width, session.n_samples):
