@@ -11,6 +11,7 @@ Three ways to describe a study:
       [study]
       name = "reach-stim-2026"
       [settings]                   # any StudySettings field; methods as "route/method"
+      limits = "limits.toml"       # optional: declared limits of the closed loops (relative to the study file)
       methods = ["indirect/subspace", "direct/lsq"]
       [groups]                     # optional: subject -> group
       s01 = "sham"
@@ -134,7 +135,10 @@ def study_file_settings(path) -> dict:
     path = Path(path)
     if path.is_dir() and (path / STUDY_FILE).is_file():
         path = path / STUDY_FILE
-    return dict(_load_toml(path).get("settings", {})) if path.is_file() else {}
+    settings = dict(_load_toml(path).get("settings", {})) if path.is_file() else {}
+    if isinstance(settings.get("limits"), str):  # a limits file, relative to the study file
+        settings["limits"] = str(path.parent / settings["limits"])
+    return settings
 
 
 def _load_toml(path: Path) -> dict:

@@ -74,7 +74,8 @@ def task_key(kind, test: SessionRef, train, train_trials, method_index, split, s
     drawn = [[r.content_hash, list(t)] for r, t in zip(train, train_trials)]
     settings = st.task_dict()
     if kind != "sessions":
-        settings.pop("control")  # only the per-session analysis steers a plant
+        settings.pop("control")  # only the per-session analysis steers a plant (under the limits)
+        settings.pop("limits", None)
     text = json.dumps([CACHE_VERSION, kind, test.content_hash, drawn, st.methods[method_index].to_dict(), int(split),
                        settings], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
