@@ -32,6 +32,7 @@ import argparse
 import os
 import shutil
 import signal
+import statistics
 import tempfile
 import threading
 import time
@@ -183,10 +184,9 @@ def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0
               f"{two['tasks_cpu'] / one['tasks_cpu']:.2f}) | 1w {one['workers_extra']:.1f}; {one['client_scheduler']:.1f} s"
               f" - 2w {two['workers_extra']:.1f}; {two['client_scheduler']:.1f} s | {_cpu_ratio(one, two):.2f}x |")
     ex = runs[2]["result"].provenance["execution"]
-    ratios = sorted(r[0] for r in rows)
-    rel = sorted(r[0] / r[1] for r in rows)
+    ratio, rel = statistics.median(r[0] for r in rows), statistics.median(r[0] / r[1] for r in rows)
     print(f"speed: {len(runs[1]['result'].tasks)} tasks in {ex['n_batches']} batches; study 2-vs-1 median "
-          f"{ratios[len(ratios) // 2]:.2f}x (target >= 1.8), study / ceiling median {rel[len(rel) // 2]:.2f}; "
+          f"{ratio:.2f}x (target >= 1.8), study / ceiling median {rel:.2f}; "
           f"identical numbers with 1 and 2 workers: {all(r[2] for r in rows)}; load now {_load()}; "
           f"section wall time {time.perf_counter() - t_start:.0f} s")
     return runs[2]["result"]
