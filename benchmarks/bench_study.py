@@ -5,7 +5,14 @@ Measured in one run (targets printed, never asserted):
 * the study on a Dask LocalCluster (127.0.0.1) with 1 worker and with 2 (one thread each); speed-up of 2 over 1
   (baseline: the 1-worker cluster, same tasks), target >= 1.8; the two must give identical numbers (checked).
   Printed beside it: the machine's own 2-vs-1 ceiling, a pure-CPU job run on the same cluster before and after each
-  study run (what any 2-worker speed-up can reach under the load of that moment), and the load average;
+  study run (what any 2-worker speed-up can reach under the load of that moment), and the load average. 1 and 2
+  workers run back to back, ``--repeats`` times; each row also says where the time went: the share of the 2-worker
+  run's wall time the workers spent in tasks (the rest: start, round trips, the serial description and tables in
+  this process, the tail), the tasks' own time with 2 workers against 1 (above 1: the two workers slow each other
+  down, or other work took the cores), and the CPU seconds spent beyond the tasks in the workers (Dask's event loop,
+  monitors, serialisation) and in this process (client, LocalCluster's scheduler, the study's table), and the
+  2-vs-1 ratio these CPU seconds would allow if nothing else ran (Dask's monitors cost CPU per second of wall time,
+  so a loaded machine inflates the part beyond the tasks and this estimate is then pessimistic);
 * peak traced memory (tracemalloc) of the heaviest task of each analysis against the fit of the largest session
   alone (load it, fit both methods on all its trials), target <= 2;
 * a rerun after one new session was added, from the cache: tasks computed (printed with the tasks that the new
@@ -15,7 +22,7 @@ Measured in one run (targets printed, never asserted):
 Run from the repository root::
 
     .venv/bin/python benchmarks/bench_study.py [--subjects 40] [--sessions 3] [--analyses sessions,days,subjects,sites]
-        [--stages memory,speed,killed,rerun] [--splits N]
+        [--stages memory,speed,killed,rerun] [--splits N] [--repeats 2]
     .venv/bin/python benchmarks/bench_study.py --speed-only     # the speed-up alone, a few minutes when quiet
 """
 
@@ -25,6 +32,7 @@ import argparse
 import os
 import shutil
 import signal
+import statistics
 import tempfile
 import threading
 import time
@@ -50,13 +58,6 @@ def _cluster(n: int):
 
     return LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
                         dashboard_address=None, silence_logs=50)
-
-
-def _timed(root, st, n_workers: int, cache=None):
-    with _cluster(n_workers) as cluster:
-        t0 = time.perf_counter()
-        result = run_study(root, st, scheduler=cluster.scheduler_address, cache=cache)
-        return result, time.perf_counter() - t0
 
 
 def _traced(fn) -> int:
@@ -127,34 +128,68 @@ def _load() -> str:
     return "/".join(f"{v:.1f}" for v in os.getloadavg())
 
 
-def speed(root, st, cpu_tasks: int = 16, cpu_task_s: float = 0.25):
-    """The study on 1 worker and on 2, each between two runs of a pure-CPU job on the same cluster (the machine's
-    own 2-vs-1 ceiling under the load of that moment, measured the same way). Workers have imported the toolkit
-    before either is timed (a one-off start-up per worker, not part of a study's throughput)."""
-    size, loads, runs, cpu = _spin_size(cpu_task_s), [_load()], {}, {}
-    t_start = time.perf_counter()
-    for n in (1, 2):
-        with _cluster(n) as cluster:
-            before = cpu_job(cluster.scheduler_address, cpu_tasks, size)
-            t0 = time.perf_counter()
-            runs[n] = run_study(root, st, scheduler=cluster.scheduler_address)
-            runs[n] = (runs[n], time.perf_counter() - t0)
-            cpu[n] = before + cpu_job(cluster.scheduler_address, cpu_tasks, size)
-        loads.append(_load())
-    (one, t1), (two, t2) = runs[1], runs[2]
-    same = _numbers(one).equals(_numbers(two))
-    ratio, ceiling = t1 / t2, cpu[1] / cpu[2]
-    ex = two.provenance["execution"]
-    print(f"speed: {len(one.tasks)} tasks in {ex['n_batches']} batches; 1 worker {t1:.1f} s, 2 workers {t2:.1f} s")
-    print("  | measured on the same Dask LocalCluster | 2 workers vs 1 |")
-    print("  | --- | --- |")
-    print(f"  | the study | {ratio:.2f}x (target >= 1.8) |")
-    print(f"  | pure-CPU job ({cpu_tasks} tasks of ~{cpu_task_s:g} s, before and after each study run) | "
-          f"{ceiling:.2f}x (the machine's ceiling now) |")
-    print(f"  | the study / the ceiling | {ratio / ceiling:.2f} |")
-    print(f"  load average (1/5/15 min): {loads[0]} at the start, {loads[1]} after 1 worker, {loads[2]} after 2; "
-          f"identical numbers with 1 and 2 workers: {same}; section wall time {time.perf_counter() - t_start:.0f} s")
-    return two
+def _process_cpu() -> float:
+    return time.process_time()
+
+
+def _timed_study(address: str, root, st) -> dict:
+    """One study run on the cluster at ``address``: wall time, and where the CPU time went (the tasks' own threads;
+    the worker processes beyond their tasks: Dask's event loop, (de)serialisation, monitors; this process: client
+    and LocalCluster's scheduler)."""
+    from distributed import Client
+
+    client = Client(address, set_as_default=False)
+    try:
+        workers0, here0, t0 = client.run(_process_cpu), time.process_time(), time.perf_counter()
+        result = run_study(root, st, scheduler=address)
+        wall, here = time.perf_counter() - t0, time.process_time() - here0
+        workers = sum(client.run(_process_cpu).values()) - sum(workers0.values())
+    finally:
+        client.close()
+    tasks_cpu, tasks_wall = float(result.tasks["cpu_s"].sum()), float(result.tasks["total_s"].sum())
+    return {"result": result, "wall": wall, "tasks_cpu": tasks_cpu, "tasks_wall": tasks_wall,
+            "workers_extra": workers - tasks_cpu, "client_scheduler": here}
+
+
+def _cpu_ratio(one: dict, two: dict) -> float:
+    """The 2-vs-1 ratio the CPU seconds allow on an otherwise idle machine: 1 worker takes its tasks' CPU time (Dask
+    and this process run on the other core); 2 workers share both cores with everything the run spent."""
+    spent = two["tasks_cpu"] + two["workers_extra"] + two["client_scheduler"]
+    return 2 * one["tasks_cpu"] / spent
+
+
+def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0.25):
+    """The study on 1 worker and on 2, back to back, ``repeats`` times; each run between two runs of a pure-CPU job
+    on the same cluster (the machine's own 2-vs-1 ceiling under the load of that moment, measured the same way).
+    Workers have imported the toolkit before either is timed (a one-off start-up per worker, not part of a study's
+    throughput), the same for 1 and 2 workers."""
+    size, t_start, rows, runs = _spin_size(cpu_task_s), time.perf_counter(), [], {}
+    print("  | rep | load before | 1 worker | 2 workers | study 2-vs-1 | pure-CPU 2-vs-1 (ceiling) | study / ceiling "
+          "| 2 workers: workers busy | task time 2w / 1w | CPU beyond tasks (workers; client+scheduler) "
+          "| CPU-accounted 2-vs-1 |")
+    print("  | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+    for rep in range(repeats):
+        load, cpu = _load(), {}
+        for n in (1, 2):
+            with _cluster(n) as cluster:
+                before = cpu_job(cluster.scheduler_address, cpu_tasks, size)
+                runs[n] = _timed_study(cluster.scheduler_address, root, st)
+                cpu[n] = before + cpu_job(cluster.scheduler_address, cpu_tasks, size)
+        one, two = runs[1], runs[2]
+        ratio, ceiling = one["wall"] / two["wall"], cpu[1] / cpu[2]
+        busy = two["tasks_wall"] / (2 * two["wall"])
+        rows.append((ratio, ceiling, _numbers(one["result"]).equals(_numbers(two["result"]))))
+        print(f"  | {rep + 1} | {load} | {one['wall']:.1f} s | {two['wall']:.1f} s | {ratio:.2f}x | {ceiling:.2f}x | "
+              f"{ratio / ceiling:.2f} | {busy:.0%} | {two['tasks_wall'] / one['tasks_wall']:.2f} (CPU "
+              f"{two['tasks_cpu'] / one['tasks_cpu']:.2f}) | 1w {one['workers_extra']:.1f}; {one['client_scheduler']:.1f} s"
+              f" - 2w {two['workers_extra']:.1f}; {two['client_scheduler']:.1f} s | {_cpu_ratio(one, two):.2f}x |")
+    ex = runs[2]["result"].provenance["execution"]
+    ratio, rel = statistics.median(r[0] for r in rows), statistics.median(r[0] / r[1] for r in rows)
+    print(f"speed: {len(runs[1]['result'].tasks)} tasks in {ex['n_batches']} batches; study 2-vs-1 median "
+          f"{ratio:.2f}x (target >= 1.8), study / ceiling median {rel:.2f}; "
+          f"identical numbers with 1 and 2 workers: {all(r[2] for r in rows)}; load now {_load()}; "
+          f"section wall time {time.perf_counter() - t_start:.0f} s")
+    return runs[2]["result"]
 
 
 def killed(root, st, reference, cache) -> None:
@@ -205,6 +240,7 @@ def main() -> None:
     p.add_argument("--splits", type=int, default=None, help="seeded splits per session (default: the quick 2)")
     p.add_argument("--analyses", default="sessions,days,subjects,sites")
     p.add_argument("--stages", default="memory,speed,killed,rerun", help="which measurements to run")
+    p.add_argument("--repeats", type=int, default=2, help="back-to-back 1- and 2-worker runs of the speed stage")
     p.add_argument("--speed-only", action="store_true",
                    help="only the 2-vs-1 speed-up, on 40 x 3 sessions, per-session analysis with its closed loops, "
                         "one split (a few minutes on a quiet 2-core machine)")
@@ -226,7 +262,7 @@ def main() -> None:
         if "memory" in stages:
             memory(root, st)
         if "speed" in stages:
-            reference = speed(root, st)
+            reference = speed(root, st, repeats=a.repeats)
         elif stages & {"killed", "rerun"}:  # the undisturbed reference for the killed-worker run, without timing it
             reference = run_study(root, st, n_workers=2)
         if "killed" in stages:

@@ -63,6 +63,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--quick", action="store_true", help="small settings for a first look")
     p.add_argument("--no-control", action="store_true", help="score prediction only: no closed loop per session "
                    "(by default each per-session fit steers a surrogate plant of its session, as `bench` does)")
+    p.add_argument("--limits", metavar="LIMITS.toml", help="declared stimulation limits of the closed loops (the "
+                   "limits file of `plan` and `bench`, matched to every session's inputs by name); default: the "
+                   "input range recorded on each split's training trials")
     p.add_argument("--description", metavar="TOML", help="for a BIDS dataset: how each recording becomes a session "
                    "(outputs, pulses, trials; as for `stimsteer convert`); converted files go to OUT.sessions")
     p.add_argument("--no-progress", action="store_true")
@@ -97,6 +100,8 @@ def study_settings(file_settings: dict, args) -> StudySettings:
             values[opt] = _split(getattr(args, opt))
     if getattr(args, "no_control", False):
         values["control"] = None
+    if getattr(args, "limits", None) is not None:
+        values["limits"] = str(args.limits)
     for name in ("methods", "channels", "analyses"):
         if name in values and isinstance(values[name], list):
             values[name] = tuple(values[name])
@@ -135,12 +140,16 @@ def study_files(args) -> tuple[StudyResult, dict]:
     """Claim ``--out``, describe and run the study, write the folder."""
     out = Path(args.out)
     with claim_output(out, force=args.force):
-        st = study_settings(study_file_settings(args.study), args)
+        file_settings = study_file_settings(args.study)
+        st = study_settings(file_settings, args)
         table = describe_study(args.study, channels=st.channels, min_trials=st.min_trials,
                                description=args.description, convert_dir=out.parent / f"{out.name}.sessions")
         cache = None if args.no_cache else (args.cache or out.parent / f"{out.name}.tasks")
         result = run_study(table, st, cache=cache, scheduler=args.scheduler, n_workers=args.workers,
                            progress=not args.no_progress)
+        if st.limits is not None:
+            src = getattr(args, "limits", None) or file_settings.get("limits")
+            result.provenance["limits_file"] = str(src) if isinstance(src, (str, Path)) else "the study file"
         return result, write_study(result, out, force=args.force)
 
 

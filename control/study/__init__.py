@@ -7,7 +7,8 @@ direct route win for most subjects or only for some; which stimulation site is b
   (``study.toml``: sessions, subjects, groups, settings) or a BIDS dataset, turned into a study table (subject,
   session, condition, file, content hash). Sessions are read lazily, on the worker that uses them.
 * **Analyses** (:mod:`~.tasks`, :mod:`~.grid`): per-session fits of every method with held-out scores and the
-  single-session benchmark's closed loop on a surrogate plant of the session (:mod:`~.loop`); across days
+  single-session benchmark's closed loop on a surrogate plant of the session (:mod:`~.loop`), inside declared limits
+  (``StudySettings.limits``, ``stimsteer study --limits``) or the recorded input range; across days
   (fit on a subject's earlier sessions, score on the later one, session offsets removed explicitly); across
   subjects (leave one subject out: the pooled model against the subject's own); site ranking per subject and its
   agreement across the cohort.

@@ -34,7 +34,7 @@ from .settings import StudySettings
 __all__ = ["task_table", "effects_table", "verdicts_table", "transfer_table", "site_tables", "loop_table"]
 
 _SCORES = ["r2_mean", "r2_step1", "r2_last", "nrmse_mean", "n_train_trials", "n_test_trials", "fit_s", "total_s",
-           *LOOP_SCORES]
+           "cpu_s", *LOOP_SCORES]
 #: Closed-loop comparisons: the task column compared and what it is.
 _LOOP = {"loop_tracking": ("tracking_rms", "closed-loop tracking error"),
          "loop_energy": ("energy_ua2", "closed-loop input energy")}

@@ -1,7 +1,8 @@
 """Where a study's tasks run, and the cache that makes a rerun compute only what is missing.
 
 * **Batches**: the tasks are sent to workers in batches, one per (analysis, scored session), each in (split,
-  method) order: a batch reads its scored session once and pools each split's training trials once, and costs one
+  method) order, the longest batches first (so the study does not end with one worker finishing a long batch while
+  the others wait): a batch reads its scored session once and pools each split's training trials once, and costs one
   round trip to the scheduler instead of one per task. Each task in a batch runs exactly as it would alone
   (:func:`~.tasks.run_task`) and is cached under its own key as its batch returns.
 * **Local processes** by default (``n_workers`` of them; 1 runs in this process), or a **Dask cluster** given by
@@ -76,11 +77,19 @@ def _install(st: StudySettings) -> None:
 
 def batches(tasks) -> list:
     """The tasks grouped into batches (module docstring): one per (analysis, scored session), in (split, method)
-    order."""
+    order; the longest batches first (see :func:`_cost`)."""
     groups: dict = {}
     for t in tasks:
         groups.setdefault((t.kind, t.test.content_hash), []).append(t)
-    return [sorted(g, key=lambda t: (t.split, t.method_index)) for g in groups.values()]
+    ordered = [sorted(g, key=lambda t: (t.split, t.method_index)) for g in groups.values()]
+    return sorted(ordered, key=_cost, reverse=True)  # stable: equal estimates keep the grid's order
+
+
+def _cost(batch) -> tuple:
+    """A batch's estimated length, for scheduling the longest first (a long batch started last would keep one worker
+    busy while the others wait at the end of the study): per-session batches first (they also steer), then tasks x
+    samples of the scored session (a transfer task draws as many training trials as the session's own fit)."""
+    return (batch[0].kind == "sessions", len(batch) * int(batch[0].test.n_samples))
 
 
 def run_batch(st: StudySettings, batch) -> list:
@@ -201,8 +210,10 @@ def _run_dask(st, todo, address, keep, bar) -> int:
 
     client = _connect(address, st.scheduler_timeout_s)
     try:
+        todo_batches = batches(todo)  # the longest first, and the scheduler keeps that order (priority)
         futures = [client.submit(run_batch, st, b, key=f"stimsteer-study-{b[0].key}", pure=False,
-                                 retries=st.max_retries) for b in batches(todo)]
+                                 retries=st.max_retries, priority=len(todo_batches) - i)
+                   for i, b in enumerate(todo_batches)]
         try:
             for fut in as_completed(futures, loop=client.loop):
                 for key, res in fut.result():

@@ -14,7 +14,8 @@ __all__ = ["study_tasks"]
 
 def _ref(row) -> SessionRef:
     return SessionRef(file=str(row.file), content_hash=str(row.content_hash), subject=str(row.subject),
-                      session=str(row.session), n_trials=int(row.n_trials))
+                      session=str(row.session), n_trials=int(row.n_trials),
+                      n_samples=int(row.n_samples))
 
 
 def study_tasks(table: StudyTable, st: StudySettings) -> tuple[list, list]:

@@ -3,7 +3,8 @@
 This is the single-session benchmark's closed-loop task (:func:`stimsteer.control.evaluation.closed_loop.steer`)
 run once per (session, method, split), with its surrogate plant (:func:`~stimsteer.control.evaluation.closed_loop.
 fit_surrogate`: a ridge ARX of twice the methods' longest past window, fitted on the split's held-out trials of the
-session, so the route steers a plant built from trials it never saw) and, as the benchmark does without declared
+session, so the route steers a plant built from trials it never saw), inside the study's declared limits
+(``StudySettings.limits``, matched to the session's inputs by name) or, as the benchmark does without declared
 limits, amplitude limits equal to the input range recorded on the training trials. The target is a pulse of
 ``target_level_std`` standard deviations on the target channel, above its training mean. The session is the one the
 route was fitted on: centred on its training trials' mean output when the study removes offsets.
@@ -49,7 +50,7 @@ def session_loop(st: StudySettings, task, predictor, session: Session, split_obj
     :data:`LOOP_SCORES` (``violations``: samples beyond any declared limit, summed over the kinds of limit)."""
     plant, quality = _surrogate(st, task.test.content_hash, task.split, split_obj, session)
     res = steer(predictor, session, split_obj.train, copy.deepcopy(plant), quality, control=st.control,
-                horizon_steps=st.horizon_steps, loop_seed=loop_seed)
+                horizon_steps=st.horizon_steps, limits=st.limits, loop_seed=loop_seed)
     loop = res["loop"]
     return {"tracking_rms": loop["tracking_rms"], "tracking_rms_all": loop["tracking_rms_all"],
             "energy_ua2": loop["energy_ua2"],

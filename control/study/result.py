@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from ...sysid import InvalidParameterError, StimsteerError
+from ...sysid import InvalidParameterError, LimitsError, StimsteerError
 from ...sysid._records import jsonable, versions
 from .analysis import effects_table, loop_table, site_tables, task_table, transfer_table, verdicts_table
 from .execute import TaskCache, execute_tasks
@@ -103,13 +103,15 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
     Returns
     -------
     StudyResult
-        The same settings and data give the same numbers locally, on Dask, from the cache or not (only ``fit_s``
-        and ``total_s`` differ).
+        The same settings and data give the same numbers locally, on Dask, from the cache or not (only the timings
+        ``fit_s``, ``control_s``, ``total_s`` and ``cpu_s`` differ).
 
     Raises
     ------
     InvalidParameterError
         Bad settings or worker count.
+    LimitsError
+        Declared limits (``settings.limits``) that do not match a session's inputs (the session and channels named).
     SessionError
         Bad study description (see :func:`describe_study`), or pooled analyses over different channel sets.
     StimsteerError
@@ -120,6 +122,7 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
         raise InvalidParameterError(f"settings must be a StudySettings; got {type(st).__name__}.")
     table = study if isinstance(study, StudyTable) else describe_study(study, min_trials=st.min_trials,
                                                                        channels=st.channels)
+    check_limits(table, st)
     tasks, notes = study_tasks(table, st)
     cache = cache if cache is None or isinstance(cache, TaskCache) else TaskCache(cache)
     started, t0 = datetime.now(timezone.utc).isoformat(timespec="seconds"), time.perf_counter()
@@ -136,11 +139,33 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
         closed_loop=loop_table(frame),
         provenance=jsonable({"tool": "stimsteer study", "study": table.name, "source": table.source,
                              "settings": st.to_dict(), "execution": execution, "started_utc": started,
+                             "limits_source": "recorded input range of each split's training trials"
+                             if st.limits is None else "declared (StudySettings.limits)",
                              "wall_time_s": time.perf_counter() - t0, "versions": versions(extra=("dask",)),
                              "cache": None if cache is None else str(Path(cache.folder)),
                              "n_failed_tasks": int((frame["status"] == "failed").sum()),
                              "interval": "DerSimonian-Laird random effects over subjects, 95 % normal interval"}),
     )
+
+
+def check_limits(table: StudyTable, st: StudySettings) -> None:
+    """Refuse declared limits that do not match a session's inputs (by name, after the common channel subset).
+
+    Raises
+    ------
+    LimitsError
+        Naming the first session that does not match, its inputs and the limits' inputs.
+    """
+    if st.limits is None:
+        return
+    for r in table.sessions.itertuples():
+        inputs, outputs = ([c for c in names.split("|") if st.channels is None or c in st.channels]
+                           for names in (r.input_names, r.output_names))
+        try:
+            st.limits.aligned(inputs, outputs)
+        except LimitsError as exc:
+            raise LimitsError(f"the declared limits do not match session {r.subject}/{r.session} (inputs {inputs}, "
+                              f"outputs {outputs}): {exc}") from None
 
 
 def _check_methods(frame: pd.DataFrame) -> None:

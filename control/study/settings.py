@@ -9,10 +9,12 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass, field
+from pathlib import PurePath
 
 from ...sysid import InvalidParameterError
 from ...sysid._records import jsonable
 from ..evaluation import ControlSettings, MethodSpec
+from ..limits import StimLimits, load_limits
 
 __all__ = ["StudySettings", "ANALYSES", "OFFSETS", "parse_method"]
 
@@ -80,6 +82,12 @@ class StudySettings:
         per-session fit tracks a pulse on a surrogate plant of its session (a ridge ARX fitted on the held-out
         trials), inside the amplitude range recorded on the training trials; None (or ``false`` in a study file)
         scores prediction only. A mapping gives :class:`~stimsteer.control.evaluation.ControlSettings` fields.
+    limits : StimLimits, mapping, path or None, default None
+        Declared stimulation limits for the closed loops (the limits file of ``stimsteer plan`` and ``bench``, a
+        mapping in its layout, or its path): every per-session loop is planned inside them, matched to each
+        session's inputs by name. None keeps each loop inside the input range recorded on its training trials.
+        Soft output bounds apply to the outputs as the loop sees them (centred on the training trials' mean when
+        ``offsets="remove"``).
 
     Raises
     ------
@@ -103,9 +111,11 @@ class StudySettings:
     max_retries: int = 2
     scheduler_timeout_s: float = 10.0
     control: ControlSettings = field(default_factory=ControlSettings)
+    limits: StimLimits = None
 
     def __post_init__(self):
         object.__setattr__(self, "control", _control(self.control))
+        object.__setattr__(self, "limits", _limits(self.limits))
         methods = tuple(parse_method(m) for m in (self.methods or ()))
         if not methods or len({m.label for m in methods}) != len(methods):
             raise InvalidParameterError(f"StudySettings.methods must name each route/method once; got {methods!r}.")
@@ -154,12 +164,15 @@ class StudySettings:
         d = self.to_dict()
         for name in ("analyses", "max_retries", "scheduler_timeout_s", "margin_abs", "margin_rel", "min_trials"):
             d.pop(name)
+        if d["limits"] is None:
+            d.pop("limits")  # the keys of studies without declared limits stay those of earlier versions
         return d
 
     def to_dict(self) -> dict:
         d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
         d["methods"] = [m.to_dict() for m in self.methods]
         d["control"] = None if self.control is None else self.control.to_dict()
+        d["limits"] = None if self.limits is None else self.limits.to_dict()
         return jsonable(d)
 
 
@@ -178,3 +191,14 @@ def _control(value):
                                         "target_channel, target_level_std, pulse_fraction, ...).") from None
     raise InvalidParameterError(f"StudySettings.control must be a ControlSettings, a mapping of its fields, or "
                                 f"None/false to score prediction only; got {value!r}.")
+
+
+def _limits(value):
+    if value is None or isinstance(value, StimLimits):
+        return value
+    if isinstance(value, dict):
+        return StimLimits.from_dict(value)
+    if isinstance(value, (str, PurePath)):
+        return load_limits(value)
+    raise InvalidParameterError(f"StudySettings.limits must be a StimLimits, a mapping in the limits file's layout, "
+                                f"a limits file's path, or None; got {type(value).__name__}.")

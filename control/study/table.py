@@ -11,6 +11,7 @@ Three ways to describe a study:
       [study]
       name = "reach-stim-2026"
       [settings]                   # any StudySettings field; methods as "route/method"
+      limits = "limits.toml"       # optional: declared limits of the closed loops (relative to the study file)
       methods = ["indirect/subspace", "direct/lsq"]
       [groups]                     # optional: subject -> group
       s01 = "sham"
@@ -134,7 +135,10 @@ def study_file_settings(path) -> dict:
     path = Path(path)
     if path.is_dir() and (path / STUDY_FILE).is_file():
         path = path / STUDY_FILE
-    return dict(_load_toml(path).get("settings", {})) if path.is_file() else {}
+    settings = dict(_load_toml(path).get("settings", {})) if path.is_file() else {}
+    if isinstance(settings.get("limits"), str):  # a limits file, relative to the study file
+        settings["limits"] = str(path.parent / settings["limits"])
+    return settings
 
 
 def _load_toml(path: Path) -> dict:
@@ -277,6 +281,8 @@ def _check_channels(table: pd.DataFrame, channels) -> None:
                 raise SessionError(f"session {r.subject}/{r.session} ({r.file}) lacks the channels "
                                    f"{sorted(wanted - have)} of the common subset; it has {sorted(have)}.")
         return
+    if len(table[["input_names", "output_names"]].drop_duplicates()) <= 1:
+        return  # one channel set in the whole study (the common case): nothing to compare per subject
     for subject, g in table.groupby("subject"):
         sets = g[["input_names", "output_names"]].drop_duplicates()
         if len(sets) > 1:

@@ -33,6 +33,7 @@ import numpy as np
 from ...sysid import (Session, SessionError, StateSpaceForm, StimsteerError, TrialSplit, impulse_responses,
                       kstep_scores, load_session, make_estimator)
 from ...sysid._records import window_stride
+from ..evaluation.task_body import one_thread
 from .loop import session_loop
 from .settings import StudySettings
 
@@ -51,6 +52,7 @@ class SessionRef:
     subject: str
     session: str
     n_trials: int
+    n_samples: int = 0
 
 
 @dataclass(frozen=True)
@@ -74,7 +76,8 @@ def task_key(kind, test: SessionRef, train, train_trials, method_index, split, s
     drawn = [[r.content_hash, list(t)] for r, t in zip(train, train_trials)]
     settings = st.task_dict()
     if kind != "sessions":
-        settings.pop("control")  # only the per-session analysis steers a plant
+        settings.pop("control")  # only the per-session analysis steers a plant (under the limits)
+        settings.pop("limits", None)
     text = json.dumps([CACHE_VERSION, kind, test.content_hash, drawn, st.methods[method_index].to_dict(), int(split),
                        settings], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
@@ -195,23 +198,10 @@ def _concat(parts) -> Session:
                          output_mask=np.concatenate([p.output_mask for p in parts]), trials=trials, metadata={})
 
 
-_THREADS: dict = {}
-
-
-def _one_thread():
-    """Single-threaded BLAS/OpenMP for the duration of a ``with``: the libraries are found once per process (a
-    fresh ``threadpool_limits`` scans the loaded libraries each time, ~40 ms under load, as long as a small task)."""
-    if "controller" not in _THREADS:
-        from threadpoolctl import ThreadpoolController
-
-        _THREADS["controller"] = ThreadpoolController()
-    return _THREADS["controller"].limit(limits=1)
-
-
 def run_task(st: StudySettings, task: StudyTask) -> dict:
     """Run one task with single-threaded BLAS; a toolkit error is returned as the task's result, not raised."""
-    t0 = time.perf_counter()
-    with _one_thread(), warnings.catch_warnings(record=True) as caught:
+    t0, c0 = time.perf_counter(), time.thread_time()
+    with one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             out = _body(st, task)
@@ -219,6 +209,7 @@ def run_task(st: StudySettings, task: StudyTask) -> dict:
             out = {"error": f"{type(exc).__name__}: {exc}"}
     out["warnings"] = sorted({str(w.message) for w in caught})[:5]
     out["total_s"] = time.perf_counter() - t0
+    out["cpu_s"] = time.thread_time() - c0  # below total_s when the task waited for a core (a loaded machine)
     return out
 
 

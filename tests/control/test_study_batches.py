@@ -62,7 +62,7 @@ def test_batched_results_equal_tasks_run_alone_in_any_order(study):
     some = [t for b in study_execute.batches(tasks)[5:7] for t in b]  # a per-session and a pooled batch
     alone = {t.key: study_tasks_module.run_task(SETTINGS, t) for t in reversed(some)}
     batched = {k: r for b in study_execute.batches(some) for k, r in study_execute.run_batch(SETTINGS, b)}
-    timing = {"total_s", "fit_s", "control_s"}
+    timing = {"total_s", "cpu_s", "fit_s", "control_s"}
     assert alone.keys() == batched.keys() and len(alone) == 2 * 2 * SETTINGS.n_splits
     for k in alone:
         assert {a: v for a, v in alone[k].items() if a not in timing} == \
@@ -77,3 +77,22 @@ def test_a_dask_cluster_runs_batches_with_the_numbers_of_a_local_run(study, loca
     assert on_dask.provenance["execution"]["n_batches"] == 12
     pd.testing.assert_frame_equal(on_dask.tasks[COLS].sort_values(COLS[:5], ignore_index=True),
                                   local[0].tasks[COLS].sort_values(COLS[:5], ignore_index=True))
+
+
+def test_the_longest_batches_go_first_so_no_long_batch_is_left_for_the_end(study):
+    from stimsteer.control.study import SessionRef, StudyTask
+
+    def task(kind, name, n_samples, method):
+        ref = SessionRef(file=f"{name}.h5", content_hash=name, subject="s", session=name, n_trials=6,
+                         n_samples=n_samples)
+        return StudyTask(kind=kind, subject="s", session=name, method_index=method, split=0, test=ref, train=(),
+                         key=f"{kind}{name}{method}")
+
+    tasks = [task(kind, name, n, m) for kind in ("subjects", "sessions") for name, n in (("a", 100), ("b", 900),
+                                                                                           ("c", 400)) for m in (1, 0)]
+    order = [(b[0].kind, b[0].session, [t.method_index for t in b]) for b in study_execute.batches(tasks)]
+    assert order == [("sessions", "b", [0, 1]), ("sessions", "c", [0, 1]), ("sessions", "a", [0, 1]),
+                     ("subjects", "b", [0, 1]), ("subjects", "c", [0, 1]), ("subjects", "a", [0, 1])]
+    # on the real grid too: per-session batches (they also steer) before the transfer ones
+    kinds = [b[0].kind for b in study_execute.batches(study_tasks(describe_study(study), SETTINGS)[0])]
+    assert kinds == sorted(kinds, key=lambda k: k != "sessions")
