@@ -61,7 +61,8 @@ class _Budget:
         # a reduced input aims this far below the budget: the running sum's rounding (at most W ulps) never lifts a
         # window over it, and an independent recount of the window agrees
         self.aim = self.budget * (1.0 - _ROUNDING - _EPS * int(window_steps))
-        self.ring = np.zeros(int(window_steps) - 1)  # loads of the previous W − 1 delivered samples, oldest at pos
+        # loads of the previous W − 1 delivered samples, oldest at pos (a list: item access is what a step does)
+        self.ring = [0.0] * (int(window_steps) - 1)
         self.pos, self.total, self._since = 0, 0.0, 0
 
     def coefficients(self, x) -> tuple[float, float, float]:
@@ -78,7 +79,7 @@ class _Budget:
     def _oldest(self, j):
         r, p = self.ring, self.pos
         end = p + j
-        return r[p:end] if end <= r.size else np.concatenate([r[p:], r[:end - r.size]])
+        return np.array(r[p:end] if end <= len(r) else r[p:] + r[:end - len(r)])
 
     def fits(self, x, ramp, aim=False) -> bool:
         """True when a sample of magnitudes ``x`` (a list) and then ``ramp`` (ndarray (J, n_inputs); None: zero at
@@ -88,9 +89,9 @@ class _Budget:
         closing = self.total + self.load(x)
         if closing > cap:
             return False
-        if ramp is None or not self.ring.size or not ramp.shape[0]:
+        if ramp is None or not self.ring or not ramp.shape[0]:
             return True
-        J = min(ramp.shape[0], self.ring.size)
+        J = min(ramp.shape[0], len(self.ring))
         rl = ramp[:J] @ self.a + (ramp[:J] * ramp[:J]) @ self.b
         if closing + float(rl.sum()) <= cap:  # bounds every window at once
             return True
@@ -98,16 +99,17 @@ class _Budget:
 
     def push(self, x) -> None:
         """Record a delivered sample of magnitudes ``x`` (a list)."""
-        if not self.ring.size:
+        ring = self.ring
+        if not ring:
             return
         load = self.load(x)
         pos = self.pos
-        self.total += load - float(self.ring[pos])
-        self.ring[pos] = load
-        self.pos = pos + 1 if pos + 1 < self.ring.size else 0
+        self.total += load - ring[pos]
+        ring[pos] = load
+        self.pos = pos + 1 if pos + 1 < len(ring) else 0
         self._since += 1
-        if self._since >= self.ring.size:
-            self.total, self._since = math.fsum(self.ring.tolist()), 0
+        if self._since >= len(ring):
+            self.total, self._since = math.fsum(ring), 0
 
 
 class _Train:

@@ -106,7 +106,7 @@ class InputGate:
                 "gate keeps per window; declare a shorter window (or train length) in seconds, or run the loop at a "
                 "lower sample rate.")
         self._budgets, self._trains = budgets_of(limits, w), trains_of(limits)
-        self._zero_tol = _ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi)) if self._trains else None
+        self._zero_tol = (_ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi))).tolist()
         last = np.zeros(m) if last_input is None else np.asarray(last_input, np.float64).reshape(-1)
         if last.shape != (m,) or not np.all(np.isfinite(last)):
             raise InvalidParameterError(f"last_input must hold {m} finite values (µA); got {last_input!r}.")
@@ -166,12 +166,12 @@ class InputGate:
                 self.n_unavoidable += 1
         elif self.has_sequence_limits:
             if self._trains:
-                cand[np.abs(cand) <= self._zero_tol] = 0.0  # residue, not a train (module notes)
+                self._snap(cand)  # residue, not a train (module notes)
             reason = self._sequence_reason(cand)
             if reason:
                 cand = self._largest_safe(cand)
                 if self._trains:  # a tiny share of a spent window is residue too: zero (lowers every load)
-                    cand[np.abs(cand) <= self._zero_tol] = 0.0
+                    self._snap(cand)
                 self.n_replaced += 1
                 self.n_reduced += 1
             else:
@@ -201,6 +201,11 @@ class InputGate:
         u[:] = x
         return ""
 
+    def _snap(self, u):
+        for i, (v, tol) in enumerate(zip(u.tolist(), self._zero_tol)):
+            if v != 0.0 and abs(v) <= tol:
+                u[i] = 0.0
+
     def _sequence_reason(self, u) -> str:
         """The first sequence limit ``u`` would break after what was delivered ('' for none)."""
         for i, t in enumerate(self._trains):
@@ -225,7 +230,7 @@ class InputGate:
             return None
         with np.errstate(invalid="ignore"):
             n = np.where(x > 0, np.ceil(x / self._slew), 0.0)
-        n = int(min(np.max(n, initial=0.0), max(b.ring.size for b in self._budgets)))
+        n = int(min(np.max(n, initial=0.0), max(len(b.ring) for b in self._budgets)))
         steps = np.arange(1, n + 1, dtype=np.float64)[:, None]
         return np.maximum(x[None, :] - steps * self._slew[None, :], 0.0)
 
@@ -235,6 +240,8 @@ class InputGate:
         for i, t in enumerate(self._trains):
             if v[i] != 0.0 and t.breaks():
                 v[i] = 0.0
+        if self._slew is None:  # the fallback is zero and α·v stays in the amplitude window: plain floats
+            return self._scaled(v)
         f = self.safe_input()
         lo, hi = self._lo, self._hi
         if self._slew is not None:
@@ -244,19 +251,26 @@ class InputGate:
         def at(alpha):  # rounding of f + α d may leave the window by an ulp: clip it back
             return np.minimum(np.maximum(f + alpha * d, lo), hi)
 
-        top = largest_alpha(self._budgets, [abs(t) for t in v.tolist()]) if self._slew is None else 1.0
-        if top <= 0.0:  # a window is full: the fallback (zero without a slew limit)
-            return f
-        for t in (top, top * (1.0 - 1e-12), top * (1.0 - 1e-10)):  # the closed form may miss the aim by rounding
-            if not self._budget_reason(at(t), aim=True):
-                return at(t)
-            if self._slew is not None:
-                break
-        a, b = 0.0, top
+        if not self._budget_reason(at(1.0), aim=True):
+            return at(1.0)
+        a, b = 0.0, 1.0
         for _ in range(_BISECT):
             mid = 0.5 * (a + b)
             a, b = (mid, b) if not self._budget_reason(at(mid), aim=True) else (a, mid)
         return at(a)
+
+    def _scaled(self, v):
+        """``α v`` with the largest ``α`` that keeps every closing window within its aim (no slew limit)."""
+        vl = v.tolist()
+        x = [abs(t) for t in vl]
+        top = largest_alpha(self._budgets, x)
+        for t in (top, top * (1.0 - 1e-12), top * (1.0 - 1e-10)):  # the closed form may miss the aim by rounding
+            if t <= 0.0:
+                break
+            xt = [t * e for e in x]
+            if all(b.fits(xt, None, True) for b in self._budgets):
+                return np.array([t * e for e in vl])
+        return np.zeros(v.size)  # a window is full: the fallback
 
     def _commit(self, u):
         self.last_input = u
@@ -271,7 +285,7 @@ class InputGate:
     def window_energy_ua2(self) -> float:
         """``Σ u²`` of the last ``energy_window_steps − 1`` delivered inputs, µA² (0 without a budget)."""
         b = [b for b in self._budgets if b.name == "energy_budget"]
-        return float(np.sum(b[0].ring)) if b else 0.0
+        return math.fsum(b[0].ring) if b else 0.0
 
 
 def _onto(x, lo, hi) -> bool:
