@@ -12,6 +12,9 @@ box amplitude limits only (a QP). Timed, in the same run:
    5,000 samples: SPC (``LsqPredictor``) and DeePC (``HankelPredictor``, compressed blocks). Target: <= 3.
 3. the fast step (``FastStep``, issue 20) against a floor, bare OSQP, and at horizon 80 (see the section below).
 4. the live runner at 1 kHz and 10 kHz for ``--live-seconds`` each, with the machine's load printed beside.
+5. the input gate's added cost per step under limits on the delivered sequence (a rolling charge window, an energy
+   window, train length and duty cycle at 10 kHz) against the gate with box limits only, and a 10 kHz live run of the
+   fast step under them (``--gate-only`` runs this section alone).
 
 BLAS runs on one thread (threadpoolctl): on a loaded 2-core machine a second BLAS thread only waits.
 
@@ -86,12 +89,15 @@ def main(argv=None):
     ap.add_argument("--steps", type=int, default=200, help="closed-loop steps per measurement (default 200)")
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--live-seconds", type=float, default=10.0, help="length of each live run (default 10 s)")
+    ap.add_argument("--gate-only", action="store_true", help="run section 5 alone (the gate under sequence limits)")
     args = ap.parse_args(argv)
     model, rng = _system(args.seed)
     plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01)
     limits = StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=N_INPUTS)
     target = rng.normal(size=N_OUTPUTS)
     ind = ModelPredictiveController(model=model, limits=limits, horizon_steps=HORIZON, input_weight=1e-2).fit()
+    if args.gate_only:
+        return _gate_section(args, model, limits, target)
     bare = _bare_osqp(ind)
 
     def ind_step(u, y, fast=True):
@@ -134,6 +140,7 @@ def main(argv=None):
         _direct_fast_step(name, ctrl, plant, model, target, args.steps)
     step = _fast_section(args, model, plant, limits, target, ind)
     _live_section(args, model, plant, limits, target, step, ind)
+    _gate_section(args, model, limits, target)
 
 
 def _direct_fast_step(name, ctrl, plant, model, target, steps):
@@ -278,6 +285,70 @@ def _live_section(args, model, plant, limits, target, step, ind):
             lat = run.summary["latency_s"]["p99"]
             print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   (target < 1; "
                   "an idle 2-core machine)")
+
+
+# ------------------------------------------------------------- the gate under sequence limits (issue 20 with issue 16)
+# Section 5 -- InputGate.admit per step with the box limits alone and with limits on the delivered sequence at 10 kHz:
+# a rolling charge window of 0.2 s (2,000 samples), an energy window of 0.05 s, a train length of 0.05 s and a duty
+# cycle of 60 % over 0.1 s, each about half of what stimulation at the bounds would use, so they bind. Requests: a
+# controller that always asks for the bounds (every step reduced once the windows fill) and uniform random ones. Then
+# the live runner at 10 kHz with FastStep, box limits and sequence limits back to back (p99 must stay < 100 µs).
+def _sequence_limits(rate):
+    from stimsteer.control.sequence_limits import TrainLimits, WindowBudget
+
+    m, q = N_INPUTS, 1e-4  # µC per µA-sample: a 100 µs phase
+    steps = lambda s: int(round(s * rate))  # noqa: E731
+    charge = WindowBudget("charge_rate_window", 0.5 * m * q * steps(0.2), steps(0.2), np.full(m, q), np.zeros(m), "uC")
+    energy = WindowBudget("energy_window", 0.5 * m * 1e-3 * steps(0.05), steps(0.05), np.zeros(m), np.full(m, 1e-3),
+                          "uJ")
+    train = TrainLimits((steps(0.05),) * m, (steps(0.06),) * m, (steps(0.1),) * m)
+    return StimLimits(amplitude_min_ua=-1.0, amplitude_max_ua=1.0, n_inputs=m, window_budgets=(charge, energy),
+                      train_limits=train)
+
+
+def _time_gate(gate, requests):
+    times = np.empty(len(requests))
+    clock = time.perf_counter
+    for k, r in enumerate(requests):
+        t0 = clock()
+        gate.admit(r)
+        times[k] = clock() - t0
+    return times
+
+
+def _gate_section(args, model, limits, target):
+    from stimsteer.control.input_gate import InputGate
+    from stimsteer.control.mpc.fast_step import FastStep
+    from stimsteer.control.realtime import run_live
+
+    rate = 10_000.0
+    seq = _sequence_limits(rate)
+    rng = np.random.default_rng(args.seed)
+    n = 20_000
+    print(f"\ninput gate per step, 4 inputs; sequence limits at {rate:g} Hz: charge window 2000 samples, energy window "
+          f"500, train 500, duty 600 of 1000; load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
+    for name, req in (("always the bounds", np.tile([1.0, -1.0, 1.0, -1.0], (n, 1))),
+                      ("uniform random", rng.uniform(-1.0, 1.0, size=(n, N_INPUTS)))):
+        box, gate = _time_gate(InputGate(limits), req), InputGate(seq)
+        t_seq = _time_gate(gate, req)
+        us = lambda t, q: 1e6 * float(np.percentile(t, q))  # noqa: E731
+        print(f"requests {name}: box only p50 {us(box, 50):.1f} µs p99 {us(box, 99):.1f} µs; with sequence limits "
+              f"p50 {us(t_seq, 50):.1f} µs p99 {us(t_seq, 99):.1f} µs ({gate.n_reduced} of {n} reduced); added p50 "
+              f"{us(t_seq, 50) - us(box, 50):.1f} µs, p99 {us(t_seq, 99) - us(box, 99):.1f} µs")
+    far = model.C @ np.linalg.solve(np.eye(N_STATES) - model.A, model.B) @ np.array([3.0, -3.0, 3.0, -3.0])
+    print(f"live runner with FastStep at {rate:g} Hz for {args.live_seconds:g} s, target beyond reach; load average "
+          f"{os.getloadavg()[0]:.1f} at the start")
+    for name, lim in (("box limits", limits), ("sequence limits", seq)):
+        ctrl = FastStep(ModelPredictiveController(model=model, limits=lim, horizon_steps=HORIZON,
+                                                  input_weight=1e-2).fit())
+        plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
+                                   sample_rate_hz=rate)
+        run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+        _live_report(f"FastStep, {name}", run)
+        g = run.summary["gate"]
+        print(f"  gate: {g['admitted']} as given, {g['reduced']} reduced to the largest safe input, "
+              f"{g['replaced'] - g['reduced']} fallbacks; ratio (p99 latency / 100 µs): "
+              f"{1e6 * run.summary['latency_s']['p99'] / 100.0:.2f}   (target < 1; idle 2-core machine)")
 
 
 if __name__ == "__main__":

@@ -27,19 +27,30 @@ def timing_summary(loop, period, calibration, stop) -> dict:
     delivered = np.asarray(loop.U)
     lim = loop.c.limits_
     # an independent re-check of everything delivered, with the limits' own rule (not the gate's code)
-    recheck = lim.violations(delivered, np.zeros(lim.n_inputs),
-                             energy_window_steps=loop.c.horizon_steps_) if delivered.size else {}
+    window = int(lim.energy_window_steps or loop.c.horizon_steps_)
+    recheck = lim.violations(delivered, np.zeros(lim.n_inputs), energy_window_steps=window) if delivered.size else {}
     return {
         "sample_period_s": period, "sample_rate_hz": 1.0 / period, "pace": loop.pace,
         "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
         "latency_s": _quantiles(loop.latency), "jitter_s": _quantiles(jitter),
         "calibration_s": dict(calibration), "counts": counts,
         "gate": {"admitted": loop.gate.n_admitted, "replaced": loop.gate.n_replaced,
-                 "unavoidable": loop.gate.n_unavoidable},
+                 "reduced": loop.gate.n_reduced, "unavoidable": loop.gate.n_unavoidable},
         "unchecked_inputs": len(loop.U) - loop.gate.n_admitted - loop.gate.n_replaced,
         "delivered_violations": {k: int(v) for k, v in recheck.items()},
-        "energy_window_steps": int(loop.c.horizon_steps_),
+        "energy_window_steps": window,
+        "sequence_limits": _sequence_limits(lim),
     }
+
+
+def _sequence_limits(lim) -> dict:
+    """The window budgets and train limits the gate kept, as declared (empty without)."""
+    out = {}
+    if lim.window_budgets:
+        out["window_budgets"] = [b.to_dict() for b in lim.window_budgets]
+    if lim.train_limits is not None:
+        out["train_limits"] = lim.train_limits.to_dict()
+    return out
 
 
 def record_run(loop, n_warm, n_steps, period, summary, output_units) -> Session:

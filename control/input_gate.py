@@ -6,22 +6,39 @@ delivered* before, not against what a plan assumed:
 
 * amplitude: ``lo_i <= u_i <= hi_i`` (declared bounds ∩ the charge-density bound), exactly;
 * slew: ``|u_i − u_i,prev| <= slew_i`` from the last delivered input, exactly;
-* energy: ``Σ u²`` over the rolling window of the last ``energy_window_steps`` delivered inputs (this one
-  included) ``<= energy_budget_ua2``, exactly.
+* every rolling budget, exactly: the per-sample layout's ``Σ u²`` over the last ``energy_window_steps`` delivered
+  inputs (this one included) ``<= energy_budget_ua2``, and each window budget in physical terms (charge, energy:
+  ``Σ (a·|u| + b·u²)`` over every window of its length, :class:`~stimsteer.control.sequence_limits.WindowBudget`);
+* train length and duty cycle per input, from the on samples actually delivered
+  (:class:`~stimsteer.control.sequence_limits.TrainLimits`, with its hold).
 
 An input that misses a bound by rounding only (at most ``1e-9`` relative, the tolerance the controllers verify
-their plans with) is put exactly on the bound; any other input that breaks a limit, or holds NaN, is replaced by
-the safe fallback of :meth:`StimLimits.safe_inputs` (towards zero as fast as the slew limit allows).
+their plans with) is put exactly on the bound; any other input that breaks a per-sample limit (amplitude, slew), or
+holds NaN, is replaced by the safe fallback of :meth:`StimLimits.safe_inputs` (towards zero as fast as the slew
+limit allows).
 
-Under a slew limit an input can fit its own energy window and still leave the ramp down too slow for the windows
-after it. So the gate admits an input only when it *and the fastest ramp to zero after it* keep every window
-within the budget; then the safe fallback (the first step of that ramp) always fits in turn, and a run that starts
-at rest never has to break the budget. ``n_unavoidable`` counts fallbacks that broke it anyway (only possible when
-the gate is started from a state that is not at rest and was not checked, which the constructor refuses).
+An input that meets the per-sample limits but would break a sequence limit is *reduced* to the largest safe input
+instead: each input whose train or duty window is full is set to zero, then the input moves along the segment from
+the safe fallback ``f`` towards it, ``f + α (u − f)``, to the largest ``α`` in [0, 1] that keeps every window
+(``α = 0`` is the fallback). Every point of that segment meets the amplitude and slew limits (both ends do, the
+windows are convex), and every window's load grows with ``α`` (loads are convex and grow with ``|u|``), so the safe
+``α`` form an interval: closed form without a slew limit (the fallback is zero), bisection (``2^-30`` of the
+segment, erring towards the fallback) with one.
+
+Under a slew limit an input can fit its own window and still leave the ramp down too slow for the windows after
+it. So the gate admits an input only when it *and the fastest ramp to zero after it* keep every window within its
+budget (:mod:`stimsteer.control._delivered`); then the safe fallback (the first step of that ramp) always fits in
+turn, and a run that starts at rest never has to break a budget. ``n_unavoidable`` counts fallbacks that broke one
+anyway (only possible when the gate is started from a state that is not at rest and was not checked, which the
+constructor refuses).
 
 Decisions
-    * The energy budget is declared "over one planning horizon" (:mod:`stimsteer.control.limits`); for delivered
-      inputs the horizon becomes a rolling window of as many samples (the runner passes the controller's horizon).
+    * The energy budget of the per-sample layout is declared "over one planning horizon"
+      (:mod:`stimsteer.control.limits`); for delivered inputs the horizon becomes a rolling window of as many samples
+      (the runner passes the controller's horizon).
+    * Inputs below ``1e-6`` of their amplitude bound are residue (an interior-point or active-set answer seldom
+      reaches 0 exactly) and leave as zero under train limits, as in the planner: they would count as a train on.
+      Train limits come without a finite slew limit (:class:`StimLimits` refuses both), so zero is always reachable.
     * The gate never raises on a bad input: a live loop must always have something safe to deliver.
 """
 
@@ -32,10 +49,13 @@ import math
 import numpy as np
 
 from ..sysid import InvalidParameterError, LimitsError
+from ._delivered import MAX_WINDOW_STEPS, budgets_of, largest_alpha, longest_window, trains_of
 
 __all__ = ["InputGate"]
 
 _ROUNDING = 1e-9  # relative; the same allowance as StimLimits.violations and the controllers' verification
+_ZERO_RTOL = 1e-6  # under train limits, |u| at most this fraction of its bound is residue: 0 (as in the planner)
+_BISECT = 30  # bisection steps of the largest safe input under a slew limit: 2^-30 of the segment
 
 
 class InputGate:
@@ -45,7 +65,7 @@ class InputGate:
     ----------
     limits : StimLimits
     energy_window_steps : int, optional
-        Rolling window of the energy budget, samples; required when the limits have a budget.
+        Rolling window of the per-sample layout's energy budget, samples; required when the limits have one.
     last_input : ndarray, shape (n_inputs,), optional
         The input delivered before the first one through this gate, µA; default zero (rest).
 
@@ -53,9 +73,17 @@ class InputGate:
     ----------
     last_input : ndarray, shape (n_inputs,)
         The last delivered input, µA.
-    n_admitted, n_replaced, n_unavoidable : int
-        Inputs delivered as given (or put on a bound by rounding only), replaced by the safe fallback, and safe
-        fallbacks that still broke the energy window because no input could meet it.
+    n_admitted, n_replaced, n_reduced, n_unavoidable : int
+        Inputs delivered as given (or put on a bound by rounding only); inputs not delivered as given (the safe
+        fallback, or a reduced input); of those, inputs reduced to the largest safe input under a sequence limit;
+        safe fallbacks that still broke a window because no input could meet it.
+
+    Raises
+    ------
+    InvalidParameterError
+        An energy budget without ``energy_window_steps``; a window longer than a live gate keeps.
+    LimitsError
+        A ``last_input`` outside the amplitude window, or from which even the fastest ramp to zero breaks a budget.
     """
 
     def __init__(self, limits, *, energy_window_steps=None, last_input=None):
@@ -65,19 +93,20 @@ class InputGate:
         self._slew = None if limits.slew_max_ua is None else np.asarray(limits.slew_max_ua, np.float64)
         self._lo_l, self._hi_l = self._lo.tolist(), self._hi.tolist()
         self._slew_l = None if self._slew is None else self._slew.tolist()
-        self._budget = limits.energy_budget_ua2
-        if limits.has_sequence_limits:
-            raise InvalidParameterError("these limits declare window budgets or train limits in physical terms, which "
-                                        "the live gate does not check yet; plan with them (stimsteer plan), or run "
-                                        "the live loop under the per-sample limits layout.")
-        if self._budget is not None:
-            w = energy_window_steps
-            if isinstance(w, bool) or not isinstance(w, (int, np.integer)) or w < 1:
-                raise InvalidParameterError(
-                    f"the limits have an energy budget, so the gate needs energy_window_steps (a whole number of "
-                    f"samples >= 1, usually the controller's horizon); got {w!r}.")
-            self._sq = np.zeros(int(w) - 1)  # squared norms of the previous w − 1 delivered inputs (ring)
-        self._pos = 0
+        w = energy_window_steps
+        if limits.energy_budget_ua2 is not None and (
+                isinstance(w, bool) or not isinstance(w, (int, np.integer)) or w < 1):
+            raise InvalidParameterError(
+                f"the limits have an energy budget, so the gate needs energy_window_steps (a whole number of "
+                f"samples >= 1, usually the controller's horizon); got {w!r}.")
+        longest = longest_window(limits, w if limits.energy_budget_ua2 is not None else None)
+        if longest > MAX_WINDOW_STEPS:
+            raise InvalidParameterError(
+                f"a sequence limit of these limits spans {longest} samples, more than the {MAX_WINDOW_STEPS} a live "
+                "gate keeps per window; declare a shorter window (or train length) in seconds, or run the loop at a "
+                "lower sample rate.")
+        self._budgets, self._trains = budgets_of(limits, w), trains_of(limits)
+        self._zero_tol = (_ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi))).tolist()
         last = np.zeros(m) if last_input is None else np.asarray(last_input, np.float64).reshape(-1)
         if last.shape != (m,) or not np.all(np.isfinite(last)):
             raise InvalidParameterError(f"last_input must hold {m} finite values (µA); got {last_input!r}.")
@@ -85,18 +114,34 @@ class InputGate:
             raise LimitsError(f"the input delivered before the gate, {last.tolist()} µA, lies outside the amplitude "
                               f"window [{self._lo.tolist()}, {self._hi.tolist()}] µA; start from rest (zeros).")
         self.last_input = last.copy()
-        if self._budget is not None and not self._viable(last):
+        bad = self._budget_reason(last)
+        if bad:
             raise LimitsError(f"from the input delivered before the gate, {last.tolist()} µA, even the fastest ramp "
-                              f"to zero breaks the energy budget {self._budget:g} µA² over {energy_window_steps} "
-                              "samples; start from rest (zeros) or declare consistent limits.")
-        self.n_admitted = self.n_replaced = self.n_unavoidable = 0
+                              f"to zero breaks the rolling budget {bad!r}; start from rest (zeros) or declare "
+                              "consistent limits.")
+        self.n_admitted = self.n_replaced = self.n_reduced = self.n_unavoidable = 0
+
+    @property
+    def has_sequence_limits(self) -> bool:
+        """True when the gate keeps rolling budgets or train limits."""
+        return bool(self._budgets or self._trains)
 
     def safe_input(self) -> np.ndarray:
-        """The safe fallback's next sample from the last delivered input, µA."""
-        return self.limits.safe_inputs(1, self.last_input)[0]
+        """The safe fallback's next sample from the last delivered input, µA (:meth:`StimLimits.safe_inputs`)."""
+        if self._slew_l is None:  # zero at once: 0 lies in every amplitude window
+            return np.zeros(self.last_input.size)
+        out = []
+        for prev, s, lo, hi in zip(self.last_input.tolist(), self._slew_l, self._lo_l, self._hi_l):
+            if prev - s > hi or prev + s < lo:  # the slew window misses the amplitude one: the nearest bound
+                out.append(min(max(prev, lo), hi))
+            else:
+                step = max(abs(prev) - s, 0.0)
+                out.append(min(max(step if prev > 0 else -step, lo), hi))
+        return np.array(out)
 
     def admit(self, u) -> tuple[np.ndarray, str]:
-        """Deliver ``u`` if it meets every hard limit, else the safe fallback; record what was delivered.
+        """Deliver ``u`` if it meets every hard limit; else the largest safe input (a sequence limit) or the safe
+        fallback (a per-sample limit); record what was delivered.
 
         Parameters
         ----------
@@ -109,22 +154,35 @@ class InputGate:
             The input that leaves, µA (a new array).
         reason : str
             ``""`` when ``u`` was delivered, else the limit it broke (``"not_finite"``, ``"amplitude"``, ``"slew"``,
-            ``"energy_budget"``).
+            ``"energy_budget"``, a window budget's name such as ``"charge_rate_window"``, ``"train_length"``,
+            ``"duty_cycle"``).
         """
         cand = np.array(u, dtype=np.float64).reshape(-1)
         reason = self._check(cand) if cand.shape == self.last_input.shape else "amplitude"
         if reason:
             cand = self.safe_input()
             self.n_replaced += 1
-            if self._check(cand) == "energy_budget":
+            if self._sequence_reason(cand):
                 self.n_unavoidable += 1
+        elif self.has_sequence_limits:
+            if self._trains:
+                self._snap(cand)  # residue, not a train (module notes)
+            reason = self._sequence_reason(cand)
+            if reason:
+                cand = self._largest_safe(cand)
+                if self._trains:  # a tiny share of a spent window is residue too: zero (lowers every load)
+                    self._snap(cand)
+                self.n_replaced += 1
+                self.n_reduced += 1
+            else:
+                self.n_admitted += 1
         else:
             self.n_admitted += 1
         self._commit(cand)
         return cand, reason
 
     def _check(self, u) -> str:
-        """The first hard limit ``u`` breaks ('' for none); puts rounding-level excess exactly on the bound.
+        """The first per-sample limit ``u`` breaks ('' for none); puts rounding-level excess exactly on the bound.
 
         Plain Python floats: for a handful of inputs this is several times faster than numpy calls, and a live
         loop at 10 kHz has 100 µs for everything.
@@ -141,40 +199,93 @@ class InputGate:
             if not all(lo <= v <= hi for v, lo, hi in zip(x, self._lo_l, self._hi_l)):
                 return "amplitude"  # the slew window moved it off the amplitude one
         u[:] = x
-        if self._budget is not None and not self._viable(u):
-            return "energy_budget"
         return ""
 
-    def _viable(self, u) -> bool:
-        """True when ``u`` and then the fastest ramp to zero keep every energy window within the budget.
+    def _snap(self, u):
+        for i, (v, tol) in enumerate(zip(u.tolist(), self._zero_tol)):
+            if v != 0.0 and abs(v) <= tol:
+                u[i] = 0.0
 
-        Checking ``u``'s own window is not enough under a slew limit: an input can fit its window yet leave the
-        ramp down too slow for the next ones. Admitting only inputs whose ramp fits means the safe fallback (the
-        first step of that ramp) always fits in turn, so a run that starts at rest never has to break the budget.
-        """
-        hist = np.roll(self._sq, -self._pos)  # oldest first
-        e_u = float(u @ u)
-        if self._slew is None or not hist.size:
-            return float(np.sum(hist)) + e_u <= self._budget
-        steps = np.arange(1, hist.size + 1)[:, None]
-        ramp = np.maximum(np.abs(u)[None, :] - steps * self._slew[None, :], 0.0)
-        e_ramp = np.sum(ramp * ramp, axis=1)
-        if float(np.sum(hist)) + e_u + float(np.sum(e_ramp)) <= self._budget:  # bounds every window at once
-            return True
-        c = np.concatenate([[0.0], np.cumsum(np.concatenate([hist, [e_u], e_ramp]))])
-        w = hist.size + 1
-        return bool(np.all(c[w:] - c[:-w] <= self._budget))  # every window that holds u or its ramp
+    def _sequence_reason(self, u) -> str:
+        """The first sequence limit ``u`` would break after what was delivered ('' for none)."""
+        for i, t in enumerate(self._trains):
+            why = t.breaks() if u[i] != 0.0 else ""
+            if why:
+                return why
+        return self._budget_reason(u)
+
+    def _budget_reason(self, u, aim=False) -> str:
+        if not self._budgets:
+            return ""
+        x = [abs(v) for v in u.tolist()]
+        ramp = None if self._slew is None else self._ramp(np.abs(u))
+        for b in self._budgets:
+            if not b.fits(x, ramp, aim):
+                return b.name
+        return ""
+
+    def _ramp(self, x):
+        """The fastest ramp to zero after magnitudes ``x`` (the safe fallback's magnitudes), or None without slew."""
+        if self._slew is None:
+            return None
+        with np.errstate(invalid="ignore"):
+            n = np.where(x > 0, np.ceil(x / self._slew), 0.0)
+        n = int(min(np.max(n, initial=0.0), max(len(b.ring) for b in self._budgets)))
+        steps = np.arange(1, n + 1, dtype=np.float64)[:, None]
+        return np.maximum(x[None, :] - steps * self._slew[None, :], 0.0)
+
+    def _largest_safe(self, u) -> np.ndarray:
+        """The largest safe input towards ``u`` (module docstring); ``u`` meets the per-sample limits."""
+        v = u.copy()
+        for i, t in enumerate(self._trains):
+            if v[i] != 0.0 and t.breaks():
+                v[i] = 0.0
+        if self._slew is None:  # the fallback is zero and α·v stays in the amplitude window: plain floats
+            return self._scaled(v)
+        f = self.safe_input()
+        lo, hi = self._lo, self._hi
+        if self._slew is not None:
+            lo, hi = np.maximum(lo, self.last_input - self._slew), np.minimum(hi, self.last_input + self._slew)
+        d = v - f
+
+        def at(alpha):  # rounding of f + α d may leave the window by an ulp: clip it back
+            return np.minimum(np.maximum(f + alpha * d, lo), hi)
+
+        if not self._budget_reason(at(1.0), aim=True):
+            return at(1.0)
+        a, b = 0.0, 1.0
+        for _ in range(_BISECT):
+            mid = 0.5 * (a + b)
+            a, b = (mid, b) if not self._budget_reason(at(mid), aim=True) else (a, mid)
+        return at(a)
+
+    def _scaled(self, v):
+        """``α v`` with the largest ``α`` that keeps every closing window within its aim (no slew limit)."""
+        vl = v.tolist()
+        x = [abs(t) for t in vl]
+        top = largest_alpha(self._budgets, x)
+        for t in (top, top * (1.0 - 1e-12), top * (1.0 - 1e-10)):  # the closed form may miss the aim by rounding
+            if t <= 0.0:
+                break
+            xt = [t * e for e in x]
+            if all(b.fits(xt, None, True) for b in self._budgets):
+                return np.array([t * e for e in vl])
+        return np.zeros(v.size)  # a window is full: the fallback
 
     def _commit(self, u):
         self.last_input = u
-        if self._budget is not None and self._sq.size:
-            self._sq[self._pos] = float(u @ u)
-            self._pos = (self._pos + 1) % self._sq.size
+        if self._budgets:
+            x = [abs(v) for v in u.tolist()]
+            for b in self._budgets:
+                b.push(x)
+        for i, t in enumerate(self._trains):
+            t.push(u[i] != 0.0)
 
     @property
     def window_energy_ua2(self) -> float:
         """``Σ u²`` of the last ``energy_window_steps − 1`` delivered inputs, µA² (0 without a budget)."""
-        return 0.0 if self._budget is None else float(np.sum(self._sq))
+        b = [b for b in self._budgets if b.name == "energy_budget"]
+        return math.fsum(b[0].ring) if b else 0.0
 
 
 def _onto(x, lo, hi) -> bool:

@@ -15,8 +15,15 @@ simulated plant, or the streaming bridge of :mod:`stimsteer.control.stream`; any
   fallback plan, or a controller that raised) and a window with missing data (a stalled source) deliver the safe
   fallback whatever the policy: without a valid plan or data, holding a stimulation is not known to be safe.
 * **Gate.** Every input that leaves passes :class:`~stimsteer.control.input_gate.InputGate` at that moment:
-  amplitude, slew from the last *delivered* input, and the energy budget over the rolling window of delivered
-  inputs (the controller's horizon); an input that breaks one is replaced by the safe fallback.
+  amplitude, slew from the last *delivered* input, every rolling budget over the windows of delivered inputs (the
+  energy budget over its window, default the controller's horizon; charge and energy windows in physical terms)
+  and train length and duty from the on samples delivered. An input that breaks a per-sample limit is replaced by
+  the safe fallback; one that would break a window or a train is reduced to the largest safe input.
+* **Sequence limits and the controller.** The full ``plan`` receives the delivered inputs as far back as its
+  windows and trains reach (``history_steps_``), so it plans inside what is left of every window; a
+  :class:`~stimsteer.control.mpc.fast_step.FastStep` plans with the per-sample limits only, and the gate clips its
+  first input to the remaining budget and the train mask of the delivered history (safe: the limits are on the
+  delivered sequence, and the gate's fallback always fits; not the full plan's answer, which looks ahead).
 * **Refusal.** Before the first input, the runner times ``calibration_steps`` plans on the warm-up window (nothing
   is delivered) and refuses to start when the sample period is shorter than the best of them, with the figures.
 * **Wind-down.** However the run ends (its length, a stalled source, a stream error, an interrupt), the runner
@@ -26,7 +33,7 @@ simulated plant, or the streaming bridge of :mod:`stimsteer.control.stream`; any
   indices of overruns, missed ticks, fallbacks, gate replacements, missing data, wind-down) and the timing
   figures, so the run can be checked and refitted (it is marked ``recorded_under_feedback``).
 
-Latency is the time from the tick to the decision (plan + gate), seconds; jitter is ``|tick interval − T|``
+Latency is the time from the tick to the checked decision (plan + gate, before the input is sent), seconds; jitter is ``|tick interval − T|``
 (``pace`` "wall" or "source"). Reported as p50/p99/max with the counts of each marker.
 """
 
@@ -43,7 +50,7 @@ from ._live_record import record_run, timing_summary
 from .input_gate import InputGate
 from .loop import offset_free_wrapper
 
-__all__ = ["LiveRun", "run_live", "OVERRUN_POLICIES", "PACES"]
+__all__ = ["LiveRun", "run_live", "energy_window", "OVERRUN_POLICIES", "PACES"]
 
 OVERRUN_POLICIES = ("hold", "fallback")
 PACES = ("wall", "source", "none")
@@ -91,6 +98,7 @@ class _Loop:
         self._u = np.zeros((capacity, controller.n_inputs_))
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
         self.n, self.missing_run, self.last_gap = 0, 0, -(10**9)
+        self.history = int(getattr(controller, "history_steps_", 0) or 0)
         self.events, self.markers, self.latency, self.ticks = [], {}, [], []
 
     @property
@@ -102,20 +110,24 @@ class _Loop:
         return self._y[:self.n]
 
     def window(self):
-        """The past window ``(u, y)`` as views, or None when a sample in it is missing."""
+        """The past window ``(u, y)`` as views, or None when a sample in it is missing; ``u`` reaches back as far as
+        the controller's windows and trains do (delivered inputs are always known)."""
         T, n = self.c.past_steps_, self.n
         if n - self.last_gap <= T:
             return None
-        return self._u[n - T:n], self._y[n - T:n]
+        return self._u[max(0, n - max(T, self.history)):n], self._y[n - T:n]
 
     def mark(self, kind):
         self.markers.setdefault(kind, []).append(self.n)
 
-    def deliver(self, u, kind=None):
-        """Gate ``u``, send it, receive the next sample; returns the gate's reason ('' when ``u`` left as given)."""
+    def deliver(self, u, kind=None, base=None):
+        """Gate ``u``, send it, receive the next sample; returns the gate's reason ('' when ``u`` left as given).
+        With ``base`` (the tick), the latency to the checked decision is recorded before the input is sent."""
         if kind:
             self.mark(kind)
         sent, why = self.gate.admit(u)
+        if base is not None:
+            self.latency.append(self.clock() - base)
         if why:
             self.mark(f"gate_{why}")
         i = self.n
@@ -210,8 +222,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     period = _check_settings(controller, plant, n_steps, overrun_policy, pace, sample_rate_hz, calibration_steps,
                              max_stall_s)
     warm = _warmup(controller, warmup_inputs)
-    window = controller.horizon_steps_
-    gate = InputGate(controller.limits_, energy_window_steps=window)
+    gate = InputGate(controller.limits_, energy_window_steps=energy_window(controller))
     capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
     loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
     loop.sleep = sleep
@@ -268,20 +279,17 @@ def _step(loop, tick, target, use_fast_path):
         return _after(loop, loop.deliver(_policy_input(loop), "missed"), "missed")
     window = loop.window()
     if window is None:
-        loop.latency.append(loop.clock() - base)
-        return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data"), "no_data")
+        return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data", base), "no_data")
     try:
         plan = c.plan(window[0], window[1], target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
         u, kind = (plan.inputs[0], "planned") if not plan.fallback else (None, "failed")
     except Exception:  # noqa: BLE001 -- a live loop must deliver something safe whatever went wrong in a plan
         u, kind = None, "failed"
-    done = loop.clock()
-    loop.latency.append(done - base)
-    if kind == "planned" and done - base > T:
+    if kind == "planned" and loop.clock() - base > T:
         u, kind = _policy_input(loop), "overrun"  # a late plan is never delivered
     elif kind == "failed":
         u = loop.gate.safe_input()
-    return _after(loop, loop.deliver(u, None if kind == "planned" else kind), kind)
+    return _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
 
 
 def _after(loop, why, kind):
@@ -317,13 +325,19 @@ def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
     T = controller.past_steps_
     times = np.empty(n)
     for i in range(n):
+        fresh = InputGate(controller.limits_, energy_window_steps=energy_window(controller))  # built untimed
         t0 = clock()
         plan = controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
                                use_fast_path=use_fast_path)
-        InputGate(controller.limits_, energy_window_steps=controller.horizon_steps_).admit(plan.inputs[0])
+        fresh.admit(plan.inputs[0])
         times[i] = clock() - t0
     controller.reset()  # no warm start carried from the timing plans into the run
     return {"n": n, "min": float(times.min()), "median": float(np.median(times)), "max": float(times.max())}
+
+
+def energy_window(controller) -> int:
+    """The rolling window of the per-sample layout's energy budget: declared in the limits, else the horizon."""
+    return int(controller.limits_.energy_window_steps or controller.horizon_steps_)
 
 
 def _zeros_like_outputs(controller, T):
@@ -362,7 +376,7 @@ def _warmup(controller, warmup_inputs):
     if w.ndim != 2 or w.shape[1] != m or w.shape[0] < T:
         raise SessionError(f"warmup_inputs must have shape (>= {T}, {m}) (the controller's past window); got "
                            f"{w.shape}.")
-    bad = controller.limits_.violations(w, np.zeros(m), energy_window_steps=controller.horizon_steps_)
+    bad = controller.limits_.violations(w, np.zeros(m), energy_window_steps=energy_window(controller))
     if any(bad.values()) or not np.all(np.isfinite(w)):
         raise LimitsError(f"the warm-up inputs break the hard limits ({bad}) counted from rest; warm up inside "
                           "the declared limits.")

@@ -4,8 +4,9 @@
 channels from an LSL *inlet* (the acquisition system's stream) and writes stimulation commands, µA per site, to an
 LSL *outlet* whose description names every channel and its unit. Every command passes an
 :class:`~stimsteer.control.input_gate.InputGate` at the moment it is pushed (amplitude, slew from the last pushed
-command, energy over the rolling window of pushed commands), whoever calls :meth:`LslBridge.step`: a command that
-breaks a hard limit leaves as the safe fallback instead. :class:`SimulatedLslPlant` puts a simulated plant behind
+command, every rolling charge or energy window of pushed commands, train length and duty cycle), whoever calls
+:meth:`LslBridge.step`: a command that breaks a per-sample limit leaves as the safe fallback instead, one that would
+break a window or a train as the largest safe command. :class:`SimulatedLslPlant` puts a simulated plant behind
 the same two streams (a thread that samples at the plant's rate, applies the latest command and pushes the
 outputs), for tests and the demo, with injectable faults (a stall, a clock jump).
 

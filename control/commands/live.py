@@ -22,12 +22,13 @@ from ...sysid._claims import claim_output
 from ...sysid._files import atomic_dir
 from ...sysid._records import jsonable
 from ...sysid.caution import CAUTION
+from .._plan_physical import plan_limits
 from ..limits import load_limits
 from ..mpc.dispatch import controller_for
 from ..mpc.target import parse_target
 from ..plants import load_plant
-from ..realtime import OVERRUN_POLICIES, run_live
-from .plan import _channels
+from ..realtime import OVERRUN_POLICIES, energy_window, run_live
+from .plan import _channels, _input_units
 from ._common import add_window_options, window_steps
 
 __all__ = ["add_parser", "run"]
@@ -38,7 +39,10 @@ def add_parser(sub) -> None:
     p = sub.add_parser("live", help="run a live closed loop with deadlines for a declared time (a simulated plant, "
                        "or LSL streams on this machine) and record it as a session")
     p.add_argument("model", metavar="MODEL_OR_PREDICTOR", help="model file written by `stimsteer fit` (either route)")
-    p.add_argument("--limits", required=True, help="limits file (TOML); every delivered input is checked against it")
+    p.add_argument("--limits", required=True, help="limits file (TOML); every delivered input is checked against it, "
+                   "including rolling charge and energy windows, train length and duty cycle of a [physical] section")
+    p.add_argument("--stimulation", help="stimulation description of the model's inputs (needed with [physical] "
+                   "limits when the model records none), as for `stimsteer plan`")
     p.add_argument("--target", required=True, help="constant target 'name=value,...' or a CSV over the horizon "
                    "(as for `stimsteer plan`), kept for the whole run")
     p.add_argument("--duration-s", type=float, required=True, help="length of the controlled run, seconds")
@@ -61,8 +65,9 @@ def add_parser(sub) -> None:
                    "disturbance from the prediction errors and track without offset: constant offsets (constant) or "
                    "slow linear drift (ramp); default off")
     p.add_argument("--fast-step", action="store_true", help="decide each input with the precomputed fast step "
-                   "(state-space models or direct predictors; amplitude and slew limits only; needs the realtime "
-                   "extra, daqp) instead of the full plan: for sample rates in the kHz")
+                   "(state-space models or direct predictors; needs the realtime extra, daqp) instead of the full "
+                   "plan: for sample rates in the kHz. It plans with the per-sample limits; the gate clips each input "
+                   "to what is left of every rolling window and train")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated plant's noise (default 0)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
@@ -72,8 +77,12 @@ def _controller(args):
     names_in, names_out, units, rate = _channels(predictor, provenance)
     N = window_steps(args.horizon, rate, "--horizon") or getattr(predictor, "max_horizon_steps_", None)
     target, tracked = parse_target(args.target, names_out, N)
-    ctrl = controller_for(predictor, load_limits(args.limits), horizon_steps=target.shape[0],
-                          output_weight=tracked.astype(float), input_weight=args.input_weight)
+    limits, physical = plan_limits(args.limits, getattr(args, "stimulation", None), provenance, rate=rate,
+                                   names_in=names_in, names_out=names_out,
+                                   model_units=_input_units(predictor, provenance))
+    weight = args.input_weight if physical is None else physical.input_weight(args.input_weight)
+    ctrl = controller_for(predictor, load_limits(args.limits) if physical is None else limits,
+                          horizon_steps=target.shape[0], output_weight=tracked.astype(float), input_weight=weight)
     if getattr(args, "fast_step", False):
         if args.offset_free != "off":
             raise InvalidParameterError("--offset-free needs the full plan's predictions; drop --fast-step (or "
@@ -111,7 +120,7 @@ def _source(args, ctrl, rate, stack):
                                               output_names=ctrl.output_names_, seed=args.seed))
     bridge = LslBridge(inlet_name=inlet, outlet_name=outlet, input_names=ctrl.input_names_,
                        output_names=ctrl.output_names_, sample_rate_hz=rate, limits=ctrl.limits_,
-                       energy_window_steps=ctrl.horizon_steps_, resolve_timeout_s=args.resolve_timeout_s)
+                       energy_window_steps=energy_window(ctrl), resolve_timeout_s=args.resolve_timeout_s)
     return stack.enter_context(bridge), "source"
 
 
@@ -126,7 +135,8 @@ def _lines(run, out) -> list:
         f"{us(jit['p50'])}, p99 {us(jit['p99'])}",
         f"planned {c['planned']}, overruns {c['overrun']}, missed ticks {c['missed']}, failed plans {c['failed']}, "
         f"samples without data {c['no_data']}",
-        f"gate: {g['admitted']} inputs passed as given, {g['replaced']} replaced by the safe fallback; unchecked "
+        f"gate: {g['admitted']} inputs passed as given, {g['reduced']} reduced to the largest safe input under a "
+        f"rolling window or train limit, {g['replaced'] - g['reduced']} replaced by the safe fallback; unchecked "
         f"inputs {s['unchecked_inputs']}; delivered inputs over a hard limit {s['delivered_violations']}",
     ]
     late = c["overrun"] + c["missed"]

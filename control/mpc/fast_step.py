@@ -17,8 +17,16 @@ and the first step's slew window change. :class:`FastStep` precomputes everythin
 It returns only what a loop delivers (the first input, whether it is a fallback, the status), none of the
 :class:`Plan`'s packaging. The answer is verified against the hard limits before it is returned (amplitude and the
 slew window from ``last_input``; rounding-level excess is put on the bound, more is a failed step that returns the
-safe fallback), and a live runner's gate checks it again when it leaves. Energy budgets and output bounds need the
-full plan: they are refused here (use ``plan`` of the controller).
+safe fallback), and a live runner's gate checks it again when it leaves. The per-sample layout's energy budget and
+output bounds need the full plan: they are refused here (use ``plan`` of the controller).
+
+Sequence limits (window budgets in physical terms, train length, duty) are accepted, and planned with the per-sample
+limits only: the first input is clipped, when it leaves, to what is left of every window and to the train mask of
+the *delivered* history, by the live gate (:class:`~stimsteer.control.input_gate.InputGate`: the largest safe input
+towards the answer). That is exact for safety -- the limits are on the delivered sequence and the gate's fallback
+always fits -- at the cost of optimality: the full plan spreads a window's budget over its horizon, this step spends
+it as it comes. It is also why the step is only for loops that gate what they deliver (:func:`run_live`, the
+streaming bridge). A full plan per step instead would cost milliseconds, far beyond a kHz loop's period.
 """
 
 from __future__ import annotations
@@ -169,7 +177,6 @@ def _unsupported(c) -> str:
         (getattr(c, "target_kind_", "") != "output", "it plans towards a state"),
         (getattr(c, "_LpT", None) is not None, "it has a terminal weight"),
         (getattr(c, "_energy", None) is not None, "its limits have an energy budget"),
-        (c.limits_.has_sequence_limits, "its limits have window budgets or train limits in physical terms"),
         (getattr(c, "_idx_b", np.zeros(0)).size > 0, "its limits have output bounds"),
         (method == "deepc" and getattr(c, "_elim", None) is None,
          "its DeePC problem does not reduce to the inputs (an l1 regulariser, or dependent equalities)"),

@@ -119,3 +119,82 @@ def test_live_refuses_a_rate_faster_than_its_best_step(files, capsys, tmp_path):
     err = capsys.readouterr().err
     assert code == 2 and "the sample period 1 µs (1e+06 Hz) is shorter than the best measured step" in err
     assert "median" in err and not (files / "refused").exists()
+
+
+STIMULATION = """
+[mapping]
+kind = "amplitude"
+
+[sites.site_a]
+kind = "electrical"
+waveform = "symmetric"
+leading_phase = "cathodic"
+phase_width = "100 us"
+frequency = "50 Hz"
+amplitude_unit = "uA"
+contact_area = "0.06 cm^2"
+
+[sites.site_b]
+kind = "electrical"
+waveform = "symmetric"
+leading_phase = "cathodic"
+phase_width = "100 us"
+frequency = "50 Hz"
+amplitude_unit = "uA"
+contact_area = "0.06 cm^2"
+"""
+
+PHYSICAL = """
+[physical]
+window_s = WINDOW
+charge_rate_max_uc_per_s = 0.004
+
+[physical.sites.site_a]
+amplitude_max_ua = 1.0
+train_length_max_s = 0.1
+
+[physical.sites.site_b]
+amplitude_max_ua = 1.0
+"""
+
+
+def test_live_keeps_physical_window_and_train_limits_of_the_delivered_run(files, capsys):
+    """`live --stimulation` compiles [physical] limits as `plan` does; the recorded run is graded by the independent
+    checker of test_live_sequence_limits on the compiled limits."""
+    from stimsteer.control._plan_physical import plan_limits
+
+    from .test_live_sequence_limits import sequence_breaks
+
+    (files / "stim.toml").write_text(STIMULATION)
+    (files / "physical.toml").write_text(PHYSICAL.replace("WINDOW", "0.2"))
+    args = _args(files, "physical", "--plant", str(files / "plant.h5"), "--stimulation", str(files / "stim.toml"))
+    args[args.index("--limits") + 1] = str(files / "physical.toml")
+    args[args.index("--target") + 1] = "lfp_0=20,lfp_1=20,lfp_2=20"
+    code = main(args)
+    printed = capsys.readouterr().out
+    assert code == 0, printed
+    summary = json.loads((files / "physical" / "run.json").read_text())
+    assert summary["sequence_limits"]["window_budgets"][0]["name"] == "charge_rate_window"
+    assert not any(summary["delivered_violations"].values()) and "reduced to the largest safe input" in printed
+    lim, _ = plan_limits(files / "physical.toml", files / "stim.toml", {}, rate=RATE, names_in=("site_a", "site_b"),
+                         names_out=("lfp_0", "lfp_1", "lfp_2"), model_units=("uA", "uA"))
+    u = np.asarray(load_session(files / "physical" / "run.h5").u)
+    assert np.any(u > 0) and sequence_breaks(u, lim) == []
+
+
+@pytest.mark.parametrize("window, stimulation, match", [
+    ("0.2", False, r"declares \[physical\] limits, but the model records no stimulation description"),
+    ("30000.0", True, r"spans 150000\d samples, more than the 1048576 a live gate keeps"),
+])
+def test_live_refuses_sequence_limits_it_cannot_honour_in_one_line(files, capsys, window, stimulation, match):
+    import re
+
+    (files / "stim.toml").write_text(STIMULATION)
+    (files / f"phys_{window}.toml").write_text(PHYSICAL.replace("WINDOW", window))
+    args = _args(files, "bad_phys", "--plant", str(files / "plant.h5"),
+                 *(["--stimulation", str(files / "stim.toml")] if stimulation else []))
+    args[args.index("--limits") + 1] = str(files / f"phys_{window}.toml")
+    code = main(args)
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and re.search(match, err), err
+    assert not (files / "bad_phys").exists() or not any((files / "bad_phys").iterdir())

@@ -389,12 +389,12 @@ def test_train_limits_with_a_slew_limit_are_refused():
                    train_limits=TrainLimits((3,), (None,), (None,)))
 
 
-def test_what_cannot_keep_sequence_limits_refuses_them():
-    """The live gate and the precomputed fast step check only per-sample limits: with window budgets or train limits
-    they must refuse, not deliver unchecked inputs."""
+def test_the_live_gate_and_the_fast_step_take_sequence_limits():
+    """The live gate checks window budgets and train limits from the delivered history (they were refused before
+    issue 20's live part; tests/control/test_live_sequence_limits.py grades its records), and the precomputed fast step
+    accepts them (the gate clips its first input)."""
     from stimsteer.control.input_gate import InputGate
     from stimsteer.control.mpc.fast_step import _unsupported
-    from stimsteer.sysid.exceptions import InvalidParameterError
 
     m = _mapping(250.0, {"a": {"kind": "electrical", "phase_width": "90 us", "frequency": "250 Hz",
                                "contact_area": "0.06 cm^2"}})
@@ -402,11 +402,12 @@ def test_what_cannot_keep_sequence_limits_refuses_them():
                                                  "sites": {"a": {"amplitude_max_ua": 200.0}}}), m)
     lim = dataclasses.replace(c.stim_limits, input_names=None)
     assert lim.has_sequence_limits
-    with pytest.raises(InvalidParameterError, match=r"window budgets or train limits"):
-        InputGate(lim)
+    gate = InputGate(lim)
+    sent = np.array([gate.admit([200.0])[0] for _ in range(200)])
+    assert not any(lim.violations(sent, np.zeros(1)).values()) and gate.n_reduced > 0
     ctrl = ModelPredictiveController(model=StateSpaceModel(A=[[0.9]], B=[[1.0]], C=[[1.0]], past_steps=1),
                                      limits=lim, horizon_steps=4).fit()
-    assert "window budgets or train limits" in _unsupported(ctrl)
+    assert "window budgets or train limits" not in _unsupported(ctrl)
 
 
 @pytest.mark.parametrize("mode", ["worst", "average"])

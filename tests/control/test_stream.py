@@ -178,6 +178,34 @@ def test_late_steps_solver_failures_and_a_stalled_inlet_leave_only_safe_inputs(s
     assert not run.session.mask[-1]
 
 
+def test_a_binding_charge_window_with_late_steps_and_a_stalled_inlet_leaves_only_safe_inputs(system):
+    """Issue 20 under issue 16's sequence limits, through LSL: a rolling charge window and a train limit that bind
+    (the target is out of reach), late steps, a solver crash and a stalled inlet. The commands the stimulator
+    received are graded by the independent checker of test_live_sequence_limits (rolling sums over every window,
+    train runs with their hold, duty windows)."""
+    from stimsteer.control.sequence_limits import TrainLimits, WindowBudget
+    from .test_live_sequence_limits import sequence_breaks
+
+    model = system[0]
+    lim = StimLimits(amplitude_min_ua=[0.0, 0.0], amplitude_max_ua=[HI, HI],
+                     window_budgets=(WindowBudget("charge_rate_window", 4.0, 10, np.ones(2), np.zeros(2), "uC"),),
+                     train_limits=TrainLimits((6, None), (None, 7), (None, 12), (1, 2)))
+    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=H, input_weight=1e-3).fit()
+    faulty = _Faulty(ctrl, late={4, 5, 20}, raises={9})
+    with _sim(model, "window", stall_after=PAST + 45) as sim, _bridge(ctrl, "window") as bridge:
+        run = run_live(faulty, bridge, n_steps=400, target=np.full(P, 40.0), pace="source", max_stall_s=0.2)
+        time.sleep(0.05)
+        received = np.asarray([c for _, c in sim.commands])
+    assert "stalled" in run.stop_reason
+    kinds = [e.split("+")[0] for e in run.events]
+    assert kinds[4] == "overrun" and kinds[9] == "failed" and "no_data" in kinds
+    np.testing.assert_allclose(received, np.asarray(run.session.u))
+    assert sequence_breaks(received, lim) == [] and np.all(received[-1] == 0)
+    q = received.sum(axis=1)  # the window binds: some window of 10 delivered samples holds the whole budget
+    assert max(q[max(0, k - 9):k + 1].sum() for k in range(q.size)) >= 4.0 * 0.999
+    assert run.summary["gate"]["reduced"] > 0 and not any(run.summary["delivered_violations"].values())
+
+
 def test_a_clock_jump_stops_the_run_and_winds_down(system):
     model, ctrl, target = system
     with _sim(model, "jump", clock_jump_after=PAST + 15) as sim, _bridge(ctrl, "jump") as bridge:
