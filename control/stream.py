@@ -180,6 +180,9 @@ class LslBridge:
         Wait for each sample; default two sample periods.
     clock_tolerance : float, default 0.25
         Allowed deviation of a time-stamp step from a whole number of periods, in periods.
+    input_units : sequence of str, optional
+        The unit of each command channel as the model holds it (``mA``, ``uA``, ``uC/s``), written into the command
+        stream's description; default ``uA`` for every channel.
 
     Attributes
     ----------
@@ -189,9 +192,14 @@ class LslBridge:
     """
 
     def __init__(self, *, inlet_name, outlet_name, input_names, output_names, sample_rate_hz, limits,
-                 energy_window_steps=None, resolve_timeout_s=5.0, sample_timeout_s=None, clock_tolerance=0.25):
+                 energy_window_steps=None, resolve_timeout_s=5.0, sample_timeout_s=None, clock_tolerance=0.25,
+                 input_units=None):
         self.inlet_name, self.outlet_name = str(inlet_name), str(outlet_name)
         self.input_names, self.output_names = tuple(input_names), tuple(output_names)
+        self.input_units = (_MICROAMPERE,) * len(self.input_names) if input_units is None else tuple(input_units)
+        if len(self.input_units) != len(self.input_names):
+            raise InvalidParameterError(f"input_units needs one unit per input ({len(self.input_names)}); got "
+                                        f"{len(self.input_units)}.")
         self.n_inputs, self.n_outputs = len(self.input_names), len(self.output_names)
         self.sample_rate_hz = float(sample_rate_hz)
         if not (np.isfinite(self.sample_rate_hz) and self.sample_rate_hz > 0):
@@ -219,7 +227,7 @@ class LslBridge:
                               f"{self.resolve_timeout_s:g} s; check the acquisition software.") from None
         self._check_inlet(info, _labels(full))
         self._outlet = pylsl.StreamOutlet(_stream_info(pylsl, self.outlet_name, "stimulation", self.input_names,
-                                                       (_MICROAMPERE,) * self.n_inputs, self.sample_rate_hz,
+                                                       self.input_units, self.sample_rate_hz,
                                                        f"stimsteer-{self.outlet_name}"))
         self._inlet, self._lost = inlet, _lsl_error(pylsl, "LostError")
         self._inlet.open_stream(self.resolve_timeout_s)

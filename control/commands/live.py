@@ -77,9 +77,9 @@ def _controller(args):
     names_in, names_out, units, rate = _channels(predictor, provenance)
     N = window_steps(args.horizon, rate, "--horizon") or getattr(predictor, "max_horizon_steps_", None)
     target, tracked = parse_target(args.target, names_out, N)
+    args.input_units = _input_units(predictor, provenance)  # the command stream names them (empty: unknown)
     limits, physical = plan_limits(args.limits, getattr(args, "stimulation", None), provenance, rate=rate,
-                                   names_in=names_in, names_out=names_out,
-                                   model_units=_input_units(predictor, provenance))
+                                   names_in=names_in, names_out=names_out, model_units=args.input_units)
     weight = args.input_weight if physical is None else physical.input_weight(args.input_weight)
     ctrl = controller_for(predictor, load_limits(args.limits) if physical is None else limits,
                           horizon_steps=target.shape[0], output_weight=tracked.astype(float), input_weight=weight)
@@ -120,7 +120,8 @@ def _source(args, ctrl, rate, stack):
                                               output_names=ctrl.output_names_, seed=args.seed))
     bridge = LslBridge(inlet_name=inlet, outlet_name=outlet, input_names=ctrl.input_names_,
                        output_names=ctrl.output_names_, sample_rate_hz=rate, limits=ctrl.limits_,
-                       energy_window_steps=energy_window(ctrl), resolve_timeout_s=args.resolve_timeout_s)
+                       energy_window_steps=energy_window(ctrl), resolve_timeout_s=args.resolve_timeout_s,
+                       input_units=getattr(args, "input_units", None) or None)
     return stack.enter_context(bridge), "source"
 
 

@@ -27,6 +27,7 @@ else:
     pylsl = pytest.importorskip("pylsl")
 
 from stimsteer.control.limits import StimLimits  # noqa: E402
+from stimsteer.sysid.exceptions import InvalidParameterError  # noqa: E402
 from stimsteer.control.mpc import ModelPredictiveController  # noqa: E402
 from stimsteer.control.plants import LinearNetworkPlant  # noqa: E402
 from stimsteer.control.realtime import run_live  # noqa: E402
@@ -149,6 +150,22 @@ def test_the_command_stream_names_its_channels_and_their_unit(system):
         ch = ch.next_sibling()
     assert labels == list(ctrl.input_names_) and units == ["uA"] * M
     assert full.nominal_srate() == RATE and full.channel_count() == M
+
+
+def test_the_command_stream_carries_the_models_input_units(system):
+    # a model in mA (or charge rate) must not announce µA to the stimulator: the description says what it sends
+    model, ctrl, _ = system
+    units_in = ["mA"] + ["uC/s"] * (M - 1)
+    with _sim(model, "unit"), _bridge(ctrl, "unit", input_units=units_in):
+        info = pylsl.resolve_byprop("name", _names("unit")[1], 1, 5.0)[0]
+        full = pylsl.StreamInlet(info).info(timeout=5.0)
+    ch, units = full.desc().child("channels").child("channel"), []
+    while not ch.empty():
+        units.append(ch.child_value("unit"))
+        ch = ch.next_sibling()
+    assert units == units_in
+    with pytest.raises(InvalidParameterError, match="one unit per input"):
+        _bridge(ctrl, "unit", input_units=["mA"] * (M + 1))
 
 
 def test_the_bridge_gates_commands_whoever_sends_them(system):
