@@ -29,7 +29,7 @@ from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
-from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
     structure_candidates, structure_table
@@ -245,7 +245,7 @@ class RidgeArx(BasePredictor):
             total = sums[0]
             for f in sums[1:]:
                 total = total.plus(f)
-            total = total.moments()
+            total = total.lazy_moments()  # its Gram assembled when needed, in the order the solve wants
         return folds, total, k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
@@ -272,18 +272,14 @@ class RidgeArx(BasePredictor):
 
 
     def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
-        betas, scale, conds, mu = prob.solve(total, [alpha])
-        beta, cond = betas[0], float(conds[0])
+        coef, scale, cond, mu, resid = final_fit(prob, total, alpha)
         if not cond <= CONDITION_WARN_LIMIT:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="
                 f"{alpha:g}, limit {CONDITION_WARN_LIMIT:.0e}); coefficients may be inaccurate. Use a larger alpha, "
                 "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=4)
         mean = mu + shift
-        coef = beta.T
         intercept = mean[prob.y_idx] - coef @ mean[prob.x_idx] if prob.fit_intercept else np.zeros(prob.p)
-        Cxx, Cxy, Cyy, _ = prob.centred(total)
-        resid = Cyy - coef @ Cxy - Cxy.T @ coef.T + coef @ Cxx @ coef.T
         self._set_fitted(
             prob, coef=coef, intercept=intercept, alpha=alpha, table=table, scale=scale, cond=cond,
             n_rows=int(total.n), n_folds=k, scheme=scheme, innovation_cov=0.5 * (resid + resid.T) / total.n,
