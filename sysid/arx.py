@@ -126,7 +126,8 @@ class RidgeArx(BasePredictor):
     single-threaded BLAS, process-wide for the duration of the pass; a source other than Session or SessionFile is
     read in the calling thread only); the sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
     buffers of ``chunk_samples × (p + m)`` values, which bound the peak memory (sources whose ``read`` takes
-    ``out=``, as Session and SessionFile do, are read straight into them).
+    ``out=``, as Session and SessionFile do, are read straight into them). The cross-validation factors the
+    strengths of a fold on worker threads the same way (:mod:`stimsteer.sysid.arx_cv`).
 
     References
     ----------
