@@ -29,7 +29,7 @@ from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
-from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
     structure_candidates, structure_table
@@ -126,7 +126,8 @@ class RidgeArx(BasePredictor):
     single-threaded BLAS, process-wide for the duration of the pass; a source other than Session or SessionFile is
     read in the calling thread only); the sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
     buffers of ``chunk_samples × (p + m)`` values, which bound the peak memory (sources whose ``read`` takes
-    ``out=``, as Session and SessionFile do, are read straight into them).
+    ``out=``, as Session and SessionFile do, are read straight into them). The cross-validation factors the
+    strengths of a fold on worker threads the same way (:mod:`stimsteer.sysid.arx_cv`).
 
     References
     ----------
@@ -245,7 +246,7 @@ class RidgeArx(BasePredictor):
             total = sums[0]
             for f in sums[1:]:
                 total = total.plus(f)
-            total = total.moments()
+            total = total.lazy_moments()  # its Gram assembled when needed, in the order the solve wants
         return folds, total, k, scheme, np.tile(shift, L + 1)
 
     def _check_inputs_vary(self, session, lo, hi):
@@ -272,18 +273,14 @@ class RidgeArx(BasePredictor):
 
 
     def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
-        betas, scale, conds, mu = prob.solve(total, [alpha])
-        beta, cond = betas[0], float(conds[0])
+        coef, scale, cond, mu, resid = final_fit(prob, total, alpha)
         if not cond <= CONDITION_WARN_LIMIT:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="
                 f"{alpha:g}, limit {CONDITION_WARN_LIMIT:.0e}); coefficients may be inaccurate. Use a larger alpha, "
                 "fewer lags, or a session with richer stimulation.", ConditioningWarning, stacklevel=4)
         mean = mu + shift
-        coef = beta.T
         intercept = mean[prob.y_idx] - coef @ mean[prob.x_idx] if prob.fit_intercept else np.zeros(prob.p)
-        Cxx, Cxy, Cyy, _ = prob.centred(total)
-        resid = Cyy - coef @ Cxy - Cxy.T @ coef.T + coef @ Cxx @ coef.T
         self._set_fitted(
             prob, coef=coef, intercept=intercept, alpha=alpha, table=table, scale=scale, cond=cond,
             n_rows=int(total.n), n_folds=k, scheme=scheme, innovation_cov=0.5 * (resid + resid.T) / total.n,

@@ -16,25 +16,52 @@ Numerical care: a Cholesky solve is backward stable like the eigendecomposition 
 does not exist in floating point (a strength at or below the rounding level of ``R``, where the eigen route drops
 the null directions, or a semi-definite Schur complement) the structure falls back to the eigendecomposition route
 of :func:`stimsteer.sysid.arx_regression._ridge_path` for that fold.
+
+Cost: the strengths of a fold are factored on worker threads (one per BLAS thread the machine has, each with one
+BLAS thread; multi-threaded OpenBLAS stalls on a busy machine), each strength computed exactly as on one thread and
+the results taken in strength order, so the numbers do not depend on the number of workers. Large Grams (held as
+lag sums, :func:`_cv_errors_large`) are assembled fold by fold straight into the order ``[union, targets, rest]``
+and centred in place: the training Gram (freed before the held-out one is assembled) and one core-sized buffer per
+worker are the only Gram-sized arrays. A Cholesky factor per fold and strength remains (``d³/3`` flops each): an
+eigendecomposition per fold would give every strength, but costs ``~9 d³`` flops with the eigenvectors, more
+than the nine factors of the default grid; the fold Grams differ by their centring and per-fold scaling (a full-rank
+diagonal change), so no factor can be updated from another one exactly.
 """
 
 from __future__ import annotations
 
+import queue
 import warnings
+from concurrent.futures import ThreadPoolExecutor
+from functools import reduce
 
 import numpy as np
 import pandas as pd
 import scipy.linalg as sla
 
-from .arx_regression import _Problem, _ridge_path, _rounding_level
+from ._lagged import _single_threaded_blas
+from .arx_regression import _Problem, _ridge_path, _rounding_level, centred_lead, lead_index, lead_order
 
 __all__ = ["cv_errors", "cv_table"]
 
 
 def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarray):
-    """``L`` with ``L Lᵀ = R_core + α I`` (in ``buffer``) and ``L⁻¹ r_core``; None when the factor does not exist."""
+    """``L`` with ``L Lᵀ = R_core + α I`` (in ``buffer``) and ``L⁻¹ r_core``; None when the factor does not exist.
+
+    A Fortran-ordered buffer takes ``R_core`` as before (small problems, bit for bit); a C-ordered one (large
+    problems) takes it by a row-wise copy and is factored as its transpose (the same symmetric matrix), which spares
+    the strided transposing copy of a Gram-sized array.
+    """
     if Rc.shape[0] == 0:
         return Rc, rc
+    if not buffer.flags.f_contiguous:
+        np.copyto(buffer, Rc)
+        A = buffer.T
+        A[np.diag_indices_from(A)] += alpha
+        L, info = sla.lapack.dpotrf(A, lower=1, clean=0, overwrite_a=1)
+        if info != 0:
+            return None
+        return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
     np.copyto(buffer, Rc)
     buffer[np.diag_indices_from(buffer)] += alpha
     try:
@@ -72,20 +99,45 @@ def _strength_betas(R, r, n_core: int, extras, live, alpha, factor) -> dict:
     return out
 
 
-def _fold_betas(R, r, n_core: int, extras, live, alphas) -> dict:
+class _Runner:
+    """The worker threads of a cross-validation (each with single-threaded BLAS)."""
+
+    def __init__(self, pool, n_workers: int):
+        self.pool, self.n = pool, n_workers
+
+    def matmul(self, A: np.ndarray, B: np.ndarray, block: int) -> np.ndarray:
+        """``A @ B`` with the columns of ``B`` shared among the workers in blocks of ``block`` columns (a fixed
+        split: the numbers do not depend on the number of workers)."""
+        out = np.empty((A.shape[0], B.shape[1]))
+
+        def part(j):
+            np.matmul(A, B[:, j:j + block], out=out[:, j:j + block])
+
+        list(self.pool.map(part, range(0, B.shape[1], max(1, block))))
+        return out
+
+
+def _fold_betas(R, r, n_core: int, extras, live, alphas, run: _Runner, order: str = "F") -> dict:
     """Standardised coefficients ``{structure: [β per strength] or None}`` of one fold (the core leads ``R``):
-    one core factor at a time."""
-    out = {i: [] for i in live}
+    one core factor per strength, the strengths shared among the worker threads (the results are taken in
+    strength order, each computed as on one thread)."""
     Rc, rc = R[:n_core, :n_core], r[:n_core]
-    usable = n_core == 0 or min(alphas) > _rounding_level(Rc)
-    buffer = np.empty(Rc.shape, order="F")  # re-used: a fresh core-sized array per strength costs page faults
-    for alpha in alphas:
-        factor = _core_factor(Rc, rc, alpha, buffer) if usable else None
-        todo = [i for i in live if out[i] is not None]
-        found = _strength_betas(R, r, n_core, extras, todo, alpha, factor) if factor is not None else {}
-        for i in todo:
-            out[i] = None if found.get(i) is None else out[i] + [found[i]]
-    return out
+    if not (n_core == 0 or min(alphas) > _rounding_level(Rc)):
+        return {i: None for i in live}
+    buffers: queue.SimpleQueue = queue.SimpleQueue()  # one per worker, re-used over the strengths of this fold
+    for _ in range(min(run.n, len(alphas))):  # (a fresh core-sized array per strength costs page faults)
+        buffers.put(np.empty(Rc.shape, order=order))
+
+    def one(alpha):
+        buffer = buffers.get()
+        try:
+            factor = _core_factor(Rc, rc, alpha, buffer)
+            return _strength_betas(R, r, n_core, extras, live, alpha, factor) if factor is not None else {}
+        finally:
+            buffers.put(buffer)
+
+    found = list(run.pool.map(one, alphas))
+    return {i: None if any(fd.get(i) is None for fd in found) else [fd[i] for fd in found] for i in live}
 
 
 def _union_layout(probs: list[_Problem]):
@@ -115,13 +167,17 @@ def _centred_block(W, s, n, mu, xi, yi):
 
 
 def cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
-    from .hankel import _single_blas_thread
+    # factorisations of this size gain nothing from multi-threaded BLAS on a busy machine (it stalls): the
+    # strengths run on worker threads instead, each with one BLAS thread
+    with _single_threaded_blas() as n_workers, \
+            ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
+        run = _Runner(pool, n_workers)
+        if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
+            return _cv_errors_large(probs, folds, total, alphas, run)
+        return _cv_errors(probs, folds, total, alphas, run)
 
-    with _single_blas_thread():  # factorisations of this size gain nothing from threads on a busy machine
-        return _cv_errors(probs, folds, total, alphas)
 
-
-def _cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
+def _cv_errors(probs: list[_Problem], folds, total, alphas, run: _Runner) -> list[np.ndarray]:
     """Validation errors ``(n_alphas, n_folds)`` of each candidate (NaN where a fold cannot be scored).
 
     Each fold: training moments = total − fold; the error is the mean over outputs of SSE / SST on the held-out
@@ -154,7 +210,7 @@ def _cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
         R /= n_tr * scale[:, None]
         R[:, :nx] /= scale[None, :]
         R, r = R[:, :nx], R[:, nx:]  # standardised R (views) and r
-        found = _fold_betas(R, r, n_core, extras, live, alphas)
+        found = _fold_betas(R, r, n_core, extras, live, alphas, run)
         for i in live:
             idx = np.concatenate([np.arange(n_core), extras[i]])
             betas = found[i]
@@ -164,7 +220,59 @@ def _cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
     return errors
 
 
-def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:
+def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner) -> list[np.ndarray]:
+    """As :func:`_cv_errors`, for Grams held as lag sums (``total`` and ``folds`` with ``.sums``).
+
+    Each fold's training Gram is assembled from the other folds' sums straight into the order ``[union, targets,
+    rest]`` (regressors and targets are then views), centred and standardised in place, and freed before the
+    held-out Gram is assembled the same way: two Gram-sized arrays at most, plus one core-sized buffer per worker.
+    """
+    k = len(folds)
+    errors = [np.full((len(alphas), k), np.nan) for _ in probs]
+    xi, n_core, extras = _union_layout(probs)
+    yi, nx = probs[0].y_idx, xi.size
+    index = lead_index(total.s.size, probs[0].c, np.concatenate([xi, yi]))
+    for f, held in enumerate(folds):
+        n_tr = total.n - held.n
+        live = [i for i, q in enumerate(probs) if held.n and n_tr > q.x_idx.size]
+        if not live:
+            continue
+        train = reduce(lambda a, b: a.plus(b), [g.sums for j, g in enumerate(folds) if j != f])
+        s_tr = lead_order(train.lagged_sums(), index)
+        mu = s_tr / n_tr if probs[0].fit_intercept else np.zeros_like(s_tr)
+        betas, scale = _large_betas(train, index, nx, yi.size, n_tr, s_tr, mu, n_core, extras, live, alphas, run)
+        del train
+        s_h = lead_order(held.s, index)
+        W_h, C, raw = centred_lead(held.sums, index, nx + yi.size, held.n, s_h, mu)
+        Q, qyy = C[:nx], np.diagonal(C)[nx:].copy()
+        sst = raw[nx:] - s_h[nx:nx + yi.size] ** 2 / held.n
+        for i in live:
+            idx = np.concatenate([np.arange(n_core), extras[i]])
+            errors[i][:, f] = _errors(betas[i], scale, idx, Q, qyy, sst,
+                                      lambda A, B: run.matmul(A, B, yi.size))  # one strength per block
+        del W_h, C, Q
+    return errors
+
+
+def _large_betas(train, index, nx, p, n_tr, s_tr, mu, n_core, extras, live, alphas, run):
+    """Standardised coefficients of each live structure on one fold's training rows (Gram freed on return)."""
+    W, C, _raw = centred_lead(train, index, nx + p, n_tr, s_tr, mu)
+    R = C[:nx]
+    scale = np.sqrt(np.clip(np.diagonal(R)[:nx], 0.0, None) / n_tr)
+    scale[scale == 0] = 1.0
+    R /= n_tr * scale[:, None]
+    R[:, :nx] /= scale[None, :]
+    R, r = R[:, :nx], R[:, nx:]
+    found = _fold_betas(R, r, n_core, extras, live, alphas, run, order="C")
+    for i in live:
+        if found[i] is None:  # no Cholesky factor: the eigen route, in this structure alone
+            idx = np.concatenate([np.arange(n_core), extras[i]])
+            found[i] = _ridge_path(R[np.ix_(idx, idx)], r[idx], alphas, route="eigh")[0]
+    del W, C, R, r
+    return found, scale
+
+
+def _errors(betas, scale, idx, Q, qyy, sst, matmul=np.matmul) -> np.ndarray:
     """Mean over outputs of SSE / SST for each coefficient set (all strengths in one product).
 
     ``Q`` holds the held-out centred moments ``[Qxx Qxy]`` over the union; the coefficients on ``idx`` are placed in
@@ -177,7 +285,7 @@ def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:
     a, p = len(betas), betas[0].shape[1]
     B = np.zeros((nx, a, p))
     B[idx] = np.stack([b / scale[idx, None] for b in betas], axis=1)
-    QB = (Q[:, :nx] @ B.reshape(nx, a * p)).reshape(nx, a, p)
+    QB = matmul(Q[:, :nx], B.reshape(nx, a * p)).reshape(nx, a, p)
     sse = qyy[None, :] - 2.0 * np.einsum("xap,xp->ap", B, Q[:, nx:]) + np.einsum("xap,xap->ap", B, QB)
     sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
     return np.mean(sse[:, ok] / sst[ok], axis=1)

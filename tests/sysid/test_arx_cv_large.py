@@ -1,0 +1,159 @@
+"""Ridge ARX on large lagged Grams (held as lag sums): fold Grams assembled one at a time in the solve's order and
+centred in place, the strengths factored on worker threads, the final fit by one Cholesky factor with the condition
+number from two Lanczos iterations.
+
+The reference is the earlier route, kept in the package (total Gram materialised, fold Gram = total − held, one
+core factor per strength on one thread; the final fit by ``_ridge_path`` with all eigenvalues) and the
+eigendecomposition route before it (an internal equivalence, not an outside source). The sizes are forced down by
+patching the thresholds, so the tests stay small.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import sys
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid import arx, arx_cv, arx_regression
+from stimsteer.sysid._lagged import _Moments
+from stimsteer.sysid.arx import RidgeArx
+from stimsteer.sysid.arx_structure import _longest, structure_candidates
+from stimsteer.sysid.arx_regression import _Problem, _condition
+
+sys.path.insert(0, str(Path(__file__).parent))
+from test_arx_cv import _eigen_reference, _session  # noqa: E402  (the earlier routes and the test session)
+
+
+def _large_moments(est, session, candidates, monkeypatch):
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)  # every Gram counts as large: totals held as lag sums
+    n_lags = max(_longest(c) for c in candidates)
+    probe = est._validated(session, max(candidates, key=_longest), n_lags)
+    folds, total, _k, _scheme, _shift = est._accumulate(session, probe)
+    probs = [_Problem(probe.p, probe.m, *c, probe.fit_intercept, n_lags) for c in candidates]
+    materialised = _Moments(probe.size)
+    for f in folds:
+        materialised.add(f.n, f.s, f.W)
+    return probs, folds, total, materialised
+
+
+def _est(**kw):
+    base = dict(output_lags="auto", input_lags="auto", delay_samples="auto", lag_grid=(1, 2, 4), delay_grid=(0, 1, 2))
+    return RidgeArx(**{**base, **kw})
+
+
+@pytest.mark.parametrize("alphas", [np.logspace(-8, 0, 9), np.array([0.0, 1e-3, 1.0])])
+def test_large_gram_errors_equal_the_eigen_route_for_every_structure(monkeypatch, alphas):
+    est = _est()
+    candidates, _ = structure_candidates(est)
+    probs, folds, total, materialised = _large_moments(est, _session(), candidates, monkeypatch)
+    assert hasattr(total, "sums")  # the large route is the one under test
+    got = arx_cv.cv_errors(probs, folds, total, alphas)
+    small = arx_cv.cv_errors(probs, folds, materialised, alphas)  # the earlier route on the same sums
+    for prob, errors, before in zip(probs, got, small):
+        np.testing.assert_allclose(errors, _eigen_reference(prob, folds, materialised, alphas), rtol=1e-9,
+                                   atol=1e-14)
+        np.testing.assert_allclose(errors, before, rtol=1e-10, atol=1e-15)
+
+
+def test_large_gram_singular_falls_back_to_the_eigen_route(monkeypatch):
+    session = _session(collinear=True)
+    est = RidgeArx(output_lags=1, input_lags="auto", delay_samples=2, lag_grid=(1, 2), alphas=(0.0, 1e-2))
+    candidates, _ = structure_candidates(est)
+    alphas = np.array([0.0, 1e-2])
+    probs, folds, total, materialised = _large_moments(est, session, candidates, monkeypatch)
+    got = arx_cv.cv_errors(probs, folds, total, alphas)
+    for prob, errors in zip(probs, got):
+        np.testing.assert_allclose(errors, _eigen_reference(prob, folds, materialised, alphas), rtol=1e-8,
+                                   atol=1e-12)
+    assert np.isfinite(np.concatenate(got)).all()
+
+
+@pytest.mark.parametrize("workers", [1, 3])
+def test_worker_threads_give_the_numbers_of_one_thread_bit_for_bit(monkeypatch, workers):
+    est = _est()
+    candidates, _ = structure_candidates(est)
+    probs, folds, total, _m = _large_moments(est, _session(seed=2), candidates, monkeypatch)
+    alphas = np.logspace(-8, 0, 9)
+    ref = arx_cv.cv_errors(probs, folds, total, alphas)
+
+    @contextlib.contextmanager
+    def fixed(n=workers):
+        yield n
+
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", fixed)
+    got = arx_cv.cv_errors(probs, folds, total, alphas)
+    for a, b in zip(got, ref):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_large_fit_predicts_as_the_earlier_route(monkeypatch):
+    session = _session(seed=4)
+    kw = dict(lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    slow = _est(**kw).fit(session)  # small Grams: the earlier route, bit for bit
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)  # the final fit by one factor and Lanczos
+    fast = _est(**kw).fit(session)
+    assert (fast.output_lags_, fast.input_lags_, fast.delay_samples_, fast.alpha_) == \
+        (slow.output_lags_, slow.input_lags_, slow.delay_samples_, slow.alpha_)
+    np.testing.assert_allclose(fast.cv_table_.to_numpy(), slow.cv_table_.to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(fast.structure_table_["mean_error"], slow.structure_table_["mean_error"], rtol=1e-9)
+    assert fast.condition_number_ == pytest.approx(slow.condition_number_, rel=1e-9)
+    np.testing.assert_allclose(fast.coef_, slow.coef_, rtol=1e-9, atol=1e-12 * np.abs(slow.coef_).max())
+    np.testing.assert_allclose(fast.intercept_, slow.intercept_, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(fast.innovation_cov_, slow.innovation_cov_, rtol=1e-9)
+    rng = np.random.default_rng(1)
+    args = (rng.standard_normal((3, 5, 2)), rng.standard_normal((3, 5, 3)), rng.standard_normal((3, 7, 2)))
+    a, b = slow.predict_many(*args), fast.predict_many(*args)
+    np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-10 * np.abs(a).max())
+
+
+def test_large_fit_at_the_rounding_level_takes_the_eigen_route(monkeypatch):
+    # alpha = 0 on a singular Gram: no factor; the final fit must be the minimum-norm eigen solution of before
+    session = _session(collinear=True)
+    kw = dict(output_lags=1, input_lags=2, delay_samples=2, alphas=(0.0,))
+    slow = RidgeArx(**kw).fit(session)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)
+    fast = RidgeArx(**kw).fit(session)
+    np.testing.assert_allclose(fast.coef_, slow.coef_, rtol=1e-8, atol=1e-10)
+    assert fast.condition_number_ == slow.condition_number_ == np.inf
+
+
+def test_condition_number_from_two_lanczos_runs_equals_all_eigenvalues():
+    rng = np.random.default_rng(0)
+    X = rng.standard_normal((900, 300)) @ np.diag(np.logspace(0, -3, 300))
+    R = X.T @ X / 900
+    for alpha in (1e-6, 1e-2):
+        lam = np.linalg.eigvalsh(R)
+        L = np.linalg.cholesky(R + alpha * np.eye(300))
+        got = _condition(lambda v: R @ v, np.asfortranarray(L), alpha)
+        assert got == pytest.approx((lam.max() + alpha) / (max(lam.min(), 0) + alpha), rel=1e-9)
+
+
+def test_large_cross_validation_holds_one_gram_and_the_worker_buffers(monkeypatch):
+    # The earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
+    # (5.2 Grams at peak here, measured with tracemalloc on the code before this change; this route 3.3 with two
+    # workers: one Gram, a core-sized buffer per worker and the lag sums).
+    est = RidgeArx(output_lags=100, input_lags=100, delay_samples="auto", delay_grid=(0, 1))
+    session = _session(T=8000)
+    candidates, _ = structure_candidates(est)
+    probs, folds, total, _m = _large_moments(est, session, candidates, monkeypatch)
+    gram = 8.0 * total.s.size ** 2
+    workers = 2
+
+    @contextlib.contextmanager
+    def fixed():
+        yield workers
+
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", fixed)
+    tracemalloc.start()
+    try:
+        arx_cv.cv_errors(probs, folds, total, np.logspace(-8, 0, 9))
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak <= (1 + workers + 0.5) * gram
