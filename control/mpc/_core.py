@@ -34,6 +34,7 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
+from ...sysid._threads import serial_clarabel
 from ..limits import StimLimits
 from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget, blend_all
@@ -390,6 +391,8 @@ class _PredictiveController(BaseEstimator):
             b.assign(h)
         opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
         opts.update(self.solver_options or {})
+        opts = serial_clarabel({"solver": self._cvx_solver(), **opts})  # forked workers must not wait on a pool
+        opts.pop("solver")
         try:
             with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
                 warnings.simplefilter("ignore", UserWarning)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .._threads import serial_clarabel
 from ..exceptions import SolverError
 
 
@@ -21,7 +22,8 @@ class _L1Solver:
         cost = lam_y * cp.sum_squares(Yp @ self.g - self.yp) + self.lam * cp.norm1(self.g)
         self.problem = cp.Problem(cp.Minimize(cost), [Up @ self.g == self.up, Uf @ self.g == self.uf])
         self.sizes = (Up.shape[0], Yp.shape[0])
-        self.options = {"solver": "CLARABEL", **(solver_options or {})}
+        # serial: a forked worker never waits on the parent's thread pool (sysid/_threads.py)
+        self.options = serial_clarabel({"solver": "CLARABEL", **(solver_options or {})})
 
     def solve(self, b: np.ndarray, lam: float) -> np.ndarray:
         nu, ny = self.sizes
