@@ -44,8 +44,9 @@ def test_demo_numbers_are_those_of_the_stored_run(demo_run):
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
     import golden
 
-    differences = golden.compare(golden.load_stored(), golden.snapshot(demo_run[0]), rtol=1e-9)
-    assert not differences, "\n".join(differences)
+    differences, mode = golden.check(golden.load_stored(), golden.snapshot(demo_run[0]), rtol=1e-9)
+    print(f"golden comparison: {mode}")
+    assert not differences, mode + "\n" + "\n".join(differences)
 
 
 @pytest.mark.slow
