@@ -15,7 +15,7 @@ import json
 import os
 import sys
 import time
-from contextlib import redirect_stderr, redirect_stdout
+from contextlib import contextmanager, redirect_stderr, redirect_stdout
 from pathlib import Path
 
 import numpy as np
@@ -36,6 +36,9 @@ _PAST_STEPS = 10
 _HORIZON_STEPS = 20
 _PLAN_TARGET = "rec_01=15,rec_04=-10"
 _NETWORK_TARGET = "15,0,0,-10,0,0,0,0"  # one value per recorded contact, µV
+# the step that runs beside the others from the start (it reads only the shipped files and is the longest)
+_BACKGROUND_STEP = "bench"
+_STOP_WAIT_S = 20.0  # how long a stopped background step may take to remove what it wrote
 
 
 
@@ -152,29 +155,120 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
     ------
     StimsteerError
         ``out`` holds another run (without ``force``), or a step failed (its message is passed on).
+
+    Notes
+    -----
+    The benchmark step, the longest, needs nothing the other steps write: where processes can be forked it runs in
+    a child process from the start, beside the other steps, and its text is shown in its turn (see
+    :class:`_Background`). Every process of the demo uses one BLAS thread: the steps and the benchmark's workers
+    already fill the cores, and more threads would only wait on each other.
     """
+    from threadpoolctl import threadpool_limits
+
     session, plant, limits = (str(demo_file(n)) for n in ("demo_session.h5", "demo_plant.h5", "demo_limits.toml"))
     out = Path(out)
     demo = load_session(session)
     started = time.perf_counter()
-    with atomic_dir(out, force=force) as tmp:
+    with atomic_dir(out, force=force) as tmp, threadpool_limits(limits=1):
         (tmp / "inputs").mkdir()
         (tmp / "models").mkdir()
         _write_pattern(tmp / "inputs" / DEMO_PATTERN_FILE, demo.sample_rate_hz, demo.input_names, demo.input_units)
-        steps = zip(demo_steps(session, plant, limits, str(tmp)), demo_steps(session, plant, limits, str(out)))
-        for (title, argv), (_, shown_argv) in steps:
-            echo(f"\n== {title}\n$ stimsteer {' '.join(shown_argv)}")
-            text = io.StringIO()
-            with redirect_stdout(text), redirect_stderr(_Renamed(sys.stderr, str(tmp), str(out))):
-                code = run_step(argv)
-            echo(text.getvalue().replace(str(tmp), str(out)).rstrip())
-            if code in (130, 143):  # the step was interrupted (Ctrl-C, SIGTERM): so is the demo
-                raise Interrupted(code - 128)
-            if code != 0:
-                raise DemoStepFailed(argv[0], code)
+        steps = list(zip(demo_steps(session, plant, limits, str(tmp)), demo_steps(session, plant, limits, str(out))))
+        with _Background.start(_BACKGROUND_STEP, steps, run_step, str(tmp), str(out)) as background:
+            for (title, argv), (_, shown_argv) in steps:
+                echo(f"\n== {title}\n$ stimsteer {' '.join(shown_argv)}")
+                if background is not None and argv is background.argv:
+                    code, text, err = background.result()
+                    sys.stderr.write(err)
+                else:
+                    code, text = _run_here(run_step, argv, str(tmp), str(out))
+                echo(text.replace(str(tmp), str(out)).rstrip())
+                _check_code(argv, code)
         _record_final_paths(tmp, out)
     report = out / "report" / "report.html"
     echo(f"\ndemo finished in {time.perf_counter() - started:.0f} s; outputs in {out}")
     echo(f"open the report: {report}")
     echo(CAUTION)
     return report
+
+
+def _run_here(run_step, argv, tmp: str, out: str) -> tuple[int, str]:
+    """Run one step in this process: its exit code and what it printed (its stderr goes on to ours, renamed)."""
+    text = io.StringIO()
+    with redirect_stdout(text), redirect_stderr(_Renamed(sys.stderr, tmp, out)):
+        code = run_step(argv)
+    return code, text.getvalue()
+
+
+def _check_code(argv, code: int) -> None:
+    if code in (130, 143):  # the step was interrupted (Ctrl-C, SIGTERM): so is the demo
+        raise Interrupted(code - 128)
+    if code != 0:
+        raise DemoStepFailed(argv[0], code)
+
+
+class _Background:
+    """One step run in a forked child process from the start of the demo; :meth:`result` waits for it.
+
+    The child captures the step's standard output and error and sends them back with its exit code, so the demo
+    shows them in the step's turn. It ends with the demo however the demo ends: stopped (SIGTERM, which the step
+    unwinds like Ctrl-C, removing what it wrote) when the demo leaves early, and sent SIGTERM by the system when the
+    demo process dies without stopping it (Linux). Where processes cannot be forked, :meth:`start` yields None and
+    the step runs in its turn.
+    """
+
+    def __init__(self, argv, process, conn):
+        self.argv, self._process, self._conn = argv, process, conn
+
+    @classmethod
+    @contextmanager
+    def start(cls, command: str, steps, run_step, tmp: str, out: str):
+        """Start the step whose subcommand is ``command`` (of ``steps``, ``((title, argv), shown)`` pairs)."""
+        import multiprocessing
+
+        argv = next((argv for (_, argv), _shown in steps if argv[0] == command), None)
+        if argv is None or "fork" not in multiprocessing.get_all_start_methods():
+            yield None
+            return
+        ctx = multiprocessing.get_context("fork")
+        receive, send = ctx.Pipe(duplex=False)
+        process = ctx.Process(target=_background_step, args=(run_step, argv, tmp, out, send, os.getpid()),
+                              name="stimsteer-demo-step", daemon=False)
+        process.start()
+        send.close()
+        try:
+            yield cls(argv, process, receive)
+        finally:
+            if process.is_alive():  # the demo ends early (a failed step, Ctrl-C): so does the step
+                process.terminate()
+                process.join(timeout=_STOP_WAIT_S)
+                if process.is_alive():  # it could not unwind in time (e.g. blocked on a full pipe)
+                    process.kill()
+            process.join()
+            receive.close()
+
+    def result(self) -> tuple[int, str, str]:
+        """``(exit code, standard output, standard error)`` of the step, once it has ended."""
+        try:
+            code, text, err = self._conn.recv()
+        except EOFError:  # the child died without a word (killed): report it as the step's failure
+            self._process.join()
+            code = self._process.exitcode
+            return (128 - code if code is not None and code < 0 else 1), "", ""
+        self._process.join()
+        return code, text, err
+
+
+def _background_step(run_step, argv, tmp: str, out: str, conn, parent_pid: int) -> None:
+    """The child's body: run the step with its output captured and send ``(code, stdout, stderr)`` home."""
+    import signal
+
+    from .evaluation.execute import _death_signal
+
+    if _death_signal(signal.SIGTERM) and os.getppid() != parent_pid:
+        os._exit(1)  # the demo died before the death signal was set up
+    text, err = io.StringIO(), io.StringIO()
+    with redirect_stdout(text), redirect_stderr(_Renamed(err, tmp, out)):
+        code = run_step(argv)
+    conn.send((int(code), text.getvalue(), err.getvalue()))
+    conn.close()

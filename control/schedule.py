@@ -229,7 +229,12 @@ def _margins(lo, hi, slew):
 
 
 def _require_exciting(u, trials, order, trial_n, rate, kind) -> ExcitationCheck:
-    check = verify_excitation(u, trials, order)
+    from threadpoolctl import threadpool_limits
+
+    # the row-space factor reduces groups of trials on one thread per core: BLAS threads inside each thread would
+    # oversubscribe the cores and spin (31 s instead of 0.6 s for the demo's schedule at load 15; same factor)
+    with threadpool_limits(limits=1):
+        check = verify_excitation(u, trials, order)
     if not check.exciting:
         m = u.shape[1]
         raise ExcitationError(

@@ -7,6 +7,7 @@ numbers do not depend on where a task ran; only the timing columns do.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 import signal
 import socket
@@ -15,7 +16,7 @@ import threading
 import time
 
 from ...sysid import InvalidParameterError, StimsteerError
-from .task_body import _run_task
+from .task_body import _run_task, chooses_routes, inner_score_of, route_choice_of, skip_reason
 from .tasks import _Context, _Task
 
 _INSTALLED: dict = {}
@@ -87,6 +88,10 @@ def _run_installed(task: _Task) -> dict:
     return _run_task(_INSTALLED["ctx"], task)
 
 
+def _inner_installed(split_index: int, split, method_index: int) -> float:
+    return inner_score_of(_INSTALLED["ctx"], split_index, split, method_index)
+
+
 def _available_cores() -> int:
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -146,7 +151,17 @@ def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> list:
 
     with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx, os.getpid())) as pool:
         try:
-            futures = {pool.submit(_run_installed, t): t.index for t in tasks}
+            choices = _choices(pool, ctx, tasks)
+            runs = []
+            for t in tasks:
+                t = dataclasses.replace(t, choice=choices.get(t.split_index))
+                skipped = skip_reason(ctx.settings, t, t.choice)
+                if skipped:  # decided here, as the task would decide it: no trip to a worker
+                    results[t.index] = {"skipped": skipped, "warnings": [], "task": t.index, "total_s": 0.0}
+                    bar.update()
+                else:
+                    runs.append(t)
+            futures = {pool.submit(_run_installed, t): t.index for t in sorted(runs, key=lambda t: _cost_rank(ctx, t))}
             for fut in as_completed(futures):
                 results[futures[fut]] = fut.result()
                 bar.update()
@@ -154,6 +169,29 @@ def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> list:
             _stop_workers(pool)
             raise
     return results
+
+
+def _choices(pool, ctx: _Context, tasks) -> dict:
+    """Each split's route choice (:func:`~.task_body.route_choice_of`) from the inner score of every method, one
+    pool job per split and method, so that no two workers fit the same inner models (empty: nothing to choose)."""
+    st = ctx.settings
+    if not chooses_routes(st):
+        return {}
+    splits = {t.split_index: t.split for t in tasks}
+    jobs = {(i, k): pool.submit(_inner_installed, i, split, k) for i, split in splits.items()
+            for k in range(len(st.methods))}
+    return {i: route_choice_of(st, {m.label: jobs[(i, k)].result() for k, m in enumerate(st.methods)})
+            for i in splits}
+
+
+def _cost_rank(ctx: _Context, task: _Task) -> tuple:
+    """Order of submission: the tasks that steer a closed loop (the longest) first, so that the short ones fill the
+    workers at the end instead of one long task running alone; the task order otherwise (numbers never depend on
+    it: results are placed by task index)."""
+    st, choice = ctx.settings, task.choice
+    spec = st.methods[task.method_index]
+    steers = st.control is not None and (choice is None or choice.get(spec.route, spec.label) == spec.label)
+    return (not steers, task.index)
 
 
 _SCHEMES = ("tcp", "tls", "ws", "wss", "ucx", "inproc")

@@ -63,9 +63,9 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     st = ctx.settings
     spec, setting = st.methods[task.method_index], task.setting
     choice = _route_choice(ctx, task)
-    if choice is not None and not _is_base(st, setting) and choice.get(spec.route, spec.label) != spec.label:
-        # the sweeps compare the routes by their representatives; every method is fitted and scored at the base
-        return {"skipped": f"not {spec.route}'s best method on the training trials of split {task.split_index}"}
+    skipped = skip_reason(st, task, choice)
+    if skipped:
+        return {"skipped": skipped}
     session = _session_at(ctx, setting.noise_scale)
     train, test = session.select_trials(task.train), session.select_trials(task.split.test)
     t0 = time.perf_counter()
@@ -89,22 +89,57 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
     return out
 
 
+def skip_reason(st, task: _Task, choice) -> str:
+    """Why ``task`` is skipped ('' when it runs): away from the base setting only each route's representative runs.
+
+    The sweeps compare the routes by their representatives; every method is fitted and scored at the base.
+    """
+    spec = st.methods[task.method_index]
+    if choice is not None and not _is_base(st, task.setting) and choice.get(spec.route, spec.label) != spec.label:
+        return f"not {spec.route}'s best method on the training trials of split {task.split_index}"
+    return ""
+
+
+def chooses_routes(st) -> bool:
+    """Whether a route has several methods (then each split chooses its representative by inner scores)."""
+    return any(sum(m.route == r for m in st.methods) >= 2 for r in ("indirect", "direct"))
+
+
+def route_choice_of(st, scores: dict) -> dict:
+    """Inner scores by label and each route's best label by route, from the inner score of every method."""
+    best = {}
+    for m in st.methods:
+        top = best.get(m.route)
+        if top is None or (np.nan_to_num(scores[m.label], nan=-np.inf) > np.nan_to_num(scores[top], nan=-np.inf)):
+            best[m.route] = m.label
+    return {**scores, **best}
+
+
+def inner_score_of(ctx: _Context, split_index: int, split, method_index: int) -> float:
+    """:func:`_inner_score` of one method on one split, with single-threaded BLAS (as inside a task)."""
+    from threadpoolctl import threadpool_limits
+
+    st = ctx.settings
+    with threadpool_limits(limits=1), warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the task that uses the choice records its own warnings
+        train = ctx.session.select_trials(split.train)
+        return _inner_score(st.methods[method_index], train, st, st.horizon_steps, split_index)
+
+
 def _route_choice(ctx: _Context, task: _Task):
     """Inner scores of every method of the split (by label) and each route's best label (by route); None when no
-    route has several methods. Computed once per split and process (deterministic, training trials only)."""
+    route has several methods. Given with the task by a runner that computed it first, else computed once per
+    split and process (deterministic, training trials only)."""
     st = ctx.settings
-    if all(sum(m.route == r for m in st.methods) < 2 for r in ("indirect", "direct")):
+    if not chooses_routes(st):
         return None
+    if task.choice is not None:
+        return task.choice
 
     def make():
         train = ctx.session.select_trials(task.split.train)
-        scores = {m.label: _inner_score(m, train, st, st.horizon_steps, task.split_index) for m in st.methods}
-        best = {}
-        for m in st.methods:
-            top = best.get(m.route)
-            if top is None or (np.nan_to_num(scores[m.label], nan=-np.inf) > np.nan_to_num(scores[top], nan=-np.inf)):
-                best[m.route] = m.label
-        return {**scores, **best}
+        return route_choice_of(st, {m.label: _inner_score(m, train, st, st.horizon_steps, task.split_index)
+                                    for m in st.methods})
 
     return _cached((ctx.token, "route choice", task.split_index), make)
 

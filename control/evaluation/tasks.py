@@ -37,6 +37,9 @@ class _Task:
     train: tuple
     loop_seed: int
     keep_traces: bool
+    #: the split's route choice (:func:`~.task_body.route_choice_of`) when the runner computed it before the task
+    #: (once per split on a local pool); None: the task computes it (cached per process)
+    choice: object = None
 
 
 @dataclass(frozen=True)

@@ -107,3 +107,50 @@ def test_an_interrupted_step_interrupts_the_demo_with_its_code_and_leaves_nothin
         run_demo(tmp_path / "demo", run_step=step, echo=lambda text: None)
     assert caught.value.code == 143 and steps == ["inspect", "fit"]
     assert list(tmp_path.iterdir()) == []
+
+
+def test_the_bench_step_runs_in_a_child_beside_the_others_and_is_shown_in_its_turn(tmp_path):
+    import multiprocessing
+    import os
+
+    from stimsteer.control.demo import run_demo
+
+    def step(argv):
+        print(f"ran {argv[0]} in process {os.getpid()}")
+        return 0
+
+    shown = []
+    run_demo(tmp_path / "demo", run_step=step, echo=shown.append)
+    ran = [line for line in shown if line.startswith("ran ")]
+    assert [line.split()[1] for line in ran] == [argv[0] for _, argv in demo_steps("s", "p", "l", "o")]
+    own = f"in process {os.getpid()}"
+    assert all(line.endswith(own) for line in ran[:-1])
+    if "fork" in multiprocessing.get_all_start_methods():
+        assert not ran[-1].endswith(own)  # the bench step ran in another process, and is shown last all the same
+
+
+def test_a_failed_bench_step_fails_the_demo_with_its_code_and_leaves_nothing(tmp_path):
+    from stimsteer.control.demo import DemoStepFailed, run_demo
+
+    with pytest.raises(DemoStepFailed) as caught:
+        run_demo(tmp_path / "demo", run_step=lambda argv: 2 if argv[0] == "bench" else 0, echo=lambda text: None)
+    assert caught.value.code == 2 and caught.value.step == "bench"
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_an_early_failure_stops_the_bench_step_running_beside_it(tmp_path):
+    import time
+
+    from stimsteer.control.commands._common import Interrupted
+    from stimsteer.control.demo import run_demo
+
+    def step(argv):
+        if argv[0] == "bench":
+            time.sleep(60)  # would hold the demo for a minute if it were not stopped
+        return 143 if argv[0] == "predict" else 0
+
+    t0 = time.perf_counter()
+    with pytest.raises(Interrupted):
+        run_demo(tmp_path / "demo", run_step=step, echo=lambda text: None)
+    assert time.perf_counter() - t0 < 30
+    assert list(tmp_path.iterdir()) == []

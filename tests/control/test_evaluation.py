@@ -381,6 +381,22 @@ def test_local_processes_give_the_sequential_numbers(seed):
         pd.testing.assert_frame_equal(a[name], b[name], check_exact=True)
 
 
+def test_a_pool_that_chooses_each_routes_method_first_gives_the_sequential_numbers(seed):
+    # with several methods per route the local pool scores every method on each split's inner trials once, before
+    # the tasks, and decides the skipped ones itself; the numbers (choices, skips, closed loops) stay the sequential
+    # run's, where every task computes the choice of its split
+    session, plant = _session(seed)
+    methods = (MethodSpec("indirect", "arx", {"alphas": (1e-6, 1e-3)}), MethodSpec("indirect", "subspace"),
+               MethodSpec("direct", "lsq", {"alphas": (1e-6, 1e-3)}), MethodSpec("direct", "hankel"))
+    st = _settings(methods=methods, train_trials=(3,), control=ControlSettings(n_steps=12))
+    one = run_bench(session, st, plant=plant, n_workers=1, progress=False)
+    two = run_bench(session, st, plant=plant, n_workers=2, progress=False)
+    assert (one.tasks["status"] == "skipped").any()  # the choice is exercised
+    a, b = _numbers(one), _numbers(two)
+    for name in a:
+        pd.testing.assert_frame_equal(a[name], b[name], check_exact=True)
+
+
 # ------------------------------------------------------------------------------------------------ plants and limits
 def test_recorded_limits_span_the_recorded_inputs_and_zero():
     u = np.array([[0.5, 1.0], [2.0, 3.0], [1.0, 4.0]])

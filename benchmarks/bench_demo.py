@@ -1,0 +1,103 @@
+"""Wall time of ``stimsteer demo``, end to end in a fresh process, per step and in total, beside the load average.
+
+Target (issue 20): the whole demo in 12 s or less on an idle 2-core machine. The demo runs in a child process, as
+``stimsteer demo --out DIR`` does; a small driver times each step's start and end (the benchmark step runs in a
+process of its own beside the others, so steps overlap), the imports before the first step, and the process as a
+whole. The 1-minute load average is printed before and after: on a shared machine the figures are only comparable
+with a run made just before or after under the same load.
+
+Run from the repository root::
+
+    .venv/bin/python benchmarks/bench_demo.py [--repeats 1] [--keep DIR]
+
+``--keep DIR`` keeps the last run's output folder (e.g. to compare it with the stored golden numbers:
+``python -c "import sys; sys.path.insert(0, 'tests'); import golden; print(golden.compare(golden.load_stored(),
+golden.snapshot('DIR')))"``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+# The child: import the command line, time every step through the demo's step runner, run the demo. Step times
+# are appended to a file, one JSON line each, from whichever process ran the step.
+_DRIVER = r"""
+import json, os, sys, time
+t0 = time.time()
+from stimsteer.control.cli import main
+from stimsteer.control.demo import run_demo
+log, out = sys.argv[1], sys.argv[2]
+def step(argv):
+    start = time.time()
+    code = main(argv)
+    with open(log, "a", encoding="utf-8") as fh:
+        fh.write(json.dumps({"step": argv[0], "out": argv[argv.index("--out") + 1] if "--out" in argv else "",
+                             "start": start, "end": time.time(), "pid": os.getpid(), "code": code}) + "\n")
+    return code
+with open(log, "a", encoding="utf-8") as fh:
+    fh.write(json.dumps({"imports": time.time() - t0}) + "\n")
+run_demo(out, run_step=step, echo=lambda text: None)
+"""
+
+
+def _one_run(out: Path) -> dict:
+    log = out.parent / "steps.jsonl"
+    log.unlink(missing_ok=True)
+    load = os.getloadavg()[0]
+    t0 = time.time()
+    proc = subprocess.run([sys.executable, "-c", _DRIVER, str(log), str(out)], capture_output=True, text=True)
+    wall = time.time() - t0
+    if proc.returncode != 0:
+        raise SystemExit(f"the demo failed (exit code {proc.returncode}): {proc.stderr.strip()[-2000:]}")
+    lines = [json.loads(x) for x in log.read_text(encoding="utf-8").splitlines()]
+    imports = next(x["imports"] for x in lines if "imports" in x)
+    steps = [x for x in lines if "step" in x]
+    return {"wall": wall, "imports": imports, "steps": steps, "t0": t0, "load_before": load,
+            "load_after": os.getloadavg()[0]}
+
+
+def _print_run(run: dict) -> None:
+    main_pid = min(s["pid"] for s in run["steps"])  # the demo's own process (the background step is its child)
+    print(f"{'step':<12} {'output':<26} {'start s':>8} {'wall s':>8}  process")
+    for s in sorted(run["steps"], key=lambda s: s["start"]):
+        where = "demo" if s["pid"] == main_pid else "beside (child)"
+        print(f"{s['step']:<12} {Path(s['out']).name:<26} {s['start'] - run['t0']:8.2f} {s['end'] - s['start']:8.2f}"
+              f"  {where}")
+    print(f"imports before the first step: {run['imports']:.2f} s")
+    print(f"stimsteer demo end to end (fresh process): {run['wall']:.2f} s   (target <= 12 s on an idle 2-core "
+          f"machine); 1-minute load average {run['load_before']:.2f} before, {run['load_after']:.2f} after")
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=1, help="demo runs, one after the other (default 1)")
+    parser.add_argument("--keep", metavar="DIR", help="keep the last run's output folder here (must not exist)")
+    args = parser.parse_args(argv)
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    print(f"{cores} core(s) available; demo data of the repository")
+    walls = []
+    with tempfile.TemporaryDirectory(prefix="bench_demo_") as tmp:
+        for i in range(args.repeats):
+            out = Path(tmp) / f"run{i}" / "demo"
+            out.parent.mkdir()
+            run = _one_run(out)
+            print(f"\nrun {i + 1} of {args.repeats}")
+            _print_run(run)
+            walls.append(run["wall"])
+        if args.keep:
+            shutil.copytree(out, args.keep)
+    if len(walls) > 1:
+        print(f"\nend to end over {len(walls)} runs: min {min(walls):.2f} s, max {max(walls):.2f} s")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
