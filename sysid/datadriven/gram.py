@@ -194,3 +194,27 @@ def ridge_map(G: np.ndarray, n_b: int, strength: float) -> np.ndarray:
     K = G[:n_b, :n_b].copy()
     K[np.diag_indices_from(K)] += strength
     return sla.cho_solve(sla.cho_factor(K, lower=True, check_finite=False), G[:n_b, n_b:], check_finite=False).T
+
+
+def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights) -> float | None:
+    """Weighted held-out squared error of ``Θ = G21 G11⁻¹`` (training Grams), or None where the training ``G11``
+    is not positive definite or its estimated condition number exceeds :data:`GRAM_CONDITION_LIMIT` (the caller
+    then takes the factor route).
+
+    The error ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` uses the validation Grams, as :func:`ridge_grid_errors`.
+    """
+    Gt = train.gram
+    K = Gt[:n_b, :n_b].copy()
+    try:
+        C = sla.cholesky(K, lower=True, check_finite=False, overwrite_a=True)
+    except np.linalg.LinAlgError:
+        return None
+    if not gram_condition(C, Gt[:n_b, :n_b]) <= GRAM_CONDITION_LIMIT:
+        return None
+    theta = sla.cho_solve((C, True), Gt[:n_b, n_b:], check_finite=False).T
+    del Gt, C, K
+    Gv = val.gram
+    w2 = weights ** 2
+    quad = np.einsum("ij,ij->i", theta @ Gv[:n_b, :n_b], theta)
+    cross = np.einsum("ij,ji->i", theta, Gv[:n_b, n_b:])
+    return float(w2 @ (np.diagonal(Gv)[n_b:] - 2.0 * cross + quad))

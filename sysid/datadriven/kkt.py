@@ -10,7 +10,7 @@ import scipy.linalg as sla
 
 from ..exceptions import ConditioningWarning
 
-__all__ = ["_kkt_map", "_kkt_predictor"]
+__all__ = ["_kkt_map", "_kkt_predictor", "_coordinate_projector", "_projection_map", "_projection_g"]
 
 
 def _kkt_system(blocks, M, lam_g: float, lam_y: float):
@@ -79,3 +79,61 @@ def _kkt_predictor(blocks, M, lam_g: float, lam_y: float) -> np.ndarray:
     K, beta = _kkt_system(blocks, M, lam_g, lam_y)
     X = _solve_kkt(K, np.vstack([Yf.T, np.zeros((K.shape[0] - r, Yf.shape[0]))]), lam_g, lam_y)
     return np.hstack([beta * X[r:r + nu].T, lam_y * (X[:r].T @ Yp.T), beta * X[r + nu:].T])
+
+
+# ------------------------------------------------------------------------------------------------ closed form
+def _leading_block(blocks):
+    """``n_b`` when ``D = [D1 0]`` with ``D1`` square (``n_b × n_b``), as for a Cholesky factor of the Gram in the
+    row order ``[Up; Yp; Uf; Yf]``; else None."""
+    n_b, r = blocks.Up.shape[0] + blocks.Yp.shape[0] + blocks.Uf.shape[0], blocks.Up.shape[1]
+    if not blocks.compressed or r < n_b or any(np.any(b[:, n_b:]) for b in (blocks.Up, blocks.Yp, blocks.Uf)):
+        return None
+    return n_b
+
+
+def _coordinate_projector(blocks, limit: float):
+    """``I − Π`` exactly, ``diag(0_{n_b}, I)``, when ``D = [D1 0]`` with ``D1`` invertible (estimated condition
+    number <= ``limit``: then ``D`` has full row rank and its row space is the first ``n_b`` coordinates); else None.
+    """
+    n_b = _leading_block(blocks)
+    if n_b is None:
+        return None
+    D1 = blocks.D[:, :n_b]
+    lu, piv = sla.lu_factor(D1, check_finite=False)
+    gecon, = sla.get_lapack_funcs(("gecon",), (lu,))
+    rcond, info = gecon(lu, float(np.abs(D1).sum(axis=0).max()), norm="1")
+    if info != 0 or not rcond * limit >= 1.0:
+        return None
+    d = np.zeros(blocks.Up.shape[1])
+    d[n_b:] = 1.0
+    return np.diag(d)
+
+
+def _is_coordinate_projector(M, n_b: int) -> bool:
+    d = np.diagonal(M)
+    return (M.shape[0] > n_b and not d[:n_b].any() and bool(np.all(d[n_b:] == 1.0))
+            and np.count_nonzero(M) == M.shape[0] - n_b)
+
+
+def _projection_map(blocks, M):
+    """``Θ = Yf1 D1⁻¹`` (``[u_past; y_past; u_future] -> vec(y_future)``): the projection predictor in closed form
+    when ``D = [D1 0]`` and ``M = diag(0, I)``; None otherwise (solve the KKT system).
+
+    With ``g = [g1; g2]``, the constraints and the slack involve ``D1 g1`` only and the penalty is ``||g2||²``, so
+    ``g2 = 0`` and ``D1 g1 = b`` (zero slack, zero penalty) is the unique minimiser for every ``λ_g, λ_y > 0``.
+    """
+    n_b = _leading_block(blocks)
+    if n_b is None or M is None or not _is_coordinate_projector(M, n_b):
+        return None
+    D1 = blocks.D[:, :n_b]
+    return sla.solve(D1.T, blocks.Yf[:, :n_b].T, check_finite=False).T
+
+
+def _projection_g(blocks, M, B: np.ndarray):
+    """The minimisers ``g = [D1⁻¹ B; 0]`` of :func:`_projection_map`'s case (None outside it)."""
+    n_b = _leading_block(blocks)
+    if n_b is None or M is None or not _is_coordinate_projector(M, n_b):
+        return None
+    g = np.zeros((blocks.Up.shape[1], B.shape[1]))
+    g[:n_b] = sla.solve(blocks.D[:, :n_b], B, check_finite=False)
+    return g
