@@ -211,8 +211,9 @@ def _earlier_hankel_route(monkeypatch):
     from stimsteer.sysid.datadriven import hankel_predictor as hp
 
     monkeypatch.setattr(hp.HankelPredictor, "_score_projection_gram", hp.HankelPredictor._score_quadratic)
-    for name in ("_coordinate_projector", "_projection_map", "_projection_g"):
-        monkeypatch.setattr(hp, name, lambda *a: None)
+    monkeypatch.setattr(hp, "_projection_closed_form", lambda *a, **k: (None, None))
+    for name in ("_projection_map", "_projection_g"):
+        monkeypatch.setattr(hp, name, lambda *a, **k: None)
 
 
 @pytest.mark.parametrize("session", ["noisy", "one_signed"])
@@ -242,3 +243,13 @@ def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, mon
     for col in ("validation_error", "fold_0", "fold_1", "fold_2", "plan_gap"):
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-8)
     np.testing.assert_allclose(new.reg_matrix_, old.reg_matrix_, atol=1e-10)
+
+
+def test_congruence_by_cholesky_equals_the_two_products_and_falls_back_on_a_semidefinite_gram(rng):
+    # definition (common practice, no source): Vᵀ G V by two general products is the reference
+    V = np.linalg.qr(rng.standard_normal((12, 12)))[0]
+    for rank in (12, 5):  # positive definite, then only semi-definite (Cholesky fails, the fallback runs)
+        X = rng.standard_normal((12, rank))
+        G = X @ X.T
+        got = gr._congruence(V, [np.asfortranarray(G)], lambda: G)
+        np.testing.assert_allclose(got, V.T @ G @ V, rtol=1e-10, atol=1e-12 * np.abs(G).max())
