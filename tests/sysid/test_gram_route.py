@@ -244,12 +244,3 @@ def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, mon
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-8)
     np.testing.assert_allclose(new.reg_matrix_, old.reg_matrix_, atol=1e-10)
 
-
-def test_congruence_by_cholesky_equals_the_two_products_and_falls_back_on_a_semidefinite_gram(rng):
-    # definition (common practice, no source): Vᵀ G V by two general products is the reference
-    V = np.linalg.qr(rng.standard_normal((12, 12)))[0]
-    for rank in (12, 5):  # positive definite, then only semi-definite (Cholesky fails, the fallback runs)
-        X = rng.standard_normal((12, rank))
-        G = X @ X.T
-        got = gr._congruence(V, [np.asfortranarray(G)], lambda: G)
-        np.testing.assert_allclose(got, V.T @ G @ V, rtol=1e-10, atol=1e-12 * np.abs(G).max())
