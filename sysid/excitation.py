@@ -10,6 +10,14 @@ Ranks are numerical: singular values are counted when ``σ_i > σ_max · max(sha
 With ``tol_factor = 1`` this is NumPy's default for :func:`numpy.linalg.matrix_rank`; the default ``10`` leaves a
 margin for the rounding of the streamed QR used to get the singular values.
 
+:func:`check_excitation` first tries the Gram ``H Hᵀ`` of the input Hankel matrix, made from lag products of the
+raw inputs (:mod:`stimsteer.sysid._lagged`, a few ``(T × m)`` products per lag instead of a QR of the
+``T × m·L`` matrix): its eigenvalues are ``σ_i²``, but forming it costs digits (``σ_i`` below ``√eps · σ_max``
+are lost), so it only decides "full row rank" where the smallest eigenvalue exceeds a bound on the rounding of
+the Gram and of the eigensolver by far more than the squared tolerance (:func:`_gram_proves_full_rank`). Anything
+else (a rank-deficient or nearly deficient input) is decided by the QR route as before, so the order returned is
+the same either way.
+
 References
 ----------
 Willems J.C., Rapisarda P., Markovsky I., De Moor B.L.M. (2005), "A note on persistency of excitation", Systems &
@@ -27,6 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ._lagged import _lagged_gram, _stream_lag_sums
 from .exceptions import ExcitationError, ExcitationWarning, SessionError
 from .hankel import _one_blas_thread, combine_factors, hankel_column_count, row_space_factor
 
@@ -174,6 +183,45 @@ def _check_window(past_steps, horizon_steps) -> tuple[int, int]:
         if isinstance(v, (bool, np.bool_)) or not float(v).is_integer() or int(v) < 1:
             raise SessionError(f"{name} must be a whole number of samples >= 1; got {v!r}.")
     return int(past_steps), int(horizon_steps)
+
+
+class _InputsOnly:
+    """The inputs of concatenated segments as a source without outputs (for :func:`_stream_lag_sums`)."""
+
+    n_outputs = 0
+
+    def __init__(self, u: np.ndarray):
+        self._u, self.n_inputs = u, u.shape[1]
+
+    def read(self, start: int, stop: int):
+        return self._u[start:stop], np.zeros((stop - start, 0)), None
+
+
+def _gram_proves_full_rank(u, segments, depth: int, tol_factor: float = DEFAULT_TOL_FACTOR) -> bool:
+    """True when the Gram of the input mosaic Hankel matrix of depth ``depth`` proves full row rank ``m·depth``.
+
+    Each Gram entry is a sum of at most ``T`` products (the lag sums, then the edge terms subtracted), so its
+    rounding error is at most ``γ_T · ||h_i|| ||h_j||`` (Higham 2002, section 3.1; ``||h_i||²`` bounded by the
+    energy of a channel over every sample), and ``||E||₂ <= 2 γ_T · depth · Σ_t ||u_t||²``; the symmetric
+    eigensolver adds ``O(n eps λ_max)`` (Golub & Van Loan 2013, section 8.1). With ``λ_min`` of the computed Gram
+    above both bounds plus the squared rank tolerance, ``σ_min² = λ_min(H Hᵀ) > tol²`` (Weyl): full rank, as the
+    QR route would find. False means "not proven" (the caller then asks the QR route), never "deficient".
+    """
+    m = u.shape[1]
+    pieces = [(a + depth - 1, b, 0) for a, b in segments if b - a >= depth]
+    if not pieces:
+        return False
+    n_cols = sum(b - k for k, b, _f in pieces)
+    sums = _stream_lag_sums(_InputsOnly(u), pieces, 1, depth - 1)[0]
+    G = _lagged_gram(sums)
+    lam = np.linalg.eigvalsh(G)
+    eps = np.finfo(np.float64).eps
+    n_terms = int(sum(b - a for a, b in segments))
+    gamma = n_terms * eps / (1.0 - n_terms * eps)
+    energy = float(sum(np.sum(u[a:b] ** 2) for a, b in segments))
+    bound = 2.0 * gamma * depth * energy + 10.0 * G.shape[0] * eps * max(float(lam[-1]), 0.0)
+    tol = rank_tolerance([np.sqrt(max(float(lam[-1]), 0.0))], (m * depth, n_cols), tol_factor=tol_factor)
+    return bool(lam[0] > 10.0 * bound + tol ** 2)
 
 
 @dataclass(frozen=True)
@@ -387,7 +435,11 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
             "the horizon (--past/--horizon; past_steps/horizon_steps in the API), or record longer trials with "
             "fewer gaps."
         )
-    order = pe_order(u, segs, max_order=required, tol_factor=tol_factor)
+    depth = _max_feasible_depth(segs, u.shape[1], required)
+    if depth and _gram_proves_full_rank(u, segs, depth, tol_factor):
+        order = depth  # what pe_order returns when the largest feasible depth has full rank
+    else:
+        order = pe_order(u, segs, max_order=required, tol_factor=tol_factor)
     if order < window:
         raise ExcitationError(
             f"the input excites order {order} but the direct route needs at least {window} (past window + "

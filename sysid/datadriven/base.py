@@ -222,7 +222,7 @@ def _merge(folds, n_rows):
 
 def _data_scale(F: np.ndarray) -> float:
     """``||H||_F² / n_rows`` (equal for ``H`` and its factor)."""
-    return float(np.sum(F * F) / F.shape[0])
+    return float(np.einsum("ij,ij->", F, F) / F.shape[0])  # no F-sized temporary
 
 
 def _training(folds, i, total):

@@ -22,7 +22,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
-__all__ = ["TIE_TOLERANCE", "plan_gaps", "choose_consistent"]
+__all__ = ["TIE_TOLERANCE", "plan_gaps", "plan_gaps_coordinate", "choose_consistent"]
 
 #: Held-out errors within this relative distance of the best count as a tie (rounding of the fold solves is
 #: ~1e-15; real differences between strengths on held-out trials are many orders larger). Our own threshold.
@@ -59,3 +59,25 @@ def choose_consistent(table, gaps: np.ndarray) -> int:
     best = np.nanmin(err)
     tied = np.flatnonzero(err <= best * (1.0 + TIE_TOLERANCE) + 1e-300)
     return int(tied[np.argmin(gaps[tied])])
+
+
+def plan_gaps_coordinate(theta_y: np.ndarray, yf2: np.ndarray, lambdas_abs, lam_y: float) -> np.ndarray:
+    """``γ(λ_g)`` of the projection regulariser when ``D = [D1 0]`` and ``M = diag(0, I)`` (a Cholesky factor).
+
+    Directions keeping the inputs are ``δ = [D1⁻¹ E_Y w; δ2]`` (``w`` a past-output direction, ``δ2`` free), with
+    ``Yp δ = w``, ``||M δ|| = ||δ2||`` and ``Yf δ = Θ_Y w + Yf2 δ2`` (``Θ_Y`` the past-output columns of
+    ``Yf1 D1⁻¹``), so ``γ(λ_g) = λ_max(Θ_Y Θ_Yᵀ / λ_y + Yf2 Yf2ᵀ / λ_g)``: one symmetric eigenvalue of the size of
+    the predicted outputs per strength, the same number :func:`plan_gaps` finds over the null space.
+    """
+    P = (theta_y @ theta_y.T) / lam_y
+    S = yf2 @ yf2.T
+    n = P.shape[0]
+    out = []
+    for lam in lambdas_abs:
+        H = P + S / lam
+        try:
+            out.append(float(sla.eigh(H, eigvals_only=True, subset_by_index=[n - 1, n - 1],
+                                      check_finite=False)[0]))
+        except (np.linalg.LinAlgError, ValueError):
+            out.append(np.inf)
+    return np.asarray(out)

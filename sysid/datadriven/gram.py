@@ -21,6 +21,9 @@ Higham N.J. (2002), Accuracy and Stability of Numerical Algorithms, 2nd ed., cha
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
+
 import numpy as np
 import scipy.linalg as sla
 
@@ -34,6 +37,29 @@ from .._progress import progress
 #: the QR route at 1.5e7 (24.7 s instead of ~1 s); measured there, the two routes' predictions differ by 2e-11
 #: relative at conditions 2.6e7 and 9.1e7 (``tests/sysid/test_gram_route.py``).
 GRAM_CONDITION_LIMIT = 1e8
+
+
+def release_freed_memory() -> None:
+    """Hand freed heap pages back to the operating system (glibc ``malloc_trim``; nothing elsewhere).
+
+    Arrays of 128 kB … 32 MB (the row blocks of a Gram, ``pN × n_b`` products) live on the heap once glibc has
+    raised its mapping threshold, and the heap keeps their pages after they are freed: measured at past 100 /
+    horizon 50, 50 MB of the least-squares fit's peak resident memory were such pages.
+    """
+    if _LIBC:
+        _LIBC[0].malloc_trim(0)
+
+
+def _load_libc() -> list:
+    name = ctypes.util.find_library("c")
+    try:
+        libc = ctypes.CDLL(name) if name else None
+        return [libc] if libc is not None and hasattr(libc, "malloc_trim") else []
+    except OSError:
+        return []
+
+
+_LIBC = _load_libc()
 
 
 def hankel_permutation(m: int, p: int, past: int, horizon: int) -> np.ndarray:
@@ -87,11 +113,10 @@ class _GramFold:
         """A factor ``F`` with ``F Fᵀ = H Hᵀ``: the lower Cholesky factor (a symmetric square root where the Gram
         of a small fold is only semi-definite)."""
         if self._factor is None:
-            G = self.gram
-            try:
-                self._factor = sla.cholesky(G, lower=True, check_finite=False)
+            try:  # in place: G is symmetric, so its transpose is the Fortran-ordered array LAPACK works on
+                self._factor = sla.cholesky(self.gram.T, lower=True, check_finite=False, overwrite_a=True)
             except np.linalg.LinAlgError:
-                d, V = np.linalg.eigh(G)
+                d, V = np.linalg.eigh(self.gram)
                 self._factor = V * np.sqrt(np.clip(d, 0.0, None))
         return self._factor
 
@@ -100,21 +125,23 @@ class _GramFold:
         self._factor = None
 
 
-def gram_condition(F: np.ndarray, G: np.ndarray) -> float:
-    """Estimated 1-norm condition number of ``G = F Fᵀ`` from its Cholesky factor ``F`` (LAPACK ``pocon``)."""
+def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = None) -> float:
+    """Estimated 1-norm condition number of ``G = F Fᵀ`` from its Cholesky factor ``F`` (LAPACK ``pocon``);
+    ``norm`` is ``||G||₁`` when ``G`` is not given."""
     pocon, = sla.get_lapack_funcs(("pocon",), (F,))
-    rcond, info = pocon(F, float(np.abs(G).sum(axis=0).max()), uplo="L")
+    rcond, info = pocon(F, float(np.abs(G).sum(axis=0).max()) if norm is None else norm, uplo="L")
     return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
 
 
 def gram_condition_of(fold: "_GramFold") -> float:
     """Estimated ``κ₁`` of the fold's Gram (inf when it is not positive definite)."""
     G = fold.gram
-    try:
-        F = sla.cholesky(G, lower=True, check_finite=False)
+    norm = float(np.abs(G).sum(axis=0).max())
+    try:  # in place (memory: one Gram-sized array), on the Fortran-ordered transpose of the symmetric G
+        F = sla.cholesky(G.T, lower=True, check_finite=False, overwrite_a=True)
     except np.linalg.LinAlgError:
         return float("inf")
-    return gram_condition(F, G)
+    return gram_condition(F, None, norm)
 
 
 def collect_gram(source, pieces, n_folds: int, m: int, p: int, past: int, horizon: int):
@@ -169,19 +196,24 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     """
     Gt = train.gram
     scale = float(np.trace(Gt)) / Gt.shape[0]
-    d, V = sla.eigh(Gt[:n_b, :n_b], overwrite_a=True, check_finite=False)
-    A = weights[:, None] * (Gt[n_b:, :n_b] @ V)  # Ω G21 V
-    del Gt  # memory: at most two Gram-sized arrays besides V at any time
+    G11, G21 = np.asfortranarray(Gt[:n_b, :n_b]), np.ascontiguousarray(Gt[n_b:, :n_b])
+    del Gt  # memory: at most one Gram-sized array and two of G11's size at any time
+    d, V = sla.eigh(G11, overwrite_a=True, check_finite=False)
+    del G11
+    A = weights[:, None] * (G21 @ V)  # Ω G21 V
+    del G21
     Gv = val.gram
     B = (V.T @ Gv[:n_b, n_b:]) * weights[None, :]  # Vᵀ G12 Ω
+    cross = np.einsum("ij,ji->i", B, A)  # diag(Vᵀ G12 Ω Ω G21 V)
+    del B
     c0 = float(np.sum(weights ** 2 * np.diagonal(Gv)[n_b:]))
-    M = V.T @ Gv[:n_b, :n_b]
+    release_freed_memory()  # the peak of the fold: what was freed so far goes back first
+    M = V.T @ Gv[:n_b, :n_b]  # Vᵀ G11 V of the validation Gram (two general products: the earlier arithmetic)
     del Gv
     M = M @ V
     quad = A.T @ A
     quad *= M  # (AᵀA) ∘ (Vᵀ G11 V)
     del M
-    cross = np.einsum("ij,ji->i", B, A)  # diag(Vᵀ G12 Ω Ω G21 V)
     out = []
     for alpha in alphas:
         w = 1.0 / (d + alpha * scale)
@@ -191,6 +223,31 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 
 def ridge_map(G: np.ndarray, n_b: int, strength: float) -> np.ndarray:
     """``Θ = G21 (G11 + s I)⁻¹`` by a Cholesky solve (the normal equations of the stacked least squares)."""
-    K = G[:n_b, :n_b].copy()
+    K = np.asfortranarray(G[:n_b, :n_b])
     K[np.diag_indices_from(K)] += strength
-    return sla.cho_solve(sla.cho_factor(K, lower=True, check_finite=False), G[:n_b, n_b:], check_finite=False).T
+    C = sla.cholesky(K, lower=True, check_finite=False, overwrite_a=True)
+    return sla.cho_solve((C, True), G[:n_b, n_b:], check_finite=False).T
+
+
+def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights) -> float | None:
+    """Weighted held-out squared error of ``Θ = G21 G11⁻¹`` (training Grams), or None where the training ``G11``
+    is not positive definite or its estimated condition number exceeds :data:`GRAM_CONDITION_LIMIT` (the caller
+    then takes the factor route).
+
+    The error ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` uses the validation Grams, as :func:`ridge_grid_errors`.
+    """
+    Gt = train.gram
+    norm = float(np.abs(Gt[:n_b, :n_b]).sum(axis=0).max())
+    try:
+        C = sla.cholesky(np.asfortranarray(Gt[:n_b, :n_b]), lower=True, check_finite=False, overwrite_a=True)
+    except np.linalg.LinAlgError:
+        return None
+    if not gram_condition(C, None, norm) <= GRAM_CONDITION_LIMIT:
+        return None
+    theta = sla.cho_solve((C, True), Gt[:n_b, n_b:], check_finite=False).T
+    del Gt, C
+    Gv = val.gram
+    w2 = weights ** 2
+    quad = np.einsum("ij,ij->i", theta @ Gv[:n_b, :n_b], theta)
+    cross = np.einsum("ij,ji->i", theta, Gv[:n_b, n_b:])
+    return float(w2 @ (np.diagonal(Gv)[n_b:] - 2.0 * cross + quad))

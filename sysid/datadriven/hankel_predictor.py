@@ -14,10 +14,11 @@ from .._base import check_fitted
 from ..protocols import DataBlocks, PredictionMaps
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
 from ..hankel import _one_blas_thread
-from .consistency import choose_consistent, plan_gaps
+from .consistency import choose_consistent, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
-from .kkt import _kkt_map, _kkt_predictor
+from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
+from .kkt import _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor, _projection_g, _projection_map
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
@@ -252,30 +253,42 @@ class HankelPredictor(_DirectPredictor):
         compress = bool(self.compress) and not l1
         folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
         score = self._score_l1 if l1 else self._score_quadratic
+        if self.factor_route_ == "gram" and self.regularizer == "projection":
+            score = self._score_projection_gram
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].n_rows)
         self.data_scale_ = _data_scale(total.factor)
-        self.blocks_, self.reg_matrix_ = self._blocks(total, compress)
+        self._l1_cache = self._map_cache = None
+        self.blocks_, self.reg_matrix_, theta = self._blocks(total, compress)
+        if theta is not None:  # the projection predictor in closed form, for every strength
+            self._map_cache = self._unscaled(theta)
         if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
-            M = None if self.regularizer == "l2" else self.reg_matrix_
-            table["plan_gap"] = plan_gaps(self.blocks_, M, lambdas * self.data_scale_, lam_y)
+            table["plan_gap"] = self._plan_gaps(lambdas * self.data_scale_, lam_y, theta)
             rel = float(lambdas[choose_consistent(table, table["plan_gap"].to_numpy())])
+        if isinstance(self.reg_matrix_, int):  # made after the plan gaps (memory: one Gram-sized array fewer)
+            del theta
+            release_freed_memory()
+            self.reg_matrix_ = _coordinate_projector(self.blocks_.Up.shape[1], self.reg_matrix_)
         self.regularizer_, self.lambda_y_, self.lambda_g_relative_ = self.regularizer, lam_y, rel
         self.n_columns_ = total.n_columns
         self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.n_rows)
         self.cv_table_ = table
-        self._l1_cache = self._map_cache = None
         return self
 
     def _blocks(self, data: _Fold, compress: bool):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         H = data.factor if compress else np.concatenate(data.full, axis=1)
-        blocks = HankelBlocks.from_matrix(H, m, p, past, N, compress)
+        blocks, r = HankelBlocks.from_matrix(H, m, p, past, N, compress), H.shape[1]
+        del H
+        data.release()  # memory: the blocks hold the factor's rows
         if self.regularizer == "projection":
-            return blocks, _projection_complement(blocks.D, data.n_columns)
+            M = theta = None
+            if self.factor_route_ == "gram":  # a Cholesky factor: projector and predictor in closed form
+                M, theta = _projection_closed_form(blocks, GRAM_CONDITION_LIMIT, make_projector=False)
+            return blocks, (_projection_complement(blocks.D, data.n_columns) if M is None else M), theta
         if self.regularizer == "l2":
-            return blocks, np.eye(H.shape[1])
-        return blocks, None
+            return blocks, np.eye(r), None
+        return blocks, None, None
 
     def _score_quadratic(self, train, val, weights, lambdas, lam_y):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
@@ -293,6 +306,25 @@ class HankelPredictor(_DirectPredictor):
                     continue
             out.append(_validation_error(G, val.factor, weights))
         return out
+
+    def _score_projection_gram(self, train, val, weights, lambdas, lam_y):
+        """Held-out errors of the projection predictor on the Gram route: with the training factor ``F`` the
+        Cholesky factor of a positive definite, well-conditioned Gram, ``D = [L11 0]`` and the predictor is
+        ``G21 G11⁻¹`` for every strength (:func:`~stimsteer.sysid.datadriven.kkt._projection_map`): one error,
+        from the Grams, for the whole grid. Elsewhere the KKT route of :meth:`_score_quadratic`."""
+        n_b = (self.n_inputs_ + self.n_outputs_) * self.past_steps_ + self.n_inputs_ * self.max_horizon_steps_
+        err = unregularised_fold_error(train, val, n_b, weights)
+        if err is None:
+            return self._score_quadratic(train, val, weights, lambdas, lam_y)
+        return [err] * len(lambdas)
+
+    def _plan_gaps(self, lambdas_abs, lam_y, theta):
+        """Plan gaps per strength; ``theta`` the closed-form projection predictor (scaled rows) or None."""
+        M = None if self.regularizer == "l2" else self.reg_matrix_
+        if theta is None:
+            return plan_gaps(self.blocks_, M, lambdas_abs, lam_y)
+        m, p, past, n_b = self.n_inputs_, self.n_outputs_, self.past_steps_, theta.shape[1]
+        return plan_gaps_coordinate(theta[:, m * past:(m + p) * past], self.blocks_.Yf[:, n_b:], lambdas_abs, lam_y)
 
     def _score_l1(self, train, val, weights, lambdas, lam_y):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
@@ -396,7 +428,10 @@ class HankelPredictor(_DirectPredictor):
     def _prediction_map(self) -> np.ndarray:
         if getattr(self, "_map_cache", None) is None:
             M = None if self.regularizer_ == "l2" else self.reg_matrix_
-            self._map_cache = self._unscaled(_kkt_predictor(self.blocks_, M, self.lambda_g_, self.lambda_y_))
+            theta = _projection_map(self.blocks_, M) if M is not None else None
+            if theta is None:
+                theta = _kkt_predictor(self.blocks_, M, self.lambda_g_, self.lambda_y_)
+            self._map_cache = self._unscaled(theta)
         return self._map_cache
 
     def _solve(self, b: np.ndarray) -> np.ndarray:
@@ -405,7 +440,10 @@ class HankelPredictor(_DirectPredictor):
                 self._l1_cache = _L1Solver(self.blocks_, self.lambda_y_, self.solver_options)
             return self._l1_cache.solve(b, self.lambda_g_)
         M = None if self.regularizer_ == "l2" else self.reg_matrix_
-        return _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_, b[:, None])[:, 0]
+        g = _projection_g(self.blocks_, M, b[:, None]) if M is not None else None
+        if g is None:
+            g = _kkt_map(self.blocks_, M, self.lambda_g_, self.lambda_y_, b[:, None])
+        return g[:, 0]
 
     # ---------------------------------------------------------------------------------------- storage
     def to_state(self) -> dict:

@@ -10,7 +10,7 @@ import scipy.linalg as sla
 
 from ..exceptions import ConditioningWarning
 
-__all__ = ["_kkt_map", "_kkt_predictor"]
+__all__ = ["_kkt_map", "_kkt_predictor", "_projection_closed_form", "_coordinate_projector", "_projection_map", "_projection_g"]
 
 
 def _kkt_system(blocks, M, lam_g: float, lam_y: float):
@@ -79,3 +79,96 @@ def _kkt_predictor(blocks, M, lam_g: float, lam_y: float) -> np.ndarray:
     K, beta = _kkt_system(blocks, M, lam_g, lam_y)
     X = _solve_kkt(K, np.vstack([Yf.T, np.zeros((K.shape[0] - r, Yf.shape[0]))]), lam_g, lam_y)
     return np.hstack([beta * X[r:r + nu].T, lam_y * (X[:r].T @ Yp.T), beta * X[r + nu:].T])
+
+
+# ------------------------------------------------------------------------------------------------ closed form
+def _leading_block(blocks):
+    """``n_b`` when ``D = [D1 0]`` with ``D1`` square (``n_b × n_b``), as for a Cholesky factor of the Gram in the
+    row order ``[Up; Yp; Uf; Yf]``; else None."""
+    n_b, r = blocks.Up.shape[0] + blocks.Yp.shape[0] + blocks.Uf.shape[0], blocks.Up.shape[1]
+    if not blocks.compressed or r < n_b or any(np.any(b[:, n_b:]) for b in (blocks.Up, blocks.Yp, blocks.Uf)):
+        return None
+    return n_b
+
+
+def _leading_square(blocks, n_b: int) -> np.ndarray:
+    """``D1``, the first ``n_b`` columns of ``D`` (made from the row blocks, without the ``n_b × r`` ``D``)."""
+    return np.vstack([blocks.Up[:, :n_b], blocks.Yp[:, :n_b], blocks.Uf[:, :n_b]])
+
+
+def _is_lower(D1: np.ndarray) -> bool:
+    return not np.triu(D1, 1).any()
+
+
+def _projection_closed_form(blocks, limit: float, make_projector: bool = True):
+    """``(I − Π, Θ)`` exactly when ``D = [D1 0]`` with ``D1`` invertible (estimated condition number <= ``limit``:
+    then ``D`` has full row rank, its row space is the first ``n_b`` coordinates and ``I − Π = diag(0_{n_b}, I)``);
+    ``Θ = Yf1 D1⁻¹`` is the projection predictor (:func:`_projection_map`). ``(None, None)`` otherwise. With
+    ``make_projector=False`` the first item is ``n_b`` instead (the caller makes the dense projector later).
+    """
+    n_b = _leading_block(blocks)
+    if n_b is None:
+        return None, None
+    D1 = _leading_square(blocks, n_b)
+    lower = _is_lower(D1)
+    if lower:  # the Cholesky factor: LAPACK trcon on the triangle itself
+        trcon, = sla.get_lapack_funcs(("trcon",), (D1,))
+        rcond, info = trcon(D1, norm="1", uplo="L", diag="N")
+    else:
+        lu, _piv = sla.lu_factor(D1, check_finite=False)
+        gecon, = sla.get_lapack_funcs(("gecon",), (lu,))
+        rcond, info = gecon(lu, float(np.abs(D1).sum(axis=0).max()), norm="1")
+        del lu
+    if info != 0 or not rcond * limit >= 1.0:
+        return None, None
+    rhs = np.ascontiguousarray(blocks.Yf[:, :n_b].T)
+    theta = (sla.solve_triangular(D1, rhs, lower=True, trans="T", check_finite=False) if lower else
+             sla.solve(D1.T, rhs, check_finite=False)).T
+    del D1, rhs
+    return (_coordinate_projector(blocks.Up.shape[1], n_b) if make_projector else n_b), theta
+
+
+def _coordinate_projector(r: int, n_b: int) -> np.ndarray:
+    """``diag(0_{n_b}, I_{r − n_b})``."""
+    d = np.zeros(r)
+    d[n_b:] = 1.0
+    return np.diag(d)
+
+
+def _is_coordinate_projector(M, n_b: int) -> bool:
+    d = np.diagonal(M)
+    return (M.shape[0] > n_b and not d[:n_b].any() and bool(np.all(d[n_b:] == 1.0))
+            and np.count_nonzero(M) == M.shape[0] - n_b)
+
+
+def _solve_leading(blocks, M, B: np.ndarray, transposed: bool):
+    """``D1⁻¹ B`` (``D1⁻ᵀ B`` when ``transposed``) in :func:`_projection_map`'s case, else None."""
+    n_b = _leading_block(blocks)
+    if n_b is None or M is None or not _is_coordinate_projector(M, n_b):
+        return None
+    D1 = _leading_square(blocks, n_b)
+    if _is_lower(D1):
+        return sla.solve_triangular(D1, B, lower=True, trans="T" if transposed else "N", check_finite=False)
+    return sla.solve(D1.T if transposed else D1, B, check_finite=False)
+
+
+def _projection_map(blocks, M):
+    """``Θ = Yf1 D1⁻¹`` (``[u_past; y_past; u_future] -> vec(y_future)``): the projection predictor in closed form
+    when ``D = [D1 0]`` and ``M = diag(0, I)``; None otherwise (solve the KKT system).
+
+    With ``g = [g1; g2]``, the constraints and the slack involve ``D1 g1`` only and the penalty is ``||g2||²``, so
+    ``g2 = 0`` and ``D1 g1 = b`` (zero slack, zero penalty) is the unique minimiser for every ``λ_g, λ_y > 0``.
+    """
+    n_b = _leading_block(blocks)
+    out = None if n_b is None else _solve_leading(blocks, M, np.ascontiguousarray(blocks.Yf[:, :n_b].T), True)
+    return None if out is None else out.T
+
+
+def _projection_g(blocks, M, B: np.ndarray):
+    """The minimisers ``g = [D1⁻¹ B; 0]`` of :func:`_projection_map`'s case (None outside it)."""
+    g1 = _solve_leading(blocks, M, B, False)
+    if g1 is None:
+        return None
+    g = np.zeros((blocks.Up.shape[1], B.shape[1]))
+    g[:g1.shape[0]] = g1
+    return g

@@ -192,3 +192,45 @@ def test_report_orders_equal_pe_order_per_trial_and_collectively(seed):
     assert list(rep.trial_orders) == expected
     assert rep.collective_order == pe_order(u, segs, max_order=rep.required_order)
     assert expected[1] == 2 and expected[3] == 0 and rep.collective_order >= max(expected)
+
+
+# ------------------------------------------------------------------------------------------------ Gram route
+# The reference of these checks is the earlier route of check_excitation: pe_order on the streamed QR factor.
+def _trials_session(u, n_trials):
+    n = u.shape[0]
+    edges = np.linspace(0, n, n_trials + 1).astype(int)
+    return Session(u=u, y=np.zeros((n, 1)), sample_rate_hz=1.0, trials=list(zip(edges[:-1], edges[1:])))
+
+
+def test_check_excitation_decides_rich_data_from_the_gram_without_a_qr(rng, monkeypatch):
+    from stimsteer.sysid import excitation
+
+    s = _trials_session(rng.standard_normal((3000, 3)) + 2.0, 6)  # one-signed mean, as pulse amplitudes
+    u, segs, _ = excitation._segments_by_trial(s)
+    reference = pe_order(u, segs, max_order=40)  # earlier route: the QR factor
+    assert reference == 40
+
+    def no_qr(*args, **kwargs):
+        raise AssertionError("the QR route was taken although the Gram proves full rank")
+
+    monkeypatch.setattr(excitation, "row_space_factor", no_qr)
+    assert check_excitation(s, past_steps=10, horizon_steps=20, n_states=10) == reference
+
+
+def test_gram_check_leaves_deficient_and_nearly_deficient_inputs_to_the_qr_route(rng):
+    from stimsteer.sysid.excitation import _gram_proves_full_rank
+
+    u = rng.standard_normal((2000, 3))
+    segs = [(0, 1000), (1000, 2000)]
+    assert _gram_proves_full_rank(u, segs, 30)
+    dependent = u.copy()
+    dependent[:, 2] = dependent[:, 0] - dependent[:, 1]  # rank 2 per sample: deficient at every depth
+    assert not _gram_proves_full_rank(dependent, segs, 30)
+    near = u.copy()
+    near[:, 2] = near[:, 0] + 1e-9 * rng.standard_normal(2000)  # σ_min ~ 1e-9 σ_max: full rank, but not in a Gram
+    assert not _gram_proves_full_rank(near, segs, 5)
+    s = _trials_session(near, 2)
+    u2, segs2 = near, [(0, 1000), (1000, 2000)]
+    assert check_excitation(s, past_steps=2, horizon_steps=3, n_states=0) == pe_order(u2, segs2, max_order=5) == 5
+    with pytest.raises(ExcitationError):
+        check_excitation(_trials_session(dependent, 2), past_steps=2, horizon_steps=3, n_states=0)

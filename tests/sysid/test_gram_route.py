@@ -202,3 +202,45 @@ def test_forced_gram_route_on_ill_conditioned_data_loses_accuracy_the_qr_route_k
     assert gram.factor_route_ == "gram" and gram.gram_condition_ > 1e12
     a, b = qr.predict_many(*_windows(P, N)), gram.predict_many(*_windows(P, N))
     assert np.abs(a - b).max() > 1e-8 * np.abs(a).max()
+
+
+# ------------------------------------------------------------------------------------------------ closed forms
+def _earlier_hankel_route(monkeypatch):
+    """The earlier Gram route of the projection Hankel predictor: one KKT solve per strength and fold, the projector
+    from an SVD, the plan gaps over the null space (the reference of the closed forms below)."""
+    from stimsteer.sysid.datadriven import hankel_predictor as hp
+
+    monkeypatch.setattr(hp.HankelPredictor, "_score_projection_gram", hp.HankelPredictor._score_quadratic)
+    monkeypatch.setattr(hp, "_projection_closed_form", lambda *a, **k: (None, None))
+    for name in ("_projection_map", "_projection_g"):
+        monkeypatch.setattr(hp, name, lambda *a, **k: None)
+
+
+@pytest.mark.parametrize("session", ["noisy", "one_signed"])
+def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, monkeypatch):
+    from stimsteer.sysid.datadriven import hankel_predictor as hp
+
+    s, P, N = (noisy if session == "noisy" else _one_signed(5.0)), 5, 8
+    with monkeypatch.context() as mp:
+        def no_kkt(*a, **k):
+            raise AssertionError("a KKT solve was made although the closed form applies")
+
+        mp.setattr(hp, "_kkt_predictor", no_kkt)
+        mp.setattr(hp, "plan_gaps", no_kkt)
+        new = _fit(HankelPredictor, s, "auto", past_steps=P, horizon_steps=N)
+        a = new.predict_many(*_windows(P, N))
+        g = new.solve_g(*(w[0] for w in _windows(P, N)))
+    with monkeypatch.context() as mp:
+        _earlier_hankel_route(mp)
+        old = _fit(HankelPredictor, s, "auto", past_steps=P, horizon_steps=N)
+        b = old.predict_many(*_windows(P, N))
+        g_old = old.solve_g(*(w[0] for w in _windows(P, N)))
+    assert new.factor_route_ == old.factor_route_ == "gram"
+    assert new.lambda_g_relative_ == old.lambda_g_relative_
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
+    Yf = old.blocks_.Yf
+    assert np.abs(Yf @ (g - g_old)).max() <= 1e-8 * np.abs(Yf @ g_old).max()
+    for col in ("validation_error", "fold_0", "fold_1", "fold_2", "plan_gap"):
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-8)
+    np.testing.assert_allclose(new.reg_matrix_, old.reg_matrix_, atol=1e-10)
+
