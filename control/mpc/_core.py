@@ -17,10 +17,9 @@ their cost by ``σ`` (a Parameter, so they stay DPP) chosen per plan so that the
 of order one; the minimiser is the same.
 
 Units. The solver's tolerances are absolute, so the cvxpy problem's hard input rows (amplitude, slew, energy budget)
-are written in units of the largest amplitude bound (the energy budget's rows in their own unit, see
-:mod:`~stimsteer.control.mpc._budget`): the same session in mA and in µA then gives the same cone
-problem up to the cost's own scaling, and the solver stops equally close to a bound in physical terms. The answer
-is checked and projected in the controller's units, exactly as before.
+are written in units of the largest amplitude bound (budget rows in their own unit, :mod:`.._budget`): a session in
+mA and in µA gives the same cone problem up to the cost's scaling, and the solver stops equally close to a bound in
+physical terms. The answer is checked and projected in the controller's units.
 """
 
 from __future__ import annotations
@@ -389,16 +388,14 @@ class _PredictiveController(BaseEstimator):
         self._lb.value, self._ub.value = lb.reshape(-1) / self._row_scale, ub.reshape(-1) / self._row_scale
         for b, h in zip(self._budgets, self._hists):
             b.assign(h)
-        opts = dict(_CVX_DEFAULTS.get(self._cvx_solver(), {}))
-        opts.update(self.solver_options or {})
-        opts = serial_clarabel({"solver": self._cvx_solver(), **opts})  # forked workers must not wait on a pool
-        opts.pop("solver")
+        opts = serial_clarabel({"solver": self._cvx_solver(), **_CVX_DEFAULTS.get(self._cvx_solver(), {}),
+                                **(self.solver_options or {})})  # serial: a forked worker never waits on a pool
         try:
             with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
                 warnings.simplefilter("ignore", UserWarning)
                 # the compiled problem is reused (DPP cache) either way; no solver warm start, so that the same
                 # data give the same plan whatever was solved before
-                self.problem_.solve(solver=self._cvx_solver(), warm_start=False, **opts)
+                self.problem_.solve(warm_start=False, **opts)
         except (cp.error.SolverError, ArithmeticError, ValueError) as exc:
             return None, None, "failed", f"{self._cvx_solver()} failed: {exc}"
         status = self.problem_.status
