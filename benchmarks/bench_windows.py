@@ -15,7 +15,7 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    products any exact Gram of the lagged data must compute;
 3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50);
 4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
-   horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 2 sites, same trials), and the slope
+   horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 3 sites, same trials), and the slope
    of log time against log past window between neighbouring windows and over all of them (least squares), beside
    the same slope of the Gram reference. A slope near 2 is set by the Gram's (rows)² size; one near 3 by the
    factorisations of Gram-sized matrices (Cholesky, eigendecomposition), which no exact fit of every coefficient
@@ -237,7 +237,8 @@ def main(argv=None) -> int:
             window_table(path, args.windows, args.methods, args.timeout)
         if args.growth:
             path = str(Path(tmp) / "growth.h5")
-            session = make_session(args.seed, n_contacts=args.growth_contacts, n_sites=2)
+            # 3 sites: the demo's stimulation file describes three, and make_demo refuses fewer
+            session = make_session(args.seed, n_contacts=args.growth_contacts)
             save_session(session, path)
             print(f"# growth session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, "
                   f"{session.n_outputs} outputs; timeout {args.timeout:.0f} s per case")

@@ -71,6 +71,42 @@ def _chunks(pieces, chunk_rows: int):
             yield k0, k1, f, k0 == a, k1 == b
 
 
+_CONTROLLER: list = []
+
+
+def blas_controller():
+    """The process's one ``threadpoolctl.ThreadpoolController`` (None without threadpoolctl).
+
+    Created on first use and reused: a fresh ``threadpool_limits`` or ``threadpool_info`` scans every loaded library
+    on each call (~30 ms under load, as long as a small fit's algebra). Created after NumPy's and SciPy's linear
+    algebra are loaded, so it controls both of their BLAS libraries.
+    """
+    if not _CONTROLLER:
+        try:
+            from threadpoolctl import ThreadpoolController
+        except ImportError:  # pragma: no cover - scikit-learn installs it
+            return None
+        import scipy.linalg  # noqa: F401  (SciPy's own BLAS must be loaded before the libraries are found)
+
+        _CONTROLLER.append(ThreadpoolController())
+    return _CONTROLLER[0]
+
+
+def blas_threads(limit: int = 1):
+    """Context that limits BLAS/LAPACK to ``limit`` threads (process-wide, restored afterwards); a no-op without
+    threadpoolctl. Uses the cached :func:`blas_controller`."""
+    ctl = blas_controller()
+    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=limit, user_api="blas")
+
+
+def blas_thread_count() -> int:
+    """The largest thread count of the loaded BLAS libraries (1 without threadpoolctl)."""
+    ctl = blas_controller()
+    if ctl is None:
+        return 1
+    return max((int(lib.num_threads or 1) for lib in ctl.select(user_api="blas").lib_controllers), default=1)
+
+
 @contextlib.contextmanager
 def _single_threaded_blas():
     """Yield the number of worker threads to use, with BLAS limited to one thread meanwhile.
@@ -81,13 +117,8 @@ def _single_threaded_blas():
     busy extra thread competes for its cores). The limit is process-wide for the duration of the pass and restored
     afterwards; without threadpoolctl (a scikit-learn dependency) one worker is used and nothing is changed.
     """
-    try:
-        from threadpoolctl import threadpool_info, threadpool_limits
-    except ImportError:  # pragma: no cover - scikit-learn installs it
-        yield 1
-        return
-    n = max((int(i.get("num_threads") or 1) for i in threadpool_info() if i.get("user_api") == "blas"), default=1)
-    with threadpool_limits(limits=1, user_api="blas"):
+    n = blas_thread_count()
+    with blas_threads(1):
         yield max(1, n)
 
 
@@ -206,27 +237,30 @@ class _LazyMoments:
         return _lagged_gram(self.sums)
 
 
-def _edge_correction(windows, n_lags: int, c: int) -> list:
-    """``C[δ][a - 1] = Σ_windows sign Σ_{j=1}^{a} W[L-j] W[L-j-δ]ᵀ``, the edge term of Gram block ``(a, a + δ)``.
+def _edge_correction(windows, n_lags: int, c: int):
+    """Yield, for ``δ = 0 … L``, ``C[δ]`` with ``C[δ][a - 1] = Σ_windows sign Σ_{j=1}^{a} W[L-j] W[L-j-δ]ᵀ``, the edge
+    term of Gram block ``(a, a + δ)``.
 
     A window ``W`` holds the ``L`` samples ending at a piece edge; the sum over ``j`` is a cumulative sum, and the
-    sum over windows one batched product per ``δ``: ``O(L² c² × windows)`` work, not ``O(L³ c²)``.
+    sum over windows one batched product per ``δ``: ``O(L² c² × windows)`` work, not ``O(L³ c²)``. One ``δ`` at a
+    time, so the terms held never exceed one lag's ``L × c × c`` (all at once they were ``L²/2 × c²``: 48 MB at
+    150 lags of 23 channels).
     """
     L = n_lags
     if not windows or L == 0:
-        return [np.zeros((L - d, c, c)) for d in range(L + 1)]
+        for d in range(L + 1):
+            yield np.zeros((L - d, c, c))
+        return
     R = np.stack([w[::-1] for _s, w in windows])  # R[:, j - 1] = W[L - j]
     signs = np.array([s for s, _w in windows])
     Rs = R * signs[:, None, None]
-    out = []
     for d in range(L + 1):
         if d == L:
-            out.append(np.zeros((0, c, c)))
+            yield np.zeros((0, c, c))
             continue
         # Q[j] = Σ_w sign R_w[j] R_w[j + d]ᵀ, j = 0 … L - d - 1, as a batch of (c × w)(w × c) products
         Q = np.matmul(Rs[:, : L - d].transpose(1, 2, 0), R[:, d:].transpose(1, 0, 2))
-        out.append(np.cumsum(Q, axis=0))
-    return out
+        yield np.cumsum(Q, axis=0)
 
 
 def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None) -> np.ndarray:
@@ -240,17 +274,51 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None) -> np.ndarray:
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
-    corr = _edge_correction(sums.windows, Lp1 - 1, c)
     W = np.empty((Lp1 * c, Lp1 * c))
-    for d in range(Lp1):
+    for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
         a = np.arange(Lp1 - d)
         blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
-        blocks[1:] += corr[d]
-        corr[d] = None  # free as we go
+        blocks[1:] += corr
+        del corr
         rows, cols = index[a][:, :, None], index[a + d][:, None, :]
         W[rows, cols] = blocks
         if d:
             W[cols.transpose(0, 2, 1), rows.transpose(0, 2, 1)] = blocks.transpose(0, 2, 1)
+    return W
+
+
+def _lagged_diagonal(sums: _LagSums) -> np.ndarray:
+    """The diagonal of :func:`_lagged_gram` (lagged order), from the sums alone: ``X[0] + C[0][a − 1]``'s."""
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    d = np.tile(np.diagonal(sums.X[0]), (Lp1, 1))
+    d[1:] += np.diagonal(next(_edge_correction(sums.windows, Lp1 - 1, c)), axis1=1, axis2=2)
+    return d.reshape(-1)
+
+
+def _put_rows(W: np.ndarray, rows, cols, values, r0: int, r1: int) -> None:
+    """``W[rows − r0, cols] = values`` for the entries whose row lies in ``[r0, r1)``."""
+    rows, cols = np.broadcast_to(rows, values.shape), np.broadcast_to(cols, values.shape)
+    keep = (rows >= r0) & (rows < r1)
+    W[rows[keep] - r0, cols[keep]] = values[keep]
+
+
+def _lagged_gram_rows(sums: _LagSums, index: np.ndarray, r0: int, r1: int) -> np.ndarray:
+    """Rows ``[r0, r1)`` of the permuted Gram :func:`_lagged_gram` ``(sums, index)`` after ``(W + Wᵀ)/2``, without
+    the rest: the same numbers (the same-lag blocks are averaged with their transposes, as the symmetrised whole
+    would be; the others are written as exact transposes), in ``(r1 − r0) × (L + 1) c`` memory."""
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    W = np.empty((r1 - r0, Lp1 * c))
+    for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
+        a = np.arange(Lp1 - d)
+        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
+        blocks[1:] += corr
+        del corr
+        if d == 0:
+            blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
+        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
+        _put_rows(W, rows, cols, blocks, r0, r1)
+        if d:
+            _put_rows(W, cols.transpose(0, 2, 1), rows.transpose(0, 2, 1), blocks.transpose(0, 2, 1), r0, r1)
     return W
 
 

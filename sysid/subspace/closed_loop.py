@@ -146,10 +146,10 @@ class ClosedLoopSubspaceId(SubspaceId):
         i, f, m, p, order, top = self._check(session)
         offset = _output_mean(session) if self.centre_outputs else np.zeros(p)
         src = _ShiftedOutputs(session, offset) if self.centre_outputs else session
-        from threadpoolctl import threadpool_limits  # installed with scikit-learn
+        from .._lagged import blas_threads  # the cached controller (a fresh limit re-scans the libraries)
 
         # small dense algebra: one BLAS thread (two threads only wait on each other at this size, worse under load)
-        with threadpool_limits(limits=1, user_api="blas"):
+        with blas_threads(1):
             G, n_win, scale = _window_gram(src, i, m, p)
             self._identify_pbsid(G, n_win, scale, (i, f, m, p, order, top), session)
         self.output_offset_ = offset

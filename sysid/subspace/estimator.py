@@ -4,7 +4,6 @@ Gram blocks (see :mod:`stimsteer.sysid.subspace`).
 
 from __future__ import annotations
 
-import contextlib
 import json
 import warnings
 
@@ -16,33 +15,22 @@ from ..exceptions import ExcitationError, InvalidParameterError, SessionError, S
 from ..protocols import PredictionMaps
 from .._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from ..statespace import StateSpaceModel
-from .gram import _Layout, _hankel_gram, _partition
-from ..output_mask import blanking_note
+from .._lagged import blas_threads
+from .gram import _Layout
 from .heldout import _heldout_error
-from .projection import _Projection, _RTOL, _cond_text, _fit_order
+from .prepare import projections
+from .projection import _fit_order
 from .selection import choose_stable, order_tables
 
 __all__ = ["SubspaceId"]
 
-
-try:  # installed with scikit-learn; limits BLAS threads for the many small matrix operations after the data pass
-    from threadpoolctl import threadpool_limits as _threadpool_limits
-except ImportError:  # pragma: no cover - scikit-learn always brings it
-    _threadpool_limits = None
 
 _WEIGHTINGS = ("n4sid", "moesp", "cva")
 _SELECTION_DEFAULTS = {"holdout_fraction": 0.25, "tolerance": 0.05, "seed": 0}
 _DEFAULT_ORDER_CAP = 10
 # Singular values below this share of the largest are rounding noise: orders beyond them are not supported by data.
 _SV_RTOL = 1e-8
-_THREADED_WIDTH = 256
 _TABLE_COLUMNS = ("order", "singular_value", "gap_ratio", "heldout_error", "stable", "selected")
-
-
-def _single_blas_thread():
-    if _threadpool_limits is None:  # pragma: no cover
-        return contextlib.nullcontext()
-    return _threadpool_limits(limits=1, user_api="blas")
 
 
 # ----------------------------------------------------------------------------------------------------- estimator
@@ -228,29 +216,20 @@ class SubspaceId(BasePredictor):
         offset = _output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
         if self.centre_outputs:
             session = _ShiftedOutputs(session, offset)
-        L = cfg["layout"]
-        # Small dense problems run far faster on one BLAS thread (threads only wait on each other at this size);
-        # the data pass keeps all threads when its Gram is wide enough to gain from them.
-        with _single_blas_thread() if L.nz < _THREADED_WIDTH else contextlib.nullcontext():
-            grams, scale, how = self._data(session, cfg)
-        with _single_blas_thread():
-            self._identify(session, cfg, grams, scale, how)
+        proj_all, proj_fit, check, scale, how, n_columns = projections(session, cfg, self.weighting)
+        with blas_threads(1):  # small dense problems: threads only wait on each other at this size
+            self._identify(session, cfg, proj_all, proj_fit, check, scale, how, n_columns)
         self.output_offset_ = offset
         if self.centre_outputs:
             self.model_ = self.model_.replace(info={**self.model_.info, "output_offset": offset.tolist()})
         return self
 
-    def _identify(self, session, cfg, grams, scale, how) -> None:
+    def _identify(self, session, cfg, proj_all, proj_fit, check, scale, how, n_columns) -> None:
         L = cfg["layout"]
-        S_all, S_fit, S_check = [self._scaled(G, N, scale) for G, N in grams]
-        for S in (S_all, S_fit):
-            self._check_excitation(S, L)
-        proj_all = _Projection(S_all, L, self.weighting)
-        proj_fit = _Projection(S_fit, L, self.weighting)
         sv = proj_all.singular_values
         notes = []
         cfg["top"] = self._supported(sv, proj_fit.singular_values, cfg)
-        table = order_tables(self, proj_fit, S_check, sv, cfg, notes)
+        table = order_tables(self, proj_fit, check, sv, cfg, notes)
         gap = int(table["order"].iloc[int(np.argmax(table["gap_ratio"].to_numpy()))])
         if cfg["order"] is not None:
             order, mats = cfg["order"], _fit_order(proj_all, cfg["order"], self.feedthrough_)
@@ -259,56 +238,7 @@ class SubspaceId(BasePredictor):
         table["selected"] = table["order"] == order
         self.order_gap_ = gap
         self.selection_notes_ = tuple(notes)
-        self._store(mats, scale, session, L, order, sv, table, how, grams[0][1])
-
-    def _data(self, session, cfg):
-        L = cfg["layout"]
-        segs = session.segments(min_length=L.width)
-        if not segs:
-            longest = max((b - a for a, b in session.segments()), default=0)
-            raise SessionError(
-                f"past_steps + future_steps = {L.width} samples is longer than every valid segment (the longest "
-                f"run of valid in-trial samples has {longest}). Use shorter past/future windows or longer trials."
-            )
-        fit, check, how = _partition(session, L.width, cfg["fraction"], cfg["seed"])
-        G_fit, n_fit = _hankel_gram(session, fit, L)
-        G_check, n_check = _hankel_gram(session, check, L)
-        for label, n_cols in (("the fitting part", n_fit), ("all training data", n_fit + n_check)):
-            if n_cols < L.nz:
-                raise SessionError(
-                    f"{label} gives {n_cols} Hankel columns for {L.nz} rows ((m + p)(past_steps + future_steps)); "
-                    "at least as many columns as rows are needed (many more for noisy data). Record longer trials "
-                    "or use shorter past/future windows." + blanking_note(session, segs, L.width, L.i)
-                )
-        if n_check == 0:
-            raise SessionError(
-                f"no held-out part with {L.width} samples could be set aside for the order check ({how}). "
-                "Record more or longer trials, or use shorter past/future windows."
-            )
-        G_all = G_fit + G_check
-        scale = self._scales(G_all, n_fit + n_check, L, session)
-        return [(G_all, n_fit + n_check), (G_fit, n_fit), (G_check, n_check)], scale, how
-
-    @staticmethod
-    def _scales(G, N, L: _Layout, session) -> np.ndarray:
-        power = np.diag(G).reshape(L.width, L.c).mean(axis=0) / N
-        rms = np.sqrt(power)
-        names = list(getattr(session, "input_names", [])) + list(getattr(session, "output_names", []))
-        for ch in np.flatnonzero(rms <= 0):
-            label = names[ch] if ch < len(names) else f"channel {ch}"
-            kind = "input" if ch < L.m else "output"
-            err = ExcitationError if kind == "input" else SessionError
-            raise err(f"{kind} {label!r} is zero on every valid sample; it carries no information. Drop it.")
-        return rms
-
-    @staticmethod
-    def _scaled(G, N, scale) -> np.ndarray:
-        """``G / N`` with every channel scaled to unit RMS, in place (the Grams are not used unscaled again)."""
-        s = np.tile(scale, G.shape[0] // scale.size)
-        G /= N
-        for a in range(0, G.shape[0], 512):  # ÷ (s_i s_j), as G / N / outer(s, s), a band of rows at a time
-            G[a:a + 512] /= np.outer(s[a:a + 512], s)
-        return G
+        self._store(mats, scale, session, L, order, sv, table, how, n_columns)
 
     @staticmethod
     def _supported(sv_all, sv_fit, cfg) -> int:
@@ -344,17 +274,6 @@ class SubspaceId(BasePredictor):
                 "stable": bool(np.max(np.abs(np.linalg.eigvals(mats["A"]))) < 1.0),
             })
         return pd.DataFrame(rows)
-
-    @staticmethod
-    def _check_excitation(S, L: _Layout) -> None:
-        lam = np.linalg.eigvalsh(S[np.ix_(L.Uf, L.Uf)])
-        if lam[0] <= _RTOL * lam[-1]:
-            raise ExcitationError(
-                f"the inputs are not persistently exciting over future_steps={L.f} samples (the future-input "
-                f"covariance has condition {_cond_text(lam)}); an input that is "
-                "constant or too smooth cannot separate the dynamics. Use a richer stimulation schedule "
-                "(`stimsteer schedule`)."
-            )
 
     def _store(self, mats, scale, session, L, order, sv, table, how, n_columns) -> None:
         su, sy = scale[:L.m], scale[L.m:]

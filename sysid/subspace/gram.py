@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._lagged import _lagged_gram, _stream_sums
+from .._lagged import _lagged_diagonal, _lagged_gram, _lagged_gram_rows, _stream_sums
 from ..output_mask import output_valid_segments
 
 
@@ -43,6 +43,15 @@ class _Layout:
         E[np.arange(len(rows)), rows] = 1.0
         return E
 
+    def factor_order(self) -> np.ndarray:
+        """The block order ``[Uf₁; u₀; Up; Yp; y₀; Yf₁]`` of the factor route, as time-major Hankel rows.
+
+        ``Uf = [Uf₁; u₀]`` leads, then the past (in the order of ``P``), then ``Yf = [y₀; Yf₁]``: every conditional
+        covariance of the projection (given ``Uf``) and of the one a step later (past ``[u₀; P; y₀]`` given
+        ``Uf₁``) is then a product of contiguous blocks of one Cholesky factor (:mod:`.factor`).
+        """
+        return np.concatenate([self.Uf1, self.u0, self.P, self.y0, self.Yf1])
+
     @property
     def max_order(self) -> int:
         # shift invariance needs p (f − 1) >= n; a state read from i past outputs needs p i >= n
@@ -50,29 +59,67 @@ class _Layout:
 
 
 # ----------------------------------------------------------------------------------------------------- data pass
-def _hankel_gram(source, segments, layout: _Layout):
-    """Gram matrix ``Σ_t z_t z_tᵀ`` of the Hankel columns inside ``segments`` and the number of columns.
+def _hankel_sums(source, parts, layout: _Layout):
+    """One pass over the data: the compact lag sums (:class:`~stimsteer.sysid._lagged._LagSums`) of the Hankel
+    columns inside each list of segments in ``parts`` (e.g. the fitting and the held-out part), in that order.
 
     The column of window ``t`` holds the samples ``t … t + w − 1``: the lagged vector ``[Z_k; …; Z_{k−w+1}]`` of
     ``k = t + w − 1`` in reversed time order and with the channels as ``[u y]`` instead of ``[y u]``. Its Gram is
     therefore the lagged-sum stream's (:mod:`._lagged`: ``w`` products of ``(n × c)`` chunks per chunk instead of
     one product of ``(n × w c)`` columns), permuted. Memory stays bounded by a few chunks.
     """
-    w, c, p = layout.width, layout.c, layout.p
+    w, c = layout.width, layout.c
     lag = w - 1
     # the output-mask hook: columns whose future (predicted) outputs are blanked are left out
-    pieces = [(int(a) + lag, int(b), 0) for a, b in output_valid_segments(source, segments, w, layout.i)]
-    if not pieces:
-        return np.zeros((layout.nz, layout.nz)), 0
-    (acc,), _lo, _hi = _stream_sums(source, pieces, 1, lag, _STREAM_ROWS, np.zeros(c))
+    pieces = [(int(a) + lag, int(b), k) for k, segments in enumerate(parts)
+              for a, b in output_valid_segments(source, segments, w, layout.i)]
+    folds, _lo, _hi = _stream_sums(source, pieces, len(parts), lag, _STREAM_ROWS, np.zeros(c))
+    return folds
+
+
+def _lagged_index(layout: _Layout, order: np.ndarray | None = None) -> np.ndarray:
+    """``index[a, i]``: the row of lagged entry ``(lag a, channel i of [y u])`` in the Hankel Gram, in time-major
+    Hankel order or, given ``order`` (Hankel rows, e.g. :meth:`_Layout.factor_order`), in that order."""
+    w, c, p = layout.width, layout.c, layout.p
+    lag = w - 1
     # Hankel row (τ, channel in [u y] order) <- lagged row (lag w − 1 − τ, channel in [y u] order)
     in_z = np.concatenate([np.arange(p, c), np.arange(p)])  # [u y] channel j sits at in_z[j] of [y u]
     perm = np.array([(lag - tau) * c + in_z[j] for tau in range(w) for j in range(c)], dtype=np.intp)
     index = np.empty_like(perm)
-    index[perm] = np.arange(perm.size)
-    G = _lagged_gram(acc, index.reshape(w, c))  # assembled in the Hankel order: no second Gram-sized copy
+    index[perm] = np.arange(perm.size)  # lagged row -> Hankel row
+    if order is not None:
+        position = np.empty_like(order)
+        position[order] = np.arange(order.size)  # Hankel row -> its place in ``order``
+        index = position[index]
+    return index.reshape(w, c)
+
+
+def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows: tuple | None = None):
+    """The Hankel Gram ``Σ_t z_t z_tᵀ`` of one set of lag sums, symmetric, with its rows in time-major Hankel
+    order or, given ``order`` (Hankel rows, e.g. :meth:`_Layout.factor_order`), in that order. Assembled in place:
+    no second Gram-sized copy. With ``rows = (r0, r1)`` only those rows (the same numbers)."""
+    index = _lagged_index(layout, order)
+    if rows is not None:
+        return _lagged_gram_rows(acc, index, *rows)
+    G = _lagged_gram(acc, index)
     _symmetrise(G)
-    return G, int(acc.n)
+    return G
+
+
+def _gram_diagonal(acc, layout: _Layout) -> np.ndarray:
+    """The diagonal of the time-major Hankel Gram, from the lag sums alone."""
+    out = np.empty(layout.nz)
+    out[_lagged_index(layout).reshape(-1)] = _lagged_diagonal(acc)
+    return out
+
+
+def _hankel_gram(source, segments, layout: _Layout):
+    """Gram matrix ``Σ_t z_t z_tᵀ`` of the Hankel columns inside ``segments`` and the number of columns
+    (:func:`_hankel_sums` then :func:`_gram_from_sums`)."""
+    (acc,) = _hankel_sums(source, [segments], layout)
+    if acc.n == 0:
+        return np.zeros((layout.nz, layout.nz)), 0
+    return _gram_from_sums(acc, layout), int(acc.n)
 
 
 def _symmetrise(G: np.ndarray, block: int = 512) -> None:

@@ -9,33 +9,73 @@ from .gram import _Layout
 
 
 # ----------------------------------------------------------------------------------------------------- held-out check
-def _initial_state_map(mats, layout: _Layout) -> np.ndarray:
-    """The map ``x̂ = X z`` from a Hankel column to the state at its first future sample, shape (n, nz).
+class _CheckCov:
+    """The blocks of the held-out Hankel covariance the error needs: ``S_PP``, ``S_{P Yf}``, ``S_{P Uf}``,
+    ``S_{Uf Uf}``, ``S_{Yf Uf}`` and the diagonal of ``S_{Yf Yf}`` (rows and columns in the layout's orders).
 
-    Mirrors ``estimate_state`` (least-squares initial state of the innovation predictor over the past window,
-    propagated).
+    From the rows of a Gram in the factor order (:meth:`factor_rows`) the large blocks are views; from a
+    time-major Gram they are copied once (not once per candidate order).
+    """
+
+    def __init__(self, pp, p_yf, p_uf, uu, yu, diag_yf):
+        self.pp, self.p_yf, self.p_uf, self.uu, self.yu, self.diag_yf = pp, p_yf, p_uf, uu, yu, diag_yf
+
+    @classmethod
+    def time_major(cls, S: np.ndarray, L: _Layout) -> "_CheckCov":
+        return cls(S[np.ix_(L.P, L.P)], S[np.ix_(L.P, L.Yf)], S[np.ix_(L.P, L.Uf)], S[np.ix_(L.Uf, L.Uf)],
+                   S[np.ix_(L.Yf, L.Uf)], np.diagonal(S)[L.Yf].copy())
+
+    @classmethod
+    def factor_rows(cls, past: np.ndarray, inputs: np.ndarray, diag_yf: np.ndarray, L: _Layout) -> "_CheckCov":
+        """From the rows of the past (``P``) and of the future inputs (``[Uf₁; u₀]``) of a Gram in the factor order
+        (:meth:`~.gram._Layout.factor_order`) and the diagonal of ``S_{Yf Yf}``; the large blocks are views."""
+        m, f = L.m, L.f
+        b, e = m * f, m * f + len(L.P)
+        uf = np.concatenate([np.arange(b - m, b), np.arange(b - m)])  # [Uf₁; u₀] -> [u₀; Uf₁]
+        return cls(past[:, b:e], past[:, e:], past[:, uf], inputs[np.ix_(uf, uf)], inputs[uf, e:].T.copy(),
+                   diag_yf)
+
+
+def _past_state_map(mats, layout: _Layout) -> np.ndarray:
+    """The map ``x̂ = X wp`` from the past part of a Hankel column (rows ``P``) to the state at its first future
+    sample, shape (n, len(P)).
+
+    Mirrors ``estimate_state``: the least-squares initial state ``x₀ = Π r`` of the innovation predictor over the
+    past window (``Π = [C; C A_K; …; C A_K^{i−1}]⁺``, ``A_K = A − K C``), propagated by ``A_K^i``, plus the
+    predictor's response ``A_K^{i−1−s} [B_K K]`` to past sample ``s``. The residual ``r_t`` reads sample ``t`` and
+    the predictor's response to samples ``s < t``, so ``x₀``'s column block ``s`` is ``Π_s [−D I] − Y_s [B_K K]``
+    with ``Y_s = Σ_{t>s} Π_t C A_K^{t−1−s}`` (a backward recursion): ``O(i n² (n + m + p))`` work instead of the
+    ``O(i n² (m + p) i)`` of propagating the whole map step by step.
     """
     A, B, C, D, K = (mats[k] for k in "ABCDK")
     L = layout
-    n, m, p = A.shape[0], L.m, L.p
+    n, m, p, i = A.shape[0], L.m, L.p, L.i
     Ak, Bk = A - K @ C, B - K @ D
-    Xd = np.zeros((n, L.nz))
+    lhs = np.empty((p * i, n))
     Mk = np.eye(n)
-    Phi, rhs = [], []
-    for t in range(L.i):
-        up, yp = L.Up[t * m:(t + 1) * m], L.Yp[t * p:(t + 1) * p]
-        Phi.append(C @ Mk)
-        r = -(C @ Xd)
-        r[np.arange(p), yp] += 1.0
-        r[:, up] -= D
-        rhs.append(r)
-        Xd = Ak @ Xd
-        Xd[:, up] += Bk
-        Xd[:, yp] += K
+    for t in range(i):
+        lhs[t * p:(t + 1) * p] = C @ Mk
         Mk = Ak @ Mk
-    lhs = np.vstack(Phi)
-    x0 = np.linalg.pinv(lhs, rcond=np.finfo(float).eps * max(lhs.shape)) @ np.vstack(rhs)
-    return Mk @ x0 + Xd
+    Pi = np.linalg.pinv(lhs, rcond=np.finfo(float).eps * max(lhs.shape))
+    MPi = Mk @ Pi
+    X = np.empty((n, len(L.P)))
+    Pw, Y = np.eye(n), np.zeros((n, n))  # A_K^{i−1−s} and Y_s, from s = i − 1 down
+    for s in range(i - 1, -1, -1):
+        Z = Pw - Mk @ Y
+        MP_s = MPi[:, s * p:(s + 1) * p]
+        X[:, s * m:(s + 1) * m] = Z @ Bk - MP_s @ D
+        X[:, i * m + s * p:i * m + (s + 1) * p] = Z @ K + MP_s
+        Y = Pi[:, s * p:(s + 1) * p] @ C + Y @ Ak
+        Pw = Pw @ Ak
+    return X
+
+
+def _initial_state_map(mats, layout: _Layout) -> np.ndarray:
+    """The map ``x̂ = X z`` from a Hankel column to the state at its first future sample, shape (n, nz): zero on the
+    future rows (:func:`_past_state_map`)."""
+    X = np.zeros((mats["A"].shape[0], layout.nz))
+    X[:, layout.P] = _past_state_map(mats, layout)
+    return X
 
 
 def _future_maps(mats, f: int):
@@ -68,25 +108,25 @@ def _predictor_map(mats, layout: _Layout) -> np.ndarray:
     return P
 
 
-def _heldout_error(mats, S_check: np.ndarray, layout: _Layout) -> float:
+def _heldout_error(mats, check, layout: _Layout) -> float:
     """Mean over future steps and output channels of the k-step squared error ÷ the mean square output.
 
-    The error map ``E = E_Yf − Obs X − T E_Uf`` is applied to the held-out covariance through its parts
-    (``X S Xᵀ`` is n × n), not as a ``(p f × nz)`` matrix times ``S`` (``p f nz²`` work).
+    ``check`` is a :class:`_CheckCov` (or a time-major held-out covariance). The error map
+    ``E = E_Yf − Obs X − T E_Uf`` is applied to the held-out covariance through its parts (``X S Xᵀ`` is n × n),
+    not as a ``(p f × nz)`` matrix times ``S`` (``p f nz²`` work).
     """
     L = layout
+    if isinstance(check, np.ndarray):
+        check = _CheckCov.time_major(check, L)
     Obs, T = _future_maps(mats, L.f)
-    X = _initial_state_map(mats, L)[:, L.P]  # the state estimate reads the past only
-    S_yu = S_check[np.ix_(L.Yf, L.Uf)]
-    XS_p = X @ S_check[np.ix_(L.P, L.P)]
-    XS_f = X @ S_check[np.ix_(L.P, np.concatenate([L.Yf, L.Uf]))]  # (n, p f + m f)
-    ObsXS = Obs @ XS_f
-    ny = len(L.Yf)
+    X = _past_state_map(mats, L)  # the state estimate reads the past only
+    XS_p = X @ check.pp
+    XS_y = X @ check.p_yf  # (n, p f)
+    XS_u = X @ check.p_uf  # (n, m f)
     # diag(E S Eᵀ) with E = E_Yf − T E_Uf − Obs X, term by term
-    err = (np.diagonal(S_check)[L.Yf] + np.sum((T @ S_check[np.ix_(L.Uf, L.Uf)]) * T, axis=1)
+    err = (check.diag_yf + np.sum((T @ check.uu) * T, axis=1)
            + np.sum((Obs @ (XS_p @ X.T)) * Obs, axis=1)
-           - 2.0 * np.sum(T * S_yu, axis=1) - 2.0 * np.diagonal(ObsXS[:, :ny])
-           + 2.0 * np.sum(ObsXS[:, ny:] * T, axis=1))
+           - 2.0 * np.sum(T * check.yu, axis=1) - 2.0 * np.sum(Obs * XS_y.T, axis=1)
+           + 2.0 * np.sum((Obs @ XS_u) * T, axis=1))
     err = np.maximum(err, 0.0)
-    power = np.diag(S_check)[L.Yf]
-    return float(np.mean(err / np.maximum(power, np.finfo(float).tiny)))
+    return float(np.mean(err / np.maximum(check.diag_yf, np.finfo(float).tiny)))

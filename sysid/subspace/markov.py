@@ -10,8 +10,10 @@ equations need,
     M[(c,l),(c',l')] = Σ_{s,s'} (Hc_sᵀ Hc'_s') S_uu[(s',l'),(s,l)] + Σ_{s,s'} (Qᵀ Hc_s)ᵀ (Qᵀ Hc'_s') ΔS_uu[(s',l'),(s,l)],
 
 is a contraction of small Grams of shifted pattern vectors (cumulative sums over the shift) with the input
-covariances: ``O(f² (n + p)² (p + m²))`` work and memory, instead of ``O(n_θ p f (m f)²)`` work and
-``O(n_θ p f m f)`` memory for the dense basis (about 100 MB per order at ``f = 50``, 20 outputs, 3 inputs).
+covariances: ``O(f² (n + p)² (p + m²))`` work, instead of ``O(n_θ p f (m f)²)`` work and ``O(n_θ p f m f)`` memory
+for the dense basis (about 100 MB per order at ``f = 50``, 20 outputs, 3 inputs). The contractions are taken one
+shift at a time (:func:`contract_shifted_gram`) and through ``Φ`` first (:func:`contract_projected_gram`), so no
+``(f, f, n + p, n + p)`` array is formed (64 MB at ``f = 50``, order 20, 20 outputs).
 ``P₁ = Q Qᵀ`` is the projector on range(Γ). The equations are the same as those of
 :func:`stimsteer.sysid.subspace.projection._b_d`'s Notes; only the order of the sums differs.
 """
@@ -62,15 +64,35 @@ def _contract(G: np.ndarray, S4: np.ndarray) -> np.ndarray:
     return out.transpose(0, 3, 1, 2)
 
 
+def contract_shifted_gram(h: np.ndarray, S4: np.ndarray) -> np.ndarray:
+    """``_contract(shifted_gram(h), S4)`` one lag difference at a time: the ``(f, f, nc, nc)`` array (32 MB at
+    ``f = 50``, ``nc = 40``, and as much again for its transposed copy) is never formed."""
+    f, _p, nc = h.shape
+    m = S4.shape[1]
+    out = np.zeros((nc, nc, m, m))  # (c, c', l', l)
+    for delta in range(f):
+        cs = np.cumsum(np.matmul(h[delta:].transpose(0, 2, 1), h[: f - delta]), axis=0)
+        sp = np.arange(delta, f)
+        block = cs[f - 1 - sp]  # G[sp − δ, sp]; G[sp, sp − δ] is its transpose (and so is G[s, s], as before)
+        if delta:
+            out += np.tensordot(block, S4[sp, :, sp - delta, :], axes=([0], [0]))
+        out += np.tensordot(block, S4[sp - delta, :, sp, :], axes=([0], [0])).transpose(1, 0, 2, 3)
+    return out.transpose(0, 3, 1, 2)
+
+
+def contract_projected_gram(Phi: np.ndarray, D4: np.ndarray) -> np.ndarray:
+    """``_contract(G2, D4)`` with ``G2[s, t] = Φ[s]ᵀ Φ[t]``, contracting ``D4`` with ``Φ`` first: ``O(f² q nc m²)``
+    work and ``q nc m² f`` memory instead of the ``(f nc)²`` array ``G2`` (``O(f² nc² q)`` work)."""
+    Psi = np.tensordot(Phi, D4, axes=([0], [0]))  # Ψ[q, c', l', s, l] = Σ_t Φ[t][q, c'] D4[t, l', s, l]
+    out = np.tensordot(Phi, Psi, axes=([0, 1], [3, 0]))  # (c, c', l', l)
+    return out.transpose(0, 3, 1, 2)
+
+
 def normal_equations(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
     """``M`` and ``rhs`` of the ``θ = [vec(B); vec(D)]`` least squares (column-major ``vec``, as the dense form)."""
     f, p, nc = h.shape
     S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
-    Phi = projected_patterns(Q, h)
-    q = Phi.shape[1]
-    Pm = Phi.transpose(1, 0, 2).reshape(q, f * nc)
-    G2 = (Pm.T @ Pm).reshape(f, nc, f, nc).transpose(0, 2, 1, 3)  # G2[s, t] = Φ[s]ᵀ Φ[t]
-    M = _contract(shifted_gram(h), S4) + _contract(G2, D4)
+    M = contract_shifted_gram(h, S4) + contract_projected_gram(projected_patterns(Q, h), D4)
     T4 = target.reshape(f, p, f, m)  # [r, a, s, l]
     rhs = np.zeros((nc, m))
     s_all = np.arange(f)

@@ -147,6 +147,16 @@ class _Projection:
         return (_conditional(S, L.Uf, L.Uf, L.P, self._past), _conditional(S, L.Yf, L.Uf, L.P, self._past))
 
     @functools.cached_property
+    def future_cov(self):
+        """Covariances ``S_{Uf Uf}`` and ``S_{Yf Uf}`` (for ``B, D``)."""
+        S, L = self.S, self.layout
+        return S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
+
+    def residual_covariances(self, gamma, A, B, C, D):
+        """``Q, R, S`` of the state- and output-equation residuals (:func:`_noise`)."""
+        return _noise(self, gamma, A, B, C, D)
+
+    @functools.cached_property
     def theta_next(self) -> np.ndarray:
         """``Θ₊``: the oblique projection one step later (past one block longer, future one shorter)."""
         S, L = self.S, self.layout
@@ -217,10 +227,10 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
     noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
     """
-    L, S = proj.layout, proj.S
+    L = proj.layout
     n, m, p = A.shape[0], L.m, L.p
     Q = np.linalg.qr(gamma)[0]
-    S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
+    S_uu, S_yu = proj.future_cov
     Sc_uu, Sc_yu = proj.given_past
     if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
         M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
@@ -297,6 +307,6 @@ def _fit_order(proj: _Projection, n: int, feedthrough: bool):
     gamma = proj.gamma(n)
     A, C = _a_c(gamma, proj.layout.p)
     B, D = _b_d(proj, gamma, A, C, feedthrough)
-    Q, R, Sx = _noise(proj, gamma, A, B, C, D)
+    Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
     K, Re, how = _innovation_form(A, C, Q, R, Sx)
     return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}

@@ -1,0 +1,140 @@
+"""From the session to the projections of subspace identification: one data pass (lag sums of the fitting and the
+held-out columns), the scaled Grams, and the projections on all training data and on the fitting part.
+
+Two routes give the same projections (to rounding): Grams of ``_FACTOR_FROM`` rows or more whose estimated condition
+number is below ``_CHOLESKY_CONDITION`` take the factor route (:mod:`.factor`: one Cholesky factor per Gram, Grams
+assembled one at a time from the lag sums in the factor order and freed once factored, so at most one Gram-sized
+array and the held-out Gram are held); smaller or ill-conditioned ones the covariance route
+(:class:`~.projection._Projection`, exactly as before, with the Grams in time-major order).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .._lagged import blas_threads
+from ..exceptions import ExcitationError, SessionError
+from ..output_mask import blanking_note
+from .factor import factor_projection
+from .gram import _Layout, _gram_diagonal, _gram_from_sums, _hankel_sums, _partition
+from .heldout import _CheckCov
+from .projection import _CHOLESKY_FROM, _Projection, _RTOL, _cond_text
+
+#: Gram rows from which the factor route is tried (below it, the covariance route of before, bit for bit).
+_FACTOR_FROM = _CHOLESKY_FROM
+
+
+def projections(session, cfg: dict, weighting: str):
+    """``(proj_all, proj_fit, check, scale, how, n_columns)`` of ``session`` for the settings ``cfg``.
+
+    ``check`` holds the held-out covariance blocks (:class:`~.heldout._CheckCov`); ``scale`` the channels' RMS
+    (``[u y]``); ``how`` says how the held-out part was chosen.
+    """
+    L = cfg["layout"]
+    segs = session.segments(min_length=L.width)
+    if not segs:
+        longest = max((b - a for a, b in session.segments()), default=0)
+        raise SessionError(
+            f"past_steps + future_steps = {L.width} samples is longer than every valid segment (the longest "
+            f"run of valid in-trial samples has {longest}). Use shorter past/future windows or longer trials."
+        )
+    fit, check, how = _partition(session, L.width, cfg["fraction"], cfg["seed"])
+    acc_fit, acc_check = _hankel_sums(session, [fit, check], L)
+    n_fit, n_check = int(acc_fit.n), int(acc_check.n)
+    for label, n_cols in (("the fitting part", n_fit), ("all training data", n_fit + n_check)):
+        if n_cols < L.nz:
+            raise SessionError(
+                f"{label} gives {n_cols} Hankel columns for {L.nz} rows ((m + p)(past_steps + future_steps)); "
+                "at least as many columns as rows are needed (many more for noisy data). Record longer trials "
+                "or use shorter past/future windows." + blanking_note(session, segs, L.width, L.i)
+            )
+    if n_check == 0:
+        raise SessionError(
+            f"no held-out part with {L.width} samples could be set aside for the order check ({how}). "
+            "Record more or longer trials, or use shorter past/future windows."
+        )
+    with blas_threads(1):  # Gram-sized factorisations: one thread is faster on a busy machine, little slower idle
+        out = _factor_route(acc_fit, acc_check, L, session, weighting) if L.nz >= _FACTOR_FROM else None
+        if out is None:
+            out = _covariance_route(acc_fit, acc_check, L, session, weighting)
+    return (*out, how, n_fit + n_check)
+
+
+def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
+    """The route of before: three time-major Grams and :class:`_Projection` (covariances inverted block by block)."""
+    G_fit, G_check = _gram_from_sums(acc_fit, L), _gram_from_sums(acc_check, L)
+    n_fit, n_check = int(acc_fit.n), int(acc_check.n)
+    G_all = G_fit + G_check
+    scale = channel_scales(np.diagonal(G_all), n_fit + n_check, L, session)
+    full = np.tile(scale, L.width)
+    S_all, S_fit, S_check = (scaled(G, N, full) for G, N in ((G_all, n_fit + n_check), (G_fit, n_fit),
+                                                             (G_check, n_check)))
+    for S in (S_all, S_fit):
+        check_excitation(S[np.ix_(L.Uf, L.Uf)], L)
+    return (_Projection(S_all, L, weighting), _Projection(S_fit, L, weighting), _CheckCov.time_major(S_check, L),
+            scale)
+
+
+def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
+    """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
+
+    The Grams are assembled one at a time in the factor order and each is overwritten by its factor, which is
+    freed once its projection's pieces are taken; of the held-out Gram only the rows of the past and of the future
+    inputs are assembled (:class:`~.heldout._CheckCov` needs no more).
+    """
+    order = L.factor_order()
+    acc_all = acc_fit.plus(acc_check)
+    scale = channel_scales(_gram_diagonal(acc_all, L), int(acc_all.n), L, session)
+    full = np.tile(scale, L.width)[order]
+    uf, b, e = slice(0, L.m * L.f), L.m * L.f, L.m * L.f + len(L.P)
+    projs = []
+    for acc in (acc_all, acc_fit):
+        G = scaled(_gram_from_sums(acc, L, order), int(acc.n), full)
+        check_excitation(G[uf, uf], L)
+        proj = factor_projection(G, L, weighting)
+        del G  # the factor: free it before the next Gram
+        if proj is None:
+            return None
+        proj.decompose()
+        projs.append(proj)
+    n = int(acc_check.n)
+    past = scaled(_gram_from_sums(acc_check, L, order, rows=(b, e)), n, full, full[b:e])
+    inputs = scaled(_gram_from_sums(acc_check, L, order, rows=(0, b)), n, full, full[:b])
+    diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
+    return projs[0], projs[1], _CheckCov.factor_rows(past, inputs, diag, L), scale
+
+
+def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:
+    """RMS of each channel (``[u y]``) from the diagonal of a time-major Hankel Gram of ``N`` columns; a channel that
+    is zero on every valid sample is refused."""
+    power = diag.reshape(L.width, L.c).mean(axis=0) / N
+    rms = np.sqrt(power)
+    names = list(getattr(session, "input_names", [])) + list(getattr(session, "output_names", []))
+    for ch in np.flatnonzero(rms <= 0):
+        label = names[ch] if ch < len(names) else f"channel {ch}"
+        kind = "input" if ch < L.m else "output"
+        err = ExcitationError if kind == "input" else SessionError
+        raise err(f"{kind} {label!r} is zero on every valid sample; it carries no information. Drop it.")
+    return rms
+
+
+def scaled(G: np.ndarray, N: int, s: np.ndarray, s_rows: np.ndarray | None = None) -> np.ndarray:
+    """``G / N`` with row ``k`` divided by ``s_rows[k]`` and column ``k`` by ``s[k]`` (``s_rows = s`` by default;
+    every channel at unit RMS), in place (the Grams are not used unscaled again)."""
+    s_rows = s if s_rows is None else s_rows
+    G /= N
+    for a in range(0, G.shape[0], 512):  # ÷ (s_i s_j), as G / N / outer(s, s), a band of rows at a time
+        G[a:a + 512] /= np.outer(s_rows[a:a + 512], s)
+    return G
+
+
+def check_excitation(S_uu: np.ndarray, L: _Layout) -> None:
+    """Refuse future inputs whose (scaled) covariance ``S_uu`` is singular to the cut-off ``_RTOL``."""
+    lam = np.linalg.eigvalsh(S_uu)
+    if lam[0] <= _RTOL * lam[-1]:
+        raise ExcitationError(
+            f"the inputs are not persistently exciting over future_steps={L.f} samples (the future-input "
+            f"covariance has condition {_cond_text(lam)}); an input that is "
+            "constant or too smooth cannot separate the dynamics. Use a richer stimulation schedule "
+            "(`stimsteer schedule`)."
+        )

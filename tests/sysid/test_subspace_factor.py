@@ -1,0 +1,125 @@
+"""Subspace identification's factor route (one Cholesky factor of the Hankel Gram per projection) against the
+covariance route it replaces for large Grams, and the pieces it is built from.
+
+The reference of every equivalence here is the earlier route of this package (the covariance route of
+``projection._Projection``, which remains in use for small and ill-conditioned Grams): an internal equivalence, not
+an outside source. The block formulas are those of the LQ route, Van Overschee & De Moor (1996), Subspace
+Identification for Linear Systems, Kluwer, sec. 4.3.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid import Session
+from stimsteer.sysid._lagged import _lagged_gram, blas_controller, blas_thread_count, blas_threads
+from stimsteer.sysid.subspace import SubspaceId, factor, gram, heldout, prepare
+
+
+def _session(noise, seed=1, T=6000, n_trials=6):
+    rng = np.random.default_rng(seed)
+    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
+    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
+    u = rng.standard_normal((T, 2))
+    x, y = np.zeros(3), np.zeros((T, 4))
+    for k in range(T):
+        y[k] = C @ x + noise * rng.standard_normal(4)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, n_trials + 1).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+def _fit(monkeypatch, session, factor_from, **kw):
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", factor_from)
+    return SubspaceId(**kw).fit(session)
+
+
+def _windows(seed=2):
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2))
+
+
+@pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
+@pytest.mark.parametrize("feedthrough", ["auto", True])
+def test_factor_route_predicts_as_the_covariance_route_on_well_conditioned_data(monkeypatch, weighting, feedthrough):
+    session = _session(noise=0.3)
+    kw = dict(past_steps=6, future_steps=5, weighting=weighting, feedthrough=feedthrough)
+    old = _fit(monkeypatch, session, 10**9, **kw)
+    new = _fit(monkeypatch, session, 0, **kw)
+    assert new.order_ == old.order_ and new.feedthrough_ == old.feedthrough_
+    np.testing.assert_allclose(new.singular_values_, old.singular_values_, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(new.order_table_["heldout_error"], old.order_table_["heldout_error"], rtol=1e-9)
+    a, b = old.predict_many(*_windows()), new.predict_many(*_windows())
+    np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-8 * np.abs(a).max())
+    np.testing.assert_allclose(new.model_.innovation_cov, old.model_.innovation_cov, rtol=1e-8, atol=1e-12)
+
+
+def test_a_singular_gram_falls_back_to_the_covariance_route(monkeypatch):
+    # noise-free data of a 3-state system: the past given the future inputs is singular, so the Gram has no
+    # Cholesky factor within the condition limit and the covariance route (with its eigenvalue cut-off) is used
+    session = _session(noise=0.0)
+    L = gram._Layout(6, 5, 2, 4)
+    (acc,) = gram._hankel_sums(session, [session.segments(min_length=L.width)], L)
+    S = gram._gram_from_sums(acc, L, L.factor_order()) / acc.n
+    assert factor.factor_projection(S, L, "n4sid") is None
+    kw = dict(past_steps=6, future_steps=5)
+    old = _fit(monkeypatch, session, 10**9, **kw)
+    new = _fit(monkeypatch, session, 0, **kw)
+    assert new.order_ == old.order_ == 3
+    np.testing.assert_array_equal(new.predict_many(*_windows()), old.predict_many(*_windows()))
+
+
+def test_cholesky_in_place_overwrites_the_gram_with_its_factor():
+    rng = np.random.default_rng(0)
+    Z = rng.standard_normal((400, 60))
+    S = Z.T @ Z
+    ref = np.linalg.cholesky(S)
+    work = S.copy()
+    assert factor.cholesky_in_place(work)
+    np.testing.assert_allclose(work, ref, rtol=1e-12, atol=1e-12 * np.abs(ref).max())
+    bad = np.diag([1.0, 1.0, 1e-12])  # condition 1e12: refused
+    assert not factor.cholesky_in_place(bad)
+
+
+def test_blocked_triangular_solve_equals_a_direct_solve():
+    rng = np.random.default_rng(3)
+    Lf = np.tril(rng.standard_normal((900, 900))) + 30 * np.eye(900)
+    B = rng.standard_normal((700, 5))
+    X = factor._solve_lower(Lf, 150, 850, B, band=128)
+    np.testing.assert_allclose(Lf[150:850, 150:850] @ X, B, rtol=1e-10, atol=1e-10)
+
+
+def test_rows_of_the_gram_and_its_diagonal_are_those_of_the_whole_symmetrised_gram():
+    session = _session(noise=0.3, T=1500)
+    L = gram._Layout(4, 3, 2, 4)
+    (acc,) = gram._hankel_sums(session, [session.segments(min_length=L.width)], L)
+    order = L.factor_order()
+    G = gram._gram_from_sums(acc, L, order)
+    np.testing.assert_array_equal(gram._gram_from_sums(acc, L, order, rows=(6, 30)), G[6:30])
+    np.testing.assert_array_equal(gram._gram_diagonal(acc, L), np.diagonal(gram._gram_from_sums(acc, L)))
+    np.testing.assert_array_equal(G, G.T)
+    np.testing.assert_array_equal(G, gram._gram_from_sums(acc, L)[np.ix_(order, order)])
+    assert _lagged_gram is not None
+
+
+def test_heldout_error_from_the_factor_order_rows_equals_the_time_major_one():
+    session = _session(noise=0.3, T=1500)
+    L = gram._Layout(4, 3, 2, 4)
+    (acc,) = gram._hankel_sums(session, [session.segments(min_length=L.width)], L)
+    order = L.factor_order()
+    S = gram._gram_from_sums(acc, L) / acc.n
+    b, e = L.m * L.f, L.m * L.f + len(L.P)
+    Sf = S[np.ix_(order, order)]
+    check = heldout._CheckCov.factor_rows(Sf[b:e], Sf[:b], np.diagonal(S)[L.Yf], L)
+    rng = np.random.default_rng(4)
+    n = 3
+    mats = {"A": 0.5 * np.eye(n) + 0.1 * rng.standard_normal((n, n)), "B": rng.standard_normal((n, 2)),
+            "C": rng.standard_normal((4, n)), "D": rng.standard_normal((4, 2)), "K": 0.2 * rng.standard_normal((n, 4))}
+    assert heldout._heldout_error(mats, check, L) == pytest.approx(heldout._heldout_error(mats, S, L), rel=1e-12)
+
+
+def test_the_blas_controller_is_created_once_and_limits_threads():
+    assert blas_controller() is blas_controller()
+    with blas_threads(1):
+        assert blas_thread_count() == 1
