@@ -42,23 +42,17 @@ __all__ = [
 ]
 
 
-_BLAS_CONTROLLER = []
-
-
 def _single_blas_thread():
     """Context that runs BLAS/LAPACK on one thread (process-wide, restored afterwards).
 
     The factorisations here are of a few hundred rows; on a machine whose cores are busy, multi-threaded OpenBLAS
     slows them down ten times or more (seen on the shared 2-core development machine), while one thread loses
-    little. Without threadpoolctl (a scikit-learn dependency) nothing is changed.
+    little. Through the process's one controller (:func:`._lagged.blas_threads`); without threadpoolctl (a
+    scikit-learn dependency) nothing is changed.
     """
-    if not _BLAS_CONTROLLER:
-        try:
-            from threadpoolctl import ThreadpoolController
-        except ImportError:  # pragma: no cover - scikit-learn installs it
-            return contextlib.nullcontext()
-        _BLAS_CONTROLLER.append(ThreadpoolController())
-    return _BLAS_CONTROLLER[0].limit(limits=1, user_api="blas")
+    from ._lagged import blas_threads
+
+    return blas_threads(1)
 
 
 def _one_blas_thread(func):

@@ -7,6 +7,7 @@ the task's result (recorded, not raised), so one failed fit never stops the run.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import time
@@ -17,25 +18,21 @@ import numpy as np
 import pandas as pd
 
 from ...sysid import Session, StimsteerError, freerun_scores, kstep_scores
+from ...sysid._lagged import blas_controller
 from ...sysid._records import window_stride
 from .closed_loop import _channel_index, _control, _output_stats, _rerecord
 from .tasks import _cached, _Context, _fit, _seed, _Task
 
 
-_THREADS: dict = {}
-
-
 def one_thread():
     """Single-threaded BLAS/OpenMP for the duration of a ``with`` (every task of the benchmark and of a study).
 
-    The libraries are found once per process: a fresh ``threadpool_limits`` scans the loaded libraries each time
-    (~6 ms of CPU here, ~30 ms of wall time under load), a tenth of a small task.
+    Through the process's one threadpool controller (``sysid._lagged.blas_controller``): a fresh
+    ``threadpool_limits`` scans the loaded libraries each time (~6 ms of CPU here, ~30 ms of wall time under load),
+    a tenth of a small task.
     """
-    if "controller" not in _THREADS:
-        from threadpoolctl import ThreadpoolController
-
-        _THREADS["controller"] = ThreadpoolController()
-    return _THREADS["controller"].limit(limits=1)
+    ctl = blas_controller()
+    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1)
 
 
 def _run_task(ctx: _Context, task: _Task) -> dict:
@@ -117,10 +114,8 @@ def route_choice_of(st, scores: dict) -> dict:
 
 def inner_score_of(ctx: _Context, split_index: int, split, method_index: int) -> float:
     """:func:`_inner_score` of one method on one split, with single-threaded BLAS (as inside a task)."""
-    from threadpoolctl import threadpool_limits
-
     st = ctx.settings
-    with threadpool_limits(limits=1), warnings.catch_warnings():
+    with one_thread(), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the task that uses the choice records its own warnings
         train = ctx.session.select_trials(split.train)
         return _inner_score(st.methods[method_index], train, st, st.horizon_steps, split_index)
