@@ -25,7 +25,6 @@ physical terms. The answer is checked and projected in the controller's units.
 from __future__ import annotations
 
 import time
-import warnings
 
 import cvxpy as cp
 import numpy as np
@@ -33,18 +32,15 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
-from ...sysid._threads import serial_clarabel
 from ..limits import StimLimits
 from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget, blend_all
+from ._cone_solve import solve_compiled
 from .plan import Plan, _ro
 
 __all__: list = []
 
 _ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
-# Clarabel's default tolerances (1e-8) leave plans ~1e-5 apart on flat objectives; tighter ones cost a few
-# iterations and make the plain path a reference for the fast one. solver_options override these.
-_CVX_DEFAULTS = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
 _ZERO_RTOL = 1e-6  # under window budgets or train limits, |u| at most this fraction of its bound is residue: 0
@@ -388,16 +384,9 @@ class _PredictiveController(BaseEstimator):
         self._lb.value, self._ub.value = lb.reshape(-1) / self._row_scale, ub.reshape(-1) / self._row_scale
         for b, h in zip(self._budgets, self._hists):
             b.assign(h)
-        opts = serial_clarabel({"solver": self._cvx_solver(), **_CVX_DEFAULTS.get(self._cvx_solver(), {}),
-                                **(self.solver_options or {})})  # serial: a forked worker never waits on a pool
-        try:
-            with warnings.catch_warnings():  # an inaccurate solve is reported in the plan's status instead
-                warnings.simplefilter("ignore", UserWarning)
-                # the compiled problem is reused (DPP cache) either way; no solver warm start, so that the same
-                # data give the same plan whatever was solved before
-                self.problem_.solve(warm_start=False, **opts)
-        except (cp.error.SolverError, ArithmeticError, ValueError) as exc:
-            return None, None, "failed", f"{self._cvx_solver()} failed: {exc}"
+        failure = solve_compiled(self.problem_, self._cvx_solver(), self.solver_options)
+        if failure:
+            return None, None, "failed", failure
         status = self.problem_.status
         if status not in _ACCEPT or self._u.value is None:
             kind = "infeasible" if status in (cp.INFEASIBLE, cp.INFEASIBLE_INACCURATE) else "failed"

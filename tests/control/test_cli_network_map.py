@@ -137,7 +137,7 @@ def test_conditions_with_a_wrong_count_are_refused(map_file, tmp_path, rng, caps
     session = _session_file(tmp_path, rng, conditions=False)
     assert main(["network", "--map", str(map_file), "--stimulated", "v1,amy", "--session", str(session),
                  "--conditions", "a,b,a", "--out", str(tmp_path / "n")]) == 2
-    assert "one condition label per trial (8); got 3" in capsys.readouterr().err
+    assert "the session has 8 trials and 3 labels were given" in capsys.readouterr().err
     assert not (tmp_path / "n").exists()
 
 

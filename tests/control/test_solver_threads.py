@@ -84,3 +84,27 @@ def test_the_l1_hankel_problem_is_solved_serially():
                           Yf=rng.normal(size=(3, 12)), compressed=False)
     assert _L1Solver(blocks, 1.0, None).options["max_threads"] == 1
     assert _L1Solver(blocks, 1.0, {"solver": "SCS"}).options == {"solver": "SCS"}
+
+
+class _FailsAtTightTolerances:
+    """A stand-in compiled problem: Clarabel's numerical failure at the tight tolerances, a solve at its defaults."""
+
+    def __init__(self):
+        self.calls = []
+
+    def solve(self, **kwargs):
+        self.calls.append(kwargs)
+        if "tol_feas" in kwargs:
+            raise cp.error.SolverError("Solver 'CLARABEL' failed.")
+
+
+def test_a_numerical_failure_at_the_tight_tolerances_is_retried_once_at_the_solvers_defaults():
+    from stimsteer.control.mpc._cone_solve import solve_compiled
+
+    problem = _FailsAtTightTolerances()
+    assert solve_compiled(problem, "CLARABEL") == ""
+    assert [("tol_feas" in c, c["max_threads"]) for c in problem.calls] == [(True, 1), (False, 1)]
+    # the caller's own options are the caller's choice: no retry, the failure is reported
+    problem = _FailsAtTightTolerances()
+    assert "CLARABEL failed" in solve_compiled(problem, "CLARABEL", {"tol_feas": 1e-10})
+    assert len(problem.calls) == 1
