@@ -359,7 +359,7 @@ class SimulatedLslPlant:
         ts0 = pylsl.local_clock()  # stamps on the nominal sample grid, as an acquisition clock does
         while not self._stop.is_set():
             if inlet is None:
-                found = pylsl.resolve_byprop("name", self.command_stream, 1, 0.0)
+                found = pylsl.resolve_byprop("name", self.command_stream, 1, 0.5 / rate)
                 inlet = pylsl.StreamInlet(found[0]) if found else None
             while inlet is not None:
                 cmd, _ = inlet.pull_sample(timeout=0.0)
