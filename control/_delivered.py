@@ -68,13 +68,12 @@ class _Budget:
     def coefficients(self, x) -> tuple[float, float, float]:
         """``(A, B, R)``: the load of ``α·x`` is ``α A + α² B`` and ``R`` is what the closing window has left below
         the aim of a reduced input."""
-        return (sum(w * x[i] for i, w in self._al), sum(w * x[i] * x[i] for i, w in self._bl),
+        return (sum([w * x[i] for i, w in self._al]), sum([w * x[i] * x[i] for i, w in self._bl]),
                 self.aim - self.total)
 
     def load(self, x) -> float:
         """``ℓ`` of one sample of magnitudes ``x`` (a list)."""
-        A, B, _ = self.coefficients(x)
-        return A + B
+        return sum([w * x[i] for i, w in self._al]) + sum([w * x[i] * x[i] for i, w in self._bl])
 
     def _oldest(self, j):
         r, p = self.ring, self.pos

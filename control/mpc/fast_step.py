@@ -110,7 +110,7 @@ class FastStep:
         self._T, self._m, self._p, self._N = T, m, p, N
         self._tol = _ACCEPT_RTOL * max(1.0, float(np.max(np.abs(np.concatenate([c._lo, c._hi])))))
         self._target, self._qr = None, None
-        self._w, self._q = np.empty(T * (m + p)), np.empty(N * m)
+        self._w, self._q, self._ones = np.empty(T * (m + p)), np.empty(N * m), np.ones(N * m)
         big = 1e30  # the dense solver's "no bound"
         self._row_lo, self._row_hi = np.clip(self._row_lo, -big, big), np.clip(self._row_hi, -big, big)
         self._lo_buf, self._hi_buf = self._row_lo.copy(), self._row_hi.copy()
@@ -158,7 +158,7 @@ class FastStep:
             if lo_m is None:
                 return self._fallback(last, "no input meets the limits from the last one")
             lo[:m], hi[:m] = lo_m, hi_m
-        if not math.isfinite(q.sum()):  # a NaN or an infinity anywhere in q makes its sum so
+        if not math.isfinite(np.dot(self._ones, q)):  # a NaN or an infinity anywhere in q makes its sum so
             return self._fallback(last, "the window holds NaN or infinite values")
         x, status, reason = self._qp.solve_finite(q, lo, hi)
         if x is None:
