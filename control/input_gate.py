@@ -173,7 +173,7 @@ class InputGate:
                 self._snap(x)  # residue, not a train (module notes)
             reason = self._sequence_reason(x)
             if reason:
-                x = self._largest_safe(np.array(x)).tolist()
+                x = self._largest_safe(x)
                 if self._trains:  # a tiny share of a spent window is residue too: zero (lowers every load)
                     self._snap(x)
                 self.n_replaced += 1
@@ -237,14 +237,13 @@ class InputGate:
         steps = np.arange(1, n + 1, dtype=np.float64)[:, None]
         return np.maximum(x[None, :] - steps * self._slew[None, :], 0.0)
 
-    def _largest_safe(self, u) -> np.ndarray:
-        """The largest safe input towards ``u`` (module docstring); ``u`` meets the per-sample limits."""
-        v = u.copy()
-        for i, t in enumerate(self._trains):
-            if v[i] != 0.0 and t.breaks():
-                v[i] = 0.0
+    def _largest_safe(self, x) -> list:
+        """The largest safe input towards ``x`` (a list; module docstring), as a list; ``x`` meets the per-sample
+        limits."""
+        v = [0.0 if e != 0.0 and t.breaks() else e for e, t in zip(x, self._trains)] + list(x[len(self._trains):])
         if self._slew is None:  # the fallback is zero and α·v stays in the amplitude window: plain floats
             return self._scaled(v)
+        v = np.array(v)
         f = self.safe_input()
         lo, hi = self._lo, self._hi
         if self._slew is not None:
@@ -255,16 +254,15 @@ class InputGate:
             return np.minimum(np.maximum(f + alpha * d, lo), hi)
 
         if not self._budget_reason(at(1.0), aim=True):
-            return at(1.0)
+            return at(1.0).tolist()
         a, b = 0.0, 1.0
         for _ in range(_BISECT):
             mid = 0.5 * (a + b)
             a, b = (mid, b) if not self._budget_reason(at(mid), aim=True) else (a, mid)
-        return at(a)
+        return at(a).tolist()
 
-    def _scaled(self, v):
-        """``α v`` with the largest ``α`` that keeps every closing window within its aim (no slew limit)."""
-        vl = v.tolist()
+    def _scaled(self, vl):
+        """``α v`` with the largest ``α`` that keeps every closing window within its aim (no slew limit; lists)."""
         x = [abs(t) for t in vl]
         top = largest_alpha(self._budgets, x)
         for t in (top, top * (1.0 - 1e-12), top * (1.0 - 1e-10)):  # the closed form may miss the aim by rounding
@@ -272,8 +270,8 @@ class InputGate:
                 break
             xt = [t * e for e in x]
             if all(b.fits(xt, None, True) for b in self._budgets):
-                return np.array([t * e for e in vl])
-        return np.zeros(v.size)  # a window is full: the fallback
+                return [t * e for e in vl]
+        return [0.0] * len(vl)  # a window is full: the fallback
 
     def _commit(self, u, x):
         """Record the delivered input ``u`` (an array; ``x`` the same values as a list)."""
