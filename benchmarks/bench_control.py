@@ -90,7 +90,7 @@ def main(argv=None):
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--live-seconds", type=float, default=10.0, help="length of each live run (default 10 s)")
     ap.add_argument("--gate-only", action="store_true", help="run section 5 alone (the gate under sequence limits)")
-    ap.add_argument("--live-only", action="store_true", help="run sections 4 and 5 alone (the live runner and the gate)")
+    ap.add_argument("--live-only", action="store_true", help="run sections 4 and 5 alone (live runner, gate)")
     args = ap.parse_args(argv)
     model, rng = _system(args.seed)
     plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01)
@@ -354,6 +354,7 @@ def _gate_section(args, model, limits, target):
     from stimsteer.control.input_gate import InputGate
     from stimsteer.control.mpc.fast_step import FastStep
     from stimsteer.control.realtime import run_live
+    from stimsteer.sysid import InvalidParameterError
 
     rate = 10_000.0
     seq = _sequence_limits(rate)
@@ -377,7 +378,11 @@ def _gate_section(args, model, limits, target):
                                                   input_weight=1e-2).fit())
         plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                    sample_rate_hz=rate)
-        run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+        try:
+            run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+        except InvalidParameterError as exc:
+            print(f"FastStep, {name}: refused -- {exc}")
+            continue
         _live_report(f"FastStep, {name}", run)
         g = run.summary["gate"]
         print(f"  gate: {g['admitted']} as given, {g['reduced']} reduced to the largest safe input, "
