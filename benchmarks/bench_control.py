@@ -90,6 +90,7 @@ def main(argv=None):
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--live-seconds", type=float, default=10.0, help="length of each live run (default 10 s)")
     ap.add_argument("--gate-only", action="store_true", help="run section 5 alone (the gate under sequence limits)")
+    ap.add_argument("--live-only", action="store_true", help="run sections 4 and 5 alone (live runner, gate)")
     args = ap.parse_args(argv)
     model, rng = _system(args.seed)
     plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01)
@@ -97,6 +98,11 @@ def main(argv=None):
     target = rng.normal(size=N_OUTPUTS)
     ind = ModelPredictiveController(model=model, limits=limits, horizon_steps=HORIZON, input_weight=1e-2).fit()
     if args.gate_only:
+        return _gate_section(args, model, limits, target)
+    if args.live_only:
+        from stimsteer.control.mpc.fast_step import FastStep
+
+        _live_section(args, model, plant, limits, target, FastStep(ind), ind)
         return _gate_section(args, model, limits, target)
     bare = _bare_osqp(ind)
 
@@ -285,6 +291,34 @@ def _live_section(args, model, plant, limits, target, step, ind):
             lat = run.summary["latency_s"]["p99"]
             print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   (target < 1; "
                   "an idle 2-core machine)")
+    _stages(step, fresh(10_000.0), target)
+
+
+def _stages(step, plant, target, n=20_000):
+    """Thread CPU time per stage of a 10 kHz step, unpaced (preemption by other processes is not counted): the plan,
+    the gate, the plant's step (the simulated hardware), the runner's record of the sample."""
+    from stimsteer.control.input_gate import InputGate
+
+    gate, T, clk = InputGate(step.limits_), step.past_steps_, time.thread_time_ns
+    plant.reset(seed=1)
+    U, Y = np.zeros((n + T, N_INPUTS)), np.zeros((n + T, N_OUTPUTS))
+    for i in range(T):
+        Y[i] = plant.step(U[i])
+    t = np.empty((n, 4))
+    for k in range(n):
+        i = k + T
+        t0 = clk()
+        u = step.plan(U[i - T:i], Y[i - T:i], target=target, last_input=gate.last_input).inputs[0]
+        t1 = clk()
+        sent, _ = gate.admit(u)
+        t2 = clk()
+        y = plant.step(sent)
+        t3 = clk()
+        U[i], Y[i] = sent, y
+        t[k] = (t1 - t0, t2 - t1, t3 - t2, clk() - t3)
+    q = np.percentile(t, [50, 99], axis=0) / 1e3
+    print(f"10 kHz step by stage, thread CPU over {n} unpaced steps, p50 (p99) µs: " + ", ".join(
+        f"{name} {q[0, j]:.1f} ({q[1, j]:.1f})" for j, name in enumerate(("plan", "gate", "plant", "record"))))
 
 
 # ------------------------------------------------------------- the gate under sequence limits (issue 20 with issue 16)
@@ -320,6 +354,7 @@ def _gate_section(args, model, limits, target):
     from stimsteer.control.input_gate import InputGate
     from stimsteer.control.mpc.fast_step import FastStep
     from stimsteer.control.realtime import run_live
+    from stimsteer.sysid import InvalidParameterError
 
     rate = 10_000.0
     seq = _sequence_limits(rate)
@@ -343,7 +378,11 @@ def _gate_section(args, model, limits, target):
                                                   input_weight=1e-2).fit())
         plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                    sample_rate_hz=rate)
-        run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+        try:
+            run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+        except InvalidParameterError as exc:
+            print(f"FastStep, {name}: refused -- {exc}")
+            continue
         _live_report(f"FastStep, {name}", run)
         g = run.summary["gate"]
         print(f"  gate: {g['admitted']} as given, {g['reduced']} reduced to the largest safe input, "

@@ -30,6 +30,7 @@ lifts a later window (or the fallback's) over the budget.
 from __future__ import annotations
 
 import math
+from operator import mul
 
 import numpy as np
 
@@ -49,7 +50,8 @@ class _Budget:
     that is several times faster than numpy calls.
     """
 
-    __slots__ = ("name", "unit", "a", "b", "_al", "_bl", "budget", "aim", "ring", "pos", "total", "_since")
+    __slots__ = ("name", "unit", "a", "b", "_al", "_bl", "_aw", "_bw", "budget", "aim", "ring", "pos", "total",
+                 "_since")
 
     def __init__(self, name, unit, linear, quadratic, window_steps, budget):
         self.name, self.unit = name, unit
@@ -57,6 +59,9 @@ class _Budget:
         # only the inputs that load this budget, as (index, weight) pairs
         self._al = [(i, w) for i, w in enumerate(self.a.tolist()) if w]
         self._bl = [(i, w) for i, w in enumerate(self.b.tolist()) if w]
+        # every input loads it (the usual case): the same products summed in the same order, through map
+        self._aw = self.a.tolist() if len(self._al) == self.a.size else None
+        self._bw = self.b.tolist() if len(self._bl) == self.b.size else None
         self.budget = float(budget)
         # a reduced input aims this far below the budget: the running sum's rounding (at most W ulps) never lifts a
         # window over it, and an independent recount of the window agrees
@@ -68,12 +73,14 @@ class _Budget:
     def coefficients(self, x) -> tuple[float, float, float]:
         """``(A, B, R)``: the load of ``α·x`` is ``α A + α² B`` and ``R`` is what the closing window has left below
         the aim of a reduced input."""
-        return (sum(w * x[i] for i, w in self._al), sum(w * x[i] * x[i] for i, w in self._bl),
+        return (sum([w * x[i] for i, w in self._al]), sum([w * x[i] * x[i] for i, w in self._bl]),
                 self.aim - self.total)
 
     def load(self, x) -> float:
         """``ℓ`` of one sample of magnitudes ``x`` (a list)."""
-        A, B, _ = self.coefficients(x)
+        aw, bw = self._aw, self._bw
+        A = sum(map(mul, aw, x)) if aw is not None else sum([w * x[i] for i, w in self._al])
+        B = sum(map(mul, map(mul, bw, x), x)) if bw is not None else sum([w * x[i] * x[i] for i, w in self._bl])
         return A + B
 
     def _oldest(self, j):
@@ -133,15 +140,20 @@ class _Train:
 
     def push(self, nonzero: bool) -> None:
         """Record a delivered sample (nonzero or not)."""
+        k = self.k
         if nonzero:
-            self.last_on = self.k
-        on = self.k - self.last_on < self.g
+            self.last_on = k
+        on = k - self.last_on < self.g
         self.run = self.run + 1 if on else 0
-        if self.ring:
-            self.count += int(on) - int(self.ring[self.pos])
-            self.ring[self.pos] = on
-            self.pos = (self.pos + 1) % len(self.ring)
-        self.k += 1
+        ring = self.ring
+        if ring:
+            pos = self.pos
+            if on is not ring[pos]:  # booleans: the count moves only when the sample leaving differs
+                self.count += 1 if on else -1
+                ring[pos] = on
+            pos += 1
+            self.pos = 0 if pos == len(ring) else pos
+        self.k = k + 1
 
 
 def budgets_of(limits, energy_window_steps) -> list:

@@ -39,6 +39,7 @@ Latency is the time from the tick to the checked decision (plan + gate, before t
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass
 
@@ -97,6 +98,7 @@ class _Loop:
         # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
         self._u = np.zeros((capacity, controller.n_inputs_))
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
+        self._y_shape, self._ones = (controller.n_outputs_,), np.ones(controller.n_outputs_)
         self.n, self.missing_run, self.last_gap = 0, 0, -(10**9)
         self.history = int(getattr(controller, "history_steps_", 0) or 0)
         self.events, self.markers, self.latency, self.ticks = [], {}, [], []
@@ -138,7 +140,7 @@ class _Loop:
         except StimsteerError:
             self._gap(i)
             raise
-        if y.shape == (self.c.n_outputs_,) and np.isfinite(y).all():
+        if y.shape == self._y_shape and math.isfinite(np.dot(self._ones, y)):  # NaN or inf anywhere: not finite
             self._y[i] = y
             self.missing_run = 0
         else:

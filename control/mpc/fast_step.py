@@ -31,6 +31,8 @@ streaming bridge). A full plan per step instead would cost milliseconds, far bey
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from ...sysid import InvalidParameterError, SessionError, check_fitted
@@ -108,10 +110,12 @@ class FastStep:
         self._T, self._m, self._p, self._N = T, m, p, N
         self._tol = _ACCEPT_RTOL * max(1.0, float(np.max(np.abs(np.concatenate([c._lo, c._hi])))))
         self._target, self._qr = None, None
-        self._w, self._q = np.empty(T * (m + p)), np.empty(N * m)
+        self._w, self._q, self._ones = np.empty(T * (m + p)), np.empty(N * m), np.ones(N * m)
         big = 1e30  # the dense solver's "no bound"
         self._row_lo, self._row_hi = np.clip(self._row_lo, -big, big), np.clip(self._row_hi, -big, big)
         self._lo_buf, self._hi_buf = self._row_lo.copy(), self._row_hi.copy()
+        self._lo_l, self._hi_l = self._row_lo[:m].tolist(), self._row_hi[:m].tolist()
+        self._slew_l = None if self._slew is None else np.broadcast_to(self._slew, (m,)).tolist()
 
     def __getattr__(self, name):
         # the fitted attributes of the controller are this object's too (a live runner reads them)
@@ -126,11 +130,12 @@ class FastStep:
 
     def _target_term(self, target):
         t = np.asarray(target, np.float64)
-        if self._target is None or t.shape != self._target.shape or not np.array_equal(t, self._target):
+        key = t.tolist()  # a list compare is a fraction of array_equal's cost on a live loop's step
+        if key != self._target:
             if t.shape != (self._p,) or not np.all(np.isfinite(t)):
                 raise SessionError(f"the fast step takes a constant output target of {self._p} finite values; got "
                                    f"shape {t.shape}.")
-            self._target, self._qr = t.copy(), self._q0 + self._Qr @ np.tile(t, self._N)
+            self._target, self._qr = key, self._q0 + self._Qr @ np.tile(t, self._N)
         return self._qr
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
@@ -147,24 +152,37 @@ class FastStep:
         last = u_past[-1] if last_input is None else np.asarray(last_input, np.float64)
         np.dot(self._Qw, w, out=q)
         q += self._target_term(target)
-        if self._slew is not None:  # only the first step's window moves: around the last delivered input
-            np.maximum(self._row_lo[:m], last - self._slew, out=lo[:m])
-            np.minimum(self._row_hi[:m], last + self._slew, out=hi[:m])
-            if (lo[:m] > hi[:m]).any():
+        lo_m, hi_m = self._lo_l, self._hi_l
+        if self._slew_l is not None:  # only the first step's window moves: around the last delivered input
+            lo_m, hi_m = _slew_window(last.tolist(), self._slew_l, lo_m, hi_m)
+            if lo_m is None:
                 return self._fallback(last, "no input meets the limits from the last one")
-        if not np.isfinite(q).all():
+            lo[:m], hi[:m] = lo_m, hi_m
+        if not math.isfinite(np.dot(self._ones, q)):  # a NaN or an infinity anywhere in q makes its sum so
             return self._fallback(last, "the window holds NaN or infinite values")
         x, status, reason = self._qp.solve_finite(q, lo, hi)
         if x is None:
             return self._fallback(last, reason)
-        u0 = x[:m]
-        tol = self._tol
-        if not ((u0 >= lo[:m] - tol).all() and (u0 <= hi[:m] + tol).all()):  # NaN fails both
+        u0, tol = x[:m].tolist(), self._tol
+        # Python floats: for a handful of inputs several times faster than numpy calls (NaN fails both compares)
+        if not all(a - tol <= v <= b + tol for v, a, b in zip(u0, lo_m, hi_m)):
             return self._fallback(last, "the solver's answer breaks a hard limit")
-        return StepResult(np.clip(u0, lo[:m], hi[:m])[None, :], False, status)
+        return StepResult(np.array([[min(max(v, a), b) for v, a, b in zip(u0, lo_m, hi_m)]]), False, status)
 
     def _fallback(self, last, why):
         return StepResult(self.controller_.limits_.safe_inputs(1, last), True, why)
+
+
+def _slew_window(last, slew, lo, hi):
+    """The first input's window ``max(lo, last − slew) … min(hi, last + slew)`` as lists, or ``(None, None)`` when
+    it is empty or ``last`` is not finite."""
+    if not all(map(math.isfinite, last)):
+        return None, None
+    lo_m = [max(a, v - s) for a, v, s in zip(lo, last, slew)]
+    hi_m = [min(b, v + s) for b, v, s in zip(hi, last, slew)]
+    if any(a > b for a, b in zip(lo_m, hi_m)):
+        return None, None
+    return lo_m, hi_m
 
 
 def _unsupported(c) -> str:
