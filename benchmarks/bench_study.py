@@ -9,7 +9,9 @@ Measured in one run (targets printed, never asserted):
   workers run back to back, ``--repeats`` times; each row also says where the time went: the share of the 2-worker
   run's wall time the workers spent in tasks (the rest: start, round trips, the serial description and tables in
   this process, the tail), the tasks' own time with 2 workers against 1 (above 1: the two workers slow each other
-  down, or other work took the cores), and the CPU seconds spent beyond the tasks in the workers (Dask's event loop,
+  down, or other work took the cores; a task's ``cpu_s`` is its process's CPU time while it ran, so it counts the
+  helper threads of its fits and the worker's background work over the task), the workers' whole CPU time per task,
+  and the CPU seconds spent beyond the tasks in the workers (Dask's event loop,
   monitors, serialisation) and in this process (client, LocalCluster's scheduler, the study's table), and the
   2-vs-1 ratio these CPU seconds would allow if nothing else ran (Dask's monitors cost CPU per second of wall time,
   so a loaded machine inflates the part beyond the tasks and this estimate is then pessimistic);
@@ -165,6 +167,11 @@ def _timed_study(address: str, root, st) -> dict:
             "workers_extra": workers - tasks_cpu, "client_scheduler": here, "faults": faults / len(result.tasks)}
 
 
+def _per_task_ms(run: dict) -> float:
+    """The workers' whole CPU time (tasks, the helper threads of their fits, Dask's work) per task, in ms."""
+    return 1e3 * (run["tasks_cpu"] + run["workers_extra"]) / len(run["result"].tasks)
+
+
 def _cpu_ratio(one: dict, two: dict) -> float:
     """The 2-vs-1 ratio the CPU seconds allow on an otherwise idle machine: 1 worker takes its tasks' CPU time (Dask
     and this process run on the other core); 2 workers share both cores with everything the run spent."""
@@ -188,8 +195,8 @@ def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0
           f"cluster configuration: {'Dask defaults' if DASK_DEFAULTS else 'CLUSTER_CONFIG'}")
     print("  | rep | load before | 1 worker | 2 workers | study 2-vs-1 | pure-CPU 2-vs-1 (ceiling) | study / ceiling "
           "| 2 workers: workers busy | task time 2w / 1w | CPU beyond tasks (workers; client+scheduler) "
-          "| CPU-accounted 2-vs-1 | worker page faults per task 1w; 2w |")
-    print("  | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+          "| CPU-accounted 2-vs-1 | worker page faults per task 1w; 2w | worker CPU per task 1w; 2w |")
+    print("  | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for rep in range(repeats):
         load, cpu = _load(), {}
         for n in (1, 2):
@@ -205,7 +212,7 @@ def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0
               f"{ratio / ceiling:.2f} | {busy:.0%} | {two['tasks_wall'] / one['tasks_wall']:.2f} (CPU "
               f"{two['tasks_cpu'] / one['tasks_cpu']:.2f}) | 1w {one['workers_extra']:.1f}; {one['client_scheduler']:.1f} s"
               f" - 2w {two['workers_extra']:.1f}; {two['client_scheduler']:.1f} s | {_cpu_ratio(one, two):.2f}x | "
-              f"{one['faults']:.0f}; {two['faults']:.0f} |")
+              f"{one['faults']:.0f}; {two['faults']:.0f} | {_per_task_ms(one):.0f}; {_per_task_ms(two):.0f} ms |")
     ex = runs[2]["result"].provenance["execution"]
     ratio, rel = statistics.median(r[0] for r in rows), statistics.median(r[0] / r[1] for r in rows)
     print(f"speed: {len(runs[1]['result'].tasks)} tasks in {ex['n_batches']} batches; study 2-vs-1 median "
