@@ -9,10 +9,16 @@ Measured in one run (targets printed, never asserted):
   workers run back to back, ``--repeats`` times; each row also says where the time went: the share of the 2-worker
   run's wall time the workers spent in tasks (the rest: start, round trips, the serial description and tables in
   this process, the tail), the tasks' own time with 2 workers against 1 (above 1: the two workers slow each other
-  down, or other work took the cores), and the CPU seconds spent beyond the tasks in the workers (Dask's event loop,
+  down, or other work took the cores; a task's ``cpu_s`` is its process's CPU time while it ran, so it counts the
+  helper threads of its fits and the worker's background work over the task), the workers' whole CPU time per task,
+  and the CPU seconds spent beyond the tasks in the workers (Dask's event loop,
   monitors, serialisation) and in this process (client, LocalCluster's scheduler, the study's table), and the
   2-vs-1 ratio these CPU seconds would allow if nothing else ran (Dask's monitors cost CPU per second of wall time,
   so a loaded machine inflates the part beyond the tasks and this estimate is then pessimistic);
+* the clusters are made by :func:`~stimsteer.control.study.local_cluster` (Dask's background work turned down,
+  glibc's adaptive malloc kept; ``--dask-defaults`` makes them with Dask's own configuration, to compare); each row
+  also gives the minor page faults per task in the workers. The study is described once, cold, before the runs
+  (printed); both runs then find its files in the description memo;
 * peak traced memory (tracemalloc) of the heaviest task of each analysis against the fit of the largest session
   alone (load it, fit both methods on all its trials), target <= 2;
 * a rerun after one new session was added, from the cache: tasks computed (printed with the tasks that the new
@@ -22,7 +28,7 @@ Measured in one run (targets printed, never asserted):
 Run from the repository root::
 
     .venv/bin/python benchmarks/bench_study.py [--subjects 40] [--sessions 3] [--analyses sessions,days,subjects,sites]
-        [--stages memory,speed,killed,rerun] [--splits N] [--repeats 2]
+        [--stages memory,speed,killed,rerun] [--splits N] [--repeats 2] [--dask-defaults]
     .venv/bin/python benchmarks/bench_study.py --speed-only     # the speed-up alone, a few minutes when quiet
 """
 
@@ -41,7 +47,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from stimsteer.control.study import StudySettings, describe_study, run_study, run_task, study_tasks
+from stimsteer.control.study import StudySettings, describe_study, local_cluster, run_study, run_task, study_tasks
 from stimsteer.demo_data.make_study import StudyScenario, make_study
 from stimsteer.sysid import load_session, make_estimator
 
@@ -53,11 +59,16 @@ def _numbers(result) -> pd.DataFrame:
     return result.tasks[NUMBERS].sort_values(NUMBERS[:5], ignore_index=True)
 
 
-def _cluster(n: int):
-    from distributed import LocalCluster
+DASK_DEFAULTS = False  # --dask-defaults: Dask's own configuration instead of the study's CLUSTER_CONFIG (the before)
 
-    return LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                        dashboard_address=None, silence_logs=50)
+
+def _cluster(n: int):
+    if DASK_DEFAULTS:
+        from distributed import LocalCluster
+
+        return LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                            dashboard_address=None, silence_logs=50)
+    return local_cluster(n, silence_logs=50)
 
 
 def _traced(fn) -> int:
@@ -128,8 +139,11 @@ def _load() -> str:
     return "/".join(f"{v:.1f}" for v in os.getloadavg())
 
 
-def _process_cpu() -> float:
-    return time.process_time()
+def _process_cpu() -> tuple:
+    """This process's CPU seconds and minor page faults so far."""
+    import resource
+
+    return time.process_time(), resource.getrusage(resource.RUSAGE_SELF).ru_minflt
 
 
 def _timed_study(address: str, root, st) -> dict:
@@ -143,12 +157,19 @@ def _timed_study(address: str, root, st) -> dict:
         workers0, here0, t0 = client.run(_process_cpu), time.process_time(), time.perf_counter()
         result = run_study(root, st, scheduler=address)
         wall, here = time.perf_counter() - t0, time.process_time() - here0
-        workers = sum(client.run(_process_cpu).values()) - sum(workers0.values())
+        workers1 = client.run(_process_cpu)
     finally:
         client.close()
+    workers = sum(workers1[w][0] - workers0[w][0] for w in workers0)
+    faults = sum(workers1[w][1] - workers0[w][1] for w in workers0)
     tasks_cpu, tasks_wall = float(result.tasks["cpu_s"].sum()), float(result.tasks["total_s"].sum())
     return {"result": result, "wall": wall, "tasks_cpu": tasks_cpu, "tasks_wall": tasks_wall,
-            "workers_extra": workers - tasks_cpu, "client_scheduler": here}
+            "workers_extra": workers - tasks_cpu, "client_scheduler": here, "faults": faults / len(result.tasks)}
+
+
+def _per_task_ms(run: dict) -> float:
+    """The workers' whole CPU time (tasks, the helper threads of their fits, Dask's work) per task, in ms."""
+    return 1e3 * (run["tasks_cpu"] + run["workers_extra"]) / len(run["result"].tasks)
 
 
 def _cpu_ratio(one: dict, two: dict) -> float:
@@ -164,10 +185,18 @@ def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0
     Workers have imported the toolkit before either is timed (a one-off start-up per worker, not part of a study's
     throughput), the same for 1 and 2 workers."""
     size, t_start, rows, runs = _spin_size(cpu_task_s), time.perf_counter(), [], {}
+    # the description is made once here, cold (both runs then find each file's content in this process's memo by
+    # path, size and modification time: the 2-worker run, which comes second, gains nothing the 1-worker run lacks)
+    t0, c0 = time.perf_counter(), time.process_time()
+    describe_study(root)
+    t1, c1 = time.perf_counter(), time.process_time()
+    describe_study(root)
+    print(f"  description: {t1 - t0:.2f} s ({c1 - c0:.2f} s CPU) cold, {time.perf_counter() - t1:.3f} s again; "
+          f"cluster configuration: {'Dask defaults' if DASK_DEFAULTS else 'CLUSTER_CONFIG'}")
     print("  | rep | load before | 1 worker | 2 workers | study 2-vs-1 | pure-CPU 2-vs-1 (ceiling) | study / ceiling "
           "| 2 workers: workers busy | task time 2w / 1w | CPU beyond tasks (workers; client+scheduler) "
-          "| CPU-accounted 2-vs-1 |")
-    print("  | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+          "| CPU-accounted 2-vs-1 | worker page faults per task 1w; 2w | worker CPU per task 1w; 2w |")
+    print("  | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for rep in range(repeats):
         load, cpu = _load(), {}
         for n in (1, 2):
@@ -182,7 +211,8 @@ def speed(root, st, repeats: int = 2, cpu_tasks: int = 16, cpu_task_s: float = 0
         print(f"  | {rep + 1} | {load} | {one['wall']:.1f} s | {two['wall']:.1f} s | {ratio:.2f}x | {ceiling:.2f}x | "
               f"{ratio / ceiling:.2f} | {busy:.0%} | {two['tasks_wall'] / one['tasks_wall']:.2f} (CPU "
               f"{two['tasks_cpu'] / one['tasks_cpu']:.2f}) | 1w {one['workers_extra']:.1f}; {one['client_scheduler']:.1f} s"
-              f" - 2w {two['workers_extra']:.1f}; {two['client_scheduler']:.1f} s | {_cpu_ratio(one, two):.2f}x |")
+              f" - 2w {two['workers_extra']:.1f}; {two['client_scheduler']:.1f} s | {_cpu_ratio(one, two):.2f}x | "
+              f"{one['faults']:.0f}; {two['faults']:.0f} | {_per_task_ms(one):.0f}; {_per_task_ms(two):.0f} ms |")
     ex = runs[2]["result"].provenance["execution"]
     ratio, rel = statistics.median(r[0] for r in rows), statistics.median(r[0] / r[1] for r in rows)
     print(f"speed: {len(runs[1]['result'].tasks)} tasks in {ex['n_batches']} batches; study 2-vs-1 median "
@@ -244,7 +274,11 @@ def main() -> None:
     p.add_argument("--speed-only", action="store_true",
                    help="only the 2-vs-1 speed-up, on 40 x 3 sessions, per-session analysis with its closed loops, "
                         "one split (a few minutes on a quiet 2-core machine)")
+    p.add_argument("--dask-defaults", action="store_true",
+                   help="clusters with Dask's own configuration instead of the study's CLUSTER_CONFIG (to compare)")
     a = p.parse_args()
+    global DASK_DEFAULTS
+    DASK_DEFAULTS = a.dask_defaults
     if a.speed_only:
         a.stages, a.analyses, a.splits = "speed", "sessions", a.splits or 1
     stages = set(a.stages.split(","))

@@ -16,7 +16,7 @@ direct route win for most subjects or only for some; which stimulation site is b
   Laird's random-effects model, with the between-subject spread stated, judged against the practical margin.
 * **Execution** (:mod:`~.execute`): one task per (analysis, subject, session, method, split), sent in batches of
   one (analysis, session); local processes or a Dask cluster, the same numbers either way; completed tasks cached
-  by content hash; dead workers retried.
+  by content hash; dead workers retried. :mod:`~.cluster`: a Dask cluster whose background work is turned down.
 * **Report** (:mod:`~.report`): one page with the verdicts, forest plots, transfer across days and the cohort's
   site ranking, linked per-session pages, and every table as CSV and Parquet.
 
@@ -26,6 +26,7 @@ DerSimonian R., Laird N. (1986), "Meta-analysis in clinical trials", Controlled 
 """
 
 from .analysis import effects_table, verdicts_table
+from .cluster import CLUSTER_CONFIG, local_cluster
 from .execute import TaskCache, execute_tasks
 from .grid import study_tasks
 from .pooling import RandomEffects, kendall_w, margin_verdict, random_effects
@@ -35,7 +36,7 @@ from .table import STUDY_FILE, StudyTable, describe_study
 from .tasks import CACHE_VERSION, SessionRef, StudyTask, run_task
 
 __all__ = [
-    "ANALYSES", "OFFSETS", "STUDY_FILE", "CACHE_VERSION", "StudySettings", "StudyTable", "StudyResult", "StudyTask",
+    "ANALYSES", "OFFSETS", "CLUSTER_CONFIG", "local_cluster", "STUDY_FILE", "CACHE_VERSION", "StudySettings", "StudyTable", "StudyResult", "StudyTask",
     "SessionRef", "TaskCache", "RandomEffects", "describe_study", "run_study", "study_tasks", "execute_tasks",
     "run_task", "random_effects", "margin_verdict", "kendall_w", "effects_table", "verdicts_table", "parse_method",
 ]

@@ -1,9 +1,11 @@
 """A study's tasks travel in batches (one per analysis and scored session): fewer reads, the same numbers."""
 
+import os
+
 import pandas as pd
 import pytest
 
-from stimsteer.control.study import StudySettings, describe_study, run_study, study_tasks
+from stimsteer.control.study import StudySettings, describe_study, local_cluster, run_study, study_tasks
 from stimsteer.control.study import execute as study_execute
 from stimsteer.control.study import tasks as study_tasks_module
 from stimsteer.demo_data.make_study import StudyScenario, make_study
@@ -69,11 +71,23 @@ def test_batched_results_equal_tasks_run_alone_in_any_order(study):
                {a: v for a, v in batched[k].items() if a not in timing}
 
 
-def test_a_dask_cluster_runs_batches_with_the_numbers_of_a_local_run(study, local):
+def _worker_state():
+    import dask
+
+    return (dask.config.get("distributed.worker.profile.enabled"), dask.config.get("distributed.admin.tick.interval"),
+            os.environ.get("MALLOC_TRIM_THRESHOLD_"))
+
+
+def test_a_dask_cluster_runs_batches_with_the_numbers_of_a_local_run(study, local, monkeypatch):
     distributed = pytest.importorskip("distributed")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as cluster:
+    # a default cluster made earlier in this process (test_study.py) leaves Dask's value in os.environ
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
+    with local_cluster(2) as cluster:  # the study's quiet configuration (test_study.py runs Dask's defaults)
+        with distributed.Client(cluster.scheduler_address, set_as_default=False) as client:
+            states = list(client.run(_worker_state).values())
         on_dask = run_study(study, SETTINGS, scheduler=cluster.scheduler_address)
+    # no profiler, a slow event-loop check, glibc's adaptive malloc (Dask's defaults: True, "20ms", "65536")
+    assert states == [(False, "1s", None)] * 2
     assert on_dask.provenance["execution"]["n_batches"] == 12
     pd.testing.assert_frame_equal(on_dask.tasks[COLS].sort_values(COLS[:5], ignore_index=True),
                                   local[0].tasks[COLS].sort_values(COLS[:5], ignore_index=True))

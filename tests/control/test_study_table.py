@@ -1,5 +1,6 @@
 """The study description: folder and study file to a study table, and the bad inputs the issue names."""
 
+import os
 import shutil
 import warnings
 
@@ -8,6 +9,7 @@ import pytest
 
 from stimsteer.control.cli import main
 from stimsteer.control.study import StudySettings, describe_study
+from stimsteer.control.study import table as study_table
 from stimsteer.demo_data.make_study import StudyScenario, make_study
 from stimsteer.sysid import InvalidParameterError, SessionError, StimsteerWarning, load_session, save_session
 
@@ -151,3 +153,19 @@ def test_an_unreadable_cache_entry_counts_as_missing(tmp_path):
     cache.put("k2", {"error": "SessionError: x"})  # failed tasks are tried again, never cached
     (tmp_path / "c" / "k3.json").write_text("{half")
     assert cache.get("k1") == {"r2_mean": 0.5} and cache.get("k2") is None and cache.get("k3") is None
+
+
+def test_describing_a_study_again_opens_only_new_or_rewritten_files(study, tmp_path, monkeypatch):
+    study = _copy(study, tmp_path)
+    first = describe_study(study)
+    opened, original = [], study_table.open_session_file
+    monkeypatch.setattr(study_table, "open_session_file", lambda f: opened.append(f) or original(f))
+    assert describe_study(study).sessions.equals(first.sessions) and opened == []
+    # rewritten with other data (trials reversed in time): read again, a new hash; the other three files are not
+    f = study / "s02" / "day1.h5"
+    s = load_session(f)
+    save_session(s.replace(u=s.u[::-1].copy(), y=s.y[::-1].copy()), f, overwrite=True)
+    again = describe_study(study).sessions
+    assert [os.path.basename(str(p)) for p in opened] == ["day1.h5"]
+    changed = again["content_hash"] != first.sessions["content_hash"]
+    assert list(again.loc[changed, "file"]) == [str(f)]
