@@ -264,9 +264,11 @@ class DataPredictiveController(_CondensedCore):
         G_b = A_pinv - G_h @ (H @ A_pinv)
         G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
         Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
+        # g = G_h h + G_f b + G_u u with h = LYᵀ r (+ λ_y Ypᵀ y_past): G_h folded into the maps of r and y_past
         self._elim = {
-            "G_h": G_h, "G_f": G_f, "G_u": G_u, "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
-            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "LY": LY, "hard": hard,
+            "G_r": G_h @ LY.T, "G_y": None if hard else G_h @ (self._lam_y * self._Yp.T), "G_f": G_f, "G_u": G_u,
+            "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
+            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "hard": hard,
         }
         P = 2.0 * G_u.T @ H @ G_u
         self._elim["P"] = 0.5 * (P + P.T)
@@ -281,10 +283,8 @@ class DataPredictiveController(_CondensedCore):
         e = self._elim
         bf = np.concatenate([eq, yp]) if e["hard"] else eq
         q = e["Q_r"] @ rw + e["Q_f"] @ bf
-        h = e["LY"].T @ rw
         if not e["hard"]:
-            q = q + e["Q_y"] @ yp
-            h = h + self._lam_y * self._Yp.T @ yp
+            q += e["Q_y"] @ yp
         lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
         if self._slew_rows is not None:
             lo.append(-self._slew_rows[1])
@@ -292,7 +292,9 @@ class DataPredictiveController(_CondensedCore):
         u, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
         if u is None:
             return None, None, status, reason
-        g = e["G_h"] @ h + e["G_f"] @ bf + e["G_u"] @ u
+        g = e["G_r"] @ rw + e["G_f"] @ bf + e["G_u"] @ u
+        if not e["hard"]:
+            g += e["G_y"] @ yp
         return u, g, status, ""
 
     def _fast_deepc(self, N, m):
