@@ -1,4 +1,6 @@
-"""The fast path of every controller: one OSQP problem set up once, whose vectors alone change from plan to plan.
+"""The fast path of every controller: a QP set up once, whose vectors alone change from plan to plan (a dense
+active-set solve, warm started, where it applies: :class:`_DenseQP`, :class:`_DenseSoftQP`, :class:`_BoxQP`; else
+OSQP).
 
 ``min ½ zᵀPz + qᵀz  s.t.  l <= A z <= u`` with ``P`` and ``A`` fixed at fit; a plan updates ``q``, ``l``, ``u``
 and re-solves (warm started). The settings are tight (1e-7) so that the fast path agrees with the cvxpy problem.
