@@ -307,9 +307,10 @@ class _PredictiveController(BaseEstimator):
         last_input : ndarray, shape (n_inputs,), optional
             The input applied just before the plan (for the slew limit); default ``u_past[-1]``.
         use_fast_path : bool, optional
-            Solve with the reusable OSQP problem (True) or the cvxpy problem (False); default the controller's
+            Solve with the reusable fast QP (True: dense and warm started where it applies, else OSQP;
+            :mod:`~stimsteer.control.mpc.fastqp`) or the cvxpy problem (False); default the controller's
             ``fast_path`` setting. The fast path is used only where it exists (see :mod:`stimsteer.control.mpc`); when
-            OSQP fails (e.g. its iteration limit on a badly scaled penalty), the cvxpy problem is solved instead
+            it fails (e.g. its iteration limit on a badly scaled penalty), the cvxpy problem is solved instead
             and ``Plan.solver`` names both.
 
         Returns

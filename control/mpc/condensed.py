@@ -19,7 +19,7 @@ import scipy.sparse as sp
 
 from ...sysid import markov_toeplitz
 from ._core import _PredictiveController
-from .fastqp import _DenseQP, _FastQP, dense_solver_available
+from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
 
 __all__ = ["condensed_prediction"]
 
@@ -112,27 +112,21 @@ class _CondensedCore(_PredictiveController):
             rows.append(sp.hstack([sp.csr_matrix(self._Gy[self._idx_lo]), self._S_lo / self._kappa]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, Nm)), sp.eye(nb)]))
-        dense = self._dense_qp(H, rows, Nm, nb)
-        if dense is not None:
-            return dense
-        osqp = _FastQP(P, sp.vstack(rows, format="csc"), Nm + nb)
-        # soft output bounds: the dense QP without them first (their rows follow the box and slew rows). Not with an
-        # energy budget: whether its windows bind is decided on the fast answer with a threshold, so answers equal
-        # to rounding can take the cvxpy path in one run and not the other, and closed loops drift apart (the demo's
-        # bench: one loop's tracking error 8.20 -> 9.56 from per-step answers equal to 1.7e-12 relative)
-        hard = rows[:1 + (self._slew_rows is not None)]
-        free = None if self._energy is not None else \
-            self._dense_qp(H, [sp.csr_matrix(r)[:, :Nm] for r in hard], Nm, 0)
-        return osqp if free is None else _SoftBoundsFirst(free, osqp, self)
+        if not nb:
+            dense = self._dense_qp(H, rows, Nm)
+            return dense if dense is not None else _FastQP(P, sp.vstack(rows, format="csc"), Nm)
+        # soft output bounds: held hard on the dense path when their multipliers stay below the penalty, else OSQP
+        A = sp.vstack(rows, format="csc")
+        osqp = _FastQP(P, A, Nm + nb)
+        return _DenseSoftQP.around(osqp, P, A, Nm) or osqp
 
-    def _dense_qp(self, H, rows, Nm, nb):
-        """The dense warm-started active-set QP when it applies: no output bounds (no slack), ``H`` positive
-        definite, and the solver installed (the ``realtime`` extra); else None (OSQP, the general fast path)."""
-        if nb or not dense_solver_available():
+    def _dense_qp(self, H, rows, Nm):
+        """The dense warm-started active-set QP when it applies: ``H`` positive definite and the solver installed
+        (a core dependency); else None (OSQP, the general fast path)."""
+        if not dense_solver_available():
             return None
         H2 = 2.0 * 0.5 * (H + H.T)
-        ev = np.linalg.eigvalsh(H2)
-        if not ev[0] > 1e-10 * max(ev[-1], 1e-300):  # a flat direction (no input weight): OSQP copes, DAQP may not
+        if not _positive_definite(H2):  # a flat direction (no input weight): OSQP copes, DAQP may not
             return None
         A = sp.vstack(rows[1:], format="csr").toarray() if len(rows) > 1 else None
         return _DenseQP(H2, A, Nm)
@@ -166,8 +160,7 @@ class _CondensedCore(_PredictiveController):
             hi[s_hi:s_hi + n_hi] = self._ymax[self._idx_hi] - fy[self._idx_hi]
         if n_lo:
             lo[s_lo:s_lo + n_lo] = self._ymin[self._idx_lo] - fy[self._idx_lo]
-        z, status, reason = self._fast.solve(q, lo, hi, fy) if isinstance(self._fast, _SoftBoundsFirst) else \
-            self._fast.solve(q, lo, hi)
+        z, status, reason = self._fast.solve(q, lo, hi)
         if z is None:
             return None, None, status, reason
         return z[:Nm], None, status, ""
@@ -212,39 +205,6 @@ class _CondensedCore(_PredictiveController):
         if self._LpT is not None:
             terms["terminal"] = float(np.sum((self._LpT @ v + tw) ** 2))
         return terms
-
-
-class _SoftBoundsFirst:
-    """Soft output bounds: the dense QP without them first, OSQP with their slack only where the answer reaches one.
-
-    If the optimum ``u*`` of the problem without the output bounds keeps every bounded predicted output strictly
-    inside its bound, ``(u*, s = 0)`` is feasible for the problem with the soft bounds and costs what ``u*`` costs
-    without them, which is a lower bound on that problem's cost: it is its optimum (unique: the cost is strictly
-    convex in ``u``), found by the exact dense solver. Otherwise the problem with the slack is solved by OSQP.
-    """
-
-    label = "DAQP (dense, warm; OSQP where an output bound is reached)"
-
-    def __init__(self, free, osqp, core):
-        self._free, self._osqp = free, osqp
-        self._Nm = free.n_vars
-        self._n_rows = free.n_rows
-        self._Gy_hi = np.ascontiguousarray(core._Gy[core._idx_hi])
-        self._Gy_lo = np.ascontiguousarray(core._Gy[core._idx_lo])
-        self._idx_hi, self._idx_lo = core._idx_hi, core._idx_lo
-        self._ymax, self._ymin = core._ymax[core._idx_hi], core._ymin[core._idx_lo]
-
-    def reset(self):
-        self._free.reset()
-        self._osqp.reset()
-
-    def solve(self, q, l, u, fy):
-        Nm, n = self._Nm, self._n_rows
-        z, status, reason = self._free.solve(q[:Nm], l[:n], u[:n])
-        if z is not None and np.all(self._Gy_hi @ z + fy[self._idx_hi] < self._ymax) and \
-                np.all(self._Gy_lo @ z + fy[self._idx_lo] > self._ymin):
-            return np.concatenate([z, np.zeros(q.size - Nm)]), status, reason
-        return self._osqp.solve(q, l, u)
 
 
 class _LinearStateMap:

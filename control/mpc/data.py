@@ -29,7 +29,7 @@ from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, Not
 from ...sysid.protocols import past_vector
 from ._core import _horizon, _output_target, _sqrt_weight
 from .condensed import _CondensedCore
-from .fastqp import _FastQP
+from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
 from .plan import Plan, _ro
 
 __all__ = ["DataPredictiveController"]
@@ -235,7 +235,8 @@ class DataPredictiveController(_CondensedCore):
         return 0.5 * (H + H.T), LY
 
     def _fast_deepc_eliminated(self, N, m):
-        """OSQP over the inputs alone, with ``g`` minimised out in closed form (no output bounds).
+        """The QP over the inputs alone, with ``g`` minimised out in closed form (no output bounds): dense and warm
+        started (daqp) where its Hessian is positive definite, else OSQP.
 
         For fixed ``u`` the DeePC cost is a quadratic in ``g`` under the equalities ``E g = [u_past; 0]``,
         (``Yp g = y_past`` when hard) and ``Uf g = u``; its minimiser ``g*(u)`` is affine in ``u`` and the data
@@ -263,24 +264,27 @@ class DataPredictiveController(_CondensedCore):
         G_b = A_pinv - G_h @ (H @ A_pinv)
         G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
         Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
+        # g = G_h h + G_f b + G_u u with h = LYᵀ r (+ λ_y Ypᵀ y_past): G_h folded into the maps of r and y_past
         self._elim = {
-            "G_h": G_h, "G_f": G_f, "G_u": G_u, "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
-            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "LY": LY, "hard": hard,
+            "G_r": G_h @ LY.T, "G_y": None if hard else G_h @ (self._lam_y * self._Yp.T), "G_f": G_f, "G_u": G_u,
+            "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
+            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "hard": hard,
         }
         P = 2.0 * G_u.T @ H @ G_u
         self._elim["P"] = 0.5 * (P + P.T)
         rows = self._box_rows(sp.eye(Nm, format="csr"))
-        return _FastQP(sp.csc_matrix(0.5 * (P + P.T)), sp.vstack(rows, format="csc"), Nm)
+        if dense_solver_available() and _positive_definite(self._elim["P"]):  # exact, warm started
+            return _DenseQP(self._elim["P"], sp.vstack(rows[1:], format="csr").toarray() if len(rows) > 1 else None,
+                            Nm)
+        return _FastQP(sp.csc_matrix(self._elim["P"]), sp.vstack(rows, format="csc"), Nm)
 
     def _solve_fast_eliminated(self, offsets, lb, ub):
         eq, yp, rw = offsets
         e = self._elim
         bf = np.concatenate([eq, yp]) if e["hard"] else eq
         q = e["Q_r"] @ rw + e["Q_f"] @ bf
-        h = e["LY"].T @ rw
         if not e["hard"]:
-            q = q + e["Q_y"] @ yp
-            h = h + self._lam_y * self._Yp.T @ yp
+            q += e["Q_y"] @ yp
         lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
         if self._slew_rows is not None:
             lo.append(-self._slew_rows[1])
@@ -288,11 +292,14 @@ class DataPredictiveController(_CondensedCore):
         u, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
         if u is None:
             return None, None, status, reason
-        g = e["G_h"] @ h + e["G_f"] @ bf + e["G_u"] @ u
+        g = e["G_r"] @ rw + e["G_f"] @ bf + e["G_u"] @ u
+        if not e["hard"]:
+            g += e["G_y"] @ yp
         return u, g, status, ""
 
     def _fast_deepc(self, N, m):
-        """OSQP over ``z = [g; s]`` with ``u = Uf g`` substituted."""
+        """The QP over ``z = [g; s]`` with ``u = Uf g`` substituted: dense and warm started where it applies (the
+        soft output bounds held hard when that is their optimum, :class:`~.fastqp._DenseSoftQP`), else OSQP."""
         r, nb = self._Up.shape[1], self._idx_b.size
         H, LY = self._deepc_hessian()
         self._LY = LY
@@ -307,7 +314,11 @@ class DataPredictiveController(_CondensedCore):
             rows.append(sp.hstack([sp.csr_matrix(self._Yf[self._idx_lo]), self._S_lo / self._kappa]))
         if nb:
             rows.append(sp.hstack([sp.csr_matrix((nb, r)), sp.eye(nb)]))
-        return _FastQP(P, sp.vstack(rows, format="csc"), r + nb)
+        A = sp.vstack(rows, format="csc")
+        osqp = _FastQP(P, A, r + nb)
+        n_eq = self._E.shape[0] + (self._Yp.shape[0] if self._lam_y is None else 0)
+        eq = np.arange(A.shape[0]) < n_eq  # E g = [u_past; 0] (and Yp g = y_past when hard): always equal bounds
+        return _DenseSoftQP.around(osqp, P, A, r, eq_rows=eq) or osqp
 
     # ------------------------------------------------------------------------------------ per plan
     def _check_target(self, target):

@@ -1,4 +1,6 @@
-"""The fast path of every controller: one OSQP problem set up once, whose vectors alone change from plan to plan.
+"""The fast path of every controller: a QP set up once, whose vectors alone change from plan to plan (a dense
+active-set solve, warm started, where it applies: :class:`_DenseQP`, :class:`_DenseSoftQP`, :class:`_BoxQP`; else
+OSQP).
 
 ``min ½ zᵀPz + qᵀz  s.t.  l <= A z <= u`` with ``P`` and ``A`` fixed at fit; a plan updates ``q``, ``l``, ``u``
 and re-solves (warm started). The settings are tight (1e-7) so that the fast path agrees with the cvxpy problem.
@@ -13,6 +15,7 @@ from __future__ import annotations
 import contextlib
 
 import numpy as np
+import scipy.linalg as sla
 import scipy.sparse as sp
 
 __all__: list = []
@@ -80,7 +83,7 @@ _BIG = 1e30  # daqp's "no bound"
 
 
 def dense_solver_available() -> bool:
-    """Whether the dense active-set solver (``daqp``, the ``realtime`` extra) is installed."""
+    """Whether the dense active-set solver (``daqp``, a core dependency since the demo relies on it) is installed."""
     try:
         import daqp  # noqa: F401
     except ImportError:
@@ -93,7 +96,8 @@ class _DenseQP:
 
     ``min ½zᵀHz + qᵀz s.t. l <= [I; A] z <= u`` with ``H`` positive definite: the first ``n`` rows are simple
     bounds on ``z``, the others the rows of ``A``; the same layout of ``q``, ``l``, ``u`` as :class:`_FastQP`'s
-    (whose constraint matrix is ``[I; A]``), so the two are interchangeable. Active-set solutions are exact up to
+    (whose constraint matrix is ``[I; A]``), so the two are interchangeable; with ``simple=False`` every row is a
+    row of ``A`` (no simple bounds). Active-set solutions are exact up to
     rounding (no iteration tolerance), which is why plans from it agree with the cvxpy path to ~1e-9.
 
     References
@@ -104,15 +108,19 @@ class _DenseQP:
 
     label = "DAQP (dense, warm)"
 
-    def __init__(self, H, A_rows, n_vars):
+    def __init__(self, H, A_rows, n_vars, simple=True):
         import daqp
 
         self.n_vars = n_vars
         self._H = np.ascontiguousarray(H, dtype=np.float64)
         self._A = np.ascontiguousarray(A_rows if A_rows is not None else np.zeros((0, n_vars)), dtype=np.float64)
         self._daqp = daqp
-        self.n_rows = n_vars + self._A.shape[0]
+        # ``simple=False``: no simple bounds, every row is a row of ``A_rows`` (daqp counts as simple bounds the
+        # bounds beyond the rows of A)
+        n_simple = n_vars if simple else 0
+        self.n_rows = n_simple + self._A.shape[0]
         self._model = None
+        self.lam = None  # the multipliers of the last solve, one per row (upper bound active: > 0, lower: < 0)
 
     def reset(self):
         """Forget the warm start (the next solve sets the problem up afresh)."""
@@ -134,12 +142,109 @@ class _DenseQP:
                 return None, "failed", f"DAQP setup failed (exit flag {flag})"
         else:
             self._model.update(f=q, bupper=hi, blower=lo)
-        x, _fval, flag, _info = self._model.solve()
+        x, _fval, flag, info = self._model.solve()
         if flag >= 1:
+            self.lam = info.get("lam") if isinstance(info, dict) else None
             return np.asarray(x, np.float64), "optimal", ""
         self._model = None  # start the next solve afresh
         kind = "infeasible" if flag == -1 else "failed"
         return None, kind, f"DAQP returned exit flag {flag}"
+
+
+def _positive_definite(H) -> bool:
+    """Whether the symmetric ``H`` is positive definite with room to spare (no flat direction for DAQP)."""
+    ev = np.linalg.eigvalsh(0.5 * (H + H.T))
+    return bool(ev[0] > 1e-10 * max(ev[-1], 1e-300))
+
+
+class _DenseSoftQP:
+    """Soft output bounds on the dense path: the exact dense QP with them held hard, OSQP with the slack otherwise.
+
+    The OSQP problem :class:`_FastQP` solves is ``min ½xᵀPx + qₓᵀx + q_tᵀt`` over ``z = [x; t]`` (``t >= 0`` the
+    slack of the soft output rows, with costs ``q_t``), ``l <= A z <= u``. Held hard (``t = 0``), the output rows
+    leave a QP in ``x`` alone, which the dense active-set solver (:class:`_DenseQP`, warm started) solves exactly,
+    with its multipliers ``λ``. If that QP is feasible and every slack's column ``c_j`` of ``A`` prices it within
+    its cost (``Σᵢ |c_ij| |λᵢ| <= q_t,j``), then ``(x, t = 0)`` with the same ``λ`` meets the KKT conditions of the
+    problem with the slack, so it is its optimum (the problem is convex; common practice, no source: an exact
+    penalty above the multiplier leaves the constraint hard). Otherwise (a bound that cannot be held, or held at a
+    higher price than its penalty) OSQP solves the problem with the slack.
+
+    Rows whose bounds are always equal (``eq_rows``: DeePC's ``E g = [u_past; 0]``) are eliminated first,
+    ``x = A_eq⁺ b + Z w`` with ``Z`` a basis of the null space of ``A_eq``: ``P`` may be singular (DeePC's Hessian
+    with outputs of zero weight) while ``ZᵀPZ`` is positive definite, and the problem in ``w`` is smaller.
+    """
+
+    label = "DAQP (dense, warm; OSQP where an output bound takes slack)"
+
+    def __init__(self, osqp, dense, n_x, rows, out, elim):
+        self._osqp, self._dense, self._n_x, self._rows = osqp, dense, n_x, rows
+        self._out = out  # (positions among the dense rows, |A[those rows, t columns]|), or None without slack
+        self._elim = elim  # (P, A_eq⁺, Z, rows of A_eq, A_rest) or None
+        self.n_vars, self.n_rows = osqp.n_vars, osqp.n_rows
+        self.n_dense_, self.n_osqp_ = 0, 0
+
+    @classmethod
+    def around(cls, osqp, P, A, n_x, eq_rows=None):
+        """The dense path for the OSQP problem ``(P, A)`` of ``osqp`` (``x`` its first ``n_x`` variables), or
+        None when it does not apply (daqp missing, no positive definite Hessian). ``eq_rows``: a mask of the rows
+        of ``A`` whose lower and upper bounds are always equal."""
+        if not dense_solver_available():
+            return None
+        P, A = sp.csr_matrix(P), sp.csr_matrix(A)
+        H = P[:n_x, :n_x].toarray()
+        H = 0.5 * (H + H.T)
+        Ax, At = A[:, :n_x].toarray(), np.abs(A[:, n_x:].toarray())
+        eq = np.zeros(A.shape[0], bool) if eq_rows is None else np.asarray(eq_rows, bool)
+        # every row but the equalities and those free of x: the slack's own bounds (t >= 0), and output rows that no
+        # input moves (their slack is fixed by the data, whatever x is: they do not change the optimum in x)
+        rows = np.flatnonzero(np.any(Ax != 0, axis=1) & ~eq)
+        elim, Hr, Ar = None, H, Ax[rows]
+        if eq.any():
+            A_eq = Ax[eq]
+            Z = sla.null_space(A_eq)
+            if Z.shape[1] == 0 or np.linalg.matrix_rank(A_eq) < A_eq.shape[0]:
+                return None
+            elim = (H, np.linalg.pinv(A_eq), Z, np.flatnonzero(eq), Ar)
+            Hr, Ar = Z.T @ H @ Z, Ar @ Z
+        if not _positive_definite(Hr):
+            return None
+        n_w = Hr.shape[0]
+        simple = elim is None and rows.size >= n_w and np.array_equal(Ar[:n_w], np.eye(n_w))
+        dense = _DenseQP(Hr, Ar[n_w:] if simple else Ar, n_w, simple=simple)
+        out = np.flatnonzero(np.any(At[rows] != 0, axis=1))
+        return cls(osqp, dense, n_x, rows, None if not out.size else (out, At[rows][out]), elim)
+
+    def reset(self):
+        self._dense.reset()
+        self._osqp.reset()
+
+    def solve(self, q, l, u):
+        q, l, u = (np.asarray(v, np.float64) for v in (q, l, u))
+        n = self._n_x
+        qx, lo, hi = q[:n], l[self._rows], u[self._rows]
+        if self._elim is not None:  # x = A_eq⁺ b + Z w
+            H, pinv, Z, eq, Ar = self._elim
+            xp = pinv @ l[eq]
+            shift = Ar @ xp
+            w, status, reason = self._dense.solve(Z.T @ (H @ xp + qx), lo - shift, hi - shift)
+            x = None if w is None else xp + Z @ w
+        else:
+            x, status, reason = self._dense.solve(qx, lo, hi)
+        if x is not None and self._priced_within(q[n:]):
+            self.n_dense_ += 1
+            return np.concatenate([x, np.zeros(self.n_vars - n)]), status, reason
+        self.n_osqp_ += 1
+        return self._osqp.solve(q, l, u)
+
+    def _priced_within(self, q_t) -> bool:
+        if self._out is None:
+            return True
+        pos, C = self._out
+        lam = self._dense.lam
+        if lam is None:
+            return False
+        price = C.T @ np.abs(np.asarray(lam, np.float64)[pos])
+        return bool(np.all(price <= q_t * (1.0 - 1e-9)))
 
 
 class _BoxQP:

@@ -1,10 +1,10 @@
-"""Soft output bounds on the dense fast path (stimsteer.control.mpc.condensed._SoftBoundsFirst): the dense QP
-without the bounds is kept only where its predicted outputs stay strictly inside them, else OSQP solves the problem
-with the slack.
+"""Soft output bounds on the dense fast path (stimsteer.control.mpc.fastqp._DenseSoftQP): the dense QP with the
+output bounds held hard is kept where its multipliers price each bound within its penalty, else OSQP solves the
+problem with the slack. DeePC's g-space problem goes the same way after its equalities are eliminated.
 
 Outside check: plans equal the cvxpy problem solved by CLARABEL (an interior-point solver, another algorithm) with
-tight tolerances, to 1e-6, whether a bound binds or not (common practice, no source: a relaxation whose optimum is
-feasible for the original problem is optimal for it).
+tight tolerances, to 1e-6, whether a bound binds or not (common practice, no source: KKT conditions; an exact penalty
+above the constraint's multiplier leaves the constraint hard).
 """
 
 import numpy as np
@@ -12,17 +12,17 @@ import pytest
 
 from stimsteer.control.limits import StimLimits
 from stimsteer.control.mpc import DataPredictiveController, ModelPredictiveController
-from stimsteer.control.mpc.condensed import _SoftBoundsFirst
-from stimsteer.sysid import LsqPredictor, Session, StateSpaceModel
+from stimsteer.control.mpc.fastqp import _DenseSoftQP
+from stimsteer.sysid import HankelPredictor, LsqPredictor, Session, StateSpaceModel
 
 pytest.importorskip("daqp")
 
 TIGHT = {"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12, "tol_feas": 1e-12}
 
 
-def _limits(ymax):
+def _limits(ymax, energy_budget=None):
     return StimLimits(amplitude_min_ua=[-2.0, -2.0], amplitude_max_ua=[2.0, 2.0], slew_max_ua=[0.5, 0.5],
-                      output_max=[ymax, np.inf, np.inf])
+                      output_max=[ymax, np.inf, np.inf], energy_budget_ua2=energy_budget)
 
 
 @pytest.fixture(scope="module")
@@ -33,6 +33,13 @@ def model():
     return StateSpaceModel(A=A, B=rng.normal(size=(4, 2)), C=rng.normal(size=(3, 4)), past_steps=3)
 
 
+@pytest.fixture(scope="module")
+def session(model):
+    u = np.random.default_rng(2).uniform(-1, 1, size=(400, 2))
+    y = model.simulate(u) + 1e-3 * np.random.default_rng(3).normal(size=(400, 3))
+    return Session(u=u, y=y, sample_rate_hz=100.0)
+
+
 def _count_osqp(ctrl, monkeypatch):
     calls = []
     inner = ctrl._fast._osqp.solve
@@ -40,19 +47,24 @@ def _count_osqp(ctrl, monkeypatch):
     return calls
 
 
-@pytest.mark.parametrize("kind", ["model", "linear_maps"])
-def test_soft_bounds_plans_equal_cvxpy_whether_the_bound_binds_or_not(model, kind, monkeypatch):
-    rng = np.random.default_rng(2)
+def _controller(kind, model, session, limits, output_penalty=1e4):
     if kind == "model":
-        ctrl = ModelPredictiveController(model=model, limits=_limits(0.5), horizon_steps=8, input_weight=1e-2,
-                                         solver_options=TIGHT).fit()
-    else:
-        u = rng.uniform(-1, 1, size=(400, 2))
-        pred = LsqPredictor(past_steps=3, horizon_steps=8, alphas=(1e-8,)).fit(
-            Session(u=u, y=model.simulate(u), sample_rate_hz=100.0))
-        ctrl = DataPredictiveController(predictor=pred, limits=_limits(0.5), input_weight=1e-2,
-                                        solver_options=TIGHT).fit()
-    assert isinstance(ctrl._fast, _SoftBoundsFirst)
+        return ModelPredictiveController(model=model, limits=limits, horizon_steps=8, input_weight=1e-2,
+                                         output_penalty=output_penalty, solver_options=TIGHT).fit()
+    if kind == "linear_maps":
+        pred = LsqPredictor(past_steps=3, horizon_steps=8, alphas=(1e-8,)).fit(session)
+    else:  # DeePC on the Hankel predictor's blocks; zero weight on two outputs leaves its g-space Hessian singular
+        pred = HankelPredictor(past_steps=3, horizon_steps=8).fit(session)
+    return DataPredictiveController(predictor=pred, limits=limits, input_weight=1e-2, output_penalty=output_penalty,
+                                    output_weight=[1.0, 0.0, 0.0] if kind == "deepc" else 1.0,
+                                    solver_options=TIGHT).fit()
+
+
+@pytest.mark.parametrize("kind", ["model", "linear_maps", "deepc"])
+def test_soft_bounds_plans_equal_cvxpy_whether_the_bound_binds_or_not(model, session, kind, monkeypatch):
+    rng = np.random.default_rng(2)
+    ctrl = _controller(kind, model, session, _limits(0.5))
+    assert isinstance(ctrl._fast, _DenseSoftQP)
     calls = _count_osqp(ctrl, monkeypatch)
     seen = {True: 0, False: 0}
     for i in range(16):
@@ -61,30 +73,39 @@ def test_soft_bounds_plans_equal_cvxpy_whether_the_bound_binds_or_not(model, kin
         n_before = len(calls)
         a = ctrl.plan(u, y, target=target, use_fast_path=True)
         b = ctrl.plan(u, y, target=target, use_fast_path=False)
-        assert a.ok and b.ok
+        assert a.ok and b.ok and a.solver.startswith("DAQP")
         np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-6)
-        binds = bool(np.any(b.active_limits["output_bounds"]))
-        seen[binds] += 1
-        # binding: the dense answer crossed the bound and OSQP solved with the slack; else the dense answer is kept
-        assert (len(calls) > n_before) == binds
+        seen[bool(np.any(b.active_limits["output_bounds"]))] += 1
+        if np.max(b.output_slack) <= 1e-6:  # no slack at the optimum: the dense answer, bounds held hard
+            assert len(calls) == n_before
     assert seen[True] >= 3 and seen[False] >= 3
 
 
-def test_the_dense_answer_is_refused_when_it_touches_the_bound(model, monkeypatch):
-    # a target exactly at the bound would leave the dense answer on it: OSQP decides (strict inequality)
-    ctrl = ModelPredictiveController(model=model, limits=_limits(0.5), horizon_steps=8, input_weight=1e-2).fit()
+def test_a_bound_priced_above_its_penalty_goes_to_osqp(model, session, monkeypatch):
+    # with a small penalty the optimum takes slack: the dense answer with the bound held hard is not it
+    ctrl = _controller("model", model, session, _limits(0.5), output_penalty=1e-3)
     calls = _count_osqp(ctrl, monkeypatch)
-    plan = ctrl.plan(np.zeros((3, 2)), np.zeros((3, 3)), target=[5.0, 0.0, 0.0])
-    assert plan.ok and len(calls) == 1
-    assert np.all(plan.predicted_outputs[:, 0] <= 0.5 + 1e-3)  # soft, with a large penalty: (nearly) held
+    a = ctrl.plan(np.zeros((3, 2)), np.zeros((3, 3)), target=[5.0, 0.0, 0.0], use_fast_path=True)
+    b = ctrl.plan(np.zeros((3, 2)), np.zeros((3, 3)), target=[5.0, 0.0, 0.0], use_fast_path=False)
+    assert a.ok and len(calls) == 1
+    assert np.max(a.predicted_outputs[:, 0]) > 0.5 + 1e-3  # the slack is used
+    np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-5)
 
 
-def test_with_an_energy_budget_the_soft_bounds_stay_with_osqp(model):
-    # the budget's binding test is a threshold on the fast answer: answers equal to rounding must not take
-    # different paths, so the OSQP problem with the slack is kept as it was
-    from stimsteer.control.mpc.fastqp import _FastQP
-
-    lim = StimLimits(amplitude_min_ua=[-2.0, -2.0], amplitude_max_ua=[2.0, 2.0], slew_max_ua=[0.5, 0.5],
-                     output_max=[0.5, np.inf, np.inf], energy_budget_ua2=10.0)
-    ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=8, input_weight=1e-2).fit()
-    assert type(ctrl._fast) is _FastQP
+@pytest.mark.parametrize("kind, budget", [("model", 0.6), ("deepc", 0.06)])  # binding on some of the plans
+def test_with_an_energy_budget_the_dense_answer_is_kept_only_where_the_budget_does_not_bind(model, session, kind,
+                                                                                            budget):
+    ctrl = _controller(kind, model, session, _limits(0.5, energy_budget=budget))
+    assert isinstance(ctrl._fast, _DenseSoftQP)
+    rng = np.random.default_rng(5)
+    paths = set()
+    for i in range(10):
+        u, y = rng.uniform(-0.05, 0.05, size=(8, 2)), rng.normal(size=(3, 3)) * 0.1
+        target = np.array([3.0 if i % 2 else 0.05, 0.0, 0.0])
+        a = ctrl.plan(u, y, target=target, use_fast_path=True)
+        b = ctrl.plan(u, y, target=target, use_fast_path=False)
+        assert a.ok and b.ok
+        paths.add("cvxpy" in a.solver)
+        np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-5)
+        assert a.energy_window_max_ua2 <= budget * (1 + 1e-9)
+    assert paths == {True, False}  # both: the budget binds on some plans and not on others
