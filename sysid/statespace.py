@@ -355,6 +355,26 @@ class StateSpaceModel:
         x0 = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
         return M @ x0 + x_driven
 
+    def _state_map(self, n_past):
+        """The matrix of :meth:`estimate_state` on windows of ``n_past`` samples, shape (n, n_past·(m + p)).
+
+        The estimate is linear in ``[vec(u_past); vec(y_past)]``: the predictor is run on every unit window at once
+        (one column each) and the least-squares fit to the innovations is solved for all columns together, where
+        calling :meth:`estimate_state` on each unit window repeated the data-free basis and its factorisation.
+        """
+        m, p, n = self.n_inputs, self.n_outputs, self.n_states
+        Phi, _, M, _ = self._innovation_terms(np.zeros((n_past, m)), np.zeros((n_past, p)))
+        basis = np.eye(n_past * (m + p))
+        U, Y = basis[:n_past * m].reshape(n_past, m, -1), basis[n_past * m:].reshape(n_past, p, -1)
+        Ak, Bk = self.A - self.K @ self.C, self.B - self.K @ self.D
+        x = np.zeros((n, basis.shape[0]))
+        resid = np.empty_like(Y)
+        for t in range(n_past):
+            resid[t] = Y[t] - (self.C @ x + self.D @ U[t])
+            x = Ak @ x + Bk @ U[t] + self.K @ Y[t]
+        x0 = np.linalg.lstsq(Phi.reshape(-1, n), resid.reshape(n_past * p, -1), rcond=None)[0]
+        return M @ x0 + x
+
     def predict(self, u_past, y_past, u_future) -> np.ndarray:
         """Predict outputs over ``u_future`` from a measured past window (the predictor protocol).
 
@@ -392,9 +412,7 @@ class StateSpaceModel:
             obs[k] = self.C @ M
             M = self.A @ M
         obs = obs.reshape(-1, n)
-        basis = np.eye(n_past * (m + p))
-        X = np.column_stack([self.estimate_state(e[:n_past * m].reshape(n_past, m), e[n_past * m:].reshape(n_past, p))
-                             for e in basis]) if n else np.zeros((0, basis.shape[0]))
+        X = self._state_map(n_past) if n and n_past else np.zeros((n, n_past * (m + p)))
         F = markov_toeplitz(self.impulse_response(max(n_future, 1)), n_future)
         return PredictionMaps(P=obs @ X, F=F, c=np.zeros(n_future * p), past_steps=n_past, horizon_steps=n_future)
 

@@ -253,6 +253,19 @@ def test_prediction_maps_reproduce_predict_and_the_model_is_a_predictor(rng):
     np.testing.assert_allclose(maps.apply(up, yp, uf), model.predict(up, yp, uf), rtol=1e-12, atol=1e-12)
 
 
+@pytest.mark.parametrize("n, m, p, past", [(6, 3, 8, 5), (6, 2, 1, 2)])  # the second: too short to observe
+def test_prediction_maps_equal_predict_on_many_windows_also_where_the_state_is_not_identifiable(rng, n, m, p, past):
+    """The maps' state estimate (all unit windows solved at once) is :meth:`estimate_state`, minimum-norm included."""
+    A = rng.standard_normal((n, n))
+    A *= 0.9 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.standard_normal((n, m)), C=rng.standard_normal((p, n)),
+                            D=0.1 * rng.standard_normal((p, m)), K=0.2 * rng.standard_normal((n, p)))
+    maps = model.prediction_maps(past, 7)
+    for _ in range(5):
+        up, yp, uf = rng.standard_normal((past, m)), rng.standard_normal((past, p)), rng.standard_normal((7, m))
+        np.testing.assert_allclose(maps.apply(up, yp, uf), model.predict(up, yp, uf), rtol=1e-10, atol=1e-10)
+
+
 def test_markov_toeplitz_is_the_response_from_rest(rng):
     from stimsteer.sysid.statespace import markov_toeplitz
 
