@@ -29,10 +29,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import signal
 
 from .exceptions import SessionError
 from .session import Session
+from ._lazy import lazy_module
+
+signal = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["PHASES", "band_power_envelope", "binned_spike_rate", "remove_line_noise", "add_band_power_outputs",
            "envelope_filters"]

@@ -39,9 +39,11 @@ from dataclasses import dataclass, field
 from fractions import Fraction
 
 import numpy as np
-from scipy import signal
 
 from .exceptions import SessionError
+from ._lazy import lazy_module
+
+signal = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["PULSE_MAPPING", "TrialWindows", "trials_from_events", "select_events", "trigger_times",
            "encode_pulses", "pulse_train_onsets", "ClockAlignment", "align_channel", "ANTI_ALIASING"]

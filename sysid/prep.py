@@ -13,12 +13,14 @@ import warnings
 from fractions import Fraction
 
 import numpy as np
-from scipy import signal
 
 from ._base import BaseEstimator, check_fitted
 from .exceptions import SessionError, StimsteerWarning
 from .session import Session
 from .artifacts import blank_artifacts  # blanking lives with the other artifact tools; re-exported here
+from ._lazy import lazy_module
+
+signal = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["detrend", "filter_session", "resample_session", "SessionScaler", "blank_artifacts", "BLANK_INFLUENCE_TOLERANCE"]
 

@@ -9,9 +9,11 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from .exceptions import SessionError
+from ._lazy import lazy_module
+
+stats = lazy_module("scipy.stats")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["LjungBox", "ljung_box", "CrossCorrelation", "input_residual_xcorr"]
 

@@ -14,11 +14,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.signal as ssig
 
 from .exceptions import InvalidParameterError
 from .excitation import DEFAULT_TOL_FACTOR, rank_tolerance
 from .hankel import hankel_column_count, row_space_factor
+from ._lazy import lazy_module
+
+ssig = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["ExcitationCheck", "verify_excitation", "max_length_sequence", "multisine", "crest_factor",
            "MAX_MLS_BITS"]

@@ -13,7 +13,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import stats
+
+from ...sysid._lazy import lazy_module
+
+stats = lazy_module("scipy.stats")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["t_interval", "paired_verdict", "ABSOLUTE_MARGIN", "RELATIVE_MARGIN", "MIN_SPLITS_TO_TELL",
            "practical_margin", "reading_verdict"]

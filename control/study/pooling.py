@@ -23,9 +23,11 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from ...sysid import InvalidParameterError
+from ...sysid._lazy import lazy_module
+
+stats = lazy_module("scipy.stats")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["RandomEffects", "random_effects", "margin_verdict", "kendall_w"]
 

@@ -6,10 +6,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.signal as ssig
 
 from ..exceptions import SessionError
 from .systems import _as_model, _check_horizon, _frozen
+from .._lazy import lazy_module
+
+ssig = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
 __all__ = ["impulse_responses", "controlled_response", "ControlledResponse", "mode_times", "ModeTimes",
            "SETTLE_FRACTION", "IMPULSE_CAP_STEPS", "SLOW_MODE_MAGNITUDE"]

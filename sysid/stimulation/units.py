@@ -14,14 +14,15 @@ from __future__ import annotations
 
 import math
 
-import pint
-
 from ..exceptions import SessionError
+from .._lazy import LazyInstance, lazy_module
+
+pint = lazy_module("pint")  # pint and its registry are made at the first unit read (sysid/_lazy.py)
 
 __all__ = ["UREG", "convert", "parse_quantity", "key_unit", "unit_of", "MODEL_UNITS"]
 
-#: The one unit registry of stimsteer (pint); µ is accepted for micro.
-UREG = pint.UnitRegistry()
+#: The one unit registry of stimsteer (pint), built at its first use; µ is accepted for micro.
+UREG = LazyInstance(lambda: pint.UnitRegistry())
 
 #: The unit each kind of quantity is handled in internally (and the dimension it must have).
 MODEL_UNITS = {
