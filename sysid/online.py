@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import numpy as np
 import scipy.linalg as sla
-from sklearn.base import clone
 
 from ._base import check_fitted
 from .arx_statespace import arx_to_state_space
@@ -446,6 +445,7 @@ class ScheduledRefit:
         self.n_trials_ += 1
         if self.n_trials_ % self.every_trials:
             return False
+        from sklearn.base import clone  # scikit-learn takes about 1.3 s to import: only here
         self.estimator_ = clone(self.estimator).fit(self.session())
         self.n_refits_ += 1
         return True

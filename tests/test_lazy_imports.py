@@ -9,9 +9,9 @@ import numpy as np
 from stimsteer.sysid._lazy import LazyInstance, lazy_module
 
 
-def test_the_command_line_starts_without_scipy_signal_and_without_pint():
+def test_the_command_line_starts_without_scipy_signal_pint_cvxpy_or_scikit_learn():
     code = ("import sys, stimsteer.control.cli\n"
-            "print(sorted(m for m in ('scipy.signal', 'pint') if m in sys.modules))")
+            "print(sorted(m for m in ('scipy.signal', 'pint', 'cvxpy', 'sklearn') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, check=True)
     assert out.stdout.strip() == "[]"
 

@@ -38,11 +38,13 @@ in any unit of ``u``, since ``a`` and ``b`` carry the unit.
 
 from __future__ import annotations
 
-import cvxpy as cp
 import numpy as np
 
 from ...sysid import SessionError
 from .._energy_windows import check_window
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__: list = []
 

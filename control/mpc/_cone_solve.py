@@ -12,9 +12,11 @@ from __future__ import annotations
 
 import warnings
 
-import cvxpy as cp
 
 from ...sysid._threads import serial_clarabel
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__: list = []
 

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import time
 
-import cvxpy as cp
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
@@ -37,10 +36,13 @@ from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget, blend_all
 from ._cone_solve import solve_compiled
 from .plan import Plan, _ro
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__: list = []
 
-_ACCEPT = {cp.OPTIMAL: "optimal", cp.OPTIMAL_INACCURATE: "optimal_inaccurate"}
+_ACCEPT = {"optimal": "optimal", "optimal_inaccurate": "optimal_inaccurate"}  # cvxpy.OPTIMAL, OPTIMAL_INACCURATE
 # An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
 _ACCEPT_RTOL = 1e-5
 _ZERO_RTOL = 1e-6  # under window budgets or train limits, |u| at most this fraction of its bound is residue: 0

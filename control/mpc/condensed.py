@@ -13,13 +13,15 @@ OSQP problem of the fast path.
 
 from __future__ import annotations
 
-import cvxpy as cp
 import numpy as np
 import scipy.sparse as sp
 
 from ...sysid import markov_toeplitz
 from ._core import _PredictiveController
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__ = ["condensed_prediction"]
 

@@ -19,11 +19,9 @@ from __future__ import annotations
 
 from dataclasses import replace as _replace
 
-import cvxpy as cp
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
-from sklearn.base import clone
 
 from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, NotFittedError, check_fitted
 from ...sysid.protocols import past_vector
@@ -31,6 +29,9 @@ from ._core import _horizon, _output_target, _sqrt_weight
 from .condensed import _CondensedCore
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
 from .plan import Plan, _ro
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__ = ["DataPredictiveController"]
 
@@ -145,6 +146,7 @@ class DataPredictiveController(_CondensedCore):
                 raise NotFittedError(f"the {type(pred).__name__} is not fitted (or its settings changed after it was);"
                                      " fit it first or pass a session to DataPredictiveController.fit(session)."
                                      ) from None
+            from sklearn.base import clone  # scikit-learn takes about 1.3 s to import: only here
             return clone(pred).fit(session)
         return pred
 

@@ -12,7 +12,6 @@ Rawlings J.B., Mayne D.Q., Diehl M.M. (2017), Model Predictive Control: Theory, 
 
 from __future__ import annotations
 
-import cvxpy as cp
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
@@ -21,6 +20,9 @@ from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._core import _clip_psd, _horizon, _output_target, _sqrt_weight
 from .condensed import _CondensedCore, _LinearStateMap, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__ = ["ModelPredictiveController", "SteadyState"]
 

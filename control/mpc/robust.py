@@ -31,7 +31,6 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-import cvxpy as cp
 import numpy as np
 import scipy.linalg as sla
 
@@ -40,6 +39,9 @@ from ...sysid.protocols import past_vector
 from ._core import _horizon, _output_target, _PredictiveController, _sqrt_weight
 from .condensed import _COST_SCALE_FREE
 from .plan import _ro
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__ = ["RobustPlanner"]
 
