@@ -215,10 +215,11 @@ class RidgeArx(BasePredictor):
         prob = self._validated(session, structure)
         folds, total, k, scheme, shift = self._accumulate(session, prob)
         self._check_rows(prob, total.n)
-        table = self._cross_validate(prob, folds, total, alphas, k)
+        kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
+        table = self._cross_validate(prob, folds, total, alphas, k, kept)
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
             if table["mean_error"].notna().any() else float(alphas[0])
-        self._finish(session, prob, total, best, table, k, scheme, shift)
+        self._finish(session, prob, total, best, table, k, scheme, shift, kept)
         if structures is None:
             structures = structure_table([(*structure, prob.x_idx.size, table)])
         self.structure_table_ = structures
@@ -268,12 +269,11 @@ class RidgeArx(BasePredictor):
                 "lags, or more (or longer) trials."
             )
 
-    def _cross_validate(self, prob, folds, total, alphas, k) -> pd.DataFrame:
-        return cv_table(cv_errors([prob], folds, total, alphas)[0], alphas, k)
+    def _cross_validate(self, prob, folds, total, alphas, k, kept=None) -> pd.DataFrame:
+        return cv_table(cv_errors([prob], folds, total, alphas, kept)[0], alphas, k)
 
-
-    def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
-        coef, scale, cond, mu, resid = final_fit(prob, total, alpha)
+    def _finish(self, session, prob, total, alpha, table, k, scheme, shift, kept=None):
+        coef, scale, cond, mu, resid = final_fit(prob, total, alpha, kept)
         if not cond <= CONDITION_WARN_LIMIT:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="

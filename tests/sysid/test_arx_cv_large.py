@@ -134,10 +134,11 @@ def test_condition_number_from_two_lanczos_runs_equals_all_eigenvalues():
         assert got == pytest.approx((lam.max() + alpha) / (max(lam.min(), 0) + alpha), rel=1e-9)
 
 
-def test_large_cross_validation_holds_one_gram_and_the_worker_buffers(monkeypatch):
-    # The earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
-    # (5.2 Grams at peak here, measured with tracemalloc on the code before this change; this route 3.3 with two
-    # workers: one Gram, a core-sized buffer per worker and the lag sums).
+def test_large_cross_validation_holds_two_grams_and_the_worker_buffers(monkeypatch):
+    # An earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
+    # (5.2 Grams at peak here, measured with tracemalloc); the route of issue 14's first pass 3.3 with two workers
+    # (one fold's Gram, a core-sized buffer per worker), at two Gram assemblies per fold. This route keeps the total
+    # Gram as well (4.3 measured), and assembles one Gram per fold instead of two.
     est = RidgeArx(output_lags=100, input_lags=100, delay_samples="auto", delay_grid=(0, 1))
     session = _session(T=8000)
     candidates, _ = structure_candidates(est)
@@ -156,4 +157,18 @@ def test_large_cross_validation_holds_one_gram_and_the_worker_buffers(monkeypatc
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert peak <= (1 + workers + 0.5) * gram
+    assert peak <= (2 + workers + 0.5) * gram
+
+
+def test_a_large_fit_assembles_the_total_gram_once_and_one_gram_per_fold(monkeypatch):
+    # issue 14: the fold's held-out moments are the total's minus its training moments, and the final fit takes the
+    # total Gram the cross-validation assembled (before: two Grams per fold, and the total again for the final fit)
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)
+    calls = []
+    for module in (arx_cv, arx_regression):
+        real = module._lagged_gram
+        monkeypatch.setattr(module, "_lagged_gram", lambda *a, real=real: calls.append(1) or real(*a))
+    est = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, n_folds=3).fit(session)
+    assert est.n_folds_ == 3 and len(calls) == 1 + 3
