@@ -211,12 +211,20 @@ class RidgeArx(BasePredictor):
         """
         candidates, grids = structure_candidates(self)
         alphas = _check_alphas(self.alphas)
-        structure, structures = select_structure(self, session, candidates, alphas)
+        search: dict = {}
+        structure, structures = select_structure(self, session, candidates, alphas, search)
         prob = self._validated(session, structure)
-        folds, total, k, scheme, shift = self._accumulate(session, prob)
-        self._check_rows(prob, total.n)
         kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
-        table = self._cross_validate(prob, folds, total, alphas, k, kept)
+        if search.get("n_lags") == prob.L and prob.size > _SMALL_GRAM and structure in search["tables"]:
+            # large Grams: the structure's own rows are the search's, whose moments and scores it reuses
+            folds, total, k, scheme, shift = search["moments"]
+            self._check_rows(prob, total.n)
+            table = search["tables"][structure]
+        else:
+            folds, total, k, scheme, shift = self._accumulate(session, prob)
+            self._check_rows(prob, total.n)
+            table = self._cross_validate(prob, folds, total, alphas, k, kept)
+        del search
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
             if table["mean_error"].notna().any() else float(alphas[0])
         self._finish(session, prob, total, best, table, k, scheme, shift, kept)

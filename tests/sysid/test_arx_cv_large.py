@@ -172,3 +172,21 @@ def test_a_large_fit_assembles_the_total_gram_once_and_one_gram_per_fold(monkeyp
         monkeypatch.setattr(module, "_lagged_gram", lambda *a, real=real: calls.append(1) or real(*a))
     est = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, n_folds=3).fit(session)
     assert est.n_folds_ == 3 and len(calls) == 1 + 3
+
+
+def test_a_chosen_structure_on_the_search_rows_reuses_its_moments_and_scores(monkeypatch):
+    # issue 14: a structure whose longest lag is the grid's has the search's rows, so its own pass and cross-validation
+    # would repeat the search's on the same moments; the reference fixes that structure (no search: one pass, its own
+    # cross-validation, the route of before)
+    session = _session(seed=4)  # true delay 2: the longest candidate below
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    fixed = RidgeArx(output_lags=1, input_lags=2, delay_samples=2).fit(session)
+    passes = []
+    real = RidgeArx._accumulate
+    monkeypatch.setattr(RidgeArx, "_accumulate", lambda self, *a: passes.append(1) or real(self, *a))
+    auto = RidgeArx(output_lags=1, input_lags=2, delay_samples="auto", delay_grid=(0, 1, 2)).fit(session)
+    assert (auto.output_lags_, auto.input_lags_, auto.delay_samples_) == (1, 2, 2) and len(passes) == 1
+    assert auto.alpha_ == fixed.alpha_
+    np.testing.assert_allclose(auto.cv_table_.to_numpy(), fixed.cv_table_.to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(auto.coef_, fixed.coef_, rtol=1e-12)
+    np.testing.assert_allclose(auto.intercept_, fixed.intercept_, rtol=1e-12, atol=1e-14)
