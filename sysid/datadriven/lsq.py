@@ -3,10 +3,11 @@
 Choosing the ridge strength on the Gram route scores every strength of the grid on each held-out fold. Below
 :data:`_CHOLESKY_FROM` regressors that takes one eigendecomposition of the training ``G11`` per fold
 (:func:`~stimsteer.sysid.datadriven.gram.ridge_grid_errors`, as before, bit for bit). From it on, one Cholesky factor
-per strength (:func:`_cholesky_grid_errors`): the eigendecomposition's tridiagonal reduction is bound by memory
-traffic (one core, 5–6.6 s at the 2,450 regressors of past 100 / horizon 50 on the development machine), while a
-factor and its three triangular products (``d³/3 + 3 d² k`` flops, ``k`` predicted values) run at the BLAS's
-compute speed, the strengths side by side on worker threads with one BLAS thread each.
+per strength (:func:`_cholesky_grid_errors`), when two or more worker threads are available: the
+eigendecomposition's tridiagonal reduction is bound by memory traffic and runs on one core (5–6.6 s at the 2,450
+regressors of past 100 / horizon 50 on the development machine), while the nine factors and their three
+triangular products each (``d³/3 + 3 d² k`` flops, ``k`` predicted values) cost about the same CPU time but run
+side by side on worker threads with one BLAS thread each.
 """
 
 from __future__ import annotations
@@ -28,8 +29,11 @@ __all__ = ["LsqPredictor"]
 
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
 #: From this many regressors on, the strength grid is scored by one Cholesky factor per strength (below it by one
-#: eigendecomposition per fold, the numbers of before bit for bit).
+#: eigendecomposition per fold, the numbers of before bit for bit) ...
 _CHOLESKY_FROM = 512
+#: ... when at least this many worker threads are available: on one thread the two routes cost about the same CPU
+#: time (7.1–7.8 s per fold at past 100 / horizon 50, measured under load), the factors gain by running side by side.
+_CHOLESKY_WORKERS = 2
 
 
 # ------------------------------------------------------------------------------------------------ ridge grid
@@ -177,7 +181,8 @@ class LsqPredictor(_DirectPredictor):
     ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows. On the Gram route
     (``factor_route_ == "gram"``) it is ``G21 (G11 + alpha·s I)⁻¹`` from the Gram ``G`` of ``[D; Yf]``, made from
     streamed lag products of the raw samples (:mod:`stimsteer.sysid.datadriven.gram`), and every strength of a fold
-    is scored from one eigendecomposition of the training ``G11``. Where the Gram is ill-conditioned (QR route) it
+    is scored from one eigendecomposition of the training ``G11`` (from 512 regressors on, with two or more BLAS
+    threads: one Cholesky factor per strength, side by side on worker threads; module docstring). Where the Gram is ill-conditioned (QR route) it
     is computed from the streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
     ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is
     ``||F2,val − Θ F1,val||_F²`` either way. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
@@ -251,8 +256,8 @@ class LsqPredictor(_DirectPredictor):
 
         def score(train, val, w):
             if gram_route:  # one Cholesky factor per strength (large), or one eigendecomposition per fold
-                found = _cholesky_grid_errors(train, val, n_b, alphas, w, n_workers) if n_b >= _CHOLESKY_FROM \
-                    else None
+                found = _cholesky_grid_errors(train, val, n_b, alphas, w, n_workers) \
+                    if n_b >= _CHOLESKY_FROM and n_workers >= _CHOLESKY_WORKERS else None
                 return ridge_grid_errors(train, val, n_b, alphas, w) if found is None else found
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
