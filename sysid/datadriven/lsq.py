@@ -1,117 +1,21 @@
 """Subspace predictive control's least-squares predictor fitted from Hankel matrices (:class:`LsqPredictor`).
-
-Choosing the ridge strength on the Gram route scores every strength of the grid on each held-out fold. Below
-:data:`_CHOLESKY_FROM` regressors that takes one eigendecomposition of the training ``G11`` per fold
-(:func:`~stimsteer.sysid.datadriven.gram.ridge_grid_errors`, as before, bit for bit). From it on, one Cholesky factor
-per strength (:func:`_cholesky_grid_errors`), when two or more worker threads are available: the
-eigendecomposition's tridiagonal reduction is bound by memory traffic and runs on one core (5–6.6 s at the 2,450
-regressors of past 100 / horizon 50 on the development machine), while the nine factors and their three
-triangular products each (``d³/3 + 3 d² k`` flops, ``k`` predicted values) cost about the same CPU time but run
-side by side on worker threads with one BLAS thread each.
 """
 
 from __future__ import annotations
-
-import queue
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import scipy.linalg as sla
 
 from .._base import check_fitted
 from ..protocols import PredictionMaps
-from .._lagged import _single_threaded_blas
+from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
-from .gram import release_freed_memory, ridge_grid_errors, ridge_map
+from .gram import ridge_grid_errors, ridge_map
 
 __all__ = ["LsqPredictor"]
 
 
 _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
-#: From this many regressors on, the strength grid is scored by one Cholesky factor per strength (below it by one
-#: eigendecomposition per fold, the numbers of before bit for bit) ...
-_CHOLESKY_FROM = 512
-#: ... when at least this many worker threads are available: on one thread the two routes cost about the same CPU
-#: time (7.1–7.8 s per fold at past 100 / horizon 50, measured under load), the factors gain by running side by side.
-_CHOLESKY_WORKERS = 2
-
-
-# ------------------------------------------------------------------------------------------------ ridge grid
-def _fold_blocks(train, val, n_b: int, weights):
-    """What :func:`_cholesky_grid_errors` needs of one fold, or None when the validation ``G11`` has no factor.
-
-    ``P`` (Fortran order) holds the training ``G11`` in its lower triangle and diagonal and the validation factor as
-    ``Fᵀ diag(f)⁻¹`` in its strict upper triangle (``G11 = F Fᵀ``, ``f`` its diagonal): the strengths' factors read
-    only the lower triangle, and ``Fᵀ X = (U + I)(f ∘ X)`` is one unit-triangular product with the upper one. Memory:
-    ``P``, ``G12 Ω`` of both Grams and, while it is assembled, one Gram (freed pages handed back before each).
-    """
-    release_freed_memory()
-    Gv = val.gram
-    c0 = float(np.sum(weights ** 2 * np.diagonal(Gv)[n_b:]))
-    C = np.asfortranarray(Gv[:n_b, n_b:] * weights[None, :])  # G12 Ω of the validation Gram
-    P, info = sla.lapack.dpotrf(np.array(Gv[:n_b, :n_b]).T, lower=1, clean=0, overwrite_a=1)
-    del Gv
-    if info != 0:
-        return None
-    f = np.diagonal(P).copy()
-    for j0 in range(0, n_b, 256):  # strict upper ← (F / f)ᵀ, in column blocks (reads the strict lower only)
-        j1 = min(n_b, j0 + 256)
-        np.copyto(P[:j1, j0:j1], (P[j0:j1, :j1] / f[j0:j1, None]).T,
-                  where=np.arange(j1)[:, None] < np.arange(j0, j1)[None, :])
-    release_freed_memory()
-    Gt = train.gram
-    scale = float(np.trace(Gt)) / Gt.shape[0]
-    for i0 in range(0, n_b, 256):  # lower triangle and diagonal ← the training G11
-        i1 = min(n_b, i0 + 256)
-        np.copyto(P[i0:i1, :i1], Gt[i0:i1, :i1], where=np.arange(i0, i1)[:, None] >= np.arange(i1)[None, :])
-    B = np.asfortranarray(Gt[:n_b, n_b:] * weights[None, :])  # G12 Ω of the training Gram
-    del Gt
-    release_freed_memory()
-    return P, f, B, C, c0, scale
-
-
-def _cholesky_grid_errors(train, val, n_b: int, alphas, weights, n_workers: int = 1):
-    """Weighted held-out squared errors of ``Θ(s) = G21 (G11 + s I)⁻¹`` (training Grams) for every strength, by one
-    Cholesky factor per strength; None where a factor does not exist (the caller takes the eigen route then).
-
-    ``s = alpha · tr(G) / n_rows`` as in :func:`~stimsteer.sysid.datadriven.gram.ridge_grid_errors`. With
-    ``X = (G11 + s I)⁻¹ G12 Ω`` (two triangular solves) and the validation ``G11 = F Fᵀ`` (Cholesky), the error
-    ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` is ``tr(Ω² G22) − 2 ⟨X, G12 Ω⟩ + ||Fᵀ X||²`` (validation Grams). Each
-    strength is computed on one worker thread exactly as on one thread, and the errors are taken in strength order,
-    so the numbers do not depend on ``n_workers``. Memory: :func:`_fold_blocks`, and per worker one ``G11``-sized
-    factor and one ``X``.
-    """
-    blocks = _fold_blocks(train, val, n_b, weights)
-    if blocks is None:
-        return None
-    G11, f, B, C, c0, scale = blocks
-    trsm, trmm = sla.get_blas_funcs(("trsm", "trmm"), (G11,))
-    pool_size = max(1, min(n_workers, len(alphas)))
-    buffers: queue.SimpleQueue = queue.SimpleQueue()
-    for _ in range(pool_size):
-        buffers.put((np.empty((n_b, n_b), order="F"), np.empty(B.shape, order="F")))
-
-    def one(alpha):
-        K, X = buffers.get()
-        try:
-            np.copyto(K, G11)
-            K[np.diag_indices_from(K)] += alpha * scale
-            L, fail = sla.lapack.dpotrf(K, lower=1, clean=0, overwrite_a=1)
-            if fail != 0:
-                return None
-            np.copyto(X, B)
-            trsm(1.0, L, X, lower=1, overwrite_b=1)
-            trsm(1.0, L, X, lower=1, trans_a=1, overwrite_b=1)  # X = (G11 + s I)⁻¹ G12 Ω
-            cross = float(np.einsum("ij,ij->", X, C))
-            X *= f[:, None]
-            trmm(1.0, G11, X, lower=0, diag=1, overwrite_b=1)  # Fᵀ X
-            return c0 - 2.0 * cross + float(np.einsum("ij,ij->", X, X))
-        finally:
-            buffers.put((K, X))
-
-    with ThreadPoolExecutor(max_workers=pool_size, thread_name_prefix="stimsteer-lsq-cv") as pool:
-        found = list(pool.map(one, alphas))
-    return None if any(e is None for e in found) else np.asarray(found)
 
 
 # ------------------------------------------------------------------------------------------------ LSQ
@@ -181,8 +85,7 @@ class LsqPredictor(_DirectPredictor):
     ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows. On the Gram route
     (``factor_route_ == "gram"``) it is ``G21 (G11 + alpha·s I)⁻¹`` from the Gram ``G`` of ``[D; Yf]``, made from
     streamed lag products of the raw samples (:mod:`stimsteer.sysid.datadriven.gram`), and every strength of a fold
-    is scored from one eigendecomposition of the training ``G11`` (from 512 regressors on, with two or more BLAS
-    threads: one Cholesky factor per strength, side by side on worker threads; module docstring). Where the Gram is ill-conditioned (QR route) it
+    is scored from one eigendecomposition of the training ``G11``. Where the Gram is ill-conditioned (QR route) it
     is computed from the streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
     ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is
     ``||F2,val − Θ F1,val||_F²`` either way. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs
@@ -220,6 +123,7 @@ class LsqPredictor(_DirectPredictor):
         self.seed = seed
         self.centre_outputs = centre_outputs
 
+    @_one_blas_thread
     def fit(self, session) -> "LsqPredictor":
         """Fit from a :class:`Session` or an opened session file.
 
@@ -241,12 +145,6 @@ class LsqPredictor(_DirectPredictor):
         ExcitationWarning
             The input excites less than ``past_steps + horizon_steps + n_states``.
         """
-        # BLAS on one thread: multi-threaded OpenBLAS stalls on a busy machine; the strength grid of large Grams
-        # runs on worker threads instead (one per BLAS thread the machine has)
-        with _single_threaded_blas() as n_workers:
-            return self._fit(session, n_workers)
-
-    def _fit(self, session, n_workers: int) -> "LsqPredictor":
         alphas = _check_strengths("alphas", self.alphas)
         folds, weights = self._gather(session, alphas.size, keep_full=False)
         m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
@@ -255,10 +153,8 @@ class LsqPredictor(_DirectPredictor):
         gram_route = self.factor_route_ == "gram"
 
         def score(train, val, w):
-            if gram_route:  # one Cholesky factor per strength (large), or one eigendecomposition per fold
-                found = _cholesky_grid_errors(train, val, n_b, alphas, w, n_workers) \
-                    if n_b >= _CHOLESKY_FROM and n_workers >= _CHOLESKY_WORKERS else None
-                return ridge_grid_errors(train, val, n_b, alphas, w) if found is None else found
+            if gram_route:  # one eigendecomposition per fold for the whole grid
+                return ridge_grid_errors(train, val, n_b, alphas, w)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
