@@ -21,7 +21,9 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    factorisations of Gram-sized matrices (Cholesky, eigendecomposition), which no exact fit of every coefficient
    avoids.
 
-Every row carries the 1-minute load average when it was printed (timings on a busy machine are slower and noisier).
+Every row carries the 1-minute load average when it was printed (timings on a busy machine are slower and noisier),
+and each fit its CPU time (all threads): on a busy machine the wall time mostly measures the others' load, while the
+CPU time still tracks the work done (it grows less, through cache and memory contention).
 
 A case that exceeds ``--timeout`` seconds is killed and printed as such (on a loaded machine, say so).
 
@@ -83,10 +85,11 @@ def child_fit(path: str, method: str, past: int, horizon: int) -> dict:
     settings = {"future_steps": horizon} if method == "subspace" else {}
     est = make_estimator(route, name, settings, past_steps=past, horizon_steps=horizon)
     rss0 = _status("VmRSS")
-    t0 = time.perf_counter()
+    c0, t0 = time.process_time(), time.perf_counter()
     est.fit(session)
     seconds = time.perf_counter() - t0
-    out = {"seconds": seconds, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+    out = {"seconds": seconds, "cpu_s": time.process_time() - c0, "peak_mb": _status("VmHWM"),
+           "rise_mb": _status("VmHWM") - rss0}
     if getattr(est, "factor_route_", None):  # the direct predictors: which factor route, and the Gram's condition
         out["route"] = f"{est.factor_route_} route, Gram condition {est.gram_condition_:.3g}"
     return out
@@ -141,7 +144,8 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
         return "killed (timeout)"
     if "error" in r:
         return "error: " + r["error"][:60]
-    text = f"{r['seconds']:.2f} s, {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
+    text = f"{r['seconds']:.2f} s" + (f" (CPU {r['cpu_s']:.1f} s)" if "cpu_s" in r else "") + \
+        f", {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
     if ref and "seconds" in ref:
         text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
     if "route" in r:

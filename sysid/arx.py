@@ -211,14 +211,23 @@ class RidgeArx(BasePredictor):
         """
         candidates, grids = structure_candidates(self)
         alphas = _check_alphas(self.alphas)
-        structure, structures = select_structure(self, session, candidates, alphas)
+        search: dict = {}
+        structure, structures = select_structure(self, session, candidates, alphas, search)
         prob = self._validated(session, structure)
-        folds, total, k, scheme, shift = self._accumulate(session, prob)
-        self._check_rows(prob, total.n)
-        table = self._cross_validate(prob, folds, total, alphas, k)
+        kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
+        if search.get("n_lags") == prob.L and prob.size > _SMALL_GRAM and structure in search["tables"]:
+            # large Grams: the structure's own rows are the search's, whose moments and scores it reuses
+            folds, total, k, scheme, shift = search["moments"]
+            self._check_rows(prob, total.n)
+            table = search["tables"][structure]
+        else:
+            folds, total, k, scheme, shift = self._accumulate(session, prob)
+            self._check_rows(prob, total.n)
+            table = self._cross_validate(prob, folds, total, alphas, k, kept)
+        del search
         best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
             if table["mean_error"].notna().any() else float(alphas[0])
-        self._finish(session, prob, total, best, table, k, scheme, shift)
+        self._finish(session, prob, total, best, table, k, scheme, shift, kept)
         if structures is None:
             structures = structure_table([(*structure, prob.x_idx.size, table)])
         self.structure_table_ = structures
@@ -268,12 +277,11 @@ class RidgeArx(BasePredictor):
                 "lags, or more (or longer) trials."
             )
 
-    def _cross_validate(self, prob, folds, total, alphas, k) -> pd.DataFrame:
-        return cv_table(cv_errors([prob], folds, total, alphas)[0], alphas, k)
+    def _cross_validate(self, prob, folds, total, alphas, k, kept=None) -> pd.DataFrame:
+        return cv_table(cv_errors([prob], folds, total, alphas, kept)[0], alphas, k)
 
-
-    def _finish(self, session, prob, total, alpha, table, k, scheme, shift):
-        coef, scale, cond, mu, resid = final_fit(prob, total, alpha)
+    def _finish(self, session, prob, total, alpha, table, k, scheme, shift, kept=None):
+        coef, scale, cond, mu, resid = final_fit(prob, total, alpha, kept)
         if not cond <= CONDITION_WARN_LIMIT:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="

@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 import scipy.linalg as sla
 
-from ._lagged import _single_threaded_blas
+from ._lagged import _lagged_gram, _single_threaded_blas
 from .arx_regression import _Problem, _ridge_path, _rounding_level, centred_lead, lead_index, lead_order
 
 __all__ = ["cv_errors", "cv_table"]
@@ -166,14 +166,16 @@ def _centred_block(W, s, n, mu, xi, yi):
     return C
 
 
-def cv_errors(probs: list[_Problem], folds, total, alphas) -> list[np.ndarray]:
+def cv_errors(probs: list[_Problem], folds, total, alphas, keep: dict | None = None) -> list[np.ndarray]:
+    """Validation errors ``(n_alphas, n_folds)`` of each candidate. ``keep`` (a dict, large Grams only) receives
+    the total Gram the cross-validation assembled (``"index"``, ``"gram"``), for the final fit to reuse."""
     # factorisations of this size gain nothing from multi-threaded BLAS on a busy machine (it stalls): the
     # strengths run on worker threads instead, each with one BLAS thread
     with _single_threaded_blas() as n_workers, \
             ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
         run = _Runner(pool, n_workers)
         if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
-            return _cv_errors_large(probs, folds, total, alphas, run)
+            return _cv_errors_large(probs, folds, total, alphas, run, keep)
         return _cv_errors(probs, folds, total, alphas, run)
 
 
@@ -220,18 +222,22 @@ def _cv_errors(probs: list[_Problem], folds, total, alphas, run: _Runner) -> lis
     return errors
 
 
-def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner) -> list[np.ndarray]:
+def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, keep=None) -> list[np.ndarray]:
     """As :func:`_cv_errors`, for Grams held as lag sums (``total`` and ``folds`` with ``.sums``).
 
-    Each fold's training Gram is assembled from the other folds' sums straight into the order ``[union, targets,
-    rest]`` (regressors and targets are then views), centred and standardised in place, and freed before the
-    held-out Gram is assembled the same way: two Gram-sized arrays at most, plus one core-sized buffer per worker.
+    The total Gram is assembled once, in the order ``[union, targets, rest]``. Each fold's training Gram is
+    assembled from the other folds' sums in that order (regressors and targets are then views), centred and
+    standardised in place; the held-out moments are the total's minus the training's (:func:`_held_out`, in place
+    of the training block once its strengths are solved), so a fold costs one Gram assembly, not two. Memory: the
+    total and one fold's Gram, plus one core-sized buffer per worker.
     """
     k = len(folds)
     errors = [np.full((len(alphas), k), np.nan) for _ in probs]
     xi, n_core, extras = _union_layout(probs)
     yi, nx = probs[0].y_idx, xi.size
     index = lead_index(total.s.size, probs[0].c, np.concatenate([xi, yi]))
+    whole = _Whole(_lagged_gram(total.sums, index), lead_order(total.s, index), total.n, nx + yi.size)
+    block = yi.size * -(-len(alphas) // 2)  # two column blocks per structure (fixed: not the worker count)
     for f, held in enumerate(folds):
         n_tr = total.n - held.n
         live = [i for i, q in enumerate(probs) if held.n and n_tr > q.x_idx.size]
@@ -240,23 +246,55 @@ def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner) 
         train = reduce(lambda a, b: a.plus(b), [g.sums for j, g in enumerate(folds) if j != f])
         s_tr = lead_order(train.lagged_sums(), index)
         mu = s_tr / n_tr if probs[0].fit_intercept else np.zeros_like(s_tr)
-        betas, scale = _large_betas(train, index, nx, yi.size, n_tr, s_tr, mu, n_core, extras, live, alphas, run)
+        W, C, raw = centred_lead(train, index, nx + yi.size, n_tr, s_tr, mu)
         del train
-        s_h = lead_order(held.s, index)
-        W_h, C, raw = centred_lead(held.sums, index, nx + yi.size, held.n, s_h, mu)
-        Q, qyy = C[:nx], np.diagonal(C)[nx:].copy()
-        sst = raw[nx:] - s_h[nx:nx + yi.size] ** 2 / held.n
+        betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, run)
+        Q, qyy, sst = _held_out(whole, C, raw, scale, s_tr, n_tr, mu, nx)
         for i in live:
             idx = np.concatenate([np.arange(n_core), extras[i]])
-            errors[i][:, f] = _errors(betas[i], scale, idx, Q, qyy, sst,
-                                      lambda A, B: run.matmul(A, B, yi.size))  # one strength per block
-        del W_h, C, Q
+            errors[i][:, f] = _errors(betas[i], scale, idx, Q, qyy, sst, lambda A, B: run.matmul(A, B, block))
+        del W, C, Q
+    if keep is not None:
+        keep.update(index=index, gram=whole.W)
     return errors
 
 
-def _large_betas(train, index, nx, p, n_tr, s_tr, mu, n_core, extras, live, alphas, run):
-    """Standardised coefficients of each live structure on one fold's training rows (Gram freed on return)."""
-    W, C, _raw = centred_lead(train, index, nx + p, n_tr, s_tr, mu)
+class _Whole:
+    """The total Gram ``W`` in lead order, its sums ``s``, row count ``n`` and the raw diagonal of its leading
+    ``k × k`` block."""
+
+    def __init__(self, W, s, n, k):
+        self.W, self.s, self.n, self.raw = W, s, n, np.diagonal(W)[:k].copy()
+
+
+def _held_out(whole: _Whole, C, raw_tr, scale, s_tr, n_tr, mu, nx):
+    """The held-out moments about the training mean ``mu``: ``[Qxx Qxy]`` (in place of the standardised training
+    block ``C``, whose strengths are solved), the targets' ``qyy`` and their own-mean ``sst``.
+
+    Centred moments about a fixed ``mu`` add over rows, so held-out = total − training:
+    ``Q = (W − μ (s − n μ)ᵀ − s μᵀ) − n_tr · diag(σ) R diag(σ, 1)`` (``R`` the standardised training block, ``σ``
+    the regressor scale), formed ``rows`` at a time (no Gram-sized temporaries). Rounding: the difference of two
+    centred sums is exact to ``eps`` times the total's, the size of the total Gram's own rounding.
+    """
+    k = C.shape[1]
+    W, s, n = whole.W, whole.s, whole.n
+    a = s[:k] - n * mu[:k]
+    col = np.concatenate([scale, np.ones(k - nx)]) * n_tr
+    Q = C[:nx]
+    for i in range(0, nx, 256):
+        j = min(nx, i + 256)
+        Q[i:j] *= -scale[i:j, None] * col[None, :]
+        Q[i:j] += W[i:j, :k]
+        Q[i:j] -= np.outer(mu[i:j], a)
+        Q[i:j] -= np.outer(s[i:j], mu[:k])
+    raw_h, s_h, n_h, m_y = whole.raw[nx:] - raw_tr[nx:], s[nx:k] - s_tr[nx:k], n - n_tr, mu[nx:k]
+    qyy = raw_h - 2.0 * m_y * s_h + n_h * m_y ** 2
+    return Q, qyy, raw_h - s_h ** 2 / n_h
+
+
+def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, run):
+    """Standardised coefficients of each live structure on one fold's training rows; ``C`` (the centred training
+    block ``[Cxx Cxy]``) is standardised in place."""
     R = C[:nx]
     scale = np.sqrt(np.clip(np.diagonal(R)[:nx], 0.0, None) / n_tr)
     scale[scale == 0] = 1.0
@@ -268,7 +306,6 @@ def _large_betas(train, index, nx, p, n_tr, s_tr, mu, n_core, extras, live, alph
         if found[i] is None:  # no Cholesky factor: the eigen route, in this structure alone
             idx = np.concatenate([np.arange(n_core), extras[i]])
             found[i] = _ridge_path(R[np.ix_(idx, idx)], r[idx], alphas, route="eigh")[0]
-    del W, C, R, r
     return found, scale
 
 

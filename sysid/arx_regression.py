@@ -145,12 +145,13 @@ def lead_index(n_entries: int, c: int, lead: np.ndarray) -> np.ndarray:
     return pos.reshape(-1, c)
 
 
-def centred_lead(sums, index: np.ndarray, k: int, n: int, s: np.ndarray, mu: np.ndarray, rows: int = 256):
+def centred_lead(sums, index: np.ndarray, k: int, n: int, s: np.ndarray, mu: np.ndarray, rows: int = 256,
+                 gram: np.ndarray | None = None):
     """The Gram of ``sums`` in the order of ``index`` (:func:`lead_index`) with its leading ``k × k`` block centred
     about ``mu`` in place: ``W − μ (s − n μ)ᵀ − s μᵀ`` (``s``, ``mu`` in that order too), ``rows`` rows at a time
     (no Gram-sized temporaries). Returns the whole array (the caller keeps it alive), the centred view and the
-    raw diagonal of the leading block."""
-    W = _lagged_gram(sums, index)
+    raw diagonal of the leading block. ``gram``: that Gram already assembled (it is centred in place)."""
+    W = _lagged_gram(sums, index) if gram is None else gram
     C = W[:k, :k]
     raw_diag = np.diagonal(C).copy()
     a = s[:k] - n * mu[:k]
@@ -220,15 +221,16 @@ class _Problem:
         return out
 
 
-def final_fit(prob: _Problem, total, alpha: float):
+def final_fit(prob: _Problem, total, alpha: float, kept: dict | None = None):
     """Coefficients ``(p, d_x)``, regressor scale, condition number at ``alpha``, centring mean (lagged order) and
     residual cross product ``(p, p)`` of the fit on all rows.
 
     Totals held as lag sums with ``_CHOLESKY_FROM`` regressors or more take :func:`_final_fit_large` (one Gram, one
-    factor); the others the route of before, bit for bit.
+    factor; the Gram the cross-validation left in ``kept`` when its order is this fit's); the others the route of
+    before, bit for bit.
     """
     if hasattr(total, "sums") and prob.x_idx.size >= _CHOLESKY_FROM:
-        found = _final_fit_large(prob, total, alpha)
+        found = _final_fit_large(prob, total, alpha, kept or {})
         if found is not None:
             return found
     if hasattr(total, "sums"):
@@ -239,15 +241,21 @@ def final_fit(prob: _Problem, total, alpha: float):
     return coef, scale, float(conds[0]), mu, Cyy - coef @ Cxy - Cxy.T @ coef.T + coef @ Cxx @ coef.T
 
 
-def _final_fit_large(prob: _Problem, total, alpha: float):
-    """:func:`final_fit` from a Gram assembled in the order ``[x, y, rest]`` and centred in place, one Cholesky
-    factor, and the condition number from the extreme eigenvalues (Lanczos); None when the factor does not exist
-    or the eigenvalues do not converge (the caller takes the eigen route then)."""
-    xi, nx, n = prob.x_idx, prob.x_idx.size, total.n
+def _final_fit_large(prob: _Problem, total, alpha: float, kept: dict):
+    """:func:`final_fit` from a Gram assembled in the order ``[x, y, rest]`` (or taken from ``kept``, and then
+    consumed) and centred in place, one Cholesky factor, and the condition number from the extreme eigenvalues
+    (Lanczos); None when the factor does not exist or the eigenvalues do not converge (the caller takes the eigen
+    route then). Solved with the regressors in ascending lagged order (the cross-validation's order, so its Gram
+    serves here), the coefficients and scale put back in ``x_idx`` order."""
+    xi, nx, n = np.sort(prob.x_idx), prob.x_idx.size, total.n
+    back = np.searchsorted(xi, prob.x_idx)
     index = lead_index(total.s.size, prob.c, np.concatenate([xi, prob.y_idx]))
     s = lead_order(total.s, index)
     mu = s / n if prob.fit_intercept else np.zeros_like(s)
-    W, C, _raw = centred_lead(total.sums, index, nx + prob.p, n, s, mu)
+    same = kept.get("index") is not None and np.array_equal(kept["index"], index)
+    W, C, _raw = centred_lead(total.sums, index, nx + prob.p, n, s, mu, gram=kept.pop("gram", None) if same
+                              else None)
+    kept.clear()
     Cxx, Cxy, Cyy = C[:nx, :nx], C[:nx, nx:], C[nx:, nx:]
     scale = np.sqrt(np.clip(np.diagonal(Cxx), 0.0, None) / n)
     scale[scale == 0] = 1.0
@@ -268,7 +276,7 @@ def _final_fit_large(prob: _Problem, total, alpha: float):
         return None
     coef = (beta / scale[:, None]).T
     resid = Cyy - coef @ Cxy - Cxy.T @ coef.T + coef @ Cxx @ coef.T
-    return coef, scale, cond, (total.s / n if prob.fit_intercept else np.zeros_like(total.s)), resid
+    return coef[:, back], scale[back], cond, (total.s / n if prob.fit_intercept else np.zeros_like(total.s)), resid
 
 
 def _condition(matvec, L: np.ndarray, alpha: float, tol: float = 1e-10):

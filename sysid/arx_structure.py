@@ -128,10 +128,13 @@ def _longest(c) -> int:
     return max(na, d + nb - 1)
 
 
-def select_structure(est, session, candidates, alphas):
+def select_structure(est, session, candidates, alphas, keep: dict | None = None):
     """The best ``(na, nb, d)`` of a RidgeArx by trial-wise cross-validation, and the table of every candidate.
 
-    Returns ``(structure, table)``; ``table`` is None when there is one candidate (nothing to choose).
+    Returns ``(structure, table)``; ``table`` is None when there is one candidate (nothing to choose). ``keep`` (a
+    dict) receives the shared rows' moments (``"moments"``: what ``_accumulate`` returns), their lag count
+    (``"n_lags"``) and each scored candidate's strength table (``"tables"``): a chosen structure whose own rows are
+    the shared ones (its longest lag is the grid's) needs no second pass nor second cross-validation.
     """
     if len(candidates) == 1:
         return candidates[0], None
@@ -147,6 +150,9 @@ def select_structure(est, session, candidates, alphas):
     rows = [(*c, n_coef[i], cv_table(found.get(i, empty), alphas, k)) for i, (c, q) in
             enumerate(zip(candidates, probs))]
     structures = structure_table(rows)
+    if keep is not None:
+        keep.update(moments=(folds, total, k, _scheme, _shift), n_lags=n_lags,
+                    tables={candidates[i]: rows[i][4] for i in scored})
     top = structures.loc[structures["selected"]].iloc[0]
     return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
 

@@ -134,10 +134,11 @@ def test_condition_number_from_two_lanczos_runs_equals_all_eigenvalues():
         assert got == pytest.approx((lam.max() + alpha) / (max(lam.min(), 0) + alpha), rel=1e-9)
 
 
-def test_large_cross_validation_holds_one_gram_and_the_worker_buffers(monkeypatch):
-    # The earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
-    # (5.2 Grams at peak here, measured with tracemalloc on the code before this change; this route 3.3 with two
-    # workers: one Gram, a core-sized buffer per worker and the lag sums).
+def test_large_cross_validation_holds_two_grams_and_the_worker_buffers(monkeypatch):
+    # An earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
+    # (5.2 Grams at peak here, measured with tracemalloc); the route of issue 14's first pass 3.3 with two workers
+    # (one fold's Gram, a core-sized buffer per worker), at two Gram assemblies per fold. This route keeps the total
+    # Gram as well (4.3 measured), and assembles one Gram per fold instead of two.
     est = RidgeArx(output_lags=100, input_lags=100, delay_samples="auto", delay_grid=(0, 1))
     session = _session(T=8000)
     candidates, _ = structure_candidates(est)
@@ -156,4 +157,36 @@ def test_large_cross_validation_holds_one_gram_and_the_worker_buffers(monkeypatc
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert peak <= (1 + workers + 0.5) * gram
+    assert peak <= (2 + workers + 0.5) * gram
+
+
+def test_a_large_fit_assembles_the_total_gram_once_and_one_gram_per_fold(monkeypatch):
+    # issue 14: the fold's held-out moments are the total's minus its training moments, and the final fit takes the
+    # total Gram the cross-validation assembled (before: two Grams per fold, and the total again for the final fit)
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)
+    calls = []
+    for module in (arx_cv, arx_regression):
+        real = module._lagged_gram
+        monkeypatch.setattr(module, "_lagged_gram", lambda *a, real=real: calls.append(1) or real(*a))
+    est = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, n_folds=3).fit(session)
+    assert est.n_folds_ == 3 and len(calls) == 1 + 3
+
+
+def test_a_chosen_structure_on_the_search_rows_reuses_its_moments_and_scores(monkeypatch):
+    # issue 14: a structure whose longest lag is the grid's has the search's rows, so its own pass and cross-validation
+    # would repeat the search's on the same moments; the reference fixes that structure (no search: one pass, its own
+    # cross-validation, the route of before)
+    session = _session(seed=4)  # true delay 2: the longest candidate below
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    fixed = RidgeArx(output_lags=1, input_lags=2, delay_samples=2).fit(session)
+    passes = []
+    real = RidgeArx._accumulate
+    monkeypatch.setattr(RidgeArx, "_accumulate", lambda self, *a: passes.append(1) or real(self, *a))
+    auto = RidgeArx(output_lags=1, input_lags=2, delay_samples="auto", delay_grid=(0, 1, 2)).fit(session)
+    assert (auto.output_lags_, auto.input_lags_, auto.delay_samples_) == (1, 2, 2) and len(passes) == 1
+    assert auto.alpha_ == fixed.alpha_
+    np.testing.assert_allclose(auto.cv_table_.to_numpy(), fixed.cv_table_.to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(auto.coef_, fixed.coef_, rtol=1e-12)
+    np.testing.assert_allclose(auto.intercept_, fixed.intercept_, rtol=1e-12, atol=1e-14)
