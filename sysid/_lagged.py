@@ -326,14 +326,16 @@ def _write_blocks(W: np.ndarray, rects_a, rects_ad, blocks: np.ndarray, d: int, 
             view[...] = src
 
 
-def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[int, int] | None = None) -> np.ndarray:
+def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[int, int] | None = None,
+                 average_same_lag: bool = False) -> np.ndarray:
     """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
 
     Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
     ``X[δ]``; the lower blocks are the transposes. The sum of ``w_k w_kᵀ`` over the rows. With ``index``
     (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
     a permuted Gram made without a second Gram-sized copy. With ``rows = (r0, r1)``, only those rows of it (the
-    same numbers, in ``(r1 − r0) × (L + 1) c`` memory). The blocks are written as strided copies over the
+    same numbers, in ``(r1 − r0) × (L + 1) c`` memory). With ``average_same_lag`` the blocks ``(a, a)`` are
+    averaged with their transposes (:func:`_lagged_gram_rows`). The blocks are written as strided copies over the
     rectangles of ``index`` (:func:`_index_rectangles`): the same numbers as a scatter, many times faster.
     """
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
@@ -348,6 +350,8 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
         blocks[...] = sums.X[d]
         blocks[1:] += corr
         del corr
+        if d == 0 and average_same_lag:
+            blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
         _write_blocks(W, clipped, full, blocks, d, False)
         if d:
             _write_blocks(W, full, clipped, blocks, d, True)
@@ -362,31 +366,11 @@ def _lagged_diagonal(sums: _LagSums) -> np.ndarray:
     return d.reshape(-1)
 
 
-def _put_rows(W: np.ndarray, rows, cols, values, r0: int, r1: int) -> None:
-    """``W[rows − r0, cols] = values`` for the entries whose row lies in ``[r0, r1)``."""
-    rows, cols = np.broadcast_to(rows, values.shape), np.broadcast_to(cols, values.shape)
-    keep = (rows >= r0) & (rows < r1)
-    W[rows[keep] - r0, cols[keep]] = values[keep]
-
-
 def _lagged_gram_rows(sums: _LagSums, index: np.ndarray, r0: int, r1: int) -> np.ndarray:
     """Rows ``[r0, r1)`` of the permuted Gram :func:`_lagged_gram` ``(sums, index)`` after ``(W + Wᵀ)/2``, without
     the rest: the same numbers (the same-lag blocks are averaged with their transposes, as the symmetrised whole
     would be; the others are written as exact transposes), in ``(r1 − r0) × (L + 1) c`` memory."""
-    Lp1, c = sums.X.shape[0], sums.X.shape[1]
-    W = np.empty((r1 - r0, Lp1 * c))
-    for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
-        a = np.arange(Lp1 - d)
-        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
-        blocks[1:] += corr
-        del corr
-        if d == 0:
-            blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
-        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
-        _put_rows(W, rows, cols, blocks, r0, r1)
-        if d:
-            _put_rows(W, cols.transpose(0, 2, 1), rows.transpose(0, 2, 1), blocks.transpose(0, 2, 1), r0, r1)
-    return W
+    return _lagged_gram(sums, index, rows=(r0, r1), average_same_lag=True)
 
 
 def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
