@@ -55,18 +55,15 @@ class HankelBlocks:
         return np.vstack([self.Up, self.Yp, self.Uf])
 
     @classmethod
-    def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool,
-                    copy: bool = True):
-        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them); with ``copy=False`` the
-        blocks are views of ``H`` (which they then keep alive: no second matrix-sized array while they are
-        made)."""
+    def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool):
+        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them)."""
         if H.ndim != 2 or H.shape[0] != (m + p) * (past + horizon):
             raise SessionError(
                 f"a data matrix for {m} input(s), {p} output(s), past {past} and horizon {horizon} needs "
                 f"{(m + p) * (past + horizon)} rows; got shape {H.shape}."
             )
         cuts = np.cumsum([m * past, p * past, m * horizon])
-        Up, Yp, Uf, Yf = (np.ascontiguousarray(b) if copy else b for b in np.split(H, cuts, axis=0))
+        Up, Yp, Uf, Yf = (np.ascontiguousarray(b) for b in np.split(H, cuts, axis=0))
         return cls(Up, Yp, Uf, Yf, bool(compressed))
 
 
@@ -281,7 +278,7 @@ class HankelPredictor(_DirectPredictor):
     def _blocks(self, data: _Fold, compress: bool):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         H = data.factor if compress else np.concatenate(data.full, axis=1)
-        blocks, r = HankelBlocks.from_matrix(H, m, p, past, N, compress, copy=False), H.shape[1]
+        blocks, r = HankelBlocks.from_matrix(H, m, p, past, N, compress), H.shape[1]
         del H
         data.release()  # memory: the blocks hold the factor's rows
         if self.regularizer == "projection":
