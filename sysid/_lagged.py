@@ -254,16 +254,14 @@ def _edge_correction(windows, n_lags: int, c: int):
         return
     R = np.stack([w[::-1] for _s, w in windows])  # R[:, j - 1] = W[L - j]
     signs = np.array([s for s, _w in windows])
-    # contiguous batches once (a batch of strided operands makes matmul copy or loop, once per lag)
-    A = np.ascontiguousarray((R * signs[:, None, None]).transpose(1, 2, 0))  # A[j] = Σ-side operand (c × w)
-    B = np.ascontiguousarray(R.transpose(1, 0, 2))  # B[j] (w × c)
+    Rs = R * signs[:, None, None]
     for d in range(L + 1):
         if d == L:
             yield np.zeros((0, c, c))
             continue
         # Q[j] = Σ_w sign R_w[j] R_w[j + d]ᵀ, j = 0 … L - d - 1, as a batch of (c × w)(w × c) products
-        Q = np.matmul(A[: L - d], B[d:])
-        yield np.cumsum(Q, axis=0, out=Q)
+        Q = np.matmul(Rs[:, : L - d].transpose(1, 2, 0), R[:, d:].transpose(1, 0, 2))
+        yield np.cumsum(Q, axis=0)
 
 
 def _index_rectangles(index: np.ndarray) -> list[tuple[int, int, int, int, int, int]]:
