@@ -16,12 +16,18 @@ Measured in the same run:
 3. subspace identification (``SubspaceId``, past = future = ``--lags``) from the same file ÷ one Gram matrix of its
    block-Hankel matrix (``(m + p)(past + future)`` rows, one column per window) accumulated chunk by chunk from
    the in-memory data. Target <= 2.
+4. the compressed Hankel build (``hankel.row_space_factor``: the row-space factor of the stacked block-Hankel
+   matrix of the inputs and the first ``--hankel-outputs`` outputs, depth ``--hankel-depth``, over the trials of
+   the first ``--hankel-samples`` samples) ÷ one plain ``scipy.linalg.qr(mode="r")`` of the same data materialised
+   in memory, on one BLAS thread (materialised outside the timing, Fortran order, overwritten: LAPACK's fastest
+   call). Targets: ratio <= 0.6 and >= 1.8 cores busy on average (CPU time ÷ wall time of the process).
 
 Usage::
 
     python benchmarks/bench_fit.py                 # 1,000,000 samples, 64 outputs, 8 inputs, 5 lags
     python benchmarks/bench_fit.py --samples 100000 --repeat 1
     python benchmarks/bench_fit.py --subspace-only  # subspace against its Hankel Gram and its bare lag products
+    python benchmarks/bench_fit.py --hankel-only    # the compressed Hankel build against one QR
 """
 
 from __future__ import annotations
@@ -164,6 +170,10 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--skip-subspace", action="store_true")
     ap.add_argument("--subspace-only", action="store_true", help="skip the ridge ARX measurements")
+    ap.add_argument("--hankel-only", action="store_true", help="only the compressed Hankel build against one QR")
+    ap.add_argument("--hankel-samples", type=int, default=100_000)
+    ap.add_argument("--hankel-depth", type=int, default=20)
+    ap.add_argument("--hankel-outputs", type=int, default=8)
     ap.add_argument("--compression", choices=["none", "gzip", "lzf"], default="none",
                     help="compression of the benchmark file (save_session's option; default none, the layout's "
                     "default); the other two are measured as diagnostics")
@@ -183,9 +193,14 @@ def main(argv=None) -> int:
         save_session(session, path, compression=args.compression)
         print(f"  setup: wrote {path.stat().st_size / 1e6:.0f} MB of HDF5 (compression {args.compression}) in "
               f"{time.perf_counter() - t0:.1f} s")
+        if args.hankel_only:
+            report_hankel_build(session, args)
+            print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
+            return 0
         t_arx = None if args.subspace_only else report_arx(session, path, L, args.repeat, args.compression)
         t_sub = None if args.skip_subspace else report_subspace(session, path, L, args.repeat)
         report_fair(session, L, args.repeat, t_arx, t_sub)
+        report_hankel_build(session, args)
     print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
 
@@ -285,6 +300,44 @@ def report_fair(session, L, repeat, t_arx, t_sub):
               f"RATIO fit / bare = {t_fit / t_bare:.2f} (target <= {target}); fraction of dgemm peak: fit "
               f"{flops / t_fit / peak:.2f}, bare {flops / t_bare / peak:.2f}")
 # ============================================================================================ end FAIR BASELINES
+
+
+# ================================================================================================ HANKEL BUILD
+# The compressed Hankel build ÷ one single-threaded QR of the materialised data (target <= 0.6, >= 1.8 cores).
+def timed_cpu(fn) -> tuple[float, float, object]:
+    """Wall time, process CPU time (every thread) and the result of ``fn()``."""
+    c0, t0 = time.process_time(), time.perf_counter()
+    out = fn()
+    return time.perf_counter() - t0, time.process_time() - c0, out
+
+
+def report_hankel_build(session, args):
+    from stimsteer.sysid._lagged import blas_threads
+    from stimsteer.sysid.hankel import mosaic_hankel, row_space_factor
+
+    T, depth = min(args.hankel_samples, session.u.shape[0]), args.hankel_depth
+    sigs = [session.u[:T], session.y[:T, : args.hankel_outputs]]
+    segs = [(int(a), int(min(b, T))) for a, b in session.trials if a < T]
+    n_rows = depth * sum(s.shape[1] for s in sigs)
+    builds, qrs = [], []
+    for _ in range(args.repeat):  # interleaved, so both see the same load
+        builds.append(timed_cpu(lambda: row_space_factor(sigs, depth, segs)))
+        Ht = np.vstack([mosaic_hankel(s, depth, segs) for s in sigs]).T  # Fortran order: no copy inside LAPACK
+        with blas_threads(1):
+            qrs.append(timed_cpu(lambda: sla.qr(Ht, mode="r", overwrite_a=True, check_finite=False)[0]))
+        del Ht
+    (t_b, cpu_b, (F, k)), (t_q, _cpu_q, R) = min(builds, key=lambda r: r[0]), min(qrs, key=lambda r: r[0])
+    G = R.T @ R
+    err = np.abs(F @ F.T - G).max() / np.abs(G).max()
+    print(f"  compressed Hankel build: {n_rows} rows x {k} columns (depth {depth}, {len(segs)} trials, "
+          f"{k * n_rows * 8 / 1e6:.0f} MB materialised); load average {os.getloadavg()[0]:.2f}")
+    print(f"    one QR of the materialised data, one BLAS thread: {t_q:.2f} s (best of {args.repeat}: "
+          f"{', '.join(f'{r[0]:.2f}' for r in qrs)})")
+    print(f"    row_space_factor: {t_b:.2f} s (best of {args.repeat}: {', '.join(f'{r[0]:.2f}' for r in builds)}); "
+          f"cores busy {cpu_b / t_b:.2f} (every run: {', '.join(f'{r[1] / r[0]:.2f}' for r in builds)})")
+    print(f"    RATIO build / QR = {t_b / t_q:.2f} (target <= 0.6); cores busy {cpu_b / t_b:.2f} (target >= 1.8); "
+          f"max |F Fᵀ - RᵀR| / max |RᵀR| = {err:.1e}")
+# ============================================================================================ end HANKEL BUILD
 # ============================================================================================ end SUBSPACE RATIO
 
 

@@ -15,6 +15,7 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
+from numpy.lib.stride_tricks import as_strided
 
 # ------------------------------------------------------------------------------------------------ sufficient stats
 class _Moments:
@@ -263,27 +264,95 @@ def _edge_correction(windows, n_lags: int, c: int):
         yield np.cumsum(Q, axis=0)
 
 
-def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None) -> np.ndarray:
+def _index_rectangles(index: np.ndarray) -> list[tuple[int, int, int, int, int, int]]:
+    """``index`` (shape ``(L + 1, c)``) as rectangles ``(a0, a1, i0, i1, start, stride)`` with
+    ``index[a, i] = start + (a − a0) · stride + (i − i0)`` for ``a0 ≤ a < a1``, ``i0 ≤ i < i1``: runs of
+    consecutive rows per lag block, joined over lags while their starts step evenly. The identity is one
+    rectangle; the Hankel data matrix's row order (:func:`~stimsteer.sysid.datadriven.gram.hankel_permutation`)
+    four."""
+    rects, open_ = [], {}
+    for a, row in enumerate(np.asarray(index)):
+        cuts = np.flatnonzero(np.diff(row) != 1) + 1
+        for i0, i1 in zip(np.r_[0, cuts], np.r_[cuts, row.size]):
+            key, start = (int(i0), int(i1)), int(row[i0])
+            r = open_.get(key)
+            if r is not None and r[1] == a and (r[1] - r[0] == 1 or start - r[4] == (a - r[0]) * r[5]):
+                stride = start - r[4] if r[1] - r[0] == 1 else r[5]
+                r[1], r[5] = a + 1, stride
+            else:
+                r = [a, a + 1, key[0], key[1], start, 0]
+                rects.append(r)
+                open_[key] = r
+    return [tuple(r) for r in rects]
+
+
+def _clip_rectangles(rects, r0: int, r1: int) -> list[tuple[int, int, int, int, int, int]]:
+    """The parts of ``rects`` whose rows lie in ``[r0, r1)``, with their starts shifted by ``−r0``: the lags whose
+    whole run lies inside keep one rectangle, a lag whose run crosses an edge keeps its rows inside as its own."""
+    out = []
+    for a0, a1, i0, i1, start, stride in rects:
+        inside = []
+        for a in range(a0, a1):
+            s0 = start + (a - a0) * stride
+            lo, hi = max(i0, i0 + r0 - s0), min(i1, i0 + r1 - s0)
+            if lo < hi:
+                inside.append((a, lo, hi, s0 + lo - i0 - r0))
+        whole = [t for t in inside if (t[1], t[2]) == (i0, i1)]
+        if whole:  # consecutive lags (the starts are monotone in a)
+            out.append((whole[0][0], whole[-1][0] + 1, i0, i1, whole[0][3], stride))
+        out.extend((a, a + 1, lo, hi, s, 0) for a, lo, hi, s in inside if (lo, hi) != (i0, i1))
+    return out
+
+
+def _write_blocks(W: np.ndarray, rects_a, rects_ad, blocks: np.ndarray, d: int, transposed: bool) -> None:
+    """``W[index[a], index[a + d]] = blocks[a]`` (or its transpose at ``W[index[a + d], index[a]]``) for every
+    ``a``, with lag ``a``'s rows in ``rects_a`` and lag ``a + d``'s in ``rects_ad``: one strided copy per pair of
+    rectangles instead of a scatter of single entries."""
+    N, item = W.shape[1], W.itemsize
+    flat = W.reshape(-1)
+    for aa0, aa1, ai0, ai1, astart, astride in rects_a:
+        for ca0, ca1, ci0, ci1, cstart, cstride in rects_ad:
+            lo, hi = max(aa0, ca0 - d), min(aa1, ca1 - d)
+            if lo >= hi:
+                continue
+            r, c = astart + (lo - aa0) * astride, cstart + (lo + d - ca0) * cstride
+            src = blocks[lo:hi, ai0:ai1, ci0:ci1]
+            step = astride * N + cstride
+            if transposed:
+                r, c, step, src = c, r, cstride * N + astride, src.transpose(0, 2, 1)
+            view = as_strided(flat[r * N + c:], shape=src.shape, strides=(step * item, N * item, item))
+            view[...] = src
+
+
+def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[int, int] | None = None,
+                 average_same_lag: bool = False) -> np.ndarray:
     """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
 
     Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
     ``X[δ]``; the lower blocks are the transposes. The sum of ``w_k w_kᵀ`` over the rows. With ``index``
     (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
-    a permuted Gram made without a second Gram-sized copy.
+    a permuted Gram made without a second Gram-sized copy. With ``rows = (r0, r1)``, only those rows of it (the
+    same numbers, in ``(r1 − r0) × (L + 1) c`` memory). With ``average_same_lag`` the blocks ``(a, a)`` are
+    averaged with their transposes (:func:`_lagged_gram_rows`). The blocks are written as strided copies over the
+    rectangles of ``index`` (:func:`_index_rectangles`): the same numbers as a scatter, many times faster.
     """
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
-    W = np.empty((Lp1 * c, Lp1 * c))
+    r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
+    full = _index_rectangles(index)
+    clipped = full if (r0, r1) == (0, Lp1 * c) else _clip_rectangles(full, r0, r1)
+    W = np.empty((r1 - r0, Lp1 * c))
     for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
-        a = np.arange(Lp1 - d)
-        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
+        blocks = np.empty((Lp1 - d, c, c))
+        blocks[...] = sums.X[d]
         blocks[1:] += corr
         del corr
-        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
-        W[rows, cols] = blocks
+        if d == 0 and average_same_lag:
+            blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
+        _write_blocks(W, clipped, full, blocks, d, False)
         if d:
-            W[cols.transpose(0, 2, 1), rows.transpose(0, 2, 1)] = blocks.transpose(0, 2, 1)
+            _write_blocks(W, full, clipped, blocks, d, True)
     return W
 
 
@@ -295,31 +364,11 @@ def _lagged_diagonal(sums: _LagSums) -> np.ndarray:
     return d.reshape(-1)
 
 
-def _put_rows(W: np.ndarray, rows, cols, values, r0: int, r1: int) -> None:
-    """``W[rows − r0, cols] = values`` for the entries whose row lies in ``[r0, r1)``."""
-    rows, cols = np.broadcast_to(rows, values.shape), np.broadcast_to(cols, values.shape)
-    keep = (rows >= r0) & (rows < r1)
-    W[rows[keep] - r0, cols[keep]] = values[keep]
-
-
 def _lagged_gram_rows(sums: _LagSums, index: np.ndarray, r0: int, r1: int) -> np.ndarray:
     """Rows ``[r0, r1)`` of the permuted Gram :func:`_lagged_gram` ``(sums, index)`` after ``(W + Wᵀ)/2``, without
     the rest: the same numbers (the same-lag blocks are averaged with their transposes, as the symmetrised whole
     would be; the others are written as exact transposes), in ``(r1 − r0) × (L + 1) c`` memory."""
-    Lp1, c = sums.X.shape[0], sums.X.shape[1]
-    W = np.empty((r1 - r0, Lp1 * c))
-    for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
-        a = np.arange(Lp1 - d)
-        blocks = np.broadcast_to(sums.X[d], (a.size, c, c)).copy()
-        blocks[1:] += corr
-        del corr
-        if d == 0:
-            blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
-        rows, cols = index[a][:, :, None], index[a + d][:, None, :]
-        _put_rows(W, rows, cols, blocks, r0, r1)
-        if d:
-            _put_rows(W, cols.transpose(0, 2, 1), rows.transpose(0, 2, 1), blocks.transpose(0, 2, 1), r0, r1)
-    return W
+    return _lagged_gram(sums, index, rows=(r0, r1), average_same_lag=True)
 
 
 def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):

@@ -332,8 +332,63 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
     return np.ascontiguousarray(_r_factor(np.concatenate(parts, axis=0)).T)
 
 
+def _fill_columns(buf: np.ndarray, sigs, c0: int, depth: int) -> None:
+    """Columns ``[c0, c0 + k)`` of the stacked data matrix ``[H_L(sigs[0]); H_L(sigs[1]); ...]`` into ``buf``
+    (``n_rows × k``, C order, so ``buf.T`` is the Fortran-ordered ``k × n_rows`` block LAPACK reads without a copy).
+
+    One transposed copy of the chunk's samples per signal, then one contiguous row copy per time block (NumPy's
+    plain copies release the GIL, so the workers of :func:`row_space_factor` fill their chunks side by side).
+    """
+    k, row = buf.shape[1], 0
+    for s in sigs:
+        c = s.shape[1]
+        sT = np.ascontiguousarray(s[c0: c0 + k + depth - 1].T)
+        for t in range(depth):
+            buf[row + t * c: row + (t + 1) * c] = sT[:, t: t + k]
+        row += depth * c
+
+
+def _stream_r(sigs, spans, depth: int, n_rows: int, step: int) -> np.ndarray:
+    """Upper-triangular ``R`` (``n_rows × n_rows``, Fortran order) with ``RᵀR = Σ_chunks MᵀM`` over the chunks
+    ``M`` (columns of the data matrix as rows) of ``spans``: each chunk is folded into ``R`` by LAPACK's
+    triangular-pentagonal QR (``tpqrt``), which costs ``2 k n²`` for ``k`` columns, as a QR of the chunk alone,
+    without refactoring ``R`` itself (a QR of ``[R; M]`` would cost ``2 (n + k) n²``)."""
+    from scipy.linalg import lapack
+
+    R = np.zeros((n_rows, n_rows), order="F")
+    flat = np.empty(n_rows * step)
+    nb = min(n_rows, 64)
+    for c0, c1 in spans:
+        k = c1 - c0 - depth + 1
+        buf = flat[: n_rows * k].reshape(n_rows, k)
+        _fill_columns(buf, sigs, c0, depth)
+        R, _b, _t, info = lapack.dtpqrt(0, nb, R, buf.T, overwrite_a=1, overwrite_b=1)
+        if info != 0:  # pragma: no cover - only for invalid arguments
+            raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
+    return R
+
+
+def _merge_r(parts) -> np.ndarray:
+    """``R`` with ``RᵀR = Σ R_iᵀR_i`` of upper-triangular parts, each folded in by ``tpqrt`` with a triangular
+    pentagon (``O(n³)`` per part, independent of the data length)."""
+    from scipy.linalg import lapack
+
+    R = parts[0]
+    for other in parts[1:]:
+        n = R.shape[0]
+        R, _b, _t, info = lapack.dtpqrt(n, min(n, 64), R, np.asfortranarray(np.triu(other)), overwrite_a=1)
+        if info != 0:  # pragma: no cover - only for invalid arguments
+            raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
+    return R
+
+
+def _spans(segments, depth: int, step: int) -> list[tuple[int, int]]:
+    """Sample ranges ``[c0, c1)`` of at most ``step`` columns each (``c1 − c0 − depth + 1`` columns)."""
+    return [(c0, min(c0 + step + depth - 1, b)) for a, b in segments for c0 in range(a, b - depth + 1, step)]
+
+
 def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | None = None,
-                     *, max_columns: int = 4096) -> tuple[np.ndarray, int]:
+                     *, max_columns: int = 4096, n_workers: int | None = None) -> tuple[np.ndarray, int]:
     """Exact compression of a (mosaic) data matrix to its row-space factor, without forming the whole matrix.
 
     The data matrix stacks the depth-``depth`` mosaic Hankel matrices of the signals in ``blocks``,
@@ -349,7 +404,11 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     segments : sequence of (int, int), optional
         Valid segments (default: the whole grid); shorter ones are skipped.
     max_columns : int, default 4096
-        Columns assembled at once; bounds the working memory to about ``max_columns * n_rows`` floats.
+        Columns assembled at once (fewer for tall matrices: at most about 4 M floats, 32 MB, per chunk); bounds
+        the working memory to one chunk and one ``n_rows × n_rows`` factor per worker.
+    n_workers : int, optional
+        Threads (default: the CPU count). The chunks are cut into this many contiguous groups, reduced side by
+        side and merged in group order: the numbers depend on the worker count, not on the timing.
 
     Returns
     -------
@@ -364,12 +423,17 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
 
     Notes
     -----
-    Tall-skinny QR: each chunk of columns is reduced to its R factor, then the R factors are combined by one more
-    QR; the memory is ``O(n_rows²)`` plus one chunk, independent of the number of samples.
+    Tall-skinny QR: each worker folds its chunks of columns into one triangular factor by triangular-pentagonal QR
+    steps (LAPACK ``tpqrt``: ``2 k n²`` flops per chunk of ``k`` columns, the cost of a QR of the chunk alone), so
+    the whole build costs one QR of the data split over the workers, plus one ``O(n³)`` merge per extra worker.
+    SciPy's LAPACK releases the GIL, so the workers run side by side. With fewer columns than rows the columns are
+    gathered and factored at once (they are fewer than ``n_rows``).
 
     References
     ----------
     Golub G.H., Van Loan C.F. (2013), Matrix Computations, 4th ed., section 5.2 (QR factorisation).
+    Demmel J., Grigori L., Hoemmen M., Langou J. (2012), "Communication-optimal parallel and sequential QR and LU
+    factorizations", SIAM Journal on Scientific Computing 34:A206 (tall-skinny QR).
     """
     sigs = [_as_signal(b, f"blocks[{i}]") for i, b in enumerate(blocks)]
     n = sigs[0].shape[0]
@@ -378,36 +442,31 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     depth = _check_depth(depth)
     segments = _check_segments(segments, n)
     n_rows = depth * sum(s.shape[1] for s in sigs)
-    step = max(int(max_columns), 1)
-    spans = [(c0, min(c0 + step + depth - 1, b)) for a, b in segments for c0 in range(a, b - depth + 1, step)]
-
-    def reduce(group):
-        factors, count = [], 0
-        for c0, c1 in group:
-            chunk = np.concatenate([block_hankel(s[c0:c1], depth).T for s in sigs], axis=1)
-            count += chunk.shape[0]
-            factors.append(_r_factor(chunk).T)
-            if len(factors) > 8:
-                factors = [combine_factors(factors, n_rows)]
-        return combine_factors(factors, n_rows), count
-
-    # Contiguous groups of chunks are reduced side by side (the QR releases the GIL) and their factors combined:
-    # the same factor up to rounding, as fast as the cores allow. The grouping depends only on the chunk count
-    # and the number of CPUs, so a run on the same machine gives the same numbers.
-    n_groups = max(1, min(os.cpu_count() or 1, len(spans) // 4))
-    edges = np.linspace(0, len(spans), n_groups + 1).round().astype(int)
-    groups = [spans[edges[g]:edges[g + 1]] for g in range(n_groups)]
-    if n_groups == 1:
-        parts = [reduce(groups[0])]
-    else:
-        with ThreadPoolExecutor(max_workers=n_groups, thread_name_prefix="stimsteer-qr") as pool:
-            parts = list(pool.map(reduce, groups))
-    total = sum(c for _, c in parts)
-    factors = [f for f, _ in parts]
+    total = hankel_column_count(segments, depth)
     if total == 0:
         longest = max((b - a for a, b in segments), default=0)
         raise SessionError(
             f"a data matrix of depth {depth} needs a valid segment of at least {depth} samples; the longest is "
             f"{longest}. Shorten the past window or horizon, or record longer trials with fewer gaps."
         )
-    return combine_factors(factors, n_rows), total
+    for a, b in segments:
+        if b - a >= depth:
+            for s in sigs:
+                _check_finite(s[a:b], "the signal", offset=a)
+    if total < n_rows:  # fewer columns than rows: all of them are fewer than one factor
+        chunk = np.concatenate([np.concatenate([block_hankel(s[a:b], depth).T for s in sigs], axis=1)
+                                for a, b in segments if b - a >= depth], axis=0)
+        return np.ascontiguousarray(_r_factor(chunk).T), total
+    step = max(1, min(int(max_columns), max(64, 2 ** 22 // n_rows)))
+    spans = _spans(segments, depth, step)
+    n_groups = max(1, min(n_workers or os.cpu_count() or 1, len(spans)))
+    edges = np.linspace(0, len(spans), n_groups + 1).round().astype(int)
+    groups = [spans[edges[g]:edges[g + 1]] for g in range(n_groups)]
+    with _single_blas_thread():
+        if n_groups == 1:
+            parts = [_stream_r(sigs, groups[0], depth, n_rows, step)]
+        else:
+            with ThreadPoolExecutor(max_workers=n_groups, thread_name_prefix="stimsteer-qr") as pool:
+                parts = list(pool.map(lambda g: _stream_r(sigs, g, depth, n_rows, step), groups))
+        R = _merge_r(parts)
+    return np.ascontiguousarray(np.triu(R).T), total

@@ -78,6 +78,11 @@ def test_hankel_gram_is_that_of_the_hankel_matrix(noisy):
     np.testing.assert_allclose(folds[0].gram, H @ H.T, rtol=1e-12, atol=1e-10 * np.abs(H @ H.T).max())
     F = folds[0].factor
     np.testing.assert_allclose(F @ F.T, H @ H.T, atol=1e-10 * np.abs(H @ H.T).max())
+    # rows and diagonal assembled alone: the same numbers as the whole Gram's (rows that cut a time block too)
+    G = folds[0].gram
+    for r0, r1 in ((0, (m + p) * past + m * horizon), (7, 23), (3, 4), (30, G.shape[0])):
+        np.testing.assert_array_equal(folds[0].gram_rows(r0, r1), G[r0:r1])
+    np.testing.assert_array_equal(folds[0].gram_diagonal(), np.diagonal(G))
     used = np.concatenate([noisy.y[a:b] for a, b, _f in pieces])
     np.testing.assert_allclose(y_sum, used.sum(axis=0), rtol=1e-12)
     np.testing.assert_allclose(y_sq, (used ** 2).sum(axis=0), rtol=1e-12)

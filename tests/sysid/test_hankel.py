@@ -89,6 +89,19 @@ def test_row_space_factor_reproduces_the_gram_matrix_exactly(rng):
     np.testing.assert_allclose(np.linalg.svd(F, compute_uv=False), np.linalg.svd(H, compute_uv=False), rtol=1e-12)
 
 
+@pytest.mark.parametrize("n_workers", [1, 2, 3])
+def test_row_space_factor_is_the_same_with_any_number_of_workers(rng, n_workers):
+    u, y = rng.standard_normal((400, 2)), rng.standard_normal((400, 1))
+    segs = [(0, 150), (150, 151), (160, 400)]
+    H = np.vstack([mosaic_hankel(u, 5, segs), mosaic_hankel(y, 5, segs)])
+    F, k = row_space_factor([u, y], 5, segs, max_columns=23, n_workers=n_workers)  # chunks folded by tpqrt
+    G = H @ H.T
+    assert k == H.shape[1] and F.shape == (15, 15) and np.allclose(F, np.tril(F), rtol=0, atol=0)
+    np.testing.assert_allclose(F @ F.T, G, rtol=0, atol=1e-13 * np.abs(G).max())
+    R = np.linalg.qr(H.T, mode="r")  # the factor of one plain QR, up to the signs of its rows
+    np.testing.assert_allclose(np.abs(F), np.abs(R.T), rtol=0, atol=1e-12 * np.abs(R).max())
+
+
 def test_row_space_factor_with_fewer_columns_than_rows(rng):
     w = rng.standard_normal((8, 3))
     H = block_hankel(w, 4)  # 12 rows, 5 columns
