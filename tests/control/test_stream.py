@@ -33,7 +33,7 @@ from stimsteer.control.plants import LinearNetworkPlant  # noqa: E402
 from stimsteer.control.realtime import run_live  # noqa: E402
 from stimsteer.sysid import StateSpaceModel  # noqa: E402
 
-N, M, P, PAST, H, RATE = 5, 2, 3, 3, 6, 50.0
+N, M, P, PAST, H, RATE = 5, 2, 3, 3, 6, 25.0  # a 40 ms period: a budgeted plan takes 10-25 ms here
 LO, HI, SLEW, BUDGET = -1.0, 1.0, 0.3, 4.0
 _TAG = f"{os.getpid()}-{time.monotonic_ns() % 10**9}"  # stream names no other run on this machine uses
 
@@ -80,11 +80,12 @@ def _received_are_safe(sim):
 
 
 class _Faulty:
-    """Injects late plans (sleeps past the period), solver crashes and failed plans at chosen controlled steps."""
+    """Injects late plans (sleeps past the period), solver crashes, failed plans and plans that ask for the amplitude
+    maximum on every input (a greedy plan the gate has to reduce) at chosen controlled steps."""
 
-    def __init__(self, inner, *, late=(), raises=(), fails=(), skip=20):
+    def __init__(self, inner, *, late=(), raises=(), fails=(), greedy=(), skip=20):
         self._c, self.calls = inner, -skip
-        self._late, self._raises, self._fails = set(late), set(raises), set(fails)
+        self._late, self._raises, self._fails, self._greedy = set(late), set(raises), set(fails), set(greedy)
 
     def __getattr__(self, name):
         return getattr(self._c, name)
@@ -103,6 +104,10 @@ class _Faulty:
             import dataclasses
 
             return dataclasses.replace(plan, status="failed", fallback=True, inputs=plan.inputs + 30.0)
+        if k in self._greedy:
+            import dataclasses
+
+            return dataclasses.replace(plan, inputs=np.full_like(plan.inputs, HI))
         return plan
 
 
@@ -208,7 +213,8 @@ def test_a_binding_charge_window_with_late_steps_and_a_stalled_inlet_leaves_only
                      window_budgets=(WindowBudget("charge_rate_window", 4.0, 10, np.ones(2), np.zeros(2), "uC"),),
                      train_limits=TrainLimits((6, None), (None, 7), (None, 12), (1, 2)))
     ctrl = ModelPredictiveController(model=model, limits=lim, horizon_steps=H, input_weight=1e-3).fit()
-    faulty = _Faulty(ctrl, late={4, 5, 20}, raises={9})
+    # three greedy plans in a row ask 6 uC of the window's 4: the gate reduces whatever the timing was before
+    faulty = _Faulty(ctrl, late={4, 5, 20}, raises={9}, greedy={30, 31, 32})
     with _sim(model, "window", stall_after=PAST + 45) as sim, _bridge(ctrl, "window") as bridge:
         run = run_live(faulty, bridge, n_steps=400, target=np.full(P, 40.0), pace="source", max_stall_s=0.2)
         time.sleep(0.05)
@@ -242,7 +248,7 @@ def test_an_inlet_that_does_not_appear_is_refused_within_the_wait(system):
 
 @pytest.mark.parametrize("channels, rate, labels, match", [
     (2, RATE, None, "has 2 channels but the model has 3 outputs"),
-    (P, 20.0, None, "samples at 20 Hz but the model at 50 Hz"),
+    (P, 20.0, None, "samples at 20 Hz but the model at 25 Hz"),
     (P, RATE, ("a", "b", "c"), r"names its channels \['a', 'b', 'c'\]"),
 ])
 def test_a_stream_that_does_not_match_the_model_is_refused(system, channels, rate, labels, match):
