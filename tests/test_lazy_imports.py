@@ -49,5 +49,6 @@ def test_a_lazy_instance_is_made_once_even_when_threads_ask_at_the_same_moment()
 def test_units_still_convert_through_the_lazy_registry():
     from stimsteer.sysid.stimulation.units import UREG, convert, parse_quantity
 
-    assert convert(parse_quantity("1.5 mA", "amplitude"), "current", "amplitude") == 1500.0  # 1 mA = 1000 µA
+    # 1 mA = 1000 µA: BIPM 2019, The International System of Units (SI), 9th edition, the SI prefixes
+    assert convert(parse_quantity("1.5 mA", "amplitude"), "current", "amplitude") == 1500.0
     assert UREG.Unit("uC") == UREG.microcoulomb
