@@ -70,6 +70,14 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _given_as(args, filename) -> str:
+    """Which argument named a missing file (``" (the limits argument); check the path"``), or "" if none did."""
+    for name, value in vars(args).items():
+        if name != "command" and value is not None and str(value) == str(filename):
+            return f" (the {name.replace('_', '-')} argument); check the path"
+    return ""
+
+
 def main(argv=None) -> int:
     """Run ``stimsteer`` with ``argv`` (default: the process arguments) and return its exit code.
 
@@ -87,7 +95,7 @@ def main(argv=None) -> int:
     except StimsteerError as exc:
         return _fail(args.command, str(exc), 2)
     except (FileNotFoundError, IsADirectoryError, NotADirectoryError) as exc:
-        return _fail(args.command, f"{exc.strerror or exc}: {exc.filename}", 2)
+        return _fail(args.command, f"{exc.strerror or exc}: {exc.filename}{_given_as(args, exc.filename)}", 2)
     except KeyboardInterrupt as exc:
         return _fail(args.command, "interrupted; no partial output was kept.", getattr(exc, "code", 130))
     except Exception as exc:  # a bug, not bad input: still one line, with the way to see the traceback

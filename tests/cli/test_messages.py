@@ -147,3 +147,13 @@ def test_predict_with_chinese_channel_names_prints_no_glyph_warning(cjk_model, t
     assert not [w for w in caught if "Glyph" in str(w.message)]
     assert "Glyph" not in capsys.readouterr().err
     assert (tmp_path / "p" / "prediction.png").stat().st_size > 0
+
+
+def test_a_missing_file_is_named_with_the_argument_that_gave_it(tmp_path, capsys):
+    missing = tmp_path / "no_such_limits.toml"
+    code = main(["schedule", "--limits", str(missing), "--inputs", "3", "--past-steps", "10", "--horizon-steps", "20",
+                 "--states", "12", "--rate-hz", "250", "--trials", "4", "--trial-s", "1", "--rest-s", "0.5",
+                 "--out", str(tmp_path / "s.csv")])
+    assert code == 2
+    line = _one_line(capsys)
+    assert f"{missing} (the limits argument); check the path" in line
