@@ -80,7 +80,12 @@ class RidgeArx(BasePredictor):
         Ridge strength chosen by cross-validation (the largest alpha among equal best errors).
     cv_table_ : pandas.DataFrame
         One row per alpha: ``alpha``, ``mean_error``, ``std_error``, ``fold_0 … fold_{K-1}``; error = one-step
-        validation ``SSE / SST`` averaged over output channels (``1 − R²``).
+        validation ``SSE / SST`` averaged over output channels (``1 − R²``). With a structure search on a large
+        lagged vector (``(p + m)(L + 1)`` above 1,024 entries, ``L`` the chosen structure's longest lag), this is the
+        chosen structure's table from the search: scored on the search's rows (those of the grid's longest window,
+        ``L_max − L`` rows fewer per valid run than its own), which spares a second cross-validation of the same
+        structure on nearly the same rows; held-out trials are never fitted either way, and ``alpha_`` is the
+        best strength of this table. The coefficients are then fitted at ``alpha_`` on all the structure's own rows.
     scale_ : ndarray, shape (n_regressors,)
         Regressor standard deviations (root mean squares without intercept) used to standardise the penalty.
     condition_number_ : float
@@ -215,11 +220,13 @@ class RidgeArx(BasePredictor):
         structure, structures = select_structure(self, session, candidates, alphas, search)
         prob = self._validated(session, structure)
         kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
-        if search.get("n_lags") == prob.L and prob.size > _SMALL_GRAM and structure in search["tables"]:
-            # large Grams: the structure's own rows are the search's, whose moments and scores it reuses
-            folds, total, k, scheme, shift = search["moments"]
+        if prob.size > _SMALL_GRAM and structure in search.get("tables", {}):
+            # large Grams: the structure is scored on the search's rows (its table from the search); the final fit
+            # takes the structure's own rows (the search's moments when they are the same rows)
+            table, k, scheme = search["tables"][structure], search["moments"][2], search["moments"][3]
+            own = search["moments"] if search["n_lags"] == prob.L else self._accumulate(session, prob)
+            _folds, total, _k, _scheme, shift = own
             self._check_rows(prob, total.n)
-            table = search["tables"][structure]
         else:
             folds, total, k, scheme, shift = self._accumulate(session, prob)
             self._check_rows(prob, total.n)

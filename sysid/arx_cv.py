@@ -17,15 +17,19 @@ does not exist in floating point (a strength at or below the rounding level of `
 the null directions, or a semi-definite Schur complement) the structure falls back to the eigendecomposition route
 of :func:`stimsteer.sysid.arx_regression._ridge_path` for that fold.
 
-Cost: the strengths of a fold are factored on worker threads (one per BLAS thread the machine has, each with one
-BLAS thread; multi-threaded OpenBLAS stalls on a busy machine), each strength computed exactly as on one thread and
-the results taken in strength order, so the numbers do not depend on the number of workers. Large Grams (held as
-lag sums, :func:`_cv_errors_large`) are assembled fold by fold straight into the order ``[union, targets, rest]``
-and centred in place: the training Gram (freed before the held-out one is assembled) and one core-sized buffer per
-worker are the only Gram-sized arrays. A Cholesky factor per fold and strength remains (``d³/3`` flops each): an
-eigendecomposition per fold would give every strength, but costs ``~9 d³`` flops with the eigenvectors, more
-than the nine factors of the default grid; the fold Grams differ by their centring and per-fold scaling (a full-rank
-diagonal change), so no factor can be updated from another one exactly.
+Cost: small Grams (moments held whole, :func:`_cv_errors`) factor the strengths of a fold on worker threads (one
+per BLAS thread the machine has, each with one BLAS thread; multi-threaded OpenBLAS stalls on a busy machine), each
+strength computed exactly as on one thread, so the numbers do not depend on the number of workers. Large Grams (held
+as lag sums, :func:`_cv_errors_large`) run their folds on the worker threads instead; each fold's Gram is assembled
+straight into the order ``[union, targets, rest]`` and centred in place, and from :data:`_BAND_FROM` core
+regressors on the core is reduced once per fold to band form (:mod:`stimsteer.sysid.arx_band`): every strength is
+then a banded factor and two applications of an orthogonal matrix, not a dense factor of its own. A full
+eigendecomposition per fold would give every strength too, but its tridiagonal reduction is matrix-vector work:
+measured 17 dense factors' time at 2,300 rows, against about four for the band reduction (its ``symm``/``syr2k``
+run at matrix-matrix speed). The fold Grams differ by their centring and per-fold scaling (a full-rank diagonal
+change), so no factor or reduction is updated from another fold's. The banded route is backward stable like the
+dense one (orthogonal reductions; errors ``~ κ(R + α I) · eps``), and its factor exists exactly when the dense one
+does (same eigenvalues); where it does not, the structure takes the eigen route as above.
 """
 
 from __future__ import annotations
@@ -40,6 +44,7 @@ import pandas as pd
 import scipy.linalg as sla
 
 from ._lagged import _lagged_gram, _single_threaded_blas
+from .arx_band import band_betas
 from .arx_regression import _Problem, _ridge_path, _rounding_level, centred_lead, lead_index, lead_order
 
 __all__ = ["cv_errors", "cv_table"]
@@ -105,28 +110,18 @@ class _Runner:
     def __init__(self, pool, n_workers: int):
         self.pool, self.n = pool, n_workers
 
-    def matmul(self, A: np.ndarray, B: np.ndarray, block: int) -> np.ndarray:
-        """``A @ B`` with the columns of ``B`` shared among the workers in blocks of ``block`` columns (a fixed
-        split: the numbers do not depend on the number of workers)."""
-        out = np.empty((A.shape[0], B.shape[1]))
 
-        def part(j):
-            np.matmul(A, B[:, j:j + block], out=out[:, j:j + block])
-
-        list(self.pool.map(part, range(0, B.shape[1], max(1, block))))
-        return out
-
-
-def _fold_betas(R, r, n_core: int, extras, live, alphas, run: _Runner, order: str = "F") -> dict:
+def _fold_betas(R, r, n_core: int, extras, live, alphas, run: _Runner, order: str = "F", buffer=None) -> dict:
     """Standardised coefficients ``{structure: [β per strength] or None}`` of one fold (the core leads ``R``):
     one core factor per strength, the strengths shared among the worker threads (the results are taken in
-    strength order, each computed as on one thread)."""
+    strength order, each computed as on one thread). ``buffer``: a core-sized array of ``order`` to use as the
+    first worker's buffer."""
     Rc, rc = R[:n_core, :n_core], r[:n_core]
     if not (n_core == 0 or min(alphas) > _rounding_level(Rc)):
         return {i: None for i in live}
     buffers: queue.SimpleQueue = queue.SimpleQueue()  # one per worker, re-used over the strengths of this fold
-    for _ in range(min(run.n, len(alphas))):  # (a fresh core-sized array per strength costs page faults)
-        buffers.put(np.empty(Rc.shape, order=order))
+    for j in range(min(run.n, len(alphas))):  # (a fresh core-sized array per strength costs page faults)
+        buffers.put(buffer if j == 0 and buffer is not None else np.empty(Rc.shape, order=order))
 
     def one(alpha):
         buffer = buffers.get()
@@ -222,14 +217,33 @@ def _cv_errors(probs: list[_Problem], folds, total, alphas, run: _Runner) -> lis
     return errors
 
 
+#: From this many core regressors on, a fold's strengths are solved from one band reduction of its core
+#: (:mod:`stimsteer.sysid.arx_band`, ~4/3 d³ flops) instead of one Cholesky factor per strength (d³/3 each); below
+#: it the factors are cheap, and the numbers are those of before, bit for bit.
+_BAND_FROM = 512
+
+
+class _InThread:
+    """A pool stand-in that maps in the calling thread (the folds of a large Gram already run on the workers)."""
+
+    @staticmethod
+    def map(fn, items):
+        return map(fn, items)
+
+
+_SERIAL = _Runner(_InThread(), 1)
+
+
 def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, keep=None) -> list[np.ndarray]:
     """As :func:`_cv_errors`, for Grams held as lag sums (``total`` and ``folds`` with ``.sums``).
 
     The total Gram is assembled once, in the order ``[union, targets, rest]``. Each fold's training Gram is
     assembled from the other folds' sums in that order (regressors and targets are then views), centred and
     standardised in place; the held-out moments are the total's minus the training's (:func:`_held_out`, in place
-    of the training block once its strengths are solved), so a fold costs one Gram assembly, not two. Memory: the
-    total and one fold's Gram, plus one core-sized buffer per worker.
+    of the training block once its strengths are solved), so a fold costs one Gram assembly, not two. The folds run
+    on the worker threads (one BLAS thread each; each fold computed as on one thread, so the numbers do not depend
+    on the number of workers); one fold solves at a time, in the one core-sized buffer, while the other workers
+    assemble and score theirs. Memory: the total, one fold's Gram per worker, the buffer and the fold's band form.
     """
     k = len(folds)
     errors = [np.full((len(alphas), k), np.nan) for _ in probs]
@@ -237,26 +251,51 @@ def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, 
     yi, nx = probs[0].y_idx, xi.size
     index = lead_index(total.s.size, probs[0].c, np.concatenate([xi, yi]))
     whole = _Whole(_lagged_gram(total.sums, index), lead_order(total.s, index), total.n, nx + yi.size)
-    block = yi.size * -(-len(alphas) // 2)  # two column blocks per structure (fixed: not the worker count)
-    for f, held in enumerate(folds):
+    works: queue.SimpleQueue = queue.SimpleQueue()  # one core-sized buffer, taken by one fold's solves at a time
+    works.put(None)
+
+    def one(f):
+        held = folds[f]
         n_tr = total.n - held.n
         live = [i for i, q in enumerate(probs) if held.n and n_tr > q.x_idx.size]
-        if not live:
-            continue
-        train = reduce(lambda a, b: a.plus(b), [g.sums for j, g in enumerate(folds) if j != f])
-        s_tr = lead_order(train.lagged_sums(), index)
-        mu = s_tr / n_tr if probs[0].fit_intercept else np.zeros_like(s_tr)
-        W, C, raw = centred_lead(train, index, nx + yi.size, n_tr, s_tr, mu)
-        del train
-        betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, run)
-        Q, qyy, sst = _held_out(whole, C, raw, scale, s_tr, n_tr, mu, nx)
-        for i in live:
-            idx = np.concatenate([np.arange(n_core), extras[i]])
-            errors[i][:, f] = _errors(betas[i], scale, idx, Q, qyy, sst, lambda A, B: run.matmul(A, B, block))
-        del W, C, Q
+        return _large_fold(probs, folds, f, whole, index, (n_core, extras, live), alphas, works) if live else {}
+
+    for f, found in enumerate(run.pool.map(one, range(k))):
+        for i, col in found.items():
+            errors[i][:, f] = col
     if keep is not None:
         keep.update(index=index, gram=whole.W)
     return errors
+
+
+def _large_fold(probs, folds, f, whole, index, layout, alphas, works) -> dict:
+    """Validation errors ``{structure: (n_alphas,)}`` of fold ``f`` (:func:`_cv_errors_large`)."""
+    n_core, extras, live = layout
+    nx, ny = whole.k - probs[0].y_idx.size, probs[0].y_idx.size
+    n_tr = whole.n - folds[f].n
+    train = reduce(lambda a, b: a.plus(b), [g.sums for j, g in enumerate(folds) if j != f])
+    s_tr = lead_order(train.lagged_sums(), index)
+    mu = s_tr / n_tr if probs[0].fit_intercept else np.zeros_like(s_tr)
+    W, C, raw = centred_lead(train, index, nx + ny, n_tr, s_tr, mu)
+    del train
+    work = works.get()  # the solves of one fold at a time (the other worker assembles, scores): one buffer
+    try:
+        work = np.empty(n_core * n_core) if work is None else work
+        betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work)
+    finally:
+        works.put(work)
+    Q, qyy, sst = _held_out(whole, C, raw, scale, s_tr, n_tr, mu, nx)
+    out = {}
+    for i in live:
+        idx = np.concatenate([np.arange(n_core), extras[i]])
+        out[i] = _errors(betas[i], scale, idx, Q, qyy, sst)
+    del W, C, Q
+    return out
+
+
+#: Rows per block of the in-place centring updates (their temporaries are this many rows of the Gram; two folds
+#: run at once).
+_ROWS = 64
 
 
 class _Whole:
@@ -264,7 +303,7 @@ class _Whole:
     ``k × k`` block."""
 
     def __init__(self, W, s, n, k):
-        self.W, self.s, self.n, self.raw = W, s, n, np.diagonal(W)[:k].copy()
+        self.W, self.s, self.n, self.k, self.raw = W, s, n, k, np.diagonal(W)[:k].copy()
 
 
 def _held_out(whole: _Whole, C, raw_tr, scale, s_tr, n_tr, mu, nx):
@@ -281,9 +320,10 @@ def _held_out(whole: _Whole, C, raw_tr, scale, s_tr, n_tr, mu, nx):
     a = s[:k] - n * mu[:k]
     col = np.concatenate([scale, np.ones(k - nx)]) * n_tr
     Q = C[:nx]
-    for i in range(0, nx, 256):
-        j = min(nx, i + 256)
-        Q[i:j] *= -scale[i:j, None] * col[None, :]
+    for i in range(0, nx, _ROWS):
+        j = min(nx, i + _ROWS)
+        Q[i:j] *= col[None, :]
+        Q[i:j] *= -scale[i:j, None]
         Q[i:j] += W[i:j, :k]
         Q[i:j] -= np.outer(mu[i:j], a)
         Q[i:j] -= np.outer(s[i:j], mu[:k])
@@ -292,16 +332,21 @@ def _held_out(whole: _Whole, C, raw_tr, scale, s_tr, n_tr, mu, nx):
     return Q, qyy, raw_h - s_h ** 2 / n_h
 
 
-def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, run):
+def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work):
     """Standardised coefficients of each live structure on one fold's training rows; ``C`` (the centred training
-    block ``[Cxx Cxy]``) is standardised in place."""
+    block ``[Cxx Cxy]``) is standardised in place. From :data:`_BAND_FROM` core regressors on by one band
+    reduction of the core (in ``work``, a core-sized buffer), below by a core factor per strength."""
     R = C[:nx]
     scale = np.sqrt(np.clip(np.diagonal(R)[:nx], 0.0, None) / n_tr)
     scale[scale == 0] = 1.0
     R /= n_tr * scale[:, None]
     R[:, :nx] /= scale[None, :]
     R, r = R[:, :nx], R[:, nx:]
-    found = _fold_betas(R, r, n_core, extras, live, alphas, run, order="C")
+    if n_core >= _BAND_FROM:
+        found = band_betas(R, r, n_core, extras, live, alphas, work)
+    else:
+        found = _fold_betas(R, r, n_core, extras, live, alphas, _SERIAL, order="C",
+                            buffer=work[:n_core * n_core].reshape(n_core, n_core))
     for i in live:
         if found[i] is None:  # no Cholesky factor: the eigen route, in this structure alone
             idx = np.concatenate([np.arange(n_core), extras[i]])
@@ -309,7 +354,7 @@ def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, run):
     return found, scale
 
 
-def _errors(betas, scale, idx, Q, qyy, sst, matmul=np.matmul) -> np.ndarray:
+def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:
     """Mean over outputs of SSE / SST for each coefficient set (all strengths in one product).
 
     ``Q`` holds the held-out centred moments ``[Qxx Qxy]`` over the union; the coefficients on ``idx`` are placed in
@@ -322,7 +367,7 @@ def _errors(betas, scale, idx, Q, qyy, sst, matmul=np.matmul) -> np.ndarray:
     a, p = len(betas), betas[0].shape[1]
     B = np.zeros((nx, a, p))
     B[idx] = np.stack([b / scale[idx, None] for b in betas], axis=1)
-    QB = matmul(Q[:, :nx], B.reshape(nx, a * p)).reshape(nx, a, p)
+    QB = (Q[:, :nx] @ B.reshape(nx, a * p)).reshape(nx, a, p)
     sse = qyy[None, :] - 2.0 * np.einsum("xap,xp->ap", B, Q[:, nx:]) + np.einsum("xap,xap->ap", B, QB)
     sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
     return np.mean(sse[:, ok] / sst[ok], axis=1)

@@ -145,7 +145,7 @@ def lead_index(n_entries: int, c: int, lead: np.ndarray) -> np.ndarray:
     return pos.reshape(-1, c)
 
 
-def centred_lead(sums, index: np.ndarray, k: int, n: int, s: np.ndarray, mu: np.ndarray, rows: int = 256,
+def centred_lead(sums, index: np.ndarray, k: int, n: int, s: np.ndarray, mu: np.ndarray, rows: int = 64,
                  gram: np.ndarray | None = None):
     """The Gram of ``sums`` in the order of ``index`` (:func:`lead_index`) with its leading ``k × k`` block centred
     about ``mu`` in place: ``W − μ (s − n μ)ᵀ − s μᵀ`` (``s``, ``mu`` in that order too), ``rows`` rows at a time

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from stimsteer.sysid import arx, arx_cv, arx_regression
+from stimsteer.sysid import arx, arx_band, arx_cv, arx_regression
 from stimsteer.sysid._lagged import _Moments
 from stimsteer.sysid.arx import RidgeArx
 from stimsteer.sysid.arx_structure import _longest, structure_candidates
@@ -45,8 +45,18 @@ def _est(**kw):
     return RidgeArx(**{**base, **kw})
 
 
+def _band_route(monkeypatch, band: bool):
+    """Force the band route (core of any size, a narrow band so that several panels are reduced) or keep the
+    dense factors (the cores here are far below ``_BAND_FROM``)."""
+    if band:
+        monkeypatch.setattr(arx_cv, "_BAND_FROM", 0)
+        monkeypatch.setattr(arx_band, "BANDWIDTH", 3)
+
+
+@pytest.mark.parametrize("band", [False, True])
 @pytest.mark.parametrize("alphas", [np.logspace(-8, 0, 9), np.array([0.0, 1e-3, 1.0])])
-def test_large_gram_errors_equal_the_eigen_route_for_every_structure(monkeypatch, alphas):
+def test_large_gram_errors_equal_the_eigen_route_for_every_structure(monkeypatch, alphas, band):
+    _band_route(monkeypatch, band)
     est = _est()
     candidates, _ = structure_candidates(est)
     probs, folds, total, materialised = _large_moments(est, _session(), candidates, monkeypatch)
@@ -59,7 +69,9 @@ def test_large_gram_errors_equal_the_eigen_route_for_every_structure(monkeypatch
         np.testing.assert_allclose(errors, before, rtol=1e-10, atol=1e-15)
 
 
-def test_large_gram_singular_falls_back_to_the_eigen_route(monkeypatch):
+@pytest.mark.parametrize("band", [False, True])
+def test_large_gram_singular_falls_back_to_the_eigen_route(monkeypatch, band):
+    _band_route(monkeypatch, band)
     session = _session(collinear=True)
     est = RidgeArx(output_lags=1, input_lags="auto", delay_samples=2, lag_grid=(1, 2), alphas=(0.0, 1e-2))
     candidates, _ = structure_candidates(est)
@@ -72,8 +84,10 @@ def test_large_gram_singular_falls_back_to_the_eigen_route(monkeypatch):
     assert np.isfinite(np.concatenate(got)).all()
 
 
+@pytest.mark.parametrize("band", [False, True])
 @pytest.mark.parametrize("workers", [1, 3])
-def test_worker_threads_give_the_numbers_of_one_thread_bit_for_bit(monkeypatch, workers):
+def test_worker_threads_give_the_numbers_of_one_thread_bit_for_bit(monkeypatch, workers, band):
+    _band_route(monkeypatch, band)
     est = _est()
     candidates, _ = structure_candidates(est)
     probs, folds, total, _m = _large_moments(est, _session(seed=2), candidates, monkeypatch)
@@ -90,17 +104,26 @@ def test_worker_threads_give_the_numbers_of_one_thread_bit_for_bit(monkeypatch, 
         np.testing.assert_array_equal(a, b)
 
 
-def test_large_fit_predicts_as_the_earlier_route(monkeypatch):
+@pytest.mark.parametrize("band", [False, True])
+def test_large_fit_predicts_as_the_earlier_route(monkeypatch, band):
+    # issue 14: on large Grams the chosen structure keeps its table from the search (scored on the search's rows:
+    # here the grid's longest window is 3, the chosen structure's 2), and is fitted on its own rows at that alpha
     session = _session(seed=4)
     kw = dict(lag_grid=(1, 2, 3), delay_grid=(1, 2))
     slow = _est(**kw).fit(session)  # small Grams: the earlier route, bit for bit
-    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    _band_route(monkeypatch, band)
     monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)  # the final fit by one factor and Lanczos
+    est = _est(**kw)
+    candidates, _ = structure_candidates(est)
+    probs, folds, _total, materialised = _large_moments(est, session, candidates, monkeypatch)
     fast = _est(**kw).fit(session)
-    assert (fast.output_lags_, fast.input_lags_, fast.delay_samples_, fast.alpha_) == \
-        (slow.output_lags_, slow.input_lags_, slow.delay_samples_, slow.alpha_)
-    np.testing.assert_allclose(fast.cv_table_.to_numpy(), slow.cv_table_.to_numpy(), rtol=1e-9)
+    chosen = (fast.output_lags_, fast.input_lags_, fast.delay_samples_)
+    assert chosen + (fast.alpha_,) == (slow.output_lags_, slow.input_lags_, slow.delay_samples_, slow.alpha_)
+    assert _longest(chosen) < max(_longest(c) for c in candidates)  # its own rows are not the search's
+    searched = _eigen_reference(probs[candidates.index(chosen)], folds, materialised, fast.cv_table_["alpha"])
+    np.testing.assert_allclose(fast.cv_table_.filter(like="fold_").to_numpy(), searched, rtol=1e-9)
     np.testing.assert_allclose(fast.structure_table_["mean_error"], slow.structure_table_["mean_error"], rtol=1e-9)
+    assert fast.n_rows_ == slow.n_rows_  # fitted on its own rows
     assert fast.condition_number_ == pytest.approx(slow.condition_number_, rel=1e-9)
     np.testing.assert_allclose(fast.coef_, slow.coef_, rtol=1e-9, atol=1e-12 * np.abs(slow.coef_).max())
     np.testing.assert_allclose(fast.intercept_, slow.intercept_, rtol=1e-9, atol=1e-12)
@@ -138,7 +161,9 @@ def test_large_cross_validation_holds_two_grams_and_the_worker_buffers(monkeypat
     # An earlier route held the total, training and held-out Grams, the centred blocks and its buffer at once
     # (5.2 Grams at peak here, measured with tracemalloc); the route of issue 14's first pass 3.3 with two workers
     # (one fold's Gram, a core-sized buffer per worker), at two Gram assemblies per fold. This route keeps the total
-    # Gram as well (4.3 measured), and assembles one Gram per fold instead of two.
+    # Gram as well (4.3 measured), and assembles one Gram per fold instead of two. Since the folds run on the worker
+    # threads (issue 14, band route), each worker holds a fold's Gram, and one fold at a time the core-sized buffer
+    # (4.4 measured; 5.5 when each worker had its own buffer).
     est = RidgeArx(output_lags=100, input_lags=100, delay_samples="auto", delay_grid=(0, 1))
     session = _session(T=8000)
     candidates, _ = structure_candidates(est)
