@@ -35,10 +35,16 @@ BANDWIDTH = 128
 
 
 def _compact_wy(V: np.ndarray, tau: np.ndarray) -> np.ndarray:
-    """``T`` (upper triangular) with ``H_1 … H_k = I − V T Vᵀ`` for the reflectors ``H_i = I − τ_i v_i v_iᵀ``
-    (the forward column-wise recurrence of LAPACK's ``dlarft``)."""
+    """``T`` (upper triangular) with ``H_1 … H_k = I − V T Vᵀ`` for the reflectors ``H_i = I − τ_i v_i v_iᵀ``:
+    ``T⁻¹ = diag(1/τ) + striu(VᵀV)`` (Joffrain, Low, Quintana-Ortí, van de Geijn & Van Zee 2006, "Accumulating
+    Householder transformations, revisited", ACM TOMS 32:169–179), one triangular inversion; with a zero ``τ`` (a
+    column already zero below its diagonal) the forward column-wise recurrence of LAPACK's ``dlarft``."""
     k = tau.size
     VtV = V.T @ V
+    if np.all(tau != 0):
+        Tinv = np.triu(VtV, 1)
+        Tinv[np.diag_indices(k)] = 1.0 / tau
+        return sla.solve_triangular(Tinv, np.eye(k), lower=False, check_finite=False)
     T = np.zeros((k, k))
     for i in range(k):
         T[i, i] = tau[i]

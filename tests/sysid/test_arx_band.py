@@ -85,3 +85,14 @@ def test_band_betas_refuse_strengths_at_the_rounding_level():
     r = np.ones((12, 1))
     found = band_betas(R, r, 12, [np.zeros(0, dtype=np.intp)], [0], np.array([0.0, 1.0]), np.empty(144))
     assert found == {0: None}
+
+
+def test_a_panel_already_zero_below_the_band_is_kept():
+    # a tridiagonal R reduced to half-bandwidth 1: every panel is zero below the band (reflectors with τ = 0, the
+    # recurrence branch of the compact WY form)
+    d = 9
+    R = 2.0 * np.eye(d) + np.diag(np.full(d - 1, -0.5), 1) + np.diag(np.full(d - 1, -0.5), -1)
+    X = np.arange(2.0 * d).reshape(d, 2)
+    form = BandForm(R, np.empty(d * d), 1)
+    got = form.solve(form.to_band(X), 0.1)
+    np.testing.assert_allclose(got, np.linalg.solve(R + 0.1 * np.eye(d), X), rtol=1e-12)
