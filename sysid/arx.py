@@ -80,12 +80,10 @@ class RidgeArx(BasePredictor):
         Ridge strength chosen by cross-validation (the largest alpha among equal best errors).
     cv_table_ : pandas.DataFrame
         One row per alpha: ``alpha``, ``mean_error``, ``std_error``, ``fold_0 … fold_{K-1}``; error = one-step
-        validation ``SSE / SST`` averaged over output channels (``1 − R²``). With a structure search on a large
-        lagged vector (``(p + m)(L + 1)`` above 1,024 entries, ``L`` the chosen structure's longest lag), this is the
-        chosen structure's table from the search: scored on the search's rows (those of the grid's longest window,
-        ``L_max − L`` rows fewer per valid run than its own), which spares a second cross-validation of the same
-        structure on nearly the same rows; held-out trials are never fitted either way, and ``alpha_`` is the
-        best strength of this table. The coefficients are then fitted at ``alpha_`` on all the structure's own rows.
+        validation ``SSE / SST`` averaged over output channels (``1 − R²``). After a structure search on a large
+        lagged vector (``(p + m)(L + 1) > 1024``), the chosen structure's table from the search, scored on its rows
+        (the grid's longest window: ``L_max − L`` rows fewer per valid run; held-out trials are never fitted); the
+        coefficients are then fitted at its best strength ``alpha_`` on all the structure's own rows.
     scale_ : ndarray, shape (n_regressors,)
         Regressor standard deviations (root mean squares without intercept) used to standardise the penalty.
     condition_number_ : float
@@ -132,7 +130,9 @@ class RidgeArx(BasePredictor):
     read in the calling thread only); the sums are taken in chunk order, so every run gives the same numbers. Chunks are read into ``workers + 2`` re-used
     buffers of ``chunk_samples × (p + m)`` values, which bound the peak memory (sources whose ``read`` takes
     ``out=``, as Session and SessionFile do, are read straight into them). The cross-validation factors the
-    strengths of a fold on worker threads the same way (:mod:`stimsteer.sysid.arx_cv`).
+    strengths of a fold on worker threads the same way, or, for large lagged vectors, runs the folds on them, each
+    fold's strengths from one band reduction of its Gram (:mod:`stimsteer.sysid.arx_cv`,
+    :mod:`stimsteer.sysid.arx_band`).
 
     References
     ----------
