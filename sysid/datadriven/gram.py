@@ -227,8 +227,10 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     del B
     c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
     release_freed_memory()  # the peak of the fold: what was freed so far goes back first
-    M = _congruence(V, Gv, n_b)  # Vᵀ G11 V of the validation Gram (upper triangle)
+    G11v = np.asfortranarray(Gv[:, :n_b])
     del Gv
+    M = _congruence(V, G11v)  # Vᵀ G11 V of the validation Gram (upper triangle); V and G11v are overwritten
+    del G11v, V
     quad = sla.blas.dsyrk(1.0, A, trans=1)  # AᵀA (upper triangle)
     quad *= M  # (AᵀA) ∘ (Vᵀ G11 V), upper triangle
     del M
@@ -240,16 +242,23 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     return np.asarray(out)
 
 
-def _congruence(V: np.ndarray, Gv: np.ndarray, n_b: int) -> np.ndarray:
-    """The upper triangle of ``Vᵀ Gv11 V`` (``Gv11 = Gv[:, :n_b]``, rows ``[0, n_b)`` of a validation Gram): with the Cholesky factor ``Gv11 = C Cᵀ`` it is ``PᵀP``,
-    ``P = Cᵀ V`` (``n³/3 + n³ + n³`` flops: a triangular product and a symmetric rank-k update, against ``4n³``
-    for two general products); two general products where ``Gv11`` is only semi-definite (a small fold)."""
-    C = np.asfortranarray(Gv[:, :n_b])
-    try:
-        C = sla.cholesky(C, lower=True, check_finite=False, overwrite_a=True)
-    except np.linalg.LinAlgError:
-        return np.triu((V.T @ Gv[:, :n_b]) @ V)
-    P = sla.blas.dtrmm(1.0, C, V, side=0, lower=1, trans_a=1)  # Cᵀ V
+def _congruence(V: np.ndarray, G11v: np.ndarray) -> np.ndarray:
+    """The upper triangle of ``Vᵀ G11v V`` (``G11v`` symmetric positive semi-definite, a validation Gram's block).
+
+    With the Cholesky factor ``G11v = C Cᵀ`` it is ``PᵀP``, ``P = Cᵀ V`` (``n³/3 + n³ + n³`` flops: a triangular
+    product and a symmetric rank-k update, against ``4n³`` for two general products); two general products where
+    ``G11v`` is only semi-definite (a small fold). Memory: Fortran-ordered ``G11v`` and ``V`` are overwritten (the
+    factor, then ``P``), so no array of their size is added.
+    """
+    diagonal = np.diagonal(G11v).copy()
+    # LAPACK potrf overwrites the lower triangle only: the strict upper one and `diagonal` still hold G11v
+    C, info = sla.lapack.dpotrf(G11v, lower=1, overwrite_a=int(G11v.flags.f_contiguous), clean=0)
+    if info != 0:
+        G = np.triu(G11v, 1)
+        G += G.T
+        G[np.diag_indices_from(G)] = diagonal
+        return np.triu((V.T @ G) @ V)
+    P = sla.blas.dtrmm(1.0, C, V, side=0, lower=1, trans_a=1, overwrite_b=1)  # Cᵀ V
     del C
     return sla.blas.dsyrk(1.0, P, trans=1)
 

@@ -135,7 +135,7 @@ def test_congruence_of_the_validation_gram_is_its_definition(rank):
     Gv = (X @ X.T)[:n_b]  # rows [0, n_b) of a validation Gram
     V = np.linalg.qr(rng.standard_normal((n_b, n_b)))[0]
     expected = np.triu(V.T @ Gv[:, :n_b] @ V)  # the definition
-    np.testing.assert_allclose(gr._congruence(V, Gv, n_b), expected, atol=1e-12 * np.abs(expected).max())
+    np.testing.assert_allclose(gr._congruence(V.copy(order="F"), np.asfortranarray(Gv[:, :n_b])), expected, atol=1e-12 * np.abs(expected).max())
 
 
 # ------------------------------------------------------------------------------------------------ predictors
