@@ -326,17 +326,21 @@ def report_hankel_build(session, args):
         with blas_threads(1):
             qrs.append(timed_cpu(lambda: sla.qr(Ht, mode="r", overwrite_a=True, check_finite=False)[0]))
         del Ht
-    (t_b, cpu_b, (F, k)), (t_q, _cpu_q, R) = min(builds, key=lambda r: r[0]), min(qrs, key=lambda r: r[0])
+    (t_b, cpu_b, (F, k)), (t_q, cpu_q, R) = min(builds, key=lambda r: r[0]), min(qrs, key=lambda r: r[0])
     G = R.T @ R
     err = np.abs(F @ F.T - G).max() / np.abs(G).max()
     print(f"  compressed Hankel build: {n_rows} rows x {k} columns (depth {depth}, {len(segs)} trials, "
           f"{k * n_rows * 8 / 1e6:.0f} MB materialised); load average {os.getloadavg()[0]:.2f}")
     print(f"    one QR of the materialised data, one BLAS thread: {t_q:.2f} s (best of {args.repeat}: "
-          f"{', '.join(f'{r[0]:.2f}' for r in qrs)})")
+          f"{', '.join(f'{r[0]:.2f}' for r in qrs)}); cores busy {cpu_q / t_q:.2f} (what one thread gets now)")
     print(f"    row_space_factor: {t_b:.2f} s (best of {args.repeat}: {', '.join(f'{r[0]:.2f}' for r in builds)}); "
           f"cores busy {cpu_b / t_b:.2f} (every run: {', '.join(f'{r[1] / r[0]:.2f}' for r in builds)})")
     print(f"    RATIO build / QR = {t_b / t_q:.2f} (target <= 0.6); cores busy {cpu_b / t_b:.2f} (target >= 1.8); "
           f"max |F Fᵀ - RᵀR| / max |RᵀR| = {err:.1e}")
+    # on a busy machine one thread gets less than a core: the build's cores over the one-thread QR's say how many
+    # threads ran side by side (2: both workers; 1: they took turns)
+    print(f"    threads side by side: build cores busy ÷ one-thread QR cores busy = {cpu_b / t_b / (cpu_q / t_q):.2f} "
+          "(2 workers)")
 # ============================================================================================ end HANKEL BUILD
 # ============================================================================================ end SUBSPACE RATIO
 

@@ -353,7 +353,7 @@ def _stream_r(sigs, spans, depth: int, n_rows: int, step: int) -> np.ndarray:
     ``M`` (columns of the data matrix as rows) of ``spans``: each chunk is folded into ``R`` by LAPACK's
     triangular-pentagonal QR (``tpqrt``), which costs ``2 k n²`` for ``k`` columns, as a QR of the chunk alone,
     without refactoring ``R`` itself (a QR of ``[R; M]`` would cost ``2 (n + k) n²``)."""
-    from scipy.linalg import lapack
+    from ._lapack_nogil import tpqrt_inplace
 
     R = np.zeros((n_rows, n_rows), order="F")
     flat = np.empty(n_rows * step)
@@ -362,23 +362,19 @@ def _stream_r(sigs, spans, depth: int, n_rows: int, step: int) -> np.ndarray:
         k = c1 - c0 - depth + 1
         buf = flat[: n_rows * k].reshape(n_rows, k)
         _fill_columns(buf, sigs, c0, depth)
-        R, _b, _t, info = lapack.dtpqrt(0, nb, R, buf.T, overwrite_a=1, overwrite_b=1)
-        if info != 0:  # pragma: no cover - only for invalid arguments
-            raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
+        R = tpqrt_inplace(R, buf.T, 0, nb)  # the GIL is released inside: the workers run side by side
     return R
 
 
 def _merge_r(parts) -> np.ndarray:
     """``R`` with ``RᵀR = Σ R_iᵀR_i`` of upper-triangular parts, each folded in by ``tpqrt`` with a triangular
     pentagon (``O(n³)`` per part, independent of the data length)."""
-    from scipy.linalg import lapack
+    from ._lapack_nogil import tpqrt_inplace
 
     R = parts[0]
     for other in parts[1:]:
         n = R.shape[0]
-        R, _b, _t, info = lapack.dtpqrt(n, min(n, 64), R, np.asfortranarray(np.triu(other)), overwrite_a=1)
-        if info != 0:  # pragma: no cover - only for invalid arguments
-            raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
+        R = tpqrt_inplace(R, np.asfortranarray(np.triu(other)), n, min(n, 64))
     return R
 
 
@@ -426,7 +422,8 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     Tall-skinny QR: each worker folds its chunks of columns into one triangular factor by triangular-pentagonal QR
     steps (LAPACK ``tpqrt``: ``2 k n²`` flops per chunk of ``k`` columns, the cost of a QR of the chunk alone), so
     the whole build costs one QR of the data split over the workers, plus one ``O(n³)`` merge per extra worker.
-    SciPy's LAPACK releases the GIL, so the workers run side by side. With fewer columns than rows the columns are
+    LAPACK runs with the GIL released (:mod:`._lapack_nogil`: SciPy's own ``tpqrt`` wrapper holds it), so the
+    workers run side by side. With fewer columns than rows the columns are
     gathered and factored at once (they are fewer than ``n_rows``).
 
     References

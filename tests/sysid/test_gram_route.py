@@ -127,6 +127,17 @@ def test_ridge_grid_errors_equal_direct_solves_and_scikit_learn(noisy):
     np.testing.assert_allclose(gr.ridge_map(Gt, n_b, s), ref, rtol=1e-8, atol=1e-10 * np.abs(ref).max())
 
 
+@pytest.mark.parametrize("rank", [12, 5])  # positive definite (Cholesky route) and semi-definite (two products)
+def test_congruence_of_the_validation_gram_is_its_definition(rank):
+    rng = np.random.default_rng(2)
+    n_b, n = 8, 12
+    X = rng.standard_normal((n, rank))
+    Gv = (X @ X.T)[:n_b]  # rows [0, n_b) of a validation Gram
+    V = np.linalg.qr(rng.standard_normal((n_b, n_b)))[0]
+    expected = np.triu(V.T @ Gv[:, :n_b] @ V)  # the definition
+    np.testing.assert_allclose(gr._congruence(V.copy(order="F"), np.asfortranarray(Gv[:, :n_b])), expected, atol=1e-12 * np.abs(expected).max())
+
+
 # ------------------------------------------------------------------------------------------------ predictors
 def _fit(cls, session, route, **kw):
     est = cls(**kw)

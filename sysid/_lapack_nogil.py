@@ -1,0 +1,87 @@
+"""LAPACK's triangular-pentagonal QR (``dtpqrt``) called with the GIL released.
+
+SciPy's f2py wrapper ``scipy.linalg.lapack.dtpqrt`` holds the GIL for the whole call (measured here: a pure-Python
+thread beside a 4096 × 220 call ran at 11 % of its idle rate, against 64 % beside ``dgeqrf``, whose wrapper releases
+it), so the workers of :func:`stimsteer.sysid.hankel.row_space_factor` took turns instead of running side by side
+(1.00 core busy). SciPy exports the same LAPACK routine as a C function for Cython (``scipy.linalg.cython_lapack``,
+a public API whose functions are in ``__pyx_capi__``); a ``ctypes.CFUNCTYPE`` call of that function releases the
+GIL while LAPACK runs. Where the pointer cannot be had (another SciPy build), the f2py wrapper is used: the same
+numbers, without the overlap.
+"""
+
+from __future__ import annotations
+
+import ctypes
+
+import numpy as np
+
+__all__: list = []
+
+_INT = ctypes.POINTER(ctypes.c_int)
+_DBL = ctypes.POINTER(ctypes.c_double)
+
+
+def _load_dtpqrt():
+    """The ctypes function of ``cython_lapack.dtpqrt``, or None."""
+    try:
+        from scipy.linalg import cython_lapack
+
+        capsule = cython_lapack.__pyx_capi__["dtpqrt"]
+        api = ctypes.pythonapi
+        api.PyCapsule_GetName.restype, api.PyCapsule_GetName.argtypes = ctypes.c_char_p, [ctypes.py_object]
+        api.PyCapsule_GetPointer.restype = ctypes.c_void_p
+        api.PyCapsule_GetPointer.argtypes = [ctypes.py_object, ctypes.c_char_p]
+        address = api.PyCapsule_GetPointer(capsule, api.PyCapsule_GetName(capsule))
+    except (ImportError, AttributeError, KeyError, ValueError, TypeError):  # pragma: no cover - other SciPy builds
+        return None
+    if not address:  # pragma: no cover
+        return None
+    # m, n, l, nb, a, lda, b, ldb, t, ldt, work, info (LAPACK's reference argument order)
+    return ctypes.CFUNCTYPE(None, _INT, _INT, _INT, _INT, _DBL, _INT, _DBL, _INT, _DBL, _INT, _DBL, _INT)(address)
+
+
+_DTPQRT = _load_dtpqrt()
+
+
+def tpqrt_nogil_available() -> bool:
+    """Whether :func:`tpqrt_inplace` releases the GIL (the ctypes route was found)."""
+    return _DTPQRT is not None
+
+
+def tpqrt_inplace(R: np.ndarray, B: np.ndarray, l: int, nb: int) -> np.ndarray:
+    """Fold the rows of ``B`` into the upper-triangular ``R``: afterwards ``triu(R)ᵀ triu(R)`` equals
+    ``RᵀR + BᵀB`` (before), as LAPACK ``dtpqrt(M, N, L, NB, R, B)``.
+
+    Parameters
+    ----------
+    R : ndarray, shape (n, n), float64, Fortran order
+        Overwritten with the new factor (its strictly lower part is not referenced).
+    B : ndarray, shape (k, n), float64, Fortran order
+        Overwritten (Householder vectors); its last ``l`` rows are upper trapezoidal (``l = 0``: a full block,
+        ``l = n``: upper triangular).
+    l, nb : int
+        LAPACK's ``L`` and block size (``1 <= nb <= n``).
+
+    Returns
+    -------
+    R : the same array (from the wrapper's output on the fallback route).
+    """
+    k, n = B.shape
+    if R.shape != (n, n) or not (R.flags.f_contiguous and B.flags.f_contiguous) \
+            or R.dtype != np.float64 or B.dtype != np.float64:
+        raise ValueError("tpqrt_inplace needs float64 Fortran-ordered R (n × n) and B (k × n)")
+    if _DTPQRT is None:  # pragma: no cover - other SciPy builds
+        from scipy.linalg import lapack
+
+        R, _b, _t, info = lapack.dtpqrt(l, nb, R, B, overwrite_a=1, overwrite_b=1)
+    else:
+        T = np.empty((nb, n), order="F")
+        work = np.empty(max(1, nb * n))
+        ints = [ctypes.c_int(v) for v in (k, n, l, nb, max(1, n), max(1, k), nb, 0)]
+        m_, n_, l_, nb_, lda, ldb, ldt, info_ = (ctypes.byref(v) for v in ints)
+        _DTPQRT(m_, n_, l_, nb_, R.ctypes.data_as(_DBL), lda, B.ctypes.data_as(_DBL), ldb,
+                T.ctypes.data_as(_DBL), ldt, work.ctypes.data_as(_DBL), info_)
+        info = ints[7].value
+    if info != 0:  # pragma: no cover - only for invalid arguments
+        raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
+    return R

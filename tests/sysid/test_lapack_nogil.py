@@ -1,0 +1,67 @@
+"""The GIL-free triangular-pentagonal QR behind the compressed Hankel build (``sysid/_lapack_nogil.py``)."""
+
+import threading
+import time
+
+import numpy as np
+import pytest
+from scipy.linalg import lapack
+
+from stimsteer.sysid._lapack_nogil import tpqrt_inplace, tpqrt_nogil_available
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(7)
+
+
+@pytest.mark.parametrize("k, n, nb", [(50, 12, 5), (7, 12, 12), (300, 40, 40)])
+def test_a_full_block_gives_the_same_factor_as_scipys_wrapper(rng, k, n, nb):
+    R0 = np.asfortranarray(np.triu(rng.standard_normal((n, n))))
+    B = np.asfortranarray(rng.standard_normal((k, n)))
+    expected = lapack.dtpqrt(0, nb, R0.copy(order="F"), B.copy(order="F"))[0]
+    got = tpqrt_inplace(R0.copy(order="F"), B.copy(order="F"), 0, nb)
+    np.testing.assert_allclose(np.triu(got), np.triu(expected), rtol=0, atol=1e-12 * np.abs(expected).max())
+    # and it is the factor of the stacked rows: RᵀR + BᵀB (the definition of the update)
+    G = R0.T @ R0 + B.T @ B
+    np.testing.assert_allclose(np.triu(got).T @ np.triu(got), G, atol=1e-12 * np.abs(G).max())
+
+
+def test_a_triangular_block_merges_two_factors(rng):
+    n = 30
+    R1, R2 = (np.asfortranarray(np.triu(rng.standard_normal((n, n)))) for _ in range(2))
+    got = np.triu(tpqrt_inplace(R1.copy(order="F"), R2.copy(order="F"), n, 8))
+    G = R1.T @ R1 + R2.T @ R2
+    np.testing.assert_allclose(got.T @ got, G, atol=1e-12 * np.abs(G).max())
+
+
+def test_arrays_in_c_order_are_refused(rng):
+    with pytest.raises(ValueError, match="Fortran"):
+        tpqrt_inplace(np.zeros((3, 3)), np.ones((4, 3)), 0, 3)
+
+
+def test_the_gil_is_released_while_lapack_runs(rng):
+    """A Python thread keeps running beside a long call: the largest pause between its steps is a small part of
+    the call (with the GIL held it would be the whole call). Common practice, no source."""
+    assert tpqrt_nogil_available()
+    n, k = 400, 6000
+    R = np.zeros((n, n), order="F")
+    B = np.asfortranarray(rng.standard_normal((k, n)))
+    started, span = threading.Event(), {}
+
+    def work():
+        started.set()
+        t0 = time.perf_counter()
+        tpqrt_inplace(R, B, 0, 64)
+        span["t"] = (t0, time.perf_counter())
+
+    worker = threading.Thread(target=work)
+    stamps = []
+    worker.start()
+    started.wait()
+    while worker.is_alive():
+        stamps.append(time.perf_counter())
+    worker.join()
+    t0, t1 = span["t"]
+    inside = np.array([t0] + [s for s in stamps if t0 < s < t1] + [t1])
+    assert np.diff(inside).max() < 0.5 * (t1 - t0)
