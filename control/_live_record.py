@@ -32,7 +32,7 @@ def timing_summary(loop, period, calibration, stop) -> dict:
     return {
         "sample_period_s": period, "sample_rate_hz": 1.0 / period, "pace": loop.pace,
         "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
-        "latency_s": _quantiles(loop.latency), "jitter_s": _quantiles(jitter),
+        "latency_s": _quantiles(loop.latency), "service_s": _quantiles(loop.service), "jitter_s": _quantiles(jitter),
         "calibration_s": dict(calibration), "counts": counts,
         "gate": {"admitted": loop.gate.n_admitted, "replaced": loop.gate.n_replaced,
                  "reduced": loop.gate.n_reduced, "unavoidable": loop.gate.n_unavoidable},
