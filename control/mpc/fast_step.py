@@ -139,7 +139,7 @@ class FastStep:
 
     @property
     def idle_cost_s(self) -> float:
-        """Seconds :meth:`idle` takes at most (measured on the largest map built so far); inf without work."""
+        """Seconds :meth:`idle` is expected to take (from the maps built so far); inf without work."""
         r = self._regions
         return r.build_s if r is not None and r.pending is not None else math.inf
 
@@ -302,6 +302,7 @@ class _Regions:
     """
 
     def __init__(self, H, A, lo, hi, Qw, n_first):
+        t0 = time.perf_counter()
         n = H.shape[0]
         C = np.eye(n) if A is None else np.vstack([np.eye(n), A])
         Hi = np.linalg.inv(H)
@@ -313,8 +314,10 @@ class _Regions:
         finite = np.abs(np.concatenate([lo, hi]))
         self._ptol = 1e-9 * max(1.0, float(finite[finite < 1e29].max(initial=0.0)))
         self._dtol = 1e-9 * max(1.0, float(np.abs(H).max())) * max(1.0, self._ptol * 1e9)
-        self._rr, self._version, self.build_s, self.pending = None, 0, 0.0, None
+        self._rr, self._version, self.pending = None, 0, None
         self._maps = {(): self._region(np.zeros(0, np.intp), np.zeros(0, np.intp))}
+        # a set's map costs at most about this (an inverse and products of the same sizes) until one is measured
+        self.build_s = time.perf_counter() - t0
         self._current = self._maps[()]
 
     def offset(self, q_r):
@@ -368,7 +371,8 @@ class _Regions:
             return False
         t0 = time.perf_counter()
         self._maps[key] = self._current = self._region(*(np.frombuffer(k, np.intp) for k in key))
-        self.build_s = max(self.build_s, time.perf_counter() - t0)
+        # follows a larger set at once, forgets a build slowed by preemption within a few
+        self.build_s = max(time.perf_counter() - t0, 0.5 * self.build_s)
         return True
 
     def _region(self, iu, il):
