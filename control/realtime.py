@@ -104,6 +104,8 @@ class _Loop:
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
         self._y_shape, self._ones = (controller.n_outputs_,), np.ones(controller.n_outputs_)
         self.n, self.missing_run, self.last_gap = 0, 0, -(10**9)
+        # a shared gate (the bridge's) may have counted inputs before this run
+        self.gate0 = (gate.n_admitted, gate.n_replaced, gate.n_reduced, gate.n_unavoidable)
         self.history = int(getattr(controller, "history_steps_", 0) or 0)
         self.events, self.markers, self.latency, self.ticks = [], {}, [], []
         self.service = []  # start of the step's work to its decision (latency without waiting for a late start)
@@ -135,7 +137,7 @@ class _Loop:
         With ``base`` (the tick), the latency to the checked decision is recorded before the input is sent."""
         if kind:
             self.mark(kind)
-        sent, why = self.gate.admit(u)
+        sent, why = self.gate.admit(u, hand=True)  # a plant sharing the gate (the bridge) sends it as checked
         if base is not None:
             now = self.clock()
             self.latency.append(now - base)
@@ -241,7 +243,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     period = _check_settings(controller, plant, n_steps, overrun_policy, pace, sample_rate_hz, calibration_steps,
                              max_stall_s)
     warm = _warmup(controller, warmup_inputs)
-    gate = InputGate(controller.limits_, energy_window_steps=energy_window(controller))
+    gate = _gate(controller, plant)
     capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
     loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
     loop.sleep = sleep
@@ -331,6 +333,18 @@ def _after(loop, why, kind):
 
 def _policy_input(loop):
     return loop.gate.last_input.copy() if loop.policy == "hold" else loop.gate.safe_input()
+
+
+def _gate(controller, plant):
+    """The plant's own gate when it keeps one for the controller's very limits (the streaming bridge, made with
+    ``limits=controller.limits_``) and energy window: the runner's check is then the bridge's
+    (:meth:`InputGate.take`), once per sample; else a gate of the runner's own."""
+    window = energy_window(controller)
+    shared = getattr(plant, "gate", None)
+    if (isinstance(shared, InputGate) and shared.limits is controller.limits_
+            and (controller.limits_.energy_budget_ua2 is None or shared.energy_window_steps == window)):
+        return shared
+    return InputGate(controller.limits_, energy_window_steps=window)
 
 
 def _ramp_steps(limits):
