@@ -107,6 +107,9 @@ class _Loop:
         # a shared gate (the bridge's) may have counted inputs before this run
         self.gate0 = (gate.n_admitted, gate.n_replaced, gate.n_reduced, gate.n_unavoidable)
         self.history = int(getattr(controller, "history_steps_", 0) or 0)
+        # read once: a FastStep answers fitted attributes through __getattr__, a microsecond each at 10 kHz
+        self.past = int(controller.past_steps_)
+        self.reach = max(self.past, self.history)
         self.events, self.markers, self.latency, self.ticks = [], {}, [], []
         self.service = []  # start of the step's work to its decision (latency without waiting for a late start)
         # work a controller leaves for the time between samples (FastStep: the answer map of a new active set)
@@ -124,10 +127,10 @@ class _Loop:
     def window(self):
         """The past window ``(u, y)`` as views, or None when a sample in it is missing; ``u`` reaches back as far as
         the controller's windows and trains do (delivered inputs are always known)."""
-        T, n = self.c.past_steps_, self.n
+        T, n = self.past, self.n
         if n - self.last_gap <= T:
             return None
-        return self._u[max(0, n - max(T, self.history)):n], self._y[n - T:n]
+        return self._u[max(0, n - self.reach):n], self._y[n - T:n]
 
     def mark(self, kind):
         self.markers.setdefault(kind, []).append(self.n)
