@@ -47,7 +47,8 @@ _ACCEPT_RTOL = 1e-7
 # the active bounds it keeps (benchmark system, most bounds active: 5 µs at 80 inputs, 67 µs at 320), the box
 # solver's is one O(n²) product plus ~20 µs of fixed cost (32 µs at 80, 50 µs at 320; bench_control.py).
 _BOX_MIN_VARS = 160
-_MAX_REGIONS = 64  # active sets whose answer maps are kept (each (n + k)² floats)
+_MAX_REGIONS = 64  # active sets whose answer maps are kept ...
+_MAX_MAP_BYTES = 64 * 2**20  # ... within this much memory (a map holds about two matrices of C x₀'s map's size)
 
 
 class StepResult:
@@ -293,7 +294,8 @@ class _Regions:
     bounds and every ``ν`` has the sign of its bound (``>= 0`` on an upper, ``<= 0`` on a lower one): both are
     checked at every use, so a set that no longer fits goes back to the solver, and the answer is the solver's to
     rounding either way. Maps are built for the sets the solver reports (its multipliers), outside the step
-    (:meth:`build_pending`), at most ``_MAX_REGIONS`` of them; the unconstrained set's is there from the start.
+    (:meth:`build_pending`), at most ``_MAX_REGIONS`` of them within ``_MAX_MAP_BYTES``; the unconstrained set's is
+    there from the start.
 
     References
     ----------
@@ -315,6 +317,7 @@ class _Regions:
         self._ptol = 1e-9 * max(1.0, float(finite[finite < 1e29].max(initial=0.0)))
         self._dtol = 1e-9 * max(1.0, float(np.abs(H).max())) * max(1.0, self._ptol * 1e9)
         self._rr, self._version, self.pending = None, 0, None
+        self._max = int(max(1, min(_MAX_REGIONS, _MAX_MAP_BYTES // (2 * self._CXw.nbytes + self._G.nbytes + 1))))
         self._maps = {(): self._region(np.zeros(0, np.intp), np.zeros(0, np.intp))}
         # a set's map costs at most about this (an inverse and products of the same sizes) until one is measured
         self.build_s = time.perf_counter() - t0
@@ -361,7 +364,7 @@ class _Regions:
             self._current = self._maps[key]
         else:
             self._current = None
-            if len(self._maps) < _MAX_REGIONS:
+            if len(self._maps) < self._max:
                 self.pending = key
 
     def build_pending(self) -> bool:

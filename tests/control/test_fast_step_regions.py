@@ -124,3 +124,16 @@ def test_a_live_run_builds_maps_between_samples_and_restores_the_collector(model
         assert not gc.isenabled()
     finally:
         gc.enable()
+
+
+def test_the_maps_kept_stay_within_their_memory_bound(model, monkeypatch):
+    from stimsteer.control.mpc import fast_step
+
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    monkeypatch.setattr(fast_step, "_MAX_MAP_BYTES", 1)  # room for the unconstrained set's map alone
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    for u, y, last, tgt in _closed_loop(model, step, _far(model), n=60)[::6]:
+        np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs,
+                                   ref.plan(u, y, target=tgt, last_input=last).inputs, atol=1e-9)
+    assert list(step._regions._maps) == [()]
