@@ -262,11 +262,28 @@ def _live_report(name, run):
     s = run.summary
     lat, jit, c = s["latency_s"], s["jitter_s"], s["counts"]
     us = lambda v: float("nan") if v is None else 1e6 * v  # noqa: E731
+    srv = s.get("service_s", {"p50": None, "p99": None})
     print(f"{name}: {s['n_steps_run']} steps at {s['sample_rate_hz']:g} Hz, latency p50 {us(lat['p50']):.1f} µs, "
-          f"p99 {us(lat['p99']):.1f} µs, max {us(lat['max']):.0f} µs; jitter p50 {us(jit['p50']):.1f} µs, p99 "
+          f"p99 {us(lat['p99']):.1f} µs, max {us(lat['max']):.0f} µs (of which the step's own work, from its start: "
+          f"p50 {us(srv['p50']):.1f} µs, p99 {us(srv['p99']):.1f} µs); jitter p50 {us(jit['p50']):.1f} µs, p99 "
           f"{us(jit['p99']):.1f} µs; overruns {c['overrun']}, missed ticks {c['missed']}, planned {c['planned']}; "
           f"unchecked inputs {s['unchecked_inputs']}, delivered over a hard limit "
           f"{sum(s['delivered_violations'].values())}")
+
+
+def _steal(seconds=0.5):
+    """The share of CPU time the hypervisor took from this machine over ``seconds`` (/proc/stat), percent."""
+    def read():
+        with open("/proc/stat", encoding="ascii") as f:
+            v = [int(x) for x in f.readline().split()[1:]]
+        return sum(v), v[7] if len(v) > 7 else 0
+    try:
+        t0, s0 = read()
+        time.sleep(seconds)
+        t1, s1 = read()
+    except OSError:
+        return float("nan")
+    return 100.0 * (s1 - s0) / max(t1 - t0, 1)
 
 
 def _live_section(args, model, plant, limits, target, step, ind):
@@ -274,7 +291,7 @@ def _live_section(args, model, plant, limits, target, step, ind):
     from stimsteer.sysid import InvalidParameterError
 
     print(f"\nlive runner (stimsteer live), wall-clock pace, box limits, overrun policy hold; load average "
-          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores at the start")
+          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores at the start, CPU steal {_steal():.0f} %")
 
     def fresh(rate):
         return LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
@@ -372,7 +389,7 @@ def _gate_section(args, model, limits, target):
               f"{us(t_seq, 50) - us(box, 50):.1f} µs, p99 {us(t_seq, 99) - us(box, 99):.1f} µs")
     far = model.C @ np.linalg.solve(np.eye(N_STATES) - model.A, model.B) @ np.array([3.0, -3.0, 3.0, -3.0])
     print(f"live runner with FastStep at {rate:g} Hz for {args.live_seconds:g} s, target beyond reach; load average "
-          f"{os.getloadavg()[0]:.1f} at the start")
+          f"{os.getloadavg()[0]:.1f} at the start, CPU steal {_steal():.0f} %")
     for name, lim in (("box limits", limits), ("sequence limits", seq)):
         ctrl = FastStep(ModelPredictiveController(model=model, limits=lim, horizon_steps=HORIZON,
                                                   input_weight=1e-2).fit())

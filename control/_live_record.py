@@ -23,6 +23,8 @@ def timing_summary(loop, period, calibration, stop) -> dict:
     ticks = np.asarray(loop.ticks, np.float64)
     jitter = np.abs(np.diff(ticks) - period) if loop.pace != "none" and ticks.size > 1 else []
     kinds = [e.split("+")[0] for e in loop.events]
+    g = loop.gate
+    counted = [b - a for a, b in zip(loop.gate0, (g.n_admitted, g.n_replaced, g.n_reduced, g.n_unavoidable))]
     counts = {k: kinds.count(k) for k in ("planned", "overrun", "missed", "failed", "no_data")}
     delivered = np.asarray(loop.U)
     lim = loop.c.limits_
@@ -32,11 +34,10 @@ def timing_summary(loop, period, calibration, stop) -> dict:
     return {
         "sample_period_s": period, "sample_rate_hz": 1.0 / period, "pace": loop.pace,
         "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
-        "latency_s": _quantiles(loop.latency), "jitter_s": _quantiles(jitter),
+        "latency_s": _quantiles(loop.latency), "service_s": _quantiles(loop.service), "jitter_s": _quantiles(jitter),
         "calibration_s": dict(calibration), "counts": counts,
-        "gate": {"admitted": loop.gate.n_admitted, "replaced": loop.gate.n_replaced,
-                 "reduced": loop.gate.n_reduced, "unavoidable": loop.gate.n_unavoidable},
-        "unchecked_inputs": len(loop.U) - loop.gate.n_admitted - loop.gate.n_replaced,
+        "gate": dict(zip(("admitted", "replaced", "reduced", "unavoidable"), counted)),
+        "unchecked_inputs": len(loop.U) - counted[0] - counted[1],
         "delivered_violations": {k: int(v) for k, v in recheck.items()},
         "energy_window_steps": window,
         "sequence_limits": _sequence_limits(lim),

@@ -120,6 +120,8 @@ class InputGate:
                               f"to zero breaks the rolling budget {bad!r}; start from rest (zeros) or declare "
                               "consistent limits.")
         self.n_admitted = self.n_replaced = self.n_reduced = self.n_unavoidable = 0
+        self.energy_window_steps = w
+        self._handed = None  # the values of the last input admitted, until a sender takes them (one shot)
 
     @property
     def has_sequence_limits(self) -> bool:
@@ -139,7 +141,7 @@ class InputGate:
                 out.append(min(max(step if prev > 0 else -step, lo), hi))
         return np.array(out)
 
-    def admit(self, u) -> tuple[np.ndarray, str]:
+    def admit(self, u, *, hand=False) -> tuple[np.ndarray, str]:
         """Deliver ``u`` if it meets every hard limit; else the largest safe input (a sequence limit) or the safe
         fallback (a per-sample limit); record what was delivered.
 
@@ -147,6 +149,8 @@ class InputGate:
         ----------
         u : ndarray, shape (n_inputs,)
             The candidate input, µA.
+        hand : bool, default False
+            Leave the delivered input for one :meth:`take` (a sender sharing this gate sends it unchecked again).
 
         Returns
         -------
@@ -185,7 +189,22 @@ class InputGate:
             self.n_admitted += 1
             cand = np.array(x)
         self._commit(cand, x)
+        self._handed = x if hand else None
         return cand, reason
+
+    def take(self, u) -> bool:
+        """Whether ``u`` is the input this gate admitted last with ``hand=True``, value for value, not taken before
+        (one shot).
+
+        A sender that shares this gate with the loop that admitted the input (the streaming bridge under the live
+        runner) sends it on a True without a second check, which would record it twice; on False it admits it
+        itself. Any other call in between (another :meth:`admit`, an earlier :meth:`take`) makes it False.
+        """
+        handed, self._handed = self._handed, None
+        if handed is None:
+            return False
+        x = np.asarray(u, np.float64).reshape(-1).tolist()
+        return x == handed
 
     def _check(self, x) -> str:
         """The first per-sample limit the list ``x`` breaks ('' for none); puts rounding-level excess exactly on the

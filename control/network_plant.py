@@ -18,16 +18,19 @@ _CHUNK = 256  # rows of noise drawn at once; step and simulate consume them row 
 class _GaussStream:
     """Standard normal rows of a fixed width, drawn in chunks and handed out one row at a time."""
 
-    __slots__ = ("_rng", "_dim", "_buf", "_i")
+    __slots__ = ("_rng", "_dim", "_buf", "_i", "_scale")
 
-    def __init__(self, rng: np.random.Generator, dim: int):
-        self._rng, self._dim = rng, dim
+    def __init__(self, rng: np.random.Generator, dim: int, scale=None):
+        self._rng, self._dim, self._scale = rng, dim, scale
         self._buf = np.empty((0, dim))
         self._i = 0
 
     def next(self) -> np.ndarray:
+        """The next row, times ``scale`` when one was given (the same product per element as after the draw)."""
         if self._i >= self._buf.shape[0]:
             self._buf = self._rng.standard_normal((_CHUNK, self._dim))
+            if self._scale is not None:
+                self._buf *= self._scale
             self._i = 0
         row = self._buf[self._i]
         self._i += 1
@@ -136,8 +139,9 @@ class _NetworkPlant:
             gens = [np.random.default_rng(s) for s in np.random.SeedSequence(_seed_int(seed)).spawn(_N_STREAMS)]
         self._x = self._check_x0(x0)
         self._k = 0
-        self._proc = _GaussStream(gens[0], self.n_states)
-        self._meas = _GaussStream(gens[1], self.n_outputs)
+        # noise rows come scaled by their standard deviation (row by row the same products as scaling each row)
+        self._proc = _GaussStream(gens[0], self.n_states, self.process_noise_std)
+        self._meas = _GaussStream(gens[1], self.n_outputs, self.measurement_noise_std)
         self._walk_stream = _GaussStream(gens[2], self.n_outputs)
         self._phase = gens[3].uniform(0.0, 2.0 * np.pi, self.n_outputs)
         self._walk = np.zeros(self.n_outputs)
@@ -175,7 +179,7 @@ class _NetworkPlant:
         y = self._read_out(self._x, u)
         has = self._has
         if has["measurement"]:
-            y += self.measurement_noise_std * self._meas.next()
+            y += self._meas.next()
         if has["sine"]:
             y += self.drift_amplitude * np.sin(self._omega * self._k + self._phase)
         if has["walk"]:
@@ -188,7 +192,7 @@ class _NetworkPlant:
             y += self.artifact_gain @ self._art
         x = self._advance(self._x, u)
         if has["process"]:
-            x += self.process_noise_std * self._proc.next()
+            x += self._proc.next()
         self._x = x
         self._u_prev = u
         self._k += 1
@@ -291,6 +295,7 @@ class LinearNetworkPlant(_NetworkPlant):
         A, B, C, D = _network_matrices("A", A, B, C, D)
         n, m, p = A.shape[0], B.shape[1], C.shape[0]
         self.A, self.B, self.C, self.D = A, B, C, D
+        self._feedthrough = bool(np.any(D))
         self._init_recording(
             m=m, n=n, p=p, process_noise_std=process_noise_std, measurement_noise_std=measurement_noise_std,
             drift_amplitude=drift_amplitude, drift_period_s=drift_period_s, drift_step_std=drift_step_std,
@@ -305,6 +310,8 @@ class LinearNetworkPlant(_NetworkPlant):
         self.reset()
 
     def _read_out(self, x, u):
+        if not self._feedthrough:  # D u is zero: the same numbers (up to the sign of a zero) in half the calls
+            return self.C @ x
         return self.C @ x + self.D @ u
 
     def _advance(self, x, u):

@@ -27,6 +27,7 @@ from pathlib import Path
 from ...sysid import InvalidParameterError, StimsteerError
 from ...sysid._files import atomic_path
 from .settings import StudySettings
+from .table import DESCRIPTIONS_FILE
 from .tasks import run_task
 
 __all__ = ["TaskCache", "execute_tasks", "batches", "run_batch"]
@@ -65,7 +66,8 @@ class TaskCache:
             tmp.write_text(json.dumps(result), encoding="utf-8")
 
     def __len__(self) -> int:
-        return sum(1 for _ in self.folder.glob("*.json"))
+        """Completed tasks kept (the study's record of its session files is not one)."""
+        return sum(1 for p in self.folder.glob("*.json") if p.name != DESCRIPTIONS_FILE)
 
 
 _SETTINGS: dict = {}

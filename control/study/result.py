@@ -93,7 +93,8 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
     settings : StudySettings, optional
         Default ``StudySettings()``.
     cache : str, Path or TaskCache, optional
-        Folder of completed tasks: those found there are not computed again; new results are added.
+        Folder of completed tasks: those found there are not computed again; new results are added. A study
+        described here keeps what its session files hold there too (:func:`describe_study`).
     scheduler : str, optional
         Address of a Dask scheduler (``tcp://127.0.0.1:8786``); default local processes.
     n_workers : int, optional
@@ -120,11 +121,11 @@ def run_study(study, settings: StudySettings | None = None, *, cache=None, sched
     st = StudySettings() if settings is None else settings
     if not isinstance(st, StudySettings):
         raise InvalidParameterError(f"settings must be a StudySettings; got {type(st).__name__}.")
-    table = study if isinstance(study, StudyTable) else describe_study(study, min_trials=st.min_trials,
-                                                                       channels=st.channels)
+    cache = cache if cache is None or isinstance(cache, TaskCache) else TaskCache(cache)
+    table = study if isinstance(study, StudyTable) else describe_study(
+        study, min_trials=st.min_trials, channels=st.channels, cache=None if cache is None else cache.folder)
     check_limits(table, st)
     tasks, notes = study_tasks(table, st)
-    cache = cache if cache is None or isinstance(cache, TaskCache) else TaskCache(cache)
     started, t0 = datetime.now(timezone.utc).isoformat(timespec="seconds"), time.perf_counter()
     cached = {t.key for t in tasks if cache is not None and cache.get(t.key) is not None}
     results, execution = execute_tasks(st, tasks, cache=cache, scheduler=scheduler, n_workers=n_workers,

@@ -29,12 +29,15 @@ Three ways to describe a study:
 The table holds, per session: subject, session, order, condition, group, file, content hash (SHA-256 of the data,
 :meth:`Session.content_hash`), trials, channels and rate. Files are opened one at a time and closed (our HDF5
 layout is hashed chunk by chunk), so building the table holds at most one session in memory; the tasks read their
-sessions again, lazily, on the worker that uses them. What a file holds is kept for the life of the process by path,
-size and file times, so describing the study again (a rerun with one new session) opens only new or changed files.
+sessions again, lazily, on the worker that uses them. What a file holds is kept by path, size and file times for
+the life of the process and, given a cache folder (``describe_study(..., cache=)``; :func:`run_study` passes its
+task cache), in that folder's ``session_descriptions.json``, so describing the study again (a rerun with one new
+session, in this process or another) opens only new or changed files.
 """
 
 from __future__ import annotations
 
+import json
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -42,11 +45,15 @@ from pathlib import Path
 import pandas as pd
 
 from ...sysid import FileFormatError, SessionError, StimsteerWarning, load_session, open_session_file
+from ...sysid._files import atomic_path
 
 __all__ = ["StudyTable", "describe_study", "study_file_settings", "STUDY_FILE"]
 
 #: The study file looked for in a study folder.
 STUDY_FILE = "study.toml"
+#: What the session files of a study hold, in its cache folder (see the module docstring).
+DESCRIPTIONS_FILE = "session_descriptions.json"
+_DESCRIPTIONS_FORMAT = 1
 _SUFFIXES = {".h5", ".hdf5", ".csv", ".parquet", ".nwb"}
 _COLUMNS = ["subject", "session", "order", "condition", "group", "file", "content_hash", "n_trials", "n_samples",
             "sample_rate_hz", "input_names", "output_names"]
@@ -84,7 +91,8 @@ class StudyTable:
         return len(self.sessions)
 
 
-def describe_study(path, *, min_trials: int = 4, channels=None, description=None, convert_dir=None) -> StudyTable:
+def describe_study(path, *, min_trials: int = 4, channels=None, description=None, convert_dir=None,
+                   cache=None) -> StudyTable:
     """Build the study table of a folder, a study file or a BIDS dataset (see the module docstring).
 
     Parameters
@@ -98,6 +106,9 @@ def describe_study(path, *, min_trials: int = 4, channels=None, description=None
         For a BIDS dataset (required there): how each recording becomes a session (:mod:`stimsteer.sysid.description`).
     convert_dir : str or Path, optional
         For a BIDS dataset (required there): where its converted session files go (reused on a rerun).
+    cache : str or Path, optional
+        A folder (the study's task cache) where what each session file holds is kept between runs, by path, size
+        and file times (a file changed since is read again); created when missing.
 
     Returns
     -------
@@ -122,7 +133,9 @@ def describe_study(path, *, min_trials: int = 4, channels=None, description=None
         name, settings, entries = path.name, {}, _bids_entries(path, description, convert_dir)
     else:
         name, settings, entries = path.name, {}, _folder_entries(path)
-    rows = [_session_row(e) for e in entries]
+    known, keys = _load_descriptions(cache), []
+    rows = [_session_row(e, known, keys) for e in entries]
+    _store_descriptions(cache, {k: _INFO[k] for k in keys})
     sessions, excluded = _exclude(pd.DataFrame(rows, columns=_COLUMNS), int(min_trials))
     _check_duplicates(sessions)
     _check_channels(sessions, channels)
@@ -219,12 +232,14 @@ def _bids_entries(root: Path, description, convert_dir) -> list:
              "order": k + 1, "condition": r.get("condition"), "group": ""} for k, r in enumerate(rows)]
 
 
-def _session_row(entry: dict) -> dict:
+def _session_row(entry: dict, known: dict, keys: list) -> dict:
     f = Path(entry["file"])
     if not f.is_file():
         raise SessionError(f"session file {f} (subject {entry['subject']}, session {entry['session']}) does not "
                            "exist; fix the path in the study file.")
-    info = dict(_file_info(f))
+    key, info = _file_info(f, known)
+    keys.append(key)
+    info = dict(info)
     cond = entry["condition"] if entry["condition"] is not None else info.pop("condition")
     info.pop("condition", None)
     return {"subject": entry["subject"], "session": entry["session"], "order": int(entry["order"]),
@@ -237,9 +252,12 @@ def _session_row(entry: dict) -> dict:
 _INFO: dict = {}
 
 
-def _file_info(f: Path) -> dict:
+def _file_info(f: Path, known: dict) -> tuple:
+    """``(key, what the file holds)``: from this process's record, the cache folder's (``known``), or the file."""
     st = f.stat()
-    key = (str(f.resolve()), st.st_size, st.st_mtime_ns, st.st_ctime_ns)
+    key = f"{f.resolve()}|{st.st_size}|{st.st_mtime_ns}|{st.st_ctime_ns}"
+    if key not in _INFO and key in known:
+        _INFO[key] = known[key]
     if key not in _INFO:
         try:
             with open_session_file(f) as s:  # our HDF5 layout: hashed chunk by chunk, never loaded whole
@@ -247,7 +265,34 @@ def _file_info(f: Path) -> dict:
         except FileFormatError:  # another layout (a table, NWB): read whole
             s = load_session(f)
             _INFO[key] = _info(s, s.content_hash())
-    return _INFO[key]
+    return key, _INFO[key]
+
+
+def _load_descriptions(cache) -> dict:
+    """The cache folder's record of session files (empty without a folder, or when it cannot be read: then every
+    file is read again, never trusted half)."""
+    if cache is None:
+        return {}
+    try:
+        record = json.loads((Path(cache) / DESCRIPTIONS_FILE).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    ok = isinstance(record, dict) and record.get("format") == _DESCRIPTIONS_FORMAT
+    files = record.get("files") if ok else None
+    return dict(files) if isinstance(files, dict) else {}
+
+
+def _store_descriptions(cache, keep: dict) -> None:
+    """Write the record of this study's files (only theirs: a file removed or changed leaves it) atomically, when
+    it changed."""
+    if cache is None:
+        return
+    folder = Path(cache)
+    if keep == _load_descriptions(cache):
+        return
+    folder.mkdir(parents=True, exist_ok=True)
+    with atomic_path(folder / DESCRIPTIONS_FILE) as tmp:
+        tmp.write_text(json.dumps({"format": _DESCRIPTIONS_FORMAT, "files": keep}), encoding="utf-8")
 
 
 def _info(s, digest: str) -> dict:

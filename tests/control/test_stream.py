@@ -310,3 +310,34 @@ def test_no_lsl_packet_is_addressed_outside_the_loopback_range(tmp_path):
     v4 = re.findall(r'inet_addr\("([0-9.]+)"\)', text)
     assert v4 and all(a.startswith("127.") for a in v4), sorted(set(v4))
     assert "AF_INET6" not in text
+
+
+def test_a_live_run_through_the_bridge_checks_each_command_once(system, monkeypatch):
+    # the runner shares the bridge's gate (same limits object, same energy window): one check per command, and
+    # every command still checked (the gate's own counts and the received commands against the rules)
+    from stimsteer.control.input_gate import InputGate
+
+    model, ctrl, target = system
+    calls, admit = [], InputGate.admit
+    monkeypatch.setattr(InputGate, "admit", lambda self, u, **kw: calls.append(self) or admit(self, u, **kw))
+    with _sim(model, "once") as sim, _bridge(ctrl, "once") as bridge:
+        run = run_live(ctrl, bridge, n_steps=30, target=target, pace="source", output_units="uV")
+        received = _received_are_safe(sim)
+    n = len(run.session.u)
+    assert run.summary["unchecked_inputs"] == 0 and len(received) == n
+    assert [c is bridge.gate for c in calls[-n:]] == [True] * n and len(calls) == n + run.summary["calibration_s"]["n"]
+    assert bridge.gate.n_admitted + bridge.gate.n_replaced == n
+
+
+def test_a_handed_input_is_taken_once_and_only_with_its_values():
+    from stimsteer.control.input_gate import InputGate
+
+    lim = StimLimits(amplitude_min_ua=[-1.0, -1.0], amplitude_max_ua=[1.0, 1.0], slew_max_ua=[0.5, 0.5])
+    gate = InputGate(lim)
+    sent, _ = gate.admit(np.array([0.3, -0.2]), hand=True)
+    assert not gate.take(sent + 1e-12)  # other values: not the admitted input (and the token is spent)
+    assert not gate.take(sent)
+    sent, _ = gate.admit(np.array([0.4, -0.1]), hand=True)
+    assert gate.take(sent) and not gate.take(sent)  # one shot
+    gate.admit(np.array([0.4, -0.1]))  # admitted without handing: nothing to take, however equal
+    assert not gate.take(np.array([0.4, -0.1]))

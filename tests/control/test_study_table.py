@@ -169,3 +169,53 @@ def test_describing_a_study_again_opens_only_new_or_rewritten_files(study, tmp_p
     assert [os.path.basename(str(p)) for p in opened] == ["day1.h5"]
     changed = again["content_hash"] != first.sessions["content_hash"]
     assert list(again.loc[changed, "file"]) == [str(f)]
+
+
+def _count_opens(monkeypatch):
+    """Every session file the description reads, by any route (our HDF5 layout, or whole)."""
+    opened = []
+    for name in ("open_session_file", "load_session"):
+        original = getattr(study_table, name)
+        monkeypatch.setattr(study_table, name, lambda f, _o=original: opened.append(os.path.basename(str(f))) or _o(f))
+    return opened
+
+
+def test_a_rerun_in_a_new_process_opens_no_session_file_when_the_cache_folder_keeps_them(study, tmp_path,
+                                                                                      monkeypatch):
+    study, cache = _copy(study, tmp_path), tmp_path / "tasks"
+    first = describe_study(study, cache=cache)
+    assert (cache / study_table.DESCRIPTIONS_FILE).is_file()
+    monkeypatch.setattr(study_table, "_INFO", {})  # what a new process knows: nothing but the cache folder
+    opened = _count_opens(monkeypatch)
+    assert describe_study(study, cache=cache).sessions.equals(first.sessions) and opened == []
+    # without the folder, the new process opens every file again
+    monkeypatch.setattr(study_table, "_INFO", {})
+    assert describe_study(study).sessions.equals(first.sessions) and len(opened) == 4
+
+
+def test_a_file_changed_since_the_cache_folder_kept_it_is_read_again(study, tmp_path, monkeypatch):
+    study, cache = _copy(study, tmp_path), tmp_path / "tasks"
+    first = describe_study(study, cache=cache).sessions
+    f = study / "s01" / "day2.h5"
+    s = load_session(f)
+    save_session(s.replace(u=s.u[::-1].copy(), y=s.y[::-1].copy()), f, overwrite=True)
+    monkeypatch.setattr(study_table, "_INFO", {})
+    opened = _count_opens(monkeypatch)
+    again = describe_study(study, cache=cache).sessions
+    assert opened == ["day2.h5"]
+    changed = again["content_hash"] != first["content_hash"]
+    assert list(again.loc[changed, "file"]) == [str(f)] and again.loc[changed, "content_hash"].iloc[0] == s.replace(
+        u=s.u[::-1].copy(), y=s.y[::-1].copy()).content_hash()
+    # the record now holds the new file's figures only (the old ones left with it)
+    monkeypatch.setattr(study_table, "_INFO", {})
+    opened.clear()
+    assert describe_study(study, cache=cache).sessions.equals(again) and opened == []
+
+
+def test_an_unreadable_record_of_session_files_reads_every_file_again(study, tmp_path, monkeypatch):
+    study, cache = _copy(study, tmp_path), tmp_path / "tasks"
+    first = describe_study(study, cache=cache).sessions
+    (cache / study_table.DESCRIPTIONS_FILE).write_text('{"format": 1, "files": {"half')
+    monkeypatch.setattr(study_table, "_INFO", {})
+    opened = _count_opens(monkeypatch)
+    assert describe_study(study, cache=cache).sessions.equals(first) and len(opened) == 4

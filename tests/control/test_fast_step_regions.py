@@ -1,0 +1,139 @@
+"""The fast step's answers on known active sets (stimsteer.control.mpc.fast_step._Regions) and the live runner's
+use of the time between samples.
+
+Outside checks: the answer on an active set is the optimum exactly when its rows meet their bounds and its
+multipliers have their bounds' signs (Bemporad, Morari, Dua & Pistikopoulos 2002, The explicit linear quadratic
+regulator for constrained systems, Automatica 38:3-20); here it is compared with daqp's answer (a dual active-set
+method, Arnström, Bemporad & Axehill 2022) on the same QP, and with the cvxpy problem solved by CLARABEL.
+"""
+
+import gc
+
+import numpy as np
+import pytest
+
+from stimsteer.control.limits import StimLimits
+from stimsteer.control.mpc import ModelPredictiveController
+from stimsteer.control.mpc.fast_step import FastStep
+from stimsteer.control.plants import LinearNetworkPlant
+from stimsteer.control.realtime import run_live
+from stimsteer.sysid import StateSpaceModel
+
+pytest.importorskip("daqp")
+
+LIM = StimLimits(amplitude_min_ua=[-1.0, -0.5], amplitude_max_ua=[1.0, 0.8], slew_max_ua=[0.3, 0.2])
+BOX = StimLimits(amplitude_min_ua=[-1.0, -0.5], amplitude_max_ua=[1.0, 0.8])
+
+
+@pytest.fixture(scope="module")
+def model():
+    rng = np.random.default_rng(7)
+    A = rng.normal(size=(5, 5))
+    A *= 0.9 / np.max(np.abs(np.linalg.eigvals(A)))
+    return StateSpaceModel(A=A, B=rng.normal(size=(5, 2)), C=rng.normal(size=(3, 5)), past_steps=3)
+
+
+def _far(model):
+    gain = model.C @ np.linalg.solve(np.eye(5) - model.A, model.B)
+    return gain @ np.array([3.0, -2.0])  # beyond the amplitude window: bounds bind on most steps
+
+
+def _closed_loop(model, step, target, n=150):
+    """Windows of a closed loop run with ``step`` (its maps built between samples, as a live runner does)."""
+    plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, process_noise_std=0.05)
+    U = [np.zeros(2)] * 3
+    Y = [plant.step(u) for u in U]
+    out = []
+    for k in range(n):
+        u, y = np.array(U[-3:]), np.array(Y[-3:])
+        tgt = target if (k // 40) % 2 == 0 else -0.3 * target  # the target moves: other active sets
+        out.append((u, y, U[-1], tgt))
+        U.append(step.plan(u, y, target=tgt, last_input=U[-1]).inputs[0])
+        step.idle()
+        Y.append(plant.step(U[-1]))
+    return out
+
+
+@pytest.mark.parametrize("limits", [LIM, BOX], ids=["slew", "box"])
+def test_answers_on_known_active_sets_equal_the_solvers(model, limits):
+    ctrl = ModelPredictiveController(model=model, limits=limits, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None  # daqp at every step
+    hits = []
+    solve = step._regions.solve
+    step._regions.solve = lambda *a: hits.append(solve(*a) is not None) or solve(*a)
+    windows = _closed_loop(model, step, _far(model))
+    assert len(step._regions._maps) >= 3 and sum(hits) >= len(hits) // 2  # sets were found and reused
+    for u, y, last, tgt in windows:
+        got = step.plan(u, y, target=tgt, last_input=last)
+        want = ref.plan(u, y, target=tgt, last_input=last)
+        assert not got.fallback and got.status == want.status == "optimal"
+        np.testing.assert_allclose(got.inputs, want.inputs, rtol=0, atol=1e-9)
+    for u, y, last, tgt in windows[::15]:  # an interior-point solver, another algorithm (to its tolerance)
+        cvx = ctrl.plan(u, y, target=tgt, last_input=last, use_fast_path=False)
+        np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs[0], cvx.inputs[0],
+                                   atol=1e-6)
+
+
+def test_a_map_that_does_not_fit_the_window_is_never_used(model):
+    # every kept map forced on every window: a map is used only where its checks hold, so the answer is always the
+    # solver's (a map trusted without its checks gives another input on most of these windows)
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    windows = _closed_loop(model, step, _far(model))
+    maps = [r for r in step._regions._maps.values() if r is not None]
+    assert len(maps) >= 3
+    wrong = 0
+    for u, y, last, tgt in windows[::5]:
+        want = ref.plan(u, y, target=tgt, last_input=last).inputs
+        for r in maps:
+            step._regions._current = r
+            np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs, want, atol=1e-9)
+            step._regions._current = r
+            step._regions._offsets(r)
+            rows = r[0] @ step._w + r[4]
+            wrong += int(np.max(np.abs(rows[:2] - want[0])) > 1e-6)
+    assert wrong > 0
+
+
+def test_a_window_with_nan_on_a_known_set_gives_the_safe_fallback(model):
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    step = FastStep(ctrl)
+    y = np.zeros((3, 3))
+    y[1, 2] = np.nan
+    got = step.plan(np.zeros((3, 2)), y, target=[0.1, 0.2, 0.3], last_input=np.array([0.2, -0.1]))
+    assert got.fallback and np.all(np.isfinite(got.inputs))
+    assert np.all(np.abs(got.inputs[0] - [0.2, -0.1]) <= np.array([0.3, 0.2]) + 1e-12)
+
+
+def test_a_live_run_builds_maps_between_samples_and_restores_the_collector(model):
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    step = FastStep(ctrl)
+    plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, sample_rate_hz=100.0)
+    assert gc.isenabled()
+    run = run_live(step, plant, n_steps=200, target=_far(model), pace="none")
+    assert gc.isenabled() and gc.get_freeze_count() == 0
+    assert len(step._regions._maps) >= 2
+    s = run.summary
+    assert s["unchecked_inputs"] == 0 and sum(s["delivered_violations"].values()) == 0
+    assert s["service_s"]["p50"] <= s["latency_s"]["p50"] + 1e-12 and s["service_s"]["max"] > 0
+    gc.disable()
+    try:  # a collector the caller had switched off stays off
+        run_live(step, plant, n_steps=20, target=_far(model), pace="none")
+        assert not gc.isenabled()
+    finally:
+        gc.enable()
+
+
+def test_the_maps_kept_stay_within_their_memory_bound(model, monkeypatch):
+    from stimsteer.control.mpc import fast_step
+
+    ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    monkeypatch.setattr(fast_step, "_MAX_MAP_BYTES", 1)  # room for the unconstrained set's map alone
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    for u, y, last, tgt in _closed_loop(model, step, _far(model), n=60)[::6]:
+        np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs,
+                                   ref.plan(u, y, target=tgt, last_input=last).inputs, atol=1e-9)
+    assert list(step._regions._maps) == [()]
