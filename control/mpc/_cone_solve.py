@@ -23,6 +23,37 @@ __all__: list = []
 _TIGHT = {"CLARABEL": {"tol_gap_abs": 1e-9, "tol_gap_rel": 1e-9, "tol_feas": 1e-9}}
 
 
+class LazyProblem:
+    """A controller's cvxpy problem, built by its method ``build`` at the first use (a cvxpy solve, or any attribute
+    of the problem: ``is_dpp()``, ``parameters()`` …, which it passes on).
+
+    Plans that the dense path solves never need it, and then cvxpy is not even imported (2–3 s of a command's
+    start-up, and of each benchmark worker's). It keeps its controller, so a copy of the controller copies it whole.
+    """
+
+    def __init__(self, owner, build: str):
+        self._owner, self._build, self._problem = owner, build, None
+
+    def ready(self):
+        """The cvxpy problem, built now if it was not yet (its Parameters and Variables set on the controller)."""
+        if self._problem is None:
+            self._problem = getattr(self._owner, self._build)()
+        return self._problem
+
+    def __getattr__(self, name):
+        if name.startswith("__") or name in ("_owner", "_build", "_problem"):
+            raise AttributeError(name)
+        return getattr(self.ready(), name)
+
+    def __repr__(self) -> str:
+        return f"LazyProblem({'built' if self._problem is not None else 'not built yet'})"
+
+
+def ready(problem):
+    """The cvxpy problem of a :class:`LazyProblem` (built now), or ``problem`` itself."""
+    return problem.ready() if isinstance(problem, LazyProblem) else problem
+
+
 def solve_compiled(problem, solver: str, solver_options=None) -> str:
     """Solve ``problem`` in place; ``""`` on success (any status), else the failure's text."""
     tries = [{**_TIGHT.get(solver, {}), **(solver_options or {})}]

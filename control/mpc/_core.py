@@ -34,7 +34,8 @@ from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_f
 from ..limits import StimLimits
 from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget, blend_all
-from ._cone_solve import solve_compiled
+from ._budget_sqp import fast_budgeted
+from ._cone_solve import ready, solve_compiled
 from .plan import Plan, _ro
 from ...sysid._lazy import lazy_module
 
@@ -367,8 +368,11 @@ class _PredictiveController(BaseEstimator):
         if fast:
             u, aux, status, reason = self._solve_fast(offsets, lb, ub)
             if u is not None and self._budget_excess(u) > -1e-9:
-                # a budget window binds (or breaks): the budget-free QP's answer is not the optimum
-                u, aux, status, reason = None, None, "budget", "energy budget binding"
+                # a budget window binds (or breaks): the budget-free QP's answer is not the optimum; the dense
+                # budget iteration (_budget_sqp) where it applies, else the cvxpy problem below
+                u, aux, status, reason = fast_budgeted(self, offsets, lb, ub)
+                if u is not None:
+                    solver = f"{solver} + budget SQP"
         if not fast or status in ("failed", "budget"):  # the fast path is an accelerator only
             first = reason
             u, aux, status, reason = self._solve_cvxpy(offsets, lb, ub)
@@ -382,15 +386,16 @@ class _PredictiveController(BaseEstimator):
         return str(self.solver).upper()
 
     def _solve_cvxpy(self, offsets, lb, ub):
+        problem = ready(self.problem_)  # built at its first use (its Parameters are set on the controller)
         self._set_cost_scale(offsets)
         self._assign(offsets)
         self._lb.value, self._ub.value = lb.reshape(-1) / self._row_scale, ub.reshape(-1) / self._row_scale
         for b, h in zip(self._budgets, self._hists):
             b.assign(h)
-        failure = solve_compiled(self.problem_, self._cvx_solver(), self.solver_options)
+        failure = solve_compiled(problem, self._cvx_solver(), self.solver_options)
         if failure:
             return None, None, "failed", failure
-        status = self.problem_.status
+        status = problem.status
         if status not in _ACCEPT or self._u.value is None:
             kind = "infeasible" if status in (cp.INFEASIBLE, cp.INFEASIBLE_INACCURATE) else "failed"
             return None, None, kind, f"{self._cvx_solver()} returned status '{status}'"

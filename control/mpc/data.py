@@ -26,6 +26,7 @@ import scipy.sparse as sp
 from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, NotFittedError, check_fitted
 from ...sysid.protocols import past_vector
 from ._core import _horizon, _output_target, _sqrt_weight
+from ._cone_solve import LazyProblem
 from .condensed import _CondensedCore
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
 from .plan import Plan, _ro
@@ -185,6 +186,18 @@ class DataPredictiveController(_CondensedCore):
         self._lam_g = float(b.lambda_g)
         M = b.reg_matrix
         self._M = None if self._reg == "l1" else (np.eye(r) if M is None else np.asarray(M, np.float64))
+        self.problem_ = LazyProblem(self, "_deepc_problem")  # cvxpy's, built where a plan needs it
+        quadratic = self._reg != "l1" or self._lam_g == 0
+        self._elim, self._fast = None, None
+        if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
+            if self._idx_b.size == 0:
+                self._fast = self._fast_deepc_eliminated(N, m)
+            if self._fast is None:
+                self._fast = self._fast_deepc(N, m)
+
+    def _deepc_problem(self):
+        """The cvxpy problem of DeePC (DPP), built at its first use (:class:`~._cone_solve.LazyProblem`)."""
+        N, m, p, r = self.horizon_steps_, self.n_inputs_, self.n_outputs_, self._Up.shape[1]
         g = self._g = cp.Variable(r, name="hankel_weights")
         u = self._u = cp.Variable(N * m, name="inputs_ua")
         self._up = cp.Parameter(self._E.shape[0], name="past_inputs_and_zero_tail")
@@ -206,14 +219,7 @@ class DataPredictiveController(_CondensedCore):
                                                          self._ymax[self._idx_hi], self._ymin[self._idx_lo])
         if self._slack_var is not None:
             cost = cost + self._sw2 * (float(self.output_penalty) * cp.sum(self._slack_var))
-        self.problem_ = cp.Problem(cp.Minimize(cost), cons + more)
-        quadratic = self._reg != "l1" or self._lam_g == 0
-        self._elim, self._fast = None, None
-        if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
-            if self._idx_b.size == 0:
-                self._fast = self._fast_deepc_eliminated(N, m)
-            if self._fast is None:
-                self._fast = self._fast_deepc(N, m)
+        return cp.Problem(cp.Minimize(cost), cons + more)
 
     def _past_weight(self, lambda_y):
         """``λ_y`` of the past-output slack (None for hard equality): the setting, else the predictor's."""
@@ -280,7 +286,7 @@ class DataPredictiveController(_CondensedCore):
                             Nm)
         return _FastQP(sp.csc_matrix(self._elim["P"]), sp.vstack(rows, format="csc"), Nm)
 
-    def _solve_fast_eliminated(self, offsets, lb, ub):
+    def _solve_fast_eliminated(self, offsets, lb, ub, windows=None):
         eq, yp, rw = offsets
         e = self._elim
         bf = np.concatenate([eq, yp]) if e["hard"] else eq
@@ -291,7 +297,9 @@ class DataPredictiveController(_CondensedCore):
         if self._slew_rows is not None:
             lo.append(-self._slew_rows[1])
             hi.append(self._slew_rows[1])
-        u, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        u, status, reason = (self._fast.solve(q, lo, hi) if windows is None
+                             else self._fast.solve_budgeted(q, lo, hi, windows))
         if u is None:
             return None, None, status, reason
         g = e["G_r"] @ rw + e["G_f"] @ bf + e["G_u"] @ u
@@ -358,11 +366,11 @@ class DataPredictiveController(_CondensedCore):
     def _aux_value(self):
         return None if self.method_ == "spc" else np.array(self._g.value)
 
-    def _solve_fast(self, offsets, lb, ub):
+    def _solve_fast(self, offsets, lb, ub, windows=None):
         if self.method_ == "spc":
-            return super()._solve_fast(offsets, lb, ub)
+            return super()._solve_fast(offsets, lb, ub, windows)
         if self._elim is not None:
-            return self._solve_fast_eliminated(offsets, lb, ub)
+            return self._solve_fast_eliminated(offsets, lb, ub, windows)
         up, yp, rw = offsets
         r, nb = self._Up.shape[1], self._idx_b.size
         q = -2.0 * self._LY.T @ rw
@@ -387,7 +395,9 @@ class DataPredictiveController(_CondensedCore):
         if nb:
             lo.append(np.zeros(nb))
             hi.append(np.full(nb, np.inf))
-        z, status, reason = self._fast.solve(q, np.concatenate(lo), np.concatenate(hi))
+        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        z, status, reason = (self._fast.solve(q, lo, hi) if windows is None
+                             else self._fast.solve_budgeted(q, lo, hi, windows, self._Uf))
         if z is None:
             return None, None, status, reason
         g = z[:r]

@@ -18,6 +18,8 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 
+from ._budget_sqp import solve_budgeted
+
 __all__: list = []
 
 
@@ -120,16 +122,31 @@ class _DenseQP:
         n_simple = n_vars if simple else 0
         self.n_rows = n_simple + self._A.shape[0]
         self._model = None
+        self._mu = None  # the budget windows' multipliers of the last budgeted solve (its warm start)
         self.lam = None  # the multipliers of the last solve, one per row (upper bound active: > 0, lower: < 0)
 
     def reset(self):
         """Forget the warm start (the next solve sets the problem up afresh)."""
-        self._model = None
+        self._model, self._mu = None, None
 
     def solve(self, q, l, u):
         lo = np.clip(np.asarray(l, np.float64), -_BIG, _BIG)
         hi = np.clip(np.asarray(u, np.float64), -_BIG, _BIG)
         return self.solve_finite(np.asarray(q, np.float64), lo, hi)
+
+    def solve_budgeted(self, q, l, u, windows, Mu=None):
+        """:meth:`solve` with the energy-budget windows (:mod:`._budget_sqp`) on the inputs ``Mu x`` (None: ``x``);
+        ``(None, "budget", why)`` where the dense route does not settle (the caller then solves the cvxpy problem)."""
+        x0, status, reason = self.solve(q, l, u)
+        if x0 is None:
+            return None, status, reason
+        res = solve_budgeted(self._H, np.asarray(q, np.float64), self._A, np.asarray(l, np.float64),
+                             np.asarray(u, np.float64), x0, windows, Mu, mu0=self._mu)
+        if res is None:
+            self._mu = None
+            return None, "budget", "energy budget binding; the dense budget iteration did not settle"
+        self.lam, self._mu = res[1], res[2]
+        return res[0], "optimal", ""
 
     def solve_finite(self, q, lo, hi):
         """:meth:`solve` for float64 vectors whose bounds are finite already (no conversion: the live-loop path)."""
@@ -182,6 +199,7 @@ class _DenseSoftQP:
         self._elim = elim  # (P, A_eq⁺, Z, rows of A_eq, A_rest) or None
         self.n_vars, self.n_rows = osqp.n_vars, osqp.n_rows
         self.n_dense_, self.n_osqp_ = 0, 0
+        self._uz = None
 
     @classmethod
     def around(cls, osqp, P, A, n_x, eq_rows=None):
@@ -236,11 +254,37 @@ class _DenseSoftQP:
         self.n_osqp_ += 1
         return self._osqp.solve(q, l, u)
 
-    def _priced_within(self, q_t) -> bool:
+    def solve_budgeted(self, q, l, u, windows, Usel=None):
+        """:meth:`solve` with the energy-budget windows (:mod:`._budget_sqp`) on the inputs ``Usel x`` (None:
+        ``x``), the output bounds held hard; ``(None, "budget", why)`` where that is not the optimum or the
+        iteration does not settle (the caller then solves the cvxpy problem)."""
+        q, l, u = (np.asarray(v, np.float64) for v in (q, l, u))
+        n = self._n_x
+        qx, lo, hi = q[:n], l[self._rows], u[self._rows]
+        xp, Mu, cu = None, Usel, None
+        if self._elim is not None:  # x = A_eq⁺ b + Z w
+            H, pinv, Z, eq, Ar = self._elim
+            xp = pinv @ l[eq]
+            shift = Ar @ xp
+            qx, lo, hi = Z.T @ (H @ xp + qx), lo - shift, hi - shift
+            if Usel is not None and (self._uz is None or self._uz[0] is not Usel):
+                self._uz = (Usel, Usel @ Z)  # the inputs' map of w, the same for every plan
+            Mu, cu = (Z, xp) if Usel is None else (self._uz[1], Usel @ xp)
+        w0, status, reason = self._dense.solve(qx, lo, hi)
+        res = None if w0 is None else solve_budgeted(self._dense._H, qx, self._dense._A, lo, hi, w0, windows, Mu,
+                                                      cu, mu0=self._dense._mu)
+        self._dense._mu = None if res is None else res[2]
+        if res is None or not self._priced_within(q[n:], res[1]):
+            return None, "budget", "energy budget binding; the dense budget iteration did not settle"
+        x = res[0] if xp is None else xp + self._elim[2] @ res[0]
+        self.n_dense_ += 1
+        return np.concatenate([x, np.zeros(self.n_vars - n)]), "optimal", ""
+
+    def _priced_within(self, q_t, lam=None) -> bool:
         if self._out is None:
             return True
         pos, C = self._out
-        lam = self._dense.lam
+        lam = self._dense.lam if lam is None else lam
         if lam is None:
             return False
         price = C.T @ np.abs(np.asarray(lam, np.float64)[pos])

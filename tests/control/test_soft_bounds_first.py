@@ -93,7 +93,7 @@ def test_a_bound_priced_above_its_penalty_goes_to_osqp(model, session, monkeypat
 
 
 @pytest.mark.parametrize("kind, budget", [("model", 0.6), ("deepc", 0.06)])  # binding on some of the plans
-def test_with_an_energy_budget_the_dense_answer_is_kept_only_where_the_budget_does_not_bind(model, session, kind,
+def test_with_an_energy_budget_the_dense_answer_is_kept_where_the_budget_does_not_bind_else_iterated(model, session, kind,
                                                                                             budget):
     ctrl = _controller(kind, model, session, _limits(0.5, energy_budget=budget))
     assert isinstance(ctrl._fast, _DenseSoftQP)
@@ -105,7 +105,11 @@ def test_with_an_energy_budget_the_dense_answer_is_kept_only_where_the_budget_do
         a = ctrl.plan(u, y, target=target, use_fast_path=True)
         b = ctrl.plan(u, y, target=target, use_fast_path=False)
         assert a.ok and b.ok
-        paths.add("cvxpy" in a.solver)
-        np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-5)
+        paths.add("budget SQP" in a.solver)  # where the budget binds, the dense budget iteration (_budget_sqp)
+        assert "cvxpy" not in a.solver
+        # the same optimum: the cost to rounding; the inputs as close as the cone solver's answer on the directions
+        # the cost barely sees (DeePC's, 1.6e-4 here under a binding budget)
+        assert abs(a.cost_terms["total"] - b.cost_terms["total"]) <= 1e-9 * abs(b.cost_terms["total"])
+        np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-3 if "budget SQP" in a.solver else 1e-5)
         assert a.energy_window_max_ua2 <= budget * (1 + 1e-9)
     assert paths == {True, False}  # both: the budget binds on some plans and not on others

@@ -1,0 +1,137 @@
+"""Plans whose energy budget binds, on the dense path: sequential quadratic programming with exact Hessians.
+
+The budget-free dense QP (:mod:`.fastqp`) answers ``min ½xᵀHx + qᵀx s.t. lo <= A x <= hi``; an energy budget adds,
+for every window ``j`` of every budget (:class:`~._budget._RollingBudget`), the convex constraint
+``g_j(u) = (Σ_k Mp[j,k] ‖u_k‖² + Σ_t Mr[j,t] r_t(u_{N−1})) / E <= (E − Mh[j] h) / E``, with ``u = Mu x + cu`` the
+stacked inputs (``Mu = I`` for the condensed problem, the data map of DeePC's weights otherwise) and
+``r_t(v) = Σ_i max(|v_i| − t·slew_i, 0)²`` the ramp to zero after the plan (continuously differentiable).
+
+Each iteration linearises the windows at ``x_k`` and adds the Lagrangian's curvature ``Σ_j μ_j ∇²g_j`` (diagonal
+in ``u``; the multipliers ``μ`` of the previous iteration) to ``H``, and the dense active-set solver (daqp) solves
+that QP exactly. At a fixed point the step is zero, so ``x`` with the QP's multipliers meets the KKT conditions of
+the problem with the budget, which is convex with ``H`` positive definite: the optimum, unique (Nocedal & Wright
+2006, Numerical Optimization, 2nd ed., Sec. 18.1, the local SQP method as Newton's method on the KKT system). It
+stops when the step and the windows' excess are at rounding level; an iteration limit, a failed QP or a window
+still over budget returns None, and the controller solves the cvxpy problem instead (the reference). The answer is
+verified against every hard limit by the controller afterwards, like every solver's.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__: list = []
+
+_MAX_ITER = 40
+_STEP_TOL = 1e-9  # relative to the largest |x|: Newton's next step would be of its square
+_EXCESS_TOL = 1e-9  # relative to the budget (the controller's projection then blends onto the exact budget)
+_BIG = 1e30
+
+
+class _Windows:
+    """Value, Jacobian and Lagrangian curvature of every window of the (unweighted) budgets on stacked inputs."""
+
+    def __init__(self, budgets, hists, N: int, m: int):
+        self.N, self.m = int(N), int(m)
+        self.items = [(b, (b.budget - b.Mh @ np.asarray(h, np.float64)) / b.budget) for b, h in zip(budgets, hists)]
+        self.n = sum(b.Mp.shape[0] for b in budgets)
+
+    @staticmethod
+    def _ramp(b, last):
+        """``max(|v_i| − t·slew_i, 0)`` for the inputs with a slew limit, shape (n_tail, n_limited), and signs."""
+        t = np.arange(1, b.n_tail + 1)[:, None]
+        return np.maximum(np.abs(last[b.fin])[None, :] - t * b.slew[b.fin][None, :], 0.0), np.sign(last[b.fin])
+
+    def excess(self, u):
+        """``g(u) − left`` for every window (relative to its budget), and the Jacobian in ``u`` (n, N·m)."""
+        U = np.asarray(u, np.float64).reshape(self.N, self.m)
+        vals, jacs = [], []
+        for b, left in self.items:
+            k = b.Mp.shape[0]
+            J = (2.0 / b.budget) * (b.Mp[:, :, None] * U[None, :, :])
+            g = b.Mp @ np.sum(U**2, axis=1) / b.budget
+            if b.n_tail:
+                pos, sgn = self._ramp(b, U[-1])
+                g = g + b.Mr @ np.sum(pos**2, axis=1) / b.budget
+                J[:, -1, b.fin] += (2.0 / b.budget) * (b.Mr @ (pos * sgn[None, :]))
+            vals.append(g - left)
+            jacs.append(J.reshape(k, -1))
+        return np.concatenate(vals), np.vstack(jacs)
+
+    def curvature(self, u, mu):
+        """The diagonal of ``Σ_j μ_j ∇²g_j(u)`` (length N·m)."""
+        U = np.asarray(u, np.float64).reshape(self.N, self.m)
+        d = np.zeros((self.N, self.m))
+        i = 0
+        for b, _left in self.items:
+            w = mu[i:i + b.Mp.shape[0]]
+            i += b.Mp.shape[0]
+            d += (2.0 / b.budget) * (b.Mp.T @ w)[:, None]
+            if b.n_tail:
+                pos, _ = self._ramp(b, U[-1])
+                d[-1, b.fin] += (2.0 / b.budget) * ((b.Mr.T @ w) @ (pos > 0).astype(np.float64))
+        return d.reshape(-1)
+
+
+def fast_budgeted(ctrl, offsets, lb, ub):
+    """A controller's fast path with its energy-budget windows: ``(u, aux, status, reason)``, ``status`` "budget"
+    where it does not apply (a weighted load, an OSQP fast path) or does not settle (then the cvxpy problem)."""
+    if not (applies(ctrl._budgets) and hasattr(ctrl._fast, "solve_budgeted")):
+        return None, None, "budget", "energy budget binding"
+    windows = _Windows(ctrl._budgets, ctrl._hists, ctrl.horizon_steps_, ctrl.n_inputs_)
+    u, aux, status, reason = ctrl._solve_fast(offsets, lb, ub, windows=windows)
+    if u is None:
+        return None, None, "budget", "energy budget binding"
+    return u, aux, status, reason
+
+
+def applies(budgets) -> bool:
+    """Whether every budget is the per-sample ``Σ u²`` layout (weighted loads with ``|u|`` go to cvxpy)."""
+    return bool(budgets) and all(not b.weighted for b in budgets)
+
+
+def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0=None):
+    """SQP from ``x0`` (the budget-free answer) and the windows' multipliers ``mu0`` (default zero; those of the
+    previous plan make a good start); ``(x, multipliers of the rows of [simple bounds; A], of the windows)`` or None.
+
+    ``lo``/``hi`` in daqp's layout: when they are longer than the rows of ``A``, their first entries are simple
+    bounds on ``x``. ``u = Mu x + cu`` (``Mu`` None: ``u = x``).
+    """
+    import daqp
+
+    H = np.asarray(H, np.float64)
+    A = np.zeros((0, H.shape[0])) if A is None else np.asarray(A, np.float64)
+    lo, hi = np.clip(lo, -_BIG, _BIG), np.clip(hi, -_BIG, _BIG)
+    n_rows = lo.size
+    x = np.asarray(x0, np.float64).copy()
+    mu = np.zeros(windows.n) if mu0 is None or np.shape(mu0) != (windows.n,) else np.asarray(mu0, np.float64)
+    lam = None
+    for _ in range(_MAX_ITER):
+        u = x if Mu is None else Mu @ x + (0.0 if cu is None else cu)
+        g, Ju = windows.excess(u)
+        d = windows.curvature(u, mu)
+        if Mu is None:
+            Jx, L = Ju, np.diag(d)
+        else:
+            Jx, L = Ju @ Mu, (Mu.T * d) @ Mu
+        Hk = H + L
+        rows = np.ascontiguousarray(np.vstack([A, Jx]))
+        upper = np.concatenate([hi, Jx @ x - g])
+        lower = np.concatenate([lo, np.full(windows.n, -_BIG)])
+        start = None if lam is None else np.concatenate([lam, mu])
+        kw = {} if start is None else {"dual_start": start}
+        x_new, _f, flag, info = daqp.solve(np.ascontiguousarray(0.5 * (Hk + Hk.T)), q - L @ x, rows, upper, lower,
+                                           **kw)
+        if flag < 1:
+            return None
+        x_new = np.asarray(x_new, np.float64)
+        all_lam = np.asarray(info["lam"], np.float64)
+        lam, mu = all_lam[:n_rows], np.maximum(all_lam[n_rows:], 0.0)
+        step = float(np.max(np.abs(x_new - x), initial=0.0))
+        x = x_new
+        if step <= _STEP_TOL * max(1.0, float(np.max(np.abs(x), initial=0.0))):
+            u = x if Mu is None else Mu @ x + (0.0 if cu is None else cu)
+            if float(np.max(windows.excess(u)[0], initial=-np.inf)) <= _EXCESS_TOL:
+                return x, lam, mu
+            return None
+    return None
