@@ -142,9 +142,10 @@ def study_files(args) -> tuple[StudyResult, dict]:
     with claim_output(out, force=args.force):
         file_settings = study_file_settings(args.study)
         st = study_settings(file_settings, args)
-        table = describe_study(args.study, channels=st.channels, min_trials=st.min_trials,
-                               description=args.description, convert_dir=out.parent / f"{out.name}.sessions")
         cache = None if args.no_cache else (args.cache or out.parent / f"{out.name}.tasks")
+        table = describe_study(args.study, channels=st.channels, min_trials=st.min_trials,
+                               description=args.description, convert_dir=out.parent / f"{out.name}.sessions",
+                               cache=cache)  # a rerun reads again only the session files that changed
         result = run_study(table, st, cache=cache, scheduler=args.scheduler, n_workers=args.workers,
                            progress=not args.no_progress)
         if st.limits is not None:

@@ -11,6 +11,7 @@ import pytest
 from stimsteer.control.cli import main
 from stimsteer.control.study import StudySettings, TaskCache, describe_study, run_study, study_tasks
 from stimsteer.control.study import execute as study_execute
+from stimsteer.control.study import table as study_table
 from stimsteer.demo_data.make_study import StudyScenario, make_study
 
 pytestmark = pytest.mark.slow
@@ -150,7 +151,7 @@ def test_offsets_between_sessions_are_removed_explicitly(study, first):
     assert days(first[0]) > days(kept) + 0.02
 
 
-def test_the_command_writes_one_page_with_tables_and_session_pages(study, tmp_path, capsys):
+def test_the_command_writes_one_page_with_tables_and_session_pages(study, tmp_path, capsys, monkeypatch):
     out = tmp_path / "report"
     args = ["study", str(study), "--out", str(out), "--quick", "--past-steps", "4", "--horizon-steps", "4",
             "--workers", "1", "--no-progress", "--analyses", "sessions,days,sites"]
@@ -165,8 +166,15 @@ def test_the_command_writes_one_page_with_tables_and_session_pages(study, tmp_pa
                                   check_dtype=False)
     assert (Path(f"{out}.tasks")).is_dir()
     assert main(args) == 2  # the same --out again: refused before computing
+    # a rerun is a new process: it knows only the cache folder, and opens no session file again
+    monkeypatch.setattr(study_table, "_INFO", {})
+    opened = []
+    for name in ("open_session_file", "load_session"):
+        original = getattr(study_table, name)
+        monkeypatch.setattr(study_table, name, lambda f, _o=original: opened.append(f) or _o(f))
     assert main(args + ["--force"]) == 0
     assert "0 task(s) computed" in capsys.readouterr().out  # every task from OUT.tasks
+    assert opened == [] and (Path(f"{out}.tasks") / "session_descriptions.json").is_file()
 
 
 def test_across_subject_transfer_equals_within_subject_accuracy_when_every_plant_is_the_same(tmp_path):
