@@ -60,8 +60,27 @@ class _FastQP:
         P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
         A = sp.csc_matrix(A)
         self.n_rows = A.shape[0]
-        self.solver.setup(P, np.zeros(n_vars), A, -np.inf * np.ones(A.shape[0]), np.inf * np.ones(A.shape[0]),
-                          **_osqp_settings(tight))
+        self._problem = (P, A, tight)  # what a copy sets up again
+        self._setup()
+
+    def _setup(self):
+        P, A, tight = self._problem
+        self.solver.setup(P, np.zeros(self.n_vars), A, -np.inf * np.ones(A.shape[0]),
+                          np.inf * np.ones(A.shape[0]), **_osqp_settings(tight))
+
+    def __getstate__(self):
+        """A copy or a pickle keeps the problem, not OSQP's workspace (it holds its extension module); the copy
+        sets the problem up again and starts cold, as after :meth:`reset` (answers within OSQP's tolerance)."""
+        state = dict(self.__dict__)
+        state["solver"] = None
+        return state
+
+    def __setstate__(self, state):
+        import osqp
+
+        self.__dict__.update(state)
+        self.solver = osqp.OSQP()
+        self._setup()
 
     def reset(self):
         """Forget the warm start (the next solve starts from zero, as after setup)."""
@@ -128,6 +147,19 @@ class _DenseQP:
     def reset(self):
         """Forget the warm start (the next solve sets the problem up afresh)."""
         self._model, self._mu = None, None
+
+    def __getstate__(self):
+        """A copy or a pickle keeps the problem and drops the solver's module and warm start (neither can be
+        pickled); its first solve sets the problem up afresh, so it gives the same answers."""
+        state = dict(self.__dict__)
+        state.update(_daqp=None, _model=None, _mu=None)
+        return state
+
+    def __setstate__(self, state):
+        import daqp
+
+        self.__dict__.update(state)
+        self._daqp = daqp
 
     def solve(self, q, l, u):
         lo = np.clip(np.asarray(l, np.float64), -_BIG, _BIG)

@@ -113,3 +113,19 @@ def test_with_an_energy_budget_the_dense_answer_is_kept_where_the_budget_does_no
         np.testing.assert_allclose(a.inputs, b.inputs, rtol=0, atol=1e-3 if "budget SQP" in a.solver else 1e-5)
         assert a.energy_window_max_ua2 <= budget * (1 + 1e-9)
     assert paths == {True, False}  # both: the budget binds on some plans and not on others
+
+
+@pytest.mark.parametrize("kind", ["model", "deepc"])
+def test_a_copied_or_pickled_controller_plans_as_the_original(model, session, kind):
+    # the dense solver and OSQP hold extension modules that cannot be pickled: a copy sets its problems up afresh
+    import copy
+    import pickle
+
+    ctrl = _controller(kind, model, session, _limits(0.5))
+    u, y = np.full((3, 2), 0.1), np.full((3, 3), 0.05)
+    plans = [ctrl.plan(u, y, target=[t, 0.2, -0.1], use_fast_path=True) for t in (0.1, 3.0)]
+    for twin in (copy.deepcopy(ctrl), pickle.loads(pickle.dumps(ctrl))):
+        for t, plan in zip((0.1, 3.0), plans):
+            again = twin.plan(u, y, target=[t, 0.2, -0.1], use_fast_path=True)
+            assert again.ok and again.solver == plan.solver
+            np.testing.assert_allclose(again.inputs, plan.inputs, rtol=0, atol=1e-6)
