@@ -30,7 +30,7 @@ import numpy as np
 
 from ..sysid.exceptions import LimitsError
 from ..sysid.stimulation import InputMapping, StimulationDescription, load_stimulation
-from ..sysid.stimulation.units import unit_of
+from ..sysid.stimulation.units import plain_unit, unit_of
 from ._limits_layout import limits_fields, read_limits_table
 from .physical_limits import PhysicalLimits, compile_limits
 from .pulse_plan import checks_pass, safety_checks, write_pulse_plan
@@ -149,8 +149,8 @@ def _check_units(mapping, names_in, model_units):
     if not model_units:
         return
     for name, have, want in zip(names_in, model_units, mapping.model_units()):
-        try:
-            same = (1.0 * unit_of(str(have))).to(unit_of(want)).magnitude
+        try:  # the same spelling is the same unit (pint would say 1.0); pint compares any other pair
+            same = 1.0 if plain_unit(have) == plain_unit(want) else (1.0 * unit_of(str(have))).to(unit_of(want)).magnitude
         except Exception:  # pint raises several kinds for incompatible or unknown units
             same = None
         if same is None or abs(same - 1.0) > 1e-12:

@@ -75,7 +75,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..sysid.exceptions import LimitsError, SessionError
-from ..sysid.stimulation.units import UREG, convert, key_unit
+from ..sysid.stimulation.units import key_unit_name, unit_factor
 from .limits import StimLimits
 from .sequence_limits import TrainLimits, WindowBudget
 from .shannon import DEFAULT_SHANNON_K, SHANNON_DAMAGE_K, max_charge_uc
@@ -109,10 +109,9 @@ _SITE_KEYS = {"amplitude_max": "current", "charge_per_phase_max": "charge", "inj
               "impedance": "resistance"}
 _TOP_KEYS = {"shannon_k": None, "macro_area_min": "area", "window": "duration", "charge_rate_max": "charge_rate",
              "window_energy_max": "energy"}
-# units of the two kinds this module adds to the pint conversions of stimsteer.sysid.stimulation.units
+# units of the two kinds this module adds to the conversions of stimsteer.sysid.stimulation.units
 _OWN_SUFFIXES = {"uj": "microjoule", "mj": "millijoule", "nj": "nanojoule", "j": "joule", "ohm": "ohm",
                  "kohm": "kiloohm"}
-_OWN_KINDS = {"energy": "microjoule", "resistance": "ohm"}
 
 
 @dataclass(frozen=True)
@@ -206,11 +205,11 @@ def _field(base: str) -> str:
 
 
 def _key_unit(key: str):
-    """:func:`key_unit`, plus the energy and resistance suffixes of this module (``_uj``, ``_ohm``, ...)."""
+    """:func:`key_unit_name`, plus the energy and resistance suffixes of this module (``_uj``, ``_ohm``, ...)."""
     for suffix in sorted(_OWN_SUFFIXES, key=len, reverse=True):
         if key.endswith("_" + suffix):
-            return key[: -len(suffix) - 1], UREG.Unit(_OWN_SUFFIXES[suffix])
-    return key_unit(key)
+            return key[: -len(suffix) - 1], _OWN_SUFFIXES[suffix]
+    return key_unit_name(key)
 
 
 def _converted(d, allowed, where) -> dict:
@@ -218,7 +217,7 @@ def _converted(d, allowed, where) -> dict:
     for key, v in d.items():
         base, unit = _key_unit(key) if key != "shannon_k" else (key, None)
         if base not in allowed or (allowed[base] is not None and unit is None) or (
-                allowed[base] is None and unit not in (None, UREG.dimensionless)):
+                allowed[base] is None and unit not in (None, "dimensionless")):
             raise LimitsError(f"unknown key {key!r} in {where}; allowed (each ending in its unit): "
                               f"{sorted(allowed)} (e.g. amplitude_max_ua, window_s, duty_cycle_max_fraction).")
         if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v):
@@ -227,15 +226,8 @@ def _converted(d, allowed, where) -> dict:
             out[base] = float(v)
             continue
         try:
-            if allowed[base] in _OWN_KINDS:
-                target = UREG.Unit(_OWN_KINDS[allowed[base]])
-                if (1.0 * unit).dimensionality != (1.0 * target).dimensionality:
-                    raise SessionError(f"{where} {key}: {unit:~P} is not {'an' if allowed[base] == 'energy' else 'a'} "
-                                       f"{allowed[base]} (expected a unit like "
-                                       f"{target:~P}).")
-                out[base] = float((float(v) * unit).to(target).magnitude)
-                continue
-            out[base] = convert(float(v) * unit, allowed[base], f"{where} {key}")
+            # pint's factor from the table of stimsteer.sysid.stimulation.units (no pint), else pint itself
+            out[base] = float(v) * unit_factor(unit, allowed[base], f"{where} {key}")
         except SessionError as exc:
             raise LimitsError(str(exc)) from None
     return out

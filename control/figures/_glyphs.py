@@ -5,11 +5,16 @@ contact names. Matplotlib then draws empty boxes and prints one warning per miss
 instead, when it is saved, looks for an installed font that has the missing characters and draws those texts with it
 (matplotlib's font fallback list, per text, no global ``rcParams``); when no installed font has them, the glyph
 warnings are silenced and a caption under the figure says which characters could not be drawn and how to get them.
+
+A figure laid out by a layout engine (``layout="constrained"``) and saved as PNG without a tight bounding box is
+drawn once (:meth:`GlyphSafeFigure.savefig`): the draw runs the layout and renders, and its pixels are written.
+Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output, then the draw it writes).
 """
 
 from __future__ import annotations
 
 import functools
+import os
 import warnings
 
 from matplotlib import font_manager
@@ -96,4 +101,31 @@ class GlyphSafeFigure(Figure):
             kwargs.setdefault("bbox_inches", "tight")  # the caption sits under the figure: grow to hold it
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=_GLYPH_WARNING, category=UserWarning)
+            if _one_draw(self, fname, args, kwargs):
+                return self._print_png_once(fname, kwargs.get("dpi"))
             return super().savefig(fname, *args, **kwargs)
+
+    def _print_png_once(self, fname, dpi=None) -> None:
+        """Draw once (layout, then render) at ``dpi`` and write the PNG; the figure keeps its canvas and dpi."""
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+        canvas, own_dpi = self.canvas, self.dpi
+        try:
+            if dpi is not None and dpi != "figure":
+                self.set_dpi(dpi)
+            FigureCanvasAgg(self).print_png(fname)
+        finally:
+            self.set_canvas(canvas)
+            self.set_dpi(own_dpi)
+
+
+def _one_draw(fig, fname, args, kwargs) -> bool:
+    """True when :meth:`GlyphSafeFigure.savefig` may draw once: a PNG of a figure with a layout engine, saved
+    with no option but ``dpi`` and ``format`` (a tight bounding box, a transparent background... take the usual
+    path)."""
+    if args or set(kwargs) - {"dpi", "format"} or fig.get_layout_engine() is None:
+        return False
+    fmt = kwargs.get("format")
+    if fmt is None:
+        fmt = str(fname).rpartition(".")[2] if isinstance(fname, (str, os.PathLike)) else None
+    return str(fmt).lower() == "png"

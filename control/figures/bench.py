@@ -8,6 +8,7 @@ backend or ``rcParams``.
 from __future__ import annotations
 
 import io
+import textwrap
 
 import numpy as np
 import pandas as pd
@@ -28,12 +29,17 @@ _DPI = 110
 # font sizes (points) of tick labels and axis labels, titles, legends
 _TEXT, _TITLE, _LEGEND = 9, 10, 8
 _GRID = {"color": "#e4e4e4", "linewidth": 0.6}
+# the widest average character of DejaVu Sans in the report's texts, in ems (to wrap titles to the figure's width)
+_CHAR_EM = 0.56
 
 
 # ------------------------------------------------------------------------------------------------ style
 def _figure(nrows: int, ncols: int, figsize, **kwargs):
-    """A new figure and its axes grid (always 2-D), each axes styled (light grid, no top and right spines)."""
-    fig = GlyphSafeFigure(figsize=figsize, dpi=_DPI)
+    """A new figure and its axes grid (always 2-D), each axes styled (light grid, no top and right spines).
+
+    The figure is laid out by matplotlib's constrained layout when it is drawn (titles, legends beside the axes and
+    labels all inside it), so it is drawn once when saved (:class:`GlyphSafeFigure`)."""
+    fig = GlyphSafeFigure(figsize=figsize, dpi=_DPI, layout="constrained")
     axes = fig.subplots(nrows, ncols, squeeze=False, **kwargs)
     for ax in axes.flat:
         ax.spines[["top", "right"]].set_visible(False)
@@ -42,17 +48,24 @@ def _figure(nrows: int, ncols: int, figsize, **kwargs):
     return fig, axes
 
 
+def _fitted(fig, text: str, size: float) -> str:
+    """``text`` with each line wrapped to the figure's width (a title never runs off the figure: the figures are
+    laid out inside their own size, not grown to their content when saved)."""
+    chars = max(20, int(fig.get_figwidth() * 72.0 / (_CHAR_EM * size)))
+    return "\n".join(textwrap.fill(line, chars, break_on_hyphens=False) or line for line in text.split("\n"))
+
+
 def _labels(ax, xlabel=None, ylabel=None, title=None, title_size=_TITLE) -> None:
     if xlabel is not None:
         ax.set_xlabel(xlabel, fontsize=_TEXT)
     if ylabel is not None:
         ax.set_ylabel(ylabel, fontsize=_TEXT)
     if title is not None:
-        ax.set_title(title, fontsize=title_size)
+        ax.set_title(_fitted(ax.get_figure(), title, title_size), fontsize=title_size)
 
 
 def _legend_outside(ax, **kwargs) -> None:
-    """The legend to the right of the axes, never over the data (the report saves with a tight bounding box)."""
+    """The legend to the right of the axes, never over the data (the layout makes room for it in the figure)."""
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=_LEGEND, borderaxespad=0.0,
               **kwargs)
 
@@ -100,7 +113,7 @@ def fig_predictions(result: BenchResult, colours: dict):
     if tr.empty:
         return None
     channels = list(dict.fromkeys(tr["channel"]))
-    fig, axes = _figure(len(channels), 1, (8.0, 2.4 * len(channels)))
+    fig, axes = _figure(len(channels), 1, (9.2, 2.4 * len(channels)))
     H = result.settings.horizon_steps
     for ax, ch in zip(axes[:, 0], channels):
         part = tr[tr["channel"] == ch]
@@ -119,7 +132,6 @@ def fig_predictions(result: BenchResult, colours: dict):
     _labels(axes[0, 0], title=f"Held-out trial {trial} (its most active second): recorded vs {H}-step predictions of "
                               f"{_who(result)}\neach block of {H} samples predicted from the measured samples just "
                               "before it")
-    fig.tight_layout()
     return fig
 
 
@@ -168,7 +180,7 @@ def fig_accuracy(result: BenchResult, colours: dict):
         return None
     rate = result.provenance["session"]["sample_rate_hz"]
     H = result.settings.horizon_steps
-    fig, axes = _figure(2, 1, (7.0, 5.4), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    fig, axes = _figure(2, 1, (7.4, 5.4), sharex=True, gridspec_kw={"height_ratios": [3, 2]})
     ax, axd = axes[0, 0], axes[1, 0]
     for label in colours:
         ks = g[(g["label"] == label) & (g["mode"] == "kstep")]
@@ -189,7 +201,6 @@ def fig_accuracy(result: BenchResult, colours: dict):
     _legend_outside(ax)
     if axd.get_legend_handles_labels()[0]:
         _legend_outside(axd)
-    fig.tight_layout()
     return fig
 
 
@@ -263,7 +274,7 @@ def fig_tradeoff(result: BenchResult, colours: dict):
     st = result.settings
     base = c[(c["n_train_trials"] == c.groupby("split")["n_train_trials"].transform("max"))
              & (c["noise_scale"] == 1.0) & (c["horizon_steps"] == st.horizon_steps)]
-    fig, axes = _figure(1, 1, (5.8, 4.0))
+    fig, axes = _figure(1, 1, (7.0, 4.2))
     ax = axes[0, 0]
     for label, g in base.groupby("label"):
         ax.scatter(g["energy_ua2"], g["tracking_rms"], color=colours[label], alpha=0.45, s=22, lw=0)
@@ -320,8 +331,7 @@ def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title
         ax.set_xticklabels([f"{v:g}" for v in values])
         ax.minorticks_off()
     _legend_outside(axes[0, -1])
-    fig.suptitle(f"{title}: {_who(result)}", fontsize=_TITLE)
-    fig.tight_layout()
+    fig.suptitle(_fitted(fig, f"{title}: {_who(result)}", _TITLE), fontsize=_TITLE)
     return fig
 
 
@@ -348,9 +358,8 @@ def fig_compute(result: BenchResult, colours: dict):
         _labels(ax, xlabel)
         ax.set_axisbelow(True)
         ax.grid(axis="y", visible=False)
-    fig.suptitle(f"Compute time of {_who(result)}\n(mean and 95 % interval over splits, as computed; "
-                 "single-threaded tasks)", fontsize=_TITLE)
-    fig.tight_layout()
+    fig.suptitle(_fitted(fig, f"Compute time of {_who(result)}\n(mean and 95 % interval over splits, as computed; "
+                         "single-threaded tasks)", _TITLE), fontsize=_TITLE)
     return fig
 
 
@@ -386,6 +395,6 @@ def report_figures(result: BenchResult) -> dict:
         if fig is None:
             continue
         buf = io.BytesIO()
-        fig.savefig(buf, format="png", bbox_inches="tight")
+        fig.savefig(buf, format="png")  # one draw: the layout engine runs in it
         out[name] = buf.getvalue()
     return out

@@ -40,7 +40,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from ..exceptions import SessionError
-from .units import convert, parse_quantity, unit_of, UREG
+from .units import parse_quantity, quantity_in, unit_factor, UREG
 
 __all__ = ["ElectricalSite", "OpticalSite", "StimulationDescription", "load_stimulation"]
 
@@ -127,7 +127,7 @@ class ElectricalSite:
                                "their successor; lower the frequency or shorten the phases.")
         if self.contact_area_cm2 is not None and not self.contact_area_cm2 > 0:
             raise SessionError(f"{w}: contact_area must be positive; got {self.contact_area_cm2!r} cm^2.")
-        convert(1.0 * unit_of(self.amplitude_unit, f"{w}: amplitude_unit"), "current", f"{w}: amplitude_unit")
+        unit_factor(self.amplitude_unit, "current", f"{w}: amplitude_unit")
         self.train.check(w)
 
     @property
@@ -142,7 +142,7 @@ class ElectricalSite:
 
     def amplitude_factor_ua(self) -> float:
         """µA per unit of ``amplitude_unit``."""
-        return convert(1.0 * unit_of(self.amplitude_unit), "current", "amplitude_unit")
+        return unit_factor(self.amplitude_unit, "current", "unit", "amplitude_unit")
 
     def to_dict(self) -> dict:
         return {"kind": "electrical", "waveform": self.waveform, "leading_phase": self.leading_phase,
@@ -175,7 +175,7 @@ class OpticalSite:
         if self.pulse_width_ms * 1e-3 * self.frequency_hz > 1.0:
             raise SessionError(f"{w}: light pulses of {self.pulse_width_ms:g} ms at {self.frequency_hz:g} Hz "
                                "overlap their successor; lower the frequency or shorten the pulses.")
-        convert(1.0 * unit_of(self.amplitude_unit, f"{w}: amplitude_unit"), "irradiance", f"{w}: amplitude_unit")
+        unit_factor(self.amplitude_unit, "irradiance", f"{w}: amplitude_unit")
         self.train.check(w)
 
     @property
@@ -189,7 +189,7 @@ class OpticalSite:
 
     def amplitude_factor_ua(self) -> float:
         """mW/mm² per unit of ``amplitude_unit`` (the optical analogue of the electrical µA factor)."""
-        return convert(1.0 * unit_of(self.amplitude_unit), "irradiance", "amplitude_unit")
+        return unit_factor(self.amplitude_unit, "irradiance", "unit", "amplitude_unit")
 
     def to_dict(self) -> dict:
         return {"kind": "optical", "pulse_width_ms": self.pulse_width_ms, "frequency_hz": self.frequency_hz,
@@ -247,7 +247,7 @@ class StimulationDescription:
 def _q(spec, key, kind, where, default=None):
     if key not in spec:
         return default
-    return convert(parse_quantity(spec[key], f"{where}: {key}"), kind, f"{where}: {key}")
+    return quantity_in(spec[key], kind, f"{where}: {key}")
 
 
 def _train(spec, where) -> _Train:

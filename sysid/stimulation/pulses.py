@@ -22,7 +22,7 @@ import pandas as pd
 
 from ..exceptions import SessionError
 from .mapping import InputMapping
-from .units import convert, unit_of
+from .units import unit_factor
 
 __all__ = ["encode_pulse_table", "decode_plan", "parameter_segments", "PULSE_COLUMNS"]
 
@@ -58,7 +58,7 @@ def _amplitudes(frame, site, mapping) -> np.ndarray:
         units = [site.amplitude_unit] * len(raw) if unit_col is None else [
             site.amplitude_unit if (u is None or (isinstance(u, float) and math.isnan(u))) else str(u)
             for u in unit_col]
-        amp = np.array([a * convert(1.0 * unit_of(u, f"{where}: amplitude_unit"), kind, f"{where}: amplitude")
+        amp = np.array([a * unit_factor(u, kind, f"{where}: amplitude_unit", f"{where}: amplitude")
                         for a, u in zip(raw, units)])
     if not np.all(np.isfinite(amp)):
         raise SessionError(f"{where}: the pulse table holds non-finite amplitudes; fix or remove those rows.")

@@ -153,17 +153,18 @@ def test_parse_target_refuses_an_empty_table(tmp_path):
 
 def test_the_plan_figure_carries_the_caution(files, capsys, monkeypatch):
     # a figure travels without its folder, so the caution is drawn into it (project rule: every plan carries it)
-    import matplotlib.figure
     import matplotlib.text
 
     texts = []
-    original = matplotlib.figure.Figure.savefig
+    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
+
+    original = GlyphSafeFigure.savefig
 
     def capture(fig, *args, **kwargs):
         texts.extend(" ".join(t.get_text().split()) for t in fig.findobj(matplotlib.text.Text))
         return original(fig, *args, **kwargs)
 
-    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", capture)
+    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
     d, _model = files
     assert main(["plan", str(d / "model.h5"), "--target", "lfp_0=1", "--limits", str(d / "limits.toml"),
                  "--out", str(d / "out"), "--horizon-steps", "8"]) == 0

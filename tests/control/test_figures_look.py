@@ -49,16 +49,17 @@ def test_ranking_bars_use_a_plain_axis_unless_the_values_span_orders_of_magnitud
 
 
 def test_the_plan_figure_shades_allowed_regions_instead_of_dotted_limit_lines(tmp_path, monkeypatch):
-    import matplotlib.figure
 
     seen = []
-    original = matplotlib.figure.Figure.savefig
+    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
+
+    original = GlyphSafeFigure.savefig
 
     def capture(fig, *args, **kwargs):
         seen.append(fig)
         return original(fig, *args, **kwargs)
 
-    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", capture)
+    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
     A = np.diag([0.5, 0.7])
     m = StateSpaceModel(A=A, B=np.eye(2), C=np.eye(2), sample_rate_hz=100.0, input_names=("s0", "s1"),
                         output_names=("y0", "y1"), past_steps=2)

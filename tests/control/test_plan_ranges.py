@@ -104,18 +104,19 @@ def test_the_demo_direct_plan_lists_every_output_and_flags_the_untargeted_swing(
 
 
 def test_the_plan_figure_names_every_output_and_the_route(demo_direct, monkeypatch):
-    import matplotlib.figure
     import matplotlib.text
 
     texts = []
-    original = matplotlib.figure.Figure.savefig
+    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
+
+    original = GlyphSafeFigure.savefig
 
     def capture(fig, *args, **kwargs):
         fig.canvas.draw()  # tick labels exist once drawn
         texts.extend(t.get_text() for t in fig.findobj(matplotlib.text.Text))
         return original(fig, *args, **kwargs)
 
-    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", capture)
+    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
     d, model = demo_direct
     assert main(["plan", str(model), "--target", "rec_01=15,rec_04=-10", "--limits",
                  str(demo_file("demo_limits.toml")), "--horizon-steps", "20", "--out", str(d / "plan_fig")]) == 0
