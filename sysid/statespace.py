@@ -355,7 +355,7 @@ class StateSpaceModel:
         x0 = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
         return M @ x0 + x_driven
 
-    def _state_map(self, n_past):
+    def state_map(self, n_past):
         """The matrix of :meth:`estimate_state` on windows of ``n_past`` samples, shape (n, n_past·(m + p)).
 
         The estimate is linear in ``[vec(u_past); vec(y_past)]``: the predictor is run on every unit window at once
@@ -412,7 +412,7 @@ class StateSpaceModel:
             obs[k] = self.C @ M
             M = self.A @ M
         obs = obs.reshape(-1, n)
-        X = self._state_map(n_past) if n and n_past else np.zeros((n, n_past * (m + p)))
+        X = self.state_map(n_past) if n and n_past else np.zeros((n, n_past * (m + p)))
         F = markov_toeplitz(self.impulse_response(max(n_future, 1)), n_future)
         return PredictionMaps(P=obs @ X, F=F, c=np.zeros(n_future * p), past_steps=n_past, horizon_steps=n_future)
 

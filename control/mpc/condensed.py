@@ -234,27 +234,12 @@ class _LinearStateMap:
         self._E = None
 
     def _build(self):
-        """The map, from every unit window at once: the Kalman predictor run on all of them together and one
-        least-squares solve for all columns (what ``estimate_state`` computes column by column; checked against
-        it on the first window the map serves)."""
-        mdl, T = self._model, self._T
-        m, p, n = mdl.n_inputs, mdl.n_outputs, mdl.n_states
-        if n == 0:
-            return np.zeros((0, T * (m + p)))
-        A, B, C, D, K = (np.asarray(getattr(mdl, k), np.float64) for k in ("A", "B", "C", "D", "K"))
-        Ak, Bk = A - K @ C, B - K @ D
-        basis = np.eye(T * (m + p))
-        U, Y = basis[:T * m].reshape(T, m, -1), basis[T * m:].reshape(T, p, -1)
-        Phi, M = np.empty((T, p, n)), np.eye(n)
-        x = np.zeros((n, basis.shape[0]))
-        resid = np.empty_like(Y)
-        for t in range(T):
-            Phi[t] = C @ M
-            resid[t] = Y[t] - (C @ x + D @ U[t])
-            x = Ak @ x + Bk @ U[t] + K @ Y[t]
-            M = Ak @ M
-        x0 = np.linalg.lstsq(Phi.reshape(-1, n), resid.reshape(T * p, -1), rcond=None)[0]
-        return M @ x0 + x
+        """The map, from every unit window at once (:meth:`StateSpaceModel.state_map`: one least-squares solve for
+        all columns, what ``estimate_state`` computes column by column; checked against it on the first window the
+        map serves)."""
+        if self._model.n_states == 0:
+            return np.zeros((0, self._T * (self._model.n_inputs + self._model.n_outputs)))
+        return self._model.state_map(self._T)
 
     def __call__(self, u_past, y_past):
         if u_past.shape[0] != self._T:

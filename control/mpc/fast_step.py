@@ -269,13 +269,19 @@ def _regions(qp, H2, slew, lo, hi, Qw, m):
     inverse would carry rounding the checks are not made for; daqp copes)."""
     if not isinstance(qp, _DenseQP):
         return None
-    try:
-        d = np.abs(np.diag(np.linalg.cholesky(H2)))
-    except np.linalg.LinAlgError:
-        return None
-    if d.min() <= 1e-6 * d.max():
+    if not _well_factored(H2, 1e-6):
         return None
     return _Regions(H2, None if slew is None else slew[0].toarray(), lo, hi, Qw, 0 if slew is None else m)
+
+
+def _well_factored(M, rel: float) -> bool:
+    """Whether the symmetric ``M`` has a Cholesky factor whose smallest diagonal entry exceeds ``rel`` times its
+    largest (positive definite, and not so nearly singular that its inverse carries rounding the checks miss)."""
+    try:
+        d = np.abs(np.diag(np.linalg.cholesky(M)))
+    except np.linalg.LinAlgError:
+        return False
+    return not bool(d.min() <= rel * d.max())  # as written before: a NaN factor is not refused here
 
 
 def _state_map(model, T):
@@ -389,11 +395,7 @@ class _Regions:
             return [self._CXw, None, act, False, None, None, -1]
         sign = np.concatenate([np.ones(iu.size), -np.ones(il.size)])
         Gs = self._G[np.ix_(act, act)]
-        try:
-            d = np.abs(np.diag(np.linalg.cholesky(Gs)))
-        except np.linalg.LinAlgError:
-            return None
-        if d.min() <= 1e-7 * d.max():
+        if not _well_factored(Gs, 1e-7):
             return None
         Si = np.linalg.inv(Gs)
         Pb = self._G[:, act] @ Si  # C x = C x₀ − Pb (C_S x₀ − b_S)
