@@ -1,5 +1,11 @@
 """A laid-out figure is drawn once when saved as PNG (control/figures/_glyphs.py), and looks as matplotlib's own
-two-draw save does."""
+two-draw save does.
+
+Outside check: matplotlib's own ``Figure.savefig`` (the reference library's two-draw path) on the same figure. A PNG
+is ``figsize × dpi`` pixels (5 × 3 in at 90 dpi: 450 × 270; matplotlib's documented size rule, common practice, no
+source). The 0.5 mean grey-level tolerance is chosen here: a layout that moved one axis by a pixel stays under it,
+a lost or misplaced element does not.
+"""
 
 import io
 

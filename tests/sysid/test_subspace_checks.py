@@ -1,4 +1,11 @@
-"""The cheap paths of subspace identification's per-order checks decide as the eigenvalue rules they replace."""
+"""The cheap paths of subspace identification's per-order checks decide as the eigenvalue rules they replace.
+
+Outside check: NumPy's ``linalg.solve`` and ``eigvalsh`` (LAPACK) on the same matrices. The largest |eigenvalue| of
+a symmetric matrix lies between its largest diagonal entry (a Rayleigh quotient) and its Frobenius norm (Golub & Van
+Loan 2013, Matrix Computations, 4th ed., sec. 2.3 and 8.1), the bounds the noise-free test uses. Condition numbers:
+1e4 takes the Cholesky route (inside the module's 1e12 rule with its 1000x margin), 1e11 and 1e14 the eigenvalue
+rule; the noise scales sit on both sides of the module's noise-free threshold.
+"""
 
 import numpy as np
 import pytest
