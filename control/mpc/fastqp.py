@@ -271,15 +271,9 @@ class _DenseSoftQP:
     def solve(self, q, l, u):
         q, l, u = (np.asarray(v, np.float64) for v in (q, l, u))
         n = self._n_x
-        qx, lo, hi = q[:n], l[self._rows], u[self._rows]
-        if self._elim is not None:  # x = A_eq⁺ b + Z w
-            H, pinv, Z, eq, Ar = self._elim
-            xp = pinv @ l[eq]
-            shift = Ar @ xp
-            w, status, reason = self._dense.solve(Z.T @ (H @ xp + qx), lo - shift, hi - shift)
-            x = None if w is None else xp + Z @ w
-        else:
-            x, status, reason = self._dense.solve(qx, lo, hi)
+        qx, lo, hi, xp = self._reduced(q, l, u)
+        w, status, reason = self._dense.solve(qx, lo, hi)
+        x = w if w is None or xp is None else xp + self._elim[2] @ w
         if x is not None and self._priced_within(q[n:]):
             self.n_dense_ += 1
             return np.concatenate([x, np.zeros(self.n_vars - n)]), status, reason
@@ -292,13 +286,10 @@ class _DenseSoftQP:
         iteration does not settle (the caller then solves the cvxpy problem)."""
         q, l, u = (np.asarray(v, np.float64) for v in (q, l, u))
         n = self._n_x
-        qx, lo, hi = q[:n], l[self._rows], u[self._rows]
-        xp, Mu, cu = None, Usel, None
-        if self._elim is not None:  # x = A_eq⁺ b + Z w
-            H, pinv, Z, eq, Ar = self._elim
-            xp = pinv @ l[eq]
-            shift = Ar @ xp
-            qx, lo, hi = Z.T @ (H @ xp + qx), lo - shift, hi - shift
+        qx, lo, hi, xp = self._reduced(q, l, u)
+        Mu, cu = Usel, None
+        if xp is not None:
+            Z = self._elim[2]
             if Usel is not None and (self._uz is None or self._uz[0] is not Usel):
                 self._uz = (Usel, Usel @ Z)  # the inputs' map of w, the same for every plan
             Mu, cu = (Z, xp) if Usel is None else (self._uz[1], Usel @ xp)
@@ -311,6 +302,17 @@ class _DenseSoftQP:
         x = res[0] if xp is None else xp + self._elim[2] @ res[0]
         self.n_dense_ += 1
         return np.concatenate([x, np.zeros(self.n_vars - n)]), "optimal", ""
+
+    def _reduced(self, q, l, u):
+        """The dense problem's ``q``, lower and upper bounds, and the particular solution ``xp`` of the eliminated
+        equalities (``x = xp + Z w``; None when there are none)."""
+        qx, lo, hi = q[:self._n_x], l[self._rows], u[self._rows]
+        if self._elim is None:
+            return qx, lo, hi, None
+        H, pinv, Z, eq, Ar = self._elim  # x = A_eq⁺ b + Z w
+        xp = pinv @ l[eq]
+        shift = Ar @ xp
+        return Z.T @ (H @ xp + qx), lo - shift, hi - shift, xp
 
     def _priced_within(self, q_t, lam=None) -> bool:
         if self._out is None:
