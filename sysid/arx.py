@@ -373,19 +373,19 @@ class RidgeArx(BasePredictor):
     def _recursion(self, up, yp, uf, intercept) -> np.ndarray:
         """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions."""
         na, nb, d, L = self.output_lags_, self.input_lags_, self.delay_samples_, self.past_steps_
-        H = uf.shape[1]
-        U = np.concatenate([up, uf], axis=1)
-        Y = np.concatenate([yp, np.zeros((yp.shape[0], H, self.n_outputs_))], axis=1)
-        A, B = self.ar_coefs_, self.input_coefs_
-        # The input part does not depend on predictions: add it for every step at once.
-        drive = np.broadcast_to(intercept, (yp.shape[0], H, self.n_outputs_)).copy()
+        n, H, p = yp.shape[0], uf.shape[1], self.n_outputs_
+        U, Y = np.concatenate([up, uf], axis=1), np.concatenate([yp, np.zeros((n, H, p))], axis=1)
+        AT, B = self.ar_coefs_.transpose(0, 2, 1), self.input_coefs_
+        drive = np.broadcast_to(intercept, (n, H, p)).copy()  # the input part: every step at once
         for j in range(nb):
             drive += U[:, L - d - j: L - d - j + H] @ B[j].T
-        for h in range(H):
-            k = L + h
-            acc = drive[:, h]
-            for i in range(na):
-                acc = acc + Y[:, k - 1 - i] @ A[i].T
+        # Per step one batched product of the last na outputs (newest first), then a left-to-right sum of [drive,
+        # y_{k-1} A_1ᵀ, …]: the operations and order of one product per lag (same bits), without a call per lag.
+        terms, acc = np.empty((na + 1, n, p)), np.empty((n, p))
+        for k in range(L, L + H):
+            terms[0] = drive[:, k - L]
+            np.matmul(Y[:, k - 1: (k - 1 - na if k > na else None): -1].transpose(1, 0, 2), AT, out=terms[1:])
+            np.add.reduce(terms, axis=0, out=acc)
             Y[:, k] = acc
         return Y[:, L:]
 
