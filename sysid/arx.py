@@ -29,7 +29,8 @@ from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
-from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, \
+    own_moments
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
     structure_candidates, structure_table
@@ -222,10 +223,9 @@ class RidgeArx(BasePredictor):
         kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
         if prob.size > _SMALL_GRAM and structure in search.get("tables", {}):
             # large Grams: the structure is scored on the search's rows (its table from the search); the final fit
-            # takes the structure's own rows (the search's moments when they are the same rows)
+            # takes the structure's own rows (derived from the search's sums where it can: own_moments)
             table, k, scheme = search["tables"][structure], search["moments"][2], search["moments"][3]
-            own = search["moments"] if search["n_lags"] == prob.L else self._accumulate(session, prob)
-            _folds, total, _k, _scheme, shift = own
+            _folds, total, _k, _scheme, shift = own_moments(self, session, prob, search)
             self._check_rows(prob, total.n)
         else:
             folds, total, k, scheme, shift = self._accumulate(session, prob)
