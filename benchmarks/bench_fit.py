@@ -200,6 +200,8 @@ def main(argv=None) -> int:
         t_arx = None if args.subspace_only else report_arx(session, path, L, args.repeat, args.compression)
         t_sub = None if args.skip_subspace else report_subspace(session, path, L, args.repeat)
         report_fair(session, L, args.repeat, t_arx, t_sub)
+        if t_arx is not None:
+            report_arx_cpu(session, path, L, args.repeat)
         report_hankel_build(session, args)
     print(f"  load average (1, 5, 15 min) at the end: {', '.join(f'{v:.2f}' for v in os.getloadavg())}")
     return 0
@@ -299,6 +301,23 @@ def report_fair(session, L, repeat, t_arx, t_sub):
         print(f"  {name}: bare lag products ({lags} lags, {flops:.2e} flops) {t_bare:.2f} s; fit {t_fit:.2f} s; "
               f"RATIO fit / bare = {t_fit / t_bare:.2f} (target <= {target}); fraction of dgemm peak: fit "
               f"{flops / t_fit / peak:.2f}, bare {flops / t_bare / peak:.2f}")
+def report_arx_cpu(session, path, L, repeat):
+    """Where the ridge ARX fit's time goes beyond its lag products, in CPU seconds (every thread) of one run: the
+    fit, the same lag products on one BLAS thread (their CPU cost, free of the thread stalls of a busy machine),
+    and the fit's reads of the file alone. The rest is the fit's own work beside the products and the reads (the
+    shift, the inputs' range, the edge windows, the cross-validation and the final solve, the threads)."""
+    from threadpoolctl import threadpool_limits
+
+    fit = min(timed_cpu(lambda: fit_arx(path, L))[1] for _ in range(repeat))
+    with threadpool_limits(limits=1, user_api="blas"):
+        bare = min(timed_cpu(lambda: bare_lag_products(session, L + 1))[1] for _ in range(repeat))
+    est = fit_arx(path, L)
+    reads = min(timed_cpu(lambda: read_pass(path, est))[1] for _ in range(repeat))
+    print(f"  ridge ARX, CPU time: fit {fit:.2f} s; bare lag products on one thread {bare:.2f} s (RATIO "
+          f"{fit / bare:.2f}); the fit's reads alone {reads:.2f} s ({reads / bare:.2f}); the rest {fit - bare - reads:.2f} "
+          f"s ({(fit - bare - reads) / bare:.2f}); load {os.getloadavg()[0]:.2f}")
+
+
 # ============================================================================================ end FAIR BASELINES
 
 

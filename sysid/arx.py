@@ -29,7 +29,8 @@ from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
-from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, \
+    own_moments
 from .arx_statespace import arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
     structure_candidates, structure_table
@@ -222,10 +223,9 @@ class RidgeArx(BasePredictor):
         kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
         if prob.size > _SMALL_GRAM and structure in search.get("tables", {}):
             # large Grams: the structure is scored on the search's rows (its table from the search); the final fit
-            # takes the structure's own rows (the search's moments when they are the same rows)
+            # takes the structure's own rows (derived from the search's sums where it can: own_moments)
             table, k, scheme = search["tables"][structure], search["moments"][2], search["moments"][3]
-            own = search["moments"] if search["n_lags"] == prob.L else self._accumulate(session, prob)
-            _folds, total, _k, _scheme, shift = own
+            _folds, total, _k, _scheme, shift = own_moments(self, session, prob, search)
             self._check_rows(prob, total.n)
         else:
             folds, total, k, scheme, shift = self._accumulate(session, prob)
@@ -373,19 +373,19 @@ class RidgeArx(BasePredictor):
     def _recursion(self, up, yp, uf, intercept) -> np.ndarray:
         """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions."""
         na, nb, d, L = self.output_lags_, self.input_lags_, self.delay_samples_, self.past_steps_
-        H = uf.shape[1]
-        U = np.concatenate([up, uf], axis=1)
-        Y = np.concatenate([yp, np.zeros((yp.shape[0], H, self.n_outputs_))], axis=1)
-        A, B = self.ar_coefs_, self.input_coefs_
-        # The input part does not depend on predictions: add it for every step at once.
-        drive = np.broadcast_to(intercept, (yp.shape[0], H, self.n_outputs_)).copy()
+        n, H, p = yp.shape[0], uf.shape[1], self.n_outputs_
+        U, Y = np.concatenate([up, uf], axis=1), np.concatenate([yp, np.zeros((n, H, p))], axis=1)
+        AT, B = self.ar_coefs_.transpose(0, 2, 1), self.input_coefs_
+        drive = np.broadcast_to(intercept, (n, H, p)).copy()  # the input part: every step at once
         for j in range(nb):
             drive += U[:, L - d - j: L - d - j + H] @ B[j].T
-        for h in range(H):
-            k = L + h
-            acc = drive[:, h]
-            for i in range(na):
-                acc = acc + Y[:, k - 1 - i] @ A[i].T
+        # Per step one batched product of the last na outputs (newest first), then a left-to-right sum of [drive,
+        # y_{k-1} A_1ᵀ, …]: the operations and order of one product per lag (same bits), without a call per lag.
+        terms, acc = np.empty((na + 1, n, p)), np.empty((n, p))
+        for k in range(L, L + H):
+            terms[0] = drive[:, k - L]
+            np.matmul(Y[:, k - 1: (k - 1 - na if k > na else None): -1].transpose(1, 0, 2), AT, out=terms[1:])
+            np.add.reduce(terms, axis=0, out=acc)
             Y[:, k] = acc
         return Y[:, L:]
 

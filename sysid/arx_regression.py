@@ -14,7 +14,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from .exceptions import InvalidParameterError, SessionError
-from ._lagged import _lagged_gram, _Moments, _single_threaded_blas
+from ._lagged import _lagged_gram, _LagSums, _Moments, _single_threaded_blas
 from .output_mask import output_valid_segments
 
 
@@ -59,6 +59,49 @@ def _block_pieces(segs, n_folds: int):
             if hi > lo:
                 out.append((int(lo), int(hi), f))
         offset += b - a
+    return out
+
+
+def own_moments(est, session, prob, search: dict):
+    """What ``est._accumulate(session, prob)`` returns for the total (the folds are None), from the structure
+    search's moments (``search``, :func:`~stimsteer.sysid.arx_structure.select_structure`'s ``keep``).
+
+    The search's rows start ``N − L`` samples later in each piece (``N`` its lag count, ``L`` the structure's).
+    When the structure's pieces are the search's pieces started that much earlier, in the same folds of whole
+    trials, the extra rows and their lead-in are the first ``N`` samples of each piece, which the search's sums keep
+    as its start window: the structure's sums follow without a second pass over the data (:func:`shorter_sums`;
+    sums of the same samples about the same shift, added in another order). Otherwise a second pass.
+    """
+    folds, total, k, scheme, shift = search["moments"]
+    N, L = search["n_lags"], prob.L
+    if N == L:
+        return search["moments"]
+    mine, k_own, scheme_own = _pieces(session, L, int(est.n_folds))
+    theirs = _pieces(session, N, int(est.n_folds))[0]
+    if scheme != "trials" or scheme_own != scheme or k_own != k or not hasattr(total, "sums") or \
+            mine != [(a - (N - L), b, f) for a, b, f in theirs]:
+        return est._accumulate(session, prob)
+    return None, shorter_sums(total.sums, L).lazy_moments(), k, scheme, shift[: prob.c * (L + 1)]
+
+
+def shorter_sums(sums: _LagSums, n_lags: int) -> _LagSums:
+    """The lag sums of the same pieces with ``n_lags`` (≤ the sums' own ``N``) lags and rows starting ``N −
+    n_lags`` samples earlier: the rows added are samples ``[n_lags, N)`` of each start window (sign +1; the lead-in
+    of every lag up to ``n_lags`` lies in it too), the start windows keep their first ``n_lags`` samples, the end
+    windows (sign −1) their last ``n_lags``."""
+    N, L = sums.X.shape[0] - 1, int(n_lags)
+    out = _LagSums(sums.S.size, L)
+    out.n, out.S, out.X = sums.n, sums.S.copy(), sums.X[: L + 1].copy()
+    for sign, w in sums.windows:
+        if sign < 0:
+            out.windows.append((sign, w[N - L:]))
+            continue
+        out.windows.append((sign, w[:L]))
+        rows = w[L:]
+        out.n += rows.shape[0]
+        out.S += rows.sum(axis=0)
+        for delta in range(L + 1):
+            out.X[delta] += rows.T @ w[L - delta: N - delta]
     return out
 
 

@@ -265,9 +265,13 @@ def _reference_prediction(est, u_past, y_past, u_future):
     return y[n_past:]
 
 
-def test_predict_many_equals_the_written_out_recursion(rng):
-    est = RidgeArx(output_lags=3, input_lags=2, delay_samples=2, alphas=[1e-3]).fit(
+# (3, 2, 3): past window (4) longer than the output lags; (4, 2, 1): as long (the first step reads its first
+# sample); (0, 3, 0): no output lags (finite impulse response, direct feed-through).
+@pytest.mark.parametrize("na, nb, d", [(3, 2, 3), (4, 2, 1), (0, 3, 0)])
+def test_predict_many_equals_the_written_out_recursion(rng, na, nb, d):
+    est = RidgeArx(output_lags=na, input_lags=nb, delay_samples=d, alphas=[1e-3]).fit(
         multi_trial_session(rng, noise=0.2))
+    assert est.past_steps_ == max(na, nb + d - 1)
     up, yp, uf = rng.standard_normal((5, 4, 2)), rng.standard_normal((5, 4, 2)), rng.standard_normal((5, 6, 2))
     many = est.predict_many(up, yp, uf)
     for w in range(5):

@@ -215,3 +215,38 @@ def test_a_chosen_structure_on_the_search_rows_reuses_its_moments_and_scores(mon
     np.testing.assert_allclose(auto.cv_table_.to_numpy(), fixed.cv_table_.to_numpy(), rtol=1e-9)
     np.testing.assert_allclose(auto.coef_, fixed.coef_, rtol=1e-12)
     np.testing.assert_allclose(auto.intercept_, fixed.intercept_, rtol=1e-12, atol=1e-14)
+
+
+def _centred_gram(moments):
+    """The Gram about the rows' own mean (independent of the shift the sums were taken about)."""
+    return moments.W - np.outer(moments.s, moments.s) / moments.n
+
+
+@pytest.mark.parametrize("n_trials", [5, 1])
+def test_a_shorter_chosen_window_takes_its_moments_from_the_search_sums(monkeypatch, n_trials):
+    # issue 14: the chosen structure's rows start N − L samples before the search's in each piece; those rows and
+    # their lead-in are in the search's start windows, so its own moments need no second pass over the data (folds
+    # of whole trials). One trial (folds of contiguous blocks, cut by row counts): the pieces differ, second pass.
+    session = _session(seed=4, n_trials=n_trials)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    est = _est(lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    candidates, _ = structure_candidates(est)
+    n_lags = max(_longest(c) for c in candidates)
+    probe = est._validated(session, max(candidates, key=_longest), n_lags)
+    search = {"moments": est._accumulate(session, probe), "n_lags": n_lags}
+    prob = est._validated(session, (2, 2, 1))
+    assert prob.L == 2 < n_lags == 4
+    passes = []
+    real = RidgeArx._accumulate
+    monkeypatch.setattr(RidgeArx, "_accumulate", lambda self, *a: passes.append(1) or real(self, *a))
+    _f, own, k, scheme, shift = arx_regression.own_moments(est, session, prob, search)
+    assert len(passes) == (0 if n_trials > 1 else 1) and shift.size == own.s.size == prob.size
+    _f, ref, k_ref, scheme_ref, _shift = real(est, session, prob)
+    assert (own.n, k, scheme) == (ref.n, k_ref, scheme_ref)
+    np.testing.assert_allclose(own.s / own.n + shift, ref.s / ref.n + _shift, rtol=1e-12)
+    expected = _centred_gram(ref)
+    np.testing.assert_allclose(_centred_gram(own), expected, rtol=1e-10, atol=1e-12 * np.abs(expected).max())
+    passes.clear()
+    fitted = _est(lag_grid=(1, 2, 3), delay_grid=(1, 2)).fit(session)
+    assert _longest((fitted.output_lags_, fitted.input_lags_, fitted.delay_samples_)) < n_lags
+    assert len(passes) == (1 if n_trials > 1 else 2)  # the search's pass alone (before: one more for the chosen)
