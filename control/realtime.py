@@ -383,8 +383,15 @@ def _wind_down(loop):
 
 
 def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
+    """Time ``n`` plans (+ a fresh gate's check) on the warm-up window. Work a controller leaves for the time between
+    samples (FastStep: the answer map of an active set it found new) is done first, untimed: before the first tick
+    there is no deadline, so the run starts with it done, as the steps it times do."""
     T = controller.past_steps_
     times = np.empty(n)
+    if hasattr(controller, "idle_cost_s"):
+        controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
+                        use_fast_path=use_fast_path)
+        controller.idle()
     for i in range(n):
         fresh = InputGate(controller.limits_, energy_window_steps=energy_window(controller))  # built untimed
         t0 = clock()
