@@ -258,7 +258,7 @@ def _fast_section(args, model, plant, limits, target, ind):
 # wall-clock time: p50/p99 step latency (tick to decision, plan + gate), jitter, overruns, missed ticks, unchecked
 # inputs (target: p99 < 100 µs at 10 kHz and zero unchecked inputs, on an idle 2-core machine), with FastStep, and
 # with the controller's full plan() at 1 kHz (or the refusal the runner gives, with its figures).
-def _live_report(name, run):
+def _live_report(name, run, usage=None):
     s = run.summary
     lat, jit, c = s["latency_s"], s["jitter_s"], s["counts"]
     us = lambda v: float("nan") if v is None else 1e6 * v  # noqa: E731
@@ -269,6 +269,37 @@ def _live_report(name, run):
           f"{us(jit['p99']):.1f} µs; overruns {c['overrun']}, missed ticks {c['missed']}, planned {c['planned']}; "
           f"unchecked inputs {s['unchecked_inputs']}, delivered over a hard limit "
           f"{sum(s['delivered_violations'].values())}")
+    wake = s.get("wake_s") or {}
+    if wake.get("p50") is not None:
+        print(f"  start of a step: woke after its tick p50 {us(wake['p50']):.1f} µs, p99 {us(wake['p99']):.1f} µs, max "
+              f"{us(wake['max']):.0f} µs (steps that waited); started behind (tick passed while the last step ran) "
+              f"{s['started_behind']}")
+    if usage is not None:
+        print(f"  during the run: involuntary context switches {usage[0]}, voluntary {usage[1]}, page faults minor "
+              f"{usage[2]} major {usage[3]}; GC collections {usage[4]}")
+
+
+@contextlib.contextmanager
+def _usage():
+    """Preemptions (involuntary context switches), sleeps, page faults and garbage collections during the block: a
+    list filled when it ends."""
+    import gc
+    import resource
+
+    out, counts = [], [0]
+
+    def count(phase, info):
+        if phase == "start":
+            counts[0] += 1
+    gc.callbacks.append(count)
+    r0 = resource.getrusage(resource.RUSAGE_SELF)
+    try:
+        yield out
+    finally:
+        r1 = resource.getrusage(resource.RUSAGE_SELF)
+        gc.callbacks.remove(count)
+        out += [r1.ru_nivcsw - r0.ru_nivcsw, r1.ru_nvcsw - r0.ru_nvcsw, r1.ru_minflt - r0.ru_minflt,
+                r1.ru_majflt - r0.ru_majflt, counts[0]]
 
 
 def _steal(seconds=0.5):
@@ -299,11 +330,12 @@ def _live_section(args, model, plant, limits, target, step, ind):
     seconds = args.live_seconds
     for name, ctrl, rate in (("plan()", ind, 1_000.0), ("FastStep", step, 1_000.0), ("FastStep", step, 10_000.0)):
         try:
-            run = run_live(ctrl, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall")
+            with _usage() as usage:
+                run = run_live(ctrl, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall")
         except InvalidParameterError as exc:
             print(f"{name} at {rate:g} Hz: refused -- {exc}")
             continue
-        _live_report(f"{name} at {rate:g} Hz", run)
+        _live_report(f"{name} at {rate:g} Hz", run, usage)
         if rate == 10_000.0:
             lat = run.summary["latency_s"]["p99"]
             print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   (target < 1; "
@@ -396,11 +428,12 @@ def _gate_section(args, model, limits, target):
         plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                    sample_rate_hz=rate)
         try:
-            run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+            with _usage() as usage:
+                run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
         except InvalidParameterError as exc:
             print(f"FastStep, {name}: refused -- {exc}")
             continue
-        _live_report(f"FastStep, {name}", run)
+        _live_report(f"FastStep, {name}", run, usage)
         g = run.summary["gate"]
         print(f"  gate: {g['admitted']} as given, {g['reduced']} reduced to the largest safe input, "
               f"{g['replaced'] - g['reduced']} fallbacks; ratio (p99 latency / 100 µs): "

@@ -35,6 +35,7 @@ def timing_summary(loop, period, calibration, stop) -> dict:
         "sample_period_s": period, "sample_rate_hz": 1.0 / period, "pace": loop.pace,
         "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
         "latency_s": _quantiles(loop.latency), "service_s": _quantiles(loop.service), "jitter_s": _quantiles(jitter),
+        "wake_s": _quantiles(loop.wake), "started_behind": int(loop.n_behind),
         "calibration_s": dict(calibration), "counts": counts,
         "gate": dict(zip(("admitted", "replaced", "reduced", "unavoidable"), counted)),
         "unchecked_inputs": len(loop.U) - counted[0] - counted[1],

@@ -36,8 +36,10 @@ simulated plant, or the streaming bridge of :mod:`stimsteer.control.stream`; any
 Latency is the time from the tick to the checked decision (plan + gate, before the input is sent), seconds; it
 includes any wait for the step to start when the previous one ran late (catching up). The service time is the part
 from the moment the step's work began to its decision (the step's own cost, preemption during it included); jitter
-is ``|tick interval − T|`` (``pace`` "wall" or "source"). Each reported as p50/p99/max, with the counts of each
-marker.
+is ``|tick interval − T|`` (``pace`` "wall" or "source"). With ``pace="wall"`` the start of a step is split by
+its cause: the *wake-up lateness* (start − tick) of the steps whose tick the loop was waiting for (sleep and spin
+wake-up, preemption while waiting, idle work that ran long), and the count of steps that *started behind* (their
+tick had passed when the previous step ended). Each reported as p50/p99/max, with the counts of each marker.
 """
 
 from __future__ import annotations
@@ -112,6 +114,9 @@ class _Loop:
         self.reach = max(self.past, self.history)
         self.events, self.markers, self.latency, self.ticks = [], {}, [], []
         self.service = []  # start of the step's work to its decision (latency without waiting for a late start)
+        # wall pace: how late a step started after its tick when the loop was waiting for it (sleep/spin wake-up,
+        # preemption while waiting), and how many steps found their tick already passed (the last step ran over)
+        self.wake, self.n_behind, self.waited = [], 0, False
         # work a controller leaves for the time between samples (FastStep: the answer map of a new active set)
         self._idle = getattr(controller, "idle", None) if hasattr(controller, "idle_cost_s") else None
         self.start = 0.0  # when the current step's work began (set by _step)
@@ -171,17 +176,18 @@ class _Loop:
                 self._idle()
             return self.clock()
         idle = self._idle
+        now = self.clock()
+        self.waited = now < tick
         while True:
-            now = self.clock()
             left = tick - now
             if left <= 0:
                 return now
             if idle is not None and left > 2.0 * self.c.idle_cost_s:  # only with time to spare before the tick
                 idle()
                 idle = None
-                continue
-            if left > _SPIN_S:
+            elif left > _SPIN_S:
                 self.sleep(left - _SPIN_S)
+            now = self.clock()
 
 
 def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
@@ -311,6 +317,11 @@ def _step(loop, tick, target, use_fast_path):
     start = loop.start = loop.wait_tick(tick)
     base = tick if loop.pace == "wall" else start
     loop.ticks.append(start)
+    if loop.pace == "wall":
+        if loop.waited:
+            loop.wake.append(start - tick)
+        else:
+            loop.n_behind += 1
     if loop.pace == "wall" and start - tick > T:  # this tick passed while the previous step ran: not planned
         loop.latency.append(np.nan)
         loop.service.append(np.nan)
@@ -372,8 +383,15 @@ def _wind_down(loop):
 
 
 def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
+    """Time ``n`` plans (+ a fresh gate's check) on the warm-up window. Work a controller leaves for the time between
+    samples (FastStep: the answer map of an active set it found new) is done first, untimed: before the first tick
+    there is no deadline, so the run starts with it done, as the steps it times do."""
     T = controller.past_steps_
     times = np.empty(n)
+    if hasattr(controller, "idle_cost_s"):
+        controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
+                        use_fast_path=use_fast_path)
+        controller.idle()
     for i in range(n):
         fresh = InputGate(controller.limits_, energy_window_steps=energy_window(controller))  # built untimed
         t0 = clock()

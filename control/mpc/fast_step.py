@@ -49,6 +49,7 @@ _ACCEPT_RTOL = 1e-7
 _BOX_MIN_VARS = 160
 _MAX_REGIONS = 64  # active sets whose answer maps are kept ...
 _MAX_MAP_BYTES = 64 * 2**20  # ... within this much memory (a map holds about two matrices of C x₀'s map's size)
+_MAX, _MIN = np.maximum.reduce, np.minimum.reduce  # without ndarray.max's Python wrapper (a live step's check)
 
 
 class StepResult:
@@ -318,6 +319,7 @@ class _Regions:
         self._CXw = np.ascontiguousarray(self._CX @ Qw)
         self._G = C @ Hi @ C.T
         self._lo, self._hi = np.array(lo), np.array(hi)  # the bounds that do not move (the first n_first do)
+        self._d, self._e = np.empty(len(lo)), np.empty(len(lo))  # scratch of the bound check
         self._n, self._first = n, int(n_first)
         finite = np.abs(np.concatenate([lo, hi]))
         self._ptol = 1e-9 * max(1.0, float(finite[finite < 1e29].max(initial=0.0)))
@@ -352,10 +354,11 @@ class _Regions:
                 db = np.concatenate((hi, lo))[r[9]] - r[10]
                 rows += r[7] @ db
                 nu -= r[8] @ db
-            if not (nu >= -self._dtol).all():
+            if not _MIN(nu) >= -self._dtol:  # NaN fails the compare
                 return None
-        tol = self._ptol
-        if not ((rows - hi <= tol).all() and (lo - rows <= tol).all()):
+        # the largest excess over either bound, in four ufunc calls (the same differences as two-sided compares)
+        d, e = self._d, self._e
+        if not _MAX(np.maximum(np.subtract(rows, hi, out=d), np.subtract(lo, rows, out=e), out=d)) <= self._ptol:
             return None
         return rows[:self._n]
 

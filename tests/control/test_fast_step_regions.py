@@ -8,6 +8,7 @@ method, Arnström, Bemporad & Axehill 2022) on the same QP, and with the cvxpy p
 """
 
 import gc
+import time
 
 import numpy as np
 import pytest
@@ -137,3 +138,16 @@ def test_the_maps_kept_stay_within_their_memory_bound(model, monkeypatch):
         np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs,
                                    ref.plan(u, y, target=tgt, last_input=last).inputs, atol=1e-9)
     assert list(step._regions._maps) == [()]
+
+
+def test_calibration_builds_the_warm_up_sets_map_before_it_times_the_step(model):
+    # before the first tick there is no deadline: the map of the active set the warm-up window binds is built then,
+    # so the timed plans (and the run's first steps) take it instead of the solver
+    from stimsteer.control.realtime import _calibrate
+
+    step = FastStep(ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit())
+    calls, solve = [], step._qp.solve_finite
+    step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
+    best = _calibrate(step, np.zeros((3, 2)), _far(model), None, 5, None, time.perf_counter)
+    assert len(calls) == 1 and best["n"] == 5  # the untimed first plan alone went to the solver
+    assert len(step._regions._maps) == 2 and step.idle_cost_s == np.inf  # bounds bind: a new set, its map built

@@ -249,7 +249,9 @@ def test_a_live_run_under_sequence_limits_delivers_only_safe_inputs(fast):
         ctrl = FastStep(ctrl)
     clock = _Clock()
     plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, sample_rate_hz=100.0)
-    run = run_live(_Greedy(ctrl, clock, late={7, 30}, greedy=not fast), plant, n_steps=200, target=np.array([50.0, -50.0]),
+    # the runner's calibration: 20 timed plans, after one untimed plan whose new active set the fast step maps
+    greedy = _Greedy(ctrl, clock, late={7, 30}, greedy=not fast, skip=21 if fast else 20)
+    run = run_live(greedy, plant, n_steps=200, target=np.array([50.0, -50.0]),
                    pace="none", clock=clock, seed=1)
     u = np.asarray(run.session.u)
     assert sequence_breaks(u, lim) == []

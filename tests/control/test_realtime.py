@@ -204,6 +204,11 @@ def test_a_wall_paced_run_marks_missed_ticks_after_a_long_step(system):
     assert set(run.events[:8] + run.events[14:]) == {"planned"}
     assert run.summary["counts"]["overrun"] == 1 and run.summary["counts"]["missed"] == 5
     assert [i - PAST for i in run.session.metadata["markers"]["missed"]] == [9, 10, 11, 12, 13]
+    # the start of each step by its cause: steps 9-14 found their tick passed (step 14's by the 1 µs clock readings
+    # of the catch-up); every other step waited, and woke within a few clock readings of its tick
+    assert run.summary["started_behind"] == 6
+    wake = run.summary["wake_s"]
+    assert 0.0 <= wake["p50"] <= wake["max"] <= 5e-6
     assert np.isfinite(run.jitter_s[1:]).all() and np.isnan(run.latency_s[9:14]).all()
     u = np.asarray(run.session.u)
     for k in range(8, 14):  # the overrun and the missed ticks held the last input (policy "hold")
