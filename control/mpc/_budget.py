@@ -110,8 +110,18 @@ class _RollingBudget:
         """Energy of every constrained window for the plan ``u`` (N, m) after the past energies ``hist``
         (``past``: ``Mh @ hist`` when the caller has it, e.g. across the evaluations of one bisection)."""
         u = np.asarray(u, np.float64).reshape(self.N, -1)
-        past = self.Mh @ hist if past is None else past
-        return past + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        if past is not None:
+            return past + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        # a plan checks the same inputs against the same past several times (solver answer, projection, guard,
+        # report): the last answer is kept, read-only, and given again for equal inputs and past
+        key = (u.tobytes(), np.asarray(hist, np.float64).tobytes())
+        memo = getattr(self, "_memo", None)
+        if memo is not None and memo[0] == key:
+            return memo[1]
+        out = self.Mh @ hist + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        out.flags.writeable = False
+        self._memo = (key, out)
+        return out
 
     def excess(self, u, hist) -> float:
         """How far the largest window exceeds the budget, in its unit (negative: inside)."""
