@@ -8,7 +8,12 @@ with a run made just before or after under the same load.
 
 Run from the repository root::
 
-    .venv/bin/python benchmarks/bench_demo.py [--repeats 1] [--keep DIR]
+    .venv/bin/python benchmarks/bench_demo.py [--repeats 1] [--keep DIR] [--bench-parts]
+
+Each step's CPU time is printed beside its wall time (the process's own and that of its children that ended, so the
+bench step's includes its pool's workers): less sensitive to the load than wall time. ``--bench-parts`` then runs
+the demo's bench step again in this process and prints the wall and CPU time of its parts (worker pool, assembly,
+figures, page).
 
 ``--keep DIR`` keeps the last run's output folder (e.g. to compare it with the stored golden numbers:
 ``python -c "import sys; sys.path.insert(0, 'tests'); import golden; print(golden.compare(golden.load_stored(),
@@ -35,12 +40,16 @@ t0 = time.time()
 from stimsteer.control.cli import main
 from stimsteer.control.demo import run_demo
 log, out = sys.argv[1], sys.argv[2]
+def cpu():  # this process and its children that have ended (a step's pool workers are joined when it ends)
+    t = os.times()
+    return t.user + t.system + t.children_user + t.children_system
 def step(argv):
-    start = time.time()
+    start, c0 = time.time(), cpu()
     code = main(argv)
     with open(log, "a", encoding="utf-8") as fh:
         fh.write(json.dumps({"step": argv[0], "out": argv[argv.index("--out") + 1] if "--out" in argv else "",
-                             "start": start, "end": time.time(), "pid": os.getpid(), "code": code}) + "\n")
+                             "start": start, "end": time.time(), "pid": os.getpid(), "code": code,
+                             "cpu": cpu() - c0}) + "\n")
     return code
 with open(log, "a", encoding="utf-8") as fh:
     fh.write(json.dumps({"imports": time.time() - t0}) + "\n")
@@ -66,20 +75,92 @@ def _one_run(out: Path) -> dict:
 
 def _print_run(run: dict) -> None:
     main_pid = min(s["pid"] for s in run["steps"])  # the demo's own process (the background step is its child)
-    print(f"{'step':<12} {'output':<26} {'start s':>8} {'wall s':>8}  process")
+    print(f"{'step':<12} {'output':<26} {'start s':>8} {'wall s':>8} {'CPU s':>7}  process")
     for s in sorted(run["steps"], key=lambda s: s["start"]):
         where = "demo" if s["pid"] == main_pid else "beside (child)"
         print(f"{s['step']:<12} {Path(s['out']).name:<26} {s['start'] - run['t0']:8.2f} {s['end'] - s['start']:8.2f}"
-              f"  {where}")
+              f" {s.get('cpu', float('nan')):7.2f}  {where}")
+    parent = sum(s.get("cpu", 0.0) for s in run["steps"] if s["pid"] == main_pid)
+    print(f"CPU of the steps in the demo's process {parent:.2f} s, of the step beside it (with its workers) "
+          f"{sum(s.get('cpu', 0.0) for s in run['steps'] if s['pid'] != main_pid):.2f} s")
     print(f"imports before the first step: {run['imports']:.2f} s")
     print(f"stimsteer demo end to end (fresh process): {run['wall']:.2f} s   (target <= 12 s on an idle 2-core "
           f"machine); 1-minute load average {run['load_before']:.2f} before, {run['load_after']:.2f} after")
+
+
+def _cpu() -> float:
+    t = os.times()  # this process and its children that have ended (the pool's workers, joined with the pool)
+    return t.user + t.system + t.children_user + t.children_system
+
+
+def bench_parts(n_workers: int = 2) -> dict:
+    """The demo's bench step in this process, by parts: ``(wall s, CPU s)`` of the worker pool (with the
+    references when the pool runs them), the assembly of the result, the figures, and the page and tables."""
+    import io
+    import contextlib
+
+    from threadpoolctl import threadpool_limits
+
+    from stimsteer.control.evaluation import BenchSettings, result as result_module, run_bench
+    from stimsteer.control.figures import bench as bench_figures
+    from stimsteer.control.limits import load_limits
+    from stimsteer.control.plants import load_plant
+    from stimsteer.control.report import bench_run_id, report_html, results_json, summarize
+    from stimsteer.demo_data import demo_file
+    from stimsteer.sysid import load_session
+
+    parts = {}
+
+    def timed(name, fn):
+        def wrapper(*args, **kwargs):
+            w0, c0 = time.perf_counter(), _cpu()
+            out = fn(*args, **kwargs)
+            parts[name] = (time.perf_counter() - w0, _cpu() - c0)
+            return out
+        return wrapper
+
+    session = load_session(str(demo_file("demo_session.h5")))
+    plant, limits = load_plant(str(demo_file("demo_plant.h5"))), load_limits(str(demo_file("demo_limits.toml")))
+    saved = result_module._execute, result_module._result
+    result_module._execute = timed("worker pool", saved[0])
+    result_module._result = timed("assembly (+ references when not on the pool)", saved[1])
+    try:
+        with threadpool_limits(limits=1), contextlib.redirect_stderr(io.StringIO()):
+            w0, c0 = time.perf_counter(), _cpu()
+            result = run_bench(session, BenchSettings(past_steps=10, horizon_steps=20), plant=plant, limits=limits,
+                               n_workers=n_workers, progress=False)
+            figures = timed("figures", bench_figures.report_figures)(result)
+
+            def page():
+                lines = summarize(result)
+                run_id = bench_run_id(result)
+                for table in result.tables().values():
+                    table.to_csv(io.StringIO(), index=False)
+                return results_json(result, lines, run_id), report_html(result, figures, lines, run_id)
+
+            timed("page, JSON and tables", page)()
+            parts["bench step (sum)"] = (time.perf_counter() - w0, _cpu() - c0)
+    finally:
+        result_module._execute, result_module._result = saved
+    return parts
+
+
+def _print_parts(n_workers: int) -> None:
+    load = os.getloadavg()[0]
+    parts = bench_parts(n_workers)
+    print(f"\nthe demo's bench step by parts, {n_workers} worker(s), in this process (CPU includes the workers)")
+    print(f"{'part':<48} {'wall s':>8} {'CPU s':>8}")
+    for name, (wall, cpu) in parts.items():
+        print(f"{name:<48} {wall:8.2f} {cpu:8.2f}")
+    print(f"1-minute load average {load:.2f} before, {os.getloadavg()[0]:.2f} after")
 
 
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=1, help="demo runs, one after the other (default 1)")
     parser.add_argument("--keep", metavar="DIR", help="keep the last run's output folder here (must not exist)")
+    parser.add_argument("--bench-parts", action="store_true",
+                        help="also time the demo's bench step by parts in this process (wall and CPU time)")
     args = parser.parse_args(argv)
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
     print(f"{cores} core(s) available; demo data of the repository")
@@ -96,6 +177,8 @@ def main(argv=None) -> int:
             shutil.copytree(out, args.keep)
     if len(walls) > 1:
         print(f"\nend to end over {len(walls)} runs: min {min(walls):.2f} s, max {max(walls):.2f} s")
+    if args.bench_parts:
+        _print_parts(cores)
     return 0
 
 

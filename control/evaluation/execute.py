@@ -16,7 +16,8 @@ import threading
 import time
 
 from ...sysid import InvalidParameterError, StimsteerError
-from .task_body import _run_task, chooses_routes, inner_score_of, route_choice_of, skip_reason
+from .references import base_tasks, has_references, reference_rows
+from .task_body import _run_task, chooses_routes, inner_score_of, one_thread, route_choice_of, skip_reason
 from .tasks import _Context, _Task
 
 _INSTALLED: dict = {}
@@ -138,7 +139,8 @@ def check_descriptors(n_workers: int) -> None:
             "--workers 1.")
 
 
-def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> list:
+def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> tuple[list, object]:
+    """The tasks' results in task order, and the references' rows when the pool computed them (else None)."""
     results = [None] * len(tasks)
     if n_workers > 1:
         check_descriptors(n_workers)
@@ -146,29 +148,65 @@ def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> list:
         for t in tasks:
             results[t.index] = _run_task(ctx, t)
             bar.update()
-        return results
+        return results, None
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
     with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx, os.getpid())) as pool:
         try:
-            choices = _choices(pool, ctx, tasks)
-            runs = []
-            for t in tasks:
-                t = dataclasses.replace(t, choice=choices.get(t.split_index))
-                skipped = skip_reason(ctx.settings, t, t.choice)
-                if skipped:  # decided here, as the task would decide it: no trip to a worker
-                    results[t.index] = {"skipped": skipped, "warnings": [], "task": t.index, "total_s": 0.0}
-                    bar.update()
-                else:
-                    runs.append(t)
-            futures = {pool.submit(_run_installed, t): t.index for t in sorted(runs, key=lambda t: _cost_rank(ctx, t))}
+            futures, refs = _submit(pool, ctx, tasks, results, bar)
             for fut in as_completed(futures):
                 results[futures[fut]] = fut.result()
                 bar.update()
+            refs = _reference_results(refs)
         except BaseException:  # Ctrl-C, SIGTERM, a failure: no worker outlives the run
             _stop_workers(pool)
             raise
-    return results
+    return results, refs
+
+
+def _submit(pool, ctx: _Context, tasks, results, bar) -> tuple[dict, list]:
+    """Submit every task that runs (the closed loops first), with the references' jobs after the closed loops.
+
+    Skipped tasks get their result here, as the task would decide it: no trip to a worker. The references (a
+    closed loop and a free run per split, :mod:`.references`) run on the workers beside the short tasks instead of
+    alone in this process after them.
+    """
+    choices = _choices(pool, ctx, tasks)
+    runs = []
+    for t in tasks:
+        t = dataclasses.replace(t, choice=choices.get(t.split_index))
+        skipped = skip_reason(ctx.settings, t, t.choice)
+        if skipped:
+            results[t.index] = {"skipped": skipped, "warnings": [], "task": t.index, "total_s": 0.0}
+            bar.update()
+        else:
+            runs.append(t)
+    runs.sort(key=lambda t: _cost_rank(ctx, t))
+    n_long = sum(1 for t in runs if not _cost_rank(ctx, t)[0])
+    futures = {pool.submit(_run_installed, t): t.index for t in runs[:n_long]}
+    refs = ([pool.submit(_reference_installed, t) for t in base_tasks(tasks, ctx.settings)]
+            if has_references(ctx) else [])
+    futures.update({pool.submit(_run_installed, t): t.index for t in runs[n_long:]})
+    return futures, refs
+
+
+def _reference_installed(task: _Task) -> list:
+    """:func:`~.references.reference_rows` of one split on a worker, with single-threaded BLAS (as a task); a
+    toolkit error is returned, not raised (the references are then left out, the routes' results stand)."""
+    with one_thread():
+        try:
+            return reference_rows(_INSTALLED["ctx"], task)
+        except StimsteerError as exc:
+            return exc
+
+
+def _reference_results(futures) -> object:
+    """The references' rows of every split, or None: none were submitted, or one failed (then they are computed
+    again where the run assembles its result, which leaves them out the same way)."""
+    rows = [f.result() for f in futures]
+    if not rows or any(isinstance(r, StimsteerError) for r in rows):
+        return None
+    return rows
 
 
 def _choices(pool, ctx: _Context, tasks) -> dict:
@@ -281,18 +319,19 @@ def _run_dask(ctx: _Context, tasks, client, bar) -> tuple[list, int]:
     return results, n_workers
 
 
-def _execute(ctx: _Context, tasks, scheduler, n_workers, progress) -> tuple[list, dict]:
-    """Run every task; results come back in task order whatever the order of completion."""
+def _execute(ctx: _Context, tasks, scheduler, n_workers, progress) -> tuple[list, dict, object]:
+    """Run every task; results come back in task order whatever the order of completion. Also returns the
+    references' rows when a local pool computed them beside the tasks (else None: computed by the caller)."""
     if scheduler:
         client = _connect(scheduler, ctx.settings.scheduler_timeout_s)
         with _progress_bar(len(tasks), progress) as bar:
             results, used = _run_dask(ctx, tasks, client, bar)
-        return results, {"mode": "dask", "scheduler": str(scheduler), "n_workers": used}
+        return results, {"mode": "dask", "scheduler": str(scheduler), "n_workers": used}, None
     n = _available_cores() if n_workers is None else int(n_workers)
     if n < 1:
         raise InvalidParameterError(f"n_workers must be at least 1; got {n_workers!r}.")
     n = min(n, len(tasks))
     with _progress_bar(len(tasks), progress) as bar:
-        results = _run_local(ctx, tasks, n, bar)
-    return results, {"mode": "sequential" if n <= 1 else "local processes", "n_workers": n}
+        results, refs = _run_local(ctx, tasks, n, bar)
+    return results, {"mode": "sequential" if n <= 1 else "local processes", "n_workers": n}, refs
 

@@ -12,7 +12,8 @@ these noisy data, or far from it? With the plant that made the session, the benc
   below zero by construction); **floor — no stimulation**: the closed loop's plant run with zero input over the same
   steps and noise seed, scored against the same target (energy 0).
 
-Each is computed once per split at the base setting, in this process (a few closed loops of 100 steps).
+Each is computed once per split at the base setting (a closed loop of 100 steps and a free run): on the local pool's
+workers beside the tasks, else in this process after them.
 """
 
 from __future__ import annotations
@@ -26,14 +27,15 @@ from ...sysid import StimsteerError, freerun_scores, kstep_scores
 from ...sysid._records import window_stride
 from .closed_loop import _channel_index, _control, _output_stats, _target
 
-__all__ = ["CEILING", "FLOOR_MEAN", "FLOOR_REST", "reference_table"]
+__all__ = ["CEILING", "FLOOR_MEAN", "FLOOR_REST", "base_tasks", "has_references", "reference_rows",
+           "reference_table"]
 
 CEILING = "ceiling: true model"
 FLOOR_MEAN = "floor: mean predictor"
 FLOOR_REST = "floor: no stimulation"
 
 
-def reference_table(ctx, tasks) -> pd.DataFrame:
+def reference_table(ctx, tasks, rows=None) -> pd.DataFrame:
     """Ceiling and floors per split at the base setting (empty without a ground-truth plant).
 
     Parameters
@@ -42,6 +44,9 @@ def reference_table(ctx, tasks) -> pd.DataFrame:
         The benchmark's context (session, plant, limits, settings).
     tasks : list of _Task
         The benchmark's tasks; the first base-setting task of each split gives its trials and loop seed.
+    rows : list of list of dict, optional
+        :func:`reference_rows` of each task of :func:`base_tasks`, when they were computed elsewhere (on the pool's
+        workers, beside the tasks); default computed here.
 
     Returns
     -------
@@ -49,26 +54,37 @@ def reference_table(ctx, tasks) -> pd.DataFrame:
         One row per split and reference: ``split``, ``reference``, ``r2_last``, ``r2_freerun`` (mean over
         channels), ``tracking_rms`` (steered channel, its unit), ``energy_ua2`` (NaN where it does not apply), ``note``.
     """
-    st = ctx.settings
-    if ctx.plant is None or not hasattr(ctx.plant, "to_state_space"):
+    if not has_references(ctx):
         return pd.DataFrame()
-    rows = []
-    for task in _base_tasks(tasks, st):
-        session = ctx.session
-        train, test = session.select_trials(task.split.train), session.select_trials(task.split.test)
-        rows.append({"split": task.split_index, "reference": CEILING, **_ceiling(ctx, task, train, test)})
-        r2 = _mean_predictor_r2(train, test)
-        rows.append({"split": task.split_index, "reference": FLOOR_MEAN, "r2_last": r2, "r2_freerun": r2,
-                     "tracking_rms": np.nan, "energy_ua2": np.nan, "note": "training mean of every output"})
-        if st.control is not None:
-            rows.append({"split": task.split_index, "reference": FLOOR_REST, "r2_last": np.nan, "r2_freerun": np.nan,
-                         "tracking_rms": _rest_tracking(ctx, task, train), "energy_ua2": 0.0,
-                         "note": "the plant with zero input, same noise seed and target"})
-    return pd.DataFrame(rows, columns=["split", "reference", "r2_last", "r2_freerun", "tracking_rms", "energy_ua2",
-                                       "note"])
+    if rows is None:
+        rows = [reference_rows(ctx, task) for task in base_tasks(tasks, ctx.settings)]
+    return pd.DataFrame([r for split_rows in rows for r in split_rows],
+                        columns=["split", "reference", "r2_last", "r2_freerun", "tracking_rms", "energy_ua2", "note"])
 
 
-def _base_tasks(tasks, st) -> list:
+def has_references(ctx) -> bool:
+    """Whether the benchmark's plant gives a ceiling and floors (a ground-truth plant with its state space)."""
+    return ctx.plant is not None and hasattr(ctx.plant, "to_state_space")
+
+
+def reference_rows(ctx, task) -> list:
+    """The ceiling and floors of one split (``task``: its first base-setting task), as rows of
+    :func:`reference_table`."""
+    st, session = ctx.settings, ctx.session
+    train, test = session.select_trials(task.split.train), session.select_trials(task.split.test)
+    rows = [{"split": task.split_index, "reference": CEILING, **_ceiling(ctx, task, train, test)}]
+    r2 = _mean_predictor_r2(train, test)
+    rows.append({"split": task.split_index, "reference": FLOOR_MEAN, "r2_last": r2, "r2_freerun": r2,
+                 "tracking_rms": np.nan, "energy_ua2": np.nan, "note": "training mean of every output"})
+    if st.control is not None:
+        rows.append({"split": task.split_index, "reference": FLOOR_REST, "r2_last": np.nan, "r2_freerun": np.nan,
+                     "tracking_rms": _rest_tracking(ctx, task, train), "energy_ua2": 0.0,
+                     "note": "the plant with zero input, same noise seed and target"})
+    return rows
+
+
+def base_tasks(tasks, st) -> list:
+    """The first base-setting task of each split (its trials and loop seed are the references')."""
     seen, out = set(), []
     for t in tasks:
         s = t.setting

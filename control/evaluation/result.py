@@ -262,18 +262,18 @@ def run_bench(session, settings: BenchSettings | None = None, *, plant=None, lim
     tasks = _tasks(st, splits, _grid(st, n_train, simulated=plant is not None))
     ctx = _Context(_token(session, st, plant), session, plant, limits, st)
     started, t0 = datetime.now(timezone.utc).isoformat(timespec="seconds"), time.perf_counter()
-    results, execution = _execute(ctx, tasks, scheduler, n_workers, progress)
+    results, execution, ref_rows = _execute(ctx, tasks, scheduler, n_workers, progress)
     return _result(st, session, plant, limits, splits, tasks, results, execution, started,
-                   time.perf_counter() - t0, source, lambda: _references(ctx, tasks))
+                   time.perf_counter() - t0, source, lambda: _references(ctx, tasks, ref_rows))
 
 
-def _references(ctx, tasks) -> pd.DataFrame:
-    """Floor and ceiling of a simulated session (:func:`~.references.reference_table`); empty when they cannot be
-    computed (the routes' results stand without them)."""
+def _references(ctx, tasks, rows=None) -> pd.DataFrame:
+    """Floor and ceiling of a simulated session (:func:`~.references.reference_table`, from ``rows`` when the
+    pool computed them); empty when they cannot be computed (the routes' results stand without them)."""
     if ctx.plant is None:
         return pd.DataFrame()
     try:
-        return reference_table(ctx, tasks)
+        return reference_table(ctx, tasks, rows)
     except StimsteerError:
         return pd.DataFrame()
 

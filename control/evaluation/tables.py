@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pandas as pd
 
 from .settings import BenchSettings
@@ -159,13 +160,27 @@ def _comparison(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
         values = sorted(sub[col].unique()) if col else [None]
         for value in values:
             part = sub if col is None else sub[sub[col] == value]
-            wides = {metric: part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
-                     for metric in METRICS if metric in part.columns}  # once per part, not per pair
+            wides = _wides(part)
             for a in ind:
                 for b in dirs:
                     rows += _paired(wides, a, b, sweep, value)
     return pd.DataFrame(rows, columns=["sweep", "value", "indirect", "direct", "metric", "n", "mean_difference",
                                        "ci_low", "ci_high", "better"])
+
+
+def _wides(part: pd.DataFrame) -> dict:
+    """Each metric's mean per split and label, as ``{metric: {label: values by split}}`` (once per part, not per
+    pair): the columns ``pivot_table`` gives metric by metric (a label without any value left out), from one
+    grouping of every metric at once, as arrays (a pivot table per metric and Series arithmetic per pair took
+    1.9 s and 1.1 s of the demo's 3.1 s of comparisons)."""
+    metrics = [m for m in METRICS if m in part.columns]
+    wide = part.groupby(["split", "label"], sort=True)[metrics].mean().unstack("label")
+    values = wide.to_numpy(dtype=np.float64)
+    out = {m: {} for m in metrics}
+    for j, (metric, label) in enumerate(wide.columns):
+        if not np.all(np.isnan(values[:, j])):
+            out[metric][label] = values[:, j]
+    return out
 
 
 def _paired(wides, a, b, sweep, value) -> list:
@@ -176,8 +191,10 @@ def _paired(wides, a, b, sweep, value) -> list:
         wide = wides[metric]
         if a not in wide or b not in wide:
             continue
-        d = (wide[b] - wide[a]).dropna()
-        margin = practical_margin(metric, float(wide[a].mean()))
+        d = wide[b] - wide[a]
+        d = d[~np.isnan(d)]
+        ref = wide[a][~np.isnan(wide[a])]
+        margin = practical_margin(metric, float(ref.mean()))
         mean, lo, hi, better = paired_verdict(d, higher, margin)
         rows.append({"sweep": sweep, "value": math.nan if value is None else float(value), "indirect": a,
                      "direct": b, "metric": metric, "n": int(d.size), "mean_difference": mean, "ci_low": lo,

@@ -71,6 +71,8 @@ class _RollingBudget:
             rows[r, end - W + 1:end + 1] = 1.0
         self.Mh, self.Mp, self.Mr = rows[:, :W - 1], rows[:, W - 1:W - 1 + N], rows[:, W - 1 + N:]
         self.n_tail = n_tail
+        # t·slew of the ramp's steps t = 1 … n_tail (the same for every plan: computed once, not per evaluation)
+        self._ramp_drop = (np.arange(1, n_tail + 1)[:, None] * self.slew[self.fin][None, :]) if n_tail else None
 
     # ------------------------------------------------------------------------------------ numbers
     def history(self, u_past) -> np.ndarray:
@@ -96,19 +98,30 @@ class _RollingBudget:
         """``r_t`` of the ramp to zero after a plan ending at ``last``, t = 1 … n_tail."""
         if not self.n_tail:
             return np.zeros(0)
-        t = np.arange(1, self.n_tail + 1)[:, None]
         a = np.abs(np.asarray(last, np.float64)[self.fin])[None, :]
-        r = np.maximum(a - t * self.slew[self.fin][None, :], 0.0)
+        r = np.maximum(a - self._ramp_drop, 0.0)
         if not self.weighted:
             return np.sum(r**2, axis=1)
         full = np.zeros((r.shape[0], self.fin.size))
         full[:, self.fin] = r
         return np.array([float(self.loads(row[None, :])[0]) for row in full])
 
-    def energies(self, u, hist) -> np.ndarray:
-        """Energy of every constrained window for the plan ``u`` (N, m) after the past energies ``hist``."""
+    def energies(self, u, hist, past=None) -> np.ndarray:
+        """Energy of every constrained window for the plan ``u`` (N, m) after the past energies ``hist``
+        (``past``: ``Mh @ hist`` when the caller has it, e.g. across the evaluations of one bisection)."""
         u = np.asarray(u, np.float64).reshape(self.N, -1)
-        return self.Mh @ hist + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        if past is not None:
+            return past + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        # a plan checks the same inputs against the same past several times (solver answer, projection, guard,
+        # report): the last answer is kept, read-only, and given again for equal inputs and past
+        key = (u.tobytes(), np.asarray(hist, np.float64).tobytes())
+        memo = getattr(self, "_memo", None)
+        if memo is not None and memo[0] == key:
+            return memo[1]
+        out = self.Mh @ hist + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        out.flags.writeable = False
+        self._memo = (key, out)
+        return out
 
     def excess(self, u, hist) -> float:
         """How far the largest window exceeds the budget, in its unit (negative: inside)."""
@@ -204,8 +217,11 @@ def blend_all(budgets, hists, u, safe):
 
     Every window load is convex in α, so the α inside all budgets form an interval from 0: bisection.
     """
+    pasts = [b.Mh @ h for b, h in zip(budgets, hists)]  # the applied past's part of every window: once
+
     def inside(x):
-        return all(np.max(b.energies(x, h)) <= b.budget * (1.0 - 1e-10) for b, h in zip(budgets, hists))
+        return all(np.max(b.energies(x, h, p)) <= b.budget * (1.0 - 1e-10)
+                   for b, h, p in zip(budgets, hists, pasts))
 
     if inside(u):
         return u

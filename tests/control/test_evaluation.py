@@ -62,6 +62,10 @@ def _numbers(result):
         out[name] = t.drop(columns=[c for c in _TIMING if c in t.columns]).reset_index(drop=True)
     s = result.sweeps
     out["sweeps"] = s[~s["metric"].isin(["fit_s", "predict_ms_per_window", "solve_ms_median"])].reset_index(drop=True)
+    c = result.comparison
+    out["comparison"] = c[~c["metric"].isin(["fit_s", "predict_ms_per_window", "solve_ms_median"])
+                          ].reset_index(drop=True)
+    out["references"] = result.references.reset_index(drop=True)  # on a local pool: computed by the workers
     return out
 
 
@@ -126,6 +130,22 @@ def test_t_interval_matches_scipy(rng):
     m1, lo1, hi1 = t_interval([2.0, np.nan])
     assert m1 == 2.0 and np.isnan(lo1) and np.isnan(hi1)
     assert all(np.isnan(t_interval([])))
+
+
+def test_comparison_tables_are_the_per_metric_pivot_tables():
+    # _wides groups every metric at once; it must give what pandas' pivot_table gives metric by metric (a label
+    # without any value left out, NaN kept where a split lacks one)
+    from stimsteer.control.evaluation.tables import _wides
+
+    part = pd.DataFrame({"split": [0, 0, 1, 1, 2, 2, 2], "label": ["a", "b", "a", "b", "a", "b", "c"],
+                         "r2_mean": [0.5, 0.7, 0.4, np.nan, 0.6, 0.8, np.nan],
+                         "tracking_rms": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0]})
+    wides = _wides(part)
+    for metric in ("r2_mean", "tracking_rms"):
+        pivot = part.pivot_table(index="split", columns="label", values=metric, aggfunc="mean")
+        assert sorted(wides[metric]) == sorted(pivot.columns)
+        for label in pivot.columns:
+            np.testing.assert_array_equal(wides[metric][label], pivot[label].reindex([0, 1, 2]).to_numpy())
 
 
 def test_paired_verdict_names_a_route_only_when_the_interval_excludes_zero():

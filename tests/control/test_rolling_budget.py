@@ -215,3 +215,25 @@ def test_a_schedule_keeps_the_budget_on_the_window_the_limits_declare():
     assert s.energy_window_steps == 40
     u = np.asarray(s.u)
     assert window_energies(u, 40).max() <= 20000.0 * (1 + 1e-9)
+
+
+def test_window_energies_are_recomputed_for_other_inputs_and_read_only():
+    # the budget keeps its last window energies for a repeated check of the same plan; another plan or another
+    # past must get its own (brute-force sums over each window of [past | plan | ramp], common practice, no source)
+    from stimsteer.control.mpc._budget import _RollingBudget
+
+    W, N = 4, 5
+    b = _RollingBudget(10.0, W, N, np.array([0.5, np.inf]))
+    rng = np.random.default_rng(3)
+
+    def brute(u, hist):
+        last = np.abs(u[-1, 0])
+        ramp = [max(last - 0.5 * t, 0.0) ** 2 for t in range(1, W)]
+        seq = np.concatenate([hist, np.sum(u**2, axis=1), ramp])
+        return np.array([seq[j - W + 1:j + 1].sum() for j in range(W - 1, seq.size)])
+
+    u1, u2, h1, h2 = rng.normal(size=(N, 2)), rng.normal(size=(N, 2)), rng.uniform(size=W - 1), rng.uniform(size=W - 1)
+    for u, h in ((u1, h1), (u1, h1), (u2, h1), (u2, h2), (u1, h1)):
+        e = b.energies(u, h)
+        np.testing.assert_allclose(e, brute(u, h), rtol=1e-12)
+        assert not e.flags.writeable
