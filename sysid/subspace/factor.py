@@ -87,6 +87,10 @@ class _FactorProjection:
     can be freed after construction; :meth:`decompose` then takes the SVD.
     """
 
+    #: every candidate order's ``B, D`` sums by matrix products (:func:`.markov.normal_equations` with ``gemm``) and
+    #: its Kalman gain by doubling first (:mod:`.riccati`)
+    large = True
+
     def __init__(self, Lf: np.ndarray, S_uu, S_yu, S_yy, layout: _Layout, weighting: str):
         L, k = layout, _Blocks(layout)
         a, b, e, g = k.a, k.b, k.e, k.g
