@@ -130,10 +130,14 @@ def normal_equations_gemm(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough:
     rhs = _rhs(h, target, m)
     if not feedthrough:
         return M.reshape(nc * m, nc * m), rhs.T.reshape(-1)
-    # θ = [B(j, l) at l n + j; D(a, l) at n m + l p + a]
-    parts = [[M[:, r][:, :, :, c].reshape(len(range(nc)[r]) * m, -1) for c in (slice(0, n), slice(n, nc))]
-             for r in (slice(0, n), slice(n, nc))]
-    return np.block(parts), np.concatenate([rhs[:n].T.reshape(-1), rhs[n:].T.reshape(-1)])
+    # θ = [B(j, l) at l n + j; D(a, l) at n m + l p + a]: each block written once through a 4-D view of `out`
+    out = np.empty((nc * m, nc * m))
+    parts = ((slice(0, n), slice(0, n * m)), (slice(n, nc), slice(n * m, nc * m)))
+    for r, rows in parts:
+        for c, cols in parts:
+            view = out[rows, cols].reshape(m, r.stop - r.start, m, c.stop - c.start)  # a view: splits each axis
+            view[...] = M[:, r, :, c]
+    return out, np.concatenate([rhs[:n].T.reshape(-1), rhs[n:].T.reshape(-1)])
 
 
 def _rhs(h, target, m: int) -> np.ndarray:

@@ -111,6 +111,10 @@ class _Projection:
     ``Γ = W1⁻¹ U₁ S₁^{1/2}`` for the leading ``n`` singular triplets.
     """
 
+    def nested(self, n: int):
+        """None: this route computes every order on its own (:meth:`.factor._FactorProjection.nested`)."""
+        return None
+
     #: small problems keep the computations of before bit for bit (the factor route's large ones take faster sums
     #: and solvers of the same equations, which round differently)
     large = False
@@ -242,7 +246,7 @@ def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     return sla.cho_solve(F, rhs, check_finite=False)
 
 
-def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
+def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
     """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
 
     Notes
@@ -254,7 +258,7 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """
     L = proj.layout
     n, m, p = A.shape[0], L.m, L.p
-    Q = np.linalg.qr(gamma)[0]
+    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
     S_uu, S_yu = proj.future_cov
     Sc_uu, Sc_yu = proj.given_past
     if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
@@ -344,8 +348,14 @@ def _innovation_form(A, C, Q, R, Sx, doubling: bool = False):
 def _fit_order(proj: _Projection, n: int, feedthrough: bool):
     """All scaled-coordinate matrices of the order-``n`` model of one projection."""
     gamma = proj.gamma(n)
-    A, C = _a_c(gamma, proj.layout.p)
-    B, D = _b_d(proj, gamma, A, C, feedthrough)
-    Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
+    nested = proj.nested(n)
+    if nested is None:
+        A, C = _a_c(gamma, proj.layout.p)
+        B, D = _b_d(proj, gamma, A, C, feedthrough)
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
+    else:  # the factor route: A and the state maps from one factorisation shared by the orders; range(Γ) = range(U_n)
+        A, C = nested[0], gamma[:proj.layout.p].copy()
+        B, D = _b_d(proj, gamma, A, C, feedthrough, basis=proj.U[:, :n])
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=nested[1:])
     K, Re, how = _innovation_form(A, C, Q, R, Sx, proj.large)
     return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
