@@ -27,8 +27,6 @@ with its eigenvalue cut-off, is used.
 
 from __future__ import annotations
 
-import functools
-
 import numpy as np
 import scipy.linalg as sla
 
@@ -141,19 +139,24 @@ class _FactorProjection:
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U
         self.w_inv = w_inv
+        self._shift_cache = None
 
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
         G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
         return G if self.w_inv is None else self.w_inv @ G
 
-    @functools.cached_property
-    def _shifted(self):
-        """The QR ``U₋ = Q R`` of ``U`` without its last block row and the products every order shares: ``Uᵀ Θ``,
-        ``Qᵀ Θ₊`` and ``Qᵀ U₊`` (``U₊``: ``U`` without its first block row), in factor coordinates."""
-        p = self.layout.p
-        Q, R = np.linalg.qr(self.U[:-p])
-        return R, self.U.T @ self.theta_rows, Q.T @ self.theta_next_rows, Q.T @ self.U[p:]
+    def _shifted(self, n: int):
+        """The QR ``U₋ = Q R`` of the leading columns of ``U`` without its last block row and the products every order
+        up to ``n`` shares: ``Uᵀ Θ``, ``Qᵀ Θ₊`` and ``Qᵀ U₊`` (``U₊``: ``U`` without its first block row). Kept for
+        twice the orders asked (the leading blocks of a QR do not depend on the columns after them), so memory
+        follows the candidate orders, not the ``p f`` columns of ``U``."""
+        if self._shift_cache is None or self._shift_cache[0] < n:
+            p, k = self.layout.p, min(self.U.shape[1], max(2 * n, 16))
+            U = self.U[:, :k]
+            Q, R = np.linalg.qr(U[:-p])
+            self._shift_cache = (k, R, U.T @ self.theta_rows, Q.T @ self.theta_next_rows, Q.T @ U[p:])
+        return self._shift_cache[1:]
 
     def nested(self, n: int):
         """``(A, X0, X1)`` of order ``n`` from the leading blocks of one factorisation shared by every order, or None
@@ -166,7 +169,7 @@ class _FactorProjection:
         """
         if self.w_inv is not None:
             return None
-        R, ut_theta, qt_next, qt_up = self._shifted
+        R, ut_theta, qt_next, qt_up = self._shifted(n)
         Rn = R[:n, :n]
         rcond, info = sla.lapack.dtrcon(Rn, norm="1", uplo="U")
         if info != 0 or not rcond > _NESTED_RCOND:
