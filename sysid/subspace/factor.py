@@ -34,6 +34,11 @@ from .gram import _Layout
 from .projection import _CHOLESKY_CONDITION, _psd_parts
 
 
+#: Smallest reciprocal condition number (1-norm estimate) of ``R_n`` for :meth:`_FactorProjection.nested`; below it the
+#: pseudo-inverses of before (with their cut-off) are used (common practice, no source).
+_NESTED_RCOND = 1e-8
+
+
 def _one_norm(S: np.ndarray, band: int = 512) -> float:
     """``‖S‖₁`` of a symmetric matrix (largest absolute row sum), a band of rows at a time."""
     return max(float(np.abs(S[a:a + band]).sum(axis=1).max()) for a in range(0, S.shape[0], band))
@@ -87,6 +92,10 @@ class _FactorProjection:
     can be freed after construction; :meth:`decompose` then takes the SVD.
     """
 
+    #: every candidate order's ``B, D`` sums by matrix products (:func:`.markov.normal_equations` with ``gemm``) and
+    #: its Kalman gain by doubling first (:mod:`.riccati`)
+    large = True
+
     def __init__(self, Lf: np.ndarray, S_uu, S_yu, S_yy, layout: _Layout, weighting: str):
         L, k = layout, _Blocks(layout)
         a, b, e, g = k.a, k.b, k.e, k.g
@@ -130,16 +139,54 @@ class _FactorProjection:
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U
         self.w_inv = w_inv
+        self._shift_cache = None
 
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
         G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
         return G if self.w_inv is None else self.w_inv @ G
 
-    def residual_covariances(self, gamma, A, B, C, D):
-        """``Q, R, S`` of the state- and output-equation residuals (as :func:`~.projection._noise`)."""
-        X0 = np.linalg.pinv(gamma) @ self.theta_rows
-        W = np.linalg.pinv(gamma[:-self.layout.p]) @ self.theta_next_rows - A @ X0 - B @ self.u0_rows
+    def _shifted(self, n: int):
+        """The QR ``U₋ = Q R`` of the leading columns of ``U`` without its last block row and the products every order
+        up to ``n`` shares: ``Uᵀ Θ``, ``Qᵀ Θ₊`` and ``Qᵀ U₊`` (``U₊``: ``U`` without its first block row). Kept for
+        twice the orders asked (the leading blocks of a QR do not depend on the columns after them), so memory
+        follows the candidate orders, not the ``p f`` columns of ``U``."""
+        if self._shift_cache is None or self._shift_cache[0] < n:
+            p, k = self.layout.p, min(self.U.shape[1], max(2 * n, 16))
+            U = self.U[:, :k]
+            Q, R = np.linalg.qr(U[:-p])
+            self._shift_cache = (k, R, U.T @ self.theta_rows, Q.T @ self.theta_next_rows, Q.T @ U[p:])
+        return self._shift_cache[1:]
+
+    def nested(self, n: int):
+        """``(A, X0, X1)`` of order ``n`` from the leading blocks of one factorisation shared by every order, or None
+        (CVA weighting, or ``Γ₋`` of order ``n`` near rank deficiency: then the pseudo-inverses of before).
+
+        With ``Γ = U_n S_n^{1/2}`` (orthonormal ``U``) and ``U₋ = Q R``: ``Γ⁺ = S_n^{-1/2} U_nᵀ`` and
+        ``Γ₋⁺ = S_n^{-1/2} R_n⁻¹ Q_nᵀ``, so the shift-invariance solution ``A = Γ₋⁺ Γ₊`` and the state maps
+        ``X0 = Γ⁺ Θ``, ``X1 = Γ₋⁺ Θ₊`` of every order are leading blocks of products taken once (the regressors of
+        order ``n`` are the first ``n`` of the largest order).
+        """
+        if self.w_inv is not None:
+            return None
+        R, ut_theta, qt_next, qt_up = self._shifted(n)
+        Rn = R[:n, :n]
+        rcond, info = sla.lapack.dtrcon(Rn, norm="1", uplo="U")
+        if info != 0 or not rcond > _NESTED_RCOND:
+            return None
+        root = np.sqrt(self.singular_values[:n])
+        A = sla.solve_triangular(Rn, qt_up[:n, :n], check_finite=False) * (root[None, :] / root[:, None])
+        X1 = sla.solve_triangular(Rn, qt_next[:n], check_finite=False) / root[:, None]
+        return A, ut_theta[:n] / root[:, None], X1
+
+    def residual_covariances(self, gamma, A, B, C, D, states=None):
+        """``Q, R, S`` of the state- and output-equation residuals (as :func:`~.projection._noise`); ``states``: the
+        state maps ``(X0, X1)`` of :meth:`nested` when known."""
+        if states is None:
+            states = (np.linalg.pinv(gamma) @ self.theta_rows,
+                      np.linalg.pinv(gamma[:-self.layout.p]) @ self.theta_next_rows)
+        X0, X1 = states
+        W = X1 - A @ X0 - B @ self.u0_rows
         V = self.y0_rows - C @ X0 - D @ self.u0_rows
         Q, R = W @ W.T, V @ V.T
         return 0.5 * (Q + Q.T), 0.5 * (R + R.T), W @ V.T

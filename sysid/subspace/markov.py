@@ -88,6 +88,70 @@ def contract_projected_gram(Phi: np.ndarray, D4: np.ndarray) -> np.ndarray:
     return out.transpose(0, 3, 1, 2)
 
 
+def _shift_weights(S4: np.ndarray) -> np.ndarray:
+    """``X4`` with ``Σ_{s,t} (h[s]ᵀ h[t]) X4[t, ·, s, ·]`` equal to :func:`contract_shifted_gram`'s sum.
+
+    ``G[s, s + δ] = Σ_{t < f − s − δ} h[t + δ]ᵀ h[t]``: the pair ``(a, b)`` of pattern blocks meets the input
+    covariance blocks ``S[j + (a − b)⁺, ·, j + (b − a)⁺, ·]`` for every ``j <= f − 1 − max(a, b)``, so its weight is a
+    cumulative sum of ``m × m`` blocks (the cumulative sums run over the small blocks, not the ``nc × nc`` ones).
+    """
+    f, m = S4.shape[0], S4.shape[1]
+    X4 = np.empty((f, m, f, m))
+    for delta in range(f):
+        i = np.arange(f - delta)
+        below = np.cumsum(S4[delta + i, :, i, :], axis=0)[::-1]  # pairs (δ + i, i), summed to j = f − 1 − δ − i
+        above = np.cumsum(S4[i, :, delta + i, :], axis=0)[::-1]  # pairs (i, δ + i)
+        X4[i, :, delta + i, :] = below
+        X4[delta + i, :, i, :] = above
+    return X4
+
+
+def _projected_gemm(Phi: np.ndarray, D4: np.ndarray) -> np.ndarray:
+    """:func:`contract_projected_gram` (``Σ_{s,t} (Φ[s]ᵀ Φ[t]) D4[t, ·, s, ·]``) as ``[(l, l'), (c, c')]``: through the
+    whole Gram ``[Φ[s]ᵀ Φ[t]]`` and one matrix product when that takes fewer flops (``f² nc² (q + m²)`` against
+    ``f q nc m² (f + nc)``: many inputs, short futures)."""
+    f, q, nc = Phi.shape
+    m = D4.shape[1]
+    if f * nc * (q + m * m) >= q * m * m * (f + nc):
+        return contract_projected_gram(Phi, D4).transpose(1, 3, 0, 2).reshape(m * m, nc * nc)
+    flat = Phi.transpose(1, 0, 2).reshape(q, f * nc)
+    G2 = (flat.T @ flat).reshape(f, nc, f, nc).transpose(0, 2, 1, 3).reshape(f * f, nc * nc)  # [(s, t), (c, c')]
+    return D4.transpose(3, 1, 2, 0).reshape(m * m, f * f) @ G2  # D4[t, l', s, l] as [(l, l'), (s, t)]
+
+
+def normal_equations_gemm(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
+    """:func:`normal_equations` by matrix products (:func:`_shift_weights`, :func:`_projected_gemm`) laid out in the
+    unknowns' order directly: the same sums in another order, equal to rounding (for the factor route)."""
+    f, p, nc = h.shape
+    S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
+    M = _projected_gemm(h, _shift_weights(S4))
+    M += _projected_gemm(projected_patterns(Q, h), D4)
+    M = M.reshape(m, m, nc, nc).transpose(0, 2, 1, 3)  # [l, c, l', c']
+    rhs = _rhs(h, target, m)
+    if not feedthrough:
+        return M.reshape(nc * m, nc * m), rhs.T.reshape(-1)
+    # θ = [B(j, l) at l n + j; D(a, l) at n m + l p + a]: each block written once through a 4-D view of `out`
+    out = np.empty((nc * m, nc * m))
+    parts = ((slice(0, n), slice(0, n * m)), (slice(n, nc), slice(n * m, nc * m)))
+    for r, rows in parts:
+        for c, cols in parts:
+            view = out[rows, cols].reshape(m, r.stop - r.start, m, c.stop - c.start)  # a view: splits each axis
+            view[...] = M[:, r, :, c]
+    return out, np.concatenate([rhs[:n].T.reshape(-1), rhs[n:].T.reshape(-1)])
+
+
+def _rhs(h, target, m: int) -> np.ndarray:
+    """``Σ_t h[t]ᵀ Σ_s T[s + t, ·, s, ·]``, shape (nc, m): the right-hand side indexed ``(c, l)``."""
+    f, p, nc = h.shape
+    T4 = target.reshape(f, p, f, m)  # [r, a, s, l]
+    rhs = np.zeros((nc, m))
+    s_all = np.arange(f)
+    for t in range(f):
+        s = s_all[: f - t]
+        rhs += h[t].T @ T4[s + t, :, s, :].sum(axis=0)
+    return rhs
+
+
 def normal_equations(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
     """``M`` and ``rhs`` of the ``θ = [vec(B); vec(D)]`` least squares (column-major ``vec``, as the dense form)."""
     f, p, nc = h.shape

@@ -13,7 +13,8 @@ import scipy.linalg as sla
 from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain, markov_toeplitz
 from .gram import _Layout
-from .markov import normal_equations, pattern_blocks
+from .markov import normal_equations, normal_equations_gemm, pattern_blocks
+from .riccati import doubling_gain
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -109,6 +110,14 @@ class _Projection:
 
     ``Γ = W1⁻¹ U₁ S₁^{1/2}`` for the leading ``n`` singular triplets.
     """
+
+    def nested(self, n: int):
+        """None: this route computes every order on its own (:meth:`.factor._FactorProjection.nested`)."""
+        return None
+
+    #: small problems keep the computations of before bit for bit (the factor route's large ones take faster sums
+    #: and solvers of the same equations, which round differently)
+    large = False
 
     def __init__(self, S: np.ndarray, layout: _Layout, weighting: str):
         L = layout
@@ -237,7 +246,7 @@ def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     return sla.cho_solve(F, rhs, check_finite=False)
 
 
-def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
+def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
     """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
 
     Notes
@@ -249,15 +258,15 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool):
     """
     L = proj.layout
     n, m, p = A.shape[0], L.m, L.p
-    Q = np.linalg.qr(gamma)[0]
+    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
     S_uu, S_yu = proj.future_cov
     Sc_uu, Sc_yu = proj.given_past
     if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
         M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
     else:  # the same sums taken over the block-Toeplitz structure (markov.py)
         target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
-        M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
-                                  feedthrough)
+        sums = normal_equations_gemm if proj.large else normal_equations
+        M, rhs = sums(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m, feedthrough)
     M = 0.5 * (M + M.T)
     theta = _solve_excited(M, rhs)
     if theta is None:
@@ -305,8 +314,12 @@ def _noise(proj: _Projection, gamma, A, B, C, D):
     return 0.5 * (Q + Q.T), 0.5 * (R + R.T), Sx
 
 
-def _innovation_form(A, C, Q, R, Sx):
-    """Steady-state Kalman gain and innovation covariance; ``K = 0`` for (numerically) noise-free data."""
+def _innovation_form(A, C, Q, R, Sx, doubling: bool = False):
+    """Steady-state Kalman gain and innovation covariance; ``K = 0`` for (numerically) noise-free data.
+
+    ``doubling`` (the factor route's many large candidate orders) tries the doubling solver first
+    (:mod:`.riccati`); it falls back to the QZ route, and that one to ``K = 0``, as before.
+    """
     joint = np.block([[Q, Sx], [Sx.T, R]])
     # max |λ| of the symmetric joint lies between its largest diagonal entry and its Frobenius norm: the
     # eigenvalues are needed only when the two bounds straddle the threshold
@@ -320,7 +333,7 @@ def _innovation_form(A, C, Q, R, Sx):
         return np.zeros((A.shape[0], C.shape[0])), R, "noise-free residuals: K = 0"
     Rr = R + _NOISE_FREE * np.eye(R.shape[0])
     try:
-        K, P = kalman_gain(A, C, Q, Rr, Sx)
+        K, P = (doubling and doubling_gain(A, C, Q, Rr, Sx)) or kalman_gain(A, C, Q, Rr, Sx)
     except (np.linalg.LinAlgError, ValueError) as exc:
         warnings.warn(
             f"the steady-state Kalman gain could not be computed ({exc}); the model keeps K = 0 (output-error "
@@ -335,8 +348,14 @@ def _innovation_form(A, C, Q, R, Sx):
 def _fit_order(proj: _Projection, n: int, feedthrough: bool):
     """All scaled-coordinate matrices of the order-``n`` model of one projection."""
     gamma = proj.gamma(n)
-    A, C = _a_c(gamma, proj.layout.p)
-    B, D = _b_d(proj, gamma, A, C, feedthrough)
-    Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
-    K, Re, how = _innovation_form(A, C, Q, R, Sx)
+    nested = proj.nested(n)
+    if nested is None:
+        A, C = _a_c(gamma, proj.layout.p)
+        B, D = _b_d(proj, gamma, A, C, feedthrough)
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
+    else:  # the factor route: A and the state maps from one factorisation shared by the orders; range(Γ) = range(U_n)
+        A, C = nested[0], gamma[:proj.layout.p].copy()
+        B, D = _b_d(proj, gamma, A, C, feedthrough, basis=proj.U[:, :n])
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=nested[1:])
+    K, Re, how = _innovation_form(A, C, Q, R, Sx, proj.large)
     return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}

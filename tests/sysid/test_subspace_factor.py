@@ -123,3 +123,33 @@ def test_the_blas_controller_is_created_once_and_limits_threads():
     assert blas_controller() is blas_controller()
     with blas_threads(1):
         assert blas_thread_count() == 1
+
+
+def test_nested_orders_give_the_pseudo_inverse_estimates_and_fall_back_to_them(monkeypatch):
+    # A = Γ₋⁺ Γ₊ and the state maps X0 = Γ⁺ Θ, X1 = Γ₋⁺ Θ₊ of every order as leading blocks of one QR; with the
+    # condition limit out of reach every order takes the pseudo-inverses of before, and predicts the same
+    session = _session(noise=0.3)
+    kw = dict(past_steps=6, future_steps=5, feedthrough=True)
+    nested = _fit(monkeypatch, session, 0, **kw)
+    monkeypatch.setattr(factor, "_NESTED_RCOND", 2.0)  # rcond <= 1: nested() always declines
+    plain = _fit(monkeypatch, session, 0, **kw)
+    assert nested.order_ == plain.order_
+    np.testing.assert_allclose(nested.order_table_["heldout_error"], plain.order_table_["heldout_error"], rtol=1e-9)
+    a, b = plain.predict_many(*_windows()), nested.predict_many(*_windows())
+    np.testing.assert_allclose(b, a, rtol=1e-9, atol=1e-9 * np.abs(a).max())
+
+
+def test_nested_pieces_equal_the_pseudo_inverses_for_each_order(monkeypatch):
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    session = _session(noise=0.3)
+    cfg = SubspaceId(past_steps=6, future_steps=5)._settings(session)
+    proj = prepare.projections(session, cfg, "n4sid")[0]
+    p = cfg["layout"].p
+    for n in (1, 3, 6):
+        gamma = proj.gamma(n)
+        A, X0, X1 = proj.nested(n)
+        np.testing.assert_allclose(A, np.linalg.lstsq(gamma[:-p], gamma[p:], rcond=None)[0], atol=1e-10)
+        np.testing.assert_allclose(X0, np.linalg.pinv(gamma) @ proj.theta_rows, atol=1e-10)
+        np.testing.assert_allclose(X1, np.linalg.pinv(gamma[:-p]) @ proj.theta_next_rows, atol=1e-10)
+    cva = prepare.projections(session, cfg, "cva")[0]
+    assert cva.nested(3) is None  # a weighted Γ: the pseudo-inverses of before

@@ -52,6 +52,24 @@ def test_structured_normal_equations_equal_the_dense_basis(feedthrough):
     np.testing.assert_allclose(rhs, rhs_ref, rtol=1e-11, atol=1e-11 * np.abs(rhs_ref).max())
 
 
+@pytest.mark.parametrize("feedthrough", [False, True])
+@pytest.mark.parametrize("shape", [(4, 6, 2, 3), (2, 3, 4, 2), (3, 12, 1, 2)])
+def test_normal_equations_by_matrix_products_equal_the_dense_basis(feedthrough, shape):
+    # (past, future, m, p): short futures with several inputs take the whole pattern Gram in _projected_gemm,
+    # long ones the contraction through Φ first; both must give the dense basis's equations
+    past, future, m, p = shape
+    proj, rng = _projection(past, future, m, p)
+    n = 3
+    A, C = 0.3 * rng.standard_normal((n, n)), rng.standard_normal((p, n))
+    M_ref, rhs_ref, Q, target = _dense_normal_equations(proj, proj.gamma(n), A, C, feedthrough)
+    L, S = proj.layout, proj.S
+    S_uu = S[np.ix_(L.Uf, L.Uf)]
+    M, rhs = markov.normal_equations_gemm(markov.pattern_blocks(A, C, L.f, feedthrough), Q, S_uu,
+                                          proj.given_past[0] - S_uu, target, n, m, feedthrough)
+    np.testing.assert_allclose(M, M_ref, rtol=1e-11, atol=1e-11 * np.abs(M_ref).max())
+    np.testing.assert_allclose(rhs, rhs_ref, rtol=1e-11, atol=1e-11 * np.abs(rhs_ref).max())
+
+
 def test_b_d_at_a_long_future_window_stays_small_in_memory():
     # f = 50 future blocks, 20 outputs, 3 inputs, order 10 with a direct term: the dense basis alone was
     # (3·10 + 20·3) x 1000 x 150 doubles = 108 MB, and three such arrays were live at once (over 300 MB).
