@@ -151,16 +151,18 @@ class LsqPredictor(_DirectPredictor):
         n_b = (m + p) * past + m * self.max_horizon_steps_
 
         gram_route = self.factor_route_ == "gram"
+        total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid
-                return ridge_grid_errors(train, val, n_b, alphas, w)
+                return ridge_grid_errors(train, val, n_b, alphas, w, total)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
         alpha, table = self._select(folds, alphas, weights, score)
         total = _merge(folds, folds[0].n_rows)
         if gram_route:
+            total.release()  # memory: the condition check's factor is not needed for the map
             G = total.gram
             scale = float(np.trace(G)) / G.shape[0]
             theta = ridge_map(G, n_b, alpha * scale)
