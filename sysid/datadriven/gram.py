@@ -95,7 +95,7 @@ class _GramFold:
 
     def __init__(self, sums, perm: np.ndarray, n_columns: int):
         self.sums, self.perm, self.n_columns = sums, perm, int(n_columns)
-        self._factor = None
+        self._factor = self._leading = None
 
     def plus(self, other: "_GramFold", sign: float = 1.0) -> "_GramFold":
         """The fold ``self + sign · other`` (training data = total minus the held-out fold)."""
@@ -131,6 +131,13 @@ class _GramFold:
     def release(self) -> None:
         """Drop the cached factor (it is as large as the Gram)."""
         self._factor = None
+
+    def keep_leading_factor_columns(self, n: int) -> None:
+        """Where the held-out terms come from the cached factor (``n`` ≥ :data:`TOTAL_FACTOR_ROWS`), keep only its
+        first ``n`` columns ``[C; L21]``, all that :func:`_total_factor`'s users read (memory: 71 % of it at past
+        100 / horizon 50). :attr:`factor` is afterwards made again when asked for."""
+        if self._factor is not None and n >= TOTAL_FACTOR_ROWS:
+            self._leading, self._factor = np.asfortranarray(self._factor[:, :n]), None
 
 
 def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = None) -> float:
@@ -215,7 +222,7 @@ TOTAL_FACTOR_ROWS = 512
 
 def _total_factor(total: "_GramFold | None", n_b: int) -> np.ndarray | None:
     """The total Gram's cached lower Cholesky factor where the held-out terms are to come from it, else None."""
-    F = None if total is None else total._factor
+    F = None if total is None else total._factor if total._factor is not None else total._leading
     return F if F is not None and n_b >= TOTAL_FACTOR_ROWS else None
 
 
@@ -231,6 +238,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     terms per strength over matrices computed once.
     """
     scale = float(train.gram_diagonal().sum()) / train.n_rows
+    release_freed_memory()  # the previous fold's arrays, before this fold's peak
     Gt = train.gram_rows(0, n_b)  # [G11 G12]: the rows of the outputs' block are never used (29 % of the Gram)
     G11, G21 = np.asfortranarray(Gt[:, :n_b]), np.ascontiguousarray(Gt[:, n_b:].T)
     del Gt  # memory: at most one array of the Gram's first n_b rows and two of G11's size at any time
@@ -277,7 +285,7 @@ def _heldout_from_total(F: np.ndarray, n_b: int, V: np.ndarray, d: np.ndarray, A
     validation Gram is assembled or factored (``V`` is overwritten by ``P``). The differences lose about
     ``log10(G_tot / G_val)`` digits (half a digit for three folds) against the validation Gram's own terms.
     """
-    P = sla.blas.dtrmm(1.0, F[:n_b, :n_b], V, side=0, lower=1, trans_a=1, overwrite_b=1)  # Cᵀ V
+    P = _lower_t_times(F, n_b, V)  # Cᵀ V
     E = (weights[:, None] * F[n_b:, :n_b]) @ P  # Ω L21 Cᵀ V = (Vᵀ G12_tot Ω)ᵀ
     E -= A  # (Vᵀ G12v Ω)ᵀ
     cross = np.einsum("ki,ki->i", E, A)
@@ -317,6 +325,35 @@ def ridge_map(G: np.ndarray, n_b: int, strength: float) -> np.ndarray:
     return sla.cho_solve((C, True), G[:n_b, n_b:], check_finite=False).T
 
 
+def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> np.ndarray:
+    """``Cᵀ X`` in place of ``X`` (``n_b`` rows), ``C = F[:n_b, :n_b]`` lower triangular, by row blocks of the
+    result (``(Cᵀ X)[I] = C[I0:, I]ᵀ X[I0:]``, top to bottom, so a block is overwritten after its last use): no
+    copy of ``C`` (a BLAS ``trmm`` would copy the strided block of ``F``, one array of ``G11``'s size)."""
+    for i0 in range(0, n_b, block):
+        i1 = min(i0 + block, n_b)
+        X[i0:i1] = F[i0:n_b, i0:i1].T @ X[i0:]
+    return X
+
+
+def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float) -> tuple[np.ndarray, float]:
+    """``(Θ, scale)``: :func:`ridge_map` of the whole data at ``alpha · scale``, ``scale = tr(G) / n_rows``.
+
+    The total's cached factor is dropped first; from :data:`TOTAL_FACTOR_ROWS` regressor rows on only the Gram's
+    first ``n_b`` rows are assembled (the map uses no other; 71 % of the Gram at past 100 / horizon 50) and the
+    trace comes from the diagonal of the sums (the same numbers, summed in another order).
+    """
+    total.release()  # memory: the condition check's factor is not needed for the map
+    total._leading = None
+    release_freed_memory()
+    if n_b < TOTAL_FACTOR_ROWS:
+        G = total.gram
+        scale = float(np.trace(G)) / G.shape[0]
+    else:
+        G = total.gram_rows(0, n_b)
+        scale = float(total.gram_diagonal().sum()) / total.n_rows
+    return ridge_map(G, n_b, alpha * scale), scale
+
+
 def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights, total=None) -> float | None:
     """Weighted held-out squared error of ``Θ = G21 G11⁻¹`` (training Grams), or None where the training ``G11``
     is not positive definite or its estimated condition number exceeds :data:`GRAM_CONDITION_LIMIT` (the caller
@@ -325,6 +362,7 @@ def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights
     The error ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` uses the validation Grams, as :func:`ridge_grid_errors`
     (on large problems through the factor of ``total``: :func:`_fold_error_from_total`).
     """
+    release_freed_memory()  # the previous fold's arrays, before this fold's peak
     Gt = train.gram_rows(0, n_b)  # only the rows of [Up; Yp; Uf] are used (of the Grams and their memory: 71 %)
     norm = _one_norm(Gt, n_b)
     G11, G12 = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:])
@@ -359,7 +397,7 @@ def _fold_error_from_total(C: np.ndarray, G12: np.ndarray, F: np.ndarray, n_b: i
     own = np.einsum("ij,ij->j", Y, Y)  # diag(G21 G11⁻¹ G12) = diag(Θ G12)
     theta_t = sla.blas.dtrsm(1.0, C, Y, lower=1, trans_a=1, overwrite_b=1)  # G11⁻¹ G12 = Θᵀ
     del C, Y
-    Zt = sla.blas.dtrmm(1.0, F[:n_b, :n_b], theta_t, lower=1, trans_a=1, overwrite_b=1)  # Ctᵀ Θᵀ = Zᵀ
+    Zt = _lower_t_times(F, n_b, theta_t)  # Ctᵀ Θᵀ = Zᵀ
     L21t = F[n_b:, :n_b].T
     base = np.einsum("ij,ij->j", L21t, L21t)
     Zt -= L21t

@@ -10,7 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
-from .gram import ridge_grid_errors, ridge_map
+from .gram import fitted_ridge_map, ridge_grid_errors
 
 __all__ = ["LsqPredictor"]
 
@@ -152,6 +152,8 @@ class LsqPredictor(_DirectPredictor):
 
         gram_route = self.factor_route_ == "gram"
         total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
+        if total is not None:
+            total.keep_leading_factor_columns(n_b)
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid
@@ -162,11 +164,7 @@ class LsqPredictor(_DirectPredictor):
         alpha, table = self._select(folds, alphas, weights, score)
         total = _merge(folds, folds[0].n_rows)
         if gram_route:
-            total.release()  # memory: the condition check's factor is not needed for the map
-            G = total.gram
-            scale = float(np.trace(G)) / G.shape[0]
-            theta = ridge_map(G, n_b, alpha * scale)
-            del G
+            theta, scale = fitted_ridge_map(total, n_b, alpha)
         else:
             scale = _data_scale(total.factor)
             theta = _lsq_map(total.factor, n_b, alpha * scale)

@@ -67,6 +67,12 @@ def test_without_a_factor_the_validation_gram_is_used(folds, monkeypatch):
     assert gr._total_factor(None, n_b) is None
     assert gr._total_factor(gr.total_fold(fs), n_b) is None  # a sum not factored by the condition check
     assert gr._total_factor(total, n_b) is total._factor
+    part = gr.total_fold(fs)
+    gr.gram_condition_of(part, keep=True)
+    F = part._factor
+    part.keep_leading_factor_columns(n_b)  # what the least-squares predictor keeps: [C; L21]
+    np.testing.assert_array_equal(gr._total_factor(part, n_b), F[:, :n_b])
+    np.testing.assert_array_equal(part.factor, F)  # made again when asked for
 
 
 @pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
