@@ -131,3 +131,18 @@ def test_total_factor_route_near_the_condition_limit_predicts_as_the_qr_route(cl
     assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
     assert new.cv_table_["candidate"][new.cv_table_["validation_error"].idxmin()] == \
         qr.cv_table_["candidate"][qr.cv_table_["validation_error"].idxmin()]
+
+
+def test_plan_gaps_by_lanczos_equal_the_dense_largest_eigenvalue(monkeypatch):
+    from stimsteer.sysid.datadriven import consistency as cs
+
+    rng = np.random.default_rng(8)
+    theta_y, yf2, lambdas = rng.standard_normal((40, 60)), rng.standard_normal((40, 30)), np.logspace(-6, 0, 7)
+    dense = cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5)  # 40 rows < LANCZOS_ROWS: the dense reduction
+    # the definition: the largest eigenvalue of Θ_Y Θ_Yᵀ / λ_y + Yf2 Yf2ᵀ / λ_g (numpy's full spectrum)
+    expected = [np.linalg.eigvalsh(theta_y @ theta_y.T / 0.5 + yf2 @ yf2.T / lam)[-1] for lam in lambdas]
+    np.testing.assert_allclose(dense, expected, rtol=1e-12)
+    monkeypatch.setattr(cs, "LANCZOS_ROWS", 1)
+    np.testing.assert_allclose(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), expected, rtol=1e-12)
+    monkeypatch.setattr(cs, "_largest_eigenvalue", lambda H: None)  # no convergence: the dense reduction
+    np.testing.assert_array_equal(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), dense)
