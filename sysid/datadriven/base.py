@@ -165,11 +165,21 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
         return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", float("nan")),)
     pieces, n_folds, scheme = _pieces(session, L, n_folds_wanted, seed, past)
     folds, y_sum, y_sq, n_y = collect_gram(session, pieces, n_folds, m, p, past, horizon)
-    cond = gram_condition_of(total_fold(folds)) if folds else float("nan")
+    folds = _Folds(folds)
+    folds.total = total_fold(folds) if folds else None
+    cond = gram_condition_of(folds.total, keep=True) if folds else float("nan")
     if route == "auto" and not cond <= GRAM_CONDITION_LIMIT:
+        del folds  # memory: the total's factor
         return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", cond),)
     std, trial_fold = _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y)
     return folds, scheme, std, trial_fold, ("gram", cond)
+
+
+class _Folds(list):
+    """The Gram route's folds and ``total``, their sum, which keeps the Cholesky factor of the condition check
+    (the Hankel predictor's row-space factor, and the held-out terms of large folds: ``gram._total_factor``)."""
+
+    total = None
 
 
 def _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y):
@@ -214,7 +224,7 @@ def _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full):
 
 def _merge(folds, n_rows):
     if isinstance(folds[0], _GramFold):
-        return total_fold(folds)
+        return folds.total if getattr(folds, "total", None) is not None else total_fold(folds)
     factor = combine_factors([f.factor for f in folds], n_rows)
     full = [blk for f in folds for blk in f.full]
     return _Fold(factor, sum(f.n_columns for f in folds), full)

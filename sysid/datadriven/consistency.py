@@ -75,9 +75,30 @@ def plan_gaps_coordinate(theta_y: np.ndarray, yf2: np.ndarray, lambdas_abs, lam_
     out = []
     for lam in lambdas_abs:
         H = P + S / lam
-        try:
-            out.append(float(sla.eigh(H, eigvals_only=True, subset_by_index=[n - 1, n - 1],
-                                      check_finite=False)[0]))
-        except (np.linalg.LinAlgError, ValueError):
-            out.append(np.inf)
+        top = _largest_eigenvalue(H) if n >= LANCZOS_ROWS else None
+        if top is None:
+            try:
+                top = float(sla.eigh(H, eigvals_only=True, subset_by_index=[n - 1, n - 1], check_finite=False)[0])
+            except (np.linalg.LinAlgError, ValueError):
+                top = np.inf
+        out.append(top)
     return np.asarray(out)
+
+
+#: Size of ``H`` from which :func:`plan_gaps_coordinate` finds its largest eigenvalue by Lanczos iterations
+#: (ARPACK, to machine precision) instead of a tridiagonal reduction: at 1,000 rows (past 100 / horizon 50,
+#: 20 outputs) 7 reductions took 0.9 s of CPU. Below it, the dense computation of before.
+LANCZOS_ROWS = 512
+
+
+def _largest_eigenvalue(H: np.ndarray) -> float | None:
+    """``λ_max`` of the symmetric positive semi-definite ``H`` by implicitly restarted Lanczos (ARPACK ``dsaupd``;
+    Lehoucq, Sorensen & Yang 1998, ARPACK Users' Guide), fixed start vector; None where it does not converge
+    (the caller then reduces ``H``)."""
+    from scipy.sparse.linalg import ArpackError, ArpackNoConvergence, eigsh
+
+    try:
+        top = eigsh(H, k=1, which="LA", tol=0.0, v0=np.ones(H.shape[0]), return_eigenvectors=False)
+    except (ArpackNoConvergence, ArpackError):
+        return None
+    return float(top[0]) if np.isfinite(top[0]) else None

@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import functools
 import warnings
 from dataclasses import dataclass
 
@@ -253,8 +254,8 @@ class HankelPredictor(_DirectPredictor):
         compress = bool(self.compress) and not l1
         folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
         score = self._score_l1 if l1 else self._score_quadratic
-        if self.factor_route_ == "gram" and self.regularizer == "projection":
-            score = self._score_projection_gram
+        if self.factor_route_ == "gram" and self.regularizer == "projection":  # total: the folds' sum, factored
+            score = functools.partial(self._score_projection_gram, total=getattr(folds, "total", None))
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].n_rows)
         self.data_scale_ = _data_scale(total.factor)
@@ -307,13 +308,13 @@ class HankelPredictor(_DirectPredictor):
             out.append(_validation_error(G, val.factor, weights))
         return out
 
-    def _score_projection_gram(self, train, val, weights, lambdas, lam_y):
+    def _score_projection_gram(self, train, val, weights, lambdas, lam_y, total=None):
         """Held-out errors of the projection predictor on the Gram route: with the training factor ``F`` the
         Cholesky factor of a positive definite, well-conditioned Gram, ``D = [L11 0]`` and the predictor is
         ``G21 G11⁻¹`` for every strength (:func:`~stimsteer.sysid.datadriven.kkt._projection_map`): one error,
         from the Grams, for the whole grid. Elsewhere the KKT route of :meth:`_score_quadratic`."""
         n_b = (self.n_inputs_ + self.n_outputs_) * self.past_steps_ + self.n_inputs_ * self.max_horizon_steps_
-        err = unregularised_fold_error(train, val, n_b, weights)
+        err = unregularised_fold_error(train, val, n_b, weights, total)
         if err is None:
             return self._score_quadratic(train, val, weights, lambdas, lam_y)
         return [err] * len(lambdas)

@@ -10,7 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
-from .gram import ridge_grid_errors, ridge_map
+from .gram import fitted_ridge_map, ridge_grid_errors
 
 __all__ = ["LsqPredictor"]
 
@@ -151,20 +151,20 @@ class LsqPredictor(_DirectPredictor):
         n_b = (m + p) * past + m * self.max_horizon_steps_
 
         gram_route = self.factor_route_ == "gram"
+        total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
+        if total is not None:
+            total.keep_leading_factor_columns(n_b)
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid
-                return ridge_grid_errors(train, val, n_b, alphas, w)
+                return ridge_grid_errors(train, val, n_b, alphas, w, total)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
         alpha, table = self._select(folds, alphas, weights, score)
         total = _merge(folds, folds[0].n_rows)
         if gram_route:
-            G = total.gram
-            scale = float(np.trace(G)) / G.shape[0]
-            theta = ridge_map(G, n_b, alpha * scale)
-            del G
+            theta, scale = fitted_ridge_map(total, n_b, alpha)
         else:
             scale = _data_scale(total.factor)
             theta = _lsq_map(total.factor, n_b, alpha * scale)

@@ -226,7 +226,9 @@ def _earlier_hankel_route(monkeypatch):
     from an SVD, the plan gaps over the null space (the reference of the closed forms below)."""
     from stimsteer.sysid.datadriven import hankel_predictor as hp
 
-    monkeypatch.setattr(hp.HankelPredictor, "_score_projection_gram", hp.HankelPredictor._score_quadratic)
+    monkeypatch.setattr(hp.HankelPredictor, "_score_projection_gram",
+                        lambda self, tr, va, w, lambdas, lam_y, total=None: self._score_quadratic(tr, va, w, lambdas,
+                                                                                                  lam_y))
     monkeypatch.setattr(hp, "_projection_closed_form", lambda *a, **k: (None, None))
     for name in ("_projection_map", "_projection_g"):
         monkeypatch.setattr(hp, name, lambda *a, **k: None)

@@ -1,0 +1,148 @@
+"""Large folds' held-out terms from the total Gram's Cholesky factor (``gram._heldout_from_total``,
+``gram._fold_error_from_total``): the same numbers as the validation fold's own Gram, which they replace above
+``gram.TOTAL_FACTOR_ROWS`` regressor rows. Reference: the validation-Gram route of before (kept below the limit)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid import Session
+from stimsteer.sysid.datadriven import gram as gr
+from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+from stimsteer.sysid.datadriven.lsq import LsqPredictor
+
+
+def _system(T=3000, noise=0.1, seed=4):
+    """A stable 3-state, 2-input, 3-output system in four trials; measurement noise ``noise``."""
+    rng = np.random.default_rng(seed)
+    u = rng.standard_normal((T, 2))
+    A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
+    x, y = np.zeros(3), np.zeros((T, 3))
+    for k in range(T):
+        y[k] = x + noise * rng.standard_normal(3)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, 5).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.fixture(scope="module")
+def folds():
+    m, p, past, horizon = 2, 3, 4, 6
+    pieces = [(0, 750, 0), (750, 1500, 1), (1500, 2250, 2), (2250, 3000, 0)]
+    fs, *_ = gr.collect_gram(_system(), pieces, 3, m, p, past, horizon)
+    total = gr.total_fold(fs)
+    assert gr.gram_condition_of(total, keep=True) < gr.GRAM_CONDITION_LIMIT
+    return fs, total, (m + p) * past + m * horizon
+
+
+@pytest.mark.parametrize("i", [0, 1, 2])
+def test_ridge_grid_from_the_total_factor_equals_the_validation_gram_route(folds, i, monkeypatch):
+    fs, total, n_b = folds
+    train, val = total.plus(fs[i], -1.0), fs[i]
+    alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
+    old = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)  # n_b = 20 < the limit: the validation Gram
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    new = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)
+    np.testing.assert_allclose(new, old, rtol=1e-10)
+    assert not np.array_equal(new, old)  # the other route was taken (it rounds differently)
+
+
+@pytest.mark.parametrize("i", [0, 1, 2])
+def test_unregularised_fold_error_from_the_total_factor_equals_its_definition(folds, i, monkeypatch):
+    fs, total, n_b = folds
+    train, val = total.plus(fs[i], -1.0), fs[i]
+    w = np.linspace(0.5, 2.0, 18)
+    Gt, Gv = train.gram, val.gram
+    theta = np.linalg.solve(Gt[:n_b, :n_b], Gt[:n_b, n_b:]).T  # the definition, from both Grams
+    R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
+    expected = float(w ** 2 @ np.diagonal(R))
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    assert gr.unregularised_fold_error(train, val, n_b, w, total) == pytest.approx(expected, rel=1e-10)
+
+
+def test_without_a_factor_the_validation_gram_is_used(folds, monkeypatch):
+    fs, total, n_b = folds
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    assert gr._total_factor(None, n_b) is None
+    assert gr._total_factor(gr.total_fold(fs), n_b) is None  # a sum not factored by the condition check
+    assert gr._total_factor(total, n_b) is total._factor
+    part = gr.total_fold(fs)
+    gr.gram_condition_of(part, keep=True)
+    F = part._factor
+    part.keep_leading_factor_columns(n_b)  # what the least-squares predictor keeps: [C; L21]
+    np.testing.assert_array_equal(gr._total_factor(part, n_b), F[:, :n_b])
+    np.testing.assert_array_equal(part.factor, F)  # made again when asked for
+
+
+@pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
+def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monkeypatch):
+    s, P, N = _system(), 5, 8
+    old = cls(past_steps=P, horizon_steps=N).fit(s)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    calls = []
+    for name in ("_heldout_from_total", "_fold_error_from_total"):
+        def counted(*a, _f=getattr(gr, name), **k):
+            calls.append(_f)
+            return _f(*a, **k)
+
+        monkeypatch.setattr(gr, name, counted)
+    new = cls(past_steps=P, horizon_steps=N).fit(s)
+    assert len(calls) == 3  # one per fold: the total's factor reached the held-out terms
+    assert new.factor_route_ == old.factor_route_ == "gram"
+    rng = np.random.default_rng(5)
+    windows = rng.standard_normal((6, P, 2)), rng.standard_normal((6, P, 3)), rng.standard_normal((6, N, 2))
+    a, b = old.predict_many(*windows), new.predict_many(*windows)
+    assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
+    for col in [c for c in old.cv_table_.columns if c != "candidate"]:
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)
+
+
+def _one_signed(mean=10.0, T=4000, noise=0.1, seed=0):
+    """The system of :func:`_system` driven by one-signed inputs (``mean`` + |N(0, 1)|), as pulse amplitudes are:
+    a Gram route accepted near its condition limit."""
+    rng = np.random.default_rng(seed)
+    u = mean + np.abs(rng.standard_normal((T, 2)))
+    A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
+    x, y = np.zeros(3), np.zeros((T, 3))
+    for k in range(T):
+        y[k] = x + noise * rng.standard_normal(3)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, 5).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+@pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
+def test_total_factor_route_near_the_condition_limit_predicts_as_the_qr_route(cls, monkeypatch):
+    # The differences of the held-out terms lose about half a digit more than the validation Gram's own terms
+    # (gram._heldout_from_total): at an estimated condition of ~1e8 the predictions still agree with the QR
+    # route's to the Gram route's stated tolerance (eps·κ ≈ 1e-8; Golub & Van Loan 2013, section 5.3.8).
+    s, P, N = _one_signed(), 5, 8
+    qr = cls(past_steps=P, horizon_steps=N)
+    qr._route = "qr"  # test hook of the direct predictors: the QR route whatever the conditioning
+    qr.fit(s)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    new = cls(past_steps=P, horizon_steps=N).fit(s)
+    assert new.factor_route_ == "gram" and 1e7 < new.gram_condition_ < gr.GRAM_CONDITION_LIMIT
+    rng = np.random.default_rng(5)
+    windows = (10.0 + np.abs(rng.standard_normal((6, P, 2))), rng.standard_normal((6, P, 3)),
+               10.0 + np.abs(rng.standard_normal((6, N, 2))))
+    a, b = qr.predict_many(*windows), new.predict_many(*windows)
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
+    assert new.cv_table_["candidate"][new.cv_table_["validation_error"].idxmin()] == \
+        qr.cv_table_["candidate"][qr.cv_table_["validation_error"].idxmin()]
+
+
+def test_plan_gaps_by_lanczos_equal_the_dense_largest_eigenvalue(monkeypatch):
+    from stimsteer.sysid.datadriven import consistency as cs
+
+    rng = np.random.default_rng(8)
+    theta_y, yf2, lambdas = rng.standard_normal((40, 60)), rng.standard_normal((40, 30)), np.logspace(-6, 0, 7)
+    dense = cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5)  # 40 rows < LANCZOS_ROWS: the dense reduction
+    # the definition: the largest eigenvalue of Θ_Y Θ_Yᵀ / λ_y + Yf2 Yf2ᵀ / λ_g (numpy's full spectrum)
+    expected = [np.linalg.eigvalsh(theta_y @ theta_y.T / 0.5 + yf2 @ yf2.T / lam)[-1] for lam in lambdas]
+    np.testing.assert_allclose(dense, expected, rtol=1e-12)
+    monkeypatch.setattr(cs, "LANCZOS_ROWS", 1)
+    np.testing.assert_allclose(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), expected, rtol=1e-12)
+    monkeypatch.setattr(cs, "_largest_eigenvalue", lambda H: None)  # no convergence: the dense reduction
+    np.testing.assert_array_equal(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), dense)
