@@ -11,7 +11,8 @@ import math
 
 import numpy as np
 
-from ..sysid import ExcitationError, InvalidParameterError, LimitsError, crest_factor, max_length_sequence, multisine
+from ..sysid import ExcitationError, InvalidParameterError, LimitsError, crest_factor, multisine
+from ..sysid._mls import max_length_sequence  # the values of sysid.max_length_sequence, without scipy.signal
 from ..sysid.signals import MAX_MLS_BITS
 
 __all__ = ["SCHEDULE_KINDS", "design_kind", "whole", "positive"]

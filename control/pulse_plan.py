@@ -231,7 +231,6 @@ def _write_nwb(path, pulses, params, record) -> bool:
     """Both tables as NWB TimeIntervals (False when pynwb is not installed)."""
     try:
         from pynwb import NWBHDF5IO, NWBFile
-        from pynwb.epoch import TimeIntervals
     except ImportError:
         return False
     nwb = NWBFile(session_description="stimsteer plan: planned stimulation pulses and parameters",
@@ -241,17 +240,28 @@ def _write_nwb(path, pulses, params, record) -> bool:
     for name, frame, start, stop, what in (
             ("planned_pulses", pulses, "onset_s", "stop_s", "one row per planned pulse (physical units in names)"),
             ("planned_parameters", params, "start_s", "stop_s", "per-site parameters over time (on/off segments)")):
-        table = TimeIntervals(name=name, description=f"{what}; status {record['status']}")
-        cols = [c for c in frame.columns if c not in (start, stop)] if len(frame) else []
-        for c in cols:
-            table.add_column(name=c, description=c.replace("_", " "))
-        for _, row in frame.iterrows():
-            table.add_interval(start_time=float(row[start]), stop_time=float(row[stop]),
-                               **{c: _cell(row[c], frame[c]) for c in cols})
-        nwb.add_time_intervals(table)
+        nwb.add_time_intervals(_intervals(name, f"{what}; status {record['status']}", frame, start, stop))
     with NWBHDF5IO(str(path), "w") as io:
         io.write(nwb)
     return True
+
+
+def _intervals(name, description, frame, start, stop):
+    """``frame`` as one TimeIntervals table, built a column at a time (the values and descriptions that
+    ``add_interval`` row by row gives, without its per-row argument checks: 94 pulses took ~0.3 s that way)."""
+    from hdmf.common import VectorData
+    from pynwb.epoch import TimeIntervals
+
+    spec = {c["name"]: c["description"] for c in TimeIntervals.__columns__}
+    n = len(frame)
+    cols = [c for c in frame.columns if c not in (start, stop)] if n else []
+    columns = [VectorData(name=key, description=spec[key], data=[float(v) for v in frame[col]])
+               for key, col in (("start_time", start), ("stop_time", stop))] if n else []
+    columns += [VectorData(name=c, description=c.replace("_", " "), data=[_cell(v, frame[c]) for v in frame[c]])
+                for c in cols]
+    if not n:
+        return TimeIntervals(name=name, description=description)
+    return TimeIntervals(name=name, description=description, columns=columns, id=list(range(n)))
 
 
 _TEXT = {"site", "kind", "leading_phase", "contacts", "return", "state", "waveform"}

@@ -68,10 +68,21 @@ def _project_slew(u, base, slew):
     if slew is None:
         return u
     out = np.empty_like(u)
-    prev = base.copy()
-    for t in range(u.shape[0]):
-        prev = np.clip(u[t], prev - slew, prev + slew)
-        out[t] = prev
+    for j in range(u.shape[1]):
+        out[:, j] = _slew_column(u[:, j].tolist(), float(base[j]), float(slew[j]))
+    return out
+
+
+def _slew_column(x: list, prev: float, slew: float) -> list:
+    """One input's pass on Python floats: ``numpy.clip(x[t], prev - slew, prev + slew)`` sample by sample, bit for
+    bit (the same double arithmetic and the same choice at ties), at a tenth of the cost of a NumPy call per
+    sample (the demo's schedule: 21,000 samples of 3 inputs)."""
+    out = []
+    for v in x:
+        lo, hi = prev - slew, prev + slew
+        prev = v if v > lo else lo  # NumPy's clip takes the bound at a tie (it decides the sign of a zero)
+        prev = prev if prev < hi else hi
+        out.append(prev)
     return out
 
 

@@ -173,7 +173,7 @@ def _margin_chart(ax, rows) -> None:
     entries = _grouped(rows)
     n = len(entries)
     y = np.arange(n)[::-1].astype(float)
-    labels = []
+    labels, bars = [], []  # bars: (y, share used, colour) of each check, drawn by two barh calls
     for yi, (c, u) in zip(y, entries):
         if u is None:  # a site's header
             labels.append("")
@@ -181,12 +181,14 @@ def _margin_chart(ax, rows) -> None:
                     fontweight="bold", color=_INK)
             continue
         used = min(u["used"], 1.25) if math.isfinite(u["used"]) else 1.25
-        colour = _FAIL if not u["passed"] else (_WARN if u["used"] > 0.9 else _INK)
-        ax.barh(yi, 1.0, height=0.62, color=_ZONE, lw=0, zorder=0)
-        ax.barh(yi, used, height=0.62, color=colour, lw=0, zorder=2)
+        bars.append((yi, used, _FAIL if not u["passed"] else (_WARN if u["used"] > 0.9 else _INK)))
         ax.text(1.28, yi, u["text"] + ("" if u["passed"] else "  FAILED"), va="center", ha="left", fontsize=6.8,
                 color=_FAIL if not u["passed"] else _INK)
         labels.append(u["label"])
+    if bars:
+        at, used, colours = zip(*bars)
+        ax.barh(at, 1.0, height=0.62, color=_ZONE, lw=0, zorder=0)
+        ax.barh(at, used, height=0.62, color=list(colours), lw=0, zorder=2)
     ax.axvline(1.0, color=_LIMIT, lw=1.0, ls="--", zorder=3)
     ax.set_yticks(y, labels, fontsize=7.5)
     ax.tick_params(axis="y", length=0)

@@ -291,3 +291,24 @@ def test_a_schedule_file_opens_with_the_caution_and_reads_back(tmp_path):
     u, trials, names, units, rate = load_schedule(path)
     np.testing.assert_array_equal(u, s.u)
     assert rate == 100.0
+
+
+def test_slew_pass_gives_numpys_clip_sample_by_sample_bit_for_bit():
+    # the reference is the per-sample np.clip loop the pass replaced (signed zeros and unbounded inputs included)
+    from stimsteer.control.schedule import _project_slew
+
+    rng = np.random.default_rng(5)
+    for _ in range(20):
+        n, m = int(rng.integers(1, 400)), int(rng.integers(1, 4))
+        u = rng.normal(size=(n, m)) * rng.choice([1e-3, 1.0, 50.0])
+        u[rng.random(u.shape) < 0.1] = 0.0
+        u[rng.random(u.shape) < 0.05] *= -0.0
+        base, slew = rng.normal(size=m) * rng.choice([0.0, 1.0]), np.abs(rng.normal(size=m)) * rng.choice([0.01, 1.0])
+        slew[rng.random(m) < 0.2] = np.inf
+        want, prev = np.empty_like(u), base.copy()
+        for t in range(n):
+            prev = np.clip(u[t], prev - slew, prev + slew)
+            want[t] = prev
+        got = _project_slew(u, base, slew)
+        np.testing.assert_array_equal(got.view(np.int64), want.view(np.int64))
+        assert np.all(np.abs(np.diff(np.vstack([base, got]), axis=0)) <= slew + 1e-12)  # up to rounding
