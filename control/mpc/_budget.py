@@ -228,6 +228,8 @@ def blend_all(budgets, hists, u, safe):
     lo, hi = 0.0, 1.0
     for _ in range(60):
         mid = 0.5 * (lo + hi)
+        if mid == lo or mid == hi:  # at rounding level: every further step re-tests lo or hi and changes nothing
+            break
         if inside(mid * u + (1.0 - mid) * safe):
             lo = mid
         else:

@@ -329,12 +329,11 @@ class _PredictiveController(BaseEstimator):
             On malformed past windows, target or last input.
         """
         check_fitted(self, "problem_")
-        u_all = u_past
+        self._u_all = np.asarray(u_past, np.float64)
         u_past, y_past = self._check_past(u_past, y_past)
         # the energy windows reach back into the applied past, which may be longer than the prediction's window
-        self._hist = None if self._budget is None else self._budget.history(np.asarray(u_all, np.float64))
-        self._whists = [b.history(np.asarray(u_all, np.float64)) for b in self._budgets if b.weighted]
-        self._u_all = np.asarray(u_all, np.float64)
+        self._hist = None if self._budget is None else self._budget.history(self._u_all)
+        self._whists = [b.history(self._u_all) for b in self._budgets if b.weighted]
         last = self._check_last(last_input, u_past)
         target = self._check_target(target)
         lb, ub, broken = self._step_bounds(last)
@@ -419,8 +418,12 @@ class _PredictiveController(BaseEstimator):
             # as a pulse; below 1e-6 of an input's bound it is delivered as zero, which lowers every load
             u = np.where(np.abs(u) <= _ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi)), 0.0, u)
         if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
-            prev = u[0]
-            for k in range(1, u.shape[0]):  # clip onto each step's slew window around the clipped previous step
+            # clip onto each step's slew window around the clipped previous step, from the first step outside it
+            moves = np.any((u[1:] > np.minimum(ub[1:], u[:-1] + self._slew))
+                           | (u[1:] < np.maximum(lb[1:], u[:-1] - self._slew)), axis=1)
+            first = int(np.argmax(moves)) + 1 if moves.any() else u.shape[0]
+            prev = u[first - 1]
+            for k in range(first, u.shape[0]):
                 u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
                 prev = u[k]
         if self._budgets:

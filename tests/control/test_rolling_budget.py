@@ -237,3 +237,31 @@ def test_window_energies_are_recomputed_for_other_inputs_and_read_only():
         e = b.energies(u, h)
         np.testing.assert_allclose(e, brute(u, h), rtol=1e-12)
         assert not e.flags.writeable
+
+
+def _blend_sixty_steps(budgets, hists, u, safe):
+    """The blend as a plain 60-step bisection (the reference the early stop must equal bit for bit)."""
+    def inside(x):
+        return all(np.max(b.energies(x, h)) <= b.budget * (1.0 - 1e-10) for b, h in zip(budgets, hists))
+
+    if inside(u):
+        return u
+    lo, hi = 0.0, 1.0
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if inside(mid * u + (1.0 - mid) * safe) else (lo, mid)
+    return lo * u + (1.0 - lo) * safe
+
+
+def test_the_blend_stopping_at_rounding_level_equals_the_full_bisection_bit_for_bit():
+    from stimsteer.control.mpc._budget import _RollingBudget, blend_all
+
+    rng = np.random.default_rng(7)
+    N, W = 6, 4
+    b = _RollingBudget(30.0, W, N, np.array([2.0, np.inf]))
+    for _ in range(20):
+        hist = b.history(rng.uniform(0, 2, (W - 1, 2)))
+        u, safe = rng.uniform(-4, 4, (N, 2)), np.zeros((N, 2))
+        got, want = blend_all([b], [hist], u, safe), _blend_sixty_steps([b], [hist], u, safe)
+        assert np.array_equal(got, want)
+        assert np.max(b.energies(got, hist)) <= b.budget
