@@ -194,8 +194,14 @@ def _margin_chart(ax, rows) -> None:
         ax.barh(at, 1.0, height=0.62, color=_ZONE, lw=0, zorder=0)
         ax.barh(at, used, height=0.62, color=list(colours), lw=0, zorder=2)
     ax.axvline(1.0, color=_LIMIT, lw=1.0, ls="--", zorder=3)
-    ax.set_yticks(y, labels, fontsize=7.5)
-    ax.tick_params(axis="y", length=0)
+    # each row's name where a tick label would be (3.5 points left of the axes), as a plain text: a tick per row
+    # costs a tick's lines and texts, made and measured again in every layout pass, for a label and nothing else
+    to_row = ax.get_yaxis_transform()
+    for yi, label in zip(y, labels):
+        if label:
+            ax.annotate(label, xy=(0.0, yi), xycoords=to_row, xytext=(-3.5, 0.0), textcoords="offset points",
+                        ha="right", va="center_baseline", fontsize=7.5, annotation_clip=False)
+    ax.set_yticks([])
     ax.set_xlim(0.0, 3.3)  # the bars use 0 .. 1.25, their text the rest
     ax.set_ylim(-0.6, n - 0.4)
     ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0], ["0", "25", "50", "75", "100 %"], fontsize=7)
