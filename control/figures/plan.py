@@ -30,6 +30,9 @@ _TRACES = 6
 _INK, _ALLOWED, _RECORDED, _WARN, _TARGET = "#24434f", "#d9e6d3", "#e6e6e6", "#b2302b", "#6b6b6b"
 _WARNS = ["#b2302b", "#d9642a", "#8c1c3a", "#e0902a", "#6e1f1f", "#c24d7a"]
 _COLOURS = ["#1d5f99", "#3b7d3b", "#7a4fa3", "#2a8f8f", "#24434f", "#5b9bd5"]
+# The input strips' titles have a fixed place (``y=1.0``): their axes (µA between the hard limits) carry no offset
+# text and no tick labels on top, so matplotlib's search for a title place, which measures the axis' ticks again in
+# each layout pass, finds nothing. The outputs' axes keep it: their values are the user's and may need an offset.
 
 
 def plan_figure(plan, time_s, output_units, tracked, ranges=None, what: str = "") -> Figure:
@@ -88,10 +91,10 @@ def _input_strips(axes, plan, t):
         ax.set_ylabel(f"{plan.input_names[i]}\n[µA]", fontsize=8, rotation=0, ha="right", va="center")
         ax.tick_params(labelbottom=False)
     axes[0].set_title("planned stimulation inside its allowed region (shaded: the hard limits of each step)",
-                      loc="left", fontsize=9)
+                      loc="left", fontsize=9, y=1.0)
     if len(plan.input_names) > len(axes):
         axes[-1].set_title(f"first {len(axes)} of {len(plan.input_names)} inputs; all in plan.csv", loc="right",
-                           fontsize=7)
+                           fontsize=7, y=1.0)
 
 
 def _shown_outputs(plan, tracked, ranges) -> list:

@@ -27,6 +27,10 @@ __all__ = ["pulse_plan_figure", "pulse_plan_figure_of", "check_usage"]
 
 _INK, _SOFT, _WARN, _FAIL, _LIMIT = "#24434f", "#9fb8c2", "#d9902a", "#b2302b", "#6b6b6b"
 _ZONE = "#eef2ea"
+# Titles here are given ``y=1.0``: a fixed place above the axes. Left to matplotlib, a title's place is found anew in
+# each layout pass and in the draw, by measuring every tick of the axes' y axes (the charge axis too) for an offset
+# text that could reach the title; these axes start at 0 in µA, mA, mW/mm² or µC and have no such text, and no tick
+# labels on top. The picture is the same (compared pixel by pixel); the save takes about a tenth less time.
 def pulse_plan_figure(pulses, mapping, compiled, checks, *, status: str, horizon_s: float, what: str = "",
                       window_pulses=None, caution: str = "") -> Figure:
     """Draw the pulses of a plan per site in physical units, and the margin of every safety check.
@@ -112,7 +116,7 @@ def _site_panel(ax, site, pulses, bound_ua, rule, horizon_s) -> None:
     peak = float(a.max(initial=0.0))
     ax.text(0.995, top, f"bound {_fmt(top)} {unit}: {rule.replace('_', ' ')}", transform=ax.get_yaxis_transform(),
             ha="right", va="bottom", fontsize=7, color=_LIMIT)
-    ax.set_title(f"{site.name}: {len(sp)} pulse(s), largest {_fmt(peak)} {unit}", fontsize=9, loc="left")
+    ax.set_title(f"{site.name}: {len(sp)} pulse(s), largest {_fmt(peak)} {unit}", fontsize=9, loc="left", y=1.0)
     ax.set_ylabel(f"amplitude [{unit}]", fontsize=8)
     ax.text(0.005, 0.97, _site_text(site), transform=ax.transAxes, fontsize=6.5, color=_LIMIT, va="top", ha="left")
     if not optical:
@@ -144,7 +148,7 @@ def _window_panel(ax, pulses, compiled, horizon_s) -> None:
     ax.set_ylim(0.0, max(budget, float(charge.max(initial=0.0))) * 1.25)
     ax.set_xlim(-0.02 * horizon_s * 1e3, horizon_s * 1e3 * 1.02)
     ax.set_title(f"all sites: charge per phase in the last {_fmt(w)} s (earlier inputs included)", fontsize=9,
-                 loc="left")
+                 loc="left", y=1.0)
     ax.set_ylabel("charge [µC]", fontsize=8)
     ax.set_xlabel("time from the plan's start [ms]", fontsize=8)
     ax.spines[["top", "right"]].set_visible(False)
@@ -190,14 +194,20 @@ def _margin_chart(ax, rows) -> None:
         ax.barh(at, 1.0, height=0.62, color=_ZONE, lw=0, zorder=0)
         ax.barh(at, used, height=0.62, color=list(colours), lw=0, zorder=2)
     ax.axvline(1.0, color=_LIMIT, lw=1.0, ls="--", zorder=3)
-    ax.set_yticks(y, labels, fontsize=7.5)
-    ax.tick_params(axis="y", length=0)
+    # each row's name where a tick label would be (3.5 points left of the axes), as a plain text: a tick per row
+    # costs a tick's lines and texts, made and measured again in every layout pass, for a label and nothing else
+    to_row = ax.get_yaxis_transform()
+    for yi, label in zip(y, labels):
+        if label:
+            ax.annotate(label, xy=(0.0, yi), xycoords=to_row, xytext=(-3.5, 0.0), textcoords="offset points",
+                        ha="right", va="center_baseline", fontsize=7.5, annotation_clip=False)
+    ax.set_yticks([])
     ax.set_xlim(0.0, 3.3)  # the bars use 0 .. 1.25, their text the rest
     ax.set_ylim(-0.6, n - 0.4)
     ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0], ["0", "25", "50", "75", "100 %"], fontsize=7)
     ax.set_xlabel("share of the limit used (dashed: the limit; amber above 90 %, red: failed)",
                   fontsize=8, loc="left")
-    ax.set_title("every safety check: value, limit and margin", fontsize=9, loc="left")
+    ax.set_title("every safety check: value, limit and margin", fontsize=9, loc="left", y=1.0)
     ax.spines[["top", "right", "left"]].set_visible(False)
 
 
