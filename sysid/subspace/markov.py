@@ -157,12 +157,7 @@ def normal_equations(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool
     f, p, nc = h.shape
     S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
     M = contract_shifted_gram(h, S4) + contract_projected_gram(projected_patterns(Q, h), D4)
-    T4 = target.reshape(f, p, f, m)  # [r, a, s, l]
-    rhs = np.zeros((nc, m))
-    s_all = np.arange(f)
-    for t in range(f):
-        s = s_all[: f - t]
-        rhs += h[t].T @ T4[s + t, :, s, :].sum(axis=0)
+    rhs = _rhs(h, target, m)
     # (c, l) -> θ index: B(j, l) at l n + j, D(a, l) at n m + l p + a
     c, l = np.meshgrid(np.arange(nc), np.arange(m), indexing="ij")
     order = np.where(c < n, l * n + c, n * m + l * p + (c - n)).reshape(-1)

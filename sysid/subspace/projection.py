@@ -14,7 +14,7 @@ from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain, markov_toeplitz
 from .gram import _Layout
 from .markov import normal_equations, normal_equations_gemm, pattern_blocks
-from .riccati import doubling_gain
+from .riccati import conditioned_cholesky, doubling_gain
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -236,14 +236,8 @@ _CHOLESKY_COND_MAX = 1e9
 def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     """``M⁻¹ rhs`` by Cholesky where ``M`` is clearly well conditioned (``n³/3`` flops, against the ``(4/3) n³``
     and more of its eigenvalues and the LU solve); None otherwise (the caller checks the eigenvalues)."""
-    try:
-        F = sla.cho_factor(M, lower=True, check_finite=False)
-    except np.linalg.LinAlgError:
-        return None
-    rcond, info = sla.lapack.dpocon(F[0], float(np.abs(M).sum(axis=0).max()), uplo="L")
-    if info != 0 or not rcond * _CHOLESKY_COND_MAX >= 1.0:
-        return None
-    return sla.cho_solve(F, rhs, check_finite=False)
+    F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
+    return None if F is None else sla.cho_solve(F, rhs, check_finite=False)
 
 
 def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):

@@ -35,14 +35,21 @@ _R_CONDITION = 1e8
 _RESIDUAL = 1e-10
 
 
-def _weights(A, C, Q, R, S):
-    """``Ā, Q̄, G`` with the cross term removed, or None when ``R`` is not clearly positive definite."""
+def conditioned_cholesky(M: np.ndarray, condition_max: float):
+    """SciPy's ``cho_factor`` of ``M`` (lower) when ``M`` is positive definite with LAPACK's 1-norm condition
+    estimate (``dpocon``) at most ``condition_max``; None otherwise."""
     try:
-        F = sla.cho_factor(R, lower=True, check_finite=False)
+        F = sla.cho_factor(M, lower=True, check_finite=False)
     except np.linalg.LinAlgError:
         return None
-    rcond, info = sla.lapack.dpocon(F[0], float(np.abs(R).sum(axis=0).max()), uplo="L")
-    if info != 0 or not rcond * _R_CONDITION >= 1.0:
+    rcond, info = sla.lapack.dpocon(F[0], float(np.abs(M).sum(axis=0).max()), uplo="L")
+    return F if info == 0 and rcond * condition_max >= 1.0 else None
+
+
+def _weights(A, C, Q, R, S):
+    """``Ā, Q̄, G`` with the cross term removed, or None when ``R`` is not clearly positive definite."""
+    F = conditioned_cholesky(R, _R_CONDITION)
+    if F is None:
         return None
     Ri_C, Ri_St = sla.cho_solve(F, C, check_finite=False), sla.cho_solve(F, S.T, check_finite=False)
     Qb, G = Q - S @ Ri_St, C.T @ Ri_C
