@@ -13,7 +13,7 @@ import numpy as np
 
 from .exceptions import InvalidParameterError
 
-__all__ = ["max_length_sequence", "MLS_TAPS"]
+__all__ = ["max_length_sequence", "seeded_register", "MLS_TAPS"]
 
 #: The feedback taps of :func:`scipy.signal.max_len_seq` (its ``_mls_taps``: the first option listed for each
 #: register length by New Wave Instruments, "Linear Feedback Shift Registers", 2010).
@@ -40,6 +40,18 @@ def _register_bits(nbits: int, state: np.ndarray, length: int) -> np.ndarray:
     return np.array(x[:length], dtype=np.float64)
 
 
+def seeded_register(nbits: int, seed) -> np.ndarray | None:
+    """The initial register ``seed`` picks (random bits, one set at random if all came out zero); None for no seed
+    (the all-ones register). Both ``max_length_sequence`` functions use this one rule."""
+    if seed is None:
+        return None
+    rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
+    state = rng.integers(0, 2, size=nbits)
+    if not state.any():
+        state[rng.integers(nbits)] = 1
+    return state
+
+
 def max_length_sequence(nbits: int, *, seed=None, length: int | None = None) -> np.ndarray:
     """:func:`stimsteer.sysid.max_length_sequence` (same arguments, same values) without ``scipy.signal``.
 
@@ -57,12 +69,8 @@ def max_length_sequence(nbits: int, *, seed=None, length: int | None = None) -> 
     nbits = int(nbits)
     if nbits not in MLS_TAPS:
         raise InvalidParameterError(f"nbits must be between {min(MLS_TAPS)} and {max(MLS_TAPS)}; got {nbits}.")
-    state = np.ones(nbits, dtype=np.int8)
-    if seed is not None:  # the rule of stimsteer.sysid.signals: a random non-zero register
-        rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
-        state = rng.integers(0, 2, size=nbits)
-        if not state.any():
-            state[rng.integers(nbits)] = 1
+    state = seeded_register(nbits, seed)
+    state = np.ones(nbits, dtype=np.int8) if state is None else state
     length = 2 ** nbits - 1 if length is None else int(length)
     if length < 0:
         raise InvalidParameterError(f"length must be 0 or more; got {length}.")

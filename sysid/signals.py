@@ -19,6 +19,7 @@ from .exceptions import InvalidParameterError
 from .excitation import DEFAULT_TOL_FACTOR, rank_tolerance
 from .hankel import hankel_column_count, row_space_factor
 from ._lazy import lazy_module
+from ._mls import seeded_register
 
 ssig = lazy_module("scipy.signal")  # imported at its first use (sysid/_lazy.py)
 
@@ -65,13 +66,7 @@ def max_length_sequence(nbits: int, *, seed=None, length: int | None = None) -> 
     nbits = int(nbits)
     if not 2 <= nbits <= MAX_MLS_BITS:
         raise InvalidParameterError(f"nbits must be between 2 and {MAX_MLS_BITS}; got {nbits}.")
-    state = None
-    if seed is not None:
-        rng = _rng(seed)
-        state = rng.integers(0, 2, size=nbits)
-        if not state.any():
-            state[rng.integers(nbits)] = 1
-    bits, _ = ssig.max_len_seq(nbits, state=state, length=length)
+    bits, _ = ssig.max_len_seq(nbits, state=seeded_register(nbits, seed), length=length)
     return 2.0 * bits.astype(np.float64) - 1.0
 
 
