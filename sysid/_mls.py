@@ -59,12 +59,7 @@ def max_length_sequence(nbits: int, *, seed=None, length: int | None = None) -> 
     -------
     ndarray, shape (length,)
         ``2 b - 1`` for the register's bits ``b``; ``length`` defaults to one period ``2**nbits - 1``.
-
-    Examples
-    --------
-    >>> s = max_length_sequence(3)
-    >>> s.size, float(np.dot(s, np.roll(s, 1)) / s.size)
-    (7, -0.14285714285714285)
+        ``tests/sysid/test_mls.py`` checks them against SciPy's.
     """
     nbits = int(nbits)
     if nbits not in MLS_TAPS:

@@ -16,7 +16,12 @@ from stimsteer.sysid.datadriven.lsq import LsqPredictor
 def _system(T=3000, noise=0.1, seed=4):
     """A stable 3-state, 2-input, 3-output system in four trials; measurement noise ``noise``."""
     rng = np.random.default_rng(seed)
-    u = rng.standard_normal((T, 2))
+    return _driven(rng.standard_normal((T, 2)), noise, rng)
+
+
+def _driven(u, noise, rng):
+    """The session of the system of :func:`_system` driven by ``u`` (its ``B`` and noise drawn from ``rng``)."""
+    T = u.shape[0]
     A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
     x, y = np.zeros(3), np.zeros((T, 3))
     for k in range(T):
@@ -102,14 +107,7 @@ def _one_signed(mean=10.0, T=4000, noise=0.1, seed=0):
     """The system of :func:`_system` driven by one-signed inputs (``mean`` + |N(0, 1)|), as pulse amplitudes are:
     a Gram route accepted near its condition limit."""
     rng = np.random.default_rng(seed)
-    u = mean + np.abs(rng.standard_normal((T, 2)))
-    A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
-    x, y = np.zeros(3), np.zeros((T, 3))
-    for k in range(T):
-        y[k] = x + noise * rng.standard_normal(3)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, 5).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return _driven(mean + np.abs(rng.standard_normal((T, 2))), noise, rng)
 
 
 @pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
