@@ -153,9 +153,10 @@ def _pieces(session, L, n_folds_wanted, seed, past):
     return [(a, b, 0) for a, b in segs], 1, "none"
 
 
-def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="auto"):
+def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="auto", keep_gram=False):
     """One pass over the valid segments: per-fold data (Gram route where it is accurate, else QR), the scheme,
-    the outputs' standard deviations, the fold of each trial and ``(route, condition)``.
+    the outputs' standard deviations, the fold of each trial and ``(route, condition)``. ``keep_gram``: the total
+    keeps the condition check's array with the Gram's upper triangle (``gram.gram_condition_of``).
 
     ``route``: "auto" (the Gram route unless raw columns are needed or the Gram is too ill-conditioned), "qr"
     (always the QR route: :func:`_collect_qr`) or "gram" (the Gram route whatever the conditioning; tests).
@@ -167,7 +168,7 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
     folds, y_sum, y_sq, n_y = collect_gram(session, pieces, n_folds, m, p, past, horizon)
     folds = _Folds(folds)
     folds.total = total_fold(folds) if folds else None
-    cond = gram_condition_of(folds.total, keep=True) if folds else float("nan")
+    cond = gram_condition_of(folds.total, keep=True, keep_gram=keep_gram) if folds else float("nan")
     if route == "auto" and not cond <= GRAM_CONDITION_LIMIT:
         del folds  # memory: the total's factor
         return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", cond),)
@@ -254,6 +255,8 @@ class _DirectPredictor(BasePredictor):
     """Shared validation, data pass, selection, prediction and state for the direct predictors."""
 
     _strength_param: str = ""
+    #: The condition check's array keeps the Gram's upper triangle beside the factor (the final map's Gram).
+    _keeps_total_gram: bool = False
     #: ``fit`` reads a lazily opened session file segment by segment (``read``/``segments``).
     supports_streaming = True
     #: The prediction is affine in the window (see :mod:`stimsteer.sysid.protocols`).
@@ -293,7 +296,7 @@ class _DirectPredictor(BasePredictor):
         _check_columns(session, past, horizon)
         folds, scheme, std, trial_fold, (route, cond) = _collect(
             _ScaledChannels(session, self.channel_scale_), past, horizon, self.n_splits if n_candidates > 1 else 1,
-            self.seed, keep_full, getattr(self, "_route", "auto"))
+            self.seed, keep_full, getattr(self, "_route", "auto"), self._keeps_total_gram)
         self.factor_route_, self.gram_condition_ = route, cond
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(

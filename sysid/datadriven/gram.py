@@ -95,7 +95,7 @@ class _GramFold:
 
     def __init__(self, sums, perm: np.ndarray, n_columns: int):
         self.sums, self.perm, self.n_columns = sums, perm, int(n_columns)
-        self._factor = self._leading = None
+        self._factor = self._factor_gram = None
 
     def plus(self, other: "_GramFold", sign: float = 1.0) -> "_GramFold":
         """The fold ``self + sign · other`` (training data = total minus the held-out fold)."""
@@ -129,15 +129,8 @@ class _GramFold:
         return self._factor
 
     def release(self) -> None:
-        """Drop the cached factor (it is as large as the Gram)."""
-        self._factor = None
-
-    def keep_leading_factor_columns(self, n: int) -> None:
-        """Where the held-out terms come from the cached factor (``n`` ≥ :data:`TOTAL_FACTOR_ROWS`), keep only its
-        first ``n`` columns ``[C; L21]``, all that :func:`_total_factor`'s users read (memory: 71 % of it at past
-        100 / horizon 50). :attr:`factor` is afterwards made again when asked for."""
-        if self._factor is not None and n >= TOTAL_FACTOR_ROWS:
-            self._leading, self._factor = np.asfortranarray(self._factor[:, :n]), None
+        """Drop the cached factor (it is as large as the Gram), and the factor kept with the Gram's upper triangle."""
+        self._factor = self._factor_gram = None
 
 
 def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = None) -> float:
@@ -157,16 +150,24 @@ def _one_norm(G: np.ndarray, n: int | None = None) -> float:
     return float(acc.max()) if n else 0.0
 
 
-def gram_condition_of(fold: "_GramFold", keep: bool = False) -> float:
+def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False) -> float:
     """Estimated ``κ₁`` of the fold's Gram (inf when it is not positive definite); with ``keep`` the Cholesky factor
-    it was estimated from becomes the fold's :attr:`~_GramFold.factor` (the same numbers as computing it there)."""
+    it was estimated from becomes the fold's :attr:`~_GramFold.factor` (the same numbers as computing it there).
+
+    With ``keep_gram`` instead, the array is kept as LAPACK leaves it (``_factor_gram``): the factor in its lower
+    triangle, the Gram's own entries still in its strict upper one (``potrf`` does not touch it). Together with
+    the diagonal of the sums that is the whole Gram again (:func:`fitted_ridge_map`): the assembly is not repeated.
+    """
     G = fold.gram
     norm = _one_norm(G)
-    try:  # in place (memory: one Gram-sized array), on the Fortran-ordered transpose of the symmetric G
-        F = sla.cholesky(G.T, lower=True, check_finite=False, overwrite_a=True)
-    except np.linalg.LinAlgError:
+    # in place (memory: one Gram-sized array), on the Fortran-ordered transpose of the symmetric G; clean=0 leaves
+    # the strict upper triangle (G's own entries) as it was, clean=1 zeroes it as scipy.linalg.cholesky does
+    F, info = sla.lapack.dpotrf(G.T, lower=1, overwrite_a=1, clean=0 if keep_gram else 1)
+    if info != 0:
         return float("inf")
-    if keep:
+    if keep_gram:
+        fold._factor_gram = F
+    elif keep:
         fold._factor = F
     return gram_condition(F, None, norm)
 
@@ -221,8 +222,9 @@ TOTAL_FACTOR_ROWS = 512
 
 
 def _total_factor(total: "_GramFold | None", n_b: int) -> np.ndarray | None:
-    """The total Gram's cached lower Cholesky factor where the held-out terms are to come from it, else None."""
-    F = None if total is None else total._factor if total._factor is not None else total._leading
+    """The total Gram's cached lower Cholesky factor where the held-out terms are to come from it, else None (its
+    strict upper triangle may hold the Gram, ``_factor_gram``: the users read only the lower one)."""
+    F = None if total is None else total._factor if total._factor is not None else total._factor_gram
     return F if F is not None and n_b >= TOTAL_FACTOR_ROWS else None
 
 
@@ -321,36 +323,60 @@ def ridge_map(G: np.ndarray, n_b: int, strength: float) -> np.ndarray:
     """``Θ = G21 (G11 + s I)⁻¹`` by a Cholesky solve (the normal equations of the stacked least squares)."""
     K = np.asfortranarray(G[:n_b, :n_b])
     K[np.diag_indices_from(K)] += strength
+    return _cholesky_solve(K, G[:n_b, n_b:])
+
+
+def _cholesky_solve(K: np.ndarray, G12: np.ndarray) -> np.ndarray:
+    """``(K⁻¹ G12)ᵀ`` from the lower triangle of the Fortran-ordered ``K`` (overwritten by its factor)."""
     C = sla.cholesky(K, lower=True, check_finite=False, overwrite_a=True)
-    return sla.cho_solve((C, True), G[:n_b, n_b:], check_finite=False).T
+    return sla.cho_solve((C, True), G12, check_finite=False).T
+
+
+def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float) -> np.ndarray:
+    """:func:`ridge_map` of the total Gram rebuilt from ``_factor_gram`` (:func:`gram_condition_of`): its strict
+    upper triangle holds ``G``'s, so ``G11``'s lower triangle is its transpose, ``G12 = F[:n_b, n_b:]`` and the
+    diagonal comes from the sums: the same numbers as the assembled rows (``G`` is exactly symmetric)."""
+    F = total._factor_gram
+    K = np.asfortranarray(F[:n_b, :n_b].T)  # lower triangle: G11's (by symmetry); the upper one is not read
+    K[np.diag_indices_from(K)] = total.gram_diagonal()[:n_b]
+    K[np.diag_indices_from(K)] += strength
+    return _cholesky_solve(K, F[:n_b, n_b:])
 
 
 def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> np.ndarray:
-    """``Cᵀ X`` in place of ``X`` (``n_b`` rows), ``C = F[:n_b, :n_b]`` lower triangular, by row blocks of the
-    result (``(Cᵀ X)[I] = C[I0:, I]ᵀ X[I0:]``, top to bottom, so a block is overwritten after its last use): no
-    copy of ``C`` (a BLAS ``trmm`` would copy the strided block of ``F``, one array of ``G11``'s size)."""
+    """``Cᵀ X`` in place of ``X`` (``n_b`` rows), ``C`` the lower triangle of ``F[:n_b, :n_b]`` (what lies above
+    it is not read), by row blocks of the result (``(Cᵀ X)[I] = C[I0:, I]ᵀ X[I0:]``, top to bottom, so a block is
+    overwritten after its last use): no copy of ``C`` (a BLAS ``trmm`` would copy the strided block of ``F``, one
+    array of ``G11``'s size), only of one block column at a time, its diagonal block made lower triangular."""
     for i0 in range(0, n_b, block):
         i1 = min(i0 + block, n_b)
-        X[i0:i1] = F[i0:n_b, i0:i1].T @ X[i0:]
+        B = np.array(F[i0:n_b, i0:i1], order="F")
+        B[: i1 - i0] = np.tril(B[: i1 - i0])
+        X[i0:i1] = B.T @ X[i0:]
     return X
 
 
 def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float) -> tuple[np.ndarray, float]:
     """``(Θ, scale)``: :func:`ridge_map` of the whole data at ``alpha · scale``, ``scale = tr(G) / n_rows``.
 
-    The total's cached factor is dropped first; from :data:`TOTAL_FACTOR_ROWS` regressor rows on only the Gram's
-    first ``n_b`` rows are assembled (the map uses no other; 71 % of the Gram at past 100 / horizon 50) and the
-    trace comes from the diagonal of the sums (the same numbers, summed in another order).
+    From :data:`TOTAL_FACTOR_ROWS` regressor rows on the trace comes from the diagonal of the sums (the same
+    numbers, summed in another order) and the Gram is the one the condition check kept with its factor
+    (``_factor_gram``: no second assembly) or, without it, its first ``n_b`` rows assembled (the map uses no
+    other; 71 % of the Gram at past 100 / horizon 50). Below, the whole Gram is assembled, as it always was.
     """
+    if n_b >= TOTAL_FACTOR_ROWS:
+        scale = float(total.gram_diagonal().sum()) / total.n_rows
+        if total._factor_gram is not None:
+            theta = _ridge_map_from_kept(total, n_b, alpha * scale)
+            total.release()
+            return theta, scale
     total.release()  # memory: the condition check's factor is not needed for the map
-    total._leading = None
     release_freed_memory()
     if n_b < TOTAL_FACTOR_ROWS:
         G = total.gram
         scale = float(np.trace(G)) / G.shape[0]
     else:
         G = total.gram_rows(0, n_b)
-        scale = float(total.gram_diagonal().sum()) / total.n_rows
     return ridge_map(G, n_b, alpha * scale), scale
 
 

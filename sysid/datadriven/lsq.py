@@ -110,6 +110,7 @@ class LsqPredictor(_DirectPredictor):
 
     storage_kind = "lsq_predictor"
     _strength_param = "alphas"
+    _keeps_total_gram = True  # the final map's Gram is the condition check's (gram.fitted_ridge_map)
     _fitted_arrays = _DirectPredictor._fitted_arrays + ("Kp_", "Kf_")
     _fitted_scalars = _DirectPredictor._fitted_scalars + ("alpha_", "ridge_strength_")
 
@@ -152,8 +153,6 @@ class LsqPredictor(_DirectPredictor):
 
         gram_route = self.factor_route_ == "gram"
         total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
-        if total is not None:
-            total.keep_leading_factor_columns(n_b)
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid

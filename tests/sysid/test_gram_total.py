@@ -72,12 +72,29 @@ def test_without_a_factor_the_validation_gram_is_used(folds, monkeypatch):
     assert gr._total_factor(None, n_b) is None
     assert gr._total_factor(gr.total_fold(fs), n_b) is None  # a sum not factored by the condition check
     assert gr._total_factor(total, n_b) is total._factor
+
+
+def test_the_kept_gram_gives_the_final_map_without_a_second_assembly(folds, monkeypatch):
+    fs, total, n_b = folds
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
     part = gr.total_fold(fs)
-    gr.gram_condition_of(part, keep=True)
-    F = part._factor
-    part.keep_leading_factor_columns(n_b)  # what the least-squares predictor keeps: [C; L21]
-    np.testing.assert_array_equal(gr._total_factor(part, n_b), F[:, :n_b])
-    np.testing.assert_array_equal(part.factor, F)  # made again when asked for
+    G = part.gram  # the assembled Gram (a fresh array: the condition check factors its own)
+    assert gr.gram_condition_of(part, keep_gram=True) == gr.gram_condition_of(gr.total_fold(fs))
+    F = gr._total_factor(part, n_b)  # what the least-squares predictor keeps: the factor and G's upper triangle
+    assert F is part._factor_gram and part._factor is None
+    np.testing.assert_array_equal(np.tril(F), total._factor)  # the factor, as the condition check always made it
+    np.testing.assert_array_equal(np.triu(F, 1), np.triu(G, 1))  # the Gram's own entries, untouched
+    calls = []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, **k: calls.append(1))
+    theta, scale = gr.fitted_ridge_map(part, n_b, 1e-3)
+    assert not calls  # no Gram assembled again
+    assert scale == pytest.approx(np.trace(G) / G.shape[0], rel=1e-14)
+    np.testing.assert_array_equal(theta, gr.ridge_map(G, n_b, 1e-3 * scale))  # bit for bit (G is symmetric)
+    assert part._factor_gram is None  # released after the map
+    # the held-out terms read only the lower triangle: the same numbers as from the clean factor
+    X = np.random.default_rng(3).standard_normal((n_b, 4))
+    np.testing.assert_array_equal(gr._lower_t_times(F, n_b, X.copy(), block=7),
+                                  gr._lower_t_times(total._factor, n_b, X.copy(), block=7))
 
 
 @pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
