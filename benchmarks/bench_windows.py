@@ -20,6 +20,14 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    the same slope of the Gram reference. A slope near 2 is set by the Gram's (rows)² size; one near 3 by the
    factorisations of Gram-sized matrices (Cholesky, eigendecomposition), which no exact fit of every coefficient
    avoids.
+5. the least-squares predictor's kernels (``--spc-kernels``): on one cross-validation fold's training Gram of the
+   session at ``--spc-window`` (default 100:50, ``n_b`` = 2,450 regressors, ``pN`` = 1,000 predicted values), one
+   BLAS thread, CPU seconds: the eigendecomposition with LAPACK's divide-and-conquer driver (``syevd``, what the
+   fit uses, and NumPy's ``eigh``), the MRRR driver (``syevr``), the eigenvalues alone (the tridiagonal reduction),
+   one dense product of the same size (``gemm``, ``2 n³`` flops) and one strength of the per-strength alternative
+   (Cholesky factor of ``G11 + s I``, two triangular solves and one triangular product with ``pN`` right-hand
+   sides: what scoring one strength of a fold needs without eigenvectors), projected to the fit's 3 folds × 9
+   strengths.
 
 Every row carries the 1-minute load average when it was printed (timings on a busy machine are slower and noisier),
 and each fit its CPU time (all threads): on a busy machine the wall time mostly measures the others' load, while the
@@ -32,6 +40,7 @@ Usage::
     python benchmarks/bench_windows.py                       # both windows, every method
     python benchmarks/bench_windows.py --windows 10:20 --methods lsq hankel --timeout 300
     python benchmarks/bench_windows.py --windows --growth      # the cost growth only
+    python benchmarks/bench_windows.py --windows --spc-kernels # the least-squares predictor's kernels only
 """
 
 from __future__ import annotations
@@ -123,6 +132,66 @@ def child_gram(path: str, n_lags: int) -> dict:
     with threadpool_limits(limits=1, user_api="blas"):
         best = min(products() for _ in range(2))
     return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+
+
+def child_spc_kernels(path: str, past: int, horizon: int) -> dict:
+    """CPU seconds of the least-squares predictor's per-fold kernels on fold 0's training Gram (one BLAS thread)."""
+    import numpy as np
+    import scipy.linalg as sla
+    from scipy.linalg import blas, lapack
+    from threadpoolctl import threadpool_limits
+
+    from stimsteer.sysid import load_session
+    from stimsteer.sysid.datadriven.lsq import LsqPredictor
+
+    est = LsqPredictor(past_steps=past, horizon_steps=horizon)
+    folds, weights = est._gather(load_session(path), 9, keep_full=False)  # the fit's own data pass and folds
+    n_b = (est.n_inputs_ + est.n_outputs_) * past + est.n_inputs_ * horizon
+    Gt = folds.total.plus(folds[0], -1.0).gram_rows(0, n_b)
+    G11, G12w = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:] * weights[None, :])
+    C = np.asfortranarray(folds.total._factor[:n_b, :n_b])  # the total's Cholesky factor (condition check)
+    s = 1e-2 * float(np.trace(G11)) / Gt.shape[1]
+    del Gt, folds
+
+    def strength():
+        K = np.array(G11, order="F")
+        K[np.diag_indices(n_b)] += s
+        R, _info = lapack.dpotrf(K, lower=1, overwrite_a=1, clean=0)
+        Y = blas.dtrsm(1.0, R, G12w, lower=1)  # R⁻¹ G12 Ω
+        X = blas.dtrsm(1.0, R, Y, lower=1, trans_a=1, overwrite_b=1)  # (Ω Θ)ᵀ
+        return blas.dtrmm(1.0, C, X, lower=1, trans_a=1, overwrite_b=1)  # Cᵀ (Ω Θ)ᵀ
+
+    cases = {"eigh syevd (the fit's)": lambda: sla.eigh(G11, driver="evd", check_finite=False),
+             "numpy eigh (syevd)": lambda: np.linalg.eigh(G11),
+             "eigh syevr (MRRR)": lambda: sla.eigh(G11, driver="evr", check_finite=False),
+             "eigenvalues only (tridiagonal reduction)": lambda: sla.eigh(G11, eigvals_only=True, driver="evd",
+                                                                          check_finite=False),
+             "gemm of the same size (2 n³ flops)": lambda: G11 @ G11,
+             "one strength: Cholesky + 2 trsm + trmm, pN rhs": strength}
+    out = {"n_b": n_b, "pN": int(weights.size)}
+    with threadpool_limits(limits=1, user_api="blas"):
+        for name, f in cases.items():
+            c0 = time.process_time()
+            f()
+            out[name] = [time.process_time() - c0, _load()]
+    return out
+
+
+def spc_kernel_table(path: str, window: str, timeout: float) -> None:
+    """The least-squares predictor's kernels (one fold, one BLAS thread), and the two routes' projected costs."""
+    past, horizon = (int(v) for v in window.split(":"))
+    r = run_child(["spc-kernels", path, past, horizon], timeout)
+    if "n_b" not in r:
+        print(f"# SPC kernels: {_fmt(r)}")
+        return
+    print(f"| SPC kernel, one fold's training G11 ({r.pop('n_b')} rows, {r.pop('pN')} right-hand sides), "
+          "one BLAS thread | CPU | load |")
+    print("| --- | --- | --- |")
+    for name, (cpu, load) in r.items():
+        print(f"| {name} | {cpu:.2f} s | {load:.1f} |")
+    eig, one = r["eigh syevd (the fit's)"][0], r["one strength: Cholesky + 2 trsm + trmm, pN rhs"][0]
+    print(f"# 3 folds x 9 strengths: eigen route {3 * eig:.1f} s of eigendecompositions (+ its O(n³) products), "
+          f"per-strength route {27 * one:.1f} s")
 
 
 def run_child(args: list, timeout: float) -> dict:
@@ -221,24 +290,30 @@ def main(argv=None) -> int:
     ap.add_argument("--growth-methods", nargs="+", default=["arx", "subspace"], choices=list(METHODS))
     ap.add_argument("--growth-past", nargs="+", type=int, default=[25, 50, 100, 200])
     ap.add_argument("--growth-contacts", type=int, default=8, help="recorded channels of the growth session")
+    ap.add_argument("--spc-kernels", action="store_true", help="also time the least-squares predictor's kernels")
+    ap.add_argument("--spc-window", default="100:50", help="past:horizon of --spc-kernels")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         kind, path, *rest = args.child
-        out = child_gram(path, int(rest[0])) if kind == "gram" else child_fit(path, kind, int(rest[0]), int(rest[1]))
+        out = child_gram(path, int(rest[0])) if kind == "gram" else \
+            child_spc_kernels(path, int(rest[0]), int(rest[1])) if kind == "spc-kernels" else \
+            child_fit(path, kind, int(rest[0]), int(rest[1]))
         print(json.dumps(out))
         return 0
     print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {_load():.1f} at the start")
     from stimsteer.sysid.io import save_session
 
     with tempfile.TemporaryDirectory() as tmp:
-        if args.windows:
+        if args.windows or args.spc_kernels:
             path = str(Path(tmp) / "session.h5")
             session = make_session(args.seed)
             save_session(session, path)
             print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, "
                   f"{session.n_outputs} outputs, {len(session.trials)} trials; timeout {args.timeout:.0f} s per case")
             window_table(path, args.windows, args.methods, args.timeout)
+            if args.spc_kernels:
+                spc_kernel_table(path, args.spc_window, args.timeout)
         if args.growth:
             path = str(Path(tmp) / "growth.h5")
             # 3 sites: the demo's stimulation file describes three, and make_demo refuses fewer
