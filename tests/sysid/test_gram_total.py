@@ -112,6 +112,7 @@ def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monke
     new = cls(past_steps=P, horizon_steps=N).fit(s)
     assert len(calls) == 3  # one per fold: the total's factor reached the held-out terms
     assert new.factor_route_ == old.factor_route_ == "gram"
+    assert getattr(new, "alpha_", None) == getattr(old, "alpha_", None)  # SPC: the same strength chosen
     rng = np.random.default_rng(5)
     windows = rng.standard_normal((6, P, 2)), rng.standard_normal((6, P, 3)), rng.standard_normal((6, N, 2))
     a, b = old.predict_many(*windows), new.predict_many(*windows)
