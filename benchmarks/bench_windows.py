@@ -149,7 +149,8 @@ def child_spc_kernels(path: str, past: int, horizon: int) -> dict:
     n_b = (est.n_inputs_ + est.n_outputs_) * past + est.n_inputs_ * horizon
     Gt = folds.total.plus(folds[0], -1.0).gram_rows(0, n_b)
     G11, G12w = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:] * weights[None, :])
-    C = np.asfortranarray(folds.total._factor[:n_b, :n_b])  # the total's Cholesky factor (condition check)
+    kept = folds.total._factor_gram if folds.total._factor_gram is not None else folds.total._factor
+    C = np.asfortranarray(np.tril(kept[:n_b, :n_b]))  # the total's Cholesky factor (condition check)
     s = 1e-2 * float(np.trace(G11)) / Gt.shape[1]
     del Gt, folds
 
@@ -311,7 +312,8 @@ def main(argv=None) -> int:
             save_session(session, path)
             print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, "
                   f"{session.n_outputs} outputs, {len(session.trials)} trials; timeout {args.timeout:.0f} s per case")
-            window_table(path, args.windows, args.methods, args.timeout)
+            if args.windows:
+                window_table(path, args.windows, args.methods, args.timeout)
             if args.spc_kernels:
                 spc_kernel_table(path, args.spc_window, args.timeout)
         if args.growth:
