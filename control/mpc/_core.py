@@ -370,15 +370,14 @@ class _PredictiveController(BaseEstimator):
         self._u_all = u_all
         self._hist = None if self._budget is None or u_all is None else self._budget.history(u_all)
         self._whists = [] if u_all is None else [b.history(u_all) for b in self._budgets if b.weighted]
-        self._hist_list = ([self._hist] if self._budget is not None else []) + self._whists
 
     @property
     def _hists(self) -> list:  # the applied past's load per window step, one array per budget of ``_budgets``
-        return self._hist_list
+        return ([self._hist] if self._budget is not None else []) + self._whists
 
     def _budget_excess(self, u) -> float:
         """The largest window load over its budget, as a fraction of the budget, over every budget (-inf: none)."""
-        return max((b.relative_excess(u, h) for b, h in zip(self._budgets, self._hist_list)), default=-np.inf)
+        return max((b.relative_excess(u, h) for b, h in zip(self._budgets, self._hists)), default=-np.inf)
 
     def _window_max(self, u) -> float:
         """The largest Σ u² of the energy budget's windows for ``u`` (``Plan.energy_window_max_ua2``)."""
