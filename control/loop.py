@@ -195,28 +195,33 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     warm = _warmup(controller, warmup_inputs)
     plant.reset(seed=seed, x0=x0)
     controller.reset()  # the same seed gives the same numbers: no warm start carried over from another run
-    U, Y = list(warm), [np.asarray(plant.step(u), np.float64).reshape(p) for u in warm]
+    n_w = warm.shape[0]
+    # the applied inputs and measured outputs, written in place: each plan gets views of the windows it needs
+    U, Y = np.empty((n_w + n_steps, m)), np.empty((n_w + n_steps, p))
+    U[:n_w] = warm
+    for i, u in enumerate(warm):
+        Y[i] = np.asarray(plant.step(u), np.float64).reshape(p)
     T = controller.past_steps_
     # the inputs a plan sees reach back as far as its energy budget's window (the outputs as far as its predictor's)
     T_u = max(T, (controller.energy_window_steps_ or 1) - 1, getattr(controller, "history_steps_", 0))
-    times, statuses, use = np.empty(n_steps), [], {k: 0 for k in _LIMIT_KEYS}
+    times, statuses, use = np.empty(n_steps), [], dict.fromkeys(_LIMIT_KEYS, 0)
     n_fallback = 0
     dist = np.full((n_steps, p), np.nan) if hasattr(controller, "disturbance_") else None
     for k in range(n_steps):
-        plan = controller.plan(np.asarray(U[-T_u:]), np.asarray(Y[-T:]), target=window(k), last_input=U[-1],
-                               use_fast_path=use_fast_path)
-        u = np.array(plan.inputs[0])
-        U.append(u)
-        Y.append(np.asarray(plant.step(u), np.float64).reshape(p))
+        now = n_w + k
+        plan = controller.plan(U[max(0, now - T_u):now], Y[max(0, now - T):now], target=window(k),
+                               last_input=U[now - 1], use_fast_path=use_fast_path)
+        U[now] = plan.inputs[0]
+        Y[now] = np.asarray(plant.step(U[now].copy()), np.float64).reshape(p)
         times[k], n_fallback = plan.solve_time_s, n_fallback + int(plan.fallback)
         statuses.append(plan.status)
         if dist is not None:
             dist[k] = controller.disturbance_
-        for key in _LIMIT_KEYS:
-            a = plan.active_limits[key]
-            use[key] += int(a if key == "energy_budget" else np.any(a[0]))
-    return _result(controller, warm, np.asarray(U[len(warm):]), np.asarray(Y), targets, times, statuses, use,
-                   n_fallback, seed, dist)
+        act = plan.active_limits
+        for key in _LIMIT_KEYS[:-1]:
+            use[key] += int(act[key][0].any())
+        use["energy_budget"] += int(act["energy_budget"])
+    return _result(controller, warm, U[n_w:], Y, targets, times, statuses, use, n_fallback, seed, dist)
 
 
 def offset_free_wrapper(controller, offset_free):

@@ -33,10 +33,12 @@ import scipy.sparse as sp
 from ...sysid import BaseEstimator, InvalidParameterError, SessionError, check_fitted
 from ..limits import StimLimits
 from ..sequence_limits import history_breaks, on_mask
-from ._budget import _RollingBudget, blend_all
+from ._budget import _RollingBudget
 from ._budget_sqp import fast_budgeted
 from ._cone_solve import ready, solve_compiled
 from .plan import Plan, _ro
+from ._verify import _ACCEPT_RTOL, _ZERO_RTOL, _PlanLimits  # noqa: F401 (the tolerances, named here before)
+from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight  # noqa: F401 (robust.py, lifted.py)
 from ...sysid._lazy import lazy_module
 
 cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
@@ -44,66 +46,6 @@ cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_la
 __all__: list = []
 
 _ACCEPT = {"optimal": "optimal", "optimal_inaccurate": "optimal_inaccurate"}  # cvxpy.OPTIMAL, OPTIMAL_INACCURATE
-# An answer that breaks a hard bound by more than this (relative to the bound scale) is a failed solve.
-_ACCEPT_RTOL = 1e-5
-_ZERO_RTOL = 1e-6  # under window budgets or train limits, |u| at most this fraction of its bound is residue: 0
-
-
-# ---------------------------------------------------------------------------------------------------- settings
-def _sqrt_weight(name, w, dim):
-    """A factor ``L`` with ``LᵀL = W`` for a scalar, per-channel vector or PSD matrix weight."""
-    W = np.asarray(w, dtype=np.float64)
-    if W.ndim == 0:
-        W = np.full(dim, float(W))
-    if not np.all(np.isfinite(W)):
-        raise InvalidParameterError(f"{name} must be finite; got {w!r}.")
-    if W.ndim == 1:
-        if W.shape != (dim,) or np.any(W < 0):
-            raise InvalidParameterError(f"{name} must be a non-negative number, {dim} non-negative values or a "
-                                        f"({dim}, {dim}) PSD matrix; got {W.tolist() if W.size < 20 else W.shape}.")
-        return np.diag(np.sqrt(W))
-    if W.shape != (dim, dim) or not np.allclose(W, W.T, atol=1e-12 * max(1.0, np.abs(W).max())):
-        raise InvalidParameterError(f"{name} as a matrix must be symmetric with shape ({dim}, {dim}); got "
-                                    f"{W.shape}.")
-    ev, V = np.linalg.eigh(0.5 * (W + W.T))
-    if ev.min() < -1e-10 * max(1.0, ev.max()):
-        raise InvalidParameterError(f"{name} must be positive semidefinite; its smallest eigenvalue is "
-                                    f"{ev.min():.3g}.")
-    return np.sqrt(np.clip(ev, 0, None))[:, None] * V.T
-
-
-def _clip_psd(W):
-    """The nearest positive semidefinite matrix to symmetric ``W`` (negative eigenvalues set to zero)."""
-    ev, V = np.linalg.eigh(0.5 * (W + W.T))
-    return (V * np.clip(ev, 0, None)) @ V.T
-
-
-def _horizon(h, max_h):
-    """``h`` as a positive number of steps, at most ``max_h`` (the predictor's horizon) when that is set."""
-    try:
-        N = int(h)
-    except (TypeError, ValueError):
-        raise InvalidParameterError(f"horizon_steps must be a positive integer; got {h!r}.") from None
-    if N != h or N < 1:
-        raise InvalidParameterError(f"horizon_steps must be a positive integer; got {h!r}.")
-    if max_h is not None and N > max_h:
-        raise InvalidParameterError(f"horizon_steps = {N} exceeds the predictor's horizon of {max_h} steps; plan over "
-                                    f"at most {max_h} steps or refit the predictor with a longer horizon.")
-    return N
-
-
-def _output_target(t, N, p):
-    """An output target as (N, p) rows: a constant (p,) repeated, or the first N rows of a trajectory."""
-    if t.ndim == 1:
-        if t.shape != (p,):
-            raise SessionError(f"a constant target must have one value per output ({p}); got shape {t.shape}.")
-        t = np.tile(t, (N, 1))
-    if t.ndim != 2 or t.shape[1] != p or t.shape[0] < N:
-        raise SessionError(f"a target trajectory must have shape (>= {N}, {p}) (horizon, outputs); got {t.shape}.")
-    t = t[:N]
-    if not np.all(np.isfinite(t)):
-        raise SessionError("the target holds NaN or infinite values; give a finite target for every output.")
-    return t
 
 
 # ---------------------------------------------------------------------------------------------------- base
@@ -141,7 +83,7 @@ class _PredictiveController(BaseEstimator):
         # applied inputs a plan must see: every budget window and train limit reaches this far back
         self.history_steps_ = max([b.window - 1 for b in self._budgets] +
                                   [0 if self._train is None else self._train.keep()])
-        self._hist, self._whists, self._u_all = None, [], None
+        self._set_history(None)
         # the cone problem's input rows are written in units of the largest amplitude bound (see "Units"); the
         # acceptance tolerance of a solver's answer is relative to it too, so it means the same in any unit
         bounds = np.abs(np.concatenate([self._lo, self._hi]))
@@ -173,6 +115,7 @@ class _PredictiveController(BaseEstimator):
         self._S_lo = sp.csr_matrix((np.ones(self._idx_lo.size), ([*range(self._idx_lo.size)],
                                     [pos[int(i)] for i in self._idx_lo])), shape=(self._idx_lo.size, nb))
         self._slew_rows = self._slew_matrix(N, m)
+        self._checks = _PlanLimits(self)  # the limit constants of every plan, computed once (_verify.py)
 
     def _slew_matrix(self, N, m):
         """Rows ``u_{k,i} − u_{k−1,i}`` (k >= 1) for the inputs with a finite slew limit, and their limits."""
@@ -264,14 +207,7 @@ class _PredictiveController(BaseEstimator):
         There the amplitude window takes precedence (it is the one the plan obeys, and the one written), and the
         slew limit is broken at step 0.
         """
-        N = self.horizon_steps_
-        lb, ub = np.tile(self._lo, (N, 1)), np.tile(self._hi, (N, 1))
-        broken = np.zeros(self.n_inputs_, bool)
-        if self._slew is not None:
-            lo0, hi0 = np.maximum(lb[0], last - self._slew), np.minimum(ub[0], last + self._slew)
-            broken = lo0 > hi0
-            lb[0], ub[0] = np.where(broken, lb[0], lo0), np.where(broken, ub[0], hi0)
-        return lb, ub, broken
+        return self._checks.step_bounds(last)
 
     def _guard(self, broken, last, fallback):
         """Reason why no input sequence can meet the limits from ``last``, or '' when one can."""
@@ -329,11 +265,9 @@ class _PredictiveController(BaseEstimator):
             On malformed past windows, target or last input.
         """
         check_fitted(self, "problem_")
-        self._u_all = np.asarray(u_past, np.float64)
-        u_past, y_past = self._check_past(u_past, y_past)
-        # the energy windows reach back into the applied past, which may be longer than the prediction's window
-        self._hist = None if self._budget is None else self._budget.history(self._u_all)
-        self._whists = [b.history(self._u_all) for b in self._budgets if b.weighted]
+        u_all = np.asarray(u_past, np.float64)
+        u_past, y_past = self._check_past(u_all, y_past)
+        self._set_history(u_all)
         last = self._check_last(last_input, u_past)
         target = self._check_target(target)
         lb, ub, broken = self._step_bounds(last)
@@ -342,7 +276,7 @@ class _PredictiveController(BaseEstimator):
             lb, ub = np.where(mask, lb, 0.0), np.where(mask, ub, 0.0)
         t0 = time.perf_counter()
         # the safe fallback is needed up front only with an energy budget (guard, projection blend)
-        fallback = self.limits_.safe_inputs(self.horizon_steps_, last) if self._budgets else None
+        fallback = self._checks.fallback(last) if self._budgets else None
         reason = self._guard(broken, last, fallback)
         fast = self.fast_path if use_fast_path is None else bool(use_fast_path)
         fast = fast and self._fast is not None
@@ -356,7 +290,7 @@ class _PredictiveController(BaseEstimator):
         elapsed = time.perf_counter() - t0
         is_fallback = u is None
         if is_fallback:
-            u, aux = self.limits_.safe_inputs(self.horizon_steps_, last), None
+            u, aux = (self._checks.fallback(last) if fallback is None else fallback), None
         return self._package(u, aux, u_past, y_past, target, last, (lb, ub, broken), solver, status, reason,
                              is_fallback, elapsed)
 
@@ -401,40 +335,12 @@ class _PredictiveController(BaseEstimator):
         return np.array(self._u.value), self._aux_value(), _ACCEPT[status], ""
 
     def _project(self, u, lb, ub, last, fallback):
-        """Verify a solver answer against the hard limits; clip tolerance-level excess onto the exact bounds."""
-        tol = _ACCEPT_RTOL * self._scale
-        excess = max(float(np.max(lb - u)), float(np.max(u - ub)), 0.0)
-        if self._slew is not None:
-            d = np.abs(np.diff(np.vstack([last, u]), axis=0)) - self._slew
-            excess = max(excess, float(np.max(d[:, np.isfinite(self._slew)], initial=0.0)))
-        if self._budgets:
-            # relative to the budget (a sum over the window), in the amplitude scale of the tolerance
-            excess = max(excess, self._budget_excess(u) * self._scale)
-        if not np.all(np.isfinite(u)) or excess > tol:
-            return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
-        u = np.clip(u, lb, ub)
-        if self.limits_.has_sequence_limits and self._slew is None:
-            # solver residue near zero stimulation (interior points never reach 0) would count as a train on and
-            # as a pulse; below 1e-6 of an input's bound it is delivered as zero, which lowers every load
-            u = np.where(np.abs(u) <= _ZERO_RTOL * np.maximum(np.abs(self._lo), np.abs(self._hi)), 0.0, u)
-        if self._slew is not None and np.any(np.abs(np.diff(u, axis=0)) > self._slew):
-            # clip onto each step's slew window around the clipped previous step, from the first step outside it
-            moves = np.any((u[1:] > np.minimum(ub[1:], u[:-1] + self._slew))
-                           | (u[1:] < np.maximum(lb[1:], u[:-1] - self._slew)), axis=1)
-            first = int(np.argmax(moves)) + 1 if moves.any() else u.shape[0]
-            prev = u[first - 1]
-            for k in range(first, u.shape[0]):
-                u[k] = np.clip(u[k], np.maximum(lb[k], prev - self._slew), np.minimum(ub[k], prev + self._slew))
-                prev = u[k]
-        if self._budgets:
-            u = blend_all(self._budgets, self._hists, u, fallback)
-            if self._budget_excess(u) > 1e-9:
-                return None, "internal check failed after projection: an energy budget window is over budget"
-        bad = {k: v for k, v in self.limits_.violations(u, last, energy_window_steps=self.energy_window_steps_,
-                                                          history=self._u_all).items() if v}
-        if bad:  # cannot happen after the clip above; never return such a plan
-            return None, f"internal check failed after projection: {bad}"
-        return u, ""
+        """Verify a solver answer against the hard limits; clip tolerance-level excess onto the exact bounds.
+
+        Returns ``(u, "")``, or ``(None, why)`` when the answer breaks a limit beyond tolerance or any check fails
+        after the projection (:meth:`._verify._PlanLimits.project`).
+        """
+        return self._checks.project(self, u, lb, ub, last, fallback)
 
     def _package(self, u, aux, u_past, y_past, target, last, bounds, solver, status, reason, is_fallback, elapsed):
         lb, ub, broken = bounds
@@ -453,48 +359,34 @@ class _PredictiveController(BaseEstimator):
             message=(f"{reason}; returning the safe fallback (towards zero stimulation within the slew limit)"
                      if is_fallback else reason), fallback=is_fallback, solve_time_s=float(elapsed),
             input_names=self.input_names_, output_names=self.output_names_,
-            output_bounds=None if self.limits_.output_min is None else (_ro(self.limits_.output_min),
-                                                                       _ro(self.limits_.output_max)),
+            output_bounds=self._checks.output_bounds,
             energy_window_steps=self.energy_window_steps_,
-            energy_window_max_ua2=None if self._budget is None else float(np.max(self._budget.energies(u, self._hist))),
+            energy_window_max_ua2=None if self._budget is None else self._window_max(u),
             broken_limits=self._broken(u, last, broken),
         )
 
+    def _set_history(self, u_all):
+        """The applied past a plan sees (every budget window and train limit reaches into it) and its loads."""
+        self._u_all = u_all
+        self._hist = None if self._budget is None or u_all is None else self._budget.history(u_all)
+        self._whists = [] if u_all is None else [b.history(u_all) for b in self._budgets if b.weighted]
+
     @property
     def _hists(self) -> list:  # the applied past's load per window step, one array per budget of ``_budgets``
-        return ([self._hist] if self._budget is not None else []) + list(self._whists)
+        return ([self._hist] if self._budget is not None else []) + self._whists
 
     def _budget_excess(self, u) -> float:
         """The largest window load over its budget, as a fraction of the budget, over every budget (-inf: none)."""
         return max((b.relative_excess(u, h) for b, h in zip(self._budgets, self._hists)), default=-np.inf)
 
+    def _window_max(self, u) -> float:
+        """The largest Σ u² of the energy budget's windows for ``u`` (``Plan.energy_window_max_ua2``)."""
+        return float(np.max(self._checks.energies_of(self, u)[0]))
+
     def _broken(self, u, last, broken):
         """Readable lines naming each hard limit the returned inputs break (only when no sequence can meet them)."""
-        lines = [f"slew on {self.input_names_[i]} at step 0: the last input {last[i]:g} µA lies more than "
-                 f"{self._slew[i]:g} µA outside the amplitude window [{self._lo[i]:g}, {self._hi[i]:g}] µA"
-                 for i in np.flatnonzero(broken)]
-        if self._budget is not None and self._budget.excess(u, self._hist) > 1e-9 * self._energy:
-            lines.append(f"energy_budget: a window of {self.energy_window_steps_} samples holds "
-                         f"{self._budget.excess(u, self._hist) + self._energy:.4g} µA² > {self._energy:g} µA²")
-        lines += [f"{b.name}: a window of {b.window} samples holds {b.excess(u, h) + b.budget:.4g} {b.unit} > "
-                  f"{b.budget:.4g} {b.unit}" for b, h in zip(self._budgets, self._hists)
-                  if b.weighted and b.relative_excess(u, h) > 1e-9]
-        return tuple(lines)
+        return self._checks.broken(self, u, last, broken)
 
     def _active(self, u, y, last, lb, ub):
-        tol = 1e-6 * self._scale
-        at_lo = (u <= self._lo + tol) & (self._lo < 0)
-        at_hi = (u >= self._hi - tol) & (self._hi > 0)
-        charge_lo, charge_hi = self._charge_sides
-        act = {"amplitude_min": at_lo & ~charge_lo, "amplitude_max": at_hi & ~charge_hi,
-               "charge_density": (at_lo & charge_lo) | (at_hi & charge_hi)}
-        if self._slew is not None:
-            d = np.abs(np.diff(np.vstack([last, u]), axis=0))
-            act["slew"] = np.isfinite(self._slew) & (d >= self._slew - tol)
-        else:
-            act["slew"] = np.zeros_like(u, dtype=bool)
-        act["energy_budget"] = bool(self._budgets and self._budget_excess(u) >= -1e-6)
-        yv = y.reshape(-1)
-        ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
-        act["output_bounds"] = ((yv >= self._ymax - ytol) | (yv <= self._ymin + ytol)).reshape(y.shape)
-        return act
+        """The binding limits of the returned inputs (``Plan.active_limits``)."""
+        return self._checks.active(self, u, y, last)

@@ -25,7 +25,7 @@ import scipy.sparse as sp
 
 from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, NotFittedError, check_fitted
 from ...sysid.protocols import past_vector
-from ._core import _horizon, _output_target, _sqrt_weight
+from ._settings import _horizon, _output_target, _sqrt_weight
 from ._cone_solve import LazyProblem
 from .condensed import _CondensedCore
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available

@@ -17,7 +17,7 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
-from ._core import _clip_psd, _horizon, _output_target, _sqrt_weight
+from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight
 from .condensed import _CondensedCore, _LinearStateMap, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
 from ...sysid._lazy import lazy_module
