@@ -5,8 +5,9 @@ moves the axes so that they fit, and does it twice: the second pass corrects for
 axes were resized (``matplotlib._constrained_layout.do_constrained_layout``). Measuring the decorations is the
 costly part of saving a figure (a third to a half of each save of the report's figures, measured in
 ``benchmarks/README.md``). Our figures have fixed sizes and tick labels whose width barely changes with the axes'
-size, so :class:`OnePassLayout` runs the same steps once: the axes land within a pixel or so of where two passes put
-them (tests/control/test_figure_render.py compares the pictures with matplotlib's own layout).
+size, so :class:`OnePassLayout` runs the same steps once: the axes land within a pixel or so of where two passes
+put them (tests/control/test_figure_render.py compares the pictures with matplotlib's own layout). A figure with a
+colour bar keeps the two passes: the bar's ticks and label are measured only in the second.
 
 The steps are matplotlib's own (``matplotlib._constrained_layout``, a private module): where it is missing or has
 changed, :func:`constrained` gives matplotlib's usual engine instead, so a figure is always laid out.
@@ -33,7 +34,10 @@ class OnePassLayout(ConstrainedLayoutEngine):
     module notes); the same settings (pads, spaces, rectangle), no ``compress``."""
 
     def execute(self, fig):
-        """Lay out ``fig``: measure the decorations once, then place the axes and the suptitle."""
+        """Lay out ``fig``: measure the decorations once, then place the axes and the suptitle (a figure with a
+        colour bar gets matplotlib's two passes: the bar's ticks and label exist only after the first)."""
+        if any(getattr(ax, "_colorbar", None) is not None for ax in fig.axes):
+            return super().execute(fig)
         width, height = fig.get_size_inches()
         p = self._params
         h_pad, w_pad = p["h_pad"] / height, p["w_pad"] / width
