@@ -10,6 +10,8 @@ a stand-in plant below :data:`~stimsteer.control.evaluation.result.STANDIN_MIN_R
 
 from __future__ import annotations
 
+import weakref
+
 import numpy as np
 import pandas as pd
 
@@ -57,11 +59,28 @@ def route_name(result: BenchResult, label: str) -> str:
     t = result.tasks
     if t.empty or "inner_r2" not in t:
         return label
-    base = t[(t["route"] == route) & t["inner_r2"].notna() & (t["status"] == "ok")]
-    chosen = base.loc[base.groupby("split")["inner_r2"].idxmax(), "method"].value_counts()
-    n = result.settings.n_splits
-    parts = [f"{m} on {k} of {n} splits" if i == 0 else f"{m} on {k}" for i, (m, k) in enumerate(chosen.items())]
+    parts = _chosen(t, route, result.settings.n_splits)
     return f"{route} ({', '.join(parts)})" if parts else label
+
+
+# route_name is asked about 40 times per report (page, tables, summary) for the same two answers, each a group-by
+# of the task table: they are kept per task table (weakly: a result that is dropped takes its entries with it)
+_CHOSEN: dict = {}
+
+
+def _chosen(tasks: pd.DataFrame, route: str, n_splits: int) -> tuple:
+    """The methods a best-on-training label chose on ``route``, with their split counts, in words."""
+    key = (id(tasks), route, n_splits)
+    hit = _CHOSEN.get(key)
+    if hit is not None and hit[0]() is tasks:
+        return hit[1]
+    base = tasks[(tasks["route"] == route) & tasks["inner_r2"].notna() & (tasks["status"] == "ok")]
+    chosen = base.loc[base.groupby("split")["inner_r2"].idxmax(), "method"].value_counts()
+    parts = tuple(f"{m} on {k} of {n_splits} splits" if i == 0 else f"{m} on {k}"
+                  for i, (m, k) in enumerate(chosen.items()))
+    ref = weakref.ref(tasks, lambda _ref, key=key: _CHOSEN.pop(key, None))
+    _CHOSEN[key] = (ref, parts)
+    return parts
 
 
 def _questions(result: BenchResult) -> list:

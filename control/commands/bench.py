@@ -84,7 +84,7 @@ def check_out_dir(out_dir, *, force: bool = False) -> Path:
     return path
 
 
-def write_bench(result: BenchResult, out_dir, *, force: bool = False) -> dict:
+def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: list | None = None) -> dict:
     """Write the report folder atomically: HTML page, results JSON, CSV tables, PNG figures.
 
     Parameters
@@ -93,6 +93,8 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False) -> dict:
     out_dir : str or Path
         Must be new or empty, unless ``force`` (then it is replaced whole: runs are never mixed).
     force : bool, default False
+    lines : list of str, optional
+        The summary (:func:`stimsteer.control.report.summarize` of ``result``) when the caller already has it.
 
     Returns
     -------
@@ -107,7 +109,7 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False) -> dict:
     if not isinstance(result, BenchResult):
         raise StimsteerError(f"write_bench needs a BenchResult from run_bench; got {type(result).__name__}.")
     final = check_out_dir(out_dir, force=force)
-    lines = summarize(result)
+    lines = summarize(result) if lines is None else lines
     figures = bench_figures.report_figures(result)
     run_id = bench_run_id(result)
     files = {}
@@ -182,8 +184,9 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
                   "limits_file": None if limits_path is None else str(limits_path)}
         result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
                            progress=progress, source=source)
-        files = write_bench(result, out_dir, force=force)
-    return BenchRun(result=result, lines=summarize(result), files=files, notes=(note,) if note else ())
+        lines = summarize(result)
+        files = write_bench(result, out_dir, force=force, lines=lines)
+    return BenchRun(result=result, lines=lines, files=files, notes=(note,) if note else ())
 
 
 def method_specs(names) -> tuple:

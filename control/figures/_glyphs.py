@@ -8,7 +8,8 @@ warnings are silenced and a caption under the figure says which characters could
 
 A figure laid out by a layout engine (``layout="constrained"``) and saved as PNG without a tight bounding box is
 drawn once (:meth:`GlyphSafeFigure.savefig`): the draw runs the layout and renders, and its pixels are written.
-Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output, then the draw it writes).
+Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output, then the draw it writes). Its
+``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`).
 """
 
 from __future__ import annotations
@@ -20,6 +21,8 @@ import warnings
 from matplotlib import font_manager
 from matplotlib.figure import Figure
 from matplotlib.text import Text
+
+from ._one_pass import constrained
 
 __all__ = ["GlyphSafeFigure", "caption_note", "undrawable"]
 
@@ -75,7 +78,11 @@ def caption_note(chars) -> str:
 
 class GlyphSafeFigure(Figure):
     """A :class:`matplotlib.figure.Figure` whose texts use an installed font that has their characters, if any;
-    otherwise it says so in a caption under the figure instead of printing glyph warnings (see the module notes)."""
+    otherwise it says so in a caption under the figure instead of printing glyph warnings (see the module notes).
+    ``layout="constrained"`` is laid out in one pass (:class:`~._one_pass.OnePassLayout`)."""
+
+    def __init__(self, *args, layout=None, **kwargs):
+        super().__init__(*args, layout=constrained() if layout == "constrained" else layout, **kwargs)
 
     def _fit_fonts(self) -> list:
         """Give each text with missing characters a fallback font; the characters no font has."""

@@ -161,11 +161,11 @@ def _point(ax, x, values, colour):
 
 def _paired_bands(axd, g, result, colours, H) -> None:
     """Paired differences in R² (direct − indirect) per step ahead, and of the free run, on ``axd``."""
+    wide = {label: g[(g["label"] == label)].pivot_table(index="split", columns=["mode", "step"], values="r2")
+            for label in (*result.labels("indirect"), *result.labels("direct"))}  # each label's table once
     for a in result.labels("indirect"):
         for b in result.labels("direct"):
-            wa = g[(g["label"] == a)].pivot_table(index="split", columns=["mode", "step"], values="r2")
-            wb = g[(g["label"] == b)].pivot_table(index="split", columns=["mode", "step"], values="r2")
-            d = (wb - wa).dropna()
+            d = (wide[b] - wide[a]).dropna()
             if d.empty or "kstep" not in d.columns.get_level_values(0):
                 continue
             _band(axd, d["kstep"], colours[b], f"{b} − {a}")

@@ -62,3 +62,18 @@ def test_the_figure_keeps_its_dpi_and_other_saves_take_the_usual_path(monkeypatc
     assert len(draws) == 2
     fig.savefig(io.BytesIO(), format="svg")
     assert len(draws) == 4
+
+
+def test_the_layout_measures_the_decorations_once_per_save(monkeypatch):
+    from matplotlib import _constrained_layout
+
+    passes = []
+    original = _constrained_layout.make_layout_margins
+
+    def counted(*args, **kwargs):
+        passes.append(1)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(_constrained_layout, "make_layout_margins", counted)
+    _figure().savefig(io.BytesIO(), format="png", dpi=90)
+    assert len(passes) == 1  # matplotlib's own constrained layout measures twice per draw

@@ -211,3 +211,21 @@ def test_the_summary_leads_with_each_route_by_its_best_method_on_training(seed):
     assert lines[0].startswith("Recommendation: ") and " of 2 splits" in lines[0]
     # only each route's representative steers the plant: one closed loop per route and split
     assert len(r.control) == 2 * 2 and set(r.control["route"]) == {"indirect", "direct"}
+
+
+def test_results_json_holds_every_table_as_pandas_records_one_record_per_line(result):
+    from stimsteer.control.report import bench_run_id, results_json
+
+    lines = summarize(result)
+    text = results_json(result, lines, bench_run_id(result))
+    payload = json.loads(text)
+    assert list(payload) == ["run_id", "caution", "summary", "provenance", "limits", "plant", "tables"]
+    assert payload["summary"] == lines and payload["limits"] == dict(result.limits)
+    for name, table in result.tables().items():
+        # outside check: pandas' own records, read by the standard library (pandas DataFrame.to_json, json.loads)
+        expected = json.loads(table.to_json(orient="records", double_precision=15)) if not table.empty else []
+        assert payload["tables"][name] == expected
+        if len(table) > 1:  # one record per line (not one value per line): a 4 MB table stays a few thousand lines
+            assert json.dumps(name) + ": [\n  {" in text
+    n_records, n_tables = sum(len(t) for t in result.tables().values()), len(result.tables())
+    assert text.split('\n "tables": {\n')[1].count("\n") <= n_records + 3 * n_tables + 3
