@@ -110,10 +110,11 @@ class _Extras:
     """Index bookkeeping of one fold's live structures, shared by its strengths: the union of their extra
     regressors, and per structure its extras' columns in that union and its ``R[e, e]`` block."""
 
-    def __init__(self, R, extras, live):
+    def __init__(self, R, r, extras, live):
         self.union = np.unique(np.concatenate([extras[i] for i in live])) if live else np.zeros(0, dtype=np.intp)
         self.cols = {i: np.searchsorted(self.union, extras[i]) for i in live}
         self.Ree = {i: R[np.ix_(extras[i], extras[i])] for i in live}
+        self.re = {i: r[extras[i]] for i in live}
 
 
 def _strength_betas(R, r, n_core: int, extras, live, alpha, factor, shared: _Extras | None = None) -> dict:
@@ -121,7 +122,7 @@ def _strength_betas(R, r, n_core: int, extras, live, alpha, factor, shared: _Ext
     factor by a block Cholesky step (None for a structure whose Schur complement has no factor). ``shared``: the
     fold's :class:`_Extras` (made here when not given). The LAPACK calls of SciPy's wrappers, made directly."""
     L, z = factor
-    shared = _Extras(R, extras, live) if shared is None else shared
+    shared = _Extras(R, r, extras, live) if shared is None else shared
     union_e = shared.union
     Xall = _trsolve(L, R[:n_core, union_e]) if n_core and union_e.size else \
         np.zeros((n_core, union_e.size))  # L⁻¹ R_core,e for every extra regressor at once
@@ -133,16 +134,18 @@ def _strength_betas(R, r, n_core: int, extras, live, alpha, factor, shared: _Ext
             back.append((i, z))
             continue
         X = Xall[:, shared.cols[i]]
-        S = shared.Ree[i] - X.T @ X
-        S[np.diag_indices_from(S)] += alpha
-        be = _cho_solve_small(S, r[e] - X.T @ z)
+        XT = X.T
+        S = shared.Ree[i] - XT @ X
+        diagonal = S.reshape(-1)[:: S.shape[0] + 1]  # a view (S is a fresh C-ordered array)
+        diagonal += alpha
+        be = _cho_solve_small(S, shared.re[i] - XT @ z)
         out[i] = be
         if be is not None:
             back.append((i, z - X @ be))
     if back and n_core:  # the back substitutions of every structure in one triangular solve
         bc = _trsolve(L, np.hstack([v for _i, v in back]), trans=1)
         for j, (i, _v) in enumerate(back):
-            out[i] = np.vstack([bc[:, j * r.shape[1]:(j + 1) * r.shape[1]], out[i]])
+            out[i] = np.concatenate([bc[:, j * r.shape[1]:(j + 1) * r.shape[1]], out[i]])
     return out
 
 
@@ -165,7 +168,7 @@ def _fold_betas(R, r, n_core: int, extras, live, alphas, run: _Runner, order: st
     for j in range(min(run.n, len(alphas))):  # (a fresh core-sized array per strength costs page faults)
         buffers.put(buffer if j == 0 and buffer is not None else np.empty(Rc.shape, order=order))
 
-    shared = _Extras(R, extras, live)
+    shared = _Extras(R, r, extras, live)
 
     def one(alpha):
         buffer = buffers.get()
