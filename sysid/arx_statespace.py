@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._windows import small_gemms
 from .statespace import StateSpaceModel
 
 __all__ = ["arx_to_state_space"]
@@ -99,14 +100,16 @@ def arx_recursion(ar_coefs, input_coefs, delay_samples: int, past_steps: int, up
     U, Y = np.concatenate([up, uf], axis=1), np.concatenate([yp, np.zeros((n, H, p))], axis=1)
     lagged = np.lib.stride_tricks.sliding_window_view(U[:, L - d - nb + 1: L - d + H], nb, axis=1)
     lagged = np.ascontiguousarray(lagged.transpose(0, 1, 3, 2)).reshape(n * H, nb * m)
-    drive = (lagged @ input_coefs[::-1].transpose(0, 2, 1).reshape(nb * m, p)).reshape(n, H, p)
+    drive = small_gemms(lagged, np.ascontiguousarray(input_coefs[::-1].transpose(0, 2, 1).reshape(nb * m, p)))
+    drive = drive.reshape(n, H, p)
     drive += intercept
     if na == 0:
         return drive
     stacked = np.ascontiguousarray(ar_coefs[::-1].transpose(0, 2, 1).reshape(na * p, p))
     acc = np.empty((n, p))
     for k in range(L, L + H):
-        np.matmul(Y[:, k - na: k].reshape(n, na * p), stacked, out=acc)
+        small_gemms(Y[:, k - na: k].reshape(n, na * p), stacked, acc)
         acc += drive[:, k - L]
         Y[:, k] = acc
     return Y[:, L:]
+

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from ._windows import window_batch
+from ._windows import small_gemms, window_batch
 from .exceptions import SessionError, UnstableModelError
 from .protocols import PredictionMaps
 
@@ -434,7 +434,7 @@ class StateSpaceModel:
             return out
         maps = self._cached_maps(n_past, H)
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
-        y = past @ maps.P.T + uf.reshape(W, -1) @ maps.F.T
+        y = small_gemms(past, maps.P.T) + small_gemms(uf.reshape(W, -1), maps.F.T)  # one BLAS thread each
         return y.reshape(W, uf.shape[1], self.n_outputs)
 
     def _cached_maps(self, n_past: int, horizon_steps: int) -> PredictionMaps:
