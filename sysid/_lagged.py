@@ -343,8 +343,8 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     """
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
-    if Lp1 * c <= _SMALL_ASSEMBLY:
-        return _small_lagged_gram(sums, index, r0, r1, average_same_lag)
+    if index is None and (r0, r1) == (0, Lp1 * c) and Lp1 * c <= _SMALL_ASSEMBLY:
+        return _small_lagged_gram(sums, average_same_lag)
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
     full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
@@ -357,8 +357,9 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     return W
 
 
-#: Lagged vectors up to this length are assembled whole in lagged order and permuted by one fancy-indexed copy
-#: (:func:`_small_lagged_gram`: two Gram-sized arrays, at most 8 MB each); longer ones by strided block copies.
+#: Whole Grams in lagged order of lagged vectors up to this length are assembled by fancy-indexed copies
+#: (:func:`_small_lagged_gram`); longer ones, permuted ones and row ranges by strided block copies over the
+#: rectangles of the index (a permuting copy would hold a second Gram).
 _SMALL_ASSEMBLY = 1024
 
 
@@ -377,24 +378,18 @@ def _gram_blocks(sums: _LagSums, average_same_lag: bool):
         yield blocks
 
 
-def _small_lagged_gram(sums: _LagSums, index, r0: int, r1: int, average_same_lag: bool) -> np.ndarray:
-    """:func:`_lagged_gram` for short lagged vectors: the blocks of each ``δ`` written by two fancy-indexed copies
-    into the lagged-order Gram, then one permuting copy by ``index`` (the same numbers, without the per-block
-    Python work of the strided route, which dominates at this size)."""
+def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
+    """:func:`_lagged_gram` in lagged order, whole, for short lagged vectors: the blocks of each ``δ`` written by two
+    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work, which
+    dominates at this size)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
-    N, lags = Lp1 * c, np.arange(Lp1)
+    lags = np.arange(Lp1)
     G = np.empty((Lp1, c, Lp1, c))
     for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
         G[lags[: Lp1 - d], :, lags[d:], :] = blocks
         if d:
             G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
-    G = G.reshape(N, N)
-    if index is None:
-        return G if (r0, r1) == (0, N) else G[r0:r1].copy()
-    W = np.empty((N, N))
-    pos = np.asarray(index).reshape(-1)
-    W[pos[:, None], pos[None, :]] = G
-    return W if (r0, r1) == (0, N) else W[r0:r1].copy()
+    return G.reshape(Lp1 * c, Lp1 * c)
 
 
 @functools.lru_cache(maxsize=64)
