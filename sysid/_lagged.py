@@ -10,6 +10,7 @@ whose columns are the same lagged vectors in reversed order) both use it.
 from __future__ import annotations
 
 import contextlib
+import functools
 import inspect
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
@@ -341,12 +342,32 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     rectangles of ``index`` (:func:`_index_rectangles`): the same numbers as a scatter, many times faster.
     """
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
+    if index is None and (r0, r1) == (0, Lp1 * c) and Lp1 * c <= _SMALL_ASSEMBLY:
+        return _small_lagged_gram(sums, average_same_lag)
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
-    r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
-    full = _index_rectangles(index)
+    full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
     clipped = full if (r0, r1) == (0, Lp1 * c) else _clip_rectangles(full, r0, r1)
     W = np.empty((r1 - r0, Lp1 * c))
+    for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
+        _write_blocks(W, clipped, full, blocks, d, False)
+        if d:
+            _write_blocks(W, full, clipped, blocks, d, True)
+    return W
+
+
+#: Whole Grams in lagged order of lagged vectors up to this length are assembled by fancy-indexed copies
+#: (:func:`_small_lagged_gram`); longer ones, permuted ones and row ranges by strided block copies over the
+#: rectangles of the index (a permuting copy would hold a second Gram).
+_SMALL_ASSEMBLY = 1024
+
+
+def _gram_blocks(sums: _LagSums, average_same_lag: bool):
+    """Yield, for ``δ = 0 … L``, the Gram blocks ``(a, a + δ)`` of every ``a`` as one ``(L + 1 − δ, c, c)`` array:
+    ``X[δ]``, plus the edge term ``C[δ][a − 1]`` for ``a ≥ 1`` (the same-lag blocks averaged with their transposes
+    with ``average_same_lag``)."""
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
     for d, corr in enumerate(_edge_correction(sums.windows, Lp1 - 1, c)):
         blocks = np.empty((Lp1 - d, c, c))
         blocks[...] = sums.X[d]
@@ -354,10 +375,28 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
         del corr
         if d == 0 and average_same_lag:
             blocks = 0.5 * (blocks + blocks.transpose(0, 2, 1))
-        _write_blocks(W, clipped, full, blocks, d, False)
+        yield blocks
+
+
+def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
+    """:func:`_lagged_gram` in lagged order, whole, for short lagged vectors: the blocks of each ``δ`` written by two
+    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work, which
+    dominates at this size)."""
+    Lp1, c = sums.X.shape[0], sums.X.shape[1]
+    lags = np.arange(Lp1)
+    G = np.empty((Lp1, c, Lp1, c))
+    for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
+        G[lags[: Lp1 - d], :, lags[d:], :] = blocks
         if d:
-            _write_blocks(W, full, clipped, blocks, d, True)
-    return W
+            G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+    return G.reshape(Lp1 * c, Lp1 * c)
+
+
+@functools.lru_cache(maxsize=64)
+def _rectangles(shape: tuple, index_bytes: bytes) -> list:
+    """:func:`_index_rectangles` of an index given by its shape and int64 bytes, cached: the same few layouts are
+    assembled again and again (every fold, every fit of a sweep)."""
+    return _index_rectangles(np.frombuffer(index_bytes, dtype=np.int64).reshape(shape))
 
 
 def _lagged_diagonal(sums: _LagSums) -> np.ndarray:

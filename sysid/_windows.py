@@ -1,4 +1,5 @@
-"""Validation of batches of prediction windows, shared by every predictor's ``predict_many``."""
+"""Validation of batches of prediction windows, shared by every predictor's ``predict_many``, and their products
+in BLAS calls small enough for one thread each."""
 
 from __future__ import annotations
 
@@ -42,3 +43,23 @@ def window_batch(u_past, y_past, u_future, *, n_inputs: int, n_outputs: int, min
             f"length; got {up.shape[1]} input and {yp.shape[1]} output samples. Pass a longer past window."
         )
     return up, yp, uf
+
+
+#: Multiply-adds per BLAS call below which OpenBLAS keeps a product on the calling thread (its threshold is 65,536
+#: times a build factor >= 1; half of it here). Larger products of this size are spread over its threads, which
+#: doubled the CPU time of a batch recursion on a loaded machine (threads waiting for busy cores).
+_ONE_THREAD_GEMM = 32768
+
+
+def small_gemms(a: np.ndarray, w: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """``a @ w`` (``a`` with unit column stride) as one stacked product of row blocks small enough for one BLAS
+    thread each (:data:`_ONE_THREAD_GEMM`), and the rows left over."""
+    n, k = a.shape
+    out = np.empty((n, w.shape[1])) if out is None else out
+    rows = max(1, _ONE_THREAD_GEMM // max(1, k * w.shape[1]))
+    full = n // rows * rows if n > rows else 0
+    if full:
+        np.matmul(a[:full].reshape(-1, rows, k), w, out=out[:full].reshape(-1, rows, w.shape[1]))
+    if full < n:
+        np.matmul(a[full:], w, out=out[full:])
+    return out

@@ -31,7 +31,7 @@ from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, \
     own_moments
-from .arx_statespace import arx_to_state_space
+from .arx_statespace import arx_recursion, arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
     structure_candidates, structure_table
 
@@ -253,12 +253,13 @@ class RidgeArx(BasePredictor):
         self._check_inputs_vary(session, lo, hi)
         # folds keep their compact lag sums (a Gram each only while it is used); the total is assembled once from
         # the summed lag sums, or (small Grams) as the sum of the folds' Grams, bit for bit the moments of before
-        folds = [f.lazy_moments() for f in sums]
-        if prob.size <= _SMALL_GRAM:
+        if prob.size <= _SMALL_GRAM:  # each fold's Gram assembled once, kept (the total and the CV both use it)
+            folds = [f.moments() for f in sums]
             total = _Moments(prob.size)
             for f in folds:
                 total.add(f.n, f.s, f.W)
         else:
+            folds = [f.lazy_moments() for f in sums]
             total = sums[0]
             for f in sums[1:]:
                 total = total.plus(f)
@@ -371,23 +372,10 @@ class RidgeArx(BasePredictor):
         return self.model_.replace(past_steps=int(self.past_steps_))
 
     def _recursion(self, up, yp, uf, intercept) -> np.ndarray:
-        """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions."""
-        na, nb, d, L = self.output_lags_, self.input_lags_, self.delay_samples_, self.past_steps_
-        n, H, p = yp.shape[0], uf.shape[1], self.n_outputs_
-        U, Y = np.concatenate([up, uf], axis=1), np.concatenate([yp, np.zeros((n, H, p))], axis=1)
-        AT, B = self.ar_coefs_.transpose(0, 2, 1), self.input_coefs_
-        drive = np.broadcast_to(intercept, (n, H, p)).copy()  # the input part: every step at once
-        for j in range(nb):
-            drive += U[:, L - d - j: L - d - j + H] @ B[j].T
-        # Per step one batched product of the last na outputs (newest first), then a left-to-right sum of [drive,
-        # y_{k-1} A_1ᵀ, …]: the operations and order of one product per lag (same bits), without a call per lag.
-        terms, acc = np.empty((na + 1, n, p)), np.empty((n, p))
-        for k in range(L, L + H):
-            terms[0] = drive[:, k - L]
-            np.matmul(Y[:, k - 1: (k - 1 - na if k > na else None): -1].transpose(1, 0, 2), AT, out=terms[1:])
-            np.add.reduce(terms, axis=0, out=acc)
-            Y[:, k] = acc
-        return Y[:, L:]
+        """The ARX recursion over ``uf`` from past windows of exactly ``past_steps_`` samples, fed its predictions
+        (:func:`~stimsteer.sysid.arx_statespace.arx_recursion`)."""
+        return arx_recursion(self.ar_coefs_, self.input_coefs_, self.delay_samples_, self.past_steps_, up, yp, uf,
+                             intercept)
 
     def predict_many(self, u_past, y_past, u_future) -> np.ndarray:
         """Multi-step predictions of a batch of windows, feeding back their own predictions.

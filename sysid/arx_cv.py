@@ -76,31 +76,76 @@ def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarra
     return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
 
 
-def _strength_betas(R, r, n_core: int, extras, live, alpha, factor) -> dict:
+def _trsolve(L: np.ndarray, b: np.ndarray, trans: int = 0) -> np.ndarray:
+    """``scipy.linalg.solve_triangular(L, b, lower=True, trans=trans, check_finite=False)`` by the same LAPACK call
+    (``trtrs``, on the transpose for a C-ordered ``L``) without its wrapper's per-call checks (~30 µs each; the
+    structure search makes thousands of these solves on small blocks)."""
+    if L.flags.f_contiguous:
+        x, info = _TRTRS(L, b, overwrite_b=0, lower=1, trans=trans, unitdiag=0)
+    else:
+        x, info = _TRTRS(L.T, b, overwrite_b=0, lower=0, trans=int(not trans), unitdiag=0)
+    if info != 0:
+        raise np.linalg.LinAlgError(f"singular triangular factor (trtrs info {info})")
+    return x
+
+
+def _cho_solve_small(S: np.ndarray, b: np.ndarray):
+    """``cho_solve(cho_factor(S, lower=True), b)`` (check_finite off) by the same two LAPACK calls (``potrf``,
+    ``potrs``) without the wrappers; None when ``S`` has no Cholesky factor."""
+    c, info = _POTRF(S, lower=1, overwrite_a=0, clean=0)
+    if info > 0:
+        return None
+    if info < 0:  # pragma: no cover - a bad argument is a bug
+        raise ValueError(f"illegal value in argument {-info} of potrf")
+    x, info = _POTRS(c, b, lower=1, overwrite_b=0)
+    if info != 0:  # pragma: no cover
+        raise ValueError(f"illegal value in argument {-info} of potrs")
+    return x
+
+
+_POTRF, _POTRS, _TRTRS = sla.lapack.dpotrf, sla.lapack.dpotrs, sla.lapack.dtrtrs
+
+
+class _Extras:
+    """Index bookkeeping of one fold's live structures, shared by its strengths: the union of their extra
+    regressors, and per structure its extras' columns in that union and its ``R[e, e]`` block."""
+
+    def __init__(self, R, r, extras, live):
+        self.union = np.unique(np.concatenate([extras[i] for i in live])) if live else np.zeros(0, dtype=np.intp)
+        self.cols = {i: np.searchsorted(self.union, extras[i]) for i in live}
+        self.Ree = {i: R[np.ix_(extras[i], extras[i])] for i in live}
+        self.re = {i: r[extras[i]] for i in live}
+
+
+def _strength_betas(R, r, n_core: int, extras, live, alpha, factor, shared: _Extras | None = None) -> dict:
     """Standardised coefficients on ``[core, extras[i]]`` of each live structure at one strength, from the core's
-    factor by a block Cholesky step (None for a structure whose Schur complement has no factor)."""
+    factor by a block Cholesky step (None for a structure whose Schur complement has no factor). ``shared``: the
+    fold's :class:`_Extras` (made here when not given). The LAPACK calls of SciPy's wrappers, made directly."""
     L, z = factor
-    union_e = np.unique(np.concatenate([extras[i] for i in live])) if live else np.zeros(0, dtype=np.intp)
-    Xall = sla.solve_triangular(L, R[:n_core, union_e], lower=True, check_finite=False) if n_core else \
-        np.zeros((0, union_e.size))  # L⁻¹ R_core,e for every extra regressor at once
+    shared = _Extras(R, r, extras, live) if shared is None else shared
+    union_e = shared.union
+    Xall = _trsolve(L, R[:n_core, union_e]) if n_core and union_e.size else \
+        np.zeros((n_core, union_e.size))  # L⁻¹ R_core,e for every extra regressor at once
     out, back = {}, []
     for i in live:
         e = extras[i]
-        X = Xall[:, np.searchsorted(union_e, e)]
-        S = R[np.ix_(e, e)] - X.T @ X
-        S[np.diag_indices_from(S)] += alpha
-        try:
-            be = sla.cho_solve(sla.cho_factor(S, lower=True, check_finite=False), r[e] - X.T @ z,
-                               check_finite=False) if e.size else np.zeros((0, r.shape[1]))
-        except np.linalg.LinAlgError:
-            out[i] = None
+        if not e.size:
+            out[i] = np.zeros((0, r.shape[1]))
+            back.append((i, z))
             continue
+        X = Xall[:, shared.cols[i]]
+        XT = X.T
+        S = shared.Ree[i] - XT @ X
+        diagonal = S.reshape(-1)[:: S.shape[0] + 1]  # a view (S is a fresh C-ordered array)
+        diagonal += alpha
+        be = _cho_solve_small(S, shared.re[i] - XT @ z)
         out[i] = be
-        back.append((i, z - X @ be))
+        if be is not None:
+            back.append((i, z - X @ be))
     if back and n_core:  # the back substitutions of every structure in one triangular solve
-        bc = sla.solve_triangular(L, np.hstack([v for _i, v in back]), lower=True, trans="T", check_finite=False)
+        bc = _trsolve(L, np.hstack([v for _i, v in back]), trans=1)
         for j, (i, _v) in enumerate(back):
-            out[i] = np.vstack([bc[:, j * r.shape[1]:(j + 1) * r.shape[1]], out[i]])
+            out[i] = np.concatenate([bc[:, j * r.shape[1]:(j + 1) * r.shape[1]], out[i]])
     return out
 
 
@@ -123,11 +168,13 @@ def _fold_betas(R, r, n_core: int, extras, live, alphas, run: _Runner, order: st
     for j in range(min(run.n, len(alphas))):  # (a fresh core-sized array per strength costs page faults)
         buffers.put(buffer if j == 0 and buffer is not None else np.empty(Rc.shape, order=order))
 
+    shared = _Extras(R, r, extras, live)
+
     def one(alpha):
         buffer = buffers.get()
         try:
             factor = _core_factor(Rc, rc, alpha, buffer)
-            return _strength_betas(R, r, n_core, extras, live, alpha, factor) if factor is not None else {}
+            return _strength_betas(R, r, n_core, extras, live, alpha, factor, shared) if factor is not None else {}
         finally:
             buffers.put(buffer)
 
@@ -375,11 +422,8 @@ def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:
 
 def cv_table(errors: np.ndarray, alphas: np.ndarray, k: int) -> pd.DataFrame:
     """The cross-validation table of one structure from its ``(n_alphas, k)`` validation errors."""
-    table = pd.DataFrame({"alpha": alphas})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
-        table["mean_error"] = np.nanmean(errors, axis=1)
-        table["std_error"] = np.nanstd(errors, axis=1)
-    for f in range(k):
-        table[f"fold_{f}"] = errors[:, f]
-    return table
+        columns = {"alpha": alphas, "mean_error": np.nanmean(errors, axis=1), "std_error": np.nanstd(errors, axis=1)}
+    columns.update((f"fold_{f}", errors[:, f]) for f in range(k))
+    return pd.DataFrame(columns)  # one frame from all its columns (a column at a time costs ~1 ms each)

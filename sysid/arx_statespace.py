@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._windows import small_gemms
 from .statespace import StateSpaceModel
 
 __all__ = ["arx_to_state_space"]
@@ -80,3 +81,35 @@ def arx_to_state_space(
         A=A, B=B, C=C, D=D, K=K, innovation_cov=innovation_cov, sample_rate_hz=sample_rate_hz,
         past_steps=max(na, nu, 1), input_names=input_names, output_names=output_names, info=info or {},
     )
+
+
+def arx_recursion(ar_coefs, input_coefs, delay_samples: int, past_steps: int, up, yp, uf, intercept) -> np.ndarray:
+    """Predictions of the ARX recursion over the inputs ``uf`` ``(n, H, m)`` from past windows ``up``, ``yp`` of
+    exactly ``past_steps`` samples, fed its own predictions; ``ar_coefs`` ``(na, p, p)``, ``input_coefs``
+    ``(nb, p, m)`` as :func:`arx_to_state_space` takes them.
+
+    The input part of every step in one product of the ``(n·H × nb·m)`` lagged inputs (oldest first); then per
+    step one product of the last ``na`` outputs (one ``(n × na·p)`` row block of the time-major outputs, oldest
+    first) with the stacked ``[A_na … A_1]ᵀ``: one BLAS call per step for the whole batch (the sums of one
+    product per lag, to rounding).
+    """
+    na, nb, d, L = ar_coefs.shape[0], input_coefs.shape[0], int(delay_samples), int(past_steps)
+    n, H, p, m = yp.shape[0], uf.shape[1], input_coefs.shape[1], uf.shape[2]
+    if H == 0:
+        return np.zeros((n, 0, p))
+    U, Y = np.concatenate([up, uf], axis=1), np.concatenate([yp, np.zeros((n, H, p))], axis=1)
+    lagged = np.lib.stride_tricks.sliding_window_view(U[:, L - d - nb + 1: L - d + H], nb, axis=1)
+    lagged = np.ascontiguousarray(lagged.transpose(0, 1, 3, 2)).reshape(n * H, nb * m)
+    drive = small_gemms(lagged, np.ascontiguousarray(input_coefs[::-1].transpose(0, 2, 1).reshape(nb * m, p)))
+    drive = drive.reshape(n, H, p)
+    drive += intercept
+    if na == 0:
+        return drive
+    stacked = np.ascontiguousarray(ar_coefs[::-1].transpose(0, 2, 1).reshape(na * p, p))
+    acc = np.empty((n, p))
+    for k in range(L, L + H):
+        small_gemms(Y[:, k - na: k].reshape(n, na * p), stacked, acc)
+        acc += drive[:, k - L]
+        Y[:, k] = acc
+    return Y[:, L:]
+

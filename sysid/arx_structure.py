@@ -15,6 +15,8 @@ Order selection by cross-validation on data not used for the fit follows Ljung (
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 
@@ -71,22 +73,36 @@ def structure_candidates(est) -> tuple[list, dict]:
     return cands, grids
 
 
+def _curve(table) -> tuple:
+    """``(alpha, mean_error, std_error)`` arrays of a strength table (a DataFrame, or those three arrays)."""
+    if isinstance(table, tuple):
+        return table
+    return tuple(table[c].to_numpy() for c in ("alpha", "mean_error", "std_error"))
+
+
+def _errors_curve(errors: np.ndarray, alphas: np.ndarray) -> tuple:
+    """:func:`_curve` of ``cv_table(errors, alphas, k)`` without building the table (the same numbers)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows when no fold could be scored
+        return alphas, np.nanmean(errors, axis=1), np.nanstd(errors, axis=1)
+
+
 def structure_table(rows: list) -> pd.DataFrame:
     """One row per structure: its best strength's mean and spread of the validation error; the selected one first,
     then the others best first.
 
-    ``rows`` holds ``(na, nb, d, n_coef, cv_table)`` with ``cv_table`` as :meth:`RidgeArx._cross_validate` makes.
+    ``rows`` holds ``(na, nb, d, n_coef, cv_table)`` with ``cv_table`` as :meth:`RidgeArx._cross_validate` makes
+    (or its :func:`_curve`).
     """
     out = []
     for na, nb, d, n_coef, table in rows:
-        err = table["mean_error"].to_numpy()
+        alpha, err, std = _curve(table)
         if not np.isfinite(err).any():
-            out.append((na, nb, d, n_coef, float(table["alpha"].iloc[0]), np.inf, np.nan))
+            out.append((na, nb, d, n_coef, float(alpha[0]), np.inf, np.nan))
             continue
         best = np.flatnonzero(err <= np.nanmin(err) * (1 + 1e-12) + 1e-300)
-        i = int(best[np.argmax(table["alpha"].to_numpy()[best])])  # ties: the largest strength
-        out.append((na, nb, d, n_coef, float(table["alpha"].iloc[i]), float(err[i]),
-                    float(table["std_error"].iloc[i])))
+        i = int(best[np.argmax(alpha[best])])  # ties: the largest strength
+        out.append((na, nb, d, n_coef, float(alpha[i]), float(err[i]), float(std[i])))
     frame = pd.DataFrame(out, columns=["output_lags", "input_lags", "delay_samples", "n_coefficients", "alpha",
                                        "mean_error", "std_error"])
     frame = frame.sort_values(["mean_error", "n_coefficients", "alpha"], ascending=[True, True, False],
@@ -123,6 +139,17 @@ def edge_notes(chosen: dict, grids: dict, alpha: float, alphas: np.ndarray) -> t
 
 
 
+class _Tables(dict):
+    """``{structure: cv_table}`` of the scored candidates, each table made from its errors when it is asked for."""
+
+    def __init__(self, errors: dict, alphas: np.ndarray, k: int):
+        super().__init__(errors)
+        self.alphas, self.k = alphas, k
+
+    def __getitem__(self, structure):
+        return cv_table(super().__getitem__(structure), self.alphas, self.k)
+
+
 def _longest(c) -> int:
     na, nb, d = c
     return max(na, d + nb - 1)
@@ -147,12 +174,12 @@ def select_structure(est, session, candidates, alphas, keep: dict | None = None)
     errors = cv_errors([probs[i] for i in scored], folds, total, alphas) if scored else []
     found = dict(zip(scored, errors))
     empty = np.full((alphas.size, k), np.nan)
-    rows = [(*c, n_coef[i], cv_table(found.get(i, empty), alphas, k)) for i, (c, q) in
-            enumerate(zip(candidates, probs))]
+    # each candidate's strength curve from its errors; a table (a DataFrame, ~1 ms each) only for the chosen one
+    rows = [(*c, n_coef[i], _errors_curve(found.get(i, empty), alphas)) for i, c in enumerate(candidates)]
     structures = structure_table(rows)
     if keep is not None:
         keep.update(moments=(folds, total, k, _scheme, _shift), n_lags=n_lags,
-                    tables={candidates[i]: rows[i][4] for i in scored})
+                    tables=_Tables({candidates[i]: found[i] for i in scored}, alphas, k))
     top = structures.loc[structures["selected"]].iloc[0]
     return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
 

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from ._windows import window_batch
+from ._windows import small_gemms, window_batch
 from .exceptions import SessionError, UnstableModelError
 from .protocols import PredictionMaps
 
@@ -48,11 +48,12 @@ def markov_toeplitz(h, horizon_steps: int | None = None) -> np.ndarray:
     if h.ndim != 3 or not 0 <= N <= h.shape[0]:
         raise SessionError(f"markov_toeplitz needs Markov parameters of shape (n_steps >= {N}, p, m); got {h.shape}.")
     p, m = h.shape[1], h.shape[2]
-    T = np.zeros((N * p, N * m))
-    for i in range(N):
-        for j in range(i + 1):
-            T[i * p:(i + 1) * p, j * m:(j + 1) * m] = h[i - j]
-    return T
+    lag = np.arange(N)[:, None] - np.arange(N)[None, :]  # block (i, j) holds h[i - j] on and below the diagonal
+    T = np.zeros((N, p, N, m))
+    below = lag >= 0
+    rows, cols = np.nonzero(below)
+    T[rows, :, cols, :] = h[lag[below]]  # one gather and one scatter instead of a copy per block
+    return T.reshape(N * p, N * m)
 
 
 def kalman_gain(A, C, Q, R, S=None):
@@ -431,10 +432,27 @@ class StateSpaceModel:
             for w in range(W):
                 out[w] = self.predict(up[w], yp[w], uf[w])
             return out
-        maps = self.prediction_maps(n_past, H)
+        maps = self._cached_maps(n_past, H)
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
-        y = past @ maps.P.T + uf.reshape(W, -1) @ maps.F.T
+        y = small_gemms(past, maps.P.T) + small_gemms(uf.reshape(W, -1), maps.F.T)  # one BLAS thread each
         return y.reshape(W, uf.shape[1], self.n_outputs)
+
+    def _cached_maps(self, n_past: int, horizon_steps: int) -> PredictionMaps:
+        """:meth:`prediction_maps` for :meth:`predict_many`, kept per window shape: scoring calls it batch after
+        batch with the same shapes (a state map and a Toeplitz build each time). Keyed by the matrices' bytes as
+        well, so a model whose arrays were changed in place is not answered from stale maps; a few shapes kept."""
+        key = (int(n_past), int(horizon_steps), b"".join(np.ascontiguousarray(M).tobytes() for M in (
+            self.A, self.B, self.C, self.D, self.K)))
+        cache = self.__dict__.get("_maps_cache")
+        if cache is None:
+            cache = {}
+            object.__setattr__(self, "_maps_cache", cache)  # not a field: replace() and == ignore it
+        maps = cache.get(key)
+        if maps is None:
+            if len(cache) >= 4:
+                cache.clear()
+            maps = cache[key] = self.prediction_maps(n_past, horizon_steps)
+        return maps
 
     def impulse_response(self, n_steps: int) -> np.ndarray:
         """Markov parameters ``h[0] = D, h[k] = C A^(k−1) B``, shape (n_steps, n_outputs, n_inputs)."""

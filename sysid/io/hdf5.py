@@ -372,10 +372,22 @@ class SessionFile(TrialLayout):
         return mapped.read(start, stop)
 
     def _read_mask(self, start: int, stop: int) -> np.ndarray:
-        raw = np.asarray(self._open()["valid"][start:stop])
-        if raw.dtype != bool and not np.isin(raw, (0, 1)).all():
+        self._open()
+        raw = self._valid_all()[start:stop]
+        if raw.dtype != bool and raw.size and not (raw.min() >= 0 and raw.max() <= 1):  # only 0 and 1 (integers)
             self._fail("expected '/valid' to hold only 0 and 1; found other values.")
         return raw.astype(bool)
+
+    def _valid_all(self) -> np.ndarray:
+        """The whole ``/valid`` as stored, read at its first use and kept (one value per sample, a small share of
+        the data): an h5py read per window took ~3 ms under the interpreter lock, as long as the window's
+        arithmetic in a streaming fit. Windows are checked as they are read, as before."""
+        whole = self.__dict__.get("_valid_cache")
+        if whole is None:
+            whole = np.asarray(self._open()["valid"][()])
+            whole.setflags(write=False)
+            self._valid_cache = whole
+        return whole
 
     def _output_mask(self, n: int) -> "np.ndarray | None":
         """The optional ``/outputs_valid`` as bool (one byte per sample, read whole: small beside the data), or
