@@ -15,6 +15,7 @@ import pytest
 from stimsteer.sysid import Session
 from stimsteer.sysid._lagged import _lagged_gram, blas_controller, blas_thread_count, blas_threads
 from stimsteer.sysid.subspace import SubspaceId, factor, gram, heldout, prepare
+from stimsteer.sysid.subspace import nested as nested_orders
 
 
 def _session(noise, seed=1, T=6000, n_trials=6):
@@ -131,7 +132,7 @@ def test_nested_orders_give_the_pseudo_inverse_estimates_and_fall_back_to_them(m
     session = _session(noise=0.3)
     kw = dict(past_steps=6, future_steps=5, feedthrough=True)
     nested = _fit(monkeypatch, session, 0, **kw)
-    monkeypatch.setattr(factor, "_NESTED_RCOND", 2.0)  # rcond <= 1: nested() always declines
+    monkeypatch.setattr(nested_orders, "_NESTED_RCOND", 2.0)  # rcond <= 1: nested() always declines
     plain = _fit(monkeypatch, session, 0, **kw)
     assert nested.order_ == plain.order_
     np.testing.assert_allclose(nested.order_table_["heldout_error"], plain.order_table_["heldout_error"], rtol=1e-9)
