@@ -11,6 +11,8 @@ Identification for Linear Systems, Kluwer, sec. 4.3, for the estimates).
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import scipy.linalg as sla
 
@@ -29,17 +31,19 @@ class NestedOrders:
     def __init__(self, U: np.ndarray, singular_values: np.ndarray, p: int, rows):
         self.U, self.sv, self.p, self.rows = U, singular_values, p, rows
         self._cache = None
+        self._lock = threading.Lock()  # candidate orders may be fitted on several threads
 
     def _shifted(self, n: int):
         """``R`` of ``U₋ = Q R`` and ``Uᵀ Θ``, ``Qᵀ Θ₊``, ``Qᵀ U₊``, for the leading columns of ``U``. Kept for twice the
         orders asked, so memory follows the candidate orders, not the ``p f`` columns of ``U``."""
-        if self._cache is None or self._cache[0] < n:
-            k = min(self.U.shape[1], max(2 * n, 16))
-            U = self.U[:, :k]
-            theta, theta_next = self.rows()
-            Q, R = np.linalg.qr(U[:-self.p])
-            self._cache = (k, R, U.T @ theta, Q.T @ theta_next, Q.T @ U[self.p:])
-        return self._cache[1:]
+        with self._lock:
+            if self._cache is None or self._cache[0] < min(n, self.U.shape[1]):
+                k = min(self.U.shape[1], max(2 * n, 16))
+                U = self.U[:, :k]
+                theta, theta_next = self.rows()
+                Q, R = np.linalg.qr(U[:-self.p])
+                self._cache = (k, R, U.T @ theta, Q.T @ theta_next, Q.T @ U[self.p:])
+            return self._cache[1:]
 
     def __call__(self, n: int):
         """``(A, X0, X1)`` of order ``n``, or None when ``R_n`` is near rank deficiency."""

@@ -15,7 +15,7 @@ from ..statespace import kalman_gain
 from .gram import _Layout
 from .markov import normal_equations, normal_equations_gemm, pattern_blocks
 from .nested import NestedOrders
-from .riccati import conditioned_cholesky, doubling_gain
+from .riccati import conditioned_cholesky, doubling_gain, one_norm
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -243,23 +243,26 @@ _CHOLESKY_COND_MAX = 1e9
 def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     """``M⁻¹ rhs`` by Cholesky where ``M`` is clearly well conditioned (``n³/3`` flops, against the ``(4/3) n³``
     and more of its eigenvalues and the LU solve); None otherwise (the caller checks the eigenvalues)."""
-    F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
-    return None if F is None else sla.cho_solve(F, rhs, check_finite=False)
+    solved = _cholesky_solve(M, rhs)
+    return None if solved is None else solved[0]
 
 
-def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
-    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
+def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None):
+    """``(M⁻¹ rhs, lower Cholesky factor)`` as :func:`_solve_excited`, or None; ``factor``: a lower Cholesky factor
+    of ``M`` already at hand (the leading block of a larger system's), checked the same way."""
+    if factor is None:
+        F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
+    else:
+        rcond, info = sla.lapack.dpocon(factor, one_norm(M), uplo="L")
+        F = (factor, True) if info == 0 and rcond * _CHOLESKY_COND_MAX >= 1.0 else None
+    return None if F is None else (sla.cho_solve(F, rhs, check_finite=False), F[0])
 
-    Notes
-    -----
-    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
-    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
-    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
-    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
-    """
+
+def _normal_equations(proj: _Projection, A, C, Q, feedthrough: bool):
+    """``M`` and ``rhs`` of the ``θ = [vec(B); vec(D)]`` least squares (:func:`_b_d`'s Notes); symmetrised on an
+    ``exact`` projection, as before (elsewhere the solvers read its lower triangle only)."""
     L = proj.layout
     n, m, p = A.shape[0], L.m, L.p
-    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
     S_uu, S_yu = proj.future_cov
     Sc_uu, Sc_yu = proj.given_past
     if proj.exact and (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # the dense basis, as before
@@ -268,9 +271,15 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
         target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
         sums = normal_equations if proj.exact else normal_equations_gemm
         M, rhs = sums(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m, feedthrough)
-    M = 0.5 * (M + M.T)
-    theta = _solve_excited(M, rhs)
-    if theta is None:
+    return (0.5 * (M + M.T) if proj.exact else M), rhs
+
+
+def _solve_b_d(M, rhs, n: int, L: _Layout, feedthrough: bool, factor=None):
+    """``(B, D)`` and the Cholesky factor used (None: solved by LU) from the normal equations ``M θ = rhs``."""
+    m, p = L.m, L.p
+    solved = _cholesky_solve(M, rhs, factor)
+    if solved is None:
+        M = 0.5 * (M + M.T)  # (already symmetric on an exact projection: then the same numbers)
         lam = np.linalg.eigvalsh(M)
         if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
             raise ExcitationError(
@@ -279,10 +288,42 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
                 + f" (normal equations of condition {_cond_text(lam)}). "
                 "Use a richer stimulation schedule (`stimsteer schedule`), or a lower order."
             )
-        theta = np.linalg.solve(M, rhs)
+        solved = (np.linalg.solve(M, rhs), None)
+    theta = solved[0]
     B = theta[:n * m].reshape(n, m, order="F")
     D = theta[n * m:].reshape(p, m, order="F") if feedthrough else np.zeros((p, m))
-    return B, D
+    return (B, D), solved[1]
+
+
+def _b_d(proj: _Projection, gamma, A, C, feedthroughs: tuple, basis=None) -> dict:
+    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``, for each direct-term setting
+    in ``feedthroughs`` (``{setting: (B, D)}``).
+
+    Notes
+    -----
+    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
+    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
+    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
+    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
+
+    Without a direct term the unknowns are the leading ``n m`` of ``θ``: the equations are the leading block of
+    those with it, and their Cholesky factor the leading block of its factor, so both settings share one system
+    (not on an ``exact`` projection, whose models are computed as before).
+    """
+    L = proj.layout
+    n = A.shape[0]
+    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
+    out, shared = {}, None
+    for ft in sorted(feedthroughs, reverse=True):  # with the direct term first: the other is its leading block
+        if shared is not None:
+            k = n * L.m
+            M, rhs, F = shared[0][:k, :k], shared[1][:k], None if shared[2] is None else shared[2][:k, :k]
+        else:
+            (M, rhs), F = _normal_equations(proj, A, C, Q, ft), None
+        out[ft], F = _solve_b_d(M, rhs, n, L, ft, F)
+        if ft and not proj.exact:
+            shared = (M, rhs, F)
+    return out
 
 
 def _state_maps(proj: _Projection, gamma, states=None):
@@ -350,15 +391,23 @@ def _innovation_form(A, C, Q, R, Sx, doubling: bool = False):
 
 def _fit_order(proj: _Projection, n: int, feedthrough: bool):
     """All scaled-coordinate matrices of the order-``n`` model of one projection."""
+    return _fit_orders(proj, n, (feedthrough,))[feedthrough]
+
+
+def _fit_orders(proj: _Projection, n: int, feedthroughs: tuple) -> dict:
+    """:func:`_fit_order` for each direct-term setting in ``feedthroughs`` (``{setting: matrices}``); ``A``, ``C``,
+    the state maps and the ``B, D`` equations are shared."""
     gamma = proj.gamma(n)
     nested = proj.nested(n)
     if nested is None:
         A, C = _a_c(gamma, proj.layout.p)
-        B, D = _b_d(proj, gamma, A, C, feedthrough)
-        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
+        basis, states = None, None
     else:  # A and the state maps from one factorisation shared by the orders (:mod:`.nested`); range(Γ) = range(U_n)
         A, C = nested[0], gamma[:proj.layout.p].copy()
-        B, D = _b_d(proj, gamma, A, C, feedthrough, basis=proj.U[:, :n])
-        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=nested[1:])
-    K, Re, how = _innovation_form(A, C, Q, R, Sx, doubling=not proj.exact)
-    return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
+        basis, states = proj.U[:, :n], nested[1:]
+    out = {}
+    for ft, (B, D) in _b_d(proj, gamma, A, C, feedthroughs, basis).items():
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=states)
+        K, Re, how = _innovation_form(A, C, Q, R, Sx, doubling=not proj.exact)
+        out[ft] = {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
+    return out

@@ -35,14 +35,22 @@ _R_CONDITION = 1e8
 _RESIDUAL = 1e-10
 
 
+def one_norm(M: np.ndarray) -> float:
+    """``‖M‖₁`` (largest absolute column sum); of a C-ordered matrix as LAPACK's ∞-norm of its transpose (one
+    pass over the memory as laid out, no temporary)."""
+    if M.flags.c_contiguous and M.size:
+        return float(sla.lapack.dlange("I", M.T))
+    return float(np.abs(M).sum(axis=0).max())
+
+
 def conditioned_cholesky(M: np.ndarray, condition_max: float):
-    """SciPy's ``cho_factor`` of ``M`` (lower) when ``M`` is positive definite with LAPACK's 1-norm condition
-    estimate (``dpocon``) at most ``condition_max``; None otherwise."""
+    """SciPy's ``cho_factor`` of ``M`` (lower; only the lower triangle is read) when ``M`` is positive definite with
+    LAPACK's 1-norm condition estimate (``dpocon``) at most ``condition_max``; None otherwise."""
     try:
         F = sla.cho_factor(M, lower=True, check_finite=False)
     except np.linalg.LinAlgError:
         return None
-    rcond, info = sla.lapack.dpocon(F[0], float(np.abs(M).sum(axis=0).max()), uplo="L")
+    rcond, info = sla.lapack.dpocon(F[0], one_norm(M), uplo="L")
     return F if info == 0 and rcond * condition_max >= 1.0 else None
 
 

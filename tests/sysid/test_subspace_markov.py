@@ -103,7 +103,7 @@ def test_b_d_at_a_long_future_window_stays_small_in_memory():
     _ = proj.given_past  # cached covariances, not part of the B, D step
     tracemalloc.start()
     try:
-        projection._b_d(proj, gamma, A, C, feedthrough=True)
+        projection._b_d(proj, gamma, A, C, (True,))
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
