@@ -71,11 +71,11 @@ def _doubling(Ab, Qb, G):
     eye = np.eye(n)
     stop = _VANISHED * (1.0 + np.abs(Ab).sum(axis=0).max())
     for _ in range(_MAX_STEPS):
-        try:
-            lu = sla.lu_factor(eye + Gk @ Hk, check_finite=False)
+        try:  # one LU for both right-hand sides (one call: at small n the calls cost more than the flops)
+            Y = np.linalg.solve(eye + Gk @ Hk, np.concatenate([Ak, Gk], axis=1))
         except (np.linalg.LinAlgError, ValueError):
             return None
-        Y1, Y2 = sla.lu_solve(lu, Ak, check_finite=False), sla.lu_solve(lu, Gk, check_finite=False)
+        Y1, Y2 = Y[:, :n], Y[:, n:]
         Hk = Hk + Ak.T @ (Hk @ Y1)
         Gk = Gk + Ak @ Y2 @ Ak.T
         Ak = Ak @ Y1
