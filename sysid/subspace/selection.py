@@ -26,8 +26,9 @@ def score_orders(proj, check, layout, orders, feedthroughs: tuple, workers: int 
     """``{setting: [(held-out error, stable), …]}`` of the candidate ``orders`` fitted on ``proj``, for each direct-term
     setting in ``feedthroughs`` (both settings of an order share its equations: :func:`~.projection._fit_orders`).
 
-    With ``workers >= 2`` the orders are fitted on that many threads (BLAS on one thread each; NumPy and LAPACK
-    release the GIL): every order is computed as on one thread, so the numbers do not depend on ``workers``.
+    With ``workers >= 2`` the orders are fitted on that many threads (BLAS on one thread each; matrix products and
+    SciPy's LAPACK calls release the GIL): every order is computed as on one thread, so the numbers do not depend
+    on ``workers``.
     """
     def one(n):
         fits = _fit_orders(proj, n, feedthroughs)
