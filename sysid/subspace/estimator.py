@@ -15,9 +15,8 @@ from ..exceptions import ExcitationError, InvalidParameterError, SessionError, S
 from ..protocols import PredictionMaps
 from .._offsets import ShiftedOutputs as _ShiftedOutputs, output_mean as _output_mean
 from ..statespace import StateSpaceModel
-from .._lagged import blas_threads
+from .._lagged import blas_thread_count, blas_threads
 from .gram import _Layout
-from .heldout import _heldout_error
 from .prepare import projections
 from .projection import _fit_order
 from .selection import choose_stable, order_tables
@@ -30,6 +29,9 @@ _SELECTION_DEFAULTS = {"holdout_fraction": 0.25, "tolerance": 0.05, "seed": 0}
 _DEFAULT_ORDER_CAP = 10
 # Singular values below this share of the largest are rounding noise: orders beyond them are not supported by data.
 _SV_RTOL = 1e-8
+#: Hankel rows from which the candidate orders are fitted on several threads (below, each order is too small for
+#: threads to pay: most of its time holds the GIL).
+_THREADED_FROM = 512
 _TABLE_COLUMNS = ("order", "singular_value", "gap_ratio", "heldout_error", "stable", "selected")
 
 
@@ -216,6 +218,8 @@ class SubspaceId(BasePredictor):
         offset = _output_mean(session) if self.centre_outputs else np.zeros(int(session.n_outputs))
         if self.centre_outputs:
             session = _ShiftedOutputs(session, offset)
+        # large candidate orders are fitted on as many threads as BLAS had (one in a bench worker)
+        cfg["workers"] = blas_thread_count() if cfg["layout"].nz >= _THREADED_FROM else 1
         proj_all, proj_fit, check, scale, how, n_columns = projections(session, cfg, self.weighting)
         with blas_threads(1):  # small dense problems: threads only wait on each other at this size
             self._identify(session, cfg, proj_all, proj_fit, check, scale, how, n_columns)
@@ -259,21 +263,6 @@ class SubspaceId(BasePredictor):
             )
         cfg["supported"] = rank
         return min(cfg["top"], rank)
-
-    def _order_table(self, proj_fit, S_check, sv, cfg, start) -> pd.DataFrame:
-        L = cfg["layout"]
-        rows = []
-        floor = np.finfo(float).eps * max(float(sv[0]), np.finfo(float).tiny)
-        for n in range(start, cfg["top"] + 1):
-            mats = _fit_order(proj_fit, n, self.feedthrough_)
-            rows.append({
-                "order": n,
-                "singular_value": float(sv[n - 1]),
-                "gap_ratio": float(sv[n - 1] / max(sv[n], floor)),
-                "heldout_error": _heldout_error(mats, S_check, L),
-                "stable": bool(np.max(np.abs(np.linalg.eigvals(mats["A"]))) < 1.0),
-            })
-        return pd.DataFrame(rows)
 
     def _store(self, mats, scale, session, L, order, sv, table, how, n_columns) -> None:
         su, sy = scale[:L.m], scale[L.m:]

@@ -31,12 +31,8 @@ import numpy as np
 import scipy.linalg as sla
 
 from .gram import _Layout
+from .nested import NestedOrders
 from .projection import _CHOLESKY_CONDITION, _psd_parts
-
-
-#: Smallest reciprocal condition number (1-norm estimate) of ``R_n`` for :meth:`_FactorProjection.nested`; below it the
-#: pseudo-inverses of before (with their cut-off) are used (common practice, no source).
-_NESTED_RCOND = 1e-8
 
 
 def _one_norm(S: np.ndarray, band: int = 512) -> float:
@@ -92,9 +88,8 @@ class _FactorProjection:
     can be freed after construction; :meth:`decompose` then takes the SVD.
     """
 
-    #: every candidate order's ``B, D`` sums by matrix products (:func:`.markov.normal_equations` with ``gemm``) and
-    #: its Kalman gain by doubling first (:mod:`.riccati`)
-    large = True
+    #: every candidate order by the nested orders, the structured sums and the doubling Riccati solver
+    exact = False
 
     def __init__(self, Lf: np.ndarray, S_uu, S_yu, S_yy, layout: _Layout, weighting: str):
         L, k = layout, _Blocks(layout)
@@ -139,45 +134,18 @@ class _FactorProjection:
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U
         self.w_inv = w_inv
-        self._shift_cache = None
+        self._nested = None if w_inv is not None else NestedOrders(
+            U, self.singular_values, self.layout.p, lambda: (self.theta_rows, self.theta_next_rows))
 
     def gamma(self, n: int) -> np.ndarray:
         """Extended observability matrix for order ``n``, shape (p f, n)."""
         G = self.U[:, :n] * np.sqrt(self.singular_values[:n])
         return G if self.w_inv is None else self.w_inv @ G
 
-    def _shifted(self, n: int):
-        """The QR ``U₋ = Q R`` of the leading columns of ``U`` without its last block row and the products every order
-        up to ``n`` shares: ``Uᵀ Θ``, ``Qᵀ Θ₊`` and ``Qᵀ U₊`` (``U₊``: ``U`` without its first block row). Kept for
-        twice the orders asked (the leading blocks of a QR do not depend on the columns after them), so memory
-        follows the candidate orders, not the ``p f`` columns of ``U``."""
-        if self._shift_cache is None or self._shift_cache[0] < n:
-            p, k = self.layout.p, min(self.U.shape[1], max(2 * n, 16))
-            U = self.U[:, :k]
-            Q, R = np.linalg.qr(U[:-p])
-            self._shift_cache = (k, R, U.T @ self.theta_rows, Q.T @ self.theta_next_rows, Q.T @ U[p:])
-        return self._shift_cache[1:]
-
     def nested(self, n: int):
-        """``(A, X0, X1)`` of order ``n`` from the leading blocks of one factorisation shared by every order, or None
-        (CVA weighting, or ``Γ₋`` of order ``n`` near rank deficiency: then the pseudo-inverses of before).
-
-        With ``Γ = U_n S_n^{1/2}`` (orthonormal ``U``) and ``U₋ = Q R``: ``Γ⁺ = S_n^{-1/2} U_nᵀ`` and
-        ``Γ₋⁺ = S_n^{-1/2} R_n⁻¹ Q_nᵀ``, so the shift-invariance solution ``A = Γ₋⁺ Γ₊`` and the state maps
-        ``X0 = Γ⁺ Θ``, ``X1 = Γ₋⁺ Θ₊`` of every order are leading blocks of products taken once (the regressors of
-        order ``n`` are the first ``n`` of the largest order).
-        """
-        if self.w_inv is not None:
-            return None
-        R, ut_theta, qt_next, qt_up = self._shifted(n)
-        Rn = R[:n, :n]
-        rcond, info = sla.lapack.dtrcon(Rn, norm="1", uplo="U")
-        if info != 0 or not rcond > _NESTED_RCOND:
-            return None
-        root = np.sqrt(self.singular_values[:n])
-        A = sla.solve_triangular(Rn, qt_up[:n, :n], check_finite=False) * (root[None, :] / root[:, None])
-        X1 = sla.solve_triangular(Rn, qt_next[:n], check_finite=False) / root[:, None]
-        return A, ut_theta[:n] / root[:, None], X1
+        """``(A, X0, X1)`` of order ``n`` from one factorisation shared by every order (:mod:`.nested`), or None
+        (CVA weighting, or ``Γ₋`` of order ``n`` near rank deficiency: then the pseudo-inverses of before)."""
+        return None if self._nested is None else self._nested(n)
 
     def residual_covariances(self, gamma, A, B, C, D, states=None):
         """``Q, R, S`` of the state- and output-equation residuals (as :func:`~.projection._noise`); ``states``: the

@@ -5,7 +5,9 @@ Two routes give the same projections (to rounding): Grams of ``_FACTOR_FROM`` ro
 number is below ``_CHOLESKY_CONDITION`` take the factor route (:mod:`.factor`: one Cholesky factor per Gram, Grams
 assembled one at a time from the lag sums in the factor order and freed once factored, so at most one Gram-sized
 array and the held-out Gram are held); smaller or ill-conditioned ones the covariance route
-(:class:`~.projection._Projection`, exactly as before, with the Grams in time-major order).
+(:class:`~.projection._Projection`, with the Grams in time-major order): its models (from all training data) are
+computed exactly as before, bit for bit; its candidate orders on the fitting part, which only score, take the
+faster computations of the same equations (nested orders, structured sums, doubling Riccati solver).
 """
 
 from __future__ import annotations
@@ -71,8 +73,9 @@ def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
                                                              (G_check, n_check)))
     for S in (S_all, S_fit):
         check_excitation(S[np.ix_(L.Uf, L.Uf)], L)
-    return (_Projection(S_all, L, weighting), _Projection(S_fit, L, weighting), _CheckCov.time_major(S_check, L),
-            scale)
+    # the models handed out come from all data, bit for bit as before; the fitting part's orders only score
+    return (_Projection(S_all, L, weighting, exact=True), _Projection(S_fit, L, weighting),
+            _CheckCov.time_major(S_check, L), scale)
 
 
 def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str):

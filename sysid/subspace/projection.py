@@ -11,10 +11,11 @@ import numpy as np
 import scipy.linalg as sla
 
 from ..exceptions import ExcitationError, StimsteerWarning
-from ..statespace import kalman_gain, markov_toeplitz
+from ..statespace import kalman_gain
 from .gram import _Layout
 from .markov import normal_equations, normal_equations_gemm, pattern_blocks
-from .riccati import conditioned_cholesky, doubling_gain
+from .nested import NestedOrders
+from .riccati import conditioned_cholesky, doubling_gain, one_norm
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -109,20 +110,23 @@ class _Projection:
     - CVA:   ``Σ_{YfYf|U}^{−1/2} O Π_{Uf⊥}``; its singular values are canonical correlations.
 
     ``Γ = W1⁻¹ U₁ S₁^{1/2}`` for the leading ``n`` singular triplets.
+
+    ``exact=True`` (the projection of all training data, whose fits are the models handed out) keeps the
+    computations of before bit for bit: ``A`` and the state maps by pseudo-inverses, the dense basis of ``B, D``, the
+    QZ Riccati route. Otherwise (the fitting part's candidate orders, which only score) the nested orders, the
+    structured sums and the doubling Riccati solver: the same equations, equal to rounding (tested).
     """
 
     def nested(self, n: int):
-        """None: this route computes every order on its own (:meth:`.factor._FactorProjection.nested`)."""
-        return None
+        """``(A, X0, X1)`` of order ``n`` (``X0`` on the columns ``P``, ``X1`` on ``P1``) from one QR shared by every
+        order (:mod:`.nested`), or None (CVA weighting, or ``Γ₋`` near rank deficiency: the pseudo-inverses)."""
+        return None if self._nested is None else self._nested(n)
 
-    #: small problems keep the computations of before bit for bit (the factor route's large ones take faster sums
-    #: and solvers of the same equations, which round differently)
-    large = False
-
-    def __init__(self, S: np.ndarray, layout: _Layout, weighting: str):
+    def __init__(self, S: np.ndarray, layout: _Layout, weighting: str, exact: bool = False):
         L = layout
         self.S = S
         self.layout = L
+        self.exact = exact
         Sc_pp = _conditional(S, L.P, L.P, L.Uf)
         Sc_yp = _conditional(S, L.Yf, L.P, L.Uf)
         inv_pp = _PsdInverse(Sc_pp)
@@ -142,6 +146,8 @@ class _Projection:
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U
         self.w_inv = w_inv
+        self._nested = None if w_inv is not None or exact else NestedOrders(
+            U, self.singular_values, L.p, lambda: (self.theta, self.theta_next))
 
     @functools.cached_property
     def _past(self) -> _PsdInverse:
@@ -161,9 +167,10 @@ class _Projection:
         S, L = self.S, self.layout
         return S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
 
-    def residual_covariances(self, gamma, A, B, C, D):
-        """``Q, R, S`` of the state- and output-equation residuals (:func:`_noise`)."""
-        return _noise(self, gamma, A, B, C, D)
+    def residual_covariances(self, gamma, A, B, C, D, states=None):
+        """``Q, R, S`` of the state- and output-equation residuals (:func:`_noise`); ``states``: the state maps
+        ``(X0, X1)`` of :meth:`nested` when known."""
+        return _noise(self, gamma, A, B, C, D, states)
 
     @functools.cached_property
     def theta_next(self) -> np.ndarray:
@@ -179,37 +186,30 @@ class _Projection:
 
 
 # ----------------------------------------------------------------------------------------------------- estimation
-def _a_c(gamma: np.ndarray, p: int):
-    """``C`` = first block row of Γ; ``A`` from the shift invariance ``Γ_up A = Γ_down`` by least squares."""
-    C = gamma[:p].copy()
-    A = np.linalg.lstsq(gamma[:-p], gamma[p:], rcond=None)[0]
-    return A, C
-
-
 def _toeplitz_basis(A, C, layout: _Layout, feedthrough: bool) -> np.ndarray:
     """Basis ``H_k`` of the block-Toeplitz matrix of Markov parameters, linear in ``θ = [vec(B); vec(D)]``.
 
-    Shape (n_theta, p f, m f); ``vec`` is column-major, so ``B = θ[:n m].reshape(n, m, order="F")``.
+    Shape (n_theta, p f, m f); ``vec`` is column-major, so ``B = θ[:n m].reshape(n, m, order="F")``. Block
+    ``(r, s)`` of the basis matrix of ``B = e_j e_lᵀ`` holds ``C A^(r−s−1) e_j`` in column ``l`` (``r > s``); that of
+    ``D = e_a e_lᵀ`` holds ``e_a`` in column ``l`` of the diagonal blocks (``markov_toeplitz`` of each unknown's
+    Markov parameters, written by blocks).
     """
     n, m, p, f = A.shape[0], layout.m, layout.p, layout.f
     CA = [C]
     for _ in range(f - 2):
         CA.append(CA[-1] @ A)
     n_theta = n * m + (p * m if feedthrough else 0)
-    Hs = np.zeros((n_theta, p * f, m * f))
-    for l in range(m):
-        for j in range(n):
-            h = np.zeros((f, p, m))  # Markov parameters of B = e_j e_lᵀ (D = 0): h[r] = C A^(r-1) B
-            for r in range(1, f):
-                h[r][:, l] = CA[r - 1][:, j]
-            Hs[l * n + j] = markov_toeplitz(h)
+    Hs = np.zeros((n_theta, f, p, f, m))  # [unknown, block row r, output, block column s, input]
+    for t in range(1, f):
+        block = CA[t - 1].T  # (n, p): unknowns j of one input against the outputs
+        for s in range(f - t):
+            for l in range(m):
+                Hs[l * n:(l + 1) * n, s + t, :, s, l] = block
     if feedthrough:
-        for l in range(m):
-            for a in range(p):
-                h = np.zeros((f, p, m))  # D = e_a e_lᵀ (B = 0): only h[0]
-                h[0][a, l] = 1.0
-                Hs[n * m + l * p + a] = markov_toeplitz(h)
-    return Hs
+        a, l = np.meshgrid(np.arange(p), np.arange(m), indexing="ij")
+        for r in range(f):
+            Hs[n * m + l * p + a, r, a, r, l] = 1.0
+    return Hs.reshape(n_theta, p * f, m * f)
 
 
 #: Largest dense Toeplitz basis (doubles) :func:`_b_d` builds; beyond it the structured sums of markov.py are used.
@@ -226,6 +226,13 @@ def _dense_normal_equations(A, C, L: _Layout, feedthrough, Q, S_uu, S_yu, Sc_uu,
     return flat @ image.reshape(Hs.shape[0], -1).T, flat @ target.reshape(-1)
 
 
+def _a_c(gamma: np.ndarray, p: int):
+    """``C`` = first block row of Γ; ``A`` from the shift invariance ``Γ_up A = Γ_down`` by least squares."""
+    C = gamma[:p].copy()
+    A = np.linalg.lstsq(gamma[:-p], gamma[p:], rcond=None)[0]
+    return A, C
+
+
 #: Largest estimated 1-norm condition number of the ``B, D`` normal equations solved by Cholesky without their
 #: eigenvalues: 1000 times below the rule's 1e12 (the 2-norm condition is at most the 1-norm one, and LAPACK's
 #: estimate is within a factor of a few of it; Higham 2002, Accuracy and Stability of Numerical Algorithms,
@@ -236,34 +243,43 @@ _CHOLESKY_COND_MAX = 1e9
 def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     """``M⁻¹ rhs`` by Cholesky where ``M`` is clearly well conditioned (``n³/3`` flops, against the ``(4/3) n³``
     and more of its eigenvalues and the LU solve); None otherwise (the caller checks the eigenvalues)."""
-    F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
-    return None if F is None else sla.cho_solve(F, rhs, check_finite=False)
+    solved = _cholesky_solve(M, rhs)
+    return None if solved is None else solved[0]
 
 
-def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
-    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``.
+def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None):
+    """``(M⁻¹ rhs, lower Cholesky factor)`` as :func:`_solve_excited`, or None; ``factor``: a lower Cholesky factor
+    of ``M`` already at hand (the leading block of a larger system's), checked the same way."""
+    if factor is None:
+        F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
+    else:
+        rcond, info = sla.lapack.dpocon(factor, one_norm(M), uplo="L")
+        F = (factor, True) if info == 0 and rcond * _CHOLESKY_COND_MAX >= 1.0 else None
+    return None if F is None else (sla.cho_solve(F, rhs, check_finite=False), F[0])
 
-    Notes
-    -----
-    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
-    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
-    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
-    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
-    """
+
+def _normal_equations(proj: _Projection, A, C, Q, feedthrough: bool):
+    """``M`` and ``rhs`` of the ``θ = [vec(B); vec(D)]`` least squares (:func:`_b_d`'s Notes); symmetrised on an
+    ``exact`` projection, as before (elsewhere the solvers read its lower triangle only)."""
     L = proj.layout
     n, m, p = A.shape[0], L.m, L.p
-    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
     S_uu, S_yu = proj.future_cov
     Sc_uu, Sc_yu = proj.given_past
-    if (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # small: the dense basis, as before
+    if proj.exact and (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # the dense basis, as before
         M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
     else:  # the same sums taken over the block-Toeplitz structure (markov.py)
         target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
-        sums = normal_equations_gemm if proj.large else normal_equations
+        sums = normal_equations if proj.exact else normal_equations_gemm
         M, rhs = sums(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m, feedthrough)
-    M = 0.5 * (M + M.T)
-    theta = _solve_excited(M, rhs)
-    if theta is None:
+    return (0.5 * (M + M.T) if proj.exact else M), rhs
+
+
+def _solve_b_d(M, rhs, n: int, L: _Layout, feedthrough: bool, factor=None):
+    """``(B, D)`` and the Cholesky factor used (None: solved by LU) from the normal equations ``M θ = rhs``."""
+    m, p = L.m, L.p
+    solved = _cholesky_solve(M, rhs, factor)
+    if solved is None:
+        M = 0.5 * (M + M.T)  # (already symmetric on an exact projection: then the same numbers)
         lam = np.linalg.eigvalsh(M)
         if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
             raise ExcitationError(
@@ -272,35 +288,69 @@ def _b_d(proj: _Projection, gamma, A, C, feedthrough: bool, basis=None):
                 + f" (normal equations of condition {_cond_text(lam)}). "
                 "Use a richer stimulation schedule (`stimsteer schedule`), or a lower order."
             )
-        theta = np.linalg.solve(M, rhs)
+        solved = (np.linalg.solve(M, rhs), None)
+    theta = solved[0]
     B = theta[:n * m].reshape(n, m, order="F")
     D = theta[n * m:].reshape(p, m, order="F") if feedthrough else np.zeros((p, m))
-    return B, D
+    return (B, D), solved[1]
 
 
-def _state_maps(proj: _Projection, gamma):
+def _b_d(proj: _Projection, gamma, A, C, feedthroughs: tuple, basis=None) -> dict:
+    """``B`` and ``D`` by least squares on the block-Hankel data given ``A`` and ``C``, for each direct-term setting
+    in ``feedthroughs`` (``{setting: (B, D)}``).
+
+    Notes
+    -----
+    Minimises ``‖Yf − Γ Z Wp − H(B, D) Uf‖²`` over ``B``, ``D`` and the free map ``Z`` from the past to the column
+    states. Eliminating ``Z`` leaves ``tr(P₁ R Π_{Wp⊥} Rᵀ) + tr(P₂ R Rᵀ)``, ``R = Yf − H Uf``, ``P₁`` the projector
+    on range(Γ) and ``P₂ = I − P₁``: a quadratic in ``θ`` written with Hankel covariances only. Exact for
+    noise-free data; consistent for open-loop data, where future noise is uncorrelated with past and future inputs.
+
+    Without a direct term the unknowns are the leading ``n m`` of ``θ``: the equations are the leading block of
+    those with it, and their Cholesky factor the leading block of its factor, so both settings share one system
+    (not on an ``exact`` projection, whose models are computed as before).
+    """
+    L = proj.layout
+    n = A.shape[0]
+    Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
+    out, shared = {}, None
+    for ft in sorted(feedthroughs, reverse=True):  # with the direct term first: the other is its leading block
+        if shared is not None:
+            k = n * L.m
+            M, rhs, F = shared[0][:k, :k], shared[1][:k], None if shared[2] is None else shared[2][:k, :k]
+        else:
+            (M, rhs), F = _normal_equations(proj, A, C, Q, ft), None
+        out[ft], F = _solve_b_d(M, rhs, n, L, ft, F)
+        if ft and not proj.exact:
+            shared = (M, rhs, F)
+    return out
+
+
+def _state_maps(proj: _Projection, gamma, states=None):
     """Linear maps from a Hankel column ``z`` to the estimated states at its first and second future sample.
 
     ``x̂_t = Γ⁺ Θ Wp`` and ``x̂_{t+1} = Γ₋⁺ Θ₊ Wp₊`` (past one step longer, future one shorter, Γ₋ = Γ without its
-    last block row): Van Overschee & De Moor 1996, sec. 4.3.
+    last block row): Van Overschee & De Moor 1996, sec. 4.3. ``states``: ``(Γ⁺ Θ, Γ₋⁺ Θ₊)`` when known.
     """
     L = proj.layout
+    if states is None:
+        states = (np.linalg.pinv(gamma) @ proj.theta, np.linalg.pinv(gamma[:-L.p]) @ proj.theta_next)
     n = gamma.shape[1]
     X0 = np.zeros((n, L.nz))
-    X0[:, L.P] = np.linalg.pinv(gamma) @ proj.theta
+    X0[:, L.P] = states[0]
     X1 = np.zeros((n, L.nz))
-    X1[:, L.P1] = np.linalg.pinv(gamma[:-L.p]) @ proj.theta_next
+    X1[:, L.P1] = states[1]
     return X0, X1
 
 
-def _noise(proj: _Projection, gamma, A, B, C, D):
+def _noise(proj: _Projection, gamma, A, B, C, D, states=None):
     """Process, measurement and cross covariances of the state-equation and output-equation residuals."""
     L, S = proj.layout, proj.S
-    X0, X1 = _state_maps(proj, gamma)
+    X0, X1 = _state_maps(proj, gamma, states)
     Eu, Ey = L.select(L.u0), L.select(L.y0)
     # every map lives on the columns of the past one block longer (P1 holds u0 and y0), the leading k rows and
     # columns of the time-major Hankel layout: S restricted to them is a view
-    k = (L.i + 1) * L.c if L.nz >= _CHOLESKY_FROM else L.nz  # (small: the whole of S, as before)
+    k = L.nz if proj.exact and L.nz < _CHOLESKY_FROM else (L.i + 1) * L.c  # (small, exact: all of S, as before)
     Wmap = (X1 - A @ X0 - B @ Eu)[:, :k]
     Vmap = (Ey - C @ X0 - D @ Eu)[:, :k]
     Sk = S[:k, :k]
@@ -311,8 +361,8 @@ def _noise(proj: _Projection, gamma, A, B, C, D):
 def _innovation_form(A, C, Q, R, Sx, doubling: bool = False):
     """Steady-state Kalman gain and innovation covariance; ``K = 0`` for (numerically) noise-free data.
 
-    ``doubling`` (the factor route's many large candidate orders) tries the doubling solver first
-    (:mod:`.riccati`); it falls back to the QZ route, and that one to ``K = 0``, as before.
+    ``doubling`` (every candidate order and the factor route) tries the doubling solver first (:mod:`.riccati`); it
+    falls back to the QZ route, and that one to ``K = 0``, as before.
     """
     joint = np.block([[Q, Sx], [Sx.T, R]])
     # max |λ| of the symmetric joint lies between its largest diagonal entry and its Frobenius norm: the
@@ -341,15 +391,23 @@ def _innovation_form(A, C, Q, R, Sx, doubling: bool = False):
 
 def _fit_order(proj: _Projection, n: int, feedthrough: bool):
     """All scaled-coordinate matrices of the order-``n`` model of one projection."""
+    return _fit_orders(proj, n, (feedthrough,))[feedthrough]
+
+
+def _fit_orders(proj: _Projection, n: int, feedthroughs: tuple) -> dict:
+    """:func:`_fit_order` for each direct-term setting in ``feedthroughs`` (``{setting: matrices}``); ``A``, ``C``,
+    the state maps and the ``B, D`` equations are shared."""
     gamma = proj.gamma(n)
     nested = proj.nested(n)
     if nested is None:
         A, C = _a_c(gamma, proj.layout.p)
-        B, D = _b_d(proj, gamma, A, C, feedthrough)
-        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D)
-    else:  # the factor route: A and the state maps from one factorisation shared by the orders; range(Γ) = range(U_n)
+        basis, states = None, None
+    else:  # A and the state maps from one factorisation shared by the orders (:mod:`.nested`); range(Γ) = range(U_n)
         A, C = nested[0], gamma[:proj.layout.p].copy()
-        B, D = _b_d(proj, gamma, A, C, feedthrough, basis=proj.U[:, :n])
-        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=nested[1:])
-    K, Re, how = _innovation_form(A, C, Q, R, Sx, proj.large)
-    return {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
+        basis, states = proj.U[:, :n], nested[1:]
+    out = {}
+    for ft, (B, D) in _b_d(proj, gamma, A, C, feedthroughs, basis).items():
+        Q, R, Sx = proj.residual_covariances(gamma, A, B, C, D, states=states)
+        K, Re, how = _innovation_form(A, C, Q, R, Sx, doubling=not proj.exact)
+        out[ft] = {"A": A, "B": B, "C": C, "D": D, "K": K, "Re": Re, "Q": Q, "R": R, "S": Sx, "gain": how}
+    return out

@@ -35,14 +35,22 @@ _R_CONDITION = 1e8
 _RESIDUAL = 1e-10
 
 
+def one_norm(M: np.ndarray) -> float:
+    """``‖M‖₁`` (largest absolute column sum); of a C-ordered matrix as LAPACK's ∞-norm of its transpose (one
+    pass over the memory as laid out, no temporary)."""
+    if M.flags.c_contiguous and M.size:
+        return float(sla.lapack.dlange("I", M.T))
+    return float(np.abs(M).sum(axis=0).max())
+
+
 def conditioned_cholesky(M: np.ndarray, condition_max: float):
-    """SciPy's ``cho_factor`` of ``M`` (lower) when ``M`` is positive definite with LAPACK's 1-norm condition
-    estimate (``dpocon``) at most ``condition_max``; None otherwise."""
+    """SciPy's ``cho_factor`` of ``M`` (lower; only the lower triangle is read) when ``M`` is positive definite with
+    LAPACK's 1-norm condition estimate (``dpocon``) at most ``condition_max``; None otherwise."""
     try:
         F = sla.cho_factor(M, lower=True, check_finite=False)
     except np.linalg.LinAlgError:
         return None
-    rcond, info = sla.lapack.dpocon(F[0], float(np.abs(M).sum(axis=0).max()), uplo="L")
+    rcond, info = sla.lapack.dpocon(F[0], one_norm(M), uplo="L")
     return F if info == 0 and rcond * condition_max >= 1.0 else None
 
 
@@ -63,11 +71,11 @@ def _doubling(Ab, Qb, G):
     eye = np.eye(n)
     stop = _VANISHED * (1.0 + np.abs(Ab).sum(axis=0).max())
     for _ in range(_MAX_STEPS):
-        try:
-            lu = sla.lu_factor(eye + Gk @ Hk, check_finite=False)
+        try:  # one LU for both right-hand sides (one call: at small n the calls cost more than the flops)
+            Y = np.linalg.solve(eye + Gk @ Hk, np.concatenate([Ak, Gk], axis=1))
         except (np.linalg.LinAlgError, ValueError):
             return None
-        Y1, Y2 = sla.lu_solve(lu, Ak, check_finite=False), sla.lu_solve(lu, Gk, check_finite=False)
+        Y1, Y2 = Y[:, :n], Y[:, n:]
         Hk = Hk + Ak.T @ (Hk @ Y1)
         Gk = Gk + Ak @ Y2 @ Ak.T
         Ak = Ak @ Y1

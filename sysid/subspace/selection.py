@@ -11,21 +11,60 @@ ch. 16; preferring a stable model for free-run prediction is common practice (no
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pandas as pd
 
-from .projection import _fit_order
+from .heldout import _heldout_error
+from .projection import _fit_order, _fit_orders
 
-__all__ = ["choose_stable", "grow_cap", "order_tables"]
+__all__ = ["choose_stable", "order_tables", "score_orders"]
 
 
-def grow_cap(est, table, proj_fit, S_check, sv, cfg, notes):
-    """Raise the default order cap while the held-out error is lowest at it; say so when a cap still binds."""
+def score_orders(proj, check, layout, orders, feedthroughs: tuple, workers: int = 1) -> dict:
+    """``{setting: [(held-out error, stable), …]}`` of the candidate ``orders`` fitted on ``proj``, for each direct-term
+    setting in ``feedthroughs`` (both settings of an order share its equations: :func:`~.projection._fit_orders`).
+
+    With ``workers >= 2`` the orders are fitted on that many threads (BLAS on one thread each; matrix products and
+    SciPy's LAPACK calls release the GIL): every order is computed as on one thread, so the numbers do not depend
+    on ``workers``.
+    """
+    def one(n):
+        fits = _fit_orders(proj, n, feedthroughs)
+        stable = bool(np.max(np.abs(np.linalg.eigvals(fits[feedthroughs[0]]["A"]))) < 1.0)  # A: the same for both
+        return {ft: (_heldout_error(mats, check, layout), stable) for ft, mats in fits.items()}
+
+    orders = list(orders)
+    if workers < 2 or len(orders) < 2:
+        scored = [one(n) for n in orders]
+    else:
+        first = one(orders[0])  # the projection's cached pieces are made here, before the threads start
+        with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="stimsteer-subspace") as pool:
+            scored = [first, *pool.map(one, orders[1:])]
+    return {ft: [row[ft] for row in scored] for ft in feedthroughs}
+
+
+def _rows(orders, scored, sv) -> pd.DataFrame:
+    floor = np.finfo(float).eps * max(float(sv[0]), np.finfo(float).tiny)
+    return pd.DataFrame([{"order": n, "singular_value": float(sv[n - 1]),
+                          "gap_ratio": float(sv[n - 1] / max(sv[n], floor)), "heldout_error": err, "stable": stable}
+                         for n, (err, stable) in zip(orders, scored)])
+
+
+def _grows(est, table, cfg) -> bool:
+    """Raise the default order cap (in ``cfg``) while the held-out error is lowest at it; True when it grew."""
     possible = min(cfg["supported"], cfg["layout"].max_order)
-    while est.max_order is None and cfg["order"] is None and cfg["top"] < possible and \
+    if est.max_order is None and cfg["order"] is None and cfg["top"] < possible and \
             int(table["order"].iloc[int(np.argmin(table["heldout_error"].to_numpy()))]) == cfg["top"]:
-        start, cfg["top"] = cfg["top"] + 1, min(possible, 2 * cfg["top"])
-        table = pd.concat([table, est._order_table(proj_fit, S_check, sv, cfg, start)], ignore_index=True)
+        cfg["start"], cfg["top"] = cfg["top"] + 1, min(possible, 2 * cfg["top"])
+        return True
+    return False
+
+
+def _cap_note(est, table, cfg, notes) -> None:
+    """Say so when the order cap still binds."""
+    possible = min(cfg["supported"], cfg["layout"].max_order)
     best = int(table["order"].iloc[int(np.argmin(table["heldout_error"].to_numpy()))])
     # a cap at the supported rank does not bind: the singular values beyond it are rounding noise
     if cfg["order"] is None and best == cfg["top"] and len(table) > 1 and cfg["top"] < cfg["supported"]:
@@ -33,7 +72,6 @@ def grow_cap(est, table, proj_fit, S_check, sv, cfg, notes):
                f"the largest order the windows allow, min(p (f − 1), p i) = {possible}")
         notes.append(f"the held-out error is lowest at the order cap {cfg['top']} ({why}): a larger order might "
                      "predict better; raise max_order or lengthen past_steps/future_steps.")
-    return table
 
 
 def choose_stable(table: pd.DataFrame, gap: int, tolerance: float, proj_all, feedthrough: bool, notes):
@@ -64,17 +102,32 @@ def choose_stable(table: pd.DataFrame, gap: int, tolerance: float, proj_all, fee
     return n, fits[n]
 
 
-def order_tables(est, proj_fit, S_check, sv, cfg, notes):
+def order_tables(est, proj_fit, check, sv, cfg, notes):
     """The order table, with or without a direct term (both for ``feedthrough="auto"``); sets ``feedthrough_``.
 
-    With "auto", the direct term is kept only when it lowers the best held-out error by more than the tolerance
-    (a simpler model wins a near tie, as for the order).
+    Each setting's default cap grows on its own; the orders both settings need are fitted together. With "auto",
+    the direct term is kept only when it lowers the best held-out error by more than the tolerance (a simpler model
+    wins a near tie, as for the order).
     """
+    settings = (False, True) if isinstance(est.feedthrough, str) else (bool(est.feedthrough),)
+    cfgs = {ft: {**cfg, "start": 1} for ft in settings}
+    tables = {ft: [] for ft in settings}
+    pending = set(settings)
+    while pending:
+        groups = {}
+        for ft in sorted(pending):
+            groups.setdefault((cfgs[ft]["start"], cfgs[ft]["top"]), []).append(ft)
+        for (a, b), group in groups.items():
+            scored = score_orders(proj_fit, check, cfg["layout"], range(a, b + 1), tuple(group), cfg.get("workers", 1))
+            for ft in group:
+                tables[ft].append(_rows(range(a, b + 1), scored[ft], sv))
+        pending = {ft for ft in settings if _grows(est, pd.concat(tables[ft], ignore_index=True), cfgs[ft])}
     found = {}
-    for ft in (False, True) if isinstance(est.feedthrough, str) else (bool(est.feedthrough),):
-        est.feedthrough_ = ft
-        c, n = dict(cfg), []
-        found[ft] = (grow_cap(est, est._order_table(proj_fit, S_check, sv, c, 1), proj_fit, S_check, sv, c, n), c, n)
+    for ft in settings:
+        table, c, n = pd.concat(tables[ft], ignore_index=True), cfgs[ft], []
+        _cap_note(est, table, c, n)
+        c.pop("start")
+        found[ft] = (table, c, n)
     best = {ft: float(t["heldout_error"].min()) for ft, (t, _c, _n) in found.items()}
     # the absolute floor keeps exact data (errors at rounding level either way) without a direct term
     est.feedthrough_ = bool(True in best and best[True] < best.get(False, np.inf) * (1.0 - cfg["tolerance"]) - 1e-12)

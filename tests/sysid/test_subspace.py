@@ -465,7 +465,7 @@ def test_unidentifiable_input_matrix_is_reported():
     gamma = np.zeros((3, 1))
     gamma[0, 0] = 1.0
     with pytest.raises(ExcitationError, match=r"do not excite the model enough to estimate B"):
-        projection._b_d(proj, gamma, np.eye(1) * 0.5, np.zeros((1, 1)), feedthrough=False)
+        projection._b_d(proj, gamma, np.eye(1) * 0.5, np.zeros((1, 1)), (False,))
 
 
 def test_fit_does_not_warn_on_clean_stable_data(rng):

@@ -15,6 +15,7 @@ import pytest
 from stimsteer.sysid import Session
 from stimsteer.sysid._lagged import _lagged_gram, blas_controller, blas_thread_count, blas_threads
 from stimsteer.sysid.subspace import SubspaceId, factor, gram, heldout, prepare
+from stimsteer.sysid.subspace import nested as nested_orders
 
 
 def _session(noise, seed=1, T=6000, n_trials=6):
@@ -131,7 +132,7 @@ def test_nested_orders_give_the_pseudo_inverse_estimates_and_fall_back_to_them(m
     session = _session(noise=0.3)
     kw = dict(past_steps=6, future_steps=5, feedthrough=True)
     nested = _fit(monkeypatch, session, 0, **kw)
-    monkeypatch.setattr(factor, "_NESTED_RCOND", 2.0)  # rcond <= 1: nested() always declines
+    monkeypatch.setattr(nested_orders, "_NESTED_RCOND", 2.0)  # rcond <= 1: nested() always declines
     plain = _fit(monkeypatch, session, 0, **kw)
     assert nested.order_ == plain.order_
     np.testing.assert_allclose(nested.order_table_["heldout_error"], plain.order_table_["heldout_error"], rtol=1e-9)
@@ -153,3 +154,22 @@ def test_nested_pieces_equal_the_pseudo_inverses_for_each_order(monkeypatch):
         np.testing.assert_allclose(X1, np.linalg.pinv(gamma[:-p]) @ proj.theta_next_rows, atol=1e-10)
     cva = prepare.projections(session, cfg, "cva")[0]
     assert cva.nested(3) is None  # a weighted Γ: the pseudo-inverses of before
+
+
+def test_orders_scored_together_and_on_threads_equal_one_setting_at_a_time(monkeypatch):
+    # both direct-term settings of an order share one system (without D: the leading block and its Cholesky
+    # factor), and orders fitted on two threads are each computed as on one: same scores, bit for bit across threads
+    from stimsteer.sysid.subspace import selection
+
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    session = _session(noise=0.3, T=3000)
+    cfg = SubspaceId(past_steps=6, future_steps=5)._settings(session)
+    _all, proj, check = prepare.projections(session, cfg, "n4sid")[:3]
+    L, orders = cfg["layout"], range(1, 6)
+    with blas_threads(1):  # as in the fit
+        threaded = selection.score_orders(proj, check, L, orders, (False, True), workers=2)
+        assert threaded == selection.score_orders(proj, check, L, orders, (False, True), workers=1)
+    for ft in (False, True):
+        alone = selection.score_orders(proj, check, L, orders, (ft,))
+        np.testing.assert_allclose([e for e, _s in threaded[ft]], [e for e, _s in alone[ft]], rtol=1e-10)
+        assert [s for _e, s in threaded[ft]] == [s for _e, s in alone[ft]]

@@ -11,13 +11,36 @@ import tracemalloc
 import numpy as np
 import pytest
 
+from stimsteer.sysid.statespace import markov_toeplitz
 from stimsteer.sysid.subspace import gram, heldout, markov, projection
+
+
+def _toeplitz_basis(A, C, layout, feedthrough):
+    """Basis ``H_k`` of the block-Toeplitz matrix of Markov parameters, linear in ``θ = [vec(B); vec(D)]``, shape
+    (n_theta, p f, m f) (the dense basis the package used for small problems before)."""
+    n, m, p, f = A.shape[0], layout.m, layout.p, layout.f
+    CA = [C]
+    for _ in range(f - 2):
+        CA.append(CA[-1] @ A)
+    Hs = np.zeros((n * m + (p * m if feedthrough else 0), p * f, m * f))
+    for l in range(m):
+        for j in range(n):
+            h = np.zeros((f, p, m))  # Markov parameters of B = e_j e_lᵀ (D = 0): h[r] = C A^(r-1) B
+            for r in range(1, f):
+                h[r][:, l] = CA[r - 1][:, j]
+            Hs[l * n + j] = markov_toeplitz(h)
+    for l in range(m if feedthrough else 0):
+        for a in range(p):
+            h = np.zeros((f, p, m))  # D = e_a e_lᵀ (B = 0): only h[0]
+            h[0][a, l] = 1.0
+            Hs[n * m + l * p + a] = markov_toeplitz(h)
+    return Hs
 
 
 def _dense_normal_equations(proj, gamma, A, C, feedthrough):
     """The normal equations as built before (one dense (p f × m f) basis matrix per unknown)."""
     L, S = proj.layout, proj.S
-    Hs = projection._toeplitz_basis(A, C, L, feedthrough)
+    Hs = _toeplitz_basis(A, C, L, feedthrough)
     Q = np.linalg.qr(gamma)[0]
     P1 = Q @ Q.T
     S_uu, S_yu = S[np.ix_(L.Uf, L.Uf)], S[np.ix_(L.Yf, L.Uf)]
@@ -80,7 +103,7 @@ def test_b_d_at_a_long_future_window_stays_small_in_memory():
     _ = proj.given_past  # cached covariances, not part of the B, D step
     tracemalloc.start()
     try:
-        projection._b_d(proj, gamma, A, C, feedthrough=True)
+        projection._b_d(proj, gamma, A, C, (True,))
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
@@ -147,3 +170,46 @@ def test_singular_covariances_take_the_eigen_route(monkeypatch):
     rng = np.random.default_rng(2)
     args = (rng.standard_normal((3, 6, 2)), rng.standard_normal((3, 6, 4)), rng.standard_normal((3, 8, 2)))
     np.testing.assert_allclose(chol.predict_many(*args), eig.predict_many(*args), rtol=1e-7, atol=1e-9)
+
+
+def _old_fit_order(proj, n, feedthrough):
+    """One candidate order as the covariance route computed it before: ``A`` by least squares on Γ, ``B, D`` from
+    the dense basis, the state maps by pseudo-inverses, the Kalman gain by SciPy's QZ route (the reference)."""
+    from stimsteer.sysid.statespace import kalman_gain
+
+    L, gamma = proj.layout, proj.gamma(n)
+    A, C = projection._a_c(gamma, L.p)
+    M, rhs, _Q, _t = _dense_normal_equations(proj, gamma, A, C, feedthrough)
+    theta = np.linalg.solve(0.5 * (M + M.T), rhs)
+    B = theta[:n * L.m].reshape(n, L.m, order="F")
+    D = theta[n * L.m:].reshape(L.p, L.m, order="F") if feedthrough else np.zeros((L.p, L.m))
+    Q, R, S = projection._noise(proj, gamma, A, B, C, D)
+    K, _P = kalman_gain(A, C, Q, R + projection._NOISE_FREE * np.eye(L.p), S)
+    return {"A": A, "B": B, "C": C, "D": D, "K": K, "Q": Q, "R": R}
+
+
+@pytest.fixture(scope="module")
+def noisy_session():
+    return _trial_session(noise=0.3, T=3000)
+
+
+@pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
+def test_small_gram_orders_equal_the_route_of_before(weighting, noisy_session):
+    # the covariance route's candidate orders (small Grams, fitting part) now take the structured sums, the doubling
+    # Riccati solver and, unweighted, the nested orders' shared QR; its models (all data) the computations of before:
+    # every order must give the model the dense basis, QZ and pseudo-inverses gave
+    session = noisy_session
+    from stimsteer.sysid.subspace import SubspaceId, prepare
+
+    cfg = SubspaceId(past_steps=6, future_steps=5)._settings(session)
+    proj_all, proj = prepare.projections(session, cfg, weighting)[:2]
+    assert isinstance(proj, projection._Projection)
+    assert (proj.nested(3) is None) == (weighting == "cva")  # CVA's weighted Γ keeps the pseudo-inverses
+    assert proj_all.exact and proj_all.nested(3) is None  # the models handed out: the computations of before
+    for n in (1, 3, 8):
+        for feedthrough in (False, True):
+            for p, tol in ((proj, 1e-9), (proj_all, 1e-11)):
+                new, old = projection._fit_order(p, n, feedthrough), _old_fit_order(p, n, feedthrough)
+                for key in "ABCDKQR":
+                    np.testing.assert_allclose(new[key], old[key], rtol=tol, atol=tol * np.abs(old[key]).max(),
+                                               err_msg=f"{key}, order {n}, direct term {feedthrough}")
