@@ -61,16 +61,29 @@ def _one_run(out: Path) -> dict:
     log = out.parent / "steps.jsonl"
     log.unlink(missing_ok=True)
     load = os.getloadavg()[0]
+    c0 = _children_cpu()
     t0 = time.time()
     proc = subprocess.run([sys.executable, "-c", _DRIVER, str(log), str(out)], capture_output=True, text=True)
     wall = time.time() - t0
+    cpu = _children_cpu() - c0  # the demo's process and every process it waited for (steps, bench child, workers)
     if proc.returncode != 0:
         raise SystemExit(f"the demo failed (exit code {proc.returncode}): {proc.stderr.strip()[-2000:]}")
     lines = [json.loads(x) for x in log.read_text(encoding="utf-8").splitlines()]
     imports = next(x["imports"] for x in lines if "imports" in x)
     steps = [x for x in lines if "step" in x]
     return {"wall": wall, "imports": imports, "steps": steps, "t0": t0, "load_before": load,
-            "load_after": os.getloadavg()[0]}
+            "load_after": os.getloadavg()[0], "cpu": cpu}
+
+
+def _children_cpu() -> float:
+    import resource
+
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return r.ru_utime + r.ru_stime
+
+
+def _cores() -> int:
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
 
 
 def _print_run(run: dict) -> None:
@@ -84,6 +97,9 @@ def _print_run(run: dict) -> None:
     print(f"CPU of the steps in the demo's process {parent:.2f} s, of the step beside it (with its workers) "
           f"{sum(s.get('cpu', 0.0) for s in run['steps'] if s['pid'] != main_pid):.2f} s")
     print(f"imports before the first step: {run['imports']:.2f} s")
+    print(f"CPU of the whole demo (every process) {run['cpu']:.2f} s: the {_cores()} cores were busy with it "
+          f"{run['cpu'] / (_cores() * run['wall']):.0%} of its wall time (on an idle machine, 100 % is the floor "
+          f"of {run['cpu'] / _cores():.1f} s)")
     print(f"stimsteer demo end to end (fresh process): {run['wall']:.2f} s   (target <= 12 s on an idle 2-core "
           f"machine); 1-minute load average {run['load_before']:.2f} before, {run['load_after']:.2f} after")
 
@@ -162,7 +178,7 @@ def main(argv=None) -> int:
     parser.add_argument("--bench-parts", action="store_true",
                         help="also time the demo's bench step by parts in this process (wall and CPU time)")
     args = parser.parse_args(argv)
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    cores = _cores()
     print(f"{cores} core(s) available; demo data of the repository")
     walls = []
     with tempfile.TemporaryDirectory(prefix="bench_demo_") as tmp:

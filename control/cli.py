@@ -5,12 +5,14 @@ per subcommand exposing ``add_parser(subparsers)`` and ``run(args)``). Every too
 and exit code 2; anything else is a bug and gives one line with exit code 1 (``STIMSTEER_DEBUG=1`` shows its
 traceback). Nothing is half-written: outputs go through ``stimsteer.sysid._files``.
 
-Register a new subcommand in ``_SUBCOMMANDS``.
+Register a new subcommand in ``_SUBCOMMANDS``. A command's module is imported when that command runs (or when the
+whole parser is built, for ``--help``): ``stimsteer inspect`` does not import what ``plan`` or ``live`` need.
 """
 
 from __future__ import annotations
 
 import argparse
+import importlib
 import os
 import sys
 from pathlib import Path
@@ -18,10 +20,6 @@ from pathlib import Path
 from ..sysid._claims import _errno_known, _is_temporary_of, os_error_text
 from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
-from .commands import convert as _convert
-from .commands import live as _live
-from .commands import study as _study
-from .commands import bench as _bench, demo as _demo, plan as _plan, predict as _predict, fit as _fit, inspect as _inspect, network as _network, schedule as _schedule
 from .commands._common import claiming, interruptible
 
 __all__ = ["main", "build_parser", "CAUTION"]
@@ -37,27 +35,54 @@ class _Parser(argparse.ArgumentParser):
 
 def _run_demo(args):
     # the demo runs each of its steps through this command line: it gets `main` as its step runner
-    return _demo.run(args, run_step=main)
+    return importlib.import_module(".commands.demo", __package__).run(args, run_step=main)
 
 
+def _plan_run(args):
+    # plan does not claim its --out itself yet: claimed here, before it loads or computes anything
+    return claiming(importlib.import_module(".commands.plan", __package__).run, "plan")(args)
+
+
+# name -> the module under commands/ with ``add_parser`` and ``run``, or an ``(add_parser, run)`` pair
 _SUBCOMMANDS = {
-    "fit": (_fit.add_parser, _fit.run),
-    "predict": (_predict.add_parser, _predict.run),
-    # plan and network do not claim their --out themselves yet: claimed here, before they load or compute anything
-    "network": (_network.add_parser, _network.run),
-    "schedule": (_schedule.add_parser, _schedule.run),
-    "plan": (_plan.add_parser, claiming(_plan.run, "plan")),
-    "bench": (_bench.add_parser, _bench.run),
-    "inspect": (_inspect.add_parser, _inspect.run),
-    "convert": (_convert.add_parser, _convert.run),
-    "demo": (_demo.add_parser, _run_demo),
-    "live": (_live.add_parser, _live.run),
-    "study": (_study.add_parser, _study.run),
+    "fit": "fit",
+    "predict": "predict",
+    "network": "network",
+    "schedule": "schedule",
+    "plan": ("plan", _plan_run),
+    "bench": "bench",
+    "inspect": "inspect",
+    "convert": "convert",
+    "demo": ("demo", _run_demo),
+    "live": "live",
+    "study": "study",
 }
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """The ``stimsteer`` argument parser with every subcommand of ``_SUBCOMMANDS``."""
+def command_modules(names=None) -> list:
+    """The modules of the named subcommands (default every one), imported."""
+    out = []
+    for name in _SUBCOMMANDS if names is None else names:
+        entry = _SUBCOMMANDS[name]
+        if isinstance(entry, str) or isinstance(entry[0], str):
+            out.append(importlib.import_module(f".commands.{entry if isinstance(entry, str) else entry[0]}",
+                                               __package__))
+    return out
+
+
+def _command(name: str) -> tuple:
+    """``(add_parser, run)`` of a subcommand, importing its module."""
+    entry = _SUBCOMMANDS[name]
+    if isinstance(entry, str):
+        module = command_modules([name])[0]
+        return module.add_parser, module.run
+    add, run = entry
+    return (command_modules([name])[0].add_parser if isinstance(add, str) else add), run
+
+
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """The ``stimsteer`` argument parser with every subcommand of ``_SUBCOMMANDS``, or with ``command`` alone (a
+    known name: what :func:`main` needs to run it, without importing the others)."""
     parser = _Parser(
         prog="stimsteer",
         description="Check stimulation sessions, fit predictors of the stimulated response, design stimulation "
@@ -65,9 +90,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
-    for name, (add, _run) in _SUBCOMMANDS.items():
-        add(sub)
+    for name in ([command] if command in _SUBCOMMANDS else _SUBCOMMANDS):
+        _command(name)[0](sub)
     return parser
+
+
+def _command_named(argv) -> str | None:
+    """The subcommand ``argv`` names (its first word when that is one), else None: the whole parser is needed."""
+    argv = sys.argv[1:] if argv is None else list(argv)
+    return argv[0] if argv and argv[0] in _SUBCOMMANDS else None
 
 
 def _given_as(args, filename) -> str:
@@ -86,9 +117,9 @@ def main(argv=None) -> int:
     the traceback with ``STIMSTEER_DEBUG=1``); 130 when interrupted (Ctrl-C, SIGINT) and 143 when terminated
     (SIGTERM), with no partial output kept.
     """
-    parser = build_parser()
+    parser = build_parser(_command_named(argv))
     args = parser.parse_args(argv)
-    _add, run = _SUBCOMMANDS[args.command]
+    _add, run = _command(args.command)
     try:
         with interruptible():
             return int(run(args) or 0)

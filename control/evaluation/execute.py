@@ -17,8 +17,9 @@ import time
 
 from ...sysid import InvalidParameterError, StimsteerError
 from .references import base_tasks, has_references, reference_rows
-from .task_body import _run_task, chooses_routes, inner_score_of, one_thread, route_choice_of, skip_reason
-from .tasks import _Context, _Task
+from .task_body import (_run_task, _session_at, chooses_routes, inner_score_of, one_thread, route_choice_of, run_group,
+                        skip_reason)
+from .tasks import _cached, _Context, _Task, fit_groups
 
 _INSTALLED: dict = {}
 
@@ -85,12 +86,23 @@ def _stop_workers(pool) -> None:
     pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _run_installed(task: _Task) -> dict:
-    return _run_task(_INSTALLED["ctx"], task)
+def _group_installed(group, sessions: dict) -> list:
+    """:func:`~.task_body.run_group` on a worker, with the re-recorded sessions the parent already has."""
+    ctx = _INSTALLED["ctx"]
+    for scale, session in sessions.items():  # computed once on one worker (_session_installed), not again here
+        _cached((ctx.token, "session", scale), lambda s=session: s)
+    return run_group(ctx, group)
 
 
-def _inner_installed(split_index: int, split, method_index: int) -> float:
-    return inner_score_of(_INSTALLED["ctx"], split_index, split, method_index)
+def _session_installed(scale: float):
+    return _session_at(_INSTALLED["ctx"], scale)
+
+
+def _inner_installed(split_index: int, split, method_index: int) -> tuple:
+    """The inner score of one method on one split and the seconds it took (to put the longest jobs first)."""
+    t0 = time.perf_counter()
+    score = inner_score_of(_INSTALLED["ctx"], split_index, split, method_index)
+    return score, time.perf_counter() - t0
 
 
 def _available_cores() -> int:
@@ -140,54 +152,145 @@ def check_descriptors(n_workers: int) -> None:
 
 
 def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> tuple[list, object]:
-    """The tasks' results in task order, and the references' rows when the pool computed them (else None)."""
+    """The tasks' results in task order, and the references' rows when the pool computed them (else None).
+
+    Tasks that fit the same model (:func:`~.tasks.fit_groups`) run as one job with one fit, here and on the pool.
+    """
     results = [None] * len(tasks)
     if n_workers > 1:
         check_descriptors(n_workers)
     if n_workers <= 1:
-        for t in tasks:
-            results[t.index] = _run_task(ctx, t)
-            bar.update()
+        for group in fit_groups(ctx.settings, tasks):
+            for t, out in zip(group, run_group(ctx, group)):
+                results[t.index] = out
+                bar.update()
         return results, None
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from concurrent.futures import ProcessPoolExecutor
 
     with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx, os.getpid())) as pool:
         try:
-            futures, refs = _submit(pool, ctx, tasks, results, bar)
-            for fut in as_completed(futures):
-                results[futures[fut]] = fut.result()
-                bar.update()
-            refs = _reference_results(refs)
+            refs = _PoolSchedule(pool, ctx, tasks, results, bar, n_workers).run()
         except BaseException:  # Ctrl-C, SIGTERM, a failure: no worker outlives the run
             _stop_workers(pool)
             raise
     return results, refs
 
 
-def _submit(pool, ctx: _Context, tasks, results, bar) -> tuple[dict, list]:
-    """Submit every task that runs (the closed loops first), with the references' jobs after the closed loops.
+class _PoolSchedule:
+    """The pool's jobs, each submitted as soon as what it needs is known, so that no worker waits on another.
 
-    Skipped tasks get their result here, as the task would decide it: no trip to a worker. The references (a
-    closed loop and a free run per split, :mod:`.references`) run on the workers beside the short tasks instead of
-    alone in this process after them.
+    First the jobs the tasks wait for: the noise sweep's re-recorded sessions (one job per noise level, shipped to
+    the tasks that need them instead of computed again on every worker) and the inner scores of the route choice
+    (one job per split and method). A split's tasks are submitted when its own inner scores are in (not when every
+    split's are): those that steer a closed loop (the longest) at once, the others held back and submitted after
+    the references, longest method first (by the inner jobs' measured time), so that short jobs fill the workers at
+    the end; held jobs are submitted early whenever fewer than ``n_workers + 1`` jobs are in flight. Skipped tasks
+    get their result here, as the task would decide it. Results are placed by task index: the order of execution
+    never changes a number.
     """
-    choices = _choices(pool, ctx, tasks)
-    runs = []
-    for t in tasks:
-        t = dataclasses.replace(t, choice=choices.get(t.split_index))
-        skipped = skip_reason(ctx.settings, t, t.choice)
-        if skipped:
-            results[t.index] = {"skipped": skipped, "warnings": [], "task": t.index, "total_s": 0.0}
-            bar.update()
+
+    def __init__(self, pool, ctx: _Context, tasks, results, bar, n_workers: int):
+        self.pool, self.ctx, self.tasks, self.results, self.bar = pool, ctx, tasks, results, bar
+        self.depth = n_workers + 1
+        self.futures: dict = {}  # future -> (kind, what)
+        self.scores: dict = {}  # (split, method index) -> (score, seconds)
+        self.sessions: dict = {}  # noise scale -> re-recorded session
+        self.waiting: list = []  # groups that wait for a re-recorded session
+        self.held: list = []  # groups without a closed loop, submitted last
+        self.unreleased = sorted({t.split_index for t in tasks})
+        self.refs, self.tail_sent = None, False
+
+    def run(self) -> object:
+        from concurrent.futures import FIRST_COMPLETED, wait
+
+        st = self.ctx.settings
+        for scale in sorted({t.setting.noise_scale for t in self.tasks} - {1.0}):
+            self._submit(("session", scale), _session_installed, scale)
+        if chooses_routes(st):
+            splits = {t.split_index: t.split for t in self.tasks}
+            for i, split in splits.items():
+                for k in range(len(st.methods)):
+                    self._submit(("inner", (i, k)), _inner_installed, i, split, k)
         else:
-            runs.append(t)
-    runs.sort(key=lambda t: _cost_rank(ctx, t))
-    n_long = sum(1 for t in runs if not _cost_rank(ctx, t)[0])
-    futures = {pool.submit(_run_installed, t): t.index for t in runs[:n_long]}
-    refs = ([pool.submit(_reference_installed, t) for t in base_tasks(tasks, ctx.settings)]
-            if has_references(ctx) else [])
-    futures.update({pool.submit(_run_installed, t): t.index for t in runs[n_long:]})
-    return futures, refs
+            for i in list(self.unreleased):
+                self._release(i, None)
+        self._fill()
+        while self.futures:
+            done, _ = wait(list(self.futures), return_when=FIRST_COMPLETED)
+            for fut in done:
+                self._done(fut, *self.futures.pop(fut))
+            self._fill()
+        return _reference_results(self.refs or [])
+
+    def _submit(self, what, fn, *args) -> None:
+        self.futures[self.pool.submit(fn, *args)] = what
+
+    def _done(self, fut, kind, what) -> None:
+        if kind == "group":
+            for t, out in zip(what, fut.result()):
+                self.results[t.index] = out
+                self.bar.update()
+        elif kind == "session":
+            self.sessions[what] = fut.result()
+            ready = [g for g in self.waiting if g[0].setting.noise_scale in self.sessions]
+            self.waiting = [g for g in self.waiting if g[0].setting.noise_scale not in self.sessions]
+            for group in ready:
+                self._submit_group(group)
+        elif kind == "inner":
+            self.scores[what] = fut.result()
+            i, n = what[0], len(self.ctx.settings.methods)
+            if all((i, k) in self.scores for k in range(n)):
+                st = self.ctx.settings
+                self._release(i, route_choice_of(st, {m.label: self.scores[(i, k)][0]
+                                                      for k, m in enumerate(st.methods)}))
+
+    def _release(self, split_index: int, choice) -> None:
+        """Submit the split's tasks that steer a closed loop, hold the others; record the skipped ones."""
+        self.unreleased.remove(split_index)
+        runs = []
+        for t in self.tasks:
+            if t.split_index != split_index:
+                continue
+            t = dataclasses.replace(t, choice=choice)
+            skipped = skip_reason(self.ctx.settings, t, choice)
+            if skipped:
+                self.results[t.index] = {"skipped": skipped, "warnings": [], "task": t.index, "total_s": 0.0}
+                self.bar.update()
+            else:
+                runs.append(t)
+        groups = sorted(fit_groups(self.ctx.settings, runs), key=self._cost, reverse=True)
+        for group in groups:
+            if any(_steers(self.ctx, t) for t in group):
+                self._submit_group(group)
+            else:
+                self.held.append(group)
+        self.held.sort(key=self._cost, reverse=True)
+
+    def _submit_group(self, group) -> None:
+        scale = group[0].setting.noise_scale
+        if scale != 1.0 and scale not in self.sessions:
+            self.waiting.append(group)
+            return
+        self._submit(("group", group), _group_installed, group,
+                     {scale: self.sessions[scale]} if scale != 1.0 else {})
+
+    def _fill(self) -> None:
+        """The references and the held groups once every split is out; before that, enough to keep workers busy."""
+        if not self.unreleased and not self.waiting and not self.tail_sent:
+            self.tail_sent = True
+            if has_references(self.ctx):
+                self.refs = [self.pool.submit(_reference_installed, t) for t in base_tasks(self.tasks,
+                                                                                            self.ctx.settings)]
+            while self.held:
+                self._submit_group(self.held.pop(0))
+        while self.held and len(self.futures) < self.depth:
+            self._submit_group(self.held.pop(0))
+
+    def _cost(self, group) -> tuple:
+        """Measured seconds of the method's inner jobs (0 when there were none), then the tasks in the group."""
+        k = group[0].method_index
+        seconds = [v[1] for (i, m), v in self.scores.items() if m == k]
+        return (sum(seconds) / len(seconds) if seconds else 0.0, len(group))
 
 
 def _reference_installed(task: _Task) -> list:
@@ -209,27 +312,11 @@ def _reference_results(futures) -> object:
     return rows
 
 
-def _choices(pool, ctx: _Context, tasks) -> dict:
-    """Each split's route choice (:func:`~.task_body.route_choice_of`) from the inner score of every method, one
-    pool job per split and method, so that no two workers fit the same inner models (empty: nothing to choose)."""
-    st = ctx.settings
-    if not chooses_routes(st):
-        return {}
-    splits = {t.split_index: t.split for t in tasks}
-    jobs = {(i, k): pool.submit(_inner_installed, i, split, k) for i, split in splits.items()
-            for k in range(len(st.methods))}
-    return {i: route_choice_of(st, {m.label: jobs[(i, k)].result() for k, m in enumerate(st.methods)})
-            for i in splits}
-
-
-def _cost_rank(ctx: _Context, task: _Task) -> tuple:
-    """Order of submission: the tasks that steer a closed loop (the longest) first, so that the short ones fill the
-    workers at the end instead of one long task running alone; the task order otherwise (numbers never depend on
-    it: results are placed by task index)."""
+def _steers(ctx: _Context, task: _Task) -> bool:
+    """Whether the task steers a closed loop (the longest tasks): control is on and it is its route's choice."""
     st, choice = ctx.settings, task.choice
     spec = st.methods[task.method_index]
-    steers = st.control is not None and (choice is None or choice.get(spec.route, spec.label) == spec.label)
-    return (not steers, task.index)
+    return st.control is not None and (choice is None or choice.get(spec.route, spec.label) == spec.label)
 
 
 _SCHEMES = ("tcp", "tls", "ws", "wss", "ucx", "inproc")

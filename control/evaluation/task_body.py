@@ -8,6 +8,7 @@ the task's result (recorded, not raised), so one failed fit never stops the run.
 from __future__ import annotations
 
 import contextlib
+import copy
 import dataclasses
 import hashlib
 import time
@@ -35,19 +36,46 @@ def one_thread():
     return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1)
 
 
-def _run_task(ctx: _Context, task: _Task) -> dict:
-    """Run one task with single-threaded BLAS; toolkit errors are returned (recorded), not raised."""
+def _run_task(ctx: _Context, task: _Task, shared: dict | None = None) -> dict:
+    """Run one task with single-threaded BLAS; toolkit errors are returned (recorded), not raised.
+
+    ``shared``: a dict kept across the tasks of one :func:`~.tasks.fit_groups` group (same method, training data
+    and estimator settings, so the same fit): the first task that fits stores its model there and the others take a
+    copy of it instead of fitting again (:func:`run_group`).
+    """
     t0 = time.perf_counter()
     with one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            out = _task_body(ctx, task)
+            out = _task_body(ctx, task, {} if shared is None else shared)
         except StimsteerError as exc:
             out = {"error": f"{type(exc).__name__}: {exc}"}
-    out["warnings"] = sorted({str(w.message) for w in caught})
+    out["warnings"] = sorted({str(w.message) for w in caught} | set(out.pop("fit_warnings", ())))
     out["task"] = task.index
     out["total_s"] = time.perf_counter() - t0
     return out
+
+
+def run_group(ctx: _Context, group) -> list:
+    """The results of the tasks of one fit group (:func:`~.tasks.fit_groups`), in the group's order, with one fit."""
+    shared: dict = {}
+    return [_run_task(ctx, task, shared) for task in group]
+
+
+def _fitted(spec, train: Session, st, horizon: int, shared: dict) -> tuple:
+    """``(predictor, fit_s, fit warnings)``: fitted here, or a copy of the group's fit (its time and warnings)."""
+    if "predictor" in shared:
+        return copy.deepcopy(shared["predictor"]), shared["fit_s"], shared["warnings"]
+    t0 = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        predictor = _fit(spec, train, st.past_steps, horizon)
+    fit_s, said = time.perf_counter() - t0, tuple(str(w.message) for w in caught)
+    try:  # the group's copy is taken before this task uses the model: every task starts from the same fit
+        shared.update(predictor=copy.deepcopy(predictor), fit_s=fit_s, warnings=said)
+    except (TypeError, copy.Error, RecursionError):  # a model that cannot be copied: each task fits its own
+        pass
+    return predictor, fit_s, said
 
 
 def _session_at(ctx: _Context, scale: float) -> Session:
@@ -56,7 +84,7 @@ def _session_at(ctx: _Context, scale: float) -> Session:
     return _cached((ctx.token, "session", scale), lambda: _rerecord(ctx.session, ctx.plant, scale))
 
 
-def _task_body(ctx: _Context, task: _Task) -> dict:
+def _task_body(ctx: _Context, task: _Task, shared: dict) -> dict:
     st = ctx.settings
     spec, setting = st.methods[task.method_index], task.setting
     choice = _route_choice(ctx, task)
@@ -65,16 +93,15 @@ def _task_body(ctx: _Context, task: _Task) -> dict:
         return {"skipped": skipped}
     session = _session_at(ctx, setting.noise_scale)
     train, test = session.select_trials(task.train), session.select_trials(task.split.test)
-    t0 = time.perf_counter()
-    predictor = _fit(spec, train, st.past_steps, setting.horizon_steps)
-    fit_s = time.perf_counter() - t0
+    predictor, fit_s, fit_warnings = _fitted(spec, train, st, setting.horizon_steps, shared)
     past, H = int(predictor.past_steps_), setting.horizon_steps
     t0 = time.perf_counter()
     kstep = kstep_scores(predictor, test, horizon_steps=H, stride_steps=window_stride(test, past, H, st.max_windows))
     freerun = freerun_scores(predictor, test)
     predict_s = time.perf_counter() - t0
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
-           "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor)}
+           "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor),
+           "fit_warnings": fit_warnings}
     if choice is not None and spec.label in choice:
         out["inner_r2"] = choice[spec.label]
     if task.keep_traces:

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ...sysid import Session, SessionError, TrialSplit, make_estimator
+from ...sysid import Session, SessionError, StimsteerError, TrialSplit, make_estimator
 from .settings import MIN_TRAIN_TRIALS, BenchSettings, MethodSpec
 
 
@@ -122,6 +122,51 @@ def _tasks(st: BenchSettings, splits, grid) -> list:
                                                 and setting.horizon_steps == st.horizon_steps)))
     return tasks
 
+
+
+def fit_groups(st: BenchSettings, tasks) -> list:
+    """The tasks as groups that fit the same model: same method, noise scale and training trials, and the same
+    estimator settings once the benchmark's past window and horizon are applied (a method that takes no horizon,
+    e.g. ridge ARX or subspace identification, fits the same model at every point of the horizon sweep).
+
+    Groups keep the task order inside and are listed in the order of their first task; a task whose settings
+    cannot be compared exactly (a value of another type than numbers, strings, arrays and their containers) is a
+    group of its own. Fitting is deterministic, so a group's tasks give the numbers they give alone.
+    """
+    groups: dict = {}
+    for task in tasks:
+        key = _fit_key(st, task)
+        groups.setdefault(("task", task.index) if key is None else key, []).append(task)
+    return list(groups.values())
+
+
+def _fit_key(st: BenchSettings, task) -> object:
+    spec = st.methods[task.method_index]
+    try:
+        params = make_estimator(spec.route, spec.method, spec.settings, past_steps=st.past_steps,
+                                horizon_steps=task.setting.horizon_steps).get_params(deep=False)
+    except StimsteerError:  # the task itself reports what is wrong with its settings
+        return None
+    settings = _exact(params)
+    if settings is None:
+        return None
+    return (task.method_index, task.split_index, float(task.setting.noise_scale),
+            tuple(int(t) for t in task.train), settings)
+
+
+def _exact(value) -> object:
+    """A hashable value equal for equal settings and different for different ones; None where that cannot be said."""
+    if value is None or isinstance(value, (bool, int, float, str, np.generic)):
+        return (type(value).__name__, repr(value.item() if isinstance(value, np.generic) else value))
+    if isinstance(value, np.ndarray) and value.dtype != object:
+        return ("ndarray", str(value.dtype), value.shape, value.tobytes())
+    if isinstance(value, (list, tuple)):
+        items = [_exact(v) for v in value]
+        return None if any(i is None for i in items) else (type(value).__name__, tuple(items))
+    if isinstance(value, dict) and all(isinstance(k, str) for k in value):
+        items = [(k, _exact(value[k])) for k in sorted(value)]
+        return None if any(i is None for _, i in items) else ("dict", tuple(items))
+    return None
 
 
 def _fit(spec: MethodSpec, train: Session, past: int, horizon: int):

@@ -417,6 +417,64 @@ def test_a_pool_that_chooses_each_routes_method_first_gives_the_sequential_numbe
         pd.testing.assert_frame_equal(a[name], b[name], check_exact=True)
 
 
+def _same(a, b, path="") -> list:
+    """Where two task results differ, timing figures aside (seconds, milliseconds)."""
+    if isinstance(a, dict):
+        keys = {k for k in set(a) | set(b) if not (k.endswith("_s") or "_ms" in k)}
+        return [d for k in sorted(keys) for d in _same(a.get(k), b.get(k), f"{path}.{k}")]
+    if isinstance(a, pd.DataFrame):
+        try:
+            pd.testing.assert_frame_equal(a, b, check_exact=True)
+        except AssertionError:
+            return [path]
+        return []
+    if isinstance(a, np.ndarray):
+        return [] if np.array_equal(a, b, equal_nan=True) else [path]
+    return [] if a == b or (a != a and b != b) else [path]
+
+
+def test_tasks_that_fit_the_same_model_share_one_fit_and_give_the_numbers_they_give_alone(seed, monkeypatch):
+    # ridge ARX takes no horizon: its horizon-sweep task fits the base task's model on the same trials (one fit);
+    # least squares takes the horizon: a model of its own at each horizon
+    from stimsteer.control.evaluation import task_body, tasks as task_module
+
+    session, plant = _session(seed)
+    st = _settings(n_splits=1, horizons=(3,), control=ControlSettings(n_steps=12))
+    tasks = task_module._tasks(st, task_module._splits(session, st), task_module._grid(st, 4, True))
+    groups = task_module.fit_groups(st, tasks)
+    assert [[(st.methods[t.method_index].method, t.setting.horizon_steps) for t in g] for g in groups] == \
+        [[("arx", 5), ("arx", 3)], [("lsq", 5)], [("lsq", 3)]]
+    ctx = task_module._Context("t", session, plant, None, st)
+    fits = []
+    monkeypatch.setattr(task_body, "_fit", lambda *a: fits.append(a[0].method) or task_module._fit(*a))
+    together = task_body.run_group(ctx, groups[0])
+    assert fits == ["arx"]
+    alone = [task_body._run_task(ctx, t) for t in groups[0]]
+    assert fits == ["arx"] * 3
+    assert together[1]["fingerprint"] == together[0]["fingerprint"] and "loop" in together[1]
+    assert [_same(a, b) for a, b in zip(together, alone)] == [[], []]
+
+
+def test_the_pool_re_records_a_noise_level_once_for_every_worker(seed, tmp_path, monkeypatch):
+    # the re-recorded session of the noise sweep is made by one job and sent to the tasks that need it, not made
+    # again by every worker that meets a task at that noise level
+    from stimsteer.control.evaluation import task_body
+
+    calls = tmp_path / "calls.txt"
+
+    def counted(*args):
+        with open(calls, "a", encoding="utf-8") as fh:
+            fh.write(f"{args[2]}\n")
+        return rerecord(*args)
+
+    rerecord = task_body._rerecord
+    monkeypatch.setattr(task_body, "_rerecord", counted)  # forked workers inherit the patch
+    session, plant = _session(seed)
+    st = _settings(n_splits=3, test_fraction=0.34, noise_scales=(2.0,), control=ControlSettings(n_steps=12))
+    run_bench(session, st, plant=plant, n_workers=2, progress=False)
+    assert calls.read_text().split() == ["2.0"]
+
+
 # ------------------------------------------------------------------------------------------------ plants and limits
 def test_recorded_limits_span_the_recorded_inputs_and_zero():
     u = np.array([[0.5, 1.0], [2.0, 3.0], [1.0, 4.0]])
