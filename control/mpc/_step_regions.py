@@ -40,6 +40,7 @@ MAX_REGIONS = 64  # active sets whose answer maps are kept ...
 MAX_MAP_BYTES = 64 * 2**20  # ... within this much memory
 _PIVOT_RTOL = 1e-14  # smallest pivot / largest: the square of the Cholesky diagonal's 1e-7
 _BIG = 1e29  # the dense solver's "no bound" is 1e30
+_RECENT = 16  # sets tried, most recently used first, before the solver (each a few µs; the solver tens)
 _MAX = np.maximum.reduce  # without ndarray.max's Python wrapper (a live step's check)
 
 
@@ -47,7 +48,7 @@ class Region:
     """The map of one active set: ``v = K w + k`` (``k`` for the current target), ``v[:m]`` the first input,
     ``check = v[m:]`` (all ``<= tol`` exactly when optimal); ``Kc`` maps the first input's bound changes."""
 
-    __slots__ = ("K", "k", "Kc", "v", "check", "version", "act", "Pb", "sSi", "b0", "rows", "sign")
+    __slots__ = ("K", "k", "Kc", "v", "check", "version", "act", "Pb", "sSi", "b0", "rows", "sign", "moves", "sets")
 
     def __init__(self, K, Kc, act, Pb, sSi, b0, rows, sign):
         self.K, self.Kc, self.act, self.Pb, self.sSi, self.b0 = K, Kc, act, Pb, sSi, b0
@@ -55,6 +56,11 @@ class Region:
         self.v = np.empty(K.shape[0])
         self.check = self.v[rows[0].size:]
         self.k, self.version = None, -1
+        # per check: the row it concerns and what its failure suggests (1: hold it at its upper bound, -1: at its
+        # lower one, 0: release it); and the set's upper and lower rows
+        self.moves = list(zip(np.concatenate([rows[1], rows[2], act]).tolist(),
+                              [1] * rows[1].size + [-1] * rows[2].size + [0] * act.size))
+        self.sets = (act[sign > 0].tolist(), act[sign < 0].tolist())
 
     @property
     def nbytes(self) -> int:
@@ -102,7 +108,8 @@ class Regions:
         est = 2 * CXw.nbytes + G.nbytes + 1
         self._max = int(max(1, min(MAX_REGIONS, MAX_MAP_BYTES // est)))
         self._maps = {(): self._region(self._W0, np.zeros(0, np.intp), np.zeros(0, np.intp))}
-        self.current = self._maps[()]
+        self.current, self._recent = None, []
+        self._use(self._maps[()])
         # what a piece of a build costs (a pivot, the extraction), until measured: the set-up's share
         setup = time.perf_counter() - t0
         self._cost = {"pivot": setup / 4, "finish": setup / 4}
@@ -117,12 +124,64 @@ class Regions:
         self._rr, self._version = self._CX @ q_r, self._version + 1
 
     def solve(self, w, lo_m, hi_m):
-        """``v`` (its first ``m`` values the first input) for the window ``w`` on the current set, or None when the
-        set is not optimal there or has no map, or ``w`` is not finite (NaN fails every compare). ``lo_m``, ``hi_m``
-        are the first input's bounds (lists) when they move (slew), else None."""
+        """``v`` (its first ``m`` values the first input) for the window ``w`` on the current set, or on one of the
+        last few sets used before it (a loop moving back and forth between sets, e.g. under a gate that reduces some
+        inputs); None when none of them is optimal there, or ``w`` is not finite (NaN fails every compare).
+        ``lo_m``, ``hi_m`` are the first input's bounds (lists) when they move (slew), else None."""
         r = self.current
-        if r is None:
+        if r is not None:
+            v = self._on(r, w, lo_m, hi_m)
+            if v is not None:
+                return v
+            near = self._neighbour(r)
+            if near is not None:
+                v = self._on(near, w, lo_m, hi_m)
+                if v is not None:
+                    self._use(near)
+                    return v
+        for other in self._recent:
+            if other is not r:
+                v = self._on(other, w, lo_m, hi_m)
+                if v is not None:
+                    self._use(other)
+                    return v
+        return None
+
+    def _neighbour(self, r):
+        """The known set the failed checks of ``r`` point to (rows over a bound held at it, multipliers of the wrong
+        sign released), or None."""
+        bad = np.flatnonzero(r.check > self.tol)
+        if not 0 < bad.size <= 2 * self._m:
             return None
+        up, low = set(r.sets[0]), set(r.sets[1])
+        moves = r.moves
+        for j in bad.tolist():
+            if j >= len(moves):
+                return None
+            row, kind = moves[j]
+            if kind > 0:
+                up.add(row)
+            elif kind < 0:
+                low.add(row)
+            else:
+                up.discard(row)
+                low.discard(row)
+        if not up and not low:
+            return self._maps.get(())
+        return self._maps.get((np.array(sorted(up), np.intp).tobytes(), np.array(sorted(low), np.intp).tobytes()))
+
+    def _use(self, r):
+        """Make ``r`` the current set, first among the recent ones."""
+        self.current = r
+        if r is not None:
+            recent = self._recent
+            if r in recent:
+                recent.remove(r)
+            recent.insert(0, r)
+            del recent[_RECENT:]
+
+    def _on(self, r, w, lo_m, hi_m):
+        """``v`` on the set ``r``, or None when it is not optimal there."""
         if r.version != self._version:
             self._offsets(r)
         v = r.v
@@ -143,7 +202,7 @@ class Regions:
         key = (upper.tobytes(), lower.tobytes()) if upper.size + lower.size else ()
         self._last = key
         if key in self._maps:
-            self.current = self._maps[key]
+            self._use(self._maps[key])
         else:
             self.current = None
             if len(self._maps) < self._max and (self._build is None or self._build[0] != key):
@@ -188,7 +247,7 @@ class Regions:
         if len(self._maps) < self._max:
             self._maps[key] = region
         if self._last == key:  # the solver's last set: the next step starts on it
-            self.current = region
+            self._use(region)
         if self.pending == key:
             self.pending = None
 

@@ -154,3 +154,47 @@ def test_calibration_builds_the_warm_up_sets_map_before_it_times_the_step(model)
     best = _calibrate(step, np.zeros((3, 2)), _far(model), None, 5, None, time.perf_counter)
     assert len(calls) == 1 and best["n"] == 5  # the untimed first plan alone went to the solver
     assert len(step._regions.maps) == 2 and step.idle_cost_s == np.inf  # bounds bind: a new set, its map built
+
+
+def test_a_sets_map_is_built_a_pivot_at_a_time_between_samples(model):
+    # a map is built in pieces a live loop fits between samples: one pivot of the elimination per piece (each a
+    # rank-one update), then the extraction -- never the whole build at once; the map then answers as the solver
+    ctrl = ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    u, y = np.zeros((3, 2)), np.zeros((3, 3))
+    assert step.idle_cost_s == np.inf and not step.idle()  # nothing to build yet
+    want = step.plan(u, y, target=_far(model))  # the solver: its active set is new
+    active = int(np.count_nonzero(step._qp.lam))
+    assert active >= 4 and np.isfinite(step.idle_cost_s)
+    pieces = 0
+    while step.idle():
+        pieces += 1
+        assert pieces == active + 1 or step._regions.has_work  # the map is ready only after the last piece
+    assert pieces == active + 1 and step.idle_cost_s == np.inf
+    calls, solve = [], step._qp.solve_finite
+    step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
+    got = step.plan(u, y, target=_far(model))
+    assert not calls  # the map answered
+    np.testing.assert_allclose(got.inputs, want.inputs, atol=1e-9)
+    np.testing.assert_allclose(got.inputs, ref.plan(u, y, target=_far(model)).inputs, atol=1e-9)
+
+
+def test_a_loop_moving_back_and_forth_between_known_sets_does_not_call_the_solver(model):
+    # two windows whose optima lie on different active sets, in turn (as under a gate that reduces every other
+    # input): once both maps exist, each step is answered by one of the recent sets, not by the solver
+    ctrl = ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    wins = [(np.zeros((3, 2)), np.zeros((3, 3)), _far(model)), (np.zeros((3, 2)), np.zeros((3, 3)), -_far(model))]
+    for u, y, tgt in wins:
+        step.plan(u, y, target=tgt)
+        while step.idle():
+            pass
+    calls, solve = [], step._qp.solve_finite
+    step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
+    for k in range(10):
+        u, y, tgt = wins[k % 2]
+        np.testing.assert_allclose(step.plan(u, y, target=tgt).inputs, ref.plan(u, y, target=tgt).inputs,
+                                   atol=1e-9)
+    assert not calls and len(step._regions.maps) == 3
