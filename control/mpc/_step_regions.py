@@ -48,10 +48,10 @@ class Region:
     """The map of one active set: ``v = K w + k`` (``k`` for the current target), ``v[:m]`` the first input,
     ``check = v[m:]`` (all ``<= tol`` exactly when optimal); ``Kc`` maps the first input's bound changes."""
 
-    __slots__ = ("K", "k", "Kc", "v", "check", "version", "act", "Pb", "sSi", "b0", "rows", "sign", "moves", "sets")
+    __slots__ = ("K", "k", "Kc", "v", "check", "version", "act", "Pbk", "b0", "rows", "sign", "moves", "sets")
 
-    def __init__(self, K, Kc, act, Pb, sSi, b0, rows, sign):
-        self.K, self.Kc, self.act, self.Pb, self.sSi, self.b0 = K, Kc, act, Pb, sSi, b0
+    def __init__(self, K, Kc, act, Pbk, b0, rows, sign):
+        self.K, self.Kc, self.act, self.Pbk, self.b0 = K, Kc, act, Pbk, b0
         self.rows, self.sign = rows, sign
         self.v = np.empty(K.shape[0])
         self.check = self.v[rows[0].size:]
@@ -64,7 +64,7 @@ class Region:
 
     @property
     def nbytes(self) -> int:
-        return sum(a.nbytes for a in (self.K, self.Kc, self.Pb, self.sSi))
+        return sum(a.nbytes for a in (self.K, self.Kc, self.Pbk))
 
 
 class Regions:
@@ -95,7 +95,8 @@ class Regions:
         self._CX = -(C @ Hi)  # C x₀ = −C H⁻¹ q = CX Q_w w + CX q_r
         CXw = self._CX @ Qw
         G = C @ Hi @ C.T
-        self._W0 = np.ascontiguousarray(np.hstack([G, CXw]))  # what a build sweeps
+        self._W0 = np.ascontiguousarray(np.hstack([G, CXw]))  # what a build sweeps (in the buffer _W)
+        self._W = np.array(self._W0, order="C")
         self._nr, self._m, self._first = C.shape[0], int(m), int(n_first)
         self._lo, self._hi = np.array(lo, np.float64), np.array(hi, np.float64)
         self._lo0 = self._lo[:m].tolist()
@@ -112,7 +113,7 @@ class Regions:
         self._use(self._maps[()])
         # what a piece of a build costs (a pivot, the extraction), until measured: the set-up's share
         setup = time.perf_counter() - t0
-        self._cost = {"pivot": setup / 4, "finish": setup / 4}
+        self._cost = {"pivot": setup / 4, "extract": setup / 4, "finish": setup / 4}
 
     @property
     def maps(self) -> dict:
@@ -216,27 +217,34 @@ class Regions:
     def piece_cost_s(self) -> float:
         """Seconds the next piece of build work is expected to take; inf without work."""
         if self._build is not None:
-            return self._cost["pivot" if self._build[2] else "finish"]
+            return self._cost["pivot" if self._build[1] else "extract" if self._build[5] is None else "finish"]
         return self._cost["pivot"] if self.pending is not None else np.inf
 
     def build_piece(self) -> bool:
-        """One piece of the pending build (a pivot, or the map's extraction); True when there was work."""
+        """One piece of the pending build (a pivot, or one of the map's two extraction pieces); True when there was
+        work. The build sweeps a buffer kept for it (no allocation, no page faults between samples)."""
         if self._build is None:
             if self.pending is None:
                 return False
             key, self.pending = self.pending, None
             iu, il = (np.frombuffer(k, np.intp) for k in key)
-            self._build = [key, self._W0.copy(), list(np.concatenate([iu, il]).tolist()), iu, il, [np.inf, 0.0]]
+            np.copyto(self._W, self._W0)
+            self._build = [key, np.concatenate([iu, il]).tolist(), iu, il, [np.inf, 0.0], None]
         t0 = time.perf_counter()
-        key, W, todo, iu, il, piv = self._build
+        key, todo, iu, il, piv, part = self._build
         if todo:
-            kind, ok = "pivot", _sweep(W, todo.pop(), piv)
-            if not ok:
+            kind = "pivot"
+            if not _sweep(self._W, todo.pop(), piv):
                 self._done(key, None)
+        elif part is None:
+            kind = "extract"
+            if iu.size + il.size and not piv[0] > _PIVOT_RTOL * piv[1]:  # dependent rows: left to the solver
+                self._done(key, None)
+            else:
+                self._build[5] = self._checks(self._W, iu, il)
         else:
             kind = "finish"
-            well = piv[0] > _PIVOT_RTOL * piv[1] if iu.size + il.size else True
-            self._done(key, self._region(W, iu, il) if well else None)
+            self._done(key, self._finish(self._W, part))
         dt = time.perf_counter() - t0
         # follows a dearer piece at once, forgets one slowed by preemption within a few
         self._cost[kind] = max(dt, 0.5 * self._cost[kind])
@@ -253,62 +261,83 @@ class Regions:
 
     def _region(self, W, iu, il):
         """The stacked map of the set with upper rows ``iu`` and lower rows ``il`` from the swept ``W``."""
+        return self._finish(W, self._checks(W, iu, il))
+
+    def _checks(self, W, iu, il):
+        """The first piece of a map: its rows (first input, checks) and ``K``. After the sweep, an inactive row's
+        map of ``w`` is ``W[i, nr:]`` (``C x₀``'s, less what the active rows take), an active row's multiplier's
+        ``W[j, nr:]`` (unsigned); an active row sits on its bound (no ``w`` in it)."""
         nr, m = self._nr, self._m
         act = np.concatenate([iu, il]).astype(np.intp)
         sign = np.concatenate([np.ones(iu.size), -np.ones(il.size)])
-        inactive = np.setdiff1d(np.arange(nr), act)
-        Mw = np.zeros((nr, W.shape[1] - nr))
-        Mw[inactive] = W[inactive, nr:]  # active rows sit on their bounds: no w in them
-        Pb = np.zeros((nr, act.size))  # C x = C x₀ − Pb (C_S x₀ − b_S)
-        Pb[act, np.arange(act.size)] = 1.0
-        Pb[inactive] = -W[np.ix_(inactive, act)]
-        sSi = sign[:, None] * W[np.ix_(act, act)]
-        Nw = sign[:, None] * W[act, nr:]
-        first = np.arange(m)
+        free = np.ones(nr, bool)  # boolean masks: a fraction of setdiff1d's cost (its sorts)
+        free[act] = False
         moves = np.arange(nr) < self._first
-        up = inactive[(self._hi[inactive] < _BIG) | moves[inactive]]
-        low = inactive[(self._lo[inactive] > -_BIG) | moves[inactive]]
-        K = np.vstack([Mw[first], Mw[up], -Mw[low], -self._c * Nw])
-        if K.shape[0] == m:  # nothing to check: one row that always passes
-            K = np.vstack([K, np.zeros((1, K.shape[1]))])
-        pick = np.where(sign > 0, act, act + nr)  # the active rows' bounds in [hi; lo]
-        b0 = np.concatenate((self._hi, self._lo))[pick]
-        Kc = self._moving(K.shape[0], act, sign, Pb, sSi, up, low)
-        return Region(np.ascontiguousarray(K), Kc, act, Pb, sSi, b0, (first, up, low), sign)
+        up = np.flatnonzero(free & ((self._hi < _BIG) | moves))
+        low = np.flatnonzero(free & ((self._lo > -_BIG) | moves))
+        nu, nl, s = up.size, low.size, act.size
+        K = np.zeros((max(m + nu + nl + s, m + 1), W.shape[1] - nr))  # a row that always passes when none checks
+        Ww = W[:, nr:]
+        K[:m] = Ww[:m]
+        K[act[act < m]] = 0.0
+        K[m:m + nu] = Ww[up]
+        np.negative(Ww[low], out=K[m + nu:m + nu + nl])
+        np.multiply(Ww[act], (-self._c * sign)[:, None], out=K[m + nu + nl:m + nu + nl + s])
+        return K, act, sign, up, low
 
-    def _moving(self, nK, act, sign, Pb, sSi, up, low):
+    def _finish(self, W, part):
+        """The second piece: ``Pbk``, how the active rows' bound values move each of ``v``'s rows (``rows − Pb z``
+        with ``z = C_S x₀ − b_S``; ``Pb = G_:S G_SS⁻¹``, ``I`` on the active rows; ``c·sign·G_SS⁻¹`` for the
+        multipliers), the static bounds of the active rows, ``Kc`` and the region."""
+        K, act, sign, up, low = part
+        m, nu, nl, s = self._m, up.size, low.size, act.size
+        Pbk = np.zeros((K.shape[0], s))
+        first = np.arange(m)
+        held = np.flatnonzero(act < m)  # the active rows of the first input, by position in act
+        free = np.ones(m, bool)
+        free[act[held]] = False
+        free = first[free]
+        Pbk[free] = -W[np.ix_(free, act)]
+        Pbk[act[held], held] = 1.0
+        Pbk[m:m + nu] = -W[np.ix_(up, act)]
+        Pbk[m + nu:m + nu + nl] = W[np.ix_(low, act)]
+        Pbk[m + nu + nl:m + nu + nl + s] = (self._c * sign)[:, None] * W[np.ix_(act, act)]
+        pick = np.where(sign > 0, act, act + self._nr)  # the active rows' bounds in [hi; lo]
+        b0 = np.concatenate((self._hi, self._lo))[pick]
+        Kc = self._moving(K.shape[0], act, sign, Pbk, up, low)
+        return Region(K, Kc, act, Pbk, b0, (first, up, low), sign)
+
+    def _moving(self, nK, act, sign, Pbk, up, low):
         """``Kc`` (nK × 2m): ``v``'s change per change of the first input's bounds ``[hi_1 … hi_m, lo_1 … lo_m]``
-        from the static ones (zero without a slew limit): an active row moves the answer through ``Pb`` and the
-        multipliers through ``sSi``; an inactive one moves its own check."""
-        m, nr = self._m, self._nr
+        from the static ones (zero without a slew limit): an active row moves ``v`` through its column of ``Pbk``,
+        an inactive one moves its own check."""
+        m = self._m
         Kc = np.zeros((nK, 2 * m))
         if not self._first:
             return Kc
-        n_up, n_low = up.size, low.size
         for i in range(m):
-            for col, s in ((i, 1.0), (m + i, -1.0)):  # the upper bound of row i, its lower one
-                pos = np.flatnonzero((act == i) & (sign == s))
-                if pos.size:  # active on this bound: the answer and the multipliers move
-                    j = pos[0]
-                    Kc[:m, col] = Pb[:m, j]
-                    Kc[m:m + n_up, col] = Pb[up, j]
-                    Kc[m + n_up:m + n_up + n_low, col] = -Pb[low, j]
-                    Kc[m + n_up + n_low:m + n_up + n_low + act.size, col] = self._c * sSi[:, j]
-                elif s > 0 and np.any(up == i):  # inactive: its upper check is rows − hi
+            for col, sg in ((i, 1.0), (m + i, -1.0)):  # the upper bound of row i, its lower one
+                hit = np.flatnonzero((act == i) & (sign == sg))
+                if hit.size:  # active on this bound: the answer and the multipliers move
+                    Kc[:, col] = Pbk[:, hit[0]]
+                elif sg > 0 and np.any(up == i):  # inactive: its upper check is rows − hi
                     Kc[m + int(np.flatnonzero(up == i)[0]), col] = -1.0
-                elif s < 0 and np.any(low == i):  # its lower check is lo − rows
-                    Kc[m + n_up + int(np.flatnonzero(low == i)[0]), col] = 1.0
+                elif sg < 0 and np.any(low == i):  # its lower check is lo − rows
+                    Kc[m + up.size + int(np.flatnonzero(low == i)[0]), col] = 1.0
         return Kc
 
     def _offsets(self, r):
         """A region's constant part ``k`` for the current target and the static bounds."""
         first, up, low = r.rows
-        z = self._rr[r.act] - r.b0
-        rows0 = self._rr - r.Pb @ z
-        nu0 = r.sSi @ z
-        k = np.concatenate([rows0[first], rows0[up] - self._hi[up], self._lo[low] - rows0[low], -self._c * nu0])
-        r.k = k if k.size == r.v.size else np.concatenate([k, [0.0]])
-        r.version = self._version
+        rr = self._rr
+        z = rr[r.act] - r.b0
+        k = np.zeros(r.v.size)
+        m, nu, nl = first.size, up.size, low.size
+        k[:m] = rr[first]
+        k[m:m + nu] = rr[up] - self._hi[up]
+        k[m + nu:m + nu + nl] = self._lo[low] - rr[low]
+        k -= r.Pbk @ z
+        r.k, r.version = k, self._version
 
 
 def _sweep(W, k, piv) -> bool:
