@@ -363,7 +363,9 @@ def _step(loop, tick, target, use_fast_path):
         u, kind = _policy_input(loop), "overrun"  # a late plan is never delivered
     elif kind == "failed":
         u = loop.gate.safe_input()
-    return _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
+    _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
+    if kind == "overrun" and loop._idle is not None:  # late already: one piece of the work that ends the overruns
+        loop._idle()
 
 
 def _after(loop, why, kind):

@@ -199,3 +199,43 @@ def test_a_loop_moving_back_and_forth_between_known_sets_does_not_call_the_solve
         np.testing.assert_allclose(step.plan(u, y, target=tgt).inputs, ref.plan(u, y, target=tgt).inputs,
                                    atol=1e-9)
     assert not calls and len(step._regions.maps) == 3
+
+
+def test_a_loop_whose_steps_all_overrun_still_builds_the_running_sets_map(model):
+    # every plan ends after its deadline (simulated time), so the loop never waits for a tick; each overrun step then
+    # offers the controller one piece of its pending work (a map of a set the solver found), which a loop that only
+    # builds while it waits would never do
+    from stimsteer.control.realtime import run_live
+
+    class Slow:  # the fast step, each plan 15 ms of simulated time in a 10 ms period
+        def __init__(self, inner, vt):
+            self._c, self._vt, self.calls = inner, vt, 0
+
+        def __getattr__(self, name):
+            return getattr(self._c, name)
+
+        def plan(self, *a, **kw):
+            self.calls += 1
+            self._vt.t += 0.015 if self.calls > 2 else 1e-4  # the untimed and the timed calibration plans: fast
+            return self._c.plan(*a, **kw)
+
+    class VT:
+        t = 0.0
+
+        def __call__(self):
+            self.t += 1e-6
+            return self.t
+
+        def sleep(self, s):
+            self.t += s
+
+    vt = VT()
+    step = FastStep(ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit())
+    plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, sample_rate_hz=100.0)
+    pieces, idle = [], step.idle
+    step.idle = lambda: pieces.append(1) or idle()
+    run = run_live(Slow(step, vt), plant, n_steps=120, target=_far(model), pace="wall", clock=vt, sleep=vt.sleep,
+                   calibration_steps=1)
+    s = run.summary
+    assert s["counts"]["overrun"] > 20 and s["started_behind"] > 100 and s["unchecked_inputs"] == 0
+    assert len(pieces) >= s["counts"]["overrun"]  # one per overrun at least (and the calibration's)
