@@ -11,7 +11,10 @@ box amplitude limits only (a QP). Timed, in the same run:
 2. ratio B — the direct controller's step ÷ the indirect one's, on the same horizon, with predictors fitted on
    5,000 samples: SPC (``LsqPredictor``) and DeePC (``HankelPredictor``, compressed blocks). Target: <= 3.
 3. the fast step (``FastStep``, issue 20) against a floor, bare OSQP, and at horizon 80 (see the section below).
-4. the live runner at 1 kHz and 10 kHz for ``--live-seconds`` each, with the machine's load printed beside.
+4. the live runner at 1 kHz and 10 kHz for ``--live-seconds`` each, with the machine's load printed beside; at
+   10 kHz under both latency definitions, back to back (``--live-repeats`` times): the old one (wall clock, the
+   simulated plant's step inside the period) and the new one (``run_live(simulated_plant=True)``: the simulated
+   plant's step off the loop's clock, latency from the sample's arrival to the checked input).
 5. the input gate's added cost per step under limits on the delivered sequence (a rolling charge window, an energy
    window, train length and duty cycle at 10 kHz) against the gate with box limits only, and a 10 kHz live run of the
    fast step under them (``--gate-only`` runs this section alone).
@@ -89,6 +92,8 @@ def main(argv=None):
     ap.add_argument("--steps", type=int, default=200, help="closed-loop steps per measurement (default 200)")
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--live-seconds", type=float, default=10.0, help="length of each live run (default 10 s)")
+    ap.add_argument("--live-repeats", type=int, default=1,
+                    help="runs of each 10 kHz live measurement, back to back (default 1; the spread shows the noise)")
     ap.add_argument("--gate-only", action="store_true", help="run section 5 alone (the gate under sequence limits)")
     ap.add_argument("--live-only", action="store_true", help="run sections 4 and 5 alone (live runner, gate)")
     args = ap.parse_args(argv)
@@ -255,7 +260,8 @@ def _fast_section(args, model, plant, limits, target, ind):
 
 # ------------------------------------------------------------------------------ live loops at 1 and 10 kHz (issue 20)
 # Section 4 -- the live runner (stimsteer.control.realtime.run_live) on the same system for --live-seconds in
-# wall-clock time: p50/p99 step latency (tick to decision, plan + gate), jitter, overruns, missed ticks, unchecked
+# wall-clock time: p50/p99 step latency (tick to decision, plan + gate; at 10 kHz with the simulated plant's step
+# inside the period and, back to back, off the loop's clock), jitter, overruns, missed ticks, unchecked
 # inputs (target: p99 < 100 µs at 10 kHz and zero unchecked inputs, on an idle 2-core machine), with FastStep, and
 # with the controller's full plan() at 1 kHz (or the refusal the runner gives, with its figures).
 def _live_report(name, run, usage=None):
@@ -263,12 +269,13 @@ def _live_report(name, run, usage=None):
     lat, jit, c = s["latency_s"], s["jitter_s"], s["counts"]
     us = lambda v: float("nan") if v is None else 1e6 * v  # noqa: E731
     srv = s.get("service_s", {"p50": None, "p99": None})
-    print(f"{name}: {s['n_steps_run']} steps at {s['sample_rate_hz']:g} Hz, latency p50 {us(lat['p50']):.1f} µs, "
+    print(f"{name} [latency: {s['latency_definition']}; load {os.getloadavg()[0]:.1f}]: {s['n_steps_run']} steps at {s['sample_rate_hz']:g} Hz, latency p50 {us(lat['p50']):.1f} µs, "
           f"p99 {us(lat['p99']):.1f} µs, max {us(lat['max']):.0f} µs (of which the step's own work, from its start: "
           f"p50 {us(srv['p50']):.1f} µs, p99 {us(srv['p99']):.1f} µs); jitter p50 {us(jit['p50']):.1f} µs, p99 "
           f"{us(jit['p99']):.1f} µs; overruns {c['overrun']}, missed ticks {c['missed']}, planned {c['planned']}; "
           f"unchecked inputs {s['unchecked_inputs']}, delivered over a hard limit "
-          f"{sum(s['delivered_violations'].values())}")
+          f"{sum(s['delivered_violations'].values())}; the plant's step p50 {us(s['plant_step_s']['p50']):.1f} µs, "
+          f"p99 {us(s['plant_step_s']['p99']):.1f} µs")
     wake = s.get("wake_s") or {}
     if wake.get("p50") is not None:
         print(f"  start of a step: woke after its tick p50 {us(wake['p50']):.1f} µs, p99 {us(wake['p99']):.1f} µs, max "
@@ -317,29 +324,44 @@ def _steal(seconds=0.5):
     return 100.0 * (s1 - s0) / max(t1 - t0, 1)
 
 
+_DEFINITIONS = ((False, "old: the plant's step inside the period"), (True, "new: the simulated plant off the clock"))
+
+
+def _ratio(run):
+    lat = run.summary["latency_s"]["p99"]
+    return "n/a (no planned step)" if lat is None else f"{1e6 * lat / 100.0:.2f}"
+
+
 def _live_section(args, model, plant, limits, target, step, ind):
     from stimsteer.control.realtime import run_live
     from stimsteer.sysid import InvalidParameterError
 
     print(f"\nlive runner (stimsteer live), wall-clock pace, box limits, overrun policy hold; load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores at the start, CPU steal {_steal():.0f} %")
+    print("latency = tick to the checked input. Two definitions, run back to back: the old one (wall clock: the "
+          "simulated plant's step runs inside the period, so a slow simulation makes the next step start behind) "
+          "and the new one (the loop's clock, the simulated plant's step taken off it: a real loop's sample arrives "
+          "from hardware at its tick, and the loop times from that arrival to the input leaving the gate). Same "
+          "gate, same overrun policy, same checks.")
 
     def fresh(rate):
         return LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                   sample_rate_hz=rate)
     seconds = args.live_seconds
-    for name, ctrl, rate in (("plan()", ind, 1_000.0), ("FastStep", step, 1_000.0), ("FastStep", step, 10_000.0)):
+    runs = [("plan()", ind, 1_000.0, True), ("FastStep", step, 1_000.0, True)]
+    runs += [("FastStep", step, 10_000.0, sim) for _ in range(args.live_repeats) for sim, _ in _DEFINITIONS]
+    for name, ctrl, rate, sim in runs:
         try:
             with _usage() as usage:
-                run = run_live(ctrl, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall")
+                run = run_live(ctrl, fresh(rate), n_steps=int(rate * seconds), target=target, pace="wall",
+                               simulated_plant=sim)
         except InvalidParameterError as exc:
             print(f"{name} at {rate:g} Hz: refused -- {exc}")
             continue
-        _live_report(f"{name} at {rate:g} Hz", run, usage)
+        _live_report(f"{name} at {rate:g} Hz, {dict(_DEFINITIONS)[sim]}", run, usage)
         if rate == 10_000.0:
-            lat = run.summary["latency_s"]["p99"]
-            print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget): {1e6 * lat / 100.0:.2f}   (target < 1; "
-                  "an idle 2-core machine)")
+            print(f"ratio (p99 step latency at 10 kHz / the 100 µs budget), {dict(_DEFINITIONS)[sim]}: "
+                  f"{_ratio(run)}   (target < 1; an idle 2-core machine)")
     _stages(step, fresh(10_000.0), target)
 
 
@@ -422,22 +444,30 @@ def _gate_section(args, model, limits, target):
     far = model.C @ np.linalg.solve(np.eye(N_STATES) - model.A, model.B) @ np.array([3.0, -3.0, 3.0, -3.0])
     print(f"live runner with FastStep at {rate:g} Hz for {args.live_seconds:g} s, target beyond reach; load average "
           f"{os.getloadavg()[0]:.1f} at the start, CPU steal {_steal():.0f} %")
-    for name, lim in (("box limits", limits), ("sequence limits", seq)):
+    cases = [(name, lim, sim) for _ in range(args.live_repeats) for name, lim in (("box limits", limits),
+             ("sequence limits", seq)) for sim, _ in _DEFINITIONS]
+    for name, lim, sim in cases:
         ctrl = FastStep(ModelPredictiveController(model=model, limits=lim, horizon_steps=HORIZON,
                                                   input_weight=1e-2).fit())
         plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.01, process_noise_std=0.01,
                                    sample_rate_hz=rate)
         try:
             with _usage() as usage:
-                run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall")
+                run = run_live(ctrl, plant, n_steps=int(rate * args.live_seconds), target=far, pace="wall",
+                               simulated_plant=sim)
         except InvalidParameterError as exc:
             print(f"FastStep, {name}: refused -- {exc}")
             continue
-        _live_report(f"FastStep, {name}", run, usage)
+        _live_report(f"FastStep, {name}, {dict(_DEFINITIONS)[sim]}", run, usage)
         g = run.summary["gate"]
         print(f"  gate: {g['admitted']} as given, {g['reduced']} reduced to the largest safe input, "
-              f"{g['replaced'] - g['reduced']} fallbacks; ratio (p99 latency / 100 µs): "
-              f"{1e6 * run.summary['latency_s']['p99'] / 100.0:.2f}   (target < 1; idle 2-core machine)")
+              f"{g['replaced'] - g['reduced']} fallbacks; maps of active sets kept {_maps(ctrl)}; ratio (p99 "
+              f"latency / 100 µs): {_ratio(run)}   (target < 1; idle 2-core machine)")
+
+
+def _maps(step):
+    r = getattr(step, "_regions", None)
+    return "n/a" if r is None else len([v for v in r.maps.values() if v is not None])
 
 
 if __name__ == "__main__":

@@ -36,6 +36,8 @@ def timing_summary(loop, period, calibration, stop) -> dict:
         "overrun_policy": loop.policy, "n_steps_run": len(loop.events), "stop_reason": stop,
         "latency_s": _quantiles(loop.latency), "service_s": _quantiles(loop.service), "jitter_s": _quantiles(jitter),
         "wake_s": _quantiles(loop.wake), "started_behind": int(loop.n_behind),
+        "latency_clock": "loop" if loop.simulated else "wall", "latency_definition": _definition(loop),
+        "plant_step_s": _quantiles(loop.plant_t),
         "calibration_s": dict(calibration), "counts": counts,
         "gate": dict(zip(("admitted", "replaced", "reduced", "unavoidable"), counted)),
         "unchecked_inputs": len(loop.U) - counted[0] - counted[1],
@@ -43,6 +45,14 @@ def timing_summary(loop, period, calibration, stop) -> dict:
         "energy_window_steps": window,
         "sequence_limits": _sequence_limits(lim),
     }
+
+
+def _definition(loop) -> str:
+    """What the latency figures count, in words (the run's summary and the command's output carry it)."""
+    if loop.simulated:
+        return ("tick (the sample's arrival) to the checked input, on the loop's clock: the simulated plant's step "
+                "(the hardware's time) taken off it")
+    return "tick to the checked input, wall clock: the plant's step runs inside the period"
 
 
 def _sequence_limits(lim) -> dict:

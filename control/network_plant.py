@@ -3,6 +3,8 @@ the linear network plant (see :mod:`stimsteer.control.plants` for the model's eq
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from ..sysid import SessionError, StateSpaceModel, UnstableModelError, kalman_gain
@@ -156,7 +158,7 @@ class _NetworkPlant:
                     f"u_k must hold one value per input, shape ({self.n_inputs},); got shape {u.shape}."
                 )
             u = u.reshape(self.n_inputs)
-        if not np.isfinite(u).all():
+        if not all(map(math.isfinite, u.tolist())):  # plain floats: a handful of inputs, a live loop's every sample
             raise SessionError(f"u_k holds NaN or infinite values: {u}. Give finite amplitudes.")
         return u
 

@@ -40,6 +40,12 @@ is ``|tick interval − T|`` (``pace`` "wall" or "source"). With ``pace="wall"``
 its cause: the *wake-up lateness* (start − tick) of the steps whose tick the loop was waiting for (sleep and spin
 wake-up, preemption while waiting, idle work that ran long), and the count of steps that *started behind* (their
 tick had passed when the previous step ended). Each reported as p50/p99/max, with the counts of each marker.
+
+Which clock those figures are on is declared (``summary["latency_clock"]``, ``"latency_definition"``): the wall
+clock by default, where the plant's ``step`` (sending the input, reading the next sample) runs inside the period;
+with ``simulated_plant=True`` the loop's clock, from which a simulated plant's step is taken off -- hardware
+samples on its own clock, and a real loop's latency runs from the sample's arrival to the checked input. The plant's
+step time is reported either way (``plant_step_s``).
 """
 
 from __future__ import annotations
@@ -98,8 +104,10 @@ class LiveRun:
 class _Loop:
     """The mutable state of one run: delivered inputs and received outputs (preallocated), gate, clock, markers."""
 
-    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity):
+    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity, simulated_plant=False):
         self.c, self.plant, self.gate, self.T = controller, plant, gate, period
+        # a simulated plant's step is the hardware's time, not the loop's: it is taken off the loop's clock
+        self.simulated, self.plant_s, self.plant_t = bool(simulated_plant), 0.0, []
         self.policy, self.pace, self.clock, self.sleep = policy, pace, clock, time.sleep
         # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
         self._u = np.zeros((capacity, controller.n_inputs_))
@@ -155,11 +163,17 @@ class _Loop:
         i = self.n
         self._u[i] = sent
         self.n = i + 1
+        t0 = self.clock()
         try:
             y = np.asarray(self.plant.step(sent), np.float64).reshape(-1)
         except StimsteerError:
             self._gap(i)
             raise
+        finally:
+            dt = self.clock() - t0
+            self.plant_t.append(dt)
+            if self.simulated:
+                self.plant_s += dt
         if y.shape == self._y_shape and math.isfinite(np.dot(self._ones, y)):  # NaN or inf anywhere: not finite
             self._y[i] = y
             self.missing_run = 0
@@ -183,8 +197,8 @@ class _Loop:
             if left <= 0:
                 return now
             if idle is not None and left > 2.0 * self.c.idle_cost_s:  # only with time to spare before the tick
-                idle()
-                idle = None
+                if not idle():  # a piece of work done: the clock is read again before the next
+                    idle = None
             elif left > _SPIN_S:
                 self.sleep(left - _SPIN_S)
             now = self.clock()
@@ -192,7 +206,8 @@ class _Loop:
 
 def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
              seed=None, x0=None, warmup_inputs=None, calibration_steps=20, max_stall_s=1.0, use_fast_path=None,
-             output_units="a.u.", clock=time.perf_counter, offset_free=None, sleep=time.sleep) -> LiveRun:
+             output_units="a.u.", clock=time.perf_counter, offset_free=None, sleep=time.sleep,
+             simulated_plant=False) -> LiveRun:
     """Run a fitted controller against a plant in real time, with deadlines, and record the run as a session.
 
     Parameters
@@ -233,6 +248,14 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         Plan offset-free with this output-disturbance model
         (:class:`~stimsteer.control.mpc.offset_free.OffsetFreeController`); the estimate is updated only from
         samples whose delivered input is the one planned (a held, replaced or fallback input teaches it nothing).
+    simulated_plant : bool, default False
+        True when ``plant`` is a simulation standing in for hardware that samples on its own clock (a benchmark,
+        ``stimsteer live --plant``): the time its ``step`` takes is the simulated hardware's, not the loop's, and is
+        taken off the loop's clock -- ticks, latency, overruns, missed ticks and jitter are counted as if the plant
+        ran elsewhere (the run takes that much longer in wall time), so the latency is the time from the sample's
+        arrival (its tick) to the checked input, as a loop beside real hardware times it. False: the plant's step
+        runs inside the period (the streaming bridge's step sends the input and reads the next sample: loop work).
+        Nothing else changes: every input is gated, a late plan is never delivered.
 
     Returns
     -------
@@ -254,7 +277,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     warm = _warmup(controller, warmup_inputs)
     gate = _gate(controller, plant)
     capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
-    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity)
+    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity, simulated_plant)
     loop.sleep = sleep
     best = _calibrate(controller, warm, target, gate, int(calibration_steps), use_fast_path, clock)
     if period < best["min"]:
@@ -289,9 +312,11 @@ def _run(loop, warm, n_steps, target, max_stall_s, use_fast_path):
         for u in warm:
             loop.deliver(u)
         stall_limit = max(1, int(np.ceil(max_stall_s / loop.T)))
+        loop.plant_s, loop.plant_t = 0.0, []  # the controlled samples' (the warm-up has no deadline)
         t0 = loop.clock() + loop.T
         for k in range(int(n_steps)):
-            _step(loop, t0 + k * loop.T, target, use_fast_path)
+            # a simulated plant's time so far moves the schedule: ticks keep the loop's clock
+            _step(loop, t0 + k * loop.T + loop.plant_s, target, use_fast_path)
             if loop.missing_run >= stall_limit:
                 missing = loop.missing_run
                 stop = (f"no sample arrived for {missing} samples ({missing * loop.T:.3g} s >= max_stall_s "
@@ -316,7 +341,7 @@ def _step(loop, tick, target, use_fast_path):
     c, T = loop.c, loop.T
     start = loop.start = loop.wait_tick(tick)
     base = tick if loop.pace == "wall" else start
-    loop.ticks.append(start)
+    loop.ticks.append(start - loop.plant_s)
     if loop.pace == "wall":
         if loop.waited:
             loop.wake.append(start - tick)
@@ -338,7 +363,9 @@ def _step(loop, tick, target, use_fast_path):
         u, kind = _policy_input(loop), "overrun"  # a late plan is never delivered
     elif kind == "failed":
         u = loop.gate.safe_input()
-    return _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
+    _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
+    if kind == "overrun" and loop._idle is not None:  # late already: one piece of the work that ends the overruns
+        loop._idle()
 
 
 def _after(loop, why, kind):
@@ -391,7 +418,8 @@ def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
     if hasattr(controller, "idle_cost_s"):
         controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
                         use_fast_path=use_fast_path)
-        controller.idle()
+        while controller.idle():  # every piece of the map: no deadline yet
+            pass
     for i in range(n):
         fresh = InputGate(controller.limits_, energy_window_steps=energy_window(controller))  # built untimed
         t0 = clock()

@@ -133,7 +133,8 @@ def _lines(run, out) -> list:
         f"ran {s['n_steps_run']} samples at {s['sample_rate_hz']:g} Hz ({s['pace']} pace, overrun policy "
         f"{s['overrun_policy']}); recorded {run.session.n_samples} samples to {out / 'run.h5'}",
         f"step latency p50 {us(lat['p50'])}, p99 {us(lat['p99'])}, max {us(lat['max'])}; jitter p50 "
-        f"{us(jit['p50'])}, p99 {us(jit['p99'])}",
+        f"{us(jit['p50'])}, p99 {us(jit['p99'])} ({s['latency_definition']}; plant step p50 "
+        f"{us(s['plant_step_s']['p50'])})",
         f"planned {c['planned']}, overruns {c['overrun']}, missed ticks {c['missed']}, failed plans {c['failed']}, "
         f"samples without data {c['no_data']}",
         f"gate: {g['admitted']} inputs passed as given, {g['reduced']} reduced to the largest safe input under a "
@@ -162,9 +163,11 @@ def run(args) -> int:
         n_steps = max(1, int(round(args.duration_s * rate)))
         with contextlib.ExitStack() as stack:
             plant, pace = _source(args, ctrl, rate, stack)
+            # a simulated --plant run directly ("wall" pace) stands in for hardware: its step is off the loop's clock
             result = run_live(ctrl, plant, n_steps=n_steps, target=target, pace=pace, seed=args.seed,
                               overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units,
-                              offset_free=None if args.offset_free == "off" else args.offset_free)
+                              offset_free=None if args.offset_free == "off" else args.offset_free,
+                              simulated_plant=pace == "wall")
             if pace == "source":  # the bridge's own counts of the stream
                 result.summary["stream"] = {"dropped": plant.n_dropped, "missing": plant.n_missing}
         summary = jsonable({**result.summary, "model_file": str(args.model), "limits_file": str(args.limits),

@@ -32,12 +32,12 @@ streaming bridge). A full plan per step instead would cost milliseconds, far bey
 from __future__ import annotations
 
 import math
-import time
 
 import numpy as np
 
 from ...sysid import InvalidParameterError, SessionError, check_fitted
 from .condensed import _LinearStateMap
+from . import _step_regions
 from .fastqp import _BoxQP, _DenseQP, dense_solver_available
 
 __all__ = ["FastStep", "StepResult"]
@@ -47,9 +47,6 @@ _ACCEPT_RTOL = 1e-7
 # the active bounds it keeps (benchmark system, most bounds active: 5 µs at 80 inputs, 67 µs at 320), the box
 # solver's is one O(n²) product plus ~20 µs of fixed cost (32 µs at 80, 50 µs at 320; bench_control.py).
 _BOX_MIN_VARS = 160
-_MAX_REGIONS = 64  # active sets whose answer maps are kept ...
-_MAX_MAP_BYTES = 64 * 2**20  # ... within this much memory (a map holds about two matrices of C x₀'s map's size)
-_MAX, _MIN = np.maximum.reduce, np.minimum.reduce  # without ndarray.max's Python wrapper (a live step's check)
 
 
 class StepResult:
@@ -113,8 +110,10 @@ class FastStep:
         self._slew = None if c._slew is None else np.asarray(c._slew, np.float64)
         self._T, self._m, self._p, self._N = T, m, p, N
         self._tol = _ACCEPT_RTOL * max(1.0, float(np.max(np.abs(np.concatenate([c._lo, c._hi])))))
-        self._target, self._qr, self._rr = None, None, None
+        self._target, self._qr = None, None
         self._w, self._q, self._ones = np.empty(T * (m + p)), np.empty(N * m), np.ones(N * m)
+        # the window's two halves as (T, m) and (T, p) views of w: filled by one copy each, no reshape
+        self._wu, self._wy = self._w[:T * m].reshape(T, m), self._w[T * m:].reshape(T, p)
         big = 1e30  # the dense solver's "no bound"
         self._row_lo, self._row_hi = np.clip(self._row_lo, -big, big), np.clip(self._row_hi, -big, big)
         self._lo_buf, self._hi_buf = self._row_lo.copy(), self._row_hi.copy()
@@ -135,15 +134,16 @@ class FastStep:
         return self
 
     def idle(self):
-        """Build the answer map of the active set the solver last found new (its cost: ``idle_cost_s``); a live
-        runner calls it between samples when that much time is left before the next tick. True when it built one."""
-        return self._regions is not None and self._regions.build_pending()
+        """One piece of the answer map of an active set the solver found new (a pivot of its elimination, or the
+        map's extraction; its expected cost: ``idle_cost_s``); a live runner calls it between samples while that
+        much time is left before the next tick. True when there was work."""
+        return self._regions is not None and self._regions.build_piece()
 
     @property
     def idle_cost_s(self) -> float:
         """Seconds :meth:`idle` is expected to take (from the maps built so far); inf without work."""
         r = self._regions
-        return r.build_s if r is not None and r.pending is not None else math.inf
+        return math.inf if r is None else r.piece_cost_s()
 
     def _target_term(self, target):
         t = np.asarray(target, np.float64)
@@ -153,7 +153,8 @@ class FastStep:
                 raise SessionError(f"the fast step takes a constant output target of {self._p} finite values; got "
                                    f"shape {t.shape}.")
             self._target, self._qr = key, self._q0 + self._Qr @ np.tile(t, self._N)
-            self._rr = None if self._regions is None else self._regions.offset(self._qr)
+            if self._regions is not None:
+                self._regions.offset(self._qr)
         return self._qr
 
     def plan(self, u_past, y_past, *, target, last_input=None, use_fast_path=None):
@@ -165,18 +166,19 @@ class FastStep:
         """
         T, m = self._T, self._m
         w, q, lo, hi = self._w, self._q, self._lo_buf, self._hi_buf
-        w[:T * m] = u_past[-T:].reshape(-1)
-        w[T * m:] = y_past[-T:].reshape(-1)
+        self._wu[...] = u_past[-T:]
+        self._wy[...] = y_past[-T:]
         last = u_past[-1] if last_input is None else np.asarray(last_input, np.float64)
         qr = self._target_term(target)
         lo_m, hi_m = self._lo_l, self._hi_l
-        if self._slew_l is not None:  # only the first step's window moves: around the last delivered input
+        moving = self._slew_l is not None
+        if moving:  # only the first step's window moves: around the last delivered input
             lo_m, hi_m = _slew_window(last.tolist(), self._slew_l, lo_m, hi_m)
             if lo_m is None:
                 return self._fallback(last, "no input meets the limits from the last one")
             lo[:m], hi[:m] = lo_m, hi_m
         regions, status = self._regions, "optimal"
-        x = None if regions is None else regions.solve(w, self._rr, lo, hi)
+        x = None if regions is None else regions.solve(w, lo_m if moving else None, hi_m)
         if x is None:
             np.dot(self._Qw, w, out=q)
             q += qr
@@ -272,7 +274,8 @@ def _regions(qp, H2, slew, lo, hi, Qw, m):
         return None
     if not _well_factored(H2, 1e-6):
         return None
-    return _Regions(H2, None if slew is None else slew[0].toarray(), lo, hi, Qw, 0 if slew is None else m)
+    return _step_regions.Regions(H2, None if slew is None else slew[0].toarray(), lo, hi, Qw,
+                                 0 if slew is None else m, m)
 
 
 def _well_factored(M, rel: float) -> bool:
@@ -288,132 +291,3 @@ def _well_factored(M, rel: float) -> bool:
 def _state_map(model, T):
     """``E`` with ``estimate_state(u, y) = E [vec u; vec y]`` for windows of ``T`` samples (it is linear)."""
     return _LinearStateMap(model, T)._build()
-
-
-class _Regions:
-    """Exact solutions of the step's QP on a known optimal active set, without the solver.
-
-    The QP is ``min ½xᵀHx + qᵀx`` s.t. ``lo <= C x <= hi``, ``C = [I; A]``, with ``q = Q_w w + q_r`` (the window
-    ``w``, the target's term ``q_r``). On an active set ``S`` (rows ``C_S`` held at their bounds ``b_S``) the KKT
-    conditions ``H x + q + C_Sᵀ ν = 0``, ``C_S x = b_S`` give, with the unconstrained rows ``C x₀ = −C H⁻¹ q`` and
-    ``G = C H⁻¹ Cᵀ``: ``ν = G_SS⁻¹ (C_S x₀ − b_S)`` and ``C x = C x₀ − G_{:S} ν``, both affine in ``w`` with
-    matrices fixed per set. That ``x`` is *the* optimum (``H`` positive definite) exactly when every row meets its
-    bounds and every ``ν`` has the sign of its bound (``>= 0`` on an upper, ``<= 0`` on a lower one): both are
-    checked at every use, so a set that no longer fits goes back to the solver, and the answer is the solver's to
-    rounding either way. Maps are built for the sets the solver reports (its multipliers), outside the step
-    (:meth:`build_pending`), at most ``_MAX_REGIONS`` of them within ``_MAX_MAP_BYTES``; the unconstrained set's is
-    there from the start.
-
-    References
-    ----------
-    Bemporad A., Morari M., Dua V., Pistikopoulos E. N. (2002), The explicit linear quadratic regulator for
-    constrained systems, Automatica 38:3–20 (the affine solution on each active set and its two checks).
-    """
-
-    def __init__(self, H, A, lo, hi, Qw, n_first):
-        t0 = time.perf_counter()
-        n = H.shape[0]
-        C = np.eye(n) if A is None else np.vstack([np.eye(n), A])
-        Hi = np.linalg.inv(H)
-        self._CX = -(C @ Hi)  # C x₀ = −C H⁻¹ q = CX Q_w w + CX q_r
-        self._CXw = np.ascontiguousarray(self._CX @ Qw)
-        self._G = C @ Hi @ C.T
-        self._lo, self._hi = np.array(lo), np.array(hi)  # the bounds that do not move (the first n_first do)
-        self._d, self._e = np.empty(len(lo)), np.empty(len(lo))  # scratch of the bound check
-        self._n, self._first = n, int(n_first)
-        finite = np.abs(np.concatenate([lo, hi]))
-        self._ptol = 1e-9 * max(1.0, float(finite[finite < 1e29].max(initial=0.0)))
-        self._dtol = 1e-9 * max(1.0, float(np.abs(H).max())) * max(1.0, self._ptol * 1e9)
-        self._rr, self._version, self.pending = None, 0, None
-        self._max = int(max(1, min(_MAX_REGIONS, _MAX_MAP_BYTES // (2 * self._CXw.nbytes + self._G.nbytes + 1))))
-        self._maps = {(): self._region(np.zeros(0, np.intp), np.zeros(0, np.intp))}
-        # a set's map costs at most about this (an inverse and products of the same sizes) until one is measured
-        self.build_s = time.perf_counter() - t0
-        self._current = self._maps[()]
-
-    def offset(self, q_r):
-        """Take the target's term ``q_r`` of ``q`` (when the target changes); returns ``C x₀``'s part from it."""
-        self._rr, self._version = self._CX @ q_r, self._version + 1
-        return self._rr
-
-    def solve(self, w, rows_r, lo, hi):
-        """The optimum for the window ``w`` on the current set, or None when it is not optimal there, has no map, or
-        ``w`` is not finite (NaN fails every compare)."""
-        r = self._current
-        if r is None:
-            return None
-        Mw, Nw, act, moving = r[:4]
-        if r[6] != self._version:
-            self._offsets(r)
-        rows = Mw @ w
-        rows += r[4]
-        if Nw is not None:
-            nu = Nw @ w
-            nu += r[5]
-            if moving:  # an active row of the first input, whose bounds move with the slew window
-                db = np.concatenate((hi, lo))[r[9]] - r[10]
-                rows += r[7] @ db
-                nu -= r[8] @ db
-            if not _MIN(nu) >= -self._dtol:  # NaN fails the compare
-                return None
-        # the largest excess over either bound, in four ufunc calls (the same differences as two-sided compares)
-        d, e = self._d, self._e
-        if not _MAX(np.maximum(np.subtract(rows, hi, out=d), np.subtract(lo, rows, out=e), out=d)) <= self._ptol:
-            return None
-        return rows[:self._n]
-
-    def note(self, lam):
-        """Take the active set of the solver's last answer (multipliers ``lam``, one per row) as the current one."""
-        if lam is None:
-            return
-        lam = np.asarray(lam, np.float64)
-        upper, lower = np.flatnonzero(lam > 0), np.flatnonzero(lam < 0)
-        key = (upper.tobytes(), lower.tobytes()) if upper.size + lower.size else ()
-        if key in self._maps:
-            self._current = self._maps[key]
-        else:
-            self._current = None
-            if len(self._maps) < self._max:
-                self.pending = key
-
-    def build_pending(self) -> bool:
-        """Build the map of the pending set; True when there was one."""
-        key, self.pending = self.pending, None
-        if key is None:
-            return False
-        t0 = time.perf_counter()
-        self._maps[key] = self._current = self._region(*(np.frombuffer(k, np.intp) for k in key))
-        # follows a larger set at once, forgets a build slowed by preemption within a few
-        self.build_s = max(time.perf_counter() - t0, 0.5 * self.build_s)
-        return True
-
-    def _region(self, iu, il):
-        """``[Mw, Nw, act, moving, rows0, nu0, version, Pb, sSi, pick, b0]`` of the set with upper rows ``iu`` and
-        lower rows ``il``: ``C x = Mw w + rows0`` and the multipliers, signed (>= 0 when optimal), ``Nw w + nu0``
-        (``rows0``, ``nu0`` for the static bounds ``b0`` and the target, of that ``version``; ``moving`` when a row
-        of the first input is active and its bounds move, whose change ``db`` adds ``Pb db`` and ``−sSi db``); None
-        when ``G_SS`` is singular (dependent rows: the set is left to the solver)."""
-        act = np.concatenate([iu, il])
-        if act.size == 0:
-            return [self._CXw, None, act, False, None, None, -1]
-        sign = np.concatenate([np.ones(iu.size), -np.ones(il.size)])
-        Gs = self._G[np.ix_(act, act)]
-        if not _well_factored(Gs, 1e-7):
-            return None
-        Si = np.linalg.inv(Gs)
-        Pb = self._G[:, act] @ Si  # C x = C x₀ − Pb (C_S x₀ − b_S)
-        Mw = self._CXw - Pb @ self._CXw[act]
-        sSi = sign[:, None] * Si
-        pick = np.where(sign > 0, act, act + self._hi.size)  # the active rows' bounds in [hi; lo]
-        b0 = np.concatenate((self._hi, self._lo))[pick]
-        moving = bool(np.any(act < self._first))
-        return [Mw, sSi @ self._CXw[act], act, moving, None, None, -1, Pb, sSi, pick, b0]
-
-    def _offsets(self, r):
-        """A region's constant parts ``rows0``, ``nu0`` for the current target and the static bounds."""
-        if r[1] is None:
-            r[4], r[6] = self._rr, self._version
-            return
-        act, Pb, sSi, b0 = r[2], r[7], r[8], r[10]
-        z = self._rr[act] - b0
-        r[4], r[5], r[6] = self._rr - Pb @ z, sSi @ z, self._version

@@ -64,7 +64,7 @@ def test_answers_on_known_active_sets_equal_the_solvers(model, limits):
     solve = step._regions.solve
     step._regions.solve = lambda *a: hits.append(solve(*a) is not None) or solve(*a)
     windows = _closed_loop(model, step, _far(model))
-    assert len(step._regions._maps) >= 3 and sum(hits) >= len(hits) // 2  # sets were found and reused
+    assert len(step._regions.maps) >= 3 and sum(hits) >= len(hits) // 2  # sets were found and reused
     for u, y, last, tgt in windows:
         got = step.plan(u, y, target=tgt, last_input=last)
         want = ref.plan(u, y, target=tgt, last_input=last)
@@ -83,18 +83,21 @@ def test_a_map_that_does_not_fit_the_window_is_never_used(model):
     step, ref = FastStep(ctrl), FastStep(ctrl)
     ref._regions = None
     windows = _closed_loop(model, step, _far(model))
-    maps = [r for r in step._regions._maps.values() if r is not None]
+    maps = [r for r in step._regions.maps.values() if r is not None]
     assert len(maps) >= 3
     wrong = 0
     for u, y, last, tgt in windows[::5]:
         want = ref.plan(u, y, target=tgt, last_input=last).inputs
         for r in maps:
-            step._regions._current = r
+            step._regions.current = r
             np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs, want, atol=1e-9)
-            step._regions._current = r
+            step._regions.current = r
             step._regions._offsets(r)
-            rows = r[0] @ step._w + r[4]
-            wrong += int(np.max(np.abs(rows[:2] - want[0])) > 1e-6)
+            first = r.K[:2] @ step._w + r.k[:2]  # the map's first input, its checks ignored
+            if np.any(r.act < 2):  # the first input's bounds moved with the slew window: their change counts
+                d = np.concatenate([step._hi_buf[:2] - step._row_hi[:2], step._lo_buf[:2] - step._row_lo[:2]])
+                first = first + r.Kc[:2] @ d
+            wrong += int(np.max(np.abs(first - want[0])) > 1e-6)
     assert wrong > 0
 
 
@@ -115,7 +118,7 @@ def test_a_live_run_builds_maps_between_samples_and_restores_the_collector(model
     assert gc.isenabled()
     run = run_live(step, plant, n_steps=200, target=_far(model), pace="none")
     assert gc.isenabled() and gc.get_freeze_count() == 0
-    assert len(step._regions._maps) >= 2
+    assert len(step._regions.maps) >= 2
     s = run.summary
     assert s["unchecked_inputs"] == 0 and sum(s["delivered_violations"].values()) == 0
     assert s["service_s"]["p50"] <= s["latency_s"]["p50"] + 1e-12 and s["service_s"]["max"] > 0
@@ -128,16 +131,16 @@ def test_a_live_run_builds_maps_between_samples_and_restores_the_collector(model
 
 
 def test_the_maps_kept_stay_within_their_memory_bound(model, monkeypatch):
-    from stimsteer.control.mpc import fast_step
+    from stimsteer.control.mpc import _step_regions
 
     ctrl = ModelPredictiveController(model=model, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
-    monkeypatch.setattr(fast_step, "_MAX_MAP_BYTES", 1)  # room for the unconstrained set's map alone
+    monkeypatch.setattr(_step_regions, "MAX_MAP_BYTES", 1)  # room for the unconstrained set's map alone
     step, ref = FastStep(ctrl), FastStep(ctrl)
     ref._regions = None
     for u, y, last, tgt in _closed_loop(model, step, _far(model), n=60)[::6]:
         np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs,
                                    ref.plan(u, y, target=tgt, last_input=last).inputs, atol=1e-9)
-    assert list(step._regions._maps) == [()]
+    assert list(step._regions.maps) == [()]
 
 
 def test_calibration_builds_the_warm_up_sets_map_before_it_times_the_step(model):
@@ -150,4 +153,89 @@ def test_calibration_builds_the_warm_up_sets_map_before_it_times_the_step(model)
     step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
     best = _calibrate(step, np.zeros((3, 2)), _far(model), None, 5, None, time.perf_counter)
     assert len(calls) == 1 and best["n"] == 5  # the untimed first plan alone went to the solver
-    assert len(step._regions._maps) == 2 and step.idle_cost_s == np.inf  # bounds bind: a new set, its map built
+    assert len(step._regions.maps) == 2 and step.idle_cost_s == np.inf  # bounds bind: a new set, its map built
+
+
+def test_a_sets_map_is_built_a_pivot_at_a_time_between_samples(model):
+    # a map is built in pieces a live loop fits between samples: one pivot of the elimination per piece (each a
+    # rank-one update), then the extraction in two -- never the whole build at once; the map then answers as the
+    # solver
+    ctrl = ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    u, y = np.zeros((3, 2)), np.zeros((3, 3))
+    assert step.idle_cost_s == np.inf and not step.idle()  # nothing to build yet
+    want = step.plan(u, y, target=_far(model))  # the solver: its active set is new
+    active = int(np.count_nonzero(step._qp.lam))
+    assert active >= 4 and np.isfinite(step.idle_cost_s)
+    pieces = 0
+    while step.idle():
+        pieces += 1
+        assert pieces == active + 2 or step._regions.has_work  # the map is ready only after the last piece
+    assert pieces == active + 2 and step.idle_cost_s == np.inf
+    calls, solve = [], step._qp.solve_finite
+    step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
+    got = step.plan(u, y, target=_far(model))
+    assert not calls  # the map answered
+    np.testing.assert_allclose(got.inputs, want.inputs, atol=1e-9)
+    np.testing.assert_allclose(got.inputs, ref.plan(u, y, target=_far(model)).inputs, atol=1e-9)
+
+
+def test_a_loop_moving_back_and_forth_between_known_sets_does_not_call_the_solver(model):
+    # two windows whose optima lie on different active sets, in turn (as under a gate that reduces every other
+    # input): once both maps exist, each step is answered by one of the recent sets, not by the solver
+    ctrl = ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    wins = [(np.zeros((3, 2)), np.zeros((3, 3)), _far(model)), (np.zeros((3, 2)), np.zeros((3, 3)), -_far(model))]
+    for u, y, tgt in wins:
+        step.plan(u, y, target=tgt)
+        while step.idle():
+            pass
+    calls, solve = [], step._qp.solve_finite
+    step._qp.solve_finite = lambda *a: calls.append(1) or solve(*a)
+    for k in range(10):
+        u, y, tgt = wins[k % 2]
+        np.testing.assert_allclose(step.plan(u, y, target=tgt).inputs, ref.plan(u, y, target=tgt).inputs,
+                                   atol=1e-9)
+    assert not calls and len(step._regions.maps) == 3
+
+
+def test_a_loop_whose_steps_all_overrun_still_builds_the_running_sets_map(model):
+    # every plan ends after its deadline (simulated time), so the loop never waits for a tick; each overrun step then
+    # offers the controller one piece of its pending work (a map of a set the solver found), which a loop that only
+    # builds while it waits would never do
+    from stimsteer.control.realtime import run_live
+
+    class Slow:  # the fast step, each plan 15 ms of simulated time in a 10 ms period
+        def __init__(self, inner, vt):
+            self._c, self._vt, self.calls = inner, vt, 0
+
+        def __getattr__(self, name):
+            return getattr(self._c, name)
+
+        def plan(self, *a, **kw):
+            self.calls += 1
+            self._vt.t += 0.015 if self.calls > 2 else 1e-4  # the untimed and the timed calibration plans: fast
+            return self._c.plan(*a, **kw)
+
+    class VT:
+        t = 0.0
+
+        def __call__(self):
+            self.t += 1e-6
+            return self.t
+
+        def sleep(self, s):
+            self.t += s
+
+    vt = VT()
+    step = FastStep(ModelPredictiveController(model=model, limits=BOX, horizon_steps=8, input_weight=1e-2).fit())
+    plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, sample_rate_hz=100.0)
+    pieces, idle = [], step.idle
+    step.idle = lambda: pieces.append(1) or idle()
+    run = run_live(Slow(step, vt), plant, n_steps=120, target=_far(model), pace="wall", clock=vt, sleep=vt.sleep,
+                   calibration_steps=1)
+    s = run.summary
+    assert s["counts"]["overrun"] > 20 and s["started_behind"] > 100 and s["unchecked_inputs"] == 0
+    assert len(pieces) >= s["counts"]["overrun"]  # one per overrun at least (and the calibration's)

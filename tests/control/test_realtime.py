@@ -217,6 +217,44 @@ def test_a_wall_paced_run_marks_missed_ticks_after_a_long_step(system):
     assert _independent_check(u) == (0, 0, 0)
 
 
+class _SlowPlant:
+    """A plant whose step takes ``step_s`` of simulated time (a simulation dearer than the loop)."""
+
+    def __init__(self, inner, clock, step_s):
+        self._p, self._clock, self._step_s = inner, clock, step_s
+        self.n_inputs, self.n_outputs, self.sample_rate_hz = inner.n_inputs, inner.n_outputs, inner.sample_rate_hz
+
+    def reset(self, seed=None, x0=None):
+        self._p.reset(seed=seed, x0=x0)
+
+    def step(self, u):
+        self._clock.t += self._step_s
+        return self._p.step(u)
+
+
+@pytest.mark.parametrize("simulated", [False, True])
+def test_a_simulated_plants_step_is_taken_off_the_loops_clock_only_when_declared(system, simulated):
+    # plans take 4 ms and the plant's step 7 ms of a 10 ms period: inside the period every step ends after the next
+    # tick (the plant's time counted); declared simulated, the loop keeps time as if the plant ran elsewhere
+    model, target = system
+    vt = _VirtualTime()
+    c = _Faulty(_controller(model), clock=vt, step_s=0.004)
+    plant = _SlowPlant(_plant(model, rate=100.0), vt, 0.007)
+    run = run_live(c, plant, n_steps=40, target=target, pace="wall", clock=vt, sleep=vt.sleep,
+                   simulated_plant=simulated)
+    s = run.summary
+    assert s["latency_clock"] == ("loop" if simulated else "wall")
+    assert ("taken off" in s["latency_definition"]) == simulated
+    assert 0.007 <= s["plant_step_s"]["p50"] <= 0.00701  # reported either way
+    if simulated:  # each step waited for its tick, and its latency is the plan's time (+ a few clock readings)
+        assert s["started_behind"] == 0 and set(run.events) == {"planned"}
+        assert 0.004 <= s["latency_s"]["p50"] <= s["latency_s"]["max"] <= 0.00402
+        assert s["jitter_s"]["max"] <= 2e-5
+    else:  # the schedule slips: steps start behind, ticks pass unplanned
+        assert s["started_behind"] > 10 and s["counts"]["missed"] > 0
+    assert s["unchecked_inputs"] == 0 and _independent_check(np.asarray(run.session.u)) == (0, 0, 0)
+
+
 class _StallingPlant:
     """A plant whose samples stop arriving after ``stall_at`` controlled steps (a stalled inlet)."""
 
