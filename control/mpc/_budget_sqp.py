@@ -39,8 +39,8 @@ class _Windows:
     @staticmethod
     def _ramp(b, last):
         """``max(|v_i| − t·slew_i, 0)`` for the inputs with a slew limit, shape (n_tail, n_limited), and signs."""
-        t = np.arange(1, b.n_tail + 1)[:, None]
-        return np.maximum(np.abs(last[b.fin])[None, :] - t * b.slew[b.fin][None, :], 0.0), np.sign(last[b.fin])
+        v = last[b._fin_idx]  # b._ramp_drop: t·slew of the ramp's steps, computed once per budget
+        return np.maximum(np.abs(v)[None, :] - b._ramp_drop, 0.0), np.sign(v)
 
     def excess(self, u):
         """``g(u) − left`` for every window (relative to its budget), and the Jacobian in ``u`` (n, N·m)."""

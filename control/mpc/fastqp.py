@@ -49,45 +49,46 @@ _SILENT = _Silent()
 
 
 class _FastQP:
-    """One OSQP problem ``min ½zᵀPz + qᵀz s.t. l <= Az <= u``, set up once; each solve only updates q, l, u."""
+    """One OSQP problem ``min ½zᵀPz + qᵀz s.t. l <= Az <= u``, set up once; each solve only updates q, l, u.
+
+    OSQP is imported and the problem set up at the first solve: behind the dense path (:class:`_DenseSoftQP`) it is
+    a fallback that most controllers never call (the demo's bench set up 33 problems and solved none).
+    """
 
     def __init__(self, P, A, n_vars, tight=True):
-        import osqp
-
         self.n_vars = n_vars
-        self.solver = osqp.OSQP()
-        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
-        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
+        self.solver = None
         P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
         A = sp.csc_matrix(A)
         self.n_rows = A.shape[0]
-        self._problem = (P, A, tight)  # what a copy sets up again
-        self._setup()
+        self._problem = (P, A, tight)  # what the first solve (and a copy's) sets up
 
     def _setup(self):
+        import osqp
+
         P, A, tight = self._problem
+        self.solver = osqp.OSQP()
+        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
+        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
         self.solver.setup(P, np.zeros(self.n_vars), A, -np.inf * np.ones(A.shape[0]),
                           np.inf * np.ones(A.shape[0]), **_osqp_settings(tight))
 
     def __getstate__(self):
         """A copy or a pickle keeps the problem, not OSQP's workspace (it holds its extension module); the copy
-        sets the problem up again and starts cold, as after :meth:`reset` (answers within OSQP's tolerance)."""
+        sets the problem up again at its first solve and starts cold, as after :meth:`reset` (answers within
+        OSQP's tolerance)."""
         state = dict(self.__dict__)
         state["solver"] = None
         return state
 
-    def __setstate__(self, state):
-        import osqp
-
-        self.__dict__.update(state)
-        self.solver = osqp.OSQP()
-        self._setup()
-
     def reset(self):
         """Forget the warm start (the next solve starts from zero, as after setup)."""
-        self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
+        if self.solver is not None:
+            self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
 
     def solve(self, q, l, u):
+        if self.solver is None:
+            self._setup()
         self.solver.update(q=q, l=l, u=u)
         # OSQP 1.x writes "Polishing not needed ..." to sys.stdout even when not verbose
         with contextlib.redirect_stdout(_SILENT):
