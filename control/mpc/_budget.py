@@ -73,6 +73,8 @@ class _RollingBudget:
         self.n_tail = n_tail
         # t·slew of the ramp's steps t = 1 … n_tail (the same for every plan: computed once, not per evaluation)
         self._ramp_drop = (np.arange(1, n_tail + 1)[:, None] * self.slew[self.fin][None, :]) if n_tail else None
+        self._fin_idx = np.flatnonzero(self.fin)  # the same entries as the mask, one gather instead of a mask pass
+        self._no_ramp = np.zeros(N)  # Mr @ (no ramp energies): the ramp's part of every window without a ramp
 
     # ------------------------------------------------------------------------------------ numbers
     def history(self, u_past) -> np.ndarray:
@@ -88,7 +90,7 @@ class _RollingBudget:
         """The load of each row of ``u`` (n, m): ``Σ u²``, or ``Σ a|u| + b u²`` for a weighted budget."""
         u = np.asarray(u, np.float64)
         if not self.weighted:
-            return np.sum(u**2, axis=1)
+            return np.add.reduce(u * u, axis=1)  # np.sum(u**2, axis=1) without its wrappers: the same reduction
         m = u.shape[1]
         a = np.zeros(m) if self.a is None else self.a
         b = np.zeros(m) if self.b is None else self.b
@@ -98,10 +100,10 @@ class _RollingBudget:
         """``r_t`` of the ramp to zero after a plan ending at ``last``, t = 1 … n_tail."""
         if not self.n_tail:
             return np.zeros(0)
-        a = np.abs(np.asarray(last, np.float64)[self.fin])[None, :]
+        a = np.abs(np.asarray(last, np.float64)[self._fin_idx])
         r = np.maximum(a - self._ramp_drop, 0.0)
         if not self.weighted:
-            return np.sum(r**2, axis=1)
+            return np.add.reduce(r * r, axis=1)
         full = np.zeros((r.shape[0], self.fin.size))
         full[:, self.fin] = r
         return np.array([float(self.loads(row[None, :])[0]) for row in full])
@@ -111,21 +113,25 @@ class _RollingBudget:
         (``past``: ``Mh @ hist`` when the caller has it, e.g. across the evaluations of one bisection)."""
         u = np.asarray(u, np.float64).reshape(self.N, -1)
         if past is not None:
-            return past + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+            return past + self.Mp @ self.loads(u) + self._ramp_part(u)
         # a plan checks the same inputs against the same past several times (solver answer, projection, guard,
         # report): the last answer is kept, read-only, and given again for equal inputs and past
         key = (u.tobytes(), np.asarray(hist, np.float64).tobytes())
         memo = getattr(self, "_memo", None)
         if memo is not None and memo[0] == key:
             return memo[1]
-        out = self.Mh @ hist + self.Mp @ self.loads(u) + self.Mr @ self.ramp_energies(u[-1])
+        out = self.Mh @ hist + self.Mp @ self.loads(u) + self._ramp_part(u)
         out.flags.writeable = False
         self._memo = (key, out)
         return out
 
+    def _ramp_part(self, u):
+        """``Mr @ ramp_energies(u[-1])``: the ramp's part of every window (zeros, exactly, without a ramp)."""
+        return self.Mr @ self.ramp_energies(u[-1]) if self.n_tail else self._no_ramp
+
     def excess(self, u, hist) -> float:
         """How far the largest window exceeds the budget, in its unit (negative: inside)."""
-        return float(np.max(self.energies(u, hist)) - self.budget)
+        return float(self.energies(u, hist).max() - self.budget)
 
     def relative_excess(self, u, hist) -> float:
         """:meth:`excess` as a fraction of the budget."""
@@ -219,9 +225,14 @@ def blend_all(budgets, hists, u, safe):
     """
     pasts = [b.Mh @ h for b, h in zip(budgets, hists)]  # the applied past's part of every window: once
 
+    caps = [b.budget * (1.0 - 1e-10) for b in budgets]
+    items = list(zip(budgets, hists, pasts, caps))
+
     def inside(x):
-        return all(np.max(b.energies(x, h, p)) <= b.budget * (1.0 - 1e-10)
-                   for b, h, p in zip(budgets, hists, pasts))
+        for b, h, p, cap in items:
+            if not b.energies(x, h, p).max() <= cap:  # (NaN: not inside, as before)
+                return False
+        return True
 
     if inside(u):
         return u

@@ -39,8 +39,8 @@ class _Windows:
     @staticmethod
     def _ramp(b, last):
         """``max(|v_i| − t·slew_i, 0)`` for the inputs with a slew limit, shape (n_tail, n_limited), and signs."""
-        t = np.arange(1, b.n_tail + 1)[:, None]
-        return np.maximum(np.abs(last[b.fin])[None, :] - t * b.slew[b.fin][None, :], 0.0), np.sign(last[b.fin])
+        v = last[b._fin_idx]  # b._ramp_drop: t·slew of the ramp's steps, computed once per budget
+        return np.maximum(np.abs(v)[None, :] - b._ramp_drop, 0.0), np.sign(v)
 
     def excess(self, u):
         """``g(u) − left`` for every window (relative to its budget), and the Jacobian in ``u`` (n, N·m)."""
@@ -90,15 +90,16 @@ def applies(budgets) -> bool:
     return bool(budgets) and all(not b.weighted for b in budgets)
 
 
-def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0=None):
+def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0=None, subproblem=None):
     """SQP from ``x0`` (the budget-free answer) and the windows' multipliers ``mu0`` (default zero; those of the
     previous plan make a good start); ``(x, multipliers of the rows of [simple bounds; A], of the windows)`` or None.
 
     ``lo``/``hi`` in daqp's layout: when they are longer than the rows of ``A``, their first entries are simple
-    bounds on ``x``. ``u = Mu x + cu`` (``Mu`` None: ``u = x``).
+    bounds on ``x``. ``u = Mu x + cu`` (``Mu`` None: ``u = x``). ``subproblem(H, f, rows, upper, lower, start)``
+    solves each iteration's QP, ``(x, multipliers)`` or None (default: daqp with the rows hard; the soft output
+    bounds' exact penalty QP of :mod:`._exact_penalty` solves the same iteration with some rows soft).
     """
-    import daqp
-
+    subproblem = _daqp_subproblem if subproblem is None else subproblem
     H = np.asarray(H, np.float64)
     A = np.zeros((0, H.shape[0])) if A is None else np.asarray(A, np.float64)
     lo, hi = np.clip(lo, -_BIG, _BIG), np.clip(hi, -_BIG, _BIG)
@@ -119,13 +120,10 @@ def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0
         upper = np.concatenate([hi, Jx @ x - g])
         lower = np.concatenate([lo, np.full(windows.n, -_BIG)])
         start = None if lam is None else np.concatenate([lam, mu])
-        kw = {} if start is None else {"dual_start": start}
-        x_new, _f, flag, info = daqp.solve(np.ascontiguousarray(0.5 * (Hk + Hk.T)), q - L @ x, rows, upper, lower,
-                                           **kw)
-        if flag < 1:
+        res = subproblem(np.ascontiguousarray(0.5 * (Hk + Hk.T)), q - L @ x, rows, upper, lower, start)
+        if res is None:
             return None
-        x_new = np.asarray(x_new, np.float64)
-        all_lam = np.asarray(info["lam"], np.float64)
+        x_new, all_lam = res
         lam, mu = all_lam[:n_rows], np.maximum(all_lam[n_rows:], 0.0)
         step = float(np.max(np.abs(x_new - x), initial=0.0))
         x = x_new
@@ -135,3 +133,14 @@ def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0
                 return x, lam, mu
             return None
     return None
+
+
+def _daqp_subproblem(H, f, rows, upper, lower, start):
+    """One iteration's QP by daqp, every row hard (warm started from ``start``, the last multipliers)."""
+    import daqp
+
+    kw = {} if start is None else {"dual_start": start}
+    x, _f, flag, info = daqp.solve(H, f, rows, upper, lower, **kw)
+    if flag < 1:
+        return None
+    return np.asarray(x, np.float64), np.asarray(info["lam"], np.float64)

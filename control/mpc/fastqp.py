@@ -19,6 +19,7 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ._budget_sqp import solve_budgeted
+from ._exact_penalty import ExactPenaltyQP
 
 __all__: list = []
 
@@ -48,45 +49,46 @@ _SILENT = _Silent()
 
 
 class _FastQP:
-    """One OSQP problem ``min ½zᵀPz + qᵀz s.t. l <= Az <= u``, set up once; each solve only updates q, l, u."""
+    """One OSQP problem ``min ½zᵀPz + qᵀz s.t. l <= Az <= u``, set up once; each solve only updates q, l, u.
+
+    OSQP is imported and the problem set up at the first solve: behind the dense path (:class:`_DenseSoftQP`) it is
+    a fallback that most controllers never call (the demo's bench set up 33 problems and solved none).
+    """
 
     def __init__(self, P, A, n_vars, tight=True):
-        import osqp
-
         self.n_vars = n_vars
-        self.solver = osqp.OSQP()
-        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
-        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
+        self.solver = None
         P = sp.csc_matrix(sp.triu(sp.csc_matrix(P)))
         A = sp.csc_matrix(A)
         self.n_rows = A.shape[0]
-        self._problem = (P, A, tight)  # what a copy sets up again
-        self._setup()
+        self._problem = (P, A, tight)  # what the first solve (and a copy's) sets up
 
     def _setup(self):
+        import osqp
+
         P, A, tight = self._problem
+        self.solver = osqp.OSQP()
+        # OSQP >= 1 asks whether a failed solve should raise; we read the status instead (older versions: no arg)
+        self._solve_kw = {} if str(getattr(osqp, "__version__", "1")).startswith("0.") else {"raise_error": False}
         self.solver.setup(P, np.zeros(self.n_vars), A, -np.inf * np.ones(A.shape[0]),
                           np.inf * np.ones(A.shape[0]), **_osqp_settings(tight))
 
     def __getstate__(self):
         """A copy or a pickle keeps the problem, not OSQP's workspace (it holds its extension module); the copy
-        sets the problem up again and starts cold, as after :meth:`reset` (answers within OSQP's tolerance)."""
+        sets the problem up again at its first solve and starts cold, as after :meth:`reset` (answers within
+        OSQP's tolerance)."""
         state = dict(self.__dict__)
         state["solver"] = None
         return state
 
-    def __setstate__(self, state):
-        import osqp
-
-        self.__dict__.update(state)
-        self.solver = osqp.OSQP()
-        self._setup()
-
     def reset(self):
         """Forget the warm start (the next solve starts from zero, as after setup)."""
-        self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
+        if self.solver is not None:
+            self.solver.warm_start(x=np.zeros(self.n_vars), y=np.zeros(self.n_rows))
 
     def solve(self, q, l, u):
+        if self.solver is None:
+            self._setup()
         self.solver.update(q=q, l=l, u=u)
         # OSQP 1.x writes "Polishing not needed ..." to sys.stdout even when not verbose
         with contextlib.redirect_stdout(_SILENT):
@@ -223,15 +225,16 @@ class _DenseSoftQP:
     with outputs of zero weight) while ``ZᵀPZ`` is positive definite, and the problem in ``w`` is smaller.
     """
 
-    label = "DAQP (dense, warm; OSQP where an output bound takes slack)"
+    label = "DAQP (dense, warm; exact penalty QP where an output bound takes slack)"
 
     def __init__(self, osqp, dense, n_x, rows, out, elim):
         self._osqp, self._dense, self._n_x, self._rows = osqp, dense, n_x, rows
         self._out = out  # (positions among the dense rows, |A[those rows, t columns]|), or None without slack
         self._elim = elim  # (P, A_eq⁺, Z, rows of A_eq, A_rest) or None
         self.n_vars, self.n_rows = osqp.n_vars, osqp.n_rows
-        self.n_dense_, self.n_osqp_ = 0, 0
+        self.n_dense_, self.n_osqp_, self.n_exact_ = 0, 0, 0
         self._uz = None
+        self._exact = None  # the exact penalty QP (:mod:`._exact_penalty`) where a bound takes slack
 
     @classmethod
     def around(cls, osqp, P, A, n_x, eq_rows=None):
@@ -262,11 +265,17 @@ class _DenseSoftQP:
         simple = elim is None and rows.size >= n_w and np.array_equal(Ar[:n_w], np.eye(n_w))
         dense = _DenseQP(Hr, Ar[n_w:] if simple else Ar, n_w, simple=simple)
         out = np.flatnonzero(np.any(At[rows] != 0, axis=1))
-        return cls(osqp, dense, n_x, rows, None if not out.size else (out, At[rows][out]), elim)
+        qp = cls(osqp, dense, n_x, rows, None if not out.size else (out, At[rows][out]), elim)
+        if out.size and np.all(np.count_nonzero(At[rows][out], axis=1) == 1):  # one slack per soft row
+            C = At[rows][out]
+            qp._exact = ExactPenaltyQP(Hr, dense._A, simple, out, np.argmax(C, axis=1), np.max(C, axis=1), C.shape[1])
+        return qp
 
     def reset(self):
         self._dense.reset()
         self._osqp.reset()
+        if self._exact is not None:
+            self._exact.reset()
 
     def solve(self, q, l, u):
         q, l, u = (np.asarray(v, np.float64) for v in (q, l, u))
@@ -277,6 +286,11 @@ class _DenseSoftQP:
         if x is not None and self._priced_within(q[n:]):
             self.n_dense_ += 1
             return np.concatenate([x, np.zeros(self.n_vars - n)]), status, reason
+        w = None if self._exact is None else self._exact.solve(qx, lo, hi, q[n:])
+        if w is not None:  # the bounds that take slack, exactly: x, and the slack it leaves (t = κ·s of OSQP's)
+            self.n_exact_ += 1
+            x = w if xp is None else xp + self._elim[2] @ w
+            return np.concatenate([x, self._exact.slack_]), "optimal", ""
         self.n_osqp_ += 1
         return self._osqp.solve(q, l, u)
 
@@ -297,11 +311,26 @@ class _DenseSoftQP:
         res = None if w0 is None else solve_budgeted(self._dense._H, qx, self._dense._A, lo, hi, w0, windows, Mu,
                                                       cu, mu0=self._dense._mu)
         self._dense._mu = None if res is None else res[2]
+        slack = np.zeros(self.n_vars - n)
         if res is None or not self._priced_within(q[n:], res[1]):
-            return None, "budget", "energy budget binding; the dense budget iteration did not settle"
+            res = self._exact_budgeted(q[n:], qx, lo, hi, windows, Mu, cu)
+            if res is None:
+                return None, "budget", "energy budget binding; the dense budget iteration did not settle"
+            slack = self._exact.slack_
+            self.n_exact_ += 1
+        else:
+            self.n_dense_ += 1
         x = res[0] if xp is None else xp + self._elim[2] @ res[0]
-        self.n_dense_ += 1
-        return np.concatenate([x, np.zeros(self.n_vars - n)]), "optimal", ""
+        return np.concatenate([x, slack]), "optimal", ""
+
+    def _exact_budgeted(self, q_t, qx, lo, hi, windows, Mu, cu):
+        """The budget iteration with the output bounds soft (:mod:`._exact_penalty` for each of its QPs), from the
+        budget-free optimum; None where it does not apply or settle."""
+        x0 = None if self._exact is None else self._exact.solve(qx, lo, hi, q_t)
+        if x0 is None:
+            return None
+        return solve_budgeted(self._dense._H, qx, self._dense._A, lo, hi, x0, windows, Mu, cu,
+                              subproblem=self._exact.budget_subproblem(q_t))
 
     def _reduced(self, q, l, u):
         """The dense problem's ``q``, lower and upper bounds, and the particular solution ``xp`` of the eliminated
