@@ -72,7 +72,7 @@ def test_report_folder_holds_page_tables_and_figures(result, tmp_path):
 
 
 def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result, tmp_path, monkeypatch):
-    monkeypatch.setattr(figures_module, "report_figures", lambda _result, **_: {"one": _PNG})  # no figures here
+    monkeypatch.setattr(figures_module, "report_figures", lambda _result: {"one": _PNG})  # figures are not tested here
     out = tmp_path / "run"
     write_bench(result, out)
     run_id = json.loads((out / RESULTS_FILE).read_text())["run_id"]
@@ -86,7 +86,7 @@ def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result
 
 
 def test_a_failure_while_writing_leaves_nothing(result, tmp_path, monkeypatch):
-    def broken(_result, **_):
+    def broken(_result):
         raise RuntimeError("figure failed")
 
     monkeypatch.setattr(figures_module, "report_figures", broken)
