@@ -25,7 +25,6 @@ from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
 from ..evaluation.execute import check_scheduler_address
 from ..figures import bench as bench_figures
-from ..figures._processes import local_cores
 from ..limits import load_limits
 from ..plants import load_plant
 from ..report import REPORT_FILE, RESULTS_FILE, bench_run_id, report_html, results_json, summarize
@@ -85,8 +84,7 @@ def check_out_dir(out_dir, *, force: bool = False) -> Path:
     return path
 
 
-def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: list | None = None,
-                processes: int = 1) -> dict:
+def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: list | None = None) -> dict:
     """Write the report folder atomically: HTML page, results JSON, CSV tables, PNG figures.
 
     Parameters
@@ -97,8 +95,6 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: lis
     force : bool, default False
     lines : list of str, optional
         The summary (:func:`stimsteer.control.report.summarize` of ``result``) when the caller already has it.
-    processes : int, default 1
-        Processes that draw the figures side by side (forked; the PNG bytes do not depend on it).
 
     Returns
     -------
@@ -114,7 +110,7 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: lis
         raise StimsteerError(f"write_bench needs a BenchResult from run_bench; got {type(result).__name__}.")
     final = check_out_dir(out_dir, force=force)
     lines = summarize(result) if lines is None else lines
-    figures = bench_figures.report_figures(result, processes=processes)
+    figures = bench_figures.report_figures(result)
     run_id = bench_run_id(result)
     files = {}
     with atomic_dir(final, force=force) as tmp:
@@ -189,8 +185,7 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
         result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
                            progress=progress, source=source)
         lines = summarize(result)
-        # the figures are drawn on the cores the run's workers used (they have finished)
-        files = write_bench(result, out_dir, force=force, lines=lines, processes=n_workers or local_cores())
+        files = write_bench(result, out_dir, force=force, lines=lines)
     return BenchRun(result=result, lines=lines, files=files, notes=(note,) if note else ())
 
 

@@ -7,6 +7,7 @@ backend or ``rcParams``.
 
 from __future__ import annotations
 
+import io
 import textwrap
 
 import numpy as np
@@ -14,7 +15,6 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
-from ._processes import render_pngs
 
 from ..evaluation import BenchResult, t_interval
 
@@ -363,15 +363,8 @@ def fig_compute(result: BenchResult, colours: dict):
     return fig
 
 
-def report_figures(result: BenchResult, processes: int = 1) -> dict:
+def report_figures(result: BenchResult) -> dict:
     """The report's figures as PNG bytes, by file stem (only those the result has data for).
-
-    Parameters
-    ----------
-    result : BenchResult
-    processes : int, default 1
-        Forked processes that draw the figures side by side (:func:`._processes.render_pngs`; the bytes are the
-        same as drawn in one process).
 
     Returns
     -------
@@ -396,4 +389,12 @@ def report_figures(result: BenchResult, processes: int = 1) -> dict:
     if result.control_withheld:  # a stand-in too poor to compare controllers on: no closed-loop figure either
         makers.pop("closed_loop")
         makers.pop("tracking_vs_energy")
-    return render_pngs(makers, processes)
+    out = {}
+    for name, make in makers.items():
+        fig = make()
+        if fig is None:
+            continue
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png")  # one draw: the layout engine runs in it
+        out[name] = buf.getvalue()
+    return out

@@ -164,7 +164,6 @@ def test_intervals_are_shown_as_computed_not_clipped(result):
 def test_figures_label_axes_with_units(result):
     figs = report_figures(result)
     assert set(figs) >= {"predictions", "closed_loop", "compute_time"}
-    assert report_figures(result, processes=2) == figs  # drawn side by side in forked processes: the same bytes
     # the output unit of the session ("mV") reaches the axis labels of the trace figures
     fig = fig_predictions(result, method_colours(result))
     assert any("[mV]" in ax.get_ylabel() for ax in fig.axes)
