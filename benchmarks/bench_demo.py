@@ -15,6 +15,13 @@ bench step's includes its pool's workers): less sensitive to the load than wall 
 the demo's bench step again in this process and prints the wall and CPU time of its parts (worker pool, assembly,
 figures, page).
 
+Python's bytecode cache: a default Python writes each module's compiled form beside it (``__pycache__``) the first
+time it is imported, so from the second run on a user's demo does not compile the package again. An environment
+that sets ``PYTHONDONTWRITEBYTECODE`` (some containers and CI images do) compiles every module in every run: about
+0.8 s more on the demo's critical path. By default the benchmark measures as a default install does: it compiles the
+package's modules first (``compileall``, once) and runs the demo without that variable. ``--no-bytecode-cache``
+measures as this environment is set instead (both are printed with the setting used).
+
 ``--keep DIR`` keeps the last run's output folder (e.g. to compare it with the stored golden numbers:
 ``python -c "import sys; sys.path.insert(0, 'tests'); import golden; print(golden.compare(golden.load_stored(),
 golden.snapshot('DIR')))"``).
@@ -57,13 +64,34 @@ run_demo(out, run_step=step, echo=lambda text: None)
 """
 
 
-def _one_run(out: Path) -> dict:
+def _environment(bytecode_cache: bool) -> dict:
+    """The demo's environment: this one, with Python's bytecode cache allowed when ``bytecode_cache`` (and the
+    package compiled once beforehand, as a first run on a default install leaves it)."""
+    env = dict(os.environ)
+    if bytecode_cache:
+        env.pop("PYTHONDONTWRITEBYTECODE", None)
+        subprocess.run([sys.executable, "-m", "compileall", "-q", *_package_dirs()], env=env, check=True,
+                       capture_output=True)
+    return env
+
+
+def _package_dirs() -> list:
+    """The installed package's source folders (an editable install maps ``stimsteer.*`` onto the repository's
+    top-level folders ``sysid``, ``control`` and ``demo_data``)."""
+    import importlib
+
+    return sorted({str(Path(importlib.import_module(f"stimsteer.{name}").__file__).parent)
+                   for name in ("sysid", "control", "demo_data")})
+
+
+def _one_run(out: Path, env: dict) -> dict:
     log = out.parent / "steps.jsonl"
     log.unlink(missing_ok=True)
     load = os.getloadavg()[0]
     c0 = _children_cpu()
     t0 = time.time()
-    proc = subprocess.run([sys.executable, "-c", _DRIVER, str(log), str(out)], capture_output=True, text=True)
+    proc = subprocess.run([sys.executable, "-c", _DRIVER, str(log), str(out)], capture_output=True, text=True,
+                          env=env)
     wall = time.time() - t0
     cpu = _children_cpu() - c0  # the demo's process and every process it waited for (steps, bench child, workers)
     if proc.returncode != 0:
@@ -177,15 +205,20 @@ def main(argv=None) -> int:
     parser.add_argument("--keep", metavar="DIR", help="keep the last run's output folder here (must not exist)")
     parser.add_argument("--bench-parts", action="store_true",
                         help="also time the demo's bench step by parts in this process (wall and CPU time)")
+    parser.add_argument("--no-bytecode-cache", action="store_true",
+                        help="run the demo as this environment is set, without compiling the package first")
     args = parser.parse_args(argv)
     cores = _cores()
-    print(f"{cores} core(s) available; demo data of the repository")
+    env = _environment(not args.no_bytecode_cache)
+    cache = ("off (PYTHONDONTWRITEBYTECODE set: every module compiled in every run)"
+             if env.get("PYTHONDONTWRITEBYTECODE") else "on, as a default install (the package compiled beforehand)")
+    print(f"{cores} core(s) available; demo data of the repository; Python's bytecode cache {cache}")
     walls = []
     with tempfile.TemporaryDirectory(prefix="bench_demo_") as tmp:
         for i in range(args.repeats):
             out = Path(tmp) / f"run{i}" / "demo"
             out.parent.mkdir()
-            run = _one_run(out)
+            run = _one_run(out, env)
             print(f"\nrun {i + 1} of {args.repeats}")
             _print_run(run)
             walls.append(run["wall"])
