@@ -132,6 +132,16 @@ def test_t_interval_matches_scipy(rng):
     assert all(np.isnan(t_interval([])))
 
 
+def test_t_quantile_is_scipy_stats_bit_for_bit():
+    # Outside check: scipy.stats.t.ppf (scipy documentation); the benchmark reads it through scipy.special.stdtrit
+    # without importing scipy.stats (1 s of CPU), and the golden demo's intervals must not move
+    from stimsteer.control.evaluation.stats import _t_quantile
+
+    for q in (0.9, 0.95, 0.975, 0.995):
+        for dof in (1, 2, 3, 4, 7, 29, 120):
+            assert _t_quantile(q, dof) == float(stats.t.ppf(q, dof))
+
+
 def test_comparison_tables_are_the_per_metric_pivot_tables():
     # _wides groups every metric at once; it must give what pandas' pivot_table gives metric by metric (a label
     # without any value left out, NaN kept where a split lacks one)
