@@ -393,14 +393,24 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
 
 def _free_run(predictor, u, y, P, limit):
     """Prediction of ``y[P:]`` from the measured ``[0, P)`` only; chained in blocks when the horizon is limited."""
-    T = u.shape[0]
+    return _free_runs(predictor, u[None], y[None], P, limit)[0]
+
+
+def _free_runs(predictor, u, y, P, limit):
+    """:func:`_free_run` of a batch of runs of equal length, ``u`` (n, T, m) and ``y`` (n, T, p): each block of
+    every run in one ``predict_many`` call (the runs are independent; a run's numbers do not depend on the others)."""
+    n, T = u.shape[:2]
     step = T - P if limit is None else int(limit)
-    y_run = np.empty((T, y.shape[1]))  # the measured start, then the predictions, written in place
-    y_run[:P] = y[:P]
+    y_run = np.empty((n, T, y.shape[2]))  # the measured start, then the predictions, written in place
+    y_run[:, :P] = y[:, :P]
     for t in range(P, T, step):
         stop = min(T, t + step)
-        y_run[t:stop] = _predict_batch(predictor, u[None, t - P: t], y_run[None, t - P: t], u[None, t: stop])[0]
-    return y_run[P:]
+        y_run[:, t:stop] = _predict_batch(predictor, u[:, t - P: t], y_run[:, t - P: t], u[:, t: stop])
+    return y_run[:, P:]
+
+
+#: Samples (runs x length) of the free runs predicted in one batch: segments of equal length, in their order.
+_FREERUN_BATCH_SAMPLES = 1 << 18
 
 
 def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Scores:
@@ -429,16 +439,32 @@ def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Score
         raise SessionError(f"max_steps must be a whole number >= 1 or None; got {max_steps!r}.")
     names = _output_names(session)
     pooled, n_seg, longest = _Pooled((len(names),)), 0, 0
-    for s, e in session.segments(min_length=P + 2):
-        stop = e if max_steps is None else min(e, s + P + int(max_steps))
-        u, y, _mask = session.read(s, stop)
-        yhat = _free_run(predictor, u, y, P, limit)
-        pooled.add(y[P:], y[P:] - yhat, output_valid(session, s + P, stop)[:, None])
-        n_seg += 1
-        longest = max(longest, stop - s - P)
+    for batch in _equal_runs(session, P, max_steps):
+        reads = [session.read(s, stop) for s, stop in batch]
+        u, y = np.stack([r[0] for r in reads]), np.stack([r[1] for r in reads])
+        yhat = _free_runs(predictor, u, y, P, limit)
+        for k, (s, stop) in enumerate(batch):  # pooled segment by segment, in the session's order
+            pooled.add(y[k, P:], y[k, P:] - yhat[k], output_valid(session, s + P, stop)[:, None])
+            n_seg += 1
+            longest = max(longest, stop - s - P)
     if n_seg == 0:
         raise SessionError(
             f"no valid segment of the session is longer than past_steps + 1 = {P + 1} samples; nothing can be "
             "scored in free run. Score on longer trials."
         )
     return Scores(names, freerun=_long_table(names, pooled.table()), n_segments=n_seg, freerun_steps=longest)
+
+
+def _equal_runs(session, P, max_steps):
+    """The free runs ``(start, stop)`` of the valid segments, in order, as consecutive batches of equal length (at
+    most :data:`_FREERUN_BATCH_SAMPLES` samples each, at least one run)."""
+    batch: list = []
+    for s, e in session.segments(min_length=P + 2):
+        stop = e if max_steps is None else min(e, s + P + int(max_steps))
+        if batch and (stop - s != batch[0][1] - batch[0][0]
+                      or (len(batch) + 1) * (stop - s) > _FREERUN_BATCH_SAMPLES):
+            yield batch
+            batch = []
+        batch.append((s, stop))
+    if batch:
+        yield batch
