@@ -108,14 +108,17 @@ class _Pooled:
         if nb == 0:
             return
         n = self.n + nb
+        flat = y.shape[0], -1  # sums over axis 0 as one matrix product each (einsum over the leading axis)
         for mean_attr, m2_attr, x in (("my", "My", y), ("me", "Me", e)):
-            mb = x.mean(axis=0)
-            Mb = ((x - mb) ** 2).sum(axis=0)
+            mb = x.sum(axis=0) / nb
+            d = (x - mb).reshape(flat)
+            Mb = np.einsum("ij,ij->j", d, d).reshape(mb.shape)
             ma, Ma = getattr(self, mean_attr), getattr(self, m2_attr)
             delta = mb - ma
             setattr(self, mean_attr, ma + delta * nb / n)
             setattr(self, m2_attr, Ma + Mb + delta ** 2 * self.n * nb / n)
-        self.sse += (e ** 2).sum(axis=0)
+        ef = e.reshape(flat)
+        self.sse += np.einsum("ij,ij->j", ef, ef).reshape(self.sse.shape)
         self.n = n
 
     def _add_weighted(self, y, e, valid):
@@ -375,12 +378,14 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
     for s, e in session.segments(min_length=P + H):
         u, y, _mask = session.read(s, e)
         scored = output_valid(session, s, e)  # blanked outputs are not scored (Session.output_mask)
+        scored = None if scored.all() else scored
         starts = np.arange(P, e - s - H + 1, stride)
         for i in range(0, starts.size, _BATCH_WINDOWS):
             t0 = starts[i: i + _BATCH_WINDOWS, None]
             past, fut = t0 + np.arange(-P, 0), t0 + np.arange(H)
-            yhat = _predict_batch(predictor, u[past], y[past], u[fut])
-            pooled.add(y[fut], y[fut] - yhat, scored[fut][..., None])
+            y_fut = y[fut]
+            e_fut = y_fut - _predict_batch(predictor, u[past], y[past], u[fut])
+            pooled.add(y_fut, e_fut, None if scored is None else scored[fut][..., None])
             n_windows += t0.shape[0]
     if n_windows == 0:
         raise SessionError(

@@ -158,6 +158,43 @@ def test_comparison_tables_are_the_per_metric_pivot_tables():
             np.testing.assert_array_equal(wides[metric][label], pivot[label].reindex([0, 1, 2]).to_numpy())
 
 
+def test_prediction_table_is_the_per_task_pandas_construction(seed):
+    # _prediction_table builds the table from column arrays at once; it must be the frame the per-task pandas
+    # calls gave (kstep rows, then free-run rows with step 0, keys assigned, concatenated in task order)
+    from stimsteer.control.evaluation.tables import _KEYS, _prediction_table
+    from stimsteer.sysid import RidgeArx, freerun_scores, kstep_scores
+
+    session, _plant_ = _session(seed)
+    est = RidgeArx(output_lags=2, input_lags=2, alphas=[1e-3]).fit(session)
+    parts = []
+    for i, (label, H) in enumerate((("indirect (arx)", 5), ("direct (lsq)", 3), ("indirect (arx)", 2))):
+        keys = {"task": i, "split": i % 2, "label": label, "route": label.split()[0], "method": label[-4:-1],
+                "n_train_trials": 4 + i, "noise_scale": 1.0 + i, "horizon_steps": H}
+        parts.append((keys, {"kstep": kstep_scores(est, session, horizon_steps=H).kstep,
+                             "freerun": freerun_scores(est, session).freerun}))
+    frames = []
+    for keys, res in parts:
+        ks = res["kstep"].assign(mode="kstep")
+        fr = res["freerun"].assign(mode="freerun", step=0)
+        frame = pd.concat([ks, fr[ks.columns]], ignore_index=True)
+        frames.append(frame.assign(**keys)[[*_KEYS, "mode", "step", "channel", "r2", "vaf", "nrmse", "rmse",
+                                            "n_samples"]])
+    pd.testing.assert_frame_equal(_prediction_table(parts), pd.concat(frames, ignore_index=True))
+    assert _prediction_table([]).empty
+
+
+def test_task_means_are_pandas_means_to_the_last_bit(rng):
+    # the task row's means come from arrays, not Series; they must be Series.mean (NaNs skipped) bit for bit
+    from stimsteer.control.evaluation.tables import _mean
+
+    for n in (0, 1, 2, 7, 20, 160, 1001):
+        for _ in range(5):
+            a = rng.standard_normal(n) * 10 ** rng.uniform(-3, 3)
+            a[rng.random(n) < 0.2] = np.nan
+            want = float(pd.Series(a, dtype=float).mean())
+            assert _mean(a) == want or (np.isnan(want) and np.isnan(_mean(a)))
+
+
 def test_paired_verdict_names_a_route_only_when_the_interval_excludes_zero():
     assert paired_verdict([0.1, 0.2, 0.15], higher_is_better=True)[3] == "direct"
     assert paired_verdict([0.1, 0.2, 0.15], higher_is_better=False)[3] == "indirect"
