@@ -157,27 +157,29 @@ def _sweep_members(tasks: pd.DataFrame, st: BenchSettings) -> dict:
     return {k: v for k, v in members.items() if k == "base" or v[0][v[1]].nunique() > 1}
 
 
-def _sweeps(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
-    tasks = _with_best(tasks, st)
+def _sweeps(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Mean and interval of every metric per sweep, point and label (``with_best``: :func:`_with_best` of
+    ``tasks`` when the caller has it)."""
+    tasks = _with_best(tasks, st) if with_best is None else with_best
+    metrics = [m for m in METRICS if m in tasks.columns]
     rows = []
     for sweep, (sub, col) in _sweep_members(tasks, st).items():
         groups = sub.groupby(["label", "route", "method"] + ([col] if col else []), sort=True)
         for key, g in groups:
-            for metric in METRICS:
-                if metric not in g.columns:
-                    continue
-                mean, lo, hi = t_interval(g[metric])
+            values = g[metrics].to_numpy(dtype=np.float64)  # one array per group, a column per metric
+            for metric, v in zip(metrics, values.T):
+                mean, lo, hi = t_interval(v)
                 rows.append({"sweep": sweep, "value": float(key[3]) if col else math.nan, "label": key[0],
-                             "route": key[1], "method": key[2], "metric": metric, "n": int(g[metric].notna().sum()),
-                             "mean": mean, "ci_low": lo, "ci_high": hi})
+                             "route": key[1], "method": key[2], "metric": metric,
+                             "n": int(np.count_nonzero(~np.isnan(v))), "mean": mean, "ci_low": lo, "ci_high": hi})
     return pd.DataFrame(rows, columns=["sweep", "value", "label", "route", "method", "metric", "n", "mean",
                                        "ci_low", "ci_high"])
 
 
-def _comparison(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
+def _comparison(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None) -> pd.DataFrame:
     """Paired (same split, same setting) differences direct − indirect for every pair of methods, and for the
     routes represented by their best method on the training trials (when a route has several)."""
-    tasks = _with_best(tasks, st)
+    tasks = _with_best(tasks, st) if with_best is None else with_best
     ind = [m.label for m in st.methods if m.route == "indirect"]
     dirs = [m.label for m in st.methods if m.route == "direct"]
     if set(tasks["label"]) >= {best_label("indirect"), best_label("direct")}:
