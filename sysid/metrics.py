@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+from numpy.lib.stride_tricks import sliding_window_view
 
 from .exceptions import SessionError
 from .output_mask import output_valid
@@ -330,14 +331,13 @@ def _output_names(session) -> tuple:
 
 def _long_table(names, tab, steps=None) -> pd.DataFrame:
     p = len(names)
-    rows = {"channel": np.tile(np.asarray(names, dtype=object), 1 if steps is None else len(steps))}
+    channel = np.tile(np.asarray(names, dtype=object), 1 if steps is None else len(steps))
+    rows = {"channel": pd.Series(channel, dtype=object)}  # one dtype whatever pandas would infer for strings
     if steps is not None:
         rows = {"step": np.repeat(np.asarray(steps, dtype=np.int64), p), **rows}
     for k in (*_METRICS, "n_samples"):
         rows[k] = np.asarray(tab[k]).reshape(-1)
-    frame = pd.DataFrame(rows)
-    frame["channel"] = frame["channel"].astype(object)  # one dtype whatever pandas infers for strings
-    return frame
+    return pd.DataFrame(rows)
 
 
 def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 1) -> Scores:
@@ -379,14 +379,17 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
         u, y, _mask = session.read(s, e)
         scored = output_valid(session, s, e)  # blanked outputs are not scored (Session.output_mask)
         scored = None if scored.all() else scored
-        starts = np.arange(P, e - s - H + 1, stride)
-        for i in range(0, starts.size, _BATCH_WINDOWS):
-            t0 = starts[i: i + _BATCH_WINDOWS, None]
-            past, fut = t0 + np.arange(-P, 0), t0 + np.arange(H)
-            y_fut = y[fut]
-            e_fut = y_fut - _predict_batch(predictor, u[past], y[past], u[fut])
-            pooled.add(y_fut, e_fut, None if scored is None else scored[fut][..., None])
-            n_windows += t0.shape[0]
+        # the windows [t - P, t + H) as strided views (no gather): row r is the window of t = P + r
+        u_win = sliding_window_view(u, P + H, axis=0).transpose(0, 2, 1)
+        y_win = sliding_window_view(y, P + H, axis=0).transpose(0, 2, 1)
+        ok_win = None if scored is None else sliding_window_view(scored, P + H)[..., None]
+        for i in range(0, e - s - H - P + 1, _BATCH_WINDOWS * stride):
+            rows = slice(i, min(e - s - H - P + 1, i + _BATCH_WINDOWS * stride), stride)
+            uw, yw = u_win[rows], y_win[rows]
+            yhat = _predict_batch(predictor, np.ascontiguousarray(uw[:, :P]), np.ascontiguousarray(yw[:, :P]),
+                                  np.ascontiguousarray(uw[:, P:]))
+            pooled.add(yw[:, P:], yw[:, P:] - yhat, None if ok_win is None else ok_win[rows, P:])
+            n_windows += yw.shape[0]
     if n_windows == 0:
         raise SessionError(
             f"no valid segment of the session holds past_steps + horizon_steps = {P + H} samples, so nothing can be "

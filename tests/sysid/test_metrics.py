@@ -109,6 +109,32 @@ def test_kstep_pools_per_step_exactly(rng):
         assert row["n_samples"] == len(truth[h])
 
 
+def test_kstep_with_blanked_outputs_and_a_stride_pools_only_the_scored_samples(rng):
+    # windows come from strided views of each segment; the pooled step-h scores must be r2/vaf of the unblanked
+    # measured samples at step h of every window against the predictions, computed here directly per window
+    s = exact_session(rng, n_trials=3, length=70)
+    blank = np.ones(s.y.shape[0], dtype=bool)
+    blank[rng.choice(s.y.shape[0], 40, replace=False)] = False
+    s = s.replace(output_mask=blank)
+    est = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(exact_session(rng))  # imperfect here
+    H, stride, P = 4, 3, est.past_steps_
+    sc = kstep_scores(est, s, horizon_steps=H, stride_steps=stride)
+    truth = {h: ([], []) for h in range(1, H + 1)}
+    for a, e in s.segments(min_length=P + H):
+        for t in range(a + P, e - H + 1, stride):
+            pred = est.predict(s.u[t - P:t], s.y[t - P:t], s.u[t:t + H])
+            for h in range(1, H + 1):
+                if blank[t + h - 1]:
+                    truth[h][0].append(s.y[t + h - 1])
+                    truth[h][1].append(pred[h - 1])
+    for h in range(1, H + 1):
+        yt, yp = np.array(truth[h][0]), np.array(truth[h][1])
+        row = sc.kstep[sc.kstep["step"] == h].iloc[0]
+        assert row["n_samples"] == yt.shape[0] < sc.n_windows
+        assert row["r2"] == pytest.approx(r2(yt, yp)[0], rel=1e-10)
+        assert row["vaf"] == pytest.approx(vaf(yt, yp)[0], rel=1e-10)
+
+
 def test_kstep_of_the_true_model_is_perfect(rng):
     s = exact_session(rng)
     sc = kstep_scores(TRUE, s, horizon_steps=5)  # a StateSpaceModel is a predictor (past_steps = n_states)
