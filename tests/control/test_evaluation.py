@@ -502,6 +502,28 @@ def test_tasks_that_fit_the_same_model_share_one_fit_and_give_the_numbers_they_g
     assert [_same(a, b) for a, b in zip(together, alone)] == [[], []]
 
 
+def test_a_group_fits_once_and_hands_each_task_its_own_copy(monkeypatch):
+    # three tasks of a group: one fit; the first task uses the fit, the second a copy, the last the kept copy
+    # itself (no third copy); no two tasks share an object. A group of one keeps no copy at all.
+    import copy as copy_module
+
+    from stimsteer.control.evaluation import task_body
+
+    fits, copies = [], []
+    monkeypatch.setattr(task_body, "_fit", lambda *a: fits.append(1) or {"coef_": np.arange(3.0)})
+    real = copy_module.deepcopy
+    monkeypatch.setattr(task_body.copy, "deepcopy", lambda x: copies.append(1) or real(x))
+    shared = {}
+    got = [task_body._fitted(None, None, _settings(), 5, shared)[0] for _ in range(2)]
+    shared["last"] = True
+    got.append(task_body._fitted(None, None, _settings(), 5, shared)[0])
+    assert len(fits) == 1 and len(copies) == 2 and "predictor" not in shared
+    assert len({id(g) for g in got}) == 3 and len({id(g["coef_"]) for g in got}) == 3
+    assert all(np.array_equal(g["coef_"], np.arange(3.0)) for g in got)
+    task_body._fitted(None, None, _settings(), 5, None)
+    assert len(fits) == 2 and len(copies) == 2
+
+
 def test_the_pool_re_records_a_noise_level_once_for_every_worker(seed, tmp_path, monkeypatch):
     # the re-recorded session of the noise sweep is made by one job and sent to the tasks that need it, not made
     # again by every worker that meets a task at that noise level
