@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+from numpy.lib.stride_tricks import sliding_window_view
 
 from .exceptions import SessionError
 from .output_mask import output_valid
@@ -108,14 +109,17 @@ class _Pooled:
         if nb == 0:
             return
         n = self.n + nb
+        flat = y.shape[0], -1  # sums over axis 0 as one matrix product each (einsum over the leading axis)
         for mean_attr, m2_attr, x in (("my", "My", y), ("me", "Me", e)):
-            mb = x.mean(axis=0)
-            Mb = ((x - mb) ** 2).sum(axis=0)
+            mb = x.sum(axis=0) / nb
+            d = (x - mb).reshape(flat)
+            Mb = np.einsum("ij,ij->j", d, d).reshape(mb.shape)
             ma, Ma = getattr(self, mean_attr), getattr(self, m2_attr)
             delta = mb - ma
             setattr(self, mean_attr, ma + delta * nb / n)
             setattr(self, m2_attr, Ma + Mb + delta ** 2 * self.n * nb / n)
-        self.sse += (e ** 2).sum(axis=0)
+        ef = e.reshape(flat)
+        self.sse += np.einsum("ij,ij->j", ef, ef).reshape(self.sse.shape)
         self.n = n
 
     def _add_weighted(self, y, e, valid):
@@ -327,14 +331,13 @@ def _output_names(session) -> tuple:
 
 def _long_table(names, tab, steps=None) -> pd.DataFrame:
     p = len(names)
-    rows = {"channel": np.tile(np.asarray(names, dtype=object), 1 if steps is None else len(steps))}
+    channel = np.tile(np.asarray(names, dtype=object), 1 if steps is None else len(steps))
+    rows = {"channel": pd.Series(channel, dtype=object)}  # one dtype whatever pandas would infer for strings
     if steps is not None:
         rows = {"step": np.repeat(np.asarray(steps, dtype=np.int64), p), **rows}
     for k in (*_METRICS, "n_samples"):
         rows[k] = np.asarray(tab[k]).reshape(-1)
-    frame = pd.DataFrame(rows)
-    frame["channel"] = frame["channel"].astype(object)  # one dtype whatever pandas infers for strings
-    return frame
+    return pd.DataFrame(rows)
 
 
 def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 1) -> Scores:
@@ -375,13 +378,18 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
     for s, e in session.segments(min_length=P + H):
         u, y, _mask = session.read(s, e)
         scored = output_valid(session, s, e)  # blanked outputs are not scored (Session.output_mask)
-        starts = np.arange(P, e - s - H + 1, stride)
-        for i in range(0, starts.size, _BATCH_WINDOWS):
-            t0 = starts[i: i + _BATCH_WINDOWS, None]
-            past, fut = t0 + np.arange(-P, 0), t0 + np.arange(H)
-            yhat = _predict_batch(predictor, u[past], y[past], u[fut])
-            pooled.add(y[fut], y[fut] - yhat, scored[fut][..., None])
-            n_windows += t0.shape[0]
+        scored = None if scored.all() else scored
+        # the windows [t - P, t + H) as strided views (no gather): row r is the window of t = P + r
+        u_win = sliding_window_view(u, P + H, axis=0).transpose(0, 2, 1)
+        y_win = sliding_window_view(y, P + H, axis=0).transpose(0, 2, 1)
+        ok_win = None if scored is None else sliding_window_view(scored, P + H)[..., None]
+        for i in range(0, e - s - H - P + 1, _BATCH_WINDOWS * stride):
+            rows = slice(i, min(e - s - H - P + 1, i + _BATCH_WINDOWS * stride), stride)
+            uw, yw = u_win[rows], y_win[rows]
+            yhat = _predict_batch(predictor, np.ascontiguousarray(uw[:, :P]), np.ascontiguousarray(yw[:, :P]),
+                                  np.ascontiguousarray(uw[:, P:]))
+            pooled.add(yw[:, P:], yw[:, P:] - yhat, None if ok_win is None else ok_win[rows, P:])
+            n_windows += yw.shape[0]
     if n_windows == 0:
         raise SessionError(
             f"no valid segment of the session holds past_steps + horizon_steps = {P + H} samples, so nothing can be "
@@ -393,14 +401,24 @@ def kstep_scores(predictor, session, *, horizon_steps: int, stride_steps: int = 
 
 def _free_run(predictor, u, y, P, limit):
     """Prediction of ``y[P:]`` from the measured ``[0, P)`` only; chained in blocks when the horizon is limited."""
-    T = u.shape[0]
+    return _free_runs(predictor, u[None], y[None], P, limit)[0]
+
+
+def _free_runs(predictor, u, y, P, limit):
+    """:func:`_free_run` of a batch of runs of equal length, ``u`` (n, T, m) and ``y`` (n, T, p): each block of
+    every run in one ``predict_many`` call (the runs are independent; a run's numbers do not depend on the others)."""
+    n, T = u.shape[:2]
     step = T - P if limit is None else int(limit)
-    y_run = np.empty((T, y.shape[1]))  # the measured start, then the predictions, written in place
-    y_run[:P] = y[:P]
+    y_run = np.empty((n, T, y.shape[2]))  # the measured start, then the predictions, written in place
+    y_run[:, :P] = y[:, :P]
     for t in range(P, T, step):
         stop = min(T, t + step)
-        y_run[t:stop] = _predict_batch(predictor, u[None, t - P: t], y_run[None, t - P: t], u[None, t: stop])[0]
-    return y_run[P:]
+        y_run[:, t:stop] = _predict_batch(predictor, u[:, t - P: t], y_run[:, t - P: t], u[:, t: stop])
+    return y_run[:, P:]
+
+
+#: Samples (runs x length) of the free runs predicted in one batch: segments of equal length, in their order.
+_FREERUN_BATCH_SAMPLES = 1 << 18
 
 
 def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Scores:
@@ -429,16 +447,32 @@ def freerun_scores(predictor, session, *, max_steps: int | None = None) -> Score
         raise SessionError(f"max_steps must be a whole number >= 1 or None; got {max_steps!r}.")
     names = _output_names(session)
     pooled, n_seg, longest = _Pooled((len(names),)), 0, 0
-    for s, e in session.segments(min_length=P + 2):
-        stop = e if max_steps is None else min(e, s + P + int(max_steps))
-        u, y, _mask = session.read(s, stop)
-        yhat = _free_run(predictor, u, y, P, limit)
-        pooled.add(y[P:], y[P:] - yhat, output_valid(session, s + P, stop)[:, None])
-        n_seg += 1
-        longest = max(longest, stop - s - P)
+    for batch in _equal_runs(session, P, max_steps):
+        reads = [session.read(s, stop) for s, stop in batch]
+        u, y = np.stack([r[0] for r in reads]), np.stack([r[1] for r in reads])
+        yhat = _free_runs(predictor, u, y, P, limit)
+        for k, (s, stop) in enumerate(batch):  # pooled segment by segment, in the session's order
+            pooled.add(y[k, P:], y[k, P:] - yhat[k], output_valid(session, s + P, stop)[:, None])
+            n_seg += 1
+            longest = max(longest, stop - s - P)
     if n_seg == 0:
         raise SessionError(
             f"no valid segment of the session is longer than past_steps + 1 = {P + 1} samples; nothing can be "
             "scored in free run. Score on longer trials."
         )
     return Scores(names, freerun=_long_table(names, pooled.table()), n_segments=n_seg, freerun_steps=longest)
+
+
+def _equal_runs(session, P, max_steps):
+    """The free runs ``(start, stop)`` of the valid segments, in order, as consecutive batches of equal length (at
+    most :data:`_FREERUN_BATCH_SAMPLES` samples each, at least one run)."""
+    batch: list = []
+    for s, e in session.segments(min_length=P + 2):
+        stop = e if max_steps is None else min(e, s + P + int(max_steps))
+        if batch and (stop - s != batch[0][1] - batch[0][0]
+                      or (len(batch) + 1) * (stop - s) > _FREERUN_BATCH_SAMPLES):
+            yield batch
+            batch = []
+        batch.append((s, stop))
+    if batch:
+        yield batch

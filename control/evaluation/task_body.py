@@ -47,7 +47,7 @@ def _run_task(ctx: _Context, task: _Task, shared: dict | None = None) -> dict:
     with one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            out = _task_body(ctx, task, {} if shared is None else shared)
+            out = _task_body(ctx, task, shared)
         except StimsteerError as exc:
             out = {"error": f"{type(exc).__name__}: {exc}"}
     out["warnings"] = sorted({str(w.message) for w in caught} | set(out.pop("fit_warnings", ())))
@@ -57,25 +57,52 @@ def _run_task(ctx: _Context, task: _Task, shared: dict | None = None) -> dict:
 
 
 def run_group(ctx: _Context, group) -> list:
-    """The results of the tasks of one fit group (:func:`~.tasks.fit_groups`), in the group's order, with one fit."""
-    shared: dict = {}
-    return [_run_task(ctx, task, shared) for task in group]
+    """The results of the tasks of one fit group (:func:`~.tasks.fit_groups`), in the group's order, with one fit.
+
+    A group of one task keeps no copy of its fit; the last task of a larger group takes the kept copy itself.
+    """
+    shared = {} if len(group) > 1 else None
+    out = []
+    for k, task in enumerate(group):
+        if shared is not None and k == len(group) - 1:
+            shared["last"] = True
+        out.append(_run_task(ctx, task, shared))
+    return out
 
 
-def _fitted(spec, train: Session, st, horizon: int, shared: dict) -> tuple:
-    """``(predictor, fit_s, fit warnings)``: fitted here, or a copy of the group's fit (its time and warnings)."""
-    if "predictor" in shared:
-        return copy.deepcopy(shared["predictor"]), shared["fit_s"], shared["warnings"]
+def _fitted(spec, train: Session, st, horizon: int, shared: dict | None) -> tuple:
+    """``(predictor, fit_s, fit warnings)``: fitted here, or a copy of the group's fit (its time and warnings).
+
+    ``shared`` None: no other task of the group needs the fit (nothing is kept); ``shared["last"]``: this is the
+    group's last task, which takes the kept copy instead of copying it again.
+    """
+    if shared is not None and "predictor" in shared:
+        kept = shared.pop("predictor") if shared.get("last") else copy.deepcopy(shared["predictor"])
+        return kept, shared["fit_s"], shared["warnings"]
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         predictor = _fit(spec, train, st.past_steps, horizon)
     fit_s, said = time.perf_counter() - t0, tuple(str(w.message) for w in caught)
+    if shared is None or shared.get("last"):
+        return predictor, fit_s, said
     try:  # the group's copy is taken before this task uses the model: every task starts from the same fit
         shared.update(predictor=copy.deepcopy(predictor), fit_s=fit_s, warnings=said)
     except (TypeError, copy.Error, RecursionError):  # a model that cannot be copied: each task fits its own
         pass
     return predictor, fit_s, said
+
+
+def _freerun(predictor, test: Session, shared: dict | None) -> tuple:
+    """``(free-run scores, seconds)``: computed here, or the group's (the same fit on the same held-out trials
+    gives the same free run at every horizon; its seconds are then added to this task's prediction time)."""
+    if shared is not None and "freerun" in shared:
+        return shared["freerun"]
+    t0 = time.perf_counter()
+    freerun = freerun_scores(predictor, test)
+    if shared is not None:
+        shared["freerun"] = (freerun, time.perf_counter() - t0)
+    return freerun, 0.0
 
 
 def _session_at(ctx: _Context, scale: float) -> Session:
@@ -84,7 +111,7 @@ def _session_at(ctx: _Context, scale: float) -> Session:
     return _cached((ctx.token, "session", scale), lambda: _rerecord(ctx.session, ctx.plant, scale))
 
 
-def _task_body(ctx: _Context, task: _Task, shared: dict) -> dict:
+def _task_body(ctx: _Context, task: _Task, shared: dict | None) -> dict:
     st = ctx.settings
     spec, setting = st.methods[task.method_index], task.setting
     choice = _route_choice(ctx, task)
@@ -97,8 +124,8 @@ def _task_body(ctx: _Context, task: _Task, shared: dict) -> dict:
     past, H = int(predictor.past_steps_), setting.horizon_steps
     t0 = time.perf_counter()
     kstep = kstep_scores(predictor, test, horizon_steps=H, stride_steps=window_stride(test, past, H, st.max_windows))
-    freerun = freerun_scores(predictor, test)
-    predict_s = time.perf_counter() - t0
+    freerun, freerun_s = _freerun(predictor, test, shared)
+    predict_s = time.perf_counter() - t0 + freerun_s
     out = {"kstep": kstep.kstep, "freerun": freerun.freerun, "fit_s": fit_s, "predict_s": predict_s,
            "n_windows": kstep.n_windows, "selection": _selection(predictor), "fingerprint": _fingerprint(predictor),
            "fit_warnings": fit_warnings}

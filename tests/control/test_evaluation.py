@@ -132,6 +132,16 @@ def test_t_interval_matches_scipy(rng):
     assert all(np.isnan(t_interval([])))
 
 
+def test_t_quantile_is_scipy_stats_bit_for_bit():
+    # Outside check: scipy.stats.t.ppf (scipy documentation); the benchmark reads it through scipy.special.stdtrit
+    # without importing scipy.stats (1 s of CPU), and the golden demo's intervals must not move
+    from stimsteer.control.evaluation.stats import _t_quantile
+
+    for q in (0.9, 0.95, 0.975, 0.995):
+        for dof in (1, 2, 3, 4, 7, 29, 120):
+            assert _t_quantile(q, dof) == float(stats.t.ppf(q, dof))
+
+
 def test_comparison_tables_are_the_per_metric_pivot_tables():
     # _wides groups every metric at once; it must give what pandas' pivot_table gives metric by metric (a label
     # without any value left out, NaN kept where a split lacks one)
@@ -146,6 +156,43 @@ def test_comparison_tables_are_the_per_metric_pivot_tables():
         assert sorted(wides[metric]) == sorted(pivot.columns)
         for label in pivot.columns:
             np.testing.assert_array_equal(wides[metric][label], pivot[label].reindex([0, 1, 2]).to_numpy())
+
+
+def test_prediction_table_is_the_per_task_pandas_construction(seed):
+    # _prediction_table builds the table from column arrays at once; it must be the frame the per-task pandas
+    # calls gave (kstep rows, then free-run rows with step 0, keys assigned, concatenated in task order)
+    from stimsteer.control.evaluation.tables import _KEYS, _prediction_table
+    from stimsteer.sysid import RidgeArx, freerun_scores, kstep_scores
+
+    session, _plant_ = _session(seed)
+    est = RidgeArx(output_lags=2, input_lags=2, alphas=[1e-3]).fit(session)
+    parts = []
+    for i, (label, H) in enumerate((("indirect (arx)", 5), ("direct (lsq)", 3), ("indirect (arx)", 2))):
+        keys = {"task": i, "split": i % 2, "label": label, "route": label.split()[0], "method": label[-4:-1],
+                "n_train_trials": 4 + i, "noise_scale": 1.0 + i, "horizon_steps": H}
+        parts.append((keys, {"kstep": kstep_scores(est, session, horizon_steps=H).kstep,
+                             "freerun": freerun_scores(est, session).freerun}))
+    frames = []
+    for keys, res in parts:
+        ks = res["kstep"].assign(mode="kstep")
+        fr = res["freerun"].assign(mode="freerun", step=0)
+        frame = pd.concat([ks, fr[ks.columns]], ignore_index=True)
+        frames.append(frame.assign(**keys)[[*_KEYS, "mode", "step", "channel", "r2", "vaf", "nrmse", "rmse",
+                                            "n_samples"]])
+    pd.testing.assert_frame_equal(_prediction_table(parts), pd.concat(frames, ignore_index=True))
+    assert _prediction_table([]).empty
+
+
+def test_task_means_are_pandas_means_to_the_last_bit(rng):
+    # the task row's means come from arrays, not Series; they must be Series.mean (NaNs skipped) bit for bit
+    from stimsteer.control.evaluation.tables import _mean
+
+    for n in (0, 1, 2, 7, 20, 160, 1001):
+        for _ in range(5):
+            a = rng.standard_normal(n) * 10 ** rng.uniform(-3, 3)
+            a[rng.random(n) < 0.2] = np.nan
+            want = float(pd.Series(a, dtype=float).mean())
+            assert _mean(a) == want or (np.isnan(want) and np.isnan(_mean(a)))
 
 
 def test_paired_verdict_names_a_route_only_when_the_interval_excludes_zero():
@@ -453,6 +500,28 @@ def test_tasks_that_fit_the_same_model_share_one_fit_and_give_the_numbers_they_g
     assert fits == ["arx"] * 3
     assert together[1]["fingerprint"] == together[0]["fingerprint"] and "loop" in together[1]
     assert [_same(a, b) for a, b in zip(together, alone)] == [[], []]
+
+
+def test_a_group_fits_once_and_hands_each_task_its_own_copy(monkeypatch):
+    # three tasks of a group: one fit; the first task uses the fit, the second a copy, the last the kept copy
+    # itself (no third copy); no two tasks share an object. A group of one keeps no copy at all.
+    import copy as copy_module
+
+    from stimsteer.control.evaluation import task_body
+
+    fits, copies = [], []
+    monkeypatch.setattr(task_body, "_fit", lambda *a: fits.append(1) or {"coef_": np.arange(3.0)})
+    real = copy_module.deepcopy
+    monkeypatch.setattr(task_body.copy, "deepcopy", lambda x: copies.append(1) or real(x))
+    shared = {}
+    got = [task_body._fitted(None, None, _settings(), 5, shared)[0] for _ in range(2)]
+    shared["last"] = True
+    got.append(task_body._fitted(None, None, _settings(), 5, shared)[0])
+    assert len(fits) == 1 and len(copies) == 2 and "predictor" not in shared
+    assert len({id(g) for g in got}) == 3 and len({id(g["coef_"]) for g in got}) == 3
+    assert all(np.array_equal(g["coef_"], np.arange(3.0)) for g in got)
+    task_body._fitted(None, None, _settings(), 5, None)
+    assert len(fits) == 2 and len(copies) == 2
 
 
 def test_the_pool_re_records_a_noise_level_once_for_every_worker(seed, tmp_path, monkeypatch):

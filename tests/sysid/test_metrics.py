@@ -109,6 +109,32 @@ def test_kstep_pools_per_step_exactly(rng):
         assert row["n_samples"] == len(truth[h])
 
 
+def test_kstep_with_blanked_outputs_and_a_stride_pools_only_the_scored_samples(rng):
+    # windows come from strided views of each segment; the pooled step-h scores must be r2/vaf of the unblanked
+    # measured samples at step h of every window against the predictions, computed here directly per window
+    s = exact_session(rng, n_trials=3, length=70)
+    blank = np.ones(s.y.shape[0], dtype=bool)
+    blank[rng.choice(s.y.shape[0], 40, replace=False)] = False
+    s = s.replace(output_mask=blank)
+    est = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(exact_session(rng))  # imperfect here
+    H, stride, P = 4, 3, est.past_steps_
+    sc = kstep_scores(est, s, horizon_steps=H, stride_steps=stride)
+    truth = {h: ([], []) for h in range(1, H + 1)}
+    for a, e in s.segments(min_length=P + H):
+        for t in range(a + P, e - H + 1, stride):
+            pred = est.predict(s.u[t - P:t], s.y[t - P:t], s.u[t:t + H])
+            for h in range(1, H + 1):
+                if blank[t + h - 1]:
+                    truth[h][0].append(s.y[t + h - 1])
+                    truth[h][1].append(pred[h - 1])
+    for h in range(1, H + 1):
+        yt, yp = np.array(truth[h][0]), np.array(truth[h][1])
+        row = sc.kstep[sc.kstep["step"] == h].iloc[0]
+        assert row["n_samples"] == yt.shape[0] < sc.n_windows
+        assert row["r2"] == pytest.approx(r2(yt, yp)[0], rel=1e-10)
+        assert row["vaf"] == pytest.approx(vaf(yt, yp)[0], rel=1e-10)
+
+
 def test_kstep_of_the_true_model_is_perfect(rng):
     s = exact_session(rng)
     sc = kstep_scores(TRUE, s, horizon_steps=5)  # a StateSpaceModel is a predictor (past_steps = n_states)
@@ -177,6 +203,45 @@ def test_freerun_chains_limited_horizon_predictors(rng):
     chained = freerun_scores(_Limited(), s, max_steps=50)
     assert int(chained.freerun["n_samples"].iloc[0]) == 2 * 50
     np.testing.assert_allclose(chained.freerun["r2"], 1.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("batch_samples", [1 << 18, 250])
+def test_freerun_in_batches_of_equal_runs_is_each_run_alone(rng, monkeypatch, batch_samples):
+    # runs of equal length are predicted together (one predict_many per block): the pooled scores must be those of
+    # every segment's own free run, r2/vaf/nrmse computed here directly on the concatenated samples; lengths
+    # 120, 120, 90, 120, 120 and a batch budget of 250 samples make batches of 2, 1, 2 runs, and of 1 each
+    import stimsteer.sysid.metrics as metrics
+
+    monkeypatch.setattr(metrics, "_FREERUN_BATCH_SAMPLES", batch_samples)
+    edges = np.cumsum([0, 120, 120, 90, 120, 120])
+    u = rng.standard_normal((edges[-1], 1))
+    y = np.concatenate([TRUE.simulate(u[a:b]) for a, b in zip(edges[:-1], edges[1:])])
+    y = y + 0.3 * rng.standard_normal(y.shape)
+    s = Session(u=u, y=y, sample_rate_hz=100.0, trials=list(zip(edges[:-1], edges[1:])))
+    est = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(s)  # imperfect: the scores are not all 1
+    for predictor, limit in ((est, None), (_LimitedOf(est), 3)):
+        sc = freerun_scores(predictor, s)
+        yt = np.concatenate([y[a + est.past_steps_:b] for a, b in s.segments()])
+        yp = np.concatenate([metrics._free_run(predictor, u[a:b], y[a:b], est.past_steps_, limit)
+                             for a, b in s.segments()])
+        assert sc.n_segments == 5 and int(sc.freerun["n_samples"].iloc[0]) == yt.shape[0]
+        assert 0.1 < sc.freerun["r2"].iloc[0] < 0.99
+        assert sc.freerun["r2"].iloc[0] == pytest.approx(r2(yt, yp)[0], rel=1e-10)
+        assert sc.freerun["vaf"].iloc[0] == pytest.approx(vaf(yt, yp)[0], rel=1e-10)
+        assert sc.freerun["nrmse"].iloc[0] == pytest.approx(nrmse(yt, yp)[0], rel=1e-10)
+
+
+class _LimitedOf:
+    """A fitted predictor declared to predict at most 3 steps; no predict_many (windows one at a time)."""
+
+    max_horizon_steps_ = 3
+
+    def __init__(self, inner):
+        self.inner, self.past_steps_ = inner, inner.past_steps_
+
+    def predict(self, u_past, y_past, u_future):
+        assert u_future.shape[0] <= 3
+        return self.inner.predict(u_past, y_past, u_future)
 
 
 def test_freerun_bad_arguments(rng):
