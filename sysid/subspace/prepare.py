@@ -106,12 +106,11 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
                 return None  # (leaving the block waits for a decomposition already started)
             projs.append((proj, side.submit(proj.decompose)))
         n = int(acc_check.n)
-        past = scaled(_gram_from_sums(acc_check, L, order, rows=(b, e)), n, full, full[b:e])
-        inputs = scaled(_gram_from_sums(acc_check, L, order, rows=(0, b)), n, full, full[:b])
+        rows = scaled(_gram_from_sums(acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
         diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
         for _proj, done in projs:
             done.result()  # (re-raises what the decomposition raised)
-    return projs[0][0], projs[1][0], _CheckCov.factor_rows(past, inputs, diag, L), scale
+    return projs[0][0], projs[1][0], _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L), scale
 
 
 def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:
@@ -128,13 +127,19 @@ def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:
     return rms
 
 
+#: Bytes of the band of rows :func:`scaled` divides at a time (two divisions while the band is in cache).
+_BAND_BYTES = 1 << 20
+
+
 def scaled(G: np.ndarray, N: int, s: np.ndarray, s_rows: np.ndarray | None = None) -> np.ndarray:
     """``G / N`` with row ``k`` divided by ``s_rows[k]`` and column ``k`` by ``s[k]`` (``s_rows = s`` by default;
     every channel at unit RMS), in place (the Grams are not used unscaled again)."""
     s_rows = s if s_rows is None else s_rows
-    G /= N
-    for a in range(0, G.shape[0], 512):  # ÷ (s_i s_j), as G / N / outer(s, s), a band of rows at a time
-        G[a:a + 512] /= np.outer(s_rows[a:a + 512], s)
+    band = max(1, _BAND_BYTES // (8 * max(1, G.shape[1])))
+    for a in range(0, G.shape[0], band):  # G / N / outer(s, s) a band of rows at a time: one pass over memory
+        rows = G[a:a + band]
+        rows /= N
+        rows /= np.outer(s_rows[a:a + band], s)
     return G
 
 
