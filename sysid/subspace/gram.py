@@ -97,13 +97,16 @@ def _lagged_index(layout: _Layout, order: np.ndarray | None = None) -> np.ndarra
 def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows: tuple | None = None):
     """The Hankel Gram ``Σ_t z_t z_tᵀ`` of one set of lag sums, symmetric, with its rows in time-major Hankel
     order or, given ``order`` (Hankel rows, e.g. :meth:`_Layout.factor_order`), in that order. Assembled in place:
-    no second Gram-sized copy. With ``rows = (r0, r1)`` only those rows (the same numbers)."""
+    no second Gram-sized copy. With ``rows = (r0, r1)`` only those rows (the same numbers).
+
+    Symmetric as ``(W + Wᵀ) / 2`` of the assembled ``W`` would be, bit for bit, without that pass over the Gram:
+    the blocks of different lags are written as exact transposes, and the same-lag blocks are averaged with their
+    transposes before they are written (``average_same_lag``; IEEE addition commutes).
+    """
     index = _lagged_index(layout, order)
     if rows is not None:
         return _lagged_gram_rows(acc, index, *rows)
-    G = _lagged_gram(acc, index)
-    _symmetrise(G)
-    return G
+    return _lagged_gram(acc, index, average_same_lag=True)
 
 
 def _gram_diagonal(acc, layout: _Layout) -> np.ndarray:
@@ -120,15 +123,6 @@ def _hankel_gram(source, segments, layout: _Layout):
     if acc.n == 0:
         return np.zeros((layout.nz, layout.nz)), 0
     return _gram_from_sums(acc, layout), int(acc.n)
-
-
-def _symmetrise(G: np.ndarray, block: int = 512) -> None:
-    """``G ← (G + Gᵀ) / 2`` in place, a band of rows at a time (no Gram-sized temporary)."""
-    for a in range(0, G.shape[0], block):
-        b = min(G.shape[0], a + block)
-        M = 0.5 * (G[a:b, a:] + G[a:, a:b].T)
-        G[a:b, a:] = M
-        G[a:, a:b] = M.T
 
 
 def _partition(session, width: int, fraction: float, seed: int):

@@ -119,12 +119,31 @@ def _projected_gemm(Phi: np.ndarray, D4: np.ndarray) -> np.ndarray:
     return D4.transpose(3, 1, 2, 0).reshape(m * m, f * f) @ G2  # D4[t, l', s, l] as [(l, l'), (s, t)]
 
 
+def _pattern_term(h: np.ndarray, X4: np.ndarray, n: int) -> np.ndarray:
+    """``_projected_gemm(h, X4)`` over the patterns' non-zero blocks only: ``h[0] = [0, I]`` (no ``B`` pattern reaches
+    the first block, the ``D`` patterns only it) and ``h[t] = [C A^{t−1}, 0]`` after it. So the ``B``-``B`` sums run
+    over ``t >= 1`` (``(f − 1) n`` columns instead of ``f (n + p)``), the ``D``-``D`` block is ``I_p`` times
+    ``X4[0, ·, 0, ·]`` and the cross blocks are single contractions: the same sums without their zero terms."""
+    f, p, nc = h.shape
+    m = X4.shape[1]
+    O = h[1:, :, :n]  # C A^{t−1}, t = 1 … f − 1
+    out = np.zeros((m, m, nc, nc))  # [l, l', c, c']
+    out[:, :, :n, :n] = _projected_gemm(O, X4[1:, :, 1:, :]).reshape(m, m, n, n)
+    if nc > n:  # the direct term's patterns
+        # B-D: Σ_s O[s][b, c] X4[0, l', s + 1, l];  D-B: Σ_t O[t][a, c'] X4[t + 1, l', 0, l]
+        out[:, :, :n, n:] = np.tensordot(X4[0, :, 1:, :], O, axes=([1], [0])).transpose(1, 0, 3, 2)
+        out[:, :, n:, :n] = np.tensordot(X4[1:, :, 0, :], O, axes=([0], [0])).transpose(1, 0, 2, 3)
+        d = np.arange(n, nc)
+        out[:, :, d, d] = X4[0, :, 0, :].T[:, :, None]
+    return out.reshape(m * m, nc * nc)
+
+
 def normal_equations_gemm(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
     """:func:`normal_equations` by matrix products (:func:`_shift_weights`, :func:`_projected_gemm`) laid out in the
     unknowns' order directly: the same sums in another order, equal to rounding (for the factor route)."""
     f, p, nc = h.shape
     S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
-    M = _projected_gemm(h, _shift_weights(S4))
+    M = _pattern_term(h, _shift_weights(S4), n)
     M += _projected_gemm(projected_patterns(Q, h), D4)
     M = M.reshape(m, m, nc, nc).transpose(0, 2, 1, 3)  # [l, c, l', c']
     rhs = _rhs(h, target, m)

@@ -104,6 +104,22 @@ def test_rows_of_the_gram_and_its_diagonal_are_those_of_the_whole_symmetrised_gr
     assert _lagged_gram is not None
 
 
+def test_the_gram_is_the_symmetrised_assembly_bit_for_bit_even_when_same_lag_blocks_are_not_symmetric():
+    # the same-lag products made slightly asymmetric (as a general product Zᵀ Z may be): the Gram must still be
+    # (W + Wᵀ) / 2 of the raw assembly W, exactly, in both row orders, and the scaling one division after the other
+    session = _session(noise=0.3, T=1500)
+    L = gram._Layout(4, 3, 2, 4)
+    (acc,) = gram._hankel_sums(session, [session.segments(min_length=L.width)], L)
+    acc.X[0] += 1e-9 * np.random.default_rng(0).standard_normal(acc.X[0].shape)
+    for order in (None, L.factor_order()):
+        W = _lagged_gram(acc, gram._lagged_index(L, order))
+        assert not np.array_equal(W, W.T)
+        G = gram._gram_from_sums(acc, L, order)
+        np.testing.assert_array_equal(G, 0.5 * (W + W.T))
+        s = np.linspace(0.5, 2.0, L.nz)
+        np.testing.assert_array_equal(prepare.scaled(G.copy(), 7, s), G / 7 / np.outer(s, s))
+
+
 def test_heldout_error_from_the_factor_order_rows_equals_the_time_major_one():
     session = _session(noise=0.3, T=1500)
     L = gram._Layout(4, 3, 2, 4)

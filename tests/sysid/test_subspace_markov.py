@@ -213,3 +213,15 @@ def test_small_gram_orders_equal_the_route_of_before(weighting, noisy_session):
                 for key in "ABCDKQR":
                     np.testing.assert_allclose(new[key], old[key], rtol=tol, atol=tol * np.abs(old[key]).max(),
                                                err_msg=f"{key}, order {n}, direct term {feedthrough}")
+
+
+@pytest.mark.parametrize("feedthrough", [False, True])
+def test_pattern_term_skips_only_zero_blocks(feedthrough):
+    # the sums over the non-zero pattern blocks equal the contraction over every block (_projected_gemm)
+    rng = np.random.default_rng(5)
+    f, m, p, n = 5, 3, 4, 6
+    A, C = 0.4 * rng.standard_normal((n, n)), rng.standard_normal((p, n))
+    h = markov.pattern_blocks(A, C, f, feedthrough)
+    X4 = rng.standard_normal((f, m, f, m))
+    ref = markov._projected_gemm(h, X4)
+    np.testing.assert_allclose(markov._pattern_term(h, X4, n), ref, rtol=1e-13, atol=1e-13 * np.abs(ref).max())
