@@ -64,6 +64,7 @@ from ._live_record import record_run, timing_summary
 from ._live_setup import OVERRUN_POLICIES, PACES, _calibrate, _check_settings, _warmup, energy_window
 from .input_gate import InputGate
 from .loop import offset_free_wrapper
+from .mpc.fast_step import StepResult
 
 __all__ = ["LiveRun", "run_live", "energy_window", "OVERRUN_POLICIES", "PACES"]
 
@@ -389,7 +390,8 @@ def _step(loop, tick, target, use_fast_path):
         return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data", base), "no_data")
     try:
         plan = c.plan(window[0], window[1], target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
-        u, kind = (plan.inputs[0], "planned") if not plan.fallback else (None, "failed")
+        # a fast step's first input as a list of floats (the gate takes it without an array round trip)
+        u, kind = (_first(plan), "planned") if not plan.fallback else (None, "failed")
     except Exception:  # noqa: BLE001 -- a live loop must deliver something safe whatever went wrong in a plan
         u, kind = None, "failed"
     if kind == "planned" and loop.clock() - base > T:
@@ -399,6 +401,10 @@ def _step(loop, tick, target, use_fast_path):
     _after(loop, loop.deliver(u, None if kind == "planned" else kind, base), kind)
     if kind == "overrun" and loop._idle is not None:  # late already: one piece of the work that ends the overruns
         loop._idle()
+
+
+def _first(plan):
+    return plan.first if type(plan) is StepResult else plan.inputs[0]
 
 
 def _after(loop, why, kind):
