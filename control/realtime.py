@@ -69,6 +69,9 @@ from .mpc.fast_step import StepResult
 __all__ = ["LiveRun", "run_live", "energy_window", "OVERRUN_POLICIES", "PACES"]
 
 _SPIN_S = 0.0005  # sleep until this close to a wall tick, then spin: sleep alone wakes up to ~0.1 ms late
+# under SCHED_FIFO a sleep wakes within ~25 µs (p99 on a loaded 2-core VM), and a loop that spun its core full would
+# meet the kernel's real-time throttling (by default 0.95 s of every second: a 50 ms stall each second)
+_SPIN_FIFO_S = 30e-6
 
 
 @dataclass(frozen=True)
@@ -109,7 +112,7 @@ class _Loop:
         self.c, self.plant, self.gate, self.T = controller, plant, gate, period
         # a simulated plant's step is the hardware's time, not the loop's: it is taken off the loop's clock
         self.simulated, self.plant_s = bool(simulated_plant), 0.0
-        self.policy, self.pace, self.clock, self.sleep = policy, pace, clock, time.sleep
+        self.policy, self.pace, self.clock, self.sleep, self.spin = policy, pace, clock, time.sleep, _SPIN_S
         # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
         self._u = np.zeros((capacity, controller.n_inputs_))
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
@@ -223,8 +226,8 @@ class _Loop:
             if idle is not None and left > 2.0 * self.c.idle_cost_s:  # only with time to spare before the tick
                 if not idle():  # a piece of work done: the clock is read again before the next
                     idle = None
-            elif left > _SPIN_S:
-                self.sleep(left - _SPIN_S)
+            elif left > self.spin:
+                self.sleep(left - self.spin)
             now = self.clock()
 
 
@@ -284,7 +287,8 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         Ask for real-time scheduling (``SCHED_FIFO``) on one core and locked memory for the run
         (:mod:`stimsteer.control._process_priority`); what the system granted or refused, with its reason, is in
         ``summary["realtime"]``. Never required: a refusal changes nothing else. Everything granted is undone when
-        the run ends. Under ``SCHED_FIFO`` the waiting loop spins and keeps its core for the run.
+        the run ends. Under ``SCHED_FIFO`` the loop sleeps until 30 µs before each tick (not 0.5 ms), so it
+        never spins its core full.
 
     Returns
     -------
@@ -317,6 +321,8 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
             "Hz for most steps to meet their deadline), or use a cheaper controller (shorter horizon, fewer inputs).")
     plant.reset(seed=seed, x0=x0)
     granted, undo = _process_priority.request() if realtime else ({"requested": False}, [])
+    if str(granted.get("sched_fifo", "")).startswith("granted"):
+        loop.spin = _SPIN_FIFO_S  # sleep closer to the tick: the core must not spin full (module notes)
     try:
         stop = _run(loop, warm, n_steps, target, max_stall_s, use_fast_path)
     finally:

@@ -438,3 +438,31 @@ def test_a_refused_real_time_request_is_reported_and_changes_nothing_else(system
     assert rt["memory_locked"].startswith("refused")
     np.testing.assert_array_equal(np.asarray(run.session.u), np.asarray(ref.session.u))
     assert run.events == ref.events and run.summary["unchecked_inputs"] == 0
+
+
+@pytest.mark.parametrize("granted", [False, True])
+def test_under_real_time_scheduling_the_loop_sleeps_closer_to_its_ticks(system, monkeypatch, granted):
+    """A SCHED_FIFO loop sleeps until 30 µs before a tick (its wake-up is prompt, and spinning its core full would
+    meet the kernel's real-time throttling); without it, until 0.5 ms before (ordinary sleeps wake late)."""
+    import os
+
+    from stimsteer.control import _process_priority as pp
+
+    model, target = system
+    monkeypatch.setattr(os, "sched_setscheduler", lambda *a: None, raising=False)
+    monkeypatch.setattr(os, "sched_setaffinity", lambda *a: None, raising=False)
+    monkeypatch.setattr(pp, "_libc", lambda: None)
+    class _Ticking(_FakeClock):  # a read takes 1 µs: the spin before a tick ends
+        def __call__(self):
+            self.t += 1e-6
+            return self.t
+    clock, slept = _Ticking(), []
+
+    def sleep(s):
+        slept.append(s)
+        clock.t += s
+    run = _live(_controller(model), _plant(model, rate=1000.0), n_steps=10, target=target, pace="wall", seed=1,
+                clock=clock, sleep=sleep, realtime=granted)
+    assert set(run.events) == {"planned"}
+    # each plan takes 0.1 ms of the 1 ms period: 0.9 ms left (less a few clock reads), slept but for the spin margin
+    np.testing.assert_allclose(slept[1:], 0.9e-3 - (30e-6 if granted else 0.5e-3), atol=1e-5)
