@@ -57,17 +57,21 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..sysid import InvalidParameterError, LimitsError, Session, SessionError, StimsteerError, check_fitted
+from ..sysid import InvalidParameterError, Session, StimsteerError, check_fitted
 from ..sysid.caution import CAUTION
+from . import _process_priority
 from ._live_record import record_run, timing_summary
+from ._live_setup import OVERRUN_POLICIES, PACES, _calibrate, _check_settings, _warmup, energy_window
 from .input_gate import InputGate
 from .loop import offset_free_wrapper
+from .mpc.fast_step import StepResult
 
 __all__ = ["LiveRun", "run_live", "energy_window", "OVERRUN_POLICIES", "PACES"]
 
-OVERRUN_POLICIES = ("hold", "fallback")
-PACES = ("wall", "source", "none")
 _SPIN_S = 0.0005  # sleep until this close to a wall tick, then spin: sleep alone wakes up to ~0.1 ms late
+# under SCHED_FIFO a sleep wakes within ~25 µs (p99 on a loaded 2-core VM), and a loop that spun its core full would
+# meet the kernel's real-time throttling (by default 0.95 s of every second: a 50 ms stall each second)
+_SPIN_FIFO_S = 30e-6
 
 
 @dataclass(frozen=True)
@@ -104,11 +108,11 @@ class LiveRun:
 class _Loop:
     """The mutable state of one run: delivered inputs and received outputs (preallocated), gate, clock, markers."""
 
-    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity, simulated_plant=False):
+    def __init__(self, controller, plant, gate, period, policy, pace, clock, capacity, n_steps, simulated_plant=False):
         self.c, self.plant, self.gate, self.T = controller, plant, gate, period
         # a simulated plant's step is the hardware's time, not the loop's: it is taken off the loop's clock
-        self.simulated, self.plant_s, self.plant_t = bool(simulated_plant), 0.0, []
-        self.policy, self.pace, self.clock, self.sleep = policy, pace, clock, time.sleep
+        self.simulated, self.plant_s = bool(simulated_plant), 0.0
+        self.policy, self.pace, self.clock, self.sleep, self.spin = policy, pace, clock, time.sleep, _SPIN_S
         # preallocated: windows are views, not copies (a 10 kHz loop has no time for list-to-array copies)
         self._u = np.zeros((capacity, controller.n_inputs_))
         self._y = np.full((capacity, controller.n_outputs_), np.nan)
@@ -120,14 +124,37 @@ class _Loop:
         # read once: a FastStep answers fitted attributes through __getattr__, a microsecond each at 10 kHz
         self.past = int(controller.past_steps_)
         self.reach = max(self.past, self.history)
-        self.events, self.markers, self.latency, self.ticks = [], {}, [], []
-        self.service = []  # start of the step's work to its decision (latency without waiting for a late start)
-        # wall pace: how late a step started after its tick when the loop was waiting for it (sleep/spin wake-up,
-        # preemption while waiting), and how many steps found their tick already passed (the last step ran over)
-        self.wake, self.n_behind, self.waited = [], 0, False
+        # per-step records, preallocated and touched (no list growth, float objects or page faults mid-run):
+        # latency, service (start of the step's work to its decision), ticks, wake-up lateness (wall pace: how late
+        # a step started after its tick when the loop was waiting for it), the plant's step time; and the events
+        self._rec = {k: _touched(n_steps if k != "plant_t" else capacity)
+                     for k in ("latency", "service", "ticks", "wake", "plant_t")}
+        self._n = dict.fromkeys(self._rec, 0)
+        self._ev, self.n_events = [""] * n_steps, 0
+        self.markers, self.n_behind, self.waited = {}, 0, False
         # work a controller leaves for the time between samples (FastStep: the answer map of a new active set)
         self._idle = getattr(controller, "idle", None) if hasattr(controller, "idle_cost_s") else None
         self.start = 0.0  # when the current step's work began (set by _step)
+
+    def record(self, kind, value):
+        i = self._n[kind]
+        self._rec[kind][i] = value
+        self._n[kind] = i + 1
+
+    def recorded(self, kind):
+        return self._rec[kind][:self._n[kind]]
+
+    latency, service, ticks, wake, plant_t = (property(lambda self, k=k: self.recorded(k))
+                                              for k in ("latency", "service", "ticks", "wake", "plant_t"))
+
+    @property
+    def events(self):
+        return self._ev[:self.n_events]
+
+    def event(self, kind):
+        i = self.n_events
+        self._ev[i] = kind
+        self.n_events = i + 1
 
     @property
     def U(self):
@@ -156,8 +183,8 @@ class _Loop:
         sent, why = self.gate.admit(u, hand=True)  # a plant sharing the gate (the bridge) sends it as checked
         if base is not None:
             now = self.clock()
-            self.latency.append(now - base)
-            self.service.append(now - self.start)
+            self.record("latency", now - base)
+            self.record("service", now - self.start)
         if why:
             self.mark(f"gate_{why}")
         i = self.n
@@ -171,7 +198,7 @@ class _Loop:
             raise
         finally:
             dt = self.clock() - t0
-            self.plant_t.append(dt)
+            self.record("plant_t", dt)
             if self.simulated:
                 self.plant_s += dt
         if y.shape == self._y_shape and math.isfinite(np.dot(self._ones, y)):  # NaN or inf anywhere: not finite
@@ -199,15 +226,15 @@ class _Loop:
             if idle is not None and left > 2.0 * self.c.idle_cost_s:  # only with time to spare before the tick
                 if not idle():  # a piece of work done: the clock is read again before the next
                     idle = None
-            elif left > _SPIN_S:
-                self.sleep(left - _SPIN_S)
+            elif left > self.spin:
+                self.sleep(left - self.spin)
             now = self.clock()
 
 
 def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace="wall", sample_rate_hz=None,
              seed=None, x0=None, warmup_inputs=None, calibration_steps=20, max_stall_s=1.0, use_fast_path=None,
              output_units="a.u.", clock=time.perf_counter, offset_free=None, sleep=time.sleep,
-             simulated_plant=False) -> LiveRun:
+             simulated_plant=False, realtime=False) -> LiveRun:
     """Run a fitted controller against a plant in real time, with deadlines, and record the run as a session.
 
     Parameters
@@ -256,6 +283,12 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
         arrival (its tick) to the checked input, as a loop beside real hardware times it. False: the plant's step
         runs inside the period (the streaming bridge's step sends the input and reads the next sample: loop work).
         Nothing else changes: every input is gated, a late plan is never delivered.
+    realtime : bool, default False
+        Ask for real-time scheduling (``SCHED_FIFO``) on one core and locked memory for the run
+        (:mod:`stimsteer.control._process_priority`); what the system granted or refused, with its reason, is in
+        ``summary["realtime"]``. Never required: a refusal changes nothing else. Everything granted is undone when
+        the run ends. Under ``SCHED_FIFO`` the loop sleeps until 30 µs before each tick (not 0.5 ms), so it
+        never spins its core full.
 
     Returns
     -------
@@ -277,7 +310,7 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
     warm = _warmup(controller, warmup_inputs)
     gate = _gate(controller, plant)
     capacity = warm.shape[0] + int(n_steps) + _ramp_steps(controller.limits_) + 1
-    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity, simulated_plant)
+    loop = _Loop(controller, plant, gate, period, overrun_policy, pace, clock, capacity, int(n_steps), simulated_plant)
     loop.sleep = sleep
     best = _calibrate(controller, warm, target, gate, int(calibration_steps), use_fast_path, clock)
     if period < best["min"]:
@@ -287,8 +320,15 @@ def run_live(controller, plant, *, n_steps, target, overrun_policy="hold", pace=
             f"on the warm-up window); lower the rate below {1 / best['min']:.4g} Hz (below {1 / best['median']:.4g} "
             "Hz for most steps to meet their deadline), or use a cheaper controller (shorter horizon, fewer inputs).")
     plant.reset(seed=seed, x0=x0)
-    stop = _run(loop, warm, n_steps, target, max_stall_s, use_fast_path)
+    granted, undo = _process_priority.request() if realtime else ({"requested": False}, [])
+    if str(granted.get("sched_fifo", "")).startswith("granted"):
+        loop.spin = _SPIN_FIFO_S  # sleep closer to the tick: the core must not spin full (module notes)
+    try:
+        stop = _run(loop, warm, n_steps, target, max_stall_s, use_fast_path)
+    finally:
+        _process_priority.restore(undo)
     summary = timing_summary(loop, period, best, stop)
+    summary["realtime"] = granted
     if offset_free:
         summary["offset_free"] = {"disturbance_model": offset_free,
                                   "disturbance_estimate": [float(v) for v in controller.disturbance_]}
@@ -312,7 +352,7 @@ def _run(loop, warm, n_steps, target, max_stall_s, use_fast_path):
         for u in warm:
             loop.deliver(u)
         stall_limit = max(1, int(np.ceil(max_stall_s / loop.T)))
-        loop.plant_s, loop.plant_t = 0.0, []  # the controlled samples' (the warm-up has no deadline)
+        loop.plant_s, loop._n["plant_t"] = 0.0, 0  # the controlled samples' (the warm-up has no deadline)
         t0 = loop.clock() + loop.T
         for k in range(int(n_steps)):
             # a simulated plant's time so far moves the schedule: ticks keep the loop's clock
@@ -341,22 +381,23 @@ def _step(loop, tick, target, use_fast_path):
     c, T = loop.c, loop.T
     start = loop.start = loop.wait_tick(tick)
     base = tick if loop.pace == "wall" else start
-    loop.ticks.append(start - loop.plant_s)
+    loop.record("ticks", start - loop.plant_s)
     if loop.pace == "wall":
         if loop.waited:
-            loop.wake.append(start - tick)
+            loop.record("wake", start - tick)
         else:
             loop.n_behind += 1
     if loop.pace == "wall" and start - tick > T:  # this tick passed while the previous step ran: not planned
-        loop.latency.append(np.nan)
-        loop.service.append(np.nan)
+        loop.record("latency", math.nan)
+        loop.record("service", math.nan)
         return _after(loop, loop.deliver(_policy_input(loop), "missed"), "missed")
     window = loop.window()
     if window is None:
         return _after(loop, loop.deliver(loop.gate.safe_input(), "no_data", base), "no_data")
     try:
         plan = c.plan(window[0], window[1], target=target, last_input=loop.gate.last_input, use_fast_path=use_fast_path)
-        u, kind = (plan.inputs[0], "planned") if not plan.fallback else (None, "failed")
+        # a fast step's first input as a list of floats (the gate takes it without an array round trip)
+        u, kind = (_first(plan), "planned") if not plan.fallback else (None, "failed")
     except Exception:  # noqa: BLE001 -- a live loop must deliver something safe whatever went wrong in a plan
         u, kind = None, "failed"
     if kind == "planned" and loop.clock() - base > T:
@@ -368,8 +409,12 @@ def _step(loop, tick, target, use_fast_path):
         loop._idle()
 
 
+def _first(plan):
+    return plan.first if type(plan) is StepResult else plan.inputs[0]
+
+
 def _after(loop, why, kind):
-    loop.events.append(kind + (f"+gate:{why}" if why else ""))
+    loop.event(kind + "+gate:" + why if why else kind)
 
 
 def _policy_input(loop):
@@ -409,74 +454,11 @@ def _wind_down(loop):
             continue
 
 
-def _calibrate(controller, warm, target, gate, n, use_fast_path, clock):
-    """Time ``n`` plans (+ a fresh gate's check) on the warm-up window. Work a controller leaves for the time between
-    samples (FastStep: the answer map of an active set it found new) is done first, untimed: before the first tick
-    there is no deadline, so the run starts with it done, as the steps it times do."""
-    T = controller.past_steps_
-    times = np.empty(n)
-    if hasattr(controller, "idle_cost_s"):
-        controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
-                        use_fast_path=use_fast_path)
-        while controller.idle():  # every piece of the map: no deadline yet
-            pass
-    for i in range(n):
-        fresh = InputGate(controller.limits_, energy_window_steps=energy_window(controller))  # built untimed
-        t0 = clock()
-        plan = controller.plan(warm[-T:], _zeros_like_outputs(controller, T), target=target, last_input=warm[-1],
-                               use_fast_path=use_fast_path)
-        fresh.admit(plan.inputs[0])
-        times[i] = clock() - t0
-    controller.reset()  # no warm start carried from the timing plans into the run
-    return {"n": n, "min": float(times.min()), "median": float(np.median(times)), "max": float(times.max())}
-
-
-def energy_window(controller) -> int:
-    """The rolling window of the per-sample layout's energy budget: declared in the limits, else the horizon."""
-    return int(controller.limits_.energy_window_steps or controller.horizon_steps_)
-
-
-def _zeros_like_outputs(controller, T):
-    return np.zeros((T, controller.n_outputs_))
-
-
-def _check_settings(controller, plant, n_steps, policy, pace, rate, calibration_steps, max_stall_s):
-    if policy not in OVERRUN_POLICIES:
-        raise InvalidParameterError(f"overrun_policy must be one of {list(OVERRUN_POLICIES)}; got {policy!r}.")
-    if pace not in PACES:
-        raise InvalidParameterError(f"pace must be one of {list(PACES)}; got {pace!r}.")
-    for name, v in (("n_steps", n_steps), ("calibration_steps", calibration_steps)):
-        if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 1:
-            raise InvalidParameterError(f"{name} must be a whole number >= 1; got {v!r}.")
-    if not (isinstance(max_stall_s, (int, float)) and np.isfinite(max_stall_s) and max_stall_s > 0):
-        raise InvalidParameterError(f"max_stall_s must be a positive number of seconds; got {max_stall_s!r}.")
-    m, p = controller.n_inputs_, controller.n_outputs_
-    if (int(plant.n_inputs), int(plant.n_outputs)) != (m, p):
-        raise SessionError(f"the plant has {plant.n_inputs} inputs and {plant.n_outputs} outputs but the controller "
-                           f"{m} and {p}; run the loop on a plant with the channels the controller was built for.")
-    plant_rate = float(plant.sample_rate_hz)
-    rate = plant_rate if rate is None else float(rate)
-    if not (np.isfinite(rate) and rate > 0):
-        raise InvalidParameterError(f"sample_rate_hz must be a positive number of Hz; got {rate!r}.")
-    if abs(rate - plant_rate) > 1e-9 * plant_rate:
-        raise SessionError(f"the loop rate {rate:g} Hz differs from the plant's {plant_rate:g} Hz; run the loop at "
-                           "the rate the plant (or stream) samples at.")
-    return 1.0 / rate
-
-
-def _warmup(controller, warmup_inputs):
-    m, T = controller.n_inputs_, controller.past_steps_
-    if warmup_inputs is None:
-        return np.zeros((T, m))
-    w = np.asarray(warmup_inputs, dtype=np.float64)
-    if w.ndim != 2 or w.shape[1] != m or w.shape[0] < T:
-        raise SessionError(f"warmup_inputs must have shape (>= {T}, {m}) (the controller's past window); got "
-                           f"{w.shape}.")
-    bad = controller.limits_.violations(w, np.zeros(m), energy_window_steps=energy_window(controller))
-    if any(bad.values()) or not np.all(np.isfinite(w)):
-        raise LimitsError(f"the warm-up inputs break the hard limits ({bad}) counted from rest; warm up inside "
-                          "the declared limits.")
-    return w
+def _touched(n):
+    """A float64 buffer of ``n`` values whose pages are all written (faulted in) now, before any deadline."""
+    a = np.empty(max(int(n), 1))
+    a.fill(0.0)
+    return a
 
 
 def _jitter(ticks, period, pace):

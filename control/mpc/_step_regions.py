@@ -46,16 +46,17 @@ _MAX = np.maximum.reduce  # without ndarray.max's Python wrapper (a live step's 
 
 class Region:
     """The map of one active set: ``v = K w + k`` (``k`` for the current target), ``v[:m]`` the first input,
-    ``check = v[m:]`` (all ``<= tol`` exactly when optimal); ``Kc`` maps the first input's bound changes."""
+    ``check = v[m:]`` (all ``<= tol`` exactly when optimal); ``Kc`` maps the first input's bound changes. ``KX`` is
+    ``[K | k]`` in one buffer (``K``, ``k`` are its views): a step is one product with ``[w; 1]``."""
 
-    __slots__ = ("K", "k", "Kc", "v", "check", "version", "act", "Pbk", "b0", "rows", "sign", "moves", "sets")
+    __slots__ = ("K", "k", "KX", "Kc", "v", "check", "version", "act", "Pbk", "b0", "rows", "sign", "moves", "sets")
 
-    def __init__(self, K, Kc, act, Pbk, b0, rows, sign):
-        self.K, self.Kc, self.act, self.Pbk, self.b0 = K, Kc, act, Pbk, b0
+    def __init__(self, KX, Kc, act, Pbk, b0, rows, sign):
+        self.KX, self.K, self.Kc, self.act, self.Pbk, self.b0 = KX, KX[:, :-1], Kc, act, Pbk, b0
         self.rows, self.sign = rows, sign
-        self.v = np.empty(K.shape[0])
+        self.v = np.empty(KX.shape[0])
         self.check = self.v[rows[0].size:]
-        self.k, self.version = None, -1
+        self.k, self.version = KX[:, -1], -1
         # per check: the row it concerns and what its failure suggests (1: hold it at its upper bound, -1: at its
         # lower one, 0: release it); and the set's upper and lower rows
         self.moves = list(zip(np.concatenate([rows[1], rows[2], act]).tolist(),
@@ -125,7 +126,8 @@ class Regions:
         self._rr, self._version = self._CX @ q_r, self._version + 1
 
     def solve(self, w, lo_m, hi_m):
-        """``v`` (its first ``m`` values the first input) for the window ``w`` on the current set, or on one of the
+        """``v`` (its first ``m`` values the first input) for the window ``w`` (``[w; 1]``: the window and a last 1)
+        on the current set, or on one of the
         last few sets used before it (a loop moving back and forth between sets, e.g. under a gate that reduces some
         inputs); None when none of them is optimal there, or ``w`` is not finite (NaN fails every compare).
         ``lo_m``, ``hi_m`` are the first input's bounds (lists) when they move (slew), else None."""
@@ -186,8 +188,7 @@ class Regions:
         if r.version != self._version:
             self._offsets(r)
         v = r.v
-        np.dot(r.K, w, out=v)
-        v += r.k
+        np.dot(r.KX, w, out=v)  # K w + k
         if lo_m is not None:  # the first input's bounds moved from the static ones: their change through Kc
             v += r.Kc @ [b - b0 for b, b0 in zip(hi_m + lo_m, self._hi0 + self._lo0)]
         if not _MAX(r.check) <= self.tol:
@@ -276,20 +277,21 @@ class Regions:
         up = np.flatnonzero(free & ((self._hi < _BIG) | moves))
         low = np.flatnonzero(free & ((self._lo > -_BIG) | moves))
         nu, nl, s = up.size, low.size, act.size
-        K = np.zeros((max(m + nu + nl + s, m + 1), W.shape[1] - nr))  # a row that always passes when none checks
+        KX = np.zeros((max(m + nu + nl + s, m + 1), W.shape[1] - nr + 1))  # a row that always passes when none
+        K = KX[:, :-1]  # checks; the last column (k) is the target's, set by _offsets
         Ww = W[:, nr:]
         K[:m] = Ww[:m]
         K[act[act < m]] = 0.0
         K[m:m + nu] = Ww[up]
         np.negative(Ww[low], out=K[m + nu:m + nu + nl])
         np.multiply(Ww[act], (-self._c * sign)[:, None], out=K[m + nu + nl:m + nu + nl + s])
-        return K, act, sign, up, low
+        return KX, act, sign, up, low
 
     def _finish(self, W, part):
         """The second piece: ``Pbk``, how the active rows' bound values move each of ``v``'s rows (``rows − Pb z``
         with ``z = C_S x₀ − b_S``; ``Pb = G_:S G_SS⁻¹``, ``I`` on the active rows; ``c·sign·G_SS⁻¹`` for the
         multipliers), the static bounds of the active rows, ``Kc`` and the region."""
-        K, act, sign, up, low = part
+        K, act, sign, up, low = part  # K: [K | k]
         m, nu, nl, s = self._m, up.size, low.size, act.size
         Pbk = np.zeros((K.shape[0], s))
         first = np.arange(m)
@@ -337,7 +339,8 @@ class Regions:
         k[m:m + nu] = rr[up] - self._hi[up]
         k[m + nu:m + nu + nl] = self._lo[low] - rr[low]
         k -= r.Pbk @ z
-        r.k, r.version = k, self._version
+        r.k[:] = k  # the last column of KX
+        r.version = self._version
 
 
 def _sweep(W, k, piv) -> bool:

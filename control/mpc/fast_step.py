@@ -50,12 +50,20 @@ _BOX_MIN_VARS = 160
 
 
 class StepResult:
-    """What a fast step decides: ``inputs`` (1, n_inputs), ``fallback``, ``status`` (``"optimal"`` or the reason)."""
+    """What a fast step decides: ``inputs`` (1, n_inputs), ``fallback``, ``status`` (``"optimal"`` or the reason);
+    ``first``: the first input as a list of floats (what a live runner hands its gate, without array round trips;
+    ``inputs`` is built from it when asked for)."""
 
-    __slots__ = ("inputs", "fallback", "status")
+    __slots__ = ("first", "_inputs", "fallback", "status")
 
-    def __init__(self, inputs, fallback, status):
-        self.inputs, self.fallback, self.status = inputs, fallback, status
+    def __init__(self, first, fallback, status):
+        self.first, self._inputs, self.fallback, self.status = first, None, fallback, status
+
+    @property
+    def inputs(self) -> np.ndarray:
+        if self._inputs is None:
+            self._inputs = np.array([self.first], np.float64)
+        return self._inputs
 
 
 class FastStep:
@@ -111,7 +119,9 @@ class FastStep:
         self._T, self._m, self._p, self._N = T, m, p, N
         self._tol = _ACCEPT_RTOL * max(1.0, float(np.max(np.abs(np.concatenate([c._lo, c._hi])))))
         self._target, self._qr = None, None
-        self._w, self._q, self._ones = np.empty(T * (m + p)), np.empty(N * m), np.ones(N * m)
+        # the window w and a last 1 in one buffer: a known active set's answer is one product with [w; 1]
+        self._wx, self._q, self._ones = np.ones(T * (m + p) + 1), np.empty(N * m), np.ones(N * m)
+        self._w = self._wx[:-1]
         # the window's two halves as (T, m) and (T, p) views of w: filled by one copy each, no reshape
         self._wu, self._wy = self._w[:T * m].reshape(T, m), self._w[T * m:].reshape(T, p)
         big = 1e30  # the dense solver's "no bound"
@@ -178,7 +188,7 @@ class FastStep:
                 return self._fallback(last, "no input meets the limits from the last one")
             lo[:m], hi[:m] = lo_m, hi_m
         regions, status = self._regions, "optimal"
-        x = None if regions is None else regions.solve(w, lo_m if moving else None, hi_m)
+        x = None if regions is None else regions.solve(self._wx, lo_m if moving else None, hi_m)
         if x is None:
             np.dot(self._Qw, w, out=q)
             q += qr
@@ -193,10 +203,10 @@ class FastStep:
         # Python floats: for a handful of inputs several times faster than numpy calls (NaN fails both compares)
         if not all(a - tol <= v <= b + tol for v, a, b in zip(u0, lo_m, hi_m)):
             return self._fallback(last, "the solver's answer breaks a hard limit")
-        return StepResult(np.array([[min(max(v, a), b) for v, a, b in zip(u0, lo_m, hi_m)]]), False, status)
+        return StepResult([min(max(v, a), b) for v, a, b in zip(u0, lo_m, hi_m)], False, status)
 
     def _fallback(self, last, why):
-        return StepResult(self.controller_.limits_.safe_inputs(1, last), True, why)
+        return StepResult(self.controller_.limits_.safe_inputs(1, last)[0].tolist(), True, why)
 
 
 def _slew_window(last, slew, lo, hi):

@@ -382,3 +382,87 @@ def test_the_gate_never_corners_itself_under_slew_and_energy_limits():
     assert gate.n_unavoidable == 0 and gate.n_replaced > 0
     assert all(e[max(0, k - 5):k + 1].sum() <= 4.0 for k in range(len(e)))
     assert lim.violations(u, np.zeros(M), energy_window_steps=6) == {"amplitude": 0, "slew": 0, "energy_budget": 0}
+
+
+def test_real_time_scheduling_is_asked_for_only_on_request_reported_and_undone(system, monkeypatch):
+    """``realtime=True`` asks for SCHED_FIFO, one core and locked memory; a refusal is reported with the system's
+    reason and the run goes on; what was granted is undone when the run ends (the calls are recorded, not made:
+    tests must not take a core from the machine)."""
+    import os
+
+    from stimsteer.control import _process_priority as pp
+
+    model, target = system
+    calls = []
+    monkeypatch.setattr(os, "sched_setscheduler", lambda pid, pol, par: calls.append(("sched", pol)), raising=False)
+    monkeypatch.setattr(os, "sched_setaffinity", lambda pid, cores: calls.append(("cores", set(cores))),
+                        raising=False)
+
+    class _Libc:
+        def mlockall(self, flags):
+            calls.append(("lock", flags))
+            return -1  # refused
+
+    monkeypatch.setattr(pp, "_libc", lambda: _Libc())
+    run = _live(_controller(model), _plant(model), n_steps=5, target=target, pace="none", seed=1, realtime=True)
+    rt = run.summary["realtime"]
+    assert rt["requested"] is True and rt["sched_fifo"].startswith("granted")
+    assert rt["cpu"].startswith("granted") and rt["memory_locked"].startswith("refused")
+    assert run.session.metadata["live_run"]["realtime"] == rt and run.summary["unchecked_inputs"] == 0
+    before = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else None
+    kinds = [c[0] for c in calls]
+    assert kinds == ["sched", "cores", "lock", "cores", "sched"]  # asked for, then undone last first
+    assert calls[1][1] == {max(before)} and calls[3][1] == before
+    assert calls[0][1] == os.SCHED_FIFO and calls[4][1] == os.sched_getscheduler(0)
+    calls.clear()
+    plain = _live(_controller(model), _plant(model), n_steps=5, target=target, pace="none", seed=1)
+    assert plain.summary["realtime"] == {"requested": False} and calls == []
+
+
+def test_a_refused_real_time_request_is_reported_and_changes_nothing_else(system, monkeypatch):
+    import os
+
+    from stimsteer.control import _process_priority as pp
+
+    model, target = system
+
+    def denied(*a):
+        raise PermissionError(1, "Operation not permitted")
+    for name in ("sched_setscheduler", "sched_setaffinity"):
+        monkeypatch.setattr(os, name, denied, raising=False)
+    monkeypatch.setattr(pp, "_libc", lambda: None)
+    run = _live(_controller(model), _plant(model), n_steps=20, target=target, pace="none", seed=1, realtime=True)
+    ref = _live(_controller(model), _plant(model), n_steps=20, target=target, pace="none", seed=1)
+    rt = run.summary["realtime"]
+    assert rt["sched_fifo"] == rt["cpu"] == "refused: Operation not permitted"
+    assert rt["memory_locked"].startswith("refused")
+    np.testing.assert_array_equal(np.asarray(run.session.u), np.asarray(ref.session.u))
+    assert run.events == ref.events and run.summary["unchecked_inputs"] == 0
+
+
+@pytest.mark.parametrize("granted", [False, True])
+def test_under_real_time_scheduling_the_loop_sleeps_closer_to_its_ticks(system, monkeypatch, granted):
+    """A SCHED_FIFO loop sleeps until 30 µs before a tick (its wake-up is prompt, and spinning its core full would
+    meet the kernel's real-time throttling); without it, until 0.5 ms before (ordinary sleeps wake late)."""
+    import os
+
+    from stimsteer.control import _process_priority as pp
+
+    model, target = system
+    monkeypatch.setattr(os, "sched_setscheduler", lambda *a: None, raising=False)
+    monkeypatch.setattr(os, "sched_setaffinity", lambda *a: None, raising=False)
+    monkeypatch.setattr(pp, "_libc", lambda: None)
+    class _Ticking(_FakeClock):  # a read takes 1 µs: the spin before a tick ends
+        def __call__(self):
+            self.t += 1e-6
+            return self.t
+    clock, slept = _Ticking(), []
+
+    def sleep(s):
+        slept.append(s)
+        clock.t += s
+    run = _live(_controller(model), _plant(model, rate=1000.0), n_steps=10, target=target, pace="wall", seed=1,
+                clock=clock, sleep=sleep, realtime=granted)
+    assert set(run.events) == {"planned"}
+    # each plan takes 0.1 ms of the 1 ms period: 0.9 ms left (less a few clock reads), slept but for the spin margin
+    np.testing.assert_allclose(slept[1:], 0.9e-3 - (30e-6 if granted else 0.5e-3), atol=1e-5)
