@@ -213,7 +213,7 @@ def write_pulse_plan(folder, u, mapping, compiled, record, *, u_past=None) -> di
         The completed record (what the files say), with ``files`` (names written).
     """
     pulses, checks = safety_checks(u, mapping, compiled, u_past=u_past)
-    params = parameter_segments(u, mapping)
+    params = parameter_segments(u, mapping, scale=compiled.amplitude_max)  # one row per amplitude, to 1e-9 of its bound
     record = {**record, "mapping": mapping.record(), "physical_limits": compiled.physical.to_dict(),
               "amplitude_bound": {s.name: float(a) for s, a in zip(mapping.sites, compiled.amplitude_max)},
               "amplitude_bound_rule": dict(zip(mapping.description.names, compiled.binding_rule)),
