@@ -83,7 +83,7 @@ def test_pulses_onto_the_grid_and_back_are_the_same_when_a_pulse_falls_in_every_
 
 
 def test_parameter_rows_at_a_bound_merge_to_rounding_and_split_on_a_real_step():
-    """Seen in the demo's plan_pulses: four samples on the 50 µA bound, each off it by about 1e-14 µA, were four rows
+    """Seen in the demo's plan_pulses: four samples on the 50 µA bound, off it by 0 to 4e-14 µA, were four rows
     of plan_parameters.csv (exact equality), so the table changed with rounding upstream."""
     m = InputMapping(_desc(unit="uA"), 250.0)
     u = np.zeros((8, 2))
