@@ -6,7 +6,8 @@ reaches, the margin (limit − value, and as a fraction of the limit), whether i
 :func:`write_pulse_plan` writes, into a folder being written atomically, ``plan_parameters.csv`` and
 ``plan_pulses.csv`` (each opening with comment lines: status, model and session hashes, versions, limits and every
 check) and ``plan_pulses.nwb`` (two NWB ``TimeIntervals`` tables, ``planned_pulses`` and ``planned_parameters``,
-with the same record as JSON in the file's notes) when pynwb is installed.
+with the same record as JSON in the file's notes) when pynwb is installed (the file follows its schema; it is written
+with h5py, :mod:`stimsteer.sysid.io.nwb_intervals`, without importing pynwb).
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ..sysid.stimulation import decode_plan, parameter_segments
+from ..sysid.io.nwb_intervals import IntervalColumn, write_nwb_intervals
 from .physical_limits import RULE_SOURCES, pulse_energy_uj
 
 __all__ = ["safety_checks", "window_charges_uc", "window_energies_uj", "write_pulse_plan", "checks_pass"]
@@ -211,7 +213,7 @@ def write_pulse_plan(folder, u, mapping, compiled, record, *, u_past=None) -> di
         The completed record (what the files say), with ``files`` (names written).
     """
     pulses, checks = safety_checks(u, mapping, compiled, u_past=u_past)
-    params = parameter_segments(u, mapping)
+    params = parameter_segments(u, mapping, scale=compiled.amplitude_max)  # one row per amplitude, to 1e-9 of its bound
     record = {**record, "mapping": mapping.record(), "physical_limits": compiled.physical.to_dict(),
               "amplitude_bound": {s.name: float(a) for s, a in zip(mapping.sites, compiled.amplitude_max)},
               "amplitude_bound_rule": dict(zip(mapping.description.names, compiled.binding_rule)),
@@ -228,46 +230,32 @@ def write_pulse_plan(folder, u, mapping, compiled, record, *, u_past=None) -> di
 
 
 def _write_nwb(path, pulses, params, record) -> bool:
-    """Both tables as NWB TimeIntervals (False when pynwb is not installed)."""
-    try:
-        from pynwb import NWBHDF5IO, NWBFile
-    except ImportError:
-        return False
-    nwb = NWBFile(session_description="stimsteer plan: planned stimulation pulses and parameters",
-                  identifier=str(record.get("model_sha256") or "stimsteer-plan"),
-                  session_start_time=datetime(1970, 1, 1, tzinfo=timezone.utc),  # plan time 0 = start of delivery
-                  notes=json.dumps({k: v for k, v in record.items() if k != "files"}, default=_json_default))
-    for name, frame, start, stop, what in (
-            ("planned_pulses", pulses, "onset_s", "stop_s", "one row per planned pulse (physical units in names)"),
-            ("planned_parameters", params, "start_s", "stop_s", "per-site parameters over time (on/off segments)")):
-        nwb.add_time_intervals(_intervals(name, f"{what}; status {record['status']}", frame, start, stop))
-    with NWBHDF5IO(str(path), "w") as io:
-        io.write(nwb)
-    return True
+    """Both tables as NWB TimeIntervals (:func:`stimsteer.sysid.io.nwb_intervals.write_nwb_intervals`; False when
+    pynwb, whose schema the file follows, is not installed)."""
+    tables = [(name, f"{what}; status {record['status']}", _interval_columns(frame, start, stop))
+              for name, frame, start, stop, what in (
+                  ("planned_pulses", pulses, "onset_s", "stop_s",
+                   "one row per planned pulse (physical units in names)"),
+                  ("planned_parameters", params, "start_s", "stop_s",
+                   "per-site parameters over time (on/off segments)"))]
+    return write_nwb_intervals(
+        path, tables, session_description="stimsteer plan: planned stimulation pulses and parameters",
+        identifier=str(record.get("model_sha256") or "stimsteer-plan"),
+        session_start_time=datetime(1970, 1, 1, tzinfo=timezone.utc),  # plan time 0 = start of delivery
+        notes=json.dumps({k: v for k, v in record.items() if k != "files"}, default=_json_default))
 
 
-def _intervals(name, description, frame, start, stop):
-    """``frame`` as one TimeIntervals table, built a column at a time (the values and descriptions that
-    ``add_interval`` row by row gives, without its per-row argument checks: 94 pulses took ~0.3 s that way)."""
-    from hdmf.common import VectorData
-    from pynwb.epoch import TimeIntervals
-
-    spec = {c["name"]: c["description"] for c in TimeIntervals.__columns__}
-    n = len(frame)
-    cols = [c for c in frame.columns if c not in (start, stop)] if n else []
-    columns = [VectorData(name=key, description=spec[key], data=[float(v) for v in frame[col]])
-               for key, col in (("start_time", start), ("stop_time", stop))] if n else []
-    columns += [VectorData(name=c, description=c.replace("_", " "), data=[_cell(v, frame[c]) for v in frame[c]])
-                for c in cols]
-    if not n:
-        return TimeIntervals(name=name, description=description)
-    return TimeIntervals(name=name, description=description, columns=columns, id=list(range(n)))
+def _interval_columns(frame, start, stop) -> list:
+    """``frame`` as the columns of one TimeIntervals table: ``start_time`` and ``stop_time`` from ``start`` and
+    ``stop``, then every other column under its own name (text columns as text, missing text as "")."""
+    cols = [IntervalColumn("start_time", "", frame[start]), IntervalColumn("stop_time", "", frame[stop])]
+    for c in frame.columns:
+        if c not in (start, stop):
+            text = c in _TEXT
+            values = [None if isinstance(v, float) and math.isnan(v) else v for v in frame[c]] if text else frame[c]
+            cols.append(IntervalColumn(c, c.replace("_", " "), values, text=text))
+    return cols
 
 
 _TEXT = {"site", "kind", "leading_phase", "contacts", "return", "state", "waveform"}
 
-
-def _cell(v, column):
-    if column.name in _TEXT:
-        return "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v)
-    return float(v)

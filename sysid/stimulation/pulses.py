@@ -182,6 +182,19 @@ def _onsets(site, rate, n_samples, start_time_s):
     return start_time_s + idx[keep] / site.frequency_hz, k[keep]
 
 
+def _runs(a, tol: float) -> list:
+    """Row boundaries ``[0, ..., a.size]`` of ``a``: a row ends where on/off changes or a value leaves ``tol`` of the
+    row's first value (within an exact run all values are equal, so only its first needs a look)."""
+    if not a.size:
+        return [0]
+    starts = [0]
+    for k in np.flatnonzero(np.diff(a) != 0) + 1:
+        first = a[starts[-1]]
+        if (a[k] > 0) != (first > 0) or abs(a[k] - first) > tol:
+            starts.append(int(k))
+    return starts + [a.size]
+
+
 def decode_plan(u, mapping: InputMapping, *, start_time_s: float = 0.0, zero_tol: float = 1e-9) -> pd.DataFrame:
     """The pulses a plan of model inputs asks for: one per onset ``t₀ + n / f`` where the input is positive.
 
@@ -223,23 +236,52 @@ def _pulse_row(site, onset, a) -> dict:
             "return": "+".join(site.return_contacts)}
 
 
-def parameter_segments(u, mapping: InputMapping, *, start_time_s: float = 0.0, zero_tol: float = 1e-9) -> pd.DataFrame:
+def parameter_segments(u, mapping: InputMapping, *, start_time_s: float = 0.0, zero_tol: float = 1e-9,
+                       merge_rtol: float = 1e-9, scale=None) -> pd.DataFrame:
     """The per-site parameter table over time: one row per run of equal amplitude (``on`` or ``off``).
 
     Values at or below ``zero_tol`` of the largest are off, as in :func:`decode_plan` (no pulse there).
 
-    Columns: ``start_s``, ``stop_s``, ``site``, ``state`` (on/off), ``amplitude`` in the physical unit (µA; mW/mm²
-    for optical) under ``amplitude_ua`` or ``irradiance_mw_per_mm2``, ``phase_width_us`` (µs; optical: the pulse
-    width in µs), ``frequency_hz``, ``leading_phase``, ``waveform``, ``contacts``, ``return``.
+    Neighbouring samples of one site belong to one row when both are on (or both off) and their amplitudes agree
+    within ``merge_rtol × scale`` of the row's first value (the row then gives its largest amplitude). Why a
+    tolerance: a plan that sits on a bound holds it only to rounding (the solver, the projection onto the limits and
+    the unit conversion leave differences of about 1e-14 of the bound), and with exact equality the rows split or
+    join on the last bit, so the table changed with rounding-level changes upstream. Why ``1e-9`` of the bound: far
+    above rounding (double precision is 2.2e-16 relative; the solves lose a few more digits) and far below any
+    stimulator's amplitude step (current and light sources set amplitude with a DAC of 8 to 16 bits, steps of 1/256
+    to 1/65536 of their range; from memory, no source): rows a stimulator cannot tell apart are merged, rows it can
+    are never.
+
+    Parameters
+    ----------
+    u : ndarray, shape (n_steps, n_sites)
+        Model inputs.
+    mapping : InputMapping
+    start_time_s : float, default 0.0
+    zero_tol : float, default 1e-9
+        Values at or below this fraction of the largest deliver nothing (``off``).
+    merge_rtol : float, default 1e-9
+        Amplitudes within this fraction of ``scale`` are one row.
+    scale : array-like, shape (n_sites,), optional
+        Per-site amplitude scale in the physical unit: the amplitude bound (what :mod:`stimsteer.control.pulse_plan`
+        passes). Default: the site's largest amplitude in ``u``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns: ``start_s``, ``stop_s``, ``site``, ``state`` (on/off), ``amplitude`` in the physical unit (µA;
+        mW/mm² for optical) under ``amplitude_ua`` or ``irradiance_mw_per_mm2``, ``phase_width_us`` (µs; optical:
+        the pulse width in µs), ``frequency_hz``, ``leading_phase``, ``waveform``, ``contacts``, ``return``.
     """
     u = np.asarray(u, np.float64).reshape(-1, len(mapping.sites))
     amp = _delivered(u, mapping, zero_tol)
+    scale = np.max(amp, axis=0, initial=0.0) if scale is None else np.asarray(scale, np.float64)
     rate, rows = mapping.sample_rate_hz, []
     for j, site in enumerate(mapping.sites):
         a = amp[:, j]
-        cut = np.concatenate([[0], np.flatnonzero(np.diff(a) != 0) + 1, [a.size]])
+        cut = _runs(a, merge_rtol * float(scale[j]))
         for lo, hi in zip(cut[:-1], cut[1:]):
-            v = float(a[lo])
+            v = float(a[lo:hi].max())
             elec = site.kind == "electrical"
             rows.append({"start_s": start_time_s + lo / rate, "stop_s": start_time_s + hi / rate,
                          "site": site.name, "state": "on" if v > 0 else "off",

@@ -149,6 +149,11 @@ def test_the_nwb_pulse_table_reads_back_as_time_intervals(models, tmp_path):
         assert np.allclose(pulses["start_time"], csv["onset_s"]) and np.allclose(pulses["amplitude_ua"],
                                                                                  csv["amplitude_ua"])
         assert "checks" in json.loads(f.notes)
+        params = f.intervals["planned_parameters"].to_dataframe()
+        table = pd.read_csv(tmp_path / "out" / "plan_parameters.csv", comment="#")
+        assert np.allclose(params["stop_time"], table["stop_s"]) and len(params) == len(table)
+    # the file is written with h5py (sysid/io/nwb_intervals.py): pynwb's schema validator is the outside check
+    assert pynwb.validate(path=str(tmp_path / "out" / "plan_pulses.nwb")) == []
 
 
 def test_plan_takes_the_description_recorded_in_the_model(models, tmp_path):

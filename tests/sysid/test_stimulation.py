@@ -82,6 +82,27 @@ def test_pulses_onto_the_grid_and_back_are_the_same_when_a_pulse_falls_in_every_
     assert set(seg["state"]) == {"on", "off"} and (seg["stop_s"] > seg["start_s"]).all()
 
 
+def test_parameter_rows_at_a_bound_merge_to_rounding_and_split_on_a_real_step():
+    """Seen in the demo's plan_pulses: four samples on the 50 µA bound, off it by 0 to 4e-14 µA, were four rows
+    of plan_parameters.csv (exact equality), so the table changed with rounding upstream."""
+    m = InputMapping(_desc(unit="uA"), 250.0)
+    u = np.zeros((8, 2))
+    u[:, 0] = [10.0, 50.0, 50.0 - 1e-14, 50.0 + 1e-14, 50.0 - 2e-14, 49.99, 49.99, 0.0]
+    a = parameter_segments(u, m)
+    a = a[a["site"] == "a"]
+    # the rounding-level run is one row (its largest amplitude); 0.01 µA, 2e-4 of the value, is a row of its own
+    assert a["amplitude_ua"].tolist() == [10.0, 50.0 + 1e-14, 49.99, 0.0]
+    assert a["start_s"].tolist() == pytest.approx([0.0, 0.004, 0.02, 0.028])
+    # against the bound (200 µA): 1e-9 of it is 2e-7 µA; a step of 1e-6 µA splits, one of 1e-7 µA does not
+    u[1:5, 0] = [50.0, 50.0 + 1e-7, 50.0, 50.0 + 1e-6]
+    b = parameter_segments(u, m, scale=[200.0, 5.0])
+    assert b[b["site"] == "a"]["amplitude_ua"].tolist() == [10.0, 50.0 + 1e-7, 50.0 + 1e-6, 49.99, 0.0]
+    # on and off never merge, however small the "on" amplitude next to the off sample
+    u[:, 0] = [0.0, 1e-6, 1e-6, 0.0, 0.0, 0.0, 0.0, 10.0]
+    c = parameter_segments(u, m, scale=[200.0, 5.0])
+    assert c[c["site"] == "a"]["state"].tolist() == ["off", "on", "off", "on"]
+
+
 def test_the_parameter_table_and_the_pulse_list_agree_on_which_samples_deliver():
     # Seen in the demo's plan_pulses: a solver's 5.6e-14 µA was "on" in plan_parameters.csv with no pulse in
     # plan_pulses.csv (the pulse list drops values at or below 1e-9 of the largest, the table did not).
