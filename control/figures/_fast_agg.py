@@ -9,7 +9,8 @@ by what they depend on (string, font properties, dpi, hinting, font features and
 - the shaped glyphs of each drawn text (the same list ``_layout`` returns: glyph, font, offset),
 - the font's ascent, descent and line gap of each font properties (``Text._get_layout``'s own computation, through
   the hook matplotlib gives renderers for it),
-- the width, height and descent of each measured string.
+- the width, height and descent of each measured string,
+- the bitmap of each glyph at each sub-pixel offset (a text moved by whole pixels draws the same bitmaps there).
 
 The pixels are those matplotlib draws (tests/control/test_figure_render.py compares them). Where matplotlib's private
 steps used here are missing or different, the renderer is matplotlib's own.
@@ -17,15 +18,24 @@ steps used here are missing or different, the renderer is matplotlib's own.
 
 from __future__ import annotations
 
+import math
+
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg, get_hinting_flag
 from matplotlib.font_manager import fontManager, get_font
 from matplotlib.ft2font import FT2Font
+
+try:  # matplotlib 3.11's glyph-by-glyph rendering
+    from matplotlib.ft2font import RenderMode
+except ImportError:  # pragma: no cover - an older matplotlib: its own draw_text is used
+    RenderMode = None
 
 __all__ = ["FastCanvas", "FastRenderer", "forget"]
 
 # matplotlib's private steps the shortcuts rely on (3.11); without them the renderer is matplotlib's own
 _SHAPES = (all(hasattr(RendererAgg, n) for n in ("_prepare_font", "_draw_text_glyphs_and_boxes"))
-           and hasattr(FT2Font, "_layout"))
+           and all(hasattr(FT2Font, n) for n in ("_layout", "_set_transform", "_render_glyph"))
+           and RenderMode is not None)
 _FIND = hasattr(fontManager, "_find_fonts_by_props")
 _LIMIT = 20000  # entries per cache (a few MB at most); cleared whole when full
 
@@ -42,6 +52,7 @@ class FastRenderer(RendererAgg):
     module notes)."""
 
     _shapes: dict = {}
+    _bitmaps: dict = {}
     _heights: dict = {}
     _sizes: dict = {}
 
@@ -78,15 +89,35 @@ class FastRenderer(RendererAgg):
         if glyphs is None:
             items = self._prepare_font(prop)._layout(s, flags=flags, features=features, language=language)
             glyphs = _remember(self._shapes, key, tuple((i.ft_object, i.glyph_index, i.x, i.y) for i in items))
-        size = prop.get_size_in_points()
-        self._draw_text_glyphs_and_boxes(gc, x, y, angle,
-                                         ((font, size, index, 0, 1, dx, dy) for font, index, dx, dy in glyphs), [])
+        self._draw_glyphs(gc, x, y, angle, prop.get_size_in_points(), glyphs, flags)
         return None
+
+    def _draw_glyphs(self, gc, x, y, angle, size, glyphs, flags) -> None:
+        """``_draw_text_glyphs_and_boxes`` of plain text (no slant, no stretch, no boxes), each glyph's bitmap
+        rendered once per process for each sub-pixel offset (a whole-pixel shift moves the same bitmap)."""
+        cos, sin = math.cos(math.radians(angle)), math.sin(math.radians(angle))
+        matrix = (0x10000 * np.array([[cos, -sin], [sin, cos]]) @ [[1, 0], [0, 1]]).round().astype(int)
+        mode = RenderMode.NORMAL if gc.get_antialiased() else RenderMode.MONO
+        height = self.height
+        for font, index, dx, dy in glyphs:  # dy is upwards; FreeType's y is upwards
+            at_x, at_y = round(0x40 * (x + dx * cos - dy * sin)), round(0x40 * (height - y + dx * sin + dy * cos))
+            key = (font.fname, size, self.dpi, index, angle, flags, mode, at_x & 63, at_y & 63)
+            found = self._bitmaps.get(key)
+            if found is None:
+                font.set_size(size, self.dpi)
+                font._set_transform(matrix, [at_x, at_y])
+                bitmap = font._render_glyph(index, flags, mode)
+                buffer = bitmap.buffer if mode == RenderMode.NORMAL else bitmap.buffer * 0xff
+                found = _remember(self._bitmaps, key, (buffer, bitmap.left - (at_x >> 6), bitmap.top - (at_y >> 6)))
+            buffer, left, top = found
+            # draw_text_image's y is downwards & the bitmap bottom side
+            self._renderer.draw_text_image(buffer, left + (at_x >> 6), int(height) - (top + (at_y >> 6)) +
+                                           buffer.shape[0], 0, gc)
 
 
 def forget() -> None:
     """Empty the process-wide caches of :class:`FastRenderer` (benchmarks: a fresh process's first figures)."""
-    for cache in (FastRenderer._shapes, FastRenderer._heights, FastRenderer._sizes):
+    for cache in (FastRenderer._shapes, FastRenderer._bitmaps, FastRenderer._heights, FastRenderer._sizes):
         cache.clear()
 
 
