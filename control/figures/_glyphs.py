@@ -9,7 +9,10 @@ warnings are silenced and a caption under the figure says which characters could
 A figure laid out by a layout engine (``layout="constrained"``) and saved as PNG without a tight bounding box is
 drawn once (:meth:`GlyphSafeFigure.savefig`): the draw runs the layout and renders, and its pixels are written.
 Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output, then the draw it writes). Its
-``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`).
+``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`). Every
+PNG saved with no option but ``dpi`` and ``format`` is drawn on :class:`~._fast_agg.FastCanvas` (the text work kept
+across saves, an opaque figure written as RGB: the same pixels). Fitting the fonts reads the tick labels as the
+strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`).
 """
 
 from __future__ import annotations
@@ -154,7 +157,7 @@ class GlyphSafeFigure(Figure):
         try:
             if dpi is not None and dpi != "figure":
                 self.set_dpi(dpi)
-            FastCanvas(self).print_png(fname)
+            FastCanvas(self).print_png_fast(fname)
         finally:
             self.set_canvas(canvas)
             self.set_dpi(own_dpi)
@@ -190,10 +193,9 @@ def _tick_labels(axis):
 
 
 def _one_draw(fig, fname, args, kwargs) -> bool:
-    """True when :meth:`GlyphSafeFigure.savefig` may draw once: a PNG of a figure with a layout engine, saved
-    with no option but ``dpi`` and ``format`` (a tight bounding box, a transparent background... take the usual
-    path)."""
-    if args or set(kwargs) - {"dpi", "format"} or fig.get_layout_engine() is None:
+    """True when :meth:`GlyphSafeFigure.savefig` may draw once with its own canvas: a PNG saved with no option but
+    ``dpi`` and ``format`` (a tight bounding box, a transparent background... take the usual path)."""
+    if args or set(kwargs) - {"dpi", "format"}:
         return False
     fmt = kwargs.get("format")
     if fmt is None:

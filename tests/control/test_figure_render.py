@@ -141,3 +141,17 @@ def test_tick_labels_a_font_lacks_get_one_that_has_them():
     family = _font_with(frozenset([candidates[0]]))
     assert all(family in tick.label1.get_fontfamily() for tick in ax.yaxis.get_major_ticks())
     assert not any("no installed font" in t.get_text() for t in fig.texts)  # nothing lost: no caption
+
+
+def test_an_opaque_figure_is_written_as_rgb_with_the_same_pixels_and_a_transparent_one_keeps_its_alpha():
+    for transparent in (False, True):
+        fig = _texts_figure()
+        if transparent:
+            fig.patch.set_alpha(0.0)
+        ours, theirs = io.BytesIO(), io.BytesIO()
+        fig.savefig(ours, format="png", dpi=70)
+        Figure.savefig(_texts_figure() if not transparent else fig, theirs, format="png", dpi=70)
+        a, b = Image.open(ours), Image.open(theirs)
+        assert a.mode == ("RGBA" if transparent else "RGB") and b.mode == "RGBA"
+        assert round(a.info["dpi"][0]) == 70 and "Matplotlib" in a.info["Software"]
+        assert np.array_equal(np.asarray(a.convert("RGBA")), np.asarray(b))
