@@ -9,7 +9,10 @@ warnings are silenced and a caption under the figure says which characters could
 A figure laid out by a layout engine (``layout="constrained"``) and saved as PNG without a tight bounding box is
 drawn once (:meth:`GlyphSafeFigure.savefig`): the draw runs the layout and renders, and its pixels are written.
 Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output, then the draw it writes). Its
-``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`).
+``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`). Every
+PNG saved with no option but ``dpi`` and ``format`` is drawn on :class:`~._fast_agg.FastCanvas` (the text work kept
+across saves, an opaque figure written as RGB: the same pixels). Fitting the fonts reads the tick labels as the
+strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`).
 """
 
 from __future__ import annotations
@@ -19,9 +22,11 @@ import os
 import warnings
 
 from matplotlib import font_manager
+from matplotlib.axis import Axis
 from matplotlib.figure import Figure
 from matplotlib.text import Text
 
+from ._fast_agg import FastCanvas
 from ._one_pass import constrained
 
 __all__ = ["GlyphSafeFigure", "caption_note", "undrawable"]
@@ -54,12 +59,36 @@ def _font_with(chars: frozenset) -> str | None:
     return None
 
 
-def _missing(text: Text) -> set:
+@functools.lru_cache(maxsize=256)
+def _chars_of(key) -> frozenset:
+    """The characters of the font matplotlib finds for the font properties ``key`` (see :func:`_font_key`)."""
+    family, style, variant, weight, stretch, file = key
+    prop = font_manager.FontProperties(family=list(family), style=style, variant=variant, weight=weight,
+                                       stretch=stretch, fname=file)
     try:
-        have = _charmap(font_manager.findfont(text.get_fontproperties(), fallback_to_default=True))
+        path = font_manager.findfont(prop, fallback_to_default=True)
     except (ValueError, RuntimeError):
+        return frozenset()
+    return frozenset(map(chr, _charmap(path)))
+
+
+def _font_key(prop) -> tuple:
+    return (tuple(prop.get_family()), prop.get_style(), prop.get_variant(), prop.get_weight(), prop.get_stretch(),
+            prop.get_file())
+
+
+def _missing_in(string: str, prop) -> set:
+    """The characters of ``string`` the font of ``prop`` lacks (a set test: no font lookup once the font is known)."""
+    if not string:
         return set()
-    return {c for c in text.get_text() if not _skipped(c) and ord(c) not in have}
+    have = _chars_of(_font_key(prop))
+    if not have:  # no font file could be read: nothing to say about the characters
+        return set()
+    return {c for c in set(string).difference(have) if not _skipped(c)}
+
+
+def _missing(text: Text) -> set:
+    return _missing_in(text.get_text(), text.get_fontproperties())
 
 
 def undrawable(names) -> list:
@@ -85,17 +114,27 @@ class GlyphSafeFigure(Figure):
         super().__init__(*args, layout=constrained() if layout == "constrained" else layout, **kwargs)
 
     def _fit_fonts(self) -> list:
-        """Give each text with missing characters a fallback font; the characters no font has."""
+        """Give each text with missing characters a fallback font; the characters no font has.
+
+        Tick labels are checked as the strings the axis' formatters will write, without making the ticks (an axis
+        makes its ticks when asked for its children: about a millisecond each); a tick label that needs another
+        font gets it through the axis' tick parameters, so the ticks made later have it too."""
         lost: set = set()
-        for text in self.findobj(Text):
-            missing = _missing(text)
+        for artist, string, prop in _texts_of(self):
+            missing = _missing_in(string, prop)
             if not missing:
                 continue
             family = _font_with(frozenset(missing))
             if family is None:
                 lost |= missing
-            else:
-                text.set_fontfamily([*text.get_fontfamily(), family])
+            elif isinstance(artist, Text):
+                artist.set_fontfamily([*artist.get_fontfamily(), family])
+            else:  # (axis, which): the tick labels of an axis
+                axis, which = artist
+                ticks = axis.majorTicks if which == "major" else axis.minorTicks
+                current = ticks[0].label1.get_fontfamily() if ticks else prop.get_family()
+                if family not in current:
+                    axis.set_tick_params(which=which, labelfontfamily=[*current, family])
         return sorted(lost)
 
     def savefig(self, fname, *args, **kwargs):
@@ -114,23 +153,49 @@ class GlyphSafeFigure(Figure):
 
     def _print_png_once(self, fname, dpi=None) -> None:
         """Draw once (layout, then render) at ``dpi`` and write the PNG; the figure keeps its canvas and dpi."""
-        from matplotlib.backends.backend_agg import FigureCanvasAgg
-
         canvas, own_dpi = self.canvas, self.dpi
         try:
             if dpi is not None and dpi != "figure":
                 self.set_dpi(dpi)
-            FigureCanvasAgg(self).print_png(fname)
+            FastCanvas(self).print_png_fast(fname)
         finally:
             self.set_canvas(canvas)
             self.set_dpi(own_dpi)
 
 
+def _texts_of(fig):
+    """``(artist, string, font properties)`` of every text of ``fig``: each :class:`~matplotlib.text.Text` (titles,
+    labels, legends, annotations...), and each axis' tick labels as ``((axis, "major" or "minor"), label, ...)``
+    from its locator and formatter (the axis' children would be its ticks, made on the spot)."""
+    stack = [fig]
+    while stack:
+        artist = stack.pop()
+        if isinstance(artist, Axis):
+            stack += [artist.label, artist.offsetText]
+            yield from _tick_labels(artist)
+            continue
+        if isinstance(artist, Text):
+            yield artist, artist.get_text(), artist.get_fontproperties()
+        stack += artist.get_children()
+
+
+def _tick_labels(axis):
+    prop = None
+    for which, ticker in (("major", axis.major), ("minor", axis.minor)):
+        locs = axis.get_majorticklocs() if which == "major" else axis.get_minorticklocs()
+        if len(locs) == 0:
+            continue
+        labels = "".join(ticker.formatter.format_ticks(locs))
+        if labels:
+            if prop is None:  # the tick labels' font: the first tick's (every new tick copies it)
+                prop = axis.majorTicks[0].label1.get_fontproperties()
+            yield (axis, which), labels, prop
+
+
 def _one_draw(fig, fname, args, kwargs) -> bool:
-    """True when :meth:`GlyphSafeFigure.savefig` may draw once: a PNG of a figure with a layout engine, saved
-    with no option but ``dpi`` and ``format`` (a tight bounding box, a transparent background... take the usual
-    path)."""
-    if args or set(kwargs) - {"dpi", "format"} or fig.get_layout_engine() is None:
+    """True when :meth:`GlyphSafeFigure.savefig` may draw once with its own canvas: a PNG saved with no option but
+    ``dpi`` and ``format`` (a tight bounding box, a transparent background... take the usual path)."""
+    if args or set(kwargs) - {"dpi", "format"}:
         return False
     fmt = kwargs.get("format")
     if fmt is None:
