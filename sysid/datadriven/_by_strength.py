@@ -64,11 +64,23 @@ def _c_function(module: str, name: str, *argtypes):
 _POTRF = _c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
 _TRIANGULAR = {name: _c_function("blas", name, _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
                for name in ("dtrsm", "dtrmm")}
+_DDOT = _c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)
+if _DDOT is not None:
+    _DDOT.restype = ctypes.c_double  # (the constructor above declares the arguments; ddot returns a double)
 
 
 def nogil_available() -> bool:
-    """Whether the three kernels release the GIL (the ``ctypes`` route was found)."""
-    return _POTRF is not None and all(f is not None for f in _TRIANGULAR.values())
+    """Whether the kernels release the GIL (the ``ctypes`` route was found)."""
+    return _POTRF is not None and _DDOT is not None and all(f is not None for f in _TRIANGULAR.values())
+
+
+def _sum_of_squares(W: np.ndarray) -> float:
+    """``||W||_F²`` of a Fortran-contiguous array (BLAS ``ddot``, the GIL released: the workers hold it only
+    between calls, so a worker descheduled on a busy machine does not stall the other)."""
+    if not nogil_available():  # pragma: no cover - other SciPy builds
+        return float(np.einsum("ij,ij->", W, W))
+    x = W.ctypes.data_as(_DBL)
+    return float(_DDOT(_ref(W.size), x, _ref(1), x, _ref(1)))
 
 
 def _ref(value: int):
@@ -131,37 +143,72 @@ def strength_errors(Ks: list, G12w: np.ndarray, F: np.ndarray, strengths, c0: fl
     -------
     ndarray, or None where some ``G11 + s I`` is not positive definite (the caller takes the eigen route).
     """
-    n = G12w.shape[0]
     if not (all(K.flags.f_contiguous for K in Ks) and G12w.flags.f_contiguous and F.flags.f_contiguous):
         raise ValueError("strength_errors needs Fortran-ordered G11 copies, G12w and F")
-    diagonal = np.diagonal(Ks[0]).copy()
-    L21w = F[n:n + G12w.shape[1], :n].T * weights[None, :]  # L21ᵀ Ω, n × pN
-    base = float(np.einsum("ij,ij->", L21w, L21w))
-    free = queue.SimpleQueue()
-    for K in Ks:  # each worker's arrays, made here: no large allocation on the worker threads
-        free.put((K, np.empty_like(G12w, order="F")))
-
-    def one(s: float) -> float | None:
-        K, W = free.get()
-        try:
-            _restore_lower(K, diagonal + s)
-            if _potrf_lower(K) != 0:
-                return None
-            np.copyto(W, G12w)
-            _triangular("dtrsm", K, n, W, trans=False)  # L⁻¹ G12 Ω
-            ww = float(np.einsum("ij,ij->", W, W))
-            _triangular("dtrsm", K, n, W, trans=True)  # Y = K⁻¹ G12 Ω
-            yy = float(np.einsum("ij,ij->", W, W))
-            _triangular("dtrmm", F, n, W, trans=True)  # Z = Ctᵀ Y
-            W -= L21w
-            return c0 + float(np.einsum("ij,ij->", W, W)) - base + ww + s * yy
-        finally:
-            free.put((K, W))
-
+    grid = _Grid(Ks, G12w, F, c0, weights)
     strengths = [float(s) for s in strengths]
+    paired = strengths[: len(strengths) - len(strengths) % 2]  # the odd one: on both workers (the same numbers)
     if len(Ks) > 1 and nogil_available():
         with ThreadPoolExecutor(max_workers=len(Ks), thread_name_prefix="stimsteer-ridge-grid") as pool:
-            out = list(pool.map(one, strengths))
+            out = list(pool.map(grid.whole, paired))
+            out += [grid.split(s, pool) for s in strengths[len(paired):]]
     else:
-        out = [one(s) for s in strengths]
+        out = [grid.whole(s) for s in paired] + [grid.split(s, None) for s in strengths[len(paired):]]
     return None if any(e is None for e in out) else np.asarray(out)
+
+
+class _Grid:
+    """The arrays of :func:`strength_errors` and its two ways of scoring one strength."""
+
+    def __init__(self, Ks, G12w, F, c0, weights):
+        self.n, self.G12w, self.F, self.c0 = G12w.shape[0], G12w, F, float(c0)
+        self.diagonal = np.diagonal(Ks[0]).copy()
+        self.L21w = np.asfortranarray(F[self.n:self.n + G12w.shape[1], :self.n].T * weights[None, :])  # L21ᵀ Ω
+        self.base = float(np.einsum("ij,ij->", self.L21w, self.L21w))
+        self.free = queue.SimpleQueue()
+        for K in Ks:  # each worker's arrays, made here: no large allocation on the worker threads
+            self.free.put((K, np.empty_like(G12w, order="F")))
+
+    def _factor(self, K: np.ndarray, s: float) -> bool:
+        _restore_lower(K, self.diagonal + s)
+        return _potrf_lower(K) == 0
+
+    def _columns(self, K, W, c: slice) -> tuple[float, float, float]:
+        """``||W||², ||Y||², ||Z − L21ᵀΩ||²`` over the right-hand sides ``c``, in ``W[:, c]``."""
+        Wc = W[:, c]
+        np.copyto(Wc, self.G12w[:, c])
+        _triangular("dtrsm", K, self.n, Wc, trans=False)  # L⁻¹ G12 Ω
+        ww = _sum_of_squares(Wc)
+        _triangular("dtrsm", K, self.n, Wc, trans=True)  # Y = K⁻¹ G12 Ω
+        yy = _sum_of_squares(Wc)
+        _triangular("dtrmm", self.F, self.n, Wc, trans=True)  # Z = Ctᵀ Y
+        Wc -= self.L21w[:, c]
+        return ww, yy, _sum_of_squares(Wc)
+
+    def _error(self, s: float, parts) -> float:
+        ww, yy, zz = (sum(v) for v in zip(*parts))
+        return self.c0 + zz - self.base + ww + s * yy
+
+    def whole(self, s: float) -> float | None:
+        """One strength on one worker."""
+        K, W = self.free.get()
+        try:
+            return self._error(s, [self._columns(K, W, slice(None))]) if self._factor(K, s) else None
+        finally:
+            self.free.put((K, W))
+
+    def split(self, s: float, pool) -> float | None:
+        """One strength on two workers: one factor, the right-hand sides in halves side by side (the odd strength
+        of a grid; the same numbers with or without ``pool``)."""
+        K, W = self.free.get()
+        try:
+            if not self._factor(K, s):
+                return None
+            pN = W.shape[1]
+            first, second = slice(0, pN // 2), slice(pN // 2, pN)  # disjoint columns of the same W
+            if pool is None:
+                return self._error(s, [self._columns(K, W, first), self._columns(K, W, second)])
+            other = pool.submit(self._columns, K, W, second)
+            return self._error(s, [self._columns(K, W, first), other.result()])
+        finally:
+            self.free.put((K, W))

@@ -386,12 +386,13 @@ def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> 
 def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float) -> tuple[np.ndarray, float]:
     """``(Θ, scale)``: :func:`ridge_map` of the whole data at ``alpha · scale``, ``scale = tr(G) / n_rows``.
 
-    From :data:`TOTAL_FACTOR_ROWS` regressor rows on the trace comes from the diagonal of the sums (the same
-    numbers, summed in another order) and the Gram is the one the condition check kept with its factor
-    (``_factor_gram``: no second assembly) or, without it, its first ``n_b`` rows assembled (the map uses no
-    other; 71 % of the Gram at past 100 / horizon 50). Below, the whole Gram is assembled, as it always was.
+    The trace comes from the diagonal of the sums (the same numbers as the assembled Gram's diagonal, in the
+    same order: the same pairwise sum as ``np.trace``) and the Gram is the one the condition check kept with its
+    factor (``_factor_gram``: no second assembly; the same numbers, as the assembled Gram is exactly symmetric).
+    Without it, from :data:`TOTAL_FACTOR_ROWS` regressor rows on, its first ``n_b`` rows are assembled (the map
+    uses no other; 71 % of the Gram at past 100 / horizon 50); below, the whole Gram, as it always was.
     """
-    if n_b >= TOTAL_FACTOR_ROWS:
+    if n_b >= TOTAL_FACTOR_ROWS or total._factor_gram is not None:
         scale = float(total.gram_diagonal().sum()) / total.n_rows
         if total._factor_gram is not None:
             theta = _ridge_map_from_kept(total, n_b, alpha * scale)

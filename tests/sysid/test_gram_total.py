@@ -100,6 +100,19 @@ def test_the_kept_gram_gives_the_final_map_without_a_second_assembly(folds, monk
                                   gr._lower_t_times(total._factor, n_b, X.copy(), block=7))
 
 
+def test_small_fits_take_the_final_map_from_the_kept_gram_bit_for_bit(folds, monkeypatch):
+    fs, _total, n_b = folds  # n_b = 20, below TOTAL_FACTOR_ROWS: the golden demo's sizes
+    part = gr.total_fold(fs)
+    G = part.gram
+    gr.gram_condition_of(part, keep_gram=True)
+    calls = []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, **k: calls.append(1))
+    theta, scale = gr.fitted_ridge_map(part, n_b, 1e-3)
+    assert not calls  # no Gram assembled again
+    assert scale == np.trace(G) / G.shape[0]  # what the small fits computed before, bit for bit
+    np.testing.assert_array_equal(theta, gr.ridge_map(G, n_b, 1e-3 * scale))
+
+
 @pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
 def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monkeypatch):
     s, P, N = _system(), 5, 8
