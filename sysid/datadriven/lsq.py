@@ -85,7 +85,8 @@ class LsqPredictor(_DirectPredictor):
     ``Θ = [Kp_ Kf_] = argmin_Θ ||Yf − Θ D||_F² + alpha·s ||Θ||_F²`` over all Hankel windows. On the Gram route
     (``factor_route_ == "gram"``) it is ``G21 (G11 + alpha·s I)⁻¹`` from the Gram ``G`` of ``[D; Yf]``, made from
     streamed lag products of the raw samples (:mod:`stimsteer.sysid.datadriven.gram`), and every strength of a fold
-    is scored from one eigendecomposition of the training ``G11``. Where the Gram is ill-conditioned (QR route) it
+    is scored from one eigendecomposition of the training ``G11`` (on large Grams, one Cholesky factor of
+    ``G11 + alpha·s I`` per strength, two strengths side by side on two cores). Where the Gram is ill-conditioned (QR route) it
     is computed from the streamed row-space factor ``[F1; F2]`` of ``[D; Yf]`` as the stacked least-squares problem
     ``[F1ᵀ; √(alpha s) I] Θᵀ = [F2ᵀ; 0]`` (no normal equations). A held-out fold's squared error is
     ``||F2,val − Θ F1,val||_F²`` either way. A shorter horizon in :meth:`predict` uses the first blocks (zero future inputs

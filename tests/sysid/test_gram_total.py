@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 from stimsteer.sysid import Session
+from stimsteer.sysid.datadriven import _by_strength as bs
 from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
 from stimsteer.sysid.datadriven.lsq import LsqPredictor
@@ -41,13 +42,15 @@ def folds():
     return fs, total, (m + p) * past + m * horizon
 
 
+@pytest.mark.parametrize("by_strength", [False, True])
 @pytest.mark.parametrize("i", [0, 1, 2])
-def test_ridge_grid_from_the_total_factor_equals_the_validation_gram_route(folds, i, monkeypatch):
+def test_ridge_grid_from_the_total_factor_equals_the_validation_gram_route(folds, i, by_strength, monkeypatch):
     fs, total, n_b = folds
     train, val = total.plus(fs[i], -1.0), fs[i]
     alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
     old = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)  # n_b = 20 < the limit: the validation Gram
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "BY_STRENGTH", by_strength)  # one eigendecomposition, or a Cholesky per strength
     new = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)
     np.testing.assert_allclose(new, old, rtol=1e-10)
     assert not np.array_equal(new, old)  # the other route was taken (it rounds differently)
@@ -97,13 +100,26 @@ def test_the_kept_gram_gives_the_final_map_without_a_second_assembly(folds, monk
                                   gr._lower_t_times(total._factor, n_b, X.copy(), block=7))
 
 
+def test_small_fits_take_the_final_map_from_the_kept_gram_bit_for_bit(folds, monkeypatch):
+    fs, _total, n_b = folds  # n_b = 20, below TOTAL_FACTOR_ROWS: the golden demo's sizes
+    part = gr.total_fold(fs)
+    G = part.gram
+    gr.gram_condition_of(part, keep_gram=True)
+    calls = []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, **k: calls.append(1))
+    theta, scale = gr.fitted_ridge_map(part, n_b, 1e-3)
+    assert not calls  # no Gram assembled again
+    assert scale == np.trace(G) / G.shape[0]  # what the small fits computed before, bit for bit
+    np.testing.assert_array_equal(theta, gr.ridge_map(G, n_b, 1e-3 * scale))
+
+
 @pytest.mark.parametrize("cls", [LsqPredictor, HankelPredictor])
 def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monkeypatch):
     s, P, N = _system(), 5, 8
     old = cls(past_steps=P, horizon_steps=N).fit(s)
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
     calls = []
-    for name in ("_heldout_from_total", "_fold_error_from_total"):
+    for name in ("_grid_by_strength", "_fold_error_from_total"):
         def counted(*a, _f=getattr(gr, name), **k):
             calls.append(_f)
             return _f(*a, **k)
@@ -119,6 +135,50 @@ def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monke
     assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
     for col in [c for c in old.cv_table_.columns if c != "candidate"]:
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)
+
+
+def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_arrays(folds):
+    fs, total, n_b = folds
+    train, val = total.plus(fs[1], -1.0), fs[1]
+    w = np.linspace(0.5, 2.0, 18)
+    G = train.gram
+    G11, G12w = np.asfortranarray(G[:n_b, :n_b]), np.asfortranarray(G[:n_b, n_b:] * w[None, :])
+    s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
+    c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
+    one = bs.strength_errors([G11.copy(order="F")], G12w, total._factor, s, c0, w)  # one array reused 9 times
+    two = bs.strength_errors([G11.copy(order="F"), G11.copy(order="F")], G12w, total._factor, s, c0, w)
+    np.testing.assert_array_equal(two, one)  # each strength computes the same numbers on whichever worker
+    # the definition at each strength, from both Grams (validation Gram = total − training)
+    Gv = val.gram
+    for k, sk in enumerate(s):
+        theta = np.linalg.solve(G11 + sk * np.eye(n_b), G[:n_b, n_b:]).T
+        R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
+        assert one[k] == pytest.approx(float(w ** 2 @ np.diagonal(R)), rel=1e-9)
+    np.testing.assert_array_equal(G12w, np.asfortranarray(G[:n_b, n_b:] * w[None, :]))  # not modified
+    assert bs.strength_errors([G11.copy(order="F")], G12w, total._factor, [-1e9], c0, w) is None  # not PD
+
+
+def test_a_reused_array_gets_its_matrix_back_after_the_factorisation():
+    rng = np.random.default_rng(2)
+    X = rng.standard_normal((300, 300))
+    G = np.asfortranarray(X @ X.T + 300 * np.eye(300))
+    K = G.copy(order="F")
+    assert bs._potrf_lower(K) == 0
+    np.testing.assert_allclose(np.tril(K) @ np.tril(K).T, G, rtol=1e-12, atol=1e-9)  # the factor, in place
+    bs._restore_lower(K, np.diagonal(G) + 0.0, block=64)
+    np.testing.assert_array_equal(K, G)
+
+
+def test_where_a_strength_cannot_be_factored_the_eigen_route_scores_the_fold(folds, monkeypatch):
+    fs, total, n_b = folds
+    train, val = total.plus(fs[2], -1.0), fs[2]
+    alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "BY_STRENGTH", False)
+    eigen = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)
+    monkeypatch.setattr(gr, "BY_STRENGTH", True)
+    monkeypatch.setattr(gr, "strength_errors", lambda *a: None)
+    np.testing.assert_array_equal(gr.ridge_grid_errors(train, val, n_b, alphas, w, total), eigen)
 
 
 def _one_signed(mean=10.0, T=4000, noise=0.1, seed=0):
