@@ -99,7 +99,7 @@ def _strided_rows(R: np.ndarray) -> bool:
         R.strides[0] >= R.shape[1] * R.itemsize and R.flags.writeable
 
 
-def _mirror_upper(R: np.ndarray, diagonal: np.ndarray, rows: int = 256) -> None:
+def _mirror_upper(R: np.ndarray, diagonal: np.ndarray, rows: int = 64) -> None:
     """``R``'s lower triangle from its upper one and its diagonal from ``diagonal``, ``rows`` rows at a time
     (on ``R.T``: the upper triangle from the lower one)."""
     d = R.shape[0]
@@ -160,9 +160,10 @@ class BandForm:
     Parameters
     ----------
     R : ndarray (d, d)
-        Symmetric; its lower triangle is used. Unchanged afterwards, except that with ``work=None`` (``R`` is the
-        workspace, restored afterwards) it ends exactly symmetric: its upper triangle is the lower one's transpose
-        (a rounding-level change where it was not; the reduction reads the lower triangle either way).
+        Symmetric; its lower triangle is used. Unchanged afterwards, except with ``work=None``: ``R`` is then the
+        workspace and holds the reflectors until :meth:`release`, which restores it exactly symmetric (its upper
+        triangle is the lower one's transpose: a rounding-level change where it was not; the reduction reads the
+        lower triangle either way).
     work : ndarray or None
         A float64 buffer of at least ``d²`` values, overwritten (re-usable afterwards): the trailing matrix is
         kept in it, its lower triangle only, moved to the front as it shrinks. None: reduced in ``R`` itself (a
@@ -173,6 +174,7 @@ class BandForm:
     """
 
     def __init__(self, R: np.ndarray, work: np.ndarray | None, b: int | None = None):
+        self._restore = None
         d = R.shape[0]
         b = max(1, int(BANDWIDTH if b is None else b))
         self.d, self.b = d, b
@@ -196,25 +198,53 @@ class BandForm:
     def _reduce_in_place(self, R: np.ndarray) -> None:
         """The reduction in ``R``'s own lower triangle (a view with contiguous rows: the trailing matrix is a view
         of it, nothing is copied or moved). The upper triangle is first made the lower one's transpose (what the
-        reduction reads), and afterwards the lower triangle is restored from it and the saved diagonal."""
+        reduction reads). Each panel's reflectors are kept where they annihilated the panel, below its ``R``
+        factor, as LAPACK's ``geqrf`` keeps them (no ``d²/2`` array of them per fold); :meth:`release` restores
+        the lower triangle from the upper one and the saved diagonal."""
         if not (in_place_available() and _strided_rows(R)):
             raise ValueError("BandForm(R, None) needs a writeable float64 R with contiguous rows and the ctypes "
                              "BLAS route (in_place_available()); pass a work buffer instead")
         d, b = self.d, self.b
         diagonal = np.diagonal(R).copy()
         _mirror_upper(R.T, diagonal)  # the upper triangle from the lower one, the triangle the reduction reads
+        self._restore = (R, diagonal)
         S, k = R, 0
         try:
             while d - k > b + 1:
                 V, T = self._reduce_panel(S)
                 self._take_band(S, k, b)
+                _update_in_place(S[b:, b:], V, T)
+                held = S[b:, :V.shape[1]]
+                for j in range(V.shape[1]):  # under the panel's R factor, which is upper triangular
+                    held[j + 1:, j] = V[j + 1:, j]
+                self.panels.append((k + b, held, T))
                 S = S[b:, b:]
-                _update_in_place(S, V, T)
-                self.panels.append((k + b, V, T))
                 k += b
             self._take_band(S, k, d - k)
-        finally:
-            _mirror_upper(R, diagonal)
+        except BaseException:
+            self.release()
+            raise
+
+    def release(self) -> None:
+        """After an in-place reduction: restore ``R`` (its lower triangle from the upper one, its diagonal) once
+        the panels are no longer needed (afterwards :meth:`to_band` and :meth:`from_band` refuse). A no-op
+        otherwise."""
+        restore = self._restore
+        if restore is not None:
+            self._restore, self.panels = None, None
+            _mirror_upper(*restore)
+
+    def _panels(self, backwards: bool = False):
+        """``(first row, V, T)`` of each panel, one at a time (``V`` rebuilt from the held reflectors after an
+        in-place reduction)."""
+        if self.panels is None:
+            raise RuntimeError("this in-place BandForm was released; its reflectors are gone")
+        for r0, V, T in (reversed(self.panels) if backwards else self.panels):
+            if self._restore is not None:
+                held = V
+                V = np.tril(held, -1)
+                V[np.diag_indices(held.shape[1])] = 1.0
+            yield r0, V, T
 
     def _reduce_panel(self, S: np.ndarray):
         """QR of the panel below the band, ``S[b:, :b] = H [R; 0]``: writes ``[R; 0]`` in its place and returns
@@ -239,13 +269,13 @@ class BandForm:
     def to_band(self, X: np.ndarray) -> np.ndarray:
         """``Qᵀ X`` (a new array)."""
         Y = np.array(X, dtype=np.float64, order="C")
-        for r0, V, T in self.panels:
+        for r0, V, T in self._panels():
             Y[r0:] -= V @ (T.T @ (V.T @ Y[r0:]))
         return Y
 
     def from_band(self, Y: np.ndarray) -> np.ndarray:
         """``Q Y`` (in place)."""
-        for r0, V, T in reversed(self.panels):
+        for r0, V, T in self._panels(backwards=True):
             Y[r0:] -= V @ (T @ (V.T @ Y[r0:]))
         return Y
 
@@ -302,11 +332,14 @@ def band_betas(R, r, n_core: int, extras, live, alphas, work: np.ndarray | None,
     form = BandForm(Rc, work)
     union_e = np.unique(np.concatenate([extras[i] for i in live]))
     p = r.shape[1]
-    G = form.to_band(np.hstack([r[:n_core], R[:n_core, union_e]]))
-    found = [form.band_solve(G, alpha) for alpha in alphas]
-    if any(Y is None for Y in found):
-        return {i: None for i in live}
-    Z = form.from_band(np.hstack(found)).reshape(n_core, len(alphas), G.shape[1])  # Q once for every strength
+    try:  # (r and the core's rows of the extras lie outside the core block an in-place reduction works in)
+        G = form.to_band(np.hstack([r[:n_core], R[:n_core, union_e]]))
+        found = [form.band_solve(G, alpha) for alpha in alphas]
+        if any(Y is None for Y in found):
+            return {i: None for i in live}
+        Z = form.from_band(np.hstack(found)).reshape(n_core, len(alphas), G.shape[1])  # Q once for every strength
+    finally:
+        form.release()  # R's core block restored (in place), before the extras read R again
     if parts is not None:
         parts.update(Z=Z, union_e=union_e)
     out: dict = {i: [] for i in live}

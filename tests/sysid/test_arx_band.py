@@ -111,12 +111,16 @@ def test_in_place_reduction_in_a_strided_view_equals_the_buffered_one_bit_for_bi
     view = gram[:d, :d]
     buffered, in_place = BandForm(R, np.empty(d * d), b), BandForm(view, None, b)
     np.testing.assert_array_equal(in_place.ab, buffered.ab)
-    for (r0, V0, T0), (r1, V1, T1) in zip(buffered.panels, in_place.panels, strict=True):
+    for (r0, V0, T0), (r1, V1, T1) in zip(buffered._panels(), in_place._panels(), strict=True):
         assert r0 == r1
-        np.testing.assert_array_equal(V1, V0)
+        np.testing.assert_array_equal(V1, V0)  # the reflectors held in the view, rebuilt
         np.testing.assert_array_equal(T1, T0)
+    solved = in_place.solve(in_place.to_band(X), 1e-3)
+    np.testing.assert_array_equal(solved, buffered.solve(buffered.to_band(X), 1e-3))
+    in_place.release()
+    with pytest.raises(RuntimeError, match="released"):
+        in_place.to_band(X)
     np.testing.assert_array_equal(np.tril(view), np.tril(R))
     np.testing.assert_array_equal(view, view.T)
     outside[:d, :d] = view
     np.testing.assert_array_equal(gram, outside)  # nothing beyond the view was written
-    np.testing.assert_array_equal(in_place.solve(in_place.to_band(X), 1e-3), buffered.solve(buffered.to_band(X), 1e-3))
