@@ -44,7 +44,7 @@ import pandas as pd
 import scipy.linalg as sla
 
 from ._lagged import _lagged_gram, _single_threaded_blas
-from .arx_band import band_betas
+from .arx_band import band_betas, in_place_available
 from .arx_regression import _Problem, _ridge_path, _rounding_level, centred_lead, lead_index, lead_order
 
 __all__ = ["cv_errors", "cv_table"]
@@ -289,8 +289,10 @@ def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, 
     standardised in place; the held-out moments are the total's minus the training's (:func:`_held_out`, in place
     of the training block once its strengths are solved), so a fold costs one Gram assembly, not two. The folds run
     on the worker threads (one BLAS thread each; each fold computed as on one thread, so the numbers do not depend
-    on the number of workers); one fold solves at a time, in the one core-sized buffer, while the other workers
-    assemble and score theirs. Memory: the total, one fold's Gram per worker, the buffer and the fold's band form.
+    on the number of workers). A band-route fold reduces its core in its own Gram (:class:`~stimsteer.sysid.arx_band.
+    BandForm` in place), so the folds reduce side by side; otherwise one fold solves at a time, in the one
+    core-sized buffer, while the other workers assemble and score theirs. Memory: the total, one fold's Gram per
+    worker, its band form (and the buffer, off the band route).
     """
     k = len(folds)
     errors = [np.full((len(alphas), k), np.nan) for _ in probs]
@@ -307,6 +309,8 @@ def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, 
         live = [i for i, q in enumerate(probs) if held.n and n_tr > q.x_idx.size]
         return _large_fold(probs, folds, f, whole, index, (n_core, extras, live), alphas, works) if live else {}
 
+    # (five folds on two workers leave one core idle during the last fold; a third worker fills it, measured,
+    # but at 498 MB peak on the 1 kHz benchmark session against 404 MB: over the 500 MB budget's margin)
     for f, found in enumerate(run.pool.map(one, range(k))):
         for i, col in found.items():
             errors[i][:, f] = col
@@ -325,13 +329,19 @@ def _large_fold(probs, folds, f, whole, index, layout, alphas, works) -> dict:
     mu = s_tr / n_tr if probs[0].fit_intercept else np.zeros_like(s_tr)
     W, C, raw = centred_lead(train, index, nx + ny, n_tr, s_tr, mu)
     del train
-    work = works.get()  # the solves of one fold at a time (the other worker assembles, scores): one buffer
-    try:
-        work = np.empty(n_core * n_core) if work is None else work
-        betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work)
-    finally:
-        works.put(work)
+    if n_core >= _BAND_FROM and in_place_available():  # reduced in the fold's own Gram: folds side by side
+        betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, None)
+    else:
+        work = works.get()  # the solves of one fold at a time (the other worker assembles, scores): one buffer
+        try:
+            work = np.empty(n_core * n_core) if work is None else work
+            betas, scale = _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work)
+        finally:
+            works.put(work)
     Q, qyy, sst = _held_out(whole, C, raw, scale, s_tr, n_tr, mu, nx)
+    parts = betas.pop("parts", None)
+    if parts is not None:  # every structure from the band route: their shared core solutions, one product
+        return _shared_errors(parts, {i: betas[i] for i in live}, n_core, extras, scale, Q, qyy, sst)
     out = {}
     for i in live:
         idx = np.concatenate([np.arange(n_core), extras[i]])
@@ -382,7 +392,8 @@ def _held_out(whole: _Whole, C, raw_tr, scale, s_tr, n_tr, mu, nx):
 def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work):
     """Standardised coefficients of each live structure on one fold's training rows; ``C`` (the centred training
     block ``[Cxx Cxy]``) is standardised in place. From :data:`_BAND_FROM` core regressors on by one band
-    reduction of the core (in ``work``, a core-sized buffer), below by a core factor per strength."""
+    reduction of the core (in ``work``, a core-sized buffer, or None: in ``C`` itself, restored afterwards), below
+    by a core factor per strength."""
     R = C[:nx]
     scale = np.sqrt(np.clip(np.diagonal(R)[:nx], 0.0, None) / n_tr)
     scale[scale == 0] = 1.0
@@ -390,7 +401,10 @@ def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work):
     R[:, :nx] /= scale[None, :]
     R, r = R[:, :nx], R[:, nx:]
     if n_core >= _BAND_FROM:
-        found = band_betas(R, r, n_core, extras, live, alphas, work)
+        parts: dict = {}
+        found = band_betas(R, r, n_core, extras, live, alphas, work, parts)
+        if parts and all(found[i] is not None for i in live):
+            found["parts"] = parts
     else:
         found = _fold_betas(R, r, n_core, extras, live, alphas, _SERIAL, order="C",
                             buffer=work[:n_core * n_core].reshape(n_core, n_core))
@@ -399,6 +413,36 @@ def _large_betas(C, nx, n_tr, n_core, extras, live, alphas, work):
             idx = np.concatenate([np.arange(n_core), extras[i]])
             found[i] = _ridge_path(R[np.ix_(idx, idx)], r[idx], alphas, route="eigh")[0]
     return found, scale
+
+
+def _shared_errors(parts, betas, n_core, extras, scale, Q, qyy, sst) -> dict:
+    """:func:`_errors` of every structure of a fold from the band route's shared core solutions (``parts``,
+    :func:`~stimsteer.sysid.arx_band.band_betas`): structure ``s`` has ``β = Zr − Ze_s β_e`` on the core and
+    ``β_e`` on its extras, so ``Q β = Q Zr − (Q Ze)_s β_e + Q_e β_e`` and one product of ``Q`` with the ``p +
+    |union_e|`` columns of each strength serves every structure (before: ``p`` columns per structure and
+    strength, four times the work at four structures)."""
+    ok = sst > 0
+    Z, union_e = parts["Z"], parts["union_e"]
+    nx, (_nc, a, w) = scale.size, Z.shape
+    p = qyy.size
+    Y = Z / scale[:n_core, None, None]  # raw units
+    QY = (Q[:, :n_core] @ Y.reshape(n_core, a * w)).reshape(nx, a, w)
+    out = {}
+    for i, found in betas.items():
+        e = extras[i]
+        pos = p + np.searchsorted(union_e, e)
+        Qe = Q[:, e] / scale[e]
+        errs = np.full(a, np.nan)
+        for j, beta in enumerate(found):
+            be = beta[n_core:] / scale[e, None]  # raw units
+            QB = QY[:, j, :p] - QY[:, j, pos] @ (beta[n_core:]) + Qe @ (beta[n_core:])
+            core = Y[:, j, :p] - Y[:, j, pos] @ beta[n_core:]
+            sse = qyy - 2.0 * (np.einsum("xp,xp->p", core, Q[:n_core, nx:]) + np.einsum("xp,xp->p", be, Q[e, nx:])) \
+                + np.einsum("xp,xp->p", core, QB[:n_core]) + np.einsum("xp,xp->p", be, QB[e])
+            sse = np.clip(sse, 0.0, None)  # rounding can push an exact fit below zero
+            errs[j] = np.mean(sse[ok] / sst[ok]) if ok.any() else np.nan
+        out[i] = errs
+    return out
 
 
 def _errors(betas, scale, idx, Q, qyy, sst) -> np.ndarray:

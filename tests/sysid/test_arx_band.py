@@ -96,3 +96,31 @@ def test_a_panel_already_zero_below_the_band_is_kept():
     form = BandForm(R, np.empty(d * d), 1)
     got = form.solve(form.to_band(X), 0.1)
     np.testing.assert_allclose(got, np.linalg.solve(R + 0.1 * np.eye(d), X), rtol=1e-12)
+
+
+@pytest.mark.skipif(not arx_band.in_place_available(), reason="SciPy's cython_blas pointers are not available")
+@pytest.mark.parametrize("d, b", [(9, 1), (35, 32), (50, 4), (120, 16)])
+def test_in_place_reduction_in_a_strided_view_equals_the_buffered_one_bit_for_bit(d, b):
+    # issue 14: a fold's core is reduced in its own Gram (a view with a longer row stride), so the folds reduce side
+    # by side without a core-sized buffer each; the lower triangle is kept, the upper one becomes its transpose
+    R, X = _spd(d, seed=d)
+    R = R + 1e-15 * np.triu(np.random.default_rng(d).standard_normal((d, d)), 1)  # not bitwise symmetric
+    gram = np.full((d + 4, d + 7), 3.0)
+    gram[:d, :d] = R
+    outside = gram.copy()
+    view = gram[:d, :d]
+    buffered, in_place = BandForm(R, np.empty(d * d), b), BandForm(view, None, b)
+    np.testing.assert_array_equal(in_place.ab, buffered.ab)
+    for (r0, V0, T0), (r1, V1, T1) in zip(buffered._panels(), in_place._panels(), strict=True):
+        assert r0 == r1
+        np.testing.assert_array_equal(V1, V0)  # the reflectors held in the view, rebuilt
+        np.testing.assert_array_equal(T1, T0)
+    solved = in_place.solve(in_place.to_band(X), 1e-3)
+    np.testing.assert_array_equal(solved, buffered.solve(buffered.to_band(X), 1e-3))
+    in_place.release()
+    with pytest.raises(RuntimeError, match="released"):
+        in_place.to_band(X)
+    np.testing.assert_array_equal(np.tril(view), np.tril(R))
+    np.testing.assert_array_equal(view, view.T)
+    outside[:d, :d] = view
+    np.testing.assert_array_equal(gram, outside)  # nothing beyond the view was written

@@ -182,7 +182,9 @@ def test_large_cross_validation_holds_two_grams_and_the_worker_buffers(monkeypat
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert peak <= (2 + workers + 0.5) * gram
+    # (4.37-4.51 measured on the previous commit at load 15-20, where two folds' temporaries overlap more or less:
+    # the earlier bound of 4.5 failed now and then; a worker's own buffer would add a whole Gram)
+    assert peak <= (2 + workers + 0.75) * gram
 
 
 def test_a_large_fit_assembles_the_total_gram_once_and_one_gram_per_fold(monkeypatch):
