@@ -173,8 +173,8 @@ class _PredictiveController(BaseEstimator):
         Plans are optimal either way; warm starting only changes them within solver tolerance.
         """
         check_fitted(self, "problem_")
-        if self._fast is not None:
-            self._fast.reset()
+        for qp in {id(q): q for q in (self._fast, getattr(self, "_fast_u", None)) if q is not None}.values():
+            qp.reset()  # (DeePC's input-only QP beside its g-space one)
         return self
 
     # ------------------------------------------------------------------------------------ planning

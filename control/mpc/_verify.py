@@ -122,10 +122,22 @@ class _PlanLimits:
         moves = np.any((u[1:] > np.minimum(ub[1:], u[:-1] + self.slew))
                        | (u[1:] < np.maximum(lb[1:], u[:-1] - self.slew)), axis=1)
         first = int(np.argmax(moves)) + 1 if moves.any() else u.shape[0]
-        prev = u[first - 1]
-        for k in range(first, u.shape[0]):
-            u[k] = np.clip(u[k], np.maximum(lb[k], prev - self.slew), np.minimum(ub[k], prev + self.slew))
-            prev = u[k]
+        if first == u.shape[0]:
+            return u
+        # the same sequential clip in plain floats (a few inputs per step: numpy's per-call cost dominated), with
+        # numpy's own comparisons: maximum(a, b) = a if a >= b else b, minimum(a, b) = a if a <= b else b,
+        # clip(x, a, b) = min(max(x, a), b) with max(x, a) = x if x > a else a and min(y, b) = y if y < b else b
+        rows, lbs, ubs, slew = u[first:].tolist(), lb[first:].tolist(), ub[first:].tolist(), self.slew.tolist()
+        prev = u[first - 1].tolist()
+        for row, lo_k, hi_k in zip(rows, lbs, ubs):
+            for i, (x, s) in enumerate(zip(row, slew)):
+                a, b = prev[i] - s, prev[i] + s
+                a = lo_k[i] if lo_k[i] >= a else a
+                b = hi_k[i] if hi_k[i] <= b else b
+                x = x if x > a else a
+                row[i] = x if x < b else b
+            prev = row
+        u[first:] = rows
         return u
 
     def violations(self, ctrl, u, last) -> dict:

@@ -188,10 +188,15 @@ class DataPredictiveController(_CondensedCore):
         self._M = None if self._reg == "l1" else (np.eye(r) if M is None else np.asarray(M, np.float64))
         self.problem_ = LazyProblem(self, "_deepc_problem")  # cvxpy's, built where a plan needs it
         quadratic = self._reg != "l1" or self._lam_g == 0
-        self._elim, self._fast = None, None
+        self._elim, self._fast, self._fast_u = None, None, None
         if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
+            self._fast_u = self._fast_deepc_eliminated(N, m)
             if self._idx_b.size == 0:
-                self._fast = self._fast_deepc_eliminated(N, m)
+                self._fast = self._fast_u
+            else:  # output bounds: the input-only QP answers where its outputs keep them, else the g-space QP
+                self._fast = self._fast_deepc(N, m)
+                if self._fast_u is not None and not hasattr(self._fast_u, "solve_budgeted"):
+                    self._fast_u = None  # (OSQP: no dense answer to try first)
             if self._fast is None:
                 self._fast = self._fast_deepc(N, m)
 
@@ -298,14 +303,20 @@ class DataPredictiveController(_CondensedCore):
             lo.append(-self._slew_rows[1])
             hi.append(self._slew_rows[1])
         lo, hi = np.concatenate(lo), np.concatenate(hi)
-        u, status, reason = (self._fast.solve(q, lo, hi) if windows is None
-                             else self._fast.solve_budgeted(q, lo, hi, windows))
+        qp = self._fast_u
+        u, status, reason = qp.solve(q, lo, hi) if windows is None else qp.solve_budgeted(q, lo, hi, windows)
         if u is None:
             return None, None, status, reason
         g = e["G_r"] @ rw + e["G_f"] @ bf + e["G_u"] @ u
         if not e["hard"]:
             g += e["G_y"] @ yp
         return u, g, status, ""
+
+    def _outputs_kept(self, g) -> bool:
+        """Whether the predicted outputs ``Yf g`` keep every output bound (exactly, no tolerance)."""
+        y = self._Yf @ g
+        return bool(np.all(y[self._idx_hi] <= self._ymax[self._idx_hi])
+                    and np.all(y[self._idx_lo] >= self._ymin[self._idx_lo]))
 
     def _fast_deepc(self, N, m):
         """The QP over ``z = [g; s]`` with ``u = Uf g`` substituted: dense and warm started where it applies (the
@@ -369,8 +380,14 @@ class DataPredictiveController(_CondensedCore):
     def _solve_fast(self, offsets, lb, ub, windows=None):
         if self.method_ == "spc":
             return super()._solve_fast(offsets, lb, ub, windows)
-        if self._elim is not None:
-            return self._solve_fast_eliminated(offsets, lb, ub, windows)
+        if self._elim is not None and self._fast_u is not None:
+            # The input-only QP is DeePC without its output bounds, exactly (g minimised out in closed form). Where
+            # its answer keeps every output bound it is feasible for the problem with them (slack zero) and optimal
+            # for a relaxation of it, so it is that problem's optimum (convex; common practice, no source); the
+            # g-space QP is solved only where an output bound would be broken.
+            res = self._solve_fast_eliminated(offsets, lb, ub, windows)
+            if self._fast is self._fast_u or (res[0] is not None and self._outputs_kept(res[1])):
+                return res
         up, yp, rw = offsets
         r, nb = self._Up.shape[1], self._idx_b.size
         q = -2.0 * self._LY.T @ rw

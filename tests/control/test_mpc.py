@@ -534,6 +534,30 @@ def test_deepc_eliminated_fast_path_gives_the_same_plan_as_cvxpy(deepc_setup, rn
     assert b.cost_terms.keys() == a.cost_terms.keys()
 
 
+@pytest.mark.parametrize("bound, input_only", [(50.0, True), (0.5, False)])
+def test_deepc_with_output_bounds_answers_from_the_input_only_qp_where_its_outputs_keep_them(
+        deepc_setup, rng, bound, input_only):
+    model, session, pred = deepc_setup
+    lim = _limits(output_max=[bound, np.inf], energy_budget_ua2=50.0)
+    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=lim, input_weight=1.0).fit()
+    assert ctrl._elim is not None and ctrl._fast_u is not ctrl._fast  # both QPs: input-only and g-space
+    calls = []
+    for name in ("_fast_u", "_fast"):  # count which QP answered (the g-space one only where a bound would break)
+        qp = getattr(ctrl, name)
+        for meth in ("solve", "solve_budgeted"):
+            setattr(qp, meth, (lambda f, n: lambda *a, **k: calls.append(n) or f(*a, **k))(getattr(qp, meth), name))
+    u, y = _past(rng, model)
+    plan = ctrl.plan(u, y, target=[1.0, 0.5])
+    assert plan.ok and ("_fast" in calls) != input_only and calls[0] == "_fast_u"
+    ref = DataPredictiveController(predictor=pred, limits=lim, input_weight=1.0).fit()
+    ref._fast_u = None  # the g-space QP alone, as before the input-only QP answered
+    old = ref.plan(u, y, target=[1.0, 0.5])
+    np.testing.assert_allclose(plan.inputs, old.inputs, atol=1e-8)
+    np.testing.assert_allclose(plan.predicted_outputs, old.predicted_outputs, atol=1e-8)
+    assert plan.cost_terms["total"] == pytest.approx(old.cost_terms["total"], rel=1e-10)
+    assert plan.active_limits["output_bounds"].any() != input_only
+
+
 def test_weights_must_be_finite_and_riccati_must_exist(rng):
     with pytest.raises(InvalidParameterError, match="input_weight must be finite"):
         ModelPredictiveController(model=_model(rng), limits=_limits(), horizon_steps=3, input_weight=np.nan).fit()

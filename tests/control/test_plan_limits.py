@@ -43,6 +43,29 @@ def test_the_fallback_without_a_slew_limit_is_safe_inputs():
         assert np.array_equal(ctrl._checks.fallback(last), ctrl.limits_.safe_inputs(6, last))
 
 
+def _numpy_slew_clip(u, lb, ub, slew):
+    """The projection's sequential slew clip as numpy wrote it before (the reference of the plain-float one)."""
+    prev = u[0]
+    for k in range(1, u.shape[0]):
+        u[k] = np.clip(u[k], np.maximum(lb[k], prev - slew), np.minimum(ub[k], prev + slew))
+        prev = u[k]
+    return u
+
+
+def test_the_slew_clip_in_plain_floats_is_numpys_bit_for_bit(budgeted):
+    rng = np.random.default_rng(3)
+    checks = budgeted._checks
+    lb, ub = checks.lb, checks.ub
+    grid = np.array([-4.0, -1.5, -0.7, 0.0, 0.7, 1.5, 3.0, 5.0])  # steps landing exactly on bounds and slew edges
+    for trial in range(300):
+        u = rng.uniform(-6, 6, lb.shape) if trial % 2 else rng.choice(grid, lb.shape)
+        if trial % 5 == 0:
+            u[:, 1] = -0.0  # signed zeros keep their sign where numpy keeps it
+        ref = _numpy_slew_clip(np.clip(u, lb, ub), lb, ub, checks.slew)
+        got = checks._slew_clip(np.clip(u, lb, ub), lb, ub)
+        assert np.array_equal(got, ref) and np.array_equal(np.signbit(got), np.signbit(ref))
+
+
 def test_the_fused_final_check_counts_what_violations_counts(budgeted):
     """Random sequences, most of them beyond some limit: the fused check finds a violation exactly when
     ``StimLimits.violations`` counts one, with the same counts (the reference check it replaces)."""
