@@ -21,12 +21,16 @@ _INT = ctypes.POINTER(ctypes.c_int)
 _DBL = ctypes.POINTER(ctypes.c_double)
 
 
-def _load_dtpqrt():
-    """The ctypes function of ``cython_lapack.dtpqrt``, or None."""
+def scipy_c_function(module: str, name: str, *argtypes):
+    """The ``ctypes`` function of SciPy's exported ``scipy.linalg.cython_<module>.<name>`` (``module`` is ``"blas"``
+    or ``"lapack"``; SciPy's public C API for Cython), taking ``argtypes``; or None where it cannot be had (another
+    SciPy build). Called through ctypes, the routine runs with the GIL released and takes any leading dimension."""
     try:
-        from scipy.linalg import cython_lapack
-
-        capsule = cython_lapack.__pyx_capi__["dtpqrt"]
+        if module == "blas":
+            from scipy.linalg import cython_blas as exported
+        else:
+            from scipy.linalg import cython_lapack as exported
+        capsule = exported.__pyx_capi__[name]
         api = ctypes.pythonapi
         api.PyCapsule_GetName.restype, api.PyCapsule_GetName.argtypes = ctypes.c_char_p, [ctypes.py_object]
         api.PyCapsule_GetPointer.restype = ctypes.c_void_p
@@ -34,13 +38,12 @@ def _load_dtpqrt():
         address = api.PyCapsule_GetPointer(capsule, api.PyCapsule_GetName(capsule))
     except (ImportError, AttributeError, KeyError, ValueError, TypeError):  # pragma: no cover - other SciPy builds
         return None
-    if not address:  # pragma: no cover
-        return None
-    # m, n, l, nb, a, lda, b, ldb, t, ldt, work, info (LAPACK's reference argument order)
-    return ctypes.CFUNCTYPE(None, _INT, _INT, _INT, _INT, _DBL, _INT, _DBL, _INT, _DBL, _INT, _DBL, _INT)(address)
+    return ctypes.CFUNCTYPE(None, *argtypes)(address) if address else None
 
 
-_DTPQRT = _load_dtpqrt()
+# m, n, l, nb, a, lda, b, ldb, t, ldt, work, info (LAPACK's reference argument order)
+_DTPQRT = scipy_c_function("lapack", "dtpqrt", _INT, _INT, _INT, _INT, _DBL, _INT, _DBL, _INT, _DBL, _INT, _DBL,
+                           _INT)
 
 
 def tpqrt_nogil_available() -> bool:

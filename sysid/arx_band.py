@@ -29,6 +29,8 @@ import numpy as np
 import scipy.linalg as sla
 from scipy.linalg import blas, lapack
 
+from ._lapack_nogil import scipy_c_function
+
 __all__ = ["BandForm", "band_betas"]
 
 #: Half-bandwidth of the reduction: wide enough for matrix-matrix speed, narrow enough that a banded factor per
@@ -42,22 +44,9 @@ def _blas_function(name: str, n_ints: int, layout: str):
     leading character flags, ``i`` an int and ``d`` a double (both by reference), ``a`` a double array. Called
     through ctypes, BLAS runs with the GIL released and takes any leading dimension (the f2py wrappers copy a
     strided view first)."""
-    try:
-        from scipy.linalg import cython_blas
-
-        capsule = cython_blas.__pyx_capi__[name]
-        api = ctypes.pythonapi
-        api.PyCapsule_GetName.restype, api.PyCapsule_GetName.argtypes = ctypes.c_char_p, [ctypes.py_object]
-        api.PyCapsule_GetPointer.restype = ctypes.c_void_p
-        api.PyCapsule_GetPointer.argtypes = [ctypes.py_object, ctypes.c_char_p]
-        address = api.PyCapsule_GetPointer(capsule, api.PyCapsule_GetName(capsule))
-    except (ImportError, AttributeError, KeyError, ValueError, TypeError):  # pragma: no cover - other SciPy builds
-        return None
-    if not address:  # pragma: no cover
-        return None
     kinds = {"i": ctypes.POINTER(ctypes.c_int), "d": ctypes.POINTER(ctypes.c_double),
              "a": ctypes.POINTER(ctypes.c_double)}
-    return ctypes.CFUNCTYPE(None, *([ctypes.c_char_p] * n_ints), *(kinds[k] for k in layout))(address)
+    return scipy_c_function("blas", name, *([ctypes.c_char_p] * n_ints), *(kinds[k] for k in layout))
 
 
 # dsymm(side, uplo, m, n, alpha, a, lda, b, ldb, beta, c, ldc); dsyr2k(uplo, trans, n, k, alpha, a, lda, b, ldb,

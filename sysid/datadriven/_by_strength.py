@@ -36,6 +36,8 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 from scipy.linalg import blas, lapack
 
+from .._lapack_nogil import scipy_c_function
+
 __all__: list = []
 
 _INT = ctypes.POINTER(ctypes.c_int)
@@ -43,28 +45,10 @@ _DBL = ctypes.POINTER(ctypes.c_double)
 _CHR = ctypes.c_char_p
 
 
-def _c_function(module: str, name: str, *argtypes):
-    """``ctypes`` function of SciPy's exported ``cython_<module>.<name>`` (GIL released while it runs), or None."""
-    try:
-        if module == "blas":
-            from scipy.linalg import cython_blas as mod
-        else:
-            from scipy.linalg import cython_lapack as mod
-        capsule = mod.__pyx_capi__[name]
-        api = ctypes.pythonapi
-        api.PyCapsule_GetName.restype, api.PyCapsule_GetName.argtypes = ctypes.c_char_p, [ctypes.py_object]
-        api.PyCapsule_GetPointer.restype = ctypes.c_void_p
-        api.PyCapsule_GetPointer.argtypes = [ctypes.py_object, ctypes.c_char_p]
-        address = api.PyCapsule_GetPointer(capsule, api.PyCapsule_GetName(capsule))
-    except (ImportError, AttributeError, KeyError, ValueError, TypeError):  # pragma: no cover - other SciPy builds
-        return None
-    return ctypes.CFUNCTYPE(None, *argtypes)(address) if address else None
-
-
-_POTRF = _c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
-_TRIANGULAR = {name: _c_function("blas", name, _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
+_POTRF = scipy_c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
+_TRIANGULAR = {name: scipy_c_function("blas", name, _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
                for name in ("dtrsm", "dtrmm")}
-_DDOT = _c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)
+_DDOT = scipy_c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)
 if _DDOT is not None:
     _DDOT.restype = ctypes.c_double  # (the constructor above declares the arguments; ddot returns a double)
 
