@@ -77,8 +77,25 @@ def _running(pid: int) -> bool:
     return True
 
 
-def _stop_workers(pool) -> None:
-    """End a process pool's workers now (an interruption): running tasks are abandoned, not awaited."""
+def _release_held(futures) -> None:
+    """Release every lock of ``futures`` this thread still holds after an interruption.
+
+    ``concurrent.futures.wait`` takes the lock of every future one by one before it waits, and a Ctrl-C or SIGTERM
+    raised part-way through leaves the ones already taken held (the taking cannot be undone half-way; CPython 3.11).
+    The pool's management thread, marking those futures cancelled or broken at shutdown, then waits on them forever,
+    and so does the shutdown: seen once in about 15 runs of ``tests/cli/test_interruption.py``."""
+    for fut in futures:
+        cond = getattr(fut, "_condition", None)
+        owned = getattr(cond, "_is_owned", None)
+        while owned is not None and owned():
+            cond.release()
+
+
+def _stop_workers(pool, futures=()) -> None:
+    """End a process pool's workers now (an interruption): running tasks are abandoned, not awaited; the locks of
+    ``futures`` (the pool's jobs) that the interruption left held are released first (:func:`_release_held`)."""
+    pending = getattr(pool, "_pending_work_items", None) or {}
+    _release_held([*futures, *(getattr(w, "future", None) for w in list(pending.values()))])
     # ProcessPoolExecutor has no public way to end running workers; its ``_processes`` maps pid -> Process.
     for proc in list((getattr(pool, "_processes", None) or {}).values()):
         with contextlib.suppress(Exception):
@@ -168,10 +185,11 @@ def _run_local(ctx: _Context, tasks, n_workers: int, bar) -> tuple[list, object]
     from concurrent.futures import ProcessPoolExecutor
 
     with ProcessPoolExecutor(max_workers=n_workers, initializer=_install, initargs=(ctx, os.getpid())) as pool:
+        schedule = _PoolSchedule(pool, ctx, tasks, results, bar, n_workers)
         try:
-            refs = _PoolSchedule(pool, ctx, tasks, results, bar, n_workers).run()
+            refs = schedule.run()
         except BaseException:  # Ctrl-C, SIGTERM, a failure: no worker outlives the run
-            _stop_workers(pool)
+            _stop_workers(pool, schedule.submitted)
             raise
     return results, refs
 
@@ -193,6 +211,7 @@ class _PoolSchedule:
         self.pool, self.ctx, self.tasks, self.results, self.bar = pool, ctx, tasks, results, bar
         self.depth = n_workers + 1
         self.futures: dict = {}  # future -> (kind, what)
+        self.submitted: list = []  # every future, done or not (their locks are released on an interruption)
         self.scores: dict = {}  # (split, method index) -> (score, seconds)
         self.sessions: dict = {}  # noise scale -> re-recorded session
         self.waiting: list = []  # groups that wait for a re-recorded session
@@ -223,7 +242,9 @@ class _PoolSchedule:
         return _reference_results(self.refs or [])
 
     def _submit(self, what, fn, *args) -> None:
-        self.futures[self.pool.submit(fn, *args)] = what
+        fut = self.pool.submit(fn, *args)
+        self.futures[fut] = what
+        self.submitted.append(fut)
 
     def _done(self, fut, kind, what) -> None:
         if kind == "group":
