@@ -168,7 +168,7 @@ def _run_local(st, todo, n: int, keep, bar) -> int:
     from concurrent.futures import ProcessPoolExecutor, as_completed
     from concurrent.futures.process import BrokenProcessPool
 
-    from ..evaluation.execute import check_descriptors
+    from ..evaluation.execute import _stop_workers, check_descriptors
 
     check_descriptors(n)  # a pool the open-file limit cannot hold is refused, never left waiting
     pending, retries = list(todo), 0
@@ -176,11 +176,16 @@ def _run_local(st, todo, n: int, keep, bar) -> int:
         done = set()
         try:
             with ProcessPoolExecutor(max_workers=n, initializer=_install, initargs=(st,)) as pool:
-                for fut in as_completed([pool.submit(_run_installed, b) for b in batches(pending)]):
-                    for key, res in fut.result():
-                        keep(key, res)
-                        done.add(key)
-                        bar.update()
+                futures = [pool.submit(_run_installed, b) for b in batches(pending)]
+                try:
+                    for fut in as_completed(futures):
+                        for key, res in fut.result():
+                            keep(key, res)
+                            done.add(key)
+                            bar.update()
+                except KeyboardInterrupt:  # Ctrl-C, or SIGTERM raised as one: the workers end now, as the bench's do
+                    _stop_workers(pool, futures)
+                    raise
         except BrokenProcessPool:
             retries += 1
             if retries > st.max_retries:
