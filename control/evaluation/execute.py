@@ -100,6 +100,11 @@ def _stop_workers(pool, futures=()) -> None:
     for proc in list((getattr(pool, "_processes", None) or {}).values()):
         with contextlib.suppress(Exception):
             proc.terminate()
+    # A worker ended while it wrote a result leaves half a message in the result pipe, and the management thread
+    # would wait for the rest forever (and the shutdown on it). With this process's write end closed, the pipe ends
+    # (EOF) once the workers are gone, and the management thread takes the pool as broken and ends.
+    with contextlib.suppress(Exception):
+        pool._result_queue._writer.close()
     pool.shutdown(wait=True, cancel_futures=True)
 
 

@@ -67,3 +67,29 @@ def test_stopping_the_pool_after_an_interruption_that_left_its_futures_locks_hel
     proc = subprocess.run([sys.executable, "-c", _HELD_LOCK], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert proc.stdout.split() == ["stopped", "True", "True"]
+
+
+# The other way the interrupted bench hung (its stacks read with py-spy): a worker terminated while it wrote its
+# result left half a message in the result pipe, and the pool's management thread waited for the rest forever.
+# Here half a message is written on purpose (a length header of 1,000 bytes and 10 of them), then the pool stopped.
+_HALF_MESSAGE = r"""
+import os, struct, time
+from concurrent.futures import ProcessPoolExecutor
+from stimsteer.control.evaluation import execute
+pool = ProcessPoolExecutor(max_workers=1)
+running = pool.submit(time.sleep, 60)
+time.sleep(0.5)
+os.write(pool._result_queue._writer.fileno(), struct.pack("!i", 1000) + b"x" * 10)
+time.sleep(0.5)  # the management thread reads the header and waits for the rest
+execute._stop_workers(pool, [running])
+print("stopped", running.done())
+"""
+
+
+def test_stopping_the_pool_when_a_worker_left_half_a_result_in_the_pipe_does_not_hang():
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-c", _HALF_MESSAGE], capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert proc.stdout.split() == ["stopped", "True"]
