@@ -7,6 +7,7 @@ import numpy as np
 
 from ..sysid import InvalidParameterError, LimitsError, SessionError
 from .input_gate import InputGate
+from .loop import warmup_window
 
 __all__ = ["energy_window", "OVERRUN_POLICIES", "PACES"]
 
@@ -70,13 +71,10 @@ def _check_settings(controller, plant, n_steps, policy, pace, rate, calibration_
 
 
 def _warmup(controller, warmup_inputs):
-    m, T = controller.n_inputs_, controller.past_steps_
-    if warmup_inputs is None:
-        return np.zeros((T, m))
-    w = np.asarray(warmup_inputs, dtype=np.float64)
-    if w.ndim != 2 or w.shape[1] != m or w.shape[0] < T:
-        raise SessionError(f"warmup_inputs must have shape (>= {T}, {m}) (the controller's past window); got "
-                           f"{w.shape}.")
+    w, given = warmup_window(controller, warmup_inputs)
+    if not given:
+        return w
+    m = controller.n_inputs_
     bad = controller.limits_.violations(w, np.zeros(m), energy_window_steps=energy_window(controller))
     if any(bad.values()) or not np.all(np.isfinite(w)):
         raise LimitsError(f"the warm-up inputs break the hard limits ({bad}) counted from rest; warm up inside "

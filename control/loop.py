@@ -124,14 +124,23 @@ def _targets(controller, target, n_steps):
     return (lambda k: t[k:k + N]), t[:n_steps].copy()
 
 
-def _warmup(controller, warmup_inputs):
+def warmup_window(controller, warmup_inputs):
+    """The warm-up inputs as a float array of the controller's past window (rest when None: zeros, needing no
+    check), and whether they were given; the limits they must keep are the caller's to check."""
     m, T = controller.n_inputs_, controller.past_steps_
     if warmup_inputs is None:
-        return np.zeros((T, m))
+        return np.zeros((T, m)), False
     w = np.asarray(warmup_inputs, dtype=np.float64)
     if w.ndim != 2 or w.shape[1] != m or w.shape[0] < T:
         raise SessionError(f"warmup_inputs must have shape (>= {T}, {m}) (the controller's past window); got "
                            f"{w.shape}.")
+    return w, True
+
+
+def _warmup(controller, warmup_inputs):
+    w, given = warmup_window(controller, warmup_inputs)
+    if not given:
+        return w
     bad = controller.limits_.violations(w)["amplitude"]
     if bad or not np.all(np.isfinite(w)):
         lo, hi = controller.limits_.input_bounds()
