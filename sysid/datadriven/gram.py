@@ -258,7 +258,10 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
         errors = _grid_by_strength(train, val, n_b, np.asarray(alphas) * scale, weights, F)
         if errors is not None:
             return errors
-    Gt = train.gram_rows(0, n_b)  # [G11 G12]: the rows of the outputs' block are never used (29 % of the Gram)
+    small = F is None and total is not None and total._factor_gram is not None and n_b < TOTAL_FACTOR_ROWS
+    Gv = [val.gram_rows(0, n_b)] if small else []  # the validation rows first: the training ones from them
+    # [G11 G12]: the rows of the outputs' block are never used (29 % of the Gram)
+    Gt = _training_rows(total, Gv[0], n_b) if small else train.gram_rows(0, n_b)
     G11, G21 = np.asfortranarray(Gt[:, :n_b]), np.ascontiguousarray(Gt[:, n_b:].T)
     del Gt  # memory: at most one array of the Gram's first n_b rows and two of G11's size at any time
     # divide and conquer: 27 % less CPU than the default MRRR driver at n = 2450 on this machine (its workspace,
@@ -268,7 +271,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     A = weights[:, None] * (G21 @ V)  # Ω G21 V
     del G21
     c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
-    cross, M = _heldout_from_validation(val, n_b, V, A, weights) if F is None else \
+    cross, M = _heldout_from_validation(Gv or [val.gram_rows(0, n_b)], n_b, V, A, weights) if F is None else \
         _heldout_from_total(F, n_b, V, d, A, weights)
     del V  # overwritten by the helpers
     quad = sla.blas.dsyrk(1.0, A, trans=1)  # AᵀA (upper triangle)
@@ -293,10 +296,28 @@ def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray
     return strength_errors(Ks, G12w, F, strengths, c0, weights)
 
 
-def _heldout_from_validation(val: _GramFold, n_b: int, V: np.ndarray, A: np.ndarray, weights):
-    """``diag(Vᵀ G12v Ω Ω G21 V)`` and the upper triangle of ``Vᵀ G11v V`` from the validation Gram (``V`` is
-    overwritten)."""
-    Gv = val.gram_rows(0, n_b)
+def _training_rows(total: "_GramFold", Gv: np.ndarray, n_b: int) -> np.ndarray:
+    """The training Gram's first ``n_b`` rows as the total's minus the validation fold's ``Gv`` (those rows,
+    assembled), from the Gram the total kept with the condition check's factor (``_factor_gram``: its strict
+    upper triangle, the diagonal from the sums). Used on small problems (below :data:`TOTAL_FACTOR_ROWS`; above,
+    the held-out terms come from the total's factor and no validation rows are assembled).
+
+    One Gram assembly per fold instead of two: the assembly is Python work over ``L²`` lag blocks that dominates
+    small fits (the demo's SPC fits at past 10 / horizon 20: 6 of 7 assemblies per fit were the folds'). Both
+    ways difference the same data (total minus fold, here after the assembly instead of before it), so they agree
+    to rounding; the condition check bounds how much rounding the fit can amplify."""
+    G = np.array(total._factor_gram[:n_b])  # rows [0, n_b) of the kept array: G's own entries above the diagonal
+    upper = np.triu(G[:, :n_b], 1)
+    G[:, :n_b] = upper + upper.T  # below the diagonal lies the factor: G's entries by symmetry instead
+    G[np.diag_indices(n_b)] = total.gram_diagonal()[:n_b]
+    G -= Gv
+    return G
+
+
+def _heldout_from_validation(held: list, n_b: int, V: np.ndarray, A: np.ndarray, weights):
+    """``diag(Vᵀ G12v Ω Ω G21 V)`` and the upper triangle of ``Vᵀ G11v V`` from the validation Gram's first
+    ``n_b`` rows, ``held = [Gv]`` (emptied here, so the rows are freed once used; ``V`` is overwritten)."""
+    Gv = held.pop()
     B = (V.T @ Gv[:, n_b:]) * weights[None, :]  # Vᵀ G12 Ω
     cross = np.einsum("ij,ji->i", B, A)  # diag(Vᵀ G12 Ω Ω G21 V)
     del B

@@ -222,3 +222,43 @@ def test_plan_gaps_by_lanczos_equal_the_dense_largest_eigenvalue(monkeypatch):
     np.testing.assert_allclose(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), expected, rtol=1e-12)
     monkeypatch.setattr(cs, "_largest_eigenvalue", lambda H: None)  # no convergence: the dense reduction
     np.testing.assert_array_equal(cs.plan_gaps_coordinate(theta_y, yf2, lambdas, 0.5), dense)
+
+
+def test_small_folds_take_their_training_rows_from_the_kept_gram(folds, monkeypatch):
+    # Small problems (the golden demo's sizes): a fold's training rows are the kept total Gram's minus the
+    # validation rows, so one Gram is assembled per fold instead of two. The reference is the training sums'
+    # own Gram (the route of before): the same data differenced before the assembly instead of after it.
+    fs, _total, n_b = folds
+    part = gr.total_fold(fs)
+    gr.gram_condition_of(part, keep_gram=True)
+    train, val = part.plus(fs[0], -1.0), fs[0]
+    expected = train.gram_rows(0, n_b)
+    got = gr._training_rows(part, val.gram_rows(0, n_b), n_b)
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-13 * np.abs(expected).max())
+    alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
+    old = gr.ridge_grid_errors(train, val, n_b, alphas, w, None)  # no kept Gram: both Grams assembled
+    calls = []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, _f=gr._lagged_gram, **k: calls.append(1) or _f(*a, **k))
+    new = gr.ridge_grid_errors(train, val, n_b, alphas, w, part)
+    assert len(calls) == 1  # the validation rows only
+    np.testing.assert_allclose(new, old, rtol=1e-11)
+
+
+def test_small_lsq_fits_assemble_one_gram_per_fold_and_predict_as_before(monkeypatch):
+    from stimsteer.sysid.datadriven import lsq
+
+    s, P, N = _system(T=1200), 3, 4
+    calls = []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, _f=gr._lagged_gram, **k: calls.append(1) or _f(*a, **k))
+    new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    assert len(calls) == 4  # the total (condition check and final map) and each fold's validation rows
+    grid = lsq.ridge_grid_errors  # without the total: both Grams of each fold assembled, as before
+    monkeypatch.setattr(lsq, "ridge_grid_errors", lambda *a: grid(*a[:-1], None))
+    calls.clear()
+    old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    assert len(calls) == 7
+    assert new.alpha_ == old.alpha_
+    np.testing.assert_array_equal(new.Kp_, old.Kp_)  # the final map is the kept total Gram's either way
+    np.testing.assert_array_equal(new.Kf_, old.Kf_)
+    for col in [c for c in old.cv_table_.columns if c != "candidate"]:
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-11)
