@@ -232,11 +232,12 @@ BY_STRENGTH = True
 STRENGTH_WORKERS = 2
 
 
-def _total_factor(total: "_GramFold | None", n_b: int) -> np.ndarray | None:
-    """The total Gram's cached lower Cholesky factor where the held-out terms are to come from it, else None (its
-    strict upper triangle may hold the Gram, ``_factor_gram``: the users read only the lower one)."""
+def _total_factor(total: "_GramFold | None", n_b: int, any_size: bool = False) -> np.ndarray | None:
+    """The total Gram's cached lower Cholesky factor where the held-out terms are to come from it (from
+    :data:`TOTAL_FACTOR_ROWS` regressor rows on, or at ``any_size``), else None (its strict upper triangle may hold
+    the Gram, ``_factor_gram``: the users read only the lower one)."""
     F = None if total is None else total._factor if total._factor is not None else total._factor_gram
-    return F if F is not None and n_b >= TOTAL_FACTOR_ROWS else None
+    return F if F is not None and (any_size or n_b >= TOTAL_FACTOR_ROWS) else None
 
 
 def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weights, total=None) -> np.ndarray:
@@ -434,8 +435,9 @@ def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights
     is not positive definite or its estimated condition number exceeds :data:`GRAM_CONDITION_LIMIT` (the caller
     then takes the factor route).
 
-    The error ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` uses the validation Grams, as :func:`ridge_grid_errors`
-    (on large problems through the factor of ``total``: :func:`_fold_error_from_total`).
+    The error ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` uses the validation Grams, as :func:`ridge_grid_errors`,
+    through the factor of ``total`` where it has one (:func:`_fold_error_from_total`: no validation Gram is
+    assembled), else the validation fold's own Gram.
     """
     release_freed_memory()  # the previous fold's arrays, before this fold's peak
     Gt = train.gram_rows(0, n_b)  # only the rows of [Up; Yp; Uf] are used (of the Grams and their memory: 71 %)
@@ -448,7 +450,8 @@ def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights
         return None
     if not gram_condition(C, None, norm) <= GRAM_CONDITION_LIMIT:
         return None
-    F = _total_factor(total, n_b)
+    # at every size: on small problems (the demo's) the validation Gram's assembly is most of the fold's CPU
+    F = _total_factor(total, n_b, any_size=True)
     if F is not None:
         return _fold_error_from_total(C, G12, F, n_b, val, weights)
     theta = sla.cho_solve((C, True), G12, overwrite_b=True, check_finite=False).T

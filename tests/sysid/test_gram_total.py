@@ -262,3 +262,28 @@ def test_small_lsq_fits_assemble_one_gram_per_fold_and_predict_as_before(monkeyp
     np.testing.assert_array_equal(new.Kf_, old.Kf_)
     for col in [c for c in old.cv_table_.columns if c != "candidate"]:
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-11)
+
+
+def test_small_hankel_folds_score_from_the_total_factor_without_a_validation_gram(monkeypatch):
+    # The unregularised fold error takes its held-out terms from the total's factor at every size: on the demo's
+    # small problems the validation Gram's assembly was half of each fold's. The reference is the validation
+    # Gram's own terms (the route of before below TOTAL_FACTOR_ROWS), equal to rounding.
+    s, P, N = _system(T=1200), 3, 4
+    calls, routes = [], []
+    monkeypatch.setattr(gr, "_lagged_gram", lambda *a, _f=gr._lagged_gram, **k: calls.append(1) or _f(*a, **k))
+    monkeypatch.setattr(gr, "_fold_error_from_total",
+                        lambda *a, _f=gr._fold_error_from_total, **k: routes.append(1) or _f(*a, **k))
+    new = HankelPredictor(past_steps=P, horizon_steps=N).fit(s)
+    n_new = len(calls)
+    assert len(routes) == 3  # every fold from the total's factor (n_b = 21, far below TOTAL_FACTOR_ROWS)
+    factor = gr._total_factor
+    monkeypatch.setattr(gr, "_total_factor", lambda total, n_b, any_size=False: factor(total, n_b))
+    calls.clear()
+    old = HankelPredictor(past_steps=P, horizon_steps=N).fit(s)
+    assert len(calls) == n_new + 3  # one validation Gram per fold fewer
+    assert old.cv_table_.shape == new.cv_table_.shape
+    for col in [c for c in old.cv_table_.columns if c != "candidate"]:
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-11)
+    rng = np.random.default_rng(6)
+    windows = rng.standard_normal((4, P, 2)), rng.standard_normal((4, P, 3)), rng.standard_normal((4, N, 2))
+    np.testing.assert_array_equal(new.predict_many(*windows), old.predict_many(*windows))
