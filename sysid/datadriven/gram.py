@@ -217,8 +217,9 @@ def total_fold(folds) -> "_GramFold":
 #: Regressor rows (``n_b``) from which a fold's held-out terms come from the total Gram's Cholesky factor (kept
 #: from the condition check) instead of the held-out fold's own Gram (:func:`_heldout_from_total`): one Gram
 #: assembly and one Cholesky factor fewer per fold (measured at past 100 / horizon 50, ``n_b`` = 2,450: 0.3 s and
-#: 0.2 s of CPU per fold on one thread). Below it the computations of before are kept bit for bit (the golden
-#: demo's windows are far smaller).
+#: 0.2 s of CPU per fold on one thread). Below it the SPC grid's held-out terms come from the validation fold's own
+#: Gram, and its training rows from the kept total Gram (:func:`_training_rows`); the unregularised fold error
+#: (:func:`unregularised_fold_error`) takes the total's factor at every size.
 TOTAL_FACTOR_ROWS = 512
 
 
