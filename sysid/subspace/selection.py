@@ -43,6 +43,8 @@ def score_orders(proj, check, layout, orders, feedthroughs: tuple, workers: int 
         return heldout_errors(batch, check)
 
     orders = list(orders)
+    if orders:  # the nested orders' shared QR sized for all of them first: the same for every order whichever
+        proj.nested(max(orders))  # thread asks first (its blocking, and so its rounding, follows its width)
     if workers < 2 or len(orders) < 2:
         fitted = [one(n) for n in orders]
         groups = batches([part for row in fitted for part, _s in row])
