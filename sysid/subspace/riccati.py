@@ -80,10 +80,11 @@ def _doubling(Ab, Qb, G):
         Gk = Gk + Ak @ Y2 @ Ak.T
         Ak = Ak @ Y1
         Hk, Gk = 0.5 * (Hk + Hk.T), 0.5 * (Gk + Gk.T)
-        if not (np.all(np.isfinite(Hk)) and np.all(np.isfinite(Ak))):
+        size = np.abs(Ak).sum(axis=0).max()
+        if not np.isfinite(size):  # a diverging iteration (a non-finite H reaches A through the next solve)
             return None
-        if np.abs(Ak).sum(axis=0).max() <= stop:
-            return Hk
+        if size <= stop:
+            return Hk if np.all(np.isfinite(Hk)) else None
     return None
 
 

@@ -16,7 +16,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 import pandas as pd
 
-from .heldout import _heldout_error
+from .heldout import _CheckCov, batches, heldout_errors, heldout_parts
 from .projection import _fit_order, _fit_orders
 
 __all__ = ["choose_stable", "order_tables", "score_orders"]
@@ -26,23 +26,37 @@ def score_orders(proj, check, layout, orders, feedthroughs: tuple, workers: int 
     """``{setting: [(held-out error, stable), …]}`` of the candidate ``orders`` fitted on ``proj``, for each direct-term
     setting in ``feedthroughs`` (both settings of an order share its equations: :func:`~.projection._fit_orders`).
 
-    With ``workers >= 2`` the orders are fitted on that many threads (BLAS on one thread each; matrix products and
-    SciPy's LAPACK calls release the GIL): every order is computed as on one thread, so the numbers do not depend
-    on ``workers``.
+    The candidates are fitted first; their held-out errors then read the large blocks of ``check`` a batch of
+    candidates at a time (:func:`~.heldout.heldout_errors`). With ``workers >= 2`` the orders and the batches are
+    computed on that many threads (BLAS on one thread each; matrix products and SciPy's LAPACK calls release the
+    GIL): each is computed as on one thread, so the numbers do not depend on ``workers``.
     """
+    if isinstance(check, np.ndarray):
+        check = _CheckCov.time_major(check, layout)  # once, not once per candidate
+
     def one(n):
         fits = _fit_orders(proj, n, feedthroughs)
         stable = bool(np.max(np.abs(np.linalg.eigvals(fits[feedthroughs[0]]["A"]))) < 1.0)  # A: the same for both
-        return {ft: (_heldout_error(mats, check, layout), stable) for ft, mats in fits.items()}
+        return [(heldout_parts(fits[ft], check, layout), stable) for ft in feedthroughs]
+
+    def errors(batch):
+        return heldout_errors(batch, check)
 
     orders = list(orders)
+    if orders:  # the nested orders' shared QR sized for all of them first: the same for every order whichever
+        proj.nested(max(orders))  # thread asks first (its blocking, and so its rounding, follows its width)
     if workers < 2 or len(orders) < 2:
-        scored = [one(n) for n in orders]
+        fitted = [one(n) for n in orders]
+        groups = batches([part for row in fitted for part, _s in row])
+        scores = [e for group in groups for e in errors(group)]
     else:
         first = one(orders[0])  # the projection's cached pieces are made here, before the threads start
         with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="stimsteer-subspace") as pool:
-            scored = [first, *pool.map(one, orders[1:])]
-    return {ft: [row[ft] for row in scored] for ft in feedthroughs}
+            fitted = [first, *pool.map(one, orders[1:])]
+            groups = batches([part for row in fitted for part, _s in row])
+            scores = [e for got in pool.map(errors, groups) for e in got]
+    k = len(feedthroughs)
+    return {ft: [(scores[r * k + j], row[j][1]) for r, row in enumerate(fitted)] for j, ft in enumerate(feedthroughs)}
 
 
 def _rows(orders, scored, sv) -> pd.DataFrame:

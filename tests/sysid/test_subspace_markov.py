@@ -122,6 +122,30 @@ def test_heldout_error_through_parts_equals_the_dense_error_map():
     assert heldout._heldout_error(mats, S, L) == pytest.approx(dense, rel=1e-11)
 
 
+
+def test_heldout_errors_of_a_batch_equal_each_candidate_and_the_dense_error_map(monkeypatch):
+    # candidates of several orders scored together (their X S_PP, X S_{P Yf} from one product per batch, batches
+    # split by the row budget) give each candidate's own error, and that is the dense map's
+    proj, rng = _projection(5, 4, 2, 3)
+    L, S = proj.layout, proj.S
+    check = heldout._CheckCov.time_major(S, L)
+    models = []
+    for n in (1, 3, 2, 4):
+        models.append({"A": 0.5 * np.eye(n) + 0.1 * rng.standard_normal((n, n)), "B": rng.standard_normal((n, 2)),
+                       "C": rng.standard_normal((3, n)), "D": rng.standard_normal((3, 2)),
+                       "K": 0.2 * rng.standard_normal((n, 3))})
+    parts = [heldout.heldout_parts(mats, check, L) for mats in models]
+    monkeypatch.setattr(heldout, "BATCH_ROWS", 5)
+    groups = heldout.batches(parts)
+    assert [len(g) for g in groups] == [2, 1, 1]  # 1 + 3 rows, then 2 (+ 4 > 5), then 4
+    batched = [e for g in groups for e in heldout.heldout_errors(g, check)]
+    alone = [heldout.heldout_errors([part], check)[0] for part in parts]
+    np.testing.assert_allclose(batched, alone, rtol=1e-13)
+    for mats, got in zip(models, batched):
+        E = L.select(L.Yf) - heldout._predictor_map(mats, L)
+        dense = np.mean(np.maximum(np.sum((E @ S) * E, axis=1), 0.0) / np.diag(S)[L.Yf])
+        assert got == pytest.approx(dense, rel=1e-11)
+
 def _fit_with_route(monkeypatch, session, chol_from, **kw):
     from stimsteer.sysid.subspace import SubspaceId
 
