@@ -69,11 +69,11 @@ def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarra
         return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
     np.copyto(buffer, Rc)
     buffer[np.diag_indices_from(buffer)] += alpha
-    try:
-        L = sla.cholesky(buffer, lower=True, overwrite_a=True, check_finite=False)
-    except np.linalg.LinAlgError:
+    # the LAPACK calls of scipy.linalg.cholesky and solve_triangular (the same numbers), without their wrappers
+    L, info = _POTRF(buffer, lower=1, overwrite_a=1, clean=1)
+    if info != 0:
         return None
-    return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
+    return L, _trsolve(L, rc)
 
 
 def _trsolve(L: np.ndarray, b: np.ndarray, trans: int = 0) -> np.ndarray:
@@ -213,12 +213,17 @@ def cv_errors(probs: list[_Problem], folds, total, alphas, keep: dict | None = N
     the total Gram the cross-validation assembled (``"index"``, ``"gram"``), for the final fit to reuse."""
     # factorisations of this size gain nothing from multi-threaded BLAS on a busy machine (it stalls): the
     # strengths run on worker threads instead, each with one BLAS thread
-    with _single_threaded_blas() as n_workers, \
-            ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
-        run = _Runner(pool, n_workers)
-        if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
-            return _cv_errors_large(probs, folds, total, alphas, run, keep)
-        return _cv_errors(probs, folds, total, alphas, run)
+    with _single_threaded_blas() as n_workers:
+        if n_workers == 1:  # one worker: in the calling thread (the same numbers, no hand-offs between threads)
+            return _cv_run(probs, folds, total, alphas, _SERIAL, keep)
+        with ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
+            return _cv_run(probs, folds, total, alphas, _Runner(pool, n_workers), keep)
+
+
+def _cv_run(probs, folds, total, alphas, run, keep):
+    if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
+        return _cv_errors_large(probs, folds, total, alphas, run, keep)
+    return _cv_errors(probs, folds, total, alphas, run)
 
 
 def _cv_errors(probs: list[_Problem], folds, total, alphas, run: _Runner) -> list[np.ndarray]:
