@@ -252,3 +252,42 @@ def test_a_shorter_chosen_window_takes_its_moments_from_the_search_sums(monkeypa
     fitted = _est(lag_grid=(1, 2, 3), delay_grid=(1, 2)).fit(session)
     assert _longest((fitted.output_lags_, fitted.input_lags_, fitted.delay_samples_)) < n_lags
     assert len(passes) == (1 if n_trials > 1 else 2)  # the search's pass alone (before: one more for the chosen)
+
+
+def _two_workers(monkeypatch):
+    @contextlib.contextmanager
+    def fixed():
+        yield 2
+
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", fixed)
+
+
+def _fitted(est):
+    return (est.output_lags_, est.input_lags_, est.delay_samples_, est.alpha_, est.condition_number_, est.coef_,
+            est.intercept_, est.innovation_cov_, est.n_rows_)
+
+
+def test_the_final_fit_is_prepared_on_the_worker_the_last_fold_leaves_idle(monkeypatch):
+    # issue 14: with five folds on two workers one worker idles during the last fold; it prepares the final fit of
+    # the structure the other folds choose (its moments, Gram centred in place, scale, largest eigenvalue), and the
+    # fit at the chosen strength follows from it: the result of the fit after the search, bit for bit
+    import threading
+
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)
+    _two_workers(monkeypatch)
+    kw = dict(lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    with monkeypatch.context() as m:
+        m.setattr(arx, "fit_ahead", lambda *a, **k: None)
+        ref = _fitted(_est(**kw).fit(session))
+    where = []
+    real = arx_regression.LargeFinal.__init__
+    monkeypatch.setattr(arx_regression.LargeFinal, "__init__",
+                        lambda self, *a: where.append(threading.current_thread().name) or real(self, *a))
+    got = _fitted(_est(**kw).fit(session))
+    assert len(where) == 1 and where[0].startswith("stimsteer-ridge-cv")
+    assert got[:5] == ref[:5] and got[-1] == ref[-1]
+    for a, b in zip(got[5:-1], ref[5:-1]):
+        np.testing.assert_array_equal(a, b)
+
