@@ -291,3 +291,23 @@ def test_the_final_fit_is_prepared_on_the_worker_the_last_fold_leaves_idle(monke
     for a, b in zip(got[5:-1], ref[5:-1]):
         np.testing.assert_array_equal(a, b)
 
+
+
+@pytest.mark.parametrize("b", [3, 128])
+def test_the_final_condition_number_from_the_band_form_equals_all_eigenvalues(monkeypatch, b):
+    # issue 14: λ_min(R + α I) by Lanczos on banded solves with B + α I (B = Qᵀ R Q), not on the dense factor's
+    # triangular solves (O(d b) a step against O(d²)); λ_max as before
+    monkeypatch.setattr(arx_band, "BANDWIDTH", b)
+    monkeypatch.setattr(arx_regression, "_lowest_shifted", lambda *a, **k: pytest.fail("dense route taken"))
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    est = RidgeArx(output_lags=3, input_lags=3, delay_samples=1)
+    prob = est._validated(session, (3, 3, 1))
+    _f, total, _k, _s, _shift = est._accumulate(session, prob)
+    prepared = arx_regression.LargeFinal(prob, total, {})
+    Cxx, _Cxy, _Cyy, _mu = prob.centred(total.sums.moments())
+    scale = np.sqrt(np.diag(Cxx) / total.n)
+    lam = np.clip(np.linalg.eigvalsh(Cxx / (total.n * np.outer(scale, scale))), 0, None)
+    for alpha in (1e-6, 1e-2):
+        cond = prepared.fit(alpha)[2]
+        assert cond == pytest.approx((lam.max() + alpha) / (lam.min() + alpha), rel=1e-9)
