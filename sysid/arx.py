@@ -29,11 +29,11 @@ from ._lagged import _Moments, _read_z, _stream_sums
 from .protocols import PredictionMaps
 from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
-from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, \
+from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, fit_ahead, \
     own_moments
 from .arx_statespace import arx_recursion, arx_to_state_space
-from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, edge_notes, select_structure, \
-    structure_candidates, structure_table
+from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, best_alpha, edge_notes, \
+    select_structure, structure_candidates, structure_table
 
 __all__ = ["RidgeArx", "arx_to_state_space", "CONDITION_WARN_LIMIT"]
 
@@ -218,22 +218,30 @@ class RidgeArx(BasePredictor):
         candidates, grids = structure_candidates(self)
         alphas = _check_alphas(self.alphas)
         search: dict = {}
-        structure, structures = select_structure(self, session, candidates, alphas, search)
+        structure, structures = select_structure(self, session, candidates, alphas, search,
+                                                 lambda *args: fit_ahead(self, session, *args, small=_SMALL_GRAM))
         prob = self._validated(session, structure)
         kept: dict = {}  # the total Gram the cross-validation assembled, for the final fit (large Grams)
         if prob.size > _SMALL_GRAM and structure in search.get("tables", {}):
             # large Grams: the structure is scored on the search's rows (its table from the search); the final fit
-            # takes the structure's own rows (derived from the search's sums where it can: own_moments)
+            # takes the structure's own rows (derived from the search's sums where it can: own_moments), its Gram
+            # prepared on an idle worker while the last fold was scored when that fold did not change the choice
             table, k, scheme = search["tables"][structure], search["moments"][2], search["moments"][3]
-            _folds, total, _k, _scheme, shift = own_moments(self, session, prob, search)
+            best = best_alpha(search["tables"].errors(structure), alphas)
+            ahead = search.get("ahead")
+            if ahead is not None and ahead[0] == structure and ahead[1] is not None:  # prepared on a worker
+                (_folds, total, _k, _scheme, shift), prepared = ahead[1]
+                kept["final"] = prepared.fit(best)
+            else:
+                _folds, total, _k, _scheme, shift = own_moments(self, session, prob, search)
             self._check_rows(prob, total.n)
         else:
             folds, total, k, scheme, shift = self._accumulate(session, prob)
             self._check_rows(prob, total.n)
             table = self._cross_validate(prob, folds, total, alphas, k, kept)
+            best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
+                if table["mean_error"].notna().any() else float(alphas[0])
         del search
-        best = float(table.loc[table["mean_error"] == table["mean_error"].min(), "alpha"].max()) \
-            if table["mean_error"].notna().any() else float(alphas[0])
         self._finish(session, prob, total, best, table, k, scheme, shift, kept)
         if structures is None:
             structures = structure_table([(*structure, prob.x_idx.size, table)])
@@ -289,7 +297,8 @@ class RidgeArx(BasePredictor):
         return cv_table(cv_errors([prob], folds, total, alphas, kept)[0], alphas, k)
 
     def _finish(self, session, prob, total, alpha, table, k, scheme, shift, kept=None):
-        coef, scale, cond, mu, resid = final_fit(prob, total, alpha, kept)
+        done = (kept or {}).pop("final", None)  # fitted ahead (the same function of the same moments)
+        coef, scale, cond, mu, resid = final_fit(prob, total, alpha, kept) if done is None else done
         if not cond <= CONDITION_WARN_LIMIT:
             warnings.warn(
                 f"the ridge ARX normal equations are ill-conditioned (condition number {cond:.3g} at alpha="

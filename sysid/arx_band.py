@@ -285,6 +285,21 @@ class BandForm:
         return None if Y is None else self.from_band(Y)
 
 
+def _rounding_level(R: np.ndarray) -> float:
+    """An upper bound of the eigen route's cut-off ``λ_max · d · eps`` (``λ_max <= tr R`` for a PSD ``R``)."""
+    return float(max(np.trace(R), 0.0)) * R.shape[0] * np.finfo(float).eps
+
+
+def band_of(R: np.ndarray) -> np.ndarray | None:
+    """The band ``B`` of ``R = Q B Qᵀ`` (lower band storage, :class:`BandForm`), reduced in ``R`` itself (a scratch
+    array with contiguous rows: overwritten, ``Q`` dropped); None where the in-place route is not available."""
+    if not (in_place_available() and _strided_rows(R)):
+        return None
+    form = BandForm(R, None)
+    form._restore, form.panels = None, None  # R is scratch: nothing to restore
+    return form.ab
+
+
 def _extend(R, r, n_core: int, e: np.ndarray, Ze: np.ndarray, Zr: np.ndarray, alpha: float):
     """Coefficients on ``[core, e]`` from ``Zr = (R_cc + α I)⁻¹ r_c`` and ``Ze = (R_cc + α I)⁻¹ R_ce`` by block
     elimination: the Schur complement ``S = R_ee + α I − R_ec Ze`` (Cholesky), ``β_e = S⁻¹ (r_e − R_ec Zr)``,
@@ -313,8 +328,6 @@ def band_betas(R, r, n_core: int, extras, live, alphas, work: np.ndarray | None,
     the core solutions shared by every structure, ``"Z"`` ``(n_core, n_alphas, p + |union_e|)`` (``(R_cc + α I)⁻¹``
     times ``[r_c, R_c,union_e]``) and ``"union_e"``: each structure's β is ``Z[:, j, :p] − Z[:, j, p + pos] β_e`` on
     the core and ``β_e`` (its last rows) on its extras."""
-    from .arx_regression import _rounding_level
-
     Rc = R[:n_core, :n_core]
     if n_core == 0 or min(alphas) <= _rounding_level(Rc):
         return {i: None for i in live}

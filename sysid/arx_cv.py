@@ -69,11 +69,11 @@ def _core_factor(Rc: np.ndarray, rc: np.ndarray, alpha: float, buffer: np.ndarra
         return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
     np.copyto(buffer, Rc)
     buffer[np.diag_indices_from(buffer)] += alpha
-    try:
-        L = sla.cholesky(buffer, lower=True, overwrite_a=True, check_finite=False)
-    except np.linalg.LinAlgError:
+    # the LAPACK calls of scipy.linalg.cholesky and solve_triangular (the same numbers), without their wrappers
+    L, info = _POTRF(buffer, lower=1, overwrite_a=1, clean=1)
+    if info != 0:
         return None
-    return L, sla.solve_triangular(L, rc, lower=True, check_finite=False)
+    return L, _trsolve(L, rc)
 
 
 def _trsolve(L: np.ndarray, b: np.ndarray, trans: int = 0) -> np.ndarray:
@@ -208,17 +208,27 @@ def _centred_block(W, s, n, mu, xi, yi):
     return C
 
 
-def cv_errors(probs: list[_Problem], folds, total, alphas, keep: dict | None = None) -> list[np.ndarray]:
+def cv_errors(probs: list[_Problem], folds, total, alphas, keep: dict | None = None,
+              ahead: dict | None = None) -> list[np.ndarray]:
     """Validation errors ``(n_alphas, n_folds)`` of each candidate. ``keep`` (a dict, large Grams only) receives
-    the total Gram the cross-validation assembled (``"index"``, ``"gram"``), for the final fit to reuse."""
+    the total Gram the cross-validation assembled (``"index"``, ``"gram"``), for the final fit to reuse.
+
+    ``ahead`` (a dict with ``"work"``, large Grams on two or more workers only): once fewer folds remain than
+    workers, ``ahead["work"](errors so far)`` (NaN columns for the folds still running) runs on the worker the
+    folds leave idle; its return value is put in ``ahead["result"]`` before this function returns."""
     # factorisations of this size gain nothing from multi-threaded BLAS on a busy machine (it stalls): the
     # strengths run on worker threads instead, each with one BLAS thread
-    with _single_threaded_blas() as n_workers, \
-            ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
-        run = _Runner(pool, n_workers)
-        if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
-            return _cv_errors_large(probs, folds, total, alphas, run, keep)
-        return _cv_errors(probs, folds, total, alphas, run)
+    with _single_threaded_blas() as n_workers:
+        if n_workers == 1:  # one worker: in the calling thread (the same numbers, no hand-offs between threads)
+            return _cv_run(probs, folds, total, alphas, _SERIAL, keep, None)
+        with ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-ridge-cv") as pool:
+            return _cv_run(probs, folds, total, alphas, _Runner(pool, n_workers), keep, ahead)
+
+
+def _cv_run(probs, folds, total, alphas, run, keep, ahead):
+    if hasattr(total, "sums"):  # a large Gram, held as lag sums: folds assembled one at a time, in place
+        return _cv_errors_large(probs, folds, total, alphas, run, keep, ahead)
+    return _cv_errors(probs, folds, total, alphas, run)
 
 
 def _cv_errors(probs: list[_Problem], folds, total, alphas, run: _Runner) -> list[np.ndarray]:
@@ -281,7 +291,8 @@ class _InThread:
 _SERIAL = _Runner(_InThread(), 1)
 
 
-def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, keep=None) -> list[np.ndarray]:
+def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, keep=None,
+                     ahead=None) -> list[np.ndarray]:
     """As :func:`_cv_errors`, for Grams held as lag sums (``total`` and ``folds`` with ``.sums``).
 
     The total Gram is assembled once, in the order ``[union, targets, rest]``. Each fold's training Gram is
@@ -310,10 +321,16 @@ def _cv_errors_large(probs: list[_Problem], folds, total, alphas, run: _Runner, 
         return _large_fold(probs, folds, f, whole, index, (n_core, extras, live), alphas, works) if live else {}
 
     # (five folds on two workers leave one core idle during the last fold; a third worker fills it, measured,
-    # but at 498 MB peak on the 1 kHz benchmark session against 404 MB: over the 500 MB budget's margin)
+    # but at 498 MB peak on the 1 kHz benchmark session against 404 MB: over the 500 MB budget's margin; the
+    # caller's work ahead, ``ahead``, fills it instead)
+    later = None
     for f, found in enumerate(run.pool.map(one, range(k))):
         for i, col in found.items():
             errors[i][:, f] = col
+        if ahead is not None and 1 <= f == k - run.n:  # fewer folds left than workers: one worker is free
+            later = run.pool.submit(ahead["work"], [e.copy() for e in errors])
+    if later is not None:
+        ahead["result"] = later.result()
     if keep is not None:
         keep.update(index=index, gram=whole.W)
     return errors

@@ -25,7 +25,7 @@ from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem
 
 __all__ = ["AUTO", "DEFAULT_LAG_GRID", "DEFAULT_DELAY_GRID", "structure_candidates", "structure_table",
-           "edge_notes", "select_structure"]
+           "edge_notes", "select_structure", "best_alpha"]
 
 #: The setting that asks for a lag or delay to be chosen from its grid.
 AUTO = "auto"
@@ -149,19 +149,45 @@ class _Tables(dict):
     def __getitem__(self, structure):
         return cv_table(super().__getitem__(structure), self.alphas, self.k)
 
+    def errors(self, structure) -> np.ndarray:
+        """The structure's ``(n_alphas, k)`` validation errors."""
+        return super().__getitem__(structure)
+
 
 def _longest(c) -> int:
     na, nb, d = c
     return max(na, d + nb - 1)
 
 
-def select_structure(est, session, candidates, alphas, keep: dict | None = None):
+def best_alpha(errors: np.ndarray, alphas: np.ndarray) -> float:
+    """The strength a structure's ``(n_alphas, k)`` validation errors choose: the largest among equal lowest mean
+    errors (the first when no fold could be scored)."""
+    mean = _errors_curve(errors, alphas)[1]
+    return float(alphas[mean == np.nanmin(mean)].max()) if (~np.isnan(mean)).any() else float(alphas[0])
+
+
+def _chosen(candidates, n_coef, scored, errors, alphas, k):
+    """The selected structure and the structure table from the scored candidates' errors."""
+    found = dict(zip(scored, errors))
+    empty = np.full((alphas.size, k), np.nan)
+    # each candidate's strength curve from its errors; a table (a DataFrame, ~1 ms each) only for the chosen one
+    rows = [(*c, n_coef[i], _errors_curve(found.get(i, empty), alphas)) for i, c in enumerate(candidates)]
+    structures = structure_table(rows)
+    top = structures.loc[structures["selected"]].iloc[0]
+    return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures, found
+
+
+def select_structure(est, session, candidates, alphas, keep: dict | None = None, ahead=None):
     """The best ``(na, nb, d)`` of a RidgeArx by trial-wise cross-validation, and the table of every candidate.
 
     Returns ``(structure, table)``; ``table`` is None when there is one candidate (nothing to choose). ``keep`` (a
     dict) receives the shared rows' moments (``"moments"``: what ``_accumulate`` returns), their lag count
     (``"n_lags"``) and each scored candidate's strength table (``"tables"``): a chosen structure whose own rows are
     the shared ones (its longest lag is the grid's) needs no second pass nor second cross-validation.
+
+    ``ahead(structure, keep)`` (large Grams): the final fit's strength-free part, prepared on the worker the last
+    folds leave idle for the structure the other folds choose; ``keep["ahead"]`` receives ``(structure, its
+    result)`` (None where it failed), for the caller to use when all folds choose the same.
     """
     if len(candidates) == 1:
         return candidates[0], None
@@ -171,15 +197,21 @@ def select_structure(est, session, candidates, alphas, keep: dict | None = None)
     probs = [_Problem(probe.p, probe.m, na, nb, d, probe.fit_intercept, n_lags) for na, nb, d in candidates]
     n_coef = [q.x_idx.size + int(q.fit_intercept) for q in probs]
     scored = [i for i, q in enumerate(probs) if total.n >= n_coef[i]]
-    errors = cv_errors([probs[i] for i in scored], folds, total, alphas) if scored else []
-    found = dict(zip(scored, errors))
-    empty = np.full((alphas.size, k), np.nan)
-    # each candidate's strength curve from its errors; a table (a DataFrame, ~1 ms each) only for the chosen one
-    rows = [(*c, n_coef[i], _errors_curve(found.get(i, empty), alphas)) for i, c in enumerate(candidates)]
-    structures = structure_table(rows)
-    if keep is not None:
-        keep.update(moments=(folds, total, k, _scheme, _shift), n_lags=n_lags,
-                    tables=_Tables({candidates[i]: found[i] for i in scored}, alphas, k))
-    top = structures.loc[structures["selected"]].iloc[0]
-    return (int(top["output_lags"]), int(top["input_lags"]), int(top["delay_samples"])), structures
+    keep = {} if keep is None else keep
+    keep.update(moments=(folds, total, k, _scheme, _shift), n_lags=n_lags)
+
+    def work(partial):  # on a cross-validation worker, with the errors of every fold but the last ones
+        try:
+            structure = _chosen(candidates, n_coef, scored, partial, alphas, k)[0]
+            return structure, ahead(structure, keep)
+        except Exception:  # the caller fits as it would without (and meets the same error there, if any)
+            return None
+
+    later = {"work": work} if ahead is not None else None
+    errors = cv_errors([probs[i] for i in scored], folds, total, alphas, ahead=later) if scored else []
+    structure, structures, found = _chosen(candidates, n_coef, scored, errors, alphas, k)
+    keep.update(tables=_Tables({candidates[i]: found[i] for i in scored}, alphas, k))
+    if later is not None and "result" in later:
+        keep["ahead"] = later["result"]
+    return structure, structures
 

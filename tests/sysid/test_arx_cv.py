@@ -126,3 +126,32 @@ def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(mon
     args = (rng.standard_normal((3, 5, 2)), rng.standard_normal((3, 5, 3)), rng.standard_normal((3, 7, 2)))
     a, b = slow.predict_many(*args), fast.predict_many(*args)
     np.testing.assert_allclose(b, a, rtol=1e-8, atol=1e-10 * np.abs(a).max())
+
+
+def test_one_worker_runs_in_the_calling_thread_with_the_numbers_of_the_pool(monkeypatch):
+    # issue 20: with one BLAS thread (the demo's bench tasks) the strengths were handed one by one to a one-thread
+    # pool; they run in the calling thread now, with the same numbers as on a pool of two
+    import contextlib
+
+    est = RidgeArx(output_lags=2, input_lags=2, delay_samples="auto", delay_grid=(1, 2))
+    candidates, _ = structure_candidates(est)
+    probs, folds, total = _moments(est, _session(seed=3), candidates)
+    alphas = np.logspace(-6, 0, 4)
+
+    def workers(n):
+        @contextlib.contextmanager
+        def fixed():
+            yield n
+        return fixed
+
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", workers(2))
+    ref = arx_cv.cv_errors(probs, folds, total, alphas)
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", workers(1))
+
+    def no_pool(*args, **kwargs):
+        raise AssertionError("a thread pool was started for one worker")
+
+    monkeypatch.setattr(arx_cv, "ThreadPoolExecutor", no_pool)
+    got = arx_cv.cv_errors(probs, folds, total, alphas)
+    for a, b in zip(got, ref):
+        np.testing.assert_array_equal(a, b)

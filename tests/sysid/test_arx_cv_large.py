@@ -252,3 +252,62 @@ def test_a_shorter_chosen_window_takes_its_moments_from_the_search_sums(monkeypa
     fitted = _est(lag_grid=(1, 2, 3), delay_grid=(1, 2)).fit(session)
     assert _longest((fitted.output_lags_, fitted.input_lags_, fitted.delay_samples_)) < n_lags
     assert len(passes) == (1 if n_trials > 1 else 2)  # the search's pass alone (before: one more for the chosen)
+
+
+def _two_workers(monkeypatch):
+    @contextlib.contextmanager
+    def fixed():
+        yield 2
+
+    monkeypatch.setattr(arx_cv, "_single_threaded_blas", fixed)
+
+
+def _fitted(est):
+    return (est.output_lags_, est.input_lags_, est.delay_samples_, est.alpha_, est.condition_number_, est.coef_,
+            est.intercept_, est.innovation_cov_, est.n_rows_)
+
+
+def test_the_final_fit_is_prepared_on_the_worker_the_last_fold_leaves_idle(monkeypatch):
+    # issue 14: with five folds on two workers one worker idles during the last fold; it prepares the final fit of
+    # the structure the other folds choose (its moments, Gram centred in place, scale, largest eigenvalue), and the
+    # fit at the chosen strength follows from it: the result of the fit after the search, bit for bit
+    import threading
+
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    monkeypatch.setattr(arx_regression, "_CHOLESKY_FROM", 0)
+    _two_workers(monkeypatch)
+    kw = dict(lag_grid=(1, 2, 3), delay_grid=(1, 2))
+    with monkeypatch.context() as m:
+        m.setattr(arx, "fit_ahead", lambda *a, **k: None)
+        ref = _fitted(_est(**kw).fit(session))
+    where = []
+    real = arx_regression.LargeFinal.__init__
+    monkeypatch.setattr(arx_regression.LargeFinal, "__init__",
+                        lambda self, *a: where.append(threading.current_thread().name) or real(self, *a))
+    got = _fitted(_est(**kw).fit(session))
+    assert len(where) == 1 and where[0].startswith("stimsteer-ridge-cv")
+    assert got[:5] == ref[:5] and got[-1] == ref[-1]
+    for a, b in zip(got[5:-1], ref[5:-1]):
+        np.testing.assert_array_equal(a, b)
+
+
+
+@pytest.mark.parametrize("b", [3, 128])
+def test_the_final_condition_number_from_the_band_form_equals_all_eigenvalues(monkeypatch, b):
+    # issue 14: λ_min(R + α I) by Lanczos on banded solves with B + α I (B = Qᵀ R Q), not on the dense factor's
+    # triangular solves (O(d b) a step against O(d²)); λ_max as before
+    monkeypatch.setattr(arx_band, "BANDWIDTH", b)
+    monkeypatch.setattr(arx_regression, "_lowest_shifted", lambda *a, **k: pytest.fail("dense route taken"))
+    session = _session(seed=4)
+    monkeypatch.setattr(arx, "_SMALL_GRAM", 0)
+    est = RidgeArx(output_lags=3, input_lags=3, delay_samples=1)
+    prob = est._validated(session, (3, 3, 1))
+    _f, total, _k, _s, _shift = est._accumulate(session, prob)
+    prepared = arx_regression.LargeFinal(prob, total, {})
+    Cxx, _Cxy, _Cyy, _mu = prob.centred(total.sums.moments())
+    scale = np.sqrt(np.diag(Cxx) / total.n)
+    lam = np.clip(np.linalg.eigvalsh(Cxx / (total.n * np.outer(scale, scale))), 0, None)
+    for alpha in (1e-6, 1e-2):
+        cond = prepared.fit(alpha)[2]
+        assert cond == pytest.approx((lam.max() + alpha) / (lam.min() + alpha), rel=1e-9)
