@@ -147,10 +147,17 @@ def _parallel_pass(chunks, load, task, n_workers: int):
 
 
 def _reads_into(session) -> bool:
-    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; other sources need only
-    ``read(start, stop)``)."""
+    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; others need only ``read(start,
+    stop)``); a method's signature is read once per function (once per chunk took 0.14 s of the demo's bench)."""
+    read = getattr(session, "read", None)
+    func = getattr(read, "__func__", None)
+    return _takes_out(func) if func is not None else _takes_out.__wrapped__(read)
+
+
+@functools.lru_cache(maxsize=64)
+def _takes_out(read) -> bool:
     try:
-        return "out" in inspect.signature(session.read).parameters
+        return "out" in inspect.signature(read).parameters
     except (TypeError, ValueError):
         return False
 
@@ -186,11 +193,9 @@ class _LagSums:
     ``(n × c)`` matrices per lag difference, :func:`_chunk_products`). Block ``(a, a + δ)`` of the Gram of the
     lagged vectors over the pieces' rows ``[r0, r1)`` is the same sum with its window shifted back by ``a``: plus
     the ``a`` terms before ``r0``, minus the ``a`` terms before ``r1`` (the edge terms). Instead of the edge terms
-    (one Gram-sized array per fold),
-    the ``L`` samples before each piece's first row (``starts``, sign +1) and its last ``L`` samples (``ends``, sign
-    −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from these sums
-    alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram.
-    """
+    (one Gram-sized array per fold), the ``L`` samples before each piece's first row (sign +1) and its last ``L``
+    samples (sign −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from
+    these sums alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram."""
 
     def __init__(self, c: int, n_lags: int):
         self.n = 0
@@ -334,17 +339,19 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
 
     Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
-    ``X[δ]``; the lower blocks are the transposes. The sum of ``w_k w_kᵀ`` over the rows. With ``index``
-    (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
-    a permuted Gram made without a second Gram-sized copy. With ``rows = (r0, r1)``, only those rows of it (the
-    same numbers, in ``(r1 − r0) × (L + 1) c`` memory). With ``average_same_lag`` the blocks ``(a, a)`` are
-    averaged with their transposes (:func:`_lagged_gram_rows`). The blocks are written as strided copies over the
-    rectangles of ``index`` (:func:`_index_rectangles`): the same numbers as a scatter, many times faster.
-    """
+    ``X[δ]``; the lower blocks are the transposes. With ``index`` (a permutation, shape ``(L + 1, c)``), entry
+    ``(a, i)`` of the lagged vector is row ``index[a, i]`` of the result, with no second Gram-sized copy; with
+    ``rows = (r0, r1)`` only those rows (the same numbers); with ``average_same_lag`` the blocks ``(a, a)`` are
+    averaged with their transposes. Written as strided copies over the rectangles of ``index``
+    (:func:`_index_rectangles`; short vectors: :data:`_SMALL_ASSEMBLY`)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
-    if index is None and (r0, r1) == (0, Lp1 * c) and Lp1 * c <= _SMALL_ASSEMBLY:
-        return _small_lagged_gram(sums, average_same_lag)
+    order = None if index is None or Lp1 * c > _SMALL_ASSEMBLY else _small_order(np.asarray(index).reshape(-1))
+    if Lp1 * c <= _SMALL_ASSEMBLY and (index is None or order is not None):
+        W = _small_lagged_gram(sums, average_same_lag)  # permuted below by one fancy-indexed copy: the same numbers
+        if order is not None:
+            return W[np.ix_(order[r0:r1], order)]
+        return W if (r0, r1) == (0, Lp1 * c) else W[r0:r1].copy()
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
     full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
@@ -357,9 +364,9 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     return W
 
 
-#: Whole Grams in lagged order of lagged vectors up to this length are assembled by fancy-indexed copies
-#: (:func:`_small_lagged_gram`); longer ones, permuted ones and row ranges by strided block copies over the
-#: rectangles of the index (a permuting copy would hold a second Gram).
+#: Grams of lagged vectors up to this length are assembled in lagged order by fancy-indexed copies, then permuted
+#: and cut to ``rows`` by one more (:func:`_small_lagged_gram`): the numbers of the strided block copies, without
+#: their per-block Python work. Longer ones by strided copies over the rectangles of the index.
 _SMALL_ASSEMBLY = 1024
 
 
@@ -380,8 +387,7 @@ def _gram_blocks(sums: _LagSums, average_same_lag: bool):
 
 def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
     """:func:`_lagged_gram` in lagged order, whole, for short lagged vectors: the blocks of each ``δ`` written by two
-    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work, which
-    dominates at this size)."""
+    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     lags = np.arange(Lp1)
     G = np.empty((Lp1, c, Lp1, c))
@@ -390,6 +396,15 @@ def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
         if d:
             G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
     return G.reshape(Lp1 * c, Lp1 * c)
+
+
+def _small_order(index: np.ndarray) -> np.ndarray | None:
+    """``order`` with ``order[index[k]] = k``, or None when ``index`` is not a permutation of ``0 … n − 1``."""
+    if index.size and (index.min() < 0 or index.max() >= index.size):
+        return None
+    order = np.full(index.size, -1, dtype=np.intp)
+    order[index] = np.arange(index.size)
+    return order if index.size == 0 or order.min() >= 0 else None
 
 
 @functools.lru_cache(maxsize=64)
