@@ -9,14 +9,15 @@ whose columns are the same lagged vectors in reversed order) both use it.
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import inspect
-from collections import deque
-from concurrent.futures import ThreadPoolExecutor
+import os
 
 import numpy as np
 from numpy.lib.stride_tricks import as_strided
+
+# blas_*: imported from here by the package's other modules
+from ._blas_threads import _parallel_pass, _single_threaded_blas, blas_controller, blas_thread_count, blas_threads  # noqa: F401
 
 # ------------------------------------------------------------------------------------------------ sufficient stats
 class _Moments:
@@ -71,79 +72,6 @@ def _chunks(pieces, chunk_rows: int):
         for k0 in range(a, b, chunk_rows):
             k1 = min(b, k0 + chunk_rows)
             yield k0, k1, f, k0 == a, k1 == b
-
-
-_CONTROLLER: list = []
-
-
-def blas_controller():
-    """The process's one ``threadpoolctl.ThreadpoolController`` (None without threadpoolctl).
-
-    Created on first use and reused: a fresh ``threadpool_limits`` or ``threadpool_info`` scans every loaded library
-    on each call (~30 ms under load, as long as a small fit's algebra). Created after NumPy's and SciPy's linear
-    algebra are loaded, so it controls both of their BLAS libraries.
-    """
-    if not _CONTROLLER:
-        try:
-            from threadpoolctl import ThreadpoolController
-        except ImportError:  # pragma: no cover - scikit-learn installs it
-            return None
-        import scipy.linalg  # noqa: F401  (SciPy's own BLAS must be loaded before the libraries are found)
-
-        _CONTROLLER.append(ThreadpoolController())
-    return _CONTROLLER[0]
-
-
-def blas_threads(limit: int = 1):
-    """Context that limits BLAS/LAPACK to ``limit`` threads (process-wide, restored afterwards); a no-op without
-    threadpoolctl. Uses the cached :func:`blas_controller`."""
-    ctl = blas_controller()
-    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=limit, user_api="blas")
-
-
-def blas_thread_count() -> int:
-    """The largest thread count of the loaded BLAS libraries (1 without threadpoolctl)."""
-    ctl = blas_controller()
-    if ctl is None:
-        return 1
-    return max((int(lib.num_threads or 1) for lib in ctl.select(user_api="blas").lib_controllers), default=1)
-
-
-@contextlib.contextmanager
-def _single_threaded_blas():
-    """Yield the number of worker threads to use, with BLAS limited to one thread meanwhile.
-
-    The Gram products of one chunk are small (``(p+m) × (p+m)`` outputs): several chunks computed at once, each with
-    single-threaded BLAS, use the cores better than one chunk at a time with multi-threaded BLAS, and do not
-    oversubscribe the CPU while the main thread reads (multi-threaded OpenBLAS slows down many times over when a
-    busy extra thread competes for its cores). The limit is process-wide for the duration of the pass and restored
-    afterwards; without threadpoolctl (a scikit-learn dependency) one worker is used and nothing is changed.
-    """
-    n = blas_thread_count()
-    with blas_threads(1):
-        yield max(1, n)
-
-
-def _parallel_pass(chunks, load, task, n_workers: int):
-    """Yield ``(chunk, task(load(chunk)))`` in chunk order; loads run here, tasks on ``n_workers`` threads.
-
-    Reading overlaps with the tasks (BLAS releases the GIL; an identity ``load`` moves the reading into the tasks). At most
-    ``n_workers + 1`` loaded chunks wait or run at a time, which bounds memory; results come back in order, so the
-    sums they feed are the same in every run.
-    """
-    pending: deque = deque()
-    pool = ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-arx")
-    try:
-        for chunk in chunks:
-            pending.append((chunk, pool.submit(task, load(chunk))))
-            if len(pending) > n_workers:
-                done, fut = pending.popleft()
-                yield done, fut.result()
-        while pending:
-            done, fut = pending.popleft()
-            yield done, fut.result()
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _reads_into(session) -> bool:
@@ -449,6 +377,13 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
                                 with_range=True)
 
 
+#: Multiply-adds of a pass's lag products (rows × lags × channels²) from which it runs on two worker threads even
+#: where the caller limited BLAS to one thread (the fits do, for their factorisations; that limit otherwise sets
+#: the workers): 5e9 at 1 kHz, past 100 / horizon 50, 0.8 s of one core; 8e7 for a fit of the demo, whose passes
+#: run in the calling thread (no hand-offs).
+_TWO_CORE_WORK = 1e9
+
+
 def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None, *,
                      shift=None, with_range: bool = False):
     """One pass over the pieces (rows ``[k0, k1)`` with fold ``f``): the :class:`_LagSums` of each fold.
@@ -477,6 +412,8 @@ def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int
         return _window_task(Z, n_lags, first, last), rng
 
     with _single_threaded_blas() as n_workers:
+        if n_workers < 2 and sum(b - a for a, b, _f in pieces) * (n_lags + 1) * c * c >= _TWO_CORE_WORK:
+            n_workers = min(2, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1)
         # _parallel_pass holds at most n_workers unconsumed chunks when it starts the next one, so n_workers + 1
         # buffers suffice; one more is a margin. Buffers are assigned in chunk order, in this thread.
         ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]
