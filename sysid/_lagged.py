@@ -276,9 +276,7 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
     order = None if index is None or Lp1 * c > _SMALL_ASSEMBLY else _small_order(np.asarray(index).reshape(-1))
     if Lp1 * c <= _SMALL_ASSEMBLY and (index is None or order is not None):
-        W = _small_lagged_gram(sums, average_same_lag)  # permuted below by one fancy-indexed copy: the same numbers
-        if order is not None:
-            return W[np.ix_(order[r0:r1], order)]
+        W = _small_lagged_gram(sums, average_same_lag, None if index is None else np.asarray(index))
         return W if (r0, r1) == (0, Lp1 * c) else W[r0:r1].copy()
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
@@ -313,16 +311,23 @@ def _gram_blocks(sums: _LagSums, average_same_lag: bool):
         yield blocks
 
 
-def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
-    """:func:`_lagged_gram` in lagged order, whole, for short lagged vectors: the blocks of each ``δ`` written by two
-    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work)."""
+def _small_lagged_gram(sums: _LagSums, average_same_lag: bool, index: np.ndarray | None = None) -> np.ndarray:
+    """:func:`_lagged_gram`, whole, for short lagged vectors: the blocks of each ``δ`` written by two fancy-indexed
+    copies (the same numbers as the strided block copies, without their per-block Python work), in lagged order or
+    straight to the rows and columns of ``index`` (a permutation)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     lags = np.arange(Lp1)
-    G = np.empty((Lp1, c, Lp1, c))
+    G = np.empty((Lp1, c, Lp1, c) if index is None else (Lp1 * c, Lp1 * c))
     for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
-        G[lags[: Lp1 - d], :, lags[d:], :] = blocks
+        if index is None:
+            G[lags[: Lp1 - d], :, lags[d:], :] = blocks
+            if d:
+                G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+            continue
+        r, q = index[: Lp1 - d], index[d:]
+        G[r[:, :, None], q[:, None, :]] = blocks
         if d:
-            G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+            G[q[:, :, None], r[:, None, :]] = blocks.transpose(0, 2, 1)
     return G.reshape(Lp1 * c, Lp1 * c)
 
 

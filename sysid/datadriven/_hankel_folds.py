@@ -44,8 +44,9 @@ def available(total, n_b: int) -> bool:
 
 
 def _factor_fold(train, n_b: int):
-    """Step 1: ``(panel, C-ordered rows)`` of the training Gram with ``G11`` factored, or None (not positive
-    definite, or condition above the limit: the caller takes the general route)."""
+    """Step 1: the training Gram's first ``n_b`` rows (C-ordered: the column-major panel ``[G11; G21]``) with
+    ``G11`` factored in place, or None (not positive definite, or its estimated condition number above
+    ``GRAM_CONDITION_LIMIT``, as ``gram.unregularised_fold_error``: the caller takes the general route)."""
     Gt = train.gram_rows(0, n_b)  # C-ordered n_b × n: the memory of the column-major panel [G11; G21]
     n = Gt.shape[1]
     norm = _one_norm(Gt, n_b)
@@ -70,6 +71,17 @@ def _half(Gt, F, n_b: int, i0: int, i1: int, lt21_sq: np.ndarray, w2: np.ndarray
     return float(w2[i0:i1] @ resid)
 
 
+def _others(folds, i: int):
+    """The training data of fold ``i`` as the sum of the other folds, not the total minus the fold: its lag sums
+    keep only their own pieces' edge windows (the total minus the fold holds the fold's twice, with opposite signs,
+    and its Gram's edge terms cost twice as much to assemble)."""
+    rest = [f for j, f in enumerate(folds) if j != i]
+    out = rest[0]
+    for f in rest[1:]:
+        out = out.plus(f)
+    return out
+
+
 def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
     """``{i: error or None}`` for every fold ``i`` with windows in it and in its training data (None: the caller
     scores that fold by the general route)."""
@@ -82,7 +94,7 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
     todo = [i for i, f in enumerate(folds) if f.n_columns and total.n_columns - f.n_columns]
     out = {}
     with ThreadPoolExecutor(max_workers=WORKERS, thread_name_prefix="stimsteer-hankel-folds") as pool:
-        factored = {i: pool.submit(_factor_fold, total.plus(folds[i], -1.0), n_b) for i in todo[:WORKERS]}
+        factored = {i: pool.submit(_factor_fold, _others(folds, i), n_b) for i in todo[:WORKERS]}
         for k, i in enumerate(todo):
             Gt = factored.pop(i).result()
             if Gt is None:
@@ -95,7 +107,7 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
             release_freed_memory()  # this fold's array, before the next one is assembled
             if k + WORKERS < len(todo):
                 j = todo[k + WORKERS]
-                factored[j] = pool.submit(_factor_fold, total.plus(folds[j], -1.0), n_b)
+                factored[j] = pool.submit(_factor_fold, _others(folds, j), n_b)
     return out
 
 
