@@ -9,14 +9,15 @@ whose columns are the same lagged vectors in reversed order) both use it.
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import inspect
-from collections import deque
-from concurrent.futures import ThreadPoolExecutor
+import os
 
 import numpy as np
 from numpy.lib.stride_tricks import as_strided
+
+# blas_*: imported from here by the package's other modules
+from ._blas_threads import _parallel_pass, _single_threaded_blas, blas_controller, blas_thread_count, blas_threads  # noqa: F401
 
 # ------------------------------------------------------------------------------------------------ sufficient stats
 class _Moments:
@@ -73,84 +74,18 @@ def _chunks(pieces, chunk_rows: int):
             yield k0, k1, f, k0 == a, k1 == b
 
 
-_CONTROLLER: list = []
-
-
-def blas_controller():
-    """The process's one ``threadpoolctl.ThreadpoolController`` (None without threadpoolctl).
-
-    Created on first use and reused: a fresh ``threadpool_limits`` or ``threadpool_info`` scans every loaded library
-    on each call (~30 ms under load, as long as a small fit's algebra). Created after NumPy's and SciPy's linear
-    algebra are loaded, so it controls both of their BLAS libraries.
-    """
-    if not _CONTROLLER:
-        try:
-            from threadpoolctl import ThreadpoolController
-        except ImportError:  # pragma: no cover - scikit-learn installs it
-            return None
-        import scipy.linalg  # noqa: F401  (SciPy's own BLAS must be loaded before the libraries are found)
-
-        _CONTROLLER.append(ThreadpoolController())
-    return _CONTROLLER[0]
-
-
-def blas_threads(limit: int = 1):
-    """Context that limits BLAS/LAPACK to ``limit`` threads (process-wide, restored afterwards); a no-op without
-    threadpoolctl. Uses the cached :func:`blas_controller`."""
-    ctl = blas_controller()
-    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=limit, user_api="blas")
-
-
-def blas_thread_count() -> int:
-    """The largest thread count of the loaded BLAS libraries (1 without threadpoolctl)."""
-    ctl = blas_controller()
-    if ctl is None:
-        return 1
-    return max((int(lib.num_threads or 1) for lib in ctl.select(user_api="blas").lib_controllers), default=1)
-
-
-@contextlib.contextmanager
-def _single_threaded_blas():
-    """Yield the number of worker threads to use, with BLAS limited to one thread meanwhile.
-
-    The Gram products of one chunk are small (``(p+m) × (p+m)`` outputs): several chunks computed at once, each with
-    single-threaded BLAS, use the cores better than one chunk at a time with multi-threaded BLAS, and do not
-    oversubscribe the CPU while the main thread reads (multi-threaded OpenBLAS slows down many times over when a
-    busy extra thread competes for its cores). The limit is process-wide for the duration of the pass and restored
-    afterwards; without threadpoolctl (a scikit-learn dependency) one worker is used and nothing is changed.
-    """
-    n = blas_thread_count()
-    with blas_threads(1):
-        yield max(1, n)
-
-
-def _parallel_pass(chunks, load, task, n_workers: int):
-    """Yield ``(chunk, task(load(chunk)))`` in chunk order; loads run here, tasks on ``n_workers`` threads.
-
-    Reading overlaps with the tasks (BLAS releases the GIL; an identity ``load`` moves the reading into the tasks). At most
-    ``n_workers + 1`` loaded chunks wait or run at a time, which bounds memory; results come back in order, so the
-    sums they feed are the same in every run.
-    """
-    pending: deque = deque()
-    pool = ThreadPoolExecutor(max_workers=n_workers, thread_name_prefix="stimsteer-arx")
-    try:
-        for chunk in chunks:
-            pending.append((chunk, pool.submit(task, load(chunk))))
-            if len(pending) > n_workers:
-                done, fut = pending.popleft()
-                yield done, fut.result()
-        while pending:
-            done, fut = pending.popleft()
-            yield done, fut.result()
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
-
-
 def _reads_into(session) -> bool:
-    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; other sources need only
-    ``read(start, stop)``)."""
+    """Whether the source's ``read`` takes ``out=`` (Session and SessionFile do; others need only ``read(start,
+    stop)``); a method's signature is read once per function (once per chunk took 0.14 s of the demo's bench)."""
+    read = getattr(session, "read", None)
+    func = getattr(read, "__func__", None)
+    return _takes_out(func) if func is not None else _takes_out.__wrapped__(read)
+
+
+@functools.lru_cache(maxsize=64)
+def _takes_out(read) -> bool:
     try:
-        return "out" in inspect.signature(session.read).parameters
+        return "out" in inspect.signature(read).parameters
     except (TypeError, ValueError):
         return False
 
@@ -186,11 +121,9 @@ class _LagSums:
     ``(n × c)`` matrices per lag difference, :func:`_chunk_products`). Block ``(a, a + δ)`` of the Gram of the
     lagged vectors over the pieces' rows ``[r0, r1)`` is the same sum with its window shifted back by ``a``: plus
     the ``a`` terms before ``r0``, minus the ``a`` terms before ``r1`` (the edge terms). Instead of the edge terms
-    (one Gram-sized array per fold),
-    the ``L`` samples before each piece's first row (``starts``, sign +1) and its last ``L`` samples (``ends``, sign
-    −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from these sums
-    alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram.
-    """
+    (one Gram-sized array per fold), the ``L`` samples before each piece's first row (sign +1) and its last ``L``
+    samples (sign −1) are kept, ``L × c`` each: the Gram of any union or difference of folds is then assembled from
+    these sums alone (:func:`_lagged_gram`), so the memory held per fold does not grow with the Gram."""
 
     def __init__(self, c: int, n_lags: int):
         self.n = 0
@@ -334,17 +267,17 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
 
     Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
-    ``X[δ]``; the lower blocks are the transposes. The sum of ``w_k w_kᵀ`` over the rows. With ``index``
-    (shape ``(L + 1, c)``), entry ``(a, i)`` of the lagged vector is written to row ``index[a, i]`` of the result:
-    a permuted Gram made without a second Gram-sized copy. With ``rows = (r0, r1)``, only those rows of it (the
-    same numbers, in ``(r1 − r0) × (L + 1) c`` memory). With ``average_same_lag`` the blocks ``(a, a)`` are
-    averaged with their transposes (:func:`_lagged_gram_rows`). The blocks are written as strided copies over the
-    rectangles of ``index`` (:func:`_index_rectangles`): the same numbers as a scatter, many times faster.
-    """
+    ``X[δ]``; the lower blocks are the transposes. With ``index`` (a permutation, shape ``(L + 1, c)``), entry
+    ``(a, i)`` of the lagged vector is row ``index[a, i]`` of the result, with no second Gram-sized copy; with
+    ``rows = (r0, r1)`` only those rows (the same numbers); with ``average_same_lag`` the blocks ``(a, a)`` are
+    averaged with their transposes. Written as strided copies over the rectangles of ``index``
+    (:func:`_index_rectangles`; short vectors: :data:`_SMALL_ASSEMBLY`)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
-    if index is None and (r0, r1) == (0, Lp1 * c) and Lp1 * c <= _SMALL_ASSEMBLY:
-        return _small_lagged_gram(sums, average_same_lag)
+    order = None if index is None or Lp1 * c > _SMALL_ASSEMBLY else _small_order(np.asarray(index).reshape(-1))
+    if Lp1 * c <= _SMALL_ASSEMBLY and (index is None or order is not None):
+        W = _small_lagged_gram(sums, average_same_lag, None if index is None else np.asarray(index))
+        return W if (r0, r1) == (0, Lp1 * c) else W[r0:r1].copy()
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
     full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
@@ -357,9 +290,9 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     return W
 
 
-#: Whole Grams in lagged order of lagged vectors up to this length are assembled by fancy-indexed copies
-#: (:func:`_small_lagged_gram`); longer ones, permuted ones and row ranges by strided block copies over the
-#: rectangles of the index (a permuting copy would hold a second Gram).
+#: Grams of lagged vectors up to this length are assembled in lagged order by fancy-indexed copies, then permuted
+#: and cut to ``rows`` by one more (:func:`_small_lagged_gram`): the numbers of the strided block copies, without
+#: their per-block Python work. Longer ones by strided copies over the rectangles of the index.
 _SMALL_ASSEMBLY = 1024
 
 
@@ -378,18 +311,33 @@ def _gram_blocks(sums: _LagSums, average_same_lag: bool):
         yield blocks
 
 
-def _small_lagged_gram(sums: _LagSums, average_same_lag: bool) -> np.ndarray:
-    """:func:`_lagged_gram` in lagged order, whole, for short lagged vectors: the blocks of each ``δ`` written by two
-    fancy-indexed copies (the same numbers as the strided block copies, without their per-block Python work, which
-    dominates at this size)."""
+def _small_lagged_gram(sums: _LagSums, average_same_lag: bool, index: np.ndarray | None = None) -> np.ndarray:
+    """:func:`_lagged_gram`, whole, for short lagged vectors: the blocks of each ``δ`` written by two fancy-indexed
+    copies (the same numbers as the strided block copies, without their per-block Python work), in lagged order or
+    straight to the rows and columns of ``index`` (a permutation)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     lags = np.arange(Lp1)
-    G = np.empty((Lp1, c, Lp1, c))
+    G = np.empty((Lp1, c, Lp1, c) if index is None else (Lp1 * c, Lp1 * c))
     for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
-        G[lags[: Lp1 - d], :, lags[d:], :] = blocks
+        if index is None:
+            G[lags[: Lp1 - d], :, lags[d:], :] = blocks
+            if d:
+                G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+            continue
+        r, q = index[: Lp1 - d], index[d:]
+        G[r[:, :, None], q[:, None, :]] = blocks
         if d:
-            G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+            G[q[:, :, None], r[:, None, :]] = blocks.transpose(0, 2, 1)
     return G.reshape(Lp1 * c, Lp1 * c)
+
+
+def _small_order(index: np.ndarray) -> np.ndarray | None:
+    """``order`` with ``order[index[k]] = k``, or None when ``index`` is not a permutation of ``0 … n − 1``."""
+    if index.size and (index.min() < 0 or index.max() >= index.size):
+        return None
+    order = np.full(index.size, -1, dtype=np.intp)
+    order[index] = np.arange(index.size)
+    return order if index.size == 0 or order.min() >= 0 else None
 
 
 @functools.lru_cache(maxsize=64)
@@ -434,6 +382,13 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
                                 with_range=True)
 
 
+#: Multiply-adds of a pass's lag products (rows × lags × channels²) from which it runs on two worker threads even
+#: where the caller limited BLAS to one thread (the fits do, for their factorisations; that limit otherwise sets
+#: the workers): 5e9 at 1 kHz, past 100 / horizon 50, 0.8 s of one core; 8e7 for a fit of the demo, whose passes
+#: run in the calling thread (no hand-offs).
+_TWO_CORE_WORK = 1e9
+
+
 def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None, *,
                      shift=None, with_range: bool = False):
     """One pass over the pieces (rows ``[k0, k1)`` with fold ``f``): the :class:`_LagSums` of each fold.
@@ -462,6 +417,8 @@ def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int
         return _window_task(Z, n_lags, first, last), rng
 
     with _single_threaded_blas() as n_workers:
+        if n_workers < 2 and sum(b - a for a, b, _f in pieces) * (n_lags + 1) * c * c >= _TWO_CORE_WORK:
+            n_workers = min(2, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else 1)
         # _parallel_pass holds at most n_workers unconsumed chunks when it starts the next one, so n_workers + 1
         # buffers suffice; one more is a margin. Buffers are assigned in chunk order, in this thread.
         ring = [np.empty((longest, c)) for _ in range(n_workers + 2)]

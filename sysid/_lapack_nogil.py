@@ -88,3 +88,60 @@ def tpqrt_inplace(R: np.ndarray, B: np.ndarray, l: int, nb: int) -> np.ndarray:
     if info != 0:  # pragma: no cover - only for invalid arguments
         raise np.linalg.LinAlgError(f"LAPACK tpqrt failed (info={info})")
     return R
+
+
+# ------------------------------------------------------------------------------------------------ Cholesky panels
+_CHR = ctypes.c_char_p
+_DPOTRF = scipy_c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
+_DPOCON = scipy_c_function("lapack", "dpocon", _CHR, _INT, _DBL, _INT, _DBL, _DBL, _DBL, _INT, _INT)
+_DTRSM = scipy_c_function("blas", "dtrsm", _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
+_DTRMM = scipy_c_function("blas", "dtrmm", _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
+
+
+def strided_cholesky_calls():
+    """GIL-free LAPACK/BLAS calls on column-major blocks of a larger array (any leading dimension), or None where
+    SciPy's exported functions cannot be had. A namespace of four functions; ``A``, ``B`` are float64 arrays whose
+    memory holds a column-major matrix with leading dimension ``ld`` starting at element ``offset``:
+
+    * ``potrf(A, offset, n, ld) -> info``: lower Cholesky factor of the leading ``n × n`` block, in place;
+    * ``pocon(A, offset, n, ld, norm) -> rcond``: its reciprocal 1-norm condition estimate (``norm = ||G||₁``);
+    * ``trsm(A, a_off, n, lda, B, b_off, m, ldb, trans)``: ``B := B L⁻ᵀ`` (``trans``) or ``B L⁻¹``, ``B`` ``m × n``;
+    * ``trmm(A, a_off, n, lda, B, b_off, m, ldb)``: ``B := B L``, ``L`` the lower triangle of ``A``'s block.
+    """
+    if None in (_DPOTRF, _DPOCON, _DTRSM, _DTRMM):  # pragma: no cover - other SciPy builds
+        return None
+    import types
+
+    def ptr(X, offset):
+        if X.dtype != np.float64:
+            raise ValueError("float64 arrays only")
+        return ctypes.cast(X.ctypes.data + 8 * int(offset), _DBL)
+
+    def ints(*values):
+        return [ctypes.byref(ctypes.c_int(int(v))) for v in values]
+
+    def potrf(A, offset, n, ld):
+        info = ctypes.c_int(0)
+        n_, ld_ = ints(n, ld)
+        _DPOTRF(b"L", n_, ptr(A, offset), ld_, ctypes.byref(info))
+        return info.value
+
+    def pocon(A, offset, n, ld, norm):
+        rcond, info = ctypes.c_double(0.0), ctypes.c_int(0)
+        work, iwork = np.empty(3 * max(n, 1)), np.empty(max(n, 1), dtype=np.intc)
+        n_, ld_ = ints(n, ld)
+        _DPOCON(b"L", n_, ptr(A, offset), ld_, ctypes.byref(ctypes.c_double(norm)), ctypes.byref(rcond),
+                work.ctypes.data_as(_DBL), iwork.ctypes.data_as(_INT), ctypes.byref(info))
+        return rcond.value if info.value == 0 else 0.0
+
+    def trsm(A, a_off, n, lda, B, b_off, m, ldb, trans):
+        m_, n_, lda_, ldb_ = ints(m, n, lda, ldb)
+        _DTRSM(b"R", b"L", b"T" if trans else b"N", b"N", m_, n_, ctypes.byref(ctypes.c_double(1.0)),
+               ptr(A, a_off), lda_, ptr(B, b_off), ldb_)
+
+    def trmm(A, a_off, n, lda, B, b_off, m, ldb):
+        m_, n_, lda_, ldb_ = ints(m, n, lda, ldb)
+        _DTRMM(b"R", b"L", b"N", b"N", m_, n_, ctypes.byref(ctypes.c_double(1.0)), ptr(A, a_off), lda_,
+               ptr(B, b_off), ldb_)
+
+    return types.SimpleNamespace(potrf=potrf, pocon=pocon, trsm=trsm, trmm=trmm)

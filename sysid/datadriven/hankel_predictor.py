@@ -18,6 +18,7 @@ from ..hankel import _one_blas_thread
 from .consistency import choose_consistent, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
+from ._hankel_folds import errors_by_fold, known_first
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
 from .kkt import _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor, _projection_g, _projection_map
 
@@ -256,6 +257,7 @@ class HankelPredictor(_DirectPredictor):
         score = self._score_l1 if l1 else self._score_quadratic
         if self.factor_route_ == "gram" and self.regularizer == "projection":  # total: the folds' sum, factored
             score = functools.partial(self._score_projection_gram, total=getattr(folds, "total", None))
+            score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size), score)
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].n_rows)
         self.data_scale_ = _data_scale(total.factor)
@@ -308,12 +310,15 @@ class HankelPredictor(_DirectPredictor):
             out.append(_validation_error(G, val.factor, weights))
         return out
 
+    def _n_b(self) -> int:
+        return (self.n_inputs_ + self.n_outputs_) * self.past_steps_ + self.n_inputs_ * self.max_horizon_steps_
+
     def _score_projection_gram(self, train, val, weights, lambdas, lam_y, total=None):
         """Held-out errors of the projection predictor on the Gram route: with the training factor ``F`` the
         Cholesky factor of a positive definite, well-conditioned Gram, ``D = [L11 0]`` and the predictor is
         ``G21 G11⁻¹`` for every strength (:func:`~stimsteer.sysid.datadriven.kkt._projection_map`): one error,
         from the Grams, for the whole grid. Elsewhere the KKT route of :meth:`_score_quadratic`."""
-        n_b = (self.n_inputs_ + self.n_outputs_) * self.past_steps_ + self.n_inputs_ * self.max_horizon_steps_
+        n_b = self._n_b()
         err = unregularised_fold_error(train, val, n_b, weights, total)
         if err is None:
             return self._score_quadratic(train, val, weights, lambdas, lam_y)
