@@ -173,8 +173,9 @@ class _PlanLimits:
                    default=-np.inf)
 
     # ------------------------------------------------------------------------------------ the plan's reports
-    def active(self, ctrl, u, y, last):
-        """The binding limits of ``u`` and the outputs at or beyond their soft bounds (``Plan.active_limits``)."""
+    def active(self, ctrl, u, y, last, loads=None):
+        """The binding limits of ``u`` and the outputs at or beyond their soft bounds (``Plan.active_limits``);
+        ``loads``: the window loads of ``u`` when the caller has them."""
         at_lo = (u <= self.lo_tol) & self.lo_neg
         at_hi = (u >= self.hi_tol) & self.hi_pos
         act = {"amplitude_min": at_lo & self.amp_lo, "amplitude_max": at_hi & self.amp_hi,
@@ -183,7 +184,10 @@ class _PlanLimits:
             act["slew"] = self.fin & (self.slew_steps(u, last) >= self.slew_tol)
         else:
             act["slew"] = np.zeros_like(u, dtype=bool)
-        act["energy_budget"] = bool(ctrl._budgets) and self.relative(ctrl, self.energies_of(ctrl, u)) >= -1e-6
+        if ctrl._budgets:
+            act["energy_budget"] = self.relative(ctrl, self.energies_of(ctrl, u) if loads is None else loads) >= -1e-6
+        else:
+            act["energy_budget"] = False
         yv = y.reshape(-1)
         ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
         act["output_bounds"] = ((yv >= ctrl._ymax - ytol) | (yv <= ctrl._ymin + ytol)).reshape(y.shape)
@@ -191,18 +195,27 @@ class _PlanLimits:
 
     def broken(self, ctrl, u, last, broken):
         """Readable lines naming each hard limit ``u`` breaks (only when no sequence can meet them)."""
+        return self.broken_later(ctrl, last, broken, self.energies_of(ctrl, u) if ctrl._budgets else None)()
+
+    def broken_later(self, ctrl, last, broken, loads):
+        """:meth:`broken` as a function of what it reads, captured now (``last``, ``broken`` and ``loads`` must not
+        change afterwards: the plan's own arrays), for a plan field computed at its first read."""
         names, lo, hi, slew = ctrl.input_names_, self.lo, self.hi, self.slew
-        lines = [f"slew on {names[i]} at step 0: the last input {last[i]:g} µA lies more than {slew[i]:g} µA "
-                 f"outside the amplitude window [{lo[i]:g}, {hi[i]:g}] µA" for i in np.flatnonzero(broken)]
-        if not ctrl._budgets:
-            return tuple(lines)
-        loads = self.energies_of(ctrl, u)
-        for b, e in zip(ctrl._budgets, loads):
-            over = float(np.max(e)) - b.budget
-            if b is ctrl._budget and over > 1e-9 * ctrl._energy:
-                lines.append(f"energy_budget: a window of {ctrl.energy_window_steps_} samples holds "
-                             f"{over + ctrl._energy:.4g} µA² > {ctrl._energy:g} µA²")
-            elif b.weighted and over / b.budget > 1e-9:
-                lines.append(f"{b.name}: a window of {b.window} samples holds {over + b.budget:.4g} {b.unit} > "
-                             f"{b.budget:.4g} {b.unit}")
-        return tuple(lines)
+        budgets, main, energy, window = list(ctrl._budgets), ctrl._budget, ctrl._energy, ctrl.energy_window_steps_
+
+        def lines():
+            out = [f"slew on {names[i]} at step 0: the last input {last[i]:g} µA lies more than {slew[i]:g} µA "
+                   f"outside the amplitude window [{lo[i]:g}, {hi[i]:g}] µA" for i in np.flatnonzero(broken)]
+            if not budgets:
+                return tuple(out)
+            for b, e in zip(budgets, loads):
+                over = float(np.max(e)) - b.budget
+                if b is main and over > 1e-9 * energy:
+                    out.append(f"energy_budget: a window of {window} samples holds {over + energy:.4g} µA² > "
+                               f"{energy:g} µA²")
+                elif b.weighted and over / b.budget > 1e-9:
+                    out.append(f"{b.name}: a window of {b.window} samples holds {over + b.budget:.4g} {b.unit} > "
+                               f"{b.budget:.4g} {b.unit}")
+            return tuple(out)
+
+        return lines

@@ -12,13 +12,15 @@ Rawlings J.B., Mayne D.Q., Diehl M.M. (2017), Model Predictive Control: Theory, 
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight
-from .condensed import _CondensedCore, _LinearStateMap, condensed_prediction
+from .condensed import _CondensedCore, _LinearStateMap, _condensed_terms, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
 from ...sysid._lazy import lazy_module
 
@@ -352,6 +354,14 @@ class ModelPredictiveController(_CondensedCore):
     def _predict_outputs(self, u, aux, u_past, y_past):
         _, fy = self._free(u_past, y_past)
         return (self._Gy @ u.reshape(-1) + fy).reshape(self.horizon_steps_, self.n_outputs_)
+
+    def _cost_terms_later(self, u, aux, y, u_past, y_past, target):
+        """With this plan's weighted offsets at hand (its solve's), the terms as a function of them and of the
+        condensed matrices (captured: a refit replaces them), computed at the first read of ``Plan.cost_terms``."""
+        cached = self._offsets_cache
+        if cached is not None and cached[0] is u_past and cached[1] is y_past and cached[2] is target:
+            return partial(_condensed_terms, self._LG, self._Ru, self._LpT, u, cached[3], cached[4])
+        return super()._cost_terms_later(u, aux, y, u_past, y_past, target)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
         cached = self._offsets_cache

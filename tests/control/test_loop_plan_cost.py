@@ -134,3 +134,65 @@ def test_the_budget_sqp_on_its_buffers_is_the_plain_iteration_bit_for_bit():
             assert np.array_equal(g, w)
         n_settled += 1
     assert n_settled == 8
+
+
+@pytest.fixture(scope="module")
+def budgeted_pair():
+    """Two equal controllers (a budget that binds, a soft output bound), and a past to plan from."""
+    from stimsteer.control.limits import StimLimits
+    from stimsteer.control.mpc import ModelPredictiveController
+    from stimsteer.sysid import StateSpaceModel
+
+    rng = np.random.default_rng(4)
+    A = rng.normal(size=(3, 3))
+    A *= 0.8 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(2, 3)), D=np.zeros((2, 2)),
+                            past_steps=3)
+    lim = StimLimits(amplitude_min_ua=[0.0, 0.0], amplitude_max_ua=[2.0, 2.0], slew_max_ua=[0.5, 0.5],
+                     energy_budget_ua2=3.0, energy_window_steps=8, output_max=[0.5, np.inf])
+
+    def make():
+        return ModelPredictiveController(model=model, limits=lim, horizon_steps=6, input_weight=0.05).fit()
+
+    u = rng.uniform(0.0, 0.4, size=(10, 2))
+    return make(), make(), u, model.simulate(u, x0=rng.normal(size=3))
+
+
+def _fields(plan):
+    import dataclasses
+
+    return {f.name: getattr(plan, f.name) for f in dataclasses.fields(plan) if f.name != "solve_time_s"}
+
+
+def _same(a, b):
+    if isinstance(a, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, (tuple, list)):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
+    if isinstance(a, np.ndarray):
+        return np.array_equal(a, b)
+    return a == b
+
+
+def test_plan_reports_read_late_equal_those_read_at_once_and_are_not_computed_before(budgeted_pair, monkeypatch):
+    import pickle
+
+    from stimsteer.control.mpc import condensed, model as model_module
+
+    first, second, u, y = budgeted_pair
+    calls = []
+    real = condensed._condensed_terms
+    monkeypatch.setattr(model_module, "_condensed_terms", lambda *a: calls.append(1) or real(*a))
+    seen = []
+    for target in ([9.0, 9.0], [-9.0, 9.0]):  # an output bound takes slack in the first, the budget binds in the second
+        late = first.reset().plan(u, y, target=target)  # (reset: no warm start, the same numbers from both)
+        assert calls == []  # no cost terms computed until they are read
+        now = _fields(second.reset().plan(u, y, target=target))
+        first.plan(u[::-1].copy(), y[::-1].copy(), target=[0.0, 0.0])  # another plan in between
+        assert _same(_fields(late), now)
+        assert len(calls) == 2  # once per plan, at its first read
+        unread = second.reset().plan(u, y, target=target)
+        assert _same(_fields(pickle.loads(pickle.dumps(unread))), now)
+        calls.clear()
+        seen.append((now["cost_terms"]["output_penalty"] > 0, now["active_limits"]["energy_budget"]))
+    assert seen == [(True, False), (False, True)]
