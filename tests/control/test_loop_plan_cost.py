@@ -196,3 +196,44 @@ def test_plan_reports_read_late_equal_those_read_at_once_and_are_not_computed_be
         calls.clear()
         seen.append((now["cost_terms"]["output_penalty"] > 0, now["active_limits"]["energy_budget"]))
     assert seen == [(True, False), (False, True)]
+
+
+def test_the_steady_centre_is_kept_for_an_equal_target_and_read_only(monkeypatch):
+    from stimsteer.control.mpc.steady import _SteadyTarget
+    from stimsteer.sysid import StateSpaceModel
+
+    rng = np.random.default_rng(8)
+    A = rng.normal(size=(3, 3))
+    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(2, 3)), D=np.zeros((2, 2)),
+                            past_steps=3)
+    kept = _SteadyTarget(model, np.eye(2), 0.1 * np.eye(2), "output", np.eye(3))
+    fresh = _SteadyTarget(model, np.eye(2), 0.1 * np.eye(2), "output", np.eye(3))
+    calls = []
+    real = _SteadyTarget._kkt
+    monkeypatch.setattr(_SteadyTarget, "_kkt", lambda self, r: calls.append(1) or real(self, r))
+    for r in ([1.0, 2.0], [1.0, 2.0], [1.0, 2.0 + 1e-15], [1.0, 2.0]):
+        got = kept.centre(np.array(r))
+        assert np.array_equal(got, fresh._centre(np.array(r))) and not got.flags.writeable
+    assert len(calls) == 3 + 4  # kept: the first, the changed and the one after it; fresh: every call
+
+
+@pytest.mark.parametrize("weight", ["diagonal", "full"])
+def test_the_weighted_offset_is_the_dense_product_bit_for_bit(weight):
+    from stimsteer.control.limits import StimLimits
+    from stimsteer.control.mpc import ModelPredictiveController
+    from stimsteer.sysid import StateSpaceModel
+
+    rng = np.random.default_rng(6)
+    A = rng.normal(size=(3, 3))
+    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
+    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(4, 3)), D=np.zeros((4, 2)),
+                            past_steps=3)
+    W = np.array([1.0, 0.3, 2.5, 0.01]) if weight == "diagonal" else (lambda G: G @ G.T + np.eye(4))(rng.normal(size=(4, 4)))
+    ctrl = ModelPredictiveController(model=model, limits=StimLimits(amplitude_min_ua=[-1.0, -1.0],
+                                     amplitude_max_ua=[1.0, 1.0]), horizon_steps=7, output_weight=W).fit()
+    for scale in (1e-300, 1e-8, 1.0, 1e8):
+        v = scale * rng.normal(size=ctrl._Lz.shape[1])
+        v[::5] = 0.0
+        assert np.array_equal(ctrl._weigh(v), ctrl._Lz @ v)
+    assert (ctrl._Lz_diag is None) == (weight == "full")
