@@ -354,19 +354,19 @@ class _PredictiveController(BaseEstimator):
         loads = self._checks.energies_of(self, u) if self._budgets else None
         reports = _Reports(y, self._ymax, self._ymin, float(self.output_penalty),
                            self._cost_terms_later(u, aux, y, u_past, y_past, target))
-        last = _ro(last)
+        last_ro = _ro(last)
         return Plan(
             inputs=_ro(u), predicted_outputs=_Deferred(partial(_ro, y)), target=_ro(self._target_rows(target)),
             target_kind=self.target_kind_, cost_terms=_Deferred(reports.terms),
             active_limits=self._checks.active(self, u, y, last, loads), output_slack=_Deferred(reports.slack_rows),
-            step_bounds=(_ro(lb), _ro(ub)), last_input=last, solver=solver, status=status,
+            step_bounds=(_ro(lb), _ro(ub)), last_input=last_ro, solver=solver, status=status,
             message=(f"{reason}; returning the safe fallback (towards zero stimulation within the slew limit)"
                      if is_fallback else reason), fallback=is_fallback, solve_time_s=float(elapsed),
             input_names=self.input_names_, output_names=self.output_names_,
             output_bounds=self._checks.output_bounds,
             energy_window_steps=self.energy_window_steps_,
             energy_window_max_ua2=None if self._budget is None else _Deferred(partial(_largest, loads[0])),
-            broken_limits=_Deferred(self._checks.broken_later(self, last, broken, loads)),
+            broken_limits=_Deferred(self._checks.broken_later(self, last_ro, broken, loads)),
         )
 
     def _cost_terms_later(self, u, aux, y, u_past, y_past, target):
