@@ -29,12 +29,21 @@ _BIG = 1e30
 
 
 class _Windows:
-    """Value, Jacobian and Lagrangian curvature of every window of the (unweighted) budgets on stacked inputs."""
+    """Value, Jacobian and Lagrangian curvature of every window of the (unweighted) budgets on stacked inputs.
+
+    The arithmetic of each number is fixed (the SQP's iterates, and the plans of a closed loop, must not change in
+    their last digit); what is not repeated: ``2 / E`` and the windows' masks per budget (once), the ramp of the
+    last step (computed by :meth:`excess`, read again by :meth:`curvature` at the same inputs), and the Jacobian's
+    array (written in place into the caller's buffer, the rows the QP takes).
+    """
 
     def __init__(self, budgets, hists, N: int, m: int):
         self.N, self.m = int(N), int(m)
         self.items = [(b, (b.budget - b.Mh @ np.asarray(h, np.float64)) / b.budget) for b, h in zip(budgets, hists)]
         self.n = sum(b.Mp.shape[0] for b in budgets)
+        # per budget: 2/E and Mp as (k, N, 1) for the Jacobian's product
+        self._consts = [(2.0 / b.budget, b.Mp[:, :, None]) for b, _ in self.items]
+        self._ramps = None  # (u, [(pos, sgn) per budget]) of the last excess
 
     @staticmethod
     def _ramp(b, last):
@@ -42,34 +51,56 @@ class _Windows:
         v = last[b._fin_idx]  # b._ramp_drop: t·slew of the ramp's steps, computed once per budget
         return np.maximum(np.abs(v)[None, :] - b._ramp_drop, 0.0), np.sign(v)
 
-    def excess(self, u):
-        """``g(u) − left`` for every window (relative to its budget), and the Jacobian in ``u`` (n, N·m)."""
+    def values(self, u):
+        """``g(u) − left`` for every window (relative to its budget), without the Jacobian."""
         U = np.asarray(u, np.float64).reshape(self.N, self.m)
-        vals, jacs = [], []
+        vals = []
         for b, left in self.items:
-            k = b.Mp.shape[0]
-            J = (2.0 / b.budget) * (b.Mp[:, :, None] * U[None, :, :])
             g = b.Mp @ np.sum(U**2, axis=1) / b.budget
+            if b.n_tail:
+                pos, _ = self._ramp(b, U[-1])
+                g = g + b.Mr @ np.sum(pos**2, axis=1) / b.budget
+            vals.append(g - left)
+        return vals[0] if len(vals) == 1 else np.concatenate(vals)
+
+    def excess(self, u, out=None):
+        """``g(u) − left`` for every window (relative to its budget), and the Jacobian in ``u`` (n, N·m), written
+        into ``out`` when given (an (n, N·m) C-contiguous array)."""
+        U = np.asarray(u, np.float64).reshape(self.N, self.m)
+        J_all = np.empty((self.n, self.N * self.m)) if out is None else out
+        vals, ramps, i = [], [], 0
+        sq = np.sum(U**2, axis=1)
+        for (b, left), (c, Mp3) in zip(self.items, self._consts):
+            k = b.Mp.shape[0]
+            J = J_all[i:i + k].reshape(k, self.N, self.m)
+            np.multiply(Mp3, U[None, :, :], out=J)
+            J *= c
+            g = b.Mp @ sq / b.budget
             if b.n_tail:
                 pos, sgn = self._ramp(b, U[-1])
                 g = g + b.Mr @ np.sum(pos**2, axis=1) / b.budget
-                J[:, -1, b.fin] += (2.0 / b.budget) * (b.Mr @ (pos * sgn[None, :]))
+                J[:, -1, b.fin] += c * (b.Mr @ (pos * sgn[None, :]))
+                ramps.append(pos)
+            else:
+                ramps.append(None)
             vals.append(g - left)
-            jacs.append(J.reshape(k, -1))
-        return np.concatenate(vals), np.vstack(jacs)
+            i += k
+        self._ramps = (u, ramps)
+        return (vals[0] if len(vals) == 1 else np.concatenate(vals)), J_all
 
     def curvature(self, u, mu):
         """The diagonal of ``Σ_j μ_j ∇²g_j(u)`` (length N·m)."""
         U = np.asarray(u, np.float64).reshape(self.N, self.m)
+        kept = self._ramps if self._ramps is not None and self._ramps[0] is u else None
         d = np.zeros((self.N, self.m))
         i = 0
-        for b, _left in self.items:
+        for j, ((b, _left), (c, _Mp3)) in enumerate(zip(self.items, self._consts)):
             w = mu[i:i + b.Mp.shape[0]]
             i += b.Mp.shape[0]
-            d += (2.0 / b.budget) * (b.Mp.T @ w)[:, None]
+            d += c * (b.Mp.T @ w)[:, None]
             if b.n_tail:
-                pos, _ = self._ramp(b, U[-1])
-                d[-1, b.fin] += (2.0 / b.budget) * ((b.Mr.T @ w) @ (pos > 0).astype(np.float64))
+                pos = kept[1][j] if kept is not None else self._ramp(b, U[-1])[0]
+                d[-1, b.fin] += c * ((b.Mr.T @ w) @ (pos > 0).astype(np.float64))
         return d.reshape(-1)
 
 
@@ -103,24 +134,39 @@ def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0
     H = np.asarray(H, np.float64)
     A = np.zeros((0, H.shape[0])) if A is None else np.asarray(A, np.float64)
     lo, hi = np.clip(lo, -_BIG, _BIG), np.clip(hi, -_BIG, _BIG)
-    n_rows = lo.size
+    n_rows, n_a = lo.size, A.shape[0]
     x = np.asarray(x0, np.float64).copy()
     mu = np.zeros(windows.n) if mu0 is None or np.shape(mu0) != (windows.n,) else np.asarray(mu0, np.float64)
     lam = None
+    # the rows [A; Jx] and bounds of every iteration's QP: A and the fixed bounds written once, the windows' rows
+    # in place (the same numbers as stacking them anew)
+    rows = np.empty((n_a + windows.n, H.shape[0]))
+    rows[:n_a] = A
+    upper = np.concatenate([hi, np.zeros(windows.n)])
+    lower = np.concatenate([lo, np.full(windows.n, -_BIG)])
+    # with u = x the curvature is diagonal: H + diag(d) is H with d on its diagonal, and for H exactly symmetric
+    # (the dense path's, symmetrised at fit) its symmetrisation 0.5·(Hk + Hkᵀ) gives Hk itself, bit for bit
+    plain = Mu is None and np.array_equal(H, H.T)
+    diag = np.arange(H.shape[0]) * (H.shape[0] + 1)
     for _ in range(_MAX_ITER):
         u = x if Mu is None else Mu @ x + (0.0 if cu is None else cu)
-        g, Ju = windows.excess(u)
-        d = windows.curvature(u, mu)
         if Mu is None:
-            Jx, L = Ju, np.diag(d)
+            g, Jx = windows.excess(u, out=rows[n_a:])
         else:
-            Jx, L = Ju @ Mu, (Mu.T * d) @ Mu
-        Hk = H + L
-        rows = np.ascontiguousarray(np.vstack([A, Jx]))
-        upper = np.concatenate([hi, Jx @ x - g])
-        lower = np.concatenate([lo, np.full(windows.n, -_BIG)])
+            g, Ju = windows.excess(u)
+            rows[n_a:] = Jx = Ju @ Mu
+        d = windows.curvature(u, mu)
+        if plain:
+            Hs = H + 0.0  # (the sum's zeros, as H + diag(d) writes them)
+            Hs.flat[diag] += d
+            f = q - d * x  # diag(d) @ x: one nonzero product per row
+        else:
+            L = np.diag(d) if Mu is None else (Mu.T * d) @ Mu
+            Hk = H + L
+            Hs, f = np.ascontiguousarray(0.5 * (Hk + Hk.T)), q - L @ x
+        upper[n_rows:] = Jx @ x - g
         start = None if lam is None else np.concatenate([lam, mu])
-        res = subproblem(np.ascontiguousarray(0.5 * (Hk + Hk.T)), q - L @ x, rows, upper, lower, start)
+        res = subproblem(Hs, f, rows, upper, lower, start)
         if res is None:
             return None
         x_new, all_lam = res
@@ -129,7 +175,7 @@ def solve_budgeted(H, q, A, lo, hi, x0, windows: _Windows, Mu=None, cu=None, mu0
         x = x_new
         if step <= _STEP_TOL * max(1.0, float(np.max(np.abs(x), initial=0.0))):
             u = x if Mu is None else Mu @ x + (0.0 if cu is None else cu)
-            if float(np.max(windows.excess(u)[0], initial=-np.inf)) <= _EXCESS_TOL:
+            if float(np.max(windows.values(u), initial=-np.inf)) <= _EXCESS_TOL:
                 return x, lam, mu
             return None
     return None

@@ -25,6 +25,7 @@ physical terms. The answer is checked and projected in the controller's units.
 from __future__ import annotations
 
 import time
+from functools import partial
 
 import numpy as np
 import scipy.linalg as sla
@@ -36,7 +37,7 @@ from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget
 from ._budget_sqp import fast_budgeted
 from ._cone_solve import ready, solve_compiled
-from .plan import Plan, _ro
+from .plan import Plan, _Deferred, _ro
 from ._verify import _ACCEPT_RTOL, _ZERO_RTOL, _PlanLimits  # noqa: F401 (the tolerances, named here before)
 from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight  # noqa: F401 (robust.py, lifted.py)
 from ...sysid._lazy import lazy_module
@@ -343,27 +344,38 @@ class _PredictiveController(BaseEstimator):
         return self._checks.project(self, u, lb, ub, last, fallback)
 
     def _package(self, u, aux, u_past, y_past, target, last, bounds, solver, status, reason, is_fallback, elapsed):
+        """The :class:`Plan`; the reports a loop does not read are computed at their first read, from values
+        captured here (:mod:`.plan`): the prediction's copy, the cost terms, the output slack, the largest window
+        load and the broken limits."""
         lb, ub, broken = bounds
         y = self._predict_outputs(u, aux, u_past, y_past)
-        slack = np.maximum(0.0, np.maximum(y.reshape(-1) - self._ymax, self._ymin - y.reshape(-1)))
-        terms = self._cost_terms(u, aux, y, u_past, y_past, target)
-        terms["output_penalty"] = float(self.output_penalty) * float(np.sum(slack))
-        terms["total"] = float(sum(terms.values()))
         if status in _ACCEPT.values() and is_fallback:
             status = "failed"
+        loads = self._checks.energies_of(self, u) if self._budgets else None
+        reports = _Reports(y, self._ymax, self._ymin, float(self.output_penalty),
+                           self._cost_terms_later(u, aux, y, u_past, y_past, target))
+        last_ro = _ro(last)
         return Plan(
-            inputs=_ro(u), predicted_outputs=_ro(y), target=_ro(self._target_rows(target)),
-            target_kind=self.target_kind_, cost_terms=terms,
-            active_limits=self._active(u, y, last, lb, ub), output_slack=_ro(slack.reshape(y.shape)),
-            step_bounds=(_ro(lb), _ro(ub)), last_input=_ro(last), solver=solver, status=status,
+            inputs=_ro(u), predicted_outputs=_Deferred(partial(_ro, y)), target=_ro(self._target_rows(target)),
+            target_kind=self.target_kind_, cost_terms=_Deferred(reports.terms),
+            active_limits=self._checks.active(self, u, y, last, loads), output_slack=_Deferred(reports.slack_rows),
+            step_bounds=(_ro(lb), _ro(ub)), last_input=last_ro, solver=solver, status=status,
             message=(f"{reason}; returning the safe fallback (towards zero stimulation within the slew limit)"
                      if is_fallback else reason), fallback=is_fallback, solve_time_s=float(elapsed),
             input_names=self.input_names_, output_names=self.output_names_,
             output_bounds=self._checks.output_bounds,
             energy_window_steps=self.energy_window_steps_,
-            energy_window_max_ua2=None if self._budget is None else self._window_max(u),
-            broken_limits=self._broken(u, last, broken),
+            energy_window_max_ua2=None if self._budget is None else _Deferred(partial(_largest, loads[0])),
+            broken_limits=_Deferred(self._checks.broken_later(self, last_ro, broken, loads)),
         )
+
+    def _cost_terms_later(self, u, aux, y, u_past, y_past, target):
+        """A function giving the plan's cost terms (without the output penalty and total), of values captured now.
+
+        Here they are computed now (a controller's ``_cost_terms`` may read state a later plan changes); a
+        controller whose terms are a function of this plan's own arrays returns that function instead."""
+        terms = self._cost_terms(u, aux, y, u_past, y_past, target)
+        return lambda: dict(terms)
 
     def _set_history(self, u_all):
         """The applied past a plan sees (every budget window and train limit reaches into it) and its loads."""
@@ -379,14 +391,31 @@ class _PredictiveController(BaseEstimator):
         """The largest window load over its budget, as a fraction of the budget, over every budget (-inf: none)."""
         return max((b.relative_excess(u, h) for b, h in zip(self._budgets, self._hists)), default=-np.inf)
 
-    def _window_max(self, u) -> float:
-        """The largest Σ u² of the energy budget's windows for ``u`` (``Plan.energy_window_max_ua2``)."""
-        return float(np.max(self._checks.energies_of(self, u)[0]))
 
-    def _broken(self, u, last, broken):
-        """Readable lines naming each hard limit the returned inputs break (only when no sequence can meet them)."""
-        return self._checks.broken(self, u, last, broken)
 
-    def _active(self, u, y, last, lb, ub):
-        """The binding limits of the returned inputs (``Plan.active_limits``)."""
-        return self._checks.active(self, u, y, last)
+class _Reports:
+    """A plan's output slack and cost terms, computed at the first read of either (from the plan's own arrays)."""
+
+    def __init__(self, y, ymax, ymin, penalty, terms):
+        self._y, self._ymax, self._ymin, self._penalty, self._terms = y, ymax, ymin, penalty, terms
+        self._slack = None
+
+    def _flat_slack(self):
+        if self._slack is None:
+            yv = self._y.reshape(-1)
+            self._slack = np.maximum(0.0, np.maximum(yv - self._ymax, self._ymin - yv))
+        return self._slack
+
+    def slack_rows(self):
+        return _ro(self._flat_slack().reshape(self._y.shape))
+
+    def terms(self):
+        terms = self._terms()
+        terms["output_penalty"] = self._penalty * float(np.sum(self._flat_slack()))
+        terms["total"] = float(sum(terms.values()))
+        return terms
+
+
+def _largest(loads) -> float:
+    """``Plan.energy_window_max_ua2``: the largest load of the energy budget's windows."""
+    return float(np.max(loads))

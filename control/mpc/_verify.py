@@ -74,9 +74,9 @@ class _PlanLimits:
         loop), :func:`~stimsteer.control.sequence_limits.safe_sequence`'s ramp is ``|last| − (k + 1)·slew`` at step
         k, with the products ``(k + 1)·slew`` computed once here.
         """
-        if self.drop is None or np.any((last - self.slew > self.hi) | (last + self.slew < self.lo)):
+        if self.drop is None or ((last - self.slew > self.hi) | (last + self.slew < self.lo)).any():
             return safe_sequence(self.lo, self.hi, self.slew, self.N, last)
-        return np.clip(np.sign(last) * np.maximum(np.abs(last) - self.drop, 0.0), self.lo, self.hi)
+        return (np.sign(last) * np.maximum(np.abs(last) - self.drop, 0.0)).clip(self.lo, self.hi)
 
     # ------------------------------------------------------------------------------------ after the solve
     @staticmethod
@@ -86,28 +86,39 @@ class _PlanLimits:
         seq[0], seq[1:] = last, u
         return np.abs(seq[1:] - seq[:-1])
 
+    def _final_steps(self, u, last):
+        """:meth:`slew_steps` of the returned inputs: computed by the final check, read again by the report of
+        binding limits (the same arrays of the same plan)."""
+        kept = getattr(self, "_steps", None)
+        if kept is not None and kept[0] is u and kept[1] is last:
+            return kept[2]
+        steps = self.slew_steps(u, last)
+        self._steps = (u, last, steps)
+        return steps
+
     def project(self, ctrl, u, lb, ub, last, fallback):
         """:meth:`~._core._PredictiveController._project`: accept, clip, blend into every budget, verify."""
         tol = _ACCEPT_RTOL * ctrl._scale
-        excess = max(float(np.max(lb - u)), float(np.max(u - ub)), 0.0)
+        self._steps = None
+        excess = max(float((lb - u).max()), float((u - ub).max()), 0.0)
         if self.slew is not None:
             d = self.slew_steps(u, last) - self.slew
-            excess = max(excess, float(np.max(d if self.all_fin else d[:, self.fin], initial=0.0)))
+            excess = max(excess, float((d if self.all_fin else d[:, self.fin]).max(initial=0.0)))
         if ctrl._budgets:
             # relative to the budget (a sum over the window), in the amplitude scale of the tolerance
             excess = max(excess, ctrl._budget_excess(u) * ctrl._scale)
-        if not np.all(np.isfinite(u)) or excess > tol:
+        if not np.isfinite(u).all() or excess > tol:
             return None, f"the solver's answer breaks a hard limit by {excess:.3g} (tolerance {tol:.3g})"
-        u = np.clip(u, lb, ub)
+        u = u.clip(lb, ub)
         if self.zero is not None:
             # solver residue near zero stimulation (interior points never reach 0) would count as a train on and
             # as a pulse; below 1e-6 of an input's bound it is delivered as zero, which lowers every load
             u = np.where(np.abs(u) <= self.zero, 0.0, u)
-        if self.slew is not None and np.any(np.abs(u[1:] - u[:-1]) > self.slew):
+        if self.slew is not None and (np.abs(u[1:] - u[:-1]) > self.slew).any():
             u = self._slew_clip(u, lb, ub)
         if ctrl._budgets:
             loads = self.energies(ctrl, u)
-            if not all(np.max(e) <= b.budget * (1.0 - 1e-10) for b, e in zip(ctrl._budgets, loads)):
+            if not all(e.max() <= b.budget * (1.0 - 1e-10) for b, e in zip(ctrl._budgets, loads)):
                 u = blend_all(ctrl._budgets, ctrl._hists, u, fallback)  # (its own first test repeats the one above)
                 loads = self.energies(ctrl, u)
             if self.relative(ctrl, loads) > 1e-9:
@@ -143,9 +154,9 @@ class _PlanLimits:
     def violations(self, ctrl, u, last) -> dict:
         """The nonzero counts of :meth:`StimLimits.violations` for the plan ``u`` after ``last`` (its energy windows
         of ``energy_window_steps_``, the applied past as the sequence limits' history): the same tests."""
-        out = {"amplitude": int(np.sum((u < self.lo) | (u > self.hi) | ~np.isfinite(u)))}
+        out = {"amplitude": int(((u < self.lo) | (u > self.hi) | ~np.isfinite(u)).sum())}
         if self.slew is not None:
-            out["slew"] = int(np.sum(self.slew_steps(u, last) > self.allowed))
+            out["slew"] = int((self._final_steps(u, last) > self.allowed).sum())
         if self.energy is not None:
             out["energy_budget"] = legacy_energy_violations(u, self.energy, _VIOLATION_RTOL, self.energy_window)
         if self.sequence:
@@ -169,40 +180,53 @@ class _PlanLimits:
     @staticmethod
     def relative(ctrl, loads) -> float:
         """The largest window load over its budget as a fraction of it, over every budget (``_budget_excess``)."""
-        return max(((float(np.max(e)) - b.budget) / b.budget for b, e in zip(ctrl._budgets, loads)),
+        return max(((float(e.max()) - b.budget) / b.budget for b, e in zip(ctrl._budgets, loads)),
                    default=-np.inf)
 
     # ------------------------------------------------------------------------------------ the plan's reports
-    def active(self, ctrl, u, y, last):
-        """The binding limits of ``u`` and the outputs at or beyond their soft bounds (``Plan.active_limits``)."""
+    def active(self, ctrl, u, y, last, loads=None):
+        """The binding limits of ``u`` and the outputs at or beyond their soft bounds (``Plan.active_limits``);
+        ``loads``: the window loads of ``u`` when the caller has them."""
         at_lo = (u <= self.lo_tol) & self.lo_neg
         at_hi = (u >= self.hi_tol) & self.hi_pos
         act = {"amplitude_min": at_lo & self.amp_lo, "amplitude_max": at_hi & self.amp_hi,
                "charge_density": (at_lo & self.charge_lo) | (at_hi & self.charge_hi)}
         if self.slew is not None:
-            act["slew"] = self.fin & (self.slew_steps(u, last) >= self.slew_tol)
+            act["slew"] = self.fin & (self._final_steps(u, last) >= self.slew_tol)
         else:
             act["slew"] = np.zeros_like(u, dtype=bool)
-        act["energy_budget"] = bool(ctrl._budgets) and self.relative(ctrl, self.energies_of(ctrl, u)) >= -1e-6
+        if ctrl._budgets:
+            act["energy_budget"] = self.relative(ctrl, self.energies_of(ctrl, u) if loads is None else loads) >= -1e-6
+        else:
+            act["energy_budget"] = False
         yv = y.reshape(-1)
-        ytol = 1e-6 * max(1.0, float(np.max(np.abs(yv), initial=0)))
+        ytol = 1e-6 * max(1.0, float(np.abs(yv).max(initial=0)))
         act["output_bounds"] = ((yv >= ctrl._ymax - ytol) | (yv <= ctrl._ymin + ytol)).reshape(y.shape)
         return act
 
     def broken(self, ctrl, u, last, broken):
         """Readable lines naming each hard limit ``u`` breaks (only when no sequence can meet them)."""
+        return self.broken_later(ctrl, last, broken, self.energies_of(ctrl, u) if ctrl._budgets else None)()
+
+    def broken_later(self, ctrl, last, broken, loads):
+        """:meth:`broken` as a function of what it reads, captured now (``last``, ``broken`` and ``loads`` must not
+        change afterwards: the plan's own arrays), for a plan field computed at its first read."""
         names, lo, hi, slew = ctrl.input_names_, self.lo, self.hi, self.slew
-        lines = [f"slew on {names[i]} at step 0: the last input {last[i]:g} µA lies more than {slew[i]:g} µA "
-                 f"outside the amplitude window [{lo[i]:g}, {hi[i]:g}] µA" for i in np.flatnonzero(broken)]
-        if not ctrl._budgets:
-            return tuple(lines)
-        loads = self.energies_of(ctrl, u)
-        for b, e in zip(ctrl._budgets, loads):
-            over = float(np.max(e)) - b.budget
-            if b is ctrl._budget and over > 1e-9 * ctrl._energy:
-                lines.append(f"energy_budget: a window of {ctrl.energy_window_steps_} samples holds "
-                             f"{over + ctrl._energy:.4g} µA² > {ctrl._energy:g} µA²")
-            elif b.weighted and over / b.budget > 1e-9:
-                lines.append(f"{b.name}: a window of {b.window} samples holds {over + b.budget:.4g} {b.unit} > "
-                             f"{b.budget:.4g} {b.unit}")
-        return tuple(lines)
+        budgets, main, energy, window = list(ctrl._budgets), ctrl._budget, ctrl._energy, ctrl.energy_window_steps_
+
+        def lines():
+            out = [f"slew on {names[i]} at step 0: the last input {last[i]:g} µA lies more than {slew[i]:g} µA "
+                   f"outside the amplitude window [{lo[i]:g}, {hi[i]:g}] µA" for i in np.flatnonzero(broken)]
+            if not budgets:
+                return tuple(out)
+            for b, e in zip(budgets, loads):
+                over = float(np.max(e)) - b.budget
+                if b is main and over > 1e-9 * energy:
+                    out.append(f"energy_budget: a window of {window} samples holds {over + energy:.4g} µA² > "
+                               f"{energy:g} µA²")
+                elif b.weighted and over / b.budget > 1e-9:
+                    out.append(f"{b.name}: a window of {b.window} samples holds {over + b.budget:.4g} {b.unit} > "
+                               f"{b.budget:.4g} {b.unit}")
+            return tuple(out)
+
+        return lines

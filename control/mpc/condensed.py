@@ -209,12 +209,17 @@ class _CondensedCore(_PredictiveController):
         return None
 
     def _condensed_terms(self, u, ew, tw):
-        v = u.reshape(-1)
-        terms = {"tracking": float(np.sum((self._LG @ v + ew) ** 2)),
-                 "input_energy": float(np.sum((self._Ru @ v) ** 2))}
-        if self._LpT is not None:
-            terms["terminal"] = float(np.sum((self._LpT @ v + tw) ** 2))
-        return terms
+        return _condensed_terms(self._LG, self._Ru, self._LpT, u, ew, tw)
+
+
+def _condensed_terms(LG, Ru, LpT, u, ew, tw) -> dict:
+    """The cost terms of the condensed problem at ``u`` for the weighted offsets ``ew``, ``tw`` of its plan (a
+    function of its arguments alone: a plan may compute them at their first read, :mod:`.plan`)."""
+    v = u.reshape(-1)
+    terms = {"tracking": float(np.sum((LG @ v + ew) ** 2)), "input_energy": float(np.sum((Ru @ v) ** 2))}
+    if LpT is not None:
+        terms["terminal"] = float(np.sum((LpT @ v + tw) ** 2))
+    return terms
 
 
 class _LinearStateMap:

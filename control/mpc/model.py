@@ -12,13 +12,15 @@ Rawlings J.B., Mayne D.Q., Diehl M.M. (2017), Model Predictive Control: Theory, 
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight
-from .condensed import _CondensedCore, _LinearStateMap, condensed_prediction
+from .condensed import _CondensedCore, _LinearStateMap, _condensed_terms, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
 from ...sysid._lazy import lazy_module
 
@@ -178,7 +180,7 @@ class ModelPredictiveController(_CondensedCore):
         Lq = _sqrt_weight("state_weight" if state else "output_weight",
                           self.state_weight if state else self.output_weight, n if state else model.n_outputs)
         Lz = sla.block_diag(*[Lq] * N)
-        self._Lz = Lz
+        self._Lz, self._Lz_diag = Lz, False
         self.riccati_, Lp = self._terminal_factor(Lq)
         self._Lp = Lp
         T = None if Lp is None else Gx[(N - 1) * n:]
@@ -332,7 +334,7 @@ class ModelPredictiveController(_CondensedCore):
     def _offsets(self, u_past, y_past, target):
         x0, fy = self._free(u_past, y_past)
         fz, rz = self._tracked(x0, fy, target)
-        ew = self._Lz @ (fz - rz)
+        ew = self._weigh(fz - rz)
         xt = self._x_terminal(target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - xt)
         if self.formulation == "sparse":  # the sparse cvxpy problem takes the state and the weighted target
@@ -340,6 +342,15 @@ class ModelPredictiveController(_CondensedCore):
             self._sparse_values = (x0, self._Lz @ rz_model, None if self._Lp is None else self._Lp @ xt)
         self._offsets_cache = (u_past, y_past, target, ew, tw)
         return ew, tw, fy
+
+    def _weigh(self, v):
+        """``Lz @ v``; for a diagonal ``Lz`` (a weight per output) its diagonal times ``v``: each row's one nonzero
+        product, the same number as the dense product's sum with exact zeros."""
+        d = getattr(self, "_Lz_diag", False)
+        if d is False:  # read off once per fit (a refit builds Lz anew and resets it)
+            L = self._Lz
+            d = self._Lz_diag = np.diag(L).copy() if np.count_nonzero(L - np.diag(np.diag(L))) == 0 else None
+        return self._Lz @ v if d is None else d * v
 
     def _assign(self, offsets):
         if self.formulation == "condensed":
@@ -352,6 +363,14 @@ class ModelPredictiveController(_CondensedCore):
     def _predict_outputs(self, u, aux, u_past, y_past):
         _, fy = self._free(u_past, y_past)
         return (self._Gy @ u.reshape(-1) + fy).reshape(self.horizon_steps_, self.n_outputs_)
+
+    def _cost_terms_later(self, u, aux, y, u_past, y_past, target):
+        """With this plan's weighted offsets at hand (its solve's), the terms as a function of them and of the
+        condensed matrices (captured: a refit replaces them), computed at the first read of ``Plan.cost_terms``."""
+        cached = self._offsets_cache
+        if cached is not None and cached[0] is u_past and cached[1] is y_past and cached[2] is target:
+            return partial(_condensed_terms, self._LG, self._Ru, self._LpT, u, cached[3], cached[4])
+        return super()._cost_terms_later(u, aux, y, u_past, y_past, target)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
         cached = self._offsets_cache

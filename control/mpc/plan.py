@@ -3,11 +3,18 @@
 A plan never leaves the controller as bare arrays: its inputs come with the predicted outputs, the target, the cost
 terms, the binding limits, the step bounds, the solver's status and the caution, so a reader (or a closed loop) can
 judge it without the controller that made it.
+
+Reports computed at their first read. A closed loop reads a plan's inputs, status and binding limits, and a hundred
+plans a second leave the rest unread; so the cost terms, the output slack, the broken limits, the largest window
+load and the read-only copy of the prediction may be handed to :class:`Plan` as :class:`_Deferred` values: a
+function of values the controller captured when it made the plan (never of its later state), called at the first
+read and its answer kept. A reader sees the same field values either way (equality, ``repr``, ``replace``,
+``copy``, ``pickle`` read them too). The inputs and every safety check are never deferred.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import MISSING, dataclass, fields
 
 import numpy as np
 
@@ -140,6 +147,53 @@ class Plan:
             "input_names": list(self.input_names), "output_names": list(self.output_names),
             "caution": self.caution,
         }
+
+
+class _Deferred:
+    """A plan field's value computed at its first read: ``compute()`` takes no argument and depends only on values
+    captured when the plan was made."""
+
+    __slots__ = ("compute",)
+
+    def __init__(self, compute):
+        self.compute = compute
+
+
+class _OnFirstRead:
+    """The data descriptor of a :class:`Plan` field that may hold a :class:`_Deferred` (computed, kept, returned)."""
+
+    def __init__(self, name, default):
+        self.name, self.default = name, default
+
+    def __get__(self, obj, owner=None):
+        if obj is None:
+            if self.default is MISSING:
+                raise AttributeError(self.name)
+            return self.default
+        value = obj.__dict__[self.name]
+        if type(value) is _Deferred:
+            value = value.compute()
+            obj.__dict__[self.name] = value
+        return value
+
+    def __set__(self, obj, value):  # the dataclass's own __init__ (assignment after it raises: the plan is frozen)
+        obj.__dict__[self.name] = value
+
+
+_DEFERRABLE = ("predicted_outputs", "cost_terms", "output_slack", "energy_window_max_ua2", "broken_limits")
+for _f in fields(Plan):
+    if _f.name in _DEFERRABLE:
+        setattr(Plan, _f.name, _OnFirstRead(_f.name, _f.default))
+
+
+def _plan_state(self):
+    """A copy or a pickle holds values, not the functions of deferred fields: every one is computed first."""
+    for name in _DEFERRABLE:
+        getattr(self, name)
+    return dict(self.__dict__)
+
+
+Plan.__getstate__ = _plan_state
 
 
 def _ranges(steps) -> str:
