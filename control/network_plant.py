@@ -246,7 +246,19 @@ class _NetworkPlant:
         """
         u = self._check_input(u)
         self.reset(seed=seed, x0=x0)
-        return self._run(u, return_states=return_states)
+        if self._runs_whole_schedules():
+            return self._run(u, return_states=return_states)
+        y, X = np.empty((u.shape[0], self.n_outputs)), np.empty((u.shape[0] + 1, self.n_states))
+        X[0] = self._x
+        for k in range(u.shape[0]):  # a subclass's own step
+            y[k] = self.step(u[k])
+            X[k + 1] = self._x
+        return (y, X) if return_states else y
+
+    def _runs_whole_schedules(self) -> bool:
+        """Whether a whole schedule may be run at once (:meth:`_run`): the sample-by-sample step is this module's (a
+        subclass with a step of its own is run through it)."""
+        return type(self).step is _NetworkPlant.step
 
     def _run(self, u, rest_at=frozenset(), return_states: bool = False):
         """Run a checked input ``u`` (n_samples, n_inputs) on from the current state, the node state set to rest at

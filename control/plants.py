@@ -178,7 +178,7 @@ def record_session(plant, u, *, trials=None, seed=None, x0=None, trial_start: st
     if starts and not (hasattr(plant, "set_state") and hasattr(plant, "rest_state")):
         raise SessionError("trial_start='rest' needs a plant with rest_state() and set_state(x); use 'continue'.")
     plant.reset(seed=seed, x0=x0)
-    if isinstance(plant, _NetworkPlant):  # the whole schedule at once: the numbers of step, bit for bit
+    if isinstance(plant, _NetworkPlant) and plant._runs_whole_schedules():  # the numbers of step, bit for bit
         y = plant._run(u, rest_at=starts)
     else:
         y = np.empty((u.shape[0], plant.n_outputs))

@@ -109,3 +109,14 @@ def test_a_generator_seed_and_noise_switched_off(plants):
     plant.reset(seed=np.random.default_rng(3))
     assert np.array_equal(y, [plant.step(row) for row in u])
     assert plant.simulate(np.zeros((0, 2))).shape == (0, 3)
+
+
+def test_a_plant_with_a_step_of_its_own_is_recorded_through_it(plants):
+    class Clipped(LinearNetworkPlant):
+        def step(self, u_k):
+            return np.minimum(super().step(u_k), 0.5)
+
+    plant = Clipped(**plants[0].get_params())
+    u = _schedule(300, seed=4)
+    y = np.minimum(_reference(plants[0], u, plant.seed)[0], 0.5)
+    assert np.array_equal(record_session(plant, u).y, y) and np.array_equal(plant.simulate(u), y)
