@@ -213,24 +213,34 @@ def run_closed_loop(controller, plant, *, n_steps, target, seed=None, x0=None, w
     T = controller.past_steps_
     # the inputs a plan sees reach back as far as its energy budget's window (the outputs as far as its predictor's)
     T_u = max(T, (controller.energy_window_steps_ or 1) - 1, getattr(controller, "history_steps_", 0))
-    times, statuses, use = np.empty(n_steps), [], dict.fromkeys(_LIMIT_KEYS, 0)
+    times, statuses, active = np.empty(n_steps), [], []
     n_fallback = 0
     dist = np.full((n_steps, p), np.nan) if hasattr(controller, "disturbance_") else None
+    plan_with, step = controller.plan, plant.step
     for k in range(n_steps):
         now = n_w + k
-        plan = controller.plan(U[max(0, now - T_u):now], Y[max(0, now - T):now], target=window(k),
-                               last_input=U[now - 1], use_fast_path=use_fast_path)
+        plan = plan_with(U[max(0, now - T_u):now], Y[max(0, now - T):now], target=window(k), last_input=U[now - 1],
+                         use_fast_path=use_fast_path)
         U[now] = plan.inputs[0]
-        Y[now] = np.asarray(plant.step(U[now].copy()), np.float64).reshape(p)
-        times[k], n_fallback = plan.solve_time_s, n_fallback + int(plan.fallback)
+        Y[now] = np.asarray(step(U[now].copy()), np.float64).reshape(p)
+        times[k] = plan.solve_time_s
+        n_fallback += plan.fallback
         statuses.append(plan.status)
+        active.append(plan.active_limits)  # counted once the loop has run (_limit_use)
         if dist is not None:
             dist[k] = controller.disturbance_
-        act = plan.active_limits
-        for key in _LIMIT_KEYS[:-1]:
-            use[key] += int(act[key][0].any())
-        use["energy_budget"] += int(act["energy_budget"])
-    return _result(controller, warm, U[n_w:], Y, targets, times, statuses, use, n_fallback, seed, dist)
+    return _result(controller, warm, U[n_w:], Y, targets, times, statuses, _limit_use(active), int(n_fallback),
+                   seed, dist)
+
+
+def _limit_use(active) -> dict:
+    """Plans whose first input is at each hard limit, and plans with a full energy budget window, from each plan's
+    ``active_limits``."""
+    n = len(active)
+    use = {key: int(np.count_nonzero(np.array([a[key][0] for a in active], bool).reshape(n, -1).any(axis=1)))
+           for key in _LIMIT_KEYS[:-1]}
+    use["energy_budget"] = sum(bool(a["energy_budget"]) for a in active)
+    return use
 
 
 def offset_free_wrapper(controller, offset_free):

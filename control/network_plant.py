@@ -18,25 +18,20 @@ _CHUNK = 256  # rows of noise drawn at once; step and simulate consume them row 
 
 
 class _GaussStream:
-    """Standard normal rows of a fixed width, drawn in chunks and handed out one row at a time."""
+    """Standard normal rows of a fixed width, drawn :data:`_CHUNK` rows at a time."""
 
-    __slots__ = ("_rng", "_dim", "_buf", "_i", "_scale")
+    __slots__ = ("_rng", "_dim", "_scale")
 
     def __init__(self, rng: np.random.Generator, dim: int, scale=None):
         self._rng, self._dim, self._scale = rng, dim, scale
-        self._buf = np.empty((0, dim))
-        self._i = 0
 
-    def next(self) -> np.ndarray:
-        """The next row, times ``scale`` when one was given (the same product per element as after the draw)."""
-        if self._i >= self._buf.shape[0]:
-            self._buf = self._rng.standard_normal((_CHUNK, self._dim))
-            if self._scale is not None:
-                self._buf *= self._scale
-            self._i = 0
-        row = self._buf[self._i]
-        self._i += 1
-        return row
+    def block(self) -> np.ndarray:
+        """The next :data:`_CHUNK` rows, times ``scale`` when one was given (the same product per element as
+        scaling each row)."""
+        buf = self._rng.standard_normal((_CHUNK, self._dim))
+        if self._scale is not None:
+            buf *= self._scale
+        return buf
 
 
 # ------------------------------------------------------------------------------------------------ plants
@@ -146,11 +141,35 @@ class _NetworkPlant:
         self._meas = _GaussStream(gens[1], self.n_outputs, self.measurement_noise_std)
         self._walk_stream = _GaussStream(gens[2], self.n_outputs)
         self._phase = gens[3].uniform(0.0, 2.0 * np.pi, self.n_outputs)
-        self._walk = np.zeros(self.n_outputs)
+        self._walk = np.zeros(self.n_outputs)  # the drift walk at the start of the next block
         self._art = np.zeros(self.n_inputs)
-        self._u_prev = np.zeros(self.n_inputs)
+        self._u_prev = [0.0] * self.n_inputs
+        self._i, self._adds, self._procs = _CHUNK, (), None  # the first step starts a block
 
-    def _check_u_k(self, u_k) -> np.ndarray:
+    def _new_block(self) -> None:
+        """The next :data:`_CHUNK` samples' additive output terms (measurement noise, sine drift, the walk before each
+        sample, in the order they are added) and process noise, each computed whole.
+
+        Each element is the same operation on the same numbers as when it was computed sample by sample (the noise
+        streams draw the same chunks; the walk is a running sum, added in sample order), so a run gives the same
+        numbers bit for bit; only the number of calls per sample is smaller.
+        """
+        has, adds = self._has, []
+        if has["measurement"]:
+            adds.append(self._meas.block())
+        if has["sine"]:
+            k = np.arange(self._k, self._k + _CHUNK, dtype=np.float64)[:, None]  # integers, exact in float64
+            adds.append(self.drift_amplitude * np.sin(self._omega * k + self._phase))
+        if has["walk"]:
+            walk = np.cumsum(np.vstack([self._walk, self.drift_step_std * self._walk_stream.block()]), axis=0)
+            adds.append(walk[:-1])
+            self._walk = walk[-1]
+        self._adds = adds
+        self._procs = self._proc.block() if has["process"] else None
+        self._i = 0
+
+    def _checked_u(self, u_k):
+        """``u_k`` as a new float array of shape (n_inputs,) and as a list of floats; SessionError when bad."""
         u = np.array(u_k, dtype=np.float64)  # a copy: the caller may reuse its buffer
         if u.shape != (self.n_inputs,):
             if u.size != self.n_inputs:
@@ -158,9 +177,13 @@ class _NetworkPlant:
                     f"u_k must hold one value per input, shape ({self.n_inputs},); got shape {u.shape}."
                 )
             u = u.reshape(self.n_inputs)
-        if not all(map(math.isfinite, u.tolist())):  # plain floats: a handful of inputs, a live loop's every sample
+        values = u.tolist()
+        if not all(map(math.isfinite, values)):  # plain floats: a handful of inputs, a live loop's every sample
             raise SessionError(f"u_k holds NaN or infinite values: {u}. Give finite amplitudes.")
-        return u
+        return u, values
+
+    def _check_u_k(self, u_k) -> np.ndarray:
+        return self._checked_u(u_k)[0]
 
     def step(self, u_k) -> np.ndarray:
         """Measure the output at the current sample under input ``u_k``, then advance the state one sample.
@@ -177,26 +200,28 @@ class _NetworkPlant:
         """
         if not hasattr(self, "_x"):
             self.reset()
-        u = self._check_u_k(u_k)
+        u, values = self._checked_u(u_k)
+        if self._i == _CHUNK:
+            self._new_block()
+        i = self._i
         y = self._read_out(self._x, u)
-        has = self._has
-        if has["measurement"]:
-            y += self._meas.next()
-        if has["sine"]:
-            y += self.drift_amplitude * np.sin(self._omega * self._k + self._phase)
-        if has["walk"]:
-            y += self._walk
-            self._walk += self.drift_step_std * self._walk_stream.next()
-        if has["artifact"]:
-            self._art *= self._decay
-            onset = (u != 0.0) & (self._u_prev == 0.0)
-            self._art[onset] += u[onset]
-            y += self.artifact_gain @ self._art
+        for rows in self._adds:  # measurement noise, sine drift, walk: in this order, as the recording adds them
+            y += rows[i]
+        if self._has["artifact"]:
+            art = self._art
+            art *= self._decay
+            prev = self._u_prev
+            if 0.0 in prev:  # an onset needs an input that was off (-0.0 counts as off too)
+                onset = [j for j, (v, w) in enumerate(zip(values, prev)) if v != 0.0 and w == 0.0]
+                if onset:
+                    art[onset] += u[onset]
+            y += self.artifact_gain.dot(art)
         x = self._advance(self._x, u)
-        if has["process"]:
-            x += self._proc.next()
+        if self._procs is not None:
+            x += self._procs[i]
         self._x = x
-        self._u_prev = u
+        self._u_prev = values
+        self._i = i + 1
         self._k += 1
         return y
 
@@ -221,13 +246,82 @@ class _NetworkPlant:
         """
         u = self._check_input(u)
         self.reset(seed=seed, x0=x0)
-        y = np.empty((u.shape[0], self.n_outputs))
-        X = np.empty((u.shape[0] + 1, self.n_states))
+        if self._runs_whole_schedules():
+            return self._run(u, return_states=return_states)
+        y, X = np.empty((u.shape[0], self.n_outputs)), np.empty((u.shape[0] + 1, self.n_states))
         X[0] = self._x
-        for k in range(u.shape[0]):
+        for k in range(u.shape[0]):  # a subclass's own step
             y[k] = self.step(u[k])
             X[k + 1] = self._x
         return (y, X) if return_states else y
+
+    def _runs_whole_schedules(self) -> bool:
+        """Whether a whole schedule may be run at once (:meth:`_run`): the sample-by-sample step is this module's (a
+        subclass with a step of its own is run through it)."""
+        return type(self).step is _NetworkPlant.step
+
+    def _run(self, u, rest_at=frozenset(), return_states: bool = False):
+        """Run a checked input ``u`` (n_samples, n_inputs) on from the current state, the node state set to rest at
+        the samples in ``rest_at``: the outputs (and states) :meth:`step` gives sample by sample, bit for bit.
+
+        Only the node state and the artifact move sample by sample (their products are the same matrix-vector
+        products); the output's additive terms are added a block at a time, each element in the same order.
+        """
+        u = np.ascontiguousarray(u, dtype=np.float64)
+        n = u.shape[0]
+        Y = np.empty((n, self.n_outputs))
+        X = np.empty((n + 1, self.n_states)) if return_states else None
+        if X is not None:
+            X[0] = self._x
+        onsets = self._onsets(u) if self._has["artifact"] and n else None
+        k0 = 0
+        while k0 < n:
+            if self._i == _CHUNK:
+                self._new_block()
+            i0 = self._i
+            k1 = min(n, k0 + _CHUNK - i0)
+            Y[k0:k1], art = self._run_states(u, k0, k1, i0, rest_at, onsets, X)
+            for rows in self._adds:  # measurement noise, sine drift, walk: as step adds them
+                Y[k0:k1] += rows[i0:i0 + k1 - k0]
+            if art is not None:
+                Y[k0:k1] += art
+            self._i, self._k = i0 + k1 - k0, self._k + k1 - k0
+            k0 = k1
+        if n:
+            self._u_prev = u[-1].tolist()
+        return (Y, X) if return_states else Y
+
+    def _onsets(self, u) -> dict:
+        """Sample -> the inputs that turn on from zero there (after the last input applied), for :meth:`_run`."""
+        before = np.vstack([np.asarray(self._u_prev, np.float64)[None], u[:-1]])
+        on = (u != 0.0) & (before == 0.0)
+        return {int(k): np.flatnonzero(on[k]) for k in np.flatnonzero(on.any(axis=1))}
+
+    def _run_states(self, u, k0, k1, i0, rest_at, onsets, X):
+        """Samples ``k0:k1`` (rows from ``i0`` of the current block): read-outs, artifact terms (None without) and the
+        node state after each (into ``X`` when given)."""
+        outs, arts = [], ([] if onsets is not None else None)
+        x, procs, read, advance = self._x, self._procs, self._read_out, self._advance
+        art, decay, G = self._art, self._decay, self.artifact_gain
+        for k in range(k0, k1):
+            if k in rest_at:
+                self.set_state(self.rest_state())
+                x = self._x
+            uk = u[k]
+            outs.append(read(x, uk))
+            if arts is not None:
+                art *= decay
+                on = onsets.get(k)
+                if on is not None:
+                    art[on] += uk[on]
+                arts.append(G.dot(art))
+            x = advance(x, uk)
+            if procs is not None:
+                x += procs[i0 + k - k0]
+            if X is not None:
+                X[k + 1] = x
+        self._x = x
+        return outs, arts
 
     def _check_input(self, u) -> np.ndarray:
         return _input_array(u, self.n_inputs)
@@ -312,12 +406,13 @@ class LinearNetworkPlant(_NetworkPlant):
         self.reset()
 
     def _read_out(self, x, u):
+        # ndarray.dot: the same BLAS product as ``@`` (matrix times vector), with half the call's overhead
         if not self._feedthrough:  # D u is zero: the same numbers (up to the sign of a zero) in half the calls
-            return self.C @ x
-        return self.C @ x + self.D @ u
+            return self.C.dot(x)
+        return self.C.dot(x) + self.D.dot(u)
 
     def _advance(self, x, u):
-        return self.A @ x + self.B @ u
+        return self.A.dot(x) + self.B.dot(u)
 
     def to_state_space(self, *, innovation: bool = False) -> StateSpaceModel:
         """The true model of the node dynamics and read-out, without drift and artifacts.

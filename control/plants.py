@@ -44,7 +44,7 @@ import numpy as np
 from ..sysid import FileFormatError, Session, SessionError, StimsteerError
 from ..sysid._files import hdf5_bytes, write_bytes
 from ._plant_params import _input_array, _positive
-from .network_plant import LinearNetworkPlant
+from .network_plant import LinearNetworkPlant, _NetworkPlant
 from .random_networks import random_network
 from .saturating_plant import SaturatingRateNetworkPlant
 
@@ -178,11 +178,14 @@ def record_session(plant, u, *, trials=None, seed=None, x0=None, trial_start: st
     if starts and not (hasattr(plant, "set_state") and hasattr(plant, "rest_state")):
         raise SessionError("trial_start='rest' needs a plant with rest_state() and set_state(x); use 'continue'.")
     plant.reset(seed=seed, x0=x0)
-    y = np.empty((u.shape[0], plant.n_outputs))
-    for k in range(u.shape[0]):
-        if k in starts:
-            plant.set_state(plant.rest_state())
-        y[k] = plant.step(u[k])
+    if isinstance(plant, _NetworkPlant) and plant._runs_whole_schedules():  # the numbers of step, bit for bit
+        y = plant._run(u, rest_at=starts)
+    else:
+        y = np.empty((u.shape[0], plant.n_outputs))
+        for k in range(u.shape[0]):
+            if k in starts:
+                plant.set_state(plant.rest_state())
+            y[k] = plant.step(u[k])
     if resolution is not None:
         y = np.round(y / resolution) * resolution
     units = lambda v, n: (v,) * n if isinstance(v, str) else v  # noqa: E731

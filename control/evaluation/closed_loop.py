@@ -90,6 +90,28 @@ def _channel_index(session, channel) -> int:
     return int(channel)
 
 
+_TRAINING: dict = {}  # (session id, training trials) -> (session, training part, output mean, output std)
+_TRAINING_KEEP = 8  # a bench's splits and training sizes: the tasks of one method after another share them
+
+
+def _training_part(session: Session, train_trials) -> tuple:
+    """The session's training trials as a session, and their outputs' mean and standard deviation (:func:`_output_stats`).
+
+    Kept for the next closed-loop tasks on the same trials (every route and setting of a split): a session's arrays
+    are read-only, and the session is held with its entry, so that its id stays its own.
+    """
+    trials = np.asarray(train_trials)
+    key = (id(session), trials.dtype.str, trials.shape, trials.tobytes())
+    hit = _TRAINING.get(key)
+    if hit is not None and hit[0] is session:
+        return hit[1:]
+    full = session.select_trials(train_trials)
+    if len(_TRAINING) >= _TRAINING_KEEP:
+        _TRAINING.pop(next(iter(_TRAINING)))
+    _TRAINING[key] = entry = (session, full, *_output_stats(full))
+    return entry[1:]
+
+
 def _output_stats(train: Session) -> tuple[np.ndarray, np.ndarray]:
     ys = np.concatenate([train.y[s:e] for s, e in train.segments()])
     std = ys.std(axis=0)
@@ -183,9 +205,8 @@ def steer(predictor, session: Session, train_trials, plant, quality, *, control:
         ``control_s``, ``surrogate`` (``quality``, as given), ``limits``, and ``loop_trace`` with ``keep_traces``.
     """
     cs, H = control, int(horizon_steps)
-    full_train = session.select_trials(train_trials)
+    full_train, mean, std = _training_part(session, train_trials)
     limits = limits if limits is not None else recorded_limits(full_train)
-    mean, std = _output_stats(full_train)
     c = _channel_index(session, cs.target_channel)
     target = _target(cs, mean, std, c, H)
     weight = np.full(session.n_outputs, cs.other_output_weight)

@@ -79,6 +79,9 @@ class DataPredictiveController(_CondensedCore):
     the prediction with ``P [u_past; y_past] + F u + c``.
     """
 
+    # per fit: DeePC's Hessian; per plan (see _free): the free response, the weighted error, the kept outputs
+    _hessian = _free_memo = _ew_memo = _kept_memo = None
+
     def __init__(self, *, predictor, limits, horizon_steps=None, output_weight=1.0, input_weight=1e-3,
                  past_slack_weight=None, output_penalty=1e4, solver="CLARABEL", fast_path=True,
                  solver_options=None):
@@ -128,6 +131,7 @@ class DataPredictiveController(_CondensedCore):
         Lq = _sqrt_weight("output_weight", self.output_weight, p)
         self._Lz = sla.block_diag(*[Lq] * N)
         self._y_off = None
+        self._hessian, self._free_memo, self._ew_memo, self._kept_memo = None, None, None, None
         if method == "spc":
             maps = pred.prediction_maps(self.past_steps_, N)
             self._P, self._c = np.asarray(maps.P, np.float64), np.asarray(maps.c, np.float64)
@@ -239,6 +243,12 @@ class DataPredictiveController(_CondensedCore):
         return None if np.isinf(w) else w
 
     def _deepc_hessian(self):
+        """DeePC's Hessian in ``g`` and ``Lz Yf``, computed once per fit (both fast QPs are built on them)."""
+        if self._hessian is None:
+            self._hessian = self._hessian_of_g()
+        return self._hessian
+
+    def _hessian_of_g(self):
         LY, RU = self._Lz @ self._Yf, self._Ru @ self._Uf
         H = LY.T @ LY + RU.T @ RU
         if self._lam_y is not None:
@@ -277,13 +287,14 @@ class DataPredictiveController(_CondensedCore):
         G_b = A_pinv - G_h @ (H @ A_pinv)
         G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
         Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
+        GH = 2.0 * G_u.T @ H  # (2 G_uᵀ) H, shared by the two products below (evaluated in the same order as before)
         # g = G_h h + G_f b + G_u u with h = LYᵀ r (+ λ_y Ypᵀ y_past): G_h folded into the maps of r and y_past
         self._elim = {
             "G_r": G_h @ LY.T, "G_y": None if hard else G_h @ (self._lam_y * self._Yp.T), "G_f": G_f, "G_u": G_u,
-            "Q_r": Q_h @ LY.T, "Q_f": 2.0 * G_u.T @ H @ G_f,
+            "Q_r": Q_h @ LY.T, "Q_f": GH @ G_f,
             "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "hard": hard,
         }
-        P = 2.0 * G_u.T @ H @ G_u
+        P = GH @ G_u
         self._elim["P"] = 0.5 * (P + P.T)
         rows = self._box_rows(sp.eye(Nm, format="csr"))
         if dense_solver_available() and _positive_definite(self._elim["P"]):  # exact, warm started
@@ -315,6 +326,7 @@ class DataPredictiveController(_CondensedCore):
     def _outputs_kept(self, g) -> bool:
         """Whether the predicted outputs ``Yf g`` keep every output bound (exactly, no tolerance)."""
         y = self._Yf @ g
+        self._kept_memo = (g, y)  # the plan's predicted outputs, should g be the plan's answer (_predict_outputs)
         return bool(np.all(y[self._idx_hi] <= self._ymax[self._idx_hi])
                     and np.all(y[self._idx_lo] >= self._ymin[self._idx_lo]))
 
@@ -349,14 +361,26 @@ class DataPredictiveController(_CondensedCore):
         return target
 
     def _free(self, u_past, y_past):
-        """Free response ``P past + c`` of the linear maps (the outputs with zero future inputs)."""
-        return self._P @ past_vector(u_past, y_past) + self._c
+        """Free response ``P past + c`` of the linear maps (the outputs with zero future inputs).
+
+        Computed once per plan: the steps of one plan (offsets, predicted outputs, cost terms) get the same past
+        windows, the same objects (:meth:`_core._PredictiveController.plan`; each plan slices new ones), and the last
+        windows are held with their answer so their identities stay theirs.
+        """
+        memo = self._free_memo
+        if memo is not None and memo[0] is u_past and memo[1] is y_past:
+            return memo[2]
+        fy = self._P @ past_vector(u_past, y_past) + self._c
+        self._free_memo = (u_past, y_past, fy)
+        return fy
 
     def _offsets(self, u_past, y_past, target):
         r = target.reshape(-1)
         if self.method_ == "spc":
             fy = self._free(u_past, y_past)
-            return self._Lz @ (fy - r), None, fy
+            ew = self._Lz @ (fy - r)
+            self._ew_memo = (u_past, y_past, target, ew)  # for the plan's cost terms (as _free)
+            return ew, None, fy
         eq = np.concatenate([u_past.reshape(-1), np.zeros(self._E.shape[0] - self._Up.shape[0])])
         return eq, y_past.reshape(-1), self._Lz @ r
 
@@ -425,7 +449,8 @@ class DataPredictiveController(_CondensedCore):
         if self.method_ == "spc":
             y = self._free(u_past, y_past) + self._Gy @ u.reshape(-1)
         elif aux is not None:
-            y = self._Yf @ aux
+            memo = self._kept_memo
+            y = memo[1] if memo is not None and memo[0] is aux else self._Yf @ aux  # (as _outputs_kept made it)
         else:  # the predictor takes recorded units; the plan's y_past is centred when it has an offset
             off = 0.0 if self._y_off is None else self._y_off
             return np.asarray(self.predictor_.predict(u_past, y_past + off, u), np.float64).reshape(N, p) - off
@@ -434,8 +459,10 @@ class DataPredictiveController(_CondensedCore):
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
         r = target.reshape(-1)
         if self.method_ == "spc":
-            fy = self._free(u_past, y_past)
-            return self._condensed_terms(u, self._Lz @ (fy - r), None)
+            memo = self._ew_memo
+            if memo is not None and memo[0] is u_past and memo[1] is y_past and memo[2] is target:
+                return self._condensed_terms(u, memo[3], None)
+            return self._condensed_terms(u, self._Lz @ (self._free(u_past, y_past) - r), None)
         terms = {"tracking": float(np.sum((self._Lz @ (y.reshape(-1) - r)) ** 2)),
                  "input_energy": float(np.sum((self._Ru @ u.reshape(-1)) ** 2))}
         if aux is not None:
