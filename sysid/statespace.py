@@ -422,27 +422,37 @@ class StateSpaceModel:
 
         Short horizons go through :meth:`prediction_maps` (one matrix product after building them); when the maps
         would exceed :data:`DENSE_MAP_LIMIT` entries (the future map grows with the square of the horizon, e.g. a
-        free run over a whole trial) each window is predicted by :meth:`predict` instead.
+        free run over a whole trial) the windows are simulated together instead (:meth:`_simulate_many`).
         """
-        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=self.n_inputs, n_outputs=self.n_outputs)
-        W, n_past, H = up.shape[0], up.shape[1], uf.shape[1]
         m, p = self.n_inputs, self.n_outputs
-        if H * p * (H * m + n_past * (m + p)) > DENSE_MAP_LIMIT:
-            out = np.empty((W, H, p))
-            for w in range(W):
-                out[w] = self.predict(up[w], yp[w], uf[w])
-            return out
-        maps = self._cached_maps(n_past, H)
+        up, yp, uf = window_batch(u_past, y_past, u_future, n_inputs=m, n_outputs=p)
+        W, n_past, H = up.shape[0], up.shape[1], uf.shape[1]
         past = np.concatenate([up.reshape(W, -1), yp.reshape(W, -1)], axis=1)
+        if H * p * (H * m + n_past * (m + p)) > DENSE_MAP_LIMIT:
+            return self._simulate_many(past, uf)
+        maps = self._cached_maps(n_past, H)
         y = small_gemms(past, maps.P.T) + small_gemms(uf.reshape(W, -1), maps.F.T)  # one BLAS thread each
         return y.reshape(W, uf.shape[1], self.n_outputs)
 
-    def _cached_maps(self, n_past: int, horizon_steps: int) -> PredictionMaps:
+    def _simulate_many(self, past, uf) -> np.ndarray:
+        """:meth:`predict` of a batch of windows over long horizons (``past`` the stacked past windows, one row
+        each): every state estimated by one product with the :meth:`state_map` (kept per window length), then all
+        windows simulated together, one product of the batch's states per step."""
+        (W, H, _), n, n_past = uf.shape, self.n_states, past.shape[1] // (self.n_inputs + self.n_outputs)
+        x = past @ self._cached_maps(n_past, None).T if n and n_past else np.zeros((W, n))
+        drive, states, A_T = uf @ self.B.T, np.empty((W, H, n)), self.A.T
+        for k in range(H):
+            states[:, k] = x
+            x = x @ A_T + drive[:, k]
+        return states @ self.C.T + uf @ self.D.T
+
+    def _cached_maps(self, n_past: int, horizon_steps: int | None):
         """:meth:`prediction_maps` for :meth:`predict_many`, kept per window shape: scoring calls it batch after
-        batch with the same shapes (a state map and a Toeplitz build each time). Keyed by the matrices' bytes as
-        well, so a model whose arrays were changed in place is not answered from stale maps; a few shapes kept."""
-        key = (int(n_past), int(horizon_steps), b"".join(np.ascontiguousarray(M).tobytes() for M in (
-            self.A, self.B, self.C, self.D, self.K)))
+        batch with the same shapes (a state map and a Toeplitz build each time); ``horizon_steps`` None: the
+        :meth:`state_map` alone. Keyed by the matrices' bytes as well, so a model whose arrays were changed in place
+        is not answered from stale maps; a few shapes kept."""
+        key = (int(n_past), None if horizon_steps is None else int(horizon_steps), b"".join(
+            np.ascontiguousarray(M).tobytes() for M in (self.A, self.B, self.C, self.D, self.K)))
         cache = self.__dict__.get("_maps_cache")
         if cache is None:
             cache = {}
@@ -451,7 +461,8 @@ class StateSpaceModel:
         if maps is None:
             if len(cache) >= 4:
                 cache.clear()
-            maps = cache[key] = self.prediction_maps(n_past, horizon_steps)
+            maps = cache[key] = self.prediction_maps(n_past, horizon_steps) if horizon_steps is not None else \
+                self.state_map(n_past)
         return maps
 
     def impulse_response(self, n_steps: int) -> np.ndarray:

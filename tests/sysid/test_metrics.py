@@ -155,6 +155,67 @@ def test_kstep_uses_predict_many_when_available(rng):
     pd.testing.assert_frame_equal(fast.kstep, slow.kstep, rtol=1e-10)
 
 
+def _maps_only(est, max_horizon=None):
+    """``est`` with its prediction maps but no predict_many: scoring it must go through the maps alone."""
+
+    class _MapsOnly:
+        past_steps_, max_horizon_steps_, has_linear_maps = est.past_steps_, max_horizon, True
+        prediction_maps = staticmethod(est.prediction_maps)
+
+        def predict_many(self, *args):
+            raise AssertionError("a predictor with linear maps is scored by one product of its maps")
+
+        def predict(self, u_past, y_past, u_future):  # only where a test asks it (reference values)
+            return est.predict(u_past, y_past, u_future)
+
+    return _MapsOnly()
+
+
+def test_kstep_of_a_linear_predictor_is_one_product_of_its_maps_per_run(rng):
+    # windows scored through [P F] and the window rows of each run (never predict_many), with a stride and
+    # blanked outputs; the same scores as every window predicted on its own (to rounding)
+    s = exact_session(rng, n_trials=3, length=70)
+    blank = np.ones(s.y.shape[0], dtype=bool)
+    blank[rng.choice(s.y.shape[0], 30, replace=False)] = False
+    s = s.replace(output_mask=blank)
+    est = RidgeArx(output_lags=2, input_lags=2, alphas=[1e-3]).fit(exact_session(rng))
+
+    class _LoopOnly:
+        past_steps_, max_horizon_steps_ = est.past_steps_, None
+        predict = staticmethod(est.predict)
+
+    for stride in (1, 4):
+        fast = kstep_scores(_maps_only(est), s, horizon_steps=5, stride_steps=stride)
+        slow = kstep_scores(_LoopOnly(), s, horizon_steps=5, stride_steps=stride)
+        pd.testing.assert_frame_equal(fast.kstep, slow.kstep, rtol=1e-10)
+        assert fast.n_windows == slow.n_windows
+
+
+def test_window_rows_are_the_stacked_windows_the_maps_multiply(rng):
+    from stimsteer.sysid._windows import window_rows
+    from stimsteer.sysid.protocols import past_vector
+
+    u, y, P, H = rng.standard_normal((40, 2)), rng.standard_normal((40, 3)), 4, 5
+    for rows in (slice(None), slice(3, 29, 5)):
+        got = window_rows(u, y, P, H, rows)
+        starts = range(P, 40 - H + 1)[rows]
+        want = np.stack([np.concatenate([past_vector(u[t - P:t], y[t - P:t]), u[t:t + H].reshape(-1)])
+                         for t in starts])
+        np.testing.assert_array_equal(got, want)
+
+
+def test_window_predictions_refuse_non_finite_samples(rng):
+    from stimsteer.sysid._windows import stacked_maps, window_predictions
+
+    est = RidgeArx(output_lags=1, input_lags=1, alphas=[0.0]).fit(exact_session(rng))
+    u, y = rng.standard_normal((30, 1)), rng.standard_normal((30, 1))
+    y[12] = np.nan
+    maps = stacked_maps(est, est.past_steps_, 3, 1, 1)
+    with pytest.raises(SessionError, match="NaN or infinite"):
+        window_predictions(est, maps, u, y, est.past_steps_, 3, slice(None))
+    assert np.isfinite(window_predictions(est, maps, u, y, est.past_steps_, 3, slice(13, None))).all()
+
+
 class _Limited:
     """The true model, but declared to predict at most 3 steps (as a direct-route predictor would)."""
 
@@ -229,6 +290,22 @@ def test_freerun_in_batches_of_equal_runs_is_each_run_alone(rng, monkeypatch, ba
         assert sc.freerun["r2"].iloc[0] == pytest.approx(r2(yt, yp)[0], rel=1e-10)
         assert sc.freerun["vaf"].iloc[0] == pytest.approx(vaf(yt, yp)[0], rel=1e-10)
         assert sc.freerun["nrmse"].iloc[0] == pytest.approx(nrmse(yt, yp)[0], rel=1e-10)
+
+
+def test_freerun_of_a_limited_linear_predictor_chains_products_of_its_maps(rng):
+    # blocks of 3 steps (the last one shorter) each one product of the block's maps, never predict_many; the same
+    # free run as chaining predict block by block
+    import stimsteer.sysid.metrics as metrics
+
+    s = exact_session(rng, n_trials=2, length=60)
+    y = s.y + 0.2 * rng.standard_normal(s.y.shape)
+    s = s.replace(y=y)
+    est = RidgeArx(output_lags=2, input_lags=1, alphas=[1e-3]).fit(s)
+    fast, slow = _maps_only(est, max_horizon=3), _LimitedOf(est)
+    for a, b in s.segments():
+        np.testing.assert_allclose(metrics._free_run(fast, s.u[a:b], y[a:b], est.past_steps_, 3),
+                                   metrics._free_run(slow, s.u[a:b], y[a:b], est.past_steps_, 3), rtol=1e-10)
+    pd.testing.assert_frame_equal(freerun_scores(fast, s).freerun, freerun_scores(slow, s).freerun, rtol=1e-10)
 
 
 class _LimitedOf:

@@ -212,7 +212,7 @@ def test_predict_many_equals_predict_window_by_window(rng):
         model.predict_many(up[0], yp[0], uf[0])
 
 
-def test_predict_many_over_a_long_horizon_predicts_window_by_window_without_dense_maps(rng):
+def test_predict_many_over_a_long_horizon_simulates_the_windows_together_without_dense_maps(rng, monkeypatch):
     # A free run over a whole trial: the dense future map would hold (H p) x (H m) = 96,000 x 24,000 values (18 GB);
     # predict_many must give predict's answer without building it.
     from stimsteer.sysid.statespace import DENSE_MAP_LIMIT
@@ -223,7 +223,9 @@ def test_predict_many_over_a_long_horizon_predicts_window_by_window_without_dens
     model = StateSpaceModel(A=A, B=rng.standard_normal((n, m)), C=rng.standard_normal((p, n)), past_steps=8)
     assert H * p * H * m > DENSE_MAP_LIMIT
     up, yp, uf = rng.standard_normal((2, 8, m)), rng.standard_normal((2, 8, p)), rng.standard_normal((2, H, m))
-    out = model.predict_many(up, yp, uf)
+    with monkeypatch.context() as mp:  # the windows are simulated together, not predicted one by one
+        mp.setattr(StateSpaceModel, "predict", lambda *a: pytest.fail("predict called window by window"))
+        out = model.predict_many(up, yp, uf)
     for w in range(2):
         np.testing.assert_allclose(out[w], model.predict(up[w], yp[w], uf[w]), rtol=0, atol=1e-12)
 
