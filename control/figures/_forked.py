@@ -65,7 +65,7 @@ class ForkedDrawing:
         self._read = None
 
     def __enter__(self):
-        if self.processes > 1 and _can_fork():
+        if self.processes > 1 and len(self.queue) <= 255 and _can_fork():  # one byte per figure
             self._start()
         return self
 
@@ -74,7 +74,7 @@ class ForkedDrawing:
 
         read, write = os.pipe()
         try:
-            os.write(write, bytes(range(len(self.queue))))  # at most 255 figures: one byte each, within a pipe's room
+            os.write(write, bytes(range(len(self.queue))))  # one byte each, well within a pipe's room
         finally:
             os.close(write)  # no writer left: an empty list reads as its end
         self._read = read
