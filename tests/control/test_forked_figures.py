@@ -69,3 +69,30 @@ def test_an_error_here_stops_the_helpers():
             helpers = [h for h, _conn in drawing.helpers]
             drawing.collect()
     assert helpers and not any(h.is_alive() for h in helpers)
+
+
+def test_a_forked_process_keeps_none_of_the_parents_font_objects():
+    # they read their font file at an offset shared with the parent: drawing in both at once read wrong glyphs
+    from stimsteer.control.figures._fast_agg import FastRenderer
+    from stimsteer.control.figures._forked import png_of
+    from stimsteer.control.figures._glyphs import GlyphSafeFigure
+
+    def ours():
+        fig = GlyphSafeFigure(figsize=(1.2, 0.8), dpi=40, layout="constrained")
+        fig.add_subplot().set_title("shaped once", fontsize=6)
+        return fig
+
+    png_of(ours)
+    assert FastRenderer._shapes
+    ctx = multiprocessing.get_context("fork")
+    receive, send = ctx.Pipe(duplex=False)
+    child = ctx.Process(target=_count_shapes, args=(send,))
+    child.start()
+    assert receive.recv() == 0
+    child.join()
+
+
+def _count_shapes(conn):
+    from stimsteer.control.figures._fast_agg import FastRenderer
+
+    conn.send(len(FastRenderer._shapes))
