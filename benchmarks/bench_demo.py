@@ -8,7 +8,7 @@ with a run made just before or after under the same load.
 
 Run from the repository root::
 
-    .venv/bin/python benchmarks/bench_demo.py [--repeats 1] [--keep DIR] [--bench-parts]
+    .venv/bin/python benchmarks/bench_demo.py [--repeats 1] [--keep DIR] [--bench-parts] [--parts-only]
 
 Each step's CPU time is printed beside its wall time (the process's own and that of its children that ended, so the
 bench step's includes its pool's workers): less sensitive to the load than wall time. ``--bench-parts`` then runs
@@ -139,12 +139,15 @@ def _cpu() -> float:
 
 def bench_parts(n_workers: int = 2) -> dict:
     """The demo's bench step in this process, by parts: ``(wall s, CPU s)`` of the worker pool (with the
-    references when the pool runs them), the assembly of the result, the figures, and the page and tables."""
+    references when the pool runs them), the assembly of the result, the figures drawn one after the other and side
+    by side, the page and tables, and the whole report folder as ``stimsteer bench`` writes it (figures side by side
+    while this process writes the tables and JSON). The sum counts the figures twice (both ways)."""
     import io
     import contextlib
 
     from threadpoolctl import threadpool_limits
 
+    from stimsteer.control.commands.bench import write_bench
     from stimsteer.control.evaluation import BenchSettings, result as result_module, run_bench
     from stimsteer.control.figures import bench as bench_figures
     from stimsteer.control.limits import load_limits
@@ -173,7 +176,9 @@ def bench_parts(n_workers: int = 2) -> dict:
             w0, c0 = time.perf_counter(), _cpu()
             result = run_bench(session, BenchSettings(past_steps=10, horizon_steps=20), plant=plant, limits=limits,
                                n_workers=n_workers, progress=False)
-            figures = timed("figures", bench_figures.report_figures)(result)
+            timed("figures, one after the other (as before s8)", bench_figures.report_figures)(result)
+            figures = timed(f"figures side by side ({n_workers} processes)", bench_figures.report_figures)(
+                result, processes=n_workers)
 
             def page():
                 lines = summarize(result)
@@ -183,7 +188,10 @@ def bench_parts(n_workers: int = 2) -> dict:
                 return results_json(result, lines, run_id), report_html(result, figures, lines, run_id)
 
             timed("page, JSON and tables", page)()
-            parts["bench step (sum)"] = (time.perf_counter() - w0, _cpu() - c0)
+            with tempfile.TemporaryDirectory(prefix="bench_parts_") as tmp:
+                timed(f"the report folder as the bench writes it ({n_workers} processes)", write_bench)(
+                    result, Path(tmp) / "report", processes=n_workers)
+            parts["all of the above (figures and report twice)"] = (time.perf_counter() - w0, _cpu() - c0)
     finally:
         result_module._execute, result_module._result = saved
     return parts
@@ -193,9 +201,9 @@ def _print_parts(n_workers: int) -> None:
     load = os.getloadavg()[0]
     parts = bench_parts(n_workers)
     print(f"\nthe demo's bench step by parts, {n_workers} worker(s), in this process (CPU includes the workers)")
-    print(f"{'part':<48} {'wall s':>8} {'CPU s':>8}")
+    print(f"{'part':<58} {'wall s':>8} {'CPU s':>8}")
     for name, (wall, cpu) in parts.items():
-        print(f"{name:<48} {wall:8.2f} {cpu:8.2f}")
+        print(f"{name:<58} {wall:8.2f} {cpu:8.2f}")
     print(f"1-minute load average {load:.2f} before, {os.getloadavg()[0]:.2f} after")
 
 
@@ -205,6 +213,8 @@ def main(argv=None) -> int:
     parser.add_argument("--keep", metavar="DIR", help="keep the last run's output folder here (must not exist)")
     parser.add_argument("--bench-parts", action="store_true",
                         help="also time the demo's bench step by parts in this process (wall and CPU time)")
+    parser.add_argument("--parts-only", action="store_true",
+                        help="only the bench step by parts (--bench-parts), no demo run")
     parser.add_argument("--no-bytecode-cache", action="store_true",
                         help="run the demo as this environment is set, without compiling the package first")
     args = parser.parse_args(argv)
@@ -215,18 +225,18 @@ def main(argv=None) -> int:
     print(f"{cores} core(s) available; demo data of the repository; Python's bytecode cache {cache}")
     walls = []
     with tempfile.TemporaryDirectory(prefix="bench_demo_") as tmp:
-        for i in range(args.repeats):
+        for i in range(0 if args.parts_only else args.repeats):
             out = Path(tmp) / f"run{i}" / "demo"
             out.parent.mkdir()
             run = _one_run(out, env)
             print(f"\nrun {i + 1} of {args.repeats}")
             _print_run(run)
             walls.append(run["wall"])
-        if args.keep:
+        if args.keep and walls:
             shutil.copytree(out, args.keep)
     if len(walls) > 1:
         print(f"\nend to end over {len(walls)} runs: min {min(walls):.2f} s, max {max(walls):.2f} s")
-    if args.bench_parts:
+    if args.bench_parts or args.parts_only:
         _print_parts(cores)
     return 0
 

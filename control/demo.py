@@ -172,15 +172,17 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
 
     session, plant, limits = (str(demo_file(n)) for n in ("demo_session.h5", "demo_plant.h5", "demo_limits.toml"))
     out = Path(out)
-    demo = load_session(session)
     started = time.perf_counter()
     with atomic_dir(out, force=force) as tmp, threadpool_limits(limits=1):
         (tmp / "inputs").mkdir()
         (tmp / "models").mkdir()
-        _write_pattern(tmp / "inputs" / DEMO_PATTERN_FILE, demo.sample_rate_hz, demo.input_names, demo.input_units)
         steps = list(zip(demo_steps(session, plant, limits, str(tmp)), demo_steps(session, plant, limits, str(out))))
         _import_commands(steps)
         with _Background.start(_BACKGROUND_STEP, steps, run_step, str(tmp), str(out)) as background:
+            # the background step does not read the pattern: it starts first (it is the longest)
+            demo = load_session(session)
+            _write_pattern(tmp / "inputs" / DEMO_PATTERN_FILE, demo.sample_rate_hz, demo.input_names,
+                           demo.input_units)
             for (title, argv), (_, shown_argv) in steps:
                 echo(f"\n== {title}\n$ stimsteer {' '.join(shown_argv)}")
                 if background is not None and argv is background.argv:

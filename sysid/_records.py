@@ -42,14 +42,24 @@ def jsonable(value):
 
 
 def versions(extra: tuple = ()) -> dict:
-    """``{"python": ..., package: version or "not installed"}`` for :data:`CORE_PACKAGES` and ``extra``."""
+    """``{"python": ..., package: version or "not installed"}`` for :data:`CORE_PACKAGES` and ``extra``.
+
+    Each package's version is read from its installed metadata once per process (15 ms for the core packages, and
+    the demo's steps and a benchmark's tasks ask again and again); the caller gets a dict of its own."""
     out = {"python": platform.python_version()}
     for dist in (*CORE_PACKAGES, *extra):
-        try:
-            out[dist] = _metadata.version(dist)
-        except _metadata.PackageNotFoundError:
-            out[dist] = "not installed"
+        found = _VERSIONS.get(dist)
+        if found is None:
+            try:
+                found = _metadata.version(dist)
+            except _metadata.PackageNotFoundError:
+                found = "not installed"
+            _VERSIONS[dist] = found
+        out[dist] = found
     return out
+
+
+_VERSIONS: dict = {}  # package -> version, as read the first time in this process
 
 
 def session_record(source) -> dict:

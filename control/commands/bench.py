@@ -23,7 +23,7 @@ from ...sysid._files import atomic_dir
 from ...sysid._progress import progress_wanted
 from ...sysid.caution import CAUTION
 from ..evaluation import BenchResult, BenchSettings, run_bench
-from ..evaluation.execute import check_scheduler_address
+from ..evaluation.execute import _available_cores, check_scheduler_address
 from ..figures import bench as bench_figures
 from ..limits import load_limits
 from ..plants import load_plant
@@ -84,7 +84,8 @@ def check_out_dir(out_dir, *, force: bool = False) -> Path:
     return path
 
 
-def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: list | None = None) -> dict:
+def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: list | None = None,
+                processes: int | None = None) -> dict:
     """Write the report folder atomically: HTML page, results JSON, CSV tables, PNG figures.
 
     Parameters
@@ -95,6 +96,9 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: lis
     force : bool, default False
     lines : list of str, optional
         The summary (:func:`stimsteer.control.report.summarize` of ``result``) when the caller already has it.
+    processes : int, optional
+        Processes that draw the figures side by side, this one included (default: the available cores); the
+        figures are the same PNGs however many draw them.
 
     Returns
     -------
@@ -106,26 +110,32 @@ def write_bench(result: BenchResult, out_dir, *, force: bool = False, lines: lis
     StimsteerError
         ``result`` is not a BenchResult; ``out_dir`` is a file, or holds another run and ``force`` is False.
     """
+    return _write(result, out_dir, force=force, lines=lines, processes=processes)[0]
+
+
+def _write(result, out_dir, *, force: bool, lines, processes) -> tuple[dict, list]:
+    """:func:`write_bench`, and the summary lines (computed while the figures' helpers draw when not given)."""
     if not isinstance(result, BenchResult):
         raise StimsteerError(f"write_bench needs a BenchResult from run_bench; got {type(result).__name__}.")
     final = check_out_dir(out_dir, force=force)
-    lines = summarize(result) if lines is None else lines
-    figures = bench_figures.report_figures(result)
-    run_id = bench_run_id(result)
     files = {}
-    with atomic_dir(final, force=force) as tmp:
+    processes = _available_cores() if processes is None else processes
+    with bench_figures.drawing(result, processes) as drawing, atomic_dir(final, force=force) as tmp:
+        lines = summarize(result) if lines is None else lines
+        run_id = bench_run_id(result)
         (tmp / "tables").mkdir()
         (tmp / "figures").mkdir()
         for name, table in result.tables().items():
             table.to_csv(tmp / "tables" / f"{name}.csv", index=False)
             files[f"table:{name}"] = final / "tables" / f"{name}.csv"
+        (tmp / RESULTS_FILE).write_text(results_json(result, lines, run_id), encoding="utf-8")
+        figures = drawing.collect()  # this process joins the helpers once its own part is written
         for name, png in figures.items():
             (tmp / "figures" / f"{name}.png").write_bytes(png)
             files[f"figure:{name}"] = final / "figures" / f"{name}.png"
-        (tmp / RESULTS_FILE).write_text(results_json(result, lines, run_id), encoding="utf-8")
         (tmp / REPORT_FILE).write_text(report_html(result, figures, lines, run_id), encoding="utf-8")
     files["report"], files["results"] = final / REPORT_FILE, final / RESULTS_FILE
-    return files
+    return files, lines
 
 
 def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, seed: int = 0, quick: bool = False,
@@ -184,8 +194,7 @@ def bench_files(session_path, out_dir, *, plant_path=None, limits_path=None, see
                   "limits_file": None if limits_path is None else str(limits_path)}
         result = run_bench(session, settings, plant=plant, limits=limits, scheduler=scheduler, n_workers=n_workers,
                            progress=progress, source=source)
-        lines = summarize(result)
-        files = write_bench(result, out_dir, force=force, lines=lines)
+        files, lines = _write(result, out_dir, force=force, lines=None, processes=n_workers)
     return BenchRun(result=result, lines=lines, files=files, notes=(note,) if note else ())
 
 

@@ -134,7 +134,23 @@ def _available_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+class _NoBar:
+    """The progress bar when none is shown: counts nothing, and tqdm is not imported (0.04 s, with asyncio, before
+    the pool's workers start)."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        return None
+
+    def update(self, n: int = 1) -> None:
+        pass
+
+
 def _progress_bar(total: int, enabled: bool):
+    if not enabled:
+        return _NoBar()
     from tqdm.auto import tqdm
 
     return tqdm(total=total, desc="stimsteer bench", unit="task", disable=not enabled, file=sys.stderr,

@@ -19,6 +19,7 @@ steps used here are missing or different, the renderer is matplotlib's own.
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg, get_hinting_flag
@@ -119,6 +120,14 @@ def forget() -> None:
     """Empty the process-wide caches of :class:`FastRenderer` (benchmarks: a fresh process's first figures)."""
     for cache in (FastRenderer._shapes, FastRenderer._bitmaps, FastRenderer._heights, FastRenderer._sizes):
         cache.clear()
+
+
+# The shaped glyphs keep matplotlib's font objects, which read their font file through a Python file object (seek,
+# then read): a forked process shares that file's offset with its parent, and two processes drawing at once read
+# glyphs from the wrong place (FreeType's "too many hints"). Matplotlib empties its own font cache in a forked child
+# for this reason; so do we: a child opens its fonts anew.
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=forget)
 
 
 def _hashable(value):

@@ -7,19 +7,19 @@ backend or ``rcParams``.
 
 from __future__ import annotations
 
-import io
 import textwrap
 
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
+from ._forked import ForkedDrawing
 from ._glyphs import GlyphSafeFigure
 
 from ..evaluation import BenchResult, t_interval
 
-__all__ = ["report_figures", "method_colours", "fig_predictions", "fig_accuracy", "fig_closed_loop", "fig_tradeoff",
-           "fig_sweep", "fig_compute"]
+__all__ = ["report_figures", "figure_makers", "drawing", "method_colours", "fig_predictions", "fig_accuracy",
+           "fig_closed_loop", "fig_tradeoff", "fig_sweep", "fig_compute"]
 
 _ROUTE_SHADES = {"indirect": ["#1d5f99", "#5b9bd5", "#0b3a63"], "direct": ["#c4561b", "#e8a33d", "#8a3510"]}
 _RECORDED = "#222222"
@@ -363,15 +363,8 @@ def fig_compute(result: BenchResult, colours: dict):
     return fig
 
 
-def report_figures(result: BenchResult) -> dict:
-    """The report's figures as PNG bytes, by file stem (only those the result has data for).
-
-    Returns
-    -------
-    dict of str to bytes
-        ``predictions``, ``accuracy_vs_steps``, ``closed_loop``, ``tracking_vs_energy``, ``training_data``,
-        ``noise``, ``horizon``, ``compute_time``, each present when the result holds its data.
-    """
+def figure_makers(result: BenchResult) -> dict:
+    """``name -> make()`` of each figure of the report (``make`` returns the figure, or None without its data)."""
     colours = method_colours(result)
     makers = {
         "predictions": lambda: fig_predictions(result, colours),
@@ -389,12 +382,33 @@ def report_figures(result: BenchResult) -> dict:
     if result.control_withheld:  # a stand-in too poor to compare controllers on: no closed-loop figure either
         makers.pop("closed_loop")
         makers.pop("tracking_vs_energy")
-    out = {}
-    for name, make in makers.items():
-        fig = make()
-        if fig is None:
-            continue
-        buf = io.BytesIO()
-        fig.savefig(buf, format="png")  # one draw: the layout engine runs in it
-        out[name] = buf.getvalue()
-    return out
+    return makers
+
+
+# the figures the longest to draw first (the demo's, measured), so that processes drawing side by side end together
+_DRAW_ORDER = ("closed_loop", "accuracy_vs_steps", "compute_time", "predictions")
+
+
+def drawing(result: BenchResult, processes: int = 1) -> ForkedDrawing:
+    """The report's figures drawn on ``processes`` processes (this one and forked helpers): enter it to start them,
+    do other work, then :meth:`~._forked.ForkedDrawing.collect` returns what :func:`report_figures` returns."""
+    return ForkedDrawing(figure_makers(result), processes, order=_DRAW_ORDER)
+
+
+def report_figures(result: BenchResult, processes: int = 1) -> dict:
+    """The report's figures as PNG bytes, by file stem (only those the result has data for).
+
+    Parameters
+    ----------
+    result : BenchResult
+    processes : int, default 1
+        Processes that draw them side by side (this one and forked helpers); the PNGs are the same.
+
+    Returns
+    -------
+    dict of str to bytes
+        ``predictions``, ``accuracy_vs_steps``, ``closed_loop``, ``tracking_vs_energy``, ``training_data``,
+        ``noise``, ``horizon``, ``compute_time``, each present when the result holds its data.
+    """
+    with drawing(result, processes) as draw:
+        return draw.collect()

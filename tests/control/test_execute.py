@@ -93,3 +93,14 @@ def test_stopping_the_pool_when_a_worker_left_half_a_result_in_the_pipe_does_not
     proc = subprocess.run([sys.executable, "-c", _HALF_MESSAGE], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert proc.stdout.split() == ["stopped", "True"]
+
+
+def test_no_progress_bar_counts_nothing_and_leaves_tqdm_unimported():
+    import subprocess
+    import sys
+
+    code = ("import sys\nfrom stimsteer.control.evaluation.execute import _progress_bar\n"
+            "with _progress_bar(3, False) as bar:\n    bar.update()\n    bar.update()\n"
+            "print('tqdm' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == "False", out.stderr

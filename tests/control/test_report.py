@@ -72,7 +72,7 @@ def test_report_folder_holds_page_tables_and_figures(result, tmp_path):
 
 
 def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result, tmp_path, monkeypatch):
-    monkeypatch.setattr(figures_module, "report_figures", lambda _result: {"one": _PNG})  # figures are not tested here
+    monkeypatch.setattr(figures_module, "figure_makers", lambda _result: {"one": _tiny})  # figures are not tested here
     out = tmp_path / "run"
     write_bench(result, out)
     run_id = json.loads((out / RESULTS_FILE).read_text())["run_id"]
@@ -85,13 +85,23 @@ def test_an_existing_run_is_refused_unless_forced_and_then_replaced_whole(result
         check_out_dir(out / "report.html")
 
 
-def test_a_failure_while_writing_leaves_nothing(result, tmp_path, monkeypatch):
-    def broken(_result):
-        raise RuntimeError("figure failed")
+def _tiny():
+    from matplotlib.figure import Figure
 
-    monkeypatch.setattr(figures_module, "report_figures", broken)
+    return Figure(figsize=(0.5, 0.5), dpi=20)
+
+
+def _broken():
+    raise RuntimeError("figure failed")
+
+
+@pytest.mark.parametrize("processes", [1, 2])
+def test_a_failure_while_writing_leaves_nothing(result, tmp_path, monkeypatch, processes):
+    # drawn side by side, the failing figure is taken by either process: the error reaches the caller either way
+    monkeypatch.setattr(figures_module, "figure_makers",
+                        lambda _result: {"a": _tiny, "broken": _broken, "b": _tiny, "c": _tiny})
     with pytest.raises(RuntimeError, match="figure failed"):
-        write_bench(result, tmp_path / "run")
+        write_bench(result, tmp_path / "run", processes=processes)
     assert list(tmp_path.iterdir()) == []
 
 

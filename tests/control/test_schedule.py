@@ -187,6 +187,23 @@ def test_schedule_file_round_trips_exactly(tmp_path, seed):
     save_schedule(s, path, overwrite=True)
 
 
+def test_schedule_text_is_what_pandas_writes(rng):
+    # the writer formats each distinct value once; the reference is pandas' own CSV writer (DataFrame.to_csv)
+    import io
+
+    import pandas as pd
+
+    from stimsteer.control.schedule_files import _csv_text
+
+    odd = np.array([0.0, -0.0, 1e-5, 1.5e-4, 1e16, 1.234e20, 1.2345678901234568e17, np.nan, np.inf, -np.inf, 0.1,
+                    1 / 3, 100.0, 5e-324, 1.7976931348623157e308, 2.0 ** 53])
+    cols = {"time [s] @ 250 Hz": np.arange(16) / 250, "trial": np.arange(16) - 3, "in:a,b [uA]": odd,
+            'in:c"d [mV]': rng.standard_normal(16), "in:e [uA]": np.tile([0.0, 16.394436, -0.0, 0.0], 4)}
+    text = io.StringIO()
+    pd.DataFrame(cols).to_csv(text, index=False)
+    assert _csv_text(cols) == text.getvalue()
+
+
 def test_a_session_table_is_read_as_its_input_side(tmp_path, rng):
     from stimsteer.sysid.io import save_session
     from stimsteer.sysid.session import Session
