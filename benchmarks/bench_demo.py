@@ -44,7 +44,7 @@ from pathlib import Path
 _DRIVER = r"""
 import json, os, sys, time
 t0 = time.time()
-from stimsteer.control.cli import main
+from stimsteer.control.cli import leave, main
 from stimsteer.control.demo import run_demo
 log, out = sys.argv[1], sys.argv[2]
 def cpu():  # this process and its children that have ended (a step's pool workers are joined when it ends)
@@ -61,6 +61,7 @@ def step(argv):
 with open(log, "a", encoding="utf-8") as fh:
     fh.write(json.dumps({"imports": time.time() - t0}) + "\n")
 run_demo(out, run_step=step, echo=lambda text: None)
+leave(0)  # as the `stimsteer` command ends (cli.run): exit handlers, no module teardown
 """
 
 

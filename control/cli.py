@@ -12,9 +12,11 @@ whole parser is built, for ``--help``): ``stimsteer inspect`` does not import wh
 from __future__ import annotations
 
 import argparse
+import atexit
 import importlib
 import os
 import sys
+import threading
 from pathlib import Path
 
 from ..sysid._claims import _errno_known, _is_temporary_of, os_error_text
@@ -22,7 +24,7 @@ from ..sysid.caution import CAUTION
 from ..sysid.exceptions import StimsteerError
 from .commands._common import claiming, interruptible
 
-__all__ = ["main", "build_parser", "CAUTION"]
+__all__ = ["main", "run", "leave", "build_parser", "CAUTION"]
 
 
 class _Parser(argparse.ArgumentParser):
@@ -151,5 +153,38 @@ def _fail(command: str, message: str, code: int) -> int:
     return code
 
 
+def run() -> None:
+    """The ``stimsteer`` command itself: :func:`main` on the process arguments, then :func:`leave` with its code."""
+    leave(main())
+
+
+def leave(code: int) -> None:
+    """End this process with exit code ``code``, without Python taking its modules apart one by one.
+
+    A command's process holds numpy, SciPy, pandas, matplotlib and, once it has planned, cvxpy. Python's own ending
+    frees each of their objects and modules: 0.5-0.75 s after the demo's work was done and its outputs written, and
+    0.3-0.6 s for these imports alone (measured with ``time.time()`` before the end and ``date`` after it; 2026-12-03,
+    idle 2-core machine). Here the exit handlers still run (``atexit``: logging's flush, multiprocessing's joins,
+    temporary folders) and both standard streams are flushed; then the operating system takes the memory back at once.
+    Outputs are never at stake: every file was written atomically and closed before the command returned. Where a
+    thread that is not a daemon still runs, or a stream cannot be flushed (a closed pipe), Python's ordinary ending
+    is taken instead, as before.
+    """
+    if any(t is not threading.main_thread() and not t.daemon and t.is_alive() for t in threading.enumerate()):
+        sys.exit(code)
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except (OSError, ValueError):  # a reader that went away, a closed stream: Python's ending reports it as before
+        sys.exit(code)
+    atexit._run_exitfuncs()  # what sys.exit would run, in the same order (they are cleared once run)
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except (OSError, ValueError):
+        code = code or 120  # what Python's ending returns when it cannot flush stdout
+    os._exit(code)
+
+
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    run()
