@@ -222,6 +222,21 @@ def _condensed_terms(LG, Ru, LpT, u, ew, tw) -> dict:
     return terms
 
 
+
+def _data_terms(Lz, Ru, u, y, r, g, y_past, Yp, lam_y, lam_g, M) -> dict:
+    """DeePC's cost terms at inputs ``u``, predicted outputs ``y``, stacked target ``r`` and weights ``g`` (None: the
+    predictor's own prediction), past outputs ``y_past`` stacked (used when ``lam_y`` is not None) and the regulariser
+    of ``g`` (``M`` None: ℓ1). A function of its arguments alone: a plan may compute them at their first read."""
+    terms = {"tracking": float(np.sum((Lz @ (y.reshape(-1) - r)) ** 2)),
+             "input_energy": float(np.sum((Ru @ u.reshape(-1)) ** 2))}
+    if g is not None:
+        if lam_y is not None:
+            terms["past_consistency"] = lam_y * float(np.sum((Yp @ g - y_past) ** 2))
+        if lam_g > 0:
+            reg = np.sum(np.abs(g)) if M is None else np.sum((M @ g) ** 2)
+            terms["regularizer"] = lam_g * float(reg)
+    return terms
+
 class _LinearStateMap:
     """The state estimate of a model as the linear map of the past window it is (read off once, then one product).
 

@@ -18,6 +18,7 @@ Favoreel W., De Moor B., Van Overschee P. (1999), SPC: Subspace Predictive Contr
 from __future__ import annotations
 
 from dataclasses import replace as _replace
+from functools import partial
 
 import numpy as np
 import scipy.linalg as sla
@@ -27,7 +28,7 @@ from ...sysid import DataBlocksForm, InvalidParameterError, LinearPredictor, Not
 from ...sysid.protocols import past_vector
 from ._settings import _horizon, _output_target, _sqrt_weight
 from ._cone_solve import LazyProblem
-from .condensed import _CondensedCore
+from .condensed import _CondensedCore, _data_terms
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
 from .plan import Plan, _ro
 from ...sysid._lazy import lazy_module
@@ -457,22 +458,21 @@ class DataPredictiveController(_CondensedCore):
         return y.reshape(N, p)
 
     def _cost_terms(self, u, aux, y, u_past, y_past, target):
-        r = target.reshape(-1)
-        if self.method_ == "spc":
-            memo = self._ew_memo
-            if memo is not None and memo[0] is u_past and memo[1] is y_past and memo[2] is target:
-                return self._condensed_terms(u, memo[3], None)
-            return self._condensed_terms(u, self._Lz @ (self._free(u_past, y_past) - r), None)
-        terms = {"tracking": float(np.sum((self._Lz @ (y.reshape(-1) - r)) ** 2)),
-                 "input_energy": float(np.sum((self._Ru @ u.reshape(-1)) ** 2))}
-        if aux is not None:
-            g = aux
-            if self._lam_y is not None:
-                terms["past_consistency"] = self._lam_y * float(np.sum((self._Yp @ g - y_past.reshape(-1)) ** 2))
-            if self._lam_g > 0:
-                reg = np.sum(np.abs(g)) if self._reg == "l1" else np.sum((self._M @ g) ** 2)
-                terms["regularizer"] = self._lam_g * float(reg)
-        return terms
+        if self.method_ != "spc":
+            return self._cost_terms_later(u, aux, y, u_past, y_past, target)()
+        memo, r = self._ew_memo, target.reshape(-1)
+        if memo is not None and memo[0] is u_past and memo[1] is y_past and memo[2] is target:
+            return self._condensed_terms(u, memo[3], None)
+        return self._condensed_terms(u, self._Lz @ (self._free(u_past, y_past) - r), None)
+
+    def _cost_terms_later(self, u, aux, y, u_past, y_past, target):
+        """DeePC's terms at the first read of ``Plan.cost_terms`` (a quarter of a plan's time, computed at once), of
+        this plan's arrays (copied where a caller may refill them) and of matrices a refit replaces, never changes."""
+        if self.method_ == "spc":  # from its solve's offsets, now
+            return super()._cost_terms_later(u, aux, y, u_past, y_past, target)
+        return partial(_data_terms, self._Lz, self._Ru, u, y, np.array(target, np.float64).reshape(-1),
+                       None if aux is None else np.array(aux, np.float64), np.array(y_past, np.float64).reshape(-1),
+                       self._Yp, self._lam_y, self._lam_g, None if self._reg == "l1" else self._M)
 
 
 def _formulation(predictor) -> str:

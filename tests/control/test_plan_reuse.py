@@ -90,3 +90,27 @@ def test_training_statistics_are_those_of_the_trials_and_kept_per_session(sessio
     assert not np.array_equal(_training_part(session, (1,))[1], mean)
     other = session.replace(y=session.y + 1.0)  # another session: its own statistics
     assert np.allclose(_training_part(other, (0, 2))[1], mean + 1.0)
+
+
+def test_deepc_cost_terms_read_late_are_those_of_the_plan_and_not_computed_before(session, monkeypatch):
+    """DeePC's cost terms are computed at their first read: after the caller refilled its buffers, changed its
+    target array and planned again, they must still be the terms of that plan (its arrays copied)."""
+    from stimsteer.control.mpc import data as data_module
+
+    calls, real = [], data_module._data_terms
+    monkeypatch.setattr(data_module, "_data_terms", lambda *a: calls.append(1) or real(*a))
+    make = _controllers(session)
+    ctrl = make(1)
+    rng = np.random.default_rng(5)
+    U, Y, target = np.empty((6, 2)), np.empty((6, 2)), np.empty(2)  # the caller's buffers, refilled every plan
+    late, now = [], []
+    for k in range(6):
+        U[:] = session.u[150 + 9 * k:156 + 9 * k]
+        Y[:] = session.y[150 + 9 * k:156 + 9 * k] + rng.uniform(-0.05, 0.05, (6, 2))
+        target[:] = [5.5 + 0.5 * k, 1.0]
+        ctrl.reset()
+        late.append(ctrl.plan(U, Y, target=target, last_input=U[-1]))
+        now.append(make(1).plan(U.copy(), Y.copy(), target=target.copy(), last_input=U[-1].copy()).cost_terms)
+    assert len(calls) == len(now)  # only the fresh plans' terms were read, so only they were computed
+    assert [p.cost_terms for p in late] == now
+    assert all("past_consistency" in t or "regularizer" in t for t in now)  # the terms of g were there to compare
