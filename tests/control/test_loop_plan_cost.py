@@ -141,13 +141,9 @@ def budgeted_pair():
     """Two equal controllers (a budget that binds, a soft output bound), and a past to plan from."""
     from stimsteer.control.limits import StimLimits
     from stimsteer.control.mpc import ModelPredictiveController
-    from stimsteer.sysid import StateSpaceModel
 
     rng = np.random.default_rng(4)
-    A = rng.normal(size=(3, 3))
-    A *= 0.8 / np.max(np.abs(np.linalg.eigvals(A)))
-    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(2, 3)), D=np.zeros((2, 2)),
-                            past_steps=3)
+    model = _stable_model(rng, n_outputs=2, radius=0.8)
     lim = StimLimits(amplitude_min_ua=[0.0, 0.0], amplitude_max_ua=[2.0, 2.0], slew_max_ua=[0.5, 0.5],
                      energy_budget_ua2=3.0, energy_window_steps=8, output_max=[0.5, np.inf])
 
@@ -198,15 +194,20 @@ def test_plan_reports_read_late_equal_those_read_at_once_and_are_not_computed_be
     assert seen == [(True, False), (False, True)]
 
 
-def test_the_steady_centre_is_kept_for_an_equal_target_and_read_only(monkeypatch):
-    from stimsteer.control.mpc.steady import _SteadyTarget
+def _stable_model(rng, n_outputs, radius=0.7):
+    """A random 3-state, 2-input model with spectral radius ``radius`` and no direct term."""
     from stimsteer.sysid import StateSpaceModel
 
-    rng = np.random.default_rng(8)
     A = rng.normal(size=(3, 3))
-    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
-    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(2, 3)), D=np.zeros((2, 2)),
-                            past_steps=3)
+    A *= radius / np.max(np.abs(np.linalg.eigvals(A)))
+    return StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(n_outputs, 3)),
+                           D=np.zeros((n_outputs, 2)), past_steps=3)
+
+
+def test_the_steady_centre_is_kept_for_an_equal_target_and_read_only(monkeypatch):
+    from stimsteer.control.mpc.steady import _SteadyTarget
+
+    model = _stable_model(np.random.default_rng(8), n_outputs=2)
     kept = _SteadyTarget(model, np.eye(2), 0.1 * np.eye(2), "output", np.eye(3))
     fresh = _SteadyTarget(model, np.eye(2), 0.1 * np.eye(2), "output", np.eye(3))
     calls = []
@@ -222,13 +223,9 @@ def test_the_steady_centre_is_kept_for_an_equal_target_and_read_only(monkeypatch
 def test_the_weighted_offset_is_the_dense_product_bit_for_bit(weight):
     from stimsteer.control.limits import StimLimits
     from stimsteer.control.mpc import ModelPredictiveController
-    from stimsteer.sysid import StateSpaceModel
 
     rng = np.random.default_rng(6)
-    A = rng.normal(size=(3, 3))
-    A *= 0.7 / np.max(np.abs(np.linalg.eigvals(A)))
-    model = StateSpaceModel(A=A, B=rng.normal(size=(3, 2)), C=rng.normal(size=(4, 3)), D=np.zeros((4, 2)),
-                            past_steps=3)
+    model = _stable_model(rng, n_outputs=4)
     W = np.array([1.0, 0.3, 2.5, 0.01]) if weight == "diagonal" else (lambda G: G @ G.T + np.eye(4))(rng.normal(size=(4, 4)))
     ctrl = ModelPredictiveController(model=model, limits=StimLimits(amplitude_min_ua=[-1.0, -1.0],
                                      amplitude_max_ua=[1.0, 1.0]), horizon_steps=7, output_weight=W).fit()
