@@ -1,5 +1,8 @@
 """Figures drawn side by side on forked helpers (control/figures/_forked.py): the same PNGs as drawn in one process,
-every figure once, and failures of a helper fall back to the calling process."""
+every figure once, and failures of a helper fall back to the calling process.
+
+Reference: the same figures drawn one after another in one process, byte for byte (no outside source: the
+forked drawing must not change a pixel)."""
 
 import multiprocessing
 import os

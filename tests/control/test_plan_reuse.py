@@ -1,6 +1,8 @@
 """What a closed loop computes once and reuses: a data controller's per-plan products (free response, weighted
 error, predicted outputs), the runner's count of the limits at work, the bench's training statistics. Each reused
-value must be the one computed afresh, whatever was planned before and however the caller reuses its buffers."""
+value must be the one computed afresh, whatever was planned before and however the caller reuses its buffers.
+
+Reference: a fresh controller planning from copies of the same arrays (common practice, no source)."""
 
 import numpy as np
 import pytest
