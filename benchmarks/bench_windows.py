@@ -12,7 +12,9 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    Hankel predictor, each with its default settings and grids, at past 10 / horizon 20 and past 100 / horizon 50;
 2. the reference: one lagged Gram of the raw data with the same lag count (``past + horizon`` lags; ``past`` for
    ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, one BLAS thread): the
-   products any exact Gram of the lagged data must compute;
+   products any exact Gram of the lagged data must compute; beside it, one Cholesky factor of that ``n × n`` Gram
+   (one and two BLAS threads): what a ridge fit that factors its Gram even once cannot go below (a cross-validated
+   fit factors one Gram-sized matrix per fold and strength, or eigendecomposes one per fold);
 3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50);
 4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
    horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 3 sites, same trials), and the slope
@@ -27,7 +29,11 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    one dense product of the same size (``gemm``, ``2 n³`` flops) and one strength of the per-strength alternative
    (Cholesky factor of ``G11 + s I``, two triangular solves and one triangular product with ``pN`` right-hand
    sides: what scoring one strength of a fold needs without eigenvectors), projected to the fit's 3 folds × 9
-   strengths.
+   strengths;
+6. the least-squares predictor's grids by both routes (``--spc-grids``, at ``--spc-window``): every fold's held-out
+   errors on the fit's own folds, fold by fold (one Cholesky factor per strength, two strengths side by side) and
+   with the folds side by side (two by their eigendecomposition, one per core; the third by strength), each in
+   fresh processes, alternating, twice: wall, CPU, peak memory and the errors' agreement.
 
 Every row carries the 1-minute load average when it was printed (timings on a busy machine are slower and noisier),
 and each fit its CPU time (all threads): on a busy machine the wall time mostly measures the others' load, while the
@@ -41,6 +47,7 @@ Usage::
     python benchmarks/bench_windows.py --windows 10:20 --methods lsq hankel --timeout 300
     python benchmarks/bench_windows.py --windows --growth      # the cost growth only
     python benchmarks/bench_windows.py --windows --spc-kernels # the least-squares predictor's kernels only
+    python benchmarks/bench_windows.py --windows --spc-grids --spc-window 50:25  # its grids by both routes
 """
 
 from __future__ import annotations
@@ -131,7 +138,35 @@ def child_gram(path: str, n_lags: int) -> dict:
     # reference was killed after 400 s at 150 lags under load 11); on an idle one it gains little at c = 23.
     with threadpool_limits(limits=1, user_api="blas"):
         best = min(products() for _ in range(2))
-    return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0}
+    return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0,
+            **_cholesky_seconds(X)}
+
+
+def _cholesky_seconds(X) -> dict:
+    """Seconds of one Cholesky factor of the ``n × n`` lagged Gram (``n = lags × channels``, its blocks ``X[i - j]``
+    placed block-Toeplitz, plus ``tr/n`` on the diagonal so it is definite), best of two, on one and on two BLAS
+    threads: what a ridge fit that factors its Gram once cannot go below, next to the Gram's products."""
+    import numpy as np
+    import scipy.linalg as sla
+    from threadpoolctl import threadpool_limits
+
+    n_lags, c, _c = X.shape
+    G = np.empty((n_lags * c, n_lags * c))
+    for i in range(n_lags):
+        for j in range(n_lags):
+            G[i * c:(i + 1) * c, j * c:(j + 1) * c] = X[i - j] if i >= j else X[j - i].T
+    G[np.diag_indices_from(G)] += np.trace(G) / G.shape[0]
+    out = {"n": int(G.shape[0])}
+    for threads in (1, 2):
+        with threadpool_limits(limits=threads, user_api="blas"):
+            times = []
+            for _ in range(2):
+                K = np.array(G, order="F")
+                t0 = time.perf_counter()
+                sla.cholesky(K, lower=True, overwrite_a=True, check_finite=False)
+                times.append(time.perf_counter() - t0)
+        out[f"cholesky_{threads}t_s"] = min(times)
+    return out
 
 
 def child_spc_kernels(path: str, past: int, horizon: int) -> dict:
@@ -178,6 +213,55 @@ def child_spc_kernels(path: str, past: int, horizon: int) -> dict:
     return out
 
 
+def child_spc_grid(path: str, past: int, horizon: int, route: str) -> dict:
+    """The least-squares predictor's cross-validation grids (every fold, every strength) on the fit's own folds,
+    by ``route``: ``"fold"`` (fold by fold, one Cholesky factor per strength, two strengths side by side) or
+    ``"side"`` (the folds side by side: two by their eigendecomposition, one per core, the rest by strength).
+    Wall and CPU seconds of the grids alone, the peak resident memory and its rise during them, and the errors."""
+    from stimsteer.sysid import load_session
+    from stimsteer.sysid._blas_threads import blas_threads
+    from stimsteer.sysid.datadriven import gram
+    from stimsteer.sysid.datadriven.lsq import LsqPredictor, _DEFAULT_ALPHAS
+
+    gram.FOLDS_SIDE_BY_SIDE = route == "side"
+    est = LsqPredictor(past_steps=past, horizon_steps=horizon)
+    folds, weights = est._gather(load_session(path), len(_DEFAULT_ALPHAS), keep_full=False)
+    n_b = (est.n_inputs_ + est.n_outputs_) * past + est.n_inputs_ * horizon
+    total = folds.total
+    rss0 = _status("VmRSS")
+    with blas_threads(1):  # as in the fit (``_one_blas_thread``)
+        c0, t0 = time.process_time(), time.perf_counter()
+        errors = [gram.ridge_grid_errors(total.plus(f, -1.0), f, n_b, _DEFAULT_ALPHAS, weights, total).tolist()
+                  for f in folds]
+        seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
+    return {"seconds": seconds, "cpu_s": cpu, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0,
+            "errors": errors, "n_b": n_b, "load": _load()}
+
+
+def spc_grid_table(path: str, window: str, timeout: float, repeat: int = 2) -> None:
+    """Both routes of the least-squares predictor's grids, alternating in fresh processes, and their agreement."""
+    import numpy as np
+
+    past, horizon = (int(v) for v in window.split(":"))
+    print(f"| SPC grids at {past} / {horizon}, 3 folds x 9 strengths | wall | CPU | peak (rise) | load |")
+    print("| --- | --- | --- | --- | --- |")
+    got = {}
+    for _ in range(repeat):
+        for route, label in (("fold", "fold by fold, by strength"), ("side", "folds side by side (eigen x 2)")):
+            r = run_child(["spc-grid", path, past, horizon, route], timeout)
+            if "errors" not in r:
+                print(f"| {label} | {_fmt(r)} | | | |")
+                continue
+            got[route] = np.asarray(r["errors"])
+            print(f"| {label} (n_b {r['n_b']}) | {r['seconds']:.2f} s | {r['cpu_s']:.2f} s | {r['peak_mb']:.0f} MB "
+                  f"(+{r['rise_mb']:.0f}) | {r['load']:.1f} |", flush=True)
+    if len(got) == 2:
+        a, b = got["fold"], got["side"]
+        print(f"# largest relative difference of the held-out errors {np.abs(b / a - 1).max():.2e}; "
+              f"chosen strength per fold {a.argmin(axis=1).tolist()} / {b.argmin(axis=1).tolist()}; "
+              f"pooled {int(a.sum(axis=0).argmin())} / {int(b.sum(axis=0).argmin())}")
+
+
 def spc_kernel_table(path: str, window: str, timeout: float) -> None:
     """The least-squares predictor's kernels (one fold, one BLAS thread), and the two routes' projected costs."""
     past, horizon = (int(v) for v in window.split(":"))
@@ -218,6 +302,8 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
         f", {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
     if ref and "seconds" in ref:
         text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
+    if "cholesky_1t_s" in r:  # the Gram reference: one Cholesky factor of its size beside it
+        text += f"; one {r['n']} x {r['n']} Cholesky {r['cholesky_1t_s']:.2f} s (two threads {r['cholesky_2t_s']:.2f} s)"
     if "route" in r:
         text += f" ({r['route']})"
     return text
@@ -292,13 +378,16 @@ def main(argv=None) -> int:
     ap.add_argument("--growth-past", nargs="+", type=int, default=[25, 50, 100, 200])
     ap.add_argument("--growth-contacts", type=int, default=8, help="recorded channels of the growth session")
     ap.add_argument("--spc-kernels", action="store_true", help="also time the least-squares predictor's kernels")
-    ap.add_argument("--spc-window", default="100:50", help="past:horizon of --spc-kernels")
+    ap.add_argument("--spc-window", default="100:50", help="past:horizon of --spc-kernels and --spc-grids")
+    ap.add_argument("--spc-grids", action="store_true",
+                    help="also time the least-squares predictor's grids by both routes (fresh processes, alternating)")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         kind, path, *rest = args.child
         out = child_gram(path, int(rest[0])) if kind == "gram" else \
             child_spc_kernels(path, int(rest[0]), int(rest[1])) if kind == "spc-kernels" else \
+            child_spc_grid(path, int(rest[0]), int(rest[1]), rest[2]) if kind == "spc-grid" else \
             child_fit(path, kind, int(rest[0]), int(rest[1]))
         print(json.dumps(out))
         return 0
@@ -306,7 +395,7 @@ def main(argv=None) -> int:
     from stimsteer.sysid.io import save_session
 
     with tempfile.TemporaryDirectory() as tmp:
-        if args.windows or args.spc_kernels:
+        if args.windows or args.spc_kernels or args.spc_grids:
             path = str(Path(tmp) / "session.h5")
             session = make_session(args.seed)
             save_session(session, path)
@@ -316,6 +405,8 @@ def main(argv=None) -> int:
                 window_table(path, args.windows, args.methods, args.timeout)
             if args.spc_kernels:
                 spc_kernel_table(path, args.spc_window, args.timeout)
+            if args.spc_grids:
+                spc_grid_table(path, args.spc_window, args.timeout)
         if args.growth:
             path = str(Path(tmp) / "growth.h5")
             # 3 sites: the demo's stimulation file describes three, and make_demo refuses fewer

@@ -10,9 +10,11 @@ For a training Gram ``[G11 G12; G21 G22]`` and a strength ``s``, ``K = G11 + s I
 (from ``G12v = Ct L21ᵀ − G12``, ``G11v = Ct Ctᵀ − K + s I`` and ``Yᵀ K Y = Wᵀ W``). Per strength: one Cholesky
 factor (``n³/3`` flops), two triangular solves and one triangular product with ``pN`` right-hand sides
 (``n² pN`` each). Against one eigendecomposition per fold for the whole grid this is about the same CPU at
-``n`` = 2,450, ``pN`` = 1,000 and 9 strengths, but it comes in independent pieces: two strengths run side by side
-on the machine's two cores, each with one BLAS thread (so nothing spins on a busy machine), while the eigenvalue
-routine (``syevd``) runs on one core only (its tridiagonal reduction is memory-bound matrix-vector work).
+``n`` = 2,450, ``pN`` = 1,000 and 9 strengths (5 % more, measured on the fit's folds at load ~10), but it comes in
+independent pieces: two strengths run side by side on the machine's two cores, each with one BLAS thread (so
+nothing spins on a busy machine), while the eigenvalue routine runs on one core only (its tridiagonal reduction is
+memory-bound matrix-vector work); two folds' eigendecompositions side by side need 100 MB more memory there
+(``_eigen_folds``, taken on mid-sized Grams).
 Memory: one ``n × n`` and one ``n × pN`` array per strength in flight.
 
 The LAPACK/BLAS calls go through SciPy's exported C functions (``scipy.linalg.cython_lapack`` /

@@ -29,6 +29,7 @@ import scipy.linalg as sla
 
 from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
+from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import strength_errors
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
@@ -89,6 +90,8 @@ class _GramFold:
     """
 
     full: list = []
+    #: The folds a total was summed from (:func:`total_fold`; empty for any other fold).
+    parts: tuple = ()
 
     @property
     def n_rows(self) -> int:
@@ -207,10 +210,12 @@ def collect_gram(source, pieces, n_folds: int, m: int, p: int, past: int, horizo
 
 
 def total_fold(folds) -> "_GramFold":
-    """The sum of the folds."""
+    """The sum of the folds (which knows them, :attr:`_GramFold.parts`, where there are two or more)."""
     out = folds[0]
     for f in folds[1:]:
         out = out.plus(f)
+    if len(folds) > 1:
+        out.parts = tuple(folds)
     return out
 
 
@@ -229,6 +234,10 @@ TOTAL_FACTOR_ROWS = 512
 #: fold's ``syevd`` plus ~1.5 s of its products, so ~20 % more CPU, but in pieces that keep both cores busy, where
 #: ``syevd`` runs on one (benchmarks/README.md, s6-spc). The held-out errors agree with the eigen route's to ~1e-12.
 BY_STRENGTH = True
+#: Score the large folds' grids together at the first fold's call (:mod:`._eigen_folds`): two folds by their own
+#: eigendecomposition side by side (one core each), any other by strength on both (:data:`BY_STRENGTH`'s route),
+#: where their arrays fit ``_eigen_folds.MAX_BYTES`` (mid-sized Grams; measured there). False: fold by fold.
+FOLDS_SIDE_BY_SIDE = True
 #: Strengths scored at once (the machine's two cores; each worker holds one n × n and one n × pN array).
 STRENGTH_WORKERS = 2
 
@@ -256,6 +265,11 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     scale = float(train.gram_diagonal().sum()) / train.n_rows
     release_freed_memory()  # the previous fold's arrays, before this fold's peak
     F = _total_factor(total, n_b)
+    if F is not None and FOLDS_SIDE_BY_SIDE:
+        errors = _folds_side_by_side(total, val, n_b, alphas, weights,
+                                        lambda t, v, s: _grid_by_strength(t, v, n_b, s, weights, F))
+        if errors is not None:
+            return errors
     if F is not None and BY_STRENGTH:
         errors = _grid_by_strength(train, val, n_b, np.asarray(alphas) * scale, weights, F)
         if errors is not None:

@@ -9,6 +9,7 @@ import pytest
 
 from stimsteer.sysid import Session
 from stimsteer.sysid.datadriven import _by_strength as bs
+from stimsteer.sysid.datadriven import _eigen_folds as ef
 from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
 from stimsteer.sysid.datadriven.lsq import LsqPredictor
@@ -50,6 +51,7 @@ def test_ridge_grid_from_the_total_factor_equals_the_validation_gram_route(folds
     alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
     old = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)  # n_b = 20 < the limit: the validation Gram
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)  # fold by fold (the folds side by side: tests below)
     monkeypatch.setattr(gr, "BY_STRENGTH", by_strength)  # one eigendecomposition, or a Cholesky per strength
     new = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)
     np.testing.assert_allclose(new, old, rtol=1e-10)
@@ -119,12 +121,12 @@ def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monke
     old = cls(past_steps=P, horizon_steps=N).fit(s)
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
     calls = []
-    for name in ("_grid_by_strength", "_fold_error_from_total"):
-        def counted(*a, _f=getattr(gr, name), **k):
+    for module, name in ((gr, "_grid_by_strength"), (gr, "_fold_error_from_total"), (ef, "eigen_fold_errors")):
+        def counted(*a, _f=getattr(module, name), **k):
             calls.append(_f)
             return _f(*a, **k)
 
-        monkeypatch.setattr(gr, name, counted)
+        monkeypatch.setattr(module, name, counted)
     new = cls(past_steps=P, horizon_steps=N).fit(s)
     assert len(calls) == 3  # one per fold: the total's factor reached the held-out terms
     assert new.factor_route_ == old.factor_route_ == "gram"
@@ -174,6 +176,7 @@ def test_where_a_strength_cannot_be_factored_the_eigen_route_scores_the_fold(fol
     train, val = total.plus(fs[2], -1.0), fs[2]
     alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)
     monkeypatch.setattr(gr, "BY_STRENGTH", False)
     eigen = gr.ridge_grid_errors(train, val, n_b, alphas, w, total)
     monkeypatch.setattr(gr, "BY_STRENGTH", True)
@@ -287,3 +290,92 @@ def test_small_hankel_folds_score_from_the_total_factor_without_a_validation_gra
     rng = np.random.default_rng(6)
     windows = rng.standard_normal((4, P, 2)), rng.standard_normal((4, P, 3)), rng.standard_normal((4, N, 2))
     np.testing.assert_array_equal(new.predict_many(*windows), old.predict_many(*windows))
+
+
+# ------------------------------------------------------------------------------------------------ folds side by side
+def _factored_total(fs):
+    """A fresh sum of the folds with the condition check's factor (no grid kept from another test)."""
+    total = gr.total_fold(fs)
+    gr.gram_condition_of(total, keep=True)
+    return total
+
+
+def _numpy_reference(train, val, n_b, strengths, w):
+    """Plain NumPy reference (the definition; common practice, no source): ``Θ(s) = G21 (G11 + s I)⁻¹`` by
+    ``numpy.linalg.solve`` from the training Gram, and ``Σ_k w_k² (G22v − Θ G12v − G21v Θᵀ + Θ G11v Θᵀ)_kk``
+    from the validation fold's own Gram."""
+    G, Gv = train.gram, val.gram
+    out = []
+    for s in strengths:
+        theta = np.linalg.solve(G[:n_b, :n_b] + s * np.eye(n_b), G[:n_b, n_b:]).T
+        R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
+        out.append(float(w ** 2 @ np.diagonal(R)))
+    return np.asarray(out)
+
+
+def _grids(fs, n_b, alphas, w):
+    total = _factored_total(fs)
+    return total, [gr.ridge_grid_errors(total.plus(f, -1.0), f, n_b, alphas, w, total) for f in fs]
+
+
+@pytest.mark.parametrize("block", [256, 7])  # one block, and several (n_b = 20, pN = 18)
+def test_folds_side_by_side_equal_the_fold_by_fold_route_and_a_plain_numpy_reference(folds, block, monkeypatch):
+    fs, _total, n_b = folds
+    alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(ef, "BLOCK", block)
+    calls = []
+    for module, name in ((gr, "_grid_by_strength"), (ef, "eigen_fold_errors")):
+        monkeypatch.setattr(module, name, lambda *a, _f=getattr(module, name), _n=name: calls.append(_n) or _f(*a))
+    total, new = _grids(fs, n_b, alphas, w)
+    assert sorted(calls) == ["_grid_by_strength", "eigen_fold_errors", "eigen_fold_errors"]  # all at the first call
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)
+    _t, old = _grids(fs, n_b, alphas, w)  # fold by fold, one Cholesky factor per strength (the route of before)
+    for f, a, b in zip(fs, new, old):
+        np.testing.assert_allclose(a, b, rtol=1e-10)
+        scale = float(total.plus(f, -1.0).gram_diagonal().sum()) / f.n_rows
+        np.testing.assert_allclose(a, _numpy_reference(total.plus(f, -1.0), f, n_b, alphas * scale, w), rtol=1e-9)
+    assert not np.array_equal(new[0], old[0]) and not np.array_equal(new[1], old[1])  # eigendecompositions
+    np.testing.assert_array_equal(new[2], old[2])  # the third fold by strength, as before
+
+
+def test_folds_the_eigen_route_cannot_score_are_scored_fold_by_fold(folds, monkeypatch):
+    fs, _total, n_b = folds
+    alphas, w = np.logspace(-8, 0, 9), np.linspace(0.5, 2.0, 18)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)
+    _t, by_strength = _grids(fs, n_b, alphas, w)
+    monkeypatch.setattr(gr, "BY_STRENGTH", False)
+    _t, eigen = _grids(fs, n_b, alphas, w)
+    monkeypatch.setattr(gr, "BY_STRENGTH", True)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", True)
+    monkeypatch.setattr(ef, "eigh_lower", lambda *a: None)  # LAPACK's eigenvalue routine failed
+    _t, got = _grids(fs, n_b, alphas, w)
+    for a, b in zip(got, by_strength):
+        np.testing.assert_array_equal(a, b)
+    monkeypatch.undo()
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(ef, "MAX_BYTES", 2 * 8 * n_b * (fs[0].n_rows + n_b) - 1)  # two folds' arrays: too large
+    _t, got = _grids(fs, n_b, alphas, w)
+    for a, b in zip(got, by_strength):
+        np.testing.assert_array_equal(a, b)  # fold by fold
+    monkeypatch.undo()
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "strength_errors", lambda *a: None)  # some G11 + sI of the third fold not definite
+    _t, got = _grids(fs, n_b, alphas, w)
+    np.testing.assert_array_equal(got[2], eigen[2])  # the eigen route of before, as fold by fold
+    np.testing.assert_allclose(got[0], eigen[0], rtol=1e-10)
+
+
+def test_lsq_fits_with_the_folds_side_by_side_predict_as_fold_by_fold(monkeypatch):
+    s, P, N = _system(), 5, 8
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)
+    old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", True)
+    new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    assert new.alpha_ == old.alpha_
+    np.testing.assert_array_equal(new.Kp_, old.Kp_)  # the final map is not changed: bit for bit
+    np.testing.assert_array_equal(new.Kf_, old.Kf_)
+    for col in [c for c in old.cv_table_.columns if c != "candidate"]:
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)

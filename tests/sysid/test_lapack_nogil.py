@@ -65,3 +65,28 @@ def test_the_gil_is_released_while_lapack_runs(rng):
     t0, t1 = span["t"]
     inside = np.array([t0] + [s for s in stamps if t0 < s < t1] + [t1])
     assert np.diff(inside).max() < 0.5 * (t1 - t0)
+
+
+def test_eigh_lower_of_a_block_of_a_larger_array_is_numpys_eigh():
+    from stimsteer.sysid._lapack_nogil import eigh_lower, trmm_lower_t
+
+    rng = np.random.default_rng(8)
+    n, ld = 40, 55
+    X = rng.standard_normal((n, n))
+    G = X @ X.T
+    panel = rng.standard_normal((n, ld))  # C-ordered n × ld: a column-major ld × n panel, G in its first n rows
+    panel[:, :n] = G
+    tail = panel[:, n:].copy()
+    d, V = eigh_lower(panel, n, ld)
+    ref = np.linalg.eigh(G)[0]  # reference: NumPy's eigh (LAPACK syevd)
+    np.testing.assert_allclose(d, ref, rtol=1e-12, atol=1e-12 * ref.max())
+    np.testing.assert_allclose(V.T @ G @ V, np.diag(d), atol=1e-11 * ref.max())  # orthonormal eigenvectors
+    np.testing.assert_array_equal(panel[:, n:], tail)  # the rest of the panel untouched
+    F = np.asfortranarray(rng.standard_normal((ld, ld)))
+    B = np.asfortranarray(rng.standard_normal((n, 7)))
+    expected = np.tril(F[:n, :n]).T @ B  # only the lower triangle of the block is read
+    np.testing.assert_allclose(trmm_lower_t(F, n, ld, B), expected, rtol=1e-12, atol=1e-12)
+    with pytest.raises(ValueError, match="leading dimension"):
+        eigh_lower(np.zeros((3, 3)), 4, 4)
+    with pytest.raises(ValueError, match="Fortran-ordered"):
+        trmm_lower_t(F, n, ld, np.zeros((n, 2)))
