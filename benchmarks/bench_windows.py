@@ -303,7 +303,8 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
     if ref and "seconds" in ref:
         text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
     if "cholesky_1t_s" in r:  # the Gram reference: one Cholesky factor of its size beside it
-        text += f"; one {r['n']} x {r['n']} Cholesky {r['cholesky_1t_s']:.2f} s (two threads {r['cholesky_2t_s']:.2f} s)"
+        text += f"; one {r['n']} x {r['n']} Cholesky {r['cholesky_1t_s']:.2f} s " \
+            f"(two threads {r['cholesky_2t_s']:.2f} s)"
     if "route" in r:
         text += f" ({r['route']})"
     return text

@@ -43,11 +43,11 @@ EIGEN_WORKERS = 2
 #: Columns of ``PᵀP`` and ``AᵀA`` formed at a time.
 BLOCK = 256
 #: Largest memory of the two folds' arrays in flight (``2 × 8 n_b (n + n_b)`` bytes: each fold's assembled rows and
-#: eigenvectors) for which the folds are scored side by side. Measured (benchmarks/README.md, s10-spc, load ~10):
-#: at past 50 / horizon 25 (``n_b`` = 1,225: 58 MB) the grids took 0.80x the wall and 0.84x the CPU of fold by fold,
-#: peak 268 MB against 236; at past 100 / horizon 50 (``n_b`` = 2,450: 231 MB) 0.95x the CPU and 0.96x the wall,
-#: but peak 539-554 MB against 438, over the 500 MB target: there the folds stay fold by fold. 160 MB is what the
-#: by-strength route's arrays take at past 100 / horizon 50.
+#: eigenvectors) for which the folds are scored side by side. Measured (benchmarks/README.md, s10-spc, load 10-15),
+#: the grids against fold by fold: at past 25 / horizon 25 (``n_b`` = 650) 0.7x the wall and the CPU; at past 50 /
+#: horizon 25 (``n_b`` = 1,225: 58 MB) 0.80x the wall and 0.84x the CPU, peak 268 MB against 236; at past 100 /
+#: horizon 50 (``n_b`` = 2,450: 231 MB) 0.95x the CPU and 0.96x the wall, but peak 539-554 MB against 438, over the
+#: 500 MB target: there the folds stay fold by fold. 160 MB is what the by-strength route's arrays take there.
 MAX_BYTES = 160e6
 
 

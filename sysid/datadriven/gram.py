@@ -252,8 +252,8 @@ def _total_factor(total: "_GramFold | None", n_b: int, any_size: bool = False) -
 
 def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weights, total=None) -> np.ndarray:
     """Weighted held-out squared errors of ``Θ(s) = G21 (G11 + s I)⁻¹`` for every ``s``, one ``eigh`` in all (on
-    large problems one Cholesky factor per strength, two strengths side by side: :data:`BY_STRENGTH`).
-
+    large problems one Cholesky factor per strength, two strengths side by side: :data:`BY_STRENGTH`; on mid-sized
+    ones, every fold of ``total.parts`` at the first call, ``train`` = ``total`` − ``val``: :data:`FOLDS_SIDE_BY_SIDE`).
     ``s = alpha · tr(G) / n_rows`` (the data scale of the training Gram ``G``) for each ``alpha``. ``total``: the
     sum of the folds, whose cached Cholesky factor (:func:`gram_condition_of` with ``keep``) gives the validation
     terms on large problems (:data:`TOTAL_FACTOR_ROWS`).
