@@ -43,11 +43,15 @@ def legacy_energy_violations(u, budget, rtol, window) -> int:
     budget = budget * (1.0 + rtol)
     if window is None:
         return int(np.sum(u**2) > budget)
-    if u.shape[0] == 0:
+    n = u.shape[0]
+    if n == 0:
         return 0
-    c = np.concatenate([[0.0], np.cumsum(np.sum(u**2, axis=1))])
-    w = min(check_window(window), u.shape[0])
-    return int(np.sum(c[w:] - c[:-w] > budget))
+    # c = [0, cumsum(Σ u²)]: np.sum(u**2, axis=1) is add.reduce of u·u, and the running sum is the same written
+    # after a leading zero as concatenated behind it
+    c = np.zeros(n + 1)
+    np.cumsum(np.add.reduce(u * u, axis=1), out=c[1:])
+    w = min(check_window(window), n)
+    return int(np.count_nonzero(c[w:] - c[:-w] > budget))
 
 
 def safe_sequence(lo, hi, slew_max, n_steps, last_input) -> np.ndarray:

@@ -38,6 +38,8 @@ in any unit of ``u``, since ``a`` and ``b`` carry the unit.
 
 from __future__ import annotations
 
+from bisect import bisect_right
+
 import numpy as np
 
 from ...sysid import SessionError
@@ -51,6 +53,8 @@ __all__: list = []
 
 class _RollingBudget:
     """Window matrices and checks of an energy budget over rolling windows, for a plan of ``N`` steps."""
+
+    _memo = _past = None  # energies(): the last answer, and the applied past's part of the windows (a read-only past)
 
     def __init__(self, budget: float, window: int, horizon_steps: int, slew, *, linear=None, quadratic=None,
                  name: str = "energy_budget", unit: str = "uA^2"):
@@ -80,11 +84,13 @@ class _RollingBudget:
     def history(self, u_past) -> np.ndarray:
         """Per-step energies of the last ``W − 1`` applied samples (rest before a shorter past), shape (W − 1,)."""
         h = np.asarray(u_past, np.float64)[max(0, len(u_past) - (self.window - 1)):]
-        if not np.all(np.isfinite(h)):
+        if not np.isfinite(h).all():
             raise SessionError(f"u_past holds NaN or infinite values in its last {self.window - 1} samples, which "
                                "count in the energy budget's window; plan from a clean stretch of data.")
         e = self.loads(h) if h.size else np.zeros(0)
-        return np.concatenate([np.zeros(self.window - 1 - e.size), e])
+        out = np.concatenate([np.zeros(self.window - 1 - e.size), e])
+        out.flags.writeable = False  # a plan's past, read by every check of it (energies() keeps Mh @ it)
+        return out
 
     def loads(self, u) -> np.ndarray:
         """The load of each row of ``u`` (n, m): ``Σ u²``, or ``Σ a|u| + b u²`` for a weighted budget."""
@@ -115,14 +121,21 @@ class _RollingBudget:
         if past is not None:
             return past + self.Mp @ self.loads(u) + self._ramp_part(u)
         # a plan checks the same inputs against the same past several times (solver answer, projection, guard,
-        # report): the last answer is kept, read-only, and given again for equal inputs and past
-        key = (u.tobytes(), np.asarray(hist, np.float64).tobytes())
-        memo = getattr(self, "_memo", None)
-        if memo is not None and memo[0] == key:
-            return memo[1]
-        out = self.Mh @ hist + self.Mp @ self.loads(u) + self._ramp_part(u)
+        # report): the last answer is kept, read-only, and given again for equal inputs and past; ``Mh @ hist`` is
+        # kept with the array it was computed for (held, so its identity stays its own: a plan's history array is
+        # made once per plan and never written), the same product for every inputs checked against that past
+        key = u.tobytes()
+        fixed = isinstance(hist, np.ndarray) and not hist.flags.writeable and hist.base is None  # history()'s
+        memo = self._memo
+        if memo is not None and memo[0] == key and ((fixed and memo[1] is hist) or memo[2] == _bytes(hist)):
+            return memo[3]
+        kept = self._past
+        if kept is None or not fixed or kept[0] is not hist:
+            kept = (hist, self.Mh @ hist)
+            self._past = kept if fixed else None
+        out = kept[1] + self.Mp @ self.loads(u) + self._ramp_part(u)
         out.flags.writeable = False
-        self._memo = (key, out)
+        self._memo = (key, hist, None if fixed else _bytes(hist), out)
         return out
 
     def _ramp_part(self, u):
@@ -218,6 +231,10 @@ class _RollingBudget:
         self.left.value = (self.budget - self.Mh @ hist) / getattr(self, "row_scale", 1.0) ** 2
 
 
+def _bytes(a) -> bytes:
+    return np.asarray(a, np.float64).tobytes()
+
+
 def blend_all(budgets, hists, u, safe):
     """``α u + (1 − α) safe`` with the largest α in [0, 1] inside every window of every budget (``safe`` inside).
 
@@ -244,9 +261,9 @@ def blend_all(budgets, hists, u, safe):
             break
         verdict = known.verdict(mid)
         if verdict is None:
-            e = loads(mid * u + (1.0 - mid) * safe)
-            verdict = _inside(e, caps)
-            known.add(mid, e)
+            top = [e.max() for e in loads(mid * u + (1.0 - mid) * safe)]  # each budget's largest window, once
+            verdict = all(t <= cap for t, cap in zip(top, caps))  # (NaN: not inside, as _inside)
+            known.add(mid, top, maxima=True)
         if verdict:
             lo = mid
         else:
@@ -282,15 +299,16 @@ class _Bisection:
         self.alphas = [0.0, 1.0]
         self.maxima = [[float(np.max(e)) for e in bottom], [float(np.max(e)) for e in top]]
 
-    def add(self, alpha, loads):
-        i = next(k for k, a in enumerate(self.alphas) if a > alpha)
+    def add(self, alpha, loads, maxima=False):
+        """The loads at ``alpha`` (``maxima``: their largest windows, one per budget, already taken)."""
+        i = bisect_right(self.alphas, alpha)  # the first evaluated α above this one
         self.alphas.insert(i, alpha)
-        self.maxima.insert(i, [float(np.max(e)) for e in loads])
+        self.maxima.insert(i, [float(e) if maxima else float(np.max(e)) for e in loads])
 
     def verdict(self, mid):
         """True (inside every budget), False (outside one) or None (compute the loads)."""
         al, mx = self.alphas, self.maxima
-        i = next(k for k, a in enumerate(al) if a > mid)  # al[i − 1] < mid < al[i]
+        i = bisect_right(al, mid)  # al[i − 1] < mid < al[i] (the first α above mid: al is sorted)
         a, b = al[i - 1], al[i]
         t = (mid - a) / (b - a)
         inside = True

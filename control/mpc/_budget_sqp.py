@@ -43,6 +43,8 @@ class _Windows:
         self.n = sum(b.Mp.shape[0] for b in budgets)
         # per budget: 2/E and Mp as (k, N, 1) for the Jacobian's product
         self._consts = [(2.0 / b.budget, b.Mp[:, :, None]) for b, _ in self.items]
+        # the inputs with a slew limit: a slice where every input has one (the same entries as the mask, a view)
+        self._fin = [slice(None) if b.fin.all() else b.fin for b, _ in self.items]
         self._ramps = None  # (u, [(pos, sgn) per budget]) of the last excess
 
     @staticmethod
@@ -56,10 +58,10 @@ class _Windows:
         U = np.asarray(u, np.float64).reshape(self.N, self.m)
         vals = []
         for b, left in self.items:
-            g = b.Mp @ np.sum(U**2, axis=1) / b.budget
+            g = b.Mp @ _row_squares(U) / b.budget
             if b.n_tail:
                 pos, _ = self._ramp(b, U[-1])
-                g = g + b.Mr @ np.sum(pos**2, axis=1) / b.budget
+                g = g + b.Mr @ _row_squares(pos) / b.budget
             vals.append(g - left)
         return vals[0] if len(vals) == 1 else np.concatenate(vals)
 
@@ -69,8 +71,8 @@ class _Windows:
         U = np.asarray(u, np.float64).reshape(self.N, self.m)
         J_all = np.empty((self.n, self.N * self.m)) if out is None else out
         vals, ramps, i = [], [], 0
-        sq = np.sum(U**2, axis=1)
-        for (b, left), (c, Mp3) in zip(self.items, self._consts):
+        sq = _row_squares(U)
+        for (b, left), (c, Mp3), fin in zip(self.items, self._consts, self._fin):
             k = b.Mp.shape[0]
             J = J_all[i:i + k].reshape(k, self.N, self.m)
             np.multiply(Mp3, U[None, :, :], out=J)
@@ -78,8 +80,8 @@ class _Windows:
             g = b.Mp @ sq / b.budget
             if b.n_tail:
                 pos, sgn = self._ramp(b, U[-1])
-                g = g + b.Mr @ np.sum(pos**2, axis=1) / b.budget
-                J[:, -1, b.fin] += c * (b.Mr @ (pos * sgn[None, :]))
+                g = g + b.Mr @ _row_squares(pos) / b.budget
+                J[:, -1, fin] += c * (b.Mr @ (pos * sgn[None, :]))
                 ramps.append(pos)
             else:
                 ramps.append(None)
@@ -94,14 +96,19 @@ class _Windows:
         kept = self._ramps if self._ramps is not None and self._ramps[0] is u else None
         d = np.zeros((self.N, self.m))
         i = 0
-        for j, ((b, _left), (c, _Mp3)) in enumerate(zip(self.items, self._consts)):
+        for j, ((b, _left), (c, _Mp3), fin) in enumerate(zip(self.items, self._consts, self._fin)):
             w = mu[i:i + b.Mp.shape[0]]
             i += b.Mp.shape[0]
             d += c * (b.Mp.T @ w)[:, None]
             if b.n_tail:
                 pos = kept[1][j] if kept is not None else self._ramp(b, U[-1])[0]
-                d[-1, b.fin] += c * ((b.Mr.T @ w) @ (pos > 0).astype(np.float64))
+                d[-1, fin] += c * ((b.Mr.T @ w) @ (pos > 0).astype(np.float64))
         return d.reshape(-1)
+
+
+def _row_squares(U):
+    """``np.sum(U**2, axis=1)``: the same reduction (``U**2`` is ``U·U``) without its wrappers."""
+    return np.add.reduce(U * U, axis=1)
 
 
 def fast_budgeted(ctrl, offsets, lb, ub):

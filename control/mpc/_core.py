@@ -37,7 +37,7 @@ from ..sequence_limits import history_breaks, on_mask
 from ._budget import _RollingBudget
 from ._budget_sqp import fast_budgeted
 from ._cone_solve import ready, solve_compiled
-from .plan import Plan, _Deferred, _ro
+from .plan import Plan, _Deferred, _made, _ro
 from ._verify import _ACCEPT_RTOL, _ZERO_RTOL, _PlanLimits  # noqa: F401 (the tolerances, named here before)
 from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight  # noqa: F401 (robust.py, lifted.py)
 from ...sysid._lazy import lazy_module
@@ -189,7 +189,7 @@ class _PredictiveController(BaseEstimator):
             if a.shape[0] < T:
                 raise SessionError(f"{name} needs at least {T} samples (the controller's past window); got "
                                    f"{a.shape[0]}. Record or simulate a longer past before planning.")
-            if not np.all(np.isfinite(a[-T:])):
+            if not np.isfinite(a[-T:]).all():
                 raise SessionError(f"{name} holds NaN or infinite values in its last {T} samples; plan from a "
                                    "clean stretch of data.")
         return u_past[-T:], y_past[-T:]
@@ -198,7 +198,7 @@ class _PredictiveController(BaseEstimator):
         if last_input is None:
             return u_past[-1].copy()
         last = np.asarray(last_input, dtype=np.float64).reshape(-1)
-        if last.shape != (self.n_inputs_,) or not np.all(np.isfinite(last)):
+        if last.shape != (self.n_inputs_,) or not np.isfinite(last).all():
             raise SessionError(f"last_input must be {self.n_inputs_} finite values (µA); got {last_input!r}.")
         return last
 
@@ -212,9 +212,8 @@ class _PredictiveController(BaseEstimator):
 
     def _guard(self, broken, last, fallback):
         """Reason why no input sequence can meet the limits from ``last``, or '' when one can."""
-        bad = np.flatnonzero(broken)
-        if bad.size:
-            i = int(bad[0])
+        if broken.any():
+            i = int(np.flatnonzero(broken)[0])
             return (f"the slew window of input {self.input_names_[i]!r} around the last applied input "
                     f"{last[i]:g} µA does not meet its amplitude window [{self._lo[i]:g}, {self._hi[i]:g}] µA; "
                     "the amplitude bound takes precedence and the slew limit is broken at step 0")
@@ -355,7 +354,7 @@ class _PredictiveController(BaseEstimator):
         reports = _Reports(y, self._ymax, self._ymin, float(self.output_penalty),
                            self._cost_terms_later(u, aux, y, u_past, y_past, target))
         last_ro = _ro(last)
-        return Plan(
+        return _made(
             inputs=_ro(u), predicted_outputs=_Deferred(partial(_ro, y)), target=_ro(self._target_rows(target)),
             target_kind=self.target_kind_, cost_terms=_Deferred(reports.terms),
             active_limits=self._checks.active(self, u, y, last, loads), output_slack=_Deferred(reports.slack_rows),

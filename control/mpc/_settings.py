@@ -61,6 +61,6 @@ def _output_target(t, N, p):
     if t.ndim != 2 or t.shape[1] != p or t.shape[0] < N:
         raise SessionError(f"a target trajectory must have shape (>= {N}, {p}) (horizon, outputs); got {t.shape}.")
     t = t[:N]
-    if not np.all(np.isfinite(t)):
+    if not np.isfinite(t).all():
         raise SessionError("the target holds NaN or infinite values; give a finite target for every output.")
     return t

@@ -50,6 +50,7 @@ class _PlanLimits:
         self.slew_tol = None if slew is None else slew - tol
         charge_lo, charge_hi = ctrl._charge_sides
         self.charge_lo, self.charge_hi, self.amp_lo, self.amp_hi = charge_lo, charge_hi, ~charge_lo, ~charge_hi
+        self.no_charge = not (charge_lo.any() or charge_hi.any())  # every side an amplitude bound (the masks: no-ops)
         self.energy_window = ctrl.energy_window_steps_
         self.energy = ctrl._energy
         self.sequence = ctrl.limits_.has_sequence_limits
@@ -60,11 +61,14 @@ class _PlanLimits:
     def step_bounds(self, last):
         """As :meth:`~._core._PredictiveController._step_bounds` (the amplitude window tiled once, copied here)."""
         lb, ub = self.lb.copy(), self.ub.copy()
-        broken = np.zeros(self.lo.size, bool)
-        if self.slew is not None:
-            lo0, hi0 = np.maximum(lb[0], last - self.slew), np.minimum(ub[0], last + self.slew)
-            broken = lo0 > hi0
+        if self.slew is None:
+            return lb, ub, np.zeros(self.lo.size, bool)
+        lo0, hi0 = np.maximum(lb[0], last - self.slew), np.minimum(ub[0], last + self.slew)
+        broken = lo0 > hi0
+        if broken.any():
             lb[0], ub[0] = np.where(broken, lb[0], lo0), np.where(broken, ub[0], hi0)
+        else:  # (np.where with nothing broken: lo0 and hi0 themselves)
+            lb[0], ub[0] = lo0, hi0
         return lb, ub, broken
 
     def fallback(self, last):
@@ -154,9 +158,9 @@ class _PlanLimits:
     def violations(self, ctrl, u, last) -> dict:
         """The nonzero counts of :meth:`StimLimits.violations` for the plan ``u`` after ``last`` (its energy windows
         of ``energy_window_steps_``, the applied past as the sequence limits' history): the same tests."""
-        out = {"amplitude": int(((u < self.lo) | (u > self.hi) | ~np.isfinite(u)).sum())}
+        out = {"amplitude": int(np.count_nonzero((u < self.lo) | (u > self.hi) | ~np.isfinite(u)))}
         if self.slew is not None:
-            out["slew"] = int((self._final_steps(u, last) > self.allowed).sum())
+            out["slew"] = int(np.count_nonzero(self._final_steps(u, last) > self.allowed))
         if self.energy is not None:
             out["energy_budget"] = legacy_energy_violations(u, self.energy, _VIOLATION_RTOL, self.energy_window)
         if self.sequence:
@@ -189,8 +193,11 @@ class _PlanLimits:
         ``loads``: the window loads of ``u`` when the caller has them."""
         at_lo = (u <= self.lo_tol) & self.lo_neg
         at_hi = (u >= self.hi_tol) & self.hi_pos
-        act = {"amplitude_min": at_lo & self.amp_lo, "amplitude_max": at_hi & self.amp_hi,
-               "charge_density": (at_lo & self.charge_lo) | (at_hi & self.charge_hi)}
+        if self.no_charge:  # (& with all-true masks, | of all-false ones: the same arrays)
+            act = {"amplitude_min": at_lo, "amplitude_max": at_hi, "charge_density": np.zeros(u.shape, bool)}
+        else:
+            act = {"amplitude_min": at_lo & self.amp_lo, "amplitude_max": at_hi & self.amp_hi,
+                   "charge_density": (at_lo & self.charge_lo) | (at_hi & self.charge_hi)}
         if self.slew is not None:
             act["slew"] = self.fin & (self._final_steps(u, last) >= self.slew_tol)
         else:

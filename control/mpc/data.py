@@ -328,8 +328,8 @@ class DataPredictiveController(_CondensedCore):
         """Whether the predicted outputs ``Yf g`` keep every output bound (exactly, no tolerance)."""
         y = self._Yf @ g
         self._kept_memo = (g, y)  # the plan's predicted outputs, should g be the plan's answer (_predict_outputs)
-        return bool(np.all(y[self._idx_hi] <= self._ymax[self._idx_hi])
-                    and np.all(y[self._idx_lo] >= self._ymin[self._idx_lo]))
+        return bool((y[self._idx_hi] <= self._ymax[self._idx_hi]).all()
+                    and (y[self._idx_lo] >= self._ymin[self._idx_lo]).all())
 
     def _fast_deepc(self, N, m):
         """The QP over ``z = [g; s]`` with ``u = Uf g`` substituted: dense and warm started where it applies (the

@@ -351,7 +351,7 @@ class _DenseSoftQP:
         if lam is None:
             return False
         price = C.T @ np.abs(np.asarray(lam, np.float64)[pos])
-        return bool(np.all(price <= q_t * (1.0 - 1e-9)))
+        return bool((price <= q_t * (1.0 - 1e-9)).all())
 
 
 class _BoxQP:

@@ -335,7 +335,8 @@ class ModelPredictiveController(_CondensedCore):
         x0, fy = self._free(u_past, y_past)
         fz, rz = self._tracked(x0, fy, target)
         ew = self._weigh(fz - rz)
-        xt = self._x_terminal(target)
+        # the terminal state is read only with a terminal cost (without one neither problem has its rows)
+        xt = None if self._Lp is None else self._x_terminal(target)
         tw = None if self._Lp is None else self._Lp @ (self._AN @ x0 - xt)
         if self.formulation == "sparse":  # the sparse cvxpy problem takes the state and the weighted target
             rz_model = rz if self.target_kind == "state" else rz - self._y_off_N

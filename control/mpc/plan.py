@@ -195,6 +195,27 @@ def _plan_state(self):
 
 Plan.__getstate__ = _plan_state
 
+_FIELDS = tuple((f.name, f.default) for f in fields(Plan))
+
+
+def _made(**values) -> Plan:
+    """``Plan(**values)``: the same instance dict (every field in order, a default where none is given, a deferred
+    field as it is), written at once instead of field by field through the frozen dataclass's
+    ``object.__setattr__`` (a closed loop makes a plan per step; a tenth of the time of ``Plan(...)``)."""
+    if not values.keys() <= _NAMES:
+        raise TypeError(f"Plan has no field(s) {sorted(values.keys() - _NAMES)}")
+    plan = object.__new__(Plan)
+    d = plan.__dict__
+    for name, default in _FIELDS:
+        value = values.get(name, default)
+        if value is MISSING:
+            raise TypeError(f"Plan needs the field {name!r}")
+        d[name] = value
+    return plan
+
+
+_NAMES = frozenset(name for name, _ in _FIELDS)
+
 
 def _ranges(steps) -> str:
     """'0-3, 7' for [0, 1, 2, 3, 7]."""

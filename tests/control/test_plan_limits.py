@@ -134,3 +134,59 @@ def test_the_loop_on_its_buffers_plans_from_the_windows_it_applied(budgeted):
                              last_input=U[now - 1].copy())
         assert np.array_equal(plan.inputs[0], loop.inputs[k])
     assert loop.violations["amplitude"] == loop.violations["slew"] == loop.violations["energy_budget"] == 0
+
+
+def test_a_plan_made_at_once_is_the_dataclasss_plan():
+    """``_made`` writes the instance dict in one pass; ``Plan(...)`` (the dataclass's own constructor) is the
+    reference: the same fields, in the same order, the same objects, deferred fields left deferred."""
+    from stimsteer.control.mpc.plan import Plan, _Deferred, _made
+
+    values = dict(inputs=np.ones((3, 2)), predicted_outputs=_Deferred(lambda: np.zeros((3, 1))), target=np.zeros((3, 1)),
+                  target_kind="output", cost_terms=_Deferred(dict), active_limits={"slew": np.zeros((3, 2), bool)},
+                  output_slack=np.zeros((3, 1)), step_bounds=(np.zeros((3, 2)), np.ones((3, 2))),
+                  last_input=np.zeros(2), solver="s", status="optimal", message="", fallback=False, solve_time_s=0.1,
+                  input_names=("a", "b"), output_names=("y",), energy_window_steps=4)
+    made, ref = _made(**values), Plan(**values)
+    assert list(made.__dict__) == list(ref.__dict__)
+    assert all(made.__dict__[k] is ref.__dict__[k] for k in ref.__dict__)  # (deferred ones unread on both)
+    assert made.caution == ref.caution and made.broken_limits == () and made.ok
+    with pytest.raises(TypeError, match="no field"):
+        _made(**values, colour="red")
+    with pytest.raises(TypeError, match="needs the field 'inputs'"):
+        _made(**{k: v for k, v in values.items() if k != "inputs"})
+
+
+def test_step_bounds_are_the_where_of_the_slew_window(budgeted):
+    """Reference: the step-0 window as ``np.where`` of the slew and amplitude windows (the inputs whose slew window
+    misses the amplitude window keep the amplitude window), for last inputs inside reach and beyond it."""
+    checks, rng = budgeted._checks, np.random.default_rng(4)
+    for last in [*rng.uniform(-8, 8, (60, 2)), np.array([7.0, 0.0]), np.array([-6.0, 4.0])]:
+        lb, ub = np.tile(checks.lo, (6, 1)), np.tile(checks.hi, (6, 1))
+        lo0, hi0 = np.maximum(lb[0], last - checks.slew), np.minimum(ub[0], last + checks.slew)
+        broken = lo0 > hi0
+        lb[0], ub[0] = np.where(broken, lb[0], lo0), np.where(broken, ub[0], hi0)
+        got = checks.step_bounds(last)
+        assert np.array_equal(got[0], lb) and np.array_equal(got[1], ub) and np.array_equal(got[2], broken)
+
+
+def test_window_loads_of_a_past_written_in_place_are_computed_anew():
+    """The applied past's part of the windows is kept only for a read-only history (a plan's own, from
+    ``history``); a writable one changed in place between two checks gets the windows of its new values
+    (brute-force window sums, common practice, no source)."""
+    W, N = 4, 5
+    b = _budget._RollingBudget(50.0, W, N, None)
+    rng = np.random.default_rng(9)
+    u = rng.normal(size=(N, 2))
+
+    def brute(hist):
+        seq = np.concatenate([hist, np.sum(u**2, axis=1)])
+        return np.array([seq[j - W + 1:j + 1].sum() for j in range(W - 1, seq.size)])
+
+    hist = rng.uniform(size=W - 1)
+    np.testing.assert_allclose(b.energies(u, hist), brute(hist), rtol=1e-12)
+    hist[:] = rng.uniform(2, 3, size=W - 1)
+    np.testing.assert_allclose(b.energies(u, hist), brute(hist), rtol=1e-12)
+    kept = b.history(rng.normal(size=(6, 2)))
+    assert not kept.flags.writeable
+    np.testing.assert_allclose(b.energies(u, kept), brute(kept), rtol=1e-12)
+    assert b.energies(u, kept) is b.energies(u, kept)  # the same plan's check again: the kept answer
