@@ -414,3 +414,16 @@ def test_xcorr_bad_arguments():
         input_residual_xcorr(np.zeros((5, 1)), np.zeros((6, 1)), 1)
     with pytest.raises(SessionError, match=r"max_lag must be a whole number in \[0, 4\]"):
         input_residual_xcorr(np.zeros((5, 1)), np.zeros((5, 1)), 5)
+
+
+def test_empty_score_tables_are_new_frames_of_the_stated_columns():
+    # every Scores holds an empty table of the other kind, copied from one built once: a caller that fills one
+    # must not fill the next (reference: the column-by-column construction the copy replaces)
+    from stimsteer.sysid.metrics import _METRICS, _empty_freerun, _empty_kstep
+
+    built = pd.DataFrame({"step": pd.Series(dtype=np.int64), "channel": pd.Series(dtype=object),
+                          **{k: pd.Series(dtype=float) for k in _METRICS}, "n_samples": pd.Series(dtype=np.int64)})
+    first = _empty_kstep()
+    first.loc[0] = [1, "a", 0.5, 0.5, 50.0, 0.1, 10]
+    for made, want in ((_empty_kstep(), built), (_empty_freerun(), built.drop(columns="step"))):
+        assert made.empty and made.equals(want) and made.dtypes.equals(want.dtypes)
