@@ -135,6 +135,16 @@ def apply_stacked(maps, u_past, y_past, u_future) -> np.ndarray:
     return (rows @ maps[0] + maps[1]).reshape(n, u_future.shape[1], -1)
 
 
+def apply_checked(maps, u_past, y_past, u_future) -> np.ndarray:
+    """:func:`apply_stacked` of windows whose inputs are known to be finite float64 arrays of the right shapes (a
+    chained free run's, checked once): only the past outputs, fed back from earlier blocks, are checked, with
+    ``predict_many``'s message (the three checks per block were a third of :func:`apply_stacked`'s time)."""
+    if not np.all(np.isfinite(y_past)):
+        raise SessionError("y_past holds NaN or infinite values; give windows of valid samples.")
+    n = u_past.shape[0]
+    rows = np.concatenate([u_past.reshape(n, -1), y_past.reshape(n, -1), u_future.reshape(n, -1)], axis=1)
+    return (rows @ maps[0] + maps[1]).reshape(n, u_future.shape[1], -1)
+
 def check_finite(u, y) -> None:
     """Raise :class:`SessionError` when the samples of a valid segment hold NaN or infinite values."""
     if not (np.all(np.isfinite(u)) and np.all(np.isfinite(y))):

@@ -26,7 +26,7 @@ import numpy as np
 import pandas as pd
 from numpy.lib.stride_tricks import as_strided, sliding_window_view
 
-from ._windows import apply_stacked, one_blas_thread, stacked_maps, window_predictions
+from ._windows import apply_checked, apply_stacked, one_blas_thread, stacked_maps, window_predictions
 from ._windows import predict_batch as _predict_batch
 from .exceptions import SessionError
 from .output_mask import output_valid
@@ -114,9 +114,10 @@ class _Pooled:
             return
         n = self.n + nb
         flat = y.shape[0], -1  # sums over axis 0 as one matrix product each (einsum over the leading axis)
+        buf = np.empty(np.broadcast_shapes(y.shape, e.shape))  # the deviations of y, then of e: one allocation
         for mean_attr, m2_attr, x in (("my", "My", y), ("me", "Me", e)):
             mb = x.sum(axis=0) / nb
-            d = (x - mb).reshape(flat)
+            d = np.subtract(x, mb, out=buf).reshape(flat)
             Mb = np.einsum("ij,ij->j", d, d).reshape(mb.shape)
             ma, Ma = getattr(self, mean_attr), getattr(self, m2_attr)
             delta = mb - ma
@@ -156,12 +157,24 @@ class _Pooled:
 
 # ------------------------------------------------------------------------------------------------ Scores
 def _empty_kstep() -> pd.DataFrame:
-    return pd.DataFrame({"step": pd.Series(dtype=np.int64), "channel": pd.Series(dtype=object),
-                         **{k: pd.Series(dtype=float) for k in _METRICS}, "n_samples": pd.Series(dtype=np.int64)})
+    return _empty("kstep")
 
 
 def _empty_freerun() -> pd.DataFrame:
-    return _empty_kstep().drop(columns="step")
+    return _empty("freerun")
+
+
+_EMPTY: dict = {}
+
+
+def _empty(kind: str) -> pd.DataFrame:
+    """A new empty scores table (``kstep``, or ``freerun`` without ``step``), copied from one built at first use:
+    every :class:`Scores` holds one, and building it column by column took 1.4-2.6 ms (0.03 ms copied)."""
+    if kind not in _EMPTY:
+        kstep = pd.DataFrame({"step": pd.Series(dtype=np.int64), "channel": pd.Series(dtype=object),
+                              **{k: pd.Series(dtype=float) for k in _METRICS}, "n_samples": pd.Series(dtype=np.int64)})
+        _EMPTY.update(kstep=kstep, freerun=kstep.drop(columns="step"))
+    return _EMPTY[kind].copy(deep=True)
 
 
 @dataclass(frozen=True)
@@ -408,15 +421,22 @@ def _free_runs(predictor, u, y, P, limit):
     y_run = np.empty((n, T, y.shape[2]))  # the measured start, then the predictions, written in place
     y_run[:, :P] = y[:, :P]
     maps = {}  # a predictor with linear maps and a limited horizon: each block one product with the block's maps
+    # finite inputs and start checked once: each block then checks only its fed-back outputs (apply_checked)
+    checked = P >= 1 and bool(np.all(np.isfinite(u)) and np.all(np.isfinite(y[:, :P])))
     with one_blas_thread():
         for t in range(P, T, step):
             stop = min(T, t + step)
             if limit is not None and stop - t not in maps:
                 maps[stop - t] = stacked_maps(predictor, P, stop - t, u.shape[2], y.shape[2])
             past, future = (u[:, t - P: t], y_run[:, t - P: t]), u[:, t: stop]
-            y_run[:, t:stop] = _predict_batch(predictor, *past, future) if maps.get(stop - t) is None else \
-                apply_stacked(maps[stop - t], *past, future)
+            if maps.get(stop - t) is None:
+                y_run[:, t:stop] = _predict_batch(predictor, *past, future)
+            elif checked:
+                y_run[:, t:stop] = apply_checked(maps[stop - t], *past, future)
+            else:
+                y_run[:, t:stop] = apply_stacked(maps[stop - t], *past, future)
     return y_run[:, P:]
+
 
 
 #: Samples (runs x length) of the free runs predicted in one batch: segments of equal length, in their order.

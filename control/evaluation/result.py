@@ -21,7 +21,7 @@ from .closed_loop import _check_plant, _surrogate_spec
 from .execute import _execute, check_scheduler_address
 from .references import reference_table
 from .settings import BenchSettings
-from .tables import _KEYS, _assemble, _columns, _comparison, _sweeps, _with_best
+from .tables import _KEYS, _assemble, _columns, _comparison, _sweep_members, _sweeps, _with_best
 from .tasks import _check_trials, _Context, _grid, _splits, _tasks
 
 __all__ = ["BenchResult", "run_bench", "STANDIN_MIN_R2"]
@@ -300,11 +300,12 @@ def _result(st, session, plant, limits, splits, tasks, results, execution, start
     refs = refs()  # after the check: a setting every route failed on is reported as such, not by the references
     ok = table[table["status"] == "ok"]
     best = _with_best(table, st)  # the rows of each route's best method, once for the sweeps and the comparison
+    members = _sweep_members(best, st)
     lim = dict(parts["limits"] or {})
     lim["source"] = "declared" if limits is not None else "recorded input range (training trials)"
     return BenchResult(
         settings=st, splits=tuple(splits), prediction=parts["prediction"], control=_control_table(ok, st, plant),
-        sweeps=_sweeps(table, st, best), comparison=_comparison(table, st, best),
+        sweeps=_sweeps(table, st, best, members), comparison=_comparison(table, st, best, members),
         timings=_columns(ok, [*_KEYS, "fit_s", "predict_s", "n_windows", "predict_ms_per_window", "control_s",
                               "solve_ms_median", "solve_ms_p95", "total_s"]),
         fits=_columns(table, [*_KEYS, "status", "selection", "fingerprint", "fit_s", "warnings"]),

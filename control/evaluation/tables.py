@@ -41,15 +41,15 @@ def _task_row(st: BenchSettings, task: _Task, res: dict) -> dict:
            "total_s": res["total_s"]}
     if status != "ok":
         return row
-    ks, fr = res["kstep"], res["freerun"]
-    step, r2 = ks["step"].to_numpy(), ks["r2"].to_numpy(np.float64)
+    ks, fr = _arrays(res["kstep"]), _arrays(res["freerun"])
+    step, r2 = ks["step"], np.asarray(ks["r2"], np.float64)
     H = task.setting.horizon_steps
     row.update(selection=res["selection"], fingerprint=res["fingerprint"], fit_s=res["fit_s"],
                predict_s=res["predict_s"], n_windows=res["n_windows"],
                predict_ms_per_window=1e3 * res["predict_s"] / max(res["n_windows"], 1),
                r2_mean=_mean(r2), r2_step1=_mean(r2[step == 1]), r2_last=_mean(r2[step == H]),
-               vaf_mean=_mean(ks["vaf"].to_numpy(np.float64)), r2_freerun=_mean(fr["r2"].to_numpy(np.float64)),
-               vaf_freerun=_mean(fr["vaf"].to_numpy(np.float64)))
+               vaf_mean=_mean(np.asarray(ks["vaf"], np.float64)), r2_freerun=_mean(np.asarray(fr["r2"], np.float64)),
+               vaf_freerun=_mean(np.asarray(fr["vaf"], np.float64)))
     if "inner_r2" in res:
         row["inner_r2"] = res["inner_r2"]
     if "loop" in res:
@@ -80,14 +80,17 @@ def _with_best(tasks: pd.DataFrame, st: BenchSettings) -> pd.DataFrame:
     """
     if "inner_r2" not in tasks.columns:
         return tasks
-    ok = tasks[(tasks["status"] == "ok") & tasks["inner_r2"].notna()]
+    # as arrays: pandas' grouping and boolean masks of string columns took 20 of its 29 ms (profiled)
+    split, label = tasks["split"].to_numpy(), tasks["label"].to_numpy(dtype=object)
+    inner, is_ok = tasks["inner_r2"].to_numpy(dtype=np.float64), tasks["status"].to_numpy(dtype=object) == "ok"
     extra = []
-    for (split, route), g in ok.groupby(["split", "route"]):
-        if g["label"].nunique() < 2 or not g["inner_r2"].notna().any():
+    for (at_split, route), at in _group_rows(tasks[is_ok & ~np.isnan(inner)], ["split", "route"]):
+        rows = np.flatnonzero(is_ok & ~np.isnan(inner))[at]
+        if len(set(label[rows])) < 2:
             continue
-        chosen = g.loc[g["inner_r2"].idxmax(), "label"]
-        rows = tasks[(tasks["split"] == split) & (tasks["label"] == chosen) & (tasks["status"] == "ok")]
-        extra.append(rows.assign(label=best_label(route), method="best", chosen=chosen))
+        chosen = label[rows[np.argmax(inner[rows])]]  # the first of the highest, as idxmax
+        same = np.flatnonzero((split == at_split) & (label == chosen) & is_ok)
+        extra.append(tasks.iloc[same].assign(label=best_label(route), method="best", chosen=chosen))
     return pd.concat([tasks, *extra], ignore_index=True) if extra else tasks
 
 
@@ -101,19 +104,38 @@ def _prediction_table(parts) -> pd.DataFrame:
     demo's assembly, profiled)."""
     if not parts:
         return pd.DataFrame()
-    cols: dict = {k: [] for k in (*_KEYS, "mode", "step", "channel", *_PREDICTION_VALUES, "n_samples")}
-    for keys, res in parts:
-        ks, fr = res["kstep"], res["freerun"]
-        n_k, n = len(ks), len(ks) + len(fr)
-        for k in _KEYS:
-            cols[k].append(np.full(n, keys[k], dtype=object if isinstance(keys[k], str) else None))
-        cols["mode"].append(np.array(["kstep"] * n_k + ["freerun"] * (n - n_k), dtype=object))
-        cols["step"].append(np.concatenate([ks["step"].to_numpy(np.int64), np.zeros(n - n_k, np.int64)]))
+    counts, mode_counts = [], []
+    cols: dict = {k: [] for k in ("step", "channel", *_PREDICTION_VALUES, "n_samples")}
+    for _keys_, res in parts:
+        ks, fr = _arrays(res["kstep"]), _arrays(res["freerun"])
+        n_k, n_f = len(ks["step"]), len(fr["channel"])
+        counts.append(n_k + n_f)
+        mode_counts += [n_k, n_f]
+        cols["step"] += [np.asarray(ks["step"], np.int64), np.zeros(n_f, np.int64)]
         for k in ("channel", *_PREDICTION_VALUES, "n_samples"):
-            cols[k].append(np.concatenate([ks[k].to_numpy(), fr[k].to_numpy()]))
-    frame = pd.DataFrame({k: np.concatenate(v) for k, v in cols.items()})
-    frame["channel"] = frame["channel"].astype(object)  # as the scores' tables hold it
-    return frame
+            cols[k] += [ks[k], fr[k]]
+    # a task's keys repeated over its rows: text as the string column pandas infers, taken from one value per task
+    # (not inferred from a value per row: 12 of the table's 26 ms), a number in its NumPy type
+    keys = {k: _repeated([kk[k] for kk, _ in parts], np.repeat(np.arange(len(parts)), counts)) for k in _KEYS}
+    mode = _repeated(["kstep", "freerun"], np.repeat(np.tile([0, 1], len(parts)), mode_counts))
+    values = {k: np.concatenate(v) for k, v in cols.items()}
+    values["channel"] = pd.Series(values["channel"], dtype=object)  # as the scores' tables hold it
+    return pd.DataFrame({**keys, "mode": mode, **values})
+
+
+def _repeated(values: list, at: np.ndarray):
+    """``values[at]`` as a frame's column: text as the string column pandas infers from it, else a NumPy array."""
+    if isinstance(values[0], str):
+        return pd.array(values, dtype=pd.Series(values[:1]).dtype).take(at)
+    return np.asarray(values)[at]
+
+
+def _arrays(table) -> dict:
+    """The columns of a scores table as arrays (by name), each read once (a column read from a frame by name
+    costs ~40 µs; the assembly read 17 per task), or ``table`` itself when it is such a dict already."""
+    if not isinstance(table, pd.DataFrame):
+        return table
+    return {name: column.to_numpy() for name, column in table.items()}
 
 
 def _assemble(st: BenchSettings, tasks, results) -> dict:
@@ -121,10 +143,12 @@ def _assemble(st: BenchSettings, tasks, results) -> dict:
     limits = None
     for task, res in zip(tasks, results):
         keys = _keys(st, task)
-        rows.append(_task_row(st, task, res))
         if "error" in res or "skipped" in res:
+            rows.append(_task_row(st, task, res))
             continue
-        pred.append((keys, res))
+        arrays = {"kstep": _arrays(res["kstep"]), "freerun": _arrays(res["freerun"])}
+        rows.append(_task_row(st, task, {**res, **arrays}))
+        pred.append((keys, arrays))
         if res.get("prediction_trace") is not None and not res["prediction_trace"].empty:
             traces_p.append(res["prediction_trace"].assign(label=keys["label"], route=keys["route"]))
         if res.get("loop_trace") is not None:
@@ -157,17 +181,18 @@ def _sweep_members(tasks: pd.DataFrame, st: BenchSettings) -> dict:
     return {k: v for k, v in members.items() if k == "base" or v[0][v[1]].nunique() > 1}
 
 
-def _sweeps(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None) -> pd.DataFrame:
+def _sweeps(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None,
+            members: dict | None = None) -> pd.DataFrame:
     """Mean and interval of every metric per sweep, point and label (``with_best``: :func:`_with_best` of
-    ``tasks`` when the caller has it)."""
+    ``tasks`` when the caller has it; ``members``: :func:`_sweep_members` of it)."""
     tasks = _with_best(tasks, st) if with_best is None else with_best
+    members = _sweep_members(tasks, st) if members is None else members
     metrics = [m for m in METRICS if m in tasks.columns]
     rows = []
-    for sweep, (sub, col) in _sweep_members(tasks, st).items():
-        groups = sub.groupby(["label", "route", "method"] + ([col] if col else []), sort=True)
-        for key, g in groups:
-            values = g[metrics].to_numpy(dtype=np.float64)  # one array per group, a column per metric
-            for metric, v in zip(metrics, values.T):
+    for sweep, (sub, col) in members.items():
+        values = sub[metrics].to_numpy(dtype=np.float64)  # a column per metric; each group's rows taken from it
+        for key, at in _group_rows(sub, ["label", "route", "method"] + ([col] if col else [])):
+            for metric, v in zip(metrics, values[at].T):
                 mean, lo, hi = t_interval(v)
                 rows.append({"sweep": sweep, "value": float(key[3]) if col else math.nan, "label": key[0],
                              "route": key[1], "method": key[2], "metric": metric,
@@ -176,20 +201,39 @@ def _sweeps(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | No
                                        "ci_low", "ci_high"])
 
 
-def _comparison(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None) -> pd.DataFrame:
+def _group_rows(frame: pd.DataFrame, keys: list) -> list:
+    """``(key, positions)`` of each group of ``frame`` by the columns ``keys``, as ``frame.groupby(keys,
+    sort=True)`` iterates them (keys in sorted order, rows in frame order, groups with a missing key left out),
+    with the rows as positions: the groups' frames cost a quarter of the benchmark's assembly (profiled)."""
+    cols = [frame[k].to_numpy(dtype=object) for k in keys]
+    groups: dict = {}
+    for i, key in enumerate(zip(*cols)):
+        if not any(v is None or (isinstance(v, float) and v != v) for v in key):
+            groups.setdefault(key, []).append(i)
+    return [(key, np.asarray(groups[key], dtype=np.intp)) for key in sorted(groups)]
+
+
+def _comparison(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame | None = None,
+                members: dict | None = None) -> pd.DataFrame:
     """Paired (same split, same setting) differences direct − indirect for every pair of methods, and for the
     routes represented by their best method on the training trials (when a route has several)."""
     tasks = _with_best(tasks, st) if with_best is None else with_best
+    members = _sweep_members(tasks, st) if members is None else members
     ind = [m.label for m in st.methods if m.route == "indirect"]
     dirs = [m.label for m in st.methods if m.route == "direct"]
     if set(tasks["label"]) >= {best_label("indirect"), best_label("direct")}:
         ind, dirs = ind + [best_label("indirect")], dirs + [best_label("direct")]
     rows = []
-    for sweep, (sub, col) in _sweep_members(tasks, st).items():
-        values = sorted(sub[col].unique()) if col else [None]
-        for value in values:
-            part = sub if col is None else sub[sub[col] == value]
-            wides = _wides(part)
+    for sweep, (sub, col) in members.items():
+        metrics = [m for m in METRICS if m in sub.columns]
+        split, label = sub["split"].to_numpy(), sub["label"].to_numpy(dtype=object)
+        values = sub[metrics].to_numpy(dtype=np.float64)
+        points = None if col is None else sub[col].to_numpy()
+        for value in ([None] if col is None else sorted(sub[col].unique())):
+            at = slice(None) if col is None else points == value  # the part's rows, as arrays (no frame per part)
+            wides = _wides_of(split[at], label[at], values[at], metrics)
+            if wides is None:
+                wides = _wides_grouped(sub if col is None else sub[at], metrics)
             for a in ind:
                 for b in dirs:
                     rows += _paired(wides, a, b, sweep, value)
@@ -199,10 +243,40 @@ def _comparison(tasks: pd.DataFrame, st: BenchSettings, with_best: pd.DataFrame 
 
 def _wides(part: pd.DataFrame) -> dict:
     """Each metric's mean per split and label, as ``{metric: {label: values by split}}`` (once per part, not per
-    pair): the columns ``pivot_table`` gives metric by metric (a label without any value left out), from one
-    grouping of every metric at once, as arrays (a pivot table per metric and Series arithmetic per pair took
-    1.9 s and 1.1 s of the demo's 3.1 s of comparisons)."""
+    pair): the columns ``pivot_table`` gives metric by metric (a label without any value left out)."""
     metrics = [m for m in METRICS if m in part.columns]
+    wides = _wides_of(part["split"].to_numpy(), part["label"].to_numpy(dtype=object),
+                      part[metrics].to_numpy(dtype=np.float64), metrics)
+    return _wides_grouped(part, metrics) if wides is None else wides
+
+
+def _wides_of(split: np.ndarray, label: np.ndarray, values: np.ndarray, metrics: list) -> dict | None:
+    """:func:`_wides` of a part given as arrays (``values``: a column per metric); None when a (split, label) pair
+    has several rows (then its mean is pandas' grouped mean, :func:`_wides_grouped`).
+
+    In the benchmark's tables a pair has one row (one task per split, label and setting): its "mean" is that row's
+    value, placed by array indexing (pandas' grouping and unstacking, and a frame per part, took 0.3 s of the
+    demo's assembly, profiled)."""
+    splits, s_at = np.unique(split, return_inverse=True)
+    labels = sorted(set(label))
+    if any(not isinstance(v, str) for v in labels):
+        return None
+    l_at = np.searchsorted(np.asarray(labels, dtype=object), label) if labels else np.zeros(0, np.intp)
+    cell = s_at.reshape(-1) * len(labels) + l_at
+    if np.unique(cell).size != cell.size:
+        return None
+    wide = np.full((len(metrics), splits.size * len(labels)), np.nan)
+    wide[:, cell] = values.T
+    wide = wide.reshape(len(metrics), splits.size, len(labels))
+    out = {m: {} for m in metrics}
+    for i, metric in enumerate(metrics):
+        for j, name in enumerate(labels):
+            if not np.all(np.isnan(wide[i, :, j])):
+                out[metric][name] = wide[i, :, j].copy()
+    return out
+
+
+def _wides_grouped(part: pd.DataFrame, metrics: list) -> dict:
     wide = part.groupby(["split", "label"], sort=True)[metrics].mean().unstack("label")
     values = wide.to_numpy(dtype=np.float64)
     out = {m: {} for m in metrics}

@@ -567,3 +567,39 @@ def test_sweeps_run_only_each_routes_best_method_and_the_base_point_runs_every_m
         base = t[t["full_train"] & (t["split"] == split)]
         chosen = {base.loc[b["inner_r2"].idxmax(), "label"] for _, b in base.groupby("route")}
         assert set(g.loc[g["status"] == "ok", "label"]) == chosen
+
+
+def test_t_interval_is_numpys_mean_and_std_bit_for_bit():
+    # t_interval repeats NumPy's mean and std(ddof=1) operations without their dispatch; the golden demo's
+    # intervals must not move (reference: numpy's own mean and std)
+    import math
+
+    from stimsteer.control.evaluation.stats import _t_quantile
+
+    rng = np.random.default_rng(5)
+    for n in (1, 2, 3, 5, 9, 17, 40):
+        for scale in (1e-9, 1.0, 1e7):
+            v = rng.standard_normal(n) * scale + rng.uniform(-5, 5)
+            v[rng.random(n) < 0.1] = np.nan
+            w = v[np.isfinite(v)]
+            mean, lo, hi = t_interval(v)
+            if w.size == 0:
+                assert np.isnan(mean)
+                continue
+            assert mean == float(w.mean())
+            if w.size > 1:
+                half = float(_t_quantile(0.975, w.size - 1) * w.std(ddof=1) / math.sqrt(w.size))
+                assert (lo, hi) == (float(w.mean()) - half, float(w.mean()) + half)
+
+
+def test_group_rows_are_pandas_groups_in_order():
+    # the sweeps group the task table by arrays; the groups, their order and their rows must be pandas' groupby's
+    from stimsteer.control.evaluation.tables import _group_rows
+
+    frame = pd.DataFrame({"label": ["b", "a", "b", "a", "c", "a"], "route": ["x", "y", "x", "y", "x", "x"],
+                          "n": [3, 9, 3, 3, 9, 9], "v": np.arange(6.0)})
+    ours = _group_rows(frame, ["label", "route", "n"])
+    theirs = [(k, g.index.to_numpy()) for k, g in frame.groupby(["label", "route", "n"], sort=True)]
+    assert [k for k, _ in ours] == [tuple(k) for k, _ in theirs]
+    for (_, a), (_, b) in zip(ours, theirs):
+        np.testing.assert_array_equal(a, b)

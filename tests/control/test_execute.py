@@ -104,3 +104,26 @@ def test_no_progress_bar_counts_nothing_and_leaves_tqdm_unimported():
             "print('tqdm' in sys.modules)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert out.returncode == 0 and out.stdout.strip() == "False", out.stderr
+
+
+def test_a_session_sent_to_workers_leaves_out_the_metadata_they_have_and_comes_back_whole():
+    # the noise sweep's re-recorded session goes to the pool's workers without the metadata values it shares with
+    # the run's session (the demo's 1.1 MB pulse table of lists); a worker puts them back, in their order
+    import pickle
+
+    import numpy as np
+
+    from stimsteer.sysid import Session
+
+    pulses = {"time_s": list(np.arange(2000) / 250.0), "amplitude_ua": [1.0] * 2000}
+    base = Session(u=np.zeros((40, 1)), y=np.ones((40, 2)), sample_rate_hz=250.0,
+                   metadata={"pulses": pulses, "seed": 3, "note": "run"})
+    derived = base.replace(y=np.full((40, 2), 2.0), metadata={"seed": 4, **base.metadata, "noise_scale": 2.0})
+    packed = execute._packed(derived, base.metadata)
+    assert "pulses" not in packed[0].metadata and derived.metadata["pulses"] is pulses  # the original is untouched
+    assert len(pickle.dumps(packed)) < len(pickle.dumps(derived)) / 2
+    back = execute._unpacked(pickle.loads(pickle.dumps(packed)), base.metadata)
+    assert list(back.metadata) == list(derived.metadata) and back.metadata == derived.metadata
+    assert back.metadata["pulses"] is pulses and back.content_hash() == derived.content_hash()
+    alone = Session(u=np.zeros((40, 1)), y=np.ones((40, 2)), sample_rate_hz=250.0, metadata={"x": [1]})
+    assert execute._unpacked(execute._packed(alone, base.metadata), base.metadata) is alone  # nothing shared

@@ -414,3 +414,37 @@ def test_xcorr_bad_arguments():
         input_residual_xcorr(np.zeros((5, 1)), np.zeros((6, 1)), 1)
     with pytest.raises(SessionError, match=r"max_lag must be a whole number in \[0, 4\]"):
         input_residual_xcorr(np.zeros((5, 1)), np.zeros((5, 1)), 5)
+
+
+def test_empty_score_tables_are_new_frames_of_the_stated_columns():
+    # every Scores holds an empty table of the other kind, copied from one built once: a caller that fills one
+    # must not fill the next (reference: the column-by-column construction the copy replaces)
+    from stimsteer.sysid.metrics import _METRICS, _empty_freerun, _empty_kstep
+
+    built = pd.DataFrame({"step": pd.Series(dtype=np.int64), "channel": pd.Series(dtype=object),
+                          **{k: pd.Series(dtype=float) for k in _METRICS}, "n_samples": pd.Series(dtype=np.int64)})
+    first = _empty_kstep()
+    first.loc[0] = [1, "a", 0.5, 0.5, 50.0, 0.1, 10]
+    for made, want in ((_empty_kstep(), built), (_empty_freerun(), built.drop(columns="step"))):
+        assert made.empty and made.equals(want) and made.dtypes.equals(want.dtypes)
+
+
+def test_a_chained_free_run_that_overflows_raises_as_predict_many_does():
+    # the free run checks each block's fed-back outputs itself (its inputs once): an unstable linear predictor with
+    # a limited horizon must still stop with predict_many's message, not score infinities
+    from types import SimpleNamespace
+
+    class Unstable:
+        past_steps_, max_horizon_steps_, has_linear_maps = 1, 2, True
+
+        def predict(self, u_past, y_past, u_future):  # pragma: no cover - the maps are used
+            raise AssertionError
+
+        def prediction_maps(self, past_steps, horizon_steps):
+            P = np.zeros((horizon_steps, 2))
+            P[:, 1] = 1e150  # y[t] = 1e150 · y[t - 1]: inf after a few blocks
+            return SimpleNamespace(P=P, F=np.zeros((horizon_steps, horizon_steps)), c=np.zeros(horizon_steps))
+
+    session = Session(u=np.zeros((40, 1)), y=np.ones((40, 1)), sample_rate_hz=100.0)
+    with np.errstate(over="ignore"), pytest.raises(SessionError, match=r"y_past holds NaN or infinite values"):
+        freerun_scores(Unstable(), session)
