@@ -280,7 +280,8 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
     order = None if index is None or Lp1 * c > _SMALL_ASSEMBLY else _small_order(np.asarray(index).reshape(-1))
     if Lp1 * c <= _SMALL_ASSEMBLY and (index is None or order is not None):
-        return _small_lagged_gram(sums, average_same_lag, order, (r0, r1))
+        W = _small_lagged_gram(sums, average_same_lag, None if index is None else np.asarray(index))
+        return W if (r0, r1) == (0, Lp1 * c) else W[r0:r1].copy()
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
     full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
@@ -293,10 +294,9 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     return W
 
 
-#: Grams of lagged vectors up to this length are assembled in lagged order along their block diagonals, then cut to
-#: ``rows`` and permuted by two takes (:func:`_small_lagged_gram`): the numbers of the strided block copies, without
-#: their per-block Python work. Longer ones by strided copies over the rectangles of the index (no Gram-sized
-#: second array).
+#: Grams of lagged vectors up to this length are assembled in lagged order by fancy-indexed copies, then permuted
+#: and cut to ``rows`` by one more (:func:`_small_lagged_gram`): the numbers of the strided block copies, without
+#: their per-block Python work. Longer ones by strided copies over the rectangles of the index.
 _SMALL_ASSEMBLY = 1024
 
 
@@ -315,27 +315,24 @@ def _gram_blocks(sums: _LagSums, average_same_lag: bool):
         yield blocks
 
 
-def _small_lagged_gram(sums: _LagSums, average_same_lag: bool, order: np.ndarray | None = None,
-                       rows: tuple[int, int] | None = None) -> np.ndarray:
-    """:func:`_lagged_gram` for short lagged vectors: the blocks of each ``δ`` written in lagged order by two strided
-    copies (views of the Gram along its block diagonals: the numbers of the block copies, without their per-block
-    Python work), then the rows ``rows`` (default all) of the Gram permuted by ``order`` (entry ``k`` of the lagged
-    vector to position ``i`` with ``order[i] = k``, :func:`_small_order`) taken by two takes."""
+def _small_lagged_gram(sums: _LagSums, average_same_lag: bool, index: np.ndarray | None = None) -> np.ndarray:
+    """:func:`_lagged_gram`, whole, for short lagged vectors: the blocks of each ``δ`` written by two fancy-indexed
+    copies (the same numbers as the strided block copies, without their per-block Python work), in lagged order or
+    straight to the rows and columns of ``index`` (a permutation)."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
-    G = np.empty((Lp1, c, Lp1, c))
-    s0, s1, s2, s3 = G.strides
-    # upper[δ, a] is block (a, a + δ) and lower[δ, a] the transpose of block (a + δ, a); only a < L + 1 − δ is used
-    upper = as_strided(G, shape=(Lp1, Lp1, c, c), strides=(s2, s0 + s2, s1, s3))
-    lower = as_strided(G, shape=(Lp1, Lp1, c, c), strides=(s0, s0 + s2, s3, s1))
+    lags = np.arange(Lp1)
+    G = np.empty((Lp1, c, Lp1, c) if index is None else (Lp1 * c, Lp1 * c))
     for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
-        upper[d, : Lp1 - d] = blocks
+        if index is None:
+            G[lags[: Lp1 - d], :, lags[d:], :] = blocks
+            if d:
+                G[lags[d:], :, lags[: Lp1 - d], :] = blocks.transpose(0, 2, 1)
+            continue
+        r, q = index[: Lp1 - d], index[d:]
+        G[r[:, :, None], q[:, None, :]] = blocks
         if d:
-            lower[d, : Lp1 - d] = blocks
-    G = G.reshape(Lp1 * c, Lp1 * c)
-    r0, r1 = (0, Lp1 * c) if rows is None else rows
-    if order is None:
-        return G if (r0, r1) == (0, Lp1 * c) else G[r0:r1].copy()
-    return G[order[r0:r1]].take(order, axis=1)  # C-ordered, as the strided route writes (``[:, order]`` is not)
+            G[q[:, :, None], r[:, None, :]] = blocks.transpose(0, 2, 1)
+    return G.reshape(Lp1 * c, Lp1 * c)
 
 
 def _small_order(index: np.ndarray) -> np.ndarray | None:
