@@ -138,12 +138,13 @@ def _pattern_term(h: np.ndarray, X4: np.ndarray, n: int) -> np.ndarray:
     return out.reshape(m * m, nc * nc)
 
 
-def normal_equations_gemm(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool):
+def normal_equations_gemm(h, Q, S_uu, D_uu, target, n: int, m: int, feedthrough: bool, weights=None):
     """:func:`normal_equations` by matrix products (:func:`_shift_weights`, :func:`_projected_gemm`) laid out in the
-    unknowns' order directly: the same sums in another order, equal to rounding (for the factor route)."""
+    unknowns' order directly: the same sums in another order, equal to rounding (for the factor route).
+    ``weights``: :func:`_shift_weights` of ``S_uu`` when at hand (it does not depend on the order)."""
     f, p, nc = h.shape
     S4, D4 = S_uu.reshape(f, m, f, m), D_uu.reshape(f, m, f, m)
-    M = _pattern_term(h, _shift_weights(S4), n)
+    M = _pattern_term(h, _shift_weights(S4) if weights is None else weights, n)
     M += _projected_gemm(projected_patterns(Q, h), D4)
     M = M.reshape(m, m, nc, nc).transpose(0, 2, 1, 3)  # [l, c, l', c']
     rhs = _rhs(h, target, m)

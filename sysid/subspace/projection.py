@@ -13,7 +13,7 @@ import scipy.linalg as sla
 from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain
 from .gram import _Layout
-from .markov import normal_equations, normal_equations_gemm, pattern_blocks
+from .markov import _shift_weights, normal_equations, normal_equations_gemm, pattern_blocks
 from .nested import NestedOrders
 from .riccati import conditioned_cholesky, doubling_gain, one_norm
 
@@ -267,11 +267,29 @@ def _normal_equations(proj: _Projection, A, C, Q, feedthrough: bool):
     Sc_uu, Sc_yu = proj.given_past
     if proj.exact and (n * m + p * m) * len(L.Yf) * len(L.Uf) <= _DENSE_BASIS_MAX:  # the dense basis, as before
         M, rhs = _dense_normal_equations(A, C, L, feedthrough, Q, S_uu, S_yu, Sc_uu, Sc_yu)
-    else:  # the same sums taken over the block-Toeplitz structure (markov.py)
+    elif proj.exact:  # the same sums taken over the block-Toeplitz structure (markov.py)
         target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
-        sums = normal_equations if proj.exact else normal_equations_gemm
-        M, rhs = sums(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m, feedthrough)
+        M, rhs = normal_equations(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu, target, n, m,
+                                  feedthrough)
+    else:  # by matrix products, with the terms no order changes computed once (the same numbers)
+        D_uu, D_yu, weights = _order_free_terms(proj)
+        target = S_yu + Q @ (Q.T @ D_yu)
+        M, rhs = normal_equations_gemm(pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, D_uu, target, n, m,
+                                       feedthrough, weights)
     return (0.5 * (M + M.T) if proj.exact else M), rhs
+
+
+def _order_free_terms(proj):
+    """The parts of the ``B, D`` normal equations that no order changes: ``Sc_uu − S_uu``, ``Sc_yu − S_yu`` and the
+    input covariance's shift weights (:func:`~.markov._shift_weights`), computed at the first order and kept on the
+    projection for the others (the same numbers; either projection class)."""
+    terms = getattr(proj, "_order_free", None)
+    if terms is None:
+        (S_uu, S_yu), (Sc_uu, Sc_yu) = proj.future_cov, proj.given_past
+        f, m = proj.layout.f, proj.layout.m
+        terms = (Sc_uu - S_uu, Sc_yu - S_yu, _shift_weights(S_uu.reshape(f, m, f, m)))
+        proj._order_free = terms
+    return terms
 
 
 def _solve_b_d(M, rhs, n: int, L: _Layout, feedthrough: bool, factor=None):

@@ -41,6 +41,7 @@ def test_short_lagged_gram_equals_the_strided_route_bit_for_bit(monkeypatch, n_l
     monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)  # every size through the strided block copies
     for (index, rows, avg), W in zip(cases, quick):
         assert np.array_equal(W, _lagged._lagged_gram(sums, index, rows, avg))
+        assert W.flags.c_contiguous  # the layout too: later products round by the layout they are given
 
 
 def test_short_lagged_gram_is_the_gram_of_the_lagged_vectors():

@@ -93,6 +93,24 @@ def test_normal_equations_by_matrix_products_equal_the_dense_basis(feedthrough, 
     np.testing.assert_allclose(rhs, rhs_ref, rtol=1e-11, atol=1e-11 * np.abs(rhs_ref).max())
 
 
+def test_terms_kept_for_every_candidate_order_give_the_equations_computed_afresh_bit_for_bit():
+    # reference: normal_equations_gemm with every term computed for the order at hand (the route before the
+    # order-free terms were kept on the projection); orders 2 and 3 read the terms order 1 kept
+    proj, rng = _projection(4, 6, 2, 3)
+    L = proj.layout
+    (S_uu, S_yu), (Sc_uu, Sc_yu) = proj.future_cov, proj.given_past
+    for n in (1, 2, 3):
+        A, C = 0.3 * rng.standard_normal((n, n)), rng.standard_normal((L.p, n))
+        Q = np.linalg.qr(proj.gamma(n))[0]
+        for feedthrough in (True, False):
+            M, rhs = projection._normal_equations(proj, A, C, Q, feedthrough)
+            M_ref, rhs_ref = markov.normal_equations_gemm(
+                markov.pattern_blocks(A, C, L.f, feedthrough), Q, S_uu, Sc_uu - S_uu,
+                S_yu + Q @ (Q.T @ (Sc_yu - S_yu)), n, L.m, feedthrough)
+            assert np.array_equal(M, M_ref) and np.array_equal(rhs, rhs_ref)
+    assert proj._order_free[2] is projection._order_free_terms(proj)[2]  # computed once
+
+
 def test_b_d_at_a_long_future_window_stays_small_in_memory():
     # f = 50 future blocks, 20 outputs, 3 inputs, order 10 with a direct term: the dense basis alone was
     # (3·10 + 20·3) x 1000 x 150 doubles = 108 MB, and three such arrays were live at once (over 300 MB).
