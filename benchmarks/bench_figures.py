@@ -34,7 +34,7 @@ _INPUTS = "figure_inputs.pkl"
 # (module, function) recorded while the demo runs; the network figures and the bench report's input
 _RECORDED = [("predict", "prediction_figure"), ("network", "gramian_spectrum_figure"),
              ("network", "impulse_response_figure"), ("network", "ranking_figure"), ("plan", "plan_figure"),
-             ("pulse_plan", "pulse_plan_figure"), ("bench", "report_figures")]
+             ("pulse_plan", "pulse_plan_figure"), ("bench", "drawing")]
 # the bench report's figures, as report_figures makes them (name, function, extra arguments)
 _REPORT = [("predictions", "fig_predictions", ()), ("accuracy_vs_steps", "fig_accuracy", ()),
            ("closed_loop", "fig_closed_loop", ()), ("tracking_vs_energy", "fig_tradeoff", ()),
@@ -119,7 +119,7 @@ def _jobs(calls, package: str) -> list:
     jobs, seen = [], {}
     for mod, name, args, kwargs in calls:
         module = importlib.import_module(f"{package}.{mod}")
-        if name == "report_figures":
+        if name in ("report_figures", "drawing"):  # the bench report: its result
             result = args[0]
             colours = module.method_colours(result)
             for stem, fn, extra in _REPORT:
