@@ -27,6 +27,8 @@ from matplotlib.axis import XAxis, YAxis
 from matplotlib.lines import Line2D
 from matplotlib.text import Text
 
+from ._fast_text import FastText, adopt
+
 __all__ = ["FastAxes", "can_clone", "clone_tick"]
 
 _PARTS = ("tick1line", "tick2line", "gridline", "label1", "label2")
@@ -38,7 +40,7 @@ def can_clone(tick) -> bool:
     parts = [getattr(tick, name, None) for name in _PARTS]
     lines, labels = parts[:3], parts[3:]
     return (all(type(p) is Line2D and "_callbacks" in vars(p) and "_invalidx" in vars(p) for p in lines)
-            and all(type(p) is Text and "_callbacks" in vars(p) and "_fontproperties" in vars(p)
+            and all(type(p) in (Text, FastText) and "_callbacks" in vars(p) and "_fontproperties" in vars(p)
                     and vars(p).get("_bbox_patch", 0) is None for p in labels)
             and "_callbacks" in vars(tick))
 
@@ -101,6 +103,11 @@ class _TickCopies:
         """:meth:`matplotlib.axis.Axis.get_minor_ticks`, new ticks copied from the first."""
         return self._ticks(False, numticks)
 
+    def _get_tick(self, major):
+        tick = super()._get_tick(major)
+        adopt(tick.label1, tick.label2)  # their layouts kept (._fast_text); the copies keep the class
+        return tick
+
 
 class _FastXAxis(_TickCopies, XAxis):
     pass
@@ -122,3 +129,9 @@ class FastAxes(Axes):
             swap = _SWAP.get(type(axis))
             if swap is not None:  # nothing of its own to add: the same object, with the methods above
                 axis.__class__ = swap
+                adopt(axis.label, axis.offsetText)
+
+    def clear(self):
+        """:meth:`matplotlib.axes.Axes.clear`; the new titles' layouts are kept (:mod:`._fast_text`)."""
+        super().clear()
+        adopt(*(getattr(self, name, None) for name in ("title", "_left_title", "_right_title")))

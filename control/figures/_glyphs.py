@@ -12,7 +12,8 @@ Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output
 ``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`). Every
 PNG saved with no option but ``dpi`` and ``format`` is drawn on :class:`~._fast_agg.FastCanvas` (the text work kept
 across saves, an opaque figure written as RGB: the same pixels). Fitting the fonts reads the tick labels as the
-strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`).
+strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`). Its plain axes are
+:class:`~._fast_ticks.FastAxes`: ticks copied from the first, text layouts kept (:mod:`._fast_text`).
 """
 
 from __future__ import annotations

@@ -1,7 +1,9 @@
-"""Ticks copied from an axis' first tick (control/figures/_fast_ticks.py) draw the pixels matplotlib's own ticks draw.
+"""Ticks copied from an axis' first tick (control/figures/_fast_ticks.py), and texts whose layout is kept
+(control/figures/_fast_text.py), draw the pixels matplotlib's own ticks and texts draw.
 
-Outside check: matplotlib's own :class:`~matplotlib.axes.Axes` (the reference library's tick making: each tick built
-from the axis' settings, then given the first tick's properties) on the same figure, pixel for pixel.
+Outside check: matplotlib's own :class:`~matplotlib.axes.Axes` and :class:`~matplotlib.text.Text` (the reference
+library's tick making: each tick built from the axis' settings, then given the first tick's properties; its text
+layout, computed at each use) on the same figure, pixel for pixel and extent for extent.
 """
 
 import io
@@ -10,10 +12,12 @@ import numpy as np
 import pytest
 from matplotlib.axes import Axes
 from matplotlib.axis import Axis
+from matplotlib.text import Text
 from matplotlib.ticker import AutoMinorLocator
 from PIL import Image
 
-from stimsteer.control.figures import _fast_ticks
+from stimsteer.control.figures import _fast_text, _fast_ticks
+from stimsteer.control.figures._fast_text import FastText
 from stimsteer.control.figures._fast_ticks import FastAxes, clone_tick
 from stimsteer.control.figures._glyphs import GlyphSafeFigure
 
@@ -55,10 +59,13 @@ def test_plain_axes_of_the_figures_copy_their_ticks():
     assert not isinstance(_figure(Axes).axes[0], FastAxes)  # an explicit class is kept
 
 
-@pytest.mark.parametrize("copied", [True, False], ids=["copied", "matplotlib's-way"])
-def test_the_ticks_draw_matplotlibs_pixels(monkeypatch, copied):
-    if not copied:  # the fallback for a matplotlib whose private attributes differ
+@pytest.mark.parametrize("copied, kept", [(True, True), (False, True), (True, False)],
+                         ids=["copied+kept", "matplotlib's-ticks", "matplotlib's-layout"])
+def test_the_ticks_draw_matplotlibs_pixels(monkeypatch, copied, kept):
+    if not copied:  # the fallbacks for a matplotlib whose private attributes differ
         monkeypatch.setattr(_fast_ticks, "can_clone", lambda tick: False)
+    if not kept:
+        monkeypatch.setattr(_fast_text, "_LAYOUT", False)
     ours, theirs = _pixels(_figure()), _pixels(_figure(Axes))
     assert ours.shape == theirs.shape and np.array_equal(ours, theirs)
 
@@ -88,3 +95,24 @@ def test_only_the_first_tick_of_each_list_is_built(monkeypatch):
     _pixels(fig)
     assert sorted(built) == [False, False, True, True]  # matplotlib's first major and minor tick of each axis
     assert len(ax.xaxis.majorTicks) > 2 and len(ax.yaxis.majorTicks) > 2  # the others: copies
+
+
+def test_a_kept_layout_follows_every_change_of_the_text():
+    from stimsteer.control.figures._fast_agg import FastCanvas, FastRenderer, forget
+
+    forget()
+    figs = [GlyphSafeFigure(figsize=(3.0, 2.0)) for _ in range(2)]
+    axes = [figs[0].add_subplot(), figs[1].add_subplot(axes_class=Axes)]
+    assert type(axes[0].title) is FastText and type(axes[1].title) is Text
+    assert type(axes[0].xaxis.get_major_ticks()[0].label1) is FastText
+    renderers = [FastCanvas(fig).get_renderer() for fig in figs]
+    changes = ({}, {"text": "a title"}, {"fontsize": 15}, {"rotation": 30}, {"ha": "left"}, {"va": "top"},
+               {"text": "two\nlines"}, {"linespacing": 2.0}, {"multialignment": "right"}, {"rotation_mode": "anchor"},
+               {"fontweight": "bold"}, {"text": r"$x^2$ [µV]"}, {"rotation": 0})
+    for change in changes:
+        boxes = []
+        for ax, renderer in zip(axes, renderers):
+            ax.title.set(**change)
+            boxes.append(ax.title.get_window_extent(renderer).bounds)
+        assert boxes[0] == boxes[1], change
+    assert FastRenderer._layouts  # (the layouts were kept)
