@@ -21,6 +21,9 @@ is made as matplotlib makes it.
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
+
 from matplotlib import cbook
 from matplotlib.axes import Axes
 from matplotlib.axis import XAxis, YAxis
@@ -29,7 +32,23 @@ from matplotlib.text import Text
 
 from ._fast_text import FastText, adopt
 
-__all__ = ["FastAxes", "can_clone", "clone_tick"]
+__all__ = ["FastAxes", "can_clone", "clone_tick", "one_draw"]
+
+# the ticks each axis placed during the draw under way (one_draw), by what placing them depends on
+_PLACED: contextvars.ContextVar = contextvars.ContextVar("stimsteer_placed_ticks", default=None)
+
+
+@contextlib.contextmanager
+def one_draw():
+    """Within the block (one draw of a figure, nothing changed by hand meanwhile), an axis of :class:`FastAxes`
+    places its ticks once for each view interval and axes box: matplotlib places them again for the axis' extent,
+    each of its two spines' extents, its label beside each sibling's tick labels and its draw (4 to 8 times per
+    axis and save), always with the same locator, formatter and settings, so with the same result."""
+    token = _PLACED.set({})
+    try:
+        yield
+    finally:
+        _PLACED.reset(token)
 
 _PARTS = ("tick1line", "tick2line", "gridline", "label1", "label2")
 
@@ -102,6 +121,18 @@ class _TickCopies:
     def get_minor_ticks(self, numticks=None):
         """:meth:`matplotlib.axis.Axis.get_minor_ticks`, new ticks copied from the first."""
         return self._ticks(False, numticks)
+
+    def _update_ticks(self):
+        placed = _PLACED.get()
+        if placed is None:
+            return super()._update_ticks()
+        axes = self.axes
+        key = (id(self), tuple(self.get_view_interval()), axes.bbox.bounds, axes.get_figure(root=True).dpi,
+               id(self.major.locator), id(self.major.formatter), id(self.minor.locator), id(self.minor.formatter))
+        found = placed.get(key)
+        if found is None:
+            found = placed[key] = super()._update_ticks()
+        return list(found)
 
     def _get_tick(self, major):
         tick = super()._get_tick(major)

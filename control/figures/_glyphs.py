@@ -29,7 +29,7 @@ from matplotlib.figure import Figure
 from matplotlib.text import Text
 
 from ._fast_agg import FastCanvas
-from ._fast_ticks import FastAxes
+from ._fast_ticks import FastAxes, one_draw
 from ._one_pass import constrained
 
 __all__ = ["GlyphSafeFigure", "caption_note", "undrawable"]
@@ -167,7 +167,8 @@ class GlyphSafeFigure(Figure):
         try:
             if dpi is not None and dpi != "figure":
                 self.set_dpi(dpi)
-            FastCanvas(self).print_png_fast(fname)
+            with one_draw():  # ticks placed once per axes box (._fast_ticks.one_draw)
+                FastCanvas(self).print_png_fast(fname)
         finally:
             self.set_canvas(canvas)
             self.set_dpi(own_dpi)

@@ -116,3 +116,21 @@ def test_a_kept_layout_follows_every_change_of_the_text():
             boxes.append(ax.title.get_window_extent(renderer).bounds)
         assert boxes[0] == boxes[1], change
     assert FastRenderer._layouts  # (the layouts were kept)
+
+
+def test_ticks_are_placed_once_per_axes_box_within_a_draw(monkeypatch):
+    import contextlib
+
+    from stimsteer.control.figures import _glyphs
+
+    placed = []
+    original = Axis._update_ticks
+    monkeypatch.setattr(Axis, "_update_ticks", lambda axis: placed.append(axis) or original(axis))
+    once = _pixels(_figure())
+    n_once = len(placed)
+    placed.clear()
+    monkeypatch.setattr(_glyphs, "one_draw", contextlib.nullcontext)  # matplotlib's: placed at every use
+    every = _pixels(_figure())
+    assert np.array_equal(once, every)
+    assert n_once < len(placed) / 2
+    assert _fast_ticks._PLACED.get() is None  # only within a draw
