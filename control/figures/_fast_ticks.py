@@ -15,6 +15,10 @@ agree unless a single tick was restyled by hand in a way ``update_from`` does no
 labels through the axis). The first tick of each list is matplotlib's own, made when matplotlib makes it. The pixels
 are matplotlib's (tests/control/test_fast_ticks.py).
 
+Within one draw (:func:`one_draw`, which :class:`~._glyphs.GlyphSafeFigure` wraps its PNG draw in), an axis places
+its ticks (locator, formatter, positions and labels) once for each view interval and axes box, where matplotlib
+places them again at every use; outside a draw, as matplotlib does.
+
 The copy reads matplotlib's private attributes (3.11): where they are not as expected (:func:`can_clone`), the tick
 is made as matplotlib makes it.
 """
@@ -130,14 +134,21 @@ class _TickCopies:
         key = (id(self), tuple(self.get_view_interval()), axes.bbox.bounds, axes.get_figure(root=True).dpi,
                id(self.major.locator), id(self.major.formatter), id(self.minor.locator), id(self.minor.formatter))
         found = placed.get(key)
-        if found is None:
-            found = placed[key] = super()._update_ticks()
-        return list(found)
+        # shared axes share their formatters: another axis' placing since ours changed their state (offset, locs)
+        if found is None or found[1] is not _locs(self.major) or found[2] is not _locs(self.minor):
+            ticks = super()._update_ticks()
+            found = placed[key] = (ticks, _locs(self.major), _locs(self.minor))
+        return list(found[0])
 
     def _get_tick(self, major):
         tick = super()._get_tick(major)
         adopt(tick.label1, tick.label2)  # their layouts kept (._fast_text); the copies keep the class
         return tick
+
+
+def _locs(ticker):
+    state = vars(ticker.formatter)  # the places it was last given (set_locs: a new array each time); "locs" < 3.11
+    return state.get("_locs", state.get("locs"))
 
 
 class _FastXAxis(_TickCopies, XAxis):

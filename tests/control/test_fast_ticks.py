@@ -134,3 +134,17 @@ def test_ticks_are_placed_once_per_axes_box_within_a_draw(monkeypatch):
     assert np.array_equal(once, every)
     assert n_once < len(placed) / 2
     assert _fast_ticks._PLACED.get() is None  # only within a draw
+
+
+def test_axes_sharing_a_formatter_place_their_own_ticks():
+    def shared(axes_class=None):
+        kw = {} if axes_class is None else {"axes_class": axes_class}
+        fig = GlyphSafeFigure(figsize=(6.0, 3.0), layout="constrained")
+        grid = fig.add_gridspec(2, 2, width_ratios=[3.0, 1.0])
+        wide = fig.add_subplot(grid[0, :], **kw)
+        narrow = fig.add_subplot(grid[1, 1], sharex=wide, **kw)  # another width: other ticks, one formatter
+        for ax in (wide, narrow):
+            ax.plot(1e5 + np.linspace(0.0, 10.0, 20), np.arange(20.0))  # an offset ("+1e5") on the axis
+        return fig
+
+    assert np.array_equal(_pixels(shared()), _pixels(shared(Axes)))
