@@ -4,7 +4,8 @@ The demo writes 9 PNGs in its own process (``predict`` ×2, ``network`` ×3, ``p
 ``plan.png`` + ``plan_pulses.png``) and 8 in the bench report. This script first runs the demo once in this process
 with the figure functions' arguments recorded (``--inputs DIR``, reused when it already holds them), then draws
 every figure from those arguments with this tree's ``control/figures`` and with the same package at a git commit
-(``--before REF``, loaded beside it under another name), alternating the two in each round, and prints the CPU time
+(``--before REF``, loaded beside it under another name), the two versions back to back for each figure (their
+order alternating), and prints the CPU time
 (``process_time``: build + save to PNG bytes) of each figure, the minimum over the rounds after a warm-up round, the
 totals, their ratio, the PNG sizes, and the 1-minute load average before and after.
 
@@ -19,6 +20,7 @@ by side.
 from __future__ import annotations
 
 import argparse
+import gc
 import importlib.util
 import io
 import os
@@ -34,7 +36,7 @@ _INPUTS = "figure_inputs.pkl"
 # (module, function) recorded while the demo runs; the network figures and the bench report's input
 _RECORDED = [("predict", "prediction_figure"), ("network", "gramian_spectrum_figure"),
              ("network", "impulse_response_figure"), ("network", "ranking_figure"), ("plan", "plan_figure"),
-             ("pulse_plan", "pulse_plan_figure"), ("bench", "report_figures")]
+             ("pulse_plan", "pulse_plan_figure"), ("bench", "drawing")]
 # the bench report's figures, as report_figures makes them (name, function, extra arguments)
 _REPORT = [("predictions", "fig_predictions", ()), ("accuracy_vs_steps", "fig_accuracy", ()),
            ("closed_loop", "fig_closed_loop", ()), ("tracking_vs_energy", "fig_tradeoff", ()),
@@ -119,7 +121,7 @@ def _jobs(calls, package: str) -> list:
     jobs, seen = [], {}
     for mod, name, args, kwargs in calls:
         module = importlib.import_module(f"{package}.{mod}")
-        if name == "report_figures":
+        if name in ("report_figures", "drawing"):  # the bench report: its result
             result = args[0]
             colours = module.method_colours(result)
             for stem, fn, extra in _REPORT:
@@ -142,15 +144,24 @@ def _forget(package: str) -> None:
         pass
 
 
-def _timed(jobs, package: str) -> dict:
+def _timed(versions: dict, packages: dict, rnd: int) -> dict:
+    """``{(version, figure): (CPU s, PNG)}`` of one round: the versions draw each figure back to back (their order
+    alternating from figure to figure and round to round), so that both see the same load."""
     out = {}
-    _forget(package)
-    for name, make in jobs:
+    for package in packages.values():
+        _forget(package)
+    names = [name for name, _ in next(iter(versions.values()))]
+    for k, name in enumerate(names):
         if name == "report_predictions":  # the report's figures are drawn in the bench step's own process
-            _forget(package)
-        c0 = time.process_time()
-        png = make()
-        out[name] = (time.process_time() - c0, png)
+            for package in packages.values():
+                _forget(package)
+        order = list(versions) if (k + rnd) % 2 == 0 else list(versions)[::-1]
+        for version in order:
+            make = dict(versions[version])[name]
+            gc.collect()  # the previous figures' garbage is not this figure's time
+            c0 = time.process_time()
+            png = make()
+            out[(version, name)] = (time.process_time() - c0, png)
     return out
 
 
@@ -179,13 +190,12 @@ def main(argv=None) -> int:
     best: dict = {}
     with threadpool_limits(limits=1):
         for rnd in range(args.rounds + 1):
-            for version, jobs in versions.items():
-                times = _timed(jobs, packages[version])
-                if rnd == 0:  # warm-up: imports, font caches
-                    continue
-                for name, (cpu, png) in times.items():
-                    old = best.get((version, name))
-                    best[(version, name)] = (min(cpu, old[0]) if old else cpu, png)
+            times = _timed(versions, packages, rnd)
+            if rnd == 0:  # warm-up: imports, font caches
+                continue
+            for key, (cpu, png) in times.items():
+                old = best.get(key)
+                best[key] = (min(cpu, old[0]) if old else cpu, png)
     load1 = os.getloadavg()[0]
     _print(versions, best, args, load0, load1)
     return 0

@@ -56,6 +56,7 @@ class FastRenderer(RendererAgg):
     _bitmaps: dict = {}
     _heights: dict = {}
     _sizes: dict = {}
+    _layouts: dict = {}  # the layouts of :class:`._fast_text.FastText`
 
     def get_text_width_height_descent(self, s, prop, ismath):
         """The width, height and descent of ``s`` in pixels, measured once per process for plain text."""
@@ -118,7 +119,8 @@ class FastRenderer(RendererAgg):
 
 def forget() -> None:
     """Empty the process-wide caches of :class:`FastRenderer` (benchmarks: a fresh process's first figures)."""
-    for cache in (FastRenderer._shapes, FastRenderer._bitmaps, FastRenderer._heights, FastRenderer._sizes):
+    for cache in (FastRenderer._shapes, FastRenderer._bitmaps, FastRenderer._heights, FastRenderer._sizes,
+                  FastRenderer._layouts):
         cache.clear()
 
 

@@ -12,7 +12,8 @@ Matplotlib's ``savefig`` draws such a figure twice (a layout draw without output
 ``layout="constrained"`` is laid out in one measuring pass instead of matplotlib's two (:mod:`._one_pass`). Every
 PNG saved with no option but ``dpi`` and ``format`` is drawn on :class:`~._fast_agg.FastCanvas` (the text work kept
 across saves, an opaque figure written as RGB: the same pixels). Fitting the fonts reads the tick labels as the
-strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`).
+strings the axes' formatters write, so it makes no ticks (:meth:`GlyphSafeFigure._fit_fonts`). Its plain axes are
+:class:`~._fast_ticks.FastAxes`: ticks copied from the first, text layouts kept (:mod:`._fast_text`).
 """
 
 from __future__ import annotations
@@ -22,11 +23,13 @@ import os
 import warnings
 
 from matplotlib import font_manager
+from matplotlib.axes import Axes
 from matplotlib.axis import Axis
 from matplotlib.figure import Figure
 from matplotlib.text import Text
 
 from ._fast_agg import FastCanvas
+from ._fast_ticks import FastAxes, one_draw
 from ._one_pass import constrained
 
 __all__ = ["GlyphSafeFigure", "caption_note", "undrawable"]
@@ -113,6 +116,13 @@ class GlyphSafeFigure(Figure):
     def __init__(self, *args, layout=None, **kwargs):
         super().__init__(*args, layout=constrained() if layout == "constrained" else layout, **kwargs)
 
+    def add_subplot(self, *args, **kwargs):
+        """:meth:`matplotlib.figure.Figure.add_subplot` (and so ``subplots``); plain axes are
+        :class:`~._fast_ticks.FastAxes` (their ticks copied from the first: the same pixels, made faster)."""
+        if not {"projection", "polar", "axes_class"} & kwargs.keys() and not (args and isinstance(args[0], Axes)):
+            kwargs["axes_class"] = FastAxes
+        return super().add_subplot(*args, **kwargs)
+
     def _fit_fonts(self) -> list:
         """Give each text with missing characters a fallback font; the characters no font has.
 
@@ -157,7 +167,8 @@ class GlyphSafeFigure(Figure):
         try:
             if dpi is not None and dpi != "figure":
                 self.set_dpi(dpi)
-            FastCanvas(self).print_png_fast(fname)
+            with one_draw():  # ticks placed once per axes box (._fast_ticks.one_draw)
+                FastCanvas(self).print_png_fast(fname)
         finally:
             self.set_canvas(canvas)
             self.set_dpi(own_dpi)
