@@ -15,6 +15,7 @@ from matplotlib.figure import Figure
 
 from ._forked import ForkedDrawing
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 from ..evaluation import BenchResult, t_interval
 
@@ -45,6 +46,7 @@ def _figure(nrows: int, ncols: int, figsize, **kwargs):
         ax.spines[["top", "right"]].set_visible(False)
         ax.grid(True, **_GRID)
         ax.tick_params(labelsize=_TEXT)
+    trim_ticks(fig)  # the view is read when the figure is drawn, after the data are in
     return fig, axes
 
 

@@ -18,6 +18,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 __all__ = ["plan_figure", "MAX_INPUT_STRIPS", "MAX_RANGE_ROWS"]
 
@@ -77,6 +78,7 @@ def plan_figure(plan, time_s, output_units, tracked, ranges=None, what: str = ""
     fig.suptitle(head, fontsize=11, x=0.01, ha="left")
     # the figure travels alone (slides, lab notes), so it carries the caution itself
     fig.supxlabel(textwrap.fill(plan.caution, 150), fontsize=7, color="#7a4a00", x=0.01, ha="left")
+    trim_ticks(fig)
     return fig
 
 
