@@ -15,6 +15,7 @@ from matplotlib.figure import Figure
 
 from ._forked import ForkedDrawing
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 from ..evaluation import BenchResult, t_interval
 
@@ -45,6 +46,7 @@ def _figure(nrows: int, ncols: int, figsize, **kwargs):
         ax.spines[["top", "right"]].set_visible(False)
         ax.grid(True, **_GRID)
         ax.tick_params(labelsize=_TEXT)
+    trim_ticks(fig)  # the view is read when the figure is drawn, after the data are in
     return fig, axes
 
 
@@ -161,8 +163,10 @@ def _point(ax, x, values, colour):
 
 def _paired_bands(axd, g, result, colours, H) -> None:
     """Paired differences in R² (direct − indirect) per step ahead, and of the free run, on ``axd``."""
-    wide = {label: g[(g["label"] == label)].pivot_table(index="split", columns=["mode", "step"], values="r2")
-            for label in (*result.labels("indirect"), *result.labels("direct"))}  # each label's table once
+    # one table of every label (g has one row per label, mode, split and step: each cell is that row's value)
+    table = g.pivot_table(index="split", columns=["label", "mode", "step"], values="r2")
+    wide = {label: table[label] if label in table.columns.get_level_values(0) else pd.DataFrame()
+            for label in (*result.labels("indirect"), *result.labels("direct"))}
     for a in result.labels("indirect"):
         for b in result.labels("direct"):
             d = (wide[b] - wide[a]).dropna()
@@ -335,6 +339,23 @@ def fig_sweep(result: BenchResult, colours: dict, sweep: str, xlabel: str, title
     return fig
 
 
+def _compute_bars(ax, rows: pd.DataFrame, labels: list, colours: dict) -> None:
+    """One bar per label at height ``i`` (its first row's mean), with its interval where it is finite: one ``barh``
+    for the bars with an interval and one for those without (the bars do not overlap: the same picture as a bar
+    each)."""
+    first = rows.drop_duplicates("label").set_index("label")
+    shown = [(i, first.loc[label]) for i, label in enumerate(labels) if label in first.index]
+    for finite in (True, False):
+        part = [(i, r) for i, r in shown if bool(np.isfinite(r["ci_low"])) == finite]
+        if not part:
+            continue
+        at = [i for i, _ in part]
+        mean = np.array([r["mean"] for _, r in part], dtype=float)
+        err = np.array([[r["mean"] - r["ci_low"] for _, r in part], [r["ci_high"] - r["mean"] for _, r in part]],
+                       dtype=float) if finite else None
+        ax.barh(at, mean, xerr=err, color=[colours[labels[i]] for i in at], height=0.6, capsize=3)
+
+
 def fig_compute(result: BenchResult, colours: dict):
     """Wall time of fitting, of one prediction window and of one control solve, per method."""
     s = result.sweeps
@@ -345,14 +366,7 @@ def fig_compute(result: BenchResult, colours: dict):
     fig, axes = _figure(1, len(panels), (3.0 * len(panels), 2.6))
     labels = list(colours)[::-1]
     for ax, (metric, xlabel) in zip(axes[0], panels):
-        for i, label in enumerate(labels):
-            g = base[(base["metric"] == metric) & (base["label"] == label)]
-            if g.empty:
-                continue
-            r = g.iloc[0]
-            err = None if not np.isfinite(r["ci_low"]) else [[r["mean"] - r["ci_low"]],
-                                                              [r["ci_high"] - r["mean"]]]
-            ax.barh([i], [r["mean"]], xerr=err, color=colours[label], height=0.6, capsize=3)
+        _compute_bars(ax, base[base["metric"] == metric], labels, colours)
         ax.set_yticks(range(len(labels)))
         ax.set_yticklabels(labels if ax is axes[0, 0] else [""] * len(labels))
         _labels(ax, xlabel)

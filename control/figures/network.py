@@ -10,6 +10,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 __all__ = ["gramian_spectrum_figure", "impulse_response_figure", "ranking_figure", "MAX_GRID", "MAX_BARS",
            "MAX_MAP_CHANNELS", "MAX_MAP_SITES"]
@@ -63,6 +64,7 @@ def gramian_spectrum_figure(eigenvalues, horizon_steps, condition_number: float,
     ax.set_ylabel("eigenvalue (output units² per input unit² per sample)", fontsize=8)
     ax.set_title(f"Spectrum of the {what} ({horizon}; condition {condition_number:.3g})", fontsize=9)
     _plain_axes(ax)
+    trim_ticks(fig)
     fig.tight_layout()
     return fig
 
@@ -120,6 +122,7 @@ def impulse_response_figure(h, model, units=None) -> Figure:
     notes.append(f"colour clipped at ±{scale:.3g} (99.5th percentile of |response|)")
     fig.suptitle(f"Response maps of the fitted {model.n_states}-state model: each site's unit impulse, every "
                  f"channel over time\n{'; '.join(notes)}", fontsize=9)
+    trim_ticks(fig)
     return fig
 
 
@@ -159,5 +162,6 @@ def ranking_figure(labels, values, title: str, xlabel: str, log: bool | None = N
     ax.spines[["top", "right"]].set_visible(False)
     ax.grid(axis="x", color="0.92", lw=0.6)
     ax.tick_params(labelsize=7)
+    trim_ticks(fig)
     fig.tight_layout()
     return fig

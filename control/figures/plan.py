@@ -18,6 +18,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 __all__ = ["plan_figure", "MAX_INPUT_STRIPS", "MAX_RANGE_ROWS"]
 
@@ -77,6 +78,7 @@ def plan_figure(plan, time_s, output_units, tracked, ranges=None, what: str = ""
     fig.suptitle(head, fontsize=11, x=0.01, ha="left")
     # the figure travels alone (slides, lab notes), so it carries the caution itself
     fig.supxlabel(textwrap.fill(plan.caution, 150), fontsize=7, color="#7a4a00", x=0.01, ha="left")
+    trim_ticks(fig)
     return fig
 
 
@@ -155,23 +157,37 @@ def _range_rows(p, tracked, ranges) -> list:
     return order[:MAX_RANGE_ROWS]
 
 
+def _range_marks(ax, plan, rows, tracked, ranges) -> None:
+    """The marks of the range chart, one artist per kind for all rows (row ``r`` at height ``len(rows) - 1 - r``):
+    the rows do not overlap, so each row's grey bar, bar and tick stack as they would drawn row by row."""
+    rows = np.asarray(rows, dtype=int)
+    pos = np.arange(rows.size)[::-1].astype(float)
+    y = plan.predicted_outputs[:, rows]
+    lo, hi = y.min(axis=0), y.max(axis=0)
+    if ranges is not None:
+        rec_lo, rec_hi = ranges.recorded_low[rows], ranges.recorded_high[rows]
+        seen = np.isfinite(rec_lo)
+        if seen.any():
+            ax.barh(pos[seen], (rec_hi - rec_lo)[seen], left=rec_lo[seen], height=0.8, color=_RECORDED, lw=0)
+    flagged = ranges.flagged[rows] if ranges is not None else np.zeros(rows.size, bool)
+    ax.barh(pos, np.maximum(hi - lo, 1e-12), left=lo, height=0.42, color=[_WARN if f else _INK for f in flagged],
+            lw=0)
+    start = ranges.start[rows] if ranges is not None else y[0]
+    # the start ticks as one line broken by NaNs (a vertical stroke per row)
+    gaps = np.full(rows.size, np.nan)
+    ax.plot(np.column_stack([start, start, gaps]).ravel(),
+            np.column_stack([pos - 0.32, pos + 0.32, gaps]).ravel(), color="black", lw=1.0)
+    if plan.target_kind == "output":
+        aimed = np.asarray(tracked, bool)[rows]
+        if aimed.any():
+            ax.plot(plan.target[:, rows[aimed]].mean(axis=0), pos[aimed], "D", color="white", mec=_INK, ms=5)
+
+
 def _range_chart(ax, plan, units, tracked, ranges):
     """Every output: recorded range (grey), predicted range (bar), start (tick), target (diamond)."""
     p = len(plan.output_names)
     rows = _range_rows(p, tracked, ranges)
-    y = plan.predicted_outputs
-    for r, j in enumerate(rows):
-        pos = len(rows) - 1 - r
-        flagged = ranges is not None and ranges.flagged[j]
-        if ranges is not None and np.isfinite(ranges.recorded_low[j]):
-            ax.barh(pos, ranges.recorded_high[j] - ranges.recorded_low[j], left=ranges.recorded_low[j], height=0.8,
-                    color=_RECORDED, lw=0)
-        lo, hi = y[:, j].min(), y[:, j].max()
-        ax.barh(pos, max(hi - lo, 1e-12), left=lo, height=0.42, color=_WARN if flagged else _INK, lw=0)
-        start = ranges.start[j] if ranges is not None else y[0, j]
-        ax.plot([start, start], [pos - 0.32, pos + 0.32], color="black", lw=1.0)
-        if plan.target_kind == "output" and tracked[j]:
-            ax.plot(plan.target[:, j].mean(), pos, "D", color="white", mec=_INK, ms=5)
+    _range_marks(ax, plan, rows, tracked, ranges)
     flags = ranges.flagged if ranges is not None else np.zeros(p, bool)
     labels = [f"{plan.output_names[j]}{' ◆' if tracked[j] else ''}{' !' if flags[j] else ''}" for j in rows]
     ax.set_yticks(range(len(rows))[::-1], labels, fontsize=7)

@@ -5,6 +5,7 @@ from __future__ import annotations
 from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 __all__ = ["prediction_figure", "MAX_PANELS"]
 
@@ -54,4 +55,5 @@ def prediction_figure(pred, what: str = "") -> Figure:
         else ""
     by = f" by {what}" if what else ""
     fig.suptitle(f"Predicted response{by} from {pred.start}{note}", fontsize=10)
+    trim_ticks(fig)
     return fig

@@ -22,6 +22,7 @@ from matplotlib.figure import Figure
 
 from .._pulse_text import _fmt, _unit, check_usage, delivered
 from ._glyphs import GlyphSafeFigure
+from ._in_view import trim_ticks
 
 __all__ = ["pulse_plan_figure", "pulse_plan_figure_of", "check_usage"]
 
@@ -80,6 +81,7 @@ def pulse_plan_figure(pulses, mapping, compiled, checks, *, status: str, horizon
                  fontsize=11, x=0.01, ha="left")
     if caution:
         fig.supxlabel(textwrap.fill(caution, 170), fontsize=7, color="#7a4a00", x=0.01, ha="left")
+    trim_ticks(fig)
     return fig
 
 
