@@ -41,7 +41,7 @@ _NETWORK_TARGET = "15,0,0,-10,0,0,0,0"  # one value per recorded contact, µV
 _BACKGROUND_STEP = "bench"
 _STOP_WAIT_S = 20.0  # how long a stopped background step may take to remove what it wrote
 # the young generation of Python's cycle collector while the steps run (Python's default is 700 objects)
-_YOUNG_OBJECTS = 20_000
+_YOUNG_OBJECTS = 50_000
 
 
 
@@ -179,8 +179,7 @@ def run_demo(out, *, run_step, force: bool = False, echo=print) -> Path:
         (tmp / "inputs").mkdir()
         (tmp / "models").mkdir()
         steps = list(zip(demo_steps(session, plant, limits, str(tmp)), demo_steps(session, plant, limits, str(out))))
-        _import_commands(steps)
-        with _collector_for_steps(), _Background.start(_BACKGROUND_STEP, steps, run_step, str(tmp), str(out)) as background:
+        with _collector_for_steps(steps), _Background.start(_BACKGROUND_STEP, steps, run_step, str(tmp), str(out)) as background:
             # the background step does not read the pattern: it starts first (it is the longest)
             with open_session_source(session) as demo:  # its header: the pattern needs no samples
                 _write_pattern(tmp / "inputs" / DEMO_PATTERN_FILE, demo.sample_rate_hz, demo.input_names,
@@ -214,10 +213,11 @@ def _import_commands(steps) -> None:
 
 
 @contextmanager
-def _collector_for_steps():
-    """Python's cycle collector set for the demo's steps, and put back as it was when they end.
+def _collector_for_steps(steps):
+    """Import the steps' command modules (:func:`_import_commands`) with Python's cycle collector set for the demo's
+    steps, and put it back as it was when they end.
 
-    The objects that exist now (the imported modules: about 130,000 tracked ones) are moved out of the collector's
+    The objects that exist once they are imported (about 130,000 tracked ones) are moved out of the collector's
     reach (:func:`gc.freeze`): they live as long as the process, and every full collection of the demo's processes
     walked them again, in the background step's child (forked from here) and its workers too, where the walk also
     copies the pages it touches. A young generation of :data:`_YOUNG_OBJECTS` instead of 700 lets the steps' short
@@ -228,14 +228,16 @@ def _collector_for_steps():
     """
     import gc
 
-    thresholds = gc.get_threshold()
-    gc.freeze()
-    gc.set_threshold(_YOUNG_OBJECTS, *thresholds[1:])
+    thresholds, frozen_before = gc.get_threshold(), gc.get_freeze_count()
     try:
+        gc.set_threshold(_YOUNG_OBJECTS, *thresholds[1:])
+        _import_commands(steps)
+        gc.freeze()
         yield
     finally:
         gc.set_threshold(*thresholds)
-        gc.unfreeze()
+        if not frozen_before:  # a caller's own frozen objects stay frozen (freezing is not undone in parts)
+            gc.unfreeze()
 
 
 def _run_here(run_step, argv, tmp: str, out: str) -> tuple[int, str]:
