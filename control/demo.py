@@ -222,9 +222,9 @@ def _collector_for_steps(steps):
     walked them again, in the background step's child (forked from here) and its workers too, where the walk also
     copies the pages it touches. A young generation of :data:`_YOUNG_OBJECTS` instead of 700 lets the steps' short
     lives end by reference counting before a collection looks at them. Collected, the demo's processes spent
-    1.2-1.4 s of CPU in the collector (589 young, 54 middle and 5 full collections in this process alone); with this,
-    0.3-0.4 s (measured with ``gc.callbacks`` over a whole demo, 2026-12-03). Cycles are still collected, and
-    nothing the steps compute depends on when.
+    1.0-1.3 s of CPU in the collector (590 young, 54 middle and 5 full collections in this process alone); with this,
+    0.31-0.35 s (measured with ``gc.callbacks`` over a whole demo, 2026-12-03; the largest child's resident memory
+    212 -> 235 MB). Cycles are still collected, and nothing the steps compute depends on when.
     """
     import gc
 
