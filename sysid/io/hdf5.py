@@ -232,7 +232,9 @@ class SessionFile(TrialLayout):
         self.sample_rate_hz = self._checked(Session._check_rate, h.attrs.get("sample_rate_hz"))
         self.trials = self._checked(Session._check_trials, self._dataset("trials", 2, "iu")[()], n)
         self.trials.setflags(write=False)
-        self.metadata = self._metadata()
+        self._metadata_text, self._metadata_parsed = _attr_str(h.attrs.get("metadata_json", "{}")), None
+        if not self._metadata_text.lstrip().startswith("{"):
+            self._metadata()  # not an object at all: said when the file is opened
         self.output_mask = self._output_mask(n)
         self._u_map, self._y_map = self._mapped(self._u), self._mapped(self._y)
 
@@ -290,14 +292,27 @@ class SessionFile(TrialLayout):
         return out[0], out[1]
 
     def _metadata(self) -> dict:
-        raw = self._h5.attrs.get("metadata_json", "{}")
         try:
-            meta = json.loads(_attr_str(raw))
+            meta = json.loads(self._metadata_text)
         except json.JSONDecodeError as exc:
             self._fail(f"expected the root attribute metadata_json to hold JSON; it does not ({exc}).")
         if not isinstance(meta, dict):
             self._fail(f"expected metadata_json to hold a JSON object; found {type(meta).__name__}.")
         return meta
+
+    @property
+    def metadata(self) -> dict:
+        """The session's metadata, parsed from the file's ``metadata_json`` when first asked for (a session with
+        recorded pulses carries a large one: the demo's is 974 kB, 15 ms to parse, and most opens never read it).
+
+        Raises
+        ------
+        FileFormatError
+            ``metadata_json`` does not hold a JSON object.
+        """
+        if self._metadata_parsed is None:
+            self._metadata_parsed = self._metadata()
+        return self._metadata_parsed
 
     # ------------------------------------------------------------------------------------------ properties
     @property

@@ -726,3 +726,24 @@ def test_closing_a_file_while_a_view_of_its_map_lives_does_not_fail(tmp_path, rn
     with open_session_file(save_session(s, tmp_path / "s.h5")) as f:
         held = f._y_map._rows[10:20]
     np.testing.assert_array_equal(held, s.y[10:20])
+
+
+def test_a_session_file_parses_its_metadata_when_first_read_and_says_when_it_is_not_json(tmp_path, rng, monkeypatch):
+    good, bad, listed = tmp_path / "good.h5", tmp_path / "bad.h5", tmp_path / "list.h5"
+    for path in (good, bad, listed):
+        save_session(_session(rng), path)
+    with h5py.File(bad, "a") as h:
+        h.attrs["metadata_json"] = "{not json"
+    with h5py.File(listed, "a") as h:
+        h.attrs["metadata_json"] = "[1, 2]"
+    parsed = []
+    monkeypatch.setattr(json, "loads", lambda text, _loads=json.loads: parsed.append(len(text)) or _loads(text))
+    with open_session_file(good) as f:  # the samples and header of a file are read without its metadata
+        assert f.read(0, 5)[0].shape == (5, 2) and parsed == []
+        assert f.metadata == _session(rng).metadata and f.metadata is f.metadata and len(parsed) == 1
+    with open_session_file(bad) as f:  # readable samples; the metadata, when asked for, is a clear error
+        assert f.read(0, 5)[0].shape == (5, 2)
+        with pytest.raises(FileFormatError, match=r"bad\.h5 .*metadata_json to hold JSON"):
+            f.metadata
+    with pytest.raises(FileFormatError, match=r"metadata_json to hold a JSON object; found list"):
+        open_session_file(listed)  # not an object at all: said at once
