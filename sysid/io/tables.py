@@ -242,6 +242,11 @@ def _parse_header(columns, path: Path) -> dict:
     return out
 
 
+def _data_row(row: int) -> str:
+    """A 0-based row of the data as people count it: from 1, after the header (and any comment lines)."""
+    return f"data row {row + 1} (counted from 1 after the header)"
+
+
 def _numeric(frame, col: str, path: Path) -> np.ndarray:
     import pandas as pd
 
@@ -252,7 +257,7 @@ def _numeric(frame, col: str, path: Path) -> np.ndarray:
     bad = values.isna() & ~s.isna()
     if bad.any():
         row = int(np.flatnonzero(bad.to_numpy())[0])
-        raise FileFormatError(f"{path}: column {col!r} must be numeric; row {row} holds {s.iloc[row]!r}.")
+        raise FileFormatError(f"{path}: column {col!r} must be numeric; {_data_row(row)} holds {s.iloc[row]!r}.")
     return values.to_numpy(dtype=np.float64, na_value=np.nan)
 
 
@@ -315,7 +320,7 @@ def _valid_column(frame, col: str | None, path: Path) -> np.ndarray | None:
     bad = ~text.isin(list(truth))
     if bad.any():
         row = int(np.flatnonzero(bad.to_numpy())[0])
-        raise FileFormatError(f"{path}: the 'valid' column must hold 1/0 or true/false; row {row} holds "
+        raise FileFormatError(f"{path}: the 'valid' column must hold 1/0 or true/false; {_data_row(row)} holds "
                               f"{s.iloc[row]!r}.")
     return text.map(truth).to_numpy(dtype=bool)
 
