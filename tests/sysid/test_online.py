@@ -150,3 +150,27 @@ def test_bad_updates_and_settings_are_refused():
         OnlineRidgeArx(output_lags=1, input_lags=0, delay_samples=0, alpha=0.1)
     with pytest.raises(NotFittedError, match="no Hankel windows"):
         OnlineLsqPredictor(past_steps=2, horizon_steps=2, alpha=0.1).Kp_
+
+
+@pytest.mark.parametrize("rows_so_far", [0, 5, 12])
+def test_a_block_of_rows_updates_the_factor_as_a_qr_of_everything(rows_so_far, monkeypatch):
+    """``RᵀR`` after an update equals ``XᵀX`` of all rows so far, the factor is upper triangular, and a square factor
+    goes through LAPACK's triangular-pentagonal QR (reference: numpy's QR of the stacked rows; Golub & Van Loan 2013,
+    Matrix Computations, 4th ed., section 6.5.4, updating a QR factorisation by a block of rows)."""
+    import scipy.linalg as sla
+
+    from stimsteer.sysid import online
+
+    rng = np.random.default_rng(3)
+    old, new = rng.normal(size=(rows_so_far, 12)), rng.normal(size=(40, 12))
+    R0 = None if rows_so_far == 0 else np.linalg.qr(old, mode="r")[:12]
+    calls = []
+    real = sla.lapack.dtpqrt
+    monkeypatch.setattr(sla.lapack, "dtpqrt", lambda *a, **k: calls.append(1) or real(*a, **k))
+    R = online._factor_update(R0, new.copy(order="F"))
+    everything = np.vstack([old, new])
+    expect = np.linalg.qr(everything, mode="r")
+    assert np.array_equal(R, np.triu(R))
+    np.testing.assert_allclose(R.T @ R, everything.T @ everything, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(np.abs(R), np.abs(expect), rtol=1e-10, atol=1e-12)  # equal up to the rows' signs
+    assert len(calls) == (1 if rows_so_far >= 12 else 0)
