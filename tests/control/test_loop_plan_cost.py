@@ -4,7 +4,9 @@ Closed loops under a binding budget amplify any last-digit change (tests/golden.
 against the plain computation it replaces, bit for bit; and each test also checks that the work is skipped (those
 parts fail on the code before the shortcut).
 
-Outside check: the plain bisection itself, written out here (common practice, no source).
+Outside checks: the plain bisection itself, and the definitions of the rolling budget's window energies, written out
+here (common practice, no source): window energy = past + Σ over the window's plan steps of Σ_i u_ki² + the ramp
+steps' Σ_i max(|u_N−1,i| − t·slew_i, 0)².
 """
 
 import numpy as np
@@ -14,11 +16,21 @@ from stimsteer.control.mpc import _budget
 from stimsteer.control.mpc._budget import _RollingBudget, blend_all
 
 
-def _plain_blend(budgets, hists, u, safe):
+def _plain(b, u, hist):
+    """A window's energies by the plain formula (module docstring)."""
+    ramp = np.zeros(0)
+    if b.n_tail:
+        t = np.arange(1, b.n_tail + 1)[:, None]
+        r = np.maximum(np.abs(u[-1][b.fin])[None, :] - t * b.slew[b.fin][None, :], 0.0)
+        ramp = np.sum(r**2, axis=1)
+    return b.Mh @ hist + b.Mp @ np.sum(u**2, axis=1) + b.Mr @ ramp
+
+
+def _plain_blend(budgets, hists, u, safe, energies=lambda b, x, h: b.energies(x, h, b.Mh @ h)):
     caps = [b.budget * (1.0 - 1e-10) for b in budgets]
 
     def inside(x):
-        return all(np.max(b.energies(x, h, b.Mh @ h)) <= cap for b, h, cap in zip(budgets, hists, caps))
+        return all(np.max(energies(b, x, h)) <= cap for b, h, cap in zip(budgets, hists, caps))
 
     if inside(u):
         return u
@@ -234,3 +246,17 @@ def test_the_weighted_offset_is_the_dense_product_bit_for_bit(weight):
         v[::5] = 0.0
         assert np.array_equal(ctrl._weigh(v), ctrl._Lz @ v)
     assert (ctrl._Lz_diag is None) == (weight == "full")
+
+
+@pytest.mark.parametrize("window, slew", [(20, [15.0, 15.0, 15.0]), (26, [15.0, np.inf, 4.0]), (8, None)])
+def test_energies_and_blend_are_the_plain_formulas_bit_for_bit(window, slew):
+    b = _RollingBudget(20000.0, window, 20, None if slew is None else np.array(slew))
+    rng = np.random.default_rng(3)
+    for _ in range(40):
+        u, hist = rng.uniform(0.0, 50.0, size=(20, 3)), rng.uniform(0.0, 900.0, size=window - 1)
+        want = _plain(b, u, hist)
+        assert np.array_equal(b.energies(u, hist), want)
+        assert np.array_equal(b.energies(u, hist, b.Mh @ hist), want)
+        assert b.excess(u, hist) == float(np.max(want) - b.budget)
+        assert np.array_equal(blend_all([b], [hist], u, np.zeros((20, 3))),
+                              _plain_blend([b], [hist], u, np.zeros((20, 3)), energies=_plain))
