@@ -26,6 +26,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from ._base import check_fitted
+from ._lapack_nogil import tpqrt_inplace
 from .arx_statespace import arx_to_state_space
 from .exceptions import InvalidParameterError, NotFittedError, SessionError
 from .session import Session
@@ -52,19 +53,16 @@ def _strength(name, v):
 def _factor_update(R, W):
     """The upper triangular factor of ``[R; W]`` (``R`` the factor so far, or None; ``W`` the new windows as rows).
 
-    A square ``R`` is updated by LAPACK's triangular-pentagonal QR (``tpqrt``), which leaves the zeros below ``R``'s
-    diagonal alone: about half the time of a QR of the stacked rows for a trial of a few hundred windows (measured,
-    154 columns and 387 windows on one thread: 0.8-1.2 against 2.4 ms, block size 8). Otherwise the stacked rows
-    are factorised.
+    A square ``R`` is updated by LAPACK's triangular-pentagonal QR (``tpqrt``, through
+    :func:`~stimsteer.sysid._lapack_nogil.tpqrt_inplace`), which leaves the zeros below ``R``'s diagonal alone: about
+    half the time of a QR of the stacked rows for a trial of a few hundred windows (measured, 154 columns and 387
+    windows on one thread: 0.8-1.2 against 2.4 ms, block size 8). Otherwise the stacked rows are factorised.
     Either way ``RᵀR`` gains ``WᵀW`` (Golub & Van Loan 2013, Matrix Computations, 4th ed., section 6.5.4, updating
     a QR factorisation by a block of rows); the factors may differ by the signs of their rows.
     """
     d = W.shape[1]
     if R is not None and R.shape == (d, d) and W.shape[0] > 0:
-        a, _b, _t, info = sla.lapack.dtpqrt(0, min(8, d), np.array(R, order="F"), np.asfortranarray(W),
-                                             overwrite_a=1, overwrite_b=1)
-        if info == 0:
-            return np.triu(a)
+        return np.triu(tpqrt_inplace(np.array(R, order="F"), np.asfortranarray(W), 0, min(8, d)))
     blocks = W if R is None else np.vstack([R, W])
     return sla.qr(blocks, mode="r", overwrite_a=True, check_finite=False)[0][:d]
 

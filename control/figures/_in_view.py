@@ -6,7 +6,7 @@ with markers, a grid line and two texts each, updated in every layout pass and d
 because they lie outside the axes. In the demo's figures that is a quarter of the major ticks made. :func:`trim_ticks`
 wraps each such locator of a figure in :class:`InView`, which returns the same locations inside the view only: the
 ticks drawn are the same, with the same labels (the tick labels' format and offset are taken from the locations in
-view; the PNGs are compared pixel for pixel in tests/control/test_figures_look.py), and no tick is made to be thrown
+view; the PNGs are compared pixel for pixel in tests/control/test_figure_ticks.py), and no tick is made to be thrown
 away.
 
 Object API only: the locators are set on the figure's own axes, nothing global changes.
