@@ -1,4 +1,9 @@
-"""The demo's own process: Python's cycle collector while its steps run, in this process and in the step beside."""
+"""The demo's own process: Python's cycle collector while its steps run, in this process and in the step beside.
+
+Outside check: what Python's own ``gc`` module reports (``gc.get_threshold``, ``gc.get_freeze_count``; Python
+documentation, "gc — Garbage Collector interface"). The 10,000 frozen objects are a floor well below what the
+command modules' imports leave (about 130,000 measured here, control/demo.py), so any freeze of them passes.
+"""
 
 import gc
 import os

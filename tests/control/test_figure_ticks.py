@@ -1,4 +1,8 @@
-"""The figure builders make ticks only where they are drawn (control/figures/_in_view.py), and draw the same PNG."""
+"""The figure builders make ticks only where they are drawn (control/figures/_in_view.py), and draw the same PNG.
+
+Outside check: matplotlib's own automatic locators on the same figure (the reference library), pixel for pixel. The
+data are made up here so that round tick values fall outside the view at both ends.
+"""
 
 import io
 
