@@ -15,7 +15,12 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    products any exact Gram of the lagged data must compute; beside it, one Cholesky factor of that ``n × n`` Gram
    (one and two BLAS threads): what a ridge fit that factors its Gram even once cannot go below (a cross-validated
    fit factors one Gram-sized matrix per fold and strength, or eigendecomposes one per fold);
-3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50);
+3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50), and for the
+   two cross-validated ridge fits (ridge ARX, the least-squares predictor) their floor on this machine: the Gram
+   reference plus, per fold, one reduction of the largest regressor block that gives every strength at once (the
+   cheaper of ridge ARX's band reduction and the tridiagonal reduction of an eigendecomposition, one thread, CPU
+   seconds), both cores used without loss. Any exact cross-validation that solves every fold for a grid of
+   strengths does at least this; one eigendecomposition per fold does more;
 4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
    horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 3 sites, same trials), and the slope
    of log time against log past window between neighbouring windows and over all of them (least squares), beside
@@ -108,7 +113,66 @@ def child_fit(path: str, method: str, past: int, horizon: int) -> dict:
            "rise_mb": _status("VmHWM") - rss0}
     if getattr(est, "factor_route_", None):  # the direct predictors: which factor route, and the Gram's condition
         out["route"] = f"{est.factor_route_} route, Gram condition {est.gram_condition_:.3g}"
+    m, p = session.n_inputs, session.n_outputs  # the largest regressor a fold must solve for, and the folds
+    if method == "arx":
+        out["floor"] = {"n": (m + p) * past, "folds": int(est.n_folds_), "rhs": 0}
+    elif method == "lsq":
+        out["floor"] = {"n": (m + p) * past + m * horizon,
+                        "folds": sum(str(c).startswith("fold_") for c in est.cv_table_.columns), "rhs": p * horizon}
     return out
+
+
+def child_reduction(n: int, rhs: int) -> dict:
+    """CPU seconds, one BLAS thread, of the cheapest reductions that give a ridge solve for every strength of one
+    fold at once, on an ``n × n`` symmetric definite matrix (their flop counts do not depend on the values: random,
+    seeded): the band reduction ridge ARX uses (``arx_band.BandForm``, ``~4/3 n³`` flops of ``syr2k``/``symm``) and
+    the tridiagonal reduction of an eigendecomposition (eigenvalues only, LAPACK ``syevd``), best of two; with
+    ``rhs > 0`` also one product of the matrix with ``rhs`` right-hand sides (``2 n² rhs`` flops, what bringing the
+    fold's right-hand sides into the reduced basis costs at least: applying the reflectors costs about as much,
+    Golub & Van Loan 2013, Matrix Computations, 4th ed., sec. 5.1)."""
+    import numpy as np
+    import scipy.linalg as sla
+    from threadpoolctl import threadpool_limits
+
+    from stimsteer.sysid.arx_band import BandForm
+
+    M = np.random.default_rng(0).standard_normal((n, n))
+    A = M @ M.T / n + np.eye(n)
+    work = np.empty(n * n)
+    cases = {"band": lambda: BandForm(A, work), "tridiagonal": lambda: sla.eigh(A, eigvals_only=True, driver="evd",
+                                                                                check_finite=False)}
+    if rhs > 0:
+        R = np.random.default_rng(1).standard_normal((n, rhs))
+        cases["rhs"] = lambda: A @ R
+    out = {}
+    with threadpool_limits(limits=1, user_api="blas"):
+        for name, f in cases.items():
+            best = float("inf")
+            for _ in range(2):
+                c0 = time.process_time()
+                f()
+                best = min(best, time.process_time() - c0)
+            out[name] = best
+    return out
+
+
+def floor_line(label: str, r: dict, ref: dict, timeout: float) -> str:
+    """What the fit cannot go below on this machine: the Gram reference, plus one reduction of its largest
+    regressor block per fold (the cheaper of the band and the tridiagonal reduction) spread over both cores without
+    loss; for many right-hand sides, one product with them per fold. A lower bound of any exact cross-validation
+    over a grid of strengths that solves every fold: one eigendecomposition per fold needs the tridiagonal reduction
+    and more, one Cholesky factor per strength costs ``n³/3`` flops per strength."""
+    n, folds = r["floor"]["n"], r["floor"]["folds"]
+    red = run_child(["reduction", "-", n, r["floor"]["rhs"]], timeout)
+    if "band" not in red or "seconds" not in ref:
+        return f"# floor of {label}: not measured ({_fmt(red)})"
+    cheapest = min(red["band"], red["tridiagonal"]) + red.get("rhs", 0.0)
+    floor = ref["seconds"] + folds * cheapest / 2
+    rhs = f" + one product with its {r['floor']['rhs']} right-hand sides {red['rhs']:.2f} s" if "rhs" in red else ""
+    return (f"# floor of {label}: Gram {ref['seconds']:.2f} s + {folds} folds x one reduction of {n} rows "
+            f"(band {red['band']:.2f} s, tridiagonal {red['tridiagonal']:.2f} s of CPU, one thread){rhs} / 2 cores "
+            f"= {floor:.2f} s = {floor / ref['seconds']:.1f}x Gram; the fit {r['seconds']:.2f} s is "
+            f"{r['seconds'] / floor:.1f}x this floor")
 
 
 def child_gram(path: str, n_lags: int) -> dict:
@@ -327,6 +391,7 @@ def window_table(path: str, windows, methods, timeout: float) -> None:
     """Fit time, memory and Gram ratio of each method at each ``past:horizon`` window."""
     print("| method | past / horizon | fit | Gram reference | load |")
     print("| --- | --- | --- | --- | --- |")
+    floors = []
     for window in windows:
         past, horizon = (int(v) for v in window.split(":"))
         refs = {}
@@ -337,6 +402,10 @@ def window_table(path: str, windows, methods, timeout: float) -> None:
             r = run_child([method, path, past, horizon], timeout)
             print(f"| {METHODS[method][2]} | {past} / {horizon} | {_fmt(r, refs[lags])} | "
                   f"{lags} lags: {_fmt(refs[lags])} | {_load():.1f} |", flush=True)
+            if "floor" in r:
+                floors.append(floor_line(f"{METHODS[method][2]} at {past} / {horizon}", r, refs[lags], timeout))
+    for line in floors:
+        print(line)
 
 
 def growth_table(path: str, pasts, methods, timeout: float, horizon: int = 50) -> None:
@@ -387,6 +456,7 @@ def main(argv=None) -> int:
     if args.child:
         kind, path, *rest = args.child
         out = child_gram(path, int(rest[0])) if kind == "gram" else \
+            child_reduction(int(rest[0]), int(rest[1])) if kind == "reduction" else \
             child_spc_kernels(path, int(rest[0]), int(rest[1])) if kind == "spc-kernels" else \
             child_spc_grid(path, int(rest[0]), int(rest[1]), rest[2]) if kind == "spc-grid" else \
             child_fit(path, kind, int(rest[0]), int(rest[1]))
