@@ -19,6 +19,7 @@ from matplotlib.figure import Figure
 
 from ._glyphs import GlyphSafeFigure
 from ._in_view import trim_ticks
+from ._labels import label_gap, spread
 
 __all__ = ["plan_figure", "MAX_INPUT_STRIPS", "MAX_RANGE_ROWS"]
 
@@ -111,7 +112,7 @@ def _shown_outputs(plan, tracked, ranges) -> list:
 
 def _outputs_over_time(ax, plan, t, units, tracked, ranges):
     shown = _shown_outputs(plan, tracked, ranges)
-    n_warn = 0
+    n_warn, labels = 0, []
     for k, j in enumerate(shown):
         flagged = ranges is not None and ranges.flagged[j]
         colour = _WARNS[n_warn % len(_WARNS)] if flagged else _COLOURS[k % len(_COLOURS)]
@@ -121,9 +122,9 @@ def _outputs_over_time(ax, plan, t, units, tracked, ranges):
         if plan.target_kind == "output" and tracked[j]:
             ax.plot(t, plan.target[:, j], color=colour, lw=0.8, alpha=0.8)
         tag = "untargeted, flagged" if flagged else "targeted" if tracked[j] else "untargeted"
-        ax.annotate(f"{plan.output_names[j]} ({tag})", xy=(t[-1], y[-1]), xytext=(4, 0), textcoords="offset points",
-                    va="center", fontsize=7, color=colour, annotation_clip=False)
+        labels.append((f"{plan.output_names[j]} ({tag})", y[-1], colour))
     ax.set_xlim(t[0], t[-1] + 0.28 * (t[-1] - t[0] + 1e-12))  # room for the end labels, none over the traces
+    _end_labels(ax, t[-1], labels)
     _soft_bounds(ax, plan, shown)
     unit = units[shown[0]] if len({units[j] for j in shown}) == 1 else "each output's unit"
     ax.set_ylabel(f"predicted output [{unit}]", fontsize=8)
@@ -131,6 +132,17 @@ def _outputs_over_time(ax, plan, t, units, tracked, ranges):
     ax.grid(alpha=0.25, lw=0.5)
     ax.set_title("targeted and flagged outputs (thin: target; dashed red: untargeted, moving beyond the flag; "
                  "shaded: soft bound)", loc="left", fontsize=8)
+
+
+def _end_labels(ax, x_end, labels) -> None:
+    """Each trace's label at its end, moved apart from the others just enough to be read (10 points, a 7-point
+    line with its spacing), inside the axes' y range."""
+    bottom, top = sorted(ax.get_ylim())
+    ends = np.array([end for _text, end, _colour in labels])
+    at = spread(ends, label_gap(ax, 10.0), bottom, top)
+    for (text, _end, colour), y in zip(labels, at):
+        ax.annotate(text, xy=(x_end, y), xytext=(4, 0), textcoords="offset points", va="center", fontsize=7,
+                    color=colour, annotation_clip=False)
 
 
 def _soft_bounds(ax, plan, shown) -> None:
