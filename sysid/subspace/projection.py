@@ -14,6 +14,7 @@ from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain
 from .gram import _Layout
 from .markov import _shift_weights, normal_equations, normal_equations_gemm, pattern_blocks
+from ._gil_free import block_norm, pocon, potrf, potrs
 from .nested import NestedOrders
 from .riccati import conditioned_cholesky, doubling_gain, one_norm
 
@@ -250,7 +251,18 @@ def _solve_excited(M: np.ndarray, rhs: np.ndarray):
 def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None, norm=None, overwrite: bool = False):
     """``(M⁻¹ rhs, lower Cholesky factor)`` as :func:`_solve_excited`, or None; ``factor``: a lower Cholesky factor
     of ``M`` already at hand (the leading block of a larger system's), checked the same way, with ``norm`` =
-    ``one_norm(M)`` when known (``M`` is then not read); ``overwrite``: factor ``M`` in place."""
+    ``one_norm(M)`` when known (``M`` is then not read); ``overwrite``: factor ``M`` in place.
+
+    Column-major systems and factors (the candidate orders') take LAPACK with the GIL released, in place
+    (:mod:`._gil_free`): the same routines on the same numbers as SciPy's wrappers."""
+    if factor is None and overwrite and M.flags.f_contiguous:
+        anorm = block_norm(M)  # (before the factor overwrites it)
+        if potrf(M) != 0 or not pocon(M, anorm) * _CHOLESKY_COND_MAX >= 1.0:
+            return None
+        return potrs(M, rhs), M
+    if factor is not None and factor.strides[0] == factor.itemsize:  # a block of a column-major factor
+        rcond = pocon(factor, block_norm(M) if norm is None else norm)
+        return (potrs(factor, rhs), factor) if rcond * _CHOLESKY_COND_MAX >= 1.0 else None
     if factor is None:
         F = conditioned_cholesky(M, _CHOLESKY_COND_MAX, overwrite)
     else:
@@ -352,7 +364,7 @@ def _b_d(proj: _Projection, gamma, A, C, feedthroughs: tuple, basis=None) -> dic
             continue
         # the candidates' systems (Fortran order) are factored in place; what the other setting reads of them
         # (the leading block's norm) is taken first, and the fallbacks remake them
-        norm = one_norm(M[:k, :k]) if ft and len(feedthroughs) > 1 else None
+        norm = block_norm(M[:k, :k]) if ft and len(feedthroughs) > 1 else None
         out[ft], F = _solve_b_d(M, rhs, n, L, ft, remake=lambda ft=ft: _normal_equations(proj, A, C, Q, ft)[0])
         shared = (M, rhs, F, norm) if ft else None
     return out

@@ -106,3 +106,25 @@ def test_a_system_refused_after_its_factor_overwrote_it_is_solved_from_the_remad
     singular = np.asfortranarray(np.outer(rhs, rhs))
     with pytest.raises(ExcitationError):
         projection._solve_b_d(singular.copy(order="F"), rhs, 5, L, True, remake=lambda: singular.copy(order="F"))
+
+
+def test_gil_free_calls_equal_scipys_wrappers_bit_for_bit():
+    # reference: SciPy's f2py wrappers of the same LAPACK routines (dpotrf, dpocon, dpotrs via cho_solve, dlange)
+    from stimsteer.sysid.subspace import _gil_free
+
+    rng = np.random.default_rng(3)
+    a = rng.standard_normal((60, 60))
+    M = np.asfortranarray(a @ a.T + 60 * np.eye(60))
+    b = rng.standard_normal(60)
+    ref = sla.cho_factor(M, lower=True, check_finite=False)[0]
+    F = M.copy(order="F")
+    assert _gil_free.potrf(F) == 0 and np.array_equal(np.tril(F), np.tril(ref))
+    assert np.array_equal(np.triu(F, 1), np.triu(M, 1))  # the upper triangle is kept, as cho_factor's
+    for k in (60, 25):  # the whole factor and a leading block read where it lies (leading dimension 60)
+        assert _gil_free.block_norm(M[:k, :k]) == sla.lapack.dlange("1", M[:k, :k])
+        assert _gil_free.pocon(F[:k, :k], 7.0) == sla.lapack.dpocon(ref[:k, :k], 7.0, uplo="L")[0]
+        assert np.array_equal(_gil_free.potrs(F[:k, :k], b[:k]),
+                              sla.cho_solve((ref[:k, :k], True), b[:k], check_finite=False))
+    assert _gil_free.potrf(np.asfortranarray(-M)) > 0  # not positive definite: LAPACK's info
+    with pytest.raises(ValueError):
+        _gil_free.potrf(np.ascontiguousarray(M[:, :30]).T.copy())  # not column-major
