@@ -14,6 +14,7 @@ from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain
 from .gram import _Layout
 from .markov import _shift_weights, normal_equations, normal_equations_gemm, pattern_blocks
+from ._gil_free import block_norm, pocon, potrf, potrs
 from .nested import NestedOrders
 from .riccati import conditioned_cholesky, doubling_gain, one_norm
 
@@ -247,13 +248,25 @@ def _solve_excited(M: np.ndarray, rhs: np.ndarray):
     return None if solved is None else solved[0]
 
 
-def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None):
+def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None, norm=None, overwrite: bool = False):
     """``(M⁻¹ rhs, lower Cholesky factor)`` as :func:`_solve_excited`, or None; ``factor``: a lower Cholesky factor
-    of ``M`` already at hand (the leading block of a larger system's), checked the same way."""
+    of ``M`` already at hand (the leading block of a larger system's), checked the same way, with ``norm`` =
+    ``one_norm(M)`` when known (``M`` is then not read); ``overwrite``: factor ``M`` in place.
+
+    Column-major systems and factors (the candidate orders') take LAPACK with the GIL released, in place
+    (:mod:`._gil_free`): the same routines on the same numbers as SciPy's wrappers."""
+    if factor is None and overwrite and M.flags.f_contiguous:
+        anorm = block_norm(M)  # (before the factor overwrites it)
+        if potrf(M) != 0 or not pocon(M, anorm) * _CHOLESKY_COND_MAX >= 1.0:
+            return None
+        return potrs(M, rhs), M
+    if factor is not None and factor.strides[0] == factor.itemsize:  # a block of a column-major factor
+        rcond = pocon(factor, block_norm(M) if norm is None else norm)
+        return (potrs(factor, rhs), factor) if rcond * _CHOLESKY_COND_MAX >= 1.0 else None
     if factor is None:
-        F = conditioned_cholesky(M, _CHOLESKY_COND_MAX)
+        F = conditioned_cholesky(M, _CHOLESKY_COND_MAX, overwrite)
     else:
-        rcond, info = sla.lapack.dpocon(factor, one_norm(M), uplo="L")
+        rcond, info = sla.lapack.dpocon(factor, one_norm(M) if norm is None else norm, uplo="L")
         F = (factor, True) if info == 0 and rcond * _CHOLESKY_COND_MAX >= 1.0 else None
     return None if F is None else (sla.cho_solve(F, rhs, check_finite=False), F[0])
 
@@ -292,11 +305,15 @@ def _order_free_terms(proj):
     return terms
 
 
-def _solve_b_d(M, rhs, n: int, L: _Layout, feedthrough: bool, factor=None):
-    """``(B, D)`` and the Cholesky factor used (None: solved by LU) from the normal equations ``M θ = rhs``."""
+def _solve_b_d(M, rhs, n: int, L: _Layout, feedthrough: bool, factor=None, norm=None, remake=None):
+    """``(B, D)`` and the Cholesky factor used (None: solved by LU) from the normal equations ``M θ = rhs``.
+
+    ``remake``: a function returning ``M`` afresh (the same numbers); given it, a full system is factored in place
+    and ``M`` is remade for the eigenvalue route. ``factor``, ``norm``: see :func:`_cholesky_solve`."""
     m, p = L.m, L.p
-    solved = _cholesky_solve(M, rhs, factor)
+    solved = _cholesky_solve(M, rhs, factor, norm, overwrite=remake is not None and factor is None)
     if solved is None:
+        M = M if remake is None else remake()
         M = 0.5 * (M + M.T)  # (already symmetric on an exact projection: then the same numbers)
         lam = np.linalg.eigvalsh(M)
         if lam[0] <= 1e-12 * max(lam[-1], np.finfo(float).tiny):
@@ -331,16 +348,25 @@ def _b_d(proj: _Projection, gamma, A, C, feedthroughs: tuple, basis=None) -> dic
     L = proj.layout
     n = A.shape[0]
     Q = np.linalg.qr(gamma)[0] if basis is None else basis  # an orthonormal basis of range(Γ): only Q Qᵀ enters
-    out, shared = {}, None
+    out, shared, k = {}, None, n * L.m
     for ft in sorted(feedthroughs, reverse=True):  # with the direct term first: the other is its leading block
         if shared is not None:
-            k = n * L.m
-            M, rhs, F = shared[0][:k, :k], shared[1][:k], None if shared[2] is None else shared[2][:k, :k]
-        else:
-            (M, rhs), F = _normal_equations(proj, A, C, Q, ft), None
-        out[ft], F = _solve_b_d(M, rhs, n, L, ft, F)
-        if ft and not proj.exact:
-            shared = (M, rhs, F)
+            full, rhs, F, norm = shared  # (the full system's lower triangle is its factor now)
+            remake = lambda: _normal_equations(proj, A, C, Q, True)[0][:k, :k]  # noqa: E731
+            if F is None:  # the full factor failed: the leading block's own, as before
+                out[ft], F = _solve_b_d(remake(), rhs[:k], n, L, ft)
+            else:
+                out[ft], F = _solve_b_d(None, rhs[:k], n, L, ft, F[:k, :k], norm, remake)
+            continue
+        M, rhs = _normal_equations(proj, A, C, Q, ft)
+        if proj.exact:  # the models of before, as before
+            out[ft], F = _solve_b_d(M, rhs, n, L, ft)
+            continue
+        # the candidates' systems (Fortran order) are factored in place; what the other setting reads of them
+        # (the leading block's norm) is taken first, and the fallbacks remake them
+        norm = block_norm(M[:k, :k]) if ft and len(feedthroughs) > 1 else None
+        out[ft], F = _solve_b_d(M, rhs, n, L, ft, remake=lambda ft=ft: _normal_equations(proj, A, C, Q, ft)[0])
+        shared = (M, rhs, F, norm) if ft else None
     return out
 
 

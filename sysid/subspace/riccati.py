@@ -37,20 +37,25 @@ _RESIDUAL = 1e-10
 
 def one_norm(M: np.ndarray) -> float:
     """``‖M‖₁`` (largest absolute column sum); of a C-ordered matrix as LAPACK's ∞-norm of its transpose (one
-    pass over the memory as laid out, no temporary)."""
+    pass over the memory as laid out, no temporary), of a Fortran-ordered one (or a block of one) as its 1-norm.
+    Every route sums each column in row order, so the same numbers give the same norm however they lie."""
     if M.flags.c_contiguous and M.size:
         return float(sla.lapack.dlange("I", M.T))
+    if M.size and M.ndim == 2 and M.strides[0] == M.itemsize and M.strides[1] >= M.itemsize * M.shape[0]:
+        return float(sla.lapack.dlange("1", M))
     return float(np.abs(M).sum(axis=0).max())
 
 
-def conditioned_cholesky(M: np.ndarray, condition_max: float):
+def conditioned_cholesky(M: np.ndarray, condition_max: float, overwrite: bool = False):
     """SciPy's ``cho_factor`` of ``M`` (lower; only the lower triangle is read) when ``M`` is positive definite with
-    LAPACK's 1-norm condition estimate (``dpocon``) at most ``condition_max``; None otherwise."""
+    LAPACK's 1-norm condition estimate (``dpocon``) at most ``condition_max``; None otherwise. ``overwrite``: factor
+    a Fortran-ordered ``M`` where it lies (its lower triangle is then lost, also on None)."""
+    anorm = one_norm(M)  # (before the factor may overwrite it)
     try:
-        F = sla.cho_factor(M, lower=True, check_finite=False)
+        F = sla.cho_factor(M, lower=True, overwrite_a=overwrite, check_finite=False)
     except np.linalg.LinAlgError:
         return None
-    rcond, info = sla.lapack.dpocon(F[0], one_norm(M), uplo="L")
+    rcond, info = sla.lapack.dpocon(F[0], anorm, uplo="L")
     return F if info == 0 and rcond * condition_max >= 1.0 else None
 
 

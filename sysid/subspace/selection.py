@@ -50,9 +50,13 @@ def score_orders(proj, check, layout, orders, feedthroughs: tuple, workers: int 
         groups = batches([part for row in fitted for part, _s in row])
         scores = [e for group in groups for e in errors(group)]
     else:
-        first = one(orders[0])  # the projection's cached pieces are made here, before the threads start
+        # the projection's cached pieces are made by the first order, before the threads start (once: a later
+        # round of a growing cap finds them); the largest orders are started first, so no thread ends far behind
+        first = [one(orders[0])] if getattr(proj, "_order_free", None) is None else []
         with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="stimsteer-subspace") as pool:
-            fitted = [first, *pool.map(one, orders[1:])]
+            rest = orders[len(first):]
+            started = {n: pool.submit(one, n) for n in sorted(rest, reverse=True)}
+            fitted = [*first, *(started[n].result() for n in rest)]
             groups = batches([part for row in fitted for part, _s in row])
             scores = [e for got in pool.map(errors, groups) for e in got]
     k = len(feedthroughs)
