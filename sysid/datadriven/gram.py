@@ -238,7 +238,7 @@ BY_STRENGTH = True
 #: eigendecomposition side by side (one core each), any other by strength on both (:data:`BY_STRENGTH`'s route),
 #: where their arrays fit ``_eigen_folds.MAX_BYTES`` (mid-sized Grams; measured there). False: fold by fold.
 FOLDS_SIDE_BY_SIDE = True
-#: Strengths scored at once (the machine's two cores; each worker holds one n × n and one n × pN array).
+#: Strengths scored at once (the machine's two cores; each worker but the first holds one n × n array).
 STRENGTH_WORKERS = 2
 
 
@@ -303,13 +303,9 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 
 def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray | None:
     """:func:`ridge_grid_errors` one strength at a time, two side by side (:mod:`._by_strength`), or None."""
-    Gt = train.gram_rows(0, n_b)
-    G11, G12w = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:] * weights[None, :])
-    del Gt
-    Ks = [G11] + [np.array(G11, order="F") for _ in range(STRENGTH_WORKERS - 1)]
-    del G11
+    Gt = train.gram_rows(0, n_b)  # worked on in place: no copy of G11 or G12 (issue 14)
     c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
-    return strength_errors(Ks, G12w, F, strengths, c0, weights)
+    return strength_errors(Gt, F, strengths, c0, weights, STRENGTH_WORKERS)
 
 
 def _training_rows(total: "_GramFold", Gv: np.ndarray, n_b: int) -> np.ndarray:
