@@ -15,8 +15,8 @@ independent pieces: two strengths run side by side on the machine's two cores, e
 nothing spins on a busy machine), while the eigenvalue routine runs on one core only (its tridiagonal reduction is
 memory-bound matrix-vector work); two folds' eigendecompositions side by side need 100 MB more memory there
 (``_eigen_folds``, taken on mid-sized Grams).
-Memory: the training Gram's assembled rows, worked on in place, one more ``n × n`` array for the second worker and
-one ``n × RHS_BLOCK`` block of right-hand sides per worker (:func:`strength_errors`).
+Memory: the training Gram's assembled rows (Fortran-ordered), worked on in place, one more ``n × n`` array for the
+second worker and one ``n × RHS_BLOCK`` block of right-hand sides per worker (:func:`strength_errors`).
 
 The LAPACK/BLAS calls go through SciPy's exported C functions (``scipy.linalg.cython_lapack`` /
 ``cython_blas``) called by ``ctypes``, which releases the GIL while they run (SciPy's f2py wrappers of
@@ -75,8 +75,8 @@ def _ref(value: int):
 
 
 def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
-    """Lower Cholesky factor of ``K[:n, :n]`` in place (``K`` Fortran-ordered, possibly a panel with more rows:
-    its leading dimension is ``K.shape[0]``; the strict upper triangle is not touched)."""
+    """Lower Cholesky factor of ``K[:n, :n]`` in place (``K`` Fortran-ordered, possibly with more rows: its
+    leading dimension is ``K.shape[0]``; the strict upper triangle is not touched)."""
     n = K.shape[1] if n is None else n
     if not nogil_available():  # pragma: no cover - other SciPy builds
         c, info = lapack.dpotrf(K[:n, :n], lower=1, clean=0)
@@ -119,12 +119,11 @@ def strength_errors(Gt: np.ndarray, F: np.ndarray, strengths, c0: float, weights
 
     Parameters
     ----------
-    Gt : ndarray, shape (n, n + pN), C order
-        The training Gram's first ``n`` rows ``[G11 G12]``, as assembled: the memory of the column-major panel
-        ``[G11; G21]`` (``G`` is exactly symmetric). The first worker factors in place of the panel's ``G11``
-        (its strict upper triangle keeps ``G11`` for every strength), the others in one ``n × n`` array each;
-        ``G12 Ω`` is read a block of :data:`RHS_BLOCK` columns at a time. ``G11``'s upper triangle and diagonal
-        in ``Gt`` are overwritten (the panel's lower triangle).
+    Gt : ndarray, shape (n, n + pN), Fortran order
+        The training Gram's first ``n`` rows ``[G11 G12]`` (``gram_rows(..., fortran=True)``). The first worker
+        factors in place of its ``G11`` (whose strict upper triangle keeps ``G11`` for every strength: its lower
+        triangle and diagonal are overwritten), the others in one ``n × n`` array each; ``G12 Ω`` is formed a
+        block of :data:`RHS_BLOCK` columns at a time.
     F : ndarray, Fortran order
         The total Gram's lower Cholesky factor in its lower triangle (``n + pN`` rows at least; what lies above
         the diagonal is not read).
@@ -137,12 +136,12 @@ def strength_errors(Gt: np.ndarray, F: np.ndarray, strengths, c0: float, weights
     ndarray, or None where some ``G11 + s I`` is not positive definite (the caller takes the eigen route).
 
     Memory: ``Gt`` and ``F`` (the caller's), ``workers − 1`` arrays of ``n × n`` and ``workers`` of
-    ``n × RHS_BLOCK``: no copy of ``G11``'s panel, of ``G12 Ω`` or of ``L21ᵀ Ω`` (issue 14: 78 MB less at past 100
-    / horizon 50 than with those copies). The sums of squares are taken a block at a time, so the errors agree with
+    ``n × RHS_BLOCK``: no copy of ``G11`` for the first worker, of ``G12 Ω`` or of ``L21ᵀ Ω`` (issue 14: with ``F``,
+    221 MB of arrays at past 100 / horizon 50 instead of 270 with those copies and whole blocks of right-hand sides). The sums of squares are taken a block at a time, so the errors agree with
     sums over whole arrays to rounding (measured at past 100 / horizon 50: ``tests/sysid/test_gram_total.py``).
     """
-    if not (Gt.flags.c_contiguous and F.flags.f_contiguous):
-        raise ValueError("strength_errors needs the C-ordered rows [G11 G12] and a Fortran-ordered F")
+    if not (Gt.flags.f_contiguous and F.flags.f_contiguous):
+        raise ValueError("strength_errors needs the Fortran-ordered rows [G11 G12] and a Fortran-ordered F")
     grid = _Grid(Gt, F, c0, weights, max(1, int(workers)))
     strengths = [float(s) for s in strengths]
     paired = strengths[: len(strengths) - len(strengths) % 2]  # the odd one: on both workers (the same numbers)
@@ -168,8 +167,8 @@ class _Grid:
         self.n, self.Gt, self.F, self.c0 = Gt.shape[0], Gt, F, float(c0)
         self.pN = Gt.shape[1] - self.n
         self.weights = np.asarray(weights, dtype=np.float64)
-        self.panel = panel = Gt.T  # Fortran-ordered (n + pN) × n: [G11; G21], leading dimension n + pN
-        self.diagonal = np.diagonal(panel).copy()
+        self.G11, self.G12 = Gt[:, :self.n], Gt[:, self.n:]  # Fortran-contiguous blocks
+        self.diagonal = np.diagonal(self.G11).copy()
         L21w = np.asfortranarray(F[self.n:self.n + self.pN, :self.n].T * self.weights[None, :])  # L21ᵀ Ω
         self.base = float(np.einsum("ij,ij->", L21w, L21w))
         del L21w  # (the subtraction forms it a block at a time)
@@ -177,12 +176,11 @@ class _Grid:
         rhs = min(RHS_BLOCK, max(self.pN, 1))
         # each worker's arrays, made here: no large allocation on the worker threads
         for k in range(workers):
-            K = panel if k == 0 else np.empty((self.n, self.n), order="F")
+            K = self.G11 if k == 0 else np.empty((self.n, self.n), order="F")
             self.free.put((K, np.empty((self.n, rhs), order="F")))
 
     def _factor(self, K: np.ndarray, s: float) -> bool:
-        panel = self.panel
-        _restore_lower(K[:self.n] if K is panel else K, self.diagonal + s, source=panel[:self.n])
+        _restore_lower(K, self.diagonal + s, source=self.G11)
         return _potrf_lower(K, self.n) == 0
 
     def _columns(self, K, W, cols: range) -> tuple[float, float, float]:
@@ -193,7 +191,7 @@ class _Grid:
         for k0 in range(cols.start, cols.stop, W.shape[1]):
             k1 = min(k0 + W.shape[1], cols.stop)
             Wc = W[:, :k1 - k0]
-            np.multiply(self.Gt[:, n + k0:n + k1], w[None, k0:k1], out=Wc)  # G12 Ω
+            np.multiply(self.G12[:, k0:k1], w[None, k0:k1], out=Wc)  # G12 Ω
             _triangular("dtrsm", K, n, Wc, trans=False)  # L⁻¹ G12 Ω
             ww += _sum_of_squares(Wc)
             _triangular("dtrsm", K, n, Wc, trans=True)  # Y = K⁻¹ G12 Ω

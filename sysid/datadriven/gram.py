@@ -110,11 +110,12 @@ class _GramFold:
         """``H Hᵀ`` in the row order ``[Up; Yp; Uf; Yf]``."""
         return self.gram_rows(0, self.perm.size)
 
-    def gram_rows(self, r0: int, r1: int) -> np.ndarray:
-        """Rows ``[r0, r1)`` of :attr:`gram` (the same numbers), assembled alone."""
+    def gram_rows(self, r0: int, r1: int, fortran: bool = False) -> np.ndarray:
+        """Rows ``[r0, r1)`` of :attr:`gram` (the same numbers), assembled alone (Fortran-ordered with
+        ``fortran``)."""
         index = np.empty_like(self.perm)
         index[self.perm] = np.arange(self.perm.size)
-        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1))
+        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1), fortran=fortran)
 
     def gram_diagonal(self) -> np.ndarray:
         """The diagonal of :attr:`gram` (the same numbers), from the sums alone."""
@@ -303,7 +304,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 
 def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray | None:
     """:func:`ridge_grid_errors` one strength at a time, two side by side (:mod:`._by_strength`), or None."""
-    Gt = train.gram_rows(0, n_b)  # worked on in place: no copy of G11 or G12 (issue 14)
+    Gt = train.gram_rows(0, n_b, fortran=True)  # worked on in place: no copy of G11 or G12 (issue 14)
     c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
     return strength_errors(Gt, F, strengths, c0, weights, STRENGTH_WORKERS)
 

@@ -146,9 +146,9 @@ def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_array
     G = train.gram
     s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
     c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
-    rows = np.array(G[:n_b])  # [G11 G12], C-ordered as assembled (worked on in place)
+    rows = np.asfortranarray(G[:n_b])  # [G11 G12], Fortran-ordered (worked on in place)
     one = bs.strength_errors(rows, total._factor, s, c0, w, workers=1)  # one array reused 9 times
-    two = bs.strength_errors(np.array(G[:n_b]), total._factor, s, c0, w, workers=2)
+    two = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w, workers=2)
     np.testing.assert_array_equal(two, one)  # each strength computes the same numbers on whichever worker
     # the definition at each strength, from both Grams (validation Gram = total − training)
     Gv = val.gram
@@ -157,8 +157,8 @@ def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_array
         R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
         assert one[k] == pytest.approx(float(w ** 2 @ np.diagonal(R)), rel=1e-9)
     np.testing.assert_array_equal(rows[:, n_b:], G[:n_b, n_b:])  # G12 not modified
-    np.testing.assert_array_equal(np.tril(rows[:, :n_b], -1), np.tril(G[:n_b, :n_b], -1))  # nor G11 below the diagonal
-    assert bs.strength_errors(np.array(G[:n_b]), total._factor, [-1e9], c0, w) is None  # not PD
+    np.testing.assert_array_equal(np.triu(rows[:, :n_b], 1), np.triu(G[:n_b, :n_b], 1))  # nor G11 above the diagonal
+    assert bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, [-1e9], c0, w) is None  # not PD
 
 
 def test_right_hand_sides_in_blocks_agree_with_whole_ones_to_rounding(folds, monkeypatch):
@@ -170,9 +170,10 @@ def test_right_hand_sides_in_blocks_agree_with_whole_ones_to_rounding(folds, mon
     G = train.gram
     s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
     c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
-    whole = bs.strength_errors(np.array(G[:n_b]), total._factor, s, c0, w)
+    whole = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w)
     monkeypatch.setattr(bs, "RHS_BLOCK", 5)  # 18 right-hand sides in blocks of 5, 5, 5, 3
-    np.testing.assert_allclose(bs.strength_errors(np.array(G[:n_b]), total._factor, s, c0, w), whole, rtol=1e-12)
+    np.testing.assert_allclose(bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w), whole,
+                               rtol=1e-12)
 
 
 def test_the_strength_grid_adds_one_matrix_and_blocks_of_right_hand_sides(monkeypatch):
@@ -189,7 +190,7 @@ def test_the_strength_grid_adds_one_matrix_and_blocks_of_right_hand_sides(monkey
     X = rng.standard_normal((n_b + pN, 3 * (n_b + pN)))
     G = X @ X.T
     F = np.linalg.cholesky(G).copy(order="F")
-    Gt = 0.7 * G[:n_b]  # a training Gram's rows (any positive definite G11)
+    Gt = np.asfortranarray(0.7 * G[:n_b])  # a training Gram's rows (any positive definite G11)
     monkeypatch.setattr(bs, "RHS_BLOCK", 32)
     w, s = np.linspace(0.5, 2.0, pN), np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
     tracemalloc.start()
@@ -422,3 +423,21 @@ def test_lsq_fits_with_the_folds_side_by_side_predict_as_fold_by_fold(monkeypatc
     np.testing.assert_array_equal(new.Kf_, old.Kf_)
     for col in [c for c in old.cv_table_.columns if c != "candidate"]:
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)
+
+
+@pytest.mark.parametrize("small", [True, False])
+def test_rows_assembled_fortran_ordered_equal_the_rows(folds, small, monkeypatch):
+    """``gram_rows(..., fortran=True)`` (the strength grid's rows, issue 14): the numbers of the C-ordered rows, bit
+    for bit (reference: the Gram's own rows; the Gram is exactly symmetric), by the strided copies and by the
+    short vectors' path."""
+    from stimsteer.sysid import _lagged
+
+    if not small:
+        monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)
+    fs, total, n_b = folds
+    train = total.plus(fs[1], -1.0)
+    for r0, r1 in ((0, n_b), (3, 17)):
+        rows = train.gram_rows(r0, r1, fortran=True)
+        assert rows.flags.f_contiguous
+        np.testing.assert_array_equal(rows, train.gram_rows(r0, r1))
+        np.testing.assert_array_equal(rows, train.gram[r0:r1])
