@@ -401,7 +401,12 @@ def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float) -> np.nd
     K = np.asfortranarray(F[:n_b, :n_b].T)  # lower triangle: G11's (by symmetry); the upper one is not read
     K[np.diag_indices_from(K)] = total.gram_diagonal()[:n_b]
     K[np.diag_indices_from(K)] += strength
-    return _cholesky_solve(K, F[:n_b, n_b:])
+    if F.shape[1] > n_b:
+        return _cholesky_solve(K, F[:n_b, n_b:])
+    del F  # kept without its last columns (lsq._compact_kept_factor): G12 assembled again, the factor dropped first
+    total.release()
+    return _cholesky_solve(K, total.gram_rows(0, n_b, fortran=True)[:, n_b:])
+
 
 
 def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> np.ndarray:

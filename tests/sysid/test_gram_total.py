@@ -441,3 +441,23 @@ def test_rows_assembled_fortran_ordered_equal_the_rows(folds, small, monkeypatch
         assert rows.flags.f_contiguous
         np.testing.assert_array_equal(rows, train.gram_rows(r0, r1))
         np.testing.assert_array_equal(rows, train.gram[r0:r1])
+
+
+def test_spc_fit_holding_only_the_factor_columns_it_reads_predicts_bit_for_bit(monkeypatch):
+    """Issue 14 (memory): from ``TOTAL_FACTOR_ROWS`` regressor rows the SPC fit keeps only the first ``n_b``
+    columns of the total's factor through the cross-validation and assembles ``G12`` again for the final map: the
+    same map, table and predictions, bit for bit, as with the whole factor kept (reference: that fit)."""
+    from stimsteer.sysid.datadriven import lsq
+
+    s, P, N = _system(), 5, 8
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    seen = []
+    real = gr.ridge_grid_errors
+    monkeypatch.setattr(lsq, "ridge_grid_errors", lambda *a: seen.append(a[-1]._factor_gram.shape) or real(*a))
+    new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    n_b, n = 5 * P + 2 * N, 5 * (P + N)
+    assert seen == [(n, n_b)] * 3  # the compact factor reached every fold
+    monkeypatch.setattr(lsq, "_compact_kept_factor", lambda *a: None)
+    old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    np.testing.assert_array_equal(np.hstack([new.Kp_, new.Kf_]), np.hstack([old.Kp_, old.Kf_]))
+    np.testing.assert_array_equal(new.cv_table_.to_numpy(), old.cv_table_.to_numpy())
