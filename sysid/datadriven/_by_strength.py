@@ -136,9 +136,11 @@ def strength_errors(Gt: np.ndarray, F: np.ndarray, strengths, c0: float, weights
     ndarray, or None where some ``G11 + s I`` is not positive definite (the caller takes the eigen route).
 
     Memory: ``Gt`` and ``F`` (the caller's), ``workers − 1`` arrays of ``n × n`` and ``workers`` of
-    ``n × RHS_BLOCK``: no copy of ``G11`` for the first worker, of ``G12 Ω`` or of ``L21ᵀ Ω`` (issue 14: with ``F``,
-    221 MB of arrays at past 100 / horizon 50 instead of 270 with those copies and whole blocks of right-hand sides). The sums of squares are taken a block at a time, so the errors agree with
-    sums over whole arrays to rounding (measured at past 100 / horizon 50: ``tests/sysid/test_gram_total.py``).
+    ``n × RHS_BLOCK``: no copy of ``G11`` for the first worker, of ``G12 Ω`` or of ``L21ᵀ Ω`` (issue 14: beside
+    ``F``, 136 MB of arrays at past 100 / horizon 50, the rows 68, the second factor 48 and the right-hand sides
+    2 × 10, instead of 174 with those copies and whole blocks of right-hand sides). The sums of squares are taken a
+    block at a time, so the errors agree with sums over whole arrays to rounding (2.1e-13 relative at past 100 /
+    horizon 50; ``tests/sysid/test_gram_total.py``).
     """
     if not (Gt.flags.f_contiguous and F.flags.f_contiguous):
         raise ValueError("strength_errors needs the Fortran-ordered rows [G11 G12] and a Fortran-ordered F")

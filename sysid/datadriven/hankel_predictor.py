@@ -20,7 +20,8 @@ from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
 from ._hankel_folds import errors_by_fold, known_first
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
-from .kkt import c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor, _projection_g, _projection_map
+from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor,
+                  _projection_g, _projection_map)
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
