@@ -15,7 +15,8 @@ independent pieces: two strengths run side by side on the machine's two cores, e
 nothing spins on a busy machine), while the eigenvalue routine runs on one core only (its tridiagonal reduction is
 memory-bound matrix-vector work); two folds' eigendecompositions side by side need 100 MB more memory there
 (``_eigen_folds``, taken on mid-sized Grams).
-Memory: one ``n × n`` and one ``n × pN`` array per strength in flight.
+Memory: the training Gram's assembled rows (Fortran-ordered), worked on in place, one more ``n × n`` array for the
+second worker and one ``n × RHS_BLOCK`` block of right-hand sides per worker (:func:`strength_errors`).
 
 The LAPACK/BLAS calls go through SciPy's exported C functions (``scipy.linalg.cython_lapack`` /
 ``cython_blas``) called by ``ctypes``, which releases the GIL while they run (SciPy's f2py wrappers of
@@ -73,13 +74,16 @@ def _ref(value: int):
     return ctypes.byref(ctypes.c_int(value))
 
 
-def _potrf_lower(K: np.ndarray) -> int:
-    """Lower Cholesky factor of the Fortran-ordered ``K`` in place (its strict upper triangle is not touched)."""
+def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
+    """Lower Cholesky factor of ``K[:n, :n]`` in place (``K`` Fortran-ordered, possibly with more rows: its
+    leading dimension is ``K.shape[0]``; the strict upper triangle is not touched)."""
+    n = K.shape[1] if n is None else n
     if not nogil_available():  # pragma: no cover - other SciPy builds
-        _c, info = lapack.dpotrf(K, lower=1, overwrite_a=1, clean=0)
+        c, info = lapack.dpotrf(K[:n, :n], lower=1, clean=0)
+        K[:n, :n] = c
         return int(info)
     info = ctypes.c_int(0)
-    _POTRF(b"L", _ref(K.shape[0]), K.ctypes.data_as(_DBL), _ref(K.shape[0]), ctypes.byref(info))
+    _POTRF(b"L", _ref(n), K.ctypes.data_as(_DBL), _ref(K.shape[0]), ctypes.byref(info))
     return int(info.value)
 
 
@@ -89,35 +93,37 @@ def _triangular(name: str, T: np.ndarray, n: int, B: np.ndarray, trans: bool) ->
     ``op`` the transpose when ``trans``; ``B`` Fortran-ordered ``n × k``."""
     if not nogil_available():  # pragma: no cover - other SciPy builds
         f = blas.dtrsm if name == "dtrsm" else blas.dtrmm
-        f(1.0, T[:n, :n], B, lower=1, trans_a=int(trans), overwrite_b=1)
+        B[...] = f(1.0, T[:n, :n], B, lower=1, trans_a=int(trans))
         return
     one = ctypes.c_double(1.0)
     _TRIANGULAR[name](b"L", b"L", b"T" if trans else b"N", b"N", _ref(n), _ref(B.shape[1]), ctypes.byref(one),
                       T.ctypes.data_as(_DBL), _ref(T.shape[0]), B.ctypes.data_as(_DBL), _ref(n))
 
 
-def _restore_lower(K: np.ndarray, diagonal: np.ndarray, block: int = 256) -> None:
-    """Write the symmetric matrix held in ``K``'s strict upper triangle (which ``potrf``/``trsm``/``trmm`` with the
-    lower triangle never touch) back into its lower one, and ``diagonal`` onto the diagonal, by block columns."""
-    n = K.shape[0]
+def _restore_lower(K: np.ndarray, diagonal: np.ndarray, block: int = 256, source: np.ndarray | None = None) -> None:
+    """Write the symmetric matrix held in the strict upper triangle of ``source`` (default ``K`` itself; ``potrf``,
+    ``trsm`` and ``trmm`` with the lower triangle never touch it) into ``K``'s lower one, and ``diagonal`` onto the
+    diagonal, by block columns (``K`` and ``source`` ``n × n``, or views of that block of a larger array)."""
+    n = K.shape[1]
+    S = K if source is None else source
     for j0 in range(0, n, block):
         j1 = min(j0 + block, n)
-        D = K[j0:j1, j0:j1]
-        D[np.tril_indices(j1 - j0, -1)] = D.T[np.tril_indices(j1 - j0, -1)]
-        K[j1:, j0:j1] = K[j0:j1, j1:].T
+        D, E = K[j0:j1, j0:j1], S[j0:j1, j0:j1]
+        D[np.tril_indices(j1 - j0, -1)] = E.T[np.tril_indices(j1 - j0, -1)]
+        K[j1:n, j0:j1] = S[j0:j1, j1:n].T
     K[np.diag_indices(n)] = diagonal
 
 
-def strength_errors(Ks: list, G12w: np.ndarray, F: np.ndarray, strengths, c0: float, weights) -> np.ndarray | None:
-    """Weighted held-out squared errors at each absolute strength (module docstring), ``len(Ks)`` at a time.
+def strength_errors(Gt: np.ndarray, F: np.ndarray, strengths, c0: float, weights, workers: int = 2):
+    """Weighted held-out squared errors at each absolute strength (module docstring), ``workers`` at a time.
 
     Parameters
     ----------
-    Ks : list of ndarray, shape (n, n), Fortran order
-        One copy of the training Gram's regressor block ``G11`` per worker, overwritten (each is reused from one
-        strength to the next: its strict upper triangle keeps ``G11``).
-    G12w : ndarray, shape (n, pN), Fortran order
-        ``G12 Ω`` of the training Gram (not modified).
+    Gt : ndarray, shape (n, n + pN), Fortran order
+        The training Gram's first ``n`` rows ``[G11 G12]`` (``gram_rows(..., fortran=True)``). The first worker
+        factors in place of its ``G11`` (whose strict upper triangle keeps ``G11`` for every strength: its lower
+        triangle and diagonal are overwritten), the others in one ``n × n`` array each; ``G12 Ω`` is formed a
+        block of :data:`RHS_BLOCK` columns at a time.
     F : ndarray, Fortran order
         The total Gram's lower Cholesky factor in its lower triangle (``n + pN`` rows at least; what lies above
         the diagonal is not read).
@@ -128,14 +134,21 @@ def strength_errors(Ks: list, G12w: np.ndarray, F: np.ndarray, strengths, c0: fl
     Returns
     -------
     ndarray, or None where some ``G11 + s I`` is not positive definite (the caller takes the eigen route).
+
+    Memory: ``Gt`` and ``F`` (the caller's), ``workers − 1`` arrays of ``n × n`` and ``workers`` of
+    ``n × RHS_BLOCK``: no copy of ``G11`` for the first worker, of ``G12 Ω`` or of ``L21ᵀ Ω`` (issue 14: beside
+    ``F``, 136 MB of arrays at past 100 / horizon 50, the rows 68, the second factor 48 and the right-hand sides
+    2 × 10, instead of 174 with those copies and whole blocks of right-hand sides). The sums of squares are taken a
+    block at a time, so the errors agree with sums over whole arrays to rounding (2.1e-13 relative at past 100 /
+    horizon 50; ``tests/sysid/test_gram_total.py``).
     """
-    if not (all(K.flags.f_contiguous for K in Ks) and G12w.flags.f_contiguous and F.flags.f_contiguous):
-        raise ValueError("strength_errors needs Fortran-ordered G11 copies, G12w and F")
-    grid = _Grid(Ks, G12w, F, c0, weights)
+    if not (Gt.flags.f_contiguous and F.flags.f_contiguous):
+        raise ValueError("strength_errors needs the Fortran-ordered rows [G11 G12] and a Fortran-ordered F")
+    grid = _Grid(Gt, F, c0, weights, max(1, int(workers)))
     strengths = [float(s) for s in strengths]
     paired = strengths[: len(strengths) - len(strengths) % 2]  # the odd one: on both workers (the same numbers)
-    if len(Ks) > 1 and nogil_available():
-        with ThreadPoolExecutor(max_workers=len(Ks), thread_name_prefix="stimsteer-ridge-grid") as pool:
+    if workers > 1 and nogil_available():
+        with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="stimsteer-ridge-grid") as pool:
             out = list(pool.map(grid.whole, paired))
             out += [grid.split(s, pool) for s in strengths[len(paired):]]
     else:
@@ -143,33 +156,55 @@ def strength_errors(Ks: list, G12w: np.ndarray, F: np.ndarray, strengths, c0: fl
     return None if any(e is None for e in out) else np.asarray(out)
 
 
+#: Right-hand sides (columns of ``G12 Ω``) solved at a time by a worker: measured at ``n`` = 2,450, ``pN`` = 1,000,
+#: 9 strengths on two workers (CPU of the grid, issue 14), 4.7-4.8 s at 512 and at 1,000 (whole), 4.9-5.0 at 256.
+RHS_BLOCK = 512
+#: Columns of ``L21ᵀ Ω`` formed at a time (subtracted from ``Z``).
+_SUB_BLOCK = 64
+
+
 class _Grid:
     """The arrays of :func:`strength_errors` and its two ways of scoring one strength."""
 
-    def __init__(self, Ks, G12w, F, c0, weights):
-        self.n, self.G12w, self.F, self.c0 = G12w.shape[0], G12w, F, float(c0)
-        self.diagonal = np.diagonal(Ks[0]).copy()
-        self.L21w = np.asfortranarray(F[self.n:self.n + G12w.shape[1], :self.n].T * weights[None, :])  # L21ᵀ Ω
-        self.base = float(np.einsum("ij,ij->", self.L21w, self.L21w))
+    def __init__(self, Gt, F, c0, weights, workers):
+        self.n, self.Gt, self.F, self.c0 = Gt.shape[0], Gt, F, float(c0)
+        self.pN = Gt.shape[1] - self.n
+        self.weights = np.asarray(weights, dtype=np.float64)
+        self.G11, self.G12 = Gt[:, :self.n], Gt[:, self.n:]  # Fortran-contiguous blocks
+        self.diagonal = np.diagonal(self.G11).copy()
+        L21w = np.asfortranarray(F[self.n:self.n + self.pN, :self.n].T * self.weights[None, :])  # L21ᵀ Ω
+        self.base = float(np.einsum("ij,ij->", L21w, L21w))
+        del L21w  # (the subtraction forms it a block at a time)
         self.free = queue.SimpleQueue()
-        for K in Ks:  # each worker's arrays, made here: no large allocation on the worker threads
-            self.free.put((K, np.empty_like(G12w, order="F")))
+        rhs = min(RHS_BLOCK, max(self.pN, 1))
+        # each worker's arrays, made here: no large allocation on the worker threads
+        for k in range(workers):
+            K = self.G11 if k == 0 else np.empty((self.n, self.n), order="F")
+            self.free.put((K, np.empty((self.n, rhs), order="F")))
 
     def _factor(self, K: np.ndarray, s: float) -> bool:
-        _restore_lower(K, self.diagonal + s)
-        return _potrf_lower(K) == 0
+        _restore_lower(K, self.diagonal + s, source=self.G11)
+        return _potrf_lower(K, self.n) == 0
 
-    def _columns(self, K, W, c: slice) -> tuple[float, float, float]:
-        """``||W||², ||Y||², ||Z − L21ᵀΩ||²`` over the right-hand sides ``c``, in ``W[:, c]``."""
-        Wc = W[:, c]
-        np.copyto(Wc, self.G12w[:, c])
-        _triangular("dtrsm", K, self.n, Wc, trans=False)  # L⁻¹ G12 Ω
-        ww = _sum_of_squares(Wc)
-        _triangular("dtrsm", K, self.n, Wc, trans=True)  # Y = K⁻¹ G12 Ω
-        yy = _sum_of_squares(Wc)
-        _triangular("dtrmm", self.F, self.n, Wc, trans=True)  # Z = Ctᵀ Y
-        Wc -= self.L21w[:, c]
-        return ww, yy, _sum_of_squares(Wc)
+    def _columns(self, K, W, cols: range) -> tuple[float, float, float]:
+        """``||W||², ||Y||², ||Z − L21ᵀΩ||²`` over the right-hand sides ``cols``, :data:`RHS_BLOCK` at a time in
+        ``W``."""
+        ww = yy = zz = 0.0
+        n, w = self.n, self.weights
+        for k0 in range(cols.start, cols.stop, W.shape[1]):
+            k1 = min(k0 + W.shape[1], cols.stop)
+            Wc = W[:, :k1 - k0]
+            np.multiply(self.G12[:, k0:k1], w[None, k0:k1], out=Wc)  # G12 Ω
+            _triangular("dtrsm", K, n, Wc, trans=False)  # L⁻¹ G12 Ω
+            ww += _sum_of_squares(Wc)
+            _triangular("dtrsm", K, n, Wc, trans=True)  # Y = K⁻¹ G12 Ω
+            yy += _sum_of_squares(Wc)
+            _triangular("dtrmm", self.F, n, Wc, trans=True)  # Z = Ctᵀ Y
+            for j0 in range(k0, k1, _SUB_BLOCK):
+                j1 = min(j0 + _SUB_BLOCK, k1)
+                Wc[:, j0 - k0:j1 - k0] -= self.F[n + j0:n + j1, :n].T * w[None, j0:j1]  # L21ᵀ Ω
+            zz += _sum_of_squares(Wc)
+        return ww, yy, zz
 
     def _error(self, s: float, parts) -> float:
         ww, yy, zz = (sum(v) for v in zip(*parts))
@@ -179,7 +214,7 @@ class _Grid:
         """One strength on one worker."""
         K, W = self.free.get()
         try:
-            return self._error(s, [self._columns(K, W, slice(None))]) if self._factor(K, s) else None
+            return self._error(s, [self._columns(K, W, range(self.pN))]) if self._factor(K, s) else None
         finally:
             self.free.put((K, W))
 
@@ -187,14 +222,17 @@ class _Grid:
         """One strength on two workers: one factor, the right-hand sides in halves side by side (the odd strength
         of a grid; the same numbers with or without ``pool``)."""
         K, W = self.free.get()
+        other = self.free.get_nowait() if not self.free.empty() else None
         try:
             if not self._factor(K, s):
                 return None
-            pN = W.shape[1]
-            first, second = slice(0, pN // 2), slice(pN // 2, pN)  # disjoint columns of the same W
-            if pool is None:
+            first, second = range(0, self.pN // 2), range(self.pN // 2, self.pN)
+            W2 = W if other is None or pool is None else other[1]
+            if W2 is W:
                 return self._error(s, [self._columns(K, W, first), self._columns(K, W, second)])
-            other = pool.submit(self._columns, K, W, second)
-            return self._error(s, [self._columns(K, W, first), other.result()])
+            done = pool.submit(self._columns, K, W2, second)
+            return self._error(s, [self._columns(K, W, first), done.result()])
         finally:
             self.free.put((K, W))
+            if other is not None:
+                self.free.put(other)

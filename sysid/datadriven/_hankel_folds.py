@@ -12,9 +12,8 @@ as assembled, seen as the column-major ``n × n_b`` panel ``[G11; G21]`` (the Gr
 The same arithmetic as that function, transposed, with no copy of ``G11``, ``G12`` or ``Θ`` (one 2,450 × 3,450
 array per fold at past 100 / horizon 50, against three more of 48, 20 and 20 MB). The LAPACK and BLAS calls release
 the GIL (:func:`~stimsteer.sysid._lapack_nogil.strided_cholesky_calls`), so two worker threads (one BLAS thread
-each) keep both cores busy: two folds are assembled and factored at once, and the triangular steps of a fold are
-cut in two halves of its ``pN`` rows (rows of ``G21`` are independent in ``B := B L⁻ᵀ``). At most two folds' arrays
-are held at a time.
+each) keep both cores busy in the triangular steps of a fold, cut in two halves of its ``pN`` rows (rows of ``G21``
+are independent in ``B := B L⁻ᵀ``). One fold's array is held at a time (:data:`FOLDS_IN_FLIGHT`).
 """
 
 from __future__ import annotations
@@ -31,6 +30,11 @@ __all__: list = []
 _CALLS = strided_cholesky_calls()
 #: Worker threads (the machine's two cores; each one BLAS thread).
 WORKERS = 2
+#: Folds whose assembled arrays are held at once. 1: the next fold is assembled and factored once the current one is
+#: scored (its two halves side by side), so the fit holds the total's factor and one fold's ``n_b × n`` array; 2
+#: overlaps them (two folds assembled and factored side by side, one more array: 68 MB at past 100 / horizon 50,
+#: where the fit's peak resident memory was 441-483 MB against the 500 MB target; issue 14).
+FOLDS_IN_FLIGHT = 1
 #: Regressor rows (``n_b``) from which the folds are scored here (and the total's factor is kept: also from
 #: ``gram.TOTAL_FACTOR_ROWS``); smaller fits score their folds one by one (threads would cost more than they save).
 SIDE_BY_SIDE_ROWS = 512
@@ -94,7 +98,7 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
     todo = [i for i, f in enumerate(folds) if f.n_columns and total.n_columns - f.n_columns]
     out = {}
     with ThreadPoolExecutor(max_workers=WORKERS, thread_name_prefix="stimsteer-hankel-folds") as pool:
-        factored = {i: pool.submit(_factor_fold, _others(folds, i), n_b) for i in todo[:WORKERS]}
+        factored = {i: pool.submit(_factor_fold, _others(folds, i), n_b) for i in todo[:FOLDS_IN_FLIGHT]}
         for k, i in enumerate(todo):
             Gt = factored.pop(i).result()
             if Gt is None:
@@ -105,8 +109,8 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
                 out[i] = float(w2 @ diag22) + sum(h.result() for h in halves)
             del Gt
             release_freed_memory()  # this fold's array, before the next one is assembled
-            if k + WORKERS < len(todo):
-                j = todo[k + WORKERS]
+            if k + FOLDS_IN_FLIGHT < len(todo):
+                j = todo[k + FOLDS_IN_FLIGHT]
                 factored[j] = pool.submit(_factor_fold, _others(folds, j), n_b)
     return out
 

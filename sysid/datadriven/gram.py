@@ -110,11 +110,12 @@ class _GramFold:
         """``H Hᵀ`` in the row order ``[Up; Yp; Uf; Yf]``."""
         return self.gram_rows(0, self.perm.size)
 
-    def gram_rows(self, r0: int, r1: int) -> np.ndarray:
-        """Rows ``[r0, r1)`` of :attr:`gram` (the same numbers), assembled alone."""
+    def gram_rows(self, r0: int, r1: int, fortran: bool = False) -> np.ndarray:
+        """Rows ``[r0, r1)`` of :attr:`gram` (the same numbers), assembled alone (Fortran-ordered with
+        ``fortran``)."""
         index = np.empty_like(self.perm)
         index[self.perm] = np.arange(self.perm.size)
-        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1))
+        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1), fortran=fortran)
 
     def gram_diagonal(self) -> np.ndarray:
         """The diagonal of :attr:`gram` (the same numbers), from the sums alone."""
@@ -238,7 +239,7 @@ BY_STRENGTH = True
 #: eigendecomposition side by side (one core each), any other by strength on both (:data:`BY_STRENGTH`'s route),
 #: where their arrays fit ``_eigen_folds.MAX_BYTES`` (mid-sized Grams; measured there). False: fold by fold.
 FOLDS_SIDE_BY_SIDE = True
-#: Strengths scored at once (the machine's two cores; each worker holds one n × n and one n × pN array).
+#: Strengths scored at once (the machine's two cores; each worker but the first holds one n × n array).
 STRENGTH_WORKERS = 2
 
 
@@ -303,13 +304,9 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 
 def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray | None:
     """:func:`ridge_grid_errors` one strength at a time, two side by side (:mod:`._by_strength`), or None."""
-    Gt = train.gram_rows(0, n_b)
-    G11, G12w = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:] * weights[None, :])
-    del Gt
-    Ks = [G11] + [np.array(G11, order="F") for _ in range(STRENGTH_WORKERS - 1)]
-    del G11
+    Gt = train.gram_rows(0, n_b, fortran=True)  # worked on in place: no copy of G11 or G12 (issue 14)
     c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
-    return strength_errors(Ks, G12w, F, strengths, c0, weights)
+    return strength_errors(Gt, F, strengths, c0, weights, STRENGTH_WORKERS)
 
 
 def _training_rows(total: "_GramFold", Gv: np.ndarray, n_b: int) -> np.ndarray:
@@ -404,7 +401,12 @@ def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float) -> np.nd
     K = np.asfortranarray(F[:n_b, :n_b].T)  # lower triangle: G11's (by symmetry); the upper one is not read
     K[np.diag_indices_from(K)] = total.gram_diagonal()[:n_b]
     K[np.diag_indices_from(K)] += strength
-    return _cholesky_solve(K, F[:n_b, n_b:])
+    if F.shape[1] > n_b:
+        return _cholesky_solve(K, F[:n_b, n_b:])
+    del F  # kept without its last columns (lsq._compact_kept_factor): G12 assembled again, the factor dropped first
+    total.release()
+    return _cholesky_solve(K, total.gram_rows(0, n_b, fortran=True)[:, n_b:])
+
 
 
 def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> np.ndarray:

@@ -20,7 +20,8 @@ from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
 from ._hankel_folds import errors_by_fold, known_first
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
-from .kkt import _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor, _projection_g, _projection_map
+from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor,
+                  _projection_g, _projection_map)
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
@@ -281,6 +282,8 @@ class HankelPredictor(_DirectPredictor):
     def _blocks(self, data: _Fold, compress: bool):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         H = data.factor if compress else np.concatenate(data.full, axis=1)
+        if compress and self.factor_route_ == "gram":  # the row blocks as views (the factor is dropped below)
+            H = c_order_in_place(H)
         blocks, r = HankelBlocks.from_matrix(H, m, p, past, N, compress), H.shape[1]
         del H
         data.release()  # memory: the blocks hold the factor's rows

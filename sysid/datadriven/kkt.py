@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import threading
 import warnings
 
 import numpy as np
@@ -92,12 +93,24 @@ def _leading_block(blocks):
 
 
 def _leading_square(blocks, n_b: int) -> np.ndarray:
-    """``D1``, the first ``n_b`` columns of ``D`` (made from the row blocks, without the ``n_b × r`` ``D``)."""
-    return np.vstack([blocks.Up[:, :n_b], blocks.Yp[:, :n_b], blocks.Uf[:, :n_b]])
+    """``D1``, the first ``n_b`` columns of ``D`` (made from the row blocks, without the ``n_b × r`` ``D``),
+    Fortran-ordered: the order LAPACK takes without a copy of its own."""
+    D1 = np.empty((n_b, n_b), order="F")
+    r0 = 0
+    for b in (blocks.Up, blocks.Yp, blocks.Uf):
+        D1[r0:r0 + b.shape[0]] = b[:, :n_b]
+        r0 += b.shape[0]
+    return D1
 
 
-def _is_lower(D1: np.ndarray) -> bool:
-    return not np.triu(D1, 1).any()
+def _is_lower(D1: np.ndarray, block: int = 256) -> bool:
+    """Whether the strict upper triangle of ``D1`` is zero (by block rows: no temporary of its size)."""
+    n = D1.shape[0]
+    for i0 in range(0, n, block):
+        i1 = min(i0 + block, n)
+        if np.triu(D1[i0:i1, i0:], 1).any():
+            return False
+    return True
 
 
 def _projection_closed_form(blocks, limit: float, make_projector: bool = True):
@@ -121,18 +134,44 @@ def _projection_closed_form(blocks, limit: float, make_projector: bool = True):
         del lu
     if info != 0 or not rcond * limit >= 1.0:
         return None, None
-    rhs = np.ascontiguousarray(blocks.Yf[:, :n_b].T)
-    theta = (sla.solve_triangular(D1, rhs, lower=True, trans="T", check_finite=False) if lower else
-             sla.solve(D1.T, rhs, check_finite=False)).T
+    rhs = np.asfortranarray(blocks.Yf[:, :n_b].T)  # solved in place (Fortran order: no copy by the wrapper)
+    theta = (sla.solve_triangular(D1, rhs, lower=True, trans="T", overwrite_b=True, check_finite=False) if lower
+             else sla.solve(D1.T, rhs, check_finite=False)).T
     del D1, rhs
     return (_coordinate_projector(blocks.Up.shape[1], n_b) if make_projector else n_b), theta
 
 
 def _coordinate_projector(r: int, n_b: int) -> np.ndarray:
-    """``diag(0_{n_b}, I_{r − n_b})``."""
-    d = np.zeros(r)
-    d[n_b:] = 1.0
-    return np.diag(d)
+    """``diag(0_{n_b}, I_{r − n_b})`` (the same numbers as ``np.diag``), its zero pages left untouched
+    (:func:`_sparse_zeros`)."""
+    M = _sparse_zeros((r, r))
+    k = np.arange(n_b, r)
+    M[k, k] = 1.0
+    return M
+
+
+_HUGEPAGE_LOCK = threading.Lock()
+
+
+def _sparse_zeros(shape) -> np.ndarray:
+    """``np.zeros(shape)`` without NumPy's transparent-huge-page advice while it is made.
+
+    A large zero array comes from ``calloc`` as fresh zero pages of the operating system: only the pages written
+    become resident. NumPy advises huge pages for arrays of 4 MB and more, and where the kernel follows that advice
+    (``madvise`` mode) one written entry makes a whole 2 MB page resident: the dense ``r × r`` coordinate projector
+    (ones on a diagonal) took 88 MB of resident memory instead of 13 at ``r`` = 3,450 (past 100 / horizon 50; issue
+    14). Any later write to the array still works as for any array (its pages then become resident).
+    """
+    toggle = getattr(getattr(np, "_core", None), "multiarray", None)
+    toggle = getattr(toggle, "_set_madvise_hugepage", None)
+    if toggle is None:  # pragma: no cover - other NumPy versions
+        return np.zeros(shape)
+    with _HUGEPAGE_LOCK:
+        old = toggle(False)
+        try:
+            return np.zeros(shape)
+        finally:
+            toggle(old)
 
 
 def _is_coordinate_projector(M, n_b: int) -> bool:
@@ -172,3 +211,25 @@ def _projection_g(blocks, M, B: np.ndarray):
     g = np.zeros((blocks.Up.shape[1], B.shape[1]))
     g[:g1.shape[0]] = g1
     return g
+
+
+def c_order_in_place(H: np.ndarray, block: int = 256) -> np.ndarray:
+    """``H`` as a C-ordered array, made in ``H``'s own memory where it is a square Fortran-ordered array (its tiles
+    swapped with their transposes: the same numbers, no second array of its size); a C-ordered copy otherwise.
+
+    The Hankel predictor's row blocks are rows of the total Gram's Cholesky factor (Fortran-ordered, ``n × n``):
+    row blocks of a C-ordered array need no copies, where copying them out of the factor held the factor and the
+    copies at once (190 MB at past 100 / horizon 50; issue 14). ``H`` is overwritten: the caller drops it.
+    """
+    n = H.shape[0]
+    if H.ndim != 2 or H.shape[1] != n or not H.flags.f_contiguous or H.flags.c_contiguous or not H.flags.writeable:
+        return np.ascontiguousarray(H)
+    for i0 in range(0, n, block):
+        I = slice(i0, min(i0 + block, n))
+        H[I, I] = H[I, I].T.copy()
+        for j0 in range(i0 + block, n, block):
+            J = slice(j0, min(j0 + block, n))
+            upper = H[I, J].copy()
+            H[I, J] = H[J, I].T
+            H[J, I] = upper.T
+    return H.T  # the memory now holds Hᵀ column by column: H row by row

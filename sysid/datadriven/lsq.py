@@ -10,7 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
-from .gram import fitted_ridge_map, ridge_grid_errors
+from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
 
 __all__ = ["LsqPredictor"]
 
@@ -25,6 +25,20 @@ def _lsq_map(F: np.ndarray, n_b: int, strength: float) -> np.ndarray:
     A = np.vstack([F1.T, np.sqrt(strength) * np.eye(n_b)])
     B = np.vstack([F2.T, np.zeros((n_b, F2.shape[0]))])
     return sla.lstsq(A, B, lapack_driver="gelsd", check_finite=False)[0].T
+
+
+def _compact_kept_factor(total: "_GramFold | None", n_b: int) -> None:
+    """Keep only the first ``n_b`` columns of the total's ``_factor_gram`` (from ``gram.TOTAL_FACTOR_ROWS``
+    regressor rows): the factor's ``[Ct; L21]`` with ``G11`` above the diagonal, all the held-out terms read. The
+    last columns (``G12`` above, ``L22``: 28 MB at past 100 / horizon 50, issue 14) are not held through the
+    cross-validation; the final map assembles ``G12`` again (``gram._ridge_map_from_kept``: the same numbers, ``G``
+    being exactly symmetric; one assembly of ``n_b`` rows, 0.09 s of CPU there)."""
+    F = _total_factor(total, n_b)  # None below TOTAL_FACTOR_ROWS
+    if F is None or F is not total._factor_gram or F.shape[1] <= n_b:
+        return
+    total._factor_gram = np.array(F[:, :n_b], order="F")
+    del F
+    release_freed_memory()
 
 
 class LsqPredictor(_DirectPredictor):
@@ -154,6 +168,8 @@ class LsqPredictor(_DirectPredictor):
 
         gram_route = self.factor_route_ == "gram"
         total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
+        if gram_route:
+            _compact_kept_factor(total, n_b)  # memory: the factor's columns the held-out terms read (issue 14)
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid

@@ -144,20 +144,64 @@ def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_array
     train, val = total.plus(fs[1], -1.0), fs[1]
     w = np.linspace(0.5, 2.0, 18)
     G = train.gram
-    G11, G12w = np.asfortranarray(G[:n_b, :n_b]), np.asfortranarray(G[:n_b, n_b:] * w[None, :])
     s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
     c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
-    one = bs.strength_errors([G11.copy(order="F")], G12w, total._factor, s, c0, w)  # one array reused 9 times
-    two = bs.strength_errors([G11.copy(order="F"), G11.copy(order="F")], G12w, total._factor, s, c0, w)
+    rows = np.asfortranarray(G[:n_b])  # [G11 G12], Fortran-ordered (worked on in place)
+    one = bs.strength_errors(rows, total._factor, s, c0, w, workers=1)  # one array reused 9 times
+    two = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w, workers=2)
     np.testing.assert_array_equal(two, one)  # each strength computes the same numbers on whichever worker
     # the definition at each strength, from both Grams (validation Gram = total − training)
     Gv = val.gram
     for k, sk in enumerate(s):
-        theta = np.linalg.solve(G11 + sk * np.eye(n_b), G[:n_b, n_b:]).T
+        theta = np.linalg.solve(G[:n_b, :n_b] + sk * np.eye(n_b), G[:n_b, n_b:]).T
         R = Gv[n_b:, n_b:] - theta @ Gv[:n_b, n_b:] - Gv[n_b:, :n_b] @ theta.T + theta @ Gv[:n_b, :n_b] @ theta.T
         assert one[k] == pytest.approx(float(w ** 2 @ np.diagonal(R)), rel=1e-9)
-    np.testing.assert_array_equal(G12w, np.asfortranarray(G[:n_b, n_b:] * w[None, :]))  # not modified
-    assert bs.strength_errors([G11.copy(order="F")], G12w, total._factor, [-1e9], c0, w) is None  # not PD
+    np.testing.assert_array_equal(rows[:, n_b:], G[:n_b, n_b:])  # G12 not modified
+    np.testing.assert_array_equal(np.triu(rows[:, :n_b], 1), np.triu(G[:n_b, :n_b], 1))  # nor G11 above the diagonal
+    assert bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, [-1e9], c0, w) is None  # not PD
+
+
+def test_right_hand_sides_in_blocks_agree_with_whole_ones_to_rounding(folds, monkeypatch):
+    """Summing the squares a block of right-hand sides at a time (issue 14: memory) changes only the rounding of the
+    sums: against one block of all of them, 1e-12 relative (2.3e-13 measured on the fit at past 100 / horizon 50)."""
+    fs, total, n_b = folds
+    train, val = total.plus(fs[0], -1.0), fs[0]
+    w = np.linspace(0.5, 2.0, 18)
+    G = train.gram
+    s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
+    c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
+    whole = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w)
+    monkeypatch.setattr(bs, "RHS_BLOCK", 5)  # 18 right-hand sides in blocks of 5, 5, 5, 3
+    np.testing.assert_allclose(bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w), whole,
+                               rtol=1e-12)
+
+
+def test_the_strength_grid_adds_one_matrix_and_blocks_of_right_hand_sides(monkeypatch):
+    """Memory (issue 14): beyond the caller's training rows and total factor, at most one ``n_b × n_b`` array (the
+    second worker's factor) and two blocks of ``RHS_BLOCK`` right-hand sides, or the ``2 n_b pN`` of the data
+    term's transient, plus each worker's block temporaries (a 256-column triangle's indices and values, ``n_b × 64``
+    of ``L21ᵀ Ω``) and 64 kB; no copy of ``G11`` per worker, of ``G12 Ω`` or of ``L21ᵀ Ω`` (those took
+    ``n_b² + 4 n_b pN`` more: here 10 MB over a 7.5 MB bound). Reference: the arrays' sizes (tracemalloc counts
+    NumPy's allocations)."""
+    import tracemalloc
+
+    rng = np.random.default_rng(0)
+    n_b, pN = 800, 400
+    X = rng.standard_normal((n_b + pN, 3 * (n_b + pN)))
+    G = X @ X.T
+    F = np.linalg.cholesky(G).copy(order="F")
+    Gt = np.asfortranarray(0.7 * G[:n_b])  # a training Gram's rows (any positive definite G11)
+    monkeypatch.setattr(bs, "RHS_BLOCK", 32)
+    w, s = np.linspace(0.5, 2.0, pN), np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
+    tracemalloc.start()
+    try:
+        errors = bs.strength_errors(Gt, F, s, 1.0, w, workers=2)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert errors is not None
+    per_worker = 8 * (3 * 256 * 255 // 2 + n_b * 64)
+    assert peak <= 8 * max(n_b * n_b + 2 * n_b * 32, 2 * n_b * pN) + 2 * per_worker + 65536
 
 
 def test_a_reused_array_gets_its_matrix_back_after_the_factorisation():
@@ -379,3 +423,41 @@ def test_lsq_fits_with_the_folds_side_by_side_predict_as_fold_by_fold(monkeypatc
     np.testing.assert_array_equal(new.Kf_, old.Kf_)
     for col in [c for c in old.cv_table_.columns if c != "candidate"]:
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)
+
+
+@pytest.mark.parametrize("small", [True, False])
+def test_rows_assembled_fortran_ordered_equal_the_rows(folds, small, monkeypatch):
+    """``gram_rows(..., fortran=True)`` (the strength grid's rows, issue 14): the numbers of the C-ordered rows, bit
+    for bit (reference: the Gram's own rows; the Gram is exactly symmetric), by the strided copies and by the
+    short vectors' path."""
+    from stimsteer.sysid import _lagged
+
+    if not small:
+        monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)
+    fs, total, n_b = folds
+    train = total.plus(fs[1], -1.0)
+    for r0, r1 in ((0, n_b), (3, 17)):
+        rows = train.gram_rows(r0, r1, fortran=True)
+        assert rows.flags.f_contiguous
+        np.testing.assert_array_equal(rows, train.gram_rows(r0, r1))
+        np.testing.assert_array_equal(rows, train.gram[r0:r1])
+
+
+def test_spc_fit_holding_only_the_factor_columns_it_reads_predicts_bit_for_bit(monkeypatch):
+    """Issue 14 (memory): from ``TOTAL_FACTOR_ROWS`` regressor rows the SPC fit keeps only the first ``n_b``
+    columns of the total's factor through the cross-validation and assembles ``G12`` again for the final map: the
+    same map, table and predictions, bit for bit, as with the whole factor kept (reference: that fit)."""
+    from stimsteer.sysid.datadriven import lsq
+
+    s, P, N = _system(), 5, 8
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    seen = []
+    real = gr.ridge_grid_errors
+    monkeypatch.setattr(lsq, "ridge_grid_errors", lambda *a: seen.append(a[-1]._factor_gram.shape) or real(*a))
+    new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    n_b, n = 5 * P + 2 * N, 5 * (P + N)
+    assert seen == [(n, n_b)] * 3  # the compact factor reached every fold
+    monkeypatch.setattr(lsq, "_compact_kept_factor", lambda *a: None)
+    old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
+    np.testing.assert_array_equal(np.hstack([new.Kp_, new.Kf_]), np.hstack([old.Kp_, old.Kf_]))
+    np.testing.assert_array_equal(new.cv_table_.to_numpy(), old.cv_table_.to_numpy())

@@ -102,3 +102,28 @@ def test_near_the_condition_limit_the_side_by_side_folds_predict_as_the_qr_route
     a, b = qr.predict_many(*windows), new.predict_many(*windows)
     assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
     np.testing.assert_allclose(new.cv_table_["validation_error"], qr.cv_table_["validation_error"], rtol=1e-6)
+
+
+def test_row_blocks_made_in_the_factors_memory_and_the_projector_equal_their_copies():
+    """Issue 14 (memory at past 100 / horizon 50): the factor made C-ordered in its own memory holds the numbers of
+    ``np.ascontiguousarray`` (reference: NumPy's copy) with no second array of its size (tracemalloc: two tiles of
+    256 columns at most), and the coordinate projector is ``np.diag``'s, bit for bit."""
+    import tracemalloc
+
+    from stimsteer.sysid.datadriven import kkt
+
+    rng = np.random.default_rng(1)
+    n = 700
+    F = np.asfortranarray(np.tril(rng.standard_normal((n, n))))
+    want = np.ascontiguousarray(F)
+    tracemalloc.start()
+    try:
+        got = kkt.c_order_in_place(F)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert got.flags.c_contiguous and np.shares_memory(got, F)
+    np.testing.assert_array_equal(got, want)
+    assert peak <= 2 * 8 * 256 * 256 + 65536
+    d = np.r_[np.zeros(40), np.ones(n - 40)]
+    np.testing.assert_array_equal(kkt._coordinate_projector(n, 40), np.diag(d))
