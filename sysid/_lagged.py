@@ -39,6 +39,12 @@ class _Moments:
         return out
 
 
+#: Rows of a chunk multiplied at a time, for every lag, while they stay in cache: with 72 channels and 5 or 10 lags,
+#: one thread's products ran at 44 GF/s in blocks of 2,048–4,096 rows against 36–40 GF/s over 16,384 rows at once
+#: (this machine's ``dgemm`` peak: about 49 GF/s per core); with 23 channels and 150 lags alike (22 GF/s).
+_BLOCK_ROWS = 4096
+
+
 def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
     """Sums and lag products over the rows of one chunk, without building the lagged design.
 
@@ -55,15 +61,24 @@ def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]
         ``sum_t Z_t`` over the chunk's rows.
     X : ndarray, shape (L + 1, c, c)
         ``X[δ] = sum_t Z_t Z_{t-δ}ᵀ`` over the chunk's rows ``t`` (``Z_{t-δ}`` may lie in the lead-in): one
-        product of two ``(n × c)`` matrices per lag difference, the symmetric ``δ = 0`` one by a rank-k update.
+        product of two ``(n × c)`` matrices per lag difference (in blocks of :data:`_BLOCK_ROWS` rows, every lag of a
+        block before the next block).
     """
     L = n_lags
     n, c = B.shape[0] - L, B.shape[1]
-    rows = B[L:]
-    X = np.empty((L + 1, c, c))
-    for delta in range(L + 1):
-        np.matmul(rows.T, B[L - delta: L - delta + n], out=X[delta])
-    return rows.sum(axis=0), X
+    X = np.empty((L + 1, c, c)) if n > 0 else np.zeros((L + 1, c, c))
+    part = np.empty((c, c)) if n > _BLOCK_ROWS else None
+    for k0 in range(0, n, _BLOCK_ROWS):  # one block of rows, every lag, while it is in cache
+        k1 = min(n, k0 + _BLOCK_ROWS)
+        rows = B[L + k0: L + k1]
+        for delta in range(L + 1):
+            lagged = B[L - delta + k0: L - delta + k1]
+            if k0 == 0:
+                np.matmul(rows.T, lagged, out=X[delta])
+            else:
+                np.matmul(rows.T, lagged, out=part)
+                X[delta] += part
+    return B[L:].sum(axis=0), X
 
 
 def _chunks(pieces, chunk_rows: int):
