@@ -68,6 +68,9 @@ def add_parser(sub) -> None:
                    "(state-space models or direct predictors; needs the realtime extra, daqp) instead of the full "
                    "plan: for sample rates in the kHz. It plans with the per-sample limits; the gate clips each input "
                    "to what is left of every rolling window and train")
+    p.add_argument("--realtime", action="store_true", help="ask for real-time scheduling (SCHED_FIFO) on one core "
+                   "and locked memory for the run; what the system granted or refused is printed and kept in "
+                   "run.json. Never required: a refusal changes nothing else, and all is undone at the end")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated plant's noise (default 0)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
 
@@ -147,6 +150,9 @@ def _lines(run, out) -> list:
         lines.append(f"note: {late} of {s['n_steps_run']} steps missed their deadline of {us(s['sample_period_s'])} "
                      f"(timed plans: median {us(cal['median'])}); the loop held or fell back instead of controlling. "
                      "Use a cheaper controller (shorter --horizon) or a model at a lower rate.")
+    if s.get("realtime", {}).get("requested"):
+        asked = {k: v for k, v in s["realtime"].items() if k != "requested"}
+        lines.append("real time: " + "; ".join(f"{k.replace('_', ' ')} {v}" for k, v in asked.items()))
     if "stream" in s:
         lines.append(f"stream: {s['stream']['dropped']} samples dropped by the source or the inlet buffer, "
                      f"{s['stream']['missing']} not arrived in time")
@@ -167,7 +173,7 @@ def run(args) -> int:
             result = run_live(ctrl, plant, n_steps=n_steps, target=target, pace=pace, seed=args.seed,
                               overrun_policy=args.overrun, max_stall_s=args.max_stall_s, output_units=units,
                               offset_free=None if args.offset_free == "off" else args.offset_free,
-                              simulated_plant=pace == "wall")
+                              simulated_plant=pace == "wall", realtime=args.realtime)
             if pace == "source":  # the bridge's own counts of the stream
                 result.summary["stream"] = {"dropped": plant.n_dropped, "missing": plant.n_missing}
         summary = jsonable({**result.summary, "model_file": str(args.model), "limits_file": str(args.limits),

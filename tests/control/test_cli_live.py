@@ -78,6 +78,25 @@ def test_live_runs_for_the_declared_time_and_writes_a_refittable_session(files, 
     assert s.metadata["recorded_under_feedback"] is True and np.all(s.u[-1] == 0)
 
 
+def test_live_realtime_asks_the_system_and_reports_what_it_granted_or_refused(files, capsys):
+    # whether SCHED_FIFO, one core and locked memory are granted depends on the machine's rights (common practice,
+    # no source: Linux grants SCHED_FIFO to privileged processes or under an RLIMIT_RTPRIO); either way the run goes on
+    code = main(_args(files, "run_rt", "--plant", str(files / "plant.h5"), "--realtime"))
+    printed = capsys.readouterr().out
+    assert code == 0, printed
+    summary = json.loads((files / "run_rt" / "run.json").read_text())
+    asked = summary["realtime"]
+    assert asked["requested"] is True and set(asked) == {"requested", "sched_fifo", "cpu", "memory_locked"}
+    assert all(str(v).startswith(("granted", "refused")) for k, v in asked.items() if k != "requested")
+    line = next(ln for ln in printed.splitlines() if ln.startswith("real time: "))
+    assert "sched fifo" in line and "memory locked" in line
+    assert summary["n_steps_run"] == 30 and summary["unchecked_inputs"] == 0
+    # without the flag nothing is asked
+    main(_args(files, "run_plain", "--plant", str(files / "plant.h5")))
+    assert "real time: " not in capsys.readouterr().out
+    assert json.loads((files / "run_plain" / "run.json").read_text())["realtime"] == {"requested": False}
+
+
 @pytest.mark.parametrize("extra, match", [
     ([], "give either --plant PLANT.h5"),
     (["--inlet", "stimsteer-absent-{pid}", "--resolve-timeout-s", "0.3"],
