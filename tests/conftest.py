@@ -28,3 +28,19 @@ def pytest_terminal_summary(terminalreporter):
         terminalreporter.write_line(f"{total} check(s) on open measured data were skipped:")
         for text, reports in reasons.items():
             terminalreporter.write_line(f"  {len(reports)} x {text}")
+
+
+@pytest.fixture
+def saved_figures(monkeypatch):
+    """The figures the commands save during a test, in order (through the figures' own ``savefig``, which draws
+    once: their texts and tick labels exist afterwards)."""
+    from stimsteer.control.figures._glyphs import GlyphSafeFigure
+
+    seen, original = [], GlyphSafeFigure.savefig
+
+    def capture(fig, *args, **kwargs):
+        seen.append(fig)
+        return original(fig, *args, **kwargs)
+
+    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
+    return seen

@@ -151,23 +151,14 @@ def test_parse_target_refuses_an_empty_table(tmp_path):
         parse_target(tmp_path / "empty.csv", ("a",), 2)
 
 
-def test_the_plan_figure_carries_the_caution(files, capsys, monkeypatch):
+def test_the_plan_figure_carries_the_caution(files, capsys, saved_figures):
     # a figure travels without its folder, so the caution is drawn into it (project rule: every plan carries it)
     import matplotlib.text
 
-    texts = []
-    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
-
-    original = GlyphSafeFigure.savefig
-
-    def capture(fig, *args, **kwargs):
-        texts.extend(" ".join(t.get_text().split()) for t in fig.findobj(matplotlib.text.Text))
-        return original(fig, *args, **kwargs)
-
-    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
     d, _model = files
     assert main(["plan", str(d / "model.h5"), "--target", "lfp_0=1", "--limits", str(d / "limits.toml"),
                  "--out", str(d / "out"), "--horizon-steps", "8"]) == 0
+    texts = [" ".join(t.get_text().split()) for fig in saved_figures for t in fig.findobj(matplotlib.text.Text)]
     assert CAUTION in texts
 
 

@@ -48,18 +48,7 @@ def test_ranking_bars_use_a_plain_axis_unless_the_values_span_orders_of_magnitud
     assert ranking_figure(["a", "b"], np.array([1e4, 1.0]), "t", "x").axes[0].get_xscale() == "log"
 
 
-def test_the_plan_figure_shades_allowed_regions_instead_of_dotted_limit_lines(tmp_path, monkeypatch):
-
-    seen = []
-    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
-
-    original = GlyphSafeFigure.savefig
-
-    def capture(fig, *args, **kwargs):
-        seen.append(fig)
-        return original(fig, *args, **kwargs)
-
-    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
+def test_the_plan_figure_shades_allowed_regions_instead_of_dotted_limit_lines(tmp_path, saved_figures):
     A = np.diag([0.5, 0.7])
     m = StateSpaceModel(A=A, B=np.eye(2), C=np.eye(2), sample_rate_hz=100.0, input_names=("s0", "s1"),
                         output_names=("y0", "y1"), past_steps=2)
@@ -71,7 +60,7 @@ def test_the_plan_figure_shades_allowed_regions_instead_of_dotted_limit_lines(tm
                                      "[outputs.y1]\nmax = 0.5\n")
     assert main(["plan", str(tmp_path / "m.h5"), "--target", "y0=1", "--limits", str(tmp_path / "l.toml"),
                  "--horizon-steps", "6", "--out", str(tmp_path / "p")]) == 0
-    fig = seen[-1]
+    fig = saved_figures[-1]
     strips = [ax for ax in fig.axes if ax.get_ylabel().endswith("[µA]")]
     assert len(strips) == 2
     for ax, (lo, hi) in zip(strips, ((-1.0, 2.0), (-1.0, 1.0))):

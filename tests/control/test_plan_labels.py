@@ -34,17 +34,7 @@ def test_spread_leaves_labels_that_are_far_apart_where_they_are_and_keeps_them_i
     assert at.max() <= 10.0 + 1e-12 and np.all(np.diff(np.sort(at)) >= 1.0 - 1e-12)
 
 
-def test_the_plan_figures_end_labels_do_not_overlap_when_traces_end_together(tmp_path, monkeypatch):
-    from stimsteer.control.figures._glyphs import GlyphSafeFigure
-
-    seen = []
-    original = GlyphSafeFigure.savefig
-
-    def capture(fig, *args, **kwargs):
-        seen.append(fig)
-        return original(fig, *args, **kwargs)
-
-    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
+def test_the_plan_figures_end_labels_do_not_overlap_when_traces_end_together(tmp_path, saved_figures):
     # three outputs that read nearly the same state: driven to the same target, their traces end together
     C = np.array([[1.0, 0.0], [1.0, 1e-3], [1.0, -1e-3]])
     m = StateSpaceModel(A=np.diag([0.5, 0.7]), B=np.eye(2), C=C, sample_rate_hz=100.0, input_names=("s0", "s1"),
@@ -54,7 +44,7 @@ def test_the_plan_figures_end_labels_do_not_overlap_when_traces_end_together(tmp
                                      "[inputs.s1]\namplitude_min_ua = -5.0\namplitude_max_ua = 5.0\n")
     assert main(["plan", str(tmp_path / "m.h5"), "--target", "y0=1,y1=1,y2=1", "--limits", str(tmp_path / "l.toml"),
                  "--horizon-steps", "8", "--out", str(tmp_path / "p")]) == 0
-    fig = seen[-1]
+    fig = saved_figures[-1]
     canvas = FigureCanvasAgg(fig)  # matplotlib's own canvas: the layout and text boxes as any viewer draws them
     canvas.draw()
     renderer = canvas.get_renderer()

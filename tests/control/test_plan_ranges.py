@@ -103,24 +103,13 @@ def test_the_demo_direct_plan_lists_every_output_and_flags_the_untargeted_swing(
         assert o["flagged"] == (not o["targeted"] and o["largest_move"] > FLAG_FRACTION * width)
 
 
-def test_the_plan_figure_names_every_output_and_the_route(demo_direct, monkeypatch):
+def test_the_plan_figure_names_every_output_and_the_route(demo_direct, saved_figures):
     import matplotlib.text
 
-    texts = []
-    from stimsteer.control.figures._glyphs import GlyphSafeFigure  # the figures' own savefig (draws once)
-
-    original = GlyphSafeFigure.savefig
-
-    def capture(fig, *args, **kwargs):
-        fig.canvas.draw()  # tick labels exist once drawn
-        texts.extend(t.get_text() for t in fig.findobj(matplotlib.text.Text))
-        return original(fig, *args, **kwargs)
-
-    monkeypatch.setattr(GlyphSafeFigure, "savefig", capture)
     d, model = demo_direct
     assert main(["plan", str(model), "--target", "rec_01=15,rec_04=-10", "--limits",
                  str(demo_file("demo_limits.toml")), "--horizon-steps", "20", "--out", str(d / "plan_fig")]) == 0
-    joined = "\n".join(texts)
+    joined = "\n".join(t.get_text() for fig in saved_figures for t in fig.findobj(matplotlib.text.Text))
     assert all(f"rec_{k:02d}" in joined for k in range(1, 9))
     assert "direct route, hankel" in joined and "flagged" in joined
 
