@@ -139,13 +139,18 @@ def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monke
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-10)
 
 
-def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_arrays(folds):
+def _grid_case(folds, k: int):
+    """Fold ``k``'s training Gram, its validation fold, the output weights, nine strengths and the constant term."""
     fs, total, n_b = folds
-    train, val = total.plus(fs[1], -1.0), fs[1]
+    val = fs[k]
+    G = total.plus(val, -1.0).gram
     w = np.linspace(0.5, 2.0, 18)
-    G = train.gram
     s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
-    c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
+    return G, val, w, s, float(w ** 2 @ np.diagonal(val.gram)[n_b:]), total, n_b
+
+
+def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_arrays(folds):
+    G, val, w, s, c0, total, n_b = _grid_case(folds, 1)
     rows = np.asfortranarray(G[:n_b])  # [G11 G12], Fortran-ordered (worked on in place)
     one = bs.strength_errors(rows, total._factor, s, c0, w, workers=1)  # one array reused 9 times
     two = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w, workers=2)
@@ -164,12 +169,7 @@ def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_array
 def test_right_hand_sides_in_blocks_agree_with_whole_ones_to_rounding(folds, monkeypatch):
     """Summing the squares a block of right-hand sides at a time (issue 14: memory) changes only the rounding of the
     sums: against one block of all of them, 1e-12 relative (2.3e-13 measured on the fit at past 100 / horizon 50)."""
-    fs, total, n_b = folds
-    train, val = total.plus(fs[0], -1.0), fs[0]
-    w = np.linspace(0.5, 2.0, 18)
-    G = train.gram
-    s = np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
-    c0 = float(w ** 2 @ np.diagonal(val.gram)[n_b:])
+    G, _val, w, s, c0, total, n_b = _grid_case(folds, 0)
     whole = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w)
     monkeypatch.setattr(bs, "RHS_BLOCK", 5)  # 18 right-hand sides in blocks of 5, 5, 5, 3
     np.testing.assert_allclose(bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w), whole,
