@@ -67,6 +67,19 @@ def _factor_update(R, W):
     return sla.qr(blocks, mode="r", overwrite_a=True, check_finite=False)[0][:d]
 
 
+def _ridge_rows_folded(R: np.ndarray, n_b: int, c: float) -> np.ndarray:
+    """Θ of ``min ||R11 Θᵀ − R12||² + c² ||Θᵀ||²`` from the square upper-triangular ``R`` (Fortran order,
+    overwritten): the ridge rows ``[c I 0]`` are folded into ``R`` by the triangular-pentagonal QR that updates the
+    factor (``tpqrt`` with an upper-trapezoidal block, ``L = n_b``), which leaves ``R``'s rows below ``n_b`` alone in
+    the first ``n_b`` columns; then ``Θᵀ = R̃11⁻¹ R̃12`` (the least-squares solution through the QR factor of the
+    stacked problem, Golub & Van Loan 2013, Matrix Computations, 4th ed., sections 5.3 and 6.5.4). The same
+    solution as a QR of ``[R11; c I]`` and ``Qᵀ [R12; 0]``, without forming either."""
+    B = np.zeros((n_b, R.shape[1]), order="F")
+    B[np.arange(n_b), np.arange(n_b)] = c
+    R = tpqrt_inplace(R, B, n_b, min(8, R.shape[1]))
+    return sla.solve_triangular(R[:n_b, :n_b], R[:n_b, n_b:], check_finite=False).T
+
+
 class _SessionUpdates:
     """``update_session``: every valid segment of a session's trials taken in as a new run, through ``update``."""
 
@@ -383,16 +396,19 @@ class OnlineLsqPredictor(_SessionUpdates):
         su, sy = rms[:m], rms[m:]
         s_b = np.concatenate([np.tile(su, T), np.tile(sy, T), np.tile(su, N)])
         s_y = np.tile(sy, N)
-        R = self._R / np.concatenate([s_b, s_y])[None, :]  # the factor of the scaled windows
+        R = np.asfortranarray(self._R / np.concatenate([s_b, s_y])[None, :])  # the factor of the scaled windows
         n_b, rows = s_b.size, R.shape[1]
         s = float(np.sum(R * R) / rows)
         # R is upper triangular: below its first n_b rows, its first n_b columns are zero, and those rows of the
         # least-squares problem hold no unknown (they add the same residual to every Θ)
-        lhs = np.vstack([R[:n_b, :n_b], np.sqrt(self.alpha * s) * np.eye(n_b)])
-        rhs = np.vstack([R[:n_b, n_b:], np.zeros((n_b, rows - n_b))])
-        Q, Rl = sla.qr(lhs, mode="economic", check_finite=False)  # full column rank: the ridge rows (alpha > 0)
-        theta = (sla.solve_triangular(Rl, Q.T @ rhs, check_finite=False) if self.alpha > 0 else
-                 np.linalg.lstsq(lhs, rhs, rcond=None)[0]).T
+        if self.alpha > 0 and R.shape == (rows, rows):
+            theta = _ridge_rows_folded(R, n_b, np.sqrt(self.alpha * s))
+        else:
+            lhs = np.vstack([R[:n_b, :n_b], np.sqrt(self.alpha * s) * np.eye(n_b)])
+            rhs = np.vstack([R[:n_b, n_b:], np.zeros((n_b, rows - n_b))])
+            Q, Rl = sla.qr(lhs, mode="economic", check_finite=False)  # full column rank: the ridge rows (alpha > 0)
+            theta = (sla.solve_triangular(Rl, Q.T @ rhs, check_finite=False) if self.alpha > 0 else
+                     np.linalg.lstsq(lhs, rhs, rcond=None)[0]).T
         theta = (s_y[:, None] * theta) / s_b[None, :]
         self._solved = (theta[:, :(m + p) * T], theta[:, (m + p) * T:], rms)
         return self._solved
