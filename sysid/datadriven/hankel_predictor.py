@@ -18,7 +18,7 @@ from ..hankel import _one_blas_thread
 from .consistency import choose_consistent, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
-from ._hankel_folds import errors_by_fold, known_first
+from ._hankel_folds import errors_by_fold, known_first, start_first_fold
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
 from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor,
                   _projection_g, _projection_map)
@@ -254,7 +254,8 @@ class HankelPredictor(_DirectPredictor):
         lambdas, lam_y = self._validate_settings()
         l1 = self.regularizer == "l1"
         compress = bool(self.compress) and not l1
-        folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
+        early = self._first_fold_early(session) if compress and lambdas.size > 1 else None
+        folds, weights = self._gather(session, lambdas.size, keep_full=not compress, early=early)
         score = self._score_l1 if l1 else self._score_quadratic
         if self.factor_route_ == "gram" and self.regularizer == "projection":  # total: the folds' sum, factored
             score = functools.partial(self._score_projection_gram, total=getattr(folds, "total", None))
@@ -278,6 +279,14 @@ class HankelPredictor(_DirectPredictor):
         self.lambda_g_ = self._abs_strength(rel, self.data_scale_, total.n_columns, total.n_rows)
         self.cv_table_ = table
         return self
+
+    def _first_fold_early(self, session):
+        """For "projection": the hook that starts the first held-out fold beside the total's condition check
+        (:func:`~._hankel_folds.start_first_fold`; called once the settings are checked), else None."""
+        if self.regularizer != "projection":
+            return None
+        m, p = int(session.n_inputs), int(session.n_outputs)
+        return lambda folds: start_first_fold(folds, (m + p) * int(self.past_steps) + m * int(self.horizon_steps))
 
     def _blocks(self, data: _Fold, compress: bool):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
