@@ -106,10 +106,22 @@ def start_first_fold(folds, n_b: int):
     return i, future
 
 
-def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
+def first_fold_hook(predictor, session):
+    """For the "projection" regulariser: ``early(folds)`` for ``base._collect``, which begins the first held-out
+    fold (:func:`start_first_fold`) once the total Gram is assembled; None for the others."""
+    if predictor.regularizer != "projection":
+        return None
+    m, p = int(session.n_inputs), int(session.n_outputs)
+    n_b = (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps)  # called once they are checked
+    return lambda folds: start_first_fold(folds, n_b)
+
+
+def fold_errors(folds, total, n_b: int, weights: np.ndarray, extra=None) -> dict:
     """``{i: error or None}`` for every fold ``i`` with windows in it and in its training data (None: the caller
     scores that fold by the general route). ``folds.first_fold``: :func:`start_first_fold`'s ``(i, future)`` (taken
-    from there, so that no reference but ``factored``'s keeps the fold's array once it is scored)."""
+    from there, so that no reference but ``factored``'s keeps the fold's array once it is scored). ``extra``: tasks,
+    the ``k``-th begun beside the ``k + 2``-th fold's step 1 (which leaves a core free), all ended when this
+    returns (any left over begin after the folds)."""
     first = getattr(folds, "first_fold", None)
     if first is not None:
         folds.first_fold = None
@@ -140,13 +152,18 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
             if k + FOLDS_IN_FLIGHT < len(todo):
                 j = todo[k + FOLDS_IN_FLIGHT]
                 factored[j] = pool.submit(_factor_fold, _others(folds, j), n_b)
+            if extra and k < len(extra):
+                extra[k] = pool.submit(extra[k])
+        for task in extra or ():
+            (pool.submit(task) if callable(task) else task).result()
     return out
 
 
-def errors_by_fold(folds, n_b: int, weights, n_candidates: int) -> dict:
+def errors_by_fold(folds, n_b: int, weights, n_candidates: int, extra=None) -> dict:
     """``{id(fold): error or None}`` of every fold scored side by side (:func:`fold_errors`) on large problems
     (:data:`SIDE_BY_SIDE_ROWS`); empty elsewhere (each fold is then scored when the selection reaches it). The
-    first fold's step 1 is taken from ``folds.first_fold`` where :func:`start_first_fold` began it."""
+    first fold's step 1 is taken from ``folds.first_fold`` where :func:`start_first_fold` began it; ``extra`` as
+    :func:`fold_errors` (not called where the folds are not scored here)."""
     total = getattr(folds, "total", None)
     if n_candidates < 2 or len(folds) < 2 or n_b < SIDE_BY_SIDE_ROWS or _total_factor(total, n_b) is None or \
             not available(total, n_b):
@@ -154,7 +171,7 @@ def errors_by_fold(folds, n_b: int, weights, n_candidates: int) -> dict:
             folds.first_fold[1].result()  # not used: its thread ends before the fit goes on
             folds.first_fold = None
         return {}
-    return {id(folds[i]): e for i, e in fold_errors(folds, total, n_b, weights).items()}
+    return {id(folds[i]): e for i, e in fold_errors(folds, total, n_b, weights, extra).items()}
 
 
 def known_first(known: dict, score):
