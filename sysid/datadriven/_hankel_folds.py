@@ -86,19 +86,59 @@ def _others(folds, i: int):
     return out
 
 
-def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
+def _todo(folds, total) -> list:
+    return [i for i, f in enumerate(folds) if f.n_columns and total.n_columns - f.n_columns]
+
+
+def start_first_fold(folds, n_b: int):
+    """The first fold's step 1 (:func:`_factor_fold`) started on a worker thread, as ``(i, future)``, or None
+    (nothing to score here). Called before the total's condition check (a Cholesky factor of the whole Gram on one
+    core, the GIL released: ``gram.gram_condition_of``), it runs on the other core instead of after it: at past 100
+    / horizon 50 the fold's assembly and factor (~0.3 s) leave the serial part of the fit. One fold's array more is
+    held meanwhile, as while the folds are scored (the total's factor and one fold's array)."""
+    total = getattr(folds, "total", None)
+    if _CALLS is None or total is None or len(folds) < 2 or n_b < SIDE_BY_SIDE_ROWS or not _todo(folds, total):
+        return None
+    i = _todo(folds, total)[0]
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-hankel-first-fold")
+    future = pool.submit(_factor_fold, _others(folds, i), n_b)
+    pool.shutdown(wait=False)  # the thread ends with its one task
+    return i, future
+
+
+def first_fold_hook(predictor, session):
+    """For the "projection" regulariser: ``early(folds)`` for ``base._collect``, which begins the first held-out
+    fold (:func:`start_first_fold`) once the total Gram is assembled; None for the others."""
+    if predictor.regularizer != "projection":
+        return None
+    m, p = int(session.n_inputs), int(session.n_outputs)
+    n_b = (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps)  # called once they are checked
+    return lambda folds: start_first_fold(folds, n_b)
+
+
+def fold_errors(folds, total, n_b: int, weights: np.ndarray, extra=None) -> dict:
     """``{i: error or None}`` for every fold ``i`` with windows in it and in its training data (None: the caller
-    scores that fold by the general route)."""
+    scores that fold by the general route). ``folds.first_fold``: :func:`start_first_fold`'s ``(i, future)`` (taken
+    from there, so that no reference but ``factored``'s keeps the fold's array once it is scored). ``extra``: tasks,
+    the ``k``-th begun beside the ``k + 2``-th fold's step 1 (which leaves a core free), all ended when this
+    returns (any left over begin after the folds)."""
+    first = getattr(folds, "first_fold", None)
+    if first is not None:
+        folds.first_fold = None
     F = total._factor
     L21t = F[n_b:, :n_b].T
     lt21_sq = np.einsum("ji,ji->i", L21t, L21t)
     w2 = np.asarray(weights, dtype=np.float64) ** 2
     pN = F.shape[0] - n_b
     cut = pN // 2
-    todo = [i for i, f in enumerate(folds) if f.n_columns and total.n_columns - f.n_columns]
+    todo = _todo(folds, total)
     out = {}
     with ThreadPoolExecutor(max_workers=WORKERS, thread_name_prefix="stimsteer-hankel-folds") as pool:
-        factored = {i: pool.submit(_factor_fold, _others(folds, i), n_b) for i in todo[:FOLDS_IN_FLIGHT]}
+        factored = {i: pool.submit(_factor_fold, _others(folds, i), n_b) for i in todo[:FOLDS_IN_FLIGHT]
+                    if first is None or i != first[0]}
+        if first is not None:
+            factored[first[0]] = first[1]
+            first = None
         for k, i in enumerate(todo):
             Gt = factored.pop(i).result()
             if Gt is None:
@@ -112,17 +152,26 @@ def fold_errors(folds, total, n_b: int, weights: np.ndarray) -> dict:
             if k + FOLDS_IN_FLIGHT < len(todo):
                 j = todo[k + FOLDS_IN_FLIGHT]
                 factored[j] = pool.submit(_factor_fold, _others(folds, j), n_b)
+            if extra and k < len(extra):
+                extra[k] = pool.submit(extra[k])
+        for task in extra or ():
+            (pool.submit(task) if callable(task) else task).result()
     return out
 
 
-def errors_by_fold(folds, n_b: int, weights, n_candidates: int) -> dict:
+def errors_by_fold(folds, n_b: int, weights, n_candidates: int, extra=None) -> dict:
     """``{id(fold): error or None}`` of every fold scored side by side (:func:`fold_errors`) on large problems
-    (:data:`SIDE_BY_SIDE_ROWS`); empty elsewhere (each fold is then scored when the selection reaches it)."""
+    (:data:`SIDE_BY_SIDE_ROWS`); empty elsewhere (each fold is then scored when the selection reaches it). The
+    first fold's step 1 is taken from ``folds.first_fold`` where :func:`start_first_fold` began it; ``extra`` as
+    :func:`fold_errors` (not called where the folds are not scored here)."""
     total = getattr(folds, "total", None)
     if n_candidates < 2 or len(folds) < 2 or n_b < SIDE_BY_SIDE_ROWS or _total_factor(total, n_b) is None or \
             not available(total, n_b):
+        if getattr(folds, "first_fold", None) is not None:
+            folds.first_fold[1].result()  # not used: its thread ends before the fit goes on
+            folds.first_fold = None
         return {}
-    return {id(folds[i]): e for i, e in fold_errors(folds, total, n_b, weights).items()}
+    return {id(folds[i]): e for i, e in fold_errors(folds, total, n_b, weights, extra).items()}
 
 
 def known_first(known: dict, score):

@@ -18,7 +18,8 @@ from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
 from ..output_mask import blanking_note, output_valid_segments
 from .._progress import progress
-from .gram import GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, total_fold
+from .gram import (GRAM_CONDITION_LIMIT, _GramFold, collect_gram, gram_condition_of, release_freed_memory,
+                   total_fold)
 
 
 # ------------------------------------------------------------------------------------------------ validation
@@ -153,10 +154,11 @@ def _pieces(session, L, n_folds_wanted, seed, past):
     return [(a, b, 0) for a, b in segs], 1, "none"
 
 
-def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="auto", keep_gram=False):
+def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="auto", keep_gram=False, early=None):
     """One pass over the valid segments: per-fold data (Gram route where it is accurate, else QR), the scheme,
     the outputs' standard deviations, the fold of each trial and ``(route, condition)``. ``keep_gram``: the total
-    keeps the condition check's array with the Gram's upper triangle (``gram.gram_condition_of``).
+    keeps the condition check's array with the Gram's upper triangle (``gram.gram_condition_of``). ``early(folds)``,
+    if given, is called before the condition check (work started beside it); its result is ``folds.first_fold``.
 
     ``route``: "auto" (the Gram route unless raw columns are needed or the Gram is too ill-conditioned), "qr"
     (always the QR route: :func:`_collect_qr`) or "gram" (the Gram route whatever the conditioning; tests).
@@ -168,8 +170,14 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
     folds, y_sum, y_sq, n_y = collect_gram(session, pieces, n_folds, m, p, past, horizon)
     folds = _Folds(folds)
     folds.total = total_fold(folds) if folds else None
-    cond = gram_condition_of(folds.total, keep=True, keep_gram=keep_gram) if folds else float("nan")
+    def start():
+        if early is not None:
+            release_freed_memory()  # the assembly's freed blocks, before a fold's array is made beside the Gram
+        folds.first_fold = early(folds) if early is not None else None
+    cond = gram_condition_of(folds.total, keep=True, keep_gram=keep_gram, assembled=start) if folds else float("nan")
     if route == "auto" and not cond <= GRAM_CONDITION_LIMIT:
+        if folds.first_fold is not None:
+            folds.first_fold[1].result()  # its thread ends before the fit goes on
         del folds  # memory: the total's factor
         return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", cond),)
     std, trial_fold = _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y)
@@ -181,6 +189,8 @@ class _Folds(list):
     (the Hankel predictor's row-space factor, and the held-out terms of large folds: ``gram._total_factor``)."""
 
     total = None
+    #: Work begun before the condition check (``_collect``'s ``early``), or None.
+    first_fold = None
 
 
 def _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y):
@@ -281,7 +291,7 @@ class _DirectPredictor(BasePredictor):
             )
         return past, horizon
 
-    def _gather(self, session, n_candidates, keep_full):
+    def _gather(self, session, n_candidates, keep_full, early=None):
         past, horizon = self._validate_common(session)
         if not isinstance(self.centre_outputs, (bool, np.bool_)):
             raise InvalidParameterError(f"centre_outputs must be True or False; got {self.centre_outputs!r}.")
@@ -296,7 +306,7 @@ class _DirectPredictor(BasePredictor):
         _check_columns(session, past, horizon)
         folds, scheme, std, trial_fold, (route, cond) = _collect(
             _ScaledChannels(session, self.channel_scale_), past, horizon, self.n_splits if n_candidates > 1 else 1,
-            self.seed, keep_full, getattr(self, "_route", "auto"), self._keeps_total_gram)
+            self.seed, keep_full, getattr(self, "_route", "auto"), self._keeps_total_gram, early)
         self.factor_route_, self.gram_condition_ = route, cond
         if n_candidates > 1 and len(folds) < 2:
             raise SessionError(

@@ -74,7 +74,8 @@ def plan_gaps_coordinate(theta_y: np.ndarray, yf2: np.ndarray, lambdas_abs, lam_
     n = P.shape[0]
     out = []
     for lam in lambdas_abs:
-        H = P + S / lam
+        H = S / lam
+        H += P  # P + S / lam (the same numbers), one n × n temporary fewer
         top = _largest_eigenvalue(H) if n >= LANCZOS_ROWS else None
         if top is None:
             try:

@@ -31,6 +31,7 @@ from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import strength_errors
+from ._nogil_cholesky import _one_norm, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
 #: ``eps · κ(H Hᵀ)`` against ``eps · κ(H)`` for QR (Golub & Van Loan 2013, section 5.3.8): at 1e8 that bound is
@@ -146,28 +147,21 @@ def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = Non
     return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
 
 
-def _one_norm(G: np.ndarray, n: int | None = None) -> float:
-    """``||G[:, :n]||₁`` (largest absolute column sum) summed over blocks of rows: no temporary of ``G``'s size."""
-    n = G.shape[1] if n is None else n
-    acc = np.zeros(n)
-    for r in range(0, G.shape[0], 512):
-        acc += np.abs(G[r:r + 512, :n]).sum(axis=0)
-    return float(acc.max()) if n else 0.0
-
-
-def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False) -> float:
+def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False, assembled=None) -> float:
     """Estimated ``κ₁`` of the fold's Gram (inf when it is not positive definite); with ``keep`` the Cholesky factor
     it was estimated from becomes the fold's :attr:`~_GramFold.factor` (the same numbers as computing it there).
 
     With ``keep_gram`` instead, the array is kept as LAPACK leaves it (``_factor_gram``): the factor in its lower
     triangle, the Gram's own entries still in its strict upper one (``potrf`` does not touch it). Together with
     the diagonal of the sums that is the whole Gram again (:func:`fitted_ridge_map`): the assembly is not repeated.
+    ``assembled()`` is called once the Gram is assembled, before its factor (work to start beside the factor).
     """
     G = fold.gram
+    if assembled is not None:
+        assembled()
     norm = _one_norm(G)
-    # in place (memory: one Gram-sized array), on the Fortran-ordered transpose of the symmetric G; clean=0 leaves
-    # the strict upper triangle (G's own entries) as it was, clean=1 zeroes it as scipy.linalg.cholesky does
-    F, info = sla.lapack.dpotrf(G.T, lower=1, overwrite_a=1, clean=0 if keep_gram else 1)
+    # in place (memory: one Gram-sized array); without clean the strict upper triangle keeps G's own entries
+    F, info = potrf_lower(G, clean=not keep_gram)  # the GIL released: other threads work beside it
     if info != 0:
         return float("inf")
     if keep_gram:

@@ -18,7 +18,8 @@ from ..hankel import _one_blas_thread
 from .consistency import choose_consistent, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
-from ._hankel_folds import errors_by_fold, known_first
+from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
+from ._early_theta import theta_task
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
 from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor,
                   _projection_g, _projection_map)
@@ -254,11 +255,15 @@ class HankelPredictor(_DirectPredictor):
         lambdas, lam_y = self._validate_settings()
         l1 = self.regularizer == "l1"
         compress = bool(self.compress) and not l1
-        folds, weights = self._gather(session, lambdas.size, keep_full=not compress)
+        self._theta_early = self._gaps_early = None
+        early = first_fold_hook(self, session) if compress and lambdas.size > 1 else None
+        folds, weights = self._gather(session, lambdas.size, keep_full=not compress, early=early)
         score = self._score_l1 if l1 else self._score_quadratic
         if self.factor_route_ == "gram" and self.regularizer == "projection":  # total: the folds' sum, factored
             score = functools.partial(self._score_projection_gram, total=getattr(folds, "total", None))
-            score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size), score)
+            extra = theta_task(self, getattr(folds, "total", None), self._n_b(), GRAM_CONDITION_LIMIT,
+                               functools.partial(self._gaps_from_factor, lambdas=lambdas, lam_y=lam_y))
+            score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size, extra), score)
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].n_rows)
         self.data_scale_ = _data_scale(total.factor)
@@ -267,7 +272,9 @@ class HankelPredictor(_DirectPredictor):
         if theta is not None:  # the projection predictor in closed form, for every strength
             self._map_cache = self._unscaled(theta)
         if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
-            table["plan_gap"] = self._plan_gaps(lambdas * self.data_scale_, lam_y, theta)
+            gaps, self._gaps_early = getattr(self, "_gaps_early", None), None  # computed beside the folds
+            table["plan_gap"] = gaps if gaps is not None and theta is not None else \
+                self._plan_gaps(lambdas * self.data_scale_, lam_y, theta)
             rel = float(lambdas[choose_consistent(table, table["plan_gap"].to_numpy())])
         if isinstance(self.reg_matrix_, int):  # made after the plan gaps (memory: one Gram-sized array fewer)
             del theta
@@ -289,7 +296,10 @@ class HankelPredictor(_DirectPredictor):
         data.release()  # memory: the blocks hold the factor's rows
         if self.regularizer == "projection":
             M = theta = None
-            if self.factor_route_ == "gram":  # a Cholesky factor: projector and predictor in closed form
+            theta, self._theta_early = getattr(self, "_theta_early", None), None  # computed beside the folds
+            if theta is not None and self.factor_route_ == "gram":  # (the same numbers as the closed form here)
+                M = blocks.Up.shape[0] + blocks.Yp.shape[0] + blocks.Uf.shape[0]
+            elif self.factor_route_ == "gram":  # a Cholesky factor: projector and predictor in closed form
                 M, theta = _projection_closed_form(blocks, GRAM_CONDITION_LIMIT, make_projector=False)
             return blocks, (_projection_complement(blocks.D, data.n_columns) if M is None else M), theta
         if self.regularizer == "l2":
@@ -326,6 +336,11 @@ class HankelPredictor(_DirectPredictor):
         if err is None:
             return self._score_quadratic(train, val, weights, lambdas, lam_y)
         return [err] * len(lambdas)
+
+    def _gaps_from_factor(self, theta, F, lambdas, lam_y):
+        """:meth:`_plan_gaps` of ``theta`` from the total's factor ``F`` (``F[n_b:, n_b:]``: ``blocks_.Yf[:, n_b:]``)."""
+        m, p, past, n_b = self.n_inputs_, self.n_outputs_, self.past_steps_, theta.shape[1]
+        return plan_gaps_coordinate(theta[:, m * past:(m + p) * past], F[n_b:, n_b:], lambdas * _data_scale(F), lam_y)
 
     def _plan_gaps(self, lambdas_abs, lam_y, theta):
         """Plan gaps per strength; ``theta`` the closed-form projection predictor (scaled rows) or None."""

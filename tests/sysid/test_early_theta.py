@@ -1,0 +1,53 @@
+"""The projection predictor's closed form from the total's factor, GIL-free, computed beside the folds
+(``datadriven._early_theta``), with the plan gaps from it, against ``kkt._projection_closed_form`` (SciPy's f2py LAPACK ``trcon``/``trtrs``,
+the same routines: the reference, bit for bit), and the predictor fitted with and without it."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg as sla
+
+from stimsteer.sysid.datadriven import _early_theta as et
+from stimsteer.sysid.datadriven import _hankel_folds as hf
+from stimsteer.sysid.datadriven import gram as gr
+from stimsteer.sysid.datadriven import kkt
+from stimsteer.sysid.datadriven.hankel_predictor import HankelBlocks, HankelPredictor
+
+
+@pytest.mark.parametrize("sizes", [(1, 2, 30, 20), (3, 4, 12, 7)])
+def test_theta_from_the_factor_equals_the_closed_form_bit_for_bit(sizes):
+    m, p, past, N = sizes
+    n = (m + p) * (past + N)
+    X = np.random.default_rng(n).standard_normal((n, n + 50))
+    F = np.asfortranarray(sla.cholesky(X @ X.T, lower=True))
+    blocks = HankelBlocks.from_matrix(np.ascontiguousarray(F), m, p, past, N, True)
+    n_b, theta = kkt._projection_closed_form(blocks, 1e8, make_projector=False)
+    got = et.projection_theta(F, n_b, 1e8)
+    np.testing.assert_array_equal(got, theta)
+    assert got.flags.c_contiguous == theta.flags.c_contiguous
+    assert et.projection_theta(F, n_b, 1.0) is None  # refused as the closed form refuses it
+    assert kkt._projection_closed_form(blocks, 1.0, make_projector=False) == (None, None)
+
+
+def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch):
+    from tests.sysid.test_hankel_folds import _session
+
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    calls = []
+    real = et.projection_theta
+    monkeypatch.setattr(et, "projection_theta", lambda *a: calls.append(1) or real(*a))
+    gaps = HankelPredictor._gaps_from_factor
+    monkeypatch.setattr(HankelPredictor, "_gaps_from_factor", lambda *a, **k: calls.append(2) or gaps(*a, **k))
+    new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
+    assert calls == [1, 2] and new._theta_early is None and new._gaps_early is None
+    monkeypatch.setattr(et, "available", lambda: False)
+    old = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
+    assert calls == [1, 2]
+    np.testing.assert_array_equal(new.cv_table_.to_numpy(float), old.cv_table_.to_numpy(float))  # plan gaps too
+    np.testing.assert_array_equal(new._map_cache, old._map_cache)
+    rng = np.random.default_rng(0)
+    windows = rng.standard_normal((4, 5, 1)), rng.standard_normal((4, 5, 2)), rng.standard_normal((4, 4, 1))
+    np.testing.assert_array_equal(new.predict_many(*windows), old.predict_many(*windows))
+    assert new.lambda_g_ == old.lambda_g_
