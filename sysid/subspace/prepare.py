@@ -86,16 +86,17 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
     The Grams are assembled one at a time in the factor order and each is overwritten by its factor, which is
     freed once its projection's pieces are taken; of the held-out Gram only the rows of the past and of the future
     inputs are assembled (:class:`~.heldout._CheckCov` needs no more). Each projection's SVD
-    (:meth:`~.factor._FactorProjection.decompose`, which needs no part of the factor) runs on a second thread while
-    this one assembles and factors the next Gram: the same computations (BLAS on one thread each), so the same
-    numbers, in less wall time on two cores.
+    (:meth:`~.factor._FactorProjection.decompose`, which needs no part of the factor) runs on a thread of its own
+    while this one assembles and factors the next Gram (the Cholesky factorisation releases the GIL): the same
+    computations (BLAS on one thread each), so the same numbers, in less wall time on two cores; the fitting part's
+    SVD does not wait for the first one to end.
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
     scale = channel_scales(_gram_diagonal(acc_all, L), int(acc_all.n), L, session)
     full = np.tile(scale, L.width)[order]
     uf, b, e = slice(0, L.m * L.f), L.m * L.f, L.m * L.f + len(L.P)
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-svd") as side:
+    with ThreadPoolExecutor(max_workers=2, thread_name_prefix="stimsteer-subspace-svd") as side:
         projs = []
         for acc in (acc_all, acc_fit):
             G = scaled(_gram_from_sums(acc, L, order), int(acc.n), full)
