@@ -157,6 +157,13 @@ class _FactorProjection:
         (CVA weighting, or ``Γ₋`` of order ``n`` near rank deficiency: then the pseudo-inverses of before)."""
         return None if self._nested is None else self._nested(n)
 
+    def forget_orders(self) -> None:
+        """Drop what scoring candidate orders left behind (the nested orders' QR, sized by the largest order asked):
+        orders scored again then give the numbers of a first scoring."""
+        if self._nested is not None:
+            self._nested = NestedOrders(self.U, self.singular_values, self.layout.p,
+                                        lambda: (self.theta_rows, self.theta_next_rows))
+
     def residual_covariances(self, gamma, A, B, C, D, states=None):
         """``Q, R, S`` of the state- and output-equation residuals (as :func:`~.projection._noise`); ``states``: the
         state maps ``(X0, X1)`` of :meth:`nested` when known."""
