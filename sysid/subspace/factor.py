@@ -120,7 +120,7 @@ class _FactorProjection:
         # the covariances given the past (for B, D), in the layout's order of Uf
         Wi = np.linalg.inv(np.eye(b) + V.T @ V)
         Sc_uu = L_uu @ Wi @ L_uu.T
-        Sc_yu = (Lf[e:, :b] - L_yp @ V) @ Wi @ L_uu.T
+        Sc_yu = (Lf[e:, :b] - theta[:, :b]) @ Wi @ L_uu.T  # theta[:, :b] = L_YP V, computed above
         self.given_past = (Sc_uu[np.ix_(k.uf, k.uf)], Sc_yu[:, k.uf])
         self.future_cov = (S_uu, S_yu)
         self._weighting = (weighting, S_yy, Lf[e:, :b].copy() if weighting == "cva" else None)
