@@ -59,31 +59,31 @@ def block_norm(A: np.ndarray) -> float:
     return float(_DLANGE(b"1", m, n, A.ctypes.data_as(_DBL), lda, None))
 
 
-def potrf(A: np.ndarray) -> int:
-    """The lower Cholesky factor of the square column-major ``A`` in its lower triangle (upper triangle kept), in
-    place; LAPACK's ``info`` (0: done)."""
+def potrf(A: np.ndarray, uplo: str = "L") -> int:
+    """The Cholesky factor of the square column-major ``A`` in its lower (``uplo="L"``: ``A = F Fᵀ``) or upper
+    (``"U"``: ``A = Fᵀ F``) triangle, in place (the other triangle kept); LAPACK's ``info`` (0: done)."""
     ld = _column_major(A)
     if not available():  # pragma: no cover - other SciPy builds
-        _c, info = sla.lapack.dpotrf(A, lower=1, clean=0, overwrite_a=1)
+        _c, info = sla.lapack.dpotrf(A, lower=int(uplo == "L"), clean=0, overwrite_a=1)
         return int(info)
     info = ctypes.c_int(0)
     n, lda = _ints(A.shape[0], ld)
-    _DPOTRF(b"L", n, A.ctypes.data_as(_DBL), lda, ctypes.byref(info))
+    _DPOTRF(uplo.encode(), n, A.ctypes.data_as(_DBL), lda, ctypes.byref(info))
     return int(info.value)
 
 
-def pocon(F: np.ndarray, norm: float) -> float:
-    """The reciprocal 1-norm condition estimate of ``F Fᵀ`` from its lower factor ``F`` (``norm`` its 1-norm);
-    0 on a LAPACK error."""
+def pocon(F: np.ndarray, norm: float, uplo: str = "L") -> float:
+    """The reciprocal 1-norm condition estimate of ``F Fᵀ`` from its lower factor ``F`` (``uplo="U"``: of ``Fᵀ F``
+    from its upper factor; ``norm`` its 1-norm); 0 on a LAPACK error."""
     ld = _column_major(F)
     if not available():  # pragma: no cover - other SciPy builds
-        rcond, info = sla.lapack.dpocon(F, norm, uplo="L")
+        rcond, info = sla.lapack.dpocon(F, norm, uplo=uplo)
         return float(rcond) if info == 0 else 0.0
     n_ = F.shape[0]
     rcond, info = ctypes.c_double(0.0), ctypes.c_int(0)
     work, iwork = np.empty(3 * max(n_, 1)), np.empty(max(n_, 1), dtype=np.intc)
     n, lda = _ints(n_, ld)
-    _DPOCON(b"L", n, F.ctypes.data_as(_DBL), lda, ctypes.byref(ctypes.c_double(norm)), ctypes.byref(rcond),
+    _DPOCON(uplo.encode(), n, F.ctypes.data_as(_DBL), lda, ctypes.byref(ctypes.c_double(norm)), ctypes.byref(rcond),
             work.ctypes.data_as(_DBL), iwork.ctypes.data_as(_INT), ctypes.byref(info))
     return float(rcond.value) if info.value == 0 else 0.0
 

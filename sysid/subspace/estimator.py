@@ -4,6 +4,7 @@ Gram blocks (see :mod:`stimsteer.sysid.subspace`).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import warnings
 
@@ -220,9 +221,10 @@ class SubspaceId(BasePredictor):
             session = _ShiftedOutputs(session, offset)
         # large candidate orders are fitted on as many threads as BLAS had (one in a bench worker)
         cfg["workers"] = blas_thread_count() if cfg["layout"].nz >= _THREADED_FROM else 1
-        proj_all, proj_fit, check, scale, how, n_columns = projections(session, cfg, self.weighting)
-        with blas_threads(1):  # small dense problems: threads only wait on each other at this size
-            self._identify(session, cfg, proj_all, proj_fit, check, scale, how, n_columns)
+        with contextlib.ExitStack() as stack:  # (holds BLAS at one thread while proj_all's SVD may still run)
+            proj_all, proj_fit, check, scale, how, n_columns = projections(session, cfg, self.weighting, stack)
+            with blas_threads(1):  # small dense problems: threads only wait on each other at this size
+                self._identify(session, cfg, proj_all, proj_fit, check, scale, how, n_columns)
         self.output_offset_ = offset
         if self.centre_outputs:
             self.model_ = self.model_.replace(info={**self.model_.info, "output_offset": offset.tolist()})
@@ -230,10 +232,14 @@ class SubspaceId(BasePredictor):
 
     def _identify(self, session, cfg, proj_all, proj_fit, check, scale, how, n_columns) -> None:
         L = cfg["layout"]
+        memo, rank_fit = self._ahead(cfg, proj_all, proj_fit, check)
         sv = proj_all.singular_values
         notes = []
         cfg["top"] = self._supported(sv, proj_fit.singular_values, cfg)
-        table = order_tables(self, proj_fit, check, sv, cfg, notes)
+        if memo is not None and cfg["supported"] != rank_fit:  # all data support fewer orders: score afresh
+            memo = None
+            proj_fit.forget_orders()
+        table = order_tables(self, proj_fit, check, sv, cfg, notes, memo)
         gap = int(table["order"].iloc[int(np.argmax(table["gap_ratio"].to_numpy()))])
         if cfg["order"] is not None:
             order, mats = cfg["order"], _fit_order(proj_all, cfg["order"], self.feedthrough_)
@@ -243,6 +249,26 @@ class SubspaceId(BasePredictor):
         self.order_gap_ = gap
         self.selection_notes_ = tuple(notes)
         self._store(mats, scale, session, L, order, sv, table, how, n_columns)
+
+    def _ahead(self, cfg, proj_all, proj_fit, check):
+        """While ``proj_all``'s SVD still runs (:func:`~.prepare.projections`), the order tables' scores
+        (:func:`~.selection.order_tables`' ``memo``) as if all data supported the orders the fitting part supports
+        (``rank_fit``; all data support at most as many, mostly as many), then wait for the SVD. The scores depend
+        on the fitting part alone, and the rounds (caps) on them and on the supported rank: when that rank turns
+        out the same, the real call finds every round in the memo. ``(memo or None, rank_fit)``."""
+        pending, memo = getattr(proj_all, "pending", None), None
+        sv_fit = proj_fit.singular_values
+        rank_fit = int(np.sum(sv_fit > _SV_RTOL * max(float(sv_fit[0]), 1.0)))
+        if pending is not None and not pending.done() and rank_fit >= 1:
+            memo, spec = {}, {**cfg, "top": min(cfg["top"], rank_fit), "supported": rank_fit}
+            try:
+                order_tables(self, proj_fit, check, sv_fit, spec, [], memo)
+            except Exception:  # noqa: BLE001 - scored again in order below, where it raises
+                memo = None
+                proj_fit.forget_orders()
+        if pending is not None:
+            pending.result()  # (re-raises what the decomposition raised)
+        return memo, rank_fit
 
     @staticmethod
     def _supported(sv_all, sv_fit, cfg) -> int:

@@ -30,6 +30,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
+from ._gil_free import pocon, potrf
 from .gram import _Layout
 from .nested import NestedOrders
 from .projection import _CHOLESKY_CONDITION, _psd_parts
@@ -40,20 +41,29 @@ def _one_norm(S: np.ndarray, band: int = 512) -> float:
     return max(float(np.abs(S[a:a + band]).sum(axis=1).max()) for a in range(0, S.shape[0], band))
 
 
+def _zero_upper(S: np.ndarray, band: int = 512) -> None:
+    """Zero the strict upper triangle of the square ``S``, a band of rows at a time."""
+    n = S.shape[0]
+    for a in range(0, n, band):
+        b = min(n, a + band)
+        S[a:b, b:] = 0.0
+        S[a:b, a:b][np.triu_indices(b - a, 1)] = 0.0
+
+
 def cholesky_in_place(S: np.ndarray) -> bool:
     """Overwrite the C-ordered symmetric ``S`` with its lower Cholesky factor (upper triangle zeroed); True when it
     exists and its estimated 1-norm condition number is below ``_CHOLESKY_CONDITION`` (``pocon``; Golub & Van Loan
-    2013, Matrix Computations, 4th ed., sec. 3.5.4). On False, ``S`` holds no usable numbers."""
+    2013, Matrix Computations, 4th ed., sec. 3.5.4). On False, ``S`` holds no usable numbers.
+
+    LAPACK's ``dpotrf("U")`` and ``dpocon("U")`` on ``Sᵀ`` (the same memory in Fortran order; its upper factor is
+    our lower one) with the GIL released (:mod:`._gil_free`): the numbers of SciPy's ``potrf(lower=0, clean=1)`` and
+    ``pocon(uplo="U")``, bit for bit, while the other projection's decomposition runs on its thread."""
     anorm = _one_norm(S)
     F = S.T  # the same memory in Fortran order: LAPACK's upper factor of Sᵀ = S is our lower one
-    potrf, pocon = sla.get_lapack_funcs(("potrf", "pocon"), (F,))
-    U, info = potrf(F, lower=0, clean=1, overwrite_a=1)
-    if info != 0:
+    if potrf(F, uplo="U") != 0:
         return False
-    if not np.shares_memory(U, S):  # pragma: no cover - f2py copied (not F-contiguous); keep the result
-        S[...] = U.T
-    rcond, info = pocon(F, anorm, uplo="U")
-    return info == 0 and rcond > 1.0 / _CHOLESKY_CONDITION
+    _zero_upper(S)  # SciPy's clean=1
+    return pocon(F, anorm, uplo="U") > 1.0 / _CHOLESKY_CONDITION
 
 
 class _Blocks:
@@ -110,7 +120,7 @@ class _FactorProjection:
         # the covariances given the past (for B, D), in the layout's order of Uf
         Wi = np.linalg.inv(np.eye(b) + V.T @ V)
         Sc_uu = L_uu @ Wi @ L_uu.T
-        Sc_yu = (Lf[e:, :b] - L_yp @ V) @ Wi @ L_uu.T
+        Sc_yu = (Lf[e:, :b] - theta[:, :b]) @ Wi @ L_uu.T  # theta[:, :b] = L_YP V, computed above
         self.given_past = (Sc_uu[np.ix_(k.uf, k.uf)], Sc_yu[:, k.uf])
         self.future_cov = (S_uu, S_yu)
         self._weighting = (weighting, S_yy, Lf[e:, :b].copy() if weighting == "cva" else None)
@@ -146,6 +156,13 @@ class _FactorProjection:
         """``(A, X0, X1)`` of order ``n`` from one factorisation shared by every order (:mod:`.nested`), or None
         (CVA weighting, or ``Γ₋`` of order ``n`` near rank deficiency: then the pseudo-inverses of before)."""
         return None if self._nested is None else self._nested(n)
+
+    def forget_orders(self) -> None:
+        """Drop what scoring candidate orders left behind (the nested orders' QR, sized by the largest order asked):
+        orders scored again then give the numbers of a first scoring."""
+        if self._nested is not None:
+            self._nested = NestedOrders(self.U, self.singular_values, self.layout.p,
+                                        lambda: (self.theta_rows, self.theta_next_rows))
 
     def residual_covariances(self, gamma, A, B, C, D, states=None):
         """``Q, R, S`` of the state- and output-equation residuals (as :func:`~.projection._noise`); ``states``: the

@@ -12,6 +12,7 @@ faster computations of the same equations (nested orders, structured sums, doubl
 
 from __future__ import annotations
 
+import contextlib
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -28,11 +29,14 @@ from .projection import _CHOLESKY_FROM, _Projection, _RTOL, _cond_text
 _FACTOR_FROM = _CHOLESKY_FROM
 
 
-def projections(session, cfg: dict, weighting: str):
+def projections(session, cfg: dict, weighting: str, stack=None):
     """``(proj_all, proj_fit, check, scale, how, n_columns)`` of ``session`` for the settings ``cfg``.
 
     ``check`` holds the held-out covariance blocks (:class:`~.heldout._CheckCov`); ``scale`` the channels' RMS
-    (``[u y]``); ``how`` says how the held-out part was chosen.
+    (``[u y]``); ``how`` says how the held-out part was chosen. Given ``stack`` (a :class:`contextlib.ExitStack`),
+    the factor route may return while ``proj_all``'s SVD still runs on its thread (``proj_all.pending``, a future:
+    wait for it before reading its results); BLAS then stays on one thread, and the thread is joined, until the
+    caller's stack closes.
     """
     L = cfg["layout"]
     segs = session.segments(min_length=L.width)
@@ -57,8 +61,10 @@ def projections(session, cfg: dict, weighting: str):
             f"no held-out part with {L.width} samples could be set aside for the order check ({how}). "
             "Record more or longer trials, or use shorter past/future windows."
         )
-    with blas_threads(1):  # Gram-sized factorisations: one thread is faster on a busy machine, little slower idle
-        out = _factor_route(acc_fit, acc_check, L, session, weighting) if L.nz >= _FACTOR_FROM else None
+    with contextlib.ExitStack() as own:
+        keep = own if stack is None else stack
+        keep.enter_context(blas_threads(1))  # Gram-sized factorisations: one thread is faster on a busy machine
+        out = _factor_route(acc_fit, acc_check, L, session, weighting, keep) if L.nz >= _FACTOR_FROM else None
         if out is None:
             out = _covariance_route(acc_fit, acc_check, L, session, weighting)
     return (*out, how, n_fit + n_check)
@@ -80,37 +86,41 @@ def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
             _CheckCov.time_major(S_check, L), scale)
 
 
-def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
+def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack):
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
 
     The Grams are assembled one at a time in the factor order and each is overwritten by its factor, which is
     freed once its projection's pieces are taken; of the held-out Gram only the rows of the past and of the future
     inputs are assembled (:class:`~.heldout._CheckCov` needs no more). Each projection's SVD
-    (:meth:`~.factor._FactorProjection.decompose`, which needs no part of the factor) runs on a second thread while
-    this one assembles and factors the next Gram: the same computations (BLAS on one thread each), so the same
-    numbers, in less wall time on two cores.
+    (:meth:`~.factor._FactorProjection.decompose`, which needs no part of the factor) runs on a thread of its own
+    while this one assembles and factors the next Gram (the Cholesky factorisation releases the GIL): the same
+    computations (BLAS on one thread each), so the same numbers, in less wall time on two cores. The fitting part
+    comes first, so that its candidate orders can be scored while the SVD of all data ends (``proj_all.pending``,
+    left running; ``stack`` joins the thread when it closes).
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
     scale = channel_scales(_gram_diagonal(acc_all, L), int(acc_all.n), L, session)
     full = np.tile(scale, L.width)[order]
     uf, b, e = slice(0, L.m * L.f), L.m * L.f, L.m * L.f + len(L.P)
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-svd") as side:
-        projs = []
-        for acc in (acc_all, acc_fit):
-            G = scaled(_gram_from_sums(acc, L, order), int(acc.n), full)
-            check_excitation(G[uf, uf], L)
-            proj = factor_projection(G, L, weighting)
-            del G  # the factor: free it before the next Gram
-            if proj is None:
-                return None  # (leaving the block waits for a decomposition already started)
-            projs.append((proj, side.submit(proj.decompose)))
-        n = int(acc_check.n)
-        rows = scaled(_gram_from_sums(acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
-        diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
-        for _proj, done in projs:
-            done.result()  # (re-raises what the decomposition raised)
-    return projs[0][0], projs[1][0], _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L), scale
+    side = ThreadPoolExecutor(max_workers=2, thread_name_prefix="stimsteer-subspace-svd")
+    stack.callback(side.shutdown)  # (leaving waits for a decomposition already started)
+    projs = []
+    for acc in (acc_fit, acc_all):
+        G = scaled(_gram_from_sums(acc, L, order), int(acc.n), full)
+        check_excitation(G[uf, uf], L)
+        proj = factor_projection(G, L, weighting)
+        del G  # the factor: free it before the next Gram
+        if proj is None:
+            return None
+        projs.append((proj, side.submit(proj.decompose)))
+    n = int(acc_check.n)
+    rows = scaled(_gram_from_sums(acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
+    diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
+    (proj_fit, done_fit), (proj_all, done_all) = projs
+    done_fit.result()  # (re-raises what the decomposition raised)
+    proj_all.pending = done_all
+    return proj_all, proj_fit, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L), scale
 
 
 def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:

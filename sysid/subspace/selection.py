@@ -120,14 +120,21 @@ def choose_stable(table: pd.DataFrame, gap: int, tolerance: float, proj_all, fee
     return n, fits[n]
 
 
-def order_tables(est, proj_fit, check, sv, cfg, notes):
+def _settings(est) -> tuple:
+    return (False, True) if isinstance(est.feedthrough, str) else (bool(est.feedthrough),)
+
+
+def order_tables(est, proj_fit, check, sv, cfg, notes, memo: dict | None = None):
     """The order table, with or without a direct term (both for ``feedthrough="auto"``); sets ``feedthrough_``.
 
     Each setting's default cap grows on its own; the orders both settings need are fitted together. With "auto",
     the direct term is kept only when it lowers the best held-out error by more than the tolerance (a simpler model
-    wins a near tie, as for the order).
+    wins a near tie, as for the order). ``memo``: the scores of each round, ``{(first order, last order,
+    settings): scores}``, filled here and read when a round is found in it (e.g. the rounds of a call ahead, while
+    the SVD of all data still ran, whose cap and supported rank turned out the same: the same rounds, so the same
+    numbers; ``sv`` only fills the table's singular-value columns).
     """
-    settings = (False, True) if isinstance(est.feedthrough, str) else (bool(est.feedthrough),)
+    settings = _settings(est)
     cfgs = {ft: {**cfg, "start": 1} for ft in settings}
     tables = {ft: [] for ft in settings}
     pending = set(settings)
@@ -136,7 +143,12 @@ def order_tables(est, proj_fit, check, sv, cfg, notes):
         for ft in sorted(pending):
             groups.setdefault((cfgs[ft]["start"], cfgs[ft]["top"]), []).append(ft)
         for (a, b), group in groups.items():
-            scored = score_orders(proj_fit, check, cfg["layout"], range(a, b + 1), tuple(group), cfg.get("workers", 1))
+            scored = None if memo is None else memo.get((a, b, tuple(group)))
+            if scored is None:
+                scored = score_orders(proj_fit, check, cfg["layout"], range(a, b + 1), tuple(group),
+                                      cfg.get("workers", 1))
+                if memo is not None:
+                    memo[(a, b, tuple(group))] = scored
             for ft in group:
                 tables[ft].append(_rows(range(a, b + 1), scored[ft], sv))
         pending = {ft for ft in settings if _grows(est, pd.concat(tables[ft], ignore_index=True), cfgs[ft])}

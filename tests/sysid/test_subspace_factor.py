@@ -83,6 +83,24 @@ def test_cholesky_in_place_overwrites_the_gram_with_its_factor():
     assert not factor.cholesky_in_place(bad)
 
 
+def test_cholesky_in_place_equals_scipys_wrappers_bit_for_bit():
+    # reference: SciPy's f2py wrappers of LAPACK dpotrf (upper, clean=1) and dpocon on the Fortran view (the route
+    # cholesky_in_place took before it released the GIL); 700 rows: more than one band of _zero_upper
+    import scipy.linalg as sla
+
+    rng = np.random.default_rng(5)
+    Z = rng.standard_normal((900, 700))
+    S = Z.T @ Z / 900
+    ref = S.copy()
+    U, info = sla.lapack.dpotrf(ref.T, lower=0, clean=1, overwrite_a=1)
+    assert info == 0 and np.shares_memory(U, ref)
+    work = S.copy()
+    assert factor.cholesky_in_place(work)
+    assert np.array_equal(work, ref)
+    rcond = sla.lapack.dpocon(ref.T, factor._one_norm(S), uplo="U")[0]
+    assert factor.pocon(work.T, factor._one_norm(S), uplo="U") == rcond
+
+
 def test_blocked_triangular_solve_equals_a_direct_solve():
     rng = np.random.default_rng(3)
     Lf = np.tril(rng.standard_normal((900, 900))) + 30 * np.eye(900)

@@ -1,0 +1,76 @@
+"""Subspace identification scores its candidate orders while the SVD of all data still runs (``SubspaceId._ahead``,
+``order_tables``' memo): the fitted model and the order table must be those of scoring after the SVD, bit for bit.
+
+Reference: the same estimator with the scoring ahead switched off (scoring after the SVD, the order of before): an
+internal equivalence, not an outside source; the claim checked is that the reordering changes no number.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pytest
+
+from stimsteer.sysid import Session
+from stimsteer.sysid.subspace import SubspaceId, factor, prepare, selection
+
+
+def _session(seed=4, T=6000, n_trials=6, noise=0.3):
+    rng = np.random.default_rng(seed)
+    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
+    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
+    u = rng.standard_normal((T, 2))
+    x, y = np.zeros(3), np.zeros((T, 4))
+    for k in range(T):
+        y[k] = C @ x + noise * rng.standard_normal(4)
+        x = A @ x + B @ u[k]
+    edges = np.linspace(0, T, n_trials + 1).astype(int)
+    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
+
+_AHEAD = SubspaceId._ahead
+
+
+def _fit(monkeypatch, mode, **kw):
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)  # the factor route at this small size
+    decompose = factor._FactorProjection.decompose
+
+    started = []
+
+    def slow(self):  # all data's SVD (the second) still runs when the scores start: the scoring ahead is taken
+        started.append(self)
+        if len(started) == 2:
+            time.sleep(0.5)
+        decompose(self)
+
+    monkeypatch.setattr(factor._FactorProjection, "decompose", slow)
+    calls = []
+    score = selection.score_orders
+    monkeypatch.setattr(selection, "score_orders", lambda *a, **k: calls.append(a[3]) or score(*a, **k))
+    if mode == "after":  # the reference: wait for the SVD, score nothing ahead
+        def after(self, cfg, proj_all, proj_fit, check):
+            proj_all.pending.result()
+            return None, None
+
+        monkeypatch.setattr(SubspaceId, "_ahead", after)
+    elif mode == "mismatch":  # all data as if supporting fewer orders: what was scored ahead is dropped
+        monkeypatch.setattr(SubspaceId, "_ahead", lambda self, *a: (_AHEAD(self, *a)[0], -1))
+    est = SubspaceId(past_steps=6, future_steps=5, **kw).fit(_session())
+    return est, calls
+
+
+@pytest.mark.parametrize("kw", [{}, {"weighting": "cva", "feedthrough": True}, {"max_order": 3}])
+def test_scoring_ahead_of_the_svd_changes_no_number(monkeypatch, kw):
+    with monkeypatch.context() as mp:
+        ref, ref_calls = _fit(mp, "after", **kw)
+    for mode in ("ahead", "mismatch"):
+        with monkeypatch.context() as mp:
+            est, calls = _fit(mp, mode, **kw)
+        assert est.order_ == ref.order_ and est.feedthrough_ == ref.feedthrough_
+        assert est.order_table_.equals(ref.order_table_)
+        assert np.array_equal(est.singular_values_, ref.singular_values_)
+        for name in ("A", "B", "C", "D", "K", "innovation_cov"):
+            assert np.array_equal(getattr(est.model_, name), getattr(ref.model_, name)), (mode, name)
+        # ahead: every round scored once (before the SVD ended); mismatch: scored ahead, then all again
+        assert len(calls) == (len(ref_calls) if mode == "ahead" else 2 * len(ref_calls))
