@@ -7,26 +7,19 @@ internal equivalence, not an outside source; the claim checked is that the reord
 
 from __future__ import annotations
 
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from stimsteer.sysid import Session
 from stimsteer.sysid.subspace import SubspaceId, factor, prepare, selection
 
+sys.path.insert(0, str(Path(__file__).parent))
+from test_subspace_factor import _session  # noqa: E402  (the simulated three-state session of the factor tests)
 
-def _session(seed=4, T=6000, n_trials=6, noise=0.3):
-    rng = np.random.default_rng(seed)
-    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
-    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
-    u = rng.standard_normal((T, 2))
-    x, y = np.zeros(3), np.zeros((T, 4))
-    for k in range(T):
-        y[k] = C @ x + noise * rng.standard_normal(4)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, n_trials + 1).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+
 
 
 _AHEAD = SubspaceId._ahead
@@ -56,7 +49,7 @@ def _fit(monkeypatch, mode, **kw):
         monkeypatch.setattr(SubspaceId, "_ahead", after)
     elif mode == "mismatch":  # all data as if supporting fewer orders: what was scored ahead is dropped
         monkeypatch.setattr(SubspaceId, "_ahead", lambda self, *a: (_AHEAD(self, *a)[0], -1))
-    est = SubspaceId(past_steps=6, future_steps=5, **kw).fit(_session())
+    est = SubspaceId(past_steps=6, future_steps=5, **kw).fit(_session(noise=0.3, seed=4))
     return est, calls
 
 

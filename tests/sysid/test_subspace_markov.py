@@ -6,13 +6,18 @@ block-Toeplitz map of Markov parameters is the standard one (Ho & Kalman 1966)."
 
 from __future__ import annotations
 
+import sys
 import tracemalloc
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from stimsteer.sysid.statespace import markov_toeplitz
 from stimsteer.sysid.subspace import gram, heldout, markov, projection
+
+sys.path.insert(0, str(Path(__file__).parent))
+from test_subspace_factor import _session  # noqa: E402  (the simulated three-state session of the factor tests)
 
 
 def _toeplitz_basis(A, C, layout, feedthrough):
@@ -171,24 +176,9 @@ def _fit_with_route(monkeypatch, session, chol_from, **kw):
     return SubspaceId(**kw).fit(session)
 
 
-def _trial_session(noise, seed=1, T=6000):
-    from stimsteer.sysid import Session
-
-    rng = np.random.default_rng(seed)
-    A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
-    B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
-    u = rng.standard_normal((T, 2))
-    x, y = np.zeros(3), np.zeros((T, 4))
-    for k in range(T):
-        y[k] = C @ x + noise * rng.standard_normal(4)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, 7).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
-
-
 @pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
 def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(monkeypatch, weighting):
-    session = _trial_session(noise=0.3)
+    session = _session(noise=0.3)
     kw = dict(past_steps=6, future_steps=5, weighting=weighting)
     eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
     chol = _fit_with_route(monkeypatch, session, 0, **kw)
@@ -202,7 +192,7 @@ def test_cholesky_route_predicts_as_the_eigen_route_on_well_conditioned_data(mon
 def test_singular_covariances_take_the_eigen_route(monkeypatch):
     # noise-free data of a 3-state system: the past covariance given the future inputs is singular, so no
     # Cholesky factor passes the condition check and the eigen route (with its cut-off) is used: same model
-    session = _trial_session(noise=0.0)
+    session = _session(noise=0.0)
     kw = dict(past_steps=6, future_steps=5)
     eig = _fit_with_route(monkeypatch, session, 10**9, **kw)
     chol = _fit_with_route(monkeypatch, session, 0, **kw)
@@ -232,7 +222,7 @@ def _old_fit_order(proj, n, feedthrough):
 
 @pytest.fixture(scope="module")
 def noisy_session():
-    return _trial_session(noise=0.3, T=3000)
+    return _session(noise=0.3, T=3000)
 
 
 @pytest.mark.parametrize("weighting", ["n4sid", "moesp", "cva"])
