@@ -39,18 +39,16 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 from scipy.linalg import blas, lapack
 
-from .._lapack_nogil import scipy_c_function
+from .._lapack_nogil import _DPOTRF as _POTRF
+from .._lapack_nogil import _DTRMM, _DTRSM, scipy_c_function
 
 __all__: list = []
 
 _INT = ctypes.POINTER(ctypes.c_int)
 _DBL = ctypes.POINTER(ctypes.c_double)
-_CHR = ctypes.c_char_p
 
 
-_POTRF = scipy_c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
-_TRIANGULAR = {name: scipy_c_function("blas", name, _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
-               for name in ("dtrsm", "dtrmm")}
+_TRIANGULAR = {"dtrsm": _DTRSM, "dtrmm": _DTRMM}  # the lookups of _lapack_nogil (one per process)
 _DDOT = scipy_c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)
 if _DDOT is not None:
     _DDOT.restype = ctypes.c_double  # (the constructor above declares the arguments; ddot returns a double)

@@ -17,7 +17,7 @@ import ctypes
 import numpy as np
 import scipy.linalg as sla
 
-from .._lapack_nogil import scipy_c_function
+from .._lapack_nogil import _DPOCON, _DPOTRF, scipy_c_function
 
 __all__ = ["available", "block_norm", "potrf", "pocon", "potrs"]
 
@@ -25,8 +25,6 @@ _INT = ctypes.POINTER(ctypes.c_int)
 _DBL = ctypes.POINTER(ctypes.c_double)
 _CHR = ctypes.c_char_p
 
-_DPOTRF = scipy_c_function("lapack", "dpotrf", _CHR, _INT, _DBL, _INT, _INT)
-_DPOCON = scipy_c_function("lapack", "dpocon", _CHR, _INT, _DBL, _INT, _DBL, _DBL, _DBL, _INT, _INT)
 _DPOTRS = scipy_c_function("lapack", "dpotrs", _CHR, _INT, _INT, _DBL, _INT, _DBL, _INT, _INT)
 _DLANGE = scipy_c_function("lapack", "dlange", _CHR, _INT, _INT, _DBL, _INT, _DBL)
 if _DLANGE is not None:  # dlange returns the norm: the same C function, with its result type
