@@ -16,6 +16,8 @@ def test_blocked_lag_products_equal_the_materialised_design(n):
     B = rng.standard_normal((L + n, c))
     S, X = _chunk_products(B, L)
     rows = B[L:]
+    # tolerances: the blocks change only the order of the sums' additions, whose rounding is a few n · eps relative
+    # (Higham 2002, "Accuracy and stability of numerical algorithms", 2nd ed., sec. 4.2); 1e-12 · n covers it
     np.testing.assert_allclose(S, rows.sum(axis=0), rtol=1e-12, atol=1e-12 * n)
     for delta in range(L + 1):
         reference = rows.T @ B[L - delta: L - delta + n]

@@ -124,6 +124,6 @@ def test_row_blocks_made_in_the_factors_memory_and_the_projector_equal_their_cop
         tracemalloc.stop()
     assert got.flags.c_contiguous and np.shares_memory(got, F)
     np.testing.assert_array_equal(got, want)
-    assert peak <= 2 * 8 * 256 * 256 + 65536
+    assert peak <= 2 * 8 * 256 * 256 + 65536  # two 256 × 256 float64 tiles, plus 64 KiB for small Python objects
     d = np.r_[np.zeros(40), np.ones(n - 40)]
     np.testing.assert_array_equal(kkt._coordinate_projector(n, 40), np.diag(d))
