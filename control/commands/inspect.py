@@ -54,9 +54,11 @@ def alignment_text(metadata) -> list[str]:
 
 
 def gap_lines(metadata) -> list[str]:
-    """Lines on the rows a table reader masked because a cell was empty (channel, samples, first time)."""
+    """Lines on the rows a table reader masked because a cell was missing (channel, samples, first time): an empty
+    cell or one marked missing (``n/a``, ``NA``, ``nan``, ``null``: pandas' missing-value marks)."""
     cells = metadata.get("masked_empty_cells") or []
-    return [f"gap: {c['samples']} sample(s) of {c['channel']} are empty cells, first at t = {c['first_s']:.6g} s; "
+    return [f"gap: {c['samples']} sample(s) of {c['channel']} are missing (empty cells or a "
+            f"mark such as n/a), first at t = {c['first_s']:.6g} s; "
             "those rows are masked (excluded from fits and scores)" for c in cells]
 
 

@@ -180,11 +180,25 @@ def test_empty_cells_without_a_valid_column_are_masked_and_inspect_says_where(fi
     assert s.metadata["masked_empty_cells"] == [{"channel": "out:ch_03", "samples": 50, "first_s": 1.2}]
     assert main(["inspect", files["csv"], "--past", "20ms", "--horizon", "20ms"]) == 0
     printed = capsys.readouterr().out
-    assert "gap: 50 sample(s) of out:ch_03 are empty cells, first at t = 1.2 s" in printed
+    assert "gap: 50 sample(s) of out:ch_03 are missing (empty cells or a mark such as n/a), first at t = 1.2 s" \
+        in printed
     # a masked gap is a note under the verdict; it used to be printed below "No problems found."
     lines = printed.splitlines()
     gap_at = next(i for i, ln in enumerate(lines) if "gap: 50 sample(s)" in ln)
     assert lines[gap_at].startswith("  - gap:") and "Notes:" in lines[:gap_at]
+
+
+def test_cells_marked_n_a_are_masked_like_empty_ones(files, tmp_path):
+    # A spreadsheet export may write "n/a" where a sample is missing: pandas reads it as missing by default (pandas
+    # documentation, read_csv, na_values), and the reader masks those rows as it does empty cells.
+    frame = pd.read_csv(files["csv"], comment="#", keep_default_na=False, dtype=str)
+    col = [c for c in frame.columns if c.startswith("out:ch_03")][0]
+    frame.loc[1200:1249, col] = "n/a"
+    path = tmp_path / "session_na.csv"
+    frame.to_csv(path, index=False)
+    s = load_session(path)
+    assert s.metadata["masked_empty_cells"] == [{"channel": "out:ch_03", "samples": 50, "first_s": 1.2}]
+    assert not s.mask[1200:1250].any() and s.mask[:1200].all() and s.mask[1250:].all()
 
 
 def test_a_time_column_without_its_unit_is_named_with_the_spelling_to_use(tmp_path, capsys):
