@@ -127,11 +127,12 @@ class _FactorProjection:
         self.future_cov = (S_uu, S_yu)
         self._weighting = (weighting, S_yy, Lf[e:, :b].copy() if weighting == "cva" else None)
 
-    def decompose(self, work: np.ndarray | None = None, release_rest: bool = False) -> None:
+    def decompose(self, work: np.ndarray | None = None, keep: int | None = None) -> None:
         """The SVD of the weighted projection (``singular_values``, ``U``, ``w_inv``); needs no part of the factor,
         so the factor can be freed before it, or its memory handed over as ``work`` (a flat float64 array the
-        decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers), whose
-        pages beyond what it uses are handed back to the system first with ``release_rest``."""
+        decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers). Given
+        ``keep``, the pages of ``work`` beyond its first ``keep`` items and beyond what the decomposition uses are
+        handed back to the system first (:func:`._buffers.release_tail`)."""
         weighting, S_yy, L_yu = self._weighting
         b, e = self.layout.m * self.layout.f, self.layout.m * self.layout.f + len(self.layout.P)
         mat = self.theta_rows[:, :e] if weighting == "n4sid" else self.theta_rows[:, b:e]  # N4SID, else L_YP
@@ -142,8 +143,8 @@ class _FactorProjection:
             w_inv = (H * np.sqrt(om)) @ H.T
         self._weighting = None
         wide = mat.shape[1] > mat.shape[0]
-        if release_rest and work is not None:
-            release_tail(work, work_size(*mat.shape) if wide else 0)
+        if keep is not None and work is not None:
+            release_tail(work, max(keep, work_size(*mat.shape) if wide else 0))
         if wide:  # the left singular pairs of mat = Rᵀ Qᵀ are those of Rᵀ (square)
             U, sv = left_singular_pairs(mat, work)
         else:
