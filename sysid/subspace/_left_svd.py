@@ -5,9 +5,9 @@ The same LAPACK calls as before, with the same workspace sizes (each routine's o
 ``qr`` and NumPy's ``svd`` query it), so the same numbers bit for bit: ``dgeqrf`` on the transposed matrix (SciPy's
 ``scipy.linalg.qr(mode="r")``) and ``dgesdd("S")`` on ``Rᵀ`` (NumPy's ``svd(full_matrices=False)``; checked equal
 in ``tests/sysid/test_subspace_speed_buffers.py``). What changes is where the memory comes from: the caller's
-workspace (the projection's Gram buffer, dead once its factor's pieces are taken) instead of about 70 MB of fresh
-arrays per call at 1,000 × 2,450 (their first touch cost the fit ~18,000 page faults per decomposition on a
-virtual machine), and the calls run through SciPy's exported C functions
+workspace (the projection's Gram buffer, dead once its factor's pieces are taken: :func:`work_size` items) instead
+of fresh arrays of that size per call, whose first touch costs page faults, and the calls run through SciPy's
+exported C functions
 (:func:`stimsteer.sysid._lapack_nogil.scipy_c_function`), so the other pipeline's Python work proceeds meanwhile.
 Where those functions cannot be had, SciPy's ``qr`` and NumPy's ``svd`` are called as before.
 """

@@ -112,8 +112,8 @@ def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows:
 
 def _gram_into(buffer: np.ndarray, acc, layout: _Layout, order: np.ndarray, rows: tuple | None = None):
     """:func:`_gram_from_sums` ``(acc, layout, order, rows)``, the same numbers, written into the front of the flat
-    float64 ``buffer`` (a C-ordered view of it is returned): a Gram buffer already touched is reused instead of a
-    fresh Gram-sized array (whose first touch costs about 0.15 s of page faults at 3,450 rows on a virtual machine).
+    float64 ``buffer`` (a C-ordered view of it is returned): a buffer already touched is reused instead of a fresh
+    Gram-sized array, whose first touch costs page faults.
     The strided block copies of :func:`~stimsteer.sysid._lagged._lagged_gram`, pointed at ``buffer``; short lagged
     vectors (assembled there by fancy indexing into a fresh array) are assembled as before and copied in."""
     index = _lagged_index(layout, order)

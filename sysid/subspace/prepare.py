@@ -92,14 +92,15 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
 
     Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
     own (:func:`_fit_pipeline`: Gram, factor, projection, SVD, then the held-out rows), all data's on this one
-    (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is then left running on a
-    second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the fitting part's candidate
-    orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is assembled in it in the
-    factor order, overwritten by its factor (whose ``n``-independent pieces the projection copies), and then serves
-    as the SVD's workspace and (the fitting part's) for the held-out Gram's rows of the past and of the future
-    inputs (:class:`~.heldout._CheckCov` needs no more). The Cholesky factorisations and the SVDs release the GIL.
-    The same computations as one after the other, so the same numbers; when both fail, the fitting part's failure
-    is the one reported (it was checked first before).
+    (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is then
+    left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the fitting
+    part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
+    assembled in it in the factor order, overwritten by its factor (whose ``n``-independent pieces the projection
+    copies), and then serves as the SVD's workspace and (the fitting part's) for the held-out Gram's rows of the
+    past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The Cholesky factorisations and the
+    SVDs release the GIL. The same computations as one after the other, so the same numbers; when both fail, the
+    fitting part's failure is the one reported (it was checked first before). (When only the fitting part's Gram
+    is too ill conditioned, all data's SVD has started and is joined in vain: the covariance route follows.)
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
@@ -143,8 +144,7 @@ def _projection(assembled, L: _Layout, weighting: str):
 def _fit_pipeline(acc_fit, acc_check, L: _Layout, order, full, scale, weighting: str):
     """The fitting part's projection, decomposed, and the held-out covariance blocks (in the same buffer, once the
     decomposition is done with it); None when the fitting part's Gram is too ill conditioned. (Its Gram is
-    assembled on this thread: the first touch of a fresh buffer, about 0.1-0.25 s of page faults at 3,450 rows,
-    then overlaps all data's.)"""
+    assembled on this thread: the page faults of its fresh buffer's first touch then overlap all data's.)"""
     proj, buffer = _projection(_assembled(acc_fit, L, order, full), L, weighting)
     if proj is None:
         return None
