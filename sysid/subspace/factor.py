@@ -31,12 +31,14 @@ import numpy as np
 import scipy.linalg as sla
 
 from ._gil_free import pocon, potrf
+from ._buffers import release_tail
+from ._left_svd import left_singular_pairs, work_size
 from .gram import _Layout
 from .nested import NestedOrders
 from .projection import _CHOLESKY_CONDITION, _psd_parts
 
 
-def _one_norm(S: np.ndarray, band: int = 512) -> float:
+def _one_norm(S: np.ndarray, band: int = 64) -> float:
     """``‖S‖₁`` of a symmetric matrix (largest absolute row sum), a band of rows at a time."""
     return max(float(np.abs(S[a:a + band]).sum(axis=1).max()) for a in range(0, S.shape[0], band))
 
@@ -125,9 +127,12 @@ class _FactorProjection:
         self.future_cov = (S_uu, S_yu)
         self._weighting = (weighting, S_yy, Lf[e:, :b].copy() if weighting == "cva" else None)
 
-    def decompose(self) -> None:
+    def decompose(self, work: np.ndarray | None = None, keep: int | None = None) -> None:
         """The SVD of the weighted projection (``singular_values``, ``U``, ``w_inv``); needs no part of the factor,
-        so the factor can be freed before it."""
+        so the factor can be freed before it, or its memory handed over as ``work`` (a flat float64 array the
+        decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers). Given
+        ``keep``, the pages of ``work`` beyond its first ``keep`` items and beyond what the decomposition uses are
+        handed back to the system first (:func:`._buffers.release_tail`)."""
         weighting, S_yy, L_yu = self._weighting
         b, e = self.layout.m * self.layout.f, self.layout.m * self.layout.f + len(self.layout.P)
         mat = self.theta_rows[:, :e] if weighting == "n4sid" else self.theta_rows[:, b:e]  # N4SID, else L_YP
@@ -137,9 +142,13 @@ class _FactorProjection:
             mat = ((H / np.sqrt(om)) @ H.T) @ mat
             w_inv = (H * np.sqrt(om)) @ H.T
         self._weighting = None
-        if mat.shape[1] > mat.shape[0]:  # the left singular pairs of mat = Rᵀ Qᵀ are those of Rᵀ (square)
-            mat = sla.qr(mat.T, mode="r", check_finite=False)[0][:mat.shape[0]].T
-        U, sv, _ = np.linalg.svd(mat, full_matrices=False)
+        wide = mat.shape[1] > mat.shape[0]
+        if keep is not None and work is not None:
+            release_tail(work, max(keep, work_size(*mat.shape) if wide else 0))
+        if wide:  # the left singular pairs of mat = Rᵀ Qᵀ are those of Rᵀ (square)
+            U, sv = left_singular_pairs(mat, work)
+        else:
+            U, sv, _ = np.linalg.svd(mat, full_matrices=False)
         k = len(self.layout.Yf)
         self.singular_values = np.concatenate([sv, np.zeros(max(0, k - sv.size))])[:k]
         self.U = U

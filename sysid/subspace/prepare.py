@@ -20,8 +20,9 @@ import numpy as np
 from .._lagged import blas_threads
 from ..exceptions import ExcitationError, SessionError
 from ..output_mask import blanking_note
+from ._buffers import release_tail
 from .factor import factor_projection
-from .gram import _Layout, _gram_diagonal, _gram_from_sums, _hankel_sums, _partition
+from .gram import _Layout, _gram_diagonal, _gram_from_sums, _gram_into, _hankel_sums, _partition
 from .heldout import _CheckCov
 from .projection import _CHOLESKY_FROM, _Projection, _RTOL, _cond_text
 
@@ -89,38 +90,70 @@ def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
 def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack):
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
 
-    The Grams are assembled one at a time in the factor order and each is overwritten by its factor, which is
-    freed once its projection's pieces are taken; of the held-out Gram only the rows of the past and of the future
-    inputs are assembled (:class:`~.heldout._CheckCov` needs no more). Each projection's SVD
-    (:meth:`~.factor._FactorProjection.decompose`, which needs no part of the factor) runs on a thread of its own
-    while this one assembles and factors the next Gram (the Cholesky factorisation releases the GIL): the same
-    computations (BLAS on one thread each), so the same numbers, in less wall time on two cores. The fitting part
-    comes first, so that its candidate orders can be scored while the SVD of all data ends (``proj_all.pending``,
-    left running; ``stack`` joins the thread when it closes).
+    Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
+    own (:func:`_fit_pipeline`: Gram, factor, projection, SVD, then the held-out rows), all data's on this one
+    (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is then
+    left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the fitting
+    part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
+    assembled in it in the factor order, overwritten by its factor (whose ``n``-independent pieces the projection
+    copies), and then serves as the SVD's workspace and (the fitting part's) for the held-out Gram's rows of the
+    past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The Cholesky factorisations and the
+    SVDs release the GIL. The same computations as one after the other, so the same numbers; when both fail, the
+    fitting part's failure is the one reported (it was checked first before). (When only the fitting part's Gram
+    is too ill conditioned, all data's SVD has started and is joined in vain: the covariance route follows.)
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
     scale = channel_scales(_gram_diagonal(acc_all, L), int(acc_all.n), L, session)
     full = np.tile(scale, L.width)[order]
-    uf, b, e = slice(0, L.m * L.f), L.m * L.f, L.m * L.f + len(L.P)
-    side = ThreadPoolExecutor(max_workers=2, thread_name_prefix="stimsteer-subspace-svd")
-    stack.callback(side.shutdown)  # (leaving waits for a decomposition already started)
-    projs = []
-    for acc in (acc_fit, acc_all):
-        G = scaled(_gram_from_sums(acc, L, order), int(acc.n), full)
-        check_excitation(G[uf, uf], L)
-        proj = factor_projection(G, L, weighting)
-        del G  # the factor: free it before the next Gram
-        if proj is None:
+    fit_side = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-fit")
+    svd_side = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-svd-all")
+    stack.callback(svd_side.shutdown)  # (leaving waits for a decomposition already started)
+    stack.callback(fit_side.shutdown)
+    fit_job = fit_side.submit(_fit_pipeline, acc_fit, acc_check, L, order, full, scale, weighting)
+    try:
+        proj_all, buffer = _projection(_assembled(acc_all, L, order, full), L, weighting)
+    except BaseException:
+        if fit_job.result() is None:  # (re-raises what the fitting part's pipeline raised)
             return None
-        projs.append((proj, side.submit(proj.decompose)))
-    n = int(acc_check.n)
-    rows = scaled(_gram_from_sums(acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
+        raise
+    if proj_all is not None:  # (its pages beyond the SVD's workspace handed back: the peak memory is at its end)
+        proj_all.pending = svd_side.submit(proj_all.decompose, buffer, 0)
+    del buffer
+    fitted = fit_job.result()
+    if fitted is None or proj_all is None:
+        return None
+    proj_fit, check = fitted
+    return proj_all, proj_fit, check, scale
+
+
+def _assembled(acc, L: _Layout, order, full):
+    """``(G, buffer)``: the scaled Gram of ``acc`` in the factor order, assembled in a new Gram-sized ``buffer``."""
+    buffer = np.empty(L.nz * L.nz)
+    return scaled(_gram_into(buffer, acc, L, order), int(acc.n), full), buffer
+
+
+def _projection(assembled, L: _Layout, weighting: str):
+    """``(projection or None, buffer)`` of an :func:`_assembled` Gram: its inputs' excitation checked, then its
+    :func:`~.factor.factor_projection` (the factor overwrites the Gram)."""
+    G, buffer = assembled
+    check_excitation(G[:L.m * L.f, :L.m * L.f], L)
+    return factor_projection(G, L, weighting), buffer
+
+
+def _fit_pipeline(acc_fit, acc_check, L: _Layout, order, full, scale, weighting: str):
+    """The fitting part's projection, decomposed, and the held-out covariance blocks (in the same buffer, once the
+    decomposition is done with it); None when the fitting part's Gram is too ill conditioned. (Its Gram is
+    assembled on this thread: the page faults of its fresh buffer's first touch then overlap all data's.)"""
+    proj, buffer = _projection(_assembled(acc_fit, L, order, full), L, weighting)
+    if proj is None:
+        return None
+    n, b, e = int(acc_check.n), L.m * L.f, L.m * L.f + len(L.P)
+    proj.decompose(buffer, e * L.nz)  # (the pages the held-out rows will not use are handed back first)
+    rows = scaled(_gram_into(buffer, acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
+    release_tail(buffer, rows.size)  # (held as long as the held-out blocks: only their rows stay resident)
     diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
-    (proj_fit, done_fit), (proj_all, done_all) = projs
-    done_fit.result()  # (re-raises what the decomposition raised)
-    proj_all.pending = done_all
-    return proj_all, proj_fit, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L), scale
+    return proj, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
 
 
 def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:
