@@ -282,7 +282,7 @@ def _write_blocks(W: np.ndarray, rects_a, rects_ad, blocks: np.ndarray, d: int, 
 
 
 def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[int, int] | None = None,
-                 average_same_lag: bool = False, fortran: bool = False) -> np.ndarray:
+                 average_same_lag: bool = False, fortran: bool = False, out: np.ndarray | None = None) -> np.ndarray:
     """Gram of the lagged vectors ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` over the rows of ``sums``.
 
     Block ``(a, a + δ)`` is ``X[δ] + C[δ][a - 1]`` (``a ≥ 1``; :func:`_edge_correction`), block ``(0, δ)`` is
@@ -292,19 +292,27 @@ def _lagged_gram(sums: _LagSums, index: np.ndarray | None = None, rows: tuple[in
     averaged with their transposes. Written as strided copies over the rectangles of ``index``
     (:func:`_index_rectangles`; short vectors: :data:`_SMALL_ASSEMBLY`). With ``fortran`` the rows come
     Fortran-ordered: written as the columns ``[r0, r1)`` of a C-ordered array (the Gram is symmetric; every block
-    below the diagonal is written as the exact transpose of the one above, the same-lag blocks as they are)."""
+    below the diagonal is written as the exact transpose of the one above, the same-lag blocks as they are). With
+    ``out`` (a flat float64 array of at least the result's size) the result is written into its front and returned
+    as a view of it: a buffer already touched spares a fresh Gram-sized array's first-touch page faults."""
     Lp1, c = sums.X.shape[0], sums.X.shape[1]
     r0, r1 = (0, Lp1 * c) if rows is None else (int(rows[0]), int(rows[1]))
     order = None if index is None or Lp1 * c > _SMALL_ASSEMBLY else _small_order(np.asarray(index).reshape(-1))
     if Lp1 * c <= _SMALL_ASSEMBLY and (index is None or order is not None):
         W = _small_lagged_gram(sums, average_same_lag, None if index is None else np.asarray(index))
         W = W if (r0, r1) == (0, Lp1 * c) else W[r0:r1].copy()
-        return np.asfortranarray(W) if fortran else W
+        W = np.asfortranarray(W) if fortran else W
+        if out is None:
+            return W
+        into = out[:W.size].reshape(W.shape[::-1] if fortran else W.shape)
+        into[...] = W.T if fortran else W
+        return into.T if fortran else into
     if index is None:
         index = np.arange(Lp1 * c).reshape(Lp1, c)
     full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
     clipped = full if (r0, r1) == (0, Lp1 * c) else _clip_rectangles(full, r0, r1)
-    W = np.empty((Lp1 * c, r1 - r0) if fortran else (r1 - r0, Lp1 * c))
+    shape = (Lp1 * c, r1 - r0) if fortran else (r1 - r0, Lp1 * c)
+    W = np.empty(shape) if out is None else out[:shape[0] * shape[1]].reshape(shape)
     rows_cols = (full, clipped) if fortran else (clipped, full)
     for d, blocks in enumerate(_gram_blocks(sums, average_same_lag)):
         _write_blocks(W, *rows_cols, blocks, d, False)

@@ -6,8 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._lagged import (_SMALL_ASSEMBLY, _clip_rectangles, _gram_blocks, _lagged_diagonal, _lagged_gram,
-                       _lagged_gram_rows, _rectangles, _stream_sums, _write_blocks)
+from .._lagged import _lagged_diagonal, _lagged_gram, _lagged_gram_rows, _stream_sums
 from ..output_mask import output_valid_segments
 
 
@@ -113,23 +112,9 @@ def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows:
 def _gram_into(buffer: np.ndarray, acc, layout: _Layout, order: np.ndarray, rows: tuple | None = None):
     """:func:`_gram_from_sums` ``(acc, layout, order, rows)``, the same numbers, written into the front of the flat
     float64 ``buffer`` (a C-ordered view of it is returned): a buffer already touched is reused instead of a fresh
-    Gram-sized array, whose first touch costs page faults.
-    The strided block copies of :func:`~stimsteer.sysid._lagged._lagged_gram`, pointed at ``buffer``; short lagged
-    vectors (assembled there by fancy indexing into a fresh array) are assembled as before and copied in."""
+    Gram-sized array, whose first touch costs page faults."""
     index = _lagged_index(layout, order)
-    n = index.size
-    r0, r1 = (0, n) if rows is None else (int(rows[0]), int(rows[1]))
-    W = buffer[:(r1 - r0) * n].reshape(r1 - r0, n)
-    if n <= _SMALL_ASSEMBLY:
-        W[...] = _gram_from_sums(acc, layout, order, rows)
-        return W
-    full = _rectangles(index.shape, np.asarray(index, dtype=np.int64).tobytes())
-    clipped = full if (r0, r1) == (0, n) else _clip_rectangles(full, r0, r1)
-    for d, blocks in enumerate(_gram_blocks(acc, True)):  # the same-lag blocks averaged, as _gram_from_sums
-        _write_blocks(W, clipped, full, blocks, d, False)
-        if d:
-            _write_blocks(W, full, clipped, blocks, d, True)
-    return W
+    return _lagged_gram(acc, index, rows=rows, average_same_lag=True, out=buffer)
 
 
 def _gram_diagonal(acc, layout: _Layout) -> np.ndarray:

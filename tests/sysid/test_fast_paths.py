@@ -44,6 +44,25 @@ def test_short_lagged_gram_equals_the_strided_route_bit_for_bit(monkeypatch, n_l
         assert W.flags.c_contiguous  # the layout too: later products round by the layout they are given
 
 
+@pytest.mark.parametrize("small", [True, False])
+@pytest.mark.parametrize("fortran", [False, True])
+def test_lagged_gram_written_into_a_buffer_is_the_fresh_one_bit_for_bit(monkeypatch, small, fortran):
+    # the same numbers and layout whether the Gram is a fresh array or the front of a buffer already used
+    if not small:
+        monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)
+    rng = np.random.default_rng(7)
+    n_lags, c = 5, 4
+    sums = _sums(rng, n_lags, c)
+    N = (n_lags + 1) * c
+    index = rng.permutation(N).reshape(n_lags + 1, c)
+    for rows in (None, (3, 17)):
+        fresh = _lagged._lagged_gram(sums, index, rows, True, fortran)
+        buffer = np.full(N * N + 5, np.nan)
+        got = _lagged._lagged_gram(sums, index, rows, True, fortran, out=buffer)
+        assert np.array_equal(got, fresh) and np.shares_memory(got, buffer)
+        assert got.flags.f_contiguous == fresh.flags.f_contiguous and got.flags.c_contiguous == fresh.flags.c_contiguous
+
+
 def test_short_lagged_gram_is_the_gram_of_the_lagged_vectors():
     # the definition: w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}] over the rows k of each piece, Gram = sum of w_k w_k^T
     rng = np.random.default_rng(2)
