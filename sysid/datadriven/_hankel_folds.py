@@ -42,6 +42,8 @@ WORKERS = 2
 #: Regressor rows (``n_b``) from which the folds are scored here (and the total's factor is kept: also from
 #: ``gram.TOTAL_FACTOR_ROWS``); smaller fits score their folds one by one (threads would cost more than they save).
 SIDE_BY_SIDE_ROWS = 512
+#: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks.
+PIECES = 2
 #: Task priorities (lowest first): a fold's factor, its triangular solves, the total's factor (``run``), the extra
 #: tasks, the products.
 _FACTOR, _SOLVE, _TOTAL, _EXTRA, _PRODUCT = 0, 1, 2, 3, 4
@@ -87,6 +89,15 @@ def _half_residual(theta, own, F, n_b: int, i0: int, i1: int, lt21_sq: np.ndarra
     _CALLS.trmm(F, 0, n_b, F.shape[0], theta, 0, m, m)  # Z = Θ Ct
     theta -= F[n_b + i0:n_b + i1, :n_b].T  # (Z − Lt21)ᵀ
     return np.einsum("ji,ji->i", theta, theta) - lt21_sq[i0:i1] + own
+
+
+def _pieces(pN: int) -> list:
+    """The row ranges of a fold's solves and products: :data:`PIECES` per half of the ``pN`` predicted rows."""
+    out = []
+    for a, b in ((0, pN // 2), (pN // 2, pN)):
+        cuts = [a + 16 * round((b - a) * k / PIECES / 16) for k in range(PIECES)] + [b]
+        out.extend((c, d) for c, d in zip(cuts[:-1], cuts[1:]) if d > c)
+    return out
 
 
 def _others(folds, i: int):
@@ -147,9 +158,9 @@ class _FoldPlan:
             release_freed_memory()
             return self._next_fold()
         pN = Gt.shape[1] - self.n_b
-        state = {"Gt": Gt, "left": 2, "parts": {}}
+        state = {"Gt": Gt, "left": len(_pieces(pN)), "parts": {}}
         del Gt
-        for h, (a, b) in enumerate(((0, pN // 2), (pN // 2, pN))):
+        for h, (a, b) in enumerate(_pieces(pN)):
             self.pool.submit(_SOLVE, self._run, i, self._solve, i, state, h, a, b)
 
     def _solve(self, i: int, state: dict, h: int, a: int, b: int) -> None:
@@ -174,10 +185,10 @@ class _FoldPlan:
         F, lt21_sq = self._product_args
         resid = _half_residual(theta, own, F, self.n_b, a, b, lt21_sq)
         with self._lock:
-            state["parts"][h] = (a, b, resid)
-            done = len(state["parts"]) == 2
+            state["parts"][h] = resid
+            done = len(state["parts"]) == len(_pieces(F.shape[0] - self.n_b))
         if done:
-            self.errors[i].set_result(tuple(state["parts"][k] for k in (0, 1)))
+            self.errors[i].set_result([state["parts"][k] for k in range(len(state["parts"]))])
 
     def products(self, F: np.ndarray) -> None:
         """Give the total's lower factor ``F``: the halves' products begin."""
@@ -205,7 +216,11 @@ class _FoldPlan:
             return None
         w2 = np.asarray(weights, dtype=np.float64) ** 2
         diag22 = self.folds[i].gram_diagonal()[self.n_b:]
-        return float(w2 @ diag22) + sum(float(w2[a:b] @ resid) for a, b, resid in parts)
+        pN, halves = w2.size, []
+        for a, b in ((0, pN // 2), (pN // 2, pN)):  # each half's weighted sum, then the two (as before the pieces)
+            resid = np.concatenate([r for (c, _d), r in zip(_pieces(pN), parts) if a <= c < b])
+            halves.append(float(w2[a:b] @ resid))
+        return float(w2 @ diag22) + sum(halves)
 
     def stop(self) -> None:
         """Begin no other fold, wait for the tasks begun and end the threads (the plan is not used)."""
