@@ -12,20 +12,25 @@ as assembled, seen as the column-major ``n × n_b`` panel ``[G11; G21]`` (the Gr
 The same arithmetic as that function, transposed, with no copy of ``G11`` or ``G12`` (one 2,450 × 3,450 array per
 fold at past 100 / horizon 50, and ``Θ``'s 20 MB). The LAPACK and BLAS calls release the GIL
 (:func:`~stimsteer.sysid._lapack_nogil.strided_cholesky_calls`), so two worker threads (one BLAS thread each) keep
-both cores busy; steps 2-4 are cut in two halves of the fold's ``pN`` rows (rows of ``G21`` are independent in
-``B := B L⁻ᵀ``).
+both cores busy; steps 2-4 are cut in pieces of the fold's ``pN`` rows (rows of ``G21`` are independent in
+``B := B L⁻ᵀ``): :data:`PIECES` per half, cut at multiples of 16 rows from the half's start, which keeps the BLAS
+kernels' groups of rows, so the numbers are those of whole halves (measured: bit for bit at past 100 / horizon 50;
+cut at 250 rows they moved by 4e-15).
 
-The steps are tasks of one pool (:class:`._task_pool.TaskPool`) begun before the total's condition check: while
-that check factors the total Gram on one core, the first fold is assembled, factored and solved (steps 1-3 up to
-``Θ``) on the other, and the next fold after it. Step 3's product with ``Ct`` waits for the total's factor; ``Θ`` is
-then copied out of the fold's array, which is freed at once, so the next fold is assembled and factored (the chain
-every later step waits for: it runs first) while the products of the previous one and the extra tasks (the
-closed-form predictor, its plan gaps) fill the other core. One fold's array is held at a time.
+The steps are tasks of one pool (:class:`._task_pool.TaskPool`, :class:`_FoldPlan`) begun before the total Gram is
+assembled for its condition check (``gram.gram_condition_of``'s ``begin``): the first fold is assembled beside the
+total (two assemblies, each holding the GIL only in part), then factored and solved (steps 1-3 up to ``Θ``) beside
+the total's Cholesky factor, itself a task of the pool (``run``). Step 3's product with ``Ct`` waits for that
+factor; ``Θ``'s rows are copied out of the fold's array, which is freed once the fold's solves are done, so the next
+fold is assembled and factored (the chain every later step waits for: it runs first) while the products of the
+previous ones and the extra tasks (the closed-form predictor, its plan gaps) fill the other core. One fold's array
+is held at a time (and the copies of ``Θ`` of folds whose products wait).
 """
 
 from __future__ import annotations
 
 import threading
+import weakref
 from concurrent.futures import Future
 
 import numpy as np
@@ -44,9 +49,11 @@ WORKERS = 2
 SIDE_BY_SIDE_ROWS = 512
 #: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks.
 PIECES = 2
-#: Task priorities (lowest first): a fold's factor, its triangular solves, the total's factor (``run``), the extra
-#: tasks, the products.
-_FACTOR, _SOLVE, _TOTAL, _EXTRA, _PRODUCT = 0, 1, 2, 3, 4
+#: Task priorities (lowest first): a fold's factor, then its triangular solves (the chain every later fold waits
+#: for), the total's factor (``run``), then the products and the extra tasks as they come (the work that fills the
+#: other core beside a fold's factor: the products free their copies of ``Θ``, the extra tasks are a chain of
+#: their own that should not be left to the end).
+_FACTOR, _SOLVE, _TOTAL, _EXTRA, _PRODUCT = 0, 1, 2, 3, 3
 
 
 def available(total, n_b: int) -> bool:
@@ -130,6 +137,7 @@ class _FoldPlan:
         self._waiting: list = []  # products waiting for the total's factor
         self._product_args = None  # (F, lt21_sq) once given
         self._stopped = False
+        weakref.finalize(self, self.pool.close, False)  # an unused plan dropped (an error in between): threads end
         self._next_fold()
 
     def _next_fold(self) -> None:
@@ -204,7 +212,11 @@ class _FoldPlan:
     def run(self, task):
         """``task()`` (the total's Cholesky factor, ``gram.gram_condition_of``) on the workers, before the
         products and extra tasks and after the folds' own steps; its factor, if it has one, starts the products."""
-        F, info = self.pool.submit(_TOTAL, task).result()
+        try:
+            F, info = self.pool.submit(_TOTAL, task).result()
+        except BaseException:
+            self.stop()
+            raise
         if info == 0:
             self.products(F)
         return F, info
@@ -231,11 +243,11 @@ class _FoldPlan:
 
 
 def start_first_fold(folds, n_b: int):
-    """A :class:`_FoldPlan` begun on one core (its first fold's steps 1-3 up to ``Θ``, then the next fold's), or
-    None (nothing to score here). Called before the total's condition check (a Cholesky factor of the whole Gram
-    on one core, the GIL released: ``gram.gram_condition_of``), it runs on the other core instead of after it.
-    One fold's array more is held meanwhile, as while the folds are scored (the total's factor and one fold's
-    array). ``close()`` (or :func:`fold_errors`) ends it."""
+    """A :class:`_FoldPlan` begun (its first fold assembled, factored and solved, then the next fold's), or None
+    (nothing to score here). Called before the total Gram is assembled for its condition check, it runs beside that
+    assembly and the total's Cholesky factor (``run``) instead of after them. One fold's array more is held
+    meanwhile, as while the folds are scored (the total's factor and one fold's array). :func:`fold_errors` or
+    ``stop()`` ends it (and, as a last resort, dropping it: its threads end once their tasks are done)."""
     total = getattr(folds, "total", None)
     if _CALLS is None or total is None or len(folds) < 2 or n_b < SIDE_BY_SIDE_ROWS or not _todo(folds, total):
         return None
@@ -244,7 +256,7 @@ def start_first_fold(folds, n_b: int):
 
 def first_fold_hook(predictor, session):
     """For the "projection" regulariser: ``early(folds)`` for ``base._collect``, which begins the held-out folds
-    (:func:`start_first_fold`) once the total Gram is assembled; None for the others."""
+    (:func:`start_first_fold`) before the total Gram is assembled; None for the others."""
     if predictor.regularizer != "projection":
         return None
     m, p = int(session.n_inputs), int(session.n_outputs)

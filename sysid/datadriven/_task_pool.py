@@ -68,10 +68,13 @@ class TaskPool:
                     self._running -= 1
                     self._cv.notify_all()
 
-    def close(self) -> None:
-        """Wait for every task (including those submitted while waiting) and end the threads."""
+    def close(self, wait: bool = True) -> None:
+        """End the threads once every task (including those submitted meanwhile) is done; with ``wait``, wait
+        for that."""
         with self._cv:
             self._closing = True
             self._cv.notify_all()
-        for t in self._threads:
-            t.join()
+        if wait:
+            for t in self._threads:
+                if t is not threading.current_thread():
+                    t.join()
