@@ -104,3 +104,24 @@ def test_a_stopped_plan_ends_its_threads_and_pieces_cover_the_rows_in_multiples_
         assert [a for a, _b in cuts][0] == 0 and cuts[-1][1] == pN
         assert all(b == c for (_a, b), (c, _d) in zip(cuts[:-1], cuts[1:]))
         assert all((a - (0 if a < pN // 2 else pN // 2)) % 16 == 0 for a, _b in cuts)
+
+
+def test_a_plan_begun_before_a_refused_gram_is_stopped_and_the_fit_is_the_qr_routes(monkeypatch):
+    from stimsteer.sysid.datadriven import base
+    from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+    from tests.sysid.test_hankel_folds import _session
+
+    qr = HankelPredictor(past_steps=5, horizon_steps=4)
+    qr._route = "qr"  # test hook of the direct predictors: the QR route whatever the conditioning
+    qr.fit(_session())
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    monkeypatch.setattr(base, "GRAM_CONDITION_LIMIT", 1.0)  # every total Gram refused after the plan began
+    plans = []
+    real = hf.start_first_fold
+    monkeypatch.setattr(hf, "start_first_fold", lambda *a: plans.append(real(*a)) or plans[-1])
+    before = threading.active_count()
+    new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
+    assert len(plans) == 1 and plans[0] is not None and new.factor_route_ == "qr"
+    assert not any(t.is_alive() for t in plans[0].pool._threads) and threading.active_count() == before
+    np.testing.assert_array_equal(new.cv_table_.to_numpy(float), qr.cv_table_.to_numpy(float))
