@@ -50,10 +50,9 @@ SIDE_BY_SIDE_ROWS = 512
 #: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks.
 PIECES = 2
 #: Task priorities (lowest first): a fold's factor, then its triangular solves (the chain every later fold waits
-#: for), the total's factor (``run``), then the products and the extra tasks as they come (the work that fills the
-#: other core beside a fold's factor: the products free their copies of ``Θ``, the extra tasks are a chain of
-#: their own that should not be left to the end).
-_FACTOR, _SOLVE, _TOTAL, _EXTRA, _PRODUCT = 0, 1, 2, 3, 3
+#: for), then the total's factor (``run``) and the products (which need it: they fill the other core beside a
+#: fold's factor and free their copies of ``Θ``, 20 MB a fold), then the extra tasks.
+_FACTOR, _SOLVE, _TOTAL, _PRODUCT, _EXTRA = 0, 1, 2, 2, 3
 
 
 def available(total, n_b: int) -> bool:
