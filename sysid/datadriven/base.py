@@ -158,9 +158,9 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
     """One pass over the valid segments: per-fold data (Gram route where it is accurate, else QR), the scheme,
     the outputs' standard deviations, the fold of each trial and ``(route, condition)``. ``keep_gram``: the total
     keeps the condition check's array with the Gram's upper triangle (``gram.gram_condition_of``). ``early(folds)``,
-    if given, is called before the condition check's assembly (work started beside it); its result is ``folds.first_fold``
-    (None, or an object whose ``stop()`` ends that work, and whose ``run(task)``, if it has one, runs the condition
-    check's Cholesky factor among that work: ``gram.gram_condition_of``).
+    if given, is called before the condition check's assembly (work started beside it); its result is
+    ``folds.first_fold`` (None, or an object whose ``stop()`` ends that work, and whose ``run(task)``, if it has
+    one, runs the condition check's Cholesky factor among that work: ``gram.gram_condition_of``).
 
     ``route``: "auto" (the Gram route unless raw columns are needed or the Gram is too ill-conditioned), "qr"
     (always the QR route: :func:`_collect_qr`) or "gram" (the Gram route whatever the conditioning; tests).
