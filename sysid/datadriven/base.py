@@ -158,7 +158,9 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
     """One pass over the valid segments: per-fold data (Gram route where it is accurate, else QR), the scheme,
     the outputs' standard deviations, the fold of each trial and ``(route, condition)``. ``keep_gram``: the total
     keeps the condition check's array with the Gram's upper triangle (``gram.gram_condition_of``). ``early(folds)``,
-    if given, is called before the condition check (work started beside it); its result is ``folds.first_fold``.
+    if given, is called before the condition check's assembly (work started beside it); its result is
+    ``folds.first_fold`` (None, or an object whose ``stop()`` ends that work, and whose ``run(task)``, if it has
+    one, runs the condition check's Cholesky factor among that work: ``gram.gram_condition_of``).
 
     ``route``: "auto" (the Gram route unless raw columns are needed or the Gram is too ill-conditioned), "qr"
     (always the QR route: :func:`_collect_qr`) or "gram" (the Gram route whatever the conditioning; tests).
@@ -172,12 +174,13 @@ def _collect(session, past, horizon, n_folds_wanted, seed, keep_full, route="aut
     folds.total = total_fold(folds) if folds else None
     def start():
         if early is not None:
-            release_freed_memory()  # the assembly's freed blocks, before a fold's array is made beside the Gram
+            release_freed_memory()  # the stream's freed blocks, before a fold's array is made beside the Gram
         folds.first_fold = early(folds) if early is not None else None
-    cond = gram_condition_of(folds.total, keep=True, keep_gram=keep_gram, assembled=start) if folds else float("nan")
+        return getattr(folds.first_fold, "run", None)  # the total's factor among the work begun, where it takes it
+    cond = gram_condition_of(folds.total, keep=True, keep_gram=keep_gram, begin=start) if folds else float("nan")
     if route == "auto" and not cond <= GRAM_CONDITION_LIMIT:
         if folds.first_fold is not None:
-            folds.first_fold[1].result()  # its thread ends before the fit goes on
+            folds.first_fold.stop()  # its threads end before the fit goes on
         del folds  # memory: the total's factor
         return _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full) + (("qr", cond),)
     std, trial_fold = _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y)

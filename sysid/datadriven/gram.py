@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import ctypes
 import ctypes.util
+import functools
 
 import numpy as np
 import scipy.linalg as sla
@@ -147,21 +148,25 @@ def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = Non
     return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
 
 
-def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False, assembled=None) -> float:
+def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False, begin=None) -> float:
     """Estimated ``κ₁`` of the fold's Gram (inf when it is not positive definite); with ``keep`` the Cholesky factor
     it was estimated from becomes the fold's :attr:`~_GramFold.factor` (the same numbers as computing it there).
 
     With ``keep_gram`` instead, the array is kept as LAPACK leaves it (``_factor_gram``): the factor in its lower
     triangle, the Gram's own entries still in its strict upper one (``potrf`` does not touch it). Together with
     the diagonal of the sums that is the whole Gram again (:func:`fitted_ridge_map`): the assembly is not repeated.
-    ``assembled()`` is called once the Gram is assembled, before its factor (work to start beside the factor).
+    ``begin()`` is called before the Gram is assembled (work to start beside the assembly and the factor: the
+    assembly's Python work holds the GIL only in part, the factor not at all); if it returns ``run``, the factor
+    is computed as ``run(task)`` (``task()`` on the caller's worker threads, which then share the cores with the
+    work begun; the same call on the same array, so the same numbers).
     """
+    run = begin() if begin is not None else None
     G = fold.gram
-    if assembled is not None:
-        assembled()
     norm = _one_norm(G)
     # in place (memory: one Gram-sized array); without clean the strict upper triangle keeps G's own entries
-    F, info = potrf_lower(G, clean=not keep_gram)  # the GIL released: other threads work beside it
+    task = functools.partial(potrf_lower, G, clean=not keep_gram)  # the GIL released: other threads work beside it
+    F, info = task() if run is None else run(task)
+    del task
     if info != 0:
         return float("inf")
     if keep_gram:

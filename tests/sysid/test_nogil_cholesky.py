@@ -48,7 +48,7 @@ def test_the_first_fold_begun_before_the_check_gives_the_same_errors(monkeypatch
         def begin():
             folds.first_fold = hf.start_first_fold(folds, n_b)
             started.append(folds.first_fold is not None)
-        gr.gram_condition_of(folds.total, keep=True, assembled=begin if early else None)
+        gr.gram_condition_of(folds.total, keep=True, begin=begin if early else None)
         assert started == ([True] if early else [])
         out.append(hf.fold_errors(folds, folds.total, n_b, w))
         assert folds.first_fold is None
