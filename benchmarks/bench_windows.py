@@ -15,7 +15,10 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    products any exact Gram of the lagged data must compute; beside it, one Cholesky factor of that ``n × n`` Gram
    (one and two BLAS threads): what a ridge fit that factors its Gram even once cannot go below (a cross-validated
    fit factors one Gram-sized matrix per fold and strength, or eigendecomposes one per fold);
-3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50), and for the
+3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50); beside it
+   the fit's CPU time (every thread, system time included) ÷ the reference, and that ÷ the machine's cores: the
+   ratio the fit would have with every core busy all the time, so the lowest its schedule can reach without doing
+   less work (the reference runs on one thread, so its wall time is its CPU time); and for the
    two cross-validated ridge fits (ridge ARX, the least-squares predictor) their floor on this machine: the Gram
    reference plus, per fold, one reduction of the largest regressor block that gives every strength at once (the
    cheaper of ridge ARX's band reduction and the tridiagonal reduction of an eigendecomposition, one thread, CPU
@@ -366,6 +369,9 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
         f", {r['peak_mb']:.0f} MB peak (+{r['rise_mb']:.0f})"
     if ref and "seconds" in ref:
         text += f", {r['seconds'] / ref['seconds']:.1f}x Gram"
+        if "cpu_s" in r:  # the work done: no schedule on the machine's cores can take less wall time than this
+            cores = os.cpu_count() or 1
+            text += f" (CPU {r['cpu_s'] / ref['seconds']:.1f}x; ÷ {cores} cores {r['cpu_s'] / cores / ref['seconds']:.1f}x)"
     if "cholesky_1t_s" in r:  # the Gram reference: one Cholesky factor of its size beside it
         text += f"; one {r['n']} x {r['n']} Cholesky {r['cholesky_1t_s']:.2f} s " \
             f"(two threads {r['cholesky_2t_s']:.2f} s)"
