@@ -27,14 +27,19 @@ def _session(T=2400, seed=3):
     return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
 
 
-@pytest.fixture(scope="module")
-def setup():
+def folds_setup():
+    """Three folds of the simulated session, their total with its factor kept, and ``n_b`` (fresh on each call)."""
     m, p, past, horizon = 1, 2, 5, 4
     pieces = [(0, 600, 0), (600, 1200, 1), (1200, 1800, 2), (1800, 2400, 0)]
     fs, *_ = gr.collect_gram(_session(), pieces, 3, m, p, past, horizon)
     total = gr.total_fold(fs)
     gr.gram_condition_of(total, keep=True)
     return fs, total, (m + p) * past + m * horizon
+
+
+@pytest.fixture(scope="module")
+def setup():
+    return folds_setup()
 
 
 def test_side_by_side_fold_errors_equal_the_total_factor_route(setup, monkeypatch):

@@ -14,7 +14,6 @@ import numpy as np
 import pytest
 
 from stimsteer.sysid.datadriven import _hankel_folds as hf
-from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven._task_pool import TaskPool
 
 
@@ -66,14 +65,9 @@ def test_a_task_error_comes_back_by_its_future_and_close_waits_for_tasks_submitt
 
 
 def _setup():
-    from tests.sysid.test_hankel_folds import _session
+    from tests.sysid.test_hankel_folds import folds_setup
 
-    m, p, past, horizon = 1, 2, 5, 4
-    pieces = [(0, 600, 0), (600, 1200, 1), (1200, 1800, 2), (1800, 2400, 0)]
-    fs, *_ = gr.collect_gram(_session(), pieces, 3, m, p, past, horizon)
-    total = gr.total_fold(fs)
-    gr.gram_condition_of(total, keep=True)
-    return fs, total, (m + p) * past + m * horizon
+    return folds_setup()
 
 
 def test_an_error_in_a_folds_step_is_raised_by_fold_errors_not_waited_for(monkeypatch):
