@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from stimsteer.sysid.datadriven import _hankel_folds as hf
+from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven._task_pool import TaskPool
 
 
