@@ -161,24 +161,32 @@ RHS_BLOCK = 512
 _SUB_BLOCK = 64
 
 
+def base_term(F: np.ndarray, n: int, pN: int, weights: np.ndarray) -> float:
+    """``||L21ᵀ Ω||²`` from the total's factor ``F`` (the same for every fold)."""
+    L21w = np.asfortranarray(F[n:n + pN, :n].T * weights[None, :])  # L21ᵀ Ω (the subtraction forms it by blocks)
+    return float(np.einsum("ij,ij->", L21w, L21w))
+
+
+def rhs_block(n: int, pN: int) -> np.ndarray:
+    """A worker's block of :data:`RHS_BLOCK` right-hand sides (``n`` rows, Fortran-ordered)."""
+    return np.empty((n, min(RHS_BLOCK, max(pN, 1))), order="F")
+
+
 class _Grid:
     """The arrays of :func:`strength_errors` and its two ways of scoring one strength."""
 
-    def __init__(self, Gt, F, c0, weights, workers):
+    def __init__(self, Gt, F, c0, weights, workers, base=None):
         self.n, self.Gt, self.F, self.c0 = Gt.shape[0], Gt, F, float(c0)
         self.pN = Gt.shape[1] - self.n
         self.weights = np.asarray(weights, dtype=np.float64)
         self.G11, self.G12 = Gt[:, :self.n], Gt[:, self.n:]  # Fortran-contiguous blocks
         self.diagonal = np.diagonal(self.G11).copy()
-        L21w = np.asfortranarray(F[self.n:self.n + self.pN, :self.n].T * self.weights[None, :])  # L21ᵀ Ω
-        self.base = float(np.einsum("ij,ij->", L21w, L21w))
-        del L21w  # (the subtraction forms it a block at a time)
+        self.base = base_term(F, self.n, self.pN, self.weights) if base is None else base
         self.free = queue.SimpleQueue()
-        rhs = min(RHS_BLOCK, max(self.pN, 1))
-        # each worker's arrays, made here: no large allocation on the worker threads
+        # each worker's arrays, made here: no large allocation on the worker threads (none: the caller's own)
         for k in range(workers):
             K = self.G11 if k == 0 else np.empty((self.n, self.n), order="F")
-            self.free.put((K, np.empty((self.n, rhs), order="F")))
+            self.free.put((K, rhs_block(self.n, self.pN)))
 
     def _factor(self, K: np.ndarray, s: float) -> bool:
         _restore_lower(K, self.diagonal + s, source=self.G11)
@@ -212,9 +220,18 @@ class _Grid:
         """One strength on one worker."""
         K, W = self.free.get()
         try:
-            return self._error(s, [self._columns(K, W, range(self.pN))]) if self._factor(K, s) else None
+            return self.score(K, W, s)
         finally:
             self.free.put((K, W))
+
+    def score(self, K, W, s: float) -> float | None:
+        """One strength in the arrays ``K`` (``n × n`` at least, Fortran-ordered) and ``W``
+        (:func:`rhs_block`)."""
+        return self._error(s, [self._columns(K, W, range(self.pN))]) if self._factor(K, s) else None
+
+    def halves(self) -> tuple[range, range]:
+        """The right-hand sides of the two halves of a split strength (:meth:`split`)."""
+        return range(0, self.pN // 2), range(self.pN // 2, self.pN)
 
     def split(self, s: float, pool) -> float | None:
         """One strength on two workers: one factor, the right-hand sides in halves side by side (the odd strength
@@ -224,7 +241,7 @@ class _Grid:
         try:
             if not self._factor(K, s):
                 return None
-            first, second = range(0, self.pN // 2), range(self.pN // 2, self.pN)
+            first, second = self.halves()
             W2 = W if other is None or pool is None else other[1]
             if W2 is W:
                 return self._error(s, [self._columns(K, W, first), self._columns(K, W, second)])

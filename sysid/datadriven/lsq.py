@@ -10,6 +10,7 @@ from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
+from ._strength_folds import first_fold_hook
 from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
 
 __all__ = ["LsqPredictor"]
@@ -32,12 +33,26 @@ def _compact_kept_factor(total: "_GramFold | None", n_b: int) -> None:
     regressor rows): the factor's ``[Ct; L21]`` with ``G11`` above the diagonal, all the held-out terms read. The
     last columns (``G12`` above, ``L22``: 28 MB at past 100 / horizon 50, issue 14) are not held through the
     cross-validation; the final map assembles ``G12`` again (``gram._ridge_map_from_kept``: the same numbers, ``G``
-    being exactly symmetric; one assembly of ``n_b`` rows, 0.09 s of CPU there)."""
+    being exactly symmetric; one assembly of ``n_b`` rows, 0.09 s of CPU there).
+
+    The factor is the transpose of a C-ordered array, so its first ``n_b`` columns are that array's first ``n_b``
+    rows, the front of its memory: the array is cut there in place (``ndarray.resize``: a ``realloc``, which gives
+    the tail back without copying; 0.1-0.18 s of one core for the copy it replaces, issue 14), else copied."""
     F = _total_factor(total, n_b)  # None below TOTAL_FACTOR_ROWS
     if F is None or F is not total._factor_gram or F.shape[1] <= n_b:
         return
+    G = F.base if F.base is not None and F.base.flags.c_contiguous and F.base.flags.owndata else None
+    if G is not None and G.shape == F.shape[::-1] and np.shares_memory(G, F):
+        total._factor_gram = None
+        del F
+        try:
+            G.resize((n_b, G.shape[1]))  # refuses (ValueError) where another reference to the array exists
+            total._factor_gram = G.T
+            return
+        except ValueError:
+            F = G.T
     total._factor_gram = np.array(F[:, :n_b], order="F")
-    del F
+    del F, G
     release_freed_memory()
 
 
@@ -162,7 +177,11 @@ class LsqPredictor(_DirectPredictor):
             The input excites less than ``past_steps + horizon_steps + n_states``.
         """
         alphas = _check_strengths("alphas", self.alphas)
-        folds, weights = self._gather(session, alphas.size, keep_full=False)
+        # large folds: every fold's grid by strength as tasks of one pool, the first fold's rows assembled beside
+        # the condition check's (_strength_folds)
+        folds, weights = self._gather(session, alphas.size, keep_full=False,
+                                      early=first_fold_hook(self, session, alphas.size))
+        plan = getattr(folds, "first_fold", None)
         m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
         n_b = (m + p) * past + m * self.max_horizon_steps_
 
@@ -173,11 +192,17 @@ class LsqPredictor(_DirectPredictor):
 
         def score(train, val, w):
             if gram_route:  # one eigendecomposition per fold for the whole grid
-                return ridge_grid_errors(train, val, n_b, alphas, w, total)
+                errors = None if plan is None else plan.errors(val, alphas, w)
+                return errors if errors is not None else ridge_grid_errors(train, val, n_b, alphas, w, total)
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
-        alpha, table = self._select(folds, alphas, weights, score)
+        try:
+            alpha, table = self._select(folds, alphas, weights, score)
+        finally:
+            if plan is not None:
+                plan.stop()
+                folds.first_fold = plan = None
         total = _merge(folds, folds[0].n_rows)
         if gram_route:
             theta, scale = fitted_ridge_map(total, n_b, alpha)
