@@ -1,21 +1,24 @@
 """The SPC ridge grids of every large fold, one strength at a time (``_by_strength``), as tasks of one pool.
 
 Scored fold by fold, a fold's grid keeps both cores busy only while two of its strengths run: its training rows
-``[G11 G12]`` are assembled on one core before it (0.1-0.25 s at past 100 / horizon 50, the GIL held in part),
-and its odd strength's factor ran alone before its right-hand sides were split over both workers. Here every
-fold's strengths are tasks of one :class:`._task_pool.TaskPool` (two workers, one BLAS thread each), taken in the
-order of the folds, so the next fold's strengths fill a core the last ones of a fold leave idle:
+``[G11 G12]`` were assembled on one core before it (0.1-0.25 s at past 100 / horizon 50, the GIL held in part),
+its odd strength's factor ran alone before its right-hand sides were split over both workers, and the last
+strengths of a fold ended one worker before the other. Here every fold's strengths are tasks of one
+:class:`._task_pool.TaskPool` (two workers, one BLAS thread each), taken in the order of the folds, so the next
+fold's strengths fill a core the last ones of a fold leave idle:
 
-- the first fold's rows are assembled when the plan is made (``base._collect``'s ``early``: beside the total Gram's
-  assembly and its Cholesky factor), each next fold's while two of the previous fold's strengths are left;
-- a fold's odd strength is factored first (in the fold's own ``G11``), beside the fold's first paired strength,
-  and its two halves of right-hand sides come next (their arithmetic is that of ``_Grid.split``); the paired
-  strengths take the fold's ``G11`` when it is free, else one more ``n × n`` array shared by the folds.
+- folds' rows are assembled one at a time, two folds' held at most: the first fold's when the plan is made
+  (``base._collect``'s ``early``: beside the total Gram's assembly), the second's beside the total's Cholesky
+  factor, each next one's once a fold is scored; then the final map's rows (``gram.fitted_ridge_map``'s
+  ``rows``), beside the last fold's last strengths instead of after them on one core;
+- a fold's odd strength comes last: its factor, then its two halves of right-hand sides (the arithmetic of
+  ``_Grid.split``) on whichever workers are free, which evens out the two workers' ends; a strength is factored
+  in the fold's own ``G11`` when it is free, else in one more ``n × n`` array shared by the folds.
 
 Each strength is computed by the same calls on the same arrays as fold by fold (``_by_strength.strength_errors``),
-so the errors are the same, bit for bit. Memory: beside the total's factor, the rows of at most two folds at once
-(the next one's while a fold ends: 68 MB at past 100 / horizon 50), one ``n × n`` array and two blocks of
-right-hand sides.
+so the errors are the same, bit for bit, and so is the final map. Memory: beside the total's factor, the rows of
+two folds (or of a fold and the final map: 68 MB each at past 100 / horizon 50), one ``n × n`` array and two
+blocks of right-hand sides (measured there: peak 460 MB against 386 fold by fold).
 """
 
 from __future__ import annotations
@@ -41,6 +44,9 @@ __all__: list = []
 
 #: Worker threads (the machine's two cores; each one BLAS thread).
 WORKERS = 2
+#: Folds whose training rows are held at once (68 MB each at past 100 / horizon 50): the one being scored and the
+#: next, assembled beforehand.
+MAX_HELD = 2
 
 
 def wanted(total, n_b: int) -> bool:
@@ -76,7 +82,10 @@ class StrengthPlan:
         self._setup = None  # (F, base, alphas, weights, extra K, free W) once the strengths are given
         self._result: dict = {}
         self._failure: list = []
-        self._assemble(0, 0.0)
+        self._next, self._held, self._assembling = 0, 0, False  # next fold to assemble, folds' rows held
+        #: The total's first ``n_b`` rows (``gram.fitted_ridge_map``'s ``rows``), assembled at the end, or None.
+        self.final_rows = None
+        self._assemble()
 
     def _run(self, fn, *args) -> None:
         try:
@@ -84,16 +93,37 @@ class StrengthPlan:
         except BaseException as exc:  # noqa: BLE001 - raised again by errors()
             self._failure.append(exc)
 
-    def _assemble(self, k: int, priority: float) -> None:
-        if k < len(self.folds):
-            self.pool.submit(priority, self._run, self._rows_of, k)
+    def _assemble(self) -> None:
+        """The next fold's rows, one assembly at a time (they hold the GIL in part) and two folds' rows held at
+        most (memory), before any strength (so that they are there when the previous fold's strengths end)."""
+        with self._lock:
+            k = self._next
+            if self._assembling or self._held >= MAX_HELD or k > len(self.folds) or \
+                    (k == len(self.folds) and self._setup is None):
+                return
+            self._next, self._held, self._assembling = k + 1, self._held + 1, True
+        if k == len(self.folds):  # then the final map's rows, beside the last fold's odd strength (or last pair)
+            n_s = len(self._setup[2])
+            self.pool.submit((k - 1) * (n_s + 4) + n_s - n_s % 2 - 1.5, self._run, self._final_rows)
+        else:
+            self.pool.submit(-1.0, self._run, self._rows_of, k)
+
+    def _final_rows(self) -> None:
+        try:
+            self.final_rows = self.total.gram_rows(0, self.n_b, fortran=True)  # as gram._ridge_map_from_kept
+        finally:
+            self._assembling = False
 
     def _rows_of(self, k: int) -> None:
-        train = self.total.plus(self.folds[k], -1.0)  # as base._training: the total minus the fold
-        rows = train.gram_rows(0, self.n_b, fortran=True)
-        with self._lock:
-            self._rows[k] = (train, rows)
-            ready = self._setup is not None
+        try:
+            train = self.total.plus(self.folds[k], -1.0)  # as base._training: the total minus the fold
+            rows = train.gram_rows(0, self.n_b, fortran=True)
+            with self._lock:
+                self._rows[k] = (train, rows)
+                ready = self._setup is not None
+        finally:
+            self._assembling = False
+        self._assemble()
         if ready:
             self._submit(k)
 
@@ -115,11 +145,10 @@ class StrengthPlan:
         paired = len(strengths) - len(strengths) % 2
         state = {"grid": grid, "errors": [None] * len(strengths), "left": len(strengths)}
         first = k * (len(strengths) + 4)  # this fold's tasks before the next fold's
-        if paired < len(strengths):  # the odd strength first, in the fold's own array
-            self.pool.submit(first, self._run, self._odd, k, state, paired, strengths[paired], first)
         for j in range(paired):
-            self.pool.submit(first + 2 + j, self._run, self._whole, k, state, j, strengths[j])
-        self._assemble(k + 1, first + 2 + max(paired - 2, 0) - 0.5)  # while two of this fold's strengths are left
+            self.pool.submit(first + j, self._run, self._whole, k, state, j, strengths[j])
+        if paired < len(strengths):  # the odd strength last: its halves even out the two workers' ends
+            self.pool.submit(first + paired, self._run, self._odd, k, state, paired, strengths[paired], first)
 
     def _take(self, grid):
         try:
@@ -136,15 +165,15 @@ class StrengthPlan:
             self._setup[5].put(W)
         self._done(k, state, j, e)
 
-    def _odd(self, k: int, state: dict, j: int, s: float, priority: float) -> None:
+    def _odd(self, k: int, state: dict, j: int, s: float, first: float) -> None:
         grid = state["grid"]
-        K = grid.free.get()
+        K, home = self._take(grid)
         if not grid._factor(K, s):
-            grid.free.put(K)
+            home.put(K)
             return self._done(k, state, j, None)
-        parts = {"K": K, "left": 2}
-        for h, cols in enumerate(grid.halves()):
-            self.pool.submit(priority + 1, self._run, self._half, k, state, j, s, parts, h, cols)
+        parts = {"K": K, "home": home, "left": 2}
+        for h, cols in enumerate(grid.halves()):  # before any later task
+            self.pool.submit(first - 0.5, self._run, self._half, k, state, j, s, parts, h, cols)
 
     def _half(self, k: int, state: dict, j: int, s: float, parts: dict, h: int, cols: range) -> None:
         grid, W = state["grid"], self._setup[5].get()
@@ -157,7 +186,7 @@ class StrengthPlan:
             parts["left"] -= 1
             last = parts["left"] == 0
         if last:
-            grid.free.put(parts["K"])
+            parts["home"].put(parts["K"])
             self._done(k, state, j, grid._error(s, [parts[0], parts[1]]))
 
     def _done(self, k: int, state: dict, j: int, e) -> None:
@@ -170,6 +199,9 @@ class StrengthPlan:
             self._result[id(self.folds[k])] = None if any(v is None for v in errors) else np.asarray(errors)
             state.clear()  # the fold's rows and factor array
             release_freed_memory()
+            with self._lock:
+                self._held -= 1
+            self._assemble()
 
     def errors(self, val, alphas, weights):
         """Fold ``val``'s errors at ``alphas`` (``gram.ridge_grid_errors``' numbers), every fold scored at the

@@ -392,7 +392,7 @@ def _cholesky_solve(K: np.ndarray, G12: np.ndarray) -> np.ndarray:
     return sla.cho_solve((C, True), G12, check_finite=False).T
 
 
-def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float) -> np.ndarray:
+def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float, rows=None) -> np.ndarray:
     """:func:`ridge_map` of the total Gram rebuilt from ``_factor_gram`` (:func:`gram_condition_of`): its strict
     upper triangle holds ``G``'s, so ``G11``'s lower triangle is its transpose, ``G12 = F[:n_b, n_b:]`` and the
     diagonal comes from the sums: the same numbers as the assembled rows (``G`` is exactly symmetric)."""
@@ -404,8 +404,8 @@ def _ridge_map_from_kept(total: "_GramFold", n_b: int, strength: float) -> np.nd
         return _cholesky_solve(K, F[:n_b, n_b:])
     del F  # kept without its last columns (lsq._compact_kept_factor): G12 assembled again, the factor dropped first
     total.release()
-    return _cholesky_solve(K, total.gram_rows(0, n_b, fortran=True)[:, n_b:])
-
+    rows = total.gram_rows(0, n_b, fortran=True) if rows is None else rows  # (or assembled beforehand)
+    return _cholesky_solve(K, rows[:, n_b:])
 
 
 def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> np.ndarray:
@@ -421,8 +421,9 @@ def _lower_t_times(F: np.ndarray, n_b: int, X: np.ndarray, block: int = 256) -> 
     return X
 
 
-def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float) -> tuple[np.ndarray, float]:
-    """``(Θ, scale)``: :func:`ridge_map` of the whole data at ``alpha · scale``, ``scale = tr(G) / n_rows``.
+def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float, rows=None) -> tuple[np.ndarray, float]:
+    """``(Θ, scale)``: :func:`ridge_map` of the whole data at ``alpha · scale``, ``scale = tr(G) / n_rows``
+    (``rows``: the total's first ``n_b`` rows, Fortran-ordered, where they were assembled beforehand, or None).
 
     The trace comes from the diagonal of the sums (the same numbers as the assembled Gram's diagonal, in the
     same order: the same pairwise sum as ``np.trace``) and the Gram is the one the condition check kept with its
@@ -433,7 +434,7 @@ def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float) -> tuple[np.ndarr
     if n_b >= TOTAL_FACTOR_ROWS or total._factor_gram is not None:
         scale = float(total.gram_diagonal().sum()) / total.n_rows
         if total._factor_gram is not None:
-            theta = _ridge_map_from_kept(total, n_b, alpha * scale)
+            theta = _ridge_map_from_kept(total, n_b, alpha * scale, rows)
             total.release()
             return theta, scale
     total.release()  # memory: the condition check's factor is not needed for the map

@@ -197,15 +197,16 @@ class LsqPredictor(_DirectPredictor):
             s = _data_scale(train.factor)
             return [_validation_error(_lsq_map(train.factor, n_b, a * s), val.factor, w) for a in alphas]
 
+        rows = None  # the final map's rows, assembled by the plan where a worker would idle
         try:
             alpha, table = self._select(folds, alphas, weights, score)
         finally:
             if plan is not None:
                 plan.stop()
-                folds.first_fold = plan = None
+                rows, folds.first_fold, plan = plan.final_rows, None, None
         total = _merge(folds, folds[0].n_rows)
         if gram_route:
-            theta, scale = fitted_ridge_map(total, n_b, alpha)
+            theta, scale = fitted_ridge_map(total, n_b, alpha, rows)
         else:
             scale = _data_scale(total.factor)
             theta = _lsq_map(total.factor, n_b, alpha * scale)

@@ -44,8 +44,12 @@ def test_lsq_fits_through_the_plan_predict_bit_for_bit_as_fold_by_fold(monkeypat
     plans = []
     real = sf.StrengthPlan.errors
     monkeypatch.setattr(sf.StrengthPlan, "errors", lambda self, *a: plans.append(self) or real(self, *a))
+    given = []
+    real_map = gr._ridge_map_from_kept
+    monkeypatch.setattr(gr, "_ridge_map_from_kept", lambda *a: given.append(a[-1] is not None) or real_map(*a))
     new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
     assert len(plans) == 3 and len(set(map(id, plans))) == 1  # one plan scored the three folds
+    assert given == [True]  # and assembled the final map's rows
     monkeypatch.setattr(lsq, "first_fold_hook", lambda *a: None)
     old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
     assert new.alpha_ == old.alpha_
