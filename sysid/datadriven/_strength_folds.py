@@ -83,6 +83,7 @@ class StrengthPlan:
         self._result: dict = {}
         self._failure: list = []
         self._next, self._held, self._assembling = 0, 0, False  # next fold to assemble, folds' rows held
+        self._stopped = False
         #: The total's first ``n_b`` rows (``gram.fitted_ridge_map``'s ``rows``), assembled at the end, or None.
         self.final_rows = None
         self._assemble()
@@ -98,7 +99,7 @@ class StrengthPlan:
         most (memory), before any strength (so that they are there when the previous fold's strengths end)."""
         with self._lock:
             k = self._next
-            if self._assembling or self._held >= MAX_HELD or k > len(self.folds) or \
+            if self._stopped or self._assembling or self._held >= MAX_HELD or k > len(self.folds) or \
                     (k == len(self.folds) and self._setup is None):
                 return
             self._next, self._held, self._assembling = k + 1, self._held + 1, True
@@ -232,5 +233,7 @@ class StrengthPlan:
         return self._result.get(id(val))
 
     def stop(self) -> None:
-        """Wait for the tasks begun and end the threads (the plan is not used)."""
+        """Begin no other assembly, wait for the tasks begun and end the threads."""
+        with self._lock:
+            self._stopped = True
         self.pool.close()

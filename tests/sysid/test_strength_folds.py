@@ -65,3 +65,23 @@ def test_no_plan_where_the_eigen_route_or_too_few_folds_score_them(monkeypatch):
     assert not sf.wanted(gr.total_fold(fs[:1]), 41)  # one fold
     monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", True)  # mid-sized folds: two eigendecompositions side by side
     assert not sf.wanted(total, 41)
+
+
+def test_folds_whose_strengths_cannot_be_factored_go_back_to_the_caller(monkeypatch):
+    _by_strength_everywhere(monkeypatch)
+    fs, *_ = gr.collect_gram(_system(), [(0, 1000, 0), (1000, 2000, 1), (2000, 3000, 2)], 3, 2, 3, 5, 8)
+    total = gr.total_fold(fs)
+    gr.gram_condition_of(total, keep_gram=True)
+    monkeypatch.setattr(sf._Grid, "_factor", lambda *a: False)  # some G11 + sI not positive definite
+    plan = sf.StrengthPlan(total, 41)
+    assert [plan.errors(f, np.logspace(-8, 0, 9), np.ones(24)) for f in fs] == [None] * 3  # the caller's route
+
+
+def test_a_stopped_plan_assembles_nothing_more():
+    fs, *_ = gr.collect_gram(_system(), [(0, 1000, 0), (1000, 2000, 1), (2000, 3000, 2)], 3, 2, 3, 5, 8)
+    plan = sf.StrengthPlan(gr.total_fold(fs), 41)
+    plan.stop()  # (the Gram route refused: base._collect stops the plan)
+    begun = plan._next
+    plan._held = 0
+    plan._assemble()  # (as a fold's end would)
+    assert plan._next == begun <= 2
