@@ -24,7 +24,6 @@ blocks of right-hand sides (measured there: peak 460 MB against 386 fold by fold
 from __future__ import annotations
 
 import queue
-import sys
 import threading
 import weakref
 
@@ -35,10 +34,6 @@ from ._eigen_folds import fits_in_memory
 from .._lapack_nogil import eigh_nogil_available
 from ._task_pool import TaskPool
 from .gram import _total_factor, release_freed_memory
-
-#: ``gram`` itself, whose route settings are read when used (tests set them; ``from . import gram`` would import
-#: the package, which imports this module through ``lsq``).
-_gram = sys.modules[_total_factor.__module__]
 
 __all__: list = []
 
@@ -52,10 +47,13 @@ MAX_HELD = 2
 def wanted(total, n_b: int) -> bool:
     """Whether ``gram.ridge_grid_errors`` would score the folds of ``total`` by strength (large folds, scored from
     the total's factor) and the calls release the GIL."""
+    # gram's route settings as they are now (tests change them), not as they were when this module was imported
+    from .gram import BY_STRENGTH, FOLDS_SIDE_BY_SIDE, STRENGTH_WORKERS, TOTAL_FACTOR_ROWS
+
     folds = getattr(total, "parts", ())
-    eigen = _gram.FOLDS_SIDE_BY_SIDE and eigh_nogil_available() and fits_in_memory(n_b, total.n_rows)
-    return (len(folds) >= 2 and n_b >= _gram.TOTAL_FACTOR_ROWS and _gram.BY_STRENGTH and nogil_available()
-            and _gram.STRENGTH_WORKERS > 1 and not eigen and 0 < n_b < total.n_rows)
+    eigen = FOLDS_SIDE_BY_SIDE and eigh_nogil_available() and fits_in_memory(n_b, total.n_rows)
+    return (len(folds) >= 2 and n_b >= TOTAL_FACTOR_ROWS and BY_STRENGTH and nogil_available()
+            and STRENGTH_WORKERS > 1 and not eigen and 0 < n_b < total.n_rows)
 
 
 def first_fold_hook(predictor, session, n_candidates: int):
