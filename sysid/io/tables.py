@@ -281,8 +281,8 @@ def _time_grid(t: np.ndarray, rate_text, path: Path, col: str) -> tuple[float, f
     if off.size:
         i = int(off[0])
         raise FileFormatError(
-            f"{path}: time stamps are not on a uniform grid at {rate:g} Hz: row {i} is at {float(t[i])!r} s, the grid "
-            f"puts it at {float(grid[i])!r} s. Every sample must be a row: mark missing samples invalid (valid = 0) "
+            f"{path}: time stamps are not on a uniform grid at {rate:g} Hz: {_data_row(i)} is at "
+            f"{float(t[i])!r} s, the grid puts it at {float(grid[i])!r} s. Every sample must be a row: mark missing samples invalid (valid = 0) "
             "instead of dropping rows, or resample first."
         )
     return rate, float(t[0])
@@ -299,8 +299,9 @@ def _trials_from_labels(labels: np.ndarray, path: Path) -> np.ndarray:
     for a, b, label in runs:
         if label in seen:
             raise FileFormatError(
-                f"{path}: trial {label} appears in two separate runs of rows (starting at rows {seen[label]} and "
-                f"{a}); the rows of one trial must be contiguous. Give each trial its own label."
+                f"{path}: trial {label} appears in two separate runs of rows (starting at data rows {seen[label] + 1} "
+                f"and {a + 1}, counted from 1 after the header); the rows of one trial must be contiguous. Give each "
+                "trial its own label."
             )
         seen[label] = a
     if not runs:
@@ -362,7 +363,8 @@ def _conditions_from_column(column, trials: np.ndarray, stored, path: Path) -> l
         if len(found) != 1 or (text[a:b] == "").any():
             what = f"labels {found}" if len(found) > 1 else "empty cells" if found else "no label"
             raise FileFormatError(f"{path}: the 'condition' column must hold one label on every row of a trial; "
-                                  f"trial {i} (rows {int(a)}-{int(b) - 1}) has {what}. Give each row of the trial "
+                                  f"trial {i} (data rows {int(a) + 1}-{int(b)}, counted from 1 after the header) "
+                                  f"has {what}. Give each row of the trial "
                                   "its trial's condition.")
         labels.append(found[0])
     if stored is not None and [str(c) for c in stored] != labels:

@@ -209,9 +209,11 @@ BAD_TABLES = {
     "empty_unit": ("time [s] @ 10 Hz,trial,out:y []\n0,0,1\n", r"needs a channel name and a unit"),
     "duplicate": ("time [s] @ 10 Hz,trial,out:y [mV],out:y [mV]\n0,0,1,1\n", r"must be unique; found duplicates"),
     "not_uniform": ("time [s],trial,out:y [mV]\n0,0,1\n0.1,0,1\n0.3,0,1\n0.4,0,1\n", r"not on a uniform grid"),
-    "header_rate_mismatch": ("time [s] @ 20 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,1\n", r"row 1 is at 0.1 s"),
+    "header_rate_mismatch": ("time [s] @ 20 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,1\n",
+                             r"data row 2 \(counted from 1 after the header\) is at 0.1 s"),
     "one_row_no_rate": ("time [s],trial,out:y [mV]\n0,0,1\n", r"cannot infer the sampling rate"),
-    "split_trial": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,1,1\n0.2,0,1\n", r"trial 0 appears in two"),
+    "split_trial": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,1,1\n0.2,0,1\n",
+                    r"trial 0 appears in two separate runs of rows \(starting at data rows 1 and 3"),
     "fractional_trial": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0.5,1\n", r"must hold whole numbers"),
     "no_trial_rows": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,-1,1\n", r"no row belongs to a trial"),
     "bad_valid": ("time [s] @ 10 Hz,trial,out:y [mV],valid\n0,0,1,maybe\n", r"'valid' column must hold 1/0"),
@@ -222,9 +224,10 @@ BAD_TABLES = {
     "header_only": ("time [s] @ 10 Hz,trial,out:y [mV]\n", r"holds a header but no rows"),
     "zero_rate": ("time [s] @ 0 Hz,trial,out:y [mV]\n0,0,1\n", r"sampling rate must be positive"),
     "two_conditions_in_a_trial": ("time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n0.1,0,on,1\n",
-                                  r"trial 0 \(rows 0-1\) has labels \['off', 'on'\]"),
+                                  r"trial 0 \(data rows 1-2, counted from 1 after the header\) has labels "
+                                  r"\['off', 'on'\]"),
     "unlabelled_trial_row": ("time [s] @ 10 Hz,trial,condition,out:y [mV]\n0,0,off,1\n0.1,0,,1\n",
-                             r"trial 0 \(rows 0-1\) has empty cells"),
+                             r"trial 0 \(data rows 1-2, counted from 1 after the header\) has empty cells"),
 }
 
 
