@@ -386,13 +386,6 @@ def _lagged_diagonal(sums: _LagSums) -> np.ndarray:
     return d.reshape(-1)
 
 
-def _lagged_gram_rows(sums: _LagSums, index: np.ndarray, r0: int, r1: int) -> np.ndarray:
-    """Rows ``[r0, r1)`` of the permuted Gram :func:`_lagged_gram` ``(sums, index)`` after ``(W + Wᵀ)/2``, without
-    the rest: the same numbers (the same-lag blocks are averaged with their transposes, as the symmetrised whole
-    would be; the others are written as exact transposes), in ``(r1 − r0) × (L + 1) c`` memory."""
-    return _lagged_gram(sums, index, rows=(r0, r1), average_same_lag=True)
-
-
 def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
     """Worker task: the chunk's sums and products, and the edge windows of its piece when it starts or ends one."""
     S, X = _chunk_products(B, n_lags)

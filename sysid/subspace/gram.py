@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._lagged import _lagged_diagonal, _lagged_gram, _lagged_gram_rows, _stream_sums
+from .._lagged import _lagged_diagonal, _lagged_gram, _stream_sums
 from ..output_mask import output_valid_segments
 
 
@@ -94,27 +94,19 @@ def _lagged_index(layout: _Layout, order: np.ndarray | None = None) -> np.ndarra
     return index.reshape(w, c)
 
 
-def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows: tuple | None = None):
+def _gram_from_sums(acc, layout: _Layout, order: np.ndarray | None = None, rows: tuple | None = None,
+                    out: np.ndarray | None = None):
     """The Hankel Gram ``Σ_t z_t z_tᵀ`` of one set of lag sums, symmetric, with its rows in time-major Hankel
     order or, given ``order`` (Hankel rows, e.g. :meth:`_Layout.factor_order`), in that order. Assembled in place:
-    no second Gram-sized copy. With ``rows = (r0, r1)`` only those rows (the same numbers).
+    no second Gram-sized copy. With ``rows = (r0, r1)`` only those rows (the same numbers); with ``out`` (a flat
+    float64 buffer) written into its front and returned as a C-ordered view of it: a buffer already touched is
+    reused instead of a fresh Gram-sized array, whose first touch costs page faults.
 
     Symmetric as ``(W + Wᵀ) / 2`` of the assembled ``W`` would be, bit for bit, without that pass over the Gram:
     the blocks of different lags are written as exact transposes, and the same-lag blocks are averaged with their
     transposes before they are written (``average_same_lag``; IEEE addition commutes).
     """
-    index = _lagged_index(layout, order)
-    if rows is not None:
-        return _lagged_gram_rows(acc, index, *rows)
-    return _lagged_gram(acc, index, average_same_lag=True)
-
-
-def _gram_into(buffer: np.ndarray, acc, layout: _Layout, order: np.ndarray, rows: tuple | None = None):
-    """:func:`_gram_from_sums` ``(acc, layout, order, rows)``, the same numbers, written into the front of the flat
-    float64 ``buffer`` (a C-ordered view of it is returned): a buffer already touched is reused instead of a fresh
-    Gram-sized array, whose first touch costs page faults."""
-    index = _lagged_index(layout, order)
-    return _lagged_gram(acc, index, rows=rows, average_same_lag=True, out=buffer)
+    return _lagged_gram(acc, _lagged_index(layout, order), rows=rows, average_same_lag=True, out=out)
 
 
 def _gram_diagonal(acc, layout: _Layout) -> np.ndarray:

@@ -22,7 +22,7 @@ from ..exceptions import ExcitationError, SessionError
 from ..output_mask import blanking_note
 from ._buffers import release_tail
 from .factor import factor_projection
-from .gram import _Layout, _gram_diagonal, _gram_from_sums, _gram_into, _hankel_sums, _partition
+from .gram import _Layout, _gram_diagonal, _gram_from_sums, _hankel_sums, _partition
 from .heldout import _CheckCov
 from .projection import _CHOLESKY_FROM, _Projection, _RTOL, _cond_text
 
@@ -130,7 +130,7 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
 def _assembled(acc, L: _Layout, order, full):
     """``(G, buffer)``: the scaled Gram of ``acc`` in the factor order, assembled in a new Gram-sized ``buffer``."""
     buffer = np.empty(L.nz * L.nz)
-    return scaled(_gram_into(buffer, acc, L, order), int(acc.n), full), buffer
+    return scaled(_gram_from_sums(acc, L, order, out=buffer), int(acc.n), full), buffer
 
 
 def _projection(assembled, L: _Layout, weighting: str):
@@ -150,7 +150,7 @@ def _fit_pipeline(acc_fit, acc_check, L: _Layout, order, full, scale, weighting:
         return None
     n, b, e = int(acc_check.n), L.m * L.f, L.m * L.f + len(L.P)
     proj.decompose(buffer, e * L.nz)  # (the pages the held-out rows will not use are handed back first)
-    rows = scaled(_gram_into(buffer, acc_check, L, order, rows=(0, e)), n, full, full[:e])  # [Uf; P] rows
+    rows = scaled(_gram_from_sums(acc_check, L, order, (0, e), buffer), n, full, full[:e])  # [Uf; P] rows
     release_tail(buffer, rows.size)  # (held as long as the held-out blocks: only their rows stay resident)
     diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
     return proj, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
