@@ -90,6 +90,7 @@ def test_live_realtime_asks_the_system_and_reports_what_it_granted_or_refused(fi
     assert all(str(v).startswith(("granted", "refused")) for k, v in asked.items() if k != "requested")
     line = next(ln for ln in printed.splitlines() if ln.startswith("real time: "))
     assert "sched fifo" in line and "memory locked" in line
+    # 30 steps: --duration-s 0.6 at RATE = 50 Hz
     assert summary["n_steps_run"] == 30 and summary["unchecked_inputs"] == 0
     # without the flag nothing is asked
     main(_args(files, "run_plain", "--plant", str(files / "plant.h5")))

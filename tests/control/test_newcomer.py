@@ -193,7 +193,7 @@ def test_cells_marked_n_a_are_masked_like_empty_ones(files, tmp_path):
     # documentation, read_csv, na_values), and the reader masks those rows as it does empty cells.
     frame = pd.read_csv(files["csv"], comment="#", keep_default_na=False, dtype=str)
     col = [c for c in frame.columns if c.startswith("out:ch_03")][0]
-    frame.loc[1200:1249, col] = "n/a"
+    frame.loc[1200:1249, col] = "n/a"  # 50 samples from row 1200: t = 1.2 s at RATE = 1000 Hz, as the empty gap
     path = tmp_path / "session_na.csv"
     frame.to_csv(path, index=False)
     s = load_session(path)

@@ -1,6 +1,7 @@
 """The projection predictor's closed form from the total's factor, GIL-free, computed beside the folds
-(``datadriven._early_theta``), with the plan gaps from it, against ``kkt._projection_closed_form`` (SciPy's f2py LAPACK ``trcon``/``trtrs``,
-the same routines: the reference, bit for bit), and the predictor fitted with and without it."""
+(``datadriven._early_theta``), with the plan gaps from it, against ``kkt._projection_closed_form`` (SciPy's f2py
+LAPACK ``trcon``/``trtrs``, the same routines: the reference, bit for bit), and the predictor fitted with and
+without it (an internal equivalence: the fit of before, bit for bit)."""
 
 from __future__ import annotations
 
@@ -15,17 +16,20 @@ from stimsteer.sysid.datadriven import kkt
 from stimsteer.sysid.datadriven.hankel_predictor import HankelBlocks, HankelPredictor
 
 
+# (m, p, past, N): chosen for speed, one input and several; n = 150 and 133 rows
 @pytest.mark.parametrize("sizes", [(1, 2, 30, 20), (3, 4, 12, 7)])
 def test_theta_from_the_factor_equals_the_closed_form_bit_for_bit(sizes):
     m, p, past, N = sizes
     n = (m + p) * (past + N)
-    X = np.random.default_rng(n).standard_normal((n, n + 50))
+    X = np.random.default_rng(n).standard_normal((n, n + 50))  # 50 more columns than rows: X Xᵀ positive definite
     F = np.asfortranarray(sla.cholesky(X @ X.T, lower=True))
     blocks = HankelBlocks.from_matrix(np.ascontiguousarray(F), m, p, past, N, True)
+    # limit 1e8: the package's GRAM_CONDITION_LIMIT (gram.py), met by these well-conditioned random factors
     n_b, theta = kkt._projection_closed_form(blocks, 1e8, make_projector=False)
     got = et.projection_theta(F, n_b, 1e8)
     np.testing.assert_array_equal(got, theta)
     assert got.flags.c_contiguous == theta.flags.c_contiguous
+    # limit 1.0: every condition number is >= 1 (common practice, no source), so a random D1 is refused
     assert et.projection_theta(F, n_b, 1.0) is None  # refused as the closed form refuses it
     assert kkt._projection_closed_form(blocks, 1.0, make_projector=False) == (None, None)
 
@@ -33,14 +37,14 @@ def test_theta_from_the_factor_equals_the_closed_form_bit_for_bit(sizes):
 def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch):
     from tests.sysid.test_hankel_folds import _session
 
-    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)  # 1 row: the small test session takes the large fits' routes
     monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
     calls = []
     real = et.projection_theta
     monkeypatch.setattr(et, "projection_theta", lambda *a: calls.append(1) or real(*a))
     gaps = HankelPredictor._gaps_from_factor
     monkeypatch.setattr(HankelPredictor, "_gaps_from_factor", lambda *a, **k: calls.append(2) or gaps(*a, **k))
-    new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
+    new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())  # past 5, horizon 4: chosen for speed
     assert calls == [1, 2] and new._theta_early is None and new._gaps_early is None
     monkeypatch.setattr(et, "available", lambda: False)
     old = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
@@ -48,6 +52,7 @@ def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch
     np.testing.assert_array_equal(new.cv_table_.to_numpy(float), old.cv_table_.to_numpy(float))  # plan gaps too
     np.testing.assert_array_equal(new._map_cache, old._map_cache)
     rng = np.random.default_rng(0)
+    # 4 windows of past 5 (1 input, 2 outputs) and horizon 4: the fitted sizes of _session
     windows = rng.standard_normal((4, 5, 1)), rng.standard_normal((4, 5, 2)), rng.standard_normal((4, 4, 1))
     np.testing.assert_array_equal(new.predict_many(*windows), old.predict_many(*windows))
     assert new.lambda_g_ == old.lambda_g_

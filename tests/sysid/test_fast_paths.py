@@ -48,16 +48,17 @@ def test_short_lagged_gram_equals_the_strided_route_bit_for_bit(monkeypatch, n_l
 @pytest.mark.parametrize("fortran", [False, True])
 def test_lagged_gram_written_into_a_buffer_is_the_fresh_one_bit_for_bit(monkeypatch, small, fortran):
     # the same numbers and layout whether the Gram is a fresh array or the front of a buffer already used
+    # (reference: the fresh array of the same function, an internal equivalence, bit for bit)
     if not small:
-        monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)
+        monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)  # 0: the strided route even for these short vectors
     rng = np.random.default_rng(7)
-    n_lags, c = 5, 4
+    n_lags, c = 5, 4  # chosen for speed: 24 lagged coordinates
     sums = _sums(rng, n_lags, c)
     N = (n_lags + 1) * c
     index = rng.permutation(N).reshape(n_lags + 1, c)
-    for rows in (None, (3, 17)):
+    for rows in (None, (3, 17)):  # all rows, and a block not starting at 0 (any inner block)
         fresh = _lagged._lagged_gram(sums, index, rows, True, fortran)
-        buffer = np.full(N * N + 5, np.nan)
+        buffer = np.full(N * N + 5, np.nan)  # 5 more than the Gram: only its front used; NaN shows any unwritten
         got = _lagged._lagged_gram(sums, index, rows, True, fortran, out=buffer)
         assert np.array_equal(got, fresh) and np.shares_memory(got, buffer)
         assert got.flags.f_contiguous == fresh.flags.f_contiguous and got.flags.c_contiguous == fresh.flags.c_contiguous

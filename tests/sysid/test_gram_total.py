@@ -140,7 +140,9 @@ def test_predictors_fitted_through_the_total_factor_predict_as_before(cls, monke
 
 
 def _grid_case(folds, k: int):
-    """Fold ``k``'s training Gram, its validation fold, the output weights, nine strengths and the constant term."""
+    """Fold ``k``'s training Gram, its validation fold, the output weights, nine strengths and the constant term
+    (18 weights: the fixture's ``pN`` outputs; strengths 1e-8 to 1 times the mean diagonal: a grid of the kind the
+    fit scores, chosen to span well- and strongly-regularised systems)."""
     fs, total, n_b = folds
     val = fs[k]
     G = total.plus(val, -1.0).gram
@@ -151,6 +153,7 @@ def _grid_case(folds, k: int):
 
 def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_arrays(folds):
     G, val, w, s, c0, total, n_b = _grid_case(folds, 1)
+    # reference: the definition of the held-out error below; one worker against two: an internal equivalence
     rows = np.asfortranarray(G[:n_b])  # [G11 G12], Fortran-ordered (worked on in place)
     one = bs.strength_errors(rows, total._factor, s, c0, w, workers=1)  # one array reused 9 times
     two = bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, s, c0, w, workers=2)
@@ -163,6 +166,7 @@ def test_strengths_scored_side_by_side_equal_one_at_a_time_and_reuse_their_array
         assert one[k] == pytest.approx(float(w ** 2 @ np.diagonal(R)), rel=1e-9)
     np.testing.assert_array_equal(rows[:, n_b:], G[:n_b, n_b:])  # G12 not modified
     np.testing.assert_array_equal(np.triu(rows[:, :n_b], 1), np.triu(G[:n_b, :n_b], 1))  # nor G11 above the diagonal
+    # strength -1e9: far below minus the largest eigenvalue of G11, so G11 + sI is not positive definite
     assert bs.strength_errors(np.asfortranarray(G[:n_b]), total._factor, [-1e9], c0, w) is None  # not PD
 
 
@@ -186,12 +190,12 @@ def test_the_strength_grid_adds_one_matrix_and_blocks_of_right_hand_sides(monkey
     import tracemalloc
 
     rng = np.random.default_rng(0)
-    n_b, pN = 800, 400
-    X = rng.standard_normal((n_b + pN, 3 * (n_b + pN)))
+    n_b, pN = 800, 400  # chosen large enough that the arrays' sizes dominate tracemalloc's small objects
+    X = rng.standard_normal((n_b + pN, 3 * (n_b + pN)))  # 3 times more columns than rows: G positive definite
     G = X @ X.T
     F = np.linalg.cholesky(G).copy(order="F")
     Gt = np.asfortranarray(0.7 * G[:n_b])  # a training Gram's rows (any positive definite G11)
-    monkeypatch.setattr(bs, "RHS_BLOCK", 32)
+    monkeypatch.setattr(bs, "RHS_BLOCK", 32)  # 32 of the 400 right-hand sides: several blocks, small ones
     w, s = np.linspace(0.5, 2.0, pN), np.trace(G) / G.shape[0] * np.logspace(-8, 0, 9)
     tracemalloc.start()
     try:
@@ -200,6 +204,8 @@ def test_the_strength_grid_adds_one_matrix_and_blocks_of_right_hand_sides(monkey
     finally:
         tracemalloc.stop()
     assert errors is not None
+    # the bound of the docstring in bytes (8 per float64): per worker a 256-column triangle's values and two index
+    # arrays (3 × 256·255/2) and n_b × 64 of L21ᵀ Ω; 65536: 64 kB for small Python objects (the author's margin)
     per_worker = 8 * (3 * 256 * 255 // 2 + n_b * 64)
     assert peak <= 8 * max(n_b * n_b + 2 * n_b * 32, 2 * n_b * pN) + 2 * per_worker + 65536
 
@@ -436,7 +442,7 @@ def test_rows_assembled_fortran_ordered_equal_the_rows(folds, small, monkeypatch
         monkeypatch.setattr(_lagged, "_SMALL_ASSEMBLY", 0)
     fs, total, n_b = folds
     train = total.plus(fs[1], -1.0)
-    for r0, r1 in ((0, n_b), (3, 17)):
+    for r0, r1 in ((0, n_b), (3, 17)):  # the grid's rows, and an inner block not starting at 0
         rows = train.gram_rows(r0, r1, fortran=True)
         assert rows.flags.f_contiguous
         np.testing.assert_array_equal(rows, train.gram_rows(r0, r1))
@@ -449,14 +455,14 @@ def test_spc_fit_holding_only_the_factor_columns_it_reads_predicts_bit_for_bit(m
     same map, table and predictions, bit for bit, as with the whole factor kept (reference: that fit)."""
     from stimsteer.sysid.datadriven import lsq
 
-    s, P, N = _system(), 5, 8
-    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    s, P, N = _system(), 5, 8  # past 5, horizon 8: chosen for speed
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)  # 1 row: the small session takes the large fits' route
     seen = []
     real = gr.ridge_grid_errors
     monkeypatch.setattr(lsq, "ridge_grid_errors", lambda *a: seen.append(a[-1]._factor_gram.shape) or real(*a))
     new = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
-    n_b, n = 5 * P + 2 * N, 5 * (P + N)
-    assert seen == [(n, n_b)] * 3  # the compact factor reached every fold
+    n_b, n = 5 * P + 2 * N, 5 * (P + N)  # 2 inputs + 3 outputs in the past, 2 inputs in the future; all 5 in both
+    assert seen == [(n, n_b)] * 3  # the compact factor reached every fold (3: n_splits' default)
     monkeypatch.setattr(lsq, "_compact_kept_factor", lambda *a: None)
     old = LsqPredictor(past_steps=P, horizon_steps=N).fit(s)
     np.testing.assert_array_equal(np.hstack([new.Kp_, new.Kf_]), np.hstack([old.Kp_, old.Kf_]))

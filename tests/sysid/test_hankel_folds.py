@@ -118,7 +118,7 @@ def test_row_blocks_made_in_the_factors_memory_and_the_projector_equal_their_cop
     from stimsteer.sysid.datadriven import kkt
 
     rng = np.random.default_rng(1)
-    n = 700
+    n = 700  # more than two 256-column tiles, not a multiple of 256: whole and partial tiles
     F = np.asfortranarray(np.tril(rng.standard_normal((n, n))))
     want = np.ascontiguousarray(F)
     tracemalloc.start()
@@ -130,5 +130,5 @@ def test_row_blocks_made_in_the_factors_memory_and_the_projector_equal_their_cop
     assert got.flags.c_contiguous and np.shares_memory(got, F)
     np.testing.assert_array_equal(got, want)
     assert peak <= 2 * 8 * 256 * 256 + 65536  # two 256 × 256 float64 tiles, plus 64 KiB for small Python objects
-    d = np.r_[np.zeros(40), np.ones(n - 40)]
+    d = np.r_[np.zeros(40), np.ones(n - 40)]  # n_b = 40: any leading block (chosen)
     np.testing.assert_array_equal(kkt._coordinate_projector(n, 40), np.diag(d))

@@ -14,9 +14,9 @@ from stimsteer.sysid.datadriven import gram as gr
 
 
 @pytest.mark.parametrize("clean", [True, False])
-@pytest.mark.parametrize("n", [7, 300, 600])
+@pytest.mark.parametrize("n", [7, 300, 600])  # a tiny matrix and two above LAPACK's usual block of 64 (from memory)
 def test_potrf_lower_equals_scipys_dpotrf_bit_for_bit(n, clean):
-    X = np.random.default_rng(n).standard_normal((n, n + 40))
+    X = np.random.default_rng(n).standard_normal((n, n + 40))  # 40 more columns than rows: X Xᵀ positive definite
     G = X @ X.T
     ref, info_ref = sla.lapack.dpotrf(G.copy().T, lower=1, overwrite_a=0, clean=1 if clean else 0)
     F, info = nc.potrf_lower(G, clean=clean)
@@ -28,16 +28,18 @@ def test_potrf_lower_equals_scipys_dpotrf_bit_for_bit(n, clean):
 def test_potrf_lower_reports_a_matrix_that_is_not_positive_definite():
     G = np.diag([1.0, -1.0, 2.0])
     _ref, info_ref = sla.lapack.dpotrf(G.copy().T, lower=1)
+    # 2: LAPACK's info, the order of the first leading minor not positive (LAPACK Users' Guide, dpotrf)
     assert nc.potrf_lower(G, clean=True)[1] == info_ref == 2
 
 
 def test_the_first_fold_begun_before_the_check_gives_the_same_errors(monkeypatch):
+    # reference: the same fold errors with the first fold begun after the check (an internal equivalence)
     from tests.sysid.test_hankel_folds import _session
 
-    m, p, past, horizon = 1, 2, 5, 4
+    m, p, past, horizon = 1, 2, 5, 4  # the sizes and pieces of test_hankel_folds.folds_setup (chosen for speed)
     pieces = [(0, 600, 0), (600, 1200, 1), (1200, 1800, 2), (1800, 2400, 0)]
-    n_b, w = (m + p) * past + m * horizon, np.linspace(0.5, 2.0, 8)
-    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    n_b, w = (m + p) * past + m * horizon, np.linspace(0.5, 2.0, 8)  # 8 weights: p · horizon outputs
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)  # 1 row: the small session takes the large folds' route
     out = []
     for early in (False, True):
         fs, *_ = gr.collect_gram(_session(), pieces, 3, m, p, past, horizon)

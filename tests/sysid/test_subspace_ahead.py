@@ -27,12 +27,12 @@ _AHEAD = SubspaceId._ahead
 
 
 def _fit(monkeypatch, mode, **kw):
-    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)  # the factor route at this small size
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)  # 0: the factor route at this small size
     decompose = factor._FactorProjection.decompose
 
     def slow(self, *args):  # all data's SVD (on its own thread) still runs when the scores start: the scoring
         if "svd-all" in threading.current_thread().name:  # ahead is taken
-            time.sleep(0.5)
+            time.sleep(0.5)  # chosen: long beside the scoring of this small session (not measured)
         decompose(self, *args)
 
     monkeypatch.setattr(factor._FactorProjection, "decompose", slow)
@@ -47,10 +47,12 @@ def _fit(monkeypatch, mode, **kw):
         monkeypatch.setattr(SubspaceId, "_ahead", after)
     elif mode == "mismatch":  # all data as if supporting fewer orders: what was scored ahead is dropped
         monkeypatch.setattr(SubspaceId, "_ahead", lambda self, *a: (_AHEAD(self, *a)[0], -1))
+    # past 6 / future 5, noise 0.3: the sizes of the factor tests' sessions (chosen for speed)
     est = SubspaceId(past_steps=6, future_steps=5, **kw).fit(_session(noise=0.3, seed=4))
     return est, calls
 
 
+# the default, another weighting with a direct term, and a capped order (3: the simulated system's order)
 @pytest.mark.parametrize("kw", [{}, {"weighting": "cva", "feedthrough": True}, {"max_order": 3}])
 def test_scoring_ahead_of_the_svd_changes_no_number(monkeypatch, kw):
     with monkeypatch.context() as mp:
@@ -63,5 +65,5 @@ def test_scoring_ahead_of_the_svd_changes_no_number(monkeypatch, kw):
         assert np.array_equal(est.singular_values_, ref.singular_values_)
         for name in ("A", "B", "C", "D", "K", "innovation_cov"):
             assert np.array_equal(getattr(est.model_, name), getattr(ref.model_, name)), (mode, name)
-        # ahead: every round scored once (before the SVD ended); mismatch: scored ahead, then all again
+        # ahead: every round scored once (before the SVD ended); mismatch: scored ahead, then all again (hence 2 ×)
         assert len(calls) == (len(ref_calls) if mode == "ahead" else 2 * len(ref_calls))

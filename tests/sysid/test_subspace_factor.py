@@ -89,7 +89,7 @@ def test_cholesky_in_place_equals_scipys_wrappers_bit_for_bit():
     import scipy.linalg as sla
 
     rng = np.random.default_rng(5)
-    Z = rng.standard_normal((900, 700))
+    Z = rng.standard_normal((900, 700))  # 900 samples > 700 columns: a positive definite covariance
     S = Z.T @ Z / 900
     ref = S.copy()
     U, info = sla.lapack.dpotrf(ref.T, lower=0, clean=1, overwrite_a=1)
@@ -98,7 +98,7 @@ def test_cholesky_in_place_equals_scipys_wrappers_bit_for_bit():
     assert factor.cholesky_in_place(work)
     assert np.array_equal(work, ref)
     rcond = sla.lapack.dpocon(ref.T, factor._one_norm(S), uplo="U")[0]
-    assert factor.pocon(work.T, factor._one_norm(S), uplo="U") == rcond
+    assert factor.pocon(work.T, factor._one_norm(S), uplo="U") == rcond  # exact: the same dpocon call
 
 
 def test_blocked_triangular_solve_equals_a_direct_solve():

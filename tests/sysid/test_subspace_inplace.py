@@ -16,7 +16,7 @@ from stimsteer.sysid.exceptions import ExcitationError
 from stimsteer.sysid.subspace import gram, markov, projection, riccati
 
 
-def _projection(past, future, m, p, T=3000, seed=0):
+def _projection(past, future, m, p, T=3000, seed=0):  # T = 3000 samples: a full-rank covariance (chosen)
     rng = np.random.default_rng(seed)
     L = gram._Layout(past, future, m, p)
     z = rng.standard_normal((T, L.nz))
@@ -39,6 +39,7 @@ def _former_normal_equations(h, Q, S_uu, D_uu, target, n, m, weights):
 
 
 @pytest.mark.parametrize("feedthrough", [False, True])
+# (past, future, m, p): chosen small for speed, with fewer and more inputs than outputs
 @pytest.mark.parametrize("shape", [(4, 6, 2, 3), (2, 3, 4, 2), (3, 5, 3, 4)])
 def test_fortran_ordered_equations_hold_the_former_numbers_bit_for_bit(feedthrough, shape):
     past, future, m, p = shape
@@ -46,8 +47,8 @@ def test_fortran_ordered_equations_hold_the_former_numbers_bit_for_bit(feedthrou
     L = proj.layout
     (S_uu, S_yu), (Sc_uu, Sc_yu) = proj.future_cov, proj.given_past
     weights = markov._shift_weights(S_uu.reshape(L.f, m, L.f, m))
-    for n in (1, 3):
-        A, C = 0.3 * rng.standard_normal((n, n)), rng.standard_normal((p, n))
+    for n in (1, 3):  # one state and several (chosen)
+        A, C = 0.3 * rng.standard_normal((n, n)), rng.standard_normal((p, n))  # 0.3: a small, typically stable A
         Q = np.linalg.qr(proj.gamma(n))[0]
         h = markov.pattern_blocks(A, C, L.f, feedthrough)
         target = S_yu + Q @ (Q.T @ (Sc_yu - S_yu))
@@ -57,7 +58,7 @@ def test_fortran_ordered_equations_hold_the_former_numbers_bit_for_bit(feedthrou
 
 
 def test_one_norm_is_the_same_for_every_memory_order():
-    M = np.random.default_rng(1).standard_normal((37, 37))
+    M = np.random.default_rng(1).standard_normal((37, 37))  # 37 and its 20 × 20 block: arbitrary sizes (chosen)
     ref = np.linalg.norm(M, 1)  # NumPy: largest absolute column sum
     F = np.asfortranarray(M)
     for view in (M, F, M[:20, :20], F[:20, :20]):
@@ -67,9 +68,9 @@ def test_one_norm_is_the_same_for_every_memory_order():
 
 @pytest.mark.parametrize("settings", [(False, True), (True,), (False,)])
 def test_candidate_b_d_equal_scipy_on_a_copy_bit_for_bit(settings):
-    proj, rng = _projection(3, 5, 3, 4)
+    proj, rng = _projection(3, 5, 3, 4)  # sizes chosen for speed
     L = proj.layout
-    n = 3
+    n = 3  # chosen: several states
     gamma = proj.gamma(n)
     A, C = projection._a_c(gamma, L.p)
     Q = np.linalg.qr(gamma)[0]
@@ -94,7 +95,7 @@ def test_a_system_refused_after_its_factor_overwrote_it_is_solved_from_the_remad
     # eigenvalue route must read the system remade, not the factor left in its place
     rng = np.random.default_rng(2)
     V = np.linalg.qr(rng.standard_normal((12, 12)))[0]
-    M0 = np.asfortranarray((V * np.logspace(0, -10, 12)) @ V.T)
+    M0 = np.asfortranarray((V * np.logspace(0, -10, 12)) @ V.T)  # eigenvalues 1 to 1e-10: condition 1e10
     rhs = rng.standard_normal(12)
     L = gram._Layout(2, 3, 2, 1)  # n m + p m = 12 unknowns for n = 5 with a direct term
     M = M0.copy(order="F")
@@ -114,7 +115,7 @@ def test_gil_free_calls_equal_scipys_wrappers_bit_for_bit():
 
     rng = np.random.default_rng(3)
     a = rng.standard_normal((60, 60))
-    M = np.asfortranarray(a @ a.T + 60 * np.eye(60))
+    M = np.asfortranarray(a @ a.T + 60 * np.eye(60))  # + 60 I: positive definite and well conditioned (chosen)
     b = rng.standard_normal(60)
     ref = sla.cho_factor(M, lower=True, check_finite=False)[0]
     F = M.copy(order="F")
@@ -122,6 +123,7 @@ def test_gil_free_calls_equal_scipys_wrappers_bit_for_bit():
     assert np.array_equal(np.triu(F, 1), np.triu(M, 1))  # the upper triangle is kept, as cho_factor's
     for k in (60, 25):  # the whole factor and a leading block read where it lies (leading dimension 60)
         assert _gil_free.block_norm(M[:k, :k]) == sla.lapack.dlange("1", M[:k, :k])
+        # 7.0: any one-norm given to both (the estimate is a function of it; exact: the same dpocon)
         assert _gil_free.pocon(F[:k, :k], 7.0) == sla.lapack.dpocon(ref[:k, :k], 7.0, uplo="L")[0]
         assert np.array_equal(_gil_free.potrs(F[:k, :k], b[:k]),
                               sla.cho_solve((ref[:k, :k], True), b[:k], check_finite=False))

@@ -34,12 +34,14 @@ def _before(mat):
     return U, s
 
 
+# shapes chosen: tiny, mid-sized and larger, none a multiple of another; a workspace absent, too small (10 values)
+# and larger than work_size (999 spare values)
 @pytest.mark.parametrize("shape", [(7, 19), (120, 333), (300, 700)])
 @pytest.mark.parametrize("work", ["none", "small", "large"])
 def test_left_singular_pairs_in_a_workspace_are_numpy_and_scipys_bit_for_bit(shape, work):
     rng = np.random.default_rng(5)
     full = rng.standard_normal((shape[0], shape[1] + 13))
-    mat = full[:, 3:3 + shape[1]]  # a strided block, as the projection's rows are
+    mat = full[:, 3:3 + shape[1]]  # a strided block, as the projection's rows are (13 spare columns, offset 3)
     ws = {"none": None, "small": np.full(10, np.nan), "large": np.full(work_size(*shape) + 999, np.nan)}[work]
     with blas_threads(1):  # (the fit decomposes on one BLAS thread)
         U, s = left_singular_pairs(mat, ws)
@@ -55,7 +57,7 @@ def test_the_gram_assembled_into_a_buffer_is_the_assembled_gram_bit_for_bit(past
     L = gram._Layout(past, future, 2, 4)  # 42 and 480 rows: lagged vectors short and long (> _SMALL_ASSEMBLY / c)
     (acc,) = gram._hankel_sums(session, [session.segments(min_length=L.width)], L)
     order = L.factor_order()
-    buffer = np.full(L.nz * L.nz + 5, np.nan)
+    buffer = np.full(L.nz * L.nz + 5, np.nan)  # 5 more than the Gram: only its front used; NaN shows any unwritten
     got = gram._gram_from_sums(acc, L, order, rows, out=buffer)
     assert np.shares_memory(got, buffer)
     np.testing.assert_array_equal(got, gram._gram_from_sums(acc, L, order, rows))
@@ -63,10 +65,11 @@ def test_the_gram_assembled_into_a_buffer_is_the_assembled_gram_bit_for_bit(past
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="madvise(MADV_DONTNEED) is Linux's")
 def test_a_released_tail_reads_as_zeros_and_the_head_is_kept():
-    buffer = np.empty(4 << 20 >> 3)  # 4 MB
+    buffer = np.empty(4 << 20 >> 3)  # 4 MB: above glibc's mmap threshold (from memory), so its own anonymous pages
     buffer[:] = 1.5
-    released = release_tail(buffer, 1000)
-    assert released >= 3 << 20  # every whole page after the first 8,000 bytes
+    released = release_tail(buffer, 1000)  # keep 1000 values (8,000 bytes, not a page multiple)
+    # every whole page after the first 8,000 bytes: 4 MB less at most two partial pages, so >= 3 MB by a wide margin
+    assert released >= 3 << 20
     zero = np.flatnonzero(buffer == 0.0)  # whole pages: one run, after the kept head; the rest untouched
     assert zero.size * 8 == released and zero[0] >= 1000 and zero[-1] - zero[0] + 1 == zero.size
     assert np.all(np.delete(buffer, zero) == 1.5)
@@ -76,8 +79,8 @@ def test_a_released_tail_reads_as_zeros_and_the_head_is_kept():
 def test_the_two_pipelines_fit_what_the_pipelines_one_after_the_other_fit(monkeypatch, weighting):
     """The factor route with its pipelines side by side against the same route with the fitting part's pipeline
     run to its end first (its thread joined before all data's starts): the same model and table, bit for bit."""
-    session = _session(noise=0.3, seed=4)
-    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    session = _session(noise=0.3, seed=4)  # as in test_subspace_ahead (chosen)
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)  # 0: the factor route at this small size
     ref_kw = dict(past_steps=6, future_steps=5, weighting=weighting)
     got = SubspaceId(**ref_kw).fit(session)
     pipeline, project, ended = prepare._fit_pipeline, prepare._projection, threading.Event()
@@ -90,7 +93,7 @@ def test_the_two_pipelines_fit_what_the_pipelines_one_after_the_other_fit(monkey
 
     def after_fit(*a):  # all data's projection (this thread's) only once the fitting part's pipeline has ended
         if threading.current_thread() is threading.main_thread():
-            assert ended.wait(60)
+            assert ended.wait(60)  # 60 s: chosen far beyond the pipeline's time, only against a hang
         return project(*a)
 
     monkeypatch.setattr(prepare, "_fit_pipeline", fit_first)

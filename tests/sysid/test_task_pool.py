@@ -22,7 +22,7 @@ def test_ready_tasks_run_lowest_priority_first_and_first_come_among_equals():
     pool = TaskPool(threads=2, cores=1)
     gate, order = threading.Event(), []
     pool.submit(0, gate.wait)  # holds the one core while the others are queued
-    tasks = [(3, "a"), (1, "b"), (2, "c"), (1, "d"), (0, "e"), (3, "f")]
+    tasks = [(3, "a"), (1, "b"), (2, "c"), (1, "d"), (0, "e"), (3, "f")]  # chosen: ties and priorities out of order
     futures = [pool.submit(p, order.append, name) for p, name in tasks]
     gate.set()
     pool.close()
@@ -38,16 +38,17 @@ def test_at_most_cores_tasks_run_at_once_until_raised():
         with lock:
             running[0] += 1
             peak.append(running[0])
-        time.sleep(0.02)
+        time.sleep(0.02)  # 20 ms per task, chosen: long beside the pool's own overhead
         with lock:
             running[0] -= 1
     for _ in range(4):
         pool.submit(0, task)
-    time.sleep(0.03)
+    time.sleep(0.03)  # 30 ms: the first task ended, the second begun, under one core (chosen; timing-dependent)
     pool.set_cores(3)
     for _ in range(6):
         pool.submit(0, task)
     pool.close()
+    # the first two began one at a time; then more than one at once, never above 3 cores; 10 = 4 + 6 tasks
     assert max(peak[:2]) == 1 and max(peak) > 1 and max(peak) <= 3 and len(peak) == 10
 
 
@@ -58,6 +59,7 @@ def test_a_task_error_comes_back_by_its_future_and_close_waits_for_tasks_submitt
     def fail():
         raise ValueError("boom")
     bad = pool.submit(0, fail)
+    # 20 ms: the inner task still runs when close() begins (chosen)
     pool.submit(0, lambda: pool.submit(5, lambda: time.sleep(0.02) or seen.append("later")))
     pool.close()
     with pytest.raises(ValueError, match="boom"):
@@ -83,17 +85,18 @@ def test_an_error_in_a_folds_step_is_raised_by_fold_errors_not_waited_for(monkey
         return real(train, n)
     monkeypatch.setattr(hf, "_factor_fold", factor)
     with pytest.raises(MemoryError, match="fold 1"):
-        hf.fold_errors(fs, total, n_b, np.ones(8))
+        hf.fold_errors(fs, total, n_b, np.ones(8))  # 8 weights: p · horizon outputs of folds_setup
     assert len(calls) == 2  # the plan stopped: no fold begun after the error
 
 
 def test_a_stopped_plan_ends_its_threads_and_pieces_cover_the_rows_in_multiples_of_16(monkeypatch):
     fs, total, n_b = _setup()
-    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)  # 1 row: the small folds take the large folds' route
     folds = type("F", (list,), {"total": total, "first_fold": None})(fs)
     plan = hf.start_first_fold(folds, n_b)
     plan.stop()
     assert not any(t.is_alive() for t in plan.pool._threads)
+    # 16: the pieces' granularity in _hankel_folds._pieces; sizes chosen below, above and not multiples of it
     for pN in (1, 17, 1000, 1001):
         cuts = hf._pieces(pN)
         assert [a for a, _b in cuts][0] == 0 and cuts[-1][1] == pN
@@ -109,8 +112,9 @@ def test_a_plan_begun_before_a_refused_gram_is_stopped_and_the_fit_is_the_qr_rou
     qr = HankelPredictor(past_steps=5, horizon_steps=4)
     qr._route = "qr"  # test hook of the direct predictors: the QR route whatever the conditioning
     qr.fit(_session())
-    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)  # 1 row: the small session takes the large fits' routes
     monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    # 1.0: every condition number is >= 1 (common practice, no source), so every Gram is refused
     monkeypatch.setattr(base, "GRAM_CONDITION_LIMIT", 1.0)  # every total Gram refused after the plan began
     plans = []
     real = hf.start_first_fold
