@@ -43,7 +43,9 @@ def test_at_most_cores_tasks_run_at_once_until_raised():
             running[0] -= 1
     for _ in range(4):
         pool.submit(0, task)
-    time.sleep(0.03)  # 30 ms: the first task ended, the second begun, under one core (chosen; timing-dependent)
+    deadline = time.monotonic() + 10.0  # wait (not a fixed sleep) until two tasks began under one core
+    while len(peak) < 2 and time.monotonic() < deadline:
+        time.sleep(0.001)
     pool.set_cores(3)
     for _ in range(6):
         pool.submit(0, task)
