@@ -7,20 +7,15 @@ internal equivalence, not an outside source; the claim checked is that the reord
 
 from __future__ import annotations
 
-import sys
 import threading
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
 
 from stimsteer.sysid.subspace import SubspaceId, factor, prepare, selection
 
-sys.path.insert(0, str(Path(__file__).parent))
-from test_subspace_factor import _session  # noqa: E402  (the simulated three-state session of the factor tests)
-
-
+from tests.sysid.test_subspace_factor import _session  # the simulated three-state session of the factor tests
 
 
 _AHEAD = SubspaceId._ahead

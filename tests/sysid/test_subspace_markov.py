@@ -6,9 +6,7 @@ block-Toeplitz map of Markov parameters is the standard one (Ho & Kalman 1966)."
 
 from __future__ import annotations
 
-import sys
 import tracemalloc
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -16,8 +14,7 @@ import pytest
 from stimsteer.sysid.statespace import markov_toeplitz
 from stimsteer.sysid.subspace import gram, heldout, markov, projection
 
-sys.path.insert(0, str(Path(__file__).parent))
-from test_subspace_factor import _session  # noqa: E402  (the simulated three-state session of the factor tests)
+from tests.sysid.test_subspace_factor import _session  # the simulated three-state session of the factor tests
 
 
 def _toeplitz_basis(A, C, layout, feedthrough):

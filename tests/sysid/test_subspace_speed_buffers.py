@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import sys
 import threading
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -23,8 +22,7 @@ from stimsteer.sysid.subspace import SubspaceId, gram, prepare
 from stimsteer.sysid.subspace._buffers import release_tail
 from stimsteer.sysid.subspace._left_svd import left_singular_pairs, work_size
 
-sys.path.insert(0, str(Path(__file__).parent))
-from test_subspace_factor import _session  # noqa: E402  (the simulated three-state session of the factor tests)
+from tests.sysid.test_subspace_factor import _session  # the simulated three-state session of the factor tests
 
 
 def _before(mat):
