@@ -40,13 +40,9 @@ import numpy as np
 from scipy.linalg import blas, lapack
 
 from .._lapack_nogil import _DPOTRF as _POTRF
-from .._lapack_nogil import _DTRMM, _DTRSM, scipy_c_function
+from .._lapack_nogil import _DBL, _DTRMM, _DTRSM, _INT, scipy_c_function
 
 __all__: list = []
-
-_INT = ctypes.POINTER(ctypes.c_int)
-_DBL = ctypes.POINTER(ctypes.c_double)
-
 
 _TRIANGULAR = {"dtrsm": _DTRSM, "dtrmm": _DTRMM}  # the lookups of _lapack_nogil (one per process)
 _DDOT = scipy_c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)

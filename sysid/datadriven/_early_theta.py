@@ -14,11 +14,10 @@ import ctypes
 
 import numpy as np
 
-from .._lapack_nogil import scipy_c_function
+from .._lapack_nogil import _CHR, _DBL, _INT, scipy_c_function
 
 __all__: list = []
 
-_INT, _DBL, _CHR = ctypes.POINTER(ctypes.c_int), ctypes.POINTER(ctypes.c_double), ctypes.c_char_p
 # norm, uplo, diag, n, a, lda, rcond, work, iwork, info
 _DTRCON = scipy_c_function("lapack", "dtrcon", _CHR, _CHR, _CHR, _INT, _DBL, _INT, _DBL, _DBL, _INT, _INT)
 # uplo, trans, diag, n, nrhs, a, lda, b, ldb, info
