@@ -36,8 +36,9 @@ from concurrent.futures import Future
 import numpy as np
 
 from .._lapack_nogil import strided_cholesky_calls
+from ._nogil_cholesky import _one_norm
 from ._task_pool import TaskPool
-from .gram import GRAM_CONDITION_LIMIT, _one_norm, _total_factor, release_freed_memory
+from .gram import GRAM_CONDITION_LIMIT, _total_factor, release_freed_memory
 
 __all__: list = []
 
