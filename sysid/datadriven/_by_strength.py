@@ -163,6 +163,11 @@ def base_term(F: np.ndarray, n: int, pN: int, weights: np.ndarray) -> float:
     return float(np.einsum("ij,ij->", L21w, L21w))
 
 
+def held_out_constant(val, n_b: int, weights: np.ndarray) -> float:
+    """``c0 = tr(Ω G22v Ω)`` of the validation fold ``val`` (module docstring), from its Gram's diagonal."""
+    return float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+
+
 def rhs_block(n: int, pN: int) -> np.ndarray:
     """A worker's block of :data:`RHS_BLOCK` right-hand sides (``n`` rows, Fortran-ordered)."""
     return np.empty((n, min(RHS_BLOCK, max(pN, 1))), order="F")

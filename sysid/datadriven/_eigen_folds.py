@@ -35,6 +35,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from .._lapack_nogil import eigh_lower, eigh_nogil_available, trmm_lower_t
+from ._by_strength import held_out_constant
 
 __all__: list = []
 
@@ -69,7 +70,7 @@ def eigen_fold_errors(train, val, n_b: int, strengths, weights, F: np.ndarray) -
     weights = np.asarray(weights, dtype=np.float64)
     At = _omega_g21_v_t(Gt, n_b, V, weights)  # (Ω G21 V)ᵀ, n_b × pN
     del Gt
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     P = trmm_lower_t(F, n_b, F.shape[0], V)  # Ctᵀ V, in place of V
     cross = _cross(F, n_b, P, At, weights)
     W = 1.0 / (d[:, None] + np.asarray(strengths, dtype=np.float64)[None, :])  # n_b × strengths

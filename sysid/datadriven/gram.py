@@ -31,7 +31,7 @@ import scipy.linalg as sla
 from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
-from ._by_strength import strength_errors
+from ._by_strength import held_out_constant, strength_errors
 from ._nogil_cholesky import _one_norm, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
@@ -286,7 +286,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     del G11
     A = weights[:, None] * (G21 @ V)  # Ω G21 V
     del G21
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     cross, M = _heldout_from_validation(Gv or [val.gram_rows(0, n_b)], n_b, V, A, weights) if F is None else \
         _heldout_from_total(F, n_b, V, d, A, weights)
     del V  # overwritten by the helpers
@@ -304,7 +304,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray | None:
     """:func:`ridge_grid_errors` one strength at a time, two side by side (:mod:`._by_strength`), or None."""
     Gt = train.gram_rows(0, n_b, fortran=True)  # worked on in place: no copy of G11 or G12 (issue 14)
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     return strength_errors(Gt, F, strengths, c0, weights, STRENGTH_WORKERS)
 
 
