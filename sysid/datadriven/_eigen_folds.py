@@ -117,12 +117,17 @@ def _quadratic(P: np.ndarray, At: np.ndarray, d: np.ndarray, W: np.ndarray):
     return quad, diag
 
 
+def scored_parts(total) -> list:
+    """The folds of ``total.parts`` with windows in them and in their training data (the folds scored)."""
+    return [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+
+
 def side_by_side(total, n_b: int, alphas, weights, third) -> dict:
     """``{id(fold): errors or None}`` for every fold of ``total.parts`` with windows in it and in its training
     data: the first :data:`EIGEN_WORKERS` by :func:`eigen_fold_errors`, one per worker thread; the others by
     ``third(train, val, strengths)`` (the caller's route, e.g. by strength on both workers)."""
     F = total._factor if total._factor is not None else total._factor_gram
-    todo = [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+    todo = scored_parts(total)
     trains = {id(f): total.plus(f, -1.0) for f in todo}
     strengths = {id(f): np.asarray(alphas) * (float(trains[id(f)].gram_diagonal().sum()) / f.n_rows)
                  for f in todo}

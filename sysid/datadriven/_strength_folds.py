@@ -30,7 +30,7 @@ import weakref
 import numpy as np
 
 from ._by_strength import _Grid, base_term, held_out_constant, nogil_available, rhs_block
-from ._eigen_folds import fits_in_memory
+from ._eigen_folds import fits_in_memory, scored_parts
 from .._lapack_nogil import eigh_nogil_available
 from ._task_pool import TaskPool
 from .gram import _total_factor, release_freed_memory
@@ -72,7 +72,7 @@ class StrengthPlan:
 
     def __init__(self, total, n_b: int):
         self.total, self.n_b = total, n_b
-        self.folds = [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+        self.folds = scored_parts(total)
         self.pool = TaskPool(WORKERS, WORKERS, "stimsteer-spc-folds")
         weakref.finalize(self, self.pool.close, False)  # dropped unused (an error in between): the threads end
         self._lock = threading.Lock()
