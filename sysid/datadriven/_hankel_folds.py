@@ -259,9 +259,11 @@ def first_fold_hook(predictor, session):
     (:func:`start_first_fold`) before the total Gram is assembled; None for the others."""
     if predictor.regularizer != "projection":
         return None
-    m, p = int(session.n_inputs), int(session.n_outputs)
-    n_b = (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps)  # called once they are checked
-    return lambda folds: start_first_fold(folds, n_b)
+
+    def early(folds):  # called once the session and the windows are checked (the settings read here are valid)
+        m, p = int(session.n_inputs), int(session.n_outputs)
+        return start_first_fold(folds, (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps))
+    return early
 
 
 def _chain(pool: TaskPool, tasks: list, done: list) -> None:
