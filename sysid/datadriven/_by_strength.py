@@ -163,6 +163,11 @@ def base_term(F: np.ndarray, n: int, pN: int, weights: np.ndarray) -> float:
     return float(np.einsum("ij,ij->", L21w, L21w))
 
 
+def gram_scale(fold) -> float:
+    """``tr(G) / n_rows`` of the fold's Gram ``G`` from its diagonal: the data scale of the relative strengths."""
+    return float(fold.gram_diagonal().sum()) / fold.n_rows
+
+
 def held_out_constant(val, n_b: int, weights: np.ndarray) -> float:
     """``c0 = tr(Ω G22v Ω)`` of the validation fold ``val`` (module docstring), from its Gram's diagonal."""
     return float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))

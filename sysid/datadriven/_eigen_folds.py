@@ -35,7 +35,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from .._lapack_nogil import eigh_lower, eigh_nogil_available, trmm_lower_t
-from ._by_strength import held_out_constant
+from ._by_strength import gram_scale, held_out_constant
 
 __all__: list = []
 
@@ -129,8 +129,7 @@ def side_by_side(total, n_b: int, alphas, weights, third) -> dict:
     F = total._factor if total._factor is not None else total._factor_gram
     todo = scored_parts(total)
     trains = {id(f): total.plus(f, -1.0) for f in todo}
-    strengths = {id(f): np.asarray(alphas) * (float(trains[id(f)].gram_diagonal().sum()) / f.n_rows)
-                 for f in todo}
+    strengths = {id(f): np.asarray(alphas) * gram_scale(trains[id(f)]) for f in todo}
     eigen, rest = todo[:EIGEN_WORKERS], todo[EIGEN_WORKERS:]
     with ThreadPoolExecutor(max_workers=EIGEN_WORKERS, thread_name_prefix="stimsteer-ridge-folds") as pool:
         futures = {id(f): pool.submit(eigen_fold_errors, trains[id(f)], f, n_b, strengths[id(f)], weights, F)

@@ -29,7 +29,7 @@ import weakref
 
 import numpy as np
 
-from ._by_strength import _Grid, base_term, held_out_constant, nogil_available, rhs_block
+from ._by_strength import _Grid, base_term, gram_scale, held_out_constant, nogil_available, rhs_block
 from ._eigen_folds import fits_in_memory, scored_parts
 from .._lapack_nogil import eigh_nogil_available
 from ._task_pool import TaskPool
@@ -135,7 +135,7 @@ class StrengthPlan:
         train, rows = item
         F, base, alphas, weights, _K, _W = self._setup
         val = self.folds[k]
-        scale = float(train.gram_diagonal().sum()) / train.n_rows  # as gram.ridge_grid_errors
+        scale = gram_scale(train)  # as gram.ridge_grid_errors
         strengths = [float(s) for s in np.asarray(alphas) * scale]
         c0 = held_out_constant(val, self.n_b, weights)  # as gram._grid_by_strength
         grid = _Grid(rows, F, c0, weights, 0, base)
