@@ -165,10 +165,10 @@ class _FoldPlan:
             del Gt
             release_freed_memory()
             return self._next_fold()
-        pN = Gt.shape[1] - self.n_b
-        state = {"Gt": Gt, "left": len(_pieces(pN)), "parts": {}}
+        pieces = _pieces(Gt.shape[1] - self.n_b)
+        state = {"Gt": Gt, "left": len(pieces), "parts": {}, "pieces": len(pieces)}
         del Gt
-        for h, (a, b) in enumerate(_pieces(pN)):
+        for h, (a, b) in enumerate(pieces):
             self.pool.submit(_SOLVE, self._run, i, self._solve, i, state, h, a, b)
 
     def _solve(self, i: int, state: dict, h: int, a: int, b: int) -> None:
@@ -194,7 +194,7 @@ class _FoldPlan:
         resid = _half_residual(theta, own, F, self.n_b, a, b, lt21_sq)
         with self._lock:
             state["parts"][h] = resid
-            done = len(state["parts"]) == len(_pieces(F.shape[0] - self.n_b))
+            done = len(state["parts"]) == state["pieces"]
         if done:
             self.errors[i].set_result([state["parts"][k] for k in range(len(state["parts"]))])
 
