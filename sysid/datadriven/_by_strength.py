@@ -40,7 +40,7 @@ import numpy as np
 from scipy.linalg import blas, lapack
 
 from .._lapack_nogil import _DPOTRF as _POTRF
-from .._lapack_nogil import _DBL, _DTRMM, _DTRSM, _INT, scipy_c_function
+from .._lapack_nogil import _DBL, _DTRMM, _DTRSM, _INT, int_ref, scipy_c_function
 
 __all__: list = []
 
@@ -61,11 +61,7 @@ def _sum_of_squares(W: np.ndarray) -> float:
     if not nogil_available():  # pragma: no cover - other SciPy builds
         return float(np.einsum("ij,ij->", W, W))
     x = W.ctypes.data_as(_DBL)
-    return float(_DDOT(_ref(W.size), x, _ref(1), x, _ref(1)))
-
-
-def _ref(value: int):
-    return ctypes.byref(ctypes.c_int(value))
+    return float(_DDOT(int_ref(W.size), x, int_ref(1), x, int_ref(1)))
 
 
 def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
@@ -77,7 +73,7 @@ def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
         K[:n, :n] = c
         return int(info)
     info = ctypes.c_int(0)
-    _POTRF(b"L", _ref(n), K.ctypes.data_as(_DBL), _ref(K.shape[0]), ctypes.byref(info))
+    _POTRF(b"L", int_ref(n), K.ctypes.data_as(_DBL), int_ref(K.shape[0]), ctypes.byref(info))
     return int(info.value)
 
 
@@ -90,8 +86,8 @@ def _triangular(name: str, T: np.ndarray, n: int, B: np.ndarray, trans: bool) ->
         B[...] = f(1.0, T[:n, :n], B, lower=1, trans_a=int(trans))
         return
     one = ctypes.c_double(1.0)
-    _TRIANGULAR[name](b"L", b"L", b"T" if trans else b"N", b"N", _ref(n), _ref(B.shape[1]), ctypes.byref(one),
-                      T.ctypes.data_as(_DBL), _ref(T.shape[0]), B.ctypes.data_as(_DBL), _ref(n))
+    _TRIANGULAR[name](b"L", b"L", b"T" if trans else b"N", b"N", int_ref(n), int_ref(B.shape[1]), ctypes.byref(one),
+                      T.ctypes.data_as(_DBL), int_ref(T.shape[0]), B.ctypes.data_as(_DBL), int_ref(n))
 
 
 def _restore_lower(K: np.ndarray, diagonal: np.ndarray, block: int = 256, source: np.ndarray | None = None) -> None:
