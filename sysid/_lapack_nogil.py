@@ -21,6 +21,11 @@ _INT = ctypes.POINTER(ctypes.c_int)
 _DBL = ctypes.POINTER(ctypes.c_double)
 
 
+def int_ref(value: int):
+    """A by-reference C ``int`` argument (LAPACK/BLAS take every integer by pointer)."""
+    return ctypes.byref(ctypes.c_int(int(value)))
+
+
 def scipy_c_function(module: str, name: str, *argtypes):
     """The ``ctypes`` function of SciPy's exported ``scipy.linalg.cython_<module>.<name>`` (``module`` is ``"blas"``
     or ``"lapack"``; SciPy's public C API for Cython), taking ``argtypes``; or None where it cannot be had (another
@@ -118,7 +123,7 @@ def strided_cholesky_calls():
         return ctypes.cast(X.ctypes.data + 8 * int(offset), _DBL)
 
     def ints(*values):
-        return [ctypes.byref(ctypes.c_int(int(v))) for v in values]
+        return [int_ref(v) for v in values]
 
     def potrf(A, offset, n, ld):
         info = ctypes.c_int(0)

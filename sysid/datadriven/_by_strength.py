@@ -40,13 +40,9 @@ import numpy as np
 from scipy.linalg import blas, lapack
 
 from .._lapack_nogil import _DPOTRF as _POTRF
-from .._lapack_nogil import _DTRMM, _DTRSM, scipy_c_function
+from .._lapack_nogil import _DBL, _DTRMM, _DTRSM, _INT, int_ref, scipy_c_function
 
 __all__: list = []
-
-_INT = ctypes.POINTER(ctypes.c_int)
-_DBL = ctypes.POINTER(ctypes.c_double)
-
 
 _TRIANGULAR = {"dtrsm": _DTRSM, "dtrmm": _DTRMM}  # the lookups of _lapack_nogil (one per process)
 _DDOT = scipy_c_function("blas", "ddot", _INT, _DBL, _INT, _DBL, _INT)
@@ -65,11 +61,7 @@ def _sum_of_squares(W: np.ndarray) -> float:
     if not nogil_available():  # pragma: no cover - other SciPy builds
         return float(np.einsum("ij,ij->", W, W))
     x = W.ctypes.data_as(_DBL)
-    return float(_DDOT(_ref(W.size), x, _ref(1), x, _ref(1)))
-
-
-def _ref(value: int):
-    return ctypes.byref(ctypes.c_int(value))
+    return float(_DDOT(int_ref(W.size), x, int_ref(1), x, int_ref(1)))
 
 
 def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
@@ -81,7 +73,7 @@ def _potrf_lower(K: np.ndarray, n: int | None = None) -> int:
         K[:n, :n] = c
         return int(info)
     info = ctypes.c_int(0)
-    _POTRF(b"L", _ref(n), K.ctypes.data_as(_DBL), _ref(K.shape[0]), ctypes.byref(info))
+    _POTRF(b"L", int_ref(n), K.ctypes.data_as(_DBL), int_ref(K.shape[0]), ctypes.byref(info))
     return int(info.value)
 
 
@@ -94,8 +86,8 @@ def _triangular(name: str, T: np.ndarray, n: int, B: np.ndarray, trans: bool) ->
         B[...] = f(1.0, T[:n, :n], B, lower=1, trans_a=int(trans))
         return
     one = ctypes.c_double(1.0)
-    _TRIANGULAR[name](b"L", b"L", b"T" if trans else b"N", b"N", _ref(n), _ref(B.shape[1]), ctypes.byref(one),
-                      T.ctypes.data_as(_DBL), _ref(T.shape[0]), B.ctypes.data_as(_DBL), _ref(n))
+    _TRIANGULAR[name](b"L", b"L", b"T" if trans else b"N", b"N", int_ref(n), int_ref(B.shape[1]), ctypes.byref(one),
+                      T.ctypes.data_as(_DBL), int_ref(T.shape[0]), B.ctypes.data_as(_DBL), int_ref(n))
 
 
 def _restore_lower(K: np.ndarray, diagonal: np.ndarray, block: int = 256, source: np.ndarray | None = None) -> None:
@@ -165,6 +157,16 @@ def base_term(F: np.ndarray, n: int, pN: int, weights: np.ndarray) -> float:
     """``||L21ᵀ Ω||²`` from the total's factor ``F`` (the same for every fold)."""
     L21w = np.asfortranarray(F[n:n + pN, :n].T * weights[None, :])  # L21ᵀ Ω (the subtraction forms it by blocks)
     return float(np.einsum("ij,ij->", L21w, L21w))
+
+
+def gram_scale(fold) -> float:
+    """``tr(G) / n_rows`` of the fold's Gram ``G`` from its diagonal: the data scale of the relative strengths."""
+    return float(fold.gram_diagonal().sum()) / fold.n_rows
+
+
+def held_out_constant(val, n_b: int, weights: np.ndarray) -> float:
+    """``c0 = tr(Ω G22v Ω)`` of the validation fold ``val`` (module docstring), from its Gram's diagonal."""
+    return float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
 
 
 def rhs_block(n: int, pN: int) -> np.ndarray:

@@ -14,11 +14,10 @@ import ctypes
 
 import numpy as np
 
-from .._lapack_nogil import scipy_c_function
+from .._lapack_nogil import _CHR, _DBL, _INT, int_ref, scipy_c_function
 
 __all__: list = []
 
-_INT, _DBL, _CHR = ctypes.POINTER(ctypes.c_int), ctypes.POINTER(ctypes.c_double), ctypes.c_char_p
 # norm, uplo, diag, n, a, lda, rcond, work, iwork, info
 _DTRCON = scipy_c_function("lapack", "dtrcon", _CHR, _CHR, _CHR, _INT, _DBL, _INT, _DBL, _DBL, _INT, _INT)
 # uplo, trans, diag, n, nrhs, a, lda, b, ldb, info
@@ -28,10 +27,6 @@ _DTRTRS = scipy_c_function("lapack", "dtrtrs", _CHR, _CHR, _CHR, _INT, _INT, _DB
 def available() -> bool:
     """Whether SciPy's exported ``dtrcon`` and ``dtrtrs`` were found."""
     return _DTRCON is not None and _DTRTRS is not None
-
-
-def _byref_int(v: int):
-    return ctypes.byref(ctypes.c_int(int(v)))
 
 
 def projection_theta(F: np.ndarray, n_b: int, limit: float):
@@ -49,13 +44,13 @@ def projection_theta(F: np.ndarray, n_b: int, limit: float):
         return None
     rcond, info = ctypes.c_double(0.0), ctypes.c_int(0)
     work, iwork = np.empty(3 * n_b), np.empty(n_b, dtype=np.intc)
-    _DTRCON(b"1", b"L", b"N", _byref_int(n_b), F.ctypes.data_as(_DBL), _byref_int(n), ctypes.byref(rcond),
+    _DTRCON(b"1", b"L", b"N", int_ref(n_b), F.ctypes.data_as(_DBL), int_ref(n), ctypes.byref(rcond),
             work.ctypes.data_as(_DBL), iwork.ctypes.data_as(_INT), ctypes.byref(info))
     if info.value != 0 or not rcond.value * limit >= 1.0:
         return None
     rhs = np.asfortranarray(F[n_b:, :n_b].T)  # Yf1ᵀ, solved in place as the wrapper does
-    _DTRTRS(b"L", b"T", b"N", _byref_int(n_b), _byref_int(n - n_b), F.ctypes.data_as(_DBL), _byref_int(n),
-            rhs.ctypes.data_as(_DBL), _byref_int(n_b), ctypes.byref(info))
+    _DTRTRS(b"L", b"T", b"N", int_ref(n_b), int_ref(n - n_b), F.ctypes.data_as(_DBL), int_ref(n),
+            rhs.ctypes.data_as(_DBL), int_ref(n_b), ctypes.byref(info))
     return rhs.T if info.value == 0 else None
 
 

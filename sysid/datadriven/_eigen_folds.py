@@ -35,6 +35,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from .._lapack_nogil import eigh_lower, eigh_nogil_available, trmm_lower_t
+from ._by_strength import gram_scale, held_out_constant
 
 __all__: list = []
 
@@ -69,7 +70,7 @@ def eigen_fold_errors(train, val, n_b: int, strengths, weights, F: np.ndarray) -
     weights = np.asarray(weights, dtype=np.float64)
     At = _omega_g21_v_t(Gt, n_b, V, weights)  # (Ω G21 V)ᵀ, n_b × pN
     del Gt
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     P = trmm_lower_t(F, n_b, F.shape[0], V)  # Ctᵀ V, in place of V
     cross = _cross(F, n_b, P, At, weights)
     W = 1.0 / (d[:, None] + np.asarray(strengths, dtype=np.float64)[None, :])  # n_b × strengths
@@ -116,15 +117,19 @@ def _quadratic(P: np.ndarray, At: np.ndarray, d: np.ndarray, W: np.ndarray):
     return quad, diag
 
 
+def scored_parts(total) -> list:
+    """The folds of ``total.parts`` with windows in them and in their training data (the folds scored)."""
+    return [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+
+
 def side_by_side(total, n_b: int, alphas, weights, third) -> dict:
     """``{id(fold): errors or None}`` for every fold of ``total.parts`` with windows in it and in its training
     data: the first :data:`EIGEN_WORKERS` by :func:`eigen_fold_errors`, one per worker thread; the others by
     ``third(train, val, strengths)`` (the caller's route, e.g. by strength on both workers)."""
     F = total._factor if total._factor is not None else total._factor_gram
-    todo = [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+    todo = scored_parts(total)
     trains = {id(f): total.plus(f, -1.0) for f in todo}
-    strengths = {id(f): np.asarray(alphas) * (float(trains[id(f)].gram_diagonal().sum()) / f.n_rows)
-                 for f in todo}
+    strengths = {id(f): np.asarray(alphas) * gram_scale(trains[id(f)]) for f in todo}
     eigen, rest = todo[:EIGEN_WORKERS], todo[EIGEN_WORKERS:]
     with ThreadPoolExecutor(max_workers=EIGEN_WORKERS, thread_name_prefix="stimsteer-ridge-folds") as pool:
         futures = {id(f): pool.submit(eigen_fold_errors, trains[id(f)], f, n_b, strengths[id(f)], weights, F)

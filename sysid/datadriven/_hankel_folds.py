@@ -36,8 +36,9 @@ from concurrent.futures import Future
 import numpy as np
 
 from .._lapack_nogil import strided_cholesky_calls
+from ._nogil_cholesky import _one_norm
 from ._task_pool import TaskPool
-from .gram import GRAM_CONDITION_LIMIT, _one_norm, _total_factor, release_freed_memory
+from .gram import GRAM_CONDITION_LIMIT, _total_factor, release_freed_memory
 
 __all__: list = []
 
@@ -164,10 +165,10 @@ class _FoldPlan:
             del Gt
             release_freed_memory()
             return self._next_fold()
-        pN = Gt.shape[1] - self.n_b
-        state = {"Gt": Gt, "left": len(_pieces(pN)), "parts": {}}
+        pieces = _pieces(Gt.shape[1] - self.n_b)
+        state = {"Gt": Gt, "left": len(pieces), "parts": {}, "pieces": len(pieces)}
         del Gt
-        for h, (a, b) in enumerate(_pieces(pN)):
+        for h, (a, b) in enumerate(pieces):
             self.pool.submit(_SOLVE, self._run, i, self._solve, i, state, h, a, b)
 
     def _solve(self, i: int, state: dict, h: int, a: int, b: int) -> None:
@@ -193,7 +194,7 @@ class _FoldPlan:
         resid = _half_residual(theta, own, F, self.n_b, a, b, lt21_sq)
         with self._lock:
             state["parts"][h] = resid
-            done = len(state["parts"]) == len(_pieces(F.shape[0] - self.n_b))
+            done = len(state["parts"]) == state["pieces"]
         if done:
             self.errors[i].set_result([state["parts"][k] for k in range(len(state["parts"]))])
 
@@ -258,9 +259,11 @@ def first_fold_hook(predictor, session):
     (:func:`start_first_fold`) before the total Gram is assembled; None for the others."""
     if predictor.regularizer != "projection":
         return None
-    m, p = int(session.n_inputs), int(session.n_outputs)
-    n_b = (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps)  # called once they are checked
-    return lambda folds: start_first_fold(folds, n_b)
+
+    def early(folds):  # called once the session and the windows are checked (the settings read here are valid)
+        m, p = int(session.n_inputs), int(session.n_outputs)
+        return start_first_fold(folds, (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps))
+    return early
 
 
 def _chain(pool: TaskPool, tasks: list, done: list) -> None:

@@ -29,8 +29,8 @@ import weakref
 
 import numpy as np
 
-from ._by_strength import _Grid, base_term, nogil_available, rhs_block
-from ._eigen_folds import fits_in_memory
+from ._by_strength import _Grid, base_term, gram_scale, held_out_constant, nogil_available, rhs_block
+from ._eigen_folds import fits_in_memory, scored_parts
 from .._lapack_nogil import eigh_nogil_available
 from ._task_pool import TaskPool
 from .gram import _total_factor, release_freed_memory
@@ -72,7 +72,7 @@ class StrengthPlan:
 
     def __init__(self, total, n_b: int):
         self.total, self.n_b = total, n_b
-        self.folds = [f for f in total.parts if f.n_columns and total.n_columns - f.n_columns]
+        self.folds = scored_parts(total)
         self.pool = TaskPool(WORKERS, WORKERS, "stimsteer-spc-folds")
         weakref.finalize(self, self.pool.close, False)  # dropped unused (an error in between): the threads end
         self._lock = threading.Lock()
@@ -135,9 +135,9 @@ class StrengthPlan:
         train, rows = item
         F, base, alphas, weights, _K, _W = self._setup
         val = self.folds[k]
-        scale = float(train.gram_diagonal().sum()) / train.n_rows  # as gram.ridge_grid_errors
+        scale = gram_scale(train)  # as gram.ridge_grid_errors
         strengths = [float(s) for s in np.asarray(alphas) * scale]
-        c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[self.n_b:]))  # as gram._grid_by_strength
+        c0 = held_out_constant(val, self.n_b, weights)  # as gram._grid_by_strength
         grid = _Grid(rows, F, c0, weights, 0, base)
         del rows
         grid.free.put(grid.G11)  # the fold's own factor array

@@ -31,7 +31,7 @@ import scipy.linalg as sla
 from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
-from ._by_strength import strength_errors
+from ._by_strength import gram_scale, held_out_constant, strength_errors
 from ._nogil_cholesky import _one_norm, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
@@ -262,7 +262,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     ``tr(Ω (G22 − 2 Θ G12 + Θ G11 Θᵀ) Ω)`` (validation Grams, ``Ω`` = diag(weights)) is then a sum of ``O(n²)``
     terms per strength over matrices computed once.
     """
-    scale = float(train.gram_diagonal().sum()) / train.n_rows
+    scale = gram_scale(train)
     release_freed_memory()  # the previous fold's arrays, before this fold's peak
     F = _total_factor(total, n_b)
     if F is not None and FOLDS_SIDE_BY_SIDE:
@@ -286,7 +286,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
     del G11
     A = weights[:, None] * (G21 @ V)  # Ω G21 V
     del G21
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     cross, M = _heldout_from_validation(Gv or [val.gram_rows(0, n_b)], n_b, V, A, weights) if F is None else \
         _heldout_from_total(F, n_b, V, d, A, weights)
     del V  # overwritten by the helpers
@@ -304,7 +304,7 @@ def ridge_grid_errors(train: _GramFold, val: _GramFold, n_b: int, alphas, weight
 def _grid_by_strength(train, val, n_b: int, strengths, weights, F) -> np.ndarray | None:
     """:func:`ridge_grid_errors` one strength at a time, two side by side (:mod:`._by_strength`), or None."""
     Gt = train.gram_rows(0, n_b, fortran=True)  # worked on in place: no copy of G11 or G12 (issue 14)
-    c0 = float(np.sum(weights ** 2 * val.gram_diagonal()[n_b:]))
+    c0 = held_out_constant(val, n_b, weights)
     return strength_errors(Gt, F, strengths, c0, weights, STRENGTH_WORKERS)
 
 
@@ -432,7 +432,7 @@ def fitted_ridge_map(total: _GramFold, n_b: int, alpha: float, rows=None) -> tup
     uses no other; 71 % of the Gram at past 100 / horizon 50); below, the whole Gram, as it always was.
     """
     if n_b >= TOTAL_FACTOR_ROWS or total._factor_gram is not None:
-        scale = float(total.gram_diagonal().sum()) / total.n_rows
+        scale = gram_scale(total)
         if total._factor_gram is not None:
             theta = _ridge_map_from_kept(total, n_b, alpha * scale, rows)
             total.release()

@@ -339,16 +339,16 @@ class HankelPredictor(_DirectPredictor):
 
     def _gaps_from_factor(self, theta, F, lambdas, lam_y):
         """:meth:`_plan_gaps` of ``theta`` from the total's factor ``F`` (``F[n_b:, n_b:]``: ``blocks_.Yf[:, n_b:]``)."""
-        m, p, past, n_b = self.n_inputs_, self.n_outputs_, self.past_steps_, theta.shape[1]
-        return plan_gaps_coordinate(theta[:, m * past:(m + p) * past], F[n_b:, n_b:], lambdas * _data_scale(F), lam_y)
+        return self._plan_gaps(lambdas * _data_scale(F), lam_y, theta, F[theta.shape[1]:, theta.shape[1]:])
 
-    def _plan_gaps(self, lambdas_abs, lam_y, theta):
-        """Plan gaps per strength; ``theta`` the closed-form projection predictor (scaled rows) or None."""
-        M = None if self.regularizer == "l2" else self.reg_matrix_
+    def _plan_gaps(self, lambdas_abs, lam_y, theta, yf2=None):
+        """Plan gaps per strength; ``theta`` the closed-form projection predictor (scaled rows) or None; ``yf2``:
+        ``blocks_.Yf[:, n_b:]`` (None) or the same numbers (:meth:`_gaps_from_factor`, before ``blocks_`` is made)."""
         if theta is None:
-            return plan_gaps(self.blocks_, M, lambdas_abs, lam_y)
+            return plan_gaps(self.blocks_, None if self.regularizer == "l2" else self.reg_matrix_, lambdas_abs, lam_y)
         m, p, past, n_b = self.n_inputs_, self.n_outputs_, self.past_steps_, theta.shape[1]
-        return plan_gaps_coordinate(theta[:, m * past:(m + p) * past], self.blocks_.Yf[:, n_b:], lambdas_abs, lam_y)
+        yf2 = self.blocks_.Yf[:, n_b:] if yf2 is None else yf2
+        return plan_gaps_coordinate(theta[:, m * past:(m + p) * past], yf2, lambdas_abs, lam_y)
 
     def _score_l1(self, train, val, weights, lambdas, lam_y):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
