@@ -132,3 +132,13 @@ def test_row_blocks_made_in_the_factors_memory_and_the_projector_equal_their_cop
     assert peak <= 2 * 8 * 256 * 256 + 65536  # two 256 × 256 float64 tiles, plus 64 KiB for small Python objects
     d = np.r_[np.zeros(40), np.ones(n - 40)]  # n_b = 40: any leading block (chosen)
     np.testing.assert_array_equal(kkt._coordinate_projector(n, 40), np.diag(d))
+
+
+@pytest.mark.parametrize("past", [None, "x", 0])
+def test_bad_windows_are_refused_as_settings_before_the_first_fold_is_planned(past):
+    # the first fold's plan is made once the settings are checked: a bad window is the settings error it always
+    # was, not a TypeError or ValueError from the plan (a review found it read int(past_steps) before the check)
+    from stimsteer.sysid.exceptions import InvalidParameterError
+
+    with pytest.raises(InvalidParameterError):
+        HankelPredictor(past_steps=past, horizon_steps=4).fit(_session())
