@@ -95,8 +95,9 @@ def _stimulation_pulses(events_tsv: Path) -> list[dict]:
     rows = table[table[STIM_SITE].notna()]
     current = pd.to_numeric(rows[STIM_CURRENT], errors="coerce")
     if current.isna().any():
+        bad = [int(k) + 1 for k in rows.index[current.isna()]]
         raise SessionError(f"{events_tsv}: column {STIM_CURRENT} holds non-numeric values on rows with a "
-                           f"stimulation site (rows {list(rows.index[current.isna()])}); fix the table.")
+                           f"stimulation site (data rows {bad}, counted from 1 after the header); fix the table.")
     return [{"time_s": float(t), "site": str(s), "amplitude": float(a), "unit": unit}
             for t, s, a in zip(rows["onset"], rows[STIM_SITE], np.asarray(current, dtype=np.float64))]
 

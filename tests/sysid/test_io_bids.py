@@ -77,3 +77,30 @@ def test_bids_entities_that_match_nothing_list_what_the_dataset_has(bids_root, t
     assert not (tmp_path / "s.h5").exists()
     with pytest.raises(FileFormatError, match=r"is a folder"):
         load_session(root)
+
+
+def test_a_non_numeric_current_names_its_data_row_counted_from_1(bids_root, tmp_path, capsys):
+    """A typo in a stimulation current of events.tsv: one line naming the column and the data row as a person counts
+    it in a spreadsheet (from 1 after the header, as the table reader's messages do), exit code 2, no output file."""
+    import shutil
+
+    root = tmp_path / "bids"
+    shutil.copytree(bids_root[0], root)
+    events = next(root.rglob("*_events.tsv"))
+    lines = events.read_text(encoding="utf-8").splitlines()
+    header = lines[0].split("\t")
+    col = header.index("electrical_stimulation_current")
+    cells = lines[2].split("\t")  # the second data row
+    cells[col] = "0..003"
+    lines[2] = "\t".join(cells)
+    events.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    desc = tmp_path / "d.toml"
+    desc.write_text('[recording]\nbids = {subject = "01", session = "1", task = "stim", run = "1"}\n'
+                    '[channels]\noutputs = ["LA1", "LA2"]\noutput_unit = "uV"\n'
+                    '[pulses]\nfrom_recording = true\nunit = "A"\n', encoding="utf-8")
+    out = tmp_path / "s.h5"
+    assert main(["convert", str(root), "--description", str(desc), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1
+    assert "electrical_stimulation_current" in err and "data rows [2], counted from 1 after the header" in err
+    assert not out.exists()
