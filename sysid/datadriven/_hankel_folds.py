@@ -49,8 +49,11 @@ WORKERS = 2
 #: Regressor rows (``n_b``) from which the folds are scored here (and the total's factor is kept: also from
 #: ``gram.TOTAL_FACTOR_ROWS``); smaller fits score their folds one by one (threads would cost more than they save).
 SIDE_BY_SIDE_ROWS = 512
-#: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks.
-PIECES = 2
+#: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks. One (whole halves, 500
+#: rows at past 100 / horizon 50): per row, ``trsm`` took 15 % and ``trmm`` 10 % more CPU in pieces of 250 rows
+#: than of 500 (one BLAS thread, measured on a fold's training Gram; 0.05 s of CPU per fold in all), and the two
+#: halves still keep both workers busy.
+PIECES = 1
 #: Task priorities (lowest first): a fold's factor, then its triangular solves (the chain every later fold waits
 #: for), then the total's factor (``run``) and the products (which need it: they fill the other core beside a
 #: fold's factor and free their copies of ``Θ``, 20 MB a fold), then the extra tasks.
