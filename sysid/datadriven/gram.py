@@ -31,7 +31,7 @@ from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import gram_scale, held_out_constant, strength_errors
 from ._memory import release_freed_memory, touched_empty
-from ._nogil_cholesky import _one_norm, potrf_lower
+from ._nogil_cholesky import _one_norm, pocon_lower, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
 #: ``eps · κ(H Hᵀ)`` against ``eps · κ(H)`` for QR (Golub & Van Loan 2013, section 5.3.8): at 1e8 that bound is
@@ -119,10 +119,16 @@ class _GramFold:
 
 def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = None) -> float:
     """Estimated 1-norm condition number of ``G = F Fᵀ`` from its Cholesky factor ``F`` (LAPACK ``pocon``);
-    ``norm`` is ``||G||₁`` when ``G`` is not given."""
-    pocon, = sla.get_lapack_funcs(("pocon",), (F,))
-    rcond, info = pocon(F, float(np.abs(G).sum(axis=0).max()) if norm is None else norm, uplo="L")
-    return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
+    ``norm`` is ``||G||₁`` when ``G`` is not given. The same LAPACK routine with the GIL released where ``F`` is a
+    square Fortran-ordered float64 array (:func:`._nogil_cholesky.pocon_lower`): other threads' Python work goes on.
+    """
+    norm = float(np.abs(G).sum(axis=0).max()) if norm is None else norm
+    rcond = pocon_lower(F, norm)
+    if rcond is None:
+        pocon, = sla.get_lapack_funcs(("pocon",), (F,))
+        rcond, info = pocon(F, norm, uplo="L")
+        rcond = rcond if info == 0 else 0.0
+    return float(np.inf) if not rcond > 0 else float(1.0 / rcond)
 
 
 def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False, begin=None) -> float:
