@@ -18,13 +18,15 @@ kernels' groups of rows, so the numbers are those of whole halves (measured: bit
 cut at 250 rows they moved by 4e-15).
 
 The steps are tasks of one pool (:class:`._task_pool.TaskPool`, :class:`_FoldPlan`) begun before the total Gram is
-assembled for its condition check (``gram.gram_condition_of``'s ``begin``): the first fold is assembled beside the
-total (two assemblies, each holding the GIL only in part), then factored and solved (steps 1-3 up to ``Θ``) beside
-the total's Cholesky factor, itself a task of the pool (``run``). Step 3's product with ``Ct`` waits for that
-factor; ``Θ``'s rows are copied out of the fold's array, which is freed once the fold's solves are done, so the next
-fold is assembled and factored (the chain every later step waits for: it runs first) while the products of the
-previous ones and the extra tasks (the closed-form predictor, its plan gaps) fill the other core. One fold's array
-is held at a time (and the copies of ``Θ`` of folds whose products wait).
+assembled for its condition check (``gram.gram_condition_of``'s ``begin``): the first fold's rows are assembled
+first, alone (two assemblies at once hold the GIL in turns: measured, each took 2-3 times as long), while the main
+thread touches the total Gram's array; the total's rows follow (``run.before_rows``) beside the fold's factor
+(GIL-free), then the fold's solves (steps 1-3 up to ``Θ``) run beside the total's Cholesky factor, itself a task of
+the pool (``run``). Step 3's product with ``Ct`` waits for that factor; ``Θ``'s rows are copied out of the fold's
+array, which is reused once the fold's solves are done (one buffer for every fold: a fresh array's first touch costs
+more than its assembly), so the next fold is assembled and factored (the chain every later step waits for: it runs
+first) while the products of the previous ones and the extra tasks (the closed-form predictor, its plan gaps) fill
+the other core. One fold's array is held at a time (and the copies of ``Θ`` of folds whose products wait).
 """
 
 from __future__ import annotations
@@ -268,8 +270,9 @@ class _FoldPlan:
 
 def start_first_fold(folds, n_b: int):
     """A :class:`_FoldPlan` begun (its first fold assembled, factored and solved, then the next fold's), or None
-    (nothing to score here). Called before the total Gram is assembled for its condition check, it runs beside that
-    assembly and the total's Cholesky factor (``run``) instead of after them. One fold's array more is held
+    (nothing to score here). Called before the total Gram is assembled for its condition check, it runs before that
+    assembly (``run.before_rows``), beside it and beside the total's Cholesky factor (``run``) instead of after
+    them. One fold's array more is held
     meanwhile, as while the folds are scored (the total's factor and one fold's array). :func:`fold_errors` or
     ``stop()`` ends it (and, as a last resort, dropping it: its threads end once their tasks are done)."""
     total = getattr(folds, "total", None)
