@@ -18,17 +18,20 @@ kernels' groups of rows, so the numbers are those of whole halves (measured: bit
 cut at 250 rows they moved by 4e-15).
 
 The steps are tasks of one pool (:class:`._task_pool.TaskPool`, :class:`_FoldPlan`) begun before the total Gram is
-assembled for its condition check (``gram.gram_condition_of``'s ``begin``): the first fold is assembled beside the
-total (two assemblies, each holding the GIL only in part), then factored and solved (steps 1-3 up to ``Θ``) beside
-the total's Cholesky factor, itself a task of the pool (``run``). Step 3's product with ``Ct`` waits for that
-factor; ``Θ``'s rows are copied out of the fold's array, which is freed once the fold's solves are done, so the next
-fold is assembled and factored (the chain every later step waits for: it runs first) while the products of the
-previous ones and the extra tasks (the closed-form predictor, its plan gaps) fill the other core. One fold's array
-is held at a time (and the copies of ``Θ`` of folds whose products wait).
+assembled for its condition check (``gram.gram_condition_of``'s ``begin``): the first fold's rows are assembled
+first, alone (two assemblies at once hold the GIL in turns: measured, each took 2-3 times as long), while the main
+thread touches the total Gram's array; the total's rows follow (``run.before_rows``) beside the fold's factor
+(GIL-free), then the fold's solves (steps 1-3 up to ``Θ``) run beside the total's Cholesky factor, itself a task of
+the pool (``run``). Step 3's product with ``Ct`` waits for that factor; ``Θ``'s rows are copied out of the fold's
+array, which is reused once the fold's solves are done (one buffer for every fold: a fresh array's first touch costs
+more than its assembly), so the next fold is assembled and factored (the chain every later step waits for: it runs
+first) while the products of the previous ones and the extra tasks (the closed-form predictor, its plan gaps) fill
+the other core. One fold's array is held at a time (and the copies of ``Θ`` of folds whose products wait).
 """
 
 from __future__ import annotations
 
+import functools
 import threading
 import weakref
 from concurrent.futures import Future
@@ -48,8 +51,11 @@ WORKERS = 2
 #: Regressor rows (``n_b``) from which the folds are scored here (and the total's factor is kept: also from
 #: ``gram.TOTAL_FACTOR_ROWS``); smaller fits score their folds one by one (threads would cost more than they save).
 SIDE_BY_SIDE_ROWS = 512
-#: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks.
-PIECES = 2
+#: Pieces of each half of a fold's predicted rows solved and multiplied as separate tasks. One (whole halves, 500
+#: rows at past 100 / horizon 50): per row, ``trsm`` took 15 % and ``trmm`` 10 % more CPU in pieces of 250 rows
+#: than of 500 (one BLAS thread, measured on a fold's training Gram; 0.05 s of CPU per fold in all), and the two
+#: halves still keep both workers busy.
+PIECES = 1
 #: Task priorities (lowest first): a fold's factor, then its triangular solves (the chain every later fold waits
 #: for), then the total's factor (``run``) and the products (which need it: they fill the other core beside a
 #: fold's factor and free their copies of ``Θ``, 20 MB a fold), then the extra tasks.
@@ -63,11 +69,14 @@ def available(total, n_b: int) -> bool:
             and 0 < n_b < F.shape[0])
 
 
-def _factor_fold(train, n_b: int):
-    """Step 1: the training Gram's first ``n_b`` rows (C-ordered: the column-major panel ``[G11; G21]``) with
-    ``G11`` factored in place, or None (not positive definite, or its estimated condition number above
-    ``GRAM_CONDITION_LIMIT``, as ``gram.unregularised_fold_error``: the caller takes the general route)."""
-    Gt = train.gram_rows(0, n_b)  # C-ordered n_b × n: the memory of the column-major panel [G11; G21]
+def _factor_fold(train, n_b: int, out=None, assembled=None):
+    """Step 1: the training Gram's first ``n_b`` rows (C-ordered: the column-major panel ``[G11; G21]``; in the
+    front of the flat buffer ``out`` where given) with ``G11`` factored in place, or None (not positive definite, or
+    its estimated condition number above ``GRAM_CONDITION_LIMIT``, as ``gram.unregularised_fold_error``: the caller
+    takes the general route). ``assembled()`` is called once the rows are assembled, before the factor."""
+    Gt = train.gram_rows(0, n_b, out=out)  # C-ordered n_b × n: the memory of the column-major panel [G11; G21]
+    if assembled is not None:
+        assembled()
     n = Gt.shape[1]
     norm = _one_norm(Gt, n_b)
     if _CALLS.potrf(Gt, 0, n_b, n) != 0:
@@ -137,14 +146,27 @@ class _FoldPlan:
         self._waiting: list = []  # products waiting for the total's factor
         self._product_args = None  # (F, lt21_sq) once given
         self._stopped = False
+        #: Set once the first fold's rows are assembled (or its step ended without them).
+        self.first_rows = threading.Event()
+        #: The folds' arrays, one after the other (a fresh array's first touch costs more than its assembly).
+        self._buffer = np.empty(n_b * total.n_rows) if self.queue else None
+        #: ``run`` (:meth:`_run_total`) as ``gram.gram_condition_of`` takes it: ``before_rows`` waits for the first
+        #: fold's rows, so that the total's rows are assembled after them (beside this fold's factor, GIL-free).
+        self.run = functools.partial(_FoldPlan._run_total, weakref.proxy(self))
+        self.run.before_rows = self.first_rows.wait
         weakref.finalize(self, self.pool.close, False)  # an unused plan dropped (an error in between): threads end
         self._next_fold()
 
     def _next_fold(self) -> None:
         with self._lock:
             i = None if self._stopped or not self.queue else self.queue.pop(0)
+            out = self._buffer
+            if not self.queue or self._stopped:
+                self._buffer = None  # the last fold's array: freed with it
         if i is not None:
-            self.pool.submit(_FACTOR, self._run, i, self._factor, i)
+            self.pool.submit(_FACTOR, self._run, i, self._factor, i, out)
+        else:
+            self.first_rows.set()
 
     def _run(self, i: int, step, *args) -> None:
         """``step(*args)`` of fold ``i``; an error it raises stops the plan and becomes every unfinished fold's (the
@@ -158,8 +180,12 @@ class _FoldPlan:
                 if not future.done():
                     future.set_exception(exc)
 
-    def _factor(self, i: int) -> None:
-        Gt = _factor_fold(_others(self.folds, i), self.n_b)
+    def _factor(self, i: int, out) -> None:
+        try:
+            Gt = _factor_fold(_others(self.folds, i), self.n_b, out, self.first_rows.set)
+        finally:
+            self.first_rows.set()
+        del out
         if Gt is None:
             self.errors[i].set_result(None)
             del Gt
@@ -209,7 +235,7 @@ class _FoldPlan:
         for task in waiting:
             self.pool.submit(_PRODUCT, self._run, task[0], self._product, *task)
 
-    def run(self, task):
+    def _run_total(self, task):
         """``task()`` (the total's Cholesky factor, ``gram.gram_condition_of``) on the workers, before the
         products and extra tasks and after the folds' own steps; its factor, if it has one, starts the products."""
         try:
@@ -238,14 +264,15 @@ class _FoldPlan:
         """Begin no other fold, wait for the tasks begun and end the threads (the plan is not used)."""
         with self._lock:
             self._stopped = True
-            self._waiting = []
+            self._waiting, self._buffer = [], None
         self.pool.close()
 
 
 def start_first_fold(folds, n_b: int):
     """A :class:`_FoldPlan` begun (its first fold assembled, factored and solved, then the next fold's), or None
-    (nothing to score here). Called before the total Gram is assembled for its condition check, it runs beside that
-    assembly and the total's Cholesky factor (``run``) instead of after them. One fold's array more is held
+    (nothing to score here). Called before the total Gram is assembled for its condition check, it runs before that
+    assembly (``run.before_rows``), beside it and beside the total's Cholesky factor (``run``) instead of after
+    them. One fold's array more is held
     meanwhile, as while the folds are scored (the total's factor and one fold's array). :func:`fold_errors` or
     ``stop()`` ends it (and, as a last resort, dropping it: its threads end once their tasks are done)."""
     total = getattr(folds, "total", None)

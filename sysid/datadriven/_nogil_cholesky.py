@@ -37,6 +37,16 @@ def potrf_lower(G: np.ndarray, clean: bool):
     return F, info
 
 
+def pocon_lower(F: np.ndarray, norm: float) -> float | None:
+    """LAPACK ``pocon``'s reciprocal condition estimate (0.0 where it fails) of ``F Fᵀ`` from the lower triangle of the
+    square Fortran-ordered ``F``, the GIL released; None where that call cannot be made here (the caller takes
+    SciPy's wrapper, the same routine)."""
+    n = F.shape[0]
+    if _CALLS is None or F.ndim != 2 or F.shape != (n, n) or not F.flags.f_contiguous or F.dtype != np.float64:
+        return None
+    return _CALLS.pocon(F, 0, n, n, norm)
+
+
 def _one_norm(G: np.ndarray, n: int | None = None) -> float:
     """``||G[:, :n]||₁`` (largest absolute column sum) summed over blocks of rows: no temporary of ``G``'s size."""
     n = G.shape[1] if n is None else n

@@ -21,8 +21,6 @@ Higham N.J. (2002), Accuracy and Stability of Numerical Algorithms, 2nd ed., cha
 
 from __future__ import annotations
 
-import ctypes
-import ctypes.util
 import functools
 
 import numpy as np
@@ -32,7 +30,8 @@ from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import gram_scale, held_out_constant, strength_errors
-from ._nogil_cholesky import _one_norm, potrf_lower
+from ._memory import release_freed_memory, touched_empty
+from ._nogil_cholesky import _one_norm, pocon_lower, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
 #: ``eps · κ(H Hᵀ)`` against ``eps · κ(H)`` for QR (Golub & Van Loan 2013, section 5.3.8): at 1e8 that bound is
@@ -41,29 +40,6 @@ from ._nogil_cholesky import _one_norm, potrf_lower
 #: the QR route at 1.5e7 (24.7 s instead of ~1 s); measured there, the two routes' predictions differ by 2e-11
 #: relative at conditions 2.6e7 and 9.1e7 (``tests/sysid/test_gram_route.py``).
 GRAM_CONDITION_LIMIT = 1e8
-
-
-def release_freed_memory() -> None:
-    """Hand freed heap pages back to the operating system (glibc ``malloc_trim``; nothing elsewhere).
-
-    Arrays of 128 kB … 32 MB (the row blocks of a Gram, ``pN × n_b`` products) live on the heap once glibc has
-    raised its mapping threshold, and the heap keeps their pages after they are freed: measured at past 100 /
-    horizon 50, 50 MB of the least-squares fit's peak resident memory were such pages.
-    """
-    if _LIBC:
-        _LIBC[0].malloc_trim(0)
-
-
-def _load_libc() -> list:
-    name = ctypes.util.find_library("c")
-    try:
-        libc = ctypes.CDLL(name) if name else None
-        return [libc] if libc is not None and hasattr(libc, "malloc_trim") else []
-    except OSError:
-        return []
-
-
-_LIBC = _load_libc()
 
 
 def hankel_permutation(m: int, p: int, past: int, horizon: int) -> np.ndarray:
@@ -112,12 +88,13 @@ class _GramFold:
         """``H Hᵀ`` in the row order ``[Up; Yp; Uf; Yf]``."""
         return self.gram_rows(0, self.perm.size)
 
-    def gram_rows(self, r0: int, r1: int, fortran: bool = False) -> np.ndarray:
+    def gram_rows(self, r0: int, r1: int, fortran: bool = False, out: np.ndarray | None = None) -> np.ndarray:
         """Rows ``[r0, r1)`` of :attr:`gram` (the same numbers), assembled alone (Fortran-ordered with
-        ``fortran``)."""
+        ``fortran``; into the front of the flat float64 ``out``, returned as a view of it, where given)."""
         index = np.empty_like(self.perm)
         index[self.perm] = np.arange(self.perm.size)
-        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1), fortran=fortran)
+        return _lagged_gram(self.sums, index.reshape(self.sums.X.shape[0], -1), rows=(r0, r1), fortran=fortran,
+                            out=out)
 
     def gram_diagonal(self) -> np.ndarray:
         """The diagonal of :attr:`gram` (the same numbers), from the sums alone."""
@@ -142,10 +119,16 @@ class _GramFold:
 
 def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = None) -> float:
     """Estimated 1-norm condition number of ``G = F Fᵀ`` from its Cholesky factor ``F`` (LAPACK ``pocon``);
-    ``norm`` is ``||G||₁`` when ``G`` is not given."""
-    pocon, = sla.get_lapack_funcs(("pocon",), (F,))
-    rcond, info = pocon(F, float(np.abs(G).sum(axis=0).max()) if norm is None else norm, uplo="L")
-    return float(np.inf) if info != 0 or not rcond > 0 else float(1.0 / rcond)
+    ``norm`` is ``||G||₁`` when ``G`` is not given. The same LAPACK routine with the GIL released where ``F`` is a
+    square Fortran-ordered float64 array (:func:`._nogil_cholesky.pocon_lower`): other threads' Python work goes on.
+    """
+    norm = float(np.abs(G).sum(axis=0).max()) if norm is None else norm
+    rcond = pocon_lower(F, norm)
+    if rcond is None:
+        pocon, = sla.get_lapack_funcs(("pocon",), (F,))
+        rcond, info = pocon(F, norm, uplo="L")
+        rcond = rcond if info == 0 else 0.0
+    return float(np.inf) if not rcond > 0 else float(1.0 / rcond)
 
 
 def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = False, begin=None) -> float:
@@ -158,10 +141,17 @@ def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = F
     ``begin()`` is called before the Gram is assembled (work to start beside the assembly and the factor: the
     assembly's Python work holds the GIL only in part, the factor not at all); if it returns ``run``, the factor
     is computed as ``run(task)`` (``task()`` on the caller's worker threads, which then share the cores with the
-    work begun; the same call on the same array, so the same numbers).
+    work begun; the same call on the same array, so the same numbers). Where ``run`` has ``before_rows`` (the
+    work begun assembles rows of its own first: two assemblies at once hold the GIL in turns and each takes 2-3
+    times as long), the Gram's array is touched meanwhile (:func:`._memory.touched_empty`), ``before_rows()`` waits
+    for those rows, and the Gram is assembled into the array after them.
     """
     run = begin() if begin is not None else None
-    G = fold.gram
+    before, out = getattr(run, "before_rows", None), None
+    if before is not None:  # the work begun assembles rows first: this array's first touch meanwhile (GIL-free)
+        out = touched_empty(fold.n_rows ** 2)
+        before()
+    G = fold.gram_rows(0, fold.n_rows, out=out)
     norm = _one_norm(G)
     # in place (memory: one Gram-sized array); without clean the strict upper triangle keeps G's own entries
     task = functools.partial(potrf_lower, G, clean=not keep_gram)  # the GIL released: other threads work beside it

@@ -32,6 +32,19 @@ def test_potrf_lower_reports_a_matrix_that_is_not_positive_definite():
     assert nc.potrf_lower(G, clean=True)[1] == info_ref == 2
 
 
+@pytest.mark.parametrize("n", [7, 300, 600])
+def test_pocon_lower_equals_scipys_dpocon_bit_for_bit(n):
+    X = np.random.default_rng(n).standard_normal((n, n + 40))
+    X[:, :n] *= np.logspace(0, -3, n)[:, None]  # rows of unequal scale: a condition number well above 1
+    G = X @ X.T
+    F = np.asfortranarray(np.linalg.cholesky(G))
+    norm = float(np.abs(G).sum(axis=0).max())
+    ref, info = sla.lapack.dpocon(F, norm, uplo="L")  # the reference: SciPy's wrapper of the same routine
+    assert info == 0 and nc.pocon_lower(F, norm) == ref
+    assert gr.gram_condition(F, G) == 1.0 / ref
+    assert nc.pocon_lower(np.ascontiguousarray(F), norm) is None  # C-ordered: the wrapper's route
+
+
 def test_the_first_fold_begun_before_the_check_gives_the_same_errors(monkeypatch):
     # reference: the same fold errors with the first fold begun after the check (an internal equivalence)
     from tests.sysid.test_hankel_folds import _session

@@ -80,11 +80,11 @@ def test_an_error_in_a_folds_step_is_raised_by_fold_errors_not_waited_for(monkey
     real = hf._factor_fold
     calls = []
 
-    def factor(train, n):
+    def factor(train, n, *args):
         calls.append(1)
         if len(calls) == 2:
             raise MemoryError("fold 1")
-        return real(train, n)
+        return real(train, n, *args)
     monkeypatch.setattr(hf, "_factor_fold", factor)
     with pytest.raises(MemoryError, match="fold 1"):
         hf.fold_errors(fs, total, n_b, np.ones(8))  # 8 weights: p · horizon outputs of folds_setup
@@ -126,3 +126,32 @@ def test_a_plan_begun_before_a_refused_gram_is_stopped_and_the_fit_is_the_qr_rou
     assert len(plans) == 1 and plans[0] is not None and new.factor_route_ == "qr"
     assert not any(t.is_alive() for t in plans[0].pool._threads) and threading.active_count() == before
     np.testing.assert_array_equal(new.cv_table_.to_numpy(float), qr.cv_table_.to_numpy(float))
+
+
+def test_the_totals_rows_are_assembled_after_the_first_folds_and_the_folds_share_one_array(monkeypatch):
+    # Two assemblies at once hold the GIL in turns (issue 14, measured): the plan begun before the condition check
+    # assembles its first fold's rows, the total's wait for them (``before_rows``); the folds' arrays, one after
+    # the other, are one buffer (a fresh array's first touch costs more than its assembly).
+    from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+    from tests.sysid.test_hankel_folds import _session
+
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)  # 1 row: the small session takes the large fits' routes
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    calls = []
+    real = gr._GramFold.gram_rows
+
+    def rows(self, r0, r1, fortran=False, out=None):
+        t0 = time.perf_counter()
+        time.sleep(0.02)  # long enough that an assembly begun meanwhile would overlap
+        G = real(self, r0, r1, fortran, out)
+        calls.append((t0, time.perf_counter(), r1 == self.n_rows, out is not None and np.shares_memory(G, out),
+                      None if out is None else out.__array_interface__["data"][0]))
+        return G
+    monkeypatch.setattr(gr._GramFold, "gram_rows", rows)
+    HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
+    total = [c for c in calls if c[2]]
+    folds = sorted(c for c in calls if not c[2])
+    assert len(total) == 1 and len(folds) == 3
+    assert total[0][0] >= folds[0][1]  # begun once the first fold's rows were done
+    assert total[0][3] and all(f[3] for f in folds)  # written into the arrays given
+    assert len({f[4] for f in folds}) == 1 and folds[0][4] != total[0][4]  # one buffer for the three folds
