@@ -32,6 +32,7 @@ import scipy.linalg as sla
 
 from ._gil_free import pocon, potrf
 from ._buffers import release_tail
+from ._gram_pairs import pairs_from_gram
 from ._left_svd import left_singular_pairs, work_size
 from .gram import _Layout
 from .nested import NestedOrders
@@ -127,12 +128,15 @@ class _FactorProjection:
         self.future_cov = (S_uu, S_yu)
         self._weighting = (weighting, S_yy, Lf[e:, :b].copy() if weighting == "cva" else None)
 
-    def decompose(self, work: np.ndarray | None = None, keep: int | None = None) -> None:
+    def decompose(self, work: np.ndarray | None = None, keep: int | None = None, scoring: bool = False) -> None:
         """The SVD of the weighted projection (``singular_values``, ``U``, ``w_inv``); needs no part of the factor,
         so the factor can be freed before it, or its memory handed over as ``work`` (a flat float64 array the
         decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers). Given
         ``keep``, the pages of ``work`` beyond its first ``keep`` items and beyond what the decomposition uses are
-        handed back to the system first (:func:`._buffers.release_tail`)."""
+        handed back to the system first (:func:`._buffers.release_tail`). ``scoring`` (a projection whose orders only
+        score: the fitting part's): from the eigendecomposition of the matrix's Gram where its smallest singular
+        value allows (:func:`._gram_pairs.pairs_from_gram`: the same to rounding, a third of the work), else as
+        above."""
         weighting, S_yy, L_yu = self._weighting
         b, e = self.layout.m * self.layout.f, self.layout.m * self.layout.f + len(self.layout.P)
         mat = self.theta_rows[:, :e] if weighting == "n4sid" else self.theta_rows[:, b:e]  # N4SID, else L_YP
@@ -145,7 +149,10 @@ class _FactorProjection:
         wide = mat.shape[1] > mat.shape[0]
         if keep is not None and work is not None:
             release_tail(work, max(keep, work_size(*mat.shape) if wide else 0))
-        if wide:  # the left singular pairs of mat = Rᵀ Qᵀ are those of Rᵀ (square)
+        got = pairs_from_gram(mat) if wide and scoring else None
+        if got is not None:
+            U, sv = got
+        elif wide:  # the left singular pairs of mat = Rᵀ Qᵀ are those of Rᵀ (square)
             U, sv = left_singular_pairs(mat, work)
         else:
             U, sv, _ = np.linalg.svd(mat, full_matrices=False)

@@ -91,16 +91,18 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
 
     Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
-    own (:func:`_fit_pipeline`: Gram, factor, projection, SVD, then the held-out rows), all data's on this one
-    (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is then
-    left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the fitting
-    part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
-    assembled in it in the factor order, overwritten by its factor (whose ``n``-independent pieces the projection
-    copies), and then serves as the SVD's workspace and (the fitting part's) for the held-out Gram's rows of the
-    past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The Cholesky factorisations and the
-    SVDs release the GIL. The same computations as one after the other, so the same numbers; when both fail, the
-    fitting part's failure is the one reported (it was checked first before). (When only the fitting part's Gram
-    is too ill conditioned, all data's SVD has started and is joined in vain: the covariance route follows.)
+    own (:func:`_fit_pipeline`: factor, projection, decomposition, then the held-out rows) once its Gram is
+    assembled here, all data's on this one (:func:`_assembled`, :func:`_projection`), whose SVD
+    (:meth:`~.factor._FactorProjection.decompose`) is then left running on a second thread (``proj_all.pending``;
+    ``stack`` joins it when it closes) so that the fitting part's candidate orders can be scored meanwhile. Each
+    pipeline keeps one Gram-sized buffer: the Gram is assembled in it in the factor order, overwritten by its factor
+    (whose ``n``-independent pieces the projection copies), and then serves as the SVD's workspace (all data's; the
+    fitting part's decomposition, which only scores, mostly needs none: ``scoring``) and (the fitting part's) for
+    the held-out Gram's rows of the past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The
+    Cholesky factorisations and the decompositions release the GIL. The same computations as one after the other,
+    so the same numbers; when both fail, the fitting part's failure is the one reported (it was checked first
+    before). (When only the fitting part's Gram is too ill conditioned, all data's SVD has started and is joined in
+    vain: the covariance route follows.)
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
@@ -110,7 +112,10 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     svd_side = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-svd-all")
     stack.callback(svd_side.shutdown)  # (leaving waits for a decomposition already started)
     stack.callback(fit_side.shutdown)
-    fit_job = fit_side.submit(_fit_pipeline, acc_fit, acc_check, L, order, full, scale, weighting)
+    # the fitting part's Gram assembled first (here), then all data's beside its Cholesky: never two assemblies at
+    # once (their Python-driven copies take turns on the GIL: no faster than one after the other, and more CPU)
+    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), acc_check, L, order, full, scale,
+                              weighting)
     try:
         proj_all, buffer = _projection(_assembled(acc_all, L, order, full), L, weighting)
     except BaseException:
@@ -141,15 +146,16 @@ def _projection(assembled, L: _Layout, weighting: str):
     return factor_projection(G, L, weighting), buffer
 
 
-def _fit_pipeline(acc_fit, acc_check, L: _Layout, order, full, scale, weighting: str):
-    """The fitting part's projection, decomposed, and the held-out covariance blocks (in the same buffer, once the
-    decomposition is done with it); None when the fitting part's Gram is too ill conditioned. (Its Gram is
-    assembled on this thread: the page faults of its fresh buffer's first touch then overlap all data's.)"""
-    proj, buffer = _projection(_assembled(acc_fit, L, order, full), L, weighting)
+def _fit_pipeline(assembled, acc_check, L: _Layout, order, full, scale, weighting: str):
+    """The fitting part's projection of its :func:`_assembled` Gram, decomposed (its orders only score:
+    ``scoring``), and the held-out covariance blocks (in the same buffer, once the decomposition is done with it);
+    None when the fitting part's Gram is too ill conditioned."""
+    proj, buffer = _projection(assembled, L, weighting)
+    del assembled
     if proj is None:
         return None
     n, b, e = int(acc_check.n), L.m * L.f, L.m * L.f + len(L.P)
-    proj.decompose(buffer, e * L.nz)  # (the pages the held-out rows will not use are handed back first)
+    proj.decompose(buffer, e * L.nz, True)  # (the pages the held-out rows will not use are handed back first)
     rows = scaled(_gram_from_sums(acc_check, L, order, (0, e), buffer), n, full, full[:e])  # [Uf; P] rows
     release_tail(buffer, rows.size)  # (held as long as the held-out blocks: only their rows stay resident)
     diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
