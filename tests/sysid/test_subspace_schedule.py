@@ -1,0 +1,47 @@
+"""The factor route's schedule (``prepare._factor_route``): the two Gram assemblies one after the other, all data's
+into a buffer paged in beforehand, with the numbers of the fresh-buffer route.
+
+Reference: the same estimator with the paging switched off (a new buffer per Gram, as before) — an internal
+equivalence: the claim checked is that the schedule changes no number.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import numpy as np
+
+from stimsteer.sysid.subspace import SubspaceId, prepare
+from stimsteer.sysid.subspace._buffers import touched
+
+from tests.sysid.test_subspace_factor import _session, _windows
+
+
+def test_a_paged_buffer_is_a_new_writable_array_of_the_size_asked():
+    a, b = touched(100_000), touched(100_000)
+    assert a.shape == (100_000,) and a.dtype == np.float64 and a.flags.writeable and not np.shares_memory(a, b)
+
+
+def test_the_two_grams_are_assembled_one_after_the_other_and_fit_as_with_fresh_buffers(monkeypatch):
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)  # 0: the factor route at this small size
+    session = _session(noise=0.3, seed=4)
+    kw = dict(past_steps=6, future_steps=5)
+    spans, assemble = [], prepare._gram_from_sums
+
+    def timed(acc, L, order=None, rows=None, out=None):
+        t0 = time.perf_counter()
+        time.sleep(0.05)  # (chosen: long beside the rest of this small fit, so an overlap could not be missed)
+        got = assemble(acc, L, order, rows, out)
+        if rows is None:  # a whole Gram (not the held-out rows)
+            spans.append((t0, time.perf_counter(), threading.current_thread().name))
+        return got
+
+    monkeypatch.setattr(prepare, "_gram_from_sums", timed)
+    got = SubspaceId(**kw).fit(session)
+    (s0, e0, _t0), (s1, e1, _t1) = sorted(spans)
+    assert e0 <= s1  # the fitting part's whole Gram, then all data's
+    monkeypatch.setattr(prepare, "touched", np.empty)  # a new buffer, never paged in beforehand
+    ref = SubspaceId(**kw).fit(session)
+    assert got.order_ == ref.order_ and got.order_table_.equals(ref.order_table_)
+    np.testing.assert_array_equal(got.predict_many(*_windows()), ref.predict_many(*_windows()))
