@@ -13,7 +13,7 @@ faster computations of the same equations (nested orders, structured sums, doubl
 from __future__ import annotations
 
 import contextlib
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 
 import numpy as np
 
@@ -118,9 +118,8 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     # process, the 3,450-row Gram of the benchmark session, 4 runs each), the second Gram assembled into a new
     # buffer took 0.24-0.85 s of CPU, into a buffer paged in beforehand 0.21-0.33 s plus 0.01-0.09 s of paging
     # (the assembly's strided writes take the page faults one by one; a sequential pass takes them in order)
-    paged = fit_side.submit(touched, L.nz * L.nz)
-    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), acc_check, L, order, full, scale,
-                              weighting)
+    paged, handed = fit_side.submit(touched, L.nz * L.nz), Future()
+    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, handed)
     try:
         proj_all, buffer = _projection(_assembled(acc_all, L, order, full, paged.result()), L, weighting)
     except BaseException:
@@ -130,10 +129,13 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     if proj_all is not None:  # (its pages beyond the SVD's workspace handed back: the peak memory is at its end)
         proj_all.pending = svd_side.submit(proj_all.decompose, buffer, 0)
     del buffer
-    fitted = fit_job.result()
-    if fitted is None or proj_all is None:
+    # the held-out rows assembled here, in the fitting part's buffer once its projection has the factor's pieces,
+    # while that projection is decomposed (the assembly's Python-driven copies beside the GIL-free decompositions)
+    rows = handed.result()
+    check = None if rows is None else _held_out(acc_check, L, order, full, scale, rows)
+    proj_fit = fit_job.result()
+    if proj_fit is None or proj_all is None:
         return None
-    proj_fit, check = fitted
     return proj_all, proj_fit, check, scale
 
 
@@ -152,20 +154,35 @@ def _projection(assembled, L: _Layout, weighting: str):
     return factor_projection(G, L, weighting), buffer
 
 
-def _fit_pipeline(assembled, acc_check, L: _Layout, order, full, scale, weighting: str):
+def _fit_pipeline(assembled, L: _Layout, weighting: str, handed: Future):
     """The fitting part's projection of its :func:`_assembled` Gram, decomposed (its orders only score:
-    ``scoring``), and the held-out covariance blocks (in the same buffer, once the decomposition is done with it);
-    None when the fitting part's Gram is too ill conditioned."""
-    proj, buffer = _projection(assembled, L, weighting)
-    del assembled
+    ``scoring``); None when the fitting part's Gram is too ill conditioned. Once the projection has taken the
+    factor's pieces, its buffer (the pages beyond the held-out rows handed back) is the result of ``handed`` (None
+    when there is no projection), for :func:`_held_out`; the decomposition then computes in memory of its own."""
+    proj = buffer = None
+    try:
+        proj, buffer = _projection(assembled, L, weighting)
+        del assembled
+        if proj is not None:
+            release_tail(buffer, (L.m * L.f + len(L.P)) * L.nz)
+    finally:
+        if not handed.done():  # (None when the projection failed or raised: nothing waits in vain)
+            handed.set_result(None if proj is None else buffer)
     if proj is None:
         return None
+    del buffer
+    proj.decompose(None, None, True)
+    return proj
+
+
+def _held_out(acc_check, L: _Layout, order, full, scale, buffer) -> _CheckCov:
+    """The held-out covariance blocks: the held-out Gram's rows of the future inputs and of the past
+    (:class:`~.heldout._CheckCov` needs no more), assembled in ``buffer``, and the diagonal of its future outputs."""
     n, b, e = int(acc_check.n), L.m * L.f, L.m * L.f + len(L.P)
-    proj.decompose(buffer, e * L.nz, True)  # (the pages the held-out rows will not use are handed back first)
     rows = scaled(_gram_from_sums(acc_check, L, order, (0, e), buffer), n, full, full[:e])  # [Uf; P] rows
     release_tail(buffer, rows.size)  # (held as long as the held-out blocks: only their rows stay resident)
     diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
-    return proj, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
+    return _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
 
 
 def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:

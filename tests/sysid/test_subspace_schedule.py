@@ -11,6 +11,7 @@ import threading
 import time
 
 import numpy as np
+import pytest
 
 from stimsteer.sysid.subspace import SubspaceId, prepare
 from stimsteer.sysid.subspace._buffers import touched
@@ -45,3 +46,39 @@ def test_the_two_grams_are_assembled_one_after_the_other_and_fit_as_with_fresh_b
     ref = SubspaceId(**kw).fit(session)
     assert got.order_ == ref.order_ and got.order_table_.equals(ref.order_table_)
     np.testing.assert_array_equal(got.predict_many(*_windows()), ref.predict_many(*_windows()))
+
+
+@pytest.mark.parametrize("outcome", ["raises", "ill-conditioned"])
+def test_the_held_out_rows_wait_for_no_buffer_when_the_fitting_part_has_no_projection(monkeypatch, outcome):
+    """The main thread waits for the fitting part's buffer (``handed``): a fitting part whose projection raises or
+    is refused must not leave it waiting: the error is raised, or the covariance route fits (as before)."""
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    session = _session(noise=0.3, seed=4)
+    project = prepare.factor_projection
+
+    def failing(S, L, weighting):
+        if "subspace-fit" in threading.current_thread().name:
+            if outcome == "raises":
+                raise RuntimeError("the fitting part's projection failed")
+            return None
+        return project(S, L, weighting)
+
+    monkeypatch.setattr(prepare, "factor_projection", failing)
+    done = []
+    worker = threading.Thread(target=lambda: done.append(_outcome(session)), daemon=True)
+    worker.start()
+    worker.join(60)  # 60 s: chosen far beyond this small fit, only against a hang
+    assert done, "the fit hung"
+    if outcome == "raises":
+        assert isinstance(done[0], RuntimeError)
+    else:  # the covariance route's fit
+        monkeypatch.setattr(prepare, "_FACTOR_FROM", 10**9)
+        ref = SubspaceId(past_steps=6, future_steps=5).fit(session)
+        assert done[0].order_ == ref.order_ and done[0].order_table_.equals(ref.order_table_)
+
+
+def _outcome(session):
+    try:
+        return SubspaceId(past_steps=6, future_steps=5).fit(session)
+    except Exception as exc:  # noqa: BLE001 - the error itself is the outcome checked
+        return exc
