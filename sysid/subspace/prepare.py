@@ -13,6 +13,7 @@ faster computations of the same equations (nested orders, structured sums, doubl
 from __future__ import annotations
 
 import contextlib
+import threading
 from concurrent.futures import Future, ThreadPoolExecutor
 
 import numpy as np
@@ -118,8 +119,8 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     # process, the 3,450-row Gram of the benchmark session, 4 runs each), the second Gram assembled into a new
     # buffer took 0.24-0.85 s of CPU, into a buffer paged in beforehand 0.21-0.33 s plus 0.01-0.09 s of paging
     # (the assembly's strided writes take the page faults one by one; a sequential pass takes them in order)
-    paged, handed = fit_side.submit(touched, L.nz * L.nz), Future()
-    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, handed)
+    paged, held = fit_side.submit(touched, L.nz * L.nz), _HeldOut(acc_check, L, order, full, scale)
+    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, held)
     try:
         proj_all, buffer = _projection(_assembled(acc_all, L, order, full, paged.result()), L, weighting)
     except BaseException:
@@ -129,10 +130,8 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     if proj_all is not None:  # (its pages beyond the SVD's workspace handed back: the peak memory is at its end)
         proj_all.pending = svd_side.submit(proj_all.decompose, buffer, 0)
     del buffer
-    # the held-out rows assembled here, in the fitting part's buffer once its projection has the factor's pieces,
-    # while that projection is decomposed (the assembly's Python-driven copies beside the GIL-free decompositions)
-    rows = handed.result()
-    check = None if rows is None else _held_out(acc_check, L, order, full, scale, rows)
+    held.take()  # (unless the fitting part's thread, done first, has taken them)
+    check = held.blocks.result()
     proj_fit = fit_job.result()
     if proj_fit is None or proj_all is None:
         return None
@@ -154,11 +153,12 @@ def _projection(assembled, L: _Layout, weighting: str):
     return factor_projection(G, L, weighting), buffer
 
 
-def _fit_pipeline(assembled, L: _Layout, weighting: str, handed: Future):
+def _fit_pipeline(assembled, L: _Layout, weighting: str, held: "_HeldOut"):
     """The fitting part's projection of its :func:`_assembled` Gram, decomposed (its orders only score:
     ``scoring``); None when the fitting part's Gram is too ill conditioned. Once the projection has taken the
-    factor's pieces, its buffer (the pages beyond the held-out rows handed back) is the result of ``handed`` (None
-    when there is no projection), for :func:`_held_out`; the decomposition then computes in memory of its own."""
+    factor's pieces, its buffer (the pages beyond the held-out rows handed back) goes to ``held`` (None when there
+    is no projection), and the decomposition computes in memory of its own; then the held-out rows are taken
+    (:meth:`_HeldOut.take`) unless the main thread has taken them."""
     proj = buffer = None
     try:
         proj, buffer = _projection(assembled, L, weighting)
@@ -166,13 +166,37 @@ def _fit_pipeline(assembled, L: _Layout, weighting: str, handed: Future):
         if proj is not None:
             release_tail(buffer, (L.m * L.f + len(L.P)) * L.nz)
     finally:
-        if not handed.done():  # (None when the projection failed or raised: nothing waits in vain)
-            handed.set_result(None if proj is None else buffer)
+        if not held.buffer.done():  # (None when the projection failed or raised: nothing waits in vain)
+            held.buffer.set_result(None if proj is None else buffer)
     if proj is None:
         return None
     del buffer
     proj.decompose(None, None, True)
+    held.take()
     return proj
+
+
+class _HeldOut:
+    """The held-out covariance blocks (:class:`~.heldout._CheckCov`, the future ``blocks``; None without a buffer),
+    assembled in the fitting part's buffer (the future ``buffer``) by whichever thread is free first: the fitting
+    part's once its decomposition is done, or the main thread once all data's decomposition has started (both call
+    :meth:`take`; the first one assembles, the other returns at once)."""
+
+    def __init__(self, acc_check, L: _Layout, order, full, scale):
+        self._args = (acc_check, L, order, full, scale)
+        self.buffer, self.blocks = Future(), Future()
+        self._taken, self._lock = False, threading.Lock()
+
+    def take(self) -> None:
+        with self._lock:
+            if self._taken:
+                return
+            self._taken = True
+        try:
+            buffer = self.buffer.result()
+            self.blocks.set_result(None if buffer is None else _held_out(*self._args, buffer))
+        except BaseException as exc:  # (raised where the blocks are read)
+            self.blocks.set_exception(exc)
 
 
 def _held_out(acc_check, L: _Layout, order, full, scale, buffer) -> _CheckCov:

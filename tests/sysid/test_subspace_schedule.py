@@ -13,7 +13,7 @@ import time
 import numpy as np
 import pytest
 
-from stimsteer.sysid.subspace import SubspaceId, prepare
+from stimsteer.sysid.subspace import SubspaceId, factor, prepare
 from stimsteer.sysid.subspace._buffers import touched
 
 from tests.sysid.test_subspace_factor import _session, _windows
@@ -82,3 +82,37 @@ def _outcome(session):
         return SubspaceId(past_steps=6, future_steps=5).fit(session)
     except Exception as exc:  # noqa: BLE001 - the error itself is the outcome checked
         return exc
+
+
+def test_the_held_out_rows_are_the_same_whichever_thread_assembles_them(monkeypatch):
+    """The held-out rows go to the thread free first (``_HeldOut.take``): made slow in turn, each thread leaves
+    them to the other; the fits are equal bit for bit."""
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    session = _session(noise=0.3, seed=4)
+    held_out, decompose, project = prepare._held_out, factor._FactorProjection.decompose, prepare._projection
+    fits = {}
+    for slow in ("fit", "main"):
+        who = []
+
+        def rows(*a):
+            who.append("fit" if "subspace-fit" in threading.current_thread().name else "main")
+            return held_out(*a)
+
+        def slow_decompose(self, *a):  # the fitting part's decomposition (its thread's last step before the rows)
+            if slow == "fit" and "subspace-fit" in threading.current_thread().name:
+                time.sleep(0.3)  # chosen: long beside the rest of this small fit
+            return decompose(self, *a)
+
+        def slow_projection(*a):  # all data's projection (the main thread's last step before the rows)
+            if slow == "main" and "subspace-fit" not in threading.current_thread().name:
+                time.sleep(0.3)
+            return project(*a)
+
+        monkeypatch.setattr(prepare, "_held_out", rows)
+        monkeypatch.setattr(factor._FactorProjection, "decompose", slow_decompose)
+        monkeypatch.setattr(prepare, "_projection", slow_projection)
+        fits[slow] = SubspaceId(past_steps=6, future_steps=5).fit(session)
+        assert who == ["main" if slow == "fit" else "fit"]
+    a, b = fits["fit"], fits["main"]
+    assert a.order_ == b.order_ and a.order_table_.equals(b.order_table_)
+    np.testing.assert_array_equal(a.predict_many(*_windows()), b.predict_many(*_windows()))
