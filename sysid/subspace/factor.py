@@ -143,9 +143,9 @@ class _FactorProjection:
         decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers). Given
         ``keep``, the pages of ``work`` beyond its first ``keep`` items and beyond what the decomposition uses are
         handed back to the system first (:func:`._buffers.release_tail`). ``scoring`` (a projection whose orders only
-        score: the fitting part's): from the eigendecomposition of the matrix's Gram where its smallest singular
-        value allows (:func:`._gram_pairs.pairs_from_gram`: the same to rounding, a third of the work), else as
-        above."""
+        score: the fitting part's): its ``SCORING_PAIRS`` leading pairs (more when a larger order asks:
+        :meth:`_enough`) from the eigendecomposition of the matrix's Gram where its smallest singular value allows
+        (:func:`._gram_pairs.pairs_from_gram`: the same to rounding, a quarter of the work), else as above."""
         weighting, S_yy, L_yu = self._weighting
         b, e = self.layout.m * self.layout.f, self.layout.m * self.layout.f + len(self.layout.P)
         mat = self.theta_rows[:, :e] if weighting == "n4sid" else self.theta_rows[:, b:e]  # N4SID, else L_YP

@@ -92,15 +92,15 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
 
     Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
-    own (:func:`_fit_pipeline`: factor, projection, decomposition, then the held-out rows) once its Gram is
-    assembled here, all data's on this one (:func:`_assembled`, :func:`_projection`), whose SVD
-    (:meth:`~.factor._FactorProjection.decompose`) is then left running on a second thread (``proj_all.pending``;
-    ``stack`` joins it when it closes) so that the fitting part's candidate orders can be scored meanwhile. Each
-    pipeline keeps one Gram-sized buffer: the Gram is assembled in it in the factor order, overwritten by its factor
-    (whose ``n``-independent pieces the projection copies), and then serves as the SVD's workspace (all data's; the
-    fitting part's decomposition, which only scores, mostly needs none: ``scoring``) and (the fitting part's) for
-    the held-out Gram's rows of the past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The
-    Cholesky factorisations and the decompositions release the GIL. The same computations as one after the other,
+    own (:func:`_fit_pipeline`: factor, projection, decomposition) once its Gram is assembled here, all data's on
+    this one (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is
+    then left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the
+    fitting part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
+    assembled in it in the factor order and overwritten by its factor (whose ``n``-independent pieces the projection
+    copies); all data's then serves as its SVD's workspace, the fitting part's (whose decomposition only scores and
+    computes in memory of its own: ``scoring``) for the held-out Gram's rows of the past and of the future inputs
+    (:class:`~.heldout._CheckCov` needs no more), assembled by whichever thread is free first (:class:`_HeldOut`).
+    The Cholesky factorisations and the decompositions release the GIL. The same computations as one after the other,
     so the same numbers; when both fail, the fitting part's failure is the one reported (it was checked first
     before). (When only the fitting part's Gram is too ill conditioned, all data's SVD has started and is joined in
     vain: the covariance route follows.)
