@@ -66,7 +66,8 @@ def projections(session, cfg: dict, weighting: str, stack=None):
     with contextlib.ExitStack() as own:
         keep = own if stack is None else stack
         keep.enter_context(blas_threads(1))  # Gram-sized factorisations: one thread is faster on a busy machine
-        out = _factor_route(acc_fit, acc_check, L, session, weighting, keep) if L.nz >= _FACTOR_FROM else None
+        out = _factor_route(acc_fit, acc_check, L, session, weighting, keep, cfg.get("ahead")) \
+            if L.nz >= _FACTOR_FROM else None
         if out is None:
             out = _covariance_route(acc_fit, acc_check, L, session, weighting)
     return (*out, how, n_fit + n_check)
@@ -88,8 +89,10 @@ def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
             _CheckCov.time_major(S_check, L), scale)
 
 
-def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack):
+def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack, ahead=None):
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
+    ``ahead(proj_fit, check)``: called on the fitting part's thread once its projection and the held-out blocks are
+    ready, its result kept as ``proj_fit.ahead`` (the order scores taken ahead: ``SubspaceId._ahead``).
 
     Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
     own (:func:`_fit_pipeline`: factor, projection, decomposition) once its Gram is assembled here, all data's on
@@ -120,7 +123,7 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     # buffer took 0.24-0.85 s of CPU, into a buffer paged in beforehand 0.21-0.33 s plus 0.01-0.09 s of paging
     # (the assembly's strided writes take the page faults one by one; a sequential pass takes them in order)
     paged, held = fit_side.submit(touched, L.nz * L.nz), _HeldOut(acc_check, L, order, full, scale)
-    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, held)
+    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, held, ahead)
     try:
         proj_all, buffer = _projection(_assembled(acc_all, L, order, full, paged.result()), L, weighting)
     except BaseException:
@@ -153,12 +156,13 @@ def _projection(assembled, L: _Layout, weighting: str):
     return factor_projection(G, L, weighting), buffer
 
 
-def _fit_pipeline(assembled, L: _Layout, weighting: str, held: "_HeldOut"):
+def _fit_pipeline(assembled, L: _Layout, weighting: str, held: "_HeldOut", ahead=None):
     """The fitting part's projection of its :func:`_assembled` Gram, decomposed (its orders only score:
     ``scoring``); None when the fitting part's Gram is too ill conditioned. Once the projection has taken the
     factor's pieces, its buffer (the pages beyond the held-out rows handed back) goes to ``held`` (None when there
     is no projection), and the decomposition computes in memory of its own; then the held-out rows are taken
-    (:meth:`_HeldOut.take`) unless the main thread has taken them."""
+    (:meth:`_HeldOut.take`) unless the main thread has taken them, and ``ahead`` is called (see
+    :func:`_factor_route`)."""
     proj = buffer = None
     try:
         proj, buffer = _projection(assembled, L, weighting)
@@ -173,6 +177,8 @@ def _fit_pipeline(assembled, L: _Layout, weighting: str, held: "_HeldOut"):
     del buffer
     proj.decompose(None, None, True)
     held.take()
+    if ahead is not None:
+        proj.ahead = ahead(proj, held.blocks.result())
     return proj
 
 

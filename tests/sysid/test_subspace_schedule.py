@@ -116,3 +116,21 @@ def test_the_held_out_rows_are_the_same_whichever_thread_assembles_them(monkeypa
     a, b = fits["fit"], fits["main"]
     assert a.order_ == b.order_ and a.order_table_.equals(b.order_table_)
     np.testing.assert_array_equal(a.predict_many(*_windows()), b.predict_many(*_windows()))
+
+
+def test_the_orders_are_scored_on_the_fitting_parts_thread_once_its_part_is_ready(monkeypatch):
+    """The factor route scores the candidate orders ahead on the fitting part's thread (``cfg["ahead"]``), not
+    after the main thread's projection of all data; the real call finds every round in the memo (the numbers:
+    tests/sysid/test_subspace_ahead.py)."""
+    from stimsteer.sysid.subspace import selection
+
+    monkeypatch.setattr(prepare, "_FACTOR_FROM", 0)
+    threads, score = [], selection.score_orders
+
+    def recorded(*a, **k):
+        threads.append(threading.current_thread().name)
+        return score(*a, **k)
+
+    monkeypatch.setattr(selection, "score_orders", recorded)
+    SubspaceId(past_steps=6, future_steps=5).fit(_session(noise=0.3, seed=4))
+    assert threads and all("subspace-fit" in name for name in threads)
