@@ -13,7 +13,7 @@ import sys
 
 import numpy as np
 
-__all__ = ["release_tail"]
+__all__ = ["release_tail", "touched"]
 
 _MADV_DONTNEED = 4  # Linux <sys/mman.h>
 
@@ -45,3 +45,11 @@ def release_tail(buffer: np.ndarray, used: int) -> int:
     if hi - lo < page or _MADVISE(lo, hi - lo, _MADV_DONTNEED) != 0:
         return 0
     return hi - lo
+
+
+def touched(size: int) -> np.ndarray:
+    """A new flat float64 array of ``size`` items with every page written once (its values undefined): its page
+    faults taken here, e.g. on an idle thread, instead of by the first computation that writes it."""
+    buffer = np.empty(int(size))
+    buffer[::max(1, mmap.PAGESIZE // 8)] = 0.0
+    return buffer

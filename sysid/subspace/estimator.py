@@ -221,6 +221,7 @@ class SubspaceId(BasePredictor):
             session = _ShiftedOutputs(session, offset)
         # large candidate orders are fitted on as many threads as BLAS had (one in a bench worker)
         cfg["workers"] = blas_thread_count() if cfg["layout"].nz >= _THREADED_FROM else 1
+        cfg["ahead"] = lambda proj_fit, check: self._score_ahead(cfg, proj_fit, check)  # (factor route: see _ahead)
         with contextlib.ExitStack() as stack:  # (holds BLAS at one thread while proj_all's SVD may still run)
             proj_all, proj_fit, check, scale, how, n_columns = projections(session, cfg, self.weighting, stack)
             with blas_threads(1):  # small dense problems: threads only wait on each other at this size
@@ -251,23 +252,41 @@ class SubspaceId(BasePredictor):
         self._store(mats, scale, session, L, order, sv, table, how, n_columns)
 
     def _ahead(self, cfg, proj_all, proj_fit, check):
-        """While ``proj_all``'s SVD still runs (:func:`~.prepare.projections`), the order tables' scores
-        (:func:`~.selection.order_tables`' ``memo``) as if all data supported the orders the fitting part supports
-        (``rank_fit``; all data support at most as many, mostly as many), then wait for the SVD. The scores depend
-        on the fitting part alone, and the rounds (caps) on them and on the supported rank: when that rank turns
-        out the same, the real call finds every round in the memo. ``(memo or None, rank_fit)``."""
-        pending, memo = getattr(proj_all, "pending", None), None
+        """The order tables' scores (:func:`~.selection.order_tables`' ``memo``) taken ahead, as if all data supported
+        the orders the fitting part supports (``rank_fit``; all data support at most as many, mostly as many), then
+        the wait for ``proj_all``'s SVD (:func:`~.prepare.projections`). On the factor route they were taken on the
+        fitting part's thread as soon as its projection and the held-out rows were ready (``proj_fit.ahead``, from
+        ``cfg["ahead"]``: :meth:`_score_ahead`), whether the main thread was still in all data's projection or its
+        SVD already ran; otherwise they are taken here while that SVD still runs. The scores depend on the fitting
+        part alone, and the rounds (caps) on them and on the supported rank: when that rank turns out the same, the
+        real call finds every round in the memo. ``(memo or None, rank_fit)``."""
+        pending = getattr(proj_all, "pending", None)
+        early = getattr(proj_fit, "ahead", None)
+        if early is not None:
+            memo, rank_fit = early
+        elif pending is not None and not pending.done():
+            memo, rank_fit = self._score_ahead(cfg, proj_fit, check)
+        else:
+            memo, rank_fit = None, self._rank(proj_fit.singular_values)
+        if pending is not None:
+            pending.result()  # (re-raises what the decomposition raised)
+        return memo, rank_fit
+
+    @staticmethod
+    def _rank(sv) -> int:
+        return int(np.sum(sv > _SV_RTOL * max(float(sv[0]), 1.0)))
+
+    def _score_ahead(self, cfg, proj_fit, check):
+        """``(memo or None, rank_fit)``: the order tables' scores of the fitting part (see :meth:`_ahead`)."""
         sv_fit = proj_fit.singular_values
-        rank_fit = int(np.sum(sv_fit > _SV_RTOL * max(float(sv_fit[0]), 1.0)))
-        if pending is not None and not pending.done() and rank_fit >= 1:
+        rank_fit, memo = self._rank(sv_fit), None
+        if rank_fit >= 1:
             memo, spec = {}, {**cfg, "top": min(cfg["top"], rank_fit), "supported": rank_fit}
             try:
                 order_tables(self, proj_fit, check, sv_fit, spec, [], memo)
             except Exception:  # noqa: BLE001 - scored again in order below, where it raises
                 memo = None
                 proj_fit.forget_orders()
-        if pending is not None:
-            pending.result()  # (re-raises what the decomposition raised)
         return memo, rank_fit
 
     @staticmethod

@@ -13,14 +13,15 @@ faster computations of the same equations (nested orders, structured sums, doubl
 from __future__ import annotations
 
 import contextlib
-from concurrent.futures import ThreadPoolExecutor
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 
 import numpy as np
 
 from .._lagged import blas_threads
 from ..exceptions import ExcitationError, SessionError
 from ..output_mask import blanking_note
-from ._buffers import release_tail
+from ._buffers import release_tail, touched
 from .factor import factor_projection
 from .gram import _Layout, _gram_diagonal, _gram_from_sums, _hankel_sums, _partition
 from .heldout import _CheckCov
@@ -65,7 +66,8 @@ def projections(session, cfg: dict, weighting: str, stack=None):
     with contextlib.ExitStack() as own:
         keep = own if stack is None else stack
         keep.enter_context(blas_threads(1))  # Gram-sized factorisations: one thread is faster on a busy machine
-        out = _factor_route(acc_fit, acc_check, L, session, weighting, keep) if L.nz >= _FACTOR_FROM else None
+        out = _factor_route(acc_fit, acc_check, L, session, weighting, keep, cfg.get("ahead")) \
+            if L.nz >= _FACTOR_FROM else None
         if out is None:
             out = _covariance_route(acc_fit, acc_check, L, session, weighting)
     return (*out, how, n_fit + n_check)
@@ -87,20 +89,24 @@ def _covariance_route(acc_fit, acc_check, L: _Layout, session, weighting: str):
             _CheckCov.time_major(S_check, L), scale)
 
 
-def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack):
+def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack, ahead=None):
     """The projections from one Cholesky factor per Gram (:mod:`.factor`); None when a Gram is too ill conditioned.
+    ``ahead(proj_fit, check)``: called on the fitting part's thread once its projection and the held-out blocks are
+    ready, its result kept as ``proj_fit.ahead`` (the order scores taken ahead: ``SubspaceId._ahead``).
 
     Two pipelines run side by side, one per core (BLAS on one thread each): the fitting part's on a thread of its
-    own (:func:`_fit_pipeline`: Gram, factor, projection, SVD, then the held-out rows), all data's on this one
-    (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is then
-    left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the fitting
-    part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
-    assembled in it in the factor order, overwritten by its factor (whose ``n``-independent pieces the projection
-    copies), and then serves as the SVD's workspace and (the fitting part's) for the held-out Gram's rows of the
-    past and of the future inputs (:class:`~.heldout._CheckCov` needs no more). The Cholesky factorisations and the
-    SVDs release the GIL. The same computations as one after the other, so the same numbers; when both fail, the
-    fitting part's failure is the one reported (it was checked first before). (When only the fitting part's Gram
-    is too ill conditioned, all data's SVD has started and is joined in vain: the covariance route follows.)
+    own (:func:`_fit_pipeline`: factor, projection, decomposition) once its Gram is assembled here, all data's on
+    this one (:func:`_assembled`, :func:`_projection`), whose SVD (:meth:`~.factor._FactorProjection.decompose`) is
+    then left running on a second thread (``proj_all.pending``; ``stack`` joins it when it closes) so that the
+    fitting part's candidate orders can be scored meanwhile. Each pipeline keeps one Gram-sized buffer: the Gram is
+    assembled in it in the factor order and overwritten by its factor (whose ``n``-independent pieces the projection
+    copies); all data's then serves as its SVD's workspace, the fitting part's (whose decomposition only scores and
+    computes in memory of its own: ``scoring``) for the held-out Gram's rows of the past and of the future inputs
+    (:class:`~.heldout._CheckCov` needs no more), assembled by whichever thread is free first (:class:`_HeldOut`).
+    The Cholesky factorisations and the decompositions release the GIL. The same computations as one after the other,
+    so the same numbers; when both fail, the fitting part's failure is the one reported (it was checked first
+    before). (When only the fitting part's Gram is too ill conditioned, all data's SVD has started and is joined in
+    vain: the covariance route follows.)
     """
     order = L.factor_order()
     acc_all = acc_fit.plus(acc_check)
@@ -110,9 +116,16 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     svd_side = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stimsteer-subspace-svd-all")
     stack.callback(svd_side.shutdown)  # (leaving waits for a decomposition already started)
     stack.callback(fit_side.shutdown)
-    fit_job = fit_side.submit(_fit_pipeline, acc_fit, acc_check, L, order, full, scale, weighting)
+    # the fitting part's Gram assembled first (here), then all data's beside its Cholesky: never two assemblies at
+    # once (their Python-driven copies take turns on the GIL: no faster than one after the other, and more CPU).
+    # All data's buffer is paged in meanwhile on the fitting part's thread, idle until then: measured (fresh
+    # process, the 3,450-row Gram of the benchmark session, 4 runs each), the second Gram assembled into a new
+    # buffer took 0.24-0.85 s of CPU, into a buffer paged in beforehand 0.21-0.33 s plus 0.01-0.09 s of paging
+    # (the assembly's strided writes take the page faults one by one; a sequential pass takes them in order)
+    paged, held = fit_side.submit(touched, L.nz * L.nz), _HeldOut(acc_check, L, order, full, scale)
+    fit_job = fit_side.submit(_fit_pipeline, _assembled(acc_fit, L, order, full), L, weighting, held, ahead)
     try:
-        proj_all, buffer = _projection(_assembled(acc_all, L, order, full), L, weighting)
+        proj_all, buffer = _projection(_assembled(acc_all, L, order, full, paged.result()), L, weighting)
     except BaseException:
         if fit_job.result() is None:  # (re-raises what the fitting part's pipeline raised)
             return None
@@ -120,16 +133,18 @@ def _factor_route(acc_fit, acc_check, L: _Layout, session, weighting: str, stack
     if proj_all is not None:  # (its pages beyond the SVD's workspace handed back: the peak memory is at its end)
         proj_all.pending = svd_side.submit(proj_all.decompose, buffer, 0)
     del buffer
-    fitted = fit_job.result()
-    if fitted is None or proj_all is None:
+    held.take()  # (unless the fitting part's thread, done first, has taken them)
+    check = held.blocks.result()
+    proj_fit = fit_job.result()
+    if proj_fit is None or proj_all is None:
         return None
-    proj_fit, check = fitted
     return proj_all, proj_fit, check, scale
 
 
-def _assembled(acc, L: _Layout, order, full):
-    """``(G, buffer)``: the scaled Gram of ``acc`` in the factor order, assembled in a new Gram-sized ``buffer``."""
-    buffer = np.empty(L.nz * L.nz)
+def _assembled(acc, L: _Layout, order, full, buffer: np.ndarray | None = None):
+    """``(G, buffer)``: the scaled Gram of ``acc`` in the factor order, assembled in ``buffer`` (flat, at least
+    Gram-sized; by default a new one)."""
+    buffer = np.empty(L.nz * L.nz) if buffer is None else buffer
     return scaled(_gram_from_sums(acc, L, order, out=buffer), int(acc.n), full), buffer
 
 
@@ -141,19 +156,63 @@ def _projection(assembled, L: _Layout, weighting: str):
     return factor_projection(G, L, weighting), buffer
 
 
-def _fit_pipeline(acc_fit, acc_check, L: _Layout, order, full, scale, weighting: str):
-    """The fitting part's projection, decomposed, and the held-out covariance blocks (in the same buffer, once the
-    decomposition is done with it); None when the fitting part's Gram is too ill conditioned. (Its Gram is
-    assembled on this thread: the page faults of its fresh buffer's first touch then overlap all data's.)"""
-    proj, buffer = _projection(_assembled(acc_fit, L, order, full), L, weighting)
+def _fit_pipeline(assembled, L: _Layout, weighting: str, held: "_HeldOut", ahead=None):
+    """The fitting part's projection of its :func:`_assembled` Gram, decomposed (its orders only score:
+    ``scoring``); None when the fitting part's Gram is too ill conditioned. Once the projection has taken the
+    factor's pieces, its buffer (the pages beyond the held-out rows handed back) goes to ``held`` (None when there
+    is no projection), and the decomposition computes in memory of its own; then the held-out rows are taken
+    (:meth:`_HeldOut.take`) unless the main thread has taken them, and ``ahead`` is called (see
+    :func:`_factor_route`)."""
+    proj = buffer = None
+    try:
+        proj, buffer = _projection(assembled, L, weighting)
+        del assembled
+        if proj is not None:
+            release_tail(buffer, (L.m * L.f + len(L.P)) * L.nz)
+    finally:
+        if not held.buffer.done():  # (None when the projection failed or raised: nothing waits in vain)
+            held.buffer.set_result(None if proj is None else buffer)
     if proj is None:
         return None
+    del buffer
+    proj.decompose(None, None, True)
+    held.take()
+    if ahead is not None:
+        proj.ahead = ahead(proj, held.blocks.result())
+    return proj
+
+
+class _HeldOut:
+    """The held-out covariance blocks (:class:`~.heldout._CheckCov`, the future ``blocks``; None without a buffer),
+    assembled in the fitting part's buffer (the future ``buffer``) by whichever thread is free first: the fitting
+    part's once its decomposition is done, or the main thread once all data's decomposition has started (both call
+    :meth:`take`; the first one assembles, the other returns at once)."""
+
+    def __init__(self, acc_check, L: _Layout, order, full, scale):
+        self._args = (acc_check, L, order, full, scale)
+        self.buffer, self.blocks = Future(), Future()
+        self._taken, self._lock = False, threading.Lock()
+
+    def take(self) -> None:
+        with self._lock:
+            if self._taken:
+                return
+            self._taken = True
+        try:
+            buffer = self.buffer.result()
+            self.blocks.set_result(None if buffer is None else _held_out(*self._args, buffer))
+        except BaseException as exc:  # (raised where the blocks are read)
+            self.blocks.set_exception(exc)
+
+
+def _held_out(acc_check, L: _Layout, order, full, scale, buffer) -> _CheckCov:
+    """The held-out covariance blocks: the held-out Gram's rows of the future inputs and of the past
+    (:class:`~.heldout._CheckCov` needs no more), assembled in ``buffer``, and the diagonal of its future outputs."""
     n, b, e = int(acc_check.n), L.m * L.f, L.m * L.f + len(L.P)
-    proj.decompose(buffer, e * L.nz)  # (the pages the held-out rows will not use are handed back first)
     rows = scaled(_gram_from_sums(acc_check, L, order, (0, e), buffer), n, full, full[:e])  # [Uf; P] rows
     release_tail(buffer, rows.size)  # (held as long as the held-out blocks: only their rows stay resident)
     diag = _gram_diagonal(acc_check, L)[L.Yf] / (n * np.tile(scale, L.width)[L.Yf] ** 2)
-    return proj, _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
+    return _CheckCov.factor_rows(rows[b:e], rows[:b], diag, L)
 
 
 def channel_scales(diag: np.ndarray, N: int, L: _Layout, session) -> np.ndarray:

@@ -40,6 +40,8 @@ def _fit(monkeypatch, mode, **kw):
             return None, None
 
         monkeypatch.setattr(SubspaceId, "_ahead", after)
+        # (nor on the fitting part's thread, where the factor route takes them once its part is ready)
+        monkeypatch.setattr(SubspaceId, "_score_ahead", lambda self, cfg, proj_fit, check: (None, 0))
     elif mode == "mismatch":  # all data as if supporting fewer orders: what was scored ahead is dropped
         monkeypatch.setattr(SubspaceId, "_ahead", lambda self, *a: (_AHEAD(self, *a)[0], -1))
     # past 6 / future 5, noise 0.3: the sizes of the factor tests' sessions (chosen for speed)
