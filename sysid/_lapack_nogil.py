@@ -163,7 +163,7 @@ def eigh_nogil_available() -> bool:
     return _DSYEVR is not None and _DTRMM is not None
 
 
-def eigh_lower(A: np.ndarray, n: int, ld: int):
+def eigh_lower(A: np.ndarray, n: int, ld: int, count: int | None = None):
     """Eigenvalues (ascending) and eigenvectors of the symmetric matrix in the lower triangle of the leading
     ``n × n`` column-major block of ``A``'s memory (leading dimension ``ld``), by LAPACK ``dsyevr`` (MRRR), the
     GIL released. ``A``'s block is destroyed (the rest of its memory is not touched).
@@ -172,25 +172,28 @@ def eigh_lower(A: np.ndarray, n: int, ld: int):
     2.79 s at ``n`` = 2,450, one thread, 75 % of either in the shared tridiagonal reduction) with ``O(n)``
     workspace instead of ``2n²`` (96 MB at that size), so two of them fit side by side in the memory target.
 
+    With ``count``, only the ``count`` largest eigenvalues and their vectors (``dsyevr`` for an index range).
+
     Returns
     -------
-    d : ndarray, shape (n,)
-    V : ndarray, shape (n, n), Fortran order
+    d : ndarray, shape (n,) or (count,)
+    V : ndarray, shape (n, n) or (n, count), Fortran order
     or None where LAPACK reports a failure (``info != 0``).
     """
     if A.dtype != np.float64 or not (A.flags.c_contiguous or A.flags.f_contiguous) or A.size < (n - 1) * ld + n:
         raise ValueError("eigh_lower needs a contiguous float64 array holding an n × n block of leading dimension ld")
-    d, V = np.empty(n), np.empty((n, n), order="F")
+    k = n if count is None else int(count)
+    d, V = np.empty(n), np.empty((n, k), order="F")
     isuppz, iwork = np.empty(2 * max(n, 1), dtype=np.intc), np.empty(10 * max(n, 1), dtype=np.intc)
     work = np.empty(64 * max(n, 1))  # >= 26 n, LAPACK's minimum; room for its blocked tridiagonal reduction
     found, info, zero = ctypes.c_int(0), ctypes.c_int(0), ctypes.c_double(0.0)
-    n_, ld_, z_, lwork_, liwork_ = (ctypes.byref(ctypes.c_int(v)) for v in
-                                    (n, ld, max(n, 1), work.size, iwork.size))
-    _DSYEVR(b"V", b"A", b"L", n_, A.ctypes.data_as(_DBL), ld_, ctypes.byref(zero), ctypes.byref(zero),
-            ctypes.byref(ctypes.c_int(0)), ctypes.byref(ctypes.c_int(0)), ctypes.byref(zero), ctypes.byref(found),
-            d.ctypes.data_as(_DBL), V.ctypes.data_as(_DBL), z_, isuppz.ctypes.data_as(_INT),
-            work.ctypes.data_as(_DBL), lwork_, iwork.ctypes.data_as(_INT), liwork_, ctypes.byref(info))
-    return (d, V) if info.value == 0 and found.value == n else None
+    how, il, iu = (b"A", 0, 0) if count is None else (b"I", n - k + 1, n)
+    _DSYEVR(b"V", how, b"L", int_ref(n), A.ctypes.data_as(_DBL), int_ref(ld), ctypes.byref(zero),
+            ctypes.byref(zero), int_ref(il), int_ref(iu), ctypes.byref(zero), ctypes.byref(found),
+            d.ctypes.data_as(_DBL), V.ctypes.data_as(_DBL), int_ref(max(n, 1)), isuppz.ctypes.data_as(_INT),
+            work.ctypes.data_as(_DBL), int_ref(work.size), iwork.ctypes.data_as(_INT), int_ref(iwork.size),
+            ctypes.byref(info))
+    return (d[:k], V) if info.value == 0 and found.value == k else None
 
 
 def trmm_lower_t(F: np.ndarray, n: int, ld: int, B: np.ndarray) -> np.ndarray:

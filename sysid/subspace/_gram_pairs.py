@@ -16,11 +16,9 @@ gives (all of them). Otherwise None, and the caller takes the SVD. Leading vecto
 
 from __future__ import annotations
 
-import ctypes
-
 import numpy as np
 
-from .._lapack_nogil import _DBL, _INT, scipy_c_function
+from .._lapack_nogil import _DSYEVR, eigh_lower
 from ._gil_free import potrf
 
 __all__ = ["pairs_from_gram"]
@@ -31,31 +29,6 @@ _SMALLEST = 1e-8
 #: Smallest accepted singular value relative to ``max(σ₁, 1)`` (the rank cut-off's scale, unit-RMS channels):
 #: 100 times the cut-off ``1e-8`` (chosen).
 _FLOOR = 1e-6
-
-_CHR = ctypes.c_char_p
-# jobz, range, uplo, n, a, lda, vl, vu, il, iu, abstol, m, w, z, ldz, isuppz, work, lwork, iwork, liwork, info
-_DSYEVR = scipy_c_function("lapack", "dsyevr", _CHR, _CHR, _CHR, _INT, _DBL, _INT, _DBL, _DBL, _INT, _INT, _DBL,
-                           _INT, _DBL, _DBL, _INT, _INT, _DBL, _INT, _INT, _INT, _INT)
-
-
-def _i(v: int):
-    return ctypes.byref(ctypes.c_int(int(v)))
-
-
-def _leading_eigenpairs(G: np.ndarray, count: int):
-    """``(values, vectors)`` (ascending; vectors ``k × count`` in Fortran order) of the ``count`` largest eigenvalues
-    of the symmetric ``G`` (C order; destroyed), or None on a LAPACK failure."""
-    k = G.shape[0]
-    w, Z = np.empty(k), np.empty((count, k))  # Z: Fortran k × count (its transpose in C order)
-    isuppz, iwork = np.empty(2 * max(count, 1), dtype=np.intc), np.empty(10 * max(k, 1), dtype=np.intc)
-    work = np.empty(64 * max(k, 1))  # >= 26 k, LAPACK's minimum; room for its blocked tridiagonal reduction
-    found, info, zero = ctypes.c_int(0), ctypes.c_int(0), ctypes.c_double(0.0)
-    _DSYEVR(b"V", b"I", b"L", _i(k), G.ctypes.data_as(_DBL), _i(k), ctypes.byref(zero), ctypes.byref(zero),
-            _i(k - count + 1), _i(k), ctypes.byref(zero), ctypes.byref(found), w.ctypes.data_as(_DBL),
-            Z.ctypes.data_as(_DBL), _i(k), isuppz.ctypes.data_as(_INT), work.ctypes.data_as(_DBL), _i(work.size),
-            iwork.ctypes.data_as(_INT), _i(iwork.size), ctypes.byref(info))
-    return (w[:count], Z.T) if info.value == 0 and found.value == count else None
-
 
 def pairs_from_gram(mat: np.ndarray, count: int):
     """``(U, s, floor)`` of the wide ``k × nc`` matrix ``mat``: its ``min(count, k)`` leading left singular vectors
@@ -74,7 +47,7 @@ def pairs_from_gram(mat: np.ndarray, count: int):
     if potrf(shifted.T) != 0:  # an eigenvalue at or below tau
         return None
     del shifted
-    got = _leading_eigenpairs(G, count)
+    got = eigh_lower(G, k, k, count)  # G symmetric: its C order is its Fortran order
     if got is None:
         return None
     d, V = got
