@@ -30,7 +30,7 @@ from .._lagged import _lagged_diagonal, _lagged_gram, _stream_lag_sums
 from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import gram_scale, held_out_constant, strength_errors
-from ._memory import release_freed_memory, touched_empty
+from .._pages import release_freed_memory, touched
 from ._nogil_cholesky import _one_norm, pocon_lower, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
@@ -143,13 +143,13 @@ def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = F
     is computed as ``run(task)`` (``task()`` on the caller's worker threads, which then share the cores with the
     work begun; the same call on the same array, so the same numbers). Where ``run`` has ``before_rows`` (the
     work begun assembles rows of its own first: two assemblies at once hold the GIL in turns and each takes 2-3
-    times as long), the Gram's array is touched meanwhile (:func:`._memory.touched_empty`), ``before_rows()`` waits
+    times as long), the Gram's array is touched meanwhile (:func:`.._pages.touched`), ``before_rows()`` waits
     for those rows, and the Gram is assembled into the array after them.
     """
     run = begin() if begin is not None else None
     before, out = getattr(run, "before_rows", None), None
     if before is not None:  # the work begun assembles rows first: this array's first touch meanwhile (GIL-free)
-        out = touched_empty(fold.n_rows ** 2)
+        out = touched(fold.n_rows ** 2)
         before()
     G = fold.gram_rows(0, fold.n_rows, out=out)
     norm = _one_norm(G)

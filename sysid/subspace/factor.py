@@ -33,7 +33,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from ._gil_free import pocon, potrf
-from ._buffers import release_tail
+from .._pages import release_tail
 from ._gram_pairs import pairs_from_gram
 from ._left_svd import left_singular_pairs, work_size
 from .gram import _Layout
@@ -142,7 +142,7 @@ class _FactorProjection:
         so the factor can be freed before it, or its memory handed over as ``work`` (a flat float64 array the
         decomposition computes in, overwritten; :func:`._left_svd.left_singular_pairs`: the same numbers). Given
         ``keep``, the pages of ``work`` beyond its first ``keep`` items and beyond what the decomposition uses are
-        handed back to the system first (:func:`._buffers.release_tail`). ``scoring`` (a projection whose orders only
+        handed back to the system first (:func:`.._pages.release_tail`). ``scoring`` (a projection whose orders only
         score: the fitting part's): its ``SCORING_PAIRS`` leading pairs (more when a larger order asks:
         :meth:`_enough`) from the eigendecomposition of the matrix's Gram where its smallest singular value allows
         (:func:`._gram_pairs.pairs_from_gram`: the same to rounding, a quarter of the work), else as above."""

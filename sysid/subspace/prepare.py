@@ -21,7 +21,7 @@ import numpy as np
 from .._lagged import blas_threads
 from ..exceptions import ExcitationError, SessionError
 from ..output_mask import blanking_note
-from ._buffers import release_tail, touched
+from .._pages import release_tail, touched
 from .factor import factor_projection
 from .gram import _Layout, _gram_diagonal, _gram_from_sums, _hankel_sums, _partition
 from .heldout import _CheckCov

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from stimsteer.sysid.subspace import SubspaceId, factor, prepare
-from stimsteer.sysid.subspace._buffers import touched
+from stimsteer.sysid._pages import touched
 
 from tests.sysid.test_subspace_factor import _session, _windows
 

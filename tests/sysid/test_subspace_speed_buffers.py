@@ -19,7 +19,7 @@ import scipy.linalg as sla
 
 from stimsteer.sysid._lagged import blas_threads
 from stimsteer.sysid.subspace import SubspaceId, gram, prepare
-from stimsteer.sysid.subspace._buffers import release_tail
+from stimsteer.sysid._pages import release_tail
 from stimsteer.sysid.subspace._left_svd import left_singular_pairs, work_size
 
 from tests.sysid.test_subspace_factor import _session  # the simulated three-state session of the factor tests
