@@ -22,7 +22,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
-__all__ = ["TIE_TOLERANCE", "plan_gaps", "plan_gaps_coordinate", "choose_consistent"]
+__all__ = ["TIE_TOLERANCE", "plan_gaps", "plan_gaps_coordinate", "choose_consistent", "consistent_choice"]
 
 #: Held-out errors within this relative distance of the best count as a tie (rounding of the fold solves is
 #: ~1e-15; real differences between strengths on held-out trials are many orders larger). Our own threshold.
@@ -59,6 +59,22 @@ def choose_consistent(table, gaps: np.ndarray) -> int:
     best = np.nanmin(err)
     tied = np.flatnonzero(err <= best * (1.0 + TIE_TOLERANCE) + 1e-300)
     return int(tied[np.argmin(gaps[tied])])
+
+
+def consistent_choice(table, gaps: np.ndarray, strengths) -> tuple[float, tuple]:
+    """The chosen strength (:func:`choose_consistent`) and the selection's notes: when held-out errors tie, one note
+    saying so and that the plan gap chose among them (a user reading equal errors in the table learns why)."""
+    chosen = choose_consistent(table, gaps)
+    err = table["validation_error"].to_numpy(dtype=np.float64)
+    tied = np.flatnonzero(err <= np.nanmin(err) * (1.0 + TIE_TOLERANCE) + 1e-300) if np.isfinite(err).any() else \
+        np.arange(err.size)
+    if tied.size < 2:
+        return float(strengths[chosen]), ()
+    return float(strengths[chosen]), (
+        f"the held-out errors of {tied.size} of {err.size} strengths tie (within {TIE_TOLERANCE:g}, relative): on data "
+        "whose past and future-input rows have full rank every strength predicts alike. The smallest plan gap chose "
+        f"among them: {float(strengths[chosen]):g}, whose plans can drift least from the predictor's own prediction "
+        "(column plan_gap).",)
 
 
 def plan_gaps_coordinate(theta_y: np.ndarray, yf2: np.ndarray, lambdas_abs, lam_y: float) -> np.ndarray:

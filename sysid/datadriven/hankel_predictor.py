@@ -1,5 +1,4 @@
-"""The regularised (DeePC-style) Hankel predictor (:class:`HankelPredictor`) and its Hankel blocks.
-"""
+"""The regularised (DeePC-style) Hankel predictor (:class:`HankelPredictor`) and its Hankel blocks."""
 
 from __future__ import annotations
 
@@ -15,7 +14,7 @@ from .._base import check_fitted
 from ..protocols import DataBlocks, PredictionMaps
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
 from ..hankel import _one_blas_thread
-from .consistency import choose_consistent, plan_gaps, plan_gaps_coordinate
+from .consistency import consistent_choice, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
 from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
@@ -25,7 +24,6 @@ from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection
                   _projection_g, _projection_map)
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
-
 
 REGULARIZERS = ("projection", "l2", "l1")
 _DEFAULT_LAMBDAS_G = tuple(float(a) for a in np.logspace(-4, 2, 7))
@@ -129,7 +127,8 @@ class HankelPredictor(_DirectPredictor):
     lambda_g_relative_ : float
         Chosen candidate from ``lambdas_g``: the lowest held-out error; candidates tied with it (relative 1e-6,
         as on full-row-rank data, where every strength predicts alike) are ranked by the plan gap, the smallest
-        winning (:mod:`stimsteer.sysid.datadriven.consistency`).
+        winning (:mod:`stimsteer.sysid.datadriven.consistency`), as ``selection_notes_`` then says.
+    selection_notes_ : tuple of str
     channel_scale_ : ndarray, shape (n_inputs + n_outputs,)
         Root mean square of each input then output channel; the blocks hold the rows of the channels divided by
         it, so predictions do not depend on the channels' units.
@@ -271,11 +270,12 @@ class HankelPredictor(_DirectPredictor):
         self.blocks_, self.reg_matrix_, theta = self._blocks(total, compress)
         if theta is not None:  # the projection predictor in closed form, for every strength
             self._map_cache = self._unscaled(theta)
+        self.selection_notes_ = ()
         if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
             gaps, self._gaps_early = getattr(self, "_gaps_early", None), None  # computed beside the folds
             table["plan_gap"] = gaps if gaps is not None and theta is not None else \
                 self._plan_gaps(lambdas * self.data_scale_, lam_y, theta)
-            rel = float(lambdas[choose_consistent(table, table["plan_gap"].to_numpy())])
+            rel, self.selection_notes_ = consistent_choice(table, table["plan_gap"].to_numpy(), lambdas)
         if isinstance(self.reg_matrix_, int):  # made after the plan gaps (memory: one Gram-sized array fewer)
             del theta
             release_freed_memory()

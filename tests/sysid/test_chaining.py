@@ -158,3 +158,28 @@ def test_lambda_g_is_chosen_by_a_criterion_that_distinguishes_the_candidates(rng
     ratio = np.sum((b.Yf @ d) ** 2, 0) / (h.lambda_y_ * np.sum((b.Yp @ d) ** 2, 0)
                                           + h.lambda_g_ * np.sum((h.reg_matrix_ @ d) ** 2, 0))
     assert ratio.max() <= gap.min() * (1 + 1e-9)
+
+
+def test_a_tie_of_held_out_errors_is_said_with_the_strength_the_plan_gap_chose(rng, tmp_path, capsys):
+    # On noisy (full-row-rank) data every lambda_g predicts alike (Dörfler, Coulson, Markovsky 2023), so the table
+    # shows equal held-out errors; the fit says so and names the strength the plan gap chose. A single strength, or
+    # errors that do not tie (the ℓ1 regulariser is not scored by the plan gap), bring no such note.
+    from stimsteer.control.cli import main
+    from stimsteer.sysid import save_session
+
+    sess = _exact_session(rng, SYS)
+    sess = sess.replace(y=sess.y + 0.1 * rng.standard_normal(sess.y.shape))
+    h = HankelPredictor(past_steps=3, horizon_steps=5, regularizer="projection").fit(sess)
+    err = h.cv_table_["validation_error"].to_numpy()
+    assert np.ptp(err) <= 1e-6 * err.min()
+    (note,) = h.selection_notes_
+    assert f"the held-out errors of {err.size} of {err.size} strengths tie" in note
+    assert f"among them: {h.lambda_g_relative_:g}," in note
+    assert HankelPredictor(past_steps=3, horizon_steps=5, lambdas_g=[1.0]).fit(sess).selection_notes_ == ()
+    h.set_params(lambdas_g=[0.1]).fit(sess)
+    assert h.selection_notes_ == ()  # a refit leaves no note of the fit before
+    path = tmp_path / "s.h5"
+    save_session(sess, path)
+    assert main(["fit", str(path), "--route", "direct", "--method", "hankel", "--past-steps", "3",
+                 "--horizon-steps", "5", "--out", str(tmp_path / "h.h5")]) == 0
+    assert "note: the held-out errors of 7 of 7 strengths tie" in capsys.readouterr().out
