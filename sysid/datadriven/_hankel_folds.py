@@ -41,6 +41,7 @@ import numpy as np
 from .._lapack_nogil import strided_cholesky_calls
 from ._nogil_cholesky import _one_norm
 from ._task_pool import TaskPool
+from .base import regressor_rows
 from .gram import GRAM_CONDITION_LIMIT, _total_factor, release_freed_memory
 
 __all__: list = []
@@ -288,8 +289,8 @@ def first_fold_hook(predictor, session):
         return None
 
     def early(folds):  # called once the session and the windows are checked (the settings read here are valid)
-        m, p = int(session.n_inputs), int(session.n_outputs)
-        return start_first_fold(folds, (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps))
+        return start_first_fold(folds, regressor_rows(session.n_inputs, session.n_outputs, predictor.past_steps,
+                                                      predictor.horizon_steps))
     return early
 
 

@@ -33,6 +33,7 @@ from ._by_strength import _Grid, base_term, gram_scale, held_out_constant, nogil
 from ._eigen_folds import fits_in_memory, scored_parts
 from .._lapack_nogil import eigh_nogil_available
 from ._task_pool import TaskPool
+from .base import regressor_rows
 from .gram import _total_factor, release_freed_memory
 
 __all__: list = []
@@ -60,8 +61,7 @@ def first_fold_hook(predictor, session, n_candidates: int):
     """``early(folds)`` for ``base._collect``: a :class:`StrengthPlan` begun before the total Gram is assembled,
     or None where the folds are not scored by strength."""
     def early(folds):  # called once the session and the windows are checked
-        m, p = int(session.n_inputs), int(session.n_outputs)
-        n_b = (m + p) * int(predictor.past_steps) + m * int(predictor.horizon_steps)
+        n_b = regressor_rows(session.n_inputs, session.n_outputs, predictor.past_steps, predictor.horizon_steps)
         return StrengthPlan(folds.total, n_b) if wanted(folds.total, n_b) else None
     return early if n_candidates > 1 else None
 

@@ -51,6 +51,11 @@ def _check_source(session):
         )
 
 
+def regressor_rows(m: int, p: int, past: int, horizon: int) -> int:
+    """Rows of the regressor block ``[Up; Yp; Uf]``: ``(m + p)·past + m·horizon`` (the ``n_b`` of the folds)."""
+    return (int(m) + int(p)) * int(past) + int(m) * int(horizon)
+
+
 def _row_order(m: int, p: int, past: int, horizon: int) -> np.ndarray:
     """Permutation from the rows of [H_L(u); H_L(y)] to [Up; Yp; Uf; Yf] (time-major blocks)."""
     L = past + horizon

@@ -16,7 +16,7 @@ from ..exceptions import ConditioningWarning, InvalidParameterError, SessionErro
 from ..hankel import _one_blas_thread
 from .consistency import consistent_choice, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
-from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error
+from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows
 from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
 from ._early_theta import theta_task
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
@@ -324,7 +324,7 @@ class HankelPredictor(_DirectPredictor):
         return out
 
     def _n_b(self) -> int:
-        return (self.n_inputs_ + self.n_outputs_) * self.past_steps_ + self.n_inputs_ * self.max_horizon_steps_
+        return regressor_rows(self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_)
 
     def _score_projection_gram(self, train, val, weights, lambdas, lam_y, total=None):
         """Held-out errors of the projection predictor on the Gram route: with the training factor ``F`` the

@@ -9,7 +9,7 @@ import scipy.linalg as sla
 from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
-from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error
+from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows
 from ._strength_folds import first_fold_hook
 from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
 
@@ -183,7 +183,7 @@ class LsqPredictor(_DirectPredictor):
                                       early=first_fold_hook(self, session, alphas.size))
         plan = getattr(folds, "first_fold", None)
         m, p, past = self.n_inputs_, self.n_outputs_, self.past_steps_
-        n_b = (m + p) * past + m * self.max_horizon_steps_
+        n_b = regressor_rows(m, p, past, self.max_horizon_steps_)
 
         gram_route = self.factor_route_ == "gram"
         total = getattr(folds, "total", None)  # Gram route: the folds' sum, with the condition check's factor
