@@ -33,15 +33,18 @@ def test_potrf_lower_reports_a_matrix_that_is_not_positive_definite():
 
 
 @pytest.mark.parametrize("n", [7, 300, 600])
-def test_pocon_lower_equals_scipys_dpocon_bit_for_bit(n):
+def test_pocon_lower_equals_scipys_dpocon(n):
     X = np.random.default_rng(n).standard_normal((n, n + 40))
     X[:, :n] *= np.logspace(0, -3, n)[:, None]  # rows of unequal scale: a condition number well above 1
     G = X @ X.T
     F = np.asfortranarray(np.linalg.cholesky(G))
     norm = float(np.abs(G).sum(axis=0).max())
     ref, info = sla.lapack.dpocon(F, norm, uplo="L")  # the reference: SciPy's wrapper of the same routine
-    assert info == 0 and nc.pocon_lower(F, norm) == ref
-    assert gr.gram_condition(F, G) == 1.0 / ref
+    # to rounding, not bit for bit: equal in isolation (300 calls each, with and without a busy core), but one of
+    # five full runs of a fresh clone found them apart at n = 300 (pocon's estimate goes through BLAS calls whose
+    # rounding may follow the threads at hand); 1e-12 is our margin
+    assert info == 0 and nc.pocon_lower(F, norm) == pytest.approx(ref, rel=1e-12)
+    assert gr.gram_condition(F, G) == pytest.approx(1.0 / ref, rel=1e-12)
     assert nc.pocon_lower(np.ascontiguousarray(F), norm) is None  # C-ordered: the wrapper's route
 
 
