@@ -30,6 +30,7 @@ _SMALLEST = 1e-8
 #: 100 times the cut-off ``1e-8`` (chosen).
 _FLOOR = 1e-6
 
+
 def pairs_from_gram(mat: np.ndarray, count: int):
     """``(U, s, floor)`` of the wide ``k × nc`` matrix ``mat``: its ``min(count, k)`` leading left singular vectors
     (C order, ``k × count``, by descending value) and values, from the eigendecomposition of ``mat matᵀ``, and a
