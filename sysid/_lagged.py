@@ -18,6 +18,7 @@ from numpy.lib.stride_tricks import as_strided
 
 # blas_*: imported from here by the package's other modules
 from ._blas_threads import _parallel_pass, _single_threaded_blas, blas_controller, blas_thread_count, blas_threads  # noqa: F401
+from ._lag_spectra import spectral_products, uses_spectra
 
 # ------------------------------------------------------------------------------------------------ sufficient stats
 class _Moments:
@@ -45,7 +46,7 @@ class _Moments:
 _BLOCK_ROWS = 4096
 
 
-def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]:
+def _chunk_products(B: np.ndarray, n_lags: int, spectra: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Sums and lag products over the rows of one chunk, without building the lagged design.
 
     Parameters
@@ -54,6 +55,9 @@ def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]
         Samples ``Z``: the ``L`` samples before the chunk's first row, then its ``n`` rows.
     n_lags : int
         ``L``, the longest lag.
+    spectra : bool, default True
+        Whether long lagged vectors may take the FFT route; False keeps the direct products, whose rounding bound
+        (``γ_n`` per entry) a caller may rely on.
 
     Returns
     -------
@@ -62,10 +66,13 @@ def _chunk_products(B: np.ndarray, n_lags: int) -> tuple[np.ndarray, np.ndarray]
     X : ndarray, shape (L + 1, c, c)
         ``X[δ] = sum_t Z_t Z_{t-δ}ᵀ`` over the chunk's rows ``t`` (``Z_{t-δ}`` may lie in the lead-in): one
         product of two ``(n × c)`` matrices per lag difference (in blocks of :data:`_BLOCK_ROWS` rows, every lag of a
-        block before the next block).
+        block before the next block); for long lagged vectors (:func:`_lag_spectra.uses_spectra`), by short FFTs instead
+        (:func:`_lag_spectra.spectral_products`, the same sums to rounding).
     """
     L = n_lags
     n, c = B.shape[0] - L, B.shape[1]
+    if n > 0 and spectra and uses_spectra(L, c):  # long windows: short FFTs, a few c² per row whatever L (_lag_spectra)
+        return B[L:].sum(axis=0), spectral_products(B, L)
     X = np.empty((L + 1, c, c)) if n > 0 else np.zeros((L + 1, c, c))
     part = np.empty((c, c)) if n > _BLOCK_ROWS else None
     for k0 in range(0, n, _BLOCK_ROWS):  # one block of rows, every lag, while it is in cache
@@ -386,9 +393,9 @@ def _lagged_diagonal(sums: _LagSums) -> np.ndarray:
     return d.reshape(-1)
 
 
-def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool):
+def _window_task(B: np.ndarray, n_lags: int, first: bool, last: bool, spectra: bool = True):
     """Worker task: the chunk's sums and products, and the edge windows of its piece when it starts or ends one."""
-    S, X = _chunk_products(B, n_lags)
+    S, X = _chunk_products(B, n_lags, spectra)
     start = B[:n_lags].copy() if first else None
     end = B[B.shape[0] - n_lags:].copy() if last else None
     return S, X, start, end
@@ -414,7 +421,7 @@ _TWO_CORE_WORK = 1e9
 
 
 def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int = 16384, on_chunk=None, *,
-                     shift=None, with_range: bool = False):
+                     shift=None, with_range: bool = False, spectra: bool = True):
     """One pass over the pieces (rows ``[k0, k1)`` with fold ``f``): the :class:`_LagSums` of each fold.
 
     ``Z = [y u] − shift`` (unshifted by default). Chunks are read into a ring of re-used buffers and reduced on
@@ -422,7 +429,8 @@ def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int
     numbers. Sources whose ``read`` takes ``out=`` (Session and SessionFile, whose reads are safe from any thread)
     are read by the workers themselves, which keeps both cores busy without a third thread; other sources are read
     in the calling thread only. ``on_chunk(rows)`` is called after each chunk (progress). With ``with_range``,
-    returns ``(folds, lo, hi)`` with the raw inputs' range.
+    returns ``(folds, lo, hi)`` with the raw inputs' range. ``spectra=False``: the direct products whatever the
+    window (:func:`_chunk_products`).
     """
     c = int(session.n_outputs) + int(session.n_inputs)
     m = int(session.n_inputs)
@@ -438,7 +446,7 @@ def _stream_lag_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int
 
     def task(loaded):
         Z, rng, first, last = loaded
-        return _window_task(Z, n_lags, first, last), rng
+        return _window_task(Z, n_lags, first, last, spectra), rng
 
     with _single_threaded_blas() as n_workers:
         if n_workers < 2 and sum(b - a for a, b, _f in pieces) * (n_lags + 1) * c * c >= _TWO_CORE_WORK:

@@ -205,14 +205,15 @@ def _gram_proves_full_rank(u, segments, depth: int, tol_factor: float = DEFAULT_
     energy of a channel over every sample), and ``||E||₂ <= 2 γ_T · depth · Σ_t ||u_t||²``; the symmetric
     eigensolver adds ``O(n eps λ_max)`` (Golub & Van Loan 2013, section 8.1). With ``λ_min`` of the computed Gram
     above both bounds plus the squared rank tolerance, ``σ_min² = λ_min(H Hᵀ) > tol²`` (Weyl): full rank, as the
-    QR route would find. False means "not proven" (the caller then asks the QR route), never "deficient".
+    QR route would find. False means "not proven" (the caller then asks the QR route), never "deficient". The lag
+    sums are the direct products here at any depth (``spectra=False``: the bound is theirs, not the FFT route's).
     """
     m = u.shape[1]
     pieces = [(a + depth - 1, b, 0) for a, b in segments if b - a >= depth]
     if not pieces:
         return False
     n_cols = sum(b - k for k, b, _f in pieces)
-    sums = _stream_lag_sums(_InputsOnly(u), pieces, 1, depth - 1)[0]
+    sums = _stream_lag_sums(_InputsOnly(u), pieces, 1, depth - 1, spectra=False)[0]  # the bound above
     G = _lagged_gram(sums)
     lam = np.linalg.eigvalsh(G)
     eps = np.finfo(np.float64).eps
