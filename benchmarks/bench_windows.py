@@ -12,18 +12,22 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    Hankel predictor, each with its default settings and grids, at past 10 / horizon 20 and past 100 / horizon 50;
 2. the reference: one lagged Gram of the raw data with the same lag count (``past + horizon`` lags; ``past`` for
    ARX), as bare lag products in numpy written here (``Z[δ:]ᵀ Z[:T-δ]`` for every lag ``δ``, one BLAS thread): the
-   products any exact Gram of the lagged data must compute; beside it, one Cholesky factor of that ``n × n`` Gram
-   (one and two BLAS threads): what a ridge fit that factors its Gram even once cannot go below (a cross-validated
-   fit factors one Gram-sized matrix per fold and strength, or eigendecomposes one per fold);
+   products an exact Gram of the lagged data computes by direct products; beside it the same sums by the fits'
+   own route (short FFTs for long lagged vectors, ``sysid/_lag_spectra.py``), and one Cholesky factor of that
+   ``n × n`` Gram (one and two BLAS threads): what a ridge fit that factors its Gram even once cannot go below (a
+   cross-validated fit factors one Gram-sized matrix per fold and strength, or eigendecomposes one per fold);
 3. the ratio fit ÷ reference (target: each fit <= 3x, <= 10 s and <= 500 MB at past 100 / horizon 50); beside it
    the fit's CPU time (every thread, system time included) ÷ the reference, and that ÷ the machine's cores: the
    ratio the fit would have with every core busy all the time, so the lowest its schedule can reach without doing
    less work (the reference runs on one thread, so its wall time is its CPU time); and for the
-   two cross-validated ridge fits (ridge ARX, the least-squares predictor) their floor on this machine: the Gram
-   reference plus, per fold, one reduction of the largest regressor block that gives every strength at once (the
-   cheaper of ridge ARX's band reduction and the tridiagonal reduction of an eigendecomposition, one thread, CPU
-   seconds), both cores used without loss. Any exact cross-validation that solves every fold for a grid of
-   strengths does at least this; one eigendecomposition per fold does more;
+   two cross-validated ridge fits (ridge ARX, the least-squares predictor) their floor on this machine: the lag
+   sums by the fits' own route plus, per fold, one reduction of the largest regressor block that gives every
+   strength at once (the cheaper of ridge ARX's band reduction and the tridiagonal reduction of an
+   eigendecomposition, one thread, CPU seconds), both cores used without loss. Any exact cross-validation that solves every fold for a grid of
+   strengths does at least this; one eigendecomposition per fold (the issue's method, printed beside it for the
+   least-squares predictor) does more. For the regularised Hankel predictor, whose strengths predict alike (no grid
+   to reduce for), its floor: the lag sums plus, per fold, one Cholesky factor of its regressor block, two
+   triangular solves and one triangular product with its right-hand sides, plus once the total Gram's factor;
 4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
    horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 3 sites, same trials), and the slope
    of log time against log past window between neighbouring windows and over all of them (least squares), beside
@@ -119,20 +123,26 @@ def child_fit(path: str, method: str, past: int, horizon: int) -> dict:
     m, p = session.n_inputs, session.n_outputs  # the largest regressor a fold must solve for, and the folds
     if method == "arx":
         out["floor"] = {"n": (m + p) * past, "folds": int(est.n_folds_), "rhs": 0}
-    elif method == "lsq":
+    elif method in ("lsq", "hankel"):
         out["floor"] = {"n": (m + p) * past + m * horizon,
-                        "folds": sum(str(c).startswith("fold_") for c in est.cv_table_.columns), "rhs": p * horizon}
+                        "folds": sum(str(c).startswith("fold_") for c in est.cv_table_.columns), "rhs": p * horizon,
+                        "kind": method}
     return out
 
 
-def child_reduction(n: int, rhs: int) -> dict:
+def child_reduction(n: int, rhs: int, kind: str = "ridge") -> dict:
     """CPU seconds, one BLAS thread, of the cheapest reductions that give a ridge solve for every strength of one
     fold at once, on an ``n × n`` symmetric definite matrix (their flop counts do not depend on the values: random,
     seeded): the band reduction ridge ARX uses (``arx_band.BandForm``, ``~4/3 n³`` flops of ``syr2k``/``symm``) and
     the tridiagonal reduction of an eigendecomposition (eigenvalues only, LAPACK ``syevd``), best of two; with
     ``rhs > 0`` also one product of the matrix with ``rhs`` right-hand sides (``2 n² rhs`` flops, what bringing the
     fold's right-hand sides into the reduced basis costs at least: applying the reflectors costs about as much,
-    Golub & Van Loan 2013, Matrix Computations, 4th ed., sec. 5.1)."""
+    Golub & Van Loan 2013, Matrix Computations, 4th ed., sec. 5.1). For ``kind="lsq"`` also the whole
+    eigendecomposition with eigenvectors (``syevd``, the issue's "one symmetric eigendecomposition per fold"); for
+    ``kind="hankel"`` instead the Hankel predictor's work per fold, which has no grid of strengths to reduce for
+    (the projection regulariser's strengths predict alike on full-rank data): one Cholesky factor of ``n`` rows, two
+    triangular solves and one triangular product with the ``rhs`` right-hand sides (``n³/3 + 3 n² rhs`` flops), and
+    once the total Gram's Cholesky factor (``n + rhs`` rows)."""
     import numpy as np
     import scipy.linalg as sla
     from threadpoolctl import threadpool_limits
@@ -147,6 +157,22 @@ def child_reduction(n: int, rhs: int) -> dict:
     if rhs > 0:
         R = np.random.default_rng(1).standard_normal((n, rhs))
         cases["rhs"] = lambda: A @ R
+    if kind == "lsq":
+        cases["eigh"] = lambda: sla.eigh(A, driver="evd", check_finite=False)
+    if kind == "hankel":
+        from scipy.linalg import blas, lapack
+
+        M2 = np.random.default_rng(2).standard_normal((n + rhs, n + rhs))
+        At = M2 @ M2.T / (n + rhs) + np.eye(n + rhs)
+        Rf = np.asfortranarray(R)
+
+        def fold():
+            F, _info = lapack.dpotrf(A, lower=1, clean=0)
+            Y = blas.dtrsm(1.0, F, Rf, lower=1)
+            X = blas.dtrsm(1.0, F, Y, lower=1, trans_a=1, overwrite_b=1)
+            return blas.dtrmm(1.0, F, X, lower=1, trans_a=1, overwrite_b=1)
+
+        cases = {"fold": fold, "total": lambda: lapack.dpotrf(At, lower=1, clean=0)}
     out = {}
     with threadpool_limits(limits=1, user_api="blas"):
         for name, f in cases.items():
@@ -165,29 +191,52 @@ def floor_line(label: str, r: dict, ref: dict, timeout: float) -> str:
     loss; for many right-hand sides, one product with them per fold. A lower bound of any exact cross-validation
     over a grid of strengths that solves every fold: one eigendecomposition per fold needs the tridiagonal reduction
     and more, one Cholesky factor per strength costs ``n³/3`` flops per strength."""
-    n, folds = r["floor"]["n"], r["floor"]["folds"]
-    red = run_child(["reduction", "-", n, r["floor"]["rhs"]], timeout)
-    if "band" not in red or "seconds" not in ref:
+    n, folds, kind = r["floor"]["n"], r["floor"]["folds"], r["floor"].get("kind", "ridge")
+    red = run_child(["reduction", "-", n, r["floor"]["rhs"], kind], timeout)
+    if ("band" not in red and "fold" not in red) or "seconds" not in ref:
         return f"# floor of {label}: not measured ({_fmt(red)})"
+    sums = ref.get("own_s", ref["seconds"])  # the lag sums by the fits' own route
+    if kind == "hankel":
+        floor = sums + (folds * red["fold"] + red["total"]) / 2
+        return (f"# floor of {label}: lag sums {sums:.2f} s ({ref.get('own_route', 'direct')} route) + ({folds} "
+                f"folds x one Cholesky factor of {n} rows, two triangular solves and a triangular product with its "
+                f"{r['floor']['rhs']} right-hand sides {red['fold']:.2f} s + the total's factor of "
+                f"{n + r['floor']['rhs']} rows {red['total']:.2f} s of CPU, one thread) / 2 cores = {floor:.2f} s = "
+                f"{floor / ref['seconds']:.1f}x Gram (no assembly, no closed-form predictor counted); the fit "
+                f"{r['seconds']:.2f} s is {r['seconds'] / floor:.1f}x this floor")
     cheapest = min(red["band"], red["tridiagonal"]) + red.get("rhs", 0.0)
-    floor = ref["seconds"] + folds * cheapest / 2
+    floor = sums + folds * cheapest / 2
     rhs = f" + one product with its {r['floor']['rhs']} right-hand sides {red['rhs']:.2f} s" if "rhs" in red else ""
-    return (f"# floor of {label}: Gram {ref['seconds']:.2f} s + {folds} folds x one reduction of {n} rows "
+    return (f"# floor of {label}: lag sums {sums:.2f} s ({ref.get('own_route', 'direct')} route) + {folds} folds "
+            f"x one reduction of {n} rows "
             f"(band {red['band']:.2f} s, tridiagonal {red['tridiagonal']:.2f} s of CPU, one thread){rhs} / 2 cores "
             f"= {floor:.2f} s = {floor / ref['seconds']:.1f}x Gram; the fit {r['seconds']:.2f} s is "
-            f"{r['seconds'] / floor:.1f}x this floor")
+            f"{r['seconds'] / floor:.1f}x this floor" + _eigen_floor(sums, folds, red, ref))
+
+
+def _eigen_floor(sums: float, folds: int, red: dict, ref: dict) -> str:
+    """The floor by the issue's own method for a grid of strengths, one eigendecomposition per fold (``eigh``, with
+    eigenvectors) plus the product with the right-hand sides, where measured."""
+    if "eigh" not in red:
+        return ""
+    floor = sums + folds * (red["eigh"] + red.get("rhs", 0.0)) / 2
+    return (f"; by one eigendecomposition per fold (syevd with eigenvectors {red['eigh']:.2f} s of CPU) "
+            f"{floor:.2f} s = {floor / ref['seconds']:.1f}x Gram")
 
 
 def child_gram(path: str, n_lags: int) -> dict:
     """Bare lag products of the raw data: ``Z[δ:]ᵀ Z[:T-δ]`` for δ = 0 … n_lags - 1, over the whole recording.
 
-    One product of two ``(T × c)`` matrices per lag (the cost of any exact lagged Gram, without its per-trial edge
-    terms), on one BLAS thread, best of two runs.
+    One product of two ``(T × c)`` matrices per lag (the cost of any exact lagged Gram by direct products, without
+    its per-trial edge terms), on one BLAS thread, best of two runs; beside it (``own_s``) the same sums by the fits'
+    own route (``_lagged._chunk_products`` over 16,384-row chunks: short FFTs for long lagged vectors).
     """
     import numpy as np
     from threadpoolctl import threadpool_limits
 
     from stimsteer.sysid import load_session
+    from stimsteer.sysid._lag_spectra import uses_spectra
+    from stimsteer.sysid._lagged import _chunk_products
 
     session = load_session(path)
     Z = np.ascontiguousarray(np.hstack([session.u, session.y]))
@@ -201,12 +250,19 @@ def child_gram(path: str, n_lags: int) -> dict:
             np.matmul(Z[d:].T, Z[: T - d], out=X[d])
         return time.perf_counter() - t0
 
+    def own():  # the fits' own route for the same sums (direct products or short FFTs, _lagged._chunk_products)
+        t0 = time.perf_counter()
+        for k0 in range(n_lags, T, 16384):
+            _chunk_products(Z[k0 - n_lags + 1: min(T, k0 + 16384)], n_lags - 1)
+        return time.perf_counter() - t0
+
     # One BLAS thread: on a busy machine multi-threaded OpenBLAS stalls on these small products (a 2-thread
     # reference was killed after 400 s at 150 lags under load 11); on an idle one it gains little at c = 23.
     with threadpool_limits(limits=1, user_api="blas"):
         best = min(products() for _ in range(2))
-    return {"seconds": best, "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0,
-            **_cholesky_seconds(X)}
+        own_best = min(own() for _ in range(2))
+    return {"seconds": best, "own_s": own_best, "own_route": "FFT" if uses_spectra(n_lags - 1, c) else "direct",
+            "peak_mb": _status("VmHWM"), "rise_mb": _status("VmHWM") - rss0, **_cholesky_seconds(X)}
 
 
 def _cholesky_seconds(X) -> dict:
@@ -372,6 +428,8 @@ def _fmt(r: dict, ref: dict | None = None) -> str:
         if "cpu_s" in r:  # the work done: no schedule on the machine's cores can take less wall time than this
             cores = os.cpu_count() or 1
             text += f" (CPU {r['cpu_s'] / ref['seconds']:.1f}x; ÷ {cores} cores {r['cpu_s'] / cores / ref['seconds']:.1f}x)"
+    if "own_s" in r:  # the Gram reference: the same sums by the fits' own route
+        text += f"; by the fits' route ({r['own_route']}) {r['own_s']:.2f} s"
     if "cholesky_1t_s" in r:  # the Gram reference: one Cholesky factor of its size beside it
         text += f"; one {r['n']} x {r['n']} Cholesky {r['cholesky_1t_s']:.2f} s " \
             f"(two threads {r['cholesky_2t_s']:.2f} s)"
@@ -462,7 +520,7 @@ def main(argv=None) -> int:
     if args.child:
         kind, path, *rest = args.child
         out = child_gram(path, int(rest[0])) if kind == "gram" else \
-            child_reduction(int(rest[0]), int(rest[1])) if kind == "reduction" else \
+            child_reduction(int(rest[0]), int(rest[1]), *rest[2:3]) if kind == "reduction" else \
             child_spc_kernels(path, int(rest[0]), int(rest[1])) if kind == "spc-kernels" else \
             child_spc_grid(path, int(rest[0]), int(rest[1]), rest[2]) if kind == "spc-grid" else \
             child_fit(path, kind, int(rest[0]), int(rest[1]))
