@@ -23,8 +23,8 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    two cross-validated ridge fits (ridge ARX, the least-squares predictor) their floor on this machine: the lag
    sums by the fits' own route plus, per fold, one reduction of the largest regressor block that gives every
    strength at once (the cheaper of ridge ARX's band reduction and the tridiagonal reduction of an
-   eigendecomposition, one thread, CPU seconds), both cores used without loss. Any exact cross-validation that solves every fold for a grid of
-   strengths does at least this; one eigendecomposition per fold (the issue's method, printed beside it for the
+   eigendecomposition, one thread, CPU seconds), both cores used without loss. Any exact cross-validation that
+   solves every fold for a grid of strengths does at least this; one eigendecomposition per fold (the issue's method, printed beside it for the
    least-squares predictor) does more. For the regularised Hankel predictor, whose strengths predict alike (no grid
    to reduce for), its floor: the lag sums plus, per fold, one Cholesky factor of its regressor block, two
    triangular solves and one triangular product with its right-hand sides, plus once the total Gram's factor;

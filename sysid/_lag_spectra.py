@@ -90,8 +90,8 @@ def spectral_products(B: np.ndarray, n_lags: int) -> np.ndarray:
 
 
 def _add_cross_spectra(C: np.ndarray, x: np.ndarray, y: np.ndarray, N: int) -> None:
-    """``C[f] += Σ_s conj(x̂_s[f])ᵀ ŷ_s[f]`` for segments ``x`` (``S × M × c``) and windows ``y`` (``S × (M + L) ×
-    c``), each zero-padded to ``N`` rows by the transform."""
+    """``C[f] += Σ_s conj(x̂_s[f])ᵀ ŷ_s[f]`` for segments ``x`` (``S × M × c``) and windows ``y``
+    (``S × (M + L) × c``), each zero-padded to ``N`` rows by the transform."""
     xf = sfft.rfft(x, n=N, axis=1)  # (S, F, c)
     yf = sfft.rfft(y, n=N, axis=1)
     np.conjugate(xf, out=xf)

@@ -21,8 +21,8 @@ from stimsteer.sysid.arx import RidgeArx
 
 def _by_scipy(B: np.ndarray, L: int) -> np.ndarray:
     """``X[δ][i, k] = Σ_τ B[L + τ, i] B[L + τ − δ, k]`` from SciPy's direct correlation: ``correlate(b, a,
-    "valid")[ℓ] = Σ_τ b[τ + ℓ] a[τ]`` with ``a`` the chunk's rows of channel ``i``, ``b`` channel ``k`` with its lead-in
-    and ``ℓ = L − δ``."""
+    "valid")[ℓ] = Σ_τ b[τ + ℓ] a[τ]`` with ``a`` the chunk's rows of channel ``i``, ``b`` channel ``k`` with its
+    lead-in and ``ℓ = L − δ``."""
     c = B.shape[1]
     X = np.empty((L + 1, c, c))
     for i in range(c):
