@@ -3,7 +3,8 @@
 For samples ``Z_t`` (rows of a ``(T × c)`` signal) and rows ``k`` of a piece, the Gram of the lagged vectors
 ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` has blocks ``sum_k Z_{k-a} Z_{k-b}ᵀ`` that depend on ``b - a`` up to a few
 edge samples: one product of two ``(n × c)`` matrices per lag difference per chunk, instead of one product of the
-``(n × c(L+1))`` lagged design. Ridge ARX (the regression Gram) and subspace identification (the block-Hankel Gram,
+``(n × c(L+1))`` lagged design; for long lagged vectors the same sums come from short FFTs (:mod:`._lag_spectra`),
+whose cost per row hardly grows with ``L``. Ridge ARX (the regression Gram) and subspace identification (the block-Hankel Gram,
 whose columns are the same lagged vectors in reversed order) both use it.
 """
 
