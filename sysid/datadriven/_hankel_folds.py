@@ -31,7 +31,6 @@ the other core. One fold's array is held at a time (and the copies of ``Θ`` of 
 
 from __future__ import annotations
 
-import functools
 import threading
 import weakref
 from concurrent.futures import Future
@@ -132,6 +131,22 @@ def _todo(folds, total) -> list:
     return [i for i, f in enumerate(folds) if f.n_columns and total.n_columns - f.n_columns]
 
 
+class _TotalRun:
+    """The total's Cholesky factor among a :class:`_FoldPlan`'s work, as ``gram.gram_condition_of`` takes it:
+    ``run(task)`` computes it on the plan's workers (:meth:`_FoldPlan._run_total`), and ``before_rows()`` waits for
+    the first fold's rows, so that the total's rows are assembled after them (beside that fold's factor,
+    GIL-free). It holds the plan weakly: a plan dropped unused still ends its threads."""
+
+    def __init__(self, plan: "_FoldPlan"):
+        self._plan = weakref.proxy(plan)
+
+    def __call__(self, task):
+        return self._plan._run_total(task)
+
+    def before_rows(self) -> None:
+        self._plan.first_rows.wait()
+
+
 class _FoldPlan:
     """The folds' steps as tasks of one :class:`TaskPool`: each fold's factor (one at a time: the next begins once
     the previous fold's array is freed), its two halves' solves, and, once :meth:`products` gives the total's
@@ -151,10 +166,8 @@ class _FoldPlan:
         self.first_rows = threading.Event()
         #: The folds' arrays, one after the other (a fresh array's first touch costs more than its assembly).
         self._buffer = np.empty(n_b * total.n_rows) if self.queue else None
-        #: ``run`` (:meth:`_run_total`) as ``gram.gram_condition_of`` takes it: ``before_rows`` waits for the first
-        #: fold's rows, so that the total's rows are assembled after them (beside this fold's factor, GIL-free).
-        self.run = functools.partial(_FoldPlan._run_total, weakref.proxy(self))
-        self.run.before_rows = self.first_rows.wait
+        #: ``run`` as ``gram.gram_condition_of`` takes it (:class:`_TotalRun`).
+        self.run = _TotalRun(self)
         weakref.finalize(self, self.pool.close, False)  # an unused plan dropped (an error in between): threads end
         self._next_fold()
 

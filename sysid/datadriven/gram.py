@@ -141,10 +141,11 @@ def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = F
     ``begin()`` is called before the Gram is assembled (work to start beside the assembly and the factor: the
     assembly's Python work holds the GIL only in part, the factor not at all); if it returns ``run``, the factor
     is computed as ``run(task)`` (``task()`` on the caller's worker threads, which then share the cores with the
-    work begun; the same call on the same array, so the same numbers). Where ``run`` has ``before_rows`` (the
-    work begun assembles rows of its own first: two assemblies at once hold the GIL in turns and each takes 2-3
-    times as long), the Gram's array is touched meanwhile (:func:`.._pages.touched`), ``before_rows()`` waits
-    for those rows, and the Gram is assembled into the array after them.
+    work begun; the same call on the same array, so the same numbers). Where ``run`` has ``before_rows`` (as
+    ``_hankel_folds._TotalRun`` has: the work begun assembles rows of its own first, and two assemblies at once
+    hold the GIL in turns and each takes 2-3 times as long), the Gram's array is touched meanwhile
+    (:func:`.._pages.touched`), ``before_rows()`` waits for those rows, and the Gram is assembled into the array
+    after them.
     """
     run = begin() if begin is not None else None
     before, out = getattr(run, "before_rows", None), None
