@@ -24,10 +24,11 @@ Measured in the same run, each case in a fresh child process (so peak memory is 
    sums by the fits' own route plus, per fold, one reduction of the largest regressor block that gives every
    strength at once (the cheaper of ridge ARX's band reduction and the tridiagonal reduction of an
    eigendecomposition, one thread, CPU seconds), both cores used without loss. Any exact cross-validation that
-   solves every fold for a grid of strengths does at least this; one eigendecomposition per fold (the issue's method, printed beside it for the
-   least-squares predictor) does more. For the regularised Hankel predictor, whose strengths predict alike (no grid
-   to reduce for), its floor: the lag sums plus, per fold, one Cholesky factor of its regressor block, two
-   triangular solves and one triangular product with its right-hand sides, plus once the total Gram's factor;
+   solves every fold for a grid of strengths does at least this; one eigendecomposition per fold (the issue's
+   method, printed beside it for the least-squares predictor) does more. For the regularised Hankel predictor,
+   whose strengths predict alike (no grid to reduce for), its floor: the lag sums plus, per fold, one Cholesky
+   factor of its regressor block, two triangular solves and one triangular product with its right-hand sides, plus
+   once the total Gram's factor;
 4. cost growth (``--growth``): the fit time of each ``--growth-methods`` method at past 25 / 50 / 100 / 200 with
    horizon 50, on a smaller session (``--growth-contacts`` recorded channels, 3 sites, same trials), and the slope
    of log time against log past window between neighbouring windows and over all of them (least squares), beside

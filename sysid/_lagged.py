@@ -4,8 +4,8 @@ For samples ``Z_t`` (rows of a ``(T × c)`` signal) and rows ``k`` of a piece, t
 ``w_k = [Z_k; Z_{k-1}; ...; Z_{k-L}]`` has blocks ``sum_k Z_{k-a} Z_{k-b}ᵀ`` that depend on ``b - a`` up to a few
 edge samples: one product of two ``(n × c)`` matrices per lag difference per chunk, instead of one product of the
 ``(n × c(L+1))`` lagged design; for long lagged vectors the same sums come from short FFTs (:mod:`._lag_spectra`),
-whose cost per row hardly grows with ``L``. Ridge ARX (the regression Gram) and subspace identification (the block-Hankel Gram,
-whose columns are the same lagged vectors in reversed order) both use it.
+whose cost per row hardly grows with ``L``. Ridge ARX (the regression Gram) and subspace identification (the
+block-Hankel Gram, whose columns are the same lagged vectors in reversed order) both use it.
 """
 
 from __future__ import annotations
@@ -67,12 +67,12 @@ def _chunk_products(B: np.ndarray, n_lags: int, spectra: bool = True) -> tuple[n
     X : ndarray, shape (L + 1, c, c)
         ``X[δ] = sum_t Z_t Z_{t-δ}ᵀ`` over the chunk's rows ``t`` (``Z_{t-δ}`` may lie in the lead-in): one
         product of two ``(n × c)`` matrices per lag difference (in blocks of :data:`_BLOCK_ROWS` rows, every lag of a
-        block before the next block); for long lagged vectors (:func:`_lag_spectra.uses_spectra`), by short FFTs instead
-        (:func:`_lag_spectra.spectral_products`, the same sums to rounding).
+        block before the next block); for long lagged vectors (:func:`_lag_spectra.uses_spectra`), by short FFTs
+        instead (:func:`_lag_spectra.spectral_products`, the same sums to rounding).
     """
     L = n_lags
     n, c = B.shape[0] - L, B.shape[1]
-    if n > 0 and spectra and uses_spectra(L, c):  # long windows: short FFTs, a few c² per row whatever L (_lag_spectra)
+    if n > 0 and spectra and uses_spectra(L, c):  # long windows: short FFTs, a few c² per row whatever L
         return B[L:].sum(axis=0), spectral_products(B, L)
     X = np.empty((L + 1, c, c)) if n > 0 else np.zeros((L + 1, c, c))
     part = np.empty((c, c)) if n > _BLOCK_ROWS else None
