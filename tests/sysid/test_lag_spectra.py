@@ -132,3 +132,25 @@ def test_the_excitation_proof_keeps_the_direct_products(monkeypatch):
     assert uses_spectra(119, 5)  # (119 + 1) · 5 = 600 lagged values: long enough for the FFT route elsewhere
     monkeypatch.setattr(_lagged, "spectral_products", lambda *a: pytest.fail("FFT route in the excitation proof"))
     assert excitation._gram_proves_full_rank(u, [(0, 2000), (2000, 4000)], 120)
+
+
+def test_near_the_condition_limit_the_fft_route_predicts_as_the_qr_route(session, monkeypatch):
+    # One-signed inputs (pulse amplitudes are) make the lagged Gram ill-conditioned; the Gram route's stated
+    # tolerance against QR is eps·κ (Golub & Van Loan 2013, "Matrix computations", 4th ed., sec. 5.3.8). The FFT
+    # route's rounding is normwise like the direct products' (module docstring), so the same tolerance holds:
+    # measured at κ = 7.6e7, 7.7e-11 against the QR route (the direct products: 1.3e-10).
+    rng = np.random.default_rng(1)
+    s = Session(u=300.0 + np.abs(rng.standard_normal(session.u.shape)), y=session.y, sample_rate_hz=1000.0,
+                trials=session.trials)
+    qr = HankelPredictor(past_steps=20, horizon_steps=10)
+    qr._route = "qr"  # test hook of the direct predictors: the QR route whatever the conditioning
+    qr.fit(s)
+    calls = []
+    monkeypatch.setattr(_lagged, "spectral_products", lambda B, L: calls.append(L) or spectral_products(B, L))
+    fft = HankelPredictor(past_steps=20, horizon_steps=10).fit(s)
+    assert calls and fft.factor_route_ == "gram" and fft.gram_condition_ > 1e7  # the FFT route, ill-conditioned
+    windows = (300.0 + np.abs(rng.standard_normal((4, 20, 2))), rng.standard_normal((4, 20, 18)),
+               300.0 + np.abs(rng.standard_normal((4, 10, 2))))
+    a, b = qr.predict_many(*windows), fft.predict_many(*windows)
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
+    np.testing.assert_allclose(fft.cv_table_["validation_error"], qr.cv_table_["validation_error"], rtol=1e-6)
