@@ -416,8 +416,10 @@ def _stream_sums(session, pieces, n_folds: int, n_lags: int, chunk_rows: int, sh
 
 #: Multiply-adds of a pass's lag products (rows × lags × channels²) from which it runs on two worker threads even
 #: where the caller limited BLAS to one thread (the fits do, for their factorisations; that limit otherwise sets
-#: the workers): 5e9 at 1 kHz, past 100 / horizon 50, 0.8 s of one core; 8e7 for a fit of the demo, whose passes
-#: run in the calling thread (no hand-offs).
+#: the workers): 5e9 at 1 kHz, past 100 / horizon 50, 0.8 s of one core by direct products; 8e7 for a fit of the
+#: demo, whose passes run in the calling thread (no hand-offs). (By the FFT route that pass is 0.06 s of one core;
+#: on two workers it took 0.047-0.081 s of wall and 0.07-0.13 s of CPU, on one thread 0.055-0.065 s: about even,
+#: so the count stays that of the direct products.)
 _TWO_CORE_WORK = 1e9
 
 
