@@ -65,8 +65,10 @@ def order_choice_figure(table: pd.DataFrame, what: str = "") -> Figure:
     ratio = sv[:-1] / np.where(sv[1:] > 0, sv[1:], np.nan)
     if ratio.size and np.isfinite(ratio).any():
         k = int(np.nanargmax(ratio))
+        # the text in the panel's upper middle (singular values fall with the order, so it stays clear of them),
+        # a line to the point: placed beside the point it ran into the panel title when the gap follows order 1
         ax_sv.annotate(f"largest gap after order {order[k]:g}\n(ratio {ratio[k]:.2g})", (order[k], sv[k]),
-                       xytext=(12, 10), textcoords="offset points", fontsize=7, color=_INK,
+                       xytext=(0.35, 0.8), textcoords="axes fraction", fontsize=7, color=_INK, va="top",
                        arrowprops={"arrowstyle": "-", "color": "0.5", "lw": 0.6})
     for ax in (ax_err, ax_sv):
         for c in chosen:

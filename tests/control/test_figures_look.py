@@ -108,3 +108,27 @@ def test_an_order_figure_for_a_method_without_an_order_is_refused_and_nothing_is
     assert not (tmp_path / "m.h5").exists() and not (tmp_path / "order.png").exists()
     with pytest.raises(InvalidParameterError, match="chose no model order"):
         order_choice_figure(__import__("pandas").DataFrame({"alpha": [1.0]}))
+
+
+def test_the_largest_gap_note_stays_inside_its_panel_below_the_title():
+    # layout check (common practice, no source): a label must not cover the panel title; the singular values here
+    # (chosen) put the largest gap after order 1, at the top of the panel, where the note once ran into the title
+    import pandas as pd
+
+    table = pd.DataFrame({"order": np.arange(1, 11), "singular_value": [6.9, 1.8, 1.6, 1.5, 1.0, 0.8, 0.8, 0.7, 0.5,
+                                                                         0.45],
+                          "heldout_error": np.linspace(0.5, 0.1, 10), "stable": True,
+                          "selected": np.arange(1, 11) == 9})
+    fig = order_choice_figure(table, "indirect route, subspace")
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    right = fig.axes[1]
+    note = [t for t in right.texts if "largest gap" in t.get_text()]
+    assert len(note) == 1
+    box, title, panel = (note[0].get_window_extent(renderer), right.title.get_window_extent(renderer),
+                         right.get_window_extent(renderer))
+    assert not box.overlaps(title)
+    assert panel.x0 <= box.x0 and box.x1 <= panel.x1 and panel.y0 <= box.y0 and box.y1 <= panel.y1
