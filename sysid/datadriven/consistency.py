@@ -51,27 +51,30 @@ def plan_gaps(blocks, M, lambdas_abs, lam_y: float) -> np.ndarray:
     return np.asarray(out)
 
 
-def choose_consistent(table, gaps: np.ndarray) -> int:
-    """Index of the chosen candidate: lowest held-out error, ties (TIE_TOLERANCE) broken by the smallest gap."""
+def _tied(table) -> tuple[np.ndarray, int]:
+    """Indices of the candidates tied with the lowest held-out error (within TIE_TOLERANCE; all of them where no
+    error is finite), and the number of candidates."""
     err = table["validation_error"].to_numpy(dtype=np.float64)
     if not np.isfinite(err).any():
-        return int(np.argmin(gaps))
-    best = np.nanmin(err)
-    tied = np.flatnonzero(err <= best * (1.0 + TIE_TOLERANCE) + 1e-300)
-    return int(tied[np.argmin(gaps[tied])])
+        return np.arange(err.size), err.size
+    return np.flatnonzero(err <= np.nanmin(err) * (1.0 + TIE_TOLERANCE) + 1e-300), err.size
+
+
+def choose_consistent(table, gaps: np.ndarray) -> int:
+    """Index of the chosen candidate: lowest held-out error, ties (TIE_TOLERANCE) broken by the smallest gap."""
+    tied, _n = _tied(table)
+    return int(tied[np.argmin(np.asarray(gaps)[tied])])
 
 
 def consistent_choice(table, gaps: np.ndarray, strengths) -> tuple[float, tuple]:
     """The chosen strength (:func:`choose_consistent`) and the selection's notes: when held-out errors tie, one note
     saying so and that the plan gap chose among them (a user reading equal errors in the table learns why)."""
     chosen = choose_consistent(table, gaps)
-    err = table["validation_error"].to_numpy(dtype=np.float64)
-    tied = np.flatnonzero(err <= np.nanmin(err) * (1.0 + TIE_TOLERANCE) + 1e-300) if np.isfinite(err).any() else \
-        np.arange(err.size)
+    tied, n = _tied(table)
     if tied.size < 2:
         return float(strengths[chosen]), ()
     return float(strengths[chosen]), (
-        f"the held-out errors of {tied.size} of {err.size} strengths tie (within {TIE_TOLERANCE:g}, relative): on data "
+        f"the held-out errors of {tied.size} of {n} strengths tie (within {TIE_TOLERANCE:g}, relative): on data "
         "whose past and future-input rows have full rank every strength predicts alike. The smallest plan gap chose "
         f"among them: {float(strengths[chosen]):g}, whose plans can drift least from the predictor's own prediction "
         "(column plan_gap).",)
