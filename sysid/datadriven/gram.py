@@ -122,7 +122,7 @@ def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = Non
     ``norm`` is ``||G||₁`` when ``G`` is not given. The same LAPACK routine with the GIL released where ``F`` is a
     square Fortran-ordered float64 array (:func:`._nogil_cholesky.pocon_lower`): other threads' Python work goes on.
     """
-    norm = float(np.abs(G).sum(axis=0).max()) if norm is None else norm
+    norm = _one_norm(G) if norm is None else norm
     rcond = pocon_lower(F, norm)
     if rcond is None:
         pocon, = sla.get_lapack_funcs(("pocon",), (F,))
