@@ -37,8 +37,7 @@ from concurrent.futures import Future
 
 import numpy as np
 
-from .._lapack_nogil import strided_cholesky_calls
-from ._nogil_cholesky import _one_norm
+from .._lapack_nogil import one_norm, strided_cholesky_calls
 from ._task_pool import TaskPool
 from .base import regressor_rows
 from .gram import GRAM_CONDITION_LIMIT, _total_factor, release_freed_memory
@@ -78,7 +77,7 @@ def _factor_fold(train, n_b: int, out=None, assembled=None):
     if assembled is not None:
         assembled()
     n = Gt.shape[1]
-    norm = _one_norm(Gt, n_b)
+    norm = one_norm(Gt[:, :n_b])
     if _CALLS.potrf(Gt, 0, n_b, n) != 0:
         return None
     rcond = _CALLS.pocon(Gt, 0, n_b, n, norm)

@@ -45,12 +45,3 @@ def pocon_lower(F: np.ndarray, norm: float) -> float | None:
     if _CALLS is None or F.ndim != 2 or F.shape != (n, n) or not F.flags.f_contiguous or F.dtype != np.float64:
         return None
     return _CALLS.pocon(F, 0, n, n, norm)
-
-
-def _one_norm(G: np.ndarray, n: int | None = None) -> float:
-    """``||G[:, :n]||₁`` (largest absolute column sum) summed over blocks of rows: no temporary of ``G``'s size."""
-    n = G.shape[1] if n is None else n
-    acc = np.zeros(n)
-    for r in range(0, G.shape[0], 512):
-        acc += np.abs(G[r:r + 512, :n]).sum(axis=0)
-    return float(acc.max()) if n else 0.0

@@ -31,7 +31,8 @@ from .._progress import progress
 from ._eigen_folds import errors_for as _folds_side_by_side
 from ._by_strength import gram_scale, held_out_constant, strength_errors
 from .._pages import release_freed_memory, touched
-from ._nogil_cholesky import _one_norm, pocon_lower, potrf_lower
+from .._lapack_nogil import one_norm
+from ._nogil_cholesky import pocon_lower, potrf_lower
 
 #: Largest estimated 1-norm condition number of a Hankel Gram the Gram route accepts. Its rounding errors grow as
 #: ``eps · κ(H Hᵀ)`` against ``eps · κ(H)`` for QR (Golub & Van Loan 2013, section 5.3.8): at 1e8 that bound is
@@ -122,7 +123,7 @@ def gram_condition(F: np.ndarray, G: np.ndarray | None, norm: float | None = Non
     ``norm`` is ``||G||₁`` when ``G`` is not given. The same LAPACK routine with the GIL released where ``F`` is a
     square Fortran-ordered float64 array (:func:`._nogil_cholesky.pocon_lower`): other threads' Python work goes on.
     """
-    norm = _one_norm(G) if norm is None else norm
+    norm = one_norm(G) if norm is None else norm
     rcond = pocon_lower(F, norm)
     if rcond is None:
         pocon, = sla.get_lapack_funcs(("pocon",), (F,))
@@ -153,7 +154,7 @@ def gram_condition_of(fold: "_GramFold", keep: bool = False, keep_gram: bool = F
         out = touched(fold.n_rows ** 2)
         before()
     G = fold.gram_rows(0, fold.n_rows, out=out)
-    norm = _one_norm(G)
+    norm = one_norm(G)
     # in place (memory: one Gram-sized array); without clean the strict upper triangle keeps G's own entries
     task = functools.partial(potrf_lower, G, clean=not keep_gram)  # the GIL released: other threads work beside it
     F, info = task() if run is None else run(task)
@@ -449,7 +450,7 @@ def unregularised_fold_error(train: _GramFold, val: _GramFold, n_b: int, weights
     """
     release_freed_memory()  # the previous fold's arrays, before this fold's peak
     Gt = train.gram_rows(0, n_b)  # only the rows of [Up; Yp; Uf] are used (of the Grams and their memory: 71 %)
-    norm = _one_norm(Gt, n_b)
+    norm = one_norm(Gt[:, :n_b])
     G11, G12 = np.asfortranarray(Gt[:, :n_b]), np.asfortranarray(Gt[:, n_b:])
     del Gt  # memory: the two blocks LAPACK works on in place, not the rows as well
     try:

@@ -1,5 +1,6 @@
-"""The ``B, D`` systems' Cholesky route with the GIL released: LAPACK's ``dpotrf``, ``dpocon``, ``dpotrs`` and
-``dlange`` on column-major matrices and their leading blocks (any leading dimension, no copy).
+"""The ``B, D`` systems' Cholesky route with the GIL released: LAPACK's ``dpotrf``, ``dpocon`` and ``dpotrs`` on
+column-major matrices and their leading blocks (any leading dimension, no copy; their 1-norm: the shared
+:func:`stimsteer.sysid._lapack_nogil.one_norm`).
 
 SciPy's f2py wrappers of these routines hold the GIL for the whole call (measured: a pure-Python thread beside a
 3000 × 3000 ``dpotrf`` ran at 11 % of its idle rate, beside ``dpotrs`` at 3 %, against 50-65 % beside NumPy's
@@ -19,22 +20,18 @@ import scipy.linalg as sla
 
 from .._lapack_nogil import _DPOCON, _DPOTRF, scipy_c_function
 
-__all__ = ["available", "block_norm", "potrf", "pocon", "potrs"]
+__all__ = ["available", "potrf", "pocon", "potrs"]
 
 _INT = ctypes.POINTER(ctypes.c_int)
 _DBL = ctypes.POINTER(ctypes.c_double)
 _CHR = ctypes.c_char_p
 
 _DPOTRS = scipy_c_function("lapack", "dpotrs", _CHR, _INT, _INT, _DBL, _INT, _DBL, _INT, _INT)
-_DLANGE = scipy_c_function("lapack", "dlange", _CHR, _INT, _INT, _DBL, _INT, _DBL)
-if _DLANGE is not None:  # dlange returns the norm: the same C function, with its result type
-    _DLANGE = ctypes.CFUNCTYPE(ctypes.c_double, _CHR, _INT, _INT, _DBL, _INT, _DBL)(
-        ctypes.cast(_DLANGE, ctypes.c_void_p).value)
 
 
 def available() -> bool:
     """Whether the calls below release the GIL (SciPy's exported functions were found)."""
-    return None not in (_DPOTRF, _DPOCON, _DPOTRS, _DLANGE)
+    return None not in (_DPOTRF, _DPOCON, _DPOTRS)
 
 
 def _column_major(A: np.ndarray) -> int:
@@ -46,15 +43,6 @@ def _column_major(A: np.ndarray) -> int:
 
 def _ints(*values):
     return [ctypes.byref(ctypes.c_int(int(v))) for v in values]
-
-
-def block_norm(A: np.ndarray) -> float:
-    """``‖A‖₁`` (LAPACK ``dlange("1")``: each column summed in row order, as :func:`.riccati.one_norm`)."""
-    ld = _column_major(A)
-    if not available():  # pragma: no cover - other SciPy builds
-        return float(sla.lapack.dlange("1", A))
-    m, n, lda = _ints(A.shape[0], A.shape[1], ld)
-    return float(_DLANGE(b"1", m, n, A.ctypes.data_as(_DBL), lda, None))
 
 
 def potrf(A: np.ndarray, uplo: str = "L") -> int:

@@ -32,6 +32,7 @@ import threading
 import numpy as np
 import scipy.linalg as sla
 
+from .._lapack_nogil import one_norm
 from ._gil_free import pocon, potrf
 from .._pages import release_tail
 from ._gram_pairs import pairs_from_gram
@@ -46,11 +47,6 @@ from .projection import _CHOLESKY_CONDITION, _psd_parts
 #: columns); more are taken when a larger order is asked. Measured: 0.06 s of one thread at 1,000 rows, against
 #: 0.14 s for all of them.
 SCORING_PAIRS = 64
-
-
-def _one_norm(S: np.ndarray, band: int = 64) -> float:
-    """``‖S‖₁`` of a symmetric matrix (largest absolute row sum), a band of rows at a time."""
-    return max(float(np.abs(S[a:a + band]).sum(axis=1).max()) for a in range(0, S.shape[0], band))
 
 
 def _zero_upper(S: np.ndarray, band: int = 512) -> None:
@@ -70,7 +66,7 @@ def cholesky_in_place(S: np.ndarray) -> bool:
     LAPACK's ``dpotrf("U")`` and ``dpocon("U")`` on ``Sᵀ`` (the same memory in Fortran order; its upper factor is
     our lower one) with the GIL released (:mod:`._gil_free`): the numbers of SciPy's ``potrf(lower=0, clean=1)`` and
     ``pocon(uplo="U")``, bit for bit, while the other projection's decomposition runs on its thread."""
-    anorm = _one_norm(S)
+    anorm = one_norm(S)
     F = S.T  # the same memory in Fortran order: LAPACK's upper factor of Sᵀ = S is our lower one
     if potrf(F, uplo="U") != 0:
         return False

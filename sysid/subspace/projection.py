@@ -14,9 +14,10 @@ from ..exceptions import ExcitationError, StimsteerWarning
 from ..statespace import kalman_gain
 from .gram import _Layout
 from .markov import _shift_weights, normal_equations, normal_equations_gemm, pattern_blocks
-from ._gil_free import block_norm, pocon, potrf, potrs
+from .._lapack_nogil import one_norm
+from ._gil_free import pocon, potrf, potrs
 from .nested import NestedOrders
-from .riccati import conditioned_cholesky, doubling_gain, one_norm
+from .riccati import conditioned_cholesky, doubling_gain
 
 
 # Relative cut-off for eigenvalues of (scaled, unit-RMS) covariance matrices treated as zero. Noise-free data make
@@ -256,12 +257,12 @@ def _cholesky_solve(M: np.ndarray, rhs: np.ndarray, factor=None, norm=None, over
     Column-major systems and factors (the candidate orders') take LAPACK with the GIL released, in place
     (:mod:`._gil_free`): the same routines on the same numbers as SciPy's wrappers."""
     if factor is None and overwrite and M.flags.f_contiguous:
-        anorm = block_norm(M)  # (before the factor overwrites it)
+        anorm = one_norm(M)  # (before the factor overwrites it)
         if potrf(M) != 0 or not pocon(M, anorm) * _CHOLESKY_COND_MAX >= 1.0:
             return None
         return potrs(M, rhs), M
     if factor is not None and factor.strides[0] == factor.itemsize:  # a block of a column-major factor
-        rcond = pocon(factor, block_norm(M) if norm is None else norm)
+        rcond = pocon(factor, one_norm(M) if norm is None else norm)
         return (potrs(factor, rhs), factor) if rcond * _CHOLESKY_COND_MAX >= 1.0 else None
     if factor is None:
         F = conditioned_cholesky(M, _CHOLESKY_COND_MAX, overwrite)
@@ -364,7 +365,7 @@ def _b_d(proj: _Projection, gamma, A, C, feedthroughs: tuple, basis=None) -> dic
             continue
         # the candidates' systems (Fortran order) are factored in place; what the other setting reads of them
         # (the leading block's norm) is taken first, and the fallbacks remake them
-        norm = block_norm(M[:k, :k]) if ft and len(feedthroughs) > 1 else None
+        norm = one_norm(M[:k, :k]) if ft and len(feedthroughs) > 1 else None
         out[ft], F = _solve_b_d(M, rhs, n, L, ft, remake=lambda ft=ft: _normal_equations(proj, A, C, Q, ft)[0])
         shared = (M, rhs, F, norm) if ft else None
     return out

@@ -23,6 +23,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
+from .._lapack_nogil import one_norm
+
 #: Most doubling steps: ``A_k`` is the closed loop to the power ``2^k``; 60 steps cover a spectral radius of
 #: ``1 − 1e-15`` and more.
 _MAX_STEPS = 60
@@ -33,17 +35,6 @@ _VANISHED = 1e-9
 _R_CONDITION = 1e8
 #: Largest Riccati residual accepted, relative to ``‖P‖₁ + ‖Q‖₁`` (common practice, no source).
 _RESIDUAL = 1e-10
-
-
-def one_norm(M: np.ndarray) -> float:
-    """``‖M‖₁`` (largest absolute column sum); of a C-ordered matrix as LAPACK's ∞-norm of its transpose (one
-    pass over the memory as laid out, no temporary), of a Fortran-ordered one (or a block of one) as its 1-norm.
-    Every route sums each column in row order, so the same numbers give the same norm however they lie."""
-    if M.flags.c_contiguous and M.size:
-        return float(sla.lapack.dlange("I", M.T))
-    if M.size and M.ndim == 2 and M.strides[0] == M.itemsize and M.strides[1] >= M.itemsize * M.shape[0]:
-        return float(sla.lapack.dlange("1", M))
-    return float(np.abs(M).sum(axis=0).max())
 
 
 def conditioned_cholesky(M: np.ndarray, condition_max: float, overwrite: bool = False):

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy.linalg import lapack
 
-from stimsteer.sysid._lapack_nogil import tpqrt_inplace, tpqrt_nogil_available
+from stimsteer.sysid._lapack_nogil import one_norm, tpqrt_inplace, tpqrt_nogil_available
 
 
 @pytest.fixture
@@ -90,3 +90,54 @@ def test_eigh_lower_of_a_block_of_a_larger_array_is_numpys_eigh():
         eigh_lower(np.zeros((3, 3)), 4, 4)
     with pytest.raises(ValueError, match="Fortran-ordered"):
         trmm_lower_t(F, n, ld, np.zeros((n, 2)))
+
+
+def _layouts(M: np.ndarray):
+    """``M`` (C-ordered) as it may lie: C- and Fortran-ordered, leading blocks of both, a strided view."""
+    F = np.asfortranarray(M)
+    k = M.shape[0] // 2 + 1
+    return {"C": M, "Fortran": F, "C block": M[:k, :k + 3], "Fortran block": F[:k, :k + 3],
+            "strided": M[::2, ::3]}
+
+
+@pytest.mark.parametrize("shape", [(1, 5), (5, 1), (37, 37), (130, 200), (300, 90)])
+def test_one_norm_is_numpys_matrix_one_norm_in_every_layout(rng, shape):
+    # reference: NumPy's np.linalg.norm(·, 1), the largest absolute column sum (NumPy docs, numpy.linalg.norm);
+    # columns of unequal scale so that the largest sum is one column's
+    M = rng.standard_normal(shape) * np.logspace(0, 3, shape[1])
+    for name, view in _layouts(M).items():
+        assert one_norm(view) == pytest.approx(np.linalg.norm(view, 1), rel=1e-13), name
+    assert one_norm(np.zeros((0, 4))) == 0.0
+
+
+def test_one_norm_is_the_same_number_however_the_matrix_lies(rng):
+    # each column summed in row order in every layout (LAPACK dlange "1" and "I"): exactly equal, as SciPy's wrapper
+    M = rng.standard_normal((61, 61))  # arbitrary size (chosen)
+    ref = lapack.dlange("1", np.asfortranarray(M))
+    views = _layouts(M)
+    assert one_norm(views["C"]) == one_norm(views["Fortran"]) == ref
+    assert one_norm(views["C block"]) == one_norm(views["Fortran block"]) == lapack.dlange("1", views["C block"])
+
+
+def test_one_norm_makes_no_temporary_of_the_matrix(rng):
+    # the Gram route's former row blocks, each a new array, made the matrix's size in new pages per norm (their first
+    # touch is what costs: _lapack_nogil.one_norm); tracemalloc sees NumPy's data buffers (NumPy docs, "Memory
+    # management": NumPy reports its allocations to tracemalloc)
+    import tracemalloc
+
+    M = rng.standard_normal((1024, 2000))
+    for view in (M, np.asfortranarray(M), M[:, :1500]):
+        tracemalloc.start()
+        try:
+            one_norm(view)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert peak < 64 * 1024  # LAPACK's n-vector of row sums (16 kB) at most; the matrix: 16 MB
+
+
+def test_one_norm_refuses_what_is_not_a_float64_matrix():
+    with pytest.raises(ValueError, match="2-D float64"):
+        one_norm(np.ones((3, 3), dtype=np.float32))
+    with pytest.raises(ValueError, match="2-D float64"):
+        one_norm(np.ones(3))

@@ -14,6 +14,7 @@ import pytest
 
 from stimsteer.sysid import Session
 from stimsteer.sysid._lagged import _lagged_gram, blas_controller, blas_thread_count, blas_threads
+from stimsteer.sysid._lapack_nogil import one_norm
 from stimsteer.sysid.subspace import SubspaceId, factor, gram, heldout, prepare
 from stimsteer.sysid.subspace import nested as nested_orders
 
@@ -97,8 +98,8 @@ def test_cholesky_in_place_equals_scipys_wrappers_bit_for_bit():
     work = S.copy()
     assert factor.cholesky_in_place(work)
     assert np.array_equal(work, ref)
-    rcond = sla.lapack.dpocon(ref.T, factor._one_norm(S), uplo="U")[0]
-    assert factor.pocon(work.T, factor._one_norm(S), uplo="U") == rcond  # exact: the same dpocon call
+    rcond = sla.lapack.dpocon(ref.T, one_norm(S), uplo="U")[0]
+    assert factor.pocon(work.T, one_norm(S), uplo="U") == rcond  # exact: the same dpocon call
 
 
 def test_blocked_triangular_solve_equals_a_direct_solve():

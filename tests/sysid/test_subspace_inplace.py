@@ -13,6 +13,7 @@ import pytest
 import scipy.linalg as sla
 
 from stimsteer.sysid.exceptions import ExcitationError
+from stimsteer.sysid._lapack_nogil import one_norm
 from stimsteer.sysid.subspace import gram, markov, projection, riccati
 
 
@@ -55,15 +56,6 @@ def test_fortran_ordered_equations_hold_the_former_numbers_bit_for_bit(feedthrou
         M, _rhs = markov.normal_equations_gemm(h, Q, S_uu, Sc_uu - S_uu, target, n, m, feedthrough, weights)
         ref = _former_normal_equations(h, Q, S_uu, Sc_uu - S_uu, target, n, m, weights)
         assert M.flags.f_contiguous and np.array_equal(M, ref)
-
-
-def test_one_norm_is_the_same_for_every_memory_order():
-    M = np.random.default_rng(1).standard_normal((37, 37))  # 37 and its 20 × 20 block: arbitrary sizes (chosen)
-    ref = np.linalg.norm(M, 1)  # NumPy: largest absolute column sum
-    F = np.asfortranarray(M)
-    for view in (M, F, M[:20, :20], F[:20, :20]):
-        expect = ref if view.shape == M.shape else np.linalg.norm(M[:20, :20], 1)
-        assert riccati.one_norm(view) == expect
 
 
 @pytest.mark.parametrize("settings", [(False, True), (True,), (False,)])
@@ -122,7 +114,7 @@ def test_gil_free_calls_equal_scipys_wrappers_bit_for_bit():
     assert _gil_free.potrf(F) == 0 and np.array_equal(np.tril(F), np.tril(ref))
     assert np.array_equal(np.triu(F, 1), np.triu(M, 1))  # the upper triangle is kept, as cho_factor's
     for k in (60, 25):  # the whole factor and a leading block read where it lies (leading dimension 60)
-        assert _gil_free.block_norm(M[:k, :k]) == sla.lapack.dlange("1", M[:k, :k])
+        assert one_norm(M[:k, :k]) == sla.lapack.dlange("1", M[:k, :k])
         # 7.0: any one-norm given to both (the estimate is a function of it; exact: the same dpocon)
         assert _gil_free.pocon(F[:k, :k], 7.0) == sla.lapack.dpocon(ref[:k, :k], 7.0, uplo="L")[0]
         assert np.array_equal(_gil_free.potrs(F[:k, :k], b[:k]),
