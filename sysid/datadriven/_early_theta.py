@@ -54,12 +54,25 @@ def projection_theta(F: np.ndarray, n_b: int, limit: float):
     return rhs.T if info.value == 0 else None
 
 
-def theta_task(owner, total, n_b: int, limit: float, gaps=None):
-    """``[task]`` that sets ``owner._theta_early`` to :func:`projection_theta` of the total's kept factor ``F`` (run
-    while the folds are scored; the Hankel predictor's ``_blocks`` takes it), and with ``gaps`` a second task, run
-    after it, that sets ``owner._gaps_early`` to ``gaps(theta, F)``; None where there is no such factor."""
+#: The results computed beside the folds, set on the predictor and each taken once (:func:`taken`).
+EARLY = ("_theta_early", "_gaps_early", "_map_early", "_scale_early")
+
+
+def taken(owner, name: str):
+    """``owner.<name>``, one of :data:`EARLY` (None where it was not computed), set back to None: each result is
+    taken once, and a fit that fails midway leaves none for the next one."""
+    value = getattr(owner, name, None)
+    setattr(owner, name, None)
+    return value
+
+
+def theta_task(owner, total, n_b: int, limit: float, gaps=None, unscaled=None):
+    """Tasks that set ``owner._theta_early`` to :func:`projection_theta` of the total's kept factor ``F`` (run while
+    the folds are scored; the Hankel predictor's ``_blocks`` takes it), then, side by side (a tuple: both workers,
+    ``_hankel_folds._chain``), ``owner._gaps_early = gaps(theta, F)`` and ``owner._map_early = (theta, unscaled(theta))``
+    for those given; None where there is no such factor."""
     F = getattr(total, "_factor", None)
-    owner._theta_early = owner._gaps_early = None
+    owner._theta_early = owner._gaps_early = owner._map_early = None
     if F is None or not available():
         return None
 
@@ -69,4 +82,9 @@ def theta_task(owner, total, n_b: int, limit: float, gaps=None):
     def second():
         if owner._theta_early is not None:
             owner._gaps_early = gaps(owner._theta_early, F)
-    return [first] if gaps is None else [first, second]
+
+    def third():
+        if owner._theta_early is not None:
+            owner._map_early = (owner._theta_early, unscaled(owner._theta_early))
+    after = tuple(task for task, given in ((second, gaps), (third, unscaled)) if given is not None)
+    return [first, after] if after else [first]

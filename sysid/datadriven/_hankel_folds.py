@@ -307,21 +307,32 @@ def first_fold_hook(predictor, session):
 
 
 def _chain(pool: TaskPool, tasks: list, done: list) -> None:
-    """Submit ``tasks[0]``, which submits the next when it ends; ``done`` receives their futures."""
-    if tasks:
-        def run():
-            try:
-                tasks[0]()
-            finally:
+    """Submit ``tasks[0]``, which submits the next when it ends; ``done`` receives their futures. A tuple in
+    ``tasks`` is a group of tasks submitted together (side by side, on both workers); the next item is submitted
+    once the last of them ends."""
+    if not tasks:
+        return
+    group = tasks[0] if isinstance(tasks[0], tuple) else (tasks[0],)
+    left, lock = [len(group)], threading.Lock()
+
+    def run(task):
+        try:
+            task()
+        finally:
+            with lock:
+                left[0] -= 1
+                last = left[0] == 0
+            if last:
                 _chain(pool, tasks[1:], done)
-        done.append(pool.submit(_EXTRA, run))
+    for task in group:
+        done.append(pool.submit(_EXTRA, run, task))
 
 
 def fold_errors(folds, total, n_b: int, weights: np.ndarray, extra=None) -> dict:
     """``{i: error or None}`` for every fold ``i`` with windows in it and in its training data (None: the caller
     scores that fold by the general route). ``folds.first_fold``: :func:`start_first_fold`'s plan (taken from
     there, so that no reference but the plan's tasks keeps a fold's array). ``extra``: tasks run one after the
-    other beside the folds, all ended when this returns."""
+    other beside the folds (a tuple among them: tasks side by side, :func:`_chain`), all ended when this returns."""
     plan = getattr(folds, "first_fold", None)
     if plan is not None:
         folds.first_fold = None

@@ -392,7 +392,9 @@ class _DirectPredictor(BasePredictor):
     def _unscaled(self, G_scaled: np.ndarray) -> np.ndarray:
         """A map on scaled rows (``b / s_b -> y / s_y``) as a map in the channels' units."""
         s_b, s_y = self._row_scales()
-        return (s_y[:, None] * G_scaled) / s_b[None, :]
+        out = s_y[:, None] * G_scaled
+        out /= s_b[None, :]  # in place: the same numbers as a second product, without its temporary
+        return out
 
     def _linear_many(self, G, u_past, y_past, u_future):
         b, n_future = self._batch_windows(u_past, y_past, u_future)

@@ -1,10 +1,10 @@
-"""The regularised (DeePC-style) Hankel predictor (:class:`HankelPredictor`) and its Hankel blocks."""
+"""The regularised (DeePC-style) Hankel predictor (:class:`HankelPredictor`); its Hankel blocks
+(:class:`HankelBlocks`) live beside the KKT solves on them (:mod:`.kkt`)."""
 
 from __future__ import annotations
 
 import functools
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
@@ -18,10 +18,10 @@ from .consistency import consistent_choice, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows
 from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
-from ._early_theta import theta_task
+from ._early_theta import EARLY, taken, theta_task
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
-from .kkt import (c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form, _kkt_predictor,
-                  _projection_g, _projection_map)
+from .kkt import (HankelBlocks, c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form,
+                  _kkt_predictor, _projection_g, _projection_map)
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
@@ -29,44 +29,6 @@ REGULARIZERS = ("projection", "l2", "l1")
 _DEFAULT_LAMBDAS_G = tuple(float(a) for a in np.logspace(-4, 2, 7))
 #: Validation windows per fold for the ℓ1 regulariser (each costs one convex solve).
 _L1_VALIDATION_WINDOWS = 16
-
-
-@dataclass(frozen=True)
-class HankelBlocks:
-    """The four row blocks of a (possibly compressed) data matrix; ``r`` columns each.
-
-    Attributes
-    ----------
-    Up : ndarray, shape (n_inputs·past_steps, r)
-    Yp : ndarray, shape (n_outputs·past_steps, r)
-    Uf : ndarray, shape (n_inputs·horizon_steps, r)
-    Yf : ndarray, shape (n_outputs·horizon_steps, r)
-    compressed : bool
-        True when the blocks are the row-space factor (``r ≤ n_rows``), False for the raw Hankel columns.
-    """
-
-    Up: np.ndarray
-    Yp: np.ndarray
-    Uf: np.ndarray
-    Yf: np.ndarray
-    compressed: bool
-
-    @property
-    def D(self) -> np.ndarray:
-        """``[Up; Yp; Uf]``, shape ((m+p)·past + m·horizon, r)."""
-        return np.vstack([self.Up, self.Yp, self.Uf])
-
-    @classmethod
-    def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool):
-        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them)."""
-        if H.ndim != 2 or H.shape[0] != (m + p) * (past + horizon):
-            raise SessionError(
-                f"a data matrix for {m} input(s), {p} output(s), past {past} and horizon {horizon} needs "
-                f"{(m + p) * (past + horizon)} rows; got shape {H.shape}."
-            )
-        cuts = np.cumsum([m * past, p * past, m * horizon])
-        Up, Yp, Uf, Yf = (np.ascontiguousarray(b) for b in np.split(H, cuts, axis=0))
-        return cls(Up, Yp, Uf, Yf, bool(compressed))
 
 
 # ------------------------------------------------------------------------------------------------ Hankel
@@ -254,25 +216,30 @@ class HankelPredictor(_DirectPredictor):
         lambdas, lam_y = self._validate_settings()
         l1 = self.regularizer == "l1"
         compress = bool(self.compress) and not l1
-        self._theta_early = self._gaps_early = None
+        for name in EARLY:  # none left by an earlier fit that failed midway
+            setattr(self, name, None)
         early = first_fold_hook(self, session) if compress and lambdas.size > 1 else None
         folds, weights = self._gather(session, lambdas.size, keep_full=not compress, early=early)
         score = self._score_l1 if l1 else self._score_quadratic
         if self.factor_route_ == "gram" and self.regularizer == "projection":  # total: the folds' sum, factored
             score = functools.partial(self._score_projection_gram, total=getattr(folds, "total", None))
             extra = theta_task(self, getattr(folds, "total", None), self._n_b(), GRAM_CONDITION_LIMIT,
-                               functools.partial(self._gaps_from_factor, lambdas=lambdas, lam_y=lam_y))
+                               functools.partial(self._gaps_from_factor, lambdas=lambdas, lam_y=lam_y),
+                               self._unscaled)
             score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size, extra), score)
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         total = _merge(folds, folds[0].n_rows)
-        self.data_scale_ = _data_scale(total.factor)
+        scale = taken(self, "_scale_early")  # computed beside the folds (_gaps_from_factor), from the same factor
+        self.data_scale_ = _data_scale(total.factor) if scale is None else scale
         self._l1_cache = self._map_cache = None
+        early_map = taken(self, "_map_early")  # (theta, its map in the channels' units), beside the folds
         self.blocks_, self.reg_matrix_, theta = self._blocks(total, compress)
         if theta is not None:  # the projection predictor in closed form, for every strength
-            self._map_cache = self._unscaled(theta)
+            self._map_cache = early_map[1] if early_map and early_map[0] is theta else self._unscaled(theta)
+        del early_map
         self.selection_notes_ = ()
         if not l1 and lambdas.size > 1:  # held-out errors tie on full-rank data: plan/predictor consistency decides
-            gaps, self._gaps_early = getattr(self, "_gaps_early", None), None  # computed beside the folds
+            gaps = taken(self, "_gaps_early")  # computed beside the folds
             table["plan_gap"] = gaps if gaps is not None and theta is not None else \
                 self._plan_gaps(lambdas * self.data_scale_, lam_y, theta)
             rel, self.selection_notes_ = consistent_choice(table, table["plan_gap"].to_numpy(), lambdas)
@@ -296,7 +263,7 @@ class HankelPredictor(_DirectPredictor):
         data.release()  # memory: the blocks hold the factor's rows
         if self.regularizer == "projection":
             M = theta = None
-            theta, self._theta_early = getattr(self, "_theta_early", None), None  # computed beside the folds
+            theta = taken(self, "_theta_early")  # computed beside the folds
             if theta is not None and self.factor_route_ == "gram":  # (the same numbers as the closed form here)
                 M = blocks.Up.shape[0] + blocks.Yp.shape[0] + blocks.Uf.shape[0]
             elif self.factor_route_ == "gram":  # a Cholesky factor: projector and predictor in closed form
@@ -339,7 +306,8 @@ class HankelPredictor(_DirectPredictor):
 
     def _gaps_from_factor(self, theta, F, lambdas, lam_y):
         """:meth:`_plan_gaps` of ``theta`` from the total's factor ``F`` (``F[n_b:, n_b:]``: ``blocks_.Yf[:, n_b:]``)."""
-        return self._plan_gaps(lambdas * _data_scale(F), lam_y, theta, F[theta.shape[1]:, theta.shape[1]:])
+        self._scale_early = _data_scale(F)  # the fit's data_scale_ (the same factor), not computed again
+        return self._plan_gaps(lambdas * self._scale_early, lam_y, theta, F[theta.shape[1]:, theta.shape[1]:])
 
     def _plan_gaps(self, lambdas_abs, lam_y, theta, yf2=None):
         """Plan gaps per strength; ``theta`` the closed-form projection predictor (scaled rows) or None; ``yf2``:

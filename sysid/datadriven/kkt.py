@@ -1,17 +1,56 @@
-"""The KKT solves of the regularised Hankel predictor's ℓ2 / projection problem (split from
-:mod:`stimsteer.sysid.datadriven.hankel_predictor`)."""
+"""The KKT solves of the regularised Hankel predictor's ℓ2 / projection problem, and the row blocks they work on
+(:class:`HankelBlocks`; split from :mod:`stimsteer.sysid.datadriven.hankel_predictor`)."""
 
 from __future__ import annotations
 
 import threading
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
 
-from ..exceptions import ConditioningWarning
+from ..exceptions import ConditioningWarning, SessionError
 
-__all__ = ["_kkt_map", "_kkt_predictor", "_projection_closed_form", "_coordinate_projector", "_projection_map", "_projection_g"]
+__all__ = ["HankelBlocks", "_kkt_map", "_kkt_predictor", "_projection_closed_form", "_coordinate_projector", "_projection_map", "_projection_g"]
+
+
+@dataclass(frozen=True)
+class HankelBlocks:
+    """The four row blocks of a (possibly compressed) data matrix; ``r`` columns each.
+
+    Attributes
+    ----------
+    Up : ndarray, shape (n_inputs·past_steps, r)
+    Yp : ndarray, shape (n_outputs·past_steps, r)
+    Uf : ndarray, shape (n_inputs·horizon_steps, r)
+    Yf : ndarray, shape (n_outputs·horizon_steps, r)
+    compressed : bool
+        True when the blocks are the row-space factor (``r ≤ n_rows``), False for the raw Hankel columns.
+    """
+
+    Up: np.ndarray
+    Yp: np.ndarray
+    Uf: np.ndarray
+    Yf: np.ndarray
+    compressed: bool
+
+    @property
+    def D(self) -> np.ndarray:
+        """``[Up; Yp; Uf]``, shape ((m+p)·past + m·horizon, r)."""
+        return np.vstack([self.Up, self.Yp, self.Uf])
+
+    @classmethod
+    def from_matrix(cls, H: np.ndarray, m: int, p: int, past: int, horizon: int, compressed: bool):
+        """Split the rows of ``[Up; Yp; Uf; Yf]`` (``(m + p)(past + horizon)`` of them)."""
+        if H.ndim != 2 or H.shape[0] != (m + p) * (past + horizon):
+            raise SessionError(
+                f"a data matrix for {m} input(s), {p} output(s), past {past} and horizon {horizon} needs "
+                f"{(m + p) * (past + horizon)} rows; got shape {H.shape}."
+            )
+        cuts = np.cumsum([m * past, p * past, m * horizon])
+        Up, Yp, Uf, Yf = (np.ascontiguousarray(b) for b in np.split(H, cuts, axis=0))
+        return cls(Up, Yp, Uf, Yf, bool(compressed))
 
 
 def _kkt_system(blocks, M, lam_g: float, lam_y: float):

@@ -5,6 +5,8 @@ without it (an internal equivalence: the fit of before, bit for bit)."""
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pytest
 import scipy.linalg as sla
@@ -44,11 +46,18 @@ def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch
     monkeypatch.setattr(et, "projection_theta", lambda *a: calls.append(1) or real(*a))
     gaps = HankelPredictor._gaps_from_factor
     monkeypatch.setattr(HankelPredictor, "_gaps_from_factor", lambda *a, **k: calls.append(2) or gaps(*a, **k))
+    unscaled, threads = HankelPredictor._unscaled, []
+    monkeypatch.setattr(HankelPredictor, "_unscaled",
+                        lambda *a: threads.append(threading.current_thread().name) or unscaled(*a))
     new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())  # past 5, horizon 4: chosen for speed
     assert calls == [1, 2] and new._theta_early is None and new._gaps_early is None
+    assert new._map_early is None and new._scale_early is None
+    # the map in the channels' units made once, beside the folds (a worker), not again after them
+    assert len(threads) == 1 and threads[0].startswith("stimsteer-hankel-folds")
     monkeypatch.setattr(et, "available", lambda: False)
     old = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())
-    assert calls == [1, 2]
+    assert calls == [1, 2] and threads[1:] == [threading.main_thread().name]
+    assert new.data_scale_ == old.data_scale_
     np.testing.assert_array_equal(new.cv_table_.to_numpy(float), old.cv_table_.to_numpy(float))  # plan gaps too
     np.testing.assert_array_equal(new._map_cache, old._map_cache)
     rng = np.random.default_rng(0)
@@ -56,3 +65,25 @@ def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch
     windows = rng.standard_normal((4, 5, 1)), rng.standard_normal((4, 5, 2)), rng.standard_normal((4, 4, 1))
     np.testing.assert_array_equal(new.predict_many(*windows), old.predict_many(*windows))
     assert new.lambda_g_ == old.lambda_g_
+
+
+def test_a_group_of_extra_tasks_runs_side_by_side_and_the_next_waits_for_all():
+    # an internal check of _hankel_folds._chain: the tasks of a tuple are on both workers at once (each waits
+    # until the other has begun), and the task after the group begins once both have ended
+    from stimsteer.sysid.datadriven._task_pool import TaskPool
+
+    begun = [threading.Event(), threading.Event()]
+    log = []
+
+    def member(i):
+        def run():
+            begun[i].set()
+            assert begun[1 - i].wait(10), "the group's tasks did not run side by side"
+            log.append(f"member {i}")
+        return run
+    pool, done = TaskPool(2, 2, "test-chain"), []
+    hf._chain(pool, [lambda: log.append("first"), (member(0), member(1)), lambda: log.append("last")], done)
+    pool.close()
+    for future in done:
+        future.result()
+    assert log[0] == "first" and sorted(log[1:3]) == ["member 0", "member 1"] and log[3:] == ["last"]
