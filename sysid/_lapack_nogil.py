@@ -14,6 +14,7 @@ from __future__ import annotations
 import ctypes
 
 import numpy as np
+from numpy.lib.stride_tricks import as_strided
 
 __all__: list = []
 
@@ -143,6 +144,50 @@ _DTRSM = scipy_c_function("blas", "dtrsm", _CHR, _CHR, _CHR, _CHR, _INT, _INT, _
 _DTRMM = scipy_c_function("blas", "dtrmm", _CHR, _CHR, _CHR, _CHR, _INT, _INT, _DBL, _DBL, _INT, _DBL, _INT)
 
 
+def column_major_ld(A: np.ndarray) -> int:
+    """The leading dimension of the column-major float64 matrix ``A`` (a Fortran array or a block of one)."""
+    if A.dtype != np.float64 or A.ndim != 2 or A.strides[0] != 8 or A.strides[1] < 8 * max(1, A.shape[0]):
+        raise ValueError("a column-major float64 matrix (a Fortran array or a block of one) is needed")
+    return A.strides[1] // 8
+
+
+def _refs(*values):
+    return [int_ref(v) for v in values]
+
+
+def potrf_block(A: np.ndarray, uplo: str = "L") -> int:
+    """The Cholesky factor of the square column-major ``A`` in its lower (``uplo="L"``: ``A = F Fᵀ``) or upper
+    (``"U"``: ``A = Fᵀ F``) triangle, in place (the other triangle kept); LAPACK's ``info`` (0: done)."""
+    ld = column_major_ld(A)
+    if _DPOTRF is None:  # pragma: no cover - other SciPy builds
+        import scipy.linalg as sla
+
+        _c, info = sla.lapack.dpotrf(A, lower=int(uplo == "L"), clean=0, overwrite_a=1)
+        return int(info)
+    info = ctypes.c_int(0)
+    n, lda = _refs(A.shape[0], ld)
+    _DPOTRF(uplo.encode(), n, A.ctypes.data_as(_DBL), lda, ctypes.byref(info))
+    return int(info.value)
+
+
+def pocon_block(F: np.ndarray, norm: float, uplo: str = "L") -> float:
+    """The reciprocal 1-norm condition estimate of ``F Fᵀ`` from its lower factor ``F`` (``uplo="U"``: of ``Fᵀ F``
+    from its upper factor; ``norm`` its 1-norm); 0 on a LAPACK error."""
+    ld = column_major_ld(F)
+    if _DPOCON is None:  # pragma: no cover - other SciPy builds
+        import scipy.linalg as sla
+
+        rcond, info = sla.lapack.dpocon(F, norm, uplo=uplo)
+        return float(rcond) if info == 0 else 0.0
+    n_ = F.shape[0]
+    rcond, info = ctypes.c_double(0.0), ctypes.c_int(0)
+    work, iwork = np.empty(3 * max(n_, 1)), np.empty(max(n_, 1), dtype=np.intc)
+    n, lda = _refs(n_, ld)
+    _DPOCON(uplo.encode(), n, F.ctypes.data_as(_DBL), lda, ctypes.byref(ctypes.c_double(norm)), ctypes.byref(rcond),
+            work.ctypes.data_as(_DBL), iwork.ctypes.data_as(_INT), ctypes.byref(info))
+    return float(rcond.value) if info.value == 0 else 0.0
+
+
 def strided_cholesky_calls():
     """GIL-free LAPACK/BLAS calls on column-major blocks of a larger array (any leading dimension), or None where
     SciPy's exported functions cannot be had. A namespace of four functions; ``A``, ``B`` are float64 arrays whose
@@ -162,30 +207,24 @@ def strided_cholesky_calls():
             raise ValueError("float64 arrays only")
         return ctypes.cast(X.ctypes.data + 8 * int(offset), _DBL)
 
-    def ints(*values):
-        return [int_ref(v) for v in values]
+    def block(A, offset, n, ld):  # the n × n column-major block at element ``offset`` (leading dimension ld)
+        if not (A.flags.c_contiguous or A.flags.f_contiguous):
+            raise ValueError("a contiguous array is needed")
+        return as_strided(A.ravel(order="K")[int(offset):], shape=(int(n), int(n)), strides=(8, 8 * int(ld)))
 
     def potrf(A, offset, n, ld):
-        info = ctypes.c_int(0)
-        n_, ld_ = ints(n, ld)
-        _DPOTRF(b"L", n_, ptr(A, offset), ld_, ctypes.byref(info))
-        return info.value
+        return potrf_block(block(A, offset, n, ld))
 
     def pocon(A, offset, n, ld, norm):
-        rcond, info = ctypes.c_double(0.0), ctypes.c_int(0)
-        work, iwork = np.empty(3 * max(n, 1)), np.empty(max(n, 1), dtype=np.intc)
-        n_, ld_ = ints(n, ld)
-        _DPOCON(b"L", n_, ptr(A, offset), ld_, ctypes.byref(ctypes.c_double(norm)), ctypes.byref(rcond),
-                work.ctypes.data_as(_DBL), iwork.ctypes.data_as(_INT), ctypes.byref(info))
-        return rcond.value if info.value == 0 else 0.0
+        return pocon_block(block(A, offset, n, ld), norm)
 
     def trsm(A, a_off, n, lda, B, b_off, m, ldb, trans):
-        m_, n_, lda_, ldb_ = ints(m, n, lda, ldb)
+        m_, n_, lda_, ldb_ = _refs(m, n, lda, ldb)
         _DTRSM(b"R", b"L", b"T" if trans else b"N", b"N", m_, n_, ctypes.byref(ctypes.c_double(1.0)),
                ptr(A, a_off), lda_, ptr(B, b_off), ldb_)
 
     def trmm(A, a_off, n, lda, B, b_off, m, ldb):
-        m_, n_, lda_, ldb_ = ints(m, n, lda, ldb)
+        m_, n_, lda_, ldb_ = _refs(m, n, lda, ldb)
         _DTRMM(b"R", b"L", b"N", b"N", m_, n_, ctypes.byref(ctypes.c_double(1.0)), ptr(A, a_off), lda_,
                ptr(B, b_off), ldb_)
 
