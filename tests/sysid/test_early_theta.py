@@ -42,14 +42,15 @@ def test_the_predictor_fitted_with_theta_beside_the_folds_as_without(monkeypatch
     monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)  # 1 row: the small test session takes the large fits' routes
     monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
     calls = []
-    real = et.projection_theta
-    monkeypatch.setattr(et, "projection_theta", lambda *a: calls.append(1) or real(*a))
+    real = et.solve_theta_columns
+    monkeypatch.setattr(et, "solve_theta_columns", lambda *a: calls.append(1) or real(*a))
     gaps = HankelPredictor._gaps_from_factor
     monkeypatch.setattr(HankelPredictor, "_gaps_from_factor", lambda *a, **k: calls.append(2) or gaps(*a, **k))
     unscaled, threads = HankelPredictor._unscaled, []
     monkeypatch.setattr(HankelPredictor, "_unscaled",
                         lambda *a: threads.append(threading.current_thread().name) or unscaled(*a))
     new = HankelPredictor(past_steps=5, horizon_steps=4).fit(_session())  # past 5, horizon 4: chosen for speed
+    # 8 predicted rows: one piece of Θ's columns (cuts at multiples of 16), the closed form's numbers bit for bit
     assert calls == [1, 2] and new._theta_early is None and new._gaps_early is None
     assert new._map_early is None and new._scale_early is None
     # the map in the channels' units made once, beside the folds (a worker), not again after them
@@ -87,3 +88,39 @@ def test_a_group_of_extra_tasks_runs_side_by_side_and_the_next_waits_for_all():
     for future in done:
         future.result()
     assert log[0] == "first" and sorted(log[1:3]) == ["member 0", "member 1"] and log[3:] == ["last"]
+
+
+def _run_theta_tasks(F, n_b: int, limit: float):
+    """The theta tasks of a fit (``theta_task``) run as the fit runs them: ``_hankel_folds._chain`` on a task pool
+    of two workers. Returns the owner they set ``_theta_early`` on."""
+    from stimsteer.sysid.datadriven._task_pool import TaskPool
+
+    class Total:
+        _factor = F
+
+    class Owner:
+        pass
+    owner = Owner()
+    pool, done = TaskPool(2, 2, "test-theta"), []
+    hf._chain(pool, et.theta_task(owner, Total(), n_b, limit), done)
+    pool.close()
+    for future in done:
+        future.result()
+    return owner
+
+
+def test_theta_in_pieces_beside_the_folds_is_the_closed_form_to_rounding(monkeypatch):
+    # reference: SciPy's solve_triangular (LAPACK trtrs), Θ = Yf1 D1⁻¹ with D1 the factor's leading block
+    n, n_b = 160, 100  # 60 predicted rows: pieces of 32 and 28 columns (cut at a multiple of 16; sizes chosen)
+    X = np.random.default_rng(5).standard_normal((n, n + 40))
+    F = np.asfortranarray(sla.cholesky(X @ X.T, lower=True))
+    pieces, real = [], et.solve_theta_columns
+    monkeypatch.setattr(et, "solve_theta_columns", lambda F_, rhs, a, b: pieces.append((a, b)) or real(F_, rhs, a, b))
+    theta = _run_theta_tasks(F, n_b, 1e8)._theta_early
+    assert sorted(pieces) == [(0, 32), (32, 60)] == et.theta_pieces(60, et.THETA_PIECES)
+    ref = sla.solve_triangular(F[:n_b, :n_b], F[n_b:, :n_b].T, lower=True, trans="T").T
+    np.testing.assert_allclose(theta, ref, rtol=1e-12, atol=1e-14 * np.abs(ref).max())
+    # one solve of every column (projection_theta, the closed form's numbers): the same to rounding
+    np.testing.assert_allclose(theta, et.projection_theta(F, n_b, 1e8), rtol=0, atol=1e-14 * np.abs(ref).max())
+    # limit 1.0: every condition number is >= 1 (common practice, no source), so D1 is refused: no Θ
+    assert _run_theta_tasks(F, n_b, 1.0)._theta_early is None
