@@ -49,6 +49,8 @@ __all__ = [
     "required_order",
     "excitation_report",
     "check_excitation",
+    "excitation_order",
+    "warn_low_excitation",
 ]
 
 DEFAULT_TOL_FACTOR = 10.0
@@ -424,6 +426,18 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
     ExcitationWarning
         When the input excites at least the window but less than ``past + horizon + n``.
     """
+    order = excitation_order(session, past_steps=past_steps, horizon_steps=horizon_steps, n_states=n_states,
+                             tol_factor=tol_factor)
+    warn_low_excitation(order, past_steps=past_steps, horizon_steps=horizon_steps, n_states=n_states,
+                        stacklevel=stacklevel + 1)
+    return order
+
+
+@_one_blas_thread
+def excitation_order(session, *, past_steps: int, horizon_steps: int, n_states: int | None = None,
+                     tol_factor: float = DEFAULT_TOL_FACTOR) -> int:
+    """:func:`check_excitation` without its warning: the collective order found (capped at the required order),
+    or its errors. The caller warns (:func:`warn_low_excitation`) where it wants the warning to point."""
     past, horizon = _check_window(past_steps, horizon_steps)
     required = required_order(past, horizon, n_states)
     window = past + horizon
@@ -448,8 +462,16 @@ def check_excitation(session, *, past_steps: int, horizon_steps: int, n_states: 
             f"{window} is rank-deficient beyond the tolerance (σ_max·max(shape)·eps·{tol_factor:g}). "
             f"{_SCHEDULE_HINT} Or shorten the past window or horizon."
         )
-    if order < required:
-        warnings.warn(
-            ExcitationWarning(_message(order, False, required, window, past, horizon)), stacklevel=stacklevel + 1
-        )
     return order
+
+
+def warn_low_excitation(order: int, *, past_steps: int, horizon_steps: int, n_states: int | None = None,
+                        stacklevel: int = 2) -> None:
+    """:func:`check_excitation`'s warning for an ``order`` from :func:`excitation_order`: the input excites the
+    window but less than ``past + horizon + n``. ``stacklevel`` as in :func:`warnings.warn`, counted from this
+    function (2 = its caller)."""
+    past, horizon = _check_window(past_steps, horizon_steps)
+    required = required_order(past, horizon, n_states)
+    if order < required:
+        warnings.warn(ExcitationWarning(_message(order, False, required, past + horizon, past, horizon)),
+                      stacklevel=stacklevel + 1)

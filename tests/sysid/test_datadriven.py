@@ -312,6 +312,37 @@ def test_fit_warns_when_the_input_excites_less_than_window_plus_states():
         HankelPredictor(past_steps=2, horizon_steps=3, n_states=3, lambdas_g=[1e-3]).fit(_pulse_session(6))
 
 
+@pytest.mark.parametrize("lambdas", [[1e-3], [1e-3, 1e-1]])  # one strength: checked first; two: beside the folds
+def test_the_excitation_warning_points_at_the_callers_line(lambdas, monkeypatch):
+    from stimsteer.sysid.datadriven import _hankel_folds as hf
+
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)  # 1 row: the small session begins its first fold early
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        HankelPredictor(past_steps=2, horizon_steps=3, n_states=3, lambdas_g=lambdas).fit(_pulse_session(6))
+    found = [w for w in caught if issubclass(w.category, ExcitationWarning)]
+    assert len(found) == 1 and found[0].filename == __file__
+
+
+def test_an_input_that_does_not_excite_the_window_stops_the_fold_begun_beside_the_check(monkeypatch):
+    # the excitation check runs once the first held-out fold has begun (base._checked_beside): its error is the
+    # same as when it ran first, and the fold's worker threads end with it
+    import threading
+
+    from stimsteer.sysid.datadriven import _hankel_folds as hf
+
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)  # 1 row: the small session begins its first fold early
+    events, start = [], hf.start_first_fold
+    monkeypatch.setattr(hf, "start_first_fold", lambda *a: events.append("fold begun") or start(*a))
+    with pytest.raises(ExcitationError, match="excites order 4 but the direct route needs at least 8"):
+        HankelPredictor(past_steps=3, horizon_steps=5, lambdas_g=[1e-3, 1e-1]).fit(_pulse_session(4, n=2000))
+    assert events == ["fold begun"]
+    for thread in threading.enumerate():
+        if thread.name.startswith("stimsteer-hankel-folds"):
+            thread.join(10)
+    assert not [t for t in threading.enumerate() if t.name.startswith("stimsteer-hankel-folds")]
+
+
 @pytest.mark.parametrize(
     "make, match",
     [

@@ -162,7 +162,7 @@ def test_one_blanked_trial_is_folded_by_time_over_its_short_pieces():
     # samples leaves pieces of a few columns, so every block was shorter than one column and the fit raised
     # "... fit in 0 fold(s)". Now the trial's pieces, end to end in time order, are cut into n_splits blocks.
     from stimsteer.sysid.datadriven import LsqPredictor
-    from stimsteer.sysid.datadriven.base import _fold_of_segments
+    from stimsteer.sysid.datadriven._fold_pieces import _fold_of_segments
 
     b = blank_artifacts(_pulses(n=8000, n_trials=1), window_s=0.002)
     L, past = 6, 4
