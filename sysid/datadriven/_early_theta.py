@@ -126,10 +126,6 @@ def theta_task(owner, total, n_b: int, limit: float, gaps=None, unscaled=None):
                     state["ok"][k] = solve_theta_columns(F, rhs, *ranges[k])
         return run
 
-    def done():
-        rhs = state.pop("rhs", None)
-        return rhs.T if rhs is not None and all(state["ok"]) else None
-
     def second():
         if owner._theta_early is not None:
             owner._gaps_early = gaps(owner._theta_early, F)
@@ -139,6 +135,7 @@ def theta_task(owner, total, n_b: int, limit: float, gaps=None, unscaled=None):
             owner._map_early = (owner._theta_early, unscaled(owner._theta_early))
 
     def collect():
-        owner._theta_early = done()
+        rhs = state.pop("rhs", None)
+        owner._theta_early = rhs.T if rhs is not None and all(state["ok"]) else None
     after = tuple(task for task, given in ((second, gaps), (third, unscaled)) if given is not None)
     return [first, tuple(piece(k) for k in range(THETA_PIECES)), collect] + ([after] if after else [])
