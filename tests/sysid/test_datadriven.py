@@ -324,23 +324,32 @@ def test_the_excitation_warning_points_at_the_callers_line(lambdas, monkeypatch)
     assert len(found) == 1 and found[0].filename == __file__
 
 
-def test_an_input_that_does_not_excite_the_window_stops_the_fold_begun_beside_the_check(monkeypatch):
-    # the excitation check runs once the first held-out fold has begun (base._checked_beside): its error is the
-    # same as when it ran first, and the fold's worker threads end with it
+@pytest.mark.parametrize("method", ["hankel", "lsq"])
+def test_an_input_that_does_not_excite_the_window_stops_the_fold_begun_beside_the_check(method, monkeypatch):
+    # the excitation check runs once the held-out folds' work has begun (base._checked_beside): its error is the
+    # same as when it ran first, and that work's worker threads have ended when it is raised (stop() waits for
+    # them; dropping the plan alone would not)
     import threading
 
     from stimsteer.sysid.datadriven import _hankel_folds as hf
+    from stimsteer.sysid.datadriven import _strength_folds as sf
+    from stimsteer.sysid.datadriven import gram as gr
 
-    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)  # 1 row: the small session begins its first fold early
-    events, start = [], hf.start_first_fold
-    monkeypatch.setattr(hf, "start_first_fold", lambda *a: events.append("fold begun") or start(*a))
+    # 1 row: the small session's folds take the large fits' routes; FOLDS_SIDE_BY_SIDE off: the SPC folds by strength
+    monkeypatch.setattr(hf, "SIDE_BY_SIDE_ROWS", 1)
+    monkeypatch.setattr(gr, "TOTAL_FACTOR_ROWS", 1)
+    monkeypatch.setattr(gr, "FOLDS_SIDE_BY_SIDE", False)
+    events, plan_class = [], hf._FoldPlan if method == "hankel" else sf.StrengthPlan
+    real_init = plan_class.__init__
+    monkeypatch.setattr(plan_class, "__init__", lambda self, *a: events.append("work begun") or real_init(self, *a))
+    make = (lambda: HankelPredictor(past_steps=3, horizon_steps=5, lambdas_g=[1e-3, 1e-1])) if method == "hankel" \
+        else (lambda: LsqPredictor(past_steps=3, horizon_steps=5, alphas=[1e-3, 1e-1]))
+    before = set(threading.enumerate())  # threads of other tests are not this fit's
     with pytest.raises(ExcitationError, match="excites order 4 but the direct route needs at least 8"):
-        HankelPredictor(past_steps=3, horizon_steps=5, lambdas_g=[1e-3, 1e-1]).fit(_pulse_session(4, n=2000))
-    assert events == ["fold begun"]
-    for thread in threading.enumerate():
-        if thread.name.startswith("stimsteer-hankel-folds"):
-            thread.join(10)
-    assert not [t for t in threading.enumerate() if t.name.startswith("stimsteer-hankel-folds")]
+        make().fit(_pulse_session(4, n=2000))
+    assert events == ["work begun"]
+    new = set(threading.enumerate()) - before
+    assert not [t for t in new if t.name.startswith(("stimsteer-hankel", "stimsteer-spc"))]
 
 
 @pytest.mark.parametrize(
