@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from stimsteer.sysid import Session
 from stimsteer.sysid._lagged import _lagged_gram, _stream_lag_sums, _stream_sums
 from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
 from stimsteer.sysid.datadriven.lsq import LsqPredictor
+from tests.sysid.simulated import state_space_session
 
 
 def _system(T=4000, noise=0.1, seed=0, n_trials=4):
@@ -19,12 +19,7 @@ def _system(T=4000, noise=0.1, seed=0, n_trials=4):
     rng = np.random.default_rng(seed)
     u = rng.standard_normal((T, 2))
     A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
-    x, y = np.zeros(3), np.zeros((T, 3))
-    for k in range(T):
-        y[k] = x + noise * rng.standard_normal(3)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, n_trials + 1).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, noise=noise, rng=rng, n_trials=n_trials)
 
 
 @pytest.fixture(scope="module")
@@ -167,12 +162,7 @@ def _one_signed(mean, T=4000, noise=0.1, seed=0):
     rng = np.random.default_rng(seed)
     u = mean + np.abs(rng.standard_normal((T, 2)))
     A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
-    x, y = np.zeros(3), np.zeros((T, 3))
-    for k in range(T):
-        y[k] = x + noise * rng.standard_normal(3)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, 5).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, noise=noise, rng=rng)
 
 
 @pytest.mark.parametrize("mean", [5.0, 10.0])  # estimated conditions 2.6e7 and 9.1e7

@@ -7,12 +7,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from stimsteer.sysid import Session
 from stimsteer.sysid.datadriven import _by_strength as bs
 from stimsteer.sysid.datadriven import _eigen_folds as ef
 from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
 from stimsteer.sysid.datadriven.lsq import LsqPredictor
+from tests.sysid.simulated import state_space_session
 
 
 def _system(T=3000, noise=0.1, seed=4):
@@ -23,14 +23,8 @@ def _system(T=3000, noise=0.1, seed=4):
 
 def _driven(u, noise, rng):
     """The session of the system of :func:`_system` driven by ``u`` (its ``B`` and noise drawn from ``rng``)."""
-    T = u.shape[0]
     A, B = np.diag([0.8, 0.5, -0.3]), rng.standard_normal((3, 2))
-    x, y = np.zeros(3), np.zeros((T, 3))
-    for k in range(T):
-        y[k] = x + noise * rng.standard_normal(3)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, 5).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, noise=noise, rng=rng)
 
 
 @pytest.fixture(scope="module")

@@ -12,6 +12,7 @@ from stimsteer.sysid import Session
 from stimsteer.sysid.datadriven import _hankel_folds as hf
 from stimsteer.sysid.datadriven import gram as gr
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+from tests.sysid.simulated import state_space_session
 
 
 def _session(T=2400, seed=3):
@@ -19,12 +20,7 @@ def _session(T=2400, seed=3):
     rng = np.random.default_rng(seed)
     u = rng.standard_normal((T, 1))
     A, B = np.array([[0.7, 0.2], [-0.1, 0.5]]), rng.standard_normal((2, 1))
-    x, y = np.zeros(2), np.zeros((T, 2))
-    for k in range(T):
-        y[k] = x + 0.1 * rng.standard_normal(2)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, 5).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, noise=0.1, rng=rng)
 
 
 def folds_setup():

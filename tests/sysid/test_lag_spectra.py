@@ -17,6 +17,7 @@ from stimsteer.sysid import Session, _lag_spectra, _lagged
 from stimsteer.sysid._lag_spectra import fft_length, spectral_products, uses_spectra
 from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
 from stimsteer.sysid.arx import RidgeArx
+from tests.sysid.simulated import state_space_session
 
 
 def _by_scipy(B: np.ndarray, L: int) -> np.ndarray:
@@ -87,12 +88,7 @@ def _session(seed=0, T=6000, n_trials=4, p=18, m=2):
     u = rng.standard_normal((T, m))
     A = np.diag([0.85, 0.6, -0.4, 0.2])
     B, C = rng.standard_normal((4, m)), rng.standard_normal((p, 4))
-    x, y = np.zeros(4), np.zeros((T, p))
-    for k in range(T):
-        y[k] = C @ x + 0.1 * rng.standard_normal(p)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, n_trials + 1).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=1000.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, C, noise=0.1, rng=rng, n_trials=n_trials, sample_rate_hz=1000.0)
 
 
 @pytest.fixture(scope="module")

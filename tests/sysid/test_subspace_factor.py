@@ -12,11 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from stimsteer.sysid import Session
 from stimsteer.sysid._lagged import _lagged_gram, blas_controller, blas_thread_count, blas_threads
 from stimsteer.sysid._lapack_nogil import one_norm
 from stimsteer.sysid.subspace import SubspaceId, factor, gram, heldout, prepare
 from stimsteer.sysid.subspace import nested as nested_orders
+from tests.sysid.simulated import state_space_session
 
 
 def _session(noise, seed=1, T=6000, n_trials=6):
@@ -24,12 +24,7 @@ def _session(noise, seed=1, T=6000, n_trials=6):
     A = np.array([[0.8, 0.2, 0.0], [-0.2, 0.8, 0.0], [0.0, 0.0, 0.5]])
     B, C = rng.standard_normal((3, 2)), rng.standard_normal((4, 3))
     u = rng.standard_normal((T, 2))
-    x, y = np.zeros(3), np.zeros((T, 4))
-    for k in range(T):
-        y[k] = C @ x + noise * rng.standard_normal(4)
-        x = A @ x + B @ u[k]
-    edges = np.linspace(0, T, n_trials + 1).astype(int)
-    return Session(u=u, y=y, sample_rate_hz=100.0, trials=np.column_stack([edges[:-1], edges[1:]]))
+    return state_space_session(u, A, B, C, noise=noise, rng=rng, n_trials=n_trials)
 
 
 def _fit(monkeypatch, session, factor_from, **kw):
