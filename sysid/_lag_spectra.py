@@ -22,7 +22,8 @@ direct products, bit for bit as before.
 
 Rounding: each product's error is a small multiple of ``ε log₂ N`` times the norms of the two segments (the FFT's
 normwise bound, Higham 2002, "Accuracy and stability of numerical algorithms", 2nd ed., sec. 24.1), the order of the
-direct products' ``ε · Σ |x_t y_t|``; measured, the two routes agree to 4e-16 of the largest product. ``X[0]`` is
+direct products' ``ε · Σ |x_t y_t|``; measured, the two routes agree to at most 7.4e-16 of the largest product
+(``benchmarks/bench_lag_products.py``). ``X[0]`` is
 made exactly symmetric (the direct route's ``Zᵀ Z`` is), and a channel of zeros gives products of exactly zero.
 """
 

@@ -84,6 +84,12 @@ def projection_theta(F: np.ndarray, n_b: int, limit: float):
 EARLY = ("_theta_early", "_gaps_early", "_map_early", "_scale_early")
 
 
+def clear_early(owner) -> None:
+    """Set every result of :data:`EARLY` on ``owner`` to None (none left by an earlier fit that failed midway)."""
+    for name in EARLY:
+        setattr(owner, name, None)
+
+
 def taken(owner, name: str):
     """``owner.<name>``, one of :data:`EARLY` (None where it was not computed), set back to None: each result is
     taken once, and a fit that fails midway leaves none for the next one."""
@@ -107,8 +113,7 @@ def theta_task(owner, total, n_b: int, limit: float, gaps=None, unscaled=None):
     workers, ``_hankel_folds._chain``), then, side by side, ``owner._gaps_early = gaps(theta, F)`` and
     ``owner._map_early = (theta, unscaled(theta))`` for those given; None where there is no such factor."""
     F = getattr(total, "_factor", None)
-    for name in EARLY:
-        setattr(owner, name, None)
+    clear_early(owner)
     if F is None or not available():
         return None
     state = {}

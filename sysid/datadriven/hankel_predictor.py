@@ -18,7 +18,7 @@ from .consistency import consistent_choice, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows
 from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
-from ._early_theta import EARLY, taken, theta_task
+from ._early_theta import clear_early, taken, theta_task
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
 from .kkt import (HankelBlocks, c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form,
                   _kkt_predictor, _projection_g, _projection_map)
@@ -216,8 +216,7 @@ class HankelPredictor(_DirectPredictor):
         lambdas, lam_y = self._validate_settings()
         l1 = self.regularizer == "l1"
         compress = bool(self.compress) and not l1
-        for name in EARLY:  # none left by an earlier fit that failed midway
-            setattr(self, name, None)
+        clear_early(self)
         early = first_fold_hook(self, session) if compress and lambdas.size > 1 else None
         folds, weights = self._gather(session, lambdas.size, keep_full=not compress, early=early)
         score = self._score_l1 if l1 else self._score_quadratic
