@@ -119,6 +119,8 @@ def test_theta_in_pieces_beside_the_folds_is_the_closed_form_to_rounding(monkeyp
     theta = _run_theta_tasks(F, n_b, 1e8)._theta_early
     assert sorted(pieces) == [(0, 32), (32, 60)] == et.theta_pieces(60, et.THETA_PIECES)
     ref = sla.solve_triangular(F[:n_b, :n_b], F[n_b:, :n_b].T, lower=True, trans="T").T
+    # 1e-12 / 1e-14: the author's margins over the pieces' rounding (measured: 4e-17 to 6e-17 on entries of order
+    # 1 at the benchmark's 1,000 columns, benchmarks/README.md, twelfth session)
     np.testing.assert_allclose(theta, ref, rtol=1e-12, atol=1e-14 * np.abs(ref).max())
     # one solve of every column (projection_theta, the closed form's numbers): the same to rounding
     np.testing.assert_allclose(theta, et.projection_theta(F, n_b, 1e8), rtol=0, atol=1e-14 * np.abs(ref).max())

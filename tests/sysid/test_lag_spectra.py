@@ -150,6 +150,6 @@ def test_near_the_condition_limit_the_fft_route_predicts_as_the_qr_route(session
     windows = (300.0 + np.abs(rng.standard_normal((4, 20, 2))), rng.standard_normal((4, 20, 18)),
                300.0 + np.abs(rng.standard_normal((4, 10, 2))))
     a, b = qr.predict_many(*windows), fft.predict_many(*windows)
-    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(a).max()  # 1e-8: issue 14's "the same predictions" target
     # the held-out errors: rtol 1e-6, the margin test_hankel_folds' QR comparison uses at the same condition
     np.testing.assert_allclose(fft.cv_table_["validation_error"], qr.cv_table_["validation_error"], rtol=1e-6)
