@@ -19,6 +19,7 @@ from ..sysid._files import atomic_path
 from ..sysid._headers import CHANNEL_RE as _CHANNEL_RE, TIME_RE as _TIME_RE
 from ..sysid.caution import CAUTION
 from ..sysid.io import comment_lines
+from ..sysid.io.tables import _data_row
 
 if TYPE_CHECKING:
     from .schedule import Schedule
@@ -196,6 +197,6 @@ def load_schedule(path):
     bad = np.argwhere(~np.isfinite(u))
     if bad.size:
         r, c = bad[0]
-        raise FileFormatError(f"{path}: input {spec['in'][c][1]!r} has no finite value at row {int(r)}; a "
+        raise FileFormatError(f"{path}: input {spec['in'][c][1]!r} has no finite value at {_data_row(int(r))}; a "
                               "schedule must give every amplitude.")
     return (u, trials, tuple(n for _, n, _ in spec["in"]), tuple(x for _, _, x in spec["in"]), rate)

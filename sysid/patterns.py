@@ -112,7 +112,7 @@ def load_pattern(path) -> Pattern:
         Other columns, missing units, non-numeric or empty cells, or a non-uniform time grid.
     FileNotFoundError
     """
-    from .io.tables import _time_grid, comment_lines
+    from .io.tables import _data_row, _time_grid, comment_lines
 
     path = Path(path)
     if not path.is_file():
@@ -129,7 +129,7 @@ def load_pattern(path) -> Pattern:
     if bad.any():
         r, c = (int(v[0]) for v in np.nonzero(bad))
         col = time_col if c == 0 else inputs[c - 1][0]
-        raise FileFormatError(f"{path}: row {r} of column {col!r} is empty or not a finite number; a pattern "
+        raise FileFormatError(f"{path}: {_data_row(r)} of column {col!r} is empty or not a finite number; a pattern "
                               "needs a value for every input at every sample.")
     rate, _t0 = _time_grid(values[:, 0], rate_text, path, time_col) if values.shape[0] > 1 or rate_text else \
         (None, None)

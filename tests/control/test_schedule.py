@@ -222,7 +222,8 @@ def test_a_session_table_is_read_as_its_input_side(tmp_path, rng):
     ("time [s] @ 10 Hz,trial,in:a [uA],extra\n0,0,1,2\n", "column 'extra' is not recognised"),
     ("time [s] @ 10 Hz,trial,in:a [uA]\n", "header but no rows"),
     ("time [s] @ 10 Hz,trial,in:a [uA]\n0,0,1\n0.5,0,1\n", "not on a uniform 10 Hz grid"),
-    ("time [s] @ 10 Hz,trial,in:a [uA]\n0,0,1\n0.1,0,\n", "no finite value at row 1"),
+    # the second data row, counted from 1 as the session tables count it
+    ("time [s] @ 10 Hz,trial,in:a [uA]\n0,0,1\n0.1,0,\n", r"no finite value at data row 2 \(counted from 1"),
     ("time [s] @ 10 Hz,trial,in:a [uA]\n0,-1,1\n0.1,-1,1\n", "trials must be labelled"),
     ("time [s] @ 10 Hz,trial,in:a [uA]\n0,0,1\n0.1,1,1\n0.2,0,1\n", "contiguous"),
     ("time [s] @ 10 Hz,trial,in:a [ ]\n0,0,1\n", "needs an input name and a unit"),
