@@ -31,7 +31,7 @@ from .statespace import StateSpaceModel
 from .arx_cv import cv_errors, cv_table
 from .arx_regression import _Problem, _check_alphas, _check_int, _check_source, _pieces, final_fit, fit_ahead, \
     own_moments
-from .arx_statespace import arx_recursion, arx_to_state_space
+from .arx_statespace import arx_maps, arx_recursion, arx_to_state_space
 from .arx_structure import AUTO, DEFAULT_DELAY_GRID, DEFAULT_LAG_GRID, best_alpha, edge_notes, \
     select_structure, structure_candidates, structure_table
 
@@ -415,27 +415,18 @@ class RidgeArx(BasePredictor):
     def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
         """The affine map of :meth:`predict` over a past window of ``past_steps`` and ``horizon_steps`` inputs.
 
-        The recursion is linear in the window plus the intercept's response, so ``P`` and ``F`` are its
-        responses to unit windows without the intercept and ``c`` its response to the intercept alone. Samples of
-        the past window before the last ``past_steps_`` get zero columns.
+        The recursion is linear in the window plus the intercept's response: the maps are built as it runs
+        (:func:`~stimsteer.sysid.arx_statespace.arx_maps`), ``c`` the intercept's response alone. Samples of the
+        past window before the last ``past_steps_`` get zero columns.
         """
         check_fitted(self, "coef_")
-        m, p, L = self.n_inputs_, self.n_outputs_, self.past_steps_
+        L = self.past_steps_
         T, N = int(past_steps), int(horizon_steps)
         if T < L or N < 1:
             raise SessionError(f"the RidgeArx needs a past window of at least past_steps_ = {L} samples and a "
                                f"horizon of at least 1 step; got past {past_steps} and horizon {horizon_steps}.")
-        zero = np.zeros(p)
-        E = np.eye(L * (m + p))
-        P_last = self._recursion(E[:, :L * m].reshape(-1, L, m), E[:, L * m:].reshape(-1, L, p),
-                                 np.zeros((E.shape[0], N, m)), zero).reshape(E.shape[0], N * p).T
-        P = np.zeros((N * p, T * (m + p)))
-        P[:, m * (T - L):m * T] = P_last[:, :L * m]
-        P[:, m * T + p * (T - L):] = P_last[:, L * m:]
-        Ef = np.eye(N * m).reshape(N * m, N, m)
-        F = self._recursion(np.zeros((N * m, L, m)), np.zeros((N * m, L, p)), Ef, zero).reshape(N * m, N * p).T
-        c = self._recursion(np.zeros((1, L, m)), np.zeros((1, L, p)), np.zeros((1, N, m)), self.intercept_)
-        return PredictionMaps(P=P, F=np.ascontiguousarray(F), c=c.reshape(-1), past_steps=T, horizon_steps=N)
+        P, F, c = arx_maps(self.ar_coefs_, self.input_coefs_, self.delay_samples_, T, N, self.intercept_)
+        return PredictionMaps(P=P, F=F, c=c, past_steps=T, horizon_steps=N)
 
     # -------------------------------------------------------------------------------------------- storage
     def to_state(self) -> dict:

@@ -113,3 +113,46 @@ def arx_recursion(ar_coefs, input_coefs, delay_samples: int, past_steps: int, up
         Y[:, k] = acc
     return Y[:, L:]
 
+
+
+def arx_maps(ar_coefs, input_coefs, delay_samples: int, past_steps: int, horizon_steps: int, intercept):
+    """The affine map of :func:`arx_recursion` over a window of ``past_steps`` samples (``T``, at least the
+    recursion's lags) and ``horizon_steps`` future inputs (``N``): ``(P, F, c)`` with the predictions
+    ``P [u_0 … u_{T-1}, y_0 … y_{T-1}] + F [u_T … u_{T+N-1}] + c`` (time-major, oldest first).
+
+    Built row block by row block, as the recursion runs: the map of ``y_{T+k}`` is ``Σ_i A_i`` times the map of
+    ``y_{T+k-i}`` (one product with the blocks already built; a past output's map is its own column block) plus
+    ``B_j`` at the column block of ``u_{T+k-d-j}``. ``O(N · na · p² · T(m + p))`` work in the maps' own arrays,
+    where the responses to unit windows (``T(m + p) + N m`` recursions over the horizon) held their lagged
+    inputs, ``T(m + p) · N × nb · m`` values: 276 MB at past 100 / horizon 50 of 3 inputs and 20 outputs.
+    """
+    na, nb, d, T, N = ar_coefs.shape[0], input_coefs.shape[0], int(delay_samples), int(past_steps), \
+        int(horizon_steps)
+    p, m = input_coefs.shape[1], input_coefs.shape[2]
+    n_past = T * (m + p)
+    if na > T or d + nb - 1 > T:
+        raise ValueError(f"arx_maps needs a past window of at least the lags ({na} output, {d + nb - 1} input); "
+                         f"got {T}")
+    P, F = np.zeros((N * p, n_past)), np.zeros((N * p, N * m))  # row block k: the map of y_{T+k}
+    c = np.zeros((N, p))
+    A = np.ascontiguousarray(ar_coefs[::-1].transpose(1, 0, 2).reshape(p, na * p))  # [A_na … A_1]
+    B = np.ascontiguousarray(input_coefs[::-1].transpose(1, 0, 2).reshape(p, nb * m))  # [B_{nb-1} … B_0]
+    for k in range(N):
+        rows = slice(k * p, (k + 1) * p)
+        built = min(na, k)  # earlier predictions among the recursion's outputs: y_{T+k-built} … y_{T+k-1}
+        if built:
+            Ak, before = A[:, (na - built) * p:], slice((k - built) * p, k * p)
+            np.matmul(Ak, P[before], out=P[rows])
+            np.matmul(Ak, F[before, :k * m], out=F[rows, :k * m])  # no future input after u_{T+k-1} reaches them
+            c[k] = Ak @ c[k - built:k].reshape(-1)
+        if na > k:  # recorded outputs y_{T+k-na} … y_{T-1}: A_na … A_{k+1} at their columns
+            P[rows, T * m + (T + k - na) * p:] += A[:, :(na - k) * p]
+        if nb:  # inputs u_{T+k-d-nb+1} … u_{T+k-d}: B_{nb-1} … B_0, recorded ones then future ones
+            s0, s1 = T + k - d - nb + 1, T + k - d + 1
+            cut = min(max(T - s0, 0), nb)
+            if cut:
+                P[rows, s0 * m:(s0 + cut) * m] += B[:, :cut * m]
+            if cut < nb:
+                F[rows, (s0 + cut - T) * m:(s1 - T) * m] += B[:, cut * m:]
+        c[k] += intercept
+    return P, F, c.reshape(-1)
