@@ -118,10 +118,27 @@ def _write_dict(group, d: dict, where: str):
         if isinstance(value, dict):
             _write_dict(group.create_group(key), value, f"{where}/{key}")
         elif isinstance(value, np.ndarray) and value.dtype.kind in "biufc":
-            group.create_dataset(key, data=value)
+            group.create_dataset(key, data=value, **_packing(value))
         else:
             plain[key] = _plain(value, f"{where}/{key}")
     group.create_dataset("__values__", data=json.dumps(plain, allow_nan=True))
+
+
+#: Arrays of at least this many values that are mostly zeros (at most one value in :data:`_SPARSE_SHARE` nonzero)
+#: are stored compressed (HDF5's standard gzip filter, level 1: read by any HDF5 reader). The Hankel predictor's
+#: projection regulariser at past 100 / horizon 50 (3,450 × 3,450, 1,000 nonzeros): 95 MB stored as they are,
+#: 0.49 MB compressed, written in 0.10 s against 0.08 s and read in 0.07 s against 0.23 s (in memory; on this
+#: machine the 95 MB more on disk took about 0.45 s of the model file's write). Dense arrays stay uncompressed
+#: (gzip of measured data is slow and gains little).
+_SPARSE_STORE_MIN = 1 << 20
+_SPARSE_SHARE = 8
+
+
+def _packing(value: np.ndarray) -> dict:
+    """``create_dataset`` options for ``value``: gzip level 1 for large mostly-zero arrays, none otherwise."""
+    if value.size < _SPARSE_STORE_MIN or np.count_nonzero(value) * _SPARSE_SHARE > value.size:
+        return {}
+    return {"compression": "gzip", "compression_opts": 1, "chunks": True}
 
 
 def _read_dict(group) -> dict:

@@ -20,8 +20,8 @@ from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge
 from ._hankel_folds import errors_by_fold, first_fold_hook, known_first
 from ._early_theta import clear_early, taken, theta_task
 from .gram import GRAM_CONDITION_LIMIT, release_freed_memory, unregularised_fold_error
-from .kkt import (HankelBlocks, c_order_in_place, _coordinate_projector, _kkt_map, _projection_closed_form,
-                  _kkt_predictor, _projection_g, _projection_map)
+from .kkt import (HankelBlocks, c_order_in_place, _coordinate_projector, _is_coordinate_projector, _kkt_map,
+                  _projection_closed_form, _kkt_predictor, _projection_g, _projection_map)
 
 __all__ = ["HankelBlocks", "HankelPredictor", "REGULARIZERS"]
 
@@ -40,6 +40,15 @@ def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
     M = -(V @ V.T)
     M[np.diag_indices_from(M)] += 1.0
     return M
+
+
+def _compact(M: np.ndarray) -> np.ndarray:
+    """A loaded regulariser as the fit made it: a coordinate projector ``diag(0, I)`` with its zero pages untouched
+    (:func:`~stimsteer.sysid.datadriven.kkt._coordinate_projector`; 95 MB resident fewer at past 100 / horizon 50),
+    any other matrix as it is."""
+    zeros = int(np.argmax(np.diagonal(M) != 0)) if M.size else 0
+    return _coordinate_projector(M.shape[0], zeros) if 0 < zeros < M.shape[0] and \
+        _is_coordinate_projector(M, zeros) else M
 
 
 class HankelPredictor(_DirectPredictor):
@@ -461,7 +470,7 @@ class HankelPredictor(_DirectPredictor):
         for k in ("lambda_g_", "lambda_g_relative_", "lambda_y_"):
             setattr(obj, k, float(fitted[k]))
         r = obj.blocks_.Up.shape[1]
-        obj.reg_matrix_ = (np.eye(r) if obj.regularizer_ == "l2" else
-                           None if obj.regularizer_ == "l1" else np.asarray(fitted["reg_matrix_"], dtype=np.float64))
+        obj.reg_matrix_ = (np.eye(r) if obj.regularizer_ == "l2" else None if obj.regularizer_ == "l1" else
+                           _compact(np.asarray(fitted["reg_matrix_"], np.float64)))
         obj._l1_cache = obj._map_cache = None
         return obj

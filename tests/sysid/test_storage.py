@@ -195,3 +195,50 @@ def test_a_loaded_model_refuses_settings_changed_after_loading(rng, tmp_path):
     back.set_params(output_lags=1)
     with pytest.raises(NotFittedError, match="fit\\(\\.\\.\\.\\) again"):
         back.predict(np.zeros((2, 2)), np.zeros((2, 2)), np.zeros((3, 2)))
+
+
+# ------------------------------------------------------------------------------------------------ packing
+def test_large_mostly_zero_arrays_are_stored_compressed_and_come_back_exactly(tmp_path):
+    # a 1,100 × 1,100 coordinate projector (the Hankel predictor's regulariser, 100 nonzeros per 1,000 rows) and a
+    # dense array of the same size: the first through HDF5's standard gzip filter, the second as it is
+    from stimsteer.sysid import storage
+
+    sparse = np.zeros((1100, 1100))
+    sparse[np.arange(1000, 1100), np.arange(1000, 1100)] = 1.0
+    dense = np.random.default_rng(3).standard_normal((1100, 1100))
+    with h5py.File(tmp_path / "raw.h5", "w") as f:
+        storage._write_dict(f.create_group("state"), {"sparse": sparse, "dense": dense}, "state")
+    with h5py.File(tmp_path / "raw.h5", "r") as f:
+        assert f["state/sparse"].compression == "gzip" and f["state/dense"].compression is None
+        back = storage._read_dict(f["state"])
+    np.testing.assert_array_equal(back["sparse"], sparse)
+    np.testing.assert_array_equal(back["dense"], dense)
+    assert (tmp_path / "raw.h5").stat().st_size < dense.nbytes + sparse.nbytes / 20
+
+
+def test_a_hankel_predictors_projection_regulariser_is_stored_small_and_loaded_as_fitted(rng, tmp_path, monkeypatch):
+    from stimsteer.sysid import storage
+    from stimsteer.sysid.datadriven.hankel_predictor import HankelPredictor
+
+    monkeypatch.setattr(storage, "_SPARSE_STORE_MIN", 1)  # the small test model's regulariser counts as large
+    est = HankelPredictor(past_steps=6, horizon_steps=4).fit(session(rng))
+    M = est.reg_matrix_
+    n_b = int(np.count_nonzero(np.diagonal(M) == 0))
+    assert 0 < n_b < M.shape[0] and np.count_nonzero(M) == M.shape[0] - n_b  # diag(0, I): what the fit makes
+    path = save_predictor(est, tmp_path / "h.h5", provenance=PROV)
+    with h5py.File(path, "r") as f:
+        assert f["state/fitted/reg_matrix_"].compression == "gzip"
+    back, _prov = load_predictor(path)
+    np.testing.assert_array_equal(back.reg_matrix_, M)
+    rng2 = np.random.default_rng(4)
+    window = rng2.standard_normal((6, 2)), rng2.standard_normal((6, 2)), rng2.standard_normal((4, 2))
+    np.testing.assert_array_equal(back.predict(*window), est.predict(*window))
+    # the loaded projector is made again as the fit makes it (its zero pages untouched); other matrices stay as read
+    from stimsteer.sysid.datadriven import hankel_predictor as hp
+
+    made = []
+    monkeypatch.setattr(hp, "_coordinate_projector",
+                        lambda r, k: made.append((r, k)) or np.diag((np.arange(r) >= k) * 1.0))
+    assert np.array_equal(hp._compact(np.asarray(M)), M) and made == [(M.shape[0], n_b)]
+    other = np.eye(M.shape[0])
+    assert hp._compact(other) is other and len(made) == 1
