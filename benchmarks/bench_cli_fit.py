@@ -1,0 +1,110 @@
+"""The fits at realistic windows as a user runs them: ``stimsteer fit`` end to end, one fresh process per case.
+
+Setup (not timed): the session of ``bench_windows.py`` (the demo network at 1 kHz: 3 stimulation sites, 20 contacts,
+25 trials of 2.5 s, 63,000 samples), written once to a temporary HDF5 file.
+
+Measured, for each method (ridge ARX, subspace, the least-squares (SPC) predictor, the regularised Hankel predictor)
+at ``--past`` / ``--horizon`` (default 100 ms / 50 ms): ``stimsteer fit SESSION --route R --method M --past P
+--horizon H --out MODEL`` in a child process, with its default settings (ridge ARX also chooses its input delay among
+0-3 by cross-validation, four fits; every method is then scored on the held-out trials, its k-step and free-run
+predictions, and its model file written). Printed: the wall time, the peak resident memory of the process (the
+kernel's ``ru_maxrss`` of that child, from ``os.wait4``), its CPU time, the model file's size and the exit code.
+Beside them the same for ``stimsteer --help`` (the imports and the parser alone), the floor of every command.
+
+Issue 14's targets (every method <= 10 s and <= 500 MB peak at past 100 / horizon 50 on the 2-core machine) are
+measured on the fit alone by ``bench_windows.py``; these are the same fits with what the command adds around them.
+
+Usage::
+
+    python benchmarks/bench_cli_fit.py                        # every method, 100 ms / 50 ms, once
+    python benchmarks/bench_cli_fit.py --methods arx hankel --repeat 3
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_windows import METHODS, make_session  # noqa: E402  (the same session and method names)
+
+
+def _command() -> list:
+    """The ``stimsteer`` command of this interpreter's environment."""
+    exe = Path(sys.executable).with_name("stimsteer")
+    return [str(exe)] if exe.exists() else [shutil.which("stimsteer") or "stimsteer"]
+
+
+def run(args: list, timeout: float) -> dict:
+    """One command in a fresh process: wall and CPU seconds, peak resident MB (``ru_maxrss``), exit code."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(_command() + [str(a) for a in args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            env={**os.environ, "STIMSTEER_PROGRESS": "0"})
+    deadline = t0 + timeout
+    while True:
+        pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
+        if pid:
+            break
+        if time.perf_counter() > deadline:
+            proc.kill()
+            proc.wait()
+            return {"killed": True}
+        time.sleep(0.005)
+    wall = time.perf_counter() - t0
+    err = proc.stderr.read().decode(errors="replace").strip().splitlines() if proc.stderr else []
+    proc.stderr.close()
+    return {"seconds": wall, "cpu_s": usage.ru_utime + usage.ru_stime, "peak_mb": usage.ru_maxrss / 1024,
+            "code": os.waitstatus_to_exitcode(status), "last_error": err[-1] if err else ""}
+
+
+def _row(label: str, r: dict, size: str) -> str:
+    if r.get("killed"):
+        return f"| {label} | killed (timeout) | | | | |"
+    note = "" if r["code"] == 0 else f" ({r['last_error'][:60]})"
+    return (f"| {label} | {r['seconds']:.2f} s | {r['cpu_s']:.2f} s | {r['peak_mb']:.0f} MB | {size} | "
+            f"{r['code']}{note} | {os.getloadavg()[0]:.1f} |")
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--methods", nargs="+", default=list(METHODS), choices=list(METHODS))
+    ap.add_argument("--past", default="100ms")
+    ap.add_argument("--horizon", default="50ms")
+    ap.add_argument("--repeat", type=int, default=1)
+    ap.add_argument("--timeout", type=float, default=600.0, help="seconds per command before it is killed")
+    ap.add_argument("--seed", type=int, default=1)
+    args = ap.parse_args(argv)
+    from stimsteer.sysid.io import save_session
+
+    print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.1f} at the start")
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "session.h5"
+        session = make_session(args.seed)
+        save_session(session, path)
+        print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, {session.n_outputs} "
+              f"outputs, {len(session.trials)} trials; stimsteer fit --past {args.past} --horizon {args.horizon}")
+        print("| command | wall | CPU | peak resident | model file | exit code | load |")
+        print("| --- | --- | --- | --- | --- | --- | --- |")
+        for _ in range(args.repeat):
+            print(_row("stimsteer --help", run(["--help"], args.timeout), ""), flush=True)
+            for method in args.methods:
+                route, name, label = METHODS[method]
+                model = Path(tmp) / f"{method}.h5"
+                model.unlink(missing_ok=True)
+                r = run(["fit", path, "--route", route, "--method", name, "--past", args.past, "--horizon",
+                         args.horizon, "--out", model], args.timeout)
+                size = f"{model.stat().st_size / 1e6:.1f} MB" if model.exists() else "none"
+                print(_row(f"fit, {label}", r, size), flush=True)
+    print(f"# load average {os.getloadavg()[0]:.1f} at the end")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
