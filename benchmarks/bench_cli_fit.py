@@ -9,7 +9,10 @@ at ``--past`` / ``--horizon`` (default 100 ms / 50 ms): ``stimsteer fit SESSION 
 0-3 by cross-validation, four fits; every method is then scored on the held-out trials, its k-step and free-run
 predictions, and its model file written). Printed: the wall time, the peak resident memory of the process (the
 kernel's ``ru_maxrss`` of that child, from ``os.wait4``), its CPU time, the model file's size and the exit code.
-Beside them the same for ``stimsteer --help`` (the imports and the parser alone), the floor of every command.
+Beside them the same for ``stimsteer --help`` (the imports and the parser alone), the floor of every command. With
+``--network``, then ``stimsteer network MODEL --out DIR`` of each fitted indirect-route model, measured alike (its
+network-control tables and figures; a ridge ARX at past 100 ms is a state-space model of 2,297 states, one per
+lagged output and input).
 
 Issue 14's targets (every method <= 10 s and <= 500 MB peak at past 100 / horizon 50 on the 2-core machine) are
 measured on the fit alone by ``bench_windows.py``; these are the same fits with what the command adds around them.
@@ -80,6 +83,7 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=1)
     ap.add_argument("--timeout", type=float, default=600.0, help="seconds per command before it is killed")
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--network", action="store_true", help="also time 'stimsteer network' of each indirect model")
     args = ap.parse_args(argv)
     from stimsteer.sysid.io import save_session
 
@@ -102,6 +106,9 @@ def main(argv=None) -> int:
                          args.horizon, "--out", model], args.timeout)
                 size = f"{model.stat().st_size / 1e6:.1f} MB" if model.exists() else "none"
                 print(_row(f"fit, {label}", r, size), flush=True)
+                if args.network and route == "indirect" and model.exists():
+                    r = run(["network", model, "--out", Path(tmp) / f"network_{method}", "--force"], args.timeout)
+                    print(_row(f"network, {label}", r, ""), flush=True)
     print(f"# load average {os.getloadavg()[0]:.1f} at the end")
     return 0
 

@@ -237,9 +237,15 @@ class StateSpaceModel:
     # ------------------------------------------------------------------------------------------------ stability
     @property
     def poles(self) -> np.ndarray:
-        """Eigenvalues of A, sorted by decreasing modulus."""
-        ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
-        return ev[np.argsort(-np.abs(ev))]
+        """Eigenvalues of A, sorted by decreasing modulus (computed once: ``A`` is a read-only copy; 1.5 s at the
+        2,297 states of a ridge ARX at past 100 ms of 3 sites and 20 channels, asked for four times by
+        ``stimsteer network``)."""
+        ev = self.__dict__.get("_poles")
+        if ev is None:
+            ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
+            ev = ev[np.argsort(-np.abs(ev))]
+            object.__setattr__(self, "_poles", ev)
+        return ev.copy()
 
     @property
     def spectral_radius(self) -> float:

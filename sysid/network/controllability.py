@@ -10,6 +10,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, UnstableModelError
+from .lyapunov import stable_gramian
 from .systems import _as_model, _check_horizon, _dynamics, _frozen
 
 __all__ = ["reachability_matrix", "controllability_gramian", "controllability", "site_controllability",
@@ -49,7 +50,7 @@ def _reach(A, B, T) -> np.ndarray:
 
 def _gramian(A, B, T) -> np.ndarray:
     if T is None:
-        W = sla.solve_discrete_lyapunov(A, B @ B.T)
+        W = stable_gramian(A, B @ B.T)
     else:
         W = np.zeros((A.shape[0], A.shape[0]))
         M = B.copy()
@@ -302,7 +303,7 @@ def average_controllability_values(A, B, horizon_steps=None) -> np.ndarray:
     """
     n = A.shape[0]
     if horizon_steps is None:
-        P = sla.solve_discrete_lyapunov(A.T, np.eye(n))
+        P = stable_gramian(A.T, np.eye(n))
     else:
         P = _gramian(A.T, np.eye(n), horizon_steps)
     return np.einsum("ij,ik,kj->j", B, P, B)

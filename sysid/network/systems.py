@@ -7,6 +7,7 @@ import numpy as np
 
 from ..exceptions import SessionError
 from ..statespace import StateSpaceModel
+from .lyapunov import stable_gramian
 
 __all__ = ["network_model", "normalised_network", "minimal_realisation", "MINIMAL_RTOL", "NORMALISATION_NONE",
            "NORMALISATION_SIGMA"]
@@ -208,10 +209,10 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     model = _as_model(system)
     A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
     n = A.shape[0]
-    stable = n == 0 or float(np.max(np.abs(np.linalg.eigvals(A)))) < 1.0
+    stable = n == 0 or model.spectral_radius < 1.0  # the model's poles, computed once
     T = horizon_steps if horizon_steps is not None or stable else 2 * n
     if T is None:
-        Wc, Wo = sla.solve_discrete_lyapunov(A, B @ B.T), sla.solve_discrete_lyapunov(A.T, C.T @ C)
+        Wc, Wo = stable_gramian(A, B @ B.T), stable_gramian(A.T, C.T @ C)
     else:
         Wc, Wo = np.zeros((n, n)), np.zeros((n, n))
         Mb, Mc = B.copy(), C.T.copy()

@@ -1,0 +1,46 @@
+"""Infinite-horizon Gramians of stable discrete-time models, ``W = A W Aᵀ + Q``, at every model size.
+
+Small models go to SciPy's :func:`scipy.linalg.solve_discrete_lyapunov` (its bilinear transform and Bartels-Stewart
+solve, as before: the same numbers). From :data:`DOUBLING_STATES` states on, the sum ``W = Σ_k A^k Q (A^k)ᵀ`` is
+taken by doubling (the squared Smith iteration: Smith 1968, "Matrix equation XA + BX = C", SIAM J. Appl. Math.
+16(1); the reference is from memory): ``W ← W + M W Mᵀ``, ``M ← M²``, so after ``j`` steps ``W`` holds the first
+``2^j`` terms. Each step is three dense products, and it stops once a step's term is below rounding of ``W``
+(about ``ρ(A)^(2^(j+1))`` of it: 10 steps at spectral radius 0.95, 17 at 0.9995). Measured on random stable models
+of spectral radius 0.95 (``benchmarks/bench_lyapunov.py``, 2 cores): at 800 states SciPy 1.04 s, doubling 0.32 s;
+at 1,600 states 12.5 s and 2.9 s; relative residuals ``|A W Aᵀ − W + Q| / |W|`` 9e-15 (SciPy) and 9e-16. A ridge
+ARX at past 100 ms of 3 sites and 20 channels, realised on its lags, has 2,297 states (spectral radius 0.9995), and
+``stimsteer network`` of it solved eight Gramians of that size: stopped unfinished after 300 s.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["DOUBLING_STATES", "stable_gramian"]
+
+#: States from which :func:`stable_gramian` sums by doubling instead of calling SciPy's solver.
+DOUBLING_STATES = 512
+#: Doubling steps at most (``2^64`` terms: a spectral radius within ``1e-16`` of 1 would need more; the callers
+#: refuse unstable models first).
+_MAX_STEPS = 64
+
+
+def stable_gramian(A, Q) -> np.ndarray:
+    """``W`` with ``W = A W Aᵀ + Q`` for a stable ``A`` (spectral radius below 1, checked by the callers), symmetric
+    ``Q``: SciPy's solution as it returns it below :data:`DOUBLING_STATES` states, the doubled sum symmetrised from
+    there on."""
+    A = np.asarray(A, dtype=np.float64)
+    Q = np.asarray(Q, dtype=np.float64)
+    if A.shape[0] < DOUBLING_STATES:
+        import scipy.linalg as sla
+
+        return sla.solve_discrete_lyapunov(A, Q)
+    W, M = Q.copy(), A.copy()
+    eps = np.finfo(np.float64).eps
+    for _ in range(_MAX_STEPS):
+        term = (M @ W) @ M.T
+        W += term
+        if not np.max(np.abs(term)) > eps * np.max(np.abs(W)):  # below rounding of W (or W is zero)
+            break
+        M = M @ M
+    return 0.5 * (W + W.T)
