@@ -207,17 +207,9 @@ class StateSpaceModel:
             s(self, name, units)
 
     # ------------------------------------------------------------------------------------------------ shape
-    @property
-    def n_states(self) -> int:
-        return int(self.A.shape[0])
-
-    @property
-    def n_inputs(self) -> int:
-        return int(self.B.shape[1])
-
-    @property
-    def n_outputs(self) -> int:
-        return int(self.C.shape[0])
+    n_states = property(lambda self: int(self.A.shape[0]), doc="States (rows of ``A``).")
+    n_inputs = property(lambda self: int(self.B.shape[1]), doc="Inputs (columns of ``B``).")
+    n_outputs = property(lambda self: int(self.C.shape[0]), doc="Outputs (rows of ``C``).")
 
     # ------------------------------------------------------------------------------------------------ predictor
     # The Predictor contract's fitted-attribute names, read from the fields (a given model needs no fit).
@@ -237,15 +229,11 @@ class StateSpaceModel:
     # ------------------------------------------------------------------------------------------------ stability
     @property
     def poles(self) -> np.ndarray:
-        """Eigenvalues of A, sorted by decreasing modulus (computed once: ``A`` is a read-only copy; 1.5 s at the
-        2,297 states of a ridge ARX at past 100 ms of 3 sites and 20 channels, asked for four times by
-        ``stimsteer network``)."""
-        ev = self.__dict__.get("_poles")
-        if ev is None:
+        """Eigenvalues of A, sorted by decreasing modulus (computed once: ``A`` is a read-only copy)."""
+        if "_poles" not in self.__dict__:
             ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
-            ev = ev[np.argsort(-np.abs(ev))]
-            object.__setattr__(self, "_poles", ev)
-        return ev.copy()
+            object.__setattr__(self, "_poles", ev[np.argsort(-np.abs(ev))])
+        return self._poles.copy()
 
     @property
     def spectral_radius(self) -> float:

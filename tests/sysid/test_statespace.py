@@ -275,3 +275,15 @@ def test_markov_toeplitz_is_the_response_from_rest(rng):
     u = rng.standard_normal((7, 2))
     T = markov_toeplitz(model.impulse_response(9), 7)
     np.testing.assert_allclose((T @ u.reshape(-1)).reshape(7, 1), model.simulate(u), rtol=1e-12, atol=1e-12)
+
+
+def test_poles_are_computed_once_and_handed_out_as_copies(monkeypatch):
+    model = StateSpaceModel(A=[[0.5, 0.2], [0.0, -0.9]], B=[[1.0], [0.0]], C=[[1.0, 1.0]])
+    calls = []
+    real = np.linalg.eigvals
+    monkeypatch.setattr(np.linalg, "eigvals", lambda a: calls.append(1) or real(a))
+    first = model.poles
+    np.testing.assert_allclose(first, [-0.9, 0.5])  # a triangular A: its diagonal, by decreasing modulus
+    first[:] = 0.0  # a caller's copy: the model's poles stay
+    np.testing.assert_allclose(model.poles, [-0.9, 0.5])
+    assert model.spectral_radius == 0.9 and model.is_stable and len(calls) == 1
