@@ -12,7 +12,9 @@ kernel's ``ru_maxrss`` of that child, from ``os.wait4``), its CPU time, the mode
 Beside them the same for ``stimsteer --help`` (the imports and the parser alone), the floor of every command. With
 ``--network``, then ``stimsteer network MODEL --out DIR`` of each fitted indirect-route model, measured alike (its
 network-control tables and figures; a ridge ARX at past 100 ms is a state-space model of 2,297 states, one per
-lagged output and input).
+lagged output and input). With ``--plan``, ``stimsteer plan MODEL --target rec_01=15,rec_04=-10 --limits
+demo_data/demo_limits.toml --horizon H --out DIR`` of each fitted model, alike (the demo's target and limits: the
+session is the demo network's).
 
 Issue 14's targets (every method <= 10 s and <= 500 MB peak at past 100 / horizon 50 on the 2-core machine) are
 measured on the fit alone by ``bench_windows.py``; these are the same fits with what the command adds around them.
@@ -84,6 +86,7 @@ def main(argv=None) -> int:
     ap.add_argument("--timeout", type=float, default=600.0, help="seconds per command before it is killed")
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--network", action="store_true", help="also time 'stimsteer network' of each indirect model")
+    ap.add_argument("--plan", action="store_true", help="also time 'stimsteer plan' of each model")
     args = ap.parse_args(argv)
     from stimsteer.sysid.io import save_session
 
@@ -109,6 +112,11 @@ def main(argv=None) -> int:
                 if args.network and route == "indirect" and model.exists():
                     r = run(["network", model, "--out", Path(tmp) / f"network_{method}", "--force"], args.timeout)
                     print(_row(f"network, {label}", r, ""), flush=True)
+                if args.plan and model.exists():
+                    limits = Path(__file__).resolve().parents[1] / "demo_data" / "demo_limits.toml"
+                    r = run(["plan", model, "--target", "rec_01=15,rec_04=-10", "--limits", limits, "--horizon",
+                             args.horizon, "--out", Path(tmp) / f"plan_{method}", "--force"], args.timeout)
+                    print(_row(f"plan, {label}", r, ""), flush=True)
     print(f"# load average {os.getloadavg()[0]:.1f} at the end")
     return 0
 

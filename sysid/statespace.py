@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
+from ._shift import PredictorStep
 from ._windows import small_gemms, window_batch
 from .exceptions import SessionError, UnstableModelError
 from .protocols import PredictionMaps
@@ -300,20 +301,20 @@ class StateSpaceModel:
         return (y, X) if return_states else y
 
     def _innovation_terms(self, u_past, y_past):
-        """Free-response basis and driven part of the innovation predictor over a past window."""
+        """Free-response basis and driven part of the innovation predictor over a past window; ``Ak^T`` is None
+        where the predictor is a nilpotent shift that reached zero (a lag realisation: :mod:`._shift`)."""
         T, n = u_past.shape[0], self.n_states
-        Ak = self.A - self.K @ self.C
+        step = PredictorStep(self.A - self.K @ self.C)
         Bk = self.B - self.K @ self.D
         Phi = np.empty((T, self.n_outputs, n))  # C Ak^t: response of the predicted output to the initial state
-        M = np.eye(n)
         x = np.zeros(n)
         driven = np.empty((T, self.n_outputs))
         for t in range(T):
-            Phi[t] = self.C @ M
+            Phi[t] = step.times_power(self.C)
             driven[t] = self.C @ x + self.D @ u_past[t]
-            x = Ak @ x + Bk @ u_past[t] + self.K @ y_past[t]
-            M = Ak @ M
-        return Phi, driven, M, x
+            x = step(x) + Bk @ u_past[t] + self.K @ y_past[t]
+            step.advance()
+        return Phi, driven, step.power(), x
 
     def estimate_state(self, u_past, y_past) -> np.ndarray:
         """State at the sample just after a measured past window.
@@ -345,6 +346,8 @@ class StateSpaceModel:
         if u_past.shape[0] == 0 or self.n_states == 0:
             return np.zeros(self.n_states)
         Phi, driven, M, x_driven = self._innovation_terms(u_past, y_past)
+        if M is None:  # the start of the window no longer matters (M @ x0 would add zeros)
+            return x_driven
         lhs = Phi.reshape(-1, self.n_states)
         rhs = (y_past - driven).reshape(-1)
         x0 = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
@@ -361,12 +364,14 @@ class StateSpaceModel:
         Phi, _, M, _ = self._innovation_terms(np.zeros((n_past, m)), np.zeros((n_past, p)))
         basis = np.eye(n_past * (m + p))
         U, Y = basis[:n_past * m].reshape(n_past, m, -1), basis[n_past * m:].reshape(n_past, p, -1)
-        Ak, Bk = self.A - self.K @ self.C, self.B - self.K @ self.D
+        step, Bk = PredictorStep(self.A - self.K @ self.C), self.B - self.K @ self.D
         x = np.zeros((n, basis.shape[0]))
         resid = np.empty_like(Y)
         for t in range(n_past):
             resid[t] = Y[t] - (self.C @ x + self.D @ U[t])
-            x = Ak @ x + Bk @ U[t] + self.K @ Y[t]
+            x = step(x) + Bk @ U[t] + self.K @ Y[t]
+        if M is None:
+            return x
         x0 = np.linalg.lstsq(Phi.reshape(-1, n), resid.reshape(n_past * p, -1), rcond=None)[0]
         return M @ x0 + x
 

@@ -20,7 +20,7 @@ import scipy.sparse as sp
 
 from ...sysid import InvalidParameterError, SessionError, StateSpaceForm
 from ._settings import _clip_psd, _horizon, _output_target, _sqrt_weight
-from .condensed import _CondensedCore, _LinearStateMap, _condensed_terms, condensed_prediction
+from .condensed import _CondensedCore, _LinearStateMap, _condensed_terms, condensed_outputs, condensed_prediction
 from .steady import SteadyState, _SteadyTarget
 from ...sysid._lazy import lazy_module
 
@@ -172,18 +172,22 @@ class ModelPredictiveController(_CondensedCore):
         self._y_off_N = np.tile(self._y_off, N)
         self._free_cache = self._offsets_cache = None
         self._state_map = _LinearStateMap(model, model.past_steps)  # the estimate as a precomputed linear map
-        Gy, Phi_y, Gx, Phi_x = condensed_prediction(model, N)
-        self._Phi_y, self._Phi_x, self._Gx = Phi_y, Phi_x, Gx
-        self._AN = np.linalg.matrix_power(model.A, N)
-        self._Cpinv = np.linalg.pinv(model.C)
         state = self.target_kind == "state"
+        if state:
+            Gy, Phi_y, Gx, self._Phi_x = condensed_prediction(model, N)
+            Gx_last = Gx[(N - 1) * n:]
+        else:  # the states' maps are N·n rows each: only their last block row, for a terminal cost
+            (Gy, Phi_y, Gx_last), Gx, self._Phi_x = condensed_outputs(model, N), None, None
+        self._Phi_y = Phi_y
+        self._Cpinv = np.linalg.pinv(model.C)
         Lq = _sqrt_weight("state_weight" if state else "output_weight",
                           self.state_weight if state else self.output_weight, n if state else model.n_outputs)
         Lz = sla.block_diag(*[Lq] * N)
         self._Lz, self._Lz_diag = Lz, False
         self.riccati_, Lp = self._terminal_factor(Lq)
         self._Lp = Lp
-        T = None if Lp is None else Gx[(N - 1) * n:]
+        self._AN = None if Lp is None else np.linalg.matrix_power(model.A, N)  # read only with a terminal cost
+        T = None if Lp is None else Gx_last
         self._build_condensed(Gy, Gx if state else Gy, Lz, T, Lp)
         if self.formulation == "sparse":
             self._build_sparse(Lq, Lp)
