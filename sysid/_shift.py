@@ -1,12 +1,13 @@
 """The innovation predictor's matrix ``Ak = A − K C`` applied as what it is: for a lag realisation a shift.
 
-Ridge ARX's observer-form realisation (:func:`~stimsteer.sysid.arx_statespace.arx_to_state_space`) has ``K = [I; 0]``,
-so every row of ``Ak`` is zero or a single 1 (each state takes the one before it), and ``Ak`` is nilpotent: after
-``max(na, nu)`` steps the predictor has forgotten the window's start. As dense products, running the predictor over a
-past window cost ``n³`` per sample: at past 100 ms of 3 sites and 20 channels (2,297 states, 100 samples) the state
-map of ``stimsteer plan`` took about a minute. Here such an ``Ak`` is a partial permutation (no two rows copy the same
-state) applied by copying rows, and its powers are index arrays. The copies are the products' numbers exactly: each
-entry of the product is one entry of the operand times 1, plus zeros.
+Ridge ARX's observer-form realisation (:func:`~stimsteer.sysid.arx_statespace.arx_to_state_space`) has ``K = [I;
+0]``, so every row of ``Ak`` is zero or a single 1 (each state takes the one before it), and ``Ak`` is nilpotent:
+after ``max(na, nu)`` steps the predictor has forgotten the window's start. As dense products, running the predictor
+over a past window cost ``n³`` per sample: at past 100 ms of 3 sites and 20 channels (2,297 states, 100 samples)
+most of the 106 s ``stimsteer plan`` took with that model went there (``benchmarks/bench_cli_fit.py --plan``). Here
+such an ``Ak`` is a partial permutation (no two rows copy the same state) applied by copying rows, and its powers
+are index arrays. The copies are the products' numbers exactly: each entry of the product is one entry of the
+operand times 1, plus zeros.
 """
 
 from __future__ import annotations

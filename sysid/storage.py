@@ -126,10 +126,9 @@ def _write_dict(group, d: dict, where: str):
 
 #: Arrays of at least this many values that are mostly zeros (at most one value in :data:`_SPARSE_SHARE` nonzero)
 #: are stored compressed (HDF5's standard gzip filter, level 1: read by any HDF5 reader). The Hankel predictor's
-#: projection regulariser at past 100 / horizon 50 (3,450 × 3,450, 1,000 nonzeros): 95 MB stored as they are,
-#: 0.49 MB compressed, written in 0.10 s against 0.08 s and read in 0.07 s against 0.23 s (in memory; on this
-#: machine the 95 MB more on disk took about 0.45 s of the model file's write). Dense arrays stay uncompressed
-#: (gzip of measured data is slow and gains little).
+#: projection regulariser at past 100 / horizon 50 (3,450 × 3,450, 1,000 nonzeros) is 95 MB as it is: its model
+#: file went from 190.6 MB to 95.8 MB (``benchmarks/bench_cli_fit.py``). Dense arrays stay uncompressed (gzip of
+#: measured data is slow and gains little).
 _SPARSE_STORE_MIN = 1 << 20
 _SPARSE_SHARE = 8
 
