@@ -4,7 +4,7 @@ Ridge ARX's observer-form realisation (:func:`~stimsteer.sysid.arx_statespace.ar
 0]``, so every row of ``Ak`` is zero or a single 1 (each state takes the one before it), and ``Ak`` is nilpotent:
 after ``max(na, nu)`` steps the predictor has forgotten the window's start. As dense products, running the predictor
 over a past window cost ``n³`` per sample: at past 100 ms of 3 sites and 20 channels (2,297 states, 100 samples)
-most of the 106 s ``stimsteer plan`` took with that model went there (``benchmarks/bench_cli_fit.py --plan``). Here
+most of the 104 s ``stimsteer plan`` took with that model went there (``benchmarks/bench_cli_fit.py --plan``). Here
 such an ``Ak`` is a partial permutation (no two rows copy the same state) applied by copying rows, and its powers
 are index arrays. The copies are the products' numbers exactly: each entry of the product is one entry of the
 operand times 1, plus zeros.
