@@ -61,7 +61,11 @@ def _gramian(A, B, T) -> np.ndarray:
 
 
 def _require_stable(A, purpose: str) -> None:
-    rho = float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
+    """Refuse an unstable ``A`` (an array, or a model: its poles, computed once per model)."""
+    if hasattr(A, "spectral_radius"):
+        rho = A.spectral_radius
+    else:
+        rho = float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
     if rho >= 1.0:
         raise UnstableModelError(
             f"{purpose} needs a stable model, but the spectral radius is {rho:.4f} >= 1. Give a finite "
