@@ -35,10 +35,21 @@ class PredictorStep:
     """``Ak @ X`` and the powers of ``Ak``: by row copies and index arrays where ``Ak`` is a shift
     (:func:`shift_rows`), else by dense products."""
 
-    def __init__(self, Ak: np.ndarray):
-        self.Ak, self.src = Ak, shift_rows(Ak)
+    def __init__(self, Ak: np.ndarray, src=False):
+        self.Ak, self.src = Ak, shift_rows(Ak) if src is False else src
         n = Ak.shape[0]
         self._power = np.arange(n) if self.src is not None else np.eye(n)  # Ak^0
+
+    @classmethod
+    def of(cls, model) -> "PredictorStep":
+        """For ``model``'s ``A − K C``; whether it is a shift is found once per model (its arrays are read-only copies,
+        so the answer is kept on it, as its poles are)."""
+        Ak = model.A - model.K @ model.C
+        src = model.__dict__.get("_shift_rows", False)
+        if src is False:
+            src = shift_rows(Ak)
+            object.__setattr__(model, "_shift_rows", src)
+        return cls(Ak, src)
 
     def __call__(self, X: np.ndarray) -> np.ndarray:
         """``Ak @ X``."""

@@ -304,7 +304,7 @@ class StateSpaceModel:
         """Free-response basis and driven part of the innovation predictor over a past window; ``Ak^T`` is None
         where the predictor is a nilpotent shift that reached zero (a lag realisation: :mod:`._shift`)."""
         T, n = u_past.shape[0], self.n_states
-        step = PredictorStep(self.A - self.K @ self.C)
+        step = PredictorStep.of(self)
         Bk = self.B - self.K @ self.D
         Phi = np.empty((T, self.n_outputs, n))  # C Ak^t: response of the predicted output to the initial state
         x = np.zeros(n)
@@ -364,7 +364,7 @@ class StateSpaceModel:
         Phi, _, M, _ = self._innovation_terms(np.zeros((n_past, m)), np.zeros((n_past, p)))
         basis = np.eye(n_past * (m + p))
         U, Y = basis[:n_past * m].reshape(n_past, m, -1), basis[n_past * m:].reshape(n_past, p, -1)
-        step, Bk = PredictorStep(self.A - self.K @ self.C), self.B - self.K @ self.D
+        step, Bk = PredictorStep.of(self), self.B - self.K @ self.D
         x = np.zeros((n, basis.shape[0]))
         resid = np.empty_like(Y)
         for t in range(n_past):

@@ -181,9 +181,10 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     minimal = None if is_network_map(model) else minimal_realisation(model, horizon_steps=gramian_steps)[0]
     T = _check_horizons(model if minimal is None else minimal, horizon_steps, gramian_steps)
     kal = controllability(model if minimal is None else minimal, horizon_steps=gramian_steps)
-    # what is seen through the channels is the same on the minimal realisation (to its printed bound), in fewer
-    # states: a ridge ARX at past 100 ms of 3 sites and 20 channels has 2,297 states, its minimal realisation 922
-    seen = model if minimal is None else minimal
+    # what is seen through the channels is the same on the minimal realisation (to its printed bound, which holds
+    # for the infinite-horizon Gramians of a stable model), in fewer states: a ridge ARX at past 100 ms of 3 sites
+    # and 20 channels has 2,297 states, its minimal realisation 922. A finite Gramian horizon: the model itself.
+    seen = model if minimal is None or gramian_steps is not None else minimal
     out_rep = output_controllability(seen, horizon_steps=gramian_steps)
     sites = site_output_controllability(seen, horizon_steps=gramian_steps)
     modes = mode_times(model if minimal is None else minimal)

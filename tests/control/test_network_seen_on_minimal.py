@@ -26,3 +26,13 @@ def test_channel_figures_come_from_the_minimal_realisation_and_equal_the_padded_
     for (channel, site), column in got.items():
         i, j = model.output_names.index(channel), model.input_names.index(site)
         np.testing.assert_allclose(column.to_numpy(), expected[:, i, j], atol=1e-9)
+
+
+def test_with_a_finite_gramian_horizon_the_channel_figures_come_from_the_model_itself(rng, tmp_path, monkeypatch):
+    # the truncation bound the command prints is that of the infinite-horizon Gramians (Glover 1984)
+    model, _n_min = _padded(rng)
+    seen = []
+    real = nw.output_controllability
+    monkeypatch.setattr(nw, "output_controllability", lambda m, **k: seen.append(m.n_states) or real(m, **k))
+    nw.write_network_outputs(model, tmp_path / "net", max_set_size=2, gramian_steps=30)
+    assert seen == [model.n_states]

@@ -38,9 +38,12 @@ def test_the_state_estimate_and_its_map_equal_the_dense_products_bit_for_bit(rng
     T = model.past_steps + 2
     u, y = rng.standard_normal((T, 2)), rng.standard_normal((T, 3))
     fast, fast_map = model.estimate_state(u, y), model.state_map(T)
+    assert model.__dict__["_shift_rows"] is not None  # found once, kept on the model
     monkeypatch.setattr(_shift, "shift_rows", lambda Ak: None)  # every Ak dense, the least-squares fit as before
-    np.testing.assert_array_equal(fast, model.estimate_state(u, y))
-    np.testing.assert_array_equal(fast_map, model.state_map(T))
+    dense = model.replace()  # a new model: nothing kept from the first
+    np.testing.assert_array_equal(fast, dense.estimate_state(u, y))
+    np.testing.assert_array_equal(fast_map, dense.state_map(T))
+    assert dense.__dict__["_shift_rows"] is None
     # the state after the window is the stacked samples (the realisation's docstring): y_{T-1..T-na}, u_{T-1..}
     np.testing.assert_array_equal(fast[:3], y[-1])
     np.testing.assert_array_equal(fast[3:6], y[-2])
