@@ -44,8 +44,8 @@ def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
 
 def _compact(M: np.ndarray) -> np.ndarray:
     """A loaded regulariser as the fit made it: a coordinate projector ``diag(0, I)`` with its zero pages untouched
-    (:func:`~stimsteer.sysid.datadriven.kkt._coordinate_projector`; 95 MB resident fewer at past 100 / horizon 50),
-    any other matrix as it is."""
+    (:func:`~stimsteer.sysid.datadriven.kkt._coordinate_projector`; the dense copy read from the file, 95 MB at past
+    100 / horizon 50, is dropped), any other matrix as it is."""
     zeros = int(np.argmax(np.diagonal(M) != 0)) if M.size else 0
     return _coordinate_projector(M.shape[0], zeros) if 0 < zeros < M.shape[0] and \
         _is_coordinate_projector(M, zeros) else M
