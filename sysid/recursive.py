@@ -24,6 +24,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._base import BasePredictor, check_fitted
+from .arx_statespace import arx_maps
 from .exceptions import InvalidParameterError, SessionError
 from .protocols import PredictionMaps
 
@@ -185,10 +186,17 @@ class RecursiveRidgeArx(BasePredictor):
         return Y[:, L:]
 
     def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
-        """The affine map of :meth:`predict` (responses to unit windows and inputs; ``c`` from the intercept)."""
+        """The affine map of :meth:`predict`: the ARX recursion's maps built as it runs (delay 0, the current input
+        included; :func:`~stimsteer.sysid.arx_statespace.arx_maps`, as the batch ridge ARX's), ``c`` the
+        intercept's response."""
         check_fitted(self, "coef_")
-        return maps_by_probing(self._recursion, self.n_inputs_, self.n_outputs_, self.past_steps_,
-                               int(past_steps), int(horizon_steps))
+        T, N, L = int(past_steps), int(horizon_steps), self.past_steps_
+        if T < L or N < 1:
+            raise SessionError(f"prediction maps need a past window of at least {L} samples and a horizon of at least "
+                               f"1; got {T} and {N}.")
+        A, B, c = self.coefficients()
+        P, F, c_map = arx_maps(A, B, 0, T, N, c)
+        return PredictionMaps(P=P, F=F, c=c_map, past_steps=T, horizon_steps=N)
 
     def rest_window(self):
         """Zero inputs and the resting output ``(I − Σ A_i)⁻¹ c`` (zero when that matrix is singular)."""

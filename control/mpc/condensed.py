@@ -55,14 +55,11 @@ def condensed_prediction(model, horizon_steps: int):
     Blocks: ``Gy[k, j] = C A^(k−1−j) B`` for ``j < k`` and ``D`` for ``j = k``; ``Gx[k, j] = A^(k−j) B`` for
     ``j <= k``; ``Phi_y[k] = C A^k``; ``Phi_x[k] = A^(k+1)``.
     """
-    A, B, C, D = model.A, model.B, model.C, model.D
+    A, C = model.A, model.C
     n, p, N = model.n_states, model.n_outputs, int(horizon_steps)
-    AB = [B]
-    for _ in range(1, N):
-        AB.append(A @ AB[-1])
+    AB, Gy = _input_responses(model, N)
     # Gx and Gy are the block-Toeplitz maps of the state and output Markov parameters (the one builder of sysid)
     Gx = markov_toeplitz(np.stack(AB))
-    Gy = markov_toeplitz(np.stack([D] + [C @ AB[k] for k in range(N - 1)]))
     Phi_x = np.empty((N * n, n))
     Phi_y = np.empty((N * p, n))
     Ak = np.eye(n)
@@ -73,6 +70,15 @@ def condensed_prediction(model, horizon_steps: int):
     return Gy, Phi_y, Gx, Phi_x
 
 
+def _input_responses(model, N: int):
+    """``[B, A B, …, A^(N−1) B]`` and ``Gy``, the block-Toeplitz map of the output Markov parameters over ``N``
+    steps (:func:`~stimsteer.sysid.statespace.markov_toeplitz`)."""
+    AB = [model.B]
+    for _ in range(1, N):
+        AB.append(model.A @ AB[-1])
+    return AB, markov_toeplitz(np.stack([model.D] + [model.C @ AB[k] for k in range(N - 1)]))
+
+
 def condensed_outputs(model, horizon_steps: int):
     """What an output-tracking controller needs of :func:`condensed_prediction`: ``Gy``, ``Phi_y`` and the last
     block row of ``Gx`` (``x_N = Gx_N vec(u) + A^N x_0``, for a terminal cost), without ``Phi_x`` and the rest of
@@ -81,12 +87,9 @@ def condensed_outputs(model, horizon_steps: int):
     A`` (``p n²`` per step where the powers of ``A`` cost ``n³``: the same numbers to rounding); smaller models keep
     :func:`condensed_prediction`'s numbers bit for bit (closed loops run on them amplify rounding: the demo's
     benchmark moved visibly when its ``Phi_y`` moved by rounding)."""
-    A, B, C, D = model.A, model.B, model.C, model.D
+    A, C = model.A, model.C
     n, p, N = model.n_states, model.n_outputs, int(horizon_steps)
-    AB = [B]
-    for _ in range(1, N):
-        AB.append(A @ AB[-1])
-    Gy = markov_toeplitz(np.stack([D] + [C @ AB[k] for k in range(N - 1)]))
+    AB, Gy = _input_responses(model, N)
     Gx_last = np.hstack(AB[::-1]) if N else np.zeros((n, 0))  # [A^(N−1) B, …, B]
     Phi_y = np.empty((N * p, n))
     row, Ak = np.array(C, dtype=np.float64), (np.eye(n) if n < ROW_RECURSION_STATES else None)

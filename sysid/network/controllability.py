@@ -60,12 +60,9 @@ def _gramian(A, B, T) -> np.ndarray:
     return 0.5 * (W + W.T)
 
 
-def _require_stable(A, purpose: str) -> None:
-    """Refuse an unstable ``A`` (an array, or a model: its poles, computed once per model)."""
-    if hasattr(A, "spectral_radius"):
-        rho = A.spectral_radius
-    else:
-        rho = float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
+def _require_stable(A, purpose: str, radius: float | None = None) -> None:
+    """Refuse an unstable ``A``; ``radius``: its spectral radius where the caller has it (a model's poles)."""
+    rho = radius if radius is not None else float(np.max(np.abs(np.linalg.eigvals(A)))) if A.size else 0.0
     if rho >= 1.0:
         raise UnstableModelError(
             f"{purpose} needs a stable model, but the spectral radius is {rho:.4f} >= 1. Give a finite "

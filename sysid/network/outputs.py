@@ -46,7 +46,7 @@ def _gram(model, horizon_steps):
     A, B = np.array(model.A), np.array(model.B)
     T = _check_horizon(horizon_steps, allow_none=True)
     if T is None:
-        _require_stable(model, "the infinite-horizon output Gramian")  # the same A: its poles, computed once
+        _require_stable(A, "the infinite-horizon output Gramian", model.spectral_radius)  # poles computed once
     return A, B, T
 
 

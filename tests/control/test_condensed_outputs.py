@@ -28,6 +28,7 @@ def test_the_row_recursion_gives_the_same_maps_to_rounding(rng, monkeypatch):
     monkeypatch.setattr(cd, "ROW_RECURSION_STATES", 1)
     gy, phi_y, gx_last = cd.condensed_outputs(model, N)
     np.testing.assert_array_equal(gy, Gy)
+    # C A^k by another association of the same products: rounding, the author's margins
     np.testing.assert_allclose(phi_y, Phi_y, rtol=1e-12, atol=1e-13 * np.abs(Phi_y).max())
     # and the definition, written out: block k of Phi_y is C A^k
     np.testing.assert_allclose(phi_y[-model.n_outputs:], model.C @ np.linalg.matrix_power(model.A, N - 1),

@@ -36,6 +36,7 @@ def test_the_maps_equal_the_difference_equation_written_out(rng, na, nb, d, T):
         up, yp, uf = rng.standard_normal((T, m)), rng.standard_normal((T, p)), rng.standard_normal((N, m))
         got = P @ np.concatenate([up.reshape(-1), yp.reshape(-1)]) + F @ uf.reshape(-1) + c_map
         expected = _reference_prediction(Coefs, up, yp, uf).reshape(-1)
+        # rounding only (the same sums in another order): the author's margin, 1e-12 of the largest prediction
         np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-12 * np.abs(expected).max())
     # the samples older than every lag have zero columns
     oldest = T - max(na, d + nb - 1)
@@ -53,6 +54,7 @@ def test_a_single_channel_maps_future_inputs_as_scipys_lfilter():
     b = np.concatenate([np.zeros(d), B.reshape(-1)])
     impulse = np.zeros(N)
     impulse[0] = 1.0
+    # rounding only: the author's margins (responses of order 1)
     np.testing.assert_allclose(F[:, 0], scipy.signal.lfilter(b, a, impulse), rtol=1e-13, atol=1e-15)
 
 
@@ -63,6 +65,7 @@ def test_the_fitted_maps_reproduce_predict_many(rng):
     up, yp, uf = rng.standard_normal((5, 8, 2)), rng.standard_normal((5, 8, 2)), rng.standard_normal((5, 6, 2))
     many = est.predict_many(up, yp, uf)
     for w in range(5):
+        # rounding only, outputs of order 1: the author's margins
         np.testing.assert_allclose(maps.apply(up[w], yp[w], uf[w]), many[w], rtol=1e-12, atol=1e-12)
 
 
@@ -81,5 +84,6 @@ def test_maps_at_a_long_window_need_memory_of_their_own_size(rng):
     tracemalloc.stop()
     assert peak <= 1.5 * size, (peak, size)  # the maps and small terms (measured 1.11; before, 11.0)
     up, yp, uf = u[:L], y[:L], u[L:L + N]
+    # rounding over 40 lags and 30 steps: the author's margin, 1e-10 of the outputs' largest value
     np.testing.assert_allclose(maps.apply(up, yp, uf), est.predict(up, yp, uf), rtol=1e-10,
                                atol=1e-10 * np.abs(y).max())

@@ -43,6 +43,7 @@ def test_the_doubled_sum_equals_the_series_it_sums(rng, monkeypatch):
         series += M @ B @ B.T @ M.T
         M = A @ M
     monkeypatch.setattr(ly, "DOUBLING_STATES", 1)
+    # the same sum grouped otherwise: rounding, the author's margins (entries of order 1-10)
     np.testing.assert_allclose(ly.stable_gramian(A, B @ B.T), series, rtol=1e-12, atol=1e-14)
 
 

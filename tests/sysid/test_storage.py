@@ -213,6 +213,8 @@ def test_large_mostly_zero_arrays_are_stored_compressed_and_come_back_exactly(tm
         back = storage._read_dict(f["state"])
     np.testing.assert_array_equal(back["sparse"], sparse)
     np.testing.assert_array_equal(back["dense"], dense)
+    # the dense array as it is, the sparse one at under a twentieth of its size (the author's margin: gzip of 100
+    # ones among 1.21 million zeros)
     assert (tmp_path / "raw.h5").stat().st_size < dense.nbytes + sparse.nbytes / 20
 
 
