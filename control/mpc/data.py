@@ -29,7 +29,8 @@ from ...sysid.protocols import past_vector
 from ._settings import _horizon, _output_target, _sqrt_weight
 from ._cone_solve import LazyProblem
 from .condensed import _CondensedCore, _data_terms
-from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
+from ._deepc_elimination import ProjectionReduced, eliminated_qp, null_space_elimination
+from .fastqp import _DenseSoftQP, _FastQP
 from .plan import Plan, _ro
 from ...sysid._lazy import lazy_module
 
@@ -81,7 +82,7 @@ class DataPredictiveController(_CondensedCore):
     """
 
     # per fit: DeePC's Hessian; per plan (see _free): the free response, the weighted error, the kept outputs
-    _hessian = _free_memo = _ew_memo = _kept_memo = None
+    _hessian = _free_memo = _ew_memo = _kept_memo = _reduced = None
 
     def __init__(self, *, predictor, limits, horizon_steps=None, output_weight=1.0, input_weight=1e-3,
                  past_slack_weight=None, output_penalty=1e4, solver="CLARABEL", fast_path=True,
@@ -194,6 +195,7 @@ class DataPredictiveController(_CondensedCore):
         self.problem_ = LazyProblem(self, "_deepc_problem")  # cvxpy's, built where a plan needs it
         quadratic = self._reg != "l1" or self._lam_g == 0
         self._elim, self._fast, self._fast_u = None, None, None
+        self._reduced = ProjectionReduced.of(self, b, N, m, p) if quadratic else None
         if quadratic:  # an energy budget is handled as in the model controller (kept only where not binding)
             self._fast_u = self._fast_deepc_eliminated(N, m)
             if self._idx_b.size == 0:
@@ -264,44 +266,17 @@ class DataPredictiveController(_CondensedCore):
 
         For fixed ``u`` the DeePC cost is a quadratic in ``g`` under the equalities ``E g = [u_past; 0]``,
         (``Yp g = y_past`` when hard) and ``Uf g = u``; its minimiser ``g*(u)`` is affine in ``u`` and the data
-        (null-space solution, computed once here), so the problem becomes an exactly equivalent QP in ``u`` of the
-        size of the indirect one. Returns None when the equalities are dependent or the reduced Hessian is not
-        positive definite (then the g-space fast path is used).
+        (computed once here: by structure for the projection regulariser's compressed blocks, else by the null
+        space, :mod:`._deepc_elimination`), so the problem becomes an exactly equivalent QP in ``u`` of the size of
+        the indirect one. Returns None when the equalities are dependent or the reduced Hessian is not positive
+        definite (then the g-space fast path is used).
         """
-        H, LY = self._deepc_hessian()
-        r, Nm = H.shape[0], N * m
-        hard = self._lam_y is None
-        fixed = np.vstack([self._E, self._Yp]) if hard else self._E
-        A = np.vstack([fixed, self._Uf])
-        # null-space method: g = A⁺b + Z w, w = (ZᵀHZ)⁻¹ Zᵀ(h − H A⁺ b); better conditioned than the KKT inverse
-        U_, sv, Vt = np.linalg.svd(A, full_matrices=True)
-        if sv.size == 0 or sv[-1] <= 1e-10 * sv[0] or sv.size < A.shape[0]:
-            return None  # dependent equalities (e.g. hard past outputs on exact data)
-        Z = Vt[A.shape[0]:].T
-        A_pinv = Vt[:A.shape[0]].T @ ((U_.T) / sv[:, None])
-        try:
-            c = sla.cho_factor(Z.T @ H @ Z)
-        except np.linalg.LinAlgError:
-            return None
-        S_Zt = sla.cho_solve(c, Z.T)
-        G_h = Z @ S_Zt
-        G_b = A_pinv - G_h @ (H @ A_pinv)
-        G_f, G_u = G_b[:, :fixed.shape[0]], G_b[:, fixed.shape[0]:]
-        Q_h = 2.0 * G_u.T @ (H @ G_h - np.eye(r))
-        GH = 2.0 * G_u.T @ H  # (2 G_uᵀ) H, shared by the two products below (evaluated in the same order as before)
-        # g = G_h h + G_f b + G_u u with h = LYᵀ r (+ λ_y Ypᵀ y_past): G_h folded into the maps of r and y_past
-        self._elim = {
-            "G_r": G_h @ LY.T, "G_y": None if hard else G_h @ (self._lam_y * self._Yp.T), "G_f": G_f, "G_u": G_u,
-            "Q_r": Q_h @ LY.T, "Q_f": GH @ G_f,
-            "Q_y": None if hard else Q_h @ (self._lam_y * self._Yp.T), "hard": hard,
-        }
-        P = GH @ G_u
-        self._elim["P"] = 0.5 * (P + P.T)
-        rows = self._box_rows(sp.eye(Nm, format="csr"))
-        if dense_solver_available() and _positive_definite(self._elim["P"]):  # exact, warm started
-            return _DenseQP(self._elim["P"], sp.vstack(rows[1:], format="csr").toarray() if len(rows) > 1 else None,
-                            Nm)
-        return _FastQP(sp.csc_matrix(self._elim["P"]), sp.vstack(rows, format="csc"), Nm)
+        if self._reduced is not None:
+            self._elim = self._reduced.elimination()
+        else:
+            H, LY = self._deepc_hessian()
+            self._elim = null_space_elimination(H, LY, self._E, self._Yp, self._Uf, self._lam_y)
+        return None if self._elim is None else eliminated_qp(self, self._elim["P"], N * m)
 
     def _solve_fast_eliminated(self, offsets, lb, ub, windows=None):
         eq, yp, rw = offsets
@@ -319,6 +294,8 @@ class DataPredictiveController(_CondensedCore):
         u, status, reason = qp.solve(q, lo, hi) if windows is None else qp.solve_budgeted(q, lo, hi, windows)
         if u is None:
             return None, None, status, reason
+        if "g_of" in e:
+            return u, e["g_of"](u, eq, yp, rw), status, ""
         g = e["G_r"] @ rw + e["G_f"] @ bf + e["G_u"] @ u
         if not e["hard"]:
             g += e["G_y"] @ yp
@@ -333,7 +310,10 @@ class DataPredictiveController(_CondensedCore):
 
     def _fast_deepc(self, N, m):
         """The QP over ``z = [g; s]`` with ``u = Uf g`` substituted: dense and warm started where it applies (the
-        soft output bounds held hard when that is their optimum, :class:`~.fastqp._DenseSoftQP`), else OSQP."""
+        soft output bounds held hard when that is their optimum, :class:`~.fastqp._DenseSoftQP`), else OSQP; on the
+        projection regulariser's reduced form, the QP over ``[u; ξ; t]`` (:mod:`._deepc_elimination`)."""
+        if self._reduced is not None:
+            return self._reduced.bounded_qp(self)
         r, nb = self._Up.shape[1], self._idx_b.size
         H, LY = self._deepc_hessian()
         self._LY = LY
@@ -413,6 +393,8 @@ class DataPredictiveController(_CondensedCore):
             res = self._solve_fast_eliminated(offsets, lb, ub, windows)
             if self._fast is self._fast_u or (res[0] is not None and self._outputs_kept(res[1])):
                 return res
+        if self._reduced is not None:
+            return self._reduced.solve_bounded(self, self._fast, offsets, lb, ub, windows)
         up, yp, rw = offsets
         r, nb = self._Up.shape[1], self._idx_b.size
         q = -2.0 * self._LY.T @ rw
