@@ -43,6 +43,9 @@ import scipy.sparse as sp
 
 from ...sysid.datadriven.kkt import _is_coordinate_projector, _is_lower
 from .fastqp import _DenseQP, _DenseSoftQP, _FastQP, _positive_definite, dense_solver_available
+from ...sysid._lazy import lazy_module
+
+cp = lazy_module("cvxpy")  # imported at the first plan that needs it (sysid/_lazy.py)
 
 __all__ = ["ProjectionReduced", "REDUCED_MIN_COLUMNS", "eliminated_qp", "null_space_elimination"]
 
@@ -128,7 +131,7 @@ class ProjectionReduced:
         S[np.diag_indices_from(S)] += 1.0
         self._S = sla.cho_factor(0.5 * (S + S.T))
         self._Ru2 = Ru.T @ Ru
-        self._range = None  # (R, U_k / √σ_k) of W, for the QP with output bounds (built where it is needed)
+        self._bform = None  # the problem with output bounds (bounded_form), built where it is needed
 
     @classmethod
     def of(cls, ctrl, blocks, N, m, p):
@@ -184,42 +187,76 @@ class ProjectionReduced:
         return np.concatenate([g1, self._Yf2.T @ t / self._lam_g])
 
     # ------------------------------------------------------------------------------------ with output bounds
-    def bounded_qp(self, ctrl):
-        """The QP over ``[u; ξ; t]`` (``t = κ·s`` the soft output rows' slack, as the g-space QP's): dense and warm
-        started where it applies (:class:`~.fastqp._DenseSoftQP`), else OSQP."""
+    def bounded_form(self, idx):
+        """The problem with soft bounds on the stacked outputs ``idx``, over ``z = [u; a]`` (built once).
+
+        ``ŷ = ŷ_ls(0) + F u + R ξ`` with ``R = U_k diag(√σ_k)``; the bounded rows see ``ξ`` through ``R[idx]`` only.
+        With ``ξ = V_b a + V_c c`` (``V_b`` an orthonormal basis of the row space of ``R[idx]``, ``V_c`` of its
+        complement), ``c`` is free of every constraint and is minimised out (its Hessian block is at least ``I``):
+        the QP keeps ``N m`` inputs and at most ``len(idx)`` coordinates ``a``, whatever the Hankel columns."""
+        key = np.asarray(idx, np.intp).tobytes()
+        if self._bform is not None and self._bform["key"] == key:
+            return self._bform
         sigma, U = np.linalg.eigh(self._W)
         keep = sigma > _RANGE_TOL * max(float(sigma[-1]), 1e-300)
         root = np.sqrt(sigma[keep])
-        R = U[:, keep] * root
-        self._range = (R, U[:, keep] / root)
-        Nm, k, nb = self._Nm, R.shape[1], ctrl._idx_b.size
-        G = np.hstack([self._F, R])
-        self._G = G
-        LG = self._Lz @ G
-        Hx = LG.T @ LG
-        Hx[:Nm, :Nm] += self._Ru2
-        Hx[Nm:, Nm:] += np.eye(k)
-        self._LG, n_x = LG, Nm + k
-        P = sp.block_diag([sp.csc_matrix(Hx + Hx.T), sp.csc_matrix((nb, nb))], format="csc")  # 2 Hx, symmetric
-        rows = ctrl._box_rows(sp.hstack([sp.eye(Nm), sp.csr_matrix((Nm, k + nb))], format="csr"))
+        R, to_t = U[:, keep] * root, U[:, keep] / root  # e = R ξ; v = Λ⁻¹ Bᵀ W⁺ e = Λ⁻¹ Bᵀ (to_t ξ)
+        Nm, k = self._Nm, R.shape[1]
+        Q, sv, _ = np.linalg.svd(R[idx].T, full_matrices=True)
+        kb = int(np.count_nonzero(sv > _RANGE_TOL * max(float(sv[0]), 1e-300))) if sv.size else 0
+        Vb, Vc = Q[:, :kb], Q[:, kb:]
+        LF, LR = self._Lz @ self._F, self._Lz @ R
+        LK = np.hstack([LF, LR @ Vb])  # Lz ŷ = Lz ŷ_ls(0) + LK z + (LR Vc) c
+        LC = LR @ Vc
+        HK = LK.T @ LK
+        HK[:Nm, :Nm] += self._Ru2
+        HK[Nm:, Nm:] += np.eye(kb)
+        Hcc = LC.T @ LC
+        Hcc[np.diag_indices_from(Hcc)] += 1.0
+        cf = sla.cho_factor(Hcc)
+        X = sla.cho_solve(cf, LC.T @ LK)  # c = −(X z + Y d), d = Lz ŷ_ls(0) − r
+        Y = sla.cho_solve(cf, LC.T)
+        H = HK - (LC.T @ LK).T @ X
+        # the cost less its constant, as zᵀ H z + 2 (LKᵀ − Xᵀ LCᵀ) d · z (c minimised out)
+        self._bform = {"key": key, "H": 0.5 * (H + H.T), "D": 2.0 * (LK.T - X.T @ LC.T), "X": X, "Y": Y,
+                       "Vb": Vb, "Vc": Vc, "to_t": to_t, "rows": np.hstack([self._F[idx], R[idx] @ Vb]),
+                       "n": Nm + kb}
+        return self._bform
+
+    def _bounded_g(self, z, eq, yp, d):
+        """``g`` of the answer ``z = [u; a]`` of the bounded form, ``d = Lz ŷ_ls(0) − r``."""
+        f, u = self._bform, z[:self._Nm]
+        c = -(f["X"] @ z + f["Y"] @ d)
+        return self._g(u, eq, yp, f["to_t"] @ (f["Vb"] @ z[self._Nm:] + f["Vc"] @ c))
+
+    def bounded_qp(self, ctrl):
+        """The QP over ``[z; t]`` (``t = κ·s`` the soft output rows' slack, as the g-space QP's): dense and warm
+        started where it applies (:class:`~.fastqp._DenseSoftQP`), else OSQP."""
+        f = self.bounded_form(ctrl._idx_b)
+        Nm, nb, n = self._Nm, ctrl._idx_b.size, f["n"]
+        at = {int(i): j for j, i in enumerate(ctrl._idx_b)}
+        P = sp.block_diag([sp.csc_matrix(2.0 * f["H"]), sp.csc_matrix((nb, nb))], format="csc")
+        rows = ctrl._box_rows(sp.hstack([sp.eye(Nm), sp.csr_matrix((Nm, n - Nm + nb))], format="csr"))
         if ctrl._idx_hi.size:
-            rows.append(sp.hstack([sp.csr_matrix(G[ctrl._idx_hi]), -ctrl._S_hi / ctrl._kappa]))
+            B = f["rows"][[at[int(i)] for i in ctrl._idx_hi]]
+            rows.append(sp.hstack([sp.csr_matrix(B), -ctrl._S_hi / ctrl._kappa]))
         if ctrl._idx_lo.size:
-            rows.append(sp.hstack([sp.csr_matrix(G[ctrl._idx_lo]), ctrl._S_lo / ctrl._kappa]))
+            B = f["rows"][[at[int(i)] for i in ctrl._idx_lo]]
+            rows.append(sp.hstack([sp.csr_matrix(B), ctrl._S_lo / ctrl._kappa]))
         if nb:
-            rows.append(sp.hstack([sp.csr_matrix((nb, n_x)), sp.eye(nb)]))
+            rows.append(sp.hstack([sp.csr_matrix((nb, n)), sp.eye(nb)]))
         A = sp.vstack(rows, format="csc")
-        osqp = _FastQP(P, A, n_x + nb)
-        self._u_sel = np.hstack([np.eye(Nm), np.zeros((Nm, k))])
-        return _DenseSoftQP.around(osqp, P, A, n_x) or osqp
+        osqp = _FastQP(P, A, n + nb)
+        self._u_sel = np.hstack([np.eye(Nm), np.zeros((Nm, n - Nm))])
+        return _DenseSoftQP.around(osqp, P, A, n) or osqp
 
     def solve_bounded(self, ctrl, qp, offsets, lb, ub, windows=None):
         """``(u, g, status, reason)`` of the QP with output bounds (as the g-space fast path's)."""
         eq, yp, rw = offsets
-        Nm, nb = self._Nm, ctrl._idx_b.size
+        f, nb = self._bform, ctrl._idx_b.size
         y0 = self._T_E @ eq + self._T_yp @ yp
-        q = np.concatenate([2.0 * self._LG.T @ (self._Lz @ y0 - rw),
-                            np.full(nb, float(ctrl.output_penalty) / ctrl._kappa)])
+        d = self._Lz @ y0 - rw
+        q = np.concatenate([f["D"] @ d, np.full(nb, float(ctrl.output_penalty) / ctrl._kappa)])
         lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
         if ctrl._slew_rows is not None:
             lo.append(-ctrl._slew_rows[1])
@@ -238,5 +275,44 @@ class ProjectionReduced:
                              else qp.solve_budgeted(q, lo, hi, windows, self._u_sel))
         if z is None:
             return None, None, status, reason
-        u, xi = z[:Nm], z[Nm:self._G.shape[1]]
-        return u, self._g(u, eq, yp, self._range[1] @ xi), status, ""  # v = Λ⁻¹ Bᵀ W⁺ R ξ
+        z = z[:f["n"]]
+        return z[:self._Nm], self._bounded_g(z, eq, yp, d), status, ""
+
+    # ------------------------------------------------------------------------------------ the cvxpy problem
+    def cvxpy_problem(self, ctrl):
+        """The bounded form in cvxpy (DPP): variables ``z = [u; a]``, the past through the least-squares free
+        response ``ŷ_ls(0)`` (a Parameter). Its optimal value is the g-space problem's (module docstring) less a
+        constant; the g-space one held ``r × r`` dense data (at ``r`` = 3,450: 89 s and a 17 GB peak for one
+        plan)."""
+        f = self.bounded_form(ctrl._idx_b)
+        at = {int(i): j for j, i in enumerate(ctrl._idx_b)}
+        z = cp.Variable(f["n"], name="inputs_and_output_freedom")
+        ctrl._u, self._z = z[:self._Nm], z
+        self._y0 = cp.Parameter(f["rows"].shape[0], name="least_squares_free_response_bounded")
+        self._q = cp.Parameter(f["n"], name="linear_cost")
+        ctrl._cost_scale_parameters()
+        cost = ctrl._sw2 * cp.quad_form(z, cp.psd_wrap(f["H"])) + self._q @ z  # divided by σ
+
+        def bounded(idx):
+            j = [at[int(i)] for i in idx]
+            return f["rows"][j] @ z + self._y0[j]
+
+        more, ctrl._slack_var = ctrl._common_constraints(ctrl._u, bounded, ctrl._ymax[ctrl._idx_hi],
+                                                         ctrl._ymin[ctrl._idx_lo])
+        if ctrl._slack_var is not None:
+            cost = cost + ctrl._sw2 * (float(ctrl.output_penalty) * cp.sum(ctrl._slack_var))
+        return cp.Problem(cp.Minimize(cost), more)
+
+    def assign(self, ctrl, offsets):
+        """The cvxpy problem's Parameters for the g-space offsets ``(eq, y_past, r)``."""
+        eq, yp, rw = offsets
+        y0 = self._T_E @ eq + self._T_yp @ yp
+        d = self._Lz @ y0 - rw
+        self._y0.value = y0[ctrl._idx_b] if ctrl._idx_b.size else np.zeros(0)
+        self._q.value = ctrl._cost_sw ** 2 * (self._bform["D"] @ d)
+        self._offsets = (eq, yp, d)
+
+    def aux_value(self, ctrl):
+        """``g`` of the cvxpy problem's answer."""
+        eq, yp, d = self._offsets
+        return self._bounded_g(np.asarray(self._z.value, np.float64), eq, yp, d)

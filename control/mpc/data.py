@@ -208,7 +208,10 @@ class DataPredictiveController(_CondensedCore):
                 self._fast = self._fast_deepc(N, m)
 
     def _deepc_problem(self):
-        """The cvxpy problem of DeePC (DPP), built at its first use (:class:`~._cone_solve.LazyProblem`)."""
+        """The cvxpy problem of DeePC (DPP), built at its first use (:class:`~._cone_solve.LazyProblem`); on the
+        projection regulariser's reduced form where it applies (:mod:`._deepc_elimination`)."""
+        if self._reduced is not None:
+            return self._reduced.cvxpy_problem(self)
         N, m, p, r = self.horizon_steps_, self.n_inputs_, self.n_outputs_, self._Up.shape[1]
         g = self._g = cp.Variable(r, name="hankel_weights")
         u = self._u = cp.Variable(N * m, name="inputs_ua")
@@ -368,6 +371,8 @@ class DataPredictiveController(_CondensedCore):
     def _assign(self, offsets):
         if self.method_ == "spc":
             return super()._assign(offsets)
+        if self._reduced is not None:
+            return self._reduced.assign(self, offsets)
         up, yp, rw = offsets
         self._up.value, self._yp.value, self._rw.value = up, yp, self._cost_sw * rw
         self._yp_cost.value = self._cost_sw * yp
@@ -380,6 +385,8 @@ class DataPredictiveController(_CondensedCore):
         return float(rw @ rw) + (0.0 if self._lam_y is None else self._lam_y * float(yp @ yp))
 
     def _aux_value(self):
+        if self._reduced is not None:
+            return self._reduced.aux_value(self)
         return None if self.method_ == "spc" else np.array(self._g.value)
 
     def _solve_fast(self, offsets, lb, ub, windows=None):

@@ -63,6 +63,8 @@ def test_the_input_only_qp_is_the_null_space_routes(fitted, monkeypatch, past_we
     assert new._hessian is None  # no r × r Hessian of g was formed
     for key in ("P", "Q_r", "Q_f") + (("Q_y",) if past_weight is None else ()):
         _close(new._elim[key], old._elim[key])
+    # the form with output bounds, on no bounded row, is the input-only QP (a second derivation of the same maps)
+    _close(2.0 * new._reduced.bounded_form(np.zeros(0, np.intp))["H"], old._elim["P"])
     a, b = new.plan(u, y, target=[1.0, 0.5]), old.plan(u, y, target=[1.0, 0.5])
     assert a.ok and b.ok
     _close(a.inputs, b.inputs)
@@ -71,10 +73,11 @@ def test_the_input_only_qp_is_the_null_space_routes(fitted, monkeypatch, past_we
         assert a.cost_terms[key] == pytest.approx(value, rel=1e-8, abs=1e-12)
 
 
-@pytest.mark.parametrize("bound, budget", [(0.3, None), (0.3, 2.0), (50.0, 2.0)])
+@pytest.mark.parametrize("bound, budget", [(0.3, None), (0.3, 0.5), (50.0, 0.5), (None, None)])
 def test_plans_with_output_bounds_equal_the_g_space_qps_and_cvxpys(fitted, monkeypatch, bound, budget):
     _, pred, u, y, _ = fitted
-    lim = _limits(output_max=[bound, np.inf], output_min=[-np.inf, -0.2], energy_budget_ua2=budget)
+    bounds = {} if bound is None else dict(output_max=[bound, np.inf], output_min=[-np.inf, -0.2])
+    lim = _limits(energy_budget_ua2=budget, **bounds)
     new = _controller(pred, lim, True, monkeypatch)
     old = _controller(pred, lim, False, monkeypatch)
     target = [1.0, 0.5]
@@ -83,12 +86,20 @@ def test_plans_with_output_bounds_equal_the_g_space_qps_and_cvxpys(fitted, monke
     _close(a.inputs, b.inputs, 1e-7)
     _close(a.predicted_outputs, b.predicted_outputs, 1e-7)
     assert a.cost_terms["total"] == pytest.approx(b.cost_terms["total"], rel=1e-8)
-    if bound < 1:
+    if bound is not None and bound < 1:
         assert a.active_limits["output_bounds"].any()
-    c = new.plan(u, y, target=target, use_fast_path=False)  # Coulson et al.'s problem in g, by cvxpy
-    assert c.ok and "cvxpy" in c.solver
-    np.testing.assert_allclose(a.inputs, c.inputs, atol=2e-4)
-    assert a.cost_terms["total"] == pytest.approx(c.cost_terms["total"], rel=1e-6)
+    assert bool(np.any(a.active_limits["energy_budget"])) == (budget is not None)  # the budget binds: the budget SQP
+    c = old.plan(u, y, target=target, use_fast_path=False)  # Coulson et al.'s problem in g, by cvxpy
+    d = new.plan(u, y, target=target, use_fast_path=False)  # the reduced problem, by cvxpy
+    assert c.ok and d.ok and "cvxpy" in c.solver and "cvxpy" in d.solver and new.problem_.is_dpp()
+    r = pred.data_blocks().Up.shape[1]  # no variable of the Hankel columns' size in the reduced problem
+    assert max(v.size for v in new.problem_.variables()) < r == max(v.size for v in old.problem_.variables())
+    for plan in (a, d):
+        np.testing.assert_allclose(plan.inputs, c.inputs, atol=2e-4)
+        assert plan.cost_terms["total"] == pytest.approx(c.cost_terms["total"], rel=1e-6)
+        np.testing.assert_allclose(plan.predicted_outputs, c.predicted_outputs, atol=2e-4)
+        for key in ("past_consistency", "regularizer"):  # g recovered from the reduced answer
+            assert plan.cost_terms[key] == pytest.approx(c.cost_terms[key], rel=1e-4, abs=1e-8)
 
 
 def test_the_reported_weights_give_the_predicted_outputs(fitted, monkeypatch):
