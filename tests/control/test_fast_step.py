@@ -110,7 +110,8 @@ def test_controllers_the_fast_step_cannot_reproduce_are_refused(setup):
 
 
 # ------------------------------------------------------------------------------------------------ the direct route
-def _direct_controller(kind, centre=False, slack=None):
+def _direct_controller(kind, centre=False, slack=None, reduced=False):
+    from stimsteer.control.mpc import _deepc_elimination
     from stimsteer.sysid import HankelPredictor, LsqPredictor, Session
 
     rng = np.random.default_rng(11)
@@ -125,17 +126,21 @@ def _direct_controller(kind, centre=False, slack=None):
             HankelPredictor(past_steps=4, horizon_steps=8, lambdas_g=(1e-3,), centre_outputs=centre))
     # tight interior-point tolerances: the reference must be closer to the optimum than the 1e-6 compared
     tight = {"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12, "tol_feas": 1e-12}
-    ctrl = DataPredictiveController(predictor=pred.fit(session), limits=LIM, horizon_steps=6, input_weight=1e-2,
-                                    past_slack_weight=slack, solver_options=tight).fit()
-    assert ctrl.method_ == kind
+    with pytest.MonkeyPatch.context() as mp:  # DeePC's reduced form (projection regulariser) at any size
+        mp.setattr(_deepc_elimination, "REDUCED_MIN_COLUMNS", 0 if reduced else 10**9)
+        ctrl = DataPredictiveController(predictor=pred.fit(session), limits=LIM, horizon_steps=6, input_weight=1e-2,
+                                        past_slack_weight=slack, solver_options=tight).fit()
+    assert ctrl.method_ == kind and (ctrl._reduced is not None) == reduced
     return ctrl, y
 
 
-@pytest.mark.parametrize("kind,centre,slack", [("spc", False, None), ("spc", True, None), ("deepc", False, None),
-                                               ("deepc", True, None), ("deepc", False, np.inf)])
-def test_the_direct_fast_step_equals_the_cvxpy_plan_where_limits_bind(kind, centre, slack):
+@pytest.mark.parametrize("kind,centre,slack,reduced", [
+    ("spc", False, None, False), ("spc", True, None, False), ("deepc", False, None, False),
+    ("deepc", True, None, False), ("deepc", False, np.inf, False), ("deepc", False, None, True),
+    ("deepc", True, None, True), ("deepc", False, np.inf, True)])
+def test_the_direct_fast_step_equals_the_cvxpy_plan_where_limits_bind(kind, centre, slack, reduced):
     # outside check: the cvxpy problem solved by CLARABEL (interior point), a different algorithm
-    ctrl, y_data = _direct_controller(kind, centre, slack)
+    ctrl, y_data = _direct_controller(kind, centre, slack, reduced)
     if kind == "deepc" and slack is not None and ctrl._elim is None:
         pytest.skip("hard past outputs on these data give dependent equalities")
     step = FastStep(ctrl)
