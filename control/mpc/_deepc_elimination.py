@@ -35,7 +35,7 @@ are ``ŷ = Θ w + Yf2 g2`` with ``Θ = Yf1 D1⁻¹`` (the least-squares map) and
   variable per bounded output value, for the fast path and for the cvxpy problem alike.
 
 At past 100 / horizon 50 (``r`` = 3,450, ``pN`` = 1,000), ``stimsteer plan`` with the demo's limits took 15–18 s
-and 1.46 GB by the null space, 2.3 s and 0.58 GB by this form (``benchmarks/bench_cli_fit.py --plan``); a plan by
+and 1.46 GB by the null space, 3.0–3.1 s and 0.57 GB by this form (``benchmarks/bench_cli_fit.py --plan``); a plan by
 the cvxpy problem 89 s and 17 GB in ``g``, 1.0 s and 0.8 GB here (the lead's timing of one plan).
 
 With hard past outputs (``λ_y = ∞``) ``ŷp = y_past`` and ``B = Yf2``. ``g`` itself is recovered for each plan (its

@@ -113,3 +113,36 @@ def test_the_recruitment_route_takes_part_in_the_benchmark_when_named():
                                    past_steps=2, horizon_steps=5, train_trials=(), noise_scales=(), control=None)
     fits = run_bench(session, settings, n_workers=1, progress=False).tables()["fits"]
     assert set(fits["method"]) == {"hammerstein", "lsq"} and (fits["status"] == "ok").all()
+
+
+@pytest.mark.parametrize("past", [1, 4])
+def test_a_large_design_streams_the_same_regression(monkeypatch, past):
+    # the over-parametrised ridge regression by RidgeArx's streamed normal equations (designs above _DESIGN_MAX
+    # entries) against the design solved directly (LAPACK's gelsd on the augmented design): the same problem
+    import stimsteer.sysid.hammerstein as hammerstein
+
+    one = _session(SATURATING, noise=0.05)
+    rng = np.random.default_rng(7)  # a second site, so that the sites' and knots' order is checked too
+    u2 = np.repeat(rng.uniform(0.0, 2.0, size=(240, 1)), 5, axis=0)
+    y = one.y + np.column_stack([np.convolve(u2[:, 0] ** 2, [0.0, 0.3, 0.1])[:1200], np.zeros(1200)])
+    session = one.replace(u=np.hstack([one.u, u2]), y=y, input_names=("site", "other"), input_units=("uA", "uA"))
+    est = HammersteinArx(past_steps=past, alpha=1e-4)
+    L, K, segs, knots = est._check(session)
+    direct, direct_fit = est._overparametrised(session, segs, knots, L), est.fit(session).raw_values_
+    monkeypatch.setattr(hammerstein, "_DESIGN_MAX", 0)
+    streamed = est._overparametrised(session, segs, knots, L)
+    # tolerance: the author's margin over the normal equations' rounding (condition number below 1e4 here)
+    np.testing.assert_allclose(streamed, direct, rtol=0, atol=1e-9 * np.abs(direct).max())
+    np.testing.assert_allclose(est.fit(session).raw_values_, direct_fit, rtol=0, atol=1e-9)
+
+
+def test_the_streamed_regression_recovers_a_piecewise_linear_recruitment(monkeypatch):
+    # as the exact-recovery test above (Bai 1998) through the streamed route: noise-free data, a strength small
+    # enough to leave the knot values within the tolerance (the author's margin)
+    import stimsteer.sysid.hammerstein as hammerstein
+
+    monkeypatch.setattr(hammerstein, "_DESIGN_MAX", 0)
+    est = HammersteinArx(past_steps=1, alpha=1e-8).fit(_session(SATURATING))
+    scale = (KNOTS[-1] - KNOTS[0]) / (SATURATING[-1] - SATURATING[0])
+    np.testing.assert_allclose(est.recruitment_.values[0], scale * SATURATING, atol=1e-6)
+    assert est.monotone_
