@@ -135,6 +135,9 @@ _SHOWN_ROWS = 10
 def _selection_text(result) -> str:
     """The selection table (its best rows when long, the selected row always) and the selection notes."""
     table = result.selection_table
+    if table is None or table.empty:  # a method with nothing to choose among (pandas would print its empty repr)
+        return "\n".join(["  none: this method fits its settings as given"]
+                         + [f"note: {n}" for n in result.selection_notes])
     shown = table
     if len(table) > _SHOWN_ROWS:
         keep = set(range(_SHOWN_ROWS))

@@ -57,6 +57,15 @@ def test_fit_prints_selection_and_heldout_scores(capsys, model_file):  # capsys 
     assert predictor.past_steps_ == 2
 
 
+def test_a_method_with_nothing_to_select_says_so(session_file, tmp_path, capsys):
+    out_file = tmp_path / "rls.h5"
+    assert main(["fit", str(session_file), "--route", "indirect", "--method", "recursive", "--out", str(out_file),
+                 "--past-steps", "2", "--horizon-steps", "5"]) == 0
+    out = capsys.readouterr().out
+    assert "selection (training trials only):\n  none: this method fits its settings as given\n" in out
+    assert "Empty DataFrame" not in out
+
+
 def test_fit_subspace(session_file, tmp_path, capsys):
     out = tmp_path / "sub.h5"
     assert main(["fit", str(session_file), "--route", "indirect", "--method", "subspace", "--out", str(out),
