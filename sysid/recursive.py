@@ -10,8 +10,11 @@ eqs. 11.13–11.15 with the weights ``λ^{N−t}``)::
 
 started from ``θ_0 = 0`` and ``P_0 = I/α``. After ``N`` rows this is exactly the minimiser of
 ``Σ_t λ^{N−t} ‖y_t − θᵀφ_t‖² + λ^N α ‖θ‖²``; with ``λ = 1`` it is the batch ridge solution with strength ``α``
-(the intercept penalised like every coefficient). Rows are taken in time order over the valid segments, never
-across a trial boundary or a masked sample. The model after each trial is kept (``coef_path_``): the sequence
+(the intercept penalised like every coefficient). The fit runs the recursion in its information form
+(``R_t = λ R_{t−1} + φ_t φ_tᵀ``, ``r_t = λ r_{t−1} + φ_t y_tᵀ``, ``θ_t = R_t⁻¹ r_t``, :func:`_weigh_in`), rows by
+blocks and ``θ`` solved where it is kept: the same numbers where the row-by-row form keeps its accuracy, and the
+criterion's minimiser where it does not (strong forgetting). Rows are taken in time order over the valid segments,
+never across a trial boundary or a masked sample. The model after each trial is kept (``coef_path_``): the sequence
 shows how the dynamics drift over the session.
 
 References
