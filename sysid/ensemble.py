@@ -26,6 +26,7 @@ import dataclasses
 import numpy as np
 
 from ._base import BasePredictor, check_fitted
+from ._progress import progress
 from .exceptions import InvalidParameterError, SessionError
 from .protocols import LinearPredictor, PredictionMaps
 from .registry import METHODS
@@ -168,12 +169,14 @@ class BootstrapEnsemble(BasePredictor):
         settings = dict(self.method_settings or {})
         if self.past_steps is not None:
             settings.setdefault("past_steps", self.past_steps)
-        for draw in draws:
-            est = make_estimator(*route, settings)
-            members.append(est.fit(resample_trials(session, draw)))
-            oob = np.setdiff1d(np.arange(session.n_trials), draw)
-            if oob.size:
-                errors.append(_oob_errors(members[-1], session.select_trials(oob), H))
+        with progress(B, f"bootstrap members ({route[0]}/{route[1]})", unit="member") as bar:
+            for draw in draws:
+                est = make_estimator(*route, settings)
+                members.append(est.fit(resample_trials(session, draw)))
+                oob = np.setdiff1d(np.arange(session.n_trials), draw)
+                if oob.size:
+                    errors.append(_oob_errors(members[-1], session.select_trials(oob), H))
+                bar.update()
         errors = [e for e in errors if e.size]
         if not errors:
             raise SessionError("no bootstrap member left a trial out of bag to measure its errors; use more trials.")

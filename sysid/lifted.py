@@ -32,6 +32,7 @@ import pandas as pd
 import scipy.linalg as sla
 
 from ._base import BasePredictor, check_fitted
+from ._progress import progress
 from ._lift_features import DICTIONARIES, Dictionary, draw_dictionary, source_dim, windows
 from .exceptions import InvalidParameterError, SessionError
 from .statespace import markov_toeplitz
@@ -281,26 +282,32 @@ class LiftedPredictor(BasePredictor):
 
     def _cross_validate(self, per_trial, folds, combos, alphas, T, H, m, p):
         records = []
-        for n, w in combos:
-            scores = np.zeros((len(folds), len(alphas)))
-            counted = np.zeros(len(folds), bool)
-            for k, fold in enumerate(folds):
-                train = _transitions([s for i, segs in enumerate(per_trial) if i not in fold for s in segs], T)
-                valid = [s for i, segs in enumerate(per_trial) if i in fold for s in segs if len(s[0]) >= T + H]
-                if train is None or not valid:
-                    continue
-                dic = draw_dictionary(self.dictionary, train[1], n, w, self.seed)
-                X = np.hstack([train[0], dic(train[1]), train[2]])
-                Y = np.hstack([train[3], dic(train[4])])
-                counted[k] = True
-                windows_ = _validation_windows(dic, valid, T, H)
-                for j, (theta, b) in enumerate(_ridge_path(X, Y, alphas)):
-                    A, B, C = _lifted_matrices(theta, b, T, m, p, dic.n_features)
-                    scores[k, j] = _validation_nmse(A, B, C, *windows_)
-            for j, a in enumerate(alphas):
-                value = float(np.mean(scores[counted, j])) if counted.any() else np.nan
-                records.append({"n_features": n, "bandwidth": w, "alpha": a, "cv_nmse": value})
+        with progress(len(combos) * len(folds), "cross-validation of the lifted predictor", unit="fit") as bar:
+            for n, w in combos:
+                records += self._cross_validate_one(per_trial, folds, n, w, alphas, T, H, m, p, bar)
         return pd.DataFrame(records)
+
+    def _cross_validate_one(self, per_trial, folds, n, w, alphas, T, H, m, p, bar):
+        """The held-out errors of one dictionary (size ``n``, bandwidth ``w``) at every strength, fold by fold."""
+        scores = np.zeros((len(folds), len(alphas)))
+        counted = np.zeros(len(folds), bool)
+        for k, fold in enumerate(folds):
+            train = _transitions([s for i, segs in enumerate(per_trial) if i not in fold for s in segs], T)
+            valid = [s for i, segs in enumerate(per_trial) if i in fold for s in segs if len(s[0]) >= T + H]
+            bar.update()
+            if train is None or not valid:
+                continue
+            dic = draw_dictionary(self.dictionary, train[1], n, w, self.seed)
+            X = np.hstack([train[0], dic(train[1]), train[2]])
+            Y = np.hstack([train[3], dic(train[4])])
+            counted[k] = True
+            windows_ = _validation_windows(dic, valid, T, H)
+            for j, (theta, b) in enumerate(_ridge_path(X, Y, alphas)):
+                A, B, C = _lifted_matrices(theta, b, T, m, p, dic.n_features)
+                scores[k, j] = _validation_nmse(A, B, C, *windows_)
+        return [{"n_features": n, "bandwidth": w, "alpha": a,
+                 "cv_nmse": float(np.mean(scores[counted, j])) if counted.any() else np.nan}
+                for j, a in enumerate(alphas)]
 
     def _fit_final(self, rows, n, w, a, T, m, p):
         dic = draw_dictionary(self.dictionary, rows[1], n, w, self.seed)

@@ -89,3 +89,10 @@ def test_the_bootstrap_needs_two_trials_and_a_known_method(split):
         BootstrapEnsemble(method="arx", method_settings=ARX, n_members=3).fit(one)
     with pytest.raises(InvalidParameterError, match="registered method"):
         BootstrapEnsemble(method="nope").fit(split[0])
+
+
+def test_the_members_show_their_progress_on_a_terminal(split, capsys, monkeypatch):
+    monkeypatch.setenv("STIMSTEER_PROGRESS", "1")
+    BootstrapEnsemble(method="arx", method_settings=ARX, n_members=3, seed=2).fit(split[0])
+    err = capsys.readouterr().err
+    assert "stimsteer bootstrap members (indirect/arx)" in err and "/3 " in err

@@ -75,3 +75,11 @@ def test_the_lifted_method_works_through_fit_predict_and_plan(session, tmp_path,
     plan = pd.read_csv(tmp_path / "plan" / "plan.csv", comment="#")
     assert np.all(plan.filter(like="in:site").to_numpy() <= 1.5 + 1e-9)
     assert np.all(plan.filter(like="in:site").to_numpy() >= -1.0 - 1e-9)
+
+
+def test_the_cross_validation_shows_its_progress_on_a_terminal(session, capsys, monkeypatch):
+    # one bar step per dictionary and fold: 2 dictionaries (sizes 0 and 10, one bandwidth) x 3 folds
+    monkeypatch.setenv("STIMSTEER_PROGRESS", "1")
+    LiftedPredictor(past_steps=2, feature_grid=(0, 10), bandwidths=(1.0,), alphas=(1e-6,)).fit(session)
+    err = capsys.readouterr().err
+    assert "stimsteer cross-validation of the lifted predictor" in err and "/6 " in err
