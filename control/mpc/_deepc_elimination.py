@@ -35,8 +35,9 @@ are ``ŷ = Θ w + Yf2 g2`` with ``Θ = Yf1 D1⁻¹`` (the least-squares map) and
   variable per bounded output value, for the fast path and for the cvxpy problem alike.
 
 At past 100 / horizon 50 (``r`` = 3,450, ``pN`` = 1,000), ``stimsteer plan`` with the demo's limits took 15–18 s
-and 1.46 GB by the null space, 3.0–3.1 s and 0.57 GB by this form (``benchmarks/bench_cli_fit.py --plan``); a plan by
-the cvxpy problem 89 s and 17 GB in ``g``, 1.0 s and 0.8 GB here (the lead's timing of one plan).
+and 1.46 GB by the null space, 3.0–3.1 s and 0.57 GB by this form (``benchmarks/bench_cli_fit.py --plan``); one
+plan by the cvxpy problem took 97 s and 17.1 GB in ``g``, 1.1 s and 0.75 GB here (``benchmarks/bench_deepc_plan.py
+--weights``).
 
 With hard past outputs (``λ_y = ∞``) ``ŷp = y_past`` and ``B = Yf2``. ``g`` itself is recovered for each plan (its
 regulariser and slack terms are reported): ``g1 = D1⁻¹ w`` by one triangular solve.
