@@ -333,7 +333,19 @@ class RidgeArx(BasePredictor):
         self.innovation_cov_ = np.asarray(innovation_cov, dtype=np.float64)
         self.past_steps_ = prob.L
         self.max_horizon_steps_ = None
-        self.model_ = self._realise()
+        self.__dict__.pop("_model", None)  # model_ is realised from these coefficients at its first use
+
+    @property
+    def model_(self) -> StateSpaceModel:
+        """The shift-register realisation, made at the first use and kept (it is ``(p·na + m·nb)²`` numbers: 42 MB at
+        past 100 of 3 sites and 20 outputs, which predictions and prediction maps do not need; the bootstrap's
+        members each held one)."""
+        model = self.__dict__.get("_model")
+        if model is None:
+            if "coef_" not in self.__dict__:
+                raise AttributeError("model_: this RidgeArx is not fitted")
+            model = self.__dict__["_model"] = self._realise()
+        return model
 
     # -------------------------------------------------------------------------------------------- structure
     @property

@@ -63,6 +63,22 @@ def test_recovers_noise_free_arx_exactly(rng):
     assert est.past_steps_ == 2 and est.max_horizon_steps_ is None
 
 
+def test_the_realisation_is_made_at_its_first_use_and_kept(rng):
+    s = multi_trial_session(rng)
+    assert not hasattr(RidgeArx(), "model_")  # unfitted: no realisation (and hasattr does not raise)
+    est = RidgeArx(output_lags=2, input_lags=2, delay_samples=1, alphas=[0.0]).fit(s)
+    est.predict(s.u[:2], s.y[:2], s.u[2:9])
+    est.prediction_maps(2, 7)
+    assert "_model" not in vars(est)  # predictions and maps run on the coefficients
+    model = est.model_
+    assert est.model_ is model and est.state_space_model().n_states == 8
+    # the realisation of the fitted coefficients, as arx_to_state_space makes it (the companion form)
+    ref = arx_to_state_space(est.ar_coefs_, est.input_coefs_, 1)
+    np.testing.assert_array_equal(model.A, ref.A)
+    est.fit(multi_trial_session(rng, noise=0.1))
+    assert "_model" not in vars(est) and est.model_ is not model  # a refit drops the old realisation
+
+
 def test_recovers_intercept(rng):
     c = np.array([2.0, -1.0])
     est = RidgeArx(output_lags=2, input_lags=2, alphas=[0.0]).fit(multi_trial_session(rng, c=c))
