@@ -265,5 +265,10 @@ def _weigh_in(R, r, X, Y, lam):
 
 
 def _solve_information(R, r):
-    """``θ = R⁻¹ r`` (Cholesky; ``R`` holds ``λ^N α I`` and is positive definite)."""
-    return sla.cho_solve(sla.cho_factor(0.5 * (R + R.T)), r)
+    """``θ = R⁻¹ r``: by Cholesky (``R`` holds ``λ^N α I`` and is positive definite), else, where strong forgetting
+    has let that term underflow and the rows leave a direction unexcited, the least-squares solution of least norm
+    (the row-by-row recursion's ``P`` grows without bound there)."""
+    try:
+        return sla.cho_solve(sla.cho_factor(0.5 * (R + R.T)), r)
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(R, r, rcond=None)[0]

@@ -101,3 +101,20 @@ def test_the_row_by_row_recursion_loses_accuracy_that_the_information_form_keeps
     w = 0.9 ** (len(X) - 1 - np.arange(len(X)))
     ref = np.linalg.solve(0.9 ** len(X) * 0.3 * np.eye(X.shape[1]) + (X * w[:, None]).T @ X, (X * w[:, None]).T @ Y)
     assert np.abs(est.coef_path_[2] - ref).max() < 1e-12 < 1e-6 < np.abs(_ljung_rls(X, Y, 0.3, 0.9) - ref).max()
+
+
+def test_an_unexcited_direction_after_strong_forgetting_gives_the_least_norm_model():
+    # λ^N α underflows (λ = 0.5 over 1,200 rows) and the second input never moves: R is singular, and the model is
+    # the least-squares solution of least norm (numpy's lstsq, the outside reference) instead of an error
+    from stimsteer.sysid import Session
+
+    rng = np.random.default_rng(4)
+    u = np.column_stack([rng.normal(size=1200), np.zeros(1200)])
+    y = np.convolve(u[:, 0], [0.0, 0.5, 0.2])[:1200, None] + 0.01 * rng.normal(size=(1200, 1))
+    session = Session(u=u, y=y, sample_rate_hz=100.0, trials=[(0, 600), (600, 1200)])
+    est = RecursiveRidgeArx(output_lags=1, input_lags=2, alpha=1e-3, forgetting=0.5).fit(session)
+    X, Y = (np.vstack(parts) for parts in zip(*[arx_rows(*session.read(a, b)[:2], 1, 2) for a, b in session.trials]))
+    w = 0.5 ** (len(X) - 1 - np.arange(len(X)))
+    R, r = (X * w[:, None]).T @ X, (X * w[:, None]).T @ Y
+    np.testing.assert_allclose(est.coef_, np.linalg.lstsq(R, r, rcond=None)[0], atol=1e-8)
+    assert np.all(np.isfinite(est.coef_path_))
