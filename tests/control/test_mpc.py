@@ -463,7 +463,19 @@ def _property_controllers(rng):
     lim2 = StimLimits(amplitude_min_ua=[-2.0, -0.5, 0.0], amplitude_max_ua=[2.0, 0.5, 3.0],
                       slew_max_ua=[0.3, np.inf, 0.7], energy_budget_ua2=4.0, pulse_width_us=200.0,
                       electrode_area_cm2=[1.0, 1.0, 1e-7])
+    # DeePC on its reduced form (the projection regulariser, here at any size) on noisy data (an invertible factor)
+    from stimsteer.control.mpc import _deepc_elimination
+
+    noisy = _noise_free_session(rng, m1)
+    noisy = noisy.replace(y=noisy.y + 0.05 * rng.normal(size=noisy.y.shape))
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(_deepc_elimination, "REDUCED_MIN_COLUMNS", 0)
+        lim4 = _limits(output_max=[0.2, np.inf], energy_budget_ua2=2.0)
+        reduced = DataPredictiveController(predictor=HankelPredictor(past_steps=3, horizon_steps=4).fit(noisy),
+                                           limits=lim4, input_weight=1e-2).fit()
+    assert reduced._reduced is not None
     return [
+        (reduced, lim4),
         (ModelPredictiveController(model=m1, limits=lim1, horizon_steps=4, input_weight=1e-3).fit(), lim1),
         (ModelPredictiveController(model=m1, limits=lim1.aligned(m1.input_names, m1.output_names),
                                    horizon_steps=3, terminal_weight="riccati", formulation="sparse").fit(), lim1),
