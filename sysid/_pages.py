@@ -31,10 +31,14 @@ _MADV_DONTNEED = 4  # Linux <sys/mman.h>
 def _libc():
     if not sys.platform.startswith("linux"):  # pragma: no cover - other systems
         return None
-    try:
-        return ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
-    except OSError:  # pragma: no cover - no libc
-        return None
+    # glibc's soname first: ctypes.util.find_library runs `ldconfig -p` in a child process (about 10 ms at every
+    # import, and a child a test waiting for the command's own workers could take for them)
+    for name in ("libc.so.6", None):
+        try:
+            return ctypes.CDLL(name or ctypes.util.find_library("c"), use_errno=True)
+        except (OSError, TypeError):  # pragma: no cover - another C library, or none
+            continue
+    return None  # pragma: no cover
 
 
 def _function(libc, name: str, argtypes, restype):

@@ -266,7 +266,11 @@ def test_a_second_bench_on_the_same_folder_is_refused_before_computing(shipped, 
     out = tmp_path / "report"
     first = start_cli(*_bench_argv(shipped, out, "--workers", 2), cwd=tmp_path)
     try:
-        _wait_for(lambda: _descendants(first.pid) or first.poll() is not None, 60.0)  # its workers compute
+        # its workers compute: they start after its claim on the folder (children before it, such as the `uname`
+        # h5py runs at import, are not its workers; holding it there let the second run claim first: 1 failure in a
+        # full run, 2026-12-05)
+        claim = out.parent / f".{out.name}.claim"
+        _wait_for(lambda: (claim.exists() and _descendants(first.pid)) or first.poll() is not None, 60.0)
         assert first.poll() is None, "the first bench ended too soon for this test"
         # held where it is (stopped) while the second runs: the first has claimed the folder and cannot finish
         # meanwhile, however fast the bench has become (it took 5 s here and ended before a second run started
