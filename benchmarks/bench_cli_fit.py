@@ -59,10 +59,17 @@ def _command() -> list:
 
 
 def run(args: list, timeout: float) -> dict:
-    """One command in a fresh process: wall and CPU seconds, peak resident MB (``ru_maxrss``), exit code."""
+    """One ``stimsteer`` command in a fresh process: wall and CPU seconds, peak resident MB (``ru_maxrss``), exit
+    code."""
+    return measured(_command() + [str(a) for a in args], timeout)
+
+
+def measured(cmd: list, timeout: float, stdout=subprocess.DEVNULL) -> dict:
+    """``cmd`` in a fresh process, killed after ``timeout`` seconds (``{"killed": True}``): wall and CPU seconds,
+    peak resident MB (``ru_maxrss`` from ``os.wait4``), exit code, the last line of standard error and, with
+    ``stdout=subprocess.PIPE``, the standard output (a few lines: the pipe is read once the process has ended)."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(_command() + [str(a) for a in args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-                            env={**os.environ, "STIMSTEER_PROGRESS": "0"})
+    proc = subprocess.Popen(cmd, stdout=stdout, stderr=subprocess.PIPE, env={**os.environ, "STIMSTEER_PROGRESS": "0"})
     deadline = t0 + timeout
     while True:
         pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
@@ -76,8 +83,12 @@ def run(args: list, timeout: float) -> dict:
     wall = time.perf_counter() - t0
     err = proc.stderr.read().decode(errors="replace").strip().splitlines() if proc.stderr else []
     proc.stderr.close()
+    out = ""
+    if proc.stdout is not None:
+        out = proc.stdout.read().decode(errors="replace")
+        proc.stdout.close()
     return {"seconds": wall, "cpu_s": usage.ru_utime + usage.ru_stime, "peak_mb": usage.ru_maxrss / 1024,
-            "code": os.waitstatus_to_exitcode(status), "last_error": err[-1] if err else ""}
+            "code": os.waitstatus_to_exitcode(status), "last_error": err[-1] if err else "", "stdout": out}
 
 
 def _row(label: str, r: dict, size: str) -> str:

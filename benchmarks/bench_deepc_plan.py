@@ -38,6 +38,7 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_cli_fit import measured  # noqa: E402  (one fresh process, its peak memory)
 
 
 def _case(model: str, route: str, path: str, out: str) -> None:
@@ -65,23 +66,13 @@ def _case(model: str, route: str, path: str, out: str) -> None:
 
 
 def _run(model, route, path, out, timeout):
-    proc = subprocess.Popen([sys.executable, __file__, "--case", model, route, path, out], stdout=subprocess.PIPE,
-                            stderr=subprocess.DEVNULL, env={**os.environ, "STIMSTEER_PROGRESS": "0"})
-    t0 = time.perf_counter()
-    while True:
-        pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
-        if pid:
-            break
-        if time.perf_counter() - t0 > timeout:
-            proc.kill()
-            proc.wait()
-            return None
-        time.sleep(0.01)
-    line = proc.stdout.read().decode().strip().splitlines()
-    proc.stdout.close()
-    if os.waitstatus_to_exitcode(status) != 0 or not line:
+    r = measured([sys.executable, __file__, "--case", model, route, path, out], timeout, stdout=subprocess.PIPE)
+    if r.get("killed"):
+        return None
+    lines = r["stdout"].strip().splitlines()
+    if r["code"] != 0 or not lines:
         return {"failed": True}
-    return {**json.loads(line[-1]), "peak_mb": usage.ru_maxrss / 1024}
+    return {**json.loads(lines[-1]), "peak_mb": r["peak_mb"]}
 
 
 def main(argv=None) -> int:

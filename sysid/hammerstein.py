@@ -48,6 +48,17 @@ def _hat(u: np.ndarray, knots: np.ndarray) -> np.ndarray:
     return np.stack([np.interp(u, knots, eye[j]) for j in range(K)], axis=1)
 
 
+def _hat_channels(u: np.ndarray, knots: np.ndarray) -> np.ndarray:
+    """The inputs ``u`` (n, m) in the hat basis of each site's knots less its value at zero, shape (n, m·K): site by
+    site, knot by knot."""
+    return np.hstack([_hat(u[:, i], knots[i]) - _hat(np.zeros(1), knots[i]) for i in range(u.shape[1])])
+
+
+def _site_blocks(coef: np.ndarray, L: int, m: int, K: int, p: int) -> np.ndarray:
+    """Input coefficients ``(L·m·K, p)`` (lag by lag, then site, knot) as the per-site blocks, shape (L·p, m, K)."""
+    return np.transpose(coef.reshape(L, m, K, p), (0, 3, 1, 2)).reshape(L * p, m, K)
+
+
 def _pava(v: np.ndarray) -> np.ndarray:
     """Nondecreasing least-squares fit of ``v`` (pool adjacent violators, equal weights)."""
     blocks = []
@@ -220,9 +231,9 @@ class HammersteinArx(BasePredictor):
         for a, b in segs:
             u, y, _ = session.read(a, b)
             n = len(u)
-            G = np.stack([_hat(u[:, i], knots[i]) - _hat(np.zeros(1), knots[i]) for i in range(m)], axis=1)
+            G = _hat_channels(u, knots)
             cols = [y[L - 1 - i:n - 1 - i] for i in range(L)]
-            cols += [G[L - i:n - i].reshape(n - L, m * K) for i in range(L)]
+            cols += [G[L - i:n - i] for i in range(L)]
             Xs.append(np.hstack(cols))
             Ys.append(y[L:])
         X, Y = np.vstack(Xs), np.vstack(Ys)
@@ -233,21 +244,18 @@ class HammersteinArx(BasePredictor):
         Za = np.vstack([Z, np.sqrt(float(self.alpha) * Z.shape[0]) * np.eye(k)])
         Ya = np.vstack([Y - Y.mean(0), np.zeros((k, p))])
         coef = sla.lstsq(Za, Ya, lapack_driver="gelsd")[0] / sx[:, None]  # (L·p + L·m·K, p)
-        inputs = coef[L * p:].reshape(L, m, K, p)
-        return np.transpose(inputs, (0, 3, 1, 2)).reshape(L * p, m, K)
+        return _site_blocks(coef[L * p:], L, m, K, p)
 
     def _streamed(self, session, knots, L):
         """:meth:`_overparametrised` by :class:`RidgeArx` on the hat-basis channels (lags 0 … L − 1 of the inputs,
         1 … L of the outputs)."""
         m, p, K = session.n_inputs, session.n_outputs, knots.shape[1]
-        u = np.where(session.mask[:, None], session.u, 0.0)
-        G = np.hstack([_hat(u[:, i], knots[i]) - _hat(np.zeros(1), knots[i]) for i in range(m)])  # (T, m·K)
+        G = _hat_channels(np.where(session.mask[:, None], session.u, 0.0), knots)
         names = [f"{n}@{j}" for n in session.input_names for j in range(K)]
         hat = session.replace(u=G, input_names=tuple(names), input_units=tuple(["1"] * len(names)))
         # one strength: nothing to choose, so the fewest folds its cross-validation allows (its table is not used)
         arx = RidgeArx(output_lags=L, input_lags=L, delay_samples=0, alphas=(float(self.alpha),), n_folds=2).fit(hat)
-        inputs = np.asarray(arx.coef_, np.float64)[:, L * p:].T.reshape(L, m, K, p)
-        return np.transpose(inputs, (0, 3, 1, 2)).reshape(L * p, m, K)
+        return _site_blocks(np.asarray(arx.coef_, np.float64)[:, L * p:].T, L, m, K, p)
 
     @staticmethod
     def _site_values(block, knots):

@@ -161,6 +161,27 @@ class _PredictiveController(BaseEstimator):
                 cons.append(y_expr(self._idx_lo) + self._S_lo @ slack >= ylo)
         return cons, slack
 
+    def _row_bounds(self, lb, ub, free=None):
+        """Lower and upper bounds of the fast QPs' rows after any equalities: the inputs' box, the slew rows, the
+        soft output rows (upper, then lower; less the free response ``free`` where the rows hold only the part that
+        moves with the variables) and the slack's ``t >= 0``, in the order :meth:`_box_rows` and the output rows
+        are stacked."""
+        lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
+        if self._slew_rows is not None:
+            lo.append(-self._slew_rows[1])
+            hi.append(self._slew_rows[1])
+        ih, il, nb = self._idx_hi, self._idx_lo, self._idx_b.size
+        if ih.size:
+            lo.append(np.full(ih.size, -np.inf))
+            hi.append(self._ymax[ih] - (0.0 if free is None else free[ih]))
+        if il.size:
+            lo.append(self._ymin[il] - (0.0 if free is None else free[il]))
+            hi.append(np.full(il.size, np.inf))
+        if nb:
+            lo.append(np.zeros(nb))
+            hi.append(np.full(nb, np.inf))
+        return lo, hi
+
     def _box_rows(self, u_sel):
         """OSQP rows for the hard input limits given the linear map ``u = u_sel @ z``."""
         blocks = [u_sel]

@@ -265,20 +265,7 @@ class ProjectionReduced:
         y0 = self._T_E @ eq + self._T_yp @ yp
         d = self._Lz @ y0 - rw
         q = np.concatenate([f["D"] @ d, np.full(nb, float(ctrl.output_penalty) / ctrl._kappa)])
-        lo, hi = [lb.reshape(-1)], [ub.reshape(-1)]
-        if ctrl._slew_rows is not None:
-            lo.append(-ctrl._slew_rows[1])
-            hi.append(ctrl._slew_rows[1])
-        if ctrl._idx_hi.size:
-            lo.append(np.full(ctrl._idx_hi.size, -np.inf))
-            hi.append(ctrl._ymax[ctrl._idx_hi] - y0[ctrl._idx_hi])
-        if ctrl._idx_lo.size:
-            lo.append(ctrl._ymin[ctrl._idx_lo] - y0[ctrl._idx_lo])
-            hi.append(np.full(ctrl._idx_lo.size, np.inf))
-        if nb:
-            lo.append(np.zeros(nb))
-            hi.append(np.full(nb, np.inf))
-        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        lo, hi = (np.concatenate(v) for v in ctrl._row_bounds(lb, ub, y0))
         z, status, reason = (qp.solve(q, lo, hi) if windows is None
                              else qp.solve_budgeted(q, lo, hi, windows, self._u_sel))
         if z is None:

@@ -408,25 +408,9 @@ class DataPredictiveController(_CondensedCore):
         if self._lam_y is not None:
             q = q - 2.0 * self._lam_y * self._Yp.T @ yp
         q = np.concatenate([q, np.full(nb, float(self.output_penalty) / self._kappa)])  # t = κ·s (_setup_common)
-        lo, hi = [up], [up]
-        if self._lam_y is None:
-            lo.append(yp)
-            hi.append(yp)
-        lo.append(lb.reshape(-1))
-        hi.append(ub.reshape(-1))
-        if self._slew_rows is not None:
-            lo.append(-self._slew_rows[1])
-            hi.append(self._slew_rows[1])
-        if self._idx_hi.size:
-            lo.append(np.full(self._idx_hi.size, -np.inf))
-            hi.append(self._ymax[self._idx_hi])
-        if self._idx_lo.size:
-            lo.append(self._ymin[self._idx_lo])
-            hi.append(np.full(self._idx_lo.size, np.inf))
-        if nb:
-            lo.append(np.zeros(nb))
-            hi.append(np.full(nb, np.inf))
-        lo, hi = np.concatenate(lo), np.concatenate(hi)
+        eq = [up] if self._lam_y is not None else [up, yp]  # E g = [u_past; 0] (and Yp g = y_past when hard)
+        lo, hi = self._row_bounds(lb, ub)
+        lo, hi = np.concatenate(eq + lo), np.concatenate(eq + hi)
         z, status, reason = (self._fast.solve(q, lo, hi) if windows is None
                              else self._fast.solve_budgeted(q, lo, hi, windows, self._Uf))
         if z is None:
