@@ -71,7 +71,7 @@ def test_the_realisation_is_made_at_its_first_use_and_kept(rng):
     est.prediction_maps(2, 7)
     assert "_model" not in vars(est)  # predictions and maps run on the coefficients
     model = est.model_
-    assert est.model_ is model and est.state_space_model().n_states == 8
+    assert est.model_ is model and est.state_space_model().n_states == 8  # na·p + nb·m = 2·2 + 2·2 lagged values
     # the realisation of the fitted coefficients, as arx_to_state_space makes it (the companion form)
     ref = arx_to_state_space(est.ar_coefs_, est.input_coefs_, 1)
     np.testing.assert_array_equal(model.A, ref.A)
