@@ -35,6 +35,7 @@ __all__ = ["BootstrapEnsemble", "resample_trials", "bootstrap_draws", "interval_
 
 _MAX_RESIDUAL_WINDOWS = 200  # out-of-bag windows per member (evenly strided beyond that)
 _MAX_POOL = 400  # pooled errors used per horizon step when forming intervals
+_COVERAGE_BATCH = 50  # windows whose member predictions are made at once (interval_coverage)
 
 
 def resample_trials(session, indices):
@@ -219,24 +220,47 @@ class BootstrapEnsemble(BasePredictor):
         return (preds.mean(axis=0), *self._bounds(preds, float(level)))
 
     def _bounds(self, preds, level):
-        """Quantiles of member predictions plus pooled out-of-bag errors, per step and output."""
+        """Quantiles of member predictions plus pooled out-of-bag errors, per step and output.
+
+        The pools depend on the errors alone (made and sorted once per horizon, :meth:`_pools`), so each quantile's
+        two order statistics lie in short sorted runs of the sums (:func:`_sum_quantiles`); they are interpolated
+        as :func:`numpy.quantile` does (its ``linear`` method: the same numbers).
+        """
         if not 0.0 < level < 1.0:
             raise InvalidParameterError(f"level must be in (0, 1), e.g. 0.95; got {level!r}.")
-        q = [(1.0 - level) / 2.0, (1.0 + level) / 2.0]
+        q = np.array([(1.0 - level) / 2.0, (1.0 + level) / 2.0])
         n_future, p = preds.shape[1], preds.shape[2]
         lo, hi = np.empty((n_future, p)), np.empty((n_future, p))
-        H = self.errors_.shape[1]
-        rng = np.random.default_rng(0)  # a fixed subsample of the pool: the same window gives the same interval
-        for h in range(n_future):
-            e = self.errors_[:, min(h, H - 1)]
-            e = e[np.all(np.isfinite(e), axis=1)]
-            if e.shape[0] > _MAX_POOL:
-                e = e[rng.choice(e.shape[0], _MAX_POOL, replace=False)]
-            if not e.shape[0]:
-                e = np.zeros((1, p))
-            total = (preds[:, h][:, None, :] + e[None]).reshape(-1, p)
-            lo[h], hi[h] = np.quantile(total, q, axis=0)
+        pools = self._pools(n_future)
+        for size in sorted({e.shape[1] for e in pools}):
+            steps = [h for h in range(n_future) if pools[h].shape[1] == size]
+            a = preds[:, steps].transpose(1, 2, 0).reshape(len(steps) * p, -1)  # (steps · p, members)
+            e = np.concatenate([pools[h] for h in steps])  # (steps · p, pool), sorted along each row
+            lo[steps], hi[steps] = (v.reshape(len(steps), p) for v in _sum_quantiles(a, e, q))
         return lo, hi
+
+    def _pools(self, n_future: int) -> list:
+        """Per horizon step, the pooled out-of-bag errors used for its interval, each (p, n), sorted along rows.
+
+        A fixed subsample (seed 0, drawn step by step) of at most ``_MAX_POOL`` complete error vectors: the same
+        window gives the same interval; cached per horizon length until the errors change.
+        """
+        key = (id(self.errors_), int(n_future))
+        cache = self.__dict__.setdefault("_pool_cache", {})
+        if key not in cache:
+            cache.clear()
+            p, H = self.errors_.shape[2], self.errors_.shape[1]
+            rng, pools = np.random.default_rng(0), []
+            for h in range(n_future):
+                e = self.errors_[:, min(h, H - 1)]
+                e = e[np.all(np.isfinite(e), axis=1)]
+                if e.shape[0] > _MAX_POOL:
+                    e = e[rng.choice(e.shape[0], _MAX_POOL, replace=False)]
+                if not e.shape[0]:
+                    e = np.zeros((1, p))
+                pools.append(np.sort(e.T, axis=1))
+            cache[key] = pools
+        return cache[key]
 
     def prediction_maps(self, past_steps: int, horizon_steps: int) -> PredictionMaps:
         """The mean of the members' maps (every member must have linear maps)."""
@@ -305,6 +329,48 @@ def _member_table(draws, n_trials):
                           "out_of_bag_trials": int(n_trials - np.unique(d).size)} for i, d in enumerate(draws)])
 
 
+def _sum_quantiles(a: np.ndarray, e: np.ndarray, q: np.ndarray) -> list:
+    """Per row ``r``, :func:`numpy.quantile` of the sums ``a[r, b] + e[r, i]`` over every ``(b, i)``, at each ``q``.
+
+    ``e`` is sorted along its rows, so row ``b`` of the sums is sorted too (rounding is monotone). A quantile in the
+    lower half needs the order statistics of ranks ``k`` and ``k + 1`` from the bottom: every sum at or below
+    ``τ = max_b (a_b + e_{K-1})`` with ``K = ⌈(k + 2) / B⌉`` lies in the first ``K'`` entries of its row
+    (``K'`` the longest such run), and at least ``k + 2`` sums do, so the ranks are found among ``B K'`` sums
+    instead of all ``B n`` (one partition); the upper half likewise from the top (on the negated sums: negation is
+    exact). The interpolation is NumPy's ``linear`` method (``(N − 1) q`` and its two-sided formula). NaN anywhere
+    hands the work to :func:`numpy.quantile` itself.
+    """
+    B, n = a.shape[1], e.shape[1]
+    if not (np.all(np.isfinite(a)) and np.all(np.isfinite(e))):
+        return list(np.quantile((a[:, :, None] + e[:, None, :]).reshape(a.shape[0], -1), q, axis=-1))
+    N = B * n
+    out = []
+    for v in (N - 1) * q:
+        i0 = int(np.floor(v))
+        i1 = min(i0 + 1, N - 1)
+        if v <= (N - 1) / 2:
+            lo_, hi_ = _low_ranks(a, e, (i0, i1))
+        else:  # from the top: rank i is rank N − 1 − i of the negated sums
+            lo_, hi_ = (-x for x in _low_ranks(-a, -e[:, ::-1], (N - 1 - i0, N - 1 - i1)))
+        d, t = hi_ - lo_, v - i0
+        out.append(hi_ - d * (1 - t) if t >= 0.5 else lo_ + d * t)
+    return out
+
+
+def _low_ranks(a: np.ndarray, e: np.ndarray, ranks: tuple) -> tuple:
+    """Per row, the sums ``a[r, b] + e[r, i]`` of the given (small) ranks from the bottom; ``e`` sorted along rows."""
+    B, n = a.shape[1], e.shape[1]
+    K = min(n, -(-(max(ranks) + 1) // B))
+    first = (a[:, :, None] + e[:, None, :K]).reshape(a.shape[0], -1)  # B·K ≥ max(ranks) + 1 sums
+    tau = np.partition(first, max(ranks), axis=1)[:, max(ranks)]  # so at least max(ranks) + 1 sums are <= tau
+    # the run of row b: the pool entries up to τ − a_b, widened by a few rounding units (a longer run is harmless)
+    reach = (tau[:, None] - a) + 4 * np.finfo(float).eps * (np.abs(tau)[:, None] + np.abs(a))
+    run = max(K, max(int(np.searchsorted(e[r], reach[r].max(), side="right")) for r in range(a.shape[0])))
+    head = (a[:, :, None] + e[:, None, :min(run, n)]).reshape(a.shape[0], -1)
+    part = np.partition(head, sorted(set(ranks)), axis=1)
+    return tuple(part[:, r] for r in ranks)
+
+
 def interval_coverage(ensemble, session, *, horizon_steps: int, level: float = 0.95, max_windows: int = 300):
     """Share of held-out samples inside the ensemble's prediction intervals, per output, over 1…H steps ahead.
 
@@ -329,10 +395,12 @@ def interval_coverage(ensemble, session, *, horizon_steps: int, level: float = 0
         return np.full(ensemble.n_outputs_, np.nan)
     pick = np.linspace(0, len(starts) - 1, min(len(starts), int(max_windows))).astype(int)
     inside, total = np.zeros(ensemble.n_outputs_), 0
-    for k in pick:
-        _, t = starts[k]
-        u, y, _ = session.read(t - P, t + H)
-        _, lo, hi = ensemble.predict_interval(u[:P], y[:P], u[P:], level=level)
-        inside += np.sum((y[P:] >= lo) & (y[P:] <= hi), axis=0)
-        total += H
+    for batch in np.array_split(pick, -(-pick.size // _COVERAGE_BATCH)):  # the members predict a batch at once
+        reads = [session.read(starts[k][1] - P, starts[k][1] + H)[:2] for k in batch]
+        u, y = np.stack([r[0] for r in reads]), np.stack([r[1] for r in reads])
+        preds = ensemble.member_predictions(u[:, :P], y[:, :P], u[:, P:])
+        for w in range(len(batch)):
+            lo, hi = ensemble._bounds(preds[:, w], float(level))
+            inside += np.sum((y[w, P:] >= lo) & (y[w, P:] <= hi), axis=0)
+            total += H
     return inside / total

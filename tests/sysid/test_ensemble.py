@@ -96,3 +96,59 @@ def test_the_members_show_their_progress_on_a_terminal(split, capsys, monkeypatc
     BootstrapEnsemble(method="arx", method_settings=ARX, n_members=3, seed=2).fit(split[0])
     err = capsys.readouterr().err
     assert "stimsteer bootstrap members (indirect/arx)" in err and "/3 " in err
+
+
+# ---------------------------------------------------------------------------------------------- interval arithmetic
+# Reference: numpy.quantile, its default "linear" method (Hyndman R. J., Fan Y. (1996), Sample quantiles in
+# statistical packages, The American Statistician 50(4):361-365, definition 7). The intervals take order statistics
+# of sums out of short sorted runs; they must be NumPy's numbers exactly.
+@pytest.mark.parametrize("case", range(60))
+def test_the_interval_quantiles_are_numpys_quantiles_of_every_sum(case):
+    from stimsteer.sysid.ensemble import _sum_quantiles
+
+    rng = np.random.default_rng(case)
+    rows, members, pool = rng.integers(1, 12), rng.integers(1, 25), rng.integers(1, 70)
+    a = rng.normal(scale=[0.01, 1.0, 100.0][case % 3], size=(rows, members))  # narrow, even and wide spreads
+    e = np.sort(rng.standard_t(3, size=(rows, pool)), axis=1)
+    if case % 4 == 0:  # ties among the sums
+        a, e = np.round(a, 1), np.round(e, 1)
+    if case == 5:
+        a[0, 0] = np.nan  # NumPy's NaN rule kept
+    level = [0.5, 0.8, 0.9, 0.95, 0.99, 0.999][case % 6]
+    q = np.array([(1 - level) / 2, (1 + level) / 2])
+    expected = np.quantile((a[:, :, None] + e[:, None, :]).reshape(rows, -1), q, axis=-1)
+    for got, want in zip(_sum_quantiles(a, e, q), expected):
+        np.testing.assert_array_equal(got, want)
+
+
+def test_the_intervals_are_quantiles_of_member_predictions_plus_pooled_errors(ensemble, split):
+    # the definition written out the long way (the module docstring; Efron & Tibshirani 1993, ch. 13 and 17): per
+    # step, a fixed subsample (seed 0, drawn step by step) of at most 400 complete out-of-bag error vectors
+    test = split[1]
+    up, yp, uf = test.u[:4], test.y[:4], test.u[4:64]
+    preds = ensemble.member_predictions(up[None], yp[None], uf[None])[:, 0]
+    rng, H = np.random.default_rng(0), ensemble.errors_.shape[1]
+    q = [(1.0 - 0.95) / 2.0, (1.0 + 0.95) / 2.0]  # the level's tails as the ensemble computes them (0.025 + 2e-17)
+    assert ensemble.errors_.shape[0] > 400  # the subsample is exercised
+    lo, hi = np.empty((60, 1)), np.empty((60, 1))
+    for h in range(60):  # beyond the errors' horizon the last step's errors
+        e = ensemble.errors_[:, min(h, H - 1)]
+        e = e[np.all(np.isfinite(e), axis=1)]
+        e = e[rng.choice(e.shape[0], 400, replace=False)] if e.shape[0] > 400 else e
+        lo[h], hi[h] = np.quantile((preds[:, h][:, None, :] + e[None]).reshape(-1, 1), q, axis=0)
+    _, got_lo, got_hi = ensemble.predict_interval(up, yp, uf)
+    np.testing.assert_array_equal(got_lo, lo)
+    np.testing.assert_array_equal(got_hi, hi)
+
+
+def test_coverage_counts_each_windows_own_interval(ensemble, split):
+    test, P, H = split[1], ensemble.past_steps_, 15
+    inside, total = 0.0, 0
+    starts = [t for a, b in test.segments(min_length=P + H) for t in range(a + P, b - H + 1)]
+    for k in np.linspace(0, len(starts) - 1, 120).astype(int):
+        u, y, _ = test.read(starts[k] - P, starts[k] + H)
+        _, lo, hi = ensemble.predict_interval(u[:P], y[:P], u[P:])
+        inside += np.sum((y[P:] >= lo) & (y[P:] <= hi))
+        total += H
+    assert interval_coverage(ensemble, test, horizon_steps=H, max_windows=120)[0] == pytest.approx(inside / total,
+                                                                                                abs=1e-12)
