@@ -16,7 +16,7 @@ import numpy as np
 
 from .exceptions import InvalidParameterError
 
-__all__ = ["DICTIONARIES", "Dictionary", "draw_dictionary", "source_dim", "windows"]
+__all__ = ["DICTIONARIES", "Dictionary", "dictionary_from", "draw_dictionary", "source_dim", "windows"]
 
 DICTIONARIES = ("rff", "rbf", "poly2")
 
@@ -73,7 +73,14 @@ class Dictionary:
 
     def __call__(self, src: np.ndarray) -> np.ndarray:
         """Features of sources ``src`` (n, d), shape (n, D)."""
-        s = (np.asarray(src, float) - self.mean) / self.scale
+        return self.of_standardised(self.standardise(src))
+
+    def standardise(self, src: np.ndarray) -> np.ndarray:
+        """The sources in standardised units (dictionaries of the same training rows share them)."""
+        return (np.asarray(src, float) - self.mean) / self.scale
+
+    def of_standardised(self, s: np.ndarray) -> np.ndarray:
+        """Features of standardised sources ``s`` (n, d), shape (n, D)."""
         if self.kind == "poly2":
             i, j = np.triu_indices(s.shape[1])
             return s[:, i] * s[:, j]
@@ -104,19 +111,27 @@ def draw_dictionary(kind: str, src: np.ndarray, n_features: int, bandwidth: floa
     The bandwidth is relative: the kernel width is ``bandwidth · √d`` in standardised units, the typical distance
     between two standardised windows (common practice, no source).
     """
-    if kind not in DICTIONARIES:
-        raise InvalidParameterError(f"dictionary must be one of {DICTIONARIES}; got {kind!r}.")
     mean = src.mean(0) if src.size else np.zeros(src.shape[1])
     scale = src.std(0) if src.size else np.ones(src.shape[1])
+    return dictionary_from(kind, mean, scale, src.shape[0], lambda idx: src[idx], n_features, bandwidth, seed)
+
+
+def dictionary_from(kind: str, mean, scale, n_rows: int, rows_at, n_features: int, bandwidth: float,
+                    seed: int) -> Dictionary:
+    """:func:`draw_dictionary` from the sources' mean and standard deviation, their count and ``rows_at(idx)``
+    (the sources of rows ``idx``, asked for by the radial dictionary's centres only): the same draws."""
+    if kind not in DICTIONARIES:
+        raise InvalidParameterError(f"dictionary must be one of {DICTIONARIES}; got {kind!r}.")
+    mean, scale = np.asarray(mean, float), np.asarray(scale, float)
     scale = np.where(scale > 1e-12 * max(1.0, float(np.abs(mean).max(initial=0.0))), scale, 1.0)
     if kind == "poly2" or n_features == 0:
         return Dictionary(kind, mean, scale)
-    d = src.shape[1]
+    d = mean.size
     width = float(bandwidth) * np.sqrt(max(d, 1))
     rng = np.random.default_rng(seed)
     if kind == "rff":
         omega = rng.standard_normal((n_features, d)) / width
         return Dictionary(kind, mean, scale, omega, rng.uniform(0.0, 2 * np.pi, n_features), width)
-    pick = rng.choice(src.shape[0], size=n_features, replace=src.shape[0] < n_features)
-    centres = (src[pick] - mean) / scale
+    pick = rng.choice(n_rows, size=n_features, replace=n_rows < n_features)
+    centres = (rows_at(pick) - mean) / scale
     return Dictionary(kind, mean, scale, centres, np.zeros(n_features), width)

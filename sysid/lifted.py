@@ -9,7 +9,9 @@ evolves linearly, with the current input entering linearly::
 ``C`` reads the newest output out of ``r_t``; the rows of ``A`` and ``B`` that move the raw window along are fixed
 shifts, the rows of the newest output and of the features are fitted by ridge regression on every transition
 inside a valid segment. The dictionary size, its bandwidth and the ridge strength are chosen by cross-validation
-over trials on ``cv_horizon_steps``-step predictions.
+over trials on ``cv_horizon_steps``-step predictions. The regressions are solved from their moments, accumulated
+over blocks of transitions (:mod:`stimsteer.sysid._lift_moments`): memory bounded by the Gram of the lifted
+regressors, not by transitions × window.
 
 Because the prediction is affine in the future inputs with a map ``F`` that does not depend on the past
 (``y = C A^{j+1} z_{−1} + Σ_i C A^{j−i} B u_i``), the predictor declares
@@ -33,32 +35,37 @@ import scipy.linalg as sla
 
 from ._base import BasePredictor, check_fitted
 from ._progress import progress
-from ._lift_features import DICTIONARIES, Dictionary, draw_dictionary, source_dim, windows
+from ._lift_features import DICTIONARIES, Dictionary, source_dim, windows
+from ._lift_moments import (Candidate, FoldSystem, LiftMoments, by_cholesky, eigen_path, fitted_rows, simulate_rows,
+                            solve_blocks)
 from .exceptions import InvalidParameterError, SessionError
 from .statespace import markov_toeplitz
 
 __all__ = ["LiftedPredictor"]
 
 _MAX_CV_WINDOWS = 200  # validation windows per fold (evenly strided beyond that)
+#: The final fit solves its normal equations where the strength bounds their condition number, ``(k + α) / α`` on
+#: standardised columns, to this (an error of about 1e-8 relative from rounding); else least squares on the stacked
+#: design (the accuracy of the data).
+_GRAM_COND_MAX = 1e8
 
 
-def _trial_segments(session, T: int, H: int = 0):
-    """Per trial, the lifted arrays of each valid segment long enough for one transition (and ``H`` steps)."""
+def _trial_segments(session, T: int):
+    """Per trial, the samples ``(u, y)`` of each valid segment long enough for one transition."""
+    segments = session.segments(min_length=T + 1)
     out = []
     for a, b in session.trials:
-        segs = []
-        for s, e in session.segments(min_length=T + 1 + H):
-            if a <= s and e <= b:
-                u, y, _ = session.read(s, e)
-                raw, src = windows(u, y, T)
-                segs.append((u, y, raw, src))
-        out.append(segs)
+        out.append([session.read(s, e)[:2] for s, e in segments if a <= s and e <= b])
     return out
 
 
 def _transitions(segs, T: int):
-    """Stacked regression rows of segments: previous raw window and source, current input, output, next source."""
-    parts = [(raw[:-1], src[:-1], u[T:], y[T:], src[1:]) for u, y, raw, src in segs]
+    """Stacked regression rows of segments ``(u, y)``: previous raw window and source, current input, output, next
+    source (materialised: the final fit's least-squares route only)."""
+    parts = []
+    for u, y in segs:
+        raw, src = windows(u, y, T)
+        parts.append((raw[:-1], src[:-1], u[T:], y[T:], src[1:]))
     if not parts:
         return None
     return tuple(np.concatenate(col) for col in zip(*parts))
@@ -80,50 +87,28 @@ def _ridge(X, Y, alpha):
     return theta, my - mx @ theta
 
 
-def _ridge_path(X, Y, alphas):
-    """Ridge solutions for several strengths from one eigendecomposition of the standardised Gram matrix."""
-    mx, my = X.mean(0), Y.mean(0)
-    sx = X.std(0)
-    sx = np.where(sx > 1e-12, sx, 1.0)
-    Xs = (X - mx) / sx
-    lam, V = np.linalg.eigh(Xs.T @ Xs)
-    VtXY = V.T @ (Xs.T @ (Y - my))
-    out = []
-    for a in alphas:
-        d = lam + a * Xs.shape[0]
-        d = np.where(d > 1e-12 * max(lam[-1], 1e-300), d, np.inf)  # a null direction of an unregularised fit: drop it
-        theta = (V @ (VtXY / d[:, None])) / sx[:, None]
-        out.append((theta, my - mx @ theta))
-    return out
-
-
 def _lifted_matrices(theta, b, T, m, p, D):
     """``A``, ``B``, ``C`` of the lifted dynamics from the fitted rows (coefficients over ``[z_prev; u_t]``)."""
     nr = T * (m + p)
     nz = nr + D + 1
-    Th = np.vstack([theta, b[None]]).T  # (p + D, nr + D + m + 1): [raw, features, u, intercept]
     A, B = np.zeros((nz, nz)), np.zeros((nz, m))
     for i in range(T - 1):
         A[i * m:(i + 1) * m, (i + 1) * m:(i + 2) * m] = np.eye(m)
         A[T * m + i * p:T * m + (i + 1) * p, T * m + (i + 1) * p:T * m + (i + 2) * p] = np.eye(p)
     B[(T - 1) * m:T * m] = np.eye(m)
     rows = np.r_[T * m + (T - 1) * p:T * m + T * p, nr:nr + D]
-    A[rows, :nr + D] = Th[:, :nr + D]
-    B[rows] = Th[:, nr + D:nr + D + m]
-    A[rows, -1] = Th[:, -1]
+    A[rows], B[rows] = fitted_rows(theta, b, T, m, p, D)
     A[-1, -1] = 1.0
     C = np.zeros((p, nz))
     C[:, T * m + (T - 1) * p:nr] = np.eye(p)
     return A, B, C
 
 
-def _simulate(A, B, C, z0, uf):
-    """Outputs of the lifted dynamics from lifted states ``z0`` (w, nz) under inputs ``uf`` (w, H, m)."""
-    z, out = z0, np.empty((uf.shape[0], uf.shape[1], C.shape[0]))
-    for k in range(uf.shape[1]):
-        z = z @ A.T + uf[:, k] @ B.T
-        out[:, k] = z @ C.T
-    return out
+def _fitted_rows_of(A, B, T, m, p):
+    """The fitted rows of a lifted ``A`` and ``B`` (newest output, then features)."""
+    nr = T * (m + p)
+    rows = np.r_[T * m + (T - 1) * p:T * m + T * p, nr:A.shape[0] - 1]
+    return A[rows], B[rows]
 
 
 class LiftedPredictor(BasePredictor):
@@ -248,29 +233,32 @@ class LiftedPredictor(BasePredictor):
         m, p = session.n_inputs, session.n_outputs
         H = int(self.cv_horizon_steps)
         per_trial = _trial_segments(session, T)
-        rows = _transitions([s for segs in per_trial for s in segs], T)
-        if rows is None:
+        counts = [sum(len(u) - T for u, _y in segs) for segs in per_trial]
+        if not sum(counts):
             raise SessionError(f"no valid segment holds more than past_steps = {T} samples; the lifted predictor "
                                "needs at least one transition. Use a shorter past window or longer trials.")
         n_reg0 = T * (m + p) + m + 1
         n_folds = min(int(self.n_folds), len(per_trial))
         folds = self._folds(per_trial, n_folds)
-        counts = [sum(len(seg[2]) - 1 for seg in segs) for segs in per_trial]
         min_train = min((sum(c for i, c in enumerate(counts) if i not in f) for f in folds if len(f) < len(counts)),
                         default=sum(counts))
-        combos, dropped = self._candidates(sizes, widths, alphas, min(min_train, len(rows[0])), n_reg0)
+        combos, dropped = self._candidates(sizes, widths, alphas, min(min_train, sum(counts)), n_reg0)
         grid = [(n, w, a) for (n, w), a in itertools.product(combos, alphas)]
         if len(grid) > 1 and n_folds < 2:
             raise SessionError(f"choosing among {len(grid)} candidates by cross-validation needs at least 2 trials; "
                                f"the session has {len(per_trial)}. Give n_features, one bandwidth and one alpha, "
                                "or record more trials.")
-        table = self._cross_validate(per_trial, folds, combos, alphas, T, H, m, p) if len(grid) > 1 else \
+        part_of = np.zeros(len(per_trial), int)
+        for k, fold in enumerate(folds):
+            part_of[sorted(fold)] = k
+        moments = LiftMoments(per_trial, part_of, T, m, p)  # one pass: the shared sums of every fold
+        table = self._cross_validate(moments, folds, combos, alphas, H) if len(grid) > 1 else \
             pd.DataFrame({"n_features": [grid[0][0]], "bandwidth": [grid[0][1]], "alpha": [grid[0][2]],
                           "cv_nmse": [np.nan]})
         best = int(np.nanargmin(table["cv_nmse"].to_numpy())) if table["cv_nmse"].notna().any() else 0
         table["selected"] = np.arange(len(table)) == best
         n, w, a = (table.iloc[best][c] for c in ("n_features", "bandwidth", "alpha"))
-        self._fit_final(rows, int(n), float(w), float(a), T, m, p)
+        self._fit_final(moments, int(n), float(w), float(a))
         self.cv_table_ = table
         self._describe(session, T)
         self.selection_notes_ = self._notes(table, best, dropped, sizes)
@@ -280,40 +268,77 @@ class LiftedPredictor(BasePredictor):
         order = np.random.default_rng(self.seed).permutation(len(per_trial))
         return [set(int(i) for i in order[k::n_folds]) for k in range(max(n_folds, 1))]
 
-    def _cross_validate(self, per_trial, folds, combos, alphas, T, H, m, p):
-        records = []
+    def _cross_validate(self, moments, folds, combos, alphas, H):
+        """The held-out errors of every dictionary (size, bandwidth) at every strength, fold by fold."""
+        scores = np.zeros((len(combos), len(folds), len(alphas)))
+        counted = np.zeros((len(combos), len(folds)), bool)
         with progress(len(combos) * len(folds), "cross-validation of the lifted predictor", unit="fit") as bar:
-            for n, w in combos:
-                records += self._cross_validate_one(per_trial, folds, n, w, alphas, T, H, m, p, bar)
-        return pd.DataFrame(records)
+            for k, fold in enumerate(folds):
+                if self._score_fold(moments, k, fold, combos, alphas, H, scores[:, k]):
+                    counted[:, k] = True
+                bar.update(len(combos))
+        return pd.DataFrame([{"n_features": n, "bandwidth": w, "alpha": a,
+                              "cv_nmse": float(np.mean(scores[j, counted[j], i])) if counted[j].any() else np.nan}
+                             for j, (n, w) in enumerate(combos) for i, a in enumerate(alphas)])
 
-    def _cross_validate_one(self, per_trial, folds, n, w, alphas, T, H, m, p, bar):
-        """The held-out errors of one dictionary (size ``n``, bandwidth ``w``) at every strength, fold by fold."""
-        scores = np.zeros((len(folds), len(alphas)))
-        counted = np.zeros(len(folds), bool)
-        for k, fold in enumerate(folds):
-            train = _transitions([s for i, segs in enumerate(per_trial) if i not in fold for s in segs], T)
-            valid = [s for i, segs in enumerate(per_trial) if i in fold for s in segs if len(s[0]) >= T + H]
-            bar.update()
-            if train is None or not valid:
-                continue
-            dic = draw_dictionary(self.dictionary, train[1], n, w, self.seed)
-            X = np.hstack([train[0], dic(train[1]), train[2]])
-            Y = np.hstack([train[3], dic(train[4])])
-            counted[k] = True
-            windows_ = _validation_windows(dic, valid, T, H)
-            for j, (theta, b) in enumerate(_ridge_path(X, Y, alphas)):
-                A, B, C = _lifted_matrices(theta, b, T, m, p, dic.n_features)
-                scores[k, j] = _validation_nmse(A, B, C, *windows_)
-        return [{"n_features": n, "bandwidth": w, "alpha": a,
-                 "cv_nmse": float(np.mean(scores[counted, j])) if counted.any() else np.nan}
-                for j, a in enumerate(alphas)]
+    def _score_fold(self, moments, k, fold, combos, alphas, H, scores) -> bool:
+        """Fill ``scores[combo, alpha]`` with the validation errors of fold ``k``; False where it cannot be scored
+        (no training transition or no validation window)."""
+        T, m, p = moments.T, moments.m, moments.p
+        sums, trials = moments.shared(k), moments.trials_except(k)
+        valid = [seg for i in sorted(fold) for seg in moments.per_trial[i] if len(seg[0]) >= T + H]
+        if sums.n == 0 or not valid:
+            return False
+        dics = [moments.dictionary(self.dictionary, sums, trials, n, w, self.seed) for n, w in combos]
+        feats = moments.feature_sums(trials, dics)
+        system = FoldSystem(sums, moments.nr, moments.shift_b, moments.shift_y)
+        del sums
+        edges = np.cumsum([0] + [d.n_features for d in dics])
+        cands = [Candidate(system, feats, slice(edges[j], edges[j + 1])) for j in range(len(combos))]
+        raw0, src0, uf, yt = _validation_windows(valid, T, H)
+        z0 = [np.hstack([raw0, dic(src0), np.ones((raw0.shape[0], 1))]) for dic in dics]
 
-    def _fit_final(self, rows, n, w, a, T, m, p):
-        dic = draw_dictionary(self.dictionary, rows[1], n, w, self.seed)
-        X = np.hstack([rows[0], dic(rows[1]), rows[2]])
-        Y = np.hstack([rows[3], dic(rows[4])])
-        theta, b = _ridge(X, Y, a)
+        def score(j, i, beta):
+            theta, b = cands[j].coefficients(beta)
+            scores[j, i] = _validation_nmse(*fitted_rows(theta, b, T, m, p, dics[j].n_features), T, m, p, z0[j],
+                                            uf, yt)
+
+        missing = []
+        for i, a in enumerate(alphas):  # one factor of the raw window's block per strength, for every dictionary
+            L = system.factor(a) if any(by_cholesky(a, c.k) for c in cands) else None
+            for j, cand in enumerate(cands):
+                beta = solve_blocks(cand, a, L) if L is not None and by_cholesky(a, cand.k) else None
+                if beta is None:
+                    missing.append((j, i))
+                else:
+                    score(j, i, beta)
+        for j in sorted({j for j, _i in missing}):  # the eigendecomposition route (see _lift_moments)
+            strengths = [i for jj, i in missing if jj == j]
+            for i, beta in zip(strengths, eigen_path(cands[j], [alphas[i] for i in strengths])):
+                score(j, i, beta)
+        return True
+
+    def _fit_final(self, moments, n, w, a):
+        """The chosen dictionary and strength on every trial: from the moments where the strength bounds the
+        condition number of the normal equations to ``_GRAM_COND_MAX``, else by least squares on the stacked
+        design (the accuracy of the data, its memory)."""
+        T, m, p = moments.T, moments.m, moments.p
+        sums, trials = moments.shared(None), moments.trials_except(None)
+        dic = moments.dictionary(self.dictionary, sums, trials, n, w, self.seed)
+        k = moments.nr + dic.n_features + m
+        beta = None
+        if a > 0 and (k + a) / a <= _GRAM_COND_MAX:
+            system = FoldSystem(sums, moments.nr, moments.shift_b, moments.shift_y)
+            cand = Candidate(system, moments.feature_sums(trials, [dic]), slice(0, dic.n_features))
+            L = system.factor(a)
+            beta = solve_blocks(cand, a, L) if L is not None else None
+        if beta is not None:
+            theta, b = cand.coefficients(beta)
+        else:
+            rows = _transitions([seg for segs in moments.per_trial for seg in segs], T)
+            X = np.hstack([rows[0], dic(rows[1]), rows[2]])
+            Y = np.hstack([rows[3], dic(rows[4])])
+            theta, b = _ridge(X, Y, a)
         self.A_, self.B_, self.C_ = _lifted_matrices(theta, b, T, m, p, dic.n_features)
         self.dictionary_ = dic
         self.n_features_, self.bandwidth_, self.alpha_ = dic.n_features, w, a
@@ -355,7 +380,8 @@ class LiftedPredictor(BasePredictor):
         """Predictions of a batch of windows by the lifted linear dynamics, shape (n_windows, n_future, p)."""
         check_fitted(self, "A_")
         up, yp, uf = self._check_batch(u_past, y_past, u_future)
-        return _simulate(self.A_, self.B_, self.C_, self.lift(up, yp), uf)
+        Ar, Br = _fitted_rows_of(self.A_, self.B_, self.past_steps_, self.n_inputs_, self.n_outputs_)
+        return simulate_rows(Ar, Br, self.past_steps_, self.n_inputs_, self.n_outputs_, self.lift(up, yp), uf)
 
     def input_map(self, horizon_steps: int) -> np.ndarray:
         """``F`` of ``vec(y) = free response + F vec(u_future)``, shape (N·p, N·m); independent of the past."""
@@ -415,26 +441,26 @@ class LiftedPredictor(BasePredictor):
         return obj
 
 
-def _validation_windows(dic, valid, T, H):
-    """Lifted starts, future inputs and true outputs of the (strided) ``H``-step windows of validation segments."""
-    z0, uf, yt = [], [], []
-    for u, y, raw, src in valid:
-        starts = np.arange(0, len(u) - T - H + 1)
-        z0.append(np.hstack([raw[starts], dic(src[starts]), np.ones((starts.size, 1))]))
-        idx = starts[:, None] + T + np.arange(H)[None]
-        uf.append(u[idx])
-        yt.append(y[idx])
-    z0, uf, yt = np.concatenate(z0), np.concatenate(uf), np.concatenate(yt)
-    if z0.shape[0] > _MAX_CV_WINDOWS:
-        pick = np.linspace(0, z0.shape[0] - 1, _MAX_CV_WINDOWS).astype(int)
-        z0, uf, yt = z0[pick], uf[pick], yt[pick]
-    return z0, uf, yt
+def _validation_windows(valid, T, H):
+    """Raw windows, feature sources, future inputs and true outputs of the (strided) ``H``-step windows of
+    validation segments ``(u, y)``."""
+    starts = [(g, t) for g, (u, _y) in enumerate(valid) for t in range(len(u) - T - H + 1)]
+    if len(starts) > _MAX_CV_WINDOWS:
+        starts = [starts[i] for i in np.linspace(0, len(starts) - 1, _MAX_CV_WINDOWS).astype(int)]
+    raw, src, uf, yt = [], [], [], []
+    for g, t in starts:
+        u, y = valid[g]
+        raw.append(np.concatenate([u[t:t + T].ravel(), y[t:t + T].ravel()]))
+        src.append(np.concatenate([y[t:t + T].ravel(), u[t:t + T - 1].ravel()]))
+        uf.append(u[t + T:t + T + H])
+        yt.append(y[t + T:t + T + H])
+    return np.array(raw), np.array(src), np.array(uf), np.array(yt)
 
 
-def _validation_nmse(A, B, C, z0, uf, yt) -> float:
+def _validation_nmse(Ar, Br, T, m, p, z0, uf, yt) -> float:
     """Mean over outputs of the squared prediction error over the outputs' variance, on validation windows."""
     with np.errstate(over="ignore", invalid="ignore"):
-        err = _simulate(A, B, C, z0, uf) - yt
+        err = simulate_rows(Ar, Br, T, m, p, z0, uf) - yt
         mse = np.mean(err ** 2, axis=(0, 1))
     var = np.var(yt.reshape(-1, yt.shape[2]), axis=0)
     value = float(np.mean(mse / np.where(var > 0, var, 1.0)))

@@ -1,0 +1,304 @@
+"""The lifted predictor's regression from moments (a helper of :mod:`stimsteer.sysid.lifted`).
+
+The regression of :class:`~stimsteer.sysid.lifted.LiftedPredictor` has the regressors ``x = [r; φ(s); u]`` (raw
+window, features of the source, current input) and the targets ``[y; φ(s')]`` (newest output, next features). Its
+ridge solution on standardised, centred columns needs only the regressors' and targets' sums and cross-products.
+These are accumulated over blocks of at most ``_BLOCK_ROWS`` transitions, whose windows are made from the raw samples
+when the block is reached, so memory is bounded by the Gram, never by transitions × window:
+
+* the shared part ``b = [r; u]`` (its products with itself and with ``y``) once for every fold part of the trials,
+  in one pass; a fold's training sums are the sums of the other parts, the final fit's the sum of all;
+* the features of every candidate dictionary of a fold (drawn from that fold's training sources, standardised by
+  the training moments) in one pass over the fold's training trials.
+
+Every candidate and strength is then solved by block elimination with the raw window's block ``G_rr`` (shared by
+the candidates of a fold): one Cholesky factor of ``G_rr + αn I`` per fold and strength, then per candidate the
+Schur complement of its features and input (Golub & Van Loan 2013, Matrix Computations, 4th ed., section 4.2 and
+3.2.11). On standardised columns ``λ_max(G) ≤ trace G = k n``, so ``cond(G + αn I) ≤ (k + α) / α``; where ``αn`` is at
+the rounding level of that bound (``α ≤ 1e-12 k``, the unregularised fit) the eigendecomposition of the whole Gram is
+used instead, with its rule for null directions. Validation predictions step only the fitted rows of the lifted
+dynamics (the rest of ``A`` shifts the window: the same numbers as the dense product, at a fraction of its work).
+
+The windows' sums are taken about a provisional offset (the first block's mean), which keeps the centring
+``C = G − n μ μᵀ`` free of cancellation (common practice, no source).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+
+from ._lift_features import dictionary_from, windows
+
+_BLOCK_ROWS = 1024  # transitions per block: at past 100 and 23 channels, about 19 MB per window array
+
+
+def trial_blocks(segments, T: int, rows: int = _BLOCK_ROWS):
+    """Yield ``(raw_prev, src, u_now, y_now)`` per block of transitions of the segments ``(u, y)``.
+
+    ``src`` has one row more than the others: ``src[:-1]`` are the sources of the previous windows, ``src[1:]`` of the
+    next ones (the transition's target features).
+    """
+    for u, y in segments:
+        k = len(u) - T
+        for i0 in range(0, k, rows):
+            i1 = min(k, i0 + rows)
+            raw, src = windows(u[i0:i1 + T], y[i0:i1 + T], T)
+            yield raw[:-1], src, u[i0 + T:i1 + T], y[i0 + T:i1 + T]
+
+
+def source_columns(T: int, m: int, p: int) -> np.ndarray:
+    """Columns of the raw window (inputs then outputs, time-major) that make the feature source, in its order."""
+    return np.r_[T * m + np.arange(T * p), np.arange((T - 1) * m)].astype(np.int64)
+
+
+class SharedSums:
+    """Sums over transitions of ``b = [r; u] − shift_b`` and ``y − shift_y``: count, sums, ``bᵀb`` and ``bᵀy``."""
+
+    def __init__(self, nb: int, p: int):
+        self.n, self.sb, self.sy = 0, np.zeros(nb), np.zeros(p)
+        self.Gbb, self.Gby = np.zeros((nb, nb)), np.zeros((nb, p))
+
+    def add(self, b: np.ndarray, y: np.ndarray):
+        self.n += b.shape[0]
+        self.sb += b.sum(0)
+        self.sy += y.sum(0)
+        self.Gbb += b.T @ b
+        self.Gby += b.T @ y
+
+    @classmethod
+    def total(cls, parts: list) -> "SharedSums":
+        out = cls(parts[0].sb.size, parts[0].sy.size)
+        for part in parts:
+            out.n += part.n
+            out.sb += part.sb
+            out.sy += part.sy
+            out.Gbb += part.Gbb
+            out.Gby += part.Gby
+        return out
+
+
+class LiftMoments:
+    """The shared sums of every fold part of the trials, from one pass (see the module docstring).
+
+    Parameters
+    ----------
+    per_trial : list of list of (u, y)
+        Each trial's valid segments, each long enough for one transition.
+    part_of : sequence of int
+        The fold part of each trial (all 0 for a single part).
+    T, m, p : window, inputs, outputs
+    """
+
+    def __init__(self, per_trial, part_of, T: int, m: int, p: int):
+        self.per_trial, self.part_of, self.T, self.m, self.p = per_trial, list(part_of), T, m, p
+        self.nr = T * (m + p)
+        first = next((seg for segs in per_trial for seg in segs), None)
+        su = first[0][:_BLOCK_ROWS].mean(0) if first is not None else np.zeros(m)
+        sy = first[1][:_BLOCK_ROWS].mean(0) if first is not None else np.zeros(p)
+        self.shift_b, self.shift_y = np.concatenate([np.tile(su, T), np.tile(sy, T), su]), sy
+        self.parts = [SharedSums(self.nr + m, p) for _ in range(max(self.part_of, default=0) + 1)]
+        for i, segs in enumerate(per_trial):
+            for raw, _src, u_now, y_now in trial_blocks(segs, T):
+                self.parts[self.part_of[i]].add(self._b(raw, u_now), y_now - self.shift_y)
+
+    def _b(self, raw, u_now):
+        b = np.hstack([raw, u_now])
+        b -= self.shift_b
+        return b
+
+    def trials_except(self, part: int | None) -> list:
+        """Trial indices outside fold part ``part`` (every trial for None), in trial order."""
+        return [i for i in range(len(self.per_trial)) if part is None or self.part_of[i] != part]
+
+    def shared(self, part: int | None) -> SharedSums:
+        """The shared sums of the trials outside ``part`` (every trial for None)."""
+        return SharedSums.total([s for k, s in enumerate(self.parts) if k != part])
+
+    def dictionary(self, kind, sums: SharedSums, trials, n_features, bandwidth, seed):
+        """The dictionary :func:`~._lift_features.draw_dictionary` draws from the sources of ``trials``' rows."""
+        cols = source_columns(self.T, self.m, self.p)
+        n = max(sums.n, 1)
+        mu = sums.sb / n
+        var = np.diag(sums.Gbb)[cols] / n - mu[cols] ** 2
+        mean = mu[cols] + self.shift_b[cols]
+        return dictionary_from(kind, mean, np.sqrt(np.maximum(var, 0.0)), sums.n,
+                               lambda idx: self.source_rows(trials, idx), n_features, bandwidth, seed)
+
+    def source_rows(self, trials, idx) -> np.ndarray:
+        """Feature sources of the transitions numbered ``idx`` in the order of ``trials``' rows."""
+        idx = np.asarray(idx, np.int64)
+        out = np.empty((idx.size, len(source_columns(self.T, self.m, self.p))))
+        start, T = 0, self.T
+        for i in trials:
+            for u, y in self.per_trial[i]:
+                k = len(u) - T
+                here = np.flatnonzero((idx >= start) & (idx < start + k))
+                for j in here:
+                    s = int(idx[j] - start)
+                    out[j] = np.concatenate([y[s:s + T].ravel(), u[s:s + T - 1].ravel()])
+                start += k
+        return out
+
+    def feature_sums(self, trials, dics) -> dict:
+        """One pass over ``trials``: the features' sums and products with ``b``, ``y`` and each other.
+
+        The dictionaries are those of one training set (:meth:`dictionary` on the same sums): they share the
+        standardisation of the sources, done once per block."""
+        D = sum(d.n_features for d in dics)
+        nb = self.nr + self.m
+        f = {"sF": np.zeros(D), "sFn": np.zeros(D), "GbF": np.zeros((nb, D)), "GbFn": np.zeros((nb, D)),
+             "GFF": np.zeros((D, D)), "GFFn": np.zeros((D, D)), "GFy": np.zeros((D, self.p))}
+        if D == 0:
+            return f
+        for i in trials:
+            for raw, src, u_now, y_now in trial_blocks(self.per_trial[i], self.T):
+                standard = dics[0].standardise(src)  # the dictionaries of one training set share it
+                phi = np.hstack([d.of_standardised(standard) for d in dics])
+                F, Fn, b = phi[:-1], phi[1:], self._b(raw, u_now)
+                f["sF"] += F.sum(0)
+                f["sFn"] += Fn.sum(0)
+                f["GbF"] += b.T @ F
+                f["GbFn"] += b.T @ Fn
+                f["GFF"] += F.T @ F
+                f["GFFn"] += F.T @ Fn
+                f["GFy"] += F.T @ (y_now - self.shift_y)
+        return f
+
+
+class FoldSystem:
+    """The centred, standardised parts of the normal equations shared by every dictionary of one training set: the
+    regressors ``b = [r; u]`` (their means, centred Gram, products with ``y``, scales) and the raw window's block
+    ``G_rr`` (see the module docstring)."""
+
+    def __init__(self, sums: SharedSums, nr: int, shift_b, shift_y):
+        n = sums.n
+        self.n, self.nr, self.shift_b, self.shift_y = n, nr, shift_b, shift_y
+        self.mb, self.my = sums.sb / n, sums.sy / n
+        self.Cbb = sums.Gbb  # centred in place (the sums are the caller's own total); no Gram-sized temporaries
+        for i in range(self.Cbb.shape[0]):
+            self.Cbb[i] -= (n * self.mb[i]) * self.mb
+        self.Cby = sums.Gby - n * np.outer(self.mb, self.my)
+        sb = np.sqrt(np.maximum(np.diag(self.Cbb), 0.0) / n)
+        self.sb = np.where(sb > 1e-12, sb, 1.0)
+        sr = self.sb[:nr]
+        self.Grr = self.Cbb[:nr, :nr] / sr[:, None]
+        self.Grr /= sr[None, :]
+
+    def factor(self, alpha: float):
+        """The lower Cholesky factor of ``G_rr + αn I`` (None where it is not positive definite)."""
+        A = self.Grr.copy()
+        A.flat[::self.nr + 1] += alpha * self.n
+        try:  # the transpose (the same symmetric matrix) is Fortran-ordered: factored where it lies
+            return sla.cholesky(A.T, lower=True, overwrite_a=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            return None
+
+
+class Candidate:
+    """The normal equations of one dictionary (columns ``cols`` of the feature sums) over a fold's training rows.
+
+    ``G`` is split as ``[r | o]`` with ``o = [φ; u]``; the regressors' order is ``[r; φ; u]`` and the targets'
+    ``[y; φ']``, as :func:`~.lifted._ridge` has them.
+    """
+
+    def __init__(self, fs: FoldSystem, feats: dict, cols: slice):
+        n, nr, mb = fs.n, fs.nr, fs.mb
+        mF, mFn = feats["sF"][cols] / n, feats["sFn"][cols] / n
+        CbF = feats["GbF"][:, cols] - n * np.outer(mb, mF)
+        CFF = feats["GFF"][cols, cols] - n * np.outer(mF, mF)
+        CbFn = feats["GbFn"][:, cols] - n * np.outer(mb, mFn)
+        CFy = feats["GFy"][cols] - n * np.outer(mF, fs.my)
+        CFFn = feats["GFFn"][cols, cols] - n * np.outer(mF, mFn)
+        self.fs, self.n, self.nr = fs, n, nr
+        self.mx = np.concatenate([mb[:nr] + fs.shift_b[:nr], mF, mb[nr:] + fs.shift_b[nr:]])
+        self.my = np.concatenate([fs.my + fs.shift_y, mFn])
+        sF = np.sqrt(np.maximum(np.diag(CFF), 0.0) / n)
+        self.sx = np.concatenate([fs.sb[:nr], np.where(sF > 1e-12, sF, 1.0), fs.sb[nr:]])
+        sr, so = self.sx[:nr], self.sx[nr:]
+        Cro = np.hstack([CbF[:nr], fs.Cbb[:nr, nr:]])
+        Coo = np.block([[CFF, CbF[nr:].T], [CbF[nr:], fs.Cbb[nr:, nr:]]])
+        self.Gro, self.Goo = Cro / np.outer(sr, so), Coo / np.outer(so, so)
+        R = np.vstack([np.hstack([fs.Cby[:nr], CbFn[:nr]]), np.hstack([CFy, CFFn]),
+                       np.hstack([fs.Cby[nr:], CbFn[nr:]])])
+        self.R = R / self.sx[:, None]
+
+    @property
+    def k(self) -> int:
+        return self.sx.size
+
+    def gram(self) -> np.ndarray:
+        """The whole standardised Gram ``[[G_rr, G_ro], [G_or, G_oo]]``."""
+        return np.block([[self.fs.Grr, self.Gro], [self.Gro.T, self.Goo]])
+
+    def coefficients(self, beta: np.ndarray):
+        """``(theta, intercept)`` in data units from standardised coefficients."""
+        theta = beta / self.sx[:, None]
+        return theta, self.my - self.mx @ theta
+
+
+def by_cholesky(alpha: float, k: int) -> bool:
+    """Whether the strength keeps every direction that the eigendecomposition route keeps (``αn`` above
+    ``1e-12 λ_max``, with ``λ_max ≤ k n`` on standardised columns)."""
+    return alpha > 1e-12 * k
+
+
+def solve_blocks(cand: Candidate, alpha: float, L) -> np.ndarray | None:
+    """Standardised ridge coefficients by elimination of the raw window's block (``L`` its factor); None where
+    the Schur complement is not positive definite."""
+    an = alpha * cand.n
+    if cand.nr == 0:
+        W, Z = np.zeros((0, cand.Goo.shape[0])), np.zeros((0, cand.R.shape[1]))
+    else:
+        W = sla.solve_triangular(L, cand.Gro, lower=True, check_finite=False)
+        Z = sla.solve_triangular(L, cand.R[:cand.nr], lower=True, check_finite=False)
+    S = cand.Goo + an * np.eye(cand.Goo.shape[0]) - W.T @ W
+    try:
+        Lo = sla.cholesky(S, lower=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        return None
+    beta_o = sla.cho_solve((Lo, True), cand.R[cand.nr:] - W.T @ Z, check_finite=False)
+    if cand.nr == 0:
+        return beta_o
+    beta_r = sla.solve_triangular(L, Z - W @ beta_o, lower=True, trans="T", check_finite=False)
+    return np.vstack([beta_r, beta_o])
+
+
+def eigen_path(cand: Candidate, alphas) -> list:
+    """Standardised ridge coefficients for several strengths from one eigendecomposition of the whole Gram (a null
+    direction of an unregularised fit dropped)."""
+    lam, V = np.linalg.eigh(cand.gram())
+    VtR = V.T @ cand.R
+    out = []
+    for a in alphas:
+        d = lam + a * cand.n
+        d = np.where(d > 1e-12 * max(lam[-1], 1e-300), d, np.inf)
+        out.append(V @ (VtR / d[:, None]))
+    return out
+
+
+def fitted_rows(theta, b, T: int, m: int, p: int, D: int):
+    """The fitted rows of the lifted ``A`` and ``B`` (newest output, then features), from the coefficients over
+    ``[z_prev; u_t]``: shapes ``(p + D, n_z)`` and ``(p + D, m)``."""
+    nr = T * (m + p)
+    Th = np.vstack([theta, b[None]]).T  # (p + D, nr + D + m + 1): [raw, features, u, intercept]
+    Ar = np.zeros((p + D, nr + D + 1))
+    Ar[:, :nr + D] = Th[:, :nr + D]
+    Ar[:, -1] = Th[:, -1]
+    return Ar, Th[:, nr + D:nr + D + m]
+
+
+def simulate_rows(Ar, Br, T: int, m: int, p: int, z0, uf) -> np.ndarray:
+    """Outputs of the lifted dynamics from lifted states ``z0`` (w, n_z) under inputs ``uf`` (w, H, m), stepping
+    only the fitted rows: the window parts of ``z`` shift by one sample, the new input and output enter at their ends,
+    the features are replaced and the constant stays."""
+    nr = T * (m + p)
+    z, out = np.array(z0, float), np.empty((uf.shape[0], uf.shape[1], p))
+    for k in range(uf.shape[1]):
+        new = z @ Ar.T + uf[:, k] @ Br.T
+        z[:, :(T - 1) * m] = z[:, m:T * m].copy()
+        z[:, (T - 1) * m:T * m] = uf[:, k]
+        z[:, T * m:nr - p] = z[:, T * m + p:nr].copy()
+        z[:, nr - p:nr + Ar.shape[0] - p] = new
+        out[:, k] = new[:, :p]
+    return out
