@@ -302,3 +302,43 @@ def simulate_rows(Ar, Br, T: int, m: int, p: int, z0, uf) -> np.ndarray:
         z[:, nr - p:nr + Ar.shape[0] - p] = new
         out[:, k] = new[:, :p]
     return out
+
+
+_QR_BLOCK_ROWS = 1024  # rows of the design absorbed into the triangular factor at a time
+
+
+def stacked_qr_ridge(moments, trials, dic, alpha: float, mx, sx, my) -> np.ndarray:
+    """Standardised ridge coefficients by least squares on the stacked design ``[Xs; √(αn) I]`` (targets
+    ``[Y − my; 0]``), by a triangular QR factor ``R`` of ``[X Y]`` updated block by block, ``R11 β = R12`` (the
+    accuracy of a QR of the data, Golub & Van Loan 2013, section 5.3 and 6.5.1). Each block is absorbed by LAPACK's
+    triangular-pentagonal QR (``dtpqrt``: the QR of ``[R; B]`` at ``2 (k + q)² rows`` flops): memory of the
+    ``(k + q)²`` factor and one block.
+
+    ``alpha`` must be positive (the stacked design then has full column rank).
+    """
+    k, q = sx.size, my.size
+    c = k + q
+    R = np.zeros((c, c), order="F")
+    nb, n = min(64, c), 0
+
+    def absorb(B):
+        _R, _B, _t, info = sla.lapack.dtpqrt(0, nb, R, B, overwrite_a=1, overwrite_b=1)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"LAPACK dtpqrt failed (info {info})")
+
+    for i in trials:
+        for raw, src, u_now, y_now in trial_blocks(moments.per_trial[i], moments.T, rows=_QR_BLOCK_ROWS):
+            phi = dic(src)
+            B = np.empty((raw.shape[0], c), order="F")
+            nr, D, p = raw.shape[1], phi.shape[1], y_now.shape[1]
+            B[:, :nr], B[:, nr:nr + D], B[:, nr + D:k] = raw, phi[:-1], u_now
+            B[:, k:k + p], B[:, k + p:] = y_now, phi[1:]
+            B[:, :k] -= mx
+            B[:, :k] /= sx
+            B[:, k:] -= my
+            absorb(B)
+            n += raw.shape[0]
+    ridge = np.zeros((k, c), order="F")
+    ridge[:, :k] = np.sqrt(alpha * n) * np.eye(k)
+    absorb(ridge)
+    return sla.solve_triangular(np.triu(R[:k, :k]), R[:k, k:], check_finite=False)

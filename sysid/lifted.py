@@ -37,7 +37,7 @@ from ._base import BasePredictor, check_fitted
 from ._progress import progress
 from ._lift_features import DICTIONARIES, Dictionary, source_dim, windows
 from ._lift_moments import (Candidate, FoldSystem, LiftMoments, by_cholesky, eigen_path, fitted_rows, simulate_rows,
-                            solve_blocks)
+                            solve_blocks, stacked_qr_ridge)
 from .exceptions import InvalidParameterError, SessionError
 from .statespace import markov_toeplitz
 
@@ -321,20 +321,26 @@ class LiftedPredictor(BasePredictor):
     def _fit_final(self, moments, n, w, a):
         """The chosen dictionary and strength on every trial: from the moments where the strength bounds the
         condition number of the normal equations to ``_GRAM_COND_MAX``, else by least squares on the stacked
-        design (the accuracy of the data, its memory)."""
+        design, its QR factor updated block by block (the accuracy of the data); unregularised (``α = 0``), the
+        least-norm solution of the materialised design."""
         T, m, p = moments.T, moments.m, moments.p
         sums, trials = moments.shared(None), moments.trials_except(None)
         dic = moments.dictionary(self.dictionary, sums, trials, n, w, self.seed)
         k = moments.nr + dic.n_features + m
-        beta = None
+        beta = cand = None
         if a > 0 and (k + a) / a <= _GRAM_COND_MAX:
             system = FoldSystem(sums, moments.nr, moments.shift_b, moments.shift_y)
             cand = Candidate(system, moments.feature_sums(trials, [dic]), slice(0, dic.n_features))
             L = system.factor(a)
             beta = solve_blocks(cand, a, L) if L is not None else None
+        if beta is None and a > 0:
+            if cand is None:  # the standardisation (means, scales) from the moments
+                cand = Candidate(FoldSystem(sums, moments.nr, moments.shift_b, moments.shift_y),
+                                 moments.feature_sums(trials, [dic]), slice(0, dic.n_features))
+            beta = stacked_qr_ridge(moments, trials, dic, a, cand.mx, cand.sx, cand.my)
         if beta is not None:
             theta, b = cand.coefficients(beta)
-        else:
+        else:  # unregularised: the least-norm solution of the materialised design (rank deficiency allowed)
             rows = _transitions([seg for segs in moments.per_trial for seg in segs], T)
             X = np.hstack([rows[0], dic(rows[1]), rows[2]])
             Y = np.hstack([rows[3], dic(rows[4])])

@@ -16,7 +16,7 @@ import stimsteer.sysid.lifted as lifted
 from stimsteer.control import SaturatingRateNetworkPlant, random_network, record_session
 from stimsteer.sysid._lift_features import draw_dictionary, windows
 from stimsteer.sysid._lift_moments import (Candidate, FoldSystem, LiftMoments, eigen_path, fitted_rows, simulate_rows,
-                                           solve_blocks)
+                                           solve_blocks, stacked_qr_ridge)
 from stimsteer.sysid.lifted import LiftedPredictor
 
 
@@ -159,14 +159,53 @@ def test_the_final_fit_solves_its_moments_and_never_materialises_the_design(sess
     np.testing.assert_allclose(lean.B_, reference.B_, atol=1e-9 * np.abs(reference.B_).max())
 
 
-def test_a_weak_strength_is_fitted_by_least_squares_on_the_stacked_design(session, monkeypatch):
-    # cond(G + αn I) <= (k + α)/α on standardised columns: at α = 1e-8 and k = 28 regressors that is 2.8e9, past
-    # the 1e8 the moments route is kept to; the stacked least squares has the data's own accuracy
+@pytest.fixture(scope="module")
+def collinear():
+    """A session whose standardised design has condition number 1.4e9 (measured): two outputs that differ by 1e-6 of
+    a state, held inputs, almost no noise."""
+    rng = np.random.default_rng(8)
+    plant = SaturatingRateNetworkPlant(random_network(3, density=0.6, seed=8), B=np.abs(rng.normal(size=(3, 2))),
+                                       C=np.array([[1.0, 0, 0], [1.0, 1e-6, 0]]), measurement_noise_std=1e-9,
+                                       sample_rate_hz=100.0)
+    u = np.repeat(rng.uniform(-3, 3, size=(60, 2)), 20, axis=0)
+    return record_session(plant, u, trials=[(k * 150, (k + 1) * 150) for k in range(8)], seed=8)
+
+
+def test_on_ill_conditioned_data_the_gram_loses_accuracy_and_the_streamed_qr_keeps_it(collinear):
+    # reference: LAPACK's SVD-based least squares on the materialised stacked design (lifted._ridge)
+    T = 8
+    per_trial = lifted._trial_segments(collinear, T)
+    moments = LiftMoments(per_trial, [0] * len(per_trial), T, 2, 2)
+    trials = moments.trials_except(None)
+    dic = moments.dictionary("rff", moments.shared(None), trials, 10, 1.0, 0)
+    rows = _materialised(per_trial, trials, T)
+    X, Y = np.hstack([rows[0], dic(rows[1]), rows[2]]), np.hstack([rows[3], dic(rows[4])])
+    errors = {}
+    for alpha in (1e-6, 1e-10):
+        ref = lifted._ridge(X, Y, alpha)[0]
+        system = FoldSystem(moments.shared(None), moments.nr, moments.shift_b, moments.shift_y)
+        cand = Candidate(system, moments.feature_sums(trials, [dic]), slice(0, 10))
+        gram = cand.coefficients(solve_blocks(cand, alpha, system.factor(alpha)))[0]
+        qr = cand.coefficients(stacked_qr_ridge(moments, trials, dic, alpha, cand.mx, cand.sx, cand.my))[0]
+        errors[alpha] = [np.abs(t - ref).max() / np.abs(ref).max() for t in (gram, qr)]
+    # measured: 4.2e-10 and 1.5e-12 at 1e-6 (bound (k + α)/α = 4.4e7: the moments are kept); 7.8e-6 and 2.5e-9 at
+    # 1e-10 (bound 4.4e11: the fit takes the QR)
+    assert errors[1e-6][0] < 1e-8 and errors[1e-6][1] < 1e-10
+    assert errors[1e-10][0] > 1e-6 and errors[1e-10][1] < 1e-8
+
+
+def test_a_weak_strength_is_fitted_by_the_streamed_qr_and_matches_least_squares(collinear, monkeypatch):
     calls = []
-    real = lifted._transitions
-    monkeypatch.setattr(lifted, "_transitions", lambda *a: calls.append(1) or real(*a))
-    LiftedPredictor(past_steps=3, n_features=15, bandwidths=(1.0,), alphas=(1e-8,)).fit(session)
+    real = lifted.stacked_qr_ridge
+    monkeypatch.setattr(lifted, "stacked_qr_ridge", lambda *a: calls.append(1) or real(*a))
+    weak = LiftedPredictor(past_steps=8, n_features=10, bandwidths=(1.0,), alphas=(1e-10,), seed=0).fit(collinear)
     assert calls
+    per_trial = lifted._trial_segments(collinear, 8)
+    rows = _materialised(per_trial, range(len(per_trial)), 8)
+    dic = weak.dictionary_
+    theta, b = lifted._ridge(np.hstack([rows[0], dic(rows[1]), rows[2]]), np.hstack([rows[3], dic(rows[4])]), 1e-10)
+    A = lifted._lifted_matrices(theta, b, 8, 2, 2, 10)[0]
+    np.testing.assert_allclose(weak.A_, A, atol=1e-8 * np.abs(A).max())
     calls.clear()
-    LiftedPredictor(past_steps=3, n_features=15, bandwidths=(1.0,), alphas=(1e-4,)).fit(session)  # 2.8e5
+    LiftedPredictor(past_steps=8, n_features=10, bandwidths=(1.0,), alphas=(1e-6,)).fit(collinear)  # bound 4.4e7
     assert not calls
