@@ -34,17 +34,27 @@ _BLOCK_ROWS = 1024  # transitions per block: at past 100 and 23 channels, about 
 
 
 def trial_blocks(segments, T: int, rows: int = _BLOCK_ROWS):
-    """Yield ``(raw_prev, src, u_now, y_now)`` per block of transitions of the segments ``(u, y)``.
+    """Yield ``(raw, u_now, y_now)`` per block of transitions of the segments ``(u, y)``.
 
-    ``src`` has one row more than the others: ``src[:-1]`` are the sources of the previous windows, ``src[1:]`` of the
-    next ones (the transition's target features).
+    ``raw`` has one row more than the others: ``raw[:-1]`` are the previous windows of the block's transitions,
+    ``raw[1:]`` the next ones (whose sources, ``raw[:, source_columns(...)]``, give the target features).
     """
     for u, y in segments:
         k = len(u) - T
         for i0 in range(0, k, rows):
             i1 = min(k, i0 + rows)
-            raw, src = windows(u[i0:i1 + T], y[i0:i1 + T], T)
-            yield raw[:-1], src, u[i0 + T:i1 + T], y[i0 + T:i1 + T]
+            yield raw_windows(u[i0:i1 + T], y[i0:i1 + T], T), u[i0 + T:i1 + T], y[i0 + T:i1 + T]
+
+
+def raw_windows(u: np.ndarray, y: np.ndarray, T: int) -> np.ndarray:
+    """:func:`~._lift_features.windows`' raw windows (inputs then outputs, time-major), copied once from sliding
+    views of the samples."""
+    k, m, p = len(u) - T + 1, u.shape[1], y.shape[1]
+    raw = np.empty((k, T * (m + p)))
+    # splitting the contiguous last axis of a column slice is a view: the windows are written into ``raw``
+    raw[:, :T * m].reshape(k, T, m)[...] = np.lib.stride_tricks.sliding_window_view(u, T, axis=0).transpose(0, 2, 1)
+    raw[:, T * m:].reshape(k, T, p)[...] = np.lib.stride_tricks.sliding_window_view(y, T, axis=0).transpose(0, 2, 1)
+    return raw
 
 
 def source_columns(T: int, m: int, p: int) -> np.ndarray:
@@ -99,8 +109,8 @@ class LiftMoments:
         self.shift_b, self.shift_y = np.concatenate([np.tile(su, T), np.tile(sy, T), su]), sy
         self.parts = [SharedSums(self.nr + m, p) for _ in range(max(self.part_of, default=0) + 1)]
         for i, segs in enumerate(per_trial):
-            for raw, _src, u_now, y_now in trial_blocks(segs, T):
-                self.parts[self.part_of[i]].add(self._b(raw, u_now), y_now - self.shift_y)
+            for raw, u_now, y_now in trial_blocks(segs, T):
+                self.parts[self.part_of[i]].add(self._b(raw[:-1], u_now), y_now - self.shift_y)
 
     def _b(self, raw, u_now):
         b = np.hstack([raw, u_now])
@@ -151,11 +161,14 @@ class LiftMoments:
              "GFF": np.zeros((D, D)), "GFFn": np.zeros((D, D)), "GFy": np.zeros((D, self.p))}
         if D == 0:
             return f
+        cols = source_columns(self.T, self.m, self.p)
         for i in trials:
-            for raw, src, u_now, y_now in trial_blocks(self.per_trial[i], self.T):
-                standard = dics[0].standardise(src)  # the dictionaries of one training set share it
+            for raw, u_now, y_now in trial_blocks(self.per_trial[i], self.T):
+                standard = raw[:, cols]  # the sources, standardised in place as Dictionary.standardise does; the
+                standard -= dics[0].mean  # dictionaries of one training set share it
+                standard /= dics[0].scale
                 phi = np.hstack([d.of_standardised(standard) for d in dics])
-                F, Fn, b = phi[:-1], phi[1:], self._b(raw, u_now)
+                F, Fn, b = phi[:-1], phi[1:], self._b(raw[:-1], u_now)
                 f["sF"] += F.sum(0)
                 f["sFn"] += Fn.sum(0)
                 f["GbF"] += b.T @ F
@@ -181,13 +194,18 @@ class FoldSystem:
         self.Cby = sums.Gby - n * np.outer(self.mb, self.my)
         sb = np.sqrt(np.maximum(np.diag(self.Cbb), 0.0) / n)
         self.sb = np.where(sb > 1e-12, sb, 1.0)
-        sr = self.sb[:nr]
-        self.Grr = self.Cbb[:nr, :nr] / sr[:, None]
-        self.Grr /= sr[None, :]
+
+    @property
+    def Grr(self) -> np.ndarray:
+        """The standardised raw window's block, ``C_rr / (s_r s_rᵀ)`` (made when asked for: one Gram-sized array)."""
+        sr = self.sb[:self.nr]
+        G = self.Cbb[:self.nr, :self.nr] / sr[:, None]
+        G /= sr[None, :]
+        return G
 
     def factor(self, alpha: float):
         """The lower Cholesky factor of ``G_rr + αn I`` (None where it is not positive definite)."""
-        A = self.Grr.copy()
+        A = self.Grr
         A.flat[::self.nr + 1] += alpha * self.n
         try:  # the transpose (the same symmetric matrix) is Fortran-ordered: factored where it lies
             return sla.cholesky(A.T, lower=True, overwrite_a=True, check_finite=False)
@@ -246,22 +264,43 @@ def by_cholesky(alpha: float, k: int) -> bool:
 def solve_blocks(cand: Candidate, alpha: float, L) -> np.ndarray | None:
     """Standardised ridge coefficients by elimination of the raw window's block (``L`` its factor); None where
     the Schur complement is not positive definite."""
-    an = alpha * cand.n
-    if cand.nr == 0:
-        W, Z = np.zeros((0, cand.Goo.shape[0])), np.zeros((0, cand.R.shape[1]))
+    return solve_shared([cand], alpha, L)[0]
+
+
+def solve_shared(cands: list, alpha: float, L) -> list:
+    """:func:`solve_blocks` for candidates of one training set (one factor ``L``), their triangular solves with
+    ``L`` batched into one forward and one backward solve (wide right-hand sides: fewer, faster BLAS calls)."""
+    nr = cands[0].nr
+    if nr == 0:
+        fwd = np.zeros((0, sum(c.Goo.shape[0] + c.R.shape[1] for c in cands)))
     else:
-        W = sla.solve_triangular(L, cand.Gro, lower=True, check_finite=False)
-        Z = sla.solve_triangular(L, cand.R[:cand.nr], lower=True, check_finite=False)
-    S = cand.Goo + an * np.eye(cand.Goo.shape[0]) - W.T @ W
-    try:
-        Lo = sla.cholesky(S, lower=True, check_finite=False)
-    except np.linalg.LinAlgError:
-        return None
-    beta_o = sla.cho_solve((Lo, True), cand.R[cand.nr:] - W.T @ Z, check_finite=False)
-    if cand.nr == 0:
-        return beta_o
-    beta_r = sla.solve_triangular(L, Z - W @ beta_o, lower=True, trans="T", check_finite=False)
-    return np.vstack([beta_r, beta_o])
+        fwd = sla.solve_triangular(L, np.hstack([np.hstack([c.Gro, c.R[:nr]]) for c in cands]), lower=True,
+                                   check_finite=False)
+    parts, at = [], 0
+    for cand in cands:
+        w, q = cand.Goo.shape[0], cand.R.shape[1]
+        W, Z = fwd[:, at:at + w], fwd[:, at + w:at + w + q]
+        at += w + q
+        S = cand.Goo + alpha * cand.n * np.eye(w) - W.T @ W
+        try:
+            Lo = sla.cholesky(S, lower=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            parts.append(None)
+            continue
+        beta_o = sla.cho_solve((Lo, True), cand.R[nr:] - W.T @ Z, check_finite=False)
+        parts.append((beta_o, Z - W @ beta_o))
+    kept = [x for x in parts if x is not None]
+    if nr and kept:
+        back = sla.solve_triangular(L, np.hstack([x[1] for x in kept]), lower=True, trans="T", check_finite=False)
+    out, at = [], 0
+    for x in parts:
+        if x is None:
+            out.append(None)
+            continue
+        q = x[1].shape[1]
+        out.append(np.vstack([back[:, at:at + q], x[0]]) if nr else x[0])
+        at += q
+    return out
 
 
 def eigen_path(cand: Candidate, alphas) -> list:
@@ -320,6 +359,7 @@ def stacked_qr_ridge(moments, trials, dic, alpha: float, mx, sx, my) -> np.ndarr
     c = k + q
     R = np.zeros((c, c), order="F")
     nb, n = min(64, c), 0
+    cols = source_columns(moments.T, moments.m, moments.p)
 
     def absorb(B):
         _R, _B, _t, info = sla.lapack.dtpqrt(0, nb, R, B, overwrite_a=1, overwrite_b=1)
@@ -327,17 +367,17 @@ def stacked_qr_ridge(moments, trials, dic, alpha: float, mx, sx, my) -> np.ndarr
             raise np.linalg.LinAlgError(f"LAPACK dtpqrt failed (info {info})")
 
     for i in trials:
-        for raw, src, u_now, y_now in trial_blocks(moments.per_trial[i], moments.T, rows=_QR_BLOCK_ROWS):
-            phi = dic(src)
-            B = np.empty((raw.shape[0], c), order="F")
+        for raw, u_now, y_now in trial_blocks(moments.per_trial[i], moments.T, rows=_QR_BLOCK_ROWS):
+            phi = dic(raw[:, cols])
+            B = np.empty((u_now.shape[0], c), order="F")
             nr, D, p = raw.shape[1], phi.shape[1], y_now.shape[1]
-            B[:, :nr], B[:, nr:nr + D], B[:, nr + D:k] = raw, phi[:-1], u_now
+            B[:, :nr], B[:, nr:nr + D], B[:, nr + D:k] = raw[:-1], phi[:-1], u_now
             B[:, k:k + p], B[:, k + p:] = y_now, phi[1:]
             B[:, :k] -= mx
             B[:, :k] /= sx
             B[:, k:] -= my
             absorb(B)
-            n += raw.shape[0]
+            n += u_now.shape[0]
     ridge = np.zeros((k, c), order="F")
     ridge[:, :k] = np.sqrt(alpha * n) * np.eye(k)
     absorb(ridge)

@@ -37,7 +37,7 @@ from ._base import BasePredictor, check_fitted
 from ._progress import progress
 from ._lift_features import DICTIONARIES, Dictionary, source_dim, windows
 from ._lift_moments import (Candidate, FoldSystem, LiftMoments, by_cholesky, eigen_path, fitted_rows, simulate_rows,
-                            solve_blocks, stacked_qr_ridge)
+                            solve_blocks, solve_shared, stacked_qr_ridge)
 from .exceptions import InvalidParameterError, SessionError
 from .statespace import markov_toeplitz
 
@@ -305,9 +305,11 @@ class LiftedPredictor(BasePredictor):
 
         missing = []
         for i, a in enumerate(alphas):  # one factor of the raw window's block per strength, for every dictionary
-            L = system.factor(a) if any(by_cholesky(a, c.k) for c in cands) else None
-            for j, cand in enumerate(cands):
-                beta = solve_blocks(cand, a, L) if L is not None and by_cholesky(a, cand.k) else None
+            here = [j for j, c in enumerate(cands) if by_cholesky(a, c.k)]
+            L = system.factor(a) if here else None
+            betas = solve_shared([cands[j] for j in here], a, L) if L is not None else [None] * len(here)
+            missing += [(j, i) for j in range(len(cands)) if j not in here]
+            for j, beta in zip(here, betas):
                 if beta is None:
                     missing.append((j, i))
                 else:
