@@ -350,8 +350,7 @@ class LiftedPredictor(BasePredictor):
         self.A_, self.B_, self.C_ = _lifted_matrices(theta, b, T, m, p, dic.n_features)
         self.dictionary_ = dic
         self.n_features_, self.bandwidth_, self.alpha_ = dic.n_features, w, a
-        inner = self.A_[:-1, :-1]
-        self.spectral_radius_ = float(np.max(np.abs(np.linalg.eigvals(inner)), initial=0.0)) if inner.size else 0.0
+        self.spectral_radius_ = _spectral_radius(self.A_)
 
     def _describe(self, session, T):
         self.past_steps_, self.max_horizon_steps_ = T, None
@@ -423,7 +422,8 @@ class LiftedPredictor(BasePredictor):
                 "cv_table": {c: self.cv_table_[c].to_numpy(dtype=float) for c in self.cv_table_.columns},
                 "names": [list(self.input_names_), list(self.output_names_), list(self.input_units_),
                           list(self.output_units_)], "sample_rate_hz": self.sample_rate_hz_,
-                "past_steps": int(self.past_steps_), "selection_notes": list(self.selection_notes_)}
+                "past_steps": int(self.past_steps_), "selection_notes": list(self.selection_notes_),
+                "spectral_radius": float(self.spectral_radius_)}
 
     @classmethod
     def from_state(cls, state: dict) -> "LiftedPredictor":
@@ -443,10 +443,16 @@ class LiftedPredictor(BasePredictor):
                                                                                    (ins, outs, iu, ou))
         obj.sample_rate_hz_ = float(state["sample_rate_hz"])
         obj.selection_notes_ = tuple(state.get("selection_notes", ()))
-        inner = obj.A_[:-1, :-1]
-        obj.spectral_radius_ = float(np.max(np.abs(np.linalg.eigvals(inner)), initial=0.0)) if inner.size else 0.0
+        obj.spectral_radius_ = float(state["spectral_radius"]) if "spectral_radius" in state else \
+            _spectral_radius(obj.A_)  # files written before it was stored (at past 100 ms, 2.3 s of eigenvalues)
         obj._mark_fitted()
         return obj
+
+
+def _spectral_radius(A) -> float:
+    """Of the lifted ``A`` without its constant."""
+    inner = A[:-1, :-1]
+    return float(np.max(np.abs(np.linalg.eigvals(inner)), initial=0.0)) if inner.size else 0.0
 
 
 def _validation_windows(valid, T, H):

@@ -55,6 +55,15 @@ def test_a_saved_lifted_model_predicts_the_same(small, session, tmp_path):
     up, yp, uf = session.u[:2], session.y[:2], session.u[2:40]
     np.testing.assert_array_equal(back.predict(up, yp, uf), small.predict(up, yp, uf))
     np.testing.assert_array_equal(back.input_map(7), small.input_map(7))
+    assert back.spectral_radius_ == small.spectral_radius_  # stored, not recomputed on every load
+
+
+def test_a_model_file_without_its_spectral_radius_gets_it_computed(small):
+    state = small.to_state()
+    del state["spectral_radius"]  # as written before it was stored
+    back = LiftedPredictor.from_state(state)
+    assert back.spectral_radius_ == pytest.approx(float(np.max(np.abs(np.linalg.eigvals(small.A_[:-1, :-1])))),
+                                                  rel=1e-12)
 
 
 @pytest.mark.slow
