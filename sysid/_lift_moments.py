@@ -6,8 +6,9 @@ ridge solution on standardised, centred columns needs only the regressors' and t
 These are accumulated over blocks of at most ``_BLOCK_ROWS`` transitions, whose windows are made from the raw samples
 when the block is reached, so memory is bounded by the Gram, never by transitions × window:
 
-* the shared part ``b = [r; u]`` (its products with itself and with ``y``) once for every fold part of the trials,
-  in one pass; a fold's training sums are the sums of the other parts, the final fit's the sum of all;
+* the shared part ``b = [r; u]`` and the output ``y``, which together are the lagged vector of the samples over
+  ``T + 1`` lags: the compact lag sums of :mod:`stimsteer.sysid._lagged` of every fold part of the trials, in one
+  pass; a fold's training Gram is assembled from the sums of the other parts, the final fit's from all;
 * the features of every candidate dictionary of a fold (drawn from that fold's training sources, standardised by
   the training moments) in one pass over the fold's training trials.
 
@@ -28,7 +29,9 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
-from ._lift_features import dictionary_from, windows
+from ._lagged import _lagged_gram, _LagSums, _stream_lag_sums
+from ._lift_features import dictionary_from
+from .arx_regression import lead_order
 
 _BLOCK_ROWS = 1024  # transitions per block: at past 100 and 23 channels, about 19 MB per window array
 
@@ -63,54 +66,60 @@ def source_columns(T: int, m: int, p: int) -> np.ndarray:
 
 
 class SharedSums:
-    """Sums over transitions of ``b = [r; u] − shift_b`` and ``y − shift_y``: count, sums, ``bᵀb`` and ``bᵀy``."""
+    """Sums over transitions of ``b = [r; u] − shift_b`` and ``y − shift_y``: count, sums, ``bᵀb`` and ``bᵀy``
+    (``Gbb`` and ``Gby`` are views of one Gram assembled in the order ``[b; y]``)."""
 
-    def __init__(self, nb: int, p: int):
-        self.n, self.sb, self.sy = 0, np.zeros(nb), np.zeros(p)
-        self.Gbb, self.Gby = np.zeros((nb, nb)), np.zeros((nb, p))
+    def __init__(self, sums: _LagSums, index: np.ndarray, nb: int):
+        s = lead_order(sums.lagged_sums(), index.reshape(-1))
+        W = _lagged_gram(sums, index)
+        self.n, self.sb, self.sy = int(sums.n), s[:nb], s[nb:]
+        self.Gbb, self.Gby = W[:nb, :nb], W[:nb, nb:]
 
-    def add(self, b: np.ndarray, y: np.ndarray):
-        self.n += b.shape[0]
-        self.sb += b.sum(0)
-        self.sy += y.sum(0)
-        self.Gbb += b.T @ b
-        self.Gby += b.T @ y
 
-    @classmethod
-    def total(cls, parts: list) -> "SharedSums":
-        out = cls(parts[0].sb.size, parts[0].sy.size)
-        for part in parts:
-            out.n += part.n
-            out.sb += part.sb
-            out.sy += part.sy
-            out.Gbb += part.Gbb
-            out.Gby += part.Gby
-        return out
+def lifted_index(T: int, m: int, p: int) -> np.ndarray:
+    """Positions ``(T + 1, m + p)`` of the lagged vector ``w_j = [Z_j; …; Z_{j−T}]`` (``Z = [y u]``) in the order
+    ``[b; y_j]`` of a transition into ``j``: the raw window ending at ``j − 1`` (inputs, then outputs, oldest first),
+    the current input ``u_j``, then the output ``y_j`` (every entry used once)."""
+    pos = np.empty((T + 1, p + m), dtype=np.intp)
+    for q in range(T):  # sample j − T + q sits at lag T − q
+        pos[T - q, p:] = q * m + np.arange(m)
+        pos[T - q, :p] = T * m + q * p + np.arange(p)
+    pos[0, p:] = T * (m + p) + np.arange(m)
+    pos[0, :p] = T * (m + p) + m + np.arange(p)
+    return pos
 
 
 class LiftMoments:
     """The shared sums of every fold part of the trials, from one pass (see the module docstring).
 
+    The shared regressors and the output of a transition into sample ``j`` are the lagged vector ``[Z_j; …;
+    Z_{j−T}]`` of ``Z = [y u]`` (:func:`lifted_index`), so each fold part keeps the compact lag sums of
+    :mod:`stimsteer.sysid._lagged` (``(T + 1) (m + p)²`` numbers, not a Gram), and a training set's Gram is
+    assembled once from the sums of its parts.
+
     Parameters
     ----------
-    per_trial : list of list of (u, y)
+    session : Session or SessionFile
+    positions : list of list of (start, stop)
         Each trial's valid segments, each long enough for one transition.
+    per_trial : list of list of (u, y)
+        Their samples.
     part_of : sequence of int
         The fold part of each trial (all 0 for a single part).
     T, m, p : window, inputs, outputs
     """
 
-    def __init__(self, per_trial, part_of, T: int, m: int, p: int):
+    def __init__(self, session, positions, per_trial, part_of, T: int, m: int, p: int):
         self.per_trial, self.part_of, self.T, self.m, self.p = per_trial, list(part_of), T, m, p
         self.nr = T * (m + p)
         first = next((seg for segs in per_trial for seg in segs), None)
         su = first[0][:_BLOCK_ROWS].mean(0) if first is not None else np.zeros(m)
         sy = first[1][:_BLOCK_ROWS].mean(0) if first is not None else np.zeros(p)
         self.shift_b, self.shift_y = np.concatenate([np.tile(su, T), np.tile(sy, T), su]), sy
-        self.parts = [SharedSums(self.nr + m, p) for _ in range(max(self.part_of, default=0) + 1)]
-        for i, segs in enumerate(per_trial):
-            for raw, u_now, y_now in trial_blocks(segs, T):
-                self.parts[self.part_of[i]].add(self._b(raw[:-1], u_now), y_now - self.shift_y)
+        self.index = lifted_index(T, m, p)
+        pieces = [(a + T, b, self.part_of[i]) for i, segs in enumerate(positions) for a, b in segs]
+        self.parts = _stream_lag_sums(session, pieces, max(self.part_of, default=0) + 1, T,
+                                      shift=np.concatenate([sy, su]))
 
     def _b(self, raw, u_now):
         b = np.hstack([raw, u_now])
@@ -122,8 +131,12 @@ class LiftMoments:
         return [i for i in range(len(self.per_trial)) if part is None or self.part_of[i] != part]
 
     def shared(self, part: int | None) -> SharedSums:
-        """The shared sums of the trials outside ``part`` (every trial for None)."""
-        return SharedSums.total([s for k, s in enumerate(self.parts) if k != part])
+        """The shared sums of the trials outside ``part`` (every trial for None), their Gram assembled."""
+        sums = None
+        for k, part_sums in enumerate(self.parts):
+            if k != part:
+                sums = part_sums if sums is None else sums.plus(part_sums)
+        return SharedSums(sums, self.index, self.nr + self.m)
 
     def dictionary(self, kind, sums: SharedSums, trials, n_features, bandwidth, seed):
         """The dictionary :func:`~._lift_features.draw_dictionary` draws from the sources of ``trials``' rows."""

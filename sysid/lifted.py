@@ -50,13 +50,13 @@ _MAX_CV_WINDOWS = 200  # validation windows per fold (evenly strided beyond that
 _GRAM_COND_MAX = 1e8
 
 
-def _trial_segments(session, T: int):
-    """Per trial, the samples ``(u, y)`` of each valid segment long enough for one transition."""
+def _trial_segments(session, T: int, with_positions: bool = False):
+    """Per trial, the samples ``(u, y)`` of each valid segment long enough for one transition (and, with
+    ``with_positions``, per trial their ``(start, stop)`` as a second list)."""
     segments = session.segments(min_length=T + 1)
-    out = []
-    for a, b in session.trials:
-        out.append([session.read(s, e)[:2] for s, e in segments if a <= s and e <= b])
-    return out
+    where = [[(s, e) for s, e in segments if a <= s and e <= b] for a, b in session.trials]
+    samples = [[session.read(s, e)[:2] for s, e in segs] for segs in where]
+    return (samples, where) if with_positions else samples
 
 
 def _transitions(segs, T: int):
@@ -232,7 +232,7 @@ class LiftedPredictor(BasePredictor):
         T, sizes, widths, alphas = self._check(session)
         m, p = session.n_inputs, session.n_outputs
         H = int(self.cv_horizon_steps)
-        per_trial = _trial_segments(session, T)
+        per_trial, positions = _trial_segments(session, T, with_positions=True)
         counts = [sum(len(u) - T for u, _y in segs) for segs in per_trial]
         if not sum(counts):
             raise SessionError(f"no valid segment holds more than past_steps = {T} samples; the lifted predictor "
@@ -251,7 +251,7 @@ class LiftedPredictor(BasePredictor):
         part_of = np.zeros(len(per_trial), int)
         for k, fold in enumerate(folds):
             part_of[sorted(fold)] = k
-        moments = LiftMoments(per_trial, part_of, T, m, p)  # one pass: the shared sums of every fold
+        moments = LiftMoments(session, positions, per_trial, part_of, T, m, p)  # one pass: every fold's lag sums
         table = self._cross_validate(moments, folds, combos, alphas, H) if len(grid) > 1 else \
             pd.DataFrame({"n_features": [grid[0][0]], "bandwidth": [grid[0][1]], "alpha": [grid[0][2]],
                           "cv_nmse": [np.nan]})
@@ -296,12 +296,12 @@ class LiftedPredictor(BasePredictor):
         edges = np.cumsum([0] + [d.n_features for d in dics])
         cands = [Candidate(system, feats, slice(edges[j], edges[j + 1])) for j in range(len(combos))]
         raw0, src0, uf, yt = _validation_windows(valid, T, H)
-        z0 = [np.hstack([raw0, dic(src0), np.ones((raw0.shape[0], 1))]) for dic in dics]
+        features0, ones = [dic(src0) for dic in dics], np.ones((raw0.shape[0], 1))
 
-        def score(j, i, beta):
+        def score(j, i, beta):  # the lifted starts made per score: one candidate's at a time in memory
             theta, b = cands[j].coefficients(beta)
-            scores[j, i] = _validation_nmse(*fitted_rows(theta, b, T, m, p, dics[j].n_features), T, m, p, z0[j],
-                                            uf, yt)
+            z0 = np.hstack([raw0, features0[j], ones])
+            scores[j, i] = _validation_nmse(*fitted_rows(theta, b, T, m, p, dics[j].n_features), T, m, p, z0, uf, yt)
 
         missing = []
         for i, a in enumerate(alphas):  # one factor of the raw window's block per strength, for every dictionary

@@ -45,8 +45,8 @@ def _materialised(per_trial, trials, T):
 @pytest.mark.parametrize("kind, n_features", [("rff", 12), ("rbf", 9), ("poly2", None), ("rff", 0)])
 def test_the_moments_give_scikit_learns_ridge_on_the_standardised_design(session, kind, n_features):
     T, m, p = 3, session.n_inputs, session.n_outputs
-    per_trial = lifted._trial_segments(session, T)
-    moments = LiftMoments(per_trial, [i % 3 for i in range(len(per_trial))], T, m, p)
+    per_trial, positions = lifted._trial_segments(session, T, with_positions=True)
+    moments = LiftMoments(session, positions, per_trial, [i % 3 for i in range(len(per_trial))], T, m, p)
     trials = moments.trials_except(1)  # a fold's training trials: the sums of the other parts
     sums = moments.shared(1)
     dic = moments.dictionary(kind, sums, trials, n_features, 1.0, 3)
@@ -174,8 +174,8 @@ def collinear():
 def test_on_ill_conditioned_data_the_gram_loses_accuracy_and_the_streamed_qr_keeps_it(collinear):
     # reference: LAPACK's SVD-based least squares on the materialised stacked design (lifted._ridge)
     T = 8
-    per_trial = lifted._trial_segments(collinear, T)
-    moments = LiftMoments(per_trial, [0] * len(per_trial), T, 2, 2)
+    per_trial, positions = lifted._trial_segments(collinear, T, with_positions=True)
+    moments = LiftMoments(collinear, positions, per_trial, [0] * len(per_trial), T, 2, 2)
     trials = moments.trials_except(None)
     dic = moments.dictionary("rff", moments.shared(None), trials, 10, 1.0, 0)
     rows = _materialised(per_trial, trials, T)
