@@ -121,11 +121,6 @@ class LiftMoments:
         self.parts = _stream_lag_sums(session, pieces, max(self.part_of, default=0) + 1, T,
                                       shift=np.concatenate([sy, su]))
 
-    def _b(self, raw, u_now):
-        b = np.hstack([raw, u_now])
-        b -= self.shift_b
-        return b
-
     def trials_except(self, part: int | None) -> list:
         """Trial indices outside fold part ``part`` (every trial for None), in trial order."""
         return [i for i in range(len(self.per_trial)) if part is None or self.part_of[i] != part]
@@ -175,21 +170,56 @@ class LiftMoments:
         if D == 0:
             return f
         cols = source_columns(self.T, self.m, self.p)
+        T, m, p, nr = self.T, self.m, self.p, self.nr
+        # the window moved by one sample: slot q of a window is slot q − 1 of the next (raw columns of each)
+        older = np.r_[np.arange((T - 1) * m), T * m + np.arange((T - 1) * p)]
+        newer = np.r_[np.arange(m, T * m), T * m + p + np.arange((T - 1) * p)]
+        oldest = np.r_[np.arange(m), T * m + np.arange(p)]
+        features = _stacked_features(dics)
         for i in trials:
             for raw, u_now, y_now in trial_blocks(self.per_trial[i], self.T):
                 standard = raw[:, cols]  # the sources, standardised in place as Dictionary.standardise does; the
                 standard -= dics[0].mean  # dictionaries of one training set share it
                 standard /= dics[0].scale
-                phi = np.hstack([d.of_standardised(standard) for d in dics])
-                F, Fn, b = phi[:-1], phi[1:], self._b(raw[:-1], u_now)
+                phi = features(standard)  # rows 0..k: φ of every window of the block
+                raw -= self.shift_b[:nr]
+                # Σ_t b_t φ_tᵀ and Σ_t b_t φ_{t+1}ᵀ over the block's transitions t = 0..k−1 from one product over
+                # every window: P = Σ_{t=0..k} r_t φ_tᵀ; the next window's features pair with the window moved
+                # by one sample, so only the oldest slot's products are taken apart
+                P = raw.T @ phi
+                f["GbF"][:nr] += P - np.outer(raw[-1], phi[-1])
+                f["GbFn"][newer] += P[older] - np.outer(raw[0, older], phi[0])
+                f["GbFn"][oldest] += raw[:-1, oldest].T @ phi[1:]
+                us = u_now - self.shift_b[nr:]
+                f["GbF"][nr:] += us.T @ phi[:-1]
+                f["GbFn"][nr:] += us.T @ phi[1:]
+                F, Fn = phi[:-1], phi[1:]
                 f["sF"] += F.sum(0)
                 f["sFn"] += Fn.sum(0)
-                f["GbF"] += b.T @ F
-                f["GbFn"] += b.T @ Fn
                 f["GFF"] += F.T @ F
                 f["GFFn"] += F.T @ Fn
                 f["GFy"] += F.T @ (y_now - self.shift_y)
         return f
+
+
+def _stacked_features(dics):
+    """``standard ↦ [φ_1(standard), …]`` for dictionaries sharing their standardisation: random Fourier
+    dictionaries in one product with their stacked frequencies (each column the number its own dictionary gives, up
+    to the order of a dot product's additions), the others one by one."""
+    if not all(d.kind == "rff" for d in dics) or not any(d.n_features for d in dics):
+        return lambda standard: np.hstack([d.of_standardised(standard) for d in dics])
+    kept = [d for d in dics if d.n_features]
+    omega, phase = np.vstack([d.omega for d in kept]), np.concatenate([d.phase for d in kept])
+    amplitude = np.concatenate([np.full(d.n_features, np.sqrt(2.0 / d.n_features)) for d in kept])
+
+    def features(standard):
+        out = standard @ omega.T
+        out += phase
+        np.cos(out, out=out)
+        out *= amplitude
+        return out
+
+    return features
 
 
 class FoldSystem:
