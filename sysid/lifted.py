@@ -350,7 +350,7 @@ class LiftedPredictor(BasePredictor):
         self.A_, self.B_, self.C_ = _lifted_matrices(theta, b, T, m, p, dic.n_features)
         self.dictionary_ = dic
         self.n_features_, self.bandwidth_, self.alpha_ = dic.n_features, w, a
-        self.spectral_radius_ = _spectral_radius(self.A_)
+        self.spectral_radius_ = _spectral_radius(self.A_, T * m)
 
     def _describe(self, session, T):
         self.past_steps_, self.max_horizon_steps_ = T, None
@@ -444,14 +444,16 @@ class LiftedPredictor(BasePredictor):
         obj.sample_rate_hz_ = float(state["sample_rate_hz"])
         obj.selection_notes_ = tuple(state.get("selection_notes", ()))
         obj.spectral_radius_ = float(state["spectral_radius"]) if "spectral_radius" in state else \
-            _spectral_radius(obj.A_)  # files written before it was stored (at past 100 ms, 2.3 s of eigenvalues)
+            _spectral_radius(obj.A_, obj.past_steps_ * obj.n_inputs_)  # files written before it was stored
         obj._mark_fitted()
         return obj
 
 
-def _spectral_radius(A) -> float:
-    """Of the lifted ``A`` without its constant."""
-    inner = A[:-1, :-1]
+def _spectral_radius(A, n_window_inputs: int) -> float:
+    """Of the lifted ``A`` without its constant. The window's input rows only shift the inputs along (nothing else
+    enters them), so in the order ``[inputs, rest]`` that ``A`` is block lower triangular with a nilpotent leading
+    block: its other eigenvalues are those of the trailing block (outputs and features; a smaller eigenproblem)."""
+    inner = A[n_window_inputs:-1, n_window_inputs:-1]
     return float(np.max(np.abs(np.linalg.eigvals(inner)), initial=0.0)) if inner.size else 0.0
 
 
