@@ -36,6 +36,11 @@ def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
     horizon 50 each of 4,900 × 2,450). Singular values of the stacked matrix at or below machine precision times
     the largest are dropped, as LAPACK's ``gelsd`` drops them (``rcond < 0``)."""
     F1, F2 = F[:n_b], F[n_b:]
+    if F.shape[1] > n_b and not np.any(F1[:, n_b:]):
+        # a lower-triangular factor (every combined one): F1ᵀ is zero below its first n_b rows, whose part of F2ᵀ
+        # only adds a constant to the residual; the SVD is of the square block (at 2,450 regressor rows 3.8 s
+        # against 6.5 s on two threads)
+        F1, F2 = F1[:, :n_b], F2[:, :n_b]
     U, sig, Vt = sla.svd(F1.T, full_matrices=False, lapack_driver="gesdd", check_finite=False)
     UtB = U.T @ F2.T
     del U
