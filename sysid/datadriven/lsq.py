@@ -20,17 +20,9 @@ _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
 
 
 # ------------------------------------------------------------------------------------------------ LSQ
-def _lsq_map(F: np.ndarray, n_b: int, strength: float) -> np.ndarray:
-    """``Θ = argmin ||F2 − Θ F1||_F² + strength ||Θ||_F²`` with ``F = [F1; F2]`` (stacked least squares)."""
-    F1, F2 = F[:n_b], F[n_b:]
-    A = np.vstack([F1.T, np.sqrt(strength) * np.eye(n_b)])
-    B = np.vstack([F2.T, np.zeros((n_b, F2.shape[0]))])
-    return sla.lstsq(A, B, lapack_driver="gelsd", check_finite=False)[0].T
-
-
 def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
-    """:func:`_lsq_map` for several strengths from one SVD of ``F1ᵀ = U Σ Vᵀ``: ``Θᵀ = V diag(σ / (σ² + s)) Uᵀ
-    F2ᵀ`` is the stacked least squares' minimiser (the ridge filter factors; Hansen P. C. (1998), Rank-Deficient and
+    """``Θ = argmin ||F2 − Θ F1||_F² + s ||Θ||_F²`` (``F = [F1; F2]``) for several strengths ``s`` from one SVD of
+    ``F1ᵀ = U Σ Vᵀ``: ``Θᵀ = V diag(σ / (σ² + s)) Uᵀ F2ᵀ`` is the stacked least squares' minimiser (the ridge filter factors; Hansen P. C. (1998), Rank-Deficient and
     Discrete Ill-Posed Problems, SIAM, section 5.1), with the accuracy of an SVD of the data (not of its Gram). The
     QR route's cross-validation took one SVD-based least squares per strength and fold (nine per fold; at past 100 /
     horizon 50 each of 4,900 × 2,450). Singular values of the stacked matrix at or below machine precision times
@@ -234,7 +226,7 @@ class LsqPredictor(_DirectPredictor):
             theta, scale = fitted_ridge_map(total, n_b, alpha, rows)
         else:
             scale = _data_scale(total.factor)
-            theta = _lsq_map(total.factor, n_b, alpha * scale)
+            theta = _lsq_path(total.factor, n_b, [alpha * scale])[0]  # as the grid was scored
         theta = self._unscaled(theta)  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])

@@ -255,14 +255,25 @@ def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, mon
 
 
 # ------------------------------------------------------------------------------------------------ QR route's grid
-def _stacked_cv_errors(monkeypatch, session, **kw):
-    """The QR route's cross-validation table with every strength solved by its own SVD-based least squares on the
-    stacked system (``_lsq_map``, LAPACK gelsd), as it was before the grid came from one SVD per fold."""
+def _lsq_map(F, n_b, strength):
+    """``argmin ||F2 − Θ F1||² + strength ||Θ||²`` by LAPACK's SVD-based least squares (gelsd) on the stacked
+    system ``[F1ᵀ; √strength I] Θᵀ = [F2ᵀ; 0]``: the QR route's solve of each strength before its grid came from one
+    SVD."""
+    F1, F2 = F[:n_b], F[n_b:]
+    A = np.vstack([F1.T, np.sqrt(strength) * np.eye(n_b)])
+    B = np.vstack([F2.T, np.zeros((n_b, F2.shape[0]))])
+    return sla.lstsq(A, B, lapack_driver="gelsd", check_finite=False)[0].T
+
+
+def _stacked_fit(monkeypatch, session, **kw):
+    """The QR route's fit with every strength (the grid's and the final map's) solved by its own SVD-based least
+    squares on the stacked system (``_lsq_map``, LAPACK gelsd), as it was before the grid came from one SVD per
+    fold."""
     from stimsteer.sysid.datadriven import lsq
 
     with monkeypatch.context() as mp:
-        mp.setattr(lsq, "_lsq_path", lambda F, n_b, strengths: [lsq._lsq_map(F, n_b, s) for s in strengths])
-        return _fit(LsqPredictor, session, "qr", **kw).cv_table_
+        mp.setattr(lsq, "_lsq_path", lambda F, n_b, strengths: [_lsq_map(F, n_b, s) for s in strengths])
+        return _fit(LsqPredictor, session, "qr", **kw)
 
 
 @pytest.mark.parametrize("data", ["noisy", "ill"])
@@ -271,14 +282,16 @@ def test_the_qr_routes_strength_grid_from_one_svd_is_the_stacked_least_squares(d
     # of the same minimiser (Hansen 1998, section 5.1) from one SVD per fold
     session = request.getfixturevalue(data)
     kw = dict(past_steps=4, horizon_steps=8, alphas=[1e-12, 1e-8, 1e-4, 1.0])
-    path = _fit(LsqPredictor, session, "qr", **kw).cv_table_
-    stacked = _stacked_cv_errors(monkeypatch, session, **kw)
+    path = _fit(LsqPredictor, session, "qr", **kw)
+    stacked = _stacked_fit(monkeypatch, session, **kw)
     # measured: 4.1e-16 ("noisy") and 2.8e-10 ("ill": the Gram route refuses it, condition above 1e8) relative at most
-    np.testing.assert_allclose(path["validation_error"], stacked["validation_error"], rtol=1e-9)
+    np.testing.assert_allclose(path.cv_table_["validation_error"], stacked.cv_table_["validation_error"], rtol=1e-9)
+    a, b = path.predict_many(*_windows(4, 8)), stacked.predict_many(*_windows(4, 8))
+    assert path.alpha_ == stacked.alpha_ and np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
 
 
 def test_the_svd_path_drops_what_gelsd_drops_on_a_rank_deficient_factor():
-    from stimsteer.sysid.datadriven.lsq import _lsq_map, _lsq_path
+    from stimsteer.sysid.datadriven.lsq import _lsq_path
 
     rng = np.random.default_rng(3)
     F = rng.standard_normal((10, 30))
