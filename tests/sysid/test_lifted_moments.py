@@ -113,6 +113,7 @@ def _old_cv_table(est, session, combos, alphas):
     dict(past_steps=3, feature_grid=(0, 5, 20), bandwidths=(0.5, 2.0), alphas=(1e-8, 1e-4, 1.0)),
     dict(past_steps=2, dictionary="rbf", feature_grid=(0, 10, 30), bandwidths=(1.0,), alphas=(1e-6, 1e-2)),
     dict(past_steps=2, dictionary="poly2", alphas=(0.0, 1e-6, 1e-2)),
+    dict(past_steps=1, feature_grid=(0, 6), bandwidths=(1.0,), alphas=(1e-6, 1e-2)),  # a window of one sample
 ])
 def test_the_cross_validation_table_is_that_of_the_materialised_design(session, settings):
     est = LiftedPredictor(cv_horizon_steps=12, **settings).fit(session)
