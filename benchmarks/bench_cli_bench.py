@@ -31,16 +31,8 @@ import tempfile
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_cli_fit import _command, measured  # noqa: E402  (the same child measurement)
+from bench_cli_fit import _command, _row, measured  # noqa: E402  (the same child measurement and rows)
 from bench_windows import make_session  # noqa: E402  (the same session)
-
-
-def _line(label: str, r: dict) -> str:
-    if r.get("killed"):
-        return f"| {label} | killed (timeout) | | | |"
-    note = "" if r["code"] == 0 else f" ({r['last_error'][:60]})"
-    return (f"| {label} | {r['seconds']:.1f} s | {r['cpu_s']:.1f} s | {r['peak_mb']:.0f} MB | {r['code']}{note} | "
-            f"{os.getloadavg()[0]:.1f} |")
 
 
 def _slowest_fits(folder: Path, n: int = 6) -> list:
@@ -70,16 +62,16 @@ def main(argv=None) -> int:
         save_session(session.select_trials(range(args.few_trials)), few)
         print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, {session.n_outputs} "
               f"outputs, {len(session.trials)} trials; --past {args.past} --horizon {args.horizon}")
-        print("| command | wall | CPU | peak resident | exit code | load |")
-        print("| --- | --- | --- | --- | --- | --- |")
+        print("| command | wall | CPU | peak resident | model file | exit code | load |")
+        print("| --- | --- | --- | --- | --- | --- | --- |")
         r = measured(_command() + ["fit", str(few), "--route", "direct", "--method", "lsq", "--past", args.past,
                                    "--horizon", args.horizon, "--out", str(Path(tmp) / "few_lsq.h5")], args.timeout)
-        print(_line(f"fit, least-squares predictor, first {args.few_trials} trials", r), flush=True)
+        print(_row(f"fit, least-squares predictor, first {args.few_trials} trials", r, ""), flush=True)
         if not args.few_only:
             out = Path(tmp) / "bench"
             r = measured(_command() + ["bench", str(path), "--quick", "--past", args.past, "--horizon", args.horizon,
                                        "--out", str(out)], args.timeout)
-            print(_line("bench --quick", r), flush=True)
+            print(_row("bench --quick", r, ""), flush=True)
             if (out / "tables" / "tasks.csv").exists():
                 print("# the slowest fits of that run (its tables/tasks.csv):")
                 print("\n".join(_slowest_fits(out)))

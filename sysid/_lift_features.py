@@ -16,7 +16,8 @@ import numpy as np
 
 from .exceptions import InvalidParameterError
 
-__all__ = ["DICTIONARIES", "Dictionary", "dictionary_from", "draw_dictionary", "source_dim", "windows"]
+__all__ = ["DICTIONARIES", "Dictionary", "dictionary_from", "draw_dictionary", "fourier_features", "source_dim",
+           "windows"]
 
 DICTIONARIES = ("rff", "rbf", "poly2")
 
@@ -41,6 +42,16 @@ def windows(u: np.ndarray, y: np.ndarray, T: int):
     raw = np.concatenate([U.reshape(k, -1), Y.reshape(k, -1)], axis=1)
     src = np.concatenate([Y.reshape(k, -1), U[:, :T - 1].reshape(k, -1)], axis=1)
     return raw, src
+
+
+def fourier_features(s: np.ndarray, omega: np.ndarray, phase: np.ndarray, amplitude) -> np.ndarray:
+    """Random Fourier features ``amplitude · cos(s ωᵀ + phase)`` of standardised sources ``s`` (Rahimi & Recht
+    2007), made in one array (one set of frequencies, or several dictionaries' stacked)."""
+    out = s @ omega.T
+    out += phase
+    np.cos(out, out=out)
+    out *= amplitude
+    return out
 
 
 class Dictionary:
@@ -87,7 +98,7 @@ class Dictionary:
         if self.n_features == 0:
             return np.zeros((s.shape[0], 0))
         if self.kind == "rff":
-            return np.sqrt(2.0 / self.n_features) * np.cos(s @ self.omega.T + self.phase)
+            return fourier_features(s, self.omega, self.phase, np.sqrt(2.0 / self.n_features))
         d2 = (s * s).sum(1)[:, None] - 2.0 * s @ self.omega.T + (self.omega * self.omega).sum(1)[None]
         return np.exp(-np.maximum(d2, 0.0) / (2.0 * self.bandwidth ** 2))
 

@@ -30,8 +30,8 @@ import numpy as np
 import scipy.linalg as sla
 
 from ._lagged import _lagged_gram, _LagSums, _stream_lag_sums
-from ._lift_features import dictionary_from
-from .arx_regression import lead_order
+from ._lift_features import dictionary_from, fourier_features
+from .arx_regression import centred_lead, lead_order
 
 _BLOCK_ROWS = 1024  # transitions per block: at past 100 and 23 channels, about 19 MB per window array
 
@@ -58,6 +58,12 @@ def raw_windows(u: np.ndarray, y: np.ndarray, T: int) -> np.ndarray:
     raw[:, :T * m].reshape(k, T, m)[...] = np.lib.stride_tricks.sliding_window_view(u, T, axis=0).transpose(0, 2, 1)
     raw[:, T * m:].reshape(k, T, p)[...] = np.lib.stride_tricks.sliding_window_view(y, T, axis=0).transpose(0, 2, 1)
     return raw
+
+
+def window_rows(u: np.ndarray, y: np.ndarray, T: int, starts) -> tuple:
+    """The raw windows and feature sources of the windows starting at samples ``starts`` of ``(u, y)``."""
+    raw = np.vstack([raw_windows(u[s:s + T], y[s:s + T], T) for s in np.asarray(starts, np.int64)])
+    return raw, raw[:, source_columns(T, u.shape[1], y.shape[1])]
 
 
 def source_columns(T: int, m: int, p: int) -> np.ndarray:
@@ -152,9 +158,8 @@ class LiftMoments:
             for u, y in self.per_trial[i]:
                 k = len(u) - T
                 here = np.flatnonzero((idx >= start) & (idx < start + k))
-                for j in here:
-                    s = int(idx[j] - start)
-                    out[j] = np.concatenate([y[s:s + T].ravel(), u[s:s + T - 1].ravel()])
+                if here.size:
+                    out[here] = window_rows(u, y, T, idx[here] - start)[1]
                 start += k
         return out
 
@@ -211,15 +216,7 @@ def _stacked_features(dics):
     kept = [d for d in dics if d.n_features]
     omega, phase = np.vstack([d.omega for d in kept]), np.concatenate([d.phase for d in kept])
     amplitude = np.concatenate([np.full(d.n_features, np.sqrt(2.0 / d.n_features)) for d in kept])
-
-    def features(standard):
-        out = standard @ omega.T
-        out += phase
-        np.cos(out, out=out)
-        out *= amplitude
-        return out
-
-    return features
+    return lambda standard: fourier_features(standard, omega, phase, amplitude)
 
 
 class FoldSystem:
@@ -231,9 +228,8 @@ class FoldSystem:
         n = sums.n
         self.n, self.nr, self.shift_b, self.shift_y = n, nr, shift_b, shift_y
         self.mb, self.my = sums.sb / n, sums.sy / n
-        self.Cbb = sums.Gbb  # centred in place (the sums are the caller's own total); no Gram-sized temporaries
-        for i in range(self.Cbb.shape[0]):
-            self.Cbb[i] -= (n * self.mb[i]) * self.mb
+        # centred in place (the sums are the caller's own total), a few rows at a time: no Gram-sized temporaries
+        self.Cbb = centred_lead(None, None, sums.Gbb.shape[0], n, sums.sb, self.mb, gram=sums.Gbb)[1]
         self.Cby = sums.Gby - n * np.outer(self.mb, self.my)
         sb = np.sqrt(np.maximum(np.diag(self.Cbb), 0.0) / n)
         self.sb = np.where(sb > 1e-12, sb, 1.0)

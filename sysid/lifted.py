@@ -37,7 +37,7 @@ from ._base import BasePredictor, check_fitted
 from ._progress import progress
 from ._lift_features import DICTIONARIES, Dictionary, source_dim, windows
 from ._lift_moments import (Candidate, FoldSystem, LiftMoments, by_cholesky, eigen_path, fitted_rows, simulate_rows,
-                            solve_blocks, solve_shared, stacked_qr_ridge)
+                            solve_blocks, solve_shared, source_columns, stacked_qr_ridge, window_rows)
 from .exceptions import InvalidParameterError, SessionError
 from .statespace import markov_toeplitz
 
@@ -463,14 +463,14 @@ def _validation_windows(valid, T, H):
     starts = [(g, t) for g, (u, _y) in enumerate(valid) for t in range(len(u) - T - H + 1)]
     if len(starts) > _MAX_CV_WINDOWS:
         starts = [starts[i] for i in np.linspace(0, len(starts) - 1, _MAX_CV_WINDOWS).astype(int)]
-    raw, src, uf, yt = [], [], [], []
+    raw, uf, yt = [], [], []
     for g, t in starts:
         u, y = valid[g]
-        raw.append(np.concatenate([u[t:t + T].ravel(), y[t:t + T].ravel()]))
-        src.append(np.concatenate([y[t:t + T].ravel(), u[t:t + T - 1].ravel()]))
+        raw.append(window_rows(u, y, T, [t])[0])
         uf.append(u[t + T:t + T + H])
         yt.append(y[t + T:t + T + H])
-    return np.array(raw), np.array(src), np.array(uf), np.array(yt)
+    raw = np.vstack(raw)
+    return raw, raw[:, source_columns(T, valid[0][0].shape[1], valid[0][1].shape[1])], np.array(uf), np.array(yt)
 
 
 def _validation_nmse(Ar, Br, T, m, p, z0, uf, yt) -> float:
