@@ -129,7 +129,7 @@ def test_the_intervals_are_quantiles_of_member_predictions_plus_pooled_errors(en
     preds = ensemble.member_predictions(up[None], yp[None], uf[None])[:, 0]
     rng, H = np.random.default_rng(0), ensemble.errors_.shape[1]
     q = [(1.0 - 0.95) / 2.0, (1.0 + 0.95) / 2.0]  # the level's tails as the ensemble computes them (0.025 + 2e-17)
-    assert ensemble.errors_.shape[0] > 400  # the subsample is exercised
+    assert ensemble.errors_.shape[0] > 400  # the subsample is exercised (400: the module's _MAX_POOL)
     lo, hi = np.empty((60, 1)), np.empty((60, 1))
     for h in range(60):  # beyond the errors' horizon the last step's errors
         e = ensemble.errors_[:, min(h, H - 1)]
@@ -142,6 +142,7 @@ def test_the_intervals_are_quantiles_of_member_predictions_plus_pooled_errors(en
 
 
 def test_coverage_counts_each_windows_own_interval(ensemble, split):
+    # the same windows (120, evenly strided) window by window; a share of counts: equal up to the division's rounding
     test, P, H = split[1], ensemble.past_steps_, 15
     inside, total = 0.0, 0
     starts = [t for a, b in test.segments(min_length=P + H) for t in range(a + P, b - H + 1)]
