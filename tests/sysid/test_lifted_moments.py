@@ -160,7 +160,8 @@ def test_the_final_fit_solves_its_moments_and_never_materialises_the_design(sess
 
     monkeypatch.setattr(lifted, "_transitions", refuse)
     lean = LiftedPredictor(**settings).fit(session)
-    # measured: 7.8e-14 (A) and 3e-16 (B) of their largest entries; bound (k + α)/α = 2.8e3 times rounding, with margin
+    # measured: 7.8e-14 (A) and 3e-16 (B) of their largest entries; the condition bound (k + α)/α = 2.9e3 (k = 29)
+    # times rounding, with margin
     np.testing.assert_allclose(lean.A_, reference.A_, atol=1e-9 * np.abs(reference.A_).max())
     np.testing.assert_allclose(lean.B_, reference.B_, atol=1e-9 * np.abs(reference.B_).max())
 
