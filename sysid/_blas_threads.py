@@ -5,10 +5,14 @@ one BLAS thread controller.
 from __future__ import annotations
 
 import contextlib
+import functools
+import threading
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 
 _CONTROLLER: list = []
+#: The BLAS thread count before the outermost :func:`_one_blas_thread` call of this thread (``count``), if any.
+_BEFORE = threading.local()
 
 
 def blas_controller():
@@ -84,3 +88,36 @@ def _parallel_pass(chunks, load, task, n_workers: int):
             yield done, fut.result()
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _single_blas_thread():
+    """Context that runs BLAS/LAPACK on one thread (process-wide, restored afterwards).
+
+    The factorisations here are of a few hundred rows; on a machine whose cores are busy, multi-threaded OpenBLAS
+    slows them down ten times or more (seen on the shared 2-core development machine), while one thread loses
+    little. Through the process's one controller (:func:`blas_threads`); without threadpoolctl (a scikit-learn
+    dependency) nothing is changed.
+    """
+    return blas_threads(1)
+
+
+def _one_blas_thread(func):
+    """Decorator: run ``func`` inside :func:`_single_blas_thread` (the count before it kept for
+    :func:`fit_blas_threads`)."""
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        outer = getattr(_BEFORE, "count", None)
+        _BEFORE.count = blas_thread_count() if outer is None else outer
+        try:
+            with _single_blas_thread():
+                return func(*args, **kwargs)
+        finally:
+            _BEFORE.count = outer
+    return wrapper
+
+
+def fit_blas_threads():
+    """Context that gives BLAS back the threads it had before the enclosing :func:`_one_blas_thread` (one outside
+    any): for a fit's sequential algebra on large matrices, which runs alone (a 2,450-row SVD: 7.8 s on one thread,
+    4.0 s on two; benchmarks/README.md, sixteenth session)."""
+    return blas_threads(max(1, getattr(_BEFORE, "count", None) or 1))

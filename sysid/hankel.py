@@ -18,8 +18,6 @@ from :meth:`Session.segments`, so no column spans a trial boundary or a masked s
 
 from __future__ import annotations
 
-import contextlib
-import functools
 import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import Sequence
@@ -27,6 +25,7 @@ from typing import Sequence
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
+from ._blas_threads import _one_blas_thread, _single_blas_thread  # noqa: F401  (imported from here too)
 from .exceptions import SessionError
 
 __all__ = [
@@ -42,26 +41,6 @@ __all__ = [
 ]
 
 
-def _single_blas_thread():
-    """Context that runs BLAS/LAPACK on one thread (process-wide, restored afterwards).
-
-    The factorisations here are of a few hundred rows; on a machine whose cores are busy, multi-threaded OpenBLAS
-    slows them down ten times or more (seen on the shared 2-core development machine), while one thread loses
-    little. Through the process's one controller (:func:`._lagged.blas_threads`); without threadpoolctl (a
-    scikit-learn dependency) nothing is changed.
-    """
-    from ._lagged import blas_threads
-
-    return blas_threads(1)
-
-
-def _one_blas_thread(func):
-    """Decorator: run ``func`` inside :func:`_single_blas_thread`."""
-    @functools.wraps(func)
-    def wrapper(*args, **kwargs):
-        with _single_blas_thread():
-            return func(*args, **kwargs)
-    return wrapper
 
 
 def _as_signal(w, name: str = "w") -> np.ndarray:
@@ -311,7 +290,10 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
     """Combine row-space factors of column blocks into the factor of the blocks side by side.
 
     If ``H_i H_iᵀ = F_i F_iᵀ`` then ``[H_1 H_2 ...]`` has the factor ``F`` with ``F Fᵀ = Σ F_i F_iᵀ``; it is
-    obtained from a QR of the stacked ``F_iᵀ`` (no normal equations, so no squared condition number).
+    obtained from a QR of the stacked ``F_iᵀ`` (no normal equations, so no squared condition number). Lower
+    triangular or trapezoidal factors (as :func:`row_space_factor` and this function give) are folded in one by one
+    by LAPACK's ``tpqrt`` with a trapezoidal pentagon (:func:`_merge_r`): ``(2/3) n³`` flops for a square one
+    instead of the stacked QR's ``(10/3) n³`` per pair (benchmarks/README.md, sixteenth session).
 
     Parameters
     ----------
@@ -329,10 +311,17 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
         return np.zeros((n_rows, 0))
     if len(parts) == 1:
         return np.ascontiguousarray(parts[0].T)
+    if sum(q.shape[0] for q in parts) >= n_rows and all(q.shape[0] <= n_rows and _is_lower(q.T) for q in parts):
+        return np.ascontiguousarray(np.triu(_merge_r(parts)).T)
     return np.ascontiguousarray(_r_factor(np.concatenate(parts, axis=0)).T)
 
 
-def _fill_columns(buf: np.ndarray, sigs, c0: int, depth: int) -> None:
+def _is_lower(F: np.ndarray, block: int = 256) -> bool:
+    """Whether the strict upper triangle of the square ``F`` is zero (by block rows: no temporary of its size)."""
+    return not any(np.triu(F[i0:i0 + block, i0:], 1).any() for i0 in range(0, F.shape[0], block))
+
+
+def _fill_columns(buf: np.ndarray, sigs, c0: int, depth: int, to=None) -> None:
     """Columns ``[c0, c0 + k)`` of the stacked data matrix ``[H_L(sigs[0]); H_L(sigs[1]); ...]`` into ``buf``
     (``n_rows × k``, C order, so ``buf.T`` is the Fortran-ordered ``k × n_rows`` block LAPACK reads without a copy).
 
@@ -344,11 +333,19 @@ def _fill_columns(buf: np.ndarray, sigs, c0: int, depth: int) -> None:
         c = s.shape[1]
         sT = np.ascontiguousarray(s[c0: c0 + k + depth - 1].T)
         for t in range(depth):
-            buf[row + t * c: row + (t + 1) * c] = sT[:, t: t + k]
+            buf[_rows_to(to, row + t * c, c)] = sT[:, t: t + k]
         row += depth * c
 
 
-def _stream_r(sigs, spans, depth: int, n_rows: int, step: int) -> np.ndarray:
+def _rows_to(to, r: int, c: int):
+    """Where rows ``[r, r + c)`` of the stacked data go: themselves or ``to[r:r + c]`` (a slice if consecutive)."""
+    if to is None:
+        return slice(r, r + c)
+    dest = to[r:r + c]
+    return slice(int(dest[0]), int(dest[0]) + c) if np.array_equal(dest, dest[0] + np.arange(c)) else dest
+
+
+def _stream_r(sigs, spans, depth: int, n_rows: int, step: int, to=None) -> np.ndarray:
     """Upper-triangular ``R`` (``n_rows × n_rows``, Fortran order) with ``RᵀR = Σ_chunks MᵀM`` over the chunks
     ``M`` (columns of the data matrix as rows) of ``spans``: each chunk is folded into ``R`` by LAPACK's
     triangular-pentagonal QR (``tpqrt``), which costs ``2 k n²`` for ``k`` columns, as a QR of the chunk alone,
@@ -361,20 +358,21 @@ def _stream_r(sigs, spans, depth: int, n_rows: int, step: int) -> np.ndarray:
     for c0, c1 in spans:
         k = c1 - c0 - depth + 1
         buf = flat[: n_rows * k].reshape(n_rows, k)
-        _fill_columns(buf, sigs, c0, depth)
+        _fill_columns(buf, sigs, c0, depth, to)
         R = tpqrt_inplace(R, buf.T, 0, nb)  # the GIL is released inside: the workers run side by side
     return R
 
 
 def _merge_r(parts) -> np.ndarray:
-    """``R`` with ``RᵀR = Σ R_iᵀR_i`` of upper-triangular parts, each folded in by ``tpqrt`` with a triangular
-    pentagon (``O(n³)`` per part, independent of the data length)."""
+    """``R`` (``n × n``) with ``RᵀR = Σ R_iᵀR_i`` of upper-trapezoidal parts (``k_i × n``, ``k_i ≤ n``; the first
+    copied), each folded in by ``tpqrt`` with a trapezoidal pentagon (``O(k_i n²)``, independent of the data length)."""
     from ._lapack_nogil import tpqrt_inplace
 
-    R = parts[0]
+    n = parts[0].shape[1]
+    R = np.zeros((n, n), order="F")
+    R[:parts[0].shape[0]] = np.triu(parts[0])
     for other in parts[1:]:
-        n = R.shape[0]
-        R = tpqrt_inplace(R, np.asfortranarray(np.triu(other)), n, min(n, 64))
+        R = tpqrt_inplace(R, np.asfortranarray(np.triu(other)), other.shape[0], min(n, 64))
     return R
 
 
@@ -384,7 +382,8 @@ def _spans(segments, depth: int, step: int) -> list[tuple[int, int]]:
 
 
 def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | None = None,
-                     *, max_columns: int = 4096, n_workers: int | None = None) -> tuple[np.ndarray, int]:
+                     *, max_columns: int = 4096, n_workers: int | None = None,
+                     row_order: np.ndarray | None = None) -> tuple[np.ndarray, int]:
     """Exact compression of a (mosaic) data matrix to its row-space factor, without forming the whole matrix.
 
     The data matrix stacks the depth-``depth`` mosaic Hankel matrices of the signals in ``blocks``,
@@ -405,6 +404,10 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     n_workers : int, optional
         Threads (default: the CPU count). The chunks are cut into this many contiguous groups, reduced side by
         side and merged in group order: the numbers depend on the worker count, not on the timing.
+    row_order : ndarray of int, optional
+        A permutation of the rows: the factor of ``H[row_order]`` (lower triangular in that order), the rows
+        written in that order as the chunks are filled (a permuted factor of ``H`` would need another QR to be
+        triangular again).
 
     Returns
     -------
@@ -450,10 +453,17 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
         if b - a >= depth:
             for s in sigs:
                 _check_finite(s[a:b], "the signal", offset=a)
+    to = None
+    if row_order is not None:
+        row_order = np.asarray(row_order)
+        if row_order.shape != (n_rows,) or not np.array_equal(np.sort(row_order), np.arange(n_rows)):
+            raise ValueError(f"row_order must be a permutation of the {n_rows} rows")
+        to = np.empty(n_rows, dtype=np.int64)
+        to[row_order] = np.arange(n_rows)
     if total < n_rows:  # fewer columns than rows: all of them are fewer than one factor
         chunk = np.concatenate([np.concatenate([block_hankel(s[a:b], depth).T for s in sigs], axis=1)
                                 for a, b in segments if b - a >= depth], axis=0)
-        return np.ascontiguousarray(_r_factor(chunk).T), total
+        return np.ascontiguousarray(_r_factor(chunk if row_order is None else chunk[:, row_order]).T), total
     step = max(1, min(int(max_columns), max(64, 2 ** 22 // n_rows)))
     spans = _spans(segments, depth, step)
     n_groups = max(1, min(n_workers or os.cpu_count() or 1, len(spans)))
@@ -461,9 +471,9 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
     groups = [spans[edges[g]:edges[g + 1]] for g in range(n_groups)]
     with _single_blas_thread():
         if n_groups == 1:
-            parts = [_stream_r(sigs, groups[0], depth, n_rows, step)]
+            parts = [_stream_r(sigs, groups[0], depth, n_rows, step, to)]
         else:
             with ThreadPoolExecutor(max_workers=n_groups, thread_name_prefix="stimsteer-qr") as pool:
-                parts = list(pool.map(lambda g: _stream_r(sigs, g, depth, n_rows, step), groups))
+                parts = list(pool.map(lambda g: _stream_r(sigs, g, depth, n_rows, step, to), groups))
         R = _merge_r(parts)
     return np.ascontiguousarray(np.triu(R).T), total

@@ -4,6 +4,7 @@ the data scale of the strengths, and their common base class.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 from dataclasses import dataclass
 
@@ -14,6 +15,7 @@ from .._offsets import ShiftedOutputs, output_mean
 from .._views import SourceView
 from ..excitation import excitation_order, warn_low_excitation
 from .._base import BasePredictor, check_fitted
+from .._blas_threads import fit_blas_threads
 from ..protocols import PredictionMaps
 from ..exceptions import InvalidParameterError, SessionError
 from ..hankel import block_hankel, combine_factors, row_space_factor
@@ -201,8 +203,8 @@ def _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full):
     for a, b, f in pieces:
         u, y, _ = session.read(a, b)
         u, y = np.asarray(u, dtype=np.float64), np.asarray(y, dtype=np.float64)
-        F, k = row_space_factor([u, y], L)
-        parts[f].append(F[order])
+        F, k = row_space_factor([u, y], L, row_order=order)  # lower triangular in the Hankel order: merged by tpqrt
+        parts[f].append(F)
         if len(parts[f]) > 8:  # keep the working memory independent of the number of segments
             parts[f] = [combine_factors(parts[f], n_rows)]
         folds[f].n_columns += k
@@ -328,7 +330,7 @@ class _DirectPredictor(BasePredictor):
         errors, counts = np.zeros(len(candidates)), 0
         cols = {}
         total = _merge(folds, folds[0].n_rows) if isinstance(folds[0], _GramFold) else None
-        with progress(len(folds), f"cross-validation of {type(self).__name__}", unit="fold") as bar:
+        with self._qr_algebra(), progress(len(folds), f"cross-validation of {type(self).__name__}", unit="fold") as bar:
             scores = [self._score_one(folds, i, total, weights, score_fold, bar) for i in range(len(folds))]
         for i, (val, e) in enumerate(zip(folds, scores)):
             if e is None:
@@ -341,6 +343,11 @@ class _DirectPredictor(BasePredictor):
         best = int(np.flatnonzero(mean <= mean.min() * (1 + 1e-12))[-1])
         table = pd.DataFrame({"candidate": candidates, "validation_error": mean, **cols})
         return float(candidates[best]), table
+
+    def _qr_algebra(self):
+        """Context for the QR route's algebra (merges, SVDs, triangular solves of the folds, one after another):
+        BLAS on the threads it had before the fit's one-thread limit (which is for the Gram route's own workers)."""
+        return fit_blas_threads() if self.factor_route_ == "qr" else contextlib.nullcontext()
 
     @staticmethod
     def _score_one(folds, i, total, weights, score_fold, bar):

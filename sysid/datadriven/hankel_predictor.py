@@ -236,12 +236,13 @@ class HankelPredictor(_DirectPredictor):
                                self._unscaled)
             score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size, extra), score)
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
-        total = _merge(folds, folds[0].n_rows)
-        scale = taken(self, "_scale_early")  # computed beside the folds (_gaps_from_factor), from the same factor
-        self.data_scale_ = _data_scale(total.factor) if scale is None else scale
-        self._l1_cache = self._map_cache = None
-        early_map = taken(self, "_map_early")  # (theta, its map in the channels' units), beside the folds
-        self.blocks_, self.reg_matrix_, theta = self._blocks(total, compress)
+        with self._qr_algebra():
+            total = _merge(folds, folds[0].n_rows)
+            scale = taken(self, "_scale_early")  # computed beside the folds (_gaps_from_factor), from the same factor
+            self.data_scale_ = _data_scale(total.factor) if scale is None else scale
+            self._l1_cache = self._map_cache = None
+            early_map = taken(self, "_map_early")  # (theta, its map in the channels' units), beside the folds
+            self.blocks_, self.reg_matrix_, theta = self._blocks(total, compress)
         if theta is not None:  # the projection predictor in closed form, for every strength
             self._map_cache = early_map[1] if early_map and early_map[0] is theta else self._unscaled(theta)
         del early_map
@@ -274,7 +275,7 @@ class HankelPredictor(_DirectPredictor):
             theta = taken(self, "_theta_early")  # computed beside the folds
             if theta is not None and self.factor_route_ == "gram":  # (the same numbers as the closed form here)
                 M = blocks.Up.shape[0] + blocks.Yp.shape[0] + blocks.Uf.shape[0]
-            elif self.factor_route_ == "gram":  # a Cholesky factor: projector and predictor in closed form
+            else:  # a triangular factor (Cholesky; the QR route's merged QR): projector, predictor in closed form
                 M, theta = _projection_closed_form(blocks, GRAM_CONDITION_LIMIT, make_projector=False)
             return blocks, (_projection_complement(blocks.D, data.n_columns) if M is None else M), theta
         if self.regularizer == "l2":
@@ -284,6 +285,10 @@ class HankelPredictor(_DirectPredictor):
     def _score_quadratic(self, train, val, weights, lambdas, lam_y):
         m, p, past, N = self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_
         blocks = HankelBlocks.from_matrix(train.factor, m, p, past, N, True)
+        if self.regularizer == "projection":  # full row rank, triangular factor: one predictor for every strength
+            theta = _projection_closed_form(blocks, GRAM_CONDITION_LIMIT, make_projector=False)[1]
+            if theta is not None:
+                return [_validation_error(theta, val.factor, weights)] * len(lambdas)
         M = _projection_complement(blocks.D, train.n_columns) if self.regularizer == "projection" else None
         scale = _data_scale(train.factor)
         out = []

@@ -11,6 +11,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from ..exceptions import ConditioningWarning, SessionError
+from ..hankel import _is_lower
 
 __all__ = ["HankelBlocks", "_kkt_map", "_kkt_predictor", "_projection_closed_form", "_coordinate_projector", "_projection_map", "_projection_g"]
 
@@ -140,16 +141,6 @@ def _leading_square(blocks, n_b: int) -> np.ndarray:
         D1[r0:r0 + b.shape[0]] = b[:, :n_b]
         r0 += b.shape[0]
     return D1
-
-
-def _is_lower(D1: np.ndarray, block: int = 256) -> bool:
-    """Whether the strict upper triangle of ``D1`` is zero (by block rows: no temporary of its size)."""
-    n = D1.shape[0]
-    for i0 in range(0, n, block):
-        i1 = min(i0 + block, n)
-        if np.triu(D1[i0:i1, i0:], 1).any():
-            return False
-    return True
 
 
 def _projection_closed_form(blocks, limit: float, make_projector: bool = True):

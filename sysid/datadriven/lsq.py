@@ -9,7 +9,7 @@ import scipy.linalg as sla
 from .._base import check_fitted
 from ..protocols import PredictionMaps
 from ..hankel import _one_blas_thread
-from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows
+from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, regressor_rows
 from ._strength_folds import first_fold_hook
 from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
 
@@ -20,13 +20,9 @@ _DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-8, 0, 9))
 
 
 # ------------------------------------------------------------------------------------------------ LSQ
-def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
-    """``Θ = argmin ||F2 − Θ F1||_F² + s ||Θ||_F²`` (``F = [F1; F2]``) for several strengths ``s`` from one SVD of
-    ``F1ᵀ = U Σ Vᵀ``: ``Θᵀ = V diag(σ / (σ² + s)) Uᵀ F2ᵀ`` is the stacked least squares' minimiser (the ridge filter factors; Hansen P. C. (1998), Rank-Deficient and
-    Discrete Ill-Posed Problems, SIAM, section 5.1), with the accuracy of an SVD of the data (not of its Gram). The
-    QR route's cross-validation took one SVD-based least squares per strength and fold (nine per fold; at past 100 /
-    horizon 50 each of 4,900 × 2,450). Singular values of the stacked matrix at or below machine precision times
-    the largest are dropped, as LAPACK's ``gelsd`` drops them (``rcond < 0``)."""
+def _lsq_svd(F: np.ndarray, n_b: int):
+    """``(σ, Vᵀ, Uᵀ F2ᵀ)`` of the SVD ``F1ᵀ = U Σ Vᵀ`` (``F = [F1; F2]``), for :func:`_lsq_path` and
+    :func:`_lsq_errors`."""
     F1, F2 = F[:n_b], F[n_b:]
     if F.shape[1] > n_b and not np.any(F1[:, n_b:]):
         # a lower-triangular factor (every combined one): F1ᵀ is zero below its first n_b rows, whose part of F2ᵀ
@@ -34,14 +30,38 @@ def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
         # against 6.5 s on two threads)
         F1, F2 = F1[:, :n_b], F2[:, :n_b]
     U, sig, Vt = sla.svd(F1.T, full_matrices=False, lapack_driver="gesdd", check_finite=False)
-    UtB = U.T @ F2.T
-    del U
+    return sig, Vt, U.T @ F2.T
+
+
+def _filter(sig: np.ndarray, strength: float) -> np.ndarray:
+    """The ridge filter ``σ / (σ² + s)``, zero where the stacked matrix's singular value ``√(σ² + s)`` is at or
+    below machine precision times the largest (dropped, as LAPACK's ``gelsd`` drops them with ``rcond < 0``)."""
+    stacked = np.sqrt(sig ** 2 + strength)
+    keep = stacked > np.finfo(float).eps * max(stacked.max(initial=0.0), np.sqrt(strength))
+    return np.divide(sig, sig ** 2 + strength, out=np.zeros_like(sig), where=keep)
+
+
+def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
+    """``Θ = argmin ||F2 − Θ F1||_F² + s ||Θ||_F²`` (``F = [F1; F2]``) for several strengths ``s`` from one SVD of
+    ``F1ᵀ = U Σ Vᵀ``: ``Θᵀ = V diag(σ / (σ² + s)) Uᵀ F2ᵀ`` is the stacked least squares' minimiser (the ridge filter
+    factors; Hansen P. C. (1998), Rank-Deficient and Discrete Ill-Posed Problems, SIAM, section 5.1), with the
+    accuracy of an SVD of the data (not of its Gram). The QR route's cross-validation took one SVD-based least
+    squares per strength and fold (nine per fold; at past 100 / horizon 50 each of 4,900 × 2,450)."""
+    sig, Vt, UtB = _lsq_svd(F, n_b)
+    return [(Vt.T @ (_filter(sig, s)[:, None] * UtB)).T for s in strengths]
+
+
+def _lsq_errors(F: np.ndarray, n_b: int, strengths, F_val: np.ndarray, weights: np.ndarray) -> list:
+    """``_validation_error`` of every map of :func:`_lsq_path` on the held-out factor ``F_val``, without the maps:
+    ``Θ F1v = (Uᵀ F2ᵀ)ᵀ diag(d) (Vᵀ F1v)``, ``Vᵀ F1v`` once per fold, so a strength costs one product of
+    ``pN × n_b × r_v`` instead of two (the residual itself is formed, as there: no expansion that cancels)."""
+    sig, Vt, UtB = _lsq_svd(F, n_b)
+    VF, target = Vt @ F_val[:n_b], F_val[n_b:]
     out = []
-    for strength in strengths:
-        stacked = np.sqrt(sig ** 2 + strength)
-        keep = stacked > np.finfo(float).eps * max(stacked.max(initial=0.0), np.sqrt(strength))
-        d = np.divide(sig, sig ** 2 + strength, out=np.zeros_like(sig), where=keep)
-        out.append((Vt.T @ (d[:, None] * UtB)).T)
+    for s in strengths:
+        E = target - (_filter(sig, s)[:, None] * UtB).T @ VF
+        E *= weights[:, None]
+        out.append(float(np.einsum("ij,ij->", E, E)))
     return out
 
 
@@ -211,8 +231,7 @@ class LsqPredictor(_DirectPredictor):
             if gram_route:  # one eigendecomposition per fold for the whole grid
                 errors = None if plan is None else plan.errors(val, alphas, w)
                 return errors if errors is not None else ridge_grid_errors(train, val, n_b, alphas, w, total)
-            s = _data_scale(train.factor)
-            return [_validation_error(G, val.factor, w) for G in _lsq_path(train.factor, n_b, alphas * s)]
+            return _lsq_errors(train.factor, n_b, alphas * _data_scale(train.factor), val.factor, w)
 
         rows = None  # the final map's rows, assembled by the plan where a worker would idle
         try:
@@ -221,12 +240,13 @@ class LsqPredictor(_DirectPredictor):
             if plan is not None:
                 plan.stop()
                 rows, folds.first_fold, plan = plan.final_rows, None, None
-        total = _merge(folds, folds[0].n_rows)
-        if gram_route:
-            theta, scale = fitted_ridge_map(total, n_b, alpha, rows)
-        else:
-            scale = _data_scale(total.factor)
-            theta = _lsq_path(total.factor, n_b, [alpha * scale])[0]  # as the grid was scored
+        with self._qr_algebra():
+            total = _merge(folds, folds[0].n_rows)
+            if gram_route:
+                theta, scale = fitted_ridge_map(total, n_b, alpha, rows)
+            else:
+                scale = _data_scale(total.factor)
+                theta = _lsq_path(total.factor, n_b, [alpha * scale])[0]  # as the grid was scored
         theta = self._unscaled(theta)  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])

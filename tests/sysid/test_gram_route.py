@@ -224,8 +224,11 @@ def _earlier_hankel_route(monkeypatch):
         monkeypatch.setattr(hp, name, lambda *a, **k: None)
 
 
-@pytest.mark.parametrize("session", ["noisy", "one_signed"])
-def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, monkeypatch):
+@pytest.mark.parametrize("session, route", [("noisy", "auto"), ("one_signed", "auto"), ("noisy", "qr"),
+                                            ("one_signed", "qr")])
+def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, route, monkeypatch):
+    # on the QR route too (its merged factors are triangular in the Hankel order): the KKT solves and the SVD
+    # projector gave 243 s of a 3-trial fit at past 100 / horizon 50 (benchmarks/README.md, sixteenth session)
     from stimsteer.sysid.datadriven import hankel_predictor as hp
 
     s, P, N = (noisy if session == "noisy" else _one_signed(5.0)), 5, 8
@@ -235,15 +238,15 @@ def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, mon
 
         mp.setattr(hp, "_kkt_predictor", no_kkt)
         mp.setattr(hp, "plan_gaps", no_kkt)
-        new = _fit(HankelPredictor, s, "auto", past_steps=P, horizon_steps=N)
+        new = _fit(HankelPredictor, s, route, past_steps=P, horizon_steps=N)
         a = new.predict_many(*_windows(P, N))
         g = new.solve_g(*(w[0] for w in _windows(P, N)))
     with monkeypatch.context() as mp:
         _earlier_hankel_route(mp)
-        old = _fit(HankelPredictor, s, "auto", past_steps=P, horizon_steps=N)
+        old = _fit(HankelPredictor, s, route, past_steps=P, horizon_steps=N)
         b = old.predict_many(*_windows(P, N))
         g_old = old.solve_g(*(w[0] for w in _windows(P, N)))
-    assert new.factor_route_ == old.factor_route_ == "gram"
+    assert new.factor_route_ == old.factor_route_ == ("gram" if route == "auto" else "qr")
     assert new.lambda_g_relative_ == old.lambda_g_relative_
     assert np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
     Yf = old.blocks_.Yf
@@ -268,11 +271,14 @@ def _lsq_map(F, n_b, strength):
 def _stacked_fit(monkeypatch, session, **kw):
     """The QR route's fit with every strength (the grid's and the final map's) solved by its own SVD-based least
     squares on the stacked system (``_lsq_map``, LAPACK gelsd), as it was before the grid came from one SVD per
-    fold."""
+    fold, and each held-out error from its map (as before the errors came from the SVD's factors)."""
     from stimsteer.sysid.datadriven import lsq
+    from stimsteer.sysid.datadriven.base import _validation_error
 
     with monkeypatch.context() as mp:
         mp.setattr(lsq, "_lsq_path", lambda F, n_b, strengths: [_lsq_map(F, n_b, s) for s in strengths])
+        mp.setattr(lsq, "_lsq_errors", lambda F, n_b, strengths, F_val, w: [
+            _validation_error(_lsq_map(F, n_b, s), F_val, w) for s in strengths])  # each map, then its residual
         return _fit(LsqPredictor, session, "qr", **kw)
 
 
@@ -284,8 +290,10 @@ def test_the_qr_routes_strength_grid_from_one_svd_is_the_stacked_least_squares(d
     kw = dict(past_steps=4, horizon_steps=8, alphas=[1e-12, 1e-8, 1e-4, 1.0])
     path = _fit(LsqPredictor, session, "qr", **kw)
     stacked = _stacked_fit(monkeypatch, session, **kw)
-    # measured: 4.1e-16 ("noisy") and 2.8e-10 ("ill": the Gram route refuses it, condition above 1e8) relative at most
-    np.testing.assert_allclose(path.cv_table_["validation_error"], stacked.cv_table_["validation_error"], rtol=1e-9)
+    # measured: 6.2e-16 ("noisy") and 1.6e-9 ("ill": the Gram route refuses it, condition above 1e8) relative at
+    # most; 2.8e-10 on "ill" when the folds' factors were merged by a QR of the stack instead of tpqrt, whose factors
+    # are as accurate here (F Fᵀ within 1e-15 of H Hᵀ, the 10 smallest singular values within 1.3-4.8e-9 either way)
+    np.testing.assert_allclose(path.cv_table_["validation_error"], stacked.cv_table_["validation_error"], rtol=5e-9)
     a, b = path.predict_many(*_windows(4, 8)), stacked.predict_many(*_windows(4, 8))
     assert path.alpha_ == stacked.alpha_ and np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
 
@@ -301,3 +309,28 @@ def test_the_svd_path_drops_what_gelsd_drops_on_a_rank_deficient_factor():
     # the two solvers round it differently: 4e-9 measured
     for s, G, tol in zip([0.0, 1e-6], _lsq_path(F, 6, [0.0, 1e-6]), [1e-12, 1e-8]):
         np.testing.assert_allclose(G, _lsq_map(F, 6, s), atol=tol)
+
+
+def test_the_qr_routes_algebra_runs_on_the_blas_threads_the_process_had(noisy, monkeypatch):
+    # the fits limit BLAS to one thread for the Gram route's own workers; the QR route's folds run one after another
+    # (a 2,450-row SVD: 7.8 s on one thread, 4.0 s on two; benchmarks/README.md, sixteenth session)
+    threadpoolctl = pytest.importorskip("threadpoolctl")
+    from stimsteer.sysid._blas_threads import _one_blas_thread, blas_thread_count, fit_blas_threads
+    from stimsteer.sysid.datadriven import lsq
+
+    seen, svd = [], lsq._lsq_svd
+    monkeypatch.setattr(lsq, "_lsq_svd", lambda *a: seen.append(blas_thread_count()) or svd(*a))
+    with threadpoolctl.threadpool_limits(limits=2, user_api="blas"):
+        _fit(LsqPredictor, noisy, "qr", past_steps=4, horizon_steps=8, alphas=[1e-4, 1.0])
+        assert seen and set(seen) == {2} and blas_thread_count() == 2
+
+        @_one_blas_thread
+        def outer():
+            return blas_thread_count(), inner()
+
+        @_one_blas_thread
+        def inner():  # nested (the excitation check inside a fit): the count before the outermost one is kept
+            with fit_blas_threads():
+                return blas_thread_count()
+
+        assert outer() == (1, 2) and blas_thread_count() == 2

@@ -111,6 +111,38 @@ def test_row_space_factor_with_fewer_columns_than_rows(rng):
     assert combine_factors([], 7).shape == (7, 0)
 
 
+@pytest.mark.parametrize("n_columns", [200, 9])  # streamed chunks (tpqrt) and fewer columns than rows (one QR)
+def test_row_space_factor_in_a_row_order_is_the_triangular_factor_of_the_reordered_matrix(rng, n_columns):
+    u, y = rng.standard_normal((n_columns + 5, 2)), rng.standard_normal((n_columns + 5, 1))
+    H = np.vstack([block_hankel(u, 6), block_hankel(y, 6)])
+    order = np.concatenate([np.arange(4), 12 + np.arange(2), np.arange(4, 12), 12 + np.arange(2, 6)])  # [Up; Yp; ..]
+    F, k = row_space_factor([u, y], 6, max_columns=17, row_order=order)
+    R = np.linalg.qr(H[order].T, mode="r")  # reference: NumPy's QR of the reordered matrix, up to row signs
+    assert k == H.shape[1] and np.array_equal(F, np.tril(F))
+    np.testing.assert_allclose(np.abs(F), np.abs(R.T), rtol=0, atol=1e-12 * np.abs(R).max())
+    with pytest.raises(ValueError, match="permutation"):
+        row_space_factor([u, y], 6, row_order=order[:-1])
+
+
+@pytest.mark.parametrize("widths, scrambled", [((12, 12, 12), False), ((7, 9), False), ((12, 3), False),
+                                               ((3, 4), False), ((12, 12), True)])
+def test_combining_triangular_and_trapezoidal_factors_is_the_qr_of_the_stack(rng, widths, scrambled):
+    # lower trapezoidal factors (n × k) are folded in by tpqrt; fewer columns than rows in all, or a factor that is
+    # not triangular (rows reordered), take the stacked QR.
+    # Reference: NumPy's QR of the stacked transposed factors (Golub & Van Loan 2013, section 5.2), up to row signs
+    factors = [np.linalg.qr(rng.standard_normal((k, 12)), mode="r").T for k in widths]
+    for f in factors:
+        f[:, :] = np.tril(f)  # exactly lower trapezoidal, as the factors are
+    if scrambled:
+        factors[1] = factors[1][::-1].copy()
+    kept = [f.copy() for f in factors]
+    F = combine_factors(factors, 12)
+    R = np.linalg.qr(np.vstack([f.T for f in factors]), mode="r")
+    assert F.shape == (12, min(12, sum(widths))) and np.array_equal(F, np.tril(F))
+    np.testing.assert_allclose(np.abs(F), np.abs(R.T), rtol=0, atol=1e-12 * np.abs(R).max())
+    assert all(np.array_equal(a, b) for a, b in zip(factors, kept))  # inputs are not modified
+
+
 @pytest.mark.parametrize(
     "call, match",
     [
