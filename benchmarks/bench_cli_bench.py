@@ -9,10 +9,10 @@ command's process and its children as the kernel reports them, the exit code):
 1. ``stimsteer bench SESSION --quick --past P --horizon H --out DIR`` (default 100 ms / 50 ms): every default method
    on two splits, the data-length, noise and horizon sweeps at one point each, the closed loops; then the report's
    own task table (``tables/tasks.csv``): the slowest fits, with the training trials each had;
-2. (``--few-trials K``, default 4) ``stimsteer fit --route direct --method lsq`` on a session of the first ``K``
-   trials alone (the command holds one of four out: three training trials, as the data-length sweep's smallest
-   point), where the Gram of the lagged data is too ill-conditioned for the Gram route and the fit takes its QR
-   route.
+2. (``--few-trials K``, default 4) ``stimsteer fit --route direct --method M`` for the least-squares and the
+   regularised Hankel predictor (``--few-methods``) on a session of the first ``K`` trials alone (the command holds
+   one of four out: three training trials, as the data-length sweep's smallest point), where the Gram of the
+   lagged data is too ill-conditioned for the Gram route and the fit takes its QR route.
 
 Usage::
 
@@ -35,6 +35,10 @@ from bench_cli_fit import _command, _row, measured  # noqa: E402  (the same chil
 from bench_windows import make_session  # noqa: E402  (the same session)
 
 
+#: The direct methods of the few-trial fits (their QR route), as the table names them.
+_FEW = {"lsq": "least-squares predictor", "hankel": "regularised Hankel predictor"}
+
+
 def _slowest_fits(folder: Path, n: int = 6) -> list:
     rows = list(csv.DictReader(open(folder / "tables" / "tasks.csv")))
     rows = [r for r in rows if r.get("fit_s")]
@@ -48,7 +52,9 @@ def main(argv=None) -> int:
     ap.add_argument("--past", default="100ms")
     ap.add_argument("--horizon", default="50ms")
     ap.add_argument("--few-trials", type=int, default=4, help="trials of the least-squares fit on few trials")
-    ap.add_argument("--few-only", action="store_true", help="only the least-squares fit on few trials")
+    ap.add_argument("--few-only", action="store_true", help="only the fits on few trials")
+    ap.add_argument("--few-methods", nargs="+", choices=sorted(_FEW), default=["lsq", "hankel"],
+                    help="direct methods fitted on few trials")
     ap.add_argument("--timeout", type=float, default=1800.0, help="seconds per command before it is killed")
     ap.add_argument("--seed", type=int, default=1)
     args = ap.parse_args(argv)
@@ -64,9 +70,11 @@ def main(argv=None) -> int:
               f"outputs, {len(session.trials)} trials; --past {args.past} --horizon {args.horizon}")
         print("| command | wall | CPU | peak resident | model file | exit code | load |")
         print("| --- | --- | --- | --- | --- | --- | --- |")
-        r = measured(_command() + ["fit", str(few), "--route", "direct", "--method", "lsq", "--past", args.past,
-                                   "--horizon", args.horizon, "--out", str(Path(tmp) / "few_lsq.h5")], args.timeout)
-        print(_row(f"fit, least-squares predictor, first {args.few_trials} trials", r, ""), flush=True)
+        for method in args.few_methods:
+            r = measured(_command() + ["fit", str(few), "--route", "direct", "--method", method, "--past", args.past,
+                                       "--horizon", args.horizon, "--out", str(Path(tmp) / f"few_{method}.h5")],
+                         args.timeout)
+            print(_row(f"fit, {_FEW[method]}, first {args.few_trials} trials", r, ""), flush=True)
         if not args.few_only:
             out = Path(tmp) / "bench"
             r = measured(_command() + ["bench", str(path), "--quick", "--past", args.past, "--horizon", args.horizon,
