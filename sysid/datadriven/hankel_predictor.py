@@ -33,10 +33,13 @@ _L1_VALIDATION_WINDOWS = 16
 
 # ------------------------------------------------------------------------------------------------ Hankel
 def _projection_complement(D: np.ndarray, n_columns: int) -> np.ndarray:
-    """``I − Π`` with ``Π`` the orthogonal projector onto the row space of ``D`` (numerical rank, see excitation)."""
+    """``I − Π`` with ``Π`` the orthogonal projector onto the row space of ``D`` (numerical rank, see excitation);
+    exactly zero where that rank is ``D``'s column count (its rows span every direction of ``g``)."""
     _, sv, Vt = np.linalg.svd(D, full_matrices=False)
     tol = rank_tolerance(sv, (D.shape[0], n_columns))
     V = Vt[sv > tol].T
+    if V.shape[1] == D.shape[1]:
+        return np.zeros((V.shape[0], V.shape[0]))
     M = -(V @ V.T)
     M[np.diag_indices_from(M)] += 1.0
     return M
@@ -292,7 +295,9 @@ class HankelPredictor(_DirectPredictor):
         M = _projection_complement(blocks.D, train.n_columns) if self.regularizer == "projection" else None
         scale = _data_scale(train.factor)
         out = []
-        for rel in lambdas:
+        # M = 0 (fewer columns than regressor rows, D of full column rank): neither strength enters the minimiser
+        alike = M is not None and not M.any()
+        for rel in lambdas[:1] if alike else lambdas:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", ConditioningWarning)
                 try:
@@ -301,7 +306,7 @@ class HankelPredictor(_DirectPredictor):
                     out.append(np.inf)
                     continue
             out.append(_validation_error(G, val.factor, weights))
-        return out
+        return out * len(lambdas) if alike else out
 
     def _n_b(self) -> int:
         return regressor_rows(self.n_inputs_, self.n_outputs_, self.past_steps_, self.max_horizon_steps_)

@@ -334,3 +334,32 @@ def test_the_qr_routes_algebra_runs_on_the_blas_threads_the_process_had(noisy, m
                 return blas_thread_count()
 
         assert outer() == (1, 2) and blas_thread_count() == 2
+
+
+def test_fewer_training_columns_than_regressor_rows_score_one_strength_per_fold(monkeypatch):
+    # two short trials (38 windows each against 41 regressor rows): each training fold's D has full column rank, so
+    # I − Π = 0 and no strength enters the minimiser; one KKT solve per fold instead of one per strength (a 2-trial
+    # fit at past 100 / horizon 50: 33 s -> 15 s; benchmarks/README.md, sixteenth session). Reference: the earlier
+    # per-strength KKT solves with the projector I − V Vᵀ formed from the SVD (rounding-level, not zero)
+    from stimsteer.sysid.datadriven import hankel_predictor as hp
+    from stimsteer.sysid.excitation import rank_tolerance
+
+    s, P, N = _system(T=100, n_trials=2), 5, 8
+    calls, kkt = [], hp._kkt_predictor
+    monkeypatch.setattr(hp, "_kkt_predictor", lambda *a: calls.append(1) or kkt(*a))
+    new = _fit(HankelPredictor, s, "qr", past_steps=P, horizon_steps=N)
+
+    def formed(D, n_columns):  # the projector as written before: I − V Vᵀ, whatever the rank
+        _u, sv, Vt = np.linalg.svd(D, full_matrices=False)
+        V = Vt[sv > rank_tolerance(sv, (D.shape[0], n_columns))].T
+        return np.eye(V.shape[0]) - V @ V.T
+
+    monkeypatch.setattr(hp, "_projection_complement", formed)
+    n_new, calls[:] = len(calls), []
+    old = _fit(HankelPredictor, s, "qr", past_steps=P, horizon_steps=N)
+    n_lambdas = len(old.cv_table_)
+    assert new.factor_route_ == "qr" and n_new == 2 and len(calls) == 2 * n_lambdas
+    for col in ("validation_error", "fold_0", "fold_1"):  # measured: 4.5e-12 relative at most
+        np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-8)
+    a, b = new.predict_many(*_windows(P, N)), old.predict_many(*_windows(P, N))
+    assert new.lambda_g_relative_ == old.lambda_g_relative_ and np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
