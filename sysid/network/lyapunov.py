@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["DOUBLING_STATES", "stable_gramian"]
+__all__ = ["DOUBLING_STATES", "stable_gramian", "stable_gramian_pair"]
 
 #: States from which :func:`stable_gramian` sums by doubling instead of calling SciPy's solver.
 DOUBLING_STATES = 512
@@ -44,3 +44,41 @@ def stable_gramian(A, Q) -> np.ndarray:
             break
         M = M @ M
     return 0.5 * (W + W.T)
+
+
+def stable_gramian_pair(A, Q, R) -> tuple[np.ndarray, np.ndarray]:
+    """``(W, V)`` with ``W = A W Aᵀ + Q`` and ``V = Aᵀ V A + R`` (a controllability and an observability Gramian):
+    :func:`stable_gramian` of each below :data:`DOUBLING_STATES` states; from there the two doubled sums share the
+    powers ``M = A^(2^j)`` (``V``'s are their transposes), and each step's term ``M W Mᵀ`` is formed as ``X = M W``
+    then the lower block triangle of ``X Mᵀ`` (symmetric), mirrored: 8 ``n³`` flops a step for both instead of 12.
+    The same sums as :func:`stable_gramian`'s, their products in another order (equal to rounding)."""
+    A = np.asarray(A, dtype=np.float64)
+    if A.shape[0] < DOUBLING_STATES:
+        return stable_gramian(A, Q), stable_gramian(A.T, R)
+    W, V, M = np.array(Q, dtype=np.float64), np.array(R, dtype=np.float64), A.copy()
+    eps = np.finfo(np.float64).eps
+    live = [True, True]
+    for _ in range(_MAX_STEPS):
+        for k, (G, left) in enumerate(((W, M), (V, M.T))):
+            if live[k]:
+                term = _symmetric_product(left @ G, left)
+                G += term
+                live[k] = np.max(np.abs(term)) > eps * np.max(np.abs(G))  # stops below rounding of G (or G zero)
+        if not any(live):
+            break
+        M = M @ M
+    return 0.5 * (W + W.T), 0.5 * (V + V.T)
+
+
+def _symmetric_product(X: np.ndarray, M: np.ndarray, block: int = 384) -> np.ndarray:
+    """``X Mᵀ`` where it is symmetric (``X = M G``, ``G`` symmetric): the lower block triangle by block rows (half
+    the flops of the whole product), the upper one its transpose."""
+    n = X.shape[0]
+    out = np.empty((n, n))
+    for i0 in range(0, n, block):
+        i1 = min(i0 + block, n)
+        out[i0:i1, :i1] = X[i0:i1] @ M[:i1].T
+    for i0 in range(0, n, block):
+        i1 = min(i0 + block, n)
+        out[i0:i1, i1:] = out[i1:, i0:i1].T
+    return out

@@ -7,7 +7,7 @@ import numpy as np
 
 from ..exceptions import SessionError
 from ..statespace import StateSpaceModel
-from .lyapunov import stable_gramian
+from .lyapunov import stable_gramian, stable_gramian_pair
 
 __all__ = ["network_model", "normalised_network", "minimal_realisation", "MINIMAL_RTOL", "NORMALISATION_NONE",
            "NORMALISATION_SIGMA"]
@@ -212,7 +212,7 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     stable = n == 0 or model.spectral_radius < 1.0  # the model's poles, computed once
     T = horizon_steps if horizon_steps is not None or stable else 2 * n
     if T is None:
-        Wc, Wo = stable_gramian(A, B @ B.T), stable_gramian(A.T, C.T @ C)
+        Wc, Wo = stable_gramian_pair(A, B @ B.T, C.T @ C)
     else:
         Wc, Wo = np.zeros((n, n)), np.zeros((n, n))
         Mb, Mc = B.copy(), C.T.copy()
