@@ -41,8 +41,6 @@ __all__ = [
 ]
 
 
-
-
 def _as_signal(w, name: str = "w") -> np.ndarray:
     arr = np.asarray(w, dtype=np.float64)
     if arr.ndim == 1:
@@ -317,7 +315,8 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
 
 
 def _is_lower(F: np.ndarray, block: int = 256) -> bool:
-    """Whether the strict upper triangle of the square ``F`` is zero (by block rows: no temporary of its size)."""
+    """Whether ``F`` (square, or ``n × k`` with ``k ≤ n``) is zero above its diagonal (by block rows: no temporary
+    of its size)."""
     return not any(np.triu(F[i0:i0 + block, i0:], 1).any() for i0 in range(0, F.shape[0], block))
 
 
@@ -363,14 +362,17 @@ def _stream_r(sigs, spans, depth: int, n_rows: int, step: int, to=None) -> np.nd
     return R
 
 
-def _merge_r(parts) -> np.ndarray:
+def _merge_r(parts, own_first: bool = False) -> np.ndarray:
     """``R`` (``n × n``) with ``RᵀR = Σ R_iᵀR_i`` of upper-trapezoidal parts (``k_i × n``, ``k_i ≤ n``; the first
-    copied), each folded in by ``tpqrt`` with a trapezoidal pentagon (``O(k_i n²)``, independent of the data length)."""
+    copied unless ``own_first``), each folded in by ``tpqrt`` with a trapezoidal pentagon (``O(k_i n²)``)."""
     from ._lapack_nogil import tpqrt_inplace
 
     n = parts[0].shape[1]
-    R = np.zeros((n, n), order="F")
-    R[:parts[0].shape[0]] = np.triu(parts[0])
+    if own_first and parts[0].shape == (n, n) and parts[0].flags.f_contiguous:
+        R = parts[0]  # the caller's own array (row_space_factor's workers): overwritten, no copy of its size
+    else:
+        R = np.zeros((n, n), order="F")
+        R[:parts[0].shape[0]] = np.triu(parts[0])
     for other in parts[1:]:
         R = tpqrt_inplace(R, np.asfortranarray(np.triu(other)), other.shape[0], min(n, 64))
     return R
@@ -475,5 +477,5 @@ def row_space_factor(blocks, depth: int, segments: Sequence[tuple[int, int]] | N
         else:
             with ThreadPoolExecutor(max_workers=n_groups, thread_name_prefix="stimsteer-qr") as pool:
                 parts = list(pool.map(lambda g: _stream_r(sigs, g, depth, n_rows, step, to), groups))
-        R = _merge_r(parts)
+        R = _merge_r(parts, own_first=True)
     return np.ascontiguousarray(np.triu(R).T), total
