@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from ._glyphs import GlyphSafeFigure
 from ._in_view import trim_ticks
@@ -61,6 +62,7 @@ def gramian_spectrum_figure(eigenvalues, horizon_steps, condition_number: float,
                 va="top", fontsize=7, color=_WARN)
     horizon = "infinite horizon" if horizon_steps is None else f"horizon {horizon_steps} steps"
     ax.set_xlabel("eigenvalue index", fontsize=8)
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # indices: no tick at 2.5
     ax.set_ylabel("eigenvalue (output units² per input unit² per sample)", fontsize=8)
     ax.set_title(f"Spectrum of the {what} ({horizon}; condition {condition_number:.3g})", fontsize=9)
     _plain_axes(ax)

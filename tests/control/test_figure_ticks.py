@@ -70,3 +70,13 @@ def test_trim_wraps_automatic_linear_locators_once_and_leaves_fixed_and_log_ones
     assert not isinstance(ax0.yaxis.get_major_locator().base, InView)
     log = ranking_figure(["a", "b"], np.array([1e4, 1.0]), "t", "x").axes[0]
     assert isinstance(log.xaxis.get_major_locator(), ticker.LogLocator)
+
+
+def test_the_gramian_spectrum_ticks_whole_eigenvalue_indices():
+    # found by looking at `stimsteer network` of a 20-channel model: ticks at 2.5, 7.5, ... for an index
+    from stimsteer.control.figures.network import gramian_spectrum_figure
+
+    fig = gramian_spectrum_figure(np.logspace(1, -2, 20), None, 4.7e3, "output Gramian C W Cᵀ")
+    fig.canvas.draw()
+    ticks = [t for t in fig.axes[0].get_xticks() if 1 <= t <= 20]
+    assert len(ticks) >= 3 and all(float(t).is_integer() for t in ticks)
