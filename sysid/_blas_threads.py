@@ -117,7 +117,8 @@ def _one_blas_thread(func):
 
 
 def fit_blas_threads():
-    """Context that gives BLAS back the threads it had before the enclosing :func:`_one_blas_thread` (one outside
-    any): for a fit's sequential algebra on large matrices, which runs alone (a 2,450-row SVD: 7.8 s on one thread,
-    4.0 s on two; benchmarks/README.md, sixteenth session)."""
-    return blas_threads(max(1, getattr(_BEFORE, "count", None) or 1))
+    """Context that gives BLAS back the threads it had before the enclosing :func:`_one_blas_thread` (outside any,
+    BLAS is left as it is): for a fit's sequential algebra on large matrices, which runs alone (a 2,450-row SVD:
+    7.8 s on one thread, 4.0 s on two; benchmarks/README.md, sixteenth session)."""
+    count = getattr(_BEFORE, "count", None)
+    return contextlib.nullcontext() if count is None else blas_threads(max(1, int(count)))
