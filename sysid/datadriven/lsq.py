@@ -8,7 +8,8 @@ import scipy.linalg as sla
 
 from .._base import check_fitted
 from ..protocols import PredictionMaps
-from ..hankel import _one_blas_thread
+from .._lapack_nogil import tpqrt_inplace
+from ..hankel import _is_lower, _one_blas_thread
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, regressor_rows
 from ._strength_folds import first_fold_hook
 from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
@@ -49,6 +50,26 @@ def _lsq_path(F: np.ndarray, n_b: int, strengths) -> list:
     squares per strength and fold (nine per fold; at past 100 / horizon 50 each of 4,900 × 2,450)."""
     sig, Vt, UtB = _lsq_svd(F, n_b)
     return [(Vt.T @ (_filter(sig, s)[:, None] * UtB)).T for s in strengths]
+
+
+def _lsq_one(F: np.ndarray, n_b: int, strength: float) -> np.ndarray:
+    """``_lsq_path(F, n_b, [strength])[0]`` (the final map: one strength) by one QR of the stacked system: with
+    ``F1`` the square block of a lower-triangular factor, ``[F1ᵀ F2ᵀ; √s I 0] = Q [R11 R12; 0 R22]`` by LAPACK's
+    ``tpqrt`` (``[F1ᵀ F2ᵀ]`` upper trapezoidal, ``√s I`` diagonal) and ``Θᵀ = R11⁻¹ R12``, the stacked least
+    squares' minimiser (Golub & Van Loan 2013, section 5.3) with the accuracy of a QR of the data. About
+    ``(2/3) n_b³ + 4 n_b² pN`` flops where the SVD route costs about ``9 n_b³`` before its products. Elsewhere
+    (another factor, ``s ≤ 0``) the SVD route."""
+    F1, F2 = F[:n_b], F[n_b:]
+    if not (strength > 0 and F.shape[1] >= n_b and not np.any(F1[:, n_b:]) and _is_lower(F1[:, :n_b])):
+        return _lsq_path(F, n_b, [strength])[0]
+    N = n_b + F2.shape[0]
+    R = np.zeros((N, N), order="F")
+    R[:n_b, :n_b], R[:n_b, n_b:] = F1[:, :n_b].T, F2[:, :n_b].T  # F2's other columns: a constant residual
+    B = np.zeros((n_b, N), order="F")
+    B[np.arange(n_b), np.arange(n_b)] = np.sqrt(strength)
+    R = tpqrt_inplace(R, B, n_b, min(N, 64))
+    del B
+    return sla.solve_triangular(R[:n_b, :n_b], R[:n_b, n_b:], check_finite=False).T
 
 
 def _lsq_errors(F: np.ndarray, n_b: int, strengths, F_val: np.ndarray, weights: np.ndarray) -> list:
@@ -246,7 +267,7 @@ class LsqPredictor(_DirectPredictor):
                 theta, scale = fitted_ridge_map(total, n_b, alpha, rows)
             else:
                 scale = _data_scale(total.factor)
-                theta = _lsq_path(total.factor, n_b, [alpha * scale])[0]  # as the grid was scored
+                theta = _lsq_one(total.factor, n_b, alpha * scale)  # the grid's minimiser, by one QR
         theta = self._unscaled(theta)  # fitted on unit-RMS channels
         self.Kp_ = np.ascontiguousarray(theta[:, : (m + p) * past])
         self.Kf_ = np.ascontiguousarray(theta[:, (m + p) * past:])
