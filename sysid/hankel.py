@@ -310,14 +310,19 @@ def combine_factors(factors: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
     if len(parts) == 1:
         return np.ascontiguousarray(parts[0].T)
     if sum(q.shape[0] for q in parts) >= n_rows and all(q.shape[0] <= n_rows and _is_lower(q.T) for q in parts):
-        return np.ascontiguousarray(np.triu(_merge_r(parts)).T)
+        return _merge_r(parts).T  # C-ordered (R is Fortran), exactly lower triangular: tpqrt leaves R's zeros below
     return np.ascontiguousarray(_r_factor(np.concatenate(parts, axis=0)).T)
 
 
 def _is_lower(F: np.ndarray, block: int = 256) -> bool:
     """Whether ``F`` (square, or ``n × k`` with ``k ≤ n``) is zero above its diagonal (by block rows: no temporary
     of its size)."""
-    return not any(np.triu(F[i0:i0 + block, i0:], 1).any() for i0 in range(0, F.shape[0], block))
+    n = F.shape[0]
+    for i0 in range(0, min(n, F.shape[1]), block):
+        i1 = min(i0 + block, n)
+        if F[i0:i1, i1:].any() or np.triu(F[i0:i1, i0:i1], 1).any():  # no copy of the block row: views reduced
+            return False
+    return True
 
 
 def _fill_columns(buf: np.ndarray, sigs, c0: int, depth: int, to=None) -> None:
@@ -372,9 +377,14 @@ def _merge_r(parts, own_first: bool = False) -> np.ndarray:
         R = parts[0]  # the caller's own array (row_space_factor's workers): overwritten, no copy of its size
     else:
         R = np.zeros((n, n), order="F")
-        R[:parts[0].shape[0]] = np.triu(parts[0])
+        R[:parts[0].shape[0]] = parts[0]  # its strict lower part is not read (tpqrt's A)
     for other in parts[1:]:
-        R = tpqrt_inplace(R, np.asfortranarray(np.triu(other)), other.shape[0], min(n, 64))
+        B = np.array(other, order="F")  # a copy (tpqrt overwrites it), its strict lower part zeroed by blocks
+        for j0 in range(0, min(B.shape), 256):
+            j1 = min(j0 + 256, B.shape[1])
+            B[j0:j1, j0:j1] = np.triu(B[j0:j1, j0:j1])
+            B[j1:, j0:j1] = 0.0
+        R = tpqrt_inplace(R, B, other.shape[0], min(n, 64))
     return R
 
 

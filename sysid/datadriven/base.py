@@ -192,7 +192,13 @@ def _std_and_trial_folds(session, pieces, scheme, y_sum, y_sq, n_y):
 
 
 def _collect_qr(session, past, horizon, n_folds_wanted, seed, keep_full):
-    """One pass over the valid segments: per-fold row-space factors by QR (and raw Hankel blocks when asked)."""
+    """One pass over the valid segments: per-fold row-space factors by QR (and raw Hankel blocks when asked); the
+    QR route's algebra on the BLAS threads of before the fit (``_DirectPredictor._qr_algebra``)."""
+    with fit_blas_threads():
+        return _collect_qr_pass(session, past, horizon, n_folds_wanted, seed, keep_full)
+
+
+def _collect_qr_pass(session, past, horizon, n_folds_wanted, seed, keep_full):
     m, p, L = int(session.n_inputs), int(session.n_outputs), past + horizon
     order = _row_order(m, p, past, horizon)
     pieces, n_folds, scheme = _pieces(session, L, n_folds_wanted, seed, past)
