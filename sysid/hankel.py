@@ -368,8 +368,9 @@ def _stream_r(sigs, spans, depth: int, n_rows: int, step: int, to=None) -> np.nd
 
 
 def _merge_r(parts, own_first: bool = False) -> np.ndarray:
-    """``R`` (``n × n``) with ``RᵀR = Σ R_iᵀR_i`` of upper-trapezoidal parts (``k_i × n``, ``k_i ≤ n``; the first
-    copied unless ``own_first``), each folded in by ``tpqrt`` with a trapezoidal pentagon (``O(k_i n²)``)."""
+    """``R`` (``n × n``) with ``RᵀR = Σ R_iᵀR_i`` of upper-trapezoidal parts (``k_i × n``, ``k_i ≤ n``, exactly zero
+    below their diagonals, as ``_stream_r``'s and :func:`combine_factors`' checked ones are; the first copied unless
+    ``own_first``), each folded in by ``tpqrt`` with a trapezoidal pentagon (``O(k_i n²)``)."""
     from ._lapack_nogil import tpqrt_inplace
 
     n = parts[0].shape[1]
@@ -377,14 +378,9 @@ def _merge_r(parts, own_first: bool = False) -> np.ndarray:
         R = parts[0]  # the caller's own array (row_space_factor's workers): overwritten, no copy of its size
     else:
         R = np.zeros((n, n), order="F")
-        R[:parts[0].shape[0]] = parts[0]  # its strict lower part is not read (tpqrt's A)
+        R[:parts[0].shape[0]] = parts[0]
     for other in parts[1:]:
-        B = np.array(other, order="F")  # a copy (tpqrt overwrites it), its strict lower part zeroed by blocks
-        for j0 in range(0, min(B.shape), 256):
-            j1 = min(j0 + 256, B.shape[1])
-            B[j0:j1, j0:j1] = np.triu(B[j0:j1, j0:j1])
-            B[j1:, j0:j1] = 0.0
-        R = tpqrt_inplace(R, B, other.shape[0], min(n, 64))
+        R = tpqrt_inplace(R, np.array(other, order="F"), other.shape[0], min(n, 64))  # a copy: tpqrt overwrites B
     return R
 
 

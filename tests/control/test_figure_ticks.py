@@ -73,7 +73,8 @@ def test_trim_wraps_automatic_linear_locators_once_and_leaves_fixed_and_log_ones
 
 
 def test_the_gramian_spectrum_ticks_whole_eigenvalue_indices():
-    # found by looking at `stimsteer network` of a 20-channel model: ticks at 2.5, 7.5, ... for an index
+    # found by looking at `stimsteer network` of a 20-channel model: ticks at 2.5, 7.5, ... for an index (an index
+    # is ticked at whole numbers: common practice, no source); made-up spectrum of 20 values
     from stimsteer.control.figures.network import gramian_spectrum_figure
 
     fig = gramian_spectrum_figure(np.logspace(1, -2, 20), None, 4.7e3, "output Gramian C W Cᵀ")

@@ -228,7 +228,10 @@ def _earlier_hankel_route(monkeypatch):
                                             ("one_signed", "qr")])
 def test_projection_closed_form_equals_the_earlier_kkt_route(noisy, session, route, monkeypatch):
     # on the QR route too (its merged factors are triangular in the Hankel order): the KKT solves and the SVD
-    # projector gave 243 s of a 3-trial fit at past 100 / horizon 50 (benchmarks/README.md, sixteenth session)
+    # projector gave 243 s of a 3-trial fit at past 100 / horizon 50 (benchmarks/README.md, sixteenth session).
+    # Reference: the KKT system of the regularised problem solved per strength (Dörfler, Coulson & Markovsky 2023,
+    # "Bridging direct and indirect data-driven control formulations via regularizations and relaxations", IEEE
+    # Transactions on Automatic Control: the projection regulariser's equivalence with the least-squares predictor)
     from stimsteer.sysid.datadriven import hankel_predictor as hp
 
     s, P, N = (noisy if session == "noisy" else _one_signed(5.0)), 5, 8
@@ -361,7 +364,8 @@ def test_the_qr_routes_algebra_runs_on_the_blas_threads_the_process_had(noisy, m
 
 def test_fewer_training_columns_than_regressor_rows_score_one_strength_per_fold(monkeypatch):
     # two short trials (38 windows each against 41 regressor rows): each training fold's D has full column rank, so
-    # I − Π = 0 and no strength enters the minimiser; one KKT solve per fold instead of one per strength (a 2-trial
+    # I − Π = 0 and no strength enters the minimiser (an equality-constrained least squares whose stacked matrix has
+    # full column rank has one minimiser: Golub & Van Loan 2013, Matrix Computations, section 6.2); one KKT solve per fold instead of one per strength (a 2-trial
     # fit at past 100 / horizon 50: 33 s -> 15 s; benchmarks/README.md, sixteenth session). Reference: the earlier
     # per-strength KKT solves with the projector I − V Vᵀ formed from the SVD (rounding-level, not zero)
     from stimsteer.sysid.datadriven import hankel_predictor as hp
@@ -384,5 +388,5 @@ def test_fewer_training_columns_than_regressor_rows_score_one_strength_per_fold(
     assert new.factor_route_ == "qr" and n_new == 2 and len(calls) == 2 * n_lambdas
     for col in ("validation_error", "fold_0", "fold_1"):  # measured: 4.5e-12 relative at most
         np.testing.assert_allclose(new.cv_table_[col], old.cv_table_[col], rtol=1e-8)
-    a, b = new.predict_many(*_windows(P, N)), old.predict_many(*_windows(P, N))
+    a, b = new.predict_many(*_windows(P, N)), old.predict_many(*_windows(P, N))  # measured equal (the same map)
     assert new.lambda_g_relative_ == old.lambda_g_relative_ and np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
