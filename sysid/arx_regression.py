@@ -160,7 +160,7 @@ def _ridge_path(R: np.ndarray, r: np.ndarray, alphas, route: str = "auto") -> tu
     rounding level of ``R`` or a factor does not exist). Eigenvalues at or below ``d · eps · λ_max`` are treated
     as zero; for α = 0 their directions are dropped (minimum-norm solution).
     """
-    from .hankel import _single_blas_thread
+    from ._blas_threads import _single_blas_thread
 
     with _single_blas_thread():  # multi-threaded OpenBLAS stalls on a busy machine (bench_windows: 2-5x slower)
         betas = chol_ridge_path(R, r, alphas) if route == "auto" and R.shape[0] >= _CHOLESKY_FROM else None

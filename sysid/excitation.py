@@ -37,7 +37,8 @@ import numpy as np
 
 from ._lagged import _lagged_gram, _stream_lag_sums
 from .exceptions import ExcitationError, ExcitationWarning, SessionError
-from .hankel import _one_blas_thread, combine_factors, hankel_column_count, row_space_factor
+from ._blas_threads import _one_blas_thread
+from .hankel import combine_factors, hankel_column_count, row_space_factor
 
 __all__ = [
     "DEFAULT_TOL_FACTOR",

@@ -25,7 +25,7 @@ from typing import Sequence
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from ._blas_threads import _one_blas_thread, _single_blas_thread  # noqa: F401  (imported from here too)
+from ._blas_threads import _single_blas_thread
 from .exceptions import SessionError
 
 __all__ = [

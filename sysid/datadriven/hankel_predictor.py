@@ -13,7 +13,7 @@ from ..excitation import rank_tolerance
 from .._base import check_fitted
 from ..protocols import DataBlocks, PredictionMaps
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, SolverError
-from ..hankel import _one_blas_thread
+from .._blas_threads import _one_blas_thread
 from .consistency import consistent_choice, plan_gaps, plan_gaps_coordinate
 from .l1 import _L1Solver
 from .base import _DirectPredictor, _Fold, _check_strengths, _data_scale, _merge, _validation_error, regressor_rows

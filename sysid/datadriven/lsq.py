@@ -9,7 +9,8 @@ import scipy.linalg as sla
 from .._base import check_fitted
 from ..protocols import PredictionMaps
 from .._lapack_nogil import tpqrt_inplace
-from ..hankel import _is_lower, _one_blas_thread
+from .._blas_threads import _one_blas_thread
+from ..hankel import _is_lower
 from .base import _DirectPredictor, _check_strengths, _data_scale, _merge, regressor_rows
 from ._strength_folds import first_fold_hook
 from .gram import _total_factor, fitted_ridge_map, release_freed_memory, ridge_grid_errors
