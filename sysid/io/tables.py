@@ -257,7 +257,10 @@ def _numeric(frame, col: str, path: Path) -> np.ndarray:
     bad = values.isna() & ~s.isna()
     if bad.any():
         row = int(np.flatnonzero(bad.to_numpy())[0])
-        raise FileFormatError(f"{path}: column {col!r} must be numeric; {_data_row(row)} holds {s.iloc[row]!r}.")
+        hint = (" Write a number there, or leave the cell empty to mark that sample missing."
+                if col.startswith(("in:", "out:")) else " Write a number there.")
+        raise FileFormatError(f"{path}: column {col!r} must be numeric; {_data_row(row)} holds {s.iloc[row]!r}."
+                              + hint)
     return values.to_numpy(dtype=np.float64, na_value=np.nan)
 
 

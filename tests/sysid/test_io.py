@@ -217,7 +217,9 @@ BAD_TABLES = {
     "fractional_trial": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0.5,1\n", r"must hold whole numbers"),
     "no_trial_rows": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,-1,1\n", r"no row belongs to a trial"),
     "bad_valid": ("time [s] @ 10 Hz,trial,out:y [mV],valid\n0,0,1,maybe\n", r"'valid' column must hold 1/0"),
-    "text_value": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,abc\n", r"must be numeric; data row 1 \(counted from 1 after the header\) holds 'abc'"),
+    "text_value": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,abc\n",
+                   r"must be numeric; data row 1 \(counted from 1 after the header\) holds 'abc'\. Write a number "
+                   r"there, or leave the cell empty to mark that sample missing"),
     # an empty cell is a masked sample (issue 18); an infinite value at a valid sample is still refused, naming the
     # channel and the time
     "inf_valid": ("time [s] @ 10 Hz,trial,out:y [mV]\n0,0,1\n0.1,0,inf\n", r"in output 'y' at t = 0.1 s"),
