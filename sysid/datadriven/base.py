@@ -225,12 +225,13 @@ def _collect_qr_pass(session, past, horizon, n_folds_wanted, seed, keep_full):
     return folds, scheme, std, trial_fold
 
 
-def _merge(folds, n_rows):
+def _merge(folds, n_rows, onto=None):
+    """Every fold's data; on the QR route with ``onto`` (the last fold's training data, overwritten) one merge."""
     if isinstance(folds[0], _GramFold):
         return folds.total if getattr(folds, "total", None) is not None else total_fold(folds)
-    factor = combine_factors([f.factor for f in folds], n_rows)
-    full = [blk for f in folds for blk in f.full]
-    return _Fold(factor, sum(f.n_columns for f in folds), full)
+    parts = [f.factor for f in folds] if onto is None else [onto.factor, folds[-1].factor]
+    factor = combine_factors(parts, n_rows, own_first=onto is not None)
+    return _Fold(factor, sum(f.n_columns for f in folds), [blk for f in folds for blk in f.full])
 
 
 def _data_scale(F: np.ndarray) -> float:
@@ -331,6 +332,7 @@ class _DirectPredictor(BasePredictor):
 
     def _select(self, folds, candidates, weights, score_fold):
         """Validation error per candidate summed over folds; ``score_fold(train, val) -> errors``."""
+        self._kept_training = None  # none from an earlier fit (_total)
         if len(candidates) == 1:
             return float(candidates[0]), pd.DataFrame({"candidate": candidates, "validation_error": [np.nan]})
         errors, counts = np.zeros(len(candidates)), 0
@@ -351,21 +353,28 @@ class _DirectPredictor(BasePredictor):
         return float(candidates[best]), table
 
     def _qr_algebra(self):
-        """Context for the QR route's algebra (merges, SVDs, triangular solves of the folds, one after another):
-        BLAS on the threads it had before the fit's one-thread limit (which is for the Gram route's own workers)."""
+        """Context for the QR route's algebra (merges, SVDs, triangular solves, one after another): BLAS on the
+        threads it had before the fit's one-thread limit (for the Gram route's own workers)."""
         return fit_blas_threads() if self.factor_route_ == "qr" else contextlib.nullcontext()
 
-    @staticmethod
-    def _score_one(folds, i, total, weights, score_fold, bar):
+    def _score_one(self, folds, i, total, weights, score_fold, bar):
         """Held-out errors of fold ``i`` (None when it or its training data has no window)."""
         val = folds[i]
         train = _training(folds, i, total)
         bar.update()
+        if total is None and i == len(folds) - 1 and len(folds) > 2:  # QR route: for _total (a factor of its own)
+            self._kept_training = train
         if val.n_columns == 0 or train.n_columns == 0:
             return None
         e = np.asarray(score_fold(train, val, weights))
         val.release()
         return e
+
+    def _total(self, folds):
+        """Every fold's data (:func:`_merge`), onto the training factor :meth:`_score_one` kept (each merge saved:
+        ``(2/3) n³`` flops, 0.7 s of one core at past 100 / horizon 50, issue 14)."""
+        train, self._kept_training = getattr(self, "_kept_training", None), None
+        return _merge(folds, folds[0].n_rows, onto=train)
 
     # ---------------------------------------------------------------------------------------- prediction
     def _batch_windows(self, u_past, y_past, u_future):

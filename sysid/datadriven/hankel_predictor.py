@@ -240,7 +240,7 @@ class HankelPredictor(_DirectPredictor):
             score = known_first(errors_by_fold(folds, self._n_b(), weights, lambdas.size, extra), score)
         rel, table = self._select(folds, lambdas, weights, lambda tr, va, w: score(tr, va, w, lambdas, lam_y))
         with self._qr_algebra():
-            total = _merge(folds, folds[0].n_rows)
+            total = self._total(folds)
             scale = taken(self, "_scale_early")  # computed beside the folds (_gaps_from_factor), from the same factor
             self.data_scale_ = _data_scale(total.factor) if scale is None else scale
             self._l1_cache = self._map_cache = None

@@ -322,6 +322,76 @@ def test_the_final_map_by_one_qr_is_the_stacked_least_squares(cond):
     np.testing.assert_array_equal(_lsq_one(F, n_b, 0.0), _lsq_path(F, n_b, [0.0])[0])
 
 
+def _formed_errors(F, n_b, strengths, F_val, w):
+    """Each strength's held-out error with its residual formed (``Θ`` by the SVD's filter factors, then
+    ``||Ω (F2v − Θ F1v)||²``): the QR route's errors before the expansion, written out."""
+    from stimsteer.sysid.datadriven.base import _validation_error
+    from stimsteer.sysid.datadriven.lsq import _lsq_path
+
+    return [_validation_error(G, F_val, w) for G in _lsq_path(F, n_b, strengths)]
+
+
+@pytest.mark.parametrize("noise", [1e-1, 1e-6])
+def test_the_qr_routes_held_out_errors_by_their_expansion_are_the_formed_residuals(noise, monkeypatch):
+    # reference: the residual formed for each strength's map (the definition of the held-out error). The expansion
+    # ||T||² − 2 dᵀc + dᵀ((BΩ²Bᵀ) ∘ (XXᵀ)) d is exact algebra (Hansen 1998, Rank-Deficient and Discrete Ill-Posed
+    # Problems, section 5.1: the filter-factor form of the ridge map); with noise 1e-6 the outputs are the
+    # regressors times one map almost exactly, so the small strengths' errors are tiny differences of large terms
+    # (1e-13 of them), which the guard hands to the formed residual (measured there: 1.3e-10 relative with the
+    # guard, where the formed residuals only associate their products differently; 3.5e-3 without it)
+    from stimsteer.sysid.datadriven import lsq
+
+    rng = np.random.default_rng(8)
+    n_b, pN, r_t, r_v = 14, 6, 60, 30
+    Theta = rng.standard_normal((pN, n_b))
+
+    def data(r):  # regressors and the outputs they predict through Theta, plus noise
+        X = rng.standard_normal((n_b, r))
+        return np.vstack([X, Theta @ X + noise * rng.standard_normal((pN, r))])
+    F = np.linalg.qr(data(r_t).T, mode="r").T  # the training data's lower-triangular row-space factor
+    F_val = data(r_v)
+    w = rng.uniform(0.5, 2.0, pN)
+    strengths = [1e-14, 1e-9, 1e-4, 1.0, 30.0]
+    ref = _formed_errors(F, n_b, strengths, F_val, w)
+    np.testing.assert_allclose(lsq._lsq_errors(F, n_b, strengths, F_val, w), ref, rtol=1e-9)
+    if noise < 1e-3:  # the guard's work: without it the smallest strengths' errors lose their digits
+        monkeypatch.setattr(lsq, "EXPANSION_GUARD", 0.0)
+        unguarded = lsq._lsq_errors(F, n_b, strengths, F_val, w)
+        assert abs(unguarded[0] - ref[0]) > 1e-6 * ref[0]
+
+
+def test_the_qr_routes_final_factor_is_one_merge_onto_the_last_training_factor(noisy, monkeypatch):
+    # reference: the final map from every fold merged afresh (the route before); the last fold's training factor
+    # (the other folds merged) with that fold folded in has the same Gram F Fᵀ (Golub & Van Loan 2013, Matrix
+    # Computations, section 6.5.5: updating a QR factorisation by rows), made by one tpqrt instead of two; the
+    # folds' own factors are left as they were
+    from stimsteer.sysid import _lapack_nogil
+    from stimsteer.sysid.datadriven import base
+
+    kw = dict(past_steps=4, horizon_steps=8, alphas=[1e-6, 1e-3, 1.0], n_splits=3)
+    calls, real = [], _lapack_nogil.tpqrt_inplace
+    monkeypatch.setattr(_lapack_nogil, "tpqrt_inplace", lambda *a: calls.append(a[0].shape) or real(*a))
+    seen, total = [], base._DirectPredictor._total
+
+    def spy(self, folds):
+        before = [f.factor.copy() for f in folds]
+        out = total(self, folds)
+        seen.append(all(np.array_equal(a, f.factor) for a, f in zip(before, folds)))
+        return out
+    monkeypatch.setattr(base._DirectPredictor, "_total", spy)
+    merged_once = _fit(LsqPredictor, noisy, "qr", **kw)
+    n_once = len(calls)
+    monkeypatch.setattr(base._DirectPredictor, "_total", lambda self, folds: base._merge(folds, folds[0].n_rows))
+    calls.clear()
+    merged_all = _fit(LsqPredictor, noisy, "qr", **kw)
+    assert seen == [True] and n_once == len(calls) - 1
+    a, b = merged_once.predict_many(*_windows(4, 8)), merged_all.predict_many(*_windows(4, 8))
+    # measured: 3.3e-15 relative
+    assert np.abs(a - b).max() <= 1e-10 * np.abs(b).max()
+    pd_cols = ["validation_error"]
+    np.testing.assert_array_equal(merged_once.cv_table_[pd_cols], merged_all.cv_table_[pd_cols])
+
+
 def test_the_svd_path_drops_what_gelsd_drops_on_a_rank_deficient_factor():
     from stimsteer.sysid.datadriven.lsq import _lsq_path
 
