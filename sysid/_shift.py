@@ -7,7 +7,8 @@ over a past window cost ``n³`` per sample: at past 100 ms of 3 sites and 20 cha
 most of the 104 s ``stimsteer plan`` took with that model went there (``benchmarks/bench_cli_fit.py --plan``). Here
 such an ``Ak`` is a partial permutation (no two rows copy the same state) applied by copying rows, and its powers
 are index arrays. The copies are the products' numbers exactly: each entry of the product is one entry of the
-operand times 1, plus zeros.
+operand times 1, plus zeros. :func:`unit_window_run` runs the predictor over every unit window at once (the state
+estimate's linear map) the same way: the identity's blocks placed, not multiplied.
 """
 
 from __future__ import annotations
@@ -35,10 +36,11 @@ class PredictorStep:
     """``Ak @ X`` and the powers of ``Ak``: by row copies and index arrays where ``Ak`` is a shift
     (:func:`shift_rows`), else by dense products."""
 
-    def __init__(self, Ak: np.ndarray, src=False):
+    def __init__(self, Ak: np.ndarray, src=False, runs=None):
         self.Ak, self.src = Ak, shift_rows(Ak) if src is False else src
         n = Ak.shape[0]
         self._power = np.arange(n) if self.src is not None else np.eye(n)  # Ak^0
+        self._runs = None if self.src is None else runs if runs is not None else _runs(self.src)
 
     @classmethod
     def of(cls, model) -> "PredictorStep":
@@ -49,15 +51,20 @@ class PredictorStep:
         if src is False:
             src = shift_rows(Ak)
             object.__setattr__(model, "_shift_rows", src)
-        return cls(Ak, src)
+            object.__setattr__(model, "_shift_runs", None if src is None else _runs(src))
+        return cls(Ak, src, model.__dict__.get("_shift_runs"))
 
-    def __call__(self, X: np.ndarray) -> np.ndarray:
-        """``Ak @ X``."""
+    def __call__(self, X: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """``Ak @ X`` (into ``out``, of that shape and not ``X``'s memory, where given). A shift is applied as slice
+        copies of its runs of consecutive rows (no gathered temporary of ``X``'s size), its zero rows zeroed."""
         if self.src is None:
-            return self.Ak @ X
-        out = np.zeros((self.src.size,) + X.shape[1:])
-        rows = self.src >= 0
-        out[rows] = X[self.src[rows]]
+            return self.Ak @ X if out is None else np.matmul(self.Ak, X, out=out)
+        out = np.empty((self.src.size,) + X.shape[1:]) if out is None else out
+        for a, b, c in self._runs:
+            if c < 0:
+                out[a:b] = 0.0
+            else:
+                out[a:b] = X[c:c + b - a]
         return out
 
     def times_power(self, C: np.ndarray) -> np.ndarray:
@@ -88,3 +95,41 @@ class PredictorStep:
         rows = np.flatnonzero(self._power >= 0)
         M[rows, self._power[rows]] = 1.0
         return M
+
+
+def _runs(src: np.ndarray) -> list:
+    """``src`` (a shift's source row of each row, −1 for a zero row) as runs ``(a, b, c)``: rows ``[a, b)`` copy
+    rows ``[c, c + b − a)``, or are zero where ``c`` is −1."""
+    n = src.size
+    if n == 0:
+        return []
+    zero = src < 0
+    starts = np.ones(n, dtype=bool)  # row i begins a run
+    starts[1:] = np.where(zero[1:], ~zero[:-1], zero[:-1] | (src[1:] != src[:-1] + 1))
+    a = np.flatnonzero(starts)
+    return [(int(i), int(j), int(src[i]) if src[i] >= 0 else -1) for i, j in zip(a, np.r_[a[1:], n])]
+
+
+def unit_window_run(model, n_past: int):
+    """``(x, resid)``: the innovation predictor of ``model`` run over every unit window of ``n_past`` samples at once
+    (column ``k`` for the window that is 1 at entry ``k`` of ``[vec u; vec y]``, time-major), from a zero state:
+    the state after the window (``n × n_past (m + p)``) and the innovations (``n_past × p × n_past (m + p)``).
+
+    Sample ``t`` of the unit windows is one column block of the identity for ``u`` and one for ``y``, so the
+    products with it (``Bk U_t``, ``K Y_t``, ``D U_t``) are those matrices placed in the blocks' columns, added in
+    place: the sums of the products with the identity, term for term, without ``n × n_past (m + p)`` products and
+    temporaries at every sample; the state is stepped between two buffers (:meth:`PredictorStep.__call__`)."""
+    m, p, n = model.n_inputs, model.n_outputs, model.n_states
+    step, Bk = PredictorStep.of(model), model.B - model.K @ model.D
+    x, spare = np.zeros((n, n_past * (m + p))), np.empty((n, n_past * (m + p)))
+    resid = np.empty((n_past, p, x.shape[1]))
+    for t in range(n_past):
+        u, y = slice(t * m, (t + 1) * m), slice(n_past * m + t * p, n_past * m + (t + 1) * p)
+        r = np.matmul(model.C, x, out=resid[t])  # y_t − (C x + D u_t)
+        r[:, u] += model.D
+        np.negative(r, out=r)
+        r[:, y] += np.eye(p)
+        x, spare = step(x, out=spare), x  # x ← Ak x + Bk u_t + K y_t
+        x[:, u] += Bk
+        x[:, y] += model.K
+    return x, resid

@@ -47,3 +47,42 @@ def test_the_state_estimate_and_its_map_equal_the_dense_products_bit_for_bit(rng
     # the state after the window is the stacked samples (the realisation's docstring): y_{T-1..T-na}, u_{T-1..}
     np.testing.assert_array_equal(fast[:3], y[-1])
     np.testing.assert_array_equal(fast[3:6], y[-2])
+
+
+def test_the_shift_by_runs_of_rows_is_the_dense_product_into_a_given_array(rng):
+    # reference: the dense product Ak @ X (NumPy); rows in runs of consecutive sources, zero rows between runs and
+    # a run that starts again after a jump, X as a vector and as a matrix, into a fresh array and into a given one
+    src = np.array([-1, 0, 1, 2, -1, -1, 5, 6, 3, -1])
+    Ak = np.zeros((src.size, src.size))
+    Ak[np.flatnonzero(src >= 0), src[src >= 0]] = 1.0
+    np.testing.assert_array_equal(_shift.shift_rows(Ak), src)
+    assert _shift._runs(src) == [(0, 1, -1), (1, 4, 0), (4, 6, -1), (6, 8, 5), (8, 9, 3), (9, 10, -1)]
+    assert _shift._runs(np.array([], dtype=int)) == [] and _shift._runs(np.array([-1, -1])) == [(0, 2, -1)]
+    step = _shift.PredictorStep(Ak)
+    for X in (rng.standard_normal(src.size), rng.standard_normal((src.size, 7))):
+        np.testing.assert_array_equal(step(X), Ak @ X)
+        out = np.full_like(X, np.nan)  # every entry written, the zero rows too
+        assert step(X, out=out) is out
+        np.testing.assert_array_equal(out, Ak @ X)
+    dense = _shift.PredictorStep(rng.standard_normal((4, 4)))  # not a shift: a product, into out as well
+    X, out = rng.standard_normal((4, 3)), np.empty((4, 3))
+    np.testing.assert_array_equal(dense(X, out=out), dense.Ak @ X)
+
+
+def test_the_state_map_is_the_state_estimate_of_every_unit_window(rng):
+    # the map's definition (its docstring): column k is estimate_state of the k-th unit window [vec u; vec y], each
+    # estimated on its own by the least-squares fit (a lag realisation at and below its lag count, where the start
+    # of the window still counts, and a model whose predictor is not a shift)
+    from stimsteer.sysid.statespace import StateSpaceModel
+
+    lagged = _arx(rng)
+    A = np.diag([0.7, 0.4, -0.2])
+    other = StateSpaceModel(A=A, B=rng.standard_normal((3, 2)), C=rng.standard_normal((3, 3)), D=rng.standard_normal((3, 2)),
+                            K=0.1 * rng.standard_normal((3, 3)))
+    for model, T in ((lagged, lagged.past_steps), (lagged, lagged.past_steps - 2), (other, 4)):
+        m, p = model.n_inputs, model.n_outputs
+        E = model.state_map(T)
+        basis = np.eye(T * (m + p))
+        for k in range(basis.shape[0]):
+            u, y = basis[k, :T * m].reshape(T, m), basis[k, T * m:].reshape(T, p)
+            np.testing.assert_allclose(E[:, k], model.estimate_state(u, y), rtol=1e-10, atol=1e-12)
