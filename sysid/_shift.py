@@ -36,18 +36,21 @@ class PredictorStep:
     """``Ak @ X`` and the powers of ``Ak``: by row copies and index arrays where ``Ak`` is a shift
     (:func:`shift_rows`), else by dense products."""
 
-    def __init__(self, Ak: np.ndarray, src=False, runs=None):
+    def __init__(self, Ak: np.ndarray | None, src=False, runs=None):
         self.Ak, self.src = Ak, shift_rows(Ak) if src is False else src
-        n = Ak.shape[0]
+        n = self.src.size if self.src is not None else Ak.shape[0]  # a shift does not need Ak itself
         self._power = np.arange(n) if self.src is not None else np.eye(n)  # Ak^0
         self._runs = None if self.src is None else runs if runs is not None else _runs(self.src)
 
     @classmethod
     def of(cls, model) -> "PredictorStep":
         """For ``model``'s ``A − K C``; whether it is a shift is found once per model (its arrays are read-only copies,
-        so the answer is kept on it, as its poles are)."""
-        Ak = model.A - model.K @ model.C
+        so the answer is kept on it, as its poles are), and a shift found before is applied without forming
+        ``A − K C`` again (two ``n × n`` temporaries per call: 0.1-0.2 s at 2,297 states)."""
         src = model.__dict__.get("_shift_rows", False)
+        if src is not False and src is not None:
+            return cls(None, src, model.__dict__.get("_shift_runs"))
+        Ak = model.A - model.K @ model.C
         if src is False:
             src = shift_rows(Ak)
             object.__setattr__(model, "_shift_rows", src)

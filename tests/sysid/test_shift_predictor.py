@@ -39,6 +39,7 @@ def test_the_state_estimate_and_its_map_equal_the_dense_products_bit_for_bit(rng
     u, y = rng.standard_normal((T, 2)), rng.standard_normal((T, 3))
     fast, fast_map = model.estimate_state(u, y), model.state_map(T)
     assert model.__dict__["_shift_rows"] is not None  # found once, kept on the model
+    assert _shift.PredictorStep.of(model).Ak is None  # then applied without forming A − K C again
     monkeypatch.setattr(_shift, "shift_rows", lambda Ak: None)  # every Ak dense, the least-squares fit as before
     dense = model.replace()  # a new model: nothing kept from the first
     np.testing.assert_array_equal(fast, dense.estimate_state(u, y))
