@@ -52,7 +52,8 @@ class BenchResult:
     control : pandas.DataFrame
         Per task: ``tracking_rms`` (steered channel, its unit), ``tracking_rms_all``, ``energy_ua2`` (Σ u², µA²),
         ``use_<limit>`` (share of steps a hard limit was binding), ``violations_<limit>``, ``n_fallback``,
-        ``solve_ms_median``/``_p95``/``_max`` (per step, ms), ``plant``.
+        ``solve_ms_median``/``_p95``/``_max`` (per step after the first, ms), ``solve_ms_first`` (the first step,
+        which also sets the controller up), ``plant``.
     sweeps : pandas.DataFrame
         Per sweep (``base``, ``train_trials``, ``noise_scale``, ``horizon_steps``), value, method and metric:
         ``n`` splits, ``mean`` and the 95 % t-interval ``ci_low``, ``ci_high``.
@@ -285,7 +286,7 @@ def _control_table(ok: pd.DataFrame, st: BenchSettings, plant) -> pd.DataFrame:
         ok = ok[ok["tracking_rms"].notna()]
     cols = [*_KEYS, "tracking_rms", "tracking_rms_all", "energy_ua2"] + \
         [c for c in ok.columns if c.startswith(("use_", "violations_"))] + \
-        ["n_fallback", "solve_ms_median", "solve_ms_p95", "solve_ms_max"]
+        ["n_fallback", "solve_ms_median", "solve_ms_p95", "solve_ms_max", "solve_ms_first"]
     control = _columns(ok, cols)
     if not control.empty:
         control["plant"] = "ground truth" if plant is not None else "surrogate"

@@ -16,7 +16,7 @@ from stimsteer.sysid.exceptions import StimsteerError
 import distributed  # the test extra installs it
 
 _TIMING = ("fit_s", "predict_s", "control_s", "total_s", "predict_ms_per_window", "solve_ms_median", "solve_ms_p95",
-           "solve_ms_max", "warnings")
+           "solve_ms_max", "solve_ms_first", "warnings")
 
 
 def _session(seed):
