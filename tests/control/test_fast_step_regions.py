@@ -39,14 +39,15 @@ def _far(model):
     return gain @ np.array([3.0, -2.0])  # beyond the amplitude window: bounds bind on most steps
 
 
-def _closed_loop(model, step, target, n=150):
-    """Windows of a closed loop run with ``step`` (its maps built between samples, as a live runner does)."""
+def _closed_loop(model, step, target, n=150, T=3):
+    """Windows of ``T`` samples of a closed loop run with ``step`` (its maps built between samples, as a live
+    runner does)."""
     plant = LinearNetworkPlant(model.A, model.B, model.C, measurement_noise_std=0.05, process_noise_std=0.05)
-    U = [np.zeros(2)] * 3
+    U = [np.zeros(2)] * T
     Y = [plant.step(u) for u in U]
     out = []
     for k in range(n):
-        u, y = np.array(U[-3:]), np.array(Y[-3:])
+        u, y = np.array(U[-T:]), np.array(Y[-T:])
         tgt = target if (k // 40) % 2 == 0 else -0.3 * target  # the target moves: other active sets
         out.append((u, y, U[-1], tgt))
         U.append(step.plan(u, y, target=tgt, last_input=U[-1]).inputs[0])
@@ -71,6 +72,30 @@ def test_answers_on_known_active_sets_equal_the_solvers(model, limits):
         assert not got.fallback and got.status == want.status == "optimal"
         np.testing.assert_allclose(got.inputs, want.inputs, rtol=0, atol=1e-9)
     for u, y, last, tgt in windows[::15]:  # an interior-point solver, another algorithm (to its tolerance)
+        cvx = ctrl.plan(u, y, target=tgt, last_input=last, use_fast_path=False)
+        np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs[0], cvx.inputs[0],
+                                   atol=1e-6)
+
+
+def test_a_window_longer_than_the_plan_has_its_maps_act_on_q(model):
+    # past 12 samples of 5 channels (60 values) against 16 planned inputs: the window is taken to q's part
+    # z = Q_w w first and the sets' maps act on [z; 1] (16 columns, not 60); the answers are daqp's on the same QP
+    # (the reference solver, as above) and the cvxpy plan's, and the loop reuses known sets as on short windows
+    long = model.replace(past_steps=12)
+    ctrl = ModelPredictiveController(model=long, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
+    step, ref = FastStep(ctrl), FastStep(ctrl)
+    ref._regions = None
+    assert step._by_q and step._regions.maps[()].K.shape[1] == 16
+    hits = []
+    solve = step._regions.solve
+    step._regions.solve = lambda *a: hits.append(solve(*a) is not None) or solve(*a)
+    windows = _closed_loop(long, step, _far(long), T=12)
+    assert len(step._regions.maps) >= 3 and sum(hits) >= len(hits) // 2
+    for u, y, last, tgt in windows:
+        got, want = step.plan(u, y, target=tgt, last_input=last), ref.plan(u, y, target=tgt, last_input=last)
+        assert not got.fallback and got.status == want.status == "optimal"
+        np.testing.assert_allclose(got.inputs, want.inputs, rtol=0, atol=1e-9)
+    for u, y, last, tgt in windows[::25]:
         cvx = ctrl.plan(u, y, target=tgt, last_input=last, use_fast_path=False)
         np.testing.assert_allclose(step.plan(u, y, target=tgt, last_input=last).inputs[0], cvx.inputs[0],
                                    atol=1e-6)
