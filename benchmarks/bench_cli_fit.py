@@ -16,7 +16,11 @@ Beside them the same for ``stimsteer --help`` (the imports and the parser alone)
 network-control tables and figures; a ridge ARX at past 100 ms is a state-space model of 2,297 states, one per
 lagged output and input). With ``--plan``, ``stimsteer plan MODEL --target rec_01=15,rec_04=-10 --limits
 demo_data/demo_limits.toml --horizon H --out DIR`` of each fitted model, alike (the demo's target and limits: the
-session is the demo network's).
+session is the demo network's). With ``--live``, ``stimsteer live MODEL --fast-step --plant PLANT --duration-s S
+--target rec_01=15 --limits LIMITS --horizon H`` of each fitted model (the live loop at the session's 1 kHz, against
+the same network as a simulated plant, ``--live-seconds`` long; the demo's amplitude and slew limits, written here
+without its energy budget and output bound, which the fast step does not take): beside its row the command's own
+report of step latency (p50, p99, max) and of the steps that missed their deadline.
 
 Issue 14's targets (every method <= 10 s and <= 500 MB peak at past 100 / horizon 50 on the 2-core machine) are
 measured on the fit alone by ``bench_windows.py``; these are the same fits with what the command adds around them.
@@ -41,7 +45,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_windows import METHODS, make_session  # noqa: E402  (the same session and method names)
+from bench_windows import METHODS, make_session_and_plant  # noqa: E402  (the same session and method names)
 
 #: The command's other methods, measured when named in ``--methods`` (not by default: issue 14 names the four).
 OTHER_METHODS = {"pbsid": ("indirect", "pbsid", "PBSID"),
@@ -99,6 +103,27 @@ def _row(label: str, r: dict, size: str) -> str:
             f"{r['code']}{note} | {os.getloadavg()[0]:.1f} |")
 
 
+def _live_files(tmp: Path, plant) -> Path:
+    """The session's network as a simulated plant file, and the demo's amplitude and slew limits without its energy
+    budget and output bound (``live_limits.toml``), in ``tmp``; the plant file's path."""
+    import tomllib
+
+    from stimsteer.control.plants import save_plant
+
+    demo = tomllib.loads((Path(__file__).resolve().parents[1] / "demo_data" / "demo_limits.toml").read_text())
+    lines = ["# the demo's amplitude and slew limits (benchmarks/bench_cli_fit.py --live)"]
+    for name, lim in demo["inputs"].items():
+        lines += [f"[inputs.{name}]"] + [f"{k} = {v}" for k, v in lim.items()]
+    (tmp / "live_limits.toml").write_text("\n".join(lines) + "\n")
+    return save_plant(plant, tmp / "plant.h5", overwrite=True)
+
+
+def _live_summary(stdout: str) -> str:
+    """The live run's latency line and its deadline note, shortened."""
+    keep = [line for line in stdout.splitlines() if line.startswith(("step latency", "planned", "note:"))]
+    return "; ".join(line.split(" (tick")[0].split("; the loop held")[0] for line in keep)
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--methods", nargs="+", default=list(METHODS), choices=list(ALL_METHODS))
@@ -109,14 +134,17 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--network", action="store_true", help="also time 'stimsteer network' of each indirect model")
     ap.add_argument("--plan", action="store_true", help="also time 'stimsteer plan' of each model")
+    ap.add_argument("--live", action="store_true", help="also run 'stimsteer live --fast-step' with each model")
+    ap.add_argument("--live-seconds", type=float, default=3.0, help="length of each live run (default 3 s)")
     args = ap.parse_args(argv)
     from stimsteer.sysid.io import save_session
 
     print(f"# {platform.machine()} {os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.1f} at the start")
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "session.h5"
-        session = make_session(args.seed)
+        session, network = make_session_and_plant(args.seed)
         save_session(session, path)
+        plant = _live_files(Path(tmp), network) if args.live else None
         print(f"# session: {session.u.shape[0]} samples at 1 kHz, {session.n_inputs} inputs, {session.n_outputs} "
               f"outputs, {len(session.trials)} trials; stimsteer fit --past {args.past} --horizon {args.horizon}")
         print("| command | wall | CPU | peak resident | model file | exit code | load |")
@@ -139,6 +167,13 @@ def main(argv=None) -> int:
                     r = run(["plan", model, "--target", "rec_01=15,rec_04=-10", "--limits", limits, "--horizon",
                              args.horizon, "--out", Path(tmp) / f"plan_{method}", "--force"], args.timeout)
                     print(_row(f"plan, {label}", r, ""), flush=True)
+                if plant is not None and model.exists():
+                    r = measured(_command() + [str(a) for a in [
+                        "live", model, "--fast-step", "--plant", plant, "--duration-s", args.live_seconds,
+                        "--target", "rec_01=15", "--limits", Path(tmp) / "live_limits.toml", "--horizon",
+                        args.horizon, "--out", Path(tmp) / f"live_{method}", "--force"]], args.timeout,
+                        stdout=subprocess.PIPE)
+                    print(_row(f"live, {label}", r, _live_summary(r.get("stdout", ""))), flush=True)
     print(f"# load average {os.getloadavg()[0]:.1f} at the end")
     return 0
 

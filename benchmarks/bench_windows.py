@@ -85,12 +85,16 @@ METHODS = {"arx": ("indirect", "arx", "ridge ARX"), "subspace": ("indirect", "su
 # ------------------------------------------------------------------------------------------------ setup
 def make_session(seed: int, n_contacts: int = 20, n_sites: int = 3):
     """The demo network at 1 kHz: 3 sites, 20 contacts, 25 trials of 2.5 s (seeded)."""
+    return make_session_and_plant(seed, n_contacts, n_sites)[0]
+
+
+def make_session_and_plant(seed: int, n_contacts: int = 20, n_sites: int = 3):
+    """:func:`make_session` and the simulated network that recorded it (a plant for ``stimsteer live --plant``)."""
     from stimsteer.demo_data.make_demo import Scenario, make_demo
 
     sc = Scenario(sample_rate_hz=1000.0, n_contacts=n_contacts, n_sites=n_sites, n_trials=25, trial_s=2.5,
                   rest_s=0.0)
-    session, _plant = make_demo(seed, scenario=sc)
-    return session
+    return make_demo(seed, scenario=sc)
 
 
 def _status(key: str) -> float:
