@@ -29,6 +29,7 @@ Usage::
 
     python benchmarks/bench_cli_fit.py                        # every method, 100 ms / 50 ms, once
     python benchmarks/bench_cli_fit.py --methods arx hankel --repeat 3
+    python benchmarks/bench_cli_fit.py --methods arx --network --plan --live
     python benchmarks/bench_cli_fit.py --methods pbsid hammerstein recursive lifted bootstrap --timeout 900
 """
 
