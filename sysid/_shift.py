@@ -18,18 +18,22 @@ import numpy as np
 __all__: list = []
 
 
+def unit_rows(A: np.ndarray) -> np.ndarray | None:
+    """Each row of ``A`` classified: the column of its single 1 (a unit row), −1 (a zero row) or −2 (any other, a
+    dense row); None where two unit rows have their 1 in the same column."""
+    nonzero = A != 0
+    counts = nonzero.sum(axis=1)
+    first = nonzero.argmax(axis=1)
+    unit = (counts == 1) & (A[np.arange(A.shape[0]), first] == 1.0)
+    src = np.where(unit, first, np.where(counts == 0, -1, -2))
+    return None if np.unique(src[unit]).size != np.count_nonzero(unit) else src
+
+
 def shift_rows(Ak: np.ndarray) -> np.ndarray | None:
     """For an ``Ak`` whose rows are each zero or a single 1, no two rows with their 1 in the same column: the column
     of each row's 1 (−1 for a zero row). None for any other matrix."""
-    nonzero = Ak != 0
-    counts = nonzero.sum(axis=1)
-    if counts.size == 0 or counts.max() > 1:
-        return None
-    src = np.where(counts == 1, nonzero.argmax(axis=1), -1)
-    rows = np.flatnonzero(src >= 0)
-    if not np.all(Ak[rows, src[rows]] == 1.0) or np.unique(src[rows]).size != rows.size:
-        return None
-    return src
+    src = unit_rows(Ak) if Ak.shape[0] else None
+    return None if src is None or np.any(src == -2) else src
 
 
 class PredictorStep:

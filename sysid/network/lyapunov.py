@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._shift import _runs
+from .._shift import _runs, unit_rows
 
 __all__ = ["DOUBLING_STATES", "stable_gramian", "stable_gramian_pair"]
 
@@ -100,13 +100,8 @@ class _Rows:
     def of(cls, A: np.ndarray) -> "_Rows | None":
         """``A`` in this form, or None where more than :data:`_ROWS_DENSE` of its rows are dense or two unit rows
         copy the same column."""
-        nonzero = A != 0
-        counts = nonzero.sum(axis=1)
-        first = nonzero.argmax(axis=1)
-        unit = (counts == 1) & (A[np.arange(A.shape[0]), first] == 1.0)
-        src = np.where(unit, first, np.where(counts == 0, -1, -2))
-        if np.unique(src[unit]).size != np.count_nonzero(unit) or \
-                np.count_nonzero(src == -2) > _ROWS_DENSE * A.shape[0]:  # two rows copying one column; too dense
+        src = unit_rows(A)
+        if src is None or np.count_nonzero(src == -2) > _ROWS_DENSE * A.shape[0]:
             return None
         return cls(src, A[src == -2].copy())
 
@@ -130,13 +125,7 @@ class _Rows:
         """``M G Mᵀ`` (``Mᵀ G M`` when ``transposed``) for a symmetric ``G``, symmetrised (its lower triangle
         mirrored, as :func:`_symmetric_product` leaves it)."""
         apply = self.tleft if transposed else self.left
-        term = apply(apply(G).T)  # (M (M G)ᵀ) = M G Mᵀ, G being symmetric
-        n, block = term.shape[0], 384
-        for i0 in range(0, n, block):  # the strict upper block triangle from the lower one
-            i1 = min(i0 + block, n)
-            term[i0:i1, i0:i1] = np.tril(term[i0:i1, i0:i1]) + np.tril(term[i0:i1, i0:i1], -1).T
-            term[i0:i1, i1:] = term[i1:, i0:i1].T
-        return term
+        return _mirror_lower(apply(apply(G).T), whole=True)  # (M (M G)ᵀ) = M G Mᵀ, G being symmetric
 
     def squared(self):
         """``M @ M``: in this form while it has at most :data:`_ROWS_DENSE` dense rows, else a dense array."""
@@ -166,7 +155,16 @@ def _symmetric_product(X: np.ndarray, M: np.ndarray, block: int = 384) -> np.nda
     for i0 in range(0, n, block):
         i1 = min(i0 + block, n)
         out[i0:i1, :i1] = X[i0:i1] @ M[:i1].T
+    return _mirror_lower(out, block)
+
+
+def _mirror_lower(out: np.ndarray, block: int = 384, whole: bool = False) -> np.ndarray:
+    """``out`` made exactly symmetric in place: the blocks above the block diagonal from those below (and, with
+    ``whole``, the upper triangle of each diagonal block from its lower one, where those were computed too)."""
+    n = out.shape[0]
     for i0 in range(0, n, block):
         i1 = min(i0 + block, n)
+        if whole:
+            out[i0:i1, i0:i1] = np.tril(out[i0:i1, i0:i1]) + np.tril(out[i0:i1, i0:i1], -1).T
         out[i0:i1, i1:] = out[i1:, i0:i1].T
     return out

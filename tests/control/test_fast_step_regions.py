@@ -80,7 +80,8 @@ def test_answers_on_known_active_sets_equal_the_solvers(model, limits):
 def test_a_window_longer_than_the_plan_has_its_maps_act_on_q(model):
     # past 12 samples of 5 channels (60 values) against 16 planned inputs: the window is taken to q's part
     # z = Q_w w first and the sets' maps act on [z; 1] (16 columns, not 60); the answers are daqp's on the same QP
-    # (the reference solver, as above) and the cvxpy plan's, and the loop reuses known sets as on short windows
+    # (the reference solver, as above) and the cvxpy plan's, and the loop reuses known sets as on short windows;
+    # the tolerances are those of test_answers_on_known_active_sets_equal_the_solvers above
     long = model.replace(past_steps=12)
     ctrl = ModelPredictiveController(model=long, limits=LIM, horizon_steps=8, input_weight=1e-2).fit()
     step, ref = FastStep(ctrl), FastStep(ctrl)

@@ -386,7 +386,7 @@ def test_the_qr_routes_final_factor_is_one_merge_onto_the_last_training_factor(n
     merged_all = _fit(LsqPredictor, noisy, "qr", **kw)
     assert seen == [True] and n_once == len(calls) - 1
     a, b = merged_once.predict_many(*_windows(4, 8)), merged_all.predict_many(*_windows(4, 8))
-    # measured: 3.3e-15 relative
+    # measured: equal (the same tpqrt updates in the same order, fold 0, 1, then 2; the margin allows another order)
     assert np.abs(a - b).max() <= 1e-10 * np.abs(b).max()
     pd_cols = ["validation_error"]
     np.testing.assert_array_equal(merged_once.cv_table_[pd_cols], merged_all.cv_table_[pd_cols])

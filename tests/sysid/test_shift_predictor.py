@@ -73,7 +73,8 @@ def test_the_shift_by_runs_of_rows_is_the_dense_product_into_a_given_array(rng):
 def test_the_state_map_is_the_state_estimate_of_every_unit_window(rng):
     # the map's definition (its docstring): column k is estimate_state of the k-th unit window [vec u; vec y], each
     # estimated on its own by the least-squares fit (a lag realisation at and below its lag count, where the start
-    # of the window still counts, and a model whose predictor is not a shift)
+    # of the window still counts, and a model whose predictor is not a shift). Measured: 0, 1.9e-16 and 7.2e-16
+    # relative at most (the map's least squares solved for all columns at once, the function's for one)
     from stimsteer.sysid.statespace import StateSpaceModel
 
     lagged = _arx(rng)
