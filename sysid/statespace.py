@@ -233,7 +233,7 @@ class StateSpaceModel:
         """Eigenvalues of A, sorted by decreasing modulus (computed once: ``A`` is a read-only copy)."""
         if "_poles" not in self.__dict__:
             ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
-            object.__setattr__(self, "_poles", ev[np.argsort(-np.abs(ev))])
+            object.__setattr__(self, "_poles", ev[np.argsort(-np.abs(ev), kind="stable")])  # ties: eigvals order
         return self._poles.copy()
 
     @property

@@ -12,10 +12,10 @@ import pandas as pd
 from ...sysid import (ConditioningWarning, InvalidParameterError, UnstableModelError, controllability,
                       impulse_responses)
 from ...sysid._files import atomic_dir
-from ...sysid.network import (output_controllability, output_gramian, output_transition, rank_sites_by_output,
+from ...sysid.network import (output_controllability, output_transition, rank_sites_by_output,
                               site_output_controllability)
 from ...sysid.network.controllability import average_controllability_values, modal_controllability_values
-from ...sysid.network.outputs import site_sets
+from ...sysid.network.outputs import site_output_gramians, site_sets
 from ...sysid.network.responses import SETTLE_FRACTION, mode_times
 from ...sysid.network.systems import minimal_realisation
 
@@ -130,7 +130,7 @@ def _pair_table(model, gramian_steps, max_set_size):
     """Site sets by their output Gramian: H2² and the worst-case energy ``1 / λ_min(C W_S Cᵀ)`` (``inf``: some
     pattern of the recorded channels is out of the set's reach), best worst case first."""
     # W_S is the sum of the single-site Gramians: one Lyapunov solve per site, then sums
-    single = [output_gramian(model, gramian_steps, sites=[j]) for j in range(model.n_inputs)]
+    single = site_output_gramians(model, gramian_steps)
     rows = []
     for c in site_sets(model.n_inputs, max_set_size):
         G = sum(single[j] for j in c)

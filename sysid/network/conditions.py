@@ -66,7 +66,7 @@ def _figures(model, gramian_steps) -> dict:
     if isinstance(model.info.get("network_map"), dict):
         A = np.asarray(model.A)
         if gramian_steps is None:
-            _require_stable(A, "the average controllability of a condition's model")
+            _require_stable(A, "the average controllability of a condition's model", model.spectral_radius)
         out["average_controllability"] = average_controllability_values(A, np.asarray(model.B), gramian_steps)
     return out
 

@@ -10,7 +10,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from ..exceptions import ConditioningWarning, InvalidParameterError, SessionError, UnstableModelError
-from .lyapunov import stable_gramian
+from .lyapunov import stable_gramian, stable_gramians
 from .systems import _as_model, _check_horizon, _dynamics, _frozen
 
 __all__ = ["reachability_matrix", "controllability_gramian", "controllability", "site_controllability",
@@ -48,6 +48,22 @@ def _reach(A, B, T) -> np.ndarray:
     return R
 
 
+#: Largest Kalman matrix kept on a model by :func:`model_reach` (a 922-state model of 3 sites: 20 MB).
+_KEPT_REACH_BYTES = 64e6
+
+
+def model_reach(model) -> np.ndarray:
+    """``[A^(n-1) B, ..., A B, B]`` of ``model``'s own ``A`` and ``B`` (``n`` states; read-only), kept on the model up
+    to :data:`_KEPT_REACH_BYTES`: the Kalman rank and both output reports read it."""
+    kept = model.__dict__.get("_reach")
+    if kept is None:
+        kept = _reach(np.array(model.A), np.array(model.B), max(model.n_states, 1))
+        kept.setflags(write=False)
+        if kept.nbytes <= _KEPT_REACH_BYTES:
+            model.__dict__["_reach"] = kept
+    return kept
+
+
 def _gramian(A, B, T) -> np.ndarray:
     if T is None:
         W = stable_gramian(A, B @ B.T)
@@ -58,6 +74,29 @@ def _gramian(A, B, T) -> np.ndarray:
             W += M @ M.T
             M = A @ M
     return 0.5 * (W + W.T)
+
+
+def model_gramians(model, sites, T) -> list:
+    """The controllability Gramians of ``model``'s own ``A`` (not normalised) for each entry of ``sites`` (a tuple
+    of column indices of ``B``; ``T`` steps or None for the infinite horizon, the caller having checked stability),
+    kept on the model (read-only arrays, like its poles): ``stimsteer network`` asks for the all-site Gramian twice
+    (the Kalman report and the output report) and for each site's (the site sets). The ones not kept yet are
+    solved together (:func:`~stimsteer.sysid.network.lyapunov.stable_gramians`: the doubled sums share ``A``'s
+    powers; each the same numbers as alone)."""
+    memo = model.__dict__.setdefault("_gramians", {})
+    keys = [(tuple(int(j) for j in idx), None if T is None else int(T)) for idx in sites]
+    todo = list(dict.fromkeys(k for k in keys if k not in memo))
+    if todo:
+        A, B = np.array(model.A), np.array(model.B)
+        if T is None:
+            solved = [0.5 * (W + W.T) for W in stable_gramians(A, [B[:, list(i)] @ B[:, list(i)].T
+                                                                   for i, _t in todo])]
+        else:
+            solved = [_gramian(A, B[:, list(i)], T) for i, _t in todo]
+        for k, W in zip(todo, solved):
+            W.setflags(write=False)
+            memo[k] = W
+    return [memo[k] for k in keys]
 
 
 def _require_stable(A, purpose: str, radius: float | None = None) -> None:
@@ -100,7 +139,7 @@ def controllability_gramian(system, horizon_steps: int | None = None, *, normali
     A, _ = _dynamics(model, normalise)
     T = _check_horizon(horizon_steps, allow_none=True)
     if T is None:
-        _require_stable(A, "the infinite-horizon Gramian")
+        _require_stable(A, "the infinite-horizon Gramian", None if normalise else model.spectral_radius)
     return _gramian(A, np.array(model.B), T)
 
 
@@ -146,9 +185,9 @@ class ControllabilityReport:
     normalisation: str
 
 
-def _kalman_rank(A, B, rank_tol):
-    n = A.shape[0]
-    K = _reach(A, B, max(n, 1))
+def _kalman_rank(model, rank_tol):
+    n = model.n_states
+    K = model_reach(model)
     sv = np.linalg.svd(K, compute_uv=False) if K.size else np.zeros(0)
     sv = np.concatenate([sv, np.zeros(max(n - sv.size, 0))])[:n]
     if rank_tol is None:
@@ -204,12 +243,12 @@ def controllability(system, *, horizon_steps: int | None = None, normalise: bool
     Kalman, Ho, Narendra (1963); Pasqualetti, Zampieri, Bullo (2014), Sec. III (trace of the Gramian).
     """
     model = _as_model(system)
-    rank, tol, sv = _kalman_rank(np.array(model.A), np.array(model.B), rank_tol)
+    rank, tol, sv = _kalman_rank(model, rank_tol)
     A, norm = _dynamics(model, normalise)
     T = _check_horizon(horizon_steps, allow_none=True)
-    if T is None:
-        _require_stable(A, "the infinite-horizon Gramian")
-    W = _gramian(A, np.array(model.B), T)
+    if T is None:  # the model's poles (computed once per model) unless A was normalised
+        _require_stable(A, "the infinite-horizon Gramian", None if normalise else model.spectral_radius)
+    W = _gramian(A, np.array(model.B), T) if normalise else model_gramians(model, [range(model.n_inputs)], T)[0]
     eig = np.sort(np.linalg.eigvalsh(W))[::-1] if W.size else np.zeros(0)
     eig = np.clip(eig, 0.0, None)
     n = model.n_states
@@ -289,7 +328,8 @@ def site_controllability(system, *, horizon_steps: int | None = None,
     model = _as_model(system)
     A, norm = _dynamics(model, normalise)
     T = _check_horizon(horizon_steps, allow_none=True)
-    _require_stable(A, "modal controllability (and the infinite-horizon average controllability)")
+    _require_stable(A, "modal controllability (and the infinite-horizon average controllability)",
+                    None if normalise else model.spectral_radius)
     B = np.array(model.B)
     average = average_controllability_values(A, B, T)
     modal = modal_controllability_values(A, B)

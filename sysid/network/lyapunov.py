@@ -24,7 +24,7 @@ import numpy as np
 
 from .._shift import _runs, unit_rows
 
-__all__ = ["DOUBLING_STATES", "stable_gramian", "stable_gramian_pair"]
+__all__ = ["DOUBLING_STATES", "stable_gramian", "stable_gramians", "stable_gramian_pair"]
 
 #: States from which :func:`stable_gramian` sums by doubling instead of calling SciPy's solver.
 DOUBLING_STATES = 512
@@ -44,6 +44,15 @@ def stable_gramian(A, Q) -> np.ndarray:
 
         return sla.solve_discrete_lyapunov(A, Q)
     return _doubled(A, [(Q, False)])[0]
+
+
+def stable_gramians(A, Qs) -> list:
+    """:func:`stable_gramian` of ``A`` with each ``Q`` of ``Qs``; from :data:`DOUBLING_STATES` states on, the doubled
+    sums share the powers ``A^(2^j)`` (each sum takes the same steps as alone: the same numbers)."""
+    A = np.asarray(A, dtype=np.float64)
+    if A.shape[0] < DOUBLING_STATES or len(Qs) < 2:
+        return [stable_gramian(A, Q) for Q in Qs]
+    return _doubled(A, [(np.asarray(Q, dtype=np.float64), False) for Q in Qs])
 
 
 def stable_gramian_pair(A, Q, R) -> tuple[np.ndarray, np.ndarray]:

@@ -30,12 +30,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..exceptions import SessionError
-from .controllability import _gramian, _reach, _require_stable
+from .controllability import _gramian, _reach, _require_stable, model_gramians, model_reach
 from .energy import _check_rtol, _solve_energy
 from .ranking import RankedSets
 from .systems import _as_model, _check_horizon, _frozen, _output_offset, _site_indices
 
-__all__ = ["output_gramian", "output_controllability", "site_output_controllability", "output_transition",
+__all__ = ["output_gramian", "site_output_gramians", "output_controllability", "site_output_controllability", "output_transition",
            "rank_sites_by_output", "OutputControllability", "SiteOutputControllability", "OutputTransition",
            "OutputSiteRanking"]
 
@@ -66,11 +66,22 @@ def output_gramian(system, horizon_steps: int | None = None, *, sites=None) -> n
         In (output units)² per (input unit)²·sample.
     """
     model = _as_model(system)
-    A, B, T = _gram(model, horizon_steps)
-    idx = _site_indices(model, sites)
+    _A, _B, T = _gram(model, horizon_steps)
     C = np.array(model.C)
-    G = C @ _gramian(A, B[:, idx], T) @ C.T
+    G = C @ model_gramians(model, [_site_indices(model, sites)], T)[0] @ C.T
     return 0.5 * (G + G.T)
+
+
+def site_output_gramians(system, horizon_steps: int | None = None) -> list:
+    """:func:`output_gramian` of each site alone (``C W_j Cᵀ``, in site order), the Gramians solved together."""
+    model = _as_model(system)
+    _A, _B, T = _gram(model, horizon_steps)
+    C = np.array(model.C)
+    out = []
+    for W in model_gramians(model, [(j,) for j in range(model.n_inputs)], T):
+        G = C @ W @ C.T
+        out.append(0.5 * (G + G.T))
+    return out
 
 
 def _rank_of(M, rank_tol=None):
@@ -146,8 +157,8 @@ def output_controllability(system, *, horizon_steps: int | None = None,
     model = _as_model(system)
     A, B, T = _gram(model, horizon_steps)
     C = np.array(model.C)
-    rank, tol = _rank_of(C @ _reach(A, B, max(model.n_states, 1)), rank_tol)
-    G = C @ _gramian(A, B, T) @ C.T
+    rank, tol = _rank_of(C @ model_reach(model), rank_tol)
+    G = C @ model_gramians(model, [range(model.n_inputs)], T)[0] @ C.T
     G = 0.5 * (G + G.T)
     eig = _eig_desc(G)
     p = model.n_outputs
@@ -197,7 +208,7 @@ def site_output_controllability(system, *, horizon_steps: int | None = None) -> 
     C = np.array(model.C)
     Wo = _gramian(A.T, C.T, T)
     h2 = np.einsum("ij,ik,kj->j", B, Wo, B)
-    K = _reach(A, B, max(model.n_states, 1)).reshape(model.n_states, -1, model.n_inputs)
+    K = model_reach(model).reshape(model.n_states, -1, model.n_inputs)
     ranks = np.array([_rank_of(C @ K[:, :, j])[0] for j in range(model.n_inputs)], dtype=np.int64)
     return SiteOutputControllability(site_names=tuple(model.input_names), h2_squared=_frozen(h2),
                                      output_rank=_frozen(ranks, np.int64), horizon_steps=T)

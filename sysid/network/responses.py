@@ -156,9 +156,7 @@ def mode_times(system, *, cap_steps: int = IMPULSE_CAP_STEPS) -> ModeTimes:
     """
     model = _as_model(system)
     rate = float(model.sample_rate_hz)
-    lam = np.linalg.eigvals(np.asarray(model.A)) if model.n_states else np.zeros(0, complex)
-    order = np.argsort(-np.abs(lam), kind="stable")
-    lam = lam[order]
+    lam = model.poles  # computed once per model, sorted by decreasing modulus (ties in eigvals order)
     mag = np.abs(lam)
     with np.errstate(divide="ignore"):
         tau = np.where((mag < 1.0) & (mag > 0), -1.0 / (rate * np.log(np.where(mag > 0, mag, 1.0))), np.inf)

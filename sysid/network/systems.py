@@ -7,7 +7,7 @@ import numpy as np
 
 from ..exceptions import SessionError
 from ..statespace import StateSpaceModel
-from .lyapunov import stable_gramian, stable_gramian_pair
+from .lyapunov import stable_gramian_pair
 
 __all__ = ["network_model", "normalised_network", "minimal_realisation", "MINIMAL_RTOL", "NORMALISATION_NONE",
            "NORMALISATION_SIGMA"]
@@ -204,8 +204,6 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     hankel_singular_values : ndarray
         All of them, largest first.
     """
-    import scipy.linalg as sla
-
     model = _as_model(system)
     A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
     n = A.shape[0]

@@ -153,3 +153,57 @@ def test_the_doubled_pair_of_a_lag_realisation_is_scipys_solution(rng, monkeypat
     W2, V2 = ly.stable_gramian_pair(A, B @ B.T, C.T @ C)
     # measured: 1.1e-16 and 1.3e-16 of the largest entry (against SciPy above: 4.8e-15 and 4.7e-15)
     assert np.abs(W - W2).max() <= 1e-13 * np.abs(W2).max() and np.abs(V - V2).max() <= 1e-13 * np.abs(V2).max()
+
+
+def test_gramians_solved_together_are_each_the_gramian_solved_alone(rng, monkeypatch):
+    # stable_gramians shares A's powers between the sums; each sum takes the same steps as alone (the same numbers,
+    # bit for bit), and each solves its own equation as SciPy does (reference library; margins as above)
+    n = 40
+    A, B = _stable(rng, n, 0.95), rng.standard_normal((n, 3))
+    Qs = [np.outer(B[:, j], B[:, j]) for j in range(3)] + [B @ B.T]
+    monkeypatch.setattr(ly, "DOUBLING_STATES", 1)
+    together = ly.stable_gramians(A, Qs)
+    for Q, W in zip(Qs, together):
+        np.testing.assert_array_equal(W, ly.stable_gramian(A, Q))
+        reference = sla.solve_discrete_lyapunov(A, Q)
+        assert np.abs(W - reference).max() <= 1e-9 * np.abs(reference).max()
+
+
+def test_a_models_gramians_are_solved_once_and_kept_read_only(rng, monkeypatch):
+    # stimsteer network asks for the all-site Gramian in two reports and for each site's in the site sets: each is
+    # solved once per model (counted here), the kept arrays cannot be changed by a caller, and every report gives
+    # what it gave when each solved its own (SciPy's solver on the same A and B: reference library)
+    import importlib
+
+    ctl = importlib.import_module("stimsteer.sysid.network.controllability")  # the module (the package exports
+    outputs = importlib.import_module("stimsteer.sysid.network.outputs")  # functions of the same names)
+
+    n = 12
+    model = StateSpaceModel(A=_stable(rng, n, 0.9), B=rng.standard_normal((n, 3)), C=rng.standard_normal((4, n)))
+    solved = []
+    real = ly.stable_gramians
+
+    def counting(A, Qs):
+        solved.append(len(Qs))
+        return real(A, Qs)
+
+    monkeypatch.setattr(ctl, "stable_gramians", counting)
+    report = ctl.controllability(model)
+    out = outputs.output_controllability(model)
+    singles = outputs.site_output_gramians(model)
+    again = [outputs.output_gramian(model, sites=[j]) for j in range(3)]
+    assert solved == [1, 3]  # the all-site Gramian once, the three sites' together once, nothing after
+    A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
+    W = sla.solve_discrete_lyapunov(A, B @ B.T)
+    np.testing.assert_allclose(report.gramian, 0.5 * (W + W.T), rtol=1e-10, atol=1e-12 * np.abs(W).max())
+    np.testing.assert_allclose(out.gramian, C @ W @ C.T, rtol=1e-10, atol=1e-12 * np.abs(C @ W @ C.T).max())
+    for j in range(3):
+        Wj = sla.solve_discrete_lyapunov(A, np.outer(B[:, j], B[:, j]))
+        np.testing.assert_allclose(singles[j], C @ Wj @ C.T, rtol=1e-9, atol=1e-12 * np.abs(C @ Wj @ C.T).max())
+        np.testing.assert_array_equal(again[j], singles[j])
+    kept = ctl.model_gramians(model, [range(3)], None)[0]
+    with pytest.raises(ValueError):
+        kept[0, 0] = 1.0
+    K = ctl.model_reach(model)
+    assert K is ctl.model_reach(model) and not K.flags.writeable
+    np.testing.assert_array_equal(K, ctl._reach(A, B, n))
