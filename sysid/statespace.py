@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 
-from ._shift import PredictorStep, unit_window_run
+from ._shift import PredictorStep, eigenvalues, unit_window_run
 from ._windows import small_gemms, window_batch
 from .exceptions import SessionError, UnstableModelError
 from .protocols import PredictionMaps
@@ -232,7 +232,7 @@ class StateSpaceModel:
     def poles(self) -> np.ndarray:
         """Eigenvalues of A, sorted by decreasing modulus (computed once: ``A`` is a read-only copy)."""
         if "_poles" not in self.__dict__:
-            ev = np.linalg.eigvals(self.A) if self.n_states else np.zeros(0, complex)
+            ev = eigenvalues(self.A) if self.n_states else np.zeros(0, complex)
             object.__setattr__(self, "_poles", ev[np.argsort(-np.abs(ev), kind="stable")])  # ties: eigvals order
         return self._poles.copy()
 

@@ -7,6 +7,7 @@ import numpy as np
 
 from ..exceptions import SessionError
 from ..statespace import StateSpaceModel
+from ._lag_forms import companion_of
 from .lyapunov import stable_gramian_pair
 
 __all__ = ["network_model", "normalised_network", "minimal_realisation", "MINIMAL_RTOL", "NORMALISATION_NONE",
@@ -202,17 +203,23 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
         ``D``, the rate, names, units and ``info`` are kept; ``info["minimal_realisation"]`` records the orders, the
         tolerance and the error bound.
     hankel_singular_values : ndarray
-        All of them, largest first.
+        All of them (one per state), largest first; a ridge ARX's realisation on its lags is balanced on its
+        companion form (:mod:`._lag_forms`: the same Markov parameters on fewer states), the states that form does
+        without given 0.
     """
     model = _as_model(system)
     A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
     n = A.shape[0]
     stable = n == 0 or model.spectral_radius < 1.0  # the model's poles, computed once
     T = horizon_steps if horizon_steps is not None or stable else 2 * n
+    # a ridge ARX's realisation on its lags: the same Markov parameters on fewer states (its companion form), the
+    # others' Hankel singular values 0 (the finite-horizon ones too: they are those of the Markov parameters' block
+    # Hankel matrix)
+    A, B, C = companion_of(A, B, C, model.D) or (A, B, C)
     if T is None:
         Wc, Wo = stable_gramian_pair(A, B @ B.T, C.T @ C)
     else:
-        Wc, Wo = np.zeros((n, n)), np.zeros((n, n))
+        Wc, Wo = np.zeros(A.shape), np.zeros(A.shape)
         Mb, Mc = B.copy(), C.T.copy()
         for _ in range(int(T)):
             Wc += Mb @ Mb.T
@@ -231,4 +238,4 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     reduced = StateSpaceModel(A=Ti @ A @ Tm, B=Ti @ B, C=C @ Tm, D=model.D, sample_rate_hz=model.sample_rate_hz,
                               input_names=model.input_names, output_names=model.output_names, info=info,
                               input_units=model.input_units, output_units=model.output_units)
-    return reduced, s
+    return reduced, np.concatenate([s, np.zeros(n - s.size)])

@@ -136,22 +136,31 @@ def test_the_rows_form_multiplies_as_the_dense_matrix_does(rng):
     assert ly._Rows.of(twice) is None  # two unit rows copying one state
 
 
-def test_the_doubled_pair_of_a_lag_realisation_is_scipys_solution(rng, monkeypatch):
+@pytest.mark.parametrize("companion", [False, True])
+def test_the_doubled_pair_of_a_lag_realisation_is_scipys_solution(rng, monkeypatch, companion):
     # scipy.linalg.solve_discrete_lyapunov (reference library) for a realisation in the rows form (its powers
-    # taken in that form for the first doubling steps, then densely); the same sums as the dense route to rounding
+    # taken in that form for the first doubling steps, then densely), or a companion form (its transpose in the
+    # rows form: the powers of Aᵀ doubled in that form, each sum's side swapped); the same sums as the dense route
+    # to rounding
     A = _rows_matrix(rng, 80, zeros=False)
     while np.max(np.abs(np.linalg.eigvals(A))) > 0.97:  # the dense rows scaled down: the unit rows stay copies
         A[:4] *= 0.9
+    A = np.ascontiguousarray(A.T) if companion else A
     B, C = rng.standard_normal((80, 2)), rng.standard_normal((3, 80))
     monkeypatch.setattr(ly, "DOUBLING_STATES", 1)
-    assert ly._Rows.of(A) is not None
+    assert (ly._Rows.of(A) is None) == companion and ly._Rows.of(A.T if companion else A) is not None
+    calls = []
+    squared = ly._Rows.squared
+    monkeypatch.setattr(ly._Rows, "squared", lambda self: calls.append(1) or squared(self))
     W, V = ly.stable_gramian_pair(A, B @ B.T, C.T @ C)
+    assert calls  # the rows form was taken
     for got, ref in ((W, sla.solve_discrete_lyapunov(A, B @ B.T)), (V, sla.solve_discrete_lyapunov(A.T, C.T @ C))):
         np.testing.assert_array_equal(got, got.T)
         assert np.abs(got - ref).max() <= 1e-10 * np.abs(ref).max()
     monkeypatch.setattr(ly._Rows, "of", classmethod(lambda cls, A: None))  # the dense route throughout
     W2, V2 = ly.stable_gramian_pair(A, B @ B.T, C.T @ C)
-    # measured: 1.1e-16 and 1.3e-16 of the largest entry (against SciPy above: 4.8e-15 and 4.7e-15)
+    # measured (the lag realisation): 1.1e-16 and 1.3e-16 of the largest entry (against SciPy above: 4.8e-15 and
+    # 4.7e-15)
     assert np.abs(W - W2).max() <= 1e-13 * np.abs(W2).max() and np.abs(V - V2).max() <= 1e-13 * np.abs(V2).max()
 
 
