@@ -41,10 +41,10 @@ def reachability_matrix(system, horizon_steps: int) -> np.ndarray:
 def _reach(A, B, T) -> np.ndarray:
     n, m = B.shape
     R = np.empty((n, T * m))
-    M = B.copy()
+    AT, MT = np.ascontiguousarray(np.asarray(A).T), np.array(B).T.copy()  # (A^k B)ᵀ as rows: see impulse_response
     for k in range(T - 1, -1, -1):
-        R[:, k * m:(k + 1) * m] = M
-        M = A @ M
+        R[:, k * m:(k + 1) * m] = MT.T
+        MT = MT @ AT
     return R
 
 
