@@ -100,7 +100,10 @@ def impulse_response_figure(h, model, units=None) -> Figure:
     fig = GlyphSafeFigure(figsize=(3.3 * cols + 1.4, (0.22 * shown_p + 1.2) * rows + 1.0), layout="constrained")
     axes = np.atleast_1d(fig.subplots(rows, cols, sharex=True, sharey=True, squeeze=False)).ravel()
     t = np.arange(h.shape[0] + 1) / model.sample_rate_hz  # cell edges: sample k covers [k, k+1) / rate
-    scale = float(np.percentile(np.abs(h[:, :shown_p, :shown_m]), 99.5)) or 1.0
+    early = _early_span(h[:, :shown_p, :shown_m], model.sample_rate_hz)
+    # the colour scale from where the response is (a long quiet tail would set it near zero and saturate the rest)
+    held = h[:max(int(round(early * model.sample_rate_hz)), 1) if early is not None else h.shape[0], :shown_p, :shown_m]
+    scale = float(np.percentile(np.abs(held), 99.5)) or 1.0
     image = None
     for j, ax in enumerate(axes):
         if j >= shown_m:
@@ -121,11 +124,35 @@ def impulse_response_figure(h, model, units=None) -> Figure:
     bar.ax.tick_params(labelsize=7)
     notes = [f"first {shown_p} of {p} channels, {shown_m} of {m} sites; all in the CSV"] if (shown_p, shown_m) != (p, m) \
         else []
-    notes.append(f"colour clipped at ±{scale:.3g} (99.5th percentile of |response|)")
+    notes.append(f"colour clipped at ±{scale:.3g} (99.5th percentile of |response|"
+                 + (f" in the first {early:.3g} s)" if early is not None else ")"))
+    if early is not None:  # a quick response and a long slow tail: the quick part linear, the tail compressed
+        for ax in axes[:shown_m]:
+            ax.set_xscale("symlog", linthresh=early, linscale=2.0)
+            ax.set_xlim(0.0, t[-1])
+        notes.append(f"time linear to {early:.3g} s, where {100 * EARLY_ENERGY:g}% of the response energy has "
+                     "arrived, logarithmic after")
     fig.suptitle(f"Response maps of the fitted {model.n_states}-state model: each site's unit impulse, every "
                  f"channel over time\n{'; '.join(notes)}", fontsize=9)
     trim_ticks(fig)
     return fig
+
+
+#: Share of the responses' energy (sum of squares) that :func:`impulse_response_figure` finds arrived early.
+EARLY_ENERGY = 0.99
+#: Fraction of the shown window before which that share must arrive for the time axis to turn logarithmic after it.
+EARLY_FRACTION = 0.1
+
+
+def _early_span(h: np.ndarray, rate: float) -> float | None:
+    """The time by which :data:`EARLY_ENERGY` of the responses' energy has arrived, where that is within the first
+    :data:`EARLY_FRACTION` of the window (a ridge ARX at 1 kHz: 99% by about 0.1 s of a 4 s window that its slowest
+    mode, of a tiny amplitude, asks for), else None (the linear axis shows the responses)."""
+    energy = np.cumsum(np.sum(h * h, axis=(1, 2)))
+    if h.shape[0] < 20 or not energy[-1] > 0:
+        return None
+    k = int(np.searchsorted(energy, EARLY_ENERGY * energy[-1])) + 1  # samples [0, k) hold that share
+    return k / float(rate) if k <= EARLY_FRACTION * h.shape[0] else None
 
 
 def _response_unit(units) -> str:

@@ -132,3 +132,29 @@ def test_the_largest_gap_note_stays_inside_its_panel_below_the_title():
                          right.get_window_extent(renderer))
     assert not box.overlaps(title)
     assert panel.x0 <= box.x0 and box.x1 <= panel.x1 and panel.y0 <= box.y0 and box.y1 <= panel.y1
+
+
+def test_a_quick_response_with_a_long_quiet_tail_is_drawn_on_a_time_axis_that_shows_it(model):
+    # a fast pair of modes and a slow one of tiny gain (a fitted model at 1 kHz: 99% of the energy in 25 ms of a 4 s
+    # window): the maps keep the first samples on a linear axis, the tail on a logarithmic one, and take the colour
+    # scale from where the energy is; responses spread over the window keep the plain axis (common practice, no
+    # source: a log time axis for multi-scale responses)
+    from stimsteer.control.figures import network as figs
+
+    A = np.diag([0.8, -0.7, 0.999])
+    fast = StateSpaceModel(A=A, B=np.array([[1.0], [1.0], [0.01]]), C=np.ones((2, 3)), sample_rate_hz=1000.0,
+                           input_names=("s",), output_names=("a", "b"))
+    h = impulse_responses(fast, 2000)
+    energy = np.cumsum(np.sum(h * h, axis=(1, 2)))
+    k = int(np.searchsorted(energy, 0.99 * energy[-1])) + 1  # the reference: 99% of the energy by sample k
+    assert k < 0.1 * 2000
+    fig = impulse_response_figure(h, fast)
+    ax = [a for a in fig.axes if a.get_title().startswith("stimulating")][0]
+    assert ax.get_xscale() == "symlog" and ax.get_xlim() == pytest.approx((0.0, 2.0))
+    assert figs._early_span(h, 1000.0) == pytest.approx(k / 1000.0)
+    scale = float(np.percentile(np.abs(h[:k]), 99.5))
+    assert ax.collections[0].get_clim() == pytest.approx((-scale, scale))
+    assert f"time linear to {k / 1000.0:.3g} s" in fig._suptitle.get_text()
+    slow = impulse_responses(model, 30)  # decays over the whole window: a plain axis
+    plain = impulse_response_figure(slow, model)
+    assert all(a.get_xscale() == "linear" for a in plain.axes if a.get_title().startswith("stimulating"))
