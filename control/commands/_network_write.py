@@ -217,7 +217,7 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
         if target is None:
             figures.ranking_figure([sites.site_names[i] for i in order], sites.h2_squared[order],
                                    "Sites by squared H2 norm to the recorded channels (trace of C W_j Cᵀ)",
-                                   "squared H2 norm (output units² per input unit² per sample)",
+                                   f"squared H2 norm ({figures.squared_response_unit(units)})",
                                    ).savefig(tmp / "site_ranking.png", dpi=_DPI)
         else:
             lines += _write_target(model, tmp, target, start, free_channels, T, max_set_size, figures,

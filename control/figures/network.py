@@ -165,6 +165,14 @@ def _response_unit(units) -> str:
     return "channel unit per site unit"
 
 
+def squared_response_unit(units) -> str:
+    """``µV² per µA² per sample`` (a squared H2 norm's unit) when every channel shares one unit and every site
+    another, else the generic wording."""
+    if units is not None and len({str(u) for u in units[0]}) == 1 and len({str(u) for u in units[1]}) == 1:
+        return f"{_pretty(str(units[1][0]))}² per {_pretty(str(units[0][0]))}² per sample"
+    return "output units² per input unit² per sample"
+
+
 def _pretty(unit: str) -> str:
     return {"uV": "µV", "uA": "µA", "mV": "mV"}.get(unit, unit)
 

@@ -158,3 +158,13 @@ def test_a_quick_response_with_a_long_quiet_tail_is_drawn_on_a_time_axis_that_sh
     slow = impulse_responses(model, 30)  # decays over the whole window: a plain axis
     plain = impulse_response_figure(slow, model)
     assert all(a.get_xscale() == "linear" for a in plain.axes if a.get_title().startswith("stimulating"))
+
+
+def test_the_site_ranking_names_the_squared_norms_unit_when_the_model_has_one():
+    # a squared H2 norm is (output unit)² per (input unit)² per sample (common practice, no source: units of a
+    # sum of squared impulse-response samples); mixed units keep the generic wording
+    from stimsteer.control.figures.network import squared_response_unit
+
+    assert squared_response_unit((("uA", "uA"), ("uV",) * 3)) == "µV² per µA² per sample"
+    assert squared_response_unit((("uA", "mA"), ("uV",) * 3)) == "output units² per input unit² per sample"
+    assert squared_response_unit(None) == "output units² per input unit² per sample"
