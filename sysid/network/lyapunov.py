@@ -75,9 +75,9 @@ def _doubled(A: np.ndarray, sums) -> list:
     G = [np.array(Q, dtype=np.float64) for Q, _t in sums]
     live = [True] * len(sums)
     M, eps = _Rows.of(A), np.finfo(np.float64).eps
-    if M is None and _Rows.of(A.T) is not None:  # a companion form: its transpose is a lag realisation's form
-        M = _Rows.of(A.T)  # the powers of Aᵀ: each sum's side flipped
-        sums = [(Q, not transposed) for Q, transposed in sums]
+    if M is None:  # a companion form: its transpose is a lag realisation's form, doubled as the powers of Aᵀ
+        M = _Rows.of(A.T)
+        sums = sums if M is None else [(Q, not transposed) for Q, transposed in sums]  # each sum's side flipped
     M = A.copy() if M is None else M
     for _ in range(_MAX_STEPS):
         for k, (_Q, transposed) in enumerate(sums):
