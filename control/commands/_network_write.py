@@ -12,6 +12,7 @@ import pandas as pd
 from ...sysid import (ConditioningWarning, InvalidParameterError, UnstableModelError, controllability,
                       impulse_responses)
 from ...sysid._files import atomic_dir
+from ...sysid._progress import progress
 from ...sysid.network import (output_controllability, output_transition, rank_sites_by_output,
                               site_output_controllability)
 from ...sysid.network.controllability import average_controllability_values, modal_controllability_values
@@ -175,24 +176,9 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
     -------
     NetworkOutputs
     """
-    _check_horizons(model, horizon_steps, gramian_steps)
     units = _units(model, input_units, output_units)
-    # a fitted model's states are a construction (ARX: one per lag): the Kalman test runs on its minimal realisation
-    minimal = None if is_network_map(model) else minimal_realisation(model, horizon_steps=gramian_steps)[0]
-    T = _check_horizons(model if minimal is None else minimal, horizon_steps, gramian_steps)
-    kal = controllability(model if minimal is None else minimal, horizon_steps=gramian_steps)
-    # what is seen through the channels is the same on the minimal realisation (to its printed bound, which holds
-    # for the infinite-horizon Gramians of a stable model), in fewer states: a ridge ARX at past 100 ms of 3 sites
-    # and 20 channels has 2,297 states, its minimal realisation 922. A finite Gramian horizon: the model itself.
-    seen = model if minimal is None or gramian_steps is not None else minimal
-    out_rep = output_controllability(seen, horizon_steps=gramian_steps)
-    sites = site_output_controllability(seen, horizon_steps=gramian_steps)
-    modes = mode_times(model if minimal is None else minimal)
-    steps = modes.settle_steps if impulse_steps is None else int(impulse_steps)
-    lines = _summary_lines(model, kal, out_rep, minimal) + _mode_lines(modes, steps, impulse_steps is None)
-    state = _state_table(model, gramian_steps, lines) if (state_figures or is_network_map(model)) else None
-    pairs = _pair_table(seen, gramian_steps, max_set_size)
-    h = impulse_responses(seen, steps)
+    T, minimal, kal, out_rep, sites, steps, lines, state, pairs, h = _numbers(
+        model, horizon_steps, gramian_steps, max_set_size, state_figures, impulse_steps)
     order = np.argsort(-sites.h2_squared, kind="stable")
     out = Path(out_dir)
     from ..figures import network as figures  # matplotlib is loaded only when a figure is drawn
@@ -227,6 +213,37 @@ def write_network_outputs(model, out_dir, *, target=None, start=None, free_chann
             table.to_csv(tmp / name, index=False, float_format="%.10g")
             names.append(name)
     return NetworkOutputs(files={name: out / name for name in names}, lines=tuple(lines))
+
+
+def _numbers(model, horizon_steps, gramian_steps, max_set_size, state_figures, impulse_steps):
+    """What :func:`write_network_outputs` writes, computed stage by stage behind a progress bar (a ridge ARX at
+    past 100 ms, 2,297 states: about 30 s, most of it the poles and the minimal realisation)."""
+    with progress(6, "network figures", unit="stage") as bar:
+        _check_horizons(model, horizon_steps, gramian_steps)  # the model's poles
+        bar.update()
+        # a fitted model's states are a construction (ARX: one per lag): the Kalman test runs on its minimal
+        # realisation
+        minimal = None if is_network_map(model) else minimal_realisation(model, horizon_steps=gramian_steps)[0]
+        bar.update()
+        T = _check_horizons(model if minimal is None else minimal, horizon_steps, gramian_steps)
+        kal = controllability(model if minimal is None else minimal, horizon_steps=gramian_steps)
+        # what is seen through the channels is the same on the minimal realisation (to its printed bound, which
+        # holds for the infinite-horizon Gramians of a stable model), in fewer states: a ridge ARX at past 100 ms of
+        # 3 sites and 20 channels has 2,297 states, its minimal realisation 922. A finite Gramian horizon: the model.
+        seen = model if minimal is None or gramian_steps is not None else minimal
+        out_rep = output_controllability(seen, horizon_steps=gramian_steps)
+        sites = site_output_controllability(seen, horizon_steps=gramian_steps)
+        bar.update()
+        modes = mode_times(model if minimal is None else minimal)
+        steps = modes.settle_steps if impulse_steps is None else int(impulse_steps)
+        lines = _summary_lines(model, kal, out_rep, minimal) + _mode_lines(modes, steps, impulse_steps is None)
+        state = _state_table(model, gramian_steps, lines) if (state_figures or is_network_map(model)) else None
+        bar.update()
+        pairs = _pair_table(seen, gramian_steps, max_set_size)
+        bar.update()
+        h = impulse_responses(seen, steps)
+        bar.update()
+    return T, minimal, kal, out_rep, sites, steps, lines, state, pairs, h
 
 
 def _summary_lines(model, kal, out_rep, minimal=None):

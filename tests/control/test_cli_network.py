@@ -60,6 +60,20 @@ def test_network_writes_tables_and_figures(model_file, tmp_path, capsys):
     assert f"impulse responses: {steps} samples" in printed
 
 
+def test_network_shows_its_stages_on_a_terminal_and_nothing_off_one(model_file, tmp_path, capsys, monkeypatch):
+    # a ridge ARX at 1 kHz takes about 30 s here: a bar of its six stages on standard error (STIMSTEER_PROGRESS=1
+    # stands for a terminal), standard output as without it, and no bar where standard error is not a terminal
+    monkeypatch.setenv("STIMSTEER_PROGRESS", "1")
+    assert main(["network", str(model_file), "--out", str(tmp_path / "a")]) == 0
+    shown = capsys.readouterr()
+    assert "stimsteer network figures" in shown.err and "/6 [" in shown.err  # redrawn at most every 0.1 s
+    monkeypatch.delenv("STIMSTEER_PROGRESS")
+    assert main(["network", str(model_file), "--out", str(tmp_path / "b")]) == 0
+    quiet = capsys.readouterr()
+    assert "network figures" not in quiet.err and quiet.out.replace(str(tmp_path / "b"), "") == \
+        shown.out.replace(str(tmp_path / "a"), "")
+
+
 def test_network_labels_impulse_responses_with_the_recorded_units(tmp_path, rng, capsys):
     path = tmp_path / "model.h5"
     session = {"input_names": ["site_a", "site_b", "site_c"], "input_units": ["uA", "uA", "mW"],
