@@ -22,6 +22,7 @@ from pathlib import Path
 from ...sysid import InvalidParameterError, StimsteerError
 from ...sysid._claims import claim_output
 from ...sysid._files import atomic_dir
+from ...sysid._progress import progress_wanted
 from ...sysid._records import jsonable
 from ...sysid.caution import CAUTION
 from ._common import add_window_options
@@ -68,7 +69,8 @@ def add_parser(subparsers) -> None:
                    "input range recorded on each split's training trials")
     p.add_argument("--description", metavar="TOML", help="for a BIDS dataset: how each recording becomes a session "
                    "(outputs, pulses, trials; as for `stimsteer convert`); converted files go to OUT.sessions")
-    p.add_argument("--no-progress", action="store_true")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar (shown on a terminal only, as for "
+                   "every command; STIMSTEER_PROGRESS=0/1 hides or forces it)")
 
 
 def _split(text):
@@ -147,7 +149,7 @@ def study_files(args) -> tuple[StudyResult, dict]:
                                description=args.description, convert_dir=out.parent / f"{out.name}.sessions",
                                cache=cache)  # a rerun reads again only the session files that changed
         result = run_study(table, st, cache=cache, scheduler=args.scheduler, n_workers=args.workers,
-                           progress=not args.no_progress)
+                           progress=not args.no_progress and progress_wanted())
         if st.limits is not None:
             src = getattr(args, "limits", None) or file_settings.get("limits")
             result.provenance["limits_file"] = str(src) if isinstance(src, (str, Path)) else "the study file"

@@ -219,3 +219,25 @@ def test_an_unreadable_record_of_session_files_reads_every_file_again(study, tmp
     monkeypatch.setattr(study_table, "_INFO", {})
     opened = _count_opens(monkeypatch)
     assert describe_study(study, cache=cache).sessions.equals(first) and len(opened) == 4
+
+
+@pytest.mark.parametrize("env, flag, shown", [(None, False, False), ("1", False, True), ("1", True, False),
+                                              ("0", False, False)])
+def test_the_study_bar_follows_the_rule_of_every_command(study, tmp_path, monkeypatch, env, flag, shown):
+    # off a terminal (as here) no bar unless STIMSTEER_PROGRESS=1 asks for one; --no-progress always wins (the run
+    # itself is replaced: only the flag it is given is looked at)
+    from stimsteer.control.commands import study as command
+
+    seen = []
+
+    def run_study(*args, progress, **kwargs):
+        seen.append(progress)
+        raise InvalidParameterError("stopped here by the test")
+
+    monkeypatch.setattr(command, "run_study", run_study)
+    if env is None:
+        monkeypatch.delenv("STIMSTEER_PROGRESS", raising=False)
+    else:
+        monkeypatch.setenv("STIMSTEER_PROGRESS", env)
+    argv = ["study", str(study), "--out", str(tmp_path / "out"), "--no-cache"] + (["--no-progress"] if flag else [])
+    assert main(argv) == 2 and seen == [shown]
