@@ -222,8 +222,9 @@ def _numbers(model, horizon_steps, gramian_steps, max_set_size, state_figures, i
         _check_horizons(model, horizon_steps, gramian_steps)  # the model's poles
         bar.update()
         # a fitted model's states are a construction (ARX: one per lag): the Kalman test runs on its minimal
-        # realisation
-        minimal = None if is_network_map(model) else minimal_realisation(model, horizon_steps=gramian_steps)[0]
+        # realisation (the infinite-horizon one whatever --gramian-steps: a horizon shorter than the states would
+        # hide reachable ones; an unstable model is balanced as A / c, the same reachable and observable states)
+        minimal = None if is_network_map(model) else minimal_realisation(model)[0]
         bar.update()
         T = _check_horizons(model if minimal is None else minimal, horizon_steps, gramian_steps)
         kal = controllability(model if minimal is None else minimal, horizon_steps=gramian_steps)
@@ -258,11 +259,15 @@ def _summary_lines(model, kal, out_rep, minimal=None):
                      + ("controllable" if kal.is_controllable else "NOT controllable from these sites"))
     else:
         rec = minimal.info["minimal_realisation"]
+        c, bound = rec.get("scaled_by", 1.0), rec["impulse_error_bound"]
+        of = "" if c == 1.0 else f" of A / {c:.4g} (the model is unstable; a scalar factor on A moves no state in or " \
+            "out of reach or sight)"
+        moves = f"the impulse responses by at most {bound:.2g}" if c == 1.0 else \
+            f"sample k of the impulse responses by at most {bound:.2g} x {c:.4g}^(k-1)"
         lines.append(
-            f"minimal realisation: {minimal.n_states} of {n} states (balanced truncation of the Hankel singular values "
-            f"below {rec['rtol']:g} of the largest; the removed states are ones no site reaches or no channel sees, to "
-            f"within that tolerance, "
-            f"and change the impulse responses by at most {rec['impulse_error_bound']:.2g})")
+            f"minimal realisation: {minimal.n_states} of {n} states (balanced truncation of the Hankel singular values"
+            f"{of} below {rec['rtol']:g} of the largest; the removed states are ones no site reaches or no channel "
+            f"sees, to within that tolerance, and change {moves})")
         lines.append(f"Kalman rank {kal.rank} of {minimal.n_states}, on the minimal realisation: "
                      + ("controllable" if kal.is_controllable else "NOT controllable from these sites"))
     lines += [

@@ -168,6 +168,10 @@ def _state(model, name, x) -> np.ndarray:
 MINIMAL_RTOL = 1e-6
 
 
+#: An unstable model is balanced as ``A / c`` with ``c`` this many times its spectral radius (spectral radius 0.5).
+UNSTABLE_SCALE = 2.0
+
+
 def _sqrt_psd(W) -> np.ndarray:
     """A square root ``L`` with ``L Lᵀ = W`` of a symmetric positive semi-definite matrix (eigenvalues clipped at 0;
     a Cholesky factor would fail on the singular Gramians of a non-minimal model)."""
@@ -194,8 +198,14 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     system : StateSpaceModel or tuple of matrices
     rtol : float, default :data:`MINIMAL_RTOL`
     horizon_steps : int, optional
-        Finite Gramian horizon; default infinite for a stable model, ``2 * n_states`` steps for an unstable one
-        (its reachable and observable subspaces are those of any horizon of at least ``n_states`` steps).
+        Finite Gramian horizon; default infinite. An unstable model is then balanced as ``A / c`` with ``c`` twice
+        its spectral radius (:data:`UNSTABLE_SCALE`): a scalar factor on ``A`` changes no reachable or observable
+        subspace (the Kalman matrices' block columns are only rescaled), and the removed states are the same as the
+        model's, whereas its finite-horizon Hankel singular values span the growth of its unstable modes, so a
+        relative tolerance removed states that are reached and seen (an 18-state model of spectral radius 2.2 kept
+        one state over 36 steps); ``info["minimal_realisation"]["scaled_by"]`` records ``c``, and the impulse error
+        bound is then that of ``A / c``: sample ``k`` of the model's response moves by at most the bound times
+        ``c^(k-1)``.
 
     Returns
     -------
@@ -211,13 +221,14 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
     n = A.shape[0]
     stable = n == 0 or model.spectral_radius < 1.0  # the model's poles, computed once
-    T = horizon_steps if horizon_steps is not None or stable else 2 * n
+    T = horizon_steps
+    c = 1.0 if stable or T is not None else UNSTABLE_SCALE * model.spectral_radius  # balanced as A / c
     # a ridge ARX's realisation on its lags: the same Markov parameters on fewer states (its companion form), the
     # others' Hankel singular values 0 (the finite-horizon ones too: they are those of the Markov parameters' block
     # Hankel matrix)
     A, B, C = companion_of(A, B, C, model.D) or (A, B, C)
     if T is None:
-        Wc, Wo = stable_gramian_pair(A, B @ B.T, C.T @ C)
+        Wc, Wo = stable_gramian_pair(A / c, B @ B.T, C.T @ C)
     else:
         Wc, Wo = np.zeros(A.shape), np.zeros(A.shape)
         Mb, Mc = B.copy(), C.T.copy()
@@ -233,7 +244,7 @@ def minimal_realisation(system, *, rtol: float = MINIMAL_RTOL, horizon_steps: in
     Tm = Lc @ Vt[:r].T * half          # x = Tm z
     Ti = (half[:, None] * U[:, :r].T) @ Lo.T  # z = Ti x (Ti Tm = I)
     info = {**dict(model.info), "minimal_realisation": {
-        "states": r, "of_states": n, "rtol": float(rtol), "gramian_horizon_steps": T,
+        "states": r, "of_states": n, "rtol": float(rtol), "gramian_horizon_steps": T, "scaled_by": c,
         "impulse_error_bound": float(2.0 * np.sum(s[r:]))}}
     reduced = StateSpaceModel(A=Ti @ A @ Tm, B=Ti @ B, C=C @ Tm, D=model.D, sample_rate_hz=model.sample_rate_hz,
                               input_names=model.input_names, output_names=model.output_names, info=info,

@@ -153,6 +153,11 @@ def test_network_on_an_unstable_fitted_model_needs_a_finite_gramian_horizon_neve
     assert main(["network", str(path), "--out", str(tmp_path / "c"), "--gramian-steps", "10"]) == 0
     table = pd.read_csv(tmp_path / "c" / "controllability.csv").set_index("quantity")["value"]
     assert table["normalisation"] == "none" and table["gramian_horizon_steps"] == "10"
+    # its Kalman test: a random 5-state model reaches and sees all its states; balanced as A / 2.6 (twice its
+    # spectral radius) it keeps all five, and the console says what the bound is of
+    printed = capsys.readouterr().out
+    assert "minimal realisation: 5 of 5 states" in printed and "of A / 2.6 (the model is unstable" in printed
+    assert "x 2.6^(k-1)" in printed and "Kalman rank 5 of 5" in printed
 
 
 @pytest.mark.parametrize("extra, match", [

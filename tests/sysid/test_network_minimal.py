@@ -11,9 +11,9 @@ from stimsteer.sysid.network.systems import minimal_realisation
 from stimsteer.sysid.statespace import StateSpaceModel
 
 
-def _padded(rng):
+def _padded(rng, poles=(0.8, -0.5, 0.3)):
     """A minimal 3-state system with 2 uncontrollable and 2 unobservable states added, mixed by a random basis."""
-    A3 = np.diag([0.8, -0.5, 0.3])
+    A3 = np.diag(poles)
     B3, C3 = rng.standard_normal((3, 2)), rng.standard_normal((2, 3))
     A = sla.block_diag(A3, np.diag([0.6, 0.4]), np.diag([0.7, -0.2]))
     A[5:, :3] = rng.standard_normal((2, 3))  # unobservable states driven by the minimal part
@@ -38,6 +38,22 @@ def test_the_minimal_realisation_has_the_order_of_the_markov_hankel_matrix_and_t
     np.testing.assert_allclose(reduced.impulse_response(30), h, atol=1e-10)
     assert controllability(reduced).is_controllable and controllability(reduced).rank == n_min
     assert not controllability(model).is_controllable  # the padded one is not: an artefact of its construction
+
+
+def test_an_unstable_model_keeps_every_state_it_reaches_and_sees(rng):
+    # Kalman 1963: reachability and observability are ranks of [B, AB, ...] and [C; CA; ...], which a scalar factor
+    # on A only rescales block by block, so A / c has the model's minimal order; balanced over a finite horizon, the
+    # growth of the mode at 2.0 (2^36 over 2·18 steps) put the mode at 0.5 below the relative tolerance
+    model, n_min = _padded(rng, poles=(2.0, 1.2, 0.5))
+    h = model.impulse_response(30)
+    H = np.block([[h[i + j + 1] / 2.0 ** (i + j) for j in range(6)] for i in range(6)])  # of A / 2: the same rank
+    s = np.linalg.svd(H, compute_uv=False)
+    assert int(np.sum(s > 1e-9 * s[0])) == n_min
+    reduced, hsv = minimal_realisation(model)
+    rec = reduced.info["minimal_realisation"]
+    assert reduced.n_states == n_min and hsv.size == 7 and rec["scaled_by"] == pytest.approx(4.0)
+    np.testing.assert_allclose(reduced.impulse_response(30), h, rtol=1e-9, atol=1e-12)
+    assert controllability(reduced, horizon_steps=20).is_controllable
 
 
 def test_balanced_truncation_stays_within_twice_the_removed_hankel_singular_values(rng):
