@@ -262,7 +262,8 @@ def _summary_lines(model, kal, out_rep, minimal=None):
         c, bound = rec.get("scaled_by", 1.0), rec["impulse_error_bound"]
         of = "" if c == 1.0 else f" of A / {c:.4g} (the model is unstable; a scalar factor on A moves no state in or " \
             "out of reach or sight)"
-        moves = f"the impulse responses by at most {bound:.2g}" if c == 1.0 else \
+        exact = " (to rounding)" if bound == 0 else ""  # the companion form: the same recursion on fewer states
+        moves = f"the impulse responses by at most {bound:.2g}{exact}" if c == 1.0 else \
             f"sample k of the impulse responses by at most {bound:.2g} x {c:.4g}^(k-1)"
         lines.append(
             f"minimal realisation: {minimal.n_states} of {n} states (balanced truncation of the Hankel singular values"

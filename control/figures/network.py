@@ -113,7 +113,7 @@ def impulse_response_figure(h, model, units=None) -> Figure:
                               shading="flat", rasterized=True)
         ax.set_title(f"stimulating {_with_unit(model.input_names[j], units[0][j] if units else None)}", fontsize=8)
         ax.set_yticks(np.arange(shown_p) + 0.5, [model.output_names[i] for i in range(shown_p)], fontsize=6)
-        ax.invert_yaxis()
+        ax.set_ylim(shown_p, 0)  # first channel on top (the axes share y: inverting each toggled it per site)
         ax.tick_params(labelsize=7)
         if j % cols == 0:
             ax.set_ylabel("recorded channel", fontsize=8)

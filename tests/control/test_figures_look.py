@@ -168,3 +168,13 @@ def test_the_site_ranking_names_the_squared_norms_unit_when_the_model_has_one():
     assert squared_response_unit((("uA", "uA"), ("uV",) * 3)) == "µV² per µA² per sample"
     assert squared_response_unit((("uA", "mA"), ("uV",) * 3)) == "output units² per input unit² per sample"
     assert squared_response_unit(None) == "output units² per input unit² per sample"
+
+
+@pytest.mark.parametrize("n_sites", [1, 2, 3, 4])
+def test_the_first_channel_is_on_top_whatever_the_number_of_sites(n_sites):
+    # the maps share their channel axis: inverting it once per site turned it back for every even count (seen with
+    # two sites: the first channel at the bottom)
+    mod = StateSpaceModel(A=np.diag([0.5, 0.6]), B=np.ones((2, n_sites)), C=np.eye(2), sample_rate_hz=100.0)
+    fig = impulse_response_figure(impulse_responses(mod, 30), mod)
+    for ax in (a for a in fig.axes if a.get_title().startswith("stimulating")):
+        assert ax.get_ylim() == (2.0, 0.0)
