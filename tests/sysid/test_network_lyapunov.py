@@ -203,7 +203,7 @@ def test_a_models_gramians_are_solved_once_and_kept_read_only(rng, monkeypatch):
     again = [outputs.output_gramian(model, sites=[j]) for j in range(3)]
     assert solved == [1, 3]  # the all-site Gramian once, the three sites' together once, nothing after
     A, B, C = np.asarray(model.A), np.asarray(model.B), np.asarray(model.C)
-    W = sla.solve_discrete_lyapunov(A, B @ B.T)
+    W = sla.solve_discrete_lyapunov(A, B @ B.T)  # margins below: the author's (two solvers' rounding, radius 0.9)
     np.testing.assert_allclose(report.gramian, 0.5 * (W + W.T), rtol=1e-10, atol=1e-12 * np.abs(W).max())
     np.testing.assert_allclose(out.gramian, C @ W @ C.T, rtol=1e-10, atol=1e-12 * np.abs(C @ W @ C.T).max())
     for j in range(3):
