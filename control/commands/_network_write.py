@@ -130,7 +130,7 @@ def _state_table(model, gramian_steps, lines):
 def _pair_table(model, gramian_steps, max_set_size):
     """Site sets by their output Gramian: H2² and the worst-case energy ``1 / λ_min(C W_S Cᵀ)`` (``inf``: some
     pattern of the recorded channels is out of the set's reach), best worst case first."""
-    # W_S is the sum of the single-site Gramians: one Lyapunov solve per site, then sums
+    # W_S is the sum of the single-site Gramians (solved together, sharing A's powers), then sums
     single = site_output_gramians(model, gramian_steps)
     rows = []
     for c in site_sets(model.n_inputs, max_set_size):

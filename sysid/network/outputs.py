@@ -35,9 +35,9 @@ from .energy import _check_rtol, _solve_energy
 from .ranking import RankedSets
 from .systems import _as_model, _check_horizon, _frozen, _output_offset, _site_indices
 
-__all__ = ["output_gramian", "site_output_gramians", "output_controllability", "site_output_controllability", "output_transition",
-           "rank_sites_by_output", "OutputControllability", "SiteOutputControllability", "OutputTransition",
-           "OutputSiteRanking"]
+__all__ = ["output_gramian", "site_output_gramians", "output_controllability", "site_output_controllability",
+           "output_transition", "rank_sites_by_output", "OutputControllability", "SiteOutputControllability",
+           "OutputTransition", "OutputSiteRanking"]
 
 _MAX_SETS = 200_000
 
@@ -76,12 +76,8 @@ def site_output_gramians(system, horizon_steps: int | None = None) -> list:
     """:func:`output_gramian` of each site alone (``C W_j Cᵀ``, in site order), the Gramians solved together."""
     model = _as_model(system)
     _A, _B, T = _gram(model, horizon_steps)
-    C = np.array(model.C)
-    out = []
-    for W in model_gramians(model, [(j,) for j in range(model.n_inputs)], T):
-        G = C @ W @ C.T
-        out.append(0.5 * (G + G.T))
-    return out
+    model_gramians(model, [(j,) for j in range(model.n_inputs)], T)  # solved together, kept on the model
+    return [output_gramian(model, horizon_steps, sites=[j]) for j in range(model.n_inputs)]
 
 
 def _rank_of(M, rank_tol=None):

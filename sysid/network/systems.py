@@ -168,7 +168,7 @@ def _state(model, name, x) -> np.ndarray:
 MINIMAL_RTOL = 1e-6
 
 
-#: An unstable model is balanced as ``A / c`` with ``c`` this many times its spectral radius (spectral radius 0.5).
+#: An unstable model is balanced as ``A / c`` with ``c`` this many times its spectral radius (``A / c``'s: 0.5).
 UNSTABLE_SCALE = 2.0
 
 
