@@ -13,6 +13,7 @@ from __future__ import annotations
 import os
 import pickle
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -65,7 +66,7 @@ def calls(folder: Path, before: str) -> None:
 
 def main(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
-    folder = Path(argv[argv.index("--inputs") + 1]) if "--inputs" in argv else Path("/tmp/stimsteer_builders")
+    folder = Path(argv[argv.index("--inputs") + 1]) if "--inputs" in argv else Path(tempfile.gettempdir()) / "stimsteer_builders"
     if not (folder / bf._INPUTS).is_file():
         print(f"recording the figure inputs of one demo run into {folder} ...", flush=True)
         capture(folder)
